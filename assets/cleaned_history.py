@@ -1,0 +1,84 @@
+"""Assets `cleaned_history`, `rejected_rows`, `history_corrections`, `cycle_calendar`."""
+
+import dagster as dg
+import pandas as pd
+
+from assets.common import rule_check, schema_check_spec, table_metadata, validate
+from pipelines.resources import PlanningConfigResource
+from pipelines.schemas import CleanedHistory, CycleCalendar, HistoryCorrections, RejectedRows
+from pipelines.stages.cleaned_history import clean_history, cycle_calendar as make_cycle_calendar, find_unexplained_changes, line_accounting
+
+CLEANED_HISTORY = "cleaned_history"
+REJECTED_ROWS = "rejected_rows"
+HISTORY_CORRECTIONS = "history_corrections"
+CYCLE_CALENDAR = "cycle_calendar"
+EVERY_RAW_ROW_ACCOUNTED = "every_raw_row_accounted"
+CORRECTIONS_EXPLAIN_CHANGES = "corrections_explain_changes"
+
+
+@dg.multi_asset(
+    group_name="history",
+    outs={
+        CLEANED_HISTORY: dg.AssetOut(kinds={"pandas", "duckdb"}, description="One cleaned value per leaf and period, zero-filled inside each series' span."),
+        REJECTED_ROWS: dg.AssetOut(kinds={"pandas", "duckdb"}, description="Raw history lines that could not be used, each with its reason."),
+        HISTORY_CORRECTIONS: dg.AssetOut(kinds={"pandas", "duckdb"}, description="Every value a cleansing rule changed: before, after, rule, parameters."),
+        CYCLE_CALENDAR: dg.AssetOut(kinds={"pandas", "duckdb"}, description="The cycle date, calendar and history range of this cycle."),
+    },
+    check_specs=[
+        schema_check_spec(CLEANED_HISTORY, CleanedHistory),
+        schema_check_spec(REJECTED_ROWS, RejectedRows),
+        schema_check_spec(HISTORY_CORRECTIONS, HistoryCorrections),
+        schema_check_spec(CYCLE_CALENDAR, CycleCalendar),
+        dg.AssetCheckSpec(
+            EVERY_RAW_ROW_ACCOUNTED,
+            asset=CLEANED_HISTORY,
+            blocking=True,
+            description="Proves raw lines = lines summed into cleaned_history + rejected_rows, so no line is lost. "
+            "When it fails, compare the counts in the metadata and report the stage as a bug.",
+        ),
+        dg.AssetCheckSpec(
+            CORRECTIONS_EXPLAIN_CHANGES,
+            asset=CLEANED_HISTORY,
+            blocking=True,
+            description="Proves, per series, raw total + audited corrections = cleaned total, so every changed "
+            "number is in history_corrections. When it fails, the series listed changed without an audit row.",
+        ),
+    ],
+    can_subset=False,
+)
+def cleaned_history(context: dg.AssetExecutionContext, planning: PlanningConfigResource, raw_history: pd.DataFrame, products: pd.DataFrame, customer_spans: pd.DataFrame):
+    config = planning.config
+    result = clean_history(raw_history, products, customer_spans, config)
+    cleaned, cleaned_check = validate(result.cleaned, CleanedHistory, CLEANED_HISTORY)
+    rejected, rejected_check = validate(result.rejected, RejectedRows, REJECTED_ROWS)
+    corrections, corrections_check = validate(result.corrections, HistoryCorrections, HISTORY_CORRECTIONS)
+    calendar, calendar_check = validate(make_cycle_calendar(result.cleaned, config, result.cycle_date), CycleCalendar, CYCLE_CALENDAR)
+    counts = line_accounting(len(raw_history), result.cleaned, result.rejected)
+    context.log.info(f"cycle date {result.cycle_date.date()}: {counts}")
+
+    by_reason = rejected.groupby("reason").size().rename("lines").reset_index()
+    by_rule = corrections.groupby("rule")["delta"].agg(["size", "sum"]).rename(columns={"size": "rows", "sum": "quantity_moved"}).reset_index()
+    yield dg.Output(
+        cleaned,
+        output_name=CLEANED_HISTORY,
+        metadata=table_metadata(
+            cleaned,
+            cycle_date=str(result.cycle_date.date()),
+            series=int(cleaned.groupby(["product", "site", "customer"]).ngroups),
+            filled_periods=int(cleaned["filled"].sum()),
+            corrected_periods=int(cleaned["corrected"].sum()),
+            **counts,
+        ),
+    )
+    yield dg.Output(rejected, output_name=REJECTED_ROWS, metadata=table_metadata(rejected, by_reason=by_reason))
+    yield dg.Output(corrections, output_name=HISTORY_CORRECTIONS, metadata=table_metadata(corrections, by_rule=by_rule))
+    yield dg.Output(calendar, output_name=CYCLE_CALENDAR, metadata=table_metadata(calendar))
+    yield from (cleaned_check, rejected_check, corrections_check, calendar_check)
+    unaccounted = pd.DataFrame([counts]) if counts["unaccounted"] else pd.DataFrame()
+    yield rule_check(CLEANED_HISTORY, EVERY_RAW_ROW_ACCOUNTED, unaccounted, what="raw lines = used + rejected", **counts)
+    yield rule_check(
+        CLEANED_HISTORY,
+        CORRECTIONS_EXPLAIN_CHANGES,
+        find_unexplained_changes(result.cleaned, result.corrections),
+        what="per series, raw + corrections = cleaned",
+    )

@@ -1,0 +1,111 @@
+"""What every asset does the same way: schema checks, rule checks and metadata."""
+
+import dagster as dg
+import pandas as pd
+import pandera.errors
+import pandera.pandas as pa
+
+SAMPLE_ROWS = 20
+PREVIEW_ROWS = 8
+
+
+def markdown(df: pd.DataFrame, rows: int = PREVIEW_ROWS) -> dg.MetadataValue:
+    """A short markdown table of the first `rows` rows."""
+    if df.empty:
+        return dg.MetadataValue.md("_no rows_")
+    head = df.head(rows).copy()
+    for c in head.columns:
+        if pd.api.types.is_datetime64_any_dtype(head[c]):
+            head[c] = head[c].dt.strftime("%Y-%m-%d")
+    return dg.MetadataValue.md(head.to_markdown(index=False, floatfmt=".4g"))
+
+
+def table_metadata(df: pd.DataFrame, **figures) -> dict:
+    """Row count, column schema, a preview, plus the figures a planner looks at."""
+    schema = dg.TableSchema(columns=[dg.TableColumn(name=str(c), type=str(t)) for c, t in df.dtypes.items()])
+    meta = {
+        "dagster/row_count": dg.MetadataValue.int(len(df)),
+        "dagster/column_schema": schema,
+        "preview": markdown(df),
+    }
+    for key, value in figures.items():
+        if isinstance(value, pd.DataFrame):
+            meta[key] = markdown(value, rows=SAMPLE_ROWS)
+        elif isinstance(value, dg.MetadataValue):
+            meta[key] = value
+        elif isinstance(value, bool):
+            meta[key] = dg.MetadataValue.bool(value)
+        elif isinstance(value, int):
+            meta[key] = dg.MetadataValue.int(value)
+        elif isinstance(value, float):
+            meta[key] = dg.MetadataValue.float(value)
+        else:
+            meta[key] = dg.MetadataValue.text(str(value))
+    return meta
+
+
+def schema_check_name(asset_name: str) -> str:
+    return f"{asset_name}_matches_schema"
+
+
+def schema_check_spec(asset_name: str, model: type[pa.DataFrameModel]) -> dg.AssetCheckSpec:
+    first_line = (model.__doc__ or "").strip().splitlines()[0] if model.__doc__ else ""
+    return dg.AssetCheckSpec(
+        name=schema_check_name(asset_name),
+        asset=asset_name,
+        blocking=True,
+        description=(
+            f"Proves that {asset_name} matches its pandera model {model.__name__} ({first_line}): "
+            f"columns, types, ranges and keys. When it fails, the metadata lists the failing rows and "
+            f"checks; correct the input or stage named there and rematerialize."
+        ),
+    )
+
+
+def validate(df: pd.DataFrame, model: type[pa.DataFrameModel], asset_name: str) -> tuple[pd.DataFrame, dg.AssetCheckResult]:
+    """Validate lazily against `model`; the coerced frame (or `df` unchanged on failure) and the check result."""
+    try:
+        out = model.validate(df, lazy=True)
+    except pandera.errors.SchemaErrors as err:
+        cases = err.failure_cases
+        by_check = cases.groupby(["column", "check"], dropna=False).size().reset_index(name="failures")
+        index = pd.to_numeric(cases["index"], errors="coerce").dropna().astype(int).unique()
+        rows = df.loc[df.index.intersection(index)].head(SAMPLE_ROWS)
+        return df, dg.AssetCheckResult(
+            asset_key=asset_name,
+            check_name=schema_check_name(asset_name),
+            passed=False,
+            severity=dg.AssetCheckSeverity.ERROR,
+            metadata={
+                "failure_count": dg.MetadataValue.int(len(cases)),
+                "failing_row_count": dg.MetadataValue.int(len(index)),
+                "failures_by_check": markdown(by_check.astype(str), rows=SAMPLE_ROWS),
+                "failure_cases_sample": markdown(cases.astype(str), rows=SAMPLE_ROWS),
+                "failing_rows_sample": markdown(rows, rows=SAMPLE_ROWS),
+            },
+        )
+    return out, dg.AssetCheckResult(
+        asset_key=asset_name,
+        check_name=schema_check_name(asset_name),
+        passed=True,
+        metadata={"rows_checked": dg.MetadataValue.int(len(df))},
+    )
+
+
+def rule_check(asset_name: str, check_name: str, failing: pd.DataFrame, *, what: str, **extra) -> dg.AssetCheckResult:
+    """An ERROR check result that passes when `failing` is empty; failing rows sampled in metadata."""
+    metadata = {
+        "failing_count": dg.MetadataValue.int(len(failing)),
+        "proves": dg.MetadataValue.text(what),
+    }
+    if len(failing):
+        metadata["failing_rows_sample"] = markdown(failing, rows=SAMPLE_ROWS)
+    for key, value in extra.items():
+        metadata[key] = value if isinstance(value, dg.MetadataValue) else dg.MetadataValue.text(str(value))
+    return dg.AssetCheckResult(
+        asset_key=asset_name,
+        check_name=check_name,
+        passed=failing.empty,
+        severity=dg.AssetCheckSeverity.ERROR,
+        metadata=metadata,
+    )

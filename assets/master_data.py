@@ -1,0 +1,71 @@
+"""Assets `products`, `customer_spans`, `adjustments`: master data and planner input."""
+
+import dagster as dg
+import pandas as pd
+
+from assets.common import schema_check_spec, table_metadata, validate
+from pipelines.resources import PlanningConfigResource
+from pipelines.schemas import Adjustments, CustomerSpans, Products
+from pipelines.stages.master_data import load_adjustments, load_customer_spans, load_products
+
+PRODUCTS = "products"
+CUSTOMER_SPANS = "customer_spans"
+ADJUSTMENTS = "adjustments"
+
+
+def _files(files) -> pd.DataFrame:
+    return pd.DataFrame([{"file": str(f.path), "rows": f.rows, "sha256": f.sha256} for f in files])
+
+
+@dg.asset(
+    name=PRODUCTS,
+    group_name="master_data",
+    kinds={"pandas", "duckdb"},
+    check_specs=[schema_check_spec(PRODUCTS, Products)],
+    description="Product master: class, active span and successor of each product.",
+)
+def products(context: dg.AssetExecutionContext, planning: PlanningConfigResource):
+    config = planning.config
+    frame, files = load_products(config.inputs.folder)
+    frame, check = validate(frame, Products, PRODUCTS)
+    if check.passed:
+        config.check_classes_known(set(frame["product_class"]), where=str(files[0].path))
+    by_class = frame.groupby("product_class").size().rename("products").reset_index()
+    yield dg.Output(frame, metadata=table_metadata(frame, files=_files(files), products_per_class=by_class))
+    yield check
+
+
+@dg.asset(
+    name=CUSTOMER_SPANS,
+    group_name="master_data",
+    kinds={"pandas", "duckdb"},
+    check_specs=[schema_check_spec(CUSTOMER_SPANS, CustomerSpans)],
+    description="Which customer buys which product at which site, from when to when, and its reference customer.",
+)
+def customer_spans(context: dg.AssetExecutionContext, planning: PlanningConfigResource):
+    frame, files = load_customer_spans(planning.config.inputs.folder)
+    frame, check = validate(frame, CustomerSpans, CUSTOMER_SPANS)
+    yield dg.Output(
+        frame,
+        metadata=table_metadata(
+            frame,
+            files=_files(files),
+            with_end=int(pd.notna(frame["active_to"]).sum()),
+            with_reference=int(pd.notna(frame["reference_customer"]).sum()),
+        ),
+    )
+    yield check
+
+
+@dg.asset(
+    name=ADJUSTMENTS,
+    group_name="master_data",
+    kinds={"pandas", "duckdb"},
+    check_specs=[schema_check_spec(ADJUSTMENTS, Adjustments)],
+    description="Parent-grain values a planner entered (optional adjustments file; empty when absent).",
+)
+def adjustments(context: dg.AssetExecutionContext, planning: PlanningConfigResource):
+    frame, files = load_adjustments(planning.config.inputs.folder)
+    frame, check = validate(frame, Adjustments, ADJUSTMENTS)
+    yield dg.Output(frame, metadata=table_metadata(frame, files=_files(files)))
+    yield check

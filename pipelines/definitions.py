@@ -1,0 +1,42 @@
+"""The one Definitions object of apportion: every asset, check, job, schedule and resource."""
+
+import dagster as dg
+
+from assets.cleaned_history import cleaned_history
+from assets.lifecycle_history import lifecycle_history
+from assets.master_data import adjustments, customer_spans, products
+from assets.raw_history import raw_history
+from assets.reconciliation import reconciliation
+from assets.reinitialized_target import reinitialized_target
+from assets.share_tables import share_tables
+from assets.statistical_forecast import statistical_forecast
+from pipelines.jobs import weekly_cycle_job, weekly_cycle_schedule
+from pipelines.resources import DuckDBStore, PlanningConfigResource
+
+ASSETS = [
+    raw_history,
+    products,
+    customer_spans,
+    adjustments,
+    cleaned_history,
+    lifecycle_history,
+    share_tables,
+    reinitialized_target,
+    statistical_forecast,
+    reconciliation,
+]
+
+
+def build_definitions(config_path: str = "") -> dg.Definitions:
+    """Definitions over the planning config at `config_path` ('' = $APPORTION_CONFIG or config/planning.yaml)."""
+    planning = PlanningConfigResource(path=config_path)
+    return dg.Definitions(
+        assets=ASSETS,
+        jobs=[weekly_cycle_job],
+        schedules=[weekly_cycle_schedule],
+        resources={"planning": planning, "io_manager": DuckDBStore(planning=planning)},
+        executor=dg.in_process_executor,
+    )
+
+
+defs = build_definitions()

@@ -1,0 +1,39 @@
+"""Integer coding of key columns, so group sums run on integers not strings."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+LEAF = ["product", "site", "customer"]
+PARENT = ["product", "site"]
+
+
+def factorize(df: pd.DataFrame, cols: list[str]) -> tuple[np.ndarray, pd.DataFrame]:
+    """Dense int64 codes 0..n-1 for the distinct tuples of `cols`, and those tuples.
+
+    `uniques.iloc[code]` gives back the key of a row; codes follow first appearance.
+    """
+    if len(cols) == 1:
+        codes, uniques = pd.factorize(df[cols[0]])
+        return codes.astype(np.int64), pd.DataFrame({cols[0]: np.asarray(uniques)})
+    combined = np.zeros(len(df), dtype=np.int64)
+    capacity = 1
+    for c in cols:
+        k, u = pd.factorize(df[c])
+        capacity *= max(len(u), 1)
+        if capacity >= 2**62:  # cannot pack: fall back to pandas' own grouping
+            codes = df.groupby(cols, sort=False, dropna=False).ngroup().to_numpy(np.int64)
+            first = np.unique(codes, return_index=True)[1]
+            return codes, df[cols].iloc[first].reset_index(drop=True)
+        combined = combined * max(len(u), 1) + k
+    codes = pd.factorize(combined)[0].astype(np.int64)
+    first = np.unique(codes, return_index=True)[1]  # first row holding each code
+    return codes, df[cols].iloc[first].reset_index(drop=True)
+
+
+def lookup(df: pd.DataFrame, cols: list[str], table: pd.DataFrame) -> np.ndarray:
+    """Row position in `table` of each row's key in `df` (-1 where absent)."""
+    left = pd.MultiIndex.from_frame(df[cols]) if len(cols) > 1 else pd.Index(df[cols[0]])
+    right = pd.MultiIndex.from_frame(table[cols]) if len(cols) > 1 else pd.Index(table[cols[0]])
+    return right.get_indexer(left)

@@ -1,0 +1,264 @@
+"""One pandera model per stage boundary.
+
+Later stages inherit their key columns from earlier ones. Every asset is
+validated against its model by a blocking asset check named
+`<asset>_matches_schema`; failing rows go into that check's metadata.
+"""
+
+import pandas as pd
+import pandera.pandas as pa
+from pandera.typing import DateTime, Series
+
+REJECT_REASONS = (
+    "missing_key",
+    "bad_date",
+    "bad_quantity",
+    "unknown_product",
+    "no_customer_span",
+    "on_or_after_cycle_date",
+)
+CORRECTION_RULES = ("negative_net_to_zero", "hampel_cap")
+ORIGINS = ("own", "successor", "reference")
+LIFECYCLE_RULES = (
+    "outside_active_span",
+    "phased_out_before_cycle",
+    "retired_product_without_successor",
+    "successor_without_span",
+    "reference_history_copied",
+    "successor_history_mapped",
+)
+FALLBACKS = ("none", "longer_window", "even")
+DEMAND_CLASSES = ("smooth", "erratic", "intermittent", "lumpy", "no_demand")
+SPLIT_BASES = ("target", "share", "own_forecast")
+
+
+class _Strict(pa.DataFrameModel):
+    class Config:
+        strict = True
+        coerce = True
+
+
+# ----------------------------------------------------------------- inputs
+class RawHistory(_Strict):
+    """History lines exactly as read: every cell text, blanks as ''."""
+
+    source_file: Series[str] = pa.Field(description="input file the line came from")
+    source_row: Series[int] = pa.Field(ge=1, description="1-based data row within that file")
+    product: Series[str] = pa.Field(description="product code as written")
+    site: Series[str] = pa.Field(description="site code as written")
+    customer: Series[str] = pa.Field(description="customer code as written")
+    period_start: Series[str] = pa.Field(description="ISO date as written")
+    quantity: Series[str] = pa.Field(description="quantity as written; negative is a return")
+
+    class Config:
+        unique = ["source_file", "source_row"]
+
+
+class Products(_Strict):
+    """Product master: class and active span of each product."""
+
+    product: Series[str] = pa.Field(unique=True, str_length={"min_value": 1}, description="product code")
+    product_class: Series[str] = pa.Field(str_length={"min_value": 1}, description="class key of the planning config")
+    active_from: Series[DateTime] = pa.Field(nullable=True, description="first day sold; blank = always")
+    active_to: Series[DateTime] = pa.Field(nullable=True, description="last day sold; blank = open")
+    successor: Series[str] = pa.Field(nullable=True, description="product taking over this one's history")
+
+    @pa.dataframe_check(description="active_to is not before active_from")
+    def span_ordered(cls, df: pd.DataFrame) -> Series[bool]:
+        return ~(df["active_to"] < df["active_from"])
+
+    @pa.dataframe_check(description="a product is not its own successor")
+    def successor_differs(cls, df: pd.DataFrame) -> Series[bool]:
+        return df["successor"].isna() | (df["successor"] != df["product"])
+
+
+class LeafKeys(_Strict):
+    product: Series[str] = pa.Field(description="product code")
+    site: Series[str] = pa.Field(description="site code")
+    customer: Series[str] = pa.Field(description="customer code")
+
+
+class CustomerSpans(LeafKeys):
+    """Which customer buys which product at which site, and when."""
+
+    active_from: Series[DateTime] = pa.Field(nullable=True, description="first day of the active span")
+    active_to: Series[DateTime] = pa.Field(nullable=True, description="last day of the active span; blank = open")
+    reference_customer: Series[str] = pa.Field(
+        nullable=True, description="existing customer whose history stands in for a new one"
+    )
+
+    class Config:
+        unique = ["product", "site", "customer"]
+
+    @pa.dataframe_check(description="active_to is not before active_from")
+    def span_ordered(cls, df: pd.DataFrame) -> Series[bool]:
+        return ~(df["active_to"] < df["active_from"])
+
+    @pa.dataframe_check(description="a customer is not its own reference")
+    def reference_differs(cls, df: pd.DataFrame) -> Series[bool]:
+        return df["reference_customer"].isna() | (df["reference_customer"] != df["customer"])
+
+
+class Adjustments(_Strict):
+    """Parent-grain values a planner entered."""
+
+    measure: Series[str] = pa.Field(description="measure name")
+    product: Series[str] = pa.Field(description="product code")
+    site: Series[str] = pa.Field(description="site code")
+    period_start: Series[DateTime] = pa.Field(description="period start")
+    value: Series[float] = pa.Field(description="value at product x site grain")
+
+
+# ----------------------------------------------------------------- history
+class LeafPeriod(LeafKeys):
+    period_start: Series[DateTime] = pa.Field(description="start of the calendar period")
+
+
+class CleanedHistory(LeafPeriod):
+    """History bucketed to the calendar, one row per leaf and period."""
+
+    quantity: Series[float] = pa.Field(ge=0, description="cleaned quantity")
+    raw_quantity: Series[float] = pa.Field(description="net quantity of the raw lines (0 where filled)")
+    lines: Series[int] = pa.Field(ge=0, description="raw lines summed into this period")
+    filled: Series[bool] = pa.Field(description="period had no line and was filled with zero")
+    corrected: Series[bool] = pa.Field(description="a correction changed this period")
+
+    class Config:
+        unique = ["product", "site", "customer", "period_start"]
+
+
+class CycleCalendar(_Strict):
+    """The cycle in one row: its date, calendar and history range."""
+
+    cycle_date: Series[DateTime] = pa.Field(description="first period of the horizon")
+    period: Series[str] = pa.Field(isin=("week", "month"), description="period kind")
+    horizon: Series[int] = pa.Field(ge=1, description="periods forecast")
+    horizon_end: Series[DateTime] = pa.Field(description="start of the last horizon period")
+    history_start: Series[DateTime] = pa.Field(nullable=True, description="first period of cleaned history")
+    history_periods: Series[int] = pa.Field(ge=0, description="periods from history_start to the cycle date")
+
+
+class RejectedRows(_Strict):
+    """Raw lines that could not be used, each with its reason."""
+
+    source_file: Series[str] = pa.Field(description="input file")
+    source_row: Series[int] = pa.Field(ge=1, description="1-based data row")
+    product: Series[str] = pa.Field(description="as written")
+    site: Series[str] = pa.Field(description="as written")
+    customer: Series[str] = pa.Field(description="as written")
+    period_start: Series[str] = pa.Field(description="as written")
+    quantity: Series[str] = pa.Field(description="as written")
+    reason: Series[str] = pa.Field(isin=REJECT_REASONS, description="why the line was not used")
+
+
+class HistoryCorrections(LeafPeriod):
+    """One row per changed period: the quantity a rule moved."""
+
+    rule: Series[str] = pa.Field(isin=CORRECTION_RULES, description="rule that changed the value")
+    before: Series[float] = pa.Field(description="value before the rule")
+    after: Series[float] = pa.Field(description="value after the rule")
+    delta: Series[float] = pa.Field(description="after - before")
+    parameters: Series[str] = pa.Field(description="the rule's parameter values")
+
+
+class LifecycleHistory(LeafPeriod):
+    """History inside each active span, remapped to successors and references."""
+
+    quantity: Series[float] = pa.Field(ge=0, description="quantity in the share basis")
+    origin: Series[str] = pa.Field(isin=ORIGINS, description="own, successor (mapped) or reference (copied)")
+    source_product: Series[str] = pa.Field(description="product the history was recorded on")
+    source_customer: Series[str] = pa.Field(description="customer the history was recorded on")
+
+    class Config:
+        unique = ["product", "site", "customer", "period_start", "origin", "source_product"]
+
+
+class LifecycleAudit(_Strict):
+    """What the lifecycle stage moved or left out, per key and rule."""
+
+    product: Series[str] = pa.Field(description="product code")
+    site: Series[str] = pa.Field(description="site code")
+    customer: Series[str] = pa.Field(description="customer code")
+    rule: Series[str] = pa.Field(isin=LIFECYCLE_RULES, description="lifecycle rule applied")
+    periods: Series[int] = pa.Field(ge=0, description="periods affected")
+    quantity: Series[float] = pa.Field(description="quantity affected")
+    detail: Series[str] = pa.Field(description="what happened, in words")
+
+
+# ----------------------------------------------------------------- shares
+class ShareTable(LeafKeys):
+    """One share per child for the cycle, with the window and method behind it."""
+
+    cycle_date: Series[DateTime] = pa.Field(description="first period of the cycle's horizon")
+    product_class: Series[str] = pa.Field(description="product class")
+    share: Series[float] = pa.Field(ge=0, le=1, description="child's fraction of its parent")
+    method: Series[str] = pa.Field(description="share method of the class")
+    window: Series[int] = pa.Field(ge=1, description="configured window, periods")
+    window_used: Series[int] = pa.Field(ge=0, description="window that gave volume (0 = even split)")
+    window_start: Series[DateTime] = pa.Field(description="first period of the window used")
+    fallback: Series[str] = pa.Field(isin=FALLBACKS, description="fallback taken for this parent")
+    child_volume: Series[float] = pa.Field(ge=0, description="child's volume in the window used")
+    parent_volume: Series[float] = pa.Field(ge=0, description="parent's volume in the window used")
+
+    class Config:
+        unique = ["product", "site", "customer"]
+
+
+class ReinitializedTarget(LeafPeriod):
+    """Target measure for the horizon: share x the parent's baseline."""
+
+    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
+    target: Series[float] = pa.Field(ge=0, description="share x parent_baseline")
+    share: Series[float] = pa.Field(ge=0, le=1, description="share from the share table")
+    parent_baseline: Series[float] = pa.Field(ge=0, description="parent's mean per period over the window used")
+
+    class Config:
+        unique = ["product", "site", "customer", "period_start"]
+
+
+# ----------------------------------------------------------------- forecast
+class ParentForecast(_Strict):
+    """Statistical forecast at product x site grain."""
+
+    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
+    product_class: Series[str] = pa.Field(description="product class")
+    product: Series[str] = pa.Field(description="product code")
+    site: Series[str] = pa.Field(description="site code")
+    period_start: Series[DateTime] = pa.Field(description="forecast period")
+    forecast: Series[float] = pa.Field(description="parent forecast")
+    model: Series[str] = pa.Field(description="statsforecast model used")
+    demand_class: Series[str] = pa.Field(isin=DEMAND_CLASSES, description="Syntetos-Boylan-Croston class")
+    forecast_grain: Series[str] = pa.Field(description="grain the model ran at")
+
+    class Config:
+        unique = ["product", "site", "period_start"]
+
+
+class StatisticalForecast(LeafPeriod):
+    """Statistical forecast at leaf grain, split from the parent."""
+
+    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
+    product_class: Series[str] = pa.Field(description="product class")
+    forecast: Series[float] = pa.Field(description="leaf forecast")
+    parent_forecast: Series[float] = pa.Field(description="the parent's forecast this was split from")
+    split_basis: Series[str] = pa.Field(isin=SPLIT_BASES, description="what the split was proportional to")
+
+    class Config:
+        unique = ["product", "site", "customer", "period_start"]
+
+
+class Reconciliation(_Strict):
+    """Parent value against the sum of its children, per parent and period."""
+
+    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
+    product: Series[str] = pa.Field(description="product code")
+    site: Series[str] = pa.Field(description="site code")
+    period_start: Series[DateTime] = pa.Field(description="period")
+    parent_forecast: Series[float] = pa.Field(description="parent value")
+    children_sum: Series[float] = pa.Field(description="sum of leaf forecasts")
+    children: Series[int] = pa.Field(ge=0, description="number of leaf rows")
+    difference: Series[float] = pa.Field(description="children_sum - parent_forecast")
+    relative_difference: Series[float] = pa.Field(description="|difference| / max(|parent|, 1)")
+
+    class Config:
+        unique = ["product", "site", "period_start"]

@@ -1,0 +1,40 @@
+"""Master data: products, customer spans and planner adjustments.
+
+Loaded as text with blanks as missing; the stage's pandera model parses the
+dates and numbers, so a bad cell shows up as a failing row of the schema check
+instead of being guessed.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pandas as pd
+
+from pipelines.stages.inputs import InputFile, blanks_to_none, find_files, read_text_table, sha256
+
+PRODUCT_COLUMNS = ("product", "product_class", "active_from", "active_to", "successor")
+SPAN_COLUMNS = ("product", "site", "customer", "active_from", "active_to", "reference_customer")
+ADJUSTMENT_COLUMNS = ("measure", "product", "site", "period_start", "value")
+
+
+def _load(folder: Path, name: str, columns: tuple[str, ...], required: bool = True) -> tuple[pd.DataFrame, list[InputFile]]:
+    paths = find_files(folder, name, required=required)
+    if not paths:
+        return pd.DataFrame({c: pd.Series(dtype=object) for c in columns}), []
+    path = paths[0]
+    df = blanks_to_none(read_text_table(path, columns))
+    return df, [InputFile(path=path, rows=len(df), sha256=sha256(path))]
+
+
+def load_products(folder: Path) -> tuple[pd.DataFrame, list[InputFile]]:
+    return _load(folder, "products", PRODUCT_COLUMNS)
+
+
+def load_customer_spans(folder: Path) -> tuple[pd.DataFrame, list[InputFile]]:
+    return _load(folder, "customer_spans", SPAN_COLUMNS)
+
+
+def load_adjustments(folder: Path) -> tuple[pd.DataFrame, list[InputFile]]:
+    """Optional: an absent file gives an empty table."""
+    return _load(folder, "adjustments", ADJUSTMENT_COLUMNS, required=False)
