@@ -30,6 +30,7 @@ ModelName = Literal[
 ]
 OutlierRule = Literal["hampel", "none"]
 OutlierReplacement = Literal["limit", "median"]
+OutlierSides = Literal["upper", "both"]
 ReturnsRule = Literal["net_then_zero"]
 LATEST_COMPLETE_PERIOD = "latest_complete_period"
 
@@ -65,6 +66,9 @@ class OutlierConfig(Frozen):
     window: int = Field(13, ge=3, le=105, description="centred window in periods; odd")
     k: float = Field(3.0, gt=0)
     replace_with: OutlierReplacement = "limit"
+    # `upper` (default) corrects spikes only: a low value in shipments is more
+    # often a supply gap than a demand outlier, and raising it would invent demand.
+    sides: OutlierSides = "upper"
 
     @field_validator("window")
     @classmethod

@@ -21,7 +21,10 @@ Rules, in the order they run:
 5. **Outliers, Hampel filter** (Hampel 1974; scale 1.4826 x MAD as in Leys et
    al. 2013). In a centred window of `window` periods, a value x_t with
    |x_t - m_t| > k * 1.4826 * MAD_t is replaced by the nearer limit
-   m_t +/- k * 1.4826 * MAD_t (or by m_t, per config), never below zero. Where
+   m_t +/- k * 1.4826 * MAD_t (or by m_t, per config), never below zero.
+   `sides: upper` (default) flags only values above the median: a low week of
+   shipments is more often a supply gap than low demand. `sides: both` is the
+   symmetric rule as published. Where
    MAD_t = 0 nothing is flagged: an intermittent series whose window is mostly
    zeros has no spread to judge a spike by. Each replacement is a correction row
    (`hampel_cap`) holding the window, k and the limits.
@@ -136,7 +139,8 @@ def hampel_limits(values: np.ndarray, med: np.ndarray, mad: np.ndarray, rule: Ou
     """(flagged, replacement) for each value under the Hampel rule."""
     spread = rule.k * MAD_SCALE * mad
     with np.errstate(invalid="ignore"):
-        flagged = (mad > 0) & (np.abs(values - med) > spread)
+        deviation = values - med if rule.sides == "upper" else np.abs(values - med)
+        flagged = (mad > 0) & (deviation > spread)
     if rule.replace_with == "median":
         replacement = med
     else:
@@ -193,7 +197,7 @@ def clean_history(
         if flagged.any():
             before = values.copy()
             values = np.where(flagged, replacement, values)
-            params = {"window": rule.window, "k": rule.k, "replace_with": rule.replace_with}
+            params = {"window": rule.window, "k": rule.k, "replace_with": rule.replace_with, "sides": rule.sides}
             rows = _correction_rows(flagged, before, values, "hampel_cap", params)
             fi, fj = np.nonzero(flagged)
             rows["parameters"] = [

@@ -1,0 +1,128 @@
+"""Command line: `python -m pipelines cycle` runs the weekly cycle and prints its summary.
+
+    python -m pipelines cycle [--config config/planning.yaml]
+    python -m pipelines summary [--config ...]        # summary of the stored cycle, no run
+    python -m pipelines demo-data [--out data/demo]   # regenerate the bundled demo files
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+from pathlib import Path
+
+from pipelines.errors import PlanningError
+
+UI_COMMAND = "make ui   (dagster dev -m pipelines.definitions -h 127.0.0.1 -p 3000)"
+
+
+def _instance():
+    import dagster as dg
+
+    home = os.environ.get("DAGSTER_HOME")
+    if not home:
+        print(
+            "DAGSTER_HOME is not set, so the run would vanish with a temporary instance.\n"
+            "Set it to a folder that will hold runs and check history, e.g.\n"
+            "  export DAGSTER_HOME=$PWD/.dagster   (make demo does this)",
+            file=sys.stderr,
+        )
+        raise SystemExit(2)
+    Path(home).mkdir(parents=True, exist_ok=True)
+    return dg.DagsterInstance.get()
+
+
+def run_cycle(config_path: str) -> int:
+    from pipelines.definitions import build_definitions
+    from pipelines.jobs import WEEKLY_CYCLE
+
+    defs = build_definitions(config_path)
+    instance = _instance()
+    result = defs.resolve_job_def(WEEKLY_CYCLE).execute_in_process(instance=instance, raise_on_error=False)
+    checks = [(e.asset_key.to_user_string(), e.check_name, e.passed, e.severity.value) for e in result.get_asset_check_evaluations()]
+    failures = [e for e in result.all_events if e.is_step_failure]
+    print(f"run {result.run_id}: {'succeeded' if result.success else 'FAILED'}")
+    for event in failures:
+        error = event.event_specific_data.error
+        message = error.cause.message if error and error.cause else (error.message if error else event.message)
+        print(f"  step {event.step_key} failed: {message.strip()}")
+    print_summary(config_path, checks)
+    return 0 if result.success and all(c[2] for c in checks) else 1
+
+
+def print_summary(config_path: str, checks: list[tuple[str, str, bool, str]] | None = None) -> None:
+    from pipelines.resources import PlanningConfigResource, read_table
+
+    config = PlanningConfigResource(path=config_path).config
+    store = Path(config.store.path)
+    if not store.exists():
+        print(f"no store at {store}: nothing has been materialized yet")
+        return
+
+    def count(table: str) -> str:
+        try:
+            return f"{len(read_table(store, table)):,}"
+        except Exception:
+            return "-"
+
+    print()
+    print(f"store:        {store.resolve()}  (one table per asset; query with duckdb)")
+    try:
+        cal = read_table(store, "cycle_calendar").iloc[0]
+        print(f"cycle date:   {cal['cycle_date']:%Y-%m-%d}, {cal['horizon']} {cal['period']}s ahead, "
+              f"history from {cal['history_start']:%Y-%m-%d} ({cal['history_periods']} periods)")
+    except Exception:
+        pass
+    print(f"rows in:      {count('raw_history')} raw history lines, {count('rejected_rows')} rejected, "
+          f"{count('history_corrections')} corrections")
+    print(f"rows out:     {count('share_tables')} shares, {count('parent_forecast')} parent forecast rows, "
+          f"{count('statistical_forecast')} leaf forecast rows, {count('reconciliation')} reconciliation rows")
+    try:
+        shares = read_table(store, "share_tables")
+        per_class = shares.drop_duplicates(["product", "site"]).groupby("product_class").agg(
+            parents=("product", "size"), fallbacks=("fallback", lambda s: int((s != "none").sum()))
+        )
+        leaves = shares.groupby("product_class").size()
+        print("classes:")
+        for name, row in per_class.iterrows():
+            pc = config.product_classes.get(name)
+            how = f"window {pc.window}, {pc.method}" if pc else "not in config"
+            print(f"  {name:<14} {row['parents']:>4} parents {leaves[name]:>5} children  ({how}; {row['fallbacks']} parents used a fallback)")
+    except Exception:
+        pass
+    if checks is not None:
+        failed = [c for c in checks if not c[2]]
+        print(f"checks:       {len(checks) - len(failed)} passed, {len(failed)} failed")
+        for asset, name, _, severity in failed:
+            print(f"  FAILED {severity:<5} {asset}: {name}")
+    print(f"open the UI:  {UI_COMMAND}")
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(prog="python -m pipelines", description="apportion: the weekly share refresh cycle")
+    sub = parser.add_subparsers(dest="command", required=True)
+    for name, text in (("cycle", "run the whole weekly cycle and print a summary"), ("summary", "summarise the stored cycle")):
+        p = sub.add_parser(name, help=text)
+        p.add_argument("--config", default="", help="planning config (default $APPORTION_CONFIG or config/planning.yaml)")
+    p = sub.add_parser("demo-data", help="regenerate the bundled demo input files")
+    p.add_argument("--out", default="data/demo")
+    p.add_argument("--seed", type=int, default=None)
+    args = parser.parse_args(argv)
+    try:
+        if args.command == "cycle":
+            return run_cycle(args.config)
+        if args.command == "summary":
+            print_summary(args.config)
+            return 0
+        from pipelines import demo_data
+
+        demo_data.main(["--out", args.out] + (["--seed", str(args.seed)] if args.seed is not None else []))
+        return 0
+    except PlanningError as err:
+        print(f"error: {err}", file=sys.stderr)
+        return 2
+
+
+if __name__ == "__main__":
+    sys.exit(main())
