@@ -1,0 +1,50 @@
+# apportion: the two commands a newcomer needs are `make demo` and `make test`.
+PYTHON ?= python3
+VENV := .venv
+BIN := $(VENV)/bin
+export DAGSTER_HOME := $(CURDIR)/.dagster
+export APPORTION_CONFIG ?= config/planning.yaml
+
+.PHONY: demo test ui rebuild summary bench clean
+
+$(BIN)/python:
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+
+$(VENV)/.installed-base: pyproject.toml | $(BIN)/python
+	$(BIN)/python -m pip install --quiet -e .
+	touch $@
+
+$(VENV)/.installed-test: pyproject.toml | $(BIN)/python
+	$(BIN)/python -m pip install --quiet -e '.[test]'
+	touch $@ $(VENV)/.installed-base
+
+$(DAGSTER_HOME)/dagster.yaml:
+	mkdir -p $(DAGSTER_HOME)
+	printf 'telemetry:\n  enabled: false\n' > $@
+
+## make demo: install, run the whole weekly cycle on data/demo, print a summary
+demo: $(VENV)/.installed-base $(DAGSTER_HOME)/dagster.yaml
+	$(BIN)/python -m pipelines cycle --config $(APPORTION_CONFIG)
+
+## make test: install with test extras, run the whole test suite
+test: $(VENV)/.installed-test $(DAGSTER_HOME)/dagster.yaml
+	$(BIN)/python -m pytest
+
+## make ui: the Dagster UI on 127.0.0.1:3000 over the same instance and store
+ui: $(VENV)/.installed-base $(DAGSTER_HOME)/dagster.yaml
+	$(BIN)/dagster dev -m pipelines.definitions -h 127.0.0.1 -p 3000
+
+## make rebuild ASSET=share_tables: rematerialize one asset and everything downstream from the stored upstream tables
+rebuild: $(VENV)/.installed-base $(DAGSTER_HOME)/dagster.yaml
+	$(BIN)/dagster asset materialize -m pipelines.definitions --select '$(ASSET)*'
+
+summary: $(VENV)/.installed-base
+	$(BIN)/python -m pipelines summary --config $(APPORTION_CONFIG)
+
+## make bench LEAVES=10000: time every stage on a synthetic hierarchy
+bench: $(VENV)/.installed-base
+	$(BIN)/python benchmarks/cycle.py --leaves $(or $(LEAVES),10000)
+
+clean:
+	rm -rf var .dagster

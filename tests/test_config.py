@@ -1,0 +1,128 @@
+"""Config errors name the file, the key and the valid choices."""
+
+import datetime as dt
+
+import pytest
+import yaml
+
+from pipelines.calendar import resolve_cycle_date
+from pipelines.config import load_config, parse_config
+from pipelines.errors import ConfigError
+
+MINIMAL = {"product_classes": {"fast": {"window": 8}}}
+
+
+def write(tmp_path, data) -> str:
+    path = tmp_path / "planning.yaml"
+    path.write_text(yaml.safe_dump(data))
+    return str(path)
+
+
+def test_bundled_config_is_valid():
+    config = load_config("config/planning.yaml")
+    assert set(config.product_classes) == {"consumables", "seasonal", "spares"}
+    assert config.calendar.period == "week"
+
+
+def test_config_is_frozen():
+    config = parse_config(MINIMAL)
+    with pytest.raises(Exception):
+        config.calendar = None  # type: ignore[misc]
+
+
+def test_unknown_key_names_file_key_and_valid_keys(tmp_path):
+    path = write(tmp_path, {"product_classes": {"fast": {"window": 8, "windw": 9}}})
+    with pytest.raises(ConfigError) as err:
+        load_config(path)
+    text = str(err.value)
+    assert path in text
+    assert "product_classes.fast.windw" in text
+    assert "unknown key" in text
+    assert "'window'" in text and "'method'" in text and "'fallback_windows'" in text
+
+
+def test_unknown_top_level_section_lists_sections(tmp_path):
+    path = write(tmp_path, {**MINIMAL, "calender": {}})
+    with pytest.raises(ConfigError) as err:
+        load_config(path)
+    assert "calender" in str(err.value)
+    assert "'calendar'" in str(err.value) and "'product_classes'" in str(err.value)
+
+
+def test_wrong_type_names_the_key(tmp_path):
+    path = write(tmp_path, {"product_classes": {"fast": {"window": "twenty"}}})
+    with pytest.raises(ConfigError) as err:
+        load_config(path)
+    assert "product_classes.fast.window" in str(err.value)
+    assert "'twenty'" in str(err.value)
+
+
+def test_bad_choice_lists_the_valid_choices(tmp_path):
+    path = write(tmp_path, {"product_classes": {"fast": {"window": 8, "method": "average"}}})
+    with pytest.raises(ConfigError) as err:
+        load_config(path)
+    text = str(err.value)
+    assert "product_classes.fast.method" in text
+    assert "'pooled'" in text and "'mean_of_ratios'" in text
+
+
+def test_bad_model_lists_the_models(tmp_path):
+    path = write(tmp_path, {"product_classes": {"fast": {"window": 8, "models": {"smooth": "prophet"}}}})
+    with pytest.raises(ConfigError) as err:
+        load_config(path)
+    assert "product_classes.fast.models.smooth" in str(err.value)
+    assert "'croston_sba'" in str(err.value)
+
+
+def test_missing_product_classes(tmp_path):
+    with pytest.raises(ConfigError) as err:
+        load_config(write(tmp_path, {"calendar": {"period": "week"}}))
+    assert "product_classes" in str(err.value) and "required" in str(err.value)
+
+
+def test_even_hampel_window_is_refused(tmp_path):
+    path = write(tmp_path, {**MINIMAL, "cleansing": {"outliers": {"window": 12}}})
+    with pytest.raises(ConfigError) as err:
+        load_config(path)
+    assert "cleansing.outliers.window" in str(err.value) and "odd" in str(err.value)
+
+
+def test_fallback_windows_must_grow(tmp_path):
+    path = write(tmp_path, {"product_classes": {"fast": {"window": 26, "fallback_windows": [13]}}})
+    with pytest.raises(ConfigError) as err:
+        load_config(path)
+    assert "product_classes.fast" in str(err.value) and "longer" in str(err.value)
+
+
+def test_window_longer_than_history_names_the_class(tmp_path):
+    config = load_config(write(tmp_path, {"product_classes": {"fast": {"window": 60}, "slow": {"window": 8}}}))
+    config.check_windows_fit(60)  # exactly the history: fine
+    with pytest.raises(ConfigError) as err:
+        config.check_windows_fit(52)
+    text = str(err.value)
+    assert "product_classes.fast.window" in text and "52" in text and str(tmp_path) in text
+
+
+def test_product_class_unknown_to_config(tmp_path):
+    config = load_config(write(tmp_path, MINIMAL))
+    with pytest.raises(ConfigError) as err:
+        config.check_classes_known({"fast", "bulky"}, where="data/products.csv")
+    text = str(err.value)
+    assert "'bulky'" in text and "data/products.csv" in text and "'fast'" in text
+
+
+def test_missing_file_and_bad_yaml(tmp_path):
+    with pytest.raises(ConfigError, match="not found"):
+        load_config(tmp_path / "absent.yaml")
+    bad = tmp_path / "bad.yaml"
+    bad.write_text("product_classes: [unclosed")
+    with pytest.raises(ConfigError, match="not valid YAML"):
+        load_config(bad)
+
+
+def test_cycle_date_must_start_a_period():
+    with pytest.raises(ConfigError, match="does not start a week"):
+        resolve_cycle_date(dt.date(2026, 12, 2), None, "week", "planning.yaml")
+    with pytest.raises(ConfigError, match="does not start a month"):
+        resolve_cycle_date(dt.date(2026, 12, 2), None, "month", "planning.yaml")
+    assert resolve_cycle_date(dt.date(2026, 11, 30), None, "week", "x") == dt.datetime(2026, 11, 30)

@@ -1,0 +1,168 @@
+"""The whole asset graph materialized in-process on the bundled demo data.
+
+These tests exercise the Dagster layer: every asset and check, the DuckDB store,
+rebuilding one asset from stored upstream tables, and a broken input stopping
+the cycle at the matching blocking check with the failing rows in its metadata.
+"""
+
+import shutil
+from pathlib import Path
+
+import dagster as dg
+import numpy as np
+import pandas as pd
+import pytest
+import yaml
+
+from assets.reconciliation import CHECKS as RECONCILIATION_CHECKS
+from pipelines.definitions import ASSETS, build_definitions
+from pipelines.jobs import WEEKLY_CYCLE
+from pipelines.resources import read_table
+
+pytestmark = pytest.mark.graph
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO = ROOT / "data" / "demo"
+
+
+def make_config(tmp: Path, inputs: Path = DEMO, **overrides) -> str:
+    data = yaml.safe_load((ROOT / "config" / "planning.yaml").read_text())
+    data["inputs"]["folder"] = str(inputs)
+    data["store"]["path"] = str(tmp / "store.duckdb")
+    for key, value in overrides.items():
+        data[key] = value
+    path = tmp / "planning.yaml"
+    path.write_text(yaml.safe_dump(data))
+    return str(path)
+
+
+def run_cycle(config_path: str) -> dg.ExecuteInProcessResult:
+    defs = build_definitions(config_path)
+    return defs.resolve_job_def(WEEKLY_CYCLE).execute_in_process(instance=dg.DagsterInstance.ephemeral(), raise_on_error=False)
+
+
+def checks_of(result: dg.ExecuteInProcessResult) -> dict[str, dg.AssetCheckEvaluation]:
+    return {f"{e.asset_key.to_user_string()}:{e.check_name}": e for e in result.get_asset_check_evaluations()}
+
+
+@pytest.fixture(scope="module")
+def demo_cycle(tmp_path_factory):
+    tmp = tmp_path_factory.mktemp("demo_cycle")
+    config = make_config(tmp)
+    result = run_cycle(config)
+    return result, tmp / "store.duckdb", config
+
+
+def test_demo_cycle_succeeds_and_every_check_passes(demo_cycle):
+    result, _, _ = demo_cycle
+    assert result.success
+    checks = checks_of(result)
+    failed = [k for k, e in checks.items() if not e.passed]
+    assert failed == []
+    # every asset has its schema check, and the reconciliation carries the five rule checks
+    for key in dg.AssetSelection.all().resolve(ASSETS):
+        name = key.to_user_string()
+        assert f"{name}:{name}_matches_schema" in checks
+    for name in RECONCILIATION_CHECKS:
+        assert f"reconciliation:{name}" in checks
+
+
+def test_every_asset_lands_as_a_table_named_like_it(demo_cycle):
+    _, store, _ = demo_cycle
+    for key in dg.AssetSelection.all().resolve(ASSETS):
+        table = read_table(store, key.to_user_string())
+        assert isinstance(table, pd.DataFrame)
+    assert len(read_table(store, "statistical_forecast")) > 0
+
+
+def test_volume_is_conserved_from_parent_to_leaf(demo_cycle):
+    _, store, _ = demo_cycle
+    parent = read_table(store, "parent_forecast").groupby("period_start")["forecast"].sum()
+    leaf = read_table(store, "statistical_forecast").groupby("period_start")["forecast"].sum()
+    assert len(parent) == 26
+    np.testing.assert_allclose(leaf.sort_index().to_numpy(), parent.sort_index().to_numpy(), rtol=1e-12)
+
+
+def test_every_raw_line_is_used_or_rejected(demo_cycle):
+    _, store, _ = demo_cycle
+    raw = read_table(store, "raw_history")
+    cleaned = read_table(store, "cleaned_history")
+    rejected = read_table(store, "rejected_rows")
+    assert len(raw) == int(cleaned["lines"].sum()) + len(rejected)
+    # the five bad lines planted in the demo, one per reason (data/demo/README.md)
+    assert sorted(rejected["reason"]) == sorted(["missing_key", "bad_date", "bad_quantity", "unknown_product", "no_customer_span"])
+
+
+def test_demo_lifecycle_cases_reach_the_share_table(demo_cycle):
+    _, store, _ = demo_cycle
+    shares = read_table(store, "share_tables")
+    audit = read_table(store, "lifecycle_audit")
+    history = read_table(store, "lifecycle_history")
+    leaf = read_table(store, "statistical_forecast")
+    # phased-out customer FITT-001/SITE-SOUTH/C0007 gets no share and no forecast
+    out = (shares["product"] == "FITT-001") & (shares["site"] == "SITE-SOUTH") & (shares["customer"] == "C0007")
+    assert not out.any()
+    assert ((leaf["product"] == "FITT-001") & (leaf["customer"] == "C0007") & (leaf["site"] == "SITE-SOUTH")).sum() == 0
+    assert {"outside_active_span", "phased_out_before_cycle"} <= set(audit["rule"])
+    # retired TIMR-003 has no share; its history now sits on successor TIMR-004
+    assert not (shares["product"] == "TIMR-003").any()
+    mapped = history[(history["origin"] == "successor")]
+    assert set(mapped["source_product"]) == {"TIMR-003"} and set(mapped["product"]) == {"TIMR-004"}
+    # new customer C0049 on DRIP-002/SITE-NORTH takes reference C0001's earlier history
+    copied = history[(history["origin"] == "reference") & (history["customer"] == "C0049")]
+    assert len(copied) > 0 and set(copied["source_customer"]) == {"C0001"}
+    new_share = shares[(shares["product"] == "DRIP-002") & (shares["site"] == "SITE-NORTH") & (shares["customer"] == "C0049")]
+    assert new_share["share"].iloc[0] > 0
+
+
+def test_rebuilding_one_asset_reads_the_stored_upstream_tables(demo_cycle):
+    _, store, config = demo_cycle
+    before = read_table(store, "share_tables")
+    defs = build_definitions(config)
+    result = dg.materialize(
+        ASSETS,
+        selection="share_tables",
+        resources=defs.resources,
+        instance=dg.DagsterInstance.ephemeral(),
+    )
+    assert result.success
+    materialized = [e.asset_key.to_user_string() for e in result.get_asset_materialization_events()]
+    assert materialized == ["share_tables"]
+    after = read_table(store, "share_tables")
+    pd.testing.assert_frame_equal(before, after)
+
+
+def test_broken_input_fails_its_blocking_check_with_the_rows(tmp_path):
+    inputs = tmp_path / "inputs"
+    shutil.copytree(DEMO, inputs)
+    spans = pd.read_csv(inputs / "customer_spans.csv", dtype=str, keep_default_na=False)
+    # break one span on purpose: it ends before it starts
+    spans.loc[3, "active_from"] = "2025-06-01"
+    spans.loc[3, "active_to"] = "2025-01-01"
+    spans.to_csv(inputs / "customer_spans.csv", index=False)
+    result = run_cycle(make_config(tmp_path, inputs=inputs))
+
+    check = checks_of(result)["customer_spans:customer_spans_matches_schema"]
+    assert not check.passed
+    assert check.severity == dg.AssetCheckSeverity.ERROR
+    assert check.metadata["failing_row_count"].value == 1
+    sample = check.metadata["failing_rows_sample"].value
+    assert spans.loc[3, "customer"] in sample and "2025-01-01" in sample
+    assert "span_ordered" in check.metadata["failures_by_check"].value
+    # blocking: nothing downstream of the spans was materialized
+    materialized = {e.asset_key.to_user_string() for e in result.get_asset_materialization_events()}
+    assert "customer_spans" in materialized
+    assert not materialized & {"cleaned_history", "share_tables", "statistical_forecast", "reconciliation"}
+
+
+def test_unknown_product_class_stops_the_cycle_with_a_named_error(tmp_path):
+    inputs = tmp_path / "inputs"
+    shutil.copytree(DEMO, inputs)
+    products = pd.read_csv(inputs / "products.csv", dtype=str, keep_default_na=False)
+    products.loc[0, "product_class"] = "bulky"
+    products.to_csv(inputs / "products.csv", index=False)
+    result = run_cycle(make_config(tmp_path, inputs=inputs))
+    assert not result.success
+    failure = next(e for e in result.all_events if e.is_step_failure)
+    message = failure.event_specific_data.error.cause.message
+    assert "'bulky'" in message and "product_classes" in message and "consumables" in message
