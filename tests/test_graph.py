@@ -166,3 +166,29 @@ def test_unknown_product_class_stops_the_cycle_with_a_named_error(tmp_path):
     failure = next(e for e in result.all_events if e.is_step_failure)
     message = failure.event_specific_data.error.cause.message
     assert "'bulky'" in message and "product_classes" in message and "consumables" in message
+
+
+def test_monthly_calendar_runs_the_same_graph(tmp_path):
+    classes = yaml.safe_load((ROOT / "config" / "planning.yaml").read_text())["product_classes"]
+    for name, window in (("consumables", 6), ("seasonal", 12), ("spares", 24)):
+        classes[name]["window"] = window
+        classes[name]["fallback_windows"] = [30]
+    config = make_config(
+        tmp_path,
+        calendar={"period": "month", "cycle_date": "2026-11-01", "horizon": 6},
+        product_classes=classes,
+        cleansing={"outliers": {"rule": "hampel", "window": 7, "k": 5.0}},
+    )
+    result = run_cycle(config)
+    assert result.success
+    assert all(e.passed for e in result.get_asset_check_evaluations())
+    store = tmp_path / "store.duckdb"
+    cleaned = read_table(store, "cleaned_history")
+    assert (cleaned["period_start"].dt.day == 1).all()
+    forecast = read_table(store, "parent_forecast")
+    assert sorted(forecast["period_start"].dt.strftime("%Y-%m").unique()) == ["2026-11", "2026-12", "2027-01", "2027-02", "2027-03", "2027-04"]
+    # an explicit cycle date of 2026-11-01 leaves November's lines out of the history, as rejected rows
+    rejected = read_table(store, "rejected_rows")
+    late = rejected[rejected["reason"] == "on_or_after_cycle_date"]
+    assert len(late) > 1000 and (pd.to_datetime(late["period_start"]) >= "2026-11-01").all()
+    assert cleaned["period_start"].max() == pd.Timestamp("2026-10-01")
