@@ -52,6 +52,8 @@ def run_cycle(config_path: str) -> int:
 
 
 def print_summary(config_path: str, checks: list[tuple[str, str, bool, str]] | None = None) -> None:
+    import duckdb
+
     from pipelines.resources import PlanningConfigResource, read_table
 
     config = PlanningConfigResource(path=config_path).config
@@ -60,37 +62,37 @@ def print_summary(config_path: str, checks: list[tuple[str, str, bool, str]] | N
         print(f"no store at {store}: nothing has been materialized yet")
         return
 
-    def count(table: str) -> str:
+    def table(name: str):
         try:
-            return f"{len(read_table(store, table)):,}"
-        except Exception:
-            return "-"
+            return read_table(store, name)
+        except duckdb.CatalogException:  # the run stopped before this asset
+            return None
+
+    def count(name: str) -> str:
+        frame = table(name)
+        return "-" if frame is None else f"{len(frame):,}"
 
     print()
     print(f"store:        {store.resolve()}  (one table per asset; query with duckdb)")
-    try:
-        cal = read_table(store, "cycle_calendar").iloc[0]
-        print(f"cycle date:   {cal['cycle_date']:%Y-%m-%d}, {cal['horizon']} {cal['period']}s ahead, "
-              f"history from {cal['history_start']:%Y-%m-%d} ({cal['history_periods']} periods)")
-    except Exception:
-        pass
+    cal = table("cycle_calendar")
+    if cal is not None and len(cal):
+        c = cal.iloc[0]
+        print(f"cycle date:   {c['cycle_date']:%Y-%m-%d}, {c['horizon']} {c['period']}s ahead, "
+              f"history from {c['history_start']:%Y-%m-%d} ({c['history_periods']} periods)")
     print(f"rows in:      {count('raw_history')} raw history lines, {count('rejected_rows')} rejected, "
           f"{count('history_corrections')} corrections")
     print(f"rows out:     {count('share_tables')} shares, {count('parent_forecast')} parent forecast rows, "
           f"{count('statistical_forecast')} leaf forecast rows, {count('reconciliation')} reconciliation rows")
-    try:
-        shares = read_table(store, "share_tables")
-        per_class = shares.drop_duplicates(["product", "site"]).groupby("product_class").agg(
-            parents=("product", "size"), fallbacks=("fallback", lambda s: int((s != "none").sum()))
-        )
-        leaves = shares.groupby("product_class").size()
+    shares = table("share_tables")
+    if shares is not None and len(shares):
+        parents = shares.drop_duplicates(["product", "site"])
         print("classes:")
-        for name, row in per_class.iterrows():
+        for name, group in shares.groupby("product_class"):
             pc = config.product_classes.get(name)
             how = f"window {pc.window}, {pc.method}" if pc else "not in config"
-            print(f"  {name:<14} {row['parents']:>4} parents {leaves[name]:>5} children  ({how}; {row['fallbacks']} parents used a fallback)")
-    except Exception:
-        pass
+            p = parents[parents["product_class"] == name]
+            fallbacks = int((p["fallback"] != "none").sum())
+            print(f"  {name:<14} {len(p):>4} parents {len(group):>5} children  ({how}; {fallbacks} parents used a fallback)")
     if checks is not None:
         failed = [c for c in checks if not c[2]]
         print(f"checks:       {len(checks) - len(failed)} passed, {len(failed)} failed")

@@ -86,6 +86,14 @@ def active_children(spans: pd.DataFrame, products: pd.DataFrame, cycle_date: pd.
     return out
 
 
+def _stack(frames: list[pd.DataFrame], columns: list[str] | None = None) -> pd.DataFrame:
+    """Concatenate the non-empty frames (the first frame, empty or not, if all are empty)."""
+    full = [f for f in frames if len(f)]
+    if not full:
+        return frames[0].iloc[0:0] if frames and columns is None else pd.DataFrame(columns=columns)
+    return pd.concat(full, ignore_index=True)
+
+
 def _audit(rows: pd.DataFrame, rule: str, detail: str | pd.Series) -> pd.DataFrame:
     """Audit rows for `rows` (history lines) grouped by leaf."""
     if rows.empty:
@@ -138,7 +146,7 @@ def apply_lifecycle(
     )
     moved = moved[m_ok]
     audits.append(_audit(moved, "successor_history_mapped", "history of retired product " + moved["source_product"]))
-    h = pd.concat([h[~retired], moved], ignore_index=True)
+    h = _stack([h[~retired], moved])
 
     # 3. customers phased out before the cycle date leave the basis
     pos = lookup(h, LEAF, spans)
@@ -149,10 +157,10 @@ def apply_lifecycle(
     # 4. new customers take their reference customer's earlier history
     copies, copy_audit = _reference_copies(h, spans, s_from, s_to, cycle_ord, config)
     audits.append(copy_audit)
-    h = pd.concat([h, copies], ignore_index=True)
+    h = _stack([h, copies])
 
     h = h[HISTORY_COLUMNS].sort_values(LEAF + ["period_start", "origin", "source_product"], kind="stable")
-    audit = pd.concat([a for a in audits if len(a)] or [pd.DataFrame(columns=AUDIT_COLUMNS)], ignore_index=True)
+    audit = _stack(audits, AUDIT_COLUMNS)
     audit = audit.astype({"periods": np.int64, "quantity": float})
     return LifecycleResult(history=h.reset_index(drop=True), audit=audit.reset_index(drop=True))
 
@@ -188,5 +196,5 @@ def _reference_copies(h, spans, s_from, s_to, cycle_ord, config):
             quantity=0.0,
             detail="reference customer " + without["reference_customer"] + " has no history before this customer's own",
         )
-        audit = pd.concat([audit, extra[AUDIT_COLUMNS]], ignore_index=True)
+        audit = _stack([audit, extra[AUDIT_COLUMNS]], AUDIT_COLUMNS)
     return copies.reset_index(drop=True), audit
