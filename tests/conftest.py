@@ -1,0 +1,116 @@
+"""Shared builders for small hand-made stage inputs.
+
+Each fixture returns a function that turns a few tuples into a frame validated
+against the stage's pandera model, so a test reads as its data and nothing else.
+Dates are ISO strings; `None` is a blank cell.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from pipelines.config import parse_config
+from pipelines.schemas import CleanedHistory, CustomerSpans, LifecycleHistory, Products, RawHistory
+
+
+def _raw_history(rows):
+    """rows: (product, site, customer, period_start, quantity), all text as written."""
+    frame = pd.DataFrame(rows, columns=["product", "site", "customer", "period_start", "quantity"])
+    frame.insert(0, "source_row", np.arange(1, len(frame) + 1))
+    frame.insert(0, "source_file", "history.csv")
+    return RawHistory.validate(frame)
+
+
+def _products(rows):
+    """rows: (product, product_class[, active_from[, active_to[, successor]]])."""
+    full = [tuple(r) + (None,) * (5 - len(r)) for r in rows]
+    frame = pd.DataFrame(full, columns=["product", "product_class", "active_from", "active_to", "successor"])
+    frame["successor"] = frame["successor"].astype(object)
+    return Products.validate(frame)
+
+
+def _spans(rows):
+    """rows: (product, site, customer[, active_from[, active_to[, reference_customer]]])."""
+    full = [tuple(r) + (None,) * (6 - len(r)) for r in rows]
+    frame = pd.DataFrame(full, columns=["product", "site", "customer", "active_from", "active_to", "reference_customer"])
+    frame["reference_customer"] = frame["reference_customer"].astype(object)
+    return CustomerSpans.validate(frame)
+
+
+def _config(classes=None, **sections):
+    """A planning config; `classes` defaults to one class 'a' with a 4-period pooled window."""
+    data = {"product_classes": classes or {"a": {"window": 4}}}
+    data.update(sections)
+    return parse_config(data)
+
+
+def _cleaned(rows):
+    """rows: (product, site, customer, period_start, quantity) as cleaned periods."""
+    frame = pd.DataFrame(rows, columns=["product", "site", "customer", "period_start", "quantity"])
+    frame["period_start"] = pd.to_datetime(frame["period_start"])
+    frame["quantity"] = frame["quantity"].astype(float)
+    frame["raw_quantity"] = frame["quantity"]
+    frame["lines"] = 1
+    frame["filled"] = False
+    frame["corrected"] = False
+    return CleanedHistory.validate(frame)
+
+
+def _history(rows):
+    """rows: (product, site, customer, period_start, quantity[, origin[, source_product[, source_customer]]])."""
+    out = []
+    for r in rows:
+        product, site, customer, start, qty = r[:5]
+        origin = r[5] if len(r) > 5 else "own"
+        source_product = r[6] if len(r) > 6 else product
+        source_customer = r[7] if len(r) > 7 else customer
+        out.append((product, site, customer, start, float(qty), origin, source_product, source_customer))
+    frame = pd.DataFrame(
+        out,
+        columns=["product", "site", "customer", "period_start", "quantity", "origin", "source_product", "source_customer"],
+    )
+    frame["period_start"] = pd.to_datetime(frame["period_start"])
+    return LifecycleHistory.validate(frame)
+
+
+def _children(rows):
+    """rows: (product, site, customer[, product_class]); class defaults to 'a'."""
+    full = [tuple(r) + ("a",) * (4 - len(r)) for r in rows]
+    return pd.DataFrame(full, columns=["product", "site", "customer", "product_class"])
+
+
+@pytest.fixture
+def make_raw():
+    return _raw_history
+
+
+@pytest.fixture
+def make_products():
+    return _products
+
+
+@pytest.fixture
+def make_spans():
+    return _spans
+
+
+@pytest.fixture
+def make_config():
+    return _config
+
+
+@pytest.fixture
+def make_cleaned():
+    return _cleaned
+
+
+@pytest.fixture
+def make_history():
+    return _history
+
+
+@pytest.fixture
+def make_children():
+    return _children

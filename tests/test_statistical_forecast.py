@@ -1,0 +1,255 @@
+"""`statistical_forecast`: series grid, demand classes, and the split to the leaf.
+
+Forecast tests use statsforecast's `croston_classic` for every demand class: it
+smooths the non-zero sizes and the intervals between them with SES at
+alpha = 0.1, starting from the first value, and forecasts size / interval. So a
+constant series forecasts its constant, and the rest can be worked out by hand.
+
+Cycle date 2026-02-02; history weeks 2026-01-05, -12, -19, -26.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from pipelines.calendar import shift_periods
+from pipelines.schemas import ParentForecast, ReinitializedTarget, ShareTable, StatisticalForecast
+from pipelines.stages.statistical_forecast import demand_classes, forecast_cycle, series_grid
+
+CYCLE = pd.Timestamp("2026-02-02")
+WEEKS = ["2026-01-05", "2026-01-12", "2026-01-19", "2026-01-26"]
+H1, H2 = pd.Timestamp("2026-02-02"), pd.Timestamp("2026-02-09")
+CROSTON = {"smooth": "croston_classic", "erratic": "croston_classic", "intermittent": "croston_classic", "lumpy": "croston_classic"}
+
+
+# ------------------------------------------------------------------ series_grid
+
+
+def test_series_grid_starts_at_first_nonzero_fills_zeros_and_sums_duplicates():
+    code = np.array([0, 0, 0, 0, 1, 1])
+    ordinal = np.array([9, 10, 12, 12, 11, 14])
+    qty = np.array([0.0, 2.0, 3.0, 4.0, 5.0, 9.0])
+    grid = series_grid(code, ordinal, qty, n_series=3, end_ord=14)
+    # series 0: the 0 at ordinal 9 comes before its first demand -> starts at 10;
+    #   10: 2, 11: filled 0, 12: 3 + 4 = 7, 13: filled 0
+    # series 1: 11: 5, 12: 0, 13: 0; the 9 at ordinal 14 is not before end_ord 14
+    # series 2: no rows at all
+    assert grid.series.tolist() == [0, 0, 0, 0, 1, 1, 1]
+    assert grid.ordinal.tolist() == [10, 11, 12, 13, 11, 12, 13]
+    assert grid.y.tolist() == [2.0, 0.0, 7.0, 0.0, 5.0, 0.0, 0.0]
+    assert grid.n_series == 3
+
+
+# ------------------------------------------------------------------ demand classes
+
+
+def grid_of(*series):
+    """A grid from plain value lists, one list per series, all ending at the same period."""
+    code, ordinal, qty = [], [], []
+    for i, values in enumerate(series):
+        code += [i] * len(values)
+        ordinal += list(range(100 - len(values), 100))
+        qty += list(values)
+    return series_grid(np.array(code, dtype=np.int64), np.array(ordinal, dtype=np.int64), np.array(qty, dtype=float), len(series), 100)
+
+
+def test_demand_classes_one_series_per_class_and_no_demand():
+    cls, adi, cv2 = demand_classes(
+        grid_of(
+            [10, 10, 12, 8],  # ADI 4/4 = 1; sizes mean 10, var (0+0+4+4)/4 = 2, CV2 2/100 = 0.02
+            [1, 7, 1, 7],  # ADI 1; mean 4, var (9+9+9+9)/4 = 9, CV2 9/16 = 0.5625
+            [4, 0, 4, 0],  # ADI 4/2 = 2; sizes 4, 4 -> CV2 0
+            [1, 0, 7, 0],  # ADI 2; sizes 1, 7: mean 4, var 9, CV2 0.5625
+            [0, 0, 0],  # nothing
+        )
+    )
+    assert cls.tolist() == ["smooth", "erratic", "intermittent", "lumpy", "no_demand"]
+    assert adi[:4].tolist() == pytest.approx([1.0, 1.0, 2.0, 2.0])
+    assert cv2[:4].tolist() == pytest.approx([0.02, 0.5625, 0.0, 0.5625])
+    assert np.isnan(adi[4]) and np.isnan(cv2[4])
+
+
+def test_adi_counts_from_the_first_nonzero_period_to_the_end():
+    cls, adi, _ = demand_classes(grid_of([0, 0, 0, 5, 5, 5, 0]))
+    # leading zeros are not part of the series: from the first 5, 4 periods / 3 non-zero = 1.333
+    assert adi[0] == pytest.approx(4 / 3)
+    assert cls[0] == "intermittent"
+
+
+def test_single_nonzero_period_has_cv2_zero():
+    cls, adi, cv2 = demand_classes(grid_of([5, 0]))
+    # 2 periods / 1 non-zero = ADI 2; one size -> CV2 0
+    assert (adi[0], cv2[0]) == (2.0, 0.0)
+    assert cls[0] == "intermittent"
+
+
+def _adi_series(length, nonzero=25):
+    """`nonzero` fives in `length` periods, starting with a five, zeros spread after it."""
+    values = [5.0] * length
+    for k in range(length - nonzero):
+        values[1 + 3 * k] = 0.0
+    return values
+
+
+def test_adi_cutoff_1_32_below_at_and_above():
+    series = [_adi_series(32), _adi_series(33), _adi_series(34)]
+    assert [sum(v > 0 for v in s) for s in series] == [25, 25, 25]
+    cls, adi, cv2 = demand_classes(grid_of(*series))
+    # ADI 32/25 = 1.28, 33/25 = 1.32, 34/25 = 1.36; constant sizes, CV2 0
+    assert adi.tolist() == pytest.approx([1.28, 1.32, 1.36])
+    assert cv2.tolist() == [0.0, 0.0, 0.0]
+    # below the cut-off is smooth; at and above it, intermittent (smooth needs ADI < 1.32)
+    assert cls.tolist() == ["smooth", "intermittent", "intermittent"]
+
+
+def test_cv2_cutoff_0_49_below_at_and_above():
+    cls, adi, cv2 = demand_classes(grid_of([169, 31], [17, 3], [171, 29]))
+    # sizes a, b: mean (a+b)/2, var ((a-b)/2)^2, CV2 ((a-b)/(a+b))^2
+    # 138/200 = 0.69 -> 0.4761; 14/20 = 0.7 -> 0.49; 142/200 = 0.71 -> 0.5041; ADI 2/2 = 1
+    assert cv2.tolist() == pytest.approx([0.4761, 0.49, 0.5041])
+    assert adi.tolist() == [1.0, 1.0, 1.0]
+    # smooth needs CV2 < 0.49: at the cut-off it is erratic
+    assert cls.tolist() == ["smooth", "erratic", "erratic"]
+
+
+# ------------------------------------------------------------------ forecast_cycle
+
+
+def cfg(make_config, grain="product_site"):
+    return make_config({"a": {"window": 4, "forecast_grain": grain, "models": CROSTON}}, calendar={"horizon": 2})
+
+
+def targets(rows):
+    """rows: (product, site, customer, period_start, target)."""
+    frame = pd.DataFrame(rows, columns=["product", "site", "customer", "period_start", "target"])
+    frame["period_start"] = pd.to_datetime(frame["period_start"])
+    frame["cycle_date"] = CYCLE
+    frame["share"] = 0.5
+    frame["parent_baseline"] = 1.0
+    return ReinitializedTarget.validate(frame[["product", "site", "customer", "period_start", "cycle_date", "target", "share", "parent_baseline"]])
+
+
+def shares(rows):
+    """rows: (product, site, customer, share)."""
+    out = [
+        (p, s, c, CYCLE, "a", share, "pooled", 4, 4, shift_periods(CYCLE, -4, "week"), "none", 0.0, 0.0)
+        for p, s, c, share in rows
+    ]
+    cols = ["product", "site", "customer", "cycle_date", "product_class", "share", "method", "window", "window_used",
+            "window_start", "fallback", "child_volume", "parent_volume"]
+    return ShareTable.validate(pd.DataFrame(out, columns=cols))
+
+
+def constant_history(make_history, per_customer):
+    """per_customer: {customer: weekly quantity} for all four weeks of P1/S1."""
+    return make_history([("P1", "S1", c, w, q) for c, q in per_customer.items() for w in WEEKS])
+
+
+def leaf_values(result, column="forecast"):
+    leaf = result.leaf
+    return {(c, p): v for c, p, v in zip(leaf["customer"], leaf["period_start"], leaf[column])}
+
+
+def test_leaf_is_parent_forecast_times_target_over_sum_of_targets(make_history, make_children, make_config):
+    history = constant_history(make_history, {"C1": 4, "C2": 8})
+    children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
+    tg = targets([("P1", "S1", "C1", H1, 1), ("P1", "S1", "C2", H1, 3), ("P1", "S1", "C1", H2, 2), ("P1", "S1", "C2", H2, 2)])
+    res = forecast_cycle(history, children, tg, shares([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)]), cfg(make_config), CYCLE)
+    ParentForecast.validate(res.parent)
+    StatisticalForecast.validate(res.leaf)
+    # parent history 4 + 8 = 12 every week: smooth, Croston of a constant -> 12
+    assert res.parent["forecast"].tolist() == pytest.approx([12.0, 12.0])
+    assert set(res.parent["demand_class"]) == {"smooth"}
+    assert set(res.parent["model"]) == {"croston_classic"}
+    # week 1: 12 x 1/4 = 3, 12 x 3/4 = 9; week 2: 12 x 2/4 = 6 each
+    assert leaf_values(res) == pytest.approx({("C1", H1): 3.0, ("C2", H1): 9.0, ("C1", H2): 6.0, ("C2", H2): 6.0})
+    assert set(res.leaf["split_basis"]) == {"target"}
+    assert res.leaf["parent_forecast"].tolist() == pytest.approx([12.0] * 4)
+
+
+def test_intermittent_parent_forecast_by_hand_is_split_by_target(make_history, make_children, make_config):
+    history = make_history([("P1", "S1", "C1", WEEKS[0], 4), ("P1", "S1", "C1", WEEKS[2], 6)])
+    children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
+    tg = targets([("P1", "S1", c, h, t) for h in (H1, H2) for c, t in (("C1", 1), ("C2", 4))])
+    res = forecast_cycle(history, children, tg, shares([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)]), cfg(make_config), CYCLE)
+    # parent series 4, 0, 6, 0: ADI 4/2 = 2, sizes 4, 6 -> CV2 1/25 = 0.04 -> intermittent
+    assert set(res.parent["demand_class"]) == {"intermittent"}
+    # sizes 4, 6: SES 4 -> 0.1 x 6 + 0.9 x 4 = 4.2; intervals 1, 2: SES 1 -> 0.1 x 2 + 0.9 x 1 = 1.1
+    # forecast 4.2 / 1.1 = 3.8181...
+    assert res.parent["forecast"].tolist() == pytest.approx([4.2 / 1.1] * 2)
+    # split 1 : 4 -> C1 3.8181 / 5 = 0.7636, C2 3.8181 x 4 / 5 = 3.0545
+    assert leaf_values(res) == pytest.approx(
+        {("C1", H1): 4.2 / 1.1 / 5, ("C2", H1): 4.2 / 1.1 * 4 / 5, ("C1", H2): 4.2 / 1.1 / 5, ("C2", H2): 4.2 / 1.1 * 4 / 5}
+    )
+
+
+def test_parent_whose_targets_are_all_zero_is_split_by_shares(make_history, make_children, make_config):
+    history = constant_history(make_history, {"C1": 4, "C2": 8})
+    children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
+    tg = targets([("P1", "S1", c, h, 0.0) for h in (H1, H2) for c in ("C1", "C2")])
+    res = forecast_cycle(history, children, tg, shares([("P1", "S1", "C1", 0.25), ("P1", "S1", "C2", 0.75)]), cfg(make_config), CYCLE)
+    # targets sum to 0 -> basis is the share: 12 x 0.25 = 3, 12 x 0.75 = 9
+    assert leaf_values(res) == pytest.approx({("C1", H1): 3.0, ("C2", H1): 9.0, ("C1", H2): 3.0, ("C2", H2): 9.0})
+    assert set(res.leaf["split_basis"]) == {"share"}
+
+
+def test_reference_history_is_left_out_of_the_parent_series(make_history, make_children, make_config):
+    history = make_history(
+        [("P1", "S1", "C1", w, q) for w, q in zip(WEEKS, [12, 12, 6, 6])]
+        + [("P1", "S1", "C2", w, 6) for w in WEEKS[2:]]
+        + [("P1", "S1", "C2", w, 12, "reference", "P1", "C1") for w in WEEKS[:2]]
+    )
+    children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
+    tg = targets([("P1", "S1", c, h, 1.0) for h in (H1, H2) for c in ("C1", "C2")])
+    res = forecast_cycle(history, children, tg, shares([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)]), cfg(make_config), CYCLE)
+    # real parent history: 12, 12, 6 + 6, 6 + 6 = 12 every week -> 12
+    # (with the copies: 24, 24, 12, 12 -> 21.72)
+    assert res.parent["forecast"].tolist() == pytest.approx([12.0, 12.0])
+
+
+def test_parent_without_demand_is_forecast_zero(make_history, make_children, make_config):
+    history = make_history([("P1", "S1", "C1", w, 0) for w in WEEKS])
+    children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
+    tg = targets([("P1", "S1", c, h, 0.0) for h in (H1, H2) for c in ("C1", "C2")])
+    res = forecast_cycle(history, children, tg, shares([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)]), cfg(make_config), CYCLE)
+    assert set(res.parent["demand_class"]) == {"no_demand"}
+    assert res.parent["forecast"].tolist() == [0.0, 0.0]
+    assert res.leaf["forecast"].tolist() == [0.0] * 4
+
+
+def test_product_site_customer_parent_is_the_sum_of_its_leaf_forecasts(make_history, make_children, make_config):
+    history = constant_history(make_history, {"C1": 4, "C2": 8})
+    children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
+    # targets 3 : 1 would give 9 and 3; a bottom-up class ignores them
+    tg = targets([("P1", "S1", c, h, t) for h in (H1, H2) for c, t in (("C1", 3), ("C2", 1))])
+    res = forecast_cycle(
+        history, children, tg, shares([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)]), cfg(make_config, "product_site_customer"), CYCLE
+    )
+    # each child forecast on its own: constant 4 -> 4, constant 8 -> 8
+    assert leaf_values(res) == pytest.approx({("C1", H1): 4.0, ("C2", H1): 8.0, ("C1", H2): 4.0, ("C2", H2): 8.0})
+    assert set(res.leaf["split_basis"]) == {"own_forecast"}
+    # parent = 4 + 8 = 12
+    assert res.parent["forecast"].tolist() == pytest.approx([12.0, 12.0])
+    assert set(res.parent["model"]) == {"bottom_up"}
+    assert set(res.parent["forecast_grain"]) == {"product_site_customer"}
+
+
+def test_product_site_customer_series_leave_out_copied_reference_history(make_history, make_children, make_config):
+    # C2 is new: own 8, 8 in the last two weeks; C1's 4, 4 of the first two weeks copied to it
+    history = make_history(
+        [("P1", "S1", "C1", w, 4) for w in WEEKS]
+        + [("P1", "S1", "C2", w, 8) for w in WEEKS[2:]]
+        + [("P1", "S1", "C2", w, 4, "reference", "P1", "C1") for w in WEEKS[:2]]
+    )
+    children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
+    tg = targets([("P1", "S1", c, h, 1.0) for h in (H1, H2) for c in ("C1", "C2")])
+    res = forecast_cycle(
+        history, children, tg, shares([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)]), cfg(make_config, "product_site_customer"), CYCLE
+    )
+    # copied rows feed the share basis only, so C2's series is its own 8, 8 -> 8, and the
+    # parent is 4 + 8 = 12. (Counting the copies: sizes 4, 4, 8, 8 -> SES 4, 4, 4.4, 4.76 ->
+    # 4.76, and C1's first two weeks would be in the parent twice.)
+    assert leaf_values(res)[("C2", H1)] == pytest.approx(8.0)
+    assert res.parent["forecast"].tolist() == pytest.approx([12.0, 12.0])
