@@ -171,7 +171,8 @@ def _reference_copies(h, spans, s_from, s_to, cycle_ord, config):
     new = spans[active & spans["reference_customer"].notna().to_numpy()][LEAF + ["reference_customer"]]
     if new.empty:
         return pd.DataFrame(columns=HISTORY_COLUMNS), pd.DataFrame(columns=AUDIT_COLUMNS)
-    own = h.groupby(LEAF, sort=False)["period_start"].agg(["size", "min"])
+    # distinct periods: a mapped successor row and an own row of one period are one period of history
+    own = h.groupby(LEAF, sort=False)["period_start"].agg(size="nunique", min="min")
     new = new.join(own, on=LEAF)
     new["size"] = new["size"].fillna(0).astype(np.int64)
     new = new[new["size"] < config.lifecycle.min_history_periods]

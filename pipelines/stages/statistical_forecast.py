@@ -8,7 +8,9 @@ Per product class the forecast runs at the class's `forecast_grain`:
   leaf_{j,h} = F_{P,h} x target_{j,h} / sum_k target_{k,h}; where a parent's
   targets sum to 0 (it fell back to an even split) the shares are the basis.
 - `product_site_customer`: one series per child (bottom-up); the parent's
-  forecast is the sum of its children's.
+  forecast is the sum of its children's. Copied reference history is left out
+  here too, so a new customer is not forecast as extra volume on top of its
+  reference's: at either grain, reference history only shapes shares.
 
 Each series gets a demand class (Syntetos, Boylan & Croston 2005, cut-offs
 ADI = 1.32 and CV^2 = 0.49). ADI convention used here: the number of periods
@@ -206,7 +208,7 @@ def forecast_cycle(
     child_leaf_grain = leaf_grain_parent[parent_of_child]
     if child_leaf_grain.any():
         c_code = lookup(history, LEAF, children)
-        okc = (c_code >= 0) & child_leaf_grain[np.clip(c_code, 0, None)]
+        okc = real & (c_code >= 0) & child_leaf_grain[np.clip(c_code, 0, None)]
         c_grid = series_grid(c_code[okc], ords[okc], qty[okc], n_children, cycle_ord)
         c_demand, _, _ = demand_classes(c_grid)
         c_length = np.bincount(c_grid.series, minlength=n_children)
