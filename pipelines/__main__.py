@@ -39,7 +39,9 @@ def run_cycle(config_path: str) -> int:
 
     defs = build_definitions(config_path)
     instance = _instance()
-    result = defs.resolve_job_def(WEEKLY_CYCLE).execute_in_process(instance=instance, raise_on_error=False)
+    # progress at INFO on the console; the full event log stays in the instance (and the UI)
+    run_config = {"loggers": {"console": {"config": {"log_level": "INFO"}}}}
+    result = defs.resolve_job_def(WEEKLY_CYCLE).execute_in_process(run_config=run_config, instance=instance, raise_on_error=False)
     checks = [(e.asset_key.to_user_string(), e.check_name, e.passed, e.severity.value) for e in result.get_asset_check_evaluations()]
     failures = [e for e in result.all_events if e.is_step_failure]
     print(f"run {result.run_id}: {'succeeded' if result.success else 'FAILED'}")
