@@ -19,7 +19,11 @@ CORRECTIONS_EXPLAIN_CHANGES = "corrections_explain_changes"
 @dg.multi_asset(
     group_name="history",
     outs={
-        CLEANED_HISTORY: dg.AssetOut(kinds={"pandas", "duckdb"}, description="One cleaned value per leaf and period, zero-filled inside each series' span."),
+        CLEANED_HISTORY: dg.AssetOut(
+            kinds={"pandas", "duckdb"},
+            description="One cleaned value per leaf and period, zero-filled inside each series' span; "
+            "returns netted, outliers corrected per product class, supply-shortage periods flagged.",
+        ),
         REJECTED_ROWS: dg.AssetOut(kinds={"pandas", "duckdb"}, description="Raw history lines that could not be used, each with its reason."),
         HISTORY_CORRECTIONS: dg.AssetOut(kinds={"pandas", "duckdb"}, description="Every value a cleansing rule changed: before, after, rule, parameters."),
         CYCLE_CALENDAR: dg.AssetOut(kinds={"pandas", "duckdb"}, description="The cycle date, calendar and history range of this cycle."),
@@ -46,9 +50,16 @@ CORRECTIONS_EXPLAIN_CHANGES = "corrections_explain_changes"
     ],
     can_subset=False,
 )
-def cleaned_history(context: dg.AssetExecutionContext, planning: PlanningConfigResource, raw_history: pd.DataFrame, products: pd.DataFrame, customer_spans: pd.DataFrame):
+def cleaned_history(
+    context: dg.AssetExecutionContext,
+    planning: PlanningConfigResource,
+    raw_history: pd.DataFrame,
+    products: pd.DataFrame,
+    customer_spans: pd.DataFrame,
+    shortages: pd.DataFrame,
+):
     config = planning.config
-    result = clean_history(raw_history, products, customer_spans, config)
+    result = clean_history(raw_history, products, customer_spans, config, shortages=shortages)
     cleaned, cleaned_check = validate(result.cleaned, CleanedHistory, CLEANED_HISTORY)
     rejected, rejected_check = validate(result.rejected, RejectedRows, REJECTED_ROWS)
     corrections, corrections_check = validate(result.corrections, HistoryCorrections, HISTORY_CORRECTIONS)
@@ -58,6 +69,14 @@ def cleaned_history(context: dg.AssetExecutionContext, planning: PlanningConfigR
 
     by_reason = rejected.groupby("reason").size().rename("lines").reset_index()
     by_rule = corrections.groupby("rule")["delta"].agg(["size", "sum"]).rename(columns={"size": "rows", "sum": "quantity_moved"}).reset_index()
+    classes = products.drop_duplicates("product").set_index("product")["product_class"]
+    by_rule_and_class = (
+        corrections.assign(product_class=corrections["product"].map(classes))
+        .groupby(["product_class", "rule"])["delta"]
+        .agg(rows="size", quantity_moved="sum")
+        .reset_index()
+    )
+    short = result.shortage_periods
     yield dg.Output(
         cleaned,
         output_name=CLEANED_HISTORY,
@@ -67,6 +86,14 @@ def cleaned_history(context: dg.AssetExecutionContext, planning: PlanningConfigR
             series=int(cleaned.groupby(["product", "site", "customer"]).ngroups),
             filled_periods=int(cleaned["filled"].sum()),
             corrected_periods=int(cleaned["corrected"].sum()),
+            shortage_periods=int(cleaned["shortage"].sum()),
+            shortage_records=len(short),
+            shortage_records_without_series=int((short["children"] == 0).sum()) if len(short) else 0,
+            shortage_rule=config.cleansing.shortages,
+            corrections_by_rule=by_rule,
+            corrections_by_class_and_rule=by_rule_and_class,
+            outlier_rule_by_class=result.outlier_rules,
+            shortages_flagged=short,
             **counts,
         ),
     )
