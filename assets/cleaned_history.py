@@ -1,5 +1,7 @@
 """Assets `cleaned_history`, `rejected_rows`, `history_corrections`, `cycle_calendar`."""
 
+from pathlib import Path
+
 import dagster as dg
 import pandas as pd
 
@@ -14,6 +16,30 @@ HISTORY_CORRECTIONS = "history_corrections"
 CYCLE_CALENDAR = "cycle_calendar"
 EVERY_RAW_ROW_ACCOUNTED = "every_raw_row_accounted"
 CORRECTIONS_EXPLAIN_CHANGES = "corrections_explain_changes"
+REPORT_PICTURE = Path("reports") / "cleansing.png"  # next to the store file
+
+
+def corrections_picture(by_class_and_rule: pd.DataFrame, classes: list[str], shortage_periods: int, path: Path) -> Path:
+    """A small bar chart of the corrections per product class and rule, saved as PNG at `path`."""
+    import matplotlib
+
+    matplotlib.use("Agg")  # no display: files only
+    import matplotlib.pyplot as plt
+
+    table = by_class_and_rule.pivot_table(index="product_class", columns="rule", values="rows", aggfunc="sum", fill_value=0)
+    table = table.reindex(sorted(set(classes) | set(table.index)), fill_value=0)
+    fig, ax = plt.subplots(figsize=(7, 1.2 + 0.4 * max(len(table), 1)), dpi=100)
+    if len(table) and len(table.columns):
+        table.plot.barh(stacked=True, ax=ax, width=0.7)
+        ax.legend(title="rule", fontsize=8, title_fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0))
+    ax.set_xlabel("corrected periods")
+    ax.set_ylabel("")
+    ax.set_title(f"history corrections by class and rule; {shortage_periods} shortage periods flagged", fontsize=9)
+    fig.tight_layout()
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fig.savefig(path)
+    plt.close(fig)
+    return path
 
 
 @dg.multi_asset(
@@ -77,6 +103,12 @@ def cleaned_history(
         .reset_index()
     )
     short = result.shortage_periods
+    picture = corrections_picture(
+        by_rule_and_class,
+        list(result.outlier_rules.get("product_class", [])),
+        int(cleaned["shortage"].sum()),
+        Path(config.store.path).parent / REPORT_PICTURE,
+    )
     yield dg.Output(
         cleaned,
         output_name=CLEANED_HISTORY,
@@ -94,6 +126,7 @@ def cleaned_history(
             corrections_by_class_and_rule=by_rule_and_class,
             outlier_rule_by_class=result.outlier_rules,
             shortages_flagged=short,
+            corrections_picture=dg.MetadataValue.path(str(picture)),
             **counts,
         ),
     )
