@@ -601,6 +601,31 @@ def test_a_high_shortage_period_is_not_capped_either(make_raw, make_config, prod
     assert res.corrections.empty
 
 
+def test_absent_shortages_file_gives_an_empty_table_that_flags_nothing(tmp_path, make_raw, products, spans, config):
+    from pipelines.schemas import Shortages
+    from pipelines.stages.master_data import load_shortages
+
+    frame, files = load_shortages(tmp_path)  # a folder without shortages.csv|parquet
+    assert files == [] and list(frame.columns) == ["product", "site", "period_start"] and frame.empty
+    res = clean_history(_weekly_raw(make_raw, [3, 4]), products, spans, config, shortages=Shortages.validate(frame))
+    assert not res.cleaned["shortage"].any() and res.shortage_periods.empty
+
+
+def test_shortages_file_is_read_and_a_bad_date_fails_its_schema(tmp_path):
+    import pandera.errors
+
+    from pipelines.schemas import Shortages
+    from pipelines.stages.master_data import load_shortages
+
+    (tmp_path / "shortages.csv").write_text("product,site,period_start\nP1,S1,2026-01-21\nP1,S1,2026-02-30\n")
+    frame, files = load_shortages(tmp_path)
+    assert len(files) == 1 and files[0].rows == 2
+    # 30 February is no date: the schema check fails on that row (the asset reports it, blocking)
+    with pytest.raises(pandera.errors.SchemaErrors) as err:
+        Shortages.validate(frame, lazy=True)
+    assert "period_start" in str(err.value.failure_cases["column"].tolist())
+
+
 def test_fill_baseline_puts_each_childs_median_of_its_other_periods(make_raw, make_config, products, spans):
     config = make_config(
         calendar={"cycle_date": "2026-02-09"}, cleansing={"outliers": {"rule": "none", "window": 5}, "shortages": "fill_baseline"}

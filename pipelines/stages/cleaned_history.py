@@ -176,7 +176,7 @@ def _rolling(matrix: np.ndarray, window: int, stats, chunk_cells: int = CHUNK_CE
     n, t = matrix.shape
     out: list[np.ndarray] | None = None
     step = max(1, chunk_cells // max(1, t * window))
-    for lo in range(0, n, step):
+    for lo in range(0, max(n, 1), step):  # an empty matrix still runs once, to shape the outputs
         block = np.pad(matrix[lo : lo + step], ((0, 0), (half, window - 1 - half)), constant_values=np.nan)
         win = np.lib.stride_tricks.sliding_window_view(block, window, axis=1)
         result = stats(win)
@@ -184,7 +184,7 @@ def _rolling(matrix: np.ndarray, window: int, stats, chunk_cells: int = CHUNK_CE
             out = [np.full((n, t), np.nan) for _ in result]
         for o, r in zip(out, result):
             o[lo : lo + step] = r
-    return out if out is not None else []
+    return out
 
 
 def _sorted_quantile(s: np.ndarray, n: np.ndarray, p: float) -> np.ndarray:
@@ -391,9 +391,8 @@ def _shortage_cells(
     columns = PARENT + ["period_start", "children"]
     cells = np.zeros((n, t), dtype=bool)
     if shortages is None or len(shortages) == 0:
-        return cells, pd.DataFrame({c: pd.Series(dtype=object if c in PARENT else None) for c in columns}).astype(
-            {"period_start": "datetime64[ns]", "children": np.int64}
-        )
+        empty = {"product": pd.Series(dtype=object), "site": pd.Series(dtype=object)}
+        return cells, pd.DataFrame(empty | {"period_start": pd.Series(dtype="datetime64[ns]"), "children": pd.Series(dtype=np.int64)})
     dates = pd.to_datetime(shortages["period_start"], errors="coerce")
     records = shortages.loc[dates.notna().to_numpy(), PARENT].astype(str).reset_index(drop=True)
     records["period_start"] = period_start(dates[dates.notna()].reset_index(drop=True), period)
@@ -495,7 +494,10 @@ def clean_history(
                 x = after
 
         if fill and skip.any():
-            base, count = rolling_median(np.where(skip, np.nan, x - s), rule.window)
+            short_rows = np.flatnonzero(skip.any(axis=1))  # only the series a shortage touches
+            base = np.full(x.shape, np.nan)
+            count = np.zeros(x.shape)
+            base[short_rows], count[short_rows] = rolling_median(np.where(skip, np.nan, x - s)[short_rows], rule.window)
             filled = skip & ~np.isnan(base)
             if filled.any():
                 after = np.where(filled, np.clip(base + s, 0.0, None), x)
