@@ -1,5 +1,7 @@
 """Assets `cleaned_history`, `rejected_rows`, `history_corrections`, `cycle_calendar`."""
 
+from pathlib import Path
+
 import dagster as dg
 import pandas as pd
 
@@ -14,12 +16,40 @@ HISTORY_CORRECTIONS = "history_corrections"
 CYCLE_CALENDAR = "cycle_calendar"
 EVERY_RAW_ROW_ACCOUNTED = "every_raw_row_accounted"
 CORRECTIONS_EXPLAIN_CHANGES = "corrections_explain_changes"
+REPORT_PICTURE = Path("reports") / "cleansing.png"  # next to the store file
+
+
+def corrections_picture(by_class_and_rule: pd.DataFrame, classes: list[str], shortage_periods: int, path: Path) -> Path:
+    """A small bar chart of the corrections per product class and rule, saved as PNG at `path`."""
+    import matplotlib
+
+    matplotlib.use("Agg")  # no display: files only
+    import matplotlib.pyplot as plt
+
+    table = by_class_and_rule.pivot_table(index="product_class", columns="rule", values="rows", aggfunc="sum", fill_value=0)
+    table = table.reindex(sorted(set(classes) | set(table.index)), fill_value=0)
+    fig, ax = plt.subplots(figsize=(7, 1.2 + 0.4 * max(len(table), 1)), dpi=100)
+    if len(table) and len(table.columns):
+        table.plot.barh(stacked=True, ax=ax, width=0.7)
+        ax.legend(title="rule", fontsize=8, title_fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0))
+    ax.set_xlabel("corrected periods")
+    ax.set_ylabel("")
+    ax.set_title(f"history corrections by class and rule; {shortage_periods} shortage periods flagged", fontsize=9)
+    fig.tight_layout()
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fig.savefig(path)
+    plt.close(fig)
+    return path
 
 
 @dg.multi_asset(
     group_name="history",
     outs={
-        CLEANED_HISTORY: dg.AssetOut(kinds={"pandas", "duckdb"}, description="One cleaned value per leaf and period, zero-filled inside each series' span."),
+        CLEANED_HISTORY: dg.AssetOut(
+            kinds={"pandas", "duckdb"},
+            description="One cleaned value per leaf and period, zero-filled inside each series' span; "
+            "returns netted, outliers corrected per product class, supply-shortage periods flagged.",
+        ),
         REJECTED_ROWS: dg.AssetOut(kinds={"pandas", "duckdb"}, description="Raw history lines that could not be used, each with its reason."),
         HISTORY_CORRECTIONS: dg.AssetOut(kinds={"pandas", "duckdb"}, description="Every value a cleansing rule changed: before, after, rule, parameters."),
         CYCLE_CALENDAR: dg.AssetOut(kinds={"pandas", "duckdb"}, description="The cycle date, calendar and history range of this cycle."),
@@ -46,9 +76,16 @@ CORRECTIONS_EXPLAIN_CHANGES = "corrections_explain_changes"
     ],
     can_subset=False,
 )
-def cleaned_history(context: dg.AssetExecutionContext, planning: PlanningConfigResource, raw_history: pd.DataFrame, products: pd.DataFrame, customer_spans: pd.DataFrame):
+def cleaned_history(
+    context: dg.AssetExecutionContext,
+    planning: PlanningConfigResource,
+    raw_history: pd.DataFrame,
+    products: pd.DataFrame,
+    customer_spans: pd.DataFrame,
+    shortages: pd.DataFrame,
+):
     config = planning.config
-    result = clean_history(raw_history, products, customer_spans, config)
+    result = clean_history(raw_history, products, customer_spans, config, shortages=shortages)
     cleaned, cleaned_check = validate(result.cleaned, CleanedHistory, CLEANED_HISTORY)
     rejected, rejected_check = validate(result.rejected, RejectedRows, REJECTED_ROWS)
     corrections, corrections_check = validate(result.corrections, HistoryCorrections, HISTORY_CORRECTIONS)
@@ -58,6 +95,20 @@ def cleaned_history(context: dg.AssetExecutionContext, planning: PlanningConfigR
 
     by_reason = rejected.groupby("reason").size().rename("lines").reset_index()
     by_rule = corrections.groupby("rule")["delta"].agg(["size", "sum"]).rename(columns={"size": "rows", "sum": "quantity_moved"}).reset_index()
+    classes = products.drop_duplicates("product").set_index("product")["product_class"]
+    by_rule_and_class = (
+        corrections.assign(product_class=corrections["product"].map(classes))
+        .groupby(["product_class", "rule"])["delta"]
+        .agg(rows="size", quantity_moved="sum")
+        .reset_index()
+    )
+    short = result.shortage_periods
+    picture = corrections_picture(
+        by_rule_and_class,
+        list(result.outlier_rules.get("product_class", [])),
+        int(cleaned["shortage"].sum()),
+        Path(config.store.path).parent / REPORT_PICTURE,
+    )
     yield dg.Output(
         cleaned,
         output_name=CLEANED_HISTORY,
@@ -67,6 +118,15 @@ def cleaned_history(context: dg.AssetExecutionContext, planning: PlanningConfigR
             series=int(cleaned.groupby(["product", "site", "customer"]).ngroups),
             filled_periods=int(cleaned["filled"].sum()),
             corrected_periods=int(cleaned["corrected"].sum()),
+            shortage_periods=int(cleaned["shortage"].sum()),
+            shortage_records=len(short),
+            shortage_records_without_series=int((short["children"] == 0).sum()) if len(short) else 0,
+            shortage_rule=config.cleansing.shortages,
+            corrections_by_rule=by_rule,
+            corrections_by_class_and_rule=by_rule_and_class,
+            outlier_rule_by_class=result.outlier_rules,
+            shortages_flagged=short,
+            corrections_picture=dg.MetadataValue.path(str(picture)),
             **counts,
         ),
     )

@@ -1,16 +1,17 @@
-"""Assets `products`, `customer_spans`, `adjustments`: master data and planner input."""
+"""Assets `products`, `customer_spans`, `adjustments`, `shortages`: master data and planner input."""
 
 import dagster as dg
 import pandas as pd
 
 from assets.common import schema_check_spec, table_metadata, validate
 from pipelines.resources import PlanningConfigResource
-from pipelines.schemas import Adjustments, CustomerSpans, Products
-from pipelines.stages.master_data import load_adjustments, load_customer_spans, load_products
+from pipelines.schemas import Adjustments, CustomerSpans, Products, Shortages
+from pipelines.stages.master_data import load_adjustments, load_customer_spans, load_products, load_shortages
 
 PRODUCTS = "products"
 CUSTOMER_SPANS = "customer_spans"
 ADJUSTMENTS = "adjustments"
+SHORTAGES = "shortages"
 
 
 def _files(files) -> pd.DataFrame:
@@ -68,4 +69,26 @@ def adjustments(context: dg.AssetExecutionContext, planning: PlanningConfigResou
     frame, files = load_adjustments(planning.config.inputs.folder)
     frame, check = validate(frame, Adjustments, ADJUSTMENTS)
     yield dg.Output(frame, metadata=table_metadata(frame, files=_files(files)))
+    yield check
+
+
+@dg.asset(
+    name=SHORTAGES,
+    group_name="master_data",
+    kinds={"pandas", "duckdb"},
+    check_specs=[schema_check_spec(SHORTAGES, Shortages)],
+    description="Recorded supply shortages, one row per product x site and period that was short "
+    "(optional shortages file; empty when absent). cleaned_history flags these periods.",
+)
+def shortages(context: dg.AssetExecutionContext, planning: PlanningConfigResource):
+    frame, files = load_shortages(planning.config.inputs.folder)
+    frame, check = validate(frame, Shortages, SHORTAGES)
+    yield dg.Output(
+        frame,
+        metadata=table_metadata(
+            frame,
+            files=_files(files),
+            parents=int(frame.drop_duplicates(["product", "site"]).shape[0]),
+        ),
+    )
     yield check

@@ -28,10 +28,12 @@ ModelName = Literal[
     "adida",
     "imapa",
 ]
-OutlierRule = Literal["hampel", "none"]
+OutlierRule = Literal["hampel", "tukey", "none"]
 OutlierReplacement = Literal["limit", "median"]
 OutlierSides = Literal["upper", "both"]
+SeasonalAdjust = Literal["auto", "off"]
 ReturnsRule = Literal["net_then_zero"]
+ShortageRule = Literal["exclude", "fill_baseline"]
 LATEST_COMPLETE_PERIOD = "latest_complete_period"
 
 
@@ -60,15 +62,24 @@ class CalendarConfig(Frozen):
 
 
 class OutlierConfig(Frozen):
-    """Hampel filter (Hampel 1974): flag |x - median| > k * 1.4826 * MAD in a centred window."""
+    """The outlier rule over a centred window (pipelines/stages/cleaned_history.py).
+
+    `hampel` (Hampel 1974): flag |x - median| > k * 1.4826 * MAD.
+    `tukey` (Tukey 1977): flag x outside [Q1 - fence * IQR, Q3 + fence * IQR].
+    `none`: no outlier rule.
+    """
 
     rule: OutlierRule = "hampel"
     window: int = Field(13, ge=3, le=105, description="centred window in periods; odd")
-    k: float = Field(3.0, gt=0)
+    k: float = Field(3.0, gt=0, description="hampel: limits at median +/- k * 1.4826 * MAD")
+    fence: float = Field(1.5, gt=0, description="tukey: fences at Q1 - fence * IQR and Q3 + fence * IQR")
     replace_with: OutlierReplacement = "limit"
     # `upper` (default) corrects spikes only: a low value in shipments is more
     # often a supply gap than a demand outlier, and raising it would invent demand.
     sides: OutlierSides = "upper"
+    # `auto`: a class with models.seasonal true is judged on its deseasonalised
+    # series where two full seasons of history exist, so a seasonal peak is not cut.
+    seasonal_adjust: SeasonalAdjust = "auto"
 
     @field_validator("window")
     @classmethod
@@ -81,6 +92,10 @@ class OutlierConfig(Frozen):
 class CleansingConfig(Frozen):
     returns: ReturnsRule = "net_then_zero"
     outliers: OutlierConfig = OutlierConfig()
+    # Periods of a recorded supply shortage (optional shortages input):
+    # `exclude` keeps the values and flags them for the share basis to leave out;
+    # `fill_baseline` replaces them by the child's rolling median of its other periods.
+    shortages: ShortageRule = "exclude"
 
 
 class LifecycleConfig(Frozen):
@@ -116,6 +131,11 @@ class ProductClassConfig(Frozen):
     )
     forecast_grain: ForecastGrain = "product_site"
     models: ModelChoice = ModelChoice()
+    outliers: OutlierConfig | None = Field(
+        None,
+        description="outlier rule of this class; replaces cleansing.outliers as a whole "
+        "(keys left out take their defaults, not the values of cleansing.outliers)",
+    )
 
     @model_validator(mode="after")
     def _fallbacks_grow(self) -> ProductClassConfig:
@@ -132,6 +152,10 @@ class ProductClassConfig(Frozen):
     @property
     def longest_window(self) -> int:
         return max((self.window, *self.fallback_windows))
+
+    def outlier_rule(self, cleansing: CleansingConfig) -> OutlierConfig:
+        """The class's own outlier rule, else the cleansing default."""
+        return self.outliers if self.outliers is not None else cleansing.outliers
 
 
 class PlanningConfig(Frozen):
@@ -188,6 +212,9 @@ def _valid_keys(loc: tuple) -> list[str] | None:
         if field is None:
             return None
         ann = field.annotation
+        models = [a for a in get_args(ann) if isinstance(a, type) and issubclass(a, BaseModel)]
+        if get_origin(ann) is not dict and models:  # `Model | None`: the model's keys
+            ann = models[0]
         if get_origin(ann) is dict:
             ann = get_args(ann)[1]
             if parts:

@@ -4,7 +4,7 @@ import dagster as dg
 
 from assets.cleaned_history import cleaned_history
 from assets.lifecycle_history import lifecycle_history
-from assets.master_data import adjustments, customer_spans, products
+from assets.master_data import adjustments, customer_spans, products, shortages
 from assets.raw_history import raw_history
 from assets.reconciliation import reconciliation
 from assets.reinitialized_target import reinitialized_target
@@ -18,6 +18,7 @@ ASSETS = [
     products,
     customer_spans,
     adjustments,
+    shortages,
     cleaned_history,
     lifecycle_history,
     share_tables,

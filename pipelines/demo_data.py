@@ -43,6 +43,7 @@ FILES = {
     "products": "products.csv",
     "customer_spans": "customer_spans.csv",
     "adjustments": "adjustments.csv",
+    "shortages": "shortages.csv",
 }
 
 
@@ -464,20 +465,58 @@ def _adjustments(rng: np.random.Generator, leaves: pd.DataFrame, mu: np.ndarray)
     return out.sort_values(["measure", "product", "site", "period_start"], kind="mergesort").reset_index(drop=True)
 
 
+# 9. Supply shortages (fixed ids): a site ran short of a product for one week. The
+# shortages file records the product x site and a day of that week; every customer's
+# lines of that week are cut to the same 10-40% of what it would have shipped.
+SHORTAGES = (
+    ("DRIP-001", "SITE-NORTH", "2025-06-18"),  # a Wednesday: any day of the week may be recorded
+    ("FERT-001", "SITE-SOUTH", "2026-04-01"),  # spring, the fertiliser season
+    ("SPRK-001", "SITE-WEST", "2026-06-22"),  # a Monday at the sprinklers' seasonal peak
+)
+
+
+def _plant_shortages(frames: dict[str, pd.DataFrame], planted: pd.DataFrame, seed: int):
+    """Add the shortages table and cut the history lines of each shortage week (case 9).
+
+    Draws from its own generator, `default_rng((seed, 9))`, so every other cell of the
+    scenario stays as `_build` made it.
+    """
+    rng = np.random.default_rng((seed, 9))
+    history = frames["history"].copy()
+    qty = pd.to_numeric(history["quantity"], errors="coerce")
+    dates = pd.to_datetime(history["period_start"], format="ISO8601", errors="coerce")
+    monday = dates - pd.to_timedelta(dates.dt.weekday, unit="D")
+    cases = []
+    for product, site, day in SHORTAGES:  # three fixed records
+        week = pd.Timestamp(day) - pd.Timedelta(days=pd.Timestamp(day).weekday())
+        hit = ((history["product"] == product) & (history["site"] == site) & (monday == week) & (qty > 0)).to_numpy()
+        kept = rng.uniform(0.1, 0.4)
+        cut = np.maximum(1, np.rint(qty[hit].to_numpy() * kept)).astype(np.int64)
+        history.loc[hit, "quantity"] = cut.astype(str)
+        customers = history.loc[hit, "customer"].nunique()
+        cases.append(("shortage", product, site, "", str(week.date()),
+                      f"recorded on {day}; {customers} customers' lines cut to {kept:.0%}: "
+                      f"{int(qty[hit].sum())} -> {int(cut.sum())} units"))
+    shortages = pd.DataFrame(list(SHORTAGES), columns=["product", "site", "period_start"])
+    planted = pd.concat([planted, pd.DataFrame(cases, columns=planted.columns)], ignore_index=True)
+    planted = planted.sort_values(["case", "product", "site", "customer", "period_start"], kind="mergesort")
+    return {**frames, "history": history, "shortages": shortages}, planted.reset_index(drop=True)
+
+
 def generate(seed: int = DEFAULT_SEED) -> dict[str, pd.DataFrame]:
     """The demo scenario's input tables, every cell as text ('' = blank), as written to CSV."""
-    frames, _ = _build(seed)
+    frames, _ = _plant_shortages(*_build(seed), seed)
     return frames
 
 
 def planted_cases(seed: int = DEFAULT_SEED) -> pd.DataFrame:
     """Where each planted special case sits: case, product, site, customer, period_start, detail."""
-    _, planted = _build(seed)
+    _, planted = _plant_shortages(*_build(seed), seed)
     return planted
 
 
 def write(folder: Path, seed: int = DEFAULT_SEED) -> list[Path]:
-    """Write the four input CSV files into `folder`; return their paths."""
+    """Write the input CSV files of `FILES` into `folder`; return their paths."""
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
     frames = generate(seed)

@@ -17,7 +17,7 @@ REJECT_REASONS = (
     "no_customer_span",
     "on_or_after_cycle_date",
 )
-CORRECTION_RULES = ("negative_net_to_zero", "hampel_cap")
+CORRECTION_RULES = ("negative_net_to_zero", "hampel_cap", "tukey_cap", "shortage_fill")
 ORIGINS = ("own", "successor", "reference")
 LIFECYCLE_RULES = (
     "outside_active_span",
@@ -109,6 +109,14 @@ class Adjustments(_Strict):
     value: Series[float] = pa.Field(description="value at product x site grain")
 
 
+class Shortages(_Strict):
+    """Recorded supply shortages: one row per product x site and period that was short."""
+
+    product: Series[str] = pa.Field(str_length={"min_value": 1}, description="product code")
+    site: Series[str] = pa.Field(str_length={"min_value": 1}, description="site code")
+    period_start: Series[DateTime] = pa.Field(description="any day inside the short period")
+
+
 # ----------------------------------------------------------------- history
 class LeafPeriod(LeafKeys):
     period_start: Series[DateTime] = pa.Field(description="start of the calendar period")
@@ -122,6 +130,7 @@ class CleanedHistory(LeafPeriod):
     lines: Series[int] = pa.Field(ge=0, description="raw lines summed into this period")
     filled: Series[bool] = pa.Field(description="period had no line and was filled with zero")
     corrected: Series[bool] = pa.Field(description="a correction changed this period")
+    shortage: Series[bool] = pa.Field(description="a supply shortage is recorded for this product x site and period")
 
     class Config:
         unique = ["product", "site", "customer", "period_start"]

@@ -55,6 +55,7 @@ def _cleaned(rows):
     frame["lines"] = 1
     frame["filled"] = False
     frame["corrected"] = False
+    frame["shortage"] = False
     return CleanedHistory.validate(frame)
 
 

@@ -192,3 +192,82 @@ def test_monthly_calendar_runs_the_same_graph(tmp_path):
     late = rejected[rejected["reason"] == "on_or_after_cycle_date"]
     assert len(late) > 1000 and (pd.to_datetime(late["period_start"]) >= "2026-11-01").all()
     assert cleaned["period_start"].max() == pd.Timestamp("2026-10-01")
+
+
+def test_demo_exercises_every_cleansing_rule(demo_cycle):
+    from pipelines.demo_data import planted_cases
+
+    result, store, _ = demo_cycle
+    corrections = read_table(store, "history_corrections")
+    products = read_table(store, "products").set_index("product")["product_class"]
+    corrections["product_class"] = corrections["product"].map(products)
+    by_class = corrections.groupby("product_class")["rule"].unique().map(set).to_dict()
+    # config/planning.yaml: Hampel by default (consumables), Tukey with seasonal adjustment on the
+    # seasonal class, no outlier rule on spares; returns on consumables (data/demo/README.md, case 5)
+    assert by_class["consumables"] == {"hampel_cap", "negative_net_to_zero"}
+    assert by_class["seasonal"] == {"tukey_cap"}
+    assert "spares" not in by_class
+    # every planted consumables spike (case 4) is corrected
+    planted = planted_cases()
+    spikes = planted[planted["case"] == "outlier"].assign(period_start=lambda f: pd.to_datetime(f["period_start"]))
+    caught = spikes.merge(corrections, on=["product", "site", "customer", "period_start"])
+    assert len(caught) == len(spikes) == 8 and set(caught["rule"]) == {"hampel_cap"}
+    # the three recorded shortages (case 9) flag every child of their product x site that week
+    shortages = read_table(store, "shortages")
+    cleaned = read_table(store, "cleaned_history")
+    assert len(shortages) == 3
+    flagged = cleaned[cleaned["shortage"]]
+    weeks = planted[planted["case"] == "shortage"]
+    assert set(zip(flagged["product"], flagged["site"], flagged["period_start"].dt.strftime("%Y-%m-%d"))) == set(
+        zip(weeks["product"], weeks["site"], weeks["period_start"])
+    )
+    for (product, site, week), g in flagged.groupby(["product", "site", "period_start"]):
+        children = cleaned[(cleaned["product"] == product) & (cleaned["site"] == site) & (cleaned["period_start"] == week)]
+        assert len(g) == len(children) > 0
+    # exclude (the bundled rule): the shortage weeks keep their values, no correction touches them
+    assert not flagged["corrected"].any()
+    # the asset's metadata carries the counts a planner looks at
+    meta = next(
+        e.event_specific_data.materialization.metadata
+        for e in result.get_asset_materialization_events()
+        if e.asset_key.to_user_string() == "cleaned_history"
+    )
+    assert meta["shortage_periods"].value == len(flagged) == 20
+    assert "tukey_cap" in meta["corrections_by_class_and_rule"].value
+
+
+def test_demo_shortages_filled_with_each_childs_baseline():
+    from pipelines.config import parse_config
+    from pipelines.schemas import CustomerSpans, Products, Shortages
+    from pipelines.stages.cleaned_history import clean_history, find_unexplained_changes
+    from pipelines.stages.master_data import load_customer_spans, load_products, load_shortages
+    from pipelines.stages.raw_history import load_raw_history
+
+    data = yaml.safe_load((ROOT / "config" / "planning.yaml").read_text())
+    data["cleansing"]["shortages"] = "fill_baseline"
+    config = parse_config(data)
+    raw, _ = load_raw_history(DEMO)
+    products = Products.validate(load_products(DEMO)[0])
+    spans = CustomerSpans.validate(load_customer_spans(DEMO)[0])
+    shortages = Shortages.validate(load_shortages(DEMO)[0])
+    res = clean_history(raw, products, spans, config, shortages=shortages)
+    fills = res.corrections[res.corrections["rule"] == "shortage_fill"]
+    # one fill per flagged child week (20, data/demo/README.md case 9), each raising the cut value
+    assert len(fills) == int(res.cleaned["shortage"].sum()) == 20
+    assert (fills["delta"] > 0).all()
+    assert find_unexplained_changes(res.cleaned, res.corrections).empty
+    # the sprinklers' shortage sits at their seasonal peak: filled on x - s with s added back
+    sprk = fills[fills["product"] == "SPRK-001"]
+    assert sprk["parameters"].str.contains('"seasonal_adjusted": true').all()
+
+
+def test_cleansing_picture_is_written_next_to_the_store(demo_cycle):
+    result, store, _ = demo_cycle
+    meta = next(
+        e.event_specific_data.materialization.metadata
+        for e in result.get_asset_materialization_events()
+        if e.asset_key.to_user_string() == "cleaned_history"
+    )
+    path = Path(meta["corrections_picture"].value)
+    assert path == store.parent / "reports" / "cleansing.png"
+    assert path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"

@@ -1,4 +1,4 @@
-"""Master data: products, customer spans and planner adjustments.
+"""Master data: products, customer spans, planner adjustments and supply shortages.
 
 Loaded as text with blanks as missing; the stage's pandera model parses the
 dates and numbers, so a bad cell shows up as a failing row of the schema check
@@ -16,6 +16,7 @@ from pipelines.stages.inputs import InputFile, blanks_to_none, find_files, read_
 PRODUCT_COLUMNS = ("product", "product_class", "active_from", "active_to", "successor")
 SPAN_COLUMNS = ("product", "site", "customer", "active_from", "active_to", "reference_customer")
 ADJUSTMENT_COLUMNS = ("measure", "product", "site", "period_start", "value")
+SHORTAGE_COLUMNS = ("product", "site", "period_start")
 
 
 def _load(folder: Path, name: str, columns: tuple[str, ...], required: bool = True) -> tuple[pd.DataFrame, list[InputFile]]:
@@ -38,3 +39,8 @@ def load_customer_spans(folder: Path) -> tuple[pd.DataFrame, list[InputFile]]:
 def load_adjustments(folder: Path) -> tuple[pd.DataFrame, list[InputFile]]:
     """Optional: an absent file gives an empty table."""
     return _load(folder, "adjustments", ADJUSTMENT_COLUMNS, required=False)
+
+
+def load_shortages(folder: Path) -> tuple[pd.DataFrame, list[InputFile]]:
+    """Optional: recorded supply shortages at product x site and period; an absent file gives an empty table."""
+    return _load(folder, "shortages", SHORTAGE_COLUMNS, required=False)
