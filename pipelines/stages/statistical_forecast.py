@@ -66,6 +66,7 @@ from pipelines.calendar import horizon_starts, period_ordinal, season_length
 from pipelines.config import ModelChoice, ModelName, PlanningConfig, TSBConfig
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF, PARENT, factorize, lookup
+from pipelines.stages.intermittent import croston_states
 from pipelines.stages.hierarchy import NEEDS_LEAF, NEEDS_PARENT, NEEDS_RESIDUALS, coherent_forecasts
 
 ADI_CUTOFF = 1.32
@@ -258,7 +259,12 @@ def run_model_groups(
             if fitted:
                 fit_values[rows] = sf.forecast_fitted_values().iloc[:, 3].to_numpy(float)
             if name in ("croston_classic", "croston_sba"):
-                parameters[ids] = f"alpha={CROSTON_ALPHA:g} (fixed by statsforecast)"
+                # the final smoothed size and interval behind the forecast, which the library does not return
+                order = np.sort(ids)
+                size, gap, _ = croston_states(
+                    grid.y[rows], CROSTON_ALPHA, CROSTON_ALPHA, series=np.searchsorted(order, grid.series[rows]), n_series=len(order)
+                )
+                parameters[order] = [f"alpha={CROSTON_ALPHA:g} size={a:.4g} interval={b:.4g}" for a, b in zip(size, gap)]
             elif name == "tsb":
                 t = tsb or TSBConfig()
                 parameters[ids] = f"alpha_d={t.alpha_d:g} alpha_p={t.alpha_p:g}"
