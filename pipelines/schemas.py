@@ -299,7 +299,7 @@ class StrategyChoice(_Strict):
     runner_up: Series[str] = pa.Field(description="next best strategy by leaf-grain WMAPE ('' if none)")
     margin: Series[float] = pa.Field(nullable=True, description="runner-up WMAPE minus the chosen one's (>= 0 for auto)")
     seasonal_naive_wmape: Series[float] = pa.Field(nullable=True, description="leaf-grain WMAPE of seasonal naive")
-    beats_seasonal_naive: Series[bool] = pa.Field(description="chosen WMAPE below the benchmark's")
+    beats_seasonal_naive: Series[bool] = pa.Field(description="chosen WMAPE not above the benchmark's (true where undefined)")
 
     class Config:
         unique = ["product_class"]
