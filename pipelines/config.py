@@ -21,6 +21,7 @@ ShareMethod = Literal["pooled", "mean_of_ratios"]
 ForecastGrain = Literal["product_site", "product_site_customer", "auto"]
 ModelName = Literal[
     "auto_ets",
+    "ets_additive_season",
     "mstl_ets",
     "ses",
     "seasonal_naive",
