@@ -14,6 +14,7 @@ import pandas as pd
 import pytest
 import yaml
 
+from assets.backtest_accuracy import CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE
 from assets.reconciliation import CHECKS as RECONCILIATION_CHECKS
 from pipelines.definitions import ASSETS, build_definitions
 from pipelines.jobs import WEEKLY_CYCLE
@@ -208,7 +209,10 @@ def test_monthly_calendar_runs_the_same_graph(tmp_path):
     )
     result = run_cycle(config)
     assert result.success
-    assert all(e.passed for e in result.get_asset_check_evaluations())
+    # every ERROR check passes; the WARN check on the backtest may fire on 35 months with 2 origins
+    failed = [e.check_name for e in result.get_asset_check_evaluations() if not e.passed]
+    assert set(failed) <= {CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE}
+    assert f"backtest_accuracy:{CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE}" in checks_of(result)
     store = tmp_path / "store.duckdb"
     cleaned = read_table(store, "cleaned_history")
     assert (cleaned["period_start"].dt.day == 1).all()
