@@ -5,13 +5,14 @@ import pandas as pd
 
 from assets.common import schema_check_spec, table_metadata, validate
 from pipelines.resources import PlanningConfigResource
-from pipelines.schemas import ForecastModels, ParentForecast, StatisticalForecast
+from pipelines.schemas import ForecastFittedValues, ForecastModels, ParentForecast, StatisticalForecast
 from pipelines.stages.backtest import choose_strategies
 from pipelines.stages.statistical_forecast import forecast_cycle
 
 PARENT_FORECAST = "parent_forecast"
 STATISTICAL_FORECAST = "statistical_forecast"
 FORECAST_MODELS = "forecast_models"
+FORECAST_FITTED_VALUES = "forecast_fitted_values"
 
 
 @dg.multi_asset(
@@ -20,11 +21,13 @@ FORECAST_MODELS = "forecast_models"
         PARENT_FORECAST: dg.AssetOut(kinds={"pandas", "duckdb", "statsforecast"}, description="Statistical forecast per product x site, with model, demand class and strategy."),
         STATISTICAL_FORECAST: dg.AssetOut(kinds={"pandas", "duckdb"}, description="Statistical forecast at leaf grain, coherent with the parent by the class's strategy."),
         FORECAST_MODELS: dg.AssetOut(kinds={"pandas", "duckdb"}, description="One row per forecast series: grain, demand class, model and the parameters the library exposes."),
+        FORECAST_FITTED_VALUES: dg.AssetOut(kinds={"pandas", "duckdb"}, description="In-sample one-step fitted values behind the residuals of MinT / WLS classes."),
     },
     check_specs=[
         schema_check_spec(PARENT_FORECAST, ParentForecast),
         schema_check_spec(STATISTICAL_FORECAST, StatisticalForecast),
         schema_check_spec(FORECAST_MODELS, ForecastModels),
+        schema_check_spec(FORECAST_FITTED_VALUES, ForecastFittedValues),
     ],
     can_subset=False,
 )
@@ -58,4 +61,6 @@ def statistical_forecast(
     yield dg.Output(leaf, output_name=STATISTICAL_FORECAST, metadata=table_metadata(leaf, split_basis=basis, leaf_total=float(leaf["forecast"].sum())))
     by_model = models_table.groupby(["grain", "product_class", "model"]).size().rename("series").reset_index()
     yield dg.Output(models_table, output_name=FORECAST_MODELS, metadata=table_metadata(models_table, series_by_model=by_model))
-    yield from (parent_check, leaf_check, models_check)
+    fitted, fitted_check = validate(result.fitted, ForecastFittedValues, FORECAST_FITTED_VALUES)
+    yield dg.Output(fitted, output_name=FORECAST_FITTED_VALUES, metadata=table_metadata(fitted, series=int(fitted.drop_duplicates(["grain", "product", "site", "customer"]).shape[0])))
+    yield from (parent_check, leaf_check, models_check, fitted_check)

@@ -273,6 +273,23 @@ class StatisticalForecast(LeafPeriod):
         unique = ["product", "site", "customer", "period_start"]
 
 
+class ForecastFittedValues(_Strict):
+    """In-sample one-step fitted values of the series whose strategy reconciles with residuals (MinT, WLS)."""
+
+    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
+    grain: Series[str] = pa.Field(isin=GRAINS, description="parent or leaf")
+    product_class: Series[str] = pa.Field(description="product class")
+    product: Series[str] = pa.Field(description="product code")
+    site: Series[str] = pa.Field(description="site code")
+    customer: Series[str] = pa.Field(description="customer code ('' for a parent)")
+    period_start: Series[DateTime] = pa.Field(description="history period")
+    actual: Series[float] = pa.Field(ge=0, description="history value (real history, no copied reference rows)")
+    fitted: Series[float] = pa.Field(description="model's one-step fitted value")
+
+    class Config:
+        unique = ["grain", "product", "site", "customer", "period_start"]
+
+
 class BacktestAccuracy(_Strict):
     """Rolling-origin backtest: one accuracy value per product class, strategy, grain and metric."""
 

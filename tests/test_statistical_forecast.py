@@ -341,3 +341,21 @@ def test_forecast_models_table_names_model_and_croston_state(make_history, make_
     assert (row["grain"], row["customer"], row["model"], row["demand_class"]) == ("parent", "", "croston_classic", "intermittent")
     assert row["parameters"] == "alpha=0.1 size=4.2 interval=1.1"
     assert len(models) == 1
+
+
+def test_fitted_values_are_kept_for_the_classes_mint_reconciles(make_history, make_children, make_config):
+    from pipelines.schemas import ForecastFittedValues
+
+    history = constant_history(make_history, {"C1": 4, "C2": 8})
+    children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
+    tg = targets([("P1", "S1", c, h, 1.0) for h in (H1, H2) for c in ("C1", "C2")])
+    sh = shares([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)])
+    res = forecast_cycle(history, children, tg, sh, auto_cfg(make_config), CYCLE, chosen={"a": "wls_var"})
+    fitted = ForecastFittedValues.validate(res.fitted)
+    # parent and two leaves, 4 weeks each; statsforecast's Croston has no fitted value for the first week -> 3 each
+    assert sorted(set(zip(fitted["grain"], fitted["customer"]))) == [("leaf", "C1"), ("leaf", "C2"), ("parent", "")]
+    leaf_c2 = fitted[fitted["customer"] == "C2"]
+    assert leaf_c2["fitted"].tolist() == pytest.approx([8.0, 8.0, 8.0])
+    assert leaf_c2["period_start"].tolist() == [pd.Timestamp(w) for w in WEEKS[1:]]
+    # a top-down class needs no residuals, so nothing is kept
+    assert forecast_cycle(history, children, tg, sh, cfg(make_config), CYCLE).fitted.empty

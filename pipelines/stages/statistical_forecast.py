@@ -62,7 +62,7 @@ import pandas as pd
 from statsforecast import StatsForecast
 from statsforecast import models as sfm
 
-from pipelines.calendar import horizon_starts, period_ordinal, season_length
+from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal, season_length
 from pipelines.config import ModelChoice, ModelName, PlanningConfig, TSBConfig
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF, PARENT, factorize, lookup
@@ -77,6 +77,7 @@ LEAF_COLUMNS = LEAF + ["period_start", "cycle_date", "product_class", "forecast"
 SEASONAL_MODELS = ("auto_ets", "ets_additive_season", "mstl_ets", "seasonal_naive")
 ETS_MODELS = ("auto_ets", "ets_additive_season")
 CROSTON_ALPHA = 0.1  # statsforecast's CrostonClassic and CrostonSBA smooth both series with alpha = 0.1
+FITTED_COLUMNS = ["cycle_date", "grain", "product_class", "product", "site", "customer", "period_start", "actual", "fitted"]
 MODEL_COLUMNS = ["cycle_date", "grain", "product_class", "product", "site", "customer", "demand_class", "adi", "cv2", "model", "parameters"]
 GRAIN_STRATEGY = {"product_site": "top_down", "product_site_customer": "bottom_up"}
 
@@ -87,6 +88,7 @@ class ForecastResult:
     leaf: pd.DataFrame
     negatives_clipped: int
     models: pd.DataFrame | None = None  # one row per forecast series: grain, key, model, parameters
+    fitted: pd.DataFrame | None = None  # in-sample one-step fitted values behind MinT / WLS residuals
 
 
 @dataclass(frozen=True)
@@ -325,6 +327,8 @@ class BaseForecasts:
     parent_res: np.ndarray | None
     leaf_res: np.ndarray | None
     models: pd.DataFrame
+    parent_fitted: np.ndarray | None = None  # aligned with the parent grid's rows (NaN where not fitted)
+    leaf_fitted: np.ndarray | None = None
 
 
 def base_forecasts(
@@ -391,7 +395,7 @@ def base_forecasts(
     )
     return BaseForecasts(
         parent_fc=np.clip(pfc, 0, None), leaf_fc=np.clip(lfc, 0, None), parent_label=plabel, parent_demand=pdemand,
-        negatives=negatives, parent_res=parent_res, leaf_res=leaf_res, models=models,
+        negatives=negatives, parent_res=parent_res, leaf_res=leaf_res, models=models, parent_fitted=pfit, leaf_fitted=lfit,
     )
 
 
@@ -507,12 +511,33 @@ def forecast_cycle(
     )
     models = pd.concat([models.drop(columns="series").reset_index(drop=True), keys], axis=1)
     models.insert(0, "cycle_date", cycle_date)
+    fitted = pd.concat(
+        [_fitted_frame(p_grid, base.parent_fitted, parents.assign(customer=""), "parent", period),
+         _fitted_frame(c_grid, base.leaf_fitted, children, "leaf", period)],
+        ignore_index=True,
+    )
+    fitted.insert(0, "cycle_date", cycle_date)
     return ForecastResult(
         parent=parent_out[PARENT_COLUMNS + ["strategy"]],
         leaf=leaf_out[LEAF_COLUMNS],
         negatives_clipped=base.negatives + reconciled_negatives,
         models=models[MODEL_COLUMNS],
+        fitted=fitted[FITTED_COLUMNS],
     )
+
+
+def _fitted_frame(grid: SeriesGrid, fitted: np.ndarray | None, keys: pd.DataFrame, grain: str, period: str) -> pd.DataFrame:
+    """Long frame of the grid rows that have a fitted value: keys, period_start, actual, fitted."""
+    if fitted is None:
+        fitted = np.full(len(grid.y), np.nan)
+    ok = np.isfinite(fitted)
+    out = keys.iloc[grid.series[ok]][LEAF].reset_index(drop=True)
+    out.insert(0, "grain", grain)
+    out["product_class"] = keys["product_class"].to_numpy()[grid.series[ok]]
+    out["period_start"] = ordinal_to_start(grid.ordinal[ok], period)
+    out["actual"] = grid.y[ok]
+    out["fitted"] = fitted[ok]
+    return out
 
 
 def _subgrid(grid: SeriesGrid, members: np.ndarray) -> SeriesGrid:
