@@ -137,7 +137,6 @@ def run_backtest(
     # sums[name][grain]: (n_classes, 5) running sums of abs error, error, actual, scaled error, scaled cells
     sums = {s: {g: np.zeros((len(classes), len(_SUMS))) for g in ("leaf", "parent")} for s in names}
     driver = "mint_shrink" if any(s in NEEDS_RESIDUALS for s in strategies) else "forecast_proportions"
-    share_lookup = None
     for o in origins:
         origin_date = ordinal_to_start(np.array([o]), period)[0]
         if log:

@@ -66,8 +66,8 @@ from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal,
 from pipelines.config import ModelChoice, ModelName, PlanningConfig, TSBConfig
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF, PARENT, factorize, lookup
-from pipelines.stages.intermittent import croston_states
 from pipelines.stages.hierarchy import NEEDS_LEAF, NEEDS_PARENT, NEEDS_RESIDUALS, coherent_forecasts
+from pipelines.stages.intermittent import croston_states
 
 ADI_CUTOFF = 1.32
 CV2_CUTOFF = 0.49
