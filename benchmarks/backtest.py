@@ -17,6 +17,20 @@ strategy, and the share of it inside statsforecast (every `StatsForecast.fit`,
 `predict` and `forecast` call is wrapped with a timer here, in the benchmark
 only) versus our own code (grids, demand classes, shares, reconciliation,
 accuracy).
+
+Measured on the 2-core project machine (shared, so wall times are upper
+bounds), 156 weeks, 3 origins x 13 weeks:
+
+| leaves | models | backtest s (in library) | cycle forecast s per strategy: top_down / fp / bottom_up / mint / wls |
+| --- | --- | --- | --- |
+| 1,000 | demo | 38.6 (98%) | 1.2 / 9.7 / 9.1 / 12.6 / 12.9 |
+| 10,000 | fast | 12.7 (40%) | 2.0 / 2.9 / 2.8 / 5.1 / 4.5 |
+| 100,000 | fast | 220.6 (42%) | 20.5 / 41.4 / 38.6 / 43.0 / 26.0 |
+
+With the demo's models nearly all the time is statsforecast's (AutoETS about
+25 ms, ETS(A,N,A) about 50 ms a series here); with cheap models our own code
+dominates, mostly string-key lookups (pandas MultiIndex) and the share table
+recomputed at each origin.
 """
 
 from __future__ import annotations
