@@ -17,17 +17,23 @@ from pipelines.errors import ConfigError
 
 PeriodKind = Literal["week", "month"]
 ShareMethod = Literal["pooled", "mean_of_ratios"]
-ForecastGrain = Literal["product_site", "product_site_customer"]
+# `auto`: the backtest picks the strategy per class (pipelines.stages.backtest).
+ForecastGrain = Literal["product_site", "product_site_customer", "auto"]
 ModelName = Literal[
     "auto_ets",
+    "ets_additive_season",
+    "mstl_ets",
     "ses",
     "seasonal_naive",
     "croston_classic",
     "croston_sba",
     "croston_optimized",
+    "tsb",
     "adida",
     "imapa",
 ]
+# How leaf and parent forecasts are made coherent (pipelines.stages.hierarchy).
+Strategy = Literal["top_down", "forecast_proportions", "bottom_up", "mint_shrink", "wls_var"]
 OutlierRule = Literal["hampel", "tukey", "none"]
 OutlierReplacement = Literal["limit", "median"]
 OutlierSides = Literal["upper", "both"]
@@ -107,8 +113,26 @@ class LifecycleConfig(Frozen):
     )
 
 
+class TSBConfig(Frozen):
+    """Smoothing parameters of TSB (Teunter, Syntetos & Babai 2011).
+
+    `alpha_d` smooths the size of a non-zero demand, `alpha_p` the probability
+    that a period has demand (updated every period, so an item that stops
+    selling decays towards 0, unlike Croston).
+    """
+
+    alpha_d: float = Field(0.1, gt=0, le=1, description="smoothing of the demand size")
+    alpha_p: float = Field(0.1, gt=0, le=1, description="smoothing of the demand probability")
+
+
 class ModelChoice(Frozen):
-    """The statsforecast model per demand class (Syntetos, Boylan & Croston 2005)."""
+    """The statsforecast model per demand class (Syntetos, Boylan & Croston 2005).
+
+    Seasonal models (`auto_ets`, `mstl_ets`, `seasonal_naive`) use a season only
+    when `seasonal` is true and the series holds two full seasons; otherwise
+    `auto_ets` and `mstl_ets` run non-seasonal and `seasonal_naive` is the naive
+    forecast.
+    """
 
     smooth: ModelName = "auto_ets"
     erratic: ModelName = "auto_ets"
@@ -119,6 +143,7 @@ class ModelChoice(Frozen):
         description="let ETS and seasonal naive use one season of the calendar (52 weeks or "
         "12 months) where at least two full seasons of history exist",
     )
+    tsb: TSBConfig = TSBConfig()
 
 
 class ProductClassConfig(Frozen):
@@ -158,6 +183,35 @@ class ProductClassConfig(Frozen):
         return self.outliers if self.outliers is not None else cleansing.outliers
 
 
+class BacktestConfig(Frozen):
+    """Rolling-origin backtest (Tashman 2000): `origins` forecast origins, each `horizon` periods ahead.
+
+    The last origin is `horizon` periods before the cycle date, so its whole
+    horizon lies inside history; earlier origins step back `step` periods each.
+    """
+
+    origins: int = Field(4, ge=1, le=52, description="number of forecast origins (k)")
+    horizon: int = Field(13, ge=1, le=104, description="periods forecast from each origin (h)")
+    step: int = Field(13, ge=1, le=104, description="periods between consecutive origins")
+    strategies: tuple[Strategy, ...] = Field(
+        ("top_down", "forecast_proportions", "bottom_up", "mint_shrink", "wls_var"),
+        min_length=1,
+        description="strategies compared; `auto` picks the one with the lowest leaf-grain WMAPE",
+    )
+
+    @field_validator("strategies")
+    @classmethod
+    def _distinct(cls, v: tuple[str, ...]) -> tuple[str, ...]:
+        if len(set(v)) != len(v):
+            raise ValueError(f"list each strategy once (got {list(v)})")
+        return v
+
+    @property
+    def periods_needed(self) -> int:
+        """History periods the earliest origin's horizon reaches back from the cycle date."""
+        return self.horizon + (self.origins - 1) * self.step
+
+
 class PlanningConfig(Frozen):
     inputs: InputsConfig = InputsConfig()
     store: StoreConfig = StoreConfig()
@@ -165,6 +219,7 @@ class PlanningConfig(Frozen):
     cleansing: CleansingConfig = CleansingConfig()
     lifecycle: LifecycleConfig = LifecycleConfig()
     product_classes: dict[str, ProductClassConfig] = Field(min_length=1)
+    backtest: BacktestConfig = BacktestConfig()
     _source: Path = PrivateAttr(Path("<memory>"))
 
     @property
@@ -267,3 +322,4 @@ def load_config(path: Path | str) -> PlanningConfig:
 
 
 VALID_MODELS: tuple[str, ...] = get_args(ModelName)
+VALID_STRATEGIES: tuple[str, ...] = get_args(Strategy)

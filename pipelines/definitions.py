@@ -2,6 +2,7 @@
 
 import dagster as dg
 
+from assets.backtest_accuracy import backtest_accuracy
 from assets.cleaned_history import cleaned_history
 from assets.lifecycle_history import lifecycle_history
 from assets.master_data import adjustments, customer_spans, products, shortages
@@ -23,6 +24,7 @@ ASSETS = [
     lifecycle_history,
     share_tables,
     reinitialized_target,
+    backtest_accuracy,
     statistical_forecast,
     reconciliation,
 ]

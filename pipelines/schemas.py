@@ -5,6 +5,8 @@ validated against its model by a blocking asset check named
 `<asset>_matches_schema`; failing rows go into that check's metadata.
 """
 
+from typing import Optional
+
 import pandas as pd
 import pandera.pandas as pa
 from pandera.typing import DateTime, Series
@@ -29,7 +31,11 @@ LIFECYCLE_RULES = (
 )
 FALLBACKS = ("none", "longer_window", "even")
 DEMAND_CLASSES = ("smooth", "erratic", "intermittent", "lumpy", "no_demand")
-SPLIT_BASES = ("target", "share", "own_forecast")
+SPLIT_BASES = ("target", "share", "own_forecast", "forecast_proportions", "reconciled")
+STRATEGIES = ("top_down", "forecast_proportions", "bottom_up", "mint_shrink", "wls_var")
+BENCHMARK = "seasonal_naive"
+GRAINS = ("leaf", "parent")
+METRICS = ("wmape", "bias", "mase", "fva")
 
 
 class _Strict(pa.DataFrameModel):
@@ -237,10 +243,30 @@ class ParentForecast(_Strict):
     forecast: Series[float] = pa.Field(description="parent forecast")
     model: Series[str] = pa.Field(description="statsforecast model used")
     demand_class: Series[str] = pa.Field(isin=DEMAND_CLASSES, description="Syntetos-Boylan-Croston class")
-    forecast_grain: Series[str] = pa.Field(description="grain the model ran at")
+    forecast_grain: Series[str] = pa.Field(description="grain the model ran at (`both` for split or reconciled strategies)")
+    strategy: Optional[Series[str]] = pa.Field(isin=STRATEGIES, description="how parent and leaf were made coherent")
 
     class Config:
         unique = ["product", "site", "period_start"]
+
+
+class ForecastModels(_Strict):
+    """One row per series the cycle forecast: its grain, demand class, model and parameters."""
+
+    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
+    grain: Series[str] = pa.Field(isin=GRAINS, description="parent (product x site) or leaf (product x site x customer)")
+    product_class: Series[str] = pa.Field(description="product class")
+    product: Series[str] = pa.Field(description="product code")
+    site: Series[str] = pa.Field(description="site code")
+    customer: Series[str] = pa.Field(description="customer code ('' for a parent)")
+    demand_class: Series[str] = pa.Field(isin=DEMAND_CLASSES, description="Syntetos-Boylan-Croston class")
+    adi: Series[float] = pa.Field(nullable=True, description="average inter-demand interval (NaN without demand)")
+    cv2: Series[float] = pa.Field(nullable=True, description="squared coefficient of variation of non-zero sizes")
+    model: Series[str] = pa.Field(description="model label")
+    parameters: Series[str] = pa.Field(description="parameters the library exposes ('' where it does not)")
+
+    class Config:
+        unique = ["grain", "product", "site", "customer"]
 
 
 class StatisticalForecast(LeafPeriod):
@@ -254,6 +280,55 @@ class StatisticalForecast(LeafPeriod):
 
     class Config:
         unique = ["product", "site", "customer", "period_start"]
+
+
+class ForecastFittedValues(_Strict):
+    """In-sample one-step fitted values of the series whose strategy reconciles with residuals (MinT, WLS)."""
+
+    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
+    grain: Series[str] = pa.Field(isin=GRAINS, description="parent or leaf")
+    product_class: Series[str] = pa.Field(description="product class")
+    product: Series[str] = pa.Field(description="product code")
+    site: Series[str] = pa.Field(description="site code")
+    customer: Series[str] = pa.Field(description="customer code ('' for a parent)")
+    period_start: Series[DateTime] = pa.Field(description="history period")
+    actual: Series[float] = pa.Field(ge=0, description="history value (real history, no copied reference rows)")
+    fitted: Series[float] = pa.Field(description="model's one-step fitted value")
+
+    class Config:
+        unique = ["grain", "product", "site", "customer", "period_start"]
+
+
+class BacktestAccuracy(_Strict):
+    """Rolling-origin backtest: one accuracy value per product class, strategy, grain and metric."""
+
+    product_class: Series[str] = pa.Field(description="product class")
+    strategy: Series[str] = pa.Field(isin=STRATEGIES + (BENCHMARK,), description="strategy, or the seasonal naive benchmark")
+    grain: Series[str] = pa.Field(isin=GRAINS, description="grain the accuracy is measured at")
+    metric: Series[str] = pa.Field(isin=METRICS, description="wmape, bias, mase or fva (value added over seasonal naive, WMAPE points)")
+    value: Series[float] = pa.Field(nullable=True, description="the metric's value (NaN where undefined, e.g. no volume)")
+    origins: Series[int] = pa.Field(ge=0, description="forecast origins evaluated")
+    horizon: Series[int] = pa.Field(ge=1, description="periods forecast from each origin")
+    series: Series[int] = pa.Field(ge=0, description="series of this grain in the class")
+
+    class Config:
+        unique = ["product_class", "strategy", "grain", "metric"]
+
+
+class StrategyChoice(_Strict):
+    """Per product class: the strategy in effect, how it was decided and by how much it won."""
+
+    product_class: Series[str] = pa.Field(description="product class")
+    forecast_grain: Series[str] = pa.Field(description="configured forecast_grain")
+    strategy: Series[str] = pa.Field(isin=STRATEGIES, description="strategy the cycle follows")
+    leaf_wmape: Series[float] = pa.Field(nullable=True, description="its leaf-grain backtest WMAPE")
+    runner_up: Series[str] = pa.Field(description="next best strategy by leaf-grain WMAPE ('' if none)")
+    margin: Series[float] = pa.Field(nullable=True, description="runner-up WMAPE minus the chosen one's (>= 0 for auto)")
+    seasonal_naive_wmape: Series[float] = pa.Field(nullable=True, description="leaf-grain WMAPE of seasonal naive")
+    beats_seasonal_naive: Series[bool] = pa.Field(description="chosen WMAPE not above the benchmark's (true where undefined)")
+
+    class Config:
+        unique = ["product_class"]
 
 
 class Reconciliation(_Strict):

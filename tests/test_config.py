@@ -126,3 +126,42 @@ def test_cycle_date_must_start_a_period():
     with pytest.raises(ConfigError, match="does not start a month"):
         resolve_cycle_date(dt.date(2026, 12, 2), None, "month", "planning.yaml")
     assert resolve_cycle_date(dt.date(2026, 11, 30), None, "week", "x") == dt.datetime(2026, 11, 30)
+
+
+def test_backtest_section_defaults_and_auto_grain(tmp_path):
+    config = load_config(write(tmp_path, {"product_classes": {"fast": {"window": 8, "forecast_grain": "auto"}}}))
+    assert config.product_classes["fast"].forecast_grain == "auto"
+    bt = config.backtest
+    assert (bt.origins, bt.horizon, bt.step) == (4, 13, 13)
+    assert bt.strategies == ("top_down", "forecast_proportions", "bottom_up", "mint_shrink", "wls_var")
+    # the earliest origin's horizon starts 13 + 3 x 13 = 52 periods before the cycle date
+    assert bt.periods_needed == 52
+
+
+def test_unknown_strategy_lists_the_strategies(tmp_path):
+    path = write(tmp_path, {**MINIMAL, "backtest": {"strategies": ["top_down", "middle_out"]}})
+    with pytest.raises(ConfigError) as err:
+        load_config(path)
+    text = str(err.value)
+    assert "backtest.strategies" in text and "'mint_shrink'" in text and "'middle_out'" in text
+
+
+def test_strategy_listed_twice_is_refused(tmp_path):
+    path = write(tmp_path, {**MINIMAL, "backtest": {"strategies": ["bottom_up", "bottom_up"]}})
+    with pytest.raises(ConfigError) as err:
+        load_config(path)
+    assert "backtest.strategies" in str(err.value) and "once" in str(err.value)
+
+
+def test_bad_grain_lists_auto(tmp_path):
+    path = write(tmp_path, {"product_classes": {"fast": {"window": 8, "forecast_grain": "region"}}})
+    with pytest.raises(ConfigError) as err:
+        load_config(path)
+    assert "'auto'" in str(err.value) and "'product_site_customer'" in str(err.value)
+
+
+def test_tsb_parameters_are_validated(tmp_path):
+    path = write(tmp_path, {"product_classes": {"fast": {"window": 8, "models": {"tsb": {"alpha_d": 1.5}}}}})
+    with pytest.raises(ConfigError) as err:
+        load_config(path)
+    assert "product_classes.fast.models.tsb.alpha_d" in str(err.value)

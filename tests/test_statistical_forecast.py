@@ -15,7 +15,8 @@ import pandas as pd
 import pytest
 
 from pipelines.calendar import shift_periods
-from pipelines.schemas import ParentForecast, ReinitializedTarget, ShareTable, StatisticalForecast
+from pipelines.errors import ConfigError
+from pipelines.schemas import ForecastModels, ParentForecast, ReinitializedTarget, ShareTable, StatisticalForecast
 from pipelines.stages.statistical_forecast import demand_classes, forecast_cycle, series_grid
 
 CYCLE = pd.Timestamp("2026-02-02")
@@ -253,3 +254,108 @@ def test_product_site_customer_series_leave_out_copied_reference_history(make_hi
     # 4.76, and C1's first two weeks would be in the parent twice.)
     assert leaf_values(res)[("C2", H1)] == pytest.approx(8.0)
     assert res.parent["forecast"].tolist() == pytest.approx([12.0, 12.0])
+
+
+def _series(nonzero_sizes, length):
+    """The sizes in order, the first at period 0, zeros spread after it so the series has `length` periods."""
+    values = [0.0] * length
+    gaps = length - len(nonzero_sizes)
+    slots = [0] + sorted(set(range(1, length)) - set(range(2, 2 + 3 * gaps, 3)))[: len(nonzero_sizes) - 1]
+    for slot, size in zip(slots, nonzero_sizes):
+        values[slot] = float(size)
+    return values
+
+
+def test_both_cut_offs_at_once_the_four_corners():
+    high = [17, 3] * 25  # 50 sizes, mean 10, variance 49 -> CV2 0.49 exactly
+    low = [16, 4] * 25  # mean 10, variance 36 -> CV2 0.36
+    series = [_series(high, 66), _series(low, 66), _series(high, 64), _series(low, 64)]
+    cls, adi, cv2 = demand_classes(grid_of(*series))
+    # ADI 66/50 = 1.32 (on the cut-off) and 64/50 = 1.28 (below it)
+    assert adi.tolist() == pytest.approx([1.32, 1.32, 1.28, 1.28])
+    assert cv2.tolist() == pytest.approx([0.49, 0.36, 0.49, 0.36])
+    # on both cut-offs -> lumpy; on ADI only -> intermittent; on CV2 only -> erratic; neither -> smooth
+    assert cls.tolist() == ["lumpy", "intermittent", "erratic", "smooth"]
+
+
+def test_just_either_side_of_the_adi_cut_off():
+    # 100 demands in 131, 132 and 133 periods: ADI 1.31, 1.32, 1.33
+    cls, adi, _ = demand_classes(grid_of(_series([5] * 100, 131), _series([5] * 100, 132), _series([5] * 100, 133)))
+    assert adi.tolist() == pytest.approx([1.31, 1.32, 1.33])
+    assert cls.tolist() == ["smooth", "intermittent", "intermittent"]
+
+
+# ------------------------------------------------------------------ strategies in the cycle
+
+
+def auto_cfg(make_config, models=CROSTON):
+    return make_config({"a": {"window": 4, "forecast_grain": "auto", "models": models}}, calendar={"horizon": 2})
+
+
+def test_auto_class_follows_forecast_proportions_chosen_by_the_backtest(make_history, make_children, make_config):
+    history = constant_history(make_history, {"C1": 4, "C2": 8})
+    children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
+    # targets 3 : 1 would give 9 and 3; forecast proportions follow the children's own forecasts 4 : 8
+    tg = targets([("P1", "S1", c, h, t) for h in (H1, H2) for c, t in (("C1", 3), ("C2", 1))])
+    res = forecast_cycle(history, children, tg, shares([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)]), auto_cfg(make_config), CYCLE,
+                         chosen={"a": "forecast_proportions"})
+    # parent 12 (Croston of a constant) x 4/12 and x 8/12
+    assert leaf_values(res) == pytest.approx({("C1", H1): 4.0, ("C2", H1): 8.0, ("C1", H2): 4.0, ("C2", H2): 8.0})
+    assert set(res.leaf["split_basis"]) == {"forecast_proportions"}
+    assert set(res.parent["strategy"]) == {"forecast_proportions"} and set(res.parent["forecast_grain"]) == {"both"}
+    ParentForecast.validate(res.parent)
+    StatisticalForecast.validate(res.leaf)
+
+
+def test_auto_class_reconciled_by_mint_stays_coherent(make_history, make_children, make_config):
+    # C1: 4, 6, 4, 6; C2: 8 every week -> parent 12, 14, 12, 14 (smooth). Croston's SES with one alpha is
+    # linear, so these base forecasts are already coherent; what must hold is that the result stays so
+    history = make_history([("P1", "S1", "C1", w, q) for w, q in zip(WEEKS, [4, 6, 4, 6])] + [("P1", "S1", "C2", w, 8) for w in WEEKS])
+    children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
+    tg = targets([("P1", "S1", c, h, 1.0) for h in (H1, H2) for c in ("C1", "C2")])
+    res = forecast_cycle(history, children, tg, shares([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)]), auto_cfg(make_config), CYCLE,
+                         chosen={"a": "mint_shrink"})
+    leaf = res.leaf.groupby("period_start")["forecast"].sum().to_numpy()
+    assert leaf == pytest.approx(res.parent["forecast"].to_numpy(), rel=1e-12)
+    assert set(res.leaf["split_basis"]) == {"reconciled"}
+    assert (res.leaf["forecast"] >= 0).all()
+
+
+def test_auto_class_without_a_backtest_choice_is_a_named_config_error(make_history, make_children, make_config):
+    history = constant_history(make_history, {"C1": 4})
+    children = make_children([("P1", "S1", "C1")])
+    tg = targets([("P1", "S1", "C1", h, 1.0) for h in (H1, H2)])
+    with pytest.raises(ConfigError) as err:
+        forecast_cycle(history, children, tg, shares([("P1", "S1", "C1", 1.0)]), auto_cfg(make_config), CYCLE)
+    assert "product_classes.a.forecast_grain" in str(err.value) and "backtest_accuracy" in str(err.value)
+
+
+def test_forecast_models_table_names_model_and_croston_state(make_history, make_children, make_config):
+    history = make_history([("P1", "S1", "C1", WEEKS[0], 4), ("P1", "S1", "C1", WEEKS[2], 6)])
+    children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
+    tg = targets([("P1", "S1", c, h, 1.0) for h in (H1, H2) for c in ("C1", "C2")])
+    res = forecast_cycle(history, children, tg, shares([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)]), cfg(make_config), CYCLE)
+    models = ForecastModels.validate(res.models)
+    row = models.iloc[0]
+    # one parent series (top-down): sizes 4, 6 -> 4.2; intervals 1, 2 -> 1.1 (see the intermittent test above)
+    assert (row["grain"], row["customer"], row["model"], row["demand_class"]) == ("parent", "", "croston_classic", "intermittent")
+    assert row["parameters"] == "alpha=0.1 size=4.2 interval=1.1"
+    assert len(models) == 1
+
+
+def test_fitted_values_are_kept_for_the_classes_mint_reconciles(make_history, make_children, make_config):
+    from pipelines.schemas import ForecastFittedValues
+
+    history = constant_history(make_history, {"C1": 4, "C2": 8})
+    children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
+    tg = targets([("P1", "S1", c, h, 1.0) for h in (H1, H2) for c in ("C1", "C2")])
+    sh = shares([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)])
+    res = forecast_cycle(history, children, tg, sh, auto_cfg(make_config), CYCLE, chosen={"a": "wls_var"})
+    fitted = ForecastFittedValues.validate(res.fitted)
+    # parent and two leaves, 4 weeks each; statsforecast's Croston has no fitted value for the first week -> 3 each
+    assert sorted(set(zip(fitted["grain"], fitted["customer"]))) == [("leaf", "C1"), ("leaf", "C2"), ("parent", "")]
+    leaf_c2 = fitted[fitted["customer"] == "C2"]
+    assert leaf_c2["fitted"].tolist() == pytest.approx([8.0, 8.0, 8.0])
+    assert leaf_c2["period_start"].tolist() == [pd.Timestamp(w) for w in WEEKS[1:]]
+    # a top-down class needs no residuals, so nothing is kept
+    assert forecast_cycle(history, children, tg, sh, cfg(make_config), CYCLE).fitted.empty

@@ -1,0 +1,217 @@
+"""Stage `backtest_accuracy`: which strategy forecasts each product class best.
+
+Rolling origin (Tashman 2000; Hyndman & Athanasopoulos, FPP 3rd ed., section
+5.10): `backtest.origins` origins, the last `backtest.horizon` periods before
+the cycle date and each earlier one `backtest.step` periods before the next.
+At each origin the history after it is held back; every series is re-classed
+and re-forecast from the history before it with the class's models, at both
+grains, and each strategy of `pipelines.stages.hierarchy` turns the base
+forecasts into coherent parent and leaf forecasts for `horizon` periods:
+
+- `top_down`: the parent forecast split by the class's share table computed
+  at the origin (same method, window and fallbacks as the cycle's);
+- `forecast_proportions`, `bottom_up`, `mint_shrink`, `wls_var` as documented
+  there (MinT's residuals are the in-sample one-step residuals at the origin).
+
+Seasonal naive at each grain (season length 52 weeks / 12 months where a
+series holds one full season, else naive) is the benchmark.
+
+Series are the active children of the cycle and their parents; only real
+history counts (copied reference history shapes shares, it is not demand), and
+a parent's actuals are the sum of its children's, so the two grains agree.
+
+Accuracy per class, strategy and grain, pooled over all series, periods and
+origins (`pipelines.stages.accuracy`): WMAPE, bias, MASE (scaled by each
+series' in-sample naive differences at the origin, seasonal ones for a class
+with `seasonal: true`) and forecast value added over seasonal naive.
+
+Choice (`forecast_grain: auto`): the strategy with the lowest leaf-grain WMAPE,
+the leaf being where the plan is used; a tie goes to the strategy listed first
+in `backtest.strategies`. The margin is the runner-up's WMAPE minus the
+winner's, in WMAPE points.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from pipelines.calendar import ordinal_to_start, period_ordinal, season_length
+from pipelines.config import PlanningConfig
+from pipelines.keys import LEAF, PARENT, factorize, lookup
+from pipelines.schemas import BENCHMARK
+from pipelines.stages.accuracy import mase_scale
+from pipelines.stages.hierarchy import NEEDS_RESIDUALS, coherent_forecasts, parent_sums
+from pipelines.stages.share_tables import compute_shares
+from pipelines.stages.statistical_forecast import GRAIN_STRATEGY, base_forecasts, run_model_groups, series_grid
+
+ACCURACY_COLUMNS = ["product_class", "strategy", "grain", "metric", "value", "origins", "horizon", "series"]
+CHOICE_COLUMNS = ["product_class", "forecast_grain", "strategy", "leaf_wmape", "runner_up", "margin", "seasonal_naive_wmape", "beats_seasonal_naive"]
+_SUMS = ("abs_error", "error", "actual", "scaled", "scaled_cells")
+
+
+@dataclass(frozen=True)
+class BacktestResult:
+    accuracy: pd.DataFrame  # BacktestAccuracy
+    origins: list[pd.Timestamp]  # origins evaluated
+
+
+def origin_ordinals(config: PlanningConfig, cycle_ord: int, first_ord: int) -> list[int]:
+    """Origins (period ordinals), oldest first; an origin with no history before it is left out."""
+    bt = config.backtest
+    last = cycle_ord - bt.horizon
+    wanted = [last - i * bt.step for i in reversed(range(bt.origins))]
+    return [o for o in wanted if o > first_ord]
+
+
+def _dense(code: np.ndarray, ords: np.ndarray, qty: np.ndarray, n: int, start: int, width: int) -> np.ndarray:
+    """(n, width) sums of qty per series for periods start..start+width-1."""
+    inside = (ords >= start) & (ords < start + width)
+    flat = np.bincount(code[inside] * width + (ords[inside] - start), weights=qty[inside], minlength=n * width)
+    return flat.reshape(n, width)
+
+
+def _scales(grid, cls: np.ndarray, config: PlanningConfig) -> np.ndarray:
+    """MASE scale per series: seasonal naive differences for seasonal classes, else naive (Hyndman & Koehler 2006)."""
+    one = mase_scale(grid.series, grid.y, grid.n_series, 1)
+    sl = season_length(config.calendar.period)
+    seasonal = np.isin(cls, [n for n, pc in config.product_classes.items() if pc.models.seasonal])
+    if not seasonal.any():
+        return one
+    m = mase_scale(grid.series, grid.y, grid.n_series, sl)
+    return np.where(seasonal & np.isfinite(m), m, one)
+
+
+def _seasonal_naive(grid, horizon: int, period: str, log, timer) -> np.ndarray:
+    sl = season_length(period)
+    length = np.bincount(grid.series, minlength=grid.n_series)
+    names = np.where(length > 0, "seasonal_naive", "zero").astype(object)
+    season = np.where(length >= sl, sl, 1)
+    run = timer or run_model_groups
+    return np.clip(run(grid, names, season, horizon, log=log).forecast, 0, None)
+
+
+def run_backtest(
+    history: pd.DataFrame,
+    children: pd.DataFrame,
+    config: PlanningConfig,
+    cycle_date: pd.Timestamp,
+    log: Callable[[str], None] | None = None,
+    timer: Callable | None = None,
+) -> BacktestResult:
+    """The accuracy table (class x strategy x grain x metric); see the module docstring.
+
+    history: lifecycle history (all origins); children: the cycle's active
+    children (leaf keys, product_class). `timer` wraps every model-library
+    call (benchmarks only).
+    """
+    period = config.calendar.period
+    bt = config.backtest
+    h = bt.horizon
+    cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
+    children = children.reset_index(drop=True)
+    parent_of_child, parents = factorize(children, PARENT)
+    child_class = children["product_class"].to_numpy()
+    parent_class = child_class[np.unique(parent_of_child, return_index=True)[1]]
+    n_parents, n_children = len(parents), len(children)
+    classes = list(config.product_classes)
+    class_code = {name: i for i, name in enumerate(classes)}
+    p_cls = np.array([class_code[c] for c in parent_class], dtype=np.int64) if n_parents else np.zeros(0, np.int64)
+    c_cls = p_cls[parent_of_child]
+
+    real = (history["origin"] != "reference").to_numpy()
+    c_code = lookup(history, LEAF, children)
+    ok = real & (c_code >= 0)
+    ccode = c_code[ok]
+    pcode = parent_of_child[ccode]
+    ords = period_ordinal(history["period_start"], period)[ok]
+    qty = history["quantity"].to_numpy(float)[ok]
+    first_ord = int(ords.min()) if len(ords) else cycle_ord
+    origins = origin_ordinals(config, cycle_ord, first_ord)
+
+    strategies = list(bt.strategies)
+    names = strategies + [BENCHMARK]
+    # sums[name][grain]: (n_classes, 5) running sums of abs error, error, actual, scaled error, scaled cells
+    sums = {s: {g: np.zeros((len(classes), len(_SUMS))) for g in ("leaf", "parent")} for s in names}
+    driver = "mint_shrink" if any(s in NEEDS_RESIDUALS for s in strategies) else "forecast_proportions"
+    for o in origins:
+        origin_date = ordinal_to_start(np.array([o]), period)[0]
+        if log:
+            log(f"backtest origin {origin_date.date()}")
+        p_grid = series_grid(pcode, ords, qty, n_parents, o)
+        c_grid = series_grid(ccode, ords, qty, n_children, o)
+        base = base_forecasts(p_grid, c_grid, parent_class, child_class, {c: driver for c in classes}, config, h, log, timer)
+        shares = compute_shares(history, children, config, origin_date)
+        share_lookup = lookup(children, LEAF, shares)
+        basis = np.repeat(shares["share"].to_numpy(float)[share_lookup][:, None], h, axis=1)
+        leaf_actual = _dense(ccode, ords, qty, n_children, o, h)
+        parent_actual = parent_sums(leaf_actual, parent_of_child, n_parents)
+        scale = {"leaf": _scales(c_grid, child_class, config), "parent": _scales(p_grid, parent_class, config)}
+        fc = {}
+        for s in strategies:
+            p, l, _, _ = coherent_forecasts(s, base.parent_fc, base.leaf_fc, parent_of_child, basis, base.parent_res, base.leaf_res)
+            fc[s] = {"parent": p, "leaf": l}
+        fc[BENCHMARK] = {"parent": _seasonal_naive(p_grid, h, period, log, timer), "leaf": _seasonal_naive(c_grid, h, period, log, timer)}
+        for s in names:
+            for grain, actual, cls in (("leaf", leaf_actual, c_cls), ("parent", parent_actual, p_cls)):
+                e = fc[s][grain] - actual
+                q = scale[grain][:, None]
+                good = np.isfinite(q) & (q > 0)
+                scaled = np.divide(np.abs(e), q, out=np.zeros_like(e), where=good)
+                per_series = np.stack(
+                    [np.abs(e).sum(1), e.sum(1), actual.sum(1), scaled.sum(1), np.broadcast_to(good, e.shape).sum(1)], axis=1
+                )
+                np.add.at(sums[s][grain], cls, per_series)
+    return BacktestResult(accuracy=_table(sums, classes, c_cls, p_cls, len(origins), h), origins=[ordinal_to_start(np.array([o]), period)[0] for o in origins])
+
+
+def _table(sums, classes, c_cls, p_cls, n_origins: int, h: int) -> pd.DataFrame:
+    rows = []
+    counts = {"leaf": np.bincount(c_cls, minlength=len(classes)), "parent": np.bincount(p_cls, minlength=len(classes))}
+    wmape = {}
+    for s, by_grain in sums.items():
+        for grain, m in by_grain.items():
+            abs_e, err, act, scaled, cells = m.T
+            with np.errstate(invalid="ignore", divide="ignore"):
+                wmape[s, grain] = np.where(act > 0, abs_e / act, np.nan)
+                bias = np.where(act > 0, err / act, np.nan)
+                mase = np.where(cells > 0, scaled / cells, np.nan)
+            for metric, values in (("wmape", wmape[s, grain]), ("bias", bias), ("mase", mase)):
+                rows.append((s, grain, metric, values))
+    for s, grain in list(wmape):
+        rows.append((s, grain, "fva", wmape[BENCHMARK, grain] - wmape[s, grain]))
+    out = []
+    for s, grain, metric, values in rows:
+        for i, name in enumerate(classes):
+            out.append((name, s, grain, metric, float(values[i]), n_origins, h, int(counts[grain][i])))
+    table = pd.DataFrame(out, columns=ACCURACY_COLUMNS)
+    keep = table["series"] > 0  # a class without series in the data has nothing to report
+    return table[keep].reset_index(drop=True)
+
+
+def choose_strategies(accuracy: pd.DataFrame, config: PlanningConfig) -> pd.DataFrame:
+    """Per product class: the strategy in effect (the backtest's winner for `auto`), runner-up and margin.
+
+    Winner: lowest leaf-grain WMAPE among `backtest.strategies`, ties to the
+    one listed first; a class without volume in the backtest takes the first.
+    """
+    leaf = accuracy[(accuracy["grain"] == "leaf") & (accuracy["metric"] == "wmape")]
+    rows = []
+    candidates = list(config.backtest.strategies)
+    for name, pc in config.product_classes.items():
+        mine = leaf[leaf["product_class"] == name].set_index("strategy")["value"]
+        if mine.empty:
+            continue
+        scores = mine.reindex(candidates)
+        ranked = sorted(candidates, key=lambda s: (np.inf if np.isnan(scores[s]) else scores[s], candidates.index(s)))
+        chosen = ranked[0] if pc.forecast_grain == "auto" else GRAIN_STRATEGY[pc.forecast_grain]
+        score = float(mine.get(chosen, np.nan))
+        others = [s for s in ranked if s != chosen]
+        runner = others[0] if others else ""
+        margin = float(scores[runner] - score) if runner else np.nan
+        sn = float(mine.get(BENCHMARK, np.nan))
+        rows.append((name, pc.forecast_grain, chosen, score, runner, margin, sn, not bool(score > sn)))
+    return pd.DataFrame(rows, columns=CHOICE_COLUMNS)
