@@ -108,11 +108,15 @@ def test_demo_lifecycle_cases_reach_the_share_table(demo_cycle):
     assert not (shares["product"] == "TIMR-003").any()
     mapped = history[(history["origin"] == "successor")]
     assert set(mapped["source_product"]) == {"TIMR-003"} and set(mapped["product"]) == {"TIMR-004"}
-    # new customer C0049 on DRIP-002/SITE-NORTH takes reference C0001's earlier history
-    copied = history[(history["origin"] == "reference") & (history["customer"] == "C0049")]
-    assert len(copied) > 0 and set(copied["source_customer"]) == {"C0001"}
-    new_share = shares[(shares["product"] == "DRIP-002") & (shares["site"] == "SITE-NORTH") & (shares["customer"] == "C0049")]
-    assert new_share["share"].iloc[0] > 0
+    # new customer C0049 on DRIP-002/SITE-NORTH takes half of reference C0001's share (scale 0.5, the
+    # config default); no history is copied
+    assert set(history["origin"]) == {"own", "successor"}
+    parent = shares[(shares["product"] == "DRIP-002") & (shares["site"] == "SITE-NORTH")].set_index("customer")
+    assert parent.loc["C0049", "lifecycle_rule"] == "reference" and parent.loc["C0049", "reference_customer"] == "C0001"
+    assert parent.loc["C0001", "history_share"] > 0
+    assert parent.loc["C0049", "share"] == pytest.approx(0.5 * parent.loc["C0001", "history_share"], abs=1e-12)
+    assert parent.loc["C0001", "share"] == pytest.approx(0.5 * parent.loc["C0001", "history_share"], abs=1e-12)
+    assert parent["share"].sum() == pytest.approx(1.0, abs=1e-12)
 
 
 def test_rebuilding_one_asset_reads_the_stored_upstream_tables(demo_cycle):
@@ -178,6 +182,7 @@ def test_monthly_calendar_runs_the_same_graph(tmp_path):
         calendar={"period": "month", "cycle_date": "2026-11-01", "horizon": 6},
         product_classes=classes,
         cleansing={"outliers": {"rule": "hampel", "window": 7, "k": 5.0}},
+        lifecycle={"min_history_periods": 3, "reference_scale": 0.5},  # 3 months, about the weekly 13 weeks
     )
     result = run_cycle(config)
     assert result.success
