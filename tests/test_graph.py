@@ -195,6 +195,28 @@ def test_demo_lifecycle_inside_the_horizon(demo_cycle):
     assert set(shares.loc[shares["product"] == "FILT-003", "last_active_period"]) == {end}
 
 
+def test_planner_metadata_on_share_tables_and_reinitialized_target(demo_cycle):
+    result, _, _ = demo_cycle
+    meta = {e.asset_key.to_user_string(): e.materialization.metadata for e in result.get_asset_materialization_events()}
+    shares = meta["share_tables"]
+    # counts per lifecycle rule: the three new customers of the demo, one each, and the phase-outs
+    rows = [line.strip("|").split("|") for line in shares["children_by_lifecycle_rule"].value.splitlines()[2:]]
+    by_rule = {name.strip(): int(count) for name, count in rows}
+    assert by_rule["reference"] == by_rule["initial_share"] == by_rule["awaiting_history"] == 1
+    # C0003 plus the 18 customers (seed) of FILT-003, which ends inside the horizon
+    assert by_rule["phase_out"] == 19 and by_rule["phase_in"] == 0
+    assert sum(by_rule.values()) == shares["children"].value
+    assert shares["new_customer_count"].value == 3
+    listed = shares["new_customers"].value
+    assert all(c in listed for c in ("C0049", "C0050", "C0051")) and "taken from it" in listed and "initial share 0.15" in listed
+    mix = meta["reinitialized_target"]
+    # C0050 phases in (DRIP-001/SITE-NORTH), C0003 out (FERT-001/SITE-SOUTH), FILT-003 ends at both its sites
+    assert mix["parents_with_mix_change_count"].value == 4
+    text = mix["parents_with_mix_change"].value
+    assert "C0050" in text and "C0003" in text and text.count("FILT-003") == 2
+    assert "product_not_active" in mix["zero_share_periods_by_reason"].value
+
+
 def test_rebuilding_one_asset_reads_the_stored_upstream_tables(demo_cycle):
     _, store, config = demo_cycle
     before = read_table(store, "share_tables")

@@ -9,9 +9,15 @@ from __future__ import annotations
 
 import pandas as pd
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
+from pipelines.keys import LEAF
 from pipelines.schemas import ReinitializedTarget
+from pipelines.stages.lifecycle_history import active_children
+from pipelines.stages.reconciliation import find_shares_not_summing_to_one
 from pipelines.stages.reinitialized_target import parents_with_mix_change, reinitialize_target
+from pipelines.stages.share_tables import compute_shares
 
 CYCLE = pd.Timestamp("2026-02-02")
 AGE = {1: "2026-01-26", 2: "2026-01-19", 3: "2026-01-12", 4: "2026-01-05", 6: "2025-12-22"}
@@ -267,6 +273,15 @@ def test_product_ending_mid_horizon_has_zero_shares_with_reason_after_its_end(
     assert reasons(reinitialize_target(shares, one_week_history(make_history), config, CYCLE)) == [None, None, "no_active_child"]
 
 
+def test_product_launched_mid_horizon_has_shares_only_from_its_start(make_history, make_share_table, make_products, config):
+    products = make_products([("P1", "a", "2026-02-10")])  # from Tue 02-10 -> first week H2
+    shares = make_share_table([("P1", "S1", "C1", 0.5, 4, {"first": H2}), ("P1", "S1", "C2", 0.5, 4, {"first": H2})])
+    target = reinitialize_target(shares, one_week_history(make_history), config, CYCLE, products)
+    # H1: before the product -> 0, 0 with reason; H2, H3: 0.5, 0.5
+    assert by_period(target) == {"C1": [0.0, 0.5, 0.5], "C2": [0.0, 0.5, 0.5]}
+    assert reasons(target) == ["product_not_active", None, None]
+
+
 def test_zero_reasons_for_awaiting_history_and_no_share_among_active(make_history, make_share_table, config):
     shares = make_share_table(
         [
@@ -299,3 +314,73 @@ def test_parents_with_mix_change_lists_when_and_who(make_history, make_share_tab
     assert mix[["product", "first_change", "periods_with_change", "phasing_in", "phasing_out", "zero_periods"]].values.tolist() == [
         ["P1", pd.Timestamp(H3), 1, "", "C3", 0]
     ]
+
+
+# ------------------------------------------------------------------ property (hypothesis)
+# Random spans, products, history and new-customer inputs on up to 3 parents, through the real
+# stages (active_children -> compute_shares -> reinitialize_target): per parent and period the
+# shares sum to 1 or are all 0 with a recorded reason, and no inactive or waiting child holds any.
+
+WEEK = pd.Timedelta(days=7)
+PROPERTY_HORIZON = 5
+
+
+@st.composite
+def lifecycle_inputs(draw):
+    products, spans, history = [], [], []
+    for p in range(draw(st.integers(1, 3))):
+        product = f"P{p + 1}"
+        start = draw(st.one_of(st.none(), st.integers(-3, PROPERTY_HORIZON)))
+        end = draw(st.one_of(st.none(), st.integers(max(start or -3, -1), PROPERTY_HORIZON + 1)))
+        products.append((product, "a", None if start is None else CYCLE + start * WEEK,
+                         None if end is None else CYCLE + end * WEEK + pd.Timedelta(days=6)))
+        customers = [f"C{c + 1}" for c in range(draw(st.integers(1, 5)))]
+        for c in customers:
+            first = draw(st.one_of(st.none(), st.integers(-8, PROPERTY_HORIZON)))
+            last = draw(st.one_of(st.none(), st.integers(max(first if first is not None else -2, -2), PROPERTY_HORIZON + 1)))
+            others = [o for o in customers if o != c]
+            reference = draw(st.one_of(st.none(), st.sampled_from(others))) if others else None
+            scale = draw(st.one_of(st.none(), st.floats(0.05, 1.0)))
+            initial = draw(st.one_of(st.none(), st.floats(0.0, 0.95)))
+            spans.append((product, "S1", c, None if first is None else CYCLE + first * WEEK,
+                          None if last is None else CYCLE + last * WEEK + pd.Timedelta(days=6), reference, scale, initial))
+            for age in range(1, draw(st.integers(0, 6)) + 1):
+                history.append((product, "S1", c, CYCLE - age * WEEK, draw(st.integers(0, 9)),
+                                "own", product, c, draw(st.booleans()) and draw(st.booleans())))
+    method = draw(st.sampled_from(["pooled", "mean_of_ratios"]))
+    return products, spans, history, method
+
+
+def _frame(rows, columns, dates=()):
+    """A stage input built directly (the pandera builders cost ~0.1 s per frame, too slow for many examples)."""
+    frame = pd.DataFrame(rows, columns=columns).astype({c: object for c in columns if c not in dates})
+    for c in dates:
+        frame[c] = pd.to_datetime(frame[c])
+    return frame
+
+
+# the config fixture is a pure builder function, so sharing it across examples is safe
+@settings(max_examples=100, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
+@given(lifecycle_inputs())
+def test_property_shares_sum_to_one_per_parent_and_period_or_are_all_zero_with_a_reason(make_config, case):
+    product_rows, span_rows, history_rows, method = case
+    config = make_config(
+        {"a": {"window": 4, "method": method, "fallback_windows": [6]}},
+        calendar={"horizon": PROPERTY_HORIZON},
+        lifecycle={"min_history_periods": 3},
+    )
+    products = _frame([r + (None,) for r in product_rows], ["product", "product_class", "active_from", "active_to", "successor"], ("active_from", "active_to"))
+    spans = _frame(span_rows, ["product", "site", "customer", "active_from", "active_to", "reference_customer", "scale", "initial_share"], ("active_from", "active_to"))
+    spans[["scale", "initial_share"]] = spans[["scale", "initial_share"]].astype(float)
+    history = _frame(history_rows, ["product", "site", "customer", "period_start", "quantity", "origin", "source_product", "source_customer", "shortage"], ("period_start",))
+    history = history.astype({"quantity": float, "shortage": bool})
+    children = active_children(spans, products, history, config, CYCLE)
+    shares = compute_shares(history, children, config, CYCLE)
+    target = reinitialize_target(shares, history, config, CYCLE, products)
+
+    assert find_shares_not_summing_to_one(target).empty
+    assert len(target) == len(shares) * PROPERTY_HORIZON
+    assert target["share"].between(0, 1).all() and shares["share"].between(0, 1).all()
+    merged = target.merge(shares[LEAF + ["first_active_period", "last_active_period", "lifecycle_rule"]], on=LEAF)
+    inactive = (merged["period_start"] < merged["first_active_period"]) | (merged["period_start"] > merged["last_active_period"])
+    assert (merged.loc[inactive | (merged["lifecycle_rule"] == "awaiting_history"), "share"] == 0).all()

@@ -11,7 +11,7 @@ import pandas as pd
 import pytest
 
 from pipelines.schemas import ShareTable
-from pipelines.stages.share_tables import compute_shares
+from pipelines.stages.share_tables import compute_shares, find_new_customers_without_share, new_customers
 
 CYCLE = pd.Timestamp("2026-02-02")
 AGE = {1: "2026-01-26", 2: "2026-01-19", 3: "2026-01-12", 4: "2026-01-05"}
@@ -270,3 +270,26 @@ def test_shortage_periods_do_not_count_toward_shares(make_history, make_children
     # (with age 1: pooled 0.5625 / 0.4375, mean of ratios 0.5 / 0.5)
     assert by_customer(shares) == pytest.approx({"C1": 0.375, "C2": 0.625})
     assert by_customer(shares, "parent_volume") == pytest.approx({"C1": 8.0, "C2": 8.0})
+
+
+def test_new_customers_are_listed_with_how_their_share_was_set(make_history, make_config):
+    volumes = {"C1": {4: 3, 3: 3, 2: 3, 1: 3}, "C2": {2: 9, 1: 9}, "C4": {1: 4}}
+    children = lifecycle_children(
+        [
+            ("C1", 4, H1, H3, None, None, None),
+            ("C2", 2, H1, H3, "C1", None, None),
+            ("C3", 0, H2, H3, None, None, 0.25),
+            ("C4", 1, H1, H3, None, None, None),
+        ]
+    )
+    shares = compute_shares(make_history(history_rows(volumes)), children, lifecycle_config(make_config), CYCLE)
+    listed = new_customers(shares)
+    # C1 is established; C2 reference (0.5 x 1 = 0.5), C3 initial share 0.25 from H2, C4 waits
+    assert listed[["customer", "lifecycle_rule"]].values.tolist() == [
+        ["C2", "reference"], ["C3", "initial_share"], ["C4", "awaiting_history"],
+    ]
+    # C2 takes 0.5 x C1's history share 1 = 0.5, then C3's 0.25 scales it by 0.75 -> 0.375
+    assert listed["share"].tolist() == pytest.approx([0.375, 0.25, 0.0])
+    waiting = find_new_customers_without_share(shares)
+    assert waiting[["customer", "own_periods"]].values.tolist() == [["C4", 1]]
+    assert "no share until 3 periods" in waiting.loc[0, "lifecycle_detail"]

@@ -216,8 +216,10 @@ def split_shares(
     kept = 1.0 - np.minimum(i_sum, 1.0)  # what the initial shares leave to the others
     with np.errstate(invalid="ignore", divide="ignore"):
         from_weight = np.where(w_sum > 0, weight / w_sum * kept, 0.0)
-        init_scale = np.where(w_sum > 0, np.minimum(i_sum, 1.0) / i_sum, 1.0 / i_sum)
-        from_init = np.where(i_sum > 0, s_init * init_scale, 0.0)
+        # each initial share's part of the initial total (<= 1), times what the total may take:
+        # min(S, 1) beside weighted children, all of it when there are none
+        part = np.where(i_sum > 0, s_init / i_sum, 0.0)
+        from_init = part * np.where(w_sum > 0, np.minimum(i_sum, 1.0), 1.0)
     shares = np.clip(from_weight + from_init, 0.0, 1.0)
     all_zero = (weight_sum <= 0) & (init_sum <= 0)
     return shares, all_zero
