@@ -92,8 +92,16 @@ def validate(df: pd.DataFrame, model: type[pa.DataFrameModel], asset_name: str) 
     )
 
 
-def rule_check(asset_name: str, check_name: str, failing: pd.DataFrame, *, what: str, **extra) -> dg.AssetCheckResult:
-    """An ERROR check result that passes when `failing` is empty; failing rows sampled in metadata."""
+def rule_check(
+    asset_name: str,
+    check_name: str,
+    failing: pd.DataFrame,
+    *,
+    what: str,
+    severity: dg.AssetCheckSeverity = dg.AssetCheckSeverity.ERROR,
+    **extra,
+) -> dg.AssetCheckResult:
+    """A check result (ERROR unless `severity` says WARN) that passes when `failing` is empty; failing rows sampled in metadata."""
     metadata = {
         "failing_count": dg.MetadataValue.int(len(failing)),
         "proves": dg.MetadataValue.text(what),
@@ -106,6 +114,6 @@ def rule_check(asset_name: str, check_name: str, failing: pd.DataFrame, *, what:
         asset_key=asset_name,
         check_name=check_name,
         passed=failing.empty,
-        severity=dg.AssetCheckSeverity.ERROR,
+        severity=severity,
         metadata=metadata,
     )

@@ -15,8 +15,8 @@ LIFECYCLE_AUDIT = "lifecycle_audit"
 @dg.multi_asset(
     group_name="history",
     outs={
-        LIFECYCLE_HISTORY: dg.AssetOut(kinds={"pandas", "duckdb"}, description="History inside active spans, mapped to successors, with reference history for new customers: the share basis."),
-        LIFECYCLE_AUDIT: dg.AssetOut(kinds={"pandas", "duckdb"}, description="What each lifecycle rule dropped, moved or copied, per leaf."),
+        LIFECYCLE_HISTORY: dg.AssetOut(kinds={"pandas", "duckdb"}, description="History inside active spans, phased-out customers left out, retired products mapped to their successors, shortage periods flagged: the share basis."),
+        LIFECYCLE_AUDIT: dg.AssetOut(kinds={"pandas", "duckdb"}, description="What each lifecycle rule dropped or moved, per leaf."),
     },
     check_specs=[schema_check_spec(LIFECYCLE_HISTORY, LifecycleHistory), schema_check_spec(LIFECYCLE_AUDIT, LifecycleAudit)],
     can_subset=False,
@@ -36,6 +36,10 @@ def lifecycle_history(
     audit, audit_check = validate(result.audit, LifecycleAudit, LIFECYCLE_AUDIT)
     by_rule = audit.groupby("rule").agg(leaves=("customer", "size"), periods=("periods", "sum"), quantity=("quantity", "sum")).reset_index()
     by_origin = history.groupby("origin").agg(rows=("quantity", "size"), quantity=("quantity", "sum")).reset_index()
-    yield dg.Output(history, output_name=LIFECYCLE_HISTORY, metadata=table_metadata(history, by_origin=by_origin))
+    yield dg.Output(
+        history,
+        output_name=LIFECYCLE_HISTORY,
+        metadata=table_metadata(history, by_origin=by_origin, shortage_rows=int(history["shortage"].sum())),
+    )
     yield dg.Output(audit, output_name=LIFECYCLE_AUDIT, metadata=table_metadata(audit, by_rule=by_rule))
     yield from (history_check, audit_check)

@@ -1,23 +1,36 @@
-"""Asset `share_tables`: this cycle's share of every active child in its parent."""
+"""Asset `share_tables`: this cycle's base share and lifecycle rule of every child in its parent."""
 
 import dagster as dg
 import pandas as pd
 
-from assets.common import schema_check_spec, table_metadata, validate
+from assets.common import rule_check, schema_check_spec, table_metadata, validate
 from pipelines.resources import PlanningConfigResource
-from pipelines.schemas import ShareTable
+from pipelines.schemas import SHARE_RULES, ShareTable
 from pipelines.stages.lifecycle_history import active_children
-from pipelines.stages.share_tables import compute_shares
+from pipelines.stages.share_tables import compute_shares, find_new_customers_without_share, new_customers
 
 SHARE_TABLES = "share_tables"
+NEW_CUSTOMER_WITHOUT_SHARE = "new_customer_without_share"
 
 
 @dg.asset(
     name=SHARE_TABLES,
     group_name="shares",
     kinds={"pandas", "duckdb"},
-    check_specs=[schema_check_spec(SHARE_TABLES, ShareTable)],
-    description="Per product class: shares from the class's window and method, with the fallback used per parent.",
+    check_specs=[
+        schema_check_spec(SHARE_TABLES, ShareTable),
+        dg.AssetCheckSpec(
+            NEW_CUSTOMER_WITHOUT_SHARE,
+            asset=SHARE_TABLES,
+            blocking=False,
+            description="Lists new customers (fewer periods of own history than lifecycle.min_history_periods) that "
+            "have neither a reference_customer nor an initial_share, so they get no share until they have that much "
+            "history. A warning, not a stop: give the listed spans a reference_customer or an initial_share in "
+            "customer_spans if their volume should be planned now.",
+        ),
+    ],
+    description="Per product class: each child's base share from the class's window and method, the fallback used "
+    "per parent, and the lifecycle rule that sets its share over the horizon.",
 )
 def share_tables(
     context: dg.AssetExecutionContext,
@@ -31,11 +44,13 @@ def share_tables(
     cycle = cycle_calendar.iloc[0]
     config.check_windows_fit(int(cycle["history_periods"]))
     cycle_date = pd.Timestamp(cycle["cycle_date"])
-    children = active_children(customer_spans, products, cycle_date, config.calendar.period)
+    children = active_children(customer_spans, products, lifecycle_history, config, cycle_date)
     shares, check = validate(compute_shares(lifecycle_history, children, config, cycle_date), ShareTable, SHARE_TABLES)
     parents = shares.drop_duplicates(["product", "site"])
     fallbacks = parents.groupby(["product_class", "fallback"]).size().rename("parents").reset_index()
     largest = shares.sort_values("share", ascending=False)[["product_class", "product", "site", "customer", "share", "window_used", "fallback"]]
+    by_rule = shares["lifecycle_rule"].value_counts().reindex(list(SHARE_RULES), fill_value=0).rename("children")
+    new = new_customers(shares)
     yield dg.Output(
         shares,
         metadata=table_metadata(
@@ -46,6 +61,16 @@ def share_tables(
             parents_with_fallback=int((parents["fallback"] != "none").sum()),
             fallbacks_by_class=fallbacks,
             largest_shares=largest,
+            children_by_lifecycle_rule=by_rule.rename_axis("lifecycle_rule").reset_index(),
+            new_customers=new,
+            new_customer_count=len(new),
         ),
     )
     yield check
+    yield rule_check(
+        SHARE_TABLES,
+        NEW_CUSTOMER_WITHOUT_SHARE,
+        find_new_customers_without_share(shares),
+        what="every new customer has a share from a reference customer or an initial share",
+        severity=dg.AssetCheckSeverity.WARN,
+    )

@@ -42,20 +42,28 @@ def statistical_forecast(
 ):
     config = planning.config
     cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
-    children = share_tables[["product", "site", "customer", "product_class"]]
+    children = share_tables[["product", "site", "customer", "product_class", "first_active_period", "last_active_period"]]
     choice = choose_strategies(backtest_accuracy, config)
     chosen = dict(zip(choice["product_class"], choice["strategy"]))
-    result = forecast_cycle(lifecycle_history, children, reinitialized_target, share_tables, config, cycle_date, log=context.log.info, chosen=chosen)
+    result = forecast_cycle(lifecycle_history, children, reinitialized_target, config, cycle_date, log=context.log.info, chosen=chosen)
     parent, parent_check = validate(result.parent, ParentForecast, PARENT_FORECAST)
     leaf, leaf_check = validate(result.leaf, StatisticalForecast, STATISTICAL_FORECAST)
     models_table, models_check = validate(result.models, ForecastModels, FORECAST_MODELS)
     first = parent.drop_duplicates(["product", "site"])
     models = first.groupby(["product_class", "strategy", "demand_class", "model"]).size().rename("parents").reset_index()
     totals = parent.groupby("product_class")["forecast"].sum().rename("horizon_total").reset_index()
+    zeroed = parent[parent["zero_reason"].notna()].groupby("zero_reason").size().rename("parent_periods").reset_index()
     yield dg.Output(
         parent,
         output_name=PARENT_FORECAST,
-        metadata=table_metadata(parent, strategy_by_class=choice, models_used=models, horizon_total_by_class=totals, negatives_set_to_zero=result.negatives_clipped),
+        metadata=table_metadata(
+            parent,
+            strategy_by_class=choice,
+            models_used=models,
+            horizon_total_by_class=totals,
+            negatives_set_to_zero=result.negatives_clipped,
+            periods_set_to_zero_by_reason=zeroed,
+        ),
     )
     basis = leaf.groupby("split_basis").size().rename("rows").reset_index()
     yield dg.Output(leaf, output_name=STATISTICAL_FORECAST, metadata=table_metadata(leaf, split_basis=basis, leaf_total=float(leaf["forecast"].sum())))

@@ -178,7 +178,7 @@ def main() -> None:
     for strategy in STRATEGIES:
         with LibraryTimer() as timer:
             started = time.perf_counter()
-            forecast_cycle(history, children, target, shares, cfg, cycle, chosen={c: strategy for c in CLASSES})
+            forecast_cycle(history, children, target, cfg, cycle, chosen={c: strategy for c in CLASSES})
             wall = time.perf_counter() - started
         rows.append((f"cycle forecast, {strategy}", wall, timer.seconds))
 

@@ -108,8 +108,19 @@ class LifecycleConfig(Frozen):
     min_history_periods: int = Field(
         13,
         ge=1,
-        description="a customer with fewer own periods of history is new and, if it names a "
-        "reference customer, takes that customer's history for the periods it lacks",
+        description="a customer with fewer distinct periods of its own history is new: its share "
+        "comes from its reference customer, else from its initial_share, else it gets no share "
+        "until it has this many periods",
+    )
+    # Our default: a new customer and its reference split the reference's share
+    # evenly (0.5); 1 is a like-for-like replacement. The share is taken from the
+    # reference, which cannot give more than it has, hence at most 1.
+    reference_scale: float = Field(
+        0.5,
+        gt=0,
+        le=1,
+        description="fraction of its reference customer's share a new customer takes over, "
+        "when its customer span gives no `scale`",
     )
 
 

@@ -4,8 +4,10 @@ The scenario is invented: a fictional maker, "Larkspur Hollow Garden Supply",
 ships garden and irrigation goods from three sites to a pool of customers.
 It holds 156 weeks of shipment lines ending with the week that starts on
 Monday 2026-11-23, so the cycle date is 2026-11-30. A few special cases are
-planted at fixed ids (a new customer, a phased-out customer, a retired
-product with its successor, bad rows); the rest (outliers, returns,
+planted at fixed ids (a new customer with a reference, a phased-out customer,
+a retired product with its successor, bad rows, and lifecycle inside the
+horizon: a span ending, a span starting with an initial share, a new customer
+without any share rule, a product ending); the rest (outliers, returns,
 duplicate lines, gaps) are placed by the seeded generator and listed by
 `planted_cases()`. `data/demo/README.md` describes them for the default seed.
 
@@ -36,7 +38,7 @@ FIRST_WEEK = CYCLE_DATE - np.timedelta64(7 * HISTORY_WEEKS, "D")  # Monday 2023-
 LAST_WEEK = CYCLE_DATE - np.timedelta64(7, "D")  # Monday 2026-11-23
 
 SITES = ("SITE-NORTH", "SITE-SOUTH", "SITE-WEST")
-POOL_SIZE = 48  # customers C0001..C0048; the planted new customer is C0049
+POOL_SIZE = 48  # customers C0001..C0048; the planted new customers are C0049, C0050, C0051
 
 FILES = {
     "history": "history.csv",
@@ -94,6 +96,21 @@ SUCCESSOR = "TIMR-004"
 RETIRED_SITES = ("SITE-NORTH", "SITE-WEST")
 RETIRED_TO = _weeks_before_cycle(40) - np.timedelta64(1, "D")  # Sunday 2026-02-22
 SUCCESSOR_FROM = _weeks_before_cycle(44)  # Monday 2026-01-26: four weeks of overlap
+# 9-12. Lifecycle inside the horizon. They touch master data and add a few lines drawn
+# after every other draw, so the rest of the scenario is the same as without them.
+# 9. Customer whose span ends inside the horizon: its share stops, the others renormalise.
+ENDS_IN_HORIZON = ("FERT-001", "SITE-SOUTH", "C0003")
+ENDS_IN_HORIZON_TO = CYCLE_DATE + np.timedelta64(7 * 11 - 1, "D")  # Sunday 2027-02-14: last week 2027-02-08
+# 10. Customer starting inside the horizon with a planner-given initial share.
+STARTS_IN_HORIZON = ("DRIP-001", "SITE-NORTH", "C0050")
+STARTS_IN_HORIZON_FROM = CYCLE_DATE + np.timedelta64(7 * 8, "D")  # Monday 2027-01-25
+STARTS_IN_HORIZON_SHARE = 0.15
+# 11. New customer with neither reference nor initial share: no share yet, the WARN check lists it.
+NEW_WITHOUT_SHARE = ("FITT-001", "SITE-SOUTH", "C0051")
+NEW_WITHOUT_SHARE_FROM = _weeks_before_cycle(4)  # Monday 2026-11-02: four weeks of own history
+# 12. Product discontinued inside the horizon, without successor.
+ENDS_IN_HORIZON_PRODUCT = "FILT-003"
+ENDS_IN_HORIZON_PRODUCT_TO = CYCLE_DATE + np.timedelta64(7 * 13 - 1, "D")  # Sunday 2027-02-28: last week 2027-02-22
 # 8. Bad rows the tool must reject: (product, site, customer, period_start, quantity, reason).
 BAD_ROWS = (
     ("DRIP-001", "SITE-NORTH", "", "2025-03-12", "45", "missing_key"),
@@ -431,6 +448,7 @@ def _build(seed: int) -> tuple[dict[str, pd.DataFrame], pd.DataFrame]:
     )
 
     adjustments = _adjustments(rng, leaves, mu)
+    history, product_rows, spans = _lifecycle_in_horizon(rng, leaves, history, product_rows, spans, planted)
     frames = {
         "history": history,
         "products": product_rows.reset_index(drop=True),
@@ -440,6 +458,45 @@ def _build(seed: int) -> tuple[dict[str, pd.DataFrame], pd.DataFrame]:
     planted_df = pd.DataFrame(planted, columns=["case", "product", "site", "customer", "period_start", "detail"])
     planted_df = planted_df.sort_values(["case", "product", "site", "customer", "period_start"], kind="mergesort")
     return frames, planted_df.reset_index(drop=True)
+
+
+def _lifecycle_in_horizon(rng, leaves, history, product_rows, spans, planted):
+    """Cases 9-12: spans and a product ending or starting inside the horizon, a new customer without share.
+
+    Drawn last, so every earlier draw (and so the rest of the scenario) is unchanged.
+    """
+    key = list(zip(spans["product"], spans["site"], spans["customer"]))
+    spans = spans.assign(scale="", initial_share="")
+    spans.loc[[k == ENDS_IN_HORIZON for k in key], "active_to"] = str(ENDS_IN_HORIZON_TO)
+    planted.append(("span_ends_in_horizon", *ENDS_IN_HORIZON, str(ENDS_IN_HORIZON_TO), "share until the week of 2027-02-08, then 0"))
+    product_rows.loc[product_rows["product"] == ENDS_IN_HORIZON_PRODUCT, "active_to"] = str(ENDS_IN_HORIZON_PRODUCT_TO)
+    for site, customer in zip(*spans.loc[spans["product"] == ENDS_IN_HORIZON_PRODUCT, ["site", "customer"]].to_numpy().T):
+        planted.append(("product_ends_in_horizon", ENDS_IN_HORIZON_PRODUCT, site, customer, str(ENDS_IN_HORIZON_PRODUCT_TO),
+                        "forecast until the week of 2027-02-22, then 0"))
+    new_rows = pd.DataFrame(
+        [
+            (*STARTS_IN_HORIZON, str(STARTS_IN_HORIZON_FROM), "", "", "", str(STARTS_IN_HORIZON_SHARE)),
+            (*NEW_WITHOUT_SHARE, str(NEW_WITHOUT_SHARE_FROM), "", "", "", ""),
+        ],
+        columns=spans.columns,
+    )
+    spans = pd.concat([spans, new_rows], ignore_index=True)
+    spans = spans.sort_values(["product", "site", "customer"], kind="mergesort").reset_index(drop=True)
+    planted.append(("span_starts_in_horizon", *STARTS_IN_HORIZON, str(STARTS_IN_HORIZON_FROM),
+                    f"no history; initial_share {STARTS_IN_HORIZON_SHARE} from that week"))
+
+    # four weeks of lines for the new customer without share, near its parent's typical level
+    parent = (leaves["product"] == NEW_WITHOUT_SHARE[0]) & (leaves["site"] == NEW_WITHOUT_SHARE[1])
+    level = float(leaves.loc[parent, "level"].median())
+    weeks = NEW_WITHOUT_SHARE_FROM + np.timedelta64(7, "D") * np.arange(4) + np.timedelta64(1, "D")  # Tuesdays
+    qty = np.maximum(1, rng.poisson(level, len(weeks)))
+    lines = pd.DataFrame({"product": NEW_WITHOUT_SHARE[0], "site": NEW_WITHOUT_SHARE[1], "customer": NEW_WITHOUT_SHARE[2],
+                          "period_start": _iso(weeks), "quantity": qty.astype(str)})
+    planted.append(("new_without_share", *NEW_WITHOUT_SHARE, str(NEW_WITHOUT_SHARE_FROM),
+                    f"4 weeks of lines ({', '.join(map(str, qty))}), no reference or initial share"))
+    history = pd.concat([history, lines], ignore_index=True)
+    history = history.sort_values(["product", "site", "customer", "period_start"], kind="mergesort").reset_index(drop=True)
+    return history, product_rows, spans
 
 
 def _adjustments(rng: np.random.Generator, leaves: pd.DataFrame, mu: np.ndarray) -> pd.DataFrame:

@@ -20,16 +20,19 @@ REJECT_REASONS = (
     "on_or_after_cycle_date",
 )
 CORRECTION_RULES = ("negative_net_to_zero", "hampel_cap", "tukey_cap", "shortage_fill")
-ORIGINS = ("own", "successor", "reference")
+ORIGINS = ("own", "successor")
 LIFECYCLE_RULES = (
     "outside_active_span",
     "phased_out_before_cycle",
     "retired_product_without_successor",
     "successor_without_span",
-    "reference_history_copied",
     "successor_history_mapped",
 )
 FALLBACKS = ("none", "longer_window", "even")
+# how a child's share is set over the horizon (share table `lifecycle_rule`)
+SHARE_RULES = ("none", "phase_in", "phase_out", "reference", "initial_share", "awaiting_history")
+# why every share of a parent is 0 in a horizon period (`zero_share_reason`)
+ZERO_SHARE_REASONS = ("product_not_active", "no_active_child", "awaiting_history", "no_share_among_active")
 DEMAND_CLASSES = ("smooth", "erratic", "intermittent", "lumpy", "no_demand")
 SPLIT_BASES = ("target", "share", "own_forecast", "forecast_proportions", "reconciled")
 STRATEGIES = ("top_down", "forecast_proportions", "bottom_up", "mint_shrink", "wls_var")
@@ -90,7 +93,24 @@ class CustomerSpans(LeafKeys):
     active_from: Series[DateTime] = pa.Field(nullable=True, description="first day of the active span")
     active_to: Series[DateTime] = pa.Field(nullable=True, description="last day of the active span; blank = open")
     reference_customer: Series[str] = pa.Field(
-        nullable=True, description="existing customer whose history stands in for a new one"
+        nullable=True, description="existing customer of the same product and site a new customer takes its share from"
+    )
+    # the loader always supplies the two optional columns (blank when the file lacks
+    # them); required=False lets hand-built frames without them validate too
+    scale: Series[float] = pa.Field(
+        nullable=True,
+        required=False,
+        gt=0,
+        le=1,
+        description="optional: fraction of the reference's share the new customer takes (blank = config "
+        "lifecycle.reference_scale); at most 1, the reference cannot give more than it has",
+    )
+    initial_share: Series[float] = pa.Field(
+        nullable=True,
+        required=False,
+        ge=0,
+        lt=1,
+        description="optional: planner-given share of a new customer without reference; the others are scaled by 1 - it",
     )
 
     class Config:
@@ -177,12 +197,16 @@ class HistoryCorrections(LeafPeriod):
 
 
 class LifecycleHistory(LeafPeriod):
-    """History inside each active span, remapped to successors and references."""
+    """History inside each active span, remapped to successors."""
 
     quantity: Series[float] = pa.Field(ge=0, description="quantity in the share basis")
-    origin: Series[str] = pa.Field(isin=ORIGINS, description="own, successor (mapped) or reference (copied)")
+    origin: Series[str] = pa.Field(isin=ORIGINS, description="own, or successor (mapped from a retired product)")
     source_product: Series[str] = pa.Field(description="product the history was recorded on")
     source_customer: Series[str] = pa.Field(description="customer the history was recorded on")
+    shortage: Series[bool] = pa.Field(
+        description="a supply shortage was recorded for the source product x site x period; "
+        "such periods do not count toward shares or the parent baseline"
+    )
 
     class Config:
         unique = ["product", "site", "customer", "period_start", "origin", "source_product"]
@@ -202,11 +226,16 @@ class LifecycleAudit(_Strict):
 
 # ----------------------------------------------------------------- shares
 class ShareTable(LeafKeys):
-    """One share per child for the cycle, with the window and method behind it."""
+    """One base share per child for the cycle, with the window, method and lifecycle rule behind it."""
 
     cycle_date: Series[DateTime] = pa.Field(description="first period of the cycle's horizon")
     product_class: Series[str] = pa.Field(description="product class")
-    share: Series[float] = pa.Field(ge=0, le=1, description="child's fraction of its parent")
+    share: Series[float] = pa.Field(
+        ge=0, le=1, description="base share: child's fraction of its parent in a period where every child is active"
+    )
+    history_share: Series[float] = pa.Field(
+        ge=0, le=1, description="share from history over the established children, before the new-customer rules"
+    )
     method: Series[str] = pa.Field(description="share method of the class")
     window: Series[int] = pa.Field(ge=1, description="configured window, periods")
     window_used: Series[int] = pa.Field(ge=0, description="window that gave volume (0 = even split)")
@@ -214,18 +243,31 @@ class ShareTable(LeafKeys):
     fallback: Series[str] = pa.Field(isin=FALLBACKS, description="fallback taken for this parent")
     child_volume: Series[float] = pa.Field(ge=0, description="child's volume in the window used")
     parent_volume: Series[float] = pa.Field(ge=0, description="parent's volume in the window used")
+    lifecycle_rule: Series[str] = pa.Field(isin=SHARE_RULES, description="how the share is set over the horizon")
+    first_active_period: Series[DateTime] = pa.Field(description="first horizon period the child is active")
+    last_active_period: Series[DateTime] = pa.Field(description="last horizon period the child is active")
+    own_periods: Series[int] = pa.Field(ge=0, description="distinct periods of the child's own history")
+    reference_customer: Series[str] = pa.Field(nullable=True, description="reference the share was taken from")
+    scale: Series[float] = pa.Field(nullable=True, gt=0, le=1, description="fraction of the reference's share taken")
+    initial_share: Series[float] = pa.Field(nullable=True, ge=0, lt=1, description="planner-given share used")
+    lifecycle_detail: Series[str] = pa.Field(description="the rule in words, for the planner")
 
     class Config:
         unique = ["product", "site", "customer"]
 
 
 class ReinitializedTarget(LeafPeriod):
-    """Target measure for the horizon: share x the parent's baseline."""
+    """Target measure for the horizon: the period's share x the parent's baseline."""
 
     cycle_date: Series[DateTime] = pa.Field(description="cycle date")
     target: Series[float] = pa.Field(ge=0, description="share x parent_baseline")
-    share: Series[float] = pa.Field(ge=0, le=1, description="share from the share table")
+    share: Series[float] = pa.Field(
+        ge=0, le=1, description="share in this period: base shares of the children active in it, renormalised"
+    )
     parent_baseline: Series[float] = pa.Field(ge=0, description="parent's mean per period over the window used")
+    zero_share_reason: Series[str] = pa.Field(
+        nullable=True, isin=ZERO_SHARE_REASONS, description="why every share of the parent is 0 in this period (blank = they sum to 1)"
+    )
 
     class Config:
         unique = ["product", "site", "customer", "period_start"]
@@ -245,6 +287,9 @@ class ParentForecast(_Strict):
     demand_class: Series[str] = pa.Field(isin=DEMAND_CLASSES, description="Syntetos-Boylan-Croston class")
     forecast_grain: Series[str] = pa.Field(description="grain the model ran at (`both` for split or reconciled strategies)")
     strategy: Optional[Series[str]] = pa.Field(isin=STRATEGIES, description="how parent and leaf were made coherent")
+    zero_reason: Series[str] = pa.Field(
+        nullable=True, isin=ZERO_SHARE_REASONS, description="why the forecast was set to 0 in this period (blank = not set)"
+    )
 
     class Config:
         unique = ["product", "site", "period_start"]

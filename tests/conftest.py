@@ -12,7 +12,7 @@ import pandas as pd
 import pytest
 
 from pipelines.config import parse_config
-from pipelines.schemas import CleanedHistory, CustomerSpans, LifecycleHistory, Products, RawHistory
+from pipelines.schemas import CleanedHistory, CustomerSpans, LifecycleHistory, Products, RawHistory, ShareTable
 
 
 def _raw_history(rows):
@@ -32,10 +32,12 @@ def _products(rows):
 
 
 def _spans(rows):
-    """rows: (product, site, customer[, active_from[, active_to[, reference_customer]]])."""
-    full = [tuple(r) + (None,) * (6 - len(r)) for r in rows]
-    frame = pd.DataFrame(full, columns=["product", "site", "customer", "active_from", "active_to", "reference_customer"])
+    """rows: (product, site, customer[, active_from[, active_to[, reference_customer[, scale[, initial_share]]]]])."""
+    columns = ["product", "site", "customer", "active_from", "active_to", "reference_customer", "scale", "initial_share"]
+    full = [tuple(r) + (None,) * (8 - len(r)) for r in rows]
+    frame = pd.DataFrame(full, columns=columns)
     frame["reference_customer"] = frame["reference_customer"].astype(object)
+    frame[["scale", "initial_share"]] = frame[["scale", "initial_share"]].astype(float)
     return CustomerSpans.validate(frame)
 
 
@@ -60,20 +62,58 @@ def _cleaned(rows):
 
 
 def _history(rows):
-    """rows: (product, site, customer, period_start, quantity[, origin[, source_product[, source_customer]]])."""
+    """rows: (product, site, customer, period_start, quantity[, origin[, source_product[, source_customer[, shortage]]]])."""
     out = []
     for r in rows:
         product, site, customer, start, qty = r[:5]
         origin = r[5] if len(r) > 5 else "own"
         source_product = r[6] if len(r) > 6 else product
         source_customer = r[7] if len(r) > 7 else customer
-        out.append((product, site, customer, start, float(qty), origin, source_product, source_customer))
+        shortage = r[8] if len(r) > 8 else False
+        out.append((product, site, customer, start, float(qty), origin, source_product, source_customer, shortage))
     frame = pd.DataFrame(
         out,
-        columns=["product", "site", "customer", "period_start", "quantity", "origin", "source_product", "source_customer"],
+        columns=["product", "site", "customer", "period_start", "quantity", "origin", "source_product", "source_customer", "shortage"],
     )
     frame["period_start"] = pd.to_datetime(frame["period_start"])
     return LifecycleHistory.validate(frame)
+
+
+SHARE_TABLE_COLUMNS = [
+    "product", "site", "customer", "cycle_date", "product_class", "share", "history_share", "method", "window",
+    "window_used", "window_start", "fallback", "child_volume", "parent_volume", "lifecycle_rule",
+    "first_active_period", "last_active_period", "own_periods", "reference_customer", "scale", "initial_share",
+    "lifecycle_detail",
+]
+
+
+def _share_table(rows, cycle="2026-02-02", horizon=3):
+    """A share table for a weekly cycle.
+
+    rows: (product, site, customer, share[, window_used[, lifecycle]]), lifecycle a dict
+    with any of: rule, history_share (default share), first, last (ISO weeks; default the
+    whole horizon), reference_customer, scale, initial_share, own_periods.
+    window_used 0 means an even fallback; the configured window is 4.
+    """
+    from pipelines.calendar import horizon_starts, shift_periods
+
+    cycle = pd.Timestamp(cycle)
+    starts = horizon_starts(cycle, horizon, "week")
+    out = []
+    for r in rows:
+        product, site, customer, share = r[:4]
+        used = r[4] if len(r) > 4 else 4
+        life = r[5] if len(r) > 5 else {}
+        out.append(
+            (
+                product, site, customer, cycle, "a", share, life.get("history_share", share), "pooled", 4, used,
+                shift_periods(cycle, -(used or 4), "week"), "even" if used == 0 else "none", 0.0, 0.0,
+                life.get("rule", "none"), pd.Timestamp(life.get("first", starts[0])), pd.Timestamp(life.get("last", starts[-1])),
+                life.get("own_periods", 13), life.get("reference_customer"), life.get("scale", np.nan),
+                life.get("initial_share", np.nan), "",
+            )
+        )
+    return ShareTable.validate(pd.DataFrame(out, columns=SHARE_TABLE_COLUMNS))
 
 
 def _children(rows):
@@ -115,3 +155,8 @@ def make_history():
 @pytest.fixture
 def make_children():
     return _children
+
+
+@pytest.fixture
+def make_share_table():
+    return _share_table

@@ -16,6 +16,7 @@ import yaml
 
 from assets.backtest_accuracy import CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE
 from assets.reconciliation import CHECKS as RECONCILIATION_CHECKS
+from assets.share_tables import NEW_CUSTOMER_WITHOUT_SHARE
 from pipelines.definitions import ASSETS, build_definitions
 from pipelines.jobs import WEEKLY_CYCLE
 from pipelines.resources import read_table
@@ -54,13 +55,27 @@ def demo_cycle(tmp_path_factory):
     return result, tmp / "store.duckdb", config
 
 
-def test_demo_cycle_succeeds_and_every_check_passes(demo_cycle):
+def assert_only_the_new_customer_warning_fails(result: dg.ExecuteInProcessResult) -> dg.AssetCheckEvaluation:
+    """Every blocking check passes; the one failing check is the WARN on new customers without share."""
+    checks = checks_of(result)
+    failed = [k for k, e in checks.items() if not e.passed]
+    assert failed == [f"share_tables:{NEW_CUSTOMER_WITHOUT_SHARE}"]
+    warning = checks[failed[0]]
+    assert warning.severity == dg.AssetCheckSeverity.WARN
+    # the demo plants FITT-001 / SITE-SOUTH / C0051 without reference or initial share (data/demo/README.md)
+    assert warning.metadata["failing_count"].value == 1
+    assert "C0051" in warning.metadata["failing_rows_sample"].value
+    return warning
+
+
+def test_demo_cycle_succeeds_and_every_blocking_check_passes(demo_cycle):
     result, _, _ = demo_cycle
     assert result.success
     checks = checks_of(result)
-    failed = [k for k, e in checks.items() if not e.passed]
-    assert failed == []
-    # every asset has its schema check, and the reconciliation carries the five rule checks
+    # by design the demo has one new customer without share: a WARN that does not stop the cycle
+    assert_only_the_new_customer_warning_fails(result)
+    assert all(e.passed for e in checks.values() if e.severity == dg.AssetCheckSeverity.ERROR)
+    # every asset has its schema check, and the reconciliation carries its rule checks
     for key in dg.AssetSelection.all().resolve(ASSETS):
         name = key.to_user_string()
         assert f"{name}:{name}_matches_schema" in checks
@@ -74,7 +89,8 @@ def test_auto_classes_follow_the_backtest_choice_and_stay_coherent(demo_cycle):
     from pipelines.stages.backtest import choose_strategies
 
     accuracy = read_table(store, "backtest_accuracy")
-    # every class of the demo config is `auto`; each has all five strategies and the benchmark at both grains
+    # every class is backtested (consumables is fixed to the split, the others `auto`); each has all
+    # five strategies and the benchmark at both grains
     assert set(accuracy["product_class"]) == {"consumables", "seasonal", "spares"}
     assert set(accuracy["strategy"]) == {"top_down", "forecast_proportions", "bottom_up", "mint_shrink", "wls_var", "seasonal_naive"}
     assert set(accuracy["metric"]) == {"wmape", "bias", "mase", "fva"} and set(accuracy["grain"]) == {"leaf", "parent"}
@@ -82,8 +98,10 @@ def test_auto_classes_follow_the_backtest_choice_and_stay_coherent(demo_cycle):
     parent = read_table(store, "parent_forecast")
     in_effect = parent.drop_duplicates("product_class").set_index("product_class")["strategy"]
     assert in_effect.sort_index().to_dict() == choice["strategy"].sort_index().to_dict()
-    # the winner has the lowest leaf WMAPE of the five, so its margin over the runner-up is >= 0
-    assert (choice["margin"] >= 0).all()
+    # an `auto` winner has the lowest leaf WMAPE of the five, so its margin over the runner-up is >= 0
+    auto = choice[choice["forecast_grain"] == "auto"]
+    assert set(auto.index) == {"seasonal", "spares"} and (auto["margin"] >= 0).all()
+    assert choice.loc["consumables", "strategy"] == "top_down"
     # the choice and margins are in the metadata; the WARN check ran (and passes on the demo)
     materialization = next(
         e for e in result.get_asset_materialization_events() if e.asset_key.to_user_string() == "backtest_accuracy"
@@ -136,11 +154,98 @@ def test_demo_lifecycle_cases_reach_the_share_table(demo_cycle):
     assert not (shares["product"] == "TIMR-003").any()
     mapped = history[(history["origin"] == "successor")]
     assert set(mapped["source_product"]) == {"TIMR-003"} and set(mapped["product"]) == {"TIMR-004"}
-    # new customer C0049 on DRIP-002/SITE-NORTH takes reference C0001's earlier history
-    copied = history[(history["origin"] == "reference") & (history["customer"] == "C0049")]
-    assert len(copied) > 0 and set(copied["source_customer"]) == {"C0001"}
-    new_share = shares[(shares["product"] == "DRIP-002") & (shares["site"] == "SITE-NORTH") & (shares["customer"] == "C0049")]
-    assert new_share["share"].iloc[0] > 0
+    # new customer C0049 on DRIP-002/SITE-NORTH takes half of reference C0001's share (scale 0.5, the
+    # config default); no history is copied
+    assert set(history["origin"]) == {"own", "successor"}
+    parent = shares[(shares["product"] == "DRIP-002") & (shares["site"] == "SITE-NORTH")].set_index("customer")
+    assert parent.loc["C0049", "lifecycle_rule"] == "reference" and parent.loc["C0049", "reference_customer"] == "C0001"
+    assert parent.loc["C0001", "history_share"] > 0
+    assert parent.loc["C0049", "share"] == pytest.approx(0.5 * parent.loc["C0001", "history_share"], abs=1e-12)
+    assert parent.loc["C0001", "share"] == pytest.approx(0.5 * parent.loc["C0001", "history_share"], abs=1e-12)
+    assert parent["share"].sum() == pytest.approx(1.0, abs=1e-12)
+
+
+def _leaf(frame, product, site, customer):
+    rows = frame[(frame["product"] == product) & (frame["site"] == site) & (frame["customer"] == customer)]
+    return rows.sort_values("period_start").set_index("period_start")
+
+
+def _parent(frame, product, site):
+    return frame[(frame["product"] == product) & (frame["site"] == site)]
+
+
+def test_demo_lifecycle_inside_the_horizon(demo_cycle):
+    _, store, _ = demo_cycle
+    shares = read_table(store, "share_tables")
+    target = read_table(store, "reinitialized_target")
+    leaf = read_table(store, "statistical_forecast")
+    parent_fc = read_table(store, "parent_forecast")
+    rule = {tuple(k): r for *k, r in shares[["product", "site", "customer", "lifecycle_rule"]].itertuples(index=False)}
+    last_week, after = pd.Timestamp("2027-02-08"), pd.Timestamp("2027-02-15")
+
+    # FERT-001 / SITE-SOUTH / C0003 ends Sunday 2027-02-14: share up to the week of 02-08, 0 after,
+    # the others renormalised so the parent's shares still sum to 1
+    assert rule[("FERT-001", "SITE-SOUTH", "C0003")] == "phase_out"
+    c3 = _leaf(target, "FERT-001", "SITE-SOUTH", "C0003")
+    assert (c3.loc[:last_week, "share"] > 0).all() and (c3.loc[after:, "share"] == 0).all()
+    assert (_leaf(leaf, "FERT-001", "SITE-SOUTH", "C0003").loc[after:, "forecast"] == 0).all()
+    fert = _parent(target, "FERT-001", "SITE-SOUTH").groupby("period_start")["share"].sum()
+    np.testing.assert_allclose(fert.to_numpy(), 1.0, atol=1e-12)
+    other = _parent(target, "FERT-001", "SITE-SOUTH")
+    other = other[other["customer"] != "C0003"].pivot(index="period_start", columns="customer", values="share")
+    # each remaining customer is scaled by the same 1 / (1 - share of C0003)
+    ratio = other.loc[after] / other.loc[last_week]
+    np.testing.assert_allclose(ratio.to_numpy(), 1.0 / (1.0 - c3.loc[last_week, "share"]), rtol=1e-12)
+
+    # DRIP-001 / SITE-NORTH / C0050 starts Monday 2027-01-25 with initial_share 0.15; the others x 0.85
+    assert rule[("DRIP-001", "SITE-NORTH", "C0050")] == "initial_share"
+    c50 = _leaf(target, "DRIP-001", "SITE-NORTH", "C0050")
+    start = pd.Timestamp("2027-01-25")
+    assert (c50.loc[: start - pd.Timedelta(days=7), "share"] == 0).all()
+    np.testing.assert_allclose(c50.loc[start:, "share"].to_numpy(), 0.15, atol=1e-12)
+    drip = _parent(target, "DRIP-001", "SITE-NORTH")
+    drip = drip[drip["customer"] != "C0050"].pivot(index="period_start", columns="customer", values="share")
+    np.testing.assert_allclose((drip.loc[start] / drip.loc[start - pd.Timedelta(days=7)]).to_numpy(), 0.85, rtol=1e-12)
+    assert (_leaf(leaf, "DRIP-001", "SITE-NORTH", "C0050").loc[start:, "forecast"] > 0).all()
+
+    # FITT-001 / SITE-SOUTH / C0051 is new without reference or initial share: no share, no forecast,
+    # and the parent's forecast goes to the others
+    assert rule[("FITT-001", "SITE-SOUTH", "C0051")] == "awaiting_history"
+    assert (_leaf(target, "FITT-001", "SITE-SOUTH", "C0051")["share"] == 0).all()
+    assert (_leaf(leaf, "FITT-001", "SITE-SOUTH", "C0051")["forecast"] == 0).all()
+    fitt = _parent(leaf, "FITT-001", "SITE-SOUTH").groupby("period_start")["forecast"].sum()
+    np.testing.assert_allclose(fitt.to_numpy(), _parent(parent_fc, "FITT-001", "SITE-SOUTH").sort_values("period_start")["forecast"].to_numpy(), rtol=1e-12)
+
+    # FILT-003 ends Sunday 2027-02-28: forecast until the week of 02-22, then 0 with its reason
+    filt = parent_fc[parent_fc["product"] == "FILT-003"].set_index("period_start").sort_index()
+    end = pd.Timestamp("2027-02-22")
+    assert (filt.loc[:end, "forecast"] > 0).all() and filt.loc[:end, "zero_reason"].isna().all()
+    assert (filt.loc[end + pd.Timedelta(days=7):, "forecast"] == 0).all()
+    assert set(filt.loc[end + pd.Timedelta(days=7):, "zero_reason"]) == {"product_not_active"}
+    assert (leaf.loc[(leaf["product"] == "FILT-003") & (leaf["period_start"] > end), "forecast"] == 0).all()
+    assert set(shares.loc[shares["product"] == "FILT-003", "last_active_period"]) == {end}
+
+
+def test_planner_metadata_on_share_tables_and_reinitialized_target(demo_cycle):
+    result, _, _ = demo_cycle
+    meta = {e.asset_key.to_user_string(): e.materialization.metadata for e in result.get_asset_materialization_events()}
+    shares = meta["share_tables"]
+    # counts per lifecycle rule: the three new customers of the demo, one each, and the phase-outs
+    rows = [line.strip("|").split("|") for line in shares["children_by_lifecycle_rule"].value.splitlines()[2:]]
+    by_rule = {name.strip(): int(count) for name, count in rows}
+    assert by_rule["reference"] == by_rule["initial_share"] == by_rule["awaiting_history"] == 1
+    # C0003 plus the 18 customers (seed) of FILT-003, which ends inside the horizon
+    assert by_rule["phase_out"] == 19 and by_rule["phase_in"] == 0
+    assert sum(by_rule.values()) == shares["children"].value
+    assert shares["new_customer_count"].value == 3
+    listed = shares["new_customers"].value
+    assert all(c in listed for c in ("C0049", "C0050", "C0051")) and "taken from it" in listed and "initial share 0.15" in listed
+    mix = meta["reinitialized_target"]
+    # C0050 phases in (DRIP-001/SITE-NORTH), C0003 out (FERT-001/SITE-SOUTH), FILT-003 ends at both its sites
+    assert mix["parents_with_mix_change_count"].value == 4
+    text = mix["parents_with_mix_change"].value
+    assert "C0050" in text and "C0003" in text and text.count("FILT-003") == 2
+    assert "product_not_active" in mix["zero_share_periods_by_reason"].value
 
 
 def test_rebuilding_one_asset_reads_the_stored_upstream_tables(demo_cycle):
@@ -206,13 +311,18 @@ def test_monthly_calendar_runs_the_same_graph(tmp_path):
         calendar={"period": "month", "cycle_date": "2026-11-01", "horizon": 6},
         product_classes=classes,
         cleansing={"outliers": {"rule": "hampel", "window": 7, "k": 5.0}},
+        lifecycle={"min_history_periods": 3, "reference_scale": 0.5},  # 3 months, about the weekly 13 weeks
     )
     result = run_cycle(config)
     assert result.success
-    # every ERROR check passes; the WARN check on the backtest may fire on 35 months with 2 origins
-    failed = [e.check_name for e in result.get_asset_check_evaluations() if not e.passed]
-    assert set(failed) <= {CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE}
-    assert f"backtest_accuracy:{CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE}" in checks_of(result)
+    # every ERROR check passes; the WARN checks that may fail: C0051 starts in November, the cycle
+    # month, with no history and so no share yet; the backtest may lose to seasonal naive on 35 months
+    checks = checks_of(result)
+    failed = {k for k, e in checks.items() if not e.passed}
+    assert f"share_tables:{NEW_CUSTOMER_WITHOUT_SHARE}" in failed
+    assert failed <= {f"share_tables:{NEW_CUSTOMER_WITHOUT_SHARE}", f"backtest_accuracy:{CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE}"}
+    assert all(checks[k].severity == dg.AssetCheckSeverity.WARN for k in failed)
+    assert f"backtest_accuracy:{CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE}" in checks
     store = tmp_path / "store.duckdb"
     cleaned = read_table(store, "cleaned_history")
     assert (cleaned["period_start"].dt.day == 1).all()

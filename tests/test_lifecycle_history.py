@@ -1,6 +1,7 @@
-"""`lifecycle_history`: spans, retired products, successors, references, active children.
+"""`lifecycle_history`: spans, retired products, successors, shortage flag, active children.
 
 Cycle date 2026-02-02 (a Monday); history weeks 2026-01-05, -12, -19, -26.
+Horizon (where a test sets 4 periods): weeks 2026-02-02, -09, -16, -23.
 """
 
 from __future__ import annotations
@@ -15,9 +16,12 @@ CYCLE = pd.Timestamp("2026-02-02")
 W1, W2, W3, W4 = "2026-01-05", "2026-01-12", "2026-01-19", "2026-01-26"
 
 
+H1, H2, H3, H4 = "2026-02-02", "2026-02-09", "2026-02-16", "2026-02-23"
+
+
 @pytest.fixture
 def config(make_config):
-    return make_config(lifecycle={"min_history_periods": 3})
+    return make_config(lifecycle={"min_history_periods": 3}, calendar={"horizon": 4})
 
 
 def keyed(history, customer=None, product=None):
@@ -142,7 +146,7 @@ def test_successor_without_active_span_drops_the_history_and_audits_it(make_clea
     assert a[["product", "customer", "periods", "quantity"]].values.tolist() == [["A", "C2", 2, 9.0]]
 
 
-def test_new_customer_gets_reference_history_before_its_own_start(make_cleaned, make_products, make_spans, config):
+def test_no_history_is_copied_from_a_reference_customer(make_cleaned, make_products, make_spans, config):
     products = make_products([("P1", "a")])
     spans = make_spans([("P1", "S1", "C1"), ("P1", "S1", "C2", "2026-01-19", None, "C1")])
     cleaned = make_cleaned(
@@ -150,60 +154,83 @@ def test_new_customer_gets_reference_history_before_its_own_start(make_cleaned, 
         + [("P1", "S1", "C2", W3, 2), ("P1", "S1", "C2", W4, 3)]
     )
     res = apply_lifecycle(cleaned, products, spans, config, CYCLE)
-    c2 = keyed(res.history, "C2")
-    # C2 has 2 own periods < min_history_periods 3 -> takes C1's 01-05 (5) and 01-12 (6),
-    # the periods before its own history starts on 01-19
-    assert c2[["period_start", "quantity", "origin", "source_customer"]].values.tolist() == [
-        [ts(W1), 5.0, "reference", "C1"],
-        [ts(W2), 6.0, "reference", "C1"],
-        [ts(W3), 2.0, "own", "C2"],
-        [ts(W4), 3.0, "own", "C2"],
+    # C2 is new (2 own periods < 3) but keeps only its own 2 + 3; its share comes from the
+    # share table's reference rule, not from copied history
+    assert keyed(res.history, "C2")[["period_start", "quantity", "origin"]].values.tolist() == [
+        [ts(W3), 2.0, "own"],
+        [ts(W4), 3.0, "own"],
     ]
-    a = audit_rows(res.audit, "reference_history_copied")
-    # 2 periods copied, 5 + 6 = 11
-    assert a[["customer", "periods", "quantity"]].values.tolist() == [["C2", 2, 11.0]]
-    assert "C1" in a.loc[0, "detail"]
-    # the reference's own history is untouched: 5 + 6 + 7 + 8 = 26
-    assert keyed(res.history, "C1")["quantity"].sum() == 26.0
+    assert set(res.history["origin"]) == {"own"}
+    # total kept: 5 + 6 + 7 + 8 + 2 + 3 = 31, nothing added
+    assert res.history["quantity"].sum() == 31.0
 
 
-def test_customer_with_min_history_periods_takes_no_reference_history(make_cleaned, make_products, make_spans, config):
-    products = make_products([("P1", "a")])
-    spans = make_spans([("P1", "S1", "C1"), ("P1", "S1", "C3", None, None, "C1")])
-    cleaned = make_cleaned(
-        [("P1", "S1", "C1", w, q) for w, q in [(W1, 5), (W2, 6), (W3, 7), (W4, 8)]]
-        + [("P1", "S1", "C3", w, 1) for w in (W2, W3, W4)]
-    )
+def test_shortage_flag_is_carried_and_false_without_the_column(make_cleaned, make_products, make_spans, config):
+    products = make_products([("A", "a", None, "2026-01-14", "B"), ("B", "a")])
+    spans = make_spans([("A", "S1", "C1"), ("B", "S1", "C1")])
+    cleaned = make_cleaned([("A", "S1", "C1", W1, 5), ("A", "S1", "C1", W2, 7), ("B", "S1", "C1", W3, 4), ("B", "S1", "C1", W4, 6)])
+    # a hand-made cleaned frame with the cleansing stage's shortage column:
+    # shortages on A in week 01-12 and on B in week 01-26
+    with_flag = cleaned.assign(shortage=[False, True, False, True])
+    h = keyed(apply_lifecycle(with_flag, products, spans, config, CYCLE).history)
+    # A's 01-12 row moves to B as a successor row and keeps its flag
+    assert h[["period_start", "source_product", "shortage"]].values.tolist() == [
+        [ts(W1), "A", False],
+        [ts(W2), "A", True],
+        [ts(W3), "B", False],
+        [ts(W4), "B", True],
+    ]
+    assert h["shortage"].dtype == bool
+    without = apply_lifecycle(cleaned, products, spans, config, CYCLE).history
+    assert not without["shortage"].any() and len(without) == 4
+
+
+def test_successor_span_starting_inside_the_horizon_takes_the_history(make_cleaned, make_products, make_spans, config):
+    products = make_products([("A", "a", None, "2026-01-14", "B"), ("B", "a")])
+    # C1 starts on B in the horizon's third week (02-16); C2 only after the 4-week horizon (03-02)
+    spans = make_spans([("A", "S1", "C1"), ("A", "S1", "C2"), ("B", "S1", "C1", H3), ("B", "S1", "C2", "2026-03-02")])
+    cleaned = make_cleaned([("A", "S1", "C1", W1, 5), ("A", "S1", "C2", W1, 8)])
     res = apply_lifecycle(cleaned, products, spans, config, CYCLE)
-    # C3 has exactly 3 own periods = min_history_periods -> not new, nothing copied
-    assert (res.history["origin"] == "reference").sum() == 0
-    assert len(keyed(res.history, "C3")) == 3
-    assert audit_rows(res.audit, "reference_history_copied").empty
+    # C1's span on B overlaps the horizon -> mapped; C2's does not -> dropped and audited
+    assert res.history[["product", "customer", "quantity", "origin"]].values.tolist() == [["B", "C1", 5.0, "successor"]]
+    a = audit_rows(res.audit, "successor_without_span")
+    assert a[["product", "customer", "periods", "quantity"]].values.tolist() == [["A", "C2", 1, 8.0]]
 
 
-def test_active_children_exclude_phased_out_future_and_retired(make_products, make_spans):
-    products = make_products([("P1", "a"), ("P2", "b"), ("R", "a", None, "2026-01-20")])
+def test_active_children_are_the_spans_active_in_any_horizon_period(make_products, make_spans, make_history, config):
+    products = make_products(
+        [("P1", "a"), ("P2", "b"), ("R", "a", None, "2026-01-20"), ("E", "a", None, "2026-02-11"), ("L", "a", H3), ("F", "a", "2026-03-02")]
+    )
     spans = make_spans(
         [
-            ("P1", "S1", "C1"),  # open -> active
-            ("P1", "S1", "C2", None, "2026-01-20"),  # ended in week 01-19 -> phased out
-            ("P1", "S1", "C3", "2026-02-09"),  # starts next week -> future
-            ("P1", "S1", "C4", "2026-02-04"),  # starts Wed of the cycle week -> active
-            ("P1", "S1", "C5", None, "2026-02-02"),  # ends on the cycle Monday -> active
-            ("R", "S1", "C1"),  # product retired before the cycle
-            ("P2", "S2", "C6"),  # other product and class -> active
+            ("P1", "S1", "C1"),  # open -> the whole horizon 02-02 .. 02-23
+            ("P1", "S1", "C2", None, "2026-01-20"),  # ended in week 01-19, before the cycle -> no child
+            ("P1", "S1", "C3", "2026-02-11"),  # starts Wed 02-11 -> from week 02-09 (phase-in)
+            ("P1", "S1", "C4", None, "2026-02-18"),  # ends Wed 02-18 -> until week 02-16 (phase-out)
+            ("P1", "S1", "C5", "2026-03-02"),  # starts after the 4-week horizon -> no child
+            ("R", "S1", "C1"),  # product retired before the cycle -> no child
+            ("E", "S1", "C1"),  # product ends Wed 02-11 -> until week 02-09
+            ("L", "S1", "C1", None, "2026-02-16"),  # product from 02-16, span until Mon 02-16 -> that week only
+            ("F", "S1", "C1"),  # product launched after the horizon -> no child
+            ("P2", "S2", "C6", None, None, "C1", 0.5, None),  # other class; lifecycle inputs carried over
         ]
     )
-    ch = active_children(spans, products, CYCLE, "week")
-    assert ch.values.tolist() == [
-        ["P1", "S1", "C1", "a"],
-        ["P1", "S1", "C4", "a"],
-        ["P1", "S1", "C5", "a"],
-        ["P2", "S2", "C6", "b"],
+    history = make_history([("P1", "S1", "C1", W1, 1), ("P1", "S1", "C1", W2, 0), ("P1", "S1", "C4", W4, 2)])
+    ch = active_children(spans, products, history, config, CYCLE)
+    got = ch[["product", "customer", "product_class", "first_active_period", "last_active_period", "own_periods"]]
+    assert got.values.tolist() == [
+        ["P1", "C1", "a", ts(H1), ts(H4), 2],  # two periods of own history (a 0 counts: the customer was there)
+        ["P1", "C3", "a", ts(H2), ts(H4), 0],
+        ["P1", "C4", "a", ts(H1), ts(H3), 1],
+        ["E", "C1", "a", ts(H1), ts(H2), 0],
+        ["L", "C1", "a", ts(H3), ts(H3), 0],
+        ["P2", "C6", "b", ts(H1), ts(H4), 0],
     ]
+    assert ch.loc[5, "reference_customer"] == "C1" and ch.loc[5, "scale"] == 0.5
+    assert ch["initial_share"].isna().all()
 
 
-def test_new_customer_own_periods_are_counted_once_when_successor_rows_share_them(
+def test_active_children_count_a_period_with_own_and_successor_rows_once(
     make_cleaned, make_products, make_spans, config
 ):
     # C2 moves from retired A to B in the same two weeks, so weeks 01-19 and 01-26 each
@@ -215,11 +242,6 @@ def test_new_customer_own_periods_are_counted_once_when_successor_rows_share_the
         + [("A", "S1", "C2", W3, 1), ("A", "S1", "C2", W4, 1), ("B", "S1", "C2", W3, 2), ("B", "S1", "C2", W4, 3)]
     )
     res = apply_lifecycle(cleaned, products, spans, config, CYCLE)
-    copied = keyed(res.history, "C2")
-    copied = copied[copied["origin"] == "reference"]
-    # C2 has 2 periods of history (01-19, 01-26), fewer than min_history_periods 3, so it
-    # takes C1's 01-05 (5) and 01-12 (6); the 4 rows are 2 periods, not 4
-    assert copied[["period_start", "quantity", "source_customer"]].values.tolist() == [
-        [ts(W1), 5.0, "C1"],
-        [ts(W2), 6.0, "C1"],
-    ]
+    ch = active_children(spans, products, res.history, config, CYCLE)
+    # 4 rows of C2 on B, but 2 distinct periods (01-19, 01-26): new under min_history_periods 3
+    assert dict(zip(ch["customer"], ch["own_periods"])) == {"C1": 4, "C2": 2}

@@ -1,7 +1,7 @@
 """`reconciliation`: parent against the sum of its children, and each `find_*` rule.
 
 Tolerances: children sum to the parent when |difference| <= 1e-9 x max(|parent|, 1);
-shares sum to 1 within 1e-9.
+shares sum to 1 within 1e-9, per parent and period (or are all 0 with a recorded reason).
 """
 
 from __future__ import annotations
@@ -16,6 +16,7 @@ from pipelines.stages.reconciliation import (
     find_parents_without_children,
     find_shares_not_summing_to_one,
     find_volume_after_phase_out,
+    find_volume_outside_active_span,
     reconcile,
 )
 
@@ -31,6 +32,7 @@ def parents(rows):
     frame["model"] = "ses"
     frame["demand_class"] = "smooth"
     frame["forecast_grain"] = "product_site"
+    frame["zero_reason"] = None
     return ParentForecast.validate(frame)
 
 
@@ -45,8 +47,11 @@ def leaves(rows):
 
 
 def share_rows(rows):
-    """rows: (product, site, customer, share) - the columns the share check reads."""
-    return pd.DataFrame(rows, columns=["product", "site", "customer", "share"])
+    """rows: (product, site, customer, period_start, share[, zero_share_reason]) - the columns the share check reads."""
+    full = [tuple(r) + (None,) * (6 - len(r)) for r in rows]
+    frame = pd.DataFrame(full, columns=["product", "site", "customer", "period_start", "share", "zero_share_reason"])
+    frame["zero_share_reason"] = frame["zero_share_reason"].astype(object)
+    return frame
 
 
 def keyed(frame, *cols):
@@ -129,23 +134,40 @@ def test_only_the_incoherent_period_is_returned():
 def test_shares_summing_to_one_are_not_flagged():
     # 0.25 + 0.75 = 1; 1/3 x 3 = 1 within rounding; 1 + 1e-10 is inside 1e-9
     shares = share_rows(
-        [("P1", "S1", "C1", 0.25), ("P1", "S1", "C2", 0.75)]
-        + [("P2", "S1", c, 1 / 3) for c in ("C1", "C2", "C3")]
-        + [("P3", "S1", "C1", 0.5), ("P3", "S1", "C2", 0.5 + 1e-10)]
+        [("P1", "S1", "C1", H1, 0.25), ("P1", "S1", "C2", H1, 0.75)]
+        + [("P2", "S1", c, H1, 1 / 3) for c in ("C1", "C2", "C3")]
+        + [("P3", "S1", "C1", H1, 0.5), ("P3", "S1", "C2", H1, 0.5 + 1e-10)]
     )
     assert find_shares_not_summing_to_one(shares).empty
 
 
-def test_shares_not_summing_to_one_are_returned_per_parent():
+def test_shares_are_judged_per_parent_and_period():
     shares = share_rows(
-        [("P1", "S1", "C1", 0.25), ("P1", "S1", "C2", 0.75)]
-        + [("P2", "S1", "C1", 0.5), ("P2", "S1", "C2", 0.4)]
-        + [("P3", "S1", "C1", 0.5), ("P3", "S1", "C2", 0.5 + 1e-8)]
+        # P1: H1 0.25 + 0.75 = 1; H2 C2 has left and C1 was renormalised to 1 -> fine
+        [("P1", "S1", "C1", H1, 0.25), ("P1", "S1", "C2", H1, 0.75), ("P1", "S1", "C1", H2, 1.0), ("P1", "S1", "C2", H2, 0.0)]
+        # P2: H1 fine; H2 C2 left but C1 kept its 0.5 -> 0.5, not renormalised
+        + [("P2", "S1", "C1", H1, 0.5), ("P2", "S1", "C2", H1, 0.5), ("P2", "S1", "C1", H2, 0.5), ("P2", "S1", "C2", H2, 0.0)]
+        # P3: 1 + 1e-8, off by more than 1e-9
+        + [("P3", "S1", "C1", H1, 0.5), ("P3", "S1", "C2", H1, 0.5 + 1e-8)]
     )
     bad = find_shares_not_summing_to_one(shares)
-    # P2: 0.5 + 0.4 = 0.9 (2 children); P3: 1 + 1e-8, off by more than 1e-9
-    assert keyed(bad, "product", "children") == [("P2", 2), ("P3", 2)]
-    assert bad["share_sum"].tolist() == pytest.approx([0.9, 1.0 + 1e-8], abs=1e-12)
+    assert keyed(bad, "product", "period_start", "children") == [("P2", H2, 2), ("P3", H1, 2)]
+    assert bad["share_sum"].tolist() == pytest.approx([0.5, 1.0 + 1e-8], abs=1e-12)
+
+
+def test_all_zero_shares_pass_only_with_a_reason_on_every_row():
+    shares = share_rows(
+        # P1 H1: all 0, reason on both rows -> fine
+        [("P1", "S1", c, H1, 0.0, "no_active_child") for c in ("C1", "C2")]
+        # P2 H1: all 0 without a reason -> flagged
+        + [("P2", "S1", c, H1, 0.0) for c in ("C1", "C2")]
+        # P3 H1: all 0, reason on one row only -> flagged
+        + [("P3", "S1", "C1", H1, 0.0, "awaiting_history"), ("P3", "S1", "C2", H1, 0.0)]
+        # P4 H1: sums to 1 but carries a reason -> flagged (a reason means all zero)
+        + [("P4", "S1", "C1", H1, 1.0, "no_active_child")]
+    )
+    bad = find_shares_not_summing_to_one(shares)
+    assert keyed(bad, "product", "share_sum", "with_reason") == [("P2", 0.0, 0), ("P3", 0.0, 1), ("P4", 1.0, 1)]
 
 
 # ------------------------------------------------------------------ phase-out
@@ -172,6 +194,36 @@ def test_no_volume_after_phase_out_when_spans_are_respected(make_spans):
     spans = make_spans([("P1", "S1", "C1", None, "2026-02-08"), ("P1", "S1", "C2")])
     leaf = leaves([("P1", "S1", "C1", H1, 2.0), ("P1", "S1", "C1", H2, 0.0), ("P1", "S1", "C2", H2, 5.0)])
     assert find_volume_after_phase_out(leaf, spans, "week").empty
+
+
+def test_volume_before_the_span_start_or_outside_the_product_span_is_returned(make_spans, make_products):
+    products = make_products([("P1", "a"), ("P2", "a", None, "2026-02-08")])  # P2 ends Sun 02-08 -> last week H1
+    spans = make_spans([("P1", "S1", "C1", "2026-02-11"), ("P1", "S1", "C2"), ("P2", "S1", "C1")])  # C1 on P1 from week H2
+    leaf = leaves(
+        [
+            ("P1", "S1", "C1", H1, 2.0),  # before its span starts -> flagged
+            ("P1", "S1", "C1", H2, 3.0),  # span started Wed 02-11, inside week H2
+            ("P1", "S1", "C2", H1, 0.0),
+            ("P2", "S1", "C1", H1, 1.0),  # last product week
+            ("P2", "S1", "C1", H2, 4.0),  # product over -> flagged
+            ("P2", "S1", "C1", H3, 0.0),  # product over, but zero
+        ]
+    )
+    parent = parents([("P1", "S1", H1, 2.0), ("P2", "S1", H1, 1.0), ("P2", "S1", H2, 4.0), ("P2", "S1", H3, 0.0)])
+    bad = find_volume_outside_active_span(parent, leaf, spans, products, "week")
+    assert keyed(bad, "grain", "product", "period_start", "forecast", "why") == [
+        ("parent", "P2", H2, 4.0, "product not active"),
+        ("leaf", "P1", H1, 2.0, "customer span not started"),
+        ("leaf", "P2", H2, 4.0, "product not active"),
+    ]
+
+
+def test_no_volume_outside_active_span_when_spans_are_respected(make_spans, make_products):
+    products = make_products([("P1", "a", "2026-02-09")])
+    spans = make_spans([("P1", "S1", "C1", "2026-02-09")])
+    leaf = leaves([("P1", "S1", "C1", H1, 0.0), ("P1", "S1", "C1", H2, 5.0)])
+    parent = parents([("P1", "S1", H1, 0.0), ("P1", "S1", H2, 5.0)])
+    assert find_volume_outside_active_span(parent, leaf, spans, products, "week").empty
 
 
 # ------------------------------------------------------------------ negative / childless

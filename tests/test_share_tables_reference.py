@@ -70,6 +70,7 @@ def make_history(seed: int = 7, parents=PARENTS) -> pd.DataFrame:
     h["origin"] = "own"
     h["source_product"] = h["product"]
     h["source_customer"] = h["customer"]
+    h["shortage"] = False
     return LifecycleHistory.validate(h)
 
 
@@ -207,7 +208,7 @@ def test_forecast_cycle_split_equals_middle_out(method, td_method):
     children = children_of(history)
     shares = compute_shares(history, children, cfg, CYCLE)
     target = reinitialize_target(shares, history, cfg, CYCLE)
-    fc = forecast_cycle(history, children, target, shares, cfg, CYCLE)
+    fc = forecast_cycle(history, children, target, cfg, CYCLE)
     assert (fc.parent["forecast"] > 0).all()  # a zero parent forecast would make the check empty
     # reference: hierarchicalforecast 1.5.3 MiddleOut(..., top_down_method=td_method) fed with our parent forecasts
     ref = reference_split(history, fc.parent[["product", "site", "period_start", "forecast"]], td_method)
@@ -226,7 +227,7 @@ def test_single_parent_split_equals_top_down(method, td_method):
     children = children_of(history)
     shares = compute_shares(history, children, cfg, CYCLE)
     target = reinitialize_target(shares, history, cfg, CYCLE)
-    fc = forecast_cycle(history, children, target, shares, cfg, CYCLE)
+    fc = forecast_cycle(history, children, target, cfg, CYCLE)
     assert (fc.parent["forecast"] > 0).all()
 
     # reference: hierarchicalforecast 1.5.3 TopDown(method=td_method) on hierarchy ps / ps-customer
@@ -329,3 +330,35 @@ def test_periods_without_parent_volume_inside_the_window(method, td_method):
     np.testing.assert_allclose(got.to_numpy(), expected.to_numpy(), rtol=0, atol=TOL)
     sums = shares.groupby(["product", "site"])["share"].sum()
     np.testing.assert_allclose(sums.to_numpy(), 1.0, rtol=0, atol=1e-12)
+
+
+def test_pooled_shares_renormalised_after_a_phase_out_equal_middle_out_on_the_remaining_children():
+    """A child that phases out mid-horizon: the others' renormalised pooled shares are the library's
+    proportion_averages over a hierarchy without that child.
+
+    pooled: p_j / sum_{k active} p_k = sum_t y_{j,t} / sum_{k active} sum_t y_{k,t}, which is exactly
+    proportion_averages with the leaving child left out of the history. (mean_of_ratios has no such
+    identity: its proportions are taken against the whole parent, so it has no outside reference here.)
+    """
+    history = make_history(seed=29)
+    cfg = config("pooled")
+    children = children_of(history)
+    leaving = children["customer"] == "C1"  # one customer of every parent ends after the second horizon period
+    children["first_active_period"] = HORIZON_STARTS[0]
+    children["last_active_period"] = np.where(leaving, HORIZON_STARTS[1], HORIZON_STARTS[-1])
+    shares = compute_shares(history, children, cfg, CYCLE)
+    target = reinitialize_target(shares, history, cfg, CYCLE)
+    late = target[target["period_start"] == HORIZON_STARTS[2]].set_index(LEAF)["share"].sort_index()
+    assert (late.xs("C1", level="customer") == 0).all()
+    remaining = history[history["customer"] != "C1"]
+    # reference: hierarchicalforecast 1.5.3 MiddleOut(..., top_down_method="proportion_averages") on the history
+    # of the remaining children only
+    expected = implied_shares(reference_split(remaining, constant_parent_forecast(lambda p, s, h: 1.0), "proportion_averages"))
+    got = late[late.index.get_level_values("customer") != "C1"]
+    assert list(got.index) == list(expected.index)
+    np.testing.assert_allclose(got.to_numpy(), expected.to_numpy(), rtol=0, atol=TOL)
+    # and before the phase-out the shares are still the full-hierarchy ones, which differ
+    early = target[target["period_start"] == HORIZON_STARTS[0]].set_index(LEAF)["share"].sort_index()
+    full = implied_shares(reference_split(history, constant_parent_forecast(lambda p, s, h: 1.0), "proportion_averages"))
+    np.testing.assert_allclose(early.to_numpy(), full.to_numpy(), rtol=0, atol=TOL)
+    assert np.abs(early[got.index].to_numpy() - got.to_numpy()).max() > 1e-3

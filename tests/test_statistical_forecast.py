@@ -123,24 +123,15 @@ def cfg(make_config, grain="product_site"):
 
 
 def targets(rows):
-    """rows: (product, site, customer, period_start, target)."""
-    frame = pd.DataFrame(rows, columns=["product", "site", "customer", "period_start", "target"])
+    """rows: (product, site, customer, period_start, target[, share[, zero_share_reason]]); share defaults to 0.5."""
+    full = [tuple(r) + (0.5, None)[len(r) - 5 :] for r in rows]
+    frame = pd.DataFrame(full, columns=["product", "site", "customer", "period_start", "target", "share", "zero_share_reason"])
     frame["period_start"] = pd.to_datetime(frame["period_start"])
     frame["cycle_date"] = CYCLE
-    frame["share"] = 0.5
     frame["parent_baseline"] = 1.0
-    return ReinitializedTarget.validate(frame[["product", "site", "customer", "period_start", "cycle_date", "target", "share", "parent_baseline"]])
-
-
-def shares(rows):
-    """rows: (product, site, customer, share)."""
-    out = [
-        (p, s, c, CYCLE, "a", share, "pooled", 4, 4, shift_periods(CYCLE, -4, "week"), "none", 0.0, 0.0)
-        for p, s, c, share in rows
-    ]
-    cols = ["product", "site", "customer", "cycle_date", "product_class", "share", "method", "window", "window_used",
-            "window_start", "fallback", "child_volume", "parent_volume"]
-    return ShareTable.validate(pd.DataFrame(out, columns=cols))
+    frame["zero_share_reason"] = frame["zero_share_reason"].astype(object)
+    columns = ["product", "site", "customer", "period_start", "cycle_date", "target", "share", "parent_baseline", "zero_share_reason"]
+    return ReinitializedTarget.validate(frame[columns])
 
 
 def constant_history(make_history, per_customer):
@@ -157,7 +148,7 @@ def test_leaf_is_parent_forecast_times_target_over_sum_of_targets(make_history, 
     history = constant_history(make_history, {"C1": 4, "C2": 8})
     children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
     tg = targets([("P1", "S1", "C1", H1, 1), ("P1", "S1", "C2", H1, 3), ("P1", "S1", "C1", H2, 2), ("P1", "S1", "C2", H2, 2)])
-    res = forecast_cycle(history, children, tg, shares([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)]), cfg(make_config), CYCLE)
+    res = forecast_cycle(history, children, tg, cfg(make_config), CYCLE)
     ParentForecast.validate(res.parent)
     StatisticalForecast.validate(res.leaf)
     # parent history 4 + 8 = 12 every week: smooth, Croston of a constant -> 12
@@ -174,7 +165,7 @@ def test_intermittent_parent_forecast_by_hand_is_split_by_target(make_history, m
     history = make_history([("P1", "S1", "C1", WEEKS[0], 4), ("P1", "S1", "C1", WEEKS[2], 6)])
     children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
     tg = targets([("P1", "S1", c, h, t) for h in (H1, H2) for c, t in (("C1", 1), ("C2", 4))])
-    res = forecast_cycle(history, children, tg, shares([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)]), cfg(make_config), CYCLE)
+    res = forecast_cycle(history, children, tg, cfg(make_config), CYCLE)
     # parent series 4, 0, 6, 0: ADI 4/2 = 2, sizes 4, 6 -> CV2 1/25 = 0.04 -> intermittent
     assert set(res.parent["demand_class"]) == {"intermittent"}
     # sizes 4, 6: SES 4 -> 0.1 x 6 + 0.9 x 4 = 4.2; intervals 1, 2: SES 1 -> 0.1 x 2 + 0.9 x 1 = 1.1
@@ -189,32 +180,18 @@ def test_intermittent_parent_forecast_by_hand_is_split_by_target(make_history, m
 def test_parent_whose_targets_are_all_zero_is_split_by_shares(make_history, make_children, make_config):
     history = constant_history(make_history, {"C1": 4, "C2": 8})
     children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
-    tg = targets([("P1", "S1", c, h, 0.0) for h in (H1, H2) for c in ("C1", "C2")])
-    res = forecast_cycle(history, children, tg, shares([("P1", "S1", "C1", 0.25), ("P1", "S1", "C2", 0.75)]), cfg(make_config), CYCLE)
-    # targets sum to 0 -> basis is the share: 12 x 0.25 = 3, 12 x 0.75 = 9
+    tg = targets([("P1", "S1", c, h, 0.0, s) for h in (H1, H2) for c, s in (("C1", 0.25), ("C2", 0.75))])
+    res = forecast_cycle(history, children, tg, cfg(make_config), CYCLE)
+    # targets sum to 0 -> basis is the period's share: 12 x 0.25 = 3, 12 x 0.75 = 9
     assert leaf_values(res) == pytest.approx({("C1", H1): 3.0, ("C2", H1): 9.0, ("C1", H2): 3.0, ("C2", H2): 9.0})
     assert set(res.leaf["split_basis"]) == {"share"}
-
-
-def test_reference_history_is_left_out_of_the_parent_series(make_history, make_children, make_config):
-    history = make_history(
-        [("P1", "S1", "C1", w, q) for w, q in zip(WEEKS, [12, 12, 6, 6])]
-        + [("P1", "S1", "C2", w, 6) for w in WEEKS[2:]]
-        + [("P1", "S1", "C2", w, 12, "reference", "P1", "C1") for w in WEEKS[:2]]
-    )
-    children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
-    tg = targets([("P1", "S1", c, h, 1.0) for h in (H1, H2) for c in ("C1", "C2")])
-    res = forecast_cycle(history, children, tg, shares([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)]), cfg(make_config), CYCLE)
-    # real parent history: 12, 12, 6 + 6, 6 + 6 = 12 every week -> 12
-    # (with the copies: 24, 24, 12, 12 -> 21.72)
-    assert res.parent["forecast"].tolist() == pytest.approx([12.0, 12.0])
 
 
 def test_parent_without_demand_is_forecast_zero(make_history, make_children, make_config):
     history = make_history([("P1", "S1", "C1", w, 0) for w in WEEKS])
     children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
     tg = targets([("P1", "S1", c, h, 0.0) for h in (H1, H2) for c in ("C1", "C2")])
-    res = forecast_cycle(history, children, tg, shares([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)]), cfg(make_config), CYCLE)
+    res = forecast_cycle(history, children, tg, cfg(make_config), CYCLE)
     assert set(res.parent["demand_class"]) == {"no_demand"}
     assert res.parent["forecast"].tolist() == [0.0, 0.0]
     assert res.leaf["forecast"].tolist() == [0.0] * 4
@@ -226,7 +203,7 @@ def test_product_site_customer_parent_is_the_sum_of_its_leaf_forecasts(make_hist
     # targets 3 : 1 would give 9 and 3; a bottom-up class ignores them
     tg = targets([("P1", "S1", c, h, t) for h in (H1, H2) for c, t in (("C1", 3), ("C2", 1))])
     res = forecast_cycle(
-        history, children, tg, shares([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)]), cfg(make_config, "product_site_customer"), CYCLE
+        history, children, tg, cfg(make_config, "product_site_customer"), CYCLE
     )
     # each child forecast on its own: constant 4 -> 4, constant 8 -> 8
     assert leaf_values(res) == pytest.approx({("C1", H1): 4.0, ("C2", H1): 8.0, ("C1", H2): 4.0, ("C2", H2): 8.0})
@@ -237,23 +214,32 @@ def test_product_site_customer_parent_is_the_sum_of_its_leaf_forecasts(make_hist
     assert set(res.parent["forecast_grain"]) == {"product_site_customer"}
 
 
-def test_product_site_customer_series_leave_out_copied_reference_history(make_history, make_children, make_config):
-    # C2 is new: own 8, 8 in the last two weeks; C1's 4, 4 of the first two weeks copied to it
-    history = make_history(
-        [("P1", "S1", "C1", w, 4) for w in WEEKS]
-        + [("P1", "S1", "C2", w, 8) for w in WEEKS[2:]]
-        + [("P1", "S1", "C2", w, 4, "reference", "P1", "C1") for w in WEEKS[:2]]
-    )
+def test_new_customer_history_is_part_of_the_parent_series(make_history, make_children, make_config):
+    # C2 is new (two weeks of its own); its volume is real parent volume, not a copy
+    history = make_history([("P1", "S1", "C1", w, 6) for w in WEEKS] + [("P1", "S1", "C2", w, 6) for w in WEEKS[2:]])
     children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
     tg = targets([("P1", "S1", c, h, 1.0) for h in (H1, H2) for c in ("C1", "C2")])
-    res = forecast_cycle(
-        history, children, tg, shares([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)]), cfg(make_config, "product_site_customer"), CYCLE
+    res = forecast_cycle(history, children, tg, cfg(make_config), CYCLE)
+    # parent 6, 6, 12, 12: sizes SES 6 -> 6 -> 6.6 -> 7.14, interval 1 -> Croston 7.14
+    # (C1 alone, a constant 6, would forecast 6)
+    assert res.parent["forecast"].tolist() == pytest.approx([7.14, 7.14])
+
+
+def test_parent_period_whose_shares_are_all_zero_is_forecast_zero_with_its_reason(make_history, make_children, make_config):
+    history = constant_history(make_history, {"C1": 4, "C2": 8})
+    children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
+    # H1 splits 1 : 3; in H2 the product has ended, every share 0 with reason product_not_active
+    tg = targets(
+        [("P1", "S1", "C1", H1, 1.0, 0.25), ("P1", "S1", "C2", H1, 3.0, 0.75)]
+        + [("P1", "S1", c, H2, 0.0, 0.0, "product_not_active") for c in ("C1", "C2")]
     )
-    # copied rows feed the share basis only, so C2's series is its own 8, 8 -> 8, and the
-    # parent is 4 + 8 = 12. (Counting the copies: sizes 4, 4, 8, 8 -> SES 4, 4, 4.4, 4.76 ->
-    # 4.76, and C1's first two weeks would be in the parent twice.)
-    assert leaf_values(res)[("C2", H1)] == pytest.approx(8.0)
-    assert res.parent["forecast"].tolist() == pytest.approx([12.0, 12.0])
+    res = forecast_cycle(history, children, tg, cfg(make_config), CYCLE)
+    ParentForecast.validate(res.parent)
+    # the model gives 12 in both weeks; H2 is set to 0 and says why
+    assert res.parent["forecast"].tolist() == pytest.approx([12.0, 0.0])
+    assert [None if pd.isna(r) else r for r in res.parent["zero_reason"]] == [None, "product_not_active"]
+    # H1: 12 x 1/4 = 3, 12 x 3/4 = 9; H2: 0 and 0 (children still sum to the parent)
+    assert leaf_values(res) == pytest.approx({("C1", H1): 3.0, ("C2", H1): 9.0, ("C1", H2): 0.0, ("C2", H2): 0.0})
 
 
 def _series(nonzero_sizes, length):
@@ -297,7 +283,7 @@ def test_auto_class_follows_forecast_proportions_chosen_by_the_backtest(make_his
     children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
     # targets 3 : 1 would give 9 and 3; forecast proportions follow the children's own forecasts 4 : 8
     tg = targets([("P1", "S1", c, h, t) for h in (H1, H2) for c, t in (("C1", 3), ("C2", 1))])
-    res = forecast_cycle(history, children, tg, shares([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)]), auto_cfg(make_config), CYCLE,
+    res = forecast_cycle(history, children, tg, auto_cfg(make_config), CYCLE,
                          chosen={"a": "forecast_proportions"})
     # parent 12 (Croston of a constant) x 4/12 and x 8/12
     assert leaf_values(res) == pytest.approx({("C1", H1): 4.0, ("C2", H1): 8.0, ("C1", H2): 4.0, ("C2", H2): 8.0})
@@ -313,7 +299,7 @@ def test_auto_class_reconciled_by_mint_stays_coherent(make_history, make_childre
     history = make_history([("P1", "S1", "C1", w, q) for w, q in zip(WEEKS, [4, 6, 4, 6])] + [("P1", "S1", "C2", w, 8) for w in WEEKS])
     children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
     tg = targets([("P1", "S1", c, h, 1.0) for h in (H1, H2) for c in ("C1", "C2")])
-    res = forecast_cycle(history, children, tg, shares([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)]), auto_cfg(make_config), CYCLE,
+    res = forecast_cycle(history, children, tg, auto_cfg(make_config), CYCLE,
                          chosen={"a": "mint_shrink"})
     leaf = res.leaf.groupby("period_start")["forecast"].sum().to_numpy()
     assert leaf == pytest.approx(res.parent["forecast"].to_numpy(), rel=1e-12)
@@ -326,7 +312,7 @@ def test_auto_class_without_a_backtest_choice_is_a_named_config_error(make_histo
     children = make_children([("P1", "S1", "C1")])
     tg = targets([("P1", "S1", "C1", h, 1.0) for h in (H1, H2)])
     with pytest.raises(ConfigError) as err:
-        forecast_cycle(history, children, tg, shares([("P1", "S1", "C1", 1.0)]), auto_cfg(make_config), CYCLE)
+        forecast_cycle(history, children, tg, auto_cfg(make_config), CYCLE)
     assert "product_classes.a.forecast_grain" in str(err.value) and "backtest_accuracy" in str(err.value)
 
 
@@ -334,7 +320,7 @@ def test_forecast_models_table_names_model_and_croston_state(make_history, make_
     history = make_history([("P1", "S1", "C1", WEEKS[0], 4), ("P1", "S1", "C1", WEEKS[2], 6)])
     children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
     tg = targets([("P1", "S1", c, h, 1.0) for h in (H1, H2) for c in ("C1", "C2")])
-    res = forecast_cycle(history, children, tg, shares([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)]), cfg(make_config), CYCLE)
+    res = forecast_cycle(history, children, tg, cfg(make_config), CYCLE)
     models = ForecastModels.validate(res.models)
     row = models.iloc[0]
     # one parent series (top-down): sizes 4, 6 -> 4.2; intervals 1, 2 -> 1.1 (see the intermittent test above)
@@ -349,8 +335,7 @@ def test_fitted_values_are_kept_for_the_classes_mint_reconciles(make_history, ma
     history = constant_history(make_history, {"C1": 4, "C2": 8})
     children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
     tg = targets([("P1", "S1", c, h, 1.0) for h in (H1, H2) for c in ("C1", "C2")])
-    sh = shares([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)])
-    res = forecast_cycle(history, children, tg, sh, auto_cfg(make_config), CYCLE, chosen={"a": "wls_var"})
+    res = forecast_cycle(history, children, tg, auto_cfg(make_config), CYCLE, chosen={"a": "wls_var"})
     fitted = ForecastFittedValues.validate(res.fitted)
     # parent and two leaves, 4 weeks each; statsforecast's Croston has no fitted value for the first week -> 3 each
     assert sorted(set(zip(fitted["grain"], fitted["customer"]))) == [("leaf", "C1"), ("leaf", "C2"), ("parent", "")]
@@ -358,4 +343,17 @@ def test_fitted_values_are_kept_for_the_classes_mint_reconciles(make_history, ma
     assert leaf_c2["fitted"].tolist() == pytest.approx([8.0, 8.0, 8.0])
     assert leaf_c2["period_start"].tolist() == [pd.Timestamp(w) for w in WEEKS[1:]]
     # a top-down class needs no residuals, so nothing is kept
-    assert forecast_cycle(history, children, tg, sh, cfg(make_config), CYCLE).fitted.empty
+    assert forecast_cycle(history, children, tg, cfg(make_config), CYCLE).fitted.empty
+
+
+def test_leaf_grain_child_is_forecast_zero_outside_its_active_periods(make_history, make_children, make_config):
+    history = constant_history(make_history, {"C1": 4, "C2": 8})
+    children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")]).assign(
+        first_active_period=[H1, H2], last_active_period=[H1, H2]  # C1 ends after H1, C2 starts in H2
+    )
+    tg = targets([("P1", "S1", c, h, 1.0) for h in (H1, H2) for c in ("C1", "C2")])
+    res = forecast_cycle(history, children, tg, cfg(make_config, "product_site_customer"), CYCLE)
+    # own forecasts 4 and 8, kept only where active: C1 H1 4, C2 H2 8; the parent is their sum
+    assert leaf_values(res) == pytest.approx({("C1", H1): 4.0, ("C2", H1): 0.0, ("C1", H2): 0.0, ("C2", H2): 8.0})
+    assert res.parent["forecast"].tolist() == pytest.approx([4.0, 8.0])
+    assert res.parent["zero_reason"].isna().all()

@@ -53,8 +53,11 @@ def sha256(path: Path) -> str:
     return digest.hexdigest()
 
 
-def read_text_table(path: Path, columns: tuple[str, ...]) -> pd.DataFrame:
-    """The file's `columns` as strings ('' for blank), in file order."""
+def read_text_table(path: Path, columns: tuple[str, ...], optional: tuple[str, ...] = ()) -> pd.DataFrame:
+    """The file's `columns` as strings ('' for blank), in file order.
+
+    `optional` columns may be absent from the file; an absent one is all blank.
+    """
     try:
         if path.suffix == ".parquet":
             df = pd.read_parquet(path)
@@ -70,7 +73,10 @@ def read_text_table(path: Path, columns: tuple[str, ...]) -> pd.DataFrame:
             f"{path}: missing column(s) {missing}; the file has {list(df.columns)}. "
             f"Expected columns: {list(columns)}."
         )
-    return df.loc[:, list(columns)].apply(lambda s: s.str.strip()).reset_index(drop=True)
+    for c in optional:
+        if c not in df.columns:
+            df[c] = ""
+    return df.loc[:, list(columns) + list(optional)].apply(lambda s: s.str.strip()).reset_index(drop=True)
 
 
 def blanks_to_none(df: pd.DataFrame) -> pd.DataFrame:

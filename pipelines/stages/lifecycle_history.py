@@ -10,16 +10,19 @@ Rules, in the order they run (each one's moved or dropped quantity is a row of
    of the successor chain (A -> B -> C goes to C) for the same site and
    customer, kept as separate rows with `origin = successor`;
    `successor_without_span` - dropped when that customer has no span on the
-   successor active at the cycle date; `retired_product_without_successor` -
+   successor active in any period of the horizon; `retired_product_without_successor` -
    dropped when there is no successor.
 3. `phased_out_before_cycle` - a customer whose span ends before the cycle
    date leaves the share basis: its history is dropped here.
-4. `reference_history_copied` - a customer active at the cycle date with fewer
-   than `lifecycle.min_history_periods` periods of own history and a
-   `reference_customer` gets the reference's history (same product and site)
-   for the periods before its own history starts, as rows with
-   `origin = reference`. Copied rows feed the share basis only: the parent's
-   forecast history leaves them out, so the parent's volume is not counted twice.
+
+Every row carries `shortage` from cleaned history (False where the input has no
+such column): a recorded supply shortage of the source product x site x
+period. Shares and the parent baseline leave such periods out.
+
+New customers are not given anyone else's history here: `active_children`
+counts each child's own periods, and the share table decides a new
+customer's share (from its reference customer, a planner-given initial share,
+or none yet), see `pipelines.stages.share_tables`.
 """
 
 from __future__ import annotations
@@ -29,12 +32,12 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import active_mask, period_ordinal, span_bounds
+from pipelines.calendar import active_mask, ordinal_to_start, period_ordinal, span_bounds
 from pipelines.config import PlanningConfig
 from pipelines.errors import LifecycleError
 from pipelines.keys import LEAF, lookup
 
-HISTORY_COLUMNS = LEAF + ["period_start", "quantity", "origin", "source_product", "source_customer"]
+HISTORY_COLUMNS = LEAF + ["period_start", "quantity", "origin", "source_product", "source_customer", "shortage"]
 AUDIT_COLUMNS = LEAF + ["rule", "periods", "quantity", "detail"]
 
 
@@ -71,18 +74,44 @@ def resolve_successors(products: pd.DataFrame) -> pd.Series:
     )
 
 
-def active_children(spans: pd.DataFrame, products: pd.DataFrame, cycle_date: pd.Timestamp, period: str) -> pd.DataFrame:
-    """Customer spans active at the cycle date, on products not retired before it.
+def active_children(
+    spans: pd.DataFrame, products: pd.DataFrame, history: pd.DataFrame, config: PlanningConfig, cycle_date: pd.Timestamp
+) -> pd.DataFrame:
+    """The children that can receive a share: customer spans active in any period of the horizon.
 
-    These are the children that receive a share. Columns: leaf keys and product_class.
+    A child is active in horizon period h when h lies inside its customer span
+    and inside its product's span. Spans whose intersection with the horizon is
+    empty (ended before the cycle date, starting after the horizon, on a product
+    retired before the cycle or launched after the horizon) are not children.
+
+    history: lifecycle history, to count each child's own distinct periods
+    (a period with an own row and a mapped successor row is one period).
+    Columns: leaf keys, product_class, first_active_period, last_active_period,
+    own_periods, reference_customer, scale, initial_share.
     """
+    period = config.calendar.period
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
+    last_ord = cycle_ord + config.calendar.horizon - 1
     s_from, s_to = span_bounds(spans, period)
     p_from, p_to = span_bounds(products, period)
-    product_ok = pd.Series(active_mask(p_from, p_to, cycle_ord), index=products["product"].to_numpy())
-    ok = active_mask(s_from, s_to, cycle_ord) & spans["product"].map(product_ok).fillna(False).to_numpy(bool)
+    ppos = spans["product"].map(pd.Series(np.arange(len(products)), index=products["product"].to_numpy()))
+    known = ppos.notna().to_numpy()
+    ppos = ppos.fillna(0).astype(np.int64).to_numpy()
+    # first and last active ordinal: span, product span and horizon intersected (NaN = open)
+    first = np.fmax(np.fmax(s_from, np.where(known, p_from[ppos], np.nan)), cycle_ord)
+    last = np.fmin(np.fmin(s_to, np.where(known, p_to[ppos], np.nan)), last_ord)
+    ok = known & (first <= last)
     out = spans.loc[ok, LEAF].reset_index(drop=True)
     out["product_class"] = out["product"].map(products.set_index("product")["product_class"]).to_numpy()
+    out["first_active_period"] = ordinal_to_start(first[ok].astype(np.int64), period)
+    out["last_active_period"] = ordinal_to_start(last[ok].astype(np.int64), period)
+    own = history[LEAF + ["period_start"]].drop_duplicates().groupby(LEAF, sort=False).size()
+    out["own_periods"] = own.reindex(pd.MultiIndex.from_frame(out[LEAF])).fillna(0).to_numpy(np.int64)
+    for column in ("reference_customer", "scale", "initial_share"):
+        values = spans[column] if column in spans.columns else pd.Series(np.nan, index=spans.index)
+        out[column] = values[ok].to_numpy()
+    out["scale"] = pd.to_numeric(out["scale"]).astype(float)
+    out["initial_share"] = pd.to_numeric(out["initial_share"]).astype(float)
     return out
 
 
@@ -111,6 +140,8 @@ def apply_lifecycle(
     period = config.calendar.period
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
     h = cleaned[LEAF + ["period_start", "quantity"]].reset_index(drop=True)
+    # the cleansing stage's shortage flag (product x site x period); absent = none recorded
+    h["shortage"] = cleaned["shortage"].to_numpy(bool) if "shortage" in cleaned.columns else False
     h_ord = period_ordinal(h["period_start"], period)
     s_from, s_to = span_bounds(spans, period)
     audits = []
@@ -136,12 +167,16 @@ def apply_lifecycle(
     moved["product"] = target[retired & ~no_successor].astype(str).to_numpy()
     moved["origin"] = "successor"
     mpos = lookup(moved, LEAF, spans)
-    m_ok = (mpos >= 0) & active_mask(s_from[np.clip(mpos, 0, None)], s_to[np.clip(mpos, 0, None)], cycle_ord)
+    # the successor span must overlap the horizon [cycle, cycle + horizon - 1]
+    horizon_end = cycle_ord + config.calendar.horizon - 1
+    m_from, m_to = s_from[np.clip(mpos, 0, None)], s_to[np.clip(mpos, 0, None)]
+    with np.errstate(invalid="ignore"):
+        m_ok = (mpos >= 0) & (np.isnan(m_from) | (m_from <= horizon_end)) & (np.isnan(m_to) | (m_to >= cycle_ord))
     audits.append(
         _audit(
             moved[~m_ok].assign(product=moved["source_product"][~m_ok]),
             "successor_without_span",
-            "customer has no active span on successor " + moved["product"][~m_ok],
+            "customer has no span active in the horizon on successor " + moved["product"][~m_ok],
         )
     )
     moved = moved[m_ok]
@@ -154,48 +189,7 @@ def apply_lifecycle(
     audits.append(_audit(h[phased_out], "phased_out_before_cycle", "customer span ended before the cycle date"))
     h = h[~phased_out].reset_index(drop=True)
 
-    # 4. new customers take their reference customer's earlier history
-    copies, copy_audit = _reference_copies(h, spans, s_from, s_to, cycle_ord, config)
-    audits.append(copy_audit)
-    h = _stack([h, copies])
-
     h = h[HISTORY_COLUMNS].sort_values(LEAF + ["period_start", "origin", "source_product"], kind="stable")
     audit = _stack(audits, AUDIT_COLUMNS)
     audit = audit.astype({"periods": np.int64, "quantity": float})
     return LifecycleResult(history=h.reset_index(drop=True), audit=audit.reset_index(drop=True))
-
-
-def _reference_copies(h, spans, s_from, s_to, cycle_ord, config):
-    period = config.calendar.period
-    active = active_mask(s_from, s_to, cycle_ord)
-    new = spans[active & spans["reference_customer"].notna().to_numpy()][LEAF + ["reference_customer"]]
-    if new.empty:
-        return pd.DataFrame(columns=HISTORY_COLUMNS), pd.DataFrame(columns=AUDIT_COLUMNS)
-    # distinct periods: a mapped successor row and an own row of one period are one period of history
-    own = h.groupby(LEAF, sort=False)["period_start"].agg(size="nunique", min="min")
-    new = new.join(own, on=LEAF)
-    new["size"] = new["size"].fillna(0).astype(np.int64)
-    new = new[new["size"] < config.lifecycle.min_history_periods]
-    first_own = np.where(new["size"] > 0, period_ordinal(new["min"].fillna(pd.Timestamp(0)), period), cycle_ord)
-    new = new.assign(first_own=first_own)
-    ref = h.merge(
-        new.rename(columns={"customer": "new_customer", "reference_customer": "customer"})[
-            ["product", "site", "customer", "new_customer", "first_own"]
-        ],
-        on=["product", "site", "customer"],
-    )
-    ref = ref[period_ordinal(ref["period_start"], period) < ref["first_own"].to_numpy()]
-    copies = ref.assign(
-        source_customer=ref["customer"], customer=ref["new_customer"], origin="reference"
-    )[HISTORY_COLUMNS]
-    audit = _audit(copies, "reference_history_copied", "history copied from reference customer " + copies["source_customer"])
-    without = new[~new.set_index(LEAF).index.isin(copies.set_index(LEAF).index)]
-    if len(without):
-        extra = without[LEAF].assign(
-            rule="reference_history_copied",
-            periods=0,
-            quantity=0.0,
-            detail="reference customer " + without["reference_customer"] + " has no history before this customer's own",
-        )
-        audit = _stack([audit, extra[AUDIT_COLUMNS]], AUDIT_COLUMNS)
-    return copies.reset_index(drop=True), audit

@@ -15,16 +15,20 @@ from pipelines.stages.inputs import InputFile, blanks_to_none, find_files, read_
 
 PRODUCT_COLUMNS = ("product", "product_class", "active_from", "active_to", "successor")
 SPAN_COLUMNS = ("product", "site", "customer", "active_from", "active_to", "reference_customer")
+# optional span columns for new customers: blank when the file lacks them
+SPAN_OPTIONAL_COLUMNS = ("scale", "initial_share")
 ADJUSTMENT_COLUMNS = ("measure", "product", "site", "period_start", "value")
 SHORTAGE_COLUMNS = ("product", "site", "period_start")
 
 
-def _load(folder: Path, name: str, columns: tuple[str, ...], required: bool = True) -> tuple[pd.DataFrame, list[InputFile]]:
+def _load(
+    folder: Path, name: str, columns: tuple[str, ...], required: bool = True, optional: tuple[str, ...] = ()
+) -> tuple[pd.DataFrame, list[InputFile]]:
     paths = find_files(folder, name, required=required)
     if not paths:
-        return pd.DataFrame({c: pd.Series(dtype=object) for c in columns}), []
+        return pd.DataFrame({c: pd.Series(dtype=object) for c in columns + optional}), []
     path = paths[0]
-    df = blanks_to_none(read_text_table(path, columns))
+    df = blanks_to_none(read_text_table(path, columns, optional))
     return df, [InputFile(path=path, rows=len(df), sha256=sha256(path))]
 
 
@@ -33,7 +37,7 @@ def load_products(folder: Path) -> tuple[pd.DataFrame, list[InputFile]]:
 
 
 def load_customer_spans(folder: Path) -> tuple[pd.DataFrame, list[InputFile]]:
-    return _load(folder, "customer_spans", SPAN_COLUMNS)
+    return _load(folder, "customer_spans", SPAN_COLUMNS, optional=SPAN_OPTIONAL_COLUMNS)
 
 
 def load_adjustments(folder: Path) -> tuple[pd.DataFrame, list[InputFile]]:

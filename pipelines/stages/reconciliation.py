@@ -39,10 +39,31 @@ def find_incoherent(reconciliation: pd.DataFrame, tolerance: float = RELATIVE_TO
     return reconciliation[reconciliation["relative_difference"] > tolerance]
 
 
-def find_shares_not_summing_to_one(shares: pd.DataFrame, tolerance: float = SHARE_TOLERANCE) -> pd.DataFrame:
-    """Parents whose shares do not sum to 1."""
-    sums = shares.groupby(PARENT, sort=True, observed=True)["share"].agg(share_sum="sum", children="size").reset_index()
-    return sums[(sums["share_sum"] - 1.0).abs() > tolerance]
+def find_shares_not_summing_to_one(target: pd.DataFrame, tolerance: float = SHARE_TOLERANCE) -> pd.DataFrame:
+    """Parent periods whose shares neither sum to 1 nor are all 0 with a recorded reason.
+
+    target: per-period shares (`reinitialized_target`: parent keys, period_start,
+    share, zero_share_reason). A period summing to 1 must have no reason; an
+    all-zero period must have its reason on every row.
+    """
+    t = target.assign(
+        has_reason=target["zero_share_reason"].notna(),
+        nonzero=target["share"] != 0,
+    )
+    sums = (
+        t.groupby(PARENT + ["period_start"], sort=True, observed=True)
+        .agg(
+            share_sum=("share", "sum"),
+            children=("share", "size"),
+            with_reason=("has_reason", "sum"),
+            nonzero=("nonzero", "sum"),
+            zero_share_reason=("zero_share_reason", "first"),
+        )
+        .reset_index()
+    )
+    sums_to_one = ((sums["share_sum"] - 1.0).abs() <= tolerance) & (sums["with_reason"] == 0)
+    zero_with_reason = (sums["nonzero"] == 0) & (sums["with_reason"] == sums["children"])
+    return sums[~(sums_to_one | zero_with_reason)].drop(columns=["nonzero"])
 
 
 def find_volume_after_phase_out(leaf: pd.DataFrame, spans: pd.DataFrame, period: str) -> pd.DataFrame:
@@ -55,6 +76,43 @@ def find_volume_after_phase_out(leaf: pd.DataFrame, spans: pd.DataFrame, period:
     out = leaf.loc[after, LEAF + ["period_start", "forecast"]].copy()
     out["active_to"] = spans["active_to"].to_numpy()[pos[after]] if after.any() else pd.Series(dtype="datetime64[ns]")
     return out
+
+
+def find_volume_outside_active_span(
+    parent: pd.DataFrame, leaf: pd.DataFrame, spans: pd.DataFrame, products: pd.DataFrame, period: str
+) -> pd.DataFrame:
+    """Forecast rows with volume where the customer span has not started or the product's span does not cover the period.
+
+    Leaf rows are judged against their customer span's start and their product's
+    span; parent rows against the product's span. (Volume after a customer
+    span's end is `find_volume_after_phase_out`.)
+    """
+    p_from, p_to = span_bounds(products, period)
+    s_from, _ = span_bounds(spans, period)
+
+    def product_bounds(frame: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+        pos = lookup(frame, ["product"], products)
+        return (
+            np.where(pos >= 0, p_from[np.clip(pos, 0, None)], np.nan),
+            np.where(pos >= 0, p_to[np.clip(pos, 0, None)], np.nan),
+        )
+
+    out = []
+    for grain, frame in (("parent", parent), ("leaf", leaf)):
+        ords = period_ordinal(frame["period_start"], period)
+        lo, hi = product_bounds(frame)
+        why = np.full(len(frame), None, dtype=object)
+        with np.errstate(invalid="ignore"):
+            why[(ords < lo) | (ords > hi)] = "product not active"
+            if grain == "leaf":
+                pos = lookup(frame, LEAF, spans)
+                start = np.where(pos >= 0, s_from[np.clip(pos, 0, None)], np.nan)
+                why[(ords < start) & pd.isna(why)] = "customer span not started"
+        bad = pd.notna(why) & (frame["forecast"].to_numpy() != 0)
+        keys = LEAF if grain == "leaf" else PARENT
+        out.append(frame.loc[bad, keys + ["period_start", "forecast"]].assign(grain=grain, why=why[bad]))
+    rows = [f for f in out if len(f)]
+    return pd.concat(rows, ignore_index=True) if rows else out[1].iloc[0:0]
 
 
 def find_negative(frame: pd.DataFrame, column: str = "forecast") -> pd.DataFrame:

@@ -2,15 +2,20 @@
 
 Per product class the forecast runs at the class's `forecast_grain`:
 
-- `product_site` (default): one series per parent, the sum of its active
-  children's history (copied reference history left out). Each parent's
-  forecast is split pro rata to its children by `reinitialized_target`:
+- `product_site` (default): one series per parent, the sum of its children's
+  lifecycle history. Each parent's forecast is split pro rata to its children
+  by `reinitialized_target`, period by period:
   leaf_{j,h} = F_{P,h} x target_{j,h} / sum_k target_{k,h}; where a parent's
-  targets sum to 0 (it fell back to an even split) the shares are the basis.
+  targets sum to 0 (it fell back to an even split) the period's shares are
+  the basis. A parent period whose shares are all 0 (`zero_share_reason`:
+  the product or every customer span has ended, or no active child holds a
+  share) is forecast as 0 and the reason is kept in `zero_reason`, so the
+  children always sum to the parent.
 - `product_site_customer`: one series per child (bottom-up); the parent's
-  forecast is the sum of its children's. Copied reference history is left out
-  here too, so a new customer is not forecast as extra volume on top of its
-  reference's: at either grain, reference history only shapes shares.
+  forecast is the sum of its children's. A child is forecast 0 outside its
+  active periods (before its span or product starts, after either ends). The
+  new-customer share rules do not apply at this grain: each child is
+  forecast from its own history.
 - `auto`: the strategy the backtest chose for the class (`backtest_accuracy`,
   lowest leaf-grain WMAPE): `top_down` or `bottom_up` as above,
   `forecast_proportions` (parent forecast split by the children's own
@@ -72,7 +77,7 @@ from pipelines.stages.intermittent import croston_states
 ADI_CUTOFF = 1.32
 CV2_CUTOFF = 0.49
 
-PARENT_COLUMNS = ["cycle_date", "product_class", "product", "site", "period_start", "forecast", "model", "demand_class", "forecast_grain"]
+PARENT_COLUMNS = ["cycle_date", "product_class", "product", "site", "period_start", "forecast", "model", "demand_class", "forecast_grain", "zero_reason"]
 LEAF_COLUMNS = LEAF + ["period_start", "cycle_date", "product_class", "forecast", "parent_forecast", "split_basis"]
 SEASONAL_MODELS = ("auto_ets", "ets_additive_season", "mstl_ets", "seasonal_naive")
 ETS_MODELS = ("auto_ets", "ets_additive_season")
@@ -434,7 +439,6 @@ def forecast_cycle(
     history: pd.DataFrame,
     children: pd.DataFrame,
     target: pd.DataFrame,
-    shares: pd.DataFrame,
     config: PlanningConfig,
     cycle_date: pd.Timestamp,
     log: Callable[[str], None] | None = None,
@@ -443,6 +447,8 @@ def forecast_cycle(
     """Parent and leaf forecasts for the horizon; see the module docstring.
 
     `chosen` maps each `auto` class to the strategy the backtest picked.
+    children: leaf keys and product_class, optionally first/last_active_period
+    (absent = active in the whole horizon). target: `reinitialized_target`.
     """
     period = config.calendar.period
     horizon = config.calendar.horizon
@@ -456,21 +462,19 @@ def forecast_cycle(
     qty = history["quantity"].to_numpy(float)
     strategies = strategy_by_class(config, chosen)
 
-    # series of both grains: real history only (copied reference history is for shares)
-    real = (history["origin"] != "reference").to_numpy()
     p_code = lookup(history, PARENT, parents)
-    ok = real & (p_code >= 0)
+    ok = p_code >= 0
     p_grid = series_grid(p_code[ok], ords[ok], qty[ok], n_parents, cycle_ord)
     c_code = lookup(history, LEAF, children)
-    okc = real & (c_code >= 0)
+    okc = c_code >= 0
     c_grid = series_grid(c_code[okc], ords[okc], qty[okc], n_children, cycle_ord)
     base = base_forecasts(
         p_grid, c_grid, parents["product_class"].to_numpy(), children["product_class"].to_numpy(), strategies, config, horizon, log
     )
 
-    # top-down basis: the reinitialized target (share where the targets are all 0)
+    # top-down basis: the reinitialized target (the period's share where the targets are all 0)
     target_m = _leaf_matrix(target, children, "target", starts)
-    share_m = np.repeat(shares.set_index(LEAF)["share"].reindex(pd.MultiIndex.from_frame(children[LEAF])).fillna(0).to_numpy()[:, None], horizon, axis=1)
+    share_m = _leaf_matrix(target, children, "share", starts)
     target_sum = np.zeros((n_parents, horizon))
     np.add.at(target_sum, parent_of_child, target_m)
     use_target = target_sum[parent_of_child] > 0
@@ -479,6 +483,18 @@ def forecast_cycle(
     strategy_of_parent = parents["product_class"].map(strategies).to_numpy()
     parent_fc, leaf_fc, source, reconciled_negatives = combine_strategies(strategy_of_parent, base, parent_of_child, basis)
     split_basis = np.where(source == "basis", np.where(use_target, "target", "share"), source)
+
+    # lifecycle: no leaf volume outside a child's active periods, none in a parent period that no
+    # child can carry (a share-split parent: no child holds a share; otherwise: no child is active);
+    # parents are then re-summed from their leaves so every strategy stays coherent
+    active = _active_matrix(children, starts, period)
+    zero_reason = _parent_reasons(target, parents, starts)
+    no_active_child = np.isin(zero_reason, ["product_not_active", "no_active_child"])
+    zeroed = np.where((strategy_of_parent == "top_down")[:, None], pd.notna(zero_reason), no_active_child)
+    zero_reason = np.where(zeroed, zero_reason, None)
+    leaf_fc = np.where(active & ~zeroed[parent_of_child], leaf_fc, 0.0)
+    parent_fc = np.zeros_like(parent_fc)
+    np.add.at(parent_fc, parent_of_child, leaf_fc)
     parent_model = np.where(strategy_of_parent == "bottom_up", "bottom_up", base.parent_label)
     grain = np.select(
         [strategy_of_parent == "top_down", strategy_of_parent == "bottom_up"], ["product_site", "product_site_customer"], "both"
@@ -493,6 +509,7 @@ def forecast_cycle(
     parent_out["demand_class"] = np.repeat(base.parent_demand, horizon)
     parent_out["forecast_grain"] = np.repeat(grain, horizon)
     parent_out["strategy"] = np.repeat(strategy_of_parent, horizon)
+    parent_out["zero_reason"] = zero_reason.ravel()
 
     leaf_out = children[LEAF].loc[children.index.repeat(horizon)].reset_index(drop=True)
     leaf_out["period_start"] = np.tile(starts.values, n_children)
@@ -545,6 +562,29 @@ def _subgrid(grid: SeriesGrid, members: np.ndarray) -> SeriesGrid:
     new_id = np.cumsum(members) - 1
     rows = members[grid.series]
     return SeriesGrid(series=new_id[grid.series[rows]], ordinal=grid.ordinal[rows], y=grid.y[rows], n_series=int(members.sum()))
+
+
+def _active_matrix(children: pd.DataFrame, starts: pd.DatetimeIndex, period: str) -> np.ndarray:
+    """(n_children, horizon) bool: the child is active in the period (all True without the span columns)."""
+    if not {"first_active_period", "last_active_period"} <= set(children.columns):
+        return np.ones((len(children), len(starts)), dtype=bool)
+    h = period_ordinal(starts, period)[None, :]
+    first = period_ordinal(pd.DatetimeIndex(children["first_active_period"]), period)[:, None]
+    last = period_ordinal(pd.DatetimeIndex(children["last_active_period"]), period)[:, None]
+    return (h >= first) & (h <= last)
+
+
+def _parent_reasons(target: pd.DataFrame, parents: pd.DataFrame, starts: pd.DatetimeIndex) -> np.ndarray:
+    """(n_parents, horizon) zero_share_reason of each parent period (None where its shares sum to 1)."""
+    out = np.full((len(parents), len(starts)), None, dtype=object)
+    if target.empty or "zero_share_reason" not in target.columns:
+        return out
+    rows = target[target["zero_share_reason"].notna()]
+    row = lookup(rows, PARENT, parents)
+    col = pd.DatetimeIndex(starts).get_indexer(pd.DatetimeIndex(rows["period_start"]))
+    ok = (row >= 0) & (col >= 0)
+    out[row[ok], col[ok]] = rows["zero_share_reason"].to_numpy(object)[ok]
+    return out
 
 
 def _leaf_matrix(frame: pd.DataFrame, children: pd.DataFrame, column: str, starts: pd.DatetimeIndex) -> np.ndarray:
