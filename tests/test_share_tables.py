@@ -272,6 +272,17 @@ def test_shortage_periods_do_not_count_toward_shares(make_history, make_children
     assert by_customer(shares, "parent_volume") == pytest.approx({"C1": 8.0, "C2": 8.0})
 
 
+def test_filled_shortage_periods_count_like_any_other_period(make_history, make_children, make_config):
+    # the same rows as above, but under `cleansing.shortages: fill_baseline` the cleansing stage has
+    # already replaced the shortage values, so age 1 stays in the window:
+    # pooled C1 (1 + 2 + 6) / 16 = 0.5625, C2 7 / 16 = 0.4375
+    config = make_config({"a": {"window": 3, "method": "pooled"}}, cleansing={"shortages": "fill_baseline"})
+    rows = [("P1", "S1", c, AGE[a], q, "own", "P1", c, a == 1 and c == "C2") for c, v in TWO_CHILDREN.items() for a, q in v.items()]
+    shares = compute_shares(make_history(rows), make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")]), config, CYCLE)
+    assert by_customer(shares) == pytest.approx({"C1": 0.5625, "C2": 0.4375})
+    assert by_customer(shares, "parent_volume") == pytest.approx({"C1": 16.0, "C2": 16.0})
+
+
 def test_new_customers_are_listed_with_how_their_share_was_set(make_history, make_config):
     volumes = {"C1": {4: 3, 3: 3, 2: 3, 1: 3}, "C2": {2: 9, 1: 9}, "C4": {1: 4}}
     children = lifecycle_children(

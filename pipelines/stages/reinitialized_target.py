@@ -56,7 +56,7 @@ def parent_baselines(shares: pd.DataFrame, history: pd.DataFrame, config: Planni
 
     row_parent = lookup(history, PARENT, parents)
     ok = row_parent >= 0
-    short = shortage_periods(history)[ok]
+    short = shortage_periods(history, config)[ok]
     row_parent = row_parent[ok]
     age = cycle_ord - period_ordinal(history["period_start"], period)[ok]
     qty = history["quantity"].to_numpy(float)[ok]

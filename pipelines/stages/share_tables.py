@@ -124,13 +124,15 @@ def mean_of_ratios(
         return np.where(periods_with_volume > 0, ratio.sum(axis=1) / periods_with_volume, 0.0)
 
 
-def shortage_periods(history: pd.DataFrame) -> np.ndarray:
+def shortage_periods(history: pd.DataFrame, config: PlanningConfig) -> np.ndarray:
     """True on every history row whose parent x period has a recorded shortage on any row.
 
-    A history without a `shortage` column has none. These rows count neither
-    toward shares nor toward the parent baseline.
+    Only under `cleansing.shortages: exclude`: these rows count neither toward
+    shares nor toward the parent baseline. Under `fill_baseline` the cleansing
+    stage has already replaced their values, so they count like any other row.
+    A history without a `shortage` column has none.
     """
-    if "shortage" not in history.columns or history.empty:
+    if config.cleansing.shortages != "exclude" or "shortage" not in history.columns or history.empty:
         return np.zeros(len(history), dtype=bool)
     flag = history["shortage"].to_numpy(bool)
     if not flag.any():
@@ -234,7 +236,7 @@ def _history_shares(
     parent_code, parents = factorize(children, PARENT)
     n_parents = len(parents)
     child_of_row = lookup(history, LEAF, children)
-    row_ok = (child_of_row >= 0) & ~shortage_periods(history)
+    row_ok = (child_of_row >= 0) & ~shortage_periods(history, config)
     child = child_of_row[row_ok]
     qty = history["quantity"].to_numpy(float)[row_ok]
     age = cycle_ord - period_ordinal(history["period_start"], period)[row_ok]
