@@ -35,7 +35,7 @@ import pandas as pd
 from pipelines.calendar import active_mask, ordinal_to_start, period_ordinal, span_bounds
 from pipelines.config import PlanningConfig
 from pipelines.errors import LifecycleError
-from pipelines.keys import LEAF, lookup
+from pipelines.keys import LEAF, factorize, lookup
 
 HISTORY_COLUMNS = LEAF + ["period_start", "quantity", "origin", "source_product", "source_customer", "shortage"]
 AUDIT_COLUMNS = LEAF + ["rule", "periods", "quantity", "detail"]
@@ -105,14 +105,28 @@ def active_children(
     out["product_class"] = out["product"].map(products.set_index("product")["product_class"]).to_numpy()
     out["first_active_period"] = ordinal_to_start(first[ok].astype(np.int64), period)
     out["last_active_period"] = ordinal_to_start(last[ok].astype(np.int64), period)
-    own = history[LEAF + ["period_start"]].drop_duplicates().groupby(LEAF, sort=False).size()
-    out["own_periods"] = own.reindex(pd.MultiIndex.from_frame(out[LEAF])).fillna(0).to_numpy(np.int64)
+    out["own_periods"] = own_periods(history, out, period)
     for column in ("reference_customer", "scale", "initial_share"):
         values = spans[column] if column in spans.columns else pd.Series(np.nan, index=spans.index)
         out[column] = values[ok].to_numpy()
     out["scale"] = pd.to_numeric(out["scale"]).astype(float)
     out["initial_share"] = pd.to_numeric(out["initial_share"]).astype(float)
     return out
+
+
+def own_periods(history: pd.DataFrame, children: pd.DataFrame, period: str) -> np.ndarray:
+    """Distinct periods of history of each child (0 without any), counted on integer codes."""
+    if history.empty:
+        return np.zeros(len(children), dtype=np.int64)
+    code, leaves = factorize(history, LEAF)
+    ords = period_ordinal(history["period_start"], period)
+    lo = int(ords.min())
+    width = int(ords.max()) - lo + 1
+    seen = np.zeros(len(leaves) * width, dtype=bool)  # one cell per (leaf, period)
+    seen[code * width + (ords - lo)] = True
+    count = seen.reshape(len(leaves), width).sum(axis=1)
+    pos = lookup(children, LEAF, leaves)
+    return np.where(pos >= 0, count[np.clip(pos, 0, None)], 0).astype(np.int64)
 
 
 def _stack(frames: list[pd.DataFrame], columns: list[str] | None = None) -> pd.DataFrame:
