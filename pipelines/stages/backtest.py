@@ -41,7 +41,7 @@ import pandas as pd
 
 from pipelines.calendar import ordinal_to_start, period_ordinal, season_length
 from pipelines.config import PlanningConfig
-from pipelines.keys import LEAF, PARENT, factorize, lookup
+from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
 from pipelines.schemas import BENCHMARK
 from pipelines.stages.accuracy import mase_scale
 from pipelines.stages.hierarchy import NEEDS_RESIDUALS, coherent_forecasts, parent_sums
@@ -115,7 +115,7 @@ def run_backtest(
     children = children.reset_index(drop=True)
     parent_of_child, parents = factorize(children, PARENT)
     child_class = children["product_class"].to_numpy()
-    parent_class = child_class[np.unique(parent_of_child, return_index=True)[1]]
+    parent_class = child_class[first_rows(parent_of_child)]
     n_parents, n_children = len(parents), len(children)
     classes = list(config.product_classes)
     class_code = {name: i for i, name in enumerate(classes)}

@@ -70,7 +70,7 @@ from statsforecast import models as sfm
 from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal, season_length
 from pipelines.config import ModelChoice, ModelName, PlanningConfig, TSBConfig
 from pipelines.errors import ConfigError
-from pipelines.keys import LEAF, PARENT, factorize, lookup
+from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
 from pipelines.stages.hierarchy import NEEDS_LEAF, NEEDS_PARENT, NEEDS_RESIDUALS, coherent_forecasts
 from pipelines.stages.intermittent import croston_states
 
@@ -456,7 +456,7 @@ def forecast_cycle(
     starts = horizon_starts(cycle_date, horizon, period)
     children = children.reset_index(drop=True)
     parent_of_child, parents = factorize(children, PARENT)
-    parents["product_class"] = children["product_class"].to_numpy()[np.unique(parent_of_child, return_index=True)[1]]
+    parents["product_class"] = children["product_class"].to_numpy()[first_rows(parent_of_child)]
     n_parents, n_children = len(parents), len(children)
     ords = period_ordinal(history["period_start"], period)
     qty = history["quantity"].to_numpy(float)
