@@ -4,6 +4,7 @@ import dagster as dg
 import pandas as pd
 
 from assets.common import schema_check_spec, table_metadata, validate
+from pipelines.partitions import cycle_class_partitions, partition_config
 from pipelines.resources import PlanningConfigResource
 from pipelines.schemas import BacktestAccuracy, StrategyChoice
 from pipelines.stages.backtest import choose_strategies, run_backtest
@@ -20,6 +21,7 @@ CHOICE_CHECK_TEXT = (
 @dg.asset(
     name=BACKTEST_ACCURACY,
     group_name="forecast",
+    partitions_def=cycle_class_partitions,
     kinds={"pandas", "duckdb", "statsforecast"},
     check_specs=[
         schema_check_spec(BACKTEST_ACCURACY, BacktestAccuracy),
@@ -35,7 +37,7 @@ def backtest_accuracy(
     share_tables: pd.DataFrame,
     cycle_calendar: pd.DataFrame,
 ):
-    config = planning.config
+    config = partition_config(context, planning.config)
     cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
     children = share_tables[["product", "site", "customer", "product_class"]]
     result = run_backtest(lifecycle_history, children, config, cycle_date, log=context.log.info)

@@ -6,7 +6,8 @@ import dagster as dg
 import pandas as pd
 
 from assets.common import rule_check, schema_check_spec, table_metadata, validate
-from pipelines.resources import PlanningConfigResource
+from pipelines.partitions import cycle_class_partitions, partition_config
+from pipelines.resources import PlanningConfigResource, report_folder
 from pipelines.schemas import CleanedHistory, CycleCalendar, HistoryCorrections, RejectedRows
 from pipelines.stages.cleaned_history import clean_history, cycle_calendar as make_cycle_calendar, find_unexplained_changes, line_accounting
 
@@ -16,7 +17,6 @@ HISTORY_CORRECTIONS = "history_corrections"
 CYCLE_CALENDAR = "cycle_calendar"
 EVERY_RAW_ROW_ACCOUNTED = "every_raw_row_accounted"
 CORRECTIONS_EXPLAIN_CHANGES = "corrections_explain_changes"
-REPORT_PICTURE = Path("reports") / "cleansing.png"  # next to the store file
 
 
 def corrections_picture(by_class_and_rule: pd.DataFrame, classes: list[str], shortage_periods: int, path: Path) -> Path:
@@ -44,6 +44,7 @@ def corrections_picture(by_class_and_rule: pd.DataFrame, classes: list[str], sho
 
 @dg.multi_asset(
     group_name="history",
+    partitions_def=cycle_class_partitions,
     outs={
         CLEANED_HISTORY: dg.AssetOut(
             kinds={"pandas", "duckdb"},
@@ -84,7 +85,7 @@ def cleaned_history(
     customer_spans: pd.DataFrame,
     shortages: pd.DataFrame,
 ):
-    config = planning.config
+    config = partition_config(context, planning.config)
     result = clean_history(raw_history, products, customer_spans, config, shortages=shortages)
     cleaned, cleaned_check = validate(result.cleaned, CleanedHistory, CLEANED_HISTORY)
     rejected, rejected_check = validate(result.rejected, RejectedRows, REJECTED_ROWS)
@@ -107,7 +108,7 @@ def cleaned_history(
         by_rule_and_class,
         list(result.outlier_rules.get("product_class", [])),
         int(cleaned["shortage"].sum()),
-        Path(config.store.path).parent / REPORT_PICTURE,
+        report_folder(config) / f"cleansing_{next(iter(config.product_classes))}.png",
     )
     yield dg.Output(
         cleaned,

@@ -4,6 +4,7 @@ import dagster as dg
 import pandas as pd
 
 from assets.common import schema_check_spec, table_metadata, validate
+from pipelines.partitions import cycle_class_partitions, partition_config
 from pipelines.resources import PlanningConfigResource
 from pipelines.schemas import LifecycleAudit, LifecycleHistory
 from pipelines.stages.lifecycle_history import apply_lifecycle
@@ -14,6 +15,7 @@ LIFECYCLE_AUDIT = "lifecycle_audit"
 
 @dg.multi_asset(
     group_name="history",
+    partitions_def=cycle_class_partitions,
     outs={
         LIFECYCLE_HISTORY: dg.AssetOut(kinds={"pandas", "duckdb"}, description="History inside active spans, phased-out customers left out, retired products mapped to their successors, shortage periods flagged: the share basis."),
         LIFECYCLE_AUDIT: dg.AssetOut(kinds={"pandas", "duckdb"}, description="What each lifecycle rule dropped or moved, per leaf."),
@@ -29,7 +31,7 @@ def lifecycle_history(
     customer_spans: pd.DataFrame,
     cycle_calendar: pd.DataFrame,
 ):
-    config = planning.config
+    config = partition_config(context, planning.config)
     cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
     result = apply_lifecycle(cleaned_history, products, customer_spans, config, cycle_date)
     history, history_check = validate(result.history, LifecycleHistory, LIFECYCLE_HISTORY)

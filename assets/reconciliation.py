@@ -4,6 +4,7 @@ import dagster as dg
 import pandas as pd
 
 from assets.common import rule_check, schema_check_spec, table_metadata, validate
+from pipelines.partitions import cycle_class_partitions
 from pipelines.resources import PlanningConfigResource
 from pipelines.schemas import Reconciliation
 from pipelines.stages import reconciliation as rec
@@ -38,6 +39,7 @@ CHECKS = {
 @dg.asset(
     name=RECONCILIATION,
     group_name="forecast",
+    partitions_def=cycle_class_partitions,
     kinds={"pandas", "duckdb"},
     check_specs=[schema_check_spec(RECONCILIATION, Reconciliation)]
     + [dg.AssetCheckSpec(name, asset=RECONCILIATION, blocking=True, description=text) for name, text in CHECKS.items()],
@@ -52,7 +54,7 @@ def reconciliation(
     customer_spans: pd.DataFrame,
     products: pd.DataFrame,
 ):
-    period = planning.config.calendar.period
+    period = planning.config.calendar.period  # the same in every partition
     table, check = validate(rec.reconcile(parent_forecast, statistical_forecast), Reconciliation, RECONCILIATION)
     worst = table.sort_values("relative_difference", ascending=False)
     yield dg.Output(

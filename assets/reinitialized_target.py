@@ -4,6 +4,7 @@ import dagster as dg
 import pandas as pd
 
 from assets.common import schema_check_spec, table_metadata, validate
+from pipelines.partitions import cycle_class_partitions, partition_config
 from pipelines.resources import PlanningConfigResource
 from pipelines.schemas import ReinitializedTarget
 from pipelines.stages.reinitialized_target import parents_with_mix_change, reinitialize_target
@@ -14,6 +15,7 @@ REINITIALIZED_TARGET = "reinitialized_target"
 @dg.asset(
     name=REINITIALIZED_TARGET,
     group_name="shares",
+    partitions_def=cycle_class_partitions,
     kinds={"pandas", "duckdb"},
     check_specs=[schema_check_spec(REINITIALIZED_TARGET, ReinitializedTarget)],
     description="Target measure at leaf grain for every horizon period: the period's share (base shares of the "
@@ -27,7 +29,7 @@ def reinitialized_target(
     products: pd.DataFrame,
     cycle_calendar: pd.DataFrame,
 ):
-    config = planning.config
+    config = partition_config(context, planning.config)
     cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
     frame = reinitialize_target(share_tables, lifecycle_history, config, cycle_date, products)
     target, check = validate(frame, ReinitializedTarget, REINITIALIZED_TARGET)

@@ -4,6 +4,7 @@ import dagster as dg
 import pandas as pd
 
 from assets.common import rule_check, schema_check_spec, table_metadata, validate
+from pipelines.partitions import cycle_class_partitions, partition_config
 from pipelines.resources import PlanningConfigResource
 from pipelines.schemas import SHARE_RULES, ShareTable
 from pipelines.stages.lifecycle_history import active_children
@@ -16,6 +17,7 @@ NEW_CUSTOMER_WITHOUT_SHARE = "new_customer_without_share"
 @dg.asset(
     name=SHARE_TABLES,
     group_name="shares",
+    partitions_def=cycle_class_partitions,
     kinds={"pandas", "duckdb"},
     check_specs=[
         schema_check_spec(SHARE_TABLES, ShareTable),
@@ -40,7 +42,7 @@ def share_tables(
     customer_spans: pd.DataFrame,
     cycle_calendar: pd.DataFrame,
 ):
-    config = planning.config
+    config = partition_config(context, planning.config)
     cycle = cycle_calendar.iloc[0]
     config.check_windows_fit(int(cycle["history_periods"]))
     cycle_date = pd.Timestamp(cycle["cycle_date"])

@@ -4,6 +4,7 @@ import dagster as dg
 import pandas as pd
 
 from assets.common import schema_check_spec, table_metadata, validate
+from pipelines.partitions import cycle_class_partitions, partition_config
 from pipelines.resources import PlanningConfigResource
 from pipelines.schemas import ForecastFittedValues, ForecastModels, ParentForecast, StatisticalForecast
 from pipelines.stages.backtest import choose_strategies
@@ -17,6 +18,7 @@ FORECAST_FITTED_VALUES = "forecast_fitted_values"
 
 @dg.multi_asset(
     group_name="forecast",
+    partitions_def=cycle_class_partitions,
     outs={
         PARENT_FORECAST: dg.AssetOut(kinds={"pandas", "duckdb", "statsforecast"}, description="Statistical forecast per product x site, with model, demand class and strategy."),
         STATISTICAL_FORECAST: dg.AssetOut(kinds={"pandas", "duckdb"}, description="Statistical forecast at leaf grain, coherent with the parent by the class's strategy."),
@@ -40,7 +42,7 @@ def statistical_forecast(
     cycle_calendar: pd.DataFrame,
     backtest_accuracy: pd.DataFrame,
 ):
-    config = planning.config
+    config = partition_config(context, planning.config)
     cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
     children = share_tables[["product", "site", "customer", "product_class", "first_active_period", "last_active_period"]]
     choice = choose_strategies(backtest_accuracy, config)

@@ -1,7 +1,8 @@
 """Command line: `python -m pipelines cycle` runs the weekly cycle and prints its summary.
 
-    python -m pipelines cycle [--config config/planning.yaml]
-    python -m pipelines summary [--config ...]        # summary of the stored cycle, no run
+    python -m pipelines cycle [--config config/planning.yaml] [--cycle YYYY-MM-DD] [--class CLS ...]
+    python -m pipelines rebuild --class CLS [--from share_tables] [--cycle YYYY-MM-DD]
+    python -m pipelines summary [--config ...] [--cycle YYYY-MM-DD]   # a stored cycle, no run
     python -m pipelines demo-data [--out data/demo]   # regenerate the bundled demo files
 """
 
@@ -12,7 +13,7 @@ import os
 import sys
 from pathlib import Path
 
-from pipelines.errors import PlanningError
+from pipelines.errors import ConfigError, PlanningError
 
 UI_COMMAND = "make ui   (dagster dev -m pipelines.definitions -h 127.0.0.1 -p 3000)"
 
@@ -33,31 +34,60 @@ def _instance():
     return dg.DagsterInstance.get()
 
 
-def run_cycle(config_path: str) -> int:
+def run_cycle(
+    config_path: str,
+    cycle: str | None = None,
+    classes: list[str] | None = None,
+    rebuild_from: str | None = None,
+    summary: bool = True,
+) -> int:
+    """Run the cycle (or, with `rebuild_from`, that asset and everything downstream) for each class; 0 when no ERROR check failed."""
     from pipelines.definitions import build_definitions
-    from pipelines.jobs import WEEKLY_CYCLE
+    from pipelines.partitions import current_cycle
+    from pipelines.resources import PlanningConfigResource
+    from pipelines.runner import rebuild_selection, run_partitions
 
+    config = PlanningConfigResource(path=config_path).config
+    cycle = current_cycle(config, cycle)
+    chosen = classes or list(config.product_classes)
+    unknown = [c for c in chosen if c not in config.product_classes]
+    if unknown:
+        raise ConfigError(f"{config.source}: --class {unknown} not under product_classes; valid classes are {sorted(config.product_classes)}")
     defs = build_definitions(config_path)
-    instance = _instance()
+    selection = rebuild_selection(defs, rebuild_from) if rebuild_from else None
+    what = f"{rebuild_from} and downstream" if rebuild_from else "whole cycle"
+
+    def started(i: int, product_class: str) -> None:
+        print(f"[{i}/{len(chosen)}] cycle {cycle}, class {product_class}: {what} ...", flush=True)
+
+    def done(product_class: str, result, seconds: float) -> None:
+        print(f"    run {result.run_id}: {'succeeded' if result.success else 'FAILED'} in {seconds:.0f} s", flush=True)
+        for event in (e for e in result.all_events if e.is_step_failure):
+            error = event.event_specific_data.error
+            message = error.cause.message if error and error.cause else (error.message if error else event.message)
+            print(f"    step {event.step_key} failed: {message.strip()}")
+
     # progress at INFO on the console; the full event log stays in the instance (and the UI)
-    run_config = {"loggers": {"console": {"config": {"log_level": "INFO"}}}}
-    result = defs.resolve_job_def(WEEKLY_CYCLE).execute_in_process(run_config=run_config, instance=instance, raise_on_error=False)
-    checks = [(e.asset_key.to_user_string(), e.check_name, e.passed, e.severity.value) for e in result.get_asset_check_evaluations()]
-    failures = [e for e in result.all_events if e.is_step_failure]
-    print(f"run {result.run_id}: {'succeeded' if result.success else 'FAILED'}")
-    for event in failures:
-        error = event.event_specific_data.error
-        message = error.cause.message if error and error.cause else (error.message if error else event.message)
-        print(f"  step {event.step_key} failed: {message.strip()}")
-    print_summary(config_path, checks)
-    # a failed WARN check is reported above but does not fail the command; an ERROR check does
-    return 0 if result.success and all(c[2] for c in checks if c[3] != "WARN") else 1
+    run = run_partitions(
+        defs,
+        _instance(),
+        cycle,
+        chosen,
+        all_classes=list(config.product_classes),
+        selection=selection,
+        run_config={"loggers": {"console": {"config": {"log_level": "INFO"}}}},
+        on_start=started,
+        on_done=done,
+    )
+    checks = [(f"{e.asset_key.to_user_string()} [{c}]", e.check_name, e.passed, e.severity.value) for c, e in run.checks_by_class()]
+    if summary:
+        print_summary(config_path, checks, cycle=cycle)
+    # a failed WARN check is reported but does not fail the command; an ERROR check does
+    return 0 if run.success and run.blocking_checks_pass else 1
 
 
-def print_summary(config_path: str, checks: list[tuple[str, str, bool, str]] | None = None) -> None:
-    import duckdb
-
-    from pipelines.resources import PlanningConfigResource, read_table
+def print_summary(config_path: str, checks: list[tuple[str, str, bool, str]] | None = None, cycle: str | None = None) -> None:
+    from pipelines.resources import PlanningConfigResource, read_table, stored_cycles
 
     config = PlanningConfigResource(path=config_path).config
     store = Path(config.store.path)
@@ -65,18 +95,22 @@ def print_summary(config_path: str, checks: list[tuple[str, str, bool, str]] | N
         print(f"no store at {store}: nothing has been materialized yet")
         return
 
+    cycles = stored_cycles(store)
+    if not cycles:
+        print(f"no cycle in the store {store} yet")
+        return
+    cycle = cycle or cycles[-1]
+
     def table(name: str):
-        try:
-            return read_table(store, name)
-        except duckdb.CatalogException:  # the run stopped before this asset
-            return None
+        return read_table(store, name, cycle=cycle)  # None when the run stopped before this asset
 
     def count(name: str) -> str:
         frame = table(name)
         return "-" if frame is None else f"{len(frame):,}"
 
     print()
-    print(f"store:        {store.resolve()}  (one table per asset; query with duckdb)")
+    print(f"store:        {store.resolve()}  (one table per asset, every cycle kept; query with duckdb)")
+    print(f"cycles:       {', '.join(cycles)}  (this summary: {cycle})")
     cal = table("cycle_calendar")
     if cal is not None and len(cal):
         c = cal.iloc[0]
@@ -116,18 +150,33 @@ def print_summary(config_path: str, checks: list[tuple[str, str, bool, str]] | N
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(prog="python -m pipelines", description="apportion: the weekly share refresh cycle")
     sub = parser.add_subparsers(dest="command", required=True)
-    for name, text in (("cycle", "run the whole weekly cycle and print a summary"), ("summary", "summarise the stored cycle")):
-        p = sub.add_parser(name, help=text)
+
+    def config_arg(p):
         p.add_argument("--config", default="", help="planning config (default $APPORTION_CONFIG or config/planning.yaml)")
+
+    p = sub.add_parser("cycle", help="run the weekly cycle for every class (or --class ...) and print a summary")
+    config_arg(p)
+    p.add_argument("--cycle", default=None, help="cycle date YYYY-MM-DD (default: calendar.cycle_date, else the period after the history)")
+    p.add_argument("--class", dest="classes", action="append", default=None, help="only this product class (repeatable)")
+    p = sub.add_parser("rebuild", help="rematerialize one asset and everything downstream for one class, from the stored upstream tables")
+    config_arg(p)
+    p.add_argument("--class", dest="classes", action="append", required=True, help="product class to rebuild (repeatable)")
+    p.add_argument("--from", dest="asset", default="share_tables", help="first asset to rebuild (default share_tables)")
+    p.add_argument("--cycle", default=None, help="cycle date (default: the current cycle)")
+    p = sub.add_parser("summary", help="summarise a stored cycle (default the latest), no run")
+    config_arg(p)
+    p.add_argument("--cycle", default=None)
     p = sub.add_parser("demo-data", help="regenerate the bundled demo input files")
     p.add_argument("--out", default="data/demo")
     p.add_argument("--seed", type=int, default=None)
     args = parser.parse_args(argv)
     try:
         if args.command == "cycle":
-            return run_cycle(args.config)
+            return run_cycle(args.config, cycle=args.cycle, classes=args.classes)
+        if args.command == "rebuild":
+            return run_cycle(args.config, cycle=args.cycle, classes=args.classes, rebuild_from=args.asset)
         if args.command == "summary":
-            print_summary(args.config)
+            print_summary(args.config, cycle=args.cycle)
             return 0
         from pipelines import demo_data
 

@@ -1,4 +1,4 @@
-"""The one Definitions object of apportion: every asset, check, job, schedule and resource."""
+"""The one Definitions object of apportion: every asset, check, job, schedule, sensor and resource."""
 
 import dagster as dg
 
@@ -11,7 +11,7 @@ from assets.reconciliation import reconciliation
 from assets.reinitialized_target import reinitialized_target
 from assets.share_tables import share_tables
 from assets.statistical_forecast import statistical_forecast
-from pipelines.jobs import weekly_cycle_job, weekly_cycle_schedule
+from pipelines.jobs import new_history_file_sensor, weekly_cycle_job, weekly_cycle_schedule
 from pipelines.resources import DuckDBStore, PlanningConfigResource
 
 ASSETS = [
@@ -37,6 +37,7 @@ def build_definitions(config_path: str = "") -> dg.Definitions:
         assets=ASSETS,
         jobs=[weekly_cycle_job],
         schedules=[weekly_cycle_schedule],
+        sensors=[new_history_file_sensor],
         resources={"planning": planning, "io_manager": DuckDBStore(planning=planning)},
         executor=dg.in_process_executor,
     )

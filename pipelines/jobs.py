@@ -1,20 +1,96 @@
-"""The weekly cycle job and its schedule."""
+"""The weekly cycle job, its schedule, and the sensor that starts a cycle when new history lands.
+
+A run of `weekly_cycle` is one partition: one product class in one cycle. The
+schedule and the sensor register the cycle date and the configured classes as
+partitions, then request one run per class.
+"""
+
+import json
 
 import dagster as dg
 
+from pipelines.errors import PlanningError
+from pipelines.partitions import current_cycle, partition_key, register_partitions
+from pipelines.resources import PlanningConfigResource
+from pipelines.stages.inputs import find_files, sha256
+
 WEEKLY_CYCLE = "weekly_cycle"
+WEEKLY_SCHEDULE = "weekly_cycle_monday_0600_utc"
+NEW_HISTORY_SENSOR = "new_history_file"
 
 weekly_cycle_job = dg.define_asset_job(
     WEEKLY_CYCLE,
     selection=dg.AssetSelection.all(),
-    description="The whole weekly cycle: history in, shares refreshed, forecast rerun and split, reconciliation proven.",
+    description="The whole weekly cycle for one product class (a partition cycle|class): history in, shares "
+    "refreshed, forecast rerun and split, reconciliation proven.",
 )
 
-weekly_cycle_schedule = dg.ScheduleDefinition(
-    name="weekly_cycle_monday_0600_utc",
+
+def cycle_run_requests(cycle: str, classes: list[str], run_key_prefix: str) -> list[dg.RunRequest]:
+    """One run request per class of `cycle`; the run key makes a repeated tick a no-op."""
+    return [
+        dg.RunRequest(run_key=f"{run_key_prefix}:{cycle}|{c}", partition_key=partition_key(cycle, c), tags={"cycle": cycle, "product_class": c})
+        for c in classes
+    ]
+
+
+@dg.schedule(
+    name=WEEKLY_SCHEDULE,
     job=weekly_cycle_job,
     cron_schedule="0 6 * * 1",
     execution_timezone="UTC",
     default_status=dg.DefaultScheduleStatus.STOPPED,
-    description="Runs the weekly cycle every Monday at 06:00 UTC (stopped until the platform team starts it).",
+    description="Every Monday 06:00 UTC: the current cycle (calendar.cycle_date, by default the period after the "
+    "latest history) for every configured class, one run each. Stopped until the platform team starts it.",
 )
+def weekly_cycle_schedule(context: dg.ScheduleEvaluationContext, planning: PlanningConfigResource):
+    try:
+        config = planning.config
+        cycle = current_cycle(config)
+    except PlanningError as err:
+        return dg.SkipReason(f"no cycle started: {err}")
+    classes = list(config.product_classes)
+    register_partitions(context.instance, cycle, classes)
+    return cycle_run_requests(cycle, classes, run_key_prefix=f"schedule:{context.scheduled_execution_time:%Y-%m-%dT%H:%M}")
+
+
+def history_signature(folder) -> dict[str, str]:
+    """file name -> sha256 of every history file of the input folder."""
+    return {p.name: sha256(p) for p in find_files(folder, "history", many=True, required=False)}
+
+
+@dg.sensor(
+    name=NEW_HISTORY_SENSOR,
+    job=weekly_cycle_job,
+    minimum_interval_seconds=60,
+    default_status=dg.DefaultSensorStatus.STOPPED,
+    description="Starts the current cycle for every class when a history file in inputs.folder is new or changed "
+    "(compared by content hash). Stopped until started; the first tick records the files it finds and starts a cycle.",
+)
+def new_history_file_sensor(context: dg.SensorEvaluationContext, planning: PlanningConfigResource):
+    try:
+        config = planning.config
+        signature = history_signature(config.inputs.folder)
+    except PlanningError as err:
+        return dg.SkipReason(f"cannot read the input folder: {err}")
+    seen = json.loads(context.cursor) if context.cursor else {}
+    changed = sorted(name for name, digest in signature.items() if seen.get(name) != digest)
+    if not changed:
+        return dg.SkipReason(f"no new or changed history file in {config.inputs.folder}")
+    try:
+        cycle = current_cycle(config)
+    except PlanningError as err:
+        return dg.SkipReason(f"history changed ({', '.join(changed)}) but no cycle can start: {err}")
+    classes = list(config.product_classes)
+    register_partitions(context.instance, cycle, classes)
+    digest = sha256_of_signature(signature)
+    return dg.SensorResult(
+        run_requests=cycle_run_requests(cycle, classes, run_key_prefix=f"history:{digest}"),
+        cursor=json.dumps(signature, sort_keys=True),
+    )
+
+
+def sha256_of_signature(signature: dict[str, str]) -> str:
+    import hashlib
+
+    return hashlib.sha256(json.dumps(signature, sort_keys=True).encode()).hexdigest()[:16]

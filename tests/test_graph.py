@@ -17,9 +17,11 @@ import yaml
 from assets.backtest_accuracy import CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE
 from assets.reconciliation import CHECKS as RECONCILIATION_CHECKS
 from assets.share_tables import NEW_CUSTOMER_WITHOUT_SHARE
+from pipelines.config import load_config
 from pipelines.definitions import ASSETS, build_definitions
-from pipelines.jobs import WEEKLY_CYCLE
+from pipelines.partitions import current_cycle
 from pipelines.resources import read_table
+from pipelines.runner import CycleRun, rebuild_selection, run_partitions
 
 pytestmark = pytest.mark.graph
 
@@ -38,13 +40,37 @@ def make_config(tmp: Path, inputs: Path = DEMO, **overrides) -> str:
     return str(path)
 
 
-def run_cycle(config_path: str) -> dg.ExecuteInProcessResult:
-    defs = build_definitions(config_path)
-    return defs.resolve_job_def(WEEKLY_CYCLE).execute_in_process(instance=dg.DagsterInstance.ephemeral(), raise_on_error=False)
+def run_cycle(config_path: str, instance: dg.DagsterInstance | None = None, cycle: str | None = None) -> CycleRun:
+    """Every class of the config's current cycle, one in-process run per partition."""
+    config = load_config(config_path)
+    return run_partitions(
+        build_definitions(config_path),
+        instance or dg.DagsterInstance.ephemeral(),
+        current_cycle(config, cycle),
+        list(config.product_classes),
+    )
 
 
-def checks_of(result: dg.ExecuteInProcessResult) -> dict[str, dg.AssetCheckEvaluation]:
-    return {f"{e.asset_key.to_user_string()}:{e.check_name}": e for e in result.get_asset_check_evaluations()}
+def checks_of(result: CycleRun) -> dict[str, dg.AssetCheckEvaluation]:
+    """asset:check -> its evaluation; when the classes differ, a failing evaluation wins over a passing one."""
+    found: dict[str, dg.AssetCheckEvaluation] = {}
+    for e in result.get_asset_check_evaluations():
+        key = f"{e.asset_key.to_user_string()}:{e.check_name}"
+        if key not in found or (found[key].passed and not e.passed):
+            found[key] = e
+    return found
+
+
+def metadata_of(result: CycleRun, asset: str) -> dict[str, dict]:
+    """product class -> the metadata of `asset`'s materialization in that class's run."""
+    return {
+        c: next(e.materialization.metadata for e in r.get_asset_materialization_events() if e.asset_key.to_user_string() == asset)
+        for c, r in result.results.items()
+    }
+
+
+def summed(metadata: dict[str, dict], key: str) -> int:
+    return sum(m[key].value for m in metadata.values())
 
 
 @pytest.fixture(scope="module")
@@ -52,6 +78,7 @@ def demo_cycle(tmp_path_factory):
     tmp = tmp_path_factory.mktemp("demo_cycle")
     config = make_config(tmp)
     result = run_cycle(config)
+    assert list(result.results) == ["consumables", "seasonal", "spares"] and result.cycle == "2026-11-30"
     return result, tmp / "store.duckdb", config
 
 
@@ -103,10 +130,7 @@ def test_auto_classes_follow_the_backtest_choice_and_stay_coherent(demo_cycle):
     assert set(auto.index) == {"seasonal", "spares"} and (auto["margin"] >= 0).all()
     assert choice.loc["consumables", "strategy"] == "top_down"
     # the choice and margins are in the metadata; the WARN check ran (and passes on the demo)
-    materialization = next(
-        e for e in result.get_asset_materialization_events() if e.asset_key.to_user_string() == "backtest_accuracy"
-    )
-    assert "strategy_choice" in materialization.materialization.metadata
+    assert all("strategy_choice" in m for m in metadata_of(result, "backtest_accuracy").values())
     warn = checks_of(result)["backtest_accuracy:chosen_strategy_beats_seasonal_naive"]
     assert warn.severity == dg.AssetCheckSeverity.WARN and warn.passed
     models = read_table(store, "forecast_models")
@@ -131,12 +155,22 @@ def test_volume_is_conserved_from_parent_to_leaf(demo_cycle):
 
 def test_every_raw_line_is_used_or_rejected(demo_cycle):
     _, store, _ = demo_cycle
-    raw = read_table(store, "raw_history")
-    cleaned = read_table(store, "cleaned_history")
-    rejected = read_table(store, "rejected_rows")
-    assert len(raw) == int(cleaned["lines"].sum()) + len(rejected)
-    # the five bad lines planted in the demo, one per reason (data/demo/README.md)
-    assert sorted(rejected["reason"]) == sorted(["missing_key", "bad_date", "bad_quantity", "unknown_product", "no_customer_span"])
+    for product_class in ("consumables", "seasonal", "spares"):
+        raw = read_table(store, "raw_history", product_class=product_class)
+        cleaned = read_table(store, "cleaned_history", product_class=product_class)
+        rejected = read_table(store, "rejected_rows", product_class=product_class)
+        assert len(raw) == int(cleaned["lines"].sum()) + len(rejected) > 0
+    # the five bad lines planted in the demo, one per reason (data/demo/README.md); a line of a product in
+    # no class (unknown or blank) is kept and rejected in every class, the others in their own class only
+    rejected = read_table(store, "rejected_rows", with_partition=True)
+    lines = rejected.drop_duplicates(["source_file", "source_row"])
+    assert sorted(lines["reason"]) == sorted(["missing_key", "bad_date", "bad_quantity", "unknown_product", "no_customer_span"])
+    in_every_class = rejected.groupby(["source_file", "source_row"])["partition_class"].nunique()
+    products = set(read_table(store, "products")["product"])
+    no_class = lines.set_index(["source_file", "source_row"])["product"].map(lambda p: p not in products)
+    assert (in_every_class[no_class] == 3).all() and (in_every_class[~no_class] == 1).all()
+    total = len(pd.read_csv(DEMO / "history.csv"))
+    assert len(read_table(store, "raw_history")) == total + 2 * int(no_class.sum())
 
 
 def test_demo_lifecycle_cases_reach_the_share_table(demo_cycle):
@@ -228,8 +262,8 @@ def test_demo_lifecycle_inside_the_horizon(demo_cycle):
 
 def test_planner_metadata_on_share_tables_and_reinitialized_target(demo_cycle):
     result, _, _ = demo_cycle
-    meta = {e.asset_key.to_user_string(): e.materialization.metadata for e in result.get_asset_materialization_events()}
-    shares = meta["share_tables"]
+    # the demo's lifecycle cases are all in consumables (data/demo/README.md)
+    shares = metadata_of(result, "share_tables")["consumables"]
     # counts per lifecycle rule: the three new customers of the demo, one each, and the phase-outs
     rows = [line.strip("|").split("|") for line in shares["children_by_lifecycle_rule"].value.splitlines()[2:]]
     by_rule = {name.strip(): int(count) for name, count in rows}
@@ -240,7 +274,7 @@ def test_planner_metadata_on_share_tables_and_reinitialized_target(demo_cycle):
     assert shares["new_customer_count"].value == 3
     listed = shares["new_customers"].value
     assert all(c in listed for c in ("C0049", "C0050", "C0051")) and "taken from it" in listed and "initial share 0.15" in listed
-    mix = meta["reinitialized_target"]
+    mix = metadata_of(result, "reinitialized_target")["consumables"]
     # C0050 phases in (DRIP-001/SITE-NORTH), C0003 out (FERT-001/SITE-SOUTH), FILT-003 ends at both its sites
     assert mix["parents_with_mix_change_count"].value == 4
     text = mix["parents_with_mix_change"].value
@@ -248,21 +282,27 @@ def test_planner_metadata_on_share_tables_and_reinitialized_target(demo_cycle):
     assert "product_not_active" in mix["zero_share_periods_by_reason"].value
 
 
-def test_rebuilding_one_asset_reads_the_stored_upstream_tables(demo_cycle):
+def test_rebuilding_one_class_replaces_exactly_its_partition(demo_cycle):
     _, store, config = demo_cycle
-    before = read_table(store, "share_tables")
+    before = read_table(store, "share_tables", with_partition=True)
+    written = read_table(store, "partitions_written").set_index(["asset", "partition_cycle", "partition_class"])["written_at"]
     defs = build_definitions(config)
-    result = dg.materialize(
-        ASSETS,
-        selection="share_tables",
-        resources=defs.resources,
-        instance=dg.DagsterInstance.ephemeral(),
-    )
-    assert result.success
-    materialized = [e.asset_key.to_user_string() for e in result.get_asset_materialization_events()]
-    assert materialized == ["share_tables"]
-    after = read_table(store, "share_tables")
+    selection = rebuild_selection(defs, "share_tables")
+    names = {k.to_user_string() for k in selection}
+    # share_tables and everything downstream (multi-asset outputs come together), nothing upstream
+    assert {"share_tables", "reinitialized_target", "backtest_accuracy", "parent_forecast", "statistical_forecast", "reconciliation"} <= names
+    assert not names & {"raw_history", "cleaned_history", "lifecycle_history", "products"}
+    result = run_partitions(defs, dg.DagsterInstance.ephemeral(), "2026-11-30", ["spares"], all_classes=["consumables", "seasonal", "spares"], selection=selection)
+    assert result.success and result.blocking_checks_pass
+    materialized = {e.asset_key.to_user_string() for e in result.get_asset_materialization_events()}
+    assert materialized == names
+    after = read_table(store, "share_tables", with_partition=True)
+    # idempotent: the same rows, none duplicated, in the same order
     pd.testing.assert_frame_equal(before, after)
+    now = read_table(store, "partitions_written").set_index(["asset", "partition_cycle", "partition_class"])["written_at"]
+    moved = now[now != written.reindex(now.index)].index
+    # only the spares partitions of the rebuilt assets were written again; the other classes are untouched
+    assert {(a, c, k) for a, c, k in moved} == {(a, "2026-11-30", "spares") for a in names}
 
 
 def test_broken_input_fails_its_blocking_check_with_the_rows(tmp_path):
@@ -368,13 +408,9 @@ def test_demo_exercises_every_cleansing_rule(demo_cycle):
     # exclude (the bundled rule): the shortage weeks keep their values, no correction touches them
     assert not flagged["corrected"].any()
     # the asset's metadata carries the counts a planner looks at
-    meta = next(
-        e.event_specific_data.materialization.metadata
-        for e in result.get_asset_materialization_events()
-        if e.asset_key.to_user_string() == "cleaned_history"
-    )
-    assert meta["shortage_periods"].value == len(flagged) == 20
-    assert "tukey_cap" in meta["corrections_by_class_and_rule"].value
+    meta = metadata_of(result, "cleaned_history")
+    assert summed(meta, "shortage_periods") == len(flagged) == 20
+    assert "tukey_cap" in meta["seasonal"]["corrections_by_class_and_rule"].value
 
 
 def test_demo_shortages_filled_with_each_childs_baseline():
@@ -402,13 +438,9 @@ def test_demo_shortages_filled_with_each_childs_baseline():
     assert sprk["parameters"].str.contains('"seasonal_adjusted": true').all()
 
 
-def test_cleansing_picture_is_written_next_to_the_store(demo_cycle):
+def test_cleansing_picture_is_written_to_the_cycle_report_folder(demo_cycle):
     result, store, _ = demo_cycle
-    meta = next(
-        e.event_specific_data.materialization.metadata
-        for e in result.get_asset_materialization_events()
-        if e.asset_key.to_user_string() == "cleaned_history"
-    )
-    path = Path(meta["corrections_picture"].value)
-    assert path == store.parent / "reports" / "cleansing.png"
-    assert path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    for product_class, meta in metadata_of(result, "cleaned_history").items():
+        path = Path(meta["corrections_picture"].value)
+        assert path == store.parent / "reports" / "2026-11-30" / f"cleansing_{product_class}.png"
+        assert path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"

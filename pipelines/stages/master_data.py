@@ -48,3 +48,14 @@ def load_adjustments(folder: Path) -> tuple[pd.DataFrame, list[InputFile]]:
 def load_shortages(folder: Path) -> tuple[pd.DataFrame, list[InputFile]]:
     """Optional: recorded supply shortages at product x site and period; an absent file gives an empty table."""
     return _load(folder, "shortages", SHORTAGE_COLUMNS, required=False)
+
+
+def class_rows(frame: pd.DataFrame, classes: pd.Series, product_class: str) -> pd.DataFrame:
+    """The rows of `frame` whose product is in `product_class` (`classes`: product -> class of the master file).
+
+    A row whose product is not in the master belongs to no class and is kept in
+    every class, so the stage's schema or rule checks report it instead of it
+    vanishing.
+    """
+    cls = frame["product"].map(classes)
+    return frame.loc[(cls == product_class) | cls.isna()].reset_index(drop=True)

@@ -25,3 +25,22 @@ def load_raw_history(folder: Path) -> tuple[pd.DataFrame, list[InputFile]]:
         frames.append(df)
         files.append(InputFile(path=path, rows=len(df), sha256=sha256(path)))
     return pd.concat(frames, ignore_index=True), files
+
+
+def latest_cycle_date(folder: Path, period: str) -> pd.Timestamp | None:
+    """The period after the latest dated line of the history files (None when no line has a date).
+
+    This is what `calendar.cycle_date: latest_complete_period` resolves to when a
+    cycle is started; the files are expected to hold complete periods only.
+    """
+    from pipelines.calendar import period_start, shift_periods
+
+    latest = None
+    for path in find_files(folder, "history", many=True):
+        dates = pd.to_datetime(read_text_table(path, ("period_start",))["period_start"], format="ISO8601", errors="coerce")
+        if dates.notna().any():
+            latest = dates.max() if latest is None else max(latest, dates.max())
+    if latest is None:
+        return None
+    start = period_start(pd.Series([latest]), period).iloc[0]
+    return shift_periods(pd.Timestamp(start), 1, period)

@@ -1,0 +1,118 @@
+"""The partitions of the cycle: every asset is partitioned by cycle x product class.
+
+- `cycle`: the cycle date (ISO, the first period forecast), added when a cycle
+  is started (command line, schedule or sensor), so each weekly cycle's
+  outputs are kept side by side in the store and a past cycle can be rerun.
+- `product_class`: the classes of the planning config, added from the config
+  at the same time, so a planner can rebuild one class without touching the
+  others.
+
+Both dimensions are dynamic: their keys come from the config and the data,
+which are read when a cycle starts, never at import time. A partition's run
+sees the planning config narrowed to its cycle date and its class
+(`partition_config`), so the stage functions need not know about partitions.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+
+import dagster as dg
+import pandas as pd
+
+from pipelines.calendar import is_period_start
+from pipelines.config import PlanningConfig
+from pipelines.errors import ConfigError
+
+CYCLE = "cycle"
+PRODUCT_CLASS = "product_class"
+
+cycle_partitions = dg.DynamicPartitionsDefinition(name=CYCLE)
+class_partitions = dg.DynamicPartitionsDefinition(name=PRODUCT_CLASS)
+cycle_class_partitions = dg.MultiPartitionsDefinition({CYCLE: cycle_partitions, PRODUCT_CLASS: class_partitions})
+
+
+def partition_key(cycle: str | dt.date | pd.Timestamp, product_class: str) -> dg.MultiPartitionKey:
+    """The partition key of one class in one cycle (cycle as an ISO date)."""
+    return dg.MultiPartitionKey({CYCLE: cycle_key(cycle), PRODUCT_CLASS: product_class})
+
+
+def cycle_key(cycle: str | dt.date | pd.Timestamp) -> str:
+    return pd.Timestamp(cycle).date().isoformat()
+
+
+def split_key(key: str | dg.MultiPartitionKey) -> tuple[str, str]:
+    """(cycle, product_class) of a partition key such as '2026-11-30|seasonal'."""
+    if isinstance(key, dg.MultiPartitionKey):
+        dims = key.keys_by_dimension
+        return dims[CYCLE], dims[PRODUCT_CLASS]
+    cycle, _, product_class = str(key).partition("|")
+    if not product_class:
+        raise ConfigError(f"partition key {key!r} is not of the form CYCLE|PRODUCT_CLASS, e.g. 2026-11-30|seasonal")
+    return cycle, product_class
+
+
+def narrow_config(config: PlanningConfig, cycle: str, product_class: str) -> PlanningConfig:
+    """The config of one partition: calendar.cycle_date set to `cycle`, only `product_class` kept.
+
+    Raises a ConfigError naming the file when the class is not configured or
+    the cycle date does not start a period, so a stale partition key (a class
+    removed from the config) fails with a message, not a KeyError.
+    """
+    if product_class not in config.product_classes:
+        raise ConfigError(
+            f"{config.source}: partition product class {product_class!r} is not under product_classes "
+            f"(configured: {sorted(config.product_classes)}). Materialize a configured class, or add the class back."
+        )
+    try:
+        day = dt.date.fromisoformat(cycle)
+    except ValueError:
+        raise ConfigError(f"partition cycle {cycle!r} is not an ISO date (YYYY-MM-DD)") from None
+    if not is_period_start(day, config.calendar.period):
+        raise ConfigError(
+            f"partition cycle {cycle} does not start a {config.calendar.period} (calendar.period in {config.source})"
+        )
+    calendar = config.calendar.model_copy(update={"cycle_date": day})
+    classes = {product_class: config.product_classes[product_class]}
+    narrowed = config.model_copy(update={"calendar": calendar, "product_classes": classes})
+    narrowed._source = config.source
+    return narrowed
+
+
+def partition_config(context: dg.AssetExecutionContext, config: PlanningConfig) -> PlanningConfig:
+    """The planning config narrowed to the partition this asset is materializing."""
+    cycle, product_class = split_key(context.partition_key)
+    return narrow_config(config, cycle, product_class)
+
+
+def register_partitions(instance: dg.DagsterInstance, cycle: str, classes: list[str]) -> None:
+    """Add the cycle and the classes as partition keys (adding an existing key is a no-op)."""
+    known_cycles = set(instance.get_dynamic_partitions(CYCLE))
+    if cycle not in known_cycles:
+        instance.add_dynamic_partitions(CYCLE, [cycle])
+    known_classes = set(instance.get_dynamic_partitions(PRODUCT_CLASS))
+    new = [c for c in classes if c not in known_classes]
+    if new:
+        instance.add_dynamic_partitions(PRODUCT_CLASS, new)
+
+
+def current_cycle(config: PlanningConfig, requested: str | None = None) -> str:
+    """The cycle to run: `requested` (an ISO date), else calendar.cycle_date, else the period after the history.
+
+    Raises a ConfigError when the history holds no dated line or the date does
+    not start a period.
+    """
+    from pipelines.calendar import LATEST_COMPLETE_PERIOD, resolve_cycle_date
+    from pipelines.stages.raw_history import latest_cycle_date
+
+    period = config.calendar.period
+    setting = requested or config.calendar.cycle_date
+    if setting == LATEST_COMPLETE_PERIOD:
+        after = latest_cycle_date(config.inputs.folder, period)
+        if after is None:
+            raise ConfigError(
+                f"{config.source}: calendar.cycle_date is {LATEST_COMPLETE_PERIOD!r} but no history file in "
+                f"{config.inputs.folder} has a dated line; load history or give --cycle YYYY-MM-DD."
+            )
+        return cycle_key(after)
+    return cycle_key(resolve_cycle_date(setting, None, period, str(config.source)))

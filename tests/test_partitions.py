@@ -1,0 +1,121 @@
+"""Cycle x class partitions: narrowing the config, finding the current cycle, the schedule and the sensor."""
+
+import datetime as dt
+import shutil
+from pathlib import Path
+
+import dagster as dg
+import pytest
+import yaml
+
+from pipelines.definitions import build_definitions
+from pipelines.errors import ConfigError
+from pipelines.jobs import new_history_file_sensor, weekly_cycle_schedule
+from pipelines.partitions import CYCLE, PRODUCT_CLASS, current_cycle, narrow_config, partition_key, split_key
+from pipelines.resources import PlanningConfigResource
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def _history(folder: Path, rows: list[str]) -> None:
+    folder.mkdir(parents=True, exist_ok=True)
+    (folder / "history.csv").write_text("product,site,customer,period_start,quantity\n" + "".join(r + "\n" for r in rows))
+
+
+def _config_file(tmp_path: Path, folder: Path, **calendar) -> str:
+    data = {
+        "inputs": {"folder": str(folder)},
+        "store": {"path": str(tmp_path / "store.duckdb")},
+        "calendar": {"period": "week", **calendar},
+        "product_classes": {"fast": {"window": 4}, "slow": {"window": 8}},
+    }
+    path = tmp_path / "planning.yaml"
+    path.write_text(yaml.safe_dump(data))
+    return str(path)
+
+
+def test_partition_keys_round_trip_and_bad_keys_are_named():
+    key = partition_key("2026-11-30", "seasonal")
+    assert str(key) == "2026-11-30|seasonal"  # Dagster orders dimensions by name: cycle, product_class
+    assert split_key(key) == split_key("2026-11-30|seasonal") == ("2026-11-30", "seasonal")
+    with pytest.raises(ConfigError, match="CYCLE\\|PRODUCT_CLASS"):
+        split_key("2026-11-30")
+
+
+def test_narrowed_config_keeps_one_class_and_the_cycle_date(make_config):
+    base = make_config({"fast": {"window": 4}, "slow": {"window": 8}})
+    narrow = narrow_config(base, "2026-11-30", "slow")
+    assert list(narrow.product_classes) == ["slow"] and narrow.product_classes["slow"].window == 8
+    assert narrow.calendar.cycle_date == dt.date(2026, 11, 30)
+    assert narrow.source == base.source and list(base.product_classes) == ["fast", "slow"]  # the original is untouched
+    with pytest.raises(ConfigError, match="'bulky' is not under product_classes.*'fast', 'slow'"):
+        narrow_config(base, "2026-11-30", "bulky")
+    with pytest.raises(ConfigError, match="does not start a week"):
+        narrow_config(base, "2026-12-01", "fast")  # a Tuesday
+
+
+def test_current_cycle_is_the_period_after_the_latest_history(tmp_path):
+    folder = tmp_path / "in"
+    # latest line on Wednesday 2026-11-25: its week starts Monday 11-23, so the cycle is Monday 11-30
+    _history(folder, ["P,S,C,2026-11-16,1", "P,S,C,2026-11-25,2", "P,S,C,not a date,3"])
+    config = PlanningConfigResource(path=_config_file(tmp_path, folder)).config
+    assert current_cycle(config) == "2026-11-30"
+    assert current_cycle(config, "2026-11-23") == "2026-11-23"
+    with pytest.raises(ConfigError, match="does not start a week"):
+        current_cycle(config, "2026-11-24")
+    fixed = PlanningConfigResource(path=_config_file(tmp_path, folder, cycle_date="2026-11-16")).config
+    assert current_cycle(fixed) == "2026-11-16"
+    _history(folder, ["P,S,C,,1"])
+    with pytest.raises(ConfigError, match="no history file .* has a dated line"):
+        current_cycle(config)
+
+
+def test_schedule_registers_the_cycle_and_requests_one_run_per_class(tmp_path):
+    folder = tmp_path / "in"
+    _history(folder, ["P,S,C,2026-11-23,1"])
+    planning = PlanningConfigResource(path=_config_file(tmp_path, folder))
+    with dg.instance_for_test() as instance:
+        context = dg.build_schedule_context(
+            instance=instance,
+            scheduled_execution_time=dt.datetime(2026, 11, 30, 6, tzinfo=dt.timezone.utc),
+            resources={"planning": planning},
+            repository_def=build_definitions(planning.path).get_repository_def(),
+        )
+        requests = weekly_cycle_schedule.evaluate_tick(context).run_requests
+        assert [r.partition_key for r in requests] == ["2026-11-30|fast", "2026-11-30|slow"]
+        assert instance.get_dynamic_partitions(CYCLE) == ["2026-11-30"]
+        assert instance.get_dynamic_partitions(PRODUCT_CLASS) == ["fast", "slow"]
+
+
+def test_sensor_starts_a_cycle_when_a_history_file_is_new_or_changed(tmp_path):
+    folder = tmp_path / "in"
+    _history(folder, ["P,S,C,2026-11-16,1"])
+    planning = PlanningConfigResource(path=_config_file(tmp_path, folder))
+    defs = build_definitions(planning.path)
+    # the daemon evaluates a tick with the instance as the partition store; so does this test
+    with dg.instance_for_test() as instance, dg.partition_loading_context(dynamic_partitions_store=instance):
+        first = new_history_file_sensor.evaluate_tick(
+            dg.build_sensor_context(instance=instance, resources={"planning": planning}, repository_def=defs.get_repository_def())
+        )
+        assert [r.partition_key for r in first.run_requests] == ["2026-11-23|fast", "2026-11-23|slow"]
+        assert instance.get_dynamic_partitions(CYCLE) == ["2026-11-23"]
+        assert instance.get_dynamic_partitions(PRODUCT_CLASS) == ["fast", "slow"]
+        # the same files again: nothing to do
+        again = new_history_file_sensor.evaluate_tick(
+            dg.build_sensor_context(instance=instance, cursor=first.cursor, resources={"planning": planning}, repository_def=defs.get_repository_def())
+        )
+        assert not again.run_requests and "no new or changed history file" in again.skip_message
+        # a new week lands in a second file: the next cycle starts
+        (folder / "history_2026-11-23.csv").write_text("product,site,customer,period_start,quantity\nP,S,C,2026-11-23,4\n")
+        later = new_history_file_sensor.evaluate_tick(
+            dg.build_sensor_context(instance=instance, cursor=first.cursor, resources={"planning": planning}, repository_def=defs.get_repository_def())
+        )
+        assert [r.partition_key for r in later.run_requests] == ["2026-11-30|fast", "2026-11-30|slow"]
+        assert len({r.run_key for r in first.run_requests + later.run_requests}) == 4
+
+
+def test_sensor_skips_with_the_reason_when_the_folder_is_missing(tmp_path):
+    planning = PlanningConfigResource(path=_config_file(tmp_path, tmp_path / "nowhere"))
+    with dg.instance_for_test() as instance:
+        tick = new_history_file_sensor.evaluate_tick(dg.build_sensor_context(instance=instance, resources={"planning": planning}))
+    assert not tick.run_requests and "does not exist" in tick.skip_message
