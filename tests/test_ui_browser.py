@@ -173,6 +173,24 @@ def dagster_webserver(home: Path, config_path: str, logs: Path):
         _stop(process)
 
 
+@contextmanager
+def checks_page(sync_playwright, base_url: str):
+    """Headless Chromium on the asset's checks with the schema check selected; yields the page."""
+    with sync_playwright() as playwright:
+        browser = playwright.chromium.launch(executable_path=str(CHROMIUM), headless=True, args=CHROMIUM_ARGS)
+        try:
+            page = browser.new_page(viewport={"width": 1400, "height": 1000})
+            page.set_default_timeout(UI_TIMEOUT_MS)
+            # the UI's first visit may open a newsletter prompt over the page: dismiss it whenever it shows
+            skip = page.get_by_role("button", name="Skip", exact=True)
+            page.add_locator_handler(skip, lambda: skip.click())
+            page.goto(f"{base_url}/assets/{CUSTOMER_SPANS}?view=checks")
+            page.get_by_title(CHECK, exact=True).click()  # the check in the list of the asset's checks
+            yield page
+        finally:
+            browser.close()
+
+
 EXECUTIONS = """
 query ($check: String!) {
   assetCheckExecutions(assetKey: {path: ["customer_spans"]}, checkName: $check, limit: 10) {
@@ -214,50 +232,39 @@ def test_ui_shows_the_failed_schema_check_with_its_rows_then_its_history(tmp_pat
     assert not evaluations[CHECK].passed, "the broken span did not fail the schema check in-process"
 
     screenshots = []
-    with dagster_webserver(home, str(config_path), tmp_path) as base_url, sync_playwright() as playwright:
-        browser = playwright.chromium.launch(executable_path=str(CHROMIUM), headless=True, args=CHROMIUM_ARGS)
-        try:
-            page = browser.new_page(viewport={"width": 1400, "height": 1000})
-            page.set_default_timeout(UI_TIMEOUT_MS)
-            # the UI's first visit may open a newsletter prompt over the page: dismiss it whenever it shows
-            skip = page.get_by_role("button", name="Skip", exact=True)
-            page.add_locator_handler(skip, lambda: skip.click())
-
-            page.goto(f"{base_url}/assets/{CUSTOMER_SPANS}?view=checks")
-            page.get_by_title(CHECK, exact=True).click()  # the check in the list of the asset's checks
+    with dagster_webserver(home, str(config_path), tmp_path) as base_url:
+        with checks_page(sync_playwright, base_url) as page:
             result = page.get_by_text("Evaluation result", exact=True).locator("xpath=..")
             expect(result).to_contain_text("Failed", timeout=UI_TIMEOUT_MS)
             expect(page.get_by_text("Proves that customer_spans matches its pandera model")).to_be_visible()
             screenshots.append(tmp_path / "failed_check.png")
             page.screenshot(path=screenshots[-1], full_page=True)
 
-            metadata_row = page.locator("tr", has_text="failing_rows_sample")
-            metadata_row.get_by_text("[Show Markdown]").click()
+            page.locator("tr", has_text="failing_rows_sample").get_by_text("[Show Markdown]").click()
             sample = page.get_by_role("dialog").filter(has_text="failing_rows_sample")
             for value in (broken["product"], broken["site"], broken["customer"], "2025-06-01", "2025-01-01"):
                 expect(sample).to_contain_text(value, timeout=UI_TIMEOUT_MS)
             screenshots.append(tmp_path / "failing_rows_sample.png")
             page.screenshot(path=screenshots[-1])
-            page.get_by_role("button", name="Close", exact=True).click()
 
-            # repair the input; the next evaluation passes
-            spans_file.write_bytes(good_spans)
-            second = materialize_into_instance(str(config_path), [CUSTOMER_SPANS])
-            assert second.success
+        # repair the input; the next evaluation passes (run outside the browser session: Dagster
+        # must not start its run inside Playwright's event loop)
+        spans_file.write_bytes(good_spans)
+        second = materialize_into_instance(str(config_path), [CUSTOMER_SPANS])
+        assert second.success
 
-            history = _graphql(base_url, EXECUTIONS, {"check": CHECK})["assetCheckExecutions"]
-            oldest_first = history[::-1]  # the API lists the newest execution first
-            assert [e["status"] for e in oldest_first] == ["FAILED", "SUCCEEDED"]
-            assert oldest_first[0]["evaluation"]["timestamp"] < oldest_first[1]["evaluation"]["timestamp"]
-            assert [e["evaluation"]["success"] for e in oldest_first] == [False, True]
-            assert [e["runId"] for e in oldest_first] == [first.run_id, second.run_id]
-            failed_sample = {m["label"]: m.get("mdStr") for m in oldest_first[0]["evaluation"]["metadataEntries"]}
-            assert broken["customer"] in failed_sample["failing_rows_sample"]
+        history = _graphql(base_url, EXECUTIONS, {"check": CHECK})["assetCheckExecutions"]
+        oldest_first = history[::-1]  # the API lists the newest execution first
+        assert [e["status"] for e in oldest_first] == ["FAILED", "SUCCEEDED"]
+        assert [e["evaluation"]["success"] for e in oldest_first] == [False, True]
+        assert [e["runId"] for e in oldest_first] == [first.run_id, second.run_id]
+        assert oldest_first[0]["evaluation"]["timestamp"] < oldest_first[1]["evaluation"]["timestamp"]
+        failed_metadata = {m["label"]: m.get("mdStr") for m in oldest_first[0]["evaluation"]["metadataEntries"]}
+        assert broken["customer"] in failed_metadata["failing_rows_sample"]
 
-            page.reload()
-            expect(page.get_by_text("Evaluation result", exact=True).locator("xpath=..")).to_contain_text(
-                "Passed", timeout=UI_TIMEOUT_MS
-            )
+        with checks_page(sync_playwright, base_url) as page:
+            result = page.get_by_text("Evaluation result", exact=True).locator("xpath=..")
+            expect(result).to_contain_text("Passed", timeout=UI_TIMEOUT_MS)
             page.get_by_role("tab", name="Execution history", exact=True).click()
             rows = page.get_by_role("row").filter(has_text="Failed").or_(page.get_by_role("row").filter(has_text="Passed"))
             expect(rows).to_have_count(2, timeout=UI_TIMEOUT_MS)
@@ -265,7 +272,5 @@ def test_ui_shows_the_failed_schema_check_with_its_rows_then_its_history(tmp_pat
             assert "Passed" in rows.nth(0).inner_text() and "Failed" in rows.nth(1).inner_text()
             screenshots.append(tmp_path / "check_history.png")
             page.screenshot(path=screenshots[-1])
-        finally:
-            browser.close()
     for path in screenshots:
         print(f"screenshot: {path}")
