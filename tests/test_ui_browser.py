@@ -128,6 +128,25 @@ def _stop(process: subprocess.Popen) -> None:
     process.wait(timeout=20)
 
 
+def _wait_until_loaded(process: subprocess.Popen, base_url: str) -> str | None:
+    """Poll the server's workspace until its code location is loaded; None, or what went wrong."""
+    deadline = time.monotonic() + SERVER_START_TIMEOUT_S
+    status = "not answering"
+    while time.monotonic() < deadline:
+        if process.poll() is not None:
+            return f"exited with code {process.returncode}"
+        try:
+            entries = _graphql(base_url, LOCATIONS)["workspaceOrError"]["locationEntries"]
+        except (urllib.error.URLError, ConnectionError, TimeoutError):
+            entries = None
+        if entries and all(e["loadStatus"] == "LOADED" for e in entries):
+            errors = [e["locationOrLoadError"] for e in entries if e["locationOrLoadError"]["__typename"] != "RepositoryLocation"]
+            return f"load error {errors}" if errors else None
+        status = f"locations {entries}" if entries is not None else status
+        time.sleep(1)
+    return f"not loaded within {SERVER_START_TIMEOUT_S} s: {status}"
+
+
 @contextmanager
 def dagster_webserver(home: Path, config_path: str, logs: Path):
     """`dagster-webserver -m pipelines.definitions` on a free 127.0.0.1 port over `home`; yields its base URL."""
@@ -145,28 +164,10 @@ def dagster_webserver(home: Path, config_path: str, logs: Path):
         process = subprocess.Popen(command, cwd=ROOT, env=env, stdout=out, stderr=err, start_new_session=True)
     base_url = f"http://127.0.0.1:{port}"
     try:
-        deadline = time.monotonic() + SERVER_START_TIMEOUT_S
-        status = "not answering"
-        while True:
-            if process.poll() is not None:
-                status = f"exited with code {process.returncode}"
-                break
-            try:
-                entries = _graphql(base_url, LOCATIONS)["workspaceOrError"]["locationEntries"]
-                status = f"locations {entries}"
-                if entries and all(e["loadStatus"] == "LOADED" for e in entries):
-                    break
-            except (urllib.error.URLError, ConnectionError, TimeoutError):
-                pass
-            if time.monotonic() > deadline:
-                break
-            time.sleep(1)
-        loaded = status.startswith("locations") and all(
-            e["locationOrLoadError"]["__typename"] == "RepositoryLocation" for e in entries
-        )
-        assert loaded, (
-            f"the Dagster web server on {base_url} did not load pipelines.definitions within "
-            f"{SERVER_START_TIMEOUT_S} s ({status}); its stderr:\n{stderr_path.read_text(errors='replace')[-6000:]}"
+        problem = _wait_until_loaded(process, base_url)
+        assert problem is None, (
+            f"the Dagster web server on {base_url} did not load pipelines.definitions ({problem}); "
+            f"its stderr:\n{stderr_path.read_text(errors='replace')[-6000:]}"
         )
         yield base_url
     finally:
