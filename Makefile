@@ -5,7 +5,7 @@ BIN := $(VENV)/bin
 export DAGSTER_HOME := $(CURDIR)/.dagster
 export APPORTION_CONFIG ?= config/planning.yaml
 
-.PHONY: demo test ui rebuild summary bench clean
+.PHONY: demo test ui rebuild summary bench browser-deps clean
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -45,6 +45,10 @@ summary: $(VENV)/.installed-base
 ## make bench LEAVES=10000: time every stage on a synthetic hierarchy
 bench: $(VENV)/.installed-base
 	$(BIN)/python benchmarks/cycle.py --leaves $(or $(LEAVES),10000)
+
+## make browser-deps: Debian's chromium for the browser test of the UI (as root; the test skips without it)
+browser-deps:
+	test -x /usr/bin/chromium || { apt-get update && DEBIAN_FRONTEND=noninteractive apt-get install -y chromium; }
 
 clean:
 	rm -rf var .dagster
