@@ -21,11 +21,11 @@ $(VENV)/.installed-test: pyproject.toml | $(BIN)/python
 
 $(DAGSTER_HOME)/dagster.yaml:
 	mkdir -p $(DAGSTER_HOME)
-	printf 'telemetry:\n  enabled: false\n' > $@
+	printf 'telemetry:\n  enabled: false\n# one run at a time: every run writes the same DuckDB file\nconcurrency:\n  runs:\n    max_concurrent_runs: 1\n' > $@
 
-## make demo: install, run the whole weekly cycle on data/demo, print a summary
+## make demo: install, run the weekly cycle on data/demo for every class (and, once, the week before, so share drift has a previous cycle), print a summary
 demo: $(VENV)/.installed-base $(DAGSTER_HOME)/dagster.yaml
-	$(BIN)/python -m pipelines cycle --config $(APPORTION_CONFIG)
+	$(BIN)/python -m pipelines cycle --config $(APPORTION_CONFIG) --backfill 1
 
 ## make test: install with test extras, run the whole test suite
 test: $(VENV)/.installed-test $(DAGSTER_HOME)/dagster.yaml
@@ -35,9 +35,9 @@ test: $(VENV)/.installed-test $(DAGSTER_HOME)/dagster.yaml
 ui: $(VENV)/.installed-base $(DAGSTER_HOME)/dagster.yaml
 	$(BIN)/dagster dev -m pipelines.definitions -h 127.0.0.1 -p 3000
 
-## make rebuild ASSET=share_tables: rematerialize one asset and everything downstream from the stored upstream tables
+## make rebuild CLASS=seasonal [ASSET=share_tables] [CYCLE=2026-11-30]: one class's asset and everything downstream, from the stored upstream tables
 rebuild: $(VENV)/.installed-base $(DAGSTER_HOME)/dagster.yaml
-	$(BIN)/dagster asset materialize -m pipelines.definitions --select '$(ASSET)*'
+	$(BIN)/python -m pipelines rebuild --config $(APPORTION_CONFIG) --class $(CLASS) --from $(or $(ASSET),share_tables) $(if $(CYCLE),--cycle $(CYCLE))
 
 summary: $(VENV)/.installed-base
 	$(BIN)/python -m pipelines summary --config $(APPORTION_CONFIG)

@@ -5,7 +5,7 @@ from pathlib import Path
 import dagster as dg
 import pandas as pd
 
-from assets.common import rule_check, schema_check_spec, table_metadata, validate
+from assets.common import markdown, rule_check, schema_check_spec, table_metadata, validate
 from pipelines.partitions import cycle_class_partitions, partition_config
 from pipelines.resources import PlanningConfigResource, report_folder
 from pipelines.schemas import CleanedHistory, CycleCalendar, HistoryCorrections, RejectedRows
@@ -17,6 +17,13 @@ HISTORY_CORRECTIONS = "history_corrections"
 CYCLE_CALENDAR = "cycle_calendar"
 EVERY_RAW_ROW_ACCOUNTED = "every_raw_row_accounted"
 CORRECTIONS_EXPLAIN_CHANGES = "corrections_explain_changes"
+REJECTED_ROWS_WITHIN_LIMIT = "rejected_rows_within_limit"
+REJECTED_CHECK_TEXT = (
+    "Warns when more than monitoring.max_rejected_share of the class's raw history lines were rejected (lines on or "
+    "after the cycle date are not counted: they belong to a later cycle), with counts by reason and a sample. When "
+    "it fires, correct the listed lines at their source (file and row are given) or the master data they miss, "
+    "and rerun the cycle."
+)
 
 
 def corrections_picture(by_class_and_rule: pd.DataFrame, classes: list[str], shortage_periods: int, path: Path) -> Path:
@@ -67,6 +74,7 @@ def corrections_picture(by_class_and_rule: pd.DataFrame, classes: list[str], sho
             description="Proves raw lines = lines summed into cleaned_history + rejected_rows, so no line is lost. "
             "When it fails, compare the counts in the metadata and report the stage as a bug.",
         ),
+        dg.AssetCheckSpec(REJECTED_ROWS_WITHIN_LIMIT, asset=REJECTED_ROWS, blocking=False, description=REJECTED_CHECK_TEXT),
         dg.AssetCheckSpec(
             CORRECTIONS_EXPLAIN_CHANGES,
             asset=CLEANED_HISTORY,
@@ -142,4 +150,16 @@ def cleaned_history(
         CORRECTIONS_EXPLAIN_CHANGES,
         find_unexplained_changes(result.cleaned, result.corrections),
         what="per series, raw + corrections = cleaned",
+    )
+    bad = rejected[rejected["reason"] != "on_or_after_cycle_date"]
+    limit = config.monitoring.max_rejected_share
+    fraction = len(bad) / len(raw_history) if len(raw_history) else 0.0
+    yield rule_check(
+        REJECTED_ROWS,
+        REJECTED_ROWS_WITHIN_LIMIT,
+        bad if fraction > limit else bad.iloc[0:0],
+        what=REJECTED_CHECK_TEXT.split(" (lines")[0],
+        severity=dg.AssetCheckSeverity.WARN,
+        rejected=f"{len(bad)} of {len(raw_history)} lines ({fraction:.3%}; limit {limit:.3%})",
+        by_reason=markdown(bad.groupby("reason").size().rename("lines").reset_index()),
     )

@@ -12,6 +12,13 @@ from pipelines.stages.share_tables import compute_shares, find_new_customers_wit
 
 SHARE_TABLES = "share_tables"
 NEW_CUSTOMER_WITHOUT_SHARE = "new_customer_without_share"
+FALLBACK_SHARE_WITHIN_LIMIT = "fallback_share_within_limit"
+FALLBACK_CHECK_TEXT = (
+    "Warns when more than monitoring.max_fallback_share of the class's parents took their shares from a fallback "
+    "(a longer window, or an even split when no window had volume), listing those parents. When it fires, the "
+    "class's window is too short for its history: lengthen product_classes.<class>.window, or check that the "
+    "parents' history arrived."
+)
 
 
 @dg.asset(
@@ -30,6 +37,7 @@ NEW_CUSTOMER_WITHOUT_SHARE = "new_customer_without_share"
             "history. A warning, not a stop: give the listed spans a reference_customer or an initial_share in "
             "customer_spans if their volume should be planned now.",
         ),
+        dg.AssetCheckSpec(FALLBACK_SHARE_WITHIN_LIMIT, asset=SHARE_TABLES, blocking=False, description=FALLBACK_CHECK_TEXT),
     ],
     description="Per product class: each child's base share from the class's window and method, the fallback used "
     "per parent, and the lifecycle rule that sets its share over the horizon.",
@@ -75,4 +83,15 @@ def share_tables(
         find_new_customers_without_share(shares),
         what="every new customer has a share from a reference customer or an initial share",
         severity=dg.AssetCheckSeverity.WARN,
+    )
+    limit = config.monitoring.max_fallback_share
+    used = parents[parents["fallback"] != "none"]
+    fraction = len(used) / len(parents) if len(parents) else 0.0
+    yield rule_check(
+        SHARE_TABLES,
+        FALLBACK_SHARE_WITHIN_LIMIT,
+        used[["product_class", "product", "site", "fallback", "window", "window_used"]] if fraction > limit else used.iloc[0:0],
+        what=FALLBACK_CHECK_TEXT.split(". When")[0],
+        severity=dg.AssetCheckSeverity.WARN,
+        parents_with_fallback=f"{len(used)} of {len(parents)} ({fraction:.1%}; limit {limit:.1%})",
     )

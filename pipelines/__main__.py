@@ -40,6 +40,7 @@ def run_cycle(
     classes: list[str] | None = None,
     rebuild_from: str | None = None,
     summary: bool = True,
+    backfill: int = 0,
 ) -> int:
     """Run the cycle (or, with `rebuild_from`, that asset and everything downstream) for each class; 0 when no ERROR check failed."""
     from pipelines.definitions import build_definitions
@@ -57,8 +58,10 @@ def run_cycle(
     selection = rebuild_selection(defs, rebuild_from) if rebuild_from else None
     what = f"{rebuild_from} and downstream" if rebuild_from else "whole cycle"
 
+    now = {"cycle": cycle, "what": what, "of": len(chosen)}  # what the progress lines name
+
     def started(i: int, product_class: str) -> None:
-        print(f"[{i}/{len(chosen)}] cycle {cycle}, class {product_class}: {what} ...", flush=True)
+        print(f"[{i}/{now['of']}] cycle {now['cycle']}, class {product_class}: {now['what']} ...", flush=True)
 
     def done(product_class: str, result, seconds: float) -> None:
         print(f"    run {result.run_id}: {'succeeded' if result.success else 'FAILED'} in {seconds:.0f} s", flush=True)
@@ -67,15 +70,24 @@ def run_cycle(
             message = error.cause.message if error and error.cause else (error.message if error else event.message)
             print(f"    step {event.step_key} failed: {message.strip()}")
 
+    run_config = {"loggers": {"console": {"config": {"log_level": "INFO"}}}}
+    instance = _instance()
+    ok = True
+    for earlier in _missing_earlier_cycles(config, cycle, backfill):
+        print(f"backfill: cycle {earlier} is not in the store yet; running it first (share drift compares with it)", flush=True)
+        now.update(cycle=earlier, what="whole cycle", of=len(config.product_classes))
+        past = run_partitions(defs, instance, earlier, list(config.product_classes), run_config=run_config, on_start=started, on_done=done)
+        ok = ok and past.success and past.blocking_checks_pass
+    now.update(cycle=cycle, what=what, of=len(chosen))
     # progress at INFO on the console; the full event log stays in the instance (and the UI)
     run = run_partitions(
         defs,
-        _instance(),
+        instance,
         cycle,
         chosen,
         all_classes=list(config.product_classes),
         selection=selection,
-        run_config={"loggers": {"console": {"config": {"log_level": "INFO"}}}},
+        run_config=run_config,
         on_start=started,
         on_done=done,
     )
@@ -83,7 +95,20 @@ def run_cycle(
     if summary:
         print_summary(config_path, checks, cycle=cycle)
     # a failed WARN check is reported but does not fail the command; an ERROR check does
-    return 0 if run.success and run.blocking_checks_pass else 1
+    return 0 if ok and run.success and run.blocking_checks_pass else 1
+
+
+def _missing_earlier_cycles(config, cycle: str, count: int) -> list[str]:
+    """The `count` cycles before `cycle` that have no cycle_calendar rows in the store, oldest first."""
+    import pandas as pd
+
+    from pipelines.calendar import shift_periods
+    from pipelines.partitions import cycle_key
+    from pipelines.resources import stored_cycles
+
+    have = set(stored_cycles(config.store.path))
+    earlier = [cycle_key(shift_periods(pd.Timestamp(cycle), -k, config.calendar.period)) for k in range(count, 0, -1)]
+    return [c for c in earlier if c not in have]
 
 
 def print_summary(config_path: str, checks: list[tuple[str, str, bool, str]] | None = None, cycle: str | None = None) -> None:
@@ -139,6 +164,16 @@ def print_summary(config_path: str, checks: list[tuple[str, str, bool, str]] | N
             print(f"  {row['product_class']:<14} {row['strategy']:<21} WMAPE {row['leaf_wmape']:.3f}  "
                   f"margin {row['margin']:+.4f} over {row['runner_up'] or '-'}  seasonal naive {row['seasonal_naive_wmape']:.3f}"
                   f"  ({row['forecast_grain']})")
+    drift = table("share_drift")
+    if drift is not None and len(drift):
+        limit = config.monitoring.max_share_drift_pp
+        print(f"share drift:  vs cycle {drift['previous_cycle'].iloc[0]}; {int((drift['abs_change_pp'] > limit).sum())} children "
+              f"moved more than {limit:g} pp; biggest moves:")
+        for _, r in drift.sort_values("abs_change_pp", ascending=False).head(5).iterrows():
+            print(f"  {r['product_class']:<14} {r['product']}/{r['site']}/{r['customer']:<8} {r['share_previous']:.3f} -> "
+                  f"{r['share_current']:.3f}  ({r['change_pp']:+.2f} pp, {r['status']})")
+    elif drift is not None:
+        print("share drift:  no previous cycle in the store to compare with (python -m pipelines cycle --backfill 1)")
     if checks is not None:
         failed = [c for c in checks if not c[2]]
         print(f"checks:       {len(checks) - len(failed)} passed, {len(failed)} failed")
@@ -158,6 +193,7 @@ def main(argv: list[str] | None = None) -> int:
     config_arg(p)
     p.add_argument("--cycle", default=None, help="cycle date YYYY-MM-DD (default: calendar.cycle_date, else the period after the history)")
     p.add_argument("--class", dest="classes", action="append", default=None, help="only this product class (repeatable)")
+    p.add_argument("--backfill", type=int, default=0, metavar="N", help="first run the N cycles before it that the store does not hold yet")
     p = sub.add_parser("rebuild", help="rematerialize one asset and everything downstream for one class, from the stored upstream tables")
     config_arg(p)
     p.add_argument("--class", dest="classes", action="append", required=True, help="product class to rebuild (repeatable)")
@@ -172,7 +208,7 @@ def main(argv: list[str] | None = None) -> int:
     args = parser.parse_args(argv)
     try:
         if args.command == "cycle":
-            return run_cycle(args.config, cycle=args.cycle, classes=args.classes)
+            return run_cycle(args.config, cycle=args.cycle, classes=args.classes, backfill=args.backfill)
         if args.command == "rebuild":
             return run_cycle(args.config, cycle=args.cycle, classes=args.classes, rebuild_from=args.asset)
         if args.command == "summary":

@@ -194,6 +194,18 @@ class ProductClassConfig(Frozen):
         return self.outliers if self.outliers is not None else cleansing.outliers
 
 
+class MonitoringConfig(Frozen):
+    """Thresholds of the WARN checks a watcher looks at; a check fires above its threshold."""
+
+    max_fallback_share: float = Field(
+        0.10, ge=0, le=1, description="share of a class's parents whose shares came from a fallback (longer window or even split)"
+    )
+    max_rejected_share: float = Field(0.001, ge=0, le=1, description="rejected raw lines / raw lines of a class")
+    max_share_drift_pp: float = Field(
+        10.0, gt=0, le=100, description="percentage points a child's share may move from the previous cycle's"
+    )
+
+
 class BacktestConfig(Frozen):
     """Rolling-origin backtest (Tashman 2000): `origins` forecast origins, each `horizon` periods ahead.
 
@@ -231,6 +243,7 @@ class PlanningConfig(Frozen):
     lifecycle: LifecycleConfig = LifecycleConfig()
     product_classes: dict[str, ProductClassConfig] = Field(min_length=1)
     backtest: BacktestConfig = BacktestConfig()
+    monitoring: MonitoringConfig = MonitoringConfig()
     _source: Path = PrivateAttr(Path("<memory>"))
 
     @property

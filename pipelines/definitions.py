@@ -9,6 +9,7 @@ from assets.master_data import adjustments, customer_spans, products, shortages
 from assets.raw_history import raw_history
 from assets.reconciliation import reconciliation
 from assets.reinitialized_target import reinitialized_target
+from assets.share_drift import share_drift
 from assets.share_tables import share_tables
 from assets.statistical_forecast import statistical_forecast
 from pipelines.jobs import new_history_file_sensor, weekly_cycle_job, weekly_cycle_schedule
@@ -23,6 +24,7 @@ ASSETS = [
     cleaned_history,
     lifecycle_history,
     share_tables,
+    share_drift,
     reinitialized_target,
     backtest_accuracy,
     statistical_forecast,

@@ -221,3 +221,17 @@ def stored_cycles(store: Path | str, table: str = "cycle_calendar") -> list[str]
 def report_folder(config: PlanningConfig) -> Path:
     """var/reports/<cycle>/ next to the store: pictures and the HTML report of one cycle."""
     return Path(config.store.path).parent / "reports" / str(config.calendar.cycle_date)
+
+
+def previous_cycle(store: Path | str, table: str, cycle: str, product_class: str) -> str | None:
+    """The latest stored cycle before `cycle` with rows of `product_class` in `table` (None if there is none)."""
+    if not Path(store).exists():
+        return None
+    with _connect(Path(store), read_only=True) as con:
+        if not _columns(con, WRITTEN):
+            return None
+        row = con.execute(
+            f"SELECT max({PARTITION_CYCLE}) FROM {WRITTEN} WHERE asset = ? AND {PARTITION_CLASS} = ? AND {PARTITION_CYCLE} < ?",
+            [table, product_class, cycle],
+        ).fetchone()
+    return row[0] if row else None

@@ -391,3 +391,19 @@ class Reconciliation(_Strict):
 
     class Config:
         unique = ["product", "site", "period_start"]
+
+
+# ----------------------------------------------------------------- monitoring
+class ShareDrift(LeafKeys):
+    """Each child's share now and in the previous cycle of its class, in percentage points."""
+
+    product_class: Series[str] = pa.Field(description="product class")
+    previous_cycle: Series[str] = pa.Field(description="cycle compared with (ISO date)")
+    share_previous: Series[float] = pa.Field(ge=0, le=1, description="base share in the previous cycle (0 = not a child then)")
+    share_current: Series[float] = pa.Field(ge=0, le=1, description="base share in this cycle (0 = no longer a child)")
+    change_pp: Series[float] = pa.Field(ge=-100, le=100, description="100 x (current - previous), percentage points")
+    abs_change_pp: Series[float] = pa.Field(ge=0, le=100, description="size of the move, percentage points")
+    status: Series[str] = pa.Field(isin=("both", "new", "gone"), description="child in both cycles, only now, or only then")
+
+    class Config:
+        unique = ["product", "site", "customer"]

@@ -285,7 +285,7 @@ def test_planner_metadata_on_share_tables_and_reinitialized_target(demo_cycle):
 def test_rebuilding_one_class_replaces_exactly_its_partition(demo_cycle):
     _, store, config = demo_cycle
     before = read_table(store, "share_tables", with_partition=True)
-    written = read_table(store, "partitions_written").set_index(["asset", "partition_cycle", "partition_class"])["written_at"]
+    written = read_table(store, "partitions_written", with_partition=True).set_index(["asset", "partition_cycle", "partition_class"])["written_at"]
     defs = build_definitions(config)
     selection = rebuild_selection(defs, "share_tables")
     names = {k.to_user_string() for k in selection}
@@ -299,7 +299,7 @@ def test_rebuilding_one_class_replaces_exactly_its_partition(demo_cycle):
     after = read_table(store, "share_tables", with_partition=True)
     # idempotent: the same rows, none duplicated, in the same order
     pd.testing.assert_frame_equal(before, after)
-    now = read_table(store, "partitions_written").set_index(["asset", "partition_cycle", "partition_class"])["written_at"]
+    now = read_table(store, "partitions_written", with_partition=True).set_index(["asset", "partition_cycle", "partition_class"])["written_at"]
     moved = now[now != written.reindex(now.index)].index
     # only the spares partitions of the rebuilt assets were written again; the other classes are untouched
     assert {(a, c, k) for a, c, k in moved} == {(a, "2026-11-30", "spares") for a in names}
@@ -444,3 +444,40 @@ def test_cleansing_picture_is_written_to_the_cycle_report_folder(demo_cycle):
         path = Path(meta["corrections_picture"].value)
         assert path == store.parent / "reports" / "2026-11-30" / f"cleansing_{product_class}.png"
         assert path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_two_cycles_side_by_side_and_the_share_drift_between_them(demo_cycle):
+    from assets.share_drift import SHARE_DRIFT_WITHIN_LIMIT
+
+    _, store, config = demo_cycle
+    defs = build_definitions(config)
+    instance = dg.DagsterInstance.ephemeral()
+    current_before = read_table(store, "share_tables", cycle="2026-11-30", product_class="spares")
+    # the previous week's cycle of one class: its history ends a week earlier (that week's lines are
+    # rejected as on_or_after_cycle_date), and it lands beside the current cycle, which stays as it was
+    previous = run_partitions(defs, instance, "2026-11-23", ["spares"], all_classes=["consumables", "seasonal", "spares"])
+    assert previous.success and previous.blocking_checks_pass
+    late = read_table(store, "rejected_rows", cycle="2026-11-23", product_class="spares")
+    assert (late["reason"] == "on_or_after_cycle_date").sum() > 0
+    assert read_table(store, "cycle_calendar", cycle="2026-11-23")["cycle_date"].tolist() == [pd.Timestamp("2026-11-23")]
+    pd.testing.assert_frame_equal(read_table(store, "share_tables", cycle="2026-11-30", product_class="spares"), current_before)
+    # now the current cycle's drift compares with it
+    rerun = run_partitions(defs, instance, "2026-11-30", ["spares"], selection=[dg.AssetKey("share_drift")])
+    assert rerun.success
+    drift = read_table(store, "share_drift", cycle="2026-11-30", product_class="spares")
+    prev = read_table(store, "share_tables", cycle="2026-11-23", product_class="spares")
+    assert set(drift["previous_cycle"]) == {"2026-11-23"}
+    # every child of either cycle, its move = 100 x (share now - share then), worked from the two stored tables
+    keys = ["product", "site", "customer"]
+    both = current_before[keys + ["share"]].merge(prev[keys + ["share"]], on=keys, how="outer", suffixes=("_now", "_then")).fillna(0.0)
+    expected = both.assign(change_pp=100 * (both["share_now"] - both["share_then"])).set_index(keys)["change_pp"]
+    got = drift.set_index(keys)["change_pp"]
+    pd.testing.assert_series_equal(got.sort_index(), expected.sort_index(), check_names=False, atol=1e-12)
+    assert drift["abs_change_pp"].is_monotonic_decreasing
+    check = checks_of(rerun)[f"share_drift:{SHARE_DRIFT_WITHIN_LIMIT}"]
+    limit = load_config(config).monitoring.max_share_drift_pp
+    assert check.severity == dg.AssetCheckSeverity.WARN
+    assert check.passed == bool((drift["abs_change_pp"] <= limit).all())
+    # the first cycle of a class has nothing to compare with
+    first = read_table(store, "share_drift", cycle="2026-11-23", product_class="spares")
+    assert first.empty

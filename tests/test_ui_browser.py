@@ -36,7 +36,9 @@ import yaml
 from assets.common import schema_check_name
 from assets.master_data import CUSTOMER_SPANS
 from pipelines.definitions import build_definitions
-from pipelines.jobs import WEEKLY_CYCLE
+from pipelines.config import load_config
+from pipelines.partitions import current_cycle
+from pipelines.runner import run_partitions
 
 pytestmark = pytest.mark.browser
 
@@ -77,19 +79,28 @@ def _sync_playwright():
     return sync_playwright
 
 
+# the broken span (row 3 of customer_spans.csv, DRIP-001) is in this class (data/demo/products.csv)
+BROKEN_CLASS = "consumables"
+
+
 def materialize_into_instance(config_path: str, asset_names: list[str]) -> dg.ExecuteInProcessResult:
     """Materialize `asset_names` with the planning config at `config_path` into the instance at $DAGSTER_HOME.
 
-    The one place this module knows how (part of) a cycle is run; a blocking
-    check that fails ends the run without raising.
+    The one place this module knows how (part of) a cycle is run: the current
+    cycle's partition of the broken span's class (consumables), registered in
+    the instance first; a blocking check that fails ends the run without raising.
     """
-    defs = build_definitions(config_path)
+    config = load_config(config_path)
     with dg.DagsterInstance.get() as instance:
-        return defs.resolve_job_def(WEEKLY_CYCLE).execute_in_process(
-            instance=instance,
-            asset_selection=[dg.AssetKey(name) for name in asset_names],
-            raise_on_error=False,
+        run = run_partitions(
+            build_definitions(config_path),
+            instance,
+            current_cycle(config),
+            [BROKEN_CLASS],
+            all_classes=list(config.product_classes),
+            selection=[dg.AssetKey(name) for name in asset_names],
         )
+    return run.results[BROKEN_CLASS]
 
 
 def _free_port() -> int:
