@@ -376,7 +376,7 @@ def share_chart_figure(
             if at_cycle is not None:
                 label += f"  {at_cycle[column]:.1%}"
             color = OTHER_COLOR if column == OTHER else CHILD_COLORS[j % len(CHILD_COLORS)]
-            ax.fill_between(x, bottom, top_edge, color=color, alpha=0.9, lw=0, label=label, zorder=2)
+            ax.fill_between(x, bottom, top_edge, color=color, lw=0, label=label, zorder=2)
             bottom = np.where(np.isnan(top_edge), bottom, top_edge)
         if key in window_start:
             ax.axvline(window_start[key], color=CYCLE_COLOR, ls=":", lw=1.0, zorder=3, label="share window start" if i == 0 else None)
