@@ -13,6 +13,7 @@ Leaf forecast of C1 = period share x parent: 0.6 x 100 = 60, 0.48 x 120 = 57.6,
 
 from __future__ import annotations
 
+import numpy as np
 import pandas as pd
 import pytest
 
@@ -219,3 +220,44 @@ def test_optional_tables_may_be_absent(tables):
     text = explain_leaf(tables, "P1", "S1", "C1", period=H1)
     assert "(history_corrections not given)" in text
     assert "0.600000 x 100.00 = 60.00, as stored" in text
+
+
+def test_explains_the_tables_the_stages_themselves_make(make_history, make_config):
+    """share_tables -> reinitialized_target -> forecast_cycle on a tiny parent, then explain.
+
+    Weeks 2026-01-05 .. 01-26: C1 ships 4 and C2 8 every week (parent 12); C3 is new
+    with initial share 0.25 from H2. History shares: C1 16 / 48 = 1/3, C2 2/3.
+    Period shares: H1 C1 1/3, C2 2/3; H2 C1 1/3 x 0.75 = 0.25, C2 0.5, C3 0.25.
+    Parent forecast: croston_classic of a constant 12 is 12 (see test_statistical_forecast).
+    C1: H1 12 / 3 = 4, H2 0.25 x 12 = 3.
+    """
+    from pipelines.stages.reinitialized_target import reinitialize_target
+    from pipelines.stages.share_tables import compute_shares
+    from pipelines.stages.statistical_forecast import forecast_cycle
+
+    croston = {d: "croston_classic" for d in ("smooth", "erratic", "intermittent", "lumpy")}
+    config = make_config(
+        {"a": {"window": 4, "forecast_grain": "product_site", "models": croston}},
+        calendar={"horizon": 2}, lifecycle={"min_history_periods": 4},
+    )
+    weeks = ["2026-01-05", "2026-01-12", "2026-01-19", "2026-01-26"]
+    history = make_history([("P1", "S1", c, w, q) for c, q in (("C1", 4), ("C2", 8)) for w in weeks])
+    children = pd.DataFrame(
+        {
+            "product": "P1", "site": "S1", "customer": ["C1", "C2", "C3"], "product_class": "a",
+            "first_active_period": pd.to_datetime([H1, H1, H2]), "last_active_period": pd.Timestamp(H2),
+            "own_periods": [4, 4, 0], "initial_share": [np.nan, np.nan, 0.25],
+        }
+    )
+    shares = compute_shares(history, children, config, CYCLE)
+    target = reinitialize_target(shares, history, config, CYCLE)
+    result = forecast_cycle(history, shares[["product", "site", "customer", "product_class", "first_active_period", "last_active_period"]], target, config, CYCLE)
+    tables = {"share_tables": shares, "reinitialized_target": target, "parent_forecast": result.parent,
+              "statistical_forecast": result.leaf, "forecast_models": result.models}
+    text = explain_leaf(tables, "P1", "S1", "C1", period=H2)
+    assert "shipped 16.00 of the parent's 48.00" in text
+    assert "0.250000 x 12.00 = 3.00, as stored" in text
+    assert "Model croston_classic" in text
+    whole = explain_leaf(tables, "P1", "S1", "C1")
+    assert any(line.split()[:4] == ["2026-02-02", "0.333333", "12.00", "4.00"] for line in whole.splitlines())
+    assert "From 2026-02-09 the share is 0.250000 (was 0.333333): C3 starts in it." in whole

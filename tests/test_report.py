@@ -94,6 +94,13 @@ def test_parent_chart_plots_class_total_and_the_largest_parents(parents):
     assert total.get_ylabel() == "quantity per week"
 
 
+def test_parent_chart_draws_only_the_last_history_periods_asked_for(parents):
+    hist, forecast = parents
+    fig = report.parent_chart_figure(hist, forecast, product_class="a", cycle_date=CYCLE, history_periods=2)
+    # the last 2 weeks before the cycle date: W2 33, W3 35
+    assert line(fig.axes[0], "history") == {num(W2): 33.0, num(W3): 35.0}
+
+
 def test_parent_chart_png_is_valid_deterministic_and_shows_the_forecast(parents):
     hist, forecast = parents
     png = report.parent_chart(hist, forecast, product_class="a", cycle_date=CYCLE, top_parents=2)
@@ -135,18 +142,14 @@ def shares_input():
 
 
 def bands(ax):
-    """{label: {x: band thickness}} read back from the stacked areas' polygons (top edge - bottom edge at each x)."""
+    """{label: {x: (bottom, height, width)}} read back from the stacked bars' rectangles (x, width in days)."""
     out = {}
     for collection in ax.collections:
-        label = collection.get_label()
-        if label.startswith("_"):
-            continue
-        vertices = np.concatenate([p.vertices for p in collection.get_paths()])
-        thickness = {}
-        for x in np.unique(vertices[:, 0]):
-            y = vertices[vertices[:, 0] == x, 1]
-            thickness[round(float(x), 6)] = round(float(y.max() - y.min()), 9)
-        out[label] = thickness
+        cells = {}
+        for path in collection.get_paths():
+            (x0, y0), (x1, y1) = path.vertices.min(axis=0), path.vertices.max(axis=0)
+            cells[round(float(x0), 6)] = (round(float(y0), 9), round(float(y1 - y0), 9), float(x1 - x0))
+        out[collection.get_label()] = cells
     return out
 
 
@@ -157,11 +160,20 @@ def test_share_chart_stacks_history_and_horizon_shares_with_other(shares_input):
     # mean shares over W1, W3, H1, H2 (W2 blank): C1 (.6+.3+.5+.5)/4 = .475, C2 .3, C3 .125, C4 .1 -> top 2: C1, C2
     # other = C3 + C4: W1 .1, W3 .4, H1 .2, H2 .2; labels carry the share in the first horizon period
     got = bands(ax)
-    assert got == {
+    heights = {label: {x: h for x, (_, h, _) in cells.items()} for label, cells in got.items()}
+    assert heights == {
         "C1  50.0%": {num(W1): 0.6, num(W3): 0.3, num(H1): 0.5, num(H2): 0.5},
         "C2  30.0%": {num(W1): 0.3, num(W3): 0.3, num(H1): 0.3, num(H2): 0.3},
         "other (2 customers)  20.0%": {num(W1): 0.1, num(W3): 0.4, num(H1): 0.2, num(H2): 0.2},
     }
+    # stacked: each band starts where the one below ends; every bar is one week (7 days) wide
+    c1, c2, other = got["C1  50.0%"], got["C2  30.0%"], got["other (2 customers)  20.0%"]
+    for x in c1:
+        assert c1[x][0] == 0.0
+        assert c2[x][0] == pytest.approx(c1[x][1])
+        assert other[x][0] == pytest.approx(c1[x][1] + c2[x][1])
+        assert other[x][0] + other[x][1] == pytest.approx(1.0)
+        assert c1[x][2] == 7.0
     # the legend lists the bands top down as stacked: other, C2, C1
     legend = [t.get_text() for t in ax.get_legend().get_texts()]
     assert legend[:3] == ["other (2 customers)  20.0%", "C2  30.0%", "C1  50.0%"]

@@ -268,7 +268,8 @@ def _forecast_section(row: pd.Series, horizon: pd.DataFrame, parent: pd.DataFram
     lines.append(f"   Model {model}{detail}.")
     lines.append(f"   Demand class {first['demand_class']}{f' ({cut})' if cut else ''}.")
     strategy = first.get("strategy") if "strategy" in parent.columns else None
-    lines.append(f"   Strategy {strategy or 'top_down'} (forecast grain {first['forecast_grain']}).")
+    named = f"Strategy {strategy}" if isinstance(strategy, str) and strategy else "Strategy not recorded in parent_forecast"
+    lines.append(f"   {named} (forecast grain {first['forecast_grain']}).")
     if models is not None:
         leaf_model = models[(models["grain"] == "leaf") & (models["product"] == product) & (models["site"] == site) & (models["customer"] == customer)]
         if len(leaf_model):

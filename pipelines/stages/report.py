@@ -9,7 +9,9 @@ bytes or an HTML string out. Nothing here reads the store or knows of Dagster.
   the horizon, the cycle date marked and the horizon shaded. The parents not
   drawn are named in a caption, so none is silently left out.
 - `share_chart`: per product class, one panel per largest parent: each
-  customer's share of its parent as a stacked area, over history (the
+  customer's share of its parent as a stacked area (stepped: one full-width
+  bar per period, so a period covers its bucket and a lone period of an
+  intermittent series stays visible), over history (the
   customer's quantity / the parent's quantity in each period) and over the
   horizon (the period shares of `reinitialized_target`). Customers beyond the
   `top_children` largest (by mean share over the drawn periods) are summed as
@@ -41,10 +43,11 @@ import numpy as np
 import pandas as pd
 from matplotlib import dates as mdates
 from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.collections import PolyCollection
 from matplotlib.figure import Figure
 from matplotlib.ticker import FuncFormatter, PercentFormatter
 
-from pipelines.calendar import shift_periods
+from pipelines.calendar import ordinal_to_start, period_ordinal, shift_periods
 from pipelines.keys import LEAF, PARENT
 
 DPI = 100
@@ -104,6 +107,18 @@ def _history_of(history: pd.DataFrame, parents: pd.DataFrame, cycle: pd.Timestam
     if history_periods:
         keep &= hist["period_start"] >= shift_periods(cycle, -int(history_periods), period)
     return hist[keep]
+
+
+def _next_starts(starts: pd.DatetimeIndex, period: str) -> pd.DatetimeIndex:
+    """The start of the period after each period start."""
+    return ordinal_to_start(period_ordinal(starts, period) + 1, period)
+
+
+def _bars(left: np.ndarray, width: np.ndarray, bottom: np.ndarray, height: np.ndarray, **style) -> PolyCollection:
+    """Rectangles [left, left + width] x [bottom, bottom + height] as one artist (thousands of bars draw in one call)."""
+    right, top = left + width, bottom + height
+    corners = np.stack([np.stack([left, bottom], 1), np.stack([right, bottom], 1), np.stack([right, top], 1), np.stack([left, top], 1)], 1)
+    return PolyCollection(corners, linewidths=0, antialiaseds=False, zorder=2, **style)
 
 
 def _parent_label(product, site) -> str:
@@ -366,20 +381,24 @@ def share_chart_figure(
         empty = hist_shares.iloc[:0]
         bands, top, n_rest = _stack_for_parent(hist_by.get(key, empty), tgt_by[key], top_children)
         _mark_horizon(ax, cycle, horizon_end, label=i == 0)
-        x = bands.index
+        # one full-width bar per period (a stepped stacked area): a period stands for its whole bucket,
+        # and a lone period of an intermittent series stays visible
+        left = mdates.date2num(bands.index)
+        width = mdates.date2num(_next_starts(bands.index, period)) - left
         at_cycle = bands[bands.index >= cycle].iloc[0] if (bands.index >= cycle).any() else None
         bottom = np.zeros(len(bands))
+        drawn = ~bands.isna().all(axis=1).to_numpy()
         for j, column in enumerate(bands.columns):
-            values = bands[column].to_numpy(dtype=float)
-            top_edge = bottom + values
+            values = bands[column].fillna(0.0).to_numpy(dtype=float)
             label = f"{OTHER} ({n_rest} customer{'s' if n_rest > 1 else ''})" if column == OTHER else str(column)
             if at_cycle is not None:
                 label += f"  {at_cycle[column]:.1%}"
             color = OTHER_COLOR if column == OTHER else CHILD_COLORS[j % len(CHILD_COLORS)]
-            ax.fill_between(x, bottom, top_edge, color=color, lw=0, label=label, zorder=2)
-            bottom = np.where(np.isnan(top_edge), bottom, top_edge)
+            ax.add_collection(_bars(left[drawn], width[drawn], bottom[drawn], values[drawn], color=color, label=label), autolim=True)
+            bottom = bottom + values
         if key in window_start:
             ax.axvline(window_start[key], color=CYCLE_COLOR, ls=":", lw=1.0, zorder=3, label="share window start" if i == 0 else None)
+        ax.autoscale_view()
         ax.set_ylim(0, 1)
         ax.yaxis.set_major_formatter(PercentFormatter(1.0, decimals=0))
         ax.set_ylabel("share of parent")
@@ -650,6 +669,8 @@ def cycle_report_html(
     body = [
         f"<h1>{_e(title)}</h1>",
         f'<p class="meta">{_e(meta)}</p>',
+        '<nav><a href="#checks">Checks</a> | <a href="#classes">Product classes</a> | <a href="#movers">Share movers</a> | '
+        '<a href="#rejected">Rejected rows</a> | <a href="#charts">Charts</a></nav>',
         _checks_section(checks),
         f'<section id="classes"><h2>Product classes</h2>{classes}</section>',
         _movers_section(movers, top_movers),
