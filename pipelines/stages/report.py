@@ -59,7 +59,7 @@ CYCLE_COLOR = "#333333"
 OTHER_COLOR = "#bdbdbd"
 # the tab10 palette without its grey, which is kept for "other"
 CHILD_COLORS = ("#1f77b4", "#ff7f0e", "#2ca02c", "#d62728", "#9467bd", "#8c564b", "#e377c2", "#bcbd22", "#17becf")
-CAPTION_WIDTH = 165  # characters per caption line at 8 pt over the figure's width
+CAPTION_WIDTH = 155  # characters per caption line at 8 pt over the figure's width
 CAPTION_LINES = 9
 OTHER = "other"
 
@@ -132,11 +132,13 @@ def _caption(text: str, names: Sequence[str] = (), lead: str = "") -> list[str]:
         return lines
     budget = (CAPTION_LINES - len(lines)) * CAPTION_WIDTH - len(lead)
     kept: list[str] = []
+    used = 0
     for i, name in enumerate(names):
         rest = len(names) - i - 1
         tail = f" ... and {rest} more" if rest else ""
-        if len(", ".join(kept + [name])) + len(tail) > budget and kept:
+        if kept and used + 2 + len(name) + len(tail) > budget:
             break
+        used += len(name) + (2 if kept else 0)
         kept.append(name)
     more = len(names) - len(kept)
     listed = lead + ", ".join(kept) + (f" ... and {more} more." if more else ".")
@@ -236,8 +238,8 @@ def parent_chart_figure(
     _date_axis(total)
     total.legend(loc="upper left", fontsize=8, frameon=False, ncols=3)
 
-    hist_by = {k: g for k, g in hist.groupby(PARENT, observed=True)}
-    fc_by = {k: g for k, g in fc.groupby(PARENT, observed=True)}
+    hist_by = {k: g for k, g in hist.merge(shown[PARENT], on=PARENT).groupby(PARENT, observed=True)}
+    fc_by = {k: g for k, g in fc.merge(shown[PARENT], on=PARENT).groupby(PARENT, observed=True)}
     for i, row in enumerate(shown.itertuples(index=False)):
         ax = fig.add_subplot(grid[1 + i // columns, i % columns], sharex=total)
         key = (row.product, row.site)
@@ -348,7 +350,7 @@ def share_chart_figure(
     ranked = _rank_parents(hist, tgt.assign(forecast=tgt["target"]), parents)
     shown = ranked.head(max(int(top_parents), 0))
     hidden = ranked.iloc[len(shown):]
-    hist_shares = history_period_shares(hist)
+    hist_shares = history_period_shares(hist.merge(shown[PARENT], on=PARENT))
     horizon_end = shift_periods(tgt["period_start"].max(), 1, period)
     window_start = {}
     if shares is not None and len(shares):
@@ -372,7 +374,7 @@ def share_chart_figure(
     grid = fig.add_gridspec(rows + 1, 1, height_ratios=[2.3] * rows + [0.2 + 0.14 * len(lines)])
     fig.suptitle(title, fontsize=13, fontweight="bold")
     hist_by = {k: g for k, g in hist_shares.groupby(PARENT, observed=True)}
-    tgt_by = {k: g for k, g in tgt.groupby(PARENT, observed=True)}
+    tgt_by = {k: g for k, g in tgt.merge(shown[PARENT], on=PARENT).groupby(PARENT, observed=True)}
     first_ax = None
     for i, row in enumerate(shown.itertuples(index=False)):
         key = (row.product, row.site)
