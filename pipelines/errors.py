@@ -15,3 +15,7 @@ class InputFileError(PlanningError):
 
 class LifecycleError(PlanningError):
     """The lifecycle master data contradict themselves (e.g. a successor cycle)."""
+
+
+class UnknownKeyError(PlanningError):
+    """A product, site, customer or period asked about is not in the stored cycle."""

@@ -1,0 +1,398 @@
+"""Explain one leaf value: how the forecast of product x site x customer was made, from the stored tables of one cycle.
+
+`explain_leaf(tables, product, site, customer, period=None)` reads only what
+the cycle stored and tells it in the order the cycle made it:
+
+1. the history share: window (configured, used, dates), share method
+   (`pooled` or `mean_of_ratios`, Gross & Sohl 1990), fallback, the customer's
+   and the parent's volume in the window;
+2. the lifecycle rule (`share_tables.lifecycle_rule`: phase-in / phase-out,
+   reference customer and scale, initial share, awaiting history), the active
+   periods and the base share; what the lifecycle stage moved for this leaf
+   (`lifecycle_audit`);
+3. the corrections to its history (`history_corrections`, counted by rule,
+   including those on a retired product's history mapped to it when
+   `lifecycle_history` is given);
+4. the parent forecast: model and its parameters (`forecast_models`), demand
+   class (Syntetos, Boylan & Croston 2005), strategy and forecast grain;
+5. the result: with a top-down split, period share x parent forecast = leaf
+   forecast, with the numbers; with another strategy, the leaf's own or
+   reconciled forecast and the proportion of the parent it came to. With
+   `period`, that period in words; without, one line per horizon period.
+
+An unknown product, site, customer or period raises `UnknownKeyError` naming
+the part that did not match and the close matches (the sites of the product,
+the customers of the product x site, the horizon's periods).
+"""
+
+from __future__ import annotations
+
+import difflib
+from collections.abc import Mapping
+
+import numpy as np
+import pandas as pd
+
+from pipelines.calendar import period_start, shift_periods
+from pipelines.errors import PlanningError, UnknownKeyError
+
+REQUIRED_TABLES = ("share_tables", "reinitialized_target", "parent_forecast", "statistical_forecast")
+OPTIONAL_TABLES = ("forecast_models", "history_corrections", "lifecycle_audit", "cycle_calendar", "lifecycle_history")
+LISTED = 30  # names listed at most in an error
+RELATIVE_TOLERANCE = 1e-6  # share x parent against the stored leaf forecast
+
+METHODS = {
+    "pooled": "pooled: the customer's volume over the window / the parent's volume over the window",
+    "mean_of_ratios": "mean_of_ratios: the mean, over the window's periods with parent volume, of the customer's "
+    "quantity / the parent's quantity",
+}
+LIFECYCLE_RULES = {
+    "none": "none: an established customer active over the whole horizon, share from history",
+    "phase_in": "phase_in: an established customer whose span starts inside the horizon; no share before it starts",
+    "phase_out": "phase_out: an established customer whose span ends inside the horizon; no share after it ends",
+    "reference": "reference: a new customer taking scale x its reference customer's history share, taken from the reference",
+    "initial_share": "initial_share: a new customer with a planner-given share; the other customers are scaled by 1 minus it",
+    "awaiting_history": "awaiting_history: a new customer with neither reference customer nor initial share; "
+    "no share until it has enough own history",
+}
+ZERO_REASONS = {
+    "product_not_active": "the product's own span does not cover this period",
+    "no_active_child": "no customer span of the parent covers this period",
+    "awaiting_history": "the only active customers are new customers still awaiting history",
+    "no_share_among_active": "the active customers hold no share",
+}
+BASES = {
+    "target": "top-down split of the parent forecast by the reinitialized target",
+    "share": "split of the parent forecast by the period shares, as the parent's targets were all 0 (baseline 0)",
+    "own_forecast": "the customer's own forecast, bottom-up: the parent is the sum of its customers",
+    "forecast_proportions": "the parent forecast split in proportion to the customers' own forecasts",
+    "reconciled": "parent and customer forecasts reconciled by MinT / WLS",
+}
+
+
+def _qty(x: float) -> str:
+    return f"{x:,.2f}"
+
+
+def _share(x: float) -> str:
+    return f"{x:.6f} ({100 * x:.2f} %)"
+
+
+def _day(x) -> str:
+    return f"{pd.Timestamp(x):%Y-%m-%d}"
+
+
+def _nearest(value: str, candidates, n: int = 5) -> list[str]:
+    """Close matches of `value`, case-insensitive, in the candidates' own spelling."""
+    by_lower: dict[str, str] = {}
+    for c in sorted(map(str, candidates)):
+        by_lower.setdefault(c.lower(), c)
+    return [by_lower[m] for m in difflib.get_close_matches(value.lower(), list(by_lower), n=n, cutoff=0.6)]
+
+
+def _listing(values) -> str:
+    values = sorted(map(str, values))
+    shown = ", ".join(values[:LISTED])
+    return shown + (f" ... and {len(values) - LISTED} more" if len(values) > LISTED else "")
+
+
+def _unknown(part: str, value: str, where: str, candidates, extra: str = "") -> UnknownKeyError:
+    close = _nearest(value, candidates)
+    text = f"{part} {value!r} is not {where} in the stored cycle."
+    text += f" Close matches: {', '.join(close)}." if close else " No close match."
+    text += f" {part.capitalize()}s there ({len(set(candidates))}): {_listing(set(candidates))}."
+    if extra:
+        text += f" {extra}"
+    text += " Check the spelling, or whether the key is in this cycle's customer_spans and products files."
+    return UnknownKeyError(text)
+
+
+def find_leaf(shares: pd.DataFrame, product: str, site: str, customer: str) -> pd.Series:
+    """The share-table row of the leaf; `UnknownKeyError` naming the first part that does not match."""
+    of_product = shares[shares["product"] == product]
+    if of_product.empty:
+        raise _unknown("product", product, "a product of the share table", shares["product"].unique())
+    of_site = of_product[of_product["site"] == site]
+    if of_site.empty:
+        elsewhere = shares.loc[shares["site"] == site, "product"].unique()
+        extra = f"Site {site} has other products: {_listing(elsewhere)}." if len(elsewhere) else ""
+        raise _unknown("site", site, f"a site of product {product}", of_product["site"].unique(), extra)
+    row = of_site[of_site["customer"] == customer]
+    if row.empty:
+        other = shares[(shares["customer"] == customer)]
+        extra = ""
+        if len(other):
+            pairs = [f"{p} x {s}" for p, s in zip(other["product"], other["site"])]
+            extra = f"Customer {customer} is a customer of: {_listing(pairs)}."
+        raise _unknown("customer", customer, f"a customer of {product} x {site}", of_site["customer"].unique(), extra)
+    if len(row) > 1:
+        cycles = ", ".join(sorted(_day(d) for d in row["cycle_date"].unique()))
+        raise PlanningError(
+            f"the share table holds {len(row)} rows for {product} x {site} x {customer} (cycles {cycles}); "
+            f"pass the tables of one cycle only (filter on the cycle date first)."
+        )
+    return row.iloc[0]
+
+
+def _period_kind(tables: Mapping[str, pd.DataFrame], starts: pd.Series) -> str:
+    calendar = tables.get("cycle_calendar")
+    if calendar is not None and len(calendar):
+        return str(calendar["period"].iloc[0])
+    gaps = np.diff(np.sort(pd.DatetimeIndex(starts.unique()).values)).astype("timedelta64[D]").astype(int)
+    return "week" if len(gaps) == 0 or gaps.min() == 7 else "month"
+
+
+def _leaf_rows(frame: pd.DataFrame, product: str, site: str, customer: str | None = None) -> pd.DataFrame:
+    mask = (frame["product"] == product) & (frame["site"] == site)
+    if customer is not None:
+        mask &= frame["customer"] == customer
+    return frame[mask]
+
+
+def _horizon(tables: Mapping[str, pd.DataFrame], product: str, site: str, customer: str) -> pd.DataFrame:
+    """Per horizon period of the leaf: share, zero-share reason, parent forecast and its zero reason, leaf forecast, basis."""
+    target = _leaf_rows(tables["reinitialized_target"], product, site, customer)
+    leaf = _leaf_rows(tables["statistical_forecast"], product, site, customer)
+    parent = _leaf_rows(tables["parent_forecast"], product, site)
+    for name, rows in (("reinitialized_target", target), ("statistical_forecast", leaf), ("parent_forecast", parent)):
+        if rows.empty:
+            raise PlanningError(
+                f"{name} has no row for {product} x {site}{'' if name == 'parent_forecast' else ' x ' + customer} although the "
+                f"share table has the customer; the tables are of different cycles or {name} is stale. "
+                f"Rematerialize {name} and the assets after it."
+            )
+    out = target[["period_start", "share", "target", "parent_baseline", "zero_share_reason"]]
+    out = out.merge(
+        parent[["period_start", "forecast", "zero_reason"]].rename(columns={"forecast": "parent_forecast"}), on="period_start", how="outer"
+    )
+    out = out.merge(leaf[["period_start", "forecast", "split_basis"]].rename(columns={"forecast": "leaf_forecast"}), on="period_start", how="outer")
+    return out.sort_values("period_start").reset_index(drop=True)
+
+
+def _share_section(row: pd.Series, kind: str) -> list[str]:
+    cycle = pd.Timestamp(row["cycle_date"])
+    used, window = int(row["window_used"]), int(row["window"])
+    lines = ["1. Share from history"]
+    if row["fallback"] == "even" or used == 0:
+        lines.append(
+            f"   No window had parent volume (the configured {window} {kind}s, nor the fallback windows): fallback 'even', "
+            f"the established customers of the parent share evenly."
+        )
+    else:
+        last = shift_periods(cycle, -1, kind)
+        lines.append(f"   Window: the {used} {kind}s before the cycle date, {_day(row['window_start'])} to {_day(last)}.")
+        if row["fallback"] == "longer_window":
+            lines.append(f"   Fallback 'longer_window': the configured {window}-{kind} window had no parent volume, so {used} {kind}s were used.")
+        else:
+            lines.append(f"   The configured window ({window} {kind}s) had parent volume: no fallback.")
+        lines.append(f"   Method: {METHODS.get(str(row['method']), str(row['method']))}.")
+        child, parent = float(row["child_volume"]), float(row["parent_volume"])
+        text = f"   In the window the customer shipped {_qty(child)} of the parent's {_qty(parent)}"
+        if row["method"] == "mean_of_ratios" and parent > 0:
+            text += f" (pooled would give {child / parent:.6f}; this method averages the periods' proportions instead)"
+        lines.append(text + ".")
+    history_share = float(row["history_share"])
+    if row["lifecycle_rule"] in ("reference", "initial_share", "awaiting_history"):
+        lines.append(
+            f"   As a new customer ({int(row['own_periods'])} own periods of history) it is left out of the history "
+            f"shares: history share {_share(history_share)}."
+        )
+    else:
+        lines.append(f"   History share over the parent's established customers: {_share(history_share)}.")
+    return lines
+
+
+def _lifecycle_section(row: pd.Series, siblings: pd.DataFrame, audit: pd.DataFrame | None) -> list[str]:
+    rule = str(row["lifecycle_rule"])
+    lines = ["2. Lifecycle", f"   Rule: {LIFECYCLE_RULES.get(rule, rule)}."]
+    if rule == "reference":
+        ref = siblings[siblings["customer"] == row["reference_customer"]]
+        scale = float(row["scale"]) if pd.notna(row.get("scale")) else float("nan")
+        text = f"   Reference customer {row['reference_customer']}, scale {scale:g}"
+        if len(ref) and not np.isnan(scale):
+            h = float(ref["history_share"].iloc[0])
+            text += f": {scale:g} x {h:.6f} (its history share) = {scale * h:.6f} taken from it"
+            text += " (less when several new customers take more than the reference has)"
+        lines.append(text + ".")
+    if rule == "initial_share" and pd.notna(row.get("initial_share")):
+        lines.append(f"   Initial share given by the planner: {_share(float(row['initial_share']))}.")
+    detail = str(row.get("lifecycle_detail") or "")
+    if detail:
+        lines.append(f"   In the share table: {detail}.")
+    lines.append(
+        f"   Active in the horizon from {_day(row['first_active_period'])} to {_day(row['last_active_period'])}; "
+        f"{int(row['own_periods'])} periods of own history."
+    )
+    lines.append(f"   Base share (every customer of the parent active): {_share(float(row['share']))}.")
+    if audit is not None:
+        mine = _leaf_rows(audit, row["product"], row["site"], row["customer"])
+        for a in mine.itertuples(index=False):
+            lines.append(f"   Lifecycle stage: {a.rule}, {int(a.periods)} periods, quantity {_qty(float(a.quantity))} ({a.detail}).")
+    return lines
+
+
+def _corrections_section(row: pd.Series, corrections: pd.DataFrame | None, history: pd.DataFrame | None) -> list[str]:
+    lines = ["3. Corrections to its history"]
+    if corrections is None:
+        return lines + ["   (history_corrections not given)"]
+    products = {row["product"]}
+    if history is not None:
+        mine = _leaf_rows(history, row["product"], row["site"], row["customer"])
+        products |= set(mine["source_product"].unique())
+    hit = corrections[corrections["product"].isin(products) & (corrections["site"] == row["site"]) & (corrections["customer"] == row["customer"])]
+    if hit.empty:
+        return lines + ["   None: no rule changed a period of this customer's history."]
+    by_rule = hit.groupby("rule").agg(periods=("delta", "size"), delta=("delta", "sum")).sort_index()
+    parts = [f"{rule} {int(r.periods)} period{'s' if r.periods > 1 else ''} (net {float(r.delta):+,.2f})" for rule, r in by_rule.iterrows()]
+    lines.append(f"   {len(hit)} corrected period{'s' if len(hit) > 1 else ''}: {'; '.join(parts)}.")
+    other = sorted(set(hit["product"]) - {row["product"]})
+    if other:
+        lines.append(f"   (including history recorded on {', '.join(other)} and mapped to {row['product']})")
+    return lines
+
+
+def _forecast_section(row: pd.Series, horizon: pd.DataFrame, parent: pd.DataFrame, models: pd.DataFrame | None) -> list[str]:
+    product, site, customer = row["product"], row["site"], row["customer"]
+    first = parent.iloc[0]
+    lines = [f"4. Parent forecast {product} x {site}"]
+    model = str(first["model"])
+    detail = cut = ""
+    if models is not None:
+        m = models[(models["grain"] == "parent") & (models["product"] == product) & (models["site"] == site)]
+        if len(m):
+            m = m.iloc[0]
+            detail = f", {m['parameters']}" if m["parameters"] else ""
+            measures = [f"ADI {float(m['adi']):.2f}" if pd.notna(m["adi"]) else "", f"CV^2 {float(m['cv2']):.3f}" if pd.notna(m["cv2"]) else ""]
+            if any(measures):
+                cut = f"{', '.join(x for x in measures if x)}; cut-offs ADI 1.32, CV^2 0.49"
+    lines.append(f"   Model {model}{detail}.")
+    lines.append(f"   Demand class {first['demand_class']}{f' ({cut})' if cut else ''}.")
+    strategy = first.get("strategy") if "strategy" in parent.columns else None
+    named = f"Strategy {strategy}" if isinstance(strategy, str) and strategy else "Strategy not recorded in parent_forecast"
+    lines.append(f"   {named} (forecast grain {first['forecast_grain']}).")
+    if models is not None:
+        leaf_model = models[(models["grain"] == "leaf") & (models["product"] == product) & (models["site"] == site) & (models["customer"] == customer)]
+        if len(leaf_model):
+            lm = leaf_model.iloc[0]
+            lines.append(f"   The customer's own series: model {lm['model']}{', ' + lm['parameters'] if lm['parameters'] else ''}; demand class {lm['demand_class']}.")
+    total = float(horizon["parent_forecast"].sum())
+    lines.append(f"   Parent forecast over the {len(horizon)} horizon periods: {_qty(total)}.")
+    return lines
+
+
+def _result_text(r) -> str:
+    """One period in words: how share, parent forecast and leaf forecast relate."""
+    share, parent, leaf = float(r.share), float(r.parent_forecast), float(r.leaf_forecast)
+    if pd.notna(r.zero_share_reason) and (pd.notna(r.zero_reason) or leaf == 0):
+        why = ZERO_REASONS.get(str(r.zero_share_reason), str(r.zero_share_reason))
+        return f"every share of the parent is 0 in this period ({r.zero_share_reason}: {why}), so the forecast is 0: leaf forecast {_qty(leaf)}."
+    basis = str(r.split_basis)
+    if basis in ("target", "share"):
+        text = f"leaf forecast = period share x parent forecast = {share:.6f} x {_qty(parent)} = {_qty(share * parent)}"
+        if abs(share * parent - leaf) > RELATIVE_TOLERANCE * max(abs(leaf), 1.0):
+            implied = leaf / parent if parent else float("nan")
+            return text + f"; but the stored leaf forecast is {_qty(leaf)}, a proportion of {implied:.6f} ({BASES[basis]})."
+        return text + f", as stored ({BASES[basis]})."
+    implied = leaf / parent if parent else float("nan")
+    proportion = "" if np.isnan(implied) else f", {100 * implied:.2f} % of the parent forecast {_qty(parent)}"
+    return f"leaf forecast {_qty(leaf)}{proportion}: {BASES.get(basis, basis)} (the period share from history was {share:.6f})."
+
+
+def share_changes(horizon: pd.DataFrame, siblings: pd.DataFrame, limit: int = 10) -> list[str]:
+    """A line per horizon period where the leaf's period share changes, naming the customers that start or end there."""
+    share = horizon["share"].to_numpy(dtype=float)
+    starts = horizon["period_start"].reset_index(drop=True)
+    first = pd.to_datetime(siblings["first_active_period"])
+    last = pd.to_datetime(siblings["last_active_period"])
+    out = []
+    for i in (np.flatnonzero(np.abs(np.diff(share)) > 1e-12) + 1)[:limit]:  # the few change points, not the periods
+        at, before = starts[i], starts[i - 1]
+        begin = sorted(siblings.loc[(first == at).to_numpy(), "customer"])
+        end = sorted(siblings.loc[(last == before).to_numpy(), "customer"])
+        who = []
+        if begin:
+            who.append(f"{', '.join(begin)} start{'s' if len(begin) == 1 else ''} in it")
+        if end:
+            who.append(f"{', '.join(end)} ended {_day(before)}")
+        reason = "; ".join(who) or (str(horizon["zero_share_reason"].iloc[i]) if pd.notna(horizon["zero_share_reason"].iloc[i]) else "the active customers changed")
+        out.append(f"   From {_day(at)} the share is {share[i]:.6f} (was {share[i - 1]:.6f}): {reason}.")
+    return out
+
+
+def _table(horizon: pd.DataFrame) -> list[str]:
+    head = f"   {'period':<10}  {'share':>9}  {'parent forecast':>15}  {'leaf forecast':>13}  how"
+    lines = [head, "   " + "-" * (len(head) - 3)]
+    for r in horizon.itertuples(index=False):
+        how = str(r.split_basis)
+        if pd.notna(r.zero_share_reason):
+            how += f", all shares 0: {r.zero_share_reason}"
+        elif r.share == 0:
+            how += ", customer not active or no share"
+        lines.append(f"   {_day(r.period_start):<10}  {r.share:>9.6f}  {_qty(r.parent_forecast):>15}  {_qty(r.leaf_forecast):>13}  {how}")
+    lines.append(f"   {'total':<10}  {'':>9}  {_qty(horizon['parent_forecast'].sum()):>15}  {_qty(horizon['leaf_forecast'].sum()):>13}")
+    return lines
+
+
+def explain_leaf(tables: Mapping[str, pd.DataFrame], product: str, site: str, customer: str, period=None) -> str:
+    """How the forecast of one leaf (product x site x customer) was made, in words and numbers.
+
+    tables: the stored tables of one cycle by name; required REQUIRED_TABLES,
+    used when present OPTIONAL_TABLES. period: a date inside a horizon period
+    (a period start, an ISO string or a Timestamp); None = one line per horizon
+    period. Raises `UnknownKeyError` for a key or period not in the cycle.
+    """
+    missing = [t for t in REQUIRED_TABLES if t not in tables or tables[t] is None]
+    if missing:
+        raise PlanningError(f"explain needs the tables {', '.join(missing)} of the cycle; materialize the cycle first (make demo).")
+    product, site, customer = str(product).strip(), str(site).strip(), str(customer).strip()
+    row = find_leaf(tables["share_tables"], product, site, customer)
+    horizon = _horizon(tables, product, site, customer)
+    kind = _period_kind(tables, horizon["period_start"])
+    cycle = pd.Timestamp(row["cycle_date"])
+    parent = _leaf_rows(tables["parent_forecast"], product, site)
+
+    lines = [
+        f"How the forecast of {product} x {site} x {customer} was made",
+        f"Cycle {_day(cycle)}, product class {row['product_class']}, {len(horizon)} {kind}s ahead "
+        f"({_day(horizon['period_start'].min())} to {_day(horizon['period_start'].max())}).",
+        "",
+    ]
+    lines += _share_section(row, kind) + [""]
+    siblings = _leaf_rows(tables["share_tables"], product, site)
+    lines += _lifecycle_section(row, siblings, tables.get("lifecycle_audit")) + [""]
+    lines += _corrections_section(row, tables.get("history_corrections"), tables.get("lifecycle_history")) + [""]
+    lines += _forecast_section(row, horizon, parent, tables.get("forecast_models")) + [""]
+
+    if period is None:
+        lines.append("5. Result per horizon period (share = the period share: base shares of the customers active in it, renormalised)")
+        lines += _table(horizon)
+        changes = share_changes(horizon, siblings)
+        if changes:
+            lines += ["", "   The share changes inside the horizon where the customers active in the period change:"] + changes
+        lines.append("   With a top-down split (basis target or share), leaf forecast = share x parent forecast.")
+    else:
+        try:
+            asked = pd.Timestamp(period)
+        except (TypeError, ValueError) as err:
+            raise UnknownKeyError(f"period {period!r} is not a date; give an ISO date such as {_day(horizon['period_start'].iloc[0])}.") from err
+        start = period_start(pd.Series([asked]), kind).iloc[0]
+        hit = horizon[horizon["period_start"] == start]
+        if hit.empty:
+            raise UnknownKeyError(
+                f"period {_day(asked)} (the {kind} starting {_day(start)}) is not in the horizon of cycle {_day(cycle)}, "
+                f"which runs from {_day(horizon['period_start'].min())} to {_day(horizon['period_start'].max())}; "
+                f"give a date inside it, or leave the period out for the whole horizon."
+            )
+        r = next(hit.itertuples(index=False))
+        lines.append(f"5. Result in the {kind} of {_day(start)}")
+        lines.append(f"   Period share: {_share(float(r.share))}, the base shares of the customers active in this {kind}, renormalised.")
+        lines.append(f"   Parent forecast: {_qty(float(r.parent_forecast))}.")
+        base = float(row["share"])
+        if abs(float(r.share) - base) > 1e-12:
+            lines.append(
+                f"   It differs from the base share {base:.6f} because not every customer of the parent is active in this "
+                f"{kind} (or a new customer's rule applies in it)."
+            )
+        text = _result_text(r)
+        lines.append(f"   {text[0].upper()}{text[1:]}")
+    return "\n".join(lines) + "\n"
