@@ -3,6 +3,8 @@
     python -m pipelines cycle [--config config/planning.yaml] [--cycle YYYY-MM-DD] [--class CLS ...]
     python -m pipelines rebuild --class CLS [--from share_tables] [--cycle YYYY-MM-DD]
     python -m pipelines summary [--config ...] [--cycle YYYY-MM-DD]   # a stored cycle, no run
+    python -m pipelines explain PRODUCT SITE CUSTOMER [--period P] [--cycle C]   # how a leaf value was made
+    python -m pipelines report [--cycle C]             # the cycle's HTML page again
     python -m pipelines demo-data [--out data/demo]   # regenerate the bundled demo files
 """
 
@@ -94,6 +96,10 @@ def run_cycle(
     checks = [(f"{e.asset_key.to_user_string()} [{c}]", e.check_name, e.passed, e.severity.value) for c, e in run.checks_by_class()]
     if summary:
         print_summary(config_path, checks, cycle=cycle)
+    # the page again after every class ran, so a run a blocking check stopped shows its failure there too
+    from pipelines.cycle_report import write_cycle_report
+
+    print(f"report:       {write_cycle_report(config, instance, cycle)}")
     # a failed WARN check is reported but does not fail the command; an ERROR check does
     return 0 if ok and run.success and run.blocking_checks_pass else 1
 
@@ -182,6 +188,41 @@ def print_summary(config_path: str, checks: list[tuple[str, str, bool, str]] | N
     print(f"open the UI:  {UI_COMMAND}")
 
 
+def explain(config_path: str, product: str, site: str, customer: str, period: str | None, cycle: str | None) -> int:
+    """Print how one leaf value was made, from the store only."""
+    from pipelines.resources import PlanningConfigResource, read_table, stored_cycles
+    from pipelines.stages.explain import OPTIONAL_TABLES, REQUIRED_TABLES, explain_leaf
+
+    config = PlanningConfigResource(path=config_path).config
+    store = Path(config.store.path)
+    cycles = stored_cycles(store)
+    if not cycles:
+        raise PlanningError(f"no cycle in the store {store} yet; run one first (make demo)")
+    if cycle is not None and cycle not in cycles:
+        raise PlanningError(f"cycle {cycle} is not in the store {store}; stored cycles: {', '.join(cycles)}")
+    cycle = cycle or cycles[-1]
+    parent = {"product": product.strip(), "site": site.strip()}
+    tables = {
+        name: read_table(store, name, cycle=cycle, where=None if name == "share_tables" else parent)
+        for name in REQUIRED_TABLES + OPTIONAL_TABLES
+    }
+    print(explain_leaf({k: v for k, v in tables.items() if v is not None}, product, site, customer, period=period))
+    return 0
+
+
+def report(config_path: str, cycle: str | None) -> int:
+    """Write the cycle's HTML page again from the store and the instance."""
+    from pipelines.cycle_report import write_cycle_report
+    from pipelines.resources import PlanningConfigResource, stored_cycles
+
+    config = PlanningConfigResource(path=config_path).config
+    cycles = stored_cycles(config.store.path)
+    if not cycles:
+        raise PlanningError(f"no cycle in the store {config.store.path} yet; run one first (make demo)")
+    print(write_cycle_report(config, _instance(), cycle or cycles[-1]))
+    return 0
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(prog="python -m pipelines", description="apportion: the weekly share refresh cycle")
     sub = parser.add_subparsers(dest="command", required=True)
@@ -202,6 +243,16 @@ def main(argv: list[str] | None = None) -> int:
     p = sub.add_parser("summary", help="summarise a stored cycle (default the latest), no run")
     config_arg(p)
     p.add_argument("--cycle", default=None)
+    p = sub.add_parser("explain", help="how one leaf value was made: window, method, fallback, lifecycle, model, share, result")
+    config_arg(p)
+    p.add_argument("product")
+    p.add_argument("site")
+    p.add_argument("customer")
+    p.add_argument("--period", default=None, help="a date inside a horizon period (default: every period of the horizon)")
+    p.add_argument("--cycle", default=None, help="a stored cycle (default the latest)")
+    p = sub.add_parser("report", help="write the cycle's HTML report again (var/reports/<cycle>/cycle_report.html)")
+    config_arg(p)
+    p.add_argument("--cycle", default=None, help="a stored cycle (default the latest)")
     p = sub.add_parser("demo-data", help="regenerate the bundled demo input files")
     p.add_argument("--out", default="data/demo")
     p.add_argument("--seed", type=int, default=None)
@@ -211,6 +262,10 @@ def main(argv: list[str] | None = None) -> int:
             return run_cycle(args.config, cycle=args.cycle, classes=args.classes, backfill=args.backfill)
         if args.command == "rebuild":
             return run_cycle(args.config, cycle=args.cycle, classes=args.classes, rebuild_from=args.asset)
+        if args.command == "explain":
+            return explain(args.config, args.product, args.site, args.customer, args.period, args.cycle)
+        if args.command == "report":
+            return report(args.config, args.cycle)
         if args.command == "summary":
             print_summary(args.config, cycle=args.cycle)
             return 0

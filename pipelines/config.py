@@ -200,7 +200,7 @@ class MonitoringConfig(Frozen):
     max_fallback_share: float = Field(
         0.10, ge=0, le=1, description="share of a class's parents whose shares came from a fallback (longer window or even split)"
     )
-    max_rejected_share: float = Field(0.001, ge=0, le=1, description="rejected raw lines / raw lines of a class")
+    max_rejected_share: float = Field(0.01, ge=0, le=1, description="rejected raw lines / raw lines of a class")
     max_share_drift_pp: float = Field(
         10.0, gt=0, le=100, description="percentage points a child's share may move from the previous cycle's"
     )

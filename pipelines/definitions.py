@@ -4,6 +4,7 @@ import dagster as dg
 
 from assets.backtest_accuracy import backtest_accuracy
 from assets.cleaned_history import cleaned_history
+from assets.cycle_report import cycle_report
 from assets.lifecycle_history import lifecycle_history
 from assets.master_data import adjustments, customer_spans, products, shortages
 from assets.raw_history import raw_history
@@ -29,6 +30,7 @@ ASSETS = [
     backtest_accuracy,
     statistical_forecast,
     reconciliation,
+    cycle_report,
 ]
 
 

@@ -181,28 +181,34 @@ def read_table(
     cycle: str | None = None,
     product_class: str | None = None,
     with_partition: bool = False,
+    where: dict[str, str] | None = None,
 ) -> pd.DataFrame | None:
     """A table of the store (None when it does not exist), for one cycle and/or class or all of them.
 
     Without `with_partition` the partition columns are left out (a frame as the
     asset produced it); with it, `partition_cycle` and `partition_class` are kept.
+    `where`: column -> value filters, applied where the table has the column.
     """
-    where, params = [], []
+    clauses, params = [], []
     if cycle is not None:
-        where.append(f"{PARTITION_CYCLE} = ?")
+        clauses.append(f"{PARTITION_CYCLE} = ?")
         params.append(str(cycle))
     if product_class is not None:
-        where.append(f"{PARTITION_CLASS} = ?")
+        clauses.append(f"{PARTITION_CLASS} = ?")
         params.append(product_class)
     with _connect(Path(store), read_only=True) as con:
         columns = _columns(con, table)
         if not columns:
             return None
+        for name, value in (where or {}).items():  # only on columns the table has: a filter it cannot take is no filter
+            if name in columns:
+                clauses.append(f'"{name}" = ?')
+                params.append(value)
         if PARTITION_CYCLE not in columns:
             return con.execute(f'SELECT * FROM "{table}"').df()
         keep = [c for c in columns if c not in PARTITION_COLUMNS or (with_partition and c != PARTITION_ROW)]
         select = ", ".join(f'"{c}"' for c in keep)
-        clause = f" WHERE {' AND '.join(where)}" if where else ""
+        clause = f" WHERE {' AND '.join(clauses)}" if clauses else ""
         order = ", ".join(c for c in PARTITION_COLUMNS if c in columns)
         return con.execute(f'SELECT {select} FROM "{table}"{clause} ORDER BY {order}', params).df()
 

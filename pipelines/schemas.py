@@ -407,3 +407,12 @@ class ShareDrift(LeafKeys):
 
     class Config:
         unique = ["product", "site", "customer"]
+
+
+class CycleReportFiles(_Strict):
+    """The files the cycle report wrote for one class: its charts and the cycle's page."""
+
+    product_class: Series[str] = pa.Field(description="product class")
+    kind: Series[str] = pa.Field(isin=("parents", "shares", "html"), description="parents chart, shares chart, or the page")
+    path: Series[str] = pa.Field(description="file written, under var/reports/<cycle>/")
+    bytes: Series[int] = pa.Field(gt=0, description="file size")

@@ -1,0 +1,100 @@
+"""The cycle's HTML report, from the store and the Dagster instance.
+
+The page (pipelines/stages/report.py renders it) covers every class of one
+cycle: the classes' tables come from the store, the checks' latest status per
+partition from the runs of that partition in the instance (so a class's
+rebuild shows its new results, and a run a blocking check stopped shows the
+failure). It is written to var/reports/<cycle>/cycle_report.html, next to the
+charts the `cycle_report` asset draws.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import dagster as dg
+import pandas as pd
+
+from pipelines.config import PlanningConfig
+from pipelines.partitions import partition_key
+from pipelines.resources import read_table, report_folder
+from pipelines.stages import report
+
+REPORT_FILE = "cycle_report.html"
+CHART_KINDS = ("parents", "shares")
+CHECK_COLUMNS = ["product_class", "asset", "check", "passed", "severity", "description", "run_id"]
+
+
+def check_descriptions() -> dict[tuple[str, str], str]:
+    """(asset, check) -> the check's description, from the asset definitions."""
+    from pipelines.definitions import ASSETS  # the definitions import this module's users, so import late
+
+    return {(s.asset_key.to_user_string(), s.name): s.description or "" for a in ASSETS for s in a.check_specs}
+
+
+def latest_check_results(instance: dg.DagsterInstance, cycle: str, classes: list[str], runs_per_class: int = 20) -> pd.DataFrame:
+    """The newest evaluation of every check in each class's partition of `cycle` (from the runs of that partition)."""
+    descriptions = check_descriptions()
+    rows = []
+    for product_class in classes:
+        key = str(partition_key(cycle, product_class))
+        runs = instance.get_runs(filters=dg.RunsFilter(tags={"dagster/partition": key}), limit=runs_per_class)
+        seen: set[tuple[str, str]] = set()
+        for run in runs:  # newest first
+            for entry in instance.all_logs(run.run_id, of_type=dg.DagsterEventType.ASSET_CHECK_EVALUATION):
+                evaluation = entry.dagster_event.event_specific_data
+                name = (evaluation.asset_key.to_user_string(), evaluation.check_name)
+                if name in seen:
+                    continue
+                seen.add(name)
+                rows.append(
+                    {
+                        "product_class": product_class,
+                        "asset": name[0],
+                        "check": name[1],
+                        "passed": bool(evaluation.passed),
+                        "severity": evaluation.severity.value,
+                        "description": descriptions.get(name, ""),
+                        "run_id": run.run_id,
+                    }
+                )
+    return pd.DataFrame(rows, columns=CHECK_COLUMNS)
+
+
+def write_cycle_report(config: PlanningConfig, instance: dg.DagsterInstance, cycle: str) -> Path:
+    """Render the cycle's page from the store and the instance; the path written."""
+    from pipelines.stages.backtest import choose_strategies
+
+    store = Path(config.store.path)
+    folder = report_folder(config.model_copy(update={"calendar": config.calendar.model_copy(update={"cycle_date": cycle})}))
+    folder.mkdir(parents=True, exist_ok=True)
+
+    def table(name: str) -> pd.DataFrame | None:
+        return read_table(store, name, cycle=cycle) if store.exists() else None
+
+    shares = table("share_tables")
+    classes = list(config.product_classes)
+    checks = latest_check_results(instance, cycle, classes)
+    accuracy = table("backtest_accuracy")
+    choice = choose_strategies(accuracy, config) if accuracy is not None and len(accuracy) else None
+    drift = table("share_drift")
+    charts = {
+        c: [n for n in (report.chart_file_name(k, c, cycle) for k in CHART_KINDS) if (folder / n).exists()] for c in classes
+    }
+    page = report.cycle_report_html(
+        cycle_date=cycle,
+        share_tables=shares if shares is not None else pd.DataFrame(columns=["product_class"]),
+        checks=[
+            (f"{r.asset} [{r.product_class}]", r.check, r.passed, r.severity, r.description)
+            for r in checks.itertuples(index=False)
+        ],
+        parent_forecast=table("parent_forecast"),
+        strategy_choice=choice,
+        rejected_rows=table("rejected_rows"),
+        movers=drift[report.MOVER_COLUMNS] if drift is not None and len(drift) else None,
+        charts={c: names for c, names in charts.items() if names},
+        calendar=table("cycle_calendar"),
+    )
+    path = folder / REPORT_FILE
+    path.write_text(page, encoding="utf-8")
+    return path
