@@ -322,10 +322,13 @@ def test_broken_input_fails_its_blocking_check_with_the_rows(tmp_path):
     sample = check.metadata["failing_rows_sample"].value
     assert spans.loc[3, "customer"] in sample and "2025-01-01" in sample
     assert "span_ordered" in check.metadata["failures_by_check"].value
-    # blocking: nothing downstream of the spans was materialized
-    materialized = {e.asset_key.to_user_string() for e in result.get_asset_materialization_events()}
+    # blocking: in the broken span's class (DRIP-001 is consumables) nothing downstream of the spans was
+    # materialized; the other classes' partitions do not hold that span and ran through
+    broken = result.results["consumables"]
+    materialized = {e.asset_key.to_user_string() for e in broken.get_asset_materialization_events()}
     assert "customer_spans" in materialized
     assert not materialized & {"cleaned_history", "share_tables", "statistical_forecast", "reconciliation"}
+    assert result.results["spares"].success and result.results["seasonal"].success
 
 
 def test_unknown_product_class_stops_the_cycle_with_a_named_error(tmp_path):
@@ -481,3 +484,66 @@ def test_two_cycles_side_by_side_and_the_share_drift_between_them(demo_cycle):
     # the first cycle of a class has nothing to compare with
     first = read_table(store, "share_drift", cycle="2026-11-23", product_class="spares")
     assert first.empty
+
+
+def test_watcher_warnings_fire_above_their_thresholds_and_list_the_rows(tmp_path):
+    from assets.cleaned_history import REJECTED_ROWS_WITHIN_LIMIT
+    from assets.share_tables import FALLBACK_SHARE_WITHIN_LIMIT
+
+    classes = yaml.safe_load((ROOT / "config" / "planning.yaml").read_text())["product_classes"]
+    # spares are intermittent: over a 4-week window many parents have no volume and fall back to 156 weeks
+    classes["spares"].update(window=4, fallback_windows=[156])
+    config = make_config(tmp_path, product_classes=classes, monitoring={"max_fallback_share": 0.10, "max_rejected_share": 0.0001})
+    defs = build_definitions(config)
+    upstream = dg.AssetSelection.assets("share_tables").upstream().required_multi_asset_neighbors()
+    run = run_partitions(
+        defs, dg.DagsterInstance.ephemeral(), "2026-11-30", ["spares"], selection=list(upstream.resolve(defs.resolve_asset_graph()))
+    )
+    assert run.success and run.blocking_checks_pass  # WARN checks do not stop the cycle
+    checks = checks_of(run)
+    store = tmp_path / "store.duckdb"
+    shares = read_table(store, "share_tables").drop_duplicates(["product", "site"])
+    with_fallback = shares[shares["fallback"] != "none"]
+    assert len(with_fallback) / len(shares) > 0.10
+    fallback = checks[f"share_tables:{FALLBACK_SHARE_WITHIN_LIMIT}"]
+    assert not fallback.passed and fallback.severity == dg.AssetCheckSeverity.WARN
+    assert fallback.metadata["failing_count"].value == len(with_fallback)
+    assert with_fallback["product"].iloc[0] in fallback.metadata["failing_rows_sample"].value
+    assert f"{len(with_fallback)} of {len(shares)}" in fallback.metadata["parents_with_fallback"].value
+    # spares: the two lines of products in no class, of 1,029 lines (0.19 % > 0.01 %)
+    rejected = checks[f"rejected_rows:{REJECTED_ROWS_WITHIN_LIMIT}"]
+    assert not rejected.passed and rejected.severity == dg.AssetCheckSeverity.WARN
+    assert rejected.metadata["failing_count"].value == 2
+    assert "unknown_product" in rejected.metadata["by_reason"].value
+
+
+def test_cycle_report_has_the_charts_and_a_page_with_every_class(demo_cycle):
+    from assets.share_tables import NEW_CUSTOMER_WITHOUT_SHARE
+    from pipelines.cycle_report import REPORT_FILE
+
+    result, store, _ = demo_cycle
+    folder = store.parent / "reports" / "2026-11-30"
+    for product_class, meta in metadata_of(result, "cycle_report").items():
+        for kind in ("parents", "shares"):
+            path = Path(meta[f"{kind}_chart_file"].value)
+            assert path.parent == folder and path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+            assert meta[f"{kind}_chart"].value.startswith(f"![{kind} of {product_class}")
+    page = (folder / REPORT_FILE).read_text()
+    for product_class in ("consumables", "seasonal", "spares"):
+        assert f"parents_{product_class}_2026-11-30.png" in page
+    # the one failing check of the demo (a WARN, by design) is listed before every passing check
+    failed_at = page.index(NEW_CUSTOMER_WITHOUT_SHARE)
+    assert failed_at < page.index("children_sum_to_parent")
+
+
+def test_explain_prints_how_a_leaf_was_made_from_the_store(demo_cycle, capsys):
+    from pipelines.__main__ import main
+
+    _, store, config = demo_cycle
+    assert main(["explain", "--config", config, "DRIP-002", "SITE-NORTH", "C0049", "--period", "2026-12-07"]) == 0
+    text = capsys.readouterr().out
+    target = read_table(store, "statistical_forecast", where={"product": "DRIP-002", "site": "SITE-NORTH", "customer": "C0049"})
+    value = float(target.loc[target["period_start"] == pd.Timestamp("2026-12-07"), "forecast"].iloc[0])
+    assert "reference" in text and "C0001" in text and f"{value:,.2f}" in text
+    assert main(["explain", "--config", config, "DRIP-002", "SITE-NORTH", "C9999"]) == 2
+    assert "C0049" in capsys.readouterr().err  # the customers of that parent are listed
