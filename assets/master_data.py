@@ -1,17 +1,18 @@
-"""Assets `products`, `customer_spans`, `adjustments`, `shortages`: master data and planner input."""
+"""Assets `products`, `customer_spans`, `adjustments`, `pins`, `shortages`: master data and planner input."""
 
 import dagster as dg
 import pandas as pd
 
 from assets.common import schema_check_spec, table_metadata, validate
 from pipelines.resources import PlanningConfigResource
-from pipelines.schemas import Adjustments, CustomerSpans, Products, Shortages
-from pipelines.stages.master_data import load_adjustments, load_customer_spans, load_products, load_shortages
+from pipelines.schemas import Adjustments, CustomerSpans, Pins, Products, Shortages
+from pipelines.stages.master_data import load_adjustments, load_customer_spans, load_pins, load_products, load_shortages
 
 PRODUCTS = "products"
 CUSTOMER_SPANS = "customer_spans"
 ADJUSTMENTS = "adjustments"
 SHORTAGES = "shortages"
+PINS = "pins"
 
 
 def _files(files) -> pd.DataFrame:
@@ -63,12 +64,29 @@ def customer_spans(context: dg.AssetExecutionContext, planning: PlanningConfigRe
     group_name="master_data",
     kinds={"pandas", "duckdb"},
     check_specs=[schema_check_spec(ADJUSTMENTS, Adjustments)],
-    description="Parent-grain values a planner entered (optional adjustments file; empty when absent).",
+    description="Parent-grain values of the plan's input measures, e.g. prices, promotion uplifts and planner "
+    "adjustments (optional adjustments file; empty when absent). plan_measures splits them to the leaf.",
 )
 def adjustments(context: dg.AssetExecutionContext, planning: PlanningConfigResource):
     frame, files = load_adjustments(planning.config.inputs.folder)
     frame, check = validate(frame, Adjustments, ADJUSTMENTS)
     yield dg.Output(frame, metadata=table_metadata(frame, files=_files(files)))
+    yield check
+
+
+@dg.asset(
+    name=PINS,
+    group_name="master_data",
+    kinds={"pandas", "duckdb"},
+    check_specs=[schema_check_spec(PINS, Pins)],
+    description="Leaf values a planner fixed per measure and period (optional pins file; empty when absent): "
+    "plan_measures keeps them and splits the rest of the parent over the other customers.",
+)
+def pins(context: dg.AssetExecutionContext, planning: PlanningConfigResource):
+    frame, files = load_pins(planning.config.inputs.folder)
+    frame, check = validate(frame, Pins, PINS)
+    by_measure = frame.groupby("measure").size().rename("pins").reset_index()
+    yield dg.Output(frame, metadata=table_metadata(frame, files=_files(files), pins_by_measure=by_measure))
     yield check
 
 

@@ -5,7 +5,8 @@ import dagster as dg
 from assets.backtest_accuracy import backtest_accuracy
 from assets.cleaned_history import cleaned_history
 from assets.lifecycle_history import lifecycle_history
-from assets.master_data import adjustments, customer_spans, products, shortages
+from assets.master_data import adjustments, customer_spans, pins, products, shortages
+from assets.plan_measures import plan_measures
 from assets.raw_history import raw_history
 from assets.reconciliation import reconciliation
 from assets.reinitialized_target import reinitialized_target
@@ -19,6 +20,7 @@ ASSETS = [
     products,
     customer_spans,
     adjustments,
+    pins,
     shortages,
     cleaned_history,
     lifecycle_history,
@@ -27,6 +29,7 @@ ASSETS = [
     backtest_accuracy,
     statistical_forecast,
     reconciliation,
+    plan_measures,
 ]
 
 

@@ -15,3 +15,7 @@ class InputFileError(PlanningError):
 
 class LifecycleError(PlanningError):
     """The lifecycle master data contradict themselves (e.g. a successor cycle)."""
+
+
+class PinError(PlanningError):
+    """Pins take more than their parent holds, with `pins.on_overflow: error`."""
