@@ -396,7 +396,9 @@ class PlanMeasures(LeafPeriod):
     cycle_date: Series[DateTime] = pa.Field(description="cycle date")
     measure: Series[str] = pa.Field(description="measure name (a key of config measures)")
     value: Series[float] = pa.Field(description="the leaf's value")
-    parent_value: Series[float] = pa.Field(description="the parent's value in this period (0 where only pins gave it rows)")
+    parent_value: Series[float] = pa.Field(
+        nullable=True, description="the parent's value in this period (blank where it has none and only pins gave the row)"
+    )
     rule: Series[str] = pa.Field(isin=SPLIT_RULES, description="split rule of the measure")
     basis: Series[str] = pa.Field(
         description="what the value came from: parent (replicate), even, pin, or the pro_rata basis "

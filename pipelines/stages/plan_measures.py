@@ -418,7 +418,9 @@ def plan_measures(
             overflow_pieces.append(_overflow_piece(name, split, value, has, pin, pinned, children, parents, parent_of_child, starts))
 
     order_of = {name: i for i, name in enumerate(config.measures)}
-    plan = _stack(pieces, PLAN_COLUMNS)
+    plan = _stack(pieces, PLAN_COLUMNS).astype(
+        {"period_start": "datetime64[ns]", "cycle_date": "datetime64[ns]", "value": float, "parent_value": float, "pinned": bool}
+    )
     plan = plan.assign(_o=plan["measure"].map(order_of)).sort_values(["_o"] + LEAF + ["period_start"], kind="stable")
     plan = plan.drop(columns="_o").reset_index(drop=True)
     parents_out = _stack(parent_pieces, PARENT_COLUMNS)
@@ -575,7 +577,7 @@ def find_sum_violations(plan: pd.DataFrame, parents: pd.DataFrame, config: Plann
         "pins_in_plan": plan["value"].where(plan["pinned"], 0.0).groupby([plan[k] for k in key], sort=False).sum(),
     })
     merged = parents.merge(sums.reset_index(), on=key, how="left")
-    merged[["children_sum", "pins_in_plan"]] = merged[["children_sum", "pins_in_plan"]].fillna(0.0)
+    merged[["children_sum", "pins_in_plan"]] = merged[["children_sum", "pins_in_plan"]].astype(float).fillna(0.0)
     merged["children"] = merged["children"].fillna(0).astype(np.int64)
     v = merged["parent_value"].fillna(0.0).to_numpy(float)
     pins_sum = merged["pins_in_plan"].to_numpy(float)
@@ -614,8 +616,9 @@ def find_pins_not_kept(plan: pd.DataFrame, pins_applied: pd.DataFrame, pins_not_
     its value differs (tolerance 1e-9 x max(|pin|, 1)).
     """
     columns = PIN_KEY + ["pin", "value", "reason"]
-    rows = plan.loc[plan["pinned"], PIN_KEY + ["value"]]
-    merged = pins_applied.rename(columns={"value": "pin"}).merge(rows, on=PIN_KEY, how="left")
+    rows = plan.loc[plan["pinned"].astype(bool), PIN_KEY + ["value"]]
+    applied = pins_applied.rename(columns={"value": "pin"}).astype({"period_start": "datetime64[ns]", "pin": float})
+    merged = applied.merge(rows.astype({"period_start": "datetime64[ns]"}), on=PIN_KEY, how="left")
     missing = merged["value"].isna()
     off = ~(np.abs(merged["value"] - merged["pin"]) <= TOLERANCE * np.maximum(np.abs(merged["pin"]), 1.0))
     merged["reason"] = np.where(missing, "no pinned row in the plan", "value differs from the pin")
