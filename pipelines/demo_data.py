@@ -15,8 +15,11 @@ Regenerate the bundled files with::
 
     .venv/bin/python -m pipelines.demo_data --out data/demo
 
-The same seed always gives byte-identical files. All randomness comes from one
-`np.random.default_rng(seed)`.
+The same seed always gives byte-identical files. All randomness comes from
+`np.random.default_rng(seed)`, except the cases added later, which draw from
+streams of their own so that the earlier files stay byte for byte: shortages
+`default_rng((seed, 9))`, list prices `default_rng((seed, 14))` (appended to
+adjustments.csv) and pins `default_rng((seed, 15))` (pins.csv).
 """
 
 from __future__ import annotations
