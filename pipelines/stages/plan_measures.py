@@ -142,6 +142,17 @@ class PlanResult:
 
 
 def _parent_sum(cells: np.ndarray, parent_of_child: np.ndarray, n_parents: int) -> np.ndarray:
+    """(n_parents, H) sums of the (n, H) cells per parent.
+
+    Children sorted by parent (as `plan_measures` keeps them) are summed block
+    by block with `np.add.reduceat`, several times faster than `np.add.at`.
+    """
+    cells = np.asarray(cells, dtype=float)
+    if len(parent_of_child) and (np.diff(parent_of_child) >= 0).all():
+        first = np.flatnonzero(np.r_[True, np.diff(parent_of_child) > 0])
+        out = np.zeros((n_parents, cells.shape[1]))
+        out[parent_of_child[first]] = np.add.reduceat(cells, first, axis=0)
+        return out
     out = np.zeros((n_parents, cells.shape[1]))
     np.add.at(out, parent_of_child, cells)
     return out
@@ -268,15 +279,17 @@ def _cells(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame, first_ord:
     return row, col, (col >= 0) & (col < h)
 
 
-def _matrix(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame, column: str, first_ord: int, h: int, period: str) -> np.ndarray:
-    """(len(table), h) matrix of `column` from a long frame keyed by `cols` and period_start (0 where absent)."""
-    out = np.zeros((len(table), h))
-    if frame.empty:
-        return out
-    row, col, inside = _cells(frame, cols, table, first_ord, h, period)
-    ok = inside & (row >= 0)
-    out[row[ok], col[ok]] = frame[column].to_numpy(float)[ok]
-    return out
+def _matrix(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame, column: str | list[str], first_ord: int, h: int, period: str):
+    """(len(table), h) matrix of `column` (one per name of a list) from a long frame keyed by `cols` and
+    period_start, 0 where absent; the keys are looked up once for all columns."""
+    names = [column] if isinstance(column, str) else column
+    out = [np.zeros((len(table), h)) for _ in names]
+    if len(frame):
+        row, col, inside = _cells(frame, cols, table, first_ord, h, period)
+        ok = inside & (row >= 0)
+        for m, name in zip(out, names):
+            m[row[ok], col[ok]] = frame[name].to_numpy(float)[ok]
+    return out[0] if isinstance(column, str) else out
 
 
 def _combine(row: np.ndarray, col: np.ndarray, value: np.ndarray, shape: tuple[int, int], mean: bool):
@@ -369,11 +382,8 @@ def plan_measures(
     pin_ok = pin_inside & ~not_child & ~inactive
     pin_starts = starts[np.clip(pin_col, 0, h - 1)]
 
-    mats = {
-        "target": _matrix(target, LEAF, children, "target", first_ord, h, period),
-        "share": _matrix(target, LEAF, children, "share", first_ord, h, period),
-        "forecast": _matrix(leaf_forecast, LEAF, children, "forecast", first_ord, h, period),
-    }
+    target_m, share_m = _matrix(target, LEAF, children, ["target", "share"], first_ord, h, period)
+    mats = {"target": target_m, "share": share_m, "forecast": _matrix(leaf_forecast, LEAF, children, "forecast", first_ord, h, period)}
     for basis_name, frame in (share_bases or {}).items():
         mats[f"share_table:{basis_name}"] = _matrix(frame, LEAF, children, "share", first_ord, h, period)
     strategy = "strategy" in parent_forecast.columns
@@ -383,7 +393,7 @@ def plan_measures(
         found = parent_forecast.drop_duplicates(PARENT)["strategy"].to_numpy(object)
         top_down = np.where(pos >= 0, found[np.clip(pos, 0, None)] == "top_down", True)
 
-    pieces, parent_pieces, overflow_pieces, applied_pieces = [], [], [], []
+    pieces, parent_pieces, overflow_pieces, applied_pieces = {}, [], [], []
     for name in config.measure_order():  # a handful of measures
         m = config.measures[name]
         mean = m.rule == "replicate"
@@ -412,17 +422,15 @@ def plan_measures(
             None if m.integer is None else m.integer.pack_size, order,
         )
         mats[f"measure:{name}"] = np.where(split.rows, split.value, 0.0)
-        pieces.append(_plan_piece(name, m, split, value, has, pinned, label, children, parent_of_child, starts, cycle_date))
+        pieces[name] = _plan_piece(name, m, split, value, has, pinned, label, children, parent_of_child, starts, cycle_date)
         parent_pieces.append(_parent_piece(name, m, split, value, has, pinned, active, parents, parent_of_child, starts))
         if (split.status == OVERFLOW).any():
             overflow_pieces.append(_overflow_piece(name, split, value, has, pin, pinned, children, parents, parent_of_child, starts))
 
-    order_of = {name: i for i, name in enumerate(config.measures)}
-    plan = _stack(pieces, PLAN_COLUMNS).astype(
+    # in config order; inside a measure the rows already follow the sorted children, then the period
+    plan = _stack([pieces[name] for name in config.measures], PLAN_COLUMNS).astype(
         {"period_start": "datetime64[ns]", "cycle_date": "datetime64[ns]", "value": float, "parent_value": float, "pinned": bool}
     )
-    plan = plan.assign(_o=plan["measure"].map(order_of)).sort_values(["_o"] + LEAF + ["period_start"], kind="stable")
-    plan = plan.drop(columns="_o").reset_index(drop=True)
     parents_out = _stack(parent_pieces, PARENT_COLUMNS)
     overflow = _stack(overflow_pieces, OVERFLOW_COLUMNS)
     if len(overflow) and config.pins.on_overflow == "error":
@@ -570,18 +578,18 @@ def find_sum_violations(plan: pd.DataFrame, parents: pd.DataFrame, config: Plann
     columns = key + ["rule", "parent_value", "expected", "children_sum", "children", "reason"]
     if parents.empty:
         return pd.DataFrame({c: pd.Series(dtype=object) for c in columns})
-    g = plan.groupby(key, sort=False)
-    sums = pd.DataFrame({
-        "children_sum": g["value"].sum(),
-        "children": g.size(),
-        "pins_in_plan": plan["value"].where(plan["pinned"], 0.0).groupby([plan[k] for k in key], sort=False).sum(),
-    })
-    merged = parents.merge(sums.reset_index(), on=key, how="left")
+    code, sums = factorize(plan, key)  # integer codes, so the sums are bincounts
+    value = plan["value"].to_numpy(float)
+    sums["children_sum"] = np.bincount(code, weights=value, minlength=len(sums))
+    sums["children"] = np.bincount(code, minlength=len(sums))
+    sums["pins_in_plan"] = np.bincount(code, weights=np.where(plan["pinned"].to_numpy(bool), value, 0.0), minlength=len(sums))
+    merged = parents.merge(sums, on=key, how="left")
     merged[["children_sum", "pins_in_plan"]] = merged[["children_sum", "pins_in_plan"]].astype(float).fillna(0.0)
     merged["children"] = merged["children"].fillna(0).astype(np.int64)
     v = merged["parent_value"].fillna(0.0).to_numpy(float)
     pins_sum = merged["pins_in_plan"].to_numpy(float)
-    pack = merged["measure"].map(lambda n: config.measures[n].integer.pack_size if config.measures[n].integer else 0).to_numpy()
+    pack_of = {n: m.integer.pack_size if m.integer else 0 for n, m in config.measures.items()}
+    pack = merged["measure"].map(pack_of).to_numpy()
     rest = v - pins_sum
     rounded = np.where(pack > 0, round_to_pack(rest, np.where(pack > 0, pack, 1)), rest)
     status = merged["status"].to_numpy(object)
@@ -602,7 +610,7 @@ def find_sum_violations(plan: pd.DataFrame, parents: pd.DataFrame, config: Plann
     bad = rep[~(np.abs(rep["value"] - rep["parent_value"]) <= TOLERANCE * np.maximum(np.abs(rep["parent_value"]), 1.0))]
     if len(bad):
         bad_parents = bad.groupby(key, sort=False).size().rename("n").reset_index()
-        extra = parents.merge(bad_parents, on=key).merge(sums.reset_index(), on=key, how="left")
+        extra = parents.merge(bad_parents, on=key).merge(sums, on=key, how="left")
         extra = extra.assign(expected=extra["parent_value"], reason="a child differs from the parent value")
         failing = pd.concat([failing, extra], ignore_index=True)
     return failing[columns].reset_index(drop=True)
