@@ -427,22 +427,19 @@ class PlanningConfig(Frozen):
     def check_windows_fit(self, history_periods: int) -> None:
         """Raise if a class window (not a fallback window) is longer than the history."""
         for name, pc in self.product_classes.items():
-            if pc.window > history_periods:
-                raise ConfigError(
-                    f"{self.source}: product_classes.{name}.window is {pc.window} periods but "
-                    f"the history holds only {history_periods} periods before the cycle date; "
-                    f"set a window of at most {history_periods}."
-                )
+            self._check_window_fits(f"product_classes.{name}.window", pc.window, history_periods)
 
     def check_share_bases_fit(self, history_periods: int) -> None:
         """Raise if a share basis window (not a fallback window) is longer than the history."""
         for name, basis in self.share_bases.items():
-            if basis.window > history_periods:
-                raise ConfigError(
-                    f"{self.source}: share_bases.{name}.window is {basis.window} periods but the history "
-                    f"holds only {history_periods} periods before the cycle date; set a window of at most "
-                    f"{history_periods}."
-                )
+            self._check_window_fits(f"share_bases.{name}.window", basis.window, history_periods)
+
+    def _check_window_fits(self, key: str, window: int, history_periods: int) -> None:
+        if window > history_periods:
+            raise ConfigError(
+                f"{self.source}: {key} is {window} periods but the history holds only {history_periods} "
+                f"periods before the cycle date; set a window of at most {history_periods}."
+            )
 
 
 def _valid_keys(loc: tuple) -> list[str] | None:
