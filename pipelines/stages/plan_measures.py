@@ -87,6 +87,7 @@ from pipelines.calendar import horizon_starts, period_ordinal
 from pipelines.config import MeasureConfig, PlanningConfig
 from pipelines.errors import ConfigError, PinError
 from pipelines.keys import LEAF, PARENT, factorize, lookup
+from pipelines.schemas import MEASURE_FALLBACKS
 from pipelines.stages.integer_split import largest_remainder, round_to_pack
 from pipelines.stages.reinitialized_target import period_shares
 from pipelines.stages.share_tables import compute_shares
@@ -97,10 +98,12 @@ PARENT_COLUMNS = [
     "active_children", "split_total", "status",
 ]
 PIN_KEY = ["measure"] + LEAF + ["period_start"]
-FALLBACKS = ("none", "period_share", "even", "pins_overflow")  # = schemas.MEASURE_FALLBACKS
+FALLBACKS = MEASURE_FALLBACKS  # none, period_share, even, pins_overflow
 NONE, PERIOD_SHARE, EVEN, PINS_OVERFLOW = range(4)
 STATUSES = ("split", "pins_overflow", "no_active_child")
 SPLIT, OVERFLOW, NO_ACTIVE_CHILD = range(3)
+OVERFLOW_COLUMNS = ["measure", "product", "site", "period_start", "parent_value", "pins_sum", "overflow", "pins"]
+UNUSED_COLUMNS = ["input", "measure", "product", "site", "customer", "period_start", "value", "reason"]
 TOLERANCE = 1e-9
 FORECAST_LEAF = "forecast_leaf"
 
@@ -110,10 +113,9 @@ class Split:
     """One measure split over (n_children, H) cells; parent arrays are (n_parents, H).
 
     value: the leaf values; rows: cells that get a row of the plan; fallback:
-    code into FALLBACKS per cell; basis_even: cells split evenly by the
-    fallback; pins_sum, split_total (what the children sum to), status (code
-    into STATUSES) and live (the parent period has a value or pins) per parent
-    period.
+    code into FALLBACKS per cell; pins_sum, split_total (what the children
+    sum to), status (code into STATUSES) and live (the parent period has a
+    value or pins) per parent period.
     """
 
     value: np.ndarray
@@ -320,12 +322,6 @@ def _check_measures_known(frame: pd.DataFrame, config: PlanningConfig, what: str
         )
 
 
-def _pins_frame(frame: pd.DataFrame, value: np.ndarray | None = None) -> pd.DataFrame:
-    out = frame[PIN_KEY].reset_index(drop=True).copy()
-    out["value"] = frame["value"].to_numpy(float) if value is None else value
-    return out
-
-
 def plan_measures(
     children: pd.DataFrame,
     parent_forecast: pd.DataFrame,
@@ -386,11 +382,12 @@ def plan_measures(
     mats = {"target": target_m, "share": share_m, "forecast": _matrix(leaf_forecast, LEAF, children, "forecast", first_ord, h, period)}
     for basis_name, frame in (share_bases or {}).items():
         mats[f"share_table:{basis_name}"] = _matrix(frame, LEAF, children, "share", first_ord, h, period)
-    strategy = "strategy" in parent_forecast.columns
+    # the strategy of each parent's class (absent = top-down, the forecast stage's default grain)
     top_down = np.ones(n_parents, dtype=bool)
-    if strategy and len(parent_forecast):
-        pos = lookup(parents, PARENT, parent_forecast.drop_duplicates(PARENT))
-        found = parent_forecast.drop_duplicates(PARENT)["strategy"].to_numpy(object)
+    if "strategy" in parent_forecast.columns and len(parent_forecast):
+        first_rows = parent_forecast.drop_duplicates(PARENT)
+        pos = lookup(parents, PARENT, first_rows)
+        found = first_rows["strategy"].to_numpy(object)
         top_down = np.where(pos >= 0, found[np.clip(pos, 0, None)] == "top_down", True)
 
     pieces, parent_pieces, overflow_pieces, applied_pieces = {}, [], [], []
@@ -398,10 +395,8 @@ def plan_measures(
         m = config.measures[name]
         mean = m.rule == "replicate"
         if m.parent_values == "parent_forecast":
-            value = _matrix(parent_forecast, PARENT, parents, "forecast", first_ord, h, period)
-            has = np.zeros((n_parents, h), dtype=bool)
-            row, col, inside = _cells(parent_forecast, PARENT, parents, first_ord, h, period)
-            has[row[inside & (row >= 0)], col[inside & (row >= 0)]] = True
+            value, has = _matrix(parent_forecast.assign(_has=1.0), PARENT, parents, ["forecast", "_has"], first_ord, h, period)
+            has = has > 0
         else:
             mine = (adjustments["measure"] == name).to_numpy() & adj_inside
             ok = mine & (adj_row >= 0)
@@ -414,7 +409,7 @@ def plan_measures(
         if mine_pin.any():
             combined = pins.loc[mine_pin, PIN_KEY].assign(period_start=pin_starts[mine_pin]).drop_duplicates()
             cell = lookup(combined, LEAF, children), period_ordinal(pd.DatetimeIndex(combined["period_start"]), period) - first_ord
-            applied_pieces.append(_pins_frame(combined.assign(value=0.0), pin[cell]))
+            applied_pieces.append(combined.assign(value=pin[cell]))
 
         basis, fallback_basis, label = _basis(m, name, mats, top_down, parent_of_child)
         split = split_cells(
@@ -444,10 +439,6 @@ def plan_measures(
         pins_not_applied=pins_not_applied[PIN_KEY + ["value", "reason"]].reset_index(drop=True),
         unused_rows=unused_rows,
     )
-
-
-OVERFLOW_COLUMNS = ["measure", "product", "site", "period_start", "parent_value", "pins_sum", "overflow", "pins"]
-UNUSED_COLUMNS = ["input", "measure", "product", "site", "customer", "period_start", "value", "reason"]
 
 
 def _stack(pieces: list[pd.DataFrame], columns: list[str]) -> pd.DataFrame:
