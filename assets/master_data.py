@@ -1,4 +1,4 @@
-"""Assets `products`, `customer_spans`, `adjustments`, `shortages`: master data and planner input.
+"""Assets `products`, `customer_spans`, `adjustments`, `pins`, `shortages`: master data and planner input.
 
 Each partition (cycle x product class) keeps the rows of its class's products;
 the product master file says which class a product is in.
@@ -10,12 +10,13 @@ import pandas as pd
 from assets.common import schema_check_spec, table_metadata, validate
 from pipelines.partitions import cycle_class_partitions, partition_config
 from pipelines.resources import PlanningConfigResource
-from pipelines.schemas import Adjustments, CustomerSpans, Products, Shortages
-from pipelines.stages.master_data import class_rows, load_adjustments, load_customer_spans, load_products, load_shortages
+from pipelines.schemas import Adjustments, CustomerSpans, Pins, Products, Shortages
+from pipelines.stages.master_data import class_rows, load_adjustments, load_customer_spans, load_pins, load_products, load_shortages
 
 PRODUCTS = "products"
 CUSTOMER_SPANS = "customer_spans"
 ADJUSTMENTS = "adjustments"
+PINS = "pins"
 SHORTAGES = "shortages"
 
 
@@ -100,7 +101,17 @@ adjustments = _optional_input(
     ADJUSTMENTS,
     load_adjustments,
     Adjustments,
-    "Parent-grain values a planner entered (optional adjustments file; empty when absent).",
+    "Parent-grain values of the plan's input measures, e.g. prices, promotion uplifts and planner "
+    "adjustments (optional adjustments file; empty when absent). plan_measures splits them to the leaf.",
+)
+
+pins = _optional_input(
+    PINS,
+    load_pins,
+    Pins,
+    "Leaf values a planner fixed per measure and period (optional pins file; empty when absent): "
+    "plan_measures keeps them and splits the rest of the parent over the other customers.",
+    figures=lambda frame: {"pins_by_measure": frame.groupby("measure").size().rename("pins").reset_index()},
 )
 
 shortages = _optional_input(

@@ -40,7 +40,17 @@ OutlierSides = Literal["upper", "both"]
 SeasonalAdjust = Literal["auto", "off"]
 ReturnsRule = Literal["net_then_zero"]
 ShortageRule = Literal["exclude", "fill_baseline"]
+# How a measure's parent value reaches the leaf (pipelines.stages.plan_measures).
+SplitRule = Literal["replicate", "even", "pro_rata"]
+# What a pro_rata split is proportional to: the reinitialized target, a named share
+# basis of `share_bases`, or the children's current values of another measure.
+BasisKind = Literal["reinitialized_target", "share_table", "measure"]
+# Where a measure's parent values come from: the statistical forecast's parent, or
+# the rows of the adjustments input whose `measure` is the measure's name.
+ParentValuesSource = Literal["parent_forecast", "adjustments"]
+PinOverflowRule = Literal["error", "warn"]
 LATEST_COMPLETE_PERIOD = "latest_complete_period"
+STATISTICAL_FORECAST_MEASURE = "statistical_forecast"
 
 
 class Frozen(BaseModel):
@@ -205,6 +215,119 @@ class MonitoringConfig(Frozen):
         10.0, gt=0, le=100, description="percentage points a child's share may move from the previous cycle's"
     )
 
+def _check_fallbacks_grow(window: int, fallback_windows: tuple[int, ...]) -> None:
+    previous = window
+    for w in fallback_windows:
+        if w <= previous:
+            raise ValueError(
+                f"fallback_windows must each be longer than the one before "
+                f"(window {window}, fallback_windows {list(fallback_windows)})"
+            )
+        previous = w
+
+
+class ShareBasisConfig(Frozen):
+    """A named share table of its own, a basis for pro_rata measures (e.g. promotions on 52 weeks).
+
+    Computed by the share engine of `pipelines.stages.share_tables` with this
+    window, method and fallbacks in place of each product class's own; the
+    lifecycle rules (new customers, spans inside the horizon) are the same.
+    """
+
+    window: int = Field(ge=1, description="history window of this share table, in periods")
+    method: ShareMethod = "pooled"
+    fallback_windows: tuple[int, ...] = Field(
+        (),
+        description="longer windows tried in order when a parent has no volume in the window; "
+        "after them, an even split over the active children",
+    )
+
+    @model_validator(mode="after")
+    def _fallbacks_grow(self) -> ShareBasisConfig:
+        _check_fallbacks_grow(self.window, self.fallback_windows)
+        return self
+
+    @property
+    def longest_window(self) -> int:
+        return max((self.window, *self.fallback_windows))
+
+
+class BasisConfig(Frozen):
+    """What a pro_rata split is proportional to.
+
+    `reinitialized_target`: the target of `reinitialized_target` (the statistical
+    forecast's own basis); `share_table`: the period shares of the share basis
+    `name` (a key of `share_bases`); `measure`: the children's current values
+    of the measure `name` (a key of `measures`).
+    """
+
+    kind: BasisKind
+    name: str | None = Field(None, description="the share basis (kind share_table) or the measure (kind measure)")
+
+    @model_validator(mode="after")
+    def _name_fits_kind(self) -> BasisConfig:
+        if self.kind == "reinitialized_target" and self.name is not None:
+            raise ValueError(f"basis kind reinitialized_target takes no name (got name {self.name!r})")
+        if self.kind != "reinitialized_target" and not self.name:
+            what = "a key of share_bases" if self.kind == "share_table" else "a key of measures"
+            raise ValueError(f"basis kind {self.kind} needs a name: {what}")
+        return self
+
+    @property
+    def label(self) -> str:
+        """The basis as written in the `basis` column of plan_measures."""
+        return self.kind if self.name is None else f"{self.kind}:{self.name}"
+
+
+class IntegerSplitConfig(Frozen):
+    """Split in whole multiples of `pack_size` by the largest remainder (Hamilton) method."""
+
+    pack_size: int = Field(1, ge=1, description="parts are multiples of this many units (1 = whole units)")
+
+
+class MeasureConfig(Frozen):
+    """One measure of the plan: where its parent values come from and how they reach the leaf."""
+
+    rule: SplitRule
+    basis: BasisConfig | None = Field(None, description="pro_rata only: what the split is proportional to")
+    parent_values: ParentValuesSource = Field(
+        "adjustments",
+        description="parent_forecast: the statistical forecast per product x site; adjustments: the rows "
+        "of the adjustments input whose measure column is this measure's name",
+    )
+    integer: IntegerSplitConfig | None = Field(
+        None, description="even / pro_rata only: split in whole units or packs (largest remainder method)"
+    )
+
+    @model_validator(mode="after")
+    def _rule_fits(self) -> MeasureConfig:
+        if self.rule == "pro_rata" and self.basis is None:
+            raise ValueError(
+                "rule pro_rata needs a basis: {kind: reinitialized_target}, {kind: share_table, name: ...} "
+                "or {kind: measure, name: ...}"
+            )
+        if self.rule != "pro_rata" and self.basis is not None:
+            raise ValueError(f"rule {self.rule} takes no basis (only pro_rata does); remove the basis key")
+        if self.rule == "replicate" and self.integer is not None:
+            raise ValueError("rule replicate copies the parent value to every child; an integer split applies "
+                             "to even and pro_rata only; remove the integer key")
+        return self
+
+
+class PinsConfig(Frozen):
+    """Leaf values a planner fixed (optional pins input)."""
+
+    # error: stop with the parent, period, pins and overflow named; warn: keep the pins,
+    # give the other children 0 and list the rows in the WARN check pins_exceed_parent
+    on_overflow: PinOverflowRule = "error"
+
+
+DEFAULT_MEASURES = {
+    STATISTICAL_FORECAST_MEASURE: MeasureConfig(
+        rule="pro_rata", basis=BasisConfig(kind="reinitialized_target"), parent_values="parent_forecast"
+    )
+}
+
 
 class BacktestConfig(Frozen):
     """Rolling-origin backtest (Tashman 2000): `origins` forecast origins, each `horizon` periods ahead.
@@ -244,6 +367,13 @@ class PlanningConfig(Frozen):
     product_classes: dict[str, ProductClassConfig] = Field(min_length=1)
     backtest: BacktestConfig = BacktestConfig()
     monitoring: MonitoringConfig = MonitoringConfig()
+    share_bases: dict[str, ShareBasisConfig] = Field(
+        default_factory=dict, description="named share tables that pro_rata measures may use as basis"
+    )
+    measures: dict[str, MeasureConfig] = Field(
+        default_factory=lambda: dict(DEFAULT_MEASURES), min_length=1, description="the measures of the plan"
+    )
+    pins: PinsConfig = PinsConfig()
     _source: Path = PrivateAttr(Path("<memory>"))
 
     @property
@@ -271,15 +401,57 @@ class PlanningConfig(Frozen):
                 f"under product_classes, or correct the product_class column."
             )
 
+    def measure_order(self) -> list[str]:
+        """Measures in an order where each comes after the measure its basis reads.
+
+        Raises ConfigError naming the keys when a basis names an unknown share
+        basis or measure, or when measures read each other's values in a cycle.
+        """
+        for name, m in self.measures.items():
+            if m.basis is None or m.basis.kind == "reinitialized_target":
+                continue
+            known = self.share_bases if m.basis.kind == "share_table" else self.measures
+            section = "share_bases" if m.basis.kind == "share_table" else "measures"
+            if m.basis.name not in known:
+                raise ConfigError(
+                    f"{self.source}: measures.{name}.basis.name is {m.basis.name!r}, not a key of {section}; "
+                    f"valid names: {sorted(known)}. Add it under {section} or correct the name."
+                )
+        reads = {n: m.basis.name for n, m in self.measures.items() if m.basis is not None and m.basis.kind == "measure"}
+        order: list[str] = []
+        for start in self.measures:
+            path = [start]
+            while path[-1] in reads and reads[path[-1]] not in order:
+                nxt = reads[path[-1]]
+                if nxt in path:
+                    loop = path[path.index(nxt):] + [nxt]
+                    raise ConfigError(
+                        f"{self.source}: measures read each other's values in a cycle: {' -> '.join(loop)} "
+                        f"(each measure's basis.name). A pro_rata basis must be a measure that does not, "
+                        f"directly or through others, read this one; change one basis of the cycle."
+                    )
+                path.append(nxt)
+            for n in reversed(path):
+                if n not in order:
+                    order.append(n)
+        return order
+
     def check_windows_fit(self, history_periods: int) -> None:
         """Raise if a class window (not a fallback window) is longer than the history."""
         for name, pc in self.product_classes.items():
-            if pc.window > history_periods:
-                raise ConfigError(
-                    f"{self.source}: product_classes.{name}.window is {pc.window} periods but "
-                    f"the history holds only {history_periods} periods before the cycle date; "
-                    f"set a window of at most {history_periods}."
-                )
+            self._check_window_fits(f"product_classes.{name}.window", pc.window, history_periods)
+
+    def check_share_bases_fit(self, history_periods: int) -> None:
+        """Raise if a share basis window (not a fallback window) is longer than the history."""
+        for name, basis in self.share_bases.items():
+            self._check_window_fits(f"share_bases.{name}.window", basis.window, history_periods)
+
+    def _check_window_fits(self, key: str, window: int, history_periods: int) -> None:
+        if window > history_periods:
+            raise ConfigError(
+                f"{self.source}: {key} is {window} periods but the history holds only {history_periods} "
+                f"periods before the cycle date; set a window of at most {history_periods}."
+            )
 
 
 def _valid_keys(loc: tuple) -> list[str] | None:
@@ -330,6 +502,7 @@ def parse_config(data: object, source: Path | str = "<memory>") -> PlanningConfi
     except ValidationError as err:
         raise ConfigError(_format_error(source, err)) from None
     config._source = source
+    config.measure_order()  # references and cycles between measures, named by key
     return config
 
 

@@ -6,7 +6,8 @@ from assets.backtest_accuracy import backtest_accuracy
 from assets.cleaned_history import cleaned_history
 from assets.cycle_report import cycle_report
 from assets.lifecycle_history import lifecycle_history
-from assets.master_data import adjustments, customer_spans, products, shortages
+from assets.master_data import adjustments, customer_spans, pins, products, shortages
+from assets.plan_measures import plan_measures
 from assets.raw_history import raw_history
 from assets.reconciliation import reconciliation
 from assets.reinitialized_target import reinitialized_target
@@ -21,6 +22,7 @@ ASSETS = [
     products,
     customer_spans,
     adjustments,
+    pins,
     shortages,
     cleaned_history,
     lifecycle_history,
@@ -31,6 +33,7 @@ ASSETS = [
     statistical_forecast,
     reconciliation,
     cycle_report,
+    plan_measures,
 ]
 
 

@@ -15,8 +15,11 @@ Regenerate the bundled files with::
 
     .venv/bin/python -m pipelines.demo_data --out data/demo
 
-The same seed always gives byte-identical files. All randomness comes from one
-`np.random.default_rng(seed)`.
+The same seed always gives byte-identical files. All randomness comes from
+`np.random.default_rng(seed)`, except the cases added later, which draw from
+streams of their own so that the earlier files stay byte for byte: shortages
+`default_rng((seed, 9))`, list prices `default_rng((seed, 14))` (appended to
+adjustments.csv) and pins `default_rng((seed, 15))` (pins.csv).
 """
 
 from __future__ import annotations
@@ -46,6 +49,7 @@ FILES = {
     "customer_spans": "customer_spans.csv",
     "adjustments": "adjustments.csv",
     "shortages": "shortages.csv",
+    "pins": "pins.csv",
 }
 
 
@@ -560,10 +564,94 @@ def _plant_shortages(frames: dict[str, pd.DataFrame], planted: pd.DataFrame, see
     return {**frames, "history": history, "shortages": shortages}, planted.reset_index(drop=True)
 
 
+# 14-15. Plan measures (fixed ids). List prices per product x site go into adjustments.csv
+# after the rows above, so those stay as they were; pins.csv holds a few leaf values a
+# planner fixed. Drawn from their own generators, default_rng((seed, 14)) and
+# default_rng((seed, 15)), so no other cell of the scenario changes.
+LIST_PRICE_RANGE = {  # list price per unit, by product family
+    "DRIP": (18.0, 45.0), "FITT": (2.5, 9.0), "FERT": (12.0, 30.0), "FILT": (6.0, 15.0),
+    "TIMR": (35.0, 90.0), "SPRK": (8.0, 40.0), "FROST": (10.0, 25.0), "PART": (4.0, 60.0),
+}
+PRICE_CHANGE_PRODUCTS = ("DRIP-003", "FERT-002", "SPRK-002")  # list price rises from horizon week 13
+PRICE_CHANGE_WEEK = 13  # Monday 2027-03-01
+# (measure, product, site, horizon weeks): a leaf value the planner fixed; the customer is drawn
+PINNED_FORECAST = ("statistical_forecast", "DRIP-001", "SITE-NORTH", (1, 2))  # a confirmed order
+PINNED_ADJUSTMENT = ("planner_adjustment", "DRIP-001", "SITE-NORTH", (1,))  # most of the parent's adjustment
+PINNED_PROMOTION = ("promotion_uplift", "SPRK-001", "SITE-WEST", (23,))  # one customer's part of the promotion
+PINNED_PRICE = ("list_price", "DRIP-002", "SITE-NORTH", "C0001", tuple(range(13)))  # a contract price
+
+
+def _list_prices(frames: dict[str, pd.DataFrame], seed: int) -> pd.DataFrame:
+    """Case 14: list price of every product x site in every horizon week its product is sold."""
+    rng = np.random.default_rng((seed, 14))
+    horizon = CYCLE_DATE + np.timedelta64(7, "D") * np.arange(HORIZON_WEEKS)
+    products = frames["products"].set_index("product")
+    parents = frames["customer_spans"][["product", "site"]].drop_duplicates().reset_index(drop=True)
+    family = parents["product"].str.split("-").str[0]
+    lo = family.map(lambda f: LIST_PRICE_RANGE[f][0]).to_numpy()
+    hi = family.map(lambda f: LIST_PRICE_RANGE[f][1]).to_numpy()
+    by_product = pd.Series(rng.uniform(0.0, 1.0, len(products)), index=products.index)
+    base = lo + (hi - lo) * parents["product"].map(by_product).to_numpy()
+    price = base * rng.uniform(0.97, 1.03, len(parents))  # each site prices a little differently
+    rise = np.where(parents["product"].isin(PRICE_CHANGE_PRODUCTS), rng.uniform(1.04, 1.08, len(parents)), 1.0)
+    weeks = np.tile(np.arange(HORIZON_WEEKS), len(parents))
+    row = np.repeat(np.arange(len(parents)), HORIZON_WEEKS)
+    value = np.round(price[row] * np.where(weeks >= PRICE_CHANGE_WEEK, rise[row], 1.0), 2)
+    starts = horizon[weeks]
+    start_of = pd.to_datetime(products["active_from"].replace("", None)).reindex(parents["product"]).to_numpy()[row]
+    end_of = pd.to_datetime(products["active_to"].replace("", None)).reindex(parents["product"]).to_numpy()[row]
+    sold = ~(starts.astype("datetime64[ns]") > end_of) & ~(starts.astype("datetime64[ns]") < start_of)
+    out = pd.DataFrame({
+        "measure": "list_price",
+        "product": parents["product"].to_numpy()[row],
+        "site": parents["site"].to_numpy()[row],
+        "period_start": _iso(starts),
+        "value": [f"{v:.2f}" for v in value],
+    })[sold]
+    return out.sort_values(["product", "site", "period_start"], kind="mergesort").reset_index(drop=True)
+
+
+def _pins(frames: dict[str, pd.DataFrame], prices: pd.DataFrame, seed: int) -> pd.DataFrame:
+    """Case 15: a few leaf values a planner fixed, one case per measure."""
+    rng = np.random.default_rng((seed, 15))
+    horizon = CYCLE_DATE + np.timedelta64(7, "D") * np.arange(HORIZON_WEEKS)
+    spans, adjustments = frames["customer_spans"], frames["adjustments"]
+    rows = []
+
+    def customers(product: str, site: str) -> np.ndarray:
+        s = spans[(spans["product"] == product) & (spans["site"] == site) & (spans["active_from"] == "")]
+        return s["customer"].to_numpy()
+
+    measure, product, site, weeks = PINNED_FORECAST
+    customer = rng.choice(customers(product, site))
+    for w, units in zip(weeks, 5 * rng.integers(6, 13, len(weeks))):
+        rows.append((product, site, customer, str(horizon[w]), measure, str(units)))
+    for measure, product, site, weeks in (PINNED_ADJUSTMENT, PINNED_PROMOTION):
+        customer = rng.choice(customers(product, site))
+        for w in weeks:
+            entered = adjustments[(adjustments["measure"] == measure) & (adjustments["product"] == product)
+                                  & (adjustments["site"] == site) & (adjustments["period_start"] == str(horizon[w]))]
+            units = int(np.rint(float(entered["value"].iloc[0]) * rng.uniform(0.4, 0.6) / 5.0) * 5)
+            rows.append((product, site, customer, str(horizon[w]), measure, str(units)))
+    measure, product, site, customer, weeks = PINNED_PRICE
+    for w in weeks:
+        listed = prices[(prices["product"] == product) & (prices["site"] == site) & (prices["period_start"] == str(horizon[w]))]
+        rows.append((product, site, customer, str(horizon[w]), measure, f"{float(listed['value'].iloc[0]) * 0.95:.2f}"))
+    out = pd.DataFrame(rows, columns=["product", "site", "customer", "period_start", "measure", "value"])
+    return out.sort_values(["measure", "product", "site", "customer", "period_start"], kind="mergesort").reset_index(drop=True)
+
+
+def _plant_plan_inputs(frames: dict[str, pd.DataFrame], seed: int) -> dict[str, pd.DataFrame]:
+    """Cases 14 and 15: list prices appended to adjustments (earlier rows unchanged), and the pins table."""
+    prices = _list_prices(frames, seed)
+    pins = _pins(frames, prices, seed)
+    return {**frames, "adjustments": pd.concat([frames["adjustments"], prices], ignore_index=True), "pins": pins}
+
+
 def generate(seed: int = DEFAULT_SEED) -> dict[str, pd.DataFrame]:
     """The demo scenario's input tables, every cell as text ('' = blank), as written to CSV."""
     frames, _ = _plant_shortages(*_build(seed), seed)
-    return frames
+    return _plant_plan_inputs(frames, seed)
 
 
 def planted_cases(seed: int = DEFAULT_SEED) -> pd.DataFrame:

@@ -19,3 +19,7 @@ class LifecycleError(PlanningError):
 
 class UnknownKeyError(PlanningError):
     """A product, site, customer or period asked about is not in the stored cycle."""
+
+
+class PinError(PlanningError):
+    """Pins take more than their parent holds, with `pins.on_overflow: error`."""

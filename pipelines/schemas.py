@@ -39,6 +39,9 @@ STRATEGIES = ("top_down", "forecast_proportions", "bottom_up", "mint_shrink", "w
 BENCHMARK = "seasonal_naive"
 GRAINS = ("leaf", "parent")
 METRICS = ("wmape", "bias", "mase", "fva")
+SPLIT_RULES = ("replicate", "even", "pro_rata")
+# what a plan measure's split fell back to in a parent period (pipelines.stages.plan_measures)
+MEASURE_FALLBACKS = ("none", "period_share", "even", "pins_overflow")
 
 
 class _Strict(pa.DataFrameModel):
@@ -133,6 +136,17 @@ class Adjustments(_Strict):
     site: Series[str] = pa.Field(description="site code")
     period_start: Series[DateTime] = pa.Field(description="period start")
     value: Series[float] = pa.Field(description="value at product x site grain")
+
+
+class Pins(_Strict):
+    """Leaf values a planner fixed: the split keeps them and spreads the rest of the parent over the others."""
+
+    product: Series[str] = pa.Field(str_length={"min_value": 1}, description="product code")
+    site: Series[str] = pa.Field(str_length={"min_value": 1}, description="site code")
+    customer: Series[str] = pa.Field(str_length={"min_value": 1}, description="customer code")
+    period_start: Series[DateTime] = pa.Field(description="any day inside the pinned period")
+    measure: Series[str] = pa.Field(str_length={"min_value": 1}, description="measure name (a key of config measures)")
+    value: Series[float] = pa.Field(description="the value the leaf keeps")
 
 
 class Shortages(_Strict):
@@ -374,6 +388,27 @@ class StrategyChoice(_Strict):
 
     class Config:
         unique = ["product_class"]
+
+
+class PlanMeasures(LeafPeriod):
+    """Every measure of the plan at leaf grain, long format: one row per leaf, period and measure."""
+
+    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
+    measure: Series[str] = pa.Field(description="measure name (a key of config measures)")
+    value: Series[float] = pa.Field(description="the leaf's value")
+    parent_value: Series[float] = pa.Field(
+        nullable=True, description="the parent's value in this period (blank where it has none and only pins gave the row)"
+    )
+    rule: Series[str] = pa.Field(isin=SPLIT_RULES, description="split rule of the measure")
+    basis: Series[str] = pa.Field(
+        description="what the value came from: parent (replicate), even, pin, or the pro_rata basis "
+        "(reinitialized_target, forecast_leaf, share_table:<name>, measure:<name>)"
+    )
+    fallback: Series[str] = pa.Field(isin=MEASURE_FALLBACKS, description="fallback the parent period's split took")
+    pinned: Series[bool] = pa.Field(description="the value is a planner's pin, kept as given")
+
+    class Config:
+        unique = ["product", "site", "customer", "period_start", "measure"]
 
 
 class Reconciliation(_Strict):

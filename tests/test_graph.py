@@ -355,6 +355,7 @@ def test_monthly_calendar_runs_the_same_graph(tmp_path):
         product_classes=classes,
         cleansing={"outliers": {"rule": "hampel", "window": 7, "k": 5.0}},
         lifecycle={"min_history_periods": 3, "reference_scale": 0.5},  # 3 months, about the weekly 13 weeks
+        share_bases={"promotions_52w": {"window": 12, "fallback_windows": [24]}},  # a year of months
     )
     result = run_cycle(config)
     assert result.success
@@ -376,6 +377,44 @@ def test_monthly_calendar_runs_the_same_graph(tmp_path):
     late = rejected[rejected["reason"] == "on_or_after_cycle_date"]
     assert len(late) > 1000 and (pd.to_datetime(late["period_start"]) >= "2026-11-01").all()
     assert cleaned["period_start"].max() == pd.Timestamp("2026-10-01")
+
+
+def test_demo_plan_measures_each_split_by_its_rule_with_the_pins_kept(demo_cycle):
+    from assets.plan_measures import MEASURES_SUM_TO_PARENT, PINS_EXCEED_PARENT, PINS_KEPT
+
+    result, store, _ = demo_cycle
+    plan = read_table(store, "plan_measures")
+    checks = checks_of(result)
+    for name in (MEASURES_SUM_TO_PARENT, PINS_KEPT, PINS_EXCEED_PARENT):
+        assert checks[f"plan_measures:{name}"].passed
+    assert set(plan["measure"]) == {"statistical_forecast", "list_price", "promotion_uplift", "planner_adjustment"}
+    key = ["product", "site", "customer", "period_start"]
+    # the pins of data/demo/pins.csv (case 15) are the values of their leaves
+    pins = pd.read_csv(DEMO / "pins.csv", parse_dates=["period_start"])
+    kept = pins.merge(plan[plan["pinned"]], on=key + ["measure"], suffixes=("_pin", ""))
+    assert len(kept) == len(pins) == int(plan["pinned"].sum())
+    np.testing.assert_allclose(kept["value"], kept["value_pin"], rtol=0, atol=0)
+    # statistical_forecast: the forecast stage's own leaf values, except in the parent periods a pin changed
+    fc = read_table(store, "statistical_forecast").merge(plan[plan["measure"] == "statistical_forecast"], on=key, how="left")
+    pinned = pins[pins["measure"] == "statistical_forecast"][["product", "site", "period_start"]].assign(p=True)
+    fc = fc.merge(pinned, on=["product", "site", "period_start"], how="left")
+    same = fc[fc["p"].isna() & fc["value"].notna()]
+    np.testing.assert_allclose(same["value"], same["forecast"], rtol=1e-12, atol=1e-12)
+    assert (fc.loc[fc["value"].isna(), "forecast"] == 0).all()  # no plan row: not active, forecast 0
+    # list_price replicates the parent's price; C0001 of DRIP-002 / SITE-NORTH keeps its contract price
+    price = plan[(plan["measure"] == "list_price") & ~plan["pinned"]]
+    assert (price["value"] == price["parent_value"]).all() and set(price["basis"]) == {"parent"}
+    # planner_adjustment 2026-12-07 on DRIP-001 / SITE-NORTH: 200 = the pin (105) + the rest in packs of 5
+    adj = plan[(plan["measure"] == "planner_adjustment") & (plan["product"] == "DRIP-001") & (plan["period_start"] == "2026-12-07")]
+    assert adj["value"].sum() == 200 and (adj["value"] % 5 == 0).all()
+    # promotion_uplift in whole units by the 52-week share table, summing to each entered value
+    promo = plan[plan["measure"] == "promotion_uplift"]
+    assert set(promo.loc[~promo["pinned"], "basis"]) == {"share_table:promotions_52w"}
+    assert (promo["value"] == np.rint(promo["value"])).all()
+    entered = pd.read_csv(DEMO / "adjustments.csv", parse_dates=["period_start"])
+    entered = entered[entered["measure"] == "promotion_uplift"].set_index(["product", "site", "period_start"])["value"]
+    got = promo.groupby(["product", "site", "period_start"])["value"].sum()
+    pd.testing.assert_series_equal(got.sort_index(), entered.sort_index().astype(float), check_names=False)
 
 
 def test_demo_exercises_every_cleansing_rule(demo_cycle):

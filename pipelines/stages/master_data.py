@@ -1,4 +1,4 @@
-"""Master data: products, customer spans, planner adjustments and supply shortages.
+"""Master data: products, customer spans, planner adjustments, pins and supply shortages.
 
 Loaded as text with blanks as missing; the stage's pandera model parses the
 dates and numbers, so a bad cell shows up as a failing row of the schema check
@@ -19,6 +19,7 @@ SPAN_COLUMNS = ("product", "site", "customer", "active_from", "active_to", "refe
 SPAN_OPTIONAL_COLUMNS = ("scale", "initial_share")
 ADJUSTMENT_COLUMNS = ("measure", "product", "site", "period_start", "value")
 SHORTAGE_COLUMNS = ("product", "site", "period_start")
+PIN_COLUMNS = ("product", "site", "customer", "period_start", "measure", "value")
 
 
 def _load(
@@ -59,3 +60,8 @@ def class_rows(frame: pd.DataFrame, classes: pd.Series, product_class: str) -> p
     """
     cls = frame["product"].map(classes)
     return frame.loc[(cls == product_class) | cls.isna()].reset_index(drop=True)
+
+
+def load_pins(folder: Path) -> tuple[pd.DataFrame, list[InputFile]]:
+    """Optional: leaf values a planner fixed, per measure and period; an absent file gives an empty table."""
+    return _load(folder, "pins", PIN_COLUMNS, required=False)
