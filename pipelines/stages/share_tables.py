@@ -101,12 +101,14 @@ def window_volumes(age: np.ndarray, qty: np.ndarray, child: np.ndarray, n_childr
     return np.bincount(child[inside], weights=qty[inside], minlength=n_children)
 
 
-def mean_of_ratios(
+def period_proportions(
     age: np.ndarray, qty: np.ndarray, child: np.ndarray, parent_of_child: np.ndarray, n_parents: int, window: int
-) -> np.ndarray:
-    """Average over the window's periods with parent volume of child / parent volume.
+) -> tuple[np.ndarray, np.ndarray]:
+    """(ratio (n, window), has_volume (n, window)): y_{j,t} / Y_t of every child and window period.
 
-    Returns one value per child (0 for a child of a parent with no volume).
+    Column a - 1 holds age a (column 0 = the period before the cycle). Y_t is the
+    volume of the child's parent over the rows given; where Y_t = 0 the ratio is 0
+    and has_volume is False.
     """
     n_children = len(parent_of_child)
     inside = (age >= 1) & (age <= window)
@@ -117,11 +119,51 @@ def mean_of_ratios(
     parent_t = np.zeros((n_parents, window))
     np.add.at(parent_t, parent_of_child, child_t)
     denominator = parent_t[parent_of_child]
+    has_volume = denominator > 0
     with np.errstate(invalid="ignore", divide="ignore"):
-        ratio = np.where(denominator > 0, child_t / denominator, 0.0)
-    periods_with_volume = (parent_t > 0).sum(axis=1)[parent_of_child]
+        ratio = np.where(has_volume, child_t / denominator, 0.0)
+    return ratio, has_volume
+
+
+def mean_of_ratios(
+    age: np.ndarray, qty: np.ndarray, child: np.ndarray, parent_of_child: np.ndarray, n_parents: int, window: int
+) -> np.ndarray:
+    """Average over the window's periods with parent volume of child / parent volume.
+
+    Returns one value per child (0 for a child of a parent with no volume).
+    """
+    ratio, has_volume = period_proportions(age, qty, child, parent_of_child, n_parents, window)
+    periods_with_volume = has_volume.sum(axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(periods_with_volume > 0, ratio.sum(axis=1) / periods_with_volume, 0.0)
+
+
+def smoothed_proportions(
+    age: np.ndarray,
+    qty: np.ndarray,
+    child: np.ndarray,
+    parent_of_child: np.ndarray,
+    n_parents: int,
+    window: int,
+    alpha: float,
+) -> np.ndarray:
+    """Brown's (1962) exponential smoothing of each child's proportion over the window, oldest period first.
+
+    p starts at the proportion of the window's first period with parent volume
+    and is then updated by p_t = alpha x y_{j,t} / Y_t + (1 - alpha) x p_(t-1)
+    in every later period with parent volume; a period without (Y_t = 0)
+    leaves p unchanged. Returns p after the window's last period (0 for a child
+    of a parent with no volume). One pass over the window's periods, each
+    vectorised over all children.
+    """
+    ratio, has_volume = period_proportions(age, qty, child, parent_of_child, n_parents, window)
+    p = np.zeros(len(parent_of_child))
+    started = np.zeros(len(parent_of_child), dtype=bool)
+    for col in range(window - 1, -1, -1):  # age window .. 1: oldest to newest
+        r, has = ratio[:, col], has_volume[:, col]
+        p = np.where(has, np.where(started, alpha * r + (1.0 - alpha) * p, r), p)
+        started |= has
+    return p
 
 
 def shortage_periods(history: pd.DataFrame, config: PlanningConfig) -> np.ndarray:
@@ -183,8 +225,10 @@ def split_shares(
 ) -> tuple[np.ndarray, np.ndarray]:
     """Shares of every child in every period, per the rules of the module docstring.
 
-    parent_code (n,): parent of each child, 0..n_parents-1. history_share (n,):
-    p_j of established children (ignored for new ones). rule (n,): the child's
+    parent_code (n,): parent of each child, 0..n_parents-1. history_share (n,)
+    or (n, T): p_j of established children (ignored for new ones), the same in
+    every period or one per period (the per-period basis of `seasonal` and
+    `forecast_proportions`, see `period_basis`). rule (n,): the child's
     lifecycle_rule. ref_pos (n,): row of the reference child for `reference`
     rows (ignored elsewhere). scale, initial_share (n,): used by their rule.
     active (n, T) bool: the child is active in period t.
@@ -197,17 +241,18 @@ def split_shares(
     new = np.isin(rule, NEW_CUSTOMER_RULES)
     is_ref = rule == "reference"
     is_init = rule == "initial_share"
-    p = np.where(new, 0.0, history_share)
+    base = np.asarray(history_share, dtype=float)
+    p = np.where(new[:, None], 0.0, base if base.ndim == 2 else base[:, None])  # (n, T) or (n, 1)
     ref = np.where(is_ref, ref_pos, 0)
     k = np.where(is_ref, scale, 0.0)
     # what the active new customers ask of each reference, as a multiple of its share
     asked = np.zeros((n, t))
     np.add.at(asked, ref[is_ref], k[is_ref, None] * act[is_ref])
     cut = np.where(asked > 1.0, 1.0 / np.where(asked > 1.0, asked, 1.0), 1.0)
-    take = np.where(is_ref[:, None], k[:, None] * p[ref][:, None] * cut[ref] * act, 0.0)
+    take = np.where(is_ref[:, None], k[:, None] * p[ref] * cut[ref] * act, 0.0)
     given = np.zeros((n, t))
     np.add.at(given, ref[is_ref], take[is_ref])
-    weight = np.clip(p[:, None] - given, 0.0, None) * act * (~new)[:, None] + take
+    weight = np.clip(p - given, 0.0, None) * act * (~new)[:, None] + take
     s_init = np.where(is_init[:, None], np.nan_to_num(initial_share)[:, None] * act, 0.0)
 
     weight_sum = np.zeros((n_parents, t))
@@ -262,10 +307,12 @@ def _history_shares(
             cv = window_volumes(age, qty, child, n, w)
             pv = np.bincount(parent_code, weights=cv * established, minlength=n_parents)[parent_code]
             take = ~decided & (pv > 0)
-            if pc.method == "pooled":
-                s = np.divide(cv, pv, out=np.zeros(n), where=pv > 0) * established
-            else:
+            if pc.method == "mean_of_ratios":
                 s = mean_of_ratios(age[est_row], qty[est_row], child[est_row], parent_code, n_parents, w)
+            elif pc.method == "smoothed":
+                s = smoothed_proportions(age[est_row], qty[est_row], child[est_row], parent_code, n_parents, w, pc.smoothing)
+            else:  # pooled; and the pooled summary (and per-period fallback) of the per-period methods
+                s = np.divide(cv, pv, out=np.zeros(n), where=pv > 0) * established
             out["history_share"][take] = s[take]
             out["window_used"][take] = w
             out["fallback"][take] = "none" if w == pc.window else "longer_window"
