@@ -528,7 +528,8 @@ def seasonal_shares(
     at = ordinal - lo
     poy = np.where((at >= 0) & (at < len(table)), table[np.clip(at, 0, len(table) - 1)], -1)
     inside = poy >= 0
-    m = np.bincount(child[inside] * length + poy[inside], weights=qty[inside], minlength=n * length).reshape(n, length)
+    cells = np.bincount(child[inside] * length + poy[inside], weights=qty[inside], minlength=n * length)
+    m = cells.astype(float).reshape(n, length)  # float even without rows (bincount of nothing is int)
     if band:
         m = sum(np.roll(m, d, axis=1) for d in range(-band, band + 1))
     child_h = m[:, horizon_poy]
@@ -593,7 +594,7 @@ def period_basis(
     ords = period_ordinal(history["period_start"], period)
     qty = history["quantity"].to_numpy(float)
     fp = (methods == "forecast_proportions") & established
-    forecasts = children_forecasts(history, shares[fp], config, cycle_ord, h) if fp.any() else None
+    forecasts = children_forecasts(history, shares[fp], config, cycle_ord, h) if fp.any() else np.zeros((0, h))
     for name in pd.unique(classes[np.isin(methods, PER_PERIOD_METHODS)]):  # a few classes, not a loop over series
         pc = config.product_classes[name]
         in_class = classes == name
