@@ -11,7 +11,7 @@ from pathlib import Path
 from typing import Literal, get_args, get_origin
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError, field_validator, model_validator
+from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError, ValidationInfo, field_validator, model_validator
 
 from pipelines.errors import ConfigError
 
@@ -208,25 +208,18 @@ class ProductClassConfig(Frozen):
             previous = w
         return self
 
-    @field_validator("smoothing")
+    @field_validator("smoothing", "seasonal_years", "seasonal_band")
     @classmethod
-    def _smoothing_range(cls, v: float | None) -> float | None:
-        if v is not None and not 0 < v <= 1:
-            raise ValueError("smoothing must be greater than 0 and at most 1 (0 < alpha <= 1, e.g. 0.2)")
-        return v
-
-    @field_validator("seasonal_years")
-    @classmethod
-    def _years_range(cls, v: int | None) -> int | None:
-        if v is not None and not 1 <= v <= 10:
-            raise ValueError("seasonal_years must be a whole number of years from 1 to 10")
-        return v
-
-    @field_validator("seasonal_band")
-    @classmethod
-    def _band_range(cls, v: int | None) -> int | None:
-        if v is not None and not 0 <= v <= 4:
-            raise ValueError("seasonal_band must be 0 to 4 neighbouring periods on each side")
+    def _method_key_range(cls, v: float | None, info: ValidationInfo) -> float | None:
+        if v is None:
+            return v
+        inside, valid = {
+            "smoothing": (0 < v <= 1, "greater than 0 and at most 1 (0 < alpha <= 1, e.g. 0.2)"),
+            "seasonal_years": (1 <= v <= 10, "a whole number of years from 1 to 10"),
+            "seasonal_band": (0 <= v <= 4, "0 to 4 neighbouring periods on each side"),
+        }[info.field_name]
+        if not inside:
+            raise ValueError(f"{info.field_name} must be {valid}")
         return v
 
     @model_validator(mode="after")

@@ -33,7 +33,6 @@ from statsmodels.tsa.holtwinters import SimpleExpSmoothing
 from pipelines.calendar import period_ordinal
 from pipelines.config import parse_config
 from pipelines.keys import LEAF
-from pipelines.schemas import LifecycleHistory
 from pipelines.stages.reinitialized_target import reinitialize_target
 from pipelines.stages.share_tables import children_forecasts, compute_shares
 from pipelines.stages.statistical_forecast import forecast_cycle
@@ -41,10 +40,10 @@ from pipelines.stages.statistical_forecast import forecast_cycle
 TOL = 1e-12
 
 
-def make_history(weeks: pd.DatetimeIndex, parents, seed: int, seasonal: bool = False, trend: bool = False) -> pd.DataFrame:
-    """Invented lifecycle history: parents [(product, site, customers)], every customer every week.
-
-    seasonal: each customer its own yearly peak; trend: each customer its own weekly growth (-4% to +4%).
+def invented_rows(weeks: pd.DatetimeIndex, parents, seed: int, seasonal: bool = False, trend: bool = False) -> list[tuple]:
+    """Invented history rows (product, site, customer, week, quantity): parents [(product, site, customers)],
+    every customer every week. seasonal: each customer its own yearly peak; trend: its own weekly
+    growth (-4% to +4%).
     """
     rng = np.random.default_rng(seed)
     rows = []
@@ -55,13 +54,8 @@ def make_history(weeks: pd.DatetimeIndex, parents, seed: int, seasonal: bool = F
             for t, w in enumerate(weeks):
                 season = 1 + amplitude * np.cos(2 * np.pi * (w.isocalendar().week - peak) / 52) if seasonal else 1.0
                 mean = level * season * (1 + growth) ** t * rng.uniform(0.8, 1.2)
-                rows.append((p, s, f"C{c + 1}", w, float(rng.poisson(mean))))
-    h = pd.DataFrame(rows, columns=LEAF + ["period_start", "quantity"])
-    h["origin"] = "own"
-    h["source_product"] = h["product"]
-    h["source_customer"] = h["customer"]
-    h["shortage"] = False
-    return LifecycleHistory.validate(h)
+                rows.append((p, s, f"C{c + 1}", str(w.date()), float(rng.poisson(mean))))
+    return rows
 
 
 def children_of(history: pd.DataFrame) -> pd.DataFrame:
@@ -101,8 +95,8 @@ def fp_config(grain: str = "product_site") -> object:
     )
 
 
-def test_forecast_proportions_equal_top_down_forecast_proportions_on_one_parent():
-    history = make_history(WEEKS, [("P1", "S1", 5)], seed=3, trend=True)
+def test_forecast_proportions_equal_top_down_forecast_proportions_on_one_parent(make_history):
+    history = make_history(invented_rows(WEEKS, [("P1", "S1", 5)], seed=3, trend=True))
     cfg = fp_config()
     shares = compute_shares(history, children_of(history), cfg, CYCLE)
     target = reinitialize_target(shares, history, cfg, CYCLE)
@@ -118,9 +112,9 @@ def test_forecast_proportions_equal_top_down_forecast_proportions_on_one_parent(
     assert np.ptp(ours.to_numpy(), axis=1).max() > 1e-4
 
 
-def test_childrens_base_forecasts_are_the_forecast_stage_own_leaf_forecasts():
+def test_childrens_base_forecasts_are_the_forecast_stage_own_leaf_forecasts(make_history):
     """The basis comes from the class's models: the same numbers the forecast stage gives bottom-up."""
-    history = make_history(WEEKS, [("P1", "S1", 4), ("P2", "S1", 3)], seed=5, trend=True)
+    history = make_history(invented_rows(WEEKS, [("P1", "S1", 4), ("P2", "S1", 3)], seed=5, trend=True))
     cfg = fp_config(grain="product_site_customer")
     children = children_of(history)
     shares = compute_shares(history, children, cfg, CYCLE)
@@ -132,8 +126,8 @@ def test_childrens_base_forecasts_are_the_forecast_stage_own_leaf_forecasts():
     np.testing.assert_allclose(base, own.to_numpy(), rtol=0, atol=1e-9)
 
 
-def test_top_down_split_by_forecast_proportions_target_equals_the_library_on_the_parent_forecast():
-    history = make_history(WEEKS, [("P9", "S1", 4)], seed=7, trend=True)
+def test_top_down_split_by_forecast_proportions_target_equals_the_library_on_the_parent_forecast(make_history):
+    history = make_history(invented_rows(WEEKS, [("P9", "S1", 4)], seed=7, trend=True))
     cfg = fp_config()
     children = children_of(history)
     shares = compute_shares(history, children, cfg, CYCLE)
@@ -151,9 +145,9 @@ def test_top_down_split_by_forecast_proportions_target_equals_the_library_on_the
 
 # ------------------------------------------------------------------ smoothed
 @pytest.mark.parametrize("alpha", [0.1, 0.3, 0.75])
-def test_smoothed_equals_pandas_ewm_and_statsmodels_ses_of_each_childs_proportion(alpha):
+def test_smoothed_equals_pandas_ewm_and_statsmodels_ses_of_each_childs_proportion(make_history, alpha):
     weeks = pd.date_range("2025-09-01", periods=20, freq="7D")
-    history = make_history(weeks, [("P1", "S1", 4), ("P2", "S1", 3)], seed=11)
+    history = make_history(invented_rows(weeks, [("P1", "S1", 4), ("P2", "S1", 3)], seed=11))
     # weeks without parent volume: the first (so the start moves to the second week) and two inside
     quiet = history["period_start"].isin(weeks[[0, 6, 13]]) & (history["product"] == "P1")
     history.loc[quiet, "quantity"] = 0.0
@@ -210,8 +204,8 @@ def same_period_weeks(history_weeks: pd.Series, horizon_week: pd.Timestamp, year
 
 
 @pytest.mark.parametrize(("years", "band"), [(2, 0), (3, 0), (2, 1)])
-def test_seasonal_equals_proportion_averages_over_the_same_iso_weeks(years, band):
-    history = make_history(SEASON_WEEKS, [("P1", "S1", 4)], seed=13, seasonal=True)
+def test_seasonal_equals_proportion_averages_over_the_same_iso_weeks(make_history, years, band):
+    history = make_history(invented_rows(SEASON_WEEKS, [("P1", "S1", 4)], seed=13, seasonal=True))
     cfg = parse_config(
         {
             "calendar": {"horizon": SEASON_HORIZON},
