@@ -561,7 +561,10 @@ def children_forecasts(history: pd.DataFrame, children: pd.DataFrame, config: Pl
 def period_basis(
     shares: pd.DataFrame, history: pd.DataFrame | None, config: PlanningConfig, cycle_date: pd.Timestamp, horizon: int | None = None
 ) -> tuple[np.ndarray, np.ndarray]:
-    """(weight (n, H), share_basis (n, H)): each share-table row's history share in every horizon period.
+    """(weight, share_basis (n, H)): each share-table row's history share in every horizon period.
+
+    weight is (n, H), or the (n,) history shares when no row has a per-period
+    method (the same in every period; `split_shares` takes either).
 
     Classes with one share per child: the row's `history_share` in every period
     (`history_share`). `seasonal` and `forecast_proportions`: the established
@@ -574,15 +577,14 @@ def period_basis(
     """
     period = config.calendar.period
     h = horizon or config.calendar.horizon
-    n = len(shares)
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
     history_share = shares["history_share"].to_numpy(float)
-    weight = np.repeat(history_share[:, None], h, axis=1)
     parent_code, parents = factorize(shares, PARENT)
     label = np.full((len(parents), h), "history_share", dtype=object)
     methods = shares["method"].to_numpy(object)
     if not np.isin(methods, PER_PERIOD_METHODS).any():
-        return weight, label[parent_code]
+        return history_share, label[parent_code]
+    weight = np.repeat(history_share[:, None], h, axis=1)
     if history is None:
         raise ValueError(f"the shares of methods {list(PER_PERIOD_METHODS)} differ per period and need the lifecycle history")
 
