@@ -235,7 +235,10 @@ class ShareTable(LeafKeys):
     cycle_date: Series[DateTime] = pa.Field(description="first period of the cycle's horizon")
     product_class: Series[str] = pa.Field(description="product class")
     share: Series[float] = pa.Field(
-        ge=0, le=1, description="base share: child's fraction of its parent in a period where every child is active"
+        ge=0,
+        le=1,
+        description="base share: child's fraction of its parent in a period where every child is active "
+        "(per-period methods: from their pooled history_share)",
     )
     history_share: Series[float] = pa.Field(
         ge=0,

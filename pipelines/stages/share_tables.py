@@ -40,20 +40,25 @@ both their one-row summary and their fallback in any period without a basis:
   week number for weeks, with week 53 counted as week 52 (a long year's last
   two weeks pool as one period of the year, and a horizon week 53 reads week
   52's history), or the month for months. `seasonal_band` k > 0 pools the k
-  neighbouring periods of the year on each side too (wrapping round the year),
-  damping noise at the cost of a flatter season. A parent without volume in the
-  pooled periods of h's period of the year falls back to its pooled share in h.
+  neighbouring periods of the year on each side too, each from its own most
+  recent occurrences (wrapping round the year: week 1's neighbours include
+  week 52), damping noise at the cost of a flatter season. Shortage periods are
+  left out (see below). A parent without volume in the pooled periods of h's period of the
+  year falls back to its pooled share in h.
 - `forecast_proportions` (Athanasopoulos, Ahmed & Hyndman 2009): the
   children's own base forecasts, from the models the class uses (the forecast
   stage's `base_forecasts` run at leaf grain on the children's lifecycle
-  history before the cycle date, negatives set to 0): share_{j,h} =
+  history before the cycle date, shortage periods included as the forecast
+  stage has them, negatives set to 0): share_{j,h} =
   yhat_{j,h} / sum_k yhat_{k,h} over the parent's established children. Where
   they are all 0 in a period, the pooled share is the basis there.
 
 Where a per-period method fell back is recorded per parent and period in the
 `share_basis` column of `reinitialized_target` (`pooled_fallback`). The
-per-period basis is computed there rather than stored here: a second output
-table would make share_tables a multi-asset that cannot be rebuilt on its own.
+per-period basis is computed there, from the same lifecycle history, rather
+than stored here: a second output table would make share_tables a multi-asset,
+which Dagster will not rematerialize when only `share_tables` is selected
+(`make rebuild ASSET=share_tables`).
 
 A parent period with a recorded supply shortage (any of its rows has
 `shortage = True`) is left out of the window entirely, for every child, so a
