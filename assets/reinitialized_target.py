@@ -47,6 +47,7 @@ def reinitialized_target(
             parents_with_mix_change=mix,
             parents_with_mix_change_count=len(mix),
             zero_share_periods_by_reason=zero_by_reason,
+            parent_periods_by_share_basis=target.drop_duplicates(["product", "site", "period_start"])["share_basis"].value_counts().rename_axis("share_basis").reset_index(),
         ),
     )
     yield check

@@ -11,12 +11,20 @@ from pathlib import Path
 from typing import Literal, get_args, get_origin
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError, field_validator, model_validator
+from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError, ValidationInfo, field_validator, model_validator
 
 from pipelines.errors import ConfigError
 
 PeriodKind = Literal["week", "month"]
-ShareMethod = Literal["pooled", "mean_of_ratios"]
+# How a child's share of its parent is computed from history (pipelines.stages.share_tables):
+# one share per child (`pooled`, `mean_of_ratios`, `smoothed`) or one per horizon period
+# (`seasonal`, `forecast_proportions`).
+ShareMethod = Literal["pooled", "mean_of_ratios", "smoothed", "seasonal", "forecast_proportions"]
+PER_PERIOD_METHODS = ("seasonal", "forecast_proportions")
+# `seasonal`: years of history read for each period of the year, when the class gives none.
+# Three: each period of the year then rests on three observations (two on a two-year
+# history); common practice, no source.
+DEFAULT_SEASONAL_YEARS = 3
 # `auto`: the backtest picks the strategy per class (pipelines.stages.backtest).
 ForecastGrain = Literal["product_site", "product_site_customer", "auto"]
 ModelName = Literal[
@@ -175,6 +183,21 @@ class ProductClassConfig(Frozen):
         description="longer windows tried in order when a parent has no volume in its window; "
         "after them, an even split over the active children",
     )
+    smoothing: float | None = Field(
+        None,
+        description="method smoothed only (required there): the smoothing constant alpha of "
+        "p_t = alpha x y_t / Y_t + (1 - alpha) x p_(t-1), 0 < alpha <= 1",
+    )
+    seasonal_years: int | None = Field(
+        None,
+        description=f"method seasonal only: years of history pooled per period of the year "
+        f"(1 to 10; default {DEFAULT_SEASONAL_YEARS})",
+    )
+    seasonal_band: int | None = Field(
+        None,
+        description="method seasonal only: neighbouring periods of the year pooled on each side "
+        "of the period (0 to 4; default 0 = the period of the year alone)",
+    )
     forecast_grain: ForecastGrain = "product_site"
     models: ModelChoice = ModelChoice()
     outliers: OutlierConfig | None = Field(
@@ -194,6 +217,44 @@ class ProductClassConfig(Frozen):
                 )
             previous = w
         return self
+
+    @field_validator("smoothing", "seasonal_years", "seasonal_band")
+    @classmethod
+    def _method_key_range(cls, v: float | None, info: ValidationInfo) -> float | None:
+        if v is None:
+            return v
+        inside, valid = {
+            "smoothing": (0 < v <= 1, "greater than 0 and at most 1 (0 < alpha <= 1, e.g. 0.2)"),
+            "seasonal_years": (1 <= v <= 10, "a whole number of years from 1 to 10"),
+            "seasonal_band": (0 <= v <= 4, "0 to 4 neighbouring periods on each side"),
+        }[info.field_name]
+        if not inside:
+            raise ValueError(f"{info.field_name} must be {valid}")
+        return v
+
+    @model_validator(mode="after")
+    def _method_keys(self) -> ProductClassConfig:
+        # a key of another method is refused rather than ignored: it would otherwise look like it acts
+        owners = {"smoothing": "smoothed", "seasonal_years": "seasonal", "seasonal_band": "seasonal"}
+        for key, method in owners.items():
+            if getattr(self, key) is not None and self.method != method:
+                raise ValueError(
+                    f"{key} applies only to method {method!r}, but method is {self.method!r}; "
+                    f"remove {key} or set method: {method}"
+                )
+        if self.method == "smoothed" and self.smoothing is None:
+            raise ValueError("method 'smoothed' needs smoothing, the constant alpha with 0 < alpha <= 1 (e.g. smoothing: 0.2)")
+        return self
+
+    @property
+    def years(self) -> int:
+        """Years of history pooled per period of the year (method seasonal)."""
+        return self.seasonal_years if self.seasonal_years is not None else DEFAULT_SEASONAL_YEARS
+
+    @property
+    def band(self) -> int:
+        """Neighbouring periods of the year pooled on each side (method seasonal)."""
+        return self.seasonal_band or 0
 
     @property
     def longest_window(self) -> int:

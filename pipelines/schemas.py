@@ -29,6 +29,10 @@ LIFECYCLE_RULES = (
     "successor_history_mapped",
 )
 FALLBACKS = ("none", "longer_window", "even")
+SHARE_METHODS = ("pooled", "mean_of_ratios", "smoothed", "seasonal", "forecast_proportions")
+# what the established children's weights of a parent came from in a horizon period
+# (reinitialized_target `share_basis`; pipelines.stages.share_tables.period_basis)
+SHARE_BASES = ("history_share", "period_of_year", "children_forecast", "pooled_fallback")
 # how a child's share is set over the horizon (share table `lifecycle_rule`)
 SHARE_RULES = ("none", "phase_in", "phase_out", "reference", "initial_share", "awaiting_history")
 # why every share of a parent is 0 in a horizon period (`zero_share_reason`)
@@ -245,12 +249,19 @@ class ShareTable(LeafKeys):
     cycle_date: Series[DateTime] = pa.Field(description="first period of the cycle's horizon")
     product_class: Series[str] = pa.Field(description="product class")
     share: Series[float] = pa.Field(
-        ge=0, le=1, description="base share: child's fraction of its parent in a period where every child is active"
+        ge=0,
+        le=1,
+        description="base share: child's fraction of its parent in a period where every child is active "
+        "(per-period methods: from their pooled history_share)",
     )
     history_share: Series[float] = pa.Field(
-        ge=0, le=1, description="share from history over the established children, before the new-customer rules"
+        ge=0,
+        le=1,
+        description="share from history over the established children, before the new-customer rules; for the "
+        "per-period methods (seasonal, forecast_proportions) the pooled share over the window, which is their summary "
+        "here and their fallback in a period without a basis (the per-period basis is in reinitialized_target)",
     )
-    method: Series[str] = pa.Field(description="share method of the class")
+    method: Series[str] = pa.Field(isin=SHARE_METHODS, description="share method of the class")
     window: Series[int] = pa.Field(ge=1, description="configured window, periods")
     window_used: Series[int] = pa.Field(ge=0, description="window that gave volume (0 = even split)")
     window_start: Series[DateTime] = pa.Field(description="first period of the window used")
@@ -281,6 +292,12 @@ class ReinitializedTarget(LeafPeriod):
     parent_baseline: Series[float] = pa.Field(ge=0, description="parent's mean per period over the window used")
     zero_share_reason: Series[str] = pa.Field(
         nullable=True, isin=ZERO_SHARE_REASONS, description="why every share of the parent is 0 in this period (blank = they sum to 1)"
+    )
+    share_basis: Optional[Series[str]] = pa.Field(
+        isin=SHARE_BASES,
+        description="what the established children's weights of the parent came from in this period: history_share "
+        "(the share table's, every period alike), period_of_year (seasonal), children_forecast (forecast_proportions) "
+        "or pooled_fallback (a per-period method without a basis in this period: the pooled history share)",
     )
 
     class Config:

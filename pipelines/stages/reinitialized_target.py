@@ -7,8 +7,15 @@ For every child and every horizon period h:
 share_{j,h} being the child's share in period h: the base shares of the
 children active in h, renormalised over them (`share_tables.split_shares`;
 a child before its first or after its last active period has 0, and a
-reference keeps its whole share until its new customer starts). Per parent
-and period the shares sum to 1, or are all 0 with `zero_share_reason`:
+reference keeps its whole share until its new customer starts). The
+established children's weights in h are their history shares, or, for the
+per-period share methods `seasonal` and `forecast_proportions`, their basis
+of period h (`share_tables.period_basis`, computed here from the lifecycle
+history); every lifecycle rule applies on top of these weights. `share_basis`
+records per parent and period what the weights came from: `history_share`,
+`period_of_year`, `children_forecast`, or `pooled_fallback` where a per-period
+method had no basis in the period. Per parent and period the shares sum to 1,
+or are all 0 with `zero_share_reason`:
 
 - `product_not_active` - the product's own span does not cover the period;
 - `no_active_child` - no customer span covers it;
@@ -40,9 +47,9 @@ import pandas as pd
 from pipelines.calendar import horizon_starts, period_ordinal, span_bounds
 from pipelines.config import PlanningConfig
 from pipelines.keys import LEAF, PARENT, factorize, lookup
-from pipelines.stages.share_tables import reference_positions, shortage_periods, split_shares
+from pipelines.stages.share_tables import period_basis, reference_positions, shortage_periods, split_shares
 
-TARGET_COLUMNS = LEAF + ["period_start", "cycle_date", "target", "share", "parent_baseline", "zero_share_reason"]
+TARGET_COLUMNS = LEAF + ["period_start", "cycle_date", "target", "share", "parent_baseline", "zero_share_reason", "share_basis"]
 
 
 def parent_baselines(shares: pd.DataFrame, history: pd.DataFrame, config: PlanningConfig, cycle_date: pd.Timestamp) -> np.ndarray:
@@ -74,15 +81,22 @@ def parent_baselines(shares: pd.DataFrame, history: pd.DataFrame, config: Planni
 
 
 def period_shares(
-    shares: pd.DataFrame, config: PlanningConfig, cycle_date: pd.Timestamp, products: pd.DataFrame | None = None
-) -> tuple[np.ndarray, np.ndarray]:
-    """(share (n, horizon), zero_share_reason (n, horizon), None where shares sum to 1) per share-table row.
+    shares: pd.DataFrame,
+    config: PlanningConfig,
+    cycle_date: pd.Timestamp,
+    products: pd.DataFrame | None = None,
+    history: pd.DataFrame | None = None,
+    horizon: int | None = None,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(share, zero_share_reason (None where shares sum to 1), share_basis), each (n, H), per share-table row.
 
     products: the product master, to tell `product_not_active` from
     `no_active_child` (without it, every product counts as active).
+    history: the lifecycle history, needed by the per-period share methods
+    (`share_tables.period_basis`). horizon: H, default the calendar's.
     """
     period = config.calendar.period
-    starts = horizon_starts(cycle_date, config.calendar.horizon, period)
+    starts = horizon_starts(cycle_date, horizon or config.calendar.horizon, period)
     h_ord = period_ordinal(starts, period)
     first = period_ordinal(pd.DatetimeIndex(shares["first_active_period"]), period)
     last = period_ordinal(pd.DatetimeIndex(shares["last_active_period"]), period)
@@ -90,10 +104,11 @@ def period_shares(
     parent_code, parents = factorize(shares, PARENT)
     n_parents = len(parents)
     rule = shares["lifecycle_rule"].to_numpy(object)
+    weight, basis = period_basis(shares, history, config, cycle_date, len(starts))
     share, all_zero = split_shares(
         parent_code,
         n_parents,
-        shares["history_share"].to_numpy(float),
+        weight,
         rule,
         reference_positions(shares),
         shares["scale"].to_numpy(float),
@@ -119,7 +134,7 @@ def period_shares(
         "no_share_among_active",
     ).astype(object)
     reason[~all_zero] = None
-    return share, reason[parent_code]
+    return share, reason[parent_code], basis
 
 
 def reinitialize_target(
@@ -135,7 +150,7 @@ def reinitialize_target(
     h = len(starts)
     shares = shares.reset_index(drop=True)
     baseline = parent_baselines(shares, history, config, cycle_date)
-    share, reason = period_shares(shares, config, cycle_date, products)
+    share, reason, basis = period_shares(shares, config, cycle_date, products, history)
     out = shares[LEAF].loc[shares.index.repeat(h)].reset_index(drop=True)
     out["period_start"] = np.tile(starts.values, len(shares))
     out["cycle_date"] = cycle_date
@@ -143,6 +158,7 @@ def reinitialize_target(
     out["parent_baseline"] = np.repeat(baseline, h)
     out["target"] = out["share"].to_numpy() * out["parent_baseline"].to_numpy()
     out["zero_share_reason"] = reason.ravel()
+    out["share_basis"] = basis.ravel()
     return out[TARGET_COLUMNS]
 
 
