@@ -20,6 +20,8 @@ PeriodKind = Literal["week", "month"]
 # one share per child (`pooled`, `mean_of_ratios`, `smoothed`) or one per horizon period
 # (`seasonal`, `forecast_proportions`).
 ShareMethod = Literal["pooled", "mean_of_ratios", "smoothed", "seasonal", "forecast_proportions"]
+# a named share basis of a measure: the history methods that need no further keys
+BasisShareMethod = Literal["pooled", "mean_of_ratios"]
 PER_PERIOD_METHODS = ("seasonal", "forecast_proportions")
 # `seasonal`: years of history read for each period of the year, when the class gives none.
 # Three: each period of the year then rests on three observations (two on a two-year
@@ -296,7 +298,7 @@ class ShareBasisConfig(Frozen):
     """
 
     window: int = Field(ge=1, description="history window of this share table, in periods")
-    method: ShareMethod = "pooled"
+    method: BasisShareMethod = "pooled"
     fallback_windows: tuple[int, ...] = Field(
         (),
         description="longer windows tried in order when a parent has no volume in the window; "

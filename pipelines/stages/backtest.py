@@ -45,6 +45,7 @@ from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
 from pipelines.schemas import BENCHMARK
 from pipelines.stages.accuracy import mase_scale
 from pipelines.stages.hierarchy import NEEDS_RESIDUALS, coherent_forecasts, parent_sums
+from pipelines.stages.reinitialized_target import period_shares
 from pipelines.stages.share_tables import compute_shares
 from pipelines.stages.statistical_forecast import GRAIN_STRATEGY, base_forecasts, run_model_groups, series_grid
 
@@ -146,7 +147,8 @@ def run_backtest(
         base = base_forecasts(p_grid, c_grid, parent_class, child_class, {c: driver for c in classes}, config, h, log, timer)
         shares = compute_shares(history, children, config, origin_date)
         share_lookup = lookup(children, LEAF, shares)
-        basis = np.repeat(shares["share"].to_numpy(float)[share_lookup][:, None], h, axis=1)
+        # the period shares the cycle would split by (per-period methods differ from the base share)
+        basis = period_shares(shares, config, origin_date, None, history, horizon=h)[0][share_lookup]
         leaf_actual = _dense(ccode, ords, qty, n_children, o, h)
         parent_actual = parent_sums(leaf_actual, parent_of_child, n_parents)
         scale = {"leaf": _scales(c_grid, child_class, config), "parent": _scales(p_grid, parent_class, config)}

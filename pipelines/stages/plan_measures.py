@@ -265,7 +265,7 @@ def share_basis_tables(
         classes = {c: pc.model_copy(update=own) for c, pc in config.product_classes.items()}
         basis_config = config.model_copy(update={"product_classes": classes})
         table = compute_shares(history, children, basis_config, cycle_date)
-        share, _ = period_shares(table, basis_config, cycle_date, products)
+        share = period_shares(table, basis_config, cycle_date, products, history)[0]
         frame = table[LEAF].loc[table.index.repeat(len(starts))].reset_index(drop=True)
         frame["period_start"] = np.tile(starts.values, len(table))
         frame["share"] = share.ravel()
