@@ -17,6 +17,7 @@ import numpy as np
 import pandas as pd
 
 from pipelines.config import PlanningConfig, load_config
+from pipelines.errors import PlanningError
 from pipelines.partitions import split_key
 
 DEFAULT_CONFIG = "config/planning.yaml"
@@ -31,6 +32,10 @@ class PlanningConfigResource(dg.ConfigurableResource):
     @cached_property
     def config(self) -> PlanningConfig:
         return load_config(self.path or os.environ.get(CONFIG_ENV, DEFAULT_CONFIG))
+
+
+class StoreError(PlanningError):
+    """The store cannot give what was asked (a table of an older layout)."""
 
 
 PARTITION_CYCLE = "partition_cycle"
@@ -205,6 +210,12 @@ def read_table(
                 clauses.append(f'"{name}" = ?')
                 params.append(value)
         if PARTITION_CYCLE not in columns:
+            if cycle is not None or product_class is not None:
+                # written by a release before partitions: its rows name no cycle or class, so none can be picked
+                raise StoreError(
+                    f"table {table!r} in the store {store} was written before cycles and classes were kept apart; "
+                    f"run the whole cycle once (python -m pipelines cycle) to rewrite it"
+                )
             return con.execute(f'SELECT * FROM "{table}"').df()
         keep = [c for c in columns if c not in PARTITION_COLUMNS or (with_partition and c != PARTITION_ROW)]
         select = ", ".join(f'"{c}"' for c in keep)

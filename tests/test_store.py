@@ -9,7 +9,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from pipelines.resources import PARTITION_CLASS, PARTITION_CYCLE, PARTITION_ROW, read_table, stored_cycles, write_partition
+from pipelines.resources import PARTITION_CLASS, PARTITION_CYCLE, PARTITION_ROW, StoreError, read_table, stored_cycles, write_partition
 
 
 def _frame(cycle, product_class, values, text=None):
@@ -71,6 +71,9 @@ def test_a_table_from_before_partitions_is_replaced(tmp_path):
     store = tmp_path / "s.duckdb"
     with duckdb.connect(str(store)) as con:
         con.execute("CREATE TABLE t AS SELECT 1 AS value, 'old' AS label")
+    # until it is rewritten, no partition can be picked out of it: the rows name none
+    with pytest.raises(StoreError, match="written before cycles and classes were kept apart"):
+        read_table(store, "t", cycle="2026-11-30", product_class="a")
     _write(store, "2026-11-30", "a", [9.0])
     assert read_table(store, "t", with_partition=True).to_dict("records") == [
         {PARTITION_CYCLE: "2026-11-30", PARTITION_CLASS: "a", "value": 9.0, "label": "r0"}
