@@ -52,9 +52,10 @@ PINS_EXCEED_PARENT = "pins_exceed_parent"
             PINS_EXCEED_PARENT,
             asset=PLAN_MEASURES,
             blocking=False,
-            description="Lists the parent periods whose pins take more than the parent holds (with pins.on_overflow: warn): "
-            "the pins are kept, the other customers get 0, and the customers sum to the pins, not to the parent. A warning, "
-            "not a stop: lower the listed pins or raise the parent value if the parent should hold.",
+            description="Warns when pins take more than their parent holds (with pins.on_overflow: warn), listing the "
+            "parent periods: the pins are kept, the other customers get 0, and the customers sum to the pins, not to the "
+            "parent. When it fires (a warning, not a stop): lower the listed pins or raise the parent value if the parent "
+            "should hold.",
         ),
     ],
     description="Every measure of the plan (config measures) at product x site x customer, one row per customer, period "

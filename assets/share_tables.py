@@ -32,10 +32,10 @@ FALLBACK_CHECK_TEXT = (
             NEW_CUSTOMER_WITHOUT_SHARE,
             asset=SHARE_TABLES,
             blocking=False,
-            description="Lists new customers (fewer periods of own history than lifecycle.min_history_periods) that "
-            "have neither a reference_customer nor an initial_share, so they get no share until they have that much "
-            "history. A warning, not a stop: give the listed spans a reference_customer or an initial_share in "
-            "customer_spans if their volume should be planned now.",
+            description="Warns when a new customer (fewer periods of own history than lifecycle.min_history_periods) "
+            "has neither a reference_customer nor an initial_share, so it gets no share until it has that much "
+            "history; the rows list them. When it fires (a warning, not a stop): give the listed spans a "
+            "reference_customer or an initial_share in customer_spans if their volume should be planned now.",
         ),
         dg.AssetCheckSpec(FALLBACK_SHARE_WITHIN_LIMIT, asset=SHARE_TABLES, blocking=False, description=FALLBACK_CHECK_TEXT),
     ],
