@@ -1,8 +1,9 @@
 """Time and size every stage of the weekly cycle on a synthetic hierarchy.
 
     .venv/bin/python benchmarks/cycle.py --leaves 10000 [--seed 7] [--periods 156] [--horizon 26]
-        [--stages raw,clean,lifecycle,shares,target,forecast,reconcile] [--seasonal]
-        [--leaf-grain CLASS] [--shortage-rule exclude|fill_baseline] [--no-shortages] [--csv]
+        [--stages raw,clean,lifecycle,shares,target,forecast,reconcile,plan,drift,report] [--seasonal]
+        [--leaf-grain CLASS] [--share-method pooled|mean_of_ratios|smoothed|seasonal|forecast_proportions]
+        [--shortage-rule exclude|fill_baseline] [--no-shortages] [--csv]
         [--store [PATH]] [--no-validate] [--trace rerun|inline|off] [--no-warmup]
         [--rss-sample-ms MS] [--json PATH]
 
@@ -12,13 +13,23 @@ history: smooth and intermittent series, seasonal ones in one class, late
 starters, phased-out customers, new customers with a reference customer,
 retired products with a successor, outliers, split lines, returns (a few that
 outweigh the week), exact duplicate lines, a few bad lines and recorded supply
-shortages (passed to `clean_history`). The lines are
+shortages (passed to `clean_history`), and the planner input of the plan's
+measures: a list price on every parent and week, promotion uplifts and
+planner adjustments on a few percent of parent x weeks, a handful of pins. The
+lines are
 raw text, as `load_raw_history` delivers them (`--csv` writes them to CSV files
 in a temporary folder and times the real loader on them).
 
 Then the pure stage functions run in the order of the asset graph, each stage
 output validated with its pandera model as the assets do (`validate ...`
-lines) and the assets' rule checks run (`checks ...` lines). Columns:
+lines) and the assets' rule checks run (`checks ...` lines): after the
+reconciliation the plan's measures (`share_basis_tables`, `plan_measures`,
+with the measures of config/planning.yaml), the share drift against a share
+table computed at the cycle date minus one period (outside the total: the
+cycle reads it from the store) and one `parent_chart` and `share_chart` per
+product class. `--share-method` sets every class's share method, so the
+per-period methods' cost shows in the target step (`forecast_proportions`
+forecasts every established child there with statsforecast). Columns:
 
     wall s    wall time of the step (untraced run)
     sf s      of that, time inside StatsForecast.forecast (wrapped in this process only);
@@ -79,16 +90,20 @@ from statsforecast import models as sfm  # noqa: E402
 
 from pipelines import schemas as S  # noqa: E402
 from pipelines.config import PlanningConfig, ProductClassConfig, parse_config  # noqa: E402
+from pipelines.calendar import shift_periods  # noqa: E402
 from pipelines.stages import reconciliation as rec  # noqa: E402
+from pipelines.stages import report  # noqa: E402
 from pipelines.stages.cleaned_history import clean_history, cycle_calendar, find_unexplained_changes, line_accounting  # noqa: E402
 from pipelines.stages.lifecycle_history import active_children, apply_lifecycle  # noqa: E402
+from pipelines.stages.plan_measures import find_pins_not_kept, find_sum_violations, plan_measures, plan_totals, share_basis_tables  # noqa: E402
 from pipelines.stages.raw_history import load_raw_history  # noqa: E402
 from pipelines.stages.reinitialized_target import parents_with_mix_change, reinitialize_target  # noqa: E402
+from pipelines.stages.share_drift import drifted_beyond, share_drift  # noqa: E402
 from pipelines.stages.share_tables import compute_shares, find_new_customers_without_share  # noqa: E402
 from pipelines.stages import statistical_forecast as SF  # noqa: E402
 from pipelines.stages.statistical_forecast import forecast_cycle, model_label  # noqa: E402
 
-STAGES = ("raw", "clean", "lifecycle", "shares", "target", "forecast", "reconcile")
+STAGES = ("raw", "clean", "lifecycle", "shares", "target", "forecast", "reconcile", "plan", "drift", "report")
 CLASSES = ("fast", "seasonal", "slow")
 PREFIX = np.array(["FST-", "SEA-", "SLW-"])
 CLASS_MIX = (0.5, 0.25, 0.25)
@@ -106,6 +121,8 @@ class Scenario:
     products: pd.DataFrame
     spans: pd.DataFrame
     shortages: pd.DataFrame
+    adjustments: pd.DataFrame
+    pins: pd.DataFrame
     facts: dict[str, Any]
 
 
@@ -167,7 +184,7 @@ def _layout(rng: np.random.Generator, n_leaves: int) -> dict[str, np.ndarray]:
     }
 
 
-def generate(n_leaves: int, seed: int, periods: int, csv_folder: Path | None = None) -> Scenario:
+def generate(n_leaves: int, seed: int, periods: int, csv_folder: Path | None = None, horizon: int = 26) -> Scenario:
     rng = np.random.default_rng(seed)
     P = periods
     first_week = CYCLE_DATE - np.timedelta64(7 * P, "D")
@@ -360,6 +377,9 @@ def generate(n_leaves: int, seed: int, periods: int, csv_folder: Path | None = N
             "period_start": np.datetime_as_string(week_day[sw] + rng.integers(0, 7, len(sp)).astype("timedelta64[D]"), unit="D").astype(object),
         }
     )
+    # planner input of plan_measures, drawn last so the history above does not depend on it
+    safe = plain & ~ends_in_horizon & ~future  # active in every horizon period: pins land on them
+    adjustments, pins = _plan_inputs(rng, lay, n_par, successor, safe, prod_code, site_code, cust_code, horizon)
     facts = {
         "leaves": n,
         "parents": int(lay["leaf_par"][-1]) + 1,
@@ -378,13 +398,109 @@ def generate(n_leaves: int, seed: int, periods: int, csv_folder: Path | None = N
         "duplicate_lines": int(dup.sum()),
         "bad_lines": n_bad_lines,
         "shortage_records": len(shortages),
+        "adjustment_rows": len(adjustments),
+        "pins": len(pins),
     }
+    master = {"products": products, "spans": spans, "shortages": shortages, "adjustments": adjustments, "pins": pins, "facts": facts}
     if csv_folder is None:
-        return Scenario(raw=lines, folder=None, lines=len(lines), products=products, spans=spans, shortages=shortages, facts=facts)
+        return Scenario(raw=lines, folder=None, lines=len(lines), **master)
     csv_folder.mkdir(parents=True, exist_ok=True)
     for name, part in lines.groupby("source_file", sort=True):
         part.drop(columns=["source_file", "source_row"]).to_csv(csv_folder / name, index=False, lineterminator="\n")
-    return Scenario(raw=None, folder=csv_folder, lines=len(lines), products=products, spans=spans, shortages=shortages, facts=facts)
+    return Scenario(raw=None, folder=csv_folder, lines=len(lines), **master)
+
+
+ADJUSTED_SHARE = 0.03  # of parent x horizon weeks, per additive measure
+
+
+def _plan_inputs(
+    rng: np.random.Generator,
+    lay: dict[str, np.ndarray],
+    n_par: int,
+    successor: np.ndarray,
+    safe: np.ndarray,
+    prod_code: np.ndarray,
+    site_code: np.ndarray,
+    cust_code: np.ndarray,
+    horizon: int,
+) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """The adjustments and pins inputs, as the loaders deliver them (text dates, numeric values).
+
+    Adjustments, at product x site per horizon week, on the parents of products
+    that are not retired: `list_price` on every parent and week (one price per
+    product, a tenth of the products changing it once in the horizon);
+    `promotion_uplift` (10-400 units) and `planner_adjustment` (-60 to 300
+    units, not multiples of its pack of 5) on ADJUSTED_SHARE of parent x weeks
+    each. Pins: a handful per measure (max(4, leaves / 10,000)) on leaves
+    active in the whole horizon, dated on a Wednesday inside the week: list
+    price 5 % under the parent's, statistical forecast 1 unit, and on parents
+    with a positive adjustment of that week 1 unit of promotion_uplift / one
+    pack (5) of planner_adjustment.
+    """
+    H = horizon
+    week = (CYCLE_DATE + 7 * np.arange(H).astype("timedelta64[D]")).astype("datetime64[D]")
+    week_text = np.datetime_as_string(week, unit="D").astype(object)
+    par_prod = lay["par_prod"][:n_par]
+    live = successor[par_prod] < 0  # a retired product's parents get no plan input
+    par = np.flatnonzero(live)
+    n_prod = len(successor)
+    price = np.round(rng.uniform(2.0, 80.0, n_prod), 2)
+    changes = rng.random(n_prod) < 0.1
+    change_week = rng.integers(1, max(2, H), n_prod)
+    new_price = np.round(price * rng.uniform(0.85, 1.1, n_prod), 2)
+    p_par, p_week = np.repeat(par, H), np.tile(np.arange(H), len(par))
+    pp = par_prod[p_par]
+    p_value = np.where(changes[pp] & (p_week >= change_week[pp]), new_price[pp], price[pp])
+    cells = len(par) * H
+    picked = {}
+    for name, low, high in (("promotion_uplift", 10, 401), ("planner_adjustment", -60, 301)):  # two measures
+        cell = np.flatnonzero(rng.random(cells) < ADJUSTED_SHARE)
+        picked[name] = (par[cell // H], cell % H, rng.integers(low, high, len(cell)).astype(float))
+    parts = [("list_price", p_par, p_week, p_value), *[(k, *v) for k, v in picked.items()]]
+    adjustments = pd.DataFrame(
+        {
+            "measure": np.concatenate([np.full(len(a), k, dtype=object) for k, a, _, _ in parts]),
+            "product": prod_code[par_prod[np.concatenate([a for _, a, _, _ in parts])]],
+            "site": site_code[lay["par_site"][np.concatenate([a for _, a, _, _ in parts])]],
+            "period_start": week_text[np.concatenate([w for _, _, w, _ in parts])],
+            "value": np.concatenate([v for _, _, _, v in parts]),
+        }
+    )
+
+    # pins: the first leaf of a parent that is active in the whole horizon
+    leaf_par = lay["leaf_par"]
+    ok = np.flatnonzero(safe & live[leaf_par])
+    first_safe = np.full(n_par, -1)
+    first_safe[leaf_par[ok][::-1]] = ok[::-1]
+    k = max(4, len(leaf_par) // 10_000)
+    pin_rows = []
+    with_leaf = np.flatnonzero(first_safe >= 0)
+    for name in ("list_price", "statistical_forecast"):  # per measure: leaf, week, value
+        if not len(with_leaf):
+            break
+        pick = rng.choice(with_leaf, size=min(k, len(with_leaf)), replace=False)
+        w = rng.integers(0, H, len(pick))
+        pp = par_prod[pick]
+        value = np.round(np.where(changes[pp] & (w >= change_week[pp]), new_price[pp], price[pp]) * 0.95, 2) if name == "list_price" else np.ones(len(pick))
+        pin_rows.append((name, first_safe[pick], w, value))
+    for name, pin in (("promotion_uplift", 1.0), ("planner_adjustment", 5.0)):
+        a_par, a_week, a_value = picked[name]
+        cand = np.flatnonzero((a_value >= 20) & (first_safe[a_par] >= 0))
+        pick = rng.choice(cand, size=min(k, len(cand)), replace=False) if len(cand) else cand
+        pin_rows.append((name, first_safe[a_par[pick]], a_week[pick], np.full(len(pick), pin)))
+    leaf = np.concatenate([r[1] for r in pin_rows]).astype(np.int64)
+    pin_day = week[np.concatenate([r[2] for r in pin_rows]).astype(np.int64)] + np.timedelta64(2, "D")  # a Wednesday
+    pins = pd.DataFrame(
+        {
+            "product": prod_code[par_prod[leaf_par[leaf]]],
+            "site": site_code[lay["par_site"][leaf_par[leaf]]],
+            "customer": cust_code[lay["leaf_cust"][leaf]],
+            "period_start": np.datetime_as_string(pin_day, unit="D").astype(object),
+            "measure": np.concatenate([np.full(len(r[1]), r[0], dtype=object) for r in pin_rows]),
+            "value": np.concatenate([r[3] for r in pin_rows]).astype(float),
+        }
+    )
+    return adjustments, pins
 
 
 def make_config(
@@ -395,12 +511,17 @@ def make_config(
     shortage_rule: str | None = None,
     seasonal_model: str = "auto_ets",
     class_outliers: bool = True,
+    share_method: str | None = None,
 ) -> PlanningConfig:
     """Three classes like config/planning.yaml, at fixed grains (no backtest), non-seasonal unless `seasonal`.
 
     With `class_outliers` (and a config that has them) the classes carry the
     shipped config's own outlier rules: Tukey (window 25, fence 3) on
-    `seasonal`, none on `slow`, the Hampel default on `fast`.
+    `seasonal`, none on `slow`, the Hampel default on `fast`. `share_method`
+    sets every class's share method (smoothing 0.1 for `smoothed`; None keeps
+    pooled / mean_of_ratios / pooled). The share basis and the measures are
+    the shipped config's (`promotions_52w`; statistical_forecast, list_price,
+    promotion_uplift, planner_adjustment), pins.on_overflow warn.
     """
 
     def windows(window: int, fallbacks: list[int]) -> dict:
@@ -415,6 +536,11 @@ def make_config(
         "seasonal": {**windows(52, [104]), "method": "mean_of_ratios", "models": seasonal_models},
         "slow": {**windows(104, [156]), "method": "pooled", "models": {"smooth": "ses", "erratic": "ses"}},
     }
+    if share_method:
+        for pc in classes.values():
+            pc["method"] = share_method
+            if share_method == "smoothed":
+                pc["smoothing"] = SMOOTHING
     if class_outliers and "outliers" in ProductClassConfig.model_fields:
         classes["seasonal"]["outliers"] = {"rule": "tukey", "window": 25, "fence": 3.0, "replace_with": "limit", "sides": "upper"}
         classes["slow"]["outliers"] = {"rule": "none"}
@@ -423,7 +549,21 @@ def make_config(
     data: dict[str, Any] = {"calendar": {"horizon": horizon}, "product_classes": classes}
     if shortage_rule:
         data["cleansing"] = {"shortages": shortage_rule}
+    if "measures" in PlanningConfig.model_fields:
+        data["share_bases"] = {"promotions_52w": {**windows(52, [104]), "method": "pooled"}}
+        data["measures"] = MEASURES
+        data["pins"] = {"on_overflow": "warn"}
     return parse_config(data)
+
+
+SHARE_METHODS = ("pooled", "mean_of_ratios", "smoothed", "seasonal", "forecast_proportions")
+SMOOTHING = 0.1
+MEASURES = {  # as config/planning.yaml has them
+    "statistical_forecast": {"parent_values": "parent_forecast", "rule": "pro_rata", "basis": {"kind": "reinitialized_target"}},
+    "list_price": {"rule": "replicate"},
+    "promotion_uplift": {"rule": "pro_rata", "basis": {"kind": "share_table", "name": "promotions_52w"}, "integer": {"pack_size": 1}},
+    "planner_adjustment": {"rule": "pro_rata", "basis": {"kind": "measure", "name": "statistical_forecast"}, "integer": {"pack_size": 5}},
+}
 
 
 # =================================================================== measuring
@@ -744,9 +884,12 @@ def run_cycle(args: argparse.Namespace) -> dict:
     validate_on = not args.no_validate
     takes_shortages = "shortages" in inspect.signature(clean_history).parameters
     config = make_config(args.periods, args.horizon, args.seasonal, args.leaf_grain, args.shortage_rule if takes_shortages else None,
-                         seasonal_model=args.seasonal_model, class_outliers=not args.default_outliers)
+                         seasonal_model=args.seasonal_model, class_outliers=not args.default_outliers, share_method=args.share_method)
+    # forecast_proportions forecasts every established child (statsforecast) inside reinitialize_target
+    target_sf = any(pc.method == "forecast_proportions" for pc in config.product_classes.values())
     print(f"apportion cycle benchmark: {args.leaves:,} leaves, seed {args.seed}, {args.periods} weekly periods, horizon {args.horizon}, "
-          f"seasonal={args.seasonal_model if args.seasonal else 'off'}, leaf grain={args.leaf_grain or '-'}, tracemalloc={args.trace}, "
+          f"seasonal={args.seasonal_model if args.seasonal else 'off'}, leaf grain={args.leaf_grain or '-'}, "
+          f"share method={args.share_method or 'per class'}, tracemalloc={args.trace}, "
           f"commit {(git_commit() or '?')[:8]}")
     print(HEADER)
     print(UNITS)
@@ -754,7 +897,7 @@ def run_cycle(args: argparse.Namespace) -> dict:
 
     tmp = tempfile.TemporaryDirectory(prefix="apportion-bench-")
     csv_folder = Path(tmp.name) / "inputs" if args.csv else None
-    scen = bench.run("generate (not timed)", lambda: generate(args.leaves, args.seed, args.periods, csv_folder),
+    scen = bench.run("generate (not timed)", lambda: generate(args.leaves, args.seed, args.periods, csv_folder, args.horizon),
                      rows_in=args.leaves, rows_out=lambda s: s.lines, in_total=False, trace=False,
                      note=lambda s: f"{s.facts['parents']:,} parents, {s.facts['products']:,} products")
     con = None
@@ -784,7 +927,7 @@ def run_cycle(args: argparse.Namespace) -> dict:
         names = ", ".join(m.__name__ for _, m in pairs)
         return bench.run(f"  validate {stage}", lambda: [m.validate(df, lazy=True) for df, m in pairs], rows_in=rows, note=lambda _: names)
 
-    if not args.no_warmup and "forecast" in todo:
+    if not args.no_warmup and ("forecast" in todo or (target_sf and "target" in todo)):
         bench.run("warm-up numba (not in total)", lambda: warm_up(config, args.horizon), in_total=False, trace=False)
         bench.sf_calls.clear()
         bench.sf_seconds = 0.0
@@ -852,7 +995,9 @@ def run_cycle(args: argparse.Namespace) -> dict:
 
     # 5. target
     target = bench.run("target: reinitialize_target", lambda: reinitialize_target(shares, history, config, cycle_date, products),
-                       rows_in=len(shares), rows_out=len)
+                       rows_in=len(shares), rows_out=len, sf=target_sf,
+                       note=lambda t: "share basis " + ", ".join(f"{k} {v:,}" for k, v in t["share_basis"].value_counts().items())
+                       if target_sf or args.share_method == "seasonal" else "")
     (target,) = validate("target", [(target, S.ReinitializedTarget)])
     bench.run("  checks target", lambda: parents_with_mix_change(target, shares), rows_in=len(target),
               note=lambda r: f"parents with mix change {len(r):,}")
@@ -888,12 +1033,85 @@ def run_cycle(args: argparse.Namespace) -> dict:
 
     bench.run("  checks reconcile", checks, rows_in=len(leaf), note=lambda r: ", ".join(f"{k} {len(v)}" for k, v in r.items()))
     store("reconciliation", table)
-    scen.facts["raw_lines"] = raw_rows
-    if con is not None:
-        con.close()
-    out = finish(bench, args, scen)
-    tmp.cleanup()
-    return out
+    del table
+
+    def done() -> dict:
+        scen.facts["raw_lines"] = raw_rows
+        if con is not None:
+            con.close()
+        out = finish(bench, args, scen)
+        tmp.cleanup()
+        return out
+
+    if "plan" not in todo:
+        return done()
+
+    # 8. plan measures, as the asset calls them: the share bases over active_children, then the split
+    adjustments, pins = validate("plan inputs", [(scen.adjustments, S.Adjustments), (scen.pins, S.Pins)])
+    config.check_share_bases_fit(int(cal["history_periods"].iloc[0]))
+    bases = bench.run("plan: share_basis_tables", lambda: share_basis_tables(history, active_children(spans, products, history, config, cycle_date),
+                                                                             products, config, cycle_date),
+                      rows_in=len(history), rows_out=lambda b: sum(len(f) for f in b.values()),
+                      note=lambda b: "; ".join(f"{k}: fallback " + ", ".join(f"{f} {c:,}" for f, c in v.drop_duplicates(["product", "site"])["fallback"]
+                                                                             .value_counts().items()) for k, v in b.items()))
+    pm = bench.run("plan: plan_measures", lambda: plan_measures(shares, parent, leaf, target, adjustments, pins, config, cycle_date, bases),
+                   rows_in=len(shares), rows_out=lambda r: len(r.plan),
+                   note=lambda r: f"{len(config.measures)} measures, parent rows {len(r.parents):,}, adjustment rows {len(adjustments):,}, "
+                   f"pins {len(r.pins_applied)} applied / {len(r.pins_not_applied)} not, overflowing parents {len(r.overflow)}")
+    (plan,) = validate("plan", [(pm.plan, S.PlanMeasures)])
+    bench.run("  checks plan", lambda: {"sum_violations": find_sum_violations(plan, pm.parents, config),
+                                        "pins_not_kept": find_pins_not_kept(plan, pm.pins_applied, pm.pins_not_applied),
+                                        "pins_exceed_parent": pm.overflow, "totals": plan_totals(plan, pm.parents)},
+              rows_in=len(plan), note=lambda r: ", ".join(f"{k} {len(v)}" for k, v in r.items() if k != "totals") + " (+ plan_totals)")
+    store("plan_measures", plan)
+    del plan, pm, bases, adjustments, pins
+    if "drift" not in todo:
+        return done()
+
+    # 9. share drift against the previous cycle's share table; the cycle reads that one from the store,
+    # so computing it here (at the cycle date minus one period) is outside the total
+    previous_cycle = shift_periods(cycle_date, -1, config.calendar.period)
+    previous = bench.run("  previous shares (not in total)",
+                         lambda: compute_shares(history, active_children(spans, products, history, config, previous_cycle), config, previous_cycle),
+                         rows_in=len(history), rows_out=len, in_total=False, trace=False, note=lambda _: f"cycle {previous_cycle:%Y-%m-%d}")
+    drift = bench.run("drift: share_drift", lambda: share_drift(shares, previous, f"{previous_cycle:%Y-%m-%d}"), rows_in=len(shares) + len(previous),
+                      rows_out=len, note=lambda d: ", ".join(f"{k} {v:,}" for k, v in d["status"].value_counts().items()))
+    (drift,) = validate("drift", [(drift, S.ShareDrift)])
+    threshold = config.monitoring.max_share_drift_pp
+    bench.run("  checks drift", lambda: drifted_beyond(drift, threshold), rows_in=len(drift),
+              note=lambda r: f"moved more than {threshold:g} pp {len(r):,}, largest {drift['abs_change_pp'].max():.2f} pp")
+    store("share_drift", drift)
+    del previous, drift
+    if "report" not in todo:
+        return done()
+
+    # 10. the cycle report's charts, one call of each per class on that class's rows (as the partitioned
+    # asset gets them; the slicing stands for the store read and is not timed); the HTML page reads the
+    # store and the Dagster instance and is not timed
+    folder = Path(tmp.name) / "reports"
+    folder.mkdir(parents=True, exist_ok=True)
+    period = config.calendar.period
+    files = []
+    for c in config.product_classes:  # three classes
+        in_class = set(products.loc[products["product_class"] == c, "product"])
+        h_c = history[history["product"].isin(in_class)]
+        pf_c = parent[parent["product_class"] == c]
+        t_c = target[target["product"].isin(in_class)]
+        s_c = shares[shares["product_class"] == c]
+        charts = {
+            "parents": bench.run(f"report: parent_chart {c}",
+                                 lambda h=h_c, f=pf_c, c=c: report.parent_chart(h, f, product_class=c, cycle_date=cycle_date, period=period),
+                                 rows_in=len(h_c), note=lambda png: f"{len(pf_c):,} parent forecast rows, PNG {len(png) / 1024:.0f} KiB"),
+            "shares": bench.run(f"report: share_chart {c}",
+                                lambda h=h_c, t=t_c, sh=s_c, c=c: report.share_chart(h, t, product_class=c, cycle_date=cycle_date, period=period, shares=sh),
+                                rows_in=len(h_c), note=lambda png: f"{len(t_c):,} target rows, PNG {len(png) / 1024:.0f} KiB"),
+        }
+        for kind, png in charts.items():
+            path = folder / report.chart_file_name(kind, c, cycle_date)
+            path.write_bytes(png)
+            files.append({"product_class": c, "kind": kind, "path": str(path), "bytes": len(png)})
+    validate("report", [(pd.DataFrame(files), S.CycleReportFiles)])
+    return done()
 
 
 def finish(bench: Bench, args: argparse.Namespace, scen: Scenario) -> dict:
@@ -943,6 +1161,8 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
                    "(default auto_ets; the shipped config uses ets_additive_season)")
     p.add_argument("--default-outliers", action="store_true", help="one Hampel rule for every class instead of the shipped per-class rules")
     p.add_argument("--leaf-grain", choices=CLASSES, default=None, help="forecast this class at product x site x customer grain")
+    p.add_argument("--share-method", choices=SHARE_METHODS, default=None,
+                   help=f"share method of every class (smoothed with smoothing {SMOOTHING}); default: pooled, mean_of_ratios, pooled per class")
     p.add_argument("--shortage-rule", choices=("exclude", "fill_baseline"), default="exclude", help="cleansing.shortages (default exclude)")
     p.add_argument("--no-shortages", action="store_true", help="do not pass the synthetic shortages table to clean_history")
     p.add_argument("--csv", action="store_true", help="write the lines to CSV files and time load_raw_history on them")
