@@ -1,15 +1,15 @@
 """Assets `cleaned_history`, `rejected_rows`, `history_corrections`, `cycle_calendar`."""
 
-from pathlib import Path
-
 import dagster as dg
 import pandas as pd
 
 from assets.common import markdown, rule_check, schema_check_spec, table_metadata, validate
+from pipelines.engines.report_charts import corrections_chart
 from pipelines.partitions import cycle_class_partitions, partition_config
 from pipelines.resources import PlanningConfigResource, report_folder
 from pipelines.schemas import CleanedHistory, CycleCalendar, HistoryCorrections, RejectedRows
-from pipelines.stages.cleaned_history import clean_history, cycle_calendar as make_cycle_calendar, find_unexplained_changes, line_accounting
+from pipelines.stages.cleaned_history import clean_history, find_unexplained_changes, line_accounting
+from pipelines.stages.cleaned_history import cycle_calendar as make_cycle_calendar
 
 CLEANED_HISTORY = "cleaned_history"
 REJECTED_ROWS = "rejected_rows"
@@ -24,29 +24,6 @@ REJECTED_CHECK_TEXT = (
     "it fires, correct the listed lines at their source (file and row are given) or the master data they miss, "
     "and rerun the cycle."
 )
-
-
-def corrections_picture(by_class_and_rule: pd.DataFrame, classes: list[str], shortage_periods: int, path: Path) -> Path:
-    """A small bar chart of the corrections per product class and rule, saved as PNG at `path`."""
-    import matplotlib
-
-    matplotlib.use("Agg")  # no display: files only
-    import matplotlib.pyplot as plt
-
-    table = by_class_and_rule.pivot_table(index="product_class", columns="rule", values="rows", aggfunc="sum", fill_value=0)
-    table = table.reindex(sorted(set(classes) | set(table.index)), fill_value=0)
-    fig, ax = plt.subplots(figsize=(7, 1.2 + 0.4 * max(len(table), 1)), dpi=100)
-    if len(table) and len(table.columns):
-        table.plot.barh(stacked=True, ax=ax, width=0.7)
-        ax.legend(title="rule", fontsize=8, title_fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0))
-    ax.set_xlabel("corrected periods")
-    ax.set_ylabel("")
-    ax.set_title(f"history corrections by class and rule; {shortage_periods} shortage periods flagged", fontsize=9)
-    fig.tight_layout()
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fig.savefig(path)
-    plt.close(fig)
-    return path
 
 
 @dg.multi_asset(
@@ -112,11 +89,10 @@ def cleaned_history(
         .reset_index()
     )
     short = result.shortage_periods
-    picture = corrections_picture(
-        by_rule_and_class,
-        list(result.outlier_rules.get("product_class", [])),
-        int(cleaned["shortage"].sum()),
-        report_folder(config) / f"cleansing_{next(iter(config.product_classes))}.png",
+    picture = report_folder(config) / f"cleansing_{next(iter(config.product_classes))}.png"
+    picture.parent.mkdir(parents=True, exist_ok=True)
+    picture.write_bytes(
+        corrections_chart(by_rule_and_class, list(result.outlier_rules.get("product_class", [])), int(cleaned["shortage"].sum()))
     )
     yield dg.Output(
         cleaned,

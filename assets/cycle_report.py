@@ -7,10 +7,10 @@ import pandas as pd
 
 from assets.common import schema_check_spec, table_metadata, validate
 from pipelines.cycle_report import REPORT_FILE, write_cycle_report
+from pipelines.engines import report_charts
 from pipelines.partitions import cycle_class_partitions, partition_config, split_key
 from pipelines.resources import PlanningConfigResource, report_folder
 from pipelines.schemas import CycleReportFiles
-from pipelines.stages import report
 
 CYCLE_REPORT = "cycle_report"
 
@@ -41,14 +41,14 @@ def cycle_report(
     folder.mkdir(parents=True, exist_ok=True)
     period = config.calendar.period
     pictures = {
-        "parents": report.parent_chart(lifecycle_history, parent_forecast, product_class=product_class, cycle_date=cycle, period=period),
-        "shares": report.share_chart(
+        "parents": report_charts.parent_chart(lifecycle_history, parent_forecast, product_class=product_class, cycle_date=cycle, period=period),
+        "shares": report_charts.share_chart(
             lifecycle_history, reinitialized_target, product_class=product_class, cycle_date=cycle, period=period, shares=share_tables
         ),
     }
     rows, images = [], {}
     for kind, png in pictures.items():
-        path = folder / report.chart_file_name(kind, product_class, cycle)
+        path = folder / report_charts.chart_file_name(kind, product_class, cycle)
         path.write_bytes(png)
         rows.append({"product_class": product_class, "kind": kind, "path": str(path), "bytes": len(png)})
         images[f"{kind}_chart"] = dg.MetadataValue.md(f"![{kind} of {product_class}, cycle {cycle}](data:image/png;base64,{base64.b64encode(png).decode()})")

@@ -11,7 +11,14 @@ from assets.common import schema_check_spec, table_metadata, validate
 from pipelines.partitions import cycle_class_partitions, partition_config
 from pipelines.resources import PlanningConfigResource
 from pipelines.schemas import Adjustments, CustomerSpans, Pins, Products, Shortages
-from pipelines.stages.master_data import class_rows, load_adjustments, load_customer_spans, load_pins, load_products, load_shortages
+from pipelines.stages.master_data import (
+    class_rows,
+    load_adjustments,
+    load_customer_spans,
+    load_pins,
+    load_products,
+    load_shortages,
+)
 
 PRODUCTS = "products"
 CUSTOMER_SPANS = "customer_spans"

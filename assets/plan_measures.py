@@ -8,13 +8,8 @@ from pipelines.partitions import cycle_class_partitions, partition_config
 from pipelines.resources import PlanningConfigResource
 from pipelines.schemas import PlanMeasures
 from pipelines.stages.lifecycle_history import active_children
-from pipelines.stages.plan_measures import (
-    find_pins_not_kept,
-    find_sum_violations,
-    plan_measures as split_plan_measures,
-    plan_totals,
-    share_basis_tables,
-)
+from pipelines.stages.plan_measures import find_pins_not_kept, find_sum_violations, plan_totals, share_basis_tables
+from pipelines.stages.plan_measures import plan_measures as split_plan_measures
 
 PLAN_MEASURES = "plan_measures"
 MEASURES_SUM_TO_PARENT = "measures_sum_to_parent"

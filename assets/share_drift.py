@@ -10,7 +10,8 @@ from assets.share_tables import SHARE_TABLES
 from pipelines.partitions import cycle_class_partitions, partition_config, split_key
 from pipelines.resources import PlanningConfigResource, previous_cycle, read_table
 from pipelines.schemas import ShareDrift
-from pipelines.stages.share_drift import drifted_beyond, share_drift as compute_drift
+from pipelines.stages.share_drift import drifted_beyond
+from pipelines.stages.share_drift import share_drift as compute_drift
 
 SHARE_DRIFT = "share_drift"
 SHARE_DRIFT_WITHIN_LIMIT = "share_drift_within_limit"

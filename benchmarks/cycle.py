@@ -89,18 +89,25 @@ import statsforecast  # noqa: E402
 from statsforecast import models as sfm  # noqa: E402
 
 from pipelines import schemas as S  # noqa: E402
-from pipelines.config import PlanningConfig, ProductClassConfig, parse_config  # noqa: E402
 from pipelines.calendar import shift_periods  # noqa: E402
+from pipelines.config import PlanningConfig, parse_config  # noqa: E402
+from pipelines.config_sections import ProductClassConfig  # noqa: E402
 from pipelines.stages import reconciliation as rec  # noqa: E402
 from pipelines.stages import report  # noqa: E402
+from pipelines.stages import statistical_forecast as SF  # noqa: E402
 from pipelines.stages.cleaned_history import clean_history, cycle_calendar, find_unexplained_changes, line_accounting  # noqa: E402
 from pipelines.stages.lifecycle_history import active_children, apply_lifecycle  # noqa: E402
-from pipelines.stages.plan_measures import find_pins_not_kept, find_sum_violations, plan_measures, plan_totals, share_basis_tables  # noqa: E402
+from pipelines.stages.plan_measures import (  # noqa: E402
+    find_pins_not_kept,
+    find_sum_violations,
+    plan_measures,
+    plan_totals,
+    share_basis_tables,
+)
 from pipelines.stages.raw_history import load_raw_history  # noqa: E402
 from pipelines.stages.reinitialized_target import parents_with_mix_change, reinitialize_target  # noqa: E402
 from pipelines.stages.share_drift import drifted_beyond, share_drift  # noqa: E402
 from pipelines.stages.share_tables import compute_shares, find_new_customers_without_share  # noqa: E402
-from pipelines.stages import statistical_forecast as SF  # noqa: E402
 from pipelines.stages.statistical_forecast import forecast_cycle, model_label  # noqa: E402
 
 STAGES = ("raw", "clean", "lifecycle", "shares", "target", "forecast", "reconcile", "plan", "drift", "report")

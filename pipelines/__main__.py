@@ -190,8 +190,8 @@ def print_summary(config_path: str, checks: list[tuple[str, str, bool, str]] | N
 
 def explain(config_path: str, product: str, site: str, customer: str, period: str | None, cycle: str | None) -> int:
     """Print how one leaf value was made, from the store only."""
+    from pipelines.explain import OPTIONAL_TABLES, REQUIRED_TABLES, explain_leaf
     from pipelines.resources import PlanningConfigResource, read_table, stored_cycles
-    from pipelines.stages.explain import OPTIONAL_TABLES, REQUIRED_TABLES, explain_leaf
 
     config = PlanningConfigResource(path=config_path).config
     store = Path(config.store.path)

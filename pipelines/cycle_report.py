@@ -16,9 +16,9 @@ import dagster as dg
 import pandas as pd
 
 from pipelines.config import PlanningConfig
+from pipelines.engines import report_charts, report_html
 from pipelines.partitions import partition_key
 from pipelines.resources import read_table, report_folder
-from pipelines.stages import report
 
 REPORT_FILE = "cycle_report.html"
 CHART_KINDS = ("parents", "shares")
@@ -79,9 +79,9 @@ def write_cycle_report(config: PlanningConfig, instance: dg.DagsterInstance, cyc
     choice = choose_strategies(accuracy, config) if accuracy is not None and len(accuracy) else None
     drift = table("share_drift")
     charts = {
-        c: [n for n in (report.chart_file_name(k, c, cycle) for k in CHART_KINDS) if (folder / n).exists()] for c in classes
+        c: [n for n in (report_charts.chart_file_name(k, c, cycle) for k in CHART_KINDS) if (folder / n).exists()] for c in classes
     }
-    page = report.cycle_report_html(
+    page = report_html.cycle_report_html(
         cycle_date=cycle,
         share_tables=shares if shares is not None else pd.DataFrame(columns=["product_class"]),
         checks=[
@@ -91,7 +91,7 @@ def write_cycle_report(config: PlanningConfig, instance: dg.DagsterInstance, cyc
         parent_forecast=table("parent_forecast"),
         strategy_choice=choice,
         rejected_rows=table("rejected_rows"),
-        movers=drift[report.MOVER_COLUMNS] if drift is not None and len(drift) else None,
+        movers=drift[report_html.MOVER_COLUMNS] if drift is not None and len(drift) else None,
         charts={c: names for c, names in charts.items() if names},
         calendar=table("cycle_calendar"),
     )

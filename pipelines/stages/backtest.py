@@ -5,7 +5,7 @@ Rolling origin (Tashman 2000; Hyndman & Athanasopoulos, FPP 3rd ed., section
 the cycle date and each earlier one `backtest.step` periods before the next.
 At each origin the history after it is held back; every series is re-classed
 and re-forecast from the history before it with the class's models, at both
-grains, and each strategy of `pipelines.stages.hierarchy` turns the base
+grains, and each strategy of `pipelines.engines.hierarchy` turns the base
 forecasts into coherent parent and leaf forecasts for `horizon` periods:
 
 - `top_down`: the parent forecast split by the class's share table computed
@@ -21,7 +21,7 @@ history counts (copied reference history shapes shares, it is not demand), and
 a parent's actuals are the sum of its children's, so the two grains agree.
 
 Accuracy per class, strategy and grain, pooled over all series, periods and
-origins (`pipelines.stages.accuracy`): WMAPE, bias, MASE (scaled by each
+origins (`pipelines.engines.accuracy`): WMAPE, bias, MASE (scaled by each
 series' in-sample naive differences at the origin, seasonal ones for a class
 with `seasonal: true`) and forecast value added over seasonal naive.
 
@@ -41,13 +41,14 @@ import pandas as pd
 
 from pipelines.calendar import ordinal_to_start, period_ordinal, season_length
 from pipelines.config import PlanningConfig
+from pipelines.engines.accuracy import mase_scale
+from pipelines.engines.hierarchy import NEEDS_RESIDUALS, coherent_forecasts, parent_sums
+from pipelines.engines.models import ModelSettings, base_forecasts, run_model_groups, series_grid
 from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
 from pipelines.schemas import BENCHMARK
-from pipelines.stages.accuracy import mase_scale
-from pipelines.stages.hierarchy import NEEDS_RESIDUALS, coherent_forecasts, parent_sums
 from pipelines.stages.reinitialized_target import period_shares
 from pipelines.stages.share_tables import compute_shares
-from pipelines.stages.statistical_forecast import GRAIN_STRATEGY, base_forecasts, run_model_groups, series_grid
+from pipelines.stages.statistical_forecast import GRAIN_STRATEGY
 
 ACCURACY_COLUMNS = ["product_class", "strategy", "grain", "metric", "value", "origins", "horizon", "series"]
 CHOICE_COLUMNS = ["product_class", "forecast_grain", "strategy", "leaf_wmape", "runner_up", "margin", "seasonal_naive_wmape", "beats_seasonal_naive"]
@@ -86,13 +87,12 @@ def _scales(grid, cls: np.ndarray, config: PlanningConfig) -> np.ndarray:
     return np.where(seasonal & np.isfinite(m), m, one)
 
 
-def _seasonal_naive(grid, horizon: int, period: str, log, timer) -> np.ndarray:
+def _seasonal_naive(grid, horizon: int, period: str, log) -> np.ndarray:
     sl = season_length(period)
     length = np.bincount(grid.series, minlength=grid.n_series)
     names = np.where(length > 0, "seasonal_naive", "zero").astype(object)
     season = np.where(length >= sl, sl, 1)
-    run = timer or run_model_groups
-    return np.clip(run(grid, names, season, horizon, log=log).forecast, 0, None)
+    return np.clip(run_model_groups(grid, names, season, horizon, log=log).forecast, 0, None)
 
 
 def run_backtest(
@@ -101,13 +101,11 @@ def run_backtest(
     config: PlanningConfig,
     cycle_date: pd.Timestamp,
     log: Callable[[str], None] | None = None,
-    timer: Callable | None = None,
 ) -> BacktestResult:
     """The accuracy table (class x strategy x grain x metric); see the module docstring.
 
     history: lifecycle history (all origins); children: the cycle's active
-    children (leaf keys, product_class). `timer` wraps every model-library
-    call (benchmarks only).
+    children (leaf keys, product_class).
     """
     period = config.calendar.period
     bt = config.backtest
@@ -144,7 +142,7 @@ def run_backtest(
             log(f"backtest origin {origin_date.date()}")
         p_grid = series_grid(pcode, ords, qty, n_parents, o)
         c_grid = series_grid(ccode, ords, qty, n_children, o)
-        base = base_forecasts(p_grid, c_grid, parent_class, child_class, {c: driver for c in classes}, config, h, log, timer)
+        base = base_forecasts(p_grid, c_grid, parent_class, child_class, {c: driver for c in classes}, ModelSettings.of(config), h, log)
         shares = compute_shares(history, children, config, origin_date)
         share_lookup = lookup(children, LEAF, shares)
         # the period shares the cycle would split by (per-period methods differ from the base share)
@@ -156,7 +154,7 @@ def run_backtest(
         for s in strategies:
             p, l, _, _ = coherent_forecasts(s, base.parent_fc, base.leaf_fc, parent_of_child, basis, base.parent_res, base.leaf_res)
             fc[s] = {"parent": p, "leaf": l}
-        fc[BENCHMARK] = {"parent": _seasonal_naive(p_grid, h, period, log, timer), "leaf": _seasonal_naive(c_grid, h, period, log, timer)}
+        fc[BENCHMARK] = {"parent": _seasonal_naive(p_grid, h, period, log), "leaf": _seasonal_naive(c_grid, h, period, log)}
         for s in names:
             for grain, actual, cls in (("leaf", leaf_actual, c_cls), ("parent", parent_actual, p_cls)):
                 e = fc[s][grain] - actual

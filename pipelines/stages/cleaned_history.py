@@ -102,7 +102,8 @@ from pipelines.calendar import (
     season_length,
     span_bounds,
 )
-from pipelines.config import OutlierConfig, PlanningConfig
+from pipelines.config import PlanningConfig
+from pipelines.config_sections import OutlierConfig
 from pipelines.keys import LEAF, PARENT, factorize, lookup
 
 MAD_SCALE = 1.4826  # 1 / Phi^-1(3/4): makes the MAD consistent for the normal sd (Leys et al. 2013)

@@ -11,7 +11,7 @@ from pathlib import Path
 
 import pandas as pd
 
-from pipelines.stages.inputs import InputFile, blanks_to_none, find_files, read_text_table, sha256
+from pipelines.engines.inputs import InputFile, blanks_to_none, find_files, read_text_table, sha256
 
 PRODUCT_COLUMNS = ("product", "product_class", "active_from", "active_to", "successor")
 SPAN_COLUMNS = ("product", "site", "customer", "active_from", "active_to", "reference_customer")

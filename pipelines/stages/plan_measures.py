@@ -62,7 +62,7 @@ leaf that is not active in its period is not applied; it is listed in
 
 **Integer split** (optional `integer: {pack_size: p}`, even and pro_rata only):
 R is rounded to the nearest multiple of p (a half pack up) and split in whole
-packs by the largest remainder method (`pipelines.stages.integer_split`).
+packs by the largest remainder method (`pipelines.engines.integer_split`).
 Pins are kept as given, so the children sum to sum of pins + p x floor(R / p +
 1/2): the parent rounded to the pack whenever the pins are whole packs.
 
@@ -84,11 +84,12 @@ import numpy as np
 import pandas as pd
 
 from pipelines.calendar import horizon_starts, period_ordinal
-from pipelines.config import MeasureConfig, PlanningConfig
+from pipelines.config import PlanningConfig
+from pipelines.config_sections import MeasureConfig
+from pipelines.engines.integer_split import largest_remainder, round_to_pack
 from pipelines.errors import ConfigError, PinError
 from pipelines.keys import LEAF, PARENT, factorize, lookup
 from pipelines.schemas import MEASURE_FALLBACKS
-from pipelines.stages.integer_split import largest_remainder, round_to_pack
 from pipelines.stages.reinitialized_target import period_shares
 from pipelines.stages.share_tables import compute_shares
 

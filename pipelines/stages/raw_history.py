@@ -7,7 +7,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from pipelines.stages.inputs import InputFile, find_files, read_text_table, sha256
+from pipelines.engines.inputs import InputFile, find_files, read_text_table, sha256
 
 HISTORY_COLUMNS = ("product", "site", "customer", "period_start", "quantity")
 

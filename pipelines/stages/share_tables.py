@@ -113,9 +113,10 @@ import numpy as np
 import pandas as pd
 
 from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal, season_length
-from pipelines.config import PER_PERIOD_METHODS, PlanningConfig
+from pipelines.config import PlanningConfig
+from pipelines.engines.models import ModelSettings, SeriesGrid, base_forecasts, series_grid
 from pipelines.keys import LEAF, PARENT, factorize, lookup
-from pipelines.stages.statistical_forecast import SeriesGrid, base_forecasts, series_grid
+from pipelines.vocabulary import PER_PERIOD_METHODS
 
 SHARE_COLUMNS = LEAF + [
     "cycle_date",
@@ -560,7 +561,7 @@ def children_forecasts(history: pd.DataFrame, children: pd.DataFrame, config: Pl
     no_parents = SeriesGrid(series=np.zeros(0, np.int64), ordinal=np.zeros(0, np.int64), y=np.zeros(0), n_series=0)
     classes = children["product_class"].to_numpy(object)
     strategies = {name: "bottom_up" for name in pd.unique(classes)}
-    return base_forecasts(no_parents, grid, np.zeros(0, dtype=object), classes, strategies, config, horizon).leaf_fc
+    return base_forecasts(no_parents, grid, np.zeros(0, dtype=object), classes, strategies, ModelSettings.of(config), horizon).leaf_fc
 
 
 def period_basis(

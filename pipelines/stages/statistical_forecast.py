@@ -20,7 +20,7 @@ Per product class the forecast runs at the class's `forecast_grain`:
   lowest leaf-grain WMAPE): `top_down` or `bottom_up` as above,
   `forecast_proportions` (parent forecast split by the children's own
   forecasts) or `mint_shrink` / `wls_var` (both grains reconciled); see
-  `pipelines.stages.hierarchy`. Whatever the strategy, parent = sum of leaves.
+  `pipelines.engines.hierarchy`. Whatever the strategy, parent = sum of leaves.
 
 Each series gets a demand class (Syntetos, Boylan & Croston 2005, cut-offs
 ADI = 1.32 and CV^2 = 0.49). ADI convention used here: the number of periods
@@ -58,30 +58,21 @@ forecast. Negative forecasts (possible from a trended ETS) are set to 0.
 
 from __future__ import annotations
 
-import time
 from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from statsforecast import StatsForecast
-from statsforecast import models as sfm
 
-from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal, season_length
-from pipelines.config import ModelChoice, ModelName, PlanningConfig, TSBConfig
+from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal
+from pipelines.config import PlanningConfig
+from pipelines.engines.hierarchy import coherent_forecasts
+from pipelines.engines.models import BaseForecasts, ModelSettings, SeriesGrid, base_forecasts, series_grid
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
-from pipelines.stages.hierarchy import NEEDS_LEAF, NEEDS_PARENT, NEEDS_RESIDUALS, coherent_forecasts
-from pipelines.stages.intermittent import croston_states
-
-ADI_CUTOFF = 1.32
-CV2_CUTOFF = 0.49
 
 PARENT_COLUMNS = ["cycle_date", "product_class", "product", "site", "period_start", "forecast", "model", "demand_class", "forecast_grain", "zero_reason"]
 LEAF_COLUMNS = LEAF + ["period_start", "cycle_date", "product_class", "forecast", "parent_forecast", "split_basis"]
-SEASONAL_MODELS = ("auto_ets", "ets_additive_season", "mstl_ets", "seasonal_naive")
-ETS_MODELS = ("auto_ets", "ets_additive_season")
-CROSTON_ALPHA = 0.1  # statsforecast's CrostonClassic and CrostonSBA smooth both series with alpha = 0.1
 FITTED_COLUMNS = ["cycle_date", "grain", "product_class", "product", "site", "customer", "period_start", "actual", "fitted"]
 MODEL_COLUMNS = ["cycle_date", "grain", "product_class", "product", "site", "customer", "demand_class", "adi", "cv2", "model", "parameters"]
 GRAIN_STRATEGY = {"product_site": "top_down", "product_site_customer": "bottom_up"}
@@ -94,207 +85,6 @@ class ForecastResult:
     negatives_clipped: int
     models: pd.DataFrame | None = None  # one row per forecast series: grain, key, model, parameters
     fitted: pd.DataFrame | None = None  # in-sample one-step fitted values behind MinT / WLS residuals
-
-
-@dataclass(frozen=True)
-class ModelRun:
-    """What the model library returned for n series.
-
-    forecast: (n, horizon); fitted: in-sample one-step fitted values aligned
-    with the grid's rows (NaN where the library gives none); parameters: (n,)
-    text, '' where the library does not expose them; label: (n,) model label.
-    """
-
-    forecast: np.ndarray
-    fitted: np.ndarray
-    parameters: np.ndarray
-    label: np.ndarray
-
-
-@dataclass(frozen=True)
-class SeriesGrid:
-    """Dense history of n series, each from its first non-zero period to the period before the cycle.
-
-    `series`, `ordinal`, `y` are aligned long arrays; a series without demand has no rows.
-    """
-
-    series: np.ndarray
-    ordinal: np.ndarray
-    y: np.ndarray
-    n_series: int
-
-
-def series_grid(code: np.ndarray, ordinal: np.ndarray, qty: np.ndarray, n_series: int, end_ord: int) -> SeriesGrid:
-    """Sum rows per (series, period) and lay each series out densely with zeros filled."""
-    keep = ordinal < end_ord
-    code, ordinal, qty = code[keep], ordinal[keep], qty[keep]
-    nz = qty > 0
-    first = np.full(n_series, end_ord, dtype=np.int64)
-    np.minimum.at(first, code[nz], ordinal[nz])
-    length = end_ord - first
-    offset = np.concatenate([[0], np.cumsum(length)[:-1]])
-    total = int(length.sum())
-    series = np.repeat(np.arange(n_series), length)
-    ords = first[series] + (np.arange(total) - offset[series])
-    inside = ordinal >= first[code]
-    y = np.bincount(offset[code[inside]] + ordinal[inside] - first[code[inside]], weights=qty[inside], minlength=total)
-    return SeriesGrid(series=series, ordinal=ords, y=y, n_series=n_series)
-
-
-def demand_classes(grid: SeriesGrid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(demand_class, adi, cv2) per series; see the module docstring for the conventions."""
-    n = grid.n_series
-    length = np.bincount(grid.series, minlength=n)
-    nz = grid.y > 0
-    count = np.bincount(grid.series[nz], minlength=n)
-    total = np.bincount(grid.series[nz], weights=grid.y[nz], minlength=n)
-    squares = np.bincount(grid.series[nz], weights=grid.y[nz] ** 2, minlength=n)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        adi = np.where(count > 0, length / count, np.nan)
-        mean = total / count
-        var = np.clip(squares / count - mean**2, 0, None)
-        cv2 = np.where(count > 0, var / mean**2, np.nan)
-    cls = np.where(
-        adi < ADI_CUTOFF, np.where(cv2 < CV2_CUTOFF, "smooth", "erratic"), np.where(cv2 < CV2_CUTOFF, "intermittent", "lumpy")
-    ).astype(object)
-    cls[count == 0] = "no_demand"
-    return cls, adi, cv2
-
-
-def make_model(name: ModelName, season: int, tsb: TSBConfig | None = None):
-    """The statsforecast model object for a config model name (season 1 = non-seasonal)."""
-    if name == "auto_ets":
-        return sfm.AutoETS(season_length=season)
-    if name == "ets_additive_season":
-        return sfm.AutoETS(season_length=season, model="ANA" if season > 1 else "ANN")
-    if name == "mstl_ets":
-        if season > 1:
-            return sfm.MSTL(season_length=season, trend_forecaster=sfm.AutoETS(model="ZZN"))
-        return sfm.AutoETS(model="ZZN")
-    if name == "ses":
-        return sfm.SimpleExponentialSmoothingOptimized()
-    if name == "seasonal_naive":
-        return sfm.SeasonalNaive(season_length=season)
-    if name == "croston_classic":
-        return sfm.CrostonClassic()
-    if name == "croston_sba":
-        return sfm.CrostonSBA()
-    if name == "croston_optimized":
-        return sfm.CrostonOptimized()
-    if name == "tsb":
-        tsb = tsb or TSBConfig()
-        return sfm.TSB(alpha_d=tsb.alpha_d, alpha_p=tsb.alpha_p)
-    if name == "adida":
-        return sfm.ADIDA()
-    if name == "imapa":
-        return sfm.IMAPA()
-    raise ValueError(f"unknown model {name!r}")
-
-
-def model_label(name: str, season: int) -> str:
-    return f"{name}(season_length={season})" if name in SEASONAL_MODELS else name
-
-
-def assign_models(demand: np.ndarray, length: np.ndarray, choice: ModelChoice, period: str) -> tuple[np.ndarray, np.ndarray]:
-    """Model name and season length per series of one product class."""
-    names = np.empty(len(demand), dtype=object)
-    for dc in ("smooth", "erratic", "intermittent", "lumpy"):
-        names[demand == dc] = getattr(choice, dc)
-    names[demand == "no_demand"] = "zero"
-    sl = season_length(period)
-    seasonal_ok = choice.seasonal & (length >= 2 * sl)
-    uses_season = np.isin(names, SEASONAL_MODELS)
-    season = np.where(seasonal_ok & uses_season, sl, 1)
-    return names, season
-
-
-def run_models(grid: SeriesGrid, names: np.ndarray, season: np.ndarray, horizon: int, log: Callable[[str], None] | None = None) -> np.ndarray:
-    """Forecast matrix (n_series, horizon); one statsforecast call per (model, season) group."""
-    return run_model_groups(grid, names, season, horizon, log=log).forecast
-
-
-def _ets_parameters(model) -> str:
-    """'ETS(A,N,N) alpha=0.1234' from a fitted statsforecast AutoETS (or '' for a fallback model)."""
-    fit = getattr(model, "model_", None)
-    if not isinstance(fit, dict) or "method" not in fit:
-        return "fallback: naive"
-    par = np.asarray(fit["par"], dtype=float)
-    names = ("alpha", "beta", "gamma", "phi")
-    values = [f"{n}={v:.4g}" for n, v in zip(names, par[:4]) if np.isfinite(v)]
-    return " ".join([fit["method"], *values])
-
-
-def run_model_groups(
-    grid: SeriesGrid,
-    names: np.ndarray,
-    season: np.ndarray,
-    horizon: int,
-    log: Callable[[str], None] | None = None,
-    tsb: TSBConfig | None = None,
-    fitted: bool = False,
-) -> ModelRun:
-    """Forecasts (and, with `fitted`, in-sample fitted values) of every series, one statsforecast call per (model, season) group.
-
-    ETS groups go through `fit`/`predict` so the chosen component string and
-    smoothing parameters can be read back; the other groups use the
-    memory-efficient `forecast`. A model that fails on a series falls back to
-    the naive forecast.
-    """
-    fc = np.zeros((grid.n_series, horizon))
-    fit_values = np.full(len(grid.y), np.nan)
-    parameters = np.full(grid.n_series, "", dtype=object)
-    labels = np.full(grid.n_series, "zero", dtype=object)
-    groups = pd.DataFrame({"name": names, "season": season})
-    for (name, s), idx in groups.groupby(["name", "season"], sort=True).groups.items():
-        ids = np.asarray(idx)
-        labels[ids] = model_label(name, int(s))
-        if name == "zero":
-            continue
-        rows = np.isin(grid.series, ids)
-        df = pd.DataFrame({"unique_id": grid.series[rows], "ds": grid.ordinal[rows], "y": grid.y[rows]})
-        sf = StatsForecast(models=[make_model(name, int(s), tsb)], freq=1, n_jobs=1, fallback_model=sfm.Naive())
-        started = time.perf_counter()
-        if name in ETS_MODELS:
-            sf.fit(df=df)
-            out = sf.predict(h=horizon)
-            fitted_models = sf.fitted_[:, 0]
-            parameters[np.sort(ids)] = [_ets_parameters(m) for m in fitted_models]  # reads the library's results
-            if fitted:
-                fit_values[rows] = np.concatenate([m.model_["fitted"] for m in fitted_models])
-        else:
-            out = sf.forecast(df=df, h=horizon, fitted=fitted)
-            if fitted:
-                fit_values[rows] = sf.forecast_fitted_values().iloc[:, 3].to_numpy(float)
-            if name in ("croston_classic", "croston_sba"):
-                # the final smoothed size and interval behind the forecast, which the library does not return
-                order = np.sort(ids)
-                size, gap, _ = croston_states(
-                    grid.y[rows], CROSTON_ALPHA, CROSTON_ALPHA, series=np.searchsorted(order, grid.series[rows]), n_series=len(order)
-                )
-                parameters[order] = [f"alpha={CROSTON_ALPHA:g} size={a:.4g} interval={b:.4g}" for a, b in zip(size, gap)]
-            elif name == "tsb":
-                t = tsb or TSBConfig()
-                parameters[ids] = f"alpha_d={t.alpha_d:g} alpha_p={t.alpha_p:g}"
-        if log:
-            log(f"{model_label(name, int(s))}: {len(ids)} series in {time.perf_counter() - started:.1f} s")
-        values = out.iloc[:, 2].to_numpy(float).reshape(-1, horizon)
-        fc[out["unique_id"].to_numpy()[::horizon]] = values
-    return ModelRun(forecast=fc, fitted=fit_values, parameters=parameters, label=labels)
-
-
-def residual_matrix(grid: SeriesGrid, fitted: np.ndarray, start_ord: int, end_ord: int) -> np.ndarray:
-    """(n_series, end_ord - start_ord) in-sample residuals y - fitted; 0 where a series has no value or no fit.
-
-    Before its first demand a series had 0 and a forecast of 0, so a zero
-    residual there is the truth, not a guess; periods before `start_ord` are
-    left out.
-    """
-    width = end_ord - start_ord
-    out = np.zeros((grid.n_series, width))
-    res = grid.y - fitted
-    ok = np.isfinite(res) & (grid.ordinal >= start_ord) & (grid.ordinal < end_ord)
-    out[grid.series[ok], grid.ordinal[ok] - start_ord] = res[ok]
-    return out
 
 
 def strategy_by_class(config: PlanningConfig, chosen: dict[str, str] | None = None) -> dict[str, str]:
@@ -312,96 +102,6 @@ def strategy_by_class(config: PlanningConfig, chosen: dict[str, str] | None = No
         else:
             out[name] = GRAIN_STRATEGY[pc.forecast_grain]
     return out
-
-
-@dataclass(frozen=True)
-class BaseForecasts:
-    """Base forecasts of both grains for one forecast origin (zeros where a grain was not run).
-
-    parent_fc (n_parents, h), leaf_fc (n_children, h), both already >= 0;
-    negatives: how many base values were below 0 and set to 0; parent_res and
-    leaf_res: in-sample residuals over a common window (None when no class
-    needs them); models: one row per series that was forecast.
-    """
-
-    parent_fc: np.ndarray
-    leaf_fc: np.ndarray
-    parent_label: np.ndarray
-    parent_demand: np.ndarray
-    negatives: int
-    parent_res: np.ndarray | None
-    leaf_res: np.ndarray | None
-    models: pd.DataFrame
-    parent_fitted: np.ndarray | None = None  # aligned with the parent grid's rows (NaN where not fitted)
-    leaf_fitted: np.ndarray | None = None
-
-
-def base_forecasts(
-    p_grid: SeriesGrid,
-    c_grid: SeriesGrid,
-    parent_class: np.ndarray,
-    child_class: np.ndarray,
-    strategies: dict[str, str],
-    config: PlanningConfig,
-    horizon: int,
-    log: Callable[[str], None] | None = None,
-    timer: Callable | None = None,
-) -> BaseForecasts:
-    """Run the class's models at the grains its strategy needs (`pipelines.stages.hierarchy`).
-
-    `strategies` maps product class -> strategy; for several strategies at
-    once (the backtest) pass `mint_shrink`, which needs both grains and the
-    residuals. `timer`, if given, wraps each model-library call (benchmarks).
-    """
-    period = config.calendar.period
-    n_parents, n_children = p_grid.n_series, c_grid.n_series
-    run = timer or run_model_groups
-    out = {}
-    for grain, grid, cls in (("parent", p_grid, parent_class), ("leaf", c_grid, child_class)):
-        demand, adi, cv2 = demand_classes(grid)
-        length = np.bincount(grid.series, minlength=grid.n_series)
-        fc = np.zeros((grid.n_series, horizon))
-        fitted = np.full(len(grid.y), np.nan)
-        label = np.full(grid.n_series, "", dtype=object)
-        params = np.full(grid.n_series, "", dtype=object)
-        ran = np.zeros(grid.n_series, dtype=bool)
-        need = NEEDS_PARENT if grain == "parent" else NEEDS_LEAF
-        for name, strategy in strategies.items():
-            members = cls == name
-            if strategy not in need or not members.any():
-                continue
-            pc = config.product_classes[name]
-            names, season = assign_models(demand[members], length[members], pc.models, period)
-            res = run(_subgrid(grid, members), names, season, horizon, log=log, tsb=pc.models.tsb, fitted=strategy in NEEDS_RESIDUALS)
-            fc[members] = res.forecast
-            fitted[members[grid.series]] = res.fitted
-            label[members] = res.label
-            params[members] = res.parameters
-            ran |= members
-        out[grain] = (fc, fitted, label, params, ran, demand, adi, cv2)
-    (pfc, pfit, plabel, pparams, pran, pdemand, padi, pcv2) = out["parent"]
-    (lfc, lfit, llabel, lparams, lran, ldemand, ladi, lcv2) = out["leaf"]
-    negatives = int((pfc < 0).sum() + (lfc < 0).sum())
-    parent_res = leaf_res = None
-    if any(s in NEEDS_RESIDUALS for s in strategies.values()):
-        both = np.concatenate([p_grid.ordinal, c_grid.ordinal])
-        first = int(both.min()) if len(both) else 0
-        end = int(both.max()) + 1 if len(both) else 0
-        parent_res = residual_matrix(p_grid, pfit, first, end)
-        leaf_res = residual_matrix(c_grid, lfit, first, end)
-    models = pd.concat(
-        [
-            pd.DataFrame({"grain": "parent", "series": np.flatnonzero(pran), "demand_class": pdemand[pran], "adi": padi[pran],
-                          "cv2": pcv2[pran], "model": plabel[pran], "parameters": pparams[pran]}),
-            pd.DataFrame({"grain": "leaf", "series": np.flatnonzero(lran), "demand_class": ldemand[lran], "adi": ladi[lran],
-                          "cv2": lcv2[lran], "model": llabel[lran], "parameters": lparams[lran]}),
-        ],
-        ignore_index=True,
-    )
-    return BaseForecasts(
-        parent_fc=np.clip(pfc, 0, None), leaf_fc=np.clip(lfc, 0, None), parent_label=plabel, parent_demand=pdemand,
-        negatives=negatives, parent_res=parent_res, leaf_res=leaf_res, models=models, parent_fitted=pfit, leaf_fitted=lfit,
-    )
 
 
 def combine_strategies(
@@ -469,7 +169,8 @@ def forecast_cycle(
     okc = c_code >= 0
     c_grid = series_grid(c_code[okc], ords[okc], qty[okc], n_children, cycle_ord)
     base = base_forecasts(
-        p_grid, c_grid, parents["product_class"].to_numpy(), children["product_class"].to_numpy(), strategies, config, horizon, log
+        p_grid, c_grid, parents["product_class"].to_numpy(), children["product_class"].to_numpy(), strategies,
+        ModelSettings.of(config), horizon, log,
     )
 
     # top-down basis: the reinitialized target (the period's share where the targets are all 0)
@@ -555,13 +256,6 @@ def _fitted_frame(grid: SeriesGrid, fitted: np.ndarray | None, keys: pd.DataFram
     out["actual"] = grid.y[ok]
     out["fitted"] = fitted[ok]
     return out
-
-
-def _subgrid(grid: SeriesGrid, members: np.ndarray) -> SeriesGrid:
-    """The grid restricted to `members` (a mask over series), renumbered 0..k-1."""
-    new_id = np.cumsum(members) - 1
-    rows = members[grid.series]
-    return SeriesGrid(series=new_id[grid.series[rows]], ordinal=grid.ordinal[rows], y=grid.y[rows], n_series=int(members.sum()))
 
 
 def _active_matrix(children: pd.DataFrame, starts: pd.DatetimeIndex, period: str) -> np.ndarray:
