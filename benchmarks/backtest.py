@@ -50,7 +50,7 @@ from statsforecast import StatsForecast  # noqa: E402
 from pipelines.config import parse_config  # noqa: E402
 from pipelines.stages.backtest import run_backtest  # noqa: E402
 from pipelines.stages.reinitialized_target import reinitialize_target  # noqa: E402
-from pipelines.stages.share_tables import compute_shares  # noqa: E402
+from pipelines.engines.shares import compute_shares  # noqa: E402
 from pipelines.stages.statistical_forecast import forecast_cycle  # noqa: E402
 
 STRATEGIES = ["top_down", "forecast_proportions", "bottom_up", "mint_shrink", "wls_var"]

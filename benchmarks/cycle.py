@@ -107,7 +107,7 @@ from pipelines.stages.plan_measures import (  # noqa: E402
 from pipelines.stages.raw_history import load_raw_history  # noqa: E402
 from pipelines.stages.reinitialized_target import parents_with_mix_change, reinitialize_target  # noqa: E402
 from pipelines.stages.share_drift import drifted_beyond, share_drift  # noqa: E402
-from pipelines.stages.share_tables import compute_shares, find_new_customers_without_share  # noqa: E402
+from pipelines.engines.shares import compute_shares, find_new_customers_without_share  # noqa: E402
 from pipelines.stages.statistical_forecast import forecast_cycle, model_label  # noqa: E402
 
 STAGES = ("raw", "clean", "lifecycle", "shares", "target", "forecast", "reconcile", "plan", "drift", "report")

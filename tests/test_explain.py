@@ -231,8 +231,8 @@ def test_explains_the_tables_the_stages_themselves_make(make_history, make_confi
     Parent forecast: croston_classic of a constant 12 is 12 (see test_statistical_forecast).
     C1: H1 12 / 3 = 4, H2 0.25 x 12 = 3.
     """
+    from pipelines.engines.shares import compute_shares
     from pipelines.stages.reinitialized_target import reinitialize_target
-    from pipelines.stages.share_tables import compute_shares
     from pipelines.stages.statistical_forecast import forecast_cycle
 
     croston = {d: "croston_classic" for d in ("smooth", "erratic", "intermittent", "lumpy")}

@@ -14,6 +14,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from pipelines.config import parse_config
+from pipelines.engines.shares import compute_shares
 from pipelines.errors import ConfigError, PinError
 from pipelines.schemas import PlanMeasures
 from pipelines.stages.plan_measures import (
@@ -24,7 +25,6 @@ from pipelines.stages.plan_measures import (
     share_basis_tables,
 )
 from pipelines.stages.reinitialized_target import reinitialize_target
-from pipelines.stages.share_tables import compute_shares
 from pipelines.stages.statistical_forecast import forecast_cycle
 
 CYCLE = pd.Timestamp("2026-02-02")

@@ -12,12 +12,12 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from pipelines.engines.shares import compute_shares
 from pipelines.keys import LEAF
 from pipelines.schemas import ReinitializedTarget
 from pipelines.stages.lifecycle_history import active_children
 from pipelines.stages.reconciliation import find_shares_not_summing_to_one
 from pipelines.stages.reinitialized_target import parents_with_mix_change, reinitialize_target
-from pipelines.stages.share_tables import compute_shares
 
 CYCLE = pd.Timestamp("2026-02-02")
 AGE = {1: "2026-01-26", 2: "2026-01-19", 3: "2026-01-12", 4: "2026-01-05", 6: "2025-12-22"}

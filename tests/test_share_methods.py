@@ -14,12 +14,13 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from pipelines.engines.period_shares import period_of_year
+from pipelines.engines.shares import compute_shares, smoothed_proportions
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF
 from pipelines.schemas import SHARE_BASES, ReinitializedTarget, ShareTable
 from pipelines.stages.reconciliation import find_shares_not_summing_to_one
 from pipelines.stages.reinitialized_target import reinitialize_target
-from pipelines.stages.share_tables import compute_shares, period_of_year, smoothed_proportions
 
 CYCLE = pd.Timestamp("2026-02-02")
 AGE = {1: "2026-01-26", 2: "2026-01-19", 3: "2026-01-12", 4: "2026-01-05", 5: "2025-12-29"}

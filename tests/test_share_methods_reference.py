@@ -32,9 +32,10 @@ from statsmodels.tsa.holtwinters import SimpleExpSmoothing
 
 from pipelines.calendar import period_ordinal
 from pipelines.config import parse_config
+from pipelines.engines.period_shares import children_forecasts
+from pipelines.engines.shares import compute_shares
 from pipelines.keys import LEAF
 from pipelines.stages.reinitialized_target import reinitialize_target
-from pipelines.stages.share_tables import children_forecasts, compute_shares
 from pipelines.stages.statistical_forecast import forecast_cycle
 
 TOL = 1e-12

@@ -10,8 +10,8 @@ from __future__ import annotations
 import pandas as pd
 import pytest
 
+from pipelines.engines.shares import compute_shares, find_new_customers_without_share, new_customers
 from pipelines.schemas import ShareTable
-from pipelines.stages.share_tables import compute_shares, find_new_customers_without_share, new_customers
 
 CYCLE = pd.Timestamp("2026-02-02")
 AGE = {1: "2026-01-26", 2: "2026-01-19", 3: "2026-01-12", 4: "2026-01-05"}

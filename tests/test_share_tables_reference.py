@@ -39,10 +39,10 @@ from hierarchicalforecast.methods import MiddleOut, TopDown
 from hierarchicalforecast.utils import aggregate
 
 from pipelines.config import parse_config
+from pipelines.engines.shares import compute_shares
 from pipelines.keys import LEAF
 from pipelines.schemas import LifecycleHistory, ShareTable
 from pipelines.stages.reinitialized_target import reinitialize_target
-from pipelines.stages.share_tables import compute_shares
 from pipelines.stages.statistical_forecast import forecast_cycle
 
 N_WEEKS = 12

@@ -44,10 +44,10 @@ from pipelines.config import PlanningConfig
 from pipelines.engines.accuracy import mase_scale
 from pipelines.engines.hierarchy import NEEDS_RESIDUALS, coherent_forecasts, parent_sums
 from pipelines.engines.models import ModelSettings, base_forecasts, run_model_groups, series_grid
+from pipelines.engines.period_shares import period_shares
+from pipelines.engines.shares import ShareSettings, compute_shares
 from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
 from pipelines.schemas import BENCHMARK
-from pipelines.stages.reinitialized_target import period_shares
-from pipelines.stages.share_tables import compute_shares
 from pipelines.stages.statistical_forecast import GRAIN_STRATEGY
 
 ACCURACY_COLUMNS = ["product_class", "strategy", "grain", "metric", "value", "origins", "horizon", "series"]
@@ -130,6 +130,7 @@ def run_backtest(
     qty = history["quantity"].to_numpy(float)[ok]
     first_ord = int(ords.min()) if len(ords) else cycle_ord
     origins = origin_ordinals(config, cycle_ord, first_ord)
+    share_settings, models = ShareSettings.of(config), ModelSettings.of(config)
 
     strategies = list(bt.strategies)
     names = strategies + [BENCHMARK]
@@ -142,11 +143,11 @@ def run_backtest(
             log(f"backtest origin {origin_date.date()}")
         p_grid = series_grid(pcode, ords, qty, n_parents, o)
         c_grid = series_grid(ccode, ords, qty, n_children, o)
-        base = base_forecasts(p_grid, c_grid, parent_class, child_class, {c: driver for c in classes}, ModelSettings.of(config), h, log)
-        shares = compute_shares(history, children, config, origin_date)
+        base = base_forecasts(p_grid, c_grid, parent_class, child_class, {c: driver for c in classes}, models, h, log)
+        shares = compute_shares(history, children, share_settings, origin_date)
         share_lookup = lookup(children, LEAF, shares)
         # the period shares the cycle would split by (per-period methods differ from the base share)
-        basis = period_shares(shares, config, origin_date, None, history, horizon=h)[0][share_lookup]
+        basis = period_shares(shares, share_settings, origin_date, None, history, horizon=h)[0][share_lookup]
         leaf_actual = _dense(ccode, ords, qty, n_children, o, h)
         parent_actual = parent_sums(leaf_actual, parent_of_child, n_parents)
         scale = {"leaf": _scales(c_grid, child_class, config), "parent": _scales(p_grid, parent_class, config)}

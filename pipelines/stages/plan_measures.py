@@ -87,11 +87,11 @@ from pipelines.calendar import horizon_starts, period_ordinal
 from pipelines.config import PlanningConfig
 from pipelines.config_sections import MeasureConfig
 from pipelines.engines.integer_split import largest_remainder, round_to_pack
+from pipelines.engines.period_shares import period_shares
+from pipelines.engines.shares import ShareRule, ShareSettings, compute_shares
 from pipelines.errors import ConfigError, PinError
 from pipelines.keys import LEAF, PARENT, factorize, lookup
 from pipelines.schemas import MEASURE_FALLBACKS
-from pipelines.stages.reinitialized_target import period_shares
-from pipelines.stages.share_tables import compute_shares
 
 PLAN_COLUMNS = LEAF + ["period_start", "cycle_date", "measure", "value", "parent_value", "rule", "basis", "fallback", "pinned"]
 PARENT_COLUMNS = [
@@ -254,19 +254,18 @@ def share_basis_tables(
 ) -> dict[str, pd.DataFrame]:
     """Period shares of every named share basis (config `share_bases`): leaf keys, period_start, share, fallback.
 
-    Each basis runs the share engine (`share_tables.compute_shares`, then
-    `reinitialized_target.period_shares`) with its window, method and fallback
+    Each basis runs the share engine (`engines.shares.compute_shares`, then
+    `engines.period_shares.period_shares`) with its window, method and fallback
     windows in place of every product class's own. history: lifecycle history;
     children: `lifecycle_history.active_children`.
     """
     out = {}
     starts = horizon_starts(cycle_date, config.calendar.horizon, config.calendar.period)
+    settings = ShareSettings.of(config)
     for name, basis in config.share_bases.items():  # a few named bases, not a loop over series
-        own = {"window": basis.window, "method": basis.method, "fallback_windows": basis.fallback_windows}
-        classes = {c: pc.model_copy(update=own) for c, pc in config.product_classes.items()}
-        basis_config = config.model_copy(update={"product_classes": classes})
-        table = compute_shares(history, children, basis_config, cycle_date)
-        share = period_shares(table, basis_config, cycle_date, products, history)[0]
+        own = settings.with_rule(ShareRule.of(basis))  # its window, method and fallbacks in every class
+        table = compute_shares(history, children, own, cycle_date)
+        share = period_shares(table, own, cycle_date, products, history)[0]
         frame = table[LEAF].loc[table.index.repeat(len(starts))].reset_index(drop=True)
         frame["period_start"] = np.tile(starts.values, len(table))
         frame["share"] = share.ravel()

@@ -44,17 +44,17 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import horizon_starts, period_ordinal, span_bounds
-from pipelines.config import PlanningConfig
+from pipelines.calendar import horizon_starts, period_ordinal
+from pipelines.engines.period_shares import period_shares
+from pipelines.engines.shares import ShareSettings, shortage_periods
 from pipelines.keys import LEAF, PARENT, factorize, lookup
-from pipelines.stages.share_tables import period_basis, reference_positions, shortage_periods, split_shares
 
 TARGET_COLUMNS = LEAF + ["period_start", "cycle_date", "target", "share", "parent_baseline", "zero_share_reason", "share_basis"]
 
 
-def parent_baselines(shares: pd.DataFrame, history: pd.DataFrame, config: PlanningConfig, cycle_date: pd.Timestamp) -> np.ndarray:
+def parent_baselines(shares: pd.DataFrame, history: pd.DataFrame, settings: ShareSettings, cycle_date: pd.Timestamp) -> np.ndarray:
     """Baseline of each share-table row's parent (same value on all its children)."""
-    period = config.calendar.period
+    period = settings.period
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
     parent_code, parents = factorize(shares, PARENT)
     n_parents = len(parents)
@@ -63,7 +63,7 @@ def parent_baselines(shares: pd.DataFrame, history: pd.DataFrame, config: Planni
 
     row_parent = lookup(history, PARENT, parents)
     ok = row_parent >= 0
-    short = shortage_periods(history, config)[ok]
+    short = shortage_periods(history, settings.exclude_shortages)[ok]
     row_parent = row_parent[ok]
     age = cycle_ord - period_ordinal(history["period_start"], period)[ok]
     qty = history["quantity"].to_numpy(float)[ok]
@@ -80,77 +80,21 @@ def parent_baselines(shares: pd.DataFrame, history: pd.DataFrame, config: Planni
     return baseline[parent_code]
 
 
-def period_shares(
-    shares: pd.DataFrame,
-    config: PlanningConfig,
-    cycle_date: pd.Timestamp,
-    products: pd.DataFrame | None = None,
-    history: pd.DataFrame | None = None,
-    horizon: int | None = None,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(share, zero_share_reason (None where shares sum to 1), share_basis), each (n, H), per share-table row.
-
-    products: the product master, to tell `product_not_active` from
-    `no_active_child` (without it, every product counts as active).
-    history: the lifecycle history, needed by the per-period share methods
-    (`share_tables.period_basis`). horizon: H, default the calendar's.
-    """
-    period = config.calendar.period
-    starts = horizon_starts(cycle_date, horizon or config.calendar.horizon, period)
-    h_ord = period_ordinal(starts, period)
-    first = period_ordinal(pd.DatetimeIndex(shares["first_active_period"]), period)
-    last = period_ordinal(pd.DatetimeIndex(shares["last_active_period"]), period)
-    active = (h_ord[None, :] >= first[:, None]) & (h_ord[None, :] <= last[:, None])
-    parent_code, parents = factorize(shares, PARENT)
-    n_parents = len(parents)
-    rule = shares["lifecycle_rule"].to_numpy(object)
-    weight, basis = period_basis(shares, history, config, cycle_date, len(starts))
-    share, all_zero = split_shares(
-        parent_code,
-        n_parents,
-        weight,
-        rule,
-        reference_positions(shares),
-        shares["scale"].to_numpy(float),
-        shares["initial_share"].to_numpy(float),
-        active,
-    )
-
-    any_active = np.zeros((n_parents, len(starts)), dtype=bool)
-    np.logical_or.at(any_active, parent_code, active)
-    non_waiting = np.zeros_like(any_active)
-    np.logical_or.at(non_waiting, parent_code, active & (rule != "awaiting_history")[:, None])
-    product_active = np.ones_like(any_active)
-    if products is not None:
-        p_from, p_to = span_bounds(products, period)
-        pos = lookup(parents, ["product"], products)
-        pf = np.where(pos >= 0, p_from[np.clip(pos, 0, None)], np.nan)[:, None]
-        pt = np.where(pos >= 0, p_to[np.clip(pos, 0, None)], np.nan)[:, None]
-        with np.errstate(invalid="ignore"):
-            product_active = (np.isnan(pf) | (h_ord[None, :] >= pf)) & (np.isnan(pt) | (h_ord[None, :] <= pt))
-    reason = np.select(
-        [~product_active, ~any_active, ~non_waiting],
-        ["product_not_active", "no_active_child", "awaiting_history"],
-        "no_share_among_active",
-    ).astype(object)
-    reason[~all_zero] = None
-    return share, reason[parent_code], basis
-
-
 def reinitialize_target(
     shares: pd.DataFrame,
     history: pd.DataFrame,
-    config: PlanningConfig,
+    settings: ShareSettings,
     cycle_date: pd.Timestamp,
     products: pd.DataFrame | None = None,
 ) -> pd.DataFrame:
     """One row per child and horizon period: target = period share x parent baseline."""
-    period = config.calendar.period
-    starts = horizon_starts(cycle_date, config.calendar.horizon, period)
+    settings = ShareSettings.of(settings)
+    period = settings.period
+    starts = horizon_starts(cycle_date, settings.horizon, period)
     h = len(starts)
     shares = shares.reset_index(drop=True)
-    baseline = parent_baselines(shares, history, config, cycle_date)
-    share, reason, basis = period_shares(shares, config, cycle_date, products, history)
+    baseline = parent_baselines(shares, history, settings, cycle_date)
+    share, reason, basis = period_shares(shares, settings, cycle_date, products, history)
     out = shares[LEAF].loc[shares.index.repeat(h)].reset_index(drop=True)
     out["period_start"] = np.tile(starts.values, len(shares))
     out["cycle_date"] = cycle_date
