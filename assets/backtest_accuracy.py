@@ -7,7 +7,7 @@ from assets.common import schema_check_spec, table_metadata, validate
 from pipelines.partitions import cycle_class_partitions, partition_config
 from pipelines.resources import PlanningConfigResource
 from pipelines.schemas import BacktestAccuracy, StrategyChoice
-from pipelines.stages.backtest import choose_strategies, run_backtest
+from pipelines.stages.backtest_accuracy import choose_strategies, run_backtest
 
 BACKTEST_ACCURACY = "backtest_accuracy"
 CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE = "chosen_strategy_beats_seasonal_naive"

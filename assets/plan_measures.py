@@ -4,12 +4,13 @@ import dagster as dg
 import pandas as pd
 
 from assets.common import rule_check, schema_check_spec, table_metadata, validate
+from pipelines.engines.children import active_children
+from pipelines.engines.measure_split import find_pins_not_kept, find_sum_violations, plan_totals
 from pipelines.partitions import cycle_class_partitions, partition_config
 from pipelines.resources import PlanningConfigResource
 from pipelines.schemas import PlanMeasures
-from pipelines.stages.lifecycle_history import active_children
-from pipelines.stages.plan_measures import find_pins_not_kept, find_sum_violations, plan_totals, share_basis_tables
 from pipelines.stages.plan_measures import plan_measures as split_plan_measures
+from pipelines.stages.plan_measures import share_basis_tables
 
 PLAN_MEASURES = "plan_measures"
 MEASURES_SUM_TO_PARENT = "measures_sum_to_parent"
@@ -106,7 +107,7 @@ def plan_measures(
     yield rule_check(
         PLAN_MEASURES,
         MEASURES_SUM_TO_PARENT,
-        find_sum_violations(plan, result.parents, config),
+        find_sum_violations(plan, result.parents, config.measures),
         what="every even / pro_rata measure's customers sum to their parent in every period (pins counted), and every "
         "replicate measure's customers hold the parent value",
     )

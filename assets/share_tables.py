@@ -4,11 +4,11 @@ import dagster as dg
 import pandas as pd
 
 from assets.common import rule_check, schema_check_spec, table_metadata, validate
+from pipelines.engines.children import active_children
 from pipelines.engines.shares import compute_shares, find_new_customers_without_share, new_customers
 from pipelines.partitions import cycle_class_partitions, partition_config
 from pipelines.resources import PlanningConfigResource
 from pipelines.schemas import SHARE_RULES, ShareTable
-from pipelines.stages.lifecycle_history import active_children
 
 SHARE_TABLES = "share_tables"
 NEW_CUSTOMER_WITHOUT_SHARE = "new_customer_without_share"

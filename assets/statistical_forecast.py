@@ -7,7 +7,7 @@ from assets.common import schema_check_spec, table_metadata, validate
 from pipelines.partitions import cycle_class_partitions, partition_config
 from pipelines.resources import PlanningConfigResource
 from pipelines.schemas import ForecastFittedValues, ForecastModels, ParentForecast, StatisticalForecast
-from pipelines.stages.backtest import choose_strategies
+from pipelines.stages.backtest_accuracy import choose_strategies
 from pipelines.stages.statistical_forecast import forecast_cycle
 
 PARENT_FORECAST = "parent_forecast"

@@ -48,7 +48,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from statsforecast import StatsForecast  # noqa: E402
 
 from pipelines.config import parse_config  # noqa: E402
-from pipelines.stages.backtest import run_backtest  # noqa: E402
+from pipelines.stages.backtest_accuracy import run_backtest  # noqa: E402
 from pipelines.stages.reinitialized_target import reinitialize_target  # noqa: E402
 from pipelines.engines.shares import compute_shares  # noqa: E402
 from pipelines.stages.statistical_forecast import forecast_cycle  # noqa: E402

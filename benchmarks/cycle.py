@@ -96,7 +96,8 @@ from pipelines.stages import reconciliation as rec  # noqa: E402
 from pipelines.stages import report  # noqa: E402
 from pipelines.stages import statistical_forecast as SF  # noqa: E402
 from pipelines.stages.cleaned_history import clean_history, cycle_calendar, find_unexplained_changes, line_accounting  # noqa: E402
-from pipelines.stages.lifecycle_history import active_children, apply_lifecycle  # noqa: E402
+from pipelines.engines.children import active_children
+from pipelines.stages.lifecycle_history import apply_lifecycle  # noqa: E402
 from pipelines.stages.plan_measures import (  # noqa: E402
     find_pins_not_kept,
     find_sum_violations,

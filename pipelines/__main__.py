@@ -163,7 +163,7 @@ def print_summary(config_path: str, checks: list[tuple[str, str, bool, str]] | N
             print(f"  {name:<14} {len(p):>4} parents {len(group):>5} children  ({how}; {fallbacks} parents used a fallback)")
     accuracy = table("backtest_accuracy")
     if accuracy is not None and len(accuracy):
-        from pipelines.stages.backtest import choose_strategies
+        from pipelines.stages.backtest_accuracy import choose_strategies
 
         print("strategy:     (backtest, leaf-grain WMAPE; margin = runner-up minus chosen)")
         for _, row in choose_strategies(accuracy, config).iterrows():

@@ -63,7 +63,7 @@ def latest_check_results(instance: dg.DagsterInstance, cycle: str, classes: list
 
 def write_cycle_report(config: PlanningConfig, instance: dg.DagsterInstance, cycle: str) -> Path:
     """Render the cycle's page from the store and the instance; the path written."""
-    from pipelines.stages.backtest import choose_strategies
+    from pipelines.stages.backtest_accuracy import choose_strategies
 
     store = Path(config.store.path)
     folder = report_folder(config.model_copy(update={"calendar": config.calendar.model_copy(update={"cycle_date": cycle})}))

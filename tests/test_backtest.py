@@ -17,7 +17,7 @@ import pytest
 
 from pipelines.config import parse_config
 from pipelines.schemas import BacktestAccuracy, StrategyChoice
-from pipelines.stages.backtest import choose_strategies, origin_ordinals, run_backtest
+from pipelines.stages.backtest_accuracy import choose_strategies, origin_ordinals, run_backtest
 
 ETS = {"smooth": "auto_ets", "erratic": "auto_ets", "intermittent": "auto_ets", "lumpy": "auto_ets"}
 SES = {"smooth": "ses", "erratic": "ses", "intermittent": "ses", "lumpy": "ses"}

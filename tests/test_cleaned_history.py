@@ -698,7 +698,7 @@ def test_outlier_rule_runs_before_the_fill_and_the_fill_reads_corrected_values(m
 
 
 def test_seasonal_component_by_hand_with_a_linear_trend():
-    from pipelines.stages.cleaned_history import seasonal_component
+    from pipelines.engines.outliers import seasonal_component
 
     # pattern 1, 5, 1, 3 (season m = 4) plus a trend of +1 per period: x = 1, 6, 3, 6, 5, 10, 7, 10
     x = np.array([[1.0, 6, 3, 6, 5, 10, 7, 10]])
@@ -714,7 +714,7 @@ def test_seasonal_component_by_hand_with_a_linear_trend():
 
 
 def test_fewer_than_two_full_seasons_are_not_adjusted():
-    from pipelines.stages.cleaned_history import seasonal_component
+    from pipelines.engines.outliers import seasonal_component
 
     x = np.array([[1.0, 6, 3, 6, 5, 10, 7, np.nan]])  # 7 periods, m = 4: less than 2 x 4
     s, adjusted, trend = seasonal_component(x, 4)
@@ -770,7 +770,7 @@ def test_seasonal_adjustment_needs_the_class_to_be_seasonal(make_raw, make_confi
 
 
 def test_adjusted_limit_adds_the_seasonal_value_back(make_raw, make_config, products, spans):
-    from pipelines.stages.cleaned_history import seasonal_component
+    from pipelines.engines.outliers import seasonal_component
 
     config = make_config(
         classes={"a": {"window": 12, "models": {"seasonal": True}}},

@@ -135,7 +135,7 @@ def test_backtest_section_defaults_and_auto_grain(tmp_path):
     assert (bt.origins, bt.horizon, bt.step) == (4, 13, 13)
     assert bt.strategies == ("top_down", "forecast_proportions", "bottom_up", "mint_shrink", "wls_var")
     # the earliest origin's horizon starts 13 + 3 x 13 = 52 periods before the cycle date
-    from pipelines.stages.backtest import origin_ordinals
+    from pipelines.stages.backtest_accuracy import origin_ordinals
 
     assert origin_ordinals(config, 100, 0)[0] == 100 - 52
 

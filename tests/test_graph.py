@@ -113,7 +113,7 @@ def test_demo_cycle_succeeds_and_every_blocking_check_passes(demo_cycle):
 def test_auto_classes_follow_the_backtest_choice_and_stay_coherent(demo_cycle):
     result, store, config = demo_cycle
     from pipelines.config import load_config
-    from pipelines.stages.backtest import choose_strategies
+    from pipelines.stages.backtest_accuracy import choose_strategies
 
     accuracy = read_table(store, "backtest_accuracy")
     # every class is backtested (consumables is fixed to the split, the others `auto`); each has all

@@ -36,8 +36,9 @@ from hypothesis.extra.numpy import arrays
 
 from pipelines.config import parse_config
 from pipelines.config_sections import OutlierConfig
+from pipelines.engines.outliers import MAD_SCALE, hampel, hampel_limits
 from pipelines.schemas import CleanedHistory, CustomerSpans, HistoryCorrections, Products, RawHistory
-from pipelines.stages.cleaned_history import MAD_SCALE, clean_history, hampel, hampel_limits
+from pipelines.stages.cleaned_history import clean_history
 
 WEEKS = pd.date_range("2026-01-05", periods=15, freq="7D")  # Mondays
 

@@ -9,8 +9,9 @@ from __future__ import annotations
 import pandas as pd
 import pytest
 
+from pipelines.engines.children import active_children
 from pipelines.errors import LifecycleError
-from pipelines.stages.lifecycle_history import active_children, apply_lifecycle
+from pipelines.stages.lifecycle_history import apply_lifecycle
 
 CYCLE = pd.Timestamp("2026-02-02")
 W1, W2, W3, W4 = "2026-01-05", "2026-01-12", "2026-01-19", "2026-01-26"

@@ -14,16 +14,11 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from pipelines.config import parse_config
+from pipelines.engines.measure_split import find_pins_not_kept, find_sum_violations, plan_totals
 from pipelines.engines.shares import compute_shares
 from pipelines.errors import ConfigError, PinError
 from pipelines.schemas import PlanMeasures
-from pipelines.stages.plan_measures import (
-    find_pins_not_kept,
-    find_sum_violations,
-    plan_measures,
-    plan_totals,
-    share_basis_tables,
-)
+from pipelines.stages.plan_measures import plan_measures, share_basis_tables
 from pipelines.stages.reinitialized_target import reinitialize_target
 from pipelines.stages.statistical_forecast import forecast_cycle
 
@@ -81,7 +76,7 @@ def values(res, measure, column="value"):
 
 
 def assert_checks_pass(res, cfg):
-    assert find_sum_violations(res.plan, res.parents, cfg).empty
+    assert find_sum_violations(res.plan, res.parents, cfg.measures).empty
     assert find_pins_not_kept(res.plan, res.pins_applied, res.pins_not_applied).empty
 
 
@@ -273,7 +268,7 @@ def test_pins_kept_fails_when_a_pinned_value_was_overwritten():
     failing = find_pins_not_kept(broken, res.pins_applied, res.pins_not_applied)
     assert failing[["customer", "pin", "value", "reason"]].values.tolist() == [["c3", 60.0, 59.0, "value differs from the pin"]]
     # the sum check catches the same break: 20 + 20 + 59 = 99, not 100
-    assert find_sum_violations(broken, res.parents, cfg)["children_sum"].tolist() == [99.0]
+    assert find_sum_violations(broken, res.parents, cfg.measures)["children_sum"].tolist() == [99.0]
 
 
 # ------------------------------------------------------------------ what the checks catch
@@ -282,7 +277,7 @@ def test_pins_kept_fails_when_a_pinned_value_was_overwritten():
 def test_a_value_without_active_child_fails_the_sum_check_for_additive_measures_only():
     cfg = config({"uplift": {"rule": "even"}, "list_price": {"rule": "replicate"}})
     res = run(cfg, [("uplift", "B", "S9", W1, 12), ("list_price", "B", "S9", W1, 5), ("uplift", "A", "S1", "2025-12-01", 7)])
-    failing = find_sum_violations(res.plan, res.parents, cfg)
+    failing = find_sum_violations(res.plan, res.parents, cfg.measures)
     # B / S9 has no customer: the 12 units of uplift are carried by no one; the price needs no carrier
     assert failing[["measure", "product", "reason"]].values.tolist() == [["uplift", "B", "no active child carries the value"]]
     # the row before the horizon is not used, and listed
@@ -294,7 +289,7 @@ def test_the_sum_check_catches_a_leaf_changed_after_the_split():
     res = run(cfg, [("uplift", "A", "S1", W1, 12), ("list_price", "A", "S1", W1, 5)])
     broken = res.plan.copy()
     broken.loc[(broken["customer"] == "c2"), "value"] += 1.0
-    failing = find_sum_violations(broken, res.parents, cfg)
+    failing = find_sum_violations(broken, res.parents, cfg.measures)
     # uplift: 6 + 7 = 13 against 12; list price: c2 holds 6, not 5
     assert sorted(failing["reason"]) == ["a child differs from the parent value", "children do not sum to the parent"]
 

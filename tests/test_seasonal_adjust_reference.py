@@ -22,7 +22,8 @@ import statsmodels
 from statsmodels.tsa.seasonal import seasonal_decompose
 
 from pipelines.config import parse_config
-from pipelines.stages.cleaned_history import clean_history, seasonal_component
+from pipelines.engines.outliers import seasonal_component
+from pipelines.stages.cleaned_history import clean_history
 
 
 def _series(rng: np.random.Generator, n: int, m: int) -> np.ndarray:

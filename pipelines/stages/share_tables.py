@@ -1,7 +1,7 @@
 """Stage 4, `share_tables`: each child's base share of its parent, and its lifecycle rule.
 
 The parent is product x site; its children are the customer spans active in
-any period of the horizon (`lifecycle_history.active_children`). The share
+any period of the horizon (`engines.children.active_children`). The share
 table has one row per child; the shares per horizon period are derived from it
 in `reinitialized_target` (`split_shares` below does both, `period_basis`
 gives the per-period methods their weight in each period).
