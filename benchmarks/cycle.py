@@ -108,7 +108,8 @@ from pipelines.stages.plan_measures import (  # noqa: E402
 from pipelines.stages.raw_history import load_raw_history  # noqa: E402
 from pipelines.stages.reinitialized_target import parents_with_mix_change, reinitialize_target  # noqa: E402
 from pipelines.stages.share_drift import drifted_beyond, share_drift  # noqa: E402
-from pipelines.engines.shares import compute_shares, find_new_customers_without_share  # noqa: E402
+from pipelines.engines.lifecycle_shares import find_new_customers_without_share  # noqa: E402
+from pipelines.engines.shares import compute_shares  # noqa: E402
 from pipelines.stages.statistical_forecast import forecast_cycle, model_label  # noqa: E402
 
 STAGES = ("raw", "clean", "lifecycle", "shares", "target", "forecast", "reconcile", "plan", "drift", "report")
@@ -1004,7 +1005,7 @@ def run_cycle(args: argparse.Namespace) -> dict:
     # 5. target
     target = bench.run("target: reinitialize_target", lambda: reinitialize_target(shares, history, config, cycle_date, products),
                        rows_in=len(shares), rows_out=len, sf=target_sf,
-                       note=lambda t: "share basis " + ", ".join(f"{k} {v:,}" for k, v in t["share_basis"].value_counts().items())
+                       note=lambda t: "share basis " + ", ".join(f"{k} {v:,}" for k, v in t["basis"].value_counts().items())
                        if target_sf or args.share_method == "seasonal" else "")
     (target,) = validate("target", [(target, S.ReinitializedTarget)])
     bench.run("  checks target", lambda: parents_with_mix_change(target, shares), rows_in=len(target),

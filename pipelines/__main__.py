@@ -161,15 +161,13 @@ def print_summary(config_path: str, checks: list[tuple[str, str, bool, str]] | N
             p = parents[parents["product_class"] == name]
             fallbacks = int((p["fallback"] != "none").sum())
             print(f"  {name:<14} {len(p):>4} parents {len(group):>5} children  ({how}; {fallbacks} parents used a fallback)")
-    accuracy = table("backtest_accuracy")
-    if accuracy is not None and len(accuracy):
-        from pipelines.stages.backtest_accuracy import choose_strategies
-
+    choice = table("strategy_choice")  # as the cycle decided it, not decided again from today's config
+    if choice is not None and len(choice):
         print("strategy:     (backtest, leaf-grain WMAPE; margin = runner-up minus chosen)")
-        for _, row in choose_strategies(accuracy, config).iterrows():
+        for _, row in choice.iterrows():
             print(f"  {row['product_class']:<14} {row['strategy']:<21} WMAPE {row['leaf_wmape']:.3f}  "
                   f"margin {row['margin']:+.4f} over {row['runner_up'] or '-'}  seasonal naive {row['seasonal_naive_wmape']:.3f}"
-                  f"  ({row['forecast_grain']})")
+                  f"  ({row['configured_strategy']})")
     drift = table("share_drift")
     if drift is not None and len(drift):
         limit = config.monitoring.max_share_drift_pp

@@ -6,7 +6,10 @@ valid choices, so a planner can fix the YAML without reading this module.
 
 from __future__ import annotations
 
+import copy
 import datetime as dt
+import warnings
+from collections.abc import Mapping
 from pathlib import Path
 from typing import Literal, get_args, get_origin
 
@@ -27,7 +30,7 @@ from pipelines.config_sections import (
     ShareBasisConfig,
 )
 from pipelines.errors import ConfigError
-from pipelines.vocabulary import PeriodKind
+from pipelines.vocabulary import FORECAST_GRAIN_STRATEGY, RENAMED_SHARE_METHODS, PeriodKind
 
 LATEST_COMPLETE_PERIOD = "latest_complete_period"
 
@@ -50,6 +53,18 @@ class CalendarConfig(Frozen):
     # period found in history (the loader delivers complete periods only).
     cycle_date: dt.date | Literal["latest_complete_period"] = LATEST_COMPLETE_PERIOD
     horizon: int = Field(26, ge=1, le=520, description="periods to forecast")
+
+
+def class_section(classes: Mapping[str, ProductClassConfig], name: str, source) -> ProductClassConfig:
+    """The section of product class `name`; a ConfigError naming the file and the known classes if none."""
+    try:
+        return classes[name]
+    except KeyError:
+        raise ConfigError(
+            f"{source}: product_classes has no class {name!r}; "
+            f"known classes: {sorted(classes)}. Add it to the config "
+            f"or correct the product_class column of the products file."
+        ) from None
 
 
 class PlanningConfig(Frozen):
@@ -77,14 +92,7 @@ class PlanningConfig(Frozen):
         return self._source
 
     def product_class(self, name: str) -> ProductClassConfig:
-        try:
-            return self.product_classes[name]
-        except KeyError:
-            raise ConfigError(
-                f"{self.source}: product_classes has no class {name!r}; "
-                f"known classes: {sorted(self.product_classes)}. Add it to the config "
-                f"or correct the product_class column of the products file."
-            ) from None
+        return class_section(self.product_classes, name, self.source)
 
     def check_classes_known(self, classes_in_data: set[str], where: str) -> None:
         """Raise if the data name a product class the config does not define."""
@@ -131,20 +139,29 @@ class PlanningConfig(Frozen):
                     order.append(n)
         return order
 
+    def class_windows(self) -> dict[str, int]:
+        """key -> window of every product class (not the fallback windows)."""
+        return {f"product_classes.{name}.window": pc.window for name, pc in self.product_classes.items()}
+
+    def basis_windows(self) -> dict[str, int]:
+        """key -> window of every share basis (not the fallback windows)."""
+        return {f"share_bases.{name}.window": basis.window for name, basis in self.share_bases.items()}
+
     def check_windows_fit(self, history_periods: int) -> None:
         """Raise if a class window (not a fallback window) is longer than the history."""
-        for name, pc in self.product_classes.items():
-            self._check_window_fits(f"product_classes.{name}.window", pc.window, history_periods)
+        check_windows_fit(self.class_windows(), history_periods, self.source)
 
     def check_share_bases_fit(self, history_periods: int) -> None:
         """Raise if a share basis window (not a fallback window) is longer than the history."""
-        for name, basis in self.share_bases.items():
-            self._check_window_fits(f"share_bases.{name}.window", basis.window, history_periods)
+        check_windows_fit(self.basis_windows(), history_periods, self.source)
 
-    def _check_window_fits(self, key: str, window: int, history_periods: int) -> None:
+
+def check_windows_fit(windows: Mapping[str, int], history_periods: int, source) -> None:
+    """Raise a ConfigError naming the key when a window (key -> periods) is longer than the history."""
+    for key, window in windows.items():
         if window > history_periods:
             raise ConfigError(
-                f"{self.source}: {key} is {window} periods but the history holds only {history_periods} "
+                f"{source}: {key} is {window} periods but the history holds only {history_periods} "
                 f"periods before the cycle date; set a window of at most {history_periods}."
             )
 
@@ -188,10 +205,53 @@ def _format_error(source: Path, err: ValidationError) -> str:
     return "\n".join(lines)
 
 
+class ConfigDeprecationWarning(FutureWarning):
+    """A config key or value of the last release: still read, under its new name, until the next release."""
+
+
+def upgrade_renamed(data: dict, source: Path) -> tuple[dict, list[str]]:
+    """A copy of the raw config with last release's key and value names replaced by this release's.
+
+    Returns the copy and one message per rename, naming the file, the old key
+    and the new key to write. Giving both the old and the new key is an error.
+    """
+    data = copy.deepcopy(data)
+    messages = []
+    classes = data.get("product_classes")
+    for name, section in (classes.items() if isinstance(classes, dict) else ()):
+        if not isinstance(section, dict):
+            continue
+        if "forecast_grain" in section:
+            old = section.pop("forecast_grain")
+            if "strategy" in section:
+                raise ConfigError(
+                    f"{source}: product_classes.{name} gives both strategy and forecast_grain (its name of the last "
+                    f"release); remove forecast_grain."
+                )
+            new = FORECAST_GRAIN_STRATEGY.get(old, old)
+            section["strategy"] = new
+            messages.append(
+                f"{source}: product_classes.{name}.forecast_grain is renamed strategy; write strategy: {new} "
+                f"(product_site -> top_down, product_site_customer -> bottom_up, auto -> auto). "
+                f"forecast_grain is read until the next release."
+            )
+        if section.get("method") in RENAMED_SHARE_METHODS:
+            old, new = section["method"], RENAMED_SHARE_METHODS[section["method"]]
+            section["method"] = new
+            messages.append(
+                f"{source}: product_classes.{name}.method {old} is renamed {new}; write method: {new}. "
+                f"{old} is read until the next release."
+            )
+    return data, messages
+
+
 def parse_config(data: object, source: Path | str = "<memory>") -> PlanningConfig:
     source = Path(source)
     if not isinstance(data, dict):
         raise ConfigError(f"{source}: expected a mapping of sections at the top level, got {type(data).__name__}")
+    data, renamed = upgrade_renamed(data, source)
+    for message in renamed:
+        warnings.warn(message, ConfigDeprecationWarning, stacklevel=2)
     try:
         config = PlanningConfig.model_validate(data)
     except ValidationError as err:

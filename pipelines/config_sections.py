@@ -12,6 +12,7 @@ from typing import Literal
 from pydantic import BaseModel, ConfigDict, Field, ValidationInfo, field_validator, model_validator
 
 from pipelines.vocabulary import (
+    AUTO,
     BASIS_SHARE_METHODS,
     BasisKind,
     ModelName,
@@ -156,7 +157,11 @@ class ProductClassConfig(Frozen):
         description="method seasonal only: neighbouring periods of the year pooled on each side "
         "of the period (0 to 4; default 0 = the period of the year alone)",
     )
-    forecast_grain: Literal["product_site", "product_site_customer", "auto"] = "product_site"
+    strategy: Literal[(AUTO,) + values(Strategy)] = Field(
+        "top_down",
+        description="how the class's leaf and parent forecasts are made coherent; auto: the backtest's winner by "
+        "leaf-grain WMAPE (strategy_choice)",
+    )
     models: ModelChoice = ModelChoice()
     outliers: OutlierConfig | None = Field(
         None,

@@ -1,6 +1,6 @@
 """The cycle's HTML report, from the store and the Dagster instance.
 
-The page (pipelines/stages/report.py renders it) covers every class of one
+The page (pipelines/engines/report_html.py renders it) covers every class of one
 cycle: the classes' tables come from the store, the checks' latest status per
 partition from the runs of that partition in the instance (so a class's
 rebuild shows its new results, and a run a blocking check stopped shows the
@@ -15,10 +15,12 @@ from pathlib import Path
 import dagster as dg
 import pandas as pd
 
+from pipelines.checks import CHECKS, schema_check
 from pipelines.config import PlanningConfig
 from pipelines.engines import report_charts, report_html
 from pipelines.partitions import partition_key
 from pipelines.resources import read_table, report_folder
+from pipelines.tables import MODELS
 
 REPORT_FILE = "cycle_report.html"
 CHART_KINDS = ("parents", "shares")
@@ -26,10 +28,9 @@ CHECK_COLUMNS = ["product_class", "asset", "check", "passed", "severity", "descr
 
 
 def check_descriptions() -> dict[tuple[str, str], str]:
-    """(asset, check) -> the check's description, from the asset definitions."""
-    from pipelines.definitions import ASSETS  # the definitions import this module's users, so import late
-
-    return {(s.asset_key.to_user_string(), s.name): s.description or "" for a in ASSETS for s in a.check_specs}
+    """(asset, check) -> the check's description, from the catalogue of checks and the tables' models."""
+    checks = list(CHECKS) + [schema_check(name, model) for name, model in MODELS.items()]
+    return {(c.asset, c.name): c.description for c in checks}
 
 
 def latest_check_results(instance: dg.DagsterInstance, cycle: str, classes: list[str], runs_per_class: int = 20) -> pd.DataFrame:
@@ -63,8 +64,6 @@ def latest_check_results(instance: dg.DagsterInstance, cycle: str, classes: list
 
 def write_cycle_report(config: PlanningConfig, instance: dg.DagsterInstance, cycle: str) -> Path:
     """Render the cycle's page from the store and the instance; the path written."""
-    from pipelines.stages.backtest_accuracy import choose_strategies
-
     store = Path(config.store.path)
     folder = report_folder(config.model_copy(update={"calendar": config.calendar.model_copy(update={"cycle_date": cycle})}))
     folder.mkdir(parents=True, exist_ok=True)
@@ -75,8 +74,7 @@ def write_cycle_report(config: PlanningConfig, instance: dg.DagsterInstance, cyc
     shares = table("share_tables")
     classes = list(config.product_classes)
     checks = latest_check_results(instance, cycle, classes)
-    accuracy = table("backtest_accuracy")
-    choice = choose_strategies(accuracy, config) if accuracy is not None and len(accuracy) else None
+    choice = table("strategy_choice")  # the decision the cycle stored, not one made again from today's config
     drift = table("share_drift")
     charts = {
         c: [n for n in (report_charts.chart_file_name(k, c, cycle) for k in CHART_KINDS) if (folder / n).exists()] for c in classes

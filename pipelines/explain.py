@@ -3,9 +3,9 @@
 `explain_leaf(tables, product, site, customer, period=None)` reads only what
 the cycle stored and tells it in the order the cycle made it:
 
-1. the history share: window (configured, used, dates), share method
-   (`pooled` or `mean_of_ratios`, Gross & Sohl 1990), fallback, the customer's
-   and the parent's volume in the window;
+1. the history share: window (configured, used, dates), share method (any
+   of `pipelines.vocabulary.ShareMethod`, Gross & Sohl 1990), fallback, the
+   customer's and the parent's volume in the window;
 2. the lifecycle rule (`share_tables.lifecycle_rule`: phase-in / phase-out,
    reference customer and scale, initial share, awaiting history), the active
    periods and the base share; what the lifecycle stage moved for this leaf
@@ -14,7 +14,8 @@ the cycle stored and tells it in the order the cycle made it:
    including those on a retired product's history mapped to it when
    `lifecycle_history` is given);
 4. the parent forecast: model and its parameters (`forecast_models`), demand
-   class (Syntetos, Boylan & Croston 2005), strategy and forecast grain;
+   class (Syntetos, Boylan & Croston 2005), strategy and the grains its models
+   ran at, and how the strategy was decided (the stored `strategy_choice`);
 5. the result: with a top-down split, period share x parent forecast = leaf
    forecast, with the numbers; with another strategy, the leaf's own or
    reconciled forecast and the proportion of the parent it came to. With
@@ -35,39 +36,27 @@ import pandas as pd
 
 from pipelines.calendar import period_start, shift_periods
 from pipelines.errors import PlanningError, UnknownKeyError
+from pipelines.vocabulary import (
+    AUTO,
+    FORECAST_BASIS_TEXT,
+    LIFECYCLE_RULE_TEXT,
+    SHARE_METHOD_TEXT,
+    STRATEGY_TEXT,
+    ZERO_REASON_TEXT,
+    Basis,
+)
 
 REQUIRED_TABLES = ("share_tables", "reinitialized_target", "parent_forecast", "statistical_forecast")
-OPTIONAL_TABLES = ("forecast_models", "history_corrections", "lifecycle_audit", "cycle_calendar", "lifecycle_history")
+OPTIONAL_TABLES = (
+    "forecast_models", "history_corrections", "lifecycle_audit", "cycle_calendar", "lifecycle_history", "strategy_choice"
+)
 LISTED = 30  # names listed at most in an error
 RELATIVE_TOLERANCE = 1e-6  # share x parent against the stored leaf forecast
 
-METHODS = {
-    "pooled": "pooled: the customer's volume over the window / the parent's volume over the window",
-    "mean_of_ratios": "mean_of_ratios: the mean, over the window's periods with parent volume, of the customer's "
-    "quantity / the parent's quantity",
-}
-LIFECYCLE_RULES = {
-    "none": "none: an established customer active over the whole horizon, share from history",
-    "phase_in": "phase_in: an established customer whose span starts inside the horizon; no share before it starts",
-    "phase_out": "phase_out: an established customer whose span ends inside the horizon; no share after it ends",
-    "reference": "reference: a new customer taking scale x its reference customer's history share, taken from the reference",
-    "initial_share": "initial_share: a new customer with a planner-given share; the other customers are scaled by 1 minus it",
-    "awaiting_history": "awaiting_history: a new customer with neither reference customer nor initial share; "
-    "no share until it has enough own history",
-}
-ZERO_REASONS = {
-    "product_not_active": "the product's own span does not cover this period",
-    "no_active_child": "no customer span of the parent covers this period",
-    "awaiting_history": "the only active customers are new customers still awaiting history",
-    "no_share_among_active": "the active customers hold no share",
-}
-BASES = {
-    "target": "top-down split of the parent forecast by the reinitialized target",
-    "share": "split of the parent forecast by the period shares, as the parent's targets were all 0 (baseline 0)",
-    "own_forecast": "the customer's own forecast, bottom-up: the parent is the sum of its customers",
-    "forecast_proportions": "the parent forecast split in proportion to the customers' own forecasts",
-    "reconciled": "parent and customer forecasts reconciled by MinT / WLS",
-}
+METHODS = SHARE_METHOD_TEXT
+LIFECYCLE_RULES = LIFECYCLE_RULE_TEXT
+ZERO_REASONS = ZERO_REASON_TEXT
+BASES = FORECAST_BASIS_TEXT
 
 
 def _qty(x: float) -> str:
@@ -161,11 +150,13 @@ def _horizon(tables: Mapping[str, pd.DataFrame], product: str, site: str, custom
                 f"share table has the customer; the tables are of different cycles or {name} is stale. "
                 f"Rematerialize {name} and the assets after it."
             )
-    out = target[["period_start", "share", "target", "parent_baseline", "zero_share_reason"]]
+    out = target[["period_start", "share", "target", "parent_baseline", "zero_reason"]]
+    out = out.rename(columns={"zero_reason": "zero_share_reason"})  # the parent forecast's own zero_reason joins below
     out = out.merge(
         parent[["period_start", "forecast", "zero_reason"]].rename(columns={"forecast": "parent_forecast"}), on="period_start", how="outer"
     )
-    out = out.merge(leaf[["period_start", "forecast", "split_basis"]].rename(columns={"forecast": "leaf_forecast"}), on="period_start", how="outer")
+    leaf = leaf[["period_start", "forecast", "basis"]].rename(columns={"forecast": "leaf_forecast"})
+    out = out.merge(leaf, on="period_start", how="outer")
     return out.sort_values("period_start").reset_index(drop=True)
 
 
@@ -251,7 +242,27 @@ def _corrections_section(row: pd.Series, corrections: pd.DataFrame | None, histo
     return lines
 
 
-def _forecast_section(row: pd.Series, horizon: pd.DataFrame, parent: pd.DataFrame, models: pd.DataFrame | None) -> list[str]:
+def _choice_lines(product_class: str, choice: pd.DataFrame | None) -> list[str]:
+    """How the class's strategy was decided, from the stored strategy_choice (nothing without it)."""
+    if choice is None or choice.empty:
+        return []
+    mine = choice[choice["product_class"] == product_class]
+    if mine.empty:
+        return []
+    c = mine.iloc[0]
+    how = "the backtest's choice (strategy: auto)" if c["configured_strategy"] == AUTO else "configured"
+    text = f"   Decided for the class this cycle: {STRATEGY_TEXT.get(c['strategy'], c['strategy'])}; {how}"
+    if pd.notna(c["leaf_wmape"]):
+        text += f"; backtest leaf WMAPE {float(c['leaf_wmape']):.3f}"
+        if c["runner_up"] and pd.notna(c["margin"]):
+            text += f", margin {float(c['margin']):+.4f} over {c['runner_up']}"
+    return [text + "."]
+
+
+def _forecast_section(
+    row: pd.Series, horizon: pd.DataFrame, parent: pd.DataFrame, models: pd.DataFrame | None,
+    choice: pd.DataFrame | None = None,
+) -> list[str]:
     product, site, customer = row["product"], row["site"], row["customer"]
     first = parent.iloc[0]
     lines = [f"4. Parent forecast {product} x {site}"]
@@ -269,7 +280,8 @@ def _forecast_section(row: pd.Series, horizon: pd.DataFrame, parent: pd.DataFram
     lines.append(f"   Demand class {first['demand_class']}{f' ({cut})' if cut else ''}.")
     strategy = first.get("strategy") if "strategy" in parent.columns else None
     named = f"Strategy {strategy}" if isinstance(strategy, str) and strategy else "Strategy not recorded in parent_forecast"
-    lines.append(f"   {named} (forecast grain {first['forecast_grain']}).")
+    lines.append(f"   {named} (models ran at grain: {first['model_grain']}).")
+    lines += _choice_lines(row["product_class"], choice)
     if models is not None:
         leaf_model = models[(models["grain"] == "leaf") & (models["product"] == product) & (models["site"] == site) & (models["customer"] == customer)]
         if len(leaf_model):
@@ -286,8 +298,8 @@ def _result_text(r) -> str:
     if pd.notna(r.zero_share_reason) and (pd.notna(r.zero_reason) or leaf == 0):
         why = ZERO_REASONS.get(str(r.zero_share_reason), str(r.zero_share_reason))
         return f"every share of the parent is 0 in this period ({r.zero_share_reason}: {why}), so the forecast is 0: leaf forecast {_qty(leaf)}."
-    basis = str(r.split_basis)
-    if basis in ("target", "share"):
+    basis = str(r.basis)
+    if basis in (Basis.REINITIALIZED_TARGET, Basis.PERIOD_SHARE):
         text = f"leaf forecast = period share x parent forecast = {share:.6f} x {_qty(parent)} = {_qty(share * parent)}"
         if abs(share * parent - leaf) > RELATIVE_TOLERANCE * max(abs(leaf), 1.0):
             implied = leaf / parent if parent else float("nan")
@@ -323,7 +335,7 @@ def _table(horizon: pd.DataFrame) -> list[str]:
     head = f"   {'period':<10}  {'share':>9}  {'parent forecast':>15}  {'leaf forecast':>13}  how"
     lines = [head, "   " + "-" * (len(head) - 3)]
     for r in horizon.itertuples(index=False):
-        how = str(r.split_basis)
+        how = str(r.basis)
         if pd.notna(r.zero_share_reason):
             how += f", all shares 0: {r.zero_share_reason}"
         elif r.share == 0:
@@ -361,7 +373,7 @@ def explain_leaf(tables: Mapping[str, pd.DataFrame], product: str, site: str, cu
     siblings = _leaf_rows(tables["share_tables"], product, site)
     lines += _lifecycle_section(row, siblings, tables.get("lifecycle_audit")) + [""]
     lines += _corrections_section(row, tables.get("history_corrections"), tables.get("lifecycle_history")) + [""]
-    lines += _forecast_section(row, horizon, parent, tables.get("forecast_models")) + [""]
+    lines += _forecast_section(row, horizon, parent, tables.get("forecast_models"), tables.get("strategy_choice")) + [""]
 
     if period is None:
         lines.append("5. Result per horizon period (share = the period share: base shares of the customers active in it, renormalised)")
@@ -369,7 +381,9 @@ def explain_leaf(tables: Mapping[str, pd.DataFrame], product: str, site: str, cu
         changes = share_changes(horizon, siblings)
         if changes:
             lines += ["", "   The share changes inside the horizon where the customers active in the period change:"] + changes
-        lines.append("   With a top-down split (basis target or share), leaf forecast = share x parent forecast.")
+        lines.append(
+            "   With a top-down split (basis reinitialized_target or period_share), leaf forecast = share x parent forecast."
+        )
     else:
         try:
             asked = pd.Timestamp(period)

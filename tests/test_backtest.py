@@ -16,8 +16,9 @@ import pandas as pd
 import pytest
 
 from pipelines.config import parse_config
-from pipelines.schemas import BacktestAccuracy, StrategyChoice
-from pipelines.stages.backtest_accuracy import choose_strategies, origin_ordinals, run_backtest
+from pipelines.schemas_forecast import BacktestAccuracy, StrategyChoice
+from pipelines.stages.backtest_accuracy import origin_ordinals, run_backtest
+from pipelines.stages.strategy_choice import choose_strategies
 
 ETS = {"smooth": "auto_ets", "erratic": "auto_ets", "intermittent": "auto_ets", "lumpy": "auto_ets"}
 SES = {"smooth": "ses", "erratic": "ses", "intermittent": "ses", "lumpy": "ses"}
@@ -47,7 +48,7 @@ def frames(y: np.ndarray):
 def config(models, window=52, strategies=("top_down", "bottom_up"), grain="auto", origins=4):
     return parse_config(
         {
-            "product_classes": {"a": {"window": window, "forecast_grain": grain, "models": models}},
+            "product_classes": {"a": {"window": window, "strategy": grain, "models": models}},
             "calendar": {"horizon": 13},
             "backtest": {"origins": origins, "horizon": 13, "step": 13, "strategies": list(strategies)},
         }
@@ -91,7 +92,7 @@ def test_wmape_bias_and_fva_by_hand_on_a_one_period_horizon():
     y[0, 0, 60] = 8.0
     history, children, cycle = frames(y)
     cfg = parse_config(
-        {"product_classes": {"a": {"window": 10, "forecast_grain": "auto", "models": SES}}, "calendar": {"horizon": 1},
+        {"product_classes": {"a": {"window": 10, "strategy": "auto", "models": SES}}, "calendar": {"horizon": 1},
          "backtest": {"origins": 1, "horizon": 1, "step": 1, "strategies": ["top_down", "bottom_up"]}}
     )
     table = run_backtest(history, children, cfg, cycle).accuracy
@@ -111,7 +112,7 @@ def test_fixed_grain_class_keeps_its_strategy_and_reports_the_margin():
         [("a", s, "leaf", "wmape", v, 4, 13, 3) for s, v in (("top_down", 0.30), ("bottom_up", 0.20), ("seasonal_naive", 0.25))],
         columns=["product_class", "strategy", "grain", "metric", "value", "origins", "horizon", "series"],
     )
-    fixed = StrategyChoice.validate(choose_strategies(table, config(SES, grain="product_site")))
+    fixed = StrategyChoice.validate(choose_strategies(table, config(SES, grain="top_down")))
     auto = StrategyChoice.validate(choose_strategies(table, config(SES)))
     # fixed product_site -> top_down even though it loses: margin 0.20 - 0.30 = -0.10, worse than seasonal naive
     assert fixed.iloc[0][["strategy", "runner_up"]].tolist() == ["top_down", "bottom_up"]

@@ -19,14 +19,8 @@ import pytest
 
 from pipelines.errors import PlanningError, UnknownKeyError
 from pipelines.explain import explain_leaf
-from pipelines.schemas import (
-    ForecastModels,
-    HistoryCorrections,
-    LifecycleAudit,
-    ParentForecast,
-    ReinitializedTarget,
-    StatisticalForecast,
-)
+from pipelines.schemas import HistoryCorrections, LifecycleAudit, ReinitializedTarget
+from pipelines.schemas_forecast import ForecastModels, ParentForecast, StatisticalForecast
 
 CYCLE = pd.Timestamp("2026-02-02")
 H1, H2, H3 = "2026-02-02", "2026-02-09", "2026-02-16"
@@ -60,7 +54,7 @@ def target(zero_h3=False):
         if zero_h3 and start == H3:
             share, reason = 0.0, "product_not_active"
         rows.append(("P1", "S1", customer, pd.Timestamp(start), CYCLE, share * 12.5, share, 12.5, reason))
-    frame = pd.DataFrame(rows, columns=["product", "site", "customer", "period_start", "cycle_date", "target", "share", "parent_baseline", "zero_share_reason"])
+    frame = pd.DataFrame(rows, columns=["product", "site", "customer", "period_start", "cycle_date", "target", "share", "parent_baseline", "zero_reason"])
     return ReinitializedTarget.validate(frame)
 
 
@@ -69,16 +63,16 @@ def parent_forecast(strategy="top_down", zero_h3=False):
     for start, value in PARENT_FORECAST.items():
         zero = zero_h3 and start == H3
         rows.append((CYCLE, "a", "P1", "S1", pd.Timestamp(start), 0.0 if zero else value, "auto_ets(season_length=1)", "smooth",
-                     "product_site", strategy, "product_not_active" if zero else None))
+                     "parent", strategy, "product_not_active" if zero else None))
     frame = pd.DataFrame(rows, columns=["cycle_date", "product_class", "product", "site", "period_start", "forecast", "model",
-                                        "demand_class", "forecast_grain", "strategy", "zero_reason"])
+                                        "demand_class", "model_grain", "strategy", "zero_reason"])
     return ParentForecast.validate(frame)
 
 
-def leaf_forecast(target_frame, parent_frame, basis="target"):
+def leaf_forecast(target_frame, parent_frame, basis="reinitialized_target"):
     merged = target_frame.merge(parent_frame[["period_start", "forecast"]].rename(columns={"forecast": "parent_forecast"}), on="period_start")
-    frame = merged.assign(product_class="a", forecast=merged["share"] * merged["parent_forecast"], split_basis=basis)
-    return StatisticalForecast.validate(frame[["product", "site", "customer", "period_start", "cycle_date", "product_class", "forecast", "parent_forecast", "split_basis"]])
+    frame = merged.assign(product_class="a", forecast=merged["share"] * merged["parent_forecast"], basis=basis)
+    return StatisticalForecast.validate(frame[["product", "site", "customer", "period_start", "cycle_date", "product_class", "forecast", "parent_forecast", "basis"]])
 
 
 def models():
@@ -172,7 +166,7 @@ def test_period_where_every_share_is_zero(tables):
 def test_bottom_up_leaf_reports_its_proportion_not_a_split(tables):
     # own forecast of C1 in H1 = 60 of the parent's 100 (the sum of its customers): 60 %
     p = parent_forecast(strategy="bottom_up")
-    tables.update(parent_forecast=p, statistical_forecast=leaf_forecast(tables["reinitialized_target"], p, basis="own_forecast"))
+    tables.update(parent_forecast=p, statistical_forecast=leaf_forecast(tables["reinitialized_target"], p, basis="leaf_forecast"))
     text = explain_leaf(tables, "P1", "S1", "C1", period=H1)
     assert "Strategy bottom_up" in text
     assert "Leaf forecast 60.00, 60.00 % of the parent forecast 100.00: the customer's own forecast, bottom-up" in text
@@ -237,7 +231,7 @@ def test_explains_the_tables_the_stages_themselves_make(make_history, make_confi
 
     croston = {d: "croston_classic" for d in ("smooth", "erratic", "intermittent", "lumpy")}
     config = make_config(
-        {"a": {"window": 4, "forecast_grain": "product_site", "models": croston}},
+        {"a": {"window": 4, "strategy": "top_down", "models": croston}},
         calendar={"horizon": 2}, lifecycle={"min_history_periods": 4},
     )
     weeks = ["2026-01-05", "2026-01-12", "2026-01-19", "2026-01-26"]

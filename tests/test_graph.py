@@ -14,9 +14,7 @@ import pandas as pd
 import pytest
 import yaml
 
-from assets.backtest_accuracy import CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE
-from assets.reconciliation import CHECKS as RECONCILIATION_CHECKS
-from assets.share_tables import NEW_CUSTOMER_WITHOUT_SHARE
+from pipelines.checks import CHECKS, CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE, NEW_CUSTOMERS_HAVE_SHARE
 from pipelines.config import load_config
 from pipelines.definitions import ASSETS, build_definitions
 from pipelines.partitions import current_cycle
@@ -86,7 +84,7 @@ def assert_only_the_new_customer_warning_fails(result: dg.ExecuteInProcessResult
     """Every blocking check passes; the one failing check is the WARN on new customers without share."""
     checks = checks_of(result)
     failed = [k for k, e in checks.items() if not e.passed]
-    assert failed == [f"share_tables:{NEW_CUSTOMER_WITHOUT_SHARE}"]
+    assert failed == [f"share_tables:{NEW_CUSTOMERS_HAVE_SHARE}"]
     warning = checks[failed[0]]
     assert warning.severity == dg.AssetCheckSeverity.WARN
     # the demo plants FITT-001 / SITE-SOUTH / C0051 without reference or initial share (data/demo/README.md)
@@ -102,36 +100,34 @@ def test_demo_cycle_succeeds_and_every_blocking_check_passes(demo_cycle):
     # by design the demo has one new customer without share: a WARN that does not stop the cycle
     assert_only_the_new_customer_warning_fails(result)
     assert all(e.passed for e in checks.values() if e.severity == dg.AssetCheckSeverity.ERROR)
-    # every asset has its schema check, and the reconciliation carries its rule checks
+    # every asset has its schema check, and every rule check ran on the asset it judges
     for key in dg.AssetSelection.all().resolve(ASSETS):
         name = key.to_user_string()
         assert f"{name}:{name}_matches_schema" in checks
-    for name in RECONCILIATION_CHECKS:
-        assert f"reconciliation:{name}" in checks
+    for check in CHECKS:
+        assert f"{check.asset}:{check.name}" in checks
 
 
 def test_auto_classes_follow_the_backtest_choice_and_stay_coherent(demo_cycle):
     result, store, config = demo_cycle
-    from pipelines.config import load_config
-    from pipelines.stages.backtest_accuracy import choose_strategies
-
     accuracy = read_table(store, "backtest_accuracy")
     # every class is backtested (consumables is fixed to the split, the others `auto`); each has all
     # five strategies and the benchmark at both grains
     assert set(accuracy["product_class"]) == {"consumables", "seasonal", "spares"}
     assert set(accuracy["strategy"]) == {"top_down", "forecast_proportions", "bottom_up", "mint_shrink", "wls_var", "seasonal_naive"}
     assert set(accuracy["metric"]) == {"wmape", "bias", "mase", "fva"} and set(accuracy["grain"]) == {"leaf", "parent"}
-    choice = choose_strategies(accuracy, load_config(config)).set_index("product_class")
+    # the decision is stored once (strategy_choice) and the forecast followed it
+    choice = read_table(store, "strategy_choice").set_index("product_class")
     parent = read_table(store, "parent_forecast")
     in_effect = parent.drop_duplicates("product_class").set_index("product_class")["strategy"]
     assert in_effect.sort_index().to_dict() == choice["strategy"].sort_index().to_dict()
     # an `auto` winner has the lowest leaf WMAPE of the five, so its margin over the runner-up is >= 0
-    auto = choice[choice["forecast_grain"] == "auto"]
+    auto = choice[choice["configured_strategy"] == "auto"]
     assert set(auto.index) == {"seasonal", "spares"} and (auto["margin"] >= 0).all()
     assert choice.loc["consumables", "strategy"] == "top_down"
     # the choice and margins are in the metadata; the WARN check ran (and passes on the demo)
-    assert all("strategy_choice" in m for m in metadata_of(result, "backtest_accuracy").values())
-    warn = checks_of(result)["backtest_accuracy:chosen_strategy_beats_seasonal_naive"]
+    warn = checks_of(result)["strategy_choice:chosen_strategy_beats_seasonal_naive"]
+    assert "strategy_choice" in warn.metadata
     assert warn.severity == dg.AssetCheckSeverity.WARN and warn.passed
     models = read_table(store, "forecast_models")
     assert {"parent", "leaf"} >= set(models["grain"]) and (models["model"] != "").all()
@@ -279,7 +275,7 @@ def test_planner_metadata_on_share_tables_and_reinitialized_target(demo_cycle):
     assert mix["parents_with_mix_change_count"].value == 4
     text = mix["parents_with_mix_change"].value
     assert "C0050" in text and "C0003" in text and text.count("FILT-003") == 2
-    assert "product_not_active" in mix["zero_share_periods_by_reason"].value
+    assert "product_not_active" in mix["zero_periods_by_reason"].value
 
 
 def test_rebuilding_one_class_replaces_exactly_its_partition(demo_cycle):
@@ -363,10 +359,10 @@ def test_monthly_calendar_runs_the_same_graph(tmp_path):
     # month, with no history and so no share yet; the backtest may lose to seasonal naive on 35 months
     checks = checks_of(result)
     failed = {k for k, e in checks.items() if not e.passed}
-    assert f"share_tables:{NEW_CUSTOMER_WITHOUT_SHARE}" in failed
-    assert failed <= {f"share_tables:{NEW_CUSTOMER_WITHOUT_SHARE}", f"backtest_accuracy:{CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE}"}
+    assert f"share_tables:{NEW_CUSTOMERS_HAVE_SHARE}" in failed
+    assert failed <= {f"share_tables:{NEW_CUSTOMERS_HAVE_SHARE}", f"strategy_choice:{CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE}"}
     assert all(checks[k].severity == dg.AssetCheckSeverity.WARN for k in failed)
-    assert f"backtest_accuracy:{CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE}" in checks
+    assert f"strategy_choice:{CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE}" in checks
     store = tmp_path / "store.duckdb"
     cleaned = read_table(store, "cleaned_history")
     assert (cleaned["period_start"].dt.day == 1).all()

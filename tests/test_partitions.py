@@ -9,7 +9,7 @@ import yaml
 
 from pipelines.definitions import build_definitions
 from pipelines.errors import ConfigError
-from pipelines.jobs import new_history_file_sensor, weekly_cycle_schedule
+from pipelines.jobs import cycle_schedule, new_history_file_sensor
 from pipelines.partitions import CYCLE, PRODUCT_CLASS, current_cycle, narrow_config, partition_key, split_key
 from pipelines.resources import PlanningConfigResource
 
@@ -80,7 +80,7 @@ def test_schedule_registers_the_cycle_and_requests_one_run_per_class(tmp_path):
             resources={"planning": planning},
             repository_def=build_definitions(planning.path).get_repository_def(),
         )
-        requests = weekly_cycle_schedule.evaluate_tick(context).run_requests
+        requests = cycle_schedule.evaluate_tick(context).run_requests
         assert [r.partition_key for r in requests] == ["2026-11-30|fast", "2026-11-30|slow"]
         assert instance.get_dynamic_partitions(CYCLE) == ["2026-11-30"]
         assert instance.get_dynamic_partitions(PRODUCT_CLASS) == ["fast", "slow"]

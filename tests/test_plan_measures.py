@@ -17,7 +17,7 @@ from pipelines.config import parse_config
 from pipelines.engines.measure_split import find_pins_not_kept, find_sum_violations, plan_totals
 from pipelines.engines.shares import compute_shares
 from pipelines.errors import ConfigError, PinError
-from pipelines.schemas import PlanMeasures
+from pipelines.schemas_forecast import PlanMeasures
 from pipelines.stages.plan_measures import plan_measures, share_basis_tables
 from pipelines.stages.reinitialized_target import reinitialize_target
 from pipelines.stages.statistical_forecast import forecast_cycle
@@ -363,8 +363,8 @@ def test_default_measures_are_the_statistical_forecast_split_by_its_target():
 def test_the_statistical_forecast_measure_reproduces_the_leaf_forecast(make_history, make_children, make_config):
     # class a is split top-down by the reinitialized target, class b forecast bottom-up at the leaf;
     # A1 / S1 customer k3 ends in W2, B1 / S1 customer k2 has no history (its leaf forecast is 0)
-    classes = {"a": {"window": 4, "forecast_grain": "product_site", "models": CROSTON},
-               "b": {"window": 4, "forecast_grain": "product_site_customer", "models": CROSTON}}
+    classes = {"a": {"window": 4, "strategy": "top_down", "models": CROSTON},
+               "b": {"window": 4, "strategy": "bottom_up", "models": CROSTON}}
     cfg = make_config(classes, calendar={"horizon": 3})
     weeks = ["2026-01-05", "2026-01-12", "2026-01-19", "2026-01-26"]
     qty = {("A1", "k1"): [4, 6, 5, 7], ("A1", "k2"): [1, 0, 2, 1], ("A1", "k3"): [3, 3, 0, 3], ("B1", "k1"): [2, 0, 0, 3]}
@@ -378,14 +378,14 @@ def test_the_statistical_forecast_measure_reproduces_the_leaf_forecast(make_hist
     forecast = forecast_cycle(history, shares, target, cfg, CYCLE)
     res = plan_measures(shares, forecast.parent, forecast.leaf, target, adjustments(), pins(), cfg, CYCLE)
     assert_checks_pass(res, cfg)
-    merged = forecast.leaf.merge(res.plan, on=["product", "site", "customer", "period_start"], how="left")
+    merged = forecast.leaf.merge(res.plan, on=["product", "site", "customer", "period_start"], how="left", suffixes=("_leaf", ""))
     # every leaf row the plan does not hold is a period the child is not active in, forecast 0
     assert merged["value"].isna().sum() == 1 and merged.loc[merged["value"].isna(), "forecast"].tolist() == [0.0]
     both = merged[merged["value"].notna()]
     assert (both["forecast"] > 0).sum() >= 6  # not a vacuous comparison of zeros
     np.testing.assert_allclose(both["value"], both["forecast"], rtol=1e-12, atol=0)
     basis = both.groupby("product")["basis"].unique().map(list).to_dict()
-    assert basis == {"A1": ["reinitialized_target"], "B1": ["forecast_leaf"]}
+    assert basis == {"A1": ["reinitialized_target"], "B1": ["leaf_forecast"]}
 
 
 # ------------------------------------------------------------------ properties

@@ -9,16 +9,14 @@ from __future__ import annotations
 import pandas as pd
 import pytest
 
-from pipelines.schemas import ParentForecast, Reconciliation, StatisticalForecast
-from pipelines.stages.reconciliation import (
-    find_incoherent,
+from pipelines.engines.proofs import (
     find_negative,
-    find_parents_without_children,
     find_shares_not_summing_to_one,
     find_volume_after_phase_out,
     find_volume_outside_active_span,
-    reconcile,
 )
+from pipelines.schemas_forecast import ParentForecast, Reconciliation, StatisticalForecast
+from pipelines.stages.reconciliation import find_incoherent, find_parents_without_children, reconcile
 
 CYCLE = pd.Timestamp("2026-02-02")
 H1, H2, H3 = pd.Timestamp("2026-02-02"), pd.Timestamp("2026-02-09"), pd.Timestamp("2026-02-16")
@@ -31,7 +29,7 @@ def parents(rows):
     frame.insert(0, "cycle_date", CYCLE)
     frame["model"] = "ses"
     frame["demand_class"] = "smooth"
-    frame["forecast_grain"] = "product_site"
+    frame["model_grain"] = "parent"
     frame["zero_reason"] = None
     return ParentForecast.validate(frame)
 
@@ -42,15 +40,15 @@ def leaves(rows):
     frame["cycle_date"] = CYCLE
     frame["product_class"] = "a"
     frame["parent_forecast"] = 0.0
-    frame["split_basis"] = "target"
+    frame["basis"] = "reinitialized_target"
     return StatisticalForecast.validate(frame)
 
 
 def share_rows(rows):
-    """rows: (product, site, customer, period_start, share[, zero_share_reason]) - the columns the share check reads."""
+    """rows: (product, site, customer, period_start, share[, zero_reason]) - the columns the share check reads."""
     full = [tuple(r) + (None,) * (6 - len(r)) for r in rows]
-    frame = pd.DataFrame(full, columns=["product", "site", "customer", "period_start", "share", "zero_share_reason"])
-    frame["zero_share_reason"] = frame["zero_share_reason"].astype(object)
+    frame = pd.DataFrame(full, columns=["product", "site", "customer", "period_start", "share", "zero_reason"])
+    frame["zero_reason"] = frame["zero_reason"].astype(object)
     return frame
 
 

@@ -44,7 +44,7 @@ def by_period(target, column="share"):
 def reasons(target):
     """[reason in H1, H2, H3] of a one-parent target (None = shares sum to 1)."""
     first = target.drop_duplicates("period_start").sort_values("period_start")
-    return [None if pd.isna(r) else r for r in first["zero_share_reason"]]
+    return [None if pd.isna(r) else r for r in first["zero_reason"]]
 
 
 def one_week_history(make_history):
@@ -65,7 +65,7 @@ def test_target_is_share_times_parent_mean_over_the_window_used(make_history, ma
     # C1: 0.2 x 25 = 5; C2: 0.8 x 25 = 20 (in every horizon week)
     assert per_customer(target, "parent_baseline") == {"C1": [25.0], "C2": [25.0]}
     assert per_customer(target) == {"C1": [pytest.approx(5.0)], "C2": [pytest.approx(20.0)]}
-    assert target["zero_share_reason"].isna().all()
+    assert target["zero_reason"].isna().all()
 
 
 def test_baseline_divides_by_fewer_periods_when_parent_history_starts_inside_the_window(make_history, make_share_table, config):

@@ -221,7 +221,7 @@ def page_input(make_share_table):
     shares.loc[shares["customer"] == "C1", "product_class"] = ["a", HOSTILE]
     checks = [
         ("raw_history", "raw_history_matches_schema", True, "ERROR", "Proves that raw_history matches its model."),
-        ("share_tables", "new_customer_without_share", False, "WARN", "Lists new customers without a share."),
+        ("share_tables", "new_customers_have_share", False, "WARN", "Lists new customers without a share."),
         ("reconciliation", "children_sum_to_parent", False, "ERROR", f"Proves children sum to parent {HOSTILE}."),
     ]
     rejected = pd.DataFrame(
@@ -241,7 +241,7 @@ def test_page_lists_failed_checks_first_and_escapes_every_text(page_input):
         charts={HOSTILE: ['parents_a"b.png']},
     )
     # failed ERROR, then failed WARN, then passed
-    assert page.index("children_sum_to_parent") < page.index("new_customer_without_share") < page.index("raw_history_matches_schema")
+    assert page.index("children_sum_to_parent") < page.index("new_customers_have_share") < page.index("raw_history_matches_schema")
     assert page.index('id="checks"') < page.index('id="classes"')
     assert "1 blocking (ERROR) check(s) failed and 1 warning(s)" in page
     assert "<script" not in page.lower() and "<img src=x" not in page

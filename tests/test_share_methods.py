@@ -1,4 +1,4 @@
-"""The share methods `smoothed`, `seasonal` and `forecast_proportions`: hand-worked cases,
+"""The share methods `smoothed`, `seasonal` and `children_forecast`: hand-worked cases,
 the per-period basis under the lifecycle rules, the config keys, and properties.
 
 Weekly cases: cycle date 2026-02-02, age 1 = week 2026-01-26 ... age 5 = 2025-12-29;
@@ -15,11 +15,11 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from pipelines.engines.period_shares import period_of_year
+from pipelines.engines.proofs import find_shares_not_summing_to_one
 from pipelines.engines.shares import compute_shares, smoothed_proportions
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF
-from pipelines.schemas import SHARE_BASES, ReinitializedTarget, ShareTable
-from pipelines.stages.reconciliation import find_shares_not_summing_to_one
+from pipelines.schemas import PERIOD_BASES, ReinitializedTarget, ShareTable
 from pipelines.stages.reinitialized_target import reinitialize_target
 
 CYCLE = pd.Timestamp("2026-02-02")
@@ -46,7 +46,7 @@ def by_period(target, column="share"):
 
 def basis_by_period(target):
     """[share_basis per horizon period] of a one-parent target."""
-    return target.drop_duplicates("period_start").sort_values("period_start")["share_basis"].tolist()
+    return target.drop_duplicates("period_start").sort_values("period_start")["basis"].tolist()
 
 
 def children(customers, product="P1"):
@@ -209,7 +209,7 @@ def test_horizon_week_53_reads_the_history_of_week_52(make_history, make_config)
     assert basis_by_period(target) == ["period_of_year"]
 
 
-# ------------------------------------------------------------------ forecast_proportions
+# ------------------------------------------------------------------ children_forecast
 def lifecycle_children(rows):
     """rows: (product, customer, own_periods, first, last, reference_customer, scale) on site S1, class a."""
     frame = pd.DataFrame(rows, columns=["product", "customer", "own_periods", "first_active_period", "last_active_period", "reference_customer", "scale"])
@@ -221,9 +221,9 @@ def lifecycle_children(rows):
     return frame
 
 
-def test_forecast_proportions_split_by_the_childrens_forecasts_under_the_lifecycle_rules(make_history, make_config):
+def test_children_forecast_split_by_the_childrens_forecasts_under_the_lifecycle_rules(make_history, make_config):
     config = make_config(
-        {"a": {"window": 4, "method": "forecast_proportions", "models": LAST_VALUE}},
+        {"a": {"window": 4, "method": "children_forecast", "models": LAST_VALUE}},
         calendar={"horizon": 3},
         lifecycle={"min_history_periods": 3},
     )
@@ -272,7 +272,7 @@ def test_pooled_and_mean_of_ratios_record_history_share_as_their_basis(make_hist
         config = make_config({"a": {"window": 2, "method": method} | extra}, calendar={"horizon": 2})
         history = make_history(history_rows(volumes))
         target = reinitialize_target(compute_shares(history, children(["C1", "C2"]), config, CYCLE), history, config, CYCLE)
-        assert set(target["share_basis"]) == {"history_share"}
+        assert set(target["basis"]) == {"history_share"}
 
 
 # ------------------------------------------------------------------ config
@@ -288,7 +288,7 @@ def test_pooled_and_mean_of_ratios_record_history_share_as_their_basis(make_hist
         ({"window": 4, "method": "seasonal", "seasonal_years": 11}, ["product_classes.a.seasonal_years", "1 to 10"]),
         ({"window": 4, "method": "seasonal", "seasonal_band": 5}, ["product_classes.a.seasonal_band", "0 to 4"]),
         ({"window": 4, "method": "mean_of_ratios", "seasonal_band": 1}, ["seasonal_band applies only to method 'seasonal'"]),
-        ({"window": 4, "method": "weighted"}, ["product_classes.a.method", "'smoothed'", "'seasonal'", "'forecast_proportions'"]),
+        ({"window": 4, "method": "weighted"}, ["product_classes.a.method", "'smoothed'", "'seasonal'", "'children_forecast'"]),
     ],
 )
 def test_config_refuses_bad_method_keys_naming_key_and_range(make_config, section, words):
@@ -303,7 +303,7 @@ def test_config_accepts_each_method_with_its_keys(make_config):
         {
             "s": {"window": 26, "method": "smoothed", "smoothing": 0.2},
             "y": {"window": 52, "method": "seasonal", "seasonal_years": 2, "seasonal_band": 1},
-            "f": {"window": 26, "method": "forecast_proportions"},
+            "f": {"window": 26, "method": "children_forecast"},
         }
     )
     assert config.product_classes["s"].smoothing == 0.2
@@ -334,7 +334,7 @@ def method_inputs(draw):
                          draw(st.one_of(st.none(), st.floats(0.1, 1.0))), initial))
             for age in range(1, draw(st.integers(0, 60)) + 1, draw(st.integers(1, 9))):
                 history.append((product, "S1", c, CYCLE - age * WEEK, float(draw(st.integers(0, 9))), "own", product, c, draw(st.booleans()) and draw(st.booleans())))
-    method = draw(st.sampled_from(["pooled", "mean_of_ratios", "smoothed", "seasonal", "forecast_proportions"]))
+    method = draw(st.sampled_from(["pooled", "mean_of_ratios", "smoothed", "seasonal", "children_forecast"]))
     return kids, history, method
 
 
@@ -342,7 +342,7 @@ def method_inputs(draw):
 @given(method_inputs())
 def test_property_shares_of_every_method_sum_to_one_per_parent_and_period_or_are_all_zero(make_config, case):
     kid_rows, history_rows_, method = case
-    extra = {"smoothed": {"smoothing": 0.3}, "seasonal": {"seasonal_years": 1, "seasonal_band": 1}, "forecast_proportions": {"models": LAST_VALUE}}
+    extra = {"smoothed": {"smoothing": 0.3}, "seasonal": {"seasonal_years": 1, "seasonal_band": 1}, "children_forecast": {"models": LAST_VALUE}}
     config = make_config(
         {"a": {"window": 8, "method": method, "fallback_windows": [52]} | extra.get(method, {})},
         calendar={"horizon": PROPERTY_HORIZON},
@@ -362,8 +362,8 @@ def test_property_shares_of_every_method_sum_to_one_per_parent_and_period_or_are
 
     assert find_shares_not_summing_to_one(target).empty
     assert target["share"].between(0, 1).all() and shares["share"].between(0, 1).all()
-    assert target["share_basis"].isin(SHARE_BASES).all()
-    assert (target.groupby(["product", "site", "period_start"])["share_basis"].nunique() == 1).all()
+    assert target["basis"].isin(PERIOD_BASES).all()
+    assert (target.groupby(["product", "site", "period_start"])["basis"].nunique() == 1).all()
     merged = target.merge(shares[LEAF + ["first_active_period", "last_active_period", "lifecycle_rule"]], on=LEAF)
     inactive = (merged["period_start"] < merged["first_active_period"]) | (merged["period_start"] > merged["last_active_period"])
     assert (merged.loc[inactive | (merged["lifecycle_rule"] == "awaiting_history"), "share"] == 0).all()

@@ -10,7 +10,8 @@ from __future__ import annotations
 import pandas as pd
 import pytest
 
-from pipelines.engines.shares import compute_shares, find_new_customers_without_share, new_customers
+from pipelines.engines.lifecycle_shares import find_new_customers_without_share, new_customers
+from pipelines.engines.shares import compute_shares
 from pipelines.schemas import ShareTable
 
 CYCLE = pd.Timestamp("2026-02-02")

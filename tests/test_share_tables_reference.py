@@ -215,7 +215,7 @@ def test_forecast_cycle_split_equals_middle_out(method, td_method):
     ours = fc.leaf.set_index(LEAF + ["period_start"])["forecast"].sort_index()
     assert list(ours.index) == list(ref.index)
     np.testing.assert_allclose(ours.to_numpy(), ref.to_numpy(), rtol=TOL, atol=TOL)
-    assert set(fc.leaf["split_basis"]) == {"target"}
+    assert set(fc.leaf["basis"]) == {"reinitialized_target"}
 
 
 @pytest.mark.parametrize(("method", "td_method"), METHODS)

@@ -6,7 +6,7 @@ import numpy as np
 import pandas as pd
 
 from pipelines.calendar import ordinal_to_start, period_ordinal, span_bounds
-from pipelines.engines.shares import ShareSettings
+from pipelines.engines.share_settings import ShareSettings
 from pipelines.keys import LEAF, factorize, lookup
 
 

@@ -16,9 +16,10 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from pipelines.calendar import period_ordinal
 from pipelines.config_sections import MeasureConfig
 from pipelines.engines.integer_split import largest_remainder, round_to_pack
-from pipelines.keys import LEAF, factorize
+from pipelines.keys import LEAF, PARENT, factorize, lookup
 from pipelines.vocabulary import MeasureFallback, values
 
 PIN_KEY = ["measure"] + LEAF + ["period_start"]
@@ -247,3 +248,129 @@ def plan_totals(plan: pd.DataFrame, parents: pd.DataFrame) -> pd.DataFrame:
     out["leaf"] = np.where(mean, out["leaf_mean"], out["leaf_sum"])
     out[["parent_periods", "leaf_rows", "pinned_rows"]] = out[["parent_periods", "leaf_rows", "pinned_rows"]].fillna(0).astype(np.int64)
     return out[["measure", "rule", "parent_periods", "leaf_rows", "pinned_rows", "statistic", "parent", "leaf"]]
+
+
+PARENT_COLUMNS = [
+    "measure", "rule", "product", "site", "period_start", "parent_value", "pins_sum", "pinned_children",
+    "active_children", "split_total", "status",
+]
+
+
+OVERFLOW_COLUMNS = ["measure", "product", "site", "period_start", "parent_value", "pins_sum", "overflow", "pins"]
+
+
+def plan_piece(name, m, split, value, has, pinned, label, children, parent_of_child, starts, cycle_date) -> pd.DataFrame:
+    child, col = np.nonzero(split.rows)
+    par = parent_of_child[child]
+    code = split.fallback[child, col]
+    is_pin = pinned[child, col]
+    basis = np.where(is_pin, "pin", np.where(code == EVEN, "even", label[par]))
+    out = children[LEAF].iloc[child].reset_index(drop=True)
+    out["period_start"] = starts[col]
+    out["cycle_date"] = cycle_date
+    out["measure"] = name
+    out["value"] = split.value[child, col]
+    out["parent_value"] = np.where(has[par, col], value[par, col], np.nan)
+    out["rule"] = m.rule
+    out["basis"] = basis
+    out["fallback"] = np.asarray(FALLBACKS, dtype=object)[code]
+    out["pinned"] = is_pin
+    return out
+
+
+def parent_piece(name, m, split, value, has, pinned, active, parents, parent_of_child, starts) -> pd.DataFrame:
+    n_parents = len(parents)
+    par, col = np.nonzero(split.live)
+    n_active = _parent_sum(active.astype(float), parent_of_child, n_parents)
+    n_pinned = _parent_sum(pinned.astype(float), parent_of_child, n_parents)
+    out = parents[PARENT].iloc[par].reset_index(drop=True)
+    out.insert(0, "rule", m.rule)
+    out.insert(0, "measure", name)
+    out["period_start"] = starts[col]
+    out["parent_value"] = np.where(has[par, col], value[par, col], np.nan)
+    out["pins_sum"] = split.pins_sum[par, col]
+    out["pinned_children"] = n_pinned[par, col].astype(np.int64)
+    out["active_children"] = n_active[par, col].astype(np.int64)
+    out["split_total"] = split.split_total[par, col]
+    out["status"] = np.asarray(STATUSES, dtype=object)[split.status[par, col]]
+    return out
+
+
+def orphan_parents(rows: pd.DataFrame, name: str, m: MeasureConfig, period: str, first_ord: int, starts) -> pd.DataFrame:
+    """Parent periods of the input whose product x site has no child active in the horizon."""
+    col = period_ordinal(pd.DatetimeIndex(pd.to_datetime(rows["period_start"])), period) - first_ord
+    frame = rows[PARENT].assign(period_start=starts[col], value=rows["value"].to_numpy(float))
+    agg = frame.groupby(PARENT + ["period_start"], sort=True)["value"].agg("mean" if m.rule == "replicate" else "sum")
+    out = agg.rename("parent_value").reset_index()
+    out.insert(0, "rule", m.rule)
+    out.insert(0, "measure", name)
+    out["pins_sum"] = 0.0
+    out["pinned_children"] = 0
+    out["active_children"] = 0
+    out["split_total"] = out["parent_value"]
+    out["status"] = STATUSES[NO_ACTIVE_CHILD]
+    return out
+
+
+def overflow_piece(name, split, value, has, pin, pinned, children, parents, parent_of_child, starts) -> pd.DataFrame:
+    """One row per overflowing parent period: parent value, pins (customer=value) and the overflow."""
+    par, col = np.nonzero(split.status == OVERFLOW)
+    v = np.where(has[par, col], value[par, col], 0.0)
+    out = parents[PARENT].iloc[par].reset_index(drop=True)
+    out.insert(0, "measure", name)
+    out["period_start"] = starts[col]
+    out["parent_value"] = np.where(has[par, col], value[par, col], np.nan)
+    out["pins_sum"] = split.pins_sum[par, col]
+    out["overflow"] = np.abs(split.pins_sum[par, col] - v)  # what the pins take beyond the parent
+    child, pcol = np.nonzero(pinned & (split.status == OVERFLOW)[parent_of_child])
+    text = pd.DataFrame(
+        {"p": parent_of_child[child], "c": pcol, "t": children["customer"].to_numpy(object)[child] + "=" + pd.Series(pin[child, pcol]).map("{:g}".format).to_numpy(object)}
+    )
+    joined = text.groupby(["p", "c"])["t"].agg(", ".join)
+    out["pins"] = joined.reindex(pd.MultiIndex.from_arrays([par, col])).to_numpy(object)
+    return out
+
+
+def overflow_message(overflow: pd.DataFrame, source) -> str:
+    shown = overflow.head(20)
+    lines = [
+        f"{m} {p} / {s} {d:%Y-%m-%d}: parent {v:g}, pins {ps:g} ({pins}), {o:g} over"
+        for m, p, s, d, v, ps, o, pins in shown[OVERFLOW_COLUMNS].itertuples(index=False)
+    ]
+    more = f"\n  ... and {len(overflow) - len(shown)} more" if len(overflow) > len(shown) else ""
+    return (
+        f"pins exceed their parent in {len(overflow)} parent period(s) (config {source}: pins.on_overflow "
+        f"is error):\n  " + "\n  ".join(lines) + more + "\nLower the pins, raise the parent value, or set "
+        "pins.on_overflow: warn to keep the pins and give the other customers 0."
+    )
+
+
+def cells_of(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame, first_ord: int, h: int, period: str):
+    """(row in table, horizon column, inside) of each row of `frame` keyed by `cols` and `period_start`."""
+    row = lookup(frame, cols, table) if len(frame) else np.zeros(0, dtype=np.int64)
+    col = period_ordinal(pd.DatetimeIndex(pd.to_datetime(frame["period_start"])), period) - first_ord
+    return row, col, (col >= 0) & (col < h)
+
+
+def leaf_matrix(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame, column: str | list[str], first_ord: int, h: int, period: str):
+    """(len(table), h) matrix of `column` (one per name of a list) from a long frame keyed by `cols` and
+    period_start, 0 where absent; the keys are looked up once for all columns."""
+    names = [column] if isinstance(column, str) else column
+    out = [np.zeros((len(table), h)) for _ in names]
+    if len(frame):
+        row, col, inside = cells_of(frame, cols, table, first_ord, h, period)
+        ok = inside & (row >= 0)
+        for m, name in zip(out, names):
+            m[row[ok], col[ok]] = frame[name].to_numpy(float)[ok]
+    return out[0] if isinstance(column, str) else out
+
+
+def combine_cells(row: np.ndarray, col: np.ndarray, value: np.ndarray, shape: tuple[int, int], mean: bool):
+    """Sum (or mean) of `value` per (row, col) cell, and which cells have any."""
+    total = np.zeros(shape)
+    count = np.zeros(shape)
+    np.add.at(total, (row, col), value)
+    np.add.at(count, (row, col), 1.0)
+    if mean:
+        total = np.divide(total, count, out=np.zeros(shape), where=count > 0)
+    return total, count > 0

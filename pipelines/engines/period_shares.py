@@ -17,7 +17,7 @@ and their fallback in any period without a basis:
   week 52), damping noise at the cost of a flatter season. Shortage periods are
   left out. A parent without volume in the pooled periods of h's period of the
   year falls back to its pooled share in h.
-- `forecast_proportions` (Athanasopoulos, Ahmed & Hyndman 2009): the
+- `children_forecast` (forecast proportions, Athanasopoulos, Ahmed & Hyndman 2009): the
   children's own base forecasts, from the models the class uses
   (`pipelines.engines.models.base_forecasts` run at leaf grain on the
   children's lifecycle history before the cycle date, shortage periods
@@ -40,10 +40,12 @@ import numpy as np
 import pandas as pd
 
 from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal, season_length, span_bounds
+from pipelines.engines.lifecycle_shares import reference_positions, split_shares
 from pipelines.engines.models import SeriesGrid, base_forecasts, series_grid
-from pipelines.engines.shares import ShareSettings, reference_positions, shortage_periods, split_shares
+from pipelines.engines.share_settings import ShareSettings
+from pipelines.engines.shares import shortage_periods
 from pipelines.keys import LEAF, PARENT, factorize, lookup
-from pipelines.vocabulary import BASIS_OF_METHOD, NEW_CUSTOMER_RULES, PER_PERIOD_METHODS
+from pipelines.vocabulary import BASIS_OF_METHOD, NEW_CUSTOMER_RULES, PER_PERIOD_METHODS, Basis, ShareMethod
 
 # the `share_basis` (pipelines.schemas.SHARE_BASES) of a parent period where a per-period method has a basis
 
@@ -183,7 +185,7 @@ def period_basis(
     row_ok = (child_of_row >= 0) & ~shortage_periods(history, settings.exclude_shortages)
     ords = period_ordinal(history["period_start"], period)
     qty = history["quantity"].to_numpy(float)
-    fp = (methods == "forecast_proportions") & established
+    fp = (methods == ShareMethod.CHILDREN_FORECAST) & established
     forecasts = children_forecasts(history, shares[fp], settings, cycle_ord, h) if fp.any() else np.zeros((0, h))
     for name in pd.unique(classes[np.isin(methods, PER_PERIOD_METHODS)]):  # a few classes, not a loop over series
         pc = settings.rules[name]
@@ -218,13 +220,15 @@ def period_shares(
     products: pd.DataFrame | None = None,
     history: pd.DataFrame | None = None,
     horizon: int | None = None,
+    basis: tuple[np.ndarray, np.ndarray] | None = None,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(share, zero_share_reason (None where shares sum to 1), share_basis), each (n, H), per share-table row.
+    """(share, zero_reason (None where shares sum to 1), basis), each (n, H), per share-table row.
 
     products: the product master, to tell `product_not_active` from
     `no_active_child` (without it, every product counts as active).
     history: the lifecycle history, needed by the per-period share methods
-    (`share_tables.period_basis`). horizon: H, default the calendar's.
+    (`period_basis`) unless `basis` gives their (weight, basis) as decided
+    once for the cycle (`stored_basis`). horizon: H, default the calendar's.
     """
     settings = ShareSettings.of(settings)
     period = settings.period
@@ -236,7 +240,7 @@ def period_shares(
     parent_code, parents = factorize(shares, PARENT)
     n_parents = len(parents)
     rule = shares["lifecycle_rule"].to_numpy(object)
-    weight, basis = period_basis(shares, history, settings, cycle_date, len(starts))
+    weight, basis = basis if basis is not None else period_basis(shares, history, settings, cycle_date, len(starts))
     share, all_zero = split_shares(
         parent_code,
         n_parents,
@@ -267,3 +271,35 @@ def period_shares(
     ).astype(object)
     reason[~all_zero] = None
     return share, reason[parent_code], basis
+
+
+def basis_table(shares: pd.DataFrame, weight: np.ndarray, basis: np.ndarray, starts: pd.DatetimeIndex) -> pd.DataFrame:
+    """The period basis of the children of per-period methods, long: leaf keys, period_start, weight, basis."""
+    rows = np.flatnonzero(shares["method"].isin(PER_PERIOD_METHODS).to_numpy())
+    h = len(starts)
+    w = np.broadcast_to(weight if weight.ndim == 2 else weight[:, None], (len(shares), h))
+    out = shares[LEAF].iloc[np.repeat(rows, h)].reset_index(drop=True)
+    out["period_start"] = np.tile(starts.values, len(rows))
+    out["weight"] = w[rows].ravel()
+    out["basis"] = basis[rows].ravel()
+    return out
+
+
+def stored_basis(shares: pd.DataFrame, table: pd.DataFrame, starts: pd.DatetimeIndex) -> tuple[np.ndarray, np.ndarray]:
+    """(weight, basis) per share-table row and horizon period from the stored period basis (`basis_table`).
+
+    Children the table does not hold (one share per child) weigh their
+    history share in every period, with basis `history_share`; without any
+    row the weight is that one share per child.
+    """
+    history_share = shares["history_share"].to_numpy(float)
+    label = np.full((len(shares), len(starts)), str(Basis.HISTORY_SHARE), dtype=object)
+    if table.empty:
+        return history_share, label
+    weight = np.repeat(history_share[:, None], len(starts), axis=1)
+    row = lookup(table, LEAF, shares)
+    col = pd.DatetimeIndex(starts).get_indexer(pd.DatetimeIndex(table["period_start"]))
+    ok = (row >= 0) & (col >= 0)
+    weight[row[ok], col[ok]] = table["weight"].to_numpy(float)[ok]
+    label[row[ok], col[ok]] = table["basis"].to_numpy(object)[ok]
+    return weight, label

@@ -87,24 +87,22 @@ per series, sum(raw_quantity) + sum(delta of corrections) = sum(quantity).
 
 from __future__ import annotations
 
-import json
+from collections.abc import Mapping
 from dataclasses import dataclass, field
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import (
-    horizon_starts,
-    ordinal_to_start,
-    period_ordinal,
-    period_start,
-    resolve_cycle_date,
-    season_length,
-    span_bounds,
-)
-from pipelines.config import PlanningConfig
+from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal, season_length, span_bounds
+from pipelines.checks import CORRECTIONS_EXPLAIN_CHANGES, EVERY_RAW_ROW_ACCOUNTED, REJECTED_ROWS_WITHIN_LIMIT
+from pipelines.config import CalendarConfig, PlanningConfig, class_section
+from pipelines.config_sections import CleansingConfig, ProductClassConfig
+from pipelines.engines.cleansing import correction_rows, reject_lines, shortage_cells
 from pipelines.engines.outliers import judge_outliers, rolling_median, rule_parameters, seasonal_component
-from pipelines.keys import LEAF, PARENT, factorize, lookup
+from pipelines.engines.report_charts import corrections_chart
+from pipelines.keys import LEAF, factorize, lookup
+from pipelines.results import CheckRows, Log, StageResult, quiet
 
 
 @dataclass(frozen=True)
@@ -119,81 +117,6 @@ class CleaningResult:
     shortage_periods: pd.DataFrame = field(default_factory=pd.DataFrame)
 
 
-def reject_lines(
-    raw: pd.DataFrame, products: pd.DataFrame, spans: pd.DataFrame, config: PlanningConfig
-) -> tuple[pd.DataFrame, pd.DataFrame, pd.Timestamp]:
-    """Split raw lines into usable lines (parsed) and rejected lines (with reason).
-
-    Returns (used, rejected, cycle_date). `used` has the leaf keys, `ordinal`
-    (period number) and `quantity` (float).
-    """
-    period = config.calendar.period
-    keys = raw[LEAF]
-    reason = pd.Series(pd.NA, index=raw.index, dtype=object)
-
-    def mark(mask: pd.Series, why: str) -> None:
-        reason[mask & reason.isna()] = why
-
-    mark((keys == "").any(axis=1), "missing_key")
-    dates = pd.to_datetime(raw["period_start"], format="ISO8601", errors="coerce")
-    mark(dates.isna(), "bad_date")
-    qty = pd.to_numeric(raw["quantity"], errors="coerce")
-    mark(~np.isfinite(qty.to_numpy(dtype=float, na_value=np.nan)), "bad_quantity")
-    mark(~raw["product"].isin(products["product"]), "unknown_product")
-    span_index = pd.MultiIndex.from_frame(spans[LEAF])
-    mark(pd.Series(~pd.MultiIndex.from_frame(keys).isin(span_index), index=raw.index), "no_customer_span")
-
-    ok = reason.isna().to_numpy()
-    starts = period_start(dates[ok], period)
-    ordinals = period_ordinal(starts, period)
-    last = ordinal_to_start(np.array([ordinals.max()]), period)[0] if len(ordinals) else None
-    cycle_date = resolve_cycle_date(config.calendar.cycle_date, last, period, str(config.source))
-    cycle_ord = period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0]
-    late = np.zeros(len(raw), dtype=bool)
-    late[np.flatnonzero(ok)[ordinals >= cycle_ord]] = True
-    mark(pd.Series(late, index=raw.index), "on_or_after_cycle_date")
-
-    ok = reason.isna().to_numpy()
-    used = raw.loc[ok, LEAF].reset_index(drop=True)
-    used["ordinal"] = period_ordinal(period_start(dates[ok], period), period)
-    used["quantity"] = qty[ok].to_numpy(dtype=float)
-    rejected = raw.loc[~ok].copy()
-    rejected["reason"] = reason[~ok].astype(str)
-    return used, rejected.reset_index(drop=True), cycle_date
-
-
-def _shortage_cells(
-    shortages: pd.DataFrame | None, leaves: pd.DataFrame, keep: np.ndarray, first_ord: int, period: str
-) -> tuple[np.ndarray, pd.DataFrame]:
-    """Boolean (n_leaves, n_periods) of kept cells whose product x site has a shortage that period.
-
-    Also the shortage records bucketed to their period, with the children each flagged.
-    """
-    n, t = keep.shape
-    columns = PARENT + ["period_start", "children"]
-    cells = np.zeros((n, t), dtype=bool)
-    if shortages is None or len(shortages) == 0:
-        empty = {"product": pd.Series(dtype=object), "site": pd.Series(dtype=object)}
-        return cells, pd.DataFrame(empty | {"period_start": pd.Series(dtype="datetime64[ns]"), "children": pd.Series(dtype=np.int64)})
-    dates = pd.to_datetime(shortages["period_start"], errors="coerce")
-    records = shortages.loc[dates.notna().to_numpy(), PARENT].astype(str).reset_index(drop=True)
-    records["period_start"] = period_start(dates[dates.notna()].reset_index(drop=True), period)
-    records = records.drop_duplicates().reset_index(drop=True)
-    col = period_ordinal(records["period_start"], period) - first_ord
-    parent_code, parents = factorize(leaves, PARENT) if n else (np.zeros(0, np.int64), pd.DataFrame(columns=PARENT))
-    ppos = lookup(records, PARENT, parents) if n else np.full(len(records), -1)
-    ok = (ppos >= 0) & (col >= 0) & (col < t)
-    by_parent = np.zeros((len(parents), t), dtype=bool)
-    by_parent[ppos[ok], col[ok]] = True
-    cells = by_parent[parent_code] & keep
-    li, pj = np.nonzero(cells)
-    flagged_per_parent = np.bincount(parent_code[li] * t + pj, minlength=len(parents) * t)
-    children = np.zeros(len(records), dtype=np.int64)
-    children[ok] = flagged_per_parent[ppos[ok] * t + col[ok]]
-    records["children"] = children
-    return cells, records.sort_values(columns[:3], kind="stable").reset_index(drop=True)
-
-
 def clean_history(
     raw: pd.DataFrame,
     products: pd.DataFrame,
@@ -206,7 +129,7 @@ def clean_history(
     `shortages` (optional): product, site, period_start (any day of the period).
     """
     period = config.calendar.period
-    used, rejected, cycle_date = reject_lines(raw, products, spans, config)
+    used, rejected, cycle_date = reject_lines(raw, products, spans, config.calendar, config.source)
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
 
     # --- bucket and net: one value per leaf and period
@@ -237,12 +160,12 @@ def clean_history(
     values = raw_net.copy()
     negative = observed & (net < 0)
     if negative.any():
-        corrections.append(_correction_rows(negative, raw_net, np.zeros_like(raw_net), "negative_net_to_zero", {"rule": "net_then_zero"}))
+        corrections.append(correction_rows(negative, raw_net, np.zeros_like(raw_net), "negative_net_to_zero", {"rule": "net_then_zero"}))
         values[negative] = 0.0
     corrected = negative.copy()
 
     # --- shortage periods: flagged on every child of the product x site
-    short, shortage_periods = _shortage_cells(shortages, leaves, keep, first_ord, period)
+    short, shortage_periods = shortage_cells(shortages, leaves, keep, first_ord, period)
 
     # --- per product class: outliers on the non-shortage periods, then the shortage rule
     product_class = products.drop_duplicates("product").set_index("product")["product_class"]
@@ -270,7 +193,7 @@ def clean_history(
             if j.flagged.any():
                 after = np.where(j.flagged, j.replacement, x)
                 corrections.append(
-                    _correction_rows(j.flagged, x, after, f"{rule.rule}_cap", params, rows, j.figures | seasonal_figures, adjusted)
+                    correction_rows(j.flagged, x, after, f"{rule.rule}_cap", params, rows, j.figures | seasonal_figures, adjusted)
                 )
                 corrected[rows] |= j.flagged
                 x = after
@@ -285,7 +208,7 @@ def clean_history(
                 after = np.where(filled, np.clip(base + s, 0.0, None), x)
                 fill_params = {"rule": "fill_baseline", "window": rule.window, "seasonal_adjust": rule.seasonal_adjust}
                 figures = {"median": base, "periods": count} | seasonal_figures
-                corrections.append(_correction_rows(filled, x, after, "shortage_fill", fill_params, rows, figures, adjusted))
+                corrections.append(correction_rows(filled, x, after, "shortage_fill", fill_params, rows, figures, adjusted))
                 corrected[rows] |= filled
                 x = after
         values[rows] = x
@@ -302,7 +225,7 @@ def clean_history(
     cleaned["shortage"] = short[li, pj]
 
     empty = np.zeros((0, 0))
-    corr = pd.concat(corrections or [_correction_rows(empty.astype(bool), empty, empty, "hampel_cap", {})], ignore_index=True)
+    corr = pd.concat(corrections or [correction_rows(empty.astype(bool), empty, empty, "hampel_cap", {})], ignore_index=True)
     corr = pd.concat([leaves.iloc[corr.pop("leaf").to_numpy()].reset_index(drop=True), corr], axis=1)
     corr.insert(3, "period_start", ordinal_to_start(corr.pop("col").to_numpy() + first_ord, period))
     # stable sort on the key only: the rules of one period stay in the order they ran
@@ -315,37 +238,6 @@ def clean_history(
         outlier_rules=pd.DataFrame(summary),
         shortage_periods=shortage_periods,
     )
-
-
-def _correction_rows(
-    mask: np.ndarray,
-    before: np.ndarray,
-    after: np.ndarray,
-    rule: str,
-    params: dict,
-    leaf_index: np.ndarray | None = None,
-    figures: dict[str, np.ndarray] | None = None,
-    adjusted: np.ndarray | None = None,
-) -> pd.DataFrame:
-    """One row per True cell of `mask`: before, after, delta and the parameters as JSON.
-
-    `leaf_index` maps the rows of `mask` to leaf codes (default: the identity);
-    `figures` are per-cell numbers added to each row's parameters (NaN left out);
-    `adjusted` per row of `mask` says whether the series was seasonally adjusted.
-    """
-    i, j = np.nonzero(mask)
-    b, a = before[i, j], after[i, j]
-    if figures or adjusted is not None:
-        picked = {k: v[i, j] for k, v in (figures or {}).items()}
-        extra = [{k: round(float(v[r]), 6) for k, v in picked.items() if not np.isnan(v[r])} for r in range(len(i))]
-        if adjusted is not None:
-            for r, e in enumerate(extra):
-                e["seasonal_adjusted"] = bool(adjusted[i[r]])
-        parameters = [json.dumps(params | e) for e in extra]
-    else:
-        parameters = json.dumps(params)
-    leaf = i if leaf_index is None else np.asarray(leaf_index)[i]
-    return pd.DataFrame({"leaf": leaf, "col": j, "rule": rule, "before": b, "after": a, "delta": a - b, "parameters": parameters})
 
 
 def find_unexplained_changes(cleaned: pd.DataFrame, corrections: pd.DataFrame, tolerance: float = 1e-6) -> pd.DataFrame:
@@ -386,4 +278,102 @@ def cycle_calendar(cleaned: pd.DataFrame, config: PlanningConfig, cycle_date: pd
             "history_start": [start],
             "history_periods": [periods],
         }
+    )
+
+
+# ----------------------------------------------------------------- the stage
+@dataclass(frozen=True)
+class CleaningSettings:
+    """What cleansing reads: the calendar, the cleansing rules, each class's outlier rule, the rejection limit."""
+
+    calendar: CalendarConfig
+    cleansing: CleansingConfig
+    product_classes: Mapping[str, ProductClassConfig]
+    source: Path = Path("<memory>")
+    max_rejected_share: float = 0.01
+    picture: str = "cleansing.png"  # the corrections chart, written beside the cycle's report
+    report_folder: Path = Path("var/reports")
+
+    @classmethod
+    def of(cls, config: PlanningConfig, report_folder: Path = Path("var/reports")) -> CleaningSettings:
+        return cls(
+            calendar=config.calendar,
+            cleansing=config.cleansing,
+            product_classes=config.product_classes,
+            source=config.source,
+            max_rejected_share=config.monitoring.max_rejected_share,
+            picture=f"cleansing_{next(iter(config.product_classes))}.png",
+            report_folder=report_folder,
+        )
+
+    def product_class(self, name: str) -> ProductClassConfig:
+        return class_section(self.product_classes, name, self.source)
+
+
+def run(
+    raw_history: pd.DataFrame,
+    products: pd.DataFrame,
+    customer_spans: pd.DataFrame,
+    shortages: pd.DataFrame | None,
+    settings: CleaningSettings,
+    log: Log = quiet,
+) -> StageResult:
+    """cleaned_history, rejected_rows, history_corrections and cycle_calendar, with their checks and figures."""
+    result = clean_history(raw_history, products, customer_spans, settings, shortages=shortages)
+    cleaned, rejected, corrections = result.cleaned, result.rejected, result.corrections
+    counts = line_accounting(len(raw_history), cleaned, rejected)
+    log(f"cycle date {result.cycle_date.date()}: {counts}")
+    by_rule = corrections.groupby("rule")["delta"].agg(["size", "sum"])
+    by_rule = by_rule.rename(columns={"size": "rows", "sum": "quantity_moved"}).reset_index()
+    classes = products.drop_duplicates("product").set_index("product")["product_class"]
+    by_rule_and_class = (
+        corrections.assign(product_class=corrections["product"].map(classes))
+        .groupby(["product_class", "rule"])["delta"]
+        .agg(rows="size", quantity_moved="sum")
+        .reset_index()
+    )
+    short = result.shortage_periods
+    shortage_count = int(cleaned["shortage"].sum())
+    png = corrections_chart(by_rule_and_class, list(result.outlier_rules.get("product_class", [])), shortage_count)
+    cleaned_figures = {
+        "cycle_date": str(result.cycle_date.date()),
+        "series": int(cleaned.groupby(["product", "site", "customer"]).ngroups),
+        "filled_periods": int(cleaned["filled"].sum()),
+        "corrected_periods": int(cleaned["corrected"].sum()),
+        "shortage_periods": shortage_count,
+        "shortage_records": len(short),
+        "shortage_records_without_series": int((short["children"] == 0).sum()) if len(short) else 0,
+        "shortage_rule": settings.cleansing.shortages,
+        "corrections_by_rule": by_rule,
+        "corrections_by_class_and_rule": by_rule_and_class,
+        "outlier_rule_by_class": result.outlier_rules,
+        "shortages_flagged": short,
+        "corrections_picture": settings.report_folder / settings.picture,
+        **counts,
+    }
+    by_reason = rejected.groupby("reason").size().rename("lines").reset_index()
+    bad = rejected[rejected["reason"] != "on_or_after_cycle_date"]
+    limit = settings.max_rejected_share
+    fraction = len(bad) / len(raw_history) if len(raw_history) else 0.0
+    return StageResult(
+        outputs={
+            "cleaned_history": cleaned,
+            "rejected_rows": rejected,
+            "history_corrections": corrections,
+            "cycle_calendar": cycle_calendar(cleaned, settings, result.cycle_date),
+        },
+        metadata={"cleaned_history": cleaned_figures, "rejected_rows": {"by_reason": by_reason},
+                  "history_corrections": {"by_rule": by_rule}},
+        checks={
+            EVERY_RAW_ROW_ACCOUNTED: CheckRows(pd.DataFrame([counts]) if counts["unaccounted"] else pd.DataFrame(), counts),
+            CORRECTIONS_EXPLAIN_CHANGES: CheckRows(find_unexplained_changes(cleaned, corrections)),
+            REJECTED_ROWS_WITHIN_LIMIT: CheckRows(
+                bad if fraction > limit else bad.iloc[0:0],
+                {
+                    "rejected": f"{len(bad)} of {len(raw_history)} lines ({fraction:.3%}; limit {limit:.3%})",
+                    "by_reason": bad.groupby("reason").size().rename("lines").reset_index(),
+                },
+            ),
+        },
+        files={settings.picture: png},
     )

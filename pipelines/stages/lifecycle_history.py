@@ -33,9 +33,10 @@ import numpy as np
 import pandas as pd
 
 from pipelines.calendar import active_mask, period_ordinal, span_bounds
-from pipelines.config import PlanningConfig
+from pipelines.config import CalendarConfig, PlanningConfig
 from pipelines.errors import LifecycleError
 from pipelines.keys import LEAF, lookup
+from pipelines.results import Log, StageResult, quiet
 
 HISTORY_COLUMNS = LEAF + ["period_start", "quantity", "origin", "source_product", "source_customer", "shortage"]
 AUDIT_COLUMNS = LEAF + ["rule", "periods", "quantity", "detail"]
@@ -152,3 +153,37 @@ def apply_lifecycle(
     audit = _stack(audits, AUDIT_COLUMNS)
     audit = audit.astype({"periods": np.int64, "quantity": float})
     return LifecycleResult(history=h.reset_index(drop=True), audit=audit.reset_index(drop=True))
+
+
+@dataclass(frozen=True)
+class LifecycleSettings:
+    """What the lifecycle stage reads: the calendar (period and horizon)."""
+
+    calendar: CalendarConfig
+
+    @classmethod
+    def of(cls, config: PlanningConfig) -> LifecycleSettings:
+        return cls(calendar=config.calendar)
+
+
+def run(
+    cleaned_history: pd.DataFrame,
+    products: pd.DataFrame,
+    customer_spans: pd.DataFrame,
+    cycle_calendar: pd.DataFrame,
+    settings: LifecycleSettings,
+    log: Log = quiet,
+) -> StageResult:
+    """lifecycle_history and lifecycle_audit, with what each rule moved."""
+    cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
+    result = apply_lifecycle(cleaned_history, products, customer_spans, settings, cycle_date)
+    history, audit = result.history, result.audit
+    by_rule = audit.groupby("rule").agg(leaves=("customer", "size"), periods=("periods", "sum"), quantity=("quantity", "sum"))
+    by_origin = history.groupby("origin").agg(rows=("quantity", "size"), quantity=("quantity", "sum"))
+    return StageResult(
+        outputs={"lifecycle_history": history, "lifecycle_audit": audit},
+        metadata={
+            "lifecycle_history": {"by_origin": by_origin.reset_index(), "shortage_rows": int(history["shortage"].sum())},
+            "lifecycle_audit": {"by_rule": by_rule.reset_index()},
+        },
+    )

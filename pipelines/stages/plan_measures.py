@@ -23,7 +23,7 @@ methods to expedite product line forecasting", J. of Forecasting 9(3)):
     values are the parent forecast, parents whose class follows another
     strategy than `top_down` (bottom-up, forecast proportions, MinT, WLS) were
     not split by the target; their basis is the forecast's own leaf values
-    (`basis = forecast_leaf`), so that measure equals `statistical_forecast`
+    (`basis = leaf_forecast`), so that measure equals `statistical_forecast`
     everywhere, to floating point.
   - `share_table:<name>`: the period shares of the share basis <name> (config
     `share_bases`: its own window, method and fallback windows), computed by
@@ -78,38 +78,72 @@ loop is over the handful of measures).
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from pipelines.calendar import horizon_starts, period_ordinal
-from pipelines.config import PlanningConfig
-from pipelines.config_sections import MeasureConfig
+from pipelines.checks import MEASURES_SUM_TO_PARENT, PINS_KEPT, PINS_WITHIN_PARENT
+from pipelines.config import CalendarConfig, PlanningConfig, check_windows_fit
+from pipelines.config_sections import MeasureConfig, PinsConfig, ShareBasisConfig
+from pipelines.engines.children import active_children
 from pipelines.engines.measure_split import (
-    EVEN,
-    FALLBACKS,
-    NO_ACTIVE_CHILD,
     OVERFLOW,
+    OVERFLOW_COLUMNS,
+    PARENT_COLUMNS,
     PIN_KEY,
-    STATUSES,
-    _parent_sum,
     _stack,
+    cells_of,
+    combine_cells,
+    find_pins_not_kept,
+    find_sum_violations,
+    leaf_matrix,
+    orphan_parents,
+    overflow_message,
+    overflow_piece,
+    parent_piece,
+    plan_piece,
+    plan_totals,
     split_cells,
 )
 from pipelines.engines.period_shares import period_shares
-from pipelines.engines.shares import ShareRule, ShareSettings, compute_shares
+from pipelines.engines.share_settings import ShareRule, ShareSettings
+from pipelines.engines.shares import compute_shares
 from pipelines.errors import ConfigError, PinError
 from pipelines.keys import LEAF, PARENT, factorize, lookup
+from pipelines.results import CheckRows, Log, StageResult, quiet
+from pipelines.vocabulary import Basis
 
 PLAN_COLUMNS = LEAF + ["period_start", "cycle_date", "measure", "value", "parent_value", "rule", "basis", "fallback", "pinned"]
-PARENT_COLUMNS = [
-    "measure", "rule", "product", "site", "period_start", "parent_value", "pins_sum", "pinned_children",
-    "active_children", "split_total", "status",
-]
-OVERFLOW_COLUMNS = ["measure", "product", "site", "period_start", "parent_value", "pins_sum", "overflow", "pins"]
 UNUSED_COLUMNS = ["input", "measure", "product", "site", "customer", "period_start", "value", "reason"]
-FORECAST_LEAF = "forecast_leaf"
+
+
+@dataclass(frozen=True)
+class PlanSettings:
+    """What the plan reads: the calendar, the measures in split order, the share bases, the pins rule."""
+
+    calendar: CalendarConfig
+    measures: Mapping[str, MeasureConfig]
+    share_bases: Mapping[str, ShareBasisConfig]
+    pins: PinsConfig
+    share: ShareSettings
+    order: tuple[str, ...]
+    source: Path = Path("<memory>")
+
+    @classmethod
+    def of(cls, config: PlanningConfig) -> PlanSettings:
+        order = tuple(config.measure_order())
+        share = ShareSettings.of(config)
+        return cls(config.calendar, config.measures, config.share_bases, config.pins, share, order, config.source)
+
+    def measure_order(self) -> list[str]:
+        return list(self.order)
+
+    def basis_windows(self) -> dict[str, int]:
+        return {f"share_bases.{name}.window": basis.window for name, basis in self.share_bases.items()}
 
 
 @dataclass(frozen=True)
@@ -144,7 +178,7 @@ def share_basis_tables(
     """
     out = {}
     starts = horizon_starts(cycle_date, config.calendar.horizon, config.calendar.period)
-    settings = ShareSettings.of(config)
+    settings = config.share if isinstance(config, PlanSettings) else ShareSettings.of(config)
     for name, basis in config.share_bases.items():  # a few named bases, not a loop over series
         own = settings.with_rule(ShareRule.of(basis))  # its window, method and fallbacks in every class
         table = compute_shares(history, children, own, cycle_date)
@@ -155,37 +189,6 @@ def share_basis_tables(
         frame["fallback"] = np.repeat(table["fallback"].to_numpy(), len(starts))
         out[name] = frame
     return out
-
-
-def _cells(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame, first_ord: int, h: int, period: str):
-    """(row in table, horizon column, inside) of each row of `frame` keyed by `cols` and `period_start`."""
-    row = lookup(frame, cols, table) if len(frame) else np.zeros(0, dtype=np.int64)
-    col = period_ordinal(pd.DatetimeIndex(pd.to_datetime(frame["period_start"])), period) - first_ord
-    return row, col, (col >= 0) & (col < h)
-
-
-def _matrix(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame, column: str | list[str], first_ord: int, h: int, period: str):
-    """(len(table), h) matrix of `column` (one per name of a list) from a long frame keyed by `cols` and
-    period_start, 0 where absent; the keys are looked up once for all columns."""
-    names = [column] if isinstance(column, str) else column
-    out = [np.zeros((len(table), h)) for _ in names]
-    if len(frame):
-        row, col, inside = _cells(frame, cols, table, first_ord, h, period)
-        ok = inside & (row >= 0)
-        for m, name in zip(out, names):
-            m[row[ok], col[ok]] = frame[name].to_numpy(float)[ok]
-    return out[0] if isinstance(column, str) else out
-
-
-def _combine(row: np.ndarray, col: np.ndarray, value: np.ndarray, shape: tuple[int, int], mean: bool):
-    """Sum (or mean) of `value` per (row, col) cell, and which cells have any."""
-    total = np.zeros(shape)
-    count = np.zeros(shape)
-    np.add.at(total, (row, col), value)
-    np.add.at(count, (row, col), 1.0)
-    if mean:
-        total = np.divide(total, count, out=np.zeros(shape), where=count > 0)
-    return total, count > 0
 
 
 def _check_measures_known(frame: pd.DataFrame, config: PlanningConfig, what: str) -> None:
@@ -243,10 +246,10 @@ def plan_measures(
     _check_measures_known(pins, config, "pins")
 
     unused = []
-    adj_row, adj_col, adj_inside = _cells(adjustments, PARENT, parents, first_ord, h, period)
+    adj_row, adj_col, adj_inside = cells_of(adjustments, PARENT, parents, first_ord, h, period)
     if (~adj_inside).any():
         unused.append(adjustments.loc[~adj_inside].assign(input="adjustments", customer=None, reason="outside_horizon"))
-    pin_row, pin_col, pin_inside = _cells(pins, LEAF, children, first_ord, h, period)
+    pin_row, pin_col, pin_inside = cells_of(pins, LEAF, children, first_ord, h, period)
     if (~pin_inside).any():
         unused.append(pins.loc[~pin_inside].assign(input="pins", reason="outside_horizon"))
     not_child = pin_inside & (pin_row < 0)
@@ -261,10 +264,10 @@ def plan_measures(
     pin_ok = pin_inside & ~not_child & ~inactive
     pin_starts = starts[np.clip(pin_col, 0, h - 1)]
 
-    target_m, share_m = _matrix(target, LEAF, children, ["target", "share"], first_ord, h, period)
-    mats = {"target": target_m, "share": share_m, "forecast": _matrix(leaf_forecast, LEAF, children, "forecast", first_ord, h, period)}
+    target_m, share_m = leaf_matrix(target, LEAF, children, ["target", "share"], first_ord, h, period)
+    mats = {"target": target_m, "share": share_m, "forecast": leaf_matrix(leaf_forecast, LEAF, children, "forecast", first_ord, h, period)}
     for basis_name, frame in (share_bases or {}).items():
-        mats[f"share_table:{basis_name}"] = _matrix(frame, LEAF, children, "share", first_ord, h, period)
+        mats[f"share_table:{basis_name}"] = leaf_matrix(frame, LEAF, children, "share", first_ord, h, period)
     # the strategy of each parent's class (absent = top-down, the forecast stage's default grain)
     top_down = np.ones(n_parents, dtype=bool)
     if "strategy" in parent_forecast.columns and len(parent_forecast):
@@ -278,17 +281,17 @@ def plan_measures(
         m = config.measures[name]
         mean = m.rule == "replicate"
         if m.parent_values == "parent_forecast":
-            value, has = _matrix(parent_forecast.assign(_has=1.0), PARENT, parents, ["forecast", "_has"], first_ord, h, period)
+            value, has = leaf_matrix(parent_forecast.assign(_has=1.0), PARENT, parents, ["forecast", "_has"], first_ord, h, period)
             has = has > 0
         else:
             mine = (adjustments["measure"] == name).to_numpy() & adj_inside
             ok = mine & (adj_row >= 0)
-            value, has = _combine(adj_row[ok], adj_col[ok], adjustments["value"].to_numpy(float)[ok], (n_parents, h), mean)
+            value, has = combine_cells(adj_row[ok], adj_col[ok], adjustments["value"].to_numpy(float)[ok], (n_parents, h), mean)
             orphans = adjustments.loc[mine & (adj_row < 0)]
             if len(orphans):
-                parent_pieces.append(_orphan_parents(orphans, name, m, period, first_ord, starts))
+                parent_pieces.append(orphan_parents(orphans, name, m, period, first_ord, starts))
         mine_pin = (pins["measure"] == name).to_numpy() & pin_ok
-        pin, pinned = _combine(pin_row[mine_pin], pin_col[mine_pin], pins["value"].to_numpy(float)[mine_pin], (n, h), mean)
+        pin, pinned = combine_cells(pin_row[mine_pin], pin_col[mine_pin], pins["value"].to_numpy(float)[mine_pin], (n, h), mean)
         if mine_pin.any():
             combined = pins.loc[mine_pin, PIN_KEY].assign(period_start=pin_starts[mine_pin]).drop_duplicates()
             cell = lookup(combined, LEAF, children), period_ordinal(pd.DatetimeIndex(combined["period_start"]), period) - first_ord
@@ -300,10 +303,10 @@ def plan_measures(
             None if m.integer is None else m.integer.pack_size, order,
         )
         mats[f"measure:{name}"] = np.where(split.rows, split.value, 0.0)
-        pieces[name] = _plan_piece(name, m, split, value, has, pinned, label, children, parent_of_child, starts, cycle_date)
-        parent_pieces.append(_parent_piece(name, m, split, value, has, pinned, active, parents, parent_of_child, starts))
+        pieces[name] = plan_piece(name, m, split, value, has, pinned, label, children, parent_of_child, starts, cycle_date)
+        parent_pieces.append(parent_piece(name, m, split, value, has, pinned, active, parents, parent_of_child, starts))
         if (split.status == OVERFLOW).any():
-            overflow_pieces.append(_overflow_piece(name, split, value, has, pin, pinned, children, parents, parent_of_child, starts))
+            overflow_pieces.append(overflow_piece(name, split, value, has, pin, pinned, children, parents, parent_of_child, starts))
 
     # in config order; inside a measure the rows already follow the sorted children, then the period
     plan = _stack([pieces[name] for name in config.measures], PLAN_COLUMNS).astype(
@@ -312,7 +315,7 @@ def plan_measures(
     parents_out = _stack(parent_pieces, PARENT_COLUMNS)
     overflow = _stack(overflow_pieces, OVERFLOW_COLUMNS)
     if len(overflow) and config.pins.on_overflow == "error":
-        raise PinError(_overflow_message(overflow, config))
+        raise PinError(overflow_message(overflow, config.source))
     unused_rows = _stack(unused, UNUSED_COLUMNS)
     return PlanResult(
         plan=plan,
@@ -336,7 +339,7 @@ def _basis(m: MeasureConfig, name: str, mats: dict[str, np.ndarray], top_down: n
             return mats["target"], mats["share"], label
         # the forecast's own split: the target where the class is split top-down, else its leaf values
         td = top_down[parent_of_child][:, None]
-        label[~top_down] = FORECAST_LEAF
+        label[~top_down] = Basis.LEAF_FORECAST
         return np.where(td, mats["target"], mats["forecast"]), np.where(td, mats["share"], 0.0), label
     key = f"{b.kind}:{b.name}"
     if key not in mats:
@@ -344,88 +347,51 @@ def _basis(m: MeasureConfig, name: str, mats: dict[str, np.ndarray], top_down: n
     return mats[key], None, label
 
 
-def _plan_piece(name, m, split, value, has, pinned, label, children, parent_of_child, starts, cycle_date) -> pd.DataFrame:
-    child, col = np.nonzero(split.rows)
-    par = parent_of_child[child]
-    code = split.fallback[child, col]
-    is_pin = pinned[child, col]
-    basis = np.where(is_pin, "pin", np.where(code == EVEN, "even", label[par]))
-    out = children[LEAF].iloc[child].reset_index(drop=True)
-    out["period_start"] = starts[col]
-    out["cycle_date"] = cycle_date
-    out["measure"] = name
-    out["value"] = split.value[child, col]
-    out["parent_value"] = np.where(has[par, col], value[par, col], np.nan)
-    out["rule"] = m.rule
-    out["basis"] = basis
-    out["fallback"] = np.asarray(FALLBACKS, dtype=object)[code]
-    out["pinned"] = is_pin
-    return out
-
-
-def _parent_piece(name, m, split, value, has, pinned, active, parents, parent_of_child, starts) -> pd.DataFrame:
-    n_parents = len(parents)
-    par, col = np.nonzero(split.live)
-    n_active = _parent_sum(active.astype(float), parent_of_child, n_parents)
-    n_pinned = _parent_sum(pinned.astype(float), parent_of_child, n_parents)
-    out = parents[PARENT].iloc[par].reset_index(drop=True)
-    out.insert(0, "rule", m.rule)
-    out.insert(0, "measure", name)
-    out["period_start"] = starts[col]
-    out["parent_value"] = np.where(has[par, col], value[par, col], np.nan)
-    out["pins_sum"] = split.pins_sum[par, col]
-    out["pinned_children"] = n_pinned[par, col].astype(np.int64)
-    out["active_children"] = n_active[par, col].astype(np.int64)
-    out["split_total"] = split.split_total[par, col]
-    out["status"] = np.asarray(STATUSES, dtype=object)[split.status[par, col]]
-    return out
-
-
-def _orphan_parents(rows: pd.DataFrame, name: str, m: MeasureConfig, period: str, first_ord: int, starts) -> pd.DataFrame:
-    """Parent periods of the input whose product x site has no child active in the horizon."""
-    col = period_ordinal(pd.DatetimeIndex(pd.to_datetime(rows["period_start"])), period) - first_ord
-    frame = rows[PARENT].assign(period_start=starts[col], value=rows["value"].to_numpy(float))
-    agg = frame.groupby(PARENT + ["period_start"], sort=True)["value"].agg("mean" if m.rule == "replicate" else "sum")
-    out = agg.rename("parent_value").reset_index()
-    out.insert(0, "rule", m.rule)
-    out.insert(0, "measure", name)
-    out["pins_sum"] = 0.0
-    out["pinned_children"] = 0
-    out["active_children"] = 0
-    out["split_total"] = out["parent_value"]
-    out["status"] = STATUSES[NO_ACTIVE_CHILD]
-    return out
-
-
-def _overflow_piece(name, split, value, has, pin, pinned, children, parents, parent_of_child, starts) -> pd.DataFrame:
-    """One row per overflowing parent period: parent value, pins (customer=value) and the overflow."""
-    par, col = np.nonzero(split.status == OVERFLOW)
-    v = np.where(has[par, col], value[par, col], 0.0)
-    out = parents[PARENT].iloc[par].reset_index(drop=True)
-    out.insert(0, "measure", name)
-    out["period_start"] = starts[col]
-    out["parent_value"] = np.where(has[par, col], value[par, col], np.nan)
-    out["pins_sum"] = split.pins_sum[par, col]
-    out["overflow"] = np.abs(split.pins_sum[par, col] - v)  # what the pins take beyond the parent
-    child, pcol = np.nonzero(pinned & (split.status == OVERFLOW)[parent_of_child])
-    text = pd.DataFrame(
-        {"p": parent_of_child[child], "c": pcol, "t": children["customer"].to_numpy(object)[child] + "=" + pd.Series(pin[child, pcol]).map("{:g}".format).to_numpy(object)}
+def run(
+    parent_forecast: pd.DataFrame,
+    statistical_forecast: pd.DataFrame,
+    reinitialized_target: pd.DataFrame,
+    share_tables: pd.DataFrame,
+    lifecycle_history: pd.DataFrame,
+    products: pd.DataFrame,
+    customer_spans: pd.DataFrame,
+    adjustments: pd.DataFrame,
+    pins: pd.DataFrame,
+    cycle_calendar: pd.DataFrame,
+    settings: PlanSettings,
+    log: Log = quiet,
+) -> StageResult:
+    """The plan's measures at leaf grain, with the share bases' fallbacks and the plan's three checks."""
+    cycle = cycle_calendar.iloc[0]
+    check_windows_fit(settings.basis_windows(), int(cycle["history_periods"]), settings.source)
+    cycle_date = pd.Timestamp(cycle["cycle_date"])
+    bases = {}
+    if settings.share_bases:
+        children = active_children(customer_spans, products, lifecycle_history, settings.share, cycle_date)
+        bases = share_basis_tables(lifecycle_history, children, products, settings, cycle_date)
+    result = plan_measures(
+        share_tables, parent_forecast, statistical_forecast, reinitialized_target, adjustments, pins, settings, cycle_date, bases
     )
-    joined = text.groupby(["p", "c"])["t"].agg(", ".join)
-    out["pins"] = joined.reindex(pd.MultiIndex.from_arrays([par, col])).to_numpy(object)
-    return out
-
-
-def _overflow_message(overflow: pd.DataFrame, config: PlanningConfig) -> str:
-    shown = overflow.head(20)
-    lines = [
-        f"{m} {p} / {s} {d:%Y-%m-%d}: parent {v:g}, pins {ps:g} ({pins}), {o:g} over"
-        for m, p, s, d, v, ps, o, pins in shown[OVERFLOW_COLUMNS].itertuples(index=False)
+    plan = result.plan
+    basis_fallbacks = [
+        f.drop_duplicates(["product", "site"]).groupby("fallback").size().rename("parents").reset_index().assign(share_basis=n)
+        for n, f in bases.items()
     ]
-    more = f"\n  ... and {len(overflow) - len(shown)} more" if len(overflow) > len(shown) else ""
-    return (
-        f"pins exceed their parent in {len(overflow)} parent period(s) (config {config.source}: pins.on_overflow "
-        f"is error):\n  " + "\n  ".join(lines) + more + "\nLower the pins, raise the parent value, or set "
-        "pins.on_overflow: warn to keep the pins and give the other customers 0."
+    figures = {
+        "measures": ", ".join(settings.measures),
+        "rows_by_measure_and_rule": plan.groupby(["measure", "rule", "basis", "fallback"]).size().rename("rows").reset_index(),
+        "totals_parent_vs_leaf": plan_totals(plan, result.parents),
+        "pins_applied": len(result.pins_applied),
+        "pins_overflowing_parents": len(result.overflow),
+        "inputs_outside_horizon": len(result.unused_rows),
+        "share_basis_fallbacks": pd.concat(basis_fallbacks, ignore_index=True) if bases else pd.DataFrame(),
+    }
+    return StageResult(
+        outputs={"plan_measures": plan},
+        metadata={"plan_measures": figures},
+        checks={
+            MEASURES_SUM_TO_PARENT: CheckRows(find_sum_violations(plan, result.parents, settings.measures)),
+            PINS_KEPT: CheckRows(find_pins_not_kept(plan, result.pins_applied, result.pins_not_applied)),
+            PINS_WITHIN_PARENT: CheckRows(result.overflow),
+        },
     )
-

@@ -15,7 +15,7 @@ history); every lifecycle rule applies on top of these weights. `share_basis`
 records per parent and period what the weights came from: `history_share`,
 `period_of_year`, `children_forecast`, or `pooled_fallback` where a per-period
 method had no basis in the period. Per parent and period the shares sum to 1,
-or are all 0 with `zero_share_reason`:
+or are all 0 with `zero_reason`:
 
 - `product_not_active` - the product's own span does not cover the period;
 - `no_active_child` - no customer span covers it;
@@ -45,11 +45,15 @@ import numpy as np
 import pandas as pd
 
 from pipelines.calendar import horizon_starts, period_ordinal
-from pipelines.engines.period_shares import period_shares
-from pipelines.engines.shares import ShareSettings, shortage_periods
+from pipelines.checks import SHARES_SUM_TO_ONE
+from pipelines.engines.period_shares import period_shares, stored_basis
+from pipelines.engines.proofs import find_shares_not_summing_to_one
+from pipelines.engines.share_settings import ShareSettings
+from pipelines.engines.shares import shortage_periods
 from pipelines.keys import LEAF, PARENT, factorize, lookup
+from pipelines.results import CheckRows, Log, StageResult, quiet
 
-TARGET_COLUMNS = LEAF + ["period_start", "cycle_date", "target", "share", "parent_baseline", "zero_share_reason", "share_basis"]
+TARGET_COLUMNS = LEAF + ["period_start", "cycle_date", "target", "share", "parent_baseline", "zero_reason", "basis"]
 
 
 def parent_baselines(shares: pd.DataFrame, history: pd.DataFrame, settings: ShareSettings, cycle_date: pd.Timestamp) -> np.ndarray:
@@ -86,23 +90,29 @@ def reinitialize_target(
     settings: ShareSettings,
     cycle_date: pd.Timestamp,
     products: pd.DataFrame | None = None,
+    period_basis: pd.DataFrame | None = None,
 ) -> pd.DataFrame:
-    """One row per child and horizon period: target = period share x parent baseline."""
+    """One row per child and horizon period: target = period share x parent baseline.
+
+    period_basis: the cycle's stored period basis (`period_basis` stage); without
+    it the per-period methods' basis is computed here from `history`.
+    """
     settings = ShareSettings.of(settings)
     period = settings.period
     starts = horizon_starts(cycle_date, settings.horizon, period)
     h = len(starts)
     shares = shares.reset_index(drop=True)
     baseline = parent_baselines(shares, history, settings, cycle_date)
-    share, reason, basis = period_shares(shares, settings, cycle_date, products, history)
+    stored = None if period_basis is None else stored_basis(shares, period_basis, starts)
+    share, reason, basis = period_shares(shares, settings, cycle_date, products, history, basis=stored)
     out = shares[LEAF].loc[shares.index.repeat(h)].reset_index(drop=True)
     out["period_start"] = np.tile(starts.values, len(shares))
     out["cycle_date"] = cycle_date
     out["share"] = share.ravel()
     out["parent_baseline"] = np.repeat(baseline, h)
     out["target"] = out["share"].to_numpy() * out["parent_baseline"].to_numpy()
-    out["zero_share_reason"] = reason.ravel()
-    out["share_basis"] = basis.ravel()
+    out["zero_reason"] = reason.ravel()
+    out["basis"] = basis.ravel()
     return out[TARGET_COLUMNS]
 
 
@@ -133,8 +143,40 @@ def parents_with_mix_change(target: pd.DataFrame, shares: pd.DataFrame, toleranc
 
     in_ = customers((shares["first_active_period"] > start) & (shares["lifecycle_rule"] != "awaiting_history"))
     out_ = customers(shares["last_active_period"] < end)
-    zero = target[target["zero_share_reason"].notna()].drop_duplicates(PARENT + ["period_start"]).groupby(PARENT).size()
+    zero = target[target["zero_reason"].notna()].drop_duplicates(PARENT + ["period_start"]).groupby(PARENT).size()
     per_parent["phasing_in"] = in_.reindex(per_parent.index).fillna("")
     per_parent["phasing_out"] = out_.reindex(per_parent.index).fillna("")
     per_parent["zero_periods"] = zero.reindex(per_parent.index).fillna(0).astype(np.int64)
     return per_parent.reset_index()
+
+
+def run(
+    share_tables: pd.DataFrame,
+    period_basis: pd.DataFrame,
+    lifecycle_history: pd.DataFrame,
+    products: pd.DataFrame,
+    cycle_calendar: pd.DataFrame,
+    settings: ShareSettings,
+    log: Log = quiet,
+) -> StageResult:
+    """The reinitialized target from the stored period basis, its figures and the check that shares sum to one."""
+    cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
+    target = reinitialize_target(share_tables, lifecycle_history, settings, cycle_date, products, period_basis)
+    first = target[target["period_start"] == target["period_start"].min()] if len(target) else target
+    mix = parents_with_mix_change(target, share_tables)
+    parent_periods = target.drop_duplicates(["product", "site", "period_start"])
+    zero = target[target["zero_reason"].notna()].drop_duplicates(["product", "site", "period_start"])
+    figures = {
+        "horizon_periods": settings.horizon,
+        "target_total_per_period": float(first["target"].sum()),
+        "parents_with_zero_baseline": int(first.loc[first["parent_baseline"] == 0, PARENT].drop_duplicates().shape[0]),
+        "parents_with_mix_change": mix,
+        "parents_with_mix_change_count": len(mix),
+        "zero_periods_by_reason": zero.groupby("zero_reason").size().rename("parent_periods").reset_index(),
+        "parent_periods_by_basis": parent_periods["basis"].value_counts().rename_axis("basis").reset_index(),
+    }
+    return StageResult(
+        outputs={"reinitialized_target": target},
+        metadata={"reinitialized_target": figures},
+        checks={SHARES_SUM_TO_ONE: CheckRows(find_shares_not_summing_to_one(target))},
+    )

@@ -1,5 +1,10 @@
 """Stage 4, `share_tables`: each child's base share of its parent, and its lifecycle rule.
 
+The share engine (`pipelines.engines.shares`, `pipelines.engines.lifecycle_shares`)
+computes the table; this stage checks the class windows fit the history, finds
+the active children and judges the table (new customers without a share, too
+many fallbacks).
+
 The parent is product x site; its children are the customer spans active in
 any period of the horizon (`engines.children.active_children`). The share
 table has one row per child; the shares per horizon period are derived from it
@@ -106,3 +111,80 @@ inactive its weight leaves the sum and the others are renormalised, so a
 reference keeps its whole share until its new customer starts, and a new
 customer replacing a reference that ends (scale 1) takes exactly its share.
 """
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import pandas as pd
+
+from pipelines.checks import FALLBACK_SHARE_WITHIN_LIMIT, NEW_CUSTOMERS_HAVE_SHARE
+from pipelines.config import PlanningConfig, check_windows_fit
+from pipelines.engines.children import active_children
+from pipelines.engines.lifecycle_shares import find_new_customers_without_share, new_customers
+from pipelines.engines.share_settings import ShareSettings
+from pipelines.engines.shares import compute_shares
+from pipelines.results import CheckRows, Log, StageResult, quiet
+from pipelines.schemas import LIFECYCLE_RULES
+
+
+@dataclass(frozen=True)
+class ShareTableSettings:
+    """The share engine's settings, the class windows that must fit the history, the fallback limit."""
+
+    share: ShareSettings
+    windows: Mapping[str, int] = field(default_factory=dict)
+    max_fallback_share: float = 0.10
+    source: Path = Path("<memory>")
+
+    @classmethod
+    def of(cls, config: PlanningConfig) -> ShareTableSettings:
+        return cls(ShareSettings.of(config), config.class_windows(), config.monitoring.max_fallback_share, config.source)
+
+
+def run(
+    lifecycle_history: pd.DataFrame,
+    products: pd.DataFrame,
+    customer_spans: pd.DataFrame,
+    cycle_calendar: pd.DataFrame,
+    settings: ShareTableSettings,
+    log: Log = quiet,
+) -> StageResult:
+    """The share table of the active children, its figures and its two WARN checks."""
+    cycle = cycle_calendar.iloc[0]
+    check_windows_fit(settings.windows, int(cycle["history_periods"]), settings.source)
+    cycle_date = pd.Timestamp(cycle["cycle_date"])
+    children = active_children(customer_spans, products, lifecycle_history, settings.share, cycle_date)
+    shares = compute_shares(lifecycle_history, children, settings.share, cycle_date)
+    parents = shares.drop_duplicates(["product", "site"])
+    used = parents[parents["fallback"] != "none"]
+    fraction = len(used) / len(parents) if len(parents) else 0.0
+    limit = settings.max_fallback_share
+    columns = ["product_class", "product", "site", "customer", "share", "window_used", "fallback"]
+    by_rule = shares["lifecycle_rule"].value_counts().reindex(list(LIFECYCLE_RULES), fill_value=0).rename("children")
+    new = new_customers(shares)
+    figures = {
+        "cycle_date": str(cycle_date.date()),
+        "parents": len(parents),
+        "children": len(shares),
+        "parents_with_fallback": int((parents["fallback"] != "none").sum()),
+        "fallbacks_by_class": parents.groupby(["product_class", "fallback"]).size().rename("parents").reset_index(),
+        "largest_shares": shares.sort_values("share", ascending=False)[columns],
+        "children_by_lifecycle_rule": by_rule.rename_axis("lifecycle_rule").reset_index(),
+        "new_customers": new,
+        "new_customer_count": len(new),
+    }
+    fallback_rows = used[["product_class", "product", "site", "fallback", "window", "window_used"]]
+    return StageResult(
+        outputs={"share_tables": shares},
+        metadata={"share_tables": figures},
+        checks={
+            NEW_CUSTOMERS_HAVE_SHARE: CheckRows(find_new_customers_without_share(shares)),
+            FALLBACK_SHARE_WITHIN_LIMIT: CheckRows(
+                fallback_rows if fraction > limit else used.iloc[0:0],
+                {"parents_with_fallback": f"{len(used)} of {len(parents)} ({fraction:.1%}; limit {limit:.1%})"},
+            ),
+        },
+    )

@@ -1,81 +1,59 @@
-"""Stage 6, `statistical_forecast`: the forecast rerun, then split to the leaf.
+"""Stage 6, `statistical_forecast`: the forecast rerun, then made coherent down to the leaf.
 
-Per product class the forecast runs at the class's `forecast_grain`:
+Per product class the forecast follows the class's `strategy` (for `auto`,
+the one the backtest chose, read from the stored `strategy_choice`):
 
-- `product_site` (default): one series per parent, the sum of its children's
-  lifecycle history. Each parent's forecast is split pro rata to its children
-  by `reinitialized_target`, period by period:
-  leaf_{j,h} = F_{P,h} x target_{j,h} / sum_k target_{k,h}; where a parent's
-  targets sum to 0 (it fell back to an even split) the period's shares are
-  the basis. A parent period whose shares are all 0 (`zero_share_reason`:
-  the product or every customer span has ended, or no active child holds a
-  share) is forecast as 0 and the reason is kept in `zero_reason`, so the
-  children always sum to the parent.
-- `product_site_customer`: one series per child (bottom-up); the parent's
+- `top_down`: one series per parent, the sum of its children's lifecycle
+  history. Each parent's forecast is split pro rata to its children by
+  `reinitialized_target`, period by period:
+  leaf_{j,h} = F_{P,h} x target_{j,h} / sum_k target_{k,h} (basis
+  `reinitialized_target`); where a parent's targets sum to 0 (it fell back to
+  an even split) the period's shares are the basis (`period_share`). A parent
+  period whose shares are all 0 (`zero_reason`: the product or every customer
+  span has ended, or no active child holds a share) is forecast as 0 and the
+  reason is kept in `zero_reason`, so the children always sum to the parent.
+- `bottom_up`: one series per child (basis `leaf_forecast`); the parent's
   forecast is the sum of its children's. A child is forecast 0 outside its
   active periods (before its span or product starts, after either ends). The
-  new-customer share rules do not apply at this grain: each child is
-  forecast from its own history.
-- `auto`: the strategy the backtest chose for the class (`backtest_accuracy`,
-  lowest leaf-grain WMAPE): `top_down` or `bottom_up` as above,
-  `forecast_proportions` (parent forecast split by the children's own
-  forecasts) or `mint_shrink` / `wls_var` (both grains reconciled); see
-  `pipelines.engines.hierarchy`. Whatever the strategy, parent = sum of leaves.
+  new-customer share rules do not apply: each child is forecast from its own
+  history.
+- `forecast_proportions` (parent forecast split by the children's own
+  forecasts, basis `children_forecast`) or `mint_shrink` / `wls_var` (both
+  grains reconciled, basis `reconciled`); see `pipelines.engines.hierarchy`.
+  Whatever the strategy, parent = sum of leaves.
 
-Each series gets a demand class (Syntetos, Boylan & Croston 2005, cut-offs
-ADI = 1.32 and CV^2 = 0.49). ADI convention used here: the number of periods
-from the series' first non-zero period to the end of history, divided by the
-number of non-zero periods. CV^2 is the squared coefficient of variation of
-the non-zero sizes (population variance, ddof = 0); one non-zero period has
-CV^2 = 0. A series without any demand is `no_demand` and is forecast as 0.
-Ties at the cut-offs: the cut-offs belong to the upper side, i.e. smooth needs
-ADI < 1.32 and CV^2 < 0.49; ADI = 1.32 exactly is intermittent (or lumpy) and
-CV^2 = 0.49 exactly is erratic (or lumpy). The comparison is made on the
-floating-point ratio, so 33 periods / 25 demands (1.32) is on the cut-off.
-
-Models (statsforecast): `auto_ets` (AutoETS, Hyndman et al. 2008; seasonal
-with `seasonal: true` and two full seasons), `ets_additive_season` (ETS(A,N,A),
-the one seasonal ETS form instead of AutoETS' search), `mstl_ets` (MSTL
-decomposition with AutoETS on the deseasonalised series; Bandara et al. 2021),
-`ses`, `seasonal_naive` (the benchmark), Croston (`croston_classic`,
-`croston_sba` = Syntetos & Boylan 2005 debiasing, `croston_optimized`), `tsb`
-(Teunter, Syntetos & Babai 2011, parameters in config), `adida`
-(Nikolopoulos et al. 2011) and `imapa`. Seasonal AutoETS on weekly data is
-costly: on the demo's 28 seasonal parents (156 weeks, 1 core) AutoETS with
-season_length 52 took 300-560 ms per series and picked unstable multiplicative
-forms (26-week holdout WMAPE 1.80); ETS(A,N,A) took 45-57 ms (WMAPE 0.27),
-MSTL + AutoETS 45-50 ms (0.39) and seasonal naive 0.4 ms (0.28). So the demo
-uses `ets_additive_season` where a season is wanted (benchmarks/backtest.py
-measures again). The model, its parameters where the library exposes them (ETS
-component string and smoothing parameters, the fixed Croston alpha, the TSB
-alphas) and the in-sample one-step fitted values (for MinT's residuals) come
-out of `run_model_groups`.
-
-The model per demand class comes from the config and runs through
-statsforecast; a model that fails on a series falls back to the naive
-forecast. Negative forecasts (possible from a trended ETS) are set to 0.
+The models, demand classes and their conventions are in
+`pipelines.engines.models`. Negative forecasts (possible from a trended ETS)
+are set to 0. `model_grain` says at which grains the class's models ran
+(parent, leaf or both).
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal
-from pipelines.config import PlanningConfig
+from pipelines.checks import NO_NEGATIVE_FORECAST, NO_VOLUME_AFTER_PHASE_OUT, NO_VOLUME_OUTSIDE_ACTIVE_SPAN
 from pipelines.engines.hierarchy import coherent_forecasts
 from pipelines.engines.models import BaseForecasts, ModelSettings, SeriesGrid, base_forecasts, series_grid
+from pipelines.engines.proofs import find_negative, find_volume_after_phase_out, find_volume_outside_active_span
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
+from pipelines.results import CheckRows, Log, StageResult, quiet
+from pipelines.vocabulary import AUTO, Basis, ModelGrain, Strategy, values
 
-PARENT_COLUMNS = ["cycle_date", "product_class", "product", "site", "period_start", "forecast", "model", "demand_class", "forecast_grain", "zero_reason"]
-LEAF_COLUMNS = LEAF + ["period_start", "cycle_date", "product_class", "forecast", "parent_forecast", "split_basis"]
+PARENT_COLUMNS = [
+    "cycle_date", "product_class", "product", "site", "period_start", "forecast", "model", "demand_class", "model_grain",
+    "zero_reason",
+]
+LEAF_COLUMNS = LEAF + ["period_start", "cycle_date", "product_class", "forecast", "parent_forecast", "basis"]
 FITTED_COLUMNS = ["cycle_date", "grain", "product_class", "product", "site", "customer", "period_start", "actual", "fitted"]
 MODEL_COLUMNS = ["cycle_date", "grain", "product_class", "product", "site", "customer", "demand_class", "adi", "cv2", "model", "parameters"]
-GRAIN_STRATEGY = {"product_site": "top_down", "product_site_customer": "bottom_up"}
 
 
 @dataclass(frozen=True)
@@ -87,20 +65,39 @@ class ForecastResult:
     fitted: pd.DataFrame | None = None  # in-sample one-step fitted values behind MinT / WLS residuals
 
 
-def strategy_by_class(config: PlanningConfig, chosen: dict[str, str] | None = None) -> dict[str, str]:
-    """The strategy each product class follows: its fixed grain's, or for `auto` the backtest's choice."""
+@dataclass(frozen=True)
+class ForecastSettings:
+    """What the forecast reads: the calendar, each class's configured strategy, the models, the config file."""
+
+    period: str
+    horizon: int
+    strategies: Mapping[str, str]
+    models: ModelSettings
+    source: Path = Path("<memory>")
+
+    @classmethod
+    def of(cls, config) -> ForecastSettings:
+        """From a planning config (every class it holds); a ForecastSettings is returned as it is."""
+        if isinstance(config, ForecastSettings):
+            return config
+        strategies = {name: pc.strategy for name, pc in config.product_classes.items()}
+        return cls(config.calendar.period, config.calendar.horizon, strategies, ModelSettings.of(config), config.source)
+
+
+def strategy_by_class(settings: ForecastSettings, chosen: dict[str, str] | None = None) -> dict[str, str]:
+    """The strategy each product class follows: its configured one, or for `auto` the backtest's choice."""
     out = {}
-    for name, pc in config.product_classes.items():
-        if pc.forecast_grain == "auto":
+    for name, configured in settings.strategies.items():
+        if configured == AUTO:
             if not chosen or name not in chosen:
                 raise ConfigError(
-                    f"{config.source}: product_classes.{name}.forecast_grain is 'auto' but the backtest "
-                    f"made no choice for it; materialize backtest_accuracy first, or set forecast_grain to "
-                    f"one of {sorted(GRAIN_STRATEGY)}."
+                    f"{settings.source}: product_classes.{name}.strategy is 'auto' but the backtest "
+                    f"made no choice for it; materialize backtest_accuracy and strategy_choice first, or set "
+                    f"strategy to one of {sorted(values(Strategy))}."
                 )
             out[name] = chosen[name]
         else:
-            out[name] = GRAIN_STRATEGY[pc.forecast_grain]
+            out[name] = configured
     return out
 
 
@@ -139,7 +136,7 @@ def forecast_cycle(
     history: pd.DataFrame,
     children: pd.DataFrame,
     target: pd.DataFrame,
-    config: PlanningConfig,
+    settings: ForecastSettings,
     cycle_date: pd.Timestamp,
     log: Callable[[str], None] | None = None,
     chosen: dict[str, str] | None = None,
@@ -150,8 +147,9 @@ def forecast_cycle(
     children: leaf keys and product_class, optionally first/last_active_period
     (absent = active in the whole horizon). target: `reinitialized_target`.
     """
-    period = config.calendar.period
-    horizon = config.calendar.horizon
+    settings = ForecastSettings.of(settings)
+    period = settings.period
+    horizon = settings.horizon
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
     starts = horizon_starts(cycle_date, horizon, period)
     children = children.reset_index(drop=True)
@@ -160,7 +158,7 @@ def forecast_cycle(
     n_parents, n_children = len(parents), len(children)
     ords = period_ordinal(history["period_start"], period)
     qty = history["quantity"].to_numpy(float)
-    strategies = strategy_by_class(config, chosen)
+    strategies = strategy_by_class(settings, chosen)
 
     p_code = lookup(history, PARENT, parents)
     ok = p_code >= 0
@@ -170,7 +168,7 @@ def forecast_cycle(
     c_grid = series_grid(c_code[okc], ords[okc], qty[okc], n_children, cycle_ord)
     base = base_forecasts(
         p_grid, c_grid, parents["product_class"].to_numpy(), children["product_class"].to_numpy(), strategies,
-        ModelSettings.of(config), horizon, log,
+        settings.models, horizon, log,
     )
 
     # top-down basis: the reinitialized target (the period's share where the targets are all 0)
@@ -183,7 +181,7 @@ def forecast_cycle(
 
     strategy_of_parent = parents["product_class"].map(strategies).to_numpy()
     parent_fc, leaf_fc, source, reconciled_negatives = combine_strategies(strategy_of_parent, base, parent_of_child, basis)
-    split_basis = np.where(source == "basis", np.where(use_target, "target", "share"), source)
+    basis = np.where(source == "basis", np.where(use_target, Basis.REINITIALIZED_TARGET, Basis.PERIOD_SHARE), source)
 
     # lifecycle: no leaf volume outside a child's active periods, none in a parent period that no
     # child can carry (a share-split parent: no child holds a share; otherwise: no child is active);
@@ -198,7 +196,7 @@ def forecast_cycle(
     np.add.at(parent_fc, parent_of_child, leaf_fc)
     parent_model = np.where(strategy_of_parent == "bottom_up", "bottom_up", base.parent_label)
     grain = np.select(
-        [strategy_of_parent == "top_down", strategy_of_parent == "bottom_up"], ["product_site", "product_site_customer"], "both"
+        [strategy_of_parent == "top_down", strategy_of_parent == "bottom_up"], [ModelGrain.PARENT, ModelGrain.LEAF], ModelGrain.BOTH
     )
 
     parent_out = parents[PARENT].loc[parents.index.repeat(horizon)].reset_index(drop=True)
@@ -208,7 +206,7 @@ def forecast_cycle(
     parent_out["forecast"] = parent_fc.ravel()
     parent_out["model"] = np.repeat(parent_model, horizon)
     parent_out["demand_class"] = np.repeat(base.parent_demand, horizon)
-    parent_out["forecast_grain"] = np.repeat(grain, horizon)
+    parent_out["model_grain"] = np.repeat(grain, horizon)
     parent_out["strategy"] = np.repeat(strategy_of_parent, horizon)
     parent_out["zero_reason"] = zero_reason.ravel()
 
@@ -218,7 +216,7 @@ def forecast_cycle(
     leaf_out["product_class"] = np.repeat(children["product_class"].to_numpy(), horizon)
     leaf_out["forecast"] = leaf_fc.ravel()
     leaf_out["parent_forecast"] = parent_fc[parent_of_child].ravel()
-    leaf_out["split_basis"] = split_basis.ravel()
+    leaf_out["basis"] = basis.ravel()
 
     models = base.models
     is_parent = (models["grain"] == "parent").to_numpy()
@@ -269,15 +267,15 @@ def _active_matrix(children: pd.DataFrame, starts: pd.DatetimeIndex, period: str
 
 
 def _parent_reasons(target: pd.DataFrame, parents: pd.DataFrame, starts: pd.DatetimeIndex) -> np.ndarray:
-    """(n_parents, horizon) zero_share_reason of each parent period (None where its shares sum to 1)."""
+    """(n_parents, horizon) zero_reason of each parent period (None where its shares sum to 1)."""
     out = np.full((len(parents), len(starts)), None, dtype=object)
-    if target.empty or "zero_share_reason" not in target.columns:
+    if target.empty or "zero_reason" not in target.columns:
         return out
-    rows = target[target["zero_share_reason"].notna()]
+    rows = target[target["zero_reason"].notna()]
     row = lookup(rows, PARENT, parents)
     col = pd.DatetimeIndex(starts).get_indexer(pd.DatetimeIndex(rows["period_start"]))
     ok = (row >= 0) & (col >= 0)
-    out[row[ok], col[ok]] = rows["zero_share_reason"].to_numpy(object)[ok]
+    out[row[ok], col[ok]] = rows["zero_reason"].to_numpy(object)[ok]
     return out
 
 
@@ -291,3 +289,59 @@ def _leaf_matrix(frame: pd.DataFrame, children: pd.DataFrame, column: str, start
     ok = (row >= 0) & (col >= 0)
     out[row[ok], col[ok]] = frame[column].to_numpy(float)[ok]
     return out
+
+
+def run(
+    lifecycle_history: pd.DataFrame,
+    share_tables: pd.DataFrame,
+    reinitialized_target: pd.DataFrame,
+    cycle_calendar: pd.DataFrame,
+    strategy_choice: pd.DataFrame,
+    customer_spans: pd.DataFrame,
+    products: pd.DataFrame,
+    settings: ForecastSettings,
+    log: Log = quiet,
+) -> StageResult:
+    """parent_forecast, statistical_forecast, forecast_models and forecast_fitted_values, and the forecast's checks."""
+    cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
+    columns = ["product", "site", "customer", "product_class", "first_active_period", "last_active_period"]
+    chosen = dict(zip(strategy_choice["product_class"], strategy_choice["strategy"]))
+    result = forecast_cycle(lifecycle_history, share_tables[columns], reinitialized_target, settings, cycle_date, log, chosen)
+    parent, leaf, models, fitted = result.parent, result.leaf, result.models, result.fitted
+    first = parent.drop_duplicates(["product", "site"])
+    used = first.groupby(["product_class", "strategy", "demand_class", "model"]).size().rename("parents").reset_index()
+    zeroed = parent[parent["zero_reason"].notna()].groupby("zero_reason").size().rename("parent_periods").reset_index()
+    negatives = pd.concat(
+        [find_negative(parent).assign(grain="parent"), find_negative(leaf).assign(grain="leaf")], ignore_index=True
+    )
+    period = settings.period
+    return StageResult(
+        outputs={"parent_forecast": parent, "statistical_forecast": leaf, "forecast_models": models,
+                 "forecast_fitted_values": fitted},
+        metadata={
+            "parent_forecast": {
+                "strategy_by_class": strategy_choice,
+                "models_used": used,
+                "horizon_total_by_class": parent.groupby("product_class")["forecast"].sum().rename("horizon_total").reset_index(),
+                "negatives_set_to_zero": result.negatives_clipped,
+                "periods_set_to_zero_by_reason": zeroed,
+            },
+            "statistical_forecast": {
+                "basis": leaf.groupby("basis").size().rename("rows").reset_index(),
+                "leaf_total": float(leaf["forecast"].sum()),
+            },
+            "forecast_models": {
+                "series_by_model": models.groupby(["grain", "product_class", "model"]).size().rename("series").reset_index()
+            },
+            "forecast_fitted_values": {
+                "series": int(fitted.drop_duplicates(["grain", "product", "site", "customer"]).shape[0])
+            },
+        },
+        checks={
+            NO_VOLUME_AFTER_PHASE_OUT: CheckRows(find_volume_after_phase_out(leaf, customer_spans, period)),
+            NO_VOLUME_OUTSIDE_ACTIVE_SPAN: CheckRows(
+                find_volume_outside_active_span(parent, leaf, customer_spans, products, period)
+            ),
+            NO_NEGATIVE_FORECAST: CheckRows(negatives),
+        },
+    )
