@@ -66,9 +66,32 @@ class StageAsset:
     extra_kinds: frozenset[str] = field(default_factory=frozenset)
 
 
+# every stage asset made, by its first table: the benchmark runs the same stages through these
+SPECS: dict[str, StageAsset] = {}
+
+
+def graph_order(specs: dict[str, StageAsset] = SPECS) -> list[StageAsset]:
+    """The stages in an order where each comes after the stages whose tables it reads (and its deps)."""
+    made_by = {t.name: key for key, spec in specs.items() for t in spec.tables}
+    order: list[str] = []
+
+    def visit(key: str, path: tuple[str, ...] = ()) -> None:
+        if key in order or key in path:
+            return
+        for name in specs[key].ins + specs[key].deps:
+            if name in made_by:
+                visit(made_by[name], path + (key,))
+        order.append(key)
+
+    for key in specs:
+        visit(key)
+    return [specs[k] for k in order]
+
+
 def stage_asset(spec: StageAsset) -> dg.AssetsDefinition:
     """The partitioned asset of a stage; see the module docstring."""
     names = [t.name for t in spec.tables]
+    SPECS[names[0]] = spec
     specs = [schema_check_spec(n, MODELS[n]) for n in names]
     specs += [dg.AssetCheckSpec(c.name, asset=c.asset, blocking=c.blocking, description=c.description)
               for n in names for c in checks_of(n)]
@@ -88,10 +111,10 @@ def stage_asset(spec: StageAsset) -> dg.AssetsDefinition:
         part = Partition.of(context)
         frames = {**inputs, **(spec.read(part) if spec.read else {})}
         result = spec.run(**frames, settings=spec.settings(part), log=context.log.info)
-        written = write_files(result.files, report_folder(part.config))
+        write_files(result.files, report_folder(part.config))
         if spec.publish:
             result = spec.publish(context, part, result)
-        yield from emit(spec, result, written)
+        yield from emit(spec, result)
 
     return _asset
 
@@ -105,7 +128,7 @@ def write_files(files: dict[str, bytes], folder: Path) -> dict[str, Path]:
     return {name: folder / name for name in files}
 
 
-def emit(spec: StageAsset, result: StageResult, written: dict[str, Path]):
+def emit(spec: StageAsset, result: StageResult):
     """Outputs (validated) with their metadata, then the schema checks, then the rule checks."""
     schema_checks = []
     for table in spec.tables:
