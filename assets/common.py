@@ -58,7 +58,9 @@ def schema_check_spec(asset_name: str, model: type[pa.DataFrameModel]) -> dg.Ass
     return dg.AssetCheckSpec(name=check.name, asset=asset_name, blocking=True, description=check.description)
 
 
-def validate(df: pd.DataFrame, model: type[pa.DataFrameModel], asset_name: str) -> tuple[pd.DataFrame, dg.AssetCheckResult]:
+def validate(
+    df: pd.DataFrame, model: type[pa.DataFrameModel], asset_name: str
+) -> tuple[pd.DataFrame, dg.AssetCheckResult]:
     """Validate lazily against `model`; the coerced frame (or `df` unchanged on failure) and the check result."""
     try:
         out = model.validate(df, lazy=True)
@@ -97,7 +99,9 @@ def rule_check(
     severity: dg.AssetCheckSeverity = dg.AssetCheckSeverity.ERROR,
     **extra,
 ) -> dg.AssetCheckResult:
-    """A check result (ERROR unless `severity` says WARN) that passes when `failing` is empty; failing rows sampled in metadata."""
+    """A check result (ERROR unless `severity` says WARN) that passes when `failing` is empty; failing rows
+    sampled in metadata.
+    """
     metadata = {
         "failing_count": dg.MetadataValue.int(len(failing)),
         "proves": dg.MetadataValue.text(what),

@@ -24,19 +24,26 @@ def write_page(context: dg.AssetExecutionContext, part: Partition, result: Stage
     return dataclasses.replace(result, outputs={CYCLE_REPORT: files}, metadata={CYCLE_REPORT: figures})
 
 
-cycle_report = stage_asset(StageAsset(
-    tables=(Table(
-        CYCLE_REPORT,
-        "Pictures of the class in this cycle - its parents' history and forecast, its children's shares as a "
-        "stacked area over history and horizon - shown here and written to var/reports/<cycle>/, and the cycle's HTML "
-        "page there (every class of the cycle: checks with status, classes, biggest share movers, rejected rows, charts).",
-        frozenset({"pandas", "matplotlib", "html"}),
-    ),),
-    run=stage.run,
-    settings=lambda part: stage.ReportSettings(part.config.calendar.period, part.product_class, part.cycle,
-                                               report_folder(part.config)),
-    group="report",
-    ins=("lifecycle_history", "parent_forecast", "reinitialized_target", "share_tables", "cycle_calendar"),
-    deps=("share_drift", "reconciliation"),
-    publish=write_page,
-))
+cycle_report = stage_asset(
+    StageAsset(
+        tables=(
+            Table(
+                CYCLE_REPORT,
+                "Pictures of the class in this cycle - its parents' history and forecast, its children's shares as a "
+                "stacked area over history and horizon - shown here and written to var/reports/<cycle>/, and the "
+                "cycle's HTML "
+                "page there (every class of the cycle: checks with status, classes, biggest share movers, "
+                "rejected rows, charts).",
+                frozenset({"pandas", "matplotlib", "html"}),
+            ),
+        ),
+        run=stage.run,
+        settings=lambda part: stage.ReportSettings(
+            part.config.calendar.period, part.product_class, part.cycle, report_folder(part.config)
+        ),
+        group="report",
+        ins=("lifecycle_history", "parent_forecast", "reinitialized_target", "share_tables", "cycle_calendar"),
+        deps=("share_drift", "reconciliation"),
+        publish=write_page,
+    )
+)

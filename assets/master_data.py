@@ -1,4 +1,5 @@
-"""Assets `products` (+ `product_class_map`), `customer_spans`, `adjustments`, `pins`, `shortages`: master data and planner input.
+"""Assets `products` (+ `product_class_map`), `customer_spans`, `adjustments`, `pins`, `shortages`: master data
+and planner input.
 
 Each partition (cycle x product class) keeps the rows of its class's products;
 the product master, read once by `products`, says which class a product is in
@@ -18,24 +19,39 @@ SHORTAGES = "shortages"
 
 
 def input_settings(part) -> InputSettings:
-    return InputSettings(part.config.inputs.folder, part.product_class, tuple(part.full.product_classes), str(part.full.source))
+    return InputSettings(
+        part.config.inputs.folder, part.product_class, tuple(part.full.product_classes), str(part.full.source)
+    )
 
 
 def _input(name: str, run, description: str):
-    return stage_asset(StageAsset(
-        tables=(Table(name, description),), run=run, settings=input_settings, group="master_data", ins=(PRODUCT_CLASS_MAP,)
-    ))
+    return stage_asset(
+        StageAsset(
+            tables=(Table(name, description),),
+            run=run,
+            settings=input_settings,
+            group="master_data",
+            ins=(PRODUCT_CLASS_MAP,),
+        )
+    )
 
 
-products = stage_asset(StageAsset(
-    tables=(
-        Table(PRODUCTS, "Product master of the partition's class: class, active span and successor of each product."),
-        Table(PRODUCT_CLASS_MAP, "The class of every product of the product master file, read once for the other inputs."),
-    ),
-    run=stage.run_products,
-    settings=input_settings,
-    group="master_data",
-))
+products = stage_asset(
+    StageAsset(
+        tables=(
+            Table(
+                PRODUCTS, "Product master of the partition's class: class, active span and successor of each product."
+            ),
+            Table(
+                PRODUCT_CLASS_MAP,
+                "The class of every product of the product master file, read once for the other inputs.",
+            ),
+        ),
+        run=stage.run_products,
+        settings=input_settings,
+        group="master_data",
+    )
+)
 
 customer_spans = _input(
     CUSTOMER_SPANS,

@@ -8,22 +8,37 @@ STATISTICAL_FORECAST = "statistical_forecast"
 FORECAST_MODELS = "forecast_models"
 FORECAST_FITTED_VALUES = "forecast_fitted_values"
 
-statistical_forecast = stage_asset(StageAsset(
-    tables=(
-        Table(STATISTICAL_FORECAST, "Statistical forecast at leaf grain, coherent with the parent by the class's strategy."),
-        Table(
-            PARENT_FORECAST,
-            "Statistical forecast per product x site, with model, demand class and strategy.",
-            frozenset({"pandas", "duckdb", "statsforecast"}),
+statistical_forecast = stage_asset(
+    StageAsset(
+        tables=(
+            Table(
+                STATISTICAL_FORECAST,
+                "Statistical forecast at leaf grain, coherent with the parent by the class's strategy.",
+            ),
+            Table(
+                PARENT_FORECAST,
+                "Statistical forecast per product x site, with model, demand class and strategy.",
+                frozenset({"pandas", "duckdb", "statsforecast"}),
+            ),
+            Table(
+                FORECAST_MODELS,
+                "One row per forecast series: grain, demand class, model and the parameters the library exposes.",
+            ),
+            Table(
+                FORECAST_FITTED_VALUES, "In-sample one-step fitted values behind the residuals of MinT / WLS classes."
+            ),
         ),
-        Table(FORECAST_MODELS, "One row per forecast series: grain, demand class, model and the parameters the library exposes."),
-        Table(FORECAST_FITTED_VALUES, "In-sample one-step fitted values behind the residuals of MinT / WLS classes."),
-    ),
-    run=stage.run,
-    settings=lambda part: stage.ForecastSettings.of(part.config),
-    group="forecast",
-    ins=(
-        "lifecycle_history", "share_tables", "reinitialized_target", "cycle_calendar", "strategy_choice", "customer_spans",
-        "products",
-    ),
-))
+        run=stage.run,
+        settings=lambda part: stage.ForecastSettings.of(part.config),
+        group="forecast",
+        ins=(
+            "lifecycle_history",
+            "share_tables",
+            "reinitialized_target",
+            "cycle_calendar",
+            "strategy_choice",
+            "customer_spans",
+            "products",
+        ),
+    )
+)

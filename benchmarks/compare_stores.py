@@ -102,7 +102,9 @@ def compare_table(table: str, old: pd.DataFrame, new: pd.DataFrame) -> list[str]
             same = x == y
         if not same.all():
             i = int(np.flatnonzero(~same)[0])
-            problems.append(f"column {c}: {int((~same).sum())} rows differ, first at sorted row {i}: OLD {x[i]!r}, NEW {y[i]!r}")
+            problems.append(
+                f"column {c}: {int((~same).sum())} rows differ, first at sorted row {i}: OLD {x[i]!r}, NEW {y[i]!r}"
+            )
     return problems + notes
 
 
@@ -121,7 +123,9 @@ def compare(old_path: Path, new_path: Path, use_renames: bool = True) -> int:
             new = new[new["asset"].isin(old["asset"])]
         lines = compare_table(table, old, new)
         if table == WRITTEN and len(added):
-            lines.append(f"{len(added)} rows of tables only in NEW ({', '.join(sorted(added['asset'].unique()))}), not compared")
+            lines.append(
+                f"{len(added)} rows of tables only in NEW ({', '.join(sorted(added['asset'].unique()))}), not compared"
+            )
         bad = [line for line in lines if "not compared" not in line]
         print(f"{'DIFF' if bad else 'same'}  {table}: {len(old):,} rows")
         for line in lines:
@@ -129,7 +133,10 @@ def compare(old_path: Path, new_path: Path, use_renames: bool = True) -> int:
         failed += bool(bad)
     for table in sorted(set(new_tables) - set(old_tables)):
         print(f"new   {table}: {len(new_tables[table]):,} rows (not in OLD)")
-    print(f"{len(old_tables) - failed} of {len(old_tables)} tables of OLD identical in NEW" + (" (after renames)" if use_renames else ""))
+    print(
+        f"{len(old_tables) - failed} of {len(old_tables)} tables of OLD identical in NEW"
+        + (" (after renames)" if use_renames else "")
+    )
     return 1 if failed else 0
 
 
@@ -137,7 +144,9 @@ def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("old", type=Path, help="store made before the change")
     p.add_argument("new", type=Path, help="store made after it")
-    p.add_argument("--no-renames", action="store_true", help="compare the tables as stored, without this release's renames")
+    p.add_argument(
+        "--no-renames", action="store_true", help="compare the tables as stored, without this release's renames"
+    )
     p.add_argument("--ignore", action="append", default=[], metavar="TABLE.COLUMN", help="also leave this column out")
     args = p.parse_args(argv)
     for item in args.ignore:

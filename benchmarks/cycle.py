@@ -121,18 +121,27 @@ def run_cycle(args: argparse.Namespace) -> dict:
     config = make_config(args.periods, args.horizon, args.seasonal, args.leaf_grain, args.shortage_rule,
                          seasonal_model=args.seasonal_model, class_outliers=not args.default_outliers,
                          share_method=args.share_method)
-    print(f"apportion cycle benchmark: {args.leaves:,} leaves, seed {args.seed}, {args.periods} weekly periods, horizon "
-          f"{args.horizon}, seasonal={args.seasonal_model if args.seasonal else 'off'}, leaf grain={args.leaf_grain or '-'}, "
-          f"share method={args.share_method or 'per class'}, tracemalloc={args.trace}, commit {(git_commit() or '?')[:8]}")
+    print(
+        f"apportion cycle benchmark: {args.leaves:,} leaves, seed {args.seed}, {args.periods} weekly periods, horizon "
+        f"{args.horizon}, seasonal={args.seasonal_model if args.seasonal else 'off'}, leaf "
+        f"grain={args.leaf_grain or '-'}, "
+        f"share method={args.share_method or 'per class'}, tracemalloc={args.trace}, commit {(git_commit() or '?')[:8]}"
+    )
     print(HEADER)
     print(UNITS)
     print("-" * len(HEADER))
 
     tmp = tempfile.TemporaryDirectory(prefix="apportion-bench-")
     csv_folder = Path(tmp.name) / "inputs" if args.csv else None
-    scen = bench.run("generate (not timed)", lambda: generate(args.leaves, args.seed, args.periods, csv_folder, args.horizon),
-                     rows_in=args.leaves, rows_out=lambda s: s.lines, in_total=False, trace=False,
-                     note=lambda s: f"{s.facts['parents']:,} parents, {s.facts['products']:,} products")
+    scen = bench.run(
+        "generate (not timed)",
+        lambda: generate(args.leaves, args.seed, args.periods, csv_folder, args.horizon),
+        rows_in=args.leaves,
+        rows_out=lambda s: s.lines,
+        in_total=False,
+        trace=False,
+        note=lambda s: f"{s.facts['parents']:,} parents, {s.facts['products']:,} products",
+    )
     con = open_store(args, tmp)
     if not args.no_warmup and any(s in todo for s in MODEL_STEPS):
         bench.run("warm-up numba (not in total)", lambda: warm_up(config, args.horizon), in_total=False, trace=False)
@@ -141,7 +150,9 @@ def run_cycle(args: argparse.Namespace) -> dict:
     config.check_classes_known(set(scen.products["product_class"]), where="benchmark products")
     tables = inputs(bench, scen, args)
     # without the backtest step: no accuracy, so no choice (none of the benchmark's classes is `auto`)
-    tables["backtest_accuracy"] = pd.DataFrame({c: pd.Series(dtype=object) for c in MODELS["backtest_accuracy"].to_schema().columns})
+    tables["backtest_accuracy"] = pd.DataFrame(
+        {c: pd.Series(dtype=object) for c in MODELS["backtest_accuracy"].to_schema().columns}
+    )
     for name, frame in tables.items():
         store(bench, con, name, frame)
     part = Partition(config, config, "2026-11-30", CLASSES[0])  # every class at once; the report runs per class
@@ -153,7 +164,9 @@ def run_cycle(args: argparse.Namespace) -> dict:
         if step == "drift":
             frames.update(previous_shares(bench, tables, config))
         if step == "report":
-            results = [run_report(bench, spec, frames, c, part, Path(tmp.name) / "reports") for c in config.product_classes]
+            results = [
+                run_report(bench, spec, frames, c, part, Path(tmp.name) / "reports") for c in config.product_classes
+            ]
         else:
             results = [run_stage(bench, step, spec, frames, spec.settings(part))]
         for table in spec.tables:
@@ -171,12 +184,20 @@ def run_cycle(args: argparse.Namespace) -> dict:
 def inputs(bench: Bench, scen: Scenario, args: argparse.Namespace) -> dict[str, pd.DataFrame]:
     """The generated inputs as the input assets deliver them (every class at once), validated."""
     if scen.folder is not None:
-        raw = bench.run("raw: load_raw_history", lambda: load_raw_history(scen.folder)[0], rows_out=len, note=lambda _: "CSV read")
+        raw = bench.run(
+            "raw: load_raw_history", lambda: load_raw_history(scen.folder)[0], rows_out=len, note=lambda _: "CSV read"
+        )
     else:
         raw = scen.raw
     scen.raw = None
-    given = {"products": scen.products, "customer_spans": scen.spans, "raw_history": raw, "adjustments": scen.adjustments,
-             "pins": scen.pins, "shortages": scen.shortages.iloc[0:0] if args.no_shortages else scen.shortages}
+    given = {
+        "products": scen.products,
+        "customer_spans": scen.spans,
+        "raw_history": raw,
+        "adjustments": scen.adjustments,
+        "pins": scen.pins,
+        "shortages": scen.shortages.iloc[0:0] if args.no_shortages else scen.shortages,
+    }
     return {name: validate(bench, args, name, frame) for name, frame in given.items()}
 
 
@@ -222,7 +243,12 @@ def validate(bench: Bench, args: argparse.Namespace, name: str, frame: pd.DataFr
     if args.no_validate:
         return frame
     model = MODELS[name]
-    return bench.run(f"  validate {name}", lambda: model.validate(frame, lazy=True), rows_in=len(frame), note=lambda _: model.__name__)
+    return bench.run(
+        f"  validate {name}",
+        lambda: model.validate(frame, lazy=True),
+        rows_in=len(frame),
+        note=lambda _: model.__name__,
+    )
 
 
 def open_store(args: argparse.Namespace, tmp):
@@ -259,8 +285,14 @@ def finish(bench: Bench, args: argparse.Namespace, scen: Scenario) -> dict:
         "steps": [asdict(s) for s in bench.steps],
         "statsforecast_calls": [asdict(c) for c in bench.sf_calls],
         "total": total,
-        "versions": {"python": sys.version.split()[0], "pandas": pd.__version__, "numpy": np.__version__, "statsforecast": statsforecast.__version__,
-                     "pandera": pa_version(), "commit": git_commit()},
+        "versions": {
+            "python": sys.version.split()[0],
+            "pandas": pd.__version__,
+            "numpy": np.__version__,
+            "statsforecast": statsforecast.__version__,
+            "pandera": pa_version(),
+            "commit": git_commit(),
+        },
     }
     if args.json:
         Path(args.json).parent.mkdir(parents=True, exist_ok=True)
@@ -276,25 +308,68 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
     p.add_argument("--seed", type=int, default=7, help="generator seed (default 7)")
     p.add_argument("--periods", type=int, default=156, help="weeks of history (default 156)")
     p.add_argument("--horizon", type=int, default=26, help="weeks to forecast (default 26)")
-    p.add_argument("--stages", default=",".join(DEFAULT_STAGES),
-                   help=f"comma list from {','.join(STAGES)}; the cycle runs up to the last one named (backtest only when named)")
+    p.add_argument(
+        "--stages",
+        default=",".join(DEFAULT_STAGES),
+        help=f"comma list from {','.join(STAGES)}; the cycle runs up to the last one named (backtest only when named)",
+    )
     p.add_argument("--seasonal", action="store_true", help="seasonal ETS / seasonal naive on class 'seasonal'")
-    p.add_argument("--seasonal-model", default="auto_ets", help="smooth/erratic model of class 'seasonal' with --seasonal "
-                   "(default auto_ets; the shipped config uses ets_additive_season)")
-    p.add_argument("--default-outliers", action="store_true", help="one Hampel rule for every class instead of the shipped per-class rules")
-    p.add_argument("--leaf-grain", choices=CLASSES, default=None, help="forecast this class at product x site x customer grain")
-    p.add_argument("--share-method", choices=SHARE_METHODS, default=None,
-                   help=f"share method of every class (smoothed with smoothing {SMOOTHING}); default: pooled, mean_of_ratios, pooled per class")
-    p.add_argument("--shortage-rule", choices=("exclude", "fill_baseline"), default="exclude", help="cleansing.shortages (default exclude)")
+    p.add_argument(
+        "--seasonal-model",
+        default="auto_ets",
+        help="smooth/erratic model of class 'seasonal' with --seasonal "
+        "(default auto_ets; the shipped config uses ets_additive_season)",
+    )
+    p.add_argument(
+        "--default-outliers",
+        action="store_true",
+        help="one Hampel rule for every class instead of the shipped per-class rules",
+    )
+    p.add_argument(
+        "--leaf-grain", choices=CLASSES, default=None, help="forecast this class at product x site x customer grain"
+    )
+    p.add_argument(
+        "--share-method",
+        choices=SHARE_METHODS,
+        default=None,
+        help=(
+            f"share method of every class (smoothed with smoothing {SMOOTHING}); default: pooled, "
+            "mean_of_ratios, pooled per class"
+        ),
+    )
+    p.add_argument(
+        "--shortage-rule",
+        choices=("exclude", "fill_baseline"),
+        default="exclude",
+        help="cleansing.shortages (default exclude)",
+    )
     p.add_argument("--no-shortages", action="store_true", help="an empty shortages table instead of the synthetic one")
     p.add_argument("--csv", action="store_true", help="write the lines to CSV files and time load_raw_history on them")
-    p.add_argument("--store", nargs="?", const="", default=None, metavar="PATH", help="also time a DuckDB write of each table (temp file unless PATH)")
+    p.add_argument(
+        "--store",
+        nargs="?",
+        const="",
+        default=None,
+        metavar="PATH",
+        help="also time a DuckDB write of each table (temp file unless PATH)",
+    )
     p.add_argument("--no-validate", action="store_true", help="skip the pandera validations")
-    p.add_argument("--trace", choices=("rerun", "inline", "off"), default="rerun",
-                   help="rerun (default): time each step untraced, then run it again under tracemalloc for its heap peak; "
-                   "inline: one traced run (wall times inflated by tracemalloc); off: no tracemalloc")
-    p.add_argument("--no-warmup", action="store_true", help="no numba warm-up: JIT compile time lands in the forecast stage")
-    p.add_argument("--rss-sample-ms", type=float, default=10.0, help="RSS sampling interval for the 'rss pk' column; 0 = off (default 10)")
+    p.add_argument(
+        "--trace",
+        choices=("rerun", "inline", "off"),
+        default="rerun",
+        help="rerun (default): time each step untraced, then run it again under tracemalloc for its heap peak; "
+        "inline: one traced run (wall times inflated by tracemalloc); off: no tracemalloc",
+    )
+    p.add_argument(
+        "--no-warmup", action="store_true", help="no numba warm-up: JIT compile time lands in the forecast stage"
+    )
+    p.add_argument(
+        "--rss-sample-ms",
+        type=float,
+        default=10.0,
+        help="RSS sampling interval for the 'rss pk' column; 0 = off (default 10)",
+    )
     p.add_argument("--json", default=None, metavar="PATH", help="write the figures as JSON")
     args = p.parse_args(argv)
     if args.leaves < 1 or args.periods < 8 or args.horizon < 1:

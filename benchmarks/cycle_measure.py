@@ -104,9 +104,20 @@ class Bench:
             return None, None, None
         return res["peak"], res["out"], res["wall"]
 
-    def run(self, stage: str, fn: Callable[[], Any], rows_in: int | None = None, rows_out: Callable[[Any], int] | None = None,
-            note: Callable[[Any], str] | None = None, in_total: bool = True, sf: bool = False, trace: bool = True) -> Any:
-        """Run `fn` untraced for its time and RSS, then (trace = rerun) once more under tracemalloc for its heap peak."""
+    def run(
+        self,
+        stage: str,
+        fn: Callable[[], Any],
+        rows_in: int | None = None,
+        rows_out: Callable[[Any], int] | None = None,
+        note: Callable[[Any], str] | None = None,
+        in_total: bool = True,
+        sf: bool = False,
+        trace: bool = True,
+    ) -> Any:
+        """Run `fn` untraced for its time and RSS, then (trace = rerun) once more under tracemalloc for its heap
+        peak.
+        """
         gc.collect()
         inline = self.trace == "inline" and tracemalloc.is_tracing()
         start_mem = tracemalloc.get_traced_memory()[0] if inline else 0
@@ -221,7 +232,11 @@ def patch_statsforecast(bench: Bench) -> None:
 
     M.make_model = tagged
     for method in ("fit", "predict", "forecast"):
-        setattr(statsforecast.StatsForecast, method, _timed_method(bench, method, getattr(statsforecast.StatsForecast, method)))
+        setattr(
+            statsforecast.StatsForecast,
+            method,
+            _timed_method(bench, method, getattr(statsforecast.StatsForecast, method)),
+        )
 
 
 def _timed_method(bench: Bench, method: str, original: Callable) -> Callable:
@@ -267,7 +282,9 @@ def warm_up(config: PlanningConfig, horizon: int) -> None:
                 t = 2 * 52 + 8
                 y = np.random.default_rng(0).poisson(5.0, size=2 * t).astype(float)
                 df = pd.DataFrame({"unique_id": np.repeat([0, 1], t), "ds": np.tile(np.arange(t), 2), "y": y})
-                sf = statsforecast.StatsForecast(models=[M.make_model(name, s)], freq=1, n_jobs=1, fallback_model=sfm.Naive())
+                sf = statsforecast.StatsForecast(
+                    models=[M.make_model(name, s)], freq=1, n_jobs=1, fallback_model=sfm.Naive()
+                )
                 sf.forecast(df=df, h=horizon)
                 sf.fit(df=df)
                 sf.predict(h=horizon)
@@ -292,7 +309,8 @@ def _mb(v: float | None) -> str:
 def format_row(s: Step) -> str:
     sf = "" if s.sf_s is None else f"{s.sf_s:.2f}"
     return (
-        f"{s.stage:<32} {s.wall_s:>8.2f} {sf:>8} {_mb(s.py_peak_mb):>8} {_mb(s.py_out_mb):>8} {s.rss_mb:>7.0f} {s.rss_peak_mb:>7.0f} "
+        f"{s.stage:<32} {s.wall_s:>8.2f} {sf:>8} {_mb(s.py_peak_mb):>8} {_mb(s.py_out_mb):>8} {s.rss_mb:>7.0f} "
+        f"{s.rss_peak_mb:>7.0f} "
         f"{s.rss_max_mb:>7.0f} {_n(s.rows_in):>11} {_n(s.rows_out):>11}  {s.note}"
     )
 
@@ -316,8 +334,10 @@ def total_line(steps: list[Step]) -> tuple[str, dict]:
     rss_max = rss_max_mb()
     slow = max(counted, key=lambda s: s.wall_s) if counted else None
     line = (
-        f"{'total':<32} {wall:>8.2f} {sf:>8.2f} {_mb(top.py_peak_mb if top else None):>8} {'':>8} {rss_now_mb():>7.0f} {rss_pk:>7.0f} "
-        f"{rss_max:>7.0f} {'':>11} {'':>11}  own code {wall - sf:.2f} s + statsforecast {sf:.2f} s; slowest {slow.stage.strip() if slow else '-'}"
+        f"{'total':<32} {wall:>8.2f} {sf:>8.2f} {_mb(top.py_peak_mb if top else None):>8} {'':>8} "
+        f"{rss_now_mb():>7.0f} {rss_pk:>7.0f} "
+        f"{rss_max:>7.0f} {'':>11} {'':>11}  own code {wall - sf:.2f} s + statsforecast {sf:.2f} s; slowest "
+        f"{slow.stage.strip() if slow else '-'}"
         + (f"; largest py peak {top.stage.strip()}" if top else "")
     )
     figures = {

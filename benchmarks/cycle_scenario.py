@@ -150,7 +150,9 @@ def generate(n_leaves: int, seed: int, periods: int, csv_folder: Path | None = N
     # --- demand parameters, as whole columns
     u = rng.random(n)
     intermittent = np.select([cls == 0, cls == 1], [u < 0.15, u < 0.2], u < 0.8)
-    level = np.where(cls == 2, rng.lognormal(np.log(4.0), 0.5, n), rng.lognormal(np.log(25.0), 0.9, n)).clip(1.0, 2000.0)
+    level = np.where(cls == 2, rng.lognormal(np.log(4.0), 0.5, n), rng.lognormal(np.log(25.0), 0.9, n)).clip(
+        1.0, 2000.0
+    )
     p_occ = rng.uniform(0.04, 0.45, n)
     size = rng.uniform(0.5, 6.0, n)
     growth = rng.uniform(-0.25, 0.3, n)
@@ -167,7 +169,11 @@ def generate(n_leaves: int, seed: int, periods: int, csv_folder: Path | None = N
         b = min(n, a + chunk)
         m = b - a
         phase = 2 * np.pi * (weeks[None, :] - peak[a:b, None]) / 52.0
-        season = np.where((cls[a:b] == 1)[:, None], np.exp(amplitude[a:b, None] * np.cos(phase)), 1.0 + amplitude[a:b, None] * np.cos(phase))
+        season = np.where(
+            (cls[a:b] == 1)[:, None],
+            np.exp(amplitude[a:b, None] * np.cos(phase)),
+            1.0 + amplitude[a:b, None] * np.cos(phase),
+        )
         season /= season.mean(axis=1, keepdims=True)
         mu = level[a:b, None] * season * (1.0 + growth[a:b, None]) ** (weeks[None, :] / 52.0)
         k = noise_k[a:b, None]
@@ -191,7 +197,11 @@ def generate(n_leaves: int, seed: int, periods: int, csv_folder: Path | None = N
     first_part = np.floor(qty[split] * rng.uniform(0.2, 0.8, split.sum())).astype(np.int64)
     ret = ~split & (qty >= 10) & (rng.random(L) < 0.001)
     big = rng.random(ret.sum()) < 0.1
-    ret_qty = np.where(big, np.rint(qty[ret] * rng.uniform(1.3, 1.8, ret.sum())), np.maximum(1, np.rint(qty[ret] * rng.uniform(0.05, 0.4, ret.sum()))))
+    ret_qty = np.where(
+        big,
+        np.rint(qty[ret] * rng.uniform(1.3, 1.8, ret.sum())),
+        np.maximum(1, np.rint(qty[ret] * rng.uniform(0.05, 0.4, ret.sum()))),
+    )
     dup = ~split & ~ret & (rng.random(L) < 0.0005)
     stray = phased & (end_w < P) & (rng.random(n) < 0.3)
     stray_leaf = np.flatnonzero(stray)
@@ -200,8 +210,18 @@ def generate(n_leaves: int, seed: int, periods: int, csv_folder: Path | None = N
     q_main[split] = first_part
     leaf = np.concatenate([leaf, leaf[split], leaf[ret], leaf[dup], stray_leaf])
     week = np.concatenate([week, week[split], week[ret], week[dup], stray_week])
-    day = np.concatenate([day, (day[split] + rng.integers(1, 6, split.sum())) % 6, (day[ret] + rng.integers(1, 6, ret.sum())) % 6, day[dup], rng.integers(0, 5, len(stray_leaf))])
-    qty = np.concatenate([q_main, qty[split] - first_part, -ret_qty.astype(np.int64), q_main[dup], 1 + rng.poisson(level[stray_leaf])])
+    day = np.concatenate(
+        [
+            day,
+            (day[split] + rng.integers(1, 6, split.sum())) % 6,
+            (day[ret] + rng.integers(1, 6, ret.sum())) % 6,
+            day[dup],
+            rng.integers(0, 5, len(stray_leaf)),
+        ]
+    )
+    qty = np.concatenate(
+        [q_main, qty[split] - first_part, -ret_qty.astype(np.int64), q_main[dup], 1 + rng.poisson(level[stray_leaf])]
+    )
 
     # --- files by calendar year, each sorted by leaf and date, rows numbered from 1
     date_idx = week * 7 + day
@@ -242,7 +262,9 @@ def generate(n_leaves: int, seed: int, periods: int, csv_folder: Path | None = N
     last_file = file_code[-1] if len(file_code) else 0
     last_row = int(source_row[-1]) if len(source_row) else 0
     columns = {
-        "source_file": np.concatenate([file_names[file_code], np.full(n_bad_lines, file_names[last_file], dtype=object)]),
+        "source_file": np.concatenate(
+            [file_names[file_code], np.full(n_bad_lines, file_names[last_file], dtype=object)]
+        ),
         "source_row": np.concatenate([source_row, last_row + 1 + np.arange(n_bad_lines)]).astype(np.int64),
     }
     del file_code, source_row
@@ -266,7 +288,15 @@ def generate(n_leaves: int, seed: int, periods: int, csv_folder: Path | None = N
     p_to[r_idx] = str(week_day[max(1, P - 40)] - np.timedelta64(1, "D"))
     p_from[successor[r_idx]] = str(week_day[max(0, P - 44)])
     p_succ[r_idx] = prod_code[successor[r_idx]]
-    products = pd.DataFrame({"product": prod_code, "product_class": np.array(CLASSES, dtype=object)[pclass], "active_from": p_from, "active_to": p_to, "successor": p_succ})
+    products = pd.DataFrame(
+        {
+            "product": prod_code,
+            "product_class": np.array(CLASSES, dtype=object)[pclass],
+            "active_from": p_from,
+            "active_to": p_to,
+            "successor": p_succ,
+        }
+    )
     reference[by_reference] = cust_code[lay["leaf_cust"][lay["l_start"][lay["leaf_par"][by_reference]]]]
     spans = pd.DataFrame(
         {
@@ -286,12 +316,16 @@ def generate(n_leaves: int, seed: int, periods: int, csv_folder: Path | None = N
     short_len = rng.integers(1, 5, len(short_par))
     short_start = rng.integers(0, max(1, P - 4), len(short_par))
     sp = np.repeat(short_par, short_len)
-    sw = np.repeat(short_start, short_len) + (np.arange(len(sp)) - np.repeat(np.cumsum(short_len) - short_len, short_len))
+    sw = np.repeat(short_start, short_len) + (
+        np.arange(len(sp)) - np.repeat(np.cumsum(short_len) - short_len, short_len)
+    )
     shortages = pd.DataFrame(
         {
             "product": prod_code[lay["par_prod"][sp]],
             "site": site_code[lay["par_site"][sp]],
-            "period_start": np.datetime_as_string(week_day[sw] + rng.integers(0, 7, len(sp)).astype("timedelta64[D]"), unit="D").astype(object),
+            "period_start": np.datetime_as_string(
+                week_day[sw] + rng.integers(0, 7, len(sp)).astype("timedelta64[D]"), unit="D"
+            ).astype(object),
         }
     )
     # planner input of plan_measures, drawn last so the history above does not depend on it
@@ -318,7 +352,14 @@ def generate(n_leaves: int, seed: int, periods: int, csv_folder: Path | None = N
         "adjustment_rows": len(adjustments),
         "pins": len(pins),
     }
-    master = {"products": products, "spans": spans, "shortages": shortages, "adjustments": adjustments, "pins": pins, "facts": facts}
+    master = {
+        "products": products,
+        "spans": spans,
+        "shortages": shortages,
+        "adjustments": adjustments,
+        "pins": pins,
+        "facts": facts,
+    }
     if csv_folder is None:
         return Scenario(raw=lines, folder=None, lines=len(lines), **master)
     csv_folder.mkdir(parents=True, exist_ok=True)
@@ -398,7 +439,11 @@ def _plan_inputs(
         pick = rng.choice(with_leaf, size=min(k, len(with_leaf)), replace=False)
         w = rng.integers(0, H, len(pick))
         pp = par_prod[pick]
-        value = np.round(np.where(changes[pp] & (w >= change_week[pp]), new_price[pp], price[pp]) * 0.95, 2) if name == "list_price" else np.ones(len(pick))
+        value = (
+            np.round(np.where(changes[pp] & (w >= change_week[pp]), new_price[pp], price[pp]) * 0.95, 2)
+            if name == "list_price"
+            else np.ones(len(pick))
+        )
         pin_rows.append((name, first_safe[pick], w, value))
     for name, pin in (("promotion_uplift", 1.0), ("planner_adjustment", 5.0)):
         a_par, a_week, a_value = picked[name]
@@ -459,7 +504,13 @@ def make_config(
             if share_method == "smoothed":
                 pc["smoothing"] = SMOOTHING
     if class_outliers and "outliers" in ProductClassConfig.model_fields:
-        classes["seasonal"]["outliers"] = {"rule": "tukey", "window": 25, "fence": 3.0, "replace_with": "limit", "sides": "upper"}
+        classes["seasonal"]["outliers"] = {
+            "rule": "tukey",
+            "window": 25,
+            "fence": 3.0,
+            "replace_with": "limit",
+            "sides": "upper",
+        }
         classes["slow"]["outliers"] = {"rule": "none"}
     if leaf_grain:
         classes[leaf_grain]["strategy"] = "bottom_up"
@@ -476,8 +527,20 @@ def make_config(
 SHARE_METHODS = ("pooled", "mean_of_ratios", "smoothed", "seasonal", "children_forecast")
 SMOOTHING = 0.1
 MEASURES = {  # as config/planning.yaml has them
-    "statistical_forecast": {"parent_values": "parent_forecast", "rule": "pro_rata", "basis": {"kind": "reinitialized_target"}},
+    "statistical_forecast": {
+        "parent_values": "parent_forecast",
+        "rule": "pro_rata",
+        "basis": {"kind": "reinitialized_target"},
+    },
     "list_price": {"rule": "replicate"},
-    "promotion_uplift": {"rule": "pro_rata", "basis": {"kind": "share_table", "name": "promotions_52w"}, "integer": {"pack_size": 1}},
-    "planner_adjustment": {"rule": "pro_rata", "basis": {"kind": "measure", "name": "statistical_forecast"}, "integer": {"pack_size": 5}},
+    "promotion_uplift": {
+        "rule": "pro_rata",
+        "basis": {"kind": "share_table", "name": "promotions_52w"},
+        "integer": {"pack_size": 1},
+    },
+    "planner_adjustment": {
+        "rule": "pro_rata",
+        "basis": {"kind": "measure", "name": "statistical_forecast"},
+        "integer": {"pack_size": 5},
+    },
 }

@@ -44,7 +44,9 @@ def run_cycle(
     summary: bool = True,
     backfill: int = 0,
 ) -> int:
-    """Run the cycle (or, with `rebuild_from`, that asset and everything downstream) for each class; 0 when no ERROR check failed."""
+    """Run the cycle (or, with `rebuild_from`, that asset and everything downstream) for each class; 0 when no
+    ERROR check failed.
+    """
     from pipelines.definitions import build_definitions
     from pipelines.partitions import current_cycle
     from pipelines.resources import PlanningConfigResource
@@ -55,7 +57,10 @@ def run_cycle(
     chosen = classes or list(config.product_classes)
     unknown = [c for c in chosen if c not in config.product_classes]
     if unknown:
-        raise ConfigError(f"{config.source}: --class {unknown} not under product_classes; valid classes are {sorted(config.product_classes)}")
+        raise ConfigError(
+            f"{config.source}: --class {unknown} not under product_classes; valid classes are "
+            f"{sorted(config.product_classes)}"
+        )
     defs = build_definitions(config_path)
     selection = rebuild_selection(defs, rebuild_from) if rebuild_from else None
     what = f"{rebuild_from} and downstream" if rebuild_from else "whole cycle"
@@ -76,9 +81,14 @@ def run_cycle(
     instance = _instance()
     ok = True
     for earlier in _missing_earlier_cycles(config, cycle, backfill):
-        print(f"backfill: cycle {earlier} is not in the store yet; running it first (share drift compares with it)", flush=True)
+        print(
+            f"backfill: cycle {earlier} is not in the store yet; running it first (share drift compares with it)",
+            flush=True,
+        )
         now.update(cycle=earlier, what="whole cycle", of=len(config.product_classes))
-        past = run_partitions(defs, instance, earlier, list(config.product_classes), run_config=run_config, on_start=started, on_done=done)
+        past = run_partitions(
+            defs, instance, earlier, list(config.product_classes), run_config=run_config, on_start=started, on_done=done
+        )
         ok = ok and past.success and past.blocking_checks_pass
     now.update(cycle=cycle, what=what, of=len(chosen))
     # progress at INFO on the console; the full event log stays in the instance (and the UI)
@@ -93,7 +103,10 @@ def run_cycle(
         on_start=started,
         on_done=done,
     )
-    checks = [(f"{e.asset_key.to_user_string()} [{c}]", e.check_name, e.passed, e.severity.value) for c, e in run.checks_by_class()]
+    checks = [
+        (f"{e.asset_key.to_user_string()} [{c}]", e.check_name, e.passed, e.severity.value)
+        for c, e in run.checks_by_class()
+    ]
     if summary:
         print_summary(config_path, checks, cycle=cycle)
     # the page again after every class ran, so a run a blocking check stopped shows its failure there too
@@ -117,7 +130,9 @@ def _missing_earlier_cycles(config, cycle: str, count: int) -> list[str]:
     return [c for c in earlier if c not in have]
 
 
-def print_summary(config_path: str, checks: list[tuple[str, str, bool, str]] | None = None, cycle: str | None = None) -> None:
+def print_summary(
+    config_path: str, checks: list[tuple[str, str, bool, str]] | None = None, cycle: str | None = None
+) -> None:
     from pipelines.resources import PlanningConfigResource, read_table, stored_cycles
 
     config = PlanningConfigResource(path=config_path).config
@@ -160,22 +175,34 @@ def print_summary(config_path: str, checks: list[tuple[str, str, bool, str]] | N
             how = f"window {pc.window}, {pc.method}" if pc else "not in config"
             p = parents[parents["product_class"] == name]
             fallbacks = int((p["fallback"] != "none").sum())
-            print(f"  {name:<14} {len(p):>4} parents {len(group):>5} children  ({how}; {fallbacks} parents used a fallback)")
+            print(
+                f"  {name:<14} {len(p):>4} parents {len(group):>5} children  ({how}; {fallbacks} parents used a "
+                "fallback)"
+            )
     choice = table("strategy_choice")  # as the cycle decided it, not decided again from today's config
     if choice is not None and len(choice):
         print("strategy:     (backtest, leaf-grain WMAPE; margin = runner-up minus chosen)")
         for _, row in choice.iterrows():
-            print(f"  {row['product_class']:<14} {row['strategy']:<21} WMAPE {row['leaf_wmape']:.3f}  "
-                  f"margin {row['margin']:+.4f} over {row['runner_up'] or '-'}  seasonal naive {row['seasonal_naive_wmape']:.3f}"
-                  f"  ({row['configured_strategy']})")
+            print(
+                f"  {row['product_class']:<14} {row['strategy']:<21} WMAPE {row['leaf_wmape']:.3f}  "
+                f"margin {row['margin']:+.4f} over {row['runner_up'] or '-'}  seasonal naive "
+                f"{row['seasonal_naive_wmape']:.3f}"
+                f"  ({row['configured_strategy']})"
+            )
     drift = table("share_drift")
     if drift is not None and len(drift):
         limit = config.monitoring.max_share_drift_pp
-        print(f"share drift:  vs cycle {drift['previous_cycle'].iloc[0]}; {int((drift['abs_change_pp'] > limit).sum())} children "
-              f"moved more than {limit:g} pp; biggest moves:")
+        print(
+            f"share drift:  vs cycle {drift['previous_cycle'].iloc[0]}; "
+            f"{int((drift['abs_change_pp'] > limit).sum())} children "
+            f"moved more than {limit:g} pp; biggest moves:"
+        )
         for _, r in drift.sort_values("abs_change_pp", ascending=False).head(5).iterrows():
-            print(f"  {r['product_class']:<14} {r['product']}/{r['site']}/{r['customer']:<8} {r['share_previous']:.3f} -> "
-                  f"{r['share_current']:.3f}  ({r['change_pp']:+.2f} pp, {r['status']})")
+            print(
+                f"  {r['product_class']:<14} {r['product']}/{r['site']}/{r['customer']:<8} "
+                f"{r['share_previous']:.3f} -> "
+                f"{r['share_current']:.3f}  ({r['change_pp']:+.2f} pp, {r['status']})"
+            )
     elif drift is not None:
         print("share drift:  no previous cycle in the store to compare with (python -m pipelines cycle --backfill 1)")
     if checks is not None:
@@ -222,31 +249,56 @@ def report(config_path: str, cycle: str | None) -> int:
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="python -m pipelines", description="apportion: the weekly share refresh cycle")
+    parser = argparse.ArgumentParser(
+        prog="python -m pipelines", description="apportion: the weekly share refresh cycle"
+    )
     sub = parser.add_subparsers(dest="command", required=True)
 
     def config_arg(p):
-        p.add_argument("--config", default="", help="planning config (default $APPORTION_CONFIG or config/planning.yaml)")
+        p.add_argument(
+            "--config", default="", help="planning config (default $APPORTION_CONFIG or config/planning.yaml)"
+        )
 
     p = sub.add_parser("cycle", help="run the weekly cycle for every class (or --class ...) and print a summary")
     config_arg(p)
-    p.add_argument("--cycle", default=None, help="cycle date YYYY-MM-DD (default: calendar.cycle_date, else the period after the history)")
-    p.add_argument("--class", dest="classes", action="append", default=None, help="only this product class (repeatable)")
-    p.add_argument("--backfill", type=int, default=0, metavar="N", help="first run the N cycles before it that the store does not hold yet")
-    p = sub.add_parser("rebuild", help="rematerialize one asset and everything downstream for one class, from the stored upstream tables")
+    p.add_argument(
+        "--cycle",
+        default=None,
+        help="cycle date YYYY-MM-DD (default: calendar.cycle_date, else the period after the history)",
+    )
+    p.add_argument(
+        "--class", dest="classes", action="append", default=None, help="only this product class (repeatable)"
+    )
+    p.add_argument(
+        "--backfill",
+        type=int,
+        default=0,
+        metavar="N",
+        help="first run the N cycles before it that the store does not hold yet",
+    )
+    p = sub.add_parser(
+        "rebuild",
+        help="rematerialize one asset and everything downstream for one class, from the stored upstream tables",
+    )
     config_arg(p)
-    p.add_argument("--class", dest="classes", action="append", required=True, help="product class to rebuild (repeatable)")
+    p.add_argument(
+        "--class", dest="classes", action="append", required=True, help="product class to rebuild (repeatable)"
+    )
     p.add_argument("--from", dest="asset", default="share_tables", help="first asset to rebuild (default share_tables)")
     p.add_argument("--cycle", default=None, help="cycle date (default: the current cycle)")
     p = sub.add_parser("summary", help="summarise a stored cycle (default the latest), no run")
     config_arg(p)
     p.add_argument("--cycle", default=None)
-    p = sub.add_parser("explain", help="how one leaf value was made: window, method, fallback, lifecycle, model, share, result")
+    p = sub.add_parser(
+        "explain", help="how one leaf value was made: window, method, fallback, lifecycle, model, share, result"
+    )
     config_arg(p)
     p.add_argument("product")
     p.add_argument("site")
     p.add_argument("customer")
-    p.add_argument("--period", default=None, help="a date inside a horizon period (default: every period of the horizon)")
+    p.add_argument(
+        "--period", default=None, help="a date inside a horizon period (default: every period of the horizon)"
+    )
     p.add_argument("--cycle", default=None, help="a stored cycle (default the latest)")
     p = sub.add_parser("report", help="write the cycle's HTML report again (var/reports/<cycle>/cycle_report.html)")
     config_arg(p)

@@ -53,84 +53,113 @@ PINS_WITHIN_PARENT = "pins_within_parent"
 
 CHECKS: tuple[Check, ...] = (
     Check(
-        EVERY_RAW_ROW_ACCOUNTED, "cleaned_history", True,
+        EVERY_RAW_ROW_ACCOUNTED,
+        "cleaned_history",
+        True,
         "Proves raw lines = lines summed into cleaned_history + rejected_rows, so no line is lost. "
         "When it fails, compare the counts in the metadata and report the stage as a bug.",
     ),
     Check(
-        CORRECTIONS_EXPLAIN_CHANGES, "cleaned_history", True,
+        CORRECTIONS_EXPLAIN_CHANGES,
+        "cleaned_history",
+        True,
         "Proves, per series, raw total + audited corrections = cleaned total, so every changed "
         "number is in history_corrections. When it fails, the series listed changed without an audit row.",
     ),
     Check(
-        REJECTED_ROWS_WITHIN_LIMIT, "rejected_rows", False,
-        "Warns when more than monitoring.max_rejected_share of the class's raw history lines were rejected (lines on or "
+        REJECTED_ROWS_WITHIN_LIMIT,
+        "rejected_rows",
+        False,
+        "Warns when more than monitoring.max_rejected_share of the class's raw history lines were rejected "
+        "(lines on or "
         "after the cycle date are not counted: they belong to a later cycle), with counts by reason and a sample. When "
         "it fires, correct the listed lines at their source (file and row are given) or the master data they miss, "
         "and rerun the cycle.",
     ),
     Check(
-        NEW_CUSTOMERS_HAVE_SHARE, "share_tables", False,
+        NEW_CUSTOMERS_HAVE_SHARE,
+        "share_tables",
+        False,
         "Warns when a new customer (fewer periods of own history than lifecycle.min_history_periods) "
         "has neither a reference_customer nor an initial_share, so it gets no share until it has that much "
         "history; the rows list them. When it fires (a warning, not a stop): give the listed spans a "
         "reference_customer or an initial_share in customer_spans if their volume should be planned now.",
     ),
     Check(
-        FALLBACK_SHARE_WITHIN_LIMIT, "share_tables", False,
+        FALLBACK_SHARE_WITHIN_LIMIT,
+        "share_tables",
+        False,
         "Warns when more than monitoring.max_fallback_share of the class's parents took their shares from a fallback "
         "(a longer window, or an even split when no window had volume), listing those parents. When it fires, the "
         "class's window is too short for its history: lengthen product_classes.<class>.window, or check that the "
         "parents' history arrived.",
     ),
     Check(
-        SHARES_SUM_TO_ONE, "reinitialized_target", True,
+        SHARES_SUM_TO_ONE,
+        "reinitialized_target",
+        True,
         f"Proves the shares of every parent in every horizon period sum to 1 within {SHARE_TOLERANCE:g}, "
         "or are all 0 with a recorded zero_reason. When it fails, the listed parent periods of reinitialized_target "
         "are inconsistent; rebuild share_tables and reinitialized_target.",
     ),
     Check(
-        SHARE_DRIFT_WITHIN_LIMIT, "share_drift", False,
+        SHARE_DRIFT_WITHIN_LIMIT,
+        "share_drift",
+        False,
         "Warns when a child's base share moved more than monitoring.max_share_drift_pp percentage points since the "
         "previous cycle of its class (a new or gone child counts from or to 0). When it fires, look at the listed "
         "children: a real change of mix (new contract, lost customer) is fine; otherwise inspect their history "
         "corrections and lifecycle spans before the split is used.",
     ),
     Check(
-        CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE, "strategy_choice", False,
+        CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE,
+        "strategy_choice",
+        False,
         "Warns when a product class's strategy (the backtest's choice for `auto`, else the configured one) has a "
         "higher leaf-grain backtest WMAPE than seasonal naive. When it fires, the listed classes' models add no value "
         "over the benchmark: review their models, or the history the backtest saw.",
     ),
     Check(
-        NO_VOLUME_AFTER_PHASE_OUT, "statistical_forecast", True,
+        NO_VOLUME_AFTER_PHASE_OUT,
+        "statistical_forecast",
+        True,
         "Proves no customer gets forecast volume in a period after its span ends. When it fails, "
         "check the listed customers' active_to in customer_spans.",
     ),
     Check(
-        NO_VOLUME_OUTSIDE_ACTIVE_SPAN, "statistical_forecast", True,
+        NO_VOLUME_OUTSIDE_ACTIVE_SPAN,
+        "statistical_forecast",
+        True,
         "Proves no customer gets forecast volume before its span starts, and no product or "
         "customer outside the product's active span. When it fails, check active_from in customer_spans and the "
         "product's span in products for the listed rows.",
     ),
     Check(
-        NO_NEGATIVE_FORECAST, "statistical_forecast", True,
+        NO_NEGATIVE_FORECAST,
+        "statistical_forecast",
+        True,
         "Proves no parent or leaf forecast is negative. When it fails, look at the listed rows' model "
         "in parent_forecast and at planner inputs.",
     ),
     Check(
-        CHILDREN_SUM_TO_PARENT, "reconciliation", True,
+        CHILDREN_SUM_TO_PARENT,
+        "reconciliation",
+        True,
         "Proves the leaf forecast of every parent and period sums to the parent forecast within "
         f"{RELATIVE_TOLERANCE:g} relative (one unit floor). When it fails, the listed parents were split wrongly: "
         "inspect their rows in statistical_forecast.",
     ),
     Check(
-        EVERY_ACTIVE_PARENT_HAS_CHILDREN, "reconciliation", True,
+        EVERY_ACTIVE_PARENT_HAS_CHILDREN,
+        "reconciliation",
+        True,
         "Proves every forecast parent has at least one active child to carry its volume. "
         "When it fails, add customer spans for the listed product x site or retire the product.",
     ),
     Check(
-        MEASURES_SUM_TO_PARENT, "plan_measures", True,
+        MEASURES_SUM_TO_PARENT,
+        "plan_measures",
+        True,
         "Proves that every measure reaches the leaf without losing or inventing anything: for even and "
         "pro_rata measures the customers of each product x site sum to its value in every period (pins counted; "
         "integer measures to the value rounded to the pack; 1e-9 relative), for replicate measures every unpinned "
@@ -139,13 +168,17 @@ CHECKS: tuple[Check, ...] = (
         "(correct the adjustments row or the customer spans); any other reason is a defect of the split to report.",
     ),
     Check(
-        PINS_KEPT, "plan_measures", True,
+        PINS_KEPT,
+        "plan_measures",
+        True,
         "Proves that every pin of the pins input is the value of its customer, product, site, period and "
         "measure in the plan. When it fails, the metadata lists the pins with the reason: a pin on a customer that is "
         "not active in that period cannot be kept (correct the pin's period or customer, or its customer span).",
     ),
     Check(
-        PINS_WITHIN_PARENT, "plan_measures", False,
+        PINS_WITHIN_PARENT,
+        "plan_measures",
+        False,
         "Warns when pins take more than their parent holds (with pins.on_overflow: warn), listing the "
         "parent periods: the pins are kept, the other customers get 0, and the customers sum to the pins, not to the "
         "parent. When it fires (a warning, not a stop): lower the listed pins or raise the parent value if the parent "

@@ -206,7 +206,9 @@ class ProductClassConfig(Frozen):
                     f"remove {key} or set method: {method}"
                 )
         if self.method == "smoothed" and self.smoothing is None:
-            raise ValueError("method 'smoothed' needs smoothing, the constant alpha with 0 < alpha <= 1 (e.g. smoothing: 0.2)")
+            raise ValueError(
+                "method 'smoothed' needs smoothing, the constant alpha with 0 < alpha <= 1 (e.g. smoothing: 0.2)"
+            )
         return self
 
     @property
@@ -228,7 +230,10 @@ class MonitoringConfig(Frozen):
     """Thresholds of the WARN checks a watcher looks at; a check fires above its threshold."""
 
     max_fallback_share: float = Field(
-        0.10, ge=0, le=1, description="share of a class's parents whose shares came from a fallback (longer window or even split)"
+        0.10,
+        ge=0,
+        le=1,
+        description="share of a class's parents whose shares came from a fallback (longer window or even split)",
     )
     max_rejected_share: float = Field(0.01, ge=0, le=1, description="rejected raw lines / raw lines of a class")
     max_share_drift_pp: float = Field(

@@ -33,7 +33,9 @@ def check_descriptions() -> dict[tuple[str, str], str]:
     return {(c.asset, c.name): c.description for c in checks}
 
 
-def latest_check_results(instance: dg.DagsterInstance, cycle: str, classes: list[str], runs_per_class: int = 20) -> pd.DataFrame:
+def latest_check_results(
+    instance: dg.DagsterInstance, cycle: str, classes: list[str], runs_per_class: int = 20
+) -> pd.DataFrame:
     """The newest evaluation of every check in each class's partition of `cycle` (from the runs of that partition)."""
     descriptions = check_descriptions()
     rows = []
@@ -65,7 +67,9 @@ def latest_check_results(instance: dg.DagsterInstance, cycle: str, classes: list
 def write_cycle_report(config: PlanningConfig, instance: dg.DagsterInstance, cycle: str) -> Path:
     """Render the cycle's page from the store and the instance; the path written."""
     store = Path(config.store.path)
-    folder = report_folder(config.model_copy(update={"calendar": config.calendar.model_copy(update={"cycle_date": cycle})}))
+    folder = report_folder(
+        config.model_copy(update={"calendar": config.calendar.model_copy(update={"cycle_date": cycle})})
+    )
     folder.mkdir(parents=True, exist_ok=True)
 
     def table(name: str) -> pd.DataFrame | None:
@@ -77,7 +81,8 @@ def write_cycle_report(config: PlanningConfig, instance: dg.DagsterInstance, cyc
     choice = table("strategy_choice")  # the decision the cycle stored, not one made again from today's config
     drift = table("share_drift")
     charts = {
-        c: [n for n in (report_charts.chart_file_name(k, c, cycle) for k in CHART_KINDS) if (folder / n).exists()] for c in classes
+        c: [n for n in (report_charts.chart_file_name(k, c, cycle) for k in CHART_KINDS) if (folder / n).exists()]
+        for c in classes
     }
     page = report_html.cycle_report_html(
         cycle_date=cycle,

@@ -48,7 +48,12 @@ from pipelines.vocabulary import (
 
 REQUIRED_TABLES = ("share_tables", "reinitialized_target", "parent_forecast", "statistical_forecast")
 OPTIONAL_TABLES = (
-    "forecast_models", "history_corrections", "lifecycle_audit", "cycle_calendar", "lifecycle_history", "strategy_choice"
+    "forecast_models",
+    "history_corrections",
+    "lifecycle_audit",
+    "cycle_calendar",
+    "lifecycle_history",
+    "strategy_choice",
 )
 LISTED = 30  # names listed at most in an error
 RELATIVE_TOLERANCE = 1e-6  # share x parent against the stored leaf forecast
@@ -111,7 +116,7 @@ def find_leaf(shares: pd.DataFrame, product: str, site: str, customer: str) -> p
         other = shares[(shares["customer"] == customer)]
         extra = ""
         if len(other):
-            pairs = [f"{p} x {s}" for p, s in zip(other["product"], other["site"])]
+            pairs = [f"{p} x {s}" for p, s in zip(other["product"], other["site"], strict=False)]
             extra = f"Customer {customer} is a customer of: {_listing(pairs)}."
         raise _unknown("customer", customer, f"a customer of {product} x {site}", of_site["customer"].unique(), extra)
     if len(row) > 1:
@@ -139,21 +144,26 @@ def _leaf_rows(frame: pd.DataFrame, product: str, site: str, customer: str | Non
 
 
 def _horizon(tables: Mapping[str, pd.DataFrame], product: str, site: str, customer: str) -> pd.DataFrame:
-    """Per horizon period of the leaf: share, zero-share reason, parent forecast and its zero reason, leaf forecast, basis."""
+    """Per horizon period of the leaf: share, zero-share reason, parent forecast and its zero reason, leaf
+    forecast, basis.
+    """
     target = _leaf_rows(tables["reinitialized_target"], product, site, customer)
     leaf = _leaf_rows(tables["statistical_forecast"], product, site, customer)
     parent = _leaf_rows(tables["parent_forecast"], product, site)
     for name, rows in (("reinitialized_target", target), ("statistical_forecast", leaf), ("parent_forecast", parent)):
         if rows.empty:
             raise PlanningError(
-                f"{name} has no row for {product} x {site}{'' if name == 'parent_forecast' else ' x ' + customer} although the "
+                f"{name} has no row for {product} x {site}{'' if name == 'parent_forecast' else ' x ' + customer} "
+                f"although the "
                 f"share table has the customer; the tables are of different cycles or {name} is stale. "
                 f"Rematerialize {name} and the assets after it."
             )
     out = target[["period_start", "share", "target", "parent_baseline", "zero_reason"]]
     out = out.rename(columns={"zero_reason": "zero_share_reason"})  # the parent forecast's own zero_reason joins below
     out = out.merge(
-        parent[["period_start", "forecast", "zero_reason"]].rename(columns={"forecast": "parent_forecast"}), on="period_start", how="outer"
+        parent[["period_start", "forecast", "zero_reason"]].rename(columns={"forecast": "parent_forecast"}),
+        on="period_start",
+        how="outer",
     )
     leaf = leaf[["period_start", "forecast", "basis"]].rename(columns={"forecast": "leaf_forecast"})
     out = out.merge(leaf, on="period_start", how="outer")
@@ -166,14 +176,20 @@ def _share_section(row: pd.Series, kind: str) -> list[str]:
     lines = ["1. Share from history"]
     if row["fallback"] == "even" or used == 0:
         lines.append(
-            f"   No window had parent volume (the configured {window} {kind}s, nor the fallback windows): fallback 'even', "
+            f"   No window had parent volume (the configured {window} {kind}s, nor the fallback windows): "
+            "fallback 'even', "
             f"the established customers of the parent share evenly."
         )
     else:
         last = shift_periods(cycle, -1, kind)
-        lines.append(f"   Window: the {used} {kind}s before the cycle date, {_day(row['window_start'])} to {_day(last)}.")
+        lines.append(
+            f"   Window: the {used} {kind}s before the cycle date, {_day(row['window_start'])} to {_day(last)}."
+        )
         if row["fallback"] == "longer_window":
-            lines.append(f"   Fallback 'longer_window': the configured {window}-{kind} window had no parent volume, so {used} {kind}s were used.")
+            lines.append(
+                f"   Fallback 'longer_window': the configured {window}-{kind} window had no parent volume, so "
+                f"{used} {kind}s were used."
+            )
         else:
             lines.append(f"   The configured window ({window} {kind}s) had parent volume: no fallback.")
         lines.append(f"   Method: {METHODS.get(str(row['method']), str(row['method']))}.")
@@ -218,7 +234,10 @@ def _lifecycle_section(row: pd.Series, siblings: pd.DataFrame, audit: pd.DataFra
     if audit is not None:
         mine = _leaf_rows(audit, row["product"], row["site"], row["customer"])
         for a in mine.itertuples(index=False):
-            lines.append(f"   Lifecycle stage: {a.rule}, {int(a.periods)} periods, quantity {_qty(float(a.quantity))} ({a.detail}).")
+            lines.append(
+                f"   Lifecycle stage: {a.rule}, {int(a.periods)} periods, quantity {_qty(float(a.quantity))} "
+                f"({a.detail})."
+            )
     return lines
 
 
@@ -230,11 +249,18 @@ def _corrections_section(row: pd.Series, corrections: pd.DataFrame | None, histo
     if history is not None:
         mine = _leaf_rows(history, row["product"], row["site"], row["customer"])
         products |= set(mine["source_product"].unique())
-    hit = corrections[corrections["product"].isin(products) & (corrections["site"] == row["site"]) & (corrections["customer"] == row["customer"])]
+    hit = corrections[
+        corrections["product"].isin(products)
+        & (corrections["site"] == row["site"])
+        & (corrections["customer"] == row["customer"])
+    ]
     if hit.empty:
         return lines + ["   None: no rule changed a period of this customer's history."]
     by_rule = hit.groupby("rule").agg(periods=("delta", "size"), delta=("delta", "sum")).sort_index()
-    parts = [f"{rule} {int(r.periods)} period{'s' if r.periods > 1 else ''} (net {float(r.delta):+,.2f})" for rule, r in by_rule.iterrows()]
+    parts = [
+        f"{rule} {int(r.periods)} period{'s' if r.periods > 1 else ''} (net {float(r.delta):+,.2f})"
+        for rule, r in by_rule.iterrows()
+    ]
     lines.append(f"   {len(hit)} corrected period{'s' if len(hit) > 1 else ''}: {'; '.join(parts)}.")
     other = sorted(set(hit["product"]) - {row["product"]})
     if other:
@@ -273,20 +299,32 @@ def _forecast_section(
         if len(m):
             m = m.iloc[0]
             detail = f", {m['parameters']}" if m["parameters"] else ""
-            measures = [f"ADI {float(m['adi']):.2f}" if pd.notna(m["adi"]) else "", f"CV^2 {float(m['cv2']):.3f}" if pd.notna(m["cv2"]) else ""]
+            measures = [
+                f"ADI {float(m['adi']):.2f}" if pd.notna(m["adi"]) else "",
+                f"CV^2 {float(m['cv2']):.3f}" if pd.notna(m["cv2"]) else "",
+            ]
             if any(measures):
                 cut = f"{', '.join(x for x in measures if x)}; cut-offs ADI 1.32, CV^2 0.49"
     lines.append(f"   Model {model}{detail}.")
     lines.append(f"   Demand class {first['demand_class']}{f' ({cut})' if cut else ''}.")
     strategy = first.get("strategy") if "strategy" in parent.columns else None
-    named = f"Strategy {strategy}" if isinstance(strategy, str) and strategy else "Strategy not recorded in parent_forecast"
+    named = (
+        f"Strategy {strategy}" if isinstance(strategy, str) and strategy else "Strategy not recorded in parent_forecast"
+    )
     lines.append(f"   {named} (models ran at grain: {first['model_grain']}).")
     lines += _choice_lines(row["product_class"], choice)
     if models is not None:
-        leaf_model = models[(models["grain"] == "leaf") & (models["product"] == product) & (models["site"] == site) & (models["customer"] == customer)]
+        leaf_model = models[
+            (models["grain"] == "leaf")
+            & (models["product"] == product)
+            & (models["site"] == site)
+            & (models["customer"] == customer)
+        ]
         if len(leaf_model):
             lm = leaf_model.iloc[0]
-            lines.append(f"   The customer's own series: model {lm['model']}{', ' + lm['parameters'] if lm['parameters'] else ''}; demand class {lm['demand_class']}.")
+            parameters = f", {lm['parameters']}" if lm["parameters"] else ""
+            own = f"model {lm['model']}{parameters}; demand class {lm['demand_class']}"
+            lines.append(f"   The customer's own series: {own}.")
     total = float(horizon["parent_forecast"].sum())
     lines.append(f"   Parent forecast over the {len(horizon)} horizon periods: {_qty(total)}.")
     return lines
@@ -297,17 +335,26 @@ def _result_text(r) -> str:
     share, parent, leaf = float(r.share), float(r.parent_forecast), float(r.leaf_forecast)
     if pd.notna(r.zero_share_reason) and (pd.notna(r.zero_reason) or leaf == 0):
         why = ZERO_REASONS.get(str(r.zero_share_reason), str(r.zero_share_reason))
-        return f"every share of the parent is 0 in this period ({r.zero_share_reason}: {why}), so the forecast is 0: leaf forecast {_qty(leaf)}."
+        return (
+            f"every share of the parent is 0 in this period ({r.zero_share_reason}: {why}), so the forecast "
+            f"is 0: leaf forecast {_qty(leaf)}."
+        )
     basis = str(r.basis)
     if basis in (Basis.REINITIALIZED_TARGET, Basis.PERIOD_SHARE):
         text = f"leaf forecast = period share x parent forecast = {share:.6f} x {_qty(parent)} = {_qty(share * parent)}"
         if abs(share * parent - leaf) > RELATIVE_TOLERANCE * max(abs(leaf), 1.0):
             implied = leaf / parent if parent else float("nan")
-            return text + f"; but the stored leaf forecast is {_qty(leaf)}, a proportion of {implied:.6f} ({BASES[basis]})."
+            return (
+                text
+                + f"; but the stored leaf forecast is {_qty(leaf)}, a proportion of {implied:.6f} ({BASES[basis]})."
+            )
         return text + f", as stored ({BASES[basis]})."
     implied = leaf / parent if parent else float("nan")
     proportion = "" if np.isnan(implied) else f", {100 * implied:.2f} % of the parent forecast {_qty(parent)}"
-    return f"leaf forecast {_qty(leaf)}{proportion}: {BASES.get(basis, basis)} (the period share from history was {share:.6f})."
+    return (
+        f"leaf forecast {_qty(leaf)}{proportion}: {BASES.get(basis, basis)} (the period share from history "
+        f"was {share:.6f})."
+    )
 
 
 def share_changes(horizon: pd.DataFrame, siblings: pd.DataFrame, limit: int = 10) -> list[str]:
@@ -326,7 +373,11 @@ def share_changes(horizon: pd.DataFrame, siblings: pd.DataFrame, limit: int = 10
             who.append(f"{', '.join(begin)} start{'s' if len(begin) == 1 else ''} in it")
         if end:
             who.append(f"{', '.join(end)} ended {_day(before)}")
-        reason = "; ".join(who) or (str(horizon["zero_share_reason"].iloc[i]) if pd.notna(horizon["zero_share_reason"].iloc[i]) else "the active customers changed")
+        reason = "; ".join(who) or (
+            str(horizon["zero_share_reason"].iloc[i])
+            if pd.notna(horizon["zero_share_reason"].iloc[i])
+            else "the active customers changed"
+        )
         out.append(f"   From {_day(at)} the share is {share[i]:.6f} (was {share[i - 1]:.6f}): {reason}.")
     return out
 
@@ -340,8 +391,14 @@ def _table(horizon: pd.DataFrame) -> list[str]:
             how += f", all shares 0: {r.zero_share_reason}"
         elif r.share == 0:
             how += ", customer not active or no share"
-        lines.append(f"   {_day(r.period_start):<10}  {r.share:>9.6f}  {_qty(r.parent_forecast):>15}  {_qty(r.leaf_forecast):>13}  {how}")
-    lines.append(f"   {'total':<10}  {'':>9}  {_qty(horizon['parent_forecast'].sum()):>15}  {_qty(horizon['leaf_forecast'].sum()):>13}")
+        lines.append(
+            f"   {_day(r.period_start):<10}  {r.share:>9.6f}  {_qty(r.parent_forecast):>15}  "
+            f"{_qty(r.leaf_forecast):>13}  {how}"
+        )
+    lines.append(
+        f"   {'total':<10}  {'':>9}  {_qty(horizon['parent_forecast'].sum()):>15}  "
+        f"{_qty(horizon['leaf_forecast'].sum()):>13}"
+    )
     return lines
 
 
@@ -355,7 +412,9 @@ def explain_leaf(tables: Mapping[str, pd.DataFrame], product: str, site: str, cu
     """
     missing = [t for t in REQUIRED_TABLES if t not in tables or tables[t] is None]
     if missing:
-        raise PlanningError(f"explain needs the tables {', '.join(missing)} of the cycle; materialize the cycle first (make demo).")
+        raise PlanningError(
+            f"explain needs the tables {', '.join(missing)} of the cycle; materialize the cycle first (make demo)."
+        )
     product, site, customer = str(product).strip(), str(site).strip(), str(customer).strip()
     row = find_leaf(tables["share_tables"], product, site, customer)
     horizon = _horizon(tables, product, site, customer)
@@ -373,38 +432,54 @@ def explain_leaf(tables: Mapping[str, pd.DataFrame], product: str, site: str, cu
     siblings = _leaf_rows(tables["share_tables"], product, site)
     lines += _lifecycle_section(row, siblings, tables.get("lifecycle_audit")) + [""]
     lines += _corrections_section(row, tables.get("history_corrections"), tables.get("lifecycle_history")) + [""]
-    lines += _forecast_section(row, horizon, parent, tables.get("forecast_models"), tables.get("strategy_choice")) + [""]
+    lines += _forecast_section(row, horizon, parent, tables.get("forecast_models"), tables.get("strategy_choice")) + [
+        ""
+    ]
 
     if period is None:
-        lines.append("5. Result per horizon period (share = the period share: base shares of the customers active in it, renormalised)")
+        lines.append(
+            "5. Result per horizon period (share = the period share: base shares of the customers active in it, "
+            "renormalised)"
+        )
         lines += _table(horizon)
         changes = share_changes(horizon, siblings)
         if changes:
-            lines += ["", "   The share changes inside the horizon where the customers active in the period change:"] + changes
+            lines += [
+                "",
+                "   The share changes inside the horizon where the customers active in the period change:",
+            ] + changes
         lines.append(
-            "   With a top-down split (basis reinitialized_target or period_share), leaf forecast = share x parent forecast."
+            "   With a top-down split (basis reinitialized_target or period_share), leaf forecast = share x "
+            "parent forecast."
         )
     else:
         try:
             asked = pd.Timestamp(period)
         except (TypeError, ValueError) as err:
-            raise UnknownKeyError(f"period {period!r} is not a date; give an ISO date such as {_day(horizon['period_start'].iloc[0])}.") from err
+            raise UnknownKeyError(
+                f"period {period!r} is not a date; give an ISO date such as {_day(horizon['period_start'].iloc[0])}."
+            ) from err
         start = period_start(pd.Series([asked]), kind).iloc[0]
         hit = horizon[horizon["period_start"] == start]
         if hit.empty:
             raise UnknownKeyError(
-                f"period {_day(asked)} (the {kind} starting {_day(start)}) is not in the horizon of cycle {_day(cycle)}, "
+                f"period {_day(asked)} (the {kind} starting {_day(start)}) is not in the horizon of cycle "
+                f"{_day(cycle)}, "
                 f"which runs from {_day(horizon['period_start'].min())} to {_day(horizon['period_start'].max())}; "
                 f"give a date inside it, or leave the period out for the whole horizon."
             )
         r = next(hit.itertuples(index=False))
         lines.append(f"5. Result in the {kind} of {_day(start)}")
-        lines.append(f"   Period share: {_share(float(r.share))}, the base shares of the customers active in this {kind}, renormalised.")
+        lines.append(
+            f"   Period share: {_share(float(r.share))}, the base shares of the customers active in this {kind}, "
+            "renormalised."
+        )
         lines.append(f"   Parent forecast: {_qty(float(r.parent_forecast))}.")
         base = float(row["share"])
         if abs(float(r.share) - base) > 1e-12:
             lines.append(
-                f"   It differs from the base share {base:.6f} because not every customer of the parent is active in this "
+                f"   It differs from the base share {base:.6f} because not every customer of the parent is "
+                "active in this "
                 f"{kind} (or a new customer's rule applies in it)."
             )
         text = _result_text(r)

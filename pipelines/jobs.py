@@ -31,7 +31,11 @@ cycle_job = dg.define_asset_job(
 def cycle_run_requests(cycle: str, classes: list[str], run_key_prefix: str) -> list[dg.RunRequest]:
     """One run request per class of `cycle`; the run key makes a repeated tick a no-op."""
     return [
-        dg.RunRequest(run_key=f"{run_key_prefix}:{cycle}|{c}", partition_key=partition_key(cycle, c), tags={"cycle": cycle, "product_class": c})
+        dg.RunRequest(
+            run_key=f"{run_key_prefix}:{cycle}|{c}",
+            partition_key=partition_key(cycle, c),
+            tags={"cycle": cycle, "product_class": c},
+        )
         for c in classes
     ]
 
@@ -53,7 +57,9 @@ def cycle_schedule(context: dg.ScheduleEvaluationContext, planning: PlanningConf
         return dg.SkipReason(f"no cycle started: {err}")
     classes = list(config.product_classes)
     register_partitions(context.instance, cycle, classes)
-    return cycle_run_requests(cycle, classes, run_key_prefix=f"schedule:{context.scheduled_execution_time:%Y-%m-%dT%H:%M}")
+    return cycle_run_requests(
+        cycle, classes, run_key_prefix=f"schedule:{context.scheduled_execution_time:%Y-%m-%dT%H:%M}"
+    )
 
 
 def history_signature(folder) -> dict[str, str]:

@@ -106,7 +106,10 @@ class CustomerSpans(LeafKeys):
         required=False,
         ge=0,
         lt=1,
-        description="optional: planner-given share of a new customer without reference; the others are scaled by 1 - it",
+        description=(
+            "optional: planner-given share of a new customer without reference; the others are scaled by "
+            "1 - it"
+        ),
     )
 
     class Config:
@@ -280,7 +283,9 @@ class ReinitializedTarget(LeafPeriod):
     )
     parent_baseline: Series[float] = pa.Field(ge=0, description="parent's mean per period over the window used")
     zero_reason: Series[str] = pa.Field(
-        nullable=True, isin=ZERO_REASONS, description="why every share of the parent is 0 in this period (blank = they sum to 1)"
+        nullable=True,
+        isin=ZERO_REASONS,
+        description="why every share of the parent is 0 in this period (blank = they sum to 1)",
     )
     basis: Optional[Series[str]] = pa.Field(
         isin=PERIOD_BASES,

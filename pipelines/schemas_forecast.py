@@ -44,7 +44,8 @@ class ParentForecast(_Strict):
     model: Series[str] = pa.Field(description="statsforecast model used")
     demand_class: Series[str] = pa.Field(isin=DEMAND_CLASSES, description="Syntetos-Boylan-Croston class")
     model_grain: Series[str] = pa.Field(
-        isin=values(ModelGrain), description="grains the class's models ran at: parent, leaf or both (the strategy's needs)"
+        isin=values(ModelGrain),
+        description="grains the class's models ran at: parent, leaf or both (the strategy's needs)",
     )
     strategy: Optional[Series[str]] = pa.Field(isin=STRATEGIES, description="how parent and leaf were made coherent")
     zero_reason: Series[str] = pa.Field(
@@ -59,7 +60,9 @@ class ForecastModels(_Strict):
     """One row per series the cycle forecast: its grain, demand class, model and parameters."""
 
     cycle_date: Series[DateTime] = pa.Field(description="cycle date")
-    grain: Series[str] = pa.Field(isin=GRAINS, description="parent (product x site) or leaf (product x site x customer)")
+    grain: Series[str] = pa.Field(
+        isin=GRAINS, description="parent (product x site) or leaf (product x site x customer)"
+    )
     product_class: Series[str] = pa.Field(description="product class")
     product: Series[str] = pa.Field(description="product code")
     site: Series[str] = pa.Field(description="site code")
@@ -108,10 +111,16 @@ class BacktestAccuracy(_Strict):
     """Rolling-origin backtest: one accuracy value per product class, strategy, grain and metric."""
 
     product_class: Series[str] = pa.Field(description="product class")
-    strategy: Series[str] = pa.Field(isin=STRATEGIES + (str(BENCHMARK),), description="strategy, or the seasonal naive benchmark")
+    strategy: Series[str] = pa.Field(
+        isin=STRATEGIES + (str(BENCHMARK),), description="strategy, or the seasonal naive benchmark"
+    )
     grain: Series[str] = pa.Field(isin=GRAINS, description="grain the accuracy is measured at")
-    metric: Series[str] = pa.Field(isin=values(Metric), description="wmape, bias, mase or fva (value added over seasonal naive, WMAPE points)")
-    value: Series[float] = pa.Field(nullable=True, description="the metric's value (NaN where undefined, e.g. no volume)")
+    metric: Series[str] = pa.Field(
+        isin=values(Metric), description="wmape, bias, mase or fva (value added over seasonal naive, WMAPE points)"
+    )
+    value: Series[float] = pa.Field(
+        nullable=True, description="the metric's value (NaN where undefined, e.g. no volume)"
+    )
     origins: Series[int] = pa.Field(ge=0, description="forecast origins evaluated")
     horizon: Series[int] = pa.Field(ge=1, description="periods forecast from each origin")
     series: Series[int] = pa.Field(ge=0, description="series of this grain in the class")
@@ -130,9 +139,13 @@ class StrategyChoice(_Strict):
     strategy: Series[str] = pa.Field(isin=STRATEGIES, description="strategy the cycle follows")
     leaf_wmape: Series[float] = pa.Field(nullable=True, description="its leaf-grain backtest WMAPE")
     runner_up: Series[str] = pa.Field(description="next best strategy by leaf-grain WMAPE ('' if none)")
-    margin: Series[float] = pa.Field(nullable=True, description="runner-up WMAPE minus the chosen one's (>= 0 for auto)")
+    margin: Series[float] = pa.Field(
+        nullable=True, description="runner-up WMAPE minus the chosen one's (>= 0 for auto)"
+    )
     seasonal_naive_wmape: Series[float] = pa.Field(nullable=True, description="leaf-grain WMAPE of seasonal naive")
-    beats_seasonal_naive: Series[bool] = pa.Field(description="chosen WMAPE not above the benchmark's (true where undefined)")
+    beats_seasonal_naive: Series[bool] = pa.Field(
+        description="chosen WMAPE not above the benchmark's (true where undefined)"
+    )
 
     class Config:
         unique = ["product_class"]
@@ -145,14 +158,17 @@ class PlanMeasures(LeafPeriod):
     measure: Series[str] = pa.Field(description="measure name (a key of config measures)")
     value: Series[float] = pa.Field(description="the leaf's value")
     parent_value: Series[float] = pa.Field(
-        nullable=True, description="the parent's value in this period (blank where it has none and only pins gave the row)"
+        nullable=True,
+        description="the parent's value in this period (blank where it has none and only pins gave the row)",
     )
     rule: Series[str] = pa.Field(isin=values(SplitRule), description="split rule of the measure")
     basis: Series[str] = pa.Field(
         description="what the value came from: parent (replicate), even, pin, or the pro_rata basis "
         "(reinitialized_target, leaf_forecast, share_table:<name>, measure:<name>)"
     )
-    fallback: Series[str] = pa.Field(isin=values(MeasureFallback), description="fallback the parent period's split took")
+    fallback: Series[str] = pa.Field(
+        isin=values(MeasureFallback), description="fallback the parent period's split took"
+    )
     pinned: Series[bool] = pa.Field(description="the value is a planner's pin, kept as given")
 
     class Config:
@@ -182,7 +198,9 @@ class ShareDrift(LeafKeys):
 
     product_class: Series[str] = pa.Field(description="product class")
     previous_cycle: Series[str] = pa.Field(description="cycle compared with (ISO date)")
-    share_previous: Series[float] = pa.Field(ge=0, le=1, description="base share in the previous cycle (0 = not a child then)")
+    share_previous: Series[float] = pa.Field(
+        ge=0, le=1, description="base share in the previous cycle (0 = not a child then)"
+    )
     share_current: Series[float] = pa.Field(ge=0, le=1, description="base share in this cycle (0 = no longer a child)")
     change_pp: Series[float] = pa.Field(ge=-100, le=100, description="100 x (current - previous), percentage points")
     abs_change_pp: Series[float] = pa.Field(ge=0, le=100, description="size of the move, percentage points")

@@ -227,7 +227,13 @@ class Basis(StrEnum):
     PIN = "pin"
 
 
-FORECAST_BASES = (Basis.REINITIALIZED_TARGET, Basis.PERIOD_SHARE, Basis.LEAF_FORECAST, Basis.CHILDREN_FORECAST, Basis.RECONCILED)
+FORECAST_BASES = (
+    Basis.REINITIALIZED_TARGET,
+    Basis.PERIOD_SHARE,
+    Basis.LEAF_FORECAST,
+    Basis.CHILDREN_FORECAST,
+    Basis.RECONCILED,
+)
 PERIOD_BASES = (Basis.HISTORY_SHARE, Basis.PERIOD_OF_YEAR, Basis.CHILDREN_FORECAST, Basis.POOLED_FALLBACK)
 MEASURE_BASES = (Basis.PARENT, Basis.EVEN, Basis.PIN, Basis.REINITIALIZED_TARGET, Basis.LEAF_FORECAST)
 # the period basis of a per-period share method where the parent has one

@@ -88,7 +88,9 @@ def test_mase_scale_per_series_stays_inside_each_series():
 
 
 def j06():
-    sktime_datasets = pytest.importorskip("sktime.datasets", reason="test extra: pip install sktime (ships the PBS J06 series)")
+    sktime_datasets = pytest.importorskip(
+        "sktime.datasets", reason="test extra: pip install sktime (ships the PBS J06 series)"
+    )
     return sktime_datasets.load_PBS_dataset().to_numpy(float)
 
 

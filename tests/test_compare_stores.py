@@ -22,11 +22,17 @@ def store(path: Path, tables: dict[str, pd.DataFrame]) -> Path:
 
 def test_identical_after_renames_in_any_row_order(tmp_path, capsys):
     # the last release's column and values, in another row order
-    old = store(tmp_path / "old.duckdb", {
-        "statistical_forecast": pd.DataFrame({"customer": ["C1", "C2"], "forecast": [1.5, float("nan")],
-                                              "split_basis": ["target", "own_forecast"]}),
-        "partitions_written": pd.DataFrame({"asset": ["statistical_forecast"], "written_at": [pd.Timestamp("2026-01-01")]}),
-    })
+    old = store(
+        tmp_path / "old.duckdb",
+        {
+            "statistical_forecast": pd.DataFrame(
+                {"customer": ["C1", "C2"], "forecast": [1.5, float("nan")], "split_basis": ["target", "own_forecast"]}
+            ),
+            "partitions_written": pd.DataFrame(
+                {"asset": ["statistical_forecast"], "written_at": [pd.Timestamp("2026-01-01")]}
+            ),
+        },
+    )
     new = store(tmp_path / "new.duckdb", {
         "statistical_forecast": pd.DataFrame({"customer": ["C2", "C1"], "forecast": [float("nan"), 1.5],
                                               "basis": ["leaf_forecast", "reinitialized_target"]}),
@@ -42,7 +48,11 @@ def test_identical_after_renames_in_any_row_order(tmp_path, capsys):
 
 
 def test_one_changed_number_is_a_difference_naming_the_column(tmp_path, capsys):
-    old = store(tmp_path / "old.duckdb", {"share_tables": pd.DataFrame({"customer": ["C1", "C2"], "share": [0.25, 0.75]})})
-    new = store(tmp_path / "new.duckdb", {"share_tables": pd.DataFrame({"customer": ["C1", "C2"], "share": [0.25, 0.7500001]})})
+    old = store(
+        tmp_path / "old.duckdb", {"share_tables": pd.DataFrame({"customer": ["C1", "C2"], "share": [0.25, 0.75]})}
+    )
+    new = store(
+        tmp_path / "new.duckdb", {"share_tables": pd.DataFrame({"customer": ["C1", "C2"], "share": [0.25, 0.7500001]})}
+    )
     assert compare_stores.compare(old, new) == 1
     assert "column share: 1 rows differ" in capsys.readouterr().out

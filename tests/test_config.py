@@ -4,6 +4,7 @@ import datetime as dt
 
 import pytest
 import yaml
+from pydantic import ValidationError
 
 from pipelines.calendar import resolve_cycle_date
 from pipelines.config import load_config, parse_config
@@ -26,7 +27,7 @@ def test_bundled_config_is_valid():
 
 def test_config_is_frozen():
     config = parse_config(MINIMAL)
-    with pytest.raises(Exception):
+    with pytest.raises(ValidationError, match="frozen"):
         config.calendar = None  # type: ignore[misc]
 
 

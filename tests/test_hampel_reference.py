@@ -169,13 +169,20 @@ def _inputs(quantities: dict[int, str]):
         for i, (w, q) in enumerate(sorted(quantities.items()))
     ]
     raw = RawHistory.validate(
-        pd.DataFrame(rows, columns=["source_file", "source_row", "product", "site", "customer", "period_start", "quantity"])
+        pd.DataFrame(
+            rows, columns=["source_file", "source_row", "product", "site", "customer", "period_start", "quantity"]
+        )
     )
     products = Products.validate(
-        pd.DataFrame({"product": ["P1"], "product_class": ["a"], "active_from": [None], "active_to": [None], "successor": [None]})
+        pd.DataFrame(
+            {"product": ["P1"], "product_class": ["a"], "active_from": [None], "active_to": [None], "successor": [None]}
+        )
     )
     spans = CustomerSpans.validate(
-        pd.DataFrame([("P1", "S1", "C1", None, None, None)], columns=["product", "site", "customer", "active_from", "active_to", "reference_customer"])
+        pd.DataFrame(
+            [("P1", "S1", "C1", None, None, None)],
+            columns=["product", "site", "customer", "active_from", "active_to", "reference_customer"],
+        )
     )
     return raw, products, spans
 

@@ -41,7 +41,9 @@ from pipelines.stages.statistical_forecast import forecast_cycle
 TOL = 1e-12
 
 
-def invented_rows(weeks: pd.DatetimeIndex, parents, seed: int, seasonal: bool = False, trend: bool = False) -> list[tuple]:
+def invented_rows(
+    weeks: pd.DatetimeIndex, parents, seed: int, seasonal: bool = False, trend: bool = False
+) -> list[tuple]:
     """Invented history rows (product, site, customer, week, quantity): parents [(product, site, customers)],
     every customer every week. seasonal: each customer its own yearly peak; trend: its own weekly
     growth (-4% to +4%).
@@ -90,8 +92,19 @@ def fp_config(grain: str = "top_down") -> object:
     return parse_config(
         {
             "calendar": {"horizon": HORIZON},
-            "product_classes": {"a": {"window": 26, "method": "children_forecast", "strategy": grain,
-                                      "models": {"smooth": "auto_ets", "erratic": "ses", "intermittent": "croston_sba", "lumpy": "croston_sba"}}},
+            "product_classes": {
+                "a": {
+                    "window": 26,
+                    "method": "children_forecast",
+                    "strategy": grain,
+                    "models": {
+                        "smooth": "auto_ets",
+                        "erratic": "ses",
+                        "intermittent": "croston_sba",
+                        "lumpy": "croston_sba",
+                    },
+                }
+            },
         }
     )
 
@@ -176,7 +189,9 @@ def test_smoothed_equals_pandas_ewm_and_statsmodels_ses_of_each_childs_proportio
             checked += 1
     assert checked == 7
     # the smoothed shares differ from the pooled ones on this data, so the check can tell them apart
-    pooled = compute_shares(history, children_of(history), parse_config({"product_classes": {"a": {"window": 20}}}), cycle)
+    pooled = compute_shares(
+        history, children_of(history), parse_config({"product_classes": {"a": {"window": 20}}}), cycle
+    )
     assert np.abs(pooled["history_share"].to_numpy() - shares.sort_index().to_numpy()).max() > 1e-3
 
 
@@ -210,7 +225,9 @@ def test_seasonal_equals_proportion_averages_over_the_same_iso_weeks(make_histor
     cfg = parse_config(
         {
             "calendar": {"horizon": SEASON_HORIZON},
-            "product_classes": {"a": {"window": 52, "method": "seasonal", "seasonal_years": years, "seasonal_band": band}},
+            "product_classes": {
+                "a": {"window": 52, "method": "seasonal", "seasonal_years": years, "seasonal_band": band}
+            },
         }
     )
     shares = compute_shares(history, children_of(history), cfg, SEASON_CYCLE)

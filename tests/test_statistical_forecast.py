@@ -23,7 +23,12 @@ from pipelines.stages.statistical_forecast import forecast_cycle
 CYCLE = pd.Timestamp("2026-02-02")
 WEEKS = ["2026-01-05", "2026-01-12", "2026-01-19", "2026-01-26"]
 H1, H2 = pd.Timestamp("2026-02-02"), pd.Timestamp("2026-02-09")
-CROSTON = {"smooth": "croston_classic", "erratic": "croston_classic", "intermittent": "croston_classic", "lumpy": "croston_classic"}
+CROSTON = {
+    "smooth": "croston_classic",
+    "erratic": "croston_classic",
+    "intermittent": "croston_classic",
+    "lumpy": "croston_classic",
+}
 
 
 # ------------------------------------------------------------------ series_grid
@@ -54,7 +59,9 @@ def grid_of(*series):
         code += [i] * len(values)
         ordinal += list(range(100 - len(values), 100))
         qty += list(values)
-    return series_grid(np.array(code, dtype=np.int64), np.array(ordinal, dtype=np.int64), np.array(qty, dtype=float), len(series), 100)
+    return series_grid(
+        np.array(code, dtype=np.int64), np.array(ordinal, dtype=np.int64), np.array(qty, dtype=float), len(series), 100
+    )
 
 
 def test_demand_classes_one_series_per_class_and_no_demand():
@@ -126,12 +133,24 @@ def cfg(make_config, grain="top_down"):
 def targets(rows):
     """rows: (product, site, customer, period_start, target[, share[, zero_reason]]); share defaults to 0.5."""
     full = [tuple(r) + (0.5, None)[len(r) - 5 :] for r in rows]
-    frame = pd.DataFrame(full, columns=["product", "site", "customer", "period_start", "target", "share", "zero_reason"])
+    frame = pd.DataFrame(
+        full, columns=["product", "site", "customer", "period_start", "target", "share", "zero_reason"]
+    )
     frame["period_start"] = pd.to_datetime(frame["period_start"])
     frame["cycle_date"] = CYCLE
     frame["parent_baseline"] = 1.0
     frame["zero_reason"] = frame["zero_reason"].astype(object)
-    columns = ["product", "site", "customer", "period_start", "cycle_date", "target", "share", "parent_baseline", "zero_reason"]
+    columns = [
+        "product",
+        "site",
+        "customer",
+        "period_start",
+        "cycle_date",
+        "target",
+        "share",
+        "parent_baseline",
+        "zero_reason",
+    ]
     return ReinitializedTarget.validate(frame[columns])
 
 
@@ -142,13 +161,15 @@ def constant_history(make_history, per_customer):
 
 def leaf_values(result, column="forecast"):
     leaf = result.leaf
-    return {(c, p): v for c, p, v in zip(leaf["customer"], leaf["period_start"], leaf[column])}
+    return {(c, p): v for c, p, v in zip(leaf["customer"], leaf["period_start"], leaf[column], strict=False)}
 
 
 def test_leaf_is_parent_forecast_times_target_over_sum_of_targets(make_history, make_children, make_config):
     history = constant_history(make_history, {"C1": 4, "C2": 8})
     children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
-    tg = targets([("P1", "S1", "C1", H1, 1), ("P1", "S1", "C2", H1, 3), ("P1", "S1", "C1", H2, 2), ("P1", "S1", "C2", H2, 2)])
+    tg = targets(
+        [("P1", "S1", "C1", H1, 1), ("P1", "S1", "C2", H1, 3), ("P1", "S1", "C1", H2, 2), ("P1", "S1", "C2", H2, 2)]
+    )
     res = forecast_cycle(history, children, tg, cfg(make_config), CYCLE)
     ParentForecast.validate(res.parent)
     StatisticalForecast.validate(res.leaf)
@@ -174,7 +195,12 @@ def test_intermittent_parent_forecast_by_hand_is_split_by_target(make_history, m
     assert res.parent["forecast"].tolist() == pytest.approx([4.2 / 1.1] * 2)
     # split 1 : 4 -> C1 3.8181 / 5 = 0.7636, C2 3.8181 x 4 / 5 = 3.0545
     assert leaf_values(res) == pytest.approx(
-        {("C1", H1): 4.2 / 1.1 / 5, ("C2", H1): 4.2 / 1.1 * 4 / 5, ("C1", H2): 4.2 / 1.1 / 5, ("C2", H2): 4.2 / 1.1 * 4 / 5}
+        {
+            ("C1", H1): 4.2 / 1.1 / 5,
+            ("C2", H1): 4.2 / 1.1 * 4 / 5,
+            ("C1", H2): 4.2 / 1.1 / 5,
+            ("C2", H2): 4.2 / 1.1 * 4 / 5,
+        }
     )
 
 
@@ -226,7 +252,9 @@ def test_new_customer_history_is_part_of_the_parent_series(make_history, make_ch
     assert res.parent["forecast"].tolist() == pytest.approx([7.14, 7.14])
 
 
-def test_parent_period_whose_shares_are_all_zero_is_forecast_zero_with_its_reason(make_history, make_children, make_config):
+def test_parent_period_whose_shares_are_all_zero_is_forecast_zero_with_its_reason(
+    make_history, make_children, make_config
+):
     history = constant_history(make_history, {"C1": 4, "C2": 8})
     children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
     # H1 splits 1 : 3; in H2 the product has ended, every share 0 with reason product_not_active
@@ -248,7 +276,7 @@ def _series(nonzero_sizes, length):
     values = [0.0] * length
     gaps = length - len(nonzero_sizes)
     slots = [0] + sorted(set(range(1, length)) - set(range(2, 2 + 3 * gaps, 3)))[: len(nonzero_sizes) - 1]
-    for slot, size in zip(slots, nonzero_sizes):
+    for slot, size in zip(slots, nonzero_sizes, strict=False):
         values[slot] = float(size)
     return values
 
@@ -297,7 +325,10 @@ def test_auto_class_follows_forecast_proportions_chosen_by_the_backtest(make_his
 def test_auto_class_reconciled_by_mint_stays_coherent(make_history, make_children, make_config):
     # C1: 4, 6, 4, 6; C2: 8 every week -> parent 12, 14, 12, 14 (smooth). Croston's SES with one alpha is
     # linear, so these base forecasts are already coherent; what must hold is that the result stays so
-    history = make_history([("P1", "S1", "C1", w, q) for w, q in zip(WEEKS, [4, 6, 4, 6])] + [("P1", "S1", "C2", w, 8) for w in WEEKS])
+    history = make_history(
+        [("P1", "S1", "C1", w, q) for w, q in zip(WEEKS, [4, 6, 4, 6], strict=False)]
+        + [("P1", "S1", "C2", w, 8) for w in WEEKS]
+    )
     children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
     tg = targets([("P1", "S1", c, h, 1.0) for h in (H1, H2) for c in ("C1", "C2")])
     res = forecast_cycle(history, children, tg, auto_cfg(make_config), CYCLE,
@@ -325,7 +356,12 @@ def test_forecast_models_table_names_model_and_croston_state(make_history, make_
     models = ForecastModels.validate(res.models)
     row = models.iloc[0]
     # one parent series (top-down): sizes 4, 6 -> 4.2; intervals 1, 2 -> 1.1 (see the intermittent test above)
-    assert (row["grain"], row["customer"], row["model"], row["demand_class"]) == ("parent", "", "croston_classic", "intermittent")
+    assert (row["grain"], row["customer"], row["model"], row["demand_class"]) == (
+        "parent",
+        "",
+        "croston_classic",
+        "intermittent",
+    )
     assert row["parameters"] == "alpha=0.1 size=4.2 interval=1.1"
     assert len(models) == 1
 
@@ -339,7 +375,11 @@ def test_fitted_values_are_kept_for_the_classes_mint_reconciles(make_history, ma
     res = forecast_cycle(history, children, tg, auto_cfg(make_config), CYCLE, chosen={"a": "wls_var"})
     fitted = ForecastFittedValues.validate(res.fitted)
     # parent and two leaves, 4 weeks each; statsforecast's Croston has no fitted value for the first week -> 3 each
-    assert sorted(set(zip(fitted["grain"], fitted["customer"]))) == [("leaf", "C1"), ("leaf", "C2"), ("parent", "")]
+    assert sorted(set(zip(fitted["grain"], fitted["customer"], strict=False))) == [
+        ("leaf", "C1"),
+        ("leaf", "C2"),
+        ("parent", ""),
+    ]
     leaf_c2 = fitted[fitted["customer"] == "C2"]
     assert leaf_c2["fitted"].tolist() == pytest.approx([8.0, 8.0, 8.0])
     assert leaf_c2["period_start"].tolist() == [pd.Timestamp(w) for w in WEEKS[1:]]

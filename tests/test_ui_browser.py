@@ -66,7 +66,10 @@ def _sync_playwright():
     """Playwright's sync API over /usr/bin/chromium; skip (or fail when the browser is required) without them."""
     missing = None
     if not CHROMIUM.exists():
-        missing = f"{CHROMIUM} is missing: install Debian's chromium with `apt-get install -y chromium` (or `make browser-deps`)"
+        missing = (
+            f"{CHROMIUM} is missing: install Debian's chromium with `apt-get install -y chromium` (or "
+            "`make browser-deps`)"
+        )
     else:
         try:
             from playwright.sync_api import sync_playwright
@@ -151,7 +154,11 @@ def _wait_until_loaded(process: subprocess.Popen, base_url: str) -> str | None:
         except (urllib.error.URLError, ConnectionError, TimeoutError):
             entries = None
         if entries and all(e["loadStatus"] == "LOADED" for e in entries):
-            errors = [e["locationOrLoadError"] for e in entries if e["locationOrLoadError"]["__typename"] != "RepositoryLocation"]
+            errors = [
+                e["locationOrLoadError"]
+                for e in entries
+                if e["locationOrLoadError"]["__typename"] != "RepositoryLocation"
+            ]
             return f"load error {errors}" if errors else None
         status = f"locations {entries}" if entries is not None else status
         time.sleep(1)
@@ -278,7 +285,9 @@ def test_ui_shows_the_failed_schema_check_with_its_rows_then_its_history(tmp_pat
             result = page.get_by_text("Evaluation result", exact=True).locator("xpath=..")
             expect(result).to_contain_text("Passed", timeout=UI_TIMEOUT_MS)
             page.get_by_role("tab", name="Execution history", exact=True).click()
-            rows = page.get_by_role("row").filter(has_text="Failed").or_(page.get_by_role("row").filter(has_text="Passed"))
+            rows = (
+                page.get_by_role("row").filter(has_text="Failed").or_(page.get_by_role("row").filter(has_text="Passed"))
+            )
             expect(rows).to_have_count(2, timeout=UI_TIMEOUT_MS)
             # newest first: the passed evaluation above the failed one
             assert "Passed" in rows.nth(0).inner_text() and "Failed" in rows.nth(1).inner_text()

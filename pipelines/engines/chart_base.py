@@ -58,7 +58,9 @@ def _rank_parents(history: pd.DataFrame, forecast: pd.DataFrame, parents: pd.Dat
     ranked = parents.join(hist, on=PARENT)
     ranked = ranked.join(fc, on=PARENT) if fc is not None else ranked.assign(forecast_volume=0.0)
     ranked[["history_volume", "forecast_volume"]] = ranked[["history_volume", "forecast_volume"]].fillna(0.0)
-    ranked = ranked.sort_values(["history_volume", "forecast_volume", "product", "site"], ascending=[False, False, True, True])
+    ranked = ranked.sort_values(
+        ["history_volume", "forecast_volume", "product", "site"], ascending=[False, False, True, True]
+    )
     return ranked.reset_index(drop=True)
 
 
@@ -68,7 +70,9 @@ def _in_class(frame: pd.DataFrame, product_class: str) -> pd.DataFrame:
     return frame
 
 
-def _history_of(history: pd.DataFrame, parents: pd.DataFrame, cycle: pd.Timestamp, period: str, history_periods: int | None) -> pd.DataFrame:
+def _history_of(
+    history: pd.DataFrame, parents: pd.DataFrame, cycle: pd.Timestamp, period: str, history_periods: int | None
+) -> pd.DataFrame:
     """History rows of these parents before the cycle date, the last `history_periods` periods only when given."""
     hist = history.merge(parents[PARENT].drop_duplicates(), on=PARENT, how="inner")
     keep = hist["period_start"] < cycle
@@ -83,9 +87,19 @@ def _next_starts(starts: pd.DatetimeIndex, period: str) -> pd.DatetimeIndex:
 
 
 def _bars(left: np.ndarray, width: np.ndarray, bottom: np.ndarray, height: np.ndarray, **style) -> PolyCollection:
-    """Rectangles [left, left + width] x [bottom, bottom + height] as one artist (thousands of bars draw in one call)."""
+    """Rectangles [left, left + width] x [bottom, bottom + height] as one artist (thousands of bars draw in one
+    call).
+    """
     right, top = left + width, bottom + height
-    corners = np.stack([np.stack([left, bottom], 1), np.stack([right, bottom], 1), np.stack([right, top], 1), np.stack([left, top], 1)], 1)
+    corners = np.stack(
+        [
+            np.stack([left, bottom], 1),
+            np.stack([right, bottom], 1),
+            np.stack([right, top], 1),
+            np.stack([left, top], 1),
+        ],
+        1,
+    )
     return PolyCollection(corners, linewidths=0, antialiaseds=False, zorder=2, **style)
 
 
@@ -114,10 +128,14 @@ def _caption(text: str, names: Sequence[str] = (), lead: str = "") -> list[str]:
 
 
 def _mark_horizon(ax, cycle: pd.Timestamp, end: pd.Timestamp | None, label: bool) -> None:
-    """Shade the horizon, draw the cycle date; with `label`, name it in the legend and write history / horizon on the axes."""
+    """Shade the horizon, draw the cycle date; with `label`, name it in the legend and write history / horizon on
+    the axes.
+    """
     if end is not None and end > cycle:
         ax.axvspan(cycle, end, color=HORIZON_SHADE, zorder=0, lw=0)
-    ax.axvline(cycle, color=CYCLE_COLOR, ls="--", lw=1.0, zorder=3, label=f"cycle date {cycle:%Y-%m-%d}" if label else None)
+    ax.axvline(
+        cycle, color=CYCLE_COLOR, ls="--", lw=1.0, zorder=3, label=f"cycle date {cycle:%Y-%m-%d}" if label else None
+    )
     if label:
         where = ax.get_xaxis_transform()  # x in dates, y in axes fraction
         ax.text(cycle, 1.01, "history  ", ha="right", va="bottom", fontsize=8, transform=where)

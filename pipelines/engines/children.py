@@ -11,7 +11,11 @@ from pipelines.keys import LEAF, factorize, lookup
 
 
 def active_children(
-    spans: pd.DataFrame, products: pd.DataFrame, history: pd.DataFrame, settings: ShareSettings, cycle_date: pd.Timestamp
+    spans: pd.DataFrame,
+    products: pd.DataFrame,
+    history: pd.DataFrame,
+    settings: ShareSettings,
+    cycle_date: pd.Timestamp,
 ) -> pd.DataFrame:
     """The children that can receive a share: customer spans active in any period of the horizon.
 

@@ -69,7 +69,9 @@ def shortage_cells(
     cells = np.zeros((n, t), dtype=bool)
     if shortages is None or len(shortages) == 0:
         empty = {"product": pd.Series(dtype=object), "site": pd.Series(dtype=object)}
-        return cells, pd.DataFrame(empty | {"period_start": pd.Series(dtype="datetime64[ns]"), "children": pd.Series(dtype=np.int64)})
+        return cells, pd.DataFrame(
+            empty | {"period_start": pd.Series(dtype="datetime64[ns]"), "children": pd.Series(dtype=np.int64)}
+        )
     dates = pd.to_datetime(shortages["period_start"], errors="coerce")
     records = shortages.loc[dates.notna().to_numpy(), PARENT].astype(str).reset_index(drop=True)
     records["period_start"] = period_start(dates[dates.notna()].reset_index(drop=True), period)
@@ -117,4 +119,6 @@ def correction_rows(
     else:
         parameters = json.dumps(params)
     leaf = i if leaf_index is None else np.asarray(leaf_index)[i]
-    return pd.DataFrame({"leaf": leaf, "col": j, "rule": rule, "before": b, "after": a, "delta": a - b, "parameters": parameters})
+    return pd.DataFrame(
+        {"leaf": leaf, "col": j, "rule": rule, "before": b, "after": a, "delta": a - b, "parameters": parameters}
+    )

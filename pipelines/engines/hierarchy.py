@@ -182,7 +182,9 @@ def mint_reconcile(
     return parent_out, leaf_out
 
 
-def clip_and_resum(parent: np.ndarray, leaf: np.ndarray, parent_of_child: np.ndarray) -> tuple[np.ndarray, np.ndarray, int]:
+def clip_and_resum(
+    parent: np.ndarray, leaf: np.ndarray, parent_of_child: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, int]:
     """Negative leaves set to 0 and the parents re-summed from their leaves; returns the count set to 0.
 
     Parents without children keep their own value, clipped at 0.

@@ -158,8 +158,12 @@ def lifecycle_rules(children: pd.DataFrame, established: np.ndarray, settings: S
         "new customer (" + history_text[awaiting] + "): " + no_ref[awaiting]
         + "no reference customer or initial share, so no share until " + str(n_min) + " periods of history"
     )
-    detail[phase_in] = "share from history; active from " + pd.Series(first.strftime("%Y-%m-%d"), index=children.index)[phase_in]
-    detail[phase_out] = "share from history; active until " + pd.Series(last.strftime("%Y-%m-%d"), index=children.index)[phase_out]
+    detail[phase_in] = (
+        "share from history; active from " + pd.Series(first.strftime("%Y-%m-%d"), index=children.index)[phase_in]
+    )
+    detail[phase_out] = (
+        "share from history; active until " + pd.Series(last.strftime("%Y-%m-%d"), index=children.index)[phase_out]
+    )
     late = (ref_ok | has_init | awaiting) & (first > starts[0])
     detail[late] = detail[late] + "; active from " + pd.Series(first.strftime("%Y-%m-%d"), index=children.index)[late]
     return rule, ref_pos, scale, initial, detail.to_numpy(object)
@@ -175,7 +179,9 @@ def reference_positions(shares: pd.DataFrame) -> np.ndarray:
 def new_customers(shares: pd.DataFrame) -> pd.DataFrame:
     """The new customers of a share table and how their share was set (for the planner)."""
     new = shares[shares["lifecycle_rule"].isin(NEW_CUSTOMER_RULES)]
-    return new[LEAF + ["lifecycle_rule", "share", "own_periods", "first_active_period", "lifecycle_detail"]].reset_index(drop=True)
+    return new[
+        LEAF + ["lifecycle_rule", "share", "own_periods", "first_active_period", "lifecycle_detail"]
+    ].reset_index(drop=True)
 
 
 def find_new_customers_without_share(shares: pd.DataFrame) -> pd.DataFrame:

@@ -157,7 +157,9 @@ def _stack(pieces: list[pd.DataFrame], columns: list[str]) -> pd.DataFrame:
     return pd.concat(pieces, ignore_index=True)
 
 
-def find_sum_violations(plan: pd.DataFrame, parents: pd.DataFrame, measures: Mapping[str, MeasureConfig]) -> pd.DataFrame:
+def find_sum_violations(
+    plan: pd.DataFrame, parents: pd.DataFrame, measures: Mapping[str, MeasureConfig]
+) -> pd.DataFrame:
     """Parent periods whose leaves do not add up: the rows behind the blocking check measures_sum_to_parent.
 
     even / pro_rata: the children (pins included) must sum to the parent value
@@ -176,7 +178,9 @@ def find_sum_violations(plan: pd.DataFrame, parents: pd.DataFrame, measures: Map
     value = plan["value"].to_numpy(float)
     sums["children_sum"] = np.bincount(code, weights=value, minlength=len(sums))
     sums["children"] = np.bincount(code, minlength=len(sums))
-    sums["pins_in_plan"] = np.bincount(code, weights=np.where(plan["pinned"].to_numpy(bool), value, 0.0), minlength=len(sums))
+    sums["pins_in_plan"] = np.bincount(
+        code, weights=np.where(plan["pinned"].to_numpy(bool), value, 0.0), minlength=len(sums)
+    )
     merged = parents.merge(sums, on=key, how="left")
     merged[["children_sum", "pins_in_plan"]] = merged[["children_sum", "pins_in_plan"]].astype(float).fillna(0.0)
     merged["children"] = merged["children"].fillna(0).astype(np.int64)
@@ -192,8 +196,13 @@ def find_sum_violations(plan: pd.DataFrame, parents: pd.DataFrame, measures: Map
     off = np.abs(total - expected) > TOLERANCE * np.maximum(np.abs(expected), 1.0)
     additive = merged["rule"].to_numpy(object) != "replicate"
     reason = np.select(
-        [additive & (status == STATUSES[NO_ACTIVE_CHILD]), additive & off,
-         ~additive & merged["parent_value"].notna().to_numpy() & (merged["children"].to_numpy() != merged["active_children"].to_numpy())],
+        [
+            additive & (status == STATUSES[NO_ACTIVE_CHILD]),
+            additive & off,
+            ~additive
+            & merged["parent_value"].notna().to_numpy()
+            & (merged["children"].to_numpy() != merged["active_children"].to_numpy()),
+        ],
         ["no active child carries the value", "children do not sum to the parent", "an active child has no row"],
         "",
     )
@@ -236,17 +245,24 @@ def plan_totals(plan: pd.DataFrame, parents: pd.DataFrame) -> pd.DataFrame:
     `statistic` is `mean` and the two columns hold the mean parent and leaf value.
     """
     p = parents.groupby(["measure", "rule"], sort=False).agg(
-        parent_periods=("period_start", "size"), parent_sum=("parent_value", "sum"), parent_mean=("parent_value", "mean")
+        parent_periods=("period_start", "size"),
+        parent_sum=("parent_value", "sum"),
+        parent_mean=("parent_value", "mean"),
     )
     leaf = plan.groupby(["measure", "rule"], sort=False).agg(
-        leaf_rows=("value", "size"), pinned_rows=("pinned", "sum"), leaf_sum=("value", "sum"), leaf_mean=("value", "mean")
+        leaf_rows=("value", "size"),
+        pinned_rows=("pinned", "sum"),
+        leaf_sum=("value", "sum"),
+        leaf_mean=("value", "mean"),
     )
     out = p.join(leaf, how="outer").reset_index()
     mean = (out["rule"] == "replicate").to_numpy()
     out["statistic"] = np.where(mean, "mean", "total")
     out["parent"] = np.where(mean, out["parent_mean"], out["parent_sum"])
     out["leaf"] = np.where(mean, out["leaf_mean"], out["leaf_sum"])
-    out[["parent_periods", "leaf_rows", "pinned_rows"]] = out[["parent_periods", "leaf_rows", "pinned_rows"]].fillna(0).astype(np.int64)
+    out[["parent_periods", "leaf_rows", "pinned_rows"]] = (
+        out[["parent_periods", "leaf_rows", "pinned_rows"]].fillna(0).astype(np.int64)
+    )
     return out[["measure", "rule", "parent_periods", "leaf_rows", "pinned_rows", "statistic", "parent", "leaf"]]
 
 
@@ -259,7 +275,9 @@ PARENT_COLUMNS = [
 OVERFLOW_COLUMNS = ["measure", "product", "site", "period_start", "parent_value", "pins_sum", "overflow", "pins"]
 
 
-def plan_piece(name, m, split, value, has, pinned, label, children, parent_of_child, starts, cycle_date) -> pd.DataFrame:
+def plan_piece(
+    name, m, split, value, has, pinned, label, children, parent_of_child, starts, cycle_date
+) -> pd.DataFrame:
     child, col = np.nonzero(split.rows)
     par = parent_of_child[child]
     code = split.fallback[child, col]
@@ -296,7 +314,9 @@ def parent_piece(name, m, split, value, has, pinned, active, parents, parent_of_
     return out
 
 
-def orphan_parents(rows: pd.DataFrame, name: str, m: MeasureConfig, period: str, first_ord: int, starts) -> pd.DataFrame:
+def orphan_parents(
+    rows: pd.DataFrame, name: str, m: MeasureConfig, period: str, first_ord: int, starts
+) -> pd.DataFrame:
     """Parent periods of the input whose product x site has no child active in the horizon."""
     col = period_ordinal(pd.DatetimeIndex(pd.to_datetime(rows["period_start"])), period) - first_ord
     frame = rows[PARENT].assign(period_start=starts[col], value=rows["value"].to_numpy(float))
@@ -324,7 +344,13 @@ def overflow_piece(name, split, value, has, pin, pinned, children, parents, pare
     out["overflow"] = np.abs(split.pins_sum[par, col] - v)  # what the pins take beyond the parent
     child, pcol = np.nonzero(pinned & (split.status == OVERFLOW)[parent_of_child])
     text = pd.DataFrame(
-        {"p": parent_of_child[child], "c": pcol, "t": children["customer"].to_numpy(object)[child] + "=" + pd.Series(pin[child, pcol]).map("{:g}".format).to_numpy(object)}
+        {
+            "p": parent_of_child[child],
+            "c": pcol,
+            "t": children["customer"].to_numpy(object)[child]
+            + "="
+            + pd.Series(pin[child, pcol]).map("{:g}".format).to_numpy(object),
+        }
     )
     joined = text.groupby(["p", "c"])["t"].agg(", ".join)
     out["pins"] = joined.reindex(pd.MultiIndex.from_arrays([par, col])).to_numpy(object)
@@ -352,7 +378,15 @@ def cells_of(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame, first_or
     return row, col, (col >= 0) & (col < h)
 
 
-def leaf_matrix(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame, column: str | list[str], first_ord: int, h: int, period: str):
+def leaf_matrix(
+    frame: pd.DataFrame,
+    cols: list[str],
+    table: pd.DataFrame,
+    column: str | list[str],
+    first_ord: int,
+    h: int,
+    period: str,
+):
     """(len(table), h) matrix of `column` (one per name of a list) from a long frame keyed by `cols` and
     period_start, 0 where absent; the keys are looked up once for all columns."""
     names = [column] if isinstance(column, str) else column
@@ -360,7 +394,7 @@ def leaf_matrix(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame, colum
     if len(frame):
         row, col, inside = cells_of(frame, cols, table, first_ord, h, period)
         ok = inside & (row >= 0)
-        for m, name in zip(out, names):
+        for m, name in zip(out, names, strict=False):
             m[row[ok], col[ok]] = frame[name].to_numpy(float)[ok]
     return out[0] if isinstance(column, str) else out
 

@@ -140,7 +140,9 @@ def demand_classes(grid: SeriesGrid) -> tuple[np.ndarray, np.ndarray, np.ndarray
         var = np.clip(squares / count - mean**2, 0, None)
         cv2 = np.where(count > 0, var / mean**2, np.nan)
     cls = np.where(
-        adi < ADI_CUTOFF, np.where(cv2 < CV2_CUTOFF, "smooth", "erratic"), np.where(cv2 < CV2_CUTOFF, "intermittent", "lumpy")
+        adi < ADI_CUTOFF,
+        np.where(cv2 < CV2_CUTOFF, "smooth", "erratic"),
+        np.where(cv2 < CV2_CUTOFF, "intermittent", "lumpy"),
     ).astype(object)
     cls[count == 0] = "no_demand"
     return cls, adi, cv2
@@ -180,7 +182,9 @@ def model_label(name: str, season: int) -> str:
     return f"{name}(season_length={season})" if name in SEASONAL_MODELS else name
 
 
-def assign_models(demand: np.ndarray, length: np.ndarray, choice: ModelChoice, period: str) -> tuple[np.ndarray, np.ndarray]:
+def assign_models(
+    demand: np.ndarray, length: np.ndarray, choice: ModelChoice, period: str
+) -> tuple[np.ndarray, np.ndarray]:
     """Model name and season length per series of one product class."""
     names = np.empty(len(demand), dtype=object)
     for dc in ("smooth", "erratic", "intermittent", "lumpy"):
@@ -200,7 +204,7 @@ def _ets_parameters(model) -> str:
         return "fallback: naive"
     par = np.asarray(fit["par"], dtype=float)
     names = ("alpha", "beta", "gamma", "phi")
-    values = [f"{n}={v:.4g}" for n, v in zip(names, par[:4]) if np.isfinite(v)]
+    values = [f"{n}={v:.4g}" for n, v in zip(names, par[:4], strict=False) if np.isfinite(v)]
     return " ".join([fit["method"], *values])
 
 
@@ -214,7 +218,8 @@ def run_model_groups(
     fitted: bool = False,
     n_jobs: int = 1,
 ) -> ModelRun:
-    """Forecasts (and, with `fitted`, in-sample fitted values) of every series, one statsforecast call per (model, season) group.
+    """Forecasts (and, with `fitted`, in-sample fitted values) of every series, one statsforecast call per
+    (model, season) group.
 
     ETS groups go through `fit`/`predict` so the chosen component string and
     smoothing parameters can be read back; the other groups use the
@@ -250,9 +255,15 @@ def run_model_groups(
                 # the final smoothed size and interval behind the forecast, which the library does not return
                 order = np.sort(ids)
                 size, gap, _ = croston_states(
-                    grid.y[rows], CROSTON_ALPHA, CROSTON_ALPHA, series=np.searchsorted(order, grid.series[rows]), n_series=len(order)
+                    grid.y[rows],
+                    CROSTON_ALPHA,
+                    CROSTON_ALPHA,
+                    series=np.searchsorted(order, grid.series[rows]),
+                    n_series=len(order),
                 )
-                parameters[order] = [f"alpha={CROSTON_ALPHA:g} size={a:.4g} interval={b:.4g}" for a, b in zip(size, gap)]
+                parameters[order] = [
+                    f"alpha={CROSTON_ALPHA:g} size={a:.4g} interval={b:.4g}" for a, b in zip(size, gap, strict=False)
+                ]
             elif name == "tsb":
                 t = tsb or TSBConfig()
                 parameters[ids] = f"alpha_d={t.alpha_d:g} alpha_p={t.alpha_p:g}"
@@ -355,16 +366,42 @@ def base_forecasts(
         leaf_res = residual_matrix(c_grid, lfit, first, end)
     models = pd.concat(
         [
-            pd.DataFrame({"grain": "parent", "series": np.flatnonzero(pran), "demand_class": pdemand[pran], "adi": padi[pran],
-                          "cv2": pcv2[pran], "model": plabel[pran], "parameters": pparams[pran]}),
-            pd.DataFrame({"grain": "leaf", "series": np.flatnonzero(lran), "demand_class": ldemand[lran], "adi": ladi[lran],
-                          "cv2": lcv2[lran], "model": llabel[lran], "parameters": lparams[lran]}),
+            pd.DataFrame(
+                {
+                    "grain": "parent",
+                    "series": np.flatnonzero(pran),
+                    "demand_class": pdemand[pran],
+                    "adi": padi[pran],
+                    "cv2": pcv2[pran],
+                    "model": plabel[pran],
+                    "parameters": pparams[pran],
+                }
+            ),
+            pd.DataFrame(
+                {
+                    "grain": "leaf",
+                    "series": np.flatnonzero(lran),
+                    "demand_class": ldemand[lran],
+                    "adi": ladi[lran],
+                    "cv2": lcv2[lran],
+                    "model": llabel[lran],
+                    "parameters": lparams[lran],
+                }
+            ),
         ],
         ignore_index=True,
     )
     return BaseForecasts(
-        parent_fc=np.clip(pfc, 0, None), leaf_fc=np.clip(lfc, 0, None), parent_label=plabel, parent_demand=pdemand,
-        negatives=negatives, parent_res=parent_res, leaf_res=leaf_res, models=models, parent_fitted=pfit, leaf_fitted=lfit,
+        parent_fc=np.clip(pfc, 0, None),
+        leaf_fc=np.clip(lfc, 0, None),
+        parent_label=plabel,
+        parent_demand=pdemand,
+        negatives=negatives,
+        parent_res=parent_res,
+        leaf_res=leaf_res,
+        models=models,
+        parent_fitted=pfit,
+        leaf_fitted=lfit,
     )
 
 
@@ -372,4 +409,6 @@ def _subgrid(grid: SeriesGrid, members: np.ndarray) -> SeriesGrid:
     """The grid restricted to `members` (a mask over series), renumbered 0..k-1."""
     new_id = np.cumsum(members) - 1
     rows = members[grid.series]
-    return SeriesGrid(series=new_id[grid.series[rows]], ordinal=grid.ordinal[rows], y=grid.y[rows], n_series=int(members.sum()))
+    return SeriesGrid(
+        series=new_id[grid.series[rows]], ordinal=grid.ordinal[rows], y=grid.y[rows], n_series=int(members.sum())
+    )

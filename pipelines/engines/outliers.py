@@ -51,7 +51,7 @@ def _rolling(matrix: np.ndarray, window: int, stats, chunk_cells: int = CHUNK_CE
         result = stats(win)
         if out is None:
             out = [np.full((n, t), np.nan) for _ in result]
-        for o, r in zip(out, result):
+        for o, r in zip(out, result, strict=False):
             o[lo : lo + step] = r
     return out
 
@@ -89,7 +89,9 @@ def _rolling_nanmedian(windows: np.ndarray) -> np.ndarray:
     return med
 
 
-def hampel(matrix: np.ndarray, window: int, k: float = 3.0, chunk_cells: int = CHUNK_CELLS) -> tuple[np.ndarray, np.ndarray]:
+def hampel(
+    matrix: np.ndarray, window: int, k: float = 3.0, chunk_cells: int = CHUNK_CELLS
+) -> tuple[np.ndarray, np.ndarray]:
     """Rolling centred median and MAD of each row of `matrix` (NaN = no value).
 
     matrix: (n_series, n_periods). Returns (median, mad), both that shape; the
@@ -158,7 +160,12 @@ def tukey_fences(q1: np.ndarray, q3: np.ndarray, fence: float) -> tuple[np.ndarr
 
 
 def tukey_limits(
-    values: np.ndarray, q1: np.ndarray, med: np.ndarray, q3: np.ndarray, rule: OutlierConfig, seasonal: np.ndarray | float = 0.0
+    values: np.ndarray,
+    q1: np.ndarray,
+    med: np.ndarray,
+    q3: np.ndarray,
+    rule: OutlierConfig,
+    seasonal: np.ndarray | float = 0.0,
 ) -> tuple[np.ndarray, np.ndarray]:
     """(flagged, replacement) for each value under Tukey's fences; scales as in `hampel_limits`."""
     lower, upper = tukey_fences(q1, q3, rule.fence)
@@ -209,7 +216,9 @@ def seasonal_component(
     adjusted = (count > 0).all(axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
         index = np.nansum(padded, axis=1) / count
-    index = np.where(adjusted[:, None], index - np.nanmean(np.where(adjusted[:, None], index, 0.0), axis=1, keepdims=True), 0.0)
+    index = np.where(
+        adjusted[:, None], index - np.nanmean(np.where(adjusted[:, None], index, 0.0), axis=1, keepdims=True), 0.0
+    )
     seasonal = index[:, np.arange(t) % period]
     return seasonal, adjusted, trend
 

@@ -140,7 +140,9 @@ def children_forecasts(
     no_parents = SeriesGrid(series=np.zeros(0, np.int64), ordinal=np.zeros(0, np.int64), y=np.zeros(0), n_series=0)
     classes = children["product_class"].to_numpy(object)
     strategies = {name: "bottom_up" for name in pd.unique(classes)}
-    return base_forecasts(no_parents, grid, np.zeros(0, dtype=object), classes, strategies, settings.models, horizon).leaf_fc
+    return base_forecasts(
+        no_parents, grid, np.zeros(0, dtype=object), classes, strategies, settings.models, horizon
+    ).leaf_fc
 
 
 def period_basis(
@@ -176,7 +178,9 @@ def period_basis(
         return history_share, label[parent_code]
     weight = np.repeat(history_share[:, None], h, axis=1)
     if history is None:
-        raise ValueError(f"the shares of methods {list(PER_PERIOD_METHODS)} differ per period and need the lifecycle history")
+        raise ValueError(
+            f"the shares of methods {list(PER_PERIOD_METHODS)} differ per period and need the lifecycle history"
+        )
 
     established = ~np.isin(shares["lifecycle_rule"].to_numpy(object), NEW_CUSTOMER_RULES)
     classes = shares["product_class"].to_numpy(object)
@@ -196,7 +200,16 @@ def period_basis(
         if pc.method == "seasonal":
             rows = row_ok & members[np.clip(child_of_row, 0, None)]
             share, has = seasonal_shares(
-                ords[rows], qty[rows], pos[child_of_row[rows]], p_code, len(p_members), cycle_ord, horizon_poy, period, pc.years, pc.band
+                ords[rows],
+                qty[rows],
+                pos[child_of_row[rows]],
+                p_code,
+                len(p_members),
+                cycle_ord,
+                horizon_poy,
+                period,
+                pc.years,
+                pc.band,
             )
         else:
             f = forecasts[np.cumsum(fp)[members] - 1]
@@ -209,7 +222,9 @@ def period_basis(
         label[parent_code[in_class]] = "pooled_fallback"
         member_of_parent = lookup(parents, PARENT, p_members)
         with_members = np.flatnonzero(member_of_parent >= 0)
-        label[with_members] = np.where(has[member_of_parent[with_members]], BASIS_OF_METHOD[pc.method], "pooled_fallback")
+        label[with_members] = np.where(
+            has[member_of_parent[with_members]], BASIS_OF_METHOD[pc.method], "pooled_fallback"
+        )
     return weight, label[parent_code]
 
 

@@ -56,7 +56,8 @@ def find_volume_after_phase_out(leaf: pd.DataFrame, spans: pd.DataFrame, period:
 def find_volume_outside_active_span(
     parent: pd.DataFrame, leaf: pd.DataFrame, spans: pd.DataFrame, products: pd.DataFrame, period: str
 ) -> pd.DataFrame:
-    """Forecast rows with volume where the customer span has not started or the product's span does not cover the period.
+    """Forecast rows with volume where the customer span has not started or the product's span does not cover the
+    period.
 
     Leaf rows are judged against their customer span's start and their product's
     span; parent rows against the product's span. (Volume after a customer

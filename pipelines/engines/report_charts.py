@@ -100,10 +100,11 @@ def parent_chart_figure(
     caption = (
         f"Top panel: all {len(ranked)} parents of the class summed. Small panels: the {len(shown)} largest parents by "
         f"history volume{'' if math.isnan(shown_part) else f' ({shown_part:.0%} of the class history)'}; "
-        f"each panel has its own scale. History: lifecycle history summed to product x site. Forecast: parent_forecast. "
+        "each panel has its own scale. History: lifecycle history summed to product x site. Forecast: "
+        "parent_forecast. "
         f"Shaded: the horizon."
     )
-    names = [_parent_label(p, s) for p, s in zip(hidden["product"], hidden["site"])]
+    names = [_parent_label(p, s) for p, s in zip(hidden["product"], hidden["site"], strict=False)]
     lines = _caption(caption, names, f"Not drawn ({len(hidden)}, largest first): ")
 
     height = 3.0 + 2.1 * rows + 0.3 + 0.14 * len(lines)
@@ -187,14 +188,20 @@ def history_period_shares(history: pd.DataFrame) -> pd.DataFrame:
     share = leaf["quantity"] / parent.where(parent > 0)
     if "shortage" in history.columns:
         short = history[history["shortage"].astype(bool)][PARENT + ["period_start"]].drop_duplicates()
-        flagged = leaf[PARENT + ["period_start"]].merge(short, how="left", on=PARENT + ["period_start"], indicator=True)["_merge"]
+        flagged = leaf[PARENT + ["period_start"]].merge(
+            short, how="left", on=PARENT + ["period_start"], indicator=True
+        )["_merge"]
         share = share.where(~(flagged == "both").to_numpy())
     return leaf[LEAF + ["period_start"]].assign(share=share.to_numpy())
 
 
-def _stack_for_parent(hist_shares: pd.DataFrame, target: pd.DataFrame, top_children: int) -> tuple[pd.DataFrame, list[str], int]:
+def _stack_for_parent(
+    hist_shares: pd.DataFrame, target: pd.DataFrame, top_children: int
+) -> tuple[pd.DataFrame, list[str], int]:
     """(periods x bands) shares of one parent, bands = the largest customers then `other`; and the count in other."""
-    both = pd.concat([hist_shares[["customer", "period_start", "share"]], target[["customer", "period_start", "share"]]])
+    both = pd.concat(
+        [hist_shares[["customer", "period_start", "share"]], target[["customer", "period_start", "share"]]]
+    )
     wide = both.pivot(index="period_start", columns="customer", values="share")
     # a period where the parent has no share at all (blank history period) stays blank in every band
     blank = wide.isna().all(axis=1)
@@ -239,7 +246,13 @@ def share_chart_figure(
     window_start = {}
     if shares is not None and len(shares):
         first = shares.drop_duplicates(PARENT)
-        window_start = {(p, s): pd.Timestamp(w) for p, s, w, u in zip(first["product"], first["site"], first["window_start"], first["window_used"]) if u > 0}
+        window_start = {
+            (p, s): pd.Timestamp(w)
+            for p, s, w, u in zip(
+                first["product"], first["site"], first["window_start"], first["window_used"], strict=False
+            )
+            if u > 0
+        }
 
     caption = (
         f"Each panel: one parent's customers, each band a customer's share of the parent in each period; before the "
@@ -250,7 +263,7 @@ def share_chart_figure(
     )
     if shares is not None:
         caption += " Dotted line: start of the window the shares were computed over."
-    names = [_parent_label(p, s) for p, s in zip(hidden["product"], hidden["site"])]
+    names = [_parent_label(p, s) for p, s in zip(hidden["product"], hidden["site"], strict=False)]
     lines = _caption(caption, names, f"Not drawn ({len(hidden)}, largest first): ")
 
     rows = len(shown)
@@ -280,10 +293,19 @@ def share_chart_figure(
             if at_cycle is not None:
                 label += f"  {at_cycle[column]:.1%}"
             color = OTHER_COLOR if column == OTHER else CHILD_COLORS[j % len(CHILD_COLORS)]
-            ax.add_collection(_bars(left[drawn], width[drawn], bottom[drawn], values[drawn], color=color, label=label), autolim=True)
+            ax.add_collection(
+                _bars(left[drawn], width[drawn], bottom[drawn], values[drawn], color=color, label=label), autolim=True
+            )
             bottom = bottom + values
         if key in window_start:
-            ax.axvline(window_start[key], color=CYCLE_COLOR, ls=":", lw=1.0, zorder=3, label="share window start" if i == 0 else None)
+            ax.axvline(
+                window_start[key],
+                color=CYCLE_COLOR,
+                ls=":",
+                lw=1.0,
+                zorder=3,
+                label="share window start" if i == 0 else None,
+            )
         ax.autoscale_view()
         ax.set_ylim(0, 1)
         ax.yaxis.set_major_formatter(PercentFormatter(1.0, decimals=0))
@@ -295,8 +317,16 @@ def share_chart_figure(
         bands_first = [k for k, l in enumerate(labels) if not l.startswith(("cycle date", "share window"))]
         lines_first = [k for k in range(len(labels)) if k not in bands_first]
         order = bands_first[::-1] + lines_first
-        ax.legend([handles[k] for k in order], [labels[k] for k in order], loc="center left", bbox_to_anchor=(1.01, 0.5),
-                  fontsize=8, frameon=False, title="share at cycle date" if at_cycle is not None else None, title_fontsize=8)
+        ax.legend(
+            [handles[k] for k in order],
+            [labels[k] for k in order],
+            loc="center left",
+            bbox_to_anchor=(1.01, 0.5),
+            fontsize=8,
+            frameon=False,
+            title="share at cycle date" if at_cycle is not None else None,
+            title_fontsize=8,
+        )
     _caption_axes(fig, grid[rows, 0], lines)
     return fig
 
@@ -333,7 +363,9 @@ def share_chart(
 # ----------------------------------------------------------------- 3. history corrections
 def corrections_chart(by_class_and_rule: pd.DataFrame, classes: list[str], shortage_periods: int) -> bytes:
     """PNG of the corrections per product class and rule (`product_class, rule, rows`), as stacked bars."""
-    table = by_class_and_rule.pivot_table(index="product_class", columns="rule", values="rows", aggfunc="sum", fill_value=0)
+    table = by_class_and_rule.pivot_table(
+        index="product_class", columns="rule", values="rows", aggfunc="sum", fill_value=0
+    )
     table = table.reindex(sorted(set(classes) | set(table.index)), fill_value=0)
     fig = Figure(figsize=(7, 1.2 + 0.4 * max(len(table), 1)), dpi=DPI)
     ax = fig.add_subplot()

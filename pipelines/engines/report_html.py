@@ -26,7 +26,9 @@ MOVER_COLUMNS = ["product_class", "product", "site", "customer", "share_previous
 
 
 # ----------------------------------------------------------------- 3. the HTML page
-def class_summary(share_tables: pd.DataFrame, parent_forecast: pd.DataFrame | None = None, strategy_choice: pd.DataFrame | None = None) -> pd.DataFrame:
+def class_summary(
+    share_tables: pd.DataFrame, parent_forecast: pd.DataFrame | None = None, strategy_choice: pd.DataFrame | None = None
+) -> pd.DataFrame:
     """One row per product class: parents, children, method, windows, fallbacks, lifecycle rules and strategy.
 
     Strategy from `strategy_choice` (`product_class, strategy, leaf_wmape,
@@ -71,19 +73,24 @@ def class_summary(share_tables: pd.DataFrame, parent_forecast: pd.DataFrame | No
 
 
 _CSS = """
-body { font-family: system-ui, -apple-system, "Segoe UI", Roboto, Arial, sans-serif; margin: 1.5rem auto; max-width: 1200px;
+body { font-family: system-ui, -apple-system, "Segoe UI", Roboto, Arial, sans-serif; margin: 1.5rem auto;
+       max-width: 1200px;
        color: #222; line-height: 1.4; padding: 0 1rem; }
-h1 { font-size: 1.5rem; margin-bottom: .2rem; } h2 { font-size: 1.2rem; margin-top: 2rem; border-bottom: 1px solid #ccc; }
+h1 { font-size: 1.5rem; margin-bottom: .2rem; }
+h2 { font-size: 1.2rem; margin-top: 2rem; border-bottom: 1px solid #ccc; }
 h3 { font-size: 1.05rem; } .meta { color: #555; margin-top: 0; }
 table { border-collapse: collapse; margin: .5rem 0 1rem; font-size: .9rem; }
 th, td { border: 1px solid #d0d0d0; padding: .25rem .5rem; text-align: left; vertical-align: top; }
 th { background: #f3f3f3; } td.num { text-align: right; font-variant-numeric: tabular-nums; }
 td.desc { color: #444; font-size: .85rem; max-width: 40rem; }
 tr.failed-error td { background: #fde2e1; } tr.failed-warn td { background: #fff4d6; }
-.status { font-weight: bold; white-space: nowrap; } .banner { padding: .6rem 1rem; border-radius: 4px; font-weight: bold; }
-.banner.error { background: #f8c9c6; border: 1px solid #c62828; } .banner.warn { background: #ffe9a8; border: 1px solid #b28704; }
+.status { font-weight: bold; white-space: nowrap; }
+.banner { padding: .6rem 1rem; border-radius: 4px; font-weight: bold; }
+.banner.error { background: #f8c9c6; border: 1px solid #c62828; }
+.banner.warn { background: #ffe9a8; border: 1px solid #b28704; }
 .banner.ok { background: #d6efd6; border: 1px solid #2e7d32; }
-figure { margin: 1rem 0; } figure img { max-width: 100%; border: 1px solid #ddd; } figcaption { color: #555; font-size: .85rem; }
+figure { margin: 1rem 0; } figure img { max-width: 100%; border: 1px solid #ddd; }
+figcaption { color: #555; font-size: .85rem; }
 .empty { color: #666; font-style: italic; }
 """
 
@@ -97,7 +104,12 @@ def _e(value) -> str:
     return html.escape(str(value))
 
 
-def _html_table(headers: Sequence[str], rows: Sequence[Sequence[str]], row_classes: Sequence[str] | None = None, numeric: Sequence[int] = ()) -> str:
+def _html_table(
+    headers: Sequence[str],
+    rows: Sequence[Sequence[str]],
+    row_classes: Sequence[str] | None = None,
+    numeric: Sequence[int] = (),
+) -> str:
     """A table of already escaped cells (headers are escaped here)."""
     head = "".join(f"<th>{html.escape(h)}</th>" for h in headers)
     body = []
@@ -113,11 +125,15 @@ def _frame_table(frame: pd.DataFrame, numeric_format: Mapping[str, str] | None =
     rows = []
     for record in frame.itertuples(index=False):
         cells = []
-        for column, value in zip(frame.columns, record):
+        for column, value in zip(frame.columns, record, strict=False):
             fmt = numeric_format.get(column)
             cells.append(_e(format(value, fmt) if fmt and pd.notna(value) else value))
         rows.append(cells)
-    numeric = [i for i, c in enumerate(frame.columns) if pd.api.types.is_numeric_dtype(frame[c]) and not pd.api.types.is_bool_dtype(frame[c])]
+    numeric = [
+        i
+        for i, c in enumerate(frame.columns)
+        if pd.api.types.is_numeric_dtype(frame[c]) and not pd.api.types.is_bool_dtype(frame[c])
+    ]
     return _html_table([str(c) for c in frame.columns], rows, numeric=numeric)
 
 
@@ -142,7 +158,10 @@ def _checks_section(checks: Sequence[Check]) -> str:
         banner += f" and {failed_other} warning(s)" if failed_other else ""
         banner += ": everything downstream of the failed asset is not current. See the first rows below.</p>"
     elif failed_other:
-        banner = f'<p class="banner warn">{failed_other} warning (WARN) check(s) failed; the cycle went on. See the first rows below.</p>'
+        banner = (
+            f'<p class="banner warn">{failed_other} warning (WARN) check(s) failed; the cycle went on. See '
+            'the first rows below.</p>'
+        )
     elif ordered:
         banner = f'<p class="banner ok">All {len(ordered)} checks passed.</p>'
     else:
@@ -152,7 +171,15 @@ def _checks_section(checks: Sequence[Check]) -> str:
         sev = str(severity).upper()
         status = "passed" if passed else "FAILED"
         classes.append("" if passed else ("failed-error" if sev == "ERROR" else "failed-warn"))
-        rows.append([f'<span class="status">{status}</span>', _e(sev), _e(asset), _e(name), f'<span class="desc">{_e(description)}</span>'])
+        rows.append(
+            [
+                f'<span class="status">{status}</span>',
+                _e(sev),
+                _e(asset),
+                _e(name),
+                f'<span class="desc">{_e(description)}</span>',
+            ]
+        )
     table = _html_table(["status", "severity", "asset", "check", "what it proves"], rows, classes) if rows else ""
     counts = f"<p>{len(ordered) - failed_error - failed_other} passed, {failed_error + failed_other} failed.</p>"
     return f'<section id="checks"><h2>Checks</h2>{banner}{counts}{table}</section>'
@@ -172,8 +199,16 @@ def _movers_section(movers: pd.DataFrame | None, top_movers: int) -> str:
          _e(f"{100 * r.share_current:.2f} %"), _e(f"{r.change_pp:+.2f}")]
         for r in frame.itertuples(index=False)
     ]
-    table = _html_table(["class", "product", "site", "customer", "share previous", "share current", "change (points)"], rows, numeric=[4, 5, 6])
-    return head + f"<p>The {len(frame)} largest changes of base share against the previous cycle, of {len(movers)}.</p>{table}</section>"
+    table = _html_table(
+        ["class", "product", "site", "customer", "share previous", "share current", "change (points)"],
+        rows,
+        numeric=[4, 5, 6],
+    )
+    return (
+        head
+        + f"<p>The {len(frame)} largest changes of base share against the previous cycle, of "
+          f"{len(movers)}.</p>{table}</section>"
+    )
 
 
 def _rejected_section(rejected: pd.DataFrame | None, sample_rows: int) -> str:
@@ -201,7 +236,9 @@ def _charts_section(charts: Mapping[str, Sequence[str]] | None) -> str:
         parts.append(f"<h3>Product class {_e(name)}</h3>")
         for file_name in charts[name]:
             src = html.escape(urllib.parse.quote(str(file_name)), quote=True)
-            parts.append(f'<figure><img src="{src}" alt="{_e(file_name)}"><figcaption>{_e(file_name)}</figcaption></figure>')
+            parts.append(
+                f'<figure><img src="{src}" alt="{_e(file_name)}"><figcaption>{_e(file_name)}</figcaption></figure>'
+            )
     return "".join(parts) + "</section>"
 
 
@@ -251,7 +288,8 @@ def cycle_report_html(
     body = [
         f"<h1>{_e(title)}</h1>",
         f'<p class="meta">{_e(meta)}</p>',
-        '<nav><a href="#checks">Checks</a> | <a href="#classes">Product classes</a> | <a href="#movers">Share movers</a> | '
+        '<nav><a href="#checks">Checks</a> | <a href="#classes">Product classes</a> | <a href="#movers">Share '
+        'movers</a> | '
         '<a href="#rejected">Rejected rows</a> | <a href="#charts">Charts</a></nav>',
         _checks_section(checks),
         f'<section id="classes"><h2>Product classes</h2>{classes}</section>',

@@ -236,7 +236,9 @@ def _history_shares(
             if pc.method == "mean_of_ratios":
                 s = mean_of_ratios(age[est_row], qty[est_row], child[est_row], parent_code, n_parents, w)
             elif pc.method == "smoothed":
-                s = smoothed_proportions(age[est_row], qty[est_row], child[est_row], parent_code, n_parents, w, pc.smoothing)
+                s = smoothed_proportions(
+                    age[est_row], qty[est_row], child[est_row], parent_code, n_parents, w, pc.smoothing
+                )
             else:  # pooled; and the pooled summary (and per-period fallback) of the per-period methods
                 s = np.divide(cv, pv, out=np.zeros(n), where=pv > 0) * established
             out["history_share"][take] = s[take]

@@ -168,9 +168,14 @@ def run_backtest(
         scale = {"leaf": _scales(c_grid, child_class, settings), "parent": _scales(p_grid, parent_class, settings)}
         fc = {}
         for s in strategies:
-            p, l, _, _ = coherent_forecasts(s, base.parent_fc, base.leaf_fc, parent_of_child, basis, base.parent_res, base.leaf_res)
+            p, l, _, _ = coherent_forecasts(
+                s, base.parent_fc, base.leaf_fc, parent_of_child, basis, base.parent_res, base.leaf_res
+            )
             fc[s] = {"parent": p, "leaf": l}
-        fc[BENCHMARK] = {"parent": _seasonal_naive(p_grid, h, period, log), "leaf": _seasonal_naive(c_grid, h, period, log)}
+        fc[BENCHMARK] = {
+            "parent": _seasonal_naive(p_grid, h, period, log),
+            "leaf": _seasonal_naive(c_grid, h, period, log),
+        }
         for s in names:
             for grain, actual, cls in (("leaf", leaf_actual, c_cls), ("parent", parent_actual, p_cls)):
                 e = fc[s][grain] - actual
@@ -178,10 +183,14 @@ def run_backtest(
                 good = np.isfinite(q) & (q > 0)
                 scaled = np.divide(np.abs(e), q, out=np.zeros_like(e), where=good)
                 per_series = np.stack(
-                    [np.abs(e).sum(1), e.sum(1), actual.sum(1), scaled.sum(1), np.broadcast_to(good, e.shape).sum(1)], axis=1
+                    [np.abs(e).sum(1), e.sum(1), actual.sum(1), scaled.sum(1), np.broadcast_to(good, e.shape).sum(1)],
+                    axis=1,
                 )
                 np.add.at(sums[s][grain], cls, per_series)
-    return BacktestResult(accuracy=_table(sums, classes, c_cls, p_cls, len(origins), h), origins=[ordinal_to_start(np.array([o]), period)[0] for o in origins])
+    return BacktestResult(
+        accuracy=_table(sums, classes, c_cls, p_cls, len(origins), h),
+        origins=[ordinal_to_start(np.array([o]), period)[0] for o in origins],
+    )
 
 
 def _table(sums, classes, c_cls, p_cls, n_origins: int, h: int) -> pd.DataFrame:
@@ -221,7 +230,9 @@ def run(
     children = share_tables[["product", "site", "customer", "product_class"]]
     result = run_backtest(lifecycle_history, children, settings, cycle_date, log=log)
     table = result.accuracy
-    wide = table.pivot_table(index=["product_class", "grain", "strategy"], columns="metric", values="value").reset_index()
+    wide = table.pivot_table(
+        index=["product_class", "grain", "strategy"], columns="metric", values="value"
+    ).reset_index()
     figures = {
         "origins": ", ".join(str(o.date()) for o in result.origins),
         "accuracy_by_class": wide.sort_values(["product_class", "grain", "wmape"]) if len(wide) else wide,

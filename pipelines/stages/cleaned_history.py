@@ -160,7 +160,11 @@ def clean_history(
     values = raw_net.copy()
     negative = observed & (net < 0)
     if negative.any():
-        corrections.append(correction_rows(negative, raw_net, np.zeros_like(raw_net), "negative_net_to_zero", {"rule": "net_then_zero"}))
+        corrections.append(
+            correction_rows(
+                negative, raw_net, np.zeros_like(raw_net), "negative_net_to_zero", {"rule": "net_then_zero"}
+            )
+        )
         values[negative] = 0.0
     corrected = negative.copy()
 
@@ -185,7 +189,12 @@ def clean_history(
         seasonal_figures = {"seasonal": np.where(adjusted[:, None], s, np.nan)}
         params = rule_parameters(rule)
         summary.append(
-            {"product_class": name, **{"rule": rule.rule, **params}, "series": len(rows), "seasonal_series": int(adjusted.sum())}
+            {
+                "product_class": name,
+                **{"rule": rule.rule, **params},
+                "series": len(rows),
+                "seasonal_series": int(adjusted.sum()),
+            }
         )
 
         if rule.rule != "none" and t > 0:
@@ -193,7 +202,9 @@ def clean_history(
             if j.flagged.any():
                 after = np.where(j.flagged, j.replacement, x)
                 corrections.append(
-                    correction_rows(j.flagged, x, after, f"{rule.rule}_cap", params, rows, j.figures | seasonal_figures, adjusted)
+                    correction_rows(
+                        j.flagged, x, after, f"{rule.rule}_cap", params, rows, j.figures | seasonal_figures, adjusted
+                    )
                 )
                 corrected[rows] |= j.flagged
                 x = after
@@ -208,7 +219,9 @@ def clean_history(
                 after = np.where(filled, np.clip(base + s, 0.0, None), x)
                 fill_params = {"rule": "fill_baseline", "window": rule.window, "seasonal_adjust": rule.seasonal_adjust}
                 figures = {"median": base, "periods": count} | seasonal_figures
-                corrections.append(correction_rows(filled, x, after, "shortage_fill", fill_params, rows, figures, adjusted))
+                corrections.append(
+                    correction_rows(filled, x, after, "shortage_fill", fill_params, rows, figures, adjusted)
+                )
                 corrected[rows] |= filled
                 x = after
         values[rows] = x
@@ -225,7 +238,9 @@ def clean_history(
     cleaned["shortage"] = short[li, pj]
 
     empty = np.zeros((0, 0))
-    corr = pd.concat(corrections or [correction_rows(empty.astype(bool), empty, empty, "hampel_cap", {})], ignore_index=True)
+    corr = pd.concat(
+        corrections or [correction_rows(empty.astype(bool), empty, empty, "hampel_cap", {})], ignore_index=True
+    )
     corr = pd.concat([leaves.iloc[corr.pop("leaf").to_numpy()].reset_index(drop=True), corr], axis=1)
     corr.insert(3, "period_start", ordinal_to_start(corr.pop("col").to_numpy() + first_ord, period))
     # stable sort on the key only: the rules of one period stay in the order they ran
@@ -255,7 +270,12 @@ def find_unexplained_changes(cleaned: pd.DataFrame, corrections: pd.DataFrame, t
 def line_accounting(raw_lines: int, cleaned: pd.DataFrame, rejected: pd.DataFrame) -> dict[str, int]:
     """Raw lines against used (summed into cleaned periods) plus rejected lines."""
     used = int(cleaned["lines"].sum())
-    return {"raw_lines": raw_lines, "used_lines": used, "rejected_lines": len(rejected), "unaccounted": raw_lines - used - len(rejected)}
+    return {
+        "raw_lines": raw_lines,
+        "used_lines": used,
+        "rejected_lines": len(rejected),
+        "unaccounted": raw_lines - used - len(rejected),
+    }
 
 
 def cycle_calendar(cleaned: pd.DataFrame, config: PlanningConfig, cycle_date: pd.Timestamp) -> pd.DataFrame:
@@ -265,7 +285,10 @@ def cycle_calendar(cleaned: pd.DataFrame, config: PlanningConfig, cycle_date: pd
     horizon = horizon_starts(cycle_date, config.calendar.horizon, period)
     start = cleaned["period_start"].min() if len(cleaned) else pd.NaT
     periods = (
-        int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0] - period_ordinal(pd.DatetimeIndex([start]), period)[0])
+        int(
+            period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0]
+            - period_ordinal(pd.DatetimeIndex([start]), period)[0]
+        )
         if len(cleaned)
         else 0
     )
@@ -362,10 +385,15 @@ def run(
             "history_corrections": corrections,
             "cycle_calendar": cycle_calendar(cleaned, settings, result.cycle_date),
         },
-        metadata={"cleaned_history": cleaned_figures, "rejected_rows": {"by_reason": by_reason},
-                  "history_corrections": {"by_rule": by_rule}},
+        metadata={
+            "cleaned_history": cleaned_figures,
+            "rejected_rows": {"by_reason": by_reason},
+            "history_corrections": {"by_rule": by_rule},
+        },
         checks={
-            EVERY_RAW_ROW_ACCOUNTED: CheckRows(pd.DataFrame([counts]) if counts["unaccounted"] else pd.DataFrame(), counts),
+            EVERY_RAW_ROW_ACCOUNTED: CheckRows(
+                pd.DataFrame([counts]) if counts["unaccounted"] else pd.DataFrame(), counts
+            ),
             CORRECTIONS_EXPLAIN_CHANGES: CheckRows(find_unexplained_changes(cleaned, corrections)),
             REJECTED_ROWS_WITHIN_LIMIT: CheckRows(
                 bad if fraction > limit else bad.iloc[0:0],

@@ -178,12 +178,17 @@ def run(
     cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
     result = apply_lifecycle(cleaned_history, products, customer_spans, settings, cycle_date)
     history, audit = result.history, result.audit
-    by_rule = audit.groupby("rule").agg(leaves=("customer", "size"), periods=("periods", "sum"), quantity=("quantity", "sum"))
+    by_rule = audit.groupby("rule").agg(
+        leaves=("customer", "size"), periods=("periods", "sum"), quantity=("quantity", "sum")
+    )
     by_origin = history.groupby("origin").agg(rows=("quantity", "size"), quantity=("quantity", "sum"))
     return StageResult(
         outputs={"lifecycle_history": history, "lifecycle_audit": audit},
         metadata={
-            "lifecycle_history": {"by_origin": by_origin.reset_index(), "shortage_rows": int(history["shortage"].sum())},
+            "lifecycle_history": {
+                "by_origin": by_origin.reset_index(),
+                "shortage_rows": int(history["shortage"].sum()),
+            },
             "lifecycle_audit": {"by_rule": by_rule.reset_index()},
         },
     )

@@ -1,4 +1,5 @@
-"""Stages `products` (+ `product_class_map`), `customer_spans`, `adjustments`, `pins`, `shortages`: master data and planner input.
+"""Stages `products` (+ `product_class_map`), `customer_spans`, `adjustments`, `pins`, `shortages`: master data
+and planner input.
 
 Loaded as text with blanks as missing; the stage's pandera model parses the
 dates and numbers, so a bad cell shows up as a failing row of the schema check
@@ -106,7 +107,10 @@ def class_input_run(name: str, loader: Callable, figures: Callable[[pd.DataFrame
 run_customer_spans = class_input_run(
     "customer_spans",
     load_customer_spans,
-    lambda f: {"with_end": int(pd.notna(f["active_to"]).sum()), "with_reference": int(pd.notna(f["reference_customer"]).sum())},
+    lambda f: {
+        "with_end": int(pd.notna(f["active_to"]).sum()),
+        "with_reference": int(pd.notna(f["reference_customer"]).sum()),
+    },
 )
 run_adjustments = class_input_run("adjustments", load_adjustments)
 run_pins = class_input_run(

@@ -117,7 +117,17 @@ from pipelines.keys import LEAF, PARENT, factorize, lookup
 from pipelines.results import CheckRows, Log, StageResult, quiet
 from pipelines.vocabulary import Basis
 
-PLAN_COLUMNS = LEAF + ["period_start", "cycle_date", "measure", "value", "parent_value", "rule", "basis", "fallback", "pinned"]
+PLAN_COLUMNS = LEAF + [
+    "period_start",
+    "cycle_date",
+    "measure",
+    "value",
+    "parent_value",
+    "rule",
+    "basis",
+    "fallback",
+    "pinned",
+]
 UNUSED_COLUMNS = ["input", "measure", "product", "site", "customer", "period_start", "value", "reason"]
 
 
@@ -265,7 +275,11 @@ def plan_measures(
     pin_starts = starts[np.clip(pin_col, 0, h - 1)]
 
     target_m, share_m = leaf_matrix(target, LEAF, children, ["target", "share"], first_ord, h, period)
-    mats = {"target": target_m, "share": share_m, "forecast": leaf_matrix(leaf_forecast, LEAF, children, "forecast", first_ord, h, period)}
+    mats = {
+        "target": target_m,
+        "share": share_m,
+        "forecast": leaf_matrix(leaf_forecast, LEAF, children, "forecast", first_ord, h, period),
+    }
     for basis_name, frame in (share_bases or {}).items():
         mats[f"share_table:{basis_name}"] = leaf_matrix(frame, LEAF, children, "share", first_ord, h, period)
     # the strategy of each parent's class (absent = top-down, the forecast stage's default grain)
@@ -281,20 +295,29 @@ def plan_measures(
         m = config.measures[name]
         mean = m.rule == "replicate"
         if m.parent_values == "parent_forecast":
-            value, has = leaf_matrix(parent_forecast.assign(_has=1.0), PARENT, parents, ["forecast", "_has"], first_ord, h, period)
+            value, has = leaf_matrix(
+                parent_forecast.assign(_has=1.0), PARENT, parents, ["forecast", "_has"], first_ord, h, period
+            )
             has = has > 0
         else:
             mine = (adjustments["measure"] == name).to_numpy() & adj_inside
             ok = mine & (adj_row >= 0)
-            value, has = combine_cells(adj_row[ok], adj_col[ok], adjustments["value"].to_numpy(float)[ok], (n_parents, h), mean)
+            value, has = combine_cells(
+                adj_row[ok], adj_col[ok], adjustments["value"].to_numpy(float)[ok], (n_parents, h), mean
+            )
             orphans = adjustments.loc[mine & (adj_row < 0)]
             if len(orphans):
                 parent_pieces.append(orphan_parents(orphans, name, m, period, first_ord, starts))
         mine_pin = (pins["measure"] == name).to_numpy() & pin_ok
-        pin, pinned = combine_cells(pin_row[mine_pin], pin_col[mine_pin], pins["value"].to_numpy(float)[mine_pin], (n, h), mean)
+        pin, pinned = combine_cells(
+            pin_row[mine_pin], pin_col[mine_pin], pins["value"].to_numpy(float)[mine_pin], (n, h), mean
+        )
         if mine_pin.any():
             combined = pins.loc[mine_pin, PIN_KEY].assign(period_start=pin_starts[mine_pin]).drop_duplicates()
-            cell = lookup(combined, LEAF, children), period_ordinal(pd.DatetimeIndex(combined["period_start"]), period) - first_ord
+            cell = (
+                lookup(combined, LEAF, children),
+                period_ordinal(pd.DatetimeIndex(combined["period_start"]), period) - first_ord,
+            )
             applied_pieces.append(combined.assign(value=pin[cell]))
 
         basis, fallback_basis, label = _basis(m, name, mats, top_down, parent_of_child)
@@ -303,14 +326,24 @@ def plan_measures(
             None if m.integer is None else m.integer.pack_size, order,
         )
         mats[f"measure:{name}"] = np.where(split.rows, split.value, 0.0)
-        pieces[name] = plan_piece(name, m, split, value, has, pinned, label, children, parent_of_child, starts, cycle_date)
+        pieces[name] = plan_piece(
+            name, m, split, value, has, pinned, label, children, parent_of_child, starts, cycle_date
+        )
         parent_pieces.append(parent_piece(name, m, split, value, has, pinned, active, parents, parent_of_child, starts))
         if (split.status == OVERFLOW).any():
-            overflow_pieces.append(overflow_piece(name, split, value, has, pin, pinned, children, parents, parent_of_child, starts))
+            overflow_pieces.append(
+                overflow_piece(name, split, value, has, pin, pinned, children, parents, parent_of_child, starts)
+            )
 
     # in config order; inside a measure the rows already follow the sorted children, then the period
     plan = _stack([pieces[name] for name in config.measures], PLAN_COLUMNS).astype(
-        {"period_start": "datetime64[ns]", "cycle_date": "datetime64[ns]", "value": float, "parent_value": float, "pinned": bool}
+        {
+            "period_start": "datetime64[ns]",
+            "cycle_date": "datetime64[ns]",
+            "value": float,
+            "parent_value": float,
+            "pinned": bool,
+        }
     )
     parents_out = _stack(parent_pieces, PARENT_COLUMNS)
     overflow = _stack(overflow_pieces, OVERFLOW_COLUMNS)
@@ -370,16 +403,32 @@ def run(
         children = active_children(customer_spans, products, lifecycle_history, settings.share, cycle_date)
         bases = share_basis_tables(lifecycle_history, children, products, settings, cycle_date)
     result = plan_measures(
-        share_tables, parent_forecast, statistical_forecast, reinitialized_target, adjustments, pins, settings, cycle_date, bases
+        share_tables,
+        parent_forecast,
+        statistical_forecast,
+        reinitialized_target,
+        adjustments,
+        pins,
+        settings,
+        cycle_date,
+        bases,
     )
     plan = result.plan
     basis_fallbacks = [
-        f.drop_duplicates(["product", "site"]).groupby("fallback").size().rename("parents").reset_index().assign(share_basis=n)
+        f.drop_duplicates(["product", "site"])
+        .groupby("fallback")
+        .size()
+        .rename("parents")
+        .reset_index()
+        .assign(share_basis=n)
         for n, f in bases.items()
     ]
     figures = {
         "measures": ", ".join(settings.measures),
-        "rows_by_measure_and_rule": plan.groupby(["measure", "rule", "basis", "fallback"]).size().rename("rows").reset_index(),
+        "rows_by_measure_and_rule": plan.groupby(["measure", "rule", "basis", "fallback"])
+        .size()
+        .rename("rows")
+        .reset_index(),
         "totals_parent_vs_leaf": plan_totals(plan, result.parents),
         "pins_applied": len(result.pins_applied),
         "pins_overflowing_parents": len(result.overflow),

@@ -39,7 +39,9 @@ def latest_cycle_date(folder: Path, period: str) -> pd.Timestamp | None:
 
     latest = None
     for path in find_files(folder, "history", many=True):
-        dates = pd.to_datetime(read_text_table(path, ("period_start",))["period_start"], format="ISO8601", errors="coerce")
+        dates = pd.to_datetime(
+            read_text_table(path, ("period_start",))["period_start"], format="ISO8601", errors="coerce"
+        )
         if dates.notna().any():
             latest = dates.max() if latest is None else max(latest, dates.max())
     if latest is None:
@@ -56,7 +58,10 @@ def run(product_class_map: pd.DataFrame, settings: InputSettings, log: Log = qui
     classes = class_map(product_class_map)
     lines, files = load_raw_history(settings.folder)
     mine = class_rows(lines, classes, settings.product_class)
-    log(f"{settings.product_class}: {len(mine)} of {len(lines)} history lines from {len(files)} file(s) in {settings.folder}")
+    log(
+        f"{settings.product_class}: {len(mine)} of {len(lines)} history lines from {len(files)} file(s) in "
+        f"{settings.folder}"
+    )
     files_table = pd.DataFrame([{"file": f.path.name, "rows": f.rows, "sha256": f.sha256} for f in files])
     figures = {
         "input_folder": str(settings.folder),

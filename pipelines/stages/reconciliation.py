@@ -24,7 +24,9 @@ from pipelines.results import CheckRows, Log, StageResult, quiet
 
 def reconcile(parent: pd.DataFrame, leaf: pd.DataFrame) -> pd.DataFrame:
     """Parent forecast against the sum of its children, per parent and period."""
-    sums = leaf.groupby(PARENT + ["period_start"], sort=False, observed=True)["forecast"].agg(children_sum="sum", children="size")
+    sums = leaf.groupby(PARENT + ["period_start"], sort=False, observed=True)["forecast"].agg(
+        children_sum="sum", children="size"
+    )
     out = parent[["cycle_date"] + PARENT + ["period_start", "forecast"]].rename(columns={"forecast": "parent_forecast"})
     out = out.join(sums, on=PARENT + ["period_start"])
     out["children_sum"] = out["children_sum"].fillna(0.0)
@@ -42,10 +44,16 @@ def find_incoherent(reconciliation: pd.DataFrame, tolerance: float = RELATIVE_TO
 def find_parents_without_children(reconciliation: pd.DataFrame) -> pd.DataFrame:
     """Active parents (with a forecast row) that have no child to carry it."""
     none = reconciliation[reconciliation["children"] == 0]
-    return none.groupby(PARENT, sort=True, observed=True).agg(periods=("period_start", "size"), parent_forecast=("parent_forecast", "sum")).reset_index()
+    return (
+        none.groupby(PARENT, sort=True, observed=True)
+        .agg(periods=("period_start", "size"), parent_forecast=("parent_forecast", "sum"))
+        .reset_index()
+    )
 
 
-def run(parent_forecast: pd.DataFrame, statistical_forecast: pd.DataFrame, settings=None, log: Log = quiet) -> StageResult:
+def run(
+    parent_forecast: pd.DataFrame, statistical_forecast: pd.DataFrame, settings=None, log: Log = quiet
+) -> StageResult:
     """The reconciliation table and its two blocking checks."""
     table = reconcile(parent_forecast, statistical_forecast)
     figures = {

@@ -56,7 +56,9 @@ from pipelines.results import CheckRows, Log, StageResult, quiet
 TARGET_COLUMNS = LEAF + ["period_start", "cycle_date", "target", "share", "parent_baseline", "zero_reason", "basis"]
 
 
-def parent_baselines(shares: pd.DataFrame, history: pd.DataFrame, settings: ShareSettings, cycle_date: pd.Timestamp) -> np.ndarray:
+def parent_baselines(
+    shares: pd.DataFrame, history: pd.DataFrame, settings: ShareSettings, cycle_date: pd.Timestamp
+) -> np.ndarray:
     """Baseline of each share-table row's parent (same value on all its children)."""
     period = settings.period
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
@@ -124,7 +126,9 @@ def parents_with_mix_change(target: pd.DataFrame, shares: pd.DataFrame, toleranc
     whose share starts or stops inside the horizon), zero_periods.
     """
     if target.empty:
-        return pd.DataFrame(columns=PARENT + ["first_change", "periods_with_change", "phasing_in", "phasing_out", "zero_periods"])
+        return pd.DataFrame(
+            columns=PARENT + ["first_change", "periods_with_change", "phasing_in", "phasing_out", "zero_periods"]
+        )
     t = target.sort_values(LEAF + ["period_start"], kind="stable")
     previous = t.groupby(LEAF, sort=False)["share"].shift()
     changed = (t["share"] - previous).abs() > tolerance

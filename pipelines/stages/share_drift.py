@@ -36,7 +36,9 @@ def share_drift(current: pd.DataFrame, previous: pd.DataFrame | None, previous_c
     if previous is None or previous_cycle is None:
         return pd.DataFrame({c: pd.Series(dtype=_dtype(c)) for c in DRIFT_COLUMNS})
     cur = current[LEAF + ["product_class", "share"]].rename(columns={"share": "share_current"})
-    prev = previous[LEAF + ["product_class", "share"]].rename(columns={"share": "share_previous", "product_class": "class_previous"})
+    prev = previous[LEAF + ["product_class", "share"]].rename(
+        columns={"share": "share_previous", "product_class": "class_previous"}
+    )
     both = cur.merge(prev, on=LEAF, how="outer", indicator=True)
     both["product_class"] = both["product_class"].fillna(both["class_previous"])
     both["status"] = np.select(
@@ -46,7 +48,9 @@ def share_drift(current: pd.DataFrame, previous: pd.DataFrame | None, previous_c
     both["change_pp"] = 100.0 * (both["share_current"] - both["share_previous"])
     both["abs_change_pp"] = both["change_pp"].abs()
     both["previous_cycle"] = previous_cycle
-    out = both[DRIFT_COLUMNS].sort_values(["abs_change_pp"] + LEAF, ascending=[False] + [True] * len(LEAF), kind="stable")
+    out = both[DRIFT_COLUMNS].sort_values(
+        ["abs_change_pp"] + LEAF, ascending=[False] + [True] * len(LEAF), kind="stable"
+    )
     return out.reset_index(drop=True)
 
 

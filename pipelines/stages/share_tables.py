@@ -141,7 +141,9 @@ class ShareTableSettings:
 
     @classmethod
     def of(cls, config: PlanningConfig) -> ShareTableSettings:
-        return cls(ShareSettings.of(config), config.class_windows(), config.monitoring.max_fallback_share, config.source)
+        return cls(
+            ShareSettings.of(config), config.class_windows(), config.monitoring.max_fallback_share, config.source
+        )
 
 
 def run(

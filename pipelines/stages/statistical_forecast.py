@@ -48,12 +48,42 @@ from pipelines.results import CheckRows, Log, StageResult, quiet
 from pipelines.vocabulary import AUTO, Basis, ModelGrain, Strategy, values
 
 PARENT_COLUMNS = [
-    "cycle_date", "product_class", "product", "site", "period_start", "forecast", "model", "demand_class", "model_grain",
+    "cycle_date",
+    "product_class",
+    "product",
+    "site",
+    "period_start",
+    "forecast",
+    "model",
+    "demand_class",
+    "model_grain",
     "zero_reason",
 ]
 LEAF_COLUMNS = LEAF + ["period_start", "cycle_date", "product_class", "forecast", "parent_forecast", "basis"]
-FITTED_COLUMNS = ["cycle_date", "grain", "product_class", "product", "site", "customer", "period_start", "actual", "fitted"]
-MODEL_COLUMNS = ["cycle_date", "grain", "product_class", "product", "site", "customer", "demand_class", "adi", "cv2", "model", "parameters"]
+FITTED_COLUMNS = [
+    "cycle_date",
+    "grain",
+    "product_class",
+    "product",
+    "site",
+    "customer",
+    "period_start",
+    "actual",
+    "fitted",
+]
+MODEL_COLUMNS = [
+    "cycle_date",
+    "grain",
+    "product_class",
+    "product",
+    "site",
+    "customer",
+    "demand_class",
+    "adi",
+    "cv2",
+    "model",
+    "parameters",
+]
 
 
 @dataclass(frozen=True)
@@ -180,7 +210,9 @@ def forecast_cycle(
     basis = np.where(use_target, target_m, share_m)
 
     strategy_of_parent = parents["product_class"].map(strategies).to_numpy()
-    parent_fc, leaf_fc, source, reconciled_negatives = combine_strategies(strategy_of_parent, base, parent_of_child, basis)
+    parent_fc, leaf_fc, source, reconciled_negatives = combine_strategies(
+        strategy_of_parent, base, parent_of_child, basis
+    )
     basis = np.where(source == "basis", np.where(use_target, Basis.REINITIALIZED_TARGET, Basis.PERIOD_SHARE), source)
 
     # lifecycle: no leaf volume outside a child's active periods, none in a parent period that no
@@ -196,7 +228,9 @@ def forecast_cycle(
     np.add.at(parent_fc, parent_of_child, leaf_fc)
     parent_model = np.where(strategy_of_parent == "bottom_up", "bottom_up", base.parent_label)
     grain = np.select(
-        [strategy_of_parent == "top_down", strategy_of_parent == "bottom_up"], [ModelGrain.PARENT, ModelGrain.LEAF], ModelGrain.BOTH
+        [strategy_of_parent == "top_down", strategy_of_parent == "bottom_up"],
+        [ModelGrain.PARENT, ModelGrain.LEAF],
+        ModelGrain.BOTH,
     )
 
     parent_out = parents[PARENT].loc[parents.index.repeat(horizon)].reset_index(drop=True)
@@ -242,7 +276,9 @@ def forecast_cycle(
     )
 
 
-def _fitted_frame(grid: SeriesGrid, fitted: np.ndarray | None, keys: pd.DataFrame, grain: str, period: str) -> pd.DataFrame:
+def _fitted_frame(
+    grid: SeriesGrid, fitted: np.ndarray | None, keys: pd.DataFrame, grain: str, period: str
+) -> pd.DataFrame:
     """Long frame of the grid rows that have a fitted value: keys, period_start, actual, fitted."""
     if fitted is None:
         fitted = np.full(len(grid.y), np.nan)
@@ -305,8 +341,10 @@ def run(
     """parent_forecast, statistical_forecast, forecast_models and forecast_fitted_values, and the forecast's checks."""
     cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
     columns = ["product", "site", "customer", "product_class", "first_active_period", "last_active_period"]
-    chosen = dict(zip(strategy_choice["product_class"], strategy_choice["strategy"]))
-    result = forecast_cycle(lifecycle_history, share_tables[columns], reinitialized_target, settings, cycle_date, log, chosen)
+    chosen = dict(zip(strategy_choice["product_class"], strategy_choice["strategy"], strict=False))
+    result = forecast_cycle(
+        lifecycle_history, share_tables[columns], reinitialized_target, settings, cycle_date, log, chosen
+    )
     parent, leaf, models, fitted = result.parent, result.leaf, result.models, result.fitted
     first = parent.drop_duplicates(["product", "site"])
     used = first.groupby(["product_class", "strategy", "demand_class", "model"]).size().rename("parents").reset_index()
@@ -316,13 +354,20 @@ def run(
     )
     period = settings.period
     return StageResult(
-        outputs={"parent_forecast": parent, "statistical_forecast": leaf, "forecast_models": models,
-                 "forecast_fitted_values": fitted},
+        outputs={
+            "parent_forecast": parent,
+            "statistical_forecast": leaf,
+            "forecast_models": models,
+            "forecast_fitted_values": fitted,
+        },
         metadata={
             "parent_forecast": {
                 "strategy_by_class": strategy_choice,
                 "models_used": used,
-                "horizon_total_by_class": parent.groupby("product_class")["forecast"].sum().rename("horizon_total").reset_index(),
+                "horizon_total_by_class": parent.groupby("product_class")["forecast"]
+                .sum()
+                .rename("horizon_total")
+                .reset_index(),
                 "negatives_set_to_zero": result.negatives_clipped,
                 "periods_set_to_zero_by_reason": zeroed,
             },
@@ -331,7 +376,10 @@ def run(
                 "leaf_total": float(leaf["forecast"].sum()),
             },
             "forecast_models": {
-                "series_by_model": models.groupby(["grain", "product_class", "model"]).size().rename("series").reset_index()
+                "series_by_model": models.groupby(["grain", "product_class", "model"])
+                .size()
+                .rename("series")
+                .reset_index()
             },
             "forecast_fitted_values": {
                 "series": int(fitted.drop_duplicates(["grain", "product", "site", "customer"]).shape[0])
