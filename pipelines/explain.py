@@ -34,17 +34,19 @@ from collections.abc import Mapping
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import period_start, shift_periods
+from pipelines.calendar import period_start
 from pipelines.errors import PlanningError, UnknownKeyError
-from pipelines.vocabulary import (
-    AUTO,
-    FORECAST_BASIS_TEXT,
-    LIFECYCLE_RULE_TEXT,
-    SHARE_METHOD_TEXT,
-    STRATEGY_TEXT,
-    ZERO_REASON_TEXT,
-    Basis,
+from pipelines.explain_sections import (
+    as_share,
+    corrections_section,
+    day,
+    forecast_section,
+    leaf_rows,
+    lifecycle_section,
+    qty,
+    share_section,
 )
+from pipelines.vocabulary import FORECAST_BASIS_TEXT, LIFECYCLE_RULE_TEXT, SHARE_METHOD_TEXT, ZERO_REASON_TEXT, Basis
 
 REQUIRED_TABLES = ("share_tables", "reinitialized_target", "parent_forecast", "statistical_forecast")
 OPTIONAL_TABLES = (
@@ -62,18 +64,6 @@ METHODS = SHARE_METHOD_TEXT
 LIFECYCLE_RULES = LIFECYCLE_RULE_TEXT
 ZERO_REASONS = ZERO_REASON_TEXT
 BASES = FORECAST_BASIS_TEXT
-
-
-def _qty(x: float) -> str:
-    return f"{x:,.2f}"
-
-
-def _share(x: float) -> str:
-    return f"{x:.6f} ({100 * x:.2f} %)"
-
-
-def _day(x) -> str:
-    return f"{pd.Timestamp(x):%Y-%m-%d}"
 
 
 def _nearest(value: str, candidates, n: int = 5) -> list[str]:
@@ -120,7 +110,7 @@ def find_leaf(shares: pd.DataFrame, product: str, site: str, customer: str) -> p
             extra = f"Customer {customer} is a customer of: {_listing(pairs)}."
         raise _unknown("customer", customer, f"a customer of {product} x {site}", of_site["customer"].unique(), extra)
     if len(row) > 1:
-        cycles = ", ".join(sorted(_day(d) for d in row["cycle_date"].unique()))
+        cycles = ", ".join(sorted(day(d) for d in row["cycle_date"].unique()))
         raise PlanningError(
             f"the share table holds {len(row)} rows for {product} x {site} x {customer} (cycles {cycles}); "
             f"pass the tables of one cycle only (filter on the cycle date first)."
@@ -136,20 +126,13 @@ def _period_kind(tables: Mapping[str, pd.DataFrame], starts: pd.Series) -> str:
     return "week" if len(gaps) == 0 or gaps.min() == 7 else "month"
 
 
-def _leaf_rows(frame: pd.DataFrame, product: str, site: str, customer: str | None = None) -> pd.DataFrame:
-    mask = (frame["product"] == product) & (frame["site"] == site)
-    if customer is not None:
-        mask &= frame["customer"] == customer
-    return frame[mask]
-
-
 def _horizon(tables: Mapping[str, pd.DataFrame], product: str, site: str, customer: str) -> pd.DataFrame:
     """Per horizon period of the leaf: share, zero-share reason, parent forecast and its zero reason, leaf
     forecast, basis.
     """
-    target = _leaf_rows(tables["reinitialized_target"], product, site, customer)
-    leaf = _leaf_rows(tables["statistical_forecast"], product, site, customer)
-    parent = _leaf_rows(tables["parent_forecast"], product, site)
+    target = leaf_rows(tables["reinitialized_target"], product, site, customer)
+    leaf = leaf_rows(tables["statistical_forecast"], product, site, customer)
+    parent = leaf_rows(tables["parent_forecast"], product, site)
     for name, rows in (("reinitialized_target", target), ("statistical_forecast", leaf), ("parent_forecast", parent)):
         if rows.empty:
             raise PlanningError(
@@ -170,166 +153,6 @@ def _horizon(tables: Mapping[str, pd.DataFrame], product: str, site: str, custom
     return out.sort_values("period_start").reset_index(drop=True)
 
 
-def _share_section(row: pd.Series, kind: str) -> list[str]:
-    cycle = pd.Timestamp(row["cycle_date"])
-    used, window = int(row["window_used"]), int(row["window"])
-    lines = ["1. Share from history"]
-    if row["fallback"] == "even" or used == 0:
-        lines.append(
-            f"   No window had parent volume (the configured {window} {kind}s, nor the fallback windows): "
-            "fallback 'even', "
-            f"the established customers of the parent share evenly."
-        )
-    else:
-        last = shift_periods(cycle, -1, kind)
-        lines.append(
-            f"   Window: the {used} {kind}s before the cycle date, {_day(row['window_start'])} to {_day(last)}."
-        )
-        if row["fallback"] == "longer_window":
-            lines.append(
-                f"   Fallback 'longer_window': the configured {window}-{kind} window had no parent volume, so "
-                f"{used} {kind}s were used."
-            )
-        else:
-            lines.append(f"   The configured window ({window} {kind}s) had parent volume: no fallback.")
-        lines.append(f"   Method: {METHODS.get(str(row['method']), str(row['method']))}.")
-        child, parent = float(row["child_volume"]), float(row["parent_volume"])
-        text = f"   In the window the customer shipped {_qty(child)} of the parent's {_qty(parent)}"
-        if row["method"] == "mean_of_ratios" and parent > 0:
-            text += f" (pooled would give {child / parent:.6f}; this method averages the periods' proportions instead)"
-        lines.append(text + ".")
-    history_share = float(row["history_share"])
-    if row["lifecycle_rule"] in ("reference", "initial_share", "awaiting_history"):
-        lines.append(
-            f"   As a new customer ({int(row['own_periods'])} own periods of history) it is left out of the history "
-            f"shares: history share {_share(history_share)}."
-        )
-    else:
-        lines.append(f"   History share over the parent's established customers: {_share(history_share)}.")
-    return lines
-
-
-def _lifecycle_section(row: pd.Series, siblings: pd.DataFrame, audit: pd.DataFrame | None) -> list[str]:
-    rule = str(row["lifecycle_rule"])
-    lines = ["2. Lifecycle", f"   Rule: {LIFECYCLE_RULES.get(rule, rule)}."]
-    if rule == "reference":
-        ref = siblings[siblings["customer"] == row["reference_customer"]]
-        scale = float(row["scale"]) if pd.notna(row.get("scale")) else float("nan")
-        text = f"   Reference customer {row['reference_customer']}, scale {scale:g}"
-        if len(ref) and not np.isnan(scale):
-            h = float(ref["history_share"].iloc[0])
-            text += f": {scale:g} x {h:.6f} (its history share) = {scale * h:.6f} taken from it"
-            text += " (less when several new customers take more than the reference has)"
-        lines.append(text + ".")
-    if rule == "initial_share" and pd.notna(row.get("initial_share")):
-        lines.append(f"   Initial share given by the planner: {_share(float(row['initial_share']))}.")
-    detail = str(row.get("lifecycle_detail") or "")
-    if detail:
-        lines.append(f"   In the share table: {detail}.")
-    lines.append(
-        f"   Active in the horizon from {_day(row['first_active_period'])} to {_day(row['last_active_period'])}; "
-        f"{int(row['own_periods'])} periods of own history."
-    )
-    lines.append(f"   Base share (every customer of the parent active): {_share(float(row['share']))}.")
-    if audit is not None:
-        mine = _leaf_rows(audit, row["product"], row["site"], row["customer"])
-        for a in mine.itertuples(index=False):
-            lines.append(
-                f"   Lifecycle stage: {a.rule}, {int(a.periods)} periods, quantity {_qty(float(a.quantity))} "
-                f"({a.detail})."
-            )
-    return lines
-
-
-def _corrections_section(row: pd.Series, corrections: pd.DataFrame | None, history: pd.DataFrame | None) -> list[str]:
-    lines = ["3. Corrections to its history"]
-    if corrections is None:
-        return lines + ["   (history_corrections not given)"]
-    products = {row["product"]}
-    if history is not None:
-        mine = _leaf_rows(history, row["product"], row["site"], row["customer"])
-        products |= set(mine["source_product"].unique())
-    hit = corrections[
-        corrections["product"].isin(products)
-        & (corrections["site"] == row["site"])
-        & (corrections["customer"] == row["customer"])
-    ]
-    if hit.empty:
-        return lines + ["   None: no rule changed a period of this customer's history."]
-    by_rule = hit.groupby("rule").agg(periods=("delta", "size"), delta=("delta", "sum")).sort_index()
-    parts = [
-        f"{rule} {int(r.periods)} period{'s' if r.periods > 1 else ''} (net {float(r.delta):+,.2f})"
-        for rule, r in by_rule.iterrows()
-    ]
-    lines.append(f"   {len(hit)} corrected period{'s' if len(hit) > 1 else ''}: {'; '.join(parts)}.")
-    other = sorted(set(hit["product"]) - {row["product"]})
-    if other:
-        lines.append(f"   (including history recorded on {', '.join(other)} and mapped to {row['product']})")
-    return lines
-
-
-def _choice_lines(product_class: str, choice: pd.DataFrame | None) -> list[str]:
-    """How the class's strategy was decided, from the stored strategy_choice (nothing without it)."""
-    if choice is None or choice.empty:
-        return []
-    mine = choice[choice["product_class"] == product_class]
-    if mine.empty:
-        return []
-    c = mine.iloc[0]
-    how = "the backtest's choice (strategy: auto)" if c["configured_strategy"] == AUTO else "configured"
-    text = f"   Decided for the class this cycle: {STRATEGY_TEXT.get(c['strategy'], c['strategy'])}; {how}"
-    if pd.notna(c["leaf_wmape"]):
-        text += f"; backtest leaf WMAPE {float(c['leaf_wmape']):.3f}"
-        if c["runner_up"] and pd.notna(c["margin"]):
-            text += f", margin {float(c['margin']):+.4f} over {c['runner_up']}"
-    return [text + "."]
-
-
-def _forecast_section(
-    row: pd.Series, horizon: pd.DataFrame, parent: pd.DataFrame, models: pd.DataFrame | None,
-    choice: pd.DataFrame | None = None,
-) -> list[str]:
-    product, site, customer = row["product"], row["site"], row["customer"]
-    first = parent.iloc[0]
-    lines = [f"4. Parent forecast {product} x {site}"]
-    model = str(first["model"])
-    detail = cut = ""
-    if models is not None:
-        m = models[(models["grain"] == "parent") & (models["product"] == product) & (models["site"] == site)]
-        if len(m):
-            m = m.iloc[0]
-            detail = f", {m['parameters']}" if m["parameters"] else ""
-            measures = [
-                f"ADI {float(m['adi']):.2f}" if pd.notna(m["adi"]) else "",
-                f"CV^2 {float(m['cv2']):.3f}" if pd.notna(m["cv2"]) else "",
-            ]
-            if any(measures):
-                cut = f"{', '.join(x for x in measures if x)}; cut-offs ADI 1.32, CV^2 0.49"
-    lines.append(f"   Model {model}{detail}.")
-    lines.append(f"   Demand class {first['demand_class']}{f' ({cut})' if cut else ''}.")
-    strategy = first.get("strategy") if "strategy" in parent.columns else None
-    named = (
-        f"Strategy {strategy}" if isinstance(strategy, str) and strategy else "Strategy not recorded in parent_forecast"
-    )
-    lines.append(f"   {named} (models ran at grain: {first['model_grain']}).")
-    lines += _choice_lines(row["product_class"], choice)
-    if models is not None:
-        leaf_model = models[
-            (models["grain"] == "leaf")
-            & (models["product"] == product)
-            & (models["site"] == site)
-            & (models["customer"] == customer)
-        ]
-        if len(leaf_model):
-            lm = leaf_model.iloc[0]
-            parameters = f", {lm['parameters']}" if lm["parameters"] else ""
-            own = f"model {lm['model']}{parameters}; demand class {lm['demand_class']}"
-            lines.append(f"   The customer's own series: {own}.")
-    total = float(horizon["parent_forecast"].sum())
-    lines.append(f"   Parent forecast over the {len(horizon)} horizon periods: {_qty(total)}.")
-    return lines
-
-
 def _result_text(r) -> str:
     """One period in words: how share, parent forecast and leaf forecast relate."""
     share, parent, leaf = float(r.share), float(r.parent_forecast), float(r.leaf_forecast)
@@ -337,22 +160,22 @@ def _result_text(r) -> str:
         why = ZERO_REASONS.get(str(r.zero_share_reason), str(r.zero_share_reason))
         return (
             f"every share of the parent is 0 in this period ({r.zero_share_reason}: {why}), so the forecast "
-            f"is 0: leaf forecast {_qty(leaf)}."
+            f"is 0: leaf forecast {qty(leaf)}."
         )
     basis = str(r.basis)
     if basis in (Basis.REINITIALIZED_TARGET, Basis.PERIOD_SHARE):
-        text = f"leaf forecast = period share x parent forecast = {share:.6f} x {_qty(parent)} = {_qty(share * parent)}"
+        text = f"leaf forecast = period share x parent forecast = {share:.6f} x {qty(parent)} = {qty(share * parent)}"
         if abs(share * parent - leaf) > RELATIVE_TOLERANCE * max(abs(leaf), 1.0):
             implied = leaf / parent if parent else float("nan")
             return (
                 text
-                + f"; but the stored leaf forecast is {_qty(leaf)}, a proportion of {implied:.6f} ({BASES[basis]})."
+                + f"; but the stored leaf forecast is {qty(leaf)}, a proportion of {implied:.6f} ({BASES[basis]})."
             )
         return text + f", as stored ({BASES[basis]})."
     implied = leaf / parent if parent else float("nan")
-    proportion = "" if np.isnan(implied) else f", {100 * implied:.2f} % of the parent forecast {_qty(parent)}"
+    proportion = "" if np.isnan(implied) else f", {100 * implied:.2f} % of the parent forecast {qty(parent)}"
     return (
-        f"leaf forecast {_qty(leaf)}{proportion}: {BASES.get(basis, basis)} (the period share from history "
+        f"leaf forecast {qty(leaf)}{proportion}: {BASES.get(basis, basis)} (the period share from history "
         f"was {share:.6f})."
     )
 
@@ -372,13 +195,13 @@ def share_changes(horizon: pd.DataFrame, siblings: pd.DataFrame, limit: int = 10
         if begin:
             who.append(f"{', '.join(begin)} start{'s' if len(begin) == 1 else ''} in it")
         if end:
-            who.append(f"{', '.join(end)} ended {_day(before)}")
+            who.append(f"{', '.join(end)} ended {day(before)}")
         reason = "; ".join(who) or (
             str(horizon["zero_share_reason"].iloc[i])
             if pd.notna(horizon["zero_share_reason"].iloc[i])
             else "the active customers changed"
         )
-        out.append(f"   From {_day(at)} the share is {share[i]:.6f} (was {share[i - 1]:.6f}): {reason}.")
+        out.append(f"   From {day(at)} the share is {share[i]:.6f} (was {share[i - 1]:.6f}): {reason}.")
     return out
 
 
@@ -392,12 +215,12 @@ def _table(horizon: pd.DataFrame) -> list[str]:
         elif r.share == 0:
             how += ", customer not active or no share"
         lines.append(
-            f"   {_day(r.period_start):<10}  {r.share:>9.6f}  {_qty(r.parent_forecast):>15}  "
-            f"{_qty(r.leaf_forecast):>13}  {how}"
+            f"   {day(r.period_start):<10}  {r.share:>9.6f}  {qty(r.parent_forecast):>15}  "
+            f"{qty(r.leaf_forecast):>13}  {how}"
         )
     lines.append(
-        f"   {'total':<10}  {'':>9}  {_qty(horizon['parent_forecast'].sum()):>15}  "
-        f"{_qty(horizon['leaf_forecast'].sum()):>13}"
+        f"   {'total':<10}  {'':>9}  {qty(horizon['parent_forecast'].sum()):>15}  "
+        f"{qty(horizon['leaf_forecast'].sum()):>13}"
     )
     return lines
 
@@ -420,19 +243,19 @@ def explain_leaf(tables: Mapping[str, pd.DataFrame], product: str, site: str, cu
     horizon = _horizon(tables, product, site, customer)
     kind = _period_kind(tables, horizon["period_start"])
     cycle = pd.Timestamp(row["cycle_date"])
-    parent = _leaf_rows(tables["parent_forecast"], product, site)
+    parent = leaf_rows(tables["parent_forecast"], product, site)
 
     lines = [
         f"How the forecast of {product} x {site} x {customer} was made",
-        f"Cycle {_day(cycle)}, product class {row['product_class']}, {len(horizon)} {kind}s ahead "
-        f"({_day(horizon['period_start'].min())} to {_day(horizon['period_start'].max())}).",
+        f"Cycle {day(cycle)}, product class {row['product_class']}, {len(horizon)} {kind}s ahead "
+        f"({day(horizon['period_start'].min())} to {day(horizon['period_start'].max())}).",
         "",
     ]
-    lines += _share_section(row, kind) + [""]
-    siblings = _leaf_rows(tables["share_tables"], product, site)
-    lines += _lifecycle_section(row, siblings, tables.get("lifecycle_audit")) + [""]
-    lines += _corrections_section(row, tables.get("history_corrections"), tables.get("lifecycle_history")) + [""]
-    lines += _forecast_section(row, horizon, parent, tables.get("forecast_models"), tables.get("strategy_choice")) + [
+    lines += share_section(row, kind) + [""]
+    siblings = leaf_rows(tables["share_tables"], product, site)
+    lines += lifecycle_section(row, siblings, tables.get("lifecycle_audit")) + [""]
+    lines += corrections_section(row, tables.get("history_corrections"), tables.get("lifecycle_history")) + [""]
+    lines += forecast_section(row, horizon, parent, tables.get("forecast_models"), tables.get("strategy_choice")) + [
         ""
     ]
 
@@ -457,24 +280,24 @@ def explain_leaf(tables: Mapping[str, pd.DataFrame], product: str, site: str, cu
             asked = pd.Timestamp(period)
         except (TypeError, ValueError) as err:
             raise UnknownKeyError(
-                f"period {period!r} is not a date; give an ISO date such as {_day(horizon['period_start'].iloc[0])}."
+                f"period {period!r} is not a date; give an ISO date such as {day(horizon['period_start'].iloc[0])}."
             ) from err
         start = period_start(pd.Series([asked]), kind).iloc[0]
         hit = horizon[horizon["period_start"] == start]
         if hit.empty:
             raise UnknownKeyError(
-                f"period {_day(asked)} (the {kind} starting {_day(start)}) is not in the horizon of cycle "
-                f"{_day(cycle)}, "
-                f"which runs from {_day(horizon['period_start'].min())} to {_day(horizon['period_start'].max())}; "
+                f"period {day(asked)} (the {kind} starting {day(start)}) is not in the horizon of cycle "
+                f"{day(cycle)}, "
+                f"which runs from {day(horizon['period_start'].min())} to {day(horizon['period_start'].max())}; "
                 f"give a date inside it, or leave the period out for the whole horizon."
             )
         r = next(hit.itertuples(index=False))
-        lines.append(f"5. Result in the {kind} of {_day(start)}")
+        lines.append(f"5. Result in the {kind} of {day(start)}")
         lines.append(
-            f"   Period share: {_share(float(r.share))}, the base shares of the customers active in this {kind}, "
+            f"   Period share: {as_share(float(r.share))}, the base shares of the customers active in this {kind}, "
             "renormalised."
         )
-        lines.append(f"   Parent forecast: {_qty(float(r.parent_forecast))}.")
+        lines.append(f"   Parent forecast: {qty(float(r.parent_forecast))}.")
         base = float(row["share"])
         if abs(float(r.share) - base) > 1e-12:
             lines.append(

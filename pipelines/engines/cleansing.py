@@ -122,3 +122,26 @@ def correction_rows(
     return pd.DataFrame(
         {"leaf": leaf, "col": j, "rule": rule, "before": b, "after": a, "delta": a - b, "parameters": parameters}
     )
+
+
+def find_unexplained_changes(cleaned: pd.DataFrame, corrections: pd.DataFrame, tolerance: float = 1e-6) -> pd.DataFrame:
+    """Series whose cleaned total differs from raw total + audited corrections.
+
+    Per series: sum(raw_quantity) + sum(delta) must equal sum(quantity).
+    """
+    totals = cleaned.groupby(LEAF, sort=True, observed=True)[["raw_quantity", "quantity"]].sum()
+    moved = corrections.groupby(LEAF, sort=True, observed=True)["delta"].sum()
+    totals["corrections"] = moved.reindex(totals.index).fillna(0.0)
+    totals["unexplained"] = totals["quantity"] - totals["raw_quantity"] - totals["corrections"]
+    return totals[totals["unexplained"].abs() > tolerance].reset_index()
+
+
+def line_accounting(raw_lines: int, cleaned: pd.DataFrame, rejected: pd.DataFrame) -> dict[str, int]:
+    """Raw lines against used (summed into cleaned periods) plus rejected lines."""
+    used = int(cleaned["lines"].sum())
+    return {
+        "raw_lines": raw_lines,
+        "used_lines": used,
+        "rejected_lines": len(rejected),
+        "unaccounted": raw_lines - used - len(rejected),
+    }

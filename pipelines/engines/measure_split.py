@@ -19,7 +19,7 @@ import pandas as pd
 from pipelines.calendar import period_ordinal
 from pipelines.config_sections import MeasureConfig
 from pipelines.engines.integer_split import largest_remainder, round_to_pack
-from pipelines.keys import LEAF, PARENT, factorize, lookup
+from pipelines.keys import LEAF, PARENT, factorize
 from pipelines.vocabulary import MeasureFallback, values
 
 PIN_KEY = ["measure"] + LEAF + ["period_start"]
@@ -370,41 +370,3 @@ def overflow_message(overflow: pd.DataFrame, source) -> str:
         "pins.on_overflow: warn to keep the pins and give the other customers 0."
     )
 
-
-def cells_of(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame, first_ord: int, h: int, period: str):
-    """(row in table, horizon column, inside) of each row of `frame` keyed by `cols` and `period_start`."""
-    row = lookup(frame, cols, table) if len(frame) else np.zeros(0, dtype=np.int64)
-    col = period_ordinal(pd.DatetimeIndex(pd.to_datetime(frame["period_start"])), period) - first_ord
-    return row, col, (col >= 0) & (col < h)
-
-
-def leaf_matrix(
-    frame: pd.DataFrame,
-    cols: list[str],
-    table: pd.DataFrame,
-    column: str | list[str],
-    first_ord: int,
-    h: int,
-    period: str,
-):
-    """(len(table), h) matrix of `column` (one per name of a list) from a long frame keyed by `cols` and
-    period_start, 0 where absent; the keys are looked up once for all columns."""
-    names = [column] if isinstance(column, str) else column
-    out = [np.zeros((len(table), h)) for _ in names]
-    if len(frame):
-        row, col, inside = cells_of(frame, cols, table, first_ord, h, period)
-        ok = inside & (row >= 0)
-        for m, name in zip(out, names, strict=False):
-            m[row[ok], col[ok]] = frame[name].to_numpy(float)[ok]
-    return out[0] if isinstance(column, str) else out
-
-
-def combine_cells(row: np.ndarray, col: np.ndarray, value: np.ndarray, shape: tuple[int, int], mean: bool):
-    """Sum (or mean) of `value` per (row, col) cell, and which cells have any."""
-    total = np.zeros(shape)
-    count = np.zeros(shape)
-    np.add.at(total, (row, col), value)
-    np.add.at(count, (row, col), 1.0)
-    if mean:
-        total = np.divide(total, count, out=np.zeros(shape), where=count > 0)
-    return total, count > 0

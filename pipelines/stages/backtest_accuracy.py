@@ -40,8 +40,9 @@ import pandas as pd
 from pipelines.calendar import ordinal_to_start, period_ordinal, season_length
 from pipelines.config_sections import BacktestConfig
 from pipelines.engines.accuracy import mase_scale
+from pipelines.engines.base_forecasts import base_forecasts
 from pipelines.engines.hierarchy import NEEDS_RESIDUALS, coherent_forecasts, parent_sums
-from pipelines.engines.models import ModelSettings, base_forecasts, run_model_groups, series_grid
+from pipelines.engines.models import ModelSettings, run_model_groups, series_grid
 from pipelines.engines.period_shares import period_shares
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.shares import compute_shares

@@ -98,7 +98,13 @@ from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal,
 from pipelines.checks import CORRECTIONS_EXPLAIN_CHANGES, EVERY_RAW_ROW_ACCOUNTED, REJECTED_ROWS_WITHIN_LIMIT
 from pipelines.config import CalendarConfig, PlanningConfig, class_section
 from pipelines.config_sections import CleansingConfig, ProductClassConfig
-from pipelines.engines.cleansing import correction_rows, reject_lines, shortage_cells
+from pipelines.engines.cleansing import (
+    correction_rows,
+    find_unexplained_changes,
+    line_accounting,
+    reject_lines,
+    shortage_cells,
+)
 from pipelines.engines.outliers import judge_outliers, rolling_median, rule_parameters, seasonal_component
 from pipelines.engines.report_charts import corrections_chart
 from pipelines.keys import LEAF, factorize, lookup
@@ -253,29 +259,6 @@ def clean_history(
         outlier_rules=pd.DataFrame(summary),
         shortage_periods=shortage_periods,
     )
-
-
-def find_unexplained_changes(cleaned: pd.DataFrame, corrections: pd.DataFrame, tolerance: float = 1e-6) -> pd.DataFrame:
-    """Series whose cleaned total differs from raw total + audited corrections.
-
-    Per series: sum(raw_quantity) + sum(delta) must equal sum(quantity).
-    """
-    totals = cleaned.groupby(LEAF, sort=True, observed=True)[["raw_quantity", "quantity"]].sum()
-    moved = corrections.groupby(LEAF, sort=True, observed=True)["delta"].sum()
-    totals["corrections"] = moved.reindex(totals.index).fillna(0.0)
-    totals["unexplained"] = totals["quantity"] - totals["raw_quantity"] - totals["corrections"]
-    return totals[totals["unexplained"].abs() > tolerance].reset_index()
-
-
-def line_accounting(raw_lines: int, cleaned: pd.DataFrame, rejected: pd.DataFrame) -> dict[str, int]:
-    """Raw lines against used (summed into cleaned periods) plus rejected lines."""
-    used = int(cleaned["lines"].sum())
-    return {
-        "raw_lines": raw_lines,
-        "used_lines": used,
-        "rejected_lines": len(rejected),
-        "unaccounted": raw_lines - used - len(rejected),
-    }
 
 
 def cycle_calendar(cleaned: pd.DataFrame, config: PlanningConfig, cycle_date: pd.Timestamp) -> pd.DataFrame:

@@ -90,17 +90,22 @@ from pipelines.checks import MEASURES_SUM_TO_PARENT, PINS_KEPT, PINS_WITHIN_PARE
 from pipelines.config import CalendarConfig, PlanningConfig, check_windows_fit
 from pipelines.config_sections import MeasureConfig, PinsConfig, ShareBasisConfig
 from pipelines.engines.children import active_children
+from pipelines.engines.measure_inputs import (
+    basis_of,
+    cells_of,
+    check_measures_known,
+    combine_cells,
+    leaf_matrix,
+    share_basis_tables,
+)
 from pipelines.engines.measure_split import (
     OVERFLOW,
     OVERFLOW_COLUMNS,
     PARENT_COLUMNS,
     PIN_KEY,
     _stack,
-    cells_of,
-    combine_cells,
     find_pins_not_kept,
     find_sum_violations,
-    leaf_matrix,
     orphan_parents,
     overflow_message,
     overflow_piece,
@@ -109,13 +114,10 @@ from pipelines.engines.measure_split import (
     plan_totals,
     split_cells,
 )
-from pipelines.engines.period_shares import period_shares
-from pipelines.engines.share_settings import ShareRule, ShareSettings
-from pipelines.engines.shares import compute_shares
-from pipelines.errors import ConfigError, PinError
+from pipelines.engines.share_settings import ShareSettings
+from pipelines.errors import PinError
 from pipelines.keys import LEAF, PARENT, factorize, lookup
 from pipelines.results import CheckRows, Log, StageResult, quiet
-from pipelines.vocabulary import Basis
 
 PLAN_COLUMNS = LEAF + [
     "period_start",
@@ -172,52 +174,6 @@ class PlanResult:
     unused_rows: pd.DataFrame
 
 
-def share_basis_tables(
-    history: pd.DataFrame,
-    children: pd.DataFrame,
-    products: pd.DataFrame,
-    config: PlanningConfig,
-    cycle_date: pd.Timestamp,
-) -> dict[str, pd.DataFrame]:
-    """Period shares of every named share basis (config `share_bases`): leaf keys, period_start, share, fallback.
-
-    Each basis runs the share engine (`engines.shares.compute_shares`, then
-    `engines.period_shares.period_shares`) with its window, method and fallback
-    windows in place of every product class's own. history: lifecycle history;
-    children: `engines.children.active_children`.
-    """
-    out = {}
-    starts = horizon_starts(cycle_date, config.calendar.horizon, config.calendar.period)
-    settings = config.share if isinstance(config, PlanSettings) else ShareSettings.of(config)
-    for name, basis in config.share_bases.items():  # a few named bases, not a loop over series
-        own = settings.with_rule(ShareRule.of(basis))  # its window, method and fallbacks in every class
-        table = compute_shares(history, children, own, cycle_date)
-        share = period_shares(table, own, cycle_date, products, history)[0]
-        frame = table[LEAF].loc[table.index.repeat(len(starts))].reset_index(drop=True)
-        frame["period_start"] = np.tile(starts.values, len(table))
-        frame["share"] = share.ravel()
-        frame["fallback"] = np.repeat(table["fallback"].to_numpy(), len(starts))
-        out[name] = frame
-    return out
-
-
-def _check_measures_known(frame: pd.DataFrame, config: PlanningConfig, what: str) -> None:
-    names = set(frame["measure"].dropna().unique())
-    unknown = sorted(names - set(config.measures))
-    if unknown:
-        raise ConfigError(
-            f"{config.source}: the {what} input names measure(s) {unknown} that config measures does not define "
-            f"(defined: {sorted(config.measures)}); add them under measures: or correct the measure column."
-        )
-    from_forecast = sorted(n for n in names if config.measures[n].parent_values == "parent_forecast")
-    if from_forecast and what == "adjustments":
-        raise ConfigError(
-            f"{config.source}: the adjustments input has rows of {from_forecast}, whose parent values come from "
-            f"the statistical forecast (parent_values: parent_forecast); enter changes as another measure "
-            f"(e.g. planner_adjustment) or pin leaves in the pins input."
-        )
-
-
 def plan_measures(
     children: pd.DataFrame,
     parent_forecast: pd.DataFrame,
@@ -252,8 +208,8 @@ def plan_measures(
     last = period_ordinal(pd.DatetimeIndex(children["last_active_period"]), period)[:, None]
     active = (h_ord[None, :] >= first) & (h_ord[None, :] <= last)
     order = np.arange(n)  # children are in key order
-    _check_measures_known(adjustments, config, "adjustments")
-    _check_measures_known(pins, config, "pins")
+    check_measures_known(adjustments, config, "adjustments")
+    check_measures_known(pins, config, "pins")
 
     unused = []
     adj_row, adj_col, adj_inside = cells_of(adjustments, PARENT, parents, first_ord, h, period)
@@ -320,7 +276,7 @@ def plan_measures(
             )
             applied_pieces.append(combined.assign(value=pin[cell]))
 
-        basis, fallback_basis, label = _basis(m, name, mats, top_down, parent_of_child)
+        basis, fallback_basis, label = basis_of(m, name, mats, top_down, parent_of_child)
         split = split_cells(
             m.rule, value, has, parent_of_child, active, pin, pinned, basis, fallback_basis,
             None if m.integer is None else m.integer.pack_size, order,
@@ -358,26 +314,6 @@ def plan_measures(
         pins_not_applied=pins_not_applied[PIN_KEY + ["value", "reason"]].reset_index(drop=True),
         unused_rows=unused_rows,
     )
-
-
-def _basis(m: MeasureConfig, name: str, mats: dict[str, np.ndarray], top_down: np.ndarray, parent_of_child: np.ndarray):
-    """(basis, fallback basis, label per parent) of a measure; `mats` holds the leaf matrices by name."""
-    n_parents = len(top_down)
-    if m.rule != "pro_rata":
-        return None, None, np.full(n_parents, "parent" if m.rule == "replicate" else "even", dtype=object)
-    b = m.basis
-    label = np.full(n_parents, b.label, dtype=object)
-    if b.kind == "reinitialized_target":
-        if m.parent_values != "parent_forecast":
-            return mats["target"], mats["share"], label
-        # the forecast's own split: the target where the class is split top-down, else its leaf values
-        td = top_down[parent_of_child][:, None]
-        label[~top_down] = Basis.LEAF_FORECAST
-        return np.where(td, mats["target"], mats["forecast"]), np.where(td, mats["share"], 0.0), label
-    key = f"{b.kind}:{b.name}"
-    if key not in mats:
-        raise ConfigError(f"measures.{name}: basis {key} is not available; pass its share_basis_tables(...) frame")
-    return mats[key], None, label
 
 
 def run(

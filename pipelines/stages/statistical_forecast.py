@@ -39,8 +39,9 @@ import pandas as pd
 
 from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal
 from pipelines.checks import NO_NEGATIVE_FORECAST, NO_VOLUME_AFTER_PHASE_OUT, NO_VOLUME_OUTSIDE_ACTIVE_SPAN
+from pipelines.engines.base_forecasts import BaseForecasts, base_forecasts
 from pipelines.engines.hierarchy import coherent_forecasts
-from pipelines.engines.models import BaseForecasts, ModelSettings, SeriesGrid, base_forecasts, series_grid
+from pipelines.engines.models import ModelSettings, SeriesGrid, series_grid
 from pipelines.engines.proofs import find_negative, find_volume_after_phase_out, find_volume_outside_active_span
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
