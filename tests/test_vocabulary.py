@@ -39,7 +39,8 @@ def test_the_schemas_allow_exactly_the_vocabulary():
 @pytest.mark.parametrize("method", list(v.ShareMethod))
 def test_the_config_takes_every_share_method_and_names_them_when_wrong(method):
     extra = {"smoothed": {"smoothing": 0.2}}.get(method, {})
-    assert parse_config({"product_classes": {"a": {"window": 4, "method": method, **extra}}}).product_classes["a"].method == method
+    config = parse_config({"product_classes": {"a": {"window": 4, "method": method, **extra}}})
+    assert config.product_classes["a"].method == method
     with pytest.raises(ConfigError) as err:
         parse_config({"product_classes": {"a": {"window": 4, "method": "weighted"}}})
     assert f"'{method}'" in str(err.value)
