@@ -13,10 +13,10 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from pipelines.engines.children import active_children
+from pipelines.engines.proofs import find_shares_not_summing_to_one
 from pipelines.engines.shares import compute_shares
 from pipelines.keys import LEAF
 from pipelines.schemas import ReinitializedTarget
-from pipelines.stages.reconciliation import find_shares_not_summing_to_one
 from pipelines.stages.reinitialized_target import parents_with_mix_change, reinitialize_target
 
 CYCLE = pd.Timestamp("2026-02-02")
