@@ -340,7 +340,7 @@ class PinsConfig(Frozen):
     """Leaf values a planner fixed (optional pins input)."""
 
     # error: stop with the parent, period, pins and overflow named; warn: keep the pins,
-    # give the other children 0 and list the rows in the WARN check pins_exceed_parent
+    # give the other children 0 and list the rows in the WARN check pins_within_parent
     on_overflow: PinOverflowRule = "error"
 
 
