@@ -32,13 +32,11 @@ import numpy as np
 import pandas as pd
 
 DEFAULT_SEED = 20261201
-MAKER = "Larkspur Hollow Garden Supply"
 
 HISTORY_WEEKS = 156
 HORIZON_WEEKS = 26
 CYCLE_DATE = np.datetime64("2026-11-30", "D")  # a Monday: the first week to forecast
 FIRST_WEEK = CYCLE_DATE - np.timedelta64(7 * HISTORY_WEEKS, "D")  # Monday 2023-12-04
-LAST_WEEK = CYCLE_DATE - np.timedelta64(7, "D")  # Monday 2026-11-23
 
 SITES = ("SITE-NORTH", "SITE-SOUTH", "SITE-WEST")
 POOL_SIZE = 48  # customers C0001..C0048; the planted new customers are C0049, C0050, C0051

@@ -51,7 +51,6 @@ class Strategy(StrEnum):
 # `product_classes.<class>.strategy: auto`: the backtest picks the class's strategy
 AUTO = "auto"
 # config keys and values of the last release, still read (with a warning) until the next one
-RENAMED_CLASS_KEYS = {"forecast_grain": "strategy"}
 FORECAST_GRAIN_STRATEGY = {"product_site": "top_down", "product_site_customer": "bottom_up", "auto": AUTO}
 RENAMED_SHARE_METHODS = {"forecast_proportions": "children_forecast"}
 
