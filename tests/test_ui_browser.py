@@ -1,8 +1,8 @@
 """A failed blocking check as whoever watches checks sees it: the Dagster UI in a real browser.
 
 One span of the demo's customer spans is broken on purpose (it ends before it
-starts), the asset `customer_spans` is materialized into a temporary Dagster
-instance, and the Dagster web server is started over that instance with the
+starts), the asset `customer_spans` (after `products`, whose class map it
+reads) is materialized into a temporary Dagster instance, and the Dagster web server is started over that instance with the
 project's own definitions. Headless Chromium (Debian's package, driven by
 Playwright) then opens the asset's checks and must find the schema check
 failed, with its description and the broken row in its failing-rows sample.
@@ -34,7 +34,7 @@ import pytest
 import yaml
 
 from assets.common import schema_check_name
-from assets.master_data import CUSTOMER_SPANS
+from assets.master_data import CUSTOMER_SPANS, PRODUCT_CLASS_MAP, PRODUCTS
 from pipelines.config import load_config
 from pipelines.definitions import build_definitions
 from pipelines.partitions import current_cycle
@@ -60,6 +60,8 @@ REQUIRE_BROWSER = "APPORTION_REQUIRE_BROWSER"
 SERVER_START_TIMEOUT_S = 120
 UI_TIMEOUT_MS = 30_000
 CHECK = schema_check_name(CUSTOMER_SPANS)
+# customer_spans keeps its class's rows by the product master's class map, so products come first
+SELECTION = [PRODUCTS, PRODUCT_CLASS_MAP, CUSTOMER_SPANS]
 
 
 def _sync_playwright():
@@ -246,7 +248,7 @@ def test_ui_shows_the_failed_schema_check_with_its_rows_then_its_history(tmp_pat
     spans.loc[3] = broken
     spans.to_csv(spans_file, index=False)
 
-    first = materialize_into_instance(str(config_path), [CUSTOMER_SPANS])
+    first = materialize_into_instance(str(config_path), SELECTION)
     evaluations = {e.check_name: e for e in first.get_asset_check_evaluations()}
     assert not evaluations[CHECK].passed, "the broken span did not fail the schema check in-process"
 
@@ -269,7 +271,7 @@ def test_ui_shows_the_failed_schema_check_with_its_rows_then_its_history(tmp_pat
         # repair the input; the next evaluation passes (run outside the browser session: Dagster
         # must not start its run inside Playwright's event loop)
         spans_file.write_bytes(good_spans)
-        second = materialize_into_instance(str(config_path), [CUSTOMER_SPANS])
+        second = materialize_into_instance(str(config_path), SELECTION)
         assert second.success
 
         history = _graphql(base_url, EXECUTIONS, {"check": CHECK})["assetCheckExecutions"]
