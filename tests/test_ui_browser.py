@@ -3,8 +3,9 @@
 One span of the demo's customer spans is broken on purpose (it ends before it
 starts), the asset `customer_spans` (after `products`, whose class map it
 reads) is materialized into a temporary Dagster instance, and the Dagster
-web server is started over that instance with the project's own definitions. Headless Chromium (Debian's package, driven by
-Playwright) then opens the asset's checks and must find the schema check
+web server is started over that instance with the project's own
+definitions. Headless Chromium (Debian's package, driven by Playwright) then
+opens the asset's checks and must find the schema check
 failed, with its description and the broken row in its failing-rows sample.
 The input is then repaired and materialized again: the check's history, read
 through the web server's GraphQL API and in the UI, lists the failed
