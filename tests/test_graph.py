@@ -425,12 +425,12 @@ def test_monthly_calendar_runs_the_same_graph(tmp_path):
 
 
 def test_demo_plan_measures_each_split_by_its_rule_with_the_pins_kept(demo_cycle):
-    from assets.plan_measures import MEASURES_SUM_TO_PARENT, PINS_EXCEED_PARENT, PINS_KEPT
+    from pipelines.checks import MEASURES_SUM_TO_PARENT, PINS_KEPT, PINS_WITHIN_PARENT
 
     result, store, _ = demo_cycle
     plan = read_table(store, "plan_measures")
     checks = checks_of(result)
-    for name in (MEASURES_SUM_TO_PARENT, PINS_KEPT, PINS_EXCEED_PARENT):
+    for name in (MEASURES_SUM_TO_PARENT, PINS_KEPT, PINS_WITHIN_PARENT):
         assert checks[f"plan_measures:{name}"].passed
     assert set(plan["measure"]) == {"statistical_forecast", "list_price", "promotion_uplift", "planner_adjustment"}
     key = ["product", "site", "customer", "period_start"]
@@ -542,7 +542,7 @@ def test_cleansing_picture_is_written_to_the_cycle_report_folder(demo_cycle):
 
 
 def test_two_cycles_side_by_side_and_the_share_drift_between_them(demo_cycle):
-    from assets.share_drift import SHARE_DRIFT_WITHIN_LIMIT
+    from pipelines.checks import SHARE_DRIFT_WITHIN_LIMIT
 
     _, store, config = demo_cycle
     defs = build_definitions(config)
@@ -589,8 +589,7 @@ def test_two_cycles_side_by_side_and_the_share_drift_between_them(demo_cycle):
 
 
 def test_watcher_warnings_fire_above_their_thresholds_and_list_the_rows(tmp_path):
-    from assets.cleaned_history import REJECTED_ROWS_WITHIN_LIMIT
-    from assets.share_tables import FALLBACK_SHARE_WITHIN_LIMIT
+    from pipelines.checks import FALLBACK_SHARE_WITHIN_LIMIT, REJECTED_ROWS_WITHIN_LIMIT
 
     classes = yaml.safe_load((ROOT / "config" / "planning.yaml").read_text())["product_classes"]
     # spares are intermittent: over a 4-week window many parents have no volume and fall back to 156 weeks
@@ -626,7 +625,6 @@ def test_watcher_warnings_fire_above_their_thresholds_and_list_the_rows(tmp_path
 
 
 def test_cycle_report_has_the_charts_and_a_page_with_every_class(demo_cycle):
-    from assets.share_tables import NEW_CUSTOMER_WITHOUT_SHARE
     from pipelines.cycle_report import REPORT_FILE
 
     result, store, _ = demo_cycle
@@ -640,7 +638,7 @@ def test_cycle_report_has_the_charts_and_a_page_with_every_class(demo_cycle):
     for product_class in ("consumables", "seasonal", "spares"):
         assert f"parents_{product_class}_2026-11-30.png" in page
     # the one failing check of the demo (a WARN, by design) is listed before every passing check
-    failed_at = page.index(NEW_CUSTOMER_WITHOUT_SHARE)
+    failed_at = page.index(NEW_CUSTOMERS_HAVE_SHARE)
     assert failed_at < page.index("children_sum_to_parent")
 
 
