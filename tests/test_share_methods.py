@@ -453,3 +453,36 @@ def test_property_shares_of_every_method_sum_to_one_per_parent_and_period_or_are
         merged["period_start"] > merged["last_active_period"]
     )
     assert (merged.loc[inactive | (merged["lifecycle_rule"] == "awaiting_history"), "share"] == 0).all()
+
+
+def test_the_stored_period_basis_gives_the_same_target_as_computing_it(make_history, make_config):
+    """The period basis is decided once (stage period_basis) and read by reinitialized_target: same numbers."""
+    from pipelines.engines.share_settings import ShareSettings
+    from pipelines.schemas import PeriodBasis
+    from pipelines.stages import period_basis, reinitialized_target
+
+    config = make_config(
+        {"a": {"window": 4, "method": "children_forecast", "models": LAST_VALUE}},
+        calendar={"horizon": 3},
+        lifecycle={"min_history_periods": 3},
+    )
+    rows = history_rows({"C1": {4: 1, 3: 2, 2: 3, 1: 6}, "C2": {4: 3, 3: 3, 2: 1, 1: 2}})
+    rows += history_rows({"C1": {4: 2, 3: 2, 2: 0, 1: 0}, "C2": {4: 1, 3: 0, 2: 0, 1: 0}}, product="P2")
+    kids = lifecycle_children([(p, c, 4, H1, H3, None, np.nan) for p in ("P1", "P2") for c in ("C1", "C2")])
+    history = make_history(rows)
+    shares = compute_shares(history, kids, config, CYCLE)
+    calendar = pd.DataFrame({"cycle_date": [CYCLE]})
+    settings = ShareSettings.of(config)
+    stored = period_basis.run(shares, history, calendar, settings).outputs["period_basis"]
+    stored = PeriodBasis.validate(stored)  # as the store gives it back
+    # P1: forecasts 6 and 2 -> 0.75 / 0.25 by children_forecast; P2: both 0 -> the pooled fallback
+    assert set(stored["basis"]) == {"children_forecast", "pooled_fallback"} and len(stored) == 4 * 3
+    result = reinitialized_target.run(shares, stored, history, None, calendar, settings)
+    expected = reinitialize_target(shares, history, config, CYCLE)
+    # the same rows, shares and bases (cycle_date differs only in its datetime unit)
+    pd.testing.assert_frame_equal(result.outputs["reinitialized_target"], expected, check_dtype=False)
+    assert result.checks["shares_sum_to_one"].rows.empty
+    # one share per child (pooled): no rows stored, the history share in every period
+    pooled = ShareSettings.of(make_config({"a": {"window": 4}}, calendar={"horizon": 3}))
+    pooled_shares = compute_shares(history, kids, pooled, CYCLE)
+    assert period_basis.run(pooled_shares, history, calendar, pooled).outputs["period_basis"].empty
