@@ -30,7 +30,7 @@ the reconciled leaves with S. Ridge 2e-8 on W's diagonal for `wls_var` and
   1,000,000 leaves (figures in benchmarks/README.md).
 - Dense W (`mint_shrink`) within each top-level tree (a component of the
   forest): W, C W C' and the projection are dense per component, batched
-  across components of similar size (padded to a power of two: padding nodes
+  across components of similar size (padded at most 25 %: padding nodes
   have no constraint and padding constraints are identity rows, so they change
   nothing). Cost per component O(n^3 + n^2 T) for n nodes and T residual
   periods, memory n^2: a component of a few thousand nodes at most
@@ -290,7 +290,9 @@ def _dense(tree: Tree, base, method, residuals, sigma, max_dense_nodes):
     sd = None if sigma is None else np.zeros_like(base)
     shrinkage = np.full(n_top, np.nan) if method == "mint_shrink" else None
     wdiag = _diagonal_w(tree, method, res) if method in DIAGONAL else None
-    padded = np.maximum(2, 2 ** np.ceil(np.log2(np.maximum(size, 1)))).astype(np.int64)
+    # pad each component to a size class at most 25 % larger: exact up to 8 nodes, then steps of 2^(k-2)
+    step = np.maximum(1, 2 ** (np.floor(np.log2(np.maximum(size, 1))) - 2)).astype(np.int64)
+    padded = np.maximum(2, -(-size // step) * step)
     by_size = np.argsort(padded, kind="stable")
     for m in np.unique(padded):  # a loop over a handful of padded sizes
         comps = by_size[padded[by_size] == m]
@@ -360,5 +362,5 @@ def _dense_batch(tree, cs, m, order, start, size, rank, n_agg, base, method, res
         corr = np.divide(w, std[:, :, None] * std[:, None, :], out=np.zeros_like(w), where=(std[:, :, None] * std[:, None, :]) > 0)
         for step in range(h):  # a loop over horizon periods
             scaled = proj * sig[:, None, :, step]  # S P D_h
-            var = np.einsum("gij,gjk,gik->gi", scaled, corr, scaled)
+            var = ((scaled @ corr) * scaled).sum(axis=2)  # diag(A R A'), by BLAS products
             sd[nodes, step] = np.sqrt(np.clip(var, 0.0, None))[g, r]
