@@ -40,7 +40,14 @@ class ParentForecast(_Strict):
     product: Series[str] = pa.Field(description="product code")
     site: Series[str] = pa.Field(description="site code")
     period_start: Series[DateTime] = pa.Field(description="forecast period")
-    forecast: Series[float] = pa.Field(description="parent forecast")
+    forecast: Series[float] = pa.Field(
+        description="parent forecast: strategy_forecast, or 0 in a period the lifecycle set to 0 (zero_reason)"
+    )
+    strategy_forecast: Series[float] = pa.Field(
+        description="the parent forecast as the class's strategy produced it, before the lifecycle: the model's "
+        "forecast (top_down, forecast_proportions), the reconciled parent (mint_shrink, wls_var) or the sum of the "
+        "active children's own forecasts (bottom_up); the leaves must sum to it wherever zero_reason is blank"
+    )
     model: Series[str] = pa.Field(description="statsforecast model used")
     demand_class: Series[str] = pa.Field(isin=DEMAND_CLASSES, description="Syntetos-Boylan-Croston class")
     model_grain: Series[str] = pa.Field(
@@ -176,17 +183,31 @@ class PlanMeasures(LeafPeriod):
 
 
 class Reconciliation(_Strict):
-    """Parent value against the sum of its children, per parent and period."""
+    """The leaves against the parent forecast the strategy produced, per parent and period."""
 
     cycle_date: Series[DateTime] = pa.Field(description="cycle date")
     product: Series[str] = pa.Field(description="product code")
     site: Series[str] = pa.Field(description="site code")
     period_start: Series[DateTime] = pa.Field(description="period")
-    parent_forecast: Series[float] = pa.Field(description="parent value")
-    children_sum: Series[float] = pa.Field(description="sum of leaf forecasts")
+    parent_forecast: Series[float] = pa.Field(
+        nullable=True, description="final parent forecast (blank: leaves without a parent row)"
+    )
+    strategy_forecast: Series[float] = pa.Field(
+        nullable=True, description="the parent forecast as the strategy produced it (parent_forecast.strategy_forecast)"
+    )
+    zero_reason: Series[str] = pa.Field(
+        nullable=True,
+        isin=ZERO_REASONS,
+        description="why the lifecycle set the period to 0 (then left out of the comparison with strategy_forecast "
+        "and judged on carrying no volume); blank = compared",
+    )
+    children_sum: Series[float] = pa.Field(description="sum of the stored leaf forecasts")
     children: Series[int] = pa.Field(ge=0, description="number of leaf rows")
-    difference: Series[float] = pa.Field(description="children_sum - parent_forecast")
-    relative_difference: Series[float] = pa.Field(description="|difference| / max(|parent|, 1)")
+    expected: Series[float] = pa.Field(
+        nullable=True, description="what the leaves must sum to: strategy_forecast, or 0 where zero_reason is set"
+    )
+    difference: Series[float] = pa.Field(nullable=True, description="children_sum - expected")
+    relative_difference: Series[float] = pa.Field(nullable=True, description="|difference| / max(|expected|, 1)")
 
     class Config:
         unique = ["product", "site", "period_start"]

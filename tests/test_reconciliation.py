@@ -1,7 +1,8 @@
-"""`reconciliation`: parent against the sum of its children, and each `find_*` rule.
+"""`reconciliation`: the leaves against the parent forecast the strategy produced, and each `find_*` rule.
 
-Tolerances: children sum to the parent when |difference| <= 1e-9 x max(|parent|, 1);
-shares sum to 1 within 1e-9, per parent and period (or are all 0 with a recorded reason).
+Tolerances: children sum to the parent when |difference| <= 1e-9 x max(|expected|, 1), expected being the
+strategy's parent forecast (0 in a period the lifecycle set to 0); shares sum to 1 within 1e-9, per parent
+and period (or are all 0 with a recorded reason).
 """
 
 from __future__ import annotations
@@ -10,27 +11,32 @@ import pandas as pd
 import pytest
 
 from pipelines.engines.proofs import (
+    find_active_parents_without_children,
     find_negative,
     find_shares_not_summing_to_one,
     find_volume_after_phase_out,
     find_volume_outside_active_span,
 )
 from pipelines.schemas_forecast import ParentForecast, Reconciliation, StatisticalForecast
-from pipelines.stages.reconciliation import find_incoherent, find_parents_without_children, reconcile
+from pipelines.stages.reconciliation import find_incoherent, reconcile
 
 CYCLE = pd.Timestamp("2026-02-02")
 H1, H2, H3 = pd.Timestamp("2026-02-02"), pd.Timestamp("2026-02-09"), pd.Timestamp("2026-02-16")
 
 
 def parents(rows):
-    """rows: (product, site, period_start, forecast)."""
-    frame = pd.DataFrame(rows, columns=["product", "site", "period_start", "forecast"])
+    """rows: (product, site, period_start, forecast[, strategy_forecast[, zero_reason]]); the strategy's value
+    defaults to the forecast, the reason to blank."""
+    full = [tuple(r) + (r[3], None)[len(r) - 4:] for r in rows]
+    frame = pd.DataFrame(
+        full, columns=["product", "site", "period_start", "forecast", "strategy_forecast", "zero_reason"]
+    )
     frame.insert(0, "product_class", "a")
     frame.insert(0, "cycle_date", CYCLE)
     frame["model"] = "ses"
     frame["demand_class"] = "smooth"
     frame["model_grain"] = "parent"
-    frame["zero_reason"] = None
+    frame["zero_reason"] = frame["zero_reason"].astype(object)
     return ParentForecast.validate(frame)
 
 
@@ -71,6 +77,7 @@ def test_reconcile_sums_children_and_measures_the_difference():
     rc = Reconciliation.validate(reconcile(parent, leaf))
     got = {(p, d): (s, n, diff, rel) for p, d, s, n, diff, rel in keyed(
         rc, "product", "period_start", "children_sum", "children", "difference", "relative_difference")}
+    assert rc["expected"].tolist() == rc["strategy_forecast"].tolist()  # no period set to 0 here
     # P1 wk1: 4 + 6 = 10, diff 0; wk2: 4 + 5 = 9, diff -1, rel 1/10 = 0.1
     assert got[("P1", H1)] == pytest.approx((10.0, 2, 0.0, 0.0))
     assert got[("P1", H2)] == pytest.approx((9.0, 2, -1.0, 0.1))
@@ -248,16 +255,86 @@ def test_negative_rows_are_returned():
     assert find_negative(leaves([("P1", "S1", "C1", H1, 0.0)])).empty
 
 
-def test_parents_without_children_are_returned_with_their_total():
-    rc = reconcile(
-        parents([("P1", "S1", H1, 4.0), ("P2", "S1", H1, 1.5), ("P2", "S1", H2, 2.5)]),
-        leaves([("P1", "S1", "C1", H1, 4.0)]),
-    )
-    bad = find_parents_without_children(rc)
-    # P2 has 2 periods and no child: 1.5 + 2.5 = 4.0
-    assert keyed(bad, "product", "periods", "parent_forecast") == [("P2", 2, 4.0)]
+# ------------------------------------------------------------------ against the strategy's parent
 
 
-def test_no_parent_without_children_when_every_parent_has_one():
-    rc = reconcile(parents([("P1", "S1", H1, 4.0)]), leaves([("P1", "S1", "C1", H1, 4.0)]))
-    assert find_parents_without_children(rc).empty
+def test_leaves_are_judged_against_the_strategys_parent_not_against_their_own_sum():
+    # P1 H1: the model said 12 (strategy_forecast); a parent re-summed from leaves 4 + 5 = 9 would agree with
+    # itself. The leaves must sum to 12: 9 is 3 short (relative 3/12 = 0.25), and the final 9 differs from 12
+    parent = parents([("P1", "S1", H1, 9.0, 12.0), ("P1", "S1", H2, 10.0, 10.0)])
+    leaf = leaves([("P1", "S1", "C1", H1, 4.0), ("P1", "S1", "C2", H1, 5.0),
+                   ("P1", "S1", "C1", H2, 4.0), ("P1", "S1", "C2", H2, 6.0)])
+    bad = find_incoherent(reconcile(parent, leaf))
+    assert keyed(bad, "product", "period_start", "difference", "why") == [
+        ("P1", H1, -3.0, "leaves do not sum to the strategy's parent forecast")
+    ]
+    assert bad["relative_difference"].iloc[0] == pytest.approx(0.25)
+    # leaves right, final parent wrong: 4 + 8 = 12 = strategy, but the final forecast says 9
+    parent = parents([("P1", "S1", H1, 9.0, 12.0)])
+    leaf = leaves([("P1", "S1", "C1", H1, 4.0), ("P1", "S1", "C2", H1, 8.0)])
+    assert keyed(find_incoherent(reconcile(parent, leaf)), "product", "why") == [
+        ("P1", "parent forecast differs from the strategy's (or is not 0 where the lifecycle set it to 0)")
+    ]
+
+
+def test_periods_set_to_zero_by_the_lifecycle_are_left_out_of_the_comparison_and_must_carry_nothing():
+    # H2: the product ended; the model said 12 but the lifecycle set the period to 0 with its reason. It is not
+    # compared with 12 (expected 0), and passes with leaves 0 + 0; H3 the same, but one leaf kept 1.5
+    parent = parents([
+        ("P1", "S1", H1, 12.0, 12.0),
+        ("P1", "S1", H2, 0.0, 12.0, "product_not_active"),
+        ("P1", "S1", H3, 0.0, 12.0, "product_not_active"),
+    ])
+    leaf = leaves([
+        ("P1", "S1", "C1", H1, 3.0), ("P1", "S1", "C2", H1, 9.0),
+        ("P1", "S1", "C1", H2, 0.0), ("P1", "S1", "C2", H2, 0.0),
+        ("P1", "S1", "C1", H3, 1.5), ("P1", "S1", "C2", H3, 0.0),
+    ])
+    rc = Reconciliation.validate(reconcile(parent, leaf))
+    assert rc.set_index("period_start")["expected"].tolist() == [12.0, 0.0, 0.0]
+    bad = find_incoherent(rc)
+    assert keyed(bad, "period_start", "children_sum", "why") == [
+        (H3, 1.5, "leaves carry volume in a period the lifecycle set to 0")
+    ]
+
+
+def test_leaves_without_a_parent_row_are_not_lost():
+    rc = reconcile(parents([("P1", "S1", H1, 4.0)]), leaves([("P1", "S1", "C1", H1, 4.0), ("P2", "S1", "C1", H1, 2.0)]))
+    Reconciliation.validate(rc)
+    bad = find_incoherent(rc)
+    assert keyed(bad, "product", "children_sum", "why") == [("P2", 2.0, "leaves without a parent_forecast row")]
+
+
+# ------------------------------------------------------------------ active parents from the master data
+
+
+def test_active_parents_come_from_the_master_data_and_spans(make_spans, make_products):
+    # horizon: 3 weeks from 2026-02-02. P1/S1 has an open span; P1/S2's only span ended 2026-01-25 (before the
+    # horizon: not active); P2 ends Sun 2026-01-25 (product not active in the horizon); P3/S1 starts 2026-02-16
+    # (inside the horizon: active); P4/S1 starts after the horizon (not active)
+    products = make_products([("P1", "a"), ("P2", "a", None, "2026-01-25"), ("P3", "a"), ("P4", "a")])
+    spans = make_spans([
+        ("P1", "S1", "C1"), ("P1", "S1", "C2"), ("P1", "S2", "C1", None, "2026-01-25"),
+        ("P2", "S1", "C1"), ("P3", "S1", "C1", "2026-02-16"), ("P4", "S1", "C1", "2026-03-02"),
+    ])
+    parent = parents([("P1", "S1", h, 1.0) for h in (H1, H2, H3)] + [("P3", "S1", h, 1.0) for h in (H1, H2, H3)])
+    leaf = leaves([(p, "S1", "C1", h, 1.0) for p in ("P1", "P3") for h in (H1, H2, H3)])
+
+    def judge(p, l):
+        return find_active_parents_without_children(p, l, spans, products, CYCLE, 3, "week")
+
+    assert judge(parent, leaf).empty
+    # P3's children dropped from the forecast: found from the spans, not from the forecast's children
+    bad = judge(parent, leaf[leaf["product"] != "P3"])
+    assert keyed(bad, "product", "site", "active_spans", "children_in_forecast", "why") == [
+        ("P3", "S1", 1, 0, "active in the master data, no child in statistical_forecast")
+    ]
+    # P3 gone from both tables: still named, from the master data
+    bad = judge(parent[parent["product"] != "P3"], leaf[leaf["product"] != "P3"])
+    assert keyed(bad, "product", "why") == [("P3", "active in the master data, no row in parent_forecast")]
+    # a forecast parent without a child is named even when the master data do not know it
+    extra = parents([("P9", "S1", H1, 2.0)])
+    bad = judge(pd.concat([parent, extra], ignore_index=True), leaf)
+    assert keyed(bad, "product", "active_spans", "why") == [
+        ("P9", 0, "forecast parent without a child in statistical_forecast")
+    ]

@@ -25,15 +25,42 @@ the S-form above for any positive definite W. Parents are batched by their
 number of children, so the work is a few batched matrix products, not a loop
 over parents.
 
+Active children: a child outside its span (or its product's) in a period is
+not part of its parent's hierarchy in that period. With `active` given, every
+strategy works on the active children only: their base forecasts and basis
+are 0 elsewhere, and MinT reconciles each period on the sub-hierarchy of the
+parent and its active children (the rows and columns of W of the inactive
+children dropped), so an inactive child gets 0 and takes no volume.
+
+The parent each strategy produces is kept as it is (`Coherent.parent`): the
+parent's base forecast for `top_down` and `forecast_proportions`, the
+reconciled parent row of the projection for MinT / WLS, the sum of the
+(active) children's base forecasts for `bottom_up`. The leaves are made to
+sum to it; `pipelines.stages.reconciliation` proves they do, against this
+value, not against a sum of the leaves.
+
 Non-negativity: reconciled values can be negative (a child whose base
 forecast is 0 is pulled below 0 when the parent is under the children's sum).
-`clip_and_resum` sets negative leaves to 0 and re-sums the parent from its
-leaves, so the result stays coherent; the count of values set to 0 is
-reported. (A constrained optimum would need a QP per parent; the clip is the
-documented simpler rule.)
+`nonnegative_keeping_parent` sets such leaves to 0 and takes the amount they
+held below 0 from the other children of that parent and period, in
+proportion to their reconciled values, so the reconciled parent keeps its
+volume: f_j = F~_P x max(f~_j, 0) / sum_k max(f~_k, 0). This is the
+forecast-proportions split of Athanasopoulos, Ahmed & Hyndman (2009) applied
+to the reconciled parent with the non-negative parts of the reconciled
+leaves as the proportions (it equals hierarchicalforecast's
+`TopDown(method="forecast_proportions")` on that two-level tree; the test
+names it). Where no reconciled leaf is above 0 the fallback basis (the
+shares) splits the parent; a negative reconciled parent cannot be carried by
+non-negative leaves and is left for the checks to report. (A constrained
+optimum, Wickramasuriya, Athanasopoulos & Hyndman 2020, would need a QP per
+parent and period; the proportional rule keeps the parent exactly, moves only
+the parent periods that had a negative leaf, and is reported: count, parent
+periods and volume moved.)
 """
 
 from __future__ import annotations
+
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -129,6 +156,7 @@ def mint_reconcile(
     method: str,
     parent_residuals: np.ndarray | None = None,
     leaf_residuals: np.ndarray | None = None,
+    active: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Reconciled (parent, leaf) forecasts, each parent with its children on its own.
 
@@ -136,10 +164,18 @@ def mint_reconcile(
     parent_of_child: (n_children,) parent code of each child (0..n_parents-1);
     parent_residuals, leaf_residuals: (n_parents, T) and (n_children, T)
     in-sample one-step residuals y - y^ over a common window of T periods
-    (needed by `mint_shrink` and `wls_var`; NaN counts as 0).
-    A parent without children keeps its base forecast. The parent returned is
-    the sum of the reconciled leaves (equal to the reconciled parent up to
-    rounding).
+    (needed by `mint_shrink` and `wls_var`; NaN counts as 0); active:
+    optional (n_children, h) bool, the children that belong to their parent's
+    hierarchy in each period (None = all).
+    Returns the reconciled parent row of the projection (not a sum of the
+    leaves; the two agree up to rounding) and the reconciled leaves, 0 where a
+    child is not active. A parent without children keeps its base forecast.
+
+    With `active`, a period's hierarchy holds the parent and its active
+    children only: c_h = (1, -a_1h, ..., -a_nh), and the projection
+    y~ = y^ - W c_h (c_h'y^) / (c_h'W c_h) restricted to the active rows equals
+    MinT on the sub-hierarchy with W's rows and columns of the inactive
+    children dropped (c_h is 0 there).
     """
     if method not in RECONCILE_METHODS:
         raise ValueError(f"unknown reconciliation method {method!r}; choose from {list(RECONCILE_METHODS)}")
@@ -153,6 +189,7 @@ def mint_reconcile(
     rank = np.empty(n_children, dtype=np.int64)
     rank[order] = np.arange(n_children) - first[parent_of_child[order]]
     leaf_out = leaf_fc.astype(float).copy()
+    parent_out = parent_fc.astype(float).copy()
     if needs_residuals:
         pr = np.nan_to_num(np.asarray(parent_residuals, dtype=float))
         lr = np.nan_to_num(np.asarray(leaf_residuals, dtype=float))
@@ -169,38 +206,118 @@ def mint_reconcile(
         if needs_residuals:
             res = np.concatenate([pr[ps][:, None, :], lr[kids]], axis=1)  # (G, m, T)
         w = _weight_matrices(method, res, int(n), g)
-        c = np.r_[1.0, -np.ones(int(n))]
-        wc = w @ c  # (G, m)
-        cwc = wc @ c  # (G,)
-        gap = np.einsum("m,gmh->gh", c, y)  # parent minus sum of children
-        ratio = np.divide(gap, cwc[:, None], out=np.zeros_like(gap), where=cwc[:, None] > 0)
-        reconciled = y - wc[:, :, None] * ratio[:, None, :]
+        if active is None or active[kids].all():
+            c = np.r_[1.0, -np.ones(int(n))]
+            wc = w @ c  # (G, m)
+            cwc = wc @ c  # (G,)
+            gap = np.einsum("m,gmh->gh", c, y)  # parent minus sum of children
+            ratio = np.divide(gap, cwc[:, None], out=np.zeros_like(gap), where=cwc[:, None] > 0)
+            reconciled = y - wc[:, :, None] * ratio[:, None, :]
+        else:
+            a = active[kids]  # (G, n, h)
+            y[:, 1:, :] = np.where(a, y[:, 1:, :], 0.0)
+            cm = np.concatenate([np.ones((g, 1, a.shape[2])), -a.astype(float)], axis=1)  # (G, m, h): c_h
+            wcm = w @ cm  # (G, m, h): W c_h
+            cwc = (cm * wcm).sum(axis=1)  # (G, h)
+            gap = (cm * y).sum(axis=1)
+            ratio = np.divide(gap, cwc, out=np.zeros_like(gap), where=cwc > 0)
+            reconciled = y - wcm * ratio[:, None, :]
+            reconciled[:, 1:, :] = np.where(a, reconciled[:, 1:, :], 0.0)
         leaf_out[kids] = reconciled[:, 1:, :]
-    parent_out = parent_sums(leaf_out, parent_of_child, n_parents)
-    lone = sizes == 0
-    parent_out[lone] = parent_fc[lone]
+        parent_out[ps] = reconciled[:, 0, :]
     return parent_out, leaf_out
 
 
-def clip_and_resum(
-    parent: np.ndarray, leaf: np.ndarray, parent_of_child: np.ndarray
+def nonnegative_keeping_parent(
+    parent: np.ndarray, leaf: np.ndarray, parent_of_child: np.ndarray, fallback: np.ndarray | None = None
 ) -> tuple[np.ndarray, np.ndarray, int]:
-    """Negative leaves set to 0 and the parents re-summed from their leaves; returns the count set to 0.
+    """Leaves >= 0 that still sum to `parent`: negative leaves set to 0, their amount taken from the others.
 
-    Parents without children keep their own value, clipped at 0.
+    parent: (n_parents, h); leaf: (n_children, h). In every parent period
+    with a negative leaf, f_j = F_P x max(f_j, 0) / sum_k max(f_k, 0)
+    (Athanasopoulos, Ahmed & Hyndman 2009, forecast proportions, on the
+    reconciled values); where no leaf is above 0, F_P is split by `fallback`
+    (n_children, h; children get 0 where it too sums to 0). A negative F_P
+    leaves its leaves at 0 (no non-negative split reaches it; the checks
+    report it). Other parent periods are returned untouched.
+    Returns the leaves, the (n_parents, h) volume moved (the sum of the
+    negative values set to 0, as a positive number) and the count of leaf
+    values set from negative to 0.
     """
-    negatives = int((leaf < 0).sum())
-    leaf = np.clip(leaf, 0.0, None)
-    sums = parent_sums(leaf, parent_of_child, parent.shape[0])
-    has_children = np.bincount(parent_of_child, minlength=parent.shape[0]) > 0
-    negatives += int((parent[~has_children] < 0).sum())
-    out = np.where(has_children[:, None], sums, np.clip(parent, 0.0, None))
-    return out, leaf, negatives
+    n_parents = parent.shape[0]
+    negative = leaf < 0
+    moved = parent_sums(np.where(negative, -leaf, 0.0), parent_of_child, n_parents)
+    touched = (moved > 0)[parent_of_child]
+    if not touched.any():
+        return leaf, moved, 0
+    positive = np.clip(leaf, 0.0, None)
+    split, _ = split_by_basis(np.clip(parent, 0.0, None), positive, parent_of_child, fallback=fallback)
+    return np.where(touched, split, leaf), moved, int(negative.sum())
 
 
 NEEDS_PARENT = ("top_down", "forecast_proportions", "mint_shrink", "wls_var")
 NEEDS_LEAF = ("bottom_up", "forecast_proportions", "mint_shrink", "wls_var")
 NEEDS_RESIDUALS = ("mint_shrink", "wls_var")
+
+
+@dataclass(frozen=True)
+class Coherent:
+    """One strategy's output. parent (n_parents, h): the parent as the strategy produced it; leaf
+    (n_children, h): leaves summing to it, >= 0; source (n_children, h): what each leaf came from ("basis",
+    "children_forecast", "leaf_forecast", "reconciled"); negatives: reconciled leaf values set from negative to
+    0; moved (n_parents, h): the volume those held below 0, taken from the other children of the period."""
+
+    parent: np.ndarray
+    leaf: np.ndarray
+    source: np.ndarray
+    negatives: int
+    moved: np.ndarray
+
+
+def coherent(
+    strategy: str,
+    parent_fc: np.ndarray,
+    leaf_fc: np.ndarray,
+    parent_of_child: np.ndarray,
+    basis: np.ndarray,
+    parent_residuals: np.ndarray | None = None,
+    leaf_residuals: np.ndarray | None = None,
+    active: np.ndarray | None = None,
+) -> Coherent:
+    """Parent (n_parents, h) and leaf (n_children, h) forecasts of one strategy, leaves >= 0 summing to the parent.
+
+    parent_fc, leaf_fc: base forecasts, already >= 0 (a strategy ignores the
+    grain it does not use); basis: (n_children, h) top-down basis (share or
+    target), also the fallback of `forecast_proportions` and of the
+    non-negative MinT split; active: optional (n_children, h) bool, the
+    children in their parent's hierarchy in each period (None = all). The
+    parent is the strategy's own (module docstring); where no active child can
+    take any of it (top-down basis or both forecast-proportions bases all 0)
+    the leaves are 0 and the parent keeps its value, for the lifecycle or the
+    checks to account for.
+    """
+    n_parents = parent_fc.shape[0]
+    if active is not None:
+        leaf_fc = np.where(active, leaf_fc, 0.0)
+        basis = np.where(active, basis, 0.0)
+    none_moved = np.zeros(parent_fc.shape)
+    if strategy == "top_down":
+        leaf, _ = split_by_basis(parent_fc, basis, parent_of_child)
+        return Coherent(parent_fc.copy(), leaf, np.full(leaf.shape, "basis", dtype=object), 0, none_moved)
+    if strategy == "forecast_proportions":
+        leaf, fell_back = split_by_basis(parent_fc, leaf_fc, parent_of_child, fallback=basis)
+        source = np.where(fell_back, "basis", "children_forecast").astype(object)
+        return Coherent(parent_fc.copy(), leaf, source, 0, none_moved)
+    if strategy == "bottom_up":
+        source = np.full(leaf_fc.shape, "leaf_forecast", dtype=object)
+        return Coherent(parent_sums(leaf_fc, parent_of_child, n_parents), leaf_fc.copy(), source, 0, none_moved)
+    if strategy in NEEDS_RESIDUALS:
+        parent, leaf = mint_reconcile(
+            parent_fc, leaf_fc, parent_of_child, strategy, parent_residuals, leaf_residuals, active
+        )
+        leaf, moved, negatives = nonnegative_keeping_parent(parent, leaf, parent_of_child, basis)
+        return Coherent(parent, leaf, np.full(leaf.shape, "reconciled", dtype=object), negatives, moved)
+    raise ValueError(f"unknown strategy {strategy!r}; choose from {list(dict.fromkeys(NEEDS_PARENT + NEEDS_LEAF))}")
 
 
 def coherent_forecasts(
@@ -212,32 +329,6 @@ def coherent_forecasts(
     parent_residuals: np.ndarray | None = None,
     leaf_residuals: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
-    """Parent (n_parents, h) and leaf (n_children, h) forecasts of one strategy, coherent and >= 0.
-
-    parent_fc, leaf_fc: base forecasts, already >= 0 (a strategy ignores the
-    grain it does not use); basis: (n_children, h) top-down basis (share or
-    target), also the fallback of `forecast_proportions`. Returns parent, leaf,
-    a (n_children, h) code of what each leaf value came from ("basis",
-    "children_forecast", "leaf_forecast", "reconciled") and the number of
-    reconciled values set from negative to 0.
-    """
-    n_parents = parent_fc.shape[0]
-    if strategy == "top_down":
-        leaf, _ = split_by_basis(parent_fc, basis, parent_of_child)
-        parent = parent_sums(leaf, parent_of_child, n_parents)
-        # a parent whose basis is all 0 passes nothing down; keep the sum so the pair stays coherent
-        source = np.full(leaf.shape, "basis", dtype=object)
-        return parent, leaf, source, 0
-    if strategy == "forecast_proportions":
-        leaf, fell_back = split_by_basis(parent_fc, leaf_fc, parent_of_child, fallback=basis)
-        source = np.where(fell_back, "basis", "children_forecast").astype(object)
-        return parent_sums(leaf, parent_of_child, n_parents), leaf, source, 0
-    if strategy == "bottom_up":
-        source = np.full(leaf_fc.shape, "leaf_forecast", dtype=object)
-        return parent_sums(leaf_fc, parent_of_child, n_parents), leaf_fc.copy(), source, 0
-    if strategy in NEEDS_RESIDUALS:
-        parent, leaf = mint_reconcile(parent_fc, leaf_fc, parent_of_child, strategy, parent_residuals, leaf_residuals)
-        parent, leaf, negatives = clip_and_resum(parent, leaf, parent_of_child)
-        source = np.full(leaf.shape, "reconciled", dtype=object)
-        return parent, leaf, source, negatives
-    raise ValueError(f"unknown strategy {strategy!r}; choose from {list(dict.fromkeys(NEEDS_PARENT + NEEDS_LEAF))}")
+    """`coherent` with every child active, as (parent, leaf, source, negatives set to 0) (the backtest's use)."""
+    out = coherent(strategy, parent_fc, leaf_fc, parent_of_child, basis, parent_residuals, leaf_residuals)
+    return out.parent, out.leaf, out.source, out.negatives

@@ -1,4 +1,5 @@
-"""The rows that break a rule of the cycle (empty = the rule holds): shares sum to one, volume only where active.
+"""The rows that break a rule of the cycle (empty = the rule holds): shares sum to one, volume only where active,
+every active parent has children.
 
 Each `find_*` function judges one asset's rows; the stage that makes the
 asset returns them as the failing rows of its check (`pipelines.checks`).
@@ -94,3 +95,52 @@ def find_volume_outside_active_span(
 def find_negative(frame: pd.DataFrame, column: str = "forecast") -> pd.DataFrame:
     """Rows with a negative value."""
     return frame[frame[column] < 0]
+
+
+def find_active_parents_without_children(
+    parent: pd.DataFrame,
+    leaf: pd.DataFrame,
+    spans: pd.DataFrame,
+    products: pd.DataFrame,
+    cycle_date: pd.Timestamp,
+    horizon: int,
+    period: str,
+) -> pd.DataFrame:
+    """Active parents without a child in the forecast, and forecast parents without any child.
+
+    The active parents come from the master data, not from the forecast: a
+    product x site is active when one of its customer spans, intersected with
+    its product's span (`products`) and the horizon, holds at least one
+    period. Each must have rows in `parent_forecast` and at least one child
+    in `statistical_forecast`; a parent with forecast rows but no child row
+    fails too. Rows: the parent, its active spans, the children and parent
+    periods found in the forecast, and why it fails.
+    """
+    cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
+    s_from, s_to = span_bounds(spans, period)
+    p_from, p_to = span_bounds(products, period)
+    pos = lookup(spans, ["product"], products.drop_duplicates("product"))
+    known = pos >= 0
+    at = np.clip(pos, 0, None)
+    first = np.fmax(np.fmax(s_from, np.where(known, p_from[at], np.nan)), cycle_ord)
+    last = np.fmin(np.fmin(s_to, np.where(known, p_to[at], np.nan)), cycle_ord + horizon - 1)
+    active = known & (first <= last)
+    expected = spans.loc[active].groupby(PARENT, sort=True).size().rename("active_spans")
+    children = leaf.groupby(PARENT, sort=True)["customer"].nunique().rename("children_in_forecast")
+    periods = parent.groupby(PARENT, sort=True).size().rename("parent_periods")
+    out = pd.concat([expected, children, periods], axis=1).fillna(0).astype(np.int64)
+    why = np.select(
+        [
+            (out["active_spans"] > 0) & (out["parent_periods"] == 0),
+            (out["active_spans"] > 0) & (out["children_in_forecast"] == 0),
+            (out["parent_periods"] > 0) & (out["children_in_forecast"] == 0),
+        ],
+        [
+            "active in the master data, no row in parent_forecast",
+            "active in the master data, no child in statistical_forecast",
+            "forecast parent without a child in statistical_forecast",
+        ],
+        "",
+    )
+    out["why"] = why
+    return out[why != ""].reset_index()

@@ -40,13 +40,13 @@ import pandas as pd
 from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal
 from pipelines.checks import NO_NEGATIVE_FORECAST, NO_VOLUME_AFTER_PHASE_OUT, NO_VOLUME_OUTSIDE_ACTIVE_SPAN
 from pipelines.engines.base_forecasts import BaseForecasts, base_forecasts
-from pipelines.engines.hierarchy import coherent_forecasts
+from pipelines.engines.hierarchy import Coherent, coherent, parent_sums
 from pipelines.engines.models import ModelSettings, SeriesGrid, series_grid
 from pipelines.engines.proofs import find_negative, find_volume_after_phase_out, find_volume_outside_active_span
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
 from pipelines.results import CheckRows, Log, StageResult, quiet
-from pipelines.vocabulary import AUTO, Basis, ModelGrain, Strategy, values
+from pipelines.vocabulary import AUTO, Basis, ModelGrain, Strategy, ZeroReason, values
 
 PARENT_COLUMNS = [
     "cycle_date",
@@ -55,6 +55,7 @@ PARENT_COLUMNS = [
     "site",
     "period_start",
     "forecast",
+    "strategy_forecast",
     "model",
     "demand_class",
     "model_grain",
@@ -92,6 +93,8 @@ class ForecastResult:
     parent: pd.DataFrame
     leaf: pd.DataFrame
     negatives_clipped: int
+    reconciled_negatives: int = 0  # reconciled leaf values set from negative to 0, their amount moved
+    redistributed: pd.DataFrame | None = None  # parent periods whose negative reconciled leaves were moved
     models: pd.DataFrame | None = None  # one row per forecast series: grain, key, model, parameters
     fitted: pd.DataFrame | None = None  # in-sample one-step fitted values behind MinT / WLS residuals
 
@@ -137,18 +140,19 @@ def combine_strategies(
     base: BaseForecasts,
     parent_of_child: np.ndarray,
     basis: np.ndarray,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
-    """Coherent (parent, leaf, leaf source, negatives set to 0), each parent by its own strategy."""
-    n_parents = len(strategy_of_parent)
+    active: np.ndarray | None = None,
+) -> Coherent:
+    """Each parent made coherent by its own strategy, on its active children (`hierarchy.coherent`)."""
     parent = np.zeros_like(base.parent_fc)
     leaf = np.zeros_like(base.leaf_fc)
+    moved = np.zeros_like(base.parent_fc)
     source = np.empty(leaf.shape, dtype=object)
     negatives = 0
     for strategy in pd.unique(strategy_of_parent):  # a handful of strategies, not a loop over series
         ps = strategy_of_parent == strategy
         cs = ps[parent_of_child]
         remap = np.cumsum(ps) - 1
-        p, l, src, neg = coherent_forecasts(
+        out = coherent(
             strategy,
             base.parent_fc[ps],
             base.leaf_fc[cs],
@@ -156,11 +160,11 @@ def combine_strategies(
             basis[cs],
             None if base.parent_res is None else base.parent_res[ps],
             None if base.leaf_res is None else base.leaf_res[cs],
+            None if active is None else active[cs],
         )
-        parent[ps], leaf[cs], source[cs] = p, l, src
-        negatives += neg
-    assert n_parents == parent.shape[0]
-    return parent, leaf, source, negatives
+        parent[ps], leaf[cs], source[cs], moved[ps] = out.parent, out.leaf, out.source, out.moved
+        negatives += out.negatives
+    return Coherent(parent, leaf, source, negatives, moved)
 
 
 def forecast_cycle(
@@ -211,22 +215,27 @@ def forecast_cycle(
     basis = np.where(use_target, target_m, share_m)
 
     strategy_of_parent = parents["product_class"].map(strategies).to_numpy()
-    parent_fc, leaf_fc, source, reconciled_negatives = combine_strategies(
-        strategy_of_parent, base, parent_of_child, basis
-    )
-    basis = np.where(source == "basis", np.where(use_target, Basis.REINITIALIZED_TARGET, Basis.PERIOD_SHARE), source)
-
-    # lifecycle: no leaf volume outside a child's active periods, none in a parent period that no
-    # child can carry (a share-split parent: no child holds a share; otherwise: no child is active);
-    # parents are then re-summed from their leaves so every strategy stays coherent
+    # each strategy works on the children active in the period: an inactive child takes no volume
     active = _active_matrix(children, starts, period)
+    made = combine_strategies(strategy_of_parent, base, parent_of_child, basis, active)
+    strategy_fc, leaf_fc = made.parent, made.leaf
+    basis = np.where(
+        made.source == "basis", np.where(use_target, Basis.REINITIALIZED_TARGET, Basis.PERIOD_SHARE), made.source
+    )
+
+    # lifecycle: a parent period that no child can carry is set to 0 with its zero_reason (a share-split
+    # parent: no child holds a share; otherwise: no child is active, or none took any of the volume).
+    # Every other parent period keeps the strategy's value, and its leaves must sum to it (the check
+    # children_sum_to_parent compares them with strategy_forecast, never with a sum of the leaves)
     zero_reason = _parent_reasons(target, parents, starts)
-    no_active_child = np.isin(zero_reason, ["product_not_active", "no_active_child"])
-    zeroed = np.where((strategy_of_parent == "top_down")[:, None], pd.notna(zero_reason), no_active_child)
+    no_active_child = np.isin(zero_reason, [ZeroReason.PRODUCT_NOT_ACTIVE, ZeroReason.NO_ACTIVE_CHILD])
+    carried = parent_sums(np.abs(leaf_fc), parent_of_child, n_parents) > 0
+    zeroed = pd.notna(zero_reason) & (
+        (strategy_of_parent == Strategy.TOP_DOWN)[:, None] | no_active_child | ~carried
+    )
     zero_reason = np.where(zeroed, zero_reason, None)
-    leaf_fc = np.where(active & ~zeroed[parent_of_child], leaf_fc, 0.0)
-    parent_fc = np.zeros_like(parent_fc)
-    np.add.at(parent_fc, parent_of_child, leaf_fc)
+    leaf_fc = np.where(zeroed[parent_of_child], 0.0, leaf_fc)
+    parent_fc = np.where(zeroed, 0.0, strategy_fc)
     parent_model = np.where(strategy_of_parent == "bottom_up", "bottom_up", base.parent_label)
     grain = np.select(
         [strategy_of_parent == "top_down", strategy_of_parent == "bottom_up"],
@@ -239,6 +248,7 @@ def forecast_cycle(
     parent_out.insert(0, "cycle_date", cycle_date)
     parent_out["period_start"] = np.tile(starts.values, n_parents)
     parent_out["forecast"] = parent_fc.ravel()
+    parent_out["strategy_forecast"] = strategy_fc.ravel()
     parent_out["model"] = np.repeat(parent_model, horizon)
     parent_out["demand_class"] = np.repeat(base.parent_demand, horizon)
     parent_out["model_grain"] = np.repeat(grain, horizon)
@@ -268,10 +278,16 @@ def forecast_cycle(
         ignore_index=True,
     )
     fitted.insert(0, "cycle_date", cycle_date)
+    moved = made.moved.ravel()
+    redistributed = parent_out.loc[moved > 0, PARENT + ["period_start", "strategy_forecast"]].assign(
+        volume_moved=moved[moved > 0]
+    )
     return ForecastResult(
         parent=parent_out[PARENT_COLUMNS + ["strategy"]],
         leaf=leaf_out[LEAF_COLUMNS],
-        negatives_clipped=base.negatives + reconciled_negatives,
+        negatives_clipped=base.negatives + made.negatives,
+        reconciled_negatives=made.negatives,
+        redistributed=redistributed.reset_index(drop=True),
         models=models[MODEL_COLUMNS],
         fitted=fitted[FITTED_COLUMNS],
     )
@@ -349,11 +365,13 @@ def run(
     parent, leaf, models, fitted = result.parent, result.leaf, result.models, result.fitted
     first = parent.drop_duplicates(["product", "site"])
     used = first.groupby(["product_class", "strategy", "demand_class", "model"]).size().rename("parents").reset_index()
-    zeroed = parent[parent["zero_reason"].notna()].groupby("zero_reason").size().rename("parent_periods").reset_index()
-    negatives = pd.concat(
-        [find_negative(parent).assign(grain="parent"), find_negative(leaf).assign(grain="leaf")], ignore_index=True
+    zeroed = (
+        parent[parent["zero_reason"].notna()]
+        .groupby("zero_reason")
+        .agg(parent_periods=("forecast", "size"), strategy_volume_not_planned=("strategy_forecast", "sum"))
+        .reset_index()
     )
-    period = settings.period
+    moved = result.redistributed if result.redistributed is not None else pd.DataFrame()
     return StageResult(
         outputs={
             "parent_forecast": parent,
@@ -371,10 +389,19 @@ def run(
                 .reset_index(),
                 "negatives_set_to_zero": result.negatives_clipped,
                 "periods_set_to_zero_by_reason": zeroed,
+                "parent_periods_set_to_zero": int(parent["zero_reason"].notna().sum()),
             },
             "statistical_forecast": {
                 "basis": leaf.groupby("basis").size().rename("rows").reset_index(),
                 "leaf_total": float(leaf["forecast"].sum()),
+                # MinT / WLS leaves below 0 set to 0, their amount taken in proportion from the other
+                # children of the period (pipelines.engines.hierarchy.nonnegative_keeping_parent)
+                "reconciled_negatives_set_to_zero": result.reconciled_negatives,
+                "parent_periods_redistributed": len(moved),
+                "volume_redistributed": float(moved["volume_moved"].sum()) if len(moved) else 0.0,
+                "redistributed_parent_periods": moved.sort_values("volume_moved", ascending=False)
+                if len(moved)
+                else "none",
             },
             "forecast_models": {
                 "series_by_model": models.groupby(["grain", "product_class", "model"])
@@ -386,11 +413,29 @@ def run(
                 "series": int(fitted.drop_duplicates(["grain", "product", "site", "customer"]).shape[0])
             },
         },
-        checks={
-            NO_VOLUME_AFTER_PHASE_OUT: CheckRows(find_volume_after_phase_out(leaf, customer_spans, period)),
-            NO_VOLUME_OUTSIDE_ACTIVE_SPAN: CheckRows(
-                find_volume_outside_active_span(parent, leaf, customer_spans, products, period)
-            ),
-            NO_NEGATIVE_FORECAST: CheckRows(negatives),
-        },
+        checks=forecast_checks(parent, leaf, customer_spans, products, settings.period),
     )
+
+
+def forecast_checks(
+    parent_forecast: pd.DataFrame,
+    statistical_forecast: pd.DataFrame,
+    customer_spans: pd.DataFrame,
+    products: pd.DataFrame,
+    period: str,
+) -> dict[str, CheckRows]:
+    """The forecast's checks, judged from its two tables and the master data (`pipelines.engines.proofs`)."""
+    negatives = pd.concat(
+        [
+            find_negative(parent_forecast).assign(grain="parent"),
+            find_negative(statistical_forecast).assign(grain="leaf"),
+        ],
+        ignore_index=True,
+    )
+    return {
+        NO_VOLUME_AFTER_PHASE_OUT: CheckRows(find_volume_after_phase_out(statistical_forecast, customer_spans, period)),
+        NO_VOLUME_OUTSIDE_ACTIVE_SPAN: CheckRows(
+            find_volume_outside_active_span(parent_forecast, statistical_forecast, customer_spans, products, period)
+        ),
+        NO_NEGATIVE_FORECAST: CheckRows(negatives),
+    }
