@@ -145,16 +145,24 @@ CHECKS: tuple[Check, ...] = (
         CHILDREN_SUM_TO_PARENT,
         "reconciliation",
         True,
-        "Proves the leaf forecast of every parent and period sums to the parent forecast within "
-        f"{RELATIVE_TOLERANCE:g} relative (one unit floor). When it fails, the listed parents were split wrongly: "
-        "inspect their rows in statistical_forecast.",
+        "Proves the leaf forecast of every parent and period sums to the parent forecast as the class's strategy "
+        "produced it (parent_forecast.strategy_forecast: the model's forecast, the reconciled parent or the sum of the "
+        f"active children's own forecasts; never a sum of the leaves) within {RELATIVE_TOLERANCE:g} relative (one "
+        "unit floor), and that the final parent forecast is that value. Periods the lifecycle set to 0 (zero_reason) "
+        "are left out of that comparison, counted by reason in the metadata, and must carry no leaf volume. When it "
+        "fails, the listed parent periods lost or gained volume between the strategy and the leaves (the why column "
+        "says which side): inspect their rows in statistical_forecast and parent_forecast and report the split.",
     ),
     Check(
         EVERY_ACTIVE_PARENT_HAS_CHILDREN,
         "reconciliation",
         True,
-        "Proves every forecast parent has at least one active child to carry its volume. "
-        "When it fails, add customer spans for the listed product x site or retire the product.",
+        "Proves every active parent has at least one child in the forecast to carry its volume: the active parents "
+        "are taken from the master data (a product active in the horizon with a customer span active in it, at that "
+        "site), not from the forecast, and a forecast parent without a child fails too. When it fails, the why "
+        "column says which: a parent missing from parent_forecast or statistical_forecast is a defect of the cycle "
+        "to report; a forecast parent without a child needs customer spans for the listed product x site, or the "
+        "product retired.",
     ),
     Check(
         MEASURES_SUM_TO_PARENT,
