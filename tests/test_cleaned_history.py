@@ -337,6 +337,46 @@ def test_tampered_quantity_is_an_unexplained_change(make_raw, products, spans, c
     assert found["unexplained"].tolist() == pytest.approx([5.0])
 
 
+def test_changes_that_cancel_inside_a_series_are_still_unexplained(make_raw, products, spans, config):
+    raw = make_raw([("P1", "S1", "C1", "2026-01-05", "2"), ("P1", "S1", "C1", "2026-01-12", "6")])
+    res = clean_history(raw, products, spans, config)
+    cleaned = res.cleaned.copy()
+    c1 = cleaned["customer"] == "C1"
+    # +3 in week 01-05 and -3 in week 01-12: the series total still agrees (8), each period does not
+    cleaned.loc[c1 & (cleaned["period_start"] == ts("2026-01-05")), "quantity"] += 3
+    cleaned.loc[c1 & (cleaned["period_start"] == ts("2026-01-12")), "quantity"] -= 3
+    found = find_unexplained_changes(cleaned, res.corrections)
+    got = found.assign(week=found["period_start"].dt.strftime("%Y-%m-%d"))[["customer", "week", "unexplained"]]
+    assert got.values.tolist() == [["C1", "2026-01-05", 3.0], ["C1", "2026-01-12", -3.0]]
+
+
+def test_every_raw_line_is_accounted_per_series_and_named_when_not(make_raw, products, spans, config):
+    from pipelines.engines.proofs import find_unaccounted_lines
+
+    raw = make_raw(
+        [
+            ("P1", "S1", "C1", "2026-01-05", "3"),
+            ("P1", "S1", "C1", "2026-01-06", "2"),
+            ("P1", "S1", "C2", "2026-01-12", "4"),
+            ("P9", "S1", "C1", "2026-01-12", "4"),  # unknown_product, rejected
+        ]
+    )
+    res = clean_history(raw, products, spans, config)
+    assert find_unaccounted_lines(raw, res.cleaned, res.rejected).empty
+    # C1's week 01-05 says it summed 3 lines; the raw file has 2 used lines of C1
+    cleaned = res.cleaned.copy()
+    cleaned.loc[(cleaned["customer"] == "C1") & (cleaned["period_start"] == ts("2026-01-05")), "lines"] += 1
+    bad = find_unaccounted_lines(raw, cleaned, res.rejected)
+    assert bad[["customer", "raw_lines", "used_lines", "cleaned_lines"]].values.tolist() == [["C1", 2, 2, 3]]
+    # the rejected line of P9 lost from rejected_rows: its series (as written) has a line nobody took
+    bad = find_unaccounted_lines(raw, res.cleaned, res.rejected.iloc[0:0])
+    assert bad[["product", "customer", "used_lines", "cleaned_lines"]].values.tolist() == [["P9", "C1", 1, 0]]
+    # a line rejected twice is named by its file and row
+    twice = pd.concat([res.rejected, res.rejected], ignore_index=True)
+    bad = find_unaccounted_lines(raw, res.cleaned, twice)
+    assert bad[["source_file", "source_row", "why"]].values.tolist()[0] == ["history.csv", 4, "raw line rejected twice"]
+
+
 # ------------------------------------------------------------------ outliers
 
 

@@ -125,15 +125,21 @@ def correction_rows(
 
 
 def find_unexplained_changes(cleaned: pd.DataFrame, corrections: pd.DataFrame, tolerance: float = 1e-6) -> pd.DataFrame:
-    """Series whose cleaned total differs from raw total + audited corrections.
+    """Series periods whose cleaned value differs from the raw net + the audited corrections of that period.
 
-    Per series: sum(raw_quantity) + sum(delta) must equal sum(quantity).
+    Per product x site x customer and period: raw_quantity + sum(delta) must
+    equal quantity, so a change cannot hide behind an opposite change in
+    another period of the series. A correction row for a period cleaned_history
+    does not hold is unexplained too.
     """
-    totals = cleaned.groupby(LEAF, sort=True, observed=True)[["raw_quantity", "quantity"]].sum()
-    moved = corrections.groupby(LEAF, sort=True, observed=True)["delta"].sum()
-    totals["corrections"] = moved.reindex(totals.index).fillna(0.0)
-    totals["unexplained"] = totals["quantity"] - totals["raw_quantity"] - totals["corrections"]
-    return totals[totals["unexplained"].abs() > tolerance].reset_index()
+    key = LEAF + ["period_start"]
+    cells = cleaned[key + ["raw_quantity", "quantity"]].set_index(key)
+    moved = corrections.groupby(key, sort=True, observed=True)["delta"].sum().rename("corrections")
+    out = cells.join(moved, how="outer")
+    out["corrections"] = out["corrections"].fillna(0.0)
+    out["unexplained"] = out["quantity"] - out["raw_quantity"] - out["corrections"]
+    bad = ~(out["unexplained"].abs() <= tolerance)  # NaN (a correction without its period) is unexplained
+    return out[bad].reset_index()
 
 
 def line_accounting(raw_lines: int, cleaned: pd.DataFrame, rejected: pd.DataFrame) -> dict[str, int]:

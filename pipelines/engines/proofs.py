@@ -144,3 +144,36 @@ def find_active_parents_without_children(
     )
     out["why"] = why
     return out[why != ""].reset_index()
+
+
+def find_unaccounted_lines(raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: pd.DataFrame) -> pd.DataFrame:
+    """Raw lines that are neither summed into cleaned_history nor rejected, or counted twice, by series.
+
+    Every raw line (source_file, source_row) is either rejected (a row of
+    `rejected` naming it) or used; the used lines of a product x site x
+    customer (keys as written) must be the `lines` cleaned_history summed for
+    it. Rows: a rejected row naming no raw line or a line twice
+    (source_file, source_row), or a series whose counts differ (its keys,
+    raw_lines, rejected_lines, used_lines = raw - rejected, cleaned_lines).
+    """
+    line = ["source_file", "source_row"]
+    raw_ids = pd.MultiIndex.from_frame(raw[line].astype({"source_row": np.int64}))
+    rej_ids = pd.MultiIndex.from_frame(rejected[line].astype({"source_row": np.int64}))
+    unknown = rejected.loc[~rej_ids.isin(raw_ids), line + LEAF].assign(why="rejected row is no raw line")
+    twice = rejected.loc[rej_ids.duplicated(keep="first"), line + LEAF].assign(why="raw line rejected twice")
+    in_rejected = raw_ids.isin(rej_ids)
+    per_series = pd.concat(
+        [
+            raw.groupby(LEAF, sort=True).size().rename("raw_lines"),
+            raw.loc[in_rejected].groupby(LEAF, sort=True).size().rename("rejected_lines"),
+            cleaned.groupby(LEAF, sort=True, observed=True)["lines"].sum().rename("cleaned_lines"),
+        ],
+        axis=1,
+    ).fillna(0).astype(np.int64)
+    per_series["used_lines"] = per_series["raw_lines"] - per_series["rejected_lines"]
+    off = per_series[per_series["used_lines"] != per_series["cleaned_lines"]].reset_index()
+    off["why"] = "used lines of the series differ from the lines cleaned_history summed"
+    rows = [f for f in (unknown, twice, off) if len(f)]
+    if not rows:
+        return off.iloc[0:0]
+    return pd.concat(rows, ignore_index=True)

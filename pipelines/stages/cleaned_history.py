@@ -106,6 +106,7 @@ from pipelines.engines.cleansing import (
     shortage_cells,
 )
 from pipelines.engines.outliers import judge_outliers, rolling_median, rule_parameters, seasonal_component
+from pipelines.engines.proofs import find_unaccounted_lines
 from pipelines.engines.report_charts import corrections_chart
 from pipelines.keys import LEAF, factorize, lookup
 from pipelines.results import CheckRows, Log, StageResult, quiet
@@ -358,9 +359,6 @@ def run(
         **counts,
     }
     by_reason = rejected.groupby("reason").size().rename("lines").reset_index()
-    bad = rejected[rejected["reason"] != "on_or_after_cycle_date"]
-    limit = settings.max_rejected_share
-    fraction = len(bad) / len(raw_history) if len(raw_history) else 0.0
     return StageResult(
         outputs={
             "cleaned_history": cleaned,
@@ -373,18 +371,31 @@ def run(
             "rejected_rows": {"by_reason": by_reason},
             "history_corrections": {"by_rule": by_rule},
         },
-        checks={
-            EVERY_RAW_ROW_ACCOUNTED: CheckRows(
-                pd.DataFrame([counts]) if counts["unaccounted"] else pd.DataFrame(), counts
-            ),
-            CORRECTIONS_EXPLAIN_CHANGES: CheckRows(find_unexplained_changes(cleaned, corrections)),
-            REJECTED_ROWS_WITHIN_LIMIT: CheckRows(
-                bad if fraction > limit else bad.iloc[0:0],
-                {
-                    "rejected": f"{len(bad)} of {len(raw_history)} lines ({fraction:.3%}; limit {limit:.3%})",
-                    "by_reason": bad.groupby("reason").size().rename("lines").reset_index(),
-                },
-            ),
-        },
+        checks=history_checks(raw_history, cleaned, rejected, corrections, settings),
         files={settings.picture: png},
     )
+
+
+def history_checks(
+    raw_history: pd.DataFrame,
+    cleaned: pd.DataFrame,
+    rejected: pd.DataFrame,
+    corrections: pd.DataFrame,
+    settings: CleaningSettings,
+) -> dict[str, CheckRows]:
+    """The checks of cleaned_history and rejected_rows, judged from the stage's tables and the raw lines."""
+    counts = line_accounting(len(raw_history), cleaned, rejected)
+    bad = rejected[rejected["reason"] != "on_or_after_cycle_date"]
+    limit = settings.max_rejected_share
+    fraction = len(bad) / len(raw_history) if len(raw_history) else 0.0
+    return {
+        EVERY_RAW_ROW_ACCOUNTED: CheckRows(find_unaccounted_lines(raw_history, cleaned, rejected), counts),
+        CORRECTIONS_EXPLAIN_CHANGES: CheckRows(find_unexplained_changes(cleaned, corrections)),
+        REJECTED_ROWS_WITHIN_LIMIT: CheckRows(
+            bad if fraction > limit else bad.iloc[0:0],
+            {
+                "rejected": f"{len(bad)} of {len(raw_history)} lines ({fraction:.3%}; limit {limit:.3%})",
+                "by_reason": bad.groupby("reason").size().rename("lines").reset_index(),
+            },
+        ),
+    }
