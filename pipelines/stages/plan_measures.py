@@ -316,7 +316,7 @@ def plan_measures(
     )
 
 
-def run(
+def split(
     parent_forecast: pd.DataFrame,
     statistical_forecast: pd.DataFrame,
     reinitialized_target: pd.DataFrame,
@@ -328,9 +328,8 @@ def run(
     pins: pd.DataFrame,
     cycle_calendar: pd.DataFrame,
     settings: PlanSettings,
-    log: Log = quiet,
-) -> StageResult:
-    """The plan's measures at leaf grain, with the share bases' fallbacks and the plan's three checks."""
+) -> tuple[PlanResult, dict[str, pd.DataFrame]]:
+    """The plan's split from the stage's input tables: its result and the share bases it made."""
     cycle = cycle_calendar.iloc[0]
     check_windows_fit(settings.basis_windows(), int(cycle["history_periods"]), settings.source)
     cycle_date = pd.Timestamp(cycle["cycle_date"])
@@ -348,6 +347,37 @@ def run(
         settings,
         cycle_date,
         bases,
+    )
+    return result, bases
+
+
+def plan_checks(plan: pd.DataFrame, result: PlanResult, settings: PlanSettings) -> dict[str, CheckRows]:
+    """The plan's checks: `plan` judged against the parent values, pins and overflow of the split."""
+    return {
+        MEASURES_SUM_TO_PARENT: CheckRows(find_sum_violations(plan, result.parents, settings.measures)),
+        PINS_KEPT: CheckRows(find_pins_not_kept(plan, result.pins_applied, result.pins_not_applied)),
+        PINS_WITHIN_PARENT: CheckRows(result.overflow),
+    }
+
+
+def run(
+    parent_forecast: pd.DataFrame,
+    statistical_forecast: pd.DataFrame,
+    reinitialized_target: pd.DataFrame,
+    share_tables: pd.DataFrame,
+    lifecycle_history: pd.DataFrame,
+    products: pd.DataFrame,
+    customer_spans: pd.DataFrame,
+    adjustments: pd.DataFrame,
+    pins: pd.DataFrame,
+    cycle_calendar: pd.DataFrame,
+    settings: PlanSettings,
+    log: Log = quiet,
+) -> StageResult:
+    """The plan's measures at leaf grain, with the share bases' fallbacks and the plan's three checks."""
+    result, bases = split(
+        parent_forecast, statistical_forecast, reinitialized_target, share_tables, lifecycle_history, products,
+        customer_spans, adjustments, pins, cycle_calendar, settings,
     )
     plan = result.plan
     basis_fallbacks = [
@@ -374,9 +404,5 @@ def run(
     return StageResult(
         outputs={"plan_measures": plan},
         metadata={"plan_measures": figures},
-        checks={
-            MEASURES_SUM_TO_PARENT: CheckRows(find_sum_violations(plan, result.parents, settings.measures)),
-            PINS_KEPT: CheckRows(find_pins_not_kept(plan, result.pins_applied, result.pins_not_applied)),
-            PINS_WITHIN_PARENT: CheckRows(result.overflow),
-        },
+        checks=plan_checks(plan, result, settings),
     )

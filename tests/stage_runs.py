@@ -1,0 +1,67 @@
+"""A cycle's tables made by the stages' own runs, in graph order, without Dagster: correct outputs to corrupt.
+
+`run_partition` calls each stage's `run` exactly as its asset does (the specs
+of `assets.factory.SPECS`, the partition's narrowed config, every output
+validated by its pandera model before the next stage reads it), for one cycle
+and product class, and returns every table by name. Without `backtest` the
+backtest is left out (its table is empty), so the class's strategy must be
+configured, not `auto`. The share drift, which reads the class's previous
+cycle from the store, is given this cycle's own share table as the previous
+one; the report's files are made but not written.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import pandas as pd
+import yaml
+
+from pipelines.config import PlanningConfig, parse_config
+from pipelines.partitions import narrow_config
+from pipelines.tables import MODELS
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO = ROOT / "data" / "demo"
+
+
+@dataclass
+class PartitionRun:
+    config: PlanningConfig  # the partition's narrowed config
+    tables: dict[str, pd.DataFrame]
+    settings: dict[str, object]  # stage (first table) -> the settings object its run got
+
+
+def demo_config(classes: dict[str, dict] | None = None, **sections) -> PlanningConfig:
+    """config/planning.yaml over the demo data; `classes` updates product classes' keys (e.g. a strategy), the other
+    keyword arguments replace whole sections (e.g. backtest)."""
+    data = yaml.safe_load((ROOT / "config" / "planning.yaml").read_text())
+    data["inputs"]["folder"] = str(DEMO)
+    for name, keys in (classes or {}).items():
+        data["product_classes"][name].update(keys)
+    data.update(sections)
+    return parse_config(data, ROOT / "config" / "planning.yaml")
+
+
+def run_partition(config: PlanningConfig, cycle: str, product_class: str, backtest: bool = False) -> PartitionRun:
+    from assets.factory import Partition, graph_order
+    from pipelines import definitions  # noqa: F401  (makes every stage asset, so SPECS holds them all)
+
+    part = Partition(narrow_config(config, cycle, product_class), config, cycle, product_class)
+    tables: dict[str, pd.DataFrame] = {}
+    settings: dict[str, object] = {}
+    for spec in graph_order():
+        first = spec.tables[0].name
+        if first == "backtest_accuracy" and not backtest:
+            columns = MODELS[first].to_schema().columns
+            tables[first] = pd.DataFrame({c: pd.Series(dtype=object) for c in columns})
+            continue
+        frames = {name: tables[name] for name in spec.ins}
+        if first == "share_drift":
+            frames.update(previous=tables["share_tables"], previous_cycle=cycle)
+        settings[first] = spec.settings(part)
+        result = spec.run(**frames, settings=settings[first])
+        for table in spec.tables:
+            tables[table.name] = MODELS[table.name].validate(result.outputs[table.name])
+    return PartitionRun(part.config, tables, settings)
