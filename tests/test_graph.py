@@ -157,59 +157,71 @@ def test_the_models_volume_reaches_the_leaves_or_is_set_to_zero_with_its_reason(
     # hold, period by period; only periods the lifecycle set to 0 (with their zero_reason) differ.
     # Reference: statsforecast's own models on each parent's series built here from the stored lifecycle
     # history (weekly sums from the first week with demand to the week before the cycle, zero-filled), the model
-    # the cycle recorded for it in forecast_models (consumables: auto_ets for smooth and erratic parents,
-    # croston_sba for the others; config/planning.yaml). Tolerance 1e-7 relative: the same library on the same
-    # numbers, summed in another order.
+    # the cycle recorded for it in forecast_models (config/planning.yaml: auto_ets for smooth consumables,
+    # croston_sba for intermittent spares). Tolerance 1e-7 relative: the same library on the same numbers.
     from statsforecast import StatsForecast
     from statsforecast.models import AutoETS, CrostonSBA
 
     _, store, _ = demo_cycle
-    history = read_table(store, "lifecycle_history", product_class="consumables")
-    parent = read_table(store, "parent_forecast", product_class="consumables")
-    leaf = read_table(store, "statistical_forecast", product_class="consumables")
-    models = read_table(store, "forecast_models", product_class="consumables").set_index(["product", "site"])
-    assert set(parent["strategy"]) == {"top_down"}
     cycle = pd.Timestamp("2026-11-30")
-    weekly = history.groupby(["product", "site", "period_start"])["quantity"].sum()
-    make = {"croston_sba": CrostonSBA, "auto_ets": lambda: AutoETS(season_length=1)}
-    frames, chosen = [], {}
-    for (product, site), row in models[models["grain"] == "parent"].iterrows():
-        if row["model"] not in make:
-            continue
-        y = weekly.loc[(product, site)]
-        y = y[y.index < cycle]
-        y = y.loc[y[y != 0].index.min():]
-        weeks = pd.date_range(y.index.min(), cycle - pd.Timedelta(days=7), freq="W-MON")
-        frames.append(pd.DataFrame({"unique_id": f"{product}|{site}", "ds": weeks,
-                                    "y": y.reindex(weeks, fill_value=0.0).to_numpy()}))
-        chosen[f"{product}|{site}"] = row["model"]
-    assert set(chosen.values()) == set(make) and len(chosen) >= 10
-    expected = []
-    for model, factory in make.items():
-        ids = [k for k, m in chosen.items() if m == model]
-        df = pd.concat([f for f in frames if f["unique_id"].iloc[0] in ids], ignore_index=True)
-        fc = StatsForecast(models=[factory()], freq="W-MON").forecast(df=df, h=26)
-        expected.append(fc.set_axis(["unique_id", "ds", "model_forecast"], axis=1))
-    expected = pd.concat(expected, ignore_index=True)
-    expected[["product", "site"]] = expected["unique_id"].str.split("|", expand=True)
-    expected["model_forecast"] = expected["model_forecast"].clip(lower=0)  # the cycle sets negatives to 0
-    sums = leaf.groupby(["product", "site", "period_start"])["forecast"].sum().rename("leaf_sum").reset_index()
-    got = expected.rename(columns={"ds": "period_start"}).merge(
-        parent[["product", "site", "period_start", "forecast", "strategy_forecast", "zero_reason"]],
-        on=["product", "site", "period_start"], validate="1:1",
-    ).merge(sums, on=["product", "site", "period_start"], validate="1:1")
-    assert len(got) == 26 * len(chosen)
+    make = {"auto_ets(season_length=1)": lambda: AutoETS(season_length=1), "croston_sba": CrostonSBA}
+    key = ["product", "site", "period_start"]
+    checked = []
+    for product_class in ("consumables", "spares"):
+        history = read_table(store, "lifecycle_history", product_class=product_class)
+        parent = read_table(store, "parent_forecast", product_class=product_class)
+        leaf = read_table(store, "statistical_forecast", product_class=product_class)
+        models = read_table(store, "forecast_models", product_class=product_class)
+        top_down = parent.loc[parent["strategy"] == "top_down", ["product", "site"]].drop_duplicates()
+        models = models[(models["grain"] == "parent") & models["model"].isin(list(make))].merge(top_down)
+        weekly = history.groupby(["product", "site", "period_start"])["quantity"].sum()
+        for label, factory in make.items():
+            frames = []
+            for product, site in models.loc[models["model"] == label, ["product", "site"]].itertuples(index=False):
+                y = weekly.loc[(product, site)]
+                y = y[y.index < cycle]
+                y = y.loc[y[y != 0].index.min():]
+                weeks = pd.date_range(y.index.min(), cycle - pd.Timedelta(days=7), freq="W-MON")
+                frames.append(pd.DataFrame({"unique_id": f"{product}|{site}", "ds": weeks,
+                                            "y": y.reindex(weeks, fill_value=0.0).to_numpy()}))
+            if not frames:
+                continue
+            fc = StatsForecast(models=[factory()], freq="W-MON").forecast(df=pd.concat(frames), h=26)
+            fc = fc.set_axis(["unique_id", "period_start", "model_forecast"], axis=1)
+            fc[["product", "site"]] = fc["unique_id"].str.split("|", expand=True)
+            fc["model_forecast"] = fc["model_forecast"].clip(lower=0)  # the cycle sets a negative forecast to 0
+            sums = leaf.groupby(key)["forecast"].sum().rename("leaf_sum").reset_index()
+            got = fc.merge(parent[key + ["forecast", "strategy_forecast", "zero_reason"]], on=key, validate="1:1")
+            checked.append(got.merge(sums, on=key, validate="1:1").assign(product_class=product_class))
+    got = pd.concat(checked, ignore_index=True)
+    assert set(got["product_class"]) == {"consumables", "spares"} and got["unique_id"].nunique() >= 40
+    assert (got.groupby("unique_id").size() == 26).all()
     # the stored strategy value is the model's forecast, recomputed here
     np.testing.assert_allclose(got["strategy_forecast"], got["model_forecast"], rtol=1e-7, atol=1e-9)
     planned = got[got["zero_reason"].isna()]
     zeroed = got[got["zero_reason"].notna()]
-    # where the lifecycle left it alone, the customers hold the model's volume
+    # where the lifecycle left it alone, the customers hold the model's volume, and so does the final forecast
     np.testing.assert_allclose(planned["leaf_sum"], planned["model_forecast"], rtol=1e-7, atol=1e-9)
     np.testing.assert_allclose(planned["forecast"], planned["model_forecast"], rtol=1e-7, atol=1e-9)
-    # and where it set a period to 0 it says why, and the customers hold nothing (the demo's FILT-003 ends
-    # inside the horizon; data/demo/README.md)
-    assert len(zeroed) > 0 and set(zeroed["zero_reason"]) <= {"product_not_active", "no_active_child"}
-    assert (zeroed["leaf_sum"] == 0).all() and (zeroed["forecast"] == 0).all() and (zeroed["model_forecast"] > 0).any()
+    # where it set a period to 0 it says why, and nobody holds the model's volume there (the demo's FILT-003
+    # ends inside the horizon; data/demo/README.md)
+    assert len(zeroed) > 0 and set(zeroed["zero_reason"]) == {"product_not_active"}
+    assert (zeroed["leaf_sum"] == 0).all() and (zeroed["forecast"] == 0).all()
+    assert (zeroed["model_forecast"] > 0).all()
+
+
+def test_the_reconciliation_counts_the_periods_the_lifecycle_set_to_zero(demo_cycle):
+    result, store, _ = demo_cycle
+    rc = read_table(store, "reconciliation", product_class="consumables")
+    zeroed = rc[rc["zero_reason"].notna()]
+    # left out of the comparison with the strategy's value: their expected leaf sum is 0, not the model's
+    assert len(zeroed) == 26 and (zeroed["expected"] == 0).all() and (zeroed["strategy_forecast"] > 0).all()
+    check = checks_of(result)["reconciliation:children_sum_to_parent"]
+    assert check.passed
+    assert "1404 parent periods with the strategy's parent forecast; 26 set to 0" in check.metadata["compared"].value
+    meta = metadata_of(result, "reconciliation")["consumables"]
+    assert meta["parent_periods_set_to_zero_by_lifecycle"].value == 26
+    assert meta["parent_periods_compared_with_strategy_forecast"].value == 1404
 
 
 def test_every_raw_line_is_used_or_rejected(demo_cycle):

@@ -511,3 +511,36 @@ def test_leaf_grain_child_is_forecast_zero_outside_its_active_periods(make_histo
     assert leaf_values(res) == pytest.approx({("C1", H1): 4.0, ("C2", H1): 0.0, ("C1", H2): 0.0, ("C2", H2): 8.0})
     assert res.parent["forecast"].tolist() == pytest.approx([4.0, 8.0])
     assert res.parent["zero_reason"].isna().all()
+
+
+def test_forecast_proportions_split_among_the_active_children_only(make_history, make_children, make_config):
+    history = constant_history(make_history, {"C1": 4, "C2": 8})
+    children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")]).assign(
+        first_active_period=[H1, H1], last_active_period=[H1, H2]  # C1 ends after H1
+    )
+    tg = targets([("P1", "S1", "C1", H1, 1.0), ("P1", "S1", "C2", H1, 2.0), ("P1", "S1", "C1", H2, 0.0, 0.0),
+                  ("P1", "S1", "C2", H2, 1.0, 1.0)])
+    res = forecast_cycle(history, children, tg, auto_cfg(make_config), CYCLE, chosen={"a": "forecast_proportions"})
+    # parent 12 (Croston of a constant 12); H1: own forecasts 4 : 8 -> 4 and 8; H2: C1 is not active, so C2's
+    # own forecast is the only proportion and C2 takes all 12 (a split that gave C1 its 4 and then set it to 0
+    # would lose 4 of the model's 12)
+    assert leaf_values(res) == pytest.approx({("C1", H1): 4.0, ("C2", H1): 8.0, ("C1", H2): 0.0, ("C2", H2): 12.0})
+    assert res.parent["strategy_forecast"].tolist() == pytest.approx([12.0, 12.0])
+    assert res.parent["forecast"].tolist() == pytest.approx([12.0, 12.0])
+
+
+def test_a_period_no_active_child_can_take_is_set_to_zero_with_its_reason(make_history, make_children, make_config):
+    history = constant_history(make_history, {"C1": 4})
+    children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")]).assign(
+        first_active_period=[H1, H2], last_active_period=[H1, H2]  # C1 ends after H1; new C2 starts in H2
+    )
+    # H2: C2 is new without history or share (awaiting_history): no own forecast, no share to fall back on
+    tg = targets([("P1", "S1", "C1", H1, 1.0, 1.0), ("P1", "S1", "C2", H1, 0.0, 0.0),
+                  ("P1", "S1", "C1", H2, 0.0, 0.0, "awaiting_history"),
+                  ("P1", "S1", "C2", H2, 0.0, 0.0, "awaiting_history")])
+    res = forecast_cycle(history, children, tg, auto_cfg(make_config), CYCLE, chosen={"a": "forecast_proportions"})
+    # the model's 4 in H2 reaches nobody: the period is set to 0 and says why; the strategy's 4 stays on record
+    assert res.parent["strategy_forecast"].tolist() == pytest.approx([4.0, 4.0])
+    assert res.parent["forecast"].tolist() == pytest.approx([4.0, 0.0])
+    assert [None if pd.isna(r) else r for r in res.parent["zero_reason"]] == [None, "awaiting_history"]
+    assert leaf_values(res) == pytest.approx({("C1", H1): 4.0, ("C2", H1): 0.0, ("C1", H2): 0.0, ("C2", H2): 0.0})

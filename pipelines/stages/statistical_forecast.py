@@ -11,7 +11,7 @@ the one the backtest chose, read from the stored `strategy_choice`):
   an even split) the period's shares are the basis (`period_share`). A parent
   period whose shares are all 0 (`zero_reason`: the product or every customer
   span has ended, or no active child holds a share) is forecast as 0 and the
-  reason is kept in `zero_reason`, so the children always sum to the parent.
+  reason is kept in `zero_reason`.
 - `bottom_up`: one series per child (basis `leaf_forecast`); the parent's
   forecast is the sum of its children's. A child is forecast 0 outside its
   active periods (before its span or product starts, after either ends). The
@@ -20,12 +20,27 @@ the one the backtest chose, read from the stored `strategy_choice`):
 - `forecast_proportions` (parent forecast split by the children's own
   forecasts, basis `children_forecast`) or `mint_shrink` / `wls_var` (both
   grains reconciled, basis `reconciled`); see `pipelines.engines.hierarchy`.
-  Whatever the strategy, parent = sum of leaves.
+
+Every strategy works on the children active in the period (an inactive
+child's forecast and basis are 0; MinT reconciles the period's
+sub-hierarchy), so no volume is given to a child that cannot carry it.
+`strategy_forecast` keeps the parent as the strategy produced it: the
+model's forecast (top-down, forecast proportions), the reconciled parent
+(MinT, WLS; negative reconciled leaves are set to 0 and their amount taken
+from the other children of the period in proportion, so the reconciled
+parent keeps its volume, and the count and volume are in the metadata), or the
+sum of the active children's own forecasts (bottom-up). The only change after
+the strategy is the lifecycle's: a parent period no child can carry (a
+top-down parent with a `zero_reason`; another strategy's when no child is
+active or, with a `zero_reason`, none took any volume) is set to 0, parent and
+leaves, and keeps its `zero_reason`; `forecast` is `strategy_forecast`
+elsewhere. The leaves are never re-summed into the parent:
+`pipelines.stages.reconciliation` proves they sum to `strategy_forecast`.
 
 The models, demand classes and their conventions are in
-`pipelines.engines.models`. Negative forecasts (possible from a trended ETS)
-are set to 0. `model_grain` says at which grains the class's models ran
-(parent, leaf or both).
+`pipelines.engines.models`. Negative base forecasts (possible from a trended
+ETS) are set to 0 before the strategy. `model_grain` says at which grains the
+class's models ran (parent, leaf or both).
 """
 
 from __future__ import annotations
