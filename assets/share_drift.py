@@ -39,7 +39,8 @@ def share_drift(context: dg.AssetExecutionContext, planning: PlanningConfigResou
     cycle, product_class = split_key(context.partition_key)
     store = Path(config.store.path)
     before = previous_cycle(store, SHARE_TABLES, cycle, product_class)
-    previous = read_table(store, SHARE_TABLES, cycle=before, product_class=product_class) if before else None
+    # the class as it last completed in that cycle (its checks passed), published or not yet
+    previous = read_table(store, SHARE_TABLES, cycle=before, product_class=product_class, versions="complete") if before else None
     drift, check = validate(compute_drift(share_tables, previous, before), ShareDrift, SHARE_DRIFT)
     threshold = config.monitoring.max_share_drift_pp
     moved = drifted_beyond(drift, threshold)

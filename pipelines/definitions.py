@@ -8,14 +8,16 @@ from assets.cycle_report import cycle_report
 from assets.lifecycle_history import lifecycle_history
 from assets.master_data import adjustments, customer_spans, pins, products, shortages
 from assets.plan_measures import plan_measures
+from assets.publication import publication_asset
 from assets.raw_history import raw_history
 from assets.reconciliation import reconciliation
 from assets.reinitialized_target import reinitialized_target
 from assets.share_drift import share_drift
 from assets.share_tables import share_tables
 from assets.statistical_forecast import statistical_forecast
-from pipelines.jobs import new_history_file_sensor, weekly_cycle_job, weekly_cycle_schedule
-from pipelines.resources import DuckDBStore, PlanningConfigResource
+from pipelines.jobs import dead_run_reaper, new_history_file_sensor, weekly_cycle_job, weekly_cycle_schedule
+from pipelines.resources import PlanningConfigResource
+from pipelines.store.dagster_io import PartitionStore
 
 ASSETS = [
     raw_history,
@@ -35,6 +37,8 @@ ASSETS = [
     cycle_report,
     plan_measures,
 ]
+# last: downstream of every asset above, it publishes the class's tables once their blocking checks passed
+ASSETS.append(publication_asset(list(ASSETS)))
 
 
 def build_definitions(config_path: str = "") -> dg.Definitions:
@@ -44,8 +48,8 @@ def build_definitions(config_path: str = "") -> dg.Definitions:
         assets=ASSETS,
         jobs=[weekly_cycle_job],
         schedules=[weekly_cycle_schedule],
-        sensors=[new_history_file_sensor],
-        resources={"planning": planning, "io_manager": DuckDBStore(planning=planning)},
+        sensors=[new_history_file_sensor, dead_run_reaper],
+        resources={"planning": planning, "io_manager": PartitionStore(planning=planning)},
         executor=dg.in_process_executor,
     )
 
