@@ -25,6 +25,7 @@ RULE_CHECKS = {
     ("plan_measures", "measures_sum_to_parent", "ERROR"),
     ("plan_measures", "pins_kept", "ERROR"),
     ("plan_measures", "pins_exceed_parent", "WARN"),
+    ("publication", "tables_passed_their_checks", "ERROR"),
 }
 
 

@@ -54,17 +54,14 @@ _HELD: dict[str, HeldLock] = {}
 
 
 def describe(owner: dict | None) -> str:
-    """Who holds (or held) a lock, in words."""
+    """Who holds (or held) a lock, in words: run X (command, pid N on host, since time)."""
     if not owner:
         return "another process (it has not written its name yet)"
-    parts = []
-    if owner.get("run_id"):
-        parts.append(f"run {owner['run_id']}")
-    if owner.get("command"):
-        parts.append(f"({owner['command']})")
-    where = f"pid {owner.get('pid', '?')} on {owner.get('host', '?')}"
-    since = f"since {owner['since']}" if owner.get("since") else ""
-    return " ".join(parts + [where, since]).strip()
+    details = [owner.get("command") or "", f"pid {owner.get('pid', '?')} on {owner.get('host', '?')}"]
+    if owner.get("since"):
+        details.append(f"since {owner['since']}")
+    who = f"run {owner['run_id']}" if owner.get("run_id") else "a process"
+    return f"{who} ({', '.join(d for d in details if d)})"
 
 
 def read_owner(path: Path) -> dict | None:
