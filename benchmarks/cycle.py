@@ -900,23 +900,18 @@ def run_cycle(args: argparse.Namespace) -> dict:
     scen = bench.run("generate (not timed)", lambda: generate(args.leaves, args.seed, args.periods, csv_folder, args.horizon),
                      rows_in=args.leaves, rows_out=lambda s: s.lines, in_total=False, trace=False,
                      note=lambda s: f"{s.facts['parents']:,} parents, {s.facts['products']:,} products")
-    con = None
+    store_root = None
     if args.store is not None:
-        import duckdb
+        from pipelines.store import open_store
 
-        store_path = Path(args.store) if args.store else Path(tmp.name) / "bench.duckdb"
-        store_path.parent.mkdir(parents=True, exist_ok=True)
-        con = duckdb.connect(str(store_path))
+        store_root = open_store(Path(args.store) if args.store else Path(tmp.name) / "store")
 
     def store(table: str, frame: pd.DataFrame) -> None:
-        if con is None:
+        if store_root is None:
             return
 
-        def write():  # as DuckDBStore.handle_output does it
-            f = frame.astype({c: "string" for c in frame.columns if frame[c].dtype == object})
-            con.register("frame", f)
-            con.execute(f'CREATE OR REPLACE TABLE "{table}" AS SELECT * FROM frame')
-            con.unregister("frame")
+        def write():  # as the IO manager (pipelines/store/dagster_io.py) does it: a new Parquet version of the partition
+            store_root.write(table, "2026-11-30", "bench", frame, run_id="bench")
 
         bench.run(f"  store {table}", write, rows_in=len(frame), trace=False)
 
@@ -1037,8 +1032,6 @@ def run_cycle(args: argparse.Namespace) -> dict:
 
     def done() -> dict:
         scen.facts["raw_lines"] = raw_rows
-        if con is not None:
-            con.close()
         out = finish(bench, args, scen)
         tmp.cleanup()
         return out
@@ -1166,7 +1159,7 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
     p.add_argument("--shortage-rule", choices=("exclude", "fill_baseline"), default="exclude", help="cleansing.shortages (default exclude)")
     p.add_argument("--no-shortages", action="store_true", help="do not pass the synthetic shortages table to clean_history")
     p.add_argument("--csv", action="store_true", help="write the lines to CSV files and time load_raw_history on them")
-    p.add_argument("--store", nargs="?", const="", default=None, metavar="PATH", help="also time a DuckDB write of each table (temp file unless PATH)")
+    p.add_argument("--store", nargs="?", const="", default=None, metavar="PATH", help="also time the store's write of each table (a Parquet version; temp folder unless PATH)")
     p.add_argument("--no-validate", action="store_true", help="skip the pandera validations")
     p.add_argument("--trace", choices=("rerun", "inline", "off"), default="rerun",
                    help="rerun (default): time each step untraced, then run it again under tracemalloc for its heap peak; "

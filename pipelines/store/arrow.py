@@ -27,12 +27,10 @@ def to_arrow(data: pd.DataFrame | pa.Table, cycle: str, product_class: str) -> p
     Pandas' own schema metadata is dropped: what is read back is plain Arrow.
     """
     if isinstance(data, pd.DataFrame):
-        frame = data.reset_index(drop=True)
-        frame.columns = [str(c) for c in frame.columns]
-        text = [c for c in frame.columns if frame[c].dtype == object]
-        if text:
-            frame = frame.astype({c: "string" for c in text})
-        table = pa.Table.from_pandas(frame, preserve_index=False)
+        names = [str(c) for c in data.columns]
+        if len(set(names)) != len(names):
+            raise ValueError(f"the frame has repeated column names: {names}")
+        table = pa.table([_column(data.iloc[:, i]) for i in range(data.shape[1])], names=names)
     elif isinstance(data, pa.Table):
         table = data
     else:
@@ -42,6 +40,17 @@ def to_arrow(data: pd.DataFrame | pa.Table, cycle: str, product_class: str) -> p
     n = table.num_rows
     table = table.add_column(0, PARTITION_CLASS, pc.fill_null(pa.nulls(n, pa.string()), product_class))
     return table.add_column(0, PARTITION_CYCLE, pc.fill_null(pa.nulls(n, pa.string()), cycle))
+
+
+def _column(series: pd.Series) -> pa.Array:
+    """One column as Arrow; text (object) columns as strings, converted by Arrow's own loop."""
+    values = series.reset_index(drop=True)
+    if values.dtype != object:
+        return pa.Array.from_pandas(values)
+    try:
+        return pa.array(values, type=pa.string(), from_pandas=True)
+    except (pa.ArrowTypeError, pa.ArrowInvalid):  # objects that are not text (dates, numbers): their text form
+        return pa.array(values.astype("string"), type=pa.string(), from_pandas=True)
 
 
 def _numeric(t: pa.DataType) -> bool:
