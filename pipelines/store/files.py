@@ -21,6 +21,7 @@ from pathlib import Path
 
 TMP_PREFIX = ".tmp-"
 HOST = socket.gethostname()
+HOST_TOKEN = HOST.replace(".", "_")  # the host as it appears in a temporary file's name (dots are separators there)
 
 
 def process_start(pid: int) -> str | None:
@@ -66,11 +67,11 @@ def process_alive(host: str, pid: str | int, pid_start: str | None = None) -> bo
 
 def tmp_name(final: str) -> str:
     """A temporary name beside `final` that says which process writes it."""
-    return f"{TMP_PREFIX}{final}.{HOST}.{os.getpid()}.{time.monotonic_ns()}"
+    return f"{TMP_PREFIX}{final}.{HOST_TOKEN}.{os.getpid()}.{time.monotonic_ns()}"
 
 
 def tmp_writer(name: str) -> tuple[str, str] | None:
-    """(host, pid) of the process that writes temporary file `name`, None if it is not one."""
+    """(host token, pid) of the process that writes temporary file `name`, None if it is not one."""
     if not name.startswith(TMP_PREFIX):
         return None
     parts = name.rsplit(".", 3)
@@ -123,7 +124,7 @@ def stale_tmp(path: Path, max_age_seconds: float = 86400.0) -> bool:
     writer = tmp_writer(path.name)
     if writer is None:
         return False
-    if process_alive(writer[0], writer[1]) is False:
+    if writer[0] == HOST_TOKEN and process_alive(HOST, writer[1]) is False:
         return True
     try:
         return time.time() - path.stat().st_mtime > max_age_seconds
