@@ -647,3 +647,8 @@ def test_a_failed_rerun_leaves_the_published_cycle_as_readers_saw_it(demo_cycle,
     text = capsys.readouterr().out
     assert "INCOMPLETE:   a later run of cycle 2026-11-30 has not completed; readers still see it as published" in text
     assert "consumables: not complete" in text and "spares: complete" in text and "seasonal: complete" in text
+    # so does the cycle's page, above the published tables
+    from pipelines.cycle_report import write_cycle_report
+
+    page = write_cycle_report(load_config(config), dg.DagsterInstance.ephemeral(), "2026-11-30").read_text()
+    assert "A later run of this cycle has not completed (consumables: not complete" in page
