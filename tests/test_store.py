@@ -250,3 +250,46 @@ def test_previous_cycle_is_the_last_one_the_class_completed(tmp_path):
     assert open_store(store).previous_cycle("t", "2026-11-30", "a") == "2026-11-16"
     assert read_table(store, "t", cycle="2026-11-16", product_class="a", versions="complete")["value"].tolist() == [1.0]
     assert open_store(store).previous_cycle("t", "2026-11-30", "b") is None
+
+
+def test_the_io_manager_holds_the_partition_for_the_run_and_passes_arrow_or_pandas_by_annotation(tmp_path):
+    import dagster as dg
+    import yaml
+
+    from pipelines.partitions import cycle_class_partitions, partition_key, register_partitions
+    from pipelines.resources import PlanningConfigResource
+    from pipelines.store.dagster_io import PartitionStore
+
+    config = tmp_path / "planning.yaml"
+    config.write_text(yaml.safe_dump({"store": {"path": str(tmp_path / "s")}, "product_classes": {"a": {"window": 4}}}))
+    seen = {}
+
+    @dg.asset(partitions_def=cycle_class_partitions)
+    def up() -> pa.Table:
+        seen["writer"] = open_store(tmp_path / "s").writer_of("2026-11-30", "a")
+        return pa.table({"leaf": pa.array([0, 1], pa.int32())})
+
+    @dg.asset(partitions_def=cycle_class_partitions)
+    def columnar(up: pa.Table) -> pd.DataFrame:
+        seen["columnar"] = up
+        return up.to_pandas()
+
+    @dg.asset(partitions_def=cycle_class_partitions)
+    def frame(up: pd.DataFrame) -> pd.DataFrame:
+        seen["frame"] = up
+        return up
+
+    planning = PlanningConfigResource(path=str(config))
+    instance = dg.DagsterInstance.ephemeral()
+    register_partitions(instance, "2026-11-30", ["a"])
+    result = dg.materialize([up, columnar, frame], partition_key=partition_key("2026-11-30", "a"), instance=instance,
+                            resources={"planning": planning, "io_manager": PartitionStore(planning=planning)})
+    assert result.success
+    assert seen["writer"]["run_id"] == result.run_id  # the run held its partition while it ran ...
+    assert open_store(tmp_path / "s").writer_of("2026-11-30", "a") is None  # ... and let it go at the end
+    assert isinstance(seen["columnar"], pa.Table) and seen["columnar"].schema.field("leaf").type == pa.int32()
+    assert isinstance(seen["frame"], pd.DataFrame) and seen["frame"]["leaf"].tolist() == [0, 1]
+    # the run is tagged with the process that executed it, and the class is pending until it completes
+    tags = instance.get_run_by_id(result.run_id).tags
+    assert tags["apportion/pid"] == str(os.getpid())
+    assert open_store(tmp_path / "s").class_record("2026-11-30", "a")["state"] == "pending"

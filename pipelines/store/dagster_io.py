@@ -20,6 +20,7 @@ from typing import Any
 
 import dagster as dg
 import pandas as pd
+import pyarrow as pa
 from pydantic import PrivateAttr
 
 from pipelines.partitions import split_key
@@ -110,7 +111,9 @@ class PartitionStore(dg.ConfigurableIOManager):
                 f"partition {cycle}|{product_class} of {table!r} is not in the store {self.path}; materialize {table} "
                 f"for that partition first (python -m pipelines cycle --cycle {cycle} --class {product_class})"
             )
-        return read_table(self.path, table, cycle=cycle, product_class=product_class, versions="latest")
+        # an input annotated as a pyarrow Table gets one (columnar stages), any other a pandas frame
+        wants_arrow = getattr(context.dagster_type, "typing_type", None) is pa.Table
+        return read_table(self.path, table, cycle=cycle, product_class=product_class, versions="latest", as_arrow=wants_arrow)
 
 
 def prove_checks(
