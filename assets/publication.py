@@ -11,6 +11,7 @@ import dagster as dg
 import pandas as pd
 
 from assets.common import rule_check, schema_check_spec, table_metadata, validate
+from pipelines.cycle_report import write_cycle_report
 from pipelines.partitions import cycle_class_partitions, split_key
 from pipelines.resources import PlanningConfigResource
 from pipelines.schemas import ClassPublication
@@ -97,10 +98,8 @@ def publication_asset(stage_assets: list[dg.AssetsDefinition]) -> dg.AssetsDefin
             recorded.setdefault(r.asset, {})[r.shard] = store.latest(r.asset, cycle, product_class)[r.shard]
         status = store.complete_class(cycle, product_class, recorded, run_id=context.run.run_id,
                                       classes=list(config.product_classes), say=context.log.warning)
+        page = write_cycle_report(config, context.instance, cycle)  # the page again: published now, or what it waits for
         if status.is_published and status.published["classes"][product_class]["run_id"] == context.run.run_id:
-            from pipelines.cycle_report import write_cycle_report  # the page again, now that the cycle is published
-
-            page = write_cycle_report(config, context.instance, cycle)
             context.log.info(f"cycle {cycle} published (every class complete); report {page}")
         else:
             context.log.info(f"{cycle}|{product_class} complete; cycle waits for: {', '.join(status.incomplete)}")

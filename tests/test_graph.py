@@ -314,6 +314,28 @@ def test_rebuilding_one_class_replaces_exactly_its_partition(demo_cycle):
     assert {(a, c, k) for a, c, k in moved} == {(a, "2026-11-30", "spares") for a in names if a != "publication"}
 
 
+def test_parallel_runs_publish_the_cycle_once_when_the_last_class_completes(demo_cycle, tmp_path, monkeypatch, capsys):
+    """`rebuild --parallel 2`: one process per class, two at once; classes finishing together publish once."""
+    from pipelines.__main__ import main
+    from pipelines.store import open_store
+
+    _, demo_store, _ = demo_cycle
+    store = tmp_path / "store"
+    shutil.copytree(demo_store, store)
+    before = {name: read_table(store, name, with_partition=True) for name in ("share_tables", "statistical_forecast")}
+    sequence = open_store(store).published("2026-11-30")["sequence"]
+    monkeypatch.setenv("DAGSTER_HOME", str(tmp_path / "home"))
+    config = make_config(tmp_path)
+    args = ["rebuild", "--config", config, "--from", "publication", "--parallel", "2"]
+    assert main(args + [a for c in ("consumables", "seasonal", "spares") for a in ("--class", c)]) == 0
+    out = capsys.readouterr().out
+    assert out.count("succeeded") == 3 and "INCOMPLETE" not in out
+    # the three classes were pending together, so the cycle was published once more, not once per class
+    assert open_store(store).published("2026-11-30")["sequence"] == sequence + 1
+    for name, frame in before.items():
+        pd.testing.assert_frame_equal(read_table(store, name, with_partition=True), frame)
+
+
 def test_broken_input_fails_its_blocking_check_with_the_rows(tmp_path):
     inputs = tmp_path / "inputs"
     shutil.copytree(DEMO, inputs)
@@ -652,3 +674,4 @@ def test_a_failed_rerun_leaves_the_published_cycle_as_readers_saw_it(demo_cycle,
 
     page = write_cycle_report(load_config(config), dg.DagsterInstance.ephemeral(), "2026-11-30").read_text()
     assert "A later run of this cycle has not completed (consumables: not complete" in page
+
