@@ -1,9 +1,14 @@
 """What every asset does the same way: schema checks, rule checks and metadata."""
 
+from pathlib import Path
+
 import dagster as dg
 import pandas as pd
 import pandera.errors
 import pandera.pandas as pa
+
+from pipelines.checks import schema_check, schema_check_name
+from pipelines.results import Markdown
 
 SAMPLE_ROWS = 20
 PREVIEW_ROWS = 8
@@ -33,6 +38,10 @@ def table_metadata(df: pd.DataFrame, **figures) -> dict:
             meta[key] = markdown(value, rows=SAMPLE_ROWS)
         elif isinstance(value, dg.MetadataValue):
             meta[key] = value
+        elif isinstance(value, Markdown):
+            meta[key] = dg.MetadataValue.md(str(value))
+        elif isinstance(value, Path):
+            meta[key] = dg.MetadataValue.path(str(value))
         elif isinstance(value, bool):
             meta[key] = dg.MetadataValue.bool(value)
         elif isinstance(value, int):
@@ -44,25 +53,14 @@ def table_metadata(df: pd.DataFrame, **figures) -> dict:
     return meta
 
 
-def schema_check_name(asset_name: str) -> str:
-    return f"{asset_name}_matches_schema"
-
-
 def schema_check_spec(asset_name: str, model: type[pa.DataFrameModel]) -> dg.AssetCheckSpec:
-    first_line = (model.__doc__ or "").strip().splitlines()[0] if model.__doc__ else ""
-    return dg.AssetCheckSpec(
-        name=schema_check_name(asset_name),
-        asset=asset_name,
-        blocking=True,
-        description=(
-            f"Proves that {asset_name} matches its pandera model {model.__name__} ({first_line}): "
-            f"columns, types, ranges and keys. When it fails, the metadata lists the failing rows and "
-            f"checks; correct the input or stage named there and rematerialize."
-        ),
-    )
+    check = schema_check(asset_name, model)
+    return dg.AssetCheckSpec(name=check.name, asset=asset_name, blocking=True, description=check.description)
 
 
-def validate(df: pd.DataFrame, model: type[pa.DataFrameModel], asset_name: str) -> tuple[pd.DataFrame, dg.AssetCheckResult]:
+def validate(
+    df: pd.DataFrame, model: type[pa.DataFrameModel], asset_name: str
+) -> tuple[pd.DataFrame, dg.AssetCheckResult]:
     """Validate lazily against `model`; the coerced frame (or `df` unchanged on failure) and the check result."""
     try:
         out = model.validate(df, lazy=True)
@@ -101,7 +99,9 @@ def rule_check(
     severity: dg.AssetCheckSeverity = dg.AssetCheckSeverity.ERROR,
     **extra,
 ) -> dg.AssetCheckResult:
-    """A check result (ERROR unless `severity` says WARN) that passes when `failing` is empty; failing rows sampled in metadata."""
+    """A check result (ERROR unless `severity` says WARN) that passes when `failing` is empty; failing rows
+    sampled in metadata.
+    """
     metadata = {
         "failing_count": dg.MetadataValue.int(len(failing)),
         "proves": dg.MetadataValue.text(what),

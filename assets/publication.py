@@ -14,7 +14,7 @@ from assets.common import rule_check, schema_check_spec, table_metadata, validat
 from pipelines.cycle_report import write_cycle_report
 from pipelines.partitions import cycle_class_partitions, split_key
 from pipelines.resources import PlanningConfigResource
-from pipelines.schemas import ClassPublication
+from pipelines.schemas_forecast import ClassPublication
 from pipelines.store import open_store
 from pipelines.store.dagster_io import prove_checks
 

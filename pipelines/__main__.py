@@ -212,24 +212,34 @@ def print_summary(config_path: str, checks: list[tuple[str, str, bool, str]] | N
             how = f"window {pc.window}, {pc.method}" if pc else "not in config"
             p = parents[parents["product_class"] == name]
             fallbacks = int((p["fallback"] != "none").sum())
-            print(f"  {name:<14} {len(p):>4} parents {len(group):>5} children  ({how}; {fallbacks} parents used a fallback)")
-    accuracy = table("backtest_accuracy")
-    if accuracy is not None and len(accuracy):
-        from pipelines.stages.backtest import choose_strategies
-
+            print(
+                f"  {name:<14} {len(p):>4} parents {len(group):>5} children  ({how}; {fallbacks} parents used a "
+                "fallback)"
+            )
+    choice = table("strategy_choice")  # as the cycle decided it, not decided again from today's config
+    if choice is not None and len(choice):
         print("strategy:     (backtest, leaf-grain WMAPE; margin = runner-up minus chosen)")
-        for _, row in choose_strategies(accuracy, config).iterrows():
-            print(f"  {row['product_class']:<14} {row['strategy']:<21} WMAPE {row['leaf_wmape']:.3f}  "
-                  f"margin {row['margin']:+.4f} over {row['runner_up'] or '-'}  seasonal naive {row['seasonal_naive_wmape']:.3f}"
-                  f"  ({row['forecast_grain']})")
+        for _, row in choice.iterrows():
+            print(
+                f"  {row['product_class']:<14} {row['strategy']:<21} WMAPE {row['leaf_wmape']:.3f}  "
+                f"margin {row['margin']:+.4f} over {row['runner_up'] or '-'}  seasonal naive "
+                f"{row['seasonal_naive_wmape']:.3f}"
+                f"  ({row['configured_strategy']})"
+            )
     drift = table("share_drift")
     if drift is not None and len(drift):
         limit = config.monitoring.max_share_drift_pp
-        print(f"share drift:  vs cycle {drift['previous_cycle'].iloc[0]}; {int((drift['abs_change_pp'] > limit).sum())} children "
-              f"moved more than {limit:g} pp; biggest moves:")
+        print(
+            f"share drift:  vs cycle {drift['previous_cycle'].iloc[0]}; "
+            f"{int((drift['abs_change_pp'] > limit).sum())} children "
+            f"moved more than {limit:g} pp; biggest moves:"
+        )
         for _, r in drift.sort_values("abs_change_pp", ascending=False).head(5).iterrows():
-            print(f"  {r['product_class']:<14} {r['product']}/{r['site']}/{r['customer']:<8} {r['share_previous']:.3f} -> "
-                  f"{r['share_current']:.3f}  ({r['change_pp']:+.2f} pp, {r['status']})")
+            print(
+                f"  {r['product_class']:<14} {r['product']}/{r['site']}/{r['customer']:<8} "
+                f"{r['share_previous']:.3f} -> "
+                f"{r['share_current']:.3f}  ({r['change_pp']:+.2f} pp, {r['status']})"
+            )
     elif drift is not None:
         print("share drift:  no previous cycle in the store to compare with (python -m pipelines cycle --backfill 1)")
     if checks is not None:
@@ -246,8 +256,8 @@ def _print_checks(checks: list[tuple[str, str, bool, str]]) -> None:
 
 def explain(config_path: str, product: str, site: str, customer: str, period: str | None, cycle: str | None) -> int:
     """Print how one leaf value was made, from the store only."""
+    from pipelines.explain import OPTIONAL_TABLES, REQUIRED_TABLES, explain_leaf
     from pipelines.resources import PlanningConfigResource, read_table, stored_cycles
-    from pipelines.stages.explain import OPTIONAL_TABLES, REQUIRED_TABLES, explain_leaf
 
     config = PlanningConfigResource(path=config_path).config
     store = Path(config.store.path)
@@ -281,11 +291,15 @@ def report(config_path: str, cycle: str | None) -> int:
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="python -m pipelines", description="apportion: the weekly share refresh cycle")
+    parser = argparse.ArgumentParser(
+        prog="python -m pipelines", description="apportion: the weekly share refresh cycle"
+    )
     sub = parser.add_subparsers(dest="command", required=True)
 
     def config_arg(p):
-        p.add_argument("--config", default="", help="planning config (default $APPORTION_CONFIG or config/planning.yaml)")
+        p.add_argument(
+            "--config", default="", help="planning config (default $APPORTION_CONFIG or config/planning.yaml)"
+        )
 
     def run_args(p):
         p.add_argument("--parallel", type=int, default=1, metavar="K",
@@ -301,19 +315,25 @@ def main(argv: list[str] | None = None) -> int:
     run_args(p)
     p = sub.add_parser("rebuild", help="rematerialize one asset and everything downstream for one class, from the stored upstream tables")
     config_arg(p)
-    p.add_argument("--class", dest="classes", action="append", required=True, help="product class to rebuild (repeatable)")
+    p.add_argument(
+        "--class", dest="classes", action="append", required=True, help="product class to rebuild (repeatable)"
+    )
     p.add_argument("--from", dest="asset", default="share_tables", help="first asset to rebuild (default share_tables)")
     p.add_argument("--cycle", default=None, help="cycle date (default: the current cycle)")
     run_args(p)
     p = sub.add_parser("summary", help="summarise a stored cycle (default the latest), no run")
     config_arg(p)
     p.add_argument("--cycle", default=None)
-    p = sub.add_parser("explain", help="how one leaf value was made: window, method, fallback, lifecycle, model, share, result")
+    p = sub.add_parser(
+        "explain", help="how one leaf value was made: window, method, fallback, lifecycle, model, share, result"
+    )
     config_arg(p)
     p.add_argument("product")
     p.add_argument("site")
     p.add_argument("customer")
-    p.add_argument("--period", default=None, help="a date inside a horizon period (default: every period of the horizon)")
+    p.add_argument(
+        "--period", default=None, help="a date inside a horizon period (default: every period of the horizon)"
+    )
     p.add_argument("--cycle", default=None, help="a stored cycle (default the latest)")
     p = sub.add_parser("report", help="write the cycle's HTML report again (var/reports/<cycle>/cycle_report.html)")
     config_arg(p)

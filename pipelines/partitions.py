@@ -10,7 +10,7 @@
 Both dimensions are dynamic: their keys come from the config and the data,
 which are read when a cycle starts, never at import time. A partition's run
 sees the planning config narrowed to its cycle date and its class
-(`partition_config`), so the stage functions need not know about partitions.
+(`narrow_config`, called by `assets.factory`), so the stages need not know about partitions.
 """
 
 from __future__ import annotations
@@ -78,12 +78,6 @@ def narrow_config(config: PlanningConfig, cycle: str, product_class: str) -> Pla
     narrowed = config.model_copy(update={"calendar": calendar, "product_classes": classes})
     narrowed._source = config.source
     return narrowed
-
-
-def partition_config(context: dg.AssetExecutionContext, config: PlanningConfig) -> PlanningConfig:
-    """The planning config narrowed to the partition this asset is materializing."""
-    cycle, product_class = split_key(context.partition_key)
-    return narrow_config(config, cycle, product_class)
 
 
 def register_partitions(instance: dg.DagsterInstance, cycle: str, classes: list[str]) -> None:

@@ -19,7 +19,7 @@ from dataclasses import dataclass, field
 import dagster as dg
 
 from pipelines.errors import ConfigError
-from pipelines.jobs import WEEKLY_CYCLE
+from pipelines.jobs import CYCLE_JOB
 from pipelines.partitions import partition_key, register_partitions
 from pipelines.store import PartitionBusy, open_store
 from pipelines.store.dagster_io import process_tags
@@ -125,7 +125,7 @@ def run_partitions(
     say: Callable[[str], None] | None = print,
     command: str = "cycle",
 ) -> CycleRun:
-    """Run the weekly cycle job (or `selection`) for each class of `cycle`, one run per partition, in this process.
+    """Run the cycle job (or `selection`) for each class of `cycle`, one run per partition, in this process.
 
     The cycle and `all_classes` (default `classes`) are registered as partitions
     first, so the runs show in the UI under their partition keys. Each run
@@ -136,7 +136,7 @@ def run_partitions(
     register_partitions(instance, cycle, list(all_classes or classes))
     store = store_of(defs)
     store.begin(cycle, list(classes), command=command)
-    job = defs.resolve_job_def(WEEKLY_CYCLE)
+    job = defs.resolve_job_def(CYCLE_JOB)
     run = CycleRun(cycle=cycle)
     for i, product_class in enumerate(classes, 1):
         if on_start:
@@ -171,7 +171,7 @@ def _run_in_child(config_path: str, cycle: str, product_class: str, first: str |
     selection = rebuild_selection(defs, first) if first else None
     try:
         with store_of(defs).partition_lock(cycle, product_class, run_id=run_id, command=command, wait_seconds=wait_seconds, say=print):
-            defs.resolve_job_def(WEEKLY_CYCLE).execute_in_process(
+            defs.resolve_job_def(CYCLE_JOB).execute_in_process(
                 run_config=run_config, instance=_instance(), partition_key=partition_key(cycle, product_class),
                 asset_selection=selection, raise_on_error=False, run_id=run_id, tags=process_tags(),
             )
