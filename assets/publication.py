@@ -36,15 +36,26 @@ def _versions(store, cycle: str, product_class: str, tables: list[str]) -> pd.Da
         if not latest:
             rows.append({"asset": table, "shard": "0", "file": None, "rows": 0, "run_id": None, "written_at": None})
         for shard, p in latest.items():
-            rows.append({"asset": table, "shard": shard, "file": p["file"], "rows": int(p["rows"]), "run_id": p.get("run_id", ""),
-                         "written_at": p["written_at"]})
+            rows.append(
+                {
+                    "asset": table,
+                    "shard": shard,
+                    "file": p["file"],
+                    "rows": int(p["rows"]),
+                    "run_id": p.get("run_id", ""),
+                    "written_at": p["written_at"],
+                }
+            )
     return pd.DataFrame(rows, columns=VERSION_COLUMNS)
 
 
 def _trusted(store, cycle: str, product_class: str) -> set[tuple[str, str, str]]:
     """(asset, shard, file) of the class's last complete record and of the cycle's publication."""
     found = set()
-    records = [store.class_record(cycle, product_class), ((store.published(cycle) or {}).get("classes") or {}).get(product_class)]
+    records = [
+        store.class_record(cycle, product_class),
+        ((store.published(cycle) or {}).get("classes") or {}).get(product_class),
+    ]
     for record in records:
         if record and record.get("state") == "complete":
             for asset, shards in record.get("tables", {}).items():
@@ -80,15 +91,26 @@ def publication_asset(stage_assets: list[dg.AssetsDefinition]) -> dg.AssetsDefin
         config = planning.config
         cycle, product_class = split_key(context.partition_key)
         store = open_store(config.store.path)
-        versions = prove_checks(context.instance, context.run.run_id, _versions(store, cycle, product_class, tables), blocking,
-                                _trusted(store, cycle, product_class))
+        versions = prove_checks(
+            context.instance,
+            context.run.run_id,
+            _versions(store, cycle, product_class, tables),
+            blocking,
+            _trusted(store, cycle, product_class),
+        )
         versions, schema_check = validate(versions, ClassPublication, PUBLICATION)
         unproven = versions[~versions["proven"].astype(bool)]
-        proof_check = rule_check(PUBLICATION, TABLES_PASSED_THEIR_CHECKS, unproven[["asset", "shard", "run_id", "proof"]],
-                                 what=PROOF_TEXT.split(". When")[0])
+        proof_check = rule_check(
+            PUBLICATION,
+            TABLES_PASSED_THEIR_CHECKS,
+            unproven[["asset", "shard", "run_id", "proof"]],
+            what=PROOF_TEXT.split(". When")[0],
+        )
         if not schema_check.passed or len(unproven):
-            context.log.error(f"{cycle}|{product_class} is not recorded complete: " + "; ".join(
-                f"{r.asset}: {r.proof}" for r in unproven.itertuples(index=False)))
+            context.log.error(
+                f"{cycle}|{product_class} is not recorded complete: "
+                + "; ".join(f"{r.asset}: {r.proof}" for r in unproven.itertuples(index=False))
+            )
             return dg.MaterializeResult(
                 metadata=table_metadata(versions, class_complete=False, cycle_published=False),
                 check_results=[schema_check, proof_check],
@@ -96,9 +118,17 @@ def publication_asset(stage_assets: list[dg.AssetsDefinition]) -> dg.AssetsDefin
         recorded = {}
         for r in versions.itertuples(index=False):
             recorded.setdefault(r.asset, {})[r.shard] = store.latest(r.asset, cycle, product_class)[r.shard]
-        status = store.complete_class(cycle, product_class, recorded, run_id=context.run.run_id,
-                                      classes=list(config.product_classes), say=context.log.warning)
-        page = write_cycle_report(config, context.instance, cycle)  # the page again: published now, or what it waits for
+        status = store.complete_class(
+            cycle,
+            product_class,
+            recorded,
+            run_id=context.run.run_id,
+            classes=list(config.product_classes),
+            say=context.log.warning,
+        )
+        page = write_cycle_report(
+            config, context.instance, cycle
+        )  # the page again: published now, or what it waits for
         if status.is_published and status.published["classes"][product_class]["run_id"] == context.run.run_id:
             context.log.info(f"cycle {cycle} published (every class complete); report {page}")
         else:

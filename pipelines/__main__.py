@@ -1,13 +1,13 @@
 """Command line: `python -m pipelines cycle` runs the weekly cycle and prints its summary.
 
-    python -m pipelines cycle [--config config/planning.yaml] [--cycle YYYY-MM-DD] [--class CLS ...] [--parallel K]
-                              [--if-busy wait|stop]
-    python -m pipelines rebuild --class CLS [--from share_tables] [--cycle YYYY-MM-DD]
-    python -m pipelines summary [--config ...] [--cycle YYYY-MM-DD]   # a stored cycle, no run
-    python -m pipelines explain PRODUCT SITE CUSTOMER [--period P] [--cycle C]   # how a leaf value was made
-    python -m pipelines report [--cycle C]             # the cycle's HTML page again
-    python -m pipelines views                          # the DuckDB views over the published cycles again
-    python -m pipelines demo-data [--out data/demo]   # regenerate the bundled demo files
+python -m pipelines cycle [--config config/planning.yaml] [--cycle YYYY-MM-DD] [--class CLS ...] [--parallel K]
+                          [--if-busy wait|stop]
+python -m pipelines rebuild --class CLS [--from share_tables] [--cycle YYYY-MM-DD]
+python -m pipelines summary [--config ...] [--cycle YYYY-MM-DD]   # a stored cycle, no run
+python -m pipelines explain PRODUCT SITE CUSTOMER [--period P] [--cycle C]   # how a leaf value was made
+python -m pipelines report [--cycle C]             # the cycle's HTML page again
+python -m pipelines views                          # the DuckDB views over the published cycles again
+python -m pipelines demo-data [--out data/demo]   # regenerate the bundled demo files
 """
 
 from __future__ import annotations
@@ -48,7 +48,8 @@ def run_cycle(
     parallel: int = 1,
     if_busy: str = "wait",
 ) -> int:
-    """Run the cycle (or, with `rebuild_from`, that asset and everything downstream) for each class; 0 when no ERROR check failed.
+    """Run the cycle (or, with `rebuild_from`, that asset and everything downstream) for each class; 0 when no
+    ERROR check failed.
 
     `parallel`: partitions run at once, each in its own process (1: one after
     another in this process). `if_busy`: when another run writes a partition,
@@ -57,7 +58,13 @@ def run_cycle(
     from pipelines.definitions import build_definitions
     from pipelines.partitions import current_cycle
     from pipelines.resources import PlanningConfigResource
-    from pipelines.runner import PartitionOutcome, blocking_checks_pass, rebuild_selection, run_partitions, run_partitions_parallel
+    from pipelines.runner import (
+        PartitionOutcome,
+        blocking_checks_pass,
+        rebuild_selection,
+        run_partitions,
+        run_partitions_parallel,
+    )
     from pipelines.store import PartitionBusy, open_store
     from pipelines.store.dagster_io import mark_dead_runs_failed
     from pipelines.store.locks import describe
@@ -67,7 +74,10 @@ def run_cycle(
     chosen = classes or list(config.product_classes)
     unknown = [c for c in chosen if c not in config.product_classes]
     if unknown:
-        raise ConfigError(f"{config.source}: --class {unknown} not under product_classes; valid classes are {sorted(config.product_classes)}")
+        raise ConfigError(
+            f"{config.source}: --class {unknown} not under product_classes; valid classes are "
+            f"{sorted(config.product_classes)}"
+        )
     if parallel < 1:
         raise ConfigError(f"--parallel {parallel}: give 1 or more partitions to run at once")
     defs = build_definitions(config_path)
@@ -82,8 +92,11 @@ def run_cycle(
         print(f"[{i}/{now['of']}] cycle {now['cycle']}, class {product_class}: {now['what']} ...", flush=True)
 
     def done(outcome: PartitionOutcome) -> None:
-        print(f"    {outcome.product_class}: run {outcome.run_id}: {'succeeded' if outcome.success else 'FAILED'} "
-              f"in {outcome.seconds:.0f} s", flush=True)
+        print(
+            f"    {outcome.product_class}: run {outcome.run_id}: {'succeeded' if outcome.success else 'FAILED'} "
+            f"in {outcome.seconds:.0f} s",
+            flush=True,
+        )
         for step, message in outcome.failures:
             print(f"    step {step} failed: {message}")
 
@@ -95,35 +108,67 @@ def run_cycle(
     store = open_store(config.store.path)
     store.check_layout()
 
-    def run_classes(run_cycle_key: str, run_classes: list[str], run_selection, first: str | None) -> list[PartitionOutcome]:
+    def run_classes(
+        run_cycle_key: str, run_classes: list[str], run_selection, first: str | None
+    ) -> list[PartitionOutcome]:
         if if_busy == "stop":
             busy = {k: h for k in run_classes if (h := store.writer_of(run_cycle_key, k)) is not None}
             if busy:
-                raise PartitionBusy("; ".join(f"partition {run_cycle_key}|{k} is being written by {describe(h)}" for k, h in busy.items())
-                                    + " (--if-busy wait to queue behind it)", next(iter(busy.values())))
+                raise PartitionBusy(
+                    "; ".join(
+                        f"partition {run_cycle_key}|{k} is being written by {describe(h)}" for k, h in busy.items()
+                    )
+                    + " (--if-busy wait to queue behind it)",
+                    next(iter(busy.values())),
+                )
         if parallel > 1:
             return run_partitions_parallel(
-                config_path, instance, run_cycle_key, run_classes, parallel=parallel, all_classes=list(config.product_classes),
-                first=first, run_config=run_config, on_start=started, on_done=done, wait_seconds=wait_seconds, command=command,
+                config_path,
+                instance,
+                run_cycle_key,
+                run_classes,
+                parallel=parallel,
+                all_classes=list(config.product_classes),
+                first=first,
+                run_config=run_config,
+                on_start=started,
+                on_done=done,
+                wait_seconds=wait_seconds,
+                command=command,
             )
         result = run_partitions(
-            defs, instance, run_cycle_key, run_classes, all_classes=list(config.product_classes), selection=run_selection,
-            run_config=run_config, on_start=started, wait_seconds=wait_seconds, command=command,
+            defs,
+            instance,
+            run_cycle_key,
+            run_classes,
+            all_classes=list(config.product_classes),
+            selection=run_selection,
+            run_config=run_config,
+            on_start=started,
+            wait_seconds=wait_seconds,
+            command=command,
             on_done=lambda k, r, sec: done(PartitionOutcome.from_result(k, r, sec)),
         )
         return [PartitionOutcome.from_result(k, r, result.seconds[k]) for k, r in result.results.items()]
 
     ok = True
     for earlier in _missing_earlier_cycles(config, cycle, backfill):
-        print(f"backfill: cycle {earlier} is not published in the store yet; running it first (share drift compares with it)", flush=True)
+        print(
+            f"backfill: cycle {earlier} is not published in the store yet; running it first "
+            "(share drift compares with it)",
+            flush=True,
+        )
         now.update(cycle=earlier, what="whole cycle", of=len(config.product_classes))
         past = run_classes(earlier, list(config.product_classes), None, None)
         ok = ok and all(o.success for o in past) and blocking_checks_pass(past)
     now.update(cycle=cycle, what=what, of=len(chosen))
     # progress at INFO on the console; the full event log stays in the instance (and the UI)
     outcomes = run_classes(cycle, chosen, selection, rebuild_from)
-    checks = [(f"{e.asset_key.to_user_string()} [{o.product_class}]", e.check_name, e.passed, e.severity.value)
-              for o in outcomes for e in o.checks]
+    checks = [
+        (f"{e.asset_key.to_user_string()} [{o.product_class}]", e.check_name, e.passed, e.severity.value)
+        for o in outcomes
+        for e in o.checks
+    ]
     if summary:
         print_summary(config_path, checks, cycle=cycle)
     # the page again after every class ran, so a run a blocking check stopped shows its failure there too
@@ -149,7 +194,9 @@ def _missing_earlier_cycles(config, cycle: str, count: int) -> list[str]:
     return [c for c in earlier if c not in have]
 
 
-def print_summary(config_path: str, checks: list[tuple[str, str, bool, str]] | None = None, cycle: str | None = None) -> None:
+def print_summary(
+    config_path: str, checks: list[tuple[str, str, bool, str]] | None = None, cycle: str | None = None
+) -> None:
     """The summary of a published cycle (default the latest); an incomplete cycle is marked as such."""
     from pipelines.resources import PlanningConfigResource, read_table
     from pipelines.store import open_store
@@ -166,18 +213,27 @@ def print_summary(config_path: str, checks: list[tuple[str, str, bool, str]] | N
         cycle = max((c for c in published if asked is None or c <= asked), default=None)
 
     print()
-    print(f"store:        {store.root.resolve()}  (a Parquet file per asset partition; published cycles as SQL views in "
-          f"{store.views_path})")
-    print(f"cycles:       {', '.join(published) or 'none published yet'}"
-          + (f"  (this summary: {cycle})" if cycle else ""))
+    print(
+        f"store:        {store.root.resolve()}  (a Parquet file per asset partition; published cycles as SQL views in "
+        f"{store.views_path})"
+    )
+    print(
+        f"cycles:       {', '.join(published) or 'none published yet'}"
+        + (f"  (this summary: {cycle})" if cycle else "")
+    )
     for status in (store.status(c, classes) for c in store.known_cycles()):
         if not status.incomplete or (status.cycle < (cycle or "") and status.cycle != asked):
             continue
         if status.is_published:
-            head = (f"a later run of cycle {status.cycle} has not completed; readers still see it as published "
-                    f"{status.published['published_at'][:19]} UTC")
+            head = (
+                f"a later run of cycle {status.cycle} has not completed; readers still see it as published "
+                f"{status.published['published_at'][:19]} UTC"
+            )
         else:
-            head = f"cycle {status.cycle} is not published: nothing of it is visible until every class passed its blocking checks"
+            head = (
+                f"cycle {status.cycle} is not published: nothing of it is visible until every class passed its "
+                "blocking checks"
+            )
         print(f"INCOMPLETE:   {head}")
         for k in classes:
             print(f"                {status.describe_class(k)}")
@@ -197,12 +253,18 @@ def print_summary(config_path: str, checks: list[tuple[str, str, bool, str]] | N
     cal = table("cycle_calendar")
     if cal is not None and len(cal):
         c = cal.iloc[0]
-        print(f"cycle date:   {c['cycle_date']:%Y-%m-%d}, {c['horizon']} {c['period']}s ahead, "
-              f"history from {c['history_start']:%Y-%m-%d} ({c['history_periods']} periods)")
-    print(f"rows in:      {count('raw_history')} raw history lines, {count('rejected_rows')} rejected, "
-          f"{count('history_corrections')} corrections")
-    print(f"rows out:     {count('share_tables')} shares, {count('parent_forecast')} parent forecast rows, "
-          f"{count('statistical_forecast')} leaf forecast rows, {count('reconciliation')} reconciliation rows")
+        print(
+            f"cycle date:   {c['cycle_date']:%Y-%m-%d}, {c['horizon']} {c['period']}s ahead, "
+            f"history from {c['history_start']:%Y-%m-%d} ({c['history_periods']} periods)"
+        )
+    print(
+        f"rows in:      {count('raw_history')} raw history lines, {count('rejected_rows')} rejected, "
+        f"{count('history_corrections')} corrections"
+    )
+    print(
+        f"rows out:     {count('share_tables')} shares, {count('parent_forecast')} parent forecast rows, "
+        f"{count('statistical_forecast')} leaf forecast rows, {count('reconciliation')} reconciliation rows"
+    )
     shares = table("share_tables")
     if shares is not None and len(shares):
         parents = shares.drop_duplicates(["product", "site"])
@@ -265,8 +327,10 @@ def explain(config_path: str, product: str, site: str, customer: str, period: st
     if not cycles:
         raise PlanningError(f"no cycle published in the store {store} yet; run one first (make demo)")
     if cycle is not None and cycle not in cycles:
-        raise PlanningError(f"cycle {cycle} is not published in the store {store} (python -m pipelines summary says why); "
-                            f"published cycles: {', '.join(cycles)}")
+        raise PlanningError(
+            f"cycle {cycle} is not published in the store {store} (python -m pipelines summary says why); "
+            f"published cycles: {', '.join(cycles)}"
+        )
     cycle = cycle or cycles[-1]
     parent = {"product": product.strip(), "site": site.strip()}
     tables = {
@@ -302,18 +366,42 @@ def main(argv: list[str] | None = None) -> int:
         )
 
     def run_args(p):
-        p.add_argument("--parallel", type=int, default=1, metavar="K",
-                       help="run K partitions (classes) at once, one process each (default 1: one after another)")
-        p.add_argument("--if-busy", choices=("wait", "stop"), default="wait",
-                       help="when another run writes a partition: wait in the queue for it (default) or stop with exit 2")
+        p.add_argument(
+            "--parallel",
+            type=int,
+            default=1,
+            metavar="K",
+            help="run K partitions (classes) at once, one process each (default 1: one after another)",
+        )
+        p.add_argument(
+            "--if-busy",
+            choices=("wait", "stop"),
+            default="wait",
+            help="when another run writes a partition: wait in the queue for it (default) or stop with exit 2",
+        )
 
     p = sub.add_parser("cycle", help="run the weekly cycle for every class (or --class ...) and print a summary")
     config_arg(p)
-    p.add_argument("--cycle", default=None, help="cycle date YYYY-MM-DD (default: calendar.cycle_date, else the period after the history)")
-    p.add_argument("--class", dest="classes", action="append", default=None, help="only this product class (repeatable)")
-    p.add_argument("--backfill", type=int, default=0, metavar="N", help="first run the N cycles before it that the store has not published")
+    p.add_argument(
+        "--cycle",
+        default=None,
+        help="cycle date YYYY-MM-DD (default: calendar.cycle_date, else the period after the history)",
+    )
+    p.add_argument(
+        "--class", dest="classes", action="append", default=None, help="only this product class (repeatable)"
+    )
+    p.add_argument(
+        "--backfill",
+        type=int,
+        default=0,
+        metavar="N",
+        help="first run the N cycles before it that the store has not published",
+    )
     run_args(p)
-    p = sub.add_parser("rebuild", help="rematerialize one asset and everything downstream for one class, from the stored upstream tables")
+    p = sub.add_parser(
+        "rebuild",
+        help="rematerialize one asset and everything downstream for one class, from the stored upstream tables",
+    )
     config_arg(p)
     p.add_argument(
         "--class", dest="classes", action="append", required=True, help="product class to rebuild (repeatable)"
@@ -338,7 +426,9 @@ def main(argv: list[str] | None = None) -> int:
     p = sub.add_parser("report", help="write the cycle's HTML report again (var/reports/<cycle>/cycle_report.html)")
     config_arg(p)
     p.add_argument("--cycle", default=None, help="a stored cycle (default the latest)")
-    p = sub.add_parser("views", help="write the DuckDB views over the published cycles again (<store>/published.duckdb)")
+    p = sub.add_parser(
+        "views", help="write the DuckDB views over the published cycles again (<store>/published.duckdb)"
+    )
     config_arg(p)
     p = sub.add_parser("demo-data", help="regenerate the bundled demo input files")
     p.add_argument("--out", default="data/demo")
@@ -346,11 +436,23 @@ def main(argv: list[str] | None = None) -> int:
     args = parser.parse_args(argv)
     try:
         if args.command == "cycle":
-            return run_cycle(args.config, cycle=args.cycle, classes=args.classes, backfill=args.backfill, parallel=args.parallel,
-                             if_busy=args.if_busy)
+            return run_cycle(
+                args.config,
+                cycle=args.cycle,
+                classes=args.classes,
+                backfill=args.backfill,
+                parallel=args.parallel,
+                if_busy=args.if_busy,
+            )
         if args.command == "rebuild":
-            return run_cycle(args.config, cycle=args.cycle, classes=args.classes, rebuild_from=args.asset, parallel=args.parallel,
-                             if_busy=args.if_busy)
+            return run_cycle(
+                args.config,
+                cycle=args.cycle,
+                classes=args.classes,
+                rebuild_from=args.asset,
+                parallel=args.parallel,
+                if_busy=args.if_busy,
+            )
         if args.command == "explain":
             return explain(args.config, args.product, args.site, args.customer, args.period, args.cycle)
         if args.command == "report":

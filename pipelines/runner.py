@@ -21,7 +21,6 @@ import dagster as dg
 from pipelines.errors import ConfigError
 from pipelines.jobs import CYCLE_JOB
 from pipelines.partitions import partition_key, register_partitions
-from pipelines.store import PartitionBusy, open_store
 from pipelines.store.dagster_io import process_tags
 
 
@@ -70,16 +69,36 @@ class PartitionOutcome:
 
     @classmethod
     def from_result(cls, product_class: str, result: dg.ExecuteInProcessResult, seconds: float) -> PartitionOutcome:
-        return cls(product_class, result.run_id, result.success, seconds, result.get_asset_check_evaluations(),
-                   [_failure(e) for e in result.all_events if e.is_step_failure])
+        return cls(
+            product_class,
+            result.run_id,
+            result.success,
+            seconds,
+            result.get_asset_check_evaluations(),
+            [_failure(e) for e in result.all_events if e.is_step_failure],
+        )
 
     @classmethod
-    def from_instance(cls, product_class: str, instance: dg.DagsterInstance, run_id: str, seconds: float) -> PartitionOutcome:
+    def from_instance(
+        cls, product_class: str, instance: dg.DagsterInstance, run_id: str, seconds: float
+    ) -> PartitionOutcome:
         run = instance.get_run_by_id(run_id)
         if run is None:
-            return cls(product_class, run_id, False, seconds, [], [("start", "the run was not created (see the messages above)")])
-        checks = [e.dagster_event.event_specific_data for e in instance.all_logs(run_id, of_type=dg.DagsterEventType.ASSET_CHECK_EVALUATION)]
-        failures = [_failure(e.dagster_event) for e in instance.all_logs(run_id, of_type=dg.DagsterEventType.STEP_FAILURE)]
+            return cls(
+                product_class,
+                run_id,
+                False,
+                seconds,
+                [],
+                [("start", "the run was not created (see the messages above)")],
+            )
+        checks = [
+            e.dagster_event.event_specific_data
+            for e in instance.all_logs(run_id, of_type=dg.DagsterEventType.ASSET_CHECK_EVALUATION)
+        ]
+        failures = [
+            _failure(e.dagster_event) for e in instance.all_logs(run_id, of_type=dg.DagsterEventType.STEP_FAILURE)
+        ]
         if run.status != dg.DagsterRunStatus.SUCCESS and not failures:
             failures = [("run", f"ended {run.status.value}")]
         return cls(product_class, run_id, run.status == dg.DagsterRunStatus.SUCCESS, seconds, checks, failures)
@@ -143,7 +162,9 @@ def run_partitions(
             on_start(i, product_class)
         started = time.monotonic()
         run_id = str(uuid.uuid4())
-        with store.partition_lock(cycle, product_class, run_id=run_id, command=command, wait_seconds=wait_seconds, say=say):
+        with store.partition_lock(
+            cycle, product_class, run_id=run_id, command=command, wait_seconds=wait_seconds, say=say
+        ):
             result = job.execute_in_process(
                 run_config=run_config or {},
                 instance=instance,
@@ -160,8 +181,16 @@ def run_partitions(
     return run
 
 
-def _run_in_child(config_path: str, cycle: str, product_class: str, first: str | None, run_id: str, run_config: dict,
-                  wait_seconds: float | None, command: str) -> int:
+def _run_in_child(
+    config_path: str,
+    cycle: str,
+    product_class: str,
+    first: str | None,
+    run_id: str,
+    run_config: dict,
+    wait_seconds: float | None,
+    command: str,
+) -> int:
     """One partition in a process of its own (`cycle --parallel`): 0 ran, 2 partition busy or bad input."""
     from pipelines.__main__ import _instance
     from pipelines.definitions import build_definitions
@@ -170,10 +199,17 @@ def _run_in_child(config_path: str, cycle: str, product_class: str, first: str |
     defs = build_definitions(config_path)
     selection = rebuild_selection(defs, first) if first else None
     try:
-        with store_of(defs).partition_lock(cycle, product_class, run_id=run_id, command=command, wait_seconds=wait_seconds, say=print):
+        with store_of(defs).partition_lock(
+            cycle, product_class, run_id=run_id, command=command, wait_seconds=wait_seconds, say=print
+        ):
             defs.resolve_job_def(CYCLE_JOB).execute_in_process(
-                run_config=run_config, instance=_instance(), partition_key=partition_key(cycle, product_class),
-                asset_selection=selection, raise_on_error=False, run_id=run_id, tags=process_tags(),
+                run_config=run_config,
+                instance=_instance(),
+                partition_key=partition_key(cycle, product_class),
+                asset_selection=selection,
+                raise_on_error=False,
+                run_id=run_id,
+                tags=process_tags(),
             )
     except PlanningError as err:
         print(f"error: {err}", flush=True)

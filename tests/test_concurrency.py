@@ -33,7 +33,9 @@ print("released", flush=True)
 
 
 def _hold(store: Path, run_id: str, seconds: float) -> subprocess.Popen:
-    child = subprocess.Popen([sys.executable, "-c", HOLDER, str(store), run_id, str(seconds)], cwd=ROOT, stdout=subprocess.PIPE, text=True)
+    child = subprocess.Popen(
+        [sys.executable, "-c", HOLDER, str(store), run_id, str(seconds)], cwd=ROOT, stdout=subprocess.PIPE, text=True
+    )
     assert child.stdout.readline().strip() == "holding"
     return child
 
@@ -43,7 +45,9 @@ def test_a_second_writer_on_a_partition_stops_naming_the_holder_or_waits_in_the_
     child = _hold(store, "run-one", 3)
     try:
         assert open_store(store).writer_of("2026-11-30", "spares")["run_id"] == "run-one"
-        with pytest.raises(PartitionBusy, match=r"partition 2026-11-30\|spares is being written by run run-one \(cycle, pid \d+ on "):
+        with pytest.raises(
+            PartitionBusy, match=r"partition 2026-11-30\|spares is being written by run run-one \(cycle, pid \d+ on "
+        ):
             with open_store(store).partition_lock("2026-11-30", "spares", run_id="run-two", wait_seconds=0):
                 pass
         # another partition of the same cycle is free: writers of different classes never wait on each other
@@ -87,13 +91,17 @@ def test_the_stale_lock_of_a_killed_writer_is_broken_with_a_message(tmp_path):
     os.kill(child.pid, signal.SIGKILL)
     child.wait()
     said = []
-    with open_store(store).partition_lock("2026-11-30", "spares", run_id="run-next", wait_seconds=0, say=said.append) as held:
+    with open_store(store).partition_lock(
+        "2026-11-30", "spares", run_id="run-next", wait_seconds=0, say=said.append
+    ) as held:
         assert held.broke["run_id"] == "run-killed"
     assert len(said) == 1
     assert said[0].startswith("partition 2026-11-30|spares: broke the stale lock of run run-killed (cycle, pid ")
     assert said[0].endswith("whose process is no longer running")
     # released cleanly this time: the next writer breaks nothing
-    with open_store(store).partition_lock("2026-11-30", "spares", run_id="run-after", wait_seconds=0, say=said.append) as held:
+    with open_store(store).partition_lock(
+        "2026-11-30", "spares", run_id="run-after", wait_seconds=0, say=said.append
+    ) as held:
         assert held.broke is None
     assert len(said) == 1
 
@@ -124,12 +132,18 @@ def test_partitions_registered_by_two_processes_at_once(tmp_path):
     dg.DagsterInstance.local_temp(tempdir=env["DAGSTER_HOME"]).get_dynamic_partitions("cycle")  # storage made once
     start = time.time() + 8  # both have imported dagster by then; then they race key by key
     children = [
-        subprocess.Popen([sys.executable, "-c", REGISTER, str(start), "10"], cwd=ROOT, env=env, stdout=subprocess.PIPE,
-                         stderr=subprocess.PIPE, text=True)
+        subprocess.Popen(
+            [sys.executable, "-c", REGISTER, str(start), "10"],
+            cwd=ROOT,
+            env=env,
+            stdout=subprocess.PIPE,
+            stderr=subprocess.PIPE,
+            text=True,
+        )
         for _ in range(2)
     ]
     outs = [c.communicate(timeout=300) for c in children]
-    for child, (out, err) in zip(children, outs):
+    for child, (out, err) in zip(children, outs, strict=False):
         assert child.returncode == 0, err[-2000:]
         assert out.strip() == "registered"
     instance = dg.DagsterInstance.local_temp(tempdir=env["DAGSTER_HOME"])
@@ -161,7 +175,9 @@ def test_a_started_run_whose_process_died_is_marked_failed(tmp_path):
 
     env = _home(tmp_path)
     run_id = str(uuid.uuid4())
-    child = subprocess.Popen([sys.executable, "-c", SLEEPER, run_id], cwd=ROOT, env=env, stdout=subprocess.PIPE, text=True)
+    child = subprocess.Popen(
+        [sys.executable, "-c", SLEEPER, run_id], cwd=ROOT, env=env, stdout=subprocess.PIPE, text=True
+    )
     instance = dg.DagsterInstance.local_temp(tempdir=env["DAGSTER_HOME"])
     try:
         assert child.stdout.readline().strip() == "running"
@@ -174,7 +190,12 @@ def test_a_started_run_whose_process_died_is_marked_failed(tmp_path):
             child.kill()
     assert instance.get_run_by_id(run_id).status == dg.DagsterRunStatus.STARTED  # nothing else would ever change it
     marked = mark_dead_runs_failed(instance)
-    assert len(marked) == 1 and run_id in marked[0] and f"pid {child.pid}" in marked[0] and "no longer running" in marked[0]
+    assert (
+        len(marked) == 1
+        and run_id in marked[0]
+        and f"pid {child.pid}" in marked[0]
+        and "no longer running" in marked[0]
+    )
     run = instance.get_run_by_id(run_id)
     assert run.status == dg.DagsterRunStatus.FAILURE
     assert mark_dead_runs_failed(instance) == []

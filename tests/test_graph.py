@@ -711,7 +711,8 @@ def test_a_failed_rerun_leaves_the_published_cycle_as_readers_saw_it(demo_cycle,
     inputs = tmp_path / "inputs"
     shutil.copytree(DEMO, inputs)
     spans = pd.read_csv(inputs / "customer_spans.csv", dtype=str, keep_default_na=False)
-    products = pd.read_csv(inputs / "products.csv", dtype=str, keep_default_na=False).set_index("product")["product_class"]
+    products = pd.read_csv(inputs / "products.csv", dtype=str, keep_default_na=False)
+    products = products.set_index("product")["product_class"]
     broken = spans.index[spans["product"].map(products) == "consumables"][0]
     spans.loc[broken, ["active_from", "active_to"]] = ["2025-06-01", "2025-01-01"]
     spans.to_csv(inputs / "customer_spans.csv", index=False)
@@ -720,7 +721,8 @@ def test_a_failed_rerun_leaves_the_published_cycle_as_readers_saw_it(demo_cycle,
     spare["quantity"] = "40"
     pd.concat([history, spare.to_frame().T]).to_csv(inputs / "history.csv", index=False)
     config = make_config(tmp_path, inputs=inputs)
-    rerun = run_partitions(build_definitions(config), dg.DagsterInstance.ephemeral(), "2026-11-30", ["consumables", "spares"],
+    rerun = run_partitions(build_definitions(config), dg.DagsterInstance.ephemeral(), "2026-11-30",
+                           ["consumables", "spares"],
                            all_classes=["consumables", "seasonal", "spares"])
     assert not rerun.blocking_checks_pass and rerun.results["spares"].success
     # spares passed and wrote new versions, which the pipeline sees ...

@@ -19,20 +19,32 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from pipelines.store import PARTITION_CLASS, PARTITION_CYCLE, StoreError, open_store, read_table, stored_cycles, write_partition
+from pipelines.store import (
+    PARTITION_CLASS,
+    PARTITION_CYCLE,
+    StoreError,
+    open_store,
+    read_table,
+    stored_cycles,
+    write_partition,
+)
 
 ROOT = Path(__file__).resolve().parents[1]
 
 
 def _frame(values, text=None):
-    frame = pd.DataFrame({"value": values, "label": text if text is not None else [f"r{i}" for i in range(len(values))]})
+    frame = pd.DataFrame(
+        {"value": values, "label": text if text is not None else [f"r{i}" for i in range(len(values))]}
+    )
     frame["label"] = frame["label"].astype("string")
     return frame
 
 
 def _complete(store, cycle, product_class, classes, tables=("t",), run_id="r"):
     s = open_store(store)
-    return s.complete_class(cycle, product_class, {t: s.latest(t, cycle, product_class) for t in tables}, run_id=run_id, classes=classes)
+    return s.complete_class(
+        cycle, product_class, {t: s.latest(t, cycle, product_class) for t in tables}, run_id=run_id, classes=classes
+    )
 
 
 def _visible_parquet(folder: Path) -> list[Path]:
@@ -57,12 +69,18 @@ def test_rewriting_a_partition_makes_a_new_version_and_replaces_exactly_its_rows
     assert len(_visible_parquet(store / "tables" / "t")) == 3
     written = read_table(store, "partitions_written", versions="latest")
     assert written[["asset", PARTITION_CYCLE, PARTITION_CLASS, "rows"]].values.tolist() == [
-        ["t", "2026-11-23", "a", 2], ["t", "2026-11-23", "b", 1], ["t", "2026-11-30", "a", 3]
+        ["t", "2026-11-23", "a", 2],
+        ["t", "2026-11-23", "b", 1],
+        ["t", "2026-11-30", "a", 3],
     ]
     # each file is plain Parquet holding the partition's rows with its partition columns
     file = open_store(store).partition_dir("t", "2026-11-23", "a") / written["file"].iloc[0]
-    assert pq.read_table(file).to_pydict() == {PARTITION_CYCLE: ["2026-11-23"] * 2, PARTITION_CLASS: ["a"] * 2,
-                                               "value": [7.0, 8.0], "label": ["r0", "r1"]}
+    assert pq.read_table(file).to_pydict() == {
+        PARTITION_CYCLE: ["2026-11-23"] * 2,
+        PARTITION_CLASS: ["a"] * 2,
+        "value": [7.0, 8.0],
+        "label": ["r0", "r1"],
+    }
     # nothing is published yet: readers see no cycle
     assert stored_cycles(store, "t") == [] and read_table(store, "t").empty
 
@@ -104,7 +122,9 @@ def test_a_store_of_an_older_layout_says_to_rerun_the_cycle(tmp_path):
     write_partition(store, "t", _frame([1.0]).assign(label=pd.array(["x"], dtype="string")), "2026-11-23", "a")
     write_partition(store, "t", _frame([2.0]).assign(label=[3.5]), "2026-11-30", "a")
     assert read_table(store, "t", cycle="2026-11-30", versions="latest")["label"].tolist() == [3.5]
-    with pytest.raises(StoreError, match=r"partition 2026-11-23\|a .* written by an older release.*rerun the cycle 2026-11-23"):
+    with pytest.raises(
+        StoreError, match=r"partition 2026-11-23\|a .* written by an older release.*rerun the cycle 2026-11-23"
+    ):
         read_table(store, "t", versions="latest")
 
 
@@ -118,6 +138,7 @@ def test_a_failed_write_leaves_the_partition_as_it_was(tmp_path, monkeypatch):
     # a column Parquet cannot hold (complex numbers): refused before any file is touched
     with pytest.raises(pa.ArrowNotImplementedError):
         write_partition(store, "t", _frame([3.0]).assign(z=[1 + 2j]), "2026-11-30", "a")
+
     # the disk fills up half-way through the file
     def half_then_full(table, where, **kw):
         Path(where).write_bytes(b"PAR1 half a file")
@@ -163,8 +184,9 @@ def test_a_writer_killed_mid_write_leaves_the_previous_version_and_no_partial_fi
     folder = open_store(store).partition_dir("t", "2026-11-30", "a")
     rows = 2_000_000
     for _attempt in range(4):  # a larger frame if the writer finished before it was caught writing
-        child = subprocess.Popen([sys.executable, "-c", KILLED_WRITER, str(store), str(rows)], cwd=ROOT,
-                                 stdout=subprocess.PIPE, text=True)
+        child = subprocess.Popen(
+            [sys.executable, "-c", KILLED_WRITER, str(store), str(rows)], cwd=ROOT, stdout=subprocess.PIPE, text=True
+        )
         assert child.stdout.readline().strip() == "writing"
         caught = None
         while caught is None and child.poll() is None:
@@ -193,7 +215,7 @@ def test_a_writer_killed_mid_write_leaves_the_previous_version_and_no_partial_fi
 def test_publication_waits_for_every_class_and_readers_see_only_published_cycles(tmp_path):
     store = tmp_path / "s"
     classes = ["a", "b", "c"]
-    for k, v in zip(classes, (1.0, 2.0, 3.0)):
+    for k, v in zip(classes, (1.0, 2.0, 3.0), strict=False):
         write_partition(store, "t", _frame([v]), "2026-11-30", k)
     assert not _complete(store, "2026-11-30", "a", classes).is_published
     status = _complete(store, "2026-11-30", "b", classes)
@@ -282,8 +304,12 @@ def test_the_io_manager_holds_the_partition_for_the_run_and_passes_arrow_or_pand
     planning = PlanningConfigResource(path=str(config))
     instance = dg.DagsterInstance.ephemeral()
     register_partitions(instance, "2026-11-30", ["a"])
-    result = dg.materialize([up, columnar, frame], partition_key=partition_key("2026-11-30", "a"), instance=instance,
-                            resources={"planning": planning, "io_manager": PartitionStore(planning=planning)})
+    result = dg.materialize(
+        [up, columnar, frame],
+        partition_key=partition_key("2026-11-30", "a"),
+        instance=instance,
+        resources={"planning": planning, "io_manager": PartitionStore(planning=planning)},
+    )
     assert result.success
     assert seen["writer"]["run_id"] == result.run_id  # the run held its partition while it ran ...
     assert open_store(tmp_path / "s").writer_of("2026-11-30", "a") is None  # ... and let it go at the end

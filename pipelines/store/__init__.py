@@ -26,9 +26,23 @@ from pipelines.store.store import (
 )
 
 __all__ = [
-    "DEFAULT_SHARD", "PARTITION_CLASS", "PARTITION_COLUMNS", "PARTITION_CYCLE", "VERSIONS", "WRITTEN", "CycleStatus",
-    "LockBusy", "PartitionBusy", "Store", "StoreError", "open_store", "partition_stored", "previous_cycle", "read_table",
-    "stored_cycles", "write_partition",
+    "DEFAULT_SHARD",
+    "PARTITION_CLASS",
+    "PARTITION_COLUMNS",
+    "PARTITION_CYCLE",
+    "VERSIONS",
+    "WRITTEN",
+    "CycleStatus",
+    "LockBusy",
+    "PartitionBusy",
+    "Store",
+    "StoreError",
+    "open_store",
+    "partition_stored",
+    "previous_cycle",
+    "read_table",
+    "stored_cycles",
+    "write_partition",
 ]
 
 
@@ -56,12 +70,24 @@ def read_table(
     if cycle is not None:
         cycle = str(cycle)
     return open_store(store).read(
-        table, cycle=cycle, product_class=product_class, versions=versions, with_partition=with_partition, where=where, as_arrow=as_arrow
+        table,
+        cycle=cycle,
+        product_class=product_class,
+        versions=versions,
+        with_partition=with_partition,
+        where=where,
+        as_arrow=as_arrow,
     )
 
 
 def write_partition(
-    store: Path | str, table: str, data: pd.DataFrame | pa.Table, cycle: str, product_class: str, *, run_id: str | None = None
+    store: Path | str,
+    table: str,
+    data: pd.DataFrame | pa.Table,
+    cycle: str,
+    product_class: str,
+    *,
+    run_id: str | None = None,
 ) -> dict:
     """Write a new version of one partition of `table` and make it the latest (pointer record returned)."""
     return open_store(store).write(table, cycle, product_class, data, run_id=run_id)

@@ -99,7 +99,9 @@ def conform(table: pa.Table, schema: pa.Schema | None) -> pa.Table:
                 try:
                     col = col.cast(f.type)
                 except (pa.ArrowInvalid, pa.ArrowNotImplementedError) as err:
-                    raise SchemaConflict(f"column {f.name!r} was written as {col.type} and is now {f.type}: {err}") from None
+                    raise SchemaConflict(
+                        f"column {f.name!r} was written as {col.type} and is now {f.type}: {err}"
+                    ) from None
         else:
             col = pa.nulls(table.num_rows, f.type)
         columns.append(col)

@@ -73,11 +73,15 @@ class PartitionStore(dg.ConfigurableIOManager):
             if log is not None:
                 log.warning(message)
 
-        lock = self.store.partition_lock(cycle, product_class, run_id=run.run_id, command=f"run of {run.job_name}", wait_seconds=wait, say=say)
+        lock = self.store.partition_lock(
+            cycle, product_class, run_id=run.run_id, command=f"run of {run.job_name}", wait_seconds=wait, say=say
+        )
         try:
             lock.__enter__()
         except PartitionBusy as busy:
-            raise PartitionBusy(f"{busy}; this run stops (store.lock_wait_minutes is {wait / 60:g})", busy.holder) from None
+            raise PartitionBusy(
+                f"{busy}; this run stops (store.lock_wait_minutes is {wait / 60:g})", busy.holder
+            ) from None
         self._lock = lock
         record = self.store.class_record(cycle, product_class) or {}
         if record.get("state") != "pending" or record.get("run_id") != run.run_id:
@@ -113,7 +117,9 @@ class PartitionStore(dg.ConfigurableIOManager):
             )
         # an input annotated as a pyarrow Table gets one (columnar stages), any other a pandas frame
         wants_arrow = getattr(context.dagster_type, "typing_type", None) is pa.Table
-        return read_table(self.path, table, cycle=cycle, product_class=product_class, versions="latest", as_arrow=wants_arrow)
+        return read_table(
+            self.path, table, cycle=cycle, product_class=product_class, versions="latest", as_arrow=wants_arrow
+        )
 
 
 def prove_checks(
@@ -162,18 +168,26 @@ def prove_checks(
         if found is None:
             proven.append(is_trusted)
             proof.append(
-                "proven when the class last completed" if is_trusted
-                else f"written by run {r.run_id or '(none)'}, which this Dagster instance does not know; rebuild from {r.asset}"
+                "proven when the class last completed"
+                if is_trusted
+                else f"written by run {r.run_id or '(none)'}, which this Dagster instance does not know; "
+                f"rebuild from {r.asset}"
             )
             continue
         failed = [c for c in blocking.get(r.asset, []) if found.get((r.asset, c)) is False]
         missing = [c for c in blocking.get(r.asset, []) if (r.asset, c) not in found]
         if failed:
             proven.append(False)
-            proof.append(f"check {', '.join(failed)} failed in run {r.run_id}, which wrote it; fix the input and rebuild from {r.asset}")
+            proof.append(
+                f"check {', '.join(failed)} failed in run {r.run_id}, which wrote it; fix the input and "
+                f"rebuild from {r.asset}"
+            )
         elif missing and not is_trusted:
             proven.append(False)
-            proof.append(f"run {r.run_id} wrote it but never evaluated {', '.join(missing)} (stopped or killed); rebuild from {r.asset}")
+            proof.append(
+                f"run {r.run_id} wrote it but never evaluated {', '.join(missing)} (stopped or killed); "
+                f"rebuild from {r.asset}"
+            )
         else:
             proven.append(True)
             proof.append(f"checks passed in run {r.run_id}")
@@ -216,8 +230,10 @@ def mark_dead_runs_failed(instance: dg.DagsterInstance) -> list[str]:
         if not host or not pid or process_alive(host, pid, start) is not False:
             continue
         what = run.tags.get(PARTITION_TAG) or run.job_name
-        message = (f"run {run.run_id} ({what}) was executed by pid {pid} on {host}, which is no longer running "
-                   f"(killed?); marked failed so the run queue moves on")
+        message = (
+            f"run {run.run_id} ({what}) was executed by pid {pid} on {host}, which is no longer running "
+            f"(killed?); marked failed so the run queue moves on"
+        )
         instance.report_run_failed(run, message)
         messages.append(message)
     return messages

@@ -116,8 +116,10 @@ def acquire(
                 hint = "" if wait_seconds == 0 else f" after waiting {waited:.0f} s"
                 raise LockBusy(f"{what} is being written by {describe(holder)}{hint}", holder)
             if on_wait and (reminded is None or time.monotonic() - reminded >= REMIND_SECONDS):
-                on_wait(f"{what} is being written by {describe(holder)}; waiting in the queue for it"
-                        + (f" ({waited:.0f} s so far)" if reminded else ""))
+                on_wait(
+                    f"{what} is being written by {describe(holder)}; waiting in the queue for it"
+                    + (f" ({waited:.0f} s so far)" if reminded else "")
+                )
                 reminded = time.monotonic()
             time.sleep(POLL_SECONDS)
     except BaseException:

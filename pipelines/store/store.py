@@ -199,7 +199,12 @@ class Store:
         owner = {"run_id": run_id or "", "command": command, "cycle": cycle, "product_class": product_class}
         try:
             held = locks.acquire(
-                self.partition_lock_path(cycle, product_class), owner, what=what, wait_seconds=wait_seconds, on_wait=say, on_stale=say
+                self.partition_lock_path(cycle, product_class),
+                owner,
+                what=what,
+                wait_seconds=wait_seconds,
+                on_wait=say,
+                on_stale=say,
             )
         except locks.LockBusy as busy:
             raise PartitionBusy(str(busy), busy.holder) from None
@@ -212,8 +217,12 @@ class Store:
     def _publish_lock(self, say: Callable[[str], None] | None = None) -> Iterator[None]:
         self._ensure()
         held = locks.acquire(
-            self.root / "locks" / "publish.lock", {"command": "publish"}, what="the store's publication",
-            wait_seconds=PUBLISH_WAIT_SECONDS, on_wait=say, on_stale=say,
+            self.root / "locks" / "publish.lock",
+            {"command": "publish"},
+            what="the store's publication",
+            wait_seconds=PUBLISH_WAIT_SECONDS,
+            on_wait=say,
+            on_stale=say,
         )
         try:
             yield
@@ -244,7 +253,12 @@ class Store:
         if current is not None and arrow.merge_schema(current, new).equals(current):
             return
         path = self.table_dir(asset) / SCHEMA
-        held = locks.acquire(self.root / "locks" / "schema" / f"{asset}.lock", {"command": "schema"}, what=f"schema of {asset}", wait_seconds=120)
+        held = locks.acquire(
+            self.root / "locks" / "schema" / f"{asset}.lock",
+            {"command": "schema"},
+            what=f"schema of {asset}",
+            wait_seconds=120,
+        )
         try:
             self._schemas.pop(asset, None)
             merged = arrow.merge_schema(self.schema(asset), new)
@@ -282,8 +296,15 @@ class Store:
         fsync_dir(folder)
         self._widen_schema(asset, table.schema)
         pointer = {
-            "asset": asset, "cycle": cycle, "product_class": product_class, "shard": shard, "file": final.name,
-            "rows": table.num_rows, "bytes": final.stat().st_size, "run_id": run_id or "", "written_at": _now(),
+            "asset": asset,
+            "cycle": cycle,
+            "product_class": product_class,
+            "shard": shard,
+            "file": final.name,
+            "rows": table.num_rows,
+            "bytes": final.stat().st_size,
+            "run_id": run_id or "",
+            "written_at": _now(),
         }
         before = read_json(folder / LATEST)
         write_json(folder / LATEST, pointer)
@@ -385,9 +406,15 @@ class Store:
             base = self.table_dir(asset)
             cycles = [cycle] if cycle is not None else sorted(_undir(p.name) for p in base.glob("cycle=*"))
             for c in cycles:
-                classes = [product_class] if product_class is not None else sorted(_undir(p.name) for p in (base / _dir("cycle", c)).glob("class=*"))
+                classes = (
+                    [product_class]
+                    if product_class is not None
+                    else sorted(_undir(p.name) for p in (base / _dir("cycle", c)).glob("class=*"))
+                )
                 for k in classes:
-                    found += [{**p, "cycle": c, "product_class": k, "shard": s} for s, p in self.latest(asset, c, k).items()]
+                    found += [
+                        {**p, "cycle": c, "product_class": k, "shard": s} for s, p in self.latest(asset, c, k).items()
+                    ]
             return found
         cycles = [cycle] if cycle is not None else self._cycles_on_disk()
         for c in cycles:
@@ -430,7 +457,8 @@ class Store:
                 table = arrow.conform(pq.read_table(path), schema)
             except arrow.SchemaConflict as err:
                 raise StoreError(
-                    f"table {asset!r}, partition {entry['cycle']}|{entry['product_class']} in the store {self.root} was "
+                    f"table {asset!r}, partition {entry['cycle']}|{entry['product_class']} in the store "
+                    f"{self.root} was "
                     f"written by an older release: {err}; rerun the cycle {entry['cycle']} (python -m pipelines cycle "
                     f"--cycle {entry['cycle']}) to rewrite it"
                 ) from None
@@ -452,11 +480,27 @@ class Store:
         for asset_dir in sorted(tables.glob("*")) if tables.is_dir() else []:
             for e in self.entries(asset_dir.name, versions=versions):
                 rows.append(
-                    {"asset": asset_dir.name, arrow.PARTITION_CYCLE: e["cycle"], arrow.PARTITION_CLASS: e["product_class"],
-                     "shard": e["shard"], "rows": int(e["rows"]), "written_at": pd.Timestamp(e["written_at"]).tz_localize(None),
-                     "run_id": e.get("run_id", ""), "file": e["file"]}
+                    {
+                        "asset": asset_dir.name,
+                        arrow.PARTITION_CYCLE: e["cycle"],
+                        arrow.PARTITION_CLASS: e["product_class"],
+                        "shard": e["shard"],
+                        "rows": int(e["rows"]),
+                        "written_at": pd.Timestamp(e["written_at"]).tz_localize(None),
+                        "run_id": e.get("run_id", ""),
+                        "file": e["file"],
+                    }
                 )
-        columns = ["asset", arrow.PARTITION_CYCLE, arrow.PARTITION_CLASS, "shard", "rows", "written_at", "run_id", "file"]
+        columns = [
+            "asset",
+            arrow.PARTITION_CYCLE,
+            arrow.PARTITION_CLASS,
+            "shard",
+            "rows",
+            "written_at",
+            "run_id",
+            "file",
+        ]
         return pd.DataFrame(rows, columns=columns)
 
     def cycles(self, asset: str = "cycle_calendar", versions: str = "published") -> list[str]:
@@ -480,8 +524,17 @@ class Store:
         versions no longer count towards a new publication (the current one stays as it is)."""
         with self._publish_lock():
             for k in classes:
-                write_json(self.class_record_path(cycle, k), {"state": "pending", "cycle": cycle, "product_class": k,
-                                                               "command": command, "run_id": run_id, "since": _now()})
+                write_json(
+                    self.class_record_path(cycle, k),
+                    {
+                        "state": "pending",
+                        "cycle": cycle,
+                        "product_class": k,
+                        "command": command,
+                        "run_id": run_id,
+                        "since": _now(),
+                    },
+                )
 
     def complete_class(
         self,
@@ -496,19 +549,31 @@ class Store:
         """Record the class complete with `tables` (asset -> shard -> pointer); publish the cycle when
         every class of `classes` is complete. Call while holding the partition's lock."""
         with self._publish_lock(say):
-            write_json(self.class_record_path(cycle, product_class), {
-                "state": "complete", "cycle": cycle, "product_class": product_class, "run_id": run_id,
-                "completed_at": _now(), "tables": tables,
-            })
+            write_json(
+                self.class_record_path(cycle, product_class),
+                {
+                    "state": "complete",
+                    "cycle": cycle,
+                    "product_class": product_class,
+                    "run_id": run_id,
+                    "completed_at": _now(),
+                    "tables": tables,
+                },
+            )
             status = self.status(cycle, classes)
             if not status.incomplete:
                 current = self.published(cycle)
                 if current is not None:
                     write_json(self.published_path(cycle, previous=True), current)
-                write_json(self.published_path(cycle), {
-                    "cycle": cycle, "published_at": _now(), "sequence": int((current or {}).get("sequence", 0)) + 1,
-                    "classes": {k: status.records[k] for k in classes},
-                })
+                write_json(
+                    self.published_path(cycle),
+                    {
+                        "cycle": cycle,
+                        "published_at": _now(),
+                        "sequence": int((current or {}).get("sequence", 0)) + 1,
+                        "classes": {k: status.records[k] for k in classes},
+                    },
+                )
                 status.published = self.published(cycle)
                 self.refresh_views()
         self.prune(cycle, product_class)
@@ -517,7 +582,9 @@ class Store:
     def status(self, cycle: str, classes: list[str]) -> CycleStatus:
         records = {k: r for k in classes if (r := self.class_record(cycle, k)) is not None}
         writing = {k: h for k in classes if (h := self.writer_of(cycle, k)) is not None}
-        return CycleStatus(cycle=cycle, classes=list(classes), published=self.published(cycle), records=records, writing=writing)
+        return CycleStatus(
+            cycle=cycle, classes=list(classes), published=self.published(cycle), records=records, writing=writing
+        )
 
     def refresh_views(self) -> Path:
         from pipelines.store.views import write_views

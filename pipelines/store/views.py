@@ -36,9 +36,14 @@ def write_views(store) -> Path:
     written = store.partitions_written("published")
     cycles = pd.DataFrame(
         [
-            {"partition_cycle": c, "published_at": pd.Timestamp(p["published_at"]).tz_localize(None),
-             "classes": ", ".join(sorted(p.get("classes", {}))), "sequence": int(p.get("sequence", 1))}
-            for c in store.published_cycles() if (p := store.published(c))
+            {
+                "partition_cycle": c,
+                "published_at": pd.Timestamp(p["published_at"]).tz_localize(None),
+                "classes": ", ".join(sorted(p.get("classes", {}))),
+                "sequence": int(p.get("sequence", 1)),
+            }
+            for c in store.published_cycles()
+            if (p := store.published(c))
         ],
         columns=["partition_cycle", "published_at", "classes", "sequence"],
     )
@@ -50,7 +55,10 @@ def write_views(store) -> Path:
                 for r in group.itertuples(index=False)
             ]
             listing = ", ".join(_literal(f) for f in files)
-            con.execute(f"CREATE VIEW {_quote(asset)} AS SELECT * FROM read_parquet([{listing}], union_by_name = true, hive_partitioning = false)")
+            con.execute(
+                f"CREATE VIEW {_quote(asset)} AS SELECT * FROM read_parquet([{listing}], union_by_name = true, "
+                "hive_partitioning = false)"
+            )
         con.register("written_frame", written)
         con.execute("CREATE TABLE partitions_written AS SELECT * FROM written_frame")
         con.register("cycles_frame", cycles)
