@@ -11,6 +11,7 @@ import dagster as dg
 import pandas as pd
 
 from assets.common import rule_check, schema_check_spec, table_metadata, validate
+from pipelines.checks import BY_NAME, TABLES_PASSED_THEIR_CHECKS
 from pipelines.cycle_report import write_cycle_report
 from pipelines.partitions import cycle_class_partitions, split_key
 from pipelines.resources import PlanningConfigResource
@@ -19,13 +20,7 @@ from pipelines.store import open_store
 from pipelines.store.dagster_io import prove_checks
 
 PUBLICATION = "publication"
-TABLES_PASSED_THEIR_CHECKS = "tables_passed_their_checks"
-PROOF_TEXT = (
-    "Proves that every table version this class publishes passed its blocking checks in the run that wrote it (a "
-    "rebuild reuses the stored upstream tables, which an earlier run may have written and failed). When it fails, "
-    "the class is not recorded complete and readers keep the last published cycle; rebuild from the first listed "
-    "asset (python -m pipelines rebuild --class CLASS --from ASSET) or rerun the cycle."
-)
+PROOF_TEXT = BY_NAME[TABLES_PASSED_THEIR_CHECKS].description
 VERSION_COLUMNS = ["asset", "shard", "file", "rows", "run_id", "written_at"]
 
 
