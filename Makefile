@@ -4,8 +4,9 @@ VENV := .venv
 BIN := $(VENV)/bin
 export DAGSTER_HOME := $(CURDIR)/.dagster
 export APPORTION_CONFIG ?= config/planning.yaml
-# partitions (classes) run at once: by `make demo` (cycle --parallel) and by the UI's run queue
-PARALLEL ?= 2
+# partitions (classes) run at once: by `make demo` (cycle --parallel) and by the UI's run queue. 1 by default: on the
+# 2-core demo machine 2 at once was no faster (benchmarks/README.md); raise it where cores are free
+PARALLEL ?= 1
 
 .PHONY: demo test ui rebuild summary bench browser-deps clean
 
