@@ -1,11 +1,13 @@
 """Command line: `python -m pipelines cycle` runs the weekly cycle and prints its summary.
 
-    python -m pipelines cycle [--config config/planning.yaml] [--cycle YYYY-MM-DD] [--class CLS ...]
-    python -m pipelines rebuild --class CLS [--from share_tables] [--cycle YYYY-MM-DD]
-    python -m pipelines summary [--config ...] [--cycle YYYY-MM-DD]   # a stored cycle, no run
-    python -m pipelines explain PRODUCT SITE CUSTOMER [--period P] [--cycle C]   # how a leaf value was made
-    python -m pipelines report [--cycle C]             # the cycle's HTML page again
-    python -m pipelines demo-data [--out data/demo]   # regenerate the bundled demo files
+python -m pipelines cycle [--config config/planning.yaml] [--cycle YYYY-MM-DD] [--class CLS ...] [--parallel K]
+                          [--if-busy wait|stop]
+python -m pipelines rebuild --class CLS [--from share_tables] [--cycle YYYY-MM-DD]
+python -m pipelines summary [--config ...] [--cycle YYYY-MM-DD]   # a stored cycle, no run
+python -m pipelines explain PRODUCT SITE CUSTOMER [--period P] [--cycle C]   # how a leaf value was made
+python -m pipelines report [--cycle C]             # the cycle's HTML page again
+python -m pipelines views                          # the DuckDB views over the published cycles again
+python -m pipelines demo-data [--out data/demo]   # regenerate the bundled demo files
 """
 
 from __future__ import annotations
@@ -43,14 +45,29 @@ def run_cycle(
     rebuild_from: str | None = None,
     summary: bool = True,
     backfill: int = 0,
+    parallel: int = 1,
+    if_busy: str = "wait",
 ) -> int:
     """Run the cycle (or, with `rebuild_from`, that asset and everything downstream) for each class; 0 when no
     ERROR check failed.
+
+    `parallel`: partitions run at once, each in its own process (1: one after
+    another in this process). `if_busy`: when another run writes a partition,
+    `wait` in the queue for it or `stop` (exit 2), naming that run.
     """
     from pipelines.definitions import build_definitions
     from pipelines.partitions import current_cycle
     from pipelines.resources import PlanningConfigResource
-    from pipelines.runner import rebuild_selection, run_partitions
+    from pipelines.runner import (
+        PartitionOutcome,
+        blocking_checks_pass,
+        rebuild_selection,
+        run_partitions,
+        run_partitions_parallel,
+    )
+    from pipelines.store import PartitionBusy, open_store
+    from pipelines.store.dagster_io import mark_dead_runs_failed
+    from pipelines.store.locks import describe
 
     config = PlanningConfigResource(path=config_path).config
     cycle = current_cycle(config, cycle)
@@ -61,51 +78,96 @@ def run_cycle(
             f"{config.source}: --class {unknown} not under product_classes; valid classes are "
             f"{sorted(config.product_classes)}"
         )
+    if parallel < 1:
+        raise ConfigError(f"--parallel {parallel}: give 1 or more partitions to run at once")
     defs = build_definitions(config_path)
     selection = rebuild_selection(defs, rebuild_from) if rebuild_from else None
     what = f"{rebuild_from} and downstream" if rebuild_from else "whole cycle"
+    command = f"rebuild --from {rebuild_from}" if rebuild_from else "cycle"
+    wait_seconds = 0 if if_busy == "stop" else None
 
     now = {"cycle": cycle, "what": what, "of": len(chosen)}  # what the progress lines name
 
     def started(i: int, product_class: str) -> None:
         print(f"[{i}/{now['of']}] cycle {now['cycle']}, class {product_class}: {now['what']} ...", flush=True)
 
-    def done(product_class: str, result, seconds: float) -> None:
-        print(f"    run {result.run_id}: {'succeeded' if result.success else 'FAILED'} in {seconds:.0f} s", flush=True)
-        for event in (e for e in result.all_events if e.is_step_failure):
-            error = event.event_specific_data.error
-            message = error.cause.message if error and error.cause else (error.message if error else event.message)
-            print(f"    step {event.step_key} failed: {message.strip()}")
+    def done(outcome: PartitionOutcome) -> None:
+        print(
+            f"    {outcome.product_class}: run {outcome.run_id}: {'succeeded' if outcome.success else 'FAILED'} "
+            f"in {outcome.seconds:.0f} s",
+            flush=True,
+        )
+        for step, message in outcome.failures:
+            print(f"    step {step} failed: {message}")
 
     run_config = {"loggers": {"console": {"config": {"log_level": "INFO"}}}}
     instance = _instance()
+    # runs whose process died (kill -9, out of memory) would stay STARTED for ever and block the run queue
+    for message in mark_dead_runs_failed(instance):
+        print(f"recovery: {message}", flush=True)
+    store = open_store(config.store.path)
+    store.check_layout()
+
+    def run_classes(
+        run_cycle_key: str, run_classes: list[str], run_selection, first: str | None
+    ) -> list[PartitionOutcome]:
+        if if_busy == "stop":
+            busy = {k: h for k in run_classes if (h := store.writer_of(run_cycle_key, k)) is not None}
+            if busy:
+                raise PartitionBusy(
+                    "; ".join(
+                        f"partition {run_cycle_key}|{k} is being written by {describe(h)}" for k, h in busy.items()
+                    )
+                    + " (--if-busy wait to queue behind it)",
+                    next(iter(busy.values())),
+                )
+        if parallel > 1:
+            return run_partitions_parallel(
+                config_path,
+                instance,
+                run_cycle_key,
+                run_classes,
+                parallel=parallel,
+                all_classes=list(config.product_classes),
+                first=first,
+                run_config=run_config,
+                on_start=started,
+                on_done=done,
+                wait_seconds=wait_seconds,
+                command=command,
+            )
+        result = run_partitions(
+            defs,
+            instance,
+            run_cycle_key,
+            run_classes,
+            all_classes=list(config.product_classes),
+            selection=run_selection,
+            run_config=run_config,
+            on_start=started,
+            wait_seconds=wait_seconds,
+            command=command,
+            on_done=lambda k, r, sec: done(PartitionOutcome.from_result(k, r, sec)),
+        )
+        return [PartitionOutcome.from_result(k, r, result.seconds[k]) for k, r in result.results.items()]
+
     ok = True
     for earlier in _missing_earlier_cycles(config, cycle, backfill):
         print(
-            f"backfill: cycle {earlier} is not in the store yet; running it first (share drift compares with it)",
+            f"backfill: cycle {earlier} is not published in the store yet; running it first "
+            "(share drift compares with it)",
             flush=True,
         )
         now.update(cycle=earlier, what="whole cycle", of=len(config.product_classes))
-        past = run_partitions(
-            defs, instance, earlier, list(config.product_classes), run_config=run_config, on_start=started, on_done=done
-        )
-        ok = ok and past.success and past.blocking_checks_pass
+        past = run_classes(earlier, list(config.product_classes), None, None)
+        ok = ok and all(o.success for o in past) and blocking_checks_pass(past)
     now.update(cycle=cycle, what=what, of=len(chosen))
     # progress at INFO on the console; the full event log stays in the instance (and the UI)
-    run = run_partitions(
-        defs,
-        instance,
-        cycle,
-        chosen,
-        all_classes=list(config.product_classes),
-        selection=selection,
-        run_config=run_config,
-        on_start=started,
-        on_done=done,
-    )
+    outcomes = run_classes(cycle, chosen, selection, rebuild_from)
     checks = [
-        (f"{e.asset_key.to_user_string()} [{c}]", e.check_name, e.passed, e.severity.value)
-        for c, e in run.checks_by_class()
+        (f"{e.asset_key.to_user_string()} [{o.product_class}]", e.check_name, e.passed, e.severity.value)
+        for o in outcomes
+        for e in o.checks
     ]
     if summary:
         print_summary(config_path, checks, cycle=cycle)
@@ -113,12 +175,14 @@ def run_cycle(
     from pipelines.cycle_report import write_cycle_report
 
     print(f"report:       {write_cycle_report(config, instance, cycle)}")
+    if any(o.exit_code == 2 for o in outcomes):
+        return 2
     # a failed WARN check is reported but does not fail the command; an ERROR check does
-    return 0 if ok and run.success and run.blocking_checks_pass else 1
+    return 0 if ok and all(o.success for o in outcomes) and blocking_checks_pass(outcomes) else 1
 
 
 def _missing_earlier_cycles(config, cycle: str, count: int) -> list[str]:
-    """The `count` cycles before `cycle` that have no cycle_calendar rows in the store, oldest first."""
+    """The `count` cycles before `cycle` that are not published in the store, oldest first."""
     import pandas as pd
 
     from pipelines.calendar import shift_periods
@@ -133,39 +197,74 @@ def _missing_earlier_cycles(config, cycle: str, count: int) -> list[str]:
 def print_summary(
     config_path: str, checks: list[tuple[str, str, bool, str]] | None = None, cycle: str | None = None
 ) -> None:
-    from pipelines.resources import PlanningConfigResource, read_table, stored_cycles
+    """The summary of a published cycle (default the latest); an incomplete cycle is marked as such."""
+    from pipelines.resources import PlanningConfigResource, read_table
+    from pipelines.store import open_store
 
     config = PlanningConfigResource(path=config_path).config
-    store = Path(config.store.path)
-    if not store.exists():
-        print(f"no store at {store}: nothing has been materialized yet")
+    store = open_store(config.store.path)
+    if not store.check_layout():
+        print(f"no store at {store.root}: nothing has been materialized yet")
         return
+    classes = list(config.product_classes)
+    published = store.published_cycles()
+    asked = cycle
+    if cycle is None or cycle not in published:
+        cycle = max((c for c in published if asked is None or c <= asked), default=None)
 
-    cycles = stored_cycles(store)
-    if not cycles:
-        print(f"no cycle in the store {store} yet")
+    print()
+    print(
+        f"store:        {store.root.resolve()}  (a Parquet file per asset partition; published cycles as SQL views in "
+        f"{store.views_path})"
+    )
+    print(
+        f"cycles:       {', '.join(published) or 'none published yet'}"
+        + (f"  (this summary: {cycle})" if cycle else "")
+    )
+    for status in (store.status(c, classes) for c in store.known_cycles()):
+        if not status.incomplete or (status.cycle < (cycle or "") and status.cycle != asked):
+            continue
+        if status.is_published:
+            head = (
+                f"a later run of cycle {status.cycle} has not completed; readers still see it as published "
+                f"{status.published['published_at'][:19]} UTC"
+            )
+        else:
+            head = (
+                f"cycle {status.cycle} is not published: nothing of it is visible until every class passed its "
+                "blocking checks"
+            )
+        print(f"INCOMPLETE:   {head}")
+        for k in classes:
+            print(f"                {status.describe_class(k)}")
+    if cycle is None:
+        if checks is not None:
+            _print_checks(checks)
+        print(f"open the UI:  {UI_COMMAND}")
         return
-    cycle = cycle or cycles[-1]
 
     def table(name: str):
-        return read_table(store, name, cycle=cycle)  # None when the run stopped before this asset
+        return read_table(store.root, name, cycle=cycle)  # None when the table is not in the store
 
     def count(name: str) -> str:
         frame = table(name)
         return "-" if frame is None else f"{len(frame):,}"
 
-    print()
-    print(f"store:        {store.resolve()}  (one table per asset, every cycle kept; query with duckdb)")
-    print(f"cycles:       {', '.join(cycles)}  (this summary: {cycle})")
     cal = table("cycle_calendar")
     if cal is not None and len(cal):
         c = cal.iloc[0]
-        print(f"cycle date:   {c['cycle_date']:%Y-%m-%d}, {c['horizon']} {c['period']}s ahead, "
-              f"history from {c['history_start']:%Y-%m-%d} ({c['history_periods']} periods)")
-    print(f"rows in:      {count('raw_history')} raw history lines, {count('rejected_rows')} rejected, "
-          f"{count('history_corrections')} corrections")
-    print(f"rows out:     {count('share_tables')} shares, {count('parent_forecast')} parent forecast rows, "
-          f"{count('statistical_forecast')} leaf forecast rows, {count('reconciliation')} reconciliation rows")
+        print(
+            f"cycle date:   {c['cycle_date']:%Y-%m-%d}, {c['horizon']} {c['period']}s ahead, "
+            f"history from {c['history_start']:%Y-%m-%d} ({c['history_periods']} periods)"
+        )
+    print(
+        f"rows in:      {count('raw_history')} raw history lines, {count('rejected_rows')} rejected, "
+        f"{count('history_corrections')} corrections"
+    )
+    print(
+        f"rows out:     {count('share_tables')} shares, {count('parent_forecast')} parent forecast rows, "
+        f"{count('statistical_forecast')} leaf forecast rows, {count('reconciliation')} reconciliation rows"
+    )
     shares = table("share_tables")
     if shares is not None and len(shares):
         parents = shares.drop_duplicates(["product", "site"])
@@ -206,11 +305,15 @@ def print_summary(
     elif drift is not None:
         print("share drift:  no previous cycle in the store to compare with (python -m pipelines cycle --backfill 1)")
     if checks is not None:
-        failed = [c for c in checks if not c[2]]
-        print(f"checks:       {len(checks) - len(failed)} passed, {len(failed)} failed")
-        for asset, name, _, severity in failed:
-            print(f"  FAILED {severity:<5} {asset}: {name}")
+        _print_checks(checks)
     print(f"open the UI:  {UI_COMMAND}")
+
+
+def _print_checks(checks: list[tuple[str, str, bool, str]]) -> None:
+    failed = [c for c in checks if not c[2]]
+    print(f"checks:       {len(checks) - len(failed)} passed, {len(failed)} failed")
+    for asset, name, _, severity in failed:
+        print(f"  FAILED {severity:<5} {asset}: {name}")
 
 
 def explain(config_path: str, product: str, site: str, customer: str, period: str | None, cycle: str | None) -> int:
@@ -222,9 +325,12 @@ def explain(config_path: str, product: str, site: str, customer: str, period: st
     store = Path(config.store.path)
     cycles = stored_cycles(store)
     if not cycles:
-        raise PlanningError(f"no cycle in the store {store} yet; run one first (make demo)")
+        raise PlanningError(f"no cycle published in the store {store} yet; run one first (make demo)")
     if cycle is not None and cycle not in cycles:
-        raise PlanningError(f"cycle {cycle} is not in the store {store}; stored cycles: {', '.join(cycles)}")
+        raise PlanningError(
+            f"cycle {cycle} is not published in the store {store} (python -m pipelines summary says why); "
+            f"published cycles: {', '.join(cycles)}"
+        )
     cycle = cycle or cycles[-1]
     parent = {"product": product.strip(), "site": site.strip()}
     tables = {
@@ -243,7 +349,7 @@ def report(config_path: str, cycle: str | None) -> int:
     config = PlanningConfigResource(path=config_path).config
     cycles = stored_cycles(config.store.path)
     if not cycles:
-        raise PlanningError(f"no cycle in the store {config.store.path} yet; run one first (make demo)")
+        raise PlanningError(f"no cycle published in the store {config.store.path} yet; run one first (make demo)")
     print(write_cycle_report(config, _instance(), cycle or cycles[-1]))
     return 0
 
@@ -257,6 +363,21 @@ def main(argv: list[str] | None = None) -> int:
     def config_arg(p):
         p.add_argument(
             "--config", default="", help="planning config (default $APPORTION_CONFIG or config/planning.yaml)"
+        )
+
+    def run_args(p):
+        p.add_argument(
+            "--parallel",
+            type=int,
+            default=1,
+            metavar="K",
+            help="run K partitions (classes) at once, one process each (default 1: one after another)",
+        )
+        p.add_argument(
+            "--if-busy",
+            choices=("wait", "stop"),
+            default="wait",
+            help="when another run writes a partition: wait in the queue for it (default) or stop with exit 2",
         )
 
     p = sub.add_parser("cycle", help="run the weekly cycle for every class (or --class ...) and print a summary")
@@ -274,8 +395,9 @@ def main(argv: list[str] | None = None) -> int:
         type=int,
         default=0,
         metavar="N",
-        help="first run the N cycles before it that the store does not hold yet",
+        help="first run the N cycles before it that the store has not published",
     )
+    run_args(p)
     p = sub.add_parser(
         "rebuild",
         help="rematerialize one asset and everything downstream for one class, from the stored upstream tables",
@@ -286,6 +408,7 @@ def main(argv: list[str] | None = None) -> int:
     )
     p.add_argument("--from", dest="asset", default="share_tables", help="first asset to rebuild (default share_tables)")
     p.add_argument("--cycle", default=None, help="cycle date (default: the current cycle)")
+    run_args(p)
     p = sub.add_parser("summary", help="summarise a stored cycle (default the latest), no run")
     config_arg(p)
     p.add_argument("--cycle", default=None)
@@ -303,19 +426,46 @@ def main(argv: list[str] | None = None) -> int:
     p = sub.add_parser("report", help="write the cycle's HTML report again (var/reports/<cycle>/cycle_report.html)")
     config_arg(p)
     p.add_argument("--cycle", default=None, help="a stored cycle (default the latest)")
+    p = sub.add_parser(
+        "views", help="write the DuckDB views over the published cycles again (<store>/published.duckdb)"
+    )
+    config_arg(p)
     p = sub.add_parser("demo-data", help="regenerate the bundled demo input files")
     p.add_argument("--out", default="data/demo")
     p.add_argument("--seed", type=int, default=None)
     args = parser.parse_args(argv)
     try:
         if args.command == "cycle":
-            return run_cycle(args.config, cycle=args.cycle, classes=args.classes, backfill=args.backfill)
+            return run_cycle(
+                args.config,
+                cycle=args.cycle,
+                classes=args.classes,
+                backfill=args.backfill,
+                parallel=args.parallel,
+                if_busy=args.if_busy,
+            )
         if args.command == "rebuild":
-            return run_cycle(args.config, cycle=args.cycle, classes=args.classes, rebuild_from=args.asset)
+            return run_cycle(
+                args.config,
+                cycle=args.cycle,
+                classes=args.classes,
+                rebuild_from=args.asset,
+                parallel=args.parallel,
+                if_busy=args.if_busy,
+            )
         if args.command == "explain":
             return explain(args.config, args.product, args.site, args.customer, args.period, args.cycle)
         if args.command == "report":
             return report(args.config, args.cycle)
+        if args.command == "views":
+            from pipelines.resources import PlanningConfigResource
+            from pipelines.store import open_store
+
+            store = open_store(PlanningConfigResource(path=args.config).config.store.path)
+            if not store.check_layout():
+                raise PlanningError(f"no store at {store.root} yet; run a cycle first (make demo)")
+            print(store.refresh_views())
+            return 0
         if args.command == "summary":
             print_summary(args.config, cycle=args.cycle)
             return 0

@@ -50,6 +50,7 @@ EVERY_ACTIVE_PARENT_HAS_CHILDREN = "every_active_parent_has_children"
 MEASURES_SUM_TO_PARENT = "measures_sum_to_parent"
 PINS_KEPT = "pins_kept"
 PINS_WITHIN_PARENT = "pins_within_parent"
+TABLES_PASSED_THEIR_CHECKS = "tables_passed_their_checks"
 
 CHECKS: tuple[Check, ...] = (
     Check(
@@ -191,6 +192,15 @@ CHECKS: tuple[Check, ...] = (
         "parent periods: the pins are kept, the other customers get 0, and the customers sum to the pins, not to the "
         "parent. When it fires (a warning, not a stop): lower the listed pins or raise the parent value if the parent "
         "should hold.",
+    ),
+    Check(
+        TABLES_PASSED_THEIR_CHECKS,
+        "publication",
+        True,
+        "Proves that every table version this class publishes passed its blocking checks in the run that wrote it (a "
+        "rebuild reuses the stored upstream tables, which an earlier run may have written and failed). When it fails, "
+        "the class is not recorded complete and readers keep the last published cycle; rebuild from the first listed "
+        "asset (python -m pipelines rebuild --class CLASS --from ASSET) or rerun the cycle.",
     ),
 )
 BY_NAME = {c.name: c for c in CHECKS}

@@ -26,6 +26,7 @@ RULE_CHECKS = {
     ("plan_measures", "measures_sum_to_parent", "ERROR"),
     ("plan_measures", "pins_kept", "ERROR"),
     ("plan_measures", "pins_within_parent", "WARN"),  # pins_exceed_parent until this release
+    ("publication", "tables_passed_their_checks", "ERROR"),
 }
 
 
