@@ -4,15 +4,17 @@ The correct outputs are two partitions of the demo cycle made by the stages'
 own runs (`stage_runs.run_partition`): `consumables` (top-down; the demo's
 lifecycle cases, pins, returns and outliers) and `spares` with the
 `children_forecast` share method and a backtest between `mint_shrink` and
-`wls_var` (so its forecast is reconciled and its period basis is stored).
-Each check is judged by the function its stage's `run` calls, on the tables
-as the stage wrote them (`JUDGES`). `MUTATIONS` lists, per blocking rule check
+`wls_var` (so its forecast is reconciled and its period basis is stored);
+and the publication's input (one version per table of the class, each written
+by the run that publishes it). Each check is judged by the function its
+stage's `run` (or the publication asset) calls, on the tables as they were
+written (`JUDGES`). `MUTATIONS` lists, per blocking rule check
 of the catalogue (`pipelines.checks.CHECKS`), one or more corruptions and the
 key of the row the check must name; a blocking check without one fails
 `test_every_blocking_check_has_a_mutation`. Every asset's schema check
 (`<asset>_matches_schema`, blocking) is corrupted the same way for every
 pandera model (`pipelines.tables.MODELS`): one cell of a required column
-blanked. DEVELOPERS.md keeps the table check -> test.
+blanked, and so is the publication's. DEVELOPERS.md keeps the table check -> test.
 """
 
 from __future__ import annotations
@@ -38,10 +40,45 @@ def runs() -> dict[str, PartitionRun]:
     backtest = yaml.safe_load((ROOT / "config" / "planning.yaml").read_text())["backtest"]
     backtest["strategies"] = ["mint_shrink", "wls_var"]
     config = demo_config({"spares": {"method": "children_forecast"}}, backtest=backtest)
-    return {
+    runs = {
         "consumables": run_partition(config, CYCLE, "consumables"),
         "spares": run_partition(config, CYCLE, "spares", backtest=True),
     }
+    runs["publication"] = _publication_case(runs["consumables"])
+    return runs
+
+
+THIS_RUN = "run-that-wrote-every-table"
+
+
+def _publication_case(run: PartitionRun) -> PartitionRun:
+    """The publication's input as its asset builds it: one version per asset table of the class, every one
+    written by this run, and each asset's blocking checks (as `assets.publication.publication_asset` collects them)."""
+    import dagster as dg
+
+    from pipelines.definitions import ASSETS
+
+    blocking: dict[str, list[str]] = {}
+    tables = []
+    for a in ASSETS:
+        if "publication" in {k.to_user_string() for k in a.keys}:
+            continue
+        tables += [k.to_user_string() for k in a.keys]
+        for spec in a.check_specs:
+            if spec.blocking:
+                blocking.setdefault(spec.asset_key.to_user_string(), []).append(spec.name)
+    versions = pd.DataFrame(
+        {
+            "asset": tables,
+            "shard": "0",
+            "file": [f"{t}/{CYCLE}/consumables/0/v1.parquet" for t in tables],
+            "rows": [len(run.tables.get(t, ())) for t in tables],
+            "run_id": THIS_RUN,
+            "written_at": "2026-11-30T06:00:00+00:00",
+        }
+    )
+    settings = {"instance": dg.DagsterInstance.ephemeral(), "blocking": blocking, "trusted": set()}
+    return PartitionRun(run.config, {"publication_versions": versions}, {"publication": settings})
 
 
 # ------------------------------------------------------------------ the checks, as the stages judge them
@@ -103,6 +140,22 @@ def _shares_check(run: PartitionRun, t: Tables):
     return {C.SHARES_SUM_TO_ONE: CheckRows(find_shares_not_summing_to_one(t["reinitialized_target"]))}
 
 
+def _proven_versions(run: PartitionRun, t: Tables) -> pd.DataFrame:
+    from pipelines.store.dagster_io import prove_checks
+
+    s = run.settings["publication"]
+    return prove_checks(s["instance"], THIS_RUN, t["publication_versions"], s["blocking"], s["trusted"])
+
+
+def _publication_checks(run: PartitionRun, t: Tables):
+    from pipelines.results import CheckRows
+
+    # as assets.publication: the versions whose proof failed are the failing rows
+    versions = _proven_versions(run, t)
+    unproven = versions[~versions["proven"].astype(bool)]
+    return {C.TABLES_PASSED_THEIR_CHECKS: CheckRows(unproven[["asset", "shard", "run_id", "proof"]])}
+
+
 JUDGES: dict[str, Callable[[PartitionRun, Tables], dict]] = {
     C.EVERY_RAW_ROW_ACCOUNTED: _history_checks,
     C.CORRECTIONS_EXPLAIN_CHANGES: _history_checks,
@@ -114,6 +167,7 @@ JUDGES: dict[str, Callable[[PartitionRun, Tables], dict]] = {
     C.EVERY_ACTIVE_PARENT_HAS_CHILDREN: _reconciliation_checks,
     C.MEASURES_SUM_TO_PARENT: _plan_checks,
     C.PINS_KEPT: _plan_checks,
+    C.TABLES_PASSED_THEIR_CHECKS: _publication_checks,
 }
 
 
@@ -320,6 +374,19 @@ def pinned_row_lost(t: Tables):
     return {"plan_measures": plan.drop(index=i)}, _key(plan.loc[i], LEAF_PERIOD + ["measure"])
 
 
+def version_from_an_unknown_run(t: Tables):
+    # a table version this run did not write (a rebuild reused it) whose run the instance does not know
+    versions = t["publication_versions"]
+    i = versions.index[versions["asset"] == "share_tables"][0]
+    return {"publication_versions": _changed(versions, i, "run_id", "run-nobody-knows")}, {"asset": "share_tables"}
+
+
+def version_never_written(t: Tables):
+    versions = t["publication_versions"]
+    i = versions.index[versions["asset"] == "reconciliation"][0]
+    return {"publication_versions": _changed(versions, i, "file", None)}, {"asset": "reconciliation"}
+
+
 @dataclass(frozen=True)
 class Mutation:
     check: str
@@ -360,6 +427,8 @@ MUTATIONS = [
              _named(lambda t: measure_value_changed(t, "list_price"), "replicated_price_changed")),
     Mutation(C.PINS_KEPT, "consumables", pin_changed),
     Mutation(C.PINS_KEPT, "consumables", pinned_row_lost),
+    Mutation(C.TABLES_PASSED_THEIR_CHECKS, "publication", version_from_an_unknown_run),
+    Mutation(C.TABLES_PASSED_THEIR_CHECKS, "publication", version_never_written),
 ]
 
 
@@ -371,10 +440,10 @@ def test_every_blocking_check_has_a_mutation():
     assert blocking == {m.check for m in MUTATIONS} == set(JUDGES)
 
 
-@pytest.mark.parametrize("partition", ["consumables", "spares"])
+@pytest.mark.parametrize("partition", ["consumables", "spares", "publication"])
 def test_every_blocking_check_passes_on_the_correct_output(runs, partition):
     run = runs[partition]
-    for check in JUDGES:
+    for check in {m.check for m in MUTATIONS if m.partition == partition}:
         rows = failing_rows(check, run)
         assert rows.empty, f"{check} fails on the correct {partition} output:\n{rows.head()}"
     # the spares partition is reconciled (the backtest chose between MinT and WLS) and stores its period basis
@@ -395,28 +464,44 @@ def test_a_corrupted_output_fails_the_check_naming_the_row(runs, mutation):
 # ------------------------------------------------------------------ the schema checks, one per asset
 
 
+def _model(name: str):
+    from pipelines.schemas_forecast import ClassPublication
+
+    return ClassPublication if name == "publication" else MODELS[name]
+
+
 def _schema_case(runs, name: str) -> tuple[pd.DataFrame, str]:
     """A correct table of asset `name` with rows, and a required column that is not a flag."""
-    frame = next((r.tables[name] for r in runs.values() if len(r.tables[name])), None)
+    if name == "publication":
+        frame = _proven_versions(runs["publication"], runs["publication"].tables)
+    else:
+        frame = next((r.tables[name] for r in runs.values() if len(r.tables.get(name, ()))), None)
     assert frame is not None, f"no partition of the fixture gives {name} a row: extend `runs` so it does"
-    columns = MODELS[name].to_schema().columns
+    columns = _model(name).to_schema().columns
     required = [c for c, col in columns.items() if not col.nullable and str(col.dtype) != "bool"]
     assert required, f"{name}: no required column to blank"
     return frame, required[0]
 
 
-@pytest.mark.parametrize("name", sorted(MODELS))
+def test_every_asset_has_its_schema_mutation():
+    from pipelines.definitions import ASSETS
+
+    assets = {k.to_user_string() for a in ASSETS for k in a.keys}
+    assert assets == set(MODELS) | {"publication"}
+
+
+@pytest.mark.parametrize("name", sorted(MODELS) + ["publication"])
 def test_a_blanked_cell_fails_the_assets_schema_check_naming_the_row(runs, name):
     from assets.common import validate
 
     frame, column = _schema_case(runs, name)
-    _, passed = validate(frame, MODELS[name], name)
+    _, passed = validate(frame, _model(name), name)
     assert passed.passed, f"{name}_matches_schema fails on the correct output"
     i = frame.index[len(frame) // 2]
     broken = frame.copy()
     broken[column] = broken[column].astype(object)
     broken.loc[i, column] = None
-    _, check = validate(broken, MODELS[name], name)
+    _, check = validate(broken, _model(name), name)
     assert not check.passed and check.check_name == f"{name}_matches_schema"
     assert check.metadata["failing_row_count"].value == 1
     # the failing rows sample is that row (the markdown table of the frame's row, other cells as they were)
