@@ -90,6 +90,7 @@ def parent_forecast(strategy="top_down", zero_h3=False):
                 "S1",
                 pd.Timestamp(start),
                 0.0 if zero else value,
+                value,  # strategy_forecast: the model's value, also where the lifecycle set the period to 0
                 "auto_ets(season_length=1)",
                 "smooth",
                 "parent",
@@ -106,6 +107,7 @@ def parent_forecast(strategy="top_down", zero_h3=False):
             "site",
             "period_start",
             "forecast",
+            "strategy_forecast",
             "model",
             "demand_class",
             "model_grain",
