@@ -3,7 +3,7 @@
 import dagster as dg
 import pandas as pd
 
-from assets.common import schema_check_spec, table_metadata, validate
+from assets.common import partition_metadata, schema_check_spec, table_metadata, validate
 from pipelines.partitions import cycle_class_partitions, partition_config
 from pipelines.resources import PlanningConfigResource
 from pipelines.schemas import BacktestAccuracy, StrategyChoice
@@ -65,5 +65,6 @@ def backtest_accuracy(
             "proves": dg.MetadataValue.text(CHOICE_CHECK_TEXT.split(". When")[0]),
             "strategy_choice": table_metadata(choice)["preview"],
             **({"failing_rows_sample": table_metadata(losing)["preview"]} if len(losing) else {}),
+            **partition_metadata(),
         },
     )

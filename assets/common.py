@@ -62,15 +62,44 @@ def schema_check_spec(asset_name: str, model: type[pa.DataFrameModel]) -> dg.Ass
     )
 
 
-def validate(df: pd.DataFrame, model: type[pa.DataFrameModel], asset_name: str) -> tuple[pd.DataFrame, dg.AssetCheckResult]:
-    """Validate lazily against `model`; the coerced frame (or `df` unchanged on failure) and the check result."""
+def partition_metadata() -> dict:
+    """The cycle and product class of the partition being materialized ({} outside a partitioned run).
+
+    Every check result carries them, so the UI, the console and the report say
+    which class an evaluation is for.
+    """
+    try:
+        key = dg.AssetExecutionContext.get().partition_key
+    except Exception:  # no run, or a run without a partition: nothing to add
+        return {}
+    cycle, _, product_class = str(key).partition("|")
+    return {"partition_cycle": dg.MetadataValue.text(cycle), "partition_class": dg.MetadataValue.text(product_class)}
+
+
+SCHEMA_FIX = "correct the listed rows (file and row given where the asset is an input file) and run the cycle again"
+
+
+def validate(
+    df: pd.DataFrame, model: type[pa.DataFrameModel], asset_name: str, source: str | None = None
+) -> tuple[pd.DataFrame, dg.AssetCheckResult]:
+    """Validate lazily against `model`; the coerced frame (or `df` unchanged on failure) and the check result.
+
+    `source`: the input file `df` was read from, its index being each line's
+    `source_row`; the failing rows and cases then say `file` and `row`.
+    """
     try:
         out = model.validate(df, lazy=True)
     except pandera.errors.SchemaErrors as err:
-        cases = err.failure_cases
+        cases = err.failure_cases.copy()
         by_check = cases.groupby(["column", "check"], dropna=False).size().reset_index(name="failures")
+        located = source is not None and df.index.name == "source_row"
         index = pd.to_numeric(cases["index"], errors="coerce").dropna().astype(int).unique()
         rows = df.loc[df.index.intersection(index)].head(SAMPLE_ROWS)
+        if located:
+            rows = rows.reset_index().rename(columns={"source_row": "row"})
+            rows.insert(0, "file", source)
+            cases = cases.rename(columns={"index": "row"})
+            cases.insert(0, "file", source)
         return df, dg.AssetCheckResult(
             asset_key=asset_name,
             check_name=schema_check_name(asset_name),
@@ -82,13 +111,15 @@ def validate(df: pd.DataFrame, model: type[pa.DataFrameModel], asset_name: str) 
                 "failures_by_check": markdown(by_check.astype(str), rows=SAMPLE_ROWS),
                 "failure_cases_sample": markdown(cases.astype(str), rows=SAMPLE_ROWS),
                 "failing_rows_sample": markdown(rows, rows=SAMPLE_ROWS),
+                "what_to_do": dg.MetadataValue.text(SCHEMA_FIX),
+                **partition_metadata(),
             },
         )
     return out, dg.AssetCheckResult(
         asset_key=asset_name,
         check_name=schema_check_name(asset_name),
         passed=True,
-        metadata={"rows_checked": dg.MetadataValue.int(len(df))},
+        metadata={"rows_checked": dg.MetadataValue.int(len(df)), **partition_metadata()},
     )
 
 
@@ -110,6 +141,7 @@ def rule_check(
         metadata["failing_rows_sample"] = markdown(failing, rows=SAMPLE_ROWS)
     for key, value in extra.items():
         metadata[key] = value if isinstance(value, dg.MetadataValue) else dg.MetadataValue.text(str(value))
+    metadata.update(partition_metadata())
     return dg.AssetCheckResult(
         asset_key=asset_name,
         check_name=check_name,

@@ -67,10 +67,62 @@ class Frozen(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
 
 
+class PlausibilityConfig(Frozen):
+    """Bounds a history line must lie within (pipelines/stages/cleaned_history.py); a line outside is rejected.
+
+    The defaults are wide on purpose (common practice, no source): they catch
+    typing slips such as a year 1900 or 2099 or a quantity of 1e12, never a
+    real shipment.
+    """
+
+    years_before_cycle: float = Field(
+        10, gt=0, le=200, description="a line dated more than this many years before the cycle date is rejected as date_before_window"
+    )
+    years_after_cycle: float = Field(
+        2,
+        gt=0,
+        le=200,
+        description="a line dated this many years or more after the cycle date is rejected as date_after_window "
+        "(closer lines are on_or_after_cycle_date: kept for a later cycle)",
+    )
+    max_abs_quantity: float = Field(
+        1e9, gt=0, description="a line whose quantity is larger than this in absolute value is rejected as quantity_out_of_bounds"
+    )
+    isolation_gap_years: float = Field(
+        1.0,
+        gt=0,
+        le=200,
+        description="lines at the start or end of the history cut off from the rest by a gap longer than this, "
+        "holding a single line or at most 1% of the lines, set neither the cycle date nor the start of the "
+        "history; they are rejected as isolated_date",
+    )
+
+
 class InputsConfig(Frozen):
-    """Where the input files are (relative paths are taken from the working directory)."""
+    """Where the input files are (relative paths are taken from the working directory) and how they are read."""
 
     folder: Path = Path("data/demo")
+    encoding: str = Field(
+        "utf-8", description="text encoding of the CSV inputs, e.g. utf-8 (with or without BOM), latin-1, cp1252, utf-16"
+    )
+    max_line_bytes: int = Field(
+        65536,
+        ge=256,
+        le=1 << 30,
+        description="a CSV line (or Parquet cell) longer than this many bytes is rejected as line_too_long, never held whole",
+    )
+    plausible: PlausibilityConfig = PlausibilityConfig()
+
+    @field_validator("encoding")
+    @classmethod
+    def _known_encoding(cls, v: str) -> str:
+        import codecs
+
+        try:
+            codecs.lookup(v)
+        except LookupError:
+            raise ValueError(f"{v!r} is not a known text encoding; use e.g. utf-8, latin-1, cp1252 or utf-16") from None
+        return v
 
 
 class StoreConfig(Frozen):
@@ -498,6 +550,23 @@ class PlanningConfig(Frozen):
                 if n not in order:
                     order.append(n)
         return order
+
+    @model_validator(mode="after")
+    def _windows_inside_plausible_dates(self) -> PlanningConfig:
+        """A window reaching further back than inputs.plausible keeps would find its oldest lines rejected."""
+        per_year = 52 if self.calendar.period == "week" else 12
+        keeps = int(self.inputs.plausible.years_before_cycle * per_year)
+        windows = [(f"product_classes.{n}", pc.longest_window) for n, pc in self.product_classes.items()]
+        windows += [(f"share_bases.{n}", b.longest_window) for n, b in self.share_bases.items()]
+        windows += [("backtest", self.backtest.periods_needed)]
+        for key, periods in windows:
+            if periods > keeps:
+                raise ValueError(
+                    f"{key} reaches {periods} {self.calendar.period}s back but inputs.plausible.years_before_cycle "
+                    f"({self.inputs.plausible.years_before_cycle:g}) keeps only {keeps}; raise years_before_cycle or "
+                    f"shorten the window"
+                )
+        return self
 
     def check_windows_fit(self, history_periods: int) -> None:
         """Raise if a class window (not a fallback window) is longer than the history."""

@@ -108,7 +108,7 @@ def current_cycle(config: PlanningConfig, requested: str | None = None) -> str:
     period = config.calendar.period
     setting = requested or config.calendar.cycle_date
     if setting == LATEST_COMPLETE_PERIOD:
-        after = latest_cycle_date(config.inputs.folder, period)
+        after = latest_cycle_date(config.inputs.folder, period, config)
         if after is None:
             raise ConfigError(
                 f"{config.source}: calendar.cycle_date is {LATEST_COMPLETE_PERIOD!r} but no history file in "

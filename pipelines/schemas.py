@@ -11,12 +11,20 @@ import pandas as pd
 import pandera.pandas as pa
 from pandera.typing import DateTime, Series
 
-REJECT_REASONS = (
+# why the reader could not split a line into the file's columns (pipelines.stages.reader)
+READ_ERRORS = ("too_many_fields", "too_few_fields", "line_too_long", "control_characters")
+# why a raw history line was not used (pipelines.stages.cleaned_history.reject_lines), in the order they apply
+REJECT_REASONS = READ_ERRORS + (
     "missing_key",
     "bad_date",
     "bad_quantity",
+    "quantity_out_of_bounds",
     "unknown_product",
     "no_customer_span",
+    "duplicate_of_other_file",
+    "date_before_window",
+    "date_after_window",
+    "isolated_date",
     "on_or_after_cycle_date",
 )
 CORRECTION_RULES = ("negative_net_to_zero", "hampel_cap", "tukey_cap", "shortage_fill")
@@ -59,12 +67,18 @@ class RawHistory(_Strict):
     """History lines exactly as read: every cell text, blanks as ''."""
 
     source_file: Series[str] = pa.Field(description="input file the line came from")
-    source_row: Series[int] = pa.Field(ge=1, description="1-based data row within that file")
+    source_row: Series[int] = pa.Field(ge=1, description="1-based data row within that file: its line number minus the header line")
     product: Series[str] = pa.Field(description="product code as written")
     site: Series[str] = pa.Field(description="site code as written")
     customer: Series[str] = pa.Field(description="customer code as written")
     period_start: Series[str] = pa.Field(description="ISO date as written")
     quantity: Series[str] = pa.Field(description="quantity as written; negative is a return")
+    # the loader always supplies it; optional so that hand-built frames without malformed lines validate too
+    read_error: Optional[Series[str]] = pa.Field(
+        isin=("",) + READ_ERRORS,
+        description="'' for a line split into the file's columns; else why it could not be (its cells then hold "
+        "the line's first fields, cut short), and cleaned_history rejects it with that reason",
+    )
 
     class Config:
         unique = ["source_file", "source_row"]
