@@ -7,6 +7,9 @@ import pandera.pandas as pa
 
 SAMPLE_ROWS = 20
 PREVIEW_ROWS = 8
+FIRST_ROWS = 5  # failing rows printed on the console and in the cycle report
+FIRST_FAILING_ROWS = "first_failing_rows"
+KEY_COLUMNS = ("product", "site", "customer", "period_start", "measure")
 
 
 def markdown(df: pd.DataFrame, rows: int = PREVIEW_ROWS) -> dg.MetadataValue:
@@ -79,6 +82,31 @@ def partition_metadata() -> dict:
 SCHEMA_FIX = "correct the listed rows (file and row given where the asset is an input file) and run the cycle again"
 
 
+def _first_schema_failures(cases: pd.DataFrame, df: pd.DataFrame, row_column: str) -> pd.DataFrame:
+    """The first failure cases, one line each: where (file, row), the row's keys, the column, the check, the value."""
+    # cases that name a row first, one per row and column (pandera adds follow-up errors of the same cell)
+    named = pd.to_numeric(cases[row_column], errors="coerce").notna() if row_column in cases.columns else pd.Series(False, index=cases.index)
+    unnamed = cases[~named]
+    if "column" in cases.columns:  # a check that failed on the whole column, after a cell of it was named already
+        unnamed = unnamed[~unnamed["column"].isin(cases.loc[named, "column"])]
+    ordered = pd.concat([cases[named], unnamed])
+    subset = [c for c in (row_column, "column") if c in ordered.columns]
+    head = ordered[~(named[ordered.index] & ordered.duplicated(subset))].head(FIRST_ROWS).copy()
+    where = [c for c in ("file", row_column) if c in head.columns]
+    keys = [c for c in KEY_COLUMNS if c in df.columns]
+    labels = pd.to_numeric(head[row_column], errors="coerce") if row_column in head.columns else pd.Series(dtype=float)
+    for key in keys:
+        values = []
+        for label in labels:
+            try:
+                values.append("" if pd.isna(label) else str(df.loc[int(label), key]))
+            except (KeyError, ValueError, TypeError):
+                values.append("")
+        head[key] = values
+    columns = where + keys + [c for c in ("column", "check", "failure_case") if c in head.columns]
+    return head[columns].astype(str).replace({"None": "", "nan": ""}).rename(columns={"failure_case": "value"})
+
+
 def validate(
     df: pd.DataFrame, model: type[pa.DataFrameModel], asset_name: str, source: str | None = None
 ) -> tuple[pd.DataFrame, dg.AssetCheckResult]:
@@ -100,6 +128,7 @@ def validate(
             rows.insert(0, "file", source)
             cases = cases.rename(columns={"index": "row"})
             cases.insert(0, "file", source)
+        first = _first_schema_failures(cases, df, "row" if located else "index")
         return df, dg.AssetCheckResult(
             asset_key=asset_name,
             check_name=schema_check_name(asset_name),
@@ -111,6 +140,7 @@ def validate(
                 "failures_by_check": markdown(by_check.astype(str), rows=SAMPLE_ROWS),
                 "failure_cases_sample": markdown(cases.astype(str), rows=SAMPLE_ROWS),
                 "failing_rows_sample": markdown(rows, rows=SAMPLE_ROWS),
+                FIRST_FAILING_ROWS: markdown(first, rows=FIRST_ROWS),
                 "what_to_do": dg.MetadataValue.text(SCHEMA_FIX),
                 **partition_metadata(),
             },
@@ -139,6 +169,7 @@ def rule_check(
     }
     if len(failing):
         metadata["failing_rows_sample"] = markdown(failing, rows=SAMPLE_ROWS)
+        metadata[FIRST_FAILING_ROWS] = markdown(failing, rows=FIRST_ROWS)
     for key, value in extra.items():
         metadata[key] = value if isinstance(value, dg.MetadataValue) else dg.MetadataValue.text(str(value))
     metadata.update(partition_metadata())

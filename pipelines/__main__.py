@@ -15,7 +15,14 @@ import os
 import sys
 from pathlib import Path
 
+from pipelines.config import LATEST_COMPLETE_PERIOD
 from pipelines.errors import ConfigError, PlanningError
+
+# the command's exit codes (README, "What bad input gets")
+EXIT_OK = 0  # every ERROR check passed (failed WARN checks are listed)
+EXIT_CHECK_FAILED = 1  # a blocking (ERROR) check failed: its rows and what to do are printed
+EXIT_BAD_INPUT = 2  # the input or config cannot be used at all: the error names file, row or key and what to do
+EXIT_CRASH = 3  # a step failed on something that is not bad input: a bug; the run id and message are printed
 
 UI_COMMAND = "make ui   (dagster dev -m pipelines.definitions -h 127.0.0.1 -p 3000)"
 
@@ -44,13 +51,25 @@ def run_cycle(
     summary: bool = True,
     backfill: int = 0,
 ) -> int:
-    """Run the cycle (or, with `rebuild_from`, that asset and everything downstream) for each class; 0 when no ERROR check failed."""
+    """Run the cycle (or, with `rebuild_from`, that asset and everything downstream) for each class; the exit code.
+
+    EXIT_OK when no ERROR check failed, EXIT_CHECK_FAILED when one did,
+    EXIT_BAD_INPUT when a step stopped on bad input or config (a PlanningError),
+    EXIT_CRASH when a step failed on anything else.
+    """
     from pipelines.definitions import build_definitions
     from pipelines.partitions import current_cycle
     from pipelines.resources import PlanningConfigResource
     from pipelines.runner import rebuild_selection, run_partitions
 
     config = PlanningConfigResource(path=config_path).config
+    if cycle is None and config.calendar.cycle_date == LATEST_COMPLETE_PERIOD:
+        from pipelines.partitions import cycle_key
+        from pipelines.stages.raw_history import choose_cycle_date
+
+        choice = choose_cycle_date(config)
+        print(choice.describe(), flush=True)
+        cycle = cycle_key(choice.cycle_date) if choice.cycle_date is not None else None
     cycle = current_cycle(config, cycle)
     chosen = classes or list(config.product_classes)
     unknown = [c for c in chosen if c not in config.product_classes]
@@ -75,10 +94,12 @@ def run_cycle(
     run_config = {"loggers": {"console": {"config": {"log_level": "INFO"}}}}
     instance = _instance()
     ok = True
+    runs_done = []
     for earlier in _missing_earlier_cycles(config, cycle, backfill):
         print(f"backfill: cycle {earlier} is not in the store yet; running it first (share drift compares with it)", flush=True)
         now.update(cycle=earlier, what="whole cycle", of=len(config.product_classes))
         past = run_partitions(defs, instance, earlier, list(config.product_classes), run_config=run_config, on_start=started, on_done=done)
+        runs_done.append(past)
         ok = ok and past.success and past.blocking_checks_pass
     now.update(cycle=cycle, what=what, of=len(chosen))
     # progress at INFO on the console; the full event log stays in the instance (and the UI)
@@ -95,13 +116,48 @@ def run_cycle(
     )
     checks = [(f"{e.asset_key.to_user_string()} [{c}]", e.check_name, e.passed, e.severity.value) for c, e in run.checks_by_class()]
     if summary:
-        print_summary(config_path, checks, cycle=cycle)
+        print_summary(config_path, checks, cycle=cycle, failures=_failures(run))
     # the page again after every class ran, so a run a blocking check stopped shows its failure there too
     from pipelines.cycle_report import write_cycle_report
 
     print(f"report:       {write_cycle_report(config, instance, cycle)}")
     # a failed WARN check is reported but does not fail the command; an ERROR check does
-    return 0 if ok and run.success and run.blocking_checks_pass else 1
+    failed_steps = [_failure_kind(e) for r in runs_done + [run] for e in r.all_events if e.is_step_failure]
+    if "bad_input" in failed_steps:
+        return EXIT_BAD_INPUT
+    if "crash" in failed_steps:
+        return EXIT_CRASH
+    return EXIT_OK if ok and run.success and run.blocking_checks_pass else EXIT_CHECK_FAILED
+
+
+def _failure_kind(event) -> str:
+    """Why a step failed: `bad_input` (a PlanningError), `check` (a blocking check failed) or `crash` (anything else)."""
+    names = {c.__name__ for c in _subclasses(PlanningError)}
+    error = event.event_specific_data.error
+    while error is not None:
+        if error.cls_name in names:
+            return "bad_input"
+        if "AssetCheck" in (error.cls_name or ""):
+            return "check"
+        error = error.cause
+    return "crash"
+
+
+def _subclasses(cls) -> list[type]:
+    return [cls] + [s for c in cls.__subclasses__() for s in _subclasses(c)]
+
+
+def _failures(run) -> list:
+    """The failed check evaluations of the cycle's runs, with their first rows and what to do."""
+    from pipelines.check_failures import failure_of
+    from pipelines.cycle_report import check_descriptions
+
+    descriptions = check_descriptions()
+    return [
+        failure_of(e, descriptions.get((e.asset_key.to_user_string(), e.check_name), ""), product_class=c)
+        for c, e in run.checks_by_class()
+        if not e.passed
+    ]
 
 
 def _missing_earlier_cycles(config, cycle: str, count: int) -> list[str]:
@@ -117,7 +173,9 @@ def _missing_earlier_cycles(config, cycle: str, count: int) -> list[str]:
     return [c for c in earlier if c not in have]
 
 
-def print_summary(config_path: str, checks: list[tuple[str, str, bool, str]] | None = None, cycle: str | None = None) -> None:
+def print_summary(
+    config_path: str, checks: list[tuple[str, str, bool, str]] | None = None, cycle: str | None = None, failures: list | None = None
+) -> None:
     from pipelines.resources import PlanningConfigResource, read_table, stored_cycles
 
     config = PlanningConfigResource(path=config_path).config
@@ -183,8 +241,13 @@ def print_summary(config_path: str, checks: list[tuple[str, str, bool, str]] | N
     if checks is not None:
         failed = [c for c in checks if not c[2]]
         print(f"checks:       {len(checks) - len(failed)} passed, {len(failed)} failed")
-        for asset, name, _, severity in failed:
-            print(f"  FAILED {severity:<5} {asset}: {name}")
+        if failures is not None:
+            # ERROR first, then WARN; each with its first failing rows and what to do
+            for failure in sorted(failures, key=lambda f: f.severity != "ERROR"):
+                print("\n".join(failure.lines()))
+        else:
+            for asset, name, _, severity in failed:
+                print(f"  FAILED {severity:<5} {asset}: {name}")
     print(f"open the UI:  {UI_COMMAND}")
 
 
@@ -275,7 +338,7 @@ def main(argv: list[str] | None = None) -> int:
         return 0
     except PlanningError as err:
         print(f"error: {err}", file=sys.stderr)
-        return 2
+        return EXIT_BAD_INPUT
 
 
 if __name__ == "__main__":

@@ -15,6 +15,7 @@ from pathlib import Path
 import dagster as dg
 import pandas as pd
 
+from pipelines.check_failures import failure_of
 from pipelines.config import PlanningConfig
 from pipelines.partitions import partition_key
 from pipelines.resources import read_table, report_folder
@@ -22,7 +23,7 @@ from pipelines.stages import report
 
 REPORT_FILE = "cycle_report.html"
 CHART_KINDS = ("parents", "shares")
-CHECK_COLUMNS = ["product_class", "asset", "check", "passed", "severity", "description", "run_id"]
+CHECK_COLUMNS = ["product_class", "asset", "check", "passed", "severity", "description", "run_id", "first_rows", "what_to_do"]
 
 
 def check_descriptions() -> dict[tuple[str, str], str]:
@@ -47,6 +48,7 @@ def latest_check_results(instance: dg.DagsterInstance, cycle: str, classes: list
                 if name in seen:
                     continue
                 seen.add(name)
+                failure = failure_of(evaluation, descriptions.get(name, ""), product_class)
                 rows.append(
                     {
                         "product_class": product_class,
@@ -56,6 +58,8 @@ def latest_check_results(instance: dg.DagsterInstance, cycle: str, classes: list
                         "severity": evaluation.severity.value,
                         "description": descriptions.get(name, ""),
                         "run_id": run.run_id,
+                        "first_rows": "" if evaluation.passed else failure.rows,
+                        "what_to_do": "" if evaluation.passed else failure.advice,
                     }
                 )
     return pd.DataFrame(rows, columns=CHECK_COLUMNS)
@@ -85,7 +89,7 @@ def write_cycle_report(config: PlanningConfig, instance: dg.DagsterInstance, cyc
         cycle_date=cycle,
         share_tables=shares if shares is not None else pd.DataFrame(columns=["product_class"]),
         checks=[
-            (f"{r.asset} [{r.product_class}]", r.check, r.passed, r.severity, r.description)
+            (f"{r.asset} [{r.product_class}]", r.check, r.passed, r.severity, r.description, r.first_rows, r.what_to_do)
             for r in checks.itertuples(index=False)
         ],
         parent_forecast=table("parent_forecast"),

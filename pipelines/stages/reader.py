@@ -209,6 +209,13 @@ class _Chunks:
             np.add.at(delta, ends[drop], -1)
             data = arr[np.cumsum(delta[:-1]) == 0].tobytes()  # the dropped lines emptied, their line breaks kept
 
+        # UTF-8 first: pyarrow decodes an invalid row's text before it calls the handler, so a malformed line
+        # that is not UTF-8 would be lost there (found by the fuzz test of tests/test_bad_inputs.py)
+        try:
+            pa.Array.from_buffers(pa.large_string(), 1, [None, pa.array([0, len(data)], pa.int64()).buffers()[1], pa.py_buffer(data)]).validate(full=True)
+        except pa.ArrowInvalid:
+            self._raise_encoding(body, starts, drop, first_line, file_offset)
+
         invalid: dict[int, str] = {}
 
         def on_invalid(row) -> str:
@@ -314,6 +321,11 @@ def _transcode(path: Path, encoding: str, out: Path, block: int = CHUNK_BYTES) -
                 start = max(err.start, 0)
                 bad = raw[start] if start < len(raw) else 0
                 raise encoding_error(path, lines + raw[:start].count(b"\n"), consumed + start, bad, encoding) from None
+            except UnicodeError as err:  # e.g. a UTF-16 file without its byte order mark
+                raise InputFileError(
+                    f"{path}: cannot be read as {encoding} ({err}); set inputs.encoding to the file's encoding "
+                    f"(every CSV input is read with it), or save the file as UTF-8."
+                ) from None
             dst.write(text.encode("utf-8"))
             lines += raw.count(b"\n")
             consumed += len(raw)
