@@ -86,6 +86,24 @@ def _first_schema_failures(cases: pd.DataFrame, df: pd.DataFrame, row_column: st
     """The first failure cases, one line each: where (file, row), the row's keys, the column, the check, the value."""
     # cases that name a row first, one per row and column (pandera adds follow-up errors of the same cell)
     named = pd.to_numeric(cases[row_column], errors="coerce").notna() if row_column in cases.columns else pd.Series(False, index=cases.index)
+    if "schema_context" in cases.columns and named.any():
+        # a check over the whole row (e.g. span_ordered): one line per row and check, the cells it read as value
+        whole = named & (cases["schema_context"] == "DataFrameSchema")
+        if whole.any():
+            keys = set(KEY_COLUMNS)
+            parts = cases[whole].assign(cell=lambda d: d["column"].astype(str) + "=" + d["failure_case"].astype(str))
+            merged = (
+                parts[~parts["column"].isin(keys)]
+                .groupby([row_column, "check"], sort=False)
+                .agg(cell=("cell", "; ".join))
+                .reset_index()
+            )
+            first_of = parts.drop_duplicates([row_column, "check"]).drop(columns=["cell"])
+            first_of = first_of.merge(merged, on=[row_column, "check"], how="left")
+            first_of["column"] = "(row)"
+            first_of["failure_case"] = first_of.pop("cell").fillna("")
+            cases = pd.concat([first_of, cases[~whole]], ignore_index=True)
+            named = pd.to_numeric(cases[row_column], errors="coerce").notna()
     unnamed = cases[~named]
     if "column" in cases.columns:  # a check that failed on the whole column, after a cell of it was named already
         unnamed = unnamed[~unnamed["column"].isin(cases.loc[named, "column"])]

@@ -180,13 +180,10 @@ def print_summary(
 
     config = PlanningConfigResource(path=config_path).config
     store = Path(config.store.path)
-    if not store.exists():
-        print(f"no store at {store}: nothing has been materialized yet")
-        return
-
-    cycles = stored_cycles(store)
+    cycles = stored_cycles(store) if store.exists() else []
     if not cycles:
-        print(f"no cycle in the store {store} yet")
+        print(f"no cycle in the store {store} yet: nothing has been materialized")
+        _print_checks(checks, failures)
         return
     cycle = cycle or cycles[-1]
 
@@ -238,17 +235,22 @@ def print_summary(
                   f"{r['share_current']:.3f}  ({r['change_pp']:+.2f} pp, {r['status']})")
     elif drift is not None:
         print("share drift:  no previous cycle in the store to compare with (python -m pipelines cycle --backfill 1)")
-    if checks is not None:
-        failed = [c for c in checks if not c[2]]
-        print(f"checks:       {len(checks) - len(failed)} passed, {len(failed)} failed")
-        if failures is not None:
-            # ERROR first, then WARN; each with its first failing rows and what to do
-            for failure in sorted(failures, key=lambda f: f.severity != "ERROR"):
-                print("\n".join(failure.lines()))
-        else:
-            for asset, name, _, severity in failed:
-                print(f"  FAILED {severity:<5} {asset}: {name}")
+    _print_checks(checks, failures)
     print(f"open the UI:  {UI_COMMAND}")
+
+
+def _print_checks(checks: list[tuple[str, str, bool, str]] | None, failures: list | None) -> None:
+    """Checks passed and failed; each failed one with its first failing rows and what to do (ERROR first)."""
+    if checks is None:
+        return
+    failed = [c for c in checks if not c[2]]
+    print(f"checks:       {len(checks) - len(failed)} passed, {len(failed)} failed")
+    if failures is not None:
+        for failure in sorted(failures, key=lambda f: f.severity != "ERROR"):
+            print("\n".join(failure.lines()))
+    else:
+        for asset, name, _, severity in failed:
+            print(f"  FAILED {severity:<5} {asset}: {name}")
 
 
 def explain(config_path: str, product: str, site: str, customer: str, period: str | None, cycle: str | None) -> int:

@@ -27,9 +27,10 @@ def metadata_text(metadata: Mapping, key: str) -> str:
 def what_to_do(description: str, metadata: Mapping | None = None) -> str:
     """The check's advice: its metadata's `what_to_do`, else the "When it fails/fires, ..." part of its description."""
     given = metadata_text(metadata or {}, "what_to_do")
+    if given and given != "nothing":
+        return given
     at = description.find("When it f")
-    advice = description[at:].strip() if at >= 0 else description.strip()
-    return f"{given}. {advice}".strip(". ") if given and given != "nothing" else advice
+    return description[at:].strip() if at >= 0 else description.strip()
 
 
 @dataclass(frozen=True)
