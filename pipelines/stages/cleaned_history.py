@@ -2,12 +2,25 @@
 
 Rules, in the order they run:
 
-1. **Rejection.** A line is rejected, with the first reason that applies, when a
-   key is blank (`missing_key`), its date does not parse (`bad_date`), its
-   quantity is not a finite number (`bad_quantity`), its product is not in the
-   product master (`unknown_product`), its product x site x customer has no
-   customer span (`no_customer_span`), or it falls on or after the cycle date
-   (`on_or_after_cycle_date`). Raw lines = used lines + rejected lines.
+1. **Rejection.** A line is rejected, with the first reason that applies, when
+   the reader could not split it (`too_many_fields`, `too_few_fields`,
+   `line_too_long`, `control_characters`: its `read_error`), a key is blank
+   (`missing_key`), its date does not parse (`bad_date`; a date-time with a
+   UTC offset counts for the date as written, `pipelines.stages.plausible`),
+   its quantity is not a finite number (`bad_quantity`) or is larger in size
+   than `inputs.plausible.max_abs_quantity` (`quantity_out_of_bounds`: a
+   typing slip of 1e12 is neither netted to zero nor forecast), its product is
+   not in the product master (`unknown_product`), its product x site x
+   customer has no customer span (`no_customer_span`), the same keys, date and
+   quantity are in an earlier history file (`duplicate_of_other_file`: history
+   given twice), it is dated more than `years_before_cycle` before the cycle
+   date (`date_before_window`) or `years_after_cycle` or more after it
+   (`date_after_window`), it lies in an isolated group at the start of the
+   history (`isolated_date`: `plausible.trusted_extent`, so a lone old line
+   does not stretch the history), or it falls on or after the cycle date
+   (`on_or_after_cycle_date`). With `calendar.cycle_date:
+   latest_complete_period` the cycle date is the period after the trusted end
+   of the lines left. Raw lines = used lines + rejected lines.
 2. **Bucketing.** Each line goes to the period containing its date (ISO week
    from Monday, or calendar month); lines of one leaf and period are summed,
    returns (negative lines) included, so a return nets against the same
