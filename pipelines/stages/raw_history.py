@@ -91,16 +91,17 @@ def load_raw_history(folder: Path, inputs: InputsConfig | None = None) -> tuple[
             )
         digests[digest] = path.name
         read = read_text(path, HISTORY_COLUMNS, encoding=inputs.encoding, max_line_bytes=inputs.max_line_bytes)
-        lines = read.frame.assign(read_error="")
+        lines = read.frame  # columns added in place, no copy of the cells: the frame may hold 100+ million lines
+        lines["read_error"] = ""
         if len(read.malformed):
-            lines = pd.concat([lines, read.malformed], ignore_index=True).sort_values("source_row", kind="stable")
+            lines = pd.concat([lines, read.malformed[list(lines.columns)]], ignore_index=True)
+            lines = lines.sort_values("source_row", kind="stable", ignore_index=True)
         lines.insert(0, "source_file", path.name)
         frames.append(lines)
         files.append(
             HistoryFile(path=path, rows=len(lines), sha256=digest, malformed=len(read.malformed), blank_lines=read.blank_lines)
         )
-    columns = ["source_file", "source_row", *HISTORY_COLUMNS, "read_error"]
-    return pd.concat(frames, ignore_index=True)[columns], files
+    return (frames[0] if len(frames) == 1 else pd.concat(frames, ignore_index=True)), files
 
 
 @dataclass(frozen=True)

@@ -138,9 +138,15 @@ def check_columns(path: Path, names: list[str], columns: tuple[str, ...], option
         raise InputFileError(f"{path}: missing column(s) {missing}; the file has {names}. Expected columns: {list(columns)}.")
 
 
-def _clean(cells: pa.Array) -> pa.Array:
-    """Trim white space; a cell in double quotes loses them, and a doubled quote inside becomes one."""
-    cells = pc.utf8_trim_whitespace(cells)
+def _clean(cells: pa.Array, spaces: bool = True, quotes: bool = True) -> pa.Array:
+    """Trim white space; a cell in double quotes loses them, and a doubled quote inside becomes one.
+
+    `spaces` / `quotes` False: the caller knows the cells hold no white space / no quote, and each pass is skipped.
+    """
+    if spaces:
+        cells = pc.utf8_trim_whitespace(cells)
+    if not quotes:
+        return cells
     quoted = pc.and_(
         pc.and_(pc.starts_with(cells, '"'), pc.ends_with(cells, '"')), pc.greater_equal(pc.utf8_length(cells), 2)
     )
@@ -211,10 +217,12 @@ class _Chunks:
 
         # UTF-8 first: pyarrow decodes an invalid row's text before it calls the handler, so a malformed line
         # that is not UTF-8 would be lost there (found by the fuzz test of tests/test_bad_inputs.py)
-        try:
-            pa.Array.from_buffers(pa.large_string(), 1, [None, pa.array([0, len(data)], pa.int64()).buffers()[1], pa.py_buffer(data)]).validate(full=True)
-        except pa.ArrowInvalid:
-            self._raise_encoding(body, starts, drop, first_line, file_offset)
+        if not data.isascii():
+            try:
+                offsets = pa.array([0, len(data)], pa.int64()).buffers()[1]
+                pa.Array.from_buffers(pa.large_string(), 1, [None, offsets, pa.py_buffer(data)]).validate(full=True)
+            except pa.ArrowInvalid:
+                self._raise_encoding(body, starts, drop, first_line, file_offset)
 
         invalid: dict[int, str] = {}
 
@@ -267,7 +275,11 @@ class _Chunks:
         self.blank += int(empty.sum())
         at = np.flatnonzero(row_line)
         keep = ~(empty | drop)[at]
-        cols = [_clean(table.column(p).combine_chunks()) for p in self.positions]
+        # passes over the cells only where the chunk can need them: white space (any non-ASCII byte may be
+        # Unicode white space) and double quotes
+        ascii_only = data.isascii()
+        spaces = not ascii_only or b" " in data or b"\t" in data or b"\x0b" in data or b"\x0c" in data
+        cols = [_clean(table.column(p).combine_chunks(), spaces, b'"' in data) for p in self.positions]
         out = pa.table([pa.array(first_line + at - 1, type=pa.int64())] + cols, names=["source_row"] + self.wanted)
         self.tables.append(out if keep.all() else out.filter(pa.array(keep)))
         return n
@@ -292,9 +304,11 @@ class _Chunks:
     def skipped_long_line(self, line: int, head: bytes) -> None:
         self._bad(line, "line_too_long", _printable(head[: PREVIEW_CHARS * self.k]))
 
-    def result(self) -> TextRead:
+    def result(self, order: list[str]) -> TextRead:
+        """The rows read, columns in `order` (wanted columns the file lacks come out blank)."""
         schema = pa.schema([("source_row", pa.int64())] + [(c, pa.string()) for c in self.wanted])
         table = pa.concat_tables(self.tables) if self.tables else schema.empty_table()
+        self.tables = []
         if self.extra:
             extra = pa.table(
                 [pa.array([e[0] for e in self.extra], pa.int64())]
@@ -302,10 +316,19 @@ class _Chunks:
                 schema=schema,
             )
             table = pa.concat_tables([table, extra]).sort_by("source_row")
-        frame = table.to_pandas()  # strings become shared Python objects: a product code once, not per line
+        for c in order:
+            if c not in table.column_names:
+                table = table.append_column(c, pa.repeat("", table.num_rows).cast(pa.string()))
+        table = table.select(["source_row"] + order)
+        # strings become shared Python objects (a product code once, not per line); Arrow buffers freed as they go
+        frame = table.to_pandas(split_blocks=True, self_destruct=True)
+        del table
         malformed = pd.DataFrame(self.bad, columns=["source_row", "read_error", *self.wanted])
+        for c in order:
+            if c not in malformed.columns:
+                malformed[c] = ""
         malformed = malformed.astype({"source_row": np.int64}).sort_values("source_row", kind="stable").reset_index(drop=True)
-        return TextRead(frame=frame, malformed=malformed, blank_lines=self.blank, columns=tuple(self.names))
+        return TextRead(frame=frame, malformed=malformed[["source_row", "read_error"] + order], blank_lines=self.blank, columns=tuple(self.names))
 
 
 def _transcode(path: Path, encoding: str, out: Path, block: int = CHUNK_BYTES) -> None:
@@ -403,19 +426,7 @@ def read_csv_text(
             body, carry = buf[: cut + 1], buf[cut + 1 :]
             line += chunks.add(body, line, offset)
             offset += len(body)
-    read = chunks.result()
-    # the rest of the columns, blank, so every caller sees the same columns
-    for c in optional:
-        if c not in read.frame.columns:
-            read.frame[c] = ""
-            read.malformed[c] = ""
-    order = ["source_row"] + list(columns) + list(optional)
-    return TextRead(
-        frame=read.frame[order],
-        malformed=read.malformed[["source_row", "read_error"] + list(columns) + list(optional)],
-        blank_lines=read.blank_lines,
-        columns=read.columns,
-    )
+    return chunks.result(list(columns) + list(optional))
 
 
 _CONTROL = r"[\x00-\x08\x0a-\x1f\x7f]"
@@ -481,14 +492,18 @@ def read_parquet_text(
     except Exception as err:
         raise InputFileError(f"{path}: cannot be read as Parquet ({type(err).__name__}: {err})") from None
     schema = pa.schema([("source_row", pa.int64())] + [(c, pa.string()) for c in wanted])
-    frame = (pa.concat_tables(tables) if tables else schema.empty_table()).to_pandas()
-    malformed = pd.DataFrame(bad, columns=["source_row", "read_error", *wanted]).astype({"source_row": np.int64})
-    for c in optional:
-        if c not in frame.columns:
-            frame[c] = ""
-            malformed[c] = ""
+    table = pa.concat_tables(tables) if tables else schema.empty_table()
     order = list(columns) + list(optional)
-    return TextRead(frame=frame[["source_row"] + order], malformed=malformed[["source_row", "read_error"] + order], columns=tuple(names))
+    for c in order:
+        if c not in table.column_names:
+            table = table.append_column(c, pa.repeat("", table.num_rows).cast(pa.string()))
+    frame = table.select(["source_row"] + order).to_pandas(split_blocks=True, self_destruct=True)
+    del table, tables
+    malformed = pd.DataFrame(bad, columns=["source_row", "read_error", *wanted]).astype({"source_row": np.int64})
+    for c in order:
+        if c not in malformed.columns:
+            malformed[c] = ""
+    return TextRead(frame=frame, malformed=malformed[["source_row", "read_error"] + order], columns=tuple(names))
 
 
 def read_text(
