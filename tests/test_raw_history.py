@@ -50,6 +50,22 @@ def test_every_line_keeps_its_row_through_blank_malformed_and_quoted_lines(tmp_p
     assert r.blank_lines == 1
 
 
+def test_a_quoted_comma_never_passes_for_a_field_boundary(tmp_path):
+    body = (
+        b'"P1,X",S1,C1,2025-01-06\n'  # 4 cells, 5 pieces at the commas: too few fields
+        b'P1,"S1,S2",C1,2025-01-06,5\n'  # 5 cells, 6 pieces: read by the csv module
+        b'P1,S1,"C1",2025-01-06,"a ""big"" one"\n'  # doubled quotes inside a quoted cell
+        b'P1,S1,C1,2025-01-06,5"\n'  # a stray quote at the end of a cell: kept as written
+    )
+    r = read(tmp_path, body)
+    assert r.frame.values.tolist() == [
+        [2, "P1", "S1,S2", "C1", "2025-01-06", "5"],
+        [3, "P1", "S1", "C1", "2025-01-06", 'a "big" one'],
+        [4, "P1", "S1", "C1", "2025-01-06", '5"'],
+    ]
+    assert r.malformed[["source_row", "read_error"]].values.tolist() == [[1, "too_few_fields"]]
+
+
 @pytest.mark.parametrize("chunk", [16, 37, 64, 1 << 20])
 def test_chunks_of_any_size_give_the_same_rows(tmp_path, chunk):
     """Chunks end on a line break; a line longer than a chunk is skipped without being held (row 3 here)."""

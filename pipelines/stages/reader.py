@@ -275,6 +275,8 @@ class _Chunks:
         self.blank += int(empty.sum())
         at = np.flatnonzero(row_line)
         keep = ~(empty | drop)[at]
+        if b'"' in data:
+            keep &= ~self._requoted(table, at, first_line)
         # passes over the cells only where the chunk can need them: white space (any non-ASCII byte may be
         # Unicode white space) and double quotes
         ascii_only = data.isascii()
@@ -283,6 +285,34 @@ class _Chunks:
         out = pa.table([pa.array(first_line + at - 1, type=pa.int64())] + cols, names=["source_row"] + self.wanted)
         self.tables.append(out if keep.all() else out.filter(pa.array(keep)))
         return n
+
+    def _requoted(self, table: pa.Table, at: np.ndarray, first_line: int) -> np.ndarray:
+        """Rows whose fields came apart at a comma inside double quotes, read again with the csv module.
+
+        A quoted cell holding a comma can split into the right number of fields
+        by chance (`"P1,X",S1,C1,2025-12-03` is 4 cells, 5 pieces); a piece that
+        opens a quote without closing it (or the reverse) gives it away. Such a
+        row is replaced by its csv reading, or rejected with its true field count.
+        Returns the flags of the rows handled here.
+        """
+        flags = np.zeros(table.num_rows, dtype=bool)
+        for p in range(self.k):
+            cell = pc.utf8_trim_whitespace(table.column(p))
+            opened, closed = pc.starts_with(cell, '"'), pc.ends_with(cell, '"')
+            lone = pc.equal(cell, '"')
+            flags |= pc.or_(pc.not_equal(opened, closed), lone).to_numpy(zero_copy_only=False)
+        for r in np.flatnonzero(flags):  # rare: only rows with an unbalanced quote
+            text = ",".join(table.column(p)[int(r)].as_py() for p in range(self.k))
+            line = first_line + int(at[r])
+            try:
+                cells = next(csv.reader([text], skipinitialspace=True))
+            except csv.Error:
+                cells = text.split(",")
+            if len(cells) == self.k:
+                self.extra.append((line - 1, *[cells[p].strip() for p in self.positions]))
+            else:
+                self._bad(line, "too_many_fields" if len(cells) > self.k else "too_few_fields", text)
+        return flags
 
     def _bad(self, line: int, why: str, text: str) -> None:
         fields = _fields(text, self.k)
