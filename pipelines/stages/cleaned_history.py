@@ -162,7 +162,11 @@ def reject_lines(
             mark((read_error == why).to_numpy(), why)
     mark((keys == "").any(axis=1), "missing_key")
     dates = parse_dates(raw["period_start"])
-    outside = year_outside(raw["period_start"])  # a date pandas cannot hold: still a date, outside the window
+    # a date pandas cannot hold (year 9999) is still a date, outside the window: looked for among the unparsed only
+    outside = np.zeros(len(raw), dtype=np.int64)
+    unparsed = dates.isna().to_numpy()
+    if unparsed.any():
+        outside[unparsed] = year_outside(raw["period_start"][unparsed])
     mark(dates.isna().to_numpy() & (outside == 0), "bad_date")
     qty = pd.to_numeric(raw["quantity"], errors="coerce").to_numpy(dtype=float, na_value=np.nan)
     mark(~np.isfinite(qty), "bad_quantity")

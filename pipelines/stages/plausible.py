@@ -41,9 +41,10 @@ def parse_dates(text: pd.Series) -> pd.Series:
     day it was written for, not to the UTC day, and a mix of offsets never
     raises. Dates outside 1678-2261 (pandas' range) are NaT; see `year_outside`.
     """
-    text = pd.Series(text, dtype=object).fillna("")
+    text = pd.Series(text)
     dates = pd.to_datetime(text, format="%Y-%m-%d", errors="coerce")
-    rest = dates.isna().to_numpy() & (text != "").to_numpy()
+    nat = dates.isna().to_numpy()
+    rest = nat & (text.fillna("") != "").to_numpy() if nat.any() else nat
     if rest.any():
         other = text[rest].astype(str).str.replace(_WITH_OFFSET, r"\1", regex=True)
         try:
@@ -54,7 +55,7 @@ def parse_dates(text: pd.Series) -> pd.Series:
             parsed = other.map(_one_date)  # an offset the pattern did not catch: read each cell alone
         dates = dates.astype("datetime64[ns]")
         dates[rest] = pd.to_datetime(parsed, errors="coerce").to_numpy(dtype="datetime64[ns]")
-    return dates.astype("datetime64[ns]")
+    return dates if dates.dtype == "datetime64[ns]" else dates.astype("datetime64[ns]")
 
 
 def _one_date(cell: str) -> pd.Timestamp:
