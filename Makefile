@@ -27,8 +27,9 @@ $(DAGSTER_HOME)/dagster.yaml:
 demo: $(VENV)/.installed-base $(DAGSTER_HOME)/dagster.yaml
 	$(BIN)/python -m pipelines cycle --config $(APPORTION_CONFIG) --backfill 1
 
-## make test: install with test extras, run the whole test suite
+## make test: install with test extras, lint (ruff), run the whole test suite
 test: $(VENV)/.installed-test $(DAGSTER_HOME)/dagster.yaml
+	$(BIN)/ruff check .
 	$(BIN)/python -m pytest
 
 ## make ui: the Dagster UI on 127.0.0.1:3000 over the same instance and store

@@ -48,9 +48,9 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from statsforecast import StatsForecast  # noqa: E402
 
 from pipelines.config import parse_config  # noqa: E402
-from pipelines.stages.backtest import run_backtest  # noqa: E402
+from pipelines.engines.shares import compute_shares  # noqa: E402
+from pipelines.stages.backtest_accuracy import run_backtest  # noqa: E402
 from pipelines.stages.reinitialized_target import reinitialize_target  # noqa: E402
-from pipelines.stages.share_tables import compute_shares  # noqa: E402
 from pipelines.stages.statistical_forecast import forecast_cycle  # noqa: E402
 
 STRATEGIES = ["top_down", "forecast_proportions", "bottom_up", "mint_shrink", "wls_var"]
@@ -58,12 +58,24 @@ CLASSES = ["steady", "seasonal", "sporadic"]
 MODELS = {
     "fast": {
         "steady": {"smooth": "ses", "erratic": "ses", "intermittent": "croston_sba", "lumpy": "croston_sba"},
-        "seasonal": {"smooth": "seasonal_naive", "erratic": "seasonal_naive", "intermittent": "croston_sba", "lumpy": "croston_sba", "seasonal": True},
+        "seasonal": {
+            "smooth": "seasonal_naive",
+            "erratic": "seasonal_naive",
+            "intermittent": "croston_sba",
+            "lumpy": "croston_sba",
+            "seasonal": True,
+        },
         "sporadic": {"smooth": "ses", "erratic": "ses", "intermittent": "tsb", "lumpy": "croston_sba"},
     },
     "demo": {
         "steady": {"smooth": "auto_ets", "erratic": "auto_ets", "intermittent": "croston_sba", "lumpy": "croston_sba"},
-        "seasonal": {"smooth": "ets_additive_season", "erratic": "ets_additive_season", "intermittent": "croston_sba", "lumpy": "croston_sba", "seasonal": True},
+        "seasonal": {
+            "smooth": "ets_additive_season",
+            "erratic": "ets_additive_season",
+            "intermittent": "croston_sba",
+            "lumpy": "croston_sba",
+            "seasonal": True,
+        },
         "sporadic": {"smooth": "ses", "erratic": "ses", "intermittent": "croston_sba", "lumpy": "croston_sba"},
     },
 }
@@ -117,7 +129,9 @@ def synthetic(n_leaves: int, weeks: int, seed: int):
     t = np.arange(weeks)
     level = rng.gamma(2.0, 10.0, n_leaves)[:, None]
     trend = rng.normal(0, 0.004, n_leaves)[:, None]
-    season = np.where(cls == 1, 0.8, 0.1)[:, None] * np.sin(2 * np.pi * (t[None, :] + rng.integers(0, 52, n_leaves)[:, None]) / 52)
+    season = np.where(cls == 1, 0.8, 0.1)[:, None] * np.sin(
+        2 * np.pi * (t[None, :] + rng.integers(0, 52, n_leaves)[:, None]) / 52
+    )
     mean = level * np.exp(trend * t[None, :]) * np.clip(1 + season, 0.05, None)
     demand = rng.random((n_leaves, weeks)) < np.where(cls == 2, 0.25, 0.97)[:, None]
     y = rng.poisson(mean * np.where(cls == 2, 3.0, 1.0)[:, None]) * demand
@@ -125,7 +139,15 @@ def synthetic(n_leaves: int, weeks: int, seed: int):
     products = pd.Categorical.from_codes(parent[leaf], [f"P{i:06d}" for i in range(n_parents)])
     customers = pd.Categorical.from_codes(rank[leaf], [f"C{i:02d}" for i in range(int(sizes.max()))])
     starts = pd.date_range("2023-01-02", periods=weeks, freq="7D")
-    history = pd.DataFrame({"product": products, "site": "S1", "customer": customers, "period_start": starts[week], "quantity": y[leaf, week].astype(float)})
+    history = pd.DataFrame(
+        {
+            "product": products,
+            "site": "S1",
+            "customer": customers,
+            "period_start": starts[week],
+            "quantity": y[leaf, week].astype(float),
+        }
+    )
     history["origin"] = "own"
     children = pd.DataFrame(
         {
@@ -142,9 +164,16 @@ def synthetic(n_leaves: int, weeks: int, seed: int):
 
 
 def config(models: str, origins: int, horizon: int, grain: str = "auto"):
-    classes = {name: {"window": 26, "fallback_windows": [52], "forecast_grain": grain, "models": MODELS[models][name]} for name in CLASSES}
+    classes = {
+        name: {"window": 26, "fallback_windows": [52], "forecast_grain": grain, "models": MODELS[models][name]}
+        for name in CLASSES
+    }
     return parse_config(
-        {"product_classes": classes, "calendar": {"horizon": 26}, "backtest": {"origins": origins, "horizon": horizon, "step": horizon}}
+        {
+            "product_classes": classes,
+            "calendar": {"horizon": 26},
+            "backtest": {"origins": origins, "horizon": horizon, "step": horizon},
+        }
     )
 
 

@@ -11,8 +11,8 @@ shared), lines per second and the child's peak RSS (getrusage ru_maxrss, the
 highest of the runs; the whole process: Python, pandas and the result;
 imports happen before the clock starts):
 
-    columnar   pipelines.stages.raw_history.load_raw_history: the reader of
-               pipelines/stages/reader.py (numpy line scan + pyarrow parse per
+    columnar   pipelines.engines.history_files.load_raw_history: the reader of
+               pipelines/engines/reader.py (numpy line scan + pyarrow parse per
                32 MB chunk), the frame of text cells it returns
     pandas     the reader it replaced: pandas.read_csv(dtype=str) on the text,
                every cell stripped, row numbers added (as on main before it)
@@ -104,7 +104,7 @@ resource.setrlimit(resource.RLIMIT_AS, (cap, cap))
 from pathlib import Path
 reader, folder = {reader!r}, Path({folder!r})
 import numpy as np, pandas as pd  # imports before the clock: only reading is timed
-from pipelines.stages.raw_history import load_raw_history
+from pipelines.engines.history_files import load_raw_history
 started = time.perf_counter()
 try:
     if reader == "columnar":
@@ -136,7 +136,8 @@ def measure(reader: str, folder: Path, cap_gb: float) -> dict:
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
     if done.returncode != 0:
         tail = (done.stderr or done.stdout).strip().splitlines()[-1:] or ["?"]
-        return {"rows": 0, "malformed": 0, "seconds": float("nan"), "peak_mb": float("nan"), "outcome": f"killed ({tail[0]})"}
+        nan = float("nan")
+        return {"rows": 0, "malformed": 0, "seconds": nan, "peak_mb": nan, "outcome": f"killed ({tail[0]})"}
     return json.loads(done.stdout.strip().splitlines()[-1])
 
 
@@ -148,11 +149,15 @@ def main(argv: list[str] | None = None) -> None:
     p.add_argument("--readers", default="columnar,pandas")
     p.add_argument("--cap-gb", type=float, default=6.0)
     p.add_argument("--keep", action="store_true", help="keep the generated files for the next run")
-    p.add_argument("--repeat", type=int, default=3, help="runs per reader and case; the fastest is printed (a shared machine is noisy)")
+    p.add_argument(
+        "--repeat", type=int, default=3, help="runs per reader and case; the fastest is printed (a noisy machine)"
+    )
     args = p.parse_args(argv)
     base = Path(args.folder)
     results = []
-    print(f"{'case':<8} {'reader':<9} {'rows':>11} {'malformed':>9} {'wall s':>8} {'lines/s':>11} {'peak MB':>9}  outcome")
+    print(
+        f"{'case':<8} {'reader':<9} {'rows':>11} {'malformed':>9} {'wall s':>8} {'lines/s':>11} {'peak MB':>9}  outcome"
+    )
     for case in args.cases.split(","):
         folder = base / case
         folder.mkdir(parents=True, exist_ok=True)
@@ -163,7 +168,8 @@ def main(argv: list[str] | None = None) -> None:
                 write_history(path, args.lines)
             else:
                 write_malformed(path, case)
-            print(f"# wrote {path} ({path.stat().st_size / 1e6:,.0f} MB) in {time.perf_counter() - started:.0f} s", flush=True)
+            seconds = time.perf_counter() - started
+            print(f"# wrote {path} ({path.stat().st_size / 1e6:,.0f} MB) in {seconds:.0f} s", flush=True)
         for reader in args.readers.split(","):
             runs = [measure(reader, folder, args.cap_gb) for _ in range(args.repeat)]
             r = min(runs, key=lambda x: x["seconds"] if x["seconds"] == x["seconds"] else float("inf"))

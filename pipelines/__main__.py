@@ -64,17 +64,20 @@ def run_cycle(
 
     config = PlanningConfigResource(path=config_path).config
     if cycle is None and config.calendar.cycle_date == LATEST_COMPLETE_PERIOD:
+        from pipelines.engines.history_files import choose_cycle_date
         from pipelines.partitions import cycle_key
-        from pipelines.stages.raw_history import choose_cycle_date
 
-        choice = choose_cycle_date(config)
+        choice = choose_cycle_date(config.inputs, config.calendar.period)
         print(choice.describe(), flush=True)
         cycle = cycle_key(choice.cycle_date) if choice.cycle_date is not None else None
     cycle = current_cycle(config, cycle)
     chosen = classes or list(config.product_classes)
     unknown = [c for c in chosen if c not in config.product_classes]
     if unknown:
-        raise ConfigError(f"{config.source}: --class {unknown} not under product_classes; valid classes are {sorted(config.product_classes)}")
+        raise ConfigError(
+            f"{config.source}: --class {unknown} not under product_classes; valid classes are "
+            f"{sorted(config.product_classes)}"
+        )
     defs = build_definitions(config_path)
     selection = rebuild_selection(defs, rebuild_from) if rebuild_from else None
     what = f"{rebuild_from} and downstream" if rebuild_from else "whole cycle"
@@ -96,9 +99,14 @@ def run_cycle(
     ok = True
     runs_done = []
     for earlier in _missing_earlier_cycles(config, cycle, backfill):
-        print(f"backfill: cycle {earlier} is not in the store yet; running it first (share drift compares with it)", flush=True)
+        print(
+            f"backfill: cycle {earlier} is not in the store yet; running it first (share drift compares with it)",
+            flush=True,
+        )
         now.update(cycle=earlier, what="whole cycle", of=len(config.product_classes))
-        past = run_partitions(defs, instance, earlier, list(config.product_classes), run_config=run_config, on_start=started, on_done=done)
+        past = run_partitions(
+            defs, instance, earlier, list(config.product_classes), run_config=run_config, on_start=started, on_done=done
+        )
         runs_done.append(past)
         ok = ok and past.success and past.blocking_checks_pass
     now.update(cycle=cycle, what=what, of=len(chosen))
@@ -114,7 +122,10 @@ def run_cycle(
         on_start=started,
         on_done=done,
     )
-    checks = [(f"{e.asset_key.to_user_string()} [{c}]", e.check_name, e.passed, e.severity.value) for c, e in run.checks_by_class()]
+    checks = [
+        (f"{e.asset_key.to_user_string()} [{c}]", e.check_name, e.passed, e.severity.value)
+        for c, e in run.checks_by_class()
+    ]
     if summary:
         print_summary(config_path, checks, cycle=cycle, failures=_failures(run))
     # the page again after every class ran, so a run a blocking check stopped shows its failure there too
@@ -131,7 +142,7 @@ def run_cycle(
 
 
 def _failure_kind(event) -> str:
-    """Why a step failed: `bad_input` (a PlanningError), `check` (a blocking check failed) or `crash` (anything else)."""
+    """Why a step failed: `bad_input` (a PlanningError), `check` (a blocking check failed) or `crash` (else)."""
     names = {c.__name__ for c in _subclasses(PlanningError)}
     error = event.event_specific_data.error
     while error is not None:
@@ -174,7 +185,10 @@ def _missing_earlier_cycles(config, cycle: str, count: int) -> list[str]:
 
 
 def print_summary(
-    config_path: str, checks: list[tuple[str, str, bool, str]] | None = None, cycle: str | None = None, failures: list | None = None
+    config_path: str,
+    checks: list[tuple[str, str, bool, str]] | None = None,
+    cycle: str | None = None,
+    failures: list | None = None,
 ) -> None:
     from pipelines.resources import PlanningConfigResource, read_table, stored_cycles
 
@@ -215,24 +229,34 @@ def print_summary(
             how = f"window {pc.window}, {pc.method}" if pc else "not in config"
             p = parents[parents["product_class"] == name]
             fallbacks = int((p["fallback"] != "none").sum())
-            print(f"  {name:<14} {len(p):>4} parents {len(group):>5} children  ({how}; {fallbacks} parents used a fallback)")
-    accuracy = table("backtest_accuracy")
-    if accuracy is not None and len(accuracy):
-        from pipelines.stages.backtest import choose_strategies
-
+            print(
+                f"  {name:<14} {len(p):>4} parents {len(group):>5} children  ({how}; {fallbacks} parents used a "
+                "fallback)"
+            )
+    choice = table("strategy_choice")  # as the cycle decided it, not decided again from today's config
+    if choice is not None and len(choice):
         print("strategy:     (backtest, leaf-grain WMAPE; margin = runner-up minus chosen)")
-        for _, row in choose_strategies(accuracy, config).iterrows():
-            print(f"  {row['product_class']:<14} {row['strategy']:<21} WMAPE {row['leaf_wmape']:.3f}  "
-                  f"margin {row['margin']:+.4f} over {row['runner_up'] or '-'}  seasonal naive {row['seasonal_naive_wmape']:.3f}"
-                  f"  ({row['forecast_grain']})")
+        for _, row in choice.iterrows():
+            print(
+                f"  {row['product_class']:<14} {row['strategy']:<21} WMAPE {row['leaf_wmape']:.3f}  "
+                f"margin {row['margin']:+.4f} over {row['runner_up'] or '-'}  seasonal naive "
+                f"{row['seasonal_naive_wmape']:.3f}"
+                f"  ({row['configured_strategy']})"
+            )
     drift = table("share_drift")
     if drift is not None and len(drift):
         limit = config.monitoring.max_share_drift_pp
-        print(f"share drift:  vs cycle {drift['previous_cycle'].iloc[0]}; {int((drift['abs_change_pp'] > limit).sum())} children "
-              f"moved more than {limit:g} pp; biggest moves:")
+        print(
+            f"share drift:  vs cycle {drift['previous_cycle'].iloc[0]}; "
+            f"{int((drift['abs_change_pp'] > limit).sum())} children "
+            f"moved more than {limit:g} pp; biggest moves:"
+        )
         for _, r in drift.sort_values("abs_change_pp", ascending=False).head(5).iterrows():
-            print(f"  {r['product_class']:<14} {r['product']}/{r['site']}/{r['customer']:<8} {r['share_previous']:.3f} -> "
-                  f"{r['share_current']:.3f}  ({r['change_pp']:+.2f} pp, {r['status']})")
+            print(
+                f"  {r['product_class']:<14} {r['product']}/{r['site']}/{r['customer']:<8} "
+                f"{r['share_previous']:.3f} -> "
+                f"{r['share_current']:.3f}  ({r['change_pp']:+.2f} pp, {r['status']})"
+            )
     elif drift is not None:
         print("share drift:  no previous cycle in the store to compare with (python -m pipelines cycle --backfill 1)")
     _print_checks(checks, failures)
@@ -255,8 +279,8 @@ def _print_checks(checks: list[tuple[str, str, bool, str]] | None, failures: lis
 
 def explain(config_path: str, product: str, site: str, customer: str, period: str | None, cycle: str | None) -> int:
     """Print how one leaf value was made, from the store only."""
+    from pipelines.explain import OPTIONAL_TABLES, REQUIRED_TABLES, explain_leaf
     from pipelines.resources import PlanningConfigResource, read_table, stored_cycles
-    from pipelines.stages.explain import OPTIONAL_TABLES, REQUIRED_TABLES, explain_leaf
 
     config = PlanningConfigResource(path=config_path).config
     store = Path(config.store.path)
@@ -289,31 +313,56 @@ def report(config_path: str, cycle: str | None) -> int:
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="python -m pipelines", description="apportion: the weekly share refresh cycle")
+    parser = argparse.ArgumentParser(
+        prog="python -m pipelines", description="apportion: the weekly share refresh cycle"
+    )
     sub = parser.add_subparsers(dest="command", required=True)
 
     def config_arg(p):
-        p.add_argument("--config", default="", help="planning config (default $APPORTION_CONFIG or config/planning.yaml)")
+        p.add_argument(
+            "--config", default="", help="planning config (default $APPORTION_CONFIG or config/planning.yaml)"
+        )
 
     p = sub.add_parser("cycle", help="run the weekly cycle for every class (or --class ...) and print a summary")
     config_arg(p)
-    p.add_argument("--cycle", default=None, help="cycle date YYYY-MM-DD (default: calendar.cycle_date, else the period after the history)")
-    p.add_argument("--class", dest="classes", action="append", default=None, help="only this product class (repeatable)")
-    p.add_argument("--backfill", type=int, default=0, metavar="N", help="first run the N cycles before it that the store does not hold yet")
-    p = sub.add_parser("rebuild", help="rematerialize one asset and everything downstream for one class, from the stored upstream tables")
+    p.add_argument(
+        "--cycle",
+        default=None,
+        help="cycle date YYYY-MM-DD (default: calendar.cycle_date, else the period after the history)",
+    )
+    p.add_argument(
+        "--class", dest="classes", action="append", default=None, help="only this product class (repeatable)"
+    )
+    p.add_argument(
+        "--backfill",
+        type=int,
+        default=0,
+        metavar="N",
+        help="first run the N cycles before it that the store does not hold yet",
+    )
+    p = sub.add_parser(
+        "rebuild",
+        help="rematerialize one asset and everything downstream for one class, from the stored upstream tables",
+    )
     config_arg(p)
-    p.add_argument("--class", dest="classes", action="append", required=True, help="product class to rebuild (repeatable)")
+    p.add_argument(
+        "--class", dest="classes", action="append", required=True, help="product class to rebuild (repeatable)"
+    )
     p.add_argument("--from", dest="asset", default="share_tables", help="first asset to rebuild (default share_tables)")
     p.add_argument("--cycle", default=None, help="cycle date (default: the current cycle)")
     p = sub.add_parser("summary", help="summarise a stored cycle (default the latest), no run")
     config_arg(p)
     p.add_argument("--cycle", default=None)
-    p = sub.add_parser("explain", help="how one leaf value was made: window, method, fallback, lifecycle, model, share, result")
+    p = sub.add_parser(
+        "explain", help="how one leaf value was made: window, method, fallback, lifecycle, model, share, result"
+    )
     config_arg(p)
     p.add_argument("product")
     p.add_argument("site")
     p.add_argument("customer")
-    p.add_argument("--period", default=None, help="a date inside a horizon period (default: every period of the horizon)")
+    p.add_argument(
+        "--period", default=None, help="a date inside a horizon period (default: every period of the horizon)"
+    )
     p.add_argument("--cycle", default=None, help="a stored cycle (default the latest)")
     p = sub.add_parser("report", help="write the cycle's HTML report again (var/reports/<cycle>/cycle_report.html)")
     config_arg(p)

@@ -1,6 +1,6 @@
 """The cycle's HTML report, from the store and the Dagster instance.
 
-The page (pipelines/stages/report.py renders it) covers every class of one
+The page (pipelines/engines/report_html.py renders it) covers every class of one
 cycle: the classes' tables come from the store, the checks' latest status per
 partition from the runs of that partition in the instance (so a class's
 rebuild shows its new results, and a run a blocking check stopped shows the
@@ -16,24 +16,29 @@ import dagster as dg
 import pandas as pd
 
 from pipelines.check_failures import failure_of
+from pipelines.checks import CHECKS, schema_check
 from pipelines.config import PlanningConfig
+from pipelines.engines import report_charts, report_html
 from pipelines.partitions import partition_key
 from pipelines.resources import read_table, report_folder
-from pipelines.stages import report
+from pipelines.tables import MODELS
 
 REPORT_FILE = "cycle_report.html"
 CHART_KINDS = ("parents", "shares")
-CHECK_COLUMNS = ["product_class", "asset", "check", "passed", "severity", "description", "run_id", "first_rows", "what_to_do"]
+CHECK_COLUMNS = [
+    "product_class", "asset", "check", "passed", "severity", "description", "run_id", "first_rows", "what_to_do"
+]
 
 
 def check_descriptions() -> dict[tuple[str, str], str]:
-    """(asset, check) -> the check's description, from the asset definitions."""
-    from pipelines.definitions import ASSETS  # the definitions import this module's users, so import late
+    """(asset, check) -> the check's description, from the catalogue of checks and the tables' models."""
+    checks = list(CHECKS) + [schema_check(name, model) for name, model in MODELS.items()]
+    return {(c.asset, c.name): c.description for c in checks}
 
-    return {(s.asset_key.to_user_string(), s.name): s.description or "" for a in ASSETS for s in a.check_specs}
 
-
-def latest_check_results(instance: dg.DagsterInstance, cycle: str, classes: list[str], runs_per_class: int = 20) -> pd.DataFrame:
+def latest_check_results(
+    instance: dg.DagsterInstance, cycle: str, classes: list[str], runs_per_class: int = 20
+) -> pd.DataFrame:
     """The newest evaluation of every check in each class's partition of `cycle` (from the runs of that partition)."""
     descriptions = check_descriptions()
     rows = []
@@ -67,10 +72,10 @@ def latest_check_results(instance: dg.DagsterInstance, cycle: str, classes: list
 
 def write_cycle_report(config: PlanningConfig, instance: dg.DagsterInstance, cycle: str) -> Path:
     """Render the cycle's page from the store and the instance; the path written."""
-    from pipelines.stages.backtest import choose_strategies
-
     store = Path(config.store.path)
-    folder = report_folder(config.model_copy(update={"calendar": config.calendar.model_copy(update={"cycle_date": cycle})}))
+    folder = report_folder(
+        config.model_copy(update={"calendar": config.calendar.model_copy(update={"cycle_date": cycle})})
+    )
     folder.mkdir(parents=True, exist_ok=True)
 
     def table(name: str) -> pd.DataFrame | None:
@@ -79,23 +84,26 @@ def write_cycle_report(config: PlanningConfig, instance: dg.DagsterInstance, cyc
     shares = table("share_tables")
     classes = list(config.product_classes)
     checks = latest_check_results(instance, cycle, classes)
-    accuracy = table("backtest_accuracy")
-    choice = choose_strategies(accuracy, config) if accuracy is not None and len(accuracy) else None
+    choice = table("strategy_choice")  # the decision the cycle stored, not one made again from today's config
     drift = table("share_drift")
     charts = {
-        c: [n for n in (report.chart_file_name(k, c, cycle) for k in CHART_KINDS) if (folder / n).exists()] for c in classes
+        c: [n for n in (report_charts.chart_file_name(k, c, cycle) for k in CHART_KINDS) if (folder / n).exists()]
+        for c in classes
     }
-    page = report.cycle_report_html(
+    page = report_html.cycle_report_html(
         cycle_date=cycle,
         share_tables=shares if shares is not None else pd.DataFrame(columns=["product_class"]),
         checks=[
-            (f"{r.asset} [{r.product_class}]", r.check, r.passed, r.severity, r.description, r.first_rows, r.what_to_do)
+            (
+                f"{r.asset} [{r.product_class}]", r.check, r.passed, r.severity, r.description, r.first_rows,
+                r.what_to_do,
+            )
             for r in checks.itertuples(index=False)
         ],
         parent_forecast=table("parent_forecast"),
         strategy_choice=choice,
         rejected_rows=table("rejected_rows"),
-        movers=drift[report.MOVER_COLUMNS] if drift is not None and len(drift) else None,
+        movers=drift[report_html.MOVER_COLUMNS] if drift is not None and len(drift) else None,
         charts={c: names for c, names in charts.items() if names},
         calendar=table("cycle_calendar"),
     )

@@ -7,6 +7,7 @@ from assets.cleaned_history import cleaned_history
 from assets.cycle_report import cycle_report
 from assets.lifecycle_history import lifecycle_history
 from assets.master_data import adjustments, customer_spans, pins, products, shortages
+from assets.period_basis import period_basis
 from assets.plan_measures import plan_measures
 from assets.raw_history import raw_history
 from assets.reconciliation import reconciliation
@@ -14,7 +15,8 @@ from assets.reinitialized_target import reinitialized_target
 from assets.share_drift import share_drift
 from assets.share_tables import share_tables
 from assets.statistical_forecast import statistical_forecast
-from pipelines.jobs import new_history_file_sensor, weekly_cycle_job, weekly_cycle_schedule
+from assets.strategy_choice import strategy_choice
+from pipelines.jobs import cycle_job, cycle_schedule, new_history_file_sensor
 from pipelines.resources import DuckDBStore, PlanningConfigResource
 
 ASSETS = [
@@ -27,9 +29,11 @@ ASSETS = [
     cleaned_history,
     lifecycle_history,
     share_tables,
+    period_basis,
     share_drift,
     reinitialized_target,
     backtest_accuracy,
+    strategy_choice,
     statistical_forecast,
     reconciliation,
     cycle_report,
@@ -42,8 +46,8 @@ def build_definitions(config_path: str = "") -> dg.Definitions:
     planning = PlanningConfigResource(path=config_path)
     return dg.Definitions(
         assets=ASSETS,
-        jobs=[weekly_cycle_job],
-        schedules=[weekly_cycle_schedule],
+        jobs=[cycle_job],
+        schedules=[cycle_schedule],
         sensors=[new_history_file_sensor],
         resources={"planning": planning, "io_manager": DuckDBStore(planning=planning)},
         executor=dg.in_process_executor,

@@ -32,13 +32,11 @@ import numpy as np
 import pandas as pd
 
 DEFAULT_SEED = 20261201
-MAKER = "Larkspur Hollow Garden Supply"
 
 HISTORY_WEEKS = 156
 HORIZON_WEEKS = 26
 CYCLE_DATE = np.datetime64("2026-11-30", "D")  # a Monday: the first week to forecast
 FIRST_WEEK = CYCLE_DATE - np.timedelta64(7 * HISTORY_WEEKS, "D")  # Monday 2023-12-04
-LAST_WEEK = CYCLE_DATE - np.timedelta64(7, "D")  # Monday 2026-11-23
 
 SITES = ("SITE-NORTH", "SITE-SOUTH", "SITE-WEST")
 POOL_SIZE = 48  # customers C0001..C0048; the planted new customers are C0049, C0050, C0051
@@ -175,7 +173,7 @@ def _assign_customers(rng: np.random.Generator, products: pd.DataFrame, size: np
     pool = np.array([f"C{i:04d}" for i in range(1, POOL_SIZE + 1)])
     weight = size**0.7
     keys = []
-    for product, product_class in zip(products["product"], products["product_class"]):
+    for product, product_class in zip(products["product"], products["product_class"], strict=False):
         if product == SUCCESSOR:
             continue  # copied from the retired product below
         for site in _choose_sites(rng, product, product_class):
@@ -204,7 +202,7 @@ def _leaf_parameters(rng: np.random.Generator, leaves: pd.DataFrame, products: p
 
     base_mean = {"consumables": 35.0, "seasonal": 15.0, "spares": 0.10}
     product_base = {}
-    for product, pc in zip(products["product"], products["product_class"]):
+    for product, pc in zip(products["product"], products["product_class"], strict=False):
         b = base_mean[pc]
         product_base[product] = b * rng.lognormal(0.0, 0.5) if pc != "spares" else b * rng.uniform(0.5, 1.5)
     base = leaves["product"].map(product_base).to_numpy()
@@ -245,7 +243,9 @@ def _add_planted_leaves(rng: np.random.Generator, leaves: pd.DataFrame) -> pd.Da
     """Successor leaves copy the retired product's; the new customer copies its reference, smaller."""
     successor = leaves[leaves["product"] == RETIRED].assign(product=SUCCESSOR)
     ref = leaves[
-        (leaves["product"] == NEW_CUSTOMER[0]) & (leaves["site"] == NEW_CUSTOMER[1]) & (leaves["customer"] == NEW_REFERENCE)
+        (leaves["product"] == NEW_CUSTOMER[0])
+        & (leaves["site"] == NEW_CUSTOMER[1])
+        & (leaves["customer"] == NEW_REFERENCE)
     ]
     new = ref.assign(
         customer=NEW_CUSTOMER[2],
@@ -256,7 +256,7 @@ def _add_planted_leaves(rng: np.random.Generator, leaves: pd.DataFrame) -> pd.Da
         weekday=int(rng.integers(0, 5)),
     )
     leaves = pd.concat([leaves, successor, new], ignore_index=True)
-    key = list(zip(leaves["product"], leaves["site"], leaves["customer"]))
+    key = list(zip(leaves["product"], leaves["site"], leaves["customer"], strict=False))
     role = np.full(len(leaves), "", dtype=object)
     role[leaves["product"].to_numpy() == RETIRED] = "retired"
     role[leaves["product"].to_numpy() == SUCCESSOR] = "successor"
@@ -314,7 +314,7 @@ def _build(seed: int) -> tuple[dict[str, pd.DataFrame], pd.DataFrame]:
 
     late = _pick(rng, np.flatnonzero(ordinary & (cls != "spares")), N_LATE_STARTERS)
     late_w = rng.integers(26, 110, N_LATE_STARTERS)
-    for i, w0 in zip(late, late_w):
+    for i, w0 in zip(late, late_w, strict=False):
         active[i, :w0] = 0.0
         span_from[i] = str(weeks[w0])
         planted.append(("late_start", *leaves.loc[i, ["product", "site", "customer"]], str(weeks[w0]),
@@ -347,7 +347,9 @@ def _build(seed: int) -> tuple[dict[str, pd.DataFrame], pd.DataFrame]:
     qty[rng.random((n, W)) < leaves["dropout"].to_numpy()[:, None]] = 0
 
     # 7. gaps: whole blocks of absent weeks for a few consumables customers
-    gap_leaves = _pick(rng, np.flatnonzero(ordinary & (cls == "consumables") & ~np.isin(np.arange(n), late)), N_GAP_LEAVES)
+    gap_leaves = _pick(
+        rng, np.flatnonzero(ordinary & (cls == "consumables") & ~np.isin(np.arange(n), late)), N_GAP_LEAVES
+    )
     for i in gap_leaves:
         length, w0 = int(rng.integers(4, 7)), int(rng.integers(10, 140))
         qty[i, w0 : w0 + length] = 0
@@ -384,7 +386,7 @@ def _build(seed: int) -> tuple[dict[str, pd.DataFrame], pd.DataFrame]:
         np.maximum(1, np.rint(q[small] * rng.uniform(0.05, 0.4, len(small)))),
     ].astype(np.int64)
     ret_day = (day[ret_cells] + rng.integers(1, 6, len(ret_cells))) % 6
-    for c, r, d in zip(ret_cells, ret_qty, ret_day):
+    for c, r, d in zip(ret_cells, ret_qty, ret_day, strict=False):
         kind = "return_net_negative" if c in big else "return"
         planted.append((kind, *leaves.loc[li[c], ["product", "site", "customer"]], str(weeks[wi[c]]),
                         f"-{r} returned on {weeks[wi[c]] + np.timedelta64(int(d), 'D')} against {q[c]} shipped"))
@@ -419,7 +421,7 @@ def _build(seed: int) -> tuple[dict[str, pd.DataFrame], pd.DataFrame]:
     # 2. stray lines after the phased-out customer's span ended
     po = int(np.flatnonzero(role == "phased_out")[0])
     stray_qty = np.maximum(1, rng.poisson(max(mu[po, out_w - 1], 1.0), len(STRAY_DATES)))
-    for d, s in zip(STRAY_DATES, stray_qty):
+    for d, s in zip(STRAY_DATES, stray_qty, strict=False):
         planted.append(("stray_after_span", *PHASED_OUT, str(d), f"line of {s} after active_to {PHASED_OUT_TO}"))
     line_leaf = np.r_[line_leaf, np.full(len(STRAY_DATES), po)]
     line_date = np.r_[line_date, np.array(STRAY_DATES, dtype="datetime64[D]")]
@@ -469,14 +471,31 @@ def _lifecycle_in_horizon(rng, leaves, history, product_rows, spans, planted):
 
     Drawn last, so every earlier draw (and so the rest of the scenario) is unchanged.
     """
-    key = list(zip(spans["product"], spans["site"], spans["customer"]))
+    key = list(zip(spans["product"], spans["site"], spans["customer"], strict=False))
     spans = spans.assign(scale="", initial_share="")
     spans.loc[[k == ENDS_IN_HORIZON for k in key], "active_to"] = str(ENDS_IN_HORIZON_TO)
-    planted.append(("span_ends_in_horizon", *ENDS_IN_HORIZON, str(ENDS_IN_HORIZON_TO), "share until the week of 2027-02-08, then 0"))
+    planted.append(
+        (
+            "span_ends_in_horizon",
+            *ENDS_IN_HORIZON,
+            str(ENDS_IN_HORIZON_TO),
+            "share until the week of 2027-02-08, then 0",
+        )
+    )
     product_rows.loc[product_rows["product"] == ENDS_IN_HORIZON_PRODUCT, "active_to"] = str(ENDS_IN_HORIZON_PRODUCT_TO)
-    for site, customer in zip(*spans.loc[spans["product"] == ENDS_IN_HORIZON_PRODUCT, ["site", "customer"]].to_numpy().T):
-        planted.append(("product_ends_in_horizon", ENDS_IN_HORIZON_PRODUCT, site, customer, str(ENDS_IN_HORIZON_PRODUCT_TO),
-                        "forecast until the week of 2027-02-22, then 0"))
+    for site, customer in zip(
+        *spans.loc[spans["product"] == ENDS_IN_HORIZON_PRODUCT, ["site", "customer"]].to_numpy().T, strict=False
+    ):
+        planted.append(
+            (
+                "product_ends_in_horizon",
+                ENDS_IN_HORIZON_PRODUCT,
+                site,
+                customer,
+                str(ENDS_IN_HORIZON_PRODUCT_TO),
+                "forecast until the week of 2027-02-22, then 0",
+            )
+        )
     new_rows = pd.DataFrame(
         [
             (*STARTS_IN_HORIZON, str(STARTS_IN_HORIZON_FROM), "", "", "", str(STARTS_IN_HORIZON_SHARE)),
@@ -494,12 +513,21 @@ def _lifecycle_in_horizon(rng, leaves, history, product_rows, spans, planted):
     level = float(leaves.loc[parent, "level"].median())
     weeks = NEW_WITHOUT_SHARE_FROM + np.timedelta64(7, "D") * np.arange(4) + np.timedelta64(1, "D")  # Tuesdays
     qty = np.maximum(1, rng.poisson(level, len(weeks)))
-    lines = pd.DataFrame({"product": NEW_WITHOUT_SHARE[0], "site": NEW_WITHOUT_SHARE[1], "customer": NEW_WITHOUT_SHARE[2],
-                          "period_start": _iso(weeks), "quantity": qty.astype(str)})
+    lines = pd.DataFrame(
+        {
+            "product": NEW_WITHOUT_SHARE[0],
+            "site": NEW_WITHOUT_SHARE[1],
+            "customer": NEW_WITHOUT_SHARE[2],
+            "period_start": _iso(weeks),
+            "quantity": qty.astype(str),
+        }
+    )
     planted.append(("new_without_share", *NEW_WITHOUT_SHARE, str(NEW_WITHOUT_SHARE_FROM),
                     f"4 weeks of lines ({', '.join(map(str, qty))}), no reference or initial share"))
     history = pd.concat([history, lines], ignore_index=True)
-    history = history.sort_values(["product", "site", "customer", "period_start"], kind="mergesort").reset_index(drop=True)
+    history = history.sort_values(["product", "site", "customer", "period_start"], kind="mergesort").reset_index(
+        drop=True
+    )
     return history, product_rows, spans
 
 
@@ -624,7 +652,7 @@ def _pins(frames: dict[str, pd.DataFrame], prices: pd.DataFrame, seed: int) -> p
 
     measure, product, site, weeks = PINNED_FORECAST
     customer = rng.choice(customers(product, site))
-    for w, units in zip(weeks, 5 * rng.integers(6, 13, len(weeks))):
+    for w, units in zip(weeks, 5 * rng.integers(6, 13, len(weeks)), strict=False):
         rows.append((product, site, customer, str(horizon[w]), measure, str(units)))
     for measure, product, site, weeks in (PINNED_ADJUSTMENT, PINNED_PROMOTION):
         customer = rng.choice(customers(product, site))
@@ -635,10 +663,14 @@ def _pins(frames: dict[str, pd.DataFrame], prices: pd.DataFrame, seed: int) -> p
             rows.append((product, site, customer, str(horizon[w]), measure, str(units)))
     measure, product, site, customer, weeks = PINNED_PRICE
     for w in weeks:
-        listed = prices[(prices["product"] == product) & (prices["site"] == site) & (prices["period_start"] == str(horizon[w]))]
+        listed = prices[
+            (prices["product"] == product) & (prices["site"] == site) & (prices["period_start"] == str(horizon[w]))
+        ]
         rows.append((product, site, customer, str(horizon[w]), measure, f"{float(listed['value'].iloc[0]) * 0.95:.2f}"))
     out = pd.DataFrame(rows, columns=["product", "site", "customer", "period_start", "measure", "value"])
-    return out.sort_values(["measure", "product", "site", "customer", "period_start"], kind="mergesort").reset_index(drop=True)
+    return out.sort_values(["measure", "product", "site", "customer", "period_start"], kind="mergesort").reset_index(
+        drop=True
+    )
 
 
 def _plant_plan_inputs(frames: dict[str, pd.DataFrame], seed: int) -> dict[str, pd.DataFrame]:

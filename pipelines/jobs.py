@@ -1,6 +1,7 @@
-"""The weekly cycle job, its schedule, and the sensor that starts a cycle when new history lands.
+"""The cycle job, its schedule, and the sensor that starts a cycle when new history lands.
 
-A run of `weekly_cycle` is one partition: one product class in one cycle. The
+A run of `planning_cycle` is one partition: one product class in one cycle (a
+week or a month, per `calendar.period`). The
 schedule and the sensor register the cycle date and the configured classes as
 partitions, then request one run per class.
 """
@@ -9,19 +10,20 @@ import json
 
 import dagster as dg
 
+from pipelines.engines.inputs import find_files, sha256
 from pipelines.errors import PlanningError
 from pipelines.partitions import current_cycle, partition_key, register_partitions
 from pipelines.resources import PlanningConfigResource
-from pipelines.stages.inputs import find_files, sha256
 
-WEEKLY_CYCLE = "weekly_cycle"
-WEEKLY_SCHEDULE = "weekly_cycle_monday_0600_utc"
+CYCLE_JOB = "planning_cycle"
+# the schedule's name says what it starts, not when: its cron is its setting (cron_schedule below)
+CYCLE_SCHEDULE = "planning_cycle_schedule"
 NEW_HISTORY_SENSOR = "new_history_file"
 
-weekly_cycle_job = dg.define_asset_job(
-    WEEKLY_CYCLE,
+cycle_job = dg.define_asset_job(
+    CYCLE_JOB,
     selection=dg.AssetSelection.all(),
-    description="The whole weekly cycle for one product class (a partition cycle|class): history in, shares "
+    description="The whole cycle for one product class (a partition cycle|class): history in, shares "
     "refreshed, forecast rerun and split, reconciliation proven.",
 )
 
@@ -29,21 +31,25 @@ weekly_cycle_job = dg.define_asset_job(
 def cycle_run_requests(cycle: str, classes: list[str], run_key_prefix: str) -> list[dg.RunRequest]:
     """One run request per class of `cycle`; the run key makes a repeated tick a no-op."""
     return [
-        dg.RunRequest(run_key=f"{run_key_prefix}:{cycle}|{c}", partition_key=partition_key(cycle, c), tags={"cycle": cycle, "product_class": c})
+        dg.RunRequest(
+            run_key=f"{run_key_prefix}:{cycle}|{c}",
+            partition_key=partition_key(cycle, c),
+            tags={"cycle": cycle, "product_class": c},
+        )
         for c in classes
     ]
 
 
 @dg.schedule(
-    name=WEEKLY_SCHEDULE,
-    job=weekly_cycle_job,
+    name=CYCLE_SCHEDULE,
+    job=cycle_job,
     cron_schedule="0 6 * * 1",
     execution_timezone="UTC",
     default_status=dg.DefaultScheduleStatus.STOPPED,
     description="Every Monday 06:00 UTC: the current cycle (calendar.cycle_date, by default the period after the "
     "latest history) for every configured class, one run each. Stopped until the platform team starts it.",
 )
-def weekly_cycle_schedule(context: dg.ScheduleEvaluationContext, planning: PlanningConfigResource):
+def cycle_schedule(context: dg.ScheduleEvaluationContext, planning: PlanningConfigResource):
     try:
         config = planning.config
         cycle = current_cycle(config)
@@ -51,7 +57,9 @@ def weekly_cycle_schedule(context: dg.ScheduleEvaluationContext, planning: Plann
         return dg.SkipReason(f"no cycle started: {err}")
     classes = list(config.product_classes)
     register_partitions(context.instance, cycle, classes)
-    return cycle_run_requests(cycle, classes, run_key_prefix=f"schedule:{context.scheduled_execution_time:%Y-%m-%dT%H:%M}")
+    return cycle_run_requests(
+        cycle, classes, run_key_prefix=f"schedule:{context.scheduled_execution_time:%Y-%m-%dT%H:%M}"
+    )
 
 
 def history_signature(folder) -> dict[str, str]:
@@ -61,7 +69,7 @@ def history_signature(folder) -> dict[str, str]:
 
 @dg.sensor(
     name=NEW_HISTORY_SENSOR,
-    job=weekly_cycle_job,
+    job=cycle_job,
     minimum_interval_seconds=60,
     default_status=dg.DefaultSensorStatus.STOPPED,
     description="Starts the current cycle for every class when a history file in inputs.folder is new or changed "

@@ -10,7 +10,7 @@
 Both dimensions are dynamic: their keys come from the config and the data,
 which are read when a cycle starts, never at import time. A partition's run
 sees the planning config narrowed to its cycle date and its class
-(`partition_config`), so the stage functions need not know about partitions.
+(`narrow_config`, called by `assets.factory`), so the stages need not know about partitions.
 """
 
 from __future__ import annotations
@@ -79,12 +79,6 @@ def narrow_config(config: PlanningConfig, cycle: str, product_class: str) -> Pla
     return narrowed
 
 
-def partition_config(context: dg.AssetExecutionContext, config: PlanningConfig) -> PlanningConfig:
-    """The planning config narrowed to the partition this asset is materializing."""
-    cycle, product_class = split_key(context.partition_key)
-    return narrow_config(config, cycle, product_class)
-
-
 def register_partitions(instance: dg.DagsterInstance, cycle: str, classes: list[str]) -> None:
     """Add the cycle and the classes as partition keys (adding an existing key is a no-op)."""
     known_cycles = set(instance.get_dynamic_partitions(CYCLE))
@@ -103,12 +97,12 @@ def current_cycle(config: PlanningConfig, requested: str | None = None) -> str:
     not start a period.
     """
     from pipelines.calendar import LATEST_COMPLETE_PERIOD, resolve_cycle_date
-    from pipelines.stages.raw_history import latest_cycle_date
+    from pipelines.engines.history_files import latest_cycle_date
 
     period = config.calendar.period
     setting = requested or config.calendar.cycle_date
     if setting == LATEST_COMPLETE_PERIOD:
-        after = latest_cycle_date(config.inputs.folder, period, config)
+        after = latest_cycle_date(config.inputs.folder, period, config.inputs)
         if after is None:
             raise ConfigError(
                 f"{config.source}: calendar.cycle_date is {LATEST_COMPLETE_PERIOD!r} but no history file in "

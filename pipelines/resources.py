@@ -45,7 +45,19 @@ PARTITION_COLUMNS = (PARTITION_CYCLE, PARTITION_CLASS, PARTITION_ROW)
 LOCK_WAIT_SECONDS = 120.0
 # the store's own table: one row per asset partition written, with its row count and time
 WRITTEN = "partitions_written"
-NUMERIC = {"TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "FLOAT", "DOUBLE", "UTINYINT", "USMALLINT", "UINTEGER", "UBIGINT"}
+NUMERIC = {
+    "TINYINT",
+    "SMALLINT",
+    "INTEGER",
+    "BIGINT",
+    "HUGEINT",
+    "FLOAT",
+    "DOUBLE",
+    "UTINYINT",
+    "USMALLINT",
+    "UINTEGER",
+    "UBIGINT",
+}
 
 
 def _connect(path: Path, read_only: bool = False) -> duckdb.DuckDBPyConnection:
@@ -96,7 +108,8 @@ class DuckDBStore(dg.ConfigurableIOManager):
             {
                 "store_table": dg.MetadataValue.text(f"{self.path}::{table}"),
                 "store_query": dg.MetadataValue.text(
-                    f"SELECT * FROM {table} WHERE {PARTITION_CYCLE} = '{cycle}' AND {PARTITION_CLASS} = '{product_class}'"
+                    f"SELECT * FROM {table} WHERE {PARTITION_CYCLE} = '{cycle}' AND {PARTITION_CLASS} = "
+                    f"'{product_class}'"
                 ),
             }
         )
@@ -111,7 +124,8 @@ class DuckDBStore(dg.ConfigurableIOManager):
         frame = read_table(self.path, table, cycle=cycle, product_class=product_class)
         if frame is None:
             raise FileNotFoundError(
-                f"table {table!r} is not in the store {self.path}; materialize asset {table} for {cycle}|{product_class} first"
+                f"table {table!r} is not in the store {self.path}; materialize asset {table} for "
+                f"{cycle}|{product_class} first"
             )
         if frame.empty and not partition_stored(self.path, table, cycle, product_class):
             raise FileNotFoundError(
@@ -121,7 +135,9 @@ class DuckDBStore(dg.ConfigurableIOManager):
         return frame
 
 
-def write_partition(con: duckdb.DuckDBPyConnection, table: str, frame: pd.DataFrame, cycle: str, product_class: str) -> None:
+def write_partition(
+    con: duckdb.DuckDBPyConnection, table: str, frame: pd.DataFrame, cycle: str, product_class: str
+) -> None:
     """Replace the rows of one partition of `table` by `frame` (which carries the partition columns)."""
     con.register("frame", frame)
     try:
@@ -144,13 +160,18 @@ def write_partition(con: duckdb.DuckDBPyConnection, table: str, frame: pd.DataFr
             elif kind != stored[name] and kind in NUMERIC and stored[name] in NUMERIC:
                 # e.g. a count column that is whole in one partition and has gaps (float) in another
                 con.execute(f'ALTER TABLE "{table}" ALTER COLUMN "{name}" TYPE DOUBLE')
-        con.execute(f'DELETE FROM "{table}" WHERE {PARTITION_CYCLE} = ? AND {PARTITION_CLASS} = ?', [cycle, product_class])
+        con.execute(
+            f'DELETE FROM "{table}" WHERE {PARTITION_CYCLE} = ? AND {PARTITION_CLASS} = ?', [cycle, product_class]
+        )
         con.execute(f'INSERT INTO "{table}" BY NAME SELECT * FROM frame')
         con.execute(
             f"CREATE TABLE IF NOT EXISTS {WRITTEN} (asset VARCHAR, {PARTITION_CYCLE} VARCHAR, "
             f"{PARTITION_CLASS} VARCHAR, rows BIGINT, written_at TIMESTAMP)"
         )
-        con.execute(f"DELETE FROM {WRITTEN} WHERE asset = ? AND {PARTITION_CYCLE} = ? AND {PARTITION_CLASS} = ?", [table, cycle, product_class])
+        con.execute(
+            f"DELETE FROM {WRITTEN} WHERE asset = ? AND {PARTITION_CYCLE} = ? AND {PARTITION_CLASS} = ?",
+            [table, cycle, product_class],
+        )
         con.execute(f"INSERT INTO {WRITTEN} VALUES (?, ?, ?, ?, now())", [table, cycle, product_class, len(frame)])
         con.execute("COMMIT")
     except Exception:
@@ -248,7 +269,8 @@ def previous_cycle(store: Path | str, table: str, cycle: str, product_class: str
         if not _columns(con, WRITTEN):
             return None
         row = con.execute(
-            f"SELECT max({PARTITION_CYCLE}) FROM {WRITTEN} WHERE asset = ? AND {PARTITION_CLASS} = ? AND {PARTITION_CYCLE} < ?",
+            f"SELECT max({PARTITION_CYCLE}) FROM {WRITTEN} WHERE asset = ? AND {PARTITION_CLASS} = ? AND "
+            f"{PARTITION_CYCLE} < ?",
             [table, product_class, cycle],
         ).fetchone()
     return row[0] if row else None

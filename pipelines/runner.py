@@ -9,7 +9,7 @@ from dataclasses import dataclass, field
 import dagster as dg
 
 from pipelines.errors import ConfigError
-from pipelines.jobs import WEEKLY_CYCLE
+from pipelines.jobs import CYCLE_JOB
 from pipelines.partitions import partition_key, register_partitions
 
 
@@ -66,13 +66,13 @@ def run_partitions(
     on_start: Callable[[int, str], None] | None = None,
     on_done: Callable[[str, dg.ExecuteInProcessResult, float], None] | None = None,
 ) -> CycleRun:
-    """Run the weekly cycle job (or `selection`) for each class of `cycle`, one run per partition.
+    """Run the cycle job (or `selection`) for each class of `cycle`, one run per partition.
 
     The cycle and `all_classes` (default `classes`) are registered as partitions
     first, so the runs show in the UI under their partition keys.
     """
     register_partitions(instance, cycle, list(all_classes or classes))
-    job = defs.resolve_job_def(WEEKLY_CYCLE)
+    job = defs.resolve_job_def(CYCLE_JOB)
     run = CycleRun(cycle=cycle)
     for i, product_class in enumerate(classes, 1):
         if on_start:

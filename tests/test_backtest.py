@@ -16,8 +16,9 @@ import pandas as pd
 import pytest
 
 from pipelines.config import parse_config
-from pipelines.schemas import BacktestAccuracy, StrategyChoice
-from pipelines.stages.backtest import choose_strategies, origin_ordinals, run_backtest
+from pipelines.schemas_forecast import BacktestAccuracy, StrategyChoice
+from pipelines.stages.backtest_accuracy import origin_ordinals, run_backtest
+from pipelines.stages.strategy_choice import choose_strategies
 
 ETS = {"smooth": "auto_ets", "erratic": "auto_ets", "intermittent": "auto_ets", "lumpy": "auto_ets"}
 SES = {"smooth": "ses", "erratic": "ses", "intermittent": "ses", "lumpy": "ses"}
@@ -31,7 +32,13 @@ def frames(y: np.ndarray):
     c = np.tile(np.repeat(np.arange(n_c), n_t), n_p)
     t = np.tile(np.arange(n_t), n_p * n_c)
     history = pd.DataFrame(
-        {"product": [f"P{i}" for i in p], "site": "S1", "customer": [f"C{j}" for j in c], "period_start": weeks[t], "quantity": y.ravel().astype(float)}
+        {
+            "product": [f"P{i}" for i in p],
+            "site": "S1",
+            "customer": [f"C{j}" for j in c],
+            "period_start": weeks[t],
+            "quantity": y.ravel().astype(float),
+        }
     )
     history = history[history["quantity"] > 0].reset_index(drop=True)
     history["origin"] = "own"
@@ -47,7 +54,7 @@ def frames(y: np.ndarray):
 def config(models, window=52, strategies=("top_down", "bottom_up"), grain="auto", origins=4):
     return parse_config(
         {
-            "product_classes": {"a": {"window": window, "forecast_grain": grain, "models": models}},
+            "product_classes": {"a": {"window": window, "strategy": grain, "models": models}},
             "calendar": {"horizon": 13},
             "backtest": {"origins": origins, "horizon": 13, "step": 13, "strategies": list(strategies)},
         }
@@ -72,11 +79,23 @@ def test_constant_children_give_zero_error_at_both_grains_for_every_strategy():
     y = np.zeros((2, 3, 80))
     y[:, 0], y[:, 1], y[:, 2] = 6.0, 3.0, 1.0
     history, children, cycle = frames(y)
-    cfg = config(SES, window=26, strategies=("top_down", "forecast_proportions", "bottom_up", "mint_shrink", "wls_var"), origins=2)
+    cfg = config(
+        SES,
+        window=26,
+        strategies=("top_down", "forecast_proportions", "bottom_up", "mint_shrink", "wls_var"),
+        origins=2,
+    )
     table = BacktestAccuracy.validate(run_backtest(history, children, cfg, cycle).accuracy)
     # constant series: SES forecasts the constant, shares are 0.6 / 0.3 / 0.1 of a constant 10, so every
     # strategy is exact; seasonal naive (80 weeks >= 52) repeats the constant too
-    assert set(table["strategy"]) == {"top_down", "forecast_proportions", "bottom_up", "mint_shrink", "wls_var", "seasonal_naive"}
+    assert set(table["strategy"]) == {
+        "top_down",
+        "forecast_proportions",
+        "bottom_up",
+        "mint_shrink",
+        "wls_var",
+        "seasonal_naive",
+    }
     assert table.loc[table["metric"].isin(["wmape", "bias"]), "value"].abs().max() == pytest.approx(0.0, abs=1e-9)
     assert set(table["origins"]) == {2} and set(table["horizon"]) == {13}
     # 2 parents and 6 leaves; MASE is undefined for constant series (zero naive scale)
@@ -91,7 +110,7 @@ def test_wmape_bias_and_fva_by_hand_on_a_one_period_horizon():
     y[0, 0, 60] = 8.0
     history, children, cycle = frames(y)
     cfg = parse_config(
-        {"product_classes": {"a": {"window": 10, "forecast_grain": "auto", "models": SES}}, "calendar": {"horizon": 1},
+        {"product_classes": {"a": {"window": 10, "strategy": "auto", "models": SES}}, "calendar": {"horizon": 1},
          "backtest": {"origins": 1, "horizon": 1, "step": 1, "strategies": ["top_down", "bottom_up"]}}
     )
     table = run_backtest(history, children, cfg, cycle).accuracy
@@ -99,19 +118,26 @@ def test_wmape_bias_and_fva_by_hand_on_a_one_period_horizon():
     # leaf: |4-8| + |6-6| = 4 over 14 -> WMAPE 0.2857, bias -4/14; parent: 4/14 too
     assert wmape(table, "bottom_up") == pytest.approx(4 / 14)
     assert wmape(table, "top_down", "parent") == pytest.approx(4 / 14)
-    bias = table[(table["strategy"] == "top_down") & (table["grain"] == "leaf") & (table["metric"] == "bias")]["value"].iloc[0]
+    bias = table[(table["strategy"] == "top_down") & (table["grain"] == "leaf") & (table["metric"] == "bias")][
+        "value"
+    ].iloc[0]
     assert bias == pytest.approx(-4 / 14)
     # seasonal naive repeats week 8 (52 back): 4 and 6 as well -> value added 0
-    fva = table[(table["strategy"] == "top_down") & (table["grain"] == "leaf") & (table["metric"] == "fva")]["value"].iloc[0]
+    fva = table[(table["strategy"] == "top_down") & (table["grain"] == "leaf") & (table["metric"] == "fva")][
+        "value"
+    ].iloc[0]
     assert fva == pytest.approx(0.0)
 
 
 def test_fixed_grain_class_keeps_its_strategy_and_reports_the_margin():
     table = pd.DataFrame(
-        [("a", s, "leaf", "wmape", v, 4, 13, 3) for s, v in (("top_down", 0.30), ("bottom_up", 0.20), ("seasonal_naive", 0.25))],
+        [
+            ("a", s, "leaf", "wmape", v, 4, 13, 3)
+            for s, v in (("top_down", 0.30), ("bottom_up", 0.20), ("seasonal_naive", 0.25))
+        ],
         columns=["product_class", "strategy", "grain", "metric", "value", "origins", "horizon", "series"],
     )
-    fixed = StrategyChoice.validate(choose_strategies(table, config(SES, grain="product_site")))
+    fixed = StrategyChoice.validate(choose_strategies(table, config(SES, grain="top_down")))
     auto = StrategyChoice.validate(choose_strategies(table, config(SES)))
     # fixed product_site -> top_down even though it loses: margin 0.20 - 0.30 = -0.10, worse than seasonal naive
     assert fixed.iloc[0][["strategy", "runner_up"]].tolist() == ["top_down", "bottom_up"]
@@ -128,7 +154,9 @@ def test_a_tie_goes_to_the_strategy_listed_first():
         [("a", s, "leaf", "wmape", 0.2, 4, 13, 3) for s in ("top_down", "bottom_up", "seasonal_naive")],
         columns=["product_class", "strategy", "grain", "metric", "value", "origins", "horizon", "series"],
     )
-    assert choose_strategies(table, config(SES, strategies=("bottom_up", "top_down")))["strategy"].iloc[0] == "bottom_up"
+    assert (
+        choose_strategies(table, config(SES, strategies=("bottom_up", "top_down")))["strategy"].iloc[0] == "bottom_up"
+    )
     assert choose_strategies(table, config(SES, strategies=("top_down", "bottom_up")))["strategy"].iloc[0] == "top_down"
 
 

@@ -12,16 +12,17 @@ from __future__ import annotations
 
 import pytest
 import yaml
+from test_bad_inputs import apply, build
 
 from pipelines.__main__ import EXIT_BAD_INPUT, EXIT_CHECK_FAILED, EXIT_CRASH, EXIT_OK, main
 from pipelines.resources import read_table
-from test_bad_inputs import apply, build
 
 pytestmark = pytest.mark.graph
 
 
 def cycle(tmp_path, monkeypatch, capsys, steps, classes=("a",)) -> tuple[int, str, str, str]:
-    """Break the base folder by `steps`, run the cycle of `classes` on the command line; (exit code, out, err, config)."""
+    """Break the base folder by `steps`, run the cycle of `classes` on the command line; (exit code, out, err,
+    config)."""
     folder, config = build(tmp_path, {"do": steps})
     for step in steps:
         config = apply(folder, config, {"config": step["config"]}) if "config" in step else config
@@ -50,7 +51,7 @@ def test_stray_lines_are_quarantined_and_the_cycle_exits_0(tmp_path, monkeypatch
     assert "cycle date 2026-03-02" in out and "2099-01-05" in out  # the stray line named as ignored
     store = tmp_path / "store.duckdb"
     rejected = read_table(store, "rejected_rows")
-    assert dict(zip(rejected["source_row"], rejected["reason"])) == {
+    assert dict(zip(rejected["source_row"], rejected["reason"], strict=True)) == {
         183: "date_after_window", 184: "date_before_window", 185: "quantity_out_of_bounds"
     }
     calendar = read_table(store, "cycle_calendar").iloc[0]
@@ -61,7 +62,10 @@ def test_stray_lines_are_quarantined_and_the_cycle_exits_0(tmp_path, monkeypatch
 
 def test_an_unknown_column_exits_2_naming_the_file_and_the_column(tmp_path, monkeypatch, capsys):
     code, out, err, _ = cycle(
-        tmp_path, monkeypatch, capsys, [{"header": "history.csv", "text": "product,site,customer,period_start,quantity,note"}]
+        tmp_path,
+        monkeypatch,
+        capsys,
+        [{"header": "history.csv", "text": "product,site,customer,period_start,quantity,note"}],
     )
     assert code == EXIT_BAD_INPUT
     assert "history.csv" in err and "'note'" in err
@@ -69,7 +73,8 @@ def test_an_unknown_column_exits_2_naming_the_file_and_the_column(tmp_path, monk
 
 def test_bad_input_found_inside_a_run_exits_2_and_a_bug_exits_3(tmp_path, monkeypatch, capsys):
     # a product class the config does not know stops the products step with a ConfigError: bad input, 2
-    code, out, _, _ = cycle(tmp_path / "class", monkeypatch, capsys, [{"set": "products.csv", "row": 1, "column": "product_class", "value": "bulky"}])
+    bulky = {"set": "products.csv", "row": 1, "column": "product_class", "value": "bulky"}
+    code, out, _, _ = cycle(tmp_path / "class", monkeypatch, capsys, [bulky])
     assert code == EXIT_BAD_INPUT
     assert "'bulky'" in out and "product_classes" in out
     # anything else a step raises is a bug, 3, with the run id and the message printed
@@ -77,13 +82,15 @@ def test_bad_input_found_inside_a_run_exits_2_and_a_bug_exits_3(tmp_path, monkey
     def broken(*args, **kwargs):
         raise RuntimeError("a bug planted by the test")
 
-    monkeypatch.setattr("assets.master_data.unknown_references", broken)
+    monkeypatch.setattr("pipelines.stages.master_data.unknown_references", broken)
     code, out, _, _ = cycle(tmp_path / "bug", monkeypatch, capsys, [])
     assert code == EXIT_CRASH
     assert "a bug planted by the test" in out and "run " in out
 
 
-def test_a_blocking_input_check_exits_1_and_prints_its_rows_on_the_console_and_in_the_report(tmp_path, monkeypatch, capsys):
+def test_a_blocking_input_check_exits_1_and_prints_its_rows_on_the_console_and_in_the_report(
+    tmp_path, monkeypatch, capsys
+):
     code, out, _, _ = cycle(
         tmp_path,
         monkeypatch,
@@ -123,7 +130,11 @@ def test_every_check_result_carries_its_partition(tmp_path):
     defs = build_definitions(str(path))
     upstream = dg.AssetSelection.assets("pins", "cleaned_history").upstream().required_multi_asset_neighbors()
     run = run_partitions(
-        defs, dg.DagsterInstance.ephemeral(), "2026-03-02", ["b"], selection=list(upstream.resolve(defs.resolve_asset_graph()))
+        defs,
+        dg.DagsterInstance.ephemeral(),
+        "2026-03-02",
+        ["b"],
+        selection=list(upstream.resolve(defs.resolve_asset_graph())),
     )
     evaluations = run.get_asset_check_evaluations()
     assert evaluations and load_config(path).product_classes

@@ -97,7 +97,13 @@ def test_product_missing_from_master_is_rejected_as_unknown_product(make_raw, pr
 
 
 def test_leaf_without_customer_span_is_rejected_as_no_customer_span(make_raw, products, spans, config):
-    raw = make_raw([("P1", "S1", "C1", "2026-01-05", "3"), ("P1", "S1", "C9", "2026-01-05", "4"), ("P1", "S2", "C1", "2026-01-05", "4")])
+    raw = make_raw(
+        [
+            ("P1", "S1", "C1", "2026-01-05", "3"),
+            ("P1", "S1", "C9", "2026-01-05", "4"),
+            ("P1", "S2", "C1", "2026-01-05", "4"),
+        ]
+    )
     res = clean_history(raw, products, spans, config)
     # P1/S1/C9 and P1/S2/C1 have no span (spans exist for S1 x C1, C2 only)
     assert res.rejected["source_row"].tolist() == [2, 3]
@@ -254,7 +260,11 @@ def test_span_without_start_is_not_filled_before_its_first_line(make_raw, produc
 def test_span_start_fills_from_span_start_but_never_before_first_history_period(make_raw, make_spans, products, config):
     spans = make_spans([("P1", "S1", "C1"), ("P1", "S1", "C2", "2026-01-14"), ("P1", "S1", "C3", "2025-06-01")])
     raw = make_raw(
-        [("P1", "S1", "C1", "2026-01-05", "3"), ("P1", "S1", "C2", "2026-01-26", "5"), ("P1", "S1", "C3", "2026-01-26", "6")]
+        [
+            ("P1", "S1", "C1", "2026-01-05", "3"),
+            ("P1", "S1", "C2", "2026-01-26", "5"),
+            ("P1", "S1", "C3", "2026-01-26", "6"),
+        ]
     )
     cleaned = clean_history(raw, products, spans, config).cleaned
     c2, c3 = rows_of(cleaned, "C2"), rows_of(cleaned, "C3")
@@ -304,7 +314,11 @@ def test_explicit_cycle_date_is_used_and_cuts_history(make_raw, make_config, pro
 
 def test_no_unexplained_change_on_a_clean_result(make_raw, products, spans, config):
     raw = make_raw(
-        [("P1", "S1", "C1", "2026-01-05", "2"), ("P1", "S1", "C1", "2026-01-05", "-5"), ("P1", "S1", "C2", "2026-01-12", "4")]
+        [
+            ("P1", "S1", "C1", "2026-01-05", "2"),
+            ("P1", "S1", "C1", "2026-01-05", "-5"),
+            ("P1", "S1", "C2", "2026-01-12", "4"),
+        ]
     )
     res = clean_history(raw, products, spans, config)
     # C1: raw -3 + 0 + 0 + 0 = -3, delta +3, cleaned 0 -> -3 + 3 = 0 explained
@@ -329,7 +343,7 @@ def test_tampered_quantity_is_an_unexplained_change(make_raw, products, spans, c
 def _spike_raw(make_raw):
     """C1 weekly 10, 12, 100, 11, 13 from 2026-01-05; cycle 2026-02-09."""
     weeks = ["2026-01-05", "2026-01-12", "2026-01-19", "2026-01-26", "2026-02-02"]
-    return make_raw([("P1", "S1", "C1", w, q) for w, q in zip(weeks, ["10", "12", "100", "11", "13"])])
+    return make_raw([("P1", "S1", "C1", w, q) for w, q in zip(weeks, ["10", "12", "100", "11", "13"], strict=False)])
 
 
 def test_hampel_replace_with_median_puts_the_window_median(make_raw, make_config, products, spans):
@@ -388,7 +402,13 @@ def test_outlier_rule_none_changes_nothing(make_raw, make_config, products, span
 def _weekly_raw(make_raw, values, customer="C1", product="P1", site="S1", first="2026-01-05"):
     """One line per week from `first`; None = no line that week."""
     weeks = pd.date_range(first, periods=len(values), freq="7D")
-    return make_raw([(product, site, customer, w.date().isoformat(), str(v)) for w, v in zip(weeks, values) if v is not None])
+    return make_raw(
+        [
+            (product, site, customer, w.date().isoformat(), str(v))
+            for w, v in zip(weeks, values, strict=False)
+            if v is not None
+        ]
+    )
 
 
 def test_tukey_limit_caps_at_the_upper_fence(make_raw, make_config, products, spans):
@@ -409,7 +429,9 @@ def test_tukey_limit_caps_at_the_upper_fence(make_raw, make_config, products, sp
     assert (row["before"], row["after"], row["delta"]) == pytest.approx((100.0, 16.0, -84.0))
     params = json.loads(row["parameters"])
     assert params["fence"] == 1.5 and params["window"] == 5 and "k" not in params
-    assert (params["q1"], params["median"], params["q3"], params["lower"], params["upper"]) == pytest.approx((11, 12, 13, 8, 16))
+    assert (params["q1"], params["median"], params["q3"], params["lower"], params["upper"]) == pytest.approx(
+        (11, 12, 13, 8, 16)
+    )
 
 
 def test_tukey_quartiles_interpolate_between_order_statistics(make_raw, make_config, products, spans):
@@ -470,8 +492,17 @@ def test_hampel_chains_after_negative_net_with_one_row_per_rule(make_raw, make_c
         cleansing={"outliers": {"rule": "hampel", "window": 5, "k": 3, "sides": "both"}},
     )
     raw = make_raw(
-        [("P1", "S1", "C1", d, q) for d, q in
-         [("2026-01-05", "10"), ("2026-01-12", "12"), ("2026-01-19", "2"), ("2026-01-20", "-5"), ("2026-01-26", "11"), ("2026-02-02", "13")]]
+        [
+            ("P1", "S1", "C1", d, q)
+            for d, q in [
+                ("2026-01-05", "10"),
+                ("2026-01-12", "12"),
+                ("2026-01-19", "2"),
+                ("2026-01-20", "-5"),
+                ("2026-01-26", "11"),
+                ("2026-02-02", "13"),
+            ]
+        ]
     )
     res = clean_history(raw, products, spans, config)
     # week 01-19 nets 2 - 5 = -3 -> 0 (negative_net_to_zero, delta +3); then the window 10, 12, 0, 11, 13:
@@ -549,7 +580,9 @@ def _shortages(rows):
 
 def test_shortage_flags_every_child_of_the_product_site_in_that_period(make_raw, make_config, products, spans):
     config = make_config(calendar={"cycle_date": "2026-02-09"}, cleansing={"outliers": {"rule": "none"}})
-    raw = pd.concat([_weekly_raw(make_raw, [10, 12, 2, 11, 13]), _weekly_raw(make_raw, [4, 6, None, 5, 7], customer="C2")])
+    raw = pd.concat(
+        [_weekly_raw(make_raw, [10, 12, 2, 11, 13]), _weekly_raw(make_raw, [4, 6, None, 5, 7], customer="C2")]
+    )
     raw["source_row"] = range(1, len(raw) + 1)
     short = _shortages([("P1", "S1", "2026-01-21"), ("P1", "S2", "2026-01-21"), ("P1", "S1", "2026-03-02")])
     res = clean_history(raw, products, spans, config, shortages=short)
@@ -581,7 +614,9 @@ def test_shortage_period_is_never_judged_a_low_outlier(make_raw, make_config, pr
 
 
 def test_shortage_period_is_left_out_of_its_neighbours_windows(make_raw, make_config, products, spans):
-    config = make_config(calendar={"cycle_date": "2026-02-09"}, cleansing={"outliers": {"rule": "hampel", "window": 5, "k": 3}})
+    config = make_config(
+        calendar={"cycle_date": "2026-02-09"}, cleansing={"outliers": {"rule": "hampel", "window": 5, "k": 3}}
+    )
     raw = _weekly_raw(make_raw, [11, None, 30, 10, 11])  # week 01-12 has no line: filled 0
     plain = clean_history(raw, products, spans, config)
     short = clean_history(raw, products, spans, config, shortages=_shortages([("P1", "S1", "2026-01-12")]))
@@ -594,8 +629,12 @@ def test_shortage_period_is_left_out_of_its_neighbours_windows(make_raw, make_co
 
 
 def test_a_high_shortage_period_is_not_capped_either(make_raw, make_config, products, spans):
-    config = make_config(calendar={"cycle_date": "2026-02-09"}, cleansing={"outliers": {"rule": "hampel", "window": 5, "k": 3}})
-    res = clean_history(_spike_raw(make_raw), products, spans, config, shortages=_shortages([("P1", "S1", "2026-01-19")]))
+    config = make_config(
+        calendar={"cycle_date": "2026-02-09"}, cleansing={"outliers": {"rule": "hampel", "window": 5, "k": 3}}
+    )
+    res = clean_history(
+        _spike_raw(make_raw), products, spans, config, shortages=_shortages([("P1", "S1", "2026-01-19")])
+    )
     # the 100 of test_hampel_limit_caps_at_median_plus_scaled_mad sits in a shortage period: not judged
     assert rows_of(res.cleaned)["quantity"].tolist() == [10, 12, 100, 11, 13]
     assert res.corrections.empty
@@ -628,9 +667,12 @@ def test_shortages_file_is_read_and_a_bad_date_fails_its_schema(tmp_path):
 
 def test_fill_baseline_puts_each_childs_median_of_its_other_periods(make_raw, make_config, products, spans):
     config = make_config(
-        calendar={"cycle_date": "2026-02-09"}, cleansing={"outliers": {"rule": "none", "window": 5}, "shortages": "fill_baseline"}
+        calendar={"cycle_date": "2026-02-09"},
+        cleansing={"outliers": {"rule": "none", "window": 5}, "shortages": "fill_baseline"},
     )
-    raw = pd.concat([_weekly_raw(make_raw, [10, 12, 2, 11, 13]), _weekly_raw(make_raw, [4, 6, None, 5, 7], customer="C2")])
+    raw = pd.concat(
+        [_weekly_raw(make_raw, [10, 12, 2, 11, 13]), _weekly_raw(make_raw, [4, 6, None, 5, 7], customer="C2")]
+    )
     raw["source_row"] = range(1, len(raw) + 1)
     res = clean_history(raw, products, spans, config, shortages=_shortages([("P1", "S1", "2026-01-19")]))
     # C1: the non-shortage weeks of the 5-week window are 10, 12, 11, 13 -> median 11.5 (2 -> 11.5, +9.5)
@@ -651,11 +693,21 @@ def test_fill_baseline_puts_each_childs_median_of_its_other_periods(make_raw, ma
 
 def test_fill_baseline_chains_after_negative_net(make_raw, make_config, products, spans):
     config = make_config(
-        calendar={"cycle_date": "2026-02-09"}, cleansing={"outliers": {"rule": "none", "window": 5}, "shortages": "fill_baseline"}
+        calendar={"cycle_date": "2026-02-09"},
+        cleansing={"outliers": {"rule": "none", "window": 5}, "shortages": "fill_baseline"},
     )
     raw = make_raw(
-        [("P1", "S1", "C1", d, q) for d, q in
-         [("2026-01-05", "10"), ("2026-01-12", "12"), ("2026-01-19", "2"), ("2026-01-22", "-5"), ("2026-01-26", "11"), ("2026-02-02", "13")]]
+        [
+            ("P1", "S1", "C1", d, q)
+            for d, q in [
+                ("2026-01-05", "10"),
+                ("2026-01-12", "12"),
+                ("2026-01-19", "2"),
+                ("2026-01-22", "-5"),
+                ("2026-01-26", "11"),
+                ("2026-02-02", "13"),
+            ]
+        ]
     )
     res = clean_history(raw, products, spans, config, shortages=_shortages([("P1", "S1", "2026-01-19")]))
     # 01-19 nets 2 - 5 = -3 -> 0 (+3), then the shortage fill 0 -> median(10, 12, 11, 13) = 11.5 (+11.5)
@@ -669,7 +721,8 @@ def test_fill_baseline_chains_after_negative_net(make_raw, make_config, products
 
 def test_fill_baseline_keeps_a_period_whose_window_is_all_shortage(make_raw, make_config, products, spans):
     config = make_config(
-        calendar={"cycle_date": "2026-01-26"}, cleansing={"outliers": {"rule": "none", "window": 3}, "shortages": "fill_baseline"}
+        calendar={"cycle_date": "2026-01-26"},
+        cleansing={"outliers": {"rule": "none", "window": 3}, "shortages": "fill_baseline"},
     )
     short = _shortages([("P1", "S1", d) for d in ("2026-01-05", "2026-01-12", "2026-01-19")])
     res = clean_history(_weekly_raw(make_raw, [3, 4, 5]), products, spans, config, shortages=short)
@@ -682,7 +735,10 @@ def test_fill_baseline_keeps_a_period_whose_window_is_all_shortage(make_raw, mak
 def test_outlier_rule_runs_before_the_fill_and_the_fill_reads_corrected_values(make_raw, make_config, products, spans):
     config = make_config(
         calendar={"cycle_date": "2026-02-23"},
-        cleansing={"outliers": {"rule": "hampel", "window": 5, "k": 3, "replace_with": "median"}, "shortages": "fill_baseline"},
+        cleansing={
+            "outliers": {"rule": "hampel", "window": 5, "k": 3, "replace_with": "median"},
+            "shortages": "fill_baseline",
+        },
     )
     raw = _weekly_raw(make_raw, [10, 12, 100, 11, 2, 13, 12])
     res = clean_history(raw, products, spans, config, shortages=_shortages([("P1", "S1", "2026-02-02")]))
@@ -698,7 +754,7 @@ def test_outlier_rule_runs_before_the_fill_and_the_fill_reads_corrected_values(m
 
 
 def test_seasonal_component_by_hand_with_a_linear_trend():
-    from pipelines.stages.cleaned_history import seasonal_component
+    from pipelines.engines.outliers import seasonal_component
 
     # pattern 1, 5, 1, 3 (season m = 4) plus a trend of +1 per period: x = 1, 6, 3, 6, 5, 10, 7, 10
     x = np.array([[1.0, 6, 3, 6, 5, 10, 7, 10]])
@@ -714,7 +770,7 @@ def test_seasonal_component_by_hand_with_a_linear_trend():
 
 
 def test_fewer_than_two_full_seasons_are_not_adjusted():
-    from pipelines.stages.cleaned_history import seasonal_component
+    from pipelines.engines.outliers import seasonal_component
 
     x = np.array([[1.0, 6, 3, 6, 5, 10, 7, np.nan]])  # 7 periods, m = 4: less than 2 x 4
     s, adjusted, trend = seasonal_component(x, 4)
@@ -730,7 +786,9 @@ def _monthly_seasonal(make_raw, months=36, spike=None):
     values = [20.0 + t + (80.0 if d.month == 12 else 0.0) for t, d in enumerate(starts)]
     if spike:
         values[spike[0]] += spike[1]
-    return make_raw([("P1", "S1", "C1", d.date().isoformat(), str(v)) for d, v in zip(starts, values)]), values
+    return make_raw(
+        [("P1", "S1", "C1", d.date().isoformat(), str(v)) for d, v in zip(starts, values, strict=False)]
+    ), values
 
 
 @pytest.mark.parametrize("rule", [{"rule": "hampel", "window": 5}, {"rule": "tukey", "window": 5}])
@@ -770,7 +828,7 @@ def test_seasonal_adjustment_needs_the_class_to_be_seasonal(make_raw, make_confi
 
 
 def test_adjusted_limit_adds_the_seasonal_value_back(make_raw, make_config, products, spans):
-    from pipelines.stages.cleaned_history import seasonal_component
+    from pipelines.engines.outliers import seasonal_component
 
     config = make_config(
         classes={"a": {"window": 12, "models": {"seasonal": True}}},
@@ -828,7 +886,7 @@ def _cleansing_case(draw):
     rows = [(*k, (periods[i] + pd.Timedelta(days=d)).date().isoformat(), q) for k, i, d, q in lines]
     if draw(st.booleans()):  # a dense series: one line every period, long enough to be seasonally adjusted
         dense = draw(st.lists(st.integers(-60, 300), min_size=len(periods), max_size=len(periods)))
-        rows += [("P1", "S1", "C1", d.date().isoformat(), str(q)) for d, q in zip(periods, dense)]
+        rows += [("P1", "S1", "C1", d.date().isoformat(), str(q)) for d, q in zip(periods, dense, strict=False)]
     rule = draw(
         st.fixed_dictionaries(
             {
@@ -843,16 +901,27 @@ def _cleansing_case(draw):
         )
     )
     short_periods = draw(
-        st.lists(st.tuples(st.sampled_from(["P1", "P1", "P2"]), st.sampled_from(["S1", "S1", "S2"]), st.integers(0, len(periods) - 1)), max_size=6)
+        st.lists(
+            st.tuples(
+                st.sampled_from(["P1", "P1", "P2"]),
+                st.sampled_from(["S1", "S1", "S2"]),
+                st.integers(0, len(periods) - 1),
+            ),
+            max_size=6,
+        )
     )
     shortages = pd.DataFrame(
-        [(p, s, periods[i] + pd.Timedelta(days=2)) for p, s, i in short_periods], columns=["product", "site", "period_start"]
+        [(p, s, periods[i] + pd.Timedelta(days=2)) for p, s, i in short_periods],
+        columns=["product", "site", "period_start"],
     )
     config = parse_config(
         {
             "calendar": {"period": "month" if monthly else "week"},
             "cleansing": {"outliers": rule, "shortages": draw(st.sampled_from(["exclude", "fill_baseline"]))},
-            "product_classes": {"a": {"window": 4, "models": {"seasonal": True}}, "b": {"window": 4, "outliers": {"rule": "tukey", "window": 3}}},
+            "product_classes": {
+                "a": {"window": 4, "models": {"seasonal": True}},
+                "b": {"window": 4, "outliers": {"rule": "tukey", "window": 3}},
+            },
         }
     )
     return rows, shortages, config
@@ -860,12 +929,29 @@ def _cleansing_case(draw):
 
 # Plain frames shaped like the RawHistory, Products and CustomerSpans models (built without
 # pandera so that each example costs only the stage itself).
-_PRODUCTS = pd.DataFrame({"product": ["P1", "P2"], "product_class": ["a", "b"], "active_from": pd.NaT, "active_to": pd.NaT, "successor": None})
+_PRODUCTS = pd.DataFrame(
+    {
+        "product": ["P1", "P2"],
+        "product_class": ["a", "b"],
+        "active_from": pd.NaT,
+        "active_to": pd.NaT,
+        "successor": None,
+    }
+)
 _SPANS = pd.DataFrame(
-    [("P1", "S1", "C1", None, None), ("P1", "S1", "C2", None, None), ("P1", "S2", "C1", None, None),
-     ("P2", "S1", "C3", "2023-06-01", None), ("P2", "S2", "C2", None, "2026-02-01")],
+    [
+        ("P1", "S1", "C1", None, None),
+        ("P1", "S1", "C2", None, None),
+        ("P1", "S2", "C1", None, None),
+        ("P2", "S1", "C3", "2023-06-01", None),
+        ("P2", "S2", "C2", None, "2026-02-01"),
+    ],
     columns=["product", "site", "customer", "active_from", "active_to"],
-).assign(active_from=lambda f: pd.to_datetime(f["active_from"]), active_to=lambda f: pd.to_datetime(f["active_to"]), reference_customer=None)
+).assign(
+    active_from=lambda f: pd.to_datetime(f["active_from"]),
+    active_to=lambda f: pd.to_datetime(f["active_to"]),
+    reference_customer=None,
+)
 
 
 @settings(max_examples=50, deadline=None, suppress_health_check=[HealthCheck.too_slow])
@@ -897,7 +983,9 @@ def test_property_corrections_explain_every_change_and_every_raw_line_is_account
     assert find_unexplained_changes(res.cleaned, res.corrections).empty
     # per period: raw -> first before, each after -> next before, last after -> cleaned
     cell = key + ["period_start"]
-    corr = res.corrections.merge(res.cleaned[cell + ["raw_quantity", "quantity", "corrected"]], on=cell, how="left", validate="m:1")
+    corr = res.corrections.merge(
+        res.cleaned[cell + ["raw_quantity", "quantity", "corrected"]], on=cell, how="left", validate="m:1"
+    )
     previous_after = corr.groupby(cell, sort=False)["after"].shift(1)
     expected_before = previous_after.fillna(corr["raw_quantity"])
     np.testing.assert_allclose(corr["before"], expected_before, atol=1e-9)

@@ -4,6 +4,7 @@ import datetime as dt
 
 import pytest
 import yaml
+from pydantic import ValidationError
 
 from pipelines.calendar import resolve_cycle_date
 from pipelines.config import load_config, parse_config
@@ -26,7 +27,7 @@ def test_bundled_config_is_valid():
 
 def test_config_is_frozen():
     config = parse_config(MINIMAL)
-    with pytest.raises(Exception):
+    with pytest.raises(ValidationError, match="frozen"):
         config.calendar = None  # type: ignore[misc]
 
 
@@ -128,14 +129,16 @@ def test_cycle_date_must_start_a_period():
     assert resolve_cycle_date(dt.date(2026, 11, 30), None, "week", "x") == dt.datetime(2026, 11, 30)
 
 
-def test_backtest_section_defaults_and_auto_grain(tmp_path):
-    config = load_config(write(tmp_path, {"product_classes": {"fast": {"window": 8, "forecast_grain": "auto"}}}))
-    assert config.product_classes["fast"].forecast_grain == "auto"
+def test_backtest_section_defaults_and_auto_strategy(tmp_path):
+    config = load_config(write(tmp_path, {"product_classes": {"fast": {"window": 8, "strategy": "auto"}}}))
+    assert config.product_classes["fast"].strategy == "auto"
     bt = config.backtest
     assert (bt.origins, bt.horizon, bt.step) == (4, 13, 13)
     assert bt.strategies == ("top_down", "forecast_proportions", "bottom_up", "mint_shrink", "wls_var")
     # the earliest origin's horizon starts 13 + 3 x 13 = 52 periods before the cycle date
-    assert bt.periods_needed == 52
+    from pipelines.stages.backtest_accuracy import origin_ordinals
+
+    assert origin_ordinals(config, 100, 0)[0] == 100 - 52
 
 
 def test_unknown_strategy_lists_the_strategies(tmp_path):
@@ -153,11 +156,60 @@ def test_strategy_listed_twice_is_refused(tmp_path):
     assert "backtest.strategies" in str(err.value) and "once" in str(err.value)
 
 
-def test_bad_grain_lists_auto(tmp_path):
-    path = write(tmp_path, {"product_classes": {"fast": {"window": 8, "forecast_grain": "region"}}})
+def test_bad_strategy_lists_auto_and_the_strategies(tmp_path):
+    path = write(tmp_path, {"product_classes": {"fast": {"window": 8, "strategy": "region"}}})
     with pytest.raises(ConfigError) as err:
         load_config(path)
-    assert "'auto'" in str(err.value) and "'product_site_customer'" in str(err.value)
+    text = str(err.value)
+    assert "product_classes.fast.strategy" in text and "'auto'" in text and "'bottom_up'" in text
+
+
+def test_a_class_may_fix_any_strategy(tmp_path):
+    config = load_config(write(tmp_path, {"product_classes": {"fast": {"window": 8, "strategy": "mint_shrink"}}}))
+    assert config.product_classes["fast"].strategy == "mint_shrink"
+    assert config.product_classes["fast"].model_copy().strategy == "mint_shrink"
+
+
+@pytest.mark.parametrize(
+    ("grain", "strategy"), [("product_site", "top_down"), ("product_site_customer", "bottom_up"), ("auto", "auto")]
+)
+def test_forecast_grain_of_the_last_release_is_read_as_strategy_with_a_warning(tmp_path, grain, strategy):
+    from pipelines.config import ConfigDeprecationWarning
+
+    path = write(tmp_path, {"product_classes": {"fast": {"window": 8, "forecast_grain": grain}}})
+    with pytest.warns(ConfigDeprecationWarning) as caught:
+        config = load_config(path)
+    assert config.product_classes["fast"].strategy == strategy
+    message = str(caught[0].message)
+    # the message names the file, the old key and the new key to write
+    assert "planning.yaml" in message and "product_classes.fast.forecast_grain" in message
+    assert f"strategy: {strategy}" in message
+
+
+def test_share_method_forecast_proportions_is_read_as_children_forecast_with_a_warning(tmp_path):
+    from pipelines.config import ConfigDeprecationWarning
+
+    path = write(tmp_path, {"product_classes": {"fast": {"window": 8, "method": "forecast_proportions"}}})
+    with pytest.warns(ConfigDeprecationWarning, match="method: children_forecast"):
+        config = load_config(path)
+    assert config.product_classes["fast"].method == "children_forecast"
+
+
+def test_old_and_new_key_together_are_refused(tmp_path):
+    path = write(tmp_path, {"product_classes": {"fast": {"window": 8, "forecast_grain": "auto", "strategy": "auto"}}})
+    with pytest.raises(ConfigError, match="both strategy and forecast_grain"):
+        load_config(path)
+
+
+def test_the_current_config_reads_without_a_warning(recwarn):
+    load_config("config/planning.yaml")
+    assert not [w for w in recwarn if "renamed" in str(w.message)]
+
+
+def test_n_jobs_is_read_and_zero_is_refused(tmp_path):
+    assert load_config(write(tmp_path, {**MINIMAL, "execution": {"n_jobs": -1}})).execution.n_jobs == -1
+    with pytest.raises(ConfigError, match="execution.n_jobs"):
+        load_config(write(tmp_path, {**MINIMAL, "execution": {"n_jobs": 0}}))
 
 
 def test_tsb_parameters_are_validated(tmp_path):

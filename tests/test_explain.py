@@ -18,15 +18,9 @@ import pandas as pd
 import pytest
 
 from pipelines.errors import PlanningError, UnknownKeyError
-from pipelines.schemas import (
-    ForecastModels,
-    HistoryCorrections,
-    LifecycleAudit,
-    ParentForecast,
-    ReinitializedTarget,
-    StatisticalForecast,
-)
-from pipelines.stages.explain import explain_leaf
+from pipelines.explain import explain_leaf
+from pipelines.schemas import HistoryCorrections, LifecycleAudit, ReinitializedTarget
+from pipelines.schemas_forecast import ForecastModels, ParentForecast, StatisticalForecast
 
 CYCLE = pd.Timestamp("2026-02-02")
 H1, H2, H3 = "2026-02-02", "2026-02-09", "2026-02-16"
@@ -45,7 +39,14 @@ def share_table(make_share_table):
             # base shares, every child active: C1 0.6 x 0.8, C2 0.4 x 0.8, C3 0.2
             ("P1", "S1", "C1", 0.48, 4, {"history_share": 0.6}),
             ("P1", "S1", "C2", 0.32, 4, {"history_share": 0.4}),
-            ("P1", "S1", "C3", 0.2, 4, {"rule": "initial_share", "history_share": 0.0, "first": H2, "initial_share": 0.2, "own_periods": 0}),
+            (
+                "P1",
+                "S1",
+                "C3",
+                0.2,
+                4,
+                {"rule": "initial_share", "history_share": 0.0, "first": H2, "initial_share": 0.2, "own_periods": 0},
+            ),
         ]
     )
     table["child_volume"] = [30.0, 20.0, 0.0]
@@ -60,7 +61,20 @@ def target(zero_h3=False):
         if zero_h3 and start == H3:
             share, reason = 0.0, "product_not_active"
         rows.append(("P1", "S1", customer, pd.Timestamp(start), CYCLE, share * 12.5, share, 12.5, reason))
-    frame = pd.DataFrame(rows, columns=["product", "site", "customer", "period_start", "cycle_date", "target", "share", "parent_baseline", "zero_share_reason"])
+    frame = pd.DataFrame(
+        rows,
+        columns=[
+            "product",
+            "site",
+            "customer",
+            "period_start",
+            "cycle_date",
+            "target",
+            "share",
+            "parent_baseline",
+            "zero_reason",
+        ],
+    )
     return ReinitializedTarget.validate(frame)
 
 
@@ -68,23 +82,92 @@ def parent_forecast(strategy="top_down", zero_h3=False):
     rows = []
     for start, value in PARENT_FORECAST.items():
         zero = zero_h3 and start == H3
-        rows.append((CYCLE, "a", "P1", "S1", pd.Timestamp(start), 0.0 if zero else value, "auto_ets(season_length=1)", "smooth",
-                     "product_site", strategy, "product_not_active" if zero else None))
-    frame = pd.DataFrame(rows, columns=["cycle_date", "product_class", "product", "site", "period_start", "forecast", "model",
-                                        "demand_class", "forecast_grain", "strategy", "zero_reason"])
+        rows.append(
+            (
+                CYCLE,
+                "a",
+                "P1",
+                "S1",
+                pd.Timestamp(start),
+                0.0 if zero else value,
+                "auto_ets(season_length=1)",
+                "smooth",
+                "parent",
+                strategy,
+                "product_not_active" if zero else None,
+            )
+        )
+    frame = pd.DataFrame(
+        rows,
+        columns=[
+            "cycle_date",
+            "product_class",
+            "product",
+            "site",
+            "period_start",
+            "forecast",
+            "model",
+            "demand_class",
+            "model_grain",
+            "strategy",
+            "zero_reason",
+        ],
+    )
     return ParentForecast.validate(frame)
 
 
-def leaf_forecast(target_frame, parent_frame, basis="target"):
-    merged = target_frame.merge(parent_frame[["period_start", "forecast"]].rename(columns={"forecast": "parent_forecast"}), on="period_start")
-    frame = merged.assign(product_class="a", forecast=merged["share"] * merged["parent_forecast"], split_basis=basis)
-    return StatisticalForecast.validate(frame[["product", "site", "customer", "period_start", "cycle_date", "product_class", "forecast", "parent_forecast", "split_basis"]])
+def leaf_forecast(target_frame, parent_frame, basis="reinitialized_target"):
+    merged = target_frame.merge(
+        parent_frame[["period_start", "forecast"]].rename(columns={"forecast": "parent_forecast"}), on="period_start"
+    )
+    frame = merged.assign(product_class="a", forecast=merged["share"] * merged["parent_forecast"], basis=basis)
+    return StatisticalForecast.validate(
+        frame[
+            [
+                "product",
+                "site",
+                "customer",
+                "period_start",
+                "cycle_date",
+                "product_class",
+                "forecast",
+                "parent_forecast",
+                "basis",
+            ]
+        ]
+    )
 
 
 def models():
     frame = pd.DataFrame(
-        [(CYCLE, "parent", "a", "P1", "S1", "", "smooth", 1.0, 0.05, "auto_ets(season_length=1)", "ETS(A,N,N) alpha=0.2")],
-        columns=["cycle_date", "grain", "product_class", "product", "site", "customer", "demand_class", "adi", "cv2", "model", "parameters"],
+        [
+            (
+                CYCLE,
+                "parent",
+                "a",
+                "P1",
+                "S1",
+                "",
+                "smooth",
+                1.0,
+                0.05,
+                "auto_ets(season_length=1)",
+                "ETS(A,N,N) alpha=0.2",
+            )
+        ],
+        columns=[
+            "cycle_date",
+            "grain",
+            "product_class",
+            "product",
+            "site",
+            "customer",
+            "demand_class",
+            "adi",
+            "cv2",
+            "model",
+            "parameters",
+        ],
     )
     return ForecastModels.validate(frame)
 
@@ -96,7 +179,9 @@ def corrections():
         ("P1", "S1", "C1", pd.Timestamp("2026-01-12"), "hampel_cap", 25.0, 20.0, -5.0, "{}"),
         ("P1", "S1", "C2", pd.Timestamp("2026-01-12"), "hampel_cap", 9.0, 8.0, -1.0, "{}"),
     ]
-    frame = pd.DataFrame(rows, columns=["product", "site", "customer", "period_start", "rule", "before", "after", "delta", "parameters"])
+    frame = pd.DataFrame(
+        rows, columns=["product", "site", "customer", "period_start", "rule", "before", "after", "delta", "parameters"]
+    )
     return HistoryCorrections.validate(frame)
 
 
@@ -104,7 +189,9 @@ def corrections():
 def tables(make_share_table):
     t = target()
     p = parent_forecast()
-    audit = LifecycleAudit.validate(pd.DataFrame(columns=["product", "site", "customer", "rule", "periods", "quantity", "detail"]))
+    audit = LifecycleAudit.validate(
+        pd.DataFrame(columns=["product", "site", "customer", "rule", "periods", "quantity", "detail"])
+    )
     return {
         "share_tables": share_table(make_share_table),
         "reinitialized_target": t,
@@ -172,7 +259,9 @@ def test_period_where_every_share_is_zero(tables):
 def test_bottom_up_leaf_reports_its_proportion_not_a_split(tables):
     # own forecast of C1 in H1 = 60 of the parent's 100 (the sum of its customers): 60 %
     p = parent_forecast(strategy="bottom_up")
-    tables.update(parent_forecast=p, statistical_forecast=leaf_forecast(tables["reinitialized_target"], p, basis="own_forecast"))
+    tables.update(
+        parent_forecast=p, statistical_forecast=leaf_forecast(tables["reinitialized_target"], p, basis="leaf_forecast")
+    )
     text = explain_leaf(tables, "P1", "S1", "C1", period=H1)
     assert "Strategy bottom_up" in text
     assert "Leaf forecast 60.00, 60.00 % of the parent forecast 100.00: the customer's own forecast, bottom-up" in text
@@ -231,13 +320,13 @@ def test_explains_the_tables_the_stages_themselves_make(make_history, make_confi
     Parent forecast: croston_classic of a constant 12 is 12 (see test_statistical_forecast).
     C1: H1 12 / 3 = 4, H2 0.25 x 12 = 3.
     """
+    from pipelines.engines.shares import compute_shares
     from pipelines.stages.reinitialized_target import reinitialize_target
-    from pipelines.stages.share_tables import compute_shares
     from pipelines.stages.statistical_forecast import forecast_cycle
 
     croston = {d: "croston_classic" for d in ("smooth", "erratic", "intermittent", "lumpy")}
     config = make_config(
-        {"a": {"window": 4, "forecast_grain": "product_site", "models": croston}},
+        {"a": {"window": 4, "strategy": "top_down", "models": croston}},
         calendar={"horizon": 2}, lifecycle={"min_history_periods": 4},
     )
     weeks = ["2026-01-05", "2026-01-12", "2026-01-19", "2026-01-26"]
@@ -251,7 +340,13 @@ def test_explains_the_tables_the_stages_themselves_make(make_history, make_confi
     )
     shares = compute_shares(history, children, config, CYCLE)
     target = reinitialize_target(shares, history, config, CYCLE)
-    result = forecast_cycle(history, shares[["product", "site", "customer", "product_class", "first_active_period", "last_active_period"]], target, config, CYCLE)
+    result = forecast_cycle(
+        history,
+        shares[["product", "site", "customer", "product_class", "first_active_period", "last_active_period"]],
+        target,
+        config,
+        CYCLE,
+    )
     tables = {"share_tables": shares, "reinitialized_target": target, "parent_forecast": result.parent,
               "statistical_forecast": result.leaf, "forecast_models": result.models}
     text = explain_leaf(tables, "P1", "S1", "C1", period=H2)

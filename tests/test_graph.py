@@ -14,9 +14,7 @@ import pandas as pd
 import pytest
 import yaml
 
-from assets.backtest_accuracy import CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE
-from assets.reconciliation import CHECKS as RECONCILIATION_CHECKS
-from assets.share_tables import NEW_CUSTOMER_WITHOUT_SHARE
+from pipelines.checks import CHECKS, CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE, NEW_CUSTOMERS_HAVE_SHARE
 from pipelines.config import load_config
 from pipelines.definitions import ASSETS, build_definitions
 from pipelines.partitions import current_cycle
@@ -64,7 +62,11 @@ def checks_of(result: CycleRun) -> dict[str, dg.AssetCheckEvaluation]:
 def metadata_of(result: CycleRun, asset: str) -> dict[str, dict]:
     """product class -> the metadata of `asset`'s materialization in that class's run."""
     return {
-        c: next(e.materialization.metadata for e in r.get_asset_materialization_events() if e.asset_key.to_user_string() == asset)
+        c: next(
+            e.materialization.metadata
+            for e in r.get_asset_materialization_events()
+            if e.asset_key.to_user_string() == asset
+        )
         for c, r in result.results.items()
     }
 
@@ -86,7 +88,7 @@ def assert_only_the_new_customer_warning_fails(result: dg.ExecuteInProcessResult
     """Every blocking check passes; the one failing check is the WARN on new customers without share."""
     checks = checks_of(result)
     failed = [k for k, e in checks.items() if not e.passed]
-    assert failed == [f"share_tables:{NEW_CUSTOMER_WITHOUT_SHARE}"]
+    assert failed == [f"share_tables:{NEW_CUSTOMERS_HAVE_SHARE}"]
     warning = checks[failed[0]]
     assert warning.severity == dg.AssetCheckSeverity.WARN
     # the demo plants FITT-001 / SITE-SOUTH / C0051 without reference or initial share (data/demo/README.md)
@@ -102,36 +104,41 @@ def test_demo_cycle_succeeds_and_every_blocking_check_passes(demo_cycle):
     # by design the demo has one new customer without share: a WARN that does not stop the cycle
     assert_only_the_new_customer_warning_fails(result)
     assert all(e.passed for e in checks.values() if e.severity == dg.AssetCheckSeverity.ERROR)
-    # every asset has its schema check, and the reconciliation carries its rule checks
+    # every asset has its schema check, and every rule check ran on the asset it judges
     for key in dg.AssetSelection.all().resolve(ASSETS):
         name = key.to_user_string()
         assert f"{name}:{name}_matches_schema" in checks
-    for name in RECONCILIATION_CHECKS:
-        assert f"reconciliation:{name}" in checks
+    for check in CHECKS:
+        assert f"{check.asset}:{check.name}" in checks
 
 
 def test_auto_classes_follow_the_backtest_choice_and_stay_coherent(demo_cycle):
     result, store, config = demo_cycle
-    from pipelines.config import load_config
-    from pipelines.stages.backtest import choose_strategies
-
     accuracy = read_table(store, "backtest_accuracy")
     # every class is backtested (consumables is fixed to the split, the others `auto`); each has all
     # five strategies and the benchmark at both grains
     assert set(accuracy["product_class"]) == {"consumables", "seasonal", "spares"}
-    assert set(accuracy["strategy"]) == {"top_down", "forecast_proportions", "bottom_up", "mint_shrink", "wls_var", "seasonal_naive"}
+    assert set(accuracy["strategy"]) == {
+        "top_down",
+        "forecast_proportions",
+        "bottom_up",
+        "mint_shrink",
+        "wls_var",
+        "seasonal_naive",
+    }
     assert set(accuracy["metric"]) == {"wmape", "bias", "mase", "fva"} and set(accuracy["grain"]) == {"leaf", "parent"}
-    choice = choose_strategies(accuracy, load_config(config)).set_index("product_class")
+    # the decision is stored once (strategy_choice) and the forecast followed it
+    choice = read_table(store, "strategy_choice").set_index("product_class")
     parent = read_table(store, "parent_forecast")
     in_effect = parent.drop_duplicates("product_class").set_index("product_class")["strategy"]
     assert in_effect.sort_index().to_dict() == choice["strategy"].sort_index().to_dict()
     # an `auto` winner has the lowest leaf WMAPE of the five, so its margin over the runner-up is >= 0
-    auto = choice[choice["forecast_grain"] == "auto"]
+    auto = choice[choice["configured_strategy"] == "auto"]
     assert set(auto.index) == {"seasonal", "spares"} and (auto["margin"] >= 0).all()
     assert choice.loc["consumables", "strategy"] == "top_down"
     # the choice and margins are in the metadata; the WARN check ran (and passes on the demo)
-    assert all("strategy_choice" in m for m in metadata_of(result, "backtest_accuracy").values())
-    warn = checks_of(result)["backtest_accuracy:chosen_strategy_beats_seasonal_naive"]
+    warn = checks_of(result)["strategy_choice:chosen_strategy_beats_seasonal_naive"]
+    assert "strategy_choice" in warn.metadata
     assert warn.severity == dg.AssetCheckSeverity.WARN and warn.passed
     models = read_table(store, "forecast_models")
     assert {"parent", "leaf"} >= set(models["grain"]) and (models["model"] != "").all()
@@ -164,7 +171,9 @@ def test_every_raw_line_is_used_or_rejected(demo_cycle):
     # no class (unknown or blank) is kept and rejected in every class, the others in their own class only
     rejected = read_table(store, "rejected_rows", with_partition=True)
     lines = rejected.drop_duplicates(["source_file", "source_row"])
-    assert sorted(lines["reason"]) == sorted(["missing_key", "bad_date", "bad_quantity", "unknown_product", "no_customer_span"])
+    assert sorted(lines["reason"]) == sorted(
+        ["missing_key", "bad_date", "bad_quantity", "unknown_product", "no_customer_span"]
+    )
     in_every_class = rejected.groupby(["source_file", "source_row"])["partition_class"].nunique()
     products = set(read_table(store, "products")["product"])
     no_class = lines.set_index(["source_file", "source_row"])["product"].map(lambda p: p not in products)
@@ -248,7 +257,11 @@ def test_demo_lifecycle_inside_the_horizon(demo_cycle):
     assert (_leaf(target, "FITT-001", "SITE-SOUTH", "C0051")["share"] == 0).all()
     assert (_leaf(leaf, "FITT-001", "SITE-SOUTH", "C0051")["forecast"] == 0).all()
     fitt = _parent(leaf, "FITT-001", "SITE-SOUTH").groupby("period_start")["forecast"].sum()
-    np.testing.assert_allclose(fitt.to_numpy(), _parent(parent_fc, "FITT-001", "SITE-SOUTH").sort_values("period_start")["forecast"].to_numpy(), rtol=1e-12)
+    np.testing.assert_allclose(
+        fitt.to_numpy(),
+        _parent(parent_fc, "FITT-001", "SITE-SOUTH").sort_values("period_start")["forecast"].to_numpy(),
+        rtol=1e-12,
+    )
 
     # FILT-003 ends Sunday 2027-02-28: forecast until the week of 02-22, then 0 with its reason
     filt = parent_fc[parent_fc["product"] == "FILT-003"].set_index("period_start").sort_index()
@@ -273,33 +286,55 @@ def test_planner_metadata_on_share_tables_and_reinitialized_target(demo_cycle):
     assert sum(by_rule.values()) == shares["children"].value
     assert shares["new_customer_count"].value == 3
     listed = shares["new_customers"].value
-    assert all(c in listed for c in ("C0049", "C0050", "C0051")) and "taken from it" in listed and "initial share 0.15" in listed
+    assert (
+        all(c in listed for c in ("C0049", "C0050", "C0051"))
+        and "taken from it" in listed
+        and "initial share 0.15" in listed
+    )
     mix = metadata_of(result, "reinitialized_target")["consumables"]
     # C0050 phases in (DRIP-001/SITE-NORTH), C0003 out (FERT-001/SITE-SOUTH), FILT-003 ends at both its sites
     assert mix["parents_with_mix_change_count"].value == 4
     text = mix["parents_with_mix_change"].value
     assert "C0050" in text and "C0003" in text and text.count("FILT-003") == 2
-    assert "product_not_active" in mix["zero_share_periods_by_reason"].value
+    assert "product_not_active" in mix["zero_periods_by_reason"].value
 
 
 def test_rebuilding_one_class_replaces_exactly_its_partition(demo_cycle):
     _, store, config = demo_cycle
     before = read_table(store, "share_tables", with_partition=True)
-    written = read_table(store, "partitions_written", with_partition=True).set_index(["asset", "partition_cycle", "partition_class"])["written_at"]
+    written = read_table(store, "partitions_written", with_partition=True).set_index(
+        ["asset", "partition_cycle", "partition_class"]
+    )["written_at"]
     defs = build_definitions(config)
     selection = rebuild_selection(defs, "share_tables")
     names = {k.to_user_string() for k in selection}
     # share_tables and everything downstream (multi-asset outputs come together), nothing upstream
-    assert {"share_tables", "reinitialized_target", "backtest_accuracy", "parent_forecast", "statistical_forecast", "reconciliation"} <= names
+    assert {
+        "share_tables",
+        "reinitialized_target",
+        "backtest_accuracy",
+        "parent_forecast",
+        "statistical_forecast",
+        "reconciliation",
+    } <= names
     assert not names & {"raw_history", "cleaned_history", "lifecycle_history", "products"}
-    result = run_partitions(defs, dg.DagsterInstance.ephemeral(), "2026-11-30", ["spares"], all_classes=["consumables", "seasonal", "spares"], selection=selection)
+    result = run_partitions(
+        defs,
+        dg.DagsterInstance.ephemeral(),
+        "2026-11-30",
+        ["spares"],
+        all_classes=["consumables", "seasonal", "spares"],
+        selection=selection,
+    )
     assert result.success and result.blocking_checks_pass
     materialized = {e.asset_key.to_user_string() for e in result.get_asset_materialization_events()}
     assert materialized == names
     after = read_table(store, "share_tables", with_partition=True)
     # idempotent: the same rows, none duplicated, in the same order
     pd.testing.assert_frame_equal(before, after)
-    now = read_table(store, "partitions_written", with_partition=True).set_index(["asset", "partition_cycle", "partition_class"])["written_at"]
+    now = read_table(store, "partitions_written", with_partition=True).set_index(
+        ["asset", "partition_cycle", "partition_class"]
+    )["written_at"]
     moved = now[now != written.reindex(now.index)].index
     # only the spares partitions of the rebuilt assets were written again; the other classes are untouched
     assert {(a, c, k) for a, c, k in moved} == {(a, "2026-11-30", "spares") for a in names}
@@ -363,15 +398,25 @@ def test_monthly_calendar_runs_the_same_graph(tmp_path):
     # month, with no history and so no share yet; the backtest may lose to seasonal naive on 35 months
     checks = checks_of(result)
     failed = {k for k, e in checks.items() if not e.passed}
-    assert f"share_tables:{NEW_CUSTOMER_WITHOUT_SHARE}" in failed
-    assert failed <= {f"share_tables:{NEW_CUSTOMER_WITHOUT_SHARE}", f"backtest_accuracy:{CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE}"}
+    assert f"share_tables:{NEW_CUSTOMERS_HAVE_SHARE}" in failed
+    assert failed <= {
+        f"share_tables:{NEW_CUSTOMERS_HAVE_SHARE}",
+        f"strategy_choice:{CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE}",
+    }
     assert all(checks[k].severity == dg.AssetCheckSeverity.WARN for k in failed)
-    assert f"backtest_accuracy:{CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE}" in checks
+    assert f"strategy_choice:{CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE}" in checks
     store = tmp_path / "store.duckdb"
     cleaned = read_table(store, "cleaned_history")
     assert (cleaned["period_start"].dt.day == 1).all()
     forecast = read_table(store, "parent_forecast")
-    assert sorted(forecast["period_start"].dt.strftime("%Y-%m").unique()) == ["2026-11", "2026-12", "2027-01", "2027-02", "2027-03", "2027-04"]
+    assert sorted(forecast["period_start"].dt.strftime("%Y-%m").unique()) == [
+        "2026-11",
+        "2026-12",
+        "2027-01",
+        "2027-02",
+        "2027-03",
+        "2027-04",
+    ]
     # an explicit cycle date of 2026-11-01 leaves November's lines out of the history, as rejected rows
     rejected = read_table(store, "rejected_rows")
     late = rejected[rejected["reason"] == "on_or_after_cycle_date"]
@@ -380,12 +425,12 @@ def test_monthly_calendar_runs_the_same_graph(tmp_path):
 
 
 def test_demo_plan_measures_each_split_by_its_rule_with_the_pins_kept(demo_cycle):
-    from assets.plan_measures import MEASURES_SUM_TO_PARENT, PINS_EXCEED_PARENT, PINS_KEPT
+    from pipelines.checks import MEASURES_SUM_TO_PARENT, PINS_KEPT, PINS_WITHIN_PARENT
 
     result, store, _ = demo_cycle
     plan = read_table(store, "plan_measures")
     checks = checks_of(result)
-    for name in (MEASURES_SUM_TO_PARENT, PINS_KEPT, PINS_EXCEED_PARENT):
+    for name in (MEASURES_SUM_TO_PARENT, PINS_KEPT, PINS_WITHIN_PARENT):
         assert checks[f"plan_measures:{name}"].passed
     assert set(plan["measure"]) == {"statistical_forecast", "list_price", "promotion_uplift", "planner_adjustment"}
     key = ["product", "site", "customer", "period_start"]
@@ -395,7 +440,9 @@ def test_demo_plan_measures_each_split_by_its_rule_with_the_pins_kept(demo_cycle
     assert len(kept) == len(pins) == int(plan["pinned"].sum())
     np.testing.assert_allclose(kept["value"], kept["value_pin"], rtol=0, atol=0)
     # statistical_forecast: the forecast stage's own leaf values, except in the parent periods a pin changed
-    fc = read_table(store, "statistical_forecast").merge(plan[plan["measure"] == "statistical_forecast"], on=key, how="left")
+    fc = read_table(store, "statistical_forecast").merge(
+        plan[plan["measure"] == "statistical_forecast"], on=key, how="left"
+    )
     pinned = pins[pins["measure"] == "statistical_forecast"][["product", "site", "period_start"]].assign(p=True)
     fc = fc.merge(pinned, on=["product", "site", "period_start"], how="left")
     same = fc[fc["p"].isna() & fc["value"].notna()]
@@ -405,7 +452,11 @@ def test_demo_plan_measures_each_split_by_its_rule_with_the_pins_kept(demo_cycle
     price = plan[(plan["measure"] == "list_price") & ~plan["pinned"]]
     assert (price["value"] == price["parent_value"]).all() and set(price["basis"]) == {"parent"}
     # planner_adjustment 2026-12-07 on DRIP-001 / SITE-NORTH: 200 = the pin (105) + the rest in packs of 5
-    adj = plan[(plan["measure"] == "planner_adjustment") & (plan["product"] == "DRIP-001") & (plan["period_start"] == "2026-12-07")]
+    adj = plan[
+        (plan["measure"] == "planner_adjustment")
+        & (plan["product"] == "DRIP-001")
+        & (plan["period_start"] == "2026-12-07")
+    ]
     assert adj["value"].sum() == 200 and (adj["value"] % 5 == 0).all()
     # promotion_uplift in whole units by the 52-week share table, summing to each entered value
     promo = plan[plan["measure"] == "promotion_uplift"]
@@ -441,11 +492,13 @@ def test_demo_exercises_every_cleansing_rule(demo_cycle):
     assert len(shortages) == 3
     flagged = cleaned[cleaned["shortage"]]
     weeks = planted[planted["case"] == "shortage"]
-    assert set(zip(flagged["product"], flagged["site"], flagged["period_start"].dt.strftime("%Y-%m-%d"))) == set(
-        zip(weeks["product"], weeks["site"], weeks["period_start"])
-    )
+    assert set(
+        zip(flagged["product"], flagged["site"], flagged["period_start"].dt.strftime("%Y-%m-%d"), strict=False)
+    ) == set(zip(weeks["product"], weeks["site"], weeks["period_start"], strict=False))
     for (product, site, week), g in flagged.groupby(["product", "site", "period_start"]):
-        children = cleaned[(cleaned["product"] == product) & (cleaned["site"] == site) & (cleaned["period_start"] == week)]
+        children = cleaned[
+            (cleaned["product"] == product) & (cleaned["site"] == site) & (cleaned["period_start"] == week)
+        ]
         assert len(g) == len(children) > 0
     # exclude (the bundled rule): the shortage weeks keep their values, no correction touches them
     assert not flagged["corrected"].any()
@@ -457,10 +510,10 @@ def test_demo_exercises_every_cleansing_rule(demo_cycle):
 
 def test_demo_shortages_filled_with_each_childs_baseline():
     from pipelines.config import parse_config
+    from pipelines.engines.history_files import load_raw_history
     from pipelines.schemas import CustomerSpans, Products, Shortages
     from pipelines.stages.cleaned_history import clean_history, find_unexplained_changes
     from pipelines.stages.master_data import load_customer_spans, load_products, load_shortages
-    from pipelines.stages.raw_history import load_raw_history
 
     data = yaml.safe_load((ROOT / "config" / "planning.yaml").read_text())
     data["cleansing"]["shortages"] = "fill_baseline"
@@ -489,7 +542,7 @@ def test_cleansing_picture_is_written_to_the_cycle_report_folder(demo_cycle):
 
 
 def test_two_cycles_side_by_side_and_the_share_drift_between_them(demo_cycle):
-    from assets.share_drift import SHARE_DRIFT_WITHIN_LIMIT
+    from pipelines.checks import SHARE_DRIFT_WITHIN_LIMIT
 
     _, store, config = demo_cycle
     defs = build_definitions(config)
@@ -497,12 +550,18 @@ def test_two_cycles_side_by_side_and_the_share_drift_between_them(demo_cycle):
     current_before = read_table(store, "share_tables", cycle="2026-11-30", product_class="spares")
     # the previous week's cycle of one class: its history ends a week earlier (that week's lines are
     # rejected as on_or_after_cycle_date), and it lands beside the current cycle, which stays as it was
-    previous = run_partitions(defs, instance, "2026-11-23", ["spares"], all_classes=["consumables", "seasonal", "spares"])
+    previous = run_partitions(
+        defs, instance, "2026-11-23", ["spares"], all_classes=["consumables", "seasonal", "spares"]
+    )
     assert previous.success and previous.blocking_checks_pass
     late = read_table(store, "rejected_rows", cycle="2026-11-23", product_class="spares")
     assert (late["reason"] == "on_or_after_cycle_date").sum() > 0
-    assert read_table(store, "cycle_calendar", cycle="2026-11-23")["cycle_date"].tolist() == [pd.Timestamp("2026-11-23")]
-    pd.testing.assert_frame_equal(read_table(store, "share_tables", cycle="2026-11-30", product_class="spares"), current_before)
+    assert read_table(store, "cycle_calendar", cycle="2026-11-23")["cycle_date"].tolist() == [
+        pd.Timestamp("2026-11-23")
+    ]
+    pd.testing.assert_frame_equal(
+        read_table(store, "share_tables", cycle="2026-11-30", product_class="spares"), current_before
+    )
     # now the current cycle's drift compares with it
     rerun = run_partitions(defs, instance, "2026-11-30", ["spares"], selection=[dg.AssetKey("share_drift")])
     assert rerun.success
@@ -511,7 +570,11 @@ def test_two_cycles_side_by_side_and_the_share_drift_between_them(demo_cycle):
     assert set(drift["previous_cycle"]) == {"2026-11-23"}
     # every child of either cycle, its move = 100 x (share now - share then), worked from the two stored tables
     keys = ["product", "site", "customer"]
-    both = current_before[keys + ["share"]].merge(prev[keys + ["share"]], on=keys, how="outer", suffixes=("_now", "_then")).fillna(0.0)
+    both = (
+        current_before[keys + ["share"]]
+        .merge(prev[keys + ["share"]], on=keys, how="outer", suffixes=("_now", "_then"))
+        .fillna(0.0)
+    )
     expected = both.assign(change_pp=100 * (both["share_now"] - both["share_then"])).set_index(keys)["change_pp"]
     got = drift.set_index(keys)["change_pp"]
     pd.testing.assert_series_equal(got.sort_index(), expected.sort_index(), check_names=False, atol=1e-12)
@@ -526,17 +589,22 @@ def test_two_cycles_side_by_side_and_the_share_drift_between_them(demo_cycle):
 
 
 def test_watcher_warnings_fire_above_their_thresholds_and_list_the_rows(tmp_path):
-    from assets.cleaned_history import REJECTED_ROWS_WITHIN_LIMIT
-    from assets.share_tables import FALLBACK_SHARE_WITHIN_LIMIT
+    from pipelines.checks import FALLBACK_SHARE_WITHIN_LIMIT, REJECTED_ROWS_WITHIN_LIMIT
 
     classes = yaml.safe_load((ROOT / "config" / "planning.yaml").read_text())["product_classes"]
     # spares are intermittent: over a 4-week window many parents have no volume and fall back to 156 weeks
     classes["spares"].update(window=4, fallback_windows=[156])
-    config = make_config(tmp_path, product_classes=classes, monitoring={"max_fallback_share": 0.10, "max_rejected_share": 0.0001})
+    config = make_config(
+        tmp_path, product_classes=classes, monitoring={"max_fallback_share": 0.10, "max_rejected_share": 0.0001}
+    )
     defs = build_definitions(config)
     upstream = dg.AssetSelection.assets("share_tables").upstream().required_multi_asset_neighbors()
     run = run_partitions(
-        defs, dg.DagsterInstance.ephemeral(), "2026-11-30", ["spares"], selection=list(upstream.resolve(defs.resolve_asset_graph()))
+        defs,
+        dg.DagsterInstance.ephemeral(),
+        "2026-11-30",
+        ["spares"],
+        selection=list(upstream.resolve(defs.resolve_asset_graph())),
     )
     assert run.success and run.blocking_checks_pass  # WARN checks do not stop the cycle
     checks = checks_of(run)
@@ -557,7 +625,6 @@ def test_watcher_warnings_fire_above_their_thresholds_and_list_the_rows(tmp_path
 
 
 def test_cycle_report_has_the_charts_and_a_page_with_every_class(demo_cycle):
-    from assets.share_tables import NEW_CUSTOMER_WITHOUT_SHARE
     from pipelines.cycle_report import REPORT_FILE
 
     result, store, _ = demo_cycle
@@ -571,7 +638,7 @@ def test_cycle_report_has_the_charts_and_a_page_with_every_class(demo_cycle):
     for product_class in ("consumables", "seasonal", "spares"):
         assert f"parents_{product_class}_2026-11-30.png" in page
     # the one failing check of the demo (a WARN, by design) is listed before every passing check
-    failed_at = page.index(NEW_CUSTOMER_WITHOUT_SHARE)
+    failed_at = page.index(NEW_CUSTOMERS_HAVE_SHARE)
     assert failed_at < page.index("children_sum_to_parent")
 
 
@@ -581,7 +648,9 @@ def test_explain_prints_how_a_leaf_was_made_from_the_store(demo_cycle, capsys):
     _, store, config = demo_cycle
     assert main(["explain", "--config", config, "DRIP-002", "SITE-NORTH", "C0049", "--period", "2026-12-07"]) == 0
     text = capsys.readouterr().out
-    target = read_table(store, "statistical_forecast", where={"product": "DRIP-002", "site": "SITE-NORTH", "customer": "C0049"})
+    target = read_table(
+        store, "statistical_forecast", where={"product": "DRIP-002", "site": "SITE-NORTH", "customer": "C0049"}
+    )
     value = float(target.loc[target["period_start"] == pd.Timestamp("2026-12-07"), "forecast"].iloc[0])
     assert "reference" in text and "C0001" in text and f"{value:,.2f}" in text
     assert main(["explain", "--config", config, "DRIP-002", "SITE-NORTH", "C9999"]) == 2

@@ -34,9 +34,11 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 
-from pipelines.config import OutlierConfig, parse_config
+from pipelines.config import parse_config
+from pipelines.config_sections import OutlierConfig
+from pipelines.engines.outliers import MAD_SCALE, hampel, hampel_limits
 from pipelines.schemas import CleanedHistory, CustomerSpans, HistoryCorrections, Products, RawHistory
-from pipelines.stages.cleaned_history import MAD_SCALE, clean_history, hampel, hampel_limits
+from pipelines.stages.cleaned_history import clean_history
 
 WEEKS = pd.date_range("2026-01-05", periods=15, freq="7D")  # Mondays
 
@@ -167,13 +169,20 @@ def _inputs(quantities: dict[int, str]):
         for i, (w, q) in enumerate(sorted(quantities.items()))
     ]
     raw = RawHistory.validate(
-        pd.DataFrame(rows, columns=["source_file", "source_row", "product", "site", "customer", "period_start", "quantity"])
+        pd.DataFrame(
+            rows, columns=["source_file", "source_row", "product", "site", "customer", "period_start", "quantity"]
+        )
     )
     products = Products.validate(
-        pd.DataFrame({"product": ["P1"], "product_class": ["a"], "active_from": [None], "active_to": [None], "successor": [None]})
+        pd.DataFrame(
+            {"product": ["P1"], "product_class": ["a"], "active_from": [None], "active_to": [None], "successor": [None]}
+        )
     )
     spans = CustomerSpans.validate(
-        pd.DataFrame([("P1", "S1", "C1", None, None, None)], columns=["product", "site", "customer", "active_from", "active_to", "reference_customer"])
+        pd.DataFrame(
+            [("P1", "S1", "C1", None, None, None)],
+            columns=["product", "site", "customer", "active_from", "active_to", "reference_customer"],
+        )
     )
     return raw, products, spans
 

@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 from hierarchicalforecast.methods import MinTrace
 
-from pipelines.stages.hierarchy import clip_and_resum, mint_reconcile, shrunk_covariance
+from pipelines.engines.hierarchy import clip_and_resum, mint_reconcile, shrunk_covariance
 
 
 def family(n_children, periods, horizon, seed):

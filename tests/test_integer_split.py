@@ -11,7 +11,7 @@ from apportionment import methods as reference
 from hypothesis import assume, given, settings
 from hypothesis import strategies as st
 
-from pipelines.stages.integer_split import largest_remainder, round_to_pack
+from pipelines.engines.integer_split import largest_remainder, round_to_pack
 
 
 def split(units, weights, order=None):

@@ -9,8 +9,9 @@ from __future__ import annotations
 import pandas as pd
 import pytest
 
+from pipelines.engines.children import active_children
 from pipelines.errors import LifecycleError
-from pipelines.stages.lifecycle_history import active_children, apply_lifecycle
+from pipelines.stages.lifecycle_history import apply_lifecycle
 
 CYCLE = pd.Timestamp("2026-02-02")
 W1, W2, W3, W4 = "2026-01-05", "2026-01-12", "2026-01-19", "2026-01-26"
@@ -53,7 +54,9 @@ def test_history_outside_the_customer_span_is_dropped_and_audited(make_cleaned, 
     assert a[["customer", "periods", "quantity"]].values.tolist() == [["C1", 1, 4.0]]
 
 
-def test_customer_phased_out_before_cycle_leaves_the_basis_and_is_audited(make_cleaned, make_products, make_spans, config):
+def test_customer_phased_out_before_cycle_leaves_the_basis_and_is_audited(
+    make_cleaned, make_products, make_spans, config
+):
     products = make_products([("P1", "a")])
     spans = make_spans([("P1", "S1", "C1"), ("P1", "S1", "C2", None, "2026-01-20")])  # C2 ends in week 01-19
     cleaned = make_cleaned(
@@ -71,7 +74,9 @@ def test_customer_phased_out_before_cycle_leaves_the_basis_and_is_audited(make_c
 def test_retired_product_history_moves_to_its_successor(make_cleaned, make_products, make_spans, config):
     products = make_products([("A", "a", None, "2026-01-14", "B"), ("B", "a", "2026-01-19")])
     spans = make_spans([("A", "S1", "C1"), ("B", "S1", "C1")])
-    cleaned = make_cleaned([("A", "S1", "C1", W1, 5), ("A", "S1", "C1", W2, 7), ("B", "S1", "C1", W3, 4), ("B", "S1", "C1", W4, 6)])
+    cleaned = make_cleaned(
+        [("A", "S1", "C1", W1, 5), ("A", "S1", "C1", W2, 7), ("B", "S1", "C1", W3, 4), ("B", "S1", "C1", W4, 6)]
+    )
     res = apply_lifecycle(cleaned, products, spans, config, CYCLE)
     h = keyed(res.history)
     # everything is on B now: A's two weeks as successor rows, B's two as own rows
@@ -93,7 +98,9 @@ def test_successor_chain_maps_to_its_last_product(make_cleaned, make_products, m
         [("A", "a", None, "2026-01-07", "B"), ("B", "a", "2026-01-12", "2026-01-21", "C"), ("C", "a", "2026-01-26")]
     )
     spans = make_spans([("A", "S1", "C1"), ("B", "S1", "C1"), ("C", "S1", "C1")])
-    cleaned = make_cleaned([("A", "S1", "C1", W1, 2), ("B", "S1", "C1", W2, 3), ("B", "S1", "C1", W3, 4), ("C", "S1", "C1", W4, 5)])
+    cleaned = make_cleaned(
+        [("A", "S1", "C1", W1, 2), ("B", "S1", "C1", W2, 3), ("B", "S1", "C1", W3, 4), ("C", "S1", "C1", W4, 5)]
+    )
     res = apply_lifecycle(cleaned, products, spans, config, CYCLE)
     h = keyed(res.history)
     # A -> B -> C: A's and B's history both end on C
@@ -168,7 +175,9 @@ def test_no_history_is_copied_from_a_reference_customer(make_cleaned, make_produ
 def test_shortage_flag_is_carried_and_false_without_the_column(make_cleaned, make_products, make_spans, config):
     products = make_products([("A", "a", None, "2026-01-14", "B"), ("B", "a")])
     spans = make_spans([("A", "S1", "C1"), ("B", "S1", "C1")])
-    cleaned = make_cleaned([("A", "S1", "C1", W1, 5), ("A", "S1", "C1", W2, 7), ("B", "S1", "C1", W3, 4), ("B", "S1", "C1", W4, 6)])
+    cleaned = make_cleaned(
+        [("A", "S1", "C1", W1, 5), ("A", "S1", "C1", W2, 7), ("B", "S1", "C1", W3, 4), ("B", "S1", "C1", W4, 6)]
+    )
     # a hand-made cleaned frame with the cleansing stage's shortage column:
     # shortages on A in week 01-12 and on B in week 01-26
     with_flag = cleaned.assign(shortage=[False, True, False, True])
@@ -199,7 +208,14 @@ def test_successor_span_starting_inside_the_horizon_takes_the_history(make_clean
 
 def test_active_children_are_the_spans_active_in_any_horizon_period(make_products, make_spans, make_history, config):
     products = make_products(
-        [("P1", "a"), ("P2", "b"), ("R", "a", None, "2026-01-20"), ("E", "a", None, "2026-02-11"), ("L", "a", H3), ("F", "a", "2026-03-02")]
+        [
+            ("P1", "a"),
+            ("P2", "b"),
+            ("R", "a", None, "2026-01-20"),
+            ("E", "a", None, "2026-02-11"),
+            ("L", "a", H3),
+            ("F", "a", "2026-03-02"),
+        ]
     )
     spans = make_spans(
         [
@@ -244,4 +260,4 @@ def test_active_children_count_a_period_with_own_and_successor_rows_once(
     res = apply_lifecycle(cleaned, products, spans, config, CYCLE)
     ch = active_children(spans, products, res.history, config, CYCLE)
     # 4 rows of C2 on B, but 2 distinct periods (01-19, 01-26): new under min_history_periods 3
-    assert dict(zip(ch["customer"], ch["own_periods"])) == {"C1": 4, "C2": 2}
+    assert dict(zip(ch["customer"], ch["own_periods"], strict=False)) == {"C1": 4, "C2": 2}

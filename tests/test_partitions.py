@@ -1,7 +1,6 @@
 """Cycle x class partitions: narrowing the config, finding the current cycle, the schedule and the sensor."""
 
 import datetime as dt
-import shutil
 from pathlib import Path
 
 import dagster as dg
@@ -10,7 +9,7 @@ import yaml
 
 from pipelines.definitions import build_definitions
 from pipelines.errors import ConfigError
-from pipelines.jobs import new_history_file_sensor, weekly_cycle_schedule
+from pipelines.jobs import cycle_schedule, new_history_file_sensor
 from pipelines.partitions import CYCLE, PRODUCT_CLASS, current_cycle, narrow_config, partition_key, split_key
 from pipelines.resources import PlanningConfigResource
 
@@ -19,7 +18,9 @@ ROOT = Path(__file__).resolve().parents[1]
 
 def _history(folder: Path, rows: list[str]) -> None:
     folder.mkdir(parents=True, exist_ok=True)
-    (folder / "history.csv").write_text("product,site,customer,period_start,quantity\n" + "".join(r + "\n" for r in rows))
+    (folder / "history.csv").write_text(
+        "product,site,customer,period_start,quantity\n" + "".join(r + "\n" for r in rows)
+    )
 
 
 def _config_file(tmp_path: Path, folder: Path, **calendar) -> str:
@@ -81,7 +82,7 @@ def test_schedule_registers_the_cycle_and_requests_one_run_per_class(tmp_path):
             resources={"planning": planning},
             repository_def=build_definitions(planning.path).get_repository_def(),
         )
-        requests = weekly_cycle_schedule.evaluate_tick(context).run_requests
+        requests = cycle_schedule.evaluate_tick(context).run_requests
         assert [r.partition_key for r in requests] == ["2026-11-30|fast", "2026-11-30|slow"]
         assert instance.get_dynamic_partitions(CYCLE) == ["2026-11-30"]
         assert instance.get_dynamic_partitions(PRODUCT_CLASS) == ["fast", "slow"]
@@ -95,20 +96,34 @@ def test_sensor_starts_a_cycle_when_a_history_file_is_new_or_changed(tmp_path):
     # the daemon evaluates a tick with the instance as the partition store; so does this test
     with dg.instance_for_test() as instance, dg.partition_loading_context(dynamic_partitions_store=instance):
         first = new_history_file_sensor.evaluate_tick(
-            dg.build_sensor_context(instance=instance, resources={"planning": planning}, repository_def=defs.get_repository_def())
+            dg.build_sensor_context(
+                instance=instance, resources={"planning": planning}, repository_def=defs.get_repository_def()
+            )
         )
         assert [r.partition_key for r in first.run_requests] == ["2026-11-23|fast", "2026-11-23|slow"]
         assert instance.get_dynamic_partitions(CYCLE) == ["2026-11-23"]
         assert instance.get_dynamic_partitions(PRODUCT_CLASS) == ["fast", "slow"]
         # the same files again: nothing to do
         again = new_history_file_sensor.evaluate_tick(
-            dg.build_sensor_context(instance=instance, cursor=first.cursor, resources={"planning": planning}, repository_def=defs.get_repository_def())
+            dg.build_sensor_context(
+                instance=instance,
+                cursor=first.cursor,
+                resources={"planning": planning},
+                repository_def=defs.get_repository_def(),
+            )
         )
         assert not again.run_requests and "no new or changed history file" in again.skip_message
         # a new week lands in a second file: the next cycle starts
-        (folder / "history_2026-11-23.csv").write_text("product,site,customer,period_start,quantity\nP,S,C,2026-11-23,4\n")
+        (folder / "history_2026-11-23.csv").write_text(
+            "product,site,customer,period_start,quantity\nP,S,C,2026-11-23,4\n"
+        )
         later = new_history_file_sensor.evaluate_tick(
-            dg.build_sensor_context(instance=instance, cursor=first.cursor, resources={"planning": planning}, repository_def=defs.get_repository_def())
+            dg.build_sensor_context(
+                instance=instance,
+                cursor=first.cursor,
+                resources={"planning": planning},
+                repository_def=defs.get_repository_def(),
+            )
         )
         assert [r.partition_key for r in later.run_requests] == ["2026-11-30|fast", "2026-11-30|slow"]
         assert len({r.run_key for r in first.run_requests + later.run_requests}) == 4
@@ -117,5 +132,7 @@ def test_sensor_starts_a_cycle_when_a_history_file_is_new_or_changed(tmp_path):
 def test_sensor_skips_with_the_reason_when_the_folder_is_missing(tmp_path):
     planning = PlanningConfigResource(path=_config_file(tmp_path, tmp_path / "nowhere"))
     with dg.instance_for_test() as instance:
-        tick = new_history_file_sensor.evaluate_tick(dg.build_sensor_context(instance=instance, resources={"planning": planning}))
+        tick = new_history_file_sensor.evaluate_tick(
+            dg.build_sensor_context(instance=instance, resources={"planning": planning})
+        )
     assert not tick.run_requests and "does not exist" in tick.skip_message

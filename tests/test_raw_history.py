@@ -10,10 +10,10 @@ import pandas as pd
 import pytest
 
 from pipelines.config import load_config
+from pipelines.engines.history_files import HISTORY_COLUMNS, choose_cycle_date, load_raw_history
+from pipelines.engines.plausible import parse_dates, trusted_extent, year_outside
+from pipelines.engines.reader import read_csv_text, read_parquet_text
 from pipelines.errors import InputFileError
-from pipelines.stages.plausible import parse_dates, trusted_extent, year_outside
-from pipelines.stages.raw_history import HISTORY_COLUMNS, choose_cycle_date, load_raw_history
-from pipelines.stages.reader import read_csv_text, read_parquet_text
 
 ROOT = Path(__file__).resolve().parents[1]
 HEADER = b"product,site,customer,period_start,quantity\n"
@@ -44,7 +44,7 @@ def test_every_line_keeps_its_row_through_blank_malformed_and_quoted_lines(tmp_p
         [7, "P2", "S1", "C2", "2025-01-07", "8"],
         [8, "P3", "S1", "C3", "2025-01-08", "9"],
     ]
-    assert dict(zip(r.malformed["source_row"], r.malformed["read_error"])) == {
+    assert dict(zip(r.malformed["source_row"], r.malformed["read_error"], strict=True)) == {
         3: "too_few_fields", 5: "too_many_fields", 6: "control_characters"
     }
     assert r.blank_lines == 1
@@ -99,7 +99,8 @@ def test_parquet_cells_become_text_and_an_oversized_cell_its_row(tmp_path):
     path = tmp_path / "history.parquet"
     frame.to_parquet(path, index=False)
     r = read_parquet_text(path, HISTORY_COLUMNS, max_line_bytes=256)
-    assert r.frame[["source_row", "product", "customer", "quantity"]].values.tolist() == [[1, "P1", "C1", "5"], [2, "P1", "C2", "1e+308"]]
+    rows = r.frame[["source_row", "product", "customer", "quantity"]].values.tolist()
+    assert rows == [[1, "P1", "C1", "5"], [2, "P1", "C2", "1e+308"]]
     assert parse_dates(r.frame["period_start"]).tolist() == [pd.Timestamp("2025-01-06"), pd.Timestamp("2025-01-07")]
     assert r.malformed[["source_row", "read_error"]].values.tolist() == [[3, "line_too_long"]]
 
@@ -155,7 +156,7 @@ def test_a_stray_demo_line_never_moves_the_cycle_date(tmp_path, stray):
         fh.write(f"DRIP-001,SITE-NORTH,C0001,{stray},12\n")
     config = load_config(ROOT / "config" / "planning.yaml")
     config = config.model_copy(update={"inputs": config.inputs.model_copy(update={"folder": folder})})
-    choice = choose_cycle_date(config)
+    choice = choose_cycle_date(config.inputs, config.calendar.period)
     assert choice.cycle_date == pd.Timestamp("2026-11-30")
     ignored = choice.ignored["period_start"].tolist()
     assert ignored == ([stray] if stray > "2026-11-30" else [])

@@ -9,16 +9,14 @@ from __future__ import annotations
 import pandas as pd
 import pytest
 
-from pipelines.schemas import ParentForecast, Reconciliation, StatisticalForecast
-from pipelines.stages.reconciliation import (
-    find_incoherent,
+from pipelines.engines.proofs import (
     find_negative,
-    find_parents_without_children,
     find_shares_not_summing_to_one,
     find_volume_after_phase_out,
     find_volume_outside_active_span,
-    reconcile,
 )
+from pipelines.schemas_forecast import ParentForecast, Reconciliation, StatisticalForecast
+from pipelines.stages.reconciliation import find_incoherent, find_parents_without_children, reconcile
 
 CYCLE = pd.Timestamp("2026-02-02")
 H1, H2, H3 = pd.Timestamp("2026-02-02"), pd.Timestamp("2026-02-09"), pd.Timestamp("2026-02-16")
@@ -31,7 +29,7 @@ def parents(rows):
     frame.insert(0, "cycle_date", CYCLE)
     frame["model"] = "ses"
     frame["demand_class"] = "smooth"
-    frame["forecast_grain"] = "product_site"
+    frame["model_grain"] = "parent"
     frame["zero_reason"] = None
     return ParentForecast.validate(frame)
 
@@ -42,15 +40,15 @@ def leaves(rows):
     frame["cycle_date"] = CYCLE
     frame["product_class"] = "a"
     frame["parent_forecast"] = 0.0
-    frame["split_basis"] = "target"
+    frame["basis"] = "reinitialized_target"
     return StatisticalForecast.validate(frame)
 
 
 def share_rows(rows):
-    """rows: (product, site, customer, period_start, share[, zero_share_reason]) - the columns the share check reads."""
+    """rows: (product, site, customer, period_start, share[, zero_reason]) - the columns the share check reads."""
     full = [tuple(r) + (None,) * (6 - len(r)) for r in rows]
-    frame = pd.DataFrame(full, columns=["product", "site", "customer", "period_start", "share", "zero_share_reason"])
-    frame["zero_share_reason"] = frame["zero_share_reason"].astype(object)
+    frame = pd.DataFrame(full, columns=["product", "site", "customer", "period_start", "share", "zero_reason"])
+    frame["zero_reason"] = frame["zero_reason"].astype(object)
     return frame
 
 
@@ -144,9 +142,19 @@ def test_shares_summing_to_one_are_not_flagged():
 def test_shares_are_judged_per_parent_and_period():
     shares = share_rows(
         # P1: H1 0.25 + 0.75 = 1; H2 C2 has left and C1 was renormalised to 1 -> fine
-        [("P1", "S1", "C1", H1, 0.25), ("P1", "S1", "C2", H1, 0.75), ("P1", "S1", "C1", H2, 1.0), ("P1", "S1", "C2", H2, 0.0)]
+        [
+            ("P1", "S1", "C1", H1, 0.25),
+            ("P1", "S1", "C2", H1, 0.75),
+            ("P1", "S1", "C1", H2, 1.0),
+            ("P1", "S1", "C2", H2, 0.0),
+        ]
         # P2: H1 fine; H2 C2 left but C1 kept its 0.5 -> 0.5, not renormalised
-        + [("P2", "S1", "C1", H1, 0.5), ("P2", "S1", "C2", H1, 0.5), ("P2", "S1", "C1", H2, 0.5), ("P2", "S1", "C2", H2, 0.0)]
+        + [
+            ("P2", "S1", "C1", H1, 0.5),
+            ("P2", "S1", "C2", H1, 0.5),
+            ("P2", "S1", "C1", H2, 0.5),
+            ("P2", "S1", "C2", H2, 0.0),
+        ]
         # P3: 1 + 1e-8, off by more than 1e-9
         + [("P3", "S1", "C1", H1, 0.5), ("P3", "S1", "C2", H1, 0.5 + 1e-8)]
     )
@@ -174,7 +182,9 @@ def test_all_zero_shares_pass_only_with_a_reason_on_every_row():
 
 
 def test_volume_after_the_span_end_is_returned(make_spans):
-    spans = make_spans([("P1", "S1", "C1", None, "2026-02-08"), ("P1", "S1", "C2"), ("P1", "S1", "C3", None, "2026-02-11")])
+    spans = make_spans(
+        [("P1", "S1", "C1", None, "2026-02-08"), ("P1", "S1", "C2"), ("P1", "S1", "C3", None, "2026-02-11")]
+    )
     leaf = leaves(
         [
             ("P1", "S1", "C1", H1, 2.0),  # in the span's last week
@@ -198,7 +208,9 @@ def test_no_volume_after_phase_out_when_spans_are_respected(make_spans):
 
 def test_volume_before_the_span_start_or_outside_the_product_span_is_returned(make_spans, make_products):
     products = make_products([("P1", "a"), ("P2", "a", None, "2026-02-08")])  # P2 ends Sun 02-08 -> last week H1
-    spans = make_spans([("P1", "S1", "C1", "2026-02-11"), ("P1", "S1", "C2"), ("P2", "S1", "C1")])  # C1 on P1 from week H2
+    spans = make_spans(
+        [("P1", "S1", "C1", "2026-02-11"), ("P1", "S1", "C2"), ("P2", "S1", "C1")]
+    )  # C1 on P1 from week H2
     leaf = leaves(
         [
             ("P1", "S1", "C1", H1, 2.0),  # before its span starts -> flagged

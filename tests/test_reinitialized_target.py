@@ -12,12 +12,12 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from pipelines.engines.children import active_children
+from pipelines.engines.proofs import find_shares_not_summing_to_one
+from pipelines.engines.shares import compute_shares
 from pipelines.keys import LEAF
 from pipelines.schemas import ReinitializedTarget
-from pipelines.stages.lifecycle_history import active_children
-from pipelines.stages.reconciliation import find_shares_not_summing_to_one
 from pipelines.stages.reinitialized_target import parents_with_mix_change, reinitialize_target
-from pipelines.stages.share_tables import compute_shares
 
 CYCLE = pd.Timestamp("2026-02-02")
 AGE = {1: "2026-01-26", 2: "2026-01-19", 3: "2026-01-12", 4: "2026-01-05", 6: "2025-12-22"}
@@ -44,7 +44,7 @@ def by_period(target, column="share"):
 def reasons(target):
     """[reason in H1, H2, H3] of a one-parent target (None = shares sum to 1)."""
     first = target.drop_duplicates("period_start").sort_values("period_start")
-    return [None if pd.isna(r) else r for r in first["zero_share_reason"]]
+    return [None if pd.isna(r) else r for r in first["zero_reason"]]
 
 
 def one_week_history(make_history):
@@ -65,10 +65,12 @@ def test_target_is_share_times_parent_mean_over_the_window_used(make_history, ma
     # C1: 0.2 x 25 = 5; C2: 0.8 x 25 = 20 (in every horizon week)
     assert per_customer(target, "parent_baseline") == {"C1": [25.0], "C2": [25.0]}
     assert per_customer(target) == {"C1": [pytest.approx(5.0)], "C2": [pytest.approx(20.0)]}
-    assert target["zero_share_reason"].isna().all()
+    assert target["zero_reason"].isna().all()
 
 
-def test_baseline_divides_by_fewer_periods_when_parent_history_starts_inside_the_window(make_history, make_share_table, config):
+def test_baseline_divides_by_fewer_periods_when_parent_history_starts_inside_the_window(
+    make_history, make_share_table, config
+):
     history = make_history([("P1", "S1", "C1", AGE[2], 10), ("P1", "S1", "C2", AGE[1], 20)])
     shares = make_share_table([("P1", "S1", "C1", 0.5), ("P1", "S1", "C2", 0.5)])
     target = reinitialize_target(shares, history, config, CYCLE)
@@ -144,7 +146,11 @@ def test_customer_ending_mid_horizon_keeps_its_share_until_then_and_the_others_r
     make_history, make_share_table, config
 ):
     shares = make_share_table(
-        [("P1", "S1", "C1", 0.2), ("P1", "S1", "C2", 0.5), ("P1", "S1", "C3", 0.3, 4, {"rule": "phase_out", "last": H2})]
+        [
+            ("P1", "S1", "C1", 0.2),
+            ("P1", "S1", "C2", 0.5),
+            ("P1", "S1", "C3", 0.3, 4, {"rule": "phase_out", "last": H2}),
+        ]
     )
     target = reinitialize_target(shares, one_week_history(make_history), config, CYCLE)
     # H1, H2: base shares 0.2, 0.5, 0.3; H3 without C3: 0.2 / 0.7 = 0.285714, 0.5 / 0.7 = 0.714286, 0
@@ -165,7 +171,14 @@ def test_initial_share_customer_phases_in_and_scales_the_others(make_history, ma
         [
             ("P1", "S1", "C1", 0.48, 4, {"history_share": 0.6}),
             ("P1", "S1", "C2", 0.32, 4, {"history_share": 0.4}),
-            ("P1", "S1", "C3", 0.2, 4, {"rule": "initial_share", "history_share": 0.0, "initial_share": 0.2, "first": H2, "own_periods": 0}),
+            (
+                "P1",
+                "S1",
+                "C3",
+                0.2,
+                4,
+                {"rule": "initial_share", "history_share": 0.0, "initial_share": 0.2, "first": H2, "own_periods": 0},
+            ),
         ]
     )
     target = reinitialize_target(shares, one_week_history(make_history), config, CYCLE)
@@ -183,7 +196,21 @@ def test_reference_keeps_its_whole_share_until_the_new_customer_starts(make_hist
         [
             ("P1", "S1", "C1", 0.3, 4, {"history_share": 0.6}),
             ("P1", "S1", "C2", 0.4, 4, {"history_share": 0.4}),
-            ("P1", "S1", "C3", 0.3, 4, {"rule": "reference", "history_share": 0.0, "reference_customer": "C1", "scale": 0.5, "first": H2, "own_periods": 0}),
+            (
+                "P1",
+                "S1",
+                "C3",
+                0.3,
+                4,
+                {
+                    "rule": "reference",
+                    "history_share": 0.0,
+                    "reference_customer": "C1",
+                    "scale": 0.5,
+                    "first": H2,
+                    "own_periods": 0,
+                },
+            ),
         ]
     )
     target = reinitialize_target(shares, one_week_history(make_history), config, CYCLE)
@@ -202,7 +229,21 @@ def test_like_for_like_replacement_takes_the_share_of_a_reference_that_ends(make
         [
             ("P1", "S1", "C1", 0.0, 4, {"rule": "phase_out", "history_share": 0.6, "last": H1}),
             ("P1", "S1", "C2", 0.4, 4, {"history_share": 0.4}),
-            ("P1", "S1", "C3", 0.6, 4, {"rule": "reference", "history_share": 0.0, "reference_customer": "C1", "scale": 1.0, "first": H2, "own_periods": 0}),
+            (
+                "P1",
+                "S1",
+                "C3",
+                0.6,
+                4,
+                {
+                    "rule": "reference",
+                    "history_share": 0.0,
+                    "reference_customer": "C1",
+                    "scale": 1.0,
+                    "first": H2,
+                    "own_periods": 0,
+                },
+            ),
         ]
     )
     target = reinitialize_target(shares, one_week_history(make_history), config, CYCLE)
@@ -236,7 +277,9 @@ def test_new_customers_asking_more_than_the_reference_has_share_it(make_history,
     }
 
 
-def test_initial_shares_above_one_are_renormalised_and_leave_nothing_to_the_others(make_history, make_share_table, config):
+def test_initial_shares_above_one_are_renormalised_and_leave_nothing_to_the_others(
+    make_history, make_share_table, config
+):
     new = {"rule": "initial_share", "history_share": 0.0, "own_periods": 0}
     shares = make_share_table(
         [
@@ -270,10 +313,16 @@ def test_product_ending_mid_horizon_has_zero_shares_with_reason_after_its_end(
     # baseline 10 / 1 = 10 -> targets 2.5, 7.5 then 0
     assert by_period(target, "target") == {"C1": [2.5, 2.5, 0.0], "C2": [7.5, 7.5, 0.0]}
     # without the product master the same period reads as no active child
-    assert reasons(reinitialize_target(shares, one_week_history(make_history), config, CYCLE)) == [None, None, "no_active_child"]
+    assert reasons(reinitialize_target(shares, one_week_history(make_history), config, CYCLE)) == [
+        None,
+        None,
+        "no_active_child",
+    ]
 
 
-def test_product_launched_mid_horizon_has_shares_only_from_its_start(make_history, make_share_table, make_products, config):
+def test_product_launched_mid_horizon_has_shares_only_from_its_start(
+    make_history, make_share_table, make_products, config
+):
     products = make_products([("P1", "a", "2026-02-10")])  # from Tue 02-10 -> first week H2
     shares = make_share_table([("P1", "S1", "C1", 0.5, 4, {"first": H2}), ("P1", "S1", "C2", 0.5, 4, {"first": H2})])
     target = reinitialize_target(shares, one_week_history(make_history), config, CYCLE, products)
@@ -311,9 +360,9 @@ def test_parents_with_mix_change_lists_when_and_who(make_history, make_share_tab
     target = reinitialize_target(shares, one_week_history(make_history), config, CYCLE)
     mix = parents_with_mix_change(target, shares)
     # only P1 changes, once, in H3 when C3 leaves
-    assert mix[["product", "first_change", "periods_with_change", "phasing_in", "phasing_out", "zero_periods"]].values.tolist() == [
-        ["P1", pd.Timestamp(H3), 1, "", "C3", 0]
-    ]
+    assert mix[
+        ["product", "first_change", "periods_with_change", "phasing_in", "phasing_out", "zero_periods"]
+    ].values.tolist() == [["P1", pd.Timestamp(H3), 1, "", "C3", 0]]
 
 
 # ------------------------------------------------------------------ property (hypothesis)
@@ -337,13 +386,25 @@ def lifecycle_inputs(draw):
         customers = [f"C{c + 1}" for c in range(draw(st.integers(1, 5)))]
         for c in customers:
             first = draw(st.one_of(st.none(), st.integers(-8, PROPERTY_HORIZON)))
-            last = draw(st.one_of(st.none(), st.integers(max(first if first is not None else -2, -2), PROPERTY_HORIZON + 1)))
+            last = draw(
+                st.one_of(st.none(), st.integers(max(first if first is not None else -2, -2), PROPERTY_HORIZON + 1))
+            )
             others = [o for o in customers if o != c]
             reference = draw(st.one_of(st.none(), st.sampled_from(others))) if others else None
             scale = draw(st.one_of(st.none(), st.floats(0.05, 1.0)))
             initial = draw(st.one_of(st.none(), st.floats(0.0, 0.95)))
-            spans.append((product, "S1", c, None if first is None else CYCLE + first * WEEK,
-                          None if last is None else CYCLE + last * WEEK + pd.Timedelta(days=6), reference, scale, initial))
+            spans.append(
+                (
+                    product,
+                    "S1",
+                    c,
+                    None if first is None else CYCLE + first * WEEK,
+                    None if last is None else CYCLE + last * WEEK + pd.Timedelta(days=6),
+                    reference,
+                    scale,
+                    initial,
+                )
+            )
             for age in range(1, draw(st.integers(0, 6)) + 1):
                 history.append((product, "S1", c, CYCLE - age * WEEK, draw(st.integers(0, 9)),
                                 "own", product, c, draw(st.booleans()) and draw(st.booleans())))
@@ -360,7 +421,9 @@ def _frame(rows, columns, dates=()):
 
 
 # the config fixture is a pure builder function, so sharing it across examples is safe
-@settings(max_examples=100, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
+@settings(
+    max_examples=100, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture]
+)
 @given(lifecycle_inputs())
 def test_property_shares_sum_to_one_per_parent_and_period_or_are_all_zero_with_a_reason(make_config, case):
     product_rows, span_rows, history_rows, method = case
@@ -369,10 +432,32 @@ def test_property_shares_sum_to_one_per_parent_and_period_or_are_all_zero_with_a
         calendar={"horizon": PROPERTY_HORIZON},
         lifecycle={"min_history_periods": 3},
     )
-    products = _frame([r + (None,) for r in product_rows], ["product", "product_class", "active_from", "active_to", "successor"], ("active_from", "active_to"))
-    spans = _frame(span_rows, ["product", "site", "customer", "active_from", "active_to", "reference_customer", "scale", "initial_share"], ("active_from", "active_to"))
+    products = _frame(
+        [r + (None,) for r in product_rows],
+        ["product", "product_class", "active_from", "active_to", "successor"],
+        ("active_from", "active_to"),
+    )
+    spans = _frame(
+        span_rows,
+        ["product", "site", "customer", "active_from", "active_to", "reference_customer", "scale", "initial_share"],
+        ("active_from", "active_to"),
+    )
     spans[["scale", "initial_share"]] = spans[["scale", "initial_share"]].astype(float)
-    history = _frame(history_rows, ["product", "site", "customer", "period_start", "quantity", "origin", "source_product", "source_customer", "shortage"], ("period_start",))
+    history = _frame(
+        history_rows,
+        [
+            "product",
+            "site",
+            "customer",
+            "period_start",
+            "quantity",
+            "origin",
+            "source_product",
+            "source_customer",
+            "shortage",
+        ],
+        ("period_start",),
+    )
     history = history.astype({"quantity": float, "shortage": bool})
     children = active_children(spans, products, history, config, CYCLE)
     shares = compute_shares(history, children, config, CYCLE)
@@ -382,5 +467,7 @@ def test_property_shares_sum_to_one_per_parent_and_period_or_are_all_zero_with_a
     assert len(target) == len(shares) * PROPERTY_HORIZON
     assert target["share"].between(0, 1).all() and shares["share"].between(0, 1).all()
     merged = target.merge(shares[LEAF + ["first_active_period", "last_active_period", "lifecycle_rule"]], on=LEAF)
-    inactive = (merged["period_start"] < merged["first_active_period"]) | (merged["period_start"] > merged["last_active_period"])
+    inactive = (merged["period_start"] < merged["first_active_period"]) | (
+        merged["period_start"] > merged["last_active_period"]
+    )
     assert (merged.loc[inactive | (merged["lifecycle_rule"] == "awaiting_history"), "share"] == 0).all()

@@ -16,7 +16,7 @@ from matplotlib import dates as mdates
 from matplotlib import image as mimage
 from PIL import Image
 
-from pipelines.stages import report
+from pipelines.engines import report_charts, report_html
 
 CYCLE = pd.Timestamp("2026-02-02")
 W1, W2, W3 = "2026-01-12", "2026-01-19", "2026-01-26"
@@ -40,7 +40,13 @@ def num(day) -> float:
 
 def line(ax, label):
     (found,) = [ln for ln in ax.get_lines() if ln.get_label() == label]
-    return dict(zip(np.round(found.get_xdata(orig=False).astype(float), 6), found.get_ydata(orig=False).astype(float)))
+    return dict(
+        zip(
+            np.round(found.get_xdata(orig=False).astype(float), 6),
+            found.get_ydata(orig=False).astype(float),
+            strict=False,
+        )
+    )
 
 
 def decode(png: bytes) -> np.ndarray:
@@ -68,7 +74,7 @@ def parents():
     )
     fc = {"P1": (15, 15, 15), "P2": (21, 22, 23), "P3": (1, 1, 1)}
     forecast = frame(
-        [("a", p, "S1", h, float(v)) for p, values in fc.items() for h, v in zip((H1, H2, H3), values)],
+        [("a", p, "S1", h, float(v)) for p, values in fc.items() for h, v in zip((H1, H2, H3), values, strict=False)],
         ["product_class", "product", "site", "period_start", "forecast"],
     )
     return hist, forecast
@@ -76,7 +82,7 @@ def parents():
 
 def test_parent_chart_plots_class_total_and_the_largest_parents(parents):
     hist, forecast = parents
-    fig = report.parent_chart_figure(hist, forecast, product_class="a", cycle_date=CYCLE, top_parents=2)
+    fig = report_charts.parent_chart_figure(hist, forecast, product_class="a", cycle_date=CYCLE, top_parents=2)
     total, first, second = fig.axes[:3]
     # class total: history 10+20+1 = 31, 12+20+1 = 33, 14+20+1 = 35 (P9 left out); forecast 15+21+1 = 37, 38, 39
     assert line(total, "history") == {num(W1): 31.0, num(W2): 33.0, num(W3): 35.0}
@@ -96,26 +102,26 @@ def test_parent_chart_plots_class_total_and_the_largest_parents(parents):
 
 def test_parent_chart_draws_only_the_last_history_periods_asked_for(parents):
     hist, forecast = parents
-    fig = report.parent_chart_figure(hist, forecast, product_class="a", cycle_date=CYCLE, history_periods=2)
+    fig = report_charts.parent_chart_figure(hist, forecast, product_class="a", cycle_date=CYCLE, history_periods=2)
     # the last 2 weeks before the cycle date: W2 33, W3 35
     assert line(fig.axes[0], "history") == {num(W2): 33.0, num(W3): 35.0}
 
 
 def test_parent_chart_png_is_valid_deterministic_and_shows_the_forecast(parents):
     hist, forecast = parents
-    png = report.parent_chart(hist, forecast, product_class="a", cycle_date=CYCLE, top_parents=2)
-    fig = report.parent_chart_figure(hist, forecast, product_class="a", cycle_date=CYCLE, top_parents=2)
+    png = report_charts.parent_chart(hist, forecast, product_class="a", cycle_date=CYCLE, top_parents=2)
+    fig = report_charts.parent_chart_figure(hist, forecast, product_class="a", cycle_date=CYCLE, top_parents=2)
     image = decode(png)
-    width, height = fig.get_size_inches() * report.DPI
+    width, height = fig.get_size_inches() * report_charts.DPI
     assert image.shape[:2] == (round(height), round(width))
-    assert pixels_of(image, report.FORECAST_COLOR) > 100  # the orange forecast lines are drawn
-    assert png == report.parent_chart(hist, forecast, product_class="a", cycle_date=CYCLE, top_parents=2)
+    assert pixels_of(image, report_charts.FORECAST_COLOR) > 100  # the orange forecast lines are drawn
+    assert png == report_charts.parent_chart(hist, forecast, product_class="a", cycle_date=CYCLE, top_parents=2)
 
 
 def test_parent_chart_of_a_class_without_parents_is_still_a_picture(parents):
     hist, forecast = parents
-    png = report.parent_chart(hist, forecast, product_class="b", cycle_date=CYCLE)
-    assert decode(png).shape[1] == round(report.WIDTH_IN * report.DPI)
+    png = report_charts.parent_chart(hist, forecast, product_class="b", cycle_date=CYCLE)
+    assert decode(png).shape[1] == round(report_charts.WIDTH_IN * report_charts.DPI)
 
 
 # ------------------------------------------------------------------ share chart
@@ -130,11 +136,19 @@ def shares_input():
     # shares W1: .6 .3 .1 0; W3: .3 .3 .2 .2; horizon (target) H1, H2: .5 .3 .1 .1
     # P2 x S1 (1 a week) is smaller and is not drawn with top_parents=1.
     hist = history(
-        [("P1", "S1", c, w, q) for c, qs in {"C1": (6, 0, 3), "C2": (3, 0, 3), "C3": (1, 0, 2), "C4": (0, 0, 2)}.items() for w, q in zip((W1, W2, W3), qs)]
+        [
+            ("P1", "S1", c, w, q)
+            for c, qs in {"C1": (6, 0, 3), "C2": (3, 0, 3), "C3": (1, 0, 2), "C4": (0, 0, 2)}.items()
+            for w, q in zip((W1, W2, W3), qs, strict=False)
+        ]
         + [("P2", "S1", "C1", w, 1) for w in (W1, W2, W3)]
     )
     target = frame(
-        [("P1", "S1", c, h, s, s * 10) for c, s in {"C1": 0.5, "C2": 0.3, "C3": 0.1, "C4": 0.1}.items() for h in (H1, H2)]
+        [
+            ("P1", "S1", c, h, s, s * 10)
+            for c, s in {"C1": 0.5, "C2": 0.3, "C3": 0.1, "C4": 0.1}.items()
+            for h in (H1, H2)
+        ]
         + [("P2", "S1", "C1", h, 1.0, 1.0) for h in (H1, H2)],
         ["product", "site", "customer", "period_start", "share", "target"],
     )
@@ -155,7 +169,9 @@ def bands(ax):
 
 def test_share_chart_stacks_history_and_horizon_shares_with_other(shares_input):
     hist, target = shares_input
-    fig = report.share_chart_figure(hist, target, product_class="a", cycle_date=CYCLE, top_parents=1, top_children=2)
+    fig = report_charts.share_chart_figure(
+        hist, target, product_class="a", cycle_date=CYCLE, top_parents=1, top_children=2
+    )
     ax = fig.axes[0]
     # mean shares over W1, W3, H1, H2 (W2 blank): C1 (.6+.3+.5+.5)/4 = .475, C2 .3, C3 .125, C4 .1 -> top 2: C1, C2
     # other = C3 + C4: W1 .1, W3 .4, H1 .2, H2 .2; labels carry the share in the first horizon period
@@ -185,19 +201,31 @@ def test_share_chart_stacks_history_and_horizon_shares_with_other(shares_input):
 
 def test_share_chart_marks_the_window_start_and_renders(shares_input, make_share_table):
     hist, target = shares_input
-    shares = make_share_table([("P1", "S1", c, 0.25) for c in ("C1", "C2", "C3", "C4")])  # window 4 -> starts 2026-01-05
-    fig = report.share_chart_figure(hist, target, product_class="a", cycle_date=CYCLE, top_parents=1, shares=shares)
+    shares = make_share_table(
+        [("P1", "S1", c, 0.25) for c in ("C1", "C2", "C3", "C4")]
+    )  # window 4 -> starts 2026-01-05
+    fig = report_charts.share_chart_figure(
+        hist, target, product_class="a", cycle_date=CYCLE, top_parents=1, shares=shares
+    )
     assert set(line(fig.axes[0], "share window start")) == {num("2026-01-05")}
-    png = report.share_chart(hist, target, product_class="a", cycle_date=CYCLE, top_parents=2, shares=shares)
+    png = report_charts.share_chart(hist, target, product_class="a", cycle_date=CYCLE, top_parents=2, shares=shares)
     image = decode(png)
-    assert image.shape[1] == round(report.WIDTH_IN * report.DPI)
-    assert pixels_of(image, report.CHILD_COLORS[0]) > 100
+    assert image.shape[1] == round(report_charts.WIDTH_IN * report_charts.DPI)
+    assert pixels_of(image, report_charts.CHILD_COLORS[0]) > 100
 
 
 def test_history_shares_leave_out_periods_without_volume_or_with_a_shortage():
-    hist = history([("P1", "S1", "C1", W1, 3), ("P1", "S1", "C2", W1, 1), ("P1", "S1", "C1", W2, 0), ("P1", "S1", "C1", W3, 2), ("P1", "S1", "C2", W3, 2)])
+    hist = history(
+        [
+            ("P1", "S1", "C1", W1, 3),
+            ("P1", "S1", "C2", W1, 1),
+            ("P1", "S1", "C1", W2, 0),
+            ("P1", "S1", "C1", W3, 2),
+            ("P1", "S1", "C2", W3, 2),
+        ]
+    )
     hist["shortage"] = [False, False, False, True, False]  # W3 short on one row: the whole parent period is out
-    got = report.history_period_shares(hist).set_index(["customer", "period_start"])["share"]
+    got = report_charts.history_period_shares(hist).set_index(["customer", "period_start"])["share"]
     # W1: 3 / 4 = .75, 1 / 4 = .25; W2: parent 0 -> NaN; W3: shortage -> NaN
     assert got[("C1", pd.Timestamp(W1))] == 0.75
     assert got[("C2", pd.Timestamp(W1))] == 0.25
@@ -221,14 +249,19 @@ def page_input(make_share_table):
     shares.loc[shares["customer"] == "C1", "product_class"] = ["a", HOSTILE]
     checks = [
         ("raw_history", "raw_history_matches_schema", True, "ERROR", "Proves that raw_history matches its model."),
-        ("share_tables", "new_customer_without_share", False, "WARN", "Lists new customers without a share."),
+        ("share_tables", "new_customers_have_share", False, "WARN", "Lists new customers without a share."),
         ("reconciliation", "children_sum_to_parent", False, "ERROR", f"Proves children sum to parent {HOSTILE}."),
     ]
     rejected = pd.DataFrame(
         {
-            "source_file": ["h.csv"] * 3, "source_row": [9, 2, 5], "product": ["<img src=x onerror=alert(1)>", "P1", "P1"],
-            "site": ["S1"] * 3, "customer": ["", "", "C1"], "period_start": ["2026-01-05", "2026-01-05", "bad"],
-            "quantity": ["1", "2", "3"], "reason": ["missing_key", "missing_key", "bad_date"],
+            "source_file": ["h.csv"] * 3,
+            "source_row": [9, 2, 5],
+            "product": ["<img src=x onerror=alert(1)>", "P1", "P1"],
+            "site": ["S1"] * 3,
+            "customer": ["", "", "C1"],
+            "period_start": ["2026-01-05", "2026-01-05", "bad"],
+            "quantity": ["1", "2", "3"],
+            "reason": ["missing_key", "missing_key", "bad_date"],
         }
     )
     return shares, checks, rejected
@@ -236,12 +269,16 @@ def page_input(make_share_table):
 
 def test_page_lists_failed_checks_first_and_escapes_every_text(page_input):
     shares, checks, rejected = page_input
-    page = report.cycle_report_html(
+    page = report_html.cycle_report_html(
         cycle_date=CYCLE, share_tables=shares, checks=checks, rejected_rows=rejected,
         charts={HOSTILE: ['parents_a"b.png']},
     )
     # failed ERROR, then failed WARN, then passed
-    assert page.index("children_sum_to_parent") < page.index("new_customer_without_share") < page.index("raw_history_matches_schema")
+    assert (
+        page.index("children_sum_to_parent")
+        < page.index("new_customers_have_share")
+        < page.index("raw_history_matches_schema")
+    )
     assert page.index('id="checks"') < page.index('id="classes"')
     assert "1 blocking (ERROR) check(s) failed and 1 warning(s)" in page
     assert "<script" not in page.lower() and "<img src=x" not in page
@@ -259,7 +296,9 @@ def test_page_counts_rejected_rows_and_orders_movers_by_size(page_input):
             "share_previous": [0.5, 0.43, 0.07], "share_current": [0.51, 0.40, 0.075], "change_pp": [1.0, -3.0, 0.5],
         }
     )
-    page = report.cycle_report_html(cycle_date=CYCLE, share_tables=shares, checks=checks, rejected_rows=rejected, movers=movers)
+    page = report_html.cycle_report_html(
+        cycle_date=CYCLE, share_tables=shares, checks=checks, rejected_rows=rejected, movers=movers
+    )
     assert "No previous cycle" not in page
     section = page[page.index('id="movers"'):page.index('id="rejected"')]
     # |change|: C2 3.0, C1 1.0, C3 0.5
@@ -278,7 +317,7 @@ def test_class_summary_counts_parents_children_fallbacks_and_rules(page_input):
     shares, _, _ = page_input
     shares = shares.assign(product_class="a")
     forecast = pd.DataFrame({"product_class": ["a", "a"], "strategy": ["top_down", "top_down"]})
-    row = report.class_summary(shares, forecast).iloc[0]
+    row = report_html.class_summary(shares, forecast).iloc[0]
     # 2 parents (P1, P2), 3 children; P2 fell back to its 8-week window; C2 of P1 phases out
     assert (row["parents"], row["children"]) == (2, 3)
     assert (row["fallback_longer_window"], row["fallback_even"]) == (1, 0)
@@ -289,13 +328,15 @@ def test_class_summary_counts_parents_children_fallbacks_and_rules(page_input):
 
 def test_all_checks_passed_banner(page_input):
     shares, checks, _ = page_input
-    page = report.cycle_report_html(cycle_date=CYCLE, share_tables=shares, checks=[c[:2] + (True,) + c[3:] for c in checks])
+    page = report_html.cycle_report_html(
+        cycle_date=CYCLE, share_tables=shares, checks=[c[:2] + (True,) + c[3:] for c in checks]
+    )
     assert "All 3 checks passed." in page
     assert "No rejected rows table was given." in page
 
 
 def test_chart_file_name_is_safe():
-    assert report.chart_file_name("shares", "a/b c", "2026-02-02") == "shares_a-b-c_2026-02-02.png"
+    assert report_charts.chart_file_name("shares", "a/b c", "2026-02-02") == "shares_a-b-c_2026-02-02.png"
 
 
 def test_each_failed_check_shows_its_first_rows_and_what_to_do_escaped(page_input):
@@ -305,13 +346,16 @@ def test_each_failed_check_shows_its_first_rows_and_what_to_do_escaped(page_inpu
         f"| pins.csv | 1 | C77 | customer | {HOSTILE} |\n"
     )
     checks = [
-        ("pins [a]", "references_known", False, "ERROR", "Proves pins name known customers.", rows, "correct the customer"),
+        (
+            "pins [a]", "references_known", False, "ERROR", "Proves pins name known customers.", rows,
+            "correct the customer",
+        ),
         ("products [a]", "products_matches_schema", True, "ERROR", "Proves products match.", "", ""),
     ]
-    page = report.cycle_report_html(cycle_date=CYCLE, share_tables=shares, checks=checks)
+    page = report_html.cycle_report_html(cycle_date=CYCLE, share_tables=shares, checks=checks)
     section = page[page.index("First failing rows"):]
     assert "<th>file</th><th>row</th><th>customer</th><th>column</th><th>value</th>" in section
     assert "<td>pins.csv</td><td>1</td><td>C77</td><td>customer</td>" in section
     assert "What to do: correct the customer" in section
     assert "<script" not in page.lower() and "products_matches_schema" not in section  # passed checks have no rows
-    assert report.markdown_rows(rows)[0] == ["file", "row", "customer", "column", "value"]
+    assert report_html.markdown_rows(rows)[0] == ["file", "row", "customer", "column", "value"]

@@ -22,7 +22,8 @@ import statsmodels
 from statsmodels.tsa.seasonal import seasonal_decompose
 
 from pipelines.config import parse_config
-from pipelines.stages.cleaned_history import clean_history, seasonal_component
+from pipelines.engines.outliers import seasonal_component
+from pipelines.stages.cleaned_history import clean_history
 
 
 def _series(rng: np.random.Generator, n: int, m: int) -> np.ndarray:
@@ -72,9 +73,18 @@ def test_shorter_than_two_seasons_is_left_unadjusted_where_statsmodels_refuses()
 
 # ------------------------------------------------------------------ a clean seasonal series loses nothing
 WEEKS = pd.date_range("2023-12-04", periods=156, freq="7D")  # three seasons of 52 weeks, Mondays
-PRODUCTS = pd.DataFrame({"product": ["P1"], "product_class": ["s"], "active_from": pd.NaT, "active_to": pd.NaT, "successor": None})
+PRODUCTS = pd.DataFrame(
+    {"product": ["P1"], "product_class": ["s"], "active_from": pd.NaT, "active_to": pd.NaT, "successor": None}
+)
 SPANS = pd.DataFrame(
-    {"product": ["P1"], "site": ["S1"], "customer": ["C1"], "active_from": pd.NaT, "active_to": pd.NaT, "reference_customer": None}
+    {
+        "product": ["P1"],
+        "site": ["S1"],
+        "customer": ["C1"],
+        "active_from": pd.NaT,
+        "active_to": pd.NaT,
+        "reference_customer": None,
+    }
 )
 
 

@@ -1,6 +1,6 @@
-"""The share methods `forecast_proportions`, `smoothed` and `seasonal` against outside references.
+"""The share methods `children_forecast`, `smoothed` and `seasonal` against outside references.
 
-- `forecast_proportions`: Nixtla hierarchicalforecast 1.5.3,
+- `children_forecast` (forecast proportions): Nixtla hierarchicalforecast 1.5.3,
   `hierarchicalforecast.methods.TopDown(method="forecast_proportions")`
   (Athanasopoulos, Ahmed & Hyndman 2009), which splits the root's forecast by
   yhat_j / sum_k yhat_k per horizon period (read from
@@ -32,15 +32,18 @@ from statsmodels.tsa.holtwinters import SimpleExpSmoothing
 
 from pipelines.calendar import period_ordinal
 from pipelines.config import parse_config
+from pipelines.engines.period_shares import children_forecasts
+from pipelines.engines.shares import compute_shares
 from pipelines.keys import LEAF
 from pipelines.stages.reinitialized_target import reinitialize_target
-from pipelines.stages.share_tables import children_forecasts, compute_shares
 from pipelines.stages.statistical_forecast import forecast_cycle
 
 TOL = 1e-12
 
 
-def invented_rows(weeks: pd.DatetimeIndex, parents, seed: int, seasonal: bool = False, trend: bool = False) -> list[tuple]:
+def invented_rows(
+    weeks: pd.DatetimeIndex, parents, seed: int, seasonal: bool = False, trend: bool = False
+) -> list[tuple]:
     """Invented history rows (product, site, customer, week, quantity): parents [(product, site, customers)],
     every customer every week. seasonal: each customer its own yearly peak; trend: its own weekly
     growth (-4% to +4%).
@@ -85,12 +88,23 @@ CYCLE = WEEKS[-1] + pd.Timedelta(days=7)
 HORIZON = 6
 
 
-def fp_config(grain: str = "product_site") -> object:
+def fp_config(grain: str = "top_down") -> object:
     return parse_config(
         {
             "calendar": {"horizon": HORIZON},
-            "product_classes": {"a": {"window": 26, "method": "forecast_proportions", "forecast_grain": grain,
-                                      "models": {"smooth": "auto_ets", "erratic": "ses", "intermittent": "croston_sba", "lumpy": "croston_sba"}}},
+            "product_classes": {
+                "a": {
+                    "window": 26,
+                    "method": "children_forecast",
+                    "strategy": grain,
+                    "models": {
+                        "smooth": "auto_ets",
+                        "erratic": "ses",
+                        "intermittent": "croston_sba",
+                        "lumpy": "croston_sba",
+                    },
+                }
+            },
         }
     )
 
@@ -101,7 +115,7 @@ def test_forecast_proportions_equal_top_down_forecast_proportions_on_one_parent(
     shares = compute_shares(history, children_of(history), cfg, CYCLE)
     target = reinitialize_target(shares, history, cfg, CYCLE)
     ours = share_matrix(target)
-    assert set(target["share_basis"]) == {"children_forecast"}
+    assert set(target["basis"]) == {"children_forecast"}
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([CYCLE]), "week")[0])
     base = children_forecasts(history, shares, cfg, cycle_ord, HORIZON)
     assert (base > 0).all()  # every child forecast, so no zero rule is involved
@@ -115,7 +129,7 @@ def test_forecast_proportions_equal_top_down_forecast_proportions_on_one_parent(
 def test_childrens_base_forecasts_are_the_forecast_stage_own_leaf_forecasts(make_history):
     """The basis comes from the class's models: the same numbers the forecast stage gives bottom-up."""
     history = make_history(invented_rows(WEEKS, [("P1", "S1", 4), ("P2", "S1", 3)], seed=5, trend=True))
-    cfg = fp_config(grain="product_site_customer")
+    cfg = fp_config(grain="bottom_up")
     children = children_of(history)
     shares = compute_shares(history, children, cfg, CYCLE)
     target = reinitialize_target(shares, history, cfg, CYCLE)
@@ -175,7 +189,9 @@ def test_smoothed_equals_pandas_ewm_and_statsmodels_ses_of_each_childs_proportio
             checked += 1
     assert checked == 7
     # the smoothed shares differ from the pooled ones on this data, so the check can tell them apart
-    pooled = compute_shares(history, children_of(history), parse_config({"product_classes": {"a": {"window": 20}}}), cycle)
+    pooled = compute_shares(
+        history, children_of(history), parse_config({"product_classes": {"a": {"window": 20}}}), cycle
+    )
     assert np.abs(pooled["history_share"].to_numpy() - shares.sort_index().to_numpy()).max() > 1e-3
 
 
@@ -209,12 +225,14 @@ def test_seasonal_equals_proportion_averages_over_the_same_iso_weeks(make_histor
     cfg = parse_config(
         {
             "calendar": {"horizon": SEASON_HORIZON},
-            "product_classes": {"a": {"window": 52, "method": "seasonal", "seasonal_years": years, "seasonal_band": band}},
+            "product_classes": {
+                "a": {"window": 52, "method": "seasonal", "seasonal_years": years, "seasonal_band": band}
+            },
         }
     )
     shares = compute_shares(history, children_of(history), cfg, SEASON_CYCLE)
     target = reinitialize_target(shares, history, cfg, SEASON_CYCLE)
-    assert set(target["share_basis"]) == {"period_of_year"}
+    assert set(target["basis"]) == {"period_of_year"}
     ours = share_matrix(target)
     volume = history.pivot(index="customer", columns="period_start", values="quantity").sort_index()
     weeks = pd.Series(volume.columns)

@@ -10,8 +10,9 @@ from __future__ import annotations
 import pandas as pd
 import pytest
 
+from pipelines.engines.lifecycle_shares import find_new_customers_without_share, new_customers
+from pipelines.engines.shares import compute_shares
 from pipelines.schemas import ShareTable
-from pipelines.stages.share_tables import compute_shares, find_new_customers_without_share, new_customers
 
 CYCLE = pd.Timestamp("2026-02-02")
 AGE = {1: "2026-01-26", 2: "2026-01-19", 3: "2026-01-12", 4: "2026-01-05"}
@@ -23,7 +24,7 @@ def history_rows(volumes, product="P1", site="S1"):
 
 
 def by_customer(shares, column="share"):
-    return dict(zip(shares["customer"], shares[column]))
+    return dict(zip(shares["customer"], shares[column], strict=False))
 
 
 # Two children over a 3-week window (ages 3, 2, 1):
@@ -33,7 +34,9 @@ TWO_CHILDREN = {"C1": {3: 1, 2: 2, 1: 6}, "C2": {3: 3, 2: 2, 1: 2}}
 
 def test_pooled_share_is_child_volume_over_parent_volume(make_history, make_children, make_config):
     config = make_config({"a": {"window": 3, "method": "pooled"}})
-    shares = compute_shares(make_history(history_rows(TWO_CHILDREN)), make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")]), config, CYCLE)
+    shares = compute_shares(
+        make_history(history_rows(TWO_CHILDREN)), make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")]), config, CYCLE
+    )
     # C1: (1 + 2 + 6) / (4 + 4 + 8) = 9 / 16 = 0.5625; C2: 7 / 16 = 0.4375
     assert by_customer(shares) == pytest.approx({"C1": 0.5625, "C2": 0.4375})
     assert by_customer(shares, "child_volume") == pytest.approx({"C1": 9.0, "C2": 7.0})
@@ -43,7 +46,9 @@ def test_pooled_share_is_child_volume_over_parent_volume(make_history, make_chil
 
 def test_mean_of_ratios_share_averages_the_period_proportions(make_history, make_children, make_config):
     config = make_config({"a": {"window": 3, "method": "mean_of_ratios"}})
-    shares = compute_shares(make_history(history_rows(TWO_CHILDREN)), make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")]), config, CYCLE)
+    shares = compute_shares(
+        make_history(history_rows(TWO_CHILDREN)), make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")]), config, CYCLE
+    )
     # C1: (1/4 + 2/4 + 6/8) / 3 = (0.25 + 0.5 + 0.75) / 3 = 0.5
     # C2: (3/4 + 2/4 + 2/8) / 3 = (0.75 + 0.5 + 0.25) / 3 = 0.5   (pooled gave 0.5625 / 0.4375)
     assert by_customer(shares) == pytest.approx({"C1": 0.5, "C2": 0.5})
@@ -68,7 +73,9 @@ def test_pooled_and_mean_of_ratios_on_three_children_over_four_periods(make_hist
 def test_mean_of_ratios_leaves_out_a_period_without_parent_volume(make_history, make_children, make_config):
     config = make_config({"a": {"window": 3, "method": "mean_of_ratios"}})
     volumes = {"C1": {3: 0, 2: 1, 1: 1}, "C2": {3: 0, 2: 3, 1: 1}}
-    shares = compute_shares(make_history(history_rows(volumes)), make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")]), config, CYCLE)
+    shares = compute_shares(
+        make_history(history_rows(volumes)), make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")]), config, CYCLE
+    )
     # age 3 has parent volume 0 -> no proportion; average over ages 2 and 1 only:
     # C1: (1/4 + 1/2) / 2 = 0.375 (not (0 + 1/4 + 1/2) / 3 = 0.25)
     # C2: (3/4 + 1/2) / 2 = 0.625
@@ -78,7 +85,9 @@ def test_mean_of_ratios_leaves_out_a_period_without_parent_volume(make_history, 
 def test_parent_without_volume_falls_back_to_a_longer_window(make_history, make_children, make_config):
     config = make_config({"a": {"window": 2, "method": "pooled", "fallback_windows": [4]}})
     volumes = {"C1": {4: 2}, "C2": {3: 6}}  # nothing in ages 1-2
-    shares = compute_shares(make_history(history_rows(volumes)), make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")]), config, CYCLE)
+    shares = compute_shares(
+        make_history(history_rows(volumes)), make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")]), config, CYCLE
+    )
     # window 2 is empty; window 4 holds 2 + 6 = 8 -> C1 2/8 = 0.25, C2 6/8 = 0.75
     assert by_customer(shares) == pytest.approx({"C1": 0.25, "C2": 0.75})
     assert set(shares["fallback"]) == {"longer_window"}
@@ -109,13 +118,27 @@ def test_each_parent_shares_sum_to_one(make_history, make_children, make_config)
         {"C1": {1: 3}, "C2": {2: 3}}, product="P2"
     )
     children = make_children(
-        [("P1", "S1", "C1"), ("P1", "S1", "C2"), ("P1", "S1", "C3"), ("P2", "S1", "C1"), ("P2", "S1", "C2"), ("P2", "S1", "C3")]
+        [
+            ("P1", "S1", "C1"),
+            ("P1", "S1", "C2"),
+            ("P1", "S1", "C3"),
+            ("P2", "S1", "C1"),
+            ("P2", "S1", "C2"),
+            ("P2", "S1", "C3"),
+        ]
     )
     shares = compute_shares(make_history(rows), children, config, CYCLE)
-    got = {(p, c): s for p, c, s in zip(shares["product"], shares["customer"], shares["share"])}
+    got = {(p, c): s for p, c, s in zip(shares["product"], shares["customer"], shares["share"], strict=False)}
     # P1: 1/8, 2/8, 5/8; P2: 3/6, 3/6 and C3 without volume 0
     assert got == pytest.approx(
-        {("P1", "C1"): 0.125, ("P1", "C2"): 0.25, ("P1", "C3"): 0.625, ("P2", "C1"): 0.5, ("P2", "C2"): 0.5, ("P2", "C3"): 0.0}
+        {
+            ("P1", "C1"): 0.125,
+            ("P1", "C2"): 0.25,
+            ("P1", "C3"): 0.625,
+            ("P2", "C1"): 0.5,
+            ("P2", "C2"): 0.5,
+            ("P2", "C3"): 0.0,
+        }
     )
     sums = shares.groupby("product")["share"].sum()
     # 0.125 + 0.25 + 0.625 = 1; 0.5 + 0.5 + 0 = 1
@@ -125,7 +148,9 @@ def test_each_parent_shares_sum_to_one(make_history, make_children, make_config)
 def test_window_counts_back_from_the_cycle_date_and_ignores_older_history(make_history, make_children, make_config):
     config = make_config({"a": {"window": 2, "method": "pooled"}})
     volumes = {"C1": {3: 100, 2: 1}, "C2": {1: 3}}
-    shares = compute_shares(make_history(history_rows(volumes)), make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")]), config, CYCLE)
+    shares = compute_shares(
+        make_history(history_rows(volumes)), make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")]), config, CYCLE
+    )
     # window 2 = ages 1 and 2 (weeks 01-26, 01-19); C1's 100 at age 3 (01-12) is outside:
     # C1 1/4 = 0.25, C2 3/4 = 0.75 (with the 100: 101/104)
     assert by_customer(shares) == pytest.approx({"C1": 0.25, "C2": 0.75})
@@ -136,7 +161,9 @@ def test_window_counts_back_from_the_cycle_date_and_ignores_older_history(make_h
 def test_history_of_a_customer_that_is_not_an_active_child_is_ignored(make_history, make_children, make_config):
     config = make_config({"a": {"window": 2, "method": "pooled"}})
     volumes = {"C1": {1: 1}, "C2": {1: 3}, "C9": {1: 96}}
-    shares = compute_shares(make_history(history_rows(volumes)), make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")]), config, CYCLE)
+    shares = compute_shares(
+        make_history(history_rows(volumes)), make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")]), config, CYCLE
+    )
     # C9 is not a child: parent volume 1 + 3 = 4 -> 0.25, 0.75
     assert by_customer(shares) == pytest.approx({"C1": 0.25, "C2": 0.75})
     assert by_customer(shares, "parent_volume") == pytest.approx({"C1": 4.0, "C2": 4.0})
@@ -158,7 +185,16 @@ def lifecycle_config(make_config, method="pooled", **lifecycle):
 def lifecycle_children(rows):
     """rows: (customer, own_periods, first, last, reference_customer, scale, initial_share) on P1/S1."""
     frame = pd.DataFrame(
-        rows, columns=["customer", "own_periods", "first_active_period", "last_active_period", "reference_customer", "scale", "initial_share"]
+        rows,
+        columns=[
+            "customer",
+            "own_periods",
+            "first_active_period",
+            "last_active_period",
+            "reference_customer",
+            "scale",
+            "initial_share",
+        ],
     )
     frame.insert(0, "site", "S1")
     frame.insert(0, "product", "P1")
@@ -188,7 +224,9 @@ def test_every_lifecycle_rule_on_one_parent(make_history, make_config):
             ("C7", 4, H2, H3, None, None, None),
         ]
     )
-    shares = ShareTable.validate(compute_shares(make_history(history_rows(volumes)), children, lifecycle_config(make_config), CYCLE))
+    shares = ShareTable.validate(
+        compute_shares(make_history(history_rows(volumes)), children, lifecycle_config(make_config), CYCLE)
+    )
     # history shares over the established only, 12 + 8 + 20 + 10 = 50 (the new customers' 18 + 4 + 2 left out):
     #   C1 12/50 = 0.24, C2 8/50 = 0.16, C6 20/50 = 0.4, C7 10/50 = 0.2
     assert by_customer(shares, "history_share") == pytest.approx(
@@ -209,7 +247,10 @@ def test_every_lifecycle_rule_on_one_parent(make_history, make_config):
     row = shares.set_index("customer")
     assert row.loc["C3", "reference_customer"] == "C1" and row.loc["C3", "scale"] == 0.5
     assert row.loc["C4", "initial_share"] == 0.1 and pd.isna(row.loc["C4", "scale"])
-    assert row.loc["C3", "lifecycle_detail"] == "new customer (2 of 3 periods of own history): 0.5 x the share of reference C1, taken from it"
+    assert (
+        row.loc["C3", "lifecycle_detail"]
+        == "new customer (2 of 3 periods of own history): 0.5 x the share of reference C1, taken from it"
+    )
     assert "no share until 3 periods" in row.loc["C5", "lifecycle_detail"]
     assert row.loc["C6", "lifecycle_detail"] == "share from history; active until 2026-02-09"
     assert row.loc["C7", "lifecycle_detail"] == "share from history; active from 2026-02-09"
@@ -217,7 +258,9 @@ def test_every_lifecycle_rule_on_one_parent(make_history, make_config):
 
 def test_reference_scale_comes_from_config_when_the_span_has_none(make_history, make_config):
     volumes = {"C1": {4: 6, 3: 6, 2: 6, 1: 6}, "C2": {4: 2, 3: 2, 2: 2, 1: 2}}
-    children = lifecycle_children([("C1", 4, H1, H3, None, None, None), ("C2", 4, H1, H3, None, None, None), ("C3", 0, H1, H3, "C1", None, None)])
+    children = lifecycle_children(
+        [("C1", 4, H1, H3, None, None, None), ("C2", 4, H1, H3, None, None, None), ("C3", 0, H1, H3, "C1", None, None)]
+    )
     history = make_history(history_rows(volumes))
     default = compute_shares(history, children, lifecycle_config(make_config), CYCLE)
     # history C1 24/32 = 0.75, C2 0.25; default scale 0.5: C3 0.375, C1 0.375
@@ -241,7 +284,12 @@ def test_reference_that_is_not_established_falls_back_to_initial_share_or_waits(
     shares = compute_shares(make_history(history_rows(volumes)), children, lifecycle_config(make_config), CYCLE)
     # only C1 is established (history share 1); C3 0.2, C1 1 x 0.8 = 0.8; C2, C4 wait
     assert by_customer(shares) == pytest.approx({"C1": 0.8, "C2": 0.0, "C3": 0.2, "C4": 0.0})
-    assert by_customer(shares, "lifecycle_rule") == {"C1": "none", "C2": "awaiting_history", "C3": "initial_share", "C4": "awaiting_history"}
+    assert by_customer(shares, "lifecycle_rule") == {
+        "C1": "none",
+        "C2": "awaiting_history",
+        "C3": "initial_share",
+        "C4": "awaiting_history",
+    }
     detail = by_customer(shares, "lifecycle_detail")
     assert "reference C2 is not an established customer" in detail["C3"]
     assert "reference C9 is not an established customer" in detail["C4"]
@@ -251,7 +299,9 @@ def test_reference_that_is_not_established_falls_back_to_initial_share_or_waits(
 def test_new_customers_do_not_enter_an_even_fallback(make_history, make_config):
     config = make_config({"a": {"window": 2}}, calendar={"horizon": 3}, lifecycle={"min_history_periods": 3})
     volumes = {"C1": {4: 0, 3: 0, 2: 0, 1: 0}, "C2": {4: 0, 3: 0, 2: 0, 1: 0}, "C3": {1: 7}}
-    children = lifecycle_children([("C1", 4, H1, H3, None, None, None), ("C2", 4, H1, H3, None, None, None), ("C3", 1, H1, H3, None, None, None)])
+    children = lifecycle_children(
+        [("C1", 4, H1, H3, None, None, None), ("C2", 4, H1, H3, None, None, None), ("C3", 1, H1, H3, None, None, None)]
+    )
     shares = compute_shares(make_history(history_rows(volumes)), children, config, CYCLE)
     # the established C1, C2 have no volume in 2 weeks -> even split 1/2 each; C3's 7 does not count
     assert by_customer(shares) == pytest.approx({"C1": 0.5, "C2": 0.5, "C3": 0.0})
@@ -263,7 +313,11 @@ def test_shortage_periods_do_not_count_toward_shares(make_history, make_children
     config = make_config({"a": {"window": 3, "method": method}})
     # ages 3, 2, 1: C1 1, 2, 6 and C2 3, 2, 2 (the TWO_CHILDREN case); age 1 is a shortage period,
     # recorded on C2's row only: the whole parent period leaves the window
-    rows = [("P1", "S1", c, AGE[a], q, "own", "P1", c, a == 1 and c == "C2") for c, v in TWO_CHILDREN.items() for a, q in v.items()]
+    rows = [
+        ("P1", "S1", c, AGE[a], q, "own", "P1", c, a == 1 and c == "C2")
+        for c, v in TWO_CHILDREN.items()
+        for a, q in v.items()
+    ]
     shares = compute_shares(make_history(rows), make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")]), config, CYCLE)
     # ages 3 and 2 only: pooled C1 (1 + 2) / 8 = 0.375, C2 5 / 8 = 0.625;
     # mean of ratios C1 (1/4 + 2/4) / 2 = 0.375, C2 (3/4 + 2/4) / 2 = 0.625
@@ -277,7 +331,11 @@ def test_filled_shortage_periods_count_like_any_other_period(make_history, make_
     # already replaced the shortage values, so age 1 stays in the window:
     # pooled C1 (1 + 2 + 6) / 16 = 0.5625, C2 7 / 16 = 0.4375
     config = make_config({"a": {"window": 3, "method": "pooled"}}, cleansing={"shortages": "fill_baseline"})
-    rows = [("P1", "S1", c, AGE[a], q, "own", "P1", c, a == 1 and c == "C2") for c, v in TWO_CHILDREN.items() for a, q in v.items()]
+    rows = [
+        ("P1", "S1", c, AGE[a], q, "own", "P1", c, a == 1 and c == "C2")
+        for c, v in TWO_CHILDREN.items()
+        for a, q in v.items()
+    ]
     shares = compute_shares(make_history(rows), make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")]), config, CYCLE)
     assert by_customer(shares) == pytest.approx({"C1": 0.5625, "C2": 0.4375})
     assert by_customer(shares, "parent_volume") == pytest.approx({"C1": 16.0, "C2": 16.0})

@@ -39,10 +39,10 @@ from hierarchicalforecast.methods import MiddleOut, TopDown
 from hierarchicalforecast.utils import aggregate
 
 from pipelines.config import parse_config
+from pipelines.engines.shares import compute_shares
 from pipelines.keys import LEAF
 from pipelines.schemas import LifecycleHistory, ShareTable
 from pipelines.stages.reinitialized_target import reinitialize_target
-from pipelines.stages.share_tables import compute_shares
 from pipelines.stages.statistical_forecast import forecast_cycle
 
 N_WEEKS = 12
@@ -94,7 +94,9 @@ def _ps(product: str, site: str) -> str:
     return f"{product}|{site}"
 
 
-def reference_split(history: pd.DataFrame, parent_forecast: pd.DataFrame, top_down_method: str, single_root: bool = False) -> pd.Series:
+def reference_split(
+    history: pd.DataFrame, parent_forecast: pd.DataFrame, top_down_method: str, single_root: bool = False
+) -> pd.Series:
     """Leaf forecasts from hierarchicalforecast 1.5.3.
 
     history: LEAF + period_start + quantity (the in-sample periods to take proportions over).
@@ -103,7 +105,9 @@ def reference_split(history: pd.DataFrame, parent_forecast: pd.DataFrame, top_do
     otherwise Total / product_site / customer split with `MiddleOut` at product_site.
     Returns the reconciled leaf forecast indexed by (product, site, customer, period_start).
     """
-    df = history.assign(total="Total", ps=[_ps(p, s) for p, s in zip(history["product"], history["site"])])
+    df = history.assign(
+        total="Total", ps=[_ps(p, s) for p, s in zip(history["product"], history["site"], strict=False)]
+    )
     df = df.rename(columns={"period_start": "ds", "quantity": "y"})
     if single_root:
         spec = [["ps"], ["ps", "customer"]]
@@ -113,7 +117,9 @@ def reference_split(history: pd.DataFrame, parent_forecast: pd.DataFrame, top_do
         reconciler = MiddleOut(middle_level="total/ps", top_down_method=top_down_method)
     Y_df, S_df, tags = aggregate(df[["total", "ps", "customer", "ds", "y"]], spec)
 
-    fc = parent_forecast.assign(ps=[_ps(p, s) for p, s in zip(parent_forecast["product"], parent_forecast["site"])])
+    fc = parent_forecast.assign(
+        ps=[_ps(p, s) for p, s in zip(parent_forecast["product"], parent_forecast["site"], strict=False)]
+    )
     fc = fc.set_index(["ps", "period_start"])["forecast"]
     rows = []
     for uid in S_df["unique_id"]:
@@ -131,7 +137,9 @@ def reference_split(history: pd.DataFrame, parent_forecast: pd.DataFrame, top_do
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # 0/0 in the library's proportions for a zero parent
-        out = HierarchicalReconciliation(reconcilers=[reconciler]).reconcile(Y_hat_df=Y_hat_df, Y_df=Y_df, S_df=S_df, tags=tags)
+        out = HierarchicalReconciliation(reconcilers=[reconciler]).reconcile(
+            Y_hat_df=Y_hat_df, Y_df=Y_df, S_df=S_df, tags=tags
+        )
     col = [c for c in out.columns if c.startswith("base/")]
     assert len(col) == 1
     out = out[out["unique_id"].str.count("/") == (1 if single_root else 2)]
@@ -215,7 +223,7 @@ def test_forecast_cycle_split_equals_middle_out(method, td_method):
     ours = fc.leaf.set_index(LEAF + ["period_start"])["forecast"].sort_index()
     assert list(ours.index) == list(ref.index)
     np.testing.assert_allclose(ours.to_numpy(), ref.to_numpy(), rtol=TOL, atol=TOL)
-    assert set(fc.leaf["split_basis"]) == {"target"}
+    assert set(fc.leaf["basis"]) == {"reinitialized_target"}
 
 
 @pytest.mark.parametrize(("method", "td_method"), METHODS)
@@ -240,7 +248,9 @@ def test_single_parent_split_equals_top_down(method, td_method):
     expected = implied_shares(ref_share)
     np.testing.assert_allclose(our_shares(shares).to_numpy(), expected.to_numpy(), rtol=0, atol=TOL)
 
-    ref = reference_split(history, fc.parent[["product", "site", "period_start", "forecast"]], td_method, single_root=True)
+    ref = reference_split(
+        history, fc.parent[["product", "site", "period_start", "forecast"]], td_method, single_root=True
+    )
     ours = fc.leaf.set_index(LEAF + ["period_start"])["forecast"].sort_index()
     assert list(ours.index) == list(ref.index)
     np.testing.assert_allclose(ours.to_numpy(), ref.to_numpy(), rtol=TOL, atol=TOL)
@@ -353,12 +363,16 @@ def test_pooled_shares_renormalised_after_a_phase_out_equal_middle_out_on_the_re
     remaining = history[history["customer"] != "C1"]
     # reference: hierarchicalforecast 1.5.3 MiddleOut(..., top_down_method="proportion_averages") on the history
     # of the remaining children only
-    expected = implied_shares(reference_split(remaining, constant_parent_forecast(lambda p, s, h: 1.0), "proportion_averages"))
+    expected = implied_shares(
+        reference_split(remaining, constant_parent_forecast(lambda p, s, h: 1.0), "proportion_averages")
+    )
     got = late[late.index.get_level_values("customer") != "C1"]
     assert list(got.index) == list(expected.index)
     np.testing.assert_allclose(got.to_numpy(), expected.to_numpy(), rtol=0, atol=TOL)
     # and before the phase-out the shares are still the full-hierarchy ones, which differ
     early = target[target["period_start"] == HORIZON_STARTS[0]].set_index(LEAF)["share"].sort_index()
-    full = implied_shares(reference_split(history, constant_parent_forecast(lambda p, s, h: 1.0), "proportion_averages"))
+    full = implied_shares(
+        reference_split(history, constant_parent_forecast(lambda p, s, h: 1.0), "proportion_averages")
+    )
     np.testing.assert_allclose(early.to_numpy(), full.to_numpy(), rtol=0, atol=TOL)
     assert np.abs(early[got.index].to_numpy() - got.to_numpy()).max() > 1e-3

@@ -14,15 +14,21 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from pipelines.calendar import shift_periods
+from pipelines.engines.models import demand_classes, series_grid
 from pipelines.errors import ConfigError
-from pipelines.schemas import ForecastModels, ParentForecast, ReinitializedTarget, ShareTable, StatisticalForecast
-from pipelines.stages.statistical_forecast import demand_classes, forecast_cycle, series_grid
+from pipelines.schemas import ReinitializedTarget
+from pipelines.schemas_forecast import ForecastModels, ParentForecast, StatisticalForecast
+from pipelines.stages.statistical_forecast import forecast_cycle
 
 CYCLE = pd.Timestamp("2026-02-02")
 WEEKS = ["2026-01-05", "2026-01-12", "2026-01-19", "2026-01-26"]
 H1, H2 = pd.Timestamp("2026-02-02"), pd.Timestamp("2026-02-09")
-CROSTON = {"smooth": "croston_classic", "erratic": "croston_classic", "intermittent": "croston_classic", "lumpy": "croston_classic"}
+CROSTON = {
+    "smooth": "croston_classic",
+    "erratic": "croston_classic",
+    "intermittent": "croston_classic",
+    "lumpy": "croston_classic",
+}
 
 
 # ------------------------------------------------------------------ series_grid
@@ -53,7 +59,9 @@ def grid_of(*series):
         code += [i] * len(values)
         ordinal += list(range(100 - len(values), 100))
         qty += list(values)
-    return series_grid(np.array(code, dtype=np.int64), np.array(ordinal, dtype=np.int64), np.array(qty, dtype=float), len(series), 100)
+    return series_grid(
+        np.array(code, dtype=np.int64), np.array(ordinal, dtype=np.int64), np.array(qty, dtype=float), len(series), 100
+    )
 
 
 def test_demand_classes_one_series_per_class_and_no_demand():
@@ -118,19 +126,31 @@ def test_cv2_cutoff_0_49_below_at_and_above():
 # ------------------------------------------------------------------ forecast_cycle
 
 
-def cfg(make_config, grain="product_site"):
-    return make_config({"a": {"window": 4, "forecast_grain": grain, "models": CROSTON}}, calendar={"horizon": 2})
+def cfg(make_config, grain="top_down"):
+    return make_config({"a": {"window": 4, "strategy": grain, "models": CROSTON}}, calendar={"horizon": 2})
 
 
 def targets(rows):
-    """rows: (product, site, customer, period_start, target[, share[, zero_share_reason]]); share defaults to 0.5."""
+    """rows: (product, site, customer, period_start, target[, share[, zero_reason]]); share defaults to 0.5."""
     full = [tuple(r) + (0.5, None)[len(r) - 5 :] for r in rows]
-    frame = pd.DataFrame(full, columns=["product", "site", "customer", "period_start", "target", "share", "zero_share_reason"])
+    frame = pd.DataFrame(
+        full, columns=["product", "site", "customer", "period_start", "target", "share", "zero_reason"]
+    )
     frame["period_start"] = pd.to_datetime(frame["period_start"])
     frame["cycle_date"] = CYCLE
     frame["parent_baseline"] = 1.0
-    frame["zero_share_reason"] = frame["zero_share_reason"].astype(object)
-    columns = ["product", "site", "customer", "period_start", "cycle_date", "target", "share", "parent_baseline", "zero_share_reason"]
+    frame["zero_reason"] = frame["zero_reason"].astype(object)
+    columns = [
+        "product",
+        "site",
+        "customer",
+        "period_start",
+        "cycle_date",
+        "target",
+        "share",
+        "parent_baseline",
+        "zero_reason",
+    ]
     return ReinitializedTarget.validate(frame[columns])
 
 
@@ -141,13 +161,15 @@ def constant_history(make_history, per_customer):
 
 def leaf_values(result, column="forecast"):
     leaf = result.leaf
-    return {(c, p): v for c, p, v in zip(leaf["customer"], leaf["period_start"], leaf[column])}
+    return {(c, p): v for c, p, v in zip(leaf["customer"], leaf["period_start"], leaf[column], strict=False)}
 
 
 def test_leaf_is_parent_forecast_times_target_over_sum_of_targets(make_history, make_children, make_config):
     history = constant_history(make_history, {"C1": 4, "C2": 8})
     children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
-    tg = targets([("P1", "S1", "C1", H1, 1), ("P1", "S1", "C2", H1, 3), ("P1", "S1", "C1", H2, 2), ("P1", "S1", "C2", H2, 2)])
+    tg = targets(
+        [("P1", "S1", "C1", H1, 1), ("P1", "S1", "C2", H1, 3), ("P1", "S1", "C1", H2, 2), ("P1", "S1", "C2", H2, 2)]
+    )
     res = forecast_cycle(history, children, tg, cfg(make_config), CYCLE)
     ParentForecast.validate(res.parent)
     StatisticalForecast.validate(res.leaf)
@@ -157,7 +179,7 @@ def test_leaf_is_parent_forecast_times_target_over_sum_of_targets(make_history, 
     assert set(res.parent["model"]) == {"croston_classic"}
     # week 1: 12 x 1/4 = 3, 12 x 3/4 = 9; week 2: 12 x 2/4 = 6 each
     assert leaf_values(res) == pytest.approx({("C1", H1): 3.0, ("C2", H1): 9.0, ("C1", H2): 6.0, ("C2", H2): 6.0})
-    assert set(res.leaf["split_basis"]) == {"target"}
+    assert set(res.leaf["basis"]) == {"reinitialized_target"}
     assert res.leaf["parent_forecast"].tolist() == pytest.approx([12.0] * 4)
 
 
@@ -173,7 +195,12 @@ def test_intermittent_parent_forecast_by_hand_is_split_by_target(make_history, m
     assert res.parent["forecast"].tolist() == pytest.approx([4.2 / 1.1] * 2)
     # split 1 : 4 -> C1 3.8181 / 5 = 0.7636, C2 3.8181 x 4 / 5 = 3.0545
     assert leaf_values(res) == pytest.approx(
-        {("C1", H1): 4.2 / 1.1 / 5, ("C2", H1): 4.2 / 1.1 * 4 / 5, ("C1", H2): 4.2 / 1.1 / 5, ("C2", H2): 4.2 / 1.1 * 4 / 5}
+        {
+            ("C1", H1): 4.2 / 1.1 / 5,
+            ("C2", H1): 4.2 / 1.1 * 4 / 5,
+            ("C1", H2): 4.2 / 1.1 / 5,
+            ("C2", H2): 4.2 / 1.1 * 4 / 5,
+        }
     )
 
 
@@ -184,7 +211,7 @@ def test_parent_whose_targets_are_all_zero_is_split_by_shares(make_history, make
     res = forecast_cycle(history, children, tg, cfg(make_config), CYCLE)
     # targets sum to 0 -> basis is the period's share: 12 x 0.25 = 3, 12 x 0.75 = 9
     assert leaf_values(res) == pytest.approx({("C1", H1): 3.0, ("C2", H1): 9.0, ("C1", H2): 3.0, ("C2", H2): 9.0})
-    assert set(res.leaf["split_basis"]) == {"share"}
+    assert set(res.leaf["basis"]) == {"period_share"}
 
 
 def test_parent_without_demand_is_forecast_zero(make_history, make_children, make_config):
@@ -203,15 +230,15 @@ def test_product_site_customer_parent_is_the_sum_of_its_leaf_forecasts(make_hist
     # targets 3 : 1 would give 9 and 3; a bottom-up class ignores them
     tg = targets([("P1", "S1", c, h, t) for h in (H1, H2) for c, t in (("C1", 3), ("C2", 1))])
     res = forecast_cycle(
-        history, children, tg, cfg(make_config, "product_site_customer"), CYCLE
+        history, children, tg, cfg(make_config, "bottom_up"), CYCLE
     )
     # each child forecast on its own: constant 4 -> 4, constant 8 -> 8
     assert leaf_values(res) == pytest.approx({("C1", H1): 4.0, ("C2", H1): 8.0, ("C1", H2): 4.0, ("C2", H2): 8.0})
-    assert set(res.leaf["split_basis"]) == {"own_forecast"}
+    assert set(res.leaf["basis"]) == {"leaf_forecast"}
     # parent = 4 + 8 = 12
     assert res.parent["forecast"].tolist() == pytest.approx([12.0, 12.0])
     assert set(res.parent["model"]) == {"bottom_up"}
-    assert set(res.parent["forecast_grain"]) == {"product_site_customer"}
+    assert set(res.parent["model_grain"]) == {"leaf"}
 
 
 def test_new_customer_history_is_part_of_the_parent_series(make_history, make_children, make_config):
@@ -225,7 +252,9 @@ def test_new_customer_history_is_part_of_the_parent_series(make_history, make_ch
     assert res.parent["forecast"].tolist() == pytest.approx([7.14, 7.14])
 
 
-def test_parent_period_whose_shares_are_all_zero_is_forecast_zero_with_its_reason(make_history, make_children, make_config):
+def test_parent_period_whose_shares_are_all_zero_is_forecast_zero_with_its_reason(
+    make_history, make_children, make_config
+):
     history = constant_history(make_history, {"C1": 4, "C2": 8})
     children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
     # H1 splits 1 : 3; in H2 the product has ended, every share 0 with reason product_not_active
@@ -247,7 +276,7 @@ def _series(nonzero_sizes, length):
     values = [0.0] * length
     gaps = length - len(nonzero_sizes)
     slots = [0] + sorted(set(range(1, length)) - set(range(2, 2 + 3 * gaps, 3)))[: len(nonzero_sizes) - 1]
-    for slot, size in zip(slots, nonzero_sizes):
+    for slot, size in zip(slots, nonzero_sizes, strict=False):
         values[slot] = float(size)
     return values
 
@@ -275,7 +304,7 @@ def test_just_either_side_of_the_adi_cut_off():
 
 
 def auto_cfg(make_config, models=CROSTON):
-    return make_config({"a": {"window": 4, "forecast_grain": "auto", "models": models}}, calendar={"horizon": 2})
+    return make_config({"a": {"window": 4, "strategy": "auto", "models": models}}, calendar={"horizon": 2})
 
 
 def test_auto_class_follows_forecast_proportions_chosen_by_the_backtest(make_history, make_children, make_config):
@@ -287,8 +316,8 @@ def test_auto_class_follows_forecast_proportions_chosen_by_the_backtest(make_his
                          chosen={"a": "forecast_proportions"})
     # parent 12 (Croston of a constant) x 4/12 and x 8/12
     assert leaf_values(res) == pytest.approx({("C1", H1): 4.0, ("C2", H1): 8.0, ("C1", H2): 4.0, ("C2", H2): 8.0})
-    assert set(res.leaf["split_basis"]) == {"forecast_proportions"}
-    assert set(res.parent["strategy"]) == {"forecast_proportions"} and set(res.parent["forecast_grain"]) == {"both"}
+    assert set(res.leaf["basis"]) == {"children_forecast"}
+    assert set(res.parent["strategy"]) == {"forecast_proportions"} and set(res.parent["model_grain"]) == {"both"}
     ParentForecast.validate(res.parent)
     StatisticalForecast.validate(res.leaf)
 
@@ -296,14 +325,17 @@ def test_auto_class_follows_forecast_proportions_chosen_by_the_backtest(make_his
 def test_auto_class_reconciled_by_mint_stays_coherent(make_history, make_children, make_config):
     # C1: 4, 6, 4, 6; C2: 8 every week -> parent 12, 14, 12, 14 (smooth). Croston's SES with one alpha is
     # linear, so these base forecasts are already coherent; what must hold is that the result stays so
-    history = make_history([("P1", "S1", "C1", w, q) for w, q in zip(WEEKS, [4, 6, 4, 6])] + [("P1", "S1", "C2", w, 8) for w in WEEKS])
+    history = make_history(
+        [("P1", "S1", "C1", w, q) for w, q in zip(WEEKS, [4, 6, 4, 6], strict=False)]
+        + [("P1", "S1", "C2", w, 8) for w in WEEKS]
+    )
     children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
     tg = targets([("P1", "S1", c, h, 1.0) for h in (H1, H2) for c in ("C1", "C2")])
     res = forecast_cycle(history, children, tg, auto_cfg(make_config), CYCLE,
                          chosen={"a": "mint_shrink"})
     leaf = res.leaf.groupby("period_start")["forecast"].sum().to_numpy()
     assert leaf == pytest.approx(res.parent["forecast"].to_numpy(), rel=1e-12)
-    assert set(res.leaf["split_basis"]) == {"reconciled"}
+    assert set(res.leaf["basis"]) == {"reconciled"}
     assert (res.leaf["forecast"] >= 0).all()
 
 
@@ -313,7 +345,7 @@ def test_auto_class_without_a_backtest_choice_is_a_named_config_error(make_histo
     tg = targets([("P1", "S1", "C1", h, 1.0) for h in (H1, H2)])
     with pytest.raises(ConfigError) as err:
         forecast_cycle(history, children, tg, auto_cfg(make_config), CYCLE)
-    assert "product_classes.a.forecast_grain" in str(err.value) and "backtest_accuracy" in str(err.value)
+    assert "product_classes.a.strategy" in str(err.value) and "strategy_choice" in str(err.value)
 
 
 def test_forecast_models_table_names_model_and_croston_state(make_history, make_children, make_config):
@@ -324,13 +356,18 @@ def test_forecast_models_table_names_model_and_croston_state(make_history, make_
     models = ForecastModels.validate(res.models)
     row = models.iloc[0]
     # one parent series (top-down): sizes 4, 6 -> 4.2; intervals 1, 2 -> 1.1 (see the intermittent test above)
-    assert (row["grain"], row["customer"], row["model"], row["demand_class"]) == ("parent", "", "croston_classic", "intermittent")
+    assert (row["grain"], row["customer"], row["model"], row["demand_class"]) == (
+        "parent",
+        "",
+        "croston_classic",
+        "intermittent",
+    )
     assert row["parameters"] == "alpha=0.1 size=4.2 interval=1.1"
     assert len(models) == 1
 
 
 def test_fitted_values_are_kept_for_the_classes_mint_reconciles(make_history, make_children, make_config):
-    from pipelines.schemas import ForecastFittedValues
+    from pipelines.schemas_forecast import ForecastFittedValues
 
     history = constant_history(make_history, {"C1": 4, "C2": 8})
     children = make_children([("P1", "S1", "C1"), ("P1", "S1", "C2")])
@@ -338,7 +375,11 @@ def test_fitted_values_are_kept_for_the_classes_mint_reconciles(make_history, ma
     res = forecast_cycle(history, children, tg, auto_cfg(make_config), CYCLE, chosen={"a": "wls_var"})
     fitted = ForecastFittedValues.validate(res.fitted)
     # parent and two leaves, 4 weeks each; statsforecast's Croston has no fitted value for the first week -> 3 each
-    assert sorted(set(zip(fitted["grain"], fitted["customer"]))) == [("leaf", "C1"), ("leaf", "C2"), ("parent", "")]
+    assert sorted(set(zip(fitted["grain"], fitted["customer"], strict=False))) == [
+        ("leaf", "C1"),
+        ("leaf", "C2"),
+        ("parent", ""),
+    ]
     leaf_c2 = fitted[fitted["customer"] == "C2"]
     assert leaf_c2["fitted"].tolist() == pytest.approx([8.0, 8.0, 8.0])
     assert leaf_c2["period_start"].tolist() == [pd.Timestamp(w) for w in WEEKS[1:]]
@@ -352,7 +393,7 @@ def test_leaf_grain_child_is_forecast_zero_outside_its_active_periods(make_histo
         first_active_period=[H1, H2], last_active_period=[H1, H2]  # C1 ends after H1, C2 starts in H2
     )
     tg = targets([("P1", "S1", c, h, 1.0) for h in (H1, H2) for c in ("C1", "C2")])
-    res = forecast_cycle(history, children, tg, cfg(make_config, "product_site_customer"), CYCLE)
+    res = forecast_cycle(history, children, tg, cfg(make_config, "bottom_up"), CYCLE)
     # own forecasts 4 and 8, kept only where active: C1 H1 4, C2 H2 8; the parent is their sum
     assert leaf_values(res) == pytest.approx({("C1", H1): 4.0, ("C2", H1): 0.0, ("C1", H2): 0.0, ("C2", H2): 8.0})
     assert res.parent["forecast"].tolist() == pytest.approx([4.0, 8.0])

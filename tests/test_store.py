@@ -9,11 +9,21 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from pipelines.resources import PARTITION_CLASS, PARTITION_CYCLE, PARTITION_ROW, StoreError, read_table, stored_cycles, write_partition
+from pipelines.resources import (
+    PARTITION_CLASS,
+    PARTITION_CYCLE,
+    PARTITION_ROW,
+    StoreError,
+    read_table,
+    stored_cycles,
+    write_partition,
+)
 
 
 def _frame(cycle, product_class, values, text=None):
-    frame = pd.DataFrame({"value": values, "label": text if text is not None else [f"r{i}" for i in range(len(values))]})
+    frame = pd.DataFrame(
+        {"value": values, "label": text if text is not None else [f"r{i}" for i in range(len(values))]}
+    )
     frame["label"] = frame["label"].astype("string")
     frame.insert(0, PARTITION_ROW, np.arange(len(frame), dtype=np.int64))
     frame.insert(0, PARTITION_CLASS, pd.array([product_class] * len(frame), dtype="string"))
@@ -34,8 +44,12 @@ def test_rewriting_a_partition_replaces_exactly_its_rows(tmp_path):
     # rerun of 2026-11-23|a with other values: its two rows are replaced, nothing duplicated
     _write(store, "2026-11-23", "a", [7.0, 8.0])
     with duckdb.connect(str(store), read_only=True) as con:
-        counts = dict(con.execute("SELECT partition_cycle || '|' || partition_class, count(*) FROM t GROUP BY 1").fetchall())
-        written = con.execute("SELECT asset, partition_cycle, partition_class, rows FROM partitions_written ORDER BY 2, 3").fetchall()
+        counts = dict(
+            con.execute("SELECT partition_cycle || '|' || partition_class, count(*) FROM t GROUP BY 1").fetchall()
+        )
+        written = con.execute(
+            "SELECT asset, partition_cycle, partition_class, rows FROM partitions_written ORDER BY 2, 3"
+        ).fetchall()
     assert counts == {"2026-11-23|a": 2, "2026-11-23|b": 1, "2026-11-30|a": 3}
     assert written == [("t", "2026-11-23", "a", 2), ("t", "2026-11-23", "b", 1), ("t", "2026-11-30", "a", 3)]
     got = read_table(store, "t", cycle="2026-11-23", product_class="a")

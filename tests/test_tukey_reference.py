@@ -27,8 +27,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 
-from pipelines.config import OutlierConfig
-from pipelines.stages.cleaned_history import tukey, tukey_fences, tukey_limits
+from pipelines.config_sections import OutlierConfig
+from pipelines.engines.outliers import tukey, tukey_fences, tukey_limits
 
 
 def pandas_quartiles(x: np.ndarray, window: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

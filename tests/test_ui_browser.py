@@ -1,10 +1,11 @@
 """A failed blocking check as whoever watches checks sees it: the Dagster UI in a real browser.
 
 One span of the demo's customer spans is broken on purpose (it ends before it
-starts), the asset `customer_spans` is materialized into a temporary Dagster
-instance, and the Dagster web server is started over that instance with the
-project's own definitions. Headless Chromium (Debian's package, driven by
-Playwright) then opens the asset's checks and must find the schema check
+starts), the asset `customer_spans` (after `products`, whose class map it
+reads) is materialized into a temporary Dagster instance, and the Dagster
+web server is started over that instance with the project's own
+definitions. Headless Chromium (Debian's package, driven by Playwright) then
+opens the asset's checks and must find the schema check
 failed, with its description and the broken row in its failing-rows sample.
 The input is then repaired and materialized again: the check's history, read
 through the web server's GraphQL API and in the UI, lists the failed
@@ -34,9 +35,9 @@ import pytest
 import yaml
 
 from assets.common import schema_check_name
-from assets.master_data import CUSTOMER_SPANS
-from pipelines.definitions import build_definitions
+from assets.master_data import CUSTOMER_SPANS, PRODUCT_CLASS_MAP, PRODUCTS
 from pipelines.config import load_config
+from pipelines.definitions import build_definitions
 from pipelines.partitions import current_cycle
 from pipelines.runner import run_partitions
 
@@ -60,13 +61,18 @@ REQUIRE_BROWSER = "APPORTION_REQUIRE_BROWSER"
 SERVER_START_TIMEOUT_S = 120
 UI_TIMEOUT_MS = 30_000
 CHECK = schema_check_name(CUSTOMER_SPANS)
+# customer_spans keeps its class's rows by the product master's class map, so products come first
+SELECTION = [PRODUCTS, PRODUCT_CLASS_MAP, CUSTOMER_SPANS]
 
 
 def _sync_playwright():
     """Playwright's sync API over /usr/bin/chromium; skip (or fail when the browser is required) without them."""
     missing = None
     if not CHROMIUM.exists():
-        missing = f"{CHROMIUM} is missing: install Debian's chromium with `apt-get install -y chromium` (or `make browser-deps`)"
+        missing = (
+            f"{CHROMIUM} is missing: install Debian's chromium with `apt-get install -y chromium` (or "
+            "`make browser-deps`)"
+        )
     else:
         try:
             from playwright.sync_api import sync_playwright
@@ -151,7 +157,11 @@ def _wait_until_loaded(process: subprocess.Popen, base_url: str) -> str | None:
         except (urllib.error.URLError, ConnectionError, TimeoutError):
             entries = None
         if entries and all(e["loadStatus"] == "LOADED" for e in entries):
-            errors = [e["locationOrLoadError"] for e in entries if e["locationOrLoadError"]["__typename"] != "RepositoryLocation"]
+            errors = [
+                e["locationOrLoadError"]
+                for e in entries
+                if e["locationOrLoadError"]["__typename"] != "RepositoryLocation"
+            ]
             return f"load error {errors}" if errors else None
         status = f"locations {entries}" if entries is not None else status
         time.sleep(1)
@@ -239,7 +249,7 @@ def test_ui_shows_the_failed_schema_check_with_its_rows_then_its_history(tmp_pat
     spans.loc[3] = broken
     spans.to_csv(spans_file, index=False)
 
-    first = materialize_into_instance(str(config_path), [CUSTOMER_SPANS])
+    first = materialize_into_instance(str(config_path), SELECTION)
     evaluations = {e.check_name: e for e in first.get_asset_check_evaluations()}
     assert not evaluations[CHECK].passed, "the broken span did not fail the schema check in-process"
 
@@ -262,7 +272,7 @@ def test_ui_shows_the_failed_schema_check_with_its_rows_then_its_history(tmp_pat
         # repair the input; the next evaluation passes (run outside the browser session: Dagster
         # must not start its run inside Playwright's event loop)
         spans_file.write_bytes(good_spans)
-        second = materialize_into_instance(str(config_path), [CUSTOMER_SPANS])
+        second = materialize_into_instance(str(config_path), SELECTION)
         assert second.success
 
         history = _graphql(base_url, EXECUTIONS, {"check": CHECK})["assetCheckExecutions"]
@@ -278,7 +288,9 @@ def test_ui_shows_the_failed_schema_check_with_its_rows_then_its_history(tmp_pat
             result = page.get_by_text("Evaluation result", exact=True).locator("xpath=..")
             expect(result).to_contain_text("Passed", timeout=UI_TIMEOUT_MS)
             page.get_by_role("tab", name="Execution history", exact=True).click()
-            rows = page.get_by_role("row").filter(has_text="Failed").or_(page.get_by_role("row").filter(has_text="Passed"))
+            rows = (
+                page.get_by_role("row").filter(has_text="Failed").or_(page.get_by_role("row").filter(has_text="Passed"))
+            )
             expect(rows).to_have_count(2, timeout=UI_TIMEOUT_MS)
             # newest first: the passed evaluation above the failed one
             assert "Passed" in rows.nth(0).inner_text() and "Failed" in rows.nth(1).inner_text()

@@ -32,10 +32,11 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import active_mask, ordinal_to_start, period_ordinal, span_bounds
-from pipelines.config import PlanningConfig
+from pipelines.calendar import active_mask, period_ordinal, span_bounds
+from pipelines.config import CalendarConfig, PlanningConfig
 from pipelines.errors import LifecycleError
-from pipelines.keys import LEAF, factorize, lookup
+from pipelines.keys import LEAF, lookup
+from pipelines.results import Log, StageResult, quiet
 
 HISTORY_COLUMNS = LEAF + ["period_start", "quantity", "origin", "source_product", "source_customer", "shortage"]
 AUDIT_COLUMNS = LEAF + ["rule", "periods", "quantity", "detail"]
@@ -72,61 +73,6 @@ def resolve_successors(products: pd.DataFrame) -> pd.Series:
         f"products: the successor chain loops through {looping}; each chain must end at a "
         f"product without successor."
     )
-
-
-def active_children(
-    spans: pd.DataFrame, products: pd.DataFrame, history: pd.DataFrame, config: PlanningConfig, cycle_date: pd.Timestamp
-) -> pd.DataFrame:
-    """The children that can receive a share: customer spans active in any period of the horizon.
-
-    A child is active in horizon period h when h lies inside its customer span
-    and inside its product's span. Spans whose intersection with the horizon is
-    empty (ended before the cycle date, starting after the horizon, on a product
-    retired before the cycle or launched after the horizon) are not children.
-
-    history: lifecycle history, to count each child's own distinct periods
-    (a period with an own row and a mapped successor row is one period).
-    Columns: leaf keys, product_class, first_active_period, last_active_period,
-    own_periods, reference_customer, scale, initial_share.
-    """
-    period = config.calendar.period
-    cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
-    last_ord = cycle_ord + config.calendar.horizon - 1
-    s_from, s_to = span_bounds(spans, period)
-    p_from, p_to = span_bounds(products, period)
-    ppos = spans["product"].map(pd.Series(np.arange(len(products)), index=products["product"].to_numpy()))
-    known = ppos.notna().to_numpy()
-    ppos = ppos.fillna(0).astype(np.int64).to_numpy()
-    # first and last active ordinal: span, product span and horizon intersected (NaN = open)
-    first = np.fmax(np.fmax(s_from, np.where(known, p_from[ppos], np.nan)), cycle_ord)
-    last = np.fmin(np.fmin(s_to, np.where(known, p_to[ppos], np.nan)), last_ord)
-    ok = known & (first <= last)
-    out = spans.loc[ok, LEAF].reset_index(drop=True)
-    out["product_class"] = out["product"].map(products.set_index("product")["product_class"]).to_numpy()
-    out["first_active_period"] = ordinal_to_start(first[ok].astype(np.int64), period)
-    out["last_active_period"] = ordinal_to_start(last[ok].astype(np.int64), period)
-    out["own_periods"] = own_periods(history, out, period)
-    for column in ("reference_customer", "scale", "initial_share"):
-        values = spans[column] if column in spans.columns else pd.Series(np.nan, index=spans.index)
-        out[column] = values[ok].to_numpy()
-    out["scale"] = pd.to_numeric(out["scale"]).astype(float)
-    out["initial_share"] = pd.to_numeric(out["initial_share"]).astype(float)
-    return out
-
-
-def own_periods(history: pd.DataFrame, children: pd.DataFrame, period: str) -> np.ndarray:
-    """Distinct periods of history of each child (0 without any), counted on integer codes."""
-    if history.empty:
-        return np.zeros(len(children), dtype=np.int64)
-    code, leaves = factorize(history, LEAF)
-    ords = period_ordinal(history["period_start"], period)
-    lo = int(ords.min())
-    width = int(ords.max()) - lo + 1
-    seen = np.zeros(len(leaves) * width, dtype=bool)  # one cell per (leaf, period)
-    seen[code * width + (ords - lo)] = True
-    count = seen.reshape(len(leaves), width).sum(axis=1)
-    pos = lookup(children, LEAF, leaves)
-    return np.where(pos >= 0, count[np.clip(pos, 0, None)], 0).astype(np.int64)
 
 
 def _stack(frames: list[pd.DataFrame], columns: list[str] | None = None) -> pd.DataFrame:
@@ -207,3 +153,42 @@ def apply_lifecycle(
     audit = _stack(audits, AUDIT_COLUMNS)
     audit = audit.astype({"periods": np.int64, "quantity": float})
     return LifecycleResult(history=h.reset_index(drop=True), audit=audit.reset_index(drop=True))
+
+
+@dataclass(frozen=True)
+class LifecycleSettings:
+    """What the lifecycle stage reads: the calendar (period and horizon)."""
+
+    calendar: CalendarConfig
+
+    @classmethod
+    def of(cls, config: PlanningConfig) -> LifecycleSettings:
+        return cls(calendar=config.calendar)
+
+
+def run(
+    cleaned_history: pd.DataFrame,
+    products: pd.DataFrame,
+    customer_spans: pd.DataFrame,
+    cycle_calendar: pd.DataFrame,
+    settings: LifecycleSettings,
+    log: Log = quiet,
+) -> StageResult:
+    """lifecycle_history and lifecycle_audit, with what each rule moved."""
+    cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
+    result = apply_lifecycle(cleaned_history, products, customer_spans, settings, cycle_date)
+    history, audit = result.history, result.audit
+    by_rule = audit.groupby("rule").agg(
+        leaves=("customer", "size"), periods=("periods", "sum"), quantity=("quantity", "sum")
+    )
+    by_origin = history.groupby("origin").agg(rows=("quantity", "size"), quantity=("quantity", "sum"))
+    return StageResult(
+        outputs={"lifecycle_history": history, "lifecycle_audit": audit},
+        metadata={
+            "lifecycle_history": {
+                "by_origin": by_origin.reset_index(),
+                "shortage_rows": int(history["shortage"].sum()),
+            },
+            "lifecycle_audit": {"by_rule": by_rule.reset_index()},
+        },
+    )

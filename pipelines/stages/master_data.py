@@ -1,25 +1,34 @@
-"""Master data: products, customer spans, planner adjustments, pins and supply shortages.
+"""Stages `products` (+ `product_class_map`), `customer_spans`, `adjustments`, `pins`, `shortages`: master data
+and planner input.
 
 Loaded as text with blanks as missing, indexed by each line's `source_row`
-(its 1-based data row), so a failing row is named by file and row. The
-stage's pandera model parses the dates and numbers, so a bad cell shows up as
-a failing row of the schema check instead of being guessed; a date-time with a
-UTC offset keeps the date and time as written. A malformed line stops the read
-with an error naming it (`pipelines.stages.inputs.read_text_table`).
-`unknown_references` lists the rows that name a product, customer or measure
-the master data or config do not hold.
+(its 1-based data row), so a failing row is named by file and row (the run
+names the file in `StageResult.sources`). The stage's pandera model parses the
+dates and numbers, so a bad cell shows up as a failing row of the schema check
+instead of being guessed; a date-time with a UTC offset keeps the date and time
+as written. A malformed line stops the read with an error naming it
+(`pipelines.engines.inputs.read_text_table`). `unknown_references` lists the
+rows that name a product, customer or measure the master data or config do not
+hold: the check `references_known` of each input but products.
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
+import pandera.errors
 
-from pipelines.config import InputsConfig
-from pipelines.stages.inputs import InputFile, blanks_to_none, find_files, read_text_table, sha256
-from pipelines.stages.plausible import normalize_dates
+from pipelines.checks import REFERENCES_KNOWN
+from pipelines.config_inputs import InputsConfig
+from pipelines.engines.class_rows import InputSettings, class_map, class_rows, input_files
+from pipelines.engines.inputs import InputFile, blanks_to_none, find_files, read_text_table, sha256
+from pipelines.engines.plausible import normalize_dates
+from pipelines.errors import ConfigError
+from pipelines.results import CheckRows, Log, StageResult, quiet
+from pipelines.schemas import Products
 
 PRODUCT_COLUMNS = ("product", "product_class", "active_from", "active_to", "successor")
 SPAN_COLUMNS = ("product", "site", "customer", "active_from", "active_to", "reference_customer")
@@ -56,7 +65,8 @@ def load_products(folder: Path, inputs: InputsConfig | None = None) -> tuple[pd.
 
 
 def load_customer_spans(folder: Path, inputs: InputsConfig | None = None) -> tuple[pd.DataFrame, list[InputFile]]:
-    return _load(folder, "customer_spans", SPAN_COLUMNS, optional=SPAN_OPTIONAL_COLUMNS, inputs=inputs, dates=("active_from", "active_to"))
+    dates = ("active_from", "active_to")
+    return _load(folder, "customer_spans", SPAN_COLUMNS, optional=SPAN_OPTIONAL_COLUMNS, inputs=inputs, dates=dates)
 
 
 def load_adjustments(folder: Path, inputs: InputsConfig | None = None) -> tuple[pd.DataFrame, list[InputFile]]:
@@ -69,29 +79,92 @@ def load_shortages(folder: Path, inputs: InputsConfig | None = None) -> tuple[pd
     return _load(folder, "shortages", SHORTAGE_COLUMNS, required=False, inputs=inputs, dates=("period_start",))
 
 
-def class_rows(frame: pd.DataFrame, classes: pd.Series, product_class: str, keep_index: bool = False) -> pd.DataFrame:
-    """The rows of `frame` whose product is in `product_class` (`classes`: product -> class of the master file).
-
-    A row whose product is not in the master belongs to no class and is kept in
-    every class, so the stage's schema or rule checks report it instead of it
-    vanishing. `keep_index` keeps the frame's index (the file rows of master
-    data), so a failing row can still be named.
-    """
-    cls = frame["product"].map(classes)
-    rows = frame.loc[(cls == product_class) | cls.isna()]
-    return rows if keep_index else rows.reset_index(drop=True)
-
-
 def load_pins(folder: Path, inputs: InputsConfig | None = None) -> tuple[pd.DataFrame, list[InputFile]]:
     """Optional: leaf values a planner fixed, per measure and period; an absent file gives an empty table."""
     return _load(folder, "pins", PIN_COLUMNS, required=False, inputs=inputs, dates=("period_start",))
 
 
+# ----------------------------------------------------------------- stage runs
+def run_products(settings: InputSettings, log: Log = quiet) -> StageResult:
+    """The partition's class's rows of the product master, and the whole master's product -> class map.
+
+    A master that fails its schema is passed on whole, so the schema check
+    lists its rows; otherwise a class the config does not know stops the run.
+    """
+    frame, files = load_products(settings.folder, settings.inputs)
+    master = frame[frame["product"].notna()].drop_duplicates("product")[["product", "product_class"]]
+    try:
+        Products.validate(frame, lazy=True)
+    except pandera.errors.SchemaErrors:
+        mine = frame
+    else:
+        unknown = sorted(set(frame["product_class"]) - set(settings.known_classes))
+        if unknown:
+            raise ConfigError(
+                f"{settings.source}: product_classes does not define {unknown}, used in {files[0].path}; "
+                f"valid classes are {sorted(settings.known_classes)}. Add a section for each "
+                f"under product_classes, or correct the product_class column."
+            )
+        mine = frame[frame["product_class"] == settings.product_class]
+    figures = {"files": input_files(files), "product_class": settings.product_class}
+    return StageResult(
+        outputs={"products": mine, "product_class_map": master.reset_index(drop=True)},
+        metadata={"products": figures, "product_class_map": {"classes": int(master["product_class"].nunique())}},
+        sources={"products": files[0].path.name},
+    )
+
+
+def class_input_run(name: str, loader: Callable, figures: Callable[[pd.DataFrame], dict] = lambda frame: {}):
+    """The run of an input asset over one file: the rows of the partition's class (`class_rows`), and the
+    check `references_known` over them (`unknown_references`; products from `product_class_map`, spans from
+    the whole customer spans file)."""
+
+    def run(product_class_map: pd.DataFrame, settings: InputSettings, log: Log = quiet) -> StageResult:
+        frame, files = loader(settings.folder, settings.inputs)
+        mine = class_rows(frame, class_map(product_class_map), settings.product_class, keep_index=True)
+        spans = frame if name == "customer_spans" else load_customer_spans(settings.folder, settings.inputs)[0]
+        file = files[0].path.name if files else None
+        failing = unknown_references(name, mine, product_class_map, spans, settings.measures, file=file or "")
+        advice = "; ".join(sorted(set(failing["what_to_do"]))) if len(failing) else "nothing"
+        return StageResult(
+            outputs={name: mine},
+            metadata={name: {"files": input_files(files), **figures(mine)}},
+            checks={REFERENCES_KNOWN: CheckRows(failing, {"what_to_do": advice})},
+            sources={name: file},
+        )
+
+    run.__name__ = f"run_{name}"
+    return run
+
+
+run_customer_spans = class_input_run(
+    "customer_spans",
+    load_customer_spans,
+    lambda f: {
+        "with_end": int(pd.notna(f["active_to"]).sum()),
+        "with_reference": int(pd.notna(f["reference_customer"]).sum()),
+    },
+)
+run_adjustments = class_input_run("adjustments", load_adjustments)
+run_pins = class_input_run(
+    "pins", load_pins, lambda f: {"pins_by_measure": f.groupby("measure").size().rename("pins").reset_index()}
+)
+run_shortages = class_input_run(
+    "shortages", load_shortages, lambda f: {"parents": int(f.drop_duplicates(["product", "site"]).shape[0])}
+)
+
+
+# ----------------------------------------------------------------- references
 REFERENCE_COLUMNS = ["file", "row", "product", "site", "customer", "column", "value", "problem", "what_to_do"]
 
 
 def unknown_references(
-    kind: str, frame: pd.DataFrame, products: pd.DataFrame, spans: pd.DataFrame, measures: tuple[str, ...] = (), file: str = ""
+    kind: str,
+    frame: pd.DataFrame,
+    products: pd.DataFrame,
+    spans: pd.DataFrame,
+    measures: tuple[str, ...] = (),
+    file: str = "",
 ) -> pd.DataFrame:
     """Rows of the input `kind` that name what the master data do not hold, one row per problem.
 
@@ -161,7 +234,8 @@ def unknown_references(
             "correct product and site, or add the customer spans of this product and site",
         )
     if kind == "pins":
-        leaf = pd.MultiIndex.from_arrays([product, frame["site"].fillna("").astype(str), frame["customer"].fillna("").astype(str)])
+        site, customer = frame["site"].fillna("").astype(str), frame["customer"].fillna("").astype(str)
+        leaf = pd.MultiIndex.from_arrays([product, site, customer])
         add(
             (product != "").to_numpy() & ~leaf.isin(span_leaves),
             "customer",

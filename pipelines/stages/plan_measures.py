@@ -23,7 +23,7 @@ methods to expedite product line forecasting", J. of Forecasting 9(3)):
     values are the parent forecast, parents whose class follows another
     strategy than `top_down` (bottom-up, forecast proportions, MinT, WLS) were
     not split by the target; their basis is the forecast's own leaf values
-    (`basis = forecast_leaf`), so that measure equals `statistical_forecast`
+    (`basis = leaf_forecast`), so that measure equals `statistical_forecast`
     everywhere, to floating point.
   - `share_table:<name>`: the period shares of the share basis <name> (config
     `share_bases`: its own window, method and fallback windows), computed by
@@ -62,7 +62,7 @@ leaf that is not active in its period is not applied; it is listed in
 
 **Integer split** (optional `integer: {pack_size: p}`, even and pro_rata only):
 R is rounded to the nearest multiple of p (a half pack up) and split in whole
-packs by the largest remainder method (`pipelines.stages.integer_split`).
+packs by the largest remainder method (`pipelines.engines.integer_split`).
 Pins are kept as given, so the children sum to sum of pins + p x floor(R / p +
 1/2): the parent rounded to the pack whenever the pins are whole packs.
 
@@ -78,53 +78,84 @@ loop is over the handful of measures).
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from pipelines.calendar import horizon_starts, period_ordinal
-from pipelines.config import MeasureConfig, PlanningConfig
-from pipelines.errors import ConfigError, PinError
+from pipelines.checks import MEASURES_SUM_TO_PARENT, PINS_KEPT, PINS_WITHIN_PARENT
+from pipelines.config import CalendarConfig, PlanningConfig, check_windows_fit
+from pipelines.config_sections import MeasureConfig, PinsConfig, ShareBasisConfig
+from pipelines.engines.children import active_children
+from pipelines.engines.measure_inputs import (
+    basis_of,
+    cells_of,
+    check_measures_known,
+    combine_cells,
+    leaf_matrix,
+    share_basis_tables,
+)
+from pipelines.engines.measure_split import (
+    OVERFLOW,
+    OVERFLOW_COLUMNS,
+    PARENT_COLUMNS,
+    PIN_KEY,
+    _stack,
+    find_pins_not_kept,
+    find_sum_violations,
+    orphan_parents,
+    overflow_message,
+    overflow_piece,
+    parent_piece,
+    plan_piece,
+    plan_totals,
+    split_cells,
+)
+from pipelines.engines.share_settings import ShareSettings
+from pipelines.errors import PinError
 from pipelines.keys import LEAF, PARENT, factorize, lookup
-from pipelines.schemas import MEASURE_FALLBACKS
-from pipelines.stages.integer_split import largest_remainder, round_to_pack
-from pipelines.stages.reinitialized_target import period_shares
-from pipelines.stages.share_tables import compute_shares
+from pipelines.results import CheckRows, Log, StageResult, quiet
 
-PLAN_COLUMNS = LEAF + ["period_start", "cycle_date", "measure", "value", "parent_value", "rule", "basis", "fallback", "pinned"]
-PARENT_COLUMNS = [
-    "measure", "rule", "product", "site", "period_start", "parent_value", "pins_sum", "pinned_children",
-    "active_children", "split_total", "status",
+PLAN_COLUMNS = LEAF + [
+    "period_start",
+    "cycle_date",
+    "measure",
+    "value",
+    "parent_value",
+    "rule",
+    "basis",
+    "fallback",
+    "pinned",
 ]
-PIN_KEY = ["measure"] + LEAF + ["period_start"]
-FALLBACKS = MEASURE_FALLBACKS  # none, period_share, even, pins_overflow
-NONE, PERIOD_SHARE, EVEN, PINS_OVERFLOW = range(4)
-STATUSES = ("split", "pins_overflow", "no_active_child")
-SPLIT, OVERFLOW, NO_ACTIVE_CHILD = range(3)
-OVERFLOW_COLUMNS = ["measure", "product", "site", "period_start", "parent_value", "pins_sum", "overflow", "pins"]
 UNUSED_COLUMNS = ["input", "measure", "product", "site", "customer", "period_start", "value", "reason"]
-TOLERANCE = 1e-9
-FORECAST_LEAF = "forecast_leaf"
 
 
 @dataclass(frozen=True)
-class Split:
-    """One measure split over (n_children, H) cells; parent arrays are (n_parents, H).
+class PlanSettings:
+    """What the plan reads: the calendar, the measures in split order, the share bases, the pins rule."""
 
-    value: the leaf values; rows: cells that get a row of the plan; fallback:
-    code into FALLBACKS per cell; pins_sum, split_total (what the children
-    sum to), status (code into STATUSES) and live (the parent period has a
-    value or pins) per parent period.
-    """
+    calendar: CalendarConfig
+    measures: Mapping[str, MeasureConfig]
+    share_bases: Mapping[str, ShareBasisConfig]
+    pins: PinsConfig
+    share: ShareSettings
+    order: tuple[str, ...]
+    source: Path = Path("<memory>")
 
-    value: np.ndarray
-    rows: np.ndarray
-    fallback: np.ndarray
-    pins_sum: np.ndarray
-    split_total: np.ndarray
-    status: np.ndarray
-    live: np.ndarray
+    @classmethod
+    def of(cls, config: PlanningConfig) -> PlanSettings:
+        order = tuple(config.measure_order())
+        share = ShareSettings.of(config)
+        return cls(config.calendar, config.measures, config.share_bases, config.pins, share, order, config.source)
+
+    def measure_order(self) -> list[str]:
+        return list(self.order)
+
+    def basis_windows(self) -> dict[str, int]:
+        return {f"share_bases.{name}.window": basis.window for name, basis in self.share_bases.items()}
 
 
 @dataclass(frozen=True)
@@ -141,185 +172,6 @@ class PlanResult:
     pins_applied: pd.DataFrame
     pins_not_applied: pd.DataFrame
     unused_rows: pd.DataFrame
-
-
-def _parent_sum(cells: np.ndarray, parent_of_child: np.ndarray, n_parents: int) -> np.ndarray:
-    """(n_parents, H) sums of the (n, H) cells per parent.
-
-    Children sorted by parent (as `plan_measures` keeps them) are summed block
-    by block with `np.add.reduceat`, several times faster than `np.add.at`.
-    """
-    cells = np.asarray(cells, dtype=float)
-    if len(parent_of_child) and (np.diff(parent_of_child) >= 0).all():
-        first = np.flatnonzero(np.r_[True, np.diff(parent_of_child) > 0])
-        out = np.zeros((n_parents, cells.shape[1]))
-        out[parent_of_child[first]] = np.add.reduceat(cells, first, axis=0)
-        return out
-    out = np.zeros((n_parents, cells.shape[1]))
-    np.add.at(out, parent_of_child, cells)
-    return out
-
-
-def split_cells(
-    rule: str,
-    parent: np.ndarray,
-    has_value: np.ndarray,
-    parent_of_child: np.ndarray,
-    active: np.ndarray,
-    pin: np.ndarray | None = None,
-    pinned: np.ndarray | None = None,
-    basis: np.ndarray | None = None,
-    fallback_basis: np.ndarray | None = None,
-    pack_size: int | None = None,
-    order: np.ndarray | None = None,
-) -> Split:
-    """Split each parent period's value over its active children by `rule`; see the module docstring.
-
-    parent, has_value (n_parents, H): the parent's value and whether it has
-    one. parent_of_child (n,): parent code of each child. active (n, H) bool.
-    pin, pinned (n, H): pinned values, only where active. basis (n, H):
-    pro_rata weights; fallback_basis (n, H): weights where the basis is 0 for
-    every unpinned active child (then even). pack_size: integer split in
-    multiples of it. order (n,): tie-break key of the integer split.
-    """
-    n_parents, h = parent.shape
-    n = len(parent_of_child)
-    pinned = np.zeros((n, h), dtype=bool) if pinned is None else pinned & active
-    pin = np.where(pinned, 0.0 if pin is None else pin, 0.0)
-    n_active = _parent_sum(active.astype(float), parent_of_child, n_parents)
-    any_pin = _parent_sum(pinned.astype(float), parent_of_child, n_parents) > 0
-    live = has_value | any_pin
-    v = np.where(has_value, parent, 0.0)
-    pins_sum = _parent_sum(pin, parent_of_child, n_parents)
-    tol = TOLERANCE * np.maximum(np.abs(v), 1.0)
-    fallback = np.zeros((n, h), dtype=np.int8)
-    status = np.where(live & (n_active == 0) & (np.abs(v) > tol), NO_ACTIVE_CHILD, SPLIT).astype(np.int8)
-    if rule == "replicate":
-        value = np.where(pinned, pin, v[parent_of_child])
-        rows = (active & has_value[parent_of_child]) | pinned
-        return Split(value, rows, fallback, pins_sum, v, status, live)
-
-    free = active & ~pinned
-    n_free = _parent_sum(free.astype(float), parent_of_child, n_parents)
-    rest = v - pins_sum
-    direction = np.where(v >= 0, 1.0, -1.0)
-    overflow = live & any_pin & ((direction * rest < -tol) | ((n_free == 0) & (np.abs(rest) > tol)))
-    if pack_size is not None:
-        rest = round_to_pack(rest, pack_size)
-    carry = live & ~overflow & (n_free > 0)
-    moving = (carry & (np.abs(rest) > tol))[parent_of_child] & free
-
-    if rule == "even":
-        weight = free.astype(float)
-    else:
-        weight = np.where(free, np.clip(basis, 0.0, None), 0.0)
-        use_basis = _parent_sum(weight, parent_of_child, n_parents) > 0
-        use_fallback = np.zeros_like(use_basis)
-        if fallback_basis is not None:
-            fb = np.where(free, np.clip(fallback_basis, 0.0, None), 0.0)
-            use_fallback = ~use_basis & (_parent_sum(fb, parent_of_child, n_parents) > 0)
-            weight = np.where(use_fallback[parent_of_child], fb, weight)
-        even = (~use_basis & ~use_fallback)[parent_of_child]
-        weight = np.where(even, free.astype(float), weight)
-        fallback[moving & use_fallback[parent_of_child]] = PERIOD_SHARE
-        fallback[moving & even] = EVEN
-    total = _parent_sum(weight, parent_of_child, n_parents)[parent_of_child]
-
-    split_here = free & carry[parent_of_child]
-    if pack_size is None:
-        share = np.divide(weight, total, out=np.zeros((n, h)), where=total > 0)
-        value = np.where(split_here, rest[parent_of_child] * share, 0.0)
-    else:
-        child, period = np.nonzero(split_here)
-        units = np.where(carry, np.rint(np.abs(rest) / pack_size), 0.0).ravel()
-        key = np.arange(n) if order is None else order
-        parts = largest_remainder(units, weight[child, period], parent_of_child[child] * h + period, key[child])
-        value = np.zeros((n, h))
-        value[child, period] = np.sign(rest[parent_of_child[child], period]) * parts * pack_size
-    value = np.where(pinned, pin, value)
-    fallback[(overflow[parent_of_child]) & free] = PINS_OVERFLOW
-    split_total = np.where(overflow, pins_sum, np.where(status == NO_ACTIVE_CHILD, v, pins_sum + rest))
-    status = np.where(overflow, OVERFLOW, status).astype(np.int8)
-    rows = active & live[parent_of_child]
-    return Split(value, rows, fallback, pins_sum, split_total, status, live)
-
-
-def share_basis_tables(
-    history: pd.DataFrame,
-    children: pd.DataFrame,
-    products: pd.DataFrame,
-    config: PlanningConfig,
-    cycle_date: pd.Timestamp,
-) -> dict[str, pd.DataFrame]:
-    """Period shares of every named share basis (config `share_bases`): leaf keys, period_start, share, fallback.
-
-    Each basis runs the share engine (`share_tables.compute_shares`, then
-    `reinitialized_target.period_shares`) with its window, method and fallback
-    windows in place of every product class's own. history: lifecycle history;
-    children: `lifecycle_history.active_children`.
-    """
-    out = {}
-    starts = horizon_starts(cycle_date, config.calendar.horizon, config.calendar.period)
-    for name, basis in config.share_bases.items():  # a few named bases, not a loop over series
-        own = {"window": basis.window, "method": basis.method, "fallback_windows": basis.fallback_windows}
-        classes = {c: pc.model_copy(update=own) for c, pc in config.product_classes.items()}
-        basis_config = config.model_copy(update={"product_classes": classes})
-        table = compute_shares(history, children, basis_config, cycle_date)
-        share = period_shares(table, basis_config, cycle_date, products, history)[0]
-        frame = table[LEAF].loc[table.index.repeat(len(starts))].reset_index(drop=True)
-        frame["period_start"] = np.tile(starts.values, len(table))
-        frame["share"] = share.ravel()
-        frame["fallback"] = np.repeat(table["fallback"].to_numpy(), len(starts))
-        out[name] = frame
-    return out
-
-
-def _cells(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame, first_ord: int, h: int, period: str):
-    """(row in table, horizon column, inside) of each row of `frame` keyed by `cols` and `period_start`."""
-    row = lookup(frame, cols, table) if len(frame) else np.zeros(0, dtype=np.int64)
-    col = period_ordinal(pd.DatetimeIndex(pd.to_datetime(frame["period_start"])), period) - first_ord
-    return row, col, (col >= 0) & (col < h)
-
-
-def _matrix(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame, column: str | list[str], first_ord: int, h: int, period: str):
-    """(len(table), h) matrix of `column` (one per name of a list) from a long frame keyed by `cols` and
-    period_start, 0 where absent; the keys are looked up once for all columns."""
-    names = [column] if isinstance(column, str) else column
-    out = [np.zeros((len(table), h)) for _ in names]
-    if len(frame):
-        row, col, inside = _cells(frame, cols, table, first_ord, h, period)
-        ok = inside & (row >= 0)
-        for m, name in zip(out, names):
-            m[row[ok], col[ok]] = frame[name].to_numpy(float)[ok]
-    return out[0] if isinstance(column, str) else out
-
-
-def _combine(row: np.ndarray, col: np.ndarray, value: np.ndarray, shape: tuple[int, int], mean: bool):
-    """Sum (or mean) of `value` per (row, col) cell, and which cells have any."""
-    total = np.zeros(shape)
-    count = np.zeros(shape)
-    np.add.at(total, (row, col), value)
-    np.add.at(count, (row, col), 1.0)
-    if mean:
-        total = np.divide(total, count, out=np.zeros(shape), where=count > 0)
-    return total, count > 0
-
-
-def _check_measures_known(frame: pd.DataFrame, config: PlanningConfig, what: str) -> None:
-    names = set(frame["measure"].dropna().unique())
-    unknown = sorted(names - set(config.measures))
-    if unknown:
-        raise ConfigError(
-            f"{config.source}: the {what} input names measure(s) {unknown} that config measures does not define "
-            f"(defined: {sorted(config.measures)}); add them under measures: or correct the measure column."
-        )
-    from_forecast = sorted(n for n in names if config.measures[n].parent_values == "parent_forecast")
-    if from_forecast and what == "adjustments":
-        raise ConfigError(
-            f"{config.source}: the adjustments input has rows of {from_forecast}, whose parent values come from "
-            f"the statistical forecast (parent_values: parent_forecast); enter changes as another measure "
-            f"(e.g. planner_adjustment) or pin leaves in the pins input."
-        )
 
 
 def plan_measures(
@@ -356,14 +208,14 @@ def plan_measures(
     last = period_ordinal(pd.DatetimeIndex(children["last_active_period"]), period)[:, None]
     active = (h_ord[None, :] >= first) & (h_ord[None, :] <= last)
     order = np.arange(n)  # children are in key order
-    _check_measures_known(adjustments, config, "adjustments")
-    _check_measures_known(pins, config, "pins")
+    check_measures_known(adjustments, config, "adjustments")
+    check_measures_known(pins, config, "pins")
 
     unused = []
-    adj_row, adj_col, adj_inside = _cells(adjustments, PARENT, parents, first_ord, h, period)
+    adj_row, adj_col, adj_inside = cells_of(adjustments, PARENT, parents, first_ord, h, period)
     if (~adj_inside).any():
         unused.append(adjustments.loc[~adj_inside].assign(input="adjustments", customer=None, reason="outside_horizon"))
-    pin_row, pin_col, pin_inside = _cells(pins, LEAF, children, first_ord, h, period)
+    pin_row, pin_col, pin_inside = cells_of(pins, LEAF, children, first_ord, h, period)
     if (~pin_inside).any():
         unused.append(pins.loc[~pin_inside].assign(input="pins", reason="outside_horizon"))
     not_child = pin_inside & (pin_row < 0)
@@ -378,10 +230,14 @@ def plan_measures(
     pin_ok = pin_inside & ~not_child & ~inactive
     pin_starts = starts[np.clip(pin_col, 0, h - 1)]
 
-    target_m, share_m = _matrix(target, LEAF, children, ["target", "share"], first_ord, h, period)
-    mats = {"target": target_m, "share": share_m, "forecast": _matrix(leaf_forecast, LEAF, children, "forecast", first_ord, h, period)}
+    target_m, share_m = leaf_matrix(target, LEAF, children, ["target", "share"], first_ord, h, period)
+    mats = {
+        "target": target_m,
+        "share": share_m,
+        "forecast": leaf_matrix(leaf_forecast, LEAF, children, "forecast", first_ord, h, period),
+    }
     for basis_name, frame in (share_bases or {}).items():
-        mats[f"share_table:{basis_name}"] = _matrix(frame, LEAF, children, "share", first_ord, h, period)
+        mats[f"share_table:{basis_name}"] = leaf_matrix(frame, LEAF, children, "share", first_ord, h, period)
     # the strategy of each parent's class (absent = top-down, the forecast stage's default grain)
     top_down = np.ones(n_parents, dtype=bool)
     if "strategy" in parent_forecast.columns and len(parent_forecast):
@@ -395,41 +251,60 @@ def plan_measures(
         m = config.measures[name]
         mean = m.rule == "replicate"
         if m.parent_values == "parent_forecast":
-            value, has = _matrix(parent_forecast.assign(_has=1.0), PARENT, parents, ["forecast", "_has"], first_ord, h, period)
+            value, has = leaf_matrix(
+                parent_forecast.assign(_has=1.0), PARENT, parents, ["forecast", "_has"], first_ord, h, period
+            )
             has = has > 0
         else:
             mine = (adjustments["measure"] == name).to_numpy() & adj_inside
             ok = mine & (adj_row >= 0)
-            value, has = _combine(adj_row[ok], adj_col[ok], adjustments["value"].to_numpy(float)[ok], (n_parents, h), mean)
+            value, has = combine_cells(
+                adj_row[ok], adj_col[ok], adjustments["value"].to_numpy(float)[ok], (n_parents, h), mean
+            )
             orphans = adjustments.loc[mine & (adj_row < 0)]
             if len(orphans):
-                parent_pieces.append(_orphan_parents(orphans, name, m, period, first_ord, starts))
+                parent_pieces.append(orphan_parents(orphans, name, m, period, first_ord, starts))
         mine_pin = (pins["measure"] == name).to_numpy() & pin_ok
-        pin, pinned = _combine(pin_row[mine_pin], pin_col[mine_pin], pins["value"].to_numpy(float)[mine_pin], (n, h), mean)
+        pin, pinned = combine_cells(
+            pin_row[mine_pin], pin_col[mine_pin], pins["value"].to_numpy(float)[mine_pin], (n, h), mean
+        )
         if mine_pin.any():
             combined = pins.loc[mine_pin, PIN_KEY].assign(period_start=pin_starts[mine_pin]).drop_duplicates()
-            cell = lookup(combined, LEAF, children), period_ordinal(pd.DatetimeIndex(combined["period_start"]), period) - first_ord
+            cell = (
+                lookup(combined, LEAF, children),
+                period_ordinal(pd.DatetimeIndex(combined["period_start"]), period) - first_ord,
+            )
             applied_pieces.append(combined.assign(value=pin[cell]))
 
-        basis, fallback_basis, label = _basis(m, name, mats, top_down, parent_of_child)
+        basis, fallback_basis, label = basis_of(m, name, mats, top_down, parent_of_child)
         split = split_cells(
             m.rule, value, has, parent_of_child, active, pin, pinned, basis, fallback_basis,
             None if m.integer is None else m.integer.pack_size, order,
         )
         mats[f"measure:{name}"] = np.where(split.rows, split.value, 0.0)
-        pieces[name] = _plan_piece(name, m, split, value, has, pinned, label, children, parent_of_child, starts, cycle_date)
-        parent_pieces.append(_parent_piece(name, m, split, value, has, pinned, active, parents, parent_of_child, starts))
+        pieces[name] = plan_piece(
+            name, m, split, value, has, pinned, label, children, parent_of_child, starts, cycle_date
+        )
+        parent_pieces.append(parent_piece(name, m, split, value, has, pinned, active, parents, parent_of_child, starts))
         if (split.status == OVERFLOW).any():
-            overflow_pieces.append(_overflow_piece(name, split, value, has, pin, pinned, children, parents, parent_of_child, starts))
+            overflow_pieces.append(
+                overflow_piece(name, split, value, has, pin, pinned, children, parents, parent_of_child, starts)
+            )
 
     # in config order; inside a measure the rows already follow the sorted children, then the period
     plan = _stack([pieces[name] for name in config.measures], PLAN_COLUMNS).astype(
-        {"period_start": "datetime64[ns]", "cycle_date": "datetime64[ns]", "value": float, "parent_value": float, "pinned": bool}
+        {
+            "period_start": "datetime64[ns]",
+            "cycle_date": "datetime64[ns]",
+            "value": float,
+            "parent_value": float,
+            "pinned": bool,
+        }
     )
     parents_out = _stack(parent_pieces, PARENT_COLUMNS)
     overflow = _stack(overflow_pieces, OVERFLOW_COLUMNS)
     if len(overflow) and config.pins.on_overflow == "error":
-        raise PinError(_overflow_message(overflow, config))
+        raise PinError(overflow_message(overflow, config.source))
     unused_rows = _stack(unused, UNUSED_COLUMNS)
     return PlanResult(
         plan=plan,
@@ -441,207 +316,67 @@ def plan_measures(
     )
 
 
-def _stack(pieces: list[pd.DataFrame], columns: list[str]) -> pd.DataFrame:
-    pieces = [p[columns] for p in pieces if len(p)]
-    if not pieces:
-        return pd.DataFrame({c: pd.Series(dtype=object) for c in columns})
-    return pd.concat(pieces, ignore_index=True)
-
-
-def _basis(m: MeasureConfig, name: str, mats: dict[str, np.ndarray], top_down: np.ndarray, parent_of_child: np.ndarray):
-    """(basis, fallback basis, label per parent) of a measure; `mats` holds the leaf matrices by name."""
-    n_parents = len(top_down)
-    if m.rule != "pro_rata":
-        return None, None, np.full(n_parents, "parent" if m.rule == "replicate" else "even", dtype=object)
-    b = m.basis
-    label = np.full(n_parents, b.label, dtype=object)
-    if b.kind == "reinitialized_target":
-        if m.parent_values != "parent_forecast":
-            return mats["target"], mats["share"], label
-        # the forecast's own split: the target where the class is split top-down, else its leaf values
-        td = top_down[parent_of_child][:, None]
-        label[~top_down] = FORECAST_LEAF
-        return np.where(td, mats["target"], mats["forecast"]), np.where(td, mats["share"], 0.0), label
-    key = f"{b.kind}:{b.name}"
-    if key not in mats:
-        raise ConfigError(f"measures.{name}: basis {key} is not available; pass its share_basis_tables(...) frame")
-    return mats[key], None, label
-
-
-def _plan_piece(name, m, split, value, has, pinned, label, children, parent_of_child, starts, cycle_date) -> pd.DataFrame:
-    child, col = np.nonzero(split.rows)
-    par = parent_of_child[child]
-    code = split.fallback[child, col]
-    is_pin = pinned[child, col]
-    basis = np.where(is_pin, "pin", np.where(code == EVEN, "even", label[par]))
-    out = children[LEAF].iloc[child].reset_index(drop=True)
-    out["period_start"] = starts[col]
-    out["cycle_date"] = cycle_date
-    out["measure"] = name
-    out["value"] = split.value[child, col]
-    out["parent_value"] = np.where(has[par, col], value[par, col], np.nan)
-    out["rule"] = m.rule
-    out["basis"] = basis
-    out["fallback"] = np.asarray(FALLBACKS, dtype=object)[code]
-    out["pinned"] = is_pin
-    return out
-
-
-def _parent_piece(name, m, split, value, has, pinned, active, parents, parent_of_child, starts) -> pd.DataFrame:
-    n_parents = len(parents)
-    par, col = np.nonzero(split.live)
-    n_active = _parent_sum(active.astype(float), parent_of_child, n_parents)
-    n_pinned = _parent_sum(pinned.astype(float), parent_of_child, n_parents)
-    out = parents[PARENT].iloc[par].reset_index(drop=True)
-    out.insert(0, "rule", m.rule)
-    out.insert(0, "measure", name)
-    out["period_start"] = starts[col]
-    out["parent_value"] = np.where(has[par, col], value[par, col], np.nan)
-    out["pins_sum"] = split.pins_sum[par, col]
-    out["pinned_children"] = n_pinned[par, col].astype(np.int64)
-    out["active_children"] = n_active[par, col].astype(np.int64)
-    out["split_total"] = split.split_total[par, col]
-    out["status"] = np.asarray(STATUSES, dtype=object)[split.status[par, col]]
-    return out
-
-
-def _orphan_parents(rows: pd.DataFrame, name: str, m: MeasureConfig, period: str, first_ord: int, starts) -> pd.DataFrame:
-    """Parent periods of the input whose product x site has no child active in the horizon."""
-    col = period_ordinal(pd.DatetimeIndex(pd.to_datetime(rows["period_start"])), period) - first_ord
-    frame = rows[PARENT].assign(period_start=starts[col], value=rows["value"].to_numpy(float))
-    agg = frame.groupby(PARENT + ["period_start"], sort=True)["value"].agg("mean" if m.rule == "replicate" else "sum")
-    out = agg.rename("parent_value").reset_index()
-    out.insert(0, "rule", m.rule)
-    out.insert(0, "measure", name)
-    out["pins_sum"] = 0.0
-    out["pinned_children"] = 0
-    out["active_children"] = 0
-    out["split_total"] = out["parent_value"]
-    out["status"] = STATUSES[NO_ACTIVE_CHILD]
-    return out
-
-
-def _overflow_piece(name, split, value, has, pin, pinned, children, parents, parent_of_child, starts) -> pd.DataFrame:
-    """One row per overflowing parent period: parent value, pins (customer=value) and the overflow."""
-    par, col = np.nonzero(split.status == OVERFLOW)
-    v = np.where(has[par, col], value[par, col], 0.0)
-    out = parents[PARENT].iloc[par].reset_index(drop=True)
-    out.insert(0, "measure", name)
-    out["period_start"] = starts[col]
-    out["parent_value"] = np.where(has[par, col], value[par, col], np.nan)
-    out["pins_sum"] = split.pins_sum[par, col]
-    out["overflow"] = np.abs(split.pins_sum[par, col] - v)  # what the pins take beyond the parent
-    child, pcol = np.nonzero(pinned & (split.status == OVERFLOW)[parent_of_child])
-    text = pd.DataFrame(
-        {"p": parent_of_child[child], "c": pcol, "t": children["customer"].to_numpy(object)[child] + "=" + pd.Series(pin[child, pcol]).map("{:g}".format).to_numpy(object)}
+def run(
+    parent_forecast: pd.DataFrame,
+    statistical_forecast: pd.DataFrame,
+    reinitialized_target: pd.DataFrame,
+    share_tables: pd.DataFrame,
+    lifecycle_history: pd.DataFrame,
+    products: pd.DataFrame,
+    customer_spans: pd.DataFrame,
+    adjustments: pd.DataFrame,
+    pins: pd.DataFrame,
+    cycle_calendar: pd.DataFrame,
+    settings: PlanSettings,
+    log: Log = quiet,
+) -> StageResult:
+    """The plan's measures at leaf grain, with the share bases' fallbacks and the plan's three checks."""
+    cycle = cycle_calendar.iloc[0]
+    check_windows_fit(settings.basis_windows(), int(cycle["history_periods"]), settings.source)
+    cycle_date = pd.Timestamp(cycle["cycle_date"])
+    bases = {}
+    if settings.share_bases:
+        children = active_children(customer_spans, products, lifecycle_history, settings.share, cycle_date)
+        bases = share_basis_tables(lifecycle_history, children, products, settings, cycle_date)
+    result = plan_measures(
+        share_tables,
+        parent_forecast,
+        statistical_forecast,
+        reinitialized_target,
+        adjustments,
+        pins,
+        settings,
+        cycle_date,
+        bases,
     )
-    joined = text.groupby(["p", "c"])["t"].agg(", ".join)
-    out["pins"] = joined.reindex(pd.MultiIndex.from_arrays([par, col])).to_numpy(object)
-    return out
-
-
-def _overflow_message(overflow: pd.DataFrame, config: PlanningConfig) -> str:
-    shown = overflow.head(20)
-    lines = [
-        f"{m} {p} / {s} {d:%Y-%m-%d}: parent {v:g}, pins {ps:g} ({pins}), {o:g} over"
-        for m, p, s, d, v, ps, o, pins in shown[OVERFLOW_COLUMNS].itertuples(index=False)
+    plan = result.plan
+    basis_fallbacks = [
+        f.drop_duplicates(["product", "site"])
+        .groupby("fallback")
+        .size()
+        .rename("parents")
+        .reset_index()
+        .assign(share_basis=n)
+        for n, f in bases.items()
     ]
-    more = f"\n  ... and {len(overflow) - len(shown)} more" if len(overflow) > len(shown) else ""
-    return (
-        f"pins exceed their parent in {len(overflow)} parent period(s) (config {config.source}: pins.on_overflow "
-        f"is error):\n  " + "\n  ".join(lines) + more + "\nLower the pins, raise the parent value, or set "
-        "pins.on_overflow: warn to keep the pins and give the other customers 0."
+    figures = {
+        "measures": ", ".join(settings.measures),
+        "rows_by_measure_and_rule": plan.groupby(["measure", "rule", "basis", "fallback"])
+        .size()
+        .rename("rows")
+        .reset_index(),
+        "totals_parent_vs_leaf": plan_totals(plan, result.parents),
+        "pins_applied": len(result.pins_applied),
+        "pins_overflowing_parents": len(result.overflow),
+        "inputs_outside_horizon": len(result.unused_rows),
+        "share_basis_fallbacks": pd.concat(basis_fallbacks, ignore_index=True) if bases else pd.DataFrame(),
+    }
+    return StageResult(
+        outputs={"plan_measures": plan},
+        metadata={"plan_measures": figures},
+        checks={
+            MEASURES_SUM_TO_PARENT: CheckRows(find_sum_violations(plan, result.parents, settings.measures)),
+            PINS_KEPT: CheckRows(find_pins_not_kept(plan, result.pins_applied, result.pins_not_applied)),
+            PINS_WITHIN_PARENT: CheckRows(result.overflow),
+        },
     )
-
-
-def find_sum_violations(plan: pd.DataFrame, parents: pd.DataFrame, config: PlanningConfig) -> pd.DataFrame:
-    """Parent periods whose leaves do not add up: the rows behind the blocking check measures_sum_to_parent.
-
-    even / pro_rata: the children (pins included) must sum to the parent value
-    V, or for an integer measure to sum of pins + p x floor((V - pins) / p +
-    1/2); where the pins overflow (warn mode) to the pins alone. A parent
-    period with a value and no active child fails. replicate: every unpinned
-    child equals the parent and every active child has a row. Tolerance 1e-9
-    x max(|expected|, 1). Recomputed from the output table, not taken from
-    the split.
-    """
-    key = ["measure", "product", "site", "period_start"]
-    columns = key + ["rule", "parent_value", "expected", "children_sum", "children", "reason"]
-    if parents.empty:
-        return pd.DataFrame({c: pd.Series(dtype=object) for c in columns})
-    code, sums = factorize(plan, key)  # integer codes, so the sums are bincounts
-    value = plan["value"].to_numpy(float)
-    sums["children_sum"] = np.bincount(code, weights=value, minlength=len(sums))
-    sums["children"] = np.bincount(code, minlength=len(sums))
-    sums["pins_in_plan"] = np.bincount(code, weights=np.where(plan["pinned"].to_numpy(bool), value, 0.0), minlength=len(sums))
-    merged = parents.merge(sums, on=key, how="left")
-    merged[["children_sum", "pins_in_plan"]] = merged[["children_sum", "pins_in_plan"]].astype(float).fillna(0.0)
-    merged["children"] = merged["children"].fillna(0).astype(np.int64)
-    v = merged["parent_value"].fillna(0.0).to_numpy(float)
-    pins_sum = merged["pins_in_plan"].to_numpy(float)
-    pack_of = {n: m.integer.pack_size if m.integer else 0 for n, m in config.measures.items()}
-    pack = merged["measure"].map(pack_of).to_numpy()
-    rest = v - pins_sum
-    rounded = np.where(pack > 0, round_to_pack(rest, np.where(pack > 0, pack, 1)), rest)
-    status = merged["status"].to_numpy(object)
-    expected = np.where(status == STATUSES[OVERFLOW], pins_sum, pins_sum + rounded)
-    total = merged["children_sum"].to_numpy(float)
-    off = np.abs(total - expected) > TOLERANCE * np.maximum(np.abs(expected), 1.0)
-    additive = merged["rule"].to_numpy(object) != "replicate"
-    reason = np.select(
-        [additive & (status == STATUSES[NO_ACTIVE_CHILD]), additive & off,
-         ~additive & merged["parent_value"].notna().to_numpy() & (merged["children"].to_numpy() != merged["active_children"].to_numpy())],
-        ["no active child carries the value", "children do not sum to the parent", "an active child has no row"],
-        "",
-    )
-    merged["expected"] = np.where(additive, expected, v)
-    merged["reason"] = reason
-    failing = merged[reason != ""]
-    rep = plan[(plan["rule"] == "replicate") & ~plan["pinned"]]
-    bad = rep[~(np.abs(rep["value"] - rep["parent_value"]) <= TOLERANCE * np.maximum(np.abs(rep["parent_value"]), 1.0))]
-    if len(bad):
-        bad_parents = bad.groupby(key, sort=False).size().rename("n").reset_index()
-        extra = parents.merge(bad_parents, on=key).merge(sums, on=key, how="left")
-        extra = extra.assign(expected=extra["parent_value"], reason="a child differs from the parent value")
-        failing = pd.concat([failing, extra], ignore_index=True)
-    return failing[columns].reset_index(drop=True)
-
-
-def find_pins_not_kept(plan: pd.DataFrame, pins_applied: pd.DataFrame, pins_not_applied: pd.DataFrame) -> pd.DataFrame:
-    """Pins whose leaf does not hold exactly the pinned value: the rows behind the blocking check pins_kept.
-
-    A pin that could not be applied (leaf not active in its period) fails with
-    its reason; an applied pin fails when the plan has no pinned row for it or
-    its value differs (tolerance 1e-9 x max(|pin|, 1)).
-    """
-    columns = PIN_KEY + ["pin", "value", "reason"]
-    rows = plan.loc[plan["pinned"].astype(bool), PIN_KEY + ["value"]]
-    applied = pins_applied.rename(columns={"value": "pin"}).astype({"period_start": "datetime64[ns]", "pin": float})
-    merged = applied.merge(rows.astype({"period_start": "datetime64[ns]"}), on=PIN_KEY, how="left")
-    missing = merged["value"].isna()
-    off = ~(np.abs(merged["value"] - merged["pin"]) <= TOLERANCE * np.maximum(np.abs(merged["pin"]), 1.0))
-    merged["reason"] = np.where(missing, "no pinned row in the plan", "value differs from the pin")
-    failing = merged[missing | off]
-    not_applied = pins_not_applied.rename(columns={"value": "pin"}).assign(value=np.nan)
-    return _stack([failing, not_applied], columns)
-
-
-def plan_totals(plan: pd.DataFrame, parents: pd.DataFrame) -> pd.DataFrame:
-    """Per measure: parent periods, leaf rows, pinned rows, and parent vs leaf totals.
-
-    For replicate measures (values per unit) a sum means nothing; their
-    `statistic` is `mean` and the two columns hold the mean parent and leaf value.
-    """
-    p = parents.groupby(["measure", "rule"], sort=False).agg(
-        parent_periods=("period_start", "size"), parent_sum=("parent_value", "sum"), parent_mean=("parent_value", "mean")
-    )
-    leaf = plan.groupby(["measure", "rule"], sort=False).agg(
-        leaf_rows=("value", "size"), pinned_rows=("pinned", "sum"), leaf_sum=("value", "sum"), leaf_mean=("value", "mean")
-    )
-    out = p.join(leaf, how="outer").reset_index()
-    mean = (out["rule"] == "replicate").to_numpy()
-    out["statistic"] = np.where(mean, "mean", "total")
-    out["parent"] = np.where(mean, out["parent_mean"], out["parent_sum"])
-    out["leaf"] = np.where(mean, out["leaf_mean"], out["leaf_sum"])
-    out[["parent_periods", "leaf_rows", "pinned_rows"]] = out[["parent_periods", "leaf_rows", "pinned_rows"]].fillna(0).astype(np.int64)
-    return out[["measure", "rule", "parent_periods", "leaf_rows", "pinned_rows", "statistic", "parent", "leaf"]]

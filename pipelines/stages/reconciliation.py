@@ -1,8 +1,10 @@
 """Stage 7, `reconciliation`: proof that the leaf forecast adds up to the parent.
 
 `reconcile` builds one row per parent and period. Each `find_*` function
-returns the rows that break one rule (empty = the rule holds); the asset
-turns them into blocking asset checks with a sample of the rows in metadata.
+returns the rows that break one rule (empty = the rule holds): the blocking
+checks `children_sum_to_parent` and `every_active_parent_has_children` of the
+reconciliation (the checks of the forecast's own rows are on the forecast,
+`pipelines.engines.proofs`).
 
 Tolerance: children sum to the parent when
 |children_sum - parent| <= RELATIVE_TOLERANCE x max(|parent|, 1),
@@ -15,16 +17,16 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import period_ordinal, span_bounds
-from pipelines.keys import LEAF, PARENT, lookup
-
-RELATIVE_TOLERANCE = 1e-9
-SHARE_TOLERANCE = 1e-9
+from pipelines.checks import CHILDREN_SUM_TO_PARENT, EVERY_ACTIVE_PARENT_HAS_CHILDREN, RELATIVE_TOLERANCE
+from pipelines.keys import PARENT
+from pipelines.results import CheckRows, Log, StageResult, quiet
 
 
 def reconcile(parent: pd.DataFrame, leaf: pd.DataFrame) -> pd.DataFrame:
     """Parent forecast against the sum of its children, per parent and period."""
-    sums = leaf.groupby(PARENT + ["period_start"], sort=False, observed=True)["forecast"].agg(children_sum="sum", children="size")
+    sums = leaf.groupby(PARENT + ["period_start"], sort=False, observed=True)["forecast"].agg(
+        children_sum="sum", children="size"
+    )
     out = parent[["cycle_date"] + PARENT + ["period_start", "forecast"]].rename(columns={"forecast": "parent_forecast"})
     out = out.join(sums, on=PARENT + ["period_start"])
     out["children_sum"] = out["children_sum"].fillna(0.0)
@@ -39,88 +41,30 @@ def find_incoherent(reconciliation: pd.DataFrame, tolerance: float = RELATIVE_TO
     return reconciliation[reconciliation["relative_difference"] > tolerance]
 
 
-def find_shares_not_summing_to_one(target: pd.DataFrame, tolerance: float = SHARE_TOLERANCE) -> pd.DataFrame:
-    """Parent periods whose shares neither sum to 1 nor are all 0 with a recorded reason.
-
-    target: per-period shares (`reinitialized_target`: parent keys, period_start,
-    share, zero_share_reason). A period summing to 1 must have no reason; an
-    all-zero period must have its reason on every row.
-    """
-    t = target.assign(
-        has_reason=target["zero_share_reason"].notna(),
-        nonzero=target["share"] != 0,
-    )
-    sums = (
-        t.groupby(PARENT + ["period_start"], sort=True, observed=True)
-        .agg(
-            share_sum=("share", "sum"),
-            children=("share", "size"),
-            with_reason=("has_reason", "sum"),
-            nonzero=("nonzero", "sum"),
-            zero_share_reason=("zero_share_reason", "first"),
-        )
-        .reset_index()
-    )
-    sums_to_one = ((sums["share_sum"] - 1.0).abs() <= tolerance) & (sums["with_reason"] == 0)
-    zero_with_reason = (sums["nonzero"] == 0) & (sums["with_reason"] == sums["children"])
-    return sums[~(sums_to_one | zero_with_reason)].drop(columns=["nonzero"])
-
-
-def find_volume_after_phase_out(leaf: pd.DataFrame, spans: pd.DataFrame, period: str) -> pd.DataFrame:
-    """Leaf forecast rows with volume in a period after the customer's span ended."""
-    _, to_ord = span_bounds(spans, period)
-    pos = lookup(leaf, LEAF, spans)
-    end = np.where(pos >= 0, to_ord[np.clip(pos, 0, None)], np.nan)
-    with np.errstate(invalid="ignore"):
-        after = (period_ordinal(leaf["period_start"], period) > end) & (leaf["forecast"].to_numpy() != 0)
-    out = leaf.loc[after, LEAF + ["period_start", "forecast"]].copy()
-    out["active_to"] = spans["active_to"].to_numpy()[pos[after]] if after.any() else pd.Series(dtype="datetime64[ns]")
-    return out
-
-
-def find_volume_outside_active_span(
-    parent: pd.DataFrame, leaf: pd.DataFrame, spans: pd.DataFrame, products: pd.DataFrame, period: str
-) -> pd.DataFrame:
-    """Forecast rows with volume where the customer span has not started or the product's span does not cover the period.
-
-    Leaf rows are judged against their customer span's start and their product's
-    span; parent rows against the product's span. (Volume after a customer
-    span's end is `find_volume_after_phase_out`.)
-    """
-    p_from, p_to = span_bounds(products, period)
-    s_from, _ = span_bounds(spans, period)
-
-    def product_bounds(frame: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
-        pos = lookup(frame, ["product"], products)
-        return (
-            np.where(pos >= 0, p_from[np.clip(pos, 0, None)], np.nan),
-            np.where(pos >= 0, p_to[np.clip(pos, 0, None)], np.nan),
-        )
-
-    out = []
-    for grain, frame in (("parent", parent), ("leaf", leaf)):
-        ords = period_ordinal(frame["period_start"], period)
-        lo, hi = product_bounds(frame)
-        why = np.full(len(frame), None, dtype=object)
-        with np.errstate(invalid="ignore"):
-            why[(ords < lo) | (ords > hi)] = "product not active"
-            if grain == "leaf":
-                pos = lookup(frame, LEAF, spans)
-                start = np.where(pos >= 0, s_from[np.clip(pos, 0, None)], np.nan)
-                why[(ords < start) & pd.isna(why)] = "customer span not started"
-        bad = pd.notna(why) & (frame["forecast"].to_numpy() != 0)
-        keys = LEAF if grain == "leaf" else PARENT
-        out.append(frame.loc[bad, keys + ["period_start", "forecast"]].assign(grain=grain, why=why[bad]))
-    rows = [f for f in out if len(f)]
-    return pd.concat(rows, ignore_index=True) if rows else out[1].iloc[0:0]
-
-
-def find_negative(frame: pd.DataFrame, column: str = "forecast") -> pd.DataFrame:
-    """Rows with a negative value."""
-    return frame[frame[column] < 0]
-
-
 def find_parents_without_children(reconciliation: pd.DataFrame) -> pd.DataFrame:
     """Active parents (with a forecast row) that have no child to carry it."""
     none = reconciliation[reconciliation["children"] == 0]
-    return none.groupby(PARENT, sort=True, observed=True).agg(periods=("period_start", "size"), parent_forecast=("parent_forecast", "sum")).reset_index()
+    return (
+        none.groupby(PARENT, sort=True, observed=True)
+        .agg(periods=("period_start", "size"), parent_forecast=("parent_forecast", "sum"))
+        .reset_index()
+    )
+
+
+def run(
+    parent_forecast: pd.DataFrame, statistical_forecast: pd.DataFrame, settings=None, log: Log = quiet
+) -> StageResult:
+    """The reconciliation table and its two blocking checks."""
+    table = reconcile(parent_forecast, statistical_forecast)
+    figures = {
+        "largest_relative_difference": float(table["relative_difference"].max()) if len(table) else 0.0,
+        "worst_rows": table.sort_values("relative_difference", ascending=False),
+    }
+    return StageResult(
+        outputs={"reconciliation": table},
+        metadata={"reconciliation": figures},
+        checks={
+            CHILDREN_SUM_TO_PARENT: CheckRows(find_incoherent(table)),
+            EVERY_ACTIVE_PARENT_HAS_CHILDREN: CheckRows(find_parents_without_children(table)),
+        },
+    )

@@ -15,7 +15,7 @@ history); every lifecycle rule applies on top of these weights. `share_basis`
 records per parent and period what the weights came from: `history_share`,
 `period_of_year`, `children_forecast`, or `pooled_fallback` where a per-period
 method had no basis in the period. Per parent and period the shares sum to 1,
-or are all 0 with `zero_share_reason`:
+or are all 0 with `zero_reason`:
 
 - `product_not_active` - the product's own span does not cover the period;
 - `no_active_child` - no customer span covers it;
@@ -44,17 +44,23 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import horizon_starts, period_ordinal, span_bounds
-from pipelines.config import PlanningConfig
+from pipelines.calendar import horizon_starts, period_ordinal
+from pipelines.checks import SHARES_SUM_TO_ONE
+from pipelines.engines.period_shares import period_shares, stored_basis
+from pipelines.engines.proofs import find_shares_not_summing_to_one
+from pipelines.engines.share_settings import ShareSettings
+from pipelines.engines.shares import shortage_periods
 from pipelines.keys import LEAF, PARENT, factorize, lookup
-from pipelines.stages.share_tables import period_basis, reference_positions, shortage_periods, split_shares
+from pipelines.results import CheckRows, Log, StageResult, quiet
 
-TARGET_COLUMNS = LEAF + ["period_start", "cycle_date", "target", "share", "parent_baseline", "zero_share_reason", "share_basis"]
+TARGET_COLUMNS = LEAF + ["period_start", "cycle_date", "target", "share", "parent_baseline", "zero_reason", "basis"]
 
 
-def parent_baselines(shares: pd.DataFrame, history: pd.DataFrame, config: PlanningConfig, cycle_date: pd.Timestamp) -> np.ndarray:
+def parent_baselines(
+    shares: pd.DataFrame, history: pd.DataFrame, settings: ShareSettings, cycle_date: pd.Timestamp
+) -> np.ndarray:
     """Baseline of each share-table row's parent (same value on all its children)."""
-    period = config.calendar.period
+    period = settings.period
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
     parent_code, parents = factorize(shares, PARENT)
     n_parents = len(parents)
@@ -63,7 +69,7 @@ def parent_baselines(shares: pd.DataFrame, history: pd.DataFrame, config: Planni
 
     row_parent = lookup(history, PARENT, parents)
     ok = row_parent >= 0
-    short = shortage_periods(history, config)[ok]
+    short = shortage_periods(history, settings.exclude_shortages)[ok]
     row_parent = row_parent[ok]
     age = cycle_ord - period_ordinal(history["period_start"], period)[ok]
     qty = history["quantity"].to_numpy(float)[ok]
@@ -80,85 +86,35 @@ def parent_baselines(shares: pd.DataFrame, history: pd.DataFrame, config: Planni
     return baseline[parent_code]
 
 
-def period_shares(
-    shares: pd.DataFrame,
-    config: PlanningConfig,
-    cycle_date: pd.Timestamp,
-    products: pd.DataFrame | None = None,
-    history: pd.DataFrame | None = None,
-    horizon: int | None = None,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(share, zero_share_reason (None where shares sum to 1), share_basis), each (n, H), per share-table row.
-
-    products: the product master, to tell `product_not_active` from
-    `no_active_child` (without it, every product counts as active).
-    history: the lifecycle history, needed by the per-period share methods
-    (`share_tables.period_basis`). horizon: H, default the calendar's.
-    """
-    period = config.calendar.period
-    starts = horizon_starts(cycle_date, horizon or config.calendar.horizon, period)
-    h_ord = period_ordinal(starts, period)
-    first = period_ordinal(pd.DatetimeIndex(shares["first_active_period"]), period)
-    last = period_ordinal(pd.DatetimeIndex(shares["last_active_period"]), period)
-    active = (h_ord[None, :] >= first[:, None]) & (h_ord[None, :] <= last[:, None])
-    parent_code, parents = factorize(shares, PARENT)
-    n_parents = len(parents)
-    rule = shares["lifecycle_rule"].to_numpy(object)
-    weight, basis = period_basis(shares, history, config, cycle_date, len(starts))
-    share, all_zero = split_shares(
-        parent_code,
-        n_parents,
-        weight,
-        rule,
-        reference_positions(shares),
-        shares["scale"].to_numpy(float),
-        shares["initial_share"].to_numpy(float),
-        active,
-    )
-
-    any_active = np.zeros((n_parents, len(starts)), dtype=bool)
-    np.logical_or.at(any_active, parent_code, active)
-    non_waiting = np.zeros_like(any_active)
-    np.logical_or.at(non_waiting, parent_code, active & (rule != "awaiting_history")[:, None])
-    product_active = np.ones_like(any_active)
-    if products is not None:
-        p_from, p_to = span_bounds(products, period)
-        pos = lookup(parents, ["product"], products)
-        pf = np.where(pos >= 0, p_from[np.clip(pos, 0, None)], np.nan)[:, None]
-        pt = np.where(pos >= 0, p_to[np.clip(pos, 0, None)], np.nan)[:, None]
-        with np.errstate(invalid="ignore"):
-            product_active = (np.isnan(pf) | (h_ord[None, :] >= pf)) & (np.isnan(pt) | (h_ord[None, :] <= pt))
-    reason = np.select(
-        [~product_active, ~any_active, ~non_waiting],
-        ["product_not_active", "no_active_child", "awaiting_history"],
-        "no_share_among_active",
-    ).astype(object)
-    reason[~all_zero] = None
-    return share, reason[parent_code], basis
-
-
 def reinitialize_target(
     shares: pd.DataFrame,
     history: pd.DataFrame,
-    config: PlanningConfig,
+    settings: ShareSettings,
     cycle_date: pd.Timestamp,
     products: pd.DataFrame | None = None,
+    period_basis: pd.DataFrame | None = None,
 ) -> pd.DataFrame:
-    """One row per child and horizon period: target = period share x parent baseline."""
-    period = config.calendar.period
-    starts = horizon_starts(cycle_date, config.calendar.horizon, period)
+    """One row per child and horizon period: target = period share x parent baseline.
+
+    period_basis: the cycle's stored period basis (`period_basis` stage); without
+    it the per-period methods' basis is computed here from `history`.
+    """
+    settings = ShareSettings.of(settings)
+    period = settings.period
+    starts = horizon_starts(cycle_date, settings.horizon, period)
     h = len(starts)
     shares = shares.reset_index(drop=True)
-    baseline = parent_baselines(shares, history, config, cycle_date)
-    share, reason, basis = period_shares(shares, config, cycle_date, products, history)
+    baseline = parent_baselines(shares, history, settings, cycle_date)
+    stored = None if period_basis is None else stored_basis(shares, period_basis, starts)
+    share, reason, basis = period_shares(shares, settings, cycle_date, products, history, basis=stored)
     out = shares[LEAF].loc[shares.index.repeat(h)].reset_index(drop=True)
     out["period_start"] = np.tile(starts.values, len(shares))
     out["cycle_date"] = cycle_date
     out["share"] = share.ravel()
     out["parent_baseline"] = np.repeat(baseline, h)
     out["target"] = out["share"].to_numpy() * out["parent_baseline"].to_numpy()
-    out["zero_share_reason"] = reason.ravel()
-    out["share_basis"] = basis.ravel()
+    out["zero_reason"] = reason.ravel()
+    out["basis"] = basis.ravel()
     return out[TARGET_COLUMNS]
 
 
@@ -170,7 +126,9 @@ def parents_with_mix_change(target: pd.DataFrame, shares: pd.DataFrame, toleranc
     whose share starts or stops inside the horizon), zero_periods.
     """
     if target.empty:
-        return pd.DataFrame(columns=PARENT + ["first_change", "periods_with_change", "phasing_in", "phasing_out", "zero_periods"])
+        return pd.DataFrame(
+            columns=PARENT + ["first_change", "periods_with_change", "phasing_in", "phasing_out", "zero_periods"]
+        )
     t = target.sort_values(LEAF + ["period_start"], kind="stable")
     previous = t.groupby(LEAF, sort=False)["share"].shift()
     changed = (t["share"] - previous).abs() > tolerance
@@ -189,8 +147,40 @@ def parents_with_mix_change(target: pd.DataFrame, shares: pd.DataFrame, toleranc
 
     in_ = customers((shares["first_active_period"] > start) & (shares["lifecycle_rule"] != "awaiting_history"))
     out_ = customers(shares["last_active_period"] < end)
-    zero = target[target["zero_share_reason"].notna()].drop_duplicates(PARENT + ["period_start"]).groupby(PARENT).size()
+    zero = target[target["zero_reason"].notna()].drop_duplicates(PARENT + ["period_start"]).groupby(PARENT).size()
     per_parent["phasing_in"] = in_.reindex(per_parent.index).fillna("")
     per_parent["phasing_out"] = out_.reindex(per_parent.index).fillna("")
     per_parent["zero_periods"] = zero.reindex(per_parent.index).fillna(0).astype(np.int64)
     return per_parent.reset_index()
+
+
+def run(
+    share_tables: pd.DataFrame,
+    period_basis: pd.DataFrame,
+    lifecycle_history: pd.DataFrame,
+    products: pd.DataFrame,
+    cycle_calendar: pd.DataFrame,
+    settings: ShareSettings,
+    log: Log = quiet,
+) -> StageResult:
+    """The reinitialized target from the stored period basis, its figures and the check that shares sum to one."""
+    cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
+    target = reinitialize_target(share_tables, lifecycle_history, settings, cycle_date, products, period_basis)
+    first = target[target["period_start"] == target["period_start"].min()] if len(target) else target
+    mix = parents_with_mix_change(target, share_tables)
+    parent_periods = target.drop_duplicates(["product", "site", "period_start"])
+    zero = target[target["zero_reason"].notna()].drop_duplicates(["product", "site", "period_start"])
+    figures = {
+        "horizon_periods": settings.horizon,
+        "target_total_per_period": float(first["target"].sum()),
+        "parents_with_zero_baseline": int(first.loc[first["parent_baseline"] == 0, PARENT].drop_duplicates().shape[0]),
+        "parents_with_mix_change": mix,
+        "parents_with_mix_change_count": len(mix),
+        "zero_periods_by_reason": zero.groupby("zero_reason").size().rename("parent_periods").reset_index(),
+        "parent_periods_by_basis": parent_periods["basis"].value_counts().rename_axis("basis").reset_index(),
+    }
+    return StageResult(
+        outputs={"reinitialized_target": target},
+        metadata={"reinitialized_target": figures},
+        checks={SHARES_SUM_TO_ONE: CheckRows(find_shares_not_summing_to_one(target))},
+    )

@@ -1,647 +1,96 @@
 """Stage 4, `share_tables`: each child's base share of its parent, and its lifecycle rule.
 
 The parent is product x site; its children are the customer spans active in
-any period of the horizon (`lifecycle_history.active_children`). The share
-table has one row per child; the shares per horizon period are derived from it
-in `reinitialized_target` (`split_shares` below does both, `period_basis`
-gives the per-period methods their weight in each period).
+any period of the horizon (`pipelines.engines.children.active_children`). The
+share engine computes the table, one row per child: the history share over
+the established children from the class's window and method, with the
+fallback windows (`pipelines.engines.shares`, where the methods and their
+sources are stated), then the new-customer rules and the base share
+(`pipelines.engines.lifecycle_shares`). The per-period methods' weights per
+horizon period are the next stage, `period_basis`; the shares per horizon
+period are `reinitialized_target`'s.
 
-**History share.** Computed over the *established* children (at least
-`lifecycle.min_history_periods` distinct periods of own history) from the
-`window` periods before the cycle date, per product class. Share methods
-(Gross & Sohl 1990; Hyndman & Athanasopoulos, FPP 3rd ed., section 11.3):
-
-- `pooled` (proportion of historical averages):
-  p_j = sum_t y_{j,t} / sum_t Y_t, with Y_t = sum_j y_{j,t}.
-- `mean_of_ratios` (average of historical proportions):
-  p_j = (1 / |T+|) sum_{t in T+} y_{j,t} / Y_t, where T+ are the window's
-  periods with Y_t > 0. A period with no parent volume has no proportion to
-  average, so it is left out (the rule for a zero denominator).
-- `smoothed` (exponentially weighted proportions; Brown 1962, exponential
-  smoothing applied to the vector of proportions): over the window's periods,
-  oldest first, p_j starts at the proportion y_{j,t}/Y_t of the first period
-  with Y_t > 0 and is then updated by
-  p_{j,t} = alpha x y_{j,t} / Y_t + (1 - alpha) x p_{j,t-1}
-  (alpha = the class's `smoothing`). A period with no parent volume (or a
-  shortage) leaves p unchanged. Each update is a convex combination of two
-  probability vectors, so p stays one. The start value weighs (1 - alpha)^(n-1)
-  after n periods with volume: a window of a few times 1 / alpha makes it
-  negligible (alpha 0.2 over 26 weeks: 0.4%).
-
-Two methods give the established children a share per horizon period, their
-*per-period basis* (`period_basis`); the share table holds their pooled share
-over the window (above, with the same fallbacks) as `history_share`, which is
-both their one-row summary and their fallback in any period without a basis:
-
-- `seasonal` (shares by period of the year): the share of child j in horizon
-  period h is the pooled share over the history periods with h's period of the
-  year, taken from the `seasonal_years` (default 3) most recent occurrences of
-  each period of the year before the cycle date. Period of the year: the ISO
-  week number for weeks, with week 53 counted as week 52 (a long year's last
-  two weeks pool as one period of the year, and a horizon week 53 reads week
-  52's history), or the month for months. `seasonal_band` k > 0 pools the k
-  neighbouring periods of the year on each side too, each from its own most
-  recent occurrences (wrapping round the year: week 1's neighbours include
-  week 52), damping noise at the cost of a flatter season. Shortage periods are
-  left out (see below). A parent without volume in the pooled periods of h's period of the
-  year falls back to its pooled share in h.
-- `forecast_proportions` (Athanasopoulos, Ahmed & Hyndman 2009): the
-  children's own base forecasts, from the models the class uses (the forecast
-  stage's `base_forecasts` run at leaf grain on the children's lifecycle
-  history before the cycle date, shortage periods included as the forecast
-  stage has them, negatives set to 0): share_{j,h} =
-  yhat_{j,h} / sum_k yhat_{k,h} over the parent's established children. Where
-  they are all 0 in a period, the pooled share is the basis there.
-
-Where a per-period method fell back is recorded per parent and period in the
-`share_basis` column of `reinitialized_target` (`pooled_fallback`). The
-per-period basis is computed there, from the same lifecycle history, rather
-than stored here: a second output table would make share_tables a multi-asset,
-which Dagster will not rematerialize when only `share_tables` is selected
-(`make rebuild ASSET=share_tables`).
-
-A parent period with a recorded supply shortage (any of its rows has
-`shortage = True`) is left out of the window entirely, for every child, so a
-stock-out does not move share between customers.
-
-Fallback, recorded per parent: when the parent has no volume in its window,
-each of the class's `fallback_windows` is tried in turn (`longer_window`);
-when none has volume, the established children share evenly (`even`).
-
-**New customers** (fewer own periods than `min_history_periods`; their own
-short history is left out of the history shares above, though it stays in the
-parent's baseline and forecast):
-
-- `reference`: with a `reference_customer` that is an established child of the
-  same parent, the new customer's share is scale x the reference's history
-  share, *taken from* the reference, whose share drops by that amount. The
-  scale is the span's `scale`, else config `lifecycle.reference_scale`
-  (default 0.5: new customer and reference split the reference's share evenly;
-  1 = like-for-like replacement). When several new customers take more than a
-  reference has (scales summing above 1), their takes are scaled down to
-  exactly the reference's share.
-- `initial_share`: otherwise, with a planner-given `initial_share` s, the new
-  customer gets s and the other children are scaled by (1 - S), S the sum of
-  the initial shares active in the period (above 1, the initial shares are
-  renormalised to sum to 1 and the others get 0).
-- `awaiting_history`: with neither, no share until the customer has
-  `min_history_periods` periods of history; the asset lists such customers in
-  a WARN check (`new_customer_without_share`).
-
-Established children are labelled `phase_in` (first active period after the
-cycle date), `phase_out` (last active period before the horizon ends) or
-`none`.
-
-**Base share vs period share.** In horizon period h only the children active
-in h hold weight: w_j = p_j (p_{j,h} for a per-period method) for an
-established child (less what new customers
-active in h take from it), w_n = take_n for a reference-rule new customer. The
-period's shares are (1 - min(S_h, 1)) x w_j / sum_k w_k for those, and the
-initial shares (renormalised when S_h > 1) for the initial-share customers.
-They sum to 1, or are all 0 when no active child holds any weight (the reason
-is recorded per period in `reinitialized_target`). The share table's `share`
-is this rule with every child active: the base share (for a per-period method,
-from its pooled summary). When a child is
-inactive its weight leaves the sum and the others are renormalised, so a
-reference keeps its whole share until its new customer starts, and a new
-customer replacing a reference that ends (scale 1) takes exactly its share.
+This stage first checks that each class window fits the history (a window
+longer than the history is a config error naming the key), and judges the
+table: new customers without a share (`new_customers_have_share`) and too
+many parents on a fallback (`fallback_share_within_limit`), both WARN.
 """
 
 from __future__ import annotations
 
-import numpy as np
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+
 import pandas as pd
 
-from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal, season_length
-from pipelines.config import PER_PERIOD_METHODS, PlanningConfig
-from pipelines.keys import LEAF, PARENT, factorize, lookup
-from pipelines.stages.statistical_forecast import SeriesGrid, base_forecasts, series_grid
-
-SHARE_COLUMNS = LEAF + [
-    "cycle_date",
-    "product_class",
-    "share",
-    "history_share",
-    "method",
-    "window",
-    "window_used",
-    "window_start",
-    "fallback",
-    "child_volume",
-    "parent_volume",
-    "lifecycle_rule",
-    "first_active_period",
-    "last_active_period",
-    "own_periods",
-    "reference_customer",
-    "scale",
-    "initial_share",
-    "lifecycle_detail",
-]
-NEW_CUSTOMER_RULES = ("reference", "initial_share", "awaiting_history")
-# the `share_basis` (pipelines.schemas.SHARE_BASES) of a parent period where a per-period method has a basis
-BASIS_OF_METHOD = {"seasonal": "period_of_year", "forecast_proportions": "children_forecast"}
+from pipelines.checks import FALLBACK_SHARE_WITHIN_LIMIT, NEW_CUSTOMERS_HAVE_SHARE
+from pipelines.config import PlanningConfig, check_windows_fit
+from pipelines.engines.children import active_children
+from pipelines.engines.lifecycle_shares import find_new_customers_without_share, new_customers
+from pipelines.engines.share_settings import ShareSettings
+from pipelines.engines.shares import compute_shares
+from pipelines.results import CheckRows, Log, StageResult, quiet
+from pipelines.schemas import LIFECYCLE_RULES
 
 
-def window_volumes(age: np.ndarray, qty: np.ndarray, child: np.ndarray, n_children: int, window: int) -> np.ndarray:
-    """Volume of each child over the last `window` periods (age 1 = the period before the cycle)."""
-    inside = (age >= 1) & (age <= window)
-    return np.bincount(child[inside], weights=qty[inside], minlength=n_children)
+@dataclass(frozen=True)
+class ShareTableSettings:
+    """The share engine's settings, the class windows that must fit the history, the fallback limit."""
+
+    share: ShareSettings
+    windows: Mapping[str, int] = field(default_factory=dict)
+    max_fallback_share: float = 0.10
+    source: Path = Path("<memory>")
+
+    @classmethod
+    def of(cls, config: PlanningConfig) -> ShareTableSettings:
+        return cls(
+            ShareSettings.of(config), config.class_windows(), config.monitoring.max_fallback_share, config.source
+        )
 
 
-def period_proportions(
-    age: np.ndarray, qty: np.ndarray, child: np.ndarray, parent_of_child: np.ndarray, n_parents: int, window: int
-) -> tuple[np.ndarray, np.ndarray]:
-    """(ratio (n, window), has_volume (n, window)): y_{j,t} / Y_t of every child and window period.
-
-    Column a - 1 holds age a (column 0 = the period before the cycle). Y_t is the
-    volume of the child's parent over the rows given; where Y_t = 0 the ratio is 0
-    and has_volume is False.
-    """
-    n_children = len(parent_of_child)
-    inside = (age >= 1) & (age <= window)
-    c, a, q = child[inside], age[inside], qty[inside]
-    # child volume per (child, period) and parent volume per (parent, period)
-    child_cell = c * window + (a - 1)
-    child_t = np.bincount(child_cell, weights=q, minlength=n_children * window).reshape(n_children, window)
-    parent_t = np.zeros((n_parents, window))
-    np.add.at(parent_t, parent_of_child, child_t)
-    denominator = parent_t[parent_of_child]
-    has_volume = denominator > 0
-    with np.errstate(invalid="ignore", divide="ignore"):
-        ratio = np.where(has_volume, child_t / denominator, 0.0)
-    return ratio, has_volume
-
-
-def mean_of_ratios(
-    age: np.ndarray, qty: np.ndarray, child: np.ndarray, parent_of_child: np.ndarray, n_parents: int, window: int
-) -> np.ndarray:
-    """Average over the window's periods with parent volume of child / parent volume.
-
-    Returns one value per child (0 for a child of a parent with no volume).
-    """
-    ratio, has_volume = period_proportions(age, qty, child, parent_of_child, n_parents, window)
-    periods_with_volume = has_volume.sum(axis=1)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(periods_with_volume > 0, ratio.sum(axis=1) / periods_with_volume, 0.0)
-
-
-def smoothed_proportions(
-    age: np.ndarray,
-    qty: np.ndarray,
-    child: np.ndarray,
-    parent_of_child: np.ndarray,
-    n_parents: int,
-    window: int,
-    alpha: float,
-) -> np.ndarray:
-    """Brown's (1962) exponential smoothing of each child's proportion over the window, oldest period first.
-
-    p starts at the proportion of the window's first period with parent volume
-    and is then updated by p_t = alpha x y_{j,t} / Y_t + (1 - alpha) x p_(t-1)
-    in every later period with parent volume; a period without (Y_t = 0)
-    leaves p unchanged. Returns p after the window's last period (0 for a child
-    of a parent with no volume). One pass over the window's periods, each
-    vectorised over all children.
-    """
-    ratio, has_volume = period_proportions(age, qty, child, parent_of_child, n_parents, window)
-    p = np.zeros(len(parent_of_child))
-    started = np.zeros(len(parent_of_child), dtype=bool)
-    for col in range(window - 1, -1, -1):  # age window .. 1: oldest to newest
-        r, has = ratio[:, col], has_volume[:, col]
-        p = np.where(has, np.where(started, alpha * r + (1.0 - alpha) * p, r), p)
-        started |= has
-    return p
-
-
-def shortage_periods(history: pd.DataFrame, config: PlanningConfig) -> np.ndarray:
-    """True on every history row whose parent x period has a recorded shortage on any row.
-
-    Only under `cleansing.shortages: exclude`: these rows count neither toward
-    shares nor toward the parent baseline. Under `fill_baseline` the cleansing
-    stage has already replaced their values, so they count like any other row.
-    A history without a `shortage` column has none.
-    """
-    if config.cleansing.shortages != "exclude" or "shortage" not in history.columns or history.empty:
-        return np.zeros(len(history), dtype=bool)
-    flag = history["shortage"].to_numpy(bool)
-    if not flag.any():
-        return flag
-    code, _ = factorize(history, PARENT + ["period_start"])
-    short = np.zeros(int(code.max()) + 1, dtype=bool)
-    short[code[flag]] = True
-    return short[code]
-
-
-def complete_children(children: pd.DataFrame, config: PlanningConfig, cycle_date: pd.Timestamp) -> pd.DataFrame:
-    """`children` with every lifecycle column, defaults filled in for the absent ones.
-
-    Only the leaf keys and product_class are required. Absent columns mean: active
-    in the whole horizon, established (`own_periods` = min_history_periods), no
-    reference customer, scale or initial share.
-    """
-    period = config.calendar.period
-    out = children.reset_index(drop=True).copy()
-    starts = horizon_starts(cycle_date, config.calendar.horizon, period)
-    defaults = {
-        "first_active_period": starts[0],
-        "last_active_period": starts[-1],
-        "own_periods": config.lifecycle.min_history_periods,
-        "reference_customer": None,
-        "scale": np.nan,
-        "initial_share": np.nan,
+def run(
+    lifecycle_history: pd.DataFrame,
+    products: pd.DataFrame,
+    customer_spans: pd.DataFrame,
+    cycle_calendar: pd.DataFrame,
+    settings: ShareTableSettings,
+    log: Log = quiet,
+) -> StageResult:
+    """The share table of the active children, its figures and its two WARN checks."""
+    cycle = cycle_calendar.iloc[0]
+    check_windows_fit(settings.windows, int(cycle["history_periods"]), settings.source)
+    cycle_date = pd.Timestamp(cycle["cycle_date"])
+    children = active_children(customer_spans, products, lifecycle_history, settings.share, cycle_date)
+    shares = compute_shares(lifecycle_history, children, settings.share, cycle_date)
+    parents = shares.drop_duplicates(["product", "site"])
+    used = parents[parents["fallback"] != "none"]
+    fraction = len(used) / len(parents) if len(parents) else 0.0
+    limit = settings.max_fallback_share
+    columns = ["product_class", "product", "site", "customer", "share", "window_used", "fallback"]
+    by_rule = shares["lifecycle_rule"].value_counts().reindex(list(LIFECYCLE_RULES), fill_value=0).rename("children")
+    new = new_customers(shares)
+    figures = {
+        "cycle_date": str(cycle_date.date()),
+        "parents": len(parents),
+        "children": len(shares),
+        "parents_with_fallback": int((parents["fallback"] != "none").sum()),
+        "fallbacks_by_class": parents.groupby(["product_class", "fallback"]).size().rename("parents").reset_index(),
+        "largest_shares": shares.sort_values("share", ascending=False)[columns],
+        "children_by_lifecycle_rule": by_rule.rename_axis("lifecycle_rule").reset_index(),
+        "new_customers": new,
+        "new_customer_count": len(new),
     }
-    for column, value in defaults.items():
-        if column not in out.columns:
-            out[column] = value
-    out["reference_customer"] = out["reference_customer"].astype(object).where(out["reference_customer"].notna(), None)
-    out["scale"] = pd.to_numeric(out["scale"]).astype(float)
-    out["initial_share"] = pd.to_numeric(out["initial_share"]).astype(float)
-    out["own_periods"] = out["own_periods"].astype(np.int64)
-    return out
-
-
-def split_shares(
-    parent_code: np.ndarray,
-    n_parents: int,
-    history_share: np.ndarray,
-    rule: np.ndarray,
-    ref_pos: np.ndarray,
-    scale: np.ndarray,
-    initial_share: np.ndarray,
-    active: np.ndarray,
-) -> tuple[np.ndarray, np.ndarray]:
-    """Shares of every child in every period, per the rules of the module docstring.
-
-    parent_code (n,): parent of each child, 0..n_parents-1. history_share (n,)
-    or (n, T): p_j of established children (ignored for new ones), the same in
-    every period or one per period (the per-period basis of `seasonal` and
-    `forecast_proportions`, see `period_basis`). rule (n,): the child's
-    lifecycle_rule. ref_pos (n,): row of the reference child for `reference`
-    rows (ignored elsewhere). scale, initial_share (n,): used by their rule.
-    active (n, T) bool: the child is active in period t.
-
-    Returns (shares (n, T), all_zero (n_parents, T)): shares sum to 1 per parent
-    and period, except where all_zero (no active child holds any weight).
-    """
-    n, t = active.shape
-    act = active.astype(float)
-    new = np.isin(rule, NEW_CUSTOMER_RULES)
-    is_ref = rule == "reference"
-    is_init = rule == "initial_share"
-    base = np.asarray(history_share, dtype=float)
-    p = np.where(new[:, None], 0.0, base if base.ndim == 2 else base[:, None])  # (n, T) or (n, 1)
-    ref = np.where(is_ref, ref_pos, 0)
-    k = np.where(is_ref, scale, 0.0)
-    # what the active new customers ask of each reference, as a multiple of its share
-    asked = np.zeros((n, t))
-    np.add.at(asked, ref[is_ref], k[is_ref, None] * act[is_ref])
-    cut = np.where(asked > 1.0, 1.0 / np.where(asked > 1.0, asked, 1.0), 1.0)
-    take = np.where(is_ref[:, None], k[:, None] * p[ref] * cut[ref] * act, 0.0)
-    given = np.zeros((n, t))
-    np.add.at(given, ref[is_ref], take[is_ref])
-    weight = np.clip(p - given, 0.0, None) * act * (~new)[:, None] + take
-    s_init = np.where(is_init[:, None], np.nan_to_num(initial_share)[:, None] * act, 0.0)
-
-    weight_sum = np.zeros((n_parents, t))
-    np.add.at(weight_sum, parent_code, weight)
-    init_sum = np.zeros((n_parents, t))
-    np.add.at(init_sum, parent_code, s_init)
-    w_sum, i_sum = weight_sum[parent_code], init_sum[parent_code]
-    kept = 1.0 - np.minimum(i_sum, 1.0)  # what the initial shares leave to the others
-    with np.errstate(invalid="ignore", divide="ignore"):
-        from_weight = np.where(w_sum > 0, weight / w_sum * kept, 0.0)
-        # each initial share's part of the initial total (<= 1), times what the total may take:
-        # min(S, 1) beside weighted children, all of it when there are none
-        part = np.where(i_sum > 0, s_init / i_sum, 0.0)
-        from_init = part * np.where(w_sum > 0, np.minimum(i_sum, 1.0), 1.0)
-    shares = np.clip(from_weight + from_init, 0.0, 1.0)
-    all_zero = (weight_sum <= 0) & (init_sum <= 0)
-    return shares, all_zero
-
-
-def _history_shares(
-    history: pd.DataFrame, children: pd.DataFrame, established: np.ndarray, config: PlanningConfig, cycle_ord: int
-) -> dict[str, np.ndarray]:
-    """History share, window and fallback of every child (new children: share 0)."""
-    period = config.calendar.period
-    n = len(children)
-    parent_code, parents = factorize(children, PARENT)
-    n_parents = len(parents)
-    child_of_row = lookup(history, LEAF, children)
-    row_ok = (child_of_row >= 0) & ~shortage_periods(history, config)
-    child = child_of_row[row_ok]
-    qty = history["quantity"].to_numpy(float)[row_ok]
-    age = cycle_ord - period_ordinal(history["period_start"], period)[row_ok]
-    est_row = established[child]  # only established children's history makes the shares
-
-    out = {
-        "history_share": np.zeros(n),
-        "window_used": np.zeros(n, dtype=np.int64),
-        "fallback": np.full(n, "even", dtype=object),
-        "child_volume": np.zeros(n),
-        "parent_volume": np.zeros(n),
-        "method": np.empty(n, dtype=object),
-        "window": np.zeros(n, dtype=np.int64),
-    }
-    for name, pc in config.product_classes.items():  # a few classes, not a loop over series
-        in_class = (children["product_class"] == name).to_numpy()
-        if not in_class.any():
-            continue
-        out["method"][in_class] = pc.method
-        out["window"][in_class] = pc.window
-        decided = ~in_class  # children of other classes are not ours to decide
-        for w in (pc.window, *pc.fallback_windows):
-            cv = window_volumes(age, qty, child, n, w)
-            pv = np.bincount(parent_code, weights=cv * established, minlength=n_parents)[parent_code]
-            take = ~decided & (pv > 0)
-            if pc.method == "mean_of_ratios":
-                s = mean_of_ratios(age[est_row], qty[est_row], child[est_row], parent_code, n_parents, w)
-            elif pc.method == "smoothed":
-                s = smoothed_proportions(age[est_row], qty[est_row], child[est_row], parent_code, n_parents, w, pc.smoothing)
-            else:  # pooled; and the pooled summary (and per-period fallback) of the per-period methods
-                s = np.divide(cv, pv, out=np.zeros(n), where=pv > 0) * established
-            out["history_share"][take] = s[take]
-            out["window_used"][take] = w
-            out["fallback"][take] = "none" if w == pc.window else "longer_window"
-            out["child_volume"][take] = cv[take]
-            out["parent_volume"][take] = pv[take]
-            decided |= take
-        even = ~decided
-        if even.any():
-            counts = np.bincount(parent_code[even & established], minlength=n_parents)
-            with np.errstate(divide="ignore"):
-                out["history_share"][even] = np.where(established[even], 1.0 / counts[parent_code[even]], 0.0)
-            # with no volume in any window the child volume is reported over the configured window
-            out["child_volume"][even] = window_volumes(age, qty, child, n, pc.window)[even]
-    return out
-
-
-def _lifecycle_rules(children: pd.DataFrame, established: np.ndarray, config: PlanningConfig, cycle_date: pd.Timestamp):
-    """(rule, ref_pos, scale, initial_share, detail) per child; see the module docstring."""
-    n_min = config.lifecycle.min_history_periods
-    starts = horizon_starts(cycle_date, config.calendar.horizon, config.calendar.period)
-    new = ~established
-    reference = children["reference_customer"]
-    has_ref = new & reference.notna().to_numpy()
-    ref_key = children[PARENT].assign(customer=reference.fillna("").to_numpy())
-    ref_pos = lookup(ref_key, LEAF, children)
-    ref_ok = has_ref & (ref_pos >= 0) & established[np.clip(ref_pos, 0, None)]
-    has_init = new & ~ref_ok & children["initial_share"].notna().to_numpy()
-    awaiting = new & ~ref_ok & ~has_init
-    first = pd.DatetimeIndex(children["first_active_period"])
-    last = pd.DatetimeIndex(children["last_active_period"])
-    phase_in = established & (first > starts[0])
-    phase_out = established & ~phase_in & (last < starts[-1])
-    rule = np.select(
-        [ref_ok, has_init, awaiting, phase_in, phase_out], NEW_CUSTOMER_RULES + ("phase_in", "phase_out"), "none"
-    ).astype(object)
-
-    scale = np.where(ref_ok, children["scale"].fillna(config.lifecycle.reference_scale).to_numpy(float), np.nan)
-    initial = np.where(has_init, children["initial_share"].to_numpy(float), np.nan)
-
-    # the rule in words; built as whole columns (one string per child)
-    ref_text = reference.fillna("").astype(str)
-    own = children["own_periods"].astype(str)
-    history_text = own + " of " + str(n_min) + " periods of own history"
-    no_ref = pd.Series(
-        np.where(
-            has_ref & ~ref_ok,
-            "reference " + ref_text + " is not an established customer of this product x site; ",
-            "",
-        ),
-        index=children.index,
+    fallback_rows = used[["product_class", "product", "site", "fallback", "window", "window_used"]]
+    return StageResult(
+        outputs={"share_tables": shares},
+        metadata={"share_tables": figures},
+        checks={
+            NEW_CUSTOMERS_HAVE_SHARE: CheckRows(find_new_customers_without_share(shares)),
+            FALLBACK_SHARE_WITHIN_LIMIT: CheckRows(
+                fallback_rows if fraction > limit else used.iloc[0:0],
+                {"parents_with_fallback": f"{len(used)} of {len(parents)} ({fraction:.1%}; limit {limit:.1%})"},
+            ),
+        },
     )
-    detail = pd.Series("share from history", index=children.index, dtype=object)
-    detail[ref_ok] = (
-        "new customer (" + history_text[ref_ok] + "): "
-        + pd.Series(scale, index=children.index)[ref_ok].map("{:g}".format)
-        + " x the share of reference " + ref_text[ref_ok] + ", taken from it"
-    )
-    detail[has_init] = (
-        "new customer (" + history_text[has_init] + "): " + no_ref[has_init] + "initial share "
-        + pd.Series(initial, index=children.index)[has_init].map("{:g}".format) + ", the others scaled by 1 - it"
-    )
-    detail[awaiting] = (
-        "new customer (" + history_text[awaiting] + "): " + no_ref[awaiting]
-        + "no reference customer or initial share, so no share until " + str(n_min) + " periods of history"
-    )
-    detail[phase_in] = "share from history; active from " + pd.Series(first.strftime("%Y-%m-%d"), index=children.index)[phase_in]
-    detail[phase_out] = "share from history; active until " + pd.Series(last.strftime("%Y-%m-%d"), index=children.index)[phase_out]
-    late = (ref_ok | has_init | awaiting) & (first > starts[0])
-    detail[late] = detail[late] + "; active from " + pd.Series(first.strftime("%Y-%m-%d"), index=children.index)[late]
-    return rule, ref_pos, scale, initial, detail.to_numpy(object)
-
-
-def compute_shares(
-    history: pd.DataFrame, children: pd.DataFrame, config: PlanningConfig, cycle_date: pd.Timestamp
-) -> pd.DataFrame:
-    """The share table: one row per child, with its base share and lifecycle rule.
-
-    history: lifecycle history (leaf keys, period_start, quantity, optional shortage).
-    children: from `active_children` (leaf keys, product_class and the lifecycle
-    columns; see `complete_children` for the defaults of absent ones).
-    """
-    period = config.calendar.period
-    cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
-    children = complete_children(children, config, cycle_date)
-    n = len(children)
-    established = (children["own_periods"] >= config.lifecycle.min_history_periods).to_numpy()
-    base = _history_shares(history, children, established, config, cycle_ord)
-    rule, ref_pos, scale, initial, detail = _lifecycle_rules(children, established, config, cycle_date)
-    parent_code, parents = factorize(children, PARENT)
-    share, _ = split_shares(
-        parent_code, len(parents), base["history_share"], rule, ref_pos, scale, initial, np.ones((n, 1), dtype=bool)
-    )
-
-    out = children[LEAF].copy()
-    out["cycle_date"] = cycle_date
-    out["product_class"] = children["product_class"].to_numpy()
-    out["share"] = share[:, 0]
-    for column in ("history_share", "method", "window", "window_used", "fallback", "child_volume", "parent_volume"):
-        out[column] = base[column]
-    start_age = np.where(base["window_used"] > 0, base["window_used"], base["window"])
-    out["window_start"] = ordinal_to_start(cycle_ord - start_age, period)
-    out["lifecycle_rule"] = rule
-    out["first_active_period"] = pd.DatetimeIndex(children["first_active_period"])
-    out["last_active_period"] = pd.DatetimeIndex(children["last_active_period"])
-    out["own_periods"] = children["own_periods"].to_numpy()
-    out["reference_customer"] = np.where(rule == "reference", children["reference_customer"].to_numpy(object), None)
-    out["scale"] = scale
-    out["initial_share"] = initial
-    out["lifecycle_detail"] = detail
-    return out[SHARE_COLUMNS].sort_values(LEAF, kind="stable").reset_index(drop=True)
-
-
-def period_of_year(starts: pd.DatetimeIndex | pd.Series, period: str) -> tuple[np.ndarray, np.ndarray]:
-    """(period of the year 0..L-1, its year) of each period start.
-
-    Weeks: ISO week number 1..52 -> 0..51, with ISO week 53 counted as week 52
-    (so a long year's last two weeks are one period of the year), and the ISO
-    year. Months: month 1..12 -> 0..11 and the calendar year.
-    """
-    idx = pd.DatetimeIndex(starts)
-    if period == "week":
-        iso = idx.isocalendar()
-        return np.minimum(iso["week"].to_numpy(np.int64), 52) - 1, iso["year"].to_numpy(np.int64)
-    return idx.month.to_numpy(np.int64) - 1, idx.year.to_numpy(np.int64)
-
-
-def seasonal_periods(cycle_ord: int, period: str, years: int) -> tuple[np.ndarray, np.ndarray]:
-    """(ordinal, period of the year) of the history periods the `seasonal` method pools.
-
-    For each period of the year, its `years` most recent occurrences before the
-    cycle date (week 52 and the folded week 53 of one ISO year are one
-    occurrence). Counted on the calendar, not on the data: a child without
-    history in some of them simply has nothing there.
-    """
-    span = (years + 1) * (season_length(period) + 1)
-    ords = np.arange(cycle_ord - span, cycle_ord)
-    poy, year = period_of_year(ordinal_to_start(ords, period), period)
-    newest = np.full(season_length(period), np.iinfo(np.int64).min)
-    np.maximum.at(newest, poy, year)
-    keep = year > newest[poy] - years
-    return ords[keep], poy[keep]
-
-
-def seasonal_shares(
-    ordinal: np.ndarray,
-    qty: np.ndarray,
-    child: np.ndarray,
-    parent_of_child: np.ndarray,
-    n_parents: int,
-    cycle_ord: int,
-    horizon_poy: np.ndarray,
-    period: str,
-    years: int,
-    band: int,
-) -> tuple[np.ndarray, np.ndarray]:
-    """(share (n, H), has_volume (n_parents, H)) of the `seasonal` method.
-
-    share_{j,h} = sum of y_j over the pooled periods (`seasonal_periods`) whose
-    period of the year lies within `band` of h's, divided by the same sum over
-    all children of j's parent (the band wraps round the year: week 1's
-    neighbours include week 52). has_volume is False where that parent sum is
-    0; there share is 0 and the caller falls back.
-    """
-    length = season_length(period)
-    n = len(parent_of_child)
-    pooled_ords, pooled_poy = seasonal_periods(cycle_ord, period, years)
-    lo = int(pooled_ords.min())
-    table = np.full(cycle_ord - lo, -1, dtype=np.int64)  # period of the year of each pooled ordinal, -1 = not pooled
-    table[pooled_ords - lo] = pooled_poy
-    at = ordinal - lo
-    poy = np.where((at >= 0) & (at < len(table)), table[np.clip(at, 0, len(table) - 1)], -1)
-    inside = poy >= 0
-    cells = np.bincount(child[inside] * length + poy[inside], weights=qty[inside], minlength=n * length)
-    m = cells.astype(float).reshape(n, length)  # float even without rows (bincount of nothing is int)
-    if band:
-        m = sum(np.roll(m, d, axis=1) for d in range(-band, band + 1))
-    child_h = m[:, horizon_poy]
-    parent_h = np.zeros((n_parents, len(horizon_poy)))
-    np.add.at(parent_h, parent_of_child, child_h)
-    denominator = parent_h[parent_of_child]
-    share = np.divide(child_h, denominator, out=np.zeros_like(child_h), where=denominator > 0)
-    return share, parent_h > 0
-
-
-def children_forecasts(history: pd.DataFrame, children: pd.DataFrame, config: PlanningConfig, cycle_ord: int, horizon: int) -> np.ndarray:
-    """(n, horizon) base forecasts of `children` at leaf grain, with the models of each child's class.
-
-    The forecast stage's own functions (`series_grid`, `base_forecasts` with the
-    class forecast bottom-up, i.e. at leaf grain only) on the children's
-    lifecycle history before the cycle date; negative values are set to 0
-    there.
-    """
-    code = lookup(history, LEAF, children)
-    ok = code >= 0
-    ords = period_ordinal(history["period_start"], config.calendar.period)[ok]
-    grid = series_grid(code[ok], ords, history["quantity"].to_numpy(float)[ok], len(children), cycle_ord)
-    no_parents = SeriesGrid(series=np.zeros(0, np.int64), ordinal=np.zeros(0, np.int64), y=np.zeros(0), n_series=0)
-    classes = children["product_class"].to_numpy(object)
-    strategies = {name: "bottom_up" for name in pd.unique(classes)}
-    return base_forecasts(no_parents, grid, np.zeros(0, dtype=object), classes, strategies, config, horizon).leaf_fc
-
-
-def period_basis(
-    shares: pd.DataFrame, history: pd.DataFrame | None, config: PlanningConfig, cycle_date: pd.Timestamp, horizon: int | None = None
-) -> tuple[np.ndarray, np.ndarray]:
-    """(weight, share_basis (n, H)): each share-table row's history share in every horizon period.
-
-    weight is (n, H), or the (n,) history shares when no row has a per-period
-    method (the same in every period; `split_shares` takes either).
-
-    Classes with one share per child: the row's `history_share` in every period
-    (`history_share`). `seasonal` and `forecast_proportions`: the established
-    children's share of the period (`period_of_year`, `children_forecast`; see
-    the module docstring), else, where the parent has no basis in that period,
-    the pooled `history_share` (`pooled_fallback`). share_basis is the same on
-    every child of a parent in a period. New customers' weights are left to
-    `split_shares`, which ignores them. H is `horizon` (default: the calendar's).
-    history (lifecycle history) may be None only when no row has a per-period method.
-    """
-    period = config.calendar.period
-    h = horizon or config.calendar.horizon
-    cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
-    history_share = shares["history_share"].to_numpy(float)
-    parent_code, parents = factorize(shares, PARENT)
-    label = np.full((len(parents), h), "history_share", dtype=object)
-    methods = shares["method"].to_numpy(object)
-    if not np.isin(methods, PER_PERIOD_METHODS).any():
-        return history_share, label[parent_code]
-    weight = np.repeat(history_share[:, None], h, axis=1)
-    if history is None:
-        raise ValueError(f"the shares of methods {list(PER_PERIOD_METHODS)} differ per period and need the lifecycle history")
-
-    established = ~np.isin(shares["lifecycle_rule"].to_numpy(object), NEW_CUSTOMER_RULES)
-    classes = shares["product_class"].to_numpy(object)
-    horizon_poy, _ = period_of_year(horizon_starts(cycle_date, h, period), period)
-    child_of_row = lookup(history, LEAF, shares)
-    row_ok = (child_of_row >= 0) & ~shortage_periods(history, config)
-    ords = period_ordinal(history["period_start"], period)
-    qty = history["quantity"].to_numpy(float)
-    fp = (methods == "forecast_proportions") & established
-    forecasts = children_forecasts(history, shares[fp], config, cycle_ord, h) if fp.any() else np.zeros((0, h))
-    for name in pd.unique(classes[np.isin(methods, PER_PERIOD_METHODS)]):  # a few classes, not a loop over series
-        pc = config.product_classes[name]
-        in_class = classes == name
-        members = in_class & established
-        pos = np.cumsum(members) - 1  # row -> member index
-        p_code, p_members = factorize(shares[members], PARENT)
-        if pc.method == "seasonal":
-            rows = row_ok & members[np.clip(child_of_row, 0, None)]
-            share, has = seasonal_shares(
-                ords[rows], qty[rows], pos[child_of_row[rows]], p_code, len(p_members), cycle_ord, horizon_poy, period, pc.years, pc.band
-            )
-        else:
-            f = forecasts[np.cumsum(fp)[members] - 1]
-            total = np.zeros((len(p_members), h))
-            np.add.at(total, p_code, f)
-            share = np.divide(f, total[p_code], out=np.zeros_like(f), where=total[p_code] > 0)
-            has = total > 0
-        weight[members] = np.where(has[p_code], share, history_share[members, None])
-        # every parent of the class: a parent without established children has no basis of its own
-        label[parent_code[in_class]] = "pooled_fallback"
-        member_of_parent = lookup(parents, PARENT, p_members)
-        with_members = np.flatnonzero(member_of_parent >= 0)
-        label[with_members] = np.where(has[member_of_parent[with_members]], BASIS_OF_METHOD[pc.method], "pooled_fallback")
-    return weight, label[parent_code]
-
-
-def reference_positions(shares: pd.DataFrame) -> np.ndarray:
-    """Row of each `reference` row's reference customer in the same table (-1 elsewhere)."""
-    key = shares[PARENT].assign(customer=shares["reference_customer"].fillna("").to_numpy())
-    pos = lookup(key, LEAF, shares)
-    return np.where(shares["lifecycle_rule"].to_numpy() == "reference", pos, -1)
-
-
-def new_customers(shares: pd.DataFrame) -> pd.DataFrame:
-    """The new customers of a share table and how their share was set (for the planner)."""
-    new = shares[shares["lifecycle_rule"].isin(NEW_CUSTOMER_RULES)]
-    return new[LEAF + ["lifecycle_rule", "share", "own_periods", "first_active_period", "lifecycle_detail"]].reset_index(drop=True)
-
-
-def find_new_customers_without_share(shares: pd.DataFrame) -> pd.DataFrame:
-    """New customers that get no share until they have enough history (rule `awaiting_history`)."""
-    rows = shares[shares["lifecycle_rule"] == "awaiting_history"]
-    return rows[LEAF + ["own_periods", "first_active_period", "lifecycle_detail"]].reset_index(drop=True)

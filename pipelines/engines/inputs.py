@@ -3,7 +3,7 @@
 Every cell is read as a string and blanks stay '' so that nothing is parsed,
 guessed or dropped here; parsing and rejection happen in the stages, where
 each rejected line gets a reason. The columnar reader itself is
-`pipelines.stages.reader`.
+`pipelines.engines.reader`.
 """
 
 from __future__ import annotations
@@ -14,8 +14,8 @@ from pathlib import Path
 
 import pandas as pd
 
+from pipelines.engines.reader import DEFAULT_MAX_LINE_BYTES, read_text
 from pipelines.errors import InputFileError
-from pipelines.stages.reader import DEFAULT_MAX_LINE_BYTES, read_text
 
 SUFFIXES = (".csv", ".parquet")
 
@@ -90,7 +90,8 @@ def malformed_message(path: Path, malformed: pd.DataFrame, fields: int, limit: i
         for r in malformed.head(limit).itertuples()
     ]
     more = f"\n  ... and {len(malformed) - limit} more" if len(malformed) > limit else ""
-    return f"{path}: {len(malformed)} malformed line(s):\n" + "\n".join(lines) + more + "\nCorrect these lines and run again."
+    listed = "\n".join(lines)
+    return f"{path}: {len(malformed)} malformed line(s):\n{listed}{more}\nCorrect these lines and run again."
 
 
 def blanks_to_none(df: pd.DataFrame) -> pd.DataFrame:

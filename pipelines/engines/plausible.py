@@ -1,7 +1,7 @@
 """Plausible history: dates as written, and the stretch of periods the history can be trusted on.
 
-Pure rules shared by the history stages (no stage imports; an engine, to move
-to `pipelines/engines/` with the others):
+Pure rules shared by the history stages and the cycle date (an engine: it knows
+no stage and no Dagster):
 
 - `parse_dates`: cells to naive dates; a date-time with a UTC offset keeps the
   date and time as written. `year_outside`: a date-shaped cell whose year

@@ -24,7 +24,9 @@ from __future__ import annotations
 import numpy as np
 
 
-def _smoothed(series: np.ndarray, value: np.ndarray, rank: np.ndarray, count: np.ndarray, n_series: int, alpha: float, initial) -> np.ndarray:
+def _smoothed(
+    series: np.ndarray, value: np.ndarray, rank: np.ndarray, count: np.ndarray, n_series: int, alpha: float, initial
+) -> np.ndarray:
     """Final SES state per series of the values `value` (rank = 1-based position among its series' values)."""
     n = count[series]
     decay = 1.0 - alpha

@@ -5,7 +5,7 @@ Rolling origin (Tashman 2000; Hyndman & Athanasopoulos, FPP 3rd ed., section
 the cycle date and each earlier one `backtest.step` periods before the next.
 At each origin the history after it is held back; every series is re-classed
 and re-forecast from the history before it with the class's models, at both
-grains, and each strategy of `pipelines.stages.hierarchy` turns the base
+grains, and each strategy of `pipelines.engines.hierarchy` turns the base
 forecasts into coherent parent and leaf forecasts for `horizon` periods:
 
 - `top_down`: the parent forecast split by the class's share table computed
@@ -21,14 +21,12 @@ history counts (copied reference history shapes shares, it is not demand), and
 a parent's actuals are the sum of its children's, so the two grains agree.
 
 Accuracy per class, strategy and grain, pooled over all series, periods and
-origins (`pipelines.stages.accuracy`): WMAPE, bias, MASE (scaled by each
+origins (`pipelines.engines.accuracy`): WMAPE, bias, MASE (scaled by each
 series' in-sample naive differences at the origin, seasonal ones for a class
 with `seasonal: true`) and forecast value added over seasonal naive.
 
-Choice (`forecast_grain: auto`): the strategy with the lowest leaf-grain WMAPE,
-the leaf being where the plan is used; a tie goes to the strategy listed first
-in `backtest.strategies`. The margin is the runner-up's WMAPE minus the
-winner's, in WMAPE points.
+The choice of a class's strategy from this table (`strategy: auto`) is the
+next stage, `strategy_choice`.
 """
 
 from __future__ import annotations
@@ -40,18 +38,36 @@ import numpy as np
 import pandas as pd
 
 from pipelines.calendar import ordinal_to_start, period_ordinal, season_length
-from pipelines.config import PlanningConfig
+from pipelines.config_sections import BacktestConfig
+from pipelines.engines.accuracy import mase_scale
+from pipelines.engines.base_forecasts import base_forecasts
+from pipelines.engines.hierarchy import NEEDS_RESIDUALS, coherent_forecasts, parent_sums
+from pipelines.engines.models import ModelSettings, run_model_groups, series_grid
+from pipelines.engines.period_shares import period_shares
+from pipelines.engines.share_settings import ShareSettings
+from pipelines.engines.shares import compute_shares
 from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
-from pipelines.schemas import BENCHMARK
-from pipelines.stages.accuracy import mase_scale
-from pipelines.stages.hierarchy import NEEDS_RESIDUALS, coherent_forecasts, parent_sums
-from pipelines.stages.reinitialized_target import period_shares
-from pipelines.stages.share_tables import compute_shares
-from pipelines.stages.statistical_forecast import GRAIN_STRATEGY, base_forecasts, run_model_groups, series_grid
+from pipelines.results import Log, StageResult, quiet
+from pipelines.vocabulary import BENCHMARK
 
 ACCURACY_COLUMNS = ["product_class", "strategy", "grain", "metric", "value", "origins", "horizon", "series"]
-CHOICE_COLUMNS = ["product_class", "forecast_grain", "strategy", "leaf_wmape", "runner_up", "margin", "seasonal_naive_wmape", "beats_seasonal_naive"]
 _SUMS = ("abs_error", "error", "actual", "scaled", "scaled_cells")
+
+
+@dataclass(frozen=True)
+class BacktestSettings:
+    """What the backtest reads: its origins and strategies, the share engine's settings, the models."""
+
+    backtest: BacktestConfig
+    share: ShareSettings
+    models: ModelSettings
+
+    @classmethod
+    def of(cls, config) -> BacktestSettings:
+        """From a planning config (every class it holds); a BacktestSettings is returned as it is."""
+        if isinstance(config, BacktestSettings):
+            return config
+        return cls(config.backtest, ShareSettings.of(config), ModelSettings.of(config))
 
 
 @dataclass(frozen=True)
@@ -60,9 +76,9 @@ class BacktestResult:
     origins: list[pd.Timestamp]  # origins evaluated
 
 
-def origin_ordinals(config: PlanningConfig, cycle_ord: int, first_ord: int) -> list[int]:
+def origin_ordinals(settings: BacktestSettings, cycle_ord: int, first_ord: int) -> list[int]:
     """Origins (period ordinals), oldest first; an origin with no history before it is left out."""
-    bt = config.backtest
+    bt = settings.backtest
     last = cycle_ord - bt.horizon
     wanted = [last - i * bt.step for i in reversed(range(bt.origins))]
     return [o for o in wanted if o > first_ord]
@@ -75,42 +91,40 @@ def _dense(code: np.ndarray, ords: np.ndarray, qty: np.ndarray, n: int, start: i
     return flat.reshape(n, width)
 
 
-def _scales(grid, cls: np.ndarray, config: PlanningConfig) -> np.ndarray:
+def _scales(grid, cls: np.ndarray, settings: BacktestSettings) -> np.ndarray:
     """MASE scale per series: seasonal naive differences for seasonal classes, else naive (Hyndman & Koehler 2006)."""
     one = mase_scale(grid.series, grid.y, grid.n_series, 1)
-    sl = season_length(config.calendar.period)
-    seasonal = np.isin(cls, [n for n, pc in config.product_classes.items() if pc.models.seasonal])
+    sl = season_length(settings.share.period)
+    seasonal = np.isin(cls, [n for n, m in settings.models.choices.items() if m.seasonal])
     if not seasonal.any():
         return one
     m = mase_scale(grid.series, grid.y, grid.n_series, sl)
     return np.where(seasonal & np.isfinite(m), m, one)
 
 
-def _seasonal_naive(grid, horizon: int, period: str, log, timer) -> np.ndarray:
+def _seasonal_naive(grid, horizon: int, period: str, log) -> np.ndarray:
     sl = season_length(period)
     length = np.bincount(grid.series, minlength=grid.n_series)
     names = np.where(length > 0, "seasonal_naive", "zero").astype(object)
     season = np.where(length >= sl, sl, 1)
-    run = timer or run_model_groups
-    return np.clip(run(grid, names, season, horizon, log=log).forecast, 0, None)
+    return np.clip(run_model_groups(grid, names, season, horizon, log=log).forecast, 0, None)
 
 
 def run_backtest(
     history: pd.DataFrame,
     children: pd.DataFrame,
-    config: PlanningConfig,
+    settings: BacktestSettings,
     cycle_date: pd.Timestamp,
     log: Callable[[str], None] | None = None,
-    timer: Callable | None = None,
 ) -> BacktestResult:
     """The accuracy table (class x strategy x grain x metric); see the module docstring.
 
     history: lifecycle history (all origins); children: the cycle's active
-    children (leaf keys, product_class). `timer` wraps every model-library
-    call (benchmarks only).
+    children (leaf keys, product_class).
     """
-    period = config.calendar.period
-    bt = config.backtest
+    settings = BacktestSettings.of(settings)
+    period = settings.share.period
+    bt = settings.backtest
     h = bt.horizon
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
     children = children.reset_index(drop=True)
@@ -118,7 +132,7 @@ def run_backtest(
     child_class = children["product_class"].to_numpy()
     parent_class = child_class[first_rows(parent_of_child)]
     n_parents, n_children = len(parents), len(children)
-    classes = list(config.product_classes)
+    classes = list(settings.models.choices)
     class_code = {name: i for i, name in enumerate(classes)}
     p_cls = np.array([class_code[c] for c in parent_class], dtype=np.int64) if n_parents else np.zeros(0, np.int64)
     c_cls = p_cls[parent_of_child]
@@ -131,7 +145,8 @@ def run_backtest(
     ords = period_ordinal(history["period_start"], period)[ok]
     qty = history["quantity"].to_numpy(float)[ok]
     first_ord = int(ords.min()) if len(ords) else cycle_ord
-    origins = origin_ordinals(config, cycle_ord, first_ord)
+    origins = origin_ordinals(settings, cycle_ord, first_ord)
+    share_settings, models = settings.share, settings.models
 
     strategies = list(bt.strategies)
     names = strategies + [BENCHMARK]
@@ -144,19 +159,24 @@ def run_backtest(
             log(f"backtest origin {origin_date.date()}")
         p_grid = series_grid(pcode, ords, qty, n_parents, o)
         c_grid = series_grid(ccode, ords, qty, n_children, o)
-        base = base_forecasts(p_grid, c_grid, parent_class, child_class, {c: driver for c in classes}, config, h, log, timer)
-        shares = compute_shares(history, children, config, origin_date)
+        base = base_forecasts(p_grid, c_grid, parent_class, child_class, {c: driver for c in classes}, models, h, log)
+        shares = compute_shares(history, children, share_settings, origin_date)
         share_lookup = lookup(children, LEAF, shares)
         # the period shares the cycle would split by (per-period methods differ from the base share)
-        basis = period_shares(shares, config, origin_date, None, history, horizon=h)[0][share_lookup]
+        basis = period_shares(shares, share_settings, origin_date, None, history, horizon=h)[0][share_lookup]
         leaf_actual = _dense(ccode, ords, qty, n_children, o, h)
         parent_actual = parent_sums(leaf_actual, parent_of_child, n_parents)
-        scale = {"leaf": _scales(c_grid, child_class, config), "parent": _scales(p_grid, parent_class, config)}
+        scale = {"leaf": _scales(c_grid, child_class, settings), "parent": _scales(p_grid, parent_class, settings)}
         fc = {}
         for s in strategies:
-            p, l, _, _ = coherent_forecasts(s, base.parent_fc, base.leaf_fc, parent_of_child, basis, base.parent_res, base.leaf_res)
+            p, l, _, _ = coherent_forecasts(
+                s, base.parent_fc, base.leaf_fc, parent_of_child, basis, base.parent_res, base.leaf_res
+            )
             fc[s] = {"parent": p, "leaf": l}
-        fc[BENCHMARK] = {"parent": _seasonal_naive(p_grid, h, period, log, timer), "leaf": _seasonal_naive(c_grid, h, period, log, timer)}
+        fc[BENCHMARK] = {
+            "parent": _seasonal_naive(p_grid, h, period, log),
+            "leaf": _seasonal_naive(c_grid, h, period, log),
+        }
         for s in names:
             for grain, actual, cls in (("leaf", leaf_actual, c_cls), ("parent", parent_actual, p_cls)):
                 e = fc[s][grain] - actual
@@ -164,10 +184,14 @@ def run_backtest(
                 good = np.isfinite(q) & (q > 0)
                 scaled = np.divide(np.abs(e), q, out=np.zeros_like(e), where=good)
                 per_series = np.stack(
-                    [np.abs(e).sum(1), e.sum(1), actual.sum(1), scaled.sum(1), np.broadcast_to(good, e.shape).sum(1)], axis=1
+                    [np.abs(e).sum(1), e.sum(1), actual.sum(1), scaled.sum(1), np.broadcast_to(good, e.shape).sum(1)],
+                    axis=1,
                 )
                 np.add.at(sums[s][grain], cls, per_series)
-    return BacktestResult(accuracy=_table(sums, classes, c_cls, p_cls, len(origins), h), origins=[ordinal_to_start(np.array([o]), period)[0] for o in origins])
+    return BacktestResult(
+        accuracy=_table(sums, classes, c_cls, p_cls, len(origins), h),
+        origins=[ordinal_to_start(np.array([o]), period)[0] for o in origins],
+    )
 
 
 def _table(sums, classes, c_cls, p_cls, n_origins: int, h: int) -> pd.DataFrame:
@@ -194,26 +218,24 @@ def _table(sums, classes, c_cls, p_cls, n_origins: int, h: int) -> pd.DataFrame:
     return table[keep].reset_index(drop=True)
 
 
-def choose_strategies(accuracy: pd.DataFrame, config: PlanningConfig) -> pd.DataFrame:
-    """Per product class: the strategy in effect (the backtest's winner for `auto`), runner-up and margin.
 
-    Winner: lowest leaf-grain WMAPE among `backtest.strategies`, ties to the
-    one listed first; a class without volume in the backtest takes the first.
-    """
-    leaf = accuracy[(accuracy["grain"] == "leaf") & (accuracy["metric"] == "wmape")]
-    rows = []
-    candidates = list(config.backtest.strategies)
-    for name, pc in config.product_classes.items():
-        mine = leaf[leaf["product_class"] == name].set_index("strategy")["value"]
-        if mine.empty:
-            continue
-        scores = mine.reindex(candidates)
-        ranked = sorted(candidates, key=lambda s: (np.inf if np.isnan(scores[s]) else scores[s], candidates.index(s)))
-        chosen = ranked[0] if pc.forecast_grain == "auto" else GRAIN_STRATEGY[pc.forecast_grain]
-        score = float(mine.get(chosen, np.nan))
-        others = [s for s in ranked if s != chosen]
-        runner = others[0] if others else ""
-        margin = float(scores[runner] - score) if runner else np.nan
-        sn = float(mine.get(BENCHMARK, np.nan))
-        rows.append((name, pc.forecast_grain, chosen, score, runner, margin, sn, not bool(score > sn)))
-    return pd.DataFrame(rows, columns=CHOICE_COLUMNS)
+def run(
+    lifecycle_history: pd.DataFrame,
+    share_tables: pd.DataFrame,
+    cycle_calendar: pd.DataFrame,
+    settings: BacktestSettings,
+    log: Log = quiet,
+) -> StageResult:
+    """The accuracy table of every strategy and the benchmark, with the accuracy by class in the metadata."""
+    cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
+    children = share_tables[["product", "site", "customer", "product_class"]]
+    result = run_backtest(lifecycle_history, children, settings, cycle_date, log=log)
+    table = result.accuracy
+    wide = table.pivot_table(
+        index=["product_class", "grain", "strategy"], columns="metric", values="value"
+    ).reset_index()
+    figures = {
+        "origins": ", ".join(str(o.date()) for o in result.origins),
+        "accuracy_by_class": wide.sort_values(["product_class", "grain", "wmape"]) if len(wide) else wide,
+    }
+    return StageResult(outputs={"backtest_accuracy": table}, metadata={"backtest_accuracy": figures})

@@ -182,7 +182,9 @@ def mint_reconcile(
     return parent_out, leaf_out
 
 
-def clip_and_resum(parent: np.ndarray, leaf: np.ndarray, parent_of_child: np.ndarray) -> tuple[np.ndarray, np.ndarray, int]:
+def clip_and_resum(
+    parent: np.ndarray, leaf: np.ndarray, parent_of_child: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, int]:
     """Negative leaves set to 0 and the parents re-summed from their leaves; returns the count set to 0.
 
     Parents without children keep their own value, clipped at 0.
@@ -216,7 +218,7 @@ def coherent_forecasts(
     grain it does not use); basis: (n_children, h) top-down basis (share or
     target), also the fallback of `forecast_proportions`. Returns parent, leaf,
     a (n_children, h) code of what each leaf value came from ("basis",
-    "forecast_proportions", "own_forecast", "reconciled") and the number of
+    "children_forecast", "leaf_forecast", "reconciled") and the number of
     reconciled values set from negative to 0.
     """
     n_parents = parent_fc.shape[0]
@@ -228,10 +230,10 @@ def coherent_forecasts(
         return parent, leaf, source, 0
     if strategy == "forecast_proportions":
         leaf, fell_back = split_by_basis(parent_fc, leaf_fc, parent_of_child, fallback=basis)
-        source = np.where(fell_back, "basis", "forecast_proportions").astype(object)
+        source = np.where(fell_back, "basis", "children_forecast").astype(object)
         return parent_sums(leaf, parent_of_child, n_parents), leaf, source, 0
     if strategy == "bottom_up":
-        source = np.full(leaf_fc.shape, "own_forecast", dtype=object)
+        source = np.full(leaf_fc.shape, "leaf_forecast", dtype=object)
         return parent_sums(leaf_fc, parent_of_child, n_parents), leaf_fc.copy(), source, 0
     if strategy in NEEDS_RESIDUALS:
         parent, leaf = mint_reconcile(parent_fc, leaf_fc, parent_of_child, strategy, parent_residuals, leaf_residuals)

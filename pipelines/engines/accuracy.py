@@ -36,7 +36,9 @@ def mase_scale(series: np.ndarray, y: np.ndarray, n_series: int, m: int) -> np.n
     return np.divide(total, count, out=np.full(n_series, np.nan), where=count > 0)
 
 
-def point_accuracy(actual: np.ndarray, forecast: np.ndarray, scale: np.ndarray | float | None = None) -> dict[str, float]:
+def point_accuracy(
+    actual: np.ndarray, forecast: np.ndarray, scale: np.ndarray | float | None = None
+) -> dict[str, float]:
     """RMSE, MAE, MAPE, MASE, WMAPE and bias of forecasts against actuals (any matching shapes).
 
     `scale` broadcasts against the arrays (one value per series row); cells

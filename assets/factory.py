@@ -1,0 +1,155 @@
+"""The one way an asset is made: a stage's pure `run(...)` wrapped as a partitioned Dagster asset.
+
+A `StageAsset` names the tables a stage writes, the asset tables it reads, how
+its small settings object is built from the partition's config, and, for the
+few stages that need them, extra inputs read from the store and a step that
+publishes files. `stage_asset` turns it into a (multi-)asset whose body loads
+the inputs, calls `run`, validates every table with its pandera model
+(`pipelines.tables`), writes the run's pictures beside the cycle's report, and
+yields the outputs with their metadata, the schema checks and the rule checks
+of `pipelines.checks`, each on the asset it judges.
+"""
+
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import dagster as dg
+
+from assets.common import markdown, rule_check, schema_check_spec, table_metadata, validate
+from pipelines.checks import checks_of
+from pipelines.config import PlanningConfig
+from pipelines.partitions import cycle_class_partitions, narrow_config, split_key
+from pipelines.resources import report_folder
+from pipelines.results import StageResult
+from pipelines.tables import MODELS
+
+
+@dataclass(frozen=True)
+class Partition:
+    """One partition's view of the config: narrowed to its cycle and class, and whole."""
+
+    config: PlanningConfig
+    full: PlanningConfig
+    cycle: str
+    product_class: str
+
+    @classmethod
+    def of(cls, context: dg.AssetExecutionContext) -> "Partition":
+        full = context.resources.planning.config
+        cycle, product_class = split_key(context.partition_key)
+        return cls(narrow_config(full, cycle, product_class), full, cycle, product_class)
+
+
+@dataclass(frozen=True)
+class Table:
+    """A table the stage writes: an asset of the same name."""
+
+    name: str
+    description: str
+    kinds: frozenset[str] = frozenset({"pandas", "duckdb"})
+
+
+@dataclass(frozen=True)
+class StageAsset:
+    tables: tuple[Table, ...]
+    run: Callable[..., StageResult]
+    settings: Callable[[Partition], Any]
+    group: str
+    ins: tuple[str, ...] = ()
+    deps: tuple[str, ...] = ()
+    # extra inputs the IO manager cannot give (e.g. an earlier cycle's table), read from the store
+    read: Callable[[Partition], dict[str, Any]] | None = None
+    # after the run: files that need the Dagster instance (the cycle's page); returns the result to emit
+    publish: Callable[[dg.AssetExecutionContext, Partition, StageResult], StageResult] | None = None
+    extra_kinds: frozenset[str] = field(default_factory=frozenset)
+
+
+# every stage asset made, by its first table: the benchmark runs the same stages through these
+SPECS: dict[str, StageAsset] = {}
+
+
+def graph_order(specs: dict[str, StageAsset] = SPECS) -> list[StageAsset]:
+    """The stages in an order where each comes after the stages whose tables it reads (and its deps)."""
+    made_by = {t.name: key for key, spec in specs.items() for t in spec.tables}
+    order: list[str] = []
+
+    def visit(key: str, path: tuple[str, ...] = ()) -> None:
+        if key in order or key in path:
+            return
+        for name in specs[key].ins + specs[key].deps:
+            if name in made_by:
+                visit(made_by[name], path + (key,))
+        order.append(key)
+
+    for key in specs:
+        visit(key)
+    return [specs[k] for k in order]
+
+
+def stage_asset(spec: StageAsset) -> dg.AssetsDefinition:
+    """The partitioned asset of a stage; see the module docstring."""
+    names = [t.name for t in spec.tables]
+    SPECS[names[0]] = spec
+    specs = [schema_check_spec(n, MODELS[n]) for n in names]
+    specs += [dg.AssetCheckSpec(c.name, asset=c.asset, blocking=c.blocking, description=c.description)
+              for n in names for c in checks_of(n)]
+
+    @dg.multi_asset(
+        name=names[0],
+        group_name=spec.group,
+        partitions_def=cycle_class_partitions,
+        outs={t.name: dg.AssetOut(kinds=set(t.kinds), description=t.description) for t in spec.tables},
+        ins={name: dg.AssetIn(key=name) for name in spec.ins},
+        deps=list(spec.deps),
+        check_specs=specs,
+        required_resource_keys={"planning"},
+        can_subset=False,
+    )
+    def _asset(context: dg.AssetExecutionContext, **inputs):
+        part = Partition.of(context)
+        frames = {**inputs, **(spec.read(part) if spec.read else {})}
+        result = spec.run(**frames, settings=spec.settings(part), log=context.log.info)
+        write_files(result.files, report_folder(part.config))
+        if spec.publish:
+            result = spec.publish(context, part, result)
+        yield from emit(spec, result, {"partition_cycle": part.cycle, "partition_class": part.product_class})
+
+    return _asset
+
+
+def write_files(files: dict[str, bytes], folder: Path) -> dict[str, Path]:
+    """Write the run's pictures to the cycle's report folder; file name -> path."""
+    if files:
+        folder.mkdir(parents=True, exist_ok=True)
+    for name, data in files.items():
+        (folder / name).write_bytes(data)
+    return {name: folder / name for name in files}
+
+
+def emit(spec: StageAsset, result: StageResult, partition: dict[str, str] | None = None):
+    """Outputs (validated) with their metadata, then the schema checks, then the rule checks.
+
+    Every check result carries `partition` (its cycle and class) and its first failing rows; a table read
+    from an input file (`result.sources`) names them by file and row, and loses that index before it is stored.
+    """
+    schema_checks = []
+    for table in spec.tables:
+        source = result.sources.get(table.name)
+        model = MODELS[table.name]
+        frame, check = validate(result.outputs[table.name], model, table.name, source=source, partition=partition)
+        if table.name in result.sources:
+            frame = frame.reset_index(drop=True)
+        figures = result.metadata.get(table.name, {})
+        yield dg.Output(frame, output_name=table.name, metadata=table_metadata(frame, **figures))
+        schema_checks.append(check)
+    yield from schema_checks
+    catalogue = {c.name: c for t in spec.tables for c in checks_of(t.name)}
+    for name, outcome in result.checks.items():
+        check = catalogue[name]
+        severity = dg.AssetCheckSeverity.ERROR if check.blocking else dg.AssetCheckSeverity.WARN
+        figures = {k: markdown(v) if hasattr(v, "columns") else v for k, v in outcome.figures.items()}
+        yield rule_check(
+            check.asset, name, outcome.rows, what=check.proves, severity=severity, partition=partition, **figures
+        )

@@ -1,0 +1,169 @@
+"""What every chart of the cycle report shares: size, colours, captions, axes, the PNG encoding.
+
+Rendering is deterministic: matplotlib's Agg canvas on a `Figure` (no pyplot,
+no GUI, no global state), fixed size and dpi, matplotlib's bundled font, and no
+software tag in the PNG, so the same frames give the same bytes.
+"""
+
+from __future__ import annotations
+
+import io
+import re
+import textwrap
+from collections.abc import Sequence
+
+import numpy as np
+import pandas as pd
+from matplotlib import dates as mdates
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.collections import PolyCollection
+from matplotlib.figure import Figure
+from matplotlib.ticker import FuncFormatter
+
+from pipelines.calendar import ordinal_to_start, period_ordinal, shift_periods
+from pipelines.keys import PARENT
+
+DPI = 100
+WIDTH_IN = 11.0
+HISTORY_COLOR = "#1f4e79"
+FORECAST_COLOR = "#d9731a"
+HORIZON_SHADE = "#eeeeee"
+CYCLE_COLOR = "#333333"
+OTHER_COLOR = "#bdbdbd"
+# the tab10 palette without its grey, which is kept for "other"
+CHILD_COLORS = ("#1f77b4", "#ff7f0e", "#2ca02c", "#d62728", "#9467bd", "#8c564b", "#e377c2", "#bcbd22", "#17becf")
+CAPTION_WIDTH = 155  # characters per caption line at 8 pt over the figure's width
+CAPTION_LINES = 9
+OTHER = "other"
+
+# ----------------------------------------------------------------- shared chart pieces
+def figure_png(fig: Figure) -> bytes:
+    """The figure as PNG bytes (Agg canvas, no software tag, so bytes depend only on the figure)."""
+    FigureCanvasAgg(fig)
+    buffer = io.BytesIO()
+    fig.savefig(buffer, format="png", dpi=DPI, metadata={"Software": None})
+    return buffer.getvalue()
+
+
+def chart_file_name(kind: str, product_class: str, cycle_date) -> str:
+    """A file name safe on any file system, e.g. `parents_consumables_2026-11-30.png`."""
+    safe = re.sub(r"[^A-Za-z0-9_-]+", "-", str(product_class)).strip("-") or "class"
+    return f"{kind}_{safe}_{pd.Timestamp(cycle_date):%Y-%m-%d}.png"
+
+
+def _rank_parents(history: pd.DataFrame, forecast: pd.DataFrame, parents: pd.DataFrame) -> pd.DataFrame:
+    """Parents by history volume, then forecast volume, then key (a stable, deterministic order)."""
+    hist = history.groupby(PARENT, observed=True)["quantity"].sum().rename("history_volume")
+    fc = forecast.groupby(PARENT, observed=True)["forecast"].sum().rename("forecast_volume") if len(forecast) else None
+    ranked = parents.join(hist, on=PARENT)
+    ranked = ranked.join(fc, on=PARENT) if fc is not None else ranked.assign(forecast_volume=0.0)
+    ranked[["history_volume", "forecast_volume"]] = ranked[["history_volume", "forecast_volume"]].fillna(0.0)
+    ranked = ranked.sort_values(
+        ["history_volume", "forecast_volume", "product", "site"], ascending=[False, False, True, True]
+    )
+    return ranked.reset_index(drop=True)
+
+
+def _in_class(frame: pd.DataFrame, product_class: str) -> pd.DataFrame:
+    if "product_class" in frame.columns:
+        return frame[frame["product_class"] == product_class]
+    return frame
+
+
+def _history_of(
+    history: pd.DataFrame, parents: pd.DataFrame, cycle: pd.Timestamp, period: str, history_periods: int | None
+) -> pd.DataFrame:
+    """History rows of these parents before the cycle date, the last `history_periods` periods only when given."""
+    hist = history.merge(parents[PARENT].drop_duplicates(), on=PARENT, how="inner")
+    keep = hist["period_start"] < cycle
+    if history_periods:
+        keep &= hist["period_start"] >= shift_periods(cycle, -int(history_periods), period)
+    return hist[keep]
+
+
+def _next_starts(starts: pd.DatetimeIndex, period: str) -> pd.DatetimeIndex:
+    """The start of the period after each period start."""
+    return ordinal_to_start(period_ordinal(starts, period) + 1, period)
+
+
+def _bars(left: np.ndarray, width: np.ndarray, bottom: np.ndarray, height: np.ndarray, **style) -> PolyCollection:
+    """Rectangles [left, left + width] x [bottom, bottom + height] as one artist (thousands of bars draw in one
+    call).
+    """
+    right, top = left + width, bottom + height
+    corners = np.stack(
+        [
+            np.stack([left, bottom], 1),
+            np.stack([right, bottom], 1),
+            np.stack([right, top], 1),
+            np.stack([left, top], 1),
+        ],
+        1,
+    )
+    return PolyCollection(corners, linewidths=0, antialiaseds=False, zorder=2, **style)
+
+
+def _parent_label(product, site) -> str:
+    return f"{product} x {site}"
+
+
+def _caption(text: str, names: Sequence[str] = (), lead: str = "") -> list[str]:
+    """Caption lines: `text`, then `lead` and the names, cut at a name with "... and N more" past CAPTION_LINES."""
+    lines = textwrap.wrap(text, CAPTION_WIDTH)
+    if not names:
+        return lines
+    budget = (CAPTION_LINES - len(lines)) * CAPTION_WIDTH - len(lead)
+    kept: list[str] = []
+    used = 0
+    for i, name in enumerate(names):
+        rest = len(names) - i - 1
+        tail = f" ... and {rest} more" if rest else ""
+        if kept and used + 2 + len(name) + len(tail) > budget:
+            break
+        used += len(name) + (2 if kept else 0)
+        kept.append(name)
+    more = len(names) - len(kept)
+    listed = lead + ", ".join(kept) + (f" ... and {more} more." if more else ".")
+    return lines + textwrap.wrap(listed, CAPTION_WIDTH)
+
+
+def _mark_horizon(ax, cycle: pd.Timestamp, end: pd.Timestamp | None, label: bool) -> None:
+    """Shade the horizon, draw the cycle date; with `label`, name it in the legend and write history / horizon on
+    the axes.
+    """
+    if end is not None and end > cycle:
+        ax.axvspan(cycle, end, color=HORIZON_SHADE, zorder=0, lw=0)
+    ax.axvline(
+        cycle, color=CYCLE_COLOR, ls="--", lw=1.0, zorder=3, label=f"cycle date {cycle:%Y-%m-%d}" if label else None
+    )
+    if label:
+        where = ax.get_xaxis_transform()  # x in dates, y in axes fraction
+        ax.text(cycle, 1.01, "history  ", ha="right", va="bottom", fontsize=8, transform=where)
+        ax.text(cycle, 1.01, "  horizon", ha="left", va="bottom", fontsize=8, transform=where)
+
+
+def _date_axis(ax) -> None:
+    locator = mdates.AutoDateLocator(minticks=4, maxticks=9)
+    ax.xaxis.set_major_locator(locator)
+    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
+
+
+def _quantity_axis(ax, unit: str) -> None:
+    ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:,.0f}"))
+    ax.set_ylim(bottom=0)
+    ax.set_ylabel(unit)
+    ax.grid(axis="y", color="#dddddd", lw=0.6)
+
+
+def _empty_figure(title: str, message: str) -> Figure:
+    fig = Figure(figsize=(WIDTH_IN, 2.0), dpi=DPI)
+    fig.suptitle(title, fontsize=12)
+    fig.text(0.5, 0.45, message, ha="center", va="center", fontsize=10)
+    return fig
+
+
+def _caption_axes(fig: Figure, spec, lines: list[str]) -> None:
+    ax = fig.add_subplot(spec)
+    ax.axis("off")
+    ax.text(0.0, 1.0, "\n".join(lines), ha="left", va="top", fontsize=8, transform=ax.transAxes, color="#333333")
+

@@ -1,0 +1,70 @@
+"""The children of a parent in a cycle: customer spans active in some period of the horizon, with their own history."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from pipelines.calendar import ordinal_to_start, period_ordinal, span_bounds
+from pipelines.engines.share_settings import ShareSettings
+from pipelines.keys import LEAF, factorize, lookup
+
+
+def active_children(
+    spans: pd.DataFrame,
+    products: pd.DataFrame,
+    history: pd.DataFrame,
+    settings: ShareSettings,
+    cycle_date: pd.Timestamp,
+) -> pd.DataFrame:
+    """The children that can receive a share: customer spans active in any period of the horizon.
+
+    A child is active in horizon period h when h lies inside its customer span
+    and inside its product's span. Spans whose intersection with the horizon is
+    empty (ended before the cycle date, starting after the horizon, on a product
+    retired before the cycle or launched after the horizon) are not children.
+
+    history: lifecycle history, to count each child's own distinct periods
+    (a period with an own row and a mapped successor row is one period).
+    Columns: leaf keys, product_class, first_active_period, last_active_period,
+    own_periods, reference_customer, scale, initial_share.
+    """
+    settings = ShareSettings.of(settings)
+    period = settings.period
+    cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
+    last_ord = cycle_ord + settings.horizon - 1
+    s_from, s_to = span_bounds(spans, period)
+    p_from, p_to = span_bounds(products, period)
+    ppos = spans["product"].map(pd.Series(np.arange(len(products)), index=products["product"].to_numpy()))
+    known = ppos.notna().to_numpy()
+    ppos = ppos.fillna(0).astype(np.int64).to_numpy()
+    # first and last active ordinal: span, product span and horizon intersected (NaN = open)
+    first = np.fmax(np.fmax(s_from, np.where(known, p_from[ppos], np.nan)), cycle_ord)
+    last = np.fmin(np.fmin(s_to, np.where(known, p_to[ppos], np.nan)), last_ord)
+    ok = known & (first <= last)
+    out = spans.loc[ok, LEAF].reset_index(drop=True)
+    out["product_class"] = out["product"].map(products.set_index("product")["product_class"]).to_numpy()
+    out["first_active_period"] = ordinal_to_start(first[ok].astype(np.int64), period)
+    out["last_active_period"] = ordinal_to_start(last[ok].astype(np.int64), period)
+    out["own_periods"] = own_periods(history, out, period)
+    for column in ("reference_customer", "scale", "initial_share"):
+        values = spans[column] if column in spans.columns else pd.Series(np.nan, index=spans.index)
+        out[column] = values[ok].to_numpy()
+    out["scale"] = pd.to_numeric(out["scale"]).astype(float)
+    out["initial_share"] = pd.to_numeric(out["initial_share"]).astype(float)
+    return out
+
+
+def own_periods(history: pd.DataFrame, children: pd.DataFrame, period: str) -> np.ndarray:
+    """Distinct periods of history of each child (0 without any), counted on integer codes."""
+    if history.empty:
+        return np.zeros(len(children), dtype=np.int64)
+    code, leaves = factorize(history, LEAF)
+    ords = period_ordinal(history["period_start"], period)
+    lo = int(ords.min())
+    width = int(ords.max()) - lo + 1
+    seen = np.zeros(len(leaves) * width, dtype=bool)  # one cell per (leaf, period)
+    seen[code * width + (ords - lo)] = True
+    count = seen.reshape(len(leaves), width).sum(axis=1)
+    pos = lookup(children, LEAF, leaves)
+    return np.where(pos >= 0, count[np.clip(pos, 0, None)], 0).astype(np.int64)

@@ -1,0 +1,48 @@
+"""The rows of one product class: what every input asset of a partition keeps."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import pandas as pd
+
+from pipelines.config_inputs import InputsConfig
+
+
+@dataclass(frozen=True)
+class InputSettings:
+    """Where the input files are and how they are read, the partition's class, every configured class (to refuse
+    unknown ones) and the config's measures (that adjustments and pins may name)."""
+
+    folder: Path
+    product_class: str
+    known_classes: tuple[str, ...] = ()
+    source: str = "<memory>"
+    inputs: InputsConfig = InputsConfig()
+    measures: tuple[str, ...] = ()
+
+
+def input_files(files) -> pd.DataFrame:
+    """The files read: path, rows and checksum of each (for the metadata)."""
+    return pd.DataFrame([{"file": str(f.path), "rows": f.rows, "sha256": f.sha256} for f in files])
+
+
+def class_map(products_master: pd.DataFrame) -> pd.Series:
+    """product -> product class of a product master table (`product_class_map`)."""
+    return products_master.drop_duplicates("product").set_index("product")["product_class"]
+
+
+def class_rows(
+    frame: pd.DataFrame, classes: pd.Series, product_class: str, keep_index: bool = False
+) -> pd.DataFrame:
+    """The rows of `frame` whose product is in `product_class` (`classes`: product -> class of the master file).
+
+    A row whose product is not in the master belongs to no class and is kept in
+    every class, so the stage's schema or rule checks report it instead of it
+    vanishing. `keep_index` keeps the frame's index (the file rows of master
+    data, `source_row`), so a failing row can still be named.
+    """
+    cls = frame["product"].map(classes)
+    rows = frame.loc[(cls == product_class) | cls.isna()]
+    return rows if keep_index else rows.reset_index(drop=True)

@@ -1,0 +1,190 @@
+"""New customers and the lifecycle rules: how each child's share is set over the horizon, and the shares of a period.
+
+**New customers** (fewer own periods than `min_history_periods`; their own
+short history is left out of the history shares above, though it stays in the
+parent's baseline and forecast):
+
+- `reference`: with a `reference_customer` that is an established child of the
+  same parent, the new customer's share is scale x the reference's history
+  share, *taken from* the reference, whose share drops by that amount. The
+  scale is the span's `scale`, else config `lifecycle.reference_scale`
+  (default 0.5: new customer and reference split the reference's share evenly;
+  1 = like-for-like replacement). When several new customers take more than a
+  reference has (scales summing above 1), their takes are scaled down to
+  exactly the reference's share.
+- `initial_share`: otherwise, with a planner-given `initial_share` s, the new
+  customer gets s and the other children are scaled by (1 - S), S the sum of
+  the initial shares active in the period (above 1, the initial shares are
+  renormalised to sum to 1 and the others get 0).
+- `awaiting_history`: with neither, no share until the customer has
+  `min_history_periods` periods of history; the asset lists such customers in
+  a WARN check (`new_customers_have_share`).
+
+Established children are labelled `phase_in` (first active period after the
+cycle date), `phase_out` (last active period before the horizon ends) or
+`none`.
+
+**Base share vs period share.** In horizon period h only the children active
+in h hold weight: w_j = p_j (p_{j,h} for a per-period method) for an
+established child (less what new customers
+active in h take from it), w_n = take_n for a reference-rule new customer. The
+period's shares are (1 - min(S_h, 1)) x w_j / sum_k w_k for those, and the
+initial shares (renormalised when S_h > 1) for the initial-share customers.
+They sum to 1, or are all 0 when no active child holds any weight (the reason
+is recorded per period in `reinitialized_target`). The share table's `share`
+is this rule with every child active: the base share (for a per-period method,
+from its pooled summary). When a child is
+inactive its weight leaves the sum and the others are renormalised, so a
+reference keeps its whole share until its new customer starts, and a new
+customer replacing a reference that ends (scale 1) takes exactly its share.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from pipelines.calendar import horizon_starts
+from pipelines.engines.share_settings import ShareSettings
+from pipelines.keys import LEAF, PARENT, lookup
+from pipelines.vocabulary import NEW_CUSTOMER_RULES
+
+
+def split_shares(
+    parent_code: np.ndarray,
+    n_parents: int,
+    history_share: np.ndarray,
+    rule: np.ndarray,
+    ref_pos: np.ndarray,
+    scale: np.ndarray,
+    initial_share: np.ndarray,
+    active: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Shares of every child in every period, per the rules of the module docstring.
+
+    parent_code (n,): parent of each child, 0..n_parents-1. history_share (n,)
+    or (n, T): p_j of established children (ignored for new ones), the same in
+    every period or one per period (the per-period basis of `seasonal` and
+    `forecast_proportions`, see `period_basis`). rule (n,): the child's
+    lifecycle_rule. ref_pos (n,): row of the reference child for `reference`
+    rows (ignored elsewhere). scale, initial_share (n,): used by their rule.
+    active (n, T) bool: the child is active in period t.
+
+    Returns (shares (n, T), all_zero (n_parents, T)): shares sum to 1 per parent
+    and period, except where all_zero (no active child holds any weight).
+    """
+    n, t = active.shape
+    act = active.astype(float)
+    new = np.isin(rule, NEW_CUSTOMER_RULES)
+    is_ref = rule == "reference"
+    is_init = rule == "initial_share"
+    base = np.asarray(history_share, dtype=float)
+    p = np.where(new[:, None], 0.0, base if base.ndim == 2 else base[:, None])  # (n, T) or (n, 1)
+    ref = np.where(is_ref, ref_pos, 0)
+    k = np.where(is_ref, scale, 0.0)
+    # what the active new customers ask of each reference, as a multiple of its share
+    asked = np.zeros((n, t))
+    np.add.at(asked, ref[is_ref], k[is_ref, None] * act[is_ref])
+    cut = np.where(asked > 1.0, 1.0 / np.where(asked > 1.0, asked, 1.0), 1.0)
+    take = np.where(is_ref[:, None], k[:, None] * p[ref] * cut[ref] * act, 0.0)
+    given = np.zeros((n, t))
+    np.add.at(given, ref[is_ref], take[is_ref])
+    weight = np.clip(p - given, 0.0, None) * act * (~new)[:, None] + take
+    s_init = np.where(is_init[:, None], np.nan_to_num(initial_share)[:, None] * act, 0.0)
+
+    weight_sum = np.zeros((n_parents, t))
+    np.add.at(weight_sum, parent_code, weight)
+    init_sum = np.zeros((n_parents, t))
+    np.add.at(init_sum, parent_code, s_init)
+    w_sum, i_sum = weight_sum[parent_code], init_sum[parent_code]
+    kept = 1.0 - np.minimum(i_sum, 1.0)  # what the initial shares leave to the others
+    with np.errstate(invalid="ignore", divide="ignore"):
+        from_weight = np.where(w_sum > 0, weight / w_sum * kept, 0.0)
+        # each initial share's part of the initial total (<= 1), times what the total may take:
+        # min(S, 1) beside weighted children, all of it when there are none
+        part = np.where(i_sum > 0, s_init / i_sum, 0.0)
+        from_init = part * np.where(w_sum > 0, np.minimum(i_sum, 1.0), 1.0)
+    shares = np.clip(from_weight + from_init, 0.0, 1.0)
+    all_zero = (weight_sum <= 0) & (init_sum <= 0)
+    return shares, all_zero
+
+
+def lifecycle_rules(children: pd.DataFrame, established: np.ndarray, settings: ShareSettings, cycle_date: pd.Timestamp):
+    """(rule, ref_pos, scale, initial_share, detail) per child; see the module docstring."""
+    n_min = settings.min_history_periods
+    starts = horizon_starts(cycle_date, settings.horizon, settings.period)
+    new = ~established
+    reference = children["reference_customer"]
+    has_ref = new & reference.notna().to_numpy()
+    ref_key = children[PARENT].assign(customer=reference.fillna("").to_numpy())
+    ref_pos = lookup(ref_key, LEAF, children)
+    ref_ok = has_ref & (ref_pos >= 0) & established[np.clip(ref_pos, 0, None)]
+    has_init = new & ~ref_ok & children["initial_share"].notna().to_numpy()
+    awaiting = new & ~ref_ok & ~has_init
+    first = pd.DatetimeIndex(children["first_active_period"])
+    last = pd.DatetimeIndex(children["last_active_period"])
+    phase_in = established & (first > starts[0])
+    phase_out = established & ~phase_in & (last < starts[-1])
+    rule = np.select(
+        [ref_ok, has_init, awaiting, phase_in, phase_out], NEW_CUSTOMER_RULES + ("phase_in", "phase_out"), "none"
+    ).astype(object)
+
+    scale = np.where(ref_ok, children["scale"].fillna(settings.reference_scale).to_numpy(float), np.nan)
+    initial = np.where(has_init, children["initial_share"].to_numpy(float), np.nan)
+
+    # the rule in words; built as whole columns (one string per child)
+    ref_text = reference.fillna("").astype(str)
+    own = children["own_periods"].astype(str)
+    history_text = own + " of " + str(n_min) + " periods of own history"
+    no_ref = pd.Series(
+        np.where(
+            has_ref & ~ref_ok,
+            "reference " + ref_text + " is not an established customer of this product x site; ",
+            "",
+        ),
+        index=children.index,
+    )
+    detail = pd.Series("share from history", index=children.index, dtype=object)
+    detail[ref_ok] = (
+        "new customer (" + history_text[ref_ok] + "): "
+        + pd.Series(scale, index=children.index)[ref_ok].map("{:g}".format)
+        + " x the share of reference " + ref_text[ref_ok] + ", taken from it"
+    )
+    detail[has_init] = (
+        "new customer (" + history_text[has_init] + "): " + no_ref[has_init] + "initial share "
+        + pd.Series(initial, index=children.index)[has_init].map("{:g}".format) + ", the others scaled by 1 - it"
+    )
+    detail[awaiting] = (
+        "new customer (" + history_text[awaiting] + "): " + no_ref[awaiting]
+        + "no reference customer or initial share, so no share until " + str(n_min) + " periods of history"
+    )
+    detail[phase_in] = (
+        "share from history; active from " + pd.Series(first.strftime("%Y-%m-%d"), index=children.index)[phase_in]
+    )
+    detail[phase_out] = (
+        "share from history; active until " + pd.Series(last.strftime("%Y-%m-%d"), index=children.index)[phase_out]
+    )
+    late = (ref_ok | has_init | awaiting) & (first > starts[0])
+    detail[late] = detail[late] + "; active from " + pd.Series(first.strftime("%Y-%m-%d"), index=children.index)[late]
+    return rule, ref_pos, scale, initial, detail.to_numpy(object)
+
+
+def reference_positions(shares: pd.DataFrame) -> np.ndarray:
+    """Row of each `reference` row's reference customer in the same table (-1 elsewhere)."""
+    key = shares[PARENT].assign(customer=shares["reference_customer"].fillna("").to_numpy())
+    pos = lookup(key, LEAF, shares)
+    return np.where(shares["lifecycle_rule"].to_numpy() == "reference", pos, -1)
+
+
+def new_customers(shares: pd.DataFrame) -> pd.DataFrame:
+    """The new customers of a share table and how their share was set (for the planner)."""
+    new = shares[shares["lifecycle_rule"].isin(NEW_CUSTOMER_RULES)]
+    return new[
+        LEAF + ["lifecycle_rule", "share", "own_periods", "first_active_period", "lifecycle_detail"]
+    ].reset_index(drop=True)
+
+
+def find_new_customers_without_share(shares: pd.DataFrame) -> pd.DataFrame:
+    """New customers that get no share until they have enough history (rule `awaiting_history`)."""
+    rows = shares[shares["lifecycle_rule"] == "awaiting_history"]
+    return rows[LEAF + ["own_periods", "first_active_period", "lifecycle_detail"]].reset_index(drop=True)

@@ -1,0 +1,124 @@
+"""The inputs of a measure's split as (children x horizon) matrices, what each measure is split by, the share bases."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from pipelines.calendar import horizon_starts, period_ordinal
+from pipelines.config_sections import MeasureConfig
+from pipelines.engines.period_shares import period_shares
+from pipelines.engines.share_settings import ShareRule, ShareSettings
+from pipelines.engines.shares import compute_shares
+from pipelines.errors import ConfigError
+from pipelines.keys import LEAF, lookup
+from pipelines.vocabulary import Basis
+
+
+def cells_of(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame, first_ord: int, h: int, period: str):
+    """(row in table, horizon column, inside) of each row of `frame` keyed by `cols` and `period_start`."""
+    row = lookup(frame, cols, table) if len(frame) else np.zeros(0, dtype=np.int64)
+    col = period_ordinal(pd.DatetimeIndex(pd.to_datetime(frame["period_start"])), period) - first_ord
+    return row, col, (col >= 0) & (col < h)
+
+
+def leaf_matrix(
+    frame: pd.DataFrame,
+    cols: list[str],
+    table: pd.DataFrame,
+    column: str | list[str],
+    first_ord: int,
+    h: int,
+    period: str,
+):
+    """(len(table), h) matrix of `column` (one per name of a list) from a long frame keyed by `cols` and
+    period_start, 0 where absent; the keys are looked up once for all columns."""
+    names = [column] if isinstance(column, str) else column
+    out = [np.zeros((len(table), h)) for _ in names]
+    if len(frame):
+        row, col, inside = cells_of(frame, cols, table, first_ord, h, period)
+        ok = inside & (row >= 0)
+        for m, name in zip(out, names, strict=False):
+            m[row[ok], col[ok]] = frame[name].to_numpy(float)[ok]
+    return out[0] if isinstance(column, str) else out
+
+
+def combine_cells(row: np.ndarray, col: np.ndarray, value: np.ndarray, shape: tuple[int, int], mean: bool):
+    """Sum (or mean) of `value` per (row, col) cell, and which cells have any."""
+    total = np.zeros(shape)
+    count = np.zeros(shape)
+    np.add.at(total, (row, col), value)
+    np.add.at(count, (row, col), 1.0)
+    if mean:
+        total = np.divide(total, count, out=np.zeros(shape), where=count > 0)
+    return total, count > 0
+
+
+def check_measures_known(frame: pd.DataFrame, config, what: str) -> None:
+    """Refuse input rows of measures the config does not define (config: a PlanSettings or PlanningConfig)."""
+    names = set(frame["measure"].dropna().unique())
+    unknown = sorted(names - set(config.measures))
+    if unknown:
+        raise ConfigError(
+            f"{config.source}: the {what} input names measure(s) {unknown} that config measures does not define "
+            f"(defined: {sorted(config.measures)}); add them under measures: or correct the measure column."
+        )
+    from_forecast = sorted(n for n in names if config.measures[n].parent_values == "parent_forecast")
+    if from_forecast and what == "adjustments":
+        raise ConfigError(
+            f"{config.source}: the adjustments input has rows of {from_forecast}, whose parent values come from "
+            f"the statistical forecast (parent_values: parent_forecast); enter changes as another measure "
+            f"(e.g. planner_adjustment) or pin leaves in the pins input."
+        )
+
+
+def basis_of(
+    m: MeasureConfig, name: str, mats: dict[str, np.ndarray], top_down: np.ndarray, parent_of_child: np.ndarray
+):
+    """(basis, fallback basis, label per parent) of a measure; `mats` holds the leaf matrices by name."""
+    n_parents = len(top_down)
+    if m.rule != "pro_rata":
+        return None, None, np.full(n_parents, "parent" if m.rule == "replicate" else "even", dtype=object)
+    b = m.basis
+    label = np.full(n_parents, b.label, dtype=object)
+    if b.kind == "reinitialized_target":
+        if m.parent_values != "parent_forecast":
+            return mats["target"], mats["share"], label
+        # the forecast's own split: the target where the class is split top-down, else its leaf values
+        td = top_down[parent_of_child][:, None]
+        label[~top_down] = Basis.LEAF_FORECAST
+        return np.where(td, mats["target"], mats["forecast"]), np.where(td, mats["share"], 0.0), label
+    key = f"{b.kind}:{b.name}"
+    if key not in mats:
+        raise ConfigError(f"measures.{name}: basis {key} is not available; pass its share_basis_tables(...) frame")
+    return mats[key], None, label
+
+
+def share_basis_tables(
+    history: pd.DataFrame,
+    children: pd.DataFrame,
+    products: pd.DataFrame,
+    config,
+    cycle_date: pd.Timestamp,
+) -> dict[str, pd.DataFrame]:
+    """Period shares of every named share basis (config `share_bases`): leaf keys, period_start, share, fallback.
+
+    Each basis runs the share engine (`engines.shares.compute_shares`, then
+    `engines.period_shares.period_shares`) with its window, method and fallback
+    windows in place of every product class's own. history: lifecycle history;
+    children: `engines.children.active_children`.
+    """
+    out = {}
+    starts = horizon_starts(cycle_date, config.calendar.horizon, config.calendar.period)
+    # a PlanSettings carries the share engine's settings; a PlanningConfig makes them
+    settings = getattr(config, "share", None) or ShareSettings.of(config)
+    for name, basis in config.share_bases.items():  # a few named bases, not a loop over series
+        own = settings.with_rule(ShareRule.of(basis))  # its window, method and fallbacks in every class
+        table = compute_shares(history, children, own, cycle_date)
+        share = period_shares(table, own, cycle_date, products, history)[0]
+        frame = table[LEAF].loc[table.index.repeat(len(starts))].reset_index(drop=True)
+        frame["period_start"] = np.tile(starts.values, len(table))
+        frame["share"] = share.ravel()
+        frame["fallback"] = np.repeat(table["fallback"].to_numpy(), len(starts))
+        out[name] = frame
+    return out

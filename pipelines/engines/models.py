@@ -1,0 +1,274 @@
+"""Statistical models of many series at once: dense grids, demand classes, the model per class, the runs.
+
+Each series gets a demand class (Syntetos, Boylan & Croston 2005, cut-offs
+ADI = 1.32 and CV^2 = 0.49). ADI convention used here: the number of periods
+from the series' first non-zero period to the end of history, divided by the
+number of non-zero periods. CV^2 is the squared coefficient of variation of
+the non-zero sizes (population variance, ddof = 0); one non-zero period has
+CV^2 = 0. A series without any demand is `no_demand` and is forecast as 0.
+Ties at the cut-offs: the cut-offs belong to the upper side, i.e. smooth needs
+ADI < 1.32 and CV^2 < 0.49; ADI = 1.32 exactly is intermittent (or lumpy) and
+CV^2 = 0.49 exactly is erratic (or lumpy). The comparison is made on the
+floating-point ratio, so 33 periods / 25 demands (1.32) is on the cut-off.
+
+Models (statsforecast): `auto_ets` (AutoETS, Hyndman et al. 2008; seasonal
+with `seasonal: true` and two full seasons), `ets_additive_season` (ETS(A,N,A),
+the one seasonal ETS form instead of AutoETS' search), `mstl_ets` (MSTL
+decomposition with AutoETS on the deseasonalised series; Bandara et al. 2021),
+`ses`, `seasonal_naive` (the benchmark), Croston (`croston_classic`,
+`croston_sba` = Syntetos & Boylan 2005 debiasing, `croston_optimized`), `tsb`
+(Teunter, Syntetos & Babai 2011, parameters in config), `adida`
+(Nikolopoulos et al. 2011) and `imapa`. Seasonal AutoETS on weekly data is
+costly: on the demo's 28 seasonal parents (156 weeks, 1 core) AutoETS with
+season_length 52 took 300-560 ms per series and picked unstable multiplicative
+forms (26-week holdout WMAPE 1.80); ETS(A,N,A) took 45-57 ms (WMAPE 0.27),
+MSTL + AutoETS 45-50 ms (0.39) and seasonal naive 0.4 ms (0.28). So the demo
+uses `ets_additive_season` where a season is wanted (benchmarks/backtest.py
+measures again). The model, its parameters where the library exposes them (ETS
+component string and smoothing parameters, the fixed Croston alpha, the TSB
+alphas) and the in-sample one-step fitted values (for MinT's residuals) come
+out of `run_model_groups`.
+
+The model per demand class comes from the config (`ModelSettings`) and runs
+through statsforecast, `n_jobs` processes per model group (config
+`execution.n_jobs`); a model that fails on a series falls back to the naive
+forecast. Negative forecasts (possible from a trended ETS) are set to 0.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+from statsforecast import StatsForecast
+from statsforecast import models as sfm
+
+from pipelines.calendar import season_length
+from pipelines.config_sections import ModelChoice, TSBConfig
+from pipelines.engines.intermittent import croston_states
+
+
+@dataclass(frozen=True)
+class ModelSettings:
+    """What the model runs read: the calendar's period, each product class's models, processes per run."""
+
+    period: str
+    choices: Mapping[str, ModelChoice]
+    n_jobs: int = 1
+
+    @classmethod
+    def of(cls, config) -> ModelSettings:
+        """From a planning config (every class it holds)."""
+        choices = {name: pc.models for name, pc in config.product_classes.items()}
+        return cls(period=config.calendar.period, choices=choices, n_jobs=config.execution.n_jobs)
+
+ADI_CUTOFF = 1.32
+
+
+CV2_CUTOFF = 0.49
+
+
+SEASONAL_MODELS = ("auto_ets", "ets_additive_season", "mstl_ets", "seasonal_naive")
+
+
+ETS_MODELS = ("auto_ets", "ets_additive_season")
+
+
+CROSTON_ALPHA = 0.1  # statsforecast's CrostonClassic and CrostonSBA smooth both series with alpha = 0.1
+
+
+@dataclass(frozen=True)
+class ModelRun:
+    """What the model library returned for n series.
+
+    forecast: (n, horizon); fitted: in-sample one-step fitted values aligned
+    with the grid's rows (NaN where the library gives none); parameters: (n,)
+    text, '' where the library does not expose them; label: (n,) model label.
+    """
+
+    forecast: np.ndarray
+    fitted: np.ndarray
+    parameters: np.ndarray
+    label: np.ndarray
+
+
+@dataclass(frozen=True)
+class SeriesGrid:
+    """Dense history of n series, each from its first non-zero period to the period before the cycle.
+
+    `series`, `ordinal`, `y` are aligned long arrays; a series without demand has no rows.
+    """
+
+    series: np.ndarray
+    ordinal: np.ndarray
+    y: np.ndarray
+    n_series: int
+
+
+def series_grid(code: np.ndarray, ordinal: np.ndarray, qty: np.ndarray, n_series: int, end_ord: int) -> SeriesGrid:
+    """Sum rows per (series, period) and lay each series out densely with zeros filled."""
+    keep = ordinal < end_ord
+    code, ordinal, qty = code[keep], ordinal[keep], qty[keep]
+    nz = qty > 0
+    first = np.full(n_series, end_ord, dtype=np.int64)
+    np.minimum.at(first, code[nz], ordinal[nz])
+    length = end_ord - first
+    offset = np.concatenate([[0], np.cumsum(length)[:-1]])
+    total = int(length.sum())
+    series = np.repeat(np.arange(n_series), length)
+    ords = first[series] + (np.arange(total) - offset[series])
+    inside = ordinal >= first[code]
+    y = np.bincount(offset[code[inside]] + ordinal[inside] - first[code[inside]], weights=qty[inside], minlength=total)
+    return SeriesGrid(series=series, ordinal=ords, y=y, n_series=n_series)
+
+
+def demand_classes(grid: SeriesGrid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(demand_class, adi, cv2) per series; see the module docstring for the conventions."""
+    n = grid.n_series
+    length = np.bincount(grid.series, minlength=n)
+    nz = grid.y > 0
+    count = np.bincount(grid.series[nz], minlength=n)
+    total = np.bincount(grid.series[nz], weights=grid.y[nz], minlength=n)
+    squares = np.bincount(grid.series[nz], weights=grid.y[nz] ** 2, minlength=n)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        adi = np.where(count > 0, length / count, np.nan)
+        mean = total / count
+        var = np.clip(squares / count - mean**2, 0, None)
+        cv2 = np.where(count > 0, var / mean**2, np.nan)
+    cls = np.where(
+        adi < ADI_CUTOFF,
+        np.where(cv2 < CV2_CUTOFF, "smooth", "erratic"),
+        np.where(cv2 < CV2_CUTOFF, "intermittent", "lumpy"),
+    ).astype(object)
+    cls[count == 0] = "no_demand"
+    return cls, adi, cv2
+
+
+def make_model(name: str, season: int, tsb: TSBConfig | None = None):
+    """The statsforecast model object for a config model name (season 1 = non-seasonal)."""
+    if name == "auto_ets":
+        return sfm.AutoETS(season_length=season)
+    if name == "ets_additive_season":
+        return sfm.AutoETS(season_length=season, model="ANA" if season > 1 else "ANN")
+    if name == "mstl_ets":
+        if season > 1:
+            return sfm.MSTL(season_length=season, trend_forecaster=sfm.AutoETS(model="ZZN"))
+        return sfm.AutoETS(model="ZZN")
+    if name == "ses":
+        return sfm.SimpleExponentialSmoothingOptimized()
+    if name == "seasonal_naive":
+        return sfm.SeasonalNaive(season_length=season)
+    if name == "croston_classic":
+        return sfm.CrostonClassic()
+    if name == "croston_sba":
+        return sfm.CrostonSBA()
+    if name == "croston_optimized":
+        return sfm.CrostonOptimized()
+    if name == "tsb":
+        tsb = tsb or TSBConfig()
+        return sfm.TSB(alpha_d=tsb.alpha_d, alpha_p=tsb.alpha_p)
+    if name == "adida":
+        return sfm.ADIDA()
+    if name == "imapa":
+        return sfm.IMAPA()
+    raise ValueError(f"unknown model {name!r}")
+
+
+def model_label(name: str, season: int) -> str:
+    return f"{name}(season_length={season})" if name in SEASONAL_MODELS else name
+
+
+def assign_models(
+    demand: np.ndarray, length: np.ndarray, choice: ModelChoice, period: str
+) -> tuple[np.ndarray, np.ndarray]:
+    """Model name and season length per series of one product class."""
+    names = np.empty(len(demand), dtype=object)
+    for dc in ("smooth", "erratic", "intermittent", "lumpy"):
+        names[demand == dc] = getattr(choice, dc)
+    names[demand == "no_demand"] = "zero"
+    sl = season_length(period)
+    seasonal_ok = choice.seasonal & (length >= 2 * sl)
+    uses_season = np.isin(names, SEASONAL_MODELS)
+    season = np.where(seasonal_ok & uses_season, sl, 1)
+    return names, season
+
+
+def _ets_parameters(model) -> str:
+    """'ETS(A,N,N) alpha=0.1234' from a fitted statsforecast AutoETS (or '' for a fallback model)."""
+    fit = getattr(model, "model_", None)
+    if not isinstance(fit, dict) or "method" not in fit:
+        return "fallback: naive"
+    par = np.asarray(fit["par"], dtype=float)
+    names = ("alpha", "beta", "gamma", "phi")
+    values = [f"{n}={v:.4g}" for n, v in zip(names, par[:4], strict=False) if np.isfinite(v)]
+    return " ".join([fit["method"], *values])
+
+
+def run_model_groups(
+    grid: SeriesGrid,
+    names: np.ndarray,
+    season: np.ndarray,
+    horizon: int,
+    log: Callable[[str], None] | None = None,
+    tsb: TSBConfig | None = None,
+    fitted: bool = False,
+    n_jobs: int = 1,
+) -> ModelRun:
+    """Forecasts (and, with `fitted`, in-sample fitted values) of every series, one statsforecast call per
+    (model, season) group.
+
+    ETS groups go through `fit`/`predict` so the chosen component string and
+    smoothing parameters can be read back; the other groups use the
+    memory-efficient `forecast`. A model that fails on a series falls back to
+    the naive forecast.
+    """
+    fc = np.zeros((grid.n_series, horizon))
+    fit_values = np.full(len(grid.y), np.nan)
+    parameters = np.full(grid.n_series, "", dtype=object)
+    labels = np.full(grid.n_series, "zero", dtype=object)
+    groups = pd.DataFrame({"name": names, "season": season})
+    for (name, s), idx in groups.groupby(["name", "season"], sort=True).groups.items():
+        ids = np.asarray(idx)
+        labels[ids] = model_label(name, int(s))
+        if name == "zero":
+            continue
+        rows = np.isin(grid.series, ids)
+        df = pd.DataFrame({"unique_id": grid.series[rows], "ds": grid.ordinal[rows], "y": grid.y[rows]})
+        sf = StatsForecast(models=[make_model(name, int(s), tsb)], freq=1, n_jobs=n_jobs, fallback_model=sfm.Naive())
+        started = time.perf_counter()
+        if name in ETS_MODELS:
+            sf.fit(df=df)
+            out = sf.predict(h=horizon)
+            fitted_models = sf.fitted_[:, 0]
+            parameters[np.sort(ids)] = [_ets_parameters(m) for m in fitted_models]  # reads the library's results
+            if fitted:
+                fit_values[rows] = np.concatenate([m.model_["fitted"] for m in fitted_models])
+        else:
+            out = sf.forecast(df=df, h=horizon, fitted=fitted)
+            if fitted:
+                fit_values[rows] = sf.forecast_fitted_values().iloc[:, 3].to_numpy(float)
+            if name in ("croston_classic", "croston_sba"):
+                # the final smoothed size and interval behind the forecast, which the library does not return
+                order = np.sort(ids)
+                size, gap, _ = croston_states(
+                    grid.y[rows],
+                    CROSTON_ALPHA,
+                    CROSTON_ALPHA,
+                    series=np.searchsorted(order, grid.series[rows]),
+                    n_series=len(order),
+                )
+                parameters[order] = [
+                    f"alpha={CROSTON_ALPHA:g} size={a:.4g} interval={b:.4g}" for a, b in zip(size, gap, strict=False)
+                ]
+            elif name == "tsb":
+                t = tsb or TSBConfig()
+                parameters[ids] = f"alpha_d={t.alpha_d:g} alpha_p={t.alpha_p:g}"
+        if log:
+            log(f"{model_label(name, int(s))}: {len(ids)} series in {time.perf_counter() - started:.1f} s")
+        values = out.iloc[:, 2].to_numpy(float).reshape(-1, horizon)
+        fc[out["unique_id"].to_numpy()[::horizon]] = values
+    return ModelRun(forecast=fc, fitted=fit_values, parameters=parameters, label=labels)
+

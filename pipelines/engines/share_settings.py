@@ -1,0 +1,71 @@
+"""What the share engine reads: a small `ShareSettings` with one `ShareRule` per product class.
+
+A named share basis runs the same engine with its own rule in place of the
+classes' (`ShareSettings.with_rule`), without a copied config.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass, field, replace
+
+from pipelines.config_sections import DEFAULT_SEASONAL_YEARS
+from pipelines.engines.models import ModelSettings
+from pipelines.vocabulary import ShortageRule
+
+
+@dataclass(frozen=True)
+class ShareRule:
+    """How one product class (or one named share basis) computes history shares."""
+
+    window: int
+    method: str = "pooled"
+    fallback_windows: tuple[int, ...] = ()
+    smoothing: float | None = None
+    years: int = DEFAULT_SEASONAL_YEARS
+    band: int = 0
+
+    @classmethod
+    def of(cls, section) -> ShareRule:
+        """From a `ProductClassConfig` or a `ShareBasisConfig`."""
+        return cls(
+            window=section.window,
+            method=section.method,
+            fallback_windows=tuple(section.fallback_windows),
+            smoothing=getattr(section, "smoothing", None),
+            years=getattr(section, "years", DEFAULT_SEASONAL_YEARS),
+            band=getattr(section, "band", 0),
+        )
+
+
+@dataclass(frozen=True)
+class ShareSettings:
+    """What the share engine reads: calendar, lifecycle thresholds, shortage rule, a rule per product class."""
+
+    period: str
+    horizon: int
+    min_history_periods: int
+    reference_scale: float
+    exclude_shortages: bool
+    rules: Mapping[str, ShareRule]
+    # the per-period method `forecast_proportions` forecasts the children with their class's models
+    models: ModelSettings = field(default_factory=lambda: ModelSettings(period="week", choices={}))
+
+    @classmethod
+    def of(cls, config) -> ShareSettings:
+        """From a planning config (every class it holds); a ShareSettings is returned as it is."""
+        if isinstance(config, ShareSettings):
+            return config
+        return cls(
+            period=config.calendar.period,
+            horizon=config.calendar.horizon,
+            min_history_periods=config.lifecycle.min_history_periods,
+            reference_scale=config.lifecycle.reference_scale,
+            exclude_shortages=config.cleansing.shortages == ShortageRule.EXCLUDE,
+            rules={name: ShareRule.of(pc) for name, pc in config.product_classes.items()},
+            models=ModelSettings.of(config),
+        )
+
+    def with_rule(self, rule: ShareRule) -> ShareSettings:
+        """The same settings with `rule` in place of every class's own (a named share basis)."""
+        return replace(self, rules={name: rule for name in self.rules})

@@ -1,0 +1,299 @@
+"""The share engine: each child's history share of its parent, its lifecycle rule, and the shares in a period.
+
+The parent is product x site; its children are the customer spans active in
+any period of the horizon (`pipelines.engines.children.active_children`). The
+engine reads a small `ShareSettings`: the calendar's period and horizon, the
+lifecycle thresholds, whether shortage periods are left out, and one
+`ShareRule` (window, method, fallback windows and the method's keys) per
+product class, so a named share basis runs it with its own rule in place of
+the classes' (`plan_measures`).
+
+**History share.** Computed over the *established* children (at least
+`lifecycle.min_history_periods` distinct periods of own history) from the
+`window` periods before the cycle date, per product class. Share methods
+(Gross & Sohl 1990; Hyndman & Athanasopoulos, FPP 3rd ed., section 11.3):
+
+- `pooled` (proportion of historical averages):
+  p_j = sum_t y_{j,t} / sum_t Y_t, with Y_t = sum_j y_{j,t}.
+- `mean_of_ratios` (average of historical proportions):
+  p_j = (1 / |T+|) sum_{t in T+} y_{j,t} / Y_t, where T+ are the window's
+  periods with Y_t > 0. A period with no parent volume has no proportion to
+  average, so it is left out (the rule for a zero denominator).
+- `smoothed` (exponentially weighted proportions; Brown 1962, exponential
+  smoothing applied to the vector of proportions): over the window's periods,
+  oldest first, p_j starts at the proportion y_{j,t}/Y_t of the first period
+  with Y_t > 0 and is then updated by
+  p_{j,t} = alpha x y_{j,t} / Y_t + (1 - alpha) x p_{j,t-1}
+  (alpha = the class's `smoothing`). A period with no parent volume (or a
+  shortage) leaves p unchanged. Each update is a convex combination of two
+  probability vectors, so p stays one. The start value weighs (1 - alpha)^(n-1)
+  after n periods with volume: a window of a few times 1 / alpha makes it
+  negligible (alpha 0.2 over 26 weeks: 0.4%).
+
+The per-period methods (`seasonal`, `forecast_proportions`) give the
+established children a share per horizon period, their *period basis*
+(`pipelines.engines.period_shares`); the share table holds their pooled share
+over the window (above, with the same fallbacks) as `history_share`, which is
+both their one-row summary and their fallback in any period without a basis.
+
+A parent period with a recorded supply shortage (any of its rows has
+`shortage = True`) is left out of the window entirely, for every child, so a
+stock-out does not move share between customers.
+
+Fallback, recorded per parent: when the parent has no volume in its window,
+each of the class's `fallback_windows` is tried in turn (`longer_window`);
+when none has volume, the established children share evenly (`even`).
+
+New customers and the shares of a period (the lifecycle rules) are in
+`pipelines.engines.lifecycle_shares`.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal
+from pipelines.engines.lifecycle_shares import lifecycle_rules, split_shares
+from pipelines.engines.share_settings import ShareSettings
+from pipelines.keys import LEAF, PARENT, factorize, lookup
+
+SHARE_COLUMNS = LEAF + [
+    "cycle_date",
+    "product_class",
+    "share",
+    "history_share",
+    "method",
+    "window",
+    "window_used",
+    "window_start",
+    "fallback",
+    "child_volume",
+    "parent_volume",
+    "lifecycle_rule",
+    "first_active_period",
+    "last_active_period",
+    "own_periods",
+    "reference_customer",
+    "scale",
+    "initial_share",
+    "lifecycle_detail",
+]
+
+
+def window_volumes(age: np.ndarray, qty: np.ndarray, child: np.ndarray, n_children: int, window: int) -> np.ndarray:
+    """Volume of each child over the last `window` periods (age 1 = the period before the cycle)."""
+    inside = (age >= 1) & (age <= window)
+    return np.bincount(child[inside], weights=qty[inside], minlength=n_children)
+
+
+def period_proportions(
+    age: np.ndarray, qty: np.ndarray, child: np.ndarray, parent_of_child: np.ndarray, n_parents: int, window: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """(ratio (n, window), has_volume (n, window)): y_{j,t} / Y_t of every child and window period.
+
+    Column a - 1 holds age a (column 0 = the period before the cycle). Y_t is the
+    volume of the child's parent over the rows given; where Y_t = 0 the ratio is 0
+    and has_volume is False.
+    """
+    n_children = len(parent_of_child)
+    inside = (age >= 1) & (age <= window)
+    c, a, q = child[inside], age[inside], qty[inside]
+    # child volume per (child, period) and parent volume per (parent, period)
+    child_cell = c * window + (a - 1)
+    child_t = np.bincount(child_cell, weights=q, minlength=n_children * window).reshape(n_children, window)
+    parent_t = np.zeros((n_parents, window))
+    np.add.at(parent_t, parent_of_child, child_t)
+    denominator = parent_t[parent_of_child]
+    has_volume = denominator > 0
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ratio = np.where(has_volume, child_t / denominator, 0.0)
+    return ratio, has_volume
+
+
+def mean_of_ratios(
+    age: np.ndarray, qty: np.ndarray, child: np.ndarray, parent_of_child: np.ndarray, n_parents: int, window: int
+) -> np.ndarray:
+    """Average over the window's periods with parent volume of child / parent volume.
+
+    Returns one value per child (0 for a child of a parent with no volume).
+    """
+    ratio, has_volume = period_proportions(age, qty, child, parent_of_child, n_parents, window)
+    periods_with_volume = has_volume.sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(periods_with_volume > 0, ratio.sum(axis=1) / periods_with_volume, 0.0)
+
+
+def smoothed_proportions(
+    age: np.ndarray,
+    qty: np.ndarray,
+    child: np.ndarray,
+    parent_of_child: np.ndarray,
+    n_parents: int,
+    window: int,
+    alpha: float,
+) -> np.ndarray:
+    """Brown's (1962) exponential smoothing of each child's proportion over the window, oldest period first.
+
+    p starts at the proportion of the window's first period with parent volume
+    and is then updated by p_t = alpha x y_{j,t} / Y_t + (1 - alpha) x p_(t-1)
+    in every later period with parent volume; a period without (Y_t = 0)
+    leaves p unchanged. Returns p after the window's last period (0 for a child
+    of a parent with no volume). One pass over the window's periods, each
+    vectorised over all children.
+    """
+    ratio, has_volume = period_proportions(age, qty, child, parent_of_child, n_parents, window)
+    p = np.zeros(len(parent_of_child))
+    started = np.zeros(len(parent_of_child), dtype=bool)
+    for col in range(window - 1, -1, -1):  # age window .. 1: oldest to newest
+        r, has = ratio[:, col], has_volume[:, col]
+        p = np.where(has, np.where(started, alpha * r + (1.0 - alpha) * p, r), p)
+        started |= has
+    return p
+
+
+def shortage_periods(history: pd.DataFrame, exclude: bool) -> np.ndarray:
+    """True on every history row whose parent x period has a recorded shortage on any row.
+
+    Only with `exclude` (`cleansing.shortages: exclude`): these rows count neither toward
+    shares nor toward the parent baseline. Under `fill_baseline` the cleansing
+    stage has already replaced their values, so they count like any other row.
+    A history without a `shortage` column has none.
+    """
+    if not exclude or "shortage" not in history.columns or history.empty:
+        return np.zeros(len(history), dtype=bool)
+    flag = history["shortage"].to_numpy(bool)
+    if not flag.any():
+        return flag
+    code, _ = factorize(history, PARENT + ["period_start"])
+    short = np.zeros(int(code.max()) + 1, dtype=bool)
+    short[code[flag]] = True
+    return short[code]
+
+
+def complete_children(children: pd.DataFrame, settings: ShareSettings, cycle_date: pd.Timestamp) -> pd.DataFrame:
+    """`children` with every lifecycle column, defaults filled in for the absent ones.
+
+    Only the leaf keys and product_class are required. Absent columns mean: active
+    in the whole horizon, established (`own_periods` = min_history_periods), no
+    reference customer, scale or initial share.
+    """
+    out = children.reset_index(drop=True).copy()
+    starts = horizon_starts(cycle_date, settings.horizon, settings.period)
+    defaults = {
+        "first_active_period": starts[0],
+        "last_active_period": starts[-1],
+        "own_periods": settings.min_history_periods,
+        "reference_customer": None,
+        "scale": np.nan,
+        "initial_share": np.nan,
+    }
+    for column, value in defaults.items():
+        if column not in out.columns:
+            out[column] = value
+    out["reference_customer"] = out["reference_customer"].astype(object).where(out["reference_customer"].notna(), None)
+    out["scale"] = pd.to_numeric(out["scale"]).astype(float)
+    out["initial_share"] = pd.to_numeric(out["initial_share"]).astype(float)
+    out["own_periods"] = out["own_periods"].astype(np.int64)
+    return out
+
+
+def _history_shares(
+    history: pd.DataFrame, children: pd.DataFrame, established: np.ndarray, settings: ShareSettings, cycle_ord: int
+) -> dict[str, np.ndarray]:
+    """History share, window and fallback of every child (new children: share 0)."""
+    period = settings.period
+    n = len(children)
+    parent_code, parents = factorize(children, PARENT)
+    n_parents = len(parents)
+    child_of_row = lookup(history, LEAF, children)
+    row_ok = (child_of_row >= 0) & ~shortage_periods(history, settings.exclude_shortages)
+    child = child_of_row[row_ok]
+    qty = history["quantity"].to_numpy(float)[row_ok]
+    age = cycle_ord - period_ordinal(history["period_start"], period)[row_ok]
+    est_row = established[child]  # only established children's history makes the shares
+
+    out = {
+        "history_share": np.zeros(n),
+        "window_used": np.zeros(n, dtype=np.int64),
+        "fallback": np.full(n, "even", dtype=object),
+        "child_volume": np.zeros(n),
+        "parent_volume": np.zeros(n),
+        "method": np.empty(n, dtype=object),
+        "window": np.zeros(n, dtype=np.int64),
+    }
+    for name, pc in settings.rules.items():  # a few classes, not a loop over series
+        in_class = (children["product_class"] == name).to_numpy()
+        if not in_class.any():
+            continue
+        out["method"][in_class] = pc.method
+        out["window"][in_class] = pc.window
+        decided = ~in_class  # children of other classes are not ours to decide
+        for w in (pc.window, *pc.fallback_windows):
+            cv = window_volumes(age, qty, child, n, w)
+            pv = np.bincount(parent_code, weights=cv * established, minlength=n_parents)[parent_code]
+            take = ~decided & (pv > 0)
+            if pc.method == "mean_of_ratios":
+                s = mean_of_ratios(age[est_row], qty[est_row], child[est_row], parent_code, n_parents, w)
+            elif pc.method == "smoothed":
+                s = smoothed_proportions(
+                    age[est_row], qty[est_row], child[est_row], parent_code, n_parents, w, pc.smoothing
+                )
+            else:  # pooled; and the pooled summary (and per-period fallback) of the per-period methods
+                s = np.divide(cv, pv, out=np.zeros(n), where=pv > 0) * established
+            out["history_share"][take] = s[take]
+            out["window_used"][take] = w
+            out["fallback"][take] = "none" if w == pc.window else "longer_window"
+            out["child_volume"][take] = cv[take]
+            out["parent_volume"][take] = pv[take]
+            decided |= take
+        even = ~decided
+        if even.any():
+            counts = np.bincount(parent_code[even & established], minlength=n_parents)
+            with np.errstate(divide="ignore"):
+                out["history_share"][even] = np.where(established[even], 1.0 / counts[parent_code[even]], 0.0)
+            # with no volume in any window the child volume is reported over the configured window
+            out["child_volume"][even] = window_volumes(age, qty, child, n, pc.window)[even]
+    return out
+
+
+def compute_shares(
+    history: pd.DataFrame, children: pd.DataFrame, settings: ShareSettings, cycle_date: pd.Timestamp
+) -> pd.DataFrame:
+    """The share table: one row per child, with its base share and lifecycle rule.
+
+    history: lifecycle history (leaf keys, period_start, quantity, optional shortage).
+    children: from `active_children` (leaf keys, product_class and the lifecycle
+    columns; see `complete_children` for the defaults of absent ones).
+    """
+    settings = ShareSettings.of(settings)
+    period = settings.period
+    cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
+    children = complete_children(children, settings, cycle_date)
+    n = len(children)
+    established = (children["own_periods"] >= settings.min_history_periods).to_numpy()
+    base = _history_shares(history, children, established, settings, cycle_ord)
+    rule, ref_pos, scale, initial, detail = lifecycle_rules(children, established, settings, cycle_date)
+    parent_code, parents = factorize(children, PARENT)
+    share, _ = split_shares(
+        parent_code, len(parents), base["history_share"], rule, ref_pos, scale, initial, np.ones((n, 1), dtype=bool)
+    )
+
+    out = children[LEAF].copy()
+    out["cycle_date"] = cycle_date
+    out["product_class"] = children["product_class"].to_numpy()
+    out["share"] = share[:, 0]
+    for column in ("history_share", "method", "window", "window_used", "fallback", "child_volume", "parent_volume"):
+        out[column] = base[column]
+    start_age = np.where(base["window_used"] > 0, base["window_used"], base["window"])
+    out["window_start"] = ordinal_to_start(cycle_ord - start_age, period)
+    out["lifecycle_rule"] = rule
+    out["first_active_period"] = pd.DatetimeIndex(children["first_active_period"])
+    out["last_active_period"] = pd.DatetimeIndex(children["last_active_period"])
+    out["own_periods"] = children["own_periods"].to_numpy()
+    out["reference_customer"] = np.where(rule == "reference", children["reference_customer"].to_numpy(object), None)
+    out["scale"] = scale
+    out["initial_share"] = initial
+    out["lifecycle_detail"] = detail
+    return out[SHARE_COLUMNS].sort_values(LEAF, kind="stable").reset_index(drop=True)
+

@@ -1,0 +1,219 @@
+"""The pandera models of the cycle's outputs from the forecast on: forecast, backtest, plan, proofs, monitoring.
+
+Inputs, history and shares are in `pipelines.schemas`, whose base models
+these inherit.
+"""
+
+from typing import Optional
+
+import pandera.pandas as pa
+from pandera.typing import DateTime, Series
+
+from pipelines.schemas import ZERO_REASONS, LeafKeys, LeafPeriod, _Strict
+from pipelines.vocabulary import (
+    AUTO,
+    BENCHMARK,
+    FORECAST_BASES,
+    DemandClass,
+    DriftStatus,
+    Grain,
+    MeasureFallback,
+    Metric,
+    ModelGrain,
+    ReportFile,
+    SplitRule,
+    Strategy,
+    values,
+)
+
+DEMAND_CLASSES = values(DemandClass)
+GRAINS = values(Grain)
+STRATEGIES = values(Strategy)
+
+
+# ----------------------------------------------------------------- forecast
+class ParentForecast(_Strict):
+    """Statistical forecast at product x site grain."""
+
+    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
+    product_class: Series[str] = pa.Field(description="product class")
+    product: Series[str] = pa.Field(description="product code")
+    site: Series[str] = pa.Field(description="site code")
+    period_start: Series[DateTime] = pa.Field(description="forecast period")
+    forecast: Series[float] = pa.Field(description="parent forecast")
+    model: Series[str] = pa.Field(description="statsforecast model used")
+    demand_class: Series[str] = pa.Field(isin=DEMAND_CLASSES, description="Syntetos-Boylan-Croston class")
+    model_grain: Series[str] = pa.Field(
+        isin=values(ModelGrain),
+        description="grains the class's models ran at: parent, leaf or both (the strategy's needs)",
+    )
+    strategy: Optional[Series[str]] = pa.Field(isin=STRATEGIES, description="how parent and leaf were made coherent")
+    zero_reason: Series[str] = pa.Field(
+        nullable=True, isin=ZERO_REASONS, description="why the forecast was set to 0 in this period (blank = not set)"
+    )
+
+    class Config:
+        unique = ["product", "site", "period_start"]
+
+
+class ForecastModels(_Strict):
+    """One row per series the cycle forecast: its grain, demand class, model and parameters."""
+
+    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
+    grain: Series[str] = pa.Field(
+        isin=GRAINS, description="parent (product x site) or leaf (product x site x customer)"
+    )
+    product_class: Series[str] = pa.Field(description="product class")
+    product: Series[str] = pa.Field(description="product code")
+    site: Series[str] = pa.Field(description="site code")
+    customer: Series[str] = pa.Field(description="customer code ('' for a parent)")
+    demand_class: Series[str] = pa.Field(isin=DEMAND_CLASSES, description="Syntetos-Boylan-Croston class")
+    adi: Series[float] = pa.Field(nullable=True, description="average inter-demand interval (NaN without demand)")
+    cv2: Series[float] = pa.Field(nullable=True, description="squared coefficient of variation of non-zero sizes")
+    model: Series[str] = pa.Field(description="model label")
+    parameters: Series[str] = pa.Field(description="parameters the library exposes ('' where it does not)")
+
+    class Config:
+        unique = ["grain", "product", "site", "customer"]
+
+
+class StatisticalForecast(LeafPeriod):
+    """Statistical forecast at leaf grain, split from the parent."""
+
+    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
+    product_class: Series[str] = pa.Field(description="product class")
+    forecast: Series[float] = pa.Field(description="leaf forecast")
+    parent_forecast: Series[float] = pa.Field(description="the parent's forecast this was split from")
+    basis: Series[str] = pa.Field(isin=values(FORECAST_BASES), description="what the leaf value was made from")
+
+    class Config:
+        unique = ["product", "site", "customer", "period_start"]
+
+
+class ForecastFittedValues(_Strict):
+    """In-sample one-step fitted values of the series whose strategy reconciles with residuals (MinT, WLS)."""
+
+    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
+    grain: Series[str] = pa.Field(isin=GRAINS, description="parent or leaf")
+    product_class: Series[str] = pa.Field(description="product class")
+    product: Series[str] = pa.Field(description="product code")
+    site: Series[str] = pa.Field(description="site code")
+    customer: Series[str] = pa.Field(description="customer code ('' for a parent)")
+    period_start: Series[DateTime] = pa.Field(description="history period")
+    actual: Series[float] = pa.Field(ge=0, description="history value (real history, no copied reference rows)")
+    fitted: Series[float] = pa.Field(description="model's one-step fitted value")
+
+    class Config:
+        unique = ["grain", "product", "site", "customer", "period_start"]
+
+
+class BacktestAccuracy(_Strict):
+    """Rolling-origin backtest: one accuracy value per product class, strategy, grain and metric."""
+
+    product_class: Series[str] = pa.Field(description="product class")
+    strategy: Series[str] = pa.Field(
+        isin=STRATEGIES + (str(BENCHMARK),), description="strategy, or the seasonal naive benchmark"
+    )
+    grain: Series[str] = pa.Field(isin=GRAINS, description="grain the accuracy is measured at")
+    metric: Series[str] = pa.Field(
+        isin=values(Metric), description="wmape, bias, mase or fva (value added over seasonal naive, WMAPE points)"
+    )
+    value: Series[float] = pa.Field(
+        nullable=True, description="the metric's value (NaN where undefined, e.g. no volume)"
+    )
+    origins: Series[int] = pa.Field(ge=0, description="forecast origins evaluated")
+    horizon: Series[int] = pa.Field(ge=1, description="periods forecast from each origin")
+    series: Series[int] = pa.Field(ge=0, description="series of this grain in the class")
+
+    class Config:
+        unique = ["product_class", "strategy", "grain", "metric"]
+
+
+class StrategyChoice(_Strict):
+    """Per product class: the strategy in effect, how it was decided and by how much it won."""
+
+    product_class: Series[str] = pa.Field(description="product class")
+    configured_strategy: Series[str] = pa.Field(
+        isin=(AUTO,) + STRATEGIES, description="the class's configured strategy (auto: the backtest's choice)"
+    )
+    strategy: Series[str] = pa.Field(isin=STRATEGIES, description="strategy the cycle follows")
+    leaf_wmape: Series[float] = pa.Field(nullable=True, description="its leaf-grain backtest WMAPE")
+    runner_up: Series[str] = pa.Field(description="next best strategy by leaf-grain WMAPE ('' if none)")
+    margin: Series[float] = pa.Field(
+        nullable=True, description="runner-up WMAPE minus the chosen one's (>= 0 for auto)"
+    )
+    seasonal_naive_wmape: Series[float] = pa.Field(nullable=True, description="leaf-grain WMAPE of seasonal naive")
+    beats_seasonal_naive: Series[bool] = pa.Field(
+        description="chosen WMAPE not above the benchmark's (true where undefined)"
+    )
+
+    class Config:
+        unique = ["product_class"]
+
+
+class PlanMeasures(LeafPeriod):
+    """Every measure of the plan at leaf grain, long format: one row per leaf, period and measure."""
+
+    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
+    measure: Series[str] = pa.Field(description="measure name (a key of config measures)")
+    value: Series[float] = pa.Field(description="the leaf's value")
+    parent_value: Series[float] = pa.Field(
+        nullable=True,
+        description="the parent's value in this period (blank where it has none and only pins gave the row)",
+    )
+    rule: Series[str] = pa.Field(isin=values(SplitRule), description="split rule of the measure")
+    basis: Series[str] = pa.Field(
+        description="what the value came from: parent (replicate), even, pin, or the pro_rata basis "
+        "(reinitialized_target, leaf_forecast, share_table:<name>, measure:<name>)"
+    )
+    fallback: Series[str] = pa.Field(
+        isin=values(MeasureFallback), description="fallback the parent period's split took"
+    )
+    pinned: Series[bool] = pa.Field(description="the value is a planner's pin, kept as given")
+
+    class Config:
+        unique = ["product", "site", "customer", "period_start", "measure"]
+
+
+class Reconciliation(_Strict):
+    """Parent value against the sum of its children, per parent and period."""
+
+    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
+    product: Series[str] = pa.Field(description="product code")
+    site: Series[str] = pa.Field(description="site code")
+    period_start: Series[DateTime] = pa.Field(description="period")
+    parent_forecast: Series[float] = pa.Field(description="parent value")
+    children_sum: Series[float] = pa.Field(description="sum of leaf forecasts")
+    children: Series[int] = pa.Field(ge=0, description="number of leaf rows")
+    difference: Series[float] = pa.Field(description="children_sum - parent_forecast")
+    relative_difference: Series[float] = pa.Field(description="|difference| / max(|parent|, 1)")
+
+    class Config:
+        unique = ["product", "site", "period_start"]
+
+
+# ----------------------------------------------------------------- monitoring
+class ShareDrift(LeafKeys):
+    """Each child's share now and in the previous cycle of its class, in percentage points."""
+
+    product_class: Series[str] = pa.Field(description="product class")
+    previous_cycle: Series[str] = pa.Field(description="cycle compared with (ISO date)")
+    share_previous: Series[float] = pa.Field(
+        ge=0, le=1, description="base share in the previous cycle (0 = not a child then)"
+    )
+    share_current: Series[float] = pa.Field(ge=0, le=1, description="base share in this cycle (0 = no longer a child)")
+    change_pp: Series[float] = pa.Field(ge=-100, le=100, description="100 x (current - previous), percentage points")
+    abs_change_pp: Series[float] = pa.Field(ge=0, le=100, description="size of the move, percentage points")
+    status: Series[str] = pa.Field(isin=values(DriftStatus), description="child in both cycles, only now, or only then")
+
+    class Config:
+        unique = ["product", "site", "customer"]
+
+
+class CycleReportFiles(_Strict):
+    """The files the cycle report wrote for one class: its charts and the cycle's page."""
+
+    product_class: Series[str] = pa.Field(description="product class")
+    kind: Series[str] = pa.Field(isin=values(ReportFile), description="parents chart, shares chart, or the page")
+    path: Series[str] = pa.Field(description="file written, under var/reports/<cycle>/")
+    bytes: Series[int] = pa.Field(gt=0, description="file size")

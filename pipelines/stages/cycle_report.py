@@ -1,0 +1,54 @@
+"""Stage `cycle_report`: the class's charts of this cycle, as PNG files beside the cycle's HTML page.
+
+The charts (`pipelines.engines.report_charts`): the parents' history and
+forecast, and the children's shares as a stacked area over history and
+horizon. The page of the whole cycle is written after them from the store and
+the checks' runs (`pipelines.cycle_report`), by the asset, which knows the
+Dagster instance.
+"""
+
+from __future__ import annotations
+
+import base64
+from dataclasses import dataclass
+from pathlib import Path
+
+import pandas as pd
+
+from pipelines.engines.report_charts import chart_file_name, parent_chart, share_chart
+from pipelines.results import Log, Markdown, StageResult, quiet
+
+
+@dataclass(frozen=True)
+class ReportSettings:
+    period: str
+    product_class: str
+    cycle: str
+    folder: Path
+
+
+def run(
+    lifecycle_history: pd.DataFrame,
+    parent_forecast: pd.DataFrame,
+    reinitialized_target: pd.DataFrame,
+    share_tables: pd.DataFrame,
+    cycle_calendar: pd.DataFrame,
+    settings: ReportSettings,
+    log: Log = quiet,
+) -> StageResult:
+    """The class's two charts as files, one row per file, and the pictures in the metadata."""
+    where = {"product_class": settings.product_class, "cycle_date": settings.cycle, "period": settings.period}
+    pictures = {
+        "parents": parent_chart(lifecycle_history, parent_forecast, **where),
+        "shares": share_chart(lifecycle_history, reinitialized_target, shares=share_tables, **where),
+    }
+    rows, files, figures = [], {}, {}
+    for kind, png in pictures.items():
+        name = chart_file_name(kind, settings.product_class, settings.cycle)
+        path = settings.folder / name
+        files[name] = png
+        rows.append({"product_class": settings.product_class, "kind": kind, "path": str(path), "bytes": len(png)})
+        text = f"{kind} of {settings.product_class}, cycle {settings.cycle}"
+        figures[f"{kind}_chart"] = Markdown(f"![{text}](data:image/png;base64,{base64.b64encode(png).decode()})")
+        figures[f"{kind}_chart_file"] = path
+    return StageResult(outputs={"cycle_report": pd.DataFrame(rows)}, metadata={"cycle_report": figures}, files=files)
