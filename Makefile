@@ -4,6 +4,9 @@ VENV := .venv
 BIN := $(VENV)/bin
 export DAGSTER_HOME := $(CURDIR)/.dagster
 export APPORTION_CONFIG ?= config/planning.yaml
+# partitions (classes) run at once: by `make demo` (cycle --parallel) and by the UI's run queue. 1 by default: on the
+# 2-core demo machine 2 at once was no faster (benchmarks/README.md); raise it where cores are free
+PARALLEL ?= 1
 
 .PHONY: demo test ui rebuild summary bench browser-deps clean
 
@@ -19,13 +22,29 @@ $(VENV)/.installed-test: pyproject.toml | $(BIN)/python
 	$(BIN)/python -m pip install --quiet -e '.[test]'
 	touch $@ $(VENV)/.installed-base
 
-$(DAGSTER_HOME)/dagster.yaml:
-	mkdir -p $(DAGSTER_HOME)
-	printf 'telemetry:\n  enabled: false\n# one run at a time: every run writes the same DuckDB file\nconcurrency:\n  runs:\n    max_concurrent_runs: 1\n' > $@
+# The instance config: K runs at once (at most one per partition), runs whose process died detected, and
+# PostgreSQL run/event storage when DAGSTER_POSTGRES_URL is set (pip install -e '.[postgres]'). Written again
+# when the Makefile changes, unless you removed the first line to keep your own edits.
+$(DAGSTER_HOME)/dagster.yaml: Makefile
+	@mkdir -p $(DAGSTER_HOME)
+	@if [ -f $@ ] && ! head -1 $@ | grep -q '^# written by make'; then echo "keeping $@ (edited by hand)"; else \
+	{ echo '# written by make (Makefile, PARALLEL=$(PARALLEL)); delete this line to keep your own edits'; \
+	  echo 'telemetry:'; echo '  enabled: false'; \
+	  echo 'concurrency:'; echo '  runs:'; \
+	  echo '    max_concurrent_runs: $(PARALLEL)'; \
+	  echo '    tag_concurrency_limits:   # one run per partition at a time (the store also locks it)'; \
+	  echo '      - key: dagster/partition'; echo '        value:'; echo '          applyLimitPerUniqueValue: true'; \
+	  echo '        limit: 1'; \
+	  echo 'run_monitoring:             # runs that never start are failed; the dead_run_reaper sensor fails runs whose process died'; \
+	  echo '  enabled: true'; echo '  start_timeout_seconds: 300'; echo '  poll_interval_seconds: 60'; \
+	  if [ -n "$$DAGSTER_POSTGRES_URL" ]; then \
+	  echo 'storage:                    # runs, events and schedules in PostgreSQL (many partitions, many runs at once)'; \
+	  echo '  postgres:'; echo '    postgres_url:'; echo '      env: DAGSTER_POSTGRES_URL'; fi; \
+	} > $@; echo "wrote $@"; fi
 
-## make demo: install, run the weekly cycle on data/demo for every class (and, once, the week before, so share drift has a previous cycle), print a summary
+## make demo: install, run the weekly cycle on data/demo for every class, PARALLEL at once (and, once, the week before, so share drift has a previous cycle), print a summary
 demo: $(VENV)/.installed-base $(DAGSTER_HOME)/dagster.yaml
-	$(BIN)/python -m pipelines cycle --config $(APPORTION_CONFIG) --backfill 1
+	$(BIN)/python -m pipelines cycle --config $(APPORTION_CONFIG) --backfill 1 --parallel $(PARALLEL)
 
 ## make test: install with test extras, lint (ruff), run the whole test suite
 test: $(VENV)/.installed-test $(DAGSTER_HOME)/dagster.yaml
@@ -40,7 +59,7 @@ ui: $(VENV)/.installed-base $(DAGSTER_HOME)/dagster.yaml
 rebuild: $(VENV)/.installed-base $(DAGSTER_HOME)/dagster.yaml
 	$(BIN)/python -m pipelines rebuild --config $(APPORTION_CONFIG) --class $(CLASS) --from $(or $(ASSET),share_tables) $(if $(CYCLE),--cycle $(CYCLE))
 
-summary: $(VENV)/.installed-base
+summary: $(VENV)/.installed-base $(DAGSTER_HOME)/dagster.yaml
 	$(BIN)/python -m pipelines summary --config $(APPORTION_CONFIG)
 
 ## make bench LEAVES=10000: time every stage on a synthetic hierarchy

@@ -10,10 +10,15 @@ SHARE_DRIFT = "share_drift"
 
 
 def previous_share_table(part: Partition) -> dict:
-    """The share table of the class's latest stored cycle before this one (None for its first cycle)."""
+    """The share table of the class's latest completed cycle before this one (None for its first cycle)."""
     store = Path(part.config.store.path)
     before = previous_cycle(store, "share_tables", part.cycle, part.product_class)
-    previous = read_table(store, "share_tables", cycle=before, product_class=part.product_class) if before else None
+    # the class as it last completed in that cycle (its blocking checks passed), published or not yet
+    previous = (
+        read_table(store, "share_tables", cycle=before, product_class=part.product_class, versions="complete")
+        if before
+        else None
+    )
     return {"previous": previous, "previous_cycle": before}
 
 

@@ -1,6 +1,10 @@
 """Compare every table of two stores row by row: the proof that a change kept the cycle's numbers.
 
-    .venv/bin/python benchmarks/compare_stores.py OLD.duckdb NEW.duckdb [--no-renames] [--ignore TABLE.COLUMN ...]
+    .venv/bin/python benchmarks/compare_stores.py OLD NEW [--no-renames] [--ignore TABLE.COLUMN ...]
+
+OLD and NEW are each a store: a folder (`store.path`, Parquet files per
+partition; its published cycles are read) or a DuckDB file of a release before
+the folder store (one table per asset).
 
 Each table of OLD is read whole (every cycle and class), its columns and
 values renamed to this release's names (`RENAMES`, the old -> new table of
@@ -26,7 +30,9 @@ import pandas as pd
 
 WRITTEN = "partitions_written"  # the store's own bookkeeping: one row per asset partition written
 # what differs on every run
-IGNORED = {(WRITTEN, "written_at")}
+IGNORED = {(WRITTEN, "written_at"), (WRITTEN, "run_id"), (WRITTEN, "file")}
+# bookkeeping of one store layout only: the DuckDB file's row order, the folder store's shard number
+LAYOUT_COLUMNS = {"partition_row", "shard"}
 # old -> new names of this release (issue 11): column renames per table, then value renames per (new) column
 RENAMES: dict[str, dict[str, dict]] = {
     "statistical_forecast": {
@@ -51,6 +57,23 @@ RENAMES: dict[str, dict[str, dict]] = {
 
 
 def read_tables(path: Path) -> dict[str, pd.DataFrame]:
+    """Every table of the store at `path` (folder: its published cycles; DuckDB file: as stored), without the
+    columns of one layout only."""
+    tables = _read_folder(path) if path.is_dir() else _read_duckdb(path)
+    return {name: f.drop(columns=[c for c in LAYOUT_COLUMNS if c in f.columns]) for name, f in tables.items()}
+
+
+def _read_folder(path: Path) -> dict[str, pd.DataFrame]:
+    from pipelines.store import open_store
+
+    store = open_store(path)
+    names = sorted(d.name for d in (path / "tables").glob("*") if d.is_dir())
+    out = {name: store.read(name, versions="published", with_partition=True) for name in names}
+    out[WRITTEN] = store.partitions_written(versions="published")
+    return {name: frame for name, frame in out.items() if frame is not None}
+
+
+def _read_duckdb(path: Path) -> dict[str, pd.DataFrame]:
     with duckdb.connect(str(path), read_only=True) as con:
         names = [r[0] for r in con.execute("SELECT table_name FROM information_schema.tables ORDER BY 1").fetchall()]
         return {name: con.execute(f'SELECT * FROM "{name}"').df() for name in names}

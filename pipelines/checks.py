@@ -50,6 +50,7 @@ EVERY_ACTIVE_PARENT_HAS_CHILDREN = "every_active_parent_has_children"
 MEASURES_SUM_TO_PARENT = "measures_sum_to_parent"
 PINS_KEPT = "pins_kept"
 PINS_WITHIN_PARENT = "pins_within_parent"
+TABLES_PASSED_THEIR_CHECKS = "tables_passed_their_checks"
 REFERENCES_KNOWN = "references_known"  # one name on four inputs: each judges its own file's rows
 
 
@@ -213,6 +214,15 @@ CHECKS: tuple[Check, ...] = (
     ),
     _references(
         "pins", "every pin names a customer with a span of its product and site, and a measure of the config", True
+    ),
+    Check(
+        TABLES_PASSED_THEIR_CHECKS,
+        "publication",
+        True,
+        "Proves that every table version this class publishes passed its blocking checks in the run that wrote it (a "
+        "rebuild reuses the stored upstream tables, which an earlier run may have written and failed). When it fails, "
+        "the class is not recorded complete and readers keep the last published cycle; rebuild from the first listed "
+        "asset (python -m pipelines rebuild --class CLASS --from ASSET) or rerun the cycle.",
     ),
 )
 # check names of earlier releases -> their names now (DEVELOPERS.md lists them for users)

@@ -37,9 +37,12 @@ LATEST_COMPLETE_PERIOD = "latest_complete_period"
 
 
 class StoreConfig(Frozen):
-    """The DuckDB file holding one table per asset."""
+    """The store folder: a Parquet file per asset partition, cycles published whole (pipelines/store/)."""
 
-    path: Path = Path("var/apportion.duckdb")
+    path: Path = Path("var/store")
+    # a run launched by the daemon or the UI waits this long for a partition another run is writing,
+    # then fails naming that run (the command line asks with --if-busy wait|stop)
+    lock_wait_minutes: float = Field(60.0, ge=0, description="minutes a run waits for a busy partition")
 
 
 class CalendarConfig(Frozen):

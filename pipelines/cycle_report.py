@@ -1,7 +1,9 @@
 """The cycle's HTML report, from the store and the Dagster instance.
 
 The page (pipelines/engines/report_html.py renders it) covers every class of one
-cycle: the classes' tables come from the store, the checks' latest status per
+cycle: the classes' tables come from the store as published (with a notice
+when the cycle is not published, or a later run of it did not complete), the
+checks' latest status per
 partition from the runs of that partition in the instance (so a class's
 rebuild shows its new results, and a run a blocking check stopped shows the
 failure). It is written to var/reports/<cycle>/cycle_report.html, next to the
@@ -70,6 +72,24 @@ def latest_check_results(
     return pd.DataFrame(rows, columns=CHECK_COLUMNS)
 
 
+def publication_notice(config: PlanningConfig, cycle: str) -> str | None:
+    """A line for the page when the cycle is not published, or a later run of it has not completed."""
+    from pipelines.store import open_store
+
+    store = open_store(config.store.path)
+    if not store.check_layout():
+        return None
+    status = store.status(cycle, list(config.product_classes))
+    if not status.incomplete:
+        return None
+    waiting = "; ".join(status.describe_class(k) for k in status.incomplete)
+    if status.is_published:
+        return (f"A later run of this cycle has not completed ({waiting}). The tables below are the cycle as published "
+                f"{status.published['published_at'][:19]} UTC; the checks are the latest of each class.")
+    return (f"This cycle is not published: nothing of it is shown until every class passed its blocking checks "
+            f"({waiting}). The checks are the latest of each class.")
+
+
 def write_cycle_report(config: PlanningConfig, instance: dg.DagsterInstance, cycle: str) -> Path:
     """Render the cycle's page from the store and the instance; the path written."""
     store = Path(config.store.path)
@@ -91,6 +111,7 @@ def write_cycle_report(config: PlanningConfig, instance: dg.DagsterInstance, cyc
         for c in classes
     }
     page = report_html.cycle_report_html(
+        notice=publication_notice(config, cycle),
         cycle_date=cycle,
         share_tables=shares if shares is not None else pd.DataFrame(columns=["product_class"]),
         checks=[

@@ -9,6 +9,7 @@ from assets.lifecycle_history import lifecycle_history
 from assets.master_data import adjustments, customer_spans, pins, products, shortages
 from assets.period_basis import period_basis
 from assets.plan_measures import plan_measures
+from assets.publication import publication_asset
 from assets.raw_history import raw_history
 from assets.reconciliation import reconciliation
 from assets.reinitialized_target import reinitialized_target
@@ -16,8 +17,9 @@ from assets.share_drift import share_drift
 from assets.share_tables import share_tables
 from assets.statistical_forecast import statistical_forecast
 from assets.strategy_choice import strategy_choice
-from pipelines.jobs import cycle_job, cycle_schedule, new_history_file_sensor
-from pipelines.resources import DuckDBStore, PlanningConfigResource
+from pipelines.jobs import cycle_job, cycle_schedule, dead_run_reaper, new_history_file_sensor
+from pipelines.resources import PlanningConfigResource
+from pipelines.store.dagster_io import PartitionStore
 
 ASSETS = [
     raw_history,
@@ -39,6 +41,8 @@ ASSETS = [
     cycle_report,
     plan_measures,
 ]
+# last: downstream of every asset above, it publishes the class's tables once their blocking checks passed
+ASSETS.append(publication_asset(list(ASSETS)))
 
 
 def build_definitions(config_path: str = "") -> dg.Definitions:
@@ -48,8 +52,8 @@ def build_definitions(config_path: str = "") -> dg.Definitions:
         assets=ASSETS,
         jobs=[cycle_job],
         schedules=[cycle_schedule],
-        sensors=[new_history_file_sensor],
-        resources={"planning": planning, "io_manager": DuckDBStore(planning=planning)},
+        sensors=[new_history_file_sensor, dead_run_reaper],
+        resources={"planning": planning, "io_manager": PartitionStore(planning=planning)},
         executor=dg.in_process_executor,
     )
 

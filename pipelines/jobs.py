@@ -14,11 +14,14 @@ from pipelines.engines.inputs import find_files, sha256
 from pipelines.errors import PlanningError
 from pipelines.partitions import current_cycle, partition_key, register_partitions
 from pipelines.resources import PlanningConfigResource
+from pipelines.store import open_store
+from pipelines.store.dagster_io import mark_dead_runs_failed
 
 CYCLE_JOB = "planning_cycle"
 # the schedule's name says what it starts, not when: its cron is its setting (cron_schedule below)
 CYCLE_SCHEDULE = "planning_cycle_schedule"
 NEW_HISTORY_SENSOR = "new_history_file"
+DEAD_RUN_REAPER = "dead_run_reaper"
 
 cycle_job = dg.define_asset_job(
     CYCLE_JOB,
@@ -26,6 +29,17 @@ cycle_job = dg.define_asset_job(
     description="The whole cycle for one product class (a partition cycle|class): history in, shares "
     "refreshed, forecast rerun and split, reconciliation proven.",
 )
+
+
+def start_cycle(instance: dg.DagsterInstance, config, cycle: str, classes: list[str], by: str) -> None:
+    """Register the partitions and mark the classes pending in the store, before their runs are requested.
+
+    Pending: until every one of them completes again, the cycle's publication
+    stays as it was, so a rerun in which one class fails does not publish the
+    others' new tables beside that class's old ones.
+    """
+    register_partitions(instance, cycle, classes)
+    open_store(config.store.path).begin(cycle, classes, command=by)
 
 
 def cycle_run_requests(cycle: str, classes: list[str], run_key_prefix: str) -> list[dg.RunRequest]:
@@ -56,7 +70,7 @@ def cycle_schedule(context: dg.ScheduleEvaluationContext, planning: PlanningConf
     except PlanningError as err:
         return dg.SkipReason(f"no cycle started: {err}")
     classes = list(config.product_classes)
-    register_partitions(context.instance, cycle, classes)
+    start_cycle(context.instance, config, cycle, classes, by=f"schedule {CYCLE_SCHEDULE}")
     return cycle_run_requests(
         cycle, classes, run_key_prefix=f"schedule:{context.scheduled_execution_time:%Y-%m-%dT%H:%M}"
     )
@@ -90,7 +104,7 @@ def new_history_file_sensor(context: dg.SensorEvaluationContext, planning: Plann
     except PlanningError as err:
         return dg.SkipReason(f"history changed ({', '.join(changed)}) but no cycle can start: {err}")
     classes = list(config.product_classes)
-    register_partitions(context.instance, cycle, classes)
+    start_cycle(context.instance, config, cycle, classes, by=f"sensor {NEW_HISTORY_SENSOR}")
     digest = sha256_of_signature(signature)
     return dg.SensorResult(
         run_requests=cycle_run_requests(cycle, classes, run_key_prefix=f"history:{digest}"),
@@ -102,3 +116,18 @@ def sha256_of_signature(signature: dict[str, str]) -> str:
     import hashlib
 
     return hashlib.sha256(json.dumps(signature, sort_keys=True).encode()).hexdigest()[:16]
+
+
+@dg.sensor(
+    name=DEAD_RUN_REAPER,
+    minimum_interval_seconds=60,
+    default_status=dg.DefaultSensorStatus.RUNNING,
+    description="Every minute, marks failed each started run whose process on this machine is no longer running "
+    "(killed, out of memory, machine restarted), so it stops holding a place in the run queue and the schedule and "
+    "sensor keep launching. Runs on other machines are left to Dagster's run monitoring.",
+)
+def dead_run_reaper(context: dg.SensorEvaluationContext):
+    marked = mark_dead_runs_failed(context.instance)
+    for message in marked:
+        context.log.warning(message)
+    return dg.SkipReason("; ".join(marked) if marked else "no run with a dead process")

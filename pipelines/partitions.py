@@ -16,6 +16,7 @@ sees the planning config narrowed to its cycle date and its class
 from __future__ import annotations
 
 import datetime as dt
+import time
 
 import dagster as dg
 import pandas as pd
@@ -80,14 +81,35 @@ def narrow_config(config: PlanningConfig, cycle: str, product_class: str) -> Pla
 
 
 def register_partitions(instance: dg.DagsterInstance, cycle: str, classes: list[str]) -> None:
-    """Add the cycle and the classes as partition keys (adding an existing key is a no-op)."""
-    known_cycles = set(instance.get_dynamic_partitions(CYCLE))
-    if cycle not in known_cycles:
-        instance.add_dynamic_partitions(CYCLE, [cycle])
-    known_classes = set(instance.get_dynamic_partitions(PRODUCT_CLASS))
-    new = [c for c in classes if c not in known_classes]
-    if new:
-        instance.add_dynamic_partitions(PRODUCT_CLASS, new)
+    """Add the cycle and the classes as partition keys (adding an existing key is a no-op).
+
+    Safe when runs start together: Dagster reads the known keys, then inserts
+    the new ones, so two processes may both insert a key and the second hits
+    the table's unique constraint (or, on SQLite, a busy database). That
+    process reads the keys again and adds what is still missing.
+    """
+    _add_keys(instance, CYCLE, [cycle])
+    _add_keys(instance, PRODUCT_CLASS, list(classes))
+
+
+RACE_MESSAGES = ("unique constraint", "duplicate key", "integrityerror", "database is locked")
+REGISTER_ATTEMPTS = 20
+
+
+def _add_keys(instance: dg.DagsterInstance, name: str, keys: list[str]) -> None:
+    for attempt in range(REGISTER_ATTEMPTS):
+        known = set(instance.get_dynamic_partitions(name))
+        new = [k for k in dict.fromkeys(keys) if k not in known]
+        if not new:
+            return
+        try:
+            instance.add_dynamic_partitions(name, new)
+            return
+        except Exception as err:  # the storage's own error class (sqlite3, sqlalchemy, psycopg2) varies
+            text = f"{type(err).__name__} {err}".lower()
+            if attempt == REGISTER_ATTEMPTS - 1 or not any(m in text for m in RACE_MESSAGES):
+                raise
+            time.sleep(0.02 * (attempt + 1))
 
 
 def current_cycle(config: PlanningConfig, requested: str | None = None) -> str:

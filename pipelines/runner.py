@@ -1,16 +1,27 @@
-"""Running the cycle's partitions in-process: the command line and the tests start runs through here."""
+"""Running the cycle's partitions: the command line and the tests start runs through here.
+
+`run_partitions` runs one partition after another in this process (tests and
+`cycle` without --parallel); `run_partitions_parallel` runs up to K at once,
+one process each (`cycle --parallel K`). Either way each run holds its
+partition's one-writer lock in the store for as long as it runs, and the
+classes are marked pending first, so the cycle is published only when every
+one of them completed again.
+"""
 
 from __future__ import annotations
 
+import multiprocessing
 import time
+import uuid
 from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import dagster as dg
 
-from pipelines.errors import ConfigError
+from pipelines.errors import ConfigError, PlanningError
 from pipelines.jobs import CYCLE_JOB
 from pipelines.partitions import partition_key, register_partitions
+from pipelines.store.dagster_io import process_tags
 
 
 @dataclass
@@ -44,6 +55,85 @@ class CycleRun:
         return all(e.passed for e in self.get_asset_check_evaluations() if e.severity != dg.AssetCheckSeverity.WARN)
 
 
+@dataclass
+class PartitionOutcome:
+    """What the command line reports of one partition's run, whichever process ran it."""
+
+    product_class: str
+    run_id: str
+    success: bool
+    seconds: float
+    checks: list[dg.AssetCheckEvaluation]
+    failures: list[tuple[str, str]]  # (step, message)
+    exit_code: int = 0  # of its process (--parallel): 2 when the partition was busy or the input bad
+    failure_kinds: list[str] = field(default_factory=list)  # per failed step: bad_input, check or crash
+
+    @classmethod
+    def from_result(cls, product_class: str, result: dg.ExecuteInProcessResult, seconds: float) -> PartitionOutcome:
+        return cls(
+            product_class,
+            result.run_id,
+            result.success,
+            seconds,
+            result.get_asset_check_evaluations(),
+            [_failure(e) for e in result.all_events if e.is_step_failure],
+            failure_kinds=[failure_kind(e) for e in result.all_events if e.is_step_failure],
+        )
+
+    @classmethod
+    def from_instance(
+        cls, product_class: str, instance: dg.DagsterInstance, run_id: str, seconds: float
+    ) -> PartitionOutcome:
+        run = instance.get_run_by_id(run_id)
+        if run is None:
+            return cls(
+                product_class,
+                run_id,
+                False,
+                seconds,
+                [],
+                [("start", "the run was not created (see the messages above)")],
+            )
+        checks = [
+            e.dagster_event.event_specific_data
+            for e in instance.all_logs(run_id, of_type=dg.DagsterEventType.ASSET_CHECK_EVALUATION)
+        ]
+        steps = [e.dagster_event for e in instance.all_logs(run_id, of_type=dg.DagsterEventType.STEP_FAILURE)]
+        failures = [_failure(e) for e in steps]
+        if run.status != dg.DagsterRunStatus.SUCCESS and not failures:
+            failures = [("run", f"ended {run.status.value}")]
+        success = run.status == dg.DagsterRunStatus.SUCCESS
+        kinds = [failure_kind(e) for e in steps]
+        return cls(product_class, run_id, success, seconds, checks, failures, failure_kinds=kinds)
+
+
+def _failure(event) -> tuple[str, str]:
+    error = event.event_specific_data.error
+    message = error.cause.message if error and error.cause else (error.message if error else event.message)
+    return event.step_key or "run", (message or "").strip()
+
+
+def failure_kind(event) -> str:
+    """Why a step failed: `bad_input` (a PlanningError), `check` (a blocking check failed) or `crash` (else)."""
+    names = {c.__name__ for c in _subclasses(PlanningError)}
+    error = event.event_specific_data.error
+    while error is not None:
+        if error.cls_name in names:
+            return "bad_input"
+        if "AssetCheck" in (error.cls_name or ""):
+            return "check"
+        error = error.cause
+    return "crash"
+
+
+def _subclasses(cls) -> list[type]:
+    return [cls] + [s for c in cls.__subclasses__() for s in _subclasses(c)]
+
+
+def blocking_checks_pass(outcomes: list[PartitionOutcome]) -> bool:
+    return all(e.passed for o in outcomes for e in o.checks if e.severity != dg.AssetCheckSeverity.WARN)
+
+
 def rebuild_selection(defs: dg.Definitions, first: str) -> list[dg.AssetKey]:
     """`first` and everything downstream of it, with the other outputs of any multi-asset it touches."""
     graph = defs.resolve_asset_graph()
@@ -52,6 +142,11 @@ def rebuild_selection(defs: dg.Definitions, first: str) -> list[dg.AssetKey]:
         raise ConfigError(f"{first!r} is not an asset; assets are {sorted(names)}")
     wanted = dg.AssetSelection.assets(first).downstream().required_multi_asset_neighbors()
     return sorted(wanted.resolve(graph), key=lambda k: k.to_user_string())
+
+
+def store_of(defs: dg.Definitions):
+    """The store the definitions' IO manager writes."""
+    return defs.resources["io_manager"].store
 
 
 def run_partitions(
@@ -65,28 +160,136 @@ def run_partitions(
     run_config: dict | None = None,
     on_start: Callable[[int, str], None] | None = None,
     on_done: Callable[[str, dg.ExecuteInProcessResult, float], None] | None = None,
+    wait_seconds: float | None = None,
+    say: Callable[[str], None] | None = print,
+    command: str = "cycle",
 ) -> CycleRun:
-    """Run the cycle job (or `selection`) for each class of `cycle`, one run per partition.
+    """Run the cycle job (or `selection`) for each class of `cycle`, one run per partition, in this process.
 
     The cycle and `all_classes` (default `classes`) are registered as partitions
-    first, so the runs show in the UI under their partition keys.
+    first, so the runs show in the UI under their partition keys. Each run
+    holds its partition's lock; when another run holds it, this waits
+    (`wait_seconds` None: as long as it takes, saying so through `say`) or
+    raises PartitionBusy naming that run.
     """
     register_partitions(instance, cycle, list(all_classes or classes))
+    store = store_of(defs)
+    store.begin(cycle, list(classes), command=command)
     job = defs.resolve_job_def(CYCLE_JOB)
     run = CycleRun(cycle=cycle)
     for i, product_class in enumerate(classes, 1):
         if on_start:
             on_start(i, product_class)
         started = time.monotonic()
-        result = job.execute_in_process(
-            run_config=run_config or {},
-            instance=instance,
-            partition_key=partition_key(cycle, product_class),
-            asset_selection=selection,
-            raise_on_error=False,
-        )
+        run_id = str(uuid.uuid4())
+        with store.partition_lock(
+            cycle, product_class, run_id=run_id, command=command, wait_seconds=wait_seconds, say=say
+        ):
+            result = job.execute_in_process(
+                run_config=run_config or {},
+                instance=instance,
+                partition_key=partition_key(cycle, product_class),
+                asset_selection=selection,
+                raise_on_error=False,
+                run_id=run_id,
+                tags=process_tags(),
+            )
         run.results[product_class] = result
         run.seconds[product_class] = time.monotonic() - started
         if on_done:
             on_done(product_class, result, run.seconds[product_class])
     return run
+
+
+def _run_in_child(
+    config_path: str,
+    cycle: str,
+    product_class: str,
+    first: str | None,
+    run_id: str,
+    run_config: dict,
+    wait_seconds: float | None,
+    command: str,
+) -> int:
+    """One partition in a process of its own (`cycle --parallel`): 0 ran, 2 partition busy or bad input."""
+    from pipelines.__main__ import _instance
+    from pipelines.definitions import build_definitions
+    from pipelines.errors import PlanningError
+
+    defs = build_definitions(config_path)
+    selection = rebuild_selection(defs, first) if first else None
+    try:
+        with store_of(defs).partition_lock(
+            cycle, product_class, run_id=run_id, command=command, wait_seconds=wait_seconds, say=print
+        ):
+            defs.resolve_job_def(CYCLE_JOB).execute_in_process(
+                run_config=run_config,
+                instance=_instance(),
+                partition_key=partition_key(cycle, product_class),
+                asset_selection=selection,
+                raise_on_error=False,
+                run_id=run_id,
+                tags=process_tags(),
+            )
+    except PlanningError as err:
+        print(f"error: {err}", flush=True)
+        return 2
+    return 0
+
+
+def _child_main(*args) -> None:
+    raise SystemExit(_run_in_child(*args))
+
+
+def run_partitions_parallel(
+    config_path: str,
+    instance: dg.DagsterInstance,
+    cycle: str,
+    classes: list[str],
+    *,
+    parallel: int,
+    all_classes: list[str],
+    first: str | None = None,
+    run_config: dict | None = None,
+    on_start: Callable[[int, str], None] | None = None,
+    on_done: Callable[[PartitionOutcome], None] | None = None,
+    wait_seconds: float | None = None,
+    command: str = "cycle",
+) -> list[PartitionOutcome]:
+    """Run the classes of `cycle` `parallel` at a time, each in a process of its own (spawned: a fresh
+    interpreter, so no Dagster or SQLite state is shared by fork); the outcomes read back from the instance."""
+    from pipelines.definitions import build_definitions
+
+    register_partitions(instance, cycle, list(all_classes))
+    store_of(build_definitions(config_path)).begin(cycle, list(classes), command=command)
+    context = multiprocessing.get_context("spawn")
+    waiting = list(enumerate(classes, 1))
+    running: dict[str, tuple] = {}
+    outcomes = []
+    while waiting or running:
+        while waiting and len(running) < parallel:
+            i, product_class = waiting.pop(0)
+            run_id = str(uuid.uuid4())
+            args = (config_path, cycle, product_class, first, run_id, run_config or {}, wait_seconds, command)
+            process = context.Process(target=_child_main, args=args, name=f"apportion-{product_class}")
+            if on_start:
+                on_start(i, product_class)
+            process.start()
+            running[product_class] = (process, run_id, time.monotonic())
+        time.sleep(0.2)
+        for product_class, (process, run_id, started) in list(running.items()):
+            if process.is_alive():
+                continue
+            process.join()
+            del running[product_class]
+            outcome = PartitionOutcome.from_instance(product_class, instance, run_id, time.monotonic() - started)
+            if process.exitcode == 2:
+                outcome.failures.append(("start", "partition busy or bad input (message above)"))
+            elif process.exitcode != 0:
+                outcome.failures.append(("process", f"exited with code {process.exitcode}"))
+                outcome.failure_kinds.append("crash")
+            outcome.exit_code = process.exitcode
+            outcomes.append(outcome)
+            if on_done:
+                on_done(outcome)
+    return outcomes

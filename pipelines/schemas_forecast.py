@@ -217,3 +217,22 @@ class CycleReportFiles(_Strict):
     kind: Series[str] = pa.Field(isin=values(ReportFile), description="parents chart, shares chart, or the page")
     path: Series[str] = pa.Field(description="file written, under var/reports/<cycle>/")
     bytes: Series[int] = pa.Field(gt=0, description="file size")
+
+
+# ----------------------------------------------------------------- publication
+class ClassPublication(_Strict):
+    """The table versions one class of a cycle publishes, each with the proof that its blocking checks passed."""
+
+    asset: Series[str] = pa.Field(description="asset (store table)")
+    shard: Series[str] = pa.Field(description="shard of the class ('0' while classes are not cut into shards)")
+    file: Series[str] = pa.Field(
+        nullable=True, description="Parquet file of the version, in the partition's folder; blank if never written"
+    )
+    rows: Series[int] = pa.Field(ge=0, description="rows of the version")
+    run_id: Series[str] = pa.Field(nullable=True, description="Dagster run that wrote the version")
+    written_at: Series[str] = pa.Field(nullable=True, description="when it was written (UTC, ISO)")
+    proven: Series[bool] = pa.Field(description="its blocking checks passed in the run that wrote it")
+    proof: Series[str] = pa.Field(description="how that is known, or why it is not")
+
+    class Config:
+        unique = ["asset", "shard"]

@@ -115,7 +115,7 @@ def build(tmp_path: Path, case: dict) -> tuple[Path, dict]:
     shutil.copytree(BASE, folder)
     config = yaml.safe_load((HERE / "planning.yaml").read_text())
     config["inputs"]["folder"] = str(folder)
-    config["store"]["path"] = str(tmp_path / "store.duckdb")
+    config["store"]["path"] = str(tmp_path / "store")
     for step in case.get("do", []):
         config = apply(folder, config, step)
     return folder, config

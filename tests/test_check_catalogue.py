@@ -30,6 +30,7 @@ RULE_CHECKS = {
     ("shortages", "references_known", "WARN"),
     ("adjustments", "references_known", "WARN"),
     ("pins", "references_known", "ERROR"),
+    ("publication", "tables_passed_their_checks", "ERROR"),
 }
 
 

@@ -56,3 +56,27 @@ def test_one_changed_number_is_a_difference_naming_the_column(tmp_path, capsys):
     )
     assert compare_stores.compare(old, new) == 1
     assert "column share: 1 rows differ" in capsys.readouterr().out
+
+
+def folder_store(path: Path, frame: pd.DataFrame) -> Path:
+    """A folder store holding `frame` as the one published partition 2026-11-30|spares of table `shares`."""
+    from pipelines.store import open_store, write_partition
+
+    write_partition(path, "shares", frame, "2026-11-30", "spares")
+    s = open_store(path)
+    s.complete_class(
+        "2026-11-30", "spares", {"shares": s.latest("shares", "2026-11-30", "spares")}, run_id="r", classes=["spares"]
+    )
+    return path
+
+
+def test_a_folder_store_compares_with_the_duckdb_layout(tmp_path, capsys):
+    # the same rows, once in the DuckDB file of the last release (with its row-order column) and once published
+    # in the folder store (with its shard column): identical; then one share changed in the folder store: caught
+    rows = pd.DataFrame({"customer": ["C1", "C2"], "share": [0.25, 0.75]})
+    old_rows = rows.assign(partition_cycle="2026-11-30", partition_class="spares", partition_row=[0, 1])
+    old = store(tmp_path / "old.duckdb", {"shares": old_rows})
+    assert compare_stores.main([str(old), str(folder_store(tmp_path / "same", rows)), "--no-renames"]) == 0
+    changed = rows.assign(share=[0.25, 0.7500001])
+    assert compare_stores.main([str(old), str(folder_store(tmp_path / "changed", changed)), "--no-renames"]) == 1
+    assert "column share: 1 rows differ" in capsys.readouterr().out

@@ -18,7 +18,7 @@ from pipelines.checks import CHECKS, CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE, NEW_C
 from pipelines.config import load_config
 from pipelines.definitions import ASSETS, build_definitions
 from pipelines.partitions import current_cycle
-from pipelines.resources import read_table
+from pipelines.resources import read_table, stored_cycles
 from pipelines.runner import CycleRun, rebuild_selection, run_partitions
 
 pytestmark = pytest.mark.graph
@@ -30,7 +30,7 @@ DEMO = ROOT / "data" / "demo"
 def make_config(tmp: Path, inputs: Path = DEMO, **overrides) -> str:
     data = yaml.safe_load((ROOT / "config" / "planning.yaml").read_text())
     data["inputs"]["folder"] = str(inputs)
-    data["store"]["path"] = str(tmp / "store.duckdb")
+    data["store"]["path"] = str(tmp / "store")
     for key, value in overrides.items():
         data[key] = value
     path = tmp / "planning.yaml"
@@ -81,7 +81,7 @@ def demo_cycle(tmp_path_factory):
     config = make_config(tmp)
     result = run_cycle(config)
     assert list(result.results) == ["consumables", "seasonal", "spares"] and result.cycle == "2026-11-30"
-    return result, tmp / "store.duckdb", config
+    return result, tmp / "store", config
 
 
 def assert_only_the_new_customer_warning_fails(result: dg.ExecuteInProcessResult) -> dg.AssetCheckEvaluation:
@@ -145,11 +145,19 @@ def test_auto_classes_follow_the_backtest_choice_and_stay_coherent(demo_cycle):
 
 
 def test_every_asset_lands_as_a_table_named_like_it(demo_cycle):
-    _, store, _ = demo_cycle
-    for key in dg.AssetSelection.all().resolve(ASSETS):
-        table = read_table(store, key.to_user_string())
+    from assets.publication import PUBLICATION
+    from pipelines.store import open_store
+
+    _, store, config = demo_cycle
+    tables = [k.to_user_string() for k in dg.AssetSelection.all().resolve(ASSETS) if k.to_user_string() != PUBLICATION]
+    for name in tables:
+        table = read_table(store, name)
         assert isinstance(table, pd.DataFrame)
     assert len(read_table(store, "statistical_forecast")) > 0
+    # the publication step records no table of its own: it publishes the others, every class of the cycle at once
+    published = open_store(store).published("2026-11-30")
+    assert sorted(published["classes"]) == ["consumables", "seasonal", "spares"]
+    assert all(sorted(c["tables"]) == sorted(tables) for c in published["classes"].values())
 
 
 def test_volume_is_conserved_from_parent_to_leaf(demo_cycle):
@@ -337,7 +345,30 @@ def test_rebuilding_one_class_replaces_exactly_its_partition(demo_cycle):
     )["written_at"]
     moved = now[now != written.reindex(now.index)].index
     # only the spares partitions of the rebuilt assets were written again; the other classes are untouched
-    assert {(a, c, k) for a, c, k in moved} == {(a, "2026-11-30", "spares") for a in names}
+    # (the publication step writes no table: it records the class complete and publishes the cycle again)
+    assert {(a, c, k) for a, c, k in moved} == {(a, "2026-11-30", "spares") for a in names if a != "publication"}
+
+
+def test_parallel_runs_publish_the_cycle_once_when_the_last_class_completes(demo_cycle, tmp_path, monkeypatch, capsys):
+    """`rebuild --parallel 2`: one process per class, two at once; classes finishing together publish once."""
+    from pipelines.__main__ import main
+    from pipelines.store import open_store
+
+    _, demo_store, _ = demo_cycle
+    store = tmp_path / "store"
+    shutil.copytree(demo_store, store)
+    before = {name: read_table(store, name, with_partition=True) for name in ("share_tables", "statistical_forecast")}
+    sequence = open_store(store).published("2026-11-30")["sequence"]
+    monkeypatch.setenv("DAGSTER_HOME", str(tmp_path / "home"))
+    config = make_config(tmp_path)
+    args = ["rebuild", "--config", config, "--from", "publication", "--parallel", "2"]
+    assert main(args + [a for c in ("consumables", "seasonal", "spares") for a in ("--class", c)]) == 0
+    out = capsys.readouterr().out
+    assert out.count("succeeded") == 3 and "INCOMPLETE" not in out
+    # the three classes were pending together, so the cycle was published once more, not once per class
+    assert open_store(store).published("2026-11-30")["sequence"] == sequence + 1
+    for name, frame in before.items():
+        pd.testing.assert_frame_equal(read_table(store, name, with_partition=True), frame)
 
 
 def test_broken_input_fails_its_blocking_check_with_the_rows(tmp_path):
@@ -405,7 +436,7 @@ def test_monthly_calendar_runs_the_same_graph(tmp_path):
     }
     assert all(checks[k].severity == dg.AssetCheckSeverity.WARN for k in failed)
     assert f"strategy_choice:{CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE}" in checks
-    store = tmp_path / "store.duckdb"
+    store = tmp_path / "store"
     cleaned = read_table(store, "cleaned_history")
     assert (cleaned["period_start"].dt.day == 1).all()
     forecast = read_table(store, "parent_forecast")
@@ -554,19 +585,23 @@ def test_two_cycles_side_by_side_and_the_share_drift_between_them(demo_cycle):
         defs, instance, "2026-11-23", ["spares"], all_classes=["consumables", "seasonal", "spares"]
     )
     assert previous.success and previous.blocking_checks_pass
-    late = read_table(store, "rejected_rows", cycle="2026-11-23", product_class="spares")
+    # one class of three is complete: the cycle is not published, so readers do not see it yet
+    assert stored_cycles(store) == ["2026-11-30"] and read_table(store, "share_tables", cycle="2026-11-23").empty
+    late = read_table(store, "rejected_rows", cycle="2026-11-23", product_class="spares", versions="complete")
     assert (late["reason"] == "on_or_after_cycle_date").sum() > 0
-    assert read_table(store, "cycle_calendar", cycle="2026-11-23")["cycle_date"].tolist() == [
+    assert read_table(store, "cycle_calendar", cycle="2026-11-23", versions="complete")["cycle_date"].tolist() == [
         pd.Timestamp("2026-11-23")
     ]
     pd.testing.assert_frame_equal(
         read_table(store, "share_tables", cycle="2026-11-30", product_class="spares"), current_before
     )
-    # now the current cycle's drift compares with it
+    # now the current cycle's drift compares with the class as it completed in that cycle
     rerun = run_partitions(defs, instance, "2026-11-30", ["spares"], selection=[dg.AssetKey("share_drift")])
     assert rerun.success
-    drift = read_table(store, "share_drift", cycle="2026-11-30", product_class="spares")
-    prev = read_table(store, "share_tables", cycle="2026-11-23", product_class="spares")
+    # without the publication step in the run the new drift is a working version: the pipeline sees it, readers not yet
+    drift = read_table(store, "share_drift", cycle="2026-11-30", product_class="spares", versions="latest")
+    assert read_table(store, "share_drift", cycle="2026-11-30", product_class="spares").empty
+    prev = read_table(store, "share_tables", cycle="2026-11-23", product_class="spares", versions="complete")
     assert set(drift["previous_cycle"]) == {"2026-11-23"}
     # every child of either cycle, its move = 100 x (share now - share then), worked from the two stored tables
     keys = ["product", "site", "customer"]
@@ -584,7 +619,7 @@ def test_two_cycles_side_by_side_and_the_share_drift_between_them(demo_cycle):
     assert check.severity == dg.AssetCheckSeverity.WARN
     assert check.passed == bool((drift["abs_change_pp"] <= limit).all())
     # the first cycle of a class has nothing to compare with
-    first = read_table(store, "share_drift", cycle="2026-11-23", product_class="spares")
+    first = read_table(store, "share_drift", cycle="2026-11-23", product_class="spares", versions="complete")
     assert first.empty
 
 
@@ -608,8 +643,9 @@ def test_watcher_warnings_fire_above_their_thresholds_and_list_the_rows(tmp_path
     )
     assert run.success and run.blocking_checks_pass  # WARN checks do not stop the cycle
     checks = checks_of(run)
-    store = tmp_path / "store.duckdb"
-    shares = read_table(store, "share_tables").drop_duplicates(["product", "site"])
+    store = tmp_path / "store"
+    # the run stopped at share_tables (no publication step): its tables are working versions
+    shares = read_table(store, "share_tables", versions="latest").drop_duplicates(["product", "site"])
     with_fallback = shares[shares["fallback"] != "none"]
     assert len(with_fallback) / len(shares) > 0.10
     fallback = checks[f"share_tables:{FALLBACK_SHARE_WITHIN_LIMIT}"]
@@ -655,3 +691,58 @@ def test_explain_prints_how_a_leaf_was_made_from_the_store(demo_cycle, capsys):
     assert "reference" in text and "C0001" in text and f"{value:,.2f}" in text
     assert main(["explain", "--config", config, "DRIP-002", "SITE-NORTH", "C9999"]) == 2
     assert "C0049" in capsys.readouterr().err  # the customers of that parent are listed
+
+
+def test_a_failed_rerun_leaves_the_published_cycle_as_readers_saw_it(demo_cycle, tmp_path, capsys):
+    """A cycle publishes whole: a rerun in which one class fails publishes nothing, not even the classes that passed."""
+    import duckdb
+
+    from pipelines.__main__ import print_summary
+    from pipelines.store import open_store
+
+    _, demo_store, _ = demo_cycle
+    store = tmp_path / "store"
+    shutil.copytree(demo_store, store)  # the store is a relocatable folder: pointers name files relative to it
+    published = open_store(store).published_cycles()
+    tables = sorted(open_store(store).published("2026-11-30")["classes"]["spares"]["tables"])
+    before = {name: read_table(store, name, with_partition=True) for name in tables}
+    # new history lines on a spares parent (so a good rerun of spares would change its tables), and a broken
+    # customer span of a consumables product: that class stops at its blocking schema check
+    inputs = tmp_path / "inputs"
+    shutil.copytree(DEMO, inputs)
+    spans = pd.read_csv(inputs / "customer_spans.csv", dtype=str, keep_default_na=False)
+    products = pd.read_csv(inputs / "products.csv", dtype=str, keep_default_na=False)
+    products = products.set_index("product")["product_class"]
+    broken = spans.index[spans["product"].map(products) == "consumables"][0]
+    spans.loc[broken, ["active_from", "active_to"]] = ["2025-06-01", "2025-01-01"]
+    spans.to_csv(inputs / "customer_spans.csv", index=False)
+    history = pd.read_csv(inputs / "history.csv", dtype=str, keep_default_na=False)
+    spare = history[history["product"].map(products) == "spares"].iloc[-1].copy()
+    spare["quantity"] = "40"
+    pd.concat([history, spare.to_frame().T]).to_csv(inputs / "history.csv", index=False)
+    config = make_config(tmp_path, inputs=inputs)
+    rerun = run_partitions(build_definitions(config), dg.DagsterInstance.ephemeral(), "2026-11-30",
+                           ["consumables", "spares"],
+                           all_classes=["consumables", "seasonal", "spares"])
+    assert not rerun.blocking_checks_pass and rerun.results["spares"].success
+    # spares passed and wrote new versions, which the pipeline sees ...
+    new_raw = read_table(store, "raw_history", cycle="2026-11-30", product_class="spares", versions="latest")
+    assert len(new_raw) == len(read_table(store, "raw_history", cycle="2026-11-30", product_class="spares")) + 1
+    # ... but readers see every table exactly as before: through the reader, and through SQL on the views
+    assert open_store(store).published_cycles() == published
+    for name in tables:
+        pd.testing.assert_frame_equal(read_table(store, name, with_partition=True), before[name], obj=name)
+    with duckdb.connect(str(store / "published.duckdb"), read_only=True) as con:
+        raw = con.execute("select count(*) from raw_history where partition_class = 'spares'").fetchone()[0]
+    assert raw == len(before["raw_history"].query("partition_class == 'spares'"))
+    # the summary marks the cycle: published, with a later run that did not complete, naming the class
+    print_summary(config, cycle="2026-11-30")
+    text = capsys.readouterr().out
+    assert "INCOMPLETE:   a later run of cycle 2026-11-30 has not completed; readers still see it as published" in text
+    assert "consumables: not complete" in text and "spares: complete" in text and "seasonal: complete" in text
+    # so does the cycle's page, above the published tables
+    from pipelines.cycle_report import write_cycle_report
+
+    page = write_cycle_report(load_config(config), dg.DagsterInstance.ephemeral(), "2026-11-30").read_text()
+    assert "A later run of this cycle has not completed (consumables: not complete" in page
+

@@ -26,7 +26,7 @@ def _history(folder: Path, rows: list[str]) -> None:
 def _config_file(tmp_path: Path, folder: Path, **calendar) -> str:
     data = {
         "inputs": {"folder": str(folder)},
-        "store": {"path": str(tmp_path / "store.duckdb")},
+        "store": {"path": str(tmp_path / "store")},
         "calendar": {"period": "week", **calendar},
         "product_classes": {"fast": {"window": 4}, "slow": {"window": 8}},
     }

@@ -236,7 +236,7 @@ def test_ui_shows_the_failed_schema_check_with_its_rows_then_its_history(tmp_pat
     shutil.copytree(DEMO, inputs)
     config = yaml.safe_load((ROOT / "config" / "planning.yaml").read_text())
     config["inputs"]["folder"] = str(inputs)
-    config["store"]["path"] = str(tmp_path / "store.duckdb")
+    config["store"]["path"] = str(tmp_path / "store")
     config_path = tmp_path / "planning.yaml"
     config_path.write_text(yaml.safe_dump(config))
 

@@ -291,6 +291,7 @@ def cycle_report_html(
     top_movers: int = 20,
     sample_rows: int = 10,
     title: str = "apportion cycle report",
+    notice: str | None = None,
 ) -> str:
     """A static, self-contained HTML page of one cycle.
 
@@ -301,6 +302,7 @@ def cycle_report_html(
     `sample_rows` by file and row), charts (`charts`: product class -> image
     file names in the page's folder). `calendar` is the one-row
     `cycle_calendar` (period kind, horizon, history range) when given.
+    `notice`: a line shown under the title (the cycle's publication state).
     """
     cycle = pd.Timestamp(cycle_date)
     meta = f"Cycle date {cycle:%Y-%m-%d}"
@@ -323,6 +325,7 @@ def cycle_report_html(
     body = [
         f"<h1>{_e(title)}</h1>",
         f'<p class="meta">{_e(meta)}</p>',
+        f'<p class="notice"><strong>{_e(notice)}</strong></p>' if notice else "",
         '<nav><a href="#checks">Checks</a> | <a href="#classes">Product classes</a> | <a href="#movers">Share '
         'movers</a> | '
         '<a href="#rejected">Rejected rows</a> | <a href="#charts">Charts</a></nav>',
