@@ -13,7 +13,6 @@ python -m pipelines demo-data [--out data/demo]   # regenerate the bundled demo 
 from __future__ import annotations
 
 import argparse
-import os
 import sys
 from pathlib import Path
 
@@ -29,19 +28,9 @@ EXIT_CRASH = 3  # a step failed on something that is not bad input: a bug; the r
 
 
 def _instance():
-    import dagster as dg
+    from pipelines.runner import dagster_instance
 
-    home = os.environ.get("DAGSTER_HOME")
-    if not home:
-        print(
-            "DAGSTER_HOME is not set, so the run would vanish with a temporary instance.\n"
-            "Set it to a folder that will hold runs and check history, e.g.\n"
-            "  export DAGSTER_HOME=$PWD/.dagster   (make demo does this)",
-            file=sys.stderr,
-        )
-        raise SystemExit(2)
-    Path(home).mkdir(parents=True, exist_ok=True)
-    return dg.DagsterInstance.get()
+    return dagster_instance()
 
 
 def run_cycle(

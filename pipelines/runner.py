@@ -11,10 +11,13 @@ one of them completed again.
 from __future__ import annotations
 
 import multiprocessing
+import os
+import sys
 import time
 import uuid
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from pathlib import Path
 
 import dagster as dg
 
@@ -201,6 +204,21 @@ def run_partitions(
     return run
 
 
+def dagster_instance() -> dg.DagsterInstance:
+    """The instance under DAGSTER_HOME (made when missing); exit 2 with what to do when it is not set."""
+    home = os.environ.get("DAGSTER_HOME")
+    if not home:
+        print(
+            "DAGSTER_HOME is not set, so the run would vanish with a temporary instance.\n"
+            "Set it to a folder that will hold runs and check history, e.g.\n"
+            "  export DAGSTER_HOME=$PWD/.dagster   (make demo does this)",
+            file=sys.stderr,
+        )
+        raise SystemExit(2)
+    Path(home).mkdir(parents=True, exist_ok=True)
+    return dg.DagsterInstance.get()
+
+
 def _run_in_child(
     config_path: str,
     cycle: str,
@@ -212,9 +230,7 @@ def _run_in_child(
     command: str,
 ) -> int:
     """One partition in a process of its own (`cycle --parallel`): 0 ran, 2 partition busy or bad input."""
-    from pipelines.__main__ import _instance
     from pipelines.definitions import build_definitions
-    from pipelines.errors import PlanningError
 
     defs = build_definitions(config_path)
     selection = rebuild_selection(defs, first) if first else None
@@ -224,7 +240,7 @@ def _run_in_child(
         ):
             defs.resolve_job_def(CYCLE_JOB).execute_in_process(
                 run_config=run_config,
-                instance=_instance(),
+                instance=dagster_instance(),
                 partition_key=partition_key(cycle, product_class),
                 asset_selection=selection,
                 raise_on_error=False,
