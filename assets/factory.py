@@ -18,7 +18,7 @@ from typing import Any
 import dagster as dg
 
 from assets.common import markdown, rule_check, schema_check_spec, table_metadata, validate
-from pipelines.checks import BY_NAME, checks_of
+from pipelines.checks import checks_of
 from pipelines.config import PlanningConfig
 from pipelines.partitions import cycle_class_partitions, narrow_config, split_key
 from pipelines.resources import report_folder
@@ -114,7 +114,7 @@ def stage_asset(spec: StageAsset) -> dg.AssetsDefinition:
         write_files(result.files, report_folder(part.config))
         if spec.publish:
             result = spec.publish(context, part, result)
-        yield from emit(spec, result)
+        yield from emit(spec, result, {"partition_cycle": part.cycle, "partition_class": part.product_class})
 
     return _asset
 
@@ -128,17 +128,28 @@ def write_files(files: dict[str, bytes], folder: Path) -> dict[str, Path]:
     return {name: folder / name for name in files}
 
 
-def emit(spec: StageAsset, result: StageResult):
-    """Outputs (validated) with their metadata, then the schema checks, then the rule checks."""
+def emit(spec: StageAsset, result: StageResult, partition: dict[str, str] | None = None):
+    """Outputs (validated) with their metadata, then the schema checks, then the rule checks.
+
+    Every check result carries `partition` (its cycle and class) and its first failing rows; a table read
+    from an input file (`result.sources`) names them by file and row, and loses that index before it is stored.
+    """
     schema_checks = []
     for table in spec.tables:
-        frame, check = validate(result.outputs[table.name], MODELS[table.name], table.name)
+        source = result.sources.get(table.name)
+        model = MODELS[table.name]
+        frame, check = validate(result.outputs[table.name], model, table.name, source=source, partition=partition)
+        if table.name in result.sources:
+            frame = frame.reset_index(drop=True)
         figures = result.metadata.get(table.name, {})
         yield dg.Output(frame, output_name=table.name, metadata=table_metadata(frame, **figures))
         schema_checks.append(check)
     yield from schema_checks
+    catalogue = {c.name: c for t in spec.tables for c in checks_of(t.name)}
     for name, outcome in result.checks.items():
-        check = BY_NAME[name]
+        check = catalogue[name]
         severity = dg.AssetCheckSeverity.ERROR if check.blocking else dg.AssetCheckSeverity.WARN
         figures = {k: markdown(v) if hasattr(v, "columns") else v for k, v in outcome.figures.items()}
-        yield rule_check(check.asset, name, outcome.rows, what=check.proves, severity=severity, **figures)
+        yield rule_check(
+            check.asset, name, outcome.rows, what=check.proves, severity=severity, partition=partition, **figures
+        )

@@ -3,7 +3,9 @@ and planner input.
 
 Each partition (cycle x product class) keeps the rows of its class's products;
 the product master, read once by `products`, says which class a product is in
-(`product_class_map`), and the other inputs depend on it.
+(`product_class_map`), and the other inputs depend on it. Each input but
+products also carries `references_known` (pipelines.checks): its rows name
+only products, customers and measures the master data and config hold.
 """
 
 from assets.factory import StageAsset, Table, stage_asset
@@ -19,8 +21,10 @@ SHORTAGES = "shortages"
 
 
 def input_settings(part) -> InputSettings:
+    config = part.config
     return InputSettings(
-        part.config.inputs.folder, part.product_class, tuple(part.full.product_classes), str(part.full.source)
+        config.inputs.folder, part.product_class, tuple(part.full.product_classes), str(part.full.source),
+        inputs=config.inputs, measures=tuple(config.measures),
     )
 
 

@@ -11,7 +11,7 @@ import dagster as dg
 import pandas as pd
 
 from assets.common import rule_check, schema_check_spec, table_metadata, validate
-from pipelines.checks import BY_NAME, TABLES_PASSED_THEIR_CHECKS
+from pipelines.checks import TABLES_PASSED_THEIR_CHECKS, check_of
 from pipelines.cycle_report import write_cycle_report
 from pipelines.partitions import cycle_class_partitions, split_key
 from pipelines.resources import PlanningConfigResource
@@ -20,7 +20,7 @@ from pipelines.store import open_store
 from pipelines.store.dagster_io import prove_checks
 
 PUBLICATION = "publication"
-PROOF_TEXT = BY_NAME[TABLES_PASSED_THEIR_CHECKS].description
+PROOF_TEXT = check_of(PUBLICATION, TABLES_PASSED_THEIR_CHECKS).description
 VERSION_COLUMNS = ["asset", "shard", "file", "rows", "run_id", "written_at"]
 
 
@@ -85,6 +85,7 @@ def publication_asset(stage_assets: list[dg.AssetsDefinition]) -> dg.AssetsDefin
     def publication(context: dg.AssetExecutionContext, planning: PlanningConfigResource):
         config = planning.config
         cycle, product_class = split_key(context.partition_key)
+        partition = {"partition_cycle": cycle, "partition_class": product_class}  # on every check result
         store = open_store(config.store.path)
         versions = prove_checks(
             context.instance,
@@ -93,13 +94,14 @@ def publication_asset(stage_assets: list[dg.AssetsDefinition]) -> dg.AssetsDefin
             blocking,
             _trusted(store, cycle, product_class),
         )
-        versions, schema_check = validate(versions, ClassPublication, PUBLICATION)
+        versions, schema_check = validate(versions, ClassPublication, PUBLICATION, partition=partition)
         unproven = versions[~versions["proven"].astype(bool)]
         proof_check = rule_check(
             PUBLICATION,
             TABLES_PASSED_THEIR_CHECKS,
             unproven[["asset", "shard", "run_id", "proof"]],
             what=PROOF_TEXT.split(". When")[0],
+            partition=partition,
         )
         if not schema_check.passed or len(unproven):
             context.log.error(

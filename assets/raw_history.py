@@ -10,8 +10,9 @@ raw_history = stage_asset(StageAsset(
     tables=(Table(
         RAW_HISTORY,
         "Every history line of the input folder's history*.csv / .parquet files for the partition's product "
-        "class, every cell as text. Lines of a product that is in no class (blank, or not in the product master) are "
-        "kept in every class, where cleaned_history rejects them with their reason.",
+        "class, every cell as text, with file and row. Lines of a product that is in no class (blank, or not in the "
+        "product master) and lines the reader could not split (read_error) are kept in every class, where "
+        "cleaned_history rejects them with their reason.",
     ),),
     run=stage.run,
     settings=input_settings,

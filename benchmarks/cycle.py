@@ -88,9 +88,9 @@ from assets.factory import Partition, graph_order  # noqa: E402
 from pipelines import definitions  # noqa: E402, F401  (makes every stage asset, so SPECS holds them all)
 from pipelines.calendar import shift_periods  # noqa: E402
 from pipelines.engines.children import active_children  # noqa: E402
+from pipelines.engines.history_files import load_raw_history  # noqa: E402
 from pipelines.engines.shares import compute_shares  # noqa: E402
 from pipelines.stages.cycle_report import ReportSettings  # noqa: E402
-from pipelines.stages.raw_history import load_raw_history  # noqa: E402
 from pipelines.tables import MODELS  # noqa: E402
 
 # step name of each stage (by its first table), in graph order; `raw` is the loader or the generated lines

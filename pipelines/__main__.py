@@ -13,29 +13,24 @@ python -m pipelines demo-data [--out data/demo]   # regenerate the bundled demo 
 from __future__ import annotations
 
 import argparse
-import os
 import sys
 from pathlib import Path
 
+from pipelines.config import LATEST_COMPLETE_PERIOD
 from pipelines.errors import ConfigError, PlanningError
+from pipelines.summary import print_summary
 
-UI_COMMAND = "make ui   (dagster dev -m pipelines.definitions -h 127.0.0.1 -p 3000)"
+# the command's exit codes (README, "What bad input gets")
+EXIT_OK = 0  # every ERROR check passed (failed WARN checks are listed)
+EXIT_CHECK_FAILED = 1  # a blocking (ERROR) check failed: its rows and what to do are printed
+EXIT_BAD_INPUT = 2  # the input or config cannot be used at all (or a partition is busy): the error says what to do
+EXIT_CRASH = 3  # a step failed on something that is not bad input: a bug; the run id and message are printed
 
 
 def _instance():
-    import dagster as dg
+    from pipelines.runner import dagster_instance
 
-    home = os.environ.get("DAGSTER_HOME")
-    if not home:
-        print(
-            "DAGSTER_HOME is not set, so the run would vanish with a temporary instance.\n"
-            "Set it to a folder that will hold runs and check history, e.g.\n"
-            "  export DAGSTER_HOME=$PWD/.dagster   (make demo does this)",
-            file=sys.stderr,
-        )
-        raise SystemExit(2)
-    Path(home).mkdir(parents=True, exist_ok=True)
-    return dg.DagsterInstance.get()
+    return dagster_instance()
 
 
 def run_cycle(
@@ -48,8 +43,11 @@ def run_cycle(
     parallel: int = 1,
     if_busy: str = "wait",
 ) -> int:
-    """Run the cycle (or, with `rebuild_from`, that asset and everything downstream) for each class; 0 when no
-    ERROR check failed.
+    """Run the cycle (or, with `rebuild_from`, that asset and everything downstream) for each class; the exit code.
+
+    EXIT_OK when no ERROR check failed, EXIT_CHECK_FAILED when one did,
+    EXIT_BAD_INPUT when a step stopped on bad input or config (a PlanningError)
+    or a partition was busy, EXIT_CRASH when a step failed on anything else.
 
     `parallel`: partitions run at once, each in its own process (1: one after
     another in this process). `if_busy`: when another run writes a partition,
@@ -68,8 +66,16 @@ def run_cycle(
     from pipelines.store import PartitionBusy, open_store
     from pipelines.store.dagster_io import mark_dead_runs_failed
     from pipelines.store.locks import describe
+    from pipelines.summary import failed_checks
 
     config = PlanningConfigResource(path=config_path).config
+    if cycle is None and config.calendar.cycle_date == LATEST_COMPLETE_PERIOD:
+        from pipelines.engines.history_files import choose_cycle_date
+        from pipelines.partitions import cycle_key
+
+        choice = choose_cycle_date(config.inputs, config.calendar.period)
+        print(choice.describe(), flush=True)
+        cycle = cycle_key(choice.cycle_date) if choice.cycle_date is not None else None
     cycle = current_cycle(config, cycle)
     chosen = classes or list(config.product_classes)
     unknown = [c for c in chosen if c not in config.product_classes]
@@ -152,6 +158,7 @@ def run_cycle(
         return [PartitionOutcome.from_result(k, r, result.seconds[k]) for k, r in result.results.items()]
 
     ok = True
+    every = []  # the outcomes of every run, backfill included: their failed steps decide the exit code
     for earlier in _missing_earlier_cycles(config, cycle, backfill):
         print(
             f"backfill: cycle {earlier} is not published in the store yet; running it first "
@@ -160,6 +167,7 @@ def run_cycle(
         )
         now.update(cycle=earlier, what="whole cycle", of=len(config.product_classes))
         past = run_classes(earlier, list(config.product_classes), None, None)
+        every += past
         ok = ok and all(o.success for o in past) and blocking_checks_pass(past)
     now.update(cycle=cycle, what=what, of=len(chosen))
     # progress at INFO on the console; the full event log stays in the instance (and the UI)
@@ -170,15 +178,20 @@ def run_cycle(
         for e in o.checks
     ]
     if summary:
-        print_summary(config_path, checks, cycle=cycle)
+        print_summary(config_path, checks, cycle=cycle, failures=failed_checks(outcomes))
     # the page again after every class ran, so a run a blocking check stopped shows its failure there too
     from pipelines.cycle_report import write_cycle_report
 
     print(f"report:       {write_cycle_report(config, instance, cycle)}")
-    if any(o.exit_code == 2 for o in outcomes):
-        return 2
+    every += outcomes
+    kinds = {kind for o in every for kind in o.failure_kinds}
+    if any(o.exit_code == 2 for o in outcomes) or "bad_input" in kinds:
+        return EXIT_BAD_INPUT
+    if "crash" in kinds:
+        return EXIT_CRASH
     # a failed WARN check is reported but does not fail the command; an ERROR check does
-    return 0 if ok and all(o.success for o in outcomes) and blocking_checks_pass(outcomes) else 1
+    ok = ok and all(o.success for o in outcomes) and blocking_checks_pass(outcomes)
+    return EXIT_OK if ok else EXIT_CHECK_FAILED
 
 
 def _missing_earlier_cycles(config, cycle: str, count: int) -> list[str]:
@@ -192,128 +205,6 @@ def _missing_earlier_cycles(config, cycle: str, count: int) -> list[str]:
     have = set(stored_cycles(config.store.path))
     earlier = [cycle_key(shift_periods(pd.Timestamp(cycle), -k, config.calendar.period)) for k in range(count, 0, -1)]
     return [c for c in earlier if c not in have]
-
-
-def print_summary(
-    config_path: str, checks: list[tuple[str, str, bool, str]] | None = None, cycle: str | None = None
-) -> None:
-    """The summary of a published cycle (default the latest); an incomplete cycle is marked as such."""
-    from pipelines.resources import PlanningConfigResource, read_table
-    from pipelines.store import open_store
-
-    config = PlanningConfigResource(path=config_path).config
-    store = open_store(config.store.path)
-    if not store.check_layout():
-        print(f"no store at {store.root}: nothing has been materialized yet")
-        return
-    classes = list(config.product_classes)
-    published = store.published_cycles()
-    asked = cycle
-    if cycle is None or cycle not in published:
-        cycle = max((c for c in published if asked is None or c <= asked), default=None)
-
-    print()
-    print(
-        f"store:        {store.root.resolve()}  (a Parquet file per asset partition; published cycles as SQL views in "
-        f"{store.views_path})"
-    )
-    print(
-        f"cycles:       {', '.join(published) or 'none published yet'}"
-        + (f"  (this summary: {cycle})" if cycle else "")
-    )
-    for status in (store.status(c, classes) for c in store.known_cycles()):
-        if not status.incomplete or (status.cycle < (cycle or "") and status.cycle != asked):
-            continue
-        if status.is_published:
-            head = (
-                f"a later run of cycle {status.cycle} has not completed; readers still see it as published "
-                f"{status.published['published_at'][:19]} UTC"
-            )
-        else:
-            head = (
-                f"cycle {status.cycle} is not published: nothing of it is visible until every class passed its "
-                "blocking checks"
-            )
-        print(f"INCOMPLETE:   {head}")
-        for k in classes:
-            print(f"                {status.describe_class(k)}")
-    if cycle is None:
-        if checks is not None:
-            _print_checks(checks)
-        print(f"open the UI:  {UI_COMMAND}")
-        return
-
-    def table(name: str):
-        return read_table(store.root, name, cycle=cycle)  # None when the table is not in the store
-
-    def count(name: str) -> str:
-        frame = table(name)
-        return "-" if frame is None else f"{len(frame):,}"
-
-    cal = table("cycle_calendar")
-    if cal is not None and len(cal):
-        c = cal.iloc[0]
-        print(
-            f"cycle date:   {c['cycle_date']:%Y-%m-%d}, {c['horizon']} {c['period']}s ahead, "
-            f"history from {c['history_start']:%Y-%m-%d} ({c['history_periods']} periods)"
-        )
-    print(
-        f"rows in:      {count('raw_history')} raw history lines, {count('rejected_rows')} rejected, "
-        f"{count('history_corrections')} corrections"
-    )
-    print(
-        f"rows out:     {count('share_tables')} shares, {count('parent_forecast')} parent forecast rows, "
-        f"{count('statistical_forecast')} leaf forecast rows, {count('reconciliation')} reconciliation rows"
-    )
-    shares = table("share_tables")
-    if shares is not None and len(shares):
-        parents = shares.drop_duplicates(["product", "site"])
-        print("classes:")
-        for name, group in shares.groupby("product_class"):
-            pc = config.product_classes.get(name)
-            how = f"window {pc.window}, {pc.method}" if pc else "not in config"
-            p = parents[parents["product_class"] == name]
-            fallbacks = int((p["fallback"] != "none").sum())
-            print(
-                f"  {name:<14} {len(p):>4} parents {len(group):>5} children  ({how}; {fallbacks} parents used a "
-                "fallback)"
-            )
-    choice = table("strategy_choice")  # as the cycle decided it, not decided again from today's config
-    if choice is not None and len(choice):
-        print("strategy:     (backtest, leaf-grain WMAPE; margin = runner-up minus chosen)")
-        for _, row in choice.iterrows():
-            print(
-                f"  {row['product_class']:<14} {row['strategy']:<21} WMAPE {row['leaf_wmape']:.3f}  "
-                f"margin {row['margin']:+.4f} over {row['runner_up'] or '-'}  seasonal naive "
-                f"{row['seasonal_naive_wmape']:.3f}"
-                f"  ({row['configured_strategy']})"
-            )
-    drift = table("share_drift")
-    if drift is not None and len(drift):
-        limit = config.monitoring.max_share_drift_pp
-        print(
-            f"share drift:  vs cycle {drift['previous_cycle'].iloc[0]}; "
-            f"{int((drift['abs_change_pp'] > limit).sum())} children "
-            f"moved more than {limit:g} pp; biggest moves:"
-        )
-        for _, r in drift.sort_values("abs_change_pp", ascending=False).head(5).iterrows():
-            print(
-                f"  {r['product_class']:<14} {r['product']}/{r['site']}/{r['customer']:<8} "
-                f"{r['share_previous']:.3f} -> "
-                f"{r['share_current']:.3f}  ({r['change_pp']:+.2f} pp, {r['status']})"
-            )
-    elif drift is not None:
-        print("share drift:  no previous cycle in the store to compare with (python -m pipelines cycle --backfill 1)")
-    if checks is not None:
-        _print_checks(checks)
-    print(f"open the UI:  {UI_COMMAND}")
-
-
-def _print_checks(checks: list[tuple[str, str, bool, str]]) -> None:
-    failed = [c for c in checks if not c[2]]
-    print(f"checks:       {len(checks) - len(failed)} passed, {len(failed)} failed")
-    for asset, name, _, severity in failed:
-        print(f"  FAILED {severity:<5} {asset}: {name}")
 
 
 def explain(config_path: str, product: str, site: str, customer: str, period: str | None, cycle: str | None) -> int:
@@ -475,7 +366,7 @@ def main(argv: list[str] | None = None) -> int:
         return 0
     except PlanningError as err:
         print(f"error: {err}", file=sys.stderr)
-        return 2
+        return EXIT_BAD_INPUT
 
 
 if __name__ == "__main__":

@@ -51,6 +51,21 @@ MEASURES_SUM_TO_PARENT = "measures_sum_to_parent"
 PINS_KEPT = "pins_kept"
 PINS_WITHIN_PARENT = "pins_within_parent"
 TABLES_PASSED_THEIR_CHECKS = "tables_passed_their_checks"
+REFERENCES_KNOWN = "references_known"  # one name on four inputs: each judges its own file's rows
+
+
+def _references(asset: str, what: str, blocking: bool) -> Check:
+    """The check that the rows of the input `asset` name only what the master data and config hold."""
+    verb = "Proves" if blocking else "Warns unless it holds:"
+    after = "the cycle of the class stops before plan_measures" if blocking else "the cycle goes on without those rows"
+    return Check(
+        REFERENCES_KNOWN,
+        asset,
+        blocking,
+        f"{verb} {what}. When it fails, {after}; the failing rows give file, row, column, value and what to do: "
+        f"correct the {asset} file or the master data, and run the cycle again.",
+    )
+
 
 CHECKS: tuple[Check, ...] = (
     Check(
@@ -193,6 +208,21 @@ CHECKS: tuple[Check, ...] = (
         "parent. When it fires (a warning, not a stop): lower the listed pins or raise the parent value if the parent "
         "should hold.",
     ),
+    _references(
+        "customer_spans",
+        "every span's product is in the product master and every reference_customer has a span of the same "
+        "product and site",
+        False,
+    ),
+    _references("shortages", "every shortage names a product and site that has customer spans", False),
+    _references(
+        "adjustments",
+        "every adjustment names a product and site that has customer spans, and a measure of the config",
+        False,
+    ),
+    _references(
+        "pins", "every pin names a customer with a span of its product and site, and a measure of the config", True
+    ),
     Check(
         TABLES_PASSED_THEIR_CHECKS,
         "publication",
@@ -203,7 +233,6 @@ CHECKS: tuple[Check, ...] = (
         "asset (python -m pipelines rebuild --class CLASS --from ASSET) or rerun the cycle.",
     ),
 )
-BY_NAME = {c.name: c for c in CHECKS}
 # check names of earlier releases -> their names now (DEVELOPERS.md lists them for users)
 RENAMED = {"new_customer_without_share": NEW_CUSTOMERS_HAVE_SHARE, "pins_exceed_parent": PINS_WITHIN_PARENT}
 
@@ -211,6 +240,11 @@ RENAMED = {"new_customer_without_share": NEW_CUSTOMERS_HAVE_SHARE, "pins_exceed_
 def checks_of(asset: str) -> list[Check]:
     """The rule checks that judge `asset`, in catalogue order."""
     return [c for c in CHECKS if c.asset == asset]
+
+
+def check_of(asset: str, name: str) -> Check:
+    """The rule check `name` on `asset` (a name such as references_known hangs on several assets)."""
+    return next(c for c in CHECKS if c.asset == asset and c.name == name)
 
 
 def schema_check_name(asset: str) -> str:

@@ -14,8 +14,9 @@ from pathlib import Path
 from typing import Literal, get_args, get_origin
 
 import yaml
-from pydantic import BaseModel, Field, PrivateAttr, ValidationError
+from pydantic import BaseModel, Field, PrivateAttr, ValidationError, model_validator
 
+from pipelines.config_inputs import InputsConfig
 from pipelines.config_sections import (
     DEFAULT_MEASURES,
     BacktestConfig,
@@ -33,12 +34,6 @@ from pipelines.errors import ConfigError
 from pipelines.vocabulary import FORECAST_GRAIN_STRATEGY, RENAMED_SHARE_METHODS, PeriodKind
 
 LATEST_COMPLETE_PERIOD = "latest_complete_period"
-
-
-class InputsConfig(Frozen):
-    """Where the input files are (relative paths are taken from the working directory)."""
-
-    folder: Path = Path("data/demo")
 
 
 class StoreConfig(Frozen):
@@ -141,6 +136,25 @@ class PlanningConfig(Frozen):
                 if n not in order:
                     order.append(n)
         return order
+
+    @model_validator(mode="after")
+    def _windows_inside_plausible_dates(self) -> PlanningConfig:
+        """A window reaching further back than inputs.plausible keeps would find its oldest lines rejected."""
+        per_year = 52 if self.calendar.period == "week" else 12
+        keeps = int(self.inputs.plausible.years_before_cycle * per_year)
+        reach = self.backtest.horizon + (self.backtest.origins - 1) * self.backtest.step
+        classes = self.product_classes.items()
+        windows = [(f"product_classes.{n}", max((c.window, *c.fallback_windows))) for n, c in classes]
+        windows += [(f"share_bases.{n}", max((b.window, *b.fallback_windows))) for n, b in self.share_bases.items()]
+        windows += [("backtest", reach)]
+        for key, periods in windows:
+            if periods > keeps:
+                raise ValueError(
+                    f"{key} reaches {periods} {self.calendar.period}s back but inputs.plausible.years_before_cycle "
+                    f"({self.inputs.plausible.years_before_cycle:g}) keeps only {keeps}; raise years_before_cycle or "
+                    f"shorten the window"
+                )
+        return self
 
     def class_windows(self) -> dict[str, int]:
         """key -> window of every product class (not the fallback windows)."""

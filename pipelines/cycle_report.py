@@ -17,6 +17,7 @@ from pathlib import Path
 import dagster as dg
 import pandas as pd
 
+from pipelines.check_failures import failure_of
 from pipelines.checks import CHECKS, schema_check
 from pipelines.config import PlanningConfig
 from pipelines.engines import report_charts, report_html
@@ -26,7 +27,9 @@ from pipelines.tables import MODELS
 
 REPORT_FILE = "cycle_report.html"
 CHART_KINDS = ("parents", "shares")
-CHECK_COLUMNS = ["product_class", "asset", "check", "passed", "severity", "description", "run_id"]
+CHECK_COLUMNS = [
+    "product_class", "asset", "check", "passed", "severity", "description", "run_id", "first_rows", "what_to_do"
+]
 
 
 def check_descriptions() -> dict[tuple[str, str], str]:
@@ -52,6 +55,7 @@ def latest_check_results(
                 if name in seen:
                     continue
                 seen.add(name)
+                failure = failure_of(evaluation, descriptions.get(name, ""), product_class)
                 rows.append(
                     {
                         "product_class": product_class,
@@ -61,6 +65,8 @@ def latest_check_results(
                         "severity": evaluation.severity.value,
                         "description": descriptions.get(name, ""),
                         "run_id": run.run_id,
+                        "first_rows": "" if evaluation.passed else failure.rows,
+                        "what_to_do": "" if evaluation.passed else failure.advice,
                     }
                 )
     return pd.DataFrame(rows, columns=CHECK_COLUMNS)
@@ -109,7 +115,10 @@ def write_cycle_report(config: PlanningConfig, instance: dg.DagsterInstance, cyc
         cycle_date=cycle,
         share_tables=shares if shares is not None else pd.DataFrame(columns=["product_class"]),
         checks=[
-            (f"{r.asset} [{r.product_class}]", r.check, r.passed, r.severity, r.description)
+            (
+                f"{r.asset} [{r.product_class}]", r.check, r.passed, r.severity, r.description, r.first_rows,
+                r.what_to_do,
+            )
             for r in checks.itertuples(index=False)
         ],
         parent_forecast=table("parent_forecast"),

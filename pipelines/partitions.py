@@ -119,12 +119,12 @@ def current_cycle(config: PlanningConfig, requested: str | None = None) -> str:
     not start a period.
     """
     from pipelines.calendar import LATEST_COMPLETE_PERIOD, resolve_cycle_date
-    from pipelines.stages.raw_history import latest_cycle_date
+    from pipelines.engines.history_files import latest_cycle_date
 
     period = config.calendar.period
     setting = requested or config.calendar.cycle_date
     if setting == LATEST_COMPLETE_PERIOD:
-        after = latest_cycle_date(config.inputs.folder, period)
+        after = latest_cycle_date(config.inputs.folder, period, config.inputs)
         if after is None:
             raise ConfigError(
                 f"{config.source}: calendar.cycle_date is {LATEST_COMPLETE_PERIOD!r} but no history file in "

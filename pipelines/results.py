@@ -31,12 +31,15 @@ class CheckRows:
 class StageResult:
     """outputs: table name -> frame. checks: check name (pipelines.checks) -> CheckRows. metadata: table
     name -> figures a planner looks at (numbers, text, small frames, paths, Markdown). files: file name ->
-    bytes to write beside the cycle's report (pictures)."""
+    bytes to write beside the cycle's report (pictures). sources: table name -> the input file its rows were
+    read from (None when an optional file is absent); such a table is indexed by each line's `source_row`, so
+    its failing rows are named by file and row, and the index is dropped before the table is stored."""
 
     outputs: dict[str, pd.DataFrame]
     checks: dict[str, CheckRows] = field(default_factory=dict)
     metadata: dict[str, dict[str, Any]] = field(default_factory=dict)
     files: dict[str, bytes] = field(default_factory=dict)
+    sources: dict[str, str | None] = field(default_factory=dict)
 
 
 def quiet(_: str) -> None:

@@ -11,14 +11,17 @@ one of them completed again.
 from __future__ import annotations
 
 import multiprocessing
+import os
+import sys
 import time
 import uuid
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from pathlib import Path
 
 import dagster as dg
 
-from pipelines.errors import ConfigError
+from pipelines.errors import ConfigError, PlanningError
 from pipelines.jobs import CYCLE_JOB
 from pipelines.partitions import partition_key, register_partitions
 from pipelines.store.dagster_io import process_tags
@@ -66,6 +69,7 @@ class PartitionOutcome:
     checks: list[dg.AssetCheckEvaluation]
     failures: list[tuple[str, str]]  # (step, message)
     exit_code: int = 0  # of its process (--parallel): 2 when the partition was busy or the input bad
+    failure_kinds: list[str] = field(default_factory=list)  # per failed step: bad_input, check or crash
 
     @classmethod
     def from_result(cls, product_class: str, result: dg.ExecuteInProcessResult, seconds: float) -> PartitionOutcome:
@@ -76,6 +80,7 @@ class PartitionOutcome:
             seconds,
             result.get_asset_check_evaluations(),
             [_failure(e) for e in result.all_events if e.is_step_failure],
+            failure_kinds=[failure_kind(e) for e in result.all_events if e.is_step_failure],
         )
 
     @classmethod
@@ -96,18 +101,36 @@ class PartitionOutcome:
             e.dagster_event.event_specific_data
             for e in instance.all_logs(run_id, of_type=dg.DagsterEventType.ASSET_CHECK_EVALUATION)
         ]
-        failures = [
-            _failure(e.dagster_event) for e in instance.all_logs(run_id, of_type=dg.DagsterEventType.STEP_FAILURE)
-        ]
+        steps = [e.dagster_event for e in instance.all_logs(run_id, of_type=dg.DagsterEventType.STEP_FAILURE)]
+        failures = [_failure(e) for e in steps]
         if run.status != dg.DagsterRunStatus.SUCCESS and not failures:
             failures = [("run", f"ended {run.status.value}")]
-        return cls(product_class, run_id, run.status == dg.DagsterRunStatus.SUCCESS, seconds, checks, failures)
+        success = run.status == dg.DagsterRunStatus.SUCCESS
+        kinds = [failure_kind(e) for e in steps]
+        return cls(product_class, run_id, success, seconds, checks, failures, failure_kinds=kinds)
 
 
 def _failure(event) -> tuple[str, str]:
     error = event.event_specific_data.error
     message = error.cause.message if error and error.cause else (error.message if error else event.message)
     return event.step_key or "run", (message or "").strip()
+
+
+def failure_kind(event) -> str:
+    """Why a step failed: `bad_input` (a PlanningError), `check` (a blocking check failed) or `crash` (else)."""
+    names = {c.__name__ for c in _subclasses(PlanningError)}
+    error = event.event_specific_data.error
+    while error is not None:
+        if error.cls_name in names:
+            return "bad_input"
+        if "AssetCheck" in (error.cls_name or ""):
+            return "check"
+        error = error.cause
+    return "crash"
+
+
+def _subclasses(cls) -> list[type]:
+    return [cls] + [s for c in cls.__subclasses__() for s in _subclasses(c)]
 
 
 def blocking_checks_pass(outcomes: list[PartitionOutcome]) -> bool:
@@ -181,6 +204,21 @@ def run_partitions(
     return run
 
 
+def dagster_instance() -> dg.DagsterInstance:
+    """The instance under DAGSTER_HOME (made when missing); exit 2 with what to do when it is not set."""
+    home = os.environ.get("DAGSTER_HOME")
+    if not home:
+        print(
+            "DAGSTER_HOME is not set, so the run would vanish with a temporary instance.\n"
+            "Set it to a folder that will hold runs and check history, e.g.\n"
+            "  export DAGSTER_HOME=$PWD/.dagster   (make demo does this)",
+            file=sys.stderr,
+        )
+        raise SystemExit(2)
+    Path(home).mkdir(parents=True, exist_ok=True)
+    return dg.DagsterInstance.get()
+
+
 def _run_in_child(
     config_path: str,
     cycle: str,
@@ -192,9 +230,7 @@ def _run_in_child(
     command: str,
 ) -> int:
     """One partition in a process of its own (`cycle --parallel`): 0 ran, 2 partition busy or bad input."""
-    from pipelines.__main__ import _instance
     from pipelines.definitions import build_definitions
-    from pipelines.errors import PlanningError
 
     defs = build_definitions(config_path)
     selection = rebuild_selection(defs, first) if first else None
@@ -204,7 +240,7 @@ def _run_in_child(
         ):
             defs.resolve_job_def(CYCLE_JOB).execute_in_process(
                 run_config=run_config,
-                instance=_instance(),
+                instance=dagster_instance(),
                 partition_key=partition_key(cycle, product_class),
                 asset_selection=selection,
                 raise_on_error=False,
@@ -267,6 +303,7 @@ def run_partitions_parallel(
                 outcome.failures.append(("start", "partition busy or bad input (message above)"))
             elif process.exitcode != 0:
                 outcome.failures.append(("process", f"exited with code {process.exitcode}"))
+                outcome.failure_kinds.append("crash")
             outcome.exit_code = process.exitcode
             outcomes.append(outcome)
             if on_done:

@@ -19,6 +19,7 @@ from pipelines.vocabulary import (
     LifecycleRule,
     Origin,
     PeriodKind,
+    ReadError,
     RejectReason,
     ShareMethod,
     ZeroReason,
@@ -26,6 +27,7 @@ from pipelines.vocabulary import (
 )
 
 # the allowed values of each coded column (pipelines.vocabulary)
+READ_ERRORS = values(ReadError)
 REJECT_REASONS = values(RejectReason)
 CORRECTION_RULES = values(CorrectionRule)
 ORIGINS = values(Origin)
@@ -48,12 +50,20 @@ class RawHistory(_Strict):
     """History lines exactly as read: every cell text, blanks as ''."""
 
     source_file: Series[str] = pa.Field(description="input file the line came from")
-    source_row: Series[int] = pa.Field(ge=1, description="1-based data row within that file")
+    source_row: Series[int] = pa.Field(
+        ge=1, description="1-based data row within that file: its line number minus the header line"
+    )
     product: Series[str] = pa.Field(description="product code as written")
     site: Series[str] = pa.Field(description="site code as written")
     customer: Series[str] = pa.Field(description="customer code as written")
     period_start: Series[str] = pa.Field(description="ISO date as written")
     quantity: Series[str] = pa.Field(description="quantity as written; negative is a return")
+    # the loader always supplies it; optional so that hand-built frames without malformed lines validate too
+    read_error: Optional[Series[str]] = pa.Field(
+        isin=("",) + READ_ERRORS,
+        description="'' for a line split into the file's columns; else why it could not be (its cells then hold "
+        "the line's first fields, cut short), and cleaned_history rejects it with that reason",
+    )
 
     class Config:
         unique = ["source_file", "source_row"]

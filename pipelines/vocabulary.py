@@ -135,14 +135,35 @@ class ShortageRule(StrEnum):
     FILL_BASELINE = "fill_baseline"
 
 
-class RejectReason(StrEnum):
-    """Why a raw history line was not used (`reason` of rejected_rows)."""
+class ReadError(StrEnum):
+    """Why the reader could not split a line into the file's columns (`read_error` of raw_history)."""
 
+    TOO_MANY_FIELDS = "too_many_fields"
+    TOO_FEW_FIELDS = "too_few_fields"
+    LINE_TOO_LONG = "line_too_long"
+    CONTROL_CHARACTERS = "control_characters"
+
+
+class RejectReason(StrEnum):
+    """Why a raw history line was not used (`reason` of rejected_rows), in the order the reasons apply.
+
+    The first four are the reader's (`ReadError`); the rest are cleaned_history's rules.
+    """
+
+    TOO_MANY_FIELDS = ReadError.TOO_MANY_FIELDS.value
+    TOO_FEW_FIELDS = ReadError.TOO_FEW_FIELDS.value
+    LINE_TOO_LONG = ReadError.LINE_TOO_LONG.value
+    CONTROL_CHARACTERS = ReadError.CONTROL_CHARACTERS.value
     MISSING_KEY = "missing_key"
     BAD_DATE = "bad_date"
     BAD_QUANTITY = "bad_quantity"
+    QUANTITY_OUT_OF_BOUNDS = "quantity_out_of_bounds"
     UNKNOWN_PRODUCT = "unknown_product"
     NO_CUSTOMER_SPAN = "no_customer_span"
+    DUPLICATE_OF_OTHER_FILE = "duplicate_of_other_file"
+    DATE_BEFORE_WINDOW = "date_before_window"
+    DATE_AFTER_WINDOW = "date_after_window"
+    ISOLATED_DATE = "isolated_date"
     ON_OR_AFTER_CYCLE_DATE = "on_or_after_cycle_date"
 
 

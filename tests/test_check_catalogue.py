@@ -26,6 +26,10 @@ RULE_CHECKS = {
     ("plan_measures", "measures_sum_to_parent", "ERROR"),
     ("plan_measures", "pins_kept", "ERROR"),
     ("plan_measures", "pins_within_parent", "WARN"),  # pins_exceed_parent until this release
+    ("customer_spans", "references_known", "WARN"),
+    ("shortages", "references_known", "WARN"),
+    ("adjustments", "references_known", "WARN"),
+    ("pins", "references_known", "ERROR"),
     ("publication", "tables_passed_their_checks", "ERROR"),
 }
 

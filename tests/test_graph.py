@@ -605,10 +605,10 @@ def test_demo_exercises_every_cleansing_rule(demo_cycle):
 
 def test_demo_shortages_filled_with_each_childs_baseline():
     from pipelines.config import parse_config
+    from pipelines.engines.history_files import load_raw_history
     from pipelines.schemas import CustomerSpans, Products, Shortages
     from pipelines.stages.cleaned_history import clean_history, find_unexplained_changes
     from pipelines.stages.master_data import load_customer_spans, load_products, load_shortages
-    from pipelines.stages.raw_history import load_raw_history
 
     data = yaml.safe_load((ROOT / "config" / "planning.yaml").read_text())
     data["cleansing"]["shortages"] = "fill_baseline"

@@ -337,3 +337,25 @@ def test_all_checks_passed_banner(page_input):
 
 def test_chart_file_name_is_safe():
     assert report_charts.chart_file_name("shares", "a/b c", "2026-02-02") == "shares_a-b-c_2026-02-02.png"
+
+
+def test_each_failed_check_shows_its_first_rows_and_what_to_do_escaped(page_input):
+    shares, _, _ = page_input
+    rows = (
+        "| file | row | customer | column | value |\n|:--|--:|:--|:--|:--|\n"
+        f"| pins.csv | 1 | C77 | customer | {HOSTILE} |\n"
+    )
+    checks = [
+        (
+            "pins [a]", "references_known", False, "ERROR", "Proves pins name known customers.", rows,
+            "correct the customer",
+        ),
+        ("products [a]", "products_matches_schema", True, "ERROR", "Proves products match.", "", ""),
+    ]
+    page = report_html.cycle_report_html(cycle_date=CYCLE, share_tables=shares, checks=checks)
+    section = page[page.index("First failing rows"):]
+    assert "<th>file</th><th>row</th><th>customer</th><th>column</th><th>value</th>" in section
+    assert "<td>pins.csv</td><td>1</td><td>C77</td><td>customer</td>" in section
+    assert "What to do: correct the customer" in section
+    assert "<script" not in page.lower() and "products_matches_schema" not in section  # passed checks have no rows
+    assert report_html.markdown_rows(rows)[0] == ["file", "row", "customer", "column", "value"]

@@ -7,15 +7,20 @@ from pathlib import Path
 
 import pandas as pd
 
+from pipelines.config_inputs import InputsConfig
+
 
 @dataclass(frozen=True)
 class InputSettings:
-    """Where the input files are, the partition's class, and every configured class (to refuse unknown ones)."""
+    """Where the input files are and how they are read, the partition's class, every configured class (to refuse
+    unknown ones) and the config's measures (that adjustments and pins may name)."""
 
     folder: Path
     product_class: str
     known_classes: tuple[str, ...] = ()
     source: str = "<memory>"
+    inputs: InputsConfig = InputsConfig()
+    measures: tuple[str, ...] = ()
 
 
 def input_files(files) -> pd.DataFrame:
@@ -28,12 +33,16 @@ def class_map(products_master: pd.DataFrame) -> pd.Series:
     return products_master.drop_duplicates("product").set_index("product")["product_class"]
 
 
-def class_rows(frame: pd.DataFrame, classes: pd.Series, product_class: str) -> pd.DataFrame:
+def class_rows(
+    frame: pd.DataFrame, classes: pd.Series, product_class: str, keep_index: bool = False
+) -> pd.DataFrame:
     """The rows of `frame` whose product is in `product_class` (`classes`: product -> class of the master file).
 
     A row whose product is not in the master belongs to no class and is kept in
     every class, so the stage's schema or rule checks report it instead of it
-    vanishing.
+    vanishing. `keep_index` keeps the frame's index (the file rows of master
+    data, `source_row`), so a failing row can still be named.
     """
     cls = frame["product"].map(classes)
-    return frame.loc[(cls == product_class) | cls.isna()].reset_index(drop=True)
+    rows = frame.loc[(cls == product_class) | cls.isna()]
+    return rows if keep_index else rows.reset_index(drop=True)

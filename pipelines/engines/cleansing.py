@@ -1,4 +1,5 @@
-"""Building blocks of cleansing: raw lines rejected with a reason, shortage cells, and correction rows.
+"""Building blocks of cleansing: raw lines rejected with a reason, shortage cells, correction rows, the cycle's
+calendar row.
 
 The rules and their order are stated in `pipelines.stages.cleaned_history`.
 """
@@ -10,51 +11,112 @@ import json
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import ordinal_to_start, period_ordinal, period_start, resolve_cycle_date
+from pipelines.calendar import (
+    LATEST_COMPLETE_PERIOD,
+    horizon_starts,
+    ordinal_to_start,
+    period_ordinal,
+    period_start,
+    resolve_cycle_date,
+)
+from pipelines.config_inputs import PlausibilityConfig
+from pipelines.engines.plausible import gap_periods, parse_dates, trusted_extent, year_outside
 from pipelines.keys import LEAF, PARENT, factorize, lookup
 
 
 def reject_lines(
-    raw: pd.DataFrame, products: pd.DataFrame, spans: pd.DataFrame, calendar, source
+    raw: pd.DataFrame, products: pd.DataFrame, spans: pd.DataFrame, calendar, source, plausible: PlausibilityConfig
 ) -> tuple[pd.DataFrame, pd.DataFrame, pd.Timestamp]:
     """Split raw lines into usable lines (parsed) and rejected lines (with reason).
 
     Returns (used, rejected, cycle_date). `used` has the leaf keys, `ordinal`
-    (period number) and `quantity` (float).
+    (period number) and `quantity` (float). The reasons, first that applies:
+    the reader's (`read_error`), `missing_key`, `bad_date`, `bad_quantity`,
+    `quantity_out_of_bounds`, `unknown_product`, `no_customer_span`,
+    `duplicate_of_other_file`, `date_before_window`, `date_after_window`,
+    `isolated_date`, `on_or_after_cycle_date` (`pipelines.stages.cleaned_history`, rule 1).
     """
     period = calendar.period
     keys = raw[LEAF]
     reason = pd.Series(pd.NA, index=raw.index, dtype=object)
 
-    def mark(mask: pd.Series, why: str) -> None:
-        reason[mask & reason.isna()] = why
+    def mark(mask, why) -> None:
+        mask = np.asarray(mask, dtype=bool)
+        reason[mask & reason.isna().to_numpy()] = why
 
+    if "read_error" in raw.columns:
+        read_error = raw["read_error"].astype(str)
+        for why in pd.unique(read_error[read_error != ""]):
+            mark((read_error == why).to_numpy(), why)
     mark((keys == "").any(axis=1), "missing_key")
-    dates = pd.to_datetime(raw["period_start"], format="ISO8601", errors="coerce")
-    mark(dates.isna(), "bad_date")
-    qty = pd.to_numeric(raw["quantity"], errors="coerce")
-    mark(~np.isfinite(qty.to_numpy(dtype=float, na_value=np.nan)), "bad_quantity")
+    dates = parse_dates(raw["period_start"])
+    # a date pandas cannot hold (year 9999) is still a date, outside the window: looked for among the unparsed only
+    outside = np.zeros(len(raw), dtype=np.int64)
+    unparsed = dates.isna().to_numpy()
+    if unparsed.any():
+        outside[unparsed] = year_outside(raw["period_start"][unparsed])
+    mark(dates.isna().to_numpy() & (outside == 0), "bad_date")
+    qty = pd.to_numeric(raw["quantity"], errors="coerce").to_numpy(dtype=float, na_value=np.nan)
+    mark(~np.isfinite(qty), "bad_quantity")
+    size = np.abs(np.nan_to_num(qty, nan=0.0, posinf=0.0, neginf=0.0))
+    mark(size > plausible.max_abs_quantity, "quantity_out_of_bounds")
     mark(~raw["product"].isin(products["product"]), "unknown_product")
     span_index = pd.MultiIndex.from_frame(spans[LEAF])
-    mark(pd.Series(~pd.MultiIndex.from_frame(keys).isin(span_index), index=raw.index), "no_customer_span")
+    mark(~pd.MultiIndex.from_frame(keys).isin(span_index), "no_customer_span")
+    mark(_repeated_in_earlier_file(raw, dates, qty, reason.isna().to_numpy()), "duplicate_of_other_file")
 
-    ok = reason.isna().to_numpy()
-    starts = period_start(dates[ok], period)
-    ordinals = period_ordinal(starts, period)
-    last = ordinal_to_start(np.array([ordinals.max()]), period)[0] if len(ordinals) else None
+    # the cycle date: given, or the period after the trusted end of the usable lines
+    ok = reason.isna().to_numpy() & dates.notna().to_numpy()
+    ordinals = np.full(len(raw), np.iinfo(np.int64).min, dtype=np.int64)
+    if ok.any():
+        ordinals[ok] = period_ordinal(period_start(dates[ok], period), period)
+    gap = gap_periods(plausible.isolation_gap_years, period)
+    last = None
+    if ok.any() and calendar.cycle_date == LATEST_COMPLETE_PERIOD:
+        _, last_ord = trusted_extent(ordinals[ok], gap)
+        last = ordinal_to_start(np.array([last_ord]), period)[0]
     cycle_date = resolve_cycle_date(calendar.cycle_date, last, period, str(source))
-    cycle_ord = period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0]
-    late = np.zeros(len(raw), dtype=bool)
-    late[np.flatnonzero(ok)[ordinals >= cycle_ord]] = True
-    mark(pd.Series(late, index=raw.index), "on_or_after_cycle_date")
+    cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
+
+    # plausible dates: inside the window around the cycle date, not cut off from the rest of the history
+    lowest = cycle_date - pd.Timedelta(days=round(plausible.years_before_cycle * 365.2425))
+    highest = cycle_date + pd.Timedelta(days=round(plausible.years_after_cycle * 365.2425))
+    with np.errstate(invalid="ignore"):
+        mark((dates < lowest).to_numpy() | (outside < 0), "date_before_window")
+        mark((dates >= highest).to_numpy() | (outside > 0), "date_after_window")
+    history = reason.isna().to_numpy() & (ordinals < cycle_ord) & dates.notna().to_numpy()
+    if history.any():
+        first_ord, _ = trusted_extent(ordinals[history], gap, trim_end=False)
+        mark(history & (ordinals < first_ord), "isolated_date")
+    mark(reason.isna().to_numpy() & dates.notna().to_numpy() & (ordinals >= cycle_ord), "on_or_after_cycle_date")
 
     ok = reason.isna().to_numpy()
     used = raw.loc[ok, LEAF].reset_index(drop=True)
-    used["ordinal"] = period_ordinal(period_start(dates[ok], period), period)
-    used["quantity"] = qty[ok].to_numpy(dtype=float)
-    rejected = raw.loc[~ok].copy()
+    used["ordinal"] = ordinals[ok]
+    used["quantity"] = qty[ok]
+    rejected = raw.loc[~ok].drop(columns=["read_error"], errors="ignore").copy()
     rejected["reason"] = reason[~ok].astype(str)
     return used, rejected.reset_index(drop=True), cycle_date
+
+
+def _repeated_in_earlier_file(
+    raw: pd.DataFrame, dates: pd.Series, qty: np.ndarray, candidate: np.ndarray
+) -> np.ndarray:
+    """True for a line whose keys, date and quantity (parsed) are those of a line of an earlier file.
+
+    Files come in the order they were read (sorted by name); repeats inside one
+    file are separate shipments and stay. Only `candidate` lines are compared.
+    """
+    out = np.zeros(len(raw), dtype=bool)
+    if "source_file" not in raw.columns or raw["source_file"].nunique() < 2 or not candidate.any():
+        return out
+    file_code = pd.factorize(raw["source_file"])[0]
+    lines = raw.loc[candidate, LEAF].assign(
+        date=dates[candidate].to_numpy(), qty=qty[candidate], file=file_code[candidate]
+    )
+    first = lines.groupby(LEAF + ["date", "qty"], sort=False, dropna=False)["file"].transform("min").to_numpy()
+    out[np.flatnonzero(candidate)[lines["file"].to_numpy() > first]] = True
+    return out
 
 
 def shortage_cells(
@@ -151,3 +213,28 @@ def line_accounting(raw_lines: int, cleaned: pd.DataFrame, rejected: pd.DataFram
         "rejected_lines": len(rejected),
         "unaccounted": raw_lines - used - len(rejected),
     }
+
+
+def cycle_calendar(cleaned: pd.DataFrame, calendar, cycle_date: pd.Timestamp) -> pd.DataFrame:
+    """One row describing the cycle: its date, period kind, horizon and history range (`calendar`: the config's)."""
+    period = calendar.period
+    horizon = horizon_starts(cycle_date, calendar.horizon, period)
+    start = cleaned["period_start"].min() if len(cleaned) else pd.NaT
+    periods = (
+        int(
+            period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0]
+            - period_ordinal(pd.DatetimeIndex([start]), period)[0]
+        )
+        if len(cleaned)
+        else 0
+    )
+    return pd.DataFrame(
+        {
+            "cycle_date": [cycle_date],
+            "period": [period],
+            "horizon": [calendar.horizon],
+            "horizon_end": [horizon[-1]],
+            "history_start": [start],
+            "history_periods": [periods],
+        }
+    )

@@ -2,7 +2,8 @@
 
 Every cell is read as a string and blanks stay '' so that nothing is parsed,
 guessed or dropped here; parsing and rejection happen in the stages, where
-each rejected line gets a reason.
+each rejected line gets a reason. The columnar reader itself is
+`pipelines.engines.reader`.
 """
 
 from __future__ import annotations
@@ -13,6 +14,7 @@ from pathlib import Path
 
 import pandas as pd
 
+from pipelines.engines.reader import DEFAULT_MAX_LINE_BYTES, read_text
 from pipelines.errors import InputFileError
 
 SUFFIXES = (".csv", ".parquet")
@@ -53,30 +55,43 @@ def sha256(path: Path) -> str:
     return digest.hexdigest()
 
 
-def read_text_table(path: Path, columns: tuple[str, ...], optional: tuple[str, ...] = ()) -> pd.DataFrame:
-    """The file's `columns` as strings ('' for blank), in file order.
+def read_text_table(
+    path: Path,
+    columns: tuple[str, ...],
+    optional: tuple[str, ...] = (),
+    *,
+    encoding: str = "utf-8",
+    max_line_bytes: int = DEFAULT_MAX_LINE_BYTES,
+) -> pd.DataFrame:
+    """The file's `columns` (and `optional` ones, blank when absent) as text, '' for blank, in file order.
 
-    `optional` columns may be absent from the file; an absent one is all blank.
+    The index is `source_row`, the 1-based data row of each line (the file's
+    line number minus the header line), so a failing row can be named. A
+    malformed line (wrong number of fields, too long, a control character) is
+    an `InputFileError` naming the file, its lines and what to do: master data
+    are not quarantined line by line.
     """
-    try:
-        if path.suffix == ".parquet":
-            df = pd.read_parquet(path)
-            df = df.astype(object).where(df.notna(), "").astype(str)
-        else:
-            df = pd.read_csv(path, dtype=str, keep_default_na=False, na_filter=False, skipinitialspace=True)
-    except Exception as err:  # the reader's own message says what is wrong
-        raise InputFileError(f"{path}: cannot be read ({type(err).__name__}: {err})") from None
-    df.columns = [str(c).strip() for c in df.columns]
-    missing = [c for c in columns if c not in df.columns]
-    if missing:
-        raise InputFileError(
-            f"{path}: missing column(s) {missing}; the file has {list(df.columns)}. "
-            f"Expected columns: {list(columns)}."
-        )
-    for c in optional:
-        if c not in df.columns:
-            df[c] = ""
-    return df.loc[:, list(columns) + list(optional)].apply(lambda s: s.str.strip()).reset_index(drop=True)
+    read = read_text(Path(path), columns, optional, encoding=encoding, max_line_bytes=max_line_bytes)
+    if len(read.malformed):
+        raise InputFileError(malformed_message(Path(path), read.malformed, len(read.columns)))
+    return read.frame.set_index("source_row")
+
+
+def malformed_message(path: Path, malformed: pd.DataFrame, fields: int, limit: int = 5) -> str:
+    """What is wrong with the first `limit` malformed lines of `path`, and what to do."""
+    what = {
+        "too_many_fields": f"more than the header's {fields} fields (a comma inside a cell must be in double quotes)",
+        "too_few_fields": f"fewer than the header's {fields} fields",
+        "line_too_long": "longer than inputs.max_line_bytes",
+        "control_characters": "a control character (a byte below 0x20 other than tab, or a lone carriage return)",
+    }
+    lines = [
+        f"  row {r.source_row} (line {r.source_row + 1}): {r.read_error}: {what.get(r.read_error, r.read_error)}"
+        for r in malformed.head(limit).itertuples()
+    ]
+    more = f"\n  ... and {len(malformed) - limit} more" if len(malformed) > limit else ""
+    listed = "\n".join(lines)
+    return f"{path}: {len(malformed)} malformed line(s):\n{listed}{more}\nCorrect these lines and run again."
 
 
 def blanks_to_none(df: pd.DataFrame) -> pd.DataFrame:

@@ -20,8 +20,9 @@ import pandas as pd
 
 from pipelines.keys import PARENT
 
-# A check is (asset, check, passed, severity, description); severity "ERROR" or "WARN".
-Check = tuple[str, str, bool, str, str]
+# A check is (asset, check, passed, severity, description[, first_rows[, what_to_do]]); severity "ERROR" or
+# "WARN"; first_rows a markdown table of its first failing rows, what_to_do the advice for a failure.
+Check = tuple
 MOVER_COLUMNS = ["product_class", "product", "site", "customer", "share_previous", "share_current", "change_pp"]
 
 
@@ -141,7 +142,7 @@ def order_checks(checks: Sequence[Check]) -> list[Check]:
     """Failed ERROR checks first, then failed WARN (and any other severity), then passed; given order within each."""
 
     def rank(check: Check) -> int:
-        _, _, passed, severity, _ = check
+        passed, severity = check[2], check[3]
         if passed:
             return 2
         return 0 if str(severity).upper() == "ERROR" else 1
@@ -167,7 +168,7 @@ def _checks_section(checks: Sequence[Check]) -> str:
     else:
         banner = '<p class="banner warn">No check results were given for this cycle.</p>'
     rows, classes = [], []
-    for asset, name, passed, severity, description in ordered:
+    for asset, name, passed, severity, description, *_ in ordered:
         sev = str(severity).upper()
         status = "passed" if passed else "FAILED"
         classes.append("" if passed else ("failed-error" if sev == "ERROR" else "failed-warn"))
@@ -182,7 +183,41 @@ def _checks_section(checks: Sequence[Check]) -> str:
         )
     table = _html_table(["status", "severity", "asset", "check", "what it proves"], rows, classes) if rows else ""
     counts = f"<p>{len(ordered) - failed_error - failed_other} passed, {failed_error + failed_other} failed.</p>"
-    return f'<section id="checks"><h2>Checks</h2>{banner}{counts}{table}</section>'
+    return f'<section id="checks"><h2>Checks</h2>{banner}{counts}{table}{_failures_section(ordered)}</section>'
+
+
+def markdown_rows(text: str) -> tuple[list[str], list[list[str]]]:
+    """Header and rows of a pipe table (as `DataFrame.to_markdown` writes it); ([], []) for anything else."""
+    lines = [line.strip() for line in str(text or "").splitlines() if line.strip().startswith("|")]
+    if len(lines) < 2:
+        return [], []
+
+    def cells(line: str) -> list[str]:
+        return [c.strip() for c in line.strip().strip("|").split("|")]
+
+    header = cells(lines[0])
+    body = [cells(line) for line in lines[2:]]
+    return header, [row + [""] * (len(header) - len(row)) for row in body]
+
+
+def _failures_section(ordered: Sequence[Check]) -> str:
+    """Each failed check with its first failing rows (file, row, keys, column, value) and what to do."""
+    parts = []
+    for check in ordered:
+        if check[2] or len(check) < 6:
+            continue
+        asset, name, _, severity, _, first_rows, *rest = check
+        advice = rest[0] if rest else ""
+        header, body = markdown_rows(first_rows)
+        table = _html_table(header, [[_e(c) for c in row] for row in body]) if header else (
+            '<p class="empty">The check gave no rows.</p>'
+        )
+        parts.append(
+            f'<div class="failure"><h3>{_e(str(severity).upper())} {_e(asset)}: {_e(name)}</h3>{table}'
+            + (f'<p class="advice">What to do: {_e(advice)}</p>' if advice else "")
+            + "</div>"
+        )
+    return f'<h3 id="failed-rows">First failing rows</h3>{"".join(parts)}' if parts else ""
 
 
 def _movers_section(movers: pd.DataFrame | None, top_movers: int) -> str:

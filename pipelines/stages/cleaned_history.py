@@ -2,12 +2,25 @@
 
 Rules, in the order they run:
 
-1. **Rejection.** A line is rejected, with the first reason that applies, when a
-   key is blank (`missing_key`), its date does not parse (`bad_date`), its
-   quantity is not a finite number (`bad_quantity`), its product is not in the
-   product master (`unknown_product`), its product x site x customer has no
-   customer span (`no_customer_span`), or it falls on or after the cycle date
-   (`on_or_after_cycle_date`). Raw lines = used lines + rejected lines.
+1. **Rejection.** A line is rejected, with the first reason that applies, when
+   the reader could not split it (`too_many_fields`, `too_few_fields`,
+   `line_too_long`, `control_characters`: its `read_error`), a key is blank
+   (`missing_key`), its date does not parse (`bad_date`; a date-time with a
+   UTC offset counts for the date as written, `pipelines.engines.plausible`),
+   its quantity is not a finite number (`bad_quantity`) or is larger in size
+   than `inputs.plausible.max_abs_quantity` (`quantity_out_of_bounds`: a
+   typing slip of 1e12 is neither netted to zero nor forecast), its product is
+   not in the product master (`unknown_product`), its product x site x
+   customer has no customer span (`no_customer_span`), the same keys, date and
+   quantity are in an earlier history file (`duplicate_of_other_file`: history
+   given twice), it is dated more than `years_before_cycle` before the cycle
+   date (`date_before_window`) or `years_after_cycle` or more after it
+   (`date_after_window`), it lies in an isolated group at the start of the
+   history (`isolated_date`: `plausible.trusted_extent`, so a lone old line
+   does not stretch the history), or it falls on or after the cycle date
+   (`on_or_after_cycle_date`). With `calendar.cycle_date:
+   latest_complete_period` the cycle date is the period after the trusted end
+   of the lines left. Raw lines = used lines + rejected lines.
 2. **Bucketing.** Each line goes to the period containing its date (ISO week
    from Monday, or calendar month); lines of one leaf and period are summed,
    returns (negative lines) included, so a return nets against the same
@@ -94,12 +107,14 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal, season_length, span_bounds
+from pipelines.calendar import ordinal_to_start, period_ordinal, season_length, span_bounds
 from pipelines.checks import CORRECTIONS_EXPLAIN_CHANGES, EVERY_RAW_ROW_ACCOUNTED, REJECTED_ROWS_WITHIN_LIMIT
 from pipelines.config import CalendarConfig, PlanningConfig, class_section
+from pipelines.config_inputs import PlausibilityConfig
 from pipelines.config_sections import CleansingConfig, ProductClassConfig
 from pipelines.engines.cleansing import (
     correction_rows,
+    cycle_calendar,
     find_unexplained_changes,
     line_accounting,
     reject_lines,
@@ -128,15 +143,17 @@ def clean_history(
     raw: pd.DataFrame,
     products: pd.DataFrame,
     spans: pd.DataFrame,
-    config: PlanningConfig,
+    config: PlanningConfig | CleaningSettings,
     shortages: pd.DataFrame | None = None,
 ) -> CleaningResult:
     """Apply the rules of this module. Returns cleaned, rejected and corrections tables.
 
     `shortages` (optional): product, site, period_start (any day of the period).
     """
+    if not isinstance(config, CleaningSettings):  # a whole PlanningConfig: what the stage reads of it
+        config = CleaningSettings.of(config)
     period = config.calendar.period
-    used, rejected, cycle_date = reject_lines(raw, products, spans, config.calendar, config.source)
+    used, rejected, cycle_date = reject_lines(raw, products, spans, config.calendar, config.source, config.plausible)
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
 
     # --- bucket and net: one value per leaf and period
@@ -262,41 +279,17 @@ def clean_history(
     )
 
 
-def cycle_calendar(cleaned: pd.DataFrame, config: PlanningConfig, cycle_date: pd.Timestamp) -> pd.DataFrame:
-    """One row describing the cycle: its date, period kind, horizon and history range."""
-
-    period = config.calendar.period
-    horizon = horizon_starts(cycle_date, config.calendar.horizon, period)
-    start = cleaned["period_start"].min() if len(cleaned) else pd.NaT
-    periods = (
-        int(
-            period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0]
-            - period_ordinal(pd.DatetimeIndex([start]), period)[0]
-        )
-        if len(cleaned)
-        else 0
-    )
-    return pd.DataFrame(
-        {
-            "cycle_date": [cycle_date],
-            "period": [period],
-            "horizon": [config.calendar.horizon],
-            "horizon_end": [horizon[-1]],
-            "history_start": [start],
-            "history_periods": [periods],
-        }
-    )
-
-
 # ----------------------------------------------------------------- the stage
 @dataclass(frozen=True)
 class CleaningSettings:
-    """What cleansing reads: the calendar, the cleansing rules, each class's outlier rule, the rejection limit."""
+    """What cleansing reads: the calendar, the cleansing rules, each class's outlier rule, the rejection limit,
+    the plausible bounds of a history line."""
 
     calendar: CalendarConfig
     cleansing: CleansingConfig
     product_classes: Mapping[str, ProductClassConfig]
     source: Path = Path("<memory>")
+    plausible: PlausibilityConfig = PlausibilityConfig()
     max_rejected_share: float = 0.01
     picture: str = "cleansing.png"  # the corrections chart, written beside the cycle's report
     report_folder: Path = Path("var/reports")
@@ -308,6 +301,7 @@ class CleaningSettings:
             cleansing=config.cleansing,
             product_classes=config.product_classes,
             source=config.source,
+            plausible=config.inputs.plausible,
             max_rejected_share=config.monitoring.max_rejected_share,
             picture=f"cleansing_{next(iter(config.product_classes))}.png",
             report_folder=report_folder,
@@ -364,7 +358,7 @@ def run(
             "cleaned_history": cleaned,
             "rejected_rows": rejected,
             "history_corrections": corrections,
-            "cycle_calendar": cycle_calendar(cleaned, settings, result.cycle_date),
+            "cycle_calendar": cycle_calendar(cleaned, settings.calendar, result.cycle_date),
         },
         metadata={
             "cleaned_history": cleaned_figures,

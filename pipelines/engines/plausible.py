@@ -1,0 +1,146 @@
+"""Plausible history: dates as written, and the stretch of periods the history can be trusted on.
+
+Pure rules shared by the history stages and the cycle date (an engine: it knows
+no stage and no Dagster):
+
+- `parse_dates`: cells to naive dates; a date-time with a UTC offset keeps the
+  date and time as written. `year_outside`: a date-shaped cell whose year
+  pandas cannot hold (before 1678, after 2261).
+- `trusted_extent`: the first and last period of the trusted history. Periods
+  with lines are split into groups wherever more than `gap_periods` periods
+  pass without a line; a group at either end holding a single line, or at
+  most ISOLATED_SHARE of the lines, is isolated (repeatedly, from each end).
+  With `trim_end`, a last period with fewer than SPARSE_PERIOD_SHARE of the
+  median lines per period is dropped too, while the lines dropped at that end
+  stay within the same bound. So one line dated 1900 or 2099, or a stray line
+  in the week after the last complete week, neither moves the cycle date nor
+  stretches the history. The shares (1%, 10%) are common practice, no source.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+ISOLATED_SHARE = 0.01  # an end group of at most this share of the lines (or a single line) is isolated
+SPARSE_PERIOD_SHARE = 0.10  # a last period with fewer lines than this share of the median period is not complete
+
+
+# a date and time with a UTC offset or Z, e.g. 2026-03-02T10:00:00+02:00: the date and time as written are kept
+_WITH_OFFSET = r"^(\d{4}-\d{2}-\d{2}[T ]\d{2}:\d{2}(?::\d{2}(?:\.\d+)?)?)\s*(?:Z|[+-]\d{2}(?::?\d{2})?)$"
+_HAS_OFFSET = _WITH_OFFSET.replace("^(", "^(?:", 1)
+_DATE_SHAPE = r"^(\d{4})-(\d{1,2})-(\d{1,2})(?:$|[T ])"
+
+
+def parse_dates(text: pd.Series) -> pd.Series:
+    """Dates as written, parsed to naive datetime64[ns] (NaT where a cell is not a date).
+
+    ISO dates (`YYYY-MM-DD`) take a fast path; the rest are read as ISO 8601.
+    A date-time with a UTC offset (`...T10:00:00+02:00`, `...Z`) keeps the
+    local date and time as written and drops the offset: a line belongs to the
+    day it was written for, not to the UTC day, and a mix of offsets never
+    raises. Dates outside 1678-2261 (pandas' range) are NaT; see `year_outside`.
+    """
+    text = pd.Series(text)
+    dates = pd.to_datetime(text, format="%Y-%m-%d", errors="coerce")
+    nat = dates.isna().to_numpy()
+    rest = nat & (text.fillna("") != "").to_numpy() if nat.any() else nat
+    if rest.any():
+        other = text[rest].astype(str).str.replace(_WITH_OFFSET, r"\1", regex=True)
+        try:
+            parsed = pd.to_datetime(other, format="ISO8601", errors="coerce")
+        except (ValueError, TypeError, OverflowError):
+            parsed = other.map(_one_date)
+        if getattr(parsed.dtype, "tz", None) is not None or parsed.dtype == object:
+            parsed = other.map(_one_date)  # an offset the pattern did not catch: read each cell alone
+        dates = dates.astype("datetime64[ns]")
+        dates[rest] = pd.to_datetime(parsed, errors="coerce").to_numpy(dtype="datetime64[ns]")
+    return dates if dates.dtype == "datetime64[ns]" else dates.astype("datetime64[ns]")
+
+
+def _one_date(cell: str) -> pd.Timestamp:
+    try:
+        day = pd.Timestamp(cell)
+    except (ValueError, TypeError, OverflowError):
+        return pd.NaT
+    if day is pd.NaT:
+        return pd.NaT
+    return day.tz_localize(None) if day.tzinfo is not None else day
+
+
+def year_outside(text: pd.Series, first: int = 1678, last: int = 2261) -> np.ndarray:
+    """-1 / +1 where a cell is shaped like a date (YYYY-MM-DD) with a year before `first` / after `last`, else 0.
+
+    Such a date cannot be held as datetime64[ns]; it is still a date, so it is
+    rejected as outside the plausible window rather than as unreadable.
+    """
+    parts = pd.Series(text, dtype=object).fillna("").astype(str).str.extract(_DATE_SHAPE)
+    year = pd.to_numeric(parts[0], errors="coerce")
+    month = pd.to_numeric(parts[1], errors="coerce")
+    day = pd.to_numeric(parts[2], errors="coerce")
+    shaped = month.between(1, 12) & day.between(1, 31)
+    return np.where(shaped & (year < first), -1, np.where(shaped & (year > last), 1, 0))
+
+
+def normalize_dates(frame: pd.DataFrame, columns: tuple[str, ...]) -> pd.DataFrame:
+    """Master data: date cells with a UTC offset rewritten as the date and time written, the rest untouched.
+
+    The stage's pandera model parses the dates; a cell that is no date stays as
+    written, so the schema check shows it.
+    """
+    out = frame.copy()
+    for c in columns:
+        if c not in out.columns:
+            continue
+        cells = out[c]
+        text = cells.where(cells.notna(), "").astype(str)
+        has_offset = text.str.contains(_HAS_OFFSET, regex=True)
+        if has_offset.any():
+            out.loc[has_offset, c] = text[has_offset].str.replace(_WITH_OFFSET, r"\1", regex=True)
+    return out
+
+
+def trusted_extent(ordinals: np.ndarray, gap_periods: int, *, trim_end: bool = True) -> tuple[int | None, int | None]:
+    """First and last period ordinal of the trusted history of lines at `ordinals` (None, None when empty).
+
+    The rules of the module docstring: isolated end groups (split at gaps longer
+    than `gap_periods`) go at both ends; with `trim_end`, sparse last periods
+    go too. Vectorised over the distinct periods.
+    """
+    if len(ordinals) == 0:
+        return None, None
+    periods, counts = np.unique(np.asarray(ordinals, dtype=np.int64), return_counts=True)
+    limit = max(1.0, ISOLATED_SHARE * counts.sum())
+    breaks = np.flatnonzero(np.diff(periods) > gap_periods)  # a gap after periods[b]
+    lo, hi = 0, len(periods) - 1
+    cum = np.concatenate(([0], np.cumsum(counts)))
+    dropped_lo = dropped_hi = 0
+    # from the start: the first group ends at the first break at or after lo
+    for b in breaks:
+        if b < lo or b >= hi:
+            continue
+        lines = cum[b + 1] - cum[lo]
+        if dropped_lo + lines > limit:
+            break
+        dropped_lo += lines
+        lo = b + 1
+    if trim_end:
+        for b in breaks[::-1]:
+            if b + 1 > hi or b < lo:
+                continue
+            lines = cum[hi + 1] - cum[b + 1]
+            if dropped_hi + lines > limit:
+                break
+            dropped_hi += lines
+            hi = b
+        median = float(np.median(counts[lo : hi + 1]))
+        while hi > lo and counts[hi] < SPARSE_PERIOD_SHARE * median and dropped_hi + counts[hi] <= limit:
+            dropped_hi += counts[hi]
+            hi -= 1
+    return int(periods[lo]), int(periods[hi])
+
+
+def gap_periods(years: float, period: str) -> int:
+    """`years` (inputs.plausible.isolation_gap_years) in periods of the calendar, at least 1."""
+    per_year = 52 if period == "week" else 12
+    return max(1, int(np.ceil(years * per_year)))
