@@ -156,6 +156,16 @@ def _publication_checks(run: PartitionRun, t: Tables):
     return {C.TABLES_PASSED_THEIR_CHECKS: CheckRows(unproven[["asset", "shard", "run_id", "proof"]])}
 
 
+def _pins_references(run: PartitionRun, t: Tables):
+    from pipelines.results import CheckRows
+    from pipelines.stages.master_data import unknown_references
+
+    # as the pins stage judges its class's rows (pipelines.stages.master_data.class_input_run)
+    measures = run.settings["pins"].measures
+    failing = unknown_references("pins", t["pins"], t["product_class_map"], t["customer_spans"], measures, "pins.csv")
+    return {C.REFERENCES_KNOWN: CheckRows(failing)}
+
+
 JUDGES: dict[str, Callable[[PartitionRun, Tables], dict]] = {
     C.EVERY_RAW_ROW_ACCOUNTED: _history_checks,
     C.CORRECTIONS_EXPLAIN_CHANGES: _history_checks,
@@ -168,6 +178,7 @@ JUDGES: dict[str, Callable[[PartitionRun, Tables], dict]] = {
     C.MEASURES_SUM_TO_PARENT: _plan_checks,
     C.PINS_KEPT: _plan_checks,
     C.TABLES_PASSED_THEIR_CHECKS: _publication_checks,
+    C.REFERENCES_KNOWN: _pins_references,  # blocking on pins only; the WARN inputs: tests/test_master_data.py
 }
 
 
@@ -387,6 +398,18 @@ def version_never_written(t: Tables):
     return {"publication_versions": _changed(versions, i, "file", None)}, {"asset": "reconciliation"}
 
 
+def pin_on_unknown_customer(t: Tables):
+    pins = t["pins"]
+    i = pins.index[0]
+    return {"pins": _changed(pins, i, "customer", "C-NOBODY")}, {"customer": "C-NOBODY", "column": "customer"}
+
+
+def pin_on_unknown_measure(t: Tables):
+    pins = t["pins"]
+    i = pins.index[-1]
+    return {"pins": _changed(pins, i, "measure", "no_such_measure")}, {"value": "no_such_measure", "row": int(i)}
+
+
 @dataclass(frozen=True)
 class Mutation:
     check: str
@@ -429,6 +452,8 @@ MUTATIONS = [
     Mutation(C.PINS_KEPT, "consumables", pinned_row_lost),
     Mutation(C.TABLES_PASSED_THEIR_CHECKS, "publication", version_from_an_unknown_run),
     Mutation(C.TABLES_PASSED_THEIR_CHECKS, "publication", version_never_written),
+    Mutation(C.REFERENCES_KNOWN, "consumables", pin_on_unknown_customer),
+    Mutation(C.REFERENCES_KNOWN, "consumables", pin_on_unknown_measure),
 ]
 
 
