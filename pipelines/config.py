@@ -30,7 +30,7 @@ from pipelines.config_sections import (
     ProductClassConfig,
     ShareBasisConfig,
 )
-from pipelines.errors import ConfigError
+from pipelines.errors import ConfigError, hide_passwords
 from pipelines.vocabulary import FORECAST_GRAIN_STRATEGY, RENAMED_SHARE_METHODS, PeriodKind
 
 LATEST_COMPLETE_PERIOD = "latest_complete_period"
@@ -219,7 +219,7 @@ def _format_error(source: Path, err: ValidationError) -> str:
             msg = "required key is missing"
         lines.append(f"  - {key}: {msg} (got {e.get('input')!r})" if e["type"] != "missing" else f"  - {key}: {msg}")
     lines.append("Fix these keys in the file and run again.")
-    return "\n".join(lines)
+    return hide_passwords("\n".join(lines))
 
 
 class ConfigDeprecationWarning(FutureWarning):

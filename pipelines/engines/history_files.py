@@ -76,12 +76,28 @@ def history_files(folder: Path) -> list[Path]:
 def load_raw_history(folder: Path, inputs: InputsConfig | None = None) -> tuple[pd.DataFrame, list[HistoryFile]]:
     """All `history*.csv|parquet` files of `folder`, stacked, with file and row of each line.
 
+    With `inputs.history` set, the lines of its SQL query instead
+    (`pipelines.engines.history_database`: source and row id in place of file
+    and row); history files in `folder` beside it are refused.
+
     Returns the lines (every cell text, plus `read_error`) and one
     `HistoryFile` per file read. Raises InputFileError for an unreadable file,
     an unknown or missing column, bytes not in `inputs.encoding`, or history
     given twice (see the module docstring).
     """
     inputs = inputs or InputsConfig()
+    if inputs.history is not None:
+        from pipelines.engines.history_database import load_history_query
+
+        present = find_files(folder, "history", many=True, required=False)
+        if present:
+            raise InputFileError(
+                f"inputs.history reads the history from the database {inputs.history.describe()}, and the input "
+                f"folder {folder} also holds history files {[p.name for p in present]}: the history would come "
+                f"from two places. Move the files out of the folder, or remove inputs.history to read them."
+            )
+        lines, described = load_history_query(inputs.history, inputs)
+        return lines, [described]
     frames, files, digests = [], [], {}
     for path in history_files(folder):
         digest = sha256(path)
