@@ -27,7 +27,6 @@ from pipelines.engines.history_database import HistoryQueryError
 from pipelines.engines.history_files import load_raw_history
 from pipelines.errors import ConfigError, InputFileError
 
-pytestmark = pytest.mark.postgres
 
 # lines a file and a table both hold, each broken in one way cleaned_history rejects (README, "What bad input gets")
 BAD_LINES = [
@@ -102,6 +101,7 @@ def _same_outcome(files: dict, db: dict) -> None:
     pd.testing.assert_frame_equal(db["cleaned"], files["cleaned"])
 
 
+@pytest.mark.postgres
 def test_the_same_lines_give_the_same_cleaned_history_and_rejections(tmp_path, tables, history_lines):
     files = evaluate(_folder(tmp_path, "files", history_lines), _config(tmp_path / "files"))
     history = {"url": tables.url(), "query": QUERY.format(table="shipments_text"), "source": "shipments"}
@@ -124,11 +124,12 @@ def test_the_same_lines_give_the_same_cleaned_history_and_rejections(tmp_path, t
     assert not {n + 6, n + 7, n + 8} & set(reasons)  # padded, with an offset, a return: used
 
 
+@pytest.mark.postgres
 def test_a_typed_table_gives_the_cleaned_history_of_the_file(tmp_path, tables):
     """Dates as `date`, quantities as numeric(12,3) ('10.000'): read as text as written, the same history."""
     files = evaluate(BASE, _config(BASE))
     query = (
-        "SELECT id AS row_id, product, site, customer, ship_date AS period_start, qty AS quantity FROM shipments "
+        "SELECT id AS row_id, product, site, customer, ship_date::date AS period_start, qty AS quantity FROM shipments "
         "ORDER BY id"
     )
     db_folder = _folder(tmp_path, "db", None)
@@ -142,6 +143,7 @@ def test_a_typed_table_gives_the_cleaned_history_of_the_file(tmp_path, tables):
     assert db["raw"]["source_row"].tolist() == list(range(1, len(db["raw"]) + 1))
 
 
+@pytest.mark.postgres
 def test_the_rows_read_do_not_depend_on_the_chunk_size(tmp_path, tables):
     folder = _folder(tmp_path, "db", None)
     read = {}
@@ -156,6 +158,7 @@ def _read(folder: Path, **history) -> pd.DataFrame:
     return load_raw_history(folder, parse_config(_config(folder, history)).inputs)[0]
 
 
+@pytest.mark.postgres
 def test_the_password_comes_from_the_environment_and_is_never_printed(tmp_path, tables, monkeypatch):
     folder = _folder(tmp_path, "db", None)
     query = QUERY.format(table="shipments_text")
@@ -177,6 +180,7 @@ def test_the_password_comes_from_the_environment_and_is_never_printed(tmp_path, 
     assert "Wr0ng-pw-456" not in str(err.value) and "password authentication failed" in str(err.value)
 
 
+@pytest.mark.postgres
 def test_a_query_that_fails_or_returns_other_columns_is_an_error_naming_it(tmp_path, tables):
     folder = _folder(tmp_path, "db", None)
     url = tables.url()
@@ -196,6 +200,7 @@ def test_a_query_that_fails_or_returns_other_columns_is_an_error_naming_it(tmp_p
     assert len(lines) and lines["product"].str.strip().str.startswith("P").all()
 
 
+@pytest.mark.postgres
 def test_history_files_beside_a_database_source_are_refused(tmp_path, tables):
     with pytest.raises(InputFileError, match=r"also holds history files \['history.csv'\]"):
         _read(_folder(tmp_path, "both", [["P1", "S1", "C1", "2025-10-06", "5"]]), url=tables.url(), query="SELECT 1")
@@ -226,3 +231,26 @@ def test_the_password_is_given_one_way_and_an_empty_query_is_refused():
     assert "Hidden-pw-2" not in str(err.value)
     with pytest.raises(ConfigError, match="inputs.history.query: Value error, the query is empty"):
         parse_config(_config(BASE, {"url": url, "query": " ; "}))
+
+
+def test_the_new_history_sensor_says_it_watches_files_only(tmp_path):
+    import dagster as dg
+
+    from pipelines.definitions import build_definitions
+    from pipelines.jobs import new_history_file_sensor
+    from pipelines.resources import PlanningConfigResource
+
+    path = tmp_path / "planning.yaml"
+    data = _config(tmp_path, {"url": "sqlite://", "query": "SELECT 1"})
+    data["store"]["path"] = str(tmp_path / "store")
+    path.write_text(yaml.safe_dump(data))
+    planning = PlanningConfigResource(path=str(path))
+    with dg.instance_for_test() as instance:
+        tick = new_history_file_sensor.evaluate_tick(
+            dg.build_sensor_context(
+                instance=instance,
+                resources={"planning": planning},
+                repository_def=build_definitions(str(path)).get_repository_def(),
+            )
+        )
+    assert not tick.run_requests and "watches history files only" in tick.skip_message
