@@ -27,7 +27,6 @@ from pipelines.engines.history_database import HistoryQueryError
 from pipelines.engines.history_files import load_raw_history
 from pipelines.errors import ConfigError, InputFileError
 
-
 # lines a file and a table both hold, each broken in one way cleaned_history rejects (README, "What bad input gets")
 BAD_LINES = [
     ["P1", "S1", "C1", "2025-13-45", "5"],  # bad_date
