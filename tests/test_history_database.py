@@ -194,6 +194,9 @@ def test_a_query_that_fails_or_returns_other_columns_is_an_error_naming_it(tmp_p
     with pytest.raises(HistoryQueryError, match="row 1 of the result has row_id 0"):
         _read(folder, url=url, query="SELECT row_id - 1 AS row_id, product, site, customer, period_start, "
               "quantity FROM shipments_text ORDER BY row_id")
+    with pytest.raises(HistoryQueryError, match=r"row 1 of the result has row_id Decimal\('1.5'\)"):
+        _read(folder, url=url, query="SELECT row_id + 0.5 AS row_id, product, site, customer, period_start, "
+              "quantity FROM shipments_text ORDER BY row_id")
     # a '%' in the query is SQL, not a placeholder
     lines = _read(folder, url=url, query=QUERY.format(table="shipments_text WHERE product LIKE 'P%'"))
     assert len(lines) and lines["product"].str.strip().str.startswith("P").all()

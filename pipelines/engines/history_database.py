@@ -68,8 +68,12 @@ def _text(value) -> str:
     return str(value)
 
 
-def _column_text(values: list) -> pa.Array:
-    return pa.array([v if v.__class__ is str else _text(v) for v in values], pa.string())
+def _column_text(values) -> pa.Array:
+    """One column of a chunk as Arrow text (null for NULL, blanked by `screen_cells`); other types as `_text`."""
+    try:
+        return pa.array(values, pa.string())  # text columns: straight into Arrow
+    except (pa.ArrowTypeError, pa.ArrowInvalid):
+        return pa.array([v if v.__class__ is str else _text(v) for v in values], pa.string())
 
 
 def _engine(history: HistoryQuery):
@@ -120,8 +124,15 @@ def _columns(keys: list[str], where: str) -> dict[str, int]:
     return {n: i for i, n in enumerate(names)}
 
 
-def _row_ids(values: list, seen: int, where: str) -> np.ndarray:
+def _row_ids(values, seen: int, where: str) -> np.ndarray:
     """The row_id cells of a chunk as int64 >= 1; a clear error naming the row otherwise."""
+    if set(map(type, values)) == {int}:  # an integer column: at C speed
+        try:
+            ids = pa.array(values, pa.int64())
+            if pc.min(ids).as_py() >= 1:
+                return ids.to_numpy()
+        except OverflowError:
+            pass
     for i, v in enumerate(values):
         whole = isinstance(v, int) and not isinstance(v, bool) or isinstance(v, Decimal) and v == v.to_integral_value()
         if not whole or not 1 <= int(v) < 2**63:
@@ -176,9 +187,10 @@ def load_history_query(history: HistoryQuery, inputs: InputsConfig, source: str 
                 raise HistoryQueryError(f"{where}: the query returns no rows at all (is it a SELECT?)")
             position = _columns(list(result.keys()), where)
             while rows := result.fetchmany(history.chunk_rows):
-                cells = [_column_text([r[position[c]] for r in rows]) for c in wanted]
+                columns = list(zip(*rows, strict=True))  # the chunk by column
+                cells = [_column_text(columns[position[c]]) for c in wanted]
                 if ROW_ID in position:
-                    source_rows = _row_ids([r[position[ROW_ID]] for r in rows], seen, where)
+                    source_rows = _row_ids(columns[position[ROW_ID]], seen, where)
                     ids.append(source_rows)
                 else:
                     source_rows = np.arange(seen + 1, seen + len(rows) + 1, dtype=np.int64)
