@@ -227,6 +227,7 @@ def export_cycle(
     if folder.exists() and not folder.is_dir():
         raise ExportRefused(f"--to {folder} is a file; give a folder (it is created when missing)")
     folder.mkdir(parents=True, exist_ok=True)
+    (folder / MANIFEST).unlink(missing_ok=True)  # an earlier export's manifest never describes these files
     files = [_export_table(store, str(cycle), chosen, spec, folder, file_format) for spec in EXPORTS]
     manifest = {
         "format": MANIFEST_FORMAT,
