@@ -162,18 +162,19 @@ class _Digest:
         return hashlib.sha256("".join(h.hexdigest() for pair in self.parts for h in pair).encode()).hexdigest()
 
 
-def load_history_query(history: HistoryQuery, inputs: InputsConfig, source: str | None = None):
+def load_history_query(history: HistoryQuery, inputs: InputsConfig) -> tuple[pd.DataFrame, HistoryFile]:
     """The lines the query returns, as `load_raw_history` gives a file's, and the `HistoryFile` that describes them.
 
     Raises HistoryQueryError (an InputFileError: the cycle exits 2) when the
     server cannot be reached, the query fails, or it returns other columns or
     bad row ids; the message names the source (URL without its password),
-    the config key and what to do.
+    the config key and what to do. The query runs in a transaction that is
+    rolled back, never committed.
     """
     import sqlalchemy as sa
     from sqlalchemy.exc import SQLAlchemyError
 
-    where = f"history query {history.describe()} (inputs.history{f' in {source}' if source else ''})"
+    where = f"history query {history.describe()} (inputs.history)"
     engine, secrets = _engine(history)
     wanted = list(HISTORY_COLUMNS)
     tables, bad, ids, digest, seen = [], [], [], _Digest(len(wanted)), 0
