@@ -81,8 +81,9 @@ for path in (ROOT, ROOT / "benchmarks"):
         sys.path.insert(0, str(path))
 
 import statsforecast  # noqa: E402
+from cycle_inputs import SHARE_METHODS, SMOOTHING, make_config  # noqa: E402
 from cycle_measure import HEADER, UNITS, Bench, git_commit, pa_version, patch_statsforecast, total_line, warm_up  # noqa: E402
-from cycle_scenario import CLASSES, SHARE_METHODS, SMOOTHING, Scenario, generate, make_config  # noqa: E402
+from cycle_scenario import CLASSES, Scenario, generate  # noqa: E402
 
 from assets.factory import Partition, graph_order  # noqa: E402
 from pipelines import definitions  # noqa: E402, F401  (makes every stage asset, so SPECS holds them all)
