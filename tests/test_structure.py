@@ -34,10 +34,10 @@ PATH_TOKEN = re.compile(r"^[\w./-]+$")
 
 
 # ---------------------------------------------------------------------------------------------- the modules
-def project_modules(root: Path) -> dict[str, Path]:
-    """Dotted module name -> file, for every .py under the project's packages (tests are not among them)."""
+def project_modules(root: Path, packages: tuple[str, ...] = PACKAGES) -> dict[str, Path]:
+    """Dotted module name -> file, for every .py under `packages` (by default the project's, tests aside)."""
     found = {}
-    for package in PACKAGES:
+    for package in packages:
         for path in sorted((root / package).rglob("*.py")):
             parts = path.relative_to(root).with_suffix("").parts
             name = ".".join(parts[:-1] if parts[-1] == "__init__" else parts)
@@ -59,10 +59,10 @@ def _imported(node: ast.AST, module: str, is_package: bool) -> list[tuple[str, l
     return [(target, [alias.name for alias in node.names])]
 
 
-def import_graph(root: Path) -> dict[str, set[str]]:
+def import_graph(root: Path, packages: tuple[str, ...] = PACKAGES) -> dict[str, set[str]]:
     """Module -> the project modules it imports. `from p import m` of a submodule m is an arrow to p.m; a
     name not found from the root is looked up beside the importing file (benchmarks put their folder on sys.path)."""
-    modules = project_modules(root)
+    modules = project_modules(root, packages)
     graph: dict[str, set[str]] = {name: set() for name in modules}
     for name, path in modules.items():
         is_package = path.name == "__init__.py"
@@ -94,9 +94,9 @@ def stage_imports(root: Path) -> list[tuple[str, str]]:
     )
 
 
-def import_cycles(root: Path) -> list[list[str]]:
-    """Every strongly connected group of two or more modules (or a module importing itself): each is a cycle."""
-    graph = import_graph(root)
+def import_cycles(root: Path, packages: tuple[str, ...] = (*PACKAGES, "tests")) -> list[list[str]]:
+    """Every strongly connected group of two or more modules: each holds a cycle (tests' modules included)."""
+    graph = import_graph(root, packages)
     index: dict[str, int] = {}
     low: dict[str, int] = {}
     stack: list[str] = []
@@ -238,6 +238,7 @@ def test_the_import_graph_sees_the_project():
     assert "pipelines.engines.forecast_frames" in graph["pipelines.stages.statistical_forecast"]
     assert "pipelines.store.store" in graph["pipelines.store"]  # a package's own __init__ importing its module
     assert "benchmarks.cycle_inputs" in graph["benchmarks.cycle_scenario"]  # a benchmark's import beside it
+    assert "tests.stage_runs" in import_graph(ROOT, ("tests", "pipelines"))["tests.test_check_mutations"]
 
 
 def test_no_module_over_400_lines():
