@@ -262,7 +262,7 @@ def store(bench: Bench, con, table: str, frame: pd.DataFrame) -> None:
     if con is None:
         return
 
-    def write():  # as the IO manager (pipelines/store/dagster_io.py) does it: a new Parquet version of the partition
+    def write():  # as the IO manager (resources.PartitionStore) does it: a new Parquet version of the partition
         con.write(table, "2026-11-30", "bench", frame, run_id="bench")
 
     bench.run(f"  store {table}", write, rows_in=len(frame), trace=False)
