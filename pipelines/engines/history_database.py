@@ -37,7 +37,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from pipelines.config_inputs import HISTORY_QUERY_COLUMNS, HistoryQuery, InputsConfig
-from pipelines.engines.history_files import HISTORY_COLUMNS, HistoryFile
+from pipelines.engines.inputs import HISTORY_COLUMNS, HistoryFile
 from pipelines.engines.reader import screen_cells, text_read
 from pipelines.errors import InputFileError, hide_passwords
 

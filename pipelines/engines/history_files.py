@@ -42,20 +42,13 @@ import pandas as pd
 
 from pipelines.calendar import ordinal_to_start, period_ordinal, period_start
 from pipelines.config_inputs import InputsConfig
-from pipelines.engines.inputs import InputFile, find_files, sha256
+from pipelines.engines.history_database import load_history_query
+from pipelines.engines.inputs import HISTORY_COLUMNS, HistoryFile, find_files, sha256
 from pipelines.engines.plausible import gap_periods, parse_dates, trusted_extent
 from pipelines.engines.reader import read_text
 from pipelines.errors import InputFileError
 
-HISTORY_COLUMNS = ("product", "site", "customer", "period_start", "quantity")
-
-
-@dataclass(frozen=True)
-class HistoryFile(InputFile):
-    """One history file read: its rows, malformed and empty lines besides the checksum."""
-
-    malformed: int = 0
-    blank_lines: int = 0
+__all__ = ["HISTORY_COLUMNS", "HistoryFile", "choose_cycle_date", "latest_cycle_date", "load_raw_history"]
 
 
 def history_files(folder: Path) -> list[Path]:
@@ -87,8 +80,6 @@ def load_raw_history(folder: Path, inputs: InputsConfig | None = None) -> tuple[
     """
     inputs = inputs or InputsConfig()
     if inputs.history is not None:
-        from pipelines.engines.history_database import load_history_query
-
         present = find_files(folder, "history", many=True, required=False)
         if present:
             raise InputFileError(
