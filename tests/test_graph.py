@@ -126,7 +126,8 @@ def test_auto_classes_follow_the_backtest_choice_and_stay_coherent(demo_cycle):
         "wls_var",
         "seasonal_naive",
     }
-    assert set(accuracy["metric"]) == {"wmape", "bias", "mase", "fva"} and set(accuracy["grain"]) == {"leaf", "parent"}
+    assert set(accuracy["metric"]) == {"wmape", "bias", "mase", "rmsse", "fva"}
+    assert set(accuracy["grain"]) == {"leaf", "parent"}
     # the decision is stored once (strategy_choice) and the forecast followed it
     choice = read_table(store, "strategy_choice").set_index("product_class")
     parent = read_table(store, "parent_forecast")

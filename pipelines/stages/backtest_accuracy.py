@@ -1,15 +1,21 @@
-"""Stage `backtest_accuracy`: which strategy forecasts each product class best.
+"""Stage `backtest_accuracy`: which strategy, share window and method forecast each product class best.
 
 Rolling origin (Tashman 2000; Hyndman & Athanasopoulos, FPP 3rd ed., section
 5.10): `backtest.origins` origins, the last `backtest.horizon` periods before
 the cycle date and each earlier one `backtest.step` periods before the next.
-At each origin the history after it is held back; every series is re-classed
-and re-forecast from the history before it with the class's models, at both
+At each origin the history after it is held back, and the history before it
+is the raw history cleaned again from those periods alone
+(`pipelines.engines.origin_cleaning`): the cycle's centred outlier window
+would otherwise see up to half a window of the future it forecasts. Every
+series is re-classed and re-forecast from it with the class's models, at both
 grains, and each strategy of `pipelines.engines.hierarchy` turns the base
 forecasts into coherent parent and leaf forecasts for `horizon` periods:
 
-- `top_down`: the parent forecast split by the class's share table computed
-  at the origin (same method, window and fallbacks as the cycle's);
+- `top_down`: the parent forecast split by the share table computed at the
+  origin with the class's window and method; every candidate window x method
+  of `selection.share_tuning` is scored the same way (`share_tuning`, the
+  choice for `window: auto` / `method: auto`, `pipelines.engines.share_tuning`)
+  and the strategies are scored with the class's chosen (or fixed) one;
 - `forecast_proportions`, `bottom_up`, `mint_shrink`, `wls_var` as documented
   there (MinT's residuals are the in-sample one-step residuals at the origin).
 
@@ -21,12 +27,15 @@ history counts (copied reference history shapes shares, it is not demand), and
 a parent's actuals are the sum of its children's, so the two grains agree.
 
 Accuracy per class, strategy and grain, pooled over all series, periods and
-origins (`pipelines.engines.accuracy`): WMAPE, bias, MASE (scaled by each
-series' in-sample naive differences at the origin, seasonal ones for a class
-with `seasonal: true`) and forecast value added over seasonal naive.
-
-The choice of a class's strategy from this table (`strategy: auto`) is the
-next stage, `strategy_choice`.
+origins (`pipelines.engines.backtest_scores`): WMAPE, bias, MASE and RMSSE
+(scaled by each series' in-sample naive differences at the origin, seasonal
+ones for a class with `seasonal: true`; RMSSE pooled by recent volume) and
+forecast value added over seasonal naive; `value` against the raw actuals
+(returns netted), `value_cleaned` against the cycle's cleaned ones. Each class
+is judged by the metric of the demand classes holding most of its leaf series
+(`selection.metric`; `scaled_errors.class_metric`), `selection_metric`.
+`backtest_losses` keeps each strategy's leaf loss per backtest period for the
+comparison test of the next stage, `strategy_choice`, which makes the choice.
 """
 
 from __future__ import annotations
@@ -203,8 +212,9 @@ def run_backtest(
         c_grid = series_grid(ccode, ords, seen, n_children, o)
         demand = demand_classes(c_grid)[0]
         base = base_forecasts(p_grid, c_grid, parent_class, child_class, {c: driver for c in classes}, models, h, log)
-        as_seen = history.copy()
-        as_seen.loc[np.flatnonzero(ok), "quantity"] = seen
+        as_seen_qty = history["quantity"].to_numpy(float).copy()
+        as_seen_qty[ok] = seen
+        as_seen = history.assign(quantity=as_seen_qty)  # the share tables as the origin would have made them
         # scored against the raw actuals, and against the cycle's cleaned ones as the second column
         leaf_actual = {RAW: _dense(ccode, ords, raw, n_children, o, h)}
         leaf_actual[CLEANED] = _dense(ccode, ords, qty, n_children, o, h)
