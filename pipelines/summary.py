@@ -98,7 +98,9 @@ def print_summary(
         print("classes:")
         for name, group in shares.groupby("product_class"):
             pc = config.product_classes.get(name)
-            how = f"window {pc.window}, {pc.method}" if pc else "not in config"
+            # the window and method the cycle followed (the share tuning's choice for auto), not today's config
+            windows = ", ".join(str(int(w)) for w in sorted(group["window"].unique()))
+            how = f"window {windows}, {', '.join(sorted(group['method'].unique()))}" if pc else "not in config"
             p = parents[parents["product_class"] == name]
             fallbacks = int((p["fallback"] != "none").sum())
             print(
