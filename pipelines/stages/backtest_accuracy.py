@@ -40,13 +40,14 @@ import pandas as pd
 from pipelines.calendar import ordinal_to_start, period_ordinal, season_length
 from pipelines.config_sections import BacktestConfig
 from pipelines.engines.accuracy import mase_scale
-from pipelines.engines.base_forecasts import base_forecasts
+from pipelines.engines.base_forecasts import base_forecasts, series_to_fit
 from pipelines.engines.hierarchy import NEEDS_RESIDUALS, coherent_forecasts, parent_sums
 from pipelines.engines.models import ModelSettings, run_model_groups, series_grid
 from pipelines.engines.period_shares import period_shares
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.shares import compute_shares
 from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
+from pipelines.progress import SeriesProgress
 from pipelines.results import Log, StageResult, quiet
 from pipelines.vocabulary import BENCHMARK
 
@@ -102,12 +103,12 @@ def _scales(grid, cls: np.ndarray, settings: BacktestSettings) -> np.ndarray:
     return np.where(seasonal & np.isfinite(m), m, one)
 
 
-def _seasonal_naive(grid, horizon: int, period: str, log) -> np.ndarray:
+def _seasonal_naive(grid, horizon: int, period: str, log, progress=None) -> np.ndarray:
     sl = season_length(period)
     length = np.bincount(grid.series, minlength=grid.n_series)
     names = np.where(length > 0, "seasonal_naive", "zero").astype(object)
     season = np.where(length >= sl, sl, 1)
-    return np.clip(run_model_groups(grid, names, season, horizon, log=log).forecast, 0, None)
+    return np.clip(run_model_groups(grid, names, season, horizon, log=log, progress=progress).forecast, 0, None)
 
 
 def run_backtest(
@@ -153,13 +154,17 @@ def run_backtest(
     # sums[name][grain]: (n_classes, 5) running sums of abs error, error, actual, scaled error, scaled cells
     sums = {s: {g: np.zeros((len(classes), len(_SUMS))) for g in ("leaf", "parent")} for s in names}
     driver = "mint_shrink" if any(s in NEEDS_RESIDUALS for s in strategies) else "forecast_proportions"
+    drivers = {c: driver for c in classes}
+    # each origin: the base forecasts, then seasonal naive on every parent and child
+    per_origin = series_to_fit(parent_class, child_class, drivers) + n_parents + n_children
+    fits = SeriesProgress(len(origins) * per_origin, log)
     for o in origins:
         origin_date = ordinal_to_start(np.array([o]), period)[0]
         if log:
             log(f"backtest origin {origin_date.date()}")
         p_grid = series_grid(pcode, ords, qty, n_parents, o)
         c_grid = series_grid(ccode, ords, qty, n_children, o)
-        base = base_forecasts(p_grid, c_grid, parent_class, child_class, {c: driver for c in classes}, models, h, log)
+        base = base_forecasts(p_grid, c_grid, parent_class, child_class, drivers, models, h, log, fits.advance)
         shares = compute_shares(history, children, share_settings, origin_date)
         share_lookup = lookup(children, LEAF, shares)
         # the period shares the cycle would split by (per-period methods differ from the base share)
@@ -174,8 +179,8 @@ def run_backtest(
             )
             fc[s] = {"parent": p, "leaf": l}
         fc[BENCHMARK] = {
-            "parent": _seasonal_naive(p_grid, h, period, log),
-            "leaf": _seasonal_naive(c_grid, h, period, log),
+            "parent": _seasonal_naive(p_grid, h, period, log, fits.advance),
+            "leaf": _seasonal_naive(c_grid, h, period, log, fits.advance),
         }
         for s in names:
             for grain, actual, cls in (("leaf", leaf_actual, c_cls), ("parent", parent_actual, p_cls)):
