@@ -1,7 +1,7 @@
-"""Command line: `python -m pipelines cycle` runs the weekly cycle and prints its summary.
+"""Command line: `python -m pipelines cycle` runs the planning cycle with a progress display and prints its summary.
 
 python -m pipelines cycle [--config config/planning.yaml] [--cycle YYYY-MM-DD] [--class CLS ...] [--parallel K]
-                          [--if-busy wait|stop]
+                          [--if-busy wait|stop] [--verbose] [--json]
 python -m pipelines rebuild --class CLS [--from share_tables] [--cycle YYYY-MM-DD]
 python -m pipelines summary [--config ...] [--cycle YYYY-MM-DD]   # a stored cycle, no run
 python -m pipelines explain PRODUCT SITE CUSTOMER [--period P] [--cycle C]   # how a leaf value was made
@@ -42,6 +42,8 @@ def run_cycle(
     backfill: int = 0,
     parallel: int = 1,
     if_busy: str = "wait",
+    verbose: bool = False,
+    as_json: bool = False,
 ) -> int:
     """Run the cycle (or, with `rebuild_from`, that asset and everything downstream) for each class; the exit code.
 
@@ -52,9 +54,35 @@ def run_cycle(
     `parallel`: partitions run at once, each in its own process (1: one after
     another in this process). `if_busy`: when another run writes a partition,
     `wait` in the queue for it or `stop` (exit 2), naming that run.
+    `verbose`: Dagster's own log on the console too (else only the progress
+    display). `as_json`: the summary as one JSON object on stdout
+    (pipelines/cycle_json.py); everything else goes to stderr.
     """
+    if not as_json:
+        return _run_cycle(config_path, cycle, classes, rebuild_from, summary, backfill, parallel, if_busy, verbose)
+    import contextlib
+
+    from pipelines.cycle_json import dumps
+
+    report: dict = {}
+    with contextlib.redirect_stdout(sys.stderr):
+        code = _run_cycle(
+            config_path, cycle, classes, rebuild_from, summary, backfill, parallel, if_busy, verbose, report
+        )
+    print(dumps(report))
+    return code
+
+
+def _run_cycle(
+    config_path, cycle, classes, rebuild_from, summary, backfill, parallel, if_busy, verbose, report=None
+) -> int:
+    """run_cycle's work; fills `report` (when given) with the --json summary."""
+    from rich.console import Console
+
+    from pipelines.cycle_json import cycle_summary
     from pipelines.definitions import build_definitions
     from pipelines.partitions import current_cycle
+    from pipelines.progress_display import CycleDisplay
     from pipelines.resources import PlanningConfigResource
     from pipelines.runner import (
         PartitionOutcome,
@@ -93,21 +121,25 @@ def run_cycle(
     wait_seconds = 0 if if_busy == "stop" else None
 
     now = {"cycle": cycle, "what": what, "of": len(chosen)}  # what the progress lines name
+    instance = _instance()
+    # a live display only on a terminal, and not under Dagster's own log lines (--verbose)
+    display = CycleDisplay(instance, Console(file=sys.stdout, highlight=False), live=False if verbose else None)
 
-    def started(i: int, product_class: str) -> None:
-        print(f"[{i}/{now['of']}] cycle {now['cycle']}, class {product_class}: {now['what']} ...", flush=True)
+    def started(i: int, product_class: str, run_id: str) -> None:
+        display.say(f"[{i}/{now['of']}] cycle {now['cycle']}, class {product_class}: {now['what']} ...")
+        display.started(now["cycle"], product_class, run_id)
 
     def done(outcome: PartitionOutcome) -> None:
-        print(
+        display.finished(outcome.run_id)
+        display.say(
             f"    {outcome.product_class}: run {outcome.run_id}: {'succeeded' if outcome.success else 'FAILED'} "
-            f"in {outcome.seconds:.0f} s",
-            flush=True,
+            f"in {outcome.seconds:.0f} s"
         )
         for step, message in outcome.failures:
-            print(f"    step {step} failed: {message}")
+            display.say(f"    step {step} failed: {message}")
 
-    run_config = {"loggers": {"console": {"config": {"log_level": "INFO"}}}}
-    instance = _instance()
+    # Dagster's console log only with --verbose; every event stays in the instance (and the UI) either way
+    run_config = {"loggers": {"console": {"config": {"log_level": "INFO" if verbose else "CRITICAL"}}}}
     # runs whose process died (kill -9, out of memory) would stay STARTED for ever and block the run queue
     for message in mark_dead_runs_failed(instance):
         print(f"recovery: {message}", flush=True)
@@ -159,19 +191,19 @@ def run_cycle(
 
     ok = True
     every = []  # the outcomes of every run, backfill included: their failed steps decide the exit code
-    for earlier in _missing_earlier_cycles(config, cycle, backfill):
-        print(
-            f"backfill: cycle {earlier} is not published in the store yet; running it first "
-            "(share drift compares with it)",
-            flush=True,
-        )
-        now.update(cycle=earlier, what="whole cycle", of=len(config.product_classes))
-        past = run_classes(earlier, list(config.product_classes), None, None)
-        every += past
-        ok = ok and all(o.success for o in past) and blocking_checks_pass(past)
-    now.update(cycle=cycle, what=what, of=len(chosen))
-    # progress at INFO on the console; the full event log stays in the instance (and the UI)
-    outcomes = run_classes(cycle, chosen, selection, rebuild_from)
+    by_cycle: dict[str, list[PartitionOutcome]] = {}
+    with display:
+        for earlier in _missing_earlier_cycles(config, cycle, backfill):
+            display.say(
+                f"backfill: cycle {earlier} is not published in the store yet; running it first "
+                "(share drift compares with it)"
+            )
+            now.update(cycle=earlier, what="whole cycle", of=len(config.product_classes))
+            past = by_cycle[earlier] = run_classes(earlier, list(config.product_classes), None, None)
+            every += past
+            ok = ok and all(o.success for o in past) and blocking_checks_pass(past)
+        now.update(cycle=cycle, what=what, of=len(chosen))
+        outcomes = by_cycle[cycle] = run_classes(cycle, chosen, selection, rebuild_from)
     checks = [
         (f"{e.asset_key.to_user_string()} [{o.product_class}]", e.check_name, e.passed, e.severity.value)
         for o in outcomes
@@ -182,16 +214,21 @@ def run_cycle(
     # the page again after every class ran, so a run a blocking check stopped shows its failure there too
     from pipelines.cycle_report import write_cycle_report
 
-    print(f"report:       {write_cycle_report(config, instance, cycle)}")
+    page = write_cycle_report(config, instance, cycle)
+    print(f"report:       {page}")
     every += outcomes
     kinds = {kind for o in every for kind in o.failure_kinds}
-    if any(o.exit_code == 2 for o in outcomes) or "bad_input" in kinds:
-        return EXIT_BAD_INPUT
-    if "crash" in kinds:
-        return EXIT_CRASH
     # a failed WARN check is reported but does not fail the command; an ERROR check does
     ok = ok and all(o.success for o in outcomes) and blocking_checks_pass(outcomes)
-    return EXIT_OK if ok else EXIT_CHECK_FAILED
+    if any(o.exit_code == 2 for o in outcomes) or "bad_input" in kinds:
+        code = EXIT_BAD_INPUT
+    elif "crash" in kinds:
+        code = EXIT_CRASH
+    else:
+        code = EXIT_OK if ok else EXIT_CHECK_FAILED
+    if report is not None:
+        report.update(cycle_summary(command, cycle, code, by_cycle, display.summary(), str(page)))
+    return code
 
 
 def _missing_earlier_cycles(config, cycle: str, count: int) -> list[str]:
@@ -270,6 +307,10 @@ def main(argv: list[str] | None = None) -> int:
             default="wait",
             help="when another run writes a partition: wait in the queue for it (default) or stop with exit 2",
         )
+        p.add_argument("--verbose", action="store_true", help="Dagster's own log lines too (else: progress only)")
+        p.add_argument(
+            "--json", dest="as_json", action="store_true", help="print the summary as one JSON object on stdout"
+        )
 
     p = sub.add_parser("cycle", help="run the weekly cycle for every class (or --class ...) and print a summary")
     config_arg(p)
@@ -334,6 +375,8 @@ def main(argv: list[str] | None = None) -> int:
                 backfill=args.backfill,
                 parallel=args.parallel,
                 if_busy=args.if_busy,
+                verbose=args.verbose,
+                as_json=args.as_json,
             )
         if args.command == "rebuild":
             return run_cycle(
@@ -343,6 +386,8 @@ def main(argv: list[str] | None = None) -> int:
                 rebuild_from=args.asset,
                 parallel=args.parallel,
                 if_busy=args.if_busy,
+                verbose=args.verbose,
+                as_json=args.as_json,
             )
         if args.command == "explain":
             return explain(args.config, args.product, args.site, args.customer, args.period, args.cycle)
@@ -366,6 +411,10 @@ def main(argv: list[str] | None = None) -> int:
         return 0
     except PlanningError as err:
         print(f"error: {err}", file=sys.stderr)
+        if getattr(args, "as_json", False):
+            from pipelines.cycle_json import dumps, error_summary
+
+            print(dumps(error_summary(args.command, EXIT_BAD_INPUT, str(err))))
         return EXIT_BAD_INPUT
 
 
