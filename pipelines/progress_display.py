@@ -81,7 +81,7 @@ class ClassRun:
     def position(self, stage: Stage) -> str:
         """'7/19': the stage's place among the steps the run planned."""
         of = max(len(self.planned), len(self.stages))
-        return f"{list(self.stages).index(stage) + 1}/{of}"
+        return f"{list(self.stages).index(stage.name) + 1}/{of}"
 
 
 def _step_name(entry) -> str | None:
@@ -165,7 +165,7 @@ class CycleDisplay:
     def stage_line(self, run: ClassRun, stage: Stage) -> str:
         """'  consumables  13/19 backtest_accuracy      120 rows    35.1 s  (3,600 series)' for a finished stage."""
         rows = stage.main_rows
-        rows_text = f"{rows:,} rows" if rows is not None else ""
+        rows_text = f"{rows:,} row{'' if rows == 1 else 's'}" if rows is not None else ""
         series = f"  ({stage.total:,} {stage.unit})" if stage.total else ""
         failed = "  FAILED" if stage.status == "failed" else ""
         return (
