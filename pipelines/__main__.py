@@ -70,7 +70,10 @@ def report(config_path: str, cycle: str | None) -> int:
 
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(
-        prog="python -m pipelines", description="apportion: the weekly share refresh cycle"
+        prog="python -m pipelines",
+        description="apportion: the share refresh cycle of each planning period (week or month)",
+        epilog="exit codes of cycle and rebuild: 0 ok (failed WARN checks listed), 1 a blocking check failed, "
+        "2 bad input or config (or a busy partition), 3 a step failed on a bug",
     )
     sub = parser.add_subparsers(dest="command", required=True)
 
@@ -98,7 +101,9 @@ def main(argv: list[str] | None = None) -> int:
             "--json", dest="as_json", action="store_true", help="print the summary as one JSON object on stdout"
         )
 
-    p = sub.add_parser("cycle", help="run the weekly cycle for every class (or --class ...) and print a summary")
+    p = sub.add_parser(
+        "cycle", help="run the planning cycle for every class (or --class ...) with a progress display; a summary"
+    )
     config_arg(p)
     p.add_argument(
         "--cycle",
