@@ -6,6 +6,7 @@ The progress display follows the runs' events (pipelines/progress_display.py);
 
 from __future__ import annotations
 
+import os
 import sys
 
 from pipelines.config import LATEST_COMPLETE_PERIOD
@@ -111,7 +112,8 @@ def _run_cycle(
 
     instance = dagster_instance()
     # a live display only on a terminal, and not under Dagster's own log lines (--verbose)
-    display = CycleDisplay(instance, Console(file=sys.stdout, highlight=False), live=False if verbose else None)
+    stream = _display_stream()
+    display = CycleDisplay(instance, Console(file=stream, highlight=False), live=False if verbose else None)
 
     def started(i: int, product_class: str, run_id: str) -> None:
         display.say(f"[{i}/{now['of']}] cycle {now['cycle']}, class {product_class}: {now['what']} ...")
@@ -180,18 +182,22 @@ def _run_cycle(
     ok = True
     every = []  # the outcomes of every run, backfill included: their failed steps decide the exit code
     by_cycle: dict[str, list[PartitionOutcome]] = {}
-    with display:
-        for earlier in _missing_earlier_cycles(config, cycle, backfill):
-            display.say(
-                f"backfill: cycle {earlier} is not published in the store yet; running it first "
-                "(share drift compares with it)"
-            )
-            now.update(cycle=earlier, what="whole cycle", of=len(config.product_classes))
-            past = by_cycle[earlier] = run_classes(earlier, list(config.product_classes), None, None)
-            every += past
-            ok = ok and all(o.success for o in past) and blocking_checks_pass(past)
-        now.update(cycle=cycle, what=what, of=len(chosen))
-        outcomes = by_cycle[cycle] = run_classes(cycle, chosen, selection, rebuild_from)
+    try:
+        with display:
+            for earlier in _missing_earlier_cycles(config, cycle, backfill):
+                display.say(
+                    f"backfill: cycle {earlier} is not published in the store yet; running it first "
+                    "(share drift compares with it)"
+                )
+                now.update(cycle=earlier, what="whole cycle", of=len(config.product_classes))
+                past = by_cycle[earlier] = run_classes(earlier, list(config.product_classes), None, None)
+                every += past
+                ok = ok and all(o.success for o in past) and blocking_checks_pass(past)
+            now.update(cycle=cycle, what=what, of=len(chosen))
+            outcomes = by_cycle[cycle] = run_classes(cycle, chosen, selection, rebuild_from)
+    finally:
+        if stream is not sys.stdout:
+            stream.close()
     checks = [
         (f"{e.asset_key.to_user_string()} [{o.product_class}]", e.check_name, e.passed, e.severity.value)
         for o in outcomes
@@ -217,6 +223,18 @@ def _run_cycle(
     if report is not None:
         report.update(cycle_summary(command, cycle, code, by_cycle, display.summary(), str(page)))
     return code
+
+
+def _display_stream():
+    """The display's own stream onto stdout's file. While a step runs, Dagster sends file descriptors 1 and 2
+    through its compute-log capture; the display writes beside it, so its lines and live bar reach the
+    terminal in order and stay out of the steps' logs. sys.stdout itself where it has no file (a test's capture)."""
+    try:
+        fd = sys.stdout.fileno()
+    except (AttributeError, OSError, ValueError):
+        return sys.stdout
+    sys.stdout.flush()
+    return os.fdopen(os.dup(fd), "w", buffering=1)
 
 
 def _missing_earlier_cycles(config, cycle: str, count: int) -> list[str]:

@@ -84,10 +84,6 @@ class ClassRun:
         return f"{list(self.stages).index(stage.name) + 1}/{of}"
 
 
-def _step_name(entry) -> str | None:
-    return entry.step_key
-
-
 class CycleDisplay:
     """Follows runs in the instance and shows their progress on `console` (see the module docstring)."""
 
@@ -99,6 +95,7 @@ class CycleDisplay:
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
         self._live = None
+        self._lines: list[str] = []  # made under the lock, printed after it (the live render takes it too)
 
     # ------------------------------------------------------------------ what the runner tells it
     def started(self, cycle: str, product_class: str, run_id: str) -> None:
@@ -112,6 +109,7 @@ class CycleDisplay:
             if run is not None:
                 self._follow(run)
                 run.finished = True
+        self._print_lines()
 
     def say(self, line: str) -> None:
         """A line of the command's own (it stays above the live lines)."""
@@ -123,6 +121,13 @@ class CycleDisplay:
             for run in self.runs:
                 if not run.finished:
                     self._follow(run)
+        self._print_lines()
+
+    def _print_lines(self) -> None:
+        with self._lock:
+            lines, self._lines = self._lines, []
+        for line in lines:
+            self.say(line)
 
     def _follow(self, run: ClassRun) -> None:
         try:
@@ -135,7 +140,7 @@ class CycleDisplay:
         self._plain_progress(run)
 
     def _apply(self, run: ClassRun, entry) -> None:
-        name = _step_name(entry)
+        name = entry.step_key
         kind = entry.dagster_event_type
         if kind == dg.DagsterEventType.ASSET_MATERIALIZATION_PLANNED and name and name not in run.planned:
             run.planned.append(name)
@@ -159,7 +164,7 @@ class CycleDisplay:
         elif kind in (dg.DagsterEventType.STEP_SUCCESS, dg.DagsterEventType.STEP_FAILURE):
             stage.status = "succeeded" if kind == dg.DagsterEventType.STEP_SUCCESS else "failed"
             stage.seconds = entry.timestamp - stage.started
-            self.say(self.stage_line(run, stage))
+            self._lines.append(self.stage_line(run, stage))
 
     # ------------------------------------------------------------------ what it shows
     def stage_line(self, run: ClassRun, stage: Stage) -> str:
@@ -191,7 +196,7 @@ class CycleDisplay:
         now = self.clock()
         if now - run.last_plain >= PLAIN_PROGRESS_SECONDS and now - stage.started >= PLAIN_PROGRESS_SECONDS:
             run.last_plain = now
-            self.say("  " + self.running_text(run, stage))
+            self._lines.append("  " + self.running_text(run, stage))
 
     def render(self):
         """The live lines: one per running class, with a bar where the stage reports its series."""
