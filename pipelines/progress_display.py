@@ -92,6 +92,7 @@ class CycleDisplay:
         self.live = console.is_terminal if live is None else live
         self.runs: list[ClassRun] = []
         self._lock = threading.RLock()
+        self._print_lock = threading.Lock()
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
         self._live = None
@@ -124,10 +125,11 @@ class CycleDisplay:
         self._print_lines()
 
     def _print_lines(self) -> None:
-        with self._lock:
-            lines, self._lines = self._lines, []
-        for line in lines:
-            self.say(line)
+        with self._print_lock:  # whoever prints, the lines come out in the order the events came
+            with self._lock:
+                lines, self._lines = self._lines, []
+            for line in lines:
+                self.say(line)
 
     def _follow(self, run: ClassRun) -> None:
         try:
