@@ -28,6 +28,7 @@ POLL_SECONDS = 0.5
 # without a terminal (a log file, CI) a running model step prints a progress line at most this often
 PLAIN_PROGRESS_SECONDS = 15.0
 ROW_COUNT = "dagster/row_count"
+UNREAD_BEFORE_SAYING = 20  # failed reads in a row (10 s) before the display says it cannot follow a run
 
 
 @dataclass
@@ -73,6 +74,7 @@ class ClassRun:
     cursor: str | None = None
     finished: bool = False
     last_plain: float = 0.0
+    unread: int = 0  # reads of its events that failed in a row
 
     @property
     def running(self) -> Stage | None:
@@ -134,8 +136,15 @@ class CycleDisplay:
     def _follow(self, run: ClassRun) -> None:
         try:
             connection = self.instance.get_records_for_run(run.run_id, cursor=run.cursor)
-        except Exception:  # the run's event storage is not there yet, or busy: read again next time
+        except Exception as err:  # the run's event storage busy or not there yet: read again next time
+            run.unread += 1
+            if run.unread == UNREAD_BEFORE_SAYING:
+                self._lines.append(
+                    f"  {run.product_class}: cannot read the events of run {run.run_id} ({err}); its progress "
+                    "is not shown, the run goes on (its result follows)"
+                )
             return
+        run.unread = 0
         run.cursor = connection.cursor
         for record in connection.records:
             self._apply(run, record.event_log_entry)

@@ -8,7 +8,7 @@ from rich.console import Console
 
 from pipelines.engines.models import run_model_groups, series_grid
 from pipelines.progress import MIN_SECONDS_BETWEEN_LINES, Done, SeriesProgress, parse_progress, seconds_left
-from pipelines.progress_display import ClassRun, CycleDisplay, Stage
+from pipelines.progress_display import UNREAD_BEFORE_SAYING, ClassRun, CycleDisplay, Stage
 
 
 class Clock:
@@ -76,3 +76,20 @@ def test_model_groups_count_every_series_once():
     counted = []
     run_model_groups(grid, names, np.ones(5, dtype=int), 2, progress=counted.append)
     assert sum(counted) == 5 and sorted(counted) == [1, 1, 3]
+
+
+def test_a_run_whose_events_cannot_be_read_is_named_once_and_not_silently_dropped():
+    class Unreadable:
+        def get_records_for_run(self, run_id, cursor=None):
+            raise RuntimeError("database is locked")
+
+    console = Console(record=True, width=200)
+    display = CycleDisplay(instance=Unreadable(), console=console, live=False)
+    display.started("2026-11-30", "spares", "run-9")
+    for _ in range(UNREAD_BEFORE_SAYING * 3):
+        display.poll()
+    said = console.export_text().splitlines()
+    assert said == [
+        "  spares: cannot read the events of run run-9 (database is locked); its progress is not shown, the run "
+        "goes on (its result follows)"
+    ]
