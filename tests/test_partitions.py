@@ -76,14 +76,16 @@ def test_schedule_registers_the_cycle_and_requests_one_run_per_class(tmp_path):
     _history(folder, ["P,S,C,2026-11-23,1"])
     planning = PlanningConfigResource(path=_config_file(tmp_path, folder))
     with dg.instance_for_test() as instance:
-        context = dg.build_schedule_context(
+        schedule = build_definitions(planning.path).resolve_schedule_def(CYCLE_SCHEDULE)
+        # the context as a context manager: its resources and instance are released (Dagster keeps the
+        # instance's state storage in a context variable until then, which later tests would find dead)
+        with dg.build_schedule_context(
             instance=instance,
             scheduled_execution_time=dt.datetime(2026, 11, 30, 6, tzinfo=dt.timezone.utc),
             resources={"planning": planning},
             repository_def=build_definitions(planning.path).get_repository_def(),
-        )
-        schedule = build_definitions(planning.path).resolve_schedule_def(CYCLE_SCHEDULE)
-        requests = schedule.evaluate_tick(context).run_requests
+        ) as context:
+            requests = schedule.evaluate_tick(context).run_requests
         assert [r.partition_key for r in requests] == ["2026-11-30|fast", "2026-11-30|slow"]
         assert instance.get_dynamic_partitions(CYCLE) == ["2026-11-30"]
         assert instance.get_dynamic_partitions(PRODUCT_CLASS) == ["fast", "slow"]
@@ -103,13 +105,13 @@ def test_the_schedule_follows_the_calendar_and_its_cron_is_configurable(tmp_path
     # a monthly tick on the first of November starts the month after the latest history (October): November
     planning = PlanningConfigResource(path=_config_file(tmp_path, folder, period="month"))
     with dg.instance_for_test() as instance:
-        context = dg.build_schedule_context(
+        with dg.build_schedule_context(
             instance=instance,
             scheduled_execution_time=dt.datetime(2026, 11, 1, 6, tzinfo=dt.timezone.utc),
             resources={"planning": planning},
             repository_def=build_definitions(planning.path).get_repository_def(),
-        )
-        requests = monthly.evaluate_tick(context).run_requests
+        ) as context:
+            requests = monthly.evaluate_tick(context).run_requests
         assert [r.partition_key for r in requests] == ["2026-11-01|fast", "2026-11-01|slow"]
 
 
