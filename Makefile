@@ -3,7 +3,9 @@ PYTHON ?= python3
 VENV := .venv
 BIN := $(VENV)/bin
 export DAGSTER_HOME := $(CURDIR)/.dagster
-export APPORTION_CONFIG ?= config/planning.yaml
+# the weekly calendar by default (config/planning.yaml links to the same file); another: APPORTION_CONFIG=path
+# (config/planning.monthly.yaml reads monthly history from its inputs.folder)
+export APPORTION_CONFIG ?= config/planning.weekly.yaml
 # partitions (classes) run at once: by `make demo` (cycle --parallel) and by the UI's run queue. 1 by default: on the
 # 2-core demo machine 2 at once was no faster (benchmarks/README.md); raise it where cores are free
 PARALLEL ?= 1
@@ -42,7 +44,7 @@ $(DAGSTER_HOME)/dagster.yaml: Makefile
 	  echo '  postgres:'; echo '    postgres_url:'; echo '      env: DAGSTER_POSTGRES_URL'; fi; \
 	} > $@; echo "wrote $@"; fi
 
-## make demo: install, run the weekly cycle on data/demo for every class, PARALLEL at once (and, once, the week before, so share drift has a previous cycle), print a summary
+## make demo: install, run the cycle on data/demo for every class, PARALLEL at once (and, once, the period before, so share drift has a previous cycle), with a progress display, then a summary
 demo: $(VENV)/.installed-base $(DAGSTER_HOME)/dagster.yaml
 	$(BIN)/python -m pipelines cycle --config $(APPORTION_CONFIG) --backfill 1 --parallel $(PARALLEL)
 

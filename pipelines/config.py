@@ -8,13 +8,14 @@ from __future__ import annotations
 
 import copy
 import datetime as dt
+import re
 import warnings
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Literal, get_args, get_origin
 
 import yaml
-from pydantic import BaseModel, Field, PrivateAttr, ValidationError, model_validator
+from pydantic import BaseModel, Field, PrivateAttr, ValidationError, field_validator, model_validator
 
 from pipelines.config_inputs import InputsConfig
 from pipelines.config_sections import (
@@ -35,6 +36,8 @@ from pipelines.errors import ConfigError, hide_passwords
 from pipelines.vocabulary import AUTO, FORECAST_GRAIN_STRATEGY, RENAMED_SHARE_METHODS, PeriodKind
 
 LATEST_COMPLETE_PERIOD = "latest_complete_period"
+# one field of a cron string: *, numbers, ranges, lists and steps (names such as MON are not accepted)
+CRON_FIELD = re.compile(r"(\*|\d+(-\d+)?)(/\d+)?(,(\*|\d+(-\d+)?)(/\d+)?)*")
 
 
 class StoreConfig(Frozen):
@@ -46,12 +49,47 @@ class StoreConfig(Frozen):
     lock_wait_minutes: float = Field(60.0, ge=0, description="minutes a run waits for a busy partition")
 
 
+# What a calendar gives when the config leaves a key out; an explicit value always wins.
+# horizon: a weekly plan looks half a year ahead (26), a monthly one the coming year, a full season of 12
+# (common practice, no source). backtest horizon and step: half the forecast horizon, origins not overlapping.
+# schedule: the cycle starts at 06:00 UTC on the first day of each period (ISO weeks start on Monday).
+PERIOD_DEFAULTS: dict[str, dict[str, object]] = {
+    "week": {"horizon": 26, "backtest_horizon": 13, "backtest_step": 13, "schedule": "0 6 * * 1"},
+    "month": {"horizon": 12, "backtest_horizon": 6, "backtest_step": 6, "schedule": "0 6 1 * *"},
+}
+
+
 class CalendarConfig(Frozen):
     period: PeriodKind = "week"
     # Either an ISO date that starts a period, or the period after the latest
     # period found in history (the loader delivers complete periods only).
     cycle_date: dt.date | Literal["latest_complete_period"] = LATEST_COMPLETE_PERIOD
-    horizon: int = Field(26, ge=1, le=520, description="periods to forecast")
+    horizon: int = Field(26, ge=1, le=520, description="periods to forecast (default: 26 weekly, 12 monthly)")
+    schedule: str = Field(
+        "0 6 * * 1",
+        description="cron (UTC) of the schedule that starts a cycle (default: the first day of each period, 06:00)",
+    )
+
+    @model_validator(mode="before")
+    @classmethod
+    def _period_defaults(cls, data: object) -> object:
+        """horizon and schedule, when left out, follow the period."""
+        if isinstance(data, dict):
+            defaults = PERIOD_DEFAULTS.get(data.get("period", "week"))
+            if defaults:
+                data = {"horizon": defaults["horizon"], "schedule": defaults["schedule"], **data}
+        return data
+
+    @field_validator("schedule")
+    @classmethod
+    def _cron(cls, v: str) -> str:
+        fields = v.split()
+        if len(fields) != 5 or not all(CRON_FIELD.fullmatch(f) for f in fields):
+            raise ValueError(
+                f"not a cron string of 5 fields (minute hour day-of-month month day-of-week), e.g. "
+                f"'0 6 * * 1' (Monday 06:00) or '0 6 1 * *' (the first of the month 06:00); got {v!r}"
+            )
+        return v
 
 
 def class_section(classes: Mapping[str, ProductClassConfig], name: str, source) -> ProductClassConfig:
@@ -138,6 +176,21 @@ class PlanningConfig(Frozen):
                 if n not in order:
                     order.append(n)
         return order
+
+    @model_validator(mode="before")
+    @classmethod
+    def _backtest_follows_the_period(cls, data: object) -> object:
+        """backtest.horizon and backtest.step, when left out, follow calendar.period (PERIOD_DEFAULTS)."""
+        if not isinstance(data, dict):
+            return data
+        calendar = data.get("calendar")
+        period = calendar.get("period", "week") if isinstance(calendar, dict) else getattr(calendar, "period", "week")
+        backtest = data.get("backtest", {})
+        defaults = PERIOD_DEFAULTS.get(period)
+        if defaults and isinstance(backtest, dict):
+            filled = {"horizon": defaults["backtest_horizon"], "step": defaults["backtest_step"], **backtest}
+            data = {**data, "backtest": filled}
+        return data
 
     @model_validator(mode="after")
     def _windows_inside_plausible_dates(self) -> PlanningConfig:

@@ -17,7 +17,7 @@ from assets.share_drift import share_drift
 from assets.share_tables import share_tables
 from assets.statistical_forecast import statistical_forecast
 from assets.strategy_choice import strategy_choice
-from pipelines.jobs import cycle_job, cycle_schedule, dead_run_reaper, new_history_file_sensor
+from pipelines.jobs import cycle_job, cycle_schedule_for, dead_run_reaper, new_history_file_sensor
 from pipelines.resources import PartitionStore, PlanningConfigResource
 
 ASSETS = [
@@ -45,16 +45,24 @@ ASSETS.append(publication_asset(list(ASSETS)))
 
 
 def build_definitions(config_path: str = "") -> dg.Definitions:
-    """Definitions over the planning config at `config_path` ('' = $APPORTION_CONFIG or config/planning.yaml)."""
+    """Definitions over the planning config at `config_path` ('' = $APPORTION_CONFIG or config/planning.yaml).
+
+    The config is read here, once, for the schedule's cron (calendar.schedule); an invalid config stops the
+    code location from loading with the error naming the file and key.
+    """
     planning = PlanningConfigResource(path=config_path)
+    calendar = planning.config.calendar
     return dg.Definitions(
         assets=ASSETS,
         jobs=[cycle_job],
-        schedules=[cycle_schedule],
+        schedules=[cycle_schedule_for(calendar.schedule, calendar.period)],
         sensors=[new_history_file_sensor, dead_run_reaper],
         resources={"planning": planning, "io_manager": PartitionStore(planning=planning)},
         executor=dg.in_process_executor,
     )
 
 
-defs = build_definitions()
+@dg.definitions
+def defs() -> dg.Definitions:
+    """What `dagster dev -m pipelines.definitions` loads; built when loaded, not when this module is imported."""
+    return build_definitions()

@@ -54,26 +54,33 @@ def cycle_run_requests(cycle: str, classes: list[str], run_key_prefix: str) -> l
     ]
 
 
-@dg.schedule(
-    name=CYCLE_SCHEDULE,
-    job=cycle_job,
-    cron_schedule="0 6 * * 1",
-    execution_timezone="UTC",
-    default_status=dg.DefaultScheduleStatus.STOPPED,
-    description="Every Monday 06:00 UTC: the current cycle (calendar.cycle_date, by default the period after the "
-    "latest history) for every configured class, one run each. Stopped until the platform team starts it.",
-)
-def cycle_schedule(context: dg.ScheduleEvaluationContext, planning: PlanningConfigResource):
-    try:
-        config = planning.config
-        cycle = current_cycle(config)
-    except PlanningError as err:
-        return dg.SkipReason(f"no cycle started: {err}")
-    classes = list(config.product_classes)
-    start_cycle(context.instance, config, cycle, classes, by=f"schedule {CYCLE_SCHEDULE}")
-    return cycle_run_requests(
-        cycle, classes, run_key_prefix=f"schedule:{context.scheduled_execution_time:%Y-%m-%dT%H:%M}"
+def cycle_schedule_for(cron: str, period: str = "week") -> dg.ScheduleDefinition:
+    """The schedule that starts the current cycle at `cron` (UTC): `calendar.schedule`, by default the first day
+    of each period at 06:00 (Monday for weeks, the first of the month for months)."""
+
+    @dg.schedule(
+        name=CYCLE_SCHEDULE,
+        job=cycle_job,
+        cron_schedule=cron,
+        execution_timezone="UTC",
+        default_status=dg.DefaultScheduleStatus.STOPPED,
+        description=f"At cron {cron!r} (UTC; calendar.schedule, {period}ly calendar): the current cycle "
+        "(calendar.cycle_date, by default the period after the latest history) for every configured class, one run "
+        "each. Stopped until the platform team starts it.",
     )
+    def cycle_schedule(context: dg.ScheduleEvaluationContext, planning: PlanningConfigResource):
+        try:
+            config = planning.config
+            cycle = current_cycle(config)
+        except PlanningError as err:
+            return dg.SkipReason(f"no cycle started: {err}")
+        classes = list(config.product_classes)
+        start_cycle(context.instance, config, cycle, classes, by=f"schedule {CYCLE_SCHEDULE}")
+        return cycle_run_requests(
+            cycle, classes, run_key_prefix=f"schedule:{context.scheduled_execution_time:%Y-%m-%dT%H:%M}"
+        )
+
+    return cycle_schedule
 
 
 def history_signature(folder) -> dict[str, str]:

@@ -1,7 +1,7 @@
 """The partitions of the cycle: every asset is partitioned by cycle x product class.
 
 - `cycle`: the cycle date (ISO, the first period forecast), added when a cycle
-  is started (command line, schedule or sensor), so each weekly cycle's
+  is started (command line, schedule or sensor), so each cycle's
   outputs are kept side by side in the store and a past cycle can be rerun.
 - `product_class`: the classes of the planning config, added from the config
   at the same time, so a planner can rebuild one class without touching the

@@ -161,7 +161,7 @@ def run_partitions(
     all_classes: list[str] | None = None,
     selection: list[dg.AssetKey] | None = None,
     run_config: dict | None = None,
-    on_start: Callable[[int, str], None] | None = None,
+    on_start: Callable[[int, str, str], None] | None = None,
     on_done: Callable[[str, dg.ExecuteInProcessResult, float], None] | None = None,
     wait_seconds: float | None = None,
     say: Callable[[str], None] | None = print,
@@ -181,10 +181,10 @@ def run_partitions(
     job = defs.resolve_job_def(CYCLE_JOB)
     run = CycleRun(cycle=cycle)
     for i, product_class in enumerate(classes, 1):
-        if on_start:
-            on_start(i, product_class)
-        started = time.monotonic()
         run_id = str(uuid.uuid4())
+        if on_start:
+            on_start(i, product_class, run_id)
+        started = time.monotonic()
         with store.partition_lock(
             cycle, product_class, run_id=run_id, command=command, wait_seconds=wait_seconds, say=say
         ):
@@ -254,6 +254,8 @@ def _run_in_child(
 
 
 def _child_main(*args) -> None:
+    # the command's stdout is its own (the --json summary); what a child says is a diagnostic
+    sys.stdout = sys.stderr
     raise SystemExit(_run_in_child(*args))
 
 
@@ -267,7 +269,7 @@ def run_partitions_parallel(
     all_classes: list[str],
     first: str | None = None,
     run_config: dict | None = None,
-    on_start: Callable[[int, str], None] | None = None,
+    on_start: Callable[[int, str, str], None] | None = None,
     on_done: Callable[[PartitionOutcome], None] | None = None,
     wait_seconds: float | None = None,
     command: str = "cycle",
@@ -289,7 +291,7 @@ def run_partitions_parallel(
             args = (config_path, cycle, product_class, first, run_id, run_config or {}, wait_seconds, command)
             process = context.Process(target=_child_main, args=args, name=f"apportion-{product_class}")
             if on_start:
-                on_start(i, product_class)
+                on_start(i, product_class, run_id)
             process.start()
             running[product_class] = (process, run_id, time.monotonic())
         time.sleep(0.2)

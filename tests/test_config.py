@@ -217,3 +217,37 @@ def test_tsb_parameters_are_validated(tmp_path):
     with pytest.raises(ConfigError) as err:
         load_config(path)
     assert "product_classes.fast.models.tsb.alpha_d" in str(err.value)
+
+
+def test_horizon_backtest_and_schedule_follow_the_period():
+    # weekly: 26 periods ahead (half a year), backtest 13 / 13, the schedule on Monday 06:00 UTC
+    weekly = parse_config({"calendar": {"period": "week"}, **MINIMAL})
+    assert weekly.calendar.horizon == 26 and (weekly.backtest.horizon, weekly.backtest.step) == (13, 13)
+    assert weekly.calendar.schedule == "0 6 * * 1"
+    # monthly: the coming year (a full season of 12), backtest 6 / 6, the first of the month 06:00 UTC
+    monthly = parse_config({"calendar": {"period": "month"}, **MINIMAL})
+    assert monthly.calendar.horizon == 12 and (monthly.backtest.horizon, monthly.backtest.step) == (6, 6)
+    assert monthly.calendar.schedule == "0 6 1 * *"
+    assert monthly.backtest.origins == weekly.backtest.origins == 4
+    # no calendar section at all: the weekly defaults
+    bare = parse_config(MINIMAL)
+    assert (bare.calendar.period, bare.calendar.horizon, bare.backtest.horizon) == ("week", 26, 13)
+
+
+def test_explicit_horizon_backtest_and_schedule_win_over_the_period_defaults():
+    data = {
+        "calendar": {"period": "month", "horizon": 18, "schedule": "30 5 2 * *"},
+        "backtest": {"horizon": 3},
+        **MINIMAL,
+    }
+    config = parse_config(data)
+    assert config.calendar.horizon == 18 and config.calendar.schedule == "30 5 2 * *"
+    assert (config.backtest.horizon, config.backtest.step) == (3, 6)  # the step left out still follows the month
+    weekly = parse_config({"calendar": {"period": "week", "horizon": 52}, "backtest": {"step": 4}, **MINIMAL})
+    assert weekly.calendar.horizon == 52 and (weekly.backtest.horizon, weekly.backtest.step) == (13, 4)
+
+
+@pytest.mark.parametrize("cron", ["0 6 * *", "every monday", "0 6 * * MON", "0 6 * * 1 2026"])
+def test_a_schedule_that_is_not_a_cron_string_names_the_key(tmp_path, cron):
+    with pytest.raises(ConfigError, match=r"calendar\.schedule: .*not a cron string of 5 fields"):
+        load_config(write(tmp_path, {"calendar": {"schedule": cron}, **MINIMAL}))

@@ -5,6 +5,7 @@ rebuilding one asset from stored upstream tables, and a broken input stopping
 the cycle at the matching blocking check with the failing rows in its metadata.
 """
 
+import re
 import shutil
 from pathlib import Path
 
@@ -432,6 +433,9 @@ def test_parallel_runs_publish_the_cycle_once_when_the_last_class_completes(demo
     assert main(args + [a for c in ("consumables", "seasonal", "spares") for a in ("--class", c)]) == 0
     out = capsys.readouterr().out
     assert out.count("succeeded") == 3 and "INCOMPLETE" not in out
+    # the progress display followed each child process's run through the instance: its one stage, ended
+    for name in ("consumables", "seasonal", "spares"):
+        assert re.search(rf"^  {name} +1/1 publication +[\d,]+ rows +\d+\.\d s$", out, re.MULTILINE), out
     # the three classes were pending together, so the cycle was published once more, not once per class
     assert open_store(store).published("2026-11-30")["sequence"] == sequence + 1
     for name, frame in before.items():

@@ -9,7 +9,7 @@ import yaml
 
 from pipelines.definitions import build_definitions
 from pipelines.errors import ConfigError
-from pipelines.jobs import cycle_schedule, new_history_file_sensor
+from pipelines.jobs import CYCLE_SCHEDULE, new_history_file_sensor
 from pipelines.partitions import CYCLE, PRODUCT_CLASS, current_cycle, narrow_config, partition_key, split_key
 from pipelines.resources import PlanningConfigResource
 
@@ -76,16 +76,43 @@ def test_schedule_registers_the_cycle_and_requests_one_run_per_class(tmp_path):
     _history(folder, ["P,S,C,2026-11-23,1"])
     planning = PlanningConfigResource(path=_config_file(tmp_path, folder))
     with dg.instance_for_test() as instance:
-        context = dg.build_schedule_context(
+        schedule = build_definitions(planning.path).resolve_schedule_def(CYCLE_SCHEDULE)
+        # the context as a context manager: its resources and instance are released (Dagster keeps the
+        # instance's state storage in a context variable until then, which later tests would find dead)
+        with dg.build_schedule_context(
             instance=instance,
             scheduled_execution_time=dt.datetime(2026, 11, 30, 6, tzinfo=dt.timezone.utc),
             resources={"planning": planning},
             repository_def=build_definitions(planning.path).get_repository_def(),
-        )
-        requests = cycle_schedule.evaluate_tick(context).run_requests
+        ) as context:
+            requests = schedule.evaluate_tick(context).run_requests
         assert [r.partition_key for r in requests] == ["2026-11-30|fast", "2026-11-30|slow"]
         assert instance.get_dynamic_partitions(CYCLE) == ["2026-11-30"]
         assert instance.get_dynamic_partitions(PRODUCT_CLASS) == ["fast", "slow"]
+
+
+def test_the_schedule_follows_the_calendar_and_its_cron_is_configurable(tmp_path):
+    folder = tmp_path / "in"
+    _history(folder, ["P,S,C,2026-10-14,1"])
+
+    def schedule(**calendar) -> dg.ScheduleDefinition:
+        return build_definitions(_config_file(tmp_path, folder, **calendar)).resolve_schedule_def(CYCLE_SCHEDULE)
+
+    weekly, monthly = schedule(period="week"), schedule(period="month")
+    assert (weekly.cron_schedule, weekly.execution_timezone) == ("0 6 * * 1", "UTC")  # Monday 06:00 UTC
+    assert (monthly.cron_schedule, monthly.execution_timezone) == ("0 6 1 * *", "UTC")  # the 1st, 06:00 UTC
+    assert schedule(period="month", schedule="0 4 2 * *").cron_schedule == "0 4 2 * *"
+    # a monthly tick on the first of November starts the month after the latest history (October): November
+    planning = PlanningConfigResource(path=_config_file(tmp_path, folder, period="month"))
+    with dg.instance_for_test() as instance:
+        with dg.build_schedule_context(
+            instance=instance,
+            scheduled_execution_time=dt.datetime(2026, 11, 1, 6, tzinfo=dt.timezone.utc),
+            resources={"planning": planning},
+            repository_def=build_definitions(planning.path).get_repository_def(),
+        ) as context:
+            requests = monthly.evaluate_tick(context).run_requests
+        assert [r.partition_key for r in requests] == ["2026-11-01|fast", "2026-11-01|slow"]
 
 
 def test_sensor_starts_a_cycle_when_a_history_file_is_new_or_changed(tmp_path):

@@ -54,6 +54,17 @@ class BaseForecasts:
     leaf_fitted: np.ndarray | None = None
 
 
+def series_to_fit(parent_class: np.ndarray, child_class: np.ndarray, strategies: dict[str, str]) -> int:
+    """How many series `base_forecasts` fits: the parents and children of each class whose strategy needs
+    that grain (the total its `progress` counts to)."""
+    count = 0
+    for need, classes in ((NEEDS_PARENT, parent_class), (NEEDS_LEAF, child_class)):
+        for name, strategy in strategies.items():
+            if strategy in need:
+                count += int((classes == name).sum())
+    return count
+
+
 def base_forecasts(
     p_grid: SeriesGrid,
     c_grid: SeriesGrid,
@@ -63,12 +74,13 @@ def base_forecasts(
     models: ModelSettings,
     horizon: int,
     log: Callable[[str], None] | None = None,
+    progress: Callable[[int], None] | None = None,
 ) -> BaseForecasts:
     """Run the class's models at the grains its strategy needs (`pipelines.engines.hierarchy`).
 
     `strategies` maps product class -> strategy; for several strategies at
     once (the backtest) pass `mint_shrink`, which needs both grains and the
-    residuals.
+    residuals. `progress(n)`: n more series fitted (`series_to_fit` in all).
     """
     period = models.period
     out = {}
@@ -89,7 +101,7 @@ def base_forecasts(
             names, season = assign_models(demand[members], length[members], choice, period)
             res = run_model_groups(
                 _subgrid(grid, members), names, season, horizon, log=log, tsb=choice.tsb,
-                fitted=strategy in NEEDS_RESIDUALS, n_jobs=models.n_jobs,
+                fitted=strategy in NEEDS_RESIDUALS, n_jobs=models.n_jobs, progress=progress,
             )
             fc[members] = res.forecast
             fitted[members[grid.series]] = res.fitted

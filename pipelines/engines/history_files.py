@@ -24,7 +24,7 @@ stray line cannot move the cycle:
    isolated (repeatedly, from each end).
 2. At the end, a period with fewer than 10% of the median lines per period is
    dropped while the lines dropped at that end stay within the same 1% (a
-   stray line a week after the last complete week).
+   stray line a period after the last complete period).
 
 The lines it ignores are reported (`CycleDateChoice.describe`) and, in the
 cycle, rejected with their reason (`isolated_date`, `date_after_window` or

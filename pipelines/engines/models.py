@@ -216,6 +216,7 @@ def run_model_groups(
     tsb: TSBConfig | None = None,
     fitted: bool = False,
     n_jobs: int = 1,
+    progress: Callable[[int], None] | None = None,
 ) -> ModelRun:
     """Forecasts (and, with `fitted`, in-sample fitted values) of every series, one statsforecast call per
     (model, season) group.
@@ -223,7 +224,8 @@ def run_model_groups(
     ETS groups go through `fit`/`predict` so the chosen component string and
     smoothing parameters can be read back; the other groups use the
     memory-efficient `forecast`. A model that fails on a series falls back to
-    the naive forecast.
+    the naive forecast. `progress(n)` is told after each group how many of the
+    grid's series it finished (every series once, the all-zero ones included).
     """
     fc = np.zeros((grid.n_series, horizon))
     fit_values = np.full(len(grid.y), np.nan)
@@ -234,6 +236,8 @@ def run_model_groups(
         ids = np.asarray(idx)
         labels[ids] = model_label(name, int(s))
         if name == "zero":
+            if progress:
+                progress(len(ids))
             continue
         rows = np.isin(grid.series, ids)
         df = pd.DataFrame({"unique_id": grid.series[rows], "ds": grid.ordinal[rows], "y": grid.y[rows]})
@@ -270,5 +274,7 @@ def run_model_groups(
             log(f"{model_label(name, int(s))}: {len(ids)} series in {time.perf_counter() - started:.1f} s")
         values = out.iloc[:, 2].to_numpy(float).reshape(-1, horizon)
         fc[out["unique_id"].to_numpy()[::horizon]] = values
+        if progress:
+            progress(len(ids))
     return ModelRun(forecast=fc, fitted=fit_values, parameters=parameters, label=labels)
 

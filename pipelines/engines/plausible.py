@@ -13,7 +13,7 @@ no stage and no Dagster):
   With `trim_end`, a last period with fewer than SPARSE_PERIOD_SHARE of the
   median lines per period is dropped too, while the lines dropped at that end
   stay within the same bound. So one line dated 1900 or 2099, or a stray line
-  in the week after the last complete week, neither moves the cycle date nor
+  in the period after the last complete period, neither moves the cycle date nor
   stretches the history. The shares (1%, 10%) are common practice, no source.
 """
 

@@ -52,7 +52,7 @@ from pipelines.config_sections import BacktestConfig
 from pipelines.config_selection import SelectionConfig
 from pipelines.engines.accuracy import mase_scale
 from pipelines.engines.backtest_scores import CLEANED, RAW, Scales, ScoreBook
-from pipelines.engines.base_forecasts import base_forecasts
+from pipelines.engines.base_forecasts import base_forecasts, series_to_fit
 from pipelines.engines.children import active_children
 from pipelines.engines.forecast_comparison import StabilityRule
 from pipelines.engines.hierarchy import NEEDS_RESIDUALS, coherent_forecasts, parent_sums
@@ -64,6 +64,7 @@ from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.share_tuning import candidate_name, candidate_settings, class_candidates, decide
 from pipelines.engines.shares import compute_shares
 from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
+from pipelines.progress import SeriesProgress
 from pipelines.results import CheckRows, Log, StageResult, quiet
 from pipelines.vocabulary import AUTO, BENCHMARK
 
@@ -120,12 +121,12 @@ def _dense(code: np.ndarray, ords: np.ndarray, qty: np.ndarray, n: int, start: i
     return flat.reshape(n, width)
 
 
-def _seasonal_naive(grid, horizon: int, period: str, log) -> np.ndarray:
+def _seasonal_naive(grid, horizon: int, period: str, log, progress=None) -> np.ndarray:
     sl = season_length(period)
     length = np.bincount(grid.series, minlength=grid.n_series)
     names = np.where(length > 0, "seasonal_naive", "zero").astype(object)
     season = np.where(length >= sl, sl, 1)
-    return np.clip(run_model_groups(grid, names, season, horizon, log=log).forecast, 0, None)
+    return np.clip(run_model_groups(grid, names, season, horizon, log=log, progress=progress).forecast, 0, None)
 
 
 def _scales(grid, cls: np.ndarray, settings: BacktestSettings, h: int) -> Scales:
@@ -200,6 +201,10 @@ def run_backtest(
     demand = np.full(n_children, "", dtype=object)
     cls = {"leaf": c_cls, "parent": p_cls}
     driver = "mint_shrink" if any(s in NEEDS_RESIDUALS for s in strategies) else "forecast_proportions"
+    drivers = {c: driver for c in classes}
+    # each origin: the base forecasts, then seasonal naive on every parent and child
+    per_origin = series_to_fit(parent_class, child_class, drivers) + n_parents + n_children
+    fits = SeriesProgress(len(origins) * per_origin, log)
     for k, o in enumerate(origins):
         origin_date = ordinal_to_start(np.array([o]), period)[0]
         if log:
@@ -211,7 +216,7 @@ def run_backtest(
         p_grid = series_grid(pcode, ords, seen, n_parents, o)
         c_grid = series_grid(ccode, ords, seen, n_children, o)
         demand = demand_classes(c_grid)[0]
-        base = base_forecasts(p_grid, c_grid, parent_class, child_class, {c: driver for c in classes}, models, h, log)
+        base = base_forecasts(p_grid, c_grid, parent_class, child_class, drivers, models, h, log, fits.advance)
         as_seen_qty = history["quantity"].to_numpy(float).copy()
         as_seen_qty[ok] = seen
         as_seen = history.assign(quantity=as_seen_qty)  # the share tables as the origin would have made them
@@ -223,7 +228,10 @@ def run_backtest(
         scales = {
             "leaf": _scales(c_grid, child_class, settings, h), "parent": _scales(p_grid, parent_class, settings, h)
         }
-        bench = {"parent": _seasonal_naive(p_grid, h, period, log), "leaf": _seasonal_naive(c_grid, h, period, log)}
+        bench = {
+            "parent": _seasonal_naive(p_grid, h, period, log, fits.advance),
+            "leaf": _seasonal_naive(c_grid, h, period, log, fits.advance),
+        }
         for grain, f in bench.items():
             book.add(k, BENCHMARK, grain, f, actual[grain], cls[grain], scales[grain])
         bases: dict[str, np.ndarray] = {}

@@ -54,7 +54,7 @@ import pandas as pd
 
 from pipelines.calendar import horizon_starts, period_ordinal
 from pipelines.checks import NO_NEGATIVE_FORECAST, NO_VOLUME_AFTER_PHASE_OUT, NO_VOLUME_OUTSIDE_ACTIVE_SPAN
-from pipelines.engines.base_forecasts import base_forecasts
+from pipelines.engines.base_forecasts import base_forecasts, series_to_fit
 from pipelines.engines.forecast_frames import (
     active_matrix,
     combine_strategies,
@@ -68,6 +68,7 @@ from pipelines.engines.models import ModelSettings, series_grid
 from pipelines.engines.proofs import find_negative, find_volume_after_phase_out, find_volume_outside_active_span
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
+from pipelines.progress import SeriesProgress
 from pipelines.results import CheckRows, Log, StageResult, quiet
 from pipelines.vocabulary import AUTO, Basis, ModelGrain, Strategy, ZeroReason, values
 
@@ -192,9 +193,10 @@ def forecast_cycle(
     c_code = lookup(history, LEAF, children)
     okc = c_code >= 0
     c_grid = series_grid(c_code[okc], ords[okc], qty[okc], n_children, cycle_ord)
+    parent_class, child_class = parents["product_class"].to_numpy(), children["product_class"].to_numpy()
+    fits = SeriesProgress(series_to_fit(parent_class, child_class, strategies), log)
     base = base_forecasts(
-        p_grid, c_grid, parents["product_class"].to_numpy(), children["product_class"].to_numpy(), strategies,
-        settings.models, horizon, log,
+        p_grid, c_grid, parent_class, child_class, strategies, settings.models, horizon, log, progress=fits.advance
     )
 
     # top-down basis: the reinitialized target (the period's share where the targets are all 0)
