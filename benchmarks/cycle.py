@@ -81,7 +81,17 @@ for path in (ROOT, ROOT / "benchmarks"):
         sys.path.insert(0, str(path))
 
 import statsforecast  # noqa: E402
-from cycle_measure import HEADER, UNITS, Bench, git_commit, pa_version, patch_statsforecast, total_line, warm_up  # noqa: E402
+from cycle_measure import (  # noqa: E402
+    HEADER,
+    UNITS,
+    Bench,
+    git_commit,
+    load_average,
+    pa_version,
+    patch_statsforecast,
+    total_line,
+    warm_up,
+)
 from cycle_scenario import CLASSES, SHARE_METHODS, SMOOTHING, Scenario, generate, make_config  # noqa: E402
 
 from assets.factory import Partition, graph_order  # noqa: E402
@@ -114,6 +124,7 @@ def run_cycle(args: argparse.Namespace) -> dict:
     last = max(STAGES.index(s) for s in stages)  # earlier stages feed the last one, so they run too
     todo = [s for s in STAGES[: last + 1] if s != "backtest" or "backtest" in stages]
 
+    args.load_at_start = load_average()
     if args.trace == "inline":
         tracemalloc.start()
     bench = Bench(trace=args.trace, sample_ms=args.rss_sample_ms)
@@ -272,12 +283,16 @@ def finish(bench: Bench, args: argparse.Namespace, scen: Scenario) -> dict:
     print("-" * len(HEADER))
     print(line)
     print("scenario: " + ", ".join(f"{k} {v:,}" for k, v in scen.facts.items()))
+    load = {"start": args.load_at_start, "end": load_average()}
+    print("load average (1 / 5 / 15 min), start and end: " + "; ".join(
+        f"{v['load_1m']:.2f} / {v['load_5m']:.2f} / {v['load_15m']:.2f} at {v['at']}" for v in load.values()))
     result = {
-        "parameters": {k: v for k, v in vars(args).items()},
+        "parameters": {k: v for k, v in vars(args).items() if k != "load_at_start"},
         "scenario": scen.facts,
         "steps": [asdict(s) for s in bench.steps],
         "statsforecast_calls": [asdict(c) for c in bench.sf_calls],
         "total": total,
+        "load": load,
         "versions": {
             "python": sys.version.split()[0],
             "pandas": pd.__version__,
