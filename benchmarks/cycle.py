@@ -93,6 +93,7 @@ from cycle_measure import (  # noqa: E402
     warm_up,
 )
 from cycle_scenario import CLASSES, SHARE_METHODS, SMOOTHING, Scenario, generate, make_config  # noqa: E402
+from side_by_side import compare  # noqa: E402
 
 from assets.factory import Partition, graph_order  # noqa: E402
 from pipelines import definitions  # noqa: E402, F401  (makes every stage asset, so SPECS holds them all)
@@ -131,7 +132,7 @@ def run_cycle(args: argparse.Namespace) -> dict:
     patch_statsforecast(bench)
     config = make_config(args.periods, args.horizon, args.seasonal, args.leaf_grain, args.shortage_rule,
                          seasonal_model=args.seasonal_model, class_outliers=not args.default_outliers,
-                         share_method=args.share_method)
+                         share_method=args.share_method, n_jobs=args.n_jobs)
     print(
         f"apportion cycle benchmark: {args.leaves:,} leaves, seed {args.seed}, {args.periods} weekly periods, horizon "
         f"{args.horizon}, seasonal={args.seasonal_model if args.seasonal else 'off'}, leaf "
@@ -185,7 +186,8 @@ def run_cycle(args: argparse.Namespace) -> dict:
             tables[table.name] = validate(bench, args, table.name, frame)
             store(bench, con, table.name, tables[table.name])
     scen.facts["raw_lines"] = len(tables["raw_history"])
-    out = finish(bench, args, scen)
+    compared = compare(bench.steps, args, tables, config) if "reconcile" in todo else {}
+    out = finish(bench, args, scen, compared)
     tmp.cleanup()
     return out
 
@@ -278,7 +280,7 @@ def store(bench: Bench, con, table: str, frame: pd.DataFrame) -> None:
     bench.run(f"  store {table}", write, rows_in=len(frame), trace=False)
 
 
-def finish(bench: Bench, args: argparse.Namespace, scen: Scenario) -> dict:
+def finish(bench: Bench, args: argparse.Namespace, scen: Scenario, compared: dict) -> dict:
     line, total = total_line(bench.steps)
     print("-" * len(HEADER))
     print(line)
@@ -293,6 +295,7 @@ def finish(bench: Bench, args: argparse.Namespace, scen: Scenario) -> dict:
         "statsforecast_calls": [asdict(c) for c in bench.sf_calls],
         "total": total,
         "load": load,
+        **compared,
         "versions": {
             "python": sys.version.split()[0],
             "pandas": pd.__version__,
@@ -378,6 +381,8 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
         default=10.0,
         help="RSS sampling interval for the 'rss pk' column; 0 = off (default 10)",
     )
+    p.add_argument("--n-jobs", type=int, default=-1, help="execution.n_jobs: statsforecast processes (-1 = every core)")
+    p.add_argument("--no-side-by-side", action="store_true", help="skip the plain DuckDB and numpy versions")
     p.add_argument("--json", default=None, metavar="PATH", help="write the figures as JSON")
     args = p.parse_args(argv)
     if args.leaves < 1 or args.periods < 8 or args.horizon < 1:
