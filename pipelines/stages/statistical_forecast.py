@@ -52,11 +52,19 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal
+from pipelines.calendar import horizon_starts, period_ordinal
 from pipelines.checks import NO_NEGATIVE_FORECAST, NO_VOLUME_AFTER_PHASE_OUT, NO_VOLUME_OUTSIDE_ACTIVE_SPAN
-from pipelines.engines.base_forecasts import BaseForecasts, base_forecasts
-from pipelines.engines.hierarchy import Coherent, coherent, parent_sums
-from pipelines.engines.models import ModelSettings, SeriesGrid, series_grid
+from pipelines.engines.base_forecasts import base_forecasts
+from pipelines.engines.forecast_frames import (
+    active_matrix,
+    combine_strategies,
+    fitted_frame,
+    leaf_matrix,
+    model_keys,
+    parent_reasons,
+)
+from pipelines.engines.hierarchy import parent_sums
+from pipelines.engines.models import ModelSettings, series_grid
 from pipelines.engines.proofs import find_negative, find_volume_after_phase_out, find_volume_outside_active_span
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
@@ -150,38 +158,6 @@ def strategy_by_class(settings: ForecastSettings, chosen: dict[str, str] | None 
     return out
 
 
-def combine_strategies(
-    strategy_of_parent: np.ndarray,
-    base: BaseForecasts,
-    parent_of_child: np.ndarray,
-    basis: np.ndarray,
-    active: np.ndarray | None = None,
-) -> Coherent:
-    """Each parent made coherent by its own strategy, on its active children (`hierarchy.coherent`)."""
-    parent = np.zeros_like(base.parent_fc)
-    leaf = np.zeros_like(base.leaf_fc)
-    moved = np.zeros_like(base.parent_fc)
-    source = np.empty(leaf.shape, dtype=object)
-    negatives = 0
-    for strategy in pd.unique(strategy_of_parent):  # a handful of strategies, not a loop over series
-        ps = strategy_of_parent == strategy
-        cs = ps[parent_of_child]
-        remap = np.cumsum(ps) - 1
-        out = coherent(
-            strategy,
-            base.parent_fc[ps],
-            base.leaf_fc[cs],
-            remap[parent_of_child[cs]],
-            basis[cs],
-            None if base.parent_res is None else base.parent_res[ps],
-            None if base.leaf_res is None else base.leaf_res[cs],
-            None if active is None else active[cs],
-        )
-        parent[ps], leaf[cs], source[cs], moved[ps] = out.parent, out.leaf, out.source, out.moved
-        negatives += out.negatives
-    return Coherent(parent, leaf, source, negatives, moved)
-
-
 def forecast_cycle(
     history: pd.DataFrame,
     children: pd.DataFrame,
@@ -222,8 +198,8 @@ def forecast_cycle(
     )
 
     # top-down basis: the reinitialized target (the period's share where the targets are all 0)
-    target_m = _leaf_matrix(target, children, "target", starts)
-    share_m = _leaf_matrix(target, children, "share", starts)
+    target_m = leaf_matrix(target, children, "target", starts)
+    share_m = leaf_matrix(target, children, "share", starts)
     target_sum = np.zeros((n_parents, horizon))
     np.add.at(target_sum, parent_of_child, target_m)
     use_target = target_sum[parent_of_child] > 0
@@ -231,7 +207,7 @@ def forecast_cycle(
 
     strategy_of_parent = parents["product_class"].map(strategies).to_numpy()
     # each strategy works on the children active in the period: an inactive child takes no volume
-    active = _active_matrix(children, starts, period)
+    active = active_matrix(children, starts, period)
     made = combine_strategies(strategy_of_parent, base, parent_of_child, basis, active)
     strategy_fc, leaf_fc = made.parent, made.leaf
     basis = np.where(
@@ -242,7 +218,7 @@ def forecast_cycle(
     # parent: no child holds a share; otherwise: no child is active, or none took any of the volume).
     # Every other parent period keeps the strategy's value, and its leaves must sum to it (the check
     # children_sum_to_parent compares them with strategy_forecast, never with a sum of the leaves)
-    zero_reason = _parent_reasons(target, parents, starts)
+    zero_reason = parent_reasons(target, parents, starts)
     no_active_child = np.isin(zero_reason, [ZeroReason.PRODUCT_NOT_ACTIVE, ZeroReason.NO_ACTIVE_CHILD])
     carried = parent_sums(np.abs(leaf_fc), parent_of_child, n_parents) > 0
     zeroed = pd.notna(zero_reason) & (
@@ -278,18 +254,11 @@ def forecast_cycle(
     leaf_out["parent_forecast"] = parent_fc[parent_of_child].ravel()
     leaf_out["basis"] = basis.ravel()
 
-    models = base.models
-    is_parent = (models["grain"] == "parent").to_numpy()
-    keys = pd.concat(
-        [parents.iloc[models["series"].to_numpy()[is_parent]][PARENT + ["product_class"]].assign(customer=""),
-         children.iloc[models["series"].to_numpy()[~is_parent]][LEAF + ["product_class"]]],
-        ignore_index=True,
-    )
-    models = pd.concat([models.drop(columns="series").reset_index(drop=True), keys], axis=1)
+    models = model_keys(base.models, parents, children)
     models.insert(0, "cycle_date", cycle_date)
     fitted = pd.concat(
-        [_fitted_frame(p_grid, base.parent_fitted, parents.assign(customer=""), "parent", period),
-         _fitted_frame(c_grid, base.leaf_fitted, children, "leaf", period)],
+        [fitted_frame(p_grid, base.parent_fitted, parents.assign(customer=""), "parent", period),
+         fitted_frame(c_grid, base.leaf_fitted, children, "leaf", period)],
         ignore_index=True,
     )
     fitted.insert(0, "cycle_date", cycle_date)
@@ -306,57 +275,6 @@ def forecast_cycle(
         models=models[MODEL_COLUMNS],
         fitted=fitted[FITTED_COLUMNS],
     )
-
-
-def _fitted_frame(
-    grid: SeriesGrid, fitted: np.ndarray | None, keys: pd.DataFrame, grain: str, period: str
-) -> pd.DataFrame:
-    """Long frame of the grid rows that have a fitted value: keys, period_start, actual, fitted."""
-    if fitted is None:
-        fitted = np.full(len(grid.y), np.nan)
-    ok = np.isfinite(fitted)
-    out = keys.iloc[grid.series[ok]][LEAF].reset_index(drop=True)
-    out.insert(0, "grain", grain)
-    out["product_class"] = keys["product_class"].to_numpy()[grid.series[ok]]
-    out["period_start"] = ordinal_to_start(grid.ordinal[ok], period)
-    out["actual"] = grid.y[ok]
-    out["fitted"] = fitted[ok]
-    return out
-
-
-def _active_matrix(children: pd.DataFrame, starts: pd.DatetimeIndex, period: str) -> np.ndarray:
-    """(n_children, horizon) bool: the child is active in the period (all True without the span columns)."""
-    if not {"first_active_period", "last_active_period"} <= set(children.columns):
-        return np.ones((len(children), len(starts)), dtype=bool)
-    h = period_ordinal(starts, period)[None, :]
-    first = period_ordinal(pd.DatetimeIndex(children["first_active_period"]), period)[:, None]
-    last = period_ordinal(pd.DatetimeIndex(children["last_active_period"]), period)[:, None]
-    return (h >= first) & (h <= last)
-
-
-def _parent_reasons(target: pd.DataFrame, parents: pd.DataFrame, starts: pd.DatetimeIndex) -> np.ndarray:
-    """(n_parents, horizon) zero_reason of each parent period (None where its shares sum to 1)."""
-    out = np.full((len(parents), len(starts)), None, dtype=object)
-    if target.empty or "zero_reason" not in target.columns:
-        return out
-    rows = target[target["zero_reason"].notna()]
-    row = lookup(rows, PARENT, parents)
-    col = pd.DatetimeIndex(starts).get_indexer(pd.DatetimeIndex(rows["period_start"]))
-    ok = (row >= 0) & (col >= 0)
-    out[row[ok], col[ok]] = rows["zero_reason"].to_numpy(object)[ok]
-    return out
-
-
-def _leaf_matrix(frame: pd.DataFrame, children: pd.DataFrame, column: str, starts: pd.DatetimeIndex) -> np.ndarray:
-    """(n_children, horizon) matrix of `column` from a long leaf x period frame (0 where absent)."""
-    out = np.zeros((len(children), len(starts)))
-    if frame.empty:
-        return out
-    row = lookup(frame, LEAF, children)
-    col = pd.DatetimeIndex(starts).get_indexer(pd.DatetimeIndex(frame["period_start"]))
-    ok = (row >= 0) & (col >= 0)
-    out[row[ok], col[ok]] = frame[column].to_numpy(float)[ok]
-    return out
 
 
 def run(
