@@ -1,19 +1,52 @@
-"""Asset `backtest_accuracy`: rolling-origin accuracy of every strategy at both grains."""
+"""Assets `backtest_accuracy`, `backtest_losses`, `share_tuning`: rolling-origin accuracy of every strategy at both
+grains, their per-period losses, and every share window x method candidate's split accuracy with the choice."""
 
-from assets.factory import StageAsset, Table, stage_asset
+from pathlib import Path
+
+from assets.factory import Partition, StageAsset, Table, stage_asset
+from pipelines.resources import previous_cycle, read_table
 from pipelines.stages import backtest_accuracy as stage
 
 BACKTEST_ACCURACY = "backtest_accuracy"
+BACKTEST_LOSSES = "backtest_losses"
+SHARE_TUNING = "share_tuning"
+
+
+def previous_tuning(part: Partition) -> dict:
+    """The share_tuning of the class's latest completed cycle before this one (None for its first cycle)."""
+    store = Path(part.config.store.path)
+    before = previous_cycle(store, SHARE_TUNING, part.cycle, part.product_class)
+    previous = (
+        read_table(store, SHARE_TUNING, cycle=before, product_class=part.product_class, versions="complete")
+        if before
+        else None
+    )
+    return {"previous_tuning": previous}
+
 
 backtest_accuracy = stage_asset(StageAsset(
-    tables=(Table(
-        BACKTEST_ACCURACY,
-        "Rolling-origin backtest per product class: WMAPE, bias, MASE and value added over seasonal naive "
-        "of each strategy at leaf and parent grain.",
-        frozenset({"pandas", "duckdb", "statsforecast"}),
-    ),),
+    tables=(
+        Table(
+            BACKTEST_ACCURACY,
+            "Rolling-origin backtest per product class: WMAPE, bias, MASE, RMSSE and value added over seasonal "
+            "naive of each strategy at leaf and parent grain, against raw actuals (value) and cleaned ones "
+            "(value_cleaned), and the metric the class is judged by.",
+            frozenset({"pandas", "duckdb", "statsforecast"}),
+        ),
+        Table(
+            BACKTEST_LOSSES,
+            "Leaf-grain loss of each class and strategy in every backtest period (origin x step): the inputs of "
+            "the Diebold-Mariano test that keeps last cycle's strategy unless a challenger wins clearly.",
+        ),
+        Table(
+            SHARE_TUNING,
+            "Every share window x method candidate's leaf accuracy of the top-down split per class, the best and "
+            "the choice the share tables follow (window: auto / method: auto), with its reason.",
+        ),
+    ),
     run=stage.run,
     settings=lambda part: stage.BacktestSettings.of(part.config),
     group="forecast",
-    ins=("lifecycle_history", "share_tables", "cycle_calendar"),
+    ins=("lifecycle_history", "cleaned_history", "products", "customer_spans", "cycle_calendar"),
+    read=previous_tuning,
 ))

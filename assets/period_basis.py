@@ -16,5 +16,5 @@ period_basis = stage_asset(StageAsset(
     run=stage.run,
     settings=lambda part: ShareSettings.of(part.config),
     group="shares",
-    ins=("share_tables", "lifecycle_history", "cycle_calendar"),
+    ins=("share_tables", "lifecycle_history", "cycle_calendar", "share_tuning"),
 ))

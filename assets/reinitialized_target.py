@@ -15,5 +15,5 @@ reinitialized_target = stage_asset(StageAsset(
     run=stage.run,
     settings=lambda part: ShareSettings.of(part.config),
     group="shares",
-    ins=("share_tables", "period_basis", "lifecycle_history", "products", "cycle_calendar"),
+    ins=("share_tables", "period_basis", "lifecycle_history", "products", "cycle_calendar", "share_tuning"),
 ))

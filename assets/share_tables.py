@@ -14,5 +14,5 @@ share_tables = stage_asset(StageAsset(
     run=stage.run,
     settings=lambda part: stage.ShareTableSettings.of(part.config),
     group="shares",
-    ins=("lifecycle_history", "products", "customer_spans", "cycle_calendar"),
+    ins=("lifecycle_history", "products", "customer_spans", "cycle_calendar", "share_tuning"),
 ))

@@ -163,9 +163,8 @@ def run_cycle(args: argparse.Namespace) -> dict:
     config.check_classes_known(set(scen.products["product_class"]), where="benchmark products")
     tables = inputs(bench, scen, args)
     # without the backtest step: no accuracy, so no choice (none of the benchmark's classes is `auto`)
-    tables["backtest_accuracy"] = pd.DataFrame(
-        {c: pd.Series(dtype=object) for c in MODELS["backtest_accuracy"].to_schema().columns}
-    )
+    for name in ("backtest_accuracy", "backtest_losses", "share_tuning"):  # so the share tables follow the config
+        tables[name] = pd.DataFrame({c: pd.Series(dtype=object) for c in MODELS[name].to_schema().columns})
     for name, frame in tables.items():
         store(bench, con, name, frame)
     part = Partition(config, config, "2026-11-30", CLASSES[0])  # every class at once; the report runs per class

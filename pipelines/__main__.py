@@ -7,6 +7,7 @@ python -m pipelines summary [--config ...] [--cycle YYYY-MM-DD]   # a stored cyc
 python -m pipelines explain PRODUCT SITE CUSTOMER [--period P] [--cycle C]   # how a leaf value was made
 python -m pipelines report [--cycle C]             # the cycle's HTML page again
 python -m pipelines views                          # the DuckDB views over the published cycles again
+python -m pipelines export --cycle C [--class K] --format parquet|csv --to DIR   # a published cycle as files
 python -m pipelines demo-data [--out data/demo]   # regenerate the bundled demo files
 """
 
@@ -16,6 +17,7 @@ import argparse
 import sys
 from pathlib import Path
 
+from pipelines import export
 from pipelines.config import LATEST_COMPLETE_PERIOD
 from pipelines.errors import ConfigError, PlanningError
 from pipelines.summary import print_summary
@@ -321,6 +323,7 @@ def main(argv: list[str] | None = None) -> int:
         "views", help="write the DuckDB views over the published cycles again (<store>/published.duckdb)"
     )
     config_arg(p)
+    export.add_parser(sub, config_arg)
     p = sub.add_parser("demo-data", help="regenerate the bundled demo input files")
     p.add_argument("--out", default="data/demo")
     p.add_argument("--seed", type=int, default=None)
@@ -360,6 +363,8 @@ def main(argv: list[str] | None = None) -> int:
         if args.command == "summary":
             print_summary(args.config, cycle=args.cycle)
             return 0
+        if args.command == "export":
+            return export.command(args)
         from pipelines import demo_data
 
         demo_data.main(["--out", args.out] + (["--seed", str(args.seed)] if args.seed is not None else []))

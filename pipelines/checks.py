@@ -42,6 +42,7 @@ FALLBACK_SHARE_WITHIN_LIMIT = "fallback_share_within_limit"
 SHARES_SUM_TO_ONE = "shares_sum_to_one"
 SHARE_DRIFT_WITHIN_LIMIT = "share_drift_within_limit"
 CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE = "chosen_strategy_beats_seasonal_naive"
+SHARE_CHOICE_NEAR_BEST = "share_choice_near_best"
 NO_VOLUME_AFTER_PHASE_OUT = "no_volume_after_phase_out"
 NO_VOLUME_OUTSIDE_ACTIVE_SPAN = "no_volume_outside_active_span"
 NO_NEGATIVE_FORECAST = "no_negative_forecast"
@@ -134,6 +135,16 @@ CHECKS: tuple[Check, ...] = (
         "Warns when a product class's strategy (the backtest's choice for `auto`, else the configured one) has a "
         "higher leaf-grain backtest WMAPE than seasonal naive. When it fires, the listed classes' models add no value "
         "over the benchmark: review their models, or the history the backtest saw.",
+    ),
+    Check(
+        SHARE_CHOICE_NEAR_BEST,
+        "share_tuning",
+        False,
+        "Warns when a class with a fixed share window and method splits worse in the backtest than the best "
+        "candidate of selection.share_tuning by more than selection.share_tuning.max_gain (relative, on the class's "
+        "selection metric), listing its candidates with the best one. When it fires, consider the best window and "
+        "method shown (or window: auto / method: auto); a fixed choice may still be right for reasons the backtest "
+        "does not see (a known change of mix).",
     ),
     Check(
         NO_VOLUME_AFTER_PHASE_OUT,

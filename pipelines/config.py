@@ -30,8 +30,9 @@ from pipelines.config_sections import (
     ProductClassConfig,
     ShareBasisConfig,
 )
-from pipelines.errors import ConfigError
-from pipelines.vocabulary import FORECAST_GRAIN_STRATEGY, RENAMED_SHARE_METHODS, PeriodKind
+from pipelines.config_selection import SelectionConfig
+from pipelines.errors import ConfigError, hide_passwords
+from pipelines.vocabulary import AUTO, FORECAST_GRAIN_STRATEGY, RENAMED_SHARE_METHODS, PeriodKind
 
 LATEST_COMPLETE_PERIOD = "latest_complete_period"
 
@@ -73,6 +74,7 @@ class PlanningConfig(Frozen):
     lifecycle: LifecycleConfig = LifecycleConfig()
     product_classes: dict[str, ProductClassConfig] = Field(min_length=1)
     backtest: BacktestConfig = BacktestConfig()
+    selection: SelectionConfig = SelectionConfig()
     monitoring: MonitoringConfig = MonitoringConfig()
     share_bases: dict[str, ShareBasisConfig] = Field(
         default_factory=dict, description="named share tables that pro_rata measures may use as basis"
@@ -144,7 +146,11 @@ class PlanningConfig(Frozen):
         keeps = int(self.inputs.plausible.years_before_cycle * per_year)
         reach = self.backtest.horizon + (self.backtest.origins - 1) * self.backtest.step
         classes = self.product_classes.items()
-        windows = [(f"product_classes.{n}", max((c.window, *c.fallback_windows))) for n, c in classes]
+        tried = max(self.selection.share_tuning.windows)  # window: auto tries every candidate
+        windows = [
+            (f"product_classes.{n}", max((tried if c.window == AUTO else c.window, *c.fallback_windows)))
+            for n, c in classes
+        ]
         windows += [(f"share_bases.{n}", max((b.window, *b.fallback_windows))) for n, b in self.share_bases.items()]
         windows += [("backtest", reach)]
         for key, periods in windows:
@@ -158,7 +164,8 @@ class PlanningConfig(Frozen):
 
     def class_windows(self) -> dict[str, int]:
         """key -> window of every product class (not the fallback windows)."""
-        return {f"product_classes.{name}.window": pc.window for name, pc in self.product_classes.items()}
+        # a window: auto class only takes the candidates that fit (pipelines.engines.share_tuning)
+        return {f"product_classes.{n}.window": pc.window for n, pc in self.product_classes.items() if pc.window != AUTO}
 
     def basis_windows(self) -> dict[str, int]:
         """key -> window of every share basis (not the fallback windows)."""
@@ -219,7 +226,7 @@ def _format_error(source: Path, err: ValidationError) -> str:
             msg = "required key is missing"
         lines.append(f"  - {key}: {msg} (got {e.get('input')!r})" if e["type"] != "missing" else f"  - {key}: {msg}")
     lines.append("Fix these keys in the file and run again.")
-    return "\n".join(lines)
+    return hide_passwords("\n".join(lines))
 
 
 class ConfigDeprecationWarning(FutureWarning):

@@ -7,7 +7,7 @@ and read from YAML in `pipelines.config`.
 
 from __future__ import annotations
 
-from typing import Literal
+from typing import Annotated, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationInfo, field_validator, model_validator
 
@@ -135,8 +135,9 @@ class ModelChoice(Frozen):
 
 
 class ProductClassConfig(Frozen):
-    window: int = Field(ge=1, description="history window of the share table, in periods")
-    method: ShareMethod = "pooled"
+    # auto: chosen by the backtest from selection.share_tuning's candidates (pipelines/engines/share_tuning.py)
+    window: Annotated[int, Field(ge=1)] | Literal[AUTO] = Field(description="share table's history window, periods")
+    method: Literal[values(ShareMethod) + (AUTO,)] = "pooled"
     fallback_windows: tuple[int, ...] = Field(
         (),
         description="longer windows tried in order when a parent has no volume in its window; "
@@ -171,7 +172,7 @@ class ProductClassConfig(Frozen):
 
     @model_validator(mode="after")
     def _fallbacks_grow(self) -> ProductClassConfig:
-        previous = self.window
+        previous = 0 if self.window == AUTO else self.window
         for w in self.fallback_windows:
             if w <= previous:
                 raise ValueError(
@@ -200,7 +201,7 @@ class ProductClassConfig(Frozen):
         # a key of another method is refused rather than ignored: it would otherwise look like it acts
         owners = {"smoothing": "smoothed", "seasonal_years": "seasonal", "seasonal_band": "seasonal"}
         for key, method in owners.items():
-            if getattr(self, key) is not None and self.method != method:
+            if getattr(self, key) is not None and self.method not in (method, AUTO):
                 raise ValueError(
                     f"{key} applies only to method {method!r}, but method is {self.method!r}; "
                     f"remove {key} or set method: {method}"

@@ -123,6 +123,7 @@ def write_cycle_report(config: PlanningConfig, instance: dg.DagsterInstance, cyc
         ],
         parent_forecast=table("parent_forecast"),
         strategy_choice=choice,
+        share_tuning=table("share_tuning"),
         rejected_rows=table("rejected_rows"),
         movers=drift[report_html.MOVER_COLUMNS] if drift is not None and len(drift) else None,
         charts={c: names for c, names in charts.items() if names},

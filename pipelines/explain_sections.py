@@ -140,7 +140,10 @@ def choice_lines(product_class: str, choice: pd.DataFrame | None) -> list[str]:
         text += f"; backtest leaf WMAPE {float(c['leaf_wmape']):.3f}"
         if c["runner_up"] and pd.notna(c["margin"]):
             text += f", margin {float(c['margin']):+.4f} over {c['runner_up']}"
-    return [text + "."]
+    lines = [text + "."]
+    if "detail" in c and c["detail"]:
+        lines.append(f"   Judged by leaf {c['metric']}; {c['decision']}: {c['detail']}.")
+    return lines
 
 
 def forecast_section(

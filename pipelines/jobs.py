@@ -92,6 +92,11 @@ def history_signature(folder) -> dict[str, str]:
 def new_history_file_sensor(context: dg.SensorEvaluationContext, planning: PlanningConfigResource):
     try:
         config = planning.config
+        if config.inputs.history is not None:
+            return dg.SkipReason(
+                f"inputs.history reads the history from {config.inputs.history.describe()}; this sensor watches "
+                f"history files only: start the schedule {CYCLE_SCHEDULE} instead"
+            )
         signature = history_signature(config.inputs.folder)
     except PlanningError as err:
         return dg.SkipReason(f"cannot read the input folder: {err}")

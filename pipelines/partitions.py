@@ -126,9 +126,14 @@ def current_cycle(config: PlanningConfig, requested: str | None = None) -> str:
     if setting == LATEST_COMPLETE_PERIOD:
         after = latest_cycle_date(config.inputs.folder, period, config.inputs)
         if after is None:
+            where = (
+                f"the history query {config.inputs.history.describe()} returns no"
+                if config.inputs.history is not None
+                else f"no history file in {config.inputs.folder} has a"
+            )
             raise ConfigError(
-                f"{config.source}: calendar.cycle_date is {LATEST_COMPLETE_PERIOD!r} but no history file in "
-                f"{config.inputs.folder} has a dated line; load history or give --cycle YYYY-MM-DD."
+                f"{config.source}: calendar.cycle_date is {LATEST_COMPLETE_PERIOD!r} but {where} dated line; "
+                f"load history or give --cycle YYYY-MM-DD."
             )
         return cycle_key(after)
     return cycle_key(resolve_cycle_date(setting, None, period, str(config.source)))

@@ -132,6 +132,12 @@ class BacktestAccuracy(_Strict):
     origins: Series[int] = pa.Field(ge=0, description="forecast origins evaluated")
     horizon: Series[int] = pa.Field(ge=1, description="periods forecast from each origin")
     series: Series[int] = pa.Field(ge=0, description="series of this grain in the class")
+    value_cleaned: Series[float] = pa.Field(
+        nullable=True, description="the metric against the cleaned actuals (value: against the raw ones)"
+    )
+    selection_metric: Series[Text] = pa.Field(
+        isin=("wmape", "rmsse", "mase"), description="the metric the class's choices are made on (its demand classes)"
+    )
 
     class Config:
         unique = ["product_class", "strategy", "grain", "metric"]
@@ -146,14 +152,23 @@ class StrategyChoice(_Strict):
     )
     strategy: Series[Text] = pa.Field(isin=STRATEGIES, description="strategy the cycle follows")
     leaf_wmape: Series[float] = pa.Field(nullable=True, description="its leaf-grain backtest WMAPE")
-    runner_up: Series[Text] = pa.Field(description="next best strategy by leaf-grain WMAPE ('' if none)")
+    runner_up: Series[Text] = pa.Field(description="next best strategy by the selection metric ('' if none)")
     margin: Series[float] = pa.Field(
-        nullable=True, description="runner-up WMAPE minus the chosen one's (>= 0 for auto)"
+        nullable=True, description="runner-up's score minus the chosen one's, in the selection metric"
     )
     seasonal_naive_wmape: Series[float] = pa.Field(nullable=True, description="leaf-grain WMAPE of seasonal naive")
     beats_seasonal_naive: Series[bool] = pa.Field(
         description="chosen WMAPE not above the benchmark's (true where undefined)"
     )
+    metric: Series[Text] = pa.Field(isin=("wmape", "rmsse", "mase"), description="selection metric of the class")
+    score: Series[float] = pa.Field(nullable=True, description="the strategy's value of that metric (leaf grain)")
+    leaf_rmsse: Series[float] = pa.Field(nullable=True, description="its leaf-grain backtest RMSSE")
+    best: Series[Text] = pa.Field(description="this cycle's best strategy by the selection metric")
+    previous_strategy: Series[Text] = pa.Field(description="the class's strategy last cycle ('' if none)")
+    decision: Series[Text] = pa.Field(isin=("first", "keep", "switch", "fixed"), description="how it was decided")
+    reason: Series[Text] = pa.Field(description="why (forecast_comparison.Reason, or configured)")
+    p_value: Series[float] = pa.Field(nullable=True, description="one-sided DM-HLN p-value that best beats previous")
+    detail: Series[Text] = pa.Field(description="the decision in words")
 
     class Config:
         unique = ["product_class"]

@@ -98,7 +98,9 @@ def print_summary(
         print("classes:")
         for name, group in shares.groupby("product_class"):
             pc = config.product_classes.get(name)
-            how = f"window {pc.window}, {pc.method}" if pc else "not in config"
+            # the window and method the cycle followed (the share tuning's choice for auto), not today's config
+            windows = ", ".join(str(int(w)) for w in sorted(group["window"].unique()))
+            how = f"window {windows}, {', '.join(sorted(group['method'].unique()))}" if pc else "not in config"
             p = parents[parents["product_class"] == name]
             fallbacks = int((p["fallback"] != "none").sum())
             print(
@@ -107,14 +109,18 @@ def print_summary(
             )
     choice = table("strategy_choice")  # as the cycle decided it, not decided again from today's config
     if choice is not None and len(choice):
-        print("strategy:     (backtest, leaf-grain WMAPE; margin = runner-up minus chosen)")
+        print("strategy:     (backtest, leaf grain; judged by the class's metric; margin = runner-up minus chosen)")
         for _, row in choice.iterrows():
             print(
                 f"  {row['product_class']:<14} {row['strategy']:<21} WMAPE {row['leaf_wmape']:.3f}  "
-                f"margin {row['margin']:+.4f} over {row['runner_up'] or '-'}  seasonal naive "
+                f"RMSSE {row.get('leaf_rmsse', float('nan')):.3f}  by {row.get('metric', 'wmape')}: "
+                f"margin {row['margin']:+.4f} over {row['runner_up'] or '-'}  seasonal naive WMAPE "
                 f"{row['seasonal_naive_wmape']:.3f}"
                 f"  ({row['configured_strategy']})"
             )
+            if "detail" in row:
+                print(f"  {'':<14} {row['decision']}: {row['detail']}")
+    print_share_tuning(table("share_tuning"))
     drift = table("share_drift")
     if drift is not None and len(drift):
         limit = config.monitoring.max_share_drift_pp
@@ -133,6 +139,22 @@ def print_summary(
         print("share drift:  no previous cycle in the store to compare with (python -m pipelines cycle --backfill 1)")
     _print_checks(checks, failures)
     print(f"open the UI:  {UI_COMMAND}")
+
+
+def print_share_tuning(tuning) -> None:
+    """Per class: the share window and method the cycle follows, the configured ones, the best and the gain."""
+    if tuning is None or not len(tuning):
+        return
+    print("share split:  (backtest, leaf grain of the top-down split; gain = how much better the best scored)")
+    for name, group in tuning.groupby("product_class", sort=False):
+        chosen = group[group["chosen"].astype(bool)].iloc[0]
+        best = group[group["best"].astype(bool)].iloc[0]
+        configured = f"window {chosen['configured_window']}, {chosen['configured_method']}"
+        print(
+            f"  {name:<14} {chosen['method']}/{chosen['window']:<4} {chosen['metric']} {chosen['score']:.4f}  "
+            f"(configured {configured}); best {best['candidate']} {best['score']:.4f}, gain {chosen['gain']:.1%}"
+        )
+        print(f"  {'':<14} {chosen['decision']}: {chosen['detail']}")
 
 
 def _print_checks(checks: list[tuple[str, str, bool, str]] | None, failures: list[Failure] | None) -> None:

@@ -2,6 +2,7 @@
 
 from pipelines import schemas as s
 from pipelines import schemas_forecast as f
+from pipelines import schemas_selection as sel
 
 MODELS = {
     "raw_history": s.RawHistory,
@@ -22,6 +23,8 @@ MODELS = {
     "reinitialized_target": s.ReinitializedTarget,
     "share_drift": f.ShareDrift,
     "backtest_accuracy": f.BacktestAccuracy,
+    "backtest_losses": sel.BacktestLosses,
+    "share_tuning": sel.ShareTuning,
     "strategy_choice": f.StrategyChoice,
     "parent_forecast": f.ParentForecast,
     "statistical_forecast": f.StatisticalForecast,

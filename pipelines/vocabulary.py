@@ -103,6 +103,24 @@ class Metric(StrEnum):
     BIAS = "bias"
     MASE = "mase"
     FVA = "fva"
+    RMSSE = "rmsse"
+
+
+class SelectionMetric(StrEnum):
+    """The backtest measure a class's choices are judged by (`selection.metric`), lower is better."""
+
+    WMAPE = "wmape"
+    RMSSE = "rmsse"
+    MASE = "mase"
+
+
+class SwitchRule(StrEnum):
+    """When a challenger replaces last cycle's choice (`selection.stability.switch_on`)."""
+
+    EITHER = "either"  # gain above the tolerance, or significant by the DM-HLN test
+    BOTH = "both"
+    TOLERANCE = "tolerance"
+    TEST = "test"
 
 
 class OutlierRule(StrEnum):

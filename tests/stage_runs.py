@@ -54,8 +54,9 @@ def run_partition(config: PlanningConfig, cycle: str, product_class: str, backte
     for spec in graph_order():
         first = spec.tables[0].name
         if first == "backtest_accuracy" and not backtest:
-            columns = MODELS[first].to_schema().columns
-            tables[first] = pd.DataFrame({c: pd.Series(dtype=object) for c in columns})
+            for table in spec.tables:  # the accuracy, losses and share tuning: all empty
+                columns = MODELS[table.name].to_schema().columns
+                tables[table.name] = pd.DataFrame({c: pd.Series(dtype=object) for c in columns})
             continue
         frames = {name: tables[name] for name in spec.ins}
         if first == "share_drift":

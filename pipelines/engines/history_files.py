@@ -42,20 +42,13 @@ import pandas as pd
 
 from pipelines.calendar import ordinal_to_start, period_ordinal, period_start
 from pipelines.config_inputs import InputsConfig
-from pipelines.engines.inputs import InputFile, find_files, sha256
+from pipelines.engines.history_database import load_history_query
+from pipelines.engines.inputs import HISTORY_COLUMNS, HistoryFile, find_files, sha256
 from pipelines.engines.plausible import gap_periods, parse_dates, trusted_extent
 from pipelines.engines.reader import read_text
 from pipelines.errors import InputFileError
 
-HISTORY_COLUMNS = ("product", "site", "customer", "period_start", "quantity")
-
-
-@dataclass(frozen=True)
-class HistoryFile(InputFile):
-    """One history file read: its rows, malformed and empty lines besides the checksum."""
-
-    malformed: int = 0
-    blank_lines: int = 0
+__all__ = ["HISTORY_COLUMNS", "HistoryFile", "choose_cycle_date", "latest_cycle_date", "load_raw_history"]
 
 
 def history_files(folder: Path) -> list[Path]:
@@ -76,12 +69,26 @@ def history_files(folder: Path) -> list[Path]:
 def load_raw_history(folder: Path, inputs: InputsConfig | None = None) -> tuple[pd.DataFrame, list[HistoryFile]]:
     """All `history*.csv|parquet` files of `folder`, stacked, with file and row of each line.
 
+    With `inputs.history` set, the lines of its SQL query instead
+    (`pipelines.engines.history_database`: source and row id in place of file
+    and row); history files in `folder` beside it are refused.
+
     Returns the lines (every cell text, plus `read_error`) and one
     `HistoryFile` per file read. Raises InputFileError for an unreadable file,
     an unknown or missing column, bytes not in `inputs.encoding`, or history
     given twice (see the module docstring).
     """
     inputs = inputs or InputsConfig()
+    if inputs.history is not None:
+        present = find_files(folder, "history", many=True, required=False)
+        if present:
+            raise InputFileError(
+                f"inputs.history reads the history from the database {inputs.history.describe()}, and the input "
+                f"folder {folder} also holds history files {[p.name for p in present]}: the history would come "
+                f"from two places. Move the files out of the folder, or remove inputs.history to read them."
+            )
+        lines, described = load_history_query(inputs.history, inputs)
+        return lines, [described]
     frames, files, digests = [], [], {}
     for path in history_files(folder):
         digest = sha256(path)

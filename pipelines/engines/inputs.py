@@ -27,6 +27,17 @@ class InputFile:
     sha256: str
 
 
+HISTORY_COLUMNS = ("product", "site", "customer", "period_start", "quantity")
+
+
+@dataclass(frozen=True)
+class HistoryFile(InputFile):
+    """One history source read (a file, or the database query): its rows, malformed and empty lines, checksum."""
+
+    malformed: int = 0
+    blank_lines: int = 0
+
+
 def find_files(folder: Path, name: str, *, many: bool = False, required: bool = True) -> list[Path]:
     """Files called `name.csv` / `name.parquet` (or `name*.csv` etc. when `many`)."""
     folder = Path(folder)

@@ -244,35 +244,57 @@ def read_parquet_text(
                         f"{path}: column {c!r} of type {col.type} cannot be read as text ({err}); store it as a "
                         f"string, number or date column"
                     ) from None
-                cols.append(clean_cells(pc.fill_null(text, "")))
-            source = pa.array(np.arange(first, first + batch.num_rows, dtype=np.int64))
-            table = pa.table([source] + cols, names=["source_row"] + wanted)
-            too_long = np.zeros(batch.num_rows, dtype=bool)
-            control = np.zeros(batch.num_rows, dtype=bool)
-            for col in cols:
-                too_long |= pc.greater(pc.binary_length(col), max_line_bytes).to_numpy(zero_copy_only=False)
-                control |= pc.match_substring_regex(col, _CONTROL).to_numpy(zero_copy_only=False)
-            drop = too_long | control
-            if drop.any():
-                for i in np.flatnonzero(drop):
-                    cells = [str(col[i].as_py())[:PREVIEW_CHARS] for col in cols]
-                    cells = ["".join(ch if ch.isprintable() else "?" for ch in s) for s in cells]
-                    bad.append((first + i, LINE_TOO_LONG if too_long[i] else CONTROL_CHARACTERS, *cells))
-                table = table.filter(pa.array(~drop))
-            tables.append(table)
+                cols.append(text)
+            source = np.arange(first, first + batch.num_rows, dtype=np.int64)
+            tables.append(screen_cells(cols, wanted, source, max_line_bytes, bad))
             first += batch.num_rows
     except InputFileError:
         raise
     except Exception as err:
         raise InputFileError(f"{path}: cannot be read as Parquet ({type(err).__name__}: {err})") from None
+    return text_read(tables, bad, wanted, list(columns) + list(optional), names)
+
+
+def screen_cells(
+    cols: list[pa.Array], wanted: list[str], source: np.ndarray, max_line_bytes: int, bad: list[tuple]
+) -> pa.Table:
+    """One batch of rows whose cells are text already (null for blank): `source_row` and the cleaned cells.
+
+    Cells are trimmed and lose their quotes as a CSV cell does (`clean_cells`);
+    a row with a cell longer than `max_line_bytes` (`line_too_long`) or holding
+    a control character (`control_characters`) is left out and appended to
+    `bad` as (source_row, read_error, its first characters per cell).
+    """
+    cols = [clean_cells(pc.fill_null(col, "")) for col in cols]
+    table = pa.table([pa.array(source, pa.int64())] + cols, names=["source_row"] + wanted)
+    n = len(source)
+    too_long = np.zeros(n, dtype=bool)
+    control = np.zeros(n, dtype=bool)
+    for col in cols:
+        too_long |= pc.greater(pc.binary_length(col), max_line_bytes).to_numpy(zero_copy_only=False)
+        control |= pc.match_substring_regex(col, _CONTROL).to_numpy(zero_copy_only=False)
+    drop = too_long | control
+    if drop.any():
+        for i in np.flatnonzero(drop):
+            cells = [str(col[i].as_py())[:PREVIEW_CHARS] for col in cols]
+            cells = ["".join(ch if ch.isprintable() else "?" for ch in s) for s in cells]
+            bad.append((int(source[i]), LINE_TOO_LONG if too_long[i] else CONTROL_CHARACTERS, *cells))
+        table = table.filter(pa.array(~drop))
+    return table
+
+
+def text_read(
+    tables: list[pa.Table], bad: list[tuple], wanted: list[str], order: list[str], names: list[str]
+) -> TextRead:
+    """The batches of `screen_cells` as one TextRead, the columns of `order` a source lacks added blank."""
     schema = pa.schema([("source_row", pa.int64())] + [(c, pa.string()) for c in wanted])
     table = pa.concat_tables(tables) if tables else schema.empty_table()
-    order = list(columns) + list(optional)
     for c in order:
         if c not in table.column_names:
             table = table.append_column(c, pa.repeat("", table.num_rows).cast(pa.string()))
     frame = table.select(["source_row"] + order).to_pandas(split_blocks=True, self_destruct=True)
-    del table, tables
+    del table
+    tables.clear()
     malformed = pd.DataFrame(bad, columns=["source_row", "read_error", *wanted]).astype({"source_row": np.int64})
     for c in order:
         if c not in malformed.columns:

@@ -18,6 +18,7 @@ from collections.abc import Mapping, Sequence
 import numpy as np
 import pandas as pd
 
+from pipelines.engines.report_choices import CHOICE_HEADERS, choice_rows
 from pipelines.keys import PARENT
 
 # A check is (asset, check, passed, severity, description[, first_rows[, what_to_do]]); severity "ERROR" or
@@ -71,6 +72,12 @@ def class_summary(
             }
         )
     return pd.DataFrame(rows)
+
+
+def _choices_table(strategy_choice: pd.DataFrame | None, share_tuning: pd.DataFrame | None) -> str:
+    """The backtest's choices per class (`report_choices`), '' when neither table is stored."""
+    rows = [[_e(v) for v in r] for r in choice_rows(strategy_choice, share_tuning)]
+    return "<h3>Backtest choices</h3>" + _html_table(CHOICE_HEADERS, rows) if rows else ""
 
 
 _CSS = """
@@ -292,6 +299,7 @@ def cycle_report_html(
     sample_rows: int = 10,
     title: str = "apportion cycle report",
     notice: str | None = None,
+    share_tuning: pd.DataFrame | None = None,
 ) -> str:
     """A static, self-contained HTML page of one cycle.
 
@@ -330,7 +338,8 @@ def cycle_report_html(
         'movers</a> | '
         '<a href="#rejected">Rejected rows</a> | <a href="#charts">Charts</a></nav>',
         _checks_section(checks),
-        f'<section id="classes"><h2>Product classes</h2>{classes}</section>',
+        f'<section id="classes"><h2>Product classes</h2>{classes}',
+        _choices_table(strategy_choice, share_tuning) + "</section>",
         _movers_section(movers, top_movers),
         _rejected_section(rejected_rows, sample_rows),
         _charts_section(charts),

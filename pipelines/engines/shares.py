@@ -222,10 +222,11 @@ def _history_shares(
         "method": np.empty(n, dtype=object),
         "window": np.zeros(n, dtype=np.int64),
     }
-    for name, pc in settings.rules.items():  # a few classes, not a loop over series
+    for name in settings.rules:  # a few classes, not a loop over series
         in_class = (children["product_class"] == name).to_numpy()
         if not in_class.any():
             continue
+        pc = settings.rule(name)
         out["method"][in_class] = pc.method
         out["window"][in_class] = pc.window
         decided = ~in_class  # children of other classes are not ours to decide

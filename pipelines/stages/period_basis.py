@@ -18,6 +18,7 @@ import pandas as pd
 from pipelines.calendar import horizon_starts
 from pipelines.engines.period_shares import basis_table, period_basis
 from pipelines.engines.share_settings import ShareSettings
+from pipelines.engines.share_tuning import chosen_rules
 from pipelines.results import Log, StageResult, quiet
 
 
@@ -27,8 +28,13 @@ def run(
     cycle_calendar: pd.DataFrame,
     settings: ShareSettings,
     log: Log = quiet,
+    share_tuning: pd.DataFrame | None = None,
 ) -> StageResult:
-    """The period basis table (empty when no class has a per-period method)."""
+    """The period basis table (empty when no class has a per-period method).
+
+    share_tuning: the backtest's choice of window and method for the classes with `auto`.
+    """
+    settings = chosen_rules(share_tuning, ShareSettings.of(settings))
     cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
     shares = share_tables.reset_index(drop=True)
     starts = horizon_starts(cycle_date, settings.horizon, settings.period)

@@ -2,7 +2,9 @@
 
 Every line keeps its file and row, and a line the reader could not split
 keeps its `read_error`; the contract and the reading rules are those of
-`pipelines.engines.history_files`.
+`pipelines.engines.history_files`. With `inputs.history` the lines come from
+its SQL query instead (`pipelines.engines.history_database`), each with its
+source and row id in place of file and row.
 """
 
 from __future__ import annotations
@@ -23,9 +25,10 @@ def run(product_class_map: pd.DataFrame, settings: InputSettings, log: Log = qui
     classes = class_map(product_class_map)
     lines, files = load_raw_history(settings.folder, settings.inputs)
     mine = class_rows(lines, classes, settings.product_class)
+    source = settings.inputs.history.describe() if settings.inputs.history is not None else str(settings.folder)
     log(
-        f"{settings.product_class}: {len(mine)} of {len(lines)} history lines from {len(files)} file(s) in "
-        f"{settings.folder}"
+        f"{settings.product_class}: {len(mine)} of {len(lines)} history lines from "
+        + (f"the query {source}" if settings.inputs.history is not None else f"{len(files)} file(s) in {source}")
     )
     files_table = pd.DataFrame(
         [
@@ -36,6 +39,7 @@ def run(product_class_map: pd.DataFrame, settings: InputSettings, log: Log = qui
     )
     figures = {
         "input_folder": str(settings.folder),
+        "history_source": source,  # the folder, or the query's source name and URL without its password
         "files": files_table,
         "lines_in_files": len(lines),
         "lines_in_no_class": int(lines["product"].map(classes).isna().sum()),

@@ -49,6 +49,7 @@ from pipelines.checks import SHARES_SUM_TO_ONE
 from pipelines.engines.period_shares import period_shares, stored_basis
 from pipelines.engines.proofs import find_shares_not_summing_to_one
 from pipelines.engines.share_settings import ShareSettings
+from pipelines.engines.share_tuning import chosen_rules
 from pipelines.engines.shares import shortage_periods
 from pipelines.keys import LEAF, PARENT, factorize, lookup
 from pipelines.results import CheckRows, Log, StageResult, quiet
@@ -162,8 +163,13 @@ def run(
     cycle_calendar: pd.DataFrame,
     settings: ShareSettings,
     log: Log = quiet,
+    share_tuning: pd.DataFrame | None = None,
 ) -> StageResult:
-    """The reinitialized target from the stored period basis, its figures and the check that shares sum to one."""
+    """The reinitialized target from the stored period basis, its figures and the check that shares sum to one.
+
+    share_tuning: the backtest's choice of window and method for the classes with `auto`.
+    """
+    settings = chosen_rules(share_tuning, ShareSettings.of(settings))
     cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
     target = reinitialize_target(share_tables, lifecycle_history, settings, cycle_date, products, period_basis)
     first = target[target["period_start"] == target["period_start"].min()] if len(target) else target

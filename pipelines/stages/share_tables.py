@@ -18,6 +18,7 @@ many parents on a fallback (`fallback_share_within_limit`), both WARN.
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -29,6 +30,7 @@ from pipelines.config import PlanningConfig, check_windows_fit
 from pipelines.engines.children import active_children
 from pipelines.engines.lifecycle_shares import find_new_customers_without_share, new_customers
 from pipelines.engines.share_settings import ShareSettings
+from pipelines.engines.share_tuning import chosen_rules
 from pipelines.engines.shares import compute_shares
 from pipelines.results import CheckRows, Log, StageResult, quiet
 from pipelines.schemas import LIFECYCLE_RULES
@@ -57,8 +59,14 @@ def run(
     cycle_calendar: pd.DataFrame,
     settings: ShareTableSettings,
     log: Log = quiet,
+    share_tuning: pd.DataFrame | None = None,
 ) -> StageResult:
-    """The share table of the active children, its figures and its two WARN checks."""
+    """The share table of the active children, its figures and its two WARN checks.
+
+    share_tuning: the backtest's choice of window and method for the classes with `window: auto` or
+    `method: auto` (pipelines.engines.share_tuning); the configured ones for the others.
+    """
+    settings = dataclasses.replace(settings, share=chosen_rules(share_tuning, settings.share))
     cycle = cycle_calendar.iloc[0]
     check_windows_fit(settings.windows, int(cycle["history_periods"]), settings.source)
     cycle_date = pd.Timestamp(cycle["cycle_date"])

@@ -1,0 +1,113 @@
+"""The backtest's score book: running sums of every forecast's errors per product class, over origins.
+
+One `ScoreBook` per backtest run. At each origin `add` takes a forecast block
+(n_series, h) of one strategy (or share candidate) and grain, the actuals it is
+scored against (`raw`: the history as recorded, returns netted; `cleaned`: the
+cleaned history, the second column), each series' product class and its
+in-sample scales, and accumulates per class:
+
+- WMAPE = sum |e| / sum actual and bias = sum e / sum actual;
+- MASE (Hyndman & Koehler 2006) = mean over scored cells of |e| / q, q the
+  series' in-sample mean absolute (seasonal) naive difference;
+- RMSSE (M5; `pipelines.engines.scaled_errors`): one value per series and
+  origin, pooled per class weighted by the series' units over the last h
+  in-sample periods (`volume_weights`);
+- at leaf grain against raw actuals, the class's loss in each scored period
+  (origin x step) for the Diebold-Mariano test of `strategy_choice`: the sum of
+  |e| (the WMAPE numerator) and the volume-weighted sum of e^2 / q2 (the MSSE
+  that RMSSE roots; `forecast_comparison.class_loss_differential`).
+
+Errors are e = forecast - actual; every measure is lower-is-better except bias.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from pipelines.engines.forecast_comparison import squared_scaled_loss
+from pipelines.engines.scaled_errors import pooled_rmsse, rmsse
+
+RAW, CLEANED = "raw", "cleaned"
+LOSS_COLUMNS = ["product_class", "strategy", "origin", "step", "abs_loss", "squared_scaled_loss"]
+_ABS, _ERR, _ACT, _SCALED, _CELLS = range(5)
+
+
+@dataclass(frozen=True)
+class Scales:
+    """Per series (n,): MASE scale q, RMSSE scale q2 and RMSSE weight (recent in-sample units)."""
+
+    q: np.ndarray
+    q2: np.ndarray
+    weight: np.ndarray
+
+
+@dataclass
+class ScoreBook:
+    classes: list[str]
+    n_origins: int
+    h: int
+    sums: dict = field(default_factory=dict)  # (name, grain, basis) -> (n_classes, 5)
+    rmsse_rows: dict = field(default_factory=dict)  # (name, grain, basis) -> [(values, weights, class codes)]
+    losses: dict = field(default_factory=dict)  # name -> (abs, squared scaled), each (n_classes, n_origins * h)
+
+    def add(
+        self, k: int, name: str, grain: str, fc: np.ndarray, actual: dict[str, np.ndarray], cls: np.ndarray,
+        scales: Scales,
+    ) -> None:
+        """Score forecast `fc` (n, h) of `name` at origin number `k` against each basis of `actual` (raw, cleaned)."""
+        n_classes = len(self.classes)
+        q = scales.q[:, None]
+        good = np.isfinite(q) & (q > 0)
+        for basis, act in actual.items():
+            e = fc - act
+            scaled = np.divide(np.abs(e), q, out=np.zeros_like(e), where=good)
+            per_series = np.stack(
+                [np.abs(e).sum(1), e.sum(1), act.sum(1), scaled.sum(1), np.broadcast_to(good, e.shape).sum(1)], axis=1
+            )
+            book = self.sums.setdefault((name, grain, basis), np.zeros((n_classes, 5)))
+            np.add.at(book, cls, per_series)
+            self.rmsse_rows.setdefault((name, grain, basis), []).append((rmsse(act, fc, scales.q2), scales.weight, cls))
+            if grain == "leaf" and basis == RAW:
+                if name not in self.losses:
+                    width = self.n_origins * self.h
+                    self.losses[name] = (np.zeros((n_classes, width)), np.zeros((n_classes, width)))
+                a, s = self.losses[name]
+                cols = slice(k * self.h, (k + 1) * self.h)
+                np.add.at(a[:, cols], cls, np.abs(e))
+                np.add.at(s[:, cols], cls, squared_scaled_loss(act, fc, scales.q2) * scales.weight[:, None])
+
+    def metrics(self, name: str, grain: str, basis: str = RAW) -> dict[str, np.ndarray]:
+        """Per class (n_classes,): wmape, bias, mase, rmsse of `name` at `grain` against `basis` (NaN: unscored)."""
+        n_classes = len(self.classes)
+        m = self.sums.get((name, grain, basis), np.zeros((n_classes, 5)))
+        with np.errstate(invalid="ignore", divide="ignore"):
+            out = {
+                "wmape": np.where(m[:, _ACT] > 0, m[:, _ABS] / m[:, _ACT], np.nan),
+                "bias": np.where(m[:, _ACT] > 0, m[:, _ERR] / m[:, _ACT], np.nan),
+                "mase": np.where(m[:, _CELLS] > 0, m[:, _SCALED] / m[:, _CELLS], np.nan),
+            }
+        rows = self.rmsse_rows.get((name, grain, basis), [])
+        if rows:
+            values, weights, cls = (np.concatenate(parts) for parts in zip(*rows, strict=True))
+            out["rmsse"] = pooled_rmsse(values, weights, group=cls, n_groups=n_classes)
+        else:
+            out["rmsse"] = np.full(n_classes, np.nan)
+        return out
+
+    def loss_table(self, origins: list[pd.Timestamp]) -> pd.DataFrame:
+        """Leaf-grain class losses per scored period (origin x step) of every strategy scored: LOSS_COLUMNS."""
+        frames = []
+        steps = np.tile(np.arange(1, self.h + 1), self.n_origins)
+        when = np.repeat(np.asarray(origins, dtype="datetime64[ns]"), self.h)
+        for name, (a, s) in self.losses.items():
+            for i, cls in enumerate(self.classes):
+                frames.append(pd.DataFrame({
+                    "product_class": cls, "strategy": name, "origin": when, "step": steps,
+                    "abs_loss": a[i], "squared_scaled_loss": s[i],
+                }))
+        if not frames:
+            return pd.DataFrame({c: pd.Series(dtype=object) for c in LOSS_COLUMNS})
+        return pd.concat(frames, ignore_index=True)[LOSS_COLUMNS]

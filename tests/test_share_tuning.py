@@ -1,0 +1,119 @@
+"""Share window and method by backtest (`pipelines.engines.share_tuning`, the backtest stage's `share_tuning`).
+
+Behaviour (common practice, no source): when the children's mix changes shortly before the cycle, a
+short share window follows the new mix and splits the held-back weeks better than a long one, which
+still averages the old mix in; on a stable mix the long window wins, since it averages out noise.
+The data are synthetic and seeded. The WARN check `share_choice_near_best` is made to fire (a fixed
+long window after a change of mix) and to pass (the same gain under a higher threshold).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from test_backtest import SES, frames
+
+from pipelines.checks import SHARE_CHOICE_NEAR_BEST
+from pipelines.config import parse_config
+from pipelines.engines.share_settings import ShareRule
+from pipelines.engines.share_tuning import class_candidates
+from pipelines.schemas_selection import ShareTuning
+from pipelines.stages import backtest_accuracy, share_tables
+
+WEEKS = 160
+
+
+def _mix_change(seed: int = 4, change_at: int = 146) -> np.ndarray:
+    """(2 parents, 3 children, WEEKS): a steady parent; the children's mix swaps at week `change_at`."""
+    rng = np.random.default_rng(seed)
+    before, after = np.array([0.6, 0.3, 0.1]), np.array([0.1, 0.3, 0.6])
+    mix = np.where(np.arange(WEEKS)[:, None] < change_at, before, after)  # (WEEKS, 3)
+    parent = rng.poisson(300, (2, WEEKS)).astype(float)
+    return np.round(parent[:, None, :] * mix.T[None, :, :] * rng.uniform(0.9, 1.1, (2, 3, WEEKS)))
+
+
+def _inputs(y: np.ndarray):
+    history, children, cycle = frames(y)
+    history["shortage"] = False
+    cleaned = history[["product", "site", "customer", "period_start"]].assign(raw_quantity=history["quantity"])
+    products = pd.DataFrame({"product": sorted(children["product"].unique()), "product_class": "a",
+                             "active_from": None, "active_to": None, "successor": None})
+    spans = children[["product", "site", "customer"]].assign(
+        active_from=None, active_to=None, reference_customer=None, scale=np.nan, initial_share=np.nan
+    )
+    calendar = pd.DataFrame({"cycle_date": [cycle], "history_periods": [WEEKS]})
+    return history, cleaned, products, spans, calendar
+
+
+def _config(window, method="pooled", max_gain=0.02):
+    return parse_config({
+        "product_classes": {"a": {"window": window, "method": method, "strategy": "top_down", "models": SES}},
+        "calendar": {"horizon": 4},
+        "backtest": {"origins": 3, "horizon": 4, "step": 4, "strategies": ["top_down", "bottom_up"]},
+        "selection": {"share_tuning": {"windows": [4, 13, 52, 104], "methods": ["pooled", "mean_of_ratios"],
+                                       "max_gain": max_gain}},
+    })
+
+
+def _backtest(y, config, previous=None):
+    history, cleaned, products, spans, calendar = _inputs(y)
+    return backtest_accuracy.run(
+        history, cleaned, products, spans, calendar, backtest_accuracy.BacktestSettings.of(config),
+        previous_tuning=previous,
+    )
+
+
+def test_candidates_keep_what_the_class_fixes_and_try_per_period_methods_at_one_window():
+    rule = ShareRule(window=26, method="pooled", smoothing=0.2)
+    methods = ("pooled", "smoothed", "seasonal")
+    fixed_method = class_candidates(rule, True, False, (4, 13, 52), methods, 100)
+    assert [(w, m) for w, m, own in fixed_method if own] == [(4, "pooled"), (13, "pooled"), (52, "pooled")]
+    # the seasonal method's period shares do not depend on the window: tried once, at the longest candidate
+    assert [(w, m) for w, m, _ in fixed_method if m == "seasonal"] == [(52, "seasonal")]
+    both = class_candidates(ShareRule(window=0, method="auto", smoothing=0.2), True, True, (4, 13, 52), methods, 20)
+    assert all(own for *_, own in both) and max(w for w, *_ in both) == 13  # 52 is longer than the 20 periods
+
+
+def test_window_auto_follows_a_recent_change_of_mix_and_the_share_table_follows_the_choice():
+    y = _mix_change()
+    result = _backtest(y, _config("auto"))
+    tuning = ShareTuning.validate(result.outputs["share_tuning"])
+    own = tuning[tuning["own"]].set_index("window")
+    assert set(own.index) == {4, 13, 52, 104} and (own["method"] == "pooled").all()
+    chosen = tuning[tuning["chosen"]].iloc[0]
+    assert chosen["window"] == 4 and chosen["decision"] == "first" and chosen["reason"] == "no_incumbent"
+    assert own.loc[4, "score"] < own.loc[13, "score"] < own.loc[104, "score"]
+    # the share table follows the backtest's choice
+    history, _, products, spans, calendar = _inputs(y)
+    settings = share_tables.ShareTableSettings.of(_config("auto"))
+    shares = share_tables.run(history, products, spans, calendar, settings, share_tuning=tuning)
+    assert set(shares.outputs["share_tables"]["window"]) == {4}
+    # without the tuning an auto window is refused rather than guessed
+    with pytest.raises(ValueError, match="window or method auto"):
+        share_tables.run(history, products, spans, calendar, settings)
+
+
+def test_an_auto_window_is_kept_next_cycle_unless_the_challenger_wins_clearly():
+    y = _mix_change()
+    previous = _backtest(y, _config("auto")).outputs["share_tuning"].copy()
+    previous["chosen"] = previous["candidate"] == "pooled/13"  # last cycle followed 13 weeks
+    tuning = _backtest(y, _config("auto"), previous=previous).outputs["share_tuning"]
+    chosen = tuning[tuning["chosen"]].iloc[0]
+    # 4 weeks score well over 1 % better than 13 after the change of mix: switch, and say why
+    assert chosen["window"] == 4 and chosen["decision"] == "switch" and "13" in chosen["detail"]
+    previous["chosen"] = previous["candidate"] == "pooled/4"
+    again = _backtest(y, _config("auto"), previous=previous).outputs["share_tuning"]
+    assert again[again["chosen"]].iloc[0]["decision"] == "keep"
+
+
+def test_a_fixed_long_window_worse_than_the_best_fires_the_warning_and_a_higher_threshold_passes():
+    y = _mix_change()
+    result = _backtest(y, _config(104))
+    rows = result.checks[SHARE_CHOICE_NEAR_BEST].rows
+    assert len(rows) == 1 and rows.iloc[0]["window"] == 104 and rows.iloc[0]["gain"] > 0.02
+    tuning = result.outputs["share_tuning"]
+    assert tuning[tuning["chosen"]].iloc[0]["window"] == 104  # fixed: kept, only reported
+    assert tuning[tuning["best"]].iloc[0]["window"] == 4
+    quiet = _backtest(y, _config(104, max_gain=float(rows.iloc[0]["gain"]) + 0.01))
+    assert quiet.checks[SHARE_CHOICE_NEAR_BEST].rows.empty
