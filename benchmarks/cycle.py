@@ -82,8 +82,19 @@ for path in (ROOT, ROOT / "benchmarks"):
 
 import statsforecast  # noqa: E402
 from cycle_inputs import SHARE_METHODS, SMOOTHING, make_config  # noqa: E402
-from cycle_measure import HEADER, UNITS, Bench, git_commit, pa_version, patch_statsforecast, total_line, warm_up  # noqa: E402
+from cycle_measure import (  # noqa: E402
+    HEADER,
+    UNITS,
+    Bench,
+    git_commit,
+    load_average,
+    pa_version,
+    patch_statsforecast,
+    total_line,
+    warm_up,
+)
 from cycle_scenario import CLASSES, Scenario, generate  # noqa: E402
+from side_by_side import compare  # noqa: E402
 
 from assets.factory import Partition, graph_order  # noqa: E402
 from pipelines import definitions  # noqa: E402, F401  (makes every stage asset, so SPECS holds them all)
@@ -115,13 +126,14 @@ def run_cycle(args: argparse.Namespace) -> dict:
     last = max(STAGES.index(s) for s in stages)  # earlier stages feed the last one, so they run too
     todo = [s for s in STAGES[: last + 1] if s != "backtest" or "backtest" in stages]
 
+    args.load_at_start = load_average()
     if args.trace == "inline":
         tracemalloc.start()
     bench = Bench(trace=args.trace, sample_ms=args.rss_sample_ms)
     patch_statsforecast(bench)
     config = make_config(args.periods, args.horizon, args.seasonal, args.leaf_grain, args.shortage_rule,
                          seasonal_model=args.seasonal_model, class_outliers=not args.default_outliers,
-                         share_method=args.share_method)
+                         share_method=args.share_method, n_jobs=args.n_jobs)
     print(
         f"apportion cycle benchmark: {args.leaves:,} leaves, seed {args.seed}, {args.periods} weekly periods, horizon "
         f"{args.horizon}, seasonal={args.seasonal_model if args.seasonal else 'off'}, leaf "
@@ -174,7 +186,8 @@ def run_cycle(args: argparse.Namespace) -> dict:
             tables[table.name] = validate(bench, args, table.name, frame)
             store(bench, con, table.name, tables[table.name])
     scen.facts["raw_lines"] = len(tables["raw_history"])
-    out = finish(bench, args, scen)
+    compared = compare(bench.steps, args, tables, config) if "reconcile" in todo else {}
+    out = finish(bench, args, scen, compared)
     tmp.cleanup()
     return out
 
@@ -267,17 +280,22 @@ def store(bench: Bench, con, table: str, frame: pd.DataFrame) -> None:
     bench.run(f"  store {table}", write, rows_in=len(frame), trace=False)
 
 
-def finish(bench: Bench, args: argparse.Namespace, scen: Scenario) -> dict:
+def finish(bench: Bench, args: argparse.Namespace, scen: Scenario, compared: dict) -> dict:
     line, total = total_line(bench.steps)
     print("-" * len(HEADER))
     print(line)
     print("scenario: " + ", ".join(f"{k} {v:,}" for k, v in scen.facts.items()))
+    load = {"start": args.load_at_start, "end": load_average()}
+    print("load average (1 / 5 / 15 min), start and end: " + "; ".join(
+        f"{v['load_1m']:.2f} / {v['load_5m']:.2f} / {v['load_15m']:.2f} at {v['at']}" for v in load.values()))
     result = {
-        "parameters": {k: v for k, v in vars(args).items()},
+        "parameters": {k: v for k, v in vars(args).items() if k != "load_at_start"},
         "scenario": scen.facts,
         "steps": [asdict(s) for s in bench.steps],
         "statsforecast_calls": [asdict(c) for c in bench.sf_calls],
         "total": total,
+        "load": load,
+        **compared,
         "versions": {
             "python": sys.version.split()[0],
             "pandas": pd.__version__,
@@ -363,6 +381,8 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
         default=10.0,
         help="RSS sampling interval for the 'rss pk' column; 0 = off (default 10)",
     )
+    p.add_argument("--n-jobs", type=int, default=-1, help="execution.n_jobs: statsforecast processes (-1 = every core)")
+    p.add_argument("--no-side-by-side", action="store_true", help="skip the plain DuckDB and numpy versions")
     p.add_argument("--json", default=None, metavar="PATH", help="write the figures as JSON")
     args = p.parse_args(argv)
     if args.leaves < 1 or args.periods < 8 or args.horizon < 1:

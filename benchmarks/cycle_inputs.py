@@ -144,6 +144,7 @@ def make_config(
     seasonal_model: str = "auto_ets",
     class_outliers: bool = True,
     share_method: str | None = None,
+    n_jobs: int = 1,
 ) -> PlanningConfig:
     """Three classes like config/planning.yaml, at fixed grains (no backtest), non-seasonal unless `seasonal`.
 
@@ -185,6 +186,8 @@ def make_config(
     if leaf_grain:
         classes[leaf_grain]["strategy"] = "bottom_up"
     data: dict[str, Any] = {"calendar": {"horizon": horizon}, "product_classes": classes}
+    if n_jobs != 1:
+        data["execution"] = {"n_jobs": n_jobs}
     if shortage_rule:
         data["cleansing"] = {"shortages": shortage_rule}
     if "measures" in PlanningConfig.model_fields:

@@ -333,10 +333,12 @@ def total_line(steps: list[Step]) -> tuple[str, dict]:
     rss_pk = max((s.rss_peak_mb for s in counted), default=0.0)
     rss_max = rss_max_mb()
     slow = max(counted, key=lambda s: s.wall_s) if counted else None
+    checking = sum(s.wall_s for s in counted if s.stage.strip().startswith("validate "))
     line = (
         f"{'total':<32} {wall:>8.2f} {sf:>8.2f} {_mb(top.py_peak_mb if top else None):>8} {'':>8} "
         f"{rss_now_mb():>7.0f} {rss_pk:>7.0f} "
-        f"{rss_max:>7.0f} {'':>11} {'':>11}  own code {wall - sf:.2f} s + statsforecast {sf:.2f} s; slowest "
+        f"{rss_max:>7.0f} {'':>11} {'':>11}  own code {wall - sf:.2f} s (validation {checking:.2f} s) + statsforecast "
+        f"{sf:.2f} s; slowest "
         f"{slow.stage.strip() if slow else '-'}"
         + (f"; largest py peak {top.stage.strip()}" if top else "")
     )
@@ -344,6 +346,8 @@ def total_line(steps: list[Step]) -> tuple[str, dict]:
         "wall_s": wall,
         "statsforecast_s": sf,
         "own_code_s": wall - sf,
+        "validation_s": checking,
+        "validation_share_of_own": checking / (wall - sf) if wall > sf else None,
         "py_peak_mb": top.py_peak_mb if top else None,
         "py_peak_stage": top.stage.strip() if top else None,
         "rss_peak_mb": rss_pk,
@@ -352,6 +356,13 @@ def total_line(steps: list[Step]) -> tuple[str, dict]:
     }
     return line, figures
 
+
+
+def load_average() -> dict:
+    """The machine's load when a figure was taken (`uptime`'s three numbers) and the time, UTC."""
+    one, five, fifteen = os.getloadavg()
+    stamp = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
+    return {"at": stamp, "load_1m": one, "load_5m": five, "load_15m": fifteen, "cpus": os.cpu_count()}
 
 
 def git_commit() -> str | None:

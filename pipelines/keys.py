@@ -41,6 +41,25 @@ def first_rows(codes: np.ndarray) -> np.ndarray:
     return pd.Series(codes).drop_duplicates().index.to_numpy()
 
 
+def joint_codes(left: pd.DataFrame, right: pd.DataFrame, cols: list[str]) -> tuple[np.ndarray, np.ndarray] | None:
+    """Int64 codes of the `cols` tuples of `left` and of `right`, equal exactly where the tuples are equal.
+
+    Each column is coded once over both frames by hashing (pd.factorize: no
+    sort, unlike a MultiIndex, which sorts every level) and the codes are
+    packed into one integer. None when the packed codes would not fit in 62 bits.
+    """
+    n = len(left)
+    combined = np.zeros(n + len(right), dtype=np.int64)
+    capacity = 1
+    for c in cols:
+        k, u = pd.factorize(pd.concat([left[c], right[c]], ignore_index=True), use_na_sentinel=False)
+        capacity *= max(len(u), 1)
+        if capacity >= 2**62:
+            return None
+        combined = combined * max(len(u), 1) + k
+    return combined[:n], combined[n:]
+
+
 def lookup(df: pd.DataFrame, cols: list[str], table: pd.DataFrame) -> np.ndarray:
     """Row position in `table` of each row's key in `df` (-1 where absent)."""
     left = pd.MultiIndex.from_frame(df[cols]) if len(cols) > 1 else pd.Index(df[cols[0]])

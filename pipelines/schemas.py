@@ -11,6 +11,7 @@ import pandas as pd
 import pandera.pandas as pa
 from pandera.typing import DateTime, Series
 
+from pipelines.text_dtype import Text
 from pipelines.vocabulary import PERIOD_BASES as PERIOD_BASES_
 from pipelines.vocabulary import (
     CorrectionRule,
@@ -49,17 +50,17 @@ class _Strict(pa.DataFrameModel):
 class RawHistory(_Strict):
     """History lines exactly as read: every cell text, blanks as ''."""
 
-    source_file: Series[str] = pa.Field(description="input file the line came from")
+    source_file: Series[Text] = pa.Field(description="input file the line came from")
     source_row: Series[int] = pa.Field(
         ge=1, description="1-based data row within that file: its line number minus the header line"
     )
-    product: Series[str] = pa.Field(description="product code as written")
-    site: Series[str] = pa.Field(description="site code as written")
-    customer: Series[str] = pa.Field(description="customer code as written")
-    period_start: Series[str] = pa.Field(description="ISO date as written")
-    quantity: Series[str] = pa.Field(description="quantity as written; negative is a return")
+    product: Series[Text] = pa.Field(description="product code as written")
+    site: Series[Text] = pa.Field(description="site code as written")
+    customer: Series[Text] = pa.Field(description="customer code as written")
+    period_start: Series[Text] = pa.Field(description="ISO date as written")
+    quantity: Series[Text] = pa.Field(description="quantity as written; negative is a return")
     # the loader always supplies it; optional so that hand-built frames without malformed lines validate too
-    read_error: Optional[Series[str]] = pa.Field(
+    read_error: Optional[Series[Text]] = pa.Field(
         isin=("",) + READ_ERRORS,
         description="'' for a line split into the file's columns; else why it could not be (its cells then hold "
         "the line's first fields, cut short), and cleaned_history rejects it with that reason",
@@ -72,11 +73,11 @@ class RawHistory(_Strict):
 class Products(_Strict):
     """Product master: class and active span of each product."""
 
-    product: Series[str] = pa.Field(unique=True, str_length={"min_value": 1}, description="product code")
-    product_class: Series[str] = pa.Field(str_length={"min_value": 1}, description="class key of the planning config")
+    product: Series[Text] = pa.Field(unique=True, str_length={"min_value": 1}, description="product code")
+    product_class: Series[Text] = pa.Field(str_length={"min_value": 1}, description="class key of the planning config")
     active_from: Series[DateTime] = pa.Field(nullable=True, description="first day sold; blank = always")
     active_to: Series[DateTime] = pa.Field(nullable=True, description="last day sold; blank = open")
-    successor: Series[str] = pa.Field(nullable=True, description="product taking over this one's history")
+    successor: Series[Text] = pa.Field(nullable=True, description="product taking over this one's history")
 
     @pa.dataframe_check(description="active_to is not before active_from")
     def span_ordered(cls, df: pd.DataFrame) -> Series[bool]:
@@ -88,9 +89,9 @@ class Products(_Strict):
 
 
 class LeafKeys(_Strict):
-    product: Series[str] = pa.Field(description="product code")
-    site: Series[str] = pa.Field(description="site code")
-    customer: Series[str] = pa.Field(description="customer code")
+    product: Series[Text] = pa.Field(description="product code")
+    site: Series[Text] = pa.Field(description="site code")
+    customer: Series[Text] = pa.Field(description="customer code")
 
 
 class CustomerSpans(LeafKeys):
@@ -98,7 +99,7 @@ class CustomerSpans(LeafKeys):
 
     active_from: Series[DateTime] = pa.Field(nullable=True, description="first day of the active span")
     active_to: Series[DateTime] = pa.Field(nullable=True, description="last day of the active span; blank = open")
-    reference_customer: Series[str] = pa.Field(
+    reference_customer: Series[Text] = pa.Field(
         nullable=True, description="existing customer of the same product and site a new customer takes its share from"
     )
     # the loader always supplies the two optional columns (blank when the file lacks
@@ -137,9 +138,9 @@ class CustomerSpans(LeafKeys):
 class Adjustments(_Strict):
     """Parent-grain values a planner entered."""
 
-    measure: Series[str] = pa.Field(description="measure name")
-    product: Series[str] = pa.Field(description="product code")
-    site: Series[str] = pa.Field(description="site code")
+    measure: Series[Text] = pa.Field(description="measure name")
+    product: Series[Text] = pa.Field(description="product code")
+    site: Series[Text] = pa.Field(description="site code")
     period_start: Series[DateTime] = pa.Field(description="period start")
     value: Series[float] = pa.Field(description="value at product x site grain")
 
@@ -147,19 +148,19 @@ class Adjustments(_Strict):
 class Pins(_Strict):
     """Leaf values a planner fixed: the split keeps them and spreads the rest of the parent over the others."""
 
-    product: Series[str] = pa.Field(str_length={"min_value": 1}, description="product code")
-    site: Series[str] = pa.Field(str_length={"min_value": 1}, description="site code")
-    customer: Series[str] = pa.Field(str_length={"min_value": 1}, description="customer code")
+    product: Series[Text] = pa.Field(str_length={"min_value": 1}, description="product code")
+    site: Series[Text] = pa.Field(str_length={"min_value": 1}, description="site code")
+    customer: Series[Text] = pa.Field(str_length={"min_value": 1}, description="customer code")
     period_start: Series[DateTime] = pa.Field(description="any day inside the pinned period")
-    measure: Series[str] = pa.Field(str_length={"min_value": 1}, description="measure name (a key of config measures)")
+    measure: Series[Text] = pa.Field(str_length={"min_value": 1}, description="measure name (a key of config measures)")
     value: Series[float] = pa.Field(description="the value the leaf keeps")
 
 
 class Shortages(_Strict):
     """Recorded supply shortages: one row per product x site and period that was short."""
 
-    product: Series[str] = pa.Field(str_length={"min_value": 1}, description="product code")
-    site: Series[str] = pa.Field(str_length={"min_value": 1}, description="site code")
+    product: Series[Text] = pa.Field(str_length={"min_value": 1}, description="product code")
+    site: Series[Text] = pa.Field(str_length={"min_value": 1}, description="site code")
     period_start: Series[DateTime] = pa.Field(description="any day inside the short period")
 
 
@@ -186,7 +187,7 @@ class CycleCalendar(_Strict):
     """The cycle in one row: its date, calendar and history range."""
 
     cycle_date: Series[DateTime] = pa.Field(description="first period of the horizon")
-    period: Series[str] = pa.Field(isin=values(PeriodKind), description="period kind")
+    period: Series[Text] = pa.Field(isin=values(PeriodKind), description="period kind")
     horizon: Series[int] = pa.Field(ge=1, description="periods forecast")
     horizon_end: Series[DateTime] = pa.Field(description="start of the last horizon period")
     history_start: Series[DateTime] = pa.Field(nullable=True, description="first period of cleaned history")
@@ -196,33 +197,33 @@ class CycleCalendar(_Strict):
 class RejectedRows(_Strict):
     """Raw lines that could not be used, each with its reason."""
 
-    source_file: Series[str] = pa.Field(description="input file")
+    source_file: Series[Text] = pa.Field(description="input file")
     source_row: Series[int] = pa.Field(ge=1, description="1-based data row")
-    product: Series[str] = pa.Field(description="as written")
-    site: Series[str] = pa.Field(description="as written")
-    customer: Series[str] = pa.Field(description="as written")
-    period_start: Series[str] = pa.Field(description="as written")
-    quantity: Series[str] = pa.Field(description="as written")
-    reason: Series[str] = pa.Field(isin=REJECT_REASONS, description="why the line was not used")
+    product: Series[Text] = pa.Field(description="as written")
+    site: Series[Text] = pa.Field(description="as written")
+    customer: Series[Text] = pa.Field(description="as written")
+    period_start: Series[Text] = pa.Field(description="as written")
+    quantity: Series[Text] = pa.Field(description="as written")
+    reason: Series[Text] = pa.Field(isin=REJECT_REASONS, description="why the line was not used")
 
 
 class HistoryCorrections(LeafPeriod):
     """One row per changed period: the quantity a rule moved."""
 
-    rule: Series[str] = pa.Field(isin=CORRECTION_RULES, description="rule that changed the value")
+    rule: Series[Text] = pa.Field(isin=CORRECTION_RULES, description="rule that changed the value")
     before: Series[float] = pa.Field(description="value before the rule")
     after: Series[float] = pa.Field(description="value after the rule")
     delta: Series[float] = pa.Field(description="after - before")
-    parameters: Series[str] = pa.Field(description="the rule's parameter values")
+    parameters: Series[Text] = pa.Field(description="the rule's parameter values")
 
 
 class LifecycleHistory(LeafPeriod):
     """History inside each active span, remapped to successors."""
 
     quantity: Series[float] = pa.Field(ge=0, description="quantity in the share basis")
-    origin: Series[str] = pa.Field(isin=ORIGINS, description="own, or successor (mapped from a retired product)")
-    source_product: Series[str] = pa.Field(description="product the history was recorded on")
-    source_customer: Series[str] = pa.Field(description="customer the history was recorded on")
+    origin: Series[Text] = pa.Field(isin=ORIGINS, description="own, or successor (mapped from a retired product)")
+    source_product: Series[Text] = pa.Field(description="product the history was recorded on")
+    source_customer: Series[Text] = pa.Field(description="customer the history was recorded on")
     shortage: Series[bool] = pa.Field(
         description="a supply shortage was recorded for the source product x site x period; "
         "such periods do not count toward shares or the parent baseline"
@@ -235,13 +236,13 @@ class LifecycleHistory(LeafPeriod):
 class LifecycleAudit(_Strict):
     """What the lifecycle stage moved or left out, per key and rule."""
 
-    product: Series[str] = pa.Field(description="product code")
-    site: Series[str] = pa.Field(description="site code")
-    customer: Series[str] = pa.Field(description="customer code")
-    rule: Series[str] = pa.Field(isin=LIFECYCLE_AUDIT_RULES, description="lifecycle rule applied")
+    product: Series[Text] = pa.Field(description="product code")
+    site: Series[Text] = pa.Field(description="site code")
+    customer: Series[Text] = pa.Field(description="customer code")
+    rule: Series[Text] = pa.Field(isin=LIFECYCLE_AUDIT_RULES, description="lifecycle rule applied")
     periods: Series[int] = pa.Field(ge=0, description="periods affected")
     quantity: Series[float] = pa.Field(description="quantity affected")
-    detail: Series[str] = pa.Field(description="what happened, in words")
+    detail: Series[Text] = pa.Field(description="what happened, in words")
 
 
 # ----------------------------------------------------------------- shares
@@ -249,7 +250,7 @@ class ShareTable(LeafKeys):
     """One base share per child for the cycle, with the window, method and lifecycle rule behind it."""
 
     cycle_date: Series[DateTime] = pa.Field(description="first period of the cycle's horizon")
-    product_class: Series[str] = pa.Field(description="product class")
+    product_class: Series[Text] = pa.Field(description="product class")
     share: Series[float] = pa.Field(
         ge=0,
         le=1,
@@ -263,21 +264,21 @@ class ShareTable(LeafKeys):
         "per-period methods (seasonal, children_forecast) the pooled share over the window, which is their summary "
         "here and their fallback in a period without a basis (the per-period basis is the period_basis table)",
     )
-    method: Series[str] = pa.Field(isin=SHARE_METHODS, description="share method of the class")
+    method: Series[Text] = pa.Field(isin=SHARE_METHODS, description="share method of the class")
     window: Series[int] = pa.Field(ge=1, description="configured window, periods")
     window_used: Series[int] = pa.Field(ge=0, description="window that gave volume (0 = even split)")
     window_start: Series[DateTime] = pa.Field(description="first period of the window used")
-    fallback: Series[str] = pa.Field(isin=FALLBACKS, description="fallback taken for this parent")
+    fallback: Series[Text] = pa.Field(isin=FALLBACKS, description="fallback taken for this parent")
     child_volume: Series[float] = pa.Field(ge=0, description="child's volume in the window used")
     parent_volume: Series[float] = pa.Field(ge=0, description="parent's volume in the window used")
-    lifecycle_rule: Series[str] = pa.Field(isin=LIFECYCLE_RULES, description="how the share is set over the horizon")
+    lifecycle_rule: Series[Text] = pa.Field(isin=LIFECYCLE_RULES, description="how the share is set over the horizon")
     first_active_period: Series[DateTime] = pa.Field(description="first horizon period the child is active")
     last_active_period: Series[DateTime] = pa.Field(description="last horizon period the child is active")
     own_periods: Series[int] = pa.Field(ge=0, description="distinct periods of the child's own history")
-    reference_customer: Series[str] = pa.Field(nullable=True, description="reference the share was taken from")
+    reference_customer: Series[Text] = pa.Field(nullable=True, description="reference the share was taken from")
     scale: Series[float] = pa.Field(nullable=True, gt=0, le=1, description="fraction of the reference's share taken")
     initial_share: Series[float] = pa.Field(nullable=True, ge=0, lt=1, description="planner-given share used")
-    lifecycle_detail: Series[str] = pa.Field(description="the rule in words, for the planner")
+    lifecycle_detail: Series[Text] = pa.Field(description="the rule in words, for the planner")
 
     class Config:
         unique = ["product", "site", "customer"]
@@ -292,12 +293,12 @@ class ReinitializedTarget(LeafPeriod):
         ge=0, le=1, description="share in this period: base shares of the children active in it, renormalised"
     )
     parent_baseline: Series[float] = pa.Field(ge=0, description="parent's mean per period over the window used")
-    zero_reason: Series[str] = pa.Field(
+    zero_reason: Series[Text] = pa.Field(
         nullable=True,
         isin=ZERO_REASONS,
         description="why every share of the parent is 0 in this period (blank = they sum to 1)",
     )
-    basis: Optional[Series[str]] = pa.Field(
+    basis: Optional[Series[Text]] = pa.Field(
         isin=PERIOD_BASES,
         description="what the established children's weights of the parent came from in this period: history_share "
         "(the share table's, every period alike), period_of_year (seasonal), children_forecast (method "
@@ -315,7 +316,7 @@ class PeriodBasis(LeafPeriod):
     weight: Series[float] = pa.Field(
         ge=0, le=1, description="the child's history share in this period, before the lifecycle rules"
     )
-    basis: Series[str] = pa.Field(
+    basis: Series[Text] = pa.Field(
         isin=PERIOD_BASES, description="what the weight came from: period_of_year, children_forecast or pooled_fallback"
     )
 
@@ -326,5 +327,5 @@ class PeriodBasis(LeafPeriod):
 class ProductClassMap(_Strict):
     """The class of every product of the product master file, so the other inputs keep their class's rows."""
 
-    product: Series[str] = pa.Field(unique=True, description="product code")
-    product_class: Series[str] = pa.Field(description="its product class")
+    product: Series[Text] = pa.Field(unique=True, description="product code")
+    product_class: Series[Text] = pa.Field(description="its product class")

@@ -10,6 +10,7 @@ import pandera.pandas as pa
 from pandera.typing import DateTime, Series
 
 from pipelines.schemas import ZERO_REASONS, LeafKeys, LeafPeriod, _Strict
+from pipelines.text_dtype import Text
 from pipelines.vocabulary import (
     AUTO,
     BENCHMARK,
@@ -36,9 +37,9 @@ class ParentForecast(_Strict):
     """Statistical forecast at product x site grain."""
 
     cycle_date: Series[DateTime] = pa.Field(description="cycle date")
-    product_class: Series[str] = pa.Field(description="product class")
-    product: Series[str] = pa.Field(description="product code")
-    site: Series[str] = pa.Field(description="site code")
+    product_class: Series[Text] = pa.Field(description="product class")
+    product: Series[Text] = pa.Field(description="product code")
+    site: Series[Text] = pa.Field(description="site code")
     period_start: Series[DateTime] = pa.Field(description="forecast period")
     forecast: Series[float] = pa.Field(
         description="parent forecast: strategy_forecast, or 0 in a period the lifecycle set to 0 (zero_reason)"
@@ -48,14 +49,14 @@ class ParentForecast(_Strict):
         "forecast (top_down, forecast_proportions), the reconciled parent (mint_shrink, wls_var) or the sum of the "
         "active children's own forecasts (bottom_up); the leaves must sum to it wherever zero_reason is blank"
     )
-    model: Series[str] = pa.Field(description="statsforecast model used")
-    demand_class: Series[str] = pa.Field(isin=DEMAND_CLASSES, description="Syntetos-Boylan-Croston class")
-    model_grain: Series[str] = pa.Field(
+    model: Series[Text] = pa.Field(description="statsforecast model used")
+    demand_class: Series[Text] = pa.Field(isin=DEMAND_CLASSES, description="Syntetos-Boylan-Croston class")
+    model_grain: Series[Text] = pa.Field(
         isin=values(ModelGrain),
         description="grains the class's models ran at: parent, leaf or both (the strategy's needs)",
     )
-    strategy: Optional[Series[str]] = pa.Field(isin=STRATEGIES, description="how parent and leaf were made coherent")
-    zero_reason: Series[str] = pa.Field(
+    strategy: Optional[Series[Text]] = pa.Field(isin=STRATEGIES, description="how parent and leaf were made coherent")
+    zero_reason: Series[Text] = pa.Field(
         nullable=True, isin=ZERO_REASONS, description="why the forecast was set to 0 in this period (blank = not set)"
     )
 
@@ -67,18 +68,18 @@ class ForecastModels(_Strict):
     """One row per series the cycle forecast: its grain, demand class, model and parameters."""
 
     cycle_date: Series[DateTime] = pa.Field(description="cycle date")
-    grain: Series[str] = pa.Field(
+    grain: Series[Text] = pa.Field(
         isin=GRAINS, description="parent (product x site) or leaf (product x site x customer)"
     )
-    product_class: Series[str] = pa.Field(description="product class")
-    product: Series[str] = pa.Field(description="product code")
-    site: Series[str] = pa.Field(description="site code")
-    customer: Series[str] = pa.Field(description="customer code ('' for a parent)")
-    demand_class: Series[str] = pa.Field(isin=DEMAND_CLASSES, description="Syntetos-Boylan-Croston class")
+    product_class: Series[Text] = pa.Field(description="product class")
+    product: Series[Text] = pa.Field(description="product code")
+    site: Series[Text] = pa.Field(description="site code")
+    customer: Series[Text] = pa.Field(description="customer code ('' for a parent)")
+    demand_class: Series[Text] = pa.Field(isin=DEMAND_CLASSES, description="Syntetos-Boylan-Croston class")
     adi: Series[float] = pa.Field(nullable=True, description="average inter-demand interval (NaN without demand)")
     cv2: Series[float] = pa.Field(nullable=True, description="squared coefficient of variation of non-zero sizes")
-    model: Series[str] = pa.Field(description="model label")
-    parameters: Series[str] = pa.Field(description="parameters the library exposes ('' where it does not)")
+    model: Series[Text] = pa.Field(description="model label")
+    parameters: Series[Text] = pa.Field(description="parameters the library exposes ('' where it does not)")
 
     class Config:
         unique = ["grain", "product", "site", "customer"]
@@ -88,10 +89,10 @@ class StatisticalForecast(LeafPeriod):
     """Statistical forecast at leaf grain, split from the parent."""
 
     cycle_date: Series[DateTime] = pa.Field(description="cycle date")
-    product_class: Series[str] = pa.Field(description="product class")
+    product_class: Series[Text] = pa.Field(description="product class")
     forecast: Series[float] = pa.Field(description="leaf forecast")
     parent_forecast: Series[float] = pa.Field(description="the parent's forecast this was split from")
-    basis: Series[str] = pa.Field(isin=values(FORECAST_BASES), description="what the leaf value was made from")
+    basis: Series[Text] = pa.Field(isin=values(FORECAST_BASES), description="what the leaf value was made from")
 
     class Config:
         unique = ["product", "site", "customer", "period_start"]
@@ -101,11 +102,11 @@ class ForecastFittedValues(_Strict):
     """In-sample one-step fitted values of the series whose strategy reconciles with residuals (MinT, WLS)."""
 
     cycle_date: Series[DateTime] = pa.Field(description="cycle date")
-    grain: Series[str] = pa.Field(isin=GRAINS, description="parent or leaf")
-    product_class: Series[str] = pa.Field(description="product class")
-    product: Series[str] = pa.Field(description="product code")
-    site: Series[str] = pa.Field(description="site code")
-    customer: Series[str] = pa.Field(description="customer code ('' for a parent)")
+    grain: Series[Text] = pa.Field(isin=GRAINS, description="parent or leaf")
+    product_class: Series[Text] = pa.Field(description="product class")
+    product: Series[Text] = pa.Field(description="product code")
+    site: Series[Text] = pa.Field(description="site code")
+    customer: Series[Text] = pa.Field(description="customer code ('' for a parent)")
     period_start: Series[DateTime] = pa.Field(description="history period")
     actual: Series[float] = pa.Field(ge=0, description="history value (real history, no copied reference rows)")
     fitted: Series[float] = pa.Field(description="model's one-step fitted value")
@@ -117,12 +118,12 @@ class ForecastFittedValues(_Strict):
 class BacktestAccuracy(_Strict):
     """Rolling-origin backtest: one accuracy value per product class, strategy, grain and metric."""
 
-    product_class: Series[str] = pa.Field(description="product class")
-    strategy: Series[str] = pa.Field(
+    product_class: Series[Text] = pa.Field(description="product class")
+    strategy: Series[Text] = pa.Field(
         isin=STRATEGIES + (str(BENCHMARK),), description="strategy, or the seasonal naive benchmark"
     )
-    grain: Series[str] = pa.Field(isin=GRAINS, description="grain the accuracy is measured at")
-    metric: Series[str] = pa.Field(
+    grain: Series[Text] = pa.Field(isin=GRAINS, description="grain the accuracy is measured at")
+    metric: Series[Text] = pa.Field(
         isin=values(Metric), description="wmape, bias, mase or fva (value added over seasonal naive, WMAPE points)"
     )
     value: Series[float] = pa.Field(
@@ -134,7 +135,7 @@ class BacktestAccuracy(_Strict):
     value_cleaned: Series[float] = pa.Field(
         nullable=True, description="the metric against the cleaned actuals (value: against the raw ones)"
     )
-    selection_metric: Series[str] = pa.Field(
+    selection_metric: Series[Text] = pa.Field(
         isin=("wmape", "rmsse", "mase"), description="the metric the class's choices are made on (its demand classes)"
     )
 
@@ -145,13 +146,13 @@ class BacktestAccuracy(_Strict):
 class StrategyChoice(_Strict):
     """Per product class: the strategy in effect, how it was decided and by how much it won."""
 
-    product_class: Series[str] = pa.Field(description="product class")
-    configured_strategy: Series[str] = pa.Field(
+    product_class: Series[Text] = pa.Field(description="product class")
+    configured_strategy: Series[Text] = pa.Field(
         isin=(AUTO,) + STRATEGIES, description="the class's configured strategy (auto: the backtest's choice)"
     )
-    strategy: Series[str] = pa.Field(isin=STRATEGIES, description="strategy the cycle follows")
+    strategy: Series[Text] = pa.Field(isin=STRATEGIES, description="strategy the cycle follows")
     leaf_wmape: Series[float] = pa.Field(nullable=True, description="its leaf-grain backtest WMAPE")
-    runner_up: Series[str] = pa.Field(description="next best strategy by the selection metric ('' if none)")
+    runner_up: Series[Text] = pa.Field(description="next best strategy by the selection metric ('' if none)")
     margin: Series[float] = pa.Field(
         nullable=True, description="runner-up's score minus the chosen one's, in the selection metric"
     )
@@ -159,15 +160,15 @@ class StrategyChoice(_Strict):
     beats_seasonal_naive: Series[bool] = pa.Field(
         description="chosen WMAPE not above the benchmark's (true where undefined)"
     )
-    metric: Series[str] = pa.Field(isin=("wmape", "rmsse", "mase"), description="selection metric of the class")
+    metric: Series[Text] = pa.Field(isin=("wmape", "rmsse", "mase"), description="selection metric of the class")
     score: Series[float] = pa.Field(nullable=True, description="the strategy's value of that metric (leaf grain)")
     leaf_rmsse: Series[float] = pa.Field(nullable=True, description="its leaf-grain backtest RMSSE")
-    best: Series[str] = pa.Field(description="this cycle's best strategy by the selection metric")
-    previous_strategy: Series[str] = pa.Field(description="the class's strategy last cycle ('' if none)")
-    decision: Series[str] = pa.Field(isin=("first", "keep", "switch", "fixed"), description="how it was decided")
-    reason: Series[str] = pa.Field(description="why (forecast_comparison.Reason, or configured)")
+    best: Series[Text] = pa.Field(description="this cycle's best strategy by the selection metric")
+    previous_strategy: Series[Text] = pa.Field(description="the class's strategy last cycle ('' if none)")
+    decision: Series[Text] = pa.Field(isin=("first", "keep", "switch", "fixed"), description="how it was decided")
+    reason: Series[Text] = pa.Field(description="why (forecast_comparison.Reason, or configured)")
     p_value: Series[float] = pa.Field(nullable=True, description="one-sided DM-HLN p-value that best beats previous")
-    detail: Series[str] = pa.Field(description="the decision in words")
+    detail: Series[Text] = pa.Field(description="the decision in words")
 
     class Config:
         unique = ["product_class"]
@@ -177,18 +178,18 @@ class PlanMeasures(LeafPeriod):
     """Every measure of the plan at leaf grain, long format: one row per leaf, period and measure."""
 
     cycle_date: Series[DateTime] = pa.Field(description="cycle date")
-    measure: Series[str] = pa.Field(description="measure name (a key of config measures)")
+    measure: Series[Text] = pa.Field(description="measure name (a key of config measures)")
     value: Series[float] = pa.Field(description="the leaf's value")
     parent_value: Series[float] = pa.Field(
         nullable=True,
         description="the parent's value in this period (blank where it has none and only pins gave the row)",
     )
-    rule: Series[str] = pa.Field(isin=values(SplitRule), description="split rule of the measure")
-    basis: Series[str] = pa.Field(
+    rule: Series[Text] = pa.Field(isin=values(SplitRule), description="split rule of the measure")
+    basis: Series[Text] = pa.Field(
         description="what the value came from: parent (replicate), even, pin, or the pro_rata basis "
         "(reinitialized_target, leaf_forecast, share_table:<name>, measure:<name>)"
     )
-    fallback: Series[str] = pa.Field(
+    fallback: Series[Text] = pa.Field(
         isin=values(MeasureFallback), description="fallback the parent period's split took"
     )
     pinned: Series[bool] = pa.Field(description="the value is a planner's pin, kept as given")
@@ -201,8 +202,8 @@ class Reconciliation(_Strict):
     """The leaves against the parent forecast the strategy produced, per parent and period."""
 
     cycle_date: Series[DateTime] = pa.Field(description="cycle date")
-    product: Series[str] = pa.Field(description="product code")
-    site: Series[str] = pa.Field(description="site code")
+    product: Series[Text] = pa.Field(description="product code")
+    site: Series[Text] = pa.Field(description="site code")
     period_start: Series[DateTime] = pa.Field(description="period")
     parent_forecast: Series[float] = pa.Field(
         nullable=True, description="final parent forecast (blank: leaves without a parent row)"
@@ -210,7 +211,7 @@ class Reconciliation(_Strict):
     strategy_forecast: Series[float] = pa.Field(
         nullable=True, description="the parent forecast as the strategy produced it (parent_forecast.strategy_forecast)"
     )
-    zero_reason: Series[str] = pa.Field(
+    zero_reason: Series[Text] = pa.Field(
         nullable=True,
         isin=ZERO_REASONS,
         description="why the lifecycle set the period to 0 (then left out of the comparison with strategy_forecast "
@@ -232,15 +233,15 @@ class Reconciliation(_Strict):
 class ShareDrift(LeafKeys):
     """Each child's share now and in the previous cycle of its class, in percentage points."""
 
-    product_class: Series[str] = pa.Field(description="product class")
-    previous_cycle: Series[str] = pa.Field(description="cycle compared with (ISO date)")
+    product_class: Series[Text] = pa.Field(description="product class")
+    previous_cycle: Series[Text] = pa.Field(description="cycle compared with (ISO date)")
     share_previous: Series[float] = pa.Field(
         ge=0, le=1, description="base share in the previous cycle (0 = not a child then)"
     )
     share_current: Series[float] = pa.Field(ge=0, le=1, description="base share in this cycle (0 = no longer a child)")
     change_pp: Series[float] = pa.Field(ge=-100, le=100, description="100 x (current - previous), percentage points")
     abs_change_pp: Series[float] = pa.Field(ge=0, le=100, description="size of the move, percentage points")
-    status: Series[str] = pa.Field(isin=values(DriftStatus), description="child in both cycles, only now, or only then")
+    status: Series[Text] = pa.Field(isin=values(DriftStatus), description="child in both cycles, only now or only then")
 
     class Config:
         unique = ["product", "site", "customer"]
@@ -249,9 +250,9 @@ class ShareDrift(LeafKeys):
 class CycleReportFiles(_Strict):
     """The files the cycle report wrote for one class: its charts and the cycle's page."""
 
-    product_class: Series[str] = pa.Field(description="product class")
-    kind: Series[str] = pa.Field(isin=values(ReportFile), description="parents chart, shares chart, or the page")
-    path: Series[str] = pa.Field(description="file written, under var/reports/<cycle>/")
+    product_class: Series[Text] = pa.Field(description="product class")
+    kind: Series[Text] = pa.Field(isin=values(ReportFile), description="parents chart, shares chart, or the page")
+    path: Series[Text] = pa.Field(description="file written, under var/reports/<cycle>/")
     bytes: Series[int] = pa.Field(gt=0, description="file size")
 
 
@@ -259,16 +260,16 @@ class CycleReportFiles(_Strict):
 class ClassPublication(_Strict):
     """The table versions one class of a cycle publishes, each with the proof that its blocking checks passed."""
 
-    asset: Series[str] = pa.Field(description="asset (store table)")
-    shard: Series[str] = pa.Field(description="shard of the class ('0' while classes are not cut into shards)")
-    file: Series[str] = pa.Field(
+    asset: Series[Text] = pa.Field(description="asset (store table)")
+    shard: Series[Text] = pa.Field(description="shard of the class ('0' while classes are not cut into shards)")
+    file: Series[Text] = pa.Field(
         nullable=True, description="Parquet file of the version, in the partition's folder; blank if never written"
     )
     rows: Series[int] = pa.Field(ge=0, description="rows of the version")
-    run_id: Series[str] = pa.Field(nullable=True, description="Dagster run that wrote the version")
-    written_at: Series[str] = pa.Field(nullable=True, description="when it was written (UTC, ISO)")
+    run_id: Series[Text] = pa.Field(nullable=True, description="Dagster run that wrote the version")
+    written_at: Series[Text] = pa.Field(nullable=True, description="when it was written (UTC, ISO)")
     proven: Series[bool] = pa.Field(description="its blocking checks passed in the run that wrote it")
-    proof: Series[str] = pa.Field(description="how that is known, or why it is not")
+    proof: Series[Text] = pa.Field(description="how that is known, or why it is not")
 
     class Config:
         unique = ["asset", "shard"]

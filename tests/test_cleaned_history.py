@@ -337,6 +337,19 @@ def test_tampered_quantity_is_an_unexplained_change(make_raw, products, spans, c
     assert found["unexplained"].tolist() == pytest.approx([5.0])
 
 
+def test_correction_of_a_period_cleaned_history_lacks_is_unexplained(make_raw, products, spans, config):
+    raw = make_raw([("P1", "S1", "C1", "2026-01-05", "2"), ("P1", "S1", "C1", "2026-01-12", "-6")])
+    res = clean_history(raw, products, spans, config)
+    assert len(res.corrections) == 1  # the negative net of 01-12 set to zero
+    week = res.corrections["period_start"].iloc[0]
+    cleaned = res.cleaned[~((res.cleaned["customer"] == "C1") & (res.cleaned["period_start"] == week))]
+    found = find_unexplained_changes(cleaned, res.corrections)
+    # the correction's period is gone: its row is unexplained, with its delta (+6) and no cleaned value
+    assert found["period_start"].tolist() == [week]
+    assert found["corrections"].tolist() == pytest.approx([6.0])
+    assert found["quantity"].isna().all() and found["unexplained"].isna().all()
+
+
 def test_changes_that_cancel_inside_a_series_are_still_unexplained(make_raw, products, spans, config):
     raw = make_raw([("P1", "S1", "C1", "2026-01-05", "2"), ("P1", "S1", "C1", "2026-01-12", "6")])
     res = clean_history(raw, products, spans, config)

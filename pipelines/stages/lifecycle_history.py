@@ -35,7 +35,7 @@ import pandas as pd
 from pipelines.calendar import active_mask, period_ordinal, span_bounds
 from pipelines.config import CalendarConfig, PlanningConfig
 from pipelines.errors import LifecycleError
-from pipelines.keys import LEAF, lookup
+from pipelines.keys import LEAF, factorize, lookup
 from pipelines.results import Log, StageResult, quiet
 
 HISTORY_COLUMNS = LEAF + ["period_start", "quantity", "origin", "source_product", "source_customer", "shortage"]
@@ -96,63 +96,102 @@ def _audit(rows: pd.DataFrame, rule: str, detail: str | pd.Series) -> pd.DataFra
 def apply_lifecycle(
     cleaned: pd.DataFrame, products: pd.DataFrame, spans: pd.DataFrame, config: PlanningConfig, cycle_date: pd.Timestamp
 ) -> LifecycleResult:
-    """Apply the rules of this module to the cleaned history."""
+    """Apply the rules of this module to the cleaned history.
+
+    The rules are decided once per leaf (its span, its product's retirement and
+    successor, the successor's span) and reach the rows through integer leaf
+    codes; the history is copied once, into the sorted result, whose order is
+    that of a stable sort by leaf, period, origin and source product (the
+    leaves and products ranked as text, on their distinct values only).
+    """
     period = config.calendar.period
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
     h = cleaned[LEAF + ["period_start", "quantity"]].reset_index(drop=True)
-    # the cleansing stage's shortage flag (product x site x period); absent = none recorded
-    h["shortage"] = cleaned["shortage"].to_numpy(bool) if "shortage" in cleaned.columns else False
+    shortage = cleaned["shortage"].to_numpy(bool) if "shortage" in cleaned.columns else np.zeros(len(h), dtype=bool)
     h_ord = period_ordinal(h["period_start"], period)
     s_from, s_to = span_bounds(spans, period)
     audits = []
 
-    # 1. inside the customer's own span
-    pos = lookup(h, LEAF, spans)
-    inside = (pos >= 0) & active_mask(s_from[np.clip(pos, 0, None)], s_to[np.clip(pos, 0, None)], h_ord)
+    # --- per leaf: its span, and where its product is retired, the successor's leaf and span
+    leaf, leaves = factorize(h, LEAF)
+    lpos = lookup(leaves, LEAF, spans)[leaf]
+    inside = (lpos >= 0) & active_mask(s_from[np.clip(lpos, 0, None)], s_to[np.clip(lpos, 0, None)], h_ord)
     audits.append(_audit(h[~inside], "outside_active_span", "history outside the customer's active span"))
-    h, h_ord = h[inside].reset_index(drop=True), h_ord[inside]
-    h["origin"] = "own"
-    h["source_product"] = h["product"]
-    h["source_customer"] = h["customer"]
 
-    # 2. retired products move to their successor
     p_from, p_to = span_bounds(products, period)
     retired_products = products.loc[~np.isnan(p_to) & (p_to < cycle_ord), "product"]
     successor = resolve_successors(products)
-    retired = h["product"].isin(retired_products).to_numpy()
-    target = h["product"].map(successor).where(retired)
-    no_successor = retired & target.isna().to_numpy()
+    leaf_retired = leaves["product"].isin(retired_products).to_numpy()
+    leaf_target = leaves["product"].map(successor).where(leaf_retired)
+    leaf_has_target = leaf_target.notna().to_numpy()
+    retired = inside & leaf_retired[leaf]
+    no_successor = retired & ~leaf_has_target[leaf]
     audits.append(_audit(h[no_successor], "retired_product_without_successor", "product retired before the cycle date"))
-    moved = h[retired & ~no_successor].copy()
-    moved["product"] = target[retired & ~no_successor].astype(str).to_numpy()
-    moved["origin"] = "successor"
-    mpos = lookup(moved, LEAF, spans)
-    # the successor span must overlap the horizon [cycle, cycle + horizon - 1]
+
+    targets = np.flatnonzero(leaf_has_target)  # leaves whose history moves; their new keys
+    target_keys = leaves.iloc[targets].assign(product=leaf_target.iloc[targets].astype(str).to_numpy())
+    target_keys = target_keys.reset_index(drop=True)
+    tpos = lookup(target_keys, LEAF, spans) if len(targets) else np.zeros(0, dtype=np.int64)
     horizon_end = cycle_ord + config.calendar.horizon - 1
-    m_from, m_to = s_from[np.clip(mpos, 0, None)], s_to[np.clip(mpos, 0, None)]
+    t_from, t_to = s_from[np.clip(tpos, 0, None)], s_to[np.clip(tpos, 0, None)]
     with np.errstate(invalid="ignore"):
-        m_ok = (mpos >= 0) & (np.isnan(m_from) | (m_from <= horizon_end)) & (np.isnan(m_to) | (m_to >= cycle_ord))
+        t_ok = (tpos >= 0) & (np.isnan(t_from) | (t_from <= horizon_end)) & (np.isnan(t_to) | (t_to >= cycle_ord))
+    target_of_leaf = np.full(len(leaves), -1, dtype=np.int64)
+    target_of_leaf[targets] = np.arange(len(targets))
+    moving = retired & ~no_successor
+    row_target = target_of_leaf[leaf]
+    without_span = moving & ~t_ok[np.clip(row_target, 0, None)] if len(targets) else np.zeros(len(h), dtype=bool)
+    moved_rows = np.flatnonzero(moving & ~without_span)
+    lost = h[without_span]
     audits.append(
         _audit(
-            moved[~m_ok].assign(product=moved["source_product"][~m_ok]),
+            lost,
             "successor_without_span",
-            "customer has no span active in the horizon on successor " + moved["product"][~m_ok],
+            "customer has no span active in the horizon on successor "
+            + target_keys["product"].to_numpy(dtype=object)[row_target[without_span]],
         )
     )
-    moved = moved[m_ok]
-    audits.append(_audit(moved, "successor_history_mapped", "history of retired product " + moved["source_product"]))
-    h = _stack([h[~retired], moved])
+    moved = target_keys.iloc[row_target[moved_rows]].reset_index(drop=True)
+    moved["quantity"] = h["quantity"].to_numpy()[moved_rows]
+    audits.append(
+        _audit(
+            moved,
+            "successor_history_mapped",
+            "history of retired product " + leaves["product"].to_numpy(dtype=object)[leaf[moved_rows]],
+        )
+    )
 
-    # 3. customers phased out before the cycle date leave the basis
-    pos = lookup(h, LEAF, spans)
-    phased_out = ~np.isnan(s_to[pos]) & (s_to[pos] < cycle_ord)
-    audits.append(_audit(h[phased_out], "phased_out_before_cycle", "customer span ended before the cycle date"))
-    h = h[~phased_out].reset_index(drop=True)
+    # --- the rows kept, own then moved (the order the stable sort keeps among equals); phased-out leaves leave
+    own_rows = np.flatnonzero(inside & ~retired)
+    rows = np.concatenate([own_rows, moved_rows])
+    is_moved = np.concatenate([np.zeros(len(own_rows), dtype=bool), np.ones(len(moved_rows), dtype=bool)])
+    key = np.where(is_moved, len(leaves) + row_target[rows], leaf[rows])  # into own leaves, then target keys
+    key_span = np.concatenate([lookup(leaves, LEAF, spans), tpos])
+    phased_out = ~np.isnan(s_to[key_span[key]]) & (s_to[key_span[key]] < cycle_ord)
+    all_keys = pd.concat([leaves, target_keys], ignore_index=True)
+    stacked = all_keys.iloc[key[phased_out]].reset_index(drop=True)
+    stacked["quantity"] = h["quantity"].to_numpy()[rows[phased_out]]
+    audits.append(_audit(stacked, "phased_out_before_cycle", "customer span ended before the cycle date"))
+    rows, is_moved, key = rows[~phased_out], is_moved[~phased_out], key[~phased_out]
 
-    h = h[HISTORY_COLUMNS].sort_values(LEAF + ["period_start", "origin", "source_product"], kind="stable")
+    # --- sorted by leaf (as text), period, origin ("own" < "successor") and source product (as text)
+    key_code, distinct = factorize(all_keys, LEAF)
+    rank = np.empty(len(distinct), dtype=np.int64)
+    rank[distinct.sort_values(LEAF, kind="stable").index.to_numpy()] = np.arange(len(distinct))
+    source_rank = pd.factorize(leaves["product"], sort=True)[0]
+    period_ns = h["period_start"].to_numpy(dtype="datetime64[ns]").view(np.int64)
+    order = np.lexsort((source_rank[leaf[rows]], is_moved, period_ns[rows], rank[key_code[key]]))
+    rows, is_moved, key = rows[order], is_moved[order], key[order]
+    out = all_keys.iloc[key].reset_index(drop=True)
+    out["period_start"] = h["period_start"].to_numpy()[rows]
+    out["quantity"] = h["quantity"].to_numpy()[rows]
+    out["origin"] = np.where(is_moved, "successor", "own").astype(object)
+    out["source_product"] = leaves["product"].to_numpy(dtype=object)[leaf[rows]]
+    out["source_customer"] = leaves["customer"].to_numpy(dtype=object)[leaf[rows]]
+    out["shortage"] = shortage[rows]
     audit = _stack(audits, AUDIT_COLUMNS)
     audit = audit.astype({"periods": np.int64, "quantity": float})
-    return LifecycleResult(history=h.reset_index(drop=True), audit=audit.reset_index(drop=True))
+    return LifecycleResult(history=out[HISTORY_COLUMNS], audit=audit.reset_index(drop=True))
 
 
 @dataclass(frozen=True)

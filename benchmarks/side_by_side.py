@@ -1,0 +1,169 @@
+"""Share + reinitialize + split + reconcile in plain DuckDB SQL and in numpy, on the cycle's own tables.
+
+`benchmarks/cycle.py` calls `compare(...)` after the cycle: the model stage
+against the statsforecast time inside it, then `side_by_side(...)`, which
+prints each version's time beside the stages' (shares, target, the forecast
+stage's own part, which holds the split, and reconcile) and their ratio.
+Both plain versions do the same minimal arithmetic, without the
+stages' rules (lifecycle of new and ending children, fallback windows,
+shortage periods, zero reasons, checks, audit tables):
+
+- share: a child's quantity over the last `window` periods of its class
+  divided by its parent's (product x site), pooled;
+- reinitialize: the parent's mean per period over that window times the
+  share, for every horizon period;
+- split: each parent forecast period times the share;
+- reconcile: the children's split summed back per parent and period against
+  the parent forecast (the largest relative difference is printed: ~0).
+
+They are the floor the stages' engines are measured against, not a
+replacement for them. numpy's time is given twice: with the text keys coded
+to integers inside the clock, and the arithmetic alone on keys already coded.
+"""
+
+from __future__ import annotations
+
+import time
+
+import duckdb
+import numpy as np
+import pandas as pd
+
+LEAF = ["product", "site", "customer"]
+PARENT = ["product", "site"]
+
+
+def _classes(tables: dict) -> pd.DataFrame:
+    return tables["products"][["product", "product_class"]].drop_duplicates("product")
+
+
+def duckdb_version(tables: dict, windows: dict[str, int], horizon: int) -> tuple[float, float]:
+    """Seconds and the largest relative reconciliation difference, all four steps in one DuckDB connection."""
+    history = tables["lifecycle_history"][LEAF + ["period_start", "quantity"]]
+    forecast = tables["parent_forecast"][PARENT + ["period_start", "forecast"]]
+    cycle = pd.Timestamp(tables["cycle_calendar"]["cycle_date"].iloc[0])
+    win = pd.DataFrame({"product_class": list(windows), "win_periods": list(windows.values())})
+    classes = _classes(tables)
+    start = time.perf_counter()
+    con = duckdb.connect()
+    for name, frame in (("history", history), ("forecast", forecast), ("classes", classes), ("win", win)):
+        con.register(name, frame)
+    con.execute(f"""
+        create temp table shares as
+        with w as (
+            select h.product, h.site, h.customer, h.quantity, win.win_periods
+            from history h join classes c using (product) join win using (product_class)
+            where h.period_start >= timestamp '{cycle:%Y-%m-%d}' - to_days(7 * win.win_periods)
+        ), child as (
+            select product, site, customer, sum(quantity) q, any_value(win_periods) win_periods from w group by all
+        ), parent as (select product, site, sum(q) pq from child group by all)
+        select child.product, child.site, child.customer, child.win_periods,
+               case when pq > 0 then q / pq else 0 end share, pq / child.win_periods baseline
+        from child join parent using (product, site)
+    """)
+    con.execute(f"""
+        create temp table target as
+        select s.product, s.site, s.customer, p.period_start, s.share * s.baseline target
+        from shares s, (select timestamp '{cycle:%Y-%m-%d}' + to_days(7 * i) period_start
+                        from range({horizon}) t(i)) p
+    """)
+    con.execute("""
+        create temp table split as
+        select s.product, s.site, s.customer, f.period_start, f.forecast * s.share value
+        from forecast f join shares s using (product, site)
+    """)
+    worst = con.execute("""
+        select coalesce(max(abs(l.total - f.forecast) / greatest(abs(f.forecast), 1e-9)), 0)
+        from forecast f join (select product, site, period_start, sum(value) total from split group by all) l
+        using (product, site, period_start) where f.forecast > 0
+    """).fetchone()[0]
+    con.close()
+    return time.perf_counter() - start, float(worst)
+
+
+def numpy_version(tables: dict, windows: dict[str, int], horizon: int) -> tuple[float, float, float]:
+    """Seconds with the key coding, seconds of the arithmetic alone, and the largest relative difference."""
+    history, forecast = tables["lifecycle_history"], tables["parent_forecast"]
+    cycle = pd.Timestamp(tables["cycle_calendar"]["cycle_date"].iloc[0])
+    classes = _classes(tables).set_index("product")["product_class"]
+    start = time.perf_counter()
+    # coding: leaf and parent ids from the text keys (once; the stages would carry them)
+    leaf_of_row, leaves = _codes(history, LEAF)
+    parent_of_leaf, parents = _codes(leaves, PARENT)
+    fc_parent = pd.MultiIndex.from_frame(parents).get_indexer(pd.MultiIndex.from_frame(forecast[PARENT]))
+    window = leaves["product"].map(classes).map(windows).to_numpy(dtype=np.int64)
+    age = ((cycle - history["period_start"]).dt.days.to_numpy() // 7).astype(np.int64)  # 1 = the last week
+    quantity = history["quantity"].to_numpy(dtype=np.float64)
+    fc_value = forecast["forecast"].to_numpy(dtype=np.float64)
+    coded = time.perf_counter()
+    worst = _arithmetic(leaf_of_row, parent_of_leaf, len(parents), window, age, quantity, fc_parent, fc_value, horizon)
+    end = time.perf_counter()
+    return end - start, end - coded, worst
+
+
+def _arithmetic(leaf_of_row, parent_of_leaf, n_parents, window, age, quantity, fc_parent, fc_value, horizon) -> float:
+    inside = age <= window[leaf_of_row]
+    child = np.bincount(leaf_of_row[inside], weights=quantity[inside], minlength=len(window))
+    parent = np.bincount(parent_of_leaf, weights=child, minlength=n_parents)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        share = np.where(parent[parent_of_leaf] > 0, child / parent[parent_of_leaf], 0.0)
+    baseline = parent[parent_of_leaf] / window
+    target = np.repeat((share * baseline)[:, None], horizon, axis=1)  # leaves x horizon periods
+    # split: every forecast row of a parent to its leaves (leaves sorted by parent, so each parent is a range)
+    order = np.argsort(parent_of_leaf, kind="stable")
+    first = np.searchsorted(parent_of_leaf[order], np.arange(n_parents))
+    count = np.bincount(parent_of_leaf, minlength=n_parents)
+    rows = np.repeat(np.arange(len(fc_parent)), count[fc_parent])
+    offset = np.arange(len(rows)) - np.repeat(np.cumsum(count[fc_parent]) - count[fc_parent], count[fc_parent])
+    leaf = order[first[fc_parent[rows]] + offset]
+    value = fc_value[rows] * share[leaf]
+    total = np.bincount(rows, weights=value, minlength=len(fc_parent))
+    positive = fc_value > 0
+    assert target.shape[1] == horizon
+    return float(np.max(np.abs(total - fc_value)[positive] / fc_value[positive], initial=0.0))
+
+
+def _codes(frame: pd.DataFrame, cols: list[str]) -> tuple[np.ndarray, pd.DataFrame]:
+    codes = frame.groupby(cols, sort=False).ngroup().to_numpy(np.int64)
+    first = pd.Series(codes).drop_duplicates().index.to_numpy()
+    return codes, frame[cols].iloc[first].reset_index(drop=True)
+
+
+def side_by_side(tables: dict, windows: dict[str, int], horizon: int, stage_seconds: float) -> dict:
+    """Each version's seconds and the stages' / version ratio, printed and returned."""
+    db_s, db_worst = duckdb_version(tables, windows, horizon)
+    np_s, np_arith_s, np_worst = numpy_version(tables, windows, horizon)
+    out = {
+        "stages_s": stage_seconds,
+        "duckdb_s": db_s,
+        "numpy_s": np_s,
+        "numpy_arithmetic_only_s": np_arith_s,
+        "stages_over_duckdb": stage_seconds / db_s,
+        "stages_over_numpy": stage_seconds / np_s,
+        "largest_relative_difference": {"duckdb": db_worst, "numpy": np_worst},
+    }
+    print(
+        f"side by side (share + reinitialize + split + reconcile): stages {stage_seconds:.2f} s, plain DuckDB SQL "
+        f"{db_s:.2f} s ({out['stages_over_duckdb']:.1f}x), numpy {np_s:.2f} s ({out['stages_over_numpy']:.1f}x; "
+        f"arithmetic alone on coded keys {np_arith_s:.3f} s); reconcile difference DuckDB {db_worst:.1e}, "
+        f"numpy {np_worst:.1e}"
+    )
+    return out
+
+
+def compare(steps: list, args, tables: dict, config) -> dict:
+    """The model stage against statsforecast inside it, and the share-to-reconcile stages against plain versions."""
+    wall = {s.stage.strip(): s for s in steps if s.in_total}
+    forecast = wall["forecast: statistical_forecast"]
+    out = {"model_stage_s": forecast.wall_s, "statsforecast_s": forecast.sf_s or 0.0, "n_jobs": args.n_jobs}
+    out["model_stage_over_statsforecast"] = forecast.wall_s / out["statsforecast_s"] if forecast.sf_s else None
+    print(f"model stage {forecast.wall_s:.2f} s, of which statsforecast {out['statsforecast_s']:.2f} s: "
+          f"{out['model_stage_over_statsforecast'] or float('nan'):.2f}x (n_jobs {args.n_jobs})")
+    if args.no_side_by_side:
+        return {"model_stage": out}
+    # the stages' share of the work: shares, target, the forecast stage's own part (the split) and reconcile
+    names = ("shares: share_tables", "target: reinitialized_target", "reconcile: reconciliation")
+    own = [wall[n].wall_s for n in names]
+    stage_seconds = sum(own) + forecast.wall_s - out["statsforecast_s"]
+    windows = {name: pc.window for name, pc in config.product_classes.items()}
+    return {"model_stage": out, "side_by_side": side_by_side(tables, windows, args.horizon, stage_seconds)}
