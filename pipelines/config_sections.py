@@ -168,7 +168,7 @@ class ProductClassConfig(Frozen):
         None, description="none | own (each series' seasonal model) | group (index of seasonal_group) | auto "
         "(the backtest's choice); blank: own with models.seasonal true, else none",
     )
-    seasonal_group: str = Field("product", description="group of the index: product, product_class or a products column")
+    seasonal_group: str = Field("product", description="index group: product, product_class or a products column")
     outliers: OutlierConfig | None = Field(
         None,
         description="outlier rule of this class; replaces cleansing.outliers as a whole "

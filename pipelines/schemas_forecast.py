@@ -13,7 +13,9 @@ from pipelines.schemas import ZERO_REASONS, LeafKeys, LeafPeriod, _Strict
 from pipelines.vocabulary import (
     AUTO,
     BENCHMARK,
+    COVERAGE_METRIC_PATTERN,
     FORECAST_BASES,
+    INTERVAL_COLUMN_PATTERN,
     DemandClass,
     DriftStatus,
     Grain,
@@ -21,6 +23,7 @@ from pipelines.vocabulary import (
     Metric,
     ModelGrain,
     ReportFile,
+    Seasonality,
     SplitRule,
     Strategy,
     values,
@@ -58,6 +61,13 @@ class ParentForecast(_Strict):
     zero_reason: Series[str] = pa.Field(
         nullable=True, isin=ZERO_REASONS, description="why the forecast was set to 0 in this period (blank = not set)"
     )
+    bounds: Optional[Series[float]] = pa.Field(
+        alias=INTERVAL_COLUMN_PATTERN,
+        regex=True,
+        ge=0,
+        description="prediction interval bounds, lower_<level> and upper_<level> per level of config intervals "
+        "(pipelines.engines.forecast_intervals; 0 where the lifecycle set the period to 0)",
+    )
 
     class Config:
         unique = ["product", "site", "period_start"]
@@ -79,6 +89,16 @@ class ForecastModels(_Strict):
     cv2: Series[float] = pa.Field(nullable=True, description="squared coefficient of variation of non-zero sizes")
     model: Series[str] = pa.Field(description="model label")
     parameters: Series[str] = pa.Field(description="parameters the library exposes ('' where it does not)")
+    seasonality: Optional[Series[str]] = pa.Field(
+        isin=values(Seasonality), description="the class's seasonality in effect: none, own or group"
+    )
+    seasonal_strength: Optional[Series[float]] = pa.Field(
+        nullable=True, ge=0, le=1, description="F_S of the series' own history (Wang, Smith & Hyndman 2006); NaN "
+        "without two full seasons"
+    )
+    group_seasonal_strength: Optional[Series[float]] = pa.Field(
+        nullable=True, ge=0, le=1, description="F_S of the sum of its seasonal group (NaN unless seasonality group)"
+    )
 
     class Config:
         unique = ["grain", "product", "site", "customer"]
@@ -92,6 +112,13 @@ class StatisticalForecast(LeafPeriod):
     forecast: Series[float] = pa.Field(description="leaf forecast")
     parent_forecast: Series[float] = pa.Field(description="the parent's forecast this was split from")
     basis: Series[str] = pa.Field(isin=values(FORECAST_BASES), description="what the leaf value was made from")
+    bounds: Optional[Series[float]] = pa.Field(
+        alias=INTERVAL_COLUMN_PATTERN,
+        regex=True,
+        ge=0,
+        description="prediction interval bounds, lower_<level> and upper_<level> per level of config intervals "
+        "(pipelines.engines.forecast_intervals; 0 where the lifecycle set the period to 0)",
+    )
 
     class Config:
         unique = ["product", "site", "customer", "period_start"]
@@ -123,7 +150,11 @@ class BacktestAccuracy(_Strict):
     )
     grain: Series[str] = pa.Field(isin=GRAINS, description="grain the accuracy is measured at")
     metric: Series[str] = pa.Field(
-        isin=values(Metric), description="wmape, bias, mase or fva (value added over seasonal naive, WMAPE points)"
+        description="wmape, bias, mase, fva (value added over seasonal naive, WMAPE points) or coverage_<level> "
+        "(share of actuals inside the level % prediction interval)"
+    )
+    seasonality: Series[str] = pa.Field(
+        isin=values(Seasonality), description="the seasonality the class's models ran with (none, own, group)"
     )
     value: Series[float] = pa.Field(
         nullable=True, description="the metric's value (NaN where undefined, e.g. no volume)"
@@ -132,8 +163,12 @@ class BacktestAccuracy(_Strict):
     horizon: Series[int] = pa.Field(ge=1, description="periods forecast from each origin")
     series: Series[int] = pa.Field(ge=0, description="series of this grain in the class")
 
+    @pa.check("metric", name="metric_known")
+    def _metric_known(cls, metric: Series[str]) -> Series[bool]:
+        return metric.isin(values(Metric)) | metric.str.fullmatch(COVERAGE_METRIC_PATTERN)
+
     class Config:
-        unique = ["product_class", "strategy", "grain", "metric"]
+        unique = ["product_class", "seasonality", "strategy", "grain", "metric"]
 
 
 class StrategyChoice(_Strict):
@@ -144,6 +179,9 @@ class StrategyChoice(_Strict):
         isin=(AUTO,) + STRATEGIES, description="the class's configured strategy (auto: the backtest's choice)"
     )
     strategy: Series[str] = pa.Field(isin=STRATEGIES, description="strategy the cycle follows")
+    seasonality: Optional[Series[str]] = pa.Field(
+        isin=values(Seasonality), description="seasonality the cycle follows (for seasonality auto: the backtest's)"
+    )
     leaf_wmape: Series[float] = pa.Field(nullable=True, description="its leaf-grain backtest WMAPE")
     runner_up: Series[str] = pa.Field(description="next best strategy by leaf-grain WMAPE ('' if none)")
     margin: Series[float] = pa.Field(

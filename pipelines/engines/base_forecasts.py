@@ -116,7 +116,8 @@ def base_forecasts(
             rows = members[grid.series]
             scale = fc_factor[members] if grouped else 1.0
             fc[members] = res.forecast * scale
-            fitted[rows] = res.fitted * (row_factor[rows] if grouped else 1.0)
+            if strategy in NEEDS_RESIDUALS:  # kept for MinT / WLS only (the sd needs them inside the run)
+                fitted[rows] = res.fitted * (row_factor[rows] if grouped else 1.0)
             if sd:
                 fc_sd[members] = res.sd * scale
             label[members] = res.label

@@ -149,12 +149,83 @@ def series_strength(grid: SeriesGrid, period: str, end_ord: int) -> np.ndarray:
     return out
 
 
-def seasonality_by_class(config_classes: Mapping, chosen: Mapping[str, str] | None = None) -> dict[str, str]:
-    """Each class's seasonality in effect: configured, or for `auto` the backtest's choice (else its baseline)."""
+def seasonality_in_effect(
+    configured: Mapping[str, str], chosen: Mapping[str, str] | None, source: object = "<config>"
+) -> dict[str, str]:
+    """Each class's seasonality in effect: as configured, or for `auto` the backtest's choice (strategy_choice)."""
     out = {}
-    for name, pc in config_classes.items():
-        mode = configured_seasonality(pc)
+    for name, mode in configured.items():
         if mode == AUTO:
-            mode = (chosen or {}).get(name) or seasonality_candidates(pc)[0]
+            if not chosen or not chosen.get(name):
+                raise ConfigError(
+                    f"{source}: product_classes.{name}.seasonality is 'auto' but the backtest made no choice for "
+                    "it; materialize backtest_accuracy and strategy_choice first, or set seasonality to one of "
+                    "none, own, group."
+                )
+            mode = chosen[name]
         out[name] = mode
     return out
+
+
+def cycle_season_plan(
+    p_grid: SeriesGrid,
+    parents: pd.DataFrame,
+    products: pd.DataFrame | None,
+    modes: Mapping[str, str],
+    groups: Mapping[str, str],
+    parent_of_child: np.ndarray,
+    period: str,
+    end_ord: int,
+    where: str = "product_classes",
+) -> SeasonPlan | None:
+    """The season plan of the classes whose seasonality is `group` (None if none is), each by its seasonal_group.
+
+    parents: product, site, product_class per parent.
+    """
+    cls = parents["product_class"].to_numpy()
+    grouped = [name for name, mode in modes.items() if mode == Seasonality.GROUP and (cls == name).any()]
+    if not grouped:
+        return None
+    products = products if products is not None else pd.DataFrame({"product": []})
+    code = np.full(len(parents), -1, dtype=np.int64)
+    offset = 0
+    for name in grouped:  # a loop over classes
+        rows = cls == name
+        mine = group_of_parents(
+            parents[rows], products, groups.get(name, GROUP_PRODUCT), f"{where}.{name}.seasonal_group"
+        )
+        code[rows] = mine + offset
+        offset += int(mine.max(initial=-1)) + 1
+    uses = code >= 0
+    return plan_season(p_grid, np.maximum(code, 0), uses, parent_of_child, period, end_ord)
+
+
+def strength_columns(
+    models: pd.DataFrame,
+    p_grid: SeriesGrid,
+    c_grid: SeriesGrid,
+    season: SeasonPlan | None,
+    modes: Mapping[str, str],
+    product_class: pd.Series,
+    period: str,
+    end_ord: int,
+) -> pd.DataFrame:
+    """Per row of the models table (grain, series): the class's seasonality, the series' own seasonal strength
+    F_S and, for a group-seasonal series, its group's (NaN otherwise)."""
+    grain = models["grain"].to_numpy()
+    series = models["series"].to_numpy()
+    own = np.full(len(models), np.nan)
+    group = np.full(len(models), np.nan)
+    for name, grid in (("parent", p_grid), ("leaf", c_grid)):
+        rows = grain == name
+        own[rows] = series_strength(grid, period, end_ord)[series[rows]]
+        if season is not None and len(season.strength):
+            g = (season.parent_group if name == "parent" else season.child_group)[series[rows]]
+            group[rows] = np.where(g >= 0, season.strength[np.maximum(g, 0)], np.nan)
+    return pd.DataFrame(
+        {
+            "seasonality": product_class.map(dict(modes)).fillna(Seasonality.NONE).to_numpy(),
+            "seasonal_strength": own,
+            "group_seasonal_strength": group,
+        }
+    )

@@ -46,7 +46,7 @@ class's models ran (parent, leaf or both).
 from __future__ import annotations
 
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -55,9 +55,16 @@ import pandas as pd
 from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal
 from pipelines.checks import NO_NEGATIVE_FORECAST, NO_VOLUME_AFTER_PHASE_OUT, NO_VOLUME_OUTSIDE_ACTIVE_SPAN
 from pipelines.engines.base_forecasts import BaseForecasts, base_forecasts
+from pipelines.engines.forecast_intervals import coherent_intervals, interval_frame, strategy_sd
 from pipelines.engines.hierarchy import Coherent, coherent, parent_sums
 from pipelines.engines.models import ModelSettings, SeriesGrid, series_grid
 from pipelines.engines.proofs import find_negative, find_volume_after_phase_out, find_volume_outside_active_span
+from pipelines.engines.seasonal_base import (
+    configured_seasonality,
+    cycle_season_plan,
+    seasonality_in_effect,
+    strength_columns,
+)
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
 from pipelines.results import CheckRows, Log, StageResult, quiet
@@ -100,6 +107,9 @@ MODEL_COLUMNS = [
     "cv2",
     "model",
     "parameters",
+    "seasonality",
+    "seasonal_strength",
+    "group_seasonal_strength",
 ]
 
 
@@ -123,14 +133,24 @@ class ForecastSettings:
     strategies: Mapping[str, str]
     models: ModelSettings
     source: Path = Path("<memory>")
+    seasonality: Mapping[str, str] = field(default_factory=dict)  # class -> none | own | group | auto
+    seasonal_groups: Mapping[str, str] = field(default_factory=dict)  # class -> seasonal_group
+    levels: tuple[float, ...] = ()  # prediction interval levels (%)
+    upper_levels: tuple[str, ...] = ()  # aggregation levels above the parent, bottom to top
 
     @classmethod
     def of(cls, config) -> ForecastSettings:
         """From a planning config (every class it holds); a ForecastSettings is returned as it is."""
         if isinstance(config, ForecastSettings):
             return config
-        strategies = {name: pc.strategy for name, pc in config.product_classes.items()}
-        return cls(config.calendar.period, config.calendar.horizon, strategies, ModelSettings.of(config), config.source)
+        classes = config.product_classes
+        return cls(
+            config.calendar.period, config.calendar.horizon, {name: pc.strategy for name, pc in classes.items()},
+            ModelSettings.of(config), config.source,
+            {name: configured_seasonality(pc) for name, pc in classes.items()},
+            {name: pc.seasonal_group for name, pc in classes.items()},
+            tuple(config.intervals.levels), tuple(config.hierarchy.upper_levels),
+        )
 
 
 def strategy_by_class(settings: ForecastSettings, chosen: dict[str, str] | None = None) -> dict[str, str]:
@@ -190,6 +210,8 @@ def forecast_cycle(
     cycle_date: pd.Timestamp,
     log: Callable[[str], None] | None = None,
     chosen: dict[str, str] | None = None,
+    products: pd.DataFrame | None = None,
+    chosen_seasonality: dict[str, str] | None = None,
 ) -> ForecastResult:
     """Parent and leaf forecasts for the horizon; see the module docstring.
 
@@ -216,9 +238,13 @@ def forecast_cycle(
     c_code = lookup(history, LEAF, children)
     okc = c_code >= 0
     c_grid = series_grid(c_code[okc], ords[okc], qty[okc], n_children, cycle_ord)
+    modes = seasonality_in_effect(settings.seasonality, chosen_seasonality, settings.source)
+    season = cycle_season_plan(
+        p_grid, parents, products, modes, settings.seasonal_groups, parent_of_child, period, cycle_ord
+    )
     base = base_forecasts(
         p_grid, c_grid, parents["product_class"].to_numpy(), children["product_class"].to_numpy(), strategies,
-        settings.models, horizon, log,
+        settings.models, horizon, log, seasonality=modes, season=season, sd=bool(settings.levels),
     )
 
     # top-down basis: the reinitialized target (the period's share where the targets are all 0)
@@ -269,6 +295,11 @@ def forecast_cycle(
     parent_out["model_grain"] = np.repeat(grain, horizon)
     parent_out["strategy"] = np.repeat(strategy_of_parent, horizon)
     parent_out["zero_reason"] = zero_reason.ravel()
+    if settings.levels:
+        p_sd, l_sd = strategy_sd(strategy_of_parent, parent_of_child, base, parent_fc, leaf_fc)
+        bounds = coherent_intervals(
+            settings.levels, parent_fc, leaf_fc, parent_of_child, p_sd, l_sd, zeroed, zeroed[parent_of_child] | ~active
+        )
 
     leaf_out = children[LEAF].loc[children.index.repeat(horizon)].reset_index(drop=True)
     leaf_out["period_start"] = np.tile(starts.values, n_children)
@@ -277,6 +308,11 @@ def forecast_cycle(
     leaf_out["forecast"] = leaf_fc.ravel()
     leaf_out["parent_forecast"] = parent_fc[parent_of_child].ravel()
     leaf_out["basis"] = basis.ravel()
+    if settings.levels:
+        parent_out = pd.concat([parent_out, interval_frame(settings.levels, bounds[0], bounds[1])], axis=1)
+        leaf_out = pd.concat([leaf_out, interval_frame(settings.levels, bounds[2], bounds[3])], axis=1)
+    bound_columns = list(interval_frame(settings.levels, np.zeros((len(settings.levels), 0, 1)),
+                                        np.zeros((len(settings.levels), 0, 1))).columns)
 
     models = base.models
     is_parent = (models["grain"] == "parent").to_numpy()
@@ -285,7 +321,10 @@ def forecast_cycle(
          children.iloc[models["series"].to_numpy()[~is_parent]][LEAF + ["product_class"]]],
         ignore_index=True,
     )
-    models = pd.concat([models.drop(columns="series").reset_index(drop=True), keys], axis=1)
+    models = pd.concat(
+        [models.reset_index(drop=True), keys,
+         strength_columns(models, p_grid, c_grid, season, modes, keys["product_class"], period, cycle_ord)], axis=1
+    ).drop(columns="series")
     models.insert(0, "cycle_date", cycle_date)
     fitted = pd.concat(
         [_fitted_frame(p_grid, base.parent_fitted, parents.assign(customer=""), "parent", period),
@@ -298,8 +337,8 @@ def forecast_cycle(
         volume_moved=moved[moved > 0]
     )
     return ForecastResult(
-        parent=parent_out[PARENT_COLUMNS + ["strategy"]],
-        leaf=leaf_out[LEAF_COLUMNS],
+        parent=parent_out[PARENT_COLUMNS + ["strategy"] + bound_columns],
+        leaf=leaf_out[LEAF_COLUMNS + bound_columns],
         negatives_clipped=base.negatives + made.negatives,
         reconciled_negatives=made.negatives,
         redistributed=redistributed.reset_index(drop=True),
@@ -374,8 +413,11 @@ def run(
     cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
     columns = ["product", "site", "customer", "product_class", "first_active_period", "last_active_period"]
     chosen = dict(zip(strategy_choice["product_class"], strategy_choice["strategy"], strict=False))
+    seasonality = strategy_choice.get("seasonality", pd.Series("", index=strategy_choice.index))
+    chosen_seasonality = dict(zip(strategy_choice["product_class"], seasonality, strict=False))
     result = forecast_cycle(
-        lifecycle_history, share_tables[columns], reinitialized_target, settings, cycle_date, log, chosen
+        lifecycle_history, share_tables[columns], reinitialized_target, settings, cycle_date, log, chosen,
+        products, chosen_seasonality,
     )
     parent, leaf, models, fitted = result.parent, result.leaf, result.models, result.fitted
     first = parent.drop_duplicates(["product", "site"])
