@@ -8,12 +8,12 @@ BACKTEST_ACCURACY = "backtest_accuracy"
 backtest_accuracy = stage_asset(StageAsset(
     tables=(Table(
         BACKTEST_ACCURACY,
-        "Rolling-origin backtest per product class: WMAPE, bias, MASE and value added over seasonal naive "
-        "of each strategy at leaf and parent grain.",
+        "Rolling-origin backtest per product class and seasonality: WMAPE, bias, MASE, value added over "
+        "seasonal naive and prediction interval coverage of each strategy at leaf and parent grain.",
         frozenset({"pandas", "duckdb", "statsforecast"}),
     ),),
     run=stage.run,
     settings=lambda part: stage.BacktestSettings.of(part.config),
     group="forecast",
-    ins=("lifecycle_history", "share_tables", "cycle_calendar"),
+    ins=("lifecycle_history", "share_tables", "cycle_calendar", "products"),
 ))

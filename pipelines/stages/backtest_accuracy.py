@@ -31,8 +31,8 @@ next stage, `strategy_choice`.
 
 from __future__ import annotations
 
-from collections.abc import Callable
-from dataclasses import dataclass
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
@@ -41,17 +41,21 @@ from pipelines.calendar import ordinal_to_start, period_ordinal, season_length
 from pipelines.config_sections import BacktestConfig
 from pipelines.engines.accuracy import mase_scale
 from pipelines.engines.base_forecasts import base_forecasts
+from pipelines.engines.forecast_intervals import coherent_intervals, strategy_sd
 from pipelines.engines.hierarchy import NEEDS_RESIDUALS, coherent_forecasts, parent_sums
 from pipelines.engines.models import ModelSettings, run_model_groups, series_grid
 from pipelines.engines.period_shares import period_shares
+from pipelines.engines.seasonal_base import cycle_season_plan, seasonality_candidates
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.shares import compute_shares
 from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
 from pipelines.results import Log, StageResult, quiet
-from pipelines.vocabulary import BENCHMARK
+from pipelines.vocabulary import BENCHMARK, Seasonality, coverage_metric
 
-ACCURACY_COLUMNS = ["product_class", "strategy", "grain", "metric", "value", "origins", "horizon", "series"]
-_SUMS = ("abs_error", "error", "actual", "scaled", "scaled_cells")
+ACCURACY_COLUMNS = [
+    "product_class", "seasonality", "strategy", "grain", "metric", "value", "origins", "horizon", "series",
+]
+_SUMS = ("abs_error", "error", "actual", "scaled", "scaled_cells")  # then inside and cells per interval level
 
 
 @dataclass(frozen=True)
@@ -61,13 +65,26 @@ class BacktestSettings:
     backtest: BacktestConfig
     share: ShareSettings
     models: ModelSettings
+    seasonality: Mapping[str, tuple[str, ...]] = field(default_factory=dict)  # class -> seasonalities compared
+    seasonal_groups: Mapping[str, str] = field(default_factory=dict)
+    levels: tuple[float, ...] = ()
 
     @classmethod
     def of(cls, config) -> BacktestSettings:
         """From a planning config (every class it holds); a BacktestSettings is returned as it is."""
         if isinstance(config, BacktestSettings):
             return config
-        return cls(config.backtest, ShareSettings.of(config), ModelSettings.of(config))
+        classes = config.product_classes
+        return cls(
+            config.backtest, ShareSettings.of(config), ModelSettings.of(config),
+            {name: seasonality_candidates(pc) for name, pc in classes.items()},
+            {name: pc.seasonal_group for name, pc in classes.items()}, tuple(config.intervals.levels),
+        )
+
+    def candidates(self, name: str) -> tuple[str, ...]:
+        """The seasonalities compared for a class (its models' own setting where none is configured)."""
+        own = Seasonality.OWN if self.models.choices[name].seasonal else Seasonality.NONE
+        return tuple(self.seasonality.get(name, (own,)))
 
 
 @dataclass(frozen=True)
@@ -116,11 +133,13 @@ def run_backtest(
     settings: BacktestSettings,
     cycle_date: pd.Timestamp,
     log: Callable[[str], None] | None = None,
+    products: pd.DataFrame | None = None,
 ) -> BacktestResult:
-    """The accuracy table (class x strategy x grain x metric); see the module docstring.
+    """The accuracy table (class x seasonality x strategy x grain x metric); see the module docstring.
 
     history: lifecycle history (all origins); children: the cycle's active
-    children (leaf keys, product_class).
+    children (leaf keys, product_class); products: the master data (for a
+    seasonal_group that is one of its columns).
     """
     settings = BacktestSettings.of(settings)
     period = settings.share.period
@@ -150,16 +169,32 @@ def run_backtest(
 
     strategies = list(bt.strategies)
     names = strategies + [BENCHMARK]
-    # sums[name][grain]: (n_classes, 5) running sums of abs error, error, actual, scaled error, scaled cells
-    sums = {s: {g: np.zeros((len(classes), len(_SUMS))) for g in ("leaf", "parent")} for s in names}
+    levels = settings.levels
+    variants = list(dict.fromkeys(v for c in classes for v in settings.candidates(c)))
+    # sums[variant][name][grain]: (n_classes, 5 + 2 L) running sums of abs error, error, actual, scaled error,
+    # scaled cells, and per interval level the actuals inside and the cells scored
+    width = len(_SUMS) + 2 * len(levels)
+    sums = {
+        v: {s: {g: np.zeros((len(classes), width)) for g in ("leaf", "parent")} for s in names} for v in variants
+    }
     driver = "mint_shrink" if any(s in NEEDS_RESIDUALS for s in strategies) else "forecast_proportions"
-    for o in origins:
+    parents_cls = parents.assign(product_class=parent_class)
+    benchmark: dict[int, dict[str, np.ndarray]] = {}
+    for o, variant in [(o, v) for o in origins for v in variants]:
         origin_date = ordinal_to_start(np.array([o]), period)[0]
+        mine = [c for c in classes if variant in settings.candidates(c)]
         if log:
-            log(f"backtest origin {origin_date.date()}")
+            log(f"backtest origin {origin_date.date()}, seasonality {variant}: {', '.join(mine)}")
         p_grid = series_grid(pcode, ords, qty, n_parents, o)
         c_grid = series_grid(ccode, ords, qty, n_children, o)
-        base = base_forecasts(p_grid, c_grid, parent_class, child_class, {c: driver for c in classes}, models, h, log)
+        modes = {c: variant for c in mine}
+        season = cycle_season_plan(
+            p_grid, parents_cls, products, modes, settings.seasonal_groups, parent_of_child, period, o
+        )
+        base = base_forecasts(
+            p_grid, c_grid, parent_class, child_class, {c: driver for c in mine}, models, h, log,
+            seasonality=modes, season=season, sd=bool(levels),
+        )
         shares = compute_shares(history, children, share_settings, origin_date)
         share_lookup = lookup(children, LEAF, shares)
         # the period shares the cycle would split by (per-period methods differ from the base share)
@@ -167,56 +202,73 @@ def run_backtest(
         leaf_actual = _dense(ccode, ords, qty, n_children, o, h)
         parent_actual = parent_sums(leaf_actual, parent_of_child, n_parents)
         scale = {"leaf": _scales(c_grid, child_class, settings), "parent": _scales(p_grid, parent_class, settings)}
-        fc = {}
+        fc, bounds = {}, {}
         for s in strategies:
             p, l, _, _ = coherent_forecasts(
                 s, base.parent_fc, base.leaf_fc, parent_of_child, basis, base.parent_res, base.leaf_res
             )
             fc[s] = {"parent": p, "leaf": l}
-        fc[BENCHMARK] = {
-            "parent": _seasonal_naive(p_grid, h, period, log),
-            "leaf": _seasonal_naive(c_grid, h, period, log),
-        }
+            if levels:
+                p_sd, l_sd = strategy_sd(np.full(n_parents, s, dtype=object), parent_of_child, base, p, l)
+                lo_p, hi_p, lo_l, hi_l = coherent_intervals(levels, p, l, parent_of_child, p_sd, l_sd)
+                bounds[s] = {"parent": (lo_p, hi_p), "leaf": (lo_l, hi_l)}
+        if o not in benchmark:  # the benchmark does not depend on the seasonality compared
+            benchmark[o] = {
+                "parent": _seasonal_naive(p_grid, h, period, log), "leaf": _seasonal_naive(c_grid, h, period, log)
+            }
+        fc[BENCHMARK] = benchmark[o]
+        in_variant = np.isin(np.asarray(classes, dtype=object), mine)
         for s in names:
             for grain, actual, cls in (("leaf", leaf_actual, c_cls), ("parent", parent_actual, p_cls)):
                 e = fc[s][grain] - actual
                 q = scale[grain][:, None]
                 good = np.isfinite(q) & (q > 0)
                 scaled = np.divide(np.abs(e), q, out=np.zeros_like(e), where=good)
-                per_series = np.stack(
-                    [np.abs(e).sum(1), e.sum(1), actual.sum(1), scaled.sum(1), np.broadcast_to(good, e.shape).sum(1)],
-                    axis=1,
-                )
-                np.add.at(sums[s][grain], cls, per_series)
+                cells = np.broadcast_to(good, e.shape).sum(1)
+                columns = [np.abs(e).sum(1), e.sum(1), actual.sum(1), scaled.sum(1), cells]
+                for i in range(len(levels)):
+                    lo, hi = (b[i] for b in bounds[s][grain]) if s in bounds else (np.nan * e, np.nan * e)
+                    columns += [((actual >= lo) & (actual <= hi)).sum(1), np.isfinite(lo).sum(1)]
+                keep = in_variant[cls]
+                np.add.at(sums[variant][s][grain], cls[keep], np.stack(columns, axis=1)[keep])
     return BacktestResult(
-        accuracy=_table(sums, classes, c_cls, p_cls, len(origins), h),
+        accuracy=_table(
+            sums, classes, c_cls, p_cls, len(origins), h, levels, {c: settings.candidates(c) for c in classes}
+        ),
         origins=[ordinal_to_start(np.array([o]), period)[0] for o in origins],
     )
 
 
-def _table(sums, classes, c_cls, p_cls, n_origins: int, h: int) -> pd.DataFrame:
-    rows = []
+def _table(sums, classes, c_cls, p_cls, n_origins: int, h: int, levels, candidates) -> pd.DataFrame:
     counts = {"leaf": np.bincount(c_cls, minlength=len(classes)), "parent": np.bincount(p_cls, minlength=len(classes))}
-    wmape = {}
-    for s, by_grain in sums.items():
-        for grain, m in by_grain.items():
-            abs_e, err, act, scaled, cells = m.T
-            with np.errstate(invalid="ignore", divide="ignore"):
-                wmape[s, grain] = np.where(act > 0, abs_e / act, np.nan)
-                bias = np.where(act > 0, err / act, np.nan)
-                mase = np.where(cells > 0, scaled / cells, np.nan)
-            for metric, values in (("wmape", wmape[s, grain]), ("bias", bias), ("mase", mase)):
-                rows.append((s, grain, metric, values))
-    for s, grain in list(wmape):
-        rows.append((s, grain, "fva", wmape[BENCHMARK, grain] - wmape[s, grain]))
     out = []
-    for s, grain, metric, values in rows:
-        for i, name in enumerate(classes):
-            out.append((name, s, grain, metric, float(values[i]), n_origins, h, int(counts[grain][i])))
+    for variant, by_name in sums.items():
+        rows = []
+        wmape = {}
+        for s, by_grain in by_name.items():
+            for grain, m in by_grain.items():
+                abs_e, err, act, scaled, cells = m.T[: len(_SUMS)]
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    wmape[s, grain] = np.where(act > 0, abs_e / act, np.nan)
+                    bias = np.where(act > 0, err / act, np.nan)
+                    mase = np.where(cells > 0, scaled / cells, np.nan)
+                for metric, values in (("wmape", wmape[s, grain]), ("bias", bias), ("mase", mase)):
+                    rows.append((s, grain, metric, values))
+                for i, level in enumerate(levels):
+                    inside, scored = m.T[len(_SUMS) + 2 * i], m.T[len(_SUMS) + 2 * i + 1]
+                    if s != BENCHMARK:
+                        coverage = np.divide(inside, scored, out=np.full(len(classes), np.nan), where=scored > 0)
+                        rows.append((s, grain, coverage_metric(level), coverage))
+        for s, grain in list(wmape):
+            rows.append((s, grain, "fva", wmape[BENCHMARK, grain] - wmape[s, grain]))
+        for s, grain, metric, values in rows:
+            for i, name in enumerate(classes):
+                if variant in candidates[name]:
+                    out.append((name, variant, s, grain, metric, float(values[i]), n_origins, h,
+                                int(counts[grain][i])))
     table = pd.DataFrame(out, columns=ACCURACY_COLUMNS)
     keep = table["series"] > 0  # a class without series in the data has nothing to report
     return table[keep].reset_index(drop=True)
-
 
 
 def run(
@@ -225,17 +277,20 @@ def run(
     cycle_calendar: pd.DataFrame,
     settings: BacktestSettings,
     log: Log = quiet,
+    products: pd.DataFrame | None = None,
 ) -> StageResult:
     """The accuracy table of every strategy and the benchmark, with the accuracy by class in the metadata."""
     cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
     children = share_tables[["product", "site", "customer", "product_class"]]
-    result = run_backtest(lifecycle_history, children, settings, cycle_date, log=log)
+    result = run_backtest(lifecycle_history, children, settings, cycle_date, log=log, products=products)
     table = result.accuracy
     wide = table.pivot_table(
-        index=["product_class", "grain", "strategy"], columns="metric", values="value"
+        index=["product_class", "seasonality", "grain", "strategy"], columns="metric", values="value"
     ).reset_index()
     figures = {
         "origins": ", ".join(str(o.date()) for o in result.origins),
-        "accuracy_by_class": wide.sort_values(["product_class", "grain", "wmape"]) if len(wide) else wide,
+        "accuracy_by_class": wide.sort_values(["product_class", "seasonality", "grain", "wmape"])
+        if len(wide)
+        else wide,
     }
     return StageResult(outputs={"backtest_accuracy": table}, metadata={"backtest_accuracy": figures})
