@@ -141,6 +141,26 @@ class ForecastFittedValues(_Strict):
         unique = ["grain", "product", "site", "customer", "period_start"]
 
 
+class UpperLevelForecast(_Strict):
+    """Forecasts of the levels above the parent (hierarchy.upper_levels), per node and period."""
+
+    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
+    product_class: Series[str] = pa.Field(description="product class")
+    level: Series[str] = pa.Field(description="level: product, a products column (e.g. product_family) or total")
+    node: Series[str] = pa.Field(description="the node's key on its level (product, column value, class)")
+    parent_node: Series[str] = pa.Field(description="its node on the level above ('' on the top level)")
+    period_start: Series[DateTime] = pa.Field(description="forecast period")
+    base_forecast: Series[float] = pa.Field(ge=0, description="the node's own model forecast (its sum of history)")
+    strategy_forecast: Series[float] = pa.Field(
+        description="sum of its parents' strategy_forecast (for MinT / WLS: the tree's reconciled value)"
+    )
+    forecast: Series[float] = pa.Field(description="sum of its parents' final forecast")
+    model: Series[str] = pa.Field(description="model label of the base forecast")
+
+    class Config:
+        unique = ["level", "node", "period_start"]
+
+
 class BacktestAccuracy(_Strict):
     """Rolling-origin backtest: one accuracy value per product class, strategy, grain and metric."""
 

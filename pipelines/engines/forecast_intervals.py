@@ -74,7 +74,7 @@ def strategy_sd(
         elif strategy == Strategy.BOTTOM_UP:
             l_sd[cs] = base.leaf_sd[cs]
             p_sd[ps] = np.sqrt(parent_sums(base.leaf_sd**2 * cs[:, None], parent_of_child, n_parents))[ps]
-        elif tree_sd is not None:
+        elif tree_sd is not None and np.isfinite(tree_sd[0][ps]).all():
             p_sd[ps], l_sd[cs] = tree_sd[0][ps], tree_sd[1][cs]
         else:
             remap = np.cumsum(ps) - 1

@@ -53,7 +53,12 @@ import numpy as np
 import pandas as pd
 
 from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal
-from pipelines.checks import NO_NEGATIVE_FORECAST, NO_VOLUME_AFTER_PHASE_OUT, NO_VOLUME_OUTSIDE_ACTIVE_SPAN
+from pipelines.checks import (
+    NO_NEGATIVE_FORECAST,
+    NO_VOLUME_AFTER_PHASE_OUT,
+    NO_VOLUME_OUTSIDE_ACTIVE_SPAN,
+    UPPER_LEVELS_COHERENT,
+)
 from pipelines.engines.base_forecasts import BaseForecasts, base_forecasts
 from pipelines.engines.forecast_intervals import coherent_intervals, interval_frame, strategy_sd
 from pipelines.engines.hierarchy import Coherent, coherent, parent_sums
@@ -64,6 +69,15 @@ from pipelines.engines.seasonal_base import (
     cycle_season_plan,
     seasonality_in_effect,
     strength_columns,
+)
+from pipelines.engines.upper_levels import (
+    UPPER_COLUMNS,
+    apply_upper_levels,
+    find_incoherent_upper_levels,
+    residual_window,
+    upper_base,
+    upper_frame,
+    upper_tree,
 )
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
@@ -122,6 +136,7 @@ class ForecastResult:
     redistributed: pd.DataFrame | None = None  # parent periods whose negative reconciled leaves were moved
     models: pd.DataFrame | None = None  # one row per forecast series: grain, key, model, parameters
     fitted: pd.DataFrame | None = None  # in-sample one-step fitted values behind MinT / WLS residuals
+    upper: pd.DataFrame | None = None  # upper_level_forecast: the levels above the parent (hierarchy.upper_levels)
 
 
 @dataclass(frozen=True)
@@ -256,6 +271,12 @@ def forecast_cycle(
     basis = np.where(use_target, target_m, share_m)
 
     strategy_of_parent = parents["product_class"].map(strategies).to_numpy()
+    tree_sd = upper = None
+    if settings.upper_levels:  # MinT / WLS over the tree with the levels above the parent
+        tree = upper_tree(parents, products, settings.upper_levels, parent_of_child, f"{settings.source}: hierarchy")
+        window = residual_window(p_grid, c_grid) if base.parent_res is not None else None
+        upper = upper_base(tree, p_grid, settings.models, horizon, window, bool(settings.levels), log)
+        base, tree_sd = apply_upper_levels(tree, upper, base, strategy_of_parent, parent_of_child, bool(settings.levels))
     # each strategy works on the children active in the period: an inactive child takes no volume
     active = _active_matrix(children, starts, period)
     made = combine_strategies(strategy_of_parent, base, parent_of_child, basis, active)
@@ -296,7 +317,7 @@ def forecast_cycle(
     parent_out["strategy"] = np.repeat(strategy_of_parent, horizon)
     parent_out["zero_reason"] = zero_reason.ravel()
     if settings.levels:
-        p_sd, l_sd = strategy_sd(strategy_of_parent, parent_of_child, base, parent_fc, leaf_fc)
+        p_sd, l_sd = strategy_sd(strategy_of_parent, parent_of_child, base, parent_fc, leaf_fc, tree_sd)
         bounds = coherent_intervals(
             settings.levels, parent_fc, leaf_fc, parent_of_child, p_sd, l_sd, zeroed, zeroed[parent_of_child] | ~active
         )
@@ -336,7 +357,13 @@ def forecast_cycle(
     redistributed = parent_out.loc[moved > 0, PARENT + ["period_start", "strategy_forecast"]].assign(
         volume_moved=moved[moved > 0]
     )
+    upper_out = (
+        upper_frame(tree, cycle_date, starts, upper.fc, upper.label, strategy_fc, parent_fc)
+        if upper is not None
+        else pd.DataFrame({c: [] for c in UPPER_COLUMNS})
+    )
     return ForecastResult(
+        upper=upper_out,
         parent=parent_out[PARENT_COLUMNS + ["strategy"] + bound_columns],
         leaf=leaf_out[LEAF_COLUMNS + bound_columns],
         negatives_clipped=base.negatives + made.negatives,
@@ -435,6 +462,7 @@ def run(
             "statistical_forecast": leaf,
             "forecast_models": models,
             "forecast_fitted_values": fitted,
+            "upper_level_forecast": result.upper,
         },
         metadata={
             "parent_forecast": {
@@ -469,9 +497,24 @@ def run(
             "forecast_fitted_values": {
                 "series": int(fitted.drop_duplicates(["grain", "product", "site", "customer"]).shape[0])
             },
+            "upper_level_forecast": {
+                "levels": ", ".join(settings.upper_levels) or "none",
+                "nodes": int(result.upper[["level", "node"]].drop_duplicates().shape[0]),
+            },
         },
-        checks=forecast_checks(parent, leaf, customer_spans, products, settings.period),
+        checks={
+            **forecast_checks(parent, leaf, customer_spans, products, settings.period),
+            **upper_level_checks(result.upper, parent, products, settings.upper_levels),
+        },
     )
+
+
+def upper_level_checks(
+    upper: pd.DataFrame, parent_forecast: pd.DataFrame, products: pd.DataFrame, upper_levels: tuple[str, ...]
+) -> dict[str, CheckRows]:
+    """The check that every node above the parent is the sum of its children (`find_incoherent_upper_levels`)."""
+    failing = find_incoherent_upper_levels(upper, parent_forecast, products, upper_levels)
+    return {UPPER_LEVELS_COHERENT: CheckRows(failing)}
 
 
 def forecast_checks(
