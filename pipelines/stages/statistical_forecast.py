@@ -275,8 +275,9 @@ def forecast_cycle(
     if settings.upper_levels:  # MinT / WLS over the tree with the levels above the parent
         tree = upper_tree(parents, products, settings.upper_levels, parent_of_child, f"{settings.source}: hierarchy")
         window = residual_window(p_grid, c_grid) if base.parent_res is not None else None
-        upper = upper_base(tree, p_grid, settings.models, horizon, window, bool(settings.levels), log)
-        base, tree_sd = apply_upper_levels(tree, upper, base, strategy_of_parent, parent_of_child, bool(settings.levels))
+        with_sd = bool(settings.levels)
+        upper = upper_base(tree, p_grid, settings.models, horizon, window, with_sd, log)
+        base, tree_sd = apply_upper_levels(tree, upper, base, strategy_of_parent, parent_of_child, with_sd)
     # each strategy works on the children active in the period: an inactive child takes no volume
     active = _active_matrix(children, starts, period)
     made = combine_strategies(strategy_of_parent, base, parent_of_child, basis, active)
