@@ -105,7 +105,7 @@ def _forecast_checks(run: PartitionRun, t: Tables):
 
 
 def _upper_level_checks(run: PartitionRun, t: Tables):
-    from pipelines.stages.statistical_forecast import upper_level_checks
+    from pipelines.engines.upper_levels import upper_level_checks
 
     levels = tuple(run.config.hierarchy.upper_levels)
     return upper_level_checks(t["upper_level_forecast"], t["parent_forecast"], t["products"], levels)
@@ -347,7 +347,7 @@ def upper_node_plus_one(t: Tables):
 
 def reconciled_parent_moved_under_its_product(t: Tables):
     # a MinT parent's strategy_forecast off by 1 %: its product node (the level right above) no longer holds it
-    parent, upper = t["parent_forecast"], t["upper_level_forecast"]
+    parent = t["parent_forecast"]
     i = parent.index[parent["strategy_forecast"] > 1.0][0]
     moved = _changed(parent, i, "strategy_forecast", parent.at[i, "strategy_forecast"] * 1.01)
     return {"parent_forecast": moved}, {"level": "product", "node": parent.at[i, "product"],

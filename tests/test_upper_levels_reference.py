@@ -14,9 +14,10 @@ import pandas as pd
 import pytest
 from test_statistical_forecast import CROSTON, CYCLE, H1, H2, MINT_WEEKS, targets
 
+from pipelines.engines.upper_levels import upper_level_checks
 from pipelines.errors import ConfigError
 from pipelines.schemas_forecast import ParentForecast, StatisticalForecast, UpperLevelForecast
-from pipelines.stages.statistical_forecast import forecast_cycle, upper_level_checks
+from pipelines.stages.statistical_forecast import forecast_cycle
 
 # product P1 at two sites, P2 at one; every series has demand in its first week
 SERIES = {

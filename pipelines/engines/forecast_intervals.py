@@ -135,3 +135,17 @@ def interval_frame(levels: Sequence[float], lower: np.ndarray, upper: np.ndarray
         out[lo] = np.asarray(lower[i], dtype=float).ravel()
         out[hi] = np.asarray(upper[i], dtype=float).ravel()
     return pd.DataFrame(out)
+
+
+def interval_frames(
+    levels: Sequence[float], strategy_of_parent, parent_of_child, base, parent_fc, leaf_fc, parent_zero, leaf_zero,
+    tree_sd=None,
+):
+    """(parent bound columns, leaf bound columns) of the cycle's forecast, rows series-major (empty without levels)."""
+    import pandas as pd
+
+    if not len(levels):
+        return pd.DataFrame(index=range(parent_fc.size)), pd.DataFrame(index=range(leaf_fc.size))
+    p_sd, l_sd = strategy_sd(strategy_of_parent, parent_of_child, base, parent_fc, leaf_fc, tree_sd)
+    bounds = coherent_intervals(levels, parent_fc, leaf_fc, parent_of_child, p_sd, l_sd, parent_zero, leaf_zero)
+    return interval_frame(levels, bounds[0], bounds[1]), interval_frame(levels, bounds[2], bounds[3])

@@ -206,7 +206,8 @@ def strength_columns(
     c_grid: SeriesGrid,
     season: SeasonPlan | None,
     modes: Mapping[str, str],
-    product_class: pd.Series,
+    parents: pd.DataFrame,
+    children: pd.DataFrame,
     period: str,
     end_ord: int,
 ) -> pd.DataFrame:
@@ -214,6 +215,12 @@ def strength_columns(
     F_S and, for a group-seasonal series, its group's (NaN otherwise)."""
     grain = models["grain"].to_numpy()
     series = models["series"].to_numpy()
+    is_parent = grain == "parent"
+    product_class = np.where(
+        is_parent,
+        parents["product_class"].to_numpy()[np.where(is_parent, series, 0)] if len(parents) else "",
+        children["product_class"].to_numpy()[np.where(is_parent, 0, series)] if len(children) else "",
+    )
     own = np.full(len(models), np.nan)
     group = np.full(len(models), np.nan)
     for name, grid in (("parent", p_grid), ("leaf", c_grid)):
@@ -224,7 +231,7 @@ def strength_columns(
             group[rows] = np.where(g >= 0, season.strength[np.maximum(g, 0)], np.nan)
     return pd.DataFrame(
         {
-            "seasonality": product_class.map(dict(modes)).fillna(Seasonality.NONE).to_numpy(),
+            "seasonality": pd.Series(product_class).map(dict(modes)).fillna(Seasonality.NONE).to_numpy(),
             "seasonal_strength": own,
             "group_seasonal_strength": group,
         }

@@ -33,7 +33,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 import pandas as pd
 
-from pipelines.checks import RELATIVE_TOLERANCE
+from pipelines.checks import RELATIVE_TOLERANCE, UPPER_LEVELS_COHERENT
 from pipelines.engines.base_forecasts import _subgrid, residual_matrix
 from pipelines.engines.models import (
     ModelSettings,
@@ -303,3 +303,41 @@ def apply_upper_levels(ut: UpperTree, upper: UpperBase, base, strategy_of_parent
         if tree_sd is not None:
             p_sd[ps], l_sd[cs] = tree_sd[0][ps], tree_sd[1][cs]
     return replace(base, parent_fc=p_fc, leaf_fc=l_fc), ((p_sd, l_sd) if sd else None)
+
+
+@dataclass(frozen=True)
+class UpperRun:
+    """The upper levels of one forecast run: the tree and its nodes' base forecasts (None without levels)."""
+
+    tree: UpperTree | None = None
+    base: UpperBase | None = None
+
+    def frame(self, cycle_date, starts, strategy_parent: np.ndarray, final_parent: np.ndarray) -> pd.DataFrame:
+        """`upper_level_forecast` (empty, with its columns, without levels)."""
+        if self.tree is None:
+            return pd.DataFrame({c: [] for c in UPPER_COLUMNS})
+        return upper_frame(self.tree, cycle_date, starts, self.base.fc, self.base.label, strategy_parent, final_parent)
+
+
+def upper_levels_run(
+    levels, parents, products, parent_of_child, p_grid, c_grid, base, strategy_of_parent, models, horizon, sd,
+    where="hierarchy.upper_levels", log=None,
+):
+    """(base with MinT / WLS parents and leaves reconciled over the tree, their sd or None, UpperRun)."""
+    if not levels:
+        return base, None, UpperRun()
+    tree = upper_tree(parents, products, levels, parent_of_child, where)
+    window = residual_window(p_grid, c_grid) if base.parent_res is not None else None
+    upper = upper_base(tree, p_grid, models, horizon, window, sd, log)
+    base, tree_sd = apply_upper_levels(tree, upper, base, strategy_of_parent, parent_of_child, sd)
+    return base, tree_sd, UpperRun(tree, upper)
+
+
+def upper_level_checks(
+    upper: pd.DataFrame, parent_forecast: pd.DataFrame, products: pd.DataFrame, upper_levels: Sequence[str]
+) -> dict:
+    """The check `upper_levels_coherent` over the stored tables (`find_incoherent_upper_levels`)."""
+    from pipelines.results import CheckRows
+
+    failing = find_incoherent_upper_levels(upper, parent_forecast, products, tuple(upper_levels))
+    return {UPPER_LEVELS_COHERENT: CheckRows(failing)}

@@ -52,78 +52,39 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal
-from pipelines.checks import (
-    NO_NEGATIVE_FORECAST,
-    NO_VOLUME_AFTER_PHASE_OUT,
-    NO_VOLUME_OUTSIDE_ACTIVE_SPAN,
-    UPPER_LEVELS_COHERENT,
+from pipelines.calendar import horizon_starts, period_ordinal
+from pipelines.checks import NO_NEGATIVE_FORECAST, NO_VOLUME_AFTER_PHASE_OUT, NO_VOLUME_OUTSIDE_ACTIVE_SPAN
+from pipelines.engines import seasonal_base as sb
+from pipelines.engines.base_forecasts import base_forecasts
+from pipelines.engines.forecast_frames import (
+    active_matrix,
+    combine_strategies,
+    fitted_frame,
+    leaf_matrix,
+    model_keys,
+    parent_reasons,
 )
-from pipelines.engines.base_forecasts import BaseForecasts, base_forecasts
-from pipelines.engines.forecast_intervals import coherent_intervals, interval_frame, strategy_sd
-from pipelines.engines.hierarchy import Coherent, coherent, parent_sums
-from pipelines.engines.models import ModelSettings, SeriesGrid, series_grid
+from pipelines.engines.forecast_intervals import interval_frames
+from pipelines.engines.hierarchy import parent_sums
+from pipelines.engines.models import ModelSettings, series_grid
 from pipelines.engines.proofs import find_negative, find_volume_after_phase_out, find_volume_outside_active_span
-from pipelines.engines.seasonal_base import (
-    configured_seasonality,
-    cycle_season_plan,
-    seasonality_in_effect,
-    strength_columns,
-)
-from pipelines.engines.upper_levels import (
-    UPPER_COLUMNS,
-    apply_upper_levels,
-    find_incoherent_upper_levels,
-    residual_window,
-    upper_base,
-    upper_frame,
-    upper_tree,
-)
+from pipelines.engines.upper_levels import upper_level_checks, upper_levels_run
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
 from pipelines.results import CheckRows, Log, StageResult, quiet
 from pipelines.vocabulary import AUTO, Basis, ModelGrain, Strategy, ZeroReason, values
 
 PARENT_COLUMNS = [
-    "cycle_date",
-    "product_class",
-    "product",
-    "site",
-    "period_start",
-    "forecast",
-    "strategy_forecast",
-    "model",
-    "demand_class",
-    "model_grain",
-    "zero_reason",
+    "cycle_date", "product_class", "product", "site", "period_start", "forecast", "strategy_forecast", "model",
+    "demand_class", "model_grain", "zero_reason",
 ]
 LEAF_COLUMNS = LEAF + ["period_start", "cycle_date", "product_class", "forecast", "parent_forecast", "basis"]
 FITTED_COLUMNS = [
-    "cycle_date",
-    "grain",
-    "product_class",
-    "product",
-    "site",
-    "customer",
-    "period_start",
-    "actual",
-    "fitted",
+    "cycle_date", "grain", "product_class", "product", "site", "customer", "period_start", "actual", "fitted",
 ]
 MODEL_COLUMNS = [
-    "cycle_date",
-    "grain",
-    "product_class",
-    "product",
-    "site",
-    "customer",
-    "demand_class",
-    "adi",
-    "cv2",
-    "model",
-    "parameters",
-    "seasonality",
-    "seasonal_strength",
-    "group_seasonal_strength",
+    "cycle_date", "grain", "product_class", "product", "site", "customer", "demand_class", "adi", "cv2",
+    "model", "parameters", "seasonality", "seasonal_strength", "group_seasonal_strength",
 ]
 
 
@@ -162,7 +123,7 @@ class ForecastSettings:
         return cls(
             config.calendar.period, config.calendar.horizon, {name: pc.strategy for name, pc in classes.items()},
             ModelSettings.of(config), config.source,
-            {name: configured_seasonality(pc) for name, pc in classes.items()},
+            {name: sb.configured_seasonality(pc) for name, pc in classes.items()},
             {name: pc.seasonal_group for name, pc in classes.items()},
             tuple(config.intervals.levels), tuple(config.hierarchy.upper_levels),
         )
@@ -183,38 +144,6 @@ def strategy_by_class(settings: ForecastSettings, chosen: dict[str, str] | None 
         else:
             out[name] = configured
     return out
-
-
-def combine_strategies(
-    strategy_of_parent: np.ndarray,
-    base: BaseForecasts,
-    parent_of_child: np.ndarray,
-    basis: np.ndarray,
-    active: np.ndarray | None = None,
-) -> Coherent:
-    """Each parent made coherent by its own strategy, on its active children (`hierarchy.coherent`)."""
-    parent = np.zeros_like(base.parent_fc)
-    leaf = np.zeros_like(base.leaf_fc)
-    moved = np.zeros_like(base.parent_fc)
-    source = np.empty(leaf.shape, dtype=object)
-    negatives = 0
-    for strategy in pd.unique(strategy_of_parent):  # a handful of strategies, not a loop over series
-        ps = strategy_of_parent == strategy
-        cs = ps[parent_of_child]
-        remap = np.cumsum(ps) - 1
-        out = coherent(
-            strategy,
-            base.parent_fc[ps],
-            base.leaf_fc[cs],
-            remap[parent_of_child[cs]],
-            basis[cs],
-            None if base.parent_res is None else base.parent_res[ps],
-            None if base.leaf_res is None else base.leaf_res[cs],
-            None if active is None else active[cs],
-        )
-        parent[ps], leaf[cs], source[cs], moved[ps] = out.parent, out.leaf, out.source, out.moved
-        negatives += out.negatives
-    return Coherent(parent, leaf, source, negatives, moved)
 
 
 def forecast_cycle(
@@ -253,8 +182,8 @@ def forecast_cycle(
     c_code = lookup(history, LEAF, children)
     okc = c_code >= 0
     c_grid = series_grid(c_code[okc], ords[okc], qty[okc], n_children, cycle_ord)
-    modes = seasonality_in_effect(settings.seasonality, chosen_seasonality, settings.source)
-    season = cycle_season_plan(
+    modes = sb.seasonality_in_effect(settings.seasonality, chosen_seasonality, settings.source)
+    season = sb.cycle_season_plan(
         p_grid, parents, products, modes, settings.seasonal_groups, parent_of_child, period, cycle_ord
     )
     base = base_forecasts(
@@ -263,23 +192,20 @@ def forecast_cycle(
     )
 
     # top-down basis: the reinitialized target (the period's share where the targets are all 0)
-    target_m = _leaf_matrix(target, children, "target", starts)
-    share_m = _leaf_matrix(target, children, "share", starts)
+    target_m = leaf_matrix(target, children, "target", starts)
+    share_m = leaf_matrix(target, children, "share", starts)
     target_sum = np.zeros((n_parents, horizon))
     np.add.at(target_sum, parent_of_child, target_m)
     use_target = target_sum[parent_of_child] > 0
     basis = np.where(use_target, target_m, share_m)
 
     strategy_of_parent = parents["product_class"].map(strategies).to_numpy()
-    tree_sd = upper = None
-    if settings.upper_levels:  # MinT / WLS over the tree with the levels above the parent
-        tree = upper_tree(parents, products, settings.upper_levels, parent_of_child, f"{settings.source}: hierarchy")
-        window = residual_window(p_grid, c_grid) if base.parent_res is not None else None
-        with_sd = bool(settings.levels)
-        upper = upper_base(tree, p_grid, settings.models, horizon, window, with_sd, log)
-        base, tree_sd = apply_upper_levels(tree, upper, base, strategy_of_parent, parent_of_child, with_sd)
+    base, tree_sd, upper = upper_levels_run(  # MinT / WLS over the tree with the levels above the parent
+        settings.upper_levels, parents, products, parent_of_child, p_grid, c_grid, base, strategy_of_parent,
+        settings.models, horizon, bool(settings.levels), f"{settings.source}: hierarchy.upper_levels", log,
+    )
     # each strategy works on the children active in the period: an inactive child takes no volume
-    active = _active_matrix(children, starts, period)
+    active = active_matrix(children, starts, period)
     made = combine_strategies(strategy_of_parent, base, parent_of_child, basis, active)
     strategy_fc, leaf_fc = made.parent, made.leaf
     basis = np.where(
@@ -290,7 +216,7 @@ def forecast_cycle(
     # parent: no child holds a share; otherwise: no child is active, or none took any of the volume).
     # Every other parent period keeps the strategy's value, and its leaves must sum to it (the check
     # children_sum_to_parent compares them with strategy_forecast, never with a sum of the leaves)
-    zero_reason = _parent_reasons(target, parents, starts)
+    zero_reason = parent_reasons(target, parents, starts)
     no_active_child = np.isin(zero_reason, [ZeroReason.PRODUCT_NOT_ACTIVE, ZeroReason.NO_ACTIVE_CHILD])
     carried = parent_sums(np.abs(leaf_fc), parent_of_child, n_parents) > 0
     zeroed = pd.notna(zero_reason) & (
@@ -317,11 +243,10 @@ def forecast_cycle(
     parent_out["model_grain"] = np.repeat(grain, horizon)
     parent_out["strategy"] = np.repeat(strategy_of_parent, horizon)
     parent_out["zero_reason"] = zero_reason.ravel()
-    if settings.levels:
-        p_sd, l_sd = strategy_sd(strategy_of_parent, parent_of_child, base, parent_fc, leaf_fc, tree_sd)
-        bounds = coherent_intervals(
-            settings.levels, parent_fc, leaf_fc, parent_of_child, p_sd, l_sd, zeroed, zeroed[parent_of_child] | ~active
-        )
+    p_bounds, l_bounds = interval_frames(
+        settings.levels, strategy_of_parent, parent_of_child, base, parent_fc, leaf_fc, zeroed,
+        zeroed[parent_of_child] | ~active, tree_sd,
+    )
 
     leaf_out = children[LEAF].loc[children.index.repeat(horizon)].reset_index(drop=True)
     leaf_out["period_start"] = np.tile(starts.values, n_children)
@@ -330,27 +255,17 @@ def forecast_cycle(
     leaf_out["forecast"] = leaf_fc.ravel()
     leaf_out["parent_forecast"] = parent_fc[parent_of_child].ravel()
     leaf_out["basis"] = basis.ravel()
-    if settings.levels:
-        parent_out = pd.concat([parent_out, interval_frame(settings.levels, bounds[0], bounds[1])], axis=1)
-        leaf_out = pd.concat([leaf_out, interval_frame(settings.levels, bounds[2], bounds[3])], axis=1)
-    bound_columns = list(interval_frame(settings.levels, np.zeros((len(settings.levels), 0, 1)),
-                                        np.zeros((len(settings.levels), 0, 1))).columns)
+    parent_out = pd.concat([parent_out, p_bounds], axis=1)
+    leaf_out = pd.concat([leaf_out, l_bounds], axis=1)
 
-    models = base.models
-    is_parent = (models["grain"] == "parent").to_numpy()
-    keys = pd.concat(
-        [parents.iloc[models["series"].to_numpy()[is_parent]][PARENT + ["product_class"]].assign(customer=""),
-         children.iloc[models["series"].to_numpy()[~is_parent]][LEAF + ["product_class"]]],
-        ignore_index=True,
-    )
     models = pd.concat(
-        [models.reset_index(drop=True), keys,
-         strength_columns(models, p_grid, c_grid, season, modes, keys["product_class"], period, cycle_ord)], axis=1
-    ).drop(columns="series")
+        [model_keys(base.models, parents, children),
+         sb.strength_columns(base.models, p_grid, c_grid, season, modes, parents, children, period, cycle_ord)], axis=1
+    )
     models.insert(0, "cycle_date", cycle_date)
     fitted = pd.concat(
-        [_fitted_frame(p_grid, base.parent_fitted, parents.assign(customer=""), "parent", period),
-         _fitted_frame(c_grid, base.leaf_fitted, children, "leaf", period)],
+        [fitted_frame(p_grid, base.parent_fitted, parents.assign(customer=""), "parent", period),
+         fitted_frame(c_grid, base.leaf_fitted, children, "leaf", period)],
         ignore_index=True,
     )
     fitted.insert(0, "cycle_date", cycle_date)
@@ -358,72 +273,16 @@ def forecast_cycle(
     redistributed = parent_out.loc[moved > 0, PARENT + ["period_start", "strategy_forecast"]].assign(
         volume_moved=moved[moved > 0]
     )
-    upper_out = (
-        upper_frame(tree, cycle_date, starts, upper.fc, upper.label, strategy_fc, parent_fc)
-        if upper is not None
-        else pd.DataFrame({c: [] for c in UPPER_COLUMNS})
-    )
     return ForecastResult(
-        upper=upper_out,
-        parent=parent_out[PARENT_COLUMNS + ["strategy"] + bound_columns],
-        leaf=leaf_out[LEAF_COLUMNS + bound_columns],
+        upper=upper.frame(cycle_date, starts, strategy_fc, parent_fc),
+        parent=parent_out[PARENT_COLUMNS + ["strategy"] + list(p_bounds.columns)],
+        leaf=leaf_out[LEAF_COLUMNS + list(l_bounds.columns)],
         negatives_clipped=base.negatives + made.negatives,
         reconciled_negatives=made.negatives,
         redistributed=redistributed.reset_index(drop=True),
         models=models[MODEL_COLUMNS],
         fitted=fitted[FITTED_COLUMNS],
     )
-
-
-def _fitted_frame(
-    grid: SeriesGrid, fitted: np.ndarray | None, keys: pd.DataFrame, grain: str, period: str
-) -> pd.DataFrame:
-    """Long frame of the grid rows that have a fitted value: keys, period_start, actual, fitted."""
-    if fitted is None:
-        fitted = np.full(len(grid.y), np.nan)
-    ok = np.isfinite(fitted)
-    out = keys.iloc[grid.series[ok]][LEAF].reset_index(drop=True)
-    out.insert(0, "grain", grain)
-    out["product_class"] = keys["product_class"].to_numpy()[grid.series[ok]]
-    out["period_start"] = ordinal_to_start(grid.ordinal[ok], period)
-    out["actual"] = grid.y[ok]
-    out["fitted"] = fitted[ok]
-    return out
-
-
-def _active_matrix(children: pd.DataFrame, starts: pd.DatetimeIndex, period: str) -> np.ndarray:
-    """(n_children, horizon) bool: the child is active in the period (all True without the span columns)."""
-    if not {"first_active_period", "last_active_period"} <= set(children.columns):
-        return np.ones((len(children), len(starts)), dtype=bool)
-    h = period_ordinal(starts, period)[None, :]
-    first = period_ordinal(pd.DatetimeIndex(children["first_active_period"]), period)[:, None]
-    last = period_ordinal(pd.DatetimeIndex(children["last_active_period"]), period)[:, None]
-    return (h >= first) & (h <= last)
-
-
-def _parent_reasons(target: pd.DataFrame, parents: pd.DataFrame, starts: pd.DatetimeIndex) -> np.ndarray:
-    """(n_parents, horizon) zero_reason of each parent period (None where its shares sum to 1)."""
-    out = np.full((len(parents), len(starts)), None, dtype=object)
-    if target.empty or "zero_reason" not in target.columns:
-        return out
-    rows = target[target["zero_reason"].notna()]
-    row = lookup(rows, PARENT, parents)
-    col = pd.DatetimeIndex(starts).get_indexer(pd.DatetimeIndex(rows["period_start"]))
-    ok = (row >= 0) & (col >= 0)
-    out[row[ok], col[ok]] = rows["zero_reason"].to_numpy(object)[ok]
-    return out
-
-
-def _leaf_matrix(frame: pd.DataFrame, children: pd.DataFrame, column: str, starts: pd.DatetimeIndex) -> np.ndarray:
-    """(n_children, horizon) matrix of `column` from a long leaf x period frame (0 where absent)."""
-    out = np.zeros((len(children), len(starts)))
-    if frame.empty:
-        return out
-    row = lookup(frame, LEAF, children)
-    col = pd.DatetimeIndex(starts).get_indexer(pd.DatetimeIndex(frame["period_start"]))
-    ok = (row >= 0) & (col >= 0)
-    out[row[ok], col[ok]] = frame[column].to_numpy(float)[ok]
-    return out
 
 
 def run(
@@ -508,14 +367,6 @@ def run(
             **upper_level_checks(result.upper, parent, products, settings.upper_levels),
         },
     )
-
-
-def upper_level_checks(
-    upper: pd.DataFrame, parent_forecast: pd.DataFrame, products: pd.DataFrame, upper_levels: tuple[str, ...]
-) -> dict[str, CheckRows]:
-    """The check that every node above the parent is the sum of its children (`find_incoherent_upper_levels`)."""
-    failing = find_incoherent_upper_levels(upper, parent_forecast, products, upper_levels)
-    return {UPPER_LEVELS_COHERENT: CheckRows(failing)}
 
 
 def forecast_checks(

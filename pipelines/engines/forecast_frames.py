@@ -1,0 +1,113 @@
+"""The forecast's horizon matrices, the strategies applied per parent, and its long frames.
+
+Used by `pipelines.stages.statistical_forecast`: leaf x horizon matrices read
+from a long leaf x period frame (targets, period shares), the children's
+active periods, each parent period's `zero_reason`, each parent made coherent
+by its own class's strategy (`pipelines.engines.hierarchy.coherent`), and the
+long frames of fitted values and of the models' series keys.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from pipelines.calendar import ordinal_to_start, period_ordinal
+from pipelines.engines.base_forecasts import BaseForecasts
+from pipelines.engines.hierarchy import Coherent, coherent
+from pipelines.engines.models import SeriesGrid
+from pipelines.keys import LEAF, PARENT, lookup
+
+
+def combine_strategies(
+    strategy_of_parent: np.ndarray,
+    base: BaseForecasts,
+    parent_of_child: np.ndarray,
+    basis: np.ndarray,
+    active: np.ndarray | None = None,
+) -> Coherent:
+    """Each parent made coherent by its own strategy, on its active children (`hierarchy.coherent`)."""
+    parent = np.zeros_like(base.parent_fc)
+    leaf = np.zeros_like(base.leaf_fc)
+    moved = np.zeros_like(base.parent_fc)
+    source = np.empty(leaf.shape, dtype=object)
+    negatives = 0
+    for strategy in pd.unique(strategy_of_parent):  # a handful of strategies, not a loop over series
+        ps = strategy_of_parent == strategy
+        cs = ps[parent_of_child]
+        remap = np.cumsum(ps) - 1
+        out = coherent(
+            strategy,
+            base.parent_fc[ps],
+            base.leaf_fc[cs],
+            remap[parent_of_child[cs]],
+            basis[cs],
+            None if base.parent_res is None else base.parent_res[ps],
+            None if base.leaf_res is None else base.leaf_res[cs],
+            None if active is None else active[cs],
+        )
+        parent[ps], leaf[cs], source[cs], moved[ps] = out.parent, out.leaf, out.source, out.moved
+        negatives += out.negatives
+    return Coherent(parent, leaf, source, negatives, moved)
+
+
+def fitted_frame(
+    grid: SeriesGrid, fitted: np.ndarray | None, keys: pd.DataFrame, grain: str, period: str
+) -> pd.DataFrame:
+    """Long frame of the grid rows that have a fitted value: keys, period_start, actual, fitted."""
+    if fitted is None:
+        fitted = np.full(len(grid.y), np.nan)
+    ok = np.isfinite(fitted)
+    out = keys.iloc[grid.series[ok]][LEAF].reset_index(drop=True)
+    out.insert(0, "grain", grain)
+    out["product_class"] = keys["product_class"].to_numpy()[grid.series[ok]]
+    out["period_start"] = ordinal_to_start(grid.ordinal[ok], period)
+    out["actual"] = grid.y[ok]
+    out["fitted"] = fitted[ok]
+    return out
+
+
+def model_keys(models: pd.DataFrame, parents: pd.DataFrame, children: pd.DataFrame) -> pd.DataFrame:
+    """The models' frame with each series' keys and product_class (parents with customer '') in place of `series`."""
+    is_parent = (models["grain"] == "parent").to_numpy()
+    keys = pd.concat(
+        [parents.iloc[models["series"].to_numpy()[is_parent]][PARENT + ["product_class"]].assign(customer=""),
+         children.iloc[models["series"].to_numpy()[~is_parent]][LEAF + ["product_class"]]],
+        ignore_index=True,
+    )
+    return pd.concat([models.drop(columns="series").reset_index(drop=True), keys], axis=1)
+
+
+def active_matrix(children: pd.DataFrame, starts: pd.DatetimeIndex, period: str) -> np.ndarray:
+    """(n_children, horizon) bool: the child is active in the period (all True without the span columns)."""
+    if not {"first_active_period", "last_active_period"} <= set(children.columns):
+        return np.ones((len(children), len(starts)), dtype=bool)
+    h = period_ordinal(starts, period)[None, :]
+    first = period_ordinal(pd.DatetimeIndex(children["first_active_period"]), period)[:, None]
+    last = period_ordinal(pd.DatetimeIndex(children["last_active_period"]), period)[:, None]
+    return (h >= first) & (h <= last)
+
+
+def parent_reasons(target: pd.DataFrame, parents: pd.DataFrame, starts: pd.DatetimeIndex) -> np.ndarray:
+    """(n_parents, horizon) zero_reason of each parent period (None where its shares sum to 1)."""
+    out = np.full((len(parents), len(starts)), None, dtype=object)
+    if target.empty or "zero_reason" not in target.columns:
+        return out
+    rows = target[target["zero_reason"].notna()]
+    row = lookup(rows, PARENT, parents)
+    col = pd.DatetimeIndex(starts).get_indexer(pd.DatetimeIndex(rows["period_start"]))
+    ok = (row >= 0) & (col >= 0)
+    out[row[ok], col[ok]] = rows["zero_reason"].to_numpy(object)[ok]
+    return out
+
+
+def leaf_matrix(frame: pd.DataFrame, children: pd.DataFrame, column: str, starts: pd.DatetimeIndex) -> np.ndarray:
+    """(n_children, horizon) matrix of `column` from a long leaf x period frame (0 where absent)."""
+    out = np.zeros((len(children), len(starts)))
+    if frame.empty:
+        return out
+    row = lookup(frame, LEAF, children)
+    col = pd.DatetimeIndex(starts).get_indexer(pd.DatetimeIndex(frame["period_start"]))
+    ok = (row >= 0) & (col >= 0)
+    out[row[ok], col[ok]] = frame[column].to_numpy(float)[ok]
+    return out
