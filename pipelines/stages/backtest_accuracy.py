@@ -25,8 +25,21 @@ origins (`pipelines.engines.accuracy`): WMAPE, bias, MASE (scaled by each
 series' in-sample naive differences at the origin, seasonal ones for a class
 with `seasonal: true`) and forecast value added over seasonal naive.
 
-The choice of a class's strategy from this table (`strategy: auto`) is the
-next stage, `strategy_choice`.
+Seasonality: every class is backtested with each seasonality it may follow
+(`seasonal_base.seasonality_candidates`: its own setting, or for
+`seasonality: auto` none - own where `models.seasonal` is true - and
+`group`, the group seasonal indices estimated at each origin from the history
+before it); the table has a row per seasonality. Seasonal naive does not
+depend on it and is repeated under each.
+
+Intervals: with `intervals.levels`, each strategy's intervals at each origin
+(`pipelines.engines.forecast_intervals`, as the cycle makes them) are scored
+by their coverage, the share of actual cells inside the bounds, bounds
+included (metric `coverage_<level>`; a well calibrated 80 % interval covers
+about 0.8).
+
+The choice of a class's strategy and seasonality from this table
+(`strategy: auto`, `seasonality: auto`) is the next stage, `strategy_choice`.
 """
 
 from __future__ import annotations

@@ -37,6 +37,12 @@ leaves, and keeps its `zero_reason`; `forecast` is `strategy_forecast`
 elsewhere. The leaves are never re-summed into the parent:
 `pipelines.stages.reconciliation` proves they sum to `strategy_forecast`.
 
+Each class's `seasonality` (`pipelines.engines.seasonal_base`; for `auto`
+the backtest's choice in `strategy_choice`), prediction intervals per level
+of `intervals.levels` (`pipelines.engines.forecast_intervals`) and the levels
+above the parent, `hierarchy.upper_levels` (`pipelines.engines.upper_levels`,
+table `upper_level_forecast`) are made by their engines.
+
 The models, demand classes and their conventions are in
 `pipelines.engines.models`. Negative base forecasts (possible from a trended
 ETS) are set to 0 before the strategy. `model_grain` says at which grains the
