@@ -131,3 +131,25 @@ def test_bottom_up_parent_interval_is_the_sum_of_independent_leaves(make_history
     parent = res.parent.set_index(["product", "site", "period_start"])
     np.testing.assert_allclose((parent["upper_80"] - parent["forecast"]) / z80, np.sqrt(var.loc[parent.index]),
                                rtol=1e-9)
+
+
+def test_auto_seasonality_is_the_backtests_lower_leaf_wmape_and_the_strategy_is_chosen_under_it():
+    from pipelines.stages.strategy_choice import StrategySettings
+    from pipelines.stages.strategy_choice import run as choose
+
+    rows = []
+    for season, scores in (("none", {"top_down": 0.30, "bottom_up": 0.28}), ("group", {"top_down": 0.27,
+                                                                                         "bottom_up": 0.29})):
+        for strategy, v in {**scores, "seasonal_naive": 0.4}.items():
+            rows.append(("a", season, strategy, "leaf", "wmape", v, 3, 13, 10))
+    acc = pd.DataFrame(rows, columns=["product_class", "seasonality", "strategy", "grain", "metric", "value",
+                                      "origins", "horizon", "series"])
+    settings = StrategySettings(("top_down", "bottom_up"), {"a": "auto"}, {"a": "auto"})
+    out = choose(acc, settings).outputs["strategy_choice"].iloc[0]
+    # the best pair is (group, top_down) at 0.27, though bottom_up wins under none
+    assert (out["seasonality"], out["strategy"], out["leaf_wmape"]) == ("group", "top_down", 0.27)
+    fixed = StrategySettings(("top_down", "bottom_up"), {"a": "bottom_up"}, {"a": "auto"})
+    out = choose(acc, fixed).outputs["strategy_choice"].iloc[0]
+    assert (out["seasonality"], out["strategy"]) == ("none", "bottom_up")  # 0.28 under none beats 0.29
+    configured = StrategySettings(("top_down", "bottom_up"), {"a": "auto"}, {"a": "none"})
+    assert choose(acc, configured).outputs["strategy_choice"].iloc[0]["seasonality"] == "none"

@@ -236,3 +236,35 @@ def strength_columns(
             "group_seasonal_strength": group,
         }
     )
+
+
+def choose_seasonality(
+    accuracy: pd.DataFrame, seasonality: Mapping[str, str], strategies: Mapping[str, str], candidates: tuple[str, ...]
+) -> tuple[pd.DataFrame, dict[str, str]]:
+    """The backtest rows of each class's seasonality in effect, and that seasonality per class.
+
+    A class with `seasonality: auto` takes the seasonality under which its
+    allowed strategies (all of `candidates` for `strategy: auto`, else its
+    configured one) reach the lowest leaf-grain WMAPE; a tie goes to the
+    seasonality the backtest compared first (the models' own setting before
+    `group`). Any other class keeps its configured one. A table without a
+    seasonality column (made before seasonality was compared) is returned
+    as it is, every class under its configured seasonality.
+    """
+    if "seasonality" not in accuracy.columns:
+        return accuracy, {n: m for n, m in seasonality.items() if m != AUTO}
+    chosen = {}
+    keep = np.zeros(len(accuracy), dtype=bool)
+    for name in pd.unique(accuracy["product_class"]):  # a loop over classes
+        mine = accuracy["product_class"] == name
+        variants = list(dict.fromkeys(accuracy.loc[mine, "seasonality"]))
+        wanted = seasonality.get(name, AUTO)
+        if wanted == AUTO or wanted not in variants:
+            allowed = list(candidates) if strategies.get(name, AUTO) == AUTO else [strategies[name]]
+            leaf = accuracy[mine & (accuracy["grain"] == "leaf") & (accuracy["metric"] == "wmape")]
+            leaf = leaf[leaf["strategy"].isin(allowed)]
+            best = leaf.groupby("seasonality")["value"].min().reindex(variants).fillna(np.inf)
+            wanted = min(variants, key=lambda v: (best[v], variants.index(v)))
+        chosen[name] = wanted
+        keep |= (mine & (accuracy["seasonality"] == wanted)).to_numpy()
+    return accuracy[keep].reset_index(drop=True), chosen

@@ -1,6 +1,6 @@
 """Stage `strategy_choice`: the strategy each product class follows this cycle, decided once and stored.
 
-For a class with `strategy: auto` (or `seasonality: auto`) the backtest's winner: the strategy with
+For a class with `strategy: auto` the backtest's winner: the strategy with
 the lowest leaf-grain WMAPE among `backtest.strategies` (the leaf being where
 the plan is used); a tie goes to the strategy listed first, a class without
 volume in the backtest takes the first. A class with a fixed strategy keeps
@@ -19,14 +19,17 @@ import numpy as np
 import pandas as pd
 
 from pipelines.checks import CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE
-from pipelines.engines.seasonal_base import configured_seasonality
+from pipelines.engines.seasonal_base import choose_seasonality, configured_seasonality
 from pipelines.results import CheckRows, Log, StageResult, quiet
-from pipelines.vocabulary import AUTO, BENCHMARK, Seasonality
+from pipelines.vocabulary import AUTO, BENCHMARK
 
 CHOICE_COLUMNS = [
-    "product_class", "configured_strategy", "strategy", "seasonality", "leaf_wmape", "runner_up", "margin",
-    "seasonal_naive_wmape", "beats_seasonal_naive",
+    "product_class", "configured_strategy", "strategy", "leaf_wmape", "runner_up", "margin", "seasonal_naive_wmape",
+    "beats_seasonal_naive",
 ]
+# the seasonality each class follows (`seasonal_base.choose_seasonality`: the backtest's for `seasonality: auto`);
+# the strategy is chosen among the backtest rows of that seasonality
+SEASONALITY_COLUMN = "seasonality"
 
 
 @dataclass(frozen=True)
@@ -48,53 +51,35 @@ class StrategySettings:
 
 
 def choose_strategies(accuracy: pd.DataFrame, settings: StrategySettings) -> pd.DataFrame:
-    """Per product class: the strategy and seasonality in effect (the backtest's winners where `auto`),
-    runner-up and margin.
-
-    The pairs (seasonality, strategy) the config allows compete by leaf-grain
-    WMAPE; ties go to the strategy listed first, then to the seasonality the
-    backtest compared first (the class's models' own setting before `group`).
-    The runner-up is the best other strategy under the chosen seasonality.
-    """
+    """Per product class: the strategy in effect (the backtest's winner for `auto`), runner-up and margin."""
     settings = StrategySettings.of(settings)
     leaf = accuracy[(accuracy["grain"] == "leaf") & (accuracy["metric"] == "wmape")]
-    if "seasonality" not in leaf.columns:
-        leaf = leaf.assign(seasonality=Seasonality.NONE)
     rows = []
     candidates = list(settings.candidates)
     for name, configured in settings.configured.items():
-        mine = leaf[leaf["product_class"] == name]
+        mine = leaf[leaf["product_class"] == name].set_index("strategy")["value"]
         if mine.empty:
             continue
-        variants = list(dict.fromkeys(mine["seasonality"]))
-        wanted = settings.seasonality.get(name, AUTO)
-        allowed = variants if wanted == AUTO or wanted not in variants else [wanted]
-        strategies = candidates if configured == AUTO else [configured]
-
-        def score(v: str, s: str, table=mine) -> float:
-            hit = table[(table["seasonality"] == v) & (table["strategy"] == s)]["value"]
-            return float(hit.iloc[0]) if len(hit) and np.isfinite(hit.iloc[0]) else np.inf
-
-        pairs = sorted(
-            ((v, s) for v in allowed for s in strategies),
-            key=lambda p: (score(*p), candidates.index(p[1]) if p[1] in candidates else 0, variants.index(p[0])),
-        )
-        season, chosen = pairs[0]
-        best = score(season, chosen)
-        best = np.nan if np.isinf(best) else best
-        ranked = sorted(candidates, key=lambda s: (score(season, s), candidates.index(s)))
+        scores = mine.reindex(candidates)
+        ranked = sorted(candidates, key=lambda s: (np.inf if np.isnan(scores[s]) else scores[s], candidates.index(s)))
+        chosen = ranked[0] if configured == AUTO else configured
+        score = float(mine.get(chosen, np.nan))
         others = [s for s in ranked if s != chosen]
         runner = others[0] if others else ""
-        margin = float(score(season, runner) - best) if runner and np.isfinite(score(season, runner)) else np.nan
-        sn = score(season, BENCHMARK)
-        sn = np.nan if np.isinf(sn) else sn
-        rows.append((name, configured, chosen, season, best, runner, margin, sn, not bool(best > sn)))
+        margin = float(scores[runner] - score) if runner else np.nan
+        sn = float(mine.get(BENCHMARK, np.nan))
+        rows.append((name, configured, chosen, score, runner, margin, sn, not bool(score > sn)))
     return pd.DataFrame(rows, columns=CHOICE_COLUMNS)
 
 
 def run(backtest_accuracy: pd.DataFrame, settings: StrategySettings, log: Log = quiet) -> StageResult:
     """The strategy_choice table and its WARN check (a chosen strategy that loses to seasonal naive)."""
-    choice = choose_strategies(backtest_accuracy, settings)
+    settings = StrategySettings.of(settings)
+    accuracy, seasonality = choose_seasonality(
+        backtest_accuracy, settings.seasonality, settings.configured, settings.candidates
+    )
+    choice = choose_strategies(accuracy, settings)
+    choice[SEASONALITY_COLUMN] = choice["product_class"].map(seasonality).fillna("none")
     losing = choice[~choice["beats_seasonal_naive"].astype(bool)]
     return StageResult(
         outputs={"strategy_choice": choice},
