@@ -153,3 +153,26 @@ def test_auto_seasonality_is_the_backtests_lower_leaf_wmape_and_the_strategy_is_
     assert (out["seasonality"], out["strategy"]) == ("none", "bottom_up")  # 0.28 under none beats 0.29
     configured = StrategySettings(("top_down", "bottom_up"), {"a": "auto"}, {"a": "none"})
     assert choose(acc, configured).outputs["strategy_choice"].iloc[0]["seasonality"] == "none"
+
+
+def test_the_backtest_compares_none_with_group_and_scores_interval_coverage(make_history, make_children, make_config):
+    from pipelines.schemas_forecast import BacktestAccuracy
+    from pipelines.stages.backtest_accuracy import run_backtest
+
+    series = _series()
+    history = make_history(
+        [(p, s, c, str(w.date()), q) for (p, s, c), qs in series.items() for w, q in zip(WEEKS, qs, strict=True)]
+    )
+    config = make_config(
+        {"a": {"window": 52, "strategy": "auto", "models": SES, "seasonality": "auto"}},
+        backtest={"origins": 2, "horizon": 13, "step": 13, "strategies": ["top_down", "bottom_up"]},
+    )
+    table = BacktestAccuracy.validate(run_backtest(history, make_children(KEYS), config, CYCLE).accuracy)
+    assert set(table["seasonality"]) == {"none", "group"}
+    wmape = table[table["metric"] == "wmape"].set_index(["seasonality", "strategy", "grain"])["value"]
+    # a +-30 % yearly wave: the group index pays at both grains over a flat SES
+    assert wmape["group", "top_down", "parent"] < 0.8 * wmape["none", "top_down", "parent"]
+    cover = table[table["metric"].isin(["coverage_80", "coverage_95"])]
+    assert set(cover["strategy"]) == {"top_down", "bottom_up"} and cover["value"].between(0, 1).all()
+    c = cover.set_index(["seasonality", "strategy", "grain", "metric"])["value"]
+    assert (c[:, :, :, "coverage_95"].to_numpy() >= c[:, :, :, "coverage_80"].to_numpy()).all()

@@ -149,3 +149,48 @@ def interval_frames(
     p_sd, l_sd = strategy_sd(strategy_of_parent, parent_of_child, base, parent_fc, leaf_fc, tree_sd)
     bounds = coherent_intervals(levels, parent_fc, leaf_fc, parent_of_child, p_sd, l_sd, parent_zero, leaf_zero)
     return interval_frame(levels, bounds[0], bounds[1]), interval_frame(levels, bounds[2], bounds[3])
+
+
+class CoverageBook:
+    """The backtest's running coverage counts: per strategy, grain and level, the actual cells inside the
+    bounds and the cells scored, per class (`leaf_intervals.interval_coverage` counts the same way)."""
+
+    def __init__(self, levels: Sequence[float], n_classes: int):
+        self.levels = tuple(levels)
+        self.n_classes = n_classes
+        self.counts: dict[tuple[str, str], np.ndarray] = {}  # (strategy, grain) -> (L, 2, n_classes)
+
+    def add(self, strategy, base, parent, leaf, parent_of_child, parent_actual, leaf_actual, p_cls, c_cls) -> None:
+        """Score one origin's intervals of `strategy` (made as the cycle makes them) against the actuals."""
+        if not self.levels:
+            return
+        p_sd, l_sd = strategy_sd(np.full(parent.shape[0], strategy, dtype=object), parent_of_child, base, parent, leaf)
+        lo_p, hi_p, lo_l, hi_l = coherent_intervals(self.levels, parent, leaf, parent_of_child, p_sd, l_sd)
+        for grain, lo, hi, actual, cls in (("parent", lo_p, hi_p, parent_actual, p_cls),
+                                           ("leaf", lo_l, hi_l, leaf_actual, c_cls)):
+            book = self.counts.setdefault((strategy, grain), np.zeros((len(self.levels), 2, self.n_classes)))
+            for i in range(len(self.levels)):  # a loop over the levels
+                scored = np.isfinite(actual) & np.isfinite(lo[i]) & np.isfinite(hi[i])
+                inside = scored & (actual >= lo[i]) & (actual <= hi[i])
+                np.add.at(book[i, 0], cls, inside.sum(axis=1))
+                np.add.at(book[i, 1], cls, scored.sum(axis=1))
+
+    def rows(self, classes, c_cls, p_cls, n_origins: int, h: int):
+        """The coverage rows of the accuracy table (metric `coverage_<level>`), classes with series only."""
+        import pandas as pd
+
+        from pipelines.vocabulary import coverage_metric
+
+        n = len(classes)
+        counts = {"leaf": np.bincount(c_cls, minlength=n), "parent": np.bincount(p_cls, minlength=n)}
+        out = []
+        for (strategy, grain), book in self.counts.items():
+            for i, level in enumerate(self.levels):
+                value = np.divide(book[i, 0], book[i, 1], out=np.full(len(classes), np.nan), where=book[i, 1] > 0)
+                for k, name in enumerate(classes):
+                    if counts[grain][k] > 0:
+                        out.append((name, strategy, grain, coverage_metric(level), float(value[k]), n_origins, h,
+                                    int(counts[grain][k])))
+        return pd.DataFrame(
+            out, columns=["product_class", "strategy", "grain", "metric", "value", "origins", "horizon", "series"]
+        )

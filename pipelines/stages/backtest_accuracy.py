@@ -54,7 +54,7 @@ from pipelines.calendar import ordinal_to_start, period_ordinal, season_length
 from pipelines.config_sections import BacktestConfig
 from pipelines.engines.accuracy import mase_scale
 from pipelines.engines.base_forecasts import base_forecasts
-from pipelines.engines.forecast_intervals import coherent_intervals, strategy_sd
+from pipelines.engines.forecast_intervals import CoverageBook
 from pipelines.engines.hierarchy import NEEDS_RESIDUALS, coherent_forecasts, parent_sums
 from pipelines.engines.models import ModelSettings, run_model_groups, series_grid
 from pipelines.engines.period_shares import period_shares
@@ -63,12 +63,12 @@ from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.shares import compute_shares
 from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
 from pipelines.results import Log, StageResult, quiet
-from pipelines.vocabulary import BENCHMARK, Seasonality, coverage_metric
+from pipelines.vocabulary import BENCHMARK, Seasonality
 
 ACCURACY_COLUMNS = [
     "product_class", "seasonality", "strategy", "grain", "metric", "value", "origins", "horizon", "series",
 ]
-_SUMS = ("abs_error", "error", "actual", "scaled", "scaled_cells")  # then inside and cells per interval level
+_SUMS = ("abs_error", "error", "actual", "scaled", "scaled_cells")
 
 
 @dataclass(frozen=True)
@@ -152,9 +152,33 @@ def run_backtest(
 
     history: lifecycle history (all origins); children: the cycle's active
     children (leaf keys, product_class); products: the master data (for a
-    seasonal_group that is one of its columns).
+    seasonal_group that is one of its columns). One run per seasonality
+    compared, each over the classes that compare it.
     """
     settings = BacktestSettings.of(settings)
+    classes = list(settings.models.choices)
+    variants = list(dict.fromkeys(v for c in classes for v in settings.candidates(c)))
+    tables, origins = [], []
+    for variant in variants:  # a loop over the two or three seasonalities
+        mine = {c: variant for c in classes if variant in settings.candidates(c)}
+        result = _run_one(history, children, settings, cycle_date, log, products, mine)
+        table = result.accuracy.assign(seasonality=variant)
+        tables.append(table[table["product_class"].isin(list(mine))])
+        origins = result.origins
+    accuracy = pd.concat(tables, ignore_index=True) if tables else pd.DataFrame(columns=ACCURACY_COLUMNS)
+    return BacktestResult(accuracy=accuracy[ACCURACY_COLUMNS], origins=origins)
+
+
+def _run_one(
+    history: pd.DataFrame,
+    children: pd.DataFrame,
+    settings: BacktestSettings,
+    cycle_date: pd.Timestamp,
+    log: Callable[[str], None] | None,
+    products: pd.DataFrame | None,
+    modes: dict[str, str],
+) -> BacktestResult:
+    """The accuracy table of the classes of `modes` (class -> seasonality), each run with its seasonality."""
     period = settings.share.period
     bt = settings.backtest
     h = bt.horizon
@@ -182,32 +206,20 @@ def run_backtest(
 
     strategies = list(bt.strategies)
     names = strategies + [BENCHMARK]
-    levels = settings.levels
-    variants = list(dict.fromkeys(v for c in classes for v in settings.candidates(c)))
-    # sums[variant][name][grain]: (n_classes, 5 + 2 L) running sums of abs error, error, actual, scaled error,
-    # scaled cells, and per interval level the actuals inside and the cells scored
-    width = len(_SUMS) + 2 * len(levels)
-    sums = {
-        v: {s: {g: np.zeros((len(classes), width)) for g in ("leaf", "parent")} for s in names} for v in variants
-    }
+    # sums[name][grain]: (n_classes, 5) running sums of abs error, error, actual, scaled error, scaled cells
+    sums = {s: {g: np.zeros((len(classes), len(_SUMS))) for g in ("leaf", "parent")} for s in names}
     driver = "mint_shrink" if any(s in NEEDS_RESIDUALS for s in strategies) else "forecast_proportions"
-    parents_cls = parents.assign(product_class=parent_class)
-    benchmark: dict[int, dict[str, np.ndarray]] = {}
-    for o, variant in [(o, v) for o in origins for v in variants]:
+    coverage = CoverageBook(settings.levels, len(classes))
+    for o in origins:
         origin_date = ordinal_to_start(np.array([o]), period)[0]
-        mine = [c for c in classes if variant in settings.candidates(c)]
         if log:
-            log(f"backtest origin {origin_date.date()}, seasonality {variant}: {', '.join(mine)}")
+            log(f"backtest origin {origin_date.date()}")
         p_grid = series_grid(pcode, ords, qty, n_parents, o)
         c_grid = series_grid(ccode, ords, qty, n_children, o)
-        modes = {c: variant for c in mine}
-        season = cycle_season_plan(
-            p_grid, parents_cls, products, modes, settings.seasonal_groups, parent_of_child, period, o
-        )
-        base = base_forecasts(
-            p_grid, c_grid, parent_class, child_class, {c: driver for c in mine}, models, h, log,
-            seasonality=modes, season=season, sd=bool(levels),
-        )
+        season = cycle_season_plan(p_grid, parents.assign(product_class=parent_class), products, modes,
+                                   settings.seasonal_groups, parent_of_child, period, o)
+        base = base_forecasts(p_grid, c_grid, parent_class, child_class, {c: driver for c in modes}, models, h, log,
+                              seasonality=modes, season=season, sd=bool(settings.levels))
         shares = compute_shares(history, children, share_settings, origin_date)
         share_lookup = lookup(children, LEAF, shares)
         # the period shares the cycle would split by (per-period methods differ from the base share)
@@ -215,73 +227,58 @@ def run_backtest(
         leaf_actual = _dense(ccode, ords, qty, n_children, o, h)
         parent_actual = parent_sums(leaf_actual, parent_of_child, n_parents)
         scale = {"leaf": _scales(c_grid, child_class, settings), "parent": _scales(p_grid, parent_class, settings)}
-        fc, bounds = {}, {}
+        fc = {}
         for s in strategies:
             p, l, _, _ = coherent_forecasts(
                 s, base.parent_fc, base.leaf_fc, parent_of_child, basis, base.parent_res, base.leaf_res
             )
             fc[s] = {"parent": p, "leaf": l}
-            if levels:
-                p_sd, l_sd = strategy_sd(np.full(n_parents, s, dtype=object), parent_of_child, base, p, l)
-                lo_p, hi_p, lo_l, hi_l = coherent_intervals(levels, p, l, parent_of_child, p_sd, l_sd)
-                bounds[s] = {"parent": (lo_p, hi_p), "leaf": (lo_l, hi_l)}
-        if o not in benchmark:  # the benchmark does not depend on the seasonality compared
-            benchmark[o] = {
-                "parent": _seasonal_naive(p_grid, h, period, log), "leaf": _seasonal_naive(c_grid, h, period, log)
-            }
-        fc[BENCHMARK] = benchmark[o]
-        in_variant = np.isin(np.asarray(classes, dtype=object), mine)
+            coverage.add(s, base, p, l, parent_of_child, parent_actual, leaf_actual, p_cls, c_cls)
+        fc[BENCHMARK] = {
+            "parent": _seasonal_naive(p_grid, h, period, log),
+            "leaf": _seasonal_naive(c_grid, h, period, log),
+        }
         for s in names:
             for grain, actual, cls in (("leaf", leaf_actual, c_cls), ("parent", parent_actual, p_cls)):
                 e = fc[s][grain] - actual
                 q = scale[grain][:, None]
                 good = np.isfinite(q) & (q > 0)
                 scaled = np.divide(np.abs(e), q, out=np.zeros_like(e), where=good)
-                cells = np.broadcast_to(good, e.shape).sum(1)
-                columns = [np.abs(e).sum(1), e.sum(1), actual.sum(1), scaled.sum(1), cells]
-                for i in range(len(levels)):
-                    lo, hi = (b[i] for b in bounds[s][grain]) if s in bounds else (np.nan * e, np.nan * e)
-                    columns += [((actual >= lo) & (actual <= hi)).sum(1), np.isfinite(lo).sum(1)]
-                keep = in_variant[cls]
-                np.add.at(sums[variant][s][grain], cls[keep], np.stack(columns, axis=1)[keep])
+                per_series = np.stack(
+                    [np.abs(e).sum(1), e.sum(1), actual.sum(1), scaled.sum(1), np.broadcast_to(good, e.shape).sum(1)],
+                    axis=1,
+                )
+                np.add.at(sums[s][grain], cls, per_series)
     return BacktestResult(
-        accuracy=_table(
-            sums, classes, c_cls, p_cls, len(origins), h, levels, {c: settings.candidates(c) for c in classes}
-        ),
+        accuracy=pd.concat([_table(sums, classes, c_cls, p_cls, len(origins), h),
+                            coverage.rows(classes, c_cls, p_cls, len(origins), h)], ignore_index=True),
         origins=[ordinal_to_start(np.array([o]), period)[0] for o in origins],
     )
 
 
-def _table(sums, classes, c_cls, p_cls, n_origins: int, h: int, levels, candidates) -> pd.DataFrame:
+def _table(sums, classes, c_cls, p_cls, n_origins: int, h: int) -> pd.DataFrame:
+    rows = []
     counts = {"leaf": np.bincount(c_cls, minlength=len(classes)), "parent": np.bincount(p_cls, minlength=len(classes))}
+    wmape = {}
+    for s, by_grain in sums.items():
+        for grain, m in by_grain.items():
+            abs_e, err, act, scaled, cells = m.T
+            with np.errstate(invalid="ignore", divide="ignore"):
+                wmape[s, grain] = np.where(act > 0, abs_e / act, np.nan)
+                bias = np.where(act > 0, err / act, np.nan)
+                mase = np.where(cells > 0, scaled / cells, np.nan)
+            for metric, values in (("wmape", wmape[s, grain]), ("bias", bias), ("mase", mase)):
+                rows.append((s, grain, metric, values))
+    for s, grain in list(wmape):
+        rows.append((s, grain, "fva", wmape[BENCHMARK, grain] - wmape[s, grain]))
     out = []
-    for variant, by_name in sums.items():
-        rows = []
-        wmape = {}
-        for s, by_grain in by_name.items():
-            for grain, m in by_grain.items():
-                abs_e, err, act, scaled, cells = m.T[: len(_SUMS)]
-                with np.errstate(invalid="ignore", divide="ignore"):
-                    wmape[s, grain] = np.where(act > 0, abs_e / act, np.nan)
-                    bias = np.where(act > 0, err / act, np.nan)
-                    mase = np.where(cells > 0, scaled / cells, np.nan)
-                for metric, values in (("wmape", wmape[s, grain]), ("bias", bias), ("mase", mase)):
-                    rows.append((s, grain, metric, values))
-                for i, level in enumerate(levels):
-                    inside, scored = m.T[len(_SUMS) + 2 * i], m.T[len(_SUMS) + 2 * i + 1]
-                    if s != BENCHMARK:
-                        coverage = np.divide(inside, scored, out=np.full(len(classes), np.nan), where=scored > 0)
-                        rows.append((s, grain, coverage_metric(level), coverage))
-        for s, grain in list(wmape):
-            rows.append((s, grain, "fva", wmape[BENCHMARK, grain] - wmape[s, grain]))
-        for s, grain, metric, values in rows:
-            for i, name in enumerate(classes):
-                if variant in candidates[name]:
-                    out.append((name, variant, s, grain, metric, float(values[i]), n_origins, h,
-                                int(counts[grain][i])))
-    table = pd.DataFrame(out, columns=ACCURACY_COLUMNS)
+    for s, grain, metric, values in rows:
+        for i, name in enumerate(classes):
+            out.append((name, s, grain, metric, float(values[i]), n_origins, h, int(counts[grain][i])))
+    table = pd.DataFrame(out, columns=[c for c in ACCURACY_COLUMNS if c != "seasonality"])
     keep = table["series"] > 0  # a class without series in the data has nothing to report
     return table[keep].reset_index(drop=True)
+
 
 
 def run(
