@@ -81,8 +81,9 @@ for path in (ROOT, ROOT / "benchmarks"):
         sys.path.insert(0, str(path))
 
 import statsforecast  # noqa: E402
+from cycle_inputs import SHARE_METHODS, SMOOTHING, make_config  # noqa: E402
 from cycle_measure import HEADER, UNITS, Bench, git_commit, pa_version, patch_statsforecast, total_line, warm_up  # noqa: E402
-from cycle_scenario import CLASSES, SHARE_METHODS, SMOOTHING, Scenario, generate, make_config  # noqa: E402
+from cycle_scenario import CLASSES, Scenario, generate  # noqa: E402
 
 from assets.factory import Partition, graph_order  # noqa: E402
 from pipelines import definitions  # noqa: E402, F401  (makes every stage asset, so SPECS holds them all)
@@ -261,7 +262,7 @@ def store(bench: Bench, con, table: str, frame: pd.DataFrame) -> None:
     if con is None:
         return
 
-    def write():  # as the IO manager (pipelines/store/dagster_io.py) does it: a new Parquet version of the partition
+    def write():  # as the IO manager (resources.PartitionStore) does it: a new Parquet version of the partition
         con.write(table, "2026-11-30", "bench", frame, run_id="bench")
 
     bench.run(f"  store {table}", write, rows_in=len(frame), trace=False)

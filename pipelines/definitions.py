@@ -18,8 +18,7 @@ from assets.share_tables import share_tables
 from assets.statistical_forecast import statistical_forecast
 from assets.strategy_choice import strategy_choice
 from pipelines.jobs import cycle_job, cycle_schedule, dead_run_reaper, new_history_file_sensor
-from pipelines.resources import PlanningConfigResource
-from pipelines.store.dagster_io import PartitionStore
+from pipelines.resources import PartitionStore, PlanningConfigResource
 
 ASSETS = [
     raw_history,

@@ -279,8 +279,7 @@ def test_the_io_manager_holds_the_partition_for_the_run_and_passes_arrow_or_pand
     import yaml
 
     from pipelines.partitions import cycle_class_partitions, partition_key, register_partitions
-    from pipelines.resources import PlanningConfigResource
-    from pipelines.store.dagster_io import PartitionStore
+    from pipelines.resources import PartitionStore, PlanningConfigResource
 
     config = tmp_path / "planning.yaml"
     config.write_text(yaml.safe_dump({"store": {"path": str(tmp_path / "s")}, "product_classes": {"a": {"window": 4}}}))

@@ -11,7 +11,7 @@ from pipelines.engines.period_shares import period_shares
 from pipelines.engines.share_settings import ShareRule, ShareSettings
 from pipelines.engines.shares import compute_shares
 from pipelines.errors import ConfigError
-from pipelines.keys import LEAF, lookup
+from pipelines.keys import LEAF, PARENT, lookup
 from pipelines.vocabulary import Basis
 
 
@@ -52,6 +52,36 @@ def combine_cells(row: np.ndarray, col: np.ndarray, value: np.ndarray, shape: tu
     if mean:
         total = np.divide(total, count, out=np.zeros(shape), where=count > 0)
     return total, count > 0
+
+
+def pins_to_apply(
+    pins: pd.DataFrame, pin_row: np.ndarray, pin_col: np.ndarray, inside: np.ndarray, active: np.ndarray
+) -> tuple[np.ndarray, pd.DataFrame]:
+    """Which pins inside the horizon can be applied (their leaf is a child active in the period), and the
+    pins that cannot, each with its reason. pin_row, pin_col, inside: `cells_of` the pins over the children;
+    active: (n_children, horizon) bool."""
+    h = active.shape[1]
+    not_child = inside & (pin_row < 0)
+    inactive = inside & (pin_row >= 0) & ~active[np.clip(pin_row, 0, None), np.clip(pin_col, 0, h - 1)]
+    not_applied = pd.concat(
+        [
+            pins.loc[not_child].assign(reason="not a customer of this product x site active in the horizon"),
+            pins.loc[inactive].assign(reason="customer not active in this period (outside its span or its product's)"),
+        ],
+        ignore_index=True,
+    )
+    return inside & ~not_child & ~inactive, not_applied
+
+
+def top_down_parents(parent_forecast: pd.DataFrame, parents: pd.DataFrame) -> np.ndarray:
+    """(n_parents,) bool: the parent's class follows `top_down` (absent strategy = top-down, the forecast's default)."""
+    top_down = np.ones(len(parents), dtype=bool)
+    if "strategy" in parent_forecast.columns and len(parent_forecast):
+        first_rows = parent_forecast.drop_duplicates(PARENT)
+        pos = lookup(parents, PARENT, first_rows)
+        found = first_rows["strategy"].to_numpy(object)
+        top_down = np.where(pos >= 0, found[np.clip(pos, 0, None)] == "top_down", True)
+    return top_down
 
 
 def check_measures_known(frame: pd.DataFrame, config, what: str) -> None:

@@ -90,13 +90,16 @@ from pipelines.checks import MEASURES_SUM_TO_PARENT, PINS_KEPT, PINS_WITHIN_PARE
 from pipelines.config import CalendarConfig, PlanningConfig, check_windows_fit
 from pipelines.config_sections import MeasureConfig, PinsConfig, ShareBasisConfig
 from pipelines.engines.children import active_children
+from pipelines.engines.forecast_frames import active_matrix
 from pipelines.engines.measure_inputs import (
     basis_of,
     cells_of,
     check_measures_known,
     combine_cells,
     leaf_matrix,
+    pins_to_apply,
     share_basis_tables,
+    top_down_parents,
 )
 from pipelines.engines.measure_split import (
     OVERFLOW,
@@ -203,10 +206,7 @@ def plan_measures(
     n = len(children)
     parent_of_child, parents = factorize(children, PARENT)
     n_parents = len(parents)
-    h_ord = period_ordinal(starts, period)
-    first = period_ordinal(pd.DatetimeIndex(children["first_active_period"]), period)[:, None]
-    last = period_ordinal(pd.DatetimeIndex(children["last_active_period"]), period)[:, None]
-    active = (h_ord[None, :] >= first) & (h_ord[None, :] <= last)
+    active = active_matrix(children, starts, period)
     order = np.arange(n)  # children are in key order
     check_measures_known(adjustments, config, "adjustments")
     check_measures_known(pins, config, "pins")
@@ -218,16 +218,7 @@ def plan_measures(
     pin_row, pin_col, pin_inside = cells_of(pins, LEAF, children, first_ord, h, period)
     if (~pin_inside).any():
         unused.append(pins.loc[~pin_inside].assign(input="pins", reason="outside_horizon"))
-    not_child = pin_inside & (pin_row < 0)
-    inactive = pin_inside & (pin_row >= 0) & ~active[np.clip(pin_row, 0, None), np.clip(pin_col, 0, h - 1)]
-    pins_not_applied = pd.concat(
-        [
-            pins.loc[not_child].assign(reason="not a customer of this product x site active in the horizon"),
-            pins.loc[inactive].assign(reason="customer not active in this period (outside its span or its product's)"),
-        ],
-        ignore_index=True,
-    )
-    pin_ok = pin_inside & ~not_child & ~inactive
+    pin_ok, pins_not_applied = pins_to_apply(pins, pin_row, pin_col, pin_inside, active)
     pin_starts = starts[np.clip(pin_col, 0, h - 1)]
 
     target_m, share_m = leaf_matrix(target, LEAF, children, ["target", "share"], first_ord, h, period)
@@ -238,13 +229,7 @@ def plan_measures(
     }
     for basis_name, frame in (share_bases or {}).items():
         mats[f"share_table:{basis_name}"] = leaf_matrix(frame, LEAF, children, "share", first_ord, h, period)
-    # the strategy of each parent's class (absent = top-down, the forecast stage's default grain)
-    top_down = np.ones(n_parents, dtype=bool)
-    if "strategy" in parent_forecast.columns and len(parent_forecast):
-        first_rows = parent_forecast.drop_duplicates(PARENT)
-        pos = lookup(parents, PARENT, first_rows)
-        found = first_rows["strategy"].to_numpy(object)
-        top_down = np.where(pos >= 0, found[np.clip(pos, 0, None)] == "top_down", True)
+    top_down = top_down_parents(parent_forecast, parents)
 
     pieces, parent_pieces, overflow_pieces, applied_pieces = {}, [], [], []
     for name in config.measure_order():  # a handful of measures

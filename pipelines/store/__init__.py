@@ -1,7 +1,8 @@
 """The store: a Parquet file per version of each asset partition, cycles published whole.
 
-`pipelines/store/store.py` has the layout and the protocol; this module the
-functions the rest of the project calls. Readers (summary, explain, the report)
+`pipelines/store/store.py` has the protocol (writing, publication),
+`layout.py` the folders, `reading.py` the reads; this module the functions
+the rest of the project calls. Readers (summary, explain, the report)
 see published cycles only; the pipeline's own steps read the latest versions.
 """
 
@@ -13,17 +14,9 @@ import pandas as pd
 import pyarrow as pa
 
 from pipelines.store.arrow import PARTITION_CLASS, PARTITION_COLUMNS, PARTITION_CYCLE
+from pipelines.store.layout import DEFAULT_SHARD, VERSIONS, WRITTEN, StoreError
 from pipelines.store.locks import LockBusy
-from pipelines.store.store import (
-    DEFAULT_SHARD,
-    VERSIONS,
-    WRITTEN,
-    CycleStatus,
-    PartitionBusy,
-    Store,
-    StoreError,
-    open_store,
-)
+from pipelines.store.store import CycleStatus, PartitionBusy, Store, open_store
 
 __all__ = [
     "DEFAULT_SHARD",

@@ -47,45 +47,21 @@ from contextlib import contextmanager
 from dataclasses import dataclass, field
 from functools import lru_cache
 from pathlib import Path
-from urllib.parse import quote, unquote
 
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from pipelines.errors import PlanningError
 from pipelines.store import arrow, locks
 from pipelines.store.files import TMP_PREFIX, fsync_dir, read_json, stale_tmp, tmp_name, write_atomic, write_json
+from pipelines.store.layout import DEFAULT_SHARD, LATEST, SCHEMA, dir_part, dir_value, utc_now
+from pipelines.store.reading import StoreReader
 
-FORMAT = "apportion-store"
-FORMAT_VERSION = 1
-DEFAULT_SHARD = "0"
-LATEST = "_latest.json"
-SCHEMA = "_schema.arrow"
-VIEWS = "published.duckdb"
-WRITTEN = "partitions_written"  # the store's own table: every partition with its rows, time and run
-VERSIONS = ("published", "complete", "latest")
 PUBLISH_WAIT_SECONDS = 600.0
-
-
-class StoreError(PlanningError):
-    """The store cannot give what was asked (a store of an older layout, a column that changed type)."""
 
 
 class PartitionBusy(locks.LockBusy):
     """Another live run writes the partition."""
-
-
-def _now() -> str:
-    return dt.datetime.now(dt.timezone.utc).isoformat(timespec="microseconds")
-
-
-def _dir(name: str, value: str) -> str:
-    return f"{name}={quote(str(value), safe='')}"
-
-
-def _undir(part: str) -> str:
-    return unquote(part.split("=", 1)[1])
 
 
 @dataclass
@@ -127,59 +103,8 @@ class CycleStatus:
         return f"{k}: not complete ({by} started {record.get('since', '')[:19]}; failed, stopped or still queued)"
 
 
-class Store:
+class Store(StoreReader):
     """A store folder. Cheap to make; `open_store` caches one per folder."""
-
-    def __init__(self, root: Path | str):
-        self.root = Path(root)
-        self._schemas: dict[str, tuple[tuple[int, int], pa.Schema]] = {}
-
-    # ---- layout -------------------------------------------------------------------------------
-    def table_dir(self, asset: str) -> Path:
-        return self.root / "tables" / asset
-
-    def partition_dir(self, asset: str, cycle: str, product_class: str, shard: str = DEFAULT_SHARD) -> Path:
-        return self.table_dir(asset) / _dir("cycle", cycle) / _dir("class", product_class) / _dir("shard", shard)
-
-    def cycle_dir(self, cycle: str) -> Path:
-        return self.root / "catalog" / _dir("cycle", cycle)
-
-    def class_record_path(self, cycle: str, product_class: str) -> Path:
-        return self.cycle_dir(cycle) / f"{_dir('class', product_class)}.json"
-
-    def published_path(self, cycle: str, previous: bool = False) -> Path:
-        return self.cycle_dir(cycle) / ("published.previous.json" if previous else "published.json")
-
-    def partition_lock_path(self, cycle: str, product_class: str) -> Path:
-        return self.root / "locks" / "partition" / _dir("cycle", cycle) / f"{_dir('class', product_class)}.lock"
-
-    @property
-    def views_path(self) -> Path:
-        return self.root / VIEWS
-
-    def check_layout(self) -> bool:
-        """True when the store folder exists; raises StoreError for a store of another layout."""
-        if not self.root.exists():
-            return False
-        if self.root.is_file():
-            raise StoreError(
-                f"store.path {self.root} is one DuckDB file, the store layout of earlier releases; the store is now a "
-                f"folder of Parquet files. Set store.path to a folder (the default is var/store) and rerun the cycle "
-                f"(python -m pipelines cycle --backfill 1) to write it there; the old file is left as it is."
-            )
-        marker = read_json(self.root / "store.json")
-        if marker is not None and (marker.get("format") != FORMAT or int(marker.get("version", 0)) > FORMAT_VERSION):
-            raise StoreError(
-                f"the store {self.root} was written in layout {marker.get('format')} v{marker.get('version')}, which "
-                f"this release (v{FORMAT_VERSION}) cannot read; rerun the cycle into a new store.path folder"
-            )
-        return True
-
-    def _ensure(self) -> None:
-        if not self.check_layout():
-            self.root.mkdir(parents=True, exist_ok=True)
-        if not (self.root / "store.json").exists():
-            write_json(self.root / "store.json", {"format": FORMAT, "version": FORMAT_VERSION})
 
     # ---- locks --------------------------------------------------------------------------------
     @contextmanager
@@ -234,20 +159,6 @@ class Store:
         return locks.holder(self.partition_lock_path(cycle, product_class))
 
     # ---- schema -------------------------------------------------------------------------------
-    def schema(self, asset: str) -> pa.Schema | None:
-        path = self.table_dir(asset) / SCHEMA
-        try:
-            st = path.stat()
-        except FileNotFoundError:
-            return None
-        stamp = (st.st_mtime_ns, st.st_size)
-        cached = self._schemas.get(asset)
-        if cached and cached[0] == stamp:
-            return cached[1]
-        schema = pa.ipc.read_schema(pa.py_buffer(path.read_bytes()))
-        self._schemas[asset] = (stamp, schema)
-        return schema
-
     def _widen_schema(self, asset: str, new: pa.Schema) -> None:
         current = self.schema(asset)
         if current is not None and arrow.merge_schema(current, new).equals(current):
@@ -304,7 +215,7 @@ class Store:
             "rows": table.num_rows,
             "bytes": final.stat().st_size,
             "run_id": run_id or "",
-            "written_at": _now(),
+            "written_at": utc_now(),
         }
         before = read_json(folder / LATEST)
         write_json(folder / LATEST, pointer)
@@ -337,11 +248,11 @@ class Store:
         """Delete the superseded versions of one partition; call while holding its lock. The files deleted."""
         gone = []
         for table_dir in sorted((self.root / "tables").glob("*")):
-            class_dir = table_dir / _dir("cycle", cycle) / _dir("class", product_class)
+            class_dir = table_dir / dir_part("cycle", cycle) / dir_part("class", product_class)
             if not class_dir.is_dir():
                 continue
             for shard_dir in class_dir.iterdir():
-                shard = _undir(shard_dir.name)
+                shard = dir_value(shard_dir.name)
                 latest = (read_json(shard_dir / LATEST) or {}).get("file")
                 keep = self._referenced(table_dir.name, cycle, product_class, shard) | {latest}
                 for path in shard_dir.iterdir():
@@ -350,173 +261,6 @@ class Store:
                         path.unlink(missing_ok=True)
                         gone.append(path)
         return gone
-
-    # ---- reading ------------------------------------------------------------------------------
-    def latest(self, asset: str, cycle: str, product_class: str) -> dict[str, dict]:
-        """shard -> latest pointer of one partition (empty when never written)."""
-        class_dir = self.table_dir(asset) / _dir("cycle", cycle) / _dir("class", product_class)
-        if not class_dir.is_dir():
-            return {}
-        found = {}
-        for shard_dir in sorted(class_dir.iterdir()):
-            pointer = read_json(shard_dir / LATEST)
-            if pointer:
-                found[_undir(shard_dir.name)] = pointer
-        return found
-
-    def known_cycles(self) -> list[str]:
-        """Every cycle the catalog has heard of (published, complete in part, or pending), oldest first."""
-        return self._cycles_on_disk()
-
-    def _cycles_on_disk(self) -> list[str]:
-        folder = self.root / "catalog"
-        return sorted(_undir(p.name) for p in folder.glob("cycle=*")) if folder.is_dir() else []
-
-    def published(self, cycle: str) -> dict | None:
-        return read_json(self.published_path(cycle))
-
-    def published_cycles(self) -> list[str]:
-        return [c for c in self._cycles_on_disk() if self.published_path(c).exists()]
-
-    def class_record(self, cycle: str, product_class: str) -> dict | None:
-        return read_json(self.class_record_path(cycle, product_class))
-
-    def _class_tables(self, cycle: str, versions: str) -> dict[str, dict]:
-        """class -> {asset: {shard: pointer}} of one cycle for `published` or `complete` reads."""
-        pub = self.published(cycle) or {}
-        out = {k: v.get("tables", {}) for k, v in (pub.get("classes") or {}).items()}
-        if versions == "complete":
-            folder = self.cycle_dir(cycle)
-            for path in folder.glob("class=*.json") if folder.is_dir() else []:
-                record = read_json(path) or {}
-                if record.get("state") == "complete":
-                    out[_undir(path.name[: -len(".json")])] = record.get("tables", {})
-        return out
-
-    def entries(
-        self, asset: str, *, cycle: str | None = None, product_class: str | None = None, versions: str = "published"
-    ) -> list[dict]:
-        """The pointers (one per partition and shard) a read of `asset` uses, by cycle, class and shard."""
-        if versions not in VERSIONS:
-            raise ValueError(f"versions must be one of {VERSIONS}, not {versions!r}")
-        if not self.check_layout():
-            return []
-        found = []
-        if versions == "latest":
-            base = self.table_dir(asset)
-            cycles = [cycle] if cycle is not None else sorted(_undir(p.name) for p in base.glob("cycle=*"))
-            for c in cycles:
-                classes = (
-                    [product_class]
-                    if product_class is not None
-                    else sorted(_undir(p.name) for p in (base / _dir("cycle", c)).glob("class=*"))
-                )
-                for k in classes:
-                    found += [
-                        {**p, "cycle": c, "product_class": k, "shard": s} for s, p in self.latest(asset, c, k).items()
-                    ]
-            return found
-        cycles = [cycle] if cycle is not None else self._cycles_on_disk()
-        for c in cycles:
-            for k, tables in sorted(self._class_tables(c, versions).items()):
-                if product_class is not None and k != product_class:
-                    continue
-                for s, p in sorted((tables.get(asset) or {}).items()):
-                    found.append({**p, "asset": asset, "cycle": c, "product_class": k, "shard": s})
-        return found
-
-    def has_table(self, asset: str) -> bool:
-        return self.table_dir(asset).is_dir()
-
-    def read(
-        self,
-        asset: str,
-        *,
-        cycle: str | None = None,
-        product_class: str | None = None,
-        versions: str = "published",
-        with_partition: bool = False,
-        where: dict[str, str] | None = None,
-        as_arrow: bool = False,
-    ) -> pd.DataFrame | pa.Table | None:
-        """The rows of `asset` (None when the store has no such table); see read_table."""
-        if asset == WRITTEN:
-            frame = self.partitions_written(versions)
-            if cycle is not None:
-                frame = frame[frame[arrow.PARTITION_CYCLE] == cycle]
-            if product_class is not None:
-                frame = frame[frame[arrow.PARTITION_CLASS] == product_class]
-            return pa.Table.from_pandas(frame, preserve_index=False) if as_arrow else frame.reset_index(drop=True)
-        if not self.check_layout() or not self.has_table(asset):
-            return None
-        schema = self.schema(asset)
-        parts = []
-        for entry in self.entries(asset, cycle=cycle, product_class=product_class, versions=versions):
-            path = self.partition_dir(asset, entry["cycle"], entry["product_class"], entry["shard"]) / entry["file"]
-            try:
-                table = arrow.conform(pq.read_table(path), schema)
-            except arrow.SchemaConflict as err:
-                raise StoreError(
-                    f"table {asset!r}, partition {entry['cycle']}|{entry['product_class']} in the store "
-                    f"{self.root} was "
-                    f"written by an older release: {err}; rerun the cycle {entry['cycle']} (python -m pipelines cycle "
-                    f"--cycle {entry['cycle']}) to rewrite it"
-                ) from None
-            parts.append(arrow.where(table, where))
-        if parts:
-            table = arrow.concat(parts)
-        elif schema is not None:
-            table = schema.empty_table()
-        else:
-            return None
-        if not with_partition:
-            table = table.drop_columns([c for c in arrow.PARTITION_COLUMNS if c in table.column_names])
-        return table if as_arrow else arrow.to_frame(table)
-
-    def partitions_written(self, versions: str = "published") -> pd.DataFrame:
-        """One row per asset partition and shard: rows, write time, run and file, for `versions`."""
-        rows = []
-        tables = self.root / "tables"
-        for asset_dir in sorted(tables.glob("*")) if tables.is_dir() else []:
-            for e in self.entries(asset_dir.name, versions=versions):
-                rows.append(
-                    {
-                        "asset": asset_dir.name,
-                        arrow.PARTITION_CYCLE: e["cycle"],
-                        arrow.PARTITION_CLASS: e["product_class"],
-                        "shard": e["shard"],
-                        "rows": int(e["rows"]),
-                        "written_at": pd.Timestamp(e["written_at"]).tz_localize(None),
-                        "run_id": e.get("run_id", ""),
-                        "file": e["file"],
-                    }
-                )
-        columns = [
-            "asset",
-            arrow.PARTITION_CYCLE,
-            arrow.PARTITION_CLASS,
-            "shard",
-            "rows",
-            "written_at",
-            "run_id",
-            "file",
-        ]
-        return pd.DataFrame(rows, columns=columns)
-
-    def cycles(self, asset: str = "cycle_calendar", versions: str = "published") -> list[str]:
-        """The cycles with a partition of `asset` in `versions`, oldest first."""
-        if not self.check_layout():
-            return []
-        return sorted({e["cycle"] for e in self.entries(asset, versions=versions)})
-
-    def previous_cycle(self, asset: str, cycle: str, product_class: str) -> str | None:
-        """The latest cycle before `cycle` in which `product_class` completed with a partition of `asset`."""
-        if not self.check_layout():
-            return None
-        for c in reversed([c for c in self._cycles_on_disk() if c < cycle]):
-            if self.entries(asset, cycle=c, product_class=product_class, versions="complete"):
-                return c
-        return None
 
     # ---- publication --------------------------------------------------------------------------
     def begin(self, cycle: str, classes: list[str], *, command: str, run_id: str = "") -> None:
@@ -532,7 +276,7 @@ class Store:
                         "product_class": k,
                         "command": command,
                         "run_id": run_id,
-                        "since": _now(),
+                        "since": utc_now(),
                     },
                 )
 
@@ -556,7 +300,7 @@ class Store:
                     "cycle": cycle,
                     "product_class": product_class,
                     "run_id": run_id,
-                    "completed_at": _now(),
+                    "completed_at": utc_now(),
                     "tables": tables,
                 },
             )
@@ -569,7 +313,7 @@ class Store:
                     self.published_path(cycle),
                     {
                         "cycle": cycle,
-                        "published_at": _now(),
+                        "published_at": utc_now(),
                         "sequence": int((current or {}).get("sequence", 0)) + 1,
                         "classes": {k: status.records[k] for k in classes},
                     },
