@@ -28,9 +28,9 @@ backtest_accuracy = stage_asset(StageAsset(
     tables=(
         Table(
             BACKTEST_ACCURACY,
-            "Rolling-origin backtest per product class: WMAPE, bias, MASE, RMSSE and value added over seasonal "
-            "naive of each strategy at leaf and parent grain, against raw actuals (value) and cleaned ones "
-            "(value_cleaned), and the metric the class is judged by.",
+            "Rolling-origin backtest per product class and seasonality: WMAPE, bias, MASE, RMSSE, value added over "
+            "seasonal naive and prediction interval coverage of each strategy at leaf and parent grain, against raw "
+            "actuals (value) and cleaned ones (value_cleaned), and the metric the class is judged by.",
             frozenset({"pandas", "duckdb", "statsforecast"}),
         ),
         Table(

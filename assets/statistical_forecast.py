@@ -1,4 +1,5 @@
-"""Assets `parent_forecast`, `statistical_forecast`, `forecast_models`, `forecast_fitted_values`: the forecast rerun."""
+"""Assets `parent_forecast`, `statistical_forecast`, `forecast_models`, `forecast_fitted_values`,
+`upper_level_forecast`: the forecast rerun."""
 
 from assets.factory import StageAsset, Table, stage_asset
 from pipelines.stages import statistical_forecast as stage
@@ -7,6 +8,7 @@ PARENT_FORECAST = "parent_forecast"
 STATISTICAL_FORECAST = "statistical_forecast"
 FORECAST_MODELS = "forecast_models"
 FORECAST_FITTED_VALUES = "forecast_fitted_values"
+UPPER_LEVEL_FORECAST = "upper_level_forecast"
 
 statistical_forecast = stage_asset(
     StageAsset(
@@ -26,6 +28,11 @@ statistical_forecast = stage_asset(
             ),
             Table(
                 FORECAST_FITTED_VALUES, "In-sample one-step fitted values behind the residuals of MinT / WLS classes."
+            ),
+            Table(
+                UPPER_LEVEL_FORECAST,
+                "Forecasts of the levels above the parent (hierarchy.upper_levels): each node's own base forecast "
+                "and the sums of the coherent parent forecasts below it (MinT / WLS reconcile the whole tree).",
             ),
         ),
         run=stage.run,

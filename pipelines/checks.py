@@ -47,6 +47,7 @@ NO_VOLUME_AFTER_PHASE_OUT = "no_volume_after_phase_out"
 NO_VOLUME_OUTSIDE_ACTIVE_SPAN = "no_volume_outside_active_span"
 NO_NEGATIVE_FORECAST = "no_negative_forecast"
 CHILDREN_SUM_TO_PARENT = "children_sum_to_parent"
+UPPER_LEVELS_COHERENT = "upper_levels_coherent"
 EVERY_ACTIVE_PARENT_HAS_CHILDREN = "every_active_parent_has_children"
 MEASURES_SUM_TO_PARENT = "measures_sum_to_parent"
 PINS_KEPT = "pins_kept"
@@ -179,6 +180,16 @@ CHECKS: tuple[Check, ...] = (
         "are left out of that comparison, counted by reason in the metadata, and must carry no leaf volume. When it "
         "fails, the listed parent periods lost or gained volume between the strategy and the leaves (the why column "
         "says which side): inspect their rows in statistical_forecast and parent_forecast and report the split.",
+    ),
+    Check(
+        UPPER_LEVELS_COHERENT,
+        "upper_level_forecast",
+        True,
+        "Proves every node of the levels above the parent (hierarchy.upper_levels) holds the sum of its children's "
+        "forecast and strategy_forecast in every period: the lowest level's the parents' in parent_forecast (by the "
+        f"products master data), a higher level's the nodes below naming it, within {RELATIVE_TOLERANCE:g} relative "
+        "(one unit floor). When it fails, the listed nodes and periods disagree with the grain below: inspect their "
+        "rows in upper_level_forecast and parent_forecast and report the reconciliation.",
     ),
     Check(
         EVERY_ACTIVE_PARENT_HAS_CHILDREN,

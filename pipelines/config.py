@@ -17,6 +17,7 @@ from typing import Literal, get_args, get_origin
 import yaml
 from pydantic import BaseModel, Field, PrivateAttr, ValidationError, field_validator, model_validator
 
+from pipelines.config_forecast import HierarchyConfig, IntervalsConfig
 from pipelines.config_inputs import InputsConfig
 from pipelines.config_sections import (
     DEFAULT_MEASURES,
@@ -122,6 +123,8 @@ class PlanningConfig(Frozen):
     )
     pins: PinsConfig = PinsConfig()
     execution: ExecutionConfig = ExecutionConfig()
+    intervals: IntervalsConfig = IntervalsConfig()
+    hierarchy: HierarchyConfig = HierarchyConfig()
     _source: Path = PrivateAttr(Path("<memory>"))
 
     @property

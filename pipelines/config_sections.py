@@ -23,6 +23,7 @@ from pipelines.vocabulary import (
     PinOverflowRule,
     ReturnsRule,
     SeasonalAdjust,
+    Seasonality,
     ShareMethod,
     ShortageRule,
     SplitRule,
@@ -164,6 +165,11 @@ class ProductClassConfig(Frozen):
         "leaf-grain WMAPE (strategy_choice)",
     )
     models: ModelChoice = ModelChoice()
+    seasonality: Literal[(AUTO,) + values(Seasonality)] | None = Field(
+        None, description="none | own (each series' seasonal model) | group (index of seasonal_group) | auto "
+        "(the backtest's choice); blank: own with models.seasonal true, else none",
+    )
+    seasonal_group: str = Field("product", description="index group: product, product_class or a products column")
     outliers: OutlierConfig | None = Field(
         None,
         description="outlier rule of this class; replaces cleansing.outliers as a whole "

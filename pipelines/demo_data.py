@@ -680,10 +680,21 @@ def _plant_plan_inputs(frames: dict[str, pd.DataFrame], seed: int) -> dict[str, 
     return {**frames, "adjustments": pd.concat([frames["adjustments"], prices], ignore_index=True), "pins": pins}
 
 
+# the optional products column `product_family` (a level above the product for hierarchy.upper_levels and a
+# seasonal_group); written last, after every draw, so no other number of the scenario changes
+PRODUCT_FAMILY = {
+    "DRIP": "drip_irrigation", "FITT": "hose_fittings", "FERT": "fertiliser", "FILT": "filtration",
+    "TIMR": "irrigation_timers", "SPRK": "sprinklers", "FROST": "frost_protection", "PART": "spare_parts",
+}
+
+
 def generate(seed: int = DEFAULT_SEED) -> dict[str, pd.DataFrame]:
     """The demo scenario's input tables, every cell as text ('' = blank), as written to CSV."""
     frames, _ = _plant_shortages(*_build(seed), seed)
-    return _plant_plan_inputs(frames, seed)
+    frames = _plant_plan_inputs(frames, seed)
+    products = frames["products"]
+    family = products["product"].str.split("-").str[0].map(PRODUCT_FAMILY)
+    return {**frames, "products": products.assign(product_family=family)}
 
 
 def planted_cases(seed: int = DEFAULT_SEED) -> pd.DataFrame:

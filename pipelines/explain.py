@@ -41,6 +41,7 @@ from pipelines.explain_sections import (
     corrections_section,
     day,
     forecast_section,
+    interval_section,
     leaf_rows,
     lifecycle_section,
     qty,
@@ -307,4 +308,7 @@ def explain_leaf(tables: Mapping[str, pd.DataFrame], product: str, site: str, cu
             )
         text = _result_text(r)
         lines.append(f"   {text[0].upper()}{text[1:]}")
+    asked = None if period is None else start
+    strategy = parent["strategy"].iloc[0] if "strategy" in parent.columns else None
+    lines += interval_section(leaf_rows(tables["statistical_forecast"], product, site, customer), strategy, asked)
     return "\n".join(lines) + "\n"

@@ -140,9 +140,59 @@ def choice_lines(product_class: str, choice: pd.DataFrame | None) -> list[str]:
         text += f"; backtest leaf WMAPE {float(c['leaf_wmape']):.3f}"
         if c["runner_up"] and pd.notna(c["margin"]):
             text += f", margin {float(c['margin']):+.4f} over {c['runner_up']}"
+    if isinstance(c.get("seasonality"), str) and c["seasonality"]:
+        text += f"; seasonality {c['seasonality']} (with it the backtest scored the strategy)"
     lines = [text + "."]
     if "detail" in c and c["detail"]:
         lines.append(f"   Judged by leaf {c['metric']}; {c['decision']}: {c['detail']}.")
+    return lines
+
+
+SEASONALITY_TEXT = {
+    "none": "Seasonality none: the model ran without a season",
+    "own": "Seasonality own: the series' own seasonal model (where two full seasons of history exist)",
+    "group": "Seasonality group: the model ran on the history divided by the group's seasonal index (estimated on "
+    "the sum of the group's parents), and its forecast was multiplied by the index again (group seasonal indices)",
+}
+
+
+def seasonality_text(m: pd.Series) -> str:
+    """The parent's seasonality in words, with its seasonal strengths (from forecast_models)."""
+    mode = str(m.get("seasonality", "") or "")
+    if not mode:
+        return "Seasonality not recorded in forecast_models."
+    text = SEASONALITY_TEXT.get(mode, f"Seasonality {mode}")
+    strengths = []
+    if pd.notna(m.get("group_seasonal_strength", np.nan)):
+        strengths.append(f"the group's seasonal strength {float(m['group_seasonal_strength']):.2f}")
+    if pd.notna(m.get("seasonal_strength", np.nan)):
+        strengths.append(f"the parent's own {float(m['seasonal_strength']):.2f}")
+    return text + (f"; {', '.join(strengths)} (0 none, 1 all season)." if strengths else ".")
+
+
+def interval_section(leaf: pd.DataFrame, strategy: str | None, period=None) -> list[str]:
+    """The leaf's prediction intervals per horizon period (or the one period asked), and how they were made."""
+    bounds = sorted({c.split("_", 1)[1] for c in leaf.columns if c.startswith(("lower_", "upper_"))}, key=float)
+    if not bounds or leaf.empty:
+        return []
+    rows = leaf.sort_values("period_start")
+    if period is not None:
+        rows = rows[rows["period_start"] == period]
+    how = {
+        "top_down": "the parent's interval (statsforecast) times the leaf's weight in the period, the weights taken "
+        "as fixed, so the shares' own uncertainty is left out",
+        "forecast_proportions": "the parent's interval (statsforecast) times the leaf's weight in the period, the "
+        "weights taken as fixed",
+        "bottom_up": "the customer's own model's normal interval (statsforecast)",
+        "mint_shrink": "the normal approximation of the reconciled forecast (MinT covariance S P W P' S')",
+        "wls_var": "the normal approximation of the reconciled forecast (WLS covariance S P W P' S')",
+    }.get(str(strategy), "the strategy's intervals")
+    lines = ["", f"6. Prediction intervals ({', '.join(b + ' %' for b in bounds)}): {how}; lower bounds cut at 0."]
+    head = f"   {'period':<10}" + "".join(f"  {'lower ' + b:>12}  {'upper ' + b:>12}" for b in bounds)
+    lines += [head]
+    for r in rows.itertuples(index=False):
+        cells = "".join(f"  {qty(getattr(r, 'lower_' + b)):>12}  {qty(getattr(r, 'upper_' + b)):>12}" for b in bounds)
+        lines.append(f"   {day(r.period_start):<10}{cells}")
     return lines
 
 
@@ -166,7 +216,10 @@ def forecast_section(
             ]
             if any(measures):
                 cut = f"{', '.join(x for x in measures if x)}; cut-offs ADI 1.32, CV^2 0.49"
+            season = seasonality_text(m)
     lines.append(f"   Model {model}{detail}.")
+    if models is not None and len(m):
+        lines.append(f"   {season}")
     lines.append(f"   Demand class {first['demand_class']}{f' ({cut})' if cut else ''}.")
     strategy = first.get("strategy") if "strategy" in parent.columns else None
     named = (

@@ -78,6 +78,9 @@ class Products(_Strict):
     active_from: Series[DateTime] = pa.Field(nullable=True, description="first day sold; blank = always")
     active_to: Series[DateTime] = pa.Field(nullable=True, description="last day sold; blank = open")
     successor: Series[Text] = pa.Field(nullable=True, description="product taking over this one's history")
+    product_family: Optional[Series[Text]] = pa.Field(
+        nullable=True, description="optional group of products (a level of hierarchy.upper_levels, a seasonal_group)"
+    )
 
     @pa.dataframe_check(description="active_to is not before active_from")
     def span_ordered(cls, df: pd.DataFrame) -> Series[bool]:

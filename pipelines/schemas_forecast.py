@@ -14,7 +14,9 @@ from pipelines.text_dtype import Text
 from pipelines.vocabulary import (
     AUTO,
     BENCHMARK,
+    COVERAGE_METRIC_PATTERN,
     FORECAST_BASES,
+    INTERVAL_COLUMN_PATTERN,
     DemandClass,
     DriftStatus,
     Grain,
@@ -22,6 +24,7 @@ from pipelines.vocabulary import (
     Metric,
     ModelGrain,
     ReportFile,
+    Seasonality,
     SplitRule,
     Strategy,
     values,
@@ -59,6 +62,13 @@ class ParentForecast(_Strict):
     zero_reason: Series[Text] = pa.Field(
         nullable=True, isin=ZERO_REASONS, description="why the forecast was set to 0 in this period (blank = not set)"
     )
+    bounds: Optional[Series[float]] = pa.Field(
+        alias=INTERVAL_COLUMN_PATTERN,
+        regex=True,
+        ge=0,
+        description="prediction interval bounds, lower_<level> and upper_<level> per level of config intervals "
+        "(pipelines.engines.forecast_intervals; 0 where the lifecycle set the period to 0)",
+    )
 
     class Config:
         unique = ["product", "site", "period_start"]
@@ -80,6 +90,16 @@ class ForecastModels(_Strict):
     cv2: Series[float] = pa.Field(nullable=True, description="squared coefficient of variation of non-zero sizes")
     model: Series[Text] = pa.Field(description="model label")
     parameters: Series[Text] = pa.Field(description="parameters the library exposes ('' where it does not)")
+    seasonality: Optional[Series[Text]] = pa.Field(
+        isin=values(Seasonality), description="the class's seasonality in effect: none, own or group"
+    )
+    seasonal_strength: Optional[Series[float]] = pa.Field(
+        nullable=True, ge=0, le=1, description="F_S of the series' own history (Wang, Smith & Hyndman 2006); NaN "
+        "without two full seasons"
+    )
+    group_seasonal_strength: Optional[Series[float]] = pa.Field(
+        nullable=True, ge=0, le=1, description="F_S of the sum of its seasonal group (NaN unless seasonality group)"
+    )
 
     class Config:
         unique = ["grain", "product", "site", "customer"]
@@ -93,6 +113,13 @@ class StatisticalForecast(LeafPeriod):
     forecast: Series[float] = pa.Field(description="leaf forecast")
     parent_forecast: Series[float] = pa.Field(description="the parent's forecast this was split from")
     basis: Series[Text] = pa.Field(isin=values(FORECAST_BASES), description="what the leaf value was made from")
+    bounds: Optional[Series[float]] = pa.Field(
+        alias=INTERVAL_COLUMN_PATTERN,
+        regex=True,
+        ge=0,
+        description="prediction interval bounds, lower_<level> and upper_<level> per level of config intervals "
+        "(pipelines.engines.forecast_intervals; 0 where the lifecycle set the period to 0)",
+    )
 
     class Config:
         unique = ["product", "site", "customer", "period_start"]
@@ -115,6 +142,26 @@ class ForecastFittedValues(_Strict):
         unique = ["grain", "product", "site", "customer", "period_start"]
 
 
+class UpperLevelForecast(_Strict):
+    """Forecasts of the levels above the parent (hierarchy.upper_levels), per node and period."""
+
+    cycle_date: Series[DateTime] = pa.Field(description="cycle date")
+    product_class: Series[Text] = pa.Field(description="product class")
+    level: Series[Text] = pa.Field(description="level: product, a products column (e.g. product_family) or total")
+    node: Series[Text] = pa.Field(description="the node's key on its level (product, column value, class)")
+    parent_node: Series[Text] = pa.Field(description="its node on the level above ('' on the top level)")
+    period_start: Series[DateTime] = pa.Field(description="forecast period")
+    base_forecast: Series[float] = pa.Field(ge=0, description="the node's own model forecast (its sum of history)")
+    strategy_forecast: Series[float] = pa.Field(
+        description="sum of its parents' strategy_forecast (for MinT / WLS: the tree's reconciled value)"
+    )
+    forecast: Series[float] = pa.Field(description="sum of its parents' final forecast")
+    model: Series[Text] = pa.Field(description="model label of the base forecast")
+
+    class Config:
+        unique = ["level", "node", "period_start"]
+
+
 class BacktestAccuracy(_Strict):
     """Rolling-origin backtest: one accuracy value per product class, strategy, grain and metric."""
 
@@ -124,7 +171,11 @@ class BacktestAccuracy(_Strict):
     )
     grain: Series[Text] = pa.Field(isin=GRAINS, description="grain the accuracy is measured at")
     metric: Series[Text] = pa.Field(
-        isin=values(Metric), description="wmape, bias, mase or fva (value added over seasonal naive, WMAPE points)"
+        description="wmape, bias, mase, fva (value added over seasonal naive, WMAPE points) or coverage_<level> "
+        "(share of actuals inside the level % prediction interval)"
+    )
+    seasonality: Series[Text] = pa.Field(
+        isin=values(Seasonality), description="the seasonality the class's models ran with (none, own, group)"
     )
     value: Series[float] = pa.Field(
         nullable=True, description="the metric's value (NaN where undefined, e.g. no volume)"
@@ -139,8 +190,12 @@ class BacktestAccuracy(_Strict):
         isin=("wmape", "rmsse", "mase"), description="the metric the class's choices are made on (its demand classes)"
     )
 
+    @pa.check("metric", name="metric_known")
+    def _metric_known(cls, metric: Series[str]) -> Series[bool]:
+        return metric.isin(values(Metric)) | metric.str.fullmatch(COVERAGE_METRIC_PATTERN)
+
     class Config:
-        unique = ["product_class", "strategy", "grain", "metric"]
+        unique = ["product_class", "seasonality", "strategy", "grain", "metric"]
 
 
 class StrategyChoice(_Strict):
@@ -151,6 +206,9 @@ class StrategyChoice(_Strict):
         isin=(AUTO,) + STRATEGIES, description="the class's configured strategy (auto: the backtest's choice)"
     )
     strategy: Series[Text] = pa.Field(isin=STRATEGIES, description="strategy the cycle follows")
+    seasonality: Optional[Series[Text]] = pa.Field(
+        isin=values(Seasonality), description="seasonality the cycle follows (for seasonality auto: the backtest's)"
+    )
     leaf_wmape: Series[float] = pa.Field(nullable=True, description="its leaf-grain backtest WMAPE")
     runner_up: Series[Text] = pa.Field(description="next best strategy by the selection metric ('' if none)")
     margin: Series[float] = pa.Field(

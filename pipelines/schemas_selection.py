@@ -4,7 +4,7 @@ import pandera.pandas as pa
 from pandera.typing import DateTime, Series
 
 from pipelines.schemas import _Strict
-from pipelines.vocabulary import AUTO, BENCHMARK, SelectionMetric, ShareMethod, Strategy, values
+from pipelines.vocabulary import AUTO, BENCHMARK, Seasonality, SelectionMetric, ShareMethod, Strategy, values
 
 DECISIONS = ("first", "keep", "switch", "fixed")
 
@@ -16,6 +16,9 @@ class BacktestLosses(_Strict):
     strategy: Series[str] = pa.Field(
         isin=values(Strategy) + (str(BENCHMARK),), description="strategy, or the seasonal naive benchmark"
     )
+    seasonality: Series[str] = pa.Field(
+        isin=values(Seasonality), description="the seasonality the class's models ran with (none, own, group)"
+    )
     origin: Series[DateTime] = pa.Field(description="backtest origin (first forecast period)")
     step: Series[int] = pa.Field(ge=1, description="periods ahead of the origin, 1..horizon")
     abs_loss: Series[float] = pa.Field(ge=0, description="sum over the class's leaves of |forecast - raw actual|")
@@ -24,7 +27,7 @@ class BacktestLosses(_Strict):
     )
 
     class Config:
-        unique = ["product_class", "strategy", "origin", "step"]
+        unique = ["product_class", "seasonality", "strategy", "origin", "step"]
 
 
 class ShareTuning(_Strict):

@@ -30,6 +30,7 @@ MODELS = {
     "statistical_forecast": f.StatisticalForecast,
     "forecast_models": f.ForecastModels,
     "forecast_fitted_values": f.ForecastFittedValues,
+    "upper_level_forecast": f.UpperLevelForecast,
     "reconciliation": f.Reconciliation,
     "plan_measures": f.PlanMeasures,
     "cycle_report": f.CycleReportFiles,

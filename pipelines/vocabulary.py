@@ -50,6 +50,21 @@ class Strategy(StrEnum):
 
 # `product_classes.<class>.strategy: auto`: the backtest picks the class's strategy
 AUTO = "auto"
+
+
+class Seasonality(StrEnum):
+    """Where a class's seasonal shape comes from (`product_classes.<class>.seasonality`; `auto`: the backtest)."""
+
+    NONE = "none"
+    OWN = "own"
+    GROUP = "group"
+
+
+# `product_classes.<class>.seasonal_group` and `hierarchy.upper_levels`: names with a meaning of their own
+# (any other name is a column of the products master data)
+GROUP_PRODUCT = "product"  # the product across its sites
+GROUP_CLASS = "product_class"  # the whole class
+LEVEL_TOTAL = "total"  # everything of the class
 # config keys and values of the last release, still read (with a warning) until the next one
 FORECAST_GRAIN_STRATEGY = {"product_site": "top_down", "product_site_customer": "bottom_up", "auto": AUTO}
 RENAMED_SHARE_METHODS = {"forecast_proportions": "children_forecast"}
@@ -121,6 +136,22 @@ class SwitchRule(StrEnum):
     BOTH = "both"
     TOLERANCE = "tolerance"
     TEST = "test"
+
+
+def coverage_metric(level: float) -> str:
+    """The backtest metric of the level % prediction interval: the share of actuals inside it (`coverage_80`)."""
+    return f"coverage_{level:g}"
+
+
+COVERAGE_METRIC_PATTERN = r"coverage_\d+(\.\d+)?"
+
+
+def interval_columns(level: float) -> tuple[str, str]:
+    """The bound columns of the level % prediction interval in the forecast tables (`lower_80`, `upper_80`)."""
+    return f"lower_{level:g}", f"upper_{level:g}"
+
+
+INTERVAL_COLUMN_PATTERN = r"^(lower|upper)_\d+(\.\d+)?$"
 
 
 class OutlierRule(StrEnum):

@@ -87,7 +87,8 @@ def _losses(top_down: np.ndarray, bottom_up: np.ndarray, h: int = 4) -> pd.DataF
     n = len(top_down)
     origins = pd.to_datetime("2026-01-05") + pd.to_timedelta(7 * h * (np.arange(n) // h), unit="D")
     frames = [
-        pd.DataFrame({"product_class": "a", "strategy": s, "origin": origins, "step": np.arange(n) % h + 1,
+        pd.DataFrame({"product_class": "a", "strategy": s, "seasonality": "none", "origin": origins,
+                      "step": np.arange(n) % h + 1,
                       "abs_loss": v, "squared_scaled_loss": v})
         for s, v in (("top_down", top_down), ("bottom_up", bottom_up))
     ]

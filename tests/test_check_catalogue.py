@@ -19,6 +19,7 @@ RULE_CHECKS = {
     ("strategy_choice", "chosen_strategy_beats_seasonal_naive", "WARN"),  # on backtest_accuracy until this release
     ("share_tuning", "share_choice_near_best", "WARN"),
     ("reconciliation", "children_sum_to_parent", "ERROR"),
+    ("upper_level_forecast", "upper_levels_coherent", "ERROR"),
     ("reinitialized_target", "shares_sum_to_one", "ERROR"),  # on reconciliation until this release
     ("statistical_forecast", "no_volume_after_phase_out", "ERROR"),  # on reconciliation until this release
     ("statistical_forecast", "no_volume_outside_active_span", "ERROR"),  # on reconciliation until this release

@@ -39,7 +39,10 @@ Tables = dict[str, pd.DataFrame]
 def runs() -> dict[str, PartitionRun]:
     backtest = yaml.safe_load((ROOT / "config" / "planning.yaml").read_text())["backtest"]
     backtest["strategies"] = ["mint_shrink", "wls_var"]
-    config = demo_config({"spares": {"method": "children_forecast"}}, backtest=backtest)
+    # consumables with group seasonality (its config's `auto` needs the backtest, which only spares runs here)
+    config = demo_config(
+        {"spares": {"method": "children_forecast"}, "consumables": {"seasonality": "group"}}, backtest=backtest
+    )
     runs = {
         "consumables": run_partition(config, CYCLE, "consumables"),
         "spares": run_partition(config, CYCLE, "spares", backtest=True),
@@ -99,6 +102,13 @@ def _forecast_checks(run: PartitionRun, t: Tables):
     return forecast_checks(
         t["parent_forecast"], t["statistical_forecast"], t["customer_spans"], t["products"], run.config.calendar.period
     )
+
+
+def _upper_level_checks(run: PartitionRun, t: Tables):
+    from pipelines.engines.upper_levels import upper_level_checks
+
+    levels = tuple(run.config.hierarchy.upper_levels)
+    return upper_level_checks(t["upper_level_forecast"], t["parent_forecast"], t["products"], levels)
 
 
 def _reconciliation_checks(run: PartitionRun, t: Tables):
@@ -174,6 +184,7 @@ JUDGES: dict[str, Callable[[PartitionRun, Tables], dict]] = {
     C.NO_VOLUME_OUTSIDE_ACTIVE_SPAN: _forecast_checks,
     C.NO_NEGATIVE_FORECAST: _forecast_checks,
     C.CHILDREN_SUM_TO_PARENT: _reconciliation_checks,
+    C.UPPER_LEVELS_COHERENT: _upper_level_checks,
     C.EVERY_ACTIVE_PARENT_HAS_CHILDREN: _reconciliation_checks,
     C.MEASURES_SUM_TO_PARENT: _plan_checks,
     C.PINS_KEPT: _plan_checks,
@@ -326,6 +337,23 @@ def strategy_forecast_changed(t: Tables):
     return {"parent_forecast": _changed(parent, i, "strategy_forecast", value)}, _key(parent.loc[i], PARENT_PERIOD)
 
 
+def upper_node_plus_one(t: Tables):
+    upper = t["upper_level_forecast"]
+    i = upper.index[upper["level"] == "product_family"][0]
+    return {"upper_level_forecast": _changed(upper, i, "forecast", upper.at[i, "forecast"] + 1.0)}, _key(
+        upper.loc[i], ["level", "node", "period_start"]
+    )
+
+
+def reconciled_parent_moved_under_its_product(t: Tables):
+    # a MinT parent's strategy_forecast off by 1 %: its product node (the level right above) no longer holds it
+    parent = t["parent_forecast"]
+    i = parent.index[parent["strategy_forecast"] > 1.0][0]
+    moved = _changed(parent, i, "strategy_forecast", parent.at[i, "strategy_forecast"] * 1.01)
+    return {"parent_forecast": moved}, {"level": "product", "node": parent.at[i, "product"],
+                                        "period_start": parent.at[i, "period_start"], "column": "strategy_forecast"}
+
+
 def parent_resummed_from_wrong_leaves(t: Tables):
     # the flaw of a re-summing cycle: one leaf lost 2 units and the final parent was re-summed from the leaves,
     # so the two still agree; the strategy's own value is the judge
@@ -442,6 +470,8 @@ MUTATIONS = [
     Mutation(C.CHILDREN_SUM_TO_PARENT, "consumables", leaf_volume_in_zeroed_period),
     Mutation(C.CHILDREN_SUM_TO_PARENT, "spares", leaf_off_by_1e_7),
     Mutation(C.CHILDREN_SUM_TO_PARENT, "spares", strategy_forecast_changed),
+    Mutation(C.UPPER_LEVELS_COHERENT, "consumables", upper_node_plus_one),
+    Mutation(C.UPPER_LEVELS_COHERENT, "spares", reconciled_parent_moved_under_its_product),
     Mutation(C.EVERY_ACTIVE_PARENT_HAS_CHILDREN, "consumables", parent_children_dropped),
     Mutation(C.EVERY_ACTIVE_PARENT_HAS_CHILDREN, "spares", parent_dropped_everywhere),
     Mutation(C.MEASURES_SUM_TO_PARENT, "consumables",

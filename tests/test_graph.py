@@ -127,8 +127,12 @@ def test_auto_classes_follow_the_backtest_choice_and_stay_coherent(demo_cycle):
         "wls_var",
         "seasonal_naive",
     }
-    assert set(accuracy["metric"]) == {"wmape", "bias", "mase", "rmsse", "fva"}
+    # the interval levels of config/planning.yaml are scored too
+    assert set(accuracy["metric"]) == {"wmape", "bias", "mase", "rmsse", "fva", "coverage_80", "coverage_95"}
     assert set(accuracy["grain"]) == {"leaf", "parent"}
+    # consumables (seasonality auto) compares none with group; the others their models' own setting
+    by_class = accuracy.groupby("product_class")["seasonality"].unique().apply(sorted).to_dict()
+    assert by_class == {"consumables": ["group", "none"], "seasonal": ["own"], "spares": ["none"]}
     # the decision is stored once (strategy_choice) and the forecast followed it
     choice = read_table(store, "strategy_choice").set_index("product_class")
     parent = read_table(store, "parent_forecast")
@@ -169,8 +173,12 @@ def test_the_models_volume_reaches_the_leaves_or_is_set_to_zero_with_its_reason(
     # history (weekly sums from the first week with demand to the week before the cycle, zero-filled), the model
     # the cycle recorded for it in forecast_models (config/planning.yaml: auto_ets for smooth consumables,
     # croston_sba for intermittent spares). Tolerance 1e-7 relative: the same library on the same numbers.
+    # A parent with group seasonality (consumables, if the backtest chose it): the model ran on its series
+    # divided by statsmodels' multiplicative seasonal index (seasonal_decompose, period 52) of its product's
+    # weekly sum over the class's history, and the forecast is multiplied by the index again.
     from statsforecast import StatsForecast
     from statsforecast.models import AutoETS, CrostonSBA
+    from statsmodels.tsa.seasonal import seasonal_decompose
 
     _, store, _ = demo_cycle
     cycle = pd.Timestamp("2026-11-30")
@@ -185,6 +193,15 @@ def test_the_models_volume_reaches_the_leaves_or_is_set_to_zero_with_its_reason(
         top_down = parent.loc[parent["strategy"] == "top_down", ["product", "site"]].drop_duplicates()
         models = models[(models["grain"] == "parent") & models["model"].isin(list(make))].merge(top_down)
         weekly = history.groupby(["product", "site", "period_start"])["quantity"].sum()
+        real = history[history["quantity"] != 0]
+        all_weeks = pd.date_range(real["period_start"].min(), cycle - pd.Timedelta(days=7), freq="W-MON")
+        by_product = history.groupby(["product", "period_start"])["quantity"].sum()
+        grouped = set(models.loc[models.get("seasonality", pd.Series(dtype=str)) == "group", "product"])
+        index = {}  # product -> (history index by week, horizon index)
+        for product in grouped:
+            agg = by_product.loc[product].reindex(all_weeks, fill_value=0.0).to_numpy()
+            seasonal = seasonal_decompose(agg, model="multiplicative", period=52).seasonal
+            index[product] = (pd.Series(seasonal, index=all_weeks), seasonal[len(agg) - 52 : len(agg) - 26])
         for label, factory in make.items():
             frames = []
             for product, site in models.loc[models["model"] == label, ["product", "site"]].itertuples(index=False):
@@ -192,13 +209,18 @@ def test_the_models_volume_reaches_the_leaves_or_is_set_to_zero_with_its_reason(
                 y = y[y.index < cycle]
                 y = y.loc[y[y != 0].index.min():]
                 weeks = pd.date_range(y.index.min(), cycle - pd.Timedelta(days=7), freq="W-MON")
-                frames.append(pd.DataFrame({"unique_id": f"{product}|{site}", "ds": weeks,
-                                            "y": y.reindex(weeks, fill_value=0.0).to_numpy()}))
+                values = y.reindex(weeks, fill_value=0.0).to_numpy()
+                if product in index:
+                    values = values / index[product][0].reindex(weeks).to_numpy()
+                frames.append(pd.DataFrame({"unique_id": f"{product}|{site}", "ds": weeks, "y": values}))
             if not frames:
                 continue
             fc = StatsForecast(models=[factory()], freq="W-MON").forecast(df=pd.concat(frames), h=26)
             fc = fc.set_axis(["unique_id", "period_start", "model_forecast"], axis=1)
             fc[["product", "site"]] = fc["unique_id"].str.split("|", expand=True)
+            for product in set(fc["product"]) & set(index):
+                rows = fc["product"] == product
+                fc.loc[rows, "model_forecast"] *= np.tile(index[product][1], int(rows.sum()) // 26)
             fc["model_forecast"] = fc["model_forecast"].clip(lower=0)  # the cycle sets a negative forecast to 0
             sums = leaf.groupby(key)["forecast"].sum().rename("leaf_sum").reset_index()
             got = fc.merge(parent[key + ["forecast", "strategy_forecast", "zero_reason"]], on=key, validate="1:1")

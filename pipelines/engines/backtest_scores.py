@@ -27,8 +27,11 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from pipelines.calendar import season_length
+from pipelines.engines.accuracy import mase_scale
 from pipelines.engines.forecast_comparison import squared_scaled_loss
-from pipelines.engines.scaled_errors import pooled_rmsse, rmsse
+from pipelines.engines.scaled_errors import pooled_rmsse, rmsse, rmsse_scale, volume_weights
+from pipelines.vocabulary import BENCHMARK
 
 RAW, CLEANED = "raw", "cleaned"
 LOSS_COLUMNS = ["product_class", "strategy", "origin", "step", "abs_loss", "squared_scaled_loss"]
@@ -111,3 +114,51 @@ class ScoreBook:
         if not frames:
             return pd.DataFrame({c: pd.Series(dtype=object) for c in LOSS_COLUMNS})
         return pd.concat(frames, ignore_index=True)[LOSS_COLUMNS]
+
+
+def dense_window(code: np.ndarray, ords: np.ndarray, qty: np.ndarray, n: int, start: int, width: int) -> np.ndarray:
+    """(n, width) sums of qty per series for periods start..start+width-1."""
+    inside = (ords >= start) & (ords < start + width)
+    flat = np.bincount(code[inside] * width + (ords[inside] - start), weights=qty[inside], minlength=n * width)
+    return flat.reshape(n, width)
+
+
+def error_scales(grid, cls: np.ndarray, seasonal_classes, period: str, h: int) -> Scales:
+    """MASE and RMSSE scales per series (seasonal differences for seasonal classes) and RMSSE's volume weights."""
+    sl = season_length(period)
+    seasonal = np.isin(cls, list(seasonal_classes))
+    q = mase_scale(grid.series, grid.y, grid.n_series, 1)
+    q2 = rmsse_scale(grid.series, grid.y, grid.n_series, 1)
+    if seasonal.any():
+        qs = mase_scale(grid.series, grid.y, grid.n_series, sl)
+        q2s = rmsse_scale(grid.series, grid.y, grid.n_series, sl)
+        q, q2 = np.where(seasonal & np.isfinite(qs), qs, q), np.where(seasonal & np.isfinite(q2s), q2s, q2)
+    return Scales(q=q, q2=q2, weight=volume_weights(grid.series, grid.y, grid.n_series, h))
+
+
+# the accuracy table's columns before the backtest adds the seasonality it ran with
+TABLE_COLUMNS = [
+    "product_class", "strategy", "grain", "metric", "value", "origins", "horizon", "series", "value_cleaned",
+    "selection_metric",
+]
+
+
+def accuracy_table(book: ScoreBook, names, metric: np.ndarray, c_cls, p_cls, n_origins: int, h: int) -> pd.DataFrame:
+    classes = book.classes
+    counts = {"leaf": np.bincount(c_cls, minlength=len(classes)), "parent": np.bincount(p_cls, minlength=len(classes))}
+    out = []
+    for grain in ("leaf", "parent"):
+        bench = {b: book.metrics(BENCHMARK, grain, b) for b in (RAW, CLEANED)}
+        for s in names:
+            values = {b: book.metrics(s, grain, b) for b in (RAW, CLEANED)}
+            for b in (RAW, CLEANED):
+                values[b]["fva"] = bench[b]["wmape"] - values[b]["wmape"]
+            for name_metric in ("wmape", "bias", "mase", "rmsse", "fva"):
+                for i, name in enumerate(classes):
+                    out.append((
+                        name, s, grain, name_metric, float(values[RAW][name_metric][i]), n_origins, h,
+                        int(counts[grain][i]), float(values[CLEANED][name_metric][i]), metric[i],
+                    ))
+    table = pd.DataFrame(out, columns=TABLE_COLUMNS)
+    keep = table["series"] > 0  # a class without series in the data has nothing to report
+    return table[keep].reset_index(drop=True)

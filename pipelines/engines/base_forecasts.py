@@ -7,7 +7,7 @@ with in-sample residuals over a common window where MinT or WLS needs them.
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 
 import numpy as np
@@ -15,6 +15,8 @@ import pandas as pd
 
 from pipelines.engines.hierarchy import NEEDS_LEAF, NEEDS_PARENT, NEEDS_RESIDUALS
 from pipelines.engines.models import ModelSettings, SeriesGrid, assign_models, demand_classes, run_model_groups
+from pipelines.engines.seasonal_base import SeasonPlan
+from pipelines.vocabulary import Seasonality
 
 
 def residual_matrix(grid: SeriesGrid, fitted: np.ndarray, start_ord: int, end_ord: int) -> np.ndarray:
@@ -52,6 +54,8 @@ class BaseForecasts:
     models: pd.DataFrame
     parent_fitted: np.ndarray | None = None  # aligned with the parent grid's rows (NaN where not fitted)
     leaf_fitted: np.ndarray | None = None
+    parent_sd: np.ndarray | None = None  # (n_parents, h) base forecast standard deviations (with `sd=True`)
+    leaf_sd: np.ndarray | None = None
 
 
 def series_to_fit(parent_class: np.ndarray, child_class: np.ndarray, strategies: dict[str, str]) -> int:
@@ -75,18 +79,33 @@ def base_forecasts(
     horizon: int,
     log: Callable[[str], None] | None = None,
     progress: Callable[[int], None] | None = None,
+    seasonality: Mapping[str, str] | None = None,
+    season: SeasonPlan | None = None,
+    sd: bool = False,
 ) -> BaseForecasts:
     """Run the class's models at the grains its strategy needs (`pipelines.engines.hierarchy`).
 
     `strategies` maps product class -> strategy; for several strategies at
     once (the backtest) pass `mint_shrink`, which needs both grains and the
-    residuals. `progress(n)`: n more series fitted (`series_to_fit` in all).
+    residuals. `seasonality` maps class -> none | own | group (absent: the
+    class's `models.seasonal`); a `group` class runs its models without a
+    season on the history divided by `season`'s index and takes the index
+    back on its forecasts and fitted values (`pipelines.engines.seasonal_base`).
+    `sd`: also the base forecasts' standard deviations (`models.run_model_groups`).
+    `progress(n)`: n more series fitted (`series_to_fit` in all).
     """
     period = models.period
     out = {}
+    sds = {}
+    seasonality = seasonality or {}
     for grain, grid, cls in (("parent", p_grid, parent_class), ("leaf", c_grid, child_class)):
         demand, adi, cv2 = demand_classes(grid)
         length = np.bincount(grid.series, minlength=grid.n_series)
+        row_factor = season.row_factor(grid, grain) if season is not None else np.ones(len(grid.y))
+        model_grid = SeriesGrid(grid.series, grid.ordinal, grid.y / row_factor, grid.n_series)
+        end = int(grid.ordinal.max()) + 1 if len(grid.ordinal) else 0
+        fc_factor = season.horizon_factor(grain, end, horizon) if season is not None else None
+        fc_sd = np.zeros((grid.n_series, horizon))
         fc = np.zeros((grid.n_series, horizon))
         fitted = np.full(len(grid.y), np.nan)
         label = np.full(grid.n_series, "", dtype=object)
@@ -98,17 +117,28 @@ def base_forecasts(
             if strategy not in need or not members.any():
                 continue
             choice = models.choices[name]
-            names, season = assign_models(demand[members], length[members], choice, period)
+            mode = seasonality.get(name)
+            if mode is not None:
+                choice = choice.model_copy(update={"seasonal": mode == Seasonality.OWN})
+            names, season_len = assign_models(demand[members], length[members], choice, period)
+            grouped = mode == Seasonality.GROUP and season is not None
             res = run_model_groups(
-                _subgrid(grid, members), names, season, horizon, log=log, tsb=choice.tsb,
-                fitted=strategy in NEEDS_RESIDUALS, n_jobs=models.n_jobs, progress=progress,
+                _subgrid(model_grid if grouped else grid, members), names, season_len, horizon, log=log,
+                tsb=choice.tsb, fitted=strategy in NEEDS_RESIDUALS or sd, n_jobs=models.n_jobs, sd=sd,
+                progress=progress,
             )
-            fc[members] = res.forecast
-            fitted[members[grid.series]] = res.fitted
+            rows = members[grid.series]
+            scale = fc_factor[members] if grouped else 1.0
+            fc[members] = res.forecast * scale
+            if strategy in NEEDS_RESIDUALS:  # kept for MinT / WLS only (the sd needs them inside the run)
+                fitted[rows] = res.fitted * (row_factor[rows] if grouped else 1.0)
+            if sd:
+                fc_sd[members] = res.sd * scale
             label[members] = res.label
             params[members] = res.parameters
             ran |= members
         out[grain] = (fc, fitted, label, params, ran, demand, adi, cv2)
+        sds[grain] = fc_sd if sd else None
     (pfc, pfit, plabel, pparams, pran, pdemand, padi, pcv2) = out["parent"]
     (lfc, lfit, llabel, lparams, lran, ldemand, ladi, lcv2) = out["leaf"]
     negatives = int((pfc < 0).sum() + (lfc < 0).sum())
@@ -157,6 +187,8 @@ def base_forecasts(
         models=models,
         parent_fitted=pfit,
         leaf_fitted=lfit,
+        parent_sd=sds["parent"],
+        leaf_sd=sds["leaf"],
     )
 
 

@@ -43,6 +43,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
+from scipy.stats import norm
 from statsforecast import StatsForecast
 from statsforecast import models as sfm
 
@@ -77,6 +78,11 @@ SEASONAL_MODELS = ("auto_ets", "ets_additive_season", "mstl_ets", "seasonal_naiv
 ETS_MODELS = ("auto_ets", "ets_additive_season")
 
 
+# models whose prediction intervals statsforecast computes itself (normal), and the level read for their sd
+NATIVE_INTERVALS = ("auto_ets", "ets_additive_season", "mstl_ets", "seasonal_naive")
+SD_LEVEL = 80
+
+
 CROSTON_ALPHA = 0.1  # statsforecast's CrostonClassic and CrostonSBA smooth both series with alpha = 0.1
 
 
@@ -93,6 +99,7 @@ class ModelRun:
     fitted: np.ndarray
     parameters: np.ndarray
     label: np.ndarray
+    sd: np.ndarray | None = None  # (n, horizon) forecast standard deviations (with `sd=True`)
 
 
 @dataclass(frozen=True)
@@ -217,6 +224,7 @@ def run_model_groups(
     fitted: bool = False,
     n_jobs: int = 1,
     progress: Callable[[int], None] | None = None,
+    sd: bool = False,
 ) -> ModelRun:
     """Forecasts (and, with `fitted`, in-sample fitted values) of every series, one statsforecast call per
     (model, season) group.
@@ -226,8 +234,19 @@ def run_model_groups(
     memory-efficient `forecast`. A model that fails on a series falls back to
     the naive forecast. `progress(n)` is told after each group how many of the
     grid's series it finished (every series once, the all-zero ones included).
+
+    `sd` (needs `fitted`): each forecast's standard deviation. Models with
+    their own prediction intervals in statsforecast (`NATIVE_INTERVALS`: ETS,
+    MSTL, seasonal naive, and the naive fallback) give it from their normal
+    80 % interval, sd = (hi - lo) / (2 z_0.9); the others (Croston, TSB,
+    ADIDA, IMAPA, SES) only have conformal intervals there, which refit the
+    model on held-back windows and need a long history, so their sd is the
+    root mean square of the in-sample one-step residuals, the same over the
+    horizon (statsforecast's `_calculate_sigma`, which its fitted intervals
+    use): an assumption, whose coverage the backtest reports.
     """
     fc = np.zeros((grid.n_series, horizon))
+    sds = np.zeros((grid.n_series, horizon))
     fit_values = np.full(len(grid.y), np.nan)
     parameters = np.full(grid.n_series, "", dtype=object)
     labels = np.full(grid.n_series, "zero", dtype=object)
@@ -243,15 +262,16 @@ def run_model_groups(
         df = pd.DataFrame({"unique_id": grid.series[rows], "ds": grid.ordinal[rows], "y": grid.y[rows]})
         sf = StatsForecast(models=[make_model(name, int(s), tsb)], freq=1, n_jobs=n_jobs, fallback_model=sfm.Naive())
         started = time.perf_counter()
+        level = [SD_LEVEL] if sd and name in NATIVE_INTERVALS else None
         if name in ETS_MODELS:
             sf.fit(df=df)
-            out = sf.predict(h=horizon)
+            out = sf.predict(h=horizon, level=level)
             fitted_models = sf.fitted_[:, 0]
             parameters[np.sort(ids)] = [_ets_parameters(m) for m in fitted_models]  # reads the library's results
             if fitted:
                 fit_values[rows] = np.concatenate([m.model_["fitted"] for m in fitted_models])
         else:
-            out = sf.forecast(df=df, h=horizon, fitted=fitted)
+            out = sf.forecast(df=df, h=horizon, fitted=fitted, level=level)
             if fitted:
                 fit_values[rows] = sf.forecast_fitted_values().iloc[:, 3].to_numpy(float)
             if name in ("croston_classic", "croston_sba"):
@@ -273,8 +293,27 @@ def run_model_groups(
         if log:
             log(f"{model_label(name, int(s))}: {len(ids)} series in {time.perf_counter() - started:.1f} s")
         values = out.iloc[:, 2].to_numpy(float).reshape(-1, horizon)
-        fc[out["unique_id"].to_numpy()[::horizon]] = values
+        order = out["unique_id"].to_numpy()[::horizon]
+        fc[order] = values
+        if sd:
+            sds[order] = _forecast_sd(out, level, grid, rows, fit_values, order, horizon)
         if progress:
             progress(len(ids))
-    return ModelRun(forecast=fc, fitted=fit_values, parameters=parameters, label=labels)
+    return ModelRun(forecast=fc, fitted=fit_values, parameters=parameters, label=labels, sd=sds if sd else None)
+
+
+def _forecast_sd(out: pd.DataFrame, level, grid: SeriesGrid, rows, fit_values, order, horizon: int) -> np.ndarray:
+    """(len(order), horizon) sd from the library's interval, or the in-sample residuals' root mean square."""
+    if level:
+        lo = out.filter(regex=rf"-lo-{SD_LEVEL}$").iloc[:, 0].to_numpy(float)
+        hi = out.filter(regex=rf"-hi-{SD_LEVEL}$").iloc[:, 0].to_numpy(float)
+        sd = (hi - lo) / (2 * norm.ppf(0.5 + SD_LEVEL / 200))
+        return np.nan_to_num(np.clip(sd, 0, None)).reshape(-1, horizon)
+    res = grid.y[rows] - fit_values[rows]
+    ok = np.isfinite(res)
+    series = grid.series[rows][ok]
+    square = np.bincount(series, weights=res[ok] ** 2, minlength=grid.n_series)
+    count = np.bincount(series, minlength=grid.n_series)
+    sigma = np.sqrt(np.divide(square, count, out=np.zeros(grid.n_series), where=count > 0))
+    return np.repeat(sigma[order][:, None], horizon, axis=1)
 

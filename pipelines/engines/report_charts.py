@@ -88,7 +88,9 @@ def parent_chart_figure(
         return _empty_figure(title, f"no parent of class {product_class} has a forecast in this cycle")
     hist = _history_of(history, parents, cycle, period, history_periods)
     hist = hist.groupby(PARENT + ["period_start"], observed=True, as_index=False)["quantity"].sum()
-    fc = fc.groupby(PARENT + ["period_start"], observed=True, as_index=False)["forecast"].sum()
+    bands = interval_levels(fc)
+    bound_cols = [c for lv in bands for c in (f"lower_{lv}", f"upper_{lv}")]
+    fc = fc.groupby(PARENT + ["period_start"], observed=True, as_index=False)[["forecast"] + bound_cols].sum()
     ranked = _rank_parents(hist, fc, parents)
     shown = ranked.head(max(int(top_parents), 0))
     hidden = ranked.iloc[len(shown):]
@@ -103,6 +105,12 @@ def parent_chart_figure(
         "each panel has its own scale. History: lifecycle history summed to product x site. Forecast: "
         "parent_forecast. "
         f"Shaded: the horizon."
+        + (
+            f" Bands on the parents: their {' and '.join(b + ' %' for b in bands)} prediction intervals "
+            "(parent_forecast lower_/upper_ columns)."
+            if bands
+            else ""
+        )
     )
     names = [_parent_label(p, s) for p, s in zip(hidden["product"], hidden["site"], strict=False)]
     lines = _caption(caption, names, f"Not drawn ({len(hidden)}, largest first): ")
@@ -136,6 +144,11 @@ def parent_chart_figure(
             ax.plot(h["period_start"], h["quantity"].to_numpy(), color=HISTORY_COLOR, lw=0.9, label="history")
         if f is not None:
             f = f.sort_values("period_start")
+            for k, lv in enumerate(sorted(bands, key=float, reverse=True)):  # widest first, lighter
+                ax.fill_between(
+                    f["period_start"], f[f"lower_{lv}"].to_numpy(float), f[f"upper_{lv}"].to_numpy(float),
+                    color=FORECAST_COLOR, alpha=0.15 + 0.15 * k, lw=0, label=f"{lv} % interval",
+                )
             ax.plot(f["period_start"], f["forecast"].to_numpy(), color=FORECAST_COLOR, lw=1.8, label="forecast")
         part = row.history_volume / class_volume if class_volume > 0 else float("nan")
         share_text = "" if math.isnan(part) else f"  ({part:.0%} of class history)"
@@ -144,6 +157,12 @@ def parent_chart_figure(
         _date_axis(ax)
     _caption_axes(fig, grid[rows + 1, :], lines)
     return fig
+
+
+def interval_levels(frame: pd.DataFrame) -> list[str]:
+    """The interval levels whose lower_ and upper_ columns the frame holds (as written, e.g. '80')."""
+    lower = {c[len("lower_"):] for c in frame.columns if c.startswith("lower_")}
+    return sorted((lv for lv in lower if f"upper_{lv}" in frame.columns), key=float)
 
 
 def parent_chart(

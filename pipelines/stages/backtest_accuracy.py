@@ -36,6 +36,19 @@ is judged by the metric of the demand classes holding most of its leaf series
 (`selection.metric`; `scaled_errors.class_metric`), `selection_metric`.
 `backtest_losses` keeps each strategy's leaf loss per backtest period for the
 comparison test of the next stage, `strategy_choice`, which makes the choice.
+
+Seasonality: every class is backtested with each seasonality it may follow
+(`seasonal_base.seasonality_candidates`: its own setting, or for
+`seasonality: auto` none - own where `models.seasonal` is true - and
+`group`, the group seasonal indices estimated at each origin from the history
+before it); the accuracy and loss tables have a row per seasonality. Seasonal
+naive does not depend on it and is repeated under each. The share tuning is
+that of the class's first seasonality (its configured one, or `none`).
+
+Intervals: with `intervals.levels`, each strategy's intervals at each origin
+(`pipelines.engines.forecast_intervals`, as the cycle makes them) are scored
+by their coverage of the raw actuals, bounds included (metric
+`coverage_<level>`; a well calibrated 80 % interval covers about 0.8).
 """
 
 from __future__ import annotations
@@ -50,27 +63,28 @@ from pipelines.calendar import ordinal_to_start, period_ordinal, season_length
 from pipelines.checks import SHARE_CHOICE_NEAR_BEST
 from pipelines.config_sections import BacktestConfig
 from pipelines.config_selection import SelectionConfig
-from pipelines.engines.accuracy import mase_scale
-from pipelines.engines.backtest_scores import CLEANED, RAW, Scales, ScoreBook
+from pipelines.engines.backtest_scores import CLEANED, RAW, ScoreBook, accuracy_table, dense_window, error_scales
 from pipelines.engines.base_forecasts import base_forecasts, series_to_fit
 from pipelines.engines.children import active_children
 from pipelines.engines.forecast_comparison import StabilityRule
+from pipelines.engines.forecast_intervals import CoverageBook
 from pipelines.engines.hierarchy import NEEDS_RESIDUALS, coherent_forecasts, parent_sums
 from pipelines.engines.models import ModelSettings, demand_classes, run_model_groups, series_grid
 from pipelines.engines.origin_cleaning import ClassCleaning, clean_before, raw_quantities
 from pipelines.engines.period_shares import period_shares
-from pipelines.engines.scaled_errors import MetricRule, class_metric, rmsse_scale, volume_weights
+from pipelines.engines.scaled_errors import MetricRule, class_metric
+from pipelines.engines.seasonal_base import cycle_season_plan, seasonality_candidates
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.share_tuning import candidate_name, candidate_settings, class_candidates, decide
 from pipelines.engines.shares import compute_shares
 from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
 from pipelines.progress import SeriesProgress
 from pipelines.results import CheckRows, Log, StageResult, quiet
-from pipelines.vocabulary import AUTO, BENCHMARK
+from pipelines.vocabulary import AUTO, BENCHMARK, Seasonality
 
 ACCURACY_COLUMNS = [
-    "product_class", "strategy", "grain", "metric", "value", "origins", "horizon", "series", "value_cleaned",
-    "selection_metric",
+    "product_class", "seasonality", "strategy", "grain", "metric", "value", "origins", "horizon", "series",
+    "value_cleaned", "selection_metric",
 ]
 
 
@@ -84,6 +98,9 @@ class BacktestSettings:
     selection: SelectionConfig = SelectionConfig()
     configured: Mapping[str, tuple] = field(default_factory=dict)  # class -> (window, method) as configured
     cleaning: Mapping[str, ClassCleaning] = field(default_factory=dict)  # class -> outlier rule, at each origin
+    seasonality: Mapping[str, tuple[str, ...]] = field(default_factory=dict)  # class -> seasonalities compared
+    seasonal_groups: Mapping[str, str] = field(default_factory=dict)
+    levels: tuple[float, ...] = ()
 
     @classmethod
     def of(cls, config) -> BacktestSettings:
@@ -95,7 +112,14 @@ class BacktestSettings:
             config.backtest, ShareSettings.of(config), ModelSettings.of(config), config.selection,
             {n: (pc.window, pc.method) for n, pc in classes},
             {n: ClassCleaning(pc.outlier_rule(config.cleansing), pc.models.seasonal) for n, pc in classes},
+            {n: seasonality_candidates(pc) for n, pc in classes}, {n: pc.seasonal_group for n, pc in classes},
+            tuple(config.intervals.levels),
         )
+
+    def candidates(self, name: str) -> tuple[str, ...]:
+        """The seasonalities compared for a class (its models' own setting where none is configured)."""
+        own = Seasonality.OWN if self.models.choices[name].seasonal else Seasonality.NONE
+        return tuple(self.seasonality.get(name, (own,)))
 
 
 @dataclass(frozen=True)
@@ -114,32 +138,12 @@ def origin_ordinals(settings: BacktestSettings, cycle_ord: int, first_ord: int) 
     return [o for o in wanted if o > first_ord]
 
 
-def _dense(code: np.ndarray, ords: np.ndarray, qty: np.ndarray, n: int, start: int, width: int) -> np.ndarray:
-    """(n, width) sums of qty per series for periods start..start+width-1."""
-    inside = (ords >= start) & (ords < start + width)
-    flat = np.bincount(code[inside] * width + (ords[inside] - start), weights=qty[inside], minlength=n * width)
-    return flat.reshape(n, width)
-
-
 def _seasonal_naive(grid, horizon: int, period: str, log, progress=None) -> np.ndarray:
     sl = season_length(period)
     length = np.bincount(grid.series, minlength=grid.n_series)
     names = np.where(length > 0, "seasonal_naive", "zero").astype(object)
     season = np.where(length >= sl, sl, 1)
     return np.clip(run_model_groups(grid, names, season, horizon, log=log, progress=progress).forecast, 0, None)
-
-
-def _scales(grid, cls: np.ndarray, settings: BacktestSettings, h: int) -> Scales:
-    """MASE and RMSSE scales per series (seasonal differences for seasonal classes) and RMSSE's volume weights."""
-    sl = season_length(settings.share.period)
-    seasonal = np.isin(cls, [n for n, m in settings.models.choices.items() if m.seasonal])
-    q = mase_scale(grid.series, grid.y, grid.n_series, 1)
-    q2 = rmsse_scale(grid.series, grid.y, grid.n_series, 1)
-    if seasonal.any():
-        qs = mase_scale(grid.series, grid.y, grid.n_series, sl)
-        q2s = rmsse_scale(grid.series, grid.y, grid.n_series, sl)
-        q, q2 = np.where(seasonal & np.isfinite(qs), qs, q), np.where(seasonal & np.isfinite(q2s), q2s, q2)
-    return Scales(q=q, q2=q2, weight=volume_weights(grid.series, grid.y, grid.n_series, h))
 
 
 def run_backtest(
@@ -151,15 +155,51 @@ def run_backtest(
     cleaned: pd.DataFrame | None = None,
     previous_tuning: pd.DataFrame | None = None,
     history_periods: int | None = None,
+    products: pd.DataFrame | None = None,
 ) -> BacktestResult:
-    """The accuracy table (class x strategy x grain x metric), the losses and the share tuning; see the docstring.
+    """The accuracy table (class x seasonality x strategy x grain x metric), the losses and the share tuning.
 
     history: lifecycle history (all origins); children: the cycle's active
     children (leaf keys, product_class); cleaned: the cycle's cleaned history
     (its raw quantities are re-cleaned at each origin and scored against; None:
-    the lifecycle history is both); previous_tuning: last cycle's share_tuning.
+    the lifecycle history is both); previous_tuning: last cycle's share_tuning;
+    products: the master data (for a seasonal_group that is one of its
+    columns). One run per seasonality compared, each over the classes that
+    compare it; see the module docstring.
     """
     settings = BacktestSettings.of(settings)
+    classes = list(settings.models.choices)
+    variants = list(dict.fromkeys(v for c in classes for v in settings.candidates(c)))
+    parts: dict[str, list[pd.DataFrame]] = {"accuracy": [], "losses": [], "tuning": []}
+    origins: list[pd.Timestamp] = []
+    for variant in variants:  # a loop over the two or three seasonalities
+        mine = {c: variant for c in classes if variant in settings.candidates(c)}
+        first = [c for c in mine if settings.candidates(c)[0] == variant]
+        one = _run_one(history, children, settings, cycle_date, log, cleaned, previous_tuning, history_periods,
+                       products, mine)
+        parts["accuracy"].append(one.accuracy[one.accuracy["product_class"].isin(list(mine))].assign(seasonality=variant))
+        parts["losses"].append(one.losses[one.losses["product_class"].isin(list(mine))].assign(seasonality=variant))
+        parts["tuning"].append(one.tuning[one.tuning["product_class"].isin(first)])
+        origins = one.origins
+    out = {k: pd.concat(v, ignore_index=True) for k, v in parts.items() if v}
+    return BacktestResult(
+        accuracy=out["accuracy"][ACCURACY_COLUMNS], origins=origins, losses=out["losses"], tuning=out["tuning"]
+    )
+
+
+def _run_one(
+    history: pd.DataFrame,
+    children: pd.DataFrame,
+    settings: BacktestSettings,
+    cycle_date: pd.Timestamp,
+    log: Callable[[str], None] | None,
+    cleaned: pd.DataFrame | None,
+    previous_tuning: pd.DataFrame | None,
+    history_periods: int | None,
+    products: pd.DataFrame | None,
+    modes: dict[str, str],
+) -> BacktestResult:
+    """The tables of the classes of `modes` (class -> seasonality), each class run with its seasonality."""
     period = settings.share.period
     bt = settings.backtest
     h = bt.horizon
@@ -190,6 +230,7 @@ def run_backtest(
     origins = origin_ordinals(settings, cycle_ord, first_ord)
     share_settings, models = settings.share, settings.models
     sl = season_length(period)
+    seasonal = [n for n, m in models.choices.items() if m.seasonal]
 
     strategies = list(bt.strategies)
     book = ScoreBook(classes, len(origins), h)
@@ -201,7 +242,8 @@ def run_backtest(
     demand = np.full(n_children, "", dtype=object)
     cls = {"leaf": c_cls, "parent": p_cls}
     driver = "mint_shrink" if any(s in NEEDS_RESIDUALS for s in strategies) else "forecast_proportions"
-    drivers = {c: driver for c in classes}
+    drivers = {c: driver for c in modes}
+    coverage = CoverageBook(settings.levels, len(classes))
     # each origin: the base forecasts, then seasonal naive on every parent and child
     per_origin = series_to_fit(parent_class, child_class, drivers) + n_parents + n_children
     fits = SeriesProgress(len(origins) * per_origin, log)
@@ -216,17 +258,21 @@ def run_backtest(
         p_grid = series_grid(pcode, ords, seen, n_parents, o)
         c_grid = series_grid(ccode, ords, seen, n_children, o)
         demand = demand_classes(c_grid)[0]
-        base = base_forecasts(p_grid, c_grid, parent_class, child_class, drivers, models, h, log, fits.advance)
+        season = cycle_season_plan(p_grid, parents.assign(product_class=parent_class), products, modes,
+                                   settings.seasonal_groups, parent_of_child, period, o)
+        base = base_forecasts(p_grid, c_grid, parent_class, child_class, drivers, models, h, log, fits.advance,
+                              seasonality=modes, season=season, sd=bool(settings.levels))
         as_seen_qty = history["quantity"].to_numpy(float).copy()
         as_seen_qty[ok] = seen
         as_seen = history.assign(quantity=as_seen_qty)  # the share tables as the origin would have made them
         # scored against the raw actuals, and against the cycle's cleaned ones as the second column
-        leaf_actual = {RAW: _dense(ccode, ords, raw, n_children, o, h)}
-        leaf_actual[CLEANED] = _dense(ccode, ords, qty, n_children, o, h)
+        leaf_actual = {RAW: dense_window(ccode, ords, raw, n_children, o, h)}
+        leaf_actual[CLEANED] = dense_window(ccode, ords, qty, n_children, o, h)
         parent_actual = {b: parent_sums(a, parent_of_child, n_parents) for b, a in leaf_actual.items()}
         actual = {"leaf": leaf_actual, "parent": parent_actual}
         scales = {
-            "leaf": _scales(c_grid, child_class, settings, h), "parent": _scales(p_grid, parent_class, settings, h)
+            "leaf": error_scales(c_grid, child_class, seasonal, period, h),
+            "parent": error_scales(p_grid, parent_class, seasonal, period, h),
         }
         bench = {
             "parent": _seasonal_naive(p_grid, h, period, log, fits.advance),
@@ -268,10 +314,15 @@ def run_backtest(
             )
             for grain, f in (("parent", p), ("leaf", l)):
                 book.add(k, s, grain, f, actual[grain], cls[grain], scales[grain])
+            coverage.add(s, base, p, l, parent_of_child, actual["parent"][RAW], actual["leaf"][RAW], p_cls, c_cls)
     dates = [ordinal_to_start(np.array([o]), period)[0] for o in origins]
     names = [s for s in strategies] + [BENCHMARK]
+    covered = coverage.rows(classes, c_cls, p_cls, len(origins), h)
+    covered = covered.assign(value_cleaned=np.nan, selection_metric=covered["product_class"].map(metric_of))
     return BacktestResult(
-        accuracy=_table(book, names, metric, c_cls, p_cls, len(origins), h),
+        accuracy=pd.concat(
+            [accuracy_table(book, names, metric, c_cls, p_cls, len(origins), h), covered], ignore_index=True
+        ),
         origins=dates,
         losses=book.loss_table(dates),
         tuning=tuning,
@@ -288,27 +339,6 @@ def _candidate_grid(settings: BacktestSettings, periods: int, classes: list[str]
             settings.share.rules[name], window == AUTO, method == AUTO, tuning.windows, tuning.methods, periods
         )
     return out
-
-
-def _table(book: ScoreBook, names, metric: np.ndarray, c_cls, p_cls, n_origins: int, h: int) -> pd.DataFrame:
-    classes = book.classes
-    counts = {"leaf": np.bincount(c_cls, minlength=len(classes)), "parent": np.bincount(p_cls, minlength=len(classes))}
-    out = []
-    for grain in ("leaf", "parent"):
-        bench = {b: book.metrics(BENCHMARK, grain, b) for b in (RAW, CLEANED)}
-        for s in names:
-            values = {b: book.metrics(s, grain, b) for b in (RAW, CLEANED)}
-            for b in (RAW, CLEANED):
-                values[b]["fva"] = bench[b]["wmape"] - values[b]["wmape"]
-            for name_metric in ("wmape", "bias", "mase", "rmsse", "fva"):
-                for i, name in enumerate(classes):
-                    out.append((
-                        name, s, grain, name_metric, float(values[RAW][name_metric][i]), n_origins, h,
-                        int(counts[grain][i]), float(values[CLEANED][name_metric][i]), metric[i],
-                    ))
-    table = pd.DataFrame(out, columns=ACCURACY_COLUMNS)
-    keep = table["series"] > 0  # a class without series in the data has nothing to report
-    return table[keep].reset_index(drop=True)
 
 
 def run(
@@ -335,15 +365,16 @@ def run(
     children = children[["product", "site", "customer", "product_class"]]
     result = run_backtest(
         lifecycle_history, children, settings, cycle_date, log=log, cleaned=cleaned_history,
-        previous_tuning=previous_tuning, history_periods=int(cycle["history_periods"]),
+        previous_tuning=previous_tuning, history_periods=int(cycle["history_periods"]), products=products,
     )
     table, tuning = result.accuracy, result.tuning
     wide = table.pivot_table(
-        index=["product_class", "grain", "strategy"], columns="metric", values="value"
+        index=["product_class", "seasonality", "grain", "strategy"], columns="metric", values="value"
     ).reset_index()
     figures = {
         "origins": ", ".join(str(o.date()) for o in result.origins),
-        "accuracy_by_class": wide.sort_values(["product_class", "grain", "wmape"]) if len(wide) else wide,
+        "accuracy_by_class": wide.sort_values(["product_class", "seasonality", "grain", "wmape"])
+        if len(wide) else wide,
     }
     limit = settings.selection.share_tuning.max_gain
     fixed = tuning[tuning["configured"].astype(bool) & (tuning["gain"] > limit)]

@@ -31,6 +31,8 @@ from pipelines.results import CheckRows, Log, StageResult, quiet
 from pipelines.schemas import Products
 
 PRODUCT_COLUMNS = ("product", "product_class", "active_from", "active_to", "successor")
+# optional product columns: a grouping above the product (hierarchy.upper_levels, seasonal_group); blank when absent
+PRODUCT_OPTIONAL_COLUMNS = ("product_family",)
 SPAN_COLUMNS = ("product", "site", "customer", "active_from", "active_to", "reference_customer")
 # optional span columns for new customers: blank when the file lacks them
 SPAN_OPTIONAL_COLUMNS = ("scale", "initial_share")
@@ -61,7 +63,10 @@ def _load(
 
 
 def load_products(folder: Path, inputs: InputsConfig | None = None) -> tuple[pd.DataFrame, list[InputFile]]:
-    return _load(folder, "products", PRODUCT_COLUMNS, inputs=inputs, dates=("active_from", "active_to"))
+    return _load(
+        folder, "products", PRODUCT_COLUMNS, optional=PRODUCT_OPTIONAL_COLUMNS, inputs=inputs,
+        dates=("active_from", "active_to"),
+    )
 
 
 def load_customer_spans(folder: Path, inputs: InputsConfig | None = None) -> tuple[pd.DataFrame, list[InputFile]]:

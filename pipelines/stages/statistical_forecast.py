@@ -37,6 +37,12 @@ leaves, and keeps its `zero_reason`; `forecast` is `strategy_forecast`
 elsewhere. The leaves are never re-summed into the parent:
 `pipelines.stages.reconciliation` proves they sum to `strategy_forecast`.
 
+Each class's `seasonality` (`pipelines.engines.seasonal_base`; for `auto`
+the backtest's choice in `strategy_choice`), prediction intervals per level
+of `intervals.levels` (`pipelines.engines.forecast_intervals`) and the levels
+above the parent, `hierarchy.upper_levels` (`pipelines.engines.upper_levels`,
+table `upper_level_forecast`) are made by their engines.
+
 The models, demand classes and their conventions are in
 `pipelines.engines.models`. Negative base forecasts (possible from a trended
 ETS) are set to 0 before the strategy. `model_grain` says at which grains the
@@ -46,7 +52,7 @@ class's models ran (parent, leaf or both).
 from __future__ import annotations
 
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -54,6 +60,7 @@ import pandas as pd
 
 from pipelines.calendar import horizon_starts, period_ordinal
 from pipelines.checks import NO_NEGATIVE_FORECAST, NO_VOLUME_AFTER_PHASE_OUT, NO_VOLUME_OUTSIDE_ACTIVE_SPAN
+from pipelines.engines import seasonal_base as sb
 from pipelines.engines.base_forecasts import base_forecasts, series_to_fit
 from pipelines.engines.forecast_frames import (
     active_matrix,
@@ -63,9 +70,11 @@ from pipelines.engines.forecast_frames import (
     model_keys,
     parent_reasons,
 )
+from pipelines.engines.forecast_intervals import interval_frames
 from pipelines.engines.hierarchy import parent_sums
 from pipelines.engines.models import ModelSettings, series_grid
 from pipelines.engines.proofs import find_negative, find_volume_after_phase_out, find_volume_outside_active_span
+from pipelines.engines.upper_levels import upper_level_checks, upper_levels_run
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
 from pipelines.progress import SeriesProgress
@@ -73,42 +82,16 @@ from pipelines.results import CheckRows, Log, StageResult, quiet
 from pipelines.vocabulary import AUTO, Basis, ModelGrain, Strategy, ZeroReason, values
 
 PARENT_COLUMNS = [
-    "cycle_date",
-    "product_class",
-    "product",
-    "site",
-    "period_start",
-    "forecast",
-    "strategy_forecast",
-    "model",
-    "demand_class",
-    "model_grain",
-    "zero_reason",
+    "cycle_date", "product_class", "product", "site", "period_start", "forecast", "strategy_forecast", "model",
+    "demand_class", "model_grain", "zero_reason",
 ]
 LEAF_COLUMNS = LEAF + ["period_start", "cycle_date", "product_class", "forecast", "parent_forecast", "basis"]
 FITTED_COLUMNS = [
-    "cycle_date",
-    "grain",
-    "product_class",
-    "product",
-    "site",
-    "customer",
-    "period_start",
-    "actual",
-    "fitted",
+    "cycle_date", "grain", "product_class", "product", "site", "customer", "period_start", "actual", "fitted",
 ]
 MODEL_COLUMNS = [
-    "cycle_date",
-    "grain",
-    "product_class",
-    "product",
-    "site",
-    "customer",
-    "demand_class",
-    "adi",
-    "cv2",
-    "model",
-    "parameters",
+    "cycle_date", "grain", "product_class", "product", "site", "customer", "demand_class", "adi", "cv2",
+    "model", "parameters", "seasonality", "seasonal_strength", "group_seasonal_strength",
 ]
 
 
@@ -121,6 +104,7 @@ class ForecastResult:
     redistributed: pd.DataFrame | None = None  # parent periods whose negative reconciled leaves were moved
     models: pd.DataFrame | None = None  # one row per forecast series: grain, key, model, parameters
     fitted: pd.DataFrame | None = None  # in-sample one-step fitted values behind MinT / WLS residuals
+    upper: pd.DataFrame | None = None  # upper_level_forecast: the levels above the parent (hierarchy.upper_levels)
 
 
 @dataclass(frozen=True)
@@ -132,14 +116,24 @@ class ForecastSettings:
     strategies: Mapping[str, str]
     models: ModelSettings
     source: Path = Path("<memory>")
+    seasonality: Mapping[str, str] = field(default_factory=dict)  # class -> none | own | group | auto
+    seasonal_groups: Mapping[str, str] = field(default_factory=dict)  # class -> seasonal_group
+    levels: tuple[float, ...] = ()  # prediction interval levels (%)
+    upper_levels: tuple[str, ...] = ()  # aggregation levels above the parent, bottom to top
 
     @classmethod
     def of(cls, config) -> ForecastSettings:
         """From a planning config (every class it holds); a ForecastSettings is returned as it is."""
         if isinstance(config, ForecastSettings):
             return config
-        strategies = {name: pc.strategy for name, pc in config.product_classes.items()}
-        return cls(config.calendar.period, config.calendar.horizon, strategies, ModelSettings.of(config), config.source)
+        classes = config.product_classes
+        return cls(
+            config.calendar.period, config.calendar.horizon, {name: pc.strategy for name, pc in classes.items()},
+            ModelSettings.of(config), config.source,
+            {name: sb.configured_seasonality(pc) for name, pc in classes.items()},
+            {name: pc.seasonal_group for name, pc in classes.items()},
+            tuple(config.intervals.levels), tuple(config.hierarchy.upper_levels),
+        )
 
 
 def strategy_by_class(settings: ForecastSettings, chosen: dict[str, str] | None = None) -> dict[str, str]:
@@ -167,6 +161,8 @@ def forecast_cycle(
     cycle_date: pd.Timestamp,
     log: Callable[[str], None] | None = None,
     chosen: dict[str, str] | None = None,
+    products: pd.DataFrame | None = None,
+    chosen_seasonality: dict[str, str] | None = None,
 ) -> ForecastResult:
     """Parent and leaf forecasts for the horizon; see the module docstring.
 
@@ -193,10 +189,15 @@ def forecast_cycle(
     c_code = lookup(history, LEAF, children)
     okc = c_code >= 0
     c_grid = series_grid(c_code[okc], ords[okc], qty[okc], n_children, cycle_ord)
+    modes = sb.seasonality_in_effect(settings.seasonality, chosen_seasonality, settings.source)
+    season = sb.cycle_season_plan(
+        p_grid, parents, products, modes, settings.seasonal_groups, parent_of_child, period, cycle_ord
+    )
     parent_class, child_class = parents["product_class"].to_numpy(), children["product_class"].to_numpy()
     fits = SeriesProgress(series_to_fit(parent_class, child_class, strategies), log)
     base = base_forecasts(
-        p_grid, c_grid, parent_class, child_class, strategies, settings.models, horizon, log, progress=fits.advance
+        p_grid, c_grid, parent_class, child_class, strategies, settings.models, horizon, log, progress=fits.advance,
+        seasonality=modes, season=season, sd=bool(settings.levels),
     )
 
     # top-down basis: the reinitialized target (the period's share where the targets are all 0)
@@ -208,6 +209,10 @@ def forecast_cycle(
     basis = np.where(use_target, target_m, share_m)
 
     strategy_of_parent = parents["product_class"].map(strategies).to_numpy()
+    base, tree_sd, upper = upper_levels_run(  # MinT / WLS over the tree with the levels above the parent
+        settings.upper_levels, parents, products, parent_of_child, p_grid, c_grid, base, strategy_of_parent,
+        settings.models, horizon, bool(settings.levels), f"{settings.source}: hierarchy.upper_levels", log,
+    )
     # each strategy works on the children active in the period: an inactive child takes no volume
     active = active_matrix(children, starts, period)
     made = combine_strategies(strategy_of_parent, base, parent_of_child, basis, active)
@@ -247,6 +252,10 @@ def forecast_cycle(
     parent_out["model_grain"] = np.repeat(grain, horizon)
     parent_out["strategy"] = np.repeat(strategy_of_parent, horizon)
     parent_out["zero_reason"] = zero_reason.ravel()
+    p_bounds, l_bounds = interval_frames(
+        settings.levels, strategy_of_parent, parent_of_child, base, parent_fc, leaf_fc, zeroed,
+        zeroed[parent_of_child] | ~active, tree_sd,
+    )
 
     leaf_out = children[LEAF].loc[children.index.repeat(horizon)].reset_index(drop=True)
     leaf_out["period_start"] = np.tile(starts.values, n_children)
@@ -255,8 +264,13 @@ def forecast_cycle(
     leaf_out["forecast"] = leaf_fc.ravel()
     leaf_out["parent_forecast"] = parent_fc[parent_of_child].ravel()
     leaf_out["basis"] = basis.ravel()
+    parent_out = pd.concat([parent_out, p_bounds], axis=1)
+    leaf_out = pd.concat([leaf_out, l_bounds], axis=1)
 
-    models = model_keys(base.models, parents, children)
+    models = pd.concat(
+        [model_keys(base.models, parents, children),
+         sb.strength_columns(base.models, p_grid, c_grid, season, modes, parents, children, period, cycle_ord)], axis=1
+    )
     models.insert(0, "cycle_date", cycle_date)
     fitted = pd.concat(
         [fitted_frame(p_grid, base.parent_fitted, parents.assign(customer=""), "parent", period),
@@ -269,8 +283,9 @@ def forecast_cycle(
         volume_moved=moved[moved > 0]
     )
     return ForecastResult(
-        parent=parent_out[PARENT_COLUMNS + ["strategy"]],
-        leaf=leaf_out[LEAF_COLUMNS],
+        upper=upper.frame(cycle_date, starts, strategy_fc, parent_fc),
+        parent=parent_out[PARENT_COLUMNS + ["strategy"] + list(p_bounds.columns)],
+        leaf=leaf_out[LEAF_COLUMNS + list(l_bounds.columns)],
         negatives_clipped=base.negatives + made.negatives,
         reconciled_negatives=made.negatives,
         redistributed=redistributed.reset_index(drop=True),
@@ -294,8 +309,11 @@ def run(
     cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
     columns = ["product", "site", "customer", "product_class", "first_active_period", "last_active_period"]
     chosen = dict(zip(strategy_choice["product_class"], strategy_choice["strategy"], strict=False))
+    seasonality = strategy_choice.get("seasonality", pd.Series("", index=strategy_choice.index))
+    chosen_seasonality = dict(zip(strategy_choice["product_class"], seasonality, strict=False))
     result = forecast_cycle(
-        lifecycle_history, share_tables[columns], reinitialized_target, settings, cycle_date, log, chosen
+        lifecycle_history, share_tables[columns], reinitialized_target, settings, cycle_date, log, chosen,
+        products, chosen_seasonality,
     )
     parent, leaf, models, fitted = result.parent, result.leaf, result.models, result.fitted
     first = parent.drop_duplicates(["product", "site"])
@@ -313,6 +331,7 @@ def run(
             "statistical_forecast": leaf,
             "forecast_models": models,
             "forecast_fitted_values": fitted,
+            "upper_level_forecast": result.upper,
         },
         metadata={
             "parent_forecast": {
@@ -347,8 +366,15 @@ def run(
             "forecast_fitted_values": {
                 "series": int(fitted.drop_duplicates(["grain", "product", "site", "customer"]).shape[0])
             },
+            "upper_level_forecast": {
+                "levels": ", ".join(settings.upper_levels) or "none",
+                "nodes": int(result.upper[["level", "node"]].drop_duplicates().shape[0]),
+            },
         },
-        checks=forecast_checks(parent, leaf, customer_spans, products, settings.period),
+        checks={
+            **forecast_checks(parent, leaf, customer_spans, products, settings.period),
+            **upper_level_checks(result.upper, parent, products, settings.upper_levels),
+        },
     )
 
 
@@ -360,13 +386,8 @@ def forecast_checks(
     period: str,
 ) -> dict[str, CheckRows]:
     """The forecast's checks, judged from its two tables and the master data (`pipelines.engines.proofs`)."""
-    negatives = pd.concat(
-        [
-            find_negative(parent_forecast).assign(grain="parent"),
-            find_negative(statistical_forecast).assign(grain="leaf"),
-        ],
-        ignore_index=True,
-    )
+    negatives = [find_negative(parent_forecast).assign(grain="parent"), find_negative(statistical_forecast)]
+    negatives = pd.concat([negatives[0], negatives[1].assign(grain="leaf")], ignore_index=True)
     return {
         NO_VOLUME_AFTER_PHASE_OUT: CheckRows(find_volume_after_phase_out(statistical_forecast, customer_spans, period)),
         NO_VOLUME_OUTSIDE_ACTIVE_SPAN: CheckRows(

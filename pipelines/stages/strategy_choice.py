@@ -21,13 +21,14 @@ and seasonal naive's WMAPE. The forecast, the summary, the report and
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 
 from pipelines.checks import CHOSEN_STRATEGY_BEATS_SEASONAL_NAIVE
 from pipelines.engines.forecast_comparison import StabilityRule, dm_test, stable_choice
+from pipelines.engines.seasonal_base import choose_seasonality, configured_seasonality
 from pipelines.results import CheckRows, Log, StageResult, quiet
 from pipelines.vocabulary import AUTO, BENCHMARK
 
@@ -36,6 +37,9 @@ CHOICE_COLUMNS = [
     "beats_seasonal_naive", "metric", "score", "leaf_rmsse", "best", "previous_strategy", "decision", "reason",
     "p_value", "detail",
 ]
+# the seasonality each class follows (`seasonal_base.choose_seasonality`: the backtest's for `seasonality: auto`);
+# the strategy is chosen among the backtest rows of that seasonality
+SEASONALITY_COLUMN = "seasonality"
 
 
 @dataclass(frozen=True)
@@ -45,6 +49,7 @@ class StrategySettings:
     candidates: tuple[str, ...]
     configured: Mapping[str, str]
     rule: StabilityRule = StabilityRule()
+    seasonality: Mapping[str, str] = field(default_factory=dict)  # class -> configured seasonality (or auto)
 
     @classmethod
     def of(cls, config) -> StrategySettings:
@@ -54,7 +59,8 @@ class StrategySettings:
         configured = {name: pc.strategy for name, pc in config.product_classes.items()}
         stab = config.selection.stability
         rule = StabilityRule(stab.tolerance, stab.level, stab.switch_on)
-        return cls(tuple(config.backtest.strategies), configured, rule)
+        seasonality = {name: configured_seasonality(pc) for name, pc in config.product_classes.items()}
+        return cls(tuple(config.backtest.strategies), configured, rule, seasonality)
 
 
 def _p_value(losses: pd.DataFrame | None, name: str, incumbent: str, challenger: str, metric: str) -> float:
@@ -123,6 +129,14 @@ def choose_strategies(
     return pd.DataFrame(rows, columns=CHOICE_COLUMNS)
 
 
+def _losses_of(losses: pd.DataFrame | None, seasonality: dict[str, str]) -> pd.DataFrame | None:
+    """The backtest losses under each class's seasonality in effect (all of them without a seasonality column)."""
+    if losses is None or losses.empty or "seasonality" not in losses.columns:
+        return losses
+    wanted = losses["product_class"].map(seasonality)
+    return losses[wanted.isna() | (losses["seasonality"] == wanted)]
+
+
 def run(
     backtest_accuracy: pd.DataFrame,
     settings: StrategySettings,
@@ -132,7 +146,12 @@ def run(
     previous_cycle: str | None = None,
 ) -> StageResult:
     """The strategy_choice table and its WARN check (a chosen strategy that loses to seasonal naive)."""
-    choice = choose_strategies(backtest_accuracy, settings, backtest_losses, previous)
+    settings = StrategySettings.of(settings)
+    accuracy, seasonality = choose_seasonality(
+        backtest_accuracy, settings.seasonality, settings.configured, settings.candidates
+    )
+    choice = choose_strategies(accuracy, settings, _losses_of(backtest_losses, seasonality), previous)
+    choice[SEASONALITY_COLUMN] = choice["product_class"].map(seasonality).fillna("none")
     losing = choice[~choice["beats_seasonal_naive"].astype(bool)]
     return StageResult(
         outputs={"strategy_choice": choice},
