@@ -47,7 +47,8 @@ from pipelines.explain_sections import (
     qty,
     share_section,
 )
-from pipelines.vocabulary import FORECAST_BASIS_TEXT, LIFECYCLE_RULE_TEXT, SHARE_METHOD_TEXT, ZERO_REASON_TEXT, Basis
+from pipelines.vocabulary import Basis
+from pipelines.vocabulary_text import FORECAST_BASIS_TEXT, LIFECYCLE_RULE_TEXT, SHARE_METHOD_TEXT, ZERO_REASON_TEXT
 
 REQUIRED_TABLES = ("share_tables", "reinitialized_target", "parent_forecast", "statistical_forecast")
 OPTIONAL_TABLES = (

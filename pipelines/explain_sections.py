@@ -6,7 +6,8 @@ import numpy as np
 import pandas as pd
 
 from pipelines.calendar import shift_periods
-from pipelines.vocabulary import AUTO, LIFECYCLE_RULE_TEXT, SHARE_METHOD_TEXT, STRATEGY_TEXT
+from pipelines.vocabulary import AUTO
+from pipelines.vocabulary_text import LIFECYCLE_RULE_TEXT, SHARE_METHOD_TEXT, STRATEGY_TEXT
 
 
 def qty(x: float) -> str:

@@ -144,14 +144,14 @@ def test_auto_seasonality_is_the_backtests_lower_leaf_wmape_and_the_strategy_is_
             rows.append(("a", season, strategy, "leaf", "wmape", v, 3, 13, 10))
     acc = pd.DataFrame(rows, columns=["product_class", "seasonality", "strategy", "grain", "metric", "value",
                                       "origins", "horizon", "series"])
-    settings = StrategySettings(("top_down", "bottom_up"), {"a": "auto"}, {"a": "auto"})
+    settings = StrategySettings(("top_down", "bottom_up"), {"a": "auto"}, seasonality={"a": "auto"})
     out = choose(acc, settings).outputs["strategy_choice"].iloc[0]
     # the best pair is (group, top_down) at 0.27, though bottom_up wins under none
     assert (out["seasonality"], out["strategy"], out["leaf_wmape"]) == ("group", "top_down", 0.27)
-    fixed = StrategySettings(("top_down", "bottom_up"), {"a": "bottom_up"}, {"a": "auto"})
+    fixed = StrategySettings(("top_down", "bottom_up"), {"a": "bottom_up"}, seasonality={"a": "auto"})
     out = choose(acc, fixed).outputs["strategy_choice"].iloc[0]
     assert (out["seasonality"], out["strategy"]) == ("none", "bottom_up")  # 0.28 under none beats 0.29
-    configured = StrategySettings(("top_down", "bottom_up"), {"a": "auto"}, {"a": "none"})
+    configured = StrategySettings(("top_down", "bottom_up"), {"a": "auto"}, seasonality={"a": "none"})
     assert choose(acc, configured).outputs["strategy_choice"].iloc[0]["seasonality"] == "none"
 
 

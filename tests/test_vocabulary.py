@@ -3,6 +3,7 @@
 import pytest
 
 from pipelines import vocabulary as v
+from pipelines import vocabulary_text as vt
 from pipelines.config import parse_config
 from pipelines.errors import ConfigError
 from pipelines.schemas import LIFECYCLE_RULES, PERIOD_BASES, SHARE_METHODS, ZERO_REASONS
@@ -12,10 +13,10 @@ from pipelines.schemas_forecast import StatisticalForecast
 @pytest.mark.parametrize(
     ("texts", "enum"),
     [
-        (v.SHARE_METHOD_TEXT, v.ShareMethod),
-        (v.LIFECYCLE_RULE_TEXT, v.LifecycleRule),
-        (v.ZERO_REASON_TEXT, v.ZeroReason),
-        (v.STRATEGY_TEXT, v.Strategy),
+        (vt.SHARE_METHOD_TEXT, v.ShareMethod),
+        (vt.LIFECYCLE_RULE_TEXT, v.LifecycleRule),
+        (vt.ZERO_REASON_TEXT, v.ZeroReason),
+        (vt.STRATEGY_TEXT, v.Strategy),
     ],
 )
 def test_explain_has_words_for_every_member(texts, enum):
@@ -24,7 +25,7 @@ def test_explain_has_words_for_every_member(texts, enum):
 
 
 def test_explain_describes_every_forecast_basis():
-    assert set(v.FORECAST_BASIS_TEXT) == set(v.FORECAST_BASES)
+    assert set(vt.FORECAST_BASIS_TEXT) == set(v.FORECAST_BASES)
 
 
 def test_the_schemas_allow_exactly_the_vocabulary():
