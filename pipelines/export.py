@@ -28,7 +28,8 @@ import datetime as dt
 import hashlib
 import json
 import os
-from dataclasses import dataclass
+import re
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import pyarrow as pa
@@ -37,6 +38,7 @@ import pyarrow.parquet as pq
 
 from pipelines.errors import PlanningError
 from pipelines.store import open_store
+from pipelines.vocabulary import INTERVAL_COLUMN_PATTERN
 
 FORMATS = ("parquet", "csv")
 MANIFEST = "manifest.json"
@@ -53,6 +55,12 @@ class ExportTable:
     table: str
     columns: dict[str, pa.DataType]
     sort: tuple[str, ...]
+    extra: str | None = None  # further float columns the stored table may hold (a regex on their names), in its order
+
+    def with_extras(self, names: list[str]) -> ExportTable:
+        """This export with the stored table's extra columns (e.g. the interval bounds of config intervals.levels)."""
+        extras = [n for n in names if self.extra and re.fullmatch(self.extra, n) and n not in self.columns]
+        return replace(self, columns={**self.columns, **{n: pa.float64() for n in extras}})
 
     @property
     def schema(self) -> pa.Schema:
@@ -76,6 +84,7 @@ EXPORTS = (
             "basis": pa.string(),
         },
         ("product_class",) + KEYS,
+        INTERVAL_COLUMN_PATTERN,
     ),
     ExportTable(
         "plan_measures",
@@ -173,20 +182,25 @@ def _export_table(store, cycle: str, classes: list[str], spec: ExportTable, fold
     tmp = folder / f".{final.name}.tmp-{os.getpid()}"
     per_class = {}
     try:
-        writer = _writer(tmp, spec.schema, file_format)
+        writer = None
         try:
             for k in classes:
                 stored = store.read(spec.table, cycle=cycle, product_class=k, versions="published", as_arrow=True)
                 if stored is None:
                     raise ExportRefused(f"the store {store.root} has no table {spec.table}; rerun cycle {cycle}")
+                if writer is None:  # the columns are those of the first class's table (one config, one set)
+                    spec = spec.with_extras(stored.column_names)
+                    writer = _writer(tmp, spec.schema, file_format)
                 part = _conform(stored, spec, k, f"table {spec.table}, partition {cycle}|{k}")
                 if part.num_rows:
                     writer.write_table(part)
                 per_class[k] = part.num_rows
+            writer = writer or _writer(tmp, spec.schema, file_format)
             if file_format == "parquet" and not sum(per_class.values()):
                 writer.write_table(spec.schema.empty_table())
         finally:
-            writer.close()
+            if writer is not None:
+                writer.close()
         with open(tmp, "rb+") as fh:
             os.fsync(fh.fileno())
         os.replace(tmp, final)

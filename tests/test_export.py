@@ -33,8 +33,10 @@ CLASSES = ["consumables", "seasonal"]
 @pytest.fixture(scope="module")
 def tables() -> dict[str, dict[str, object]]:
     """class -> {table: frame} of the two classes, by the stages' own runs."""
-    # fixed window and method: the stages run here without the backtest that tunes an `auto` one
-    config = demo_config({"seasonal": {"strategy": "top_down", "window": 52, "method": "pooled"}})
+    # fixed window, method and seasonality: the stages run here without the backtest that decides an `auto` one
+    config = demo_config({
+        "seasonal": {"strategy": "top_down", "window": 52, "method": "pooled"}, "consumables": {"seasonality": "none"}
+    })
     out = {}
     for k in CLASSES:
         run = run_partition(config, CYCLE, k)
@@ -98,6 +100,8 @@ def test_export_writes_both_tables_and_a_manifest_that_matches_the_files(tmp_pat
             data = pq.read_table(path) if fmt == "parquet" else _read_csv(path, f["columns"])
             assert data.num_rows == f["rows"] == sum(f["rows_per_class"].values())
             assert data.column_names == [c["name"] for c in f["columns"]]
+            if f["table"] == "leaf_forecast":  # the interval bounds of the config's levels (80 and 95) go too
+                assert {"lower_80", "upper_80", "lower_95", "upper_95"} <= set(data.column_names)
             # rows per class as the stages made them
             source = {e.name: e.table for e in EXPORTS}[f["table"]]
             assert f["rows_per_class"] == {k: len(tables[k][source]) for k in CLASSES}
@@ -153,7 +157,10 @@ def test_the_exported_columns_follow_the_tables_and_are_documented_in_the_readme
     section = section[: section.index("\n## ", 4)]
     for spec in EXPORTS:
         # every column of the store table reaches the file (product_class added where the table lacks it)
-        stored = set(MODELS[spec.table].to_schema().columns) | {"product_class"}
+        model = MODELS[spec.table].to_schema().columns
+        stored = {n for n, c in model.items() if not c.regex} | {"product_class"}
         assert set(spec.columns) == stored, spec.name
+        # a regex column of the model (the interval bounds) is exported by the pattern that names it
+        assert {n for n, c in model.items() if c.regex} <= ({spec.extra} if spec.extra else set()), spec.name
         documented = re.findall(rf"^\| `{spec.name}` \| `(\w+)` \| (\w+) \|", section, flags=re.M)
         assert documented == [(n, TYPE_NAMES[t]) for n, t in spec.columns.items()], spec.name
