@@ -1,10 +1,7 @@
 """Assets `backtest_accuracy`, `backtest_losses`, `share_tuning`: rolling-origin accuracy of every strategy at both
 grains, their per-period losses, and every share window x method candidate's split accuracy with the choice."""
 
-from pathlib import Path
-
 from assets.factory import Partition, StageAsset, Table, stage_asset
-from pipelines.resources import previous_cycle, read_table
 from pipelines.stages import backtest_accuracy as stage
 
 BACKTEST_ACCURACY = "backtest_accuracy"
@@ -14,14 +11,7 @@ SHARE_TUNING = "share_tuning"
 
 def previous_tuning(part: Partition) -> dict:
     """The share_tuning of the class's latest completed cycle before this one (None for its first cycle)."""
-    store = Path(part.config.store.path)
-    before = previous_cycle(store, SHARE_TUNING, part.cycle, part.product_class)
-    previous = (
-        read_table(store, SHARE_TUNING, cycle=before, product_class=part.product_class, versions="complete")
-        if before
-        else None
-    )
-    return {"previous_tuning": previous}
+    return {"previous_tuning": part.previous(SHARE_TUNING)[0]}
 
 
 backtest_accuracy = stage_asset(StageAsset(

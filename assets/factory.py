@@ -21,7 +21,7 @@ from assets.common import markdown, rule_check, schema_check_spec, table_metadat
 from pipelines.checks import checks_of
 from pipelines.config import PlanningConfig
 from pipelines.partitions import cycle_class_partitions, narrow_config, split_key
-from pipelines.resources import report_folder
+from pipelines.resources import previous_cycle, read_table, report_folder
 from pipelines.results import StageResult
 from pipelines.tables import MODELS
 
@@ -40,6 +40,15 @@ class Partition:
         full = context.resources.planning.config
         cycle, product_class = split_key(context.partition_key)
         return cls(narrow_config(full, cycle, product_class), full, cycle, product_class)
+
+    def previous(self, table: str):
+        """`table` of the class as it last completed in its latest cycle before this one (its blocking checks
+        passed, published or not yet), and that cycle; (None, None) for the class's first cycle."""
+        store = Path(self.config.store.path)
+        before = previous_cycle(store, table, self.cycle, self.product_class)
+        if not before:
+            return None, None
+        return read_table(store, table, cycle=before, product_class=self.product_class, versions="complete"), before
 
 
 @dataclass(frozen=True)

@@ -1,9 +1,6 @@
 """Asset `share_drift`: each child's share against the previous stored cycle's of its class."""
 
-from pathlib import Path
-
 from assets.factory import Partition, StageAsset, Table, stage_asset
-from pipelines.resources import previous_cycle, read_table
 from pipelines.stages import share_drift as stage
 
 SHARE_DRIFT = "share_drift"
@@ -11,14 +8,7 @@ SHARE_DRIFT = "share_drift"
 
 def previous_share_table(part: Partition) -> dict:
     """The share table of the class's latest completed cycle before this one (None for its first cycle)."""
-    store = Path(part.config.store.path)
-    before = previous_cycle(store, "share_tables", part.cycle, part.product_class)
-    # the class as it last completed in that cycle (its blocking checks passed), published or not yet
-    previous = (
-        read_table(store, "share_tables", cycle=before, product_class=part.product_class, versions="complete")
-        if before
-        else None
-    )
+    previous, before = part.previous("share_tables")
     return {"previous": previous, "previous_cycle": before}
 
 

@@ -1,9 +1,6 @@
 """Asset `strategy_choice`: the strategy each class follows this cycle, with the decision and reason behind it."""
 
-from pathlib import Path
-
 from assets.factory import Partition, StageAsset, Table, stage_asset
-from pipelines.resources import previous_cycle, read_table
 from pipelines.stages import strategy_choice as stage
 
 STRATEGY_CHOICE = "strategy_choice"
@@ -11,13 +8,7 @@ STRATEGY_CHOICE = "strategy_choice"
 
 def previous_choice(part: Partition) -> dict:
     """The strategy_choice of the class's latest completed cycle before this one (None for its first cycle)."""
-    store = Path(part.config.store.path)
-    before = previous_cycle(store, STRATEGY_CHOICE, part.cycle, part.product_class)
-    previous = (
-        read_table(store, STRATEGY_CHOICE, cycle=before, product_class=part.product_class, versions="complete")
-        if before
-        else None
-    )
+    previous, before = part.previous(STRATEGY_CHOICE)
     return {"previous": previous, "previous_cycle": before}
 
 
