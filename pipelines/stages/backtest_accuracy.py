@@ -42,8 +42,19 @@ Seasonality: every class is backtested with each seasonality it may follow
 `seasonality: auto` none - own where `models.seasonal` is true - and
 `group`, the group seasonal indices estimated at each origin from the history
 before it); the accuracy and loss tables have a row per seasonality. Seasonal
-naive does not depend on it and is repeated under each. The share tuning is
-that of the class's first seasonality (its configured one, or `none`).
+naive does not depend on it and is repeated under each. What does not depend
+on the seasonality is made once per origin and shared by every seasonality
+(`pipelines.engines.backtest_origins`: the history the origin saw, the
+actuals, scales, seasonal naive and the period shares of every share
+candidate); the share candidates are scored once, on the parent forecasts of
+the class's first seasonality (its configured one, or `none`), and the
+window and method chosen split the top-down forecasts of every seasonality.
+
+Fixed strategy: a class with a configured strategy (not `auto`) is scored
+with that strategy alone (and seasonal naive); the others could never be
+chosen, so the models of a grain only they need are not run (a `top_down`
+class fits no leaf models). Its share tuning, interval coverage and
+seasonality choice are made as for an `auto` class.
 
 Intervals: with `intervals.levels`, each strategy's intervals at each origin
 (`pipelines.engines.forecast_intervals`, as the cycle makes them) are scored
@@ -59,25 +70,23 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import ordinal_to_start, period_ordinal, season_length
+from pipelines.calendar import ordinal_to_start
 from pipelines.checks import SHARE_CHOICE_NEAR_BEST
 from pipelines.config_sections import BacktestConfig
 from pipelines.config_selection import SelectionConfig
-from pipelines.engines.backtest_scores import CLEANED, RAW, ScoreBook, accuracy_table, dense_window, error_scales
+from pipelines.engines.backtest_origins import backtest_series, candidate_bases, origin_view
+from pipelines.engines.backtest_scores import RAW, ScoreBook, accuracy_table
 from pipelines.engines.base_forecasts import base_forecasts, series_to_fit
 from pipelines.engines.children import active_children
 from pipelines.engines.forecast_comparison import StabilityRule
 from pipelines.engines.forecast_intervals import CoverageBook
-from pipelines.engines.hierarchy import NEEDS_RESIDUALS, coherent_forecasts, parent_sums
-from pipelines.engines.models import ModelSettings, demand_classes, run_model_groups, series_grid
-from pipelines.engines.origin_cleaning import ClassCleaning, clean_before, raw_quantities
-from pipelines.engines.period_shares import period_shares
+from pipelines.engines.hierarchy import NEEDS_PARENT, NEEDS_RESIDUALS, coherent_forecasts
+from pipelines.engines.models import ModelSettings
+from pipelines.engines.origin_cleaning import ClassCleaning
 from pipelines.engines.scaled_errors import MetricRule, class_metric
 from pipelines.engines.seasonal_base import cycle_season_plan, seasonality_candidates
 from pipelines.engines.share_settings import ShareSettings
-from pipelines.engines.share_tuning import candidate_name, candidate_settings, class_candidates, decide
-from pipelines.engines.shares import compute_shares
-from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
+from pipelines.engines.share_tuning import class_candidates, decide
 from pipelines.progress import SeriesProgress
 from pipelines.results import CheckRows, Log, StageResult, quiet
 from pipelines.vocabulary import AUTO, BENCHMARK, Seasonality
@@ -101,6 +110,7 @@ class BacktestSettings:
     seasonality: Mapping[str, tuple[str, ...]] = field(default_factory=dict)  # class -> seasonalities compared
     seasonal_groups: Mapping[str, str] = field(default_factory=dict)
     levels: tuple[float, ...] = ()
+    strategy: Mapping[str, str] = field(default_factory=dict)  # class -> configured strategy (absent: auto)
 
     @classmethod
     def of(cls, config) -> BacktestSettings:
@@ -113,13 +123,49 @@ class BacktestSettings:
             {n: (pc.window, pc.method) for n, pc in classes},
             {n: ClassCleaning(pc.outlier_rule(config.cleansing), pc.models.seasonal) for n, pc in classes},
             {n: seasonality_candidates(pc) for n, pc in classes}, {n: pc.seasonal_group for n, pc in classes},
-            tuple(config.intervals.levels),
+            tuple(config.intervals.levels), {n: pc.strategy for n, pc in classes},
         )
 
     def candidates(self, name: str) -> tuple[str, ...]:
         """The seasonalities compared for a class (its models' own setting where none is configured)."""
         own = Seasonality.OWN if self.models.choices[name].seasonal else Seasonality.NONE
         return tuple(self.seasonality.get(name, (own,)))
+
+    def strategies_of(self, name: str) -> tuple[str, ...]:
+        """The strategies a class is scored with: all of `backtest.strategies` for `strategy: auto`, else the one
+        it is fixed to (the others could never be chosen, so their models are not run)."""
+        fixed = self.strategy.get(name, AUTO)
+        return tuple(self.backtest.strategies) if fixed == AUTO else (fixed,)
+
+    def strategies_run(self, classes: list[str]) -> list[str]:
+        """The strategies any of `classes` is scored with, in `backtest.strategies` order."""
+        wanted = {s for c in classes for s in self.strategies_of(c)}
+        listed = list(self.backtest.strategies)
+        return [s for s in listed if s in wanted] + sorted(wanted - set(listed))
+
+    def driver(self, name: str) -> str:
+        """The strategy whose grains `base_forecasts` runs for a class: the grains and residuals its scored
+        strategies need, and the parents the share tuning splits (a bottom-up class runs both grains)."""
+        scored = self.strategies_of(name)
+        if any(s in NEEDS_RESIDUALS for s in scored):
+            return next(s for s in scored if s in NEEDS_RESIDUALS)
+        if len(scored) == 1 and scored[0] in NEEDS_PARENT:
+            return scored[0]
+        return "forecast_proportions"
+
+    def scored(self, table: pd.DataFrame, classes: list[str]) -> pd.DataFrame:
+        """The rows of `classes` for the strategies each is scored with, and seasonal naive."""
+        pairs = [(c, s) for c in classes for s in (*self.strategies_of(c), BENCHMARK)]
+        keep = pd.MultiIndex.from_frame(table[["product_class", "strategy"]]).isin(pairs)
+        return table[keep].reset_index(drop=True)
+
+    def seasonal_classes(self) -> list[str]:
+        """The classes whose models are seasonal (their errors are scaled by seasonal differences)."""
+        return [n for n, m in self.models.choices.items() if m.seasonal]
+
+    def stability(self) -> StabilityRule:
+        stab = self.selection.stability
+        return StabilityRule(stab.tolerance, stab.level, stab.switch_on)
 
 
 @dataclass(frozen=True)
@@ -136,14 +182,6 @@ def origin_ordinals(settings: BacktestSettings, cycle_ord: int, first_ord: int) 
     last = cycle_ord - bt.horizon
     wanted = [last - i * bt.step for i in reversed(range(bt.origins))]
     return [o for o in wanted if o > first_ord]
-
-
-def _seasonal_naive(grid, horizon: int, period: str, log, progress=None) -> np.ndarray:
-    sl = season_length(period)
-    length = np.bincount(grid.series, minlength=grid.n_series)
-    names = np.where(length > 0, "seasonal_naive", "zero").astype(object)
-    season = np.where(length >= sl, sl, 1)
-    return np.clip(run_model_groups(grid, names, season, horizon, log=log, progress=progress).forecast, 0, None)
 
 
 def run_backtest(
@@ -164,169 +202,107 @@ def run_backtest(
     (its raw quantities are re-cleaned at each origin and scored against; None:
     the lifecycle history is both); previous_tuning: last cycle's share_tuning;
     products: the master data (for a seasonal_group that is one of its
-    columns). One run per seasonality compared, each over the classes that
-    compare it; see the module docstring.
+    columns). Each origin's view and share candidates are made once
+    (`pipelines.engines.backtest_origins`), then each seasonality compared
+    runs its base forecasts on them; see the module docstring.
     """
     settings = BacktestSettings.of(settings)
+    period, h = settings.share.period, settings.backtest.horizon
     classes = list(settings.models.choices)
     variants = list(dict.fromkeys(v for c in classes for v in settings.candidates(c)))
-    parts: dict[str, list[pd.DataFrame]] = {"accuracy": [], "losses": [], "tuning": []}
-    origins: list[pd.Timestamp] = []
-    for variant in variants:  # a loop over the two or three seasonalities
-        mine = {c: variant for c in classes if variant in settings.candidates(c)}
-        first = [c for c in mine if settings.candidates(c)[0] == variant]
-        one = _run_one(history, children, settings, cycle_date, log, cleaned, previous_tuning, history_periods,
-                       products, mine)
-        parts["accuracy"].append(one.accuracy[one.accuracy["product_class"].isin(list(mine))].assign(seasonality=variant))
-        parts["losses"].append(one.losses[one.losses["product_class"].isin(list(mine))].assign(seasonality=variant))
-        parts["tuning"].append(one.tuning[one.tuning["product_class"].isin(first)])
-        origins = one.origins
-    out = {k: pd.concat(v, ignore_index=True) for k, v in parts.items() if v}
-    return BacktestResult(
-        accuracy=out["accuracy"][ACCURACY_COLUMNS], origins=origins, losses=out["losses"], tuning=out["tuning"]
-    )
-
-
-def _run_one(
-    history: pd.DataFrame,
-    children: pd.DataFrame,
-    settings: BacktestSettings,
-    cycle_date: pd.Timestamp,
-    log: Callable[[str], None] | None,
-    cleaned: pd.DataFrame | None,
-    previous_tuning: pd.DataFrame | None,
-    history_periods: int | None,
-    products: pd.DataFrame | None,
-    modes: dict[str, str],
-) -> BacktestResult:
-    """The tables of the classes of `modes` (class -> seasonality), each class run with its seasonality."""
-    period = settings.share.period
-    bt = settings.backtest
-    h = bt.horizon
-    cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
-    children = children.reset_index(drop=True)
-    parent_of_child, parents = factorize(children, PARENT)
-    child_class = children["product_class"].to_numpy()
-    parent_class = child_class[first_rows(parent_of_child)]
-    n_parents, n_children = len(parents), len(children)
-    classes = list(settings.models.choices)
-    class_code = {name: i for i, name in enumerate(classes)}
-    p_cls = np.array([class_code[c] for c in parent_class], dtype=np.int64) if n_parents else np.zeros(0, np.int64)
-    c_cls = p_cls[parent_of_child]
-
-    real = (history["origin"] != "reference").to_numpy()
-    c_code = lookup(history, LEAF, children)
-    ok = real & (c_code >= 0)
-    ccode = c_code[ok]
-    pcode = parent_of_child[ccode]
-    ords = period_ordinal(history["period_start"], period)[ok]
-    qty = history["quantity"].to_numpy(float)[ok]
-    raw = qty
-    if cleaned is not None:
-        found = raw_quantities(history, cleaned)[ok]
-        raw = np.where(np.isfinite(found), found, qty)
-    shortage = history["shortage"].to_numpy(bool)[ok] if "shortage" in history else np.zeros(len(qty), dtype=bool)
-    first_ord = int(ords.min()) if len(ords) else cycle_ord
-    origins = origin_ordinals(settings, cycle_ord, first_ord)
-    share_settings, models = settings.share, settings.models
-    sl = season_length(period)
-    seasonal = [n for n, m in models.choices.items() if m.seasonal]
-
-    strategies = list(bt.strategies)
-    book = ScoreBook(classes, len(origins), h)
-    tune = ScoreBook(classes, len(origins), h)
-    periods = history_periods if history_periods is not None else cycle_ord - first_ord
-    grid = _candidate_grid(settings, periods, classes)
+    modes = {v: {c: v for c in classes if v in settings.candidates(c)} for v in variants}
+    first = {c: settings.candidates(c)[0] for c in classes}  # the seasonality whose parents tune the shares
+    data = backtest_series(history, children, classes, period, cycle_date, cleaned)
+    origins = origin_ordinals(settings, data.cycle_ord, data.first_ord)
+    grid = _candidate_grid(settings, history_periods if history_periods is not None else
+                           data.cycle_ord - data.first_ord, classes)
     union = list(dict.fromkeys((w, m) for cands in grid.values() for w, m, _ in cands))
-    kept = []
-    demand = np.full(n_children, "", dtype=object)
-    cls = {"leaf": c_cls, "parent": p_cls}
-    driver = "mint_shrink" if any(s in NEEDS_RESIDUALS for s in strategies) else "forecast_proportions"
-    drivers = {c: driver for c in modes}
-    coverage = CoverageBook(settings.levels, len(classes))
-    # each origin: the base forecasts, then seasonal naive on every parent and child
-    per_origin = series_to_fit(parent_class, child_class, drivers) + n_parents + n_children
-    fits = SeriesProgress(len(origins) * per_origin, log)
-    for k, o in enumerate(origins):
-        origin_date = ordinal_to_start(np.array([o]), period)[0]
-        if log:
-            log(f"backtest origin {origin_date.date()}")
-        # the history the origin saw: the raw history before it, cleaned from it alone
-        seen = qty if cleaned is None else clean_before(
-            ccode, ords, raw, shortage, child_class, settings.cleaning, o, sl
-        )
-        p_grid = series_grid(pcode, ords, seen, n_parents, o)
-        c_grid = series_grid(ccode, ords, seen, n_children, o)
-        demand = demand_classes(c_grid)[0]
-        season = cycle_season_plan(p_grid, parents.assign(product_class=parent_class), products, modes,
-                                   settings.seasonal_groups, parent_of_child, period, o)
-        base = base_forecasts(p_grid, c_grid, parent_class, child_class, drivers, models, h, log, fits.advance,
-                              seasonality=modes, season=season, sd=bool(settings.levels))
-        as_seen_qty = history["quantity"].to_numpy(float).copy()
-        as_seen_qty[ok] = seen
-        as_seen = history.assign(quantity=as_seen_qty)  # the share tables as the origin would have made them
-        # scored against the raw actuals, and against the cycle's cleaned ones as the second column
-        leaf_actual = {RAW: dense_window(ccode, ords, raw, n_children, o, h)}
-        leaf_actual[CLEANED] = dense_window(ccode, ords, qty, n_children, o, h)
-        parent_actual = {b: parent_sums(a, parent_of_child, n_parents) for b, a in leaf_actual.items()}
-        actual = {"leaf": leaf_actual, "parent": parent_actual}
-        scales = {
-            "leaf": error_scales(c_grid, child_class, seasonal, period, h),
-            "parent": error_scales(p_grid, parent_class, seasonal, period, h),
-        }
-        bench = {
-            "parent": _seasonal_naive(p_grid, h, period, log, fits.advance),
-            "leaf": _seasonal_naive(c_grid, h, period, log, fits.advance),
-        }
-        for grain, f in bench.items():
-            book.add(k, BENCHMARK, grain, f, actual[grain], cls[grain], scales[grain])
-        bases: dict[str, np.ndarray] = {}
-        share_lookup = None
-        for w, m in union:
-            candidate = candidate_settings(share_settings, w, m)
-            shares = compute_shares(as_seen, children, candidate, origin_date)
-            share_lookup = lookup(children, LEAF, shares) if share_lookup is None else share_lookup
-            # the period shares the cycle would split by (per-period methods differ from the base share)
-            bases[candidate_name(w, m)] = period_shares(shares, candidate, origin_date, None, as_seen, horizon=h)[0][
-                share_lookup
-            ]
-            _, leaf, _, _ = coherent_forecasts("top_down", base.parent_fc, base.leaf_fc, parent_of_child,
-                                               bases[candidate_name(w, m)])
-            tune.add(k, candidate_name(w, m), "leaf", leaf, actual["leaf"], c_cls, scales["leaf"])
-        kept.append((base, bases, actual, scales))
-    metric = class_metric(c_cls, demand, len(classes), MetricRule(**settings.selection.metric.model_dump())).metric
-    metric_of = dict(zip(classes, metric, strict=True))
-    previous = {} if previous_tuning is None or previous_tuning.empty else (
-        previous_tuning[previous_tuning["chosen"].astype(bool)].set_index("product_class")["candidate"].to_dict()
+    drivers = {v: {c: settings.driver(c) for c in mine} for v, mine in modes.items()}
+    books = {v: ScoreBook(classes, len(origins), h) for v in variants}
+    coverage = {v: CoverageBook(settings.levels, len(classes)) for v in variants}
+    tune = ScoreBook(classes, len(origins), h)
+    per_origin = data.n_parents + data.n_children + sum(
+        series_to_fit(data.parent_class, data.child_class, d) for d in drivers.values()
     )
-    stab = settings.selection.stability
-    rule = StabilityRule(stab.tolerance, stab.level, stab.switch_on)
-    tuning = decide(tune, grid, settings.configured, metric_of, previous, rule)
+    fits = SeriesProgress(len(origins) * per_origin, log)
+    kept, demand = [], np.full(data.n_children, "", dtype=object)
+    for k, o in enumerate(origins):
+        if log:
+            log(f"backtest origin {ordinal_to_start(np.array([o]), period)[0].date()}")
+        view = origin_view(data, history, o, h, period, settings.cleaning, settings.seasonal_classes(),
+                           cleaned is not None, log, fits.advance)
+        demand = view.demand
+        for v in variants:
+            for grain in ("parent", "leaf"):
+                books[v].add(k, BENCHMARK, grain, view.bench[grain], view.actual[grain], data_cls(data, grain),
+                             view.scales[grain])
+        base = {v: _base(data, view, settings, products, modes[v], drivers[v], o, log, fits.advance)
+                for v in variants}
+        bases = candidate_bases(view, data.children, settings.share, union, h)
+        tuned = np.zeros_like(base[variants[0]].parent_fc)  # each class's parents under its first seasonality
+        for v in variants:
+            rows = np.isin(data.parent_class, [c for c in classes if first[c] == v])
+            tuned[rows] = base[v].parent_fc[rows]
+        for name, basis in bases.items():
+            _, leaf, _, _ = coherent_forecasts("top_down", tuned, base[variants[0]].leaf_fc, data.parent_of_child,
+                                               basis)
+            tune.add(k, name, "leaf", leaf, view.actual["leaf"], data.c_cls, view.scales["leaf"])
+        kept.append((base, bases, view.actual, view.scales))
+    metric = class_metric(data.c_cls, demand, len(classes), MetricRule(**settings.selection.metric.model_dump())).metric
+    metric_of = dict(zip(classes, metric, strict=True))
+    tuning = decide(tune, grid, settings.configured, metric_of, _previous(previous_tuning), settings.stability())
     chosen = tuning[tuning["chosen"]].set_index("product_class")["candidate"].to_dict()
     for k, (base, bases, actual, scales) in enumerate(kept):
-        basis = np.zeros((n_children, h))
+        basis = np.zeros((data.n_children, h))
         for name, cand in chosen.items():  # each class split by its chosen window and method
-            rows = child_class == name
+            rows = data.child_class == name
             basis[rows] = bases[cand][rows]
-        for s in strategies:
-            p, l, _, _ = coherent_forecasts(
-                s, base.parent_fc, base.leaf_fc, parent_of_child, basis, base.parent_res, base.leaf_res
-            )
-            for grain, f in (("parent", p), ("leaf", l)):
-                book.add(k, s, grain, f, actual[grain], cls[grain], scales[grain])
-            coverage.add(s, base, p, l, parent_of_child, actual["parent"][RAW], actual["leaf"][RAW], p_cls, c_cls)
+        for v in variants:
+            for s in settings.strategies_run(list(modes[v])):
+                b = base[v]
+                p, leaf, _, _ = coherent_forecasts(
+                    s, b.parent_fc, b.leaf_fc, data.parent_of_child, basis, b.parent_res, b.leaf_res
+                )
+                for grain, f in (("parent", p), ("leaf", leaf)):
+                    books[v].add(k, s, grain, f, actual[grain], data_cls(data, grain), scales[grain])
+                coverage[v].add(s, b, p, leaf, data.parent_of_child, actual["parent"][RAW], actual["leaf"][RAW],
+                                data.p_cls, data.c_cls)
     dates = [ordinal_to_start(np.array([o]), period)[0] for o in origins]
-    names = [s for s in strategies] + [BENCHMARK]
-    covered = coverage.rows(classes, c_cls, p_cls, len(origins), h)
-    covered = covered.assign(value_cleaned=np.nan, selection_metric=covered["product_class"].map(metric_of))
-    return BacktestResult(
-        accuracy=pd.concat(
-            [accuracy_table(book, names, metric, c_cls, p_cls, len(origins), h), covered], ignore_index=True
-        ),
-        origins=dates,
-        losses=book.loss_table(dates),
-        tuning=tuning,
-    )
+    parts: dict[str, list[pd.DataFrame]] = {"accuracy": [], "losses": []}
+    for v in variants:
+        mine = list(modes[v])
+        names = settings.strategies_run(mine) + [BENCHMARK]
+        covered = coverage[v].rows(classes, data.c_cls, data.p_cls, len(origins), h)
+        covered = covered.assign(value_cleaned=np.nan, selection_metric=covered["product_class"].map(metric_of))
+        table = pd.concat([accuracy_table(books[v], names, metric, data.c_cls, data.p_cls, len(origins), h), covered],
+                          ignore_index=True)
+        parts["accuracy"].append(settings.scored(table, mine).assign(seasonality=v))
+        parts["losses"].append(settings.scored(books[v].loss_table(dates), mine).assign(seasonality=v))
+    out = {name: pd.concat(frames, ignore_index=True) for name, frames in parts.items()}
+    return BacktestResult(accuracy=out["accuracy"][ACCURACY_COLUMNS], origins=dates, losses=out["losses"],
+                          tuning=tuning)
+
+
+def data_cls(data, grain: str) -> np.ndarray:
+    """The class code of each series of `grain`."""
+    return data.c_cls if grain == "leaf" else data.p_cls
+
+
+def _base(data, view, settings: BacktestSettings, products, modes: dict, drivers: dict, o: int, log, progress):
+    """The base forecasts of one origin for the classes of `modes` (class -> seasonality) at their drivers' grains."""
+    parents = data.parents.assign(product_class=data.parent_class)
+    season = cycle_season_plan(view.p_grid, parents, products, modes, settings.seasonal_groups, data.parent_of_child,
+                               settings.share.period, o)
+    return base_forecasts(view.p_grid, view.c_grid, data.parent_class, data.child_class, drivers, settings.models,
+                          settings.backtest.horizon, log, progress, seasonality=modes, season=season,
+                          sd=bool(settings.levels))
+
+
+def _previous(previous_tuning: pd.DataFrame | None) -> dict:
+    """Last cycle's chosen share candidate per class."""
+    if previous_tuning is None or previous_tuning.empty:
+        return {}
+    return previous_tuning[previous_tuning["chosen"].astype(bool)].set_index("product_class")["candidate"].to_dict()
 
 
 def _candidate_grid(settings: BacktestSettings, periods: int, classes: list[str]) -> dict:

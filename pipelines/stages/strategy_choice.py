@@ -14,7 +14,8 @@ per-period losses of `backtest_losses` (`selection.stability`;
 between cycles on noise. A class with a fixed strategy keeps it. Either way
 the table gives the decision and its reason, the leaf-grain WMAPE and RMSSE,
 the runner-up and the margin (the runner-up's score minus the chosen one's)
-and seasonal naive's WMAPE. The forecast, the summary, the report and
+and seasonal naive's WMAPE. The backtest scores a fixed class with its own
+strategy alone, so its runner-up is blank and its margin NaN. The forecast, the summary, the report and
 `explain` read this table; none of them decides again from the current config.
 """
 
@@ -101,8 +102,10 @@ def choose_strategies(
             continue
         metric = str(mine["selection_metric"].iloc[0]) if "selection_metric" in mine else "wmape"
         value = {m: g.set_index("strategy")["value"] for m, g in mine.groupby("metric")}
+        # a fixed class was backtested with its own strategy alone: the others are not ranked
+        backtested = [s for s in candidates if s in value[metric].index] or candidates
         scores = value[metric].reindex(candidates)
-        ranked = sorted(candidates, key=lambda s: (np.inf if np.isnan(scores[s]) else scores[s], candidates.index(s)))
+        ranked = sorted(backtested, key=lambda s: (np.inf if np.isnan(scores[s]) else scores[s], candidates.index(s)))
         best = ranked[0]
         inc = str(before.get(name, ""))
         if configured == AUTO:
@@ -114,7 +117,8 @@ def choose_strategies(
             chosen, decision, reason, detail = d["chosen"], d["decision"], d["reason"], d["detail"]
         else:
             chosen, decision, reason, p = configured, "fixed", "configured", np.nan
-            detail = f"configured {configured}; best by {metric} {best} ({scores[best]:.4g})"
+            detail = f"configured {configured}; best by {metric} {best} ({scores[best]:.4g})" if len(backtested) > 1 \
+                else f"configured {configured}; the other strategies are not backtested for a fixed class"
         score = float(scores.get(chosen, np.nan))
         others = [s for s in ranked if s != chosen]
         runner = others[0] if others else ""
