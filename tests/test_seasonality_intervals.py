@@ -155,6 +155,45 @@ def test_auto_seasonality_is_the_backtests_lower_leaf_wmape_and_the_strategy_is_
     assert choose(acc, configured).outputs["strategy_choice"].iloc[0]["seasonality"] == "none"
 
 
+def test_auto_seasonality_of_an_intermittent_class_is_judged_by_its_selection_metric_rmsse():
+    """WMAPE rewards forecasting zero on intermittent demand, RMSSE does not (M5: Makridakis, Spiliotis &
+    Assimakopoulos 2022, section 3.1); the seasonality must be chosen by the class's metric, as the strategy is.
+
+    Worked by hand, one leaf, actuals [0, 0, 4, 0], in-sample mean squared naive difference q2 = 4:
+    none  forecasts [0, 0, 0, 0]: WMAPE = 4 / 4 = 1.0, RMSSE = sqrt(mean([0, 0, 16, 0]) / 4) = 1.0
+    group forecasts [1, 1, 1, 1]: WMAPE = 6 / 4 = 1.5, RMSSE = sqrt(mean([1, 1, 9, 1]) / 4) = sqrt(0.75)
+    so WMAPE picks none and RMSSE picks group.
+    """
+    from pipelines.engines.scaled_errors import rmsse
+    from pipelines.engines.seasonal_base import choose_seasonality
+    from pipelines.stages.strategy_choice import StrategySettings
+    from pipelines.stages.strategy_choice import run as choose
+
+    actual = np.array([[0.0, 0.0, 4.0, 0.0]])
+    forecasts = {"none": np.zeros((1, 4)), "group": np.ones((1, 4))}
+    rows = []
+    for season, fc in forecasts.items():
+        wmape = float(np.abs(fc - actual).sum() / actual.sum())
+        score = float(rmsse(actual, fc, np.array([4.0]))[0])
+        for metric, v in (("wmape", wmape), ("rmsse", score)):
+            rows.append(("a", season, "top_down", "leaf", metric, v, 1, 4, 1, "rmsse"))
+            rows.append(("a", season, "seasonal_naive", "leaf", metric, v + 1.0, 1, 4, 1, "rmsse"))
+    acc = pd.DataFrame(rows, columns=["product_class", "seasonality", "strategy", "grain", "metric", "value",
+                                      "origins", "horizon", "series", "selection_metric"])
+    by = acc[acc["strategy"] == "top_down"].set_index(["seasonality", "metric"])["value"]
+    assert (by["none", "wmape"], by["group", "wmape"]) == (1.0, 1.5)
+    assert by["none", "rmsse"] == pytest.approx(1.0) and by["group", "rmsse"] == pytest.approx(np.sqrt(0.75))
+    _, chosen = choose_seasonality(acc, {"a": "auto"}, {"a": "top_down"}, ("top_down",))
+    assert chosen == {"a": "group"}  # by leaf WMAPE it would be none
+    out = choose(acc, StrategySettings(("top_down",), {"a": "top_down"}, seasonality={"a": "auto"}))
+    row = out.outputs["strategy_choice"].iloc[0]
+    assert (row["seasonality"], row["metric"]) == ("group", "rmsse")
+    # the same table judged by WMAPE (a smooth class) keeps none
+    _, chosen = choose_seasonality(acc.assign(selection_metric="wmape"), {"a": "auto"}, {"a": "top_down"},
+                                   ("top_down",))
+    assert chosen == {"a": "none"}
+
+
 def test_the_backtest_compares_none_with_group_and_scores_interval_coverage(make_history, make_children, make_config):
     from pipelines.schemas_forecast import BacktestAccuracy
     from pipelines.stages.backtest_accuracy import run_backtest

@@ -245,7 +245,9 @@ def choose_seasonality(
 
     A class with `seasonality: auto` takes the seasonality under which its
     allowed strategies (all of `candidates` for `strategy: auto`, else its
-    configured one) reach the lowest leaf-grain WMAPE; a tie goes to the
+    configured one) reach the lowest leaf-grain score by the class's
+    `selection_metric` (WMAPE or RMSSE, as `strategy_choice` judges the
+    strategies; WMAPE for a table without the column); a tie goes to the
     seasonality the backtest compared first (the models' own setting before
     `group`). Any other class keeps its configured one. A table without a
     seasonality column (made before seasonality was compared) is returned
@@ -261,8 +263,9 @@ def choose_seasonality(
         wanted = seasonality.get(name, AUTO)
         if wanted == AUTO or wanted not in variants:
             allowed = list(candidates) if strategies.get(name, AUTO) == AUTO else [strategies[name]]
-            leaf = accuracy[mine & (accuracy["grain"] == "leaf") & (accuracy["metric"] == "wmape")]
-            leaf = leaf[leaf["strategy"].isin(allowed)]
+            leaf = accuracy[mine & (accuracy["grain"] == "leaf")]
+            metric = str(leaf["selection_metric"].iloc[0]) if "selection_metric" in leaf and len(leaf) else "wmape"
+            leaf = leaf[(leaf["metric"] == metric) & leaf["strategy"].isin(allowed)]
             best = leaf.groupby("seasonality")["value"].min().reindex(variants).fillna(np.inf)
             wanted = min(variants, key=lambda v: (best[v], variants.index(v)))
         chosen[name] = wanted
