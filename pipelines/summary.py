@@ -114,7 +114,7 @@ def print_summary(
             print(
                 f"  {row['product_class']:<14} {row['strategy']:<21} WMAPE {row['leaf_wmape']:.3f}  "
                 f"RMSSE {row.get('leaf_rmsse', float('nan')):.3f}  by {row.get('metric', 'wmape')}: "
-                f"margin {row['margin']:+.4f} over {row['runner_up'] or '-'}  seasonal naive WMAPE "
+                f"{_margin(row)}  seasonal naive WMAPE "
                 f"{row['seasonal_naive_wmape']:.3f}"
                 f"  ({row['configured_strategy']})"
             )
@@ -183,3 +183,10 @@ def failed_checks(outcomes) -> list[Failure]:
         for e in o.checks
         if not e.passed
     ]
+
+
+def _margin(row) -> str:
+    """The margin over the runner-up; a fixed class, backtested with its own strategy alone, has none."""
+    if not row["runner_up"] or row["margin"] != row["margin"]:  # NaN
+        return "no runner-up (fixed strategy)"
+    return f"margin {row['margin']:+.4f} over {row['runner_up']}"

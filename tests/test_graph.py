@@ -116,10 +116,12 @@ def test_demo_cycle_succeeds_and_every_blocking_check_passes(demo_cycle):
 def test_auto_classes_follow_the_backtest_choice_and_stay_coherent(demo_cycle):
     result, store, config = demo_cycle
     accuracy = read_table(store, "backtest_accuracy")
-    # every class is backtested (consumables is fixed to the split, the others `auto`); each has all
-    # five strategies and the benchmark at both grains
+    # every class is backtested (consumables is fixed to the split, the others `auto`); the `auto` ones with
+    # all five strategies and the benchmark at both grains, consumables with its split and the benchmark alone
     assert set(accuracy["product_class"]) == {"consumables", "seasonal", "spares"}
-    assert set(accuracy["strategy"]) == {
+    fixed = accuracy[accuracy["product_class"] == "consumables"]
+    assert set(fixed["strategy"]) == {"top_down", "seasonal_naive"} and set(fixed["grain"]) == {"leaf", "parent"}
+    assert set(accuracy[accuracy["product_class"] != "consumables"]["strategy"]) == {
         "top_down",
         "forecast_proportions",
         "bottom_up",
