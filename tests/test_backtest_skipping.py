@@ -109,3 +109,30 @@ def test_auto_seasonality_makes_the_share_candidates_once_per_origin_and_tunes_t
     mine = auto.accuracy[(auto.accuracy["seasonality"] == "group") & (auto.accuracy["strategy"] == "top_down")]
     theirs = group.accuracy[group.accuracy["strategy"] == "top_down"]
     assert mine.sort_values(KEY)["value"].to_numpy() == pytest.approx(theirs.sort_values(KEY)["value"].to_numpy())
+
+
+def test_a_fixed_class_beside_an_auto_class_in_one_run_leaves_the_auto_class_as_it_is_alone(
+    make_history, make_children, make_config
+):
+    history = _history(make_history)
+    both = make_children([(p, s, c, "a" if p == "P1" else "b") for p, s, c in KEYS])
+    classes = {
+        name: {"window": 52, "method": "pooled", "strategy": strategy, "models": SES, "seasonality": "none"}
+        for name, strategy in (("a", "auto"), ("b", "top_down"))
+    }
+    sections = {
+        "backtest": {"origins": 2, "horizon": 13, "step": 13, "strategies": STRATEGIES},
+        "selection": {"share_tuning": {"windows": [52], "methods": ["pooled"]}},
+        "intervals": {"levels": [80]},
+    }
+    together = run_backtest(history, both, make_config(classes, **sections), CYCLE).accuracy
+    alone = run_backtest(
+        history[history["product"] == "P1"], both[both["product_class"] == "a"],
+        make_config({"a": classes["a"]}, **sections), CYCLE,
+    ).accuracy
+    assert set(together.loc[together["product_class"] == "b", "strategy"]) == {"top_down", "seasonal_naive"}
+    mine = together[together["product_class"] == "a"]
+    assert set(mine["strategy"]) == set(STRATEGIES) | {"seasonal_naive"}
+    # MinT runs over both classes' parents at once: class b's (without leaf models) must not touch class a's rows
+    assert mine.sort_values(KEY)["value"].to_numpy() == pytest.approx(alone.sort_values(KEY)["value"].to_numpy(),
+                                                                      nan_ok=True)
