@@ -49,11 +49,15 @@ def reject_lines(
     `isolated_date`, `on_or_after_cycle_date` (`pipelines.stages.cleaned_history`, rule 1).
     """
     period = calendar.period
-    reason = pd.Series(pd.NA, index=raw.index, dtype=object)
+    reason = np.zeros(len(raw), dtype=np.int16)  # 0: no reason yet, else 1 + its place in `reasons`
+    reasons: list[str] = []
 
     def mark(mask, why) -> None:
-        mask = np.asarray(mask, dtype=bool)
-        reason[mask & reason.isna().to_numpy()] = why
+        mask = np.asarray(mask, dtype=bool) & (reason == 0)
+        if mask.any():
+            if why not in reasons:
+                reasons.append(why)
+            reason[mask] = reasons.index(why) + 1
 
     if "read_error" in raw.columns:
         read_error = raw["read_error"].astype(str)
@@ -79,10 +83,10 @@ def reject_lines(
     line_code = codes[0]
     mark(~pd.Series(line_code).isin(codes[1]).to_numpy(), "no_customer_span")
     del codes
-    mark(_repeated_in_earlier_file(raw, line_code, dates, qty, reason.isna().to_numpy()), "duplicate_of_other_file")
+    mark(_repeated_in_earlier_file(raw, line_code, dates, qty, reason == 0), "duplicate_of_other_file")
 
     # the cycle date: given, or the period after the trusted end of the usable lines
-    ok = reason.isna().to_numpy() & dates.notna().to_numpy()
+    ok = (reason == 0) & dates.notna().to_numpy()
     ordinals = np.full(len(raw), np.iinfo(np.int64).min, dtype=np.int64)
     if ok.any():
         ordinals[ok] = period_ordinal(period_start(dates[ok], period), period)
@@ -100,20 +104,20 @@ def reject_lines(
     with np.errstate(invalid="ignore"):
         mark((dates < lowest).to_numpy() | (outside < 0), "date_before_window")
         mark((dates >= highest).to_numpy() | (outside > 0), "date_after_window")
-    history = reason.isna().to_numpy() & (ordinals < cycle_ord) & dates.notna().to_numpy()
+    history = (reason == 0) & (ordinals < cycle_ord) & dates.notna().to_numpy()
     if history.any():
         first_ord, _ = trusted_extent(ordinals[history], gap, trim_end=False)
         mark(history & (ordinals < first_ord), "isolated_date")
-    mark(reason.isna().to_numpy() & dates.notna().to_numpy() & (ordinals >= cycle_ord), "on_or_after_cycle_date")
+    mark((reason == 0) & dates.notna().to_numpy() & (ordinals >= cycle_ord), "on_or_after_cycle_date")
 
-    ok = reason.isna().to_numpy()
+    ok = reason == 0
     at = np.flatnonzero(ok)
     leaf_code, distinct = pd.factorize(line_code[ok])
     leaf_code = leaf_code.astype(np.int64)
     leaves = raw[LEAF].iloc[at[first_rows(leaf_code)]].reset_index(drop=True) if len(at) else raw[LEAF].iloc[0:0]
     used = UsedLines(leaf_code, leaves.reset_index(drop=True), ordinals[ok], qty[ok])
     rejected = raw.loc[~ok].drop(columns=["read_error"], errors="ignore").copy()
-    rejected["reason"] = reason[~ok].astype(str)
+    rejected["reason"] = np.array([None, *reasons], dtype=object)[reason[~ok]]
     return used, rejected.reset_index(drop=True), cycle_date
 
 

@@ -36,13 +36,20 @@ class Lines:
     """The used lines, grouped by leaf code (stable: lines of a leaf keep the order they were read)."""
 
     leaf: np.ndarray  # int64 leaf code per line, ascending
-    col: np.ndarray  # grid column (period ordinal - first ordinal)
+    col: np.ndarray  # int32 grid column (period ordinal - first ordinal)
     quantity: np.ndarray  # float64
 
     @classmethod
     def of(cls, leaf_code: np.ndarray, col: np.ndarray, quantity: np.ndarray) -> Lines:
         order = np.argsort(leaf_code, kind="stable")
-        return cls(leaf_code[order], col[order].astype(np.int32), quantity[order])
+        return cls(leaf_code[order], col[order], quantity[order])
+
+    def first_col(self, n_leaves: int) -> np.ndarray:
+        """Each leaf's first grid column with a line (every leaf has one)."""
+        if n_leaves == 0:
+            return np.zeros(0, dtype=np.int64)
+        starts = np.searchsorted(self.leaf, np.arange(n_leaves))
+        return np.minimum.reduceat(self.col, starts).astype(np.int64)
 
     def block(self, a: int, b: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         lo, hi = np.searchsorted(self.leaf, [a, b])

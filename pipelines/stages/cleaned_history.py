@@ -159,12 +159,12 @@ def clean_history(
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
 
     # --- the grid: every leaf's fill range (from its customer span start, or its first line), class and parent
-    leaf_code, leaves = used.leaf_code, used.leaves
-    first_ord = int(used.ordinal.min()) if len(leaf_code) else cycle_ord - 1
+    leaves = used.leaves
+    first_ord = int(used.ordinal.min()) if len(used.leaf_code) else cycle_ord - 1
     t = cycle_ord - first_ord  # periods in the grid: first history period .. cycle - 1
-    col = used.ordinal - first_ord
-    first_line = np.full(len(leaves), t, dtype=np.int64)
-    np.minimum.at(first_line, leaf_code, col)
+    lines = Lines.of(used.leaf_code, (used.ordinal - first_ord).astype(np.int32), used.quantity)
+    del used  # the lines live on grouped by leaf only
+    first_line = lines.first_col(len(leaves))
     from_ord, to_ord = span_bounds(spans, period)
     pos = lookup(leaves, LEAF, spans)
     span_from, span_to = from_ord[pos] - first_ord, to_ord[pos] - first_ord
@@ -178,8 +178,8 @@ def clean_history(
         parent=parent,
         short_by_parent=by_parent,
     )
-    blocks = clean_blocks(Lines.of(leaf_code, col, used.quantity), grid, config, config.block_cells)
-    del used, leaf_code, col
+    blocks = clean_blocks(lines, grid, config, config.block_cells)
+    del lines
 
     # --- long tables
     cells = blocks.cells()
