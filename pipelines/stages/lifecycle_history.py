@@ -92,6 +92,11 @@ def _audit(rows: pd.DataFrame, rule: str, detail: str | pd.Series) -> pd.DataFra
     return out[AUDIT_COLUMNS]
 
 
+def _index_type(n: int) -> type:
+    """int32 for positions and codes below 2**31 (half the memory of int64), else int64."""
+    return np.int32 if n < 2**31 - 1 else np.int64
+
+
 def leaf_codes(frame: pd.DataFrame) -> tuple[np.ndarray, pd.DataFrame]:
     """`keys.factorize(frame, LEAF)` through the runs of equal keys: codes by first appearance and the leaves.
 
@@ -109,7 +114,7 @@ def leaf_codes(frame: pd.DataFrame) -> tuple[np.ndarray, pd.DataFrame]:
         change[1:] |= values[1:] != values[:-1]
     starts = np.flatnonzero(change)
     run_code, leaves = factorize(frame[LEAF].iloc[starts], LEAF)
-    return np.repeat(run_code, np.diff(np.append(starts, n))), leaves
+    return np.repeat(run_code.astype(_index_type(len(leaves))), np.diff(np.append(starts, n))), leaves
 
 
 def _sort_order(dest_rank: np.ndarray, ordinal: np.ndarray, moved: np.ndarray, source_rank: np.ndarray) -> np.ndarray:
@@ -165,9 +170,9 @@ def apply_lifecycle(
         )
 
     leaf_span = lookup(leaves, LEAF, spans)
-    lpos = leaf_span[leaf]
-    inside = (lpos >= 0) & active_mask(s_from[np.clip(lpos, 0, None)], s_to[np.clip(lpos, 0, None)], h_ord)
-    del lpos, h_ord
+    at = np.clip(leaf_span, 0, None)  # each leaf's span bounds, then reached by the rows
+    inside = (leaf_span >= 0)[leaf] & active_mask(s_from[at][leaf], s_to[at][leaf], h_ord)
+    del h_ord
     audits.append(
         _audit(rows_of(np.flatnonzero(~inside)), "outside_active_span", "history outside the customer's active span")
     )
@@ -196,10 +201,10 @@ def apply_lifecycle(
     t_from, t_to = s_from[np.clip(tpos, 0, None)], s_to[np.clip(tpos, 0, None)]
     with np.errstate(invalid="ignore"):
         t_ok = (tpos >= 0) & (np.isnan(t_from) | (t_from <= horizon_end)) & (np.isnan(t_to) | (t_to >= cycle_ord))
-    target_of_leaf = np.full(len(leaves), -1, dtype=np.int64)
+    target_of_leaf = np.full(len(leaves), -1, dtype=_index_type(2 * len(leaves)))
     target_of_leaf[targets] = np.arange(len(targets))
     moving = retired & ~no_successor
-    moving_rows = np.flatnonzero(moving)
+    moving_rows = np.flatnonzero(moving).astype(_index_type(n_rows))
     row_target = target_of_leaf[leaf[moving_rows]]  # per moving row: its successor key
     lost = ~t_ok[row_target] if len(targets) else np.zeros(0, dtype=bool)
     audits.append(
@@ -220,7 +225,7 @@ def apply_lifecycle(
     )
 
     # --- the rows kept, own then moved (the order the stable sort keeps among equals); phased-out leaves leave
-    own_rows = np.flatnonzero(inside & ~retired)
+    own_rows = np.flatnonzero(inside & ~retired).astype(_index_type(n_rows))
     del inside, retired, no_successor, moving
     rows = np.concatenate([own_rows, moved_rows])
     is_moved = np.concatenate([np.zeros(len(own_rows), dtype=bool), np.ones(len(moved_rows), dtype=bool)])
@@ -244,7 +249,7 @@ def apply_lifecycle(
     rank = np.empty(len(distinct), dtype=np.int64)
     rank[distinct.sort_values(LEAF, kind="stable").index.to_numpy()] = np.arange(len(distinct))
     source_rank = pd.factorize(leaves["product"], sort=True)[0]
-    day_rank = pd.factorize(starts, sort=True)[0]  # period_start ranked on its distinct values
+    day_rank = pd.factorize(starts, sort=True)[0].astype(np.int32)  # period_start ranked on its distinct values
     order = _sort_order(rank[key_code][key], day_rank[rows], is_moved, source_rank[leaf[rows]])
     rows, is_moved, key = rows[order], is_moved[order], key[order]
     del order, day_rank
