@@ -96,6 +96,12 @@ Every correction is one row of `history_corrections`; where rules chain on one
 period (returns then an outlier limit, returns then a shortage fill) each rule
 applied is its own row, in order, each `before` the previous row's `after`. So
 per series, sum(raw_quantity) + sum(delta of corrections) = sum(quantity).
+
+Rules 2-7 are per series (the shortage flags through a parent x period grid), so
+they run on dense float64 leaf x period matrices of one block of leaves at a
+time (`pipelines.engines.cleansing_blocks`, `CleaningSettings.block_cells`):
+the memory of that part does not grow with the leaves, and the tables are the
+same for any block size.
 """
 
 from __future__ import annotations
