@@ -4,7 +4,7 @@
         [--stages raw,clean,lifecycle,shares,basis,target,backtest,choice,forecast,reconcile,plan,drift,report]
         [--seasonal] [--leaf-grain CLASS] [--share-method pooled|mean_of_ratios|smoothed|seasonal|children_forecast]
         [--shortage-rule exclude|fill_baseline] [--no-shortages] [--csv]
-        [--store [PATH]] [--no-validate] [--trace rerun|inline|off] [--no-warmup]
+        [--store [PATH]] [--no-validate] [--trace rerun|inline|off] [--no-warmup] [--scenario-cache [DIR]]
         [--rss-sample-ms MS] [--json PATH]
 
 A seeded generator builds N leaf series (product x site x customer, 5-15
@@ -93,7 +93,8 @@ from cycle_measure import (  # noqa: E402
     total_line,
     warm_up,
 )
-from cycle_scenario import CLASSES, Scenario, generate  # noqa: E402
+from cycle_scenario import CLASSES, Scenario  # noqa: E402
+from scenario_cache import scenario_maker  # noqa: E402
 from side_by_side import compare  # noqa: E402
 
 from assets.factory import Partition, graph_order  # noqa: E402
@@ -147,8 +148,7 @@ def run_cycle(args: argparse.Namespace) -> dict:
     tmp = tempfile.TemporaryDirectory(prefix="apportion-bench-")
     csv_folder = Path(tmp.name) / "inputs" if args.csv else None
     scen = bench.run(
-        "generate (not timed)",
-        lambda: generate(args.leaves, args.seed, args.periods, csv_folder, args.horizon),
+        *scenario_maker(args, csv_folder),  # label, maker; --scenario-cache: Parquet files written once, then read
         rows_in=args.leaves,
         rows_out=lambda s: s.lines,
         in_total=False,
@@ -312,7 +312,6 @@ def finish(bench: Bench, args: argparse.Namespace, scen: Scenario, compared: dic
     return result
 
 
-
 def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
     p = argparse.ArgumentParser(prog="benchmarks/cycle.py", description=__doc__.splitlines()[0])
     p.add_argument("--leaves", type=int, required=True, help="number of leaf series (product x site x customer)")
@@ -364,6 +363,8 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
         metavar="PATH",
         help="also time the store's write of each table (a Parquet version; temp folder unless PATH)",
     )
+    p.add_argument("--scenario-cache", nargs="?", const="var/bench-scenarios", default=None, metavar="DIR",
+                   help="the scenario as Parquet files in DIR (var/bench-scenarios): written once, then read")
     p.add_argument("--no-validate", action="store_true", help="skip the pandera validations")
     p.add_argument(
         "--trace",

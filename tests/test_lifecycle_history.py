@@ -261,3 +261,38 @@ def test_active_children_count_a_period_with_own_and_successor_rows_once(
     ch = active_children(spans, products, res.history, config, CYCLE)
     # 4 rows of C2 on B, but 2 distinct periods (01-19, 01-26): new under min_history_periods 3
     assert dict(zip(ch["customer"], ch["own_periods"], strict=False)) == {"C1": 4, "C2": 2}
+
+
+def test_leaf_codes_through_runs_are_those_of_factorize_in_any_row_order():
+    """leaf_codes hashes only the first row of each run of equal keys; the codes and leaves must be
+    keys.factorize's (first appearance), whatever the order of the rows (checked against factorize itself)."""
+    import numpy as np
+
+    from pipelines.keys import LEAF, factorize
+    from pipelines.stages.lifecycle_history import leaf_codes
+
+    rng = np.random.default_rng(3)
+    frame = pd.DataFrame(
+        {
+            "product": rng.choice(["A", "B"], 400),
+            "site": rng.choice(["S1", "S2"], 400),
+            "customer": rng.choice(["C1", "C2", "C3"], 400),
+        }
+    )
+    for rows in (frame, frame.sort_values(LEAF).reset_index(drop=True)):
+        code, leaves = leaf_codes(rows)
+        want_code, want_leaves = factorize(rows, LEAF)
+        assert code.tolist() == want_code.tolist()
+        pd.testing.assert_frame_equal(leaves, want_leaves)
+
+
+def test_packed_sort_order_is_the_lexsort_order():
+    """The one packed key sorts as np.lexsort on the four keys, stably (ties keep row order)."""
+    import numpy as np
+
+    from pipelines.stages.lifecycle_history import _sort_order
+
+    rng = np.random.default_rng(5)
+    dest, period, moved, source = (rng.integers(0, k, 500) for k in (7, 5, 2, 3))
+    got = _sort_order(dest, period + 100, moved.astype(bool), source)
+    assert got.tolist() == np.lexsort((source, moved, period, dest)).tolist()

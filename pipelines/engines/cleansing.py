@@ -7,6 +7,7 @@ The rules and their order are stated in `pipelines.stages.cleaned_history`.
 from __future__ import annotations
 
 import json
+from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
@@ -21,34 +22,48 @@ from pipelines.calendar import (
 )
 from pipelines.config_inputs import PlausibilityConfig
 from pipelines.engines.plausible import gap_periods, parse_dates, trusted_extent, year_outside
-from pipelines.keys import LEAF, PARENT, factorize, joint_codes, lookup
+from pipelines.keys import LEAF, PARENT, factorize, first_rows, joint_codes, lookup
+
+
+@dataclass(frozen=True)
+class UsedLines:
+    """The usable lines as integers: leaf code (by first appearance), period ordinal and quantity per line."""
+
+    leaf_code: np.ndarray  # int64 per line, 0..len(leaves) - 1
+    leaves: pd.DataFrame  # product, site, customer of each code
+    ordinal: np.ndarray  # int64 period number per line
+    quantity: np.ndarray  # float64 per line
 
 
 def reject_lines(
     raw: pd.DataFrame, products: pd.DataFrame, spans: pd.DataFrame, calendar, source, plausible: PlausibilityConfig
-) -> tuple[pd.DataFrame, pd.DataFrame, pd.Timestamp]:
-    """Split raw lines into usable lines (parsed) and rejected lines (with reason).
+) -> tuple[UsedLines, pd.DataFrame, pd.Timestamp]:
+    """Split raw lines into usable lines (parsed, as integer codes) and rejected lines (with reason).
 
-    Returns (used, rejected, cycle_date). `used` has the leaf keys, `ordinal`
-    (period number) and `quantity` (float). The reasons, first that applies:
+    Returns (used, rejected, cycle_date). The keys are coded once, as integers
+    (`keys.joint_codes` over the lines and the spans), so the lines are never
+    copied as text. The reasons, first that applies:
     the reader's (`read_error`), `missing_key`, `bad_date`, `bad_quantity`,
     `quantity_out_of_bounds`, `unknown_product`, `no_customer_span`,
     `duplicate_of_other_file`, `date_before_window`, `date_after_window`,
     `isolated_date`, `on_or_after_cycle_date` (`pipelines.stages.cleaned_history`, rule 1).
     """
     period = calendar.period
-    keys = raw[LEAF]
-    reason = pd.Series(pd.NA, index=raw.index, dtype=object)
+    reason = np.zeros(len(raw), dtype=np.int16)  # 0: no reason yet, else 1 + its place in `reasons`
+    reasons: list[str] = []
 
     def mark(mask, why) -> None:
-        mask = np.asarray(mask, dtype=bool)
-        reason[mask & reason.isna().to_numpy()] = why
+        mask = np.asarray(mask, dtype=bool) & (reason == 0)
+        if mask.any():
+            if why not in reasons:
+                reasons.append(why)
+            reason[mask] = reasons.index(why) + 1
 
     if "read_error" in raw.columns:
         read_error = raw["read_error"].astype(str)
         for why in pd.unique(read_error[read_error != ""]):
             mark((read_error == why).to_numpy(), why)
-    mark((keys == "").any(axis=1), "missing_key")
+    mark(np.logical_or.reduce([(raw[c] == "").to_numpy(dtype=bool) for c in LEAF]), "missing_key")
     dates = parse_dates(raw["period_start"])
     # a date pandas cannot hold (year 9999) is still a date, outside the window: looked for among the unparsed only
     outside = np.zeros(len(raw), dtype=np.int64)
@@ -61,12 +76,17 @@ def reject_lines(
     size = np.abs(np.nan_to_num(qty, nan=0.0, posinf=0.0, neginf=0.0))
     mark(size > plausible.max_abs_quantity, "quantity_out_of_bounds")
     mark(~raw["product"].isin(products["product"]), "unknown_product")
-    span_index = pd.MultiIndex.from_frame(spans[LEAF])
-    mark(~pd.MultiIndex.from_frame(keys).isin(span_index), "no_customer_span")
-    mark(_repeated_in_earlier_file(raw, dates, qty, reason.isna().to_numpy()), "duplicate_of_other_file")
+    codes = joint_codes(raw, spans, LEAF)
+    if codes is None:  # too many distinct keys to pack into one integer: pandas' own grouping
+        codes = factorize(pd.concat([raw[LEAF], spans[LEAF]], ignore_index=True), LEAF)[0]
+        codes = codes[: len(raw)], codes[len(raw) :]
+    line_code = codes[0]
+    mark(~pd.Series(line_code).isin(codes[1]).to_numpy(), "no_customer_span")
+    del codes
+    mark(_repeated_in_earlier_file(raw, line_code, dates, qty, reason == 0), "duplicate_of_other_file")
 
     # the cycle date: given, or the period after the trusted end of the usable lines
-    ok = reason.isna().to_numpy() & dates.notna().to_numpy()
+    ok = (reason == 0) & dates.notna().to_numpy()
     ordinals = np.full(len(raw), np.iinfo(np.int64).min, dtype=np.int64)
     if ok.any():
         ordinals[ok] = period_ordinal(period_start(dates[ok], period), period)
@@ -84,56 +104,71 @@ def reject_lines(
     with np.errstate(invalid="ignore"):
         mark((dates < lowest).to_numpy() | (outside < 0), "date_before_window")
         mark((dates >= highest).to_numpy() | (outside > 0), "date_after_window")
-    history = reason.isna().to_numpy() & (ordinals < cycle_ord) & dates.notna().to_numpy()
+    history = (reason == 0) & (ordinals < cycle_ord) & dates.notna().to_numpy()
     if history.any():
         first_ord, _ = trusted_extent(ordinals[history], gap, trim_end=False)
         mark(history & (ordinals < first_ord), "isolated_date")
-    mark(reason.isna().to_numpy() & dates.notna().to_numpy() & (ordinals >= cycle_ord), "on_or_after_cycle_date")
+    mark((reason == 0) & dates.notna().to_numpy() & (ordinals >= cycle_ord), "on_or_after_cycle_date")
 
-    ok = reason.isna().to_numpy()
-    used = raw.loc[ok, LEAF].reset_index(drop=True)
-    used["ordinal"] = ordinals[ok]
-    used["quantity"] = qty[ok]
+    ok = reason == 0
+    at = np.flatnonzero(ok)
+    leaf_code, distinct = pd.factorize(line_code[ok])
+    leaf_code = leaf_code.astype(np.int64)
+    leaves = raw[LEAF].iloc[at[first_rows(leaf_code)]].reset_index(drop=True) if len(at) else raw[LEAF].iloc[0:0]
+    used = UsedLines(leaf_code, leaves.reset_index(drop=True), ordinals[ok], qty[ok])
     rejected = raw.loc[~ok].drop(columns=["read_error"], errors="ignore").copy()
-    rejected["reason"] = reason[~ok].astype(str)
+    rejected["reason"] = np.array([None, *reasons], dtype=object)[reason[~ok]]
     return used, rejected.reset_index(drop=True), cycle_date
 
 
 def _repeated_in_earlier_file(
-    raw: pd.DataFrame, dates: pd.Series, qty: np.ndarray, candidate: np.ndarray
+    raw: pd.DataFrame, line_code: np.ndarray, dates: pd.Series, qty: np.ndarray, candidate: np.ndarray
 ) -> np.ndarray:
     """True for a line whose keys, date and quantity (parsed) are those of a line of an earlier file.
 
     Files come in the order they were read (sorted by name); repeats inside one
-    file are separate shipments and stay. Only `candidate` lines are compared.
+    file are separate shipments and stay. Only `candidate` lines are compared;
+    `line_code` is equal exactly where two lines' keys are.
     """
     out = np.zeros(len(raw), dtype=bool)
     if "source_file" not in raw.columns or raw["source_file"].nunique() < 2 or not candidate.any():
         return out
     file_code = pd.factorize(raw["source_file"])[0]
-    lines = raw.loc[candidate, LEAF].assign(
-        date=dates[candidate].to_numpy(), qty=qty[candidate], file=file_code[candidate]
+    lines = pd.DataFrame(
+        {
+            "leaf": line_code[candidate],
+            "date": dates[candidate].to_numpy(dtype="datetime64[ns]").view(np.int64),
+            "qty": qty[candidate],
+            "file": file_code[candidate],
+        }
     )
-    first = lines.groupby(LEAF + ["date", "qty"], sort=False, dropna=False)["file"].transform("min").to_numpy()
+    first = lines.groupby(["leaf", "date", "qty"], sort=False, dropna=False)["file"].transform("min").to_numpy()
     out[np.flatnonzero(candidate)[lines["file"].to_numpy() > first]] = True
     return out
 
 
-def shortage_cells(
-    shortages: pd.DataFrame | None, leaves: pd.DataFrame, keep: np.ndarray, first_ord: int, period: str
-) -> tuple[np.ndarray, pd.DataFrame]:
-    """Boolean (n_leaves, n_periods) of kept cells whose product x site has a shortage that period.
+def shortage_grid(
+    shortages: pd.DataFrame | None, leaves: pd.DataFrame, first_ord: int, t: int, period: str
+) -> tuple[np.ndarray, np.ndarray, pd.DataFrame, tuple[np.ndarray, np.ndarray, np.ndarray]]:
+    """The shortage records on the parent x period grid, for flagging a block of leaves at a time.
 
-    Also the shortage records bucketed to their period, with the children each flagged.
+    Returns (parent code per leaf, bool (n_parents, t) of recorded shortages,
+    the records bucketed to their period, and per record its parent row, grid
+    column and whether it lies on the grid). A block's flagged cells are
+    `by_parent[parent[leaves of the block]] & keep`; `shortage_records` counts
+    the children each record flagged.
     """
-    n, t = keep.shape
-    columns = PARENT + ["period_start", "children"]
-    cells = np.zeros((n, t), dtype=bool)
+    n = len(leaves)
     if shortages is None or len(shortages) == 0:
-        empty = {"product": pd.Series(dtype=object), "site": pd.Series(dtype=object)}
-        return cells, pd.DataFrame(
-            empty | {"period_start": pd.Series(dtype="datetime64[ns]"), "children": pd.Series(dtype=np.int64)}
+        records = pd.DataFrame(
+            {
+                "product": pd.Series(dtype=object),
+                "site": pd.Series(dtype=object),
+                "period_start": pd.Series(dtype="datetime64[ns]"),
+            }
         )
+        nothing = np.zeros(0, dtype=np.int64)
+        return np.zeros(n, dtype=np.int64), np.zeros((1, t), dtype=bool), records, (nothing, nothing, nothing > 0)
     dates = pd.to_datetime(shortages["period_start"], errors="coerce")
     records = shortages.loc[dates.notna().to_numpy(), PARENT].astype(str).reset_index(drop=True)
     records["period_start"] = period_start(dates[dates.notna()].reset_index(drop=True), period)
@@ -142,15 +177,30 @@ def shortage_cells(
     parent_code, parents = factorize(leaves, PARENT) if n else (np.zeros(0, np.int64), pd.DataFrame(columns=PARENT))
     ppos = lookup(records, PARENT, parents) if n else np.full(len(records), -1)
     ok = (ppos >= 0) & (col >= 0) & (col < t)
-    by_parent = np.zeros((len(parents), t), dtype=bool)
+    by_parent = np.zeros((max(len(parents), 1), t), dtype=bool)
     by_parent[ppos[ok], col[ok]] = True
-    cells = by_parent[parent_code] & keep
-    li, pj = np.nonzero(cells)
-    flagged_per_parent = np.bincount(parent_code[li] * t + pj, minlength=len(parents) * t)
+    return parent_code, by_parent, records, (ppos, col, ok)
+
+
+def shortage_records(records: pd.DataFrame, where: tuple, flagged: np.ndarray) -> pd.DataFrame:
+    """The records of `shortage_grid` with the children each flagged (`flagged`: count per parent and column)."""
+    ppos, col, ok = where
     children = np.zeros(len(records), dtype=np.int64)
-    children[ok] = flagged_per_parent[ppos[ok] * t + col[ok]]
-    records["children"] = children
-    return cells, records.sort_values(columns[:3], kind="stable").reset_index(drop=True)
+    children[ok] = flagged[ppos[ok], col[ok]]
+    records = records.assign(children=children)
+    return records.sort_values(PARENT + ["period_start"], kind="stable").reset_index(drop=True)
+
+
+def sorted_corrections(pieces: list[pd.DataFrame], leaves: pd.DataFrame, first_ord: int, period: str) -> pd.DataFrame:
+    """The correction rows of `correction_rows` with their keys and period, sorted by key.
+
+    The sort is stable on the key only: the rules of one period stay in the order they ran.
+    """
+    empty = np.zeros((0, 0))
+    corr = pd.concat(pieces or [correction_rows(empty.astype(bool), empty, empty, "hampel_cap", {})], ignore_index=True)
+    corr = pd.concat([leaves.iloc[corr.pop("leaf").to_numpy()].reset_index(drop=True), corr], axis=1)
+    corr.insert(3, "period_start", ordinal_to_start(corr.pop("col").to_numpy() + first_ord, period))
+    return corr.sort_values(LEAF + ["period_start"], kind="stable").reset_index(drop=True)
 
 
 def correction_rows(

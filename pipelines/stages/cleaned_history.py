@@ -96,6 +96,12 @@ Every correction is one row of `history_corrections`; where rules chain on one
 period (returns then an outlier limit, returns then a shortage fill) each rule
 applied is its own row, in order, each `before` the previous row's `after`. So
 per series, sum(raw_quantity) + sum(delta of corrections) = sum(quantity).
+
+Rules 2-7 are per series (the shortage flags through a parent x period grid), so
+they run on dense float64 leaf x period matrices of one block of leaves at a
+time (`pipelines.engines.cleansing_blocks`, `CleaningSettings.block_cells`):
+the memory of that part does not grow with the leaves, and the tables are the
+same for any block size.
 """
 
 from __future__ import annotations
@@ -107,23 +113,24 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import ordinal_to_start, period_ordinal, season_length, span_bounds
+from pipelines.calendar import ordinal_to_start, period_ordinal, span_bounds
 from pipelines.checks import CORRECTIONS_EXPLAIN_CHANGES, EVERY_RAW_ROW_ACCOUNTED, REJECTED_ROWS_WITHIN_LIMIT
 from pipelines.config import CalendarConfig, PlanningConfig, class_section
 from pipelines.config_inputs import PlausibilityConfig
 from pipelines.config_sections import CleansingConfig, ProductClassConfig
 from pipelines.engines.cleansing import (
-    correction_rows,
     cycle_calendar,
     find_unexplained_changes,
     line_accounting,
     reject_lines,
-    shortage_cells,
+    shortage_grid,
+    shortage_records,
+    sorted_corrections,
 )
-from pipelines.engines.outliers import judge_outliers, rolling_median, rule_parameters, seasonal_component
+from pipelines.engines.cleansing_blocks import BLOCK_CELLS, Grid, Lines, class_summary, clean_blocks
 from pipelines.engines.proofs import find_unaccounted_lines
 from pipelines.engines.report_charts import corrections_chart
-from pipelines.keys import LEAF, factorize, lookup
+from pipelines.keys import LEAF, lookup
 from pipelines.results import CheckRows, Log, StageResult, quiet
 
 
@@ -137,6 +144,7 @@ class CleaningResult:
     outlier_rules: pd.DataFrame = field(default_factory=pd.DataFrame)
     # per shortage record (bucketed to its period): the children it flagged
     shortage_periods: pd.DataFrame = field(default_factory=pd.DataFrame)
+    series: int = 0  # leaf series in `cleaned` (each has at least one used line)
 
 
 def clean_history(
@@ -156,126 +164,43 @@ def clean_history(
     used, rejected, cycle_date = reject_lines(raw, products, spans, config.calendar, config.source, config.plausible)
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
 
-    # --- bucket and net: one value per leaf and period
-    leaf_code, leaves = factorize(used, LEAF)
-    n_leaves = len(leaves)
-    first_ord = int(used["ordinal"].min()) if len(used) else cycle_ord - 1
+    # --- the grid: every leaf's fill range (from its customer span start, or its first line), class and parent
+    leaves = used.leaves
+    first_ord = int(used.ordinal.min()) if len(used.leaf_code) else cycle_ord - 1
     t = cycle_ord - first_ord  # periods in the grid: first history period .. cycle - 1
-    cell = leaf_code * t + (used["ordinal"].to_numpy() - first_ord)
-    net = np.bincount(cell, weights=used["quantity"].to_numpy(), minlength=n_leaves * t).reshape(n_leaves, t)
-    lines = np.bincount(cell, minlength=n_leaves * t).reshape(n_leaves, t)
-    observed = lines > 0
-
-    # --- each series' fill range, in grid columns
+    lines = Lines.of(used.leaf_code, (used.ordinal - first_ord).astype(np.int32), used.quantity)
+    del used  # the lines live on grouped by leaf only
+    first_line = lines.first_col(len(leaves))
     from_ord, to_ord = span_bounds(spans, period)
     pos = lookup(leaves, LEAF, spans)
-    span_from = from_ord[pos] - first_ord
-    span_to = to_ord[pos] - first_ord
-    first_line = np.argmax(observed, axis=1)
-    start = np.where(np.isnan(span_from), first_line, np.clip(span_from, 0, None)).astype(np.int64)
-    end = np.where(np.isnan(span_to), t - 1, np.clip(span_to, -1, t - 1)).astype(np.int64)
-    cols = np.arange(t)
-    in_range = (cols >= start[:, None]) & (cols <= end[:, None])
-    keep = observed | in_range
-
-    # --- returns: negative net periods to zero
-    corrections = []
-    raw_net = np.where(keep, net, np.nan)
-    values = raw_net.copy()
-    negative = observed & (net < 0)
-    if negative.any():
-        corrections.append(
-            correction_rows(
-                negative, raw_net, np.zeros_like(raw_net), "negative_net_to_zero", {"rule": "net_then_zero"}
-            )
-        )
-        values[negative] = 0.0
-    corrected = negative.copy()
-
-    # --- shortage periods: flagged on every child of the product x site
-    short, shortage_periods = shortage_cells(shortages, leaves, keep, first_ord, period)
-
-    # --- per product class: outliers on the non-shortage periods, then the shortage rule
+    span_from, span_to = from_ord[pos] - first_ord, to_ord[pos] - first_ord
+    parent, by_parent, records, where = shortage_grid(shortages, leaves, first_ord, t, period)
     product_class = products.drop_duplicates("product").set_index("product")["product_class"]
-    leaf_class = leaves["product"].map(product_class).to_numpy(dtype=object)
-    m = season_length(period)
-    fill = config.cleansing.shortages == "fill_baseline"
-    summary = []
-    for name in sorted(pd.unique(leaf_class)):  # a loop over product classes, not over series
-        pc = config.product_class(name)
-        rule = pc.outlier_rule(config.cleansing)
-        rows = np.flatnonzero(leaf_class == name)
-        x, skip = values[rows], short[rows]
-        if rule.seasonal_adjust == "auto" and pc.models.seasonal and t > 0:
-            s, adjusted, _ = seasonal_component(x, m, exclude=skip)
-        else:
-            s, adjusted = np.zeros_like(x), np.zeros(len(rows), dtype=bool)
-        seasonal_figures = {"seasonal": np.where(adjusted[:, None], s, np.nan)}
-        params = rule_parameters(rule)
-        summary.append(
-            {
-                "product_class": name,
-                **{"rule": rule.rule, **params},
-                "series": len(rows),
-                "seasonal_series": int(adjusted.sum()),
-            }
-        )
-
-        if rule.rule != "none" and t > 0:
-            j = judge_outliers(np.where(skip, np.nan, x - s), rule, s)
-            if j.flagged.any():
-                after = np.where(j.flagged, j.replacement, x)
-                corrections.append(
-                    correction_rows(
-                        j.flagged, x, after, f"{rule.rule}_cap", params, rows, j.figures | seasonal_figures, adjusted
-                    )
-                )
-                corrected[rows] |= j.flagged
-                x = after
-
-        if fill and skip.any():
-            short_rows = np.flatnonzero(skip.any(axis=1))  # only the series a shortage touches
-            base = np.full(x.shape, np.nan)
-            count = np.zeros(x.shape)
-            base[short_rows], count[short_rows] = rolling_median(np.where(skip, np.nan, x - s)[short_rows], rule.window)
-            filled = skip & ~np.isnan(base)
-            if filled.any():
-                after = np.where(filled, np.clip(base + s, 0.0, None), x)
-                fill_params = {"rule": "fill_baseline", "window": rule.window, "seasonal_adjust": rule.seasonal_adjust}
-                figures = {"median": base, "periods": count} | seasonal_figures
-                corrections.append(
-                    correction_rows(filled, x, after, "shortage_fill", fill_params, rows, figures, adjusted)
-                )
-                corrected[rows] |= filled
-                x = after
-        values[rows] = x
+    grid = Grid(
+        t=t,
+        start=np.where(np.isnan(span_from), first_line, np.clip(span_from, 0, None)).astype(np.int64),
+        end=np.where(np.isnan(span_to), t - 1, np.clip(span_to, -1, t - 1)).astype(np.int64),
+        leaf_class=leaves["product"].map(product_class).to_numpy(dtype=object),
+        parent=parent,
+        short_by_parent=by_parent,
+    )
+    blocks = clean_blocks(lines, grid, config, config.block_cells)
+    del lines
 
     # --- long tables
-    li, pj = np.nonzero(keep)
-    cleaned = leaves.iloc[li].reset_index(drop=True)
-    cleaned["period_start"] = ordinal_to_start(pj + first_ord, period)
-    cleaned["quantity"] = values[li, pj]
-    cleaned["raw_quantity"] = net[li, pj]
-    cleaned["lines"] = lines[li, pj].astype(np.int64)
-    cleaned["filled"] = ~observed[li, pj]
-    cleaned["corrected"] = corrected[li, pj]
-    cleaned["shortage"] = short[li, pj]
-
-    empty = np.zeros((0, 0))
-    corr = pd.concat(
-        corrections or [correction_rows(empty.astype(bool), empty, empty, "hampel_cap", {})], ignore_index=True
-    )
-    corr = pd.concat([leaves.iloc[corr.pop("leaf").to_numpy()].reset_index(drop=True), corr], axis=1)
-    corr.insert(3, "period_start", ordinal_to_start(corr.pop("col").to_numpy() + first_ord, period))
-    # stable sort on the key only: the rules of one period stay in the order they ran
-    corr = corr.sort_values(LEAF + ["period_start"], kind="stable").reset_index(drop=True)
+    cells = blocks.cells()
+    cleaned = leaves.iloc[cells.pop("leaf")].reset_index(drop=True)
+    cleaned["period_start"] = ordinal_to_start(cells.pop("col") + first_ord, period)
+    for name in ("quantity", "raw_quantity", "lines", "filled", "corrected", "shortage"):
+        cleaned[name] = cells.pop(name)
     return CleaningResult(
         cleaned=cleaned,
         rejected=rejected,
-        corrections=corr,
+        corrections=sorted_corrections(blocks.corrections, leaves, first_ord, period),
         cycle_date=cycle_date,
-        outlier_rules=pd.DataFrame(summary),
-        shortage_periods=shortage_periods,
+        outlier_rules=class_summary(grid.leaf_class, config, blocks.seasonal_series),
+        shortage_periods=shortage_records(records, where, blocks.flagged),
+        series=len(leaves),
     )
 
 
@@ -293,6 +218,7 @@ class CleaningSettings:
     max_rejected_share: float = 0.01
     picture: str = "cleansing.png"  # the corrections chart, written beside the cycle's report
     report_folder: Path = Path("var/reports")
+    block_cells: int = BLOCK_CELLS  # leaf x period cells cleaned at a time: bounds the dense matrices' memory
 
     @classmethod
     def of(cls, config: PlanningConfig, report_folder: Path = Path("var/reports")) -> CleaningSettings:
@@ -338,7 +264,7 @@ def run(
     png = corrections_chart(by_rule_and_class, list(result.outlier_rules.get("product_class", [])), shortage_count)
     cleaned_figures = {
         "cycle_date": str(result.cycle_date.date()),
-        "series": int(cleaned.groupby(["product", "site", "customer"]).ngroups),
+        "series": result.series,
         "filled_periods": int(cleaned["filled"].sum()),
         "corrected_periods": int(cleaned["corrected"].sum()),
         "shortage_periods": shortage_count,

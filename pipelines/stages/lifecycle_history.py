@@ -70,8 +70,7 @@ def resolve_successors(products: pd.DataFrame) -> pd.Series:
         final = nxt.fillna(final)
     looping = sorted(final.index[final.map(step).notna()])
     raise LifecycleError(
-        f"products: the successor chain loops through {looping}; each chain must end at a "
-        f"product without successor."
+        f"products: the successor chain loops through {looping}; each chain must end at a product without successor."
     )
 
 
@@ -93,6 +92,49 @@ def _audit(rows: pd.DataFrame, rule: str, detail: str | pd.Series) -> pd.DataFra
     return out[AUDIT_COLUMNS]
 
 
+def _index_type(n: int) -> type:
+    """int32 for positions and codes below 2**31 (half the memory of int64), else int64."""
+    return np.int32 if n < 2**31 - 1 else np.int64
+
+
+def leaf_codes(frame: pd.DataFrame) -> tuple[np.ndarray, pd.DataFrame]:
+    """`keys.factorize(frame, LEAF)` through the runs of equal keys: codes by first appearance and the leaves.
+
+    The cleaned history holds each leaf's periods one after another, so only the
+    first row of each run of equal keys is hashed (one row per leaf), not every
+    row; any order of rows gives the same codes, a shuffled one just more runs.
+    """
+    n = len(frame)
+    if n == 0:
+        return factorize(frame, LEAF)
+    change = np.zeros(n, dtype=bool)
+    change[0] = True
+    for c in LEAF:
+        values = frame[c].to_numpy()
+        change[1:] |= values[1:] != values[:-1]
+    starts = np.flatnonzero(change)
+    run_code, leaves = factorize(frame[LEAF].iloc[starts], LEAF)
+    return np.repeat(run_code.astype(_index_type(len(leaves))), np.diff(np.append(starts, n))), leaves
+
+
+def _sort_order(dest_rank: np.ndarray, ordinal: np.ndarray, moved: np.ndarray, source_rank: np.ndarray) -> np.ndarray:
+    """Stable order by destination leaf rank, period, origin (own first) and source product rank.
+
+    One packed int64 key and one stable argsort where the four fit in 62 bits
+    (they do far beyond a million leaves), else np.lexsort on the four.
+    """
+    if len(dest_rank) == 0:
+        return np.zeros(0, dtype=np.int64)
+    ordinal = ordinal - ordinal.min()
+    sizes = [int(dest_rank.max()) + 1, int(ordinal.max()) + 1, 2, int(source_rank.max()) + 1]
+    if np.prod([float(k) for k in sizes]) >= 2.0**62:
+        return np.lexsort((source_rank, moved, ordinal, dest_rank))
+    key = dest_rank.astype(np.int64)
+    for part, size in zip((ordinal, moved, source_rank), sizes[1:], strict=True):
+        key = key * size + part
+    return np.argsort(key, kind="stable")
+
+
 def apply_lifecycle(
     cleaned: pd.DataFrame, products: pd.DataFrame, spans: pd.DataFrame, config: PlanningConfig, cycle_date: pd.Timestamp
 ) -> LifecycleResult:
@@ -100,23 +142,40 @@ def apply_lifecycle(
 
     The rules are decided once per leaf (its span, its product's retirement and
     successor, the successor's span) and reach the rows through integer leaf
-    codes; the history is copied once, into the sorted result, whose order is
-    that of a stable sort by leaf, period, origin and source product (the
-    leaves and products ranked as text, on their distinct values only).
+    codes; the history is never copied whole: its columns are read by row
+    positions into the sorted result, whose order is that of a stable sort by
+    leaf, period, origin and source product (the leaves and products ranked as
+    text, on their distinct values only; one packed integer key).
     """
     period = config.calendar.period
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
-    h = cleaned[LEAF + ["period_start", "quantity"]].reset_index(drop=True)
-    shortage = cleaned["shortage"].to_numpy(bool) if "shortage" in cleaned.columns else np.zeros(len(h), dtype=bool)
-    h_ord = period_ordinal(h["period_start"], period)
+    quantity = cleaned["quantity"].to_numpy(dtype=float)
+    starts = cleaned["period_start"].to_numpy()
+    n_rows = len(cleaned)
+    shortage = cleaned["shortage"].to_numpy(bool) if "shortage" in cleaned.columns else np.zeros(n_rows, dtype=bool)
+    h_ord = period_ordinal(cleaned["period_start"], period)
     s_from, s_to = span_bounds(spans, period)
     audits = []
 
     # --- per leaf: its span, and where its product is retired, the successor's leaf and span
-    leaf, leaves = factorize(h, LEAF)
-    lpos = lookup(leaves, LEAF, spans)[leaf]
-    inside = (lpos >= 0) & active_mask(s_from[np.clip(lpos, 0, None)], s_to[np.clip(lpos, 0, None)], h_ord)
-    audits.append(_audit(h[~inside], "outside_active_span", "history outside the customer's active span"))
+    leaf, leaves = leaf_codes(cleaned)
+
+    def rows_of(at: np.ndarray, keys: pd.DataFrame = leaves, key_of_row: np.ndarray | None = None) -> pd.DataFrame:
+        """The keys and quantity of the rows at positions `at` (an audit's input); keys of their own leaf unless
+        `key_of_row` gives each row's row of `keys`."""
+        return (
+            keys.iloc[leaf[at] if key_of_row is None else key_of_row]
+            .reset_index(drop=True)
+            .assign(quantity=quantity[at])
+        )
+
+    leaf_span = lookup(leaves, LEAF, spans)
+    at = np.clip(leaf_span, 0, None)  # each leaf's span bounds, then reached by the rows
+    inside = (leaf_span >= 0)[leaf] & active_mask(s_from[at][leaf], s_to[at][leaf], h_ord)
+    del h_ord
+    audits.append(
+        _audit(rows_of(np.flatnonzero(~inside)), "outside_active_span", "history outside the customer's active span")
+    )
 
     p_from, p_to = span_bounds(products, period)
     retired_products = products.loc[~np.isnan(p_to) & (p_to < cycle_ord), "product"]
@@ -126,7 +185,13 @@ def apply_lifecycle(
     leaf_has_target = leaf_target.notna().to_numpy()
     retired = inside & leaf_retired[leaf]
     no_successor = retired & ~leaf_has_target[leaf]
-    audits.append(_audit(h[no_successor], "retired_product_without_successor", "product retired before the cycle date"))
+    audits.append(
+        _audit(
+            rows_of(np.flatnonzero(no_successor)),
+            "retired_product_without_successor",
+            "product retired before the cycle date",
+        )
+    )
 
     targets = np.flatnonzero(leaf_has_target)  # leaves whose history moves; their new keys
     target_keys = leaves.iloc[targets].assign(product=leaf_target.iloc[targets].astype(str).to_numpy())
@@ -136,42 +201,47 @@ def apply_lifecycle(
     t_from, t_to = s_from[np.clip(tpos, 0, None)], s_to[np.clip(tpos, 0, None)]
     with np.errstate(invalid="ignore"):
         t_ok = (tpos >= 0) & (np.isnan(t_from) | (t_from <= horizon_end)) & (np.isnan(t_to) | (t_to >= cycle_ord))
-    target_of_leaf = np.full(len(leaves), -1, dtype=np.int64)
+    target_of_leaf = np.full(len(leaves), -1, dtype=_index_type(2 * len(leaves)))
     target_of_leaf[targets] = np.arange(len(targets))
     moving = retired & ~no_successor
-    row_target = target_of_leaf[leaf]
-    without_span = moving & ~t_ok[np.clip(row_target, 0, None)] if len(targets) else np.zeros(len(h), dtype=bool)
-    moved_rows = np.flatnonzero(moving & ~without_span)
-    lost = h[without_span]
+    moving_rows = np.flatnonzero(moving).astype(_index_type(n_rows))
+    row_target = target_of_leaf[leaf[moving_rows]]  # per moving row: its successor key
+    lost = ~t_ok[row_target] if len(targets) else np.zeros(0, dtype=bool)
     audits.append(
         _audit(
-            lost,
+            rows_of(moving_rows[lost]),
             "successor_without_span",
             "customer has no span active in the horizon on successor "
-            + target_keys["product"].to_numpy(dtype=object)[row_target[without_span]],
+            + target_keys["product"].to_numpy(dtype=object)[row_target[lost]],
         )
     )
-    moved = target_keys.iloc[row_target[moved_rows]].reset_index(drop=True)
-    moved["quantity"] = h["quantity"].to_numpy()[moved_rows]
+    moved_rows, moved_target = moving_rows[~lost], row_target[~lost]
     audits.append(
         _audit(
-            moved,
+            rows_of(moved_rows, target_keys, moved_target),
             "successor_history_mapped",
             "history of retired product " + leaves["product"].to_numpy(dtype=object)[leaf[moved_rows]],
         )
     )
 
     # --- the rows kept, own then moved (the order the stable sort keeps among equals); phased-out leaves leave
-    own_rows = np.flatnonzero(inside & ~retired)
+    own_rows = np.flatnonzero(inside & ~retired).astype(_index_type(n_rows))
+    del inside, retired, no_successor, moving
     rows = np.concatenate([own_rows, moved_rows])
     is_moved = np.concatenate([np.zeros(len(own_rows), dtype=bool), np.ones(len(moved_rows), dtype=bool)])
-    key = np.where(is_moved, len(leaves) + row_target[rows], leaf[rows])  # into own leaves, then target keys
-    key_span = np.concatenate([lookup(leaves, LEAF, spans), tpos])
-    phased_out = ~np.isnan(s_to[key_span[key]]) & (s_to[key_span[key]] < cycle_ord)
+    key = np.concatenate([leaf[own_rows], len(leaves) + moved_target])  # into own leaves, then target keys
+    del own_rows
+    key_end = s_to[np.concatenate([leaf_span, tpos])]
+    key_phased_out = ~np.isnan(key_end) & (key_end < cycle_ord)  # per key, not per row
+    phased_out = key_phased_out[key]
     all_keys = pd.concat([leaves, target_keys], ignore_index=True)
-    stacked = all_keys.iloc[key[phased_out]].reset_index(drop=True)
-    stacked["quantity"] = h["quantity"].to_numpy()[rows[phased_out]]
-    audits.append(_audit(stacked, "phased_out_before_cycle", "customer span ended before the cycle date"))
+    audits.append(
+        _audit(
+            rows_of(rows[phased_out], all_keys, key[phased_out]),
+            "phased_out_before_cycle",
+            "customer span ended before the cycle date",
+        )
+    )
     rows, is_moved, key = rows[~phased_out], is_moved[~phased_out], key[~phased_out]
 
     # --- sorted by leaf (as text), period, origin ("own" < "successor") and source product (as text)
@@ -179,15 +249,17 @@ def apply_lifecycle(
     rank = np.empty(len(distinct), dtype=np.int64)
     rank[distinct.sort_values(LEAF, kind="stable").index.to_numpy()] = np.arange(len(distinct))
     source_rank = pd.factorize(leaves["product"], sort=True)[0]
-    period_ns = h["period_start"].to_numpy(dtype="datetime64[ns]").view(np.int64)
-    order = np.lexsort((source_rank[leaf[rows]], is_moved, period_ns[rows], rank[key_code[key]]))
+    day_rank = pd.factorize(starts, sort=True)[0].astype(np.int32)  # period_start ranked on its distinct values
+    order = _sort_order(rank[key_code][key], day_rank[rows], is_moved, source_rank[leaf[rows]])
     rows, is_moved, key = rows[order], is_moved[order], key[order]
+    del order, day_rank
     out = all_keys.iloc[key].reset_index(drop=True)
-    out["period_start"] = h["period_start"].to_numpy()[rows]
-    out["quantity"] = h["quantity"].to_numpy()[rows]
-    out["origin"] = np.where(is_moved, "successor", "own").astype(object)
-    out["source_product"] = leaves["product"].to_numpy(dtype=object)[leaf[rows]]
-    out["source_customer"] = leaves["customer"].to_numpy(dtype=object)[leaf[rows]]
+    out["period_start"] = starts[rows]
+    out["quantity"] = quantity[rows]
+    out["origin"] = np.array(["own", "successor"], dtype=object)[is_moved.view(np.int8)]
+    source = leaf[rows]
+    out["source_product"] = leaves["product"].to_numpy(dtype=object)[source]
+    out["source_customer"] = leaves["customer"].to_numpy(dtype=object)[source]
     out["shortage"] = shortage[rows]
     audit = _stack(audits, AUDIT_COLUMNS)
     audit = audit.astype({"periods": np.int64, "quantity": float})

@@ -1,0 +1,224 @@
+"""Cleansing a block of leaves at a time: the dense leaf x period matrices of rules 2-7 of
+`pipelines.stages.cleaned_history`, held for one block only.
+
+Every rule of the cleansing is per series (a leaf's own periods), except the
+shortage flags, which go from a product x site to its children through a small
+parent x period matrix. So the leaves are cut into blocks of consecutive leaf
+codes, each block's lines are bucketed into dense float64 matrices, the rules
+run on them, and only the kept cells (compact arrays) and the correction rows
+leave the block. The memory of the dense part is bounded by `block_cells`
+(leaf x period cells per block), whatever the number of leaves; the results do
+not depend on the cut: each value is computed from its own row alone, lines
+are summed in the order they were read, and the correction rows are sorted by
+key at the end exactly as before.
+
+The arithmetic stays float64 (the published numbers: medians, limits and
+replacements in `history_corrections` rounded to 6 places; float32 would move
+them), which costs nothing at scale since only one block is dense at a time.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from pipelines.calendar import season_length
+from pipelines.engines.cleansing import correction_rows
+from pipelines.engines.outliers import judge_outliers, rolling_median, rule_parameters, seasonal_component
+
+BLOCK_CELLS = 2_000_000  # leaf x period cells per block: about 16 MB per float64 matrix, some 20 held at once
+
+
+@dataclass
+class Lines:
+    """The used lines, grouped by leaf code (stable: lines of a leaf keep the order they were read)."""
+
+    leaf: np.ndarray  # int64 leaf code per line, ascending
+    col: np.ndarray  # int32 grid column (period ordinal - first ordinal)
+    quantity: np.ndarray  # float64
+
+    @classmethod
+    def of(cls, leaf_code: np.ndarray, col: np.ndarray, quantity: np.ndarray) -> Lines:
+        order = np.argsort(leaf_code, kind="stable")
+        return cls(leaf_code[order], col[order], quantity[order])
+
+    def first_col(self, n_leaves: int) -> np.ndarray:
+        """Each leaf's first grid column with a line (every leaf has one)."""
+        if n_leaves == 0:
+            return np.zeros(0, dtype=np.int64)
+        starts = np.searchsorted(self.leaf, np.arange(n_leaves))
+        return np.minimum.reduceat(self.col, starts).astype(np.int64)
+
+    def block(self, a: int, b: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        lo, hi = np.searchsorted(self.leaf, [a, b])
+        return self.leaf[lo:hi] - a, self.col[lo:hi], self.quantity[lo:hi]
+
+
+@dataclass
+class Blocks:
+    """What leaves the blocks: the kept cells (in leaf code, then period order), the corrections, the figures."""
+
+    leaf: list = field(default_factory=list)
+    col: list = field(default_factory=list)
+    quantity: list = field(default_factory=list)
+    raw_quantity: list = field(default_factory=list)
+    lines: list = field(default_factory=list)
+    filled: list = field(default_factory=list)
+    corrected: list = field(default_factory=list)
+    shortage: list = field(default_factory=list)
+    corrections: list = field(default_factory=list)
+    seasonal_series: dict = field(default_factory=dict)
+    flagged: np.ndarray | None = None  # children flagged per parent and period (shortage records)
+
+    def cells(self) -> dict[str, np.ndarray]:
+        """The kept cells' columns, each one array (the block pieces freed as they are joined)."""
+        out = {}
+        for name, dtype in (
+            ("leaf", np.int64),
+            ("col", np.int32),
+            ("quantity", float),
+            ("raw_quantity", float),
+            ("lines", np.int64),
+            ("filled", bool),
+            ("corrected", bool),
+            ("shortage", bool),
+        ):
+            pieces = getattr(self, name)
+            out[name] = np.concatenate(pieces).astype(dtype, copy=False) if pieces else np.zeros(0, dtype=dtype)
+            pieces.clear()
+        return out
+
+
+@dataclass(frozen=True)
+class Grid:
+    """The period grid and each leaf's fill range and class (all leaves; small: a few numbers per leaf)."""
+
+    t: int  # periods: first history period .. cycle - 1
+    start: np.ndarray  # first grid column filled, per leaf
+    end: np.ndarray  # last grid column filled, per leaf
+    leaf_class: np.ndarray  # product class per leaf (object)
+    parent: np.ndarray  # parent code per leaf
+    short_by_parent: np.ndarray  # bool (n_parents, t): a shortage recorded on the parent in that period
+
+
+def clean_blocks(lines: Lines, grid: Grid, settings, block_cells: int = BLOCK_CELLS) -> Blocks:
+    """Rules 2-7 of the cleansing (bucketing to shortage handling), a block of leaves at a time."""
+    n, t = len(grid.start), grid.t
+    step = max(1, block_cells // max(t, 1))
+    out = Blocks()
+    flagged = np.zeros(grid.short_by_parent.shape, dtype=np.int64)
+    for a in range(0, n, step):  # a loop over blocks of leaves, not over series
+        b = min(n, a + step)
+        _clean_block(lines.block(a, b), a, b, grid, settings, out, flagged)
+    out.flagged = flagged
+    return out
+
+
+def _clean_block(block, a: int, b: int, grid: Grid, settings, out: Blocks, flagged: np.ndarray) -> None:
+    leaf, col, qty = block
+    t, nb = grid.t, b - a
+    cell = leaf * t + col
+    net = np.bincount(cell, weights=qty, minlength=nb * t).reshape(nb, t)
+    lines = np.bincount(cell, minlength=nb * t).reshape(nb, t)
+    observed = lines > 0
+    cols = np.arange(t)
+    keep = observed | ((cols >= grid.start[a:b, None]) & (cols <= grid.end[a:b, None]))
+
+    # returns: negative net periods to zero
+    raw_net = np.where(keep, net, np.nan)
+    values = raw_net.copy()
+    negative = observed & (net < 0)
+    rows_all = np.arange(a, b)
+    if negative.any():
+        out.corrections.append(
+            correction_rows(
+                negative, raw_net, np.zeros_like(raw_net), "negative_net_to_zero", {"rule": "net_then_zero"}, rows_all
+            )
+        )
+        values[negative] = 0.0
+    corrected = negative
+    del raw_net
+
+    # shortage periods: flagged on every child of the product x site
+    short = grid.short_by_parent[grid.parent[a:b]] & keep
+    si, sj = np.nonzero(short)
+    np.add.at(flagged, (grid.parent[a + si], sj), 1)
+
+    # per product class: outliers on the non-shortage periods, then the shortage rule
+    block_class = grid.leaf_class[a:b]
+    for name in sorted(pd.unique(block_class)):  # a loop over product classes, not over series
+        rows = np.flatnonzero(block_class == name)
+        x = _class_rules(values[rows], short[rows], name, rows + a, settings, out, corrected, rows)
+        values[rows] = x
+
+    li, pj = np.nonzero(keep)
+    out.leaf.append((li + a).astype(np.int64))
+    out.col.append(pj.astype(np.int32))
+    out.quantity.append(values[li, pj])
+    out.raw_quantity.append(net[li, pj])
+    out.lines.append(lines[li, pj])
+    out.filled.append(~observed[li, pj])
+    out.corrected.append(corrected[li, pj])
+    out.shortage.append(short[li, pj])
+
+
+def _class_rules(x, skip, name, leaf_index, settings, out: Blocks, corrected, rows) -> np.ndarray:
+    """The class's outlier rule then its shortage rule on the rows `x` of one block; returns the new values."""
+    pc = settings.product_class(name)
+    rule = pc.outlier_rule(settings.cleansing)
+    m = season_length(settings.calendar.period)
+    if rule.seasonal_adjust == "auto" and pc.models.seasonal:
+        s, adjusted, _ = seasonal_component(x, m, exclude=skip)
+    else:
+        s, adjusted = np.zeros_like(x), np.zeros(len(x), dtype=bool)
+    out.seasonal_series[name] = out.seasonal_series.get(name, 0) + int(adjusted.sum())
+    seasonal_figures = {"seasonal": np.where(adjusted[:, None], s, np.nan)}
+    params = rule_parameters(rule)
+
+    if rule.rule != "none":
+        j = judge_outliers(np.where(skip, np.nan, x - s), rule, s)
+        if j.flagged.any():
+            after = np.where(j.flagged, j.replacement, x)
+            out.corrections.append(
+                correction_rows(
+                    j.flagged, x, after, f"{rule.rule}_cap", params, leaf_index, j.figures | seasonal_figures, adjusted
+                )
+            )
+            corrected[rows] |= j.flagged
+            x = after
+        del j
+
+    if settings.cleansing.shortages == "fill_baseline" and skip.any():
+        short_rows = np.flatnonzero(skip.any(axis=1))  # only the series a shortage touches
+        base = np.full(x.shape, np.nan)
+        count = np.zeros(x.shape)
+        base[short_rows], count[short_rows] = rolling_median(np.where(skip, np.nan, x - s)[short_rows], rule.window)
+        filled = skip & ~np.isnan(base)
+        if filled.any():
+            after = np.where(filled, np.clip(base + s, 0.0, None), x)
+            fill_params = {"rule": "fill_baseline", "window": rule.window, "seasonal_adjust": rule.seasonal_adjust}
+            figures = {"median": base, "periods": count} | seasonal_figures
+            out.corrections.append(
+                correction_rows(filled, x, after, "shortage_fill", fill_params, leaf_index, figures, adjusted)
+            )
+            corrected[rows] |= filled
+            x = after
+    return x
+
+
+def class_summary(leaf_class: np.ndarray, settings, seasonal_series: dict) -> pd.DataFrame:
+    """Per product class: the outlier rule used, its series and how many were seasonally adjusted."""
+    summary = []
+    for name in sorted(pd.unique(leaf_class)):
+        rule = settings.product_class(name).outlier_rule(settings.cleansing)
+        summary.append(
+            {
+                "product_class": name,
+                **{"rule": rule.rule, **rule_parameters(rule)},
+                "series": int((leaf_class == name).sum()),
+                "seasonal_series": seasonal_series.get(name, 0),
+            }
+        )
+    return pd.DataFrame(summary)
