@@ -167,3 +167,101 @@ def compare(steps: list, args, tables: dict, config) -> dict:
     stage_seconds = sum(own) + forecast.wall_s - out["statsforecast_s"]
     windows = {name: pc.window for name, pc in config.product_classes.items()}
     return {"model_stage": out, "side_by_side": side_by_side(tables, windows, args.horizon, stage_seconds)}
+
+
+# ---------------------------------------------------------------- from a stored cycle, repeated
+STORED_STEPS = ("shares", "basis", "target", "choice", "forecast", "reconcile")
+COUNTED = {"shares", "target", "reconcile"}  # + the forecast stage without statsforecast, as `compare` counts
+
+
+def from_store(argv: list[str] | None = None) -> dict:
+    """The stages from `share_tables` to `reconciliation` on a stored cycle's tables, `--repeat` times, each run
+    beside the plain versions; the medians printed and written (`--json`).
+
+    The store is one written by `benchmarks/cycle.py --stages reconcile --store PATH` with the same `--leaves`,
+    `--periods` and `--horizon`; the stages run through their assets' own `run` and settings, as there.
+    """
+    import argparse
+    import json
+    import statistics
+    import sys
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    for path in (root, root / "benchmarks"):
+        if str(path) not in sys.path:
+            sys.path.insert(0, str(path))
+    from cycle_inputs import make_config
+    from cycle_measure import Bench, git_commit, load_average, patch_statsforecast, warm_up
+
+    from assets.factory import Partition, graph_order
+    from pipelines import definitions  # noqa: F401  (makes every stage asset)
+    from pipelines.store import read_table
+
+    p = argparse.ArgumentParser(description=from_store.__doc__)
+    p.add_argument("--store", required=True)
+    p.add_argument("--periods", type=int, default=156)
+    p.add_argument("--horizon", type=int, default=26)
+    p.add_argument("--repeat", type=int, default=3)
+    p.add_argument("--n-jobs", type=int, default=-1)
+    p.add_argument("--json", default=None)
+    args = p.parse_args(argv)
+    config = make_config(args.periods, args.horizon, False, None, "exclude", n_jobs=args.n_jobs)
+    load = {"start": load_average()}
+    bench = Bench(trace="off", sample_ms=0)
+    patch_statsforecast(bench)
+    warm_up(config, args.horizon)
+    names = {"cleaned_history": None, "share_tables": "shares", "period_basis": "basis",
+             "reinitialized_target": "target", "strategy_choice": "choice", "statistical_forecast": "forecast",
+             "reconciliation": "reconcile"}
+    specs = [s for s in graph_order() if names.get(s.tables[0].name)]
+    stored = {}
+    for spec in specs:
+        for name in spec.ins:
+            if name not in stored and name not in {t.name for s in specs for t in s.tables}:
+                stored[name] = read_table(args.store, name, versions="latest")
+    ids_s = None
+    if "leaf_id" not in stored["lifecycle_history"].columns:  # a store written before the ids: as the stage adds them
+        from pipelines.keys import add_ids
+
+        t0 = time.perf_counter()
+        add_ids(stored["lifecycle_history"])
+        ids_s = time.perf_counter() - t0
+        print(f"leaf and parent ids added to lifecycle_history (the lifecycle stage's part, not counted): "
+              f"{ids_s:.2f} s", flush=True)
+    part = Partition(config, config, "2026-11-30", "fast")
+    windows = {name: pc.window for name, pc in config.product_classes.items()}
+    runs = []
+    for i in range(args.repeat):
+        tables = dict(stored)
+        seconds = 0.0
+        for spec in specs:
+            step = names[spec.tables[0].name]
+            frames = {name: tables[name] for name in spec.ins}
+            sf_before = bench.sf_seconds
+            t0 = time.perf_counter()
+            result = spec.run(**frames, settings=spec.settings(part))
+            wall = time.perf_counter() - t0
+            if step in COUNTED or step == "forecast":
+                seconds += wall - (bench.sf_seconds - sf_before)
+            print(f"run {i + 1}: {step} {wall:.2f} s (statsforecast {bench.sf_seconds - sf_before:.2f} s)",
+                  flush=True)
+            tables.update(result.outputs)
+        runs.append(side_by_side(tables, windows, args.horizon, seconds))
+    load["end"] = load_average()
+    keys = ("stages_s", "duckdb_s", "numpy_s", "numpy_arithmetic_only_s", "stages_over_duckdb", "stages_over_numpy")
+    median = {k: statistics.median(r[k] for r in runs) for k in keys}
+    print("median of {} runs: stages {stages_s:.2f} s, DuckDB {duckdb_s:.2f} s ({stages_over_duckdb:.2f}x), numpy "
+          "{numpy_s:.2f} s ({stages_over_numpy:.2f}x; arithmetic alone {numpy_arithmetic_only_s:.3f} s)"
+          .format(len(runs), **median))
+    print("load average (1 / 5 / 15 min), start and end: " + "; ".join(
+        f"{v['load_1m']:.2f} / {v['load_5m']:.2f} / {v['load_15m']:.2f}" for v in load.values()))
+    out = {"store": args.store, "runs": runs, "median": median, "load": load, "commit": git_commit(),
+           "rows": {"lifecycle_history": len(stored["lifecycle_history"])}, "ids_added_s": ids_s}
+    if args.json:
+        Path(args.json).write_text(json.dumps(out, indent=2, default=str))
+    return out
+
+
+if __name__ == "__main__":
+    from_store()

@@ -51,7 +51,7 @@ from pipelines.engines.proofs import find_shares_not_summing_to_one
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.share_tuning import chosen_rules
 from pipelines.engines.shares import shortage_periods
-from pipelines.keys import LEAF, PARENT, factorize, lookup
+from pipelines.keys import LEAF, PARENT, coded, factorize
 from pipelines.results import CheckRows, Log, StageResult, quiet
 
 TARGET_COLUMNS = LEAF + ["period_start", "cycle_date", "target", "share", "parent_baseline", "zero_reason", "basis"]
@@ -68,7 +68,7 @@ def parent_baselines(
     window_used = np.zeros(n_parents, dtype=np.int64)
     window_used[parent_code] = shares["window_used"].to_numpy()
 
-    row_parent = lookup(history, PARENT, parents)
+    row_parent = coded(history).parent_rows(parents)
     ok = row_parent >= 0
     short = shortage_periods(history, settings.exclude_shortages)[ok]
     row_parent = row_parent[ok]

@@ -76,7 +76,7 @@ from pipelines.engines.models import ModelSettings, series_grid
 from pipelines.engines.proofs import find_negative, find_volume_after_phase_out, find_volume_outside_active_span
 from pipelines.engines.upper_levels import upper_level_checks, upper_levels_run
 from pipelines.errors import ConfigError
-from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
+from pipelines.keys import LEAF, PARENT, coded, factorize, first_rows
 from pipelines.progress import SeriesProgress
 from pipelines.results import CheckRows, Log, StageResult, quiet
 from pipelines.vocabulary import AUTO, Basis, ModelGrain, Strategy, ZeroReason, values
@@ -183,10 +183,11 @@ def forecast_cycle(
     qty = history["quantity"].to_numpy(float)
     strategies = strategy_by_class(settings, chosen)
 
-    p_code = lookup(history, PARENT, parents)
+    keys = coded(history)  # the history's leaf and parent ids, looked up by their distinct keys only
+    p_code = keys.parent_rows(parents)
     ok = p_code >= 0
     p_grid = series_grid(p_code[ok], ords[ok], qty[ok], n_parents, cycle_ord)
-    c_code = lookup(history, LEAF, children)
+    c_code = keys.leaf_rows(children)
     okc = c_code >= 0
     c_grid = series_grid(c_code[okc], ords[okc], qty[okc], n_children, cycle_ord)
     modes = sb.seasonality_in_effect(settings.seasonality, chosen_seasonality, settings.source)
