@@ -170,9 +170,9 @@ def ids_match_keys(frame: pd.DataFrame) -> pd.Series:
     parent_id and the parent key (product, site). Rows of a frame without the id columns pass.
     """
     ok = np.ones(len(frame), dtype=bool)
-    if LEAF_ID not in frame.columns or frame.empty:
-        return pd.Series(ok, index=frame.index)
     for id_col, cols in ((LEAF_ID, LEAF), (PARENT_ID, PARENT)):
+        if id_col not in frame.columns or frame.empty:
+            continue
         ids = frame[id_col].to_numpy(np.int64)
         unique = pd.Series(ids).drop_duplicates()
         first = np.zeros(int(ids.max()) + 1 if ids.min() >= 0 else 1, dtype=np.int64)
@@ -196,3 +196,19 @@ def row_ids(frame: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
         return frame[LEAF_ID].to_numpy(np.int64), frame[PARENT_ID].to_numpy(np.int64)
     leaf, parent = key_ids(frame)
     return leaf.astype(np.int64), parent.astype(np.int64)
+
+
+def rows_in(frame: pd.DataFrame, table: pd.DataFrame, cols: list[str] = LEAF) -> np.ndarray:
+    """Row position in `table` of each row's key in `frame` (-1 where absent), like `lookup`, but through the
+    integer id of the key (`leaf_id` for the leaf key, `parent_id` for the parent key) when both frames carry it.
+    `table` holds each id at most once.
+    """
+    id_col = {tuple(LEAF): LEAF_ID, tuple(PARENT): PARENT_ID}.get(tuple(cols))
+    if id_col is None or id_col not in frame.columns or id_col not in table.columns:
+        return lookup(frame, cols, table)
+    ids, held = frame[id_col].to_numpy(np.int64), table[id_col].to_numpy(np.int64)
+    if not len(ids) or not len(held):
+        return np.full(len(ids), -1, dtype=np.int64)
+    pos = np.full(max(int(ids.max()), int(held.max())) + 1, -1, dtype=np.int64)
+    pos[held] = np.arange(len(held))
+    return pos[ids]

@@ -170,12 +170,9 @@ class Shortages(_Strict):
 
 
 # ----------------------------------------------------------------- history
-class LeafIds(pa.DataFrameModel):
-    """The integer ids of the leaf and its parent, assigned once by the lifecycle stage (`pipelines.keys`)."""
+class ParentIds(pa.DataFrameModel):
+    """The integer id of the parent, assigned once by the lifecycle stage (`pipelines.keys`)."""
 
-    leaf_id: Optional[Series[np.int32]] = pa.Field(
-        ge=0, description="integer id of the leaf (product x site x customer), the same in every table of the cycle"
-    )
     parent_id: Optional[Series[np.int32]] = pa.Field(
         ge=0, description="integer id of the parent (product x site), the same in every table of the cycle"
     )
@@ -183,6 +180,14 @@ class LeafIds(pa.DataFrameModel):
     @pa.dataframe_check(description="one leaf_id per leaf key and one parent_id per parent key, and the reverse")
     def ids_match_keys(cls, df: pd.DataFrame) -> pd.Series:
         return ids_match_keys(df)
+
+
+class LeafIds(ParentIds):
+    """The integer ids of the leaf and its parent, assigned once by the lifecycle stage (`pipelines.keys`)."""
+
+    leaf_id: Optional[Series[np.int32]] = pa.Field(
+        ge=0, description="integer id of the leaf (product x site x customer), the same in every table of the cycle"
+    )
 
 
 class LeafPeriod(LeafKeys):
