@@ -204,11 +204,39 @@ def rows_in(frame: pd.DataFrame, table: pd.DataFrame, cols: list[str] = LEAF) ->
     `table` holds each id at most once.
     """
     id_col = {tuple(LEAF): LEAF_ID, tuple(PARENT): PARENT_ID}.get(tuple(cols))
-    if id_col is None or id_col not in frame.columns or id_col not in table.columns:
+    if id_col is None or id_col not in frame.columns:
         return lookup(frame, cols, table)
-    ids, held = frame[id_col].to_numpy(np.int64), table[id_col].to_numpy(np.int64)
+    ids = frame[id_col].to_numpy(np.int64)
+    if id_col not in table.columns:  # the distinct keys of `frame` looked up, then spread to its rows by id
+        return lookup(_keys_of_ids(frame, ids, cols), cols, table)[ids] if len(ids) else np.zeros(0, np.int64)
+    held = table[id_col].to_numpy(np.int64)
     if not len(ids) or not len(held):
         return np.full(len(ids), -1, dtype=np.int64)
     pos = np.full(max(int(ids.max()), int(held.max())) + 1, -1, dtype=np.int64)
     pos[held] = np.arange(len(held))
     return pos[ids]
+
+
+def key_rank(frame: pd.DataFrame, cols: list[str] = LEAF) -> np.ndarray:
+    """Per row, the rank of its `cols` key (LEAF or PARENT) in text order among the frame's keys: sorting or
+    grouping by it orders rows as the text keys would, but sorts the distinct keys only (through the rows' ids;
+    ids given after the history's, to children without history, need not follow the key order themselves).
+    """
+    id_col = LEAF_ID if cols == LEAF else PARENT_ID
+    if id_col not in frame.columns:
+        return factorize_sorted(frame, cols)
+    ids = frame[id_col].to_numpy(np.int64)
+    if not len(ids):
+        return ids
+    keys = _keys_of_ids(frame, ids, cols)
+    rank = np.empty(len(keys), dtype=np.int64)
+    rank[keys.sort_values(cols, kind="stable").index.to_numpy()] = np.arange(len(keys))
+    return rank[ids]
+
+
+def factorize_sorted(frame: pd.DataFrame, cols: list[str]) -> np.ndarray:
+    """Per row, the rank of its `cols` key in text order (coded from the text keys)."""
+    code, keys = factorize(frame, cols)
+    rank = np.empty(len(keys), dtype=np.int64)
+    rank[keys.sort_values(cols, kind="stable").index.to_numpy()] = np.arange(len(keys))
+    return rank[code]

@@ -51,7 +51,7 @@ from pipelines.engines.proofs import find_shares_not_summing_to_one
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.share_tuning import chosen_rules
 from pipelines.engines.shares import shortage_periods
-from pipelines.keys import LEAF, LEAF_ID, PARENT, PARENT_ID, coded, factorize
+from pipelines.keys import LEAF, LEAF_ID, PARENT, PARENT_ID, coded, factorize, key_rank
 from pipelines.results import CheckRows, Log, StageResult, quiet
 
 TARGET_COLUMNS = LEAF + ["period_start", "cycle_date", "target", "share", "parent_baseline", "zero_reason", "basis"]
@@ -131,8 +131,9 @@ def parents_with_mix_change(target: pd.DataFrame, shares: pd.DataFrame, toleranc
         return pd.DataFrame(
             columns=PARENT + ["first_change", "periods_with_change", "phasing_in", "phasing_out", "zero_periods"]
         )
-    t = target.sort_values(LEAF + ["period_start"], kind="stable")
-    previous = t.groupby(LEAF, sort=False)["share"].shift()
+    t = target.assign(leaf_rank=key_rank(target, LEAF))  # sorts as the text keys do, on integers
+    t = t.sort_values(["leaf_rank", "period_start"], kind="stable")
+    previous = t.groupby("leaf_rank", sort=False)["share"].shift()
     changed = (t["share"] - previous).abs() > tolerance
     change = t.loc[changed.to_numpy(), PARENT + ["period_start"]].drop_duplicates()
     per_parent = change.groupby(PARENT, sort=True).agg(
