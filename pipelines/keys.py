@@ -218,7 +218,7 @@ def rows_in(frame: pd.DataFrame, table: pd.DataFrame, cols: list[str] = LEAF) ->
 
 
 def key_rank(frame: pd.DataFrame, cols: list[str] = LEAF) -> np.ndarray:
-    """Per row, the rank of its `cols` key (LEAF or PARENT) in text order among the frame's keys: sorting or
+    """Per row, a rank of its `cols` key (LEAF or PARENT) in text order (not dense): sorting or
     grouping by it orders rows as the text keys would, but sorts the distinct keys only (through the rows' ids;
     ids given after the history's, to children without history, need not follow the key order themselves).
     """
