@@ -153,7 +153,8 @@ def side_by_side(
     }
     if stage_cpu is not None:
         out.update(stages_cpu_s=stage_cpu, duckdb_cpu_s=cpu1 - cpu0, numpy_cpu_s=cpu2 - cpu1)
-        out.update(stages_over_duckdb_cpu=stage_cpu / out["duckdb_cpu_s"], stages_over_numpy_cpu=stage_cpu / out["numpy_cpu_s"])
+        out["stages_over_duckdb_cpu"] = stage_cpu / out["duckdb_cpu_s"]
+        out["stages_over_numpy_cpu"] = stage_cpu / out["numpy_cpu_s"]
     print(
         f"side by side (share + reinitialize + split + reconcile): stages {stage_seconds:.2f} s, plain DuckDB SQL "
         f"{db_s:.2f} s ({out['stages_over_duckdb']:.1f}x), numpy {np_s:.2f} s ({out['stages_over_numpy']:.1f}x; "
@@ -161,8 +162,9 @@ def side_by_side(
         f"numpy {np_worst:.1e}"
     )
     if stage_cpu is not None:
-        print(f"  cpu: stages {stage_cpu:.2f} s, DuckDB {out['duckdb_cpu_s']:.2f} s ({out['stages_over_duckdb_cpu']:.1f}x), "
-              f"numpy {out['numpy_cpu_s']:.2f} s ({out['stages_over_numpy_cpu']:.1f}x)")
+        print(f"  cpu: stages {stage_cpu:.2f} s, DuckDB {out['duckdb_cpu_s']:.2f} s "
+              f"({out['stages_over_duckdb_cpu']:.1f}x), numpy {out['numpy_cpu_s']:.2f} s "
+              f"({out['stages_over_numpy_cpu']:.1f}x)")
     return out
 
 
@@ -261,8 +263,8 @@ def from_store(argv: list[str] | None = None) -> dict:
             if step in COUNTED or step == "forecast":
                 seconds += wall - (bench.sf_seconds - sf_before)
                 cpu += used - (sf_cpu[0] - sf_cpu_before)
-            print(f"run {i + 1}: {step} {wall:.2f} s, cpu {used:.2f} s (statsforecast {bench.sf_seconds - sf_before:.2f}"
-                  f" s, cpu {sf_cpu[0] - sf_cpu_before:.2f} s)", flush=True)
+            print(f"run {i + 1}: {step} {wall:.2f} s, cpu {used:.2f} s (statsforecast "
+                  f"{bench.sf_seconds - sf_before:.2f} s, cpu {sf_cpu[0] - sf_cpu_before:.2f} s)", flush=True)
             tables.update(result.outputs)
         runs.append(side_by_side(tables, windows, args.horizon, seconds, cpu))
     load["end"] = load_average()

@@ -240,3 +240,8 @@ def factorize_sorted(frame: pd.DataFrame, cols: list[str]) -> np.ndarray:
     rank = np.empty(len(keys), dtype=np.int64)
     rank[keys.sort_values(cols, kind="stable").index.to_numpy()] = np.arange(len(keys))
     return rank[code]
+
+
+def ids_in(frame: pd.DataFrame, wanted: tuple[str, ...] = (LEAF_ID, PARENT_ID)) -> list[str]:
+    """The id columns of `wanted` that `frame` carries (a frame made before the ids, or by hand, has none)."""
+    return [c for c in wanted if c in frame.columns]

@@ -9,18 +9,7 @@ import pandas as pd
 import pandera.errors
 import pytest
 
-from pipelines.keys import (
-    LEAF,
-    PARENT,
-    add_ids,
-    coded,
-    extend_ids,
-    ids_match_keys,
-    key_ids,
-    key_rank,
-    lookup,
-    rows_in,
-)
+from pipelines.keys import LEAF, PARENT, add_ids, coded, extend_ids, ids_match_keys, key_ids, key_rank, lookup, rows_in
 
 
 def _history() -> pd.DataFrame:

@@ -76,7 +76,7 @@ from pipelines.engines.models import ModelSettings, series_grid
 from pipelines.engines.proofs import find_negative, find_volume_after_phase_out, find_volume_outside_active_span
 from pipelines.engines.upper_levels import upper_level_checks, upper_levels_run
 from pipelines.errors import ConfigError
-from pipelines.keys import LEAF, LEAF_ID, PARENT, PARENT_ID, coded, factorize, first_rows
+from pipelines.keys import LEAF, PARENT, PARENT_ID, coded, factorize, first_rows, ids_in
 from pipelines.progress import SeriesProgress
 from pipelines.results import CheckRows, Log, StageResult, quiet
 from pipelines.vocabulary import AUTO, Basis, ModelGrain, Strategy, ZeroReason, values
@@ -178,9 +178,8 @@ def forecast_cycle(
     children = children.reset_index(drop=True)
     parent_of_child, parents = factorize(children, PARENT)
     parents["product_class"] = children["product_class"].to_numpy()[first_rows(parent_of_child)]
-    ids = [c for c in (LEAF_ID, PARENT_ID) if c in children.columns]  # carried from the share table
-    if PARENT_ID in ids:
-        parents[PARENT_ID] = children[PARENT_ID].to_numpy()[first_rows(parent_of_child)]
+    ids, parent_ids = ids_in(children), ids_in(children, (PARENT_ID,))  # carried from the share table
+    parents[parent_ids] = children[parent_ids].to_numpy()[first_rows(parent_of_child)]
     n_parents, n_children = len(parents), len(children)
     ords = period_ordinal(history["period_start"], period)
     qty = history["quantity"].to_numpy(float)
@@ -245,7 +244,6 @@ def forecast_cycle(
         ModelGrain.BOTH,
     )
 
-    parent_ids = [PARENT_ID] if PARENT_ID in ids else []
     parent_out = parents[PARENT + parent_ids].iloc[np.repeat(np.arange(n_parents), horizon)].reset_index(drop=True)
     parent_out.insert(0, "product_class", np.repeat(parents["product_class"].to_numpy(), horizon))
     parent_out.insert(0, "cycle_date", cycle_date)
@@ -312,8 +310,7 @@ def run(
 ) -> StageResult:
     """parent_forecast, statistical_forecast, forecast_models and forecast_fitted_values, and the forecast's checks."""
     cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
-    columns = ["product", "site", "customer", "product_class", "first_active_period", "last_active_period"]
-    columns += [c for c in (LEAF_ID, PARENT_ID) if c in share_tables.columns]
+    columns = [*LEAF, "product_class", "first_active_period", "last_active_period", *ids_in(share_tables)]
     chosen = dict(zip(strategy_choice["product_class"], strategy_choice["strategy"], strict=False))
     seasonality = strategy_choice.get("seasonality", pd.Series("", index=strategy_choice.index))
     chosen_seasonality = dict(zip(strategy_choice["product_class"], seasonality, strict=False))
