@@ -238,9 +238,11 @@ def from_store(argv: list[str] | None = None) -> dict:
             if name not in stored and name not in {t.name for s in specs for t in s.tables}:
                 stored[name] = read_table(args.store, name, versions="latest")
     ids_s = None
-    if "leaf_id" not in stored["lifecycle_history"].columns:  # a store written before the ids: as the stage adds them
+    try:  # a release before the ids has no add_ids: its stages code the text keys themselves
         from pipelines.keys import add_ids
-
+    except ImportError:
+        add_ids = None
+    if add_ids and "leaf_id" not in stored["lifecycle_history"].columns:  # a store written before the ids
         t0 = time.perf_counter()
         add_ids(stored["lifecycle_history"])
         ids_s = time.perf_counter() - t0
