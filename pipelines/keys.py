@@ -192,7 +192,7 @@ def ids_match_keys(frame: pd.DataFrame) -> pd.Series:
 
 def row_ids(frame: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
     """(leaf_id, parent_id) of every row as int64: its id columns, or `key_ids` of its text keys without them."""
-    if LEAF_ID in frame.columns and PARENT_ID in frame.columns:
+    if len(ids_in(frame)) == 2:
         return frame[LEAF_ID].to_numpy(np.int64), frame[PARENT_ID].to_numpy(np.int64)
     leaf, parent = key_ids(frame)
     return leaf.astype(np.int64), parent.astype(np.int64)
@@ -204,10 +204,10 @@ def rows_in(frame: pd.DataFrame, table: pd.DataFrame, cols: list[str] = LEAF) ->
     `table` holds each id at most once.
     """
     id_col = {tuple(LEAF): LEAF_ID, tuple(PARENT): PARENT_ID}.get(tuple(cols))
-    if id_col is None or id_col not in frame.columns:
+    if id_col is None or not ids_in(frame, (id_col,)):
         return lookup(frame, cols, table)
     ids = frame[id_col].to_numpy(np.int64)
-    if id_col not in table.columns:  # the distinct keys of `frame` looked up, then spread to its rows by id
+    if not ids_in(table, (id_col,)):  # the distinct keys of `frame` looked up, then spread to its rows by id
         return lookup(_keys_of_ids(frame, ids, cols), cols, table)[ids] if len(ids) else np.zeros(0, np.int64)
     held = table[id_col].to_numpy(np.int64)
     if not len(ids) or not len(held):
@@ -223,7 +223,7 @@ def key_rank(frame: pd.DataFrame, cols: list[str] = LEAF) -> np.ndarray:
     ids given after the history's, to children without history, need not follow the key order themselves).
     """
     id_col = LEAF_ID if cols == LEAF else PARENT_ID
-    if id_col not in frame.columns:
+    if not ids_in(frame, (id_col,)):
         return factorize_sorted(frame, cols)
     ids = frame[id_col].to_numpy(np.int64)
     if not len(ids):
@@ -243,5 +243,6 @@ def factorize_sorted(frame: pd.DataFrame, cols: list[str]) -> np.ndarray:
 
 
 def ids_in(frame: pd.DataFrame, wanted: tuple[str, ...] = (LEAF_ID, PARENT_ID)) -> list[str]:
-    """The id columns of `wanted` that `frame` carries (a frame made before the ids, or by hand, has none)."""
-    return [c for c in wanted if c in frame.columns]
+    """The id columns of `wanted` that `frame` carries whole (a frame made before the ids, or by hand, has none;
+    a partition stored before them, read under the table's widened schema, has them blank: not carried)."""
+    return [c for c in wanted if c in frame.columns and not frame[c].isna().any()]

@@ -118,3 +118,11 @@ def test_reconciliation_on_ids_equals_reconciliation_on_text_keys():
     on_text = reconcile(parent.drop(columns="parent_id"), leaf.drop(columns="parent_id"))
     pd.testing.assert_frame_equal(on_ids, on_text)
     assert on_ids["product"].tolist() == ["A", "B", "C"] and on_ids["children_sum"].tolist() == [3.0, 0.0, 4.0]
+
+
+def test_blank_ids_of_a_partition_stored_before_them_are_not_read():
+    # the store widens a table's schema: a partition written before the ids reads them back blank
+    h = _history().assign(leaf_id=np.nan, parent_id=np.nan)
+    assert coded(h).leaf.tolist() == [3, 2, 1, 0, 1, 3]  # coded from the text keys instead
+    table = pd.DataFrame({"product": ["A"], "site": ["S2"], "customer": ["c1"], "leaf_id": [2], "parent_id": [1]})
+    assert rows_in(h, table, LEAF).tolist() == [-1, 0, -1, -1, -1, -1]

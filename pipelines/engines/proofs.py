@@ -12,7 +12,7 @@ import pandas as pd
 
 from pipelines.calendar import period_ordinal, span_bounds
 from pipelines.checks import SHARE_TOLERANCE
-from pipelines.keys import LEAF, PARENT, PARENT_ID, key_rank, lookup, rows_in
+from pipelines.keys import LEAF, PARENT, PARENT_ID, ids_in, key_rank, lookup, rows_in
 
 
 def find_shares_not_summing_to_one(target: pd.DataFrame, tolerance: float = SHARE_TOLERANCE) -> pd.DataFrame:
@@ -28,7 +28,7 @@ def find_shares_not_summing_to_one(target: pd.DataFrame, tolerance: float = SHAR
     )
     # on the rank of the parent key, from the parent ids where the table carries them: the same groups in the
     # same order as the text keys give
-    by_id = PARENT_ID in t.columns
+    by_id = bool(ids_in(t, (PARENT_ID,)))
     text = {c: (c, "first") for c in PARENT} if by_id else {}
     if by_id:
         t["parent_rank"] = key_rank(t, PARENT)

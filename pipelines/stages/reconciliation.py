@@ -31,7 +31,7 @@ import pandas as pd
 from pipelines.checks import CHILDREN_SUM_TO_PARENT, EVERY_ACTIVE_PARENT_HAS_CHILDREN, RELATIVE_TOLERANCE
 from pipelines.engines.proofs import find_active_parents_without_children
 from pipelines.errors import PlanningError
-from pipelines.keys import PARENT, PARENT_ID
+from pipelines.keys import PARENT, PARENT_ID, ids_in
 from pipelines.results import CheckRows, Log, StageResult, quiet
 
 KEY = PARENT + ["period_start"]
@@ -64,7 +64,7 @@ def reconcile(parent: pd.DataFrame, leaf: pd.DataFrame) -> pd.DataFrame:
             "rebuild statistical_forecast and downstream (`python -m pipelines rebuild --from statistical_forecast`)."
         )
     # grouped on the integer parent id where both tables carry it (the same groups, in the same order)
-    key = [PARENT_ID, "period_start"] if PARENT_ID in parent.columns and PARENT_ID in leaf.columns else KEY
+    key = [PARENT_ID, "period_start"] if ids_in(parent, (PARENT_ID,)) and ids_in(leaf, (PARENT_ID,)) else KEY
     text = {f"leaf_{c}": (c, "first") for c in PARENT if c not in key}
     sums = (
         leaf.groupby(key, sort=False, observed=True)

@@ -51,7 +51,7 @@ from pipelines.engines.proofs import find_shares_not_summing_to_one
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.share_tuning import chosen_rules
 from pipelines.engines.shares import shortage_periods
-from pipelines.keys import LEAF, LEAF_ID, PARENT, PARENT_ID, coded, factorize, key_rank
+from pipelines.keys import LEAF, PARENT, coded, factorize, ids_in, key_rank
 from pipelines.results import CheckRows, Log, StageResult, quiet
 
 TARGET_COLUMNS = LEAF + ["period_start", "cycle_date", "target", "share", "parent_baseline", "zero_reason", "basis"]
@@ -108,7 +108,7 @@ def reinitialize_target(
     baseline = parent_baselines(shares, history, settings, cycle_date)
     stored = None if period_basis is None else stored_basis(shares, period_basis, starts)
     share, reason, basis = period_shares(shares, settings, cycle_date, products, history, basis=stored)
-    ids = [c for c in (LEAF_ID, PARENT_ID) if c in shares.columns]  # carried from the share table
+    ids = ids_in(shares)  # carried from the share table
     out = shares[LEAF + ids].iloc[np.repeat(np.arange(len(shares)), h)].reset_index(drop=True)
     out["period_start"] = np.tile(starts.values, len(shares))
     out["cycle_date"] = cycle_date
