@@ -129,10 +129,19 @@ def _codes(frame: pd.DataFrame, cols: list[str]) -> tuple[np.ndarray, pd.DataFra
     return codes, frame[cols].iloc[first].reset_index(drop=True)
 
 
-def side_by_side(tables: dict, windows: dict[str, int], horizon: int, stage_seconds: float) -> dict:
-    """Each version's seconds and the stages' / version ratio, printed and returned."""
+def side_by_side(
+    tables: dict, windows: dict[str, int], horizon: int, stage_seconds: float, stage_cpu: float | None = None
+) -> dict:
+    """Each version's seconds and the stages' / version ratio, printed and returned.
+
+    stage_cpu: the stages' CPU seconds (this process, every thread); with it the versions' CPU seconds and the
+    ratio of CPU are given too, which a loaded machine moves less than wall time.
+    """
+    cpu0 = time.process_time()
     db_s, db_worst = duckdb_version(tables, windows, horizon)
+    cpu1 = time.process_time()
     np_s, np_arith_s, np_worst = numpy_version(tables, windows, horizon)
+    cpu2 = time.process_time()
     out = {
         "stages_s": stage_seconds,
         "duckdb_s": db_s,
@@ -142,12 +151,20 @@ def side_by_side(tables: dict, windows: dict[str, int], horizon: int, stage_seco
         "stages_over_numpy": stage_seconds / np_s,
         "largest_relative_difference": {"duckdb": db_worst, "numpy": np_worst},
     }
+    if stage_cpu is not None:
+        out.update(stages_cpu_s=stage_cpu, duckdb_cpu_s=cpu1 - cpu0, numpy_cpu_s=cpu2 - cpu1)
+        out["stages_over_duckdb_cpu"] = stage_cpu / out["duckdb_cpu_s"]
+        out["stages_over_numpy_cpu"] = stage_cpu / out["numpy_cpu_s"]
     print(
         f"side by side (share + reinitialize + split + reconcile): stages {stage_seconds:.2f} s, plain DuckDB SQL "
         f"{db_s:.2f} s ({out['stages_over_duckdb']:.1f}x), numpy {np_s:.2f} s ({out['stages_over_numpy']:.1f}x; "
         f"arithmetic alone on coded keys {np_arith_s:.3f} s); reconcile difference DuckDB {db_worst:.1e}, "
         f"numpy {np_worst:.1e}"
     )
+    if stage_cpu is not None:
+        print(f"  cpu: stages {stage_cpu:.2f} s, DuckDB {out['duckdb_cpu_s']:.2f} s "
+              f"({out['stages_over_duckdb_cpu']:.1f}x), numpy {out['numpy_cpu_s']:.2f} s "
+              f"({out['stages_over_numpy_cpu']:.1f}x)")
     return out
 
 
@@ -167,3 +184,127 @@ def compare(steps: list, args, tables: dict, config) -> dict:
     stage_seconds = sum(own) + forecast.wall_s - out["statsforecast_s"]
     windows = {name: pc.window for name, pc in config.product_classes.items()}
     return {"model_stage": out, "side_by_side": side_by_side(tables, windows, args.horizon, stage_seconds)}
+
+
+# ---------------------------------------------------------------- from a stored cycle, repeated
+STORED_STEPS = ("shares", "basis", "target", "choice", "forecast", "reconcile")
+COUNTED = {"shares", "target", "reconcile"}  # + the forecast stage without statsforecast, as `compare` counts
+
+
+def from_store(argv: list[str] | None = None) -> dict:
+    """The stages from `share_tables` to `reconciliation` on a stored cycle's tables, `--repeat` times, each run
+    beside the plain versions; the medians printed and written (`--json`).
+
+    The store is one written by `benchmarks/cycle.py --stages reconcile --store PATH` with the same `--leaves`,
+    `--periods` and `--horizon`; the stages run through their assets' own `run` and settings, as there.
+    """
+    import argparse
+    import json
+    import statistics
+    import sys
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    for path in (root, root / "benchmarks"):
+        if str(path) not in sys.path:
+            sys.path.insert(0, str(path))
+    from cycle_inputs import make_config
+    from cycle_measure import Bench, git_commit, load_average, patch_statsforecast, warm_up
+
+    from assets.factory import Partition, graph_order
+    from pipelines import definitions  # noqa: F401  (makes every stage asset)
+    from pipelines.store import read_table
+
+    p = argparse.ArgumentParser(description=from_store.__doc__)
+    p.add_argument("--store", required=True)
+    p.add_argument("--periods", type=int, default=156)
+    p.add_argument("--horizon", type=int, default=26)
+    p.add_argument("--repeat", type=int, default=3)
+    p.add_argument("--n-jobs", type=int, default=-1)
+    p.add_argument("--json", default=None)
+    args = p.parse_args(argv)
+    config = make_config(args.periods, args.horizon, False, None, "exclude", n_jobs=args.n_jobs)
+    load = {"start": load_average()}
+    bench = Bench(trace="off", sample_ms=0)
+    patch_statsforecast(bench)
+    warm_up(config, args.horizon)
+    names = {"cleaned_history": None, "share_tables": "shares", "period_basis": "basis",
+             "reinitialized_target": "target", "strategy_choice": "choice", "statistical_forecast": "forecast",
+             "reconciliation": "reconcile"}
+    specs = [s for s in graph_order() if names.get(s.tables[0].name)]
+    stored = {}
+    for spec in specs:
+        for name in spec.ins:
+            if name not in stored and name not in {t.name for s in specs for t in s.tables}:
+                stored[name] = read_table(args.store, name, versions="latest")
+    ids_s = None
+    try:  # a release before the ids has no add_ids: its stages code the text keys themselves
+        from pipelines.keys import add_ids
+    except ImportError:
+        add_ids = None
+    if add_ids and "leaf_id" not in stored["lifecycle_history"].columns:  # a store written before the ids
+        t0 = time.perf_counter()
+        add_ids(stored["lifecycle_history"])
+        ids_s = time.perf_counter() - t0
+        print(f"leaf and parent ids added to lifecycle_history (the lifecycle stage's part, not counted): "
+              f"{ids_s:.2f} s", flush=True)
+    part = Partition(config, config, "2026-11-30", "fast")
+    windows = {name: pc.window for name, pc in config.product_classes.items()}
+    sf_cpu = _cpu_inside_statsforecast()
+    runs = []
+    for i in range(args.repeat):
+        tables = dict(stored)
+        seconds = cpu = 0.0
+        for spec in specs:
+            step = names[spec.tables[0].name]
+            frames = {name: tables[name] for name in spec.ins}
+            sf_before, sf_cpu_before = bench.sf_seconds, sf_cpu[0]
+            t0, c0 = time.perf_counter(), time.process_time()
+            result = spec.run(**frames, settings=spec.settings(part))
+            wall, used = time.perf_counter() - t0, time.process_time() - c0
+            if step in COUNTED or step == "forecast":
+                seconds += wall - (bench.sf_seconds - sf_before)
+                cpu += used - (sf_cpu[0] - sf_cpu_before)
+            print(f"run {i + 1}: {step} {wall:.2f} s, cpu {used:.2f} s (statsforecast "
+                  f"{bench.sf_seconds - sf_before:.2f} s, cpu {sf_cpu[0] - sf_cpu_before:.2f} s)", flush=True)
+            tables.update(result.outputs)
+        runs.append(side_by_side(tables, windows, args.horizon, seconds, cpu))
+    load["end"] = load_average()
+    keys = ("stages_s", "duckdb_s", "numpy_s", "numpy_arithmetic_only_s", "stages_over_duckdb", "stages_over_numpy",
+            "stages_cpu_s", "duckdb_cpu_s", "numpy_cpu_s", "stages_over_duckdb_cpu", "stages_over_numpy_cpu")
+    median = {k: statistics.median(r[k] for r in runs) for k in keys}
+    print("median of {} runs: stages {stages_s:.2f} s, DuckDB {duckdb_s:.2f} s ({stages_over_duckdb:.2f}x), numpy "
+          "{numpy_s:.2f} s ({stages_over_numpy:.2f}x; arithmetic alone {numpy_arithmetic_only_s:.3f} s)"
+          .format(len(runs), **median))
+    print("median cpu: stages {stages_cpu_s:.2f} s, DuckDB {duckdb_cpu_s:.2f} s ({stages_over_duckdb_cpu:.2f}x), numpy "
+          "{numpy_cpu_s:.2f} s ({stages_over_numpy_cpu:.2f}x)".format(**median))
+    print("load average (1 / 5 / 15 min), start and end: " + "; ".join(
+        f"{v['load_1m']:.2f} / {v['load_5m']:.2f} / {v['load_15m']:.2f}" for v in load.values()))
+    out = {"store": args.store, "runs": runs, "median": median, "load": load, "commit": git_commit(),
+           "rows": {"lifecycle_history": len(stored["lifecycle_history"])}, "ids_added_s": ids_s}
+    if args.json:
+        Path(args.json).write_text(json.dumps(out, indent=2, default=str))
+    return out
+
+
+def _cpu_inside_statsforecast() -> list[float]:
+    """A one-item list that accumulates this process's CPU seconds inside StatsForecast's calls (wrapped here)."""
+    import statsforecast
+
+    total = [0.0]
+    for method in ("fit", "predict", "forecast"):
+        original = getattr(statsforecast.StatsForecast, method)
+
+        def timed(self, *args, _original=original, **kwargs):
+            c0 = time.process_time()
+            try:
+                return _original(self, *args, **kwargs)
+            finally:
+                total[0] += time.process_time() - c0
+
+        setattr(statsforecast.StatsForecast, method, timed)
+    return total
+
+
+if __name__ == "__main__":
+    from_store()

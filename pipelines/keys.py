@@ -65,3 +65,184 @@ def lookup(df: pd.DataFrame, cols: list[str], table: pd.DataFrame) -> np.ndarray
     left = pd.MultiIndex.from_frame(df[cols]) if len(cols) > 1 else pd.Index(df[cols[0]])
     right = pd.MultiIndex.from_frame(table[cols]) if len(cols) > 1 else pd.Index(table[cols[0]])
     return right.get_indexer(left)
+
+
+# ------------------------------------------------------------------ integer ids carried between the stages
+LEAF_ID, PARENT_ID = "leaf_id", "parent_id"
+ID_DTYPE = np.int32
+
+
+def key_ids(frame: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """(leaf_id, parent_id) of every row: the rank of its leaf key and of its parent key among the frame's
+    distinct keys, in key order (product, then site, then customer, as text), int32.
+
+    The lifecycle stage assigns them once to its history; the later stages group and join on them and
+    touch the text keys only at the edges (`coded`, the output columns). Ids in key order make a frame
+    sorted by leaf key sorted by leaf_id, and the parent of a run of leaf ids one run of parent ids.
+    """
+    if frame.empty:
+        return np.zeros(0, ID_DTYPE), np.zeros(0, ID_DTYPE)
+    code, leaves = factorize(frame, LEAF)
+    leaf_rank, parent_of_rank = _ranks(leaves)
+    return leaf_rank[code].astype(ID_DTYPE), parent_of_rank[leaf_rank[code]].astype(ID_DTYPE)
+
+
+def _ranks(leaves: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """(rank of each distinct leaf in key order, parent rank of each leaf rank)."""
+    ordered = leaves.sort_values(LEAF, kind="stable")
+    rank = np.empty(len(leaves), dtype=np.int64)
+    rank[ordered.index.to_numpy()] = np.arange(len(leaves))
+    product, site = ordered["product"].to_numpy(object), ordered["site"].to_numpy(object)
+    new_parent = np.ones(len(leaves), dtype=bool)
+    new_parent[1:] = (product[1:] != product[:-1]) | (site[1:] != site[:-1])
+    return rank, np.cumsum(new_parent) - 1
+
+
+def extend_ids(children: pd.DataFrame, history: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """(leaf_id, parent_id) of each row of `children` (leaf keys): the history's ids where its leaf or parent
+    has history, else new ids after the history's, in key order (a new customer, a parent with no history).
+
+    The share table carries them; the stages after it read its ids.
+    """
+    c = coded(history)
+    leaf = lookup(children, LEAF, c.leaves)
+    parent = lookup(children, PARENT, c.parents)
+    for ids, cols, base in ((leaf, LEAF, len(c.leaves)), (parent, PARENT, len(c.parents))):
+        new = np.flatnonzero(ids < 0)
+        if len(new):
+            code, keys = factorize(children.iloc[new], cols)
+            order = keys.sort_values(cols, kind="stable").index.to_numpy()
+            rank = np.empty(len(keys), dtype=np.int64)
+            rank[order] = np.arange(len(keys))
+            ids[new] = base + rank[code]
+    return leaf.astype(ID_DTYPE), parent.astype(ID_DTYPE)
+
+
+class Coded:
+    """A frame's leaf and parent ids (from its `leaf_id` / `parent_id` columns, or coded from its text keys
+    when it has none), and the text key of every id: the one place the stages go from ids to keys.
+
+    `leaf_rows(table)` / `parent_rows(table)`: the position in `table` (a small frame of keys, e.g. the
+    share table) of each row's leaf / parent, -1 where absent, found by looking up the distinct keys only.
+    """
+
+    def __init__(self, frame: pd.DataFrame):
+        self.leaf, self.parent = row_ids(frame)
+        self.leaves = _keys_of_ids(frame, self.leaf, LEAF)
+        self.parents = _keys_of_ids(frame, self.parent, PARENT)
+
+    def leaf_rows(self, table: pd.DataFrame) -> np.ndarray:
+        return lookup(self.leaves, LEAF, table)[self.leaf] if len(self.leaf) else np.zeros(0, np.int64)
+
+    def parent_rows(self, table: pd.DataFrame) -> np.ndarray:
+        return lookup(self.parents, PARENT, table)[self.parent] if len(self.parent) else np.zeros(0, np.int64)
+
+
+def coded(frame: pd.DataFrame) -> Coded:
+    return Coded(frame)
+
+
+def _keys_of_ids(frame: pd.DataFrame, ids: np.ndarray, cols: list[str]) -> pd.DataFrame:
+    """The `cols` key of ids 0..max (rows of `frame`; an id no row holds gets the keys of none: empty text)."""
+    n = int(ids.max()) + 1 if len(ids) else 0
+    if len(ids) > 1 and bool(np.all(ids[1:] >= ids[:-1])):  # sorted by id: each id's first row is where it changes
+        first = np.flatnonzero(np.r_[True, ids[1:] != ids[:-1]])
+        held = ids[first]
+    else:
+        unique = pd.Series(ids).drop_duplicates()
+        first, held = unique.index.to_numpy(), unique.to_numpy()
+    out = {}
+    for c in cols:  # column by column: `frame[cols]` would copy every row first
+        values = np.full(n, "", dtype=object)
+        values[held] = frame[c].to_numpy(object)[first]
+        out[c] = values
+    return pd.DataFrame(out)
+
+
+def add_ids(frame: pd.DataFrame) -> pd.DataFrame:
+    """`frame` (a stage's own new frame) with its `leaf_id` and `parent_id` columns set by `key_ids`, in place."""
+    frame[LEAF_ID], frame[PARENT_ID] = key_ids(frame)
+    return frame
+
+
+def ids_match_keys(frame: pd.DataFrame) -> pd.Series:
+    """Per row: its leaf_id is held by no other leaf key and its key by no other leaf_id, and the same for
+    parent_id and the parent key (product, site). Rows of a frame without the id columns pass.
+    """
+    ok = np.ones(len(frame), dtype=bool)
+    for id_col, cols in ((LEAF_ID, LEAF), (PARENT_ID, PARENT)):
+        if id_col not in frame.columns or frame.empty:
+            continue
+        ids = frame[id_col].to_numpy(np.int64)
+        unique = pd.Series(ids).drop_duplicates()
+        first = np.zeros(int(ids.max()) + 1 if ids.min() >= 0 else 1, dtype=np.int64)
+        if ids.min() < 0:
+            return pd.Series(ids >= 0, index=frame.index)  # the column's own check names these rows
+        first[unique.to_numpy()] = unique.index.to_numpy()
+        same = np.ones(len(frame), dtype=bool)
+        for c in cols:  # one key per id: every row holds the key of its id's first row
+            values = frame[c].to_numpy(object)
+            same &= values == values[first[ids]]
+        keys = frame[cols].iloc[unique.index.to_numpy()]
+        shared = keys.duplicated(keep=False).to_numpy()  # one id per key: two ids' first rows never share a key
+        bad_ids = unique.to_numpy()[shared]
+        ok &= same & ~np.isin(ids, bad_ids)
+    return pd.Series(ok, index=frame.index)
+
+
+def row_ids(frame: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """(leaf_id, parent_id) of every row as int64: its id columns, or `key_ids` of its text keys without them."""
+    if len(ids_in(frame)) == 2:
+        return frame[LEAF_ID].to_numpy(np.int64), frame[PARENT_ID].to_numpy(np.int64)
+    leaf, parent = key_ids(frame)
+    return leaf.astype(np.int64), parent.astype(np.int64)
+
+
+def rows_in(frame: pd.DataFrame, table: pd.DataFrame, cols: list[str] = LEAF) -> np.ndarray:
+    """Row position in `table` of each row's key in `frame` (-1 where absent), like `lookup`, but through the
+    integer id of the key (`leaf_id` for the leaf key, `parent_id` for the parent key) when both frames carry it.
+    `table` holds each id at most once.
+    """
+    id_col = {tuple(LEAF): LEAF_ID, tuple(PARENT): PARENT_ID}.get(tuple(cols))
+    if id_col is None or not ids_in(frame, (id_col,)):
+        return lookup(frame, cols, table)
+    ids = frame[id_col].to_numpy(np.int64)
+    if not ids_in(table, (id_col,)):  # the distinct keys of `frame` looked up, then spread to its rows by id
+        return lookup(_keys_of_ids(frame, ids, cols), cols, table)[ids] if len(ids) else np.zeros(0, np.int64)
+    held = table[id_col].to_numpy(np.int64)
+    if not len(ids) or not len(held):
+        return np.full(len(ids), -1, dtype=np.int64)
+    pos = np.full(max(int(ids.max()), int(held.max())) + 1, -1, dtype=np.int64)
+    pos[held] = np.arange(len(held))
+    return pos[ids]
+
+
+def key_rank(frame: pd.DataFrame, cols: list[str] = LEAF) -> np.ndarray:
+    """Per row, a rank of its `cols` key (LEAF or PARENT) in text order (not dense): sorting or
+    grouping by it orders rows as the text keys would, but sorts the distinct keys only (through the rows' ids;
+    ids given after the history's, to children without history, need not follow the key order themselves).
+    """
+    id_col = LEAF_ID if cols == LEAF else PARENT_ID
+    if not ids_in(frame, (id_col,)):
+        return factorize_sorted(frame, cols)
+    ids = frame[id_col].to_numpy(np.int64)
+    if not len(ids):
+        return ids
+    keys = _keys_of_ids(frame, ids, cols)
+    rank = np.empty(len(keys), dtype=np.int64)
+    rank[keys.sort_values(cols, kind="stable").index.to_numpy()] = np.arange(len(keys))
+    return rank[ids]
+
+
+def factorize_sorted(frame: pd.DataFrame, cols: list[str]) -> np.ndarray:
+    """Per row, the rank of its `cols` key in text order (coded from the text keys)."""
+    code, keys = factorize(frame, cols)
+    rank = np.empty(len(keys), dtype=np.int64)
+    rank[keys.sort_values(cols, kind="stable").index.to_numpy()] = np.arange(len(keys))
+    return rank[code]
+
+
+def ids_in(frame: pd.DataFrame, wanted: tuple[str, ...] = (LEAF_ID, PARENT_ID)) -> list[str]:
+    """The id columns of `wanted` that `frame` carries whole (a frame made before the ids, or by hand, has none;
+    a partition stored before them, read under the table's widened schema, has them blank: not carried)."""
+    return [c for c in wanted if c in frame.columns and not frame[c].isna().any()]

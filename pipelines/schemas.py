@@ -7,10 +7,12 @@ validated against its model by a blocking asset check named
 
 from typing import Optional
 
+import numpy as np
 import pandas as pd
 import pandera.pandas as pa
 from pandera.typing import DateTime, Series
 
+from pipelines.keys import ids_match_keys
 from pipelines.text_dtype import Text
 from pipelines.vocabulary import PERIOD_BASES as PERIOD_BASES_
 from pipelines.vocabulary import (
@@ -168,6 +170,26 @@ class Shortages(_Strict):
 
 
 # ----------------------------------------------------------------- history
+class ParentIds(pa.DataFrameModel):
+    """The integer id of the parent, assigned once by the lifecycle stage (`pipelines.keys`)."""
+
+    parent_id: Optional[Series[np.int32]] = pa.Field(
+        ge=0, description="integer id of the parent (product x site), the same in every table of the cycle"
+    )
+
+    @pa.dataframe_check(description="one leaf_id per leaf key and one parent_id per parent key, and the reverse")
+    def ids_match_keys(cls, df: pd.DataFrame) -> pd.Series:
+        return ids_match_keys(df)
+
+
+class LeafIds(ParentIds):
+    """The integer ids of the leaf and its parent, assigned once by the lifecycle stage (`pipelines.keys`)."""
+
+    leaf_id: Optional[Series[np.int32]] = pa.Field(
+        ge=0, description="integer id of the leaf (product x site x customer), the same in every table of the cycle"
+    )
+
+
 class LeafPeriod(LeafKeys):
     period_start: Series[DateTime] = pa.Field(description="start of the calendar period")
 
@@ -220,7 +242,7 @@ class HistoryCorrections(LeafPeriod):
     parameters: Series[Text] = pa.Field(description="the rule's parameter values")
 
 
-class LifecycleHistory(LeafPeriod):
+class LifecycleHistory(LeafPeriod, LeafIds):
     """History inside each active span, remapped to successors."""
 
     quantity: Series[float] = pa.Field(ge=0, description="quantity in the share basis")
@@ -249,7 +271,7 @@ class LifecycleAudit(_Strict):
 
 
 # ----------------------------------------------------------------- shares
-class ShareTable(LeafKeys):
+class ShareTable(LeafKeys, LeafIds):
     """One base share per child for the cycle, with the window, method and lifecycle rule behind it."""
 
     cycle_date: Series[DateTime] = pa.Field(description="first period of the cycle's horizon")
@@ -287,7 +309,7 @@ class ShareTable(LeafKeys):
         unique = ["product", "site", "customer"]
 
 
-class ReinitializedTarget(LeafPeriod):
+class ReinitializedTarget(LeafPeriod, LeafIds):
     """Target measure for the horizon: the period's share x the parent's baseline."""
 
     cycle_date: Series[DateTime] = pa.Field(description="cycle date")

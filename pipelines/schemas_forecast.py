@@ -9,7 +9,7 @@ from typing import Optional
 import pandera.pandas as pa
 from pandera.typing import DateTime, Series
 
-from pipelines.schemas import ZERO_REASONS, LeafKeys, LeafPeriod, _Strict
+from pipelines.schemas import ZERO_REASONS, LeafIds, LeafKeys, LeafPeriod, ParentIds, _Strict
 from pipelines.text_dtype import Text
 from pipelines.vocabulary import (
     AUTO,
@@ -36,7 +36,7 @@ STRATEGIES = values(Strategy)
 
 
 # ----------------------------------------------------------------- forecast
-class ParentForecast(_Strict):
+class ParentForecast(_Strict, ParentIds):
     """Statistical forecast at product x site grain."""
 
     cycle_date: Series[DateTime] = pa.Field(description="cycle date")
@@ -105,7 +105,7 @@ class ForecastModels(_Strict):
         unique = ["grain", "product", "site", "customer"]
 
 
-class StatisticalForecast(LeafPeriod):
+class StatisticalForecast(LeafPeriod, LeafIds):
     """Statistical forecast at leaf grain, split from the parent."""
 
     cycle_date: Series[DateTime] = pa.Field(description="cycle date")

@@ -7,7 +7,7 @@ import pandas as pd
 
 from pipelines.calendar import ordinal_to_start, period_ordinal, span_bounds
 from pipelines.engines.share_settings import ShareSettings
-from pipelines.keys import LEAF, factorize, lookup
+from pipelines.keys import LEAF, coded, lookup
 
 
 def active_children(
@@ -59,7 +59,8 @@ def own_periods(history: pd.DataFrame, children: pd.DataFrame, period: str) -> n
     """Distinct periods of history of each child (0 without any), counted on integer codes."""
     if history.empty:
         return np.zeros(len(children), dtype=np.int64)
-    code, leaves = factorize(history, LEAF)
+    c = coded(history)
+    code, leaves = c.leaf, c.leaves
     ords = period_ordinal(history["period_start"], period)
     lo = int(ords.min())
     width = int(ords.max()) - lo + 1

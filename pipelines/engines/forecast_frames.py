@@ -16,7 +16,7 @@ from pipelines.calendar import ordinal_to_start, period_ordinal
 from pipelines.engines.base_forecasts import BaseForecasts
 from pipelines.engines.hierarchy import Coherent, coherent
 from pipelines.engines.models import SeriesGrid
-from pipelines.keys import LEAF, PARENT, lookup
+from pipelines.keys import LEAF, PARENT, rows_in
 
 
 def combine_strategies(
@@ -94,7 +94,7 @@ def parent_reasons(target: pd.DataFrame, parents: pd.DataFrame, starts: pd.Datet
     if target.empty or "zero_reason" not in target.columns:
         return out
     rows = target[target["zero_reason"].notna()]
-    row = lookup(rows, PARENT, parents)
+    row = rows_in(rows, parents, PARENT)
     col = pd.DatetimeIndex(starts).get_indexer(pd.DatetimeIndex(rows["period_start"]))
     ok = (row >= 0) & (col >= 0)
     out[row[ok], col[ok]] = rows["zero_reason"].to_numpy(object)[ok]
@@ -106,7 +106,7 @@ def leaf_matrix(frame: pd.DataFrame, children: pd.DataFrame, column: str, starts
     out = np.zeros((len(children), len(starts)))
     if frame.empty:
         return out
-    row = lookup(frame, LEAF, children)
+    row = rows_in(frame, children, LEAF)
     col = pd.DatetimeIndex(starts).get_indexer(pd.DatetimeIndex(frame["period_start"]))
     ok = (row >= 0) & (col >= 0)
     out[row[ok], col[ok]] = frame[column].to_numpy(float)[ok]

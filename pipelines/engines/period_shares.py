@@ -45,7 +45,7 @@ from pipelines.engines.lifecycle_shares import reference_positions, split_shares
 from pipelines.engines.models import SeriesGrid, series_grid
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.shares import shortage_periods
-from pipelines.keys import LEAF, PARENT, factorize, lookup
+from pipelines.keys import LEAF, PARENT, coded, factorize, lookup
 from pipelines.vocabulary import BASIS_OF_METHOD, NEW_CUSTOMER_RULES, PER_PERIOD_METHODS, Basis, ShareMethod
 
 # the `share_basis` (pipelines.schemas.SHARE_BASES) of a parent period where a per-period method has a basis
@@ -133,7 +133,7 @@ def children_forecasts(
     lifecycle history before the cycle date; negative values are set to 0
     there.
     """
-    code = lookup(history, LEAF, children)
+    code = coded(history).leaf_rows(children)
     ok = code >= 0
     settings = ShareSettings.of(settings)
     ords = period_ordinal(history["period_start"], settings.period)[ok]
@@ -186,7 +186,7 @@ def period_basis(
     established = ~np.isin(shares["lifecycle_rule"].to_numpy(object), NEW_CUSTOMER_RULES)
     classes = shares["product_class"].to_numpy(object)
     horizon_poy, _ = period_of_year(horizon_starts(cycle_date, h, period), period)
-    child_of_row = lookup(history, LEAF, shares)
+    child_of_row = coded(history).leaf_rows(shares)
     row_ok = (child_of_row >= 0) & ~shortage_periods(history, settings.exclude_shortages)
     ords = period_ordinal(history["period_start"], period)
     qty = history["quantity"].to_numpy(float)

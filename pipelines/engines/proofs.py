@@ -12,7 +12,7 @@ import pandas as pd
 
 from pipelines.calendar import period_ordinal, span_bounds
 from pipelines.checks import SHARE_TOLERANCE
-from pipelines.keys import LEAF, PARENT, lookup
+from pipelines.keys import LEAF, PARENT, PARENT_ID, ids_in, key_rank, lookup, rows_in
 
 
 def find_shares_not_summing_to_one(target: pd.DataFrame, tolerance: float = SHARE_TOLERANCE) -> pd.DataFrame:
@@ -26,9 +26,16 @@ def find_shares_not_summing_to_one(target: pd.DataFrame, tolerance: float = SHAR
         has_reason=target["zero_reason"].notna(),
         nonzero=target["share"] != 0,
     )
+    # on the rank of the parent key, from the parent ids where the table carries them: the same groups in the
+    # same order as the text keys give
+    by_id = bool(ids_in(t, (PARENT_ID,)))
+    text = {c: (c, "first") for c in PARENT} if by_id else {}
+    if by_id:
+        t["parent_rank"] = key_rank(t, PARENT)
     sums = (
-        t.groupby(PARENT + ["period_start"], sort=True, observed=True)
+        t.groupby(["parent_rank", "period_start"] if by_id else PARENT + ["period_start"], sort=True, observed=True)
         .agg(
+            **text,
             share_sum=("share", "sum"),
             children=("share", "size"),
             with_reason=("has_reason", "sum"),
@@ -37,6 +44,8 @@ def find_shares_not_summing_to_one(target: pd.DataFrame, tolerance: float = SHAR
         )
         .reset_index()
     )
+    sums = sums.drop(columns=["parent_rank"]) if by_id else sums
+    sums = sums[PARENT + [c for c in sums.columns if c not in PARENT]]
     sums_to_one = ((sums["share_sum"] - 1.0).abs() <= tolerance) & (sums["with_reason"] == 0)
     zero_with_reason = (sums["nonzero"] == 0) & (sums["with_reason"] == sums["children"])
     return sums[~(sums_to_one | zero_with_reason)].drop(columns=["nonzero"])
@@ -45,7 +54,7 @@ def find_shares_not_summing_to_one(target: pd.DataFrame, tolerance: float = SHAR
 def find_volume_after_phase_out(leaf: pd.DataFrame, spans: pd.DataFrame, period: str) -> pd.DataFrame:
     """Leaf forecast rows with volume in a period after the customer's span ended."""
     _, to_ord = span_bounds(spans, period)
-    pos = lookup(leaf, LEAF, spans)
+    pos = rows_in(leaf, spans, LEAF)
     end = np.where(pos >= 0, to_ord[np.clip(pos, 0, None)], np.nan)
     with np.errstate(invalid="ignore"):
         after = (period_ordinal(leaf["period_start"], period) > end) & (leaf["forecast"].to_numpy() != 0)
@@ -82,7 +91,7 @@ def find_volume_outside_active_span(
         with np.errstate(invalid="ignore"):
             why[(ords < lo) | (ords > hi)] = "product not active"
             if grain == "leaf":
-                pos = lookup(frame, LEAF, spans)
+                pos = rows_in(frame, spans, LEAF)
                 start = np.where(pos >= 0, s_from[np.clip(pos, 0, None)], np.nan)
                 why[(ords < start) & pd.isna(why)] = "customer span not started"
         bad = pd.notna(why) & (frame["forecast"].to_numpy() != 0)

@@ -56,7 +56,7 @@ import pandas as pd
 from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal
 from pipelines.engines.lifecycle_shares import lifecycle_rules, split_shares
 from pipelines.engines.share_settings import ShareSettings
-from pipelines.keys import LEAF, PARENT, factorize, lookup
+from pipelines.keys import LEAF, LEAF_ID, PARENT, PARENT_ID, coded, extend_ids, factorize, row_ids
 
 SHARE_COLUMNS = LEAF + [
     "cycle_date",
@@ -165,7 +165,13 @@ def shortage_periods(history: pd.DataFrame, exclude: bool) -> np.ndarray:
     flag = history["shortage"].to_numpy(bool)
     if not flag.any():
         return flag
-    code, _ = factorize(history, PARENT + ["period_start"])
+    _, parent = row_ids(history)  # parent x period on integers: parent id x the period's slot among the days
+    day = history["period_start"].to_numpy("datetime64[D]").view(np.int64)
+    day = day - day.min()
+    present = np.zeros(int(day.max()) + 1, dtype=bool)
+    present[day] = True
+    slot = np.cumsum(present) - 1
+    code = parent * int(slot[-1] + 1) + slot[day]
     short = np.zeros(int(code.max()) + 1, dtype=bool)
     short[code[flag]] = True
     return short[code]
@@ -206,7 +212,7 @@ def _history_shares(
     n = len(children)
     parent_code, parents = factorize(children, PARENT)
     n_parents = len(parents)
-    child_of_row = lookup(history, LEAF, children)
+    child_of_row = coded(history).leaf_rows(children)
     row_ok = (child_of_row >= 0) & ~shortage_periods(history, settings.exclude_shortages)
     child = child_of_row[row_ok]
     qty = history["quantity"].to_numpy(float)[row_ok]
@@ -281,6 +287,7 @@ def compute_shares(
     )
 
     out = children[LEAF].copy()
+    out[LEAF_ID], out[PARENT_ID] = extend_ids(children, history)
     out["cycle_date"] = cycle_date
     out["product_class"] = children["product_class"].to_numpy()
     out["share"] = share[:, 0]
@@ -296,5 +303,5 @@ def compute_shares(
     out["scale"] = scale
     out["initial_share"] = initial
     out["lifecycle_detail"] = detail
-    return out[SHARE_COLUMNS].sort_values(LEAF, kind="stable").reset_index(drop=True)
+    return out[SHARE_COLUMNS + [LEAF_ID, PARENT_ID]].sort_values(LEAF, kind="stable").reset_index(drop=True)
 

@@ -35,7 +35,7 @@ import pandas as pd
 from pipelines.calendar import active_mask, period_ordinal, span_bounds
 from pipelines.config import CalendarConfig, PlanningConfig
 from pipelines.errors import LifecycleError
-from pipelines.keys import LEAF, factorize, lookup
+from pipelines.keys import LEAF, add_ids, factorize, lookup
 from pipelines.results import Log, StageResult, quiet
 
 HISTORY_COLUMNS = LEAF + ["period_start", "quantity", "origin", "source_product", "source_customer", "shortage"]
@@ -288,7 +288,7 @@ def run(
     """lifecycle_history and lifecycle_audit, with what each rule moved."""
     cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
     result = apply_lifecycle(cleaned_history, products, customer_spans, settings, cycle_date)
-    history, audit = result.history, result.audit
+    history, audit = add_ids(result.history), result.audit  # the leaf and parent ids the later stages carry
     by_rule = audit.groupby("rule").agg(
         leaves=("customer", "size"), periods=("periods", "sum"), quantity=("quantity", "sum")
     )

@@ -31,7 +31,7 @@ import pandas as pd
 from pipelines.checks import CHILDREN_SUM_TO_PARENT, EVERY_ACTIVE_PARENT_HAS_CHILDREN, RELATIVE_TOLERANCE
 from pipelines.engines.proofs import find_active_parents_without_children
 from pipelines.errors import PlanningError
-from pipelines.keys import PARENT
+from pipelines.keys import PARENT, PARENT_ID, ids_in
 from pipelines.results import CheckRows, Log, StageResult, quiet
 
 KEY = PARENT + ["period_start"]
@@ -63,15 +63,20 @@ def reconcile(parent: pd.DataFrame, leaf: pd.DataFrame) -> pd.DataFrame:
             "parent_forecast has no strategy_forecast column (a store written by an earlier release): "
             "rebuild statistical_forecast and downstream (`python -m pipelines rebuild --from statistical_forecast`)."
         )
+    # grouped on the integer parent id where both tables carry it (the same groups, in the same order)
+    key = [PARENT_ID, "period_start"] if ids_in(parent, (PARENT_ID,)) and ids_in(leaf, (PARENT_ID,)) else KEY
+    text = {f"leaf_{c}": (c, "first") for c in PARENT if c not in key}
     sums = (
-        leaf.groupby(KEY, sort=False, observed=True)
-        .agg(leaf_cycle_date=("cycle_date", "first"), children_sum=("forecast", "sum"), children=("forecast", "size"))
+        leaf.groupby(key, sort=False, observed=True)
+        .agg(leaf_cycle_date=("cycle_date", "first"), **text, children_sum=("forecast", "sum"),
+             children=("forecast", "size"))
         .reset_index()
     )
-    out = parent[["cycle_date"] + KEY + ["forecast", "strategy_forecast", "zero_reason"]].rename(
-        columns={"forecast": "parent_forecast"}
-    )
-    out = out.merge(sums, on=KEY, how="outer", sort=False)
+    out = parent[["cycle_date"] + list(dict.fromkeys(KEY + key)) + ["forecast", "strategy_forecast", "zero_reason"]]
+    out = out.rename(columns={"forecast": "parent_forecast"}).merge(sums, on=key, how="outer", sort=False)
+    for c in PARENT:  # the parent key of leaves without a parent row
+        if f"leaf_{c}" in out.columns:
+            out[c] = out[c].fillna(out[f"leaf_{c}"])
     out["cycle_date"] = out["cycle_date"].fillna(out["leaf_cycle_date"])
     out["children_sum"] = out["children_sum"].fillna(0.0)
     out["children"] = out["children"].fillna(0).astype(np.int64)

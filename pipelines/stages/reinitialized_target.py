@@ -51,7 +51,7 @@ from pipelines.engines.proofs import find_shares_not_summing_to_one
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.share_tuning import chosen_rules
 from pipelines.engines.shares import shortage_periods
-from pipelines.keys import LEAF, PARENT, factorize, lookup
+from pipelines.keys import LEAF, PARENT, coded, factorize, ids_in, key_rank
 from pipelines.results import CheckRows, Log, StageResult, quiet
 
 TARGET_COLUMNS = LEAF + ["period_start", "cycle_date", "target", "share", "parent_baseline", "zero_reason", "basis"]
@@ -68,7 +68,7 @@ def parent_baselines(
     window_used = np.zeros(n_parents, dtype=np.int64)
     window_used[parent_code] = shares["window_used"].to_numpy()
 
-    row_parent = lookup(history, PARENT, parents)
+    row_parent = coded(history).parent_rows(parents)
     ok = row_parent >= 0
     short = shortage_periods(history, settings.exclude_shortages)[ok]
     row_parent = row_parent[ok]
@@ -108,7 +108,8 @@ def reinitialize_target(
     baseline = parent_baselines(shares, history, settings, cycle_date)
     stored = None if period_basis is None else stored_basis(shares, period_basis, starts)
     share, reason, basis = period_shares(shares, settings, cycle_date, products, history, basis=stored)
-    out = shares[LEAF].loc[shares.index.repeat(h)].reset_index(drop=True)
+    ids = ids_in(shares)  # carried from the share table
+    out = shares[LEAF + ids].iloc[np.repeat(np.arange(len(shares)), h)].reset_index(drop=True)
     out["period_start"] = np.tile(starts.values, len(shares))
     out["cycle_date"] = cycle_date
     out["share"] = share.ravel()
@@ -116,7 +117,7 @@ def reinitialize_target(
     out["target"] = out["share"].to_numpy() * out["parent_baseline"].to_numpy()
     out["zero_reason"] = reason.ravel()
     out["basis"] = basis.ravel()
-    return out[TARGET_COLUMNS]
+    return out[TARGET_COLUMNS + ids]
 
 
 def parents_with_mix_change(target: pd.DataFrame, shares: pd.DataFrame, tolerance: float = 1e-9) -> pd.DataFrame:
@@ -130,8 +131,9 @@ def parents_with_mix_change(target: pd.DataFrame, shares: pd.DataFrame, toleranc
         return pd.DataFrame(
             columns=PARENT + ["first_change", "periods_with_change", "phasing_in", "phasing_out", "zero_periods"]
         )
-    t = target.sort_values(LEAF + ["period_start"], kind="stable")
-    previous = t.groupby(LEAF, sort=False)["share"].shift()
+    t = target.assign(leaf_rank=key_rank(target, LEAF))  # sorts as the text keys do, on integers
+    t = t.sort_values(["leaf_rank", "period_start"], kind="stable")
+    previous = t.groupby("leaf_rank", sort=False)["share"].shift()
     changed = (t["share"] - previous).abs() > tolerance
     change = t.loc[changed.to_numpy(), PARENT + ["period_start"]].drop_duplicates()
     per_parent = change.groupby(PARENT, sort=True).agg(

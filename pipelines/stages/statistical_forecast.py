@@ -76,7 +76,7 @@ from pipelines.engines.models import ModelSettings, series_grid
 from pipelines.engines.proofs import find_negative, find_volume_after_phase_out, find_volume_outside_active_span
 from pipelines.engines.upper_levels import upper_level_checks, upper_levels_run
 from pipelines.errors import ConfigError
-from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
+from pipelines.keys import LEAF, PARENT, PARENT_ID, coded, factorize, first_rows, ids_in
 from pipelines.progress import SeriesProgress
 from pipelines.results import CheckRows, Log, StageResult, quiet
 from pipelines.vocabulary import AUTO, Basis, ModelGrain, Strategy, ZeroReason, values
@@ -178,15 +178,18 @@ def forecast_cycle(
     children = children.reset_index(drop=True)
     parent_of_child, parents = factorize(children, PARENT)
     parents["product_class"] = children["product_class"].to_numpy()[first_rows(parent_of_child)]
+    ids, parent_ids = ids_in(children), ids_in(children, (PARENT_ID,))  # carried from the share table
+    parents[parent_ids] = children[parent_ids].to_numpy()[first_rows(parent_of_child)]
     n_parents, n_children = len(parents), len(children)
     ords = period_ordinal(history["period_start"], period)
     qty = history["quantity"].to_numpy(float)
     strategies = strategy_by_class(settings, chosen)
 
-    p_code = lookup(history, PARENT, parents)
+    keys = coded(history)  # the history's leaf and parent ids, looked up by their distinct keys only
+    p_code = keys.parent_rows(parents)
     ok = p_code >= 0
     p_grid = series_grid(p_code[ok], ords[ok], qty[ok], n_parents, cycle_ord)
-    c_code = lookup(history, LEAF, children)
+    c_code = keys.leaf_rows(children)
     okc = c_code >= 0
     c_grid = series_grid(c_code[okc], ords[okc], qty[okc], n_children, cycle_ord)
     modes = sb.seasonality_in_effect(settings.seasonality, chosen_seasonality, settings.source)
@@ -241,7 +244,7 @@ def forecast_cycle(
         ModelGrain.BOTH,
     )
 
-    parent_out = parents[PARENT].loc[parents.index.repeat(horizon)].reset_index(drop=True)
+    parent_out = parents[PARENT + parent_ids].iloc[np.repeat(np.arange(n_parents), horizon)].reset_index(drop=True)
     parent_out.insert(0, "product_class", np.repeat(parents["product_class"].to_numpy(), horizon))
     parent_out.insert(0, "cycle_date", cycle_date)
     parent_out["period_start"] = np.tile(starts.values, n_parents)
@@ -257,7 +260,7 @@ def forecast_cycle(
         zeroed[parent_of_child] | ~active, tree_sd,
     )
 
-    leaf_out = children[LEAF].loc[children.index.repeat(horizon)].reset_index(drop=True)
+    leaf_out = children[LEAF + ids].iloc[np.repeat(np.arange(n_children), horizon)].reset_index(drop=True)
     leaf_out["period_start"] = np.tile(starts.values, n_children)
     leaf_out["cycle_date"] = cycle_date
     leaf_out["product_class"] = np.repeat(children["product_class"].to_numpy(), horizon)
@@ -284,8 +287,8 @@ def forecast_cycle(
     )
     return ForecastResult(
         upper=upper.frame(cycle_date, starts, strategy_fc, parent_fc),
-        parent=parent_out[PARENT_COLUMNS + ["strategy"] + list(p_bounds.columns)],
-        leaf=leaf_out[LEAF_COLUMNS + list(l_bounds.columns)],
+        parent=parent_out[PARENT_COLUMNS + ["strategy"] + list(p_bounds.columns) + parent_ids],
+        leaf=leaf_out[LEAF_COLUMNS + list(l_bounds.columns) + ids],
         negatives_clipped=base.negatives + made.negatives,
         reconciled_negatives=made.negatives,
         redistributed=redistributed.reset_index(drop=True),
@@ -307,7 +310,7 @@ def run(
 ) -> StageResult:
     """parent_forecast, statistical_forecast, forecast_models and forecast_fitted_values, and the forecast's checks."""
     cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
-    columns = ["product", "site", "customer", "product_class", "first_active_period", "last_active_period"]
+    columns = [*LEAF, "product_class", "first_active_period", "last_active_period", *ids_in(share_tables)]
     chosen = dict(zip(strategy_choice["product_class"], strategy_choice["strategy"], strict=False))
     seasonality = strategy_choice.get("seasonality", pd.Series("", index=strategy_choice.index))
     chosen_seasonality = dict(zip(strategy_choice["product_class"], seasonality, strict=False))
