@@ -24,7 +24,7 @@ def input_settings(part) -> InputSettings:
     config = part.config
     return InputSettings(
         config.inputs.folder, part.product_class, tuple(part.full.product_classes), str(part.full.source),
-        inputs=config.inputs, measures=tuple(config.measures),
+        inputs=config.inputs, measures=tuple(config.measures), shard=part.shard,
     )
 
 
