@@ -23,7 +23,7 @@ from pipelines.config import PlanningConfig
 from pipelines.partitions import cycle_class_partitions, narrow_config, split_key
 from pipelines.resources import previous_cycle, read_table, report_folder
 from pipelines.results import StageResult
-from pipelines.shards import Shard, shard_of, split_class_key
+from pipelines.shards import SHARD_MARK, Shard, shard_of, split_class_key
 from pipelines.tables import MODELS
 
 
@@ -55,6 +55,11 @@ class Partition:
         if self.shard is not None and found is not None:
             found = self.shard_rows(found)
         return found, before
+
+    @property
+    def key(self) -> str:
+        """The partition's product-class key: the class, or a shard of it (`spares~2of3`)."""
+        return self.product_class if self.shard is None else f"{self.product_class}{SHARD_MARK}{self.shard.name}"
 
     def shard_rows(self, frame):
         """The rows of this shard (of a class-level table, such as a decision every shard stores: one copy)."""

@@ -25,7 +25,8 @@ class-level combine is not built yet (DEVELOPERS.md, *Shards*).
 from __future__ import annotations
 
 import hashlib
-from dataclasses import dataclass
+from collections.abc import Mapping
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
@@ -41,11 +42,14 @@ PRODUCT_KEY = ("product",)
 
 @dataclass(frozen=True)
 class Shard:
-    """Shard `index` (1..count) of a class, and the columns its rows are hashed on."""
+    """Shard `index` (1..count) of a class, the columns its rows are hashed on, and `alias`: product -> the end of
+    its successor chain, hashed in its place, so a predecessor's history at a site lands with its successor's
+    (`successor_ends`; the lifecycle moves it there)."""
 
     index: int
     count: int
     by: tuple[str, ...] = PARENT_KEY
+    alias: Mapping[str, str] = field(default_factory=dict, compare=False)
 
     @property
     def name(self) -> str:
@@ -54,7 +58,7 @@ class Shard:
 
     def rows(self, frame: pd.DataFrame) -> np.ndarray:
         """(len(frame),) bool: the rows of this shard."""
-        return shard_numbers(frame, self.by, self.count) == self.index
+        return shard_numbers(frame, self.by, self.count, self.alias) == self.index
 
 
 def stable_shard(text: str, count: int) -> int:
@@ -63,17 +67,37 @@ def stable_shard(text: str, count: int) -> int:
     return 1 + int.from_bytes(digest, "big") % count
 
 
-def shard_numbers(frame: pd.DataFrame, by: tuple[str, ...], count: int) -> np.ndarray:
-    """(len(frame),) int: each row's shard 1..count by the text of its `by` columns joined with '|'.
-
-    Hashes each distinct key once (a blank cell is the empty text)."""
+def shard_numbers(
+    frame: pd.DataFrame, by: tuple[str, ...], count: int, alias: Mapping[str, str] | None = None
+) -> np.ndarray:
+    """(len(frame),) int: each row's shard 1..count by the text of its `by` columns joined with '|' (a product
+    in `alias` by its alias). Hashes each distinct key once (a blank cell is the empty text)."""
     if count <= 1 or frame.empty:
         return np.ones(len(frame), dtype=np.int64)
     text = frame[list(by)].astype("string").fillna("")
+    if alias and "product" in by:
+        text["product"] = text["product"].map(lambda p: alias.get(p, p)).astype("string")
     keys = text.iloc[:, 0] if len(by) == 1 else text.iloc[:, 0].str.cat([text[c] for c in by[1:]], sep="|")
     codes, uniques = pd.factorize(keys, use_na_sentinel=False)
     numbers = np.array([stable_shard(str(u), count) for u in uniques], dtype=np.int64)
     return numbers[codes]
+
+
+def successor_ends(products: pd.DataFrame) -> dict[str, str]:
+    """product -> the end of its successor chain (A -> B -> C: A and B to C), for every product naming a successor
+    (a chain that loops or names an unknown product ends where it does; the lifecycle stage reports it)."""
+    if "successor" not in products.columns:
+        return {}
+    step = products.dropna(subset=["product"]).drop_duplicates("product").set_index("product")["successor"].dropna()
+    step = step[step.astype(str).str.len() > 0].astype(str).to_dict()
+    ends = {}
+    for product in step:
+        seen, end = {product}, step[product]
+        while end in step and end not in seen:
+            seen.add(end)
+            end = step[end]
+        ends[product] = end
+    return ends
 
 
 def class_shards(config, name: str) -> int:

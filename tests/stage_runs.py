@@ -47,8 +47,10 @@ def demo_config(classes: dict[str, dict] | None = None, **sections) -> PlanningC
 def run_partition(config: PlanningConfig, cycle: str, product_class: str, backtest: bool = False) -> PartitionRun:
     from assets.factory import Partition, graph_order
     from pipelines import definitions  # noqa: F401  (makes every stage asset, so SPECS holds them all)
+    from pipelines.shards import shard_of, split_class_key
 
-    part = Partition(narrow_config(config, cycle, product_class), config, cycle, product_class)
+    name = split_class_key(product_class)[0]  # a shard's key (`spares~2of3`) runs that shard of its class
+    part = Partition(narrow_config(config, cycle, product_class), config, cycle, name, shard_of(config, product_class))
     tables: dict[str, pd.DataFrame] = {}
     settings: dict[str, object] = {}
     for spec in graph_order():
