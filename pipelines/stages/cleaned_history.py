@@ -153,13 +153,15 @@ def clean_history(
     if not isinstance(config, CleaningSettings):  # a whole PlanningConfig: what the stage reads of it
         config = CleaningSettings.of(config)
     period = config.calendar.period
-    used, rejected, cycle_date = reject_lines(raw, products, spans, config.calendar, config.source, config.plausible)
+    first = config.first_period  # a shard: its class's, so the grid and the fill ranges start where the class's do
+    used, rejected, cycle_date = reject_lines(raw, products, spans, config.calendar, config.source, config.plausible,
+                                              first)
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
 
     # --- bucket and net: one value per leaf and period
     leaf_code, leaves = factorize(used, LEAF)
     n_leaves = len(leaves)
-    first_ord = int(used["ordinal"].min()) if len(used) else cycle_ord - 1
+    first_ord = first if first is not None else int(used["ordinal"].min()) if len(used) else cycle_ord - 1
     t = cycle_ord - first_ord  # periods in the grid: first history period .. cycle - 1
     cell = leaf_code * t + (used["ordinal"].to_numpy() - first_ord)
     net = np.bincount(cell, weights=used["quantity"].to_numpy(), minlength=n_leaves * t).reshape(n_leaves, t)
@@ -293,6 +295,7 @@ class CleaningSettings:
     max_rejected_share: float = 0.01
     picture: str = "cleansing.png"  # the corrections chart, written beside the cycle's report
     report_folder: Path = Path("var/reports")
+    first_period: int | None = None  # a shard of a class: the class's first trusted period (ordinal)
 
     @classmethod
     def of(cls, config: PlanningConfig, report_folder: Path = Path("var/reports")) -> CleaningSettings:
@@ -358,7 +361,7 @@ def run(
             "cleaned_history": cleaned,
             "rejected_rows": rejected,
             "history_corrections": corrections,
-            "cycle_calendar": cycle_calendar(cleaned, settings.calendar, result.cycle_date),
+            "cycle_calendar": cycle_calendar(cleaned, settings.calendar, result.cycle_date, settings.first_period),
         },
         metadata={
             "cleaned_history": cleaned_figures,
