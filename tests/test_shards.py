@@ -185,3 +185,21 @@ def test_the_last_shard_to_finish_completes_the_class(tmp_path):
     one = read_table(store.root, "statistical_forecast", cycle=CYCLE, product_class="spares", versions="complete",
                      shard="1of2")
     assert 0 < len(one) < len(leaf) and leaf[["product", "site"]].drop_duplicates().shape[0] > 1
+
+
+def test_a_shard_proves_its_own_versions_and_waits_for_the_others():
+    from pipelines.publication import unproven_versions, waiting_shards
+
+    versions = pd.DataFrame({
+        "asset": ["statistical_forecast"] * 3,
+        "shard": ["1of3", "2of3", "3of3"],
+        "run_id": ["a", "b", ""],
+        "proven": [True, False, False],
+        "proof": ["written and checked in this run", "a blocking check failed", "never written"],
+    })
+    # shard 1's run: nothing of its own unproven (its check passes), the class waits for shards 2 and 3
+    assert unproven_versions(versions, "1of3").empty and waiting_shards(versions, "1of3") == ["2of3", "3of3"]
+    # shard 2's run: its own version is unproven, a failure of that run
+    assert list(unproven_versions(versions, "2of3")["shard"]) == ["2of3"]
+    # a class not cut: every version is its own, nothing to wait for
+    assert len(unproven_versions(versions)) == 2 and waiting_shards(versions, None) == []
