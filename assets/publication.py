@@ -22,7 +22,7 @@ from pipelines.publication import (
 )
 from pipelines.resources import PlanningConfigResource
 from pipelines.schemas_forecast import ClassPublication
-from pipelines.shards import UNSHARDED, split_class_key, store_shards
+from pipelines.shards import SHARD_MARK, UNSHARDED, split_class_key, store_shards
 from pipelines.store import open_store
 
 PUBLICATION = "publication"
@@ -37,7 +37,7 @@ def class_and_shard(key) -> tuple[str, tuple[str, str | None]]:
     return cycle, (product_class, None if shard == UNSHARDED else shard)
 
 
-def is_complete(context: dg.AssetExecutionContext, versions, unproven, schema_ok: bool, shard, where) -> bool:
+def is_complete(context: dg.AssetExecutionContext, store, versions, unproven, schema_ok: bool, shard, where) -> bool:
     """Whether the class is complete: its versions valid and proven (else an error in the log), and, for a shard,
     every other shard's too (else the class waits for them, said in the log: the last shard to finish completes
     it)."""
@@ -45,6 +45,10 @@ def is_complete(context: dg.AssetExecutionContext, versions, unproven, schema_ok
         context.log.error(not_complete_message(*where, unproven))
         return False
     waiting = waiting_shards(versions, shard)
+    if shard is not None:  # a shard a run is writing right now: its versions are about to change
+        cycle, product_class = where
+        others = set(versions["shard"]) - {shard}
+        waiting += sorted(s for s in others - set(waiting) if store.writer_of(cycle, f"{product_class}{SHARD_MARK}{s}"))
     if waiting:
         context.log.info(f"shard {shard} complete; the class waits for shards {', '.join(waiting)}")
     return not waiting
@@ -83,7 +87,7 @@ def publication_asset(stage_assets: list[dg.AssetsDefinition]) -> dg.AssetsDefin
         versions, schema_check = validate(versions, ClassPublication, PUBLICATION, partition=partition)
         unproven = unproven_versions(versions, shard)
         proof = rule_check(PUBLICATION, TABLES_PASSED_THEIR_CHECKS, unproven, what=PROOF_WHAT, partition=partition)
-        complete = is_complete(context, versions, unproven, schema_check.passed, shard, (cycle, product_class))
+        complete = is_complete(context, store, versions, unproven, schema_check.passed, shard, (cycle, product_class))
         status = None if not complete else publish_class(
             store, versions, planning.config, context.instance, cycle, product_class, run_id, context.log
         )
