@@ -1,13 +1,42 @@
 """Assets `cleaned_history`, `rejected_rows`, `history_corrections`, `cycle_calendar`."""
 
-from assets.factory import StageAsset, Table, stage_asset
+import dataclasses
+
+from assets.factory import Partition, StageAsset, Table, stage_asset
+from pipelines.engines.class_rows import class_map, class_rows
+from pipelines.engines.cleansing import reject_lines
+from pipelines.engines.history_files import load_raw_history
 from pipelines.resources import report_folder
 from pipelines.stages import cleaned_history as stage
+from pipelines.stages.master_data import load_customer_spans, load_products
 
 CLEANED_HISTORY = "cleaned_history"
 REJECTED_ROWS = "rejected_rows"
 HISTORY_CORRECTIONS = "history_corrections"
 CYCLE_CALENDAR = "cycle_calendar"
+
+def cleaning_settings(part: Partition) -> stage.CleaningSettings:
+    """The partition's cleaning settings; a shard's carry its class's first trusted period (`class_first_period`)."""
+    settings = stage.CleaningSettings.of(part.config, report_folder(part.config))
+    if part.shard is None:
+        return settings
+    return dataclasses.replace(settings, first_period=class_first_period(part))
+
+
+def class_first_period(part: Partition) -> int | None:
+    """The first period (ordinal) of the whole class's trusted history: the class's lines rejected as the class's
+    run would (the shard's history starts there, so its grid and fill ranges are the class's). Reads the class's
+    history lines again, as every partition's raw_history does until inputs are cut once per cycle."""
+    config = part.config
+    folder, inputs = config.inputs.folder, config.inputs
+    products = load_products(folder, inputs)[0]
+    classes = class_map(products)
+    mine = products[products["product_class"] == part.product_class]
+    raw = class_rows(load_raw_history(folder, inputs)[0], classes, part.product_class)
+    spans = class_rows(load_customer_spans(folder, inputs)[0], classes, part.product_class)
+    used = reject_lines(raw, mine, spans, config.calendar, config.source, inputs.plausible)[0]
+    return int(used["ordinal"].min()) if len(used) else None
+
 
 cleaned_history = stage_asset(StageAsset(
     tables=(
@@ -21,7 +50,7 @@ cleaned_history = stage_asset(StageAsset(
         Table(CYCLE_CALENDAR, "The cycle date, calendar and history range of this cycle."),
     ),
     run=stage.run,
-    settings=lambda part: stage.CleaningSettings.of(part.config, report_folder(part.config)),
+    settings=lambda part: cleaning_settings(part),
     group="history",
     ins=("raw_history", "products", "customer_spans", "shortages"),
 ))

@@ -39,7 +39,7 @@ cycle_report = stage_asset(
         ),
         run=stage.run,
         settings=lambda part: stage.ReportSettings(
-            part.config.calendar.period, part.product_class, part.cycle, report_folder(part.config)
+            part.config.calendar.period, part.product_class, part.cycle, report_folder(part.config), part.key
         ),
         group="report",
         ins=("lifecycle_history", "parent_forecast", "reinitialized_target", "share_tables", "cycle_calendar"),

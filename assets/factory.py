@@ -23,32 +23,49 @@ from pipelines.config import PlanningConfig
 from pipelines.partitions import cycle_class_partitions, narrow_config, split_key
 from pipelines.resources import previous_cycle, read_table, report_folder
 from pipelines.results import StageResult
+from pipelines.shards import SHARD_MARK, Shard, shard_of, split_class_key
 from pipelines.tables import MODELS
 
 
 @dataclass(frozen=True)
 class Partition:
-    """One partition's view of the config: narrowed to its cycle and class, and whole."""
+    """One partition's view of the config: narrowed to its cycle and class, and whole; its shard (None: the
+    class is not cut, `pipelines.shards`)."""
 
     config: PlanningConfig
     full: PlanningConfig
     cycle: str
     product_class: str
+    shard: Shard | None = None
 
     @classmethod
     def of(cls, context: dg.AssetExecutionContext) -> "Partition":
         full = context.resources.planning.config
-        cycle, product_class = split_key(context.partition_key)
-        return cls(narrow_config(full, cycle, product_class), full, cycle, product_class)
+        cycle, key = split_key(context.partition_key)
+        return cls(narrow_config(full, cycle, key), full, cycle, split_class_key(key)[0], shard_of(full, key))
 
     def previous(self, table: str):
-        """`table` of the class as it last completed in its latest cycle before this one (its blocking checks
-        passed, published or not yet), and that cycle; (None, None) for the class's first cycle."""
+        """`table` of the class (of a shard: its own rows) as it last completed in its latest cycle before this
+        one (its blocking checks passed, published or not yet), and that cycle; (None, None) for the first."""
         store = Path(self.config.store.path)
         before = previous_cycle(store, table, self.cycle, self.product_class)
         if not before:
             return None, None
-        return read_table(store, table, cycle=before, product_class=self.product_class, versions="complete"), before
+        found = read_table(store, table, cycle=before, product_class=self.product_class, versions="complete")
+        if self.shard is not None and found is not None:
+            found = self.shard_rows(found)
+        return found, before
+
+    @property
+    def key(self) -> str:
+        """The partition's product-class key: the class, or a shard of it (`spares~2of3`)."""
+        return self.product_class if self.shard is None else f"{self.product_class}{SHARD_MARK}{self.shard.name}"
+
+    def shard_rows(self, frame):
+        """The rows of this shard (of a class-level table, such as a decision every shard stores: one copy)."""
+        if all(c in frame.columns for c in self.shard.by):
+            return frame[self.shard.rows(frame)].reset_index(drop=True)
+        return frame.drop_duplicates().reset_index(drop=True)
 
 
 @dataclass(frozen=True)

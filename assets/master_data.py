@@ -8,8 +8,11 @@ products also carries `references_known` (pipelines.checks): its rows name
 only products, customers and measures the master data and config hold.
 """
 
+import dataclasses
+
 from assets.factory import StageAsset, Table, stage_asset
 from pipelines.engines.class_rows import InputSettings
+from pipelines.shards import Shard, successor_ends
 from pipelines.stages import master_data as stage
 
 PRODUCTS = "products"
@@ -24,8 +27,15 @@ def input_settings(part) -> InputSettings:
     config = part.config
     return InputSettings(
         config.inputs.folder, part.product_class, tuple(part.full.product_classes), str(part.full.source),
-        inputs=config.inputs, measures=tuple(config.measures),
+        inputs=config.inputs, measures=tuple(config.measures), shard=with_successors(part.shard, config),
     )
+
+
+def with_successors(shard: Shard | None, config) -> Shard | None:
+    """A shard that hashes each product by the end of its successor chain (read from the product master)."""
+    if shard is None:
+        return None
+    return dataclasses.replace(shard, alias=successor_ends(stage.load_products(config.inputs.folder, config.inputs)[0]))
 
 
 def _input(name: str, run, description: str):

@@ -18,14 +18,40 @@ from pipelines.publication import (
     publication_figures,
     publish_class,
     unproven_versions,
+    waiting_shards,
 )
 from pipelines.resources import PlanningConfigResource
 from pipelines.schemas_forecast import ClassPublication
+from pipelines.shards import SHARD_MARK, UNSHARDED, split_class_key, store_shards
 from pipelines.store import open_store
 
 PUBLICATION = "publication"
 PROOF_TEXT = check_of(PUBLICATION, TABLES_PASSED_THEIR_CHECKS).description
 PROOF_WHAT = PROOF_TEXT.split(". When")[0]
+
+
+def class_and_shard(key) -> tuple[str, tuple[str, str | None]]:
+    """The cycle, the class and the shard (None for a class not cut) of a partition key."""
+    cycle, class_key = split_key(key)
+    product_class, shard = split_class_key(class_key)
+    return cycle, (product_class, None if shard == UNSHARDED else shard)
+
+
+def is_complete(context: dg.AssetExecutionContext, store, versions, unproven, schema_ok: bool, shard, where) -> bool:
+    """Whether the class is complete: its versions valid and proven (else an error in the log), and, for a shard,
+    every other shard's too (else the class waits for them, said in the log: the last shard to finish completes
+    it)."""
+    if not unproven.empty or not schema_ok:
+        context.log.error(not_complete_message(*where, unproven))
+        return False
+    waiting = waiting_shards(versions, shard)
+    if shard is not None:  # a shard a run is writing right now: its versions are about to change
+        cycle, product_class = where
+        others = set(versions["shard"]) - {shard}
+        waiting += sorted(s for s in others - set(waiting) if store.writer_of(cycle, f"{product_class}{SHARD_MARK}{s}"))
+    if waiting:
+        context.log.info(f"shard {shard} complete; the class waits for shards {', '.join(waiting)}")
+    return not waiting
 
 
 def publication_asset(stage_assets: list[dg.AssetsDefinition]) -> dg.AssetsDefinition:
@@ -53,16 +79,15 @@ def publication_asset(stage_assets: list[dg.AssetsDefinition]) -> dg.AssetsDefin
         "DuckDB views (var/store/published.duckdb) then show it. Until then they show the last published cycle.",
     )
     def publication(context: dg.AssetExecutionContext, planning: PlanningConfigResource):
-        cycle, product_class = split_key(context.partition_key)
+        cycle, (product_class, shard) = class_and_shard(context.partition_key)
         partition = {"partition_cycle": cycle, "partition_class": product_class}  # on every check result
         store, run_id = open_store(planning.config.store.path), context.run.run_id
-        versions = proven_versions(store, context.instance, run_id, cycle, product_class, tables, blocking)
+        versions = proven_versions(store, context.instance, run_id, cycle, product_class, tables, blocking,
+                                   store_shards(planning.config, product_class))
         versions, schema_check = validate(versions, ClassPublication, PUBLICATION, partition=partition)
-        unproven = unproven_versions(versions)
+        unproven = unproven_versions(versions, shard)
         proof = rule_check(PUBLICATION, TABLES_PASSED_THEIR_CHECKS, unproven, what=PROOF_WHAT, partition=partition)
-        complete = schema_check.passed and unproven.empty
-        if not complete:
-            context.log.error(not_complete_message(cycle, product_class, unproven))
+        complete = is_complete(context, store, versions, unproven, schema_check.passed, shard, (cycle, product_class))
         status = None if not complete else publish_class(
             store, versions, planning.config, context.instance, cycle, product_class, run_id, context.log
         )

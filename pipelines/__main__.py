@@ -90,7 +90,7 @@ def main(argv: list[str] | None = None) -> int:
             type=int,
             default=1,
             metavar="K",
-            help="run K partitions (classes) at once, one process each (default 1: one after another)",
+            help="run K partitions (classes or shards) at once, one process each (default 1: one after another)",
         )
         p.add_argument(
             "--if-busy",
@@ -113,7 +113,8 @@ def main(argv: list[str] | None = None) -> int:
         help="cycle date YYYY-MM-DD (default: calendar.cycle_date, else the period after the history)",
     )
     p.add_argument(
-        "--class", dest="classes", action="append", default=None, help="only this product class (repeatable)"
+        "--class", dest="classes", action="append", default=None,
+        help="only this product class (repeatable; a class cut into shards: all its shards, CLASS~IofN: one)",
     )
     p.add_argument(
         "--backfill",
@@ -129,7 +130,8 @@ def main(argv: list[str] | None = None) -> int:
     )
     config_arg(p)
     p.add_argument(
-        "--class", dest="classes", action="append", required=True, help="product class to rebuild (repeatable)"
+        "--class", dest="classes", action="append", required=True,
+        help="product class to rebuild (repeatable; a class cut into shards: all its shards, CLASS~IofN: one)",
     )
     p.add_argument("--from", dest="asset", default="share_tables", help="first asset to rebuild (default share_tables)")
     p.add_argument("--cycle", default=None, help="cycle date (default: the current cycle)")

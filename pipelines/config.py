@@ -19,6 +19,7 @@ from pydantic import BaseModel, Field, PrivateAttr, ValidationError, field_valid
 
 from pipelines.config_forecast import HierarchyConfig, IntervalsConfig
 from pipelines.config_inputs import InputsConfig
+from pipelines.config_scale import ScaleConfig
 from pipelines.config_sections import (
     DEFAULT_MEASURES,
     BacktestConfig,
@@ -34,6 +35,7 @@ from pipelines.config_sections import (
 )
 from pipelines.config_selection import SelectionConfig
 from pipelines.errors import ConfigError, hide_passwords
+from pipelines.shards import check_scale
 from pipelines.vocabulary import AUTO, FORECAST_GRAIN_STRATEGY, RENAMED_SHARE_METHODS, PeriodKind
 
 LATEST_COMPLETE_PERIOD = "latest_complete_period"
@@ -125,6 +127,7 @@ class PlanningConfig(Frozen):
     execution: ExecutionConfig = ExecutionConfig()
     intervals: IntervalsConfig = IntervalsConfig()
     hierarchy: HierarchyConfig = HierarchyConfig()
+    scale: ScaleConfig = ScaleConfig()
     _source: Path = PrivateAttr(Path("<memory>"))
 
     @property
@@ -338,6 +341,7 @@ def parse_config(data: object, source: Path | str = "<memory>") -> PlanningConfi
         raise ConfigError(_format_error(source, err)) from None
     config._source = source
     config.measure_order()  # references and cycles between measures, named by key
+    check_scale(config)  # a class cut into shards needs nothing of the whole class
     return config
 
 

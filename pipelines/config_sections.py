@@ -11,6 +11,7 @@ from typing import Annotated, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationInfo, field_validator, model_validator
 
+from pipelines.config_scale import ScaleConfig
 from pipelines.vocabulary import (
     AUTO,
     BASIS_SHARE_METHODS,
@@ -31,9 +32,8 @@ from pipelines.vocabulary import (
     values,
 )
 
-# `seasonal`: years of history read for each period of the year, when the class gives none.
-# Three: each period of the year then rests on three observations (two on a two-year
-# history); common practice, no source.
+# `seasonal`: years of history read for each period of the year, when the class gives none. Three: each period of
+# the year then rests on three observations (two on a two-year history); common practice, no source.
 DEFAULT_SEASONAL_YEARS = 3
 
 
@@ -170,6 +170,7 @@ class ProductClassConfig(Frozen):
         "(the backtest's choice); blank: own with models.seasonal true, else none",
     )
     seasonal_group: str = Field("product", description="index group: product, product_class or a products column")
+    scale: ScaleConfig | None = Field(None, description="this class's shards; blank: the config's scale")
     outliers: OutlierConfig | None = Field(
         None,
         description="outlier rule of this class; replaces cleansing.outliers as a whole "

@@ -11,6 +11,7 @@ import sys
 
 from pipelines.config import LATEST_COMPLETE_PERIOD
 from pipelines.errors import ConfigError
+from pipelines.shards import partition_classes
 from pipelines.summary import print_summary
 
 # the command's exit codes (README, "What bad input gets")
@@ -92,13 +93,8 @@ def _run_cycle(
         print(choice.describe(), flush=True)
         cycle = cycle_key(choice.cycle_date) if choice.cycle_date is not None else None
     cycle = current_cycle(config, cycle)
-    chosen = classes or list(config.product_classes)
-    unknown = [c for c in chosen if c not in config.product_classes]
-    if unknown:
-        raise ConfigError(
-            f"{config.source}: --class {unknown} not under product_classes; valid classes are "
-            f"{sorted(config.product_classes)}"
-        )
+    chosen = chosen_partitions(config, classes)
+    every_key = partition_classes(config)
     if parallel < 1:
         raise ConfigError(f"--parallel {parallel}: give 1 or more partitions to run at once")
     defs = build_definitions(config_path)
@@ -156,7 +152,7 @@ def _run_cycle(
                 run_cycle_key,
                 run_classes,
                 parallel=parallel,
-                all_classes=list(config.product_classes),
+                all_classes=every_key,
                 first=first,
                 run_config=run_config,
                 on_start=started,
@@ -169,7 +165,7 @@ def _run_cycle(
             instance,
             run_cycle_key,
             run_classes,
-            all_classes=list(config.product_classes),
+            all_classes=every_key,
             selection=run_selection,
             run_config=run_config,
             on_start=started,
@@ -189,8 +185,8 @@ def _run_cycle(
                     f"backfill: cycle {earlier} is not published in the store yet; running it first "
                     "(share drift compares with it)"
                 )
-                now.update(cycle=earlier, what="whole cycle", of=len(config.product_classes))
-                past = by_cycle[earlier] = run_classes(earlier, list(config.product_classes), None, None)
+                now.update(cycle=earlier, what="whole cycle", of=len(every_key))
+                past = by_cycle[earlier] = run_classes(earlier, every_key, None, None)
                 every += past
                 ok = ok and all(o.success for o in past) and blocking_checks_pass(past)
             now.update(cycle=cycle, what=what, of=len(chosen))
@@ -223,6 +219,23 @@ def _run_cycle(
     if report is not None:
         report.update(cycle_summary(command, cycle, code, by_cycle, display.summary(), str(page)))
     return code
+
+
+def chosen_partitions(config, classes: list[str] | None) -> list[str]:
+    """The product-class partition keys to run: every class's (a class cut into shards: its shards), or those of
+    `--class` (a class: all its shards; a shard's own key `seasonal~2of4`: that shard); a ConfigError naming an
+    unknown one."""
+    every = partition_classes(config)
+    if not classes:
+        return every
+    unknown = [c for c in classes if c not in config.product_classes and c not in every]
+    if unknown:
+        raise ConfigError(
+            f"{config.source}: --class {unknown} not under product_classes; valid classes are "
+            f"{sorted(config.product_classes)} (or one shard of a class cut into shards: {every})"
+        )
+    keys = [k for c in classes for k in (partition_classes(config, [c]) if c in config.product_classes else [c])]
+    return list(dict.fromkeys(keys))
 
 
 def _display_stream():

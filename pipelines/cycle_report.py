@@ -23,6 +23,7 @@ from pipelines.config import PlanningConfig
 from pipelines.engines import report_charts, report_html
 from pipelines.partitions import partition_key
 from pipelines.resources import read_table, report_folder
+from pipelines.shards import partition_classes, split_class_key
 from pipelines.tables import MODELS
 
 REPORT_FILE = "cycle_report.html"
@@ -41,11 +42,12 @@ def check_descriptions() -> dict[tuple[str, str], str]:
 def latest_check_results(
     instance: dg.DagsterInstance, cycle: str, classes: list[str], runs_per_class: int = 20
 ) -> pd.DataFrame:
-    """The newest evaluation of every check in each class's partition of `cycle` (from the runs of that partition)."""
+    """The newest evaluation of every check in each class's partition of `cycle` (from the runs of that partition);
+    `classes` are partition keys (a class cut into shards: each shard's key, its rows named by the class)."""
     descriptions = check_descriptions()
     rows = []
-    for product_class in classes:
-        key = str(partition_key(cycle, product_class))
+    for class_key in classes:
+        key, product_class = str(partition_key(cycle, class_key)), split_class_key(class_key)[0]
         runs = instance.get_runs(filters=dg.RunsFilter(tags={"dagster/partition": key}), limit=runs_per_class)
         seen: set[tuple[str, str]] = set()
         for run in runs:  # newest first
@@ -103,11 +105,16 @@ def write_cycle_report(config: PlanningConfig, instance: dg.DagsterInstance, cyc
 
     shares = table("share_tables")
     classes = list(config.product_classes)
-    checks = latest_check_results(instance, cycle, classes)
+    checks = latest_check_results(instance, cycle, partition_classes(config))
     choice = table("strategy_choice")  # the decision the cycle stored, not one made again from today's config
     drift = table("share_drift")
     charts = {
-        c: [n for n in (report_charts.chart_file_name(k, c, cycle) for k in CHART_KINDS) if (folder / n).exists()]
+        c: [
+            n
+            for key in partition_classes(config, [c])  # a class cut into shards: each shard's charts
+            for n in (report_charts.chart_file_name(k, key, cycle) for k in CHART_KINDS)
+            if (folder / n).exists()
+        ]
         for c in classes
     }
     page = report_html.cycle_report_html(

@@ -14,6 +14,7 @@ from pipelines.engines.inputs import find_files, sha256
 from pipelines.errors import PlanningError
 from pipelines.partitions import current_cycle, partition_key, register_partitions
 from pipelines.resources import PlanningConfigResource
+from pipelines.shards import partition_classes, split_class_key
 from pipelines.store import open_store
 from pipelines.store.dagster_io import mark_dead_runs_failed
 
@@ -39,7 +40,8 @@ def start_cycle(instance: dg.DagsterInstance, config, cycle: str, classes: list[
     others' new tables beside that class's old ones.
     """
     register_partitions(instance, cycle, classes)
-    open_store(config.store.path).begin(cycle, classes, command=by)
+    names = list(dict.fromkeys(split_class_key(k)[0] for k in classes))  # the classes of the keys, once each
+    open_store(config.store.path).begin(cycle, names, command=by)
 
 
 def cycle_run_requests(cycle: str, classes: list[str], run_key_prefix: str) -> list[dg.RunRequest]:
@@ -74,7 +76,7 @@ def cycle_schedule_for(cron: str, period: str = "week") -> dg.ScheduleDefinition
             cycle = current_cycle(config)
         except PlanningError as err:
             return dg.SkipReason(f"no cycle started: {err}")
-        classes = list(config.product_classes)
+        classes = partition_classes(config)  # a class cut into shards: one key per shard
         start_cycle(context.instance, config, cycle, classes, by=f"schedule {CYCLE_SCHEDULE}")
         return cycle_run_requests(
             cycle, classes, run_key_prefix=f"schedule:{context.scheduled_execution_time:%Y-%m-%dT%H:%M}"
@@ -115,7 +117,7 @@ def new_history_file_sensor(context: dg.SensorEvaluationContext, planning: Plann
         cycle = current_cycle(config)
     except PlanningError as err:
         return dg.SkipReason(f"history changed ({', '.join(changed)}) but no cycle can start: {err}")
-    classes = list(config.product_classes)
+    classes = partition_classes(config)  # a class cut into shards: one key per shard
     start_cycle(context.instance, config, cycle, classes, by=f"sensor {NEW_HISTORY_SENSOR}")
     digest = sha256_of_signature(signature)
     return dg.SensorResult(

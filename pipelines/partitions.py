@@ -11,6 +11,10 @@ Both dimensions are dynamic: their keys come from the config and the data,
 which are read when a cycle starts, never at import time. A partition's run
 sees the planning config narrowed to its cycle date and its class
 (`narrow_config`, called by `assets.factory`), so the stages need not know about partitions.
+
+A class cut into shards (`scale.shards`, `pipelines.shards`) has one
+product-class key per shard (`seasonal~2of4`); `register_partitions` is
+given the keys of `pipelines.shards.partition_classes`.
 """
 
 from __future__ import annotations
@@ -24,6 +28,7 @@ import pandas as pd
 from pipelines.calendar import is_period_start
 from pipelines.config import PlanningConfig
 from pipelines.errors import ConfigError
+from pipelines.shards import split_class_key
 
 CYCLE = "cycle"
 PRODUCT_CLASS = "product_class"
@@ -54,12 +59,14 @@ def split_key(key: str | dg.MultiPartitionKey) -> tuple[str, str]:
 
 
 def narrow_config(config: PlanningConfig, cycle: str, product_class: str) -> PlanningConfig:
-    """The config of one partition: calendar.cycle_date set to `cycle`, only `product_class` kept.
+    """The config of one partition: calendar.cycle_date set to `cycle`, only `product_class` kept (a shard's key
+    `seasonal~2of4` keeps its class).
 
     Raises a ConfigError naming the file when the class is not configured or
     the cycle date does not start a period, so a stale partition key (a class
     removed from the config) fails with a message, not a KeyError.
     """
+    product_class = split_class_key(product_class)[0]
     if product_class not in config.product_classes:
         raise ConfigError(
             f"{config.source}: partition product class {product_class!r} is not under product_classes "

@@ -34,14 +34,25 @@ VERSION_COLUMNS = ["asset", "shard", "file", "rows", "run_id", "written_at"]
 UNPROVEN_COLUMNS = ["asset", "shard", "run_id", "proof"]
 
 
-def table_versions(store: Store, cycle: str, product_class: str, tables: list[str]) -> pd.DataFrame:
-    """The latest version of each table's partition, one row per shard (a table never written: file None)."""
+def table_versions(
+    store: Store, cycle: str, product_class: str, tables: list[str], shards: list[str] | None = None
+) -> pd.DataFrame:
+    """The latest version of each table's partition, one row per shard (a table never written: file None).
+
+    `shards`: the class's shards under the config (`pipelines.shards.store_shards`); a folder of another
+    shard count (left from before the config's scale changed) is left out, a shard never written is a row."""
     rows = []
     for table in tables:
         latest = store.latest(table, cycle, product_class)
+        if shards is not None:
+            latest = {s: latest.get(s) for s in shards}
         if not latest:
             rows.append({"asset": table, "shard": "0", "file": None, "rows": 0, "run_id": None, "written_at": None})
         for shard, p in latest.items():
+            if p is None:
+                rows.append({"asset": table, "shard": shard, "file": None, "rows": 0, "run_id": None,
+                             "written_at": None})
+                continue
             rows.append(
                 {
                     "asset": table,
@@ -70,16 +81,29 @@ def trusted_versions(store: Store, cycle: str, product_class: str) -> set[tuple[
 
 
 def proven_versions(
-    store: Store, instance, run_id: str, cycle: str, product_class: str, tables: list[str], blocking: dict
+    store: Store, instance, run_id: str, cycle: str, product_class: str, tables: list[str], blocking: dict,
+    shards: list[str] | None = None,
 ) -> pd.DataFrame:
     """`table_versions` with `proven` and `proof` (prove_checks against the Dagster instance's check runs)."""
-    versions = table_versions(store, cycle, product_class, tables)
+    versions = table_versions(store, cycle, product_class, tables, shards)
     return prove_checks(instance, run_id, versions, blocking, trusted_versions(store, cycle, product_class))
 
 
-def unproven_versions(versions: pd.DataFrame) -> pd.DataFrame:
-    """The versions not proven, with the proof that failed: the failing rows of `tables_passed_their_checks`."""
-    return versions.loc[~versions["proven"].astype(bool), UNPROVEN_COLUMNS]
+def unproven_versions(versions: pd.DataFrame, shard: str | None = None) -> pd.DataFrame:
+    """The versions not proven, with the proof that failed: the failing rows of `tables_passed_their_checks`.
+
+    `shard`: the run's own shard of a class cut into shards; the other shards' versions are not its to prove
+    (`waiting_shards`)."""
+    mine = versions if shard is None else versions[versions["shard"] == shard]
+    return mine.loc[~mine["proven"].astype(bool), UNPROVEN_COLUMNS]
+
+
+def waiting_shards(versions: pd.DataFrame, shard: str | None) -> list[str]:
+    """The other shards of the class with a table not (yet) written and proven: the class waits for them."""
+    if shard is None:
+        return []
+    others = versions[(versions["shard"] != shard) & ~versions["proven"].astype(bool)]
+    return sorted(others["shard"].unique())
 
 
 def not_complete_message(cycle: str, product_class: str, unproven: pd.DataFrame) -> str:

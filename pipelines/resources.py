@@ -8,7 +8,10 @@ and loads inputs from the latest versions. For the whole run it holds the
 partition's one-writer lock (taken when the run's resources are set up,
 released when they are torn down; the kernel releases it when the run's
 process dies), and it marks the class pending: a run rewriting it means the
-class's last complete versions no longer count towards a publication.
+class's last complete versions no longer count towards a publication. A
+shard's partition (`seasonal~2of4`, `pipelines.shards`) is the class's
+`shard=2of4` folder: its run writes and reads that shard alone, under a
+lock of its own, so the shards of a class run at once.
 """
 
 from __future__ import annotations
@@ -25,6 +28,7 @@ from pydantic import PrivateAttr
 
 from pipelines.config import PlanningConfig, load_config
 from pipelines.partitions import split_key
+from pipelines.shards import split_class_key
 from pipelines.store import (  # noqa: F401  (the store's public functions, where callers have found them)
     PARTITION_CLASS,
     PARTITION_COLUMNS,
@@ -88,7 +92,8 @@ class PartitionStore(dg.ConfigurableIOManager):
         mine = process_tags()
         if context.instance is not None and any(run.tags.get(k) != v for k, v in mine.items()):
             context.instance.add_run_tags(run.run_id, mine)
-        cycle, product_class = split_key(key)
+        cycle, class_key = split_key(key)
+        product_class = split_class_key(class_key)[0]
         wait = self.planning.config.store.lock_wait_minutes * 60
         log = context.log
 
@@ -97,7 +102,7 @@ class PartitionStore(dg.ConfigurableIOManager):
                 log.warning(message)
 
         lock = self.store.partition_lock(
-            cycle, product_class, run_id=run.run_id, command=f"run of {run.job_name}", wait_seconds=wait, say=say
+            cycle, class_key, run_id=run.run_id, command=f"run of {run.job_name}", wait_seconds=wait, say=say
         )
         try:
             lock.__enter__()
@@ -117,8 +122,9 @@ class PartitionStore(dg.ConfigurableIOManager):
 
     def handle_output(self, context: dg.OutputContext, obj) -> None:
         table = context.asset_key.path[-1]
-        cycle, product_class = split_key(context.asset_partition_key)
-        pointer = self.store.write(table, cycle, product_class, obj, run_id=context.run_id)
+        cycle, key = split_key(context.asset_partition_key)
+        product_class, shard = split_class_key(key)
+        pointer = self.store.write(table, cycle, product_class, obj, run_id=context.run_id, shard=shard)
         folder = self.store.partition_dir(table, cycle, product_class, pointer["shard"])
         context.add_output_metadata(
             {
@@ -132,14 +138,16 @@ class PartitionStore(dg.ConfigurableIOManager):
 
     def load_input(self, context: dg.InputContext) -> pd.DataFrame:
         table = context.upstream_output.asset_key.path[-1]
-        cycle, product_class = split_key(context.asset_partition_key)
-        if not partition_stored(self.path, table, cycle, product_class):
+        cycle, key = split_key(context.asset_partition_key)
+        product_class, shard = split_class_key(key)
+        if not partition_stored(self.path, table, cycle, product_class, shard):
             raise FileNotFoundError(
-                f"partition {cycle}|{product_class} of {table!r} is not in the store {self.path}; materialize {table} "
-                f"for that partition first (python -m pipelines cycle --cycle {cycle} --class {product_class})"
+                f"partition {cycle}|{key} of {table!r} is not in the store {self.path}; materialize {table} "
+                f"for that partition first (python -m pipelines cycle --cycle {cycle} --class {key})"
             )
         # an input annotated as a pyarrow Table gets one (columnar stages), any other a pandas frame
         wants_arrow = getattr(context.dagster_type, "typing_type", None) is pa.Table
         return read_table(
-            self.path, table, cycle=cycle, product_class=product_class, versions="latest", as_arrow=wants_arrow
+            self.path, table, cycle=cycle, product_class=product_class, versions="latest", as_arrow=wants_arrow,
+            shard=shard,
         )

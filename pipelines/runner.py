@@ -24,6 +24,7 @@ import dagster as dg
 from pipelines.errors import ConfigError, PlanningError
 from pipelines.jobs import CYCLE_JOB
 from pipelines.partitions import partition_key, register_partitions
+from pipelines.shards import split_class_key
 from pipelines.store.dagster_io import process_tags
 
 
@@ -147,6 +148,11 @@ def rebuild_selection(defs: dg.Definitions, first: str) -> list[dg.AssetKey]:
     return sorted(wanted.resolve(graph), key=lambda k: k.to_user_string())
 
 
+def class_names(keys: list[str]) -> list[str]:
+    """The classes of product-class partition keys (a shard's key `seasonal~2of4` is class `seasonal`), once each."""
+    return list(dict.fromkeys(split_class_key(k)[0] for k in keys))
+
+
 def store_of(defs: dg.Definitions):
     """The store the definitions' IO manager writes."""
     return defs.resources["io_manager"].store
@@ -177,7 +183,7 @@ def run_partitions(
     """
     register_partitions(instance, cycle, list(all_classes or classes))
     store = store_of(defs)
-    store.begin(cycle, list(classes), command=command)
+    store.begin(cycle, class_names(classes), command=command)
     job = defs.resolve_job_def(CYCLE_JOB)
     run = CycleRun(cycle=cycle)
     for i, product_class in enumerate(classes, 1):
@@ -279,7 +285,7 @@ def run_partitions_parallel(
     from pipelines.definitions import build_definitions
 
     register_partitions(instance, cycle, list(all_classes))
-    store_of(build_definitions(config_path)).begin(cycle, list(classes), command=command)
+    store_of(build_definitions(config_path)).begin(cycle, class_names(classes), command=command)
     context = multiprocessing.get_context("spawn")
     waiting = list(enumerate(classes, 1))
     running: dict[str, tuple] = {}

@@ -47,8 +47,10 @@ def demo_config(classes: dict[str, dict] | None = None, **sections) -> PlanningC
 def run_partition(config: PlanningConfig, cycle: str, product_class: str, backtest: bool = False) -> PartitionRun:
     from assets.factory import Partition, graph_order
     from pipelines import definitions  # noqa: F401  (makes every stage asset, so SPECS holds them all)
+    from pipelines.shards import shard_of, split_class_key
 
-    part = Partition(narrow_config(config, cycle, product_class), config, cycle, product_class)
+    name = split_class_key(product_class)[0]  # a shard's key (`spares~2of3`) runs that shard of its class
+    part = Partition(narrow_config(config, cycle, product_class), config, cycle, name, shard_of(config, product_class))
     tables: dict[str, pd.DataFrame] = {}
     settings: dict[str, object] = {}
     for spec in graph_order():
@@ -61,8 +63,24 @@ def run_partition(config: PlanningConfig, cycle: str, product_class: str, backte
         frames = {name: tables[name] for name in spec.ins}
         if first == "share_drift":
             frames.update(previous=tables["share_tables"], previous_cycle=cycle)
-        settings[first] = spec.settings(part)
+        if first == "statistical_forecast" and part.shard is not None:  # the asset reads the shard's calendar
+            settings[first] = shard_forecast_settings(part, tables["cycle_calendar"])  # from the store; here given
+        else:
+            settings[first] = spec.settings(part)
         result = spec.run(**frames, settings=settings[first])
         for table in spec.tables:
             tables[table.name] = MODELS[table.name].validate(result.outputs[table.name])
     return PartitionRun(part.config, tables, settings)
+
+
+def shard_forecast_settings(part, calendar: pd.DataFrame):
+    """A shard's forecast settings as `assets.statistical_forecast.forecast_settings` makes them, from its
+    cycle_calendar given here rather than read from the store."""
+    import dataclasses
+
+    from pipelines.calendar import period_ordinal
+    from pipelines.stages.statistical_forecast import ForecastSettings
+
+    settings = ForecastSettings.of(part.config)
+    first = int(period_ordinal(pd.DatetimeIndex([calendar["history_start"].iloc[0]]), settings.period)[0])
+    return dataclasses.replace(settings, residual_start=first)

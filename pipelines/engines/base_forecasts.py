@@ -82,6 +82,7 @@ def base_forecasts(
     seasonality: Mapping[str, str] | None = None,
     season: SeasonPlan | None = None,
     sd: bool = False,
+    residual_start: int | None = None,
 ) -> BaseForecasts:
     """Run the class's models at the grains its strategy needs (`pipelines.engines.hierarchy`).
 
@@ -145,8 +146,10 @@ def base_forecasts(
     parent_res = leaf_res = None
     if any(s in NEEDS_RESIDUALS for s in strategies.values()):
         both = np.concatenate([p_grid.ordinal, c_grid.ordinal])
-        first = int(both.min()) if len(both) else 0
-        end = int(both.max()) + 1 if len(both) else 0
+        # the window starts at the first period of any series here, or at `residual_start` (a shard of a class:
+        # the class's first period, so each parent's residual window is the one the whole class would use)
+        first = residual_start if residual_start is not None else int(both.min()) if len(both) else 0
+        end = int(both.max()) + 1 if len(both) else first
         parent_res = residual_matrix(p_grid, pfit, first, end)
         leaf_res = residual_matrix(c_grid, lfit, first, end)
     models = pd.concat(

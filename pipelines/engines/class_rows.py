@@ -1,4 +1,4 @@
-"""The rows of one product class: what every input asset of a partition keeps."""
+"""The rows of one product class (of one shard of it): what every input asset of a partition keeps."""
 
 from __future__ import annotations
 
@@ -8,12 +8,14 @@ from pathlib import Path
 import pandas as pd
 
 from pipelines.config_inputs import InputsConfig
+from pipelines.shards import Shard
 
 
 @dataclass(frozen=True)
 class InputSettings:
     """Where the input files are and how they are read, the partition's class, every configured class (to refuse
-    unknown ones) and the config's measures (that adjustments and pins may name)."""
+    unknown ones) and the config's measures (that adjustments and pins may name); the partition's shard (None:
+    the class is not cut)."""
 
     folder: Path
     product_class: str
@@ -21,6 +23,7 @@ class InputSettings:
     source: str = "<memory>"
     inputs: InputsConfig = InputsConfig()
     measures: tuple[str, ...] = ()
+    shard: Shard | None = None
 
 
 def input_files(files) -> pd.DataFrame:
@@ -33,16 +36,24 @@ def class_map(products_master: pd.DataFrame) -> pd.Series:
     return products_master.drop_duplicates("product").set_index("product")["product_class"]
 
 
+def shard_rows(frame: pd.DataFrame, shard: Shard | None) -> pd.DataFrame:
+    """The rows of `shard` (all of them without a shard, or when the frame lacks a column the shard hashes, such
+    as the product master under a product x site hash). The index is kept."""
+    if shard is None or not all(c in frame.columns for c in shard.by):
+        return frame
+    return frame.loc[shard.rows(frame)]
+
+
 def class_rows(
-    frame: pd.DataFrame, classes: pd.Series, product_class: str, keep_index: bool = False
+    frame: pd.DataFrame, classes: pd.Series, product_class: str, keep_index: bool = False, shard: Shard | None = None
 ) -> pd.DataFrame:
     """The rows of `frame` whose product is in `product_class` (`classes`: product -> class of the master file).
 
     A row whose product is not in the master belongs to no class and is kept in
-    every class, so the stage's schema or rule checks report it instead of it
-    vanishing. `keep_index` keeps the frame's index (the file rows of master
+    every class (of a sharded class: in the shard its key hashes to), so the stage's schema or rule checks
+    report it instead of it vanishing. `keep_index` keeps the frame's index (the file rows of master
     data, `source_row`), so a failing row can still be named.
     """
     cls = frame["product"].map(classes)
-    rows = frame.loc[(cls == product_class) | cls.isna()]
+    rows = shard_rows(frame.loc[(cls == product_class) | cls.isna()], shard)
     return rows if keep_index else rows.reset_index(drop=True)

@@ -36,9 +36,13 @@ class UsedLines:
 
 
 def reject_lines(
-    raw: pd.DataFrame, products: pd.DataFrame, spans: pd.DataFrame, calendar, source, plausible: PlausibilityConfig
+    raw: pd.DataFrame, products: pd.DataFrame, spans: pd.DataFrame, calendar, source, plausible: PlausibilityConfig,
+    first_period: int | None = None,
 ) -> tuple[UsedLines, pd.DataFrame, pd.Timestamp]:
     """Split raw lines into usable lines (parsed, as integer codes) and rejected lines (with reason).
+
+    `first_period` (a shard of a class, `pipelines.shards`): the class's first trusted period (ordinal), so the
+    shard rejects as `isolated_date` exactly the lines the whole class would; None: from these lines.
 
     Returns (used, rejected, cycle_date). The keys are coded once, as integers
     (`keys.joint_codes` over the lines and the spans), so the lines are never
@@ -106,7 +110,7 @@ def reject_lines(
         mark((dates >= highest).to_numpy() | (outside > 0), "date_after_window")
     history = (reason == 0) & (ordinals < cycle_ord) & dates.notna().to_numpy()
     if history.any():
-        first_ord, _ = trusted_extent(ordinals[history], gap, trim_end=False)
+        first_ord = trusted_extent(ordinals[history], gap, trim_end=False)[0] if first_period is None else first_period
         mark(history & (ordinals < first_ord), "isolated_date")
     mark((reason == 0) & dates.notna().to_numpy() & (ordinals >= cycle_ord), "on_or_after_cycle_date")
 
@@ -289,17 +293,22 @@ def line_accounting(raw_lines: int, cleaned: pd.DataFrame, rejected: pd.DataFram
     }
 
 
-def cycle_calendar(cleaned: pd.DataFrame, calendar, cycle_date: pd.Timestamp) -> pd.DataFrame:
-    """One row describing the cycle: its date, period kind, horizon and history range (`calendar`: the config's)."""
+def cycle_calendar(
+    cleaned: pd.DataFrame, calendar, cycle_date: pd.Timestamp, first_period: int | None = None
+) -> pd.DataFrame:
+    """One row describing the cycle: its date, period kind, horizon and history range (`calendar`: the config's;
+    `first_period`: a shard's class's first trusted period, which starts the history range in place of its own)."""
     period = calendar.period
     horizon = horizon_starts(cycle_date, calendar.horizon, period)
     start = cleaned["period_start"].min() if len(cleaned) else pd.NaT
+    if first_period is not None:
+        start = ordinal_to_start(np.array([first_period]), period)[0]
     periods = (
         int(
             period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0]
             - period_ordinal(pd.DatetimeIndex([start]), period)[0]
         )
-        if len(cleaned)
+        if pd.notna(start)
         else 0
     )
     return pd.DataFrame(

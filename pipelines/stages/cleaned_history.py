@@ -161,12 +161,14 @@ def clean_history(
     if not isinstance(config, CleaningSettings):  # a whole PlanningConfig: what the stage reads of it
         config = CleaningSettings.of(config)
     period = config.calendar.period
-    used, rejected, cycle_date = reject_lines(raw, products, spans, config.calendar, config.source, config.plausible)
+    first = config.first_period  # a shard: its class's, so the grid and the fill ranges start where the class's do
+    used, rejected, cycle_date = reject_lines(raw, products, spans, config.calendar, config.source, config.plausible,
+                                              first)
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
 
     # --- the grid: every leaf's fill range (from its customer span start, or its first line), class and parent
     leaves = used.leaves
-    first_ord = int(used.ordinal.min()) if len(used.leaf_code) else cycle_ord - 1
+    first_ord = first if first is not None else int(used.ordinal.min()) if len(used.leaf_code) else cycle_ord - 1
     t = cycle_ord - first_ord  # periods in the grid: first history period .. cycle - 1
     lines = Lines.of(used.leaf_code, (used.ordinal - first_ord).astype(np.int32), used.quantity)
     del used  # the lines live on grouped by leaf only
@@ -219,6 +221,7 @@ class CleaningSettings:
     picture: str = "cleansing.png"  # the corrections chart, written beside the cycle's report
     report_folder: Path = Path("var/reports")
     block_cells: int = BLOCK_CELLS  # leaf x period cells cleaned at a time: bounds the dense matrices' memory
+    first_period: int | None = None  # a shard of a class: the class's first trusted period (ordinal)
 
     @classmethod
     def of(cls, config: PlanningConfig, report_folder: Path = Path("var/reports")) -> CleaningSettings:
@@ -284,7 +287,7 @@ def run(
             "cleaned_history": cleaned,
             "rejected_rows": rejected,
             "history_corrections": corrections,
-            "cycle_calendar": cycle_calendar(cleaned, settings.calendar, result.cycle_date),
+            "cycle_calendar": cycle_calendar(cleaned, settings.calendar, result.cycle_date, settings.first_period),
         },
         metadata={
             "cleaned_history": cleaned_figures,

@@ -25,6 +25,7 @@ class ReportSettings:
     product_class: str
     cycle: str
     folder: Path
+    files_as: str = ""  # the name in the chart files: a shard's key (`spares~2of3`), so shards write apart
 
 
 def run(
@@ -44,7 +45,7 @@ def run(
     }
     rows, files, figures = [], {}, {}
     for kind, png in pictures.items():
-        name = chart_file_name(kind, settings.product_class, settings.cycle)
+        name = chart_file_name(kind, settings.files_as or settings.product_class, settings.cycle)
         path = settings.folder / name
         files[name] = png
         rows.append({"product_class": settings.product_class, "kind": kind, "path": str(path), "bytes": len(png)})

@@ -23,7 +23,7 @@ import pandera.errors
 
 from pipelines.checks import REFERENCES_KNOWN
 from pipelines.config_inputs import InputsConfig
-from pipelines.engines.class_rows import InputSettings, class_map, class_rows, input_files
+from pipelines.engines.class_rows import InputSettings, class_map, class_rows, input_files, shard_rows
 from pipelines.engines.inputs import InputFile, blanks_to_none, find_files, read_text_table, sha256
 from pipelines.engines.plausible import normalize_dates
 from pipelines.errors import ConfigError
@@ -110,7 +110,7 @@ def run_products(settings: InputSettings, log: Log = quiet) -> StageResult:
                 f"valid classes are {sorted(settings.known_classes)}. Add a section for each "
                 f"under product_classes, or correct the product_class column."
             )
-        mine = frame[frame["product_class"] == settings.product_class]
+        mine = shard_rows(frame[frame["product_class"] == settings.product_class], settings.shard)
     figures = {"files": input_files(files), "product_class": settings.product_class}
     return StageResult(
         outputs={"products": mine, "product_class_map": master.reset_index(drop=True)},
@@ -126,7 +126,9 @@ def class_input_run(name: str, loader: Callable, figures: Callable[[pd.DataFrame
 
     def run(product_class_map: pd.DataFrame, settings: InputSettings, log: Log = quiet) -> StageResult:
         frame, files = loader(settings.folder, settings.inputs)
-        mine = class_rows(frame, class_map(product_class_map), settings.product_class, keep_index=True)
+        mine = class_rows(
+            frame, class_map(product_class_map), settings.product_class, keep_index=True, shard=settings.shard
+        )
         spans = frame if name == "customer_spans" else load_customer_spans(settings.folder, settings.inputs)[0]
         file = files[0].path.name if files else None
         failing = unknown_references(name, mine, product_class_map, spans, settings.measures, file=file or "")

@@ -24,7 +24,7 @@ def run(product_class_map: pd.DataFrame, settings: InputSettings, log: Log = qui
     """
     classes = class_map(product_class_map)
     lines, files = load_raw_history(settings.folder, settings.inputs)
-    mine = class_rows(lines, classes, settings.product_class)
+    mine = class_rows(lines, classes, settings.product_class, shard=settings.shard)
     source = settings.inputs.history.describe() if settings.inputs.history is not None else str(settings.folder)
     log(
         f"{settings.product_class}: {len(mine)} of {len(lines)} history lines from "

@@ -120,6 +120,7 @@ class ForecastSettings:
     seasonal_groups: Mapping[str, str] = field(default_factory=dict)  # class -> seasonal_group
     levels: tuple[float, ...] = ()  # prediction interval levels (%)
     upper_levels: tuple[str, ...] = ()  # aggregation levels above the parent, bottom to top
+    residual_start: int | None = None  # a shard: its class's first period starts the MinT / WLS residual window
 
     @classmethod
     def of(cls, config) -> ForecastSettings:
@@ -200,7 +201,7 @@ def forecast_cycle(
     fits = SeriesProgress(series_to_fit(parent_class, child_class, strategies), log)
     base = base_forecasts(
         p_grid, c_grid, parent_class, child_class, strategies, settings.models, horizon, log, progress=fits.advance,
-        seasonality=modes, season=season, sd=bool(settings.levels),
+        seasonality=modes, season=season, sd=bool(settings.levels), residual_start=settings.residual_start,
     )
 
     # top-down basis: the reinitialized target (the period's share where the targets are all 0)

@@ -49,6 +49,7 @@ def read_table(
     where: dict[str, str] | None = None,
     versions: str = "published",
     as_arrow: bool = False,
+    shard: str | None = None,
 ) -> pd.DataFrame | pa.Table | None:
     """A table of the store (None when it does not exist), for one cycle and/or class or all of them.
 
@@ -58,7 +59,8 @@ def read_table(
     versions last written, what the pipeline's own steps read). Without
     `with_partition` the partition columns are left out (a frame as the asset
     produced it). `where`: column -> value filters, applied where the table has
-    the column. `as_arrow`: an Arrow table instead of a pandas frame.
+    the column. `as_arrow`: an Arrow table instead of a pandas frame. `shard`: one shard of the class only
+    (a folder name such as `2of4`; default every shard).
     """
     if cycle is not None:
         cycle = str(cycle)
@@ -70,6 +72,7 @@ def read_table(
         with_partition=with_partition,
         where=where,
         as_arrow=as_arrow,
+        shard=shard,
     )
 
 
@@ -86,10 +89,11 @@ def write_partition(
     return open_store(store).write(table, cycle, product_class, data, run_id=run_id)
 
 
-def partition_stored(store: Path | str, table: str, cycle: str, product_class: str) -> bool:
-    """Whether the partition has been written (an empty result counts)."""
+def partition_stored(store: Path | str, table: str, cycle: str, product_class: str, shard: str | None = None) -> bool:
+    """Whether the partition (one shard of it, when given) has been written (an empty result counts)."""
     s = open_store(store)
-    return s.check_layout() and bool(s.latest(table, cycle, product_class))
+    latest = s.check_layout() and s.latest(table, cycle, product_class)
+    return bool(latest) and (shard is None or shard in latest)
 
 
 def stored_cycles(store: Path | str, table: str = "cycle_calendar") -> list[str]:

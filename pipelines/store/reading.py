@@ -118,6 +118,7 @@ class StoreReader(StoreLayout):
         with_partition: bool = False,
         where: dict[str, str] | None = None,
         as_arrow: bool = False,
+        shard: str | None = None,
     ) -> pd.DataFrame | pa.Table | None:
         """The rows of `asset` (None when the store has no such table); see read_table."""
         if asset == WRITTEN:
@@ -132,6 +133,8 @@ class StoreReader(StoreLayout):
         schema = self.schema(asset)
         parts = []
         for entry in self.entries(asset, cycle=cycle, product_class=product_class, versions=versions):
+            if shard is not None and entry["shard"] != shard:
+                continue
             path = self.partition_dir(asset, entry["cycle"], entry["product_class"], entry["shard"]) / entry["file"]
             try:
                 table = arrow.conform(pq.read_table(path), schema)

@@ -32,8 +32,8 @@ Protocol (each step is one atomic rename or single-object write):
 6. a version is deleted once superseded and referenced by neither the class's
    complete record nor the current or previous publication.
 
-Shards (a class cut into N) get their own `shard=<s>` folder below the class;
-until then every partition is shard `0`.
+The shards of a class cut into N (`pipelines.shards`) each have their own
+`shard=<i>of<N>` folder below the class; a class not cut is shard `0`.
 """
 
 from __future__ import annotations
