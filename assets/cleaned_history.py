@@ -15,6 +15,7 @@ REJECTED_ROWS = "rejected_rows"
 HISTORY_CORRECTIONS = "history_corrections"
 CYCLE_CALENDAR = "cycle_calendar"
 
+
 def cleaning_settings(part: Partition) -> stage.CleaningSettings:
     """The partition's cleaning settings; a shard's carry its class's first trusted period (`class_first_period`)."""
     settings = stage.CleaningSettings.of(part.config, report_folder(part.config))
@@ -35,7 +36,7 @@ def class_first_period(part: Partition) -> int | None:
     raw = class_rows(load_raw_history(folder, inputs)[0], classes, part.product_class)
     spans = class_rows(load_customer_spans(folder, inputs)[0], classes, part.product_class)
     used = reject_lines(raw, mine, spans, config.calendar, config.source, inputs.plausible)[0]
-    return int(used["ordinal"].min()) if len(used) else None
+    return int(used.ordinal.min()) if len(used.ordinal) else None
 
 
 cleaned_history = stage_asset(StageAsset(

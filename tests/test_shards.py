@@ -16,6 +16,7 @@ from stage_runs import DEMO, demo_config, run_partition
 from pipelines.cycle_command import chosen_partitions
 from pipelines.engines.class_rows import class_map, class_rows
 from pipelines.errors import ConfigError
+from pipelines.keys import LEAF_ID, PARENT_ID
 from pipelines.shards import (
     PARENT_KEY,
     PRODUCT_KEY,
@@ -133,6 +134,9 @@ LEAF_KEYS = ["product", "site", "customer", "period_start"]
 
 
 def _sorted(frame: pd.DataFrame) -> pd.DataFrame:
+    # the integer ids number the keys within one partition's tables (pipelines.keys), so a shard's differ from the
+    # whole class's; the keys they stand for are compared
+    frame = frame.drop(columns=[LEAF_ID, PARENT_ID], errors="ignore")
     keys = [c for c in LEAF_KEYS + ["measure", "origin", "source_product", "source_customer"] if c in frame.columns]
     return frame.sort_values(keys).reset_index(drop=True)
 

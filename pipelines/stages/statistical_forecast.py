@@ -21,9 +21,8 @@ the one the backtest chose, read from the stored `strategy_choice`):
   forecasts, basis `children_forecast`) or `mint_shrink` / `wls_var` (both
   grains reconciled, basis `reconciled`); see `pipelines.engines.hierarchy`.
 
-Every strategy works on the children active in the period (an inactive
-child's forecast and basis are 0; MinT reconciles the period's
-sub-hierarchy), so no volume is given to a child that cannot carry it.
+Every strategy works on the children active in the period (an inactive child's forecast and basis are 0; MinT
+reconciles the period's sub-hierarchy), so no volume is given to a child that cannot carry it.
 `strategy_forecast` keeps the parent as the strategy produced it: the
 model's forecast (top-down, forecast proportions), the reconciled parent
 (MinT, WLS; negative reconciled leaves are set to 0 and their amount taken
@@ -43,10 +42,9 @@ of `intervals.levels` (`pipelines.engines.forecast_intervals`) and the levels
 above the parent, `hierarchy.upper_levels` (`pipelines.engines.upper_levels`,
 table `upper_level_forecast`) are made by their engines.
 
-The models, demand classes and their conventions are in
-`pipelines.engines.models`. Negative base forecasts (possible from a trended
-ETS) are set to 0 before the strategy. `model_grain` says at which grains the
-class's models ran (parent, leaf or both).
+The models, demand classes and their conventions are in `pipelines.engines.models`. Negative base forecasts
+(possible from a trended ETS) are set to 0 before the strategy. `model_grain` says at which grains the class's
+models ran (parent, leaf or both).
 """
 
 from __future__ import annotations
