@@ -123,8 +123,8 @@ def map_on_cluster(
     from distributed import as_completed
 
     client = cluster_client(engine.address, engine.workers)
-    scattered = client.scatter(frames)
+    scattered = client.scatter(frames, hash=False)  # own keys: equal frames of two calls must not share one
     futures = [client.submit(fit, frame, **options, pure=False) for frame in scattered]
     for future in as_completed(futures):
         done(future.result())
-    client.cancel(scattered)
+    # the frames and results leave the cluster when their futures go out of scope here
