@@ -21,8 +21,9 @@ the clock covers the call only):
   and 2 worker processes (one thread each), started and warmed up (one small
   AutoETS chunk per worker) before the clock; its start time is printed apart.
 
-Printed: wall time per run, the load average (`os.getloadavg`) before and
-after it, and the ratios dask1 / dask2 (the issue's "2 workers >= 1.7x
+Printed: wall time per run, the CPU seconds it used (this process and its
+pool's processes; for Dask runs the workers' too, asked of each worker), the
+load average (`os.getloadavg`) before and after it, and the ratios dask1 / dask2 (the issue's "2 workers >= 1.7x
 faster than 1"), local2 / direct2 and local1 / direct1 (the engine over
 statsforecast alone). Every run's forecasts are compared with the first run's:
 they must be equal to the last bit (the script stops otherwise).
@@ -68,6 +69,20 @@ def parent_grid(n_series: int, periods: int, seed: int) -> SeriesGrid:
 
 def load() -> float:
     return os.getloadavg()[0]
+
+
+def _cpu_seconds() -> float:
+    t = os.times()
+    return t.user + t.system + t.children_user + t.children_system
+
+
+def cpu_now(run: str) -> float:
+    """CPU seconds used so far by this process and its finished children, plus the cluster's workers (dask runs)."""
+    total = _cpu_seconds()
+    if run.startswith("dask"):
+        client = model_engine.cluster_client(None, int(run[-1]))
+        total += sum(client.run(_cpu_seconds).values())
+    return total
 
 
 def timed(run: str, grid: SeriesGrid, horizon: int) -> tuple[float, np.ndarray]:
@@ -129,20 +144,22 @@ def main(argv=None) -> None:
             start_s = None
             if run.startswith("dask"):
                 start_s = start_cluster(int(run[-1]), args.periods, args.horizon)
-            before = load()
+            before, cpu_before = load(), cpu_now(run)
             seconds, fc = timed(run, grid, args.horizon)
-            after = load()
+            after, cpu = load(), cpu_now(run) - cpu_before
             if run.startswith("dask"):
                 close_clusters()
             if reference is None:
                 reference = fc
             elif not np.array_equal(np.clip(fc, 0, None) if run.startswith("direct") else fc, reference):
                 raise SystemExit(f"{run}: forecasts differ from the first run's")
-            row = {"repeat": rep + 1, "run": run, "seconds": round(seconds, 2), "load_before": round(before, 2),
+            row = {"repeat": rep + 1, "run": run, "seconds": round(seconds, 2), "cpu_s": round(cpu, 2),
+                   "load_before": round(before, 2),
                    "load_after": round(after, 2), "cluster_start_s": None if start_s is None else round(start_s, 1)}
             results.append(row)
             extra = f"  (cluster start + warm-up {start_s:.1f} s, not counted)" if start_s is not None else ""
-            print(f"  {rep + 1} {run:<8} {seconds:8.2f} s   load {before:5.2f} -> {after:5.2f}{extra}", flush=True)
+            print(f"  {rep + 1} {run:<8} {seconds:8.2f} s  cpu {cpu:8.2f} s  load {before:5.2f} -> {after:5.2f}{extra}",
+                  flush=True)
     ratios = summary(results)
     if args.json:
         args.json.write_text(json.dumps({"series": n, "periods": args.periods, "horizon": args.horizon,
