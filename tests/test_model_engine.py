@@ -138,3 +138,22 @@ def test_a_chunk_result_put_on_the_wrong_series_is_seen(cluster, monkeypatch):
     on_dask = run_model_groups(grid, names, season, HORIZON, engine=cluster)
     assert not np.array_equal(local.forecast, on_dask.forecast)
     assert np.array_equal(local.forecast[4:], on_dask.forecast[4:])
+
+
+def test_the_forecast_stage_on_dask_equals_it_on_this_machine(cluster):
+    # the demo's consumables partition (AutoETS and Croston groups, group seasonality, top-down, intervals) made by
+    # the stages' own runs twice, config `models` local and dask: every table of the partition equal to the bit
+    import sys
+    from pathlib import Path
+
+    sys.path.insert(0, str(Path(__file__).parent))
+    from stage_runs import demo_config, run_partition
+
+    classes = {"consumables": {"seasonality": "group"}}
+    local = run_partition(demo_config(classes, models={"engine": "local", "n_jobs": 1}), "2026-11-30", "consumables")
+    on_dask = run_partition(demo_config(classes, models={"engine": "dask", "workers": 2}), "2026-11-30", "consumables")
+    assert [s.models.engine for s in on_dask.settings.values() if hasattr(s, "models")][0] == cluster
+    for table in ("parent_forecast", "statistical_forecast", "forecast_models", "forecast_fitted_values",
+                  "upper_level_forecast", "reconciliation", "plan_measures"):
+        pd.testing.assert_frame_equal(local.tables[table], on_dask.tables[table], check_exact=True)
+    assert len(local.tables["forecast_models"]) > 0
