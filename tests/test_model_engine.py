@@ -141,19 +141,28 @@ def test_a_chunk_result_put_on_the_wrong_series_is_seen(cluster, monkeypatch):
 
 
 def test_the_forecast_stage_on_dask_equals_it_on_this_machine(cluster):
-    # the demo's consumables partition (AutoETS and Croston groups, group seasonality, top-down, intervals) made by
-    # the stages' own runs twice, config `models` local and dask: every table of the partition equal to the bit
+    # the demo's consumables partition (AutoETS and Croston groups, group seasonality, top-down, intervals, upper
+    # levels) made by the stages' own runs with models local; then the forecast stage's run again on the same
+    # inputs with models on the cluster: every table it writes equal to the bit
     import sys
     from pathlib import Path
 
     sys.path.insert(0, str(Path(__file__).parent))
     from stage_runs import demo_config, run_partition
 
-    classes = {"consumables": {"seasonality": "group"}}
-    local = run_partition(demo_config(classes, models={"engine": "local", "n_jobs": 1}), "2026-11-30", "consumables")
-    on_dask = run_partition(demo_config(classes, models={"engine": "dask", "workers": 2}), "2026-11-30", "consumables")
-    assert [s.models.engine for s in on_dask.settings.values() if hasattr(s, "models")][0] == cluster
-    for table in ("parent_forecast", "statistical_forecast", "forecast_models", "forecast_fitted_values",
-                  "upper_level_forecast", "reconciliation", "plan_measures"):
-        pd.testing.assert_frame_equal(local.tables[table], on_dask.tables[table], check_exact=True)
-    assert len(local.tables["forecast_models"]) > 0
+    from assets.factory import graph_order
+    from pipelines.tables import MODELS
+
+    config = demo_config({"consumables": {"seasonality": "group"}}, models={"engine": "local", "n_jobs": 1})
+    local = run_partition(config, "2026-11-30", "consumables")
+    spec = next(s for s in graph_order() if "statistical_forecast" in [t.name for t in s.tables])
+    settings = local.settings[spec.tables[0].name]
+    assert settings.models.engine == EngineSettings(n_jobs=1)  # the config's models reached the stage
+    on_dask = dataclasses.replace(settings, models=dataclasses.replace(settings.models, engine=cluster))
+    result = spec.run(**{name: local.tables[name] for name in spec.ins}, settings=on_dask)
+    compared = [t.name for t in spec.tables]
+    assert {"parent_forecast", "statistical_forecast", "forecast_models"} <= set(compared)
+    for table in compared:
+        pd.testing.assert_frame_equal(local.tables[table], MODELS[table].validate(result.outputs[table]),
+                                      check_exact=True)
+    assert (local.tables["forecast_models"]["model"].str.startswith("auto_ets")).any()
