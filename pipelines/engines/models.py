@@ -281,6 +281,12 @@ def run_model_groups(
             if progress:
                 progress(len(ids))
             continue
+        without_rows = starts[ids + 1] == starts[ids]  # nothing to fit: forecast 0, counted done
+        if progress and without_rows.any():
+            progress(int(without_rows.sum()))
+        ids = ids[~without_rows]
+        if not len(ids):
+            continue
         options = dict(name=name, season=int(s), horizon=horizon, tsb=tsb, fitted=fitted, sd=sd)
         started = time.perf_counter()
         if engine.on_cluster:
