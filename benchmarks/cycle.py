@@ -382,7 +382,7 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
         default=10.0,
         help="RSS sampling interval for the 'rss pk' column; 0 = off (default 10)",
     )
-    p.add_argument("--n-jobs", type=int, default=-1, help="execution.n_jobs: statsforecast processes (-1 = every core)")
+    p.add_argument("--n-jobs", type=int, default=-1, help="models.n_jobs: statsforecast processes (-1 = every core)")
     p.add_argument("--no-side-by-side", action="store_true", help="skip the plain DuckDB and numpy versions")
     p.add_argument("--json", default=None, metavar="PATH", help="write the figures as JSON")
     args = p.parse_args(argv)

@@ -186,8 +186,7 @@ def make_config(
     if leaf_grain:
         classes[leaf_grain]["strategy"] = "bottom_up"
     data: dict[str, Any] = {"calendar": {"horizon": horizon}, "product_classes": classes}
-    if n_jobs != 1:
-        data["execution"] = {"n_jobs": n_jobs}
+    data["models"] = {"n_jobs": n_jobs}
     if shortage_rule:
         data["cleansing"] = {"shortages": shortage_rule}
     if "measures" in PlanningConfig.model_fields:

@@ -20,11 +20,11 @@ from pydantic import BaseModel, Field, PrivateAttr, ValidationError, field_valid
 from pipelines.config_forecast import HierarchyConfig, IntervalsConfig
 from pipelines.config_inputs import InputsConfig
 from pipelines.config_scale import ScaleConfig
+from pipelines.config_models import ModelsConfig
 from pipelines.config_sections import (
     DEFAULT_MEASURES,
     BacktestConfig,
     CleansingConfig,
-    ExecutionConfig,
     Frozen,
     LifecycleConfig,
     MeasureConfig,
@@ -124,7 +124,7 @@ class PlanningConfig(Frozen):
         default_factory=lambda: dict(DEFAULT_MEASURES), min_length=1, description="the measures of the plan"
     )
     pins: PinsConfig = PinsConfig()
-    execution: ExecutionConfig = ExecutionConfig()
+    models: ModelsConfig = ModelsConfig()
     intervals: IntervalsConfig = IntervalsConfig()
     hierarchy: HierarchyConfig = HierarchyConfig()
     scale: ScaleConfig = ScaleConfig()
@@ -300,6 +300,18 @@ def upgrade_renamed(data: dict, source: Path) -> tuple[dict, list[str]]:
     """
     data = copy.deepcopy(data)
     messages = []
+    execution = data.get("execution")
+    if isinstance(execution, dict) and "n_jobs" in execution:
+        models = data.setdefault("models", {})
+        if isinstance(models, dict) and "n_jobs" in models:
+            raise ConfigError(f"{source}: gives both models.n_jobs and execution.n_jobs (its name of the last "
+                              f"release); remove execution.n_jobs.")
+        if isinstance(models, dict):
+            models["n_jobs"] = execution.pop("n_jobs")
+            if not execution:
+                del data["execution"]
+            messages.append(f"{source}: execution.n_jobs is renamed models.n_jobs; write models: {{n_jobs: "
+                            f"{models['n_jobs']}}}. execution.n_jobs is read until the next release.")
     classes = data.get("product_classes")
     for name, section in (classes.items() if isinstance(classes, dict) else ()):
         if not isinstance(section, dict):

@@ -381,20 +381,3 @@ class BacktestConfig(Frozen):
         if len(set(v)) != len(v):
             raise ValueError(f"list each strategy once (got {list(v)})")
         return v
-
-
-class ExecutionConfig(Frozen):
-    """How the cycle uses this machine."""
-
-    n_jobs: int = Field(
-        1,
-        ge=-1,
-        description="processes statsforecast uses for each model group (1 = this process; -1 = every core)",
-    )
-
-    @field_validator("n_jobs")
-    @classmethod
-    def _not_zero(cls, v: int) -> int:
-        if v == 0:
-            raise ValueError("n_jobs must be 1 or more, or -1 for every core (got 0)")
-        return v

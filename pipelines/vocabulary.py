@@ -154,6 +154,13 @@ def interval_columns(level: float) -> tuple[str, str]:
 INTERVAL_COLUMN_PATTERN = r"^(lower|upper)_\d+(\.\d+)?$"
 
 
+class ModelEngine(StrEnum):
+    """Where the statsforecast model runs go (config `models.engine`)."""
+
+    LOCAL = "local"
+    DASK = "dask"
+
+
 class OutlierRule(StrEnum):
     HAMPEL = "hampel"
     TUKEY = "tukey"

@@ -207,9 +207,30 @@ def test_the_current_config_reads_without_a_warning(recwarn):
 
 
 def test_n_jobs_is_read_and_zero_is_refused(tmp_path):
-    assert load_config(write(tmp_path, {**MINIMAL, "execution": {"n_jobs": -1}})).execution.n_jobs == -1
-    with pytest.raises(ConfigError, match="execution.n_jobs"):
-        load_config(write(tmp_path, {**MINIMAL, "execution": {"n_jobs": 0}}))
+    assert parse_config(MINIMAL).models.n_jobs == -1  # every core unless the config says otherwise
+    assert load_config(write(tmp_path, {**MINIMAL, "models": {"n_jobs": 1}})).models.n_jobs == 1
+    with pytest.raises(ConfigError, match="models.n_jobs"):
+        load_config(write(tmp_path, {**MINIMAL, "models": {"n_jobs": 0}}))
+
+
+def test_last_releases_execution_n_jobs_is_read_as_models_n_jobs_with_a_warning(tmp_path):
+    with pytest.warns(FutureWarning, match="execution.n_jobs is renamed models.n_jobs"):
+        config = load_config(write(tmp_path, {**MINIMAL, "execution": {"n_jobs": 2}}))
+    assert config.models.n_jobs == 2
+    both = {**MINIMAL, "execution": {"n_jobs": 2}, "models": {"n_jobs": 1}}
+    with pytest.raises(ConfigError, match="both models.n_jobs and execution.n_jobs"):
+        load_config(write(tmp_path, both))
+
+
+def test_models_engine_is_a_choice_and_address_needs_dask(tmp_path):
+    config = load_config(write(tmp_path, {**MINIMAL, "models": {"engine": "dask", "workers": 3}}))
+    assert (config.models.engine, config.models.workers, config.models.address) == ("dask", 3, None)
+    with pytest.raises(ConfigError, match=r"models.engine.*'local', 'dask'|models.engine.*local.*dask"):
+        load_config(write(tmp_path, {**MINIMAL, "models": {"engine": "ray"}}))
+    with pytest.raises(ConfigError, match="only read with engine: dask"):
+        load_config(write(tmp_path, {**MINIMAL, "models": {"address": "tcp://scheduler:8786"}}))
+    with pytest.raises(ConfigError, match="models.workers"):
+        load_config(write(tmp_path, {**MINIMAL, "models": {"engine": "dask", "workers": 0}}))
 
 
 def test_tsb_parameters_are_validated(tmp_path):

@@ -93,3 +93,12 @@ def test_a_run_whose_events_cannot_be_read_is_named_once_and_not_silently_droppe
         "  spares: cannot read the events of run run-9 (database is locked); its progress is not shown, the run "
         "goes on (its result follows)"
     ]
+
+
+def test_a_series_without_rows_given_a_model_is_counted_and_forecast_zero():
+    # series 1 has no rows at all but is named for a model: nothing to fit, 0, still counted done
+    grid = series_grid(np.array([0, 0, 0]), np.array([0, 1, 2]), np.array([3.0, 4.0, 5.0]), 2, 3)
+    counted = []
+    run = run_model_groups(grid, np.array(["ses", "ses"], dtype=object), np.ones(2, dtype=int), 2,
+                           progress=counted.append)
+    assert sum(counted) == 2 and run.forecast[1].tolist() == [0.0, 0.0] and run.forecast[0, 0] > 0

@@ -125,7 +125,7 @@ def base_forecasts(
             grouped = mode == Seasonality.GROUP and season is not None
             res = run_model_groups(
                 _subgrid(model_grid if grouped else grid, members), names, season_len, horizon, log=log,
-                tsb=choice.tsb, fitted=strategy in NEEDS_RESIDUALS or sd, n_jobs=models.n_jobs, sd=sd,
+                tsb=choice.tsb, fitted=strategy in NEEDS_RESIDUALS or sd, engine=models.engine, sd=sd,
                 progress=progress,
             )
             rows = members[grid.series]

@@ -30,9 +30,10 @@ alphas) and the in-sample one-step fitted values (for MinT's residuals) come
 out of `run_model_groups`.
 
 The model per demand class comes from the config (`ModelSettings`) and runs
-through statsforecast, `n_jobs` processes per model group (config
-`execution.n_jobs`); a model that fails on a series falls back to the naive
-forecast. Negative forecasts (possible from a trended ETS) are set to 0.
+through statsforecast, in this process with `n_jobs` processes for a large
+group of costly models or on a Dask cluster (config `models`,
+`pipelines/engines/model_engine.py`); a model that fails on a series falls
+back to the naive forecast. Negative forecasts (possible from a trended ETS) are set to 0.
 """
 
 from __future__ import annotations
@@ -50,21 +51,22 @@ from statsforecast import models as sfm
 from pipelines.calendar import season_length
 from pipelines.config_sections import ModelChoice, TSBConfig
 from pipelines.engines.intermittent import croston_states
+from pipelines.engines.model_engine import EngineSettings, chunks, local_jobs, map_on_cluster
 
 
 @dataclass(frozen=True)
 class ModelSettings:
-    """What the model runs read: the calendar's period, each product class's models, processes per run."""
+    """What the model runs read: the calendar's period, each product class's models, where they run."""
 
     period: str
     choices: Mapping[str, ModelChoice]
-    n_jobs: int = 1
+    engine: EngineSettings = EngineSettings()
 
     @classmethod
     def of(cls, config) -> ModelSettings:
         """From a planning config (every class it holds)."""
         choices = {name: pc.models for name, pc in config.product_classes.items()}
-        return cls(period=config.calendar.period, choices=choices, n_jobs=config.execution.n_jobs)
+        return cls(period=config.calendar.period, choices=choices, engine=EngineSettings.of(config))
 
 ADI_CUTOFF = 1.32
 
@@ -76,6 +78,10 @@ SEASONAL_MODELS = ("auto_ets", "ets_additive_season", "mstl_ets", "seasonal_naiv
 
 
 ETS_MODELS = ("auto_ets", "ets_additive_season")
+
+
+# models that take milliseconds per series or more (the others take microseconds): worth a process pool
+COSTLY_MODELS = ("auto_ets", "ets_additive_season", "mstl_ets")
 
 
 # models whose prediction intervals statsforecast computes itself (normal), and the level read for their sd
@@ -225,15 +231,18 @@ def run_model_groups(
     n_jobs: int = 1,
     progress: Callable[[int], None] | None = None,
     sd: bool = False,
+    engine: EngineSettings | None = None,
 ) -> ModelRun:
     """Forecasts (and, with `fitted`, in-sample fitted values) of every series, one statsforecast call per
-    (model, season) group.
+    (model, season) group, or per chunk of a group on a Dask cluster (`engine`, pipelines/engines/model_engine.py;
+    without it, this process with `n_jobs`).
 
     ETS groups go through `fit`/`predict` so the chosen component string and
     smoothing parameters can be read back; the other groups use the
     memory-efficient `forecast`. A model that fails on a series falls back to
-    the naive forecast. `progress(n)` is told after each group how many of the
-    grid's series it finished (every series once, the all-zero ones included).
+    the naive forecast. `progress(n)` is told after each group (or chunk) how
+    many of the grid's series it finished (every series once, the all-zero ones
+    included).
 
     `sd` (needs `fitted`): each forecast's standard deviation. Models with
     their own prediction intervals in statsforecast (`NATIVE_INTERVALS`: ETS,
@@ -245,75 +254,133 @@ def run_model_groups(
     horizon (statsforecast's `_calculate_sigma`, which its fitted intervals
     use): an assumption, whose coverage the backtest reports.
     """
+    engine = engine or EngineSettings(n_jobs=n_jobs)
     fc = np.zeros((grid.n_series, horizon))
     sds = np.zeros((grid.n_series, horizon))
     fit_values = np.full(len(grid.y), np.nan)
     parameters = np.full(grid.n_series, "", dtype=object)
     labels = np.full(grid.n_series, "zero", dtype=object)
+    # where each series' rows start in the grid (rows are sorted by series, then period)
+    starts = np.searchsorted(grid.series, np.arange(grid.n_series + 1))
+
+    def take(res: GroupFit) -> None:
+        fc[res.ids] = res.forecast
+        parameters[res.ids] = res.parameters
+        if sd:
+            sds[res.ids] = res.sd
+        if fitted:
+            fit_values[_series_rows(starts, res.ids)] = res.fitted
+        if progress:
+            progress(len(res.ids))
+
     groups = pd.DataFrame({"name": names, "season": season})
     for (name, s), idx in groups.groupby(["name", "season"], sort=True).groups.items():
-        ids = np.asarray(idx)
+        ids = np.sort(np.asarray(idx))
         labels[ids] = model_label(name, int(s))
         if name == "zero":
             if progress:
                 progress(len(ids))
             continue
-        rows = np.isin(grid.series, ids)
-        df = pd.DataFrame({"unique_id": grid.series[rows], "ds": grid.ordinal[rows], "y": grid.y[rows]})
-        sf = StatsForecast(models=[make_model(name, int(s), tsb)], freq=1, n_jobs=n_jobs, fallback_model=sfm.Naive())
+        without_rows = starts[ids + 1] == starts[ids]  # nothing to fit: forecast 0, counted done
+        if progress and without_rows.any():
+            progress(int(without_rows.sum()))
+        ids = ids[~without_rows]
+        if not len(ids):
+            continue
+        options = dict(name=name, season=int(s), horizon=horizon, tsb=tsb, fitted=fitted, sd=sd)
         started = time.perf_counter()
-        level = [SD_LEVEL] if sd and name in NATIVE_INTERVALS else None
-        if name in ETS_MODELS:
-            sf.fit(df=df)
-            out = sf.predict(h=horizon, level=level)
-            fitted_models = sf.fitted_[:, 0]
-            parameters[np.sort(ids)] = [_ets_parameters(m) for m in fitted_models]  # reads the library's results
-            if fitted:
-                fit_values[rows] = np.concatenate([m.model_["fitted"] for m in fitted_models])
+        if engine.on_cluster:
+            frames = [_group_frame(grid, starts, part) for part in chunks(ids)]
+            map_on_cluster(engine, fit_group, frames, options, take)
         else:
-            out = sf.forecast(df=df, h=horizon, fitted=fitted, level=level)
-            if fitted:
-                fit_values[rows] = sf.forecast_fitted_values().iloc[:, 3].to_numpy(float)
-            if name in ("croston_classic", "croston_sba"):
-                # the final smoothed size and interval behind the forecast, which the library does not return
-                order = np.sort(ids)
-                size, gap, _ = croston_states(
-                    grid.y[rows],
-                    CROSTON_ALPHA,
-                    CROSTON_ALPHA,
-                    series=np.searchsorted(order, grid.series[rows]),
-                    n_series=len(order),
-                )
-                parameters[order] = [
-                    f"alpha={CROSTON_ALPHA:g} size={a:.4g} interval={b:.4g}" for a, b in zip(size, gap, strict=False)
-                ]
-            elif name == "tsb":
-                t = tsb or TSBConfig()
-                parameters[ids] = f"alpha_d={t.alpha_d:g} alpha_p={t.alpha_p:g}"
+            jobs = local_jobs(engine, len(ids), costly=name in COSTLY_MODELS)
+            take(fit_group(_group_frame(grid, starts, ids), n_jobs=jobs, **options))
         if log:
-            log(f"{model_label(name, int(s))}: {len(ids)} series in {time.perf_counter() - started:.1f} s")
-        values = out.iloc[:, 2].to_numpy(float).reshape(-1, horizon)
-        order = out["unique_id"].to_numpy()[::horizon]
-        fc[order] = values
-        if sd:
-            sds[order] = _forecast_sd(out, level, grid, rows, fit_values, order, horizon)
-        if progress:
-            progress(len(ids))
+            where = f" on the cluster ({len(chunks(ids))} chunks)" if engine.on_cluster else ""
+            log(f"{model_label(name, int(s))}: {len(ids)} series in {time.perf_counter() - started:.1f} s{where}")
     return ModelRun(forecast=fc, fitted=fit_values, parameters=parameters, label=labels, sd=sds if sd else None)
 
 
-def _forecast_sd(out: pd.DataFrame, level, grid: SeriesGrid, rows, fit_values, order, horizon: int) -> np.ndarray:
-    """(len(order), horizon) sd from the library's interval, or the in-sample residuals' root mean square."""
+def _series_rows(starts: np.ndarray, ids: np.ndarray) -> np.ndarray:
+    """The grid rows of the series `ids`, in order (`starts[i]`: the first row of series i)."""
+    length = starts[ids + 1] - starts[ids]
+    first = np.repeat(starts[ids] - np.concatenate([[0], np.cumsum(length)[:-1]]), length)
+    return first + np.arange(int(length.sum()))
+
+
+def _group_frame(grid: SeriesGrid, starts: np.ndarray, ids: np.ndarray) -> pd.DataFrame:
+    """statsforecast's long frame of the series `ids` (sorted), in grid order."""
+    rows = _series_rows(starts, ids)
+    return pd.DataFrame({"unique_id": grid.series[rows], "ds": grid.ordinal[rows], "y": grid.y[rows]})
+
+
+@dataclass(frozen=True)
+class GroupFit:
+    """One model group's (or chunk's) results for its series `ids` (sorted): forecast and sd (k, horizon),
+    parameters (k,), fitted values of the frame's rows (NaN where the library gives none)."""
+
+    ids: np.ndarray
+    forecast: np.ndarray
+    parameters: np.ndarray
+    fitted: np.ndarray | None
+    sd: np.ndarray | None
+
+
+def fit_group(
+    frame: pd.DataFrame, name: str, season: int, horizon: int, tsb: TSBConfig | None = None,
+    fitted: bool = False, sd: bool = False, n_jobs: int = 1,
+) -> GroupFit:
+    """Fit one model to the series of `frame` (`unique_id`, `ds`, `y`, sorted by series then period).
+
+    Each series is fitted alone, so a chunk of a group gives its series the same numbers as the whole group.
+    """
+    sf = StatsForecast(models=[make_model(name, season, tsb)], freq=1, n_jobs=n_jobs, fallback_model=sfm.Naive())
+    ids = np.unique(frame["unique_id"].to_numpy())
+    parameters = np.full(len(ids), "", dtype=object)
+    fit_values = None
+    level = [SD_LEVEL] if sd and name in NATIVE_INTERVALS else None
+    if name in ETS_MODELS:
+        sf.fit(df=frame)
+        out = sf.predict(h=horizon, level=level)
+        fitted_models = sf.fitted_[:, 0]
+        parameters[:] = [_ets_parameters(m) for m in fitted_models]  # reads the library's results
+        if fitted:
+            fit_values = np.concatenate([m.model_["fitted"] for m in fitted_models])
+    else:
+        out = sf.forecast(df=frame, h=horizon, fitted=fitted, level=level)
+        if fitted:
+            fit_values = sf.forecast_fitted_values().iloc[:, 3].to_numpy(float)
+        if name in ("croston_classic", "croston_sba"):
+            # the final smoothed size and interval behind the forecast, which the library does not return
+            size, gap, _ = croston_states(
+                frame["y"].to_numpy(float), CROSTON_ALPHA, CROSTON_ALPHA,
+                series=np.searchsorted(ids, frame["unique_id"].to_numpy()), n_series=len(ids),
+            )
+            parameters[:] = [
+                f"alpha={CROSTON_ALPHA:g} size={a:.4g} interval={b:.4g}" for a, b in zip(size, gap, strict=False)
+            ]
+        elif name == "tsb":
+            t = tsb or TSBConfig()
+            parameters[:] = f"alpha_d={t.alpha_d:g} alpha_p={t.alpha_p:g}"
+    order = out["unique_id"].to_numpy()[::horizon]
+    if not np.array_equal(order, ids):  # statsforecast returns the series sorted; anything else is a bug here
+        raise RuntimeError("statsforecast returned the series in another order than their sorted codes")
+    forecast = out.iloc[:, 2].to_numpy(float).reshape(-1, horizon)
+    sds = _forecast_sd(out, level, frame, fit_values, ids, horizon) if sd else None
+    return GroupFit(ids=ids, forecast=forecast, parameters=parameters, fitted=fit_values, sd=sds)
+
+
+def _forecast_sd(out: pd.DataFrame, level, frame: pd.DataFrame, fit_values, ids, horizon: int) -> np.ndarray:
+    """(len(ids), horizon) sd from the library's interval, or the in-sample residuals' root mean square."""
     if level:
         lo = out.filter(regex=rf"-lo-{SD_LEVEL}$").iloc[:, 0].to_numpy(float)
         hi = out.filter(regex=rf"-hi-{SD_LEVEL}$").iloc[:, 0].to_numpy(float)
         sd = (hi - lo) / (2 * norm.ppf(0.5 + SD_LEVEL / 200))
         return np.nan_to_num(np.clip(sd, 0, None)).reshape(-1, horizon)
-    res = grid.y[rows] - fit_values[rows]
+    res = frame["y"].to_numpy(float) - fit_values
     ok = np.isfinite(res)
-    series = grid.series[rows][ok]
-    square = np.bincount(series, weights=res[ok] ** 2, minlength=grid.n_series)
-    count = np.bincount(series, minlength=grid.n_series)
-    sigma = np.sqrt(np.divide(square, count, out=np.zeros(grid.n_series), where=count > 0))
-    return np.repeat(sigma[order][:, None], horizon, axis=1)
-
+    series = np.searchsorted(ids, frame["unique_id"].to_numpy())[ok]
+    square = np.bincount(series, weights=res[ok] ** 2, minlength=len(ids))
+    count = np.bincount(series, minlength=len(ids))
+    sigma = np.sqrt(np.divide(square, count, out=np.zeros(len(ids)), where=count > 0))
+    return np.repeat(sigma[:, None], horizon, axis=1)

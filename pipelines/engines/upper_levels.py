@@ -255,7 +255,7 @@ def upper_base(
         names, season = assign_models(demand[members], length[members], choice, models.period)
         res = run_model_groups(
             _subgrid(grid, members), names, season, horizon, log=log, tsb=choice.tsb, fitted=True,
-            n_jobs=models.n_jobs, sd=sd,
+            engine=models.engine, sd=sd,
         )
         fc[members], label[members] = res.forecast, res.label
         fitted[members[grid.series]] = res.fitted
