@@ -19,8 +19,8 @@ from pydantic import BaseModel, Field, PrivateAttr, ValidationError, field_valid
 
 from pipelines.config_forecast import HierarchyConfig, IntervalsConfig
 from pipelines.config_inputs import InputsConfig
-from pipelines.config_scale import ScaleConfig
 from pipelines.config_models import ModelsConfig
+from pipelines.config_scale import ScaleConfig
 from pipelines.config_sections import (
     DEFAULT_MEASURES,
     BacktestConfig,
