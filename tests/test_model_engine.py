@@ -15,6 +15,7 @@ and the results really cross process boundaries through Dask's serialization.
 from __future__ import annotations
 
 import dataclasses
+import os
 
 import numpy as np
 import pandas as pd
@@ -166,3 +167,15 @@ def test_the_forecast_stage_on_dask_equals_it_on_this_machine(cluster):
         pd.testing.assert_frame_equal(local.tables[table], MODELS[table].validate(result.outputs[table]),
                                       check_exact=True)
     assert (local.tables["forecast_models"]["model"].str.startswith("auto_ets")).any()
+
+
+def _parent_pid(frame):
+    return os.getppid()
+
+
+def test_the_pool_workers_are_not_forks_of_this_process():
+    # a fork of a process whose other threads hold locks (a Dagster run) can wait forever: the demo's backtest hung
+    # on statsforecast's own forking pool; the workers come from a forkserver, so their parent is not this process
+    parents = []
+    model_engine.map_on_pool(2, _parent_pid, [None, None], {}, parents.append)
+    assert len(parents) == 2 and os.getpid() not in parents

@@ -1,7 +1,12 @@
 """Where the model runs go: this process (statsforecast's own processes) or a Dask cluster.
 
-`engine: local` calls statsforecast in this process with `n_jobs` processes
-for a model group large enough to pay for starting them (`local_jobs`).
+`engine: local` fits in this process, or, for a model group large enough to
+pay for it (`local_jobs`), in chunks on `n_jobs` worker processes of a pool
+kept for the process (`map_on_pool`). The pool's workers start from a
+forkserver, never by forking this process: a run holds threads (Dagster's
+event writers, the progress display) and a fork taken while one of them
+holds a lock leaves the child waiting forever (seen here with statsforecast's
+own `n_jobs`, whose pool forks: the demo's backtest hung).
 `engine: dask` cuts each model group into chunks of `CHUNK_SERIES` series and
 runs every chunk as one task on a Dask cluster: the scheduler at
 `models.address`, or, without one, a cluster of `models.workers` processes
@@ -64,7 +69,7 @@ class EngineSettings:
 
 
 def local_jobs(engine: EngineSettings, n_series: int, costly: bool) -> int:
-    """statsforecast's `n_jobs` for a local group of `n_series` series: 1 unless the pool pays for itself."""
+    """Worker processes for a local group of `n_series` series: 1 (this process) unless the pool pays for itself."""
     if not costly or n_series < POOL_MIN_SERIES:
         return 1
     return (os.cpu_count() or 1) if engine.n_jobs == -1 else engine.n_jobs
@@ -114,6 +119,32 @@ def chunks(ids, size: int | None = None) -> list:
     """`ids` cut into consecutive pieces of at most `size` (default `CHUNK_SERIES`)."""
     size = size or CHUNK_SERIES
     return [ids[i:i + size] for i in range(0, len(ids), size)]
+
+
+_POOLS: dict[int, Any] = {}
+
+
+def map_on_pool(jobs: int, fit: Callable, frames: list, options: dict, done: Callable[[Any], None]) -> None:
+    """Run `fit(frame, **options)` for every frame on a pool of `jobs` processes; `done(result)` as each finishes."""
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor, as_completed
+
+    pool = _POOLS.get(jobs)
+    if pool is None:
+        context = multiprocessing.get_context("forkserver")
+        context.set_forkserver_preload(["pipelines.engines.models"])  # workers start with statsforecast imported
+        pool = _POOLS[jobs] = ProcessPoolExecutor(jobs, mp_context=context)
+        if len(_POOLS) == 1:
+            atexit.register(close_pools)
+    for future in as_completed([pool.submit(fit, frame, **options) for frame in frames]):
+        done(future.result())
+
+
+def close_pools() -> None:
+    """Stop the worker processes of every pool this process started."""
+    for pool in _POOLS.values():
+        pool.shutdown(cancel_futures=True)
+    _POOLS.clear()
 
 
 def map_on_cluster(

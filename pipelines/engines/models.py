@@ -30,7 +30,7 @@ alphas) and the in-sample one-step fitted values (for MinT's residuals) come
 out of `run_model_groups`.
 
 The model per demand class comes from the config (`ModelSettings`) and runs
-through statsforecast, in this process with `n_jobs` processes for a large
+through statsforecast, in this process or in chunks on `n_jobs` worker processes for a large
 group of costly models or on a Dask cluster (config `models`,
 `pipelines/engines/model_engine.py`); a model that fails on a series falls
 back to the naive forecast. Negative forecasts (possible from a trended ETS) are set to 0.
@@ -51,7 +51,7 @@ from statsforecast import models as sfm
 from pipelines.calendar import season_length
 from pipelines.config_sections import ModelChoice, TSBConfig
 from pipelines.engines.intermittent import croston_states
-from pipelines.engines.model_engine import EngineSettings, chunks, local_jobs, map_on_cluster
+from pipelines.engines.model_engine import EngineSettings, chunks, local_jobs, map_on_cluster, map_on_pool
 
 
 @dataclass(frozen=True)
@@ -294,7 +294,11 @@ def run_model_groups(
             map_on_cluster(engine, fit_group, frames, options, take)
         else:
             jobs = local_jobs(engine, len(ids), costly=name in COSTLY_MODELS)
-            take(fit_group(_group_frame(grid, starts, ids), n_jobs=jobs, **options))
+            if jobs > 1:  # chunks on worker processes that are not forks of this one (model_engine.map_on_pool)
+                parts = chunks(ids, -(-len(ids) // (4 * jobs)))  # four chunks a worker: the faster ones take more
+                map_on_pool(jobs, fit_group, [_group_frame(grid, starts, part) for part in parts], options, take)
+            else:
+                take(fit_group(_group_frame(grid, starts, ids), **options))
         if log:
             where = f" on the cluster ({len(chunks(ids))} chunks)" if engine.on_cluster else ""
             log(f"{model_label(name, int(s))}: {len(ids)} series in {time.perf_counter() - started:.1f} s{where}")
