@@ -1,13 +1,17 @@
 """The cycle through Dagster: the benchmark's scenario as input files, every class partition materialized.
 
     .venv/bin/python benchmarks/cycle_dagster.py --leaves 10000 [--seed 7] [--periods 156] [--horizon 26]
-        [--classes fast,seasonal,slow] [--n-jobs N] [--folder PATH] [--rss-sample-ms MS] [--json PATH]
+        [--classes fast,seasonal,slow] [--backtest light|full] [--n-jobs N] [--folder PATH]
+        [--rss-sample-ms MS] [--json PATH]
 
 Where `benchmarks/cycle.py` calls the stages' `run(...)` itself, this one runs
 what a platform team runs: the same seeded scenario (`cycle_scenario.generate`,
 the config of `cycle_inputs.config_data`) written as input files (history as
 `history_<year>.csv`, the master data and planner input as CSV files) and a
-YAML config, then the real asset graph (`pipelines.definitions`), one run of
+YAML config (`--backtest light`, the default: the backtest, which the graph
+always runs and `cycle.py` leaves out, with one origin and `top_down` only,
+enough for classes whose strategy and shares are fixed; `full`: the config's
+four origins and five strategies), then the real asset graph (`pipelines.definitions`), one run of
 the job `planning_cycle` per class partition of the cycle 2026-11-30, in this
 process, through `pipelines.runner.run_partitions` (what `python -m pipelines
 cycle` does without `--parallel`): the IO manager writes every table to the
@@ -62,6 +66,8 @@ from cycle_measure import MB, git_commit, load_average, rss_max_mb, rss_now_mb  
 from cycle_scenario import CLASSES, CYCLE_DATE, generate  # noqa: E402
 
 CYCLE = str(CYCLE_DATE)
+# the graph always runs backtest_accuracy; no class of the benchmark is `auto`, so by default it runs small
+LIGHT_BACKTEST = {"origins": 1, "strategies": ["top_down"]}
 KINDS = ("run", "validate", "read", "write", "statsforecast")
 HEADER = (
     f"{'class':<9} {'step':<24} {'wall s':>8} {'run s':>8} {'valid s':>8} {'read s':>7} {'write s':>7} "
@@ -92,6 +98,8 @@ def _write_inputs(args: argparse.Namespace, folder: Path, queue) -> None:
         for name, frame in frames.items():
             frame.to_csv(inputs / f"{name}.csv", index=False, lineterminator="\n")
         data = config_data(args.periods, args.horizon, False, None, n_jobs=args.n_jobs)
+        if args.backtest == "light":
+            data["backtest"] = LIGHT_BACKTEST
         data["inputs"] = {"folder": str(inputs)}
         data["store"] = {"path": str(folder / "var" / "store")}
         (folder / "planning.yaml").write_text(yaml.safe_dump(data, sort_keys=False))
@@ -322,6 +330,9 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
     p.add_argument("--periods", type=int, default=156, help="weeks of history (default 156)")
     p.add_argument("--horizon", type=int, default=26, help="weeks to forecast (default 26)")
     p.add_argument("--classes", default=",".join(CLASSES), help="class partitions to run, in order (default all)")
+    p.add_argument("--backtest", choices=("light", "full"), default="light",
+                   help="light (default): backtest.origins 1, strategies [top_down]; full: the config's defaults "
+                   "(4 origins, 5 strategies, at both grains)")
     p.add_argument("--n-jobs", type=int, default=1, help="execution.n_jobs: statsforecast processes (default 1)")
     p.add_argument("--folder", default=None, help="keep inputs, store, reports and DAGSTER_HOME here (default: "
                    "a temporary folder, removed at the end)")
