@@ -1,7 +1,7 @@
 """The cycle's tables validated five ways, to choose how (issue 15: validation at most 15 % of own time).
 
     .venv/bin/python benchmarks/validation.py --leaves 10000 [--seed 7] [--stages target] [--repeat 3]
-        [--only NAME,...] [--json PATH]
+        [--only NAME,...] [--replicate K] [--json PATH]
 
 Generates the scenario of `benchmarks/cycle.py` and runs the stages up to the
 last one of `--stages` (from raw, clean, lifecycle, shares, basis, target,
@@ -22,6 +22,11 @@ loaded machine moves the figures less):
     duckdb          the frame registered in DuckDB, each column check as one SQL aggregate, unique keys by
                     GROUP BY ... HAVING count(*) > 1
 
+`--replicate K` validates each table K times over (K copies, each copy's
+`product` codes suffixed with its number, so keys stay unique): the tables of
+K x `--leaves` leaves as far as validation is concerned (rows, columns,
+distinct keys) without running the stages at that size.
+
 pyarrow, polars and duckdb get a schema translated from the model (columns,
 types, nullability, the built-in checks isin / ge / gt / le / lt, unique
 keys); the models' own frame-level checks (`@dataframe_check`) are not
@@ -40,6 +45,7 @@ import time
 import warnings
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -83,6 +89,20 @@ def cycle_tables(args: argparse.Namespace) -> dict[str, pd.DataFrame]:
             tables[table.name] = validate_table(MODELS[table.name], result.outputs[table.name])
         print(f"  {step}: {spec.tables[0].name} made in {time.perf_counter() - started:.1f} s", flush=True)
     return {name: frame for name, frame in tables.items() if len(frame)}
+
+
+def replicate(frame: pd.DataFrame, k: int) -> pd.DataFrame:
+    """`k` copies of `frame`, copy i's product codes (and successor, source product) suffixed with `~i`."""
+    copies = []
+    for i in range(k):
+        copy = frame.copy()
+        for column in ("product", "successor", "source_product"):
+            if column in copy.columns and copy[column].dtype == object:  # one new str per distinct code, as made
+                codes, distinct = pd.factorize(copy[column])
+                renamed = np.array([f"{v}~{i}" for v in distinct] + [None], dtype=object)
+                copy[column] = renamed[codes]
+        copies.append(copy)
+    return pd.concat(copies, ignore_index=True)
 
 
 # =================================================================== the variants
@@ -202,6 +222,7 @@ def main(argv: list[str] | None = None) -> None:
     p.add_argument("--stages", choices=STAGES, default="target", help="run the stages up to this one (default target)")
     p.add_argument("--only", default="", help="comma list of tables to validate (default every table with rows)")
     p.add_argument("--repeat", type=int, default=3)
+    p.add_argument("--replicate", type=int, default=1, help="validate K copies of each table (keys kept unique)")
     p.add_argument("--json", default=None, metavar="PATH")
     args = p.parse_args(argv)
     warnings.filterwarnings("ignore")
@@ -210,6 +231,8 @@ def main(argv: list[str] | None = None) -> None:
     tables = cycle_tables(args)
     if args.only:
         tables = {n: tables[n] for n in args.only.split(",") if n in tables}
+    if args.replicate > 1:
+        tables = {name: replicate(frame, args.replicate) for name, frame in tables.items()}
     print(f"{'table':<24} {'rows':>11} " + " ".join(f"{w:>14}" for w in variants()) + "   (CPU s, median)")
     rows = measure(tables, args.repeat)
     sums = {w: sum(r[w] for r in rows if r.get(w) is not None) for w in variants()}

@@ -16,7 +16,9 @@ for an object column tests every cell for each kind of missing value
 (`isnaobj`, about three times the time of `infer_dtype`). When `infer_dtype`
 without skipping missing cells answers `string`, every cell is a `str`, so
 none is missing and the check passes without that pass; otherwise pandera's
-own check runs and names the rows (`TextColumnBackend`).
+own check runs and names the rows (`TextColumnBackend`). While one table
+that needs no coercion is validated, each column's answer is asked once and
+kept for its type test, dtype check and not-null check.
 
 `validate_table(model, frame)`: what every asset (and the benchmark) calls.
 pandera copies the whole frame before coercing it (`inplace=False`: a deep
@@ -33,6 +35,7 @@ copy; the caller's frame is left as it was).
 
 from __future__ import annotations
 
+import contextvars
 import copy
 import functools
 
@@ -49,12 +52,25 @@ ALL_TEXT = ("string", "empty")  # infer_dtype's answers when every non-missing c
 
 def all_text(data, skipna: bool = True) -> bool:
     """True when `data` is an object column whose every non-missing cell is a `str` (every cell: `skipna` False)."""
-    return (
-        isinstance(data, pd.Series)
-        and data.dtype == object
-        and (pd.api.types.infer_dtype(data, skipna=False) in ALL_TEXT
-             or skipna and pd.api.types.infer_dtype(data, skipna=True) in ALL_TEXT)
-    )
+    if not isinstance(data, pd.Series) or data.dtype != object:
+        return False
+    return _inferred(data, False) in ALL_TEXT or skipna and _inferred(data, True) in ALL_TEXT
+
+
+# what infer_dtype said of each column during one validate_table of a table that needs no coercion (nothing is
+# written into its columns then): its check, its not-null check and the type test before them ask once
+_SEEN: contextvars.ContextVar[dict | None] = contextvars.ContextVar("text_columns_seen", default=None)
+
+
+def _inferred(data: pd.Series, skipna: bool) -> str:
+    seen = _SEEN.get()
+    if seen is None:
+        return pd.api.types.infer_dtype(data, skipna=skipna)
+    values = data.values
+    key = (values.__array_interface__["data"][0], values.shape, values.strides, skipna)
+    if key not in seen:
+        seen[key] = pd.api.types.infer_dtype(values, skipna=skipna)
+    return seen[key]
 
 
 @pandas_engine.Engine.register_dtype
@@ -93,9 +109,14 @@ def validate_table(model: type[pa.DataFrameModel], frame: pd.DataFrame) -> pd.Da
     """`model.validate(frame, lazy=True)`: the same checks on every row and the same errors, without copying
     the data when no column needs coercing; `frame` itself is left as it was."""
     schema = model.to_schema()
-    if schema.coerce and holds_its_types(schema, frame):
-        schema = _without_coercion(model)
-    return schema.validate(frame.copy(deep=False), lazy=True, inplace=True)
+    token = _SEEN.set({})
+    try:
+        if not (schema.coerce and holds_its_types(schema, frame)):
+            _SEEN.set(None)  # coercion writes columns: no answer is kept
+            return schema.validate(frame.copy(deep=False), lazy=True, inplace=True)
+        return _without_coercion(model).validate(frame.copy(deep=False), lazy=True, inplace=True)
+    finally:
+        _SEEN.reset(token)
 
 
 def holds_its_types(schema: pa.DataFrameSchema, frame: pd.DataFrame) -> bool:
