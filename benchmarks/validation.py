@@ -194,10 +194,11 @@ def timed(fn, model, frame) -> float | None:
     return time.process_time() - started
 
 
-def measure(tables: dict[str, pd.DataFrame], repeat: int) -> list[dict]:
+def measure(tables: dict[str, pd.DataFrame], repeat: int, k: int = 1) -> list[dict]:
     ways = variants()
     rows = []
-    for name, frame in tables.items():
+    for name in list(tables):
+        frame = replicate(tables.pop(name), k) if k > 1 else tables.pop(name)  # one table at a time in memory
         model = MODELS[name]
         seconds: dict[str, list | None] = {way: [] for way in ways}
         for _ in range(repeat):
@@ -231,10 +232,8 @@ def main(argv: list[str] | None = None) -> None:
     tables = cycle_tables(args)
     if args.only:
         tables = {n: tables[n] for n in args.only.split(",") if n in tables}
-    if args.replicate > 1:
-        tables = {name: replicate(frame, args.replicate) for name, frame in tables.items()}
     print(f"{'table':<24} {'rows':>11} " + " ".join(f"{w:>14}" for w in variants()) + "   (CPU s, median)")
-    rows = measure(tables, args.repeat)
+    rows = measure(tables, args.repeat, args.replicate)
     sums = {w: sum(r[w] for r in rows if r.get(w) is not None) for w in variants()}
     print(f"{'sum':<24} {sum(r['rows'] for r in rows):>11,} " + " ".join(f"{v:>14.3f}" for v in sums.values()))
     load = {"start": load_start, "end": load_average()}
