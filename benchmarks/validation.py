@@ -1,7 +1,7 @@
 """The cycle's tables validated five ways, to choose how (issue 15: validation at most 15 % of own time).
 
     .venv/bin/python benchmarks/validation.py --leaves 10000 [--seed 7] [--stages target] [--repeat 3]
-        [--only NAME,...] [--replicate K] [--json PATH]
+        [--only NAME,...] [--ways pandera-copy,validate_table,...] [--replicate K] [--json PATH]
 
 Generates the scenario of `benchmarks/cycle.py` and runs the stages up to the
 last one of `--stages` (from raw, clean, lifecycle, shares, basis, target,
@@ -170,7 +170,7 @@ def via_duckdb(model, frame):
     return counts
 
 
-def variants() -> dict:
+def variants(only: str = "") -> dict:
     out = {"pandera-copy": pandera_copy, "validate_table": validate_table, "pyarrow": via_pyarrow}
     try:
         import polars  # noqa: F401
@@ -179,7 +179,7 @@ def variants() -> dict:
     except ImportError:
         print("polars is not importable: its variant is left out")
     out["duckdb"] = via_duckdb
-    return out
+    return {way: fn for way, fn in out.items() if not only or way in only.split(",")}
 
 
 def timed(fn, model, frame) -> float | None:
@@ -194,8 +194,8 @@ def timed(fn, model, frame) -> float | None:
     return time.process_time() - started
 
 
-def measure(tables: dict[str, pd.DataFrame], repeat: int, k: int = 1) -> list[dict]:
-    ways = variants()
+def measure(tables: dict[str, pd.DataFrame], repeat: int, k: int = 1, only: str = "") -> list[dict]:
+    ways = variants(only)
     rows = []
     for name in list(tables):
         frame = replicate(tables.pop(name), k) if k > 1 else tables.pop(name)  # one table at a time in memory
@@ -223,6 +223,7 @@ def main(argv: list[str] | None = None) -> None:
     p.add_argument("--stages", choices=STAGES, default="target", help="run the stages up to this one (default target)")
     p.add_argument("--only", default="", help="comma list of tables to validate (default every table with rows)")
     p.add_argument("--repeat", type=int, default=3)
+    p.add_argument("--ways", default="", help="comma list of the variants to time (default all)")
     p.add_argument("--replicate", type=int, default=1, help="validate K copies of each table (keys kept unique)")
     p.add_argument("--json", default=None, metavar="PATH")
     args = p.parse_args(argv)
@@ -232,9 +233,9 @@ def main(argv: list[str] | None = None) -> None:
     tables = cycle_tables(args)
     if args.only:
         tables = {n: tables[n] for n in args.only.split(",") if n in tables}
-    print(f"{'table':<24} {'rows':>11} " + " ".join(f"{w:>14}" for w in variants()) + "   (CPU s, median)")
-    rows = measure(tables, args.repeat, args.replicate)
-    sums = {w: sum(r[w] for r in rows if r.get(w) is not None) for w in variants()}
+    print(f"{'table':<24} {'rows':>11} " + " ".join(f"{w:>14}" for w in variants(args.ways)) + "   (CPU s, median)")
+    rows = measure(tables, args.repeat, args.replicate, args.ways)
+    sums = {w: sum(r[w] for r in rows if r.get(w) is not None) for w in variants(args.ways)}
     print(f"{'sum':<24} {sum(r['rows'] for r in rows):>11,} " + " ".join(f"{v:>14.3f}" for v in sums.values()))
     load = {"start": load_start, "end": load_average()}
     print(f"load average (1 min) at start and end: {load['start']['load_1m']:.2f}, {load['end']['load_1m']:.2f}")
