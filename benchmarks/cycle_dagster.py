@@ -242,9 +242,10 @@ def run_cycle(args: argparse.Namespace) -> dict:
     unknown = sorted(set(classes) - set(CLASSES))
     if unknown:
         raise SystemExit(f"--classes: unknown {unknown}; choose from {list(CLASSES)}")
+    commit = git_commit()  # of the code this process imports, taken before the run
     print(f"apportion cycle through Dagster: {args.leaves:,} leaves, seed {args.seed}, {args.periods} weekly periods, "
           f"horizon {args.horizon}, classes {','.join(classes)}, n_jobs {args.n_jobs}, folder {folder}, "
-          f"commit {(git_commit() or '?')[:8]}", flush=True)
+          f"commit {(commit or '?')[:8]}", flush=True)
     facts = write_inputs(args, folder)
     print(f"inputs written in {facts['generate_s']:.1f} s (not timed): {facts['lines']:,} history lines, "
           f"{facts['parents']:,} parents; rss now {rss_now_mb():.0f} MB", flush=True)
@@ -306,7 +307,7 @@ def run_cycle(args: argparse.Namespace) -> dict:
         "total": {**total, "rss_max_mb": rss_max_mb()},
         "total_without_backtest": without,
         "load": load,
-        "versions": versions(),
+        "versions": {**versions(), "commit": commit},
         "complete": True,
     }
     if write_json(args, result):
