@@ -92,11 +92,12 @@ def cycle_tables(args: argparse.Namespace) -> dict[str, pd.DataFrame]:
 
 
 def replicate(frame: pd.DataFrame, k: int) -> pd.DataFrame:
-    """`k` copies of `frame`, copy i's product codes (and successor, source product) suffixed with `~i`."""
+    """`k` copies of `frame`, copy i's product codes (and successor, source product, source file: every unique key
+    holds one of them) suffixed with `~i`."""
     copies = []
     for i in range(k):
         copy = frame.copy()
-        for column in ("product", "successor", "source_product"):
+        for column in ("product", "successor", "source_product", "source_file"):
             if column in copy.columns and copy[column].dtype == object:  # one new str per distinct code, as made
                 codes, distinct = pd.factorize(copy[column])
                 renamed = np.array([f"{v}~{i}" for v in distinct] + [None], dtype=object)
