@@ -10,6 +10,7 @@ import pandera.pandas as pa
 from pipelines.check_failures import FIRST_FAILING_ROWS, FIRST_ROWS, SCHEMA_FIX, first_schema_failures
 from pipelines.checks import schema_check, schema_check_name
 from pipelines.results import Markdown
+from pipelines.text_dtype import validate_table
 
 SAMPLE_ROWS = 20
 PREVIEW_ROWS = 8
@@ -82,7 +83,7 @@ def validate(
     `partition`: the partition's cycle and class, added to the metadata.
     """
     try:
-        out = model.validate(df, lazy=True)
+        out = validate_table(model, df)
     except pandera.errors.SchemaErrors as err:
         cases = err.failure_cases.copy()
         by_check = cases.groupby(["column", "check"], dropna=False).size().reset_index(name="failures")

@@ -105,6 +105,7 @@ from pipelines.engines.history_files import load_raw_history  # noqa: E402
 from pipelines.engines.shares import compute_shares  # noqa: E402
 from pipelines.stages.cycle_report import ReportSettings  # noqa: E402
 from pipelines.tables import MODELS  # noqa: E402
+from pipelines.text_dtype import validate_table  # noqa: E402
 
 # step name of each stage (by its first table), in graph order; `raw` is the loader or the generated lines
 STEP = {
@@ -256,7 +257,7 @@ def validate(bench: Bench, args: argparse.Namespace, name: str, frame: pd.DataFr
     model = MODELS[name]
     return bench.run(
         f"  validate {name}",
-        lambda: model.validate(frame, lazy=True),
+        lambda: validate_table(model, frame),
         rows_in=len(frame),
         note=lambda _: model.__name__,
     )

@@ -146,7 +146,26 @@ def make_config(
     share_method: str | None = None,
     n_jobs: int = 1,
 ) -> PlanningConfig:
-    """Three classes like config/planning.yaml, at fixed grains (no backtest), non-seasonal unless `seasonal`.
+    """The parsed config of `config_data(...)` (same arguments)."""
+    return parse_config(
+        config_data(periods, horizon, seasonal, leaf_grain, shortage_rule, seasonal_model, class_outliers,
+                    share_method, n_jobs)
+    )
+
+
+def config_data(
+    periods: int,
+    horizon: int,
+    seasonal: bool,
+    leaf_grain: str | None,
+    shortage_rule: str | None = None,
+    seasonal_model: str = "auto_ets",
+    class_outliers: bool = True,
+    share_method: str | None = None,
+    n_jobs: int = 1,
+) -> dict[str, Any]:
+    """The benchmark's config as a YAML file would hold it: three classes like config/planning.yaml, at fixed
+    grains (no backtest), non-seasonal unless `seasonal`.
 
     With `class_outliers` (and a config that has them) the classes carry the
     shipped config's own outlier rules: Tukey (window 25, fence 3) on
@@ -193,4 +212,4 @@ def make_config(
         data["share_bases"] = {"promotions_52w": {**windows(52, [104]), "method": "pooled"}}
         data["measures"] = MEASURES
         data["pins"] = {"on_overflow": "warn"}
-    return parse_config(data)
+    return data

@@ -1,4 +1,4 @@
-"""`Text`: pandera's `str` column type, checked over the whole column at once.
+"""`Text`: pandera's `str` column type, checked over the whole column at once; a table's validation without copies.
 
 pandera's own `str` check calls `isinstance(cell, str)` once per cell from
 Python (`Series.map`), and its coercion copies the column with
@@ -10,24 +10,67 @@ rows are named exactly as before. A column that already holds only `str`
 cells is returned as it is by the coercion (`astype(str)` would return equal
 values). The type prints as `str`, so failure cases read `dtype('str')` as
 they did.
+
+The not-null check of a `Text` column: pandera asks `Series.hasnans`, which
+for an object column tests every cell for each kind of missing value
+(`isnaobj`, about three times the time of `infer_dtype`). When `infer_dtype`
+without skipping missing cells answers `string`, every cell is a `str`, so
+none is missing and the check passes without that pass; otherwise pandera's
+own check runs and names the rows (`TextColumnBackend`). While one table
+that needs no coercion is validated, each column's answer is asked once and
+kept for its type test, dtype check and not-null check.
+
+`validate_table(model, frame)`: what every asset (and the benchmark) calls.
+pandera copies the whole frame before coercing it (`inplace=False`: a deep
+copy that also consolidates the blocks), then puts each coerced column back
+(`frame[column] = ...`, another copy of every column, even one coercion left
+as it was). A stage's table mostly holds its model's types already: every
+column of the dtype its model names (a `Text` column: only `str` cells, which
+coercion returns as they are). Such a table is validated by the model's
+schema with coercion off, which then changes nothing and copies nothing;
+every check still runs on every row. Any other table is coerced as before,
+on a shallow copy validated in place (a new array per coerced column in the
+copy; the caller's frame is left as it was).
 """
 
 from __future__ import annotations
 
+import contextvars
+import copy
+import functools
+
 import pandas as pd
+import pandera.pandas as pa
 from pandera import dtypes
+from pandera.api.pandas.components import Column
+from pandera.backends.base import CoreCheckResult
+from pandera.backends.pandas.components import ColumnBackend
 from pandera.engines import pandas_engine
 
 ALL_TEXT = ("string", "empty")  # infer_dtype's answers when every non-missing cell is a str
 
 
-def all_text(data) -> bool:
-    """True when `data` is an object column whose every non-missing cell is a `str`."""
-    return (
-        isinstance(data, pd.Series)
-        and data.dtype == object
-        and pd.api.types.infer_dtype(data, skipna=True) in ALL_TEXT
-    )
+def all_text(data, skipna: bool = True) -> bool:
+    """True when `data` is an object column whose every non-missing cell is a `str` (every cell: `skipna` False)."""
+    if not isinstance(data, pd.Series) or data.dtype != object:
+        return False
+    return _inferred(data, False) in ALL_TEXT or skipna and _inferred(data, True) in ALL_TEXT
+
+
+# what infer_dtype said of each column during one validate_table of a table that needs no coercion (nothing is
+# written into its columns then): its check, its not-null check and the type test before them ask once
+_SEEN: contextvars.ContextVar[dict | None] = contextvars.ContextVar("text_columns_seen", default=None)
+
+
+def _inferred(data: pd.Series, skipna: bool) -> str:
+    seen = _SEEN.get()
+    if seen is None:
+        return pd.api.types.infer_dtype(data, skipna=skipna)
+    values = data.values
+    key = (values.__array_interface__["data"][0], values.shape, values.strides, skipna)
+    if key not in seen:
+        seen[key] = pd.api.types.infer_dtype(values, skipna=skipna)
+    return seen[key]
 
 
 @pandas_engine.Engine.register_dtype
@@ -47,3 +90,56 @@ class Text(pandas_engine.NpString):
 
     def __str__(self) -> str:
         return "str"
+
+
+class TextColumnBackend(ColumnBackend):
+    """pandera's column backend, whose not-null check of a `Text` column of only `str` cells takes one pass."""
+
+    def check_nullable(self, check_obj, schema):
+        if not schema.nullable and isinstance(schema.dtype, Text) and all_text(check_obj, skipna=False):
+            return CoreCheckResult(passed=True, check="not_nullable")
+        return super().check_nullable(check_obj, schema)
+
+
+# before pandera registers its own on the first validation (it does not replace a registered backend)
+Column.register_backend(pd.DataFrame, TextColumnBackend, force=True)
+
+
+def validate_table(model: type[pa.DataFrameModel], frame: pd.DataFrame) -> pd.DataFrame:
+    """`model.validate(frame, lazy=True)`: the same checks on every row and the same errors, without copying
+    the data when no column needs coercing; `frame` itself is left as it was."""
+    schema = model.to_schema()
+    token = _SEEN.set({})
+    try:
+        if not (schema.coerce and holds_its_types(schema, frame)):
+            _SEEN.set(None)  # coercion writes columns: no answer is kept
+            return schema.validate(frame.copy(deep=False), lazy=True, inplace=True)
+        return _without_coercion(model).validate(frame.copy(deep=False), lazy=True, inplace=True)
+    finally:
+        _SEEN.reset(token)
+
+
+def holds_its_types(schema: pa.DataFrameSchema, frame: pd.DataFrame) -> bool:
+    """True when coercing `frame` to `schema` would change no column (absent columns aside: the checks report
+    them): each column of the dtype its schema names, a `Text` column of `str` cells only."""
+    for name, column in schema.columns.items():
+        if name not in frame.columns:
+            continue
+        data = frame[name]
+        if isinstance(data, pd.DataFrame):  # a repeated column name: left to pandera
+            return False
+        if isinstance(column.dtype, Text):
+            if not all_text(data):
+                return False
+        elif column.dtype is None or str(data.dtype) != str(column.dtype):
+            return False
+    return True
+
+
+@functools.cache
+def _without_coercion(model: type[pa.DataFrameModel]) -> pa.DataFrameSchema:
+    schema = copy.deepcopy(model.to_schema())
+    schema.coerce = False
+    for column in schema.columns.values():
+        column.coerce = False
+    return schema

@@ -29,6 +29,7 @@ from pipelines.engines.plausible import normalize_dates
 from pipelines.errors import ConfigError
 from pipelines.results import CheckRows, Log, StageResult, quiet
 from pipelines.schemas import Products
+from pipelines.text_dtype import validate_table
 
 PRODUCT_COLUMNS = ("product", "product_class", "active_from", "active_to", "successor")
 # optional product columns: a grouping above the product (hierarchy.upper_levels, seasonal_group); blank when absent
@@ -99,7 +100,7 @@ def run_products(settings: InputSettings, log: Log = quiet) -> StageResult:
     frame, files = load_products(settings.folder, settings.inputs)
     master = frame[frame["product"].notna()].drop_duplicates("product")[["product", "product_class"]]
     try:
-        Products.validate(frame, lazy=True)
+        validate_table(Products, frame)
     except pandera.errors.SchemaErrors:
         mine = frame
     else:

@@ -1,0 +1,363 @@
+"""The cycle through Dagster: the benchmark's scenario as input files, every class partition materialized.
+
+    .venv/bin/python benchmarks/cycle_dagster.py --leaves 10000 [--seed 7] [--periods 156] [--horizon 26]
+        [--classes fast,seasonal,slow] [--backtest light|full] [--n-jobs N] [--folder PATH]
+        [--rss-sample-ms MS] [--json PATH]
+
+Where `benchmarks/cycle.py` calls the stages' `run(...)` itself, this one runs
+what a platform team runs: the same seeded scenario (`cycle_scenario.generate`,
+the config of `cycle_inputs.config_data`) written as input files (history as
+`history_<year>.csv`, the master data and planner input as CSV files) and a
+YAML config (`--backtest light`, the default: the backtest, which the graph
+always runs and `cycle.py` leaves out, with one origin and `top_down` only,
+enough for classes whose strategy and shares are fixed; `full`: the config's
+four origins and five strategies), then the real asset graph (`pipelines.definitions`), one run of
+the job `planning_cycle` per class partition of the cycle 2026-11-30, in this
+process, through `pipelines.runner.run_partitions` (what `python -m pipelines
+cycle` does without `--parallel`): the IO manager writes every table to the
+store and reads it back for the next asset, every schema and rule check runs,
+the last step publishes the class. A temporary folder (or `--folder`) holds the
+inputs, the store, the reports and its own DAGSTER_HOME (a SQLite instance).
+
+The scenario is generated in a forked child process, so this process's memory
+is the cycle's own. Per step (a Dagster step: an asset or multi-asset) it
+reports:
+
+    wall s     from the step's STEP_START to its STEP_SUCCESS / STEP_FAILURE event (their timestamps in the
+               instance's event log)
+    run s      inside the stage's own `run(...)` (its spec in `assets.factory.SPECS`, wrapped in this process)
+    valid s    inside the pandera validation of its outputs (`assets.factory.validate`,
+               `assets.publication.validate`)
+    read s     the IO manager's `load_input` (Parquet from the store); write s: its `handle_output`
+    sf s       inside StatsForecast fit / predict / forecast (of run s)
+    other s    wall minus run, valid, read and write: Dagster's events and checks, metadata, the factory
+    rss pk     the process RSS peak during the step, from a thread reading /proc/self/statm every
+               `--rss-sample-ms` (10 ms); rss end: RSS at the step's end
+    rows       the rows of the step's tables (`dagster/row_count` of its materializations)
+
+Each class's run ends with a `steps` line (the sum of its steps; `job` the
+whole run, from the job's start to its end, partition lock included) and the cycle with a `total` line: own time (wall
+minus statsforecast) and validation's share of it. `--json PATH` writes every
+figure with the load average at start and end, the scenario and the versions.
+"""
+
+from __future__ import annotations
+
+import argparse
+import functools
+import json
+import multiprocessing
+import os
+import sys
+import tempfile
+import threading
+import time
+from pathlib import Path
+
+import yaml
+
+ROOT = Path(__file__).resolve().parents[1]
+for path in (ROOT, ROOT / "benchmarks"):
+    if str(path) not in sys.path:
+        sys.path.insert(0, str(path))
+
+from cycle_inputs import config_data  # noqa: E402
+from cycle_measure import MB, git_commit, load_average, rss_max_mb, rss_now_mb  # noqa: E402
+from cycle_scenario import CLASSES, CYCLE_DATE, generate  # noqa: E402
+
+CYCLE = str(CYCLE_DATE)
+# the graph always runs backtest_accuracy; no class of the benchmark is `auto`, so by default it runs small
+LIGHT_BACKTEST = {"origins": 1, "strategies": ["top_down"]}
+KINDS = ("run", "validate", "read", "write", "statsforecast")
+HEADER = (
+    f"{'class':<9} {'step':<24} {'wall s':>8} {'run s':>8} {'valid s':>8} {'read s':>7} {'write s':>7} "
+    f"{'sf s':>8} {'other s':>7} {'rss pk':>7} {'rss end':>7} {'rows':>11}"
+)
+
+
+# =================================================================== inputs
+def write_inputs(args: argparse.Namespace, folder: Path) -> dict:
+    """The scenario as input files and a config (in a forked child, so its memory is not the cycle's)."""
+    queue = multiprocessing.get_context("fork").SimpleQueue()
+    child = multiprocessing.get_context("fork").Process(target=_write_inputs, args=(args, folder, queue))
+    child.start()
+    facts = queue.get()
+    child.join()
+    if child.exitcode != 0 or "error" in facts:
+        raise SystemExit(f"generating the scenario failed: {facts.get('error', child.exitcode)}")
+    return facts
+
+
+def _write_inputs(args: argparse.Namespace, folder: Path, queue) -> None:
+    try:
+        started = time.perf_counter()
+        inputs = folder / "inputs"
+        scen = generate(args.leaves, args.seed, args.periods, inputs, args.horizon)
+        frames = {"products": scen.products, "customer_spans": scen.spans, "adjustments": scen.adjustments,
+                  "pins": scen.pins, "shortages": scen.shortages}
+        for name, frame in frames.items():
+            frame.to_csv(inputs / f"{name}.csv", index=False, lineterminator="\n")
+        data = config_data(args.periods, args.horizon, False, None, n_jobs=args.n_jobs)
+        if args.backtest == "light":
+            data["backtest"] = LIGHT_BACKTEST
+        data["inputs"] = {"folder": str(inputs)}
+        data["store"] = {"path": str(folder / "var" / "store")}
+        (folder / "planning.yaml").write_text(yaml.safe_dump(data, sort_keys=False))
+        queue.put({**scen.facts, "generate_s": round(time.perf_counter() - started, 2)})
+    except Exception as err:  # reported by the parent
+        queue.put({"error": f"{type(err).__name__}: {err}"})
+        raise
+
+
+# =================================================================== measuring
+class Timeline:
+    """Intervals (kind, start, end) of wrapped calls and RSS samples, on the clock of Dagster's events."""
+
+    def __init__(self, sample_ms: float):
+        self.spans: list[tuple[str, float, float]] = []
+        self.samples: list[tuple[float, float]] = []
+        self._stop = threading.Event()
+        if sample_ms > 0:
+            threading.Thread(target=self._sample, args=(sample_ms / 1000,), daemon=True).start()
+
+    def _sample(self, interval: float) -> None:
+        while not self._stop.wait(interval):
+            self.samples.append((time.time(), rss_now_mb()))
+
+    def stop(self) -> None:
+        self._stop.set()
+
+    def wrap(self, owner, name: str, kind: str) -> None:
+        original = getattr(owner, name)
+
+        @functools.wraps(original)
+        def timed(*a, **k):
+            t0 = time.time()
+            try:
+                return original(*a, **k)
+            finally:
+                self.spans.append((kind, t0, time.time()))
+
+        if isinstance(owner, type) or hasattr(owner, "__dict__") and not hasattr(owner, "__dataclass_fields__"):
+            setattr(owner, name, timed)
+        else:  # a frozen dataclass (a StageAsset)
+            object.__setattr__(owner, name, timed)
+
+    def seconds(self, kind: str, start: float, end: float) -> float:
+        return sum(min(e, end) - max(s, start) for k, s, e in self.spans if k == kind and e > start and s < end)
+
+    def peak(self, start: float, end: float) -> float | None:
+        inside = [r for t, r in self.samples if start <= t <= end]
+        return max(inside) if inside else None
+
+
+def instrument(timeline: Timeline) -> None:
+    """Wrap the stages' runs, the validation, the IO manager and statsforecast (this process only)."""
+    import statsforecast
+
+    import assets.factory
+    import assets.publication
+    from assets.factory import SPECS
+    from pipelines import definitions  # noqa: F401  (makes every stage asset, so SPECS holds them all)
+    from pipelines.resources import PartitionStore
+
+    for spec in SPECS.values():
+        timeline.wrap(spec, "run", "run")
+    timeline.wrap(assets.factory, "validate", "validate")
+    timeline.wrap(assets.publication, "validate", "validate")
+    timeline.wrap(PartitionStore, "load_input", "read")
+    timeline.wrap(PartitionStore, "handle_output", "write")
+    for method in ("fit", "predict", "forecast"):
+        timeline.wrap(statsforecast.StatsForecast, method, "statsforecast")
+
+
+def step_rows(instance, run_id: str, timeline: Timeline, product_class: str) -> list[dict]:
+    """One row per step of the run, from its events' timestamps and the timeline."""
+    import dagster as dg
+
+    starts, ends, rows = {}, {}, {}
+    for entry in instance.all_logs(run_id):
+        event = entry.dagster_event
+        if event is None or not event.step_key:
+            continue
+        key = event.step_key
+        if event.event_type == dg.DagsterEventType.STEP_START:
+            starts[key] = entry.timestamp
+        elif event.event_type in (dg.DagsterEventType.STEP_SUCCESS, dg.DagsterEventType.STEP_FAILURE):
+            ends[key] = (entry.timestamp, event.event_type == dg.DagsterEventType.STEP_SUCCESS)
+        elif event.event_type == dg.DagsterEventType.ASSET_MATERIALIZATION:
+            count = event.event_specific_data.materialization.metadata.get("dagster/row_count")
+            rows[key] = rows.get(key, 0) + (count.value if count is not None else 0)
+    out = []
+    for key, start in sorted(starts.items(), key=lambda kv: kv[1]):
+        end, ok = ends.get(key, (start, False))
+        row = {"class": product_class, "step": key, "success": ok, "wall_s": end - start}
+        for kind in KINDS:
+            row[f"{kind}_s"] = timeline.seconds(kind, start, end)
+        row["other_s"] = row["wall_s"] - sum(row[f"{k}_s"] for k in ("run", "validate", "read", "write"))
+        row["rss_peak_mb"] = timeline.peak(start, end)
+        row["rss_end_mb"] = timeline.peak(end - 0.05, end + 0.05)
+        row["rows"] = rows.get(key)
+        out.append(row)
+    return out
+
+
+def format_row(r: dict) -> str:
+    def mb(v):
+        return "" if v is None else f"{v:.0f}"
+
+    rows = "" if r.get("rows") is None else f"{r['rows']:,}"
+    return (
+        f"{r['class']:<9} {r['step'][:24]:<24} {r['wall_s']:>8.2f} {r['run_s']:>8.2f} {r['validate_s']:>8.2f} "
+        f"{r['read_s']:>7.2f} {r['write_s']:>7.2f} {r['statsforecast_s']:>8.2f} {r['other_s']:>7.2f} "
+        f"{mb(r['rss_peak_mb']):>7} {mb(r['rss_end_mb']):>7} {rows:>11}"
+        + ("" if r.get("success", True) else "  FAILED")
+    )
+
+
+def totals(rows: list[dict], label: str, product_class: str = "") -> dict:
+    t = {"class": product_class, "step": label, "rows": None}
+    for key in ("wall_s", "run_s", "validate_s", "read_s", "write_s", "statsforecast_s", "other_s"):
+        t[key] = sum(r[key] for r in rows)
+    peaks = [r["rss_peak_mb"] for r in rows if r["rss_peak_mb"] is not None]
+    t["rss_peak_mb"] = max(peaks) if peaks else None
+    t["rss_end_mb"] = rows[-1]["rss_end_mb"] if rows else None
+    own = t["wall_s"] - t["statsforecast_s"]
+    t["own_s"] = own
+    t["validation_share_of_own"] = t["validate_s"] / own if own > 0 else None
+    # as benchmarks/cycle.py counts own time: the stages' runs and their validation, without statsforecast
+    stages = t["run_s"] + t["validate_s"] - t["statsforecast_s"]
+    t["validation_share_of_stages"] = t["validate_s"] / stages if stages > 0 else None
+    t["success"] = all(r.get("success", True) for r in rows)
+    return t
+
+
+# =================================================================== the cycle
+def run_cycle(args: argparse.Namespace) -> dict:
+    load_start = load_average()
+    tmp = None if args.folder else tempfile.TemporaryDirectory(prefix="apportion-dagster-bench-")
+    folder = Path(args.folder or tmp.name).resolve()
+    folder.mkdir(parents=True, exist_ok=True)
+    classes = [c.strip() for c in args.classes.split(",") if c.strip()]
+    unknown = sorted(set(classes) - set(CLASSES))
+    if unknown:
+        raise SystemExit(f"--classes: unknown {unknown}; choose from {list(CLASSES)}")
+    commit = git_commit()  # of the code this process imports, taken before the run
+    print(f"apportion cycle through Dagster: {args.leaves:,} leaves, seed {args.seed}, {args.periods} weekly periods, "
+          f"horizon {args.horizon}, classes {','.join(classes)}, n_jobs {args.n_jobs}, folder {folder}, "
+          f"commit {(commit or '?')[:8]}", flush=True)
+    facts = write_inputs(args, folder)
+    print(f"inputs written in {facts['generate_s']:.1f} s (not timed): {facts['lines']:,} history lines, "
+          f"{facts['parents']:,} parents; rss now {rss_now_mb():.0f} MB", flush=True)
+    home = folder / "dagster_home"
+    home.mkdir(exist_ok=True)
+    (home / "dagster.yaml").write_text("telemetry:\n  enabled: false\n")
+    os.environ["DAGSTER_HOME"] = str(home)
+
+    import dagster as dg
+
+    from pipelines.definitions import build_definitions
+    from pipelines.runner import run_partitions
+
+    timeline = Timeline(args.rss_sample_ms)
+    instrument(timeline)
+    defs = build_definitions(str(folder / "planning.yaml"))
+    steps: list[dict] = []
+    runs: list[dict] = []
+    print(HEADER)
+    print("-" * len(HEADER), flush=True)
+    with dg.DagsterInstance.get() as instance:
+
+        def done(product_class: str, result, seconds: float) -> None:
+            mine = step_rows(instance, result.run_id, timeline, product_class)
+            for row in mine:
+                print(format_row(row), flush=True)
+            run = {**totals(mine, "steps", product_class), "job_s": seconds, "run_id": result.run_id}
+            run["success"] = run["success"] and result.success
+            print(format_row(run) + f"  job {seconds:.2f} s", flush=True)
+            steps.extend(mine)
+            runs.append(run)
+            write_json(args, {"parameters": vars(args), "scenario": facts, "steps": steps, "runs": runs,
+                              "load": {"start": load_start, "so_far": load_average()}, "complete": False})
+
+        quiet = {"loggers": {"console": {"config": {"log_level": "CRITICAL"}}}}  # as `cycle` without --verbose
+        run_partitions(defs, instance, CYCLE, classes, all_classes=list(CLASSES), run_config=quiet, on_done=done,
+                       say=print)
+    timeline.stop()
+    total = totals(steps, "total")
+    print("-" * len(HEADER))
+    print(format_row(total))
+    # what benchmarks/cycle.py counts: every step but the backtest (Dagster's own steps included here)
+    without = totals([r for r in steps if r["step"] != "backtest_accuracy"], "total w/o backtest")
+    print(format_row(without) + f"  validation {without['validation_share_of_own'] or 0:.1%} of own")
+    share, stages = total["validation_share_of_own"] or 0.0, total["validation_share_of_stages"] or 0.0
+    print(f"own {total['own_s']:.2f} s (wall {total['wall_s']:.2f} minus statsforecast "
+          f"{total['statsforecast_s']:.2f}); validation {total['validate_s']:.2f} s = {share:.1%} of own, "
+          f"{stages:.1%} of the stages' own (run + validation - statsforecast); store read {total['read_s']:.2f} s, "
+          f"write {total['write_s']:.2f} s; Dagster and the factory (other) {total['other_s']:.2f} s; "
+          f"ru_maxrss {rss_max_mb():.0f} MB")
+    load = {"start": load_start, "end": load_average()}
+    print("load average (1 / 5 / 15 min), start and end: " + "; ".join(
+        f"{v['load_1m']:.2f} / {v['load_5m']:.2f} / {v['load_15m']:.2f} at {v['at']}" for v in load.values()))
+    result = {
+        "parameters": vars(args),
+        "scenario": facts,
+        "steps": steps,
+        "runs": runs,
+        "total": {**total, "rss_max_mb": rss_max_mb()},
+        "total_without_backtest": without,
+        "load": load,
+        "versions": {**versions(), "commit": commit},
+        "complete": True,
+    }
+    if write_json(args, result):
+        print(f"wrote {args.json}")
+    if tmp is not None:
+        tmp.cleanup()
+    return result
+
+
+def write_json(args: argparse.Namespace, result: dict) -> bool:
+    """The figures so far (after each class, `complete` false; at the end, true)."""
+    if not args.json:
+        return False
+    Path(args.json).parent.mkdir(parents=True, exist_ok=True)
+    Path(args.json).write_text(json.dumps(result, indent=2, default=str))
+    return True
+
+
+def versions() -> dict:
+    import dagster
+    import numpy
+    import pandas
+    import pandera
+    import statsforecast
+
+    return {"python": sys.version.split()[0], "dagster": dagster.__version__, "pandas": pandas.__version__,
+            "numpy": numpy.__version__, "pandera": pandera.__version__, "statsforecast": statsforecast.__version__,
+            "commit": git_commit(), "bytes_per_mb": MB}
+
+
+def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
+    p = argparse.ArgumentParser(prog="benchmarks/cycle_dagster.py", description=__doc__.splitlines()[0])
+    p.add_argument("--leaves", type=int, required=True, help="number of leaf series (product x site x customer)")
+    p.add_argument("--seed", type=int, default=7, help="generator seed (default 7)")
+    p.add_argument("--periods", type=int, default=156, help="weeks of history (default 156)")
+    p.add_argument("--horizon", type=int, default=26, help="weeks to forecast (default 26)")
+    p.add_argument("--classes", default=",".join(CLASSES), help="class partitions to run, in order (default all)")
+    p.add_argument("--backtest", choices=("light", "full"), default="light",
+                   help="light (default): backtest.origins 1, strategies [top_down]; full: the config's defaults "
+                   "(4 origins, 5 strategies, at both grains)")
+    p.add_argument("--n-jobs", type=int, default=1, help="execution.n_jobs: statsforecast processes (default 1)")
+    p.add_argument("--folder", default=None, help="keep inputs, store, reports and DAGSTER_HOME here (default: "
+                   "a temporary folder, removed at the end)")
+    p.add_argument("--rss-sample-ms", type=float, default=10.0, help="RSS sampling interval; 0 = off (default 10)")
+    p.add_argument("--json", default=None, metavar="PATH", help="write the figures as JSON")
+    args = p.parse_args(argv)
+    if args.leaves < 1 or args.periods < 8 or args.horizon < 1:
+        p.error("--leaves >= 1, --periods >= 8 and --horizon >= 1")
+    return args
+
+
+if __name__ == "__main__":
+    run_cycle(parse_args())
