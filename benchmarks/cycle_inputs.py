@@ -135,22 +135,9 @@ def plan_inputs(
     return adjustments, pins
 
 
-def make_config(
-    periods: int,
-    horizon: int,
-    seasonal: bool,
-    leaf_grain: str | None,
-    shortage_rule: str | None = None,
-    seasonal_model: str = "auto_ets",
-    class_outliers: bool = True,
-    share_method: str | None = None,
-    n_jobs: int = 1,
-) -> PlanningConfig:
+def make_config(*args, **kwargs) -> PlanningConfig:
     """The parsed config of `config_data(...)` (same arguments)."""
-    return parse_config(
-        config_data(periods, horizon, seasonal, leaf_grain, shortage_rule, seasonal_model, class_outliers,
-                    share_method, n_jobs)
-    )
+    return parse_config(config_data(*args, **kwargs))
 
 
 def config_data(
