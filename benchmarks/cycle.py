@@ -72,7 +72,6 @@ import tracemalloc
 from dataclasses import asdict
 from pathlib import Path
 
-import numpy as np
 import pandas as pd
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -80,7 +79,6 @@ for path in (ROOT, ROOT / "benchmarks"):
     if str(path) not in sys.path:
         sys.path.insert(0, str(path))
 
-import statsforecast  # noqa: E402
 from cycle_inputs import SHARE_METHODS, SMOOTHING, make_config  # noqa: E402
 from cycle_measure import (  # noqa: E402
     HEADER,
@@ -88,9 +86,9 @@ from cycle_measure import (  # noqa: E402
     Bench,
     git_commit,
     load_average,
-    pa_version,
     patch_statsforecast,
     total_line,
+    versions,
     warm_up,
 )
 from cycle_scenario import CLASSES, Scenario  # noqa: E402
@@ -297,14 +295,7 @@ def finish(bench: Bench, args: argparse.Namespace, scen: Scenario, compared: dic
         "total": total,
         "load": load,
         **compared,
-        "versions": {
-            "python": sys.version.split()[0],
-            "pandas": pd.__version__,
-            "numpy": np.__version__,
-            "statsforecast": statsforecast.__version__,
-            "pandera": pa_version(),
-            "commit": git_commit(),
-        },
+        "versions": versions(),
     }
     if args.json:
         Path(args.json).parent.mkdir(parents=True, exist_ok=True)

@@ -62,7 +62,7 @@ for path in (ROOT, ROOT / "benchmarks"):
         sys.path.insert(0, str(path))
 
 from cycle_inputs import config_data  # noqa: E402
-from cycle_measure import MB, git_commit, load_average, rss_max_mb, rss_now_mb  # noqa: E402
+from cycle_measure import git_commit, load_average, rss_max_mb, rss_now_mb, versions  # noqa: E402
 from cycle_scenario import CLASSES, CYCLE_DATE, generate  # noqa: E402
 
 CYCLE = str(CYCLE_DATE)
@@ -324,18 +324,6 @@ def write_json(args: argparse.Namespace, result: dict) -> bool:
     Path(args.json).parent.mkdir(parents=True, exist_ok=True)
     Path(args.json).write_text(json.dumps(result, indent=2, default=str))
     return True
-
-
-def versions() -> dict:
-    import dagster
-    import numpy
-    import pandas
-    import pandera
-    import statsforecast
-
-    return {"python": sys.version.split()[0], "dagster": dagster.__version__, "pandas": pandas.__version__,
-            "numpy": numpy.__version__, "pandera": pandera.__version__, "statsforecast": statsforecast.__version__,
-            "commit": git_commit(), "bytes_per_mb": MB}
 
 
 def parse_args(argv: list[str] | None = None) -> argparse.Namespace:

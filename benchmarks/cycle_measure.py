@@ -211,12 +211,10 @@ def rss_max_mb() -> float:
 
 
 def patch_statsforecast(bench: Bench) -> None:
-    """Time every StatsForecast fit / predict / forecast call (in this process only; project code untouched).
+    """Time every StatsForecast fit / predict / forecast call in this process, and the pool's (`_timed_pool`).
 
-    `make_model` of the models engine is wrapped too, only to tag each model
-    object with its config name and season for the `sf` lines. In the traced
-    rerun each call replays the timed run's result and the object state it
-    left (e.g. `fitted_` after `fit`), so statsforecast does not run twice.
+    `make_model` is wrapped only to tag each model with its config name and season for the `sf` lines. In the
+    traced rerun each call replays the timed run's result and object state, so statsforecast does not run twice.
     """
     original_make = M.make_model
 
@@ -378,7 +376,6 @@ def total_line(steps: list[Step]) -> tuple[str, dict]:
     return line, figures
 
 
-
 def load_average() -> dict:
     """The machine's load when a figure was taken (`uptime`'s three numbers) and the time, UTC."""
     one, five, fifteen = os.getloadavg()
@@ -394,7 +391,10 @@ def git_commit() -> str | None:
         return None
 
 
-def pa_version() -> str:
+def versions() -> dict:
+    """The library versions and commit a figure was measured with."""
+    import dagster
     import pandera
-
-    return pandera.__version__
+    return {"python": sys.version.split()[0], "dagster": dagster.__version__, "pandas": pd.__version__,
+            "numpy": np.__version__, "pandera": pandera.__version__, "statsforecast": statsforecast.__version__,
+            "commit": git_commit(), "bytes_per_mb": MB}
