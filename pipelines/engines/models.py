@@ -332,13 +332,15 @@ class GroupFit:
 
 def fit_group(
     frame: pd.DataFrame, name: str, season: int, horizon: int, tsb: TSBConfig | None = None,
-    fitted: bool = False, sd: bool = False, n_jobs: int = 1,
+    fitted: bool = False, sd: bool = False,
 ) -> GroupFit:
     """Fit one model to the series of `frame` (`unique_id`, `ds`, `y`, sorted by series then period).
 
     Each series is fitted alone, so a chunk of a group gives its series the same numbers as the whole group.
+    Always in this process (statsforecast's own `n_jobs` pool forks it; parallel work goes through
+    `model_engine.map_on_pool` or the cluster).
     """
-    sf = StatsForecast(models=[make_model(name, season, tsb)], freq=1, n_jobs=n_jobs, fallback_model=sfm.Naive())
+    sf = StatsForecast(models=[make_model(name, season, tsb)], freq=1, n_jobs=1, fallback_model=sfm.Naive())
     ids = np.unique(frame["unique_id"].to_numpy())
     parameters = np.full(len(ids), "", dtype=object)
     fit_values = None
