@@ -189,6 +189,23 @@ class BacktestAccuracy(_Strict):
     selection_metric: Series[Text] = pa.Field(
         isin=("wmape", "rmsse", "mase"), description="the metric the class's choices are made on (its demand classes)"
     )
+    numerator: Series[float] = pa.Field(
+        nullable=True, description="the sum `value` is the ratio of: |e|, e, scaled |e|, weighted RMSSE or cells "
+        "inside the interval, over series, periods and origins (NaN for fva); additive over shards"
+    )
+    denominator: Series[float] = pa.Field(
+        nullable=True, description="its divisor: actuals, scored cells or RMSSE weights (value NaN where not > 0)"
+    )
+    numerator_cleaned: Series[float] = pa.Field(nullable=True, description="numerator against the cleaned actuals")
+    denominator_cleaned: Series[float] = pa.Field(
+        nullable=True, description="denominator against the cleaned actuals"
+    )
+    leaf_series_wmape: Series[int] = pa.Field(
+        ge=0, description="the class's leaf series whose demand class is judged by wmape (selection_metric: the "
+        "metric of most; additive over shards)"
+    )
+    leaf_series_rmsse: Series[int] = pa.Field(ge=0, description="the same for rmsse")
+    leaf_series_mase: Series[int] = pa.Field(ge=0, description="the same for mase")
 
     @pa.check("metric", name="metric_known")
     def _metric_known(cls, metric: Series[str]) -> Series[bool]:

@@ -30,7 +30,7 @@ import pandas as pd
 from pipelines.calendar import season_length
 from pipelines.engines.accuracy import mase_scale
 from pipelines.engines.forecast_comparison import squared_scaled_loss
-from pipelines.engines.scaled_errors import pooled_rmsse, rmsse, rmsse_scale, volume_weights
+from pipelines.engines.scaled_errors import rmsse, rmsse_scale, rmsse_sums, volume_weights
 from pipelines.vocabulary import BENCHMARK
 
 RAW, CLEANED = "raw", "cleaned"
@@ -84,20 +84,24 @@ class ScoreBook:
 
     def metrics(self, name: str, grain: str, basis: str = RAW) -> dict[str, np.ndarray]:
         """Per class (n_classes,): wmape, bias, mase, rmsse of `name` at `grain` against `basis` (NaN: unscored)."""
+        return {m: ratio(num, den) for m, (num, den) in self.parts(name, grain, basis).items()}
+
+    def parts(self, name: str, grain: str, basis: str = RAW) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+        """Per metric, the (numerator, denominator) per class (n_classes,) whose ratio it is: sums over series,
+        periods and origins, so the parts of disjoint sets of series (shards) add up to those of their union
+        (`pipelines.engines.backtest_combine`). wmape |e| / actual, bias e / actual, mase scaled |e| / cells,
+        rmsse the volume-weighted sum of per-series RMSSE / the weights."""
         n_classes = len(self.classes)
         m = self.sums.get((name, grain, basis), np.zeros((n_classes, 5)))
-        with np.errstate(invalid="ignore", divide="ignore"):
-            out = {
-                "wmape": np.where(m[:, _ACT] > 0, m[:, _ABS] / m[:, _ACT], np.nan),
-                "bias": np.where(m[:, _ACT] > 0, m[:, _ERR] / m[:, _ACT], np.nan),
-                "mase": np.where(m[:, _CELLS] > 0, m[:, _SCALED] / m[:, _CELLS], np.nan),
-            }
+        out = {
+            "wmape": (m[:, _ABS], m[:, _ACT]), "bias": (m[:, _ERR], m[:, _ACT]), "mase": (m[:, _SCALED], m[:, _CELLS]),
+        }
         rows = self.rmsse_rows.get((name, grain, basis), [])
         if rows:
             values, weights, cls = (np.concatenate(parts) for parts in zip(*rows, strict=True))
-            out["rmsse"] = pooled_rmsse(values, weights, group=cls, n_groups=n_classes)
+            out["rmsse"] = rmsse_sums(values, weights, cls, n_classes)
         else:
-            out["rmsse"] = np.full(n_classes, np.nan)
+            out["rmsse"] = (np.zeros(n_classes), np.zeros(n_classes))
         return out
 
     def loss_table(self, origins: list[pd.Timestamp]) -> pd.DataFrame:
@@ -114,6 +118,12 @@ class ScoreBook:
         if not frames:
             return pd.DataFrame({c: pd.Series(dtype=object) for c in LOSS_COLUMNS})
         return pd.concat(frames, ignore_index=True)[LOSS_COLUMNS]
+
+
+def ratio(numerator: np.ndarray, denominator: np.ndarray) -> np.ndarray:
+    """numerator / denominator where the denominator is positive, else NaN (no volume, no scored cell)."""
+    num, den = np.asarray(numerator, dtype=float), np.asarray(denominator, dtype=float)
+    return np.divide(num, den, out=np.full(num.shape, np.nan), where=den > 0)
 
 
 def dense_window(code: np.ndarray, ords: np.ndarray, qty: np.ndarray, n: int, start: int, width: int) -> np.ndarray:
@@ -136,29 +146,36 @@ def error_scales(grid, cls: np.ndarray, seasonal_classes, period: str, h: int) -
     return Scales(q=q, q2=q2, weight=volume_weights(grid.series, grid.y, grid.n_series, h))
 
 
-# the accuracy table's columns before the backtest adds the seasonality it ran with
+# the accuracy table's columns before the backtest adds the seasonality it ran with and the selection counts
 TABLE_COLUMNS = [
     "product_class", "strategy", "grain", "metric", "value", "origins", "horizon", "series", "value_cleaned",
     "selection_metric",
 ]
+# the sums each value is the ratio of (fva: NaN, a difference of two WMAPEs), additive over shards
+PART_COLUMNS = ["numerator", "denominator", "numerator_cleaned", "denominator_cleaned"]
 
 
 def accuracy_table(book: ScoreBook, names, metric: np.ndarray, c_cls, p_cls, n_origins: int, h: int) -> pd.DataFrame:
+    """TABLE_COLUMNS + PART_COLUMNS: a row per class with series, strategy of `names`, grain and metric."""
     classes = book.classes
     counts = {"leaf": np.bincount(c_cls, minlength=len(classes)), "parent": np.bincount(p_cls, minlength=len(classes))}
+    nothing = np.full(len(classes), np.nan)
     out = []
     for grain in ("leaf", "parent"):
         bench = {b: book.metrics(BENCHMARK, grain, b) for b in (RAW, CLEANED)}
         for s in names:
+            parts = {b: {**book.parts(s, grain, b), "fva": (nothing, nothing)} for b in (RAW, CLEANED)}
             values = {b: book.metrics(s, grain, b) for b in (RAW, CLEANED)}
             for b in (RAW, CLEANED):
                 values[b]["fva"] = bench[b]["wmape"] - values[b]["wmape"]
             for name_metric in ("wmape", "bias", "mase", "rmsse", "fva"):
+                (num, den), (num_c, den_c) = parts[RAW][name_metric], parts[CLEANED][name_metric]
                 for i, name in enumerate(classes):
                     out.append((
                         name, s, grain, name_metric, float(values[RAW][name_metric][i]), n_origins, h,
                         int(counts[grain][i]), float(values[CLEANED][name_metric][i]), metric[i],
+                        float(num[i]), float(den[i]), float(num_c[i]), float(den_c[i]),
                     ))
-    table = pd.DataFrame(out, columns=TABLE_COLUMNS)
+    table = pd.DataFrame(out, columns=TABLE_COLUMNS + PART_COLUMNS)
     keep = table["series"] > 0  # a class without series in the data has nothing to report
     return table[keep].reset_index(drop=True)

@@ -176,7 +176,8 @@ class CoverageBook:
                 np.add.at(book[i, 1], cls, scored.sum(axis=1))
 
     def rows(self, classes, c_cls, p_cls, n_origins: int, h: int):
-        """The coverage rows of the accuracy table (metric `coverage_<level>`), classes with series only."""
+        """The coverage rows of the accuracy table (metric `coverage_<level>`), classes with series only; the
+        cells inside the bounds and the cells scored as numerator and denominator (additive over shards)."""
         import pandas as pd
 
         from pipelines.vocabulary import coverage_metric
@@ -190,7 +191,6 @@ class CoverageBook:
                 for k, name in enumerate(classes):
                     if counts[grain][k] > 0:
                         out.append((name, strategy, grain, coverage_metric(level), float(value[k]), n_origins, h,
-                                    int(counts[grain][k])))
-        return pd.DataFrame(
-            out, columns=["product_class", "strategy", "grain", "metric", "value", "origins", "horizon", "series"]
-        )
+                                    int(counts[grain][k]), float(book[i, 0, k]), float(book[i, 1, k])))
+        columns = ["product_class", "strategy", "grain", "metric", "value", "origins", "horizon", "series"]
+        return pd.DataFrame(out, columns=columns + ["numerator", "denominator"])

@@ -201,10 +201,19 @@ def pooled_rmsse(
         group, n_groups = np.zeros(n, dtype=np.int64), 1
     elif n_groups is None:
         n_groups = int(group.max()) + 1 if n else 0
+    total, mass = rmsse_sums(values, w, group, n_groups)
+    return np.divide(total, mass, out=np.full(n_groups, np.nan), where=mass > 0)
+
+
+def rmsse_sums(
+    values: np.ndarray, weights: np.ndarray, group: np.ndarray, n_groups: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """(n_groups,) each: the weighted sum of per-row RMSSE and the weights, over the rows with a finite value and
+    a positive weight: the two sums `pooled_rmsse` divides, additive over disjoint sets of rows (shards)."""
+    values, w = np.asarray(values, dtype=float), np.asarray(weights, dtype=float)
     ok = np.isfinite(values) & np.isfinite(w) & (w > 0)
     total = np.bincount(group[ok], weights=w[ok] * values[ok], minlength=n_groups)
-    mass = np.bincount(group[ok], weights=w[ok], minlength=n_groups)
-    return np.divide(total, mass, out=np.full(n_groups, np.nan), where=mass > 0)
+    return total, np.bincount(group[ok], weights=w[ok], minlength=n_groups)
 
 
 @dataclass(frozen=True)
@@ -243,10 +252,12 @@ class MetricRule:
 
 @dataclass(frozen=True)
 class ClassMetric:
-    """Per product class (n_classes,): the metric it is judged by and that metric's share of the class."""
+    """Per product class (n_classes,): the metric it is judged by and that metric's share of the class; `mass`
+    (n_classes, len(METRICS)): the series (or units) of each metric, additive over shards (`metric_of_mass`)."""
 
     metric: np.ndarray
     share: np.ndarray
+    mass: np.ndarray | None = None
 
 
 def class_metric(
@@ -277,9 +288,17 @@ def class_metric(
     for j, name in enumerate(METRICS):  # three metrics, not a loop over series
         mine = metric == name
         mass[:, j] = np.bincount(class_code[mine], weights=w[mine], minlength=n_classes)
+    chosen, share = metric_of_mass(mass, rule.smooth)
+    return ClassMetric(metric=chosen, share=share, mass=mass)
+
+
+def metric_of_mass(mass: np.ndarray, empty: str) -> tuple[np.ndarray, np.ndarray]:
+    """(metric, share), each (n_classes,), of a (n_classes, len(METRICS)) mass: the metric holding the most (ties
+    to the one listed first in METRICS), `empty` where the class has nothing to count (share NaN)."""
+    mass = np.asarray(mass, dtype=float)
     total = mass.sum(axis=1)
     best = np.argmax(mass, axis=1)  # first maximum: ties to the metric listed first
     chosen = np.array(METRICS, dtype=object)[best]
-    chosen[total <= 0] = rule.smooth
-    share = np.divide(mass[np.arange(n_classes), best], total, out=np.full(n_classes, np.nan), where=total > 0)
-    return ClassMetric(metric=chosen, share=share)
+    chosen[total <= 0] = empty
+    share = np.divide(mass[np.arange(len(mass)), best], total, out=np.full(len(mass), np.nan), where=total > 0)
+    return chosen, share

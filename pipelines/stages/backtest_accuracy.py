@@ -75,7 +75,8 @@ from pipelines.checks import SHARE_CHOICE_NEAR_BEST
 from pipelines.config_sections import BacktestConfig
 from pipelines.config_selection import SelectionConfig
 from pipelines.engines.backtest_origins import backtest_series, candidate_bases, origin_view
-from pipelines.engines.backtest_scores import RAW, ScoreBook, accuracy_table
+from pipelines.engines.backtest_combine import SELECTION_COUNT_COLUMNS, selection_counts
+from pipelines.engines.backtest_scores import PART_COLUMNS, RAW, ScoreBook, accuracy_table
 from pipelines.engines.base_forecasts import base_forecasts, series_to_fit
 from pipelines.engines.children import active_children
 from pipelines.engines.forecast_comparison import StabilityRule
@@ -93,7 +94,7 @@ from pipelines.vocabulary import AUTO, BENCHMARK, Seasonality
 
 ACCURACY_COLUMNS = [
     "product_class", "seasonality", "strategy", "grain", "metric", "value", "origins", "horizon", "series",
-    "value_cleaned", "selection_metric",
+    "value_cleaned", "selection_metric", *PART_COLUMNS, *SELECTION_COUNT_COLUMNS,
 ]
 
 
@@ -248,8 +249,8 @@ def run_backtest(
                                                basis)
             tune.add(k, name, "leaf", leaf, view.actual["leaf"], data.c_cls, view.scales["leaf"])
         kept.append((base, bases, view.actual, view.scales))
-    metric = class_metric(data.c_cls, demand, len(classes), MetricRule(**settings.selection.metric.model_dump())).metric
-    metric_of = dict(zip(classes, metric, strict=True))
+    judged = class_metric(data.c_cls, demand, len(classes), MetricRule(**settings.selection.metric.model_dump()))
+    metric, metric_of = judged.metric, dict(zip(classes, judged.metric, strict=True))
     tuning = decide(tune, grid, settings.configured, metric_of, _previous(previous_tuning), settings.stability())
     chosen = tuning[tuning["chosen"]].set_index("product_class")["candidate"].to_dict()
     for k, (base, bases, actual, scales) in enumerate(kept):
@@ -273,9 +274,11 @@ def run_backtest(
         mine = list(modes[v])
         names = settings.strategies_run(mine) + [BENCHMARK]
         covered = coverage[v].rows(classes, data.c_cls, data.p_cls, len(origins), h)
-        covered = covered.assign(value_cleaned=np.nan, selection_metric=covered["product_class"].map(metric_of))
+        covered = covered.assign(value_cleaned=np.nan, selection_metric=covered["product_class"].map(metric_of),
+                                 numerator_cleaned=np.nan, denominator_cleaned=np.nan)
         table = pd.concat([accuracy_table(books[v], names, metric, data.c_cls, data.p_cls, len(origins), h), covered],
                           ignore_index=True)
+        table = selection_counts(table, classes, judged.mass)
         parts["accuracy"].append(settings.scored(table, mine).assign(seasonality=v))
         parts["losses"].append(settings.scored(books[v].loss_table(dates), mine).assign(seasonality=v))
     out = {name: pd.concat(frames, ignore_index=True) for name, frames in parts.items()}
