@@ -1,6 +1,8 @@
 """Assets `backtest_accuracy`, `backtest_losses`, `share_tuning`: rolling-origin accuracy of every strategy at both
 grains, their per-period losses, and every share window x method candidate's split accuracy with the choice."""
 
+import dataclasses
+
 from assets.factory import Partition, StageAsset, Table, stage_asset
 from pipelines.stages import backtest_accuracy as stage
 
@@ -12,6 +14,11 @@ SHARE_TUNING = "share_tuning"
 def previous_tuning(part: Partition) -> dict:
     """The share_tuning of the class's latest completed cycle before this one (None for its first cycle)."""
     return {"previous_tuning": part.previous(SHARE_TUNING)[0]}
+
+
+def backtest_settings(part: Partition) -> stage.BacktestSettings:
+    """The backtest's settings; a shard's origins and residual windows start at its class's first period."""
+    return dataclasses.replace(stage.BacktestSettings.of(part.config), class_window=part.shard is not None)
 
 
 backtest_accuracy = stage_asset(StageAsset(
@@ -35,7 +42,7 @@ backtest_accuracy = stage_asset(StageAsset(
         ),
     ),
     run=stage.run,
-    settings=lambda part: stage.BacktestSettings.of(part.config),
+    settings=backtest_settings,
     group="forecast",
     ins=("lifecycle_history", "cleaned_history", "products", "customer_spans", "cycle_calendar"),
     read=previous_tuning,

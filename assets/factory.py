@@ -20,10 +20,11 @@ import dagster as dg
 from assets.common import markdown, rule_check, schema_check_spec, table_metadata, validate
 from pipelines.checks import checks_of
 from pipelines.config import PlanningConfig
+from pipelines.errors import ShardsMissing
 from pipelines.partitions import cycle_class_partitions, narrow_config, split_key
-from pipelines.resources import previous_cycle, read_table, report_folder
+from pipelines.resources import open_store, previous_cycle, read_table, report_folder
 from pipelines.results import StageResult
-from pipelines.shards import SHARD_MARK, Shard, shard_of, split_class_key
+from pipelines.shards import SHARD_MARK, Shard, shard_of, split_class_key, store_shards
 from pipelines.tables import MODELS
 
 
@@ -55,6 +56,25 @@ class Partition:
         if self.shard is not None and found is not None:
             found = self.shard_rows(found)
         return found, before
+
+    def siblings(self, table: str) -> dict[str, Any]:
+        """`table` of every shard of the class in this cycle, as each last wrote it (the latest versions): shard
+        (`2of4`) -> frame, in shard order; a ShardsMissing error naming the shards not written yet and the command
+        that runs them. A class not cut: its own table under its one shard `0`."""
+        store = Path(self.config.store.path)
+        written = open_store(store).latest(table, self.cycle, self.product_class)
+        wanted = store_shards(self.full, self.product_class)
+        missing = [s for s in wanted if s not in written]
+        if missing:
+            keys = [f"{self.product_class}{SHARD_MARK}{s}" for s in missing]
+            raise ShardsMissing(
+                f"{table} of class {self.product_class!r}, cycle {self.cycle}: shards {keys} have not written it "
+                f"yet, and the class-level step reads every shard's. Run the class's shards up to the backtest "
+                f"first: python -m pipelines cycle --cycle {self.cycle} --class {self.product_class} (runs every "
+                f"shard to the backtest, then every shard on; in the UI backfill {table} of all its shards first)"
+            )
+        return {s: read_table(store, table, cycle=self.cycle, product_class=self.product_class, versions="latest",
+                              shard=s) for s in wanted}
 
     @property
     def key(self) -> str:

@@ -1,6 +1,8 @@
 """Asset `strategy_choice`: the strategy each class follows this cycle, with the decision and reason behind it."""
 
 from assets.factory import Partition, StageAsset, Table, stage_asset
+from pipelines.engines.backtest_combine import combine_accuracy, combine_losses
+from pipelines.shards import needs_class_step
 from pipelines.stages import strategy_choice as stage
 
 STRATEGY_CHOICE = "strategy_choice"
@@ -10,6 +12,19 @@ def previous_choice(part: Partition) -> dict:
     """The strategy_choice of the class's latest completed cycle before this one (None for its first cycle)."""
     previous, before = part.previous(STRATEGY_CHOICE)
     return {"previous": previous, "previous_cycle": before}
+
+
+def choice_inputs(part: Partition) -> dict:
+    """The previous choice; for a class cut into shards that decides at class level, the backtest tables of every
+    shard of this cycle combined into the class's (in place of the shard's own), so every shard stores the same
+    class-level row (`pipelines.engines.backtest_combine`; a ShardsMissing error names a shard not run yet)."""
+    found = previous_choice(part)
+    if part.shard is None or not needs_class_step(part.full, part.product_class):
+        return found
+    accuracy = part.siblings("backtest_accuracy")
+    losses = part.siblings("backtest_losses")
+    return {**found, "backtest_accuracy": combine_accuracy(list(accuracy.values())),
+            "backtest_losses": combine_losses(list(losses.values()))}
 
 
 strategy_choice = stage_asset(StageAsset(
@@ -24,5 +39,5 @@ strategy_choice = stage_asset(StageAsset(
     settings=lambda part: stage.StrategySettings.of(part.config),
     group="forecast",
     ins=("backtest_accuracy", "backtest_losses"),
-    read=previous_choice,
+    read=choice_inputs,
 ))

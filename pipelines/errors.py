@@ -38,5 +38,9 @@ class UnknownKeyError(PlanningError):
     """A product, site, customer or period asked about is not in the stored cycle."""
 
 
+class ShardsMissing(PlanningError):
+    """A class-level step reads every shard of its class, and some shards have not written their table yet."""
+
+
 class PinError(PlanningError):
     """Pins take more than their parent holds, with `pins.on_overflow: error`."""

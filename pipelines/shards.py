@@ -15,11 +15,18 @@ the class's `shard=2of4` folder (`shard=0` for a class not cut), and readers
 of the class read every shard.
 
 What a shard computes alone is what is per parent: cleansing, shares, the
-split, the forecast and its reconciliation, share drift. The decisions that
-need the whole class (an `auto` strategy, an `auto` share window or method,
-an `auto` seasonality, group seasonality over more than a product's sites,
-levels above the parent) are refused with shards > 1 (`check_scale`): their
-class-level combine is not built yet (DEVELOPERS.md, *Shards*).
+split, the forecast and its reconciliation, share drift, and its backtest's
+sums. The class-level step: `strategy_choice` of a class of more than one
+shard decides from every shard's backtest of the cycle combined
+(`pipelines.engines.backtest_combine`: the sums add), so `strategy: auto`
+and `seasonality: auto` with the group by product (hashed on the product,
+like `group`) are allowed; every shard stores the same class-level row. Its
+runs go in two phases (`needs_class_step`; `pipelines.runner`): every shard
+up to the backtest, then every shard from `strategy_choice` on. Still
+refused with shards > 1 (`check_scale`): an `auto` share window or method
+(the share tuning's choice feeds the strategies' scores inside one backtest),
+group seasonality over more than a product's sites, levels above the parent
+(DEVELOPERS.md, *Shards*).
 """
 
 from __future__ import annotations
@@ -107,10 +114,18 @@ def class_shards(config, name: str) -> int:
 
 
 def hash_columns(pc) -> tuple[str, ...]:
-    """The columns a class's rows are hashed on: the product alone for group seasonality by product."""
-    if pc.seasonality == Seasonality.GROUP and pc.seasonal_group == GROUP_PRODUCT:
+    """The columns a class's rows are hashed on: the product alone for group seasonality by product (also under
+    `seasonality: auto`, which may choose it)."""
+    if pc.seasonality in (Seasonality.GROUP, AUTO) and pc.seasonal_group == GROUP_PRODUCT:
         return PRODUCT_KEY
     return PARENT_KEY
+
+
+def needs_class_step(config, name: str) -> bool:
+    """Whether class `name` is cut into shards and decides at class level (`strategy: auto`, `seasonality:
+    auto`): its strategy_choice reads every shard's backtest, so its shards run in two phases."""
+    pc = config.product_classes[name]
+    return class_shards(config, name) > 1 and AUTO in (pc.strategy, pc.seasonality)
 
 
 def partition_classes(config, classes: list[str] | None = None) -> list[str]:
@@ -158,13 +173,9 @@ def shard_of(config, key: str) -> Shard | None:
 # what a shard cannot decide alone: the key and why, for check_scale's message
 def _needs_whole_class(pc, upper_levels) -> list[str]:
     found = []
-    if pc.strategy == AUTO:
-        found.append("strategy: auto (the backtest's choice over the whole class)")
     if pc.window == AUTO or pc.method == AUTO:
-        found.append("window/method: auto (share tuning over the whole class)")
-    if pc.seasonality == AUTO:
-        found.append("seasonality: auto (the backtest's choice over the whole class)")
-    if pc.seasonality == Seasonality.GROUP and pc.seasonal_group != GROUP_PRODUCT:
+        found.append("window/method: auto (share tuning over the whole class, inside each backtest)")
+    if pc.seasonality in (Seasonality.GROUP, AUTO) and pc.seasonal_group != GROUP_PRODUCT:
         found.append(f"seasonal_group: {pc.seasonal_group} (a group across shards)")
     if upper_levels:
         found.append("hierarchy.upper_levels (levels above the parent sum every shard)")

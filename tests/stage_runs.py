@@ -44,23 +44,31 @@ def demo_config(classes: dict[str, dict] | None = None, **sections) -> PlanningC
     return parse_config(data, ROOT / "config" / "planning.yaml")
 
 
-def run_partition(config: PlanningConfig, cycle: str, product_class: str, backtest: bool = False) -> PartitionRun:
+def run_partition(
+    config: PlanningConfig, cycle: str, product_class: str, backtest: bool = False, *, upto: str | None = None,
+    done: dict[str, pd.DataFrame] | None = None, read: dict[str, dict] | None = None,
+) -> PartitionRun:
+    """The partition's tables. `upto`: stop after the stage whose first table it is; `done`: the tables of an
+    earlier call (their stages are not run again); `read`: stage (first table) -> inputs given in place of its
+    own, as an asset's store read gives them (a sharded class's strategy_choice: the shards' backtests combined)."""
     from assets.factory import Partition, graph_order
     from pipelines import definitions  # noqa: F401  (makes every stage asset, so SPECS holds them all)
     from pipelines.shards import shard_of, split_class_key
 
     name = split_class_key(product_class)[0]  # a shard's key (`spares~2of3`) runs that shard of its class
     part = Partition(narrow_config(config, cycle, product_class), config, cycle, name, shard_of(config, product_class))
-    tables: dict[str, pd.DataFrame] = {}
+    tables: dict[str, pd.DataFrame] = dict(done or {})
     settings: dict[str, object] = {}
     for spec in graph_order():
         first = spec.tables[0].name
+        if all(t.name in tables for t in spec.tables):
+            continue
         if first == "backtest_accuracy" and not backtest:
             for table in spec.tables:  # the accuracy, losses and share tuning: all empty
                 columns = MODELS[table.name].to_schema().columns
                 tables[table.name] = pd.DataFrame({c: pd.Series(dtype=object) for c in columns})
             continue
-        frames = {name: tables[name] for name in spec.ins}
+        frames = {**{name: tables[name] for name in spec.ins}, **(read or {}).get(first, {})}
         if first == "share_drift":
             frames.update(previous=tables["share_tables"], previous_cycle=cycle)
         if first == "statistical_forecast" and part.shard is not None:  # the asset reads the shard's calendar
@@ -70,6 +78,8 @@ def run_partition(config: PlanningConfig, cycle: str, product_class: str, backte
         result = spec.run(**frames, settings=settings[first])
         for table in spec.tables:
             tables[table.name] = MODELS[table.name].validate(result.outputs[table.name])
+        if first == upto:
+            break
     return PartitionRun(part.config, tables, settings)
 
 

@@ -70,7 +70,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import ordinal_to_start
+from pipelines.calendar import ordinal_to_start, period_ordinal
 from pipelines.checks import SHARE_CHOICE_NEAR_BEST
 from pipelines.config_sections import BacktestConfig
 from pipelines.config_selection import SelectionConfig
@@ -112,6 +112,9 @@ class BacktestSettings:
     seasonal_groups: Mapping[str, str] = field(default_factory=dict)
     levels: tuple[float, ...] = ()
     strategy: Mapping[str, str] = field(default_factory=dict)  # class -> configured strategy (absent: auto)
+    # a shard of a class: its origins and MinT / WLS residual windows start at the class's first period (the
+    # cycle_calendar's history_start), not its own lines' first, so its sums are the class's over its series
+    class_window: bool = False
 
     @classmethod
     def of(cls, config) -> BacktestSettings:
@@ -195,6 +198,7 @@ def run_backtest(
     previous_tuning: pd.DataFrame | None = None,
     history_periods: int | None = None,
     products: pd.DataFrame | None = None,
+    first_period: int | None = None,
 ) -> BacktestResult:
     """The accuracy table (class x seasonality x strategy x grain x metric), the losses and the share tuning.
 
@@ -203,7 +207,8 @@ def run_backtest(
     (its raw quantities are re-cleaned at each origin and scored against; None:
     the lifecycle history is both); previous_tuning: last cycle's share_tuning;
     products: the master data (for a seasonal_group that is one of its
-    columns). Each origin's view and share candidates are made once
+    columns); first_period: the class's first period ordinal (a shard: where the origins and residual windows
+    start; None: the first of `history`'s own rows). Each origin's view and share candidates are made once
     (`pipelines.engines.backtest_origins`), then each seasonality compared
     runs its base forecasts on them; see the module docstring.
     """
@@ -214,7 +219,7 @@ def run_backtest(
     modes = {v: {c: v for c in classes if v in settings.candidates(c)} for v in variants}
     first = {c: settings.candidates(c)[0] for c in classes}  # the seasonality whose parents tune the shares
     data = backtest_series(history, children, classes, period, cycle_date, cleaned)
-    origins = origin_ordinals(settings, data.cycle_ord, data.first_ord)
+    origins = origin_ordinals(settings, data.cycle_ord, data.first_ord if first_period is None else first_period)
     grid = _candidate_grid(settings, history_periods if history_periods is not None else
                            data.cycle_ord - data.first_ord, classes)
     union = list(dict.fromkeys((w, m) for cands in grid.values() for w, m, _ in cands))
@@ -237,7 +242,7 @@ def run_backtest(
             for grain in ("parent", "leaf"):
                 books[v].add(k, BENCHMARK, grain, view.bench[grain], view.actual[grain], data_cls(data, grain),
                              view.scales[grain])
-        base = {v: _base(data, view, settings, products, modes[v], drivers[v], o, log, fits.advance)
+        base = {v: _base(data, view, settings, products, modes[v], drivers[v], o, log, fits.advance, first_period)
                 for v in variants}
         bases = candidate_bases(view, data.children, settings.share, union, h)
         tuned = np.zeros_like(base[variants[0]].parent_fc)  # each class's parents under its first seasonality
@@ -291,14 +296,15 @@ def data_cls(data, grain: str) -> np.ndarray:
     return data.c_cls if grain == "leaf" else data.p_cls
 
 
-def _base(data, view, settings: BacktestSettings, products, modes: dict, drivers: dict, o: int, log, progress):
+def _base(data, view, settings: BacktestSettings, products, modes: dict, drivers: dict, o: int, log, progress,
+          first_period: int | None = None):
     """The base forecasts of one origin for the classes of `modes` (class -> seasonality) at their drivers' grains."""
     parents = data.parents.assign(product_class=data.parent_class)
     season = cycle_season_plan(view.p_grid, parents, products, modes, settings.seasonal_groups, data.parent_of_child,
                                settings.share.period, o)
     return base_forecasts(view.p_grid, view.c_grid, data.parent_class, data.child_class, drivers, settings.models,
                           settings.backtest.horizon, log, progress, seasonality=modes, season=season,
-                          sd=bool(settings.levels))
+                          sd=bool(settings.levels), residual_start=first_period)
 
 
 def _previous(previous_tuning: pd.DataFrame | None) -> dict:
@@ -342,9 +348,13 @@ def run(
     cycle_date = pd.Timestamp(cycle["cycle_date"])
     children = active_children(customer_spans, products, lifecycle_history, settings.share, cycle_date)
     children = children[["product", "site", "customer", "product_class"]]
+    first = None
+    if settings.class_window and pd.notna(cycle["history_start"]):
+        first = int(period_ordinal(pd.DatetimeIndex([cycle["history_start"]]), settings.share.period)[0])
     result = run_backtest(
         lifecycle_history, children, settings, cycle_date, log=log, cleaned=cleaned_history,
         previous_tuning=previous_tuning, history_periods=int(cycle["history_periods"]), products=products,
+        first_period=first,
     )
     table, tuning = result.accuracy, result.tuning
     wide = table.pivot_table(
