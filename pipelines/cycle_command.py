@@ -70,6 +70,7 @@ def _run_cycle(
     from pipelines.cycle_json import cycle_summary
     from pipelines.definitions import build_definitions
     from pipelines.partitions import current_cycle
+    from pipelines.phases import run_count
     from pipelines.progress_display import CycleDisplay
     from pipelines.resources import PlanningConfigResource
     from pipelines.runner import (
@@ -103,7 +104,9 @@ def _run_cycle(
     command = f"rebuild --from {rebuild_from}" if rebuild_from else "cycle"
     wait_seconds = 0 if if_busy == "stop" else None
 
-    now = {"cycle": cycle, "what": what, "of": len(chosen)}  # what the progress lines name
+    # what the progress lines name; a class that decides over its shards runs each shard in two phases
+    graph = defs.resolve_asset_graph()
+    now = {"cycle": cycle, "what": what, "of": run_count(config, chosen, graph, selection)}
     from pipelines.runner import dagster_instance
 
     instance = dagster_instance()
@@ -185,11 +188,11 @@ def _run_cycle(
                     f"backfill: cycle {earlier} is not published in the store yet; running it first "
                     "(share drift compares with it)"
                 )
-                now.update(cycle=earlier, what="whole cycle", of=len(every_key))
+                now.update(cycle=earlier, what="whole cycle", of=run_count(config, every_key, graph, None))
                 past = by_cycle[earlier] = run_classes(earlier, every_key, None, None)
                 every += past
                 ok = ok and all(o.success for o in past) and blocking_checks_pass(past)
-            now.update(cycle=cycle, what=what, of=len(chosen))
+            now.update(cycle=cycle, what=what, of=run_count(config, chosen, graph, selection))
             outcomes = by_cycle[cycle] = run_classes(cycle, chosen, selection, rebuild_from)
     finally:
         if stream is not sys.stdout:

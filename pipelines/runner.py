@@ -24,6 +24,7 @@ import dagster as dg
 from pipelines.errors import ConfigError, PlanningError
 from pipelines.jobs import CYCLE_JOB
 from pipelines.partitions import partition_key, register_partitions
+from pipelines.phases import PlannedRun, phase_selection, run_plan, second_batch
 from pipelines.shards import split_class_key
 from pipelines.store.dagster_io import process_tags
 
@@ -186,28 +187,45 @@ def run_partitions(
     store.begin(cycle, class_names(classes), command=command)
     job = defs.resolve_job_def(CYCLE_JOB)
     run = CycleRun(cycle=cycle)
-    for i, product_class in enumerate(classes, 1):
-        run_id = str(uuid.uuid4())
-        if on_start:
-            on_start(i, product_class, run_id)
-        started = time.monotonic()
-        with store.partition_lock(
-            cycle, product_class, run_id=run_id, command=command, wait_seconds=wait_seconds, say=say
-        ):
-            result = job.execute_in_process(
-                run_config=run_config or {},
-                instance=instance,
-                partition_key=partition_key(cycle, product_class),
-                asset_selection=selection,
-                raise_on_error=False,
-                run_id=run_id,
-                tags=process_tags(),
-            )
-        run.results[product_class] = result
-        run.seconds[product_class] = time.monotonic() - started
-        if on_done:
-            on_done(product_class, result, run.seconds[product_class])
+    # a class cut into shards that decides at class level runs in two phases (pipelines/phases.py)
+    batches, graph, i = run_plan(defs.resources["planning"].config, classes), defs.resolve_asset_graph(), 0
+    for number, batch in enumerate(batches):
+        if number:
+            done = {r.key: r.label not in run.results or run.results[r.label].success for r in batches[0] if r.phase}
+            batch = _held_back(batch, done, say)
+        for planned in batch:
+            chosen, i, run_id = phase_selection(graph, planned.phase, selection), i + 1, str(uuid.uuid4())
+            if chosen == []:
+                continue
+            if on_start:
+                on_start(i, planned.label, run_id)
+            started = time.monotonic()
+            with store.partition_lock(
+                cycle, planned.key, run_id=run_id, command=command, wait_seconds=wait_seconds, say=say
+            ):
+                result = job.execute_in_process(
+                    run_config=run_config or {},
+                    instance=instance,
+                    partition_key=partition_key(cycle, planned.key),
+                    asset_selection=chosen,
+                    raise_on_error=False,
+                    run_id=run_id,
+                    tags=process_tags(),
+                )
+            run.results[planned.label] = result
+            run.seconds[planned.label] = time.monotonic() - started
+            if on_done:
+                on_done(planned.label, result, run.seconds[planned.label])
     return run
+
+
+def _held_back(batch: list[PlannedRun], succeeded: dict[str, bool], say) -> list[PlannedRun]:
+    """The second batch's runs of the classes whose first runs all succeeded; says which classes wait."""
+    keep, held = second_batch(batch, succeeded)
+    if held and say:
+        say(f"classes {held}: a shard's run up to the backtest failed, so their shards do not go on to "
+            "strategy_choice (it needs every shard's backtest); fix it and run the class again")
+    return keep
 
 
 def dagster_instance() -> dg.DagsterInstance:
@@ -234,12 +252,14 @@ def _run_in_child(
     run_config: dict,
     wait_seconds: float | None,
     command: str,
+    phase: str | None = None,
 ) -> int:
-    """One partition in a process of its own (`cycle --parallel`): 0 ran, 2 partition busy or bad input."""
+    """One partition (or one `phase` of it) in a process of its own (`cycle --parallel`): 0 ran, 2 partition
+    busy or bad input."""
     from pipelines.definitions import build_definitions
 
     defs = build_definitions(config_path)
-    selection = rebuild_selection(defs, first) if first else None
+    selection = phase_selection(defs.resolve_asset_graph(), phase, rebuild_selection(defs, first) if first else None)
     try:
         with store_of(defs).partition_lock(
             cycle, product_class, run_id=run_id, command=command, wait_seconds=wait_seconds, say=print
@@ -285,17 +305,38 @@ def run_partitions_parallel(
     from pipelines.definitions import build_definitions
 
     register_partitions(instance, cycle, list(all_classes))
-    store_of(build_definitions(config_path)).begin(cycle, class_names(classes), command=command)
+    defs = build_definitions(config_path)
+    store_of(defs).begin(cycle, class_names(classes), command=command)
+    # a class cut into shards that decides at class level runs in two phases (pipelines/phases.py)
+    graph, wanted = defs.resolve_asset_graph(), rebuild_selection(defs, first) if first else None
+    batches, outcomes, count = run_plan(defs.resources["planning"].config, classes), [], 0
+    for number, batch in enumerate(batches):
+        if number:
+            done = {o.product_class: o.success and o.exit_code == 0 for o in outcomes}
+            batch = _held_back(batch, {r.key: done.get(r.label, True) for r in batches[0] if r.phase}, print)
+        runs = [r for r in batch if phase_selection(graph, r.phase, wanted) != []]
+        waiting = [(count + j, r) for j, r in enumerate(runs, 1)]
+        count += len(runs)
+        outcomes += _run_batch(config_path, instance, cycle, waiting, parallel, first, run_config, on_start, on_done,
+                               wait_seconds, command)
+    return outcomes
+
+
+def _run_batch(
+    config_path, instance, cycle, waiting: list[tuple[int, PlannedRun]], parallel, first, run_config, on_start,
+    on_done, wait_seconds, command,
+) -> list[PartitionOutcome]:
+    """The runs of one batch, `parallel` at a time, each in a spawned process; their outcomes when all ended."""
     context = multiprocessing.get_context("spawn")
-    waiting = list(enumerate(classes, 1))
     running: dict[str, tuple] = {}
     outcomes = []
     while waiting or running:
         while waiting and len(running) < parallel:
-            i, product_class = waiting.pop(0)
-            run_id = str(uuid.uuid4())
-            args = (config_path, cycle, product_class, first, run_id, run_config or {}, wait_seconds, command)
-            process = context.Process(target=_child_main, args=args, name=f"apportion-{product_class}")
+            i, planned = waiting.pop(0)
+            product_class, run_id = planned.label, str(uuid.uuid4())
+            args = (config_path, cycle, planned.key, first, run_id, run_config or {}, wait_seconds, command,
+                    planned.phase)
+            process = context.Process(target=_child_main, args=args, name=f"apportion-{planned.key}")
             if on_start:
                 on_start(i, product_class, run_id)
             process.start()

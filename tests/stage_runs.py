@@ -12,6 +12,7 @@ one; the report's files are made but not written.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -94,3 +95,44 @@ def shard_forecast_settings(part, calendar: pd.DataFrame):
     settings = ForecastSettings.of(part.config)
     first = int(period_ordinal(pd.DatetimeIndex([calendar["history_start"].iloc[0]]), settings.period)[0])
     return dataclasses.replace(settings, residual_start=first)
+
+
+@dataclass
+class ClassStepRuns:
+    whole: PartitionRun  # the class as one partition
+    shards: list[PartitionRun]  # each shard's two phases, the second given the combined backtest
+    accuracy: pd.DataFrame  # the shards' backtest_accuracy combined
+    losses: pd.DataFrame  # their backtest_losses combined
+
+
+def class_step_runs(config_whole: PlanningConfig, config_cut: PlanningConfig, cycle: str, name: str) -> ClassStepRuns:
+    """Class `name` whole, and cut into shards (`config_cut`) run as the command line runs a class that decides at
+    class level: every shard up to the backtest, the shards' backtests combined, then every shard on from
+    strategy_choice with the combined tables (as `assets.strategy_choice.choice_inputs` reads them)."""
+    from pipelines.engines.backtest_combine import combine_accuracy, combine_losses
+    from pipelines.shards import partition_classes
+
+    whole = run_partition(config_whole, cycle, name, backtest=True)
+    keys = partition_classes(config_cut, [name])
+    first = [run_partition(config_cut, cycle, k, backtest=True, upto="backtest_accuracy") for k in keys]
+    accuracy = combine_accuracy([r.tables["backtest_accuracy"] for r in first])
+    losses = combine_losses([r.tables["backtest_losses"] for r in first])
+    given = {"strategy_choice": {"backtest_accuracy": accuracy, "backtest_losses": losses}}
+    shards = [run_partition(config_cut, cycle, k, backtest=True, done=r.tables, read=given) for k, r in zip(keys, first)]
+    return ClassStepRuns(whole, shards, accuracy, losses)
+
+
+# the demo with `spares` deciding its strategy by the backtest (auto) and every other class fixed, no upper levels
+SPARES_AUTO = {
+    "consumables": {"seasonality": "none"},
+    "seasonal": {"window": 52, "method": "pooled", "strategy": "top_down", "seasonality": "none"},
+    "spares": {"strategy": "auto", "seasonality": "none"},
+}
+
+
+@functools.cache
+def spares_auto_runs(shards: int = 8, cycle: str = "2026-11-30") -> ClassStepRuns:
+    """`class_step_runs` of the demo's spares (SPARES_AUTO) whole and in `shards` shards, made once a session."""
+    whole = demo_config(SPARES_AUTO, hierarchy={"upper_levels": []})
+    cut = demo_config(SPARES_AUTO, hierarchy={"upper_levels": []}, scale={"shards": shards})
+    return class_step_runs(whole, cut, cycle, "spares")

@@ -74,8 +74,8 @@ from pipelines.calendar import ordinal_to_start, period_ordinal
 from pipelines.checks import SHARE_CHOICE_NEAR_BEST
 from pipelines.config_sections import BacktestConfig
 from pipelines.config_selection import SelectionConfig
-from pipelines.engines.backtest_origins import backtest_series, candidate_bases, origin_view
 from pipelines.engines.backtest_combine import SELECTION_COUNT_COLUMNS, selection_counts
+from pipelines.engines.backtest_origins import backtest_series, candidate_bases, origin_view
 from pipelines.engines.backtest_scores import PART_COLUMNS, RAW, ScoreBook, accuracy_table
 from pipelines.engines.base_forecasts import base_forecasts, series_to_fit
 from pipelines.engines.children import active_children
