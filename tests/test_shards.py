@@ -11,7 +11,7 @@ import dagster as dg
 import pandas as pd
 import pytest
 import yaml
-from stage_runs import DEMO, demo_config, run_partition
+from stage_runs import DEMO, demo_config, run_partition, spares_auto_runs
 
 from pipelines.cycle_command import chosen_partitions
 from pipelines.engines.class_rows import class_map, class_rows
@@ -21,6 +21,7 @@ from pipelines.shards import (
     PARENT_KEY,
     PRODUCT_KEY,
     Shard,
+    needs_class_step,
     partition_classes,
     shard_numbers,
     shard_of,
@@ -108,10 +109,9 @@ def test_partition_keys_name_each_shard_and_refuse_another_count():
 @pytest.mark.parametrize(
     "keys, named",
     [
-        ({"strategy": "auto"}, "strategy: auto"),
         ({"window": "auto"}, "window/method: auto"),
-        ({"seasonality": "auto"}, "seasonality: auto"),
         ({"seasonality": "group", "seasonal_group": "product_family"}, "seasonal_group: product_family"),
+        ({"seasonality": "auto", "seasonal_group": "product_class"}, "seasonal_group: product_class"),
     ],
 )
 def test_a_class_cut_into_shards_may_not_need_the_whole_class(keys, named):
@@ -128,6 +128,76 @@ def test_group_seasonality_by_product_keeps_a_products_sites_in_one_shard():
     spares = {**FIXED["spares"], "seasonality": "group", "seasonal_group": "product", "scale": {"shards": 4}}
     config = demo_config({**FIXED, "spares": spares}, hierarchy=NO_UPPER_LEVELS)
     assert shard_of(config, "spares~1of4").by == PRODUCT_KEY
+    # seasonality auto may choose the group by product: hashed the same way, and decided over the class
+    auto = demo_config({**FIXED, "spares": {**spares, "seasonality": "auto"}}, hierarchy=NO_UPPER_LEVELS)
+    assert shard_of(auto, "spares~1of4").by == PRODUCT_KEY and needs_class_step(auto, "spares")
+
+
+def test_a_class_cut_into_shards_may_decide_its_strategy_over_the_class_in_two_phases():
+    from pipelines.definitions import build_definitions
+    from pipelines.phases import FROM_CHOICE, TO_BACKTEST, phase_selection, run_plan
+
+    config = demo_config({**FIXED, "spares": {**FIXED["spares"], "strategy": "auto", "scale": {"shards": 2}}},
+                         hierarchy=NO_UPPER_LEVELS)
+    assert needs_class_step(config, "spares") and not needs_class_step(config, "seasonal")
+    keys = ["seasonal", "spares~1of2", "spares~2of2"]
+    first, second = run_plan(config, keys)
+    assert [r.label for r in first] == ["seasonal", "spares~1of2 (to backtest)", "spares~2of2 (to backtest)"]
+    assert [r.label for r in second] == ["spares~1of2 (from strategy_choice)", "spares~2of2 (from strategy_choice)"]
+    assert run_plan(config, ["seasonal"]) == [first[:1]]  # a class without the class-level step: one run
+    graph = build_definitions(str(ROOT / "config" / "planning.yaml")).resolve_asset_graph()
+    names = {phase: {k.to_user_string() for k in phase_selection(graph, phase, None)} for phase in
+             (TO_BACKTEST, FROM_CHOICE)}
+    # the two phases share no asset and together are the whole graph
+    assert not names[TO_BACKTEST] & names[FROM_CHOICE]
+    assert names[TO_BACKTEST] | names[FROM_CHOICE] == {k.to_user_string() for k in graph.get_all_asset_keys()}
+    assert {"cleaned_history", "backtest_accuracy", "backtest_losses", "share_tuning"} <= names[TO_BACKTEST]
+    assert {"strategy_choice", "statistical_forecast", "publication"} <= names[FROM_CHOICE]
+
+
+def test_a_missing_shard_backtest_stops_the_class_step_naming_the_shard_and_the_command(tmp_path):
+    from assets.factory import Partition
+    from pipelines.errors import ShardsMissing
+    from pipelines.partitions import narrow_config
+    from pipelines.store import open_store
+
+    spares = {**FIXED["spares"], "strategy": "auto", "scale": {"shards": 3}}
+    config = demo_config({**FIXED, "spares": spares}, hierarchy=NO_UPPER_LEVELS,
+                         store={"path": str(tmp_path / "store")})
+    table = pd.DataFrame({"product_class": ["spares"], "value": [1.0]})
+    open_store(tmp_path / "store").write("backtest_losses", CYCLE, "spares", table, shard="2of3")
+    part = Partition(narrow_config(config, CYCLE, "spares~2of3"), config, CYCLE, "spares", shard_of(config,
+                                                                                                    "spares~2of3"))
+    with pytest.raises(ShardsMissing, match=r"\['spares~1of3', 'spares~3of3'\].*python -m pipelines cycle "
+                                            r"--cycle 2026-11-30 --class spares"):
+        part.siblings("backtest_losses")
+    for shard in ("1of3", "3of3"):
+        open_store(tmp_path / "store").write("backtest_losses", CYCLE, "spares", table.assign(value=2.0), shard=shard)
+    found = part.siblings("backtest_losses")
+    assert list(found) == ["1of3", "2of3", "3of3"] and [f["value"].iloc[0] for f in found.values()] == [2, 1, 2]
+
+
+def test_eight_shards_choose_the_whole_class_strategy_and_give_its_leaf_forecast_to_the_last_bit():
+    # strategy: auto over eight shards: each shard's backtest sums combined (pipelines/engines/backtest_combine.py)
+    # decide as the whole class does
+    runs = spares_auto_runs(8)
+    choices = [r.tables["strategy_choice"] for r in runs.shards]
+    for choice in choices[1:]:  # every shard stores the same class-level row, bit for bit
+        pd.testing.assert_frame_equal(choice, choices[0], check_exact=True)
+    mine, whole = choices[0], runs.whole.tables["strategy_choice"]
+    assert mine["configured_strategy"].tolist() == ["auto"] and len(mine) == 1
+    # the scores are ratios of float sums the shards add in another order: the same to 1e-12 relative (seen
+    # 2e-15; `tests/test_backtest_combine.py`); the rest (the choice, runner-up, reason) exactly
+    ratios = ["leaf_wmape", "margin", "seasonal_naive_wmape", "score", "leaf_rmsse", "p_value"]
+    pd.testing.assert_frame_equal(mine.drop(columns=ratios), whole.drop(columns=ratios), check_exact=True)
+    pd.testing.assert_frame_equal(mine[ratios], whole[ratios], check_exact=False, rtol=1e-12, atol=0)
+    # the scores are the class's, not a shard's: shard 1's own backtest gives the chosen strategy another WMAPE
+    own = runs.shards[0].tables["backtest_accuracy"].query("grain == 'leaf' and metric == 'wmape'")
+    alone = own.set_index("strategy")["value"][mine["strategy"].iloc[0]]
+    assert abs(alone - mine["leaf_wmape"].iloc[0]) > 1e-3 and mine["runner_up"].iloc[0] != mine["strategy"].iloc[0]
+    for table in ("statistical_forecast", "parent_forecast", "reconciliation", "plan_measures"):
+        together = pd.concat([r.tables[table] for r in runs.shards], ignore_index=True)
+        pd.testing.assert_frame_equal(_sorted(together), _sorted(runs.whole.tables[table]), check_exact=True)
 
 
 LEAF_KEYS = ["product", "site", "customer", "period_start"]
@@ -189,6 +259,51 @@ def test_the_last_shard_to_finish_completes_the_class(tmp_path):
     one = read_table(store.root, "statistical_forecast", cycle=CYCLE, product_class="spares", versions="complete",
                      shard="1of2")
     assert 0 < len(one) < len(leaf) and leaf[["product", "site"]].drop_duplicates().shape[0] > 1
+
+
+@pytest.mark.graph
+def test_the_runner_backtests_every_shard_before_any_decides(tmp_path):
+    from pipelines.definitions import build_definitions
+    from pipelines.engines.backtest_combine import combine_accuracy
+    from pipelines.resources import read_table
+    from pipelines.runner import PartitionOutcome, run_partitions
+    from pipelines.store import open_store
+
+    data = yaml.safe_load((ROOT / "config" / "planning.yaml").read_text())
+    data["inputs"]["folder"] = str(DEMO)
+    data["store"]["path"] = str(tmp_path / "store")
+    data["hierarchy"] = NO_UPPER_LEVELS
+    data["backtest"].update(origins=2, strategies=["top_down", "bottom_up"])  # a small backtest: two strategies
+    for name, keys in FIXED.items():
+        data["product_classes"][name].update(keys)
+    data["product_classes"]["spares"].update(strategy="auto", scale={"shards": 2})
+    path = tmp_path / "planning.yaml"
+    path.write_text(yaml.safe_dump(data))
+    defs, instance = build_definitions(str(path)), dg.DagsterInstance.ephemeral()
+    every = ["consumables", "seasonal", "spares~1of2", "spares~2of2"]
+    # shard 1 alone: its backtest runs, its strategy_choice stops on shard 2's missing backtest, saying what to run
+    alone = run_partitions(defs, instance, CYCLE, ["spares~1of2"], all_classes=every, say=None)
+    assert list(alone.results) == ["spares~1of2 (to backtest)", "spares~1of2 (from strategy_choice)"]
+    assert alone.results["spares~1of2 (to backtest)"].success
+    failed = PartitionOutcome.from_result("spares~1of2", alone.results["spares~1of2 (from strategy_choice)"], 0)
+    assert not failed.success and failed.failure_kinds == ["bad_input"]
+    assert "['spares~2of2']" in failed.failures[0][1] and "--class spares" in failed.failures[0][1]
+    # both shards: every backtest first, then every shard on from strategy_choice
+    both = run_partitions(defs, instance, CYCLE, ["spares~1of2", "spares~2of2"], all_classes=every, say=None)
+    assert list(both.results) == ["spares~1of2 (to backtest)", "spares~2of2 (to backtest)",
+                                  "spares~1of2 (from strategy_choice)", "spares~2of2 (from strategy_choice)"]
+    assert both.success and open_store(tmp_path / "store").class_record(CYCLE, "spares")["state"] == "complete"
+    choice = [read_table(tmp_path / "store", "strategy_choice", cycle=CYCLE, product_class="spares",
+                         versions="complete", shard=s) for s in ("1of2", "2of2")]
+    pd.testing.assert_frame_equal(choice[0], choice[1], check_exact=True)  # one class-level row, in every shard
+    assert choice[0]["configured_strategy"].tolist() == ["auto"]
+    # decided from both shards' backtests combined: its WMAPE is theirs, bit for bit, and neither shard's own
+    shards = [read_table(tmp_path / "store", "backtest_accuracy", cycle=CYCLE, product_class="spares",
+                         versions="complete", shard=s) for s in ("1of2", "2of2")]
+    chosen = f"grain == 'leaf' and metric == 'wmape' and strategy == '{choice[0]['strategy'].iloc[0]}'"
+    combined = combine_accuracy(shards).query(chosen)["value"].iloc[0]
+    assert choice[0]["leaf_wmape"].iloc[0] == combined
+    assert all(s.query(chosen)["value"].iloc[0] != combined for s in shards)
 
 
 def test_a_shard_proves_its_own_versions_and_waits_for_the_others():
