@@ -118,7 +118,8 @@ def class_step_runs(config_whole: PlanningConfig, config_cut: PlanningConfig, cy
     accuracy = combine_accuracy([r.tables["backtest_accuracy"] for r in first])
     losses = combine_losses([r.tables["backtest_losses"] for r in first])
     given = {"strategy_choice": {"backtest_accuracy": accuracy, "backtest_losses": losses}}
-    shards = [run_partition(config_cut, cycle, k, backtest=True, done=r.tables, read=given) for k, r in zip(keys, first)]
+    shards = [run_partition(config_cut, cycle, k, backtest=True, done=r.tables, read=given)
+              for k, r in zip(keys, first, strict=True)]
     return ClassStepRuns(whole, shards, accuracy, losses)
 
 

@@ -5,12 +5,7 @@ import pandas as pd
 import pytest
 from stage_runs import spares_auto_runs
 
-from pipelines.engines.backtest_combine import (
-    ACCURACY_KEY,
-    ShardsDisagree,
-    combine_accuracy,
-    combine_losses,
-)
+from pipelines.engines.backtest_combine import ACCURACY_KEY, ShardsDisagree, combine_accuracy, combine_losses
 from pipelines.schemas_forecast import BacktestAccuracy
 from pipelines.schemas_selection import BacktestLosses
 
