@@ -109,6 +109,8 @@ def print_summary(
             )
     choice = table("strategy_choice")  # as the cycle decided it, not decided again from today's config
     if choice is not None and len(choice):
+        # a class cut into shards: every shard stores the same class-level row (its choice over every shard)
+        choice = choice.drop_duplicates()
         print("strategy:     (backtest, leaf grain; judged by the class's metric; margin = runner-up minus chosen)")
         for _, row in choice.iterrows():
             print(
