@@ -74,6 +74,35 @@ def latest_check_results(
     return pd.DataFrame(rows, columns=CHECK_COLUMNS)
 
 
+CHART_TABLES = ("lifecycle_history", "parent_forecast", "reinitialized_target", "share_tables")
+
+
+def class_charts(config: PlanningConfig, cycle: str, name: str, folder: Path) -> list[str]:
+    """The chart files of a class cut into shards drawn from every shard's published tables (the class total and
+    its largest parents over all shards, as the `cycle_report` stage draws one partition's), named by the class;
+    drawn again only when the cycle was published after them. [] for a class not cut or a cycle not published."""
+    from pipelines.store import open_store
+
+    published = open_store(config.store.path).published_path(cycle)
+    if len(partition_classes(config, [name])) == 1 or not published.exists():
+        return []
+    names = [report_charts.chart_file_name(kind, name, cycle) for kind in CHART_KINDS]
+    if all((folder / n).exists() and (folder / n).stat().st_mtime >= published.stat().st_mtime for n in names):
+        return names
+    tables = {t: read_table(config.store.path, t, cycle=cycle, product_class=name) for t in CHART_TABLES}
+    if any(frame is None or frame.empty for frame in tables.values()):
+        return []
+    where = {"product_class": name, "cycle_date": cycle, "period": config.calendar.period}
+    history = tables["lifecycle_history"]
+    pictures = [
+        report_charts.parent_chart(history, tables["parent_forecast"], **where),
+        report_charts.share_chart(history, tables["reinitialized_target"], shares=tables["share_tables"], **where),
+    ]
+    for file_name, png in zip(names, pictures, strict=True):
+        (folder / file_name).write_bytes(png)
+    return names
+
+
 def publication_notice(config: PlanningConfig, cycle: str) -> str | None:
     """A line for the page when the cycle is not published, or a later run of it has not completed."""
     from pipelines.store import open_store
@@ -109,9 +138,10 @@ def write_cycle_report(config: PlanningConfig, instance: dg.DagsterInstance, cyc
     choice = table("strategy_choice")  # the decision the cycle stored, not one made again from today's config
     drift = table("share_drift")
     charts = {
-        c: [
+        c: class_charts(config, cycle, c, folder)  # a class cut into shards: the class's charts once published,
+        or [  # else each shard's
             n
-            for key in partition_classes(config, [c])  # a class cut into shards: each shard's charts
+            for key in partition_classes(config, [c])
             for n in (report_charts.chart_file_name(k, key, cycle) for k in CHART_KINDS)
             if (folder / n).exists()
         ]

@@ -288,11 +288,15 @@ def test_the_runner_backtests_every_shard_before_any_decides(tmp_path):
     failed = PartitionOutcome.from_result("spares~1of2", alone.results["spares~1of2 (from strategy_choice)"], 0)
     assert not failed.success and failed.failure_kinds == ["bad_input"]
     assert "['spares~2of2']" in failed.failures[0][1] and "--class spares" in failed.failures[0][1]
-    # both shards: every backtest first, then every shard on from strategy_choice
-    both = run_partitions(defs, instance, CYCLE, ["spares~1of2", "spares~2of2"], all_classes=every, say=None)
-    assert list(both.results) == ["spares~1of2 (to backtest)", "spares~2of2 (to backtest)",
+    # every class: the whole runs and both shards' backtests first, then both shards on from strategy_choice
+    both = run_partitions(defs, instance, CYCLE, every, all_classes=every, say=None)
+    assert list(both.results) == ["consumables", "seasonal", "spares~1of2 (to backtest)", "spares~2of2 (to backtest)",
                                   "spares~1of2 (from strategy_choice)", "spares~2of2 (from strategy_choice)"]
-    assert both.success and open_store(tmp_path / "store").class_record(CYCLE, "spares")["state"] == "complete"
+    assert both.success and open_store(tmp_path / "store").published(CYCLE) is not None
+    # the cycle's page: the class's charts drawn from both shards, not each shard's
+    page = (tmp_path / "reports" / CYCLE / "cycle_report.html").read_text()
+    assert "parents_spares_2026-11-30.png" in page and "parents_spares-1of2" not in page
+    assert "parents_consumables_2026-11-30.png" in page
     choice = [read_table(tmp_path / "store", "strategy_choice", cycle=CYCLE, product_class="spares",
                          versions="complete", shard=s) for s in ("1of2", "2of2")]
     pd.testing.assert_frame_equal(choice[0], choice[1], check_exact=True)  # one class-level row, in every shard
