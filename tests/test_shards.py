@@ -11,7 +11,7 @@ import dagster as dg
 import pandas as pd
 import pytest
 import yaml
-from stage_runs import DEMO, demo_config, run_partition, spares_auto_runs
+from stage_runs import DEMO, class_step_runs, demo_config, run_partition, spares_auto_runs
 
 from pipelines.cycle_command import chosen_partitions
 from pipelines.engines.class_rows import class_map, class_rows
@@ -339,3 +339,21 @@ def test_three_shards_keep_a_successor_chain_with_its_history():
     for table in ("lifecycle_history", "share_tables", "statistical_forecast", "reconciliation"):
         together = pd.concat([s.tables[table] for s in shards], ignore_index=True)
         pd.testing.assert_frame_equal(_sorted(together), _sorted(whole.tables[table]), check_exact=True)
+
+
+def test_four_shards_choose_the_whole_class_seasonality_by_product():
+    # consumables (the demo's `seasonality: auto`, group by product) backtests none against the product's group
+    # index; each shard holds whole products (hashed on the product), so every candidate's sums add over shards
+    classes = {**FIXED, "consumables": {"seasonality": "auto", "seasonal_group": "product"}}
+    whole = demo_config(classes, hierarchy=NO_UPPER_LEVELS)
+    cut = demo_config(classes, hierarchy=NO_UPPER_LEVELS, scale={"shards": 4})
+    runs = class_step_runs(whole, cut, CYCLE, "consumables")
+    assert set(runs.accuracy["seasonality"]) == {"none", "group"}  # both candidates backtested, in every shard
+    mine, theirs = runs.shards[0].tables["strategy_choice"], runs.whole.tables["strategy_choice"]
+    ratios = ["leaf_wmape", "margin", "seasonal_naive_wmape", "score", "leaf_rmsse", "p_value"]
+    # the choice exactly; its scores to 1e-12 relative (float sums added in another order; seen 1e-14)
+    pd.testing.assert_frame_equal(mine.drop(columns=ratios), theirs.drop(columns=ratios), check_exact=True)
+    pd.testing.assert_frame_equal(mine[ratios], theirs[ratios], check_exact=False, rtol=1e-12, atol=0)
+    for table in ("statistical_forecast", "parent_forecast"):
+        together = pd.concat([r.tables[table] for r in runs.shards], ignore_index=True)
+        pd.testing.assert_frame_equal(_sorted(together), _sorted(runs.whole.tables[table]), check_exact=True)
