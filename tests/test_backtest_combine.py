@@ -108,3 +108,22 @@ def test_eight_shards_of_the_demo_combine_into_the_whole_class_backtest():
     pd.testing.assert_frame_equal(mine[losses], theirs[losses], check_exact=True)
     for column in ("abs_loss", "squared_scaled_loss"):
         np.testing.assert_allclose(mine[column], theirs[column], rtol=1e-12, atol=1e-12, err_msg=column)
+
+
+def test_the_keep_or_switch_test_on_combined_losses_is_the_whole_class_test():
+    # last cycle's strategy bottom_up against this cycle's best: the one-sided DM test with the HLN correction
+    # (Harvey, Leybourne & Newbold 1997, IJF 13) on the per-period class losses; the shards' losses added give
+    # the class's p-value and decision
+    from pipelines.stages.strategy_choice import StrategySettings, choose_strategies
+
+    runs = spares_auto_runs(8)
+    settings = StrategySettings(("top_down", "forecast_proportions", "bottom_up", "mint_shrink", "wls_var"),
+                                {"spares": "auto"})
+    previous = pd.DataFrame({"product_class": ["spares"], "strategy": ["bottom_up"]})
+    cut = choose_strategies(runs.accuracy, settings, runs.losses, previous)
+    whole = choose_strategies(runs.whole.tables["backtest_accuracy"], settings, runs.whole.tables["backtest_losses"],
+                              previous)
+    assert np.isfinite(whole["p_value"].iloc[0])  # tested, not skipped
+    ratios = ["leaf_wmape", "margin", "seasonal_naive_wmape", "score", "leaf_rmsse", "p_value"]
+    pd.testing.assert_frame_equal(cut.drop(columns=ratios), whole.drop(columns=ratios), check_exact=True)
+    pd.testing.assert_frame_equal(cut[ratios], whole[ratios], check_exact=False, rtol=1e-12, atol=0)

@@ -135,7 +135,8 @@ def test_group_seasonality_by_product_keeps_a_products_sites_in_one_shard():
 
 def test_a_class_cut_into_shards_may_decide_its_strategy_over_the_class_in_two_phases():
     from pipelines.definitions import build_definitions
-    from pipelines.phases import FROM_CHOICE, TO_BACKTEST, phase_selection, run_plan
+    from pipelines.phases import FROM_CHOICE, TO_BACKTEST, phase_selection, run_count, run_plan
+    from pipelines.runner import rebuild_selection
 
     config = demo_config({**FIXED, "spares": {**FIXED["spares"], "strategy": "auto", "scale": {"shards": 2}}},
                          hierarchy=NO_UPPER_LEVELS)
@@ -153,6 +154,13 @@ def test_a_class_cut_into_shards_may_decide_its_strategy_over_the_class_in_two_p
     assert names[TO_BACKTEST] | names[FROM_CHOICE] == {k.to_user_string() for k in graph.get_all_asset_keys()}
     assert {"cleaned_history", "backtest_accuracy", "backtest_losses", "share_tuning"} <= names[TO_BACKTEST]
     assert {"strategy_choice", "statistical_forecast", "publication"} <= names[FROM_CHOICE]
+    # `rebuild --from`: each phase keeps what the rebuild selects, a phase with nothing of it does not run
+    defs = build_definitions(str(ROOT / "config" / "planning.yaml"))
+    wanted = rebuild_selection(defs, "lifecycle_history")
+    before = {k.to_user_string() for k in phase_selection(graph, TO_BACKTEST, wanted)}
+    assert before == {"lifecycle_history", "lifecycle_audit", "backtest_accuracy", "backtest_losses", "share_tuning"}
+    assert phase_selection(graph, TO_BACKTEST, rebuild_selection(defs, "share_tables")) == []
+    assert run_count(config, keys, graph, rebuild_selection(defs, "share_tables")) == 3  # seasonal, 2 second phases
 
 
 def test_a_missing_shard_backtest_stops_the_class_step_naming_the_shard_and_the_command(tmp_path):
