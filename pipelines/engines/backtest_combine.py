@@ -34,6 +34,7 @@ import pandas as pd
 
 from pipelines.engines.backtest_scores import PART_COLUMNS, ratio
 from pipelines.engines.scaled_errors import METRICS, metric_of_mass
+from pipelines.errors import PlanningError
 from pipelines.vocabulary import BENCHMARK
 
 SELECTION_COUNT_COLUMNS = [f"leaf_series_{m}" for m in METRICS]
@@ -43,7 +44,7 @@ LOSS_SUMS = ["abs_loss", "squared_scaled_loss"]
 FVA = "fva"
 
 
-class ShardsDisagree(ValueError):
+class ShardsDisagree(PlanningError):
     """The shards' tables were not made with the same backtest (origins, horizon): they do not add."""
 
 
@@ -99,8 +100,8 @@ def _same_backtest(both: pd.DataFrame) -> None:
         seen = both[both["product_class"].isin(differ)].drop_duplicates(["_shard", "origins", "horizon"])
         raise ShardsDisagree(
             f"the shards of class {differ} were backtested at other origins or horizons "
-            f"({seen[['_shard', 'origins', 'horizon']].to_dict('records')}): rerun every shard's backtest_accuracy "
-            "with the same config"
+            f"({seen[['_shard', 'origins', 'horizon']].to_dict('records')}): rerun every shard of the class up to the "
+            "backtest with the same config (python -m pipelines cycle --class <class>)"
         )
 
 
