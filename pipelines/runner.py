@@ -5,7 +5,9 @@
 one process each (`cycle --parallel K`). Either way each run holds its
 partition's one-writer lock in the store for as long as it runs, and the
 classes are marked pending first, so the cycle is published only when every
-one of them completed again.
+one of them completed again. A class cut into shards that decides at class
+level runs each shard in two phases, every shard up to the backtest before any
+goes on (`pipelines.phases`).
 """
 
 from __future__ import annotations
@@ -194,9 +196,10 @@ def run_partitions(
             done = {r.key: r.label not in run.results or run.results[r.label].success for r in batches[0] if r.phase}
             batch = _held_back(batch, done, say)
         for planned in batch:
-            chosen, i, run_id = phase_selection(graph, planned.phase, selection), i + 1, str(uuid.uuid4())
-            if chosen == []:
+            chosen = phase_selection(graph, planned.phase, selection)
+            if chosen == []:  # a phase the selection holds nothing of (rebuild --from strategy_choice: no backtest)
                 continue
+            i, run_id = i + 1, str(uuid.uuid4())
             if on_start:
                 on_start(i, planned.label, run_id)
             started = time.monotonic()
