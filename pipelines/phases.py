@@ -8,7 +8,10 @@ shard may pass the backtest before all have made theirs. `run_plan` orders
 the runs: the first batch runs every partition not needing it whole and each
 such shard up to the backtest (the backtest's assets and what they read);
 the second runs those shards on (everything else the run selects), reading
-the first phase's tables from the store. Runs of one batch may go at once
+the first phase's tables from the store; when the first batch ran only some
+shards of a class (`--class spares~2of8`) and every shard has a backtest, the
+second runs all of them, so every shard follows the class's new decision
+(`every_shard_on`). Runs of one batch may go at once
 (`cycle --parallel K`); the second batch starts when the first has ended, and
 runs a class's shards only when all of its first runs succeeded. A class that
 needs no class-level step is one run per partition, as before.
@@ -16,11 +19,12 @@ needs no class-level step is one run per partition, as before.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import dagster as dg
 
-from pipelines.shards import needs_class_step, split_class_key
+from pipelines.shards import needs_class_step, partition_classes, split_class_key, store_shards
 
 TO_BACKTEST = "to backtest"
 FROM_CHOICE = "from strategy_choice"
@@ -70,9 +74,36 @@ def phase_selection(
     return sorted(chosen, key=lambda k: k.to_user_string())
 
 
+def every_shard_on(config, batch: list[PlannedRun], written: Callable[[str], set[str]]) -> list[PlannedRun]:
+    """The second batch widened to every shard of its classes, when the first rewrote some of their backtests
+    (`--class spares~2of8`) and every shard has one (`written(class)`: the shards whose backtest the store holds
+    for the cycle): the class's decision changed, so each shard follows it again. A class missing a shard's
+    backtest is left as it is: its strategy_choice says which shard to run."""
+    out = list(batch)
+    for name in dict.fromkeys(split_class_key(r.key)[0] for r in batch):
+        keys = partition_classes(config, [name])
+        if set(store_shards(config, name)) <= written(name):
+            have = {r.key for r in out}
+            out += [PlannedRun(k, FROM_CHOICE) for k in keys if k not in have]
+    return out
+
+
 def second_batch(batch: list[PlannedRun], succeeded: dict[str, bool]) -> tuple[list[PlannedRun], list[str]]:
     """The runs of the second batch whose class's first runs all succeeded, and the classes held back (a shard
     failed or stopped on a blocking check before its backtest was written: its class cannot decide)."""
     failed = {split_class_key(k)[0] for k, ok in succeeded.items() if not ok}
     keep = [r for r in batch if split_class_key(r.key)[0] not in failed]
     return keep, sorted({split_class_key(r.key)[0] for r in batch} & failed)
+
+
+def second_runs(config, store, cycle: str, batch: list[PlannedRun], succeeded: dict[str, bool], first_phase,
+                say=print) -> list[PlannedRun]:
+    """The second batch as it runs: without the classes a first run failed in (saying so through `say`), and
+    widened to every shard of a class whose backtest the first rewrote (`first_phase`: its selection, [] none)."""
+    batch, held = second_batch(batch, succeeded)
+    if held and say:
+        say(f"classes {held}: a shard's run up to the backtest failed, so their shards do not go on to "
+            "strategy_choice (it needs every shard's backtest); fix it and run the class again")
+    if first_phase == []:  # no backtest was rewritten: the decisions stand
+        return batch
+    return every_shard_on(config, batch, lambda name: set(store.latest(BACKTEST, cycle, name)))

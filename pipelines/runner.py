@@ -26,7 +26,7 @@ import dagster as dg
 from pipelines.errors import ConfigError, PlanningError
 from pipelines.jobs import CYCLE_JOB
 from pipelines.partitions import partition_key, register_partitions
-from pipelines.phases import PlannedRun, phase_selection, run_plan, second_batch
+from pipelines.phases import TO_BACKTEST, PlannedRun, phase_selection, run_plan, second_runs
 from pipelines.shards import split_class_key
 from pipelines.store.dagster_io import process_tags
 
@@ -190,11 +190,12 @@ def run_partitions(
     job = defs.resolve_job_def(CYCLE_JOB)
     run = CycleRun(cycle=cycle)
     # a class cut into shards that decides at class level runs in two phases (pipelines/phases.py)
-    batches, graph, i = run_plan(defs.resources["planning"].config, classes), defs.resolve_asset_graph(), 0
+    config, graph, i = defs.resources["planning"].config, defs.resolve_asset_graph(), 0
+    batches = run_plan(config, classes)
     for number, batch in enumerate(batches):
         if number:
             done = {r.key: r.label not in run.results or run.results[r.label].success for r in batches[0] if r.phase}
-            batch = _held_back(batch, done, say)
+            batch = second_runs(config, store, cycle, batch, done, phase_selection(graph, TO_BACKTEST, selection), say)
         for planned in batch:
             chosen = phase_selection(graph, planned.phase, selection)
             if chosen == []:  # a phase the selection holds nothing of (rebuild --from strategy_choice: no backtest)
@@ -220,15 +221,6 @@ def run_partitions(
             if on_done:
                 on_done(planned.label, result, run.seconds[planned.label])
     return run
-
-
-def _held_back(batch: list[PlannedRun], succeeded: dict[str, bool], say) -> list[PlannedRun]:
-    """The second batch's runs of the classes whose first runs all succeeded; says which classes wait."""
-    keep, held = second_batch(batch, succeeded)
-    if held and say:
-        say(f"classes {held}: a shard's run up to the backtest failed, so their shards do not go on to "
-            "strategy_choice (it needs every shard's backtest); fix it and run the class again")
-    return keep
 
 
 def dagster_instance() -> dg.DagsterInstance:
@@ -312,11 +304,13 @@ def run_partitions_parallel(
     store_of(defs).begin(cycle, class_names(classes), command=command)
     # a class cut into shards that decides at class level runs in two phases (pipelines/phases.py)
     graph, wanted = defs.resolve_asset_graph(), rebuild_selection(defs, first) if first else None
-    batches, outcomes, count = run_plan(defs.resources["planning"].config, classes), [], 0
+    config, outcomes, count = defs.resources["planning"].config, [], 0
+    batches = run_plan(config, classes)
     for number, batch in enumerate(batches):
         if number:
             done = {o.product_class: o.success and o.exit_code == 0 for o in outcomes}
-            batch = _held_back(batch, {r.key: done.get(r.label, True) for r in batches[0] if r.phase}, print)
+            done = {r.key: done.get(r.label, True) for r in batches[0] if r.phase}
+            batch = second_runs(config, store_of(defs), cycle, batch, done, phase_selection(graph, TO_BACKTEST, wanted))
         runs = [r for r in batch if phase_selection(graph, r.phase, wanted) != []]
         waiting = [(count + j, r) for j, r in enumerate(runs, 1)]
         count += len(runs)

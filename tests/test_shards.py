@@ -135,7 +135,7 @@ def test_group_seasonality_by_product_keeps_a_products_sites_in_one_shard():
 
 def test_a_class_cut_into_shards_may_decide_its_strategy_over_the_class_in_two_phases():
     from pipelines.definitions import build_definitions
-    from pipelines.phases import FROM_CHOICE, TO_BACKTEST, phase_selection, run_count, run_plan
+    from pipelines.phases import FROM_CHOICE, TO_BACKTEST, every_shard_on, phase_selection, run_count, run_plan
     from pipelines.runner import rebuild_selection
 
     config = demo_config({**FIXED, "spares": {**FIXED["spares"], "strategy": "auto", "scale": {"shards": 2}}},
@@ -146,6 +146,13 @@ def test_a_class_cut_into_shards_may_decide_its_strategy_over_the_class_in_two_p
     assert [r.label for r in first] == ["seasonal", "spares~1of2 (to backtest)", "spares~2of2 (to backtest)"]
     assert [r.label for r in second] == ["spares~1of2 (from strategy_choice)", "spares~2of2 (from strategy_choice)"]
     assert run_plan(config, ["seasonal"]) == [first[:1]]  # a class without the class-level step: one run
+    # one shard's backtest rerun (`--class spares~2of2`) changes the class's decision: when every shard has a
+    # backtest, every shard goes on from strategy_choice; while one is missing, only the shard run (it then says
+    # which shard is missing)
+    _, alone = run_plan(config, ["spares~2of2"])
+    widened = every_shard_on(config, alone, lambda name: {"1of2", "2of2"})
+    assert [r.label for r in widened] == ["spares~2of2 (from strategy_choice)", "spares~1of2 (from strategy_choice)"]
+    assert every_shard_on(config, alone, lambda name: {"2of2"}) == alone
     graph = build_definitions(str(ROOT / "config" / "planning.yaml")).resolve_asset_graph()
     names = {phase: {k.to_user_string() for k in phase_selection(graph, phase, None)} for phase in
              (TO_BACKTEST, FROM_CHOICE)}
