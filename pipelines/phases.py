@@ -52,8 +52,12 @@ def run_plan(config, keys: list[str]) -> list[list[PlannedRun]]:
 
 
 def run_count(config, keys: list[str], graph, wanted: list[dg.AssetKey] | None) -> int:
-    """How many runs `run_plan` makes of `keys` for the selection `wanted` (a phase with nothing to run is none)."""
-    return sum(phase_selection(graph, r.phase, wanted) != [] for batch in run_plan(config, keys) for r in batch)
+    """How many runs `run_plan` makes of `keys` for the selection `wanted` (a phase with nothing to run is none;
+    a class whose backtest runs again goes on with all its shards, `every_shard_on`)."""
+    batches = run_plan(config, keys)
+    if len(batches) > 1 and phase_selection(graph, TO_BACKTEST, wanted) != []:
+        batches[1] = every_shard_on(config, batches[1], lambda name: set(store_shards(config, name)))
+    return sum(phase_selection(graph, r.phase, wanted) != [] for batch in batches for r in batch)
 
 
 def _phased(config, key: str) -> bool:
