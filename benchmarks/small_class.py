@@ -41,8 +41,19 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 from benchmarks.cycle_measure import load_average  # noqa: E402
 
-HEAVY = ("dagster", "pandas", "pandera", "statsforecast", "statsmodels", "scipy", "matplotlib", "duckdb", "dask",
-         "sklearn", "numba")
+HEAVY = (
+    "dagster",
+    "pandas",
+    "pandera",
+    "statsforecast",
+    "statsmodels",
+    "scipy",
+    "matplotlib",
+    "duckdb",
+    "dask",
+    "sklearn",
+    "numba",
+)
 IMPORTS = (
     "import time, sys; t0 = time.perf_counter(); "
     "import pipelines.__main__; t1 = time.perf_counter(); "
@@ -78,8 +89,9 @@ def time_imports(copy: Path, env: dict) -> dict:
     load = load_average()
     before = cpu_children()
     started = time.monotonic()
-    out = subprocess.run([sys.executable, "-c", IMPORTS, str(copy)], cwd=ROOT, env=env, capture_output=True,
-                         text=True, check=True)
+    out = subprocess.run(
+        [sys.executable, "-c", IMPORTS, str(copy)], cwd=ROOT, env=env, capture_output=True, text=True, check=True
+    )
     figures = json.loads(out.stdout.strip().splitlines()[-1])
     figures["wall_s"] = time.monotonic() - started
     figures["cpu_s"] = cpu_children() - before
@@ -113,16 +125,29 @@ def run_once(args: argparse.Namespace, copy: Path, env: dict, label: str) -> dic
     load = load_average()
     before = cpu_children()
     started = time.monotonic()
-    out = subprocess.run([sys.executable, "-m", "pipelines", "cycle", "--config", str(copy), "--class", args.product_class],
-                         cwd=ROOT, env=env, capture_output=True, text=True)
+    out = subprocess.run(
+        [sys.executable, "-m", "pipelines", "cycle", "--config", str(copy), "--class", args.product_class],
+        cwd=ROOT,
+        env=env,
+        capture_output=True,
+        text=True,
+    )
     wall = time.monotonic() - started
     cpu = cpu_children() - before
     if out.returncode not in (0,):
         sys.stderr.write(out.stdout[-4000:] + out.stderr[-4000:])
     run_id, steps = step_times(Path(env["DAGSTER_HOME"]))
-    return {"run": label, "exit_code": out.returncode, "wall_s": wall, "cpu_s": cpu, "run_id": run_id,
-            "steps_s": sum(s["wall_s"] for s in steps), "steps": steps,
-            "load_before": load, "load_after": load_average()}
+    return {
+        "run": label,
+        "exit_code": out.returncode,
+        "wall_s": wall,
+        "cpu_s": cpu,
+        "run_id": run_id,
+        "steps_s": sum(s["wall_s"] for s in steps),
+        "steps": steps,
+        "load_before": load,
+        "load_after": load_average(),
+    }
 
 
 def profile_in_process(args: argparse.Namespace, copy: Path, env: dict, stats_path: Path) -> dict:
@@ -141,8 +166,15 @@ def profile_in_process(args: argparse.Namespace, copy: Path, env: dict, stats_pa
     profiler.dump_stats(stats_path)
     text = io.StringIO()
     pstats.Stats(profiler, stream=text).sort_stats("cumulative").print_stats(25)
-    return {"exit_code": code, "wall_s": wall, "cpu_s": cpu, "stats_file": str(stats_path), "top": text.getvalue(),
-            "load_before": load, "load_after": load_average()}
+    return {
+        "exit_code": code,
+        "wall_s": wall,
+        "cpu_s": cpu,
+        "stats_file": str(stats_path),
+        "top": text.getvalue(),
+        "load_before": load,
+        "load_after": load_average(),
+    }
 
 
 def _load(d: dict) -> str:
@@ -151,19 +183,25 @@ def _load(d: dict) -> str:
 
 def report(result: dict) -> None:
     imp = result["imports"]
-    print(f"imports: {imp['total_s']:.2f} s in-child ({imp['command_s']:.2f} command, "
-          f"{imp['definitions_s']:.2f} definitions), child wall {imp['wall_s']:.2f} s, cpu {imp['cpu_s']:.2f} s; "
-          f"heavy modules loaded: {', '.join(imp['heavy_loaded'])}; {_load(imp['load_before'])}")
+    print(
+        f"imports: {imp['total_s']:.2f} s in-child ({imp['command_s']:.2f} command, "
+        f"{imp['definitions_s']:.2f} definitions), child wall {imp['wall_s']:.2f} s, cpu {imp['cpu_s']:.2f} s; "
+        f"heavy modules loaded: {', '.join(imp['heavy_loaded'])}; {_load(imp['load_before'])}"
+    )
     for run in result["runs"]:
-        print(f"\n{run['run']} run (exit {run['exit_code']}): wall {run['wall_s']:.2f} s, cpu {run['cpu_s']:.2f} s, "
-              f"steps {run['steps_s']:.2f} s, outside the steps {run['wall_s'] - run['steps_s']:.2f} s; "
-              f"{_load(run['load_before'])} -> {_load(run['load_after'])}")
+        print(
+            f"\n{run['run']} run (exit {run['exit_code']}): wall {run['wall_s']:.2f} s, cpu {run['cpu_s']:.2f} s, "
+            f"steps {run['steps_s']:.2f} s, outside the steps {run['wall_s'] - run['steps_s']:.2f} s; "
+            f"{_load(run['load_before'])} -> {_load(run['load_after'])}"
+        )
         for step in run["steps"]:
             print(f"  {step['step']:<28} {step['wall_s']:7.2f} s")
     if "profile" in result:
         prof = result["profile"]
-        print(f"\nprofiled warm run in-process: wall {prof['wall_s']:.2f} s, cpu {prof['cpu_s']:.2f} s "
-              f"(cProfile's overhead included), {_load(prof['load_before'])}")
+        print(
+            f"\nprofiled warm run in-process: wall {prof['wall_s']:.2f} s, cpu {prof['cpu_s']:.2f} s "
+            f"(cProfile's overhead included), {_load(prof['load_before'])}"
+        )
         print(prof["top"])
 
 
@@ -174,8 +212,12 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
     parser.add_argument("--work", default="/tmp/small-class")
     parser.add_argument("--runs", type=int, default=2, help="the first cold, the rest warm (default 2)")
     parser.add_argument("--profile", action="store_true", help="one more warm run in this process under cProfile")
-    parser.add_argument("--timer", choices=("wall", "cpu"), default="wall",
-                        help="the profile's clock: wall, or this process's cpu (without its pool workers')")
+    parser.add_argument(
+        "--timer",
+        choices=("wall", "cpu"),
+        default="wall",
+        help="the profile's clock: wall, or this process's cpu (without its pool workers')",
+    )
     parser.add_argument("--json", help="results JSON (default benchmarks/results/small-class-<class>.json)")
     return parser.parse_args(argv)
 
