@@ -1,7 +1,8 @@
 """One class of the demo through the command line: wall and cpu per run, per step, and the imports (issue 15).
 
     .venv/bin/python benchmarks/small_class.py [--class consumables] [--config config/planning.weekly.yaml]
-        [--work /tmp/small-class] [--runs 2] [--profile] [--json benchmarks/results/small-class.json]
+        [--work /tmp/small-class] [--runs 2] [--profile [--timer cpu]] [--tree DIR]
+        [--json benchmarks/results/small-class-consumables.json]
 
 Copies the config with `store.path` (and `inputs.folder`, made absolute) under
 `--work`, makes a fresh `DAGSTER_HOME` there, and runs
@@ -16,8 +17,11 @@ every module `defs` pulls in), with the heavy libraries it loaded listed.
 `--profile` runs one more cycle in this process under cProfile (`--timer cpu`:
 by this process's cpu time, the model pool's workers not counted) and prints
 the 25 functions of most cumulative time (the stats file is kept beside the
-JSON). The machine's load (`os.getloadavg`, as `uptime` prints it) is recorded
-before and after each figure.
+JSON; it runs this file's tree, whatever `--tree` says). `--tree DIR` runs the
+command line of another source tree (e.g. `git archive BASE | tar -x -C DIR`)
+on the same inputs, for a before / after pair. The machine's load
+(`os.getloadavg`, as `uptime` prints it) is recorded before and after each
+figure.
 """
 
 from __future__ import annotations
@@ -81,16 +85,16 @@ def prepare(args: argparse.Namespace) -> tuple[Path, dict]:
     config["store"]["path"] = str(work / "store")
     copy = work / "planning.yaml"
     copy.write_text(yaml.safe_dump(config, sort_keys=False))
-    env = dict(os.environ, DAGSTER_HOME=str(work / "dagster_home"), PYTHONPATH=str(ROOT))
+    env = dict(os.environ, DAGSTER_HOME=str(work / "dagster_home"), PYTHONPATH=str(args.tree))
     return copy, env
 
 
-def time_imports(copy: Path, env: dict) -> dict:
+def time_imports(args: argparse.Namespace, copy: Path, env: dict) -> dict:
     load = load_average()
     before = cpu_children()
     started = time.monotonic()
     out = subprocess.run(
-        [sys.executable, "-c", IMPORTS, str(copy)], cwd=ROOT, env=env, capture_output=True, text=True, check=True
+        [sys.executable, "-c", IMPORTS, str(copy)], cwd=args.tree, env=env, capture_output=True, text=True, check=True
     )
     figures = json.loads(out.stdout.strip().splitlines()[-1])
     figures["wall_s"] = time.monotonic() - started
@@ -127,7 +131,7 @@ def run_once(args: argparse.Namespace, copy: Path, env: dict, label: str) -> dic
     started = time.monotonic()
     out = subprocess.run(
         [sys.executable, "-m", "pipelines", "cycle", "--config", str(copy), "--class", args.product_class],
-        cwd=ROOT,
+        cwd=args.tree,
         env=env,
         capture_output=True,
         text=True,
@@ -209,6 +213,9 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--class", dest="product_class", default="consumables")
     parser.add_argument("--config", default=str(ROOT / "config" / "planning.weekly.yaml"))
+    parser.add_argument(
+        "--tree", default=str(ROOT), help="the source tree whose command line runs (another commit's, for a pair)"
+    )
     parser.add_argument("--work", default="/tmp/small-class")
     parser.add_argument("--runs", type=int, default=2, help="the first cold, the rest warm (default 2)")
     parser.add_argument("--profile", action="store_true", help="one more warm run in this process under cProfile")
@@ -225,7 +232,8 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
 def main(argv: list[str] | None = None) -> int:
     args = parse_args(argv)
     copy, env = prepare(args)
-    result = {"class": args.product_class, "config": args.config, "imports": time_imports(copy, env), "runs": []}
+    result = {"class": args.product_class, "config": args.config, "tree": args.tree, "runs": []}
+    result["imports"] = time_imports(args, copy, env)
     for i in range(args.runs):
         result["runs"].append(run_once(args, copy, env, "cold" if i == 0 else "warm"))
     target = Path(args.json or ROOT / "benchmarks" / "results" / f"small-class-{args.product_class}.json")
