@@ -16,8 +16,8 @@ command line imports before the first step (the command, the definitions, and
 every module `defs` pulls in), with the heavy libraries it loaded listed.
 `--profile` runs one more cycle in this process under cProfile (`--timer cpu`:
 by this process's cpu time, the model pool's workers not counted) and prints
-the 25 functions of most cumulative time (the stats file is kept beside the
-JSON; it runs this file's tree, whatever `--tree` says). `--tree DIR` runs the
+the 25 functions of most cumulative time (the stats file is kept in `--work`
+as profile.prof; it runs this file's tree, whatever `--tree` says). `--tree DIR` runs the
 command line of another source tree (e.g. `git archive BASE | tar -x -C DIR`)
 on the same inputs, for a before / after pair. The machine's load
 (`os.getloadavg`, as `uptime` prints it) is recorded before and after each
@@ -238,7 +238,7 @@ def main(argv: list[str] | None = None) -> int:
         result["runs"].append(run_once(args, copy, env, "cold" if i == 0 else "warm"))
     target = Path(args.json or ROOT / "benchmarks" / "results" / f"small-class-{args.product_class}.json")
     if args.profile:
-        result["profile"] = profile_in_process(args, copy, env, target.with_suffix(".prof"))
+        result["profile"] = profile_in_process(args, copy, env, Path(args.work) / "profile.prof")
     from benchmarks.cycle_measure import versions
 
     result["versions"] = versions()
