@@ -31,6 +31,7 @@ run and check as before, while the command runs and after.
 from __future__ import annotations
 
 import sqlite3
+import threading
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
@@ -59,27 +60,40 @@ def _keeper(file: str) -> sqlite3.Connection | None:
     return keeper
 
 
+# open keepers at most: a run's own event file is written while the run lasts, so a long backfill closes the
+# keepers of its earlier runs (each close checkpoints that file) instead of holding three descriptors per run
+MAX_KEEPERS = 16
+
+
 @contextmanager
 def fewer_flushes() -> Iterator[dict[str, sqlite3.Connection]]:
     """While active: SQLite connections opened through SQLAlchemy commit without an fsync, and their close
-    leaves the WAL to the keeper of their file (see the module docstring). Yields the keepers by file."""
+    leaves the WAL to the keeper of their file (see the module docstring). Yields the keepers by file, the
+    most recently opened last."""
     keepers: dict[str, sqlite3.Connection] = {}
+    lock = threading.Lock()  # the progress display reads the instance from a thread of its own
 
     def on_connect(dbapi_connection, _record) -> None:
         if not isinstance(dbapi_connection, sqlite3.Connection):
             return  # PostgreSQL and the rest: their own settings
         dbapi_connection.execute("PRAGMA synchronous=NORMAL")
         file = _main_file(dbapi_connection)
-        if file and file not in keepers:
+        with lock:
+            if not file or file in keepers:
+                return
             keeper = _keeper(file)
-            if keeper is not None:
-                keepers[file] = keeper
+            if keeper is None:
+                return
+            keepers[file] = keeper
+            while len(keepers) > MAX_KEEPERS:
+                keepers.pop(next(iter(keepers))).close()
 
     event.listen(Engine, "connect", on_connect)
     try:
         yield keepers
     finally:
         event.remove(Engine, "connect", on_connect)
-        for keeper in keepers.values():
-            keeper.close()
-        keepers.clear()
+        with lock:
+            for keeper in keepers.values():
+                keeper.close()
+            keepers.clear()

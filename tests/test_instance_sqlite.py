@@ -14,11 +14,12 @@ import dagster as dg
 import sqlalchemy as sa
 from sqlalchemy.pool import NullPool
 
+from pipelines import instance_sqlite
 from pipelines.instance_sqlite import fewer_flushes
 
 
-def _wal_file(tmp_path: Path) -> Path:
-    path = tmp_path / "events.db"
+def _wal_file(tmp_path: Path, name: str = "events.db") -> Path:
+    path = tmp_path / name
     with sqlite3.connect(path) as setup:
         setup.execute("PRAGMA journal_mode=WAL")
         setup.execute("CREATE TABLE event (n INTEGER)")
@@ -51,6 +52,18 @@ def test_inside_connections_commit_without_fsync_and_leave_the_wal_to_the_keeper
     assert _write_once(path) == 2  # the listener is gone
     with sqlite3.connect(path) as check:
         assert check.execute("SELECT count(*) FROM event").fetchone()[0] == 4
+
+
+def test_at_most_max_keepers_stay_open_the_oldest_closed_first(tmp_path, monkeypatch):
+    # a backfill writes one event file per run: the keepers of the earliest files are closed as new ones come
+    monkeypatch.setattr(instance_sqlite, "MAX_KEEPERS", 3)
+    files = [_wal_file(tmp_path, f"run{i}.db") for i in range(5)]
+    with fewer_flushes() as keepers:
+        for path in files:
+            _write_once(path)
+        assert list(keepers) == [str(p) for p in files[2:]]
+        assert [Path(f"{p}-wal").exists() for p in files] == [False, False, True, True, True]
+    assert not any(Path(f"{p}-wal").exists() for p in files)
 
 
 def test_a_dagster_run_inside_is_in_the_instance_after_it(tmp_path):
