@@ -46,8 +46,16 @@ def run_cycle(
     display). `as_json`: the summary as one JSON object on stdout
     (pipelines/cycle_json.py); everything else goes to stderr.
     """
-    if not as_json:
-        return _run_cycle(config_path, cycle, classes, rebuild_from, summary, backfill, parallel, if_busy, verbose)
+    from pipelines.instance_sqlite import fewer_flushes
+
+    with fewer_flushes():  # the instance's SQLite files without an fsync per event (pipelines/instance_sqlite.py)
+        if not as_json:
+            return _run_cycle(config_path, cycle, classes, rebuild_from, summary, backfill, parallel, if_busy, verbose)
+        return _run_cycle_json(config_path, cycle, classes, rebuild_from, summary, backfill, parallel, if_busy, verbose)
+
+
+def _run_cycle_json(config_path, cycle, classes, rebuild_from, summary, backfill, parallel, if_busy, verbose) -> int:
+    """run_cycle with --json: the summary as one JSON object on stdout, everything else on stderr."""
     import contextlib
 
     from pipelines.cycle_json import dumps

@@ -277,7 +277,11 @@ def _run_in_child(
 def _child_main(*args) -> None:
     # the command's stdout is its own (the --json summary); what a child says is a diagnostic
     sys.stdout = sys.stderr
-    raise SystemExit(_run_in_child(*args))
+    from pipelines.instance_sqlite import fewer_flushes
+
+    with fewer_flushes():  # as the command itself (pipelines/cycle_command.py)
+        code = _run_in_child(*args)
+    raise SystemExit(code)
 
 
 def run_partitions_parallel(

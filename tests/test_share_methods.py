@@ -16,7 +16,9 @@ from hypothesis import strategies as st
 
 from pipelines.engines.period_shares import period_of_year
 from pipelines.engines.proofs import find_shares_not_summing_to_one
-from pipelines.engines.shares import compute_shares, smoothed_proportions
+from pipelines.engines.share_settings import ShareSettings
+from pipelines.engines.share_tuning import candidate_settings
+from pipelines.engines.shares import child_frame, compute_shares, smoothed_proportions
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF
 from pipelines.schemas import PERIOD_BASES, ReinitializedTarget, ShareTable
@@ -293,6 +295,35 @@ def test_children_forecast_split_by_the_childrens_forecasts_under_the_lifecycle_
     assert by_period(t2) == {"C1": pytest.approx([0.8] * 3), "C2": pytest.approx([0.2] * 3)}
     assert basis_by_period(t2) == ["pooled_fallback"] * 3
     assert find_shares_not_summing_to_one(target).empty
+
+
+def test_one_child_frame_for_every_window_and_method_gives_the_tables_made_alone(make_history, make_config):
+    # the share tuning's candidates of an origin share one child_frame (backtest_origins.candidate_bases): each
+    # table must equal compute_shares without it (a new customer with a reference, a late starter and a phase-out
+    # among the children, so the lifecycle columns it carries are not trivial)
+    config = make_config(
+        {"a": {"window": 4, "method": "pooled", "models": LAST_VALUE}},
+        calendar={"horizon": 3},
+        lifecycle={"min_history_periods": 3},
+    )
+    rows = history_rows({"C1": {4: 1, 3: 2, 2: 3, 1: 6}, "C2": {4: 3, 3: 3, 2: 1, 1: 2}, "C3": {2: 2, 1: 0}})
+    history = make_history(rows)
+    kids = lifecycle_children(
+        [
+            ("P1", "C1", 4, H1, H3, None, np.nan),
+            ("P1", "C2", 4, H1, H2, None, np.nan),
+            ("P1", "C3", 4, H2, H3, None, np.nan),
+            ("P1", "C4", 0, H2, H3, "C1", 0.5),
+        ]
+    )
+    config = ShareSettings.of(config)
+    frame = child_frame(history, kids, config, CYCLE)
+    for window, method in [(2, "pooled"), (4, "mean_of_ratios"), (3, "smoothed"), (4, "children_forecast")]:
+        candidate = candidate_settings(config, window, method)
+        shared = compute_shares(history, kids, candidate, CYCLE, frame)
+        alone = compute_shares(history, kids, candidate, CYCLE)
+        pd.testing.assert_frame_equal(shared, alone)
+    assert set(alone["lifecycle_rule"]) == {"reference", "none", "phase_in", "phase_out"}
 
 
 def test_pooled_and_mean_of_ratios_record_history_share_as_their_basis(make_history, make_config):

@@ -29,7 +29,7 @@ from pipelines.engines.origin_cleaning import ClassCleaning, clean_before, raw_q
 from pipelines.engines.period_shares import period_shares
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.share_tuning import candidate_name, candidate_settings
-from pipelines.engines.shares import compute_shares
+from pipelines.engines.shares import child_frame, compute_shares
 from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
 
 
@@ -163,9 +163,10 @@ def candidate_bases(
     methods differ from the base share), each window x method computed once."""
     out: dict[str, np.ndarray] = {}
     share_lookup = None
+    frame = child_frame(view.as_seen, children, settings, view.date)  # what no window or method changes, once
     for w, m in candidates:
         candidate = candidate_settings(settings, w, m)
-        shares = compute_shares(view.as_seen, children, candidate, view.date)
+        shares = compute_shares(view.as_seen, children, candidate, view.date, frame)
         share_lookup = lookup(children, LEAF, shares) if share_lookup is None else share_lookup
         basis = period_shares(shares, candidate, view.date, None, view.as_seen, horizon=h)[0]
         out[candidate_name(w, m)] = basis[share_lookup]

@@ -50,6 +50,8 @@ New customers and the shares of a period (the lifecycle rules) are in
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 import pandas as pd
 
@@ -264,30 +266,73 @@ def _history_shares(
     return out
 
 
-def compute_shares(
+@dataclass(frozen=True)
+class ChildFrame:
+    """What a share table takes from its children, the history's ids and the lifecycle rules alone, the same
+    for every window and method: the share tuning's candidates of one origin make it once (`child_frame`)."""
+
+    children: pd.DataFrame  # complete_children's
+    established: np.ndarray
+    lifecycle: tuple  # lifecycle_rules': rule, ref_pos, scale, initial_share, detail
+    parent_code: np.ndarray
+    n_parents: int
+    ids: tuple[np.ndarray, np.ndarray]  # extend_ids': leaf_id, parent_id
+
+
+def child_frame(
     history: pd.DataFrame, children: pd.DataFrame, settings: ShareSettings, cycle_date: pd.Timestamp
+) -> ChildFrame:
+    """The window- and method-free part of `compute_shares` (it reads the lifecycle settings only)."""
+    settings = ShareSettings.of(settings)
+    children = complete_children(children, settings, cycle_date)
+    established = (children["own_periods"] >= settings.min_history_periods).to_numpy()
+    parent_code, parents = factorize(children, PARENT)
+    return ChildFrame(
+        children,
+        established,
+        lifecycle_rules(children, established, settings, cycle_date),
+        parent_code,
+        len(parents),
+        extend_ids(children, history),
+    )
+
+
+def compute_shares(
+    history: pd.DataFrame,
+    children: pd.DataFrame,
+    settings: ShareSettings,
+    cycle_date: pd.Timestamp,
+    frame: ChildFrame | None = None,
 ) -> pd.DataFrame:
     """The share table: one row per child, with its base share and lifecycle rule.
 
     history: lifecycle history (leaf keys, period_start, quantity, optional shortage).
     children: from `active_children` (leaf keys, product_class and the lifecycle
     columns; see `complete_children` for the defaults of absent ones).
+    frame: `child_frame` of the same history, children and cycle date, and of
+    settings with the same lifecycle keys (made once for many windows and methods).
     """
     settings = ShareSettings.of(settings)
     period = settings.period
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
-    children = complete_children(children, settings, cycle_date)
+    frame = frame or child_frame(history, children, settings, cycle_date)
+    children, established = frame.children, frame.established
     n = len(children)
-    established = (children["own_periods"] >= settings.min_history_periods).to_numpy()
     base = _history_shares(history, children, established, settings, cycle_ord)
-    rule, ref_pos, scale, initial, detail = lifecycle_rules(children, established, settings, cycle_date)
-    parent_code, parents = factorize(children, PARENT)
+    rule, ref_pos, scale, initial, detail = frame.lifecycle  # the table below is a sorted copy: the frame stays
     share, _ = split_shares(
-        parent_code, len(parents), base["history_share"], rule, ref_pos, scale, initial, np.ones((n, 1), dtype=bool)
+        frame.parent_code,
+        frame.n_parents,
+        base["history_share"],
+        rule,
+        ref_pos,
+        scale,
+        initial,
+        np.ones((n, 1), dtype=bool),
     )
 
     out = children[LEAF].copy()
-    out[LEAF_ID], out[PARENT_ID] = extend_ids(children, history)
+    out[LEAF_ID], out[PARENT_ID] = frame.ids
     out["cycle_date"] = cycle_date
     out["product_class"] = children["product_class"].to_numpy()
     out["share"] = share[:, 0]
@@ -304,4 +349,3 @@ def compute_shares(
     out["initial_share"] = initial
     out["lifecycle_detail"] = detail
     return out[SHARE_COLUMNS + [LEAF_ID, PARENT_ID]].sort_values(LEAF, kind="stable").reset_index(drop=True)
-
