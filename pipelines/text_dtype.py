@@ -47,6 +47,8 @@ from pandera.backends.base import CoreCheckResult
 from pandera.backends.pandas.components import ColumnBackend
 from pandera.engines import pandas_engine
 
+from pipelines.unique_keys import one_proof_per_table
+
 ALL_TEXT = ("string", "empty")  # infer_dtype's answers when every non-missing cell is a str
 
 
@@ -111,10 +113,11 @@ def validate_table(model: type[pa.DataFrameModel], frame: pd.DataFrame) -> pd.Da
     schema = model.to_schema()
     token = _SEEN.set({})
     try:
-        if not (schema.coerce and holds_its_types(schema, frame)):
-            _SEEN.set(None)  # coercion writes columns: no answer is kept
-            return schema.validate(frame.copy(deep=False), lazy=True, inplace=True)
-        return _without_coercion(model).validate(frame.copy(deep=False), lazy=True, inplace=True)
+        with one_proof_per_table():  # the ids' proof made for the unique key is read by ids_match_keys
+            if not (schema.coerce and holds_its_types(schema, frame)):
+                _SEEN.set(None)  # coercion writes columns: no answer is kept
+                return schema.validate(frame.copy(deep=False), lazy=True, inplace=True)
+            return _without_coercion(model).validate(frame.copy(deep=False), lazy=True, inplace=True)
     finally:
         _SEEN.reset(token)
 

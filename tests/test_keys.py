@@ -9,7 +9,20 @@ import pandas as pd
 import pandera.errors
 import pytest
 
-from pipelines.keys import LEAF, PARENT, add_ids, coded, extend_ids, ids_match_keys, key_ids, key_rank, lookup, rows_in
+from pipelines.keys import (
+    LEAF,
+    PARENT,
+    _ids_match_keys_by_row,
+    add_ids,
+    coded,
+    extend_ids,
+    ids_match_keys,
+    ids_proven,
+    key_ids,
+    key_rank,
+    lookup,
+    rows_in,
+)
 
 
 def _history() -> pd.DataFrame:
@@ -86,6 +99,48 @@ def test_ids_that_do_not_match_the_keys_are_named_by_row():
     parent_off = h.copy()
     parent_off.loc[2, "parent_id"] = 1  # a leaf of (A,S1) under (A,S2)'s parent id
     assert not ids_match_keys(parent_off).iloc[2]
+
+
+def _corrupted(rng: np.random.Generator, frame: pd.DataFrame) -> pd.DataFrame:
+    """`frame` with one cell changed at random: an id set to another row's, or a key cell to another row's."""
+    out = frame.copy()
+    i, j = rng.integers(0, len(out), size=2)
+    column = rng.choice(["leaf_id", "parent_id", "product", "site", "customer"])
+    out.iloc[i, out.columns.get_loc(column)] = out.iloc[j][column]
+    return out
+
+
+@pytest.mark.parametrize("order", ["by id", "shuffled"])
+def test_the_whole_frame_proof_agrees_with_the_row_by_row_check(order):
+    """ids_proven (neighbouring rows in id order, the parent on one row per leaf) holds exactly where every row
+    passes the row-by-row check (each row against its id's first row), on 400 random one-cell corruptions
+    of a history of 12 leaves under 5 parents; ids_match_keys names the same rows either way."""
+    rng = np.random.default_rng(15)
+    products, sites = np.array(["A", "B", "C"]), np.array(["S1", "S2"])
+    h = pd.DataFrame({"product": products[rng.integers(0, 3, 60)], "site": sites[rng.integers(0, 2, 60)],
+                      "customer": np.array(["c1", "c2"])[rng.integers(0, 2, 60)], "quantity": 1.0})
+    h = add_ids(h).sort_values(["leaf_id"], kind="stable").reset_index(drop=True)
+    if order == "shuffled":
+        h = h.sample(frac=1.0, random_state=3)
+    assert ids_proven(h) and ids_match_keys(h).all()
+    failed = 0
+    for _ in range(400):
+        bad = _corrupted(rng, h)
+        by_row = _ids_match_keys_by_row(bad)
+        assert ids_proven(bad) == bool(by_row.all())
+        assert ids_match_keys(bad).tolist() == by_row.tolist()
+        failed += not by_row.all()
+    assert failed > 100  # most corruptions break the match (some copy an equal value)
+
+
+def test_a_parent_id_that_differs_within_one_leaf_is_not_proven():
+    h = add_ids(_history())
+    bad = h.copy()
+    bad.loc[0, "parent_id"] = 1  # (B,S1,c1) at row 0 under (A,S2)'s parent id; its row 5 keeps 2
+    assert not ids_proven(bad)
+    # parent id 1 now holds (B,S1) at row 0 and (A,S2) at row 1, and (B,S1) has ids 1 and 2 (row 5): all named
+    assert ids_match_keys(bad).tolist() == [False, False, True, True, True, False]
+    assert not ids_proven(h.assign(leaf_id=h["leaf_id"] - 1))  # a negative id: the row-by-row check names it
 
 
 def test_the_history_schema_fails_on_an_id_that_names_another_leaf():
