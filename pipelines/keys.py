@@ -191,12 +191,11 @@ def ids_proven(frame: pd.DataFrame) -> bool:
         return True
     if any(frame[c].dtype.kind not in "iu" for c in present):
         return False
-    parent = frame[PARENT_ID].to_numpy(np.int64) if PARENT_ID in present else None
+    parent = frame[PARENT_ID].to_numpy() if PARENT_ID in present else None  # as stored (int32): no copy
     if LEAF_ID not in present:
         return _first_rows_if_one_key(parent, [frame[c].to_numpy(object) for c in PARENT]) is not None
     constant = [] if parent is None else [parent]
-    first = _first_rows_if_one_key(frame[LEAF_ID].to_numpy(np.int64), [frame[c].to_numpy(object) for c in LEAF],
-                                   constant)
+    first = _first_rows_if_one_key(frame[LEAF_ID].to_numpy(), [frame[c].to_numpy(object) for c in LEAF], constant)
     if first is None or parent is None:
         return first is not None
     return _first_rows_if_one_key(parent[first], [frame[c].to_numpy(object)[first] for c in PARENT]) is not None

@@ -9,14 +9,22 @@ once its ids match its text keys (`ids_proven`, which the table's
 read by that check): then the leaf key (product, site, customer) is unique
 exactly where `leaf_id` is, with the other key columns beside it.
 
-`key_unique` proves a key unique on integers only: the ids in place of the
-text keys they stand for, date, integer and flag columns as their integers.
-When those rows are sorted (the stages write them by id and period) one pass
-over neighbouring rows finds the rows that share the integer part; otherwise
-they are packed into one integer and hashed. Only the rows that share it are
-then compared on the key's other (text) columns. Whatever is not proven
-(duplicates found, no ids, ids that do not match) goes to pandera's own check,
-which names the failing rows as before.
+`key_unique` proves a key unique without hashing its text, in one of two
+ways, each a pass over neighbouring rows:
+
+- on the ids (`_unique_on_ids`): the ids in place of the text keys they
+  stand for, date, integer and flag columns as their integers. When those
+  rows are sorted (the stages write them by id and period) the rows that
+  share the integer part are neighbours; otherwise they are packed into one
+  integer and hashed. Only the rows that share it are then compared on the
+  key's other (text) columns.
+- on runs (`_unique_by_runs`), for a table without ids grouped by its text
+  key (the cleaned history, by leaf): the integer part strictly increases
+  along each run of one text key, and no two runs hold the same text key.
+
+Whatever is not proven (duplicates found, ids that do not match, a table in
+another order) goes to pandera's own check, which names the failing rows as
+before.
 """
 
 from __future__ import annotations
@@ -70,19 +78,25 @@ def ids_match_keys_checked(frame: pd.DataFrame) -> pd.Series:
 
 
 def key_unique(frame: pd.DataFrame, subset: list[str]) -> bool:
-    """True when no two rows of `frame` hold the same `subset` key, proven on integers; False: not proven."""
+    """True when no two rows of `frame` hold the same `subset` key, proven without hashing the text; False: not
+    proven (pandera's own check decides)."""
     cols = [c for c in subset if c in frame.columns]
+    return len(frame) < 2 or _unique_on_ids(frame, cols) or _unique_by_runs(frame, cols)
+
+
+def _unique_on_ids(frame: pd.DataFrame, cols: list[str]) -> bool:
+    """The key proven unique on the ids in place of the text keys they match (False: no such ids, or not proven)."""
     integers, rest = [], list(cols)
     for id_col, key in ((LEAF_ID, LEAF), (PARENT_ID, PARENT)):
         if set(key) <= set(rest) and id_col in frame.columns and proven_ids(frame):
-            integers.append(frame[id_col].to_numpy(np.int64))
+            integers.append(frame[id_col].to_numpy())  # as stored (int32): no copy
             rest = [c for c in rest if c not in key]
     if not integers:
         return False  # nothing to gain: the text columns would be hashed as pandera does
     for c in list(rest):
         dtype = frame[c].dtype
         if isinstance(dtype, np.dtype) and dtype.kind in "iubMm":  # NaT is one integer: equal to itself, as in pandas
-            integers.append(frame[c].to_numpy().view(np.int64) if dtype.kind in "Mm" else frame[c].to_numpy(np.int64))
+            integers.append(frame[c].to_numpy().view(np.int64) if dtype.kind in "Mm" else frame[c].to_numpy())
             rest.remove(c)
     shared = _rows_sharing(integers, len(frame))
     if shared is None:
@@ -95,6 +109,34 @@ def key_unique(frame: pd.DataFrame, subset: list[str]) -> bool:
     for c in rest:
         sub[c] = frame[c].to_numpy()[shared]
     return not bool(sub.duplicated().any())
+
+
+def _unique_by_runs(frame: pd.DataFrame, cols: list[str]) -> bool:
+    """The key proven unique on a table grouped by its text part (as the cleaned history is, by leaf): the text
+    part is constant along runs of neighbouring rows, the integer part strictly increases along each run, and
+    the runs' text parts are distinct. Two rows with one key would share a run, where the integer part never
+    repeats, or lie in two runs of the same text part. False when the table is not so ordered."""
+    text = [c for c in cols if frame[c].dtype == object]
+    integers = []
+    for c in cols:
+        dtype = frame[c].dtype
+        if c in text:
+            continue
+        if not (isinstance(dtype, np.dtype) and dtype.kind in "iubMm"):
+            return False  # floats and other types: left to pandera
+        integers.append(frame[c].to_numpy().view(np.int64) if dtype.kind in "Mm" else frame[c].to_numpy())
+    same = np.ones(len(frame) - 1, dtype=bool)  # row i + 1 continues the run of row i
+    for c in text:  # a NaN differs from itself: it starts a run, and equal runs' keys are then duplicated below
+        values = frame[c].to_numpy(object)
+        same &= values[1:] == values[:-1]
+    later, tie = np.zeros(len(same), dtype=bool), np.ones(len(same), dtype=bool)
+    for values in integers:
+        later |= tie & (values[1:] > values[:-1])
+        tie &= values[1:] == values[:-1]
+    if not bool(np.all(later | ~same)):
+        return False
+    starts = np.flatnonzero(np.r_[True, ~same])
+    return not bool(pd.DataFrame({c: frame[c].to_numpy(object)[starts] for c in text}).duplicated().any())
 
 
 def _rows_sharing(columns: list[np.ndarray], n: int) -> np.ndarray | None:
@@ -120,7 +162,7 @@ def _rows_sharing(columns: list[np.ndarray], n: int) -> np.ndarray | None:
             codes, uniques = pd.factorize(values)
             width = len(uniques)
         else:
-            codes = values - low
+            codes = values.astype(np.int64) - low
         capacity *= max(width, 1)
         if capacity >= 2**62:
             return None

@@ -62,9 +62,39 @@ def test_key_unique_is_never_true_on_a_duplicate_even_with_ids_that_do_not_match
     assert not key_unique(twin, KEY)
 
 
-def test_without_ids_nothing_is_proven_here():
-    frame = _history(np.random.default_rng(1), 10).drop_duplicates(KEY).drop(columns=["leaf_id", "parent_id"])
-    assert not key_unique(frame, KEY)  # left to pandera's own check, which hashes the text
+@pytest.mark.parametrize("order", ["by leaf run", "shuffled"])
+def test_without_ids_key_unique_answers_as_pandas_or_leaves_it_to_pandera(order):
+    """No ids: a table grouped by its text key (each leaf's rows together, periods rising) is proven unique exactly
+    where pandas finds no duplicate; in another order nothing is proven (pandera's own check decides)."""
+    rng = np.random.default_rng(17)
+    proven = refused = 0
+    for rows in [3, 10, 30, 60] * 50:
+        frame = _history(rng, rows).drop(columns=["leaf_id", "parent_id"])
+        if rng.random() < 0.5:
+            frame = frame.drop_duplicates(KEY)
+        leaf_order = pd.Series(rng.permutation(20)[:18]).to_numpy()  # runs of leaves in any order of the leaves
+        rank = frame.groupby(["product", "site", "customer"]).ngroup().map(dict(enumerate(leaf_order)))
+        frame = frame.assign(rank=rank).sort_values(["rank", "origin", "period_start"], kind="stable").drop(
+            columns="rank")
+        if order == "shuffled":
+            frame = frame.sample(frac=1.0, random_state=int(rng.integers(1 << 30)))
+        expected = not frame.duplicated(KEY).any()
+        answer = key_unique(frame, KEY)
+        assert not answer or expected  # never unique where pandas finds a duplicate
+        if order == "by leaf run":
+            assert answer == expected
+        proven += answer
+        refused += expected and not answer
+    assert proven > 40
+    assert order == "by leaf run" or refused > 40
+
+
+def test_runs_of_a_key_split_in_two_are_a_duplicate():
+    """A leaf's rows in two runs, a period in both: the runs' keys are equal, so not proven (nor unique)."""
+    frame = pd.DataFrame({"product": ["A", "A", "B", "A"], "site": "S1", "customer": "c1", "origin": "own",
+                          "period_start": pd.to_datetime(["2026-01-05", "2026-01-12", "2026-01-05", "2026-01-12"])})
+    assert frame.duplicated(KEY).any() and not key_unique(frame, KEY)
+    assert key_unique(frame.iloc[:3], KEY)  # rows 0-2: runs (A: two periods rising), (B: one)
 
 
 def _lifecycle(rows: int = 40) -> pd.DataFrame:
