@@ -101,6 +101,14 @@ def parent_reasons(target: pd.DataFrame, parents: pd.DataFrame, starts: pd.Datet
     return out
 
 
+def horizon_rows(keys: pd.DataFrame, starts: pd.DatetimeIndex) -> pd.DataFrame:
+    """`keys` once per horizon period, series-major (the row order of the forecast's long tables), with
+    `period_start`."""
+    out = keys.iloc[np.repeat(np.arange(len(keys)), len(starts))].reset_index(drop=True)
+    out["period_start"] = np.tile(starts.values, len(keys))
+    return out
+
+
 def leaf_matrix(frame: pd.DataFrame, children: pd.DataFrame, column: str, starts: pd.DatetimeIndex) -> np.ndarray:
     """(n_children, horizon) matrix of `column` from a long leaf x period frame (0 where absent)."""
     out = np.zeros((len(children), len(starts)))

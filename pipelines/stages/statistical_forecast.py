@@ -64,12 +64,13 @@ from pipelines.engines.forecast_frames import (
     active_matrix,
     combine_strategies,
     fitted_frame,
+    horizon_rows,
     leaf_matrix,
     model_keys,
     parent_reasons,
 )
 from pipelines.engines.forecast_intervals import interval_frames
-from pipelines.engines.hierarchy import parent_sums
+from pipelines.engines.hierarchy import NEEDS_LEAF, parent_sums
 from pipelines.engines.models import ModelSettings, series_grid
 from pipelines.engines.proofs import find_negative, find_volume_after_phase_out, find_volume_outside_active_span
 from pipelines.engines.upper_levels import upper_level_checks, upper_levels_run
@@ -188,14 +189,15 @@ def forecast_cycle(
     p_code = keys.parent_rows(parents)
     ok = p_code >= 0
     p_grid = series_grid(p_code[ok], ords[ok], qty[ok], n_parents, cycle_ord)
+    parent_class, child_class = parents["product_class"].to_numpy(), children["product_class"].to_numpy()
     c_code = keys.leaf_rows(children)
-    okc = c_code >= 0
+    okc = c_code >= 0  # the children's own series laid out only where their class forecasts the leaves
+    okc[okc] = np.isin(child_class, [n for n, s in strategies.items() if s in NEEDS_LEAF])[c_code[okc]]
     c_grid = series_grid(c_code[okc], ords[okc], qty[okc], n_children, cycle_ord)
     modes = sb.seasonality_in_effect(settings.seasonality, chosen_seasonality, settings.source)
     season = sb.cycle_season_plan(
         p_grid, parents, products, modes, settings.seasonal_groups, parent_of_child, period, cycle_ord
     )
-    parent_class, child_class = parents["product_class"].to_numpy(), children["product_class"].to_numpy()
     fits = SeriesProgress(series_to_fit(parent_class, child_class, strategies), log)
     base = base_forecasts(
         p_grid, c_grid, parent_class, child_class, strategies, settings.models, horizon, log, progress=fits.advance,
@@ -243,10 +245,8 @@ def forecast_cycle(
         ModelGrain.BOTH,
     )
 
-    parent_out = parents[PARENT + parent_ids].iloc[np.repeat(np.arange(n_parents), horizon)].reset_index(drop=True)
-    parent_out.insert(0, "product_class", np.repeat(parents["product_class"].to_numpy(), horizon))
-    parent_out.insert(0, "cycle_date", cycle_date)
-    parent_out["period_start"] = np.tile(starts.values, n_parents)
+    parent_out = horizon_rows(parents[PARENT + parent_ids], starts)
+    parent_out["product_class"], parent_out["cycle_date"] = np.repeat(parent_class, horizon), cycle_date
     parent_out["forecast"] = parent_fc.ravel()
     parent_out["strategy_forecast"] = strategy_fc.ravel()
     parent_out["model"] = np.repeat(parent_model, horizon)
@@ -259,10 +259,8 @@ def forecast_cycle(
         zeroed[parent_of_child] | ~active, tree_sd,
     )
 
-    leaf_out = children[LEAF + ids].iloc[np.repeat(np.arange(n_children), horizon)].reset_index(drop=True)
-    leaf_out["period_start"] = np.tile(starts.values, n_children)
-    leaf_out["cycle_date"] = cycle_date
-    leaf_out["product_class"] = np.repeat(children["product_class"].to_numpy(), horizon)
+    leaf_out = horizon_rows(children[LEAF + ids], starts)
+    leaf_out["cycle_date"], leaf_out["product_class"] = cycle_date, np.repeat(child_class, horizon)
     leaf_out["forecast"] = leaf_fc.ravel()
     leaf_out["parent_forecast"] = parent_fc[parent_of_child].ravel()
     leaf_out["basis"] = basis.ravel()
