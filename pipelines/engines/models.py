@@ -124,17 +124,18 @@ class SeriesGrid:
 def series_grid(code: np.ndarray, ordinal: np.ndarray, qty: np.ndarray, n_series: int, end_ord: int) -> SeriesGrid:
     """Sum rows per (series, period) and lay each series out densely with zeros filled."""
     keep = ordinal < end_ord
-    code, ordinal, qty = code[keep], ordinal[keep], qty[keep]
+    if not keep.all():  # the history rows are mostly all before the cycle: no copy then
+        code, ordinal, qty = code[keep], ordinal[keep], qty[keep]
     nz = qty > 0
     first = np.full(n_series, end_ord, dtype=np.int64)
     np.minimum.at(first, code[nz], ordinal[nz])
     length = end_ord - first
     offset = np.concatenate([[0], np.cumsum(length)[:-1]])
-    total = int(length.sum())
     series = np.repeat(np.arange(n_series), length)
-    ords = first[series] + (np.arange(total) - offset[series])
+    ords = np.arange(len(series)) + (first - offset)[series]
+    cell = (offset - first)[code] + ordinal  # each row's place in the grid (rows before the first are left out)
     inside = ordinal >= first[code]
-    y = np.bincount(offset[code[inside]] + ordinal[inside] - first[code[inside]], weights=qty[inside], minlength=total)
+    y = np.bincount(cell[inside], weights=qty[inside], minlength=len(series))
     return SeriesGrid(series=series, ordinal=ords, y=y, n_series=n_series)
 
 

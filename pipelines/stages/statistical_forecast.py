@@ -205,8 +205,7 @@ def forecast_cycle(
     )
 
     # top-down basis: the reinitialized target (the period's share where the targets are all 0)
-    target_m = leaf_matrix(target, children, "target", starts)
-    share_m = leaf_matrix(target, children, "share", starts)
+    target_m, share_m = leaf_matrix(target, children, ["target", "share"], starts)
     target_sum = np.zeros((n_parents, horizon))
     np.add.at(target_sum, parent_of_child, target_m)
     use_target = target_sum[parent_of_child] > 0
@@ -259,13 +258,16 @@ def forecast_cycle(
         zeroed[parent_of_child] | ~active, tree_sd,
     )
 
-    leaf_out = horizon_rows(children[LEAF + ids], starts)
+    leaf_out = horizon_rows(children[LEAF], starts)  # made in its columns' order: no copy to reorder them
     leaf_out["cycle_date"], leaf_out["product_class"] = cycle_date, np.repeat(child_class, horizon)
     leaf_out["forecast"] = leaf_fc.ravel()
     leaf_out["parent_forecast"] = parent_fc[parent_of_child].ravel()
     leaf_out["basis"] = basis.ravel()
+    for name in l_bounds.columns:
+        leaf_out[name] = l_bounds[name].to_numpy()
+    for name in ids:
+        leaf_out[name] = np.repeat(children[name].to_numpy(), horizon)
     parent_out = pd.concat([parent_out, p_bounds], axis=1)
-    leaf_out = pd.concat([leaf_out, l_bounds], axis=1)
 
     models = pd.concat(
         [model_keys(base.models, parents, children),
@@ -285,7 +287,7 @@ def forecast_cycle(
     return ForecastResult(
         upper=upper.frame(cycle_date, starts, strategy_fc, parent_fc),
         parent=parent_out[PARENT_COLUMNS + ["strategy"] + list(p_bounds.columns) + parent_ids],
-        leaf=leaf_out[LEAF_COLUMNS + list(l_bounds.columns) + ids],
+        leaf=leaf_out,
         negatives_clipped=base.negatives + made.negatives,
         reconciled_negatives=made.negatives,
         redistributed=redistributed.reset_index(drop=True),
