@@ -181,3 +181,20 @@ def test_blank_ids_of_a_partition_stored_before_them_are_not_read():
     assert coded(h).leaf.tolist() == [3, 2, 1, 0, 1, 3]  # coded from the text keys instead
     table = pd.DataFrame({"product": ["A"], "site": ["S2"], "customer": ["c1"], "leaf_id": [2], "parent_id": [1]})
     assert rows_in(h, table, LEAF).tolist() == [-1, 0, -1, -1, -1, -1]
+
+
+def test_week_ordinals_count_weeks_from_a_monday_as_python_dates_do():
+    """period_ordinal (nanoseconds floor-divided by a week) against Python's own date arithmetic (reference:
+    the standard library's `datetime.date`): whole weeks since Monday 1969-12-29, floored, for dates before and
+    after it and at any time of day; a frame with a blank date takes the day-by-day path and agrees too."""
+    import datetime as dt
+
+    from pipelines.calendar import period_ordinal
+
+    rng = np.random.default_rng(15)
+    stamps = pd.to_datetime(rng.integers(-2 * 10**18, 3 * 10**18, 2000))  # 1906 to 2065, any time of day
+    monday = dt.date(1969, 12, 29)
+    expected = [(t.date() - monday).days // 7 for t in stamps]
+    assert period_ordinal(pd.Series(stamps), "week").tolist() == expected
+    with_blank = pd.Series(list(stamps[:5]) + [pd.NaT])
+    assert period_ordinal(with_blank, "week")[:5].tolist() == expected[:5]

@@ -188,7 +188,7 @@ def forecast_cycle(
     keys = coded(history)  # the history's leaf and parent ids, looked up by their distinct keys only
     p_code = keys.parent_rows(parents)
     ok = p_code >= 0
-    p_grid = series_grid(p_code[ok], ords[ok], qty[ok], n_parents, cycle_ord)
+    p_grid = series_grid(*((p_code, ords, qty) if ok.all() else (p_code[ok], ords[ok], qty[ok])), n_parents, cycle_ord)
     parent_class, child_class = parents["product_class"].to_numpy(), children["product_class"].to_numpy()
     c_code = keys.leaf_rows(children)
     okc = c_code >= 0  # the children's own series laid out only where their class forecasts the leaves
@@ -220,9 +220,8 @@ def forecast_cycle(
     active = active_matrix(children, starts, period)
     made = combine_strategies(strategy_of_parent, base, parent_of_child, basis, active)
     strategy_fc, leaf_fc = made.parent, made.leaf
-    basis = np.where(
-        made.source == "basis", np.where(use_target, Basis.REINITIALIZED_TARGET, Basis.PERIOD_SHARE), made.source
-    )
+    labels = np.array([Basis.REINITIALIZED_TARGET.value, Basis.PERIOD_SHARE.value], dtype=object)  # no text copies
+    basis = np.where(made.source == "basis", labels[np.where(use_target, 0, 1)], made.source)
 
     # lifecycle: a parent period that no child can carry is set to 0 with its zero_reason (a share-split
     # parent: no child holds a share; otherwise: no child is active, or none took any of the volume).
