@@ -126,16 +126,19 @@ def series_grid(code: np.ndarray, ordinal: np.ndarray, qty: np.ndarray, n_series
     keep = ordinal < end_ord
     if not keep.all():  # the history rows are mostly all before the cycle: no copy then
         code, ordinal, qty = code[keep], ordinal[keep], qty[keep]
-    nz = qty > 0
     first = np.full(n_series, end_ord, dtype=np.int64)
-    np.minimum.at(first, code[nz], ordinal[nz])
+    np.minimum.at(first, code, np.where(qty > 0, ordinal, end_ord))
     length = end_ord - first
     offset = np.concatenate([[0], np.cumsum(length)[:-1]])
     series = np.repeat(np.arange(n_series), length)
     ords = np.arange(len(series)) + (first - offset)[series]
-    cell = (offset - first)[code] + ordinal  # each row's place in the grid (rows before the first are left out)
-    inside = ordinal >= first[code]
-    y = np.bincount(cell[inside], weights=qty[inside], minlength=len(series))
+    cell = (offset - first)[code]  # few arrays of the history's length: each new one costs more than its arithmetic
+    cell += ordinal  # each row's place in the grid
+    inside = ordinal >= first[code]  # rows before a series' first demand are left out (+0.0 to cell 0)
+    weights = qty if inside.all() else np.where(inside, qty, 0.0)
+    if not inside.all():
+        cell *= inside
+    y = np.bincount(cell, weights=weights, minlength=len(series)) if len(series) else np.zeros(0)
     return SeriesGrid(series=series, ordinal=ords, y=y, n_series=n_series)
 
 
