@@ -190,9 +190,10 @@ def forecast_cycle(
     ok = p_code >= 0
     p_grid = series_grid(*((p_code, ords, qty) if ok.all() else (p_code[ok], ords[ok], qty[ok])), n_parents, cycle_ord)
     parent_class, child_class = parents["product_class"].to_numpy(), children["product_class"].to_numpy()
-    c_code = keys.leaf_rows(children)
-    okc = c_code >= 0  # the children's own series laid out only where their class forecasts the leaves
-    okc[okc] = np.isin(child_class, [n for n, s in strategies.items() if s in NEEDS_LEAF])[c_code[okc]]
+    leaf_grain = np.isin(child_class, [n for n, s in strategies.items() if s in NEEDS_LEAF])
+    c_code = keys.leaf_rows(children) if leaf_grain.any() else np.zeros(0, dtype=np.int64)
+    okc = np.flatnonzero(c_code >= 0)  # the children's own series laid out only where their class forecasts leaves
+    okc = okc[leaf_grain[c_code[okc]]]
     c_grid = series_grid(c_code[okc], ords[okc], qty[okc], n_children, cycle_ord)
     modes = sb.seasonality_in_effect(settings.seasonality, chosen_seasonality, settings.source)
     season = sb.cycle_season_plan(
