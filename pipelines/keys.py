@@ -189,7 +189,7 @@ def ids_proven(frame: pd.DataFrame) -> bool:
     present = [c for c in (LEAF_ID, PARENT_ID) if c in frame.columns]
     if frame.empty or not present:
         return True
-    if any(frame[c].dtype.kind not in "iu" for c in present):
+    if frame.columns.has_duplicates or any(frame[c].dtype.kind not in "iu" for c in present):
         return False
     parent = frame[PARENT_ID].to_numpy() if PARENT_ID in present else None  # as stored (int32): no copy
     if LEAF_ID not in present:

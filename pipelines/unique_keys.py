@@ -80,6 +80,8 @@ def ids_match_keys_checked(frame: pd.DataFrame) -> pd.Series:
 def key_unique(frame: pd.DataFrame, subset: list[str]) -> bool:
     """True when no two rows of `frame` hold the same `subset` key, proven without hashing the text; False: not
     proven (pandera's own check decides)."""
+    if frame.columns.has_duplicates:  # a repeated column name: left to pandera, which reports it
+        return False
     cols = [c for c in subset if c in frame.columns]
     return len(frame) < 2 or _unique_on_ids(frame, cols) or _unique_by_runs(frame, cols)
 

@@ -125,3 +125,9 @@ def test_a_duplicated_history_row_fails_the_schema_naming_both_rows(where):
         validate_table(LifecycleHistory, bad)
     cases = err.value.failure_cases
     assert set(cases.loc[cases["check"] == "multiple_fields_uniqueness", "index"].astype(int)) == named
+
+
+def test_a_repeated_column_name_is_left_to_pandera():
+    frame = _lifecycle(10)
+    twice = pd.concat([frame, frame[["customer"]]], axis=1)  # two columns named customer
+    assert not key_unique(twice, KEY)
