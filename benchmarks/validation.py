@@ -11,11 +11,12 @@ benchmark does. Then every table with rows is validated by each variant, in
 turn, `--repeat` times (median of CPU seconds, `time.process_time`, so a
 loaded machine moves the figures less):
 
-    pandera-copy    model.validate(frame, lazy=True) with pandera's own column backend: pandera copies the
-                    frame, coerces every column back into it, tests Text columns for nulls cell by cell
-                    (the validation before this change)
+    pandera-copy    model.validate(frame, lazy=True) with pandera's own backends (column, check, frame): pandera
+                    copies the frame, coerces every column back into it, tests Text columns for nulls cell by
+                    cell, hashes every column of a unique key (the validation before these changes)
     validate_table  pipelines.text_dtype.validate_table, what the assets call: the same model, no copy,
-                    coercion off when the table holds its types, Text's not-null check in one pass
+                    coercion off when the table holds its types, Text's not-null check in one pass, unique
+                    keys proven on the ids or on runs of neighbouring rows (pipelines/unique_keys.py)
     pyarrow         the frame to a pyarrow Table, validated by pandera's pyarrow backend
     polars          the frame to a polars DataFrame, validated by pandera's polars backend (when polars is
                     importable; it is not a dependency of the project)
@@ -61,7 +62,7 @@ from cycle_scenario import CLASSES, generate  # noqa: E402
 from assets.factory import Partition, graph_order  # noqa: E402
 from pipelines import definitions  # noqa: E402, F401  (makes every stage asset, so SPECS holds them all)
 from pipelines.tables import MODELS  # noqa: E402
-from pipelines.text_dtype import TextColumnBackend, validate_table  # noqa: E402
+from pipelines.text_dtype import validate_table  # noqa: E402
 
 STAGES = ("raw", "clean", "lifecycle", "shares", "basis", "target", "choice", "forecast", "reconcile", "plan")
 KIND = {"str": "text", "float64": "float", "int64": "int", "bool": "bool", "datetime64[ns]": "date"}
@@ -108,14 +109,24 @@ def replicate(frame: pd.DataFrame, k: int) -> pd.DataFrame:
 
 # =================================================================== the variants
 def pandera_copy(model, frame):
+    """pandera's own backends (column, check and frame: its unique key by `DataFrame.duplicated`) for one call."""
+    from pandera.api.checks import Check
     from pandera.api.pandas.components import Column
+    from pandera.api.pandas.container import DataFrameSchema
+    from pandera.backends.pandas.checks import PandasCheckBackend
     from pandera.backends.pandas.components import ColumnBackend
+    from pandera.backends.pandas.container import DataFrameSchemaBackend
 
-    Column.BACKEND_REGISTRY[(Column, pd.DataFrame)] = ColumnBackend
+    ours = {}
+    pandera_own = ((Column, ColumnBackend), (Check, PandasCheckBackend), (DataFrameSchema, DataFrameSchemaBackend))
+    for api, backend in pandera_own:
+        ours[api] = api.BACKEND_REGISTRY[(api, pd.DataFrame)]
+        api.BACKEND_REGISTRY[(api, pd.DataFrame)] = backend
     try:
         return model.validate(frame, lazy=True)
     finally:
-        Column.BACKEND_REGISTRY[(Column, pd.DataFrame)] = TextColumnBackend
+        for api, backend in ours.items():
+            api.BACKEND_REGISTRY[(api, pd.DataFrame)] = backend
 
 
 def _translated(module, types: dict, model):

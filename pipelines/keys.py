@@ -168,7 +168,61 @@ def add_ids(frame: pd.DataFrame) -> pd.DataFrame:
 def ids_match_keys(frame: pd.DataFrame) -> pd.Series:
     """Per row: its leaf_id is held by no other leaf key and its key by no other leaf_id, and the same for
     parent_id and the parent key (product, site). Rows of a frame without the id columns pass.
+
+    Proven for the whole frame at once where it holds (`ids_proven`); only a frame where that proof fails is
+    judged row by row, so the rows named are the same.
     """
+    if ids_proven(frame):
+        return pd.Series(True, index=frame.index)
+    return _ids_match_keys_by_row(frame)
+
+
+def ids_proven(frame: pd.DataFrame) -> bool:
+    """True when every row passes `ids_match_keys`, decided by comparing neighbouring rows in id order (no
+    gather when the frame is sorted by id, as the stages write it); False when not proven.
+
+    Per id: the rows of one id hold one key, and the ids' first rows hold distinct keys. With both ids the
+    parent's part is proven on one row per leaf: every row of a leaf holds the parent_id of the leaf's first
+    row, and those first rows pass the parent check (a row's parent key is part of its leaf key, which its
+    leaf's first row holds too). A frame whose ids are blank, negative or not integers is not proven here.
+    """
+    present = [c for c in (LEAF_ID, PARENT_ID) if c in frame.columns]
+    if frame.empty or not present:
+        return True
+    if frame.columns.has_duplicates or any(frame[c].dtype.kind not in "iu" for c in present):
+        return False
+    parent = frame[PARENT_ID].to_numpy() if PARENT_ID in present else None  # as stored (int32): no copy
+    if LEAF_ID not in present:
+        return _first_rows_if_one_key(parent, [frame[c].to_numpy(object) for c in PARENT]) is not None
+    constant = [] if parent is None else [parent]
+    first = _first_rows_if_one_key(frame[LEAF_ID].to_numpy(), [frame[c].to_numpy(object) for c in LEAF], constant)
+    if first is None or parent is None:
+        return first is not None
+    return _first_rows_if_one_key(parent[first], [frame[c].to_numpy(object)[first] for c in PARENT]) is not None
+
+
+def _first_rows_if_one_key(ids: np.ndarray, keys: list[np.ndarray], constant: list[np.ndarray] = ()):
+    """Positions of each id's first row when the rows of each id hold one key (the `keys` arrays, and the
+    `constant` ones too) and no two ids hold the same key; None otherwise (or when an id is negative)."""
+    if not len(ids):
+        return np.zeros(0, np.int64)
+    if ids.min() < 0:
+        return None
+    order = None if bool(np.all(ids[1:] >= ids[:-1])) else np.argsort(ids, kind="stable")
+    run_ids = ids if order is None else ids[order]
+    new = np.r_[True, run_ids[1:] != run_ids[:-1]]
+    for values in [*keys, *constant]:
+        values = values if order is None else values[order]
+        if not bool(np.all((values[1:] == values[:-1]) | new[1:])):
+            return None
+    first = np.flatnonzero(new) if order is None else order[new]
+    if pd.DataFrame({i: values[first] for i, values in enumerate(keys)}).duplicated().any():
+        return None
+    return first
+
+
+def _ids_match_keys_by_row(frame: pd.DataFrame) -> pd.Series:
+    """`ids_match_keys` judged row by row (each row against its id's first row): the rows that fail named."""
     ok = np.ones(len(frame), dtype=bool)
     for id_col, cols in ((LEAF_ID, LEAF), (PARENT_ID, PARENT)):
         if id_col not in frame.columns or frame.empty:

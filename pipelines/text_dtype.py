@@ -42,10 +42,14 @@ import functools
 import pandas as pd
 import pandera.pandas as pa
 from pandera import dtypes
+from pandera.api.checks import Check
 from pandera.api.pandas.components import Column
 from pandera.backends.base import CoreCheckResult
+from pandera.backends.pandas.checks import PandasCheckBackend
 from pandera.backends.pandas.components import ColumnBackend
 from pandera.engines import pandas_engine
+
+from pipelines.unique_keys import one_proof_per_table
 
 ALL_TEXT = ("string", "empty")  # infer_dtype's answers when every non-missing cell is a str
 
@@ -101,8 +105,19 @@ class TextColumnBackend(ColumnBackend):
         return super().check_nullable(check_obj, schema)
 
 
+class TextCheckBackend(PandasCheckBackend):
+    """pandera's check backend, which drops the blanks of a column before a check (`ignore_na`) without asking
+    a column of only `str` cells for them (`Series.hasnans` on text: the isin check's largest part)."""
+
+    def preprocess_table_with_key(self, check_obj, key):
+        if self.check.groupby is None and all_text(check_obj[key], skipna=False):
+            return check_obj[key]  # no blank to drop
+        return super().preprocess_table_with_key(check_obj, key)
+
+
 # before pandera registers its own on the first validation (it does not replace a registered backend)
 Column.register_backend(pd.DataFrame, TextColumnBackend, force=True)
+Check.register_backend(pd.DataFrame, TextCheckBackend, force=True)
 
 
 def validate_table(model: type[pa.DataFrameModel], frame: pd.DataFrame) -> pd.DataFrame:
@@ -111,10 +126,11 @@ def validate_table(model: type[pa.DataFrameModel], frame: pd.DataFrame) -> pd.Da
     schema = model.to_schema()
     token = _SEEN.set({})
     try:
-        if not (schema.coerce and holds_its_types(schema, frame)):
-            _SEEN.set(None)  # coercion writes columns: no answer is kept
-            return schema.validate(frame.copy(deep=False), lazy=True, inplace=True)
-        return _without_coercion(model).validate(frame.copy(deep=False), lazy=True, inplace=True)
+        with one_proof_per_table():  # the ids' proof made for the unique key is read by ids_match_keys
+            if not (schema.coerce and holds_its_types(schema, frame)):
+                _SEEN.set(None)  # coercion writes columns: no answer is kept
+                return schema.validate(frame.copy(deep=False), lazy=True, inplace=True)
+            return _without_coercion(model).validate(frame.copy(deep=False), lazy=True, inplace=True)
     finally:
         _SEEN.reset(token)
 

@@ -563,3 +563,25 @@ def test_a_blanked_cell_fails_the_assets_schema_check_naming_the_row(runs, name)
     sample = check.metadata["failing_rows_sample"].value
     others = [c for c in frame.columns if c != column and frame[c].dtype == object and frame.at[i, c]]
     assert all(str(broken.at[i, c]) in sample for c in others[:3])
+
+
+def _keyed(name: str) -> list[str]:
+    unique = _model(name).to_schema().unique or []
+    return list(unique) if all(isinstance(c, str) for c in unique) else list(unique[0])
+
+
+@pytest.mark.parametrize("name", sorted(n for n in MODELS if _keyed(n)))
+def test_a_duplicated_key_fails_the_assets_schema_check_naming_the_row(runs, name):
+    """One row of a correct table repeated at the end (ids and all): the unique key fails the schema check,
+    which names the row (tables with ids: their integer proof finds the pair, pandera's own check names it)."""
+    from assets.common import validate
+
+    frame = next((r.tables[name] for r in runs.values() if len(r.tables.get(name, ())) > 1), None)
+    if frame is None:
+        pytest.skip(f"no partition of the fixture gives {name} two rows")
+    i = frame.index[len(frame) // 2]
+    broken = pd.concat([frame, frame.loc[[i]]], ignore_index=True)
+    _, check = validate(broken, _model(name), name)
+    assert not check.passed and check.check_name == f"{name}_matches_schema"
+    assert "multiple_fields_uniqueness" in check.metadata["failures_by_check"].value
+    assert check.metadata["failing_row_count"].value == 2  # the row and its copy

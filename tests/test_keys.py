@@ -9,7 +9,20 @@ import pandas as pd
 import pandera.errors
 import pytest
 
-from pipelines.keys import LEAF, PARENT, add_ids, coded, extend_ids, ids_match_keys, key_ids, key_rank, lookup, rows_in
+from pipelines.keys import (
+    LEAF,
+    PARENT,
+    _ids_match_keys_by_row,
+    add_ids,
+    coded,
+    extend_ids,
+    ids_match_keys,
+    ids_proven,
+    key_ids,
+    key_rank,
+    lookup,
+    rows_in,
+)
 
 
 def _history() -> pd.DataFrame:
@@ -88,6 +101,48 @@ def test_ids_that_do_not_match_the_keys_are_named_by_row():
     assert not ids_match_keys(parent_off).iloc[2]
 
 
+def _corrupted(rng: np.random.Generator, frame: pd.DataFrame) -> pd.DataFrame:
+    """`frame` with one cell changed at random: an id set to another row's, or a key cell to another row's."""
+    out = frame.copy()
+    i, j = rng.integers(0, len(out), size=2)
+    column = rng.choice(["leaf_id", "parent_id", "product", "site", "customer"])
+    out.iloc[i, out.columns.get_loc(column)] = out.iloc[j][column]
+    return out
+
+
+@pytest.mark.parametrize("order", ["by id", "shuffled"])
+def test_the_whole_frame_proof_agrees_with_the_row_by_row_check(order):
+    """ids_proven (neighbouring rows in id order, the parent on one row per leaf) holds exactly where every row
+    passes the row-by-row check (each row against its id's first row), on 400 random one-cell corruptions
+    of a history of 12 leaves under 5 parents; ids_match_keys names the same rows either way."""
+    rng = np.random.default_rng(15)
+    products, sites = np.array(["A", "B", "C"]), np.array(["S1", "S2"])
+    h = pd.DataFrame({"product": products[rng.integers(0, 3, 60)], "site": sites[rng.integers(0, 2, 60)],
+                      "customer": np.array(["c1", "c2"])[rng.integers(0, 2, 60)], "quantity": 1.0})
+    h = add_ids(h).sort_values(["leaf_id"], kind="stable").reset_index(drop=True)
+    if order == "shuffled":
+        h = h.sample(frac=1.0, random_state=3)
+    assert ids_proven(h) and ids_match_keys(h).all()
+    failed = 0
+    for _ in range(400):
+        bad = _corrupted(rng, h)
+        by_row = _ids_match_keys_by_row(bad)
+        assert ids_proven(bad) == bool(by_row.all())
+        assert ids_match_keys(bad).tolist() == by_row.tolist()
+        failed += not by_row.all()
+    assert failed > 100  # most corruptions break the match (some copy an equal value)
+
+
+def test_a_parent_id_that_differs_within_one_leaf_is_not_proven():
+    h = add_ids(_history())
+    bad = h.copy()
+    bad.loc[0, "parent_id"] = 1  # (B,S1,c1) at row 0 under (A,S2)'s parent id; its row 5 keeps 2
+    assert not ids_proven(bad)
+    # parent id 1 now holds (B,S1) at row 0 and (A,S2) at row 1, and (B,S1) has ids 1 and 2 (row 5): all named
+    assert ids_match_keys(bad).tolist() == [False, False, True, True, True, False]
+    assert not ids_proven(h.assign(leaf_id=h["leaf_id"] - 1))  # a negative id: the row-by-row check names it
+
+
 def test_the_history_schema_fails_on_an_id_that_names_another_leaf():
     from pipelines.schemas import LifecycleHistory
 
@@ -126,3 +181,20 @@ def test_blank_ids_of_a_partition_stored_before_them_are_not_read():
     assert coded(h).leaf.tolist() == [3, 2, 1, 0, 1, 3]  # coded from the text keys instead
     table = pd.DataFrame({"product": ["A"], "site": ["S2"], "customer": ["c1"], "leaf_id": [2], "parent_id": [1]})
     assert rows_in(h, table, LEAF).tolist() == [-1, 0, -1, -1, -1, -1]
+
+
+def test_week_ordinals_count_weeks_from_a_monday_as_python_dates_do():
+    """period_ordinal (nanoseconds floor-divided by a week) against Python's own date arithmetic (reference:
+    the standard library's `datetime.date`): whole weeks since Monday 1969-12-29, floored, for dates before and
+    after it and at any time of day; a frame with a blank date takes the day-by-day path and agrees too."""
+    import datetime as dt
+
+    from pipelines.calendar import period_ordinal
+
+    rng = np.random.default_rng(15)
+    stamps = pd.to_datetime(rng.integers(-2 * 10**18, 3 * 10**18, 2000))  # 1906 to 2065, any time of day
+    monday = dt.date(1969, 12, 29)
+    expected = [(t.date() - monday).days // 7 for t in stamps]
+    assert period_ordinal(pd.Series(stamps), "week").tolist() == expected
+    with_blank = pd.Series(list(stamps[:5]) + [pd.NaT])
+    assert period_ordinal(with_blank, "week")[:5].tolist() == expected[:5]

@@ -101,13 +101,25 @@ def parent_reasons(target: pd.DataFrame, parents: pd.DataFrame, starts: pd.Datet
     return out
 
 
-def leaf_matrix(frame: pd.DataFrame, children: pd.DataFrame, column: str, starts: pd.DatetimeIndex) -> np.ndarray:
-    """(n_children, horizon) matrix of `column` from a long leaf x period frame (0 where absent)."""
-    out = np.zeros((len(children), len(starts)))
-    if frame.empty:
-        return out
-    row = rows_in(frame, children, LEAF)
-    col = pd.DatetimeIndex(starts).get_indexer(pd.DatetimeIndex(frame["period_start"]))
-    ok = (row >= 0) & (col >= 0)
-    out[row[ok], col[ok]] = frame[column].to_numpy(float)[ok]
+def horizon_rows(keys: pd.DataFrame, starts: pd.DatetimeIndex) -> pd.DataFrame:
+    """`keys` once per horizon period, series-major (the row order of the forecast's long tables), with
+    `period_start`."""
+    out = keys.iloc[np.repeat(np.arange(len(keys)), len(starts))].reset_index(drop=True)
+    out["period_start"] = np.tile(starts.values, len(keys))
     return out
+
+
+def leaf_matrix(
+    frame: pd.DataFrame, children: pd.DataFrame, column: str | list[str], starts: pd.DatetimeIndex
+) -> np.ndarray | list[np.ndarray]:
+    """(n_children, horizon) matrix of `column` from a long leaf x period frame (0 where absent); a list of
+    columns: one matrix each, the rows found once."""
+    columns = [column] if isinstance(column, str) else column
+    out = [np.zeros((len(children), len(starts))) for _ in columns]
+    if not frame.empty:
+        row = rows_in(frame, children, LEAF)
+        col = pd.DatetimeIndex(starts).get_indexer(pd.DatetimeIndex(frame["period_start"]))
+        ok = (row >= 0) & (col >= 0)
+        for matrix, name in zip(out, columns, strict=True):
+            matrix[row[ok], col[ok]] = frame[name].to_numpy(float)[ok]
+    return out[0] if isinstance(column, str) else out

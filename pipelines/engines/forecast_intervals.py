@@ -105,14 +105,19 @@ def coherent_intervals(
     0, inactive children).
     """
     p_lo, p_hi = normal_bounds(parent_point, parent_sd, levels)
-    weight = np.divide(
-        leaf_point, parent_point[parent_of_child], out=np.zeros_like(leaf_point),
-        where=parent_point[parent_of_child] > 0,
-    )
-    s_lo, s_hi = split_interval(p_lo, p_hi, np.clip(weight, 0, None), parent_of_child)
-    o_lo, o_hi = normal_bounds(leaf_point, np.nan_to_num(leaf_sd), levels)
     split = np.isnan(leaf_sd)[None]
-    l_lo, l_hi = np.where(split, s_lo, o_lo), np.where(split, s_hi, o_hi)
+    if split.any() or not split.size:  # each kind of bound made only where some leaf takes it
+        parent_of_leaf = parent_point[parent_of_child]
+        weight = np.divide(leaf_point, parent_of_leaf, out=np.zeros_like(leaf_point), where=parent_of_leaf > 0)
+        s_lo, s_hi = split_interval(p_lo, p_hi, np.clip(weight, 0, None), parent_of_child)
+    if not split.all():
+        o_lo, o_hi = normal_bounds(leaf_point, np.nan_to_num(leaf_sd), levels)
+    if split.all():
+        l_lo, l_hi = s_lo, s_hi
+    elif not split.any():
+        l_lo, l_hi = o_lo, o_hi
+    else:
+        l_lo, l_hi = np.where(split, s_lo, o_lo), np.where(split, s_hi, o_hi)
     zero_p = np.zeros(parent_point.shape, bool)[None] if parent_zero is None else parent_zero[None]
     zero_l = np.zeros(leaf_point.shape, bool)[None] if leaf_zero is None else leaf_zero[None]
     return (

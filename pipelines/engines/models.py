@@ -124,17 +124,21 @@ class SeriesGrid:
 def series_grid(code: np.ndarray, ordinal: np.ndarray, qty: np.ndarray, n_series: int, end_ord: int) -> SeriesGrid:
     """Sum rows per (series, period) and lay each series out densely with zeros filled."""
     keep = ordinal < end_ord
-    code, ordinal, qty = code[keep], ordinal[keep], qty[keep]
-    nz = qty > 0
+    if not keep.all():  # the history rows are mostly all before the cycle: no copy then
+        code, ordinal, qty = code[keep], ordinal[keep], qty[keep]
     first = np.full(n_series, end_ord, dtype=np.int64)
-    np.minimum.at(first, code[nz], ordinal[nz])
+    np.minimum.at(first, code, np.where(qty > 0, ordinal, end_ord))
     length = end_ord - first
     offset = np.concatenate([[0], np.cumsum(length)[:-1]])
-    total = int(length.sum())
     series = np.repeat(np.arange(n_series), length)
-    ords = first[series] + (np.arange(total) - offset[series])
-    inside = ordinal >= first[code]
-    y = np.bincount(offset[code[inside]] + ordinal[inside] - first[code[inside]], weights=qty[inside], minlength=total)
+    ords = np.arange(len(series)) + (first - offset)[series]
+    cell = (offset - first)[code]  # few arrays of the history's length: each new one costs more than its arithmetic
+    cell += ordinal  # each row's place in the grid
+    inside = ordinal >= first[code]  # rows before a series' first demand are left out (+0.0 to cell 0)
+    weights = qty if inside.all() else np.where(inside, qty, 0.0)
+    if not inside.all():
+        cell *= inside
+    y = np.bincount(cell, weights=weights, minlength=len(series)) if len(series) else np.zeros(0)
     return SeriesGrid(series=series, ordinal=ords, y=y, n_series=n_series)
 
 

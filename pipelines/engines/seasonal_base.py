@@ -135,18 +135,32 @@ def plan_season(
     return SeasonPlan(m, index, estimated, strength, group, child_group)
 
 
-def series_strength(grid: SeriesGrid, period: str, end_ord: int) -> np.ndarray:
-    """(n_series,) seasonal strength F_S of each series' own history (NaN without two full seasons)."""
+def series_strength(grid: SeriesGrid, period: str, end_ord: int, series: np.ndarray | None = None) -> np.ndarray:
+    """(n_series,) seasonal strength F_S of each series' own history (NaN without two full seasons); with
+    `series`, (len(series),) of those series only (the others' rows are never laid out)."""
     m = season_length(period)
+    if series is not None:
+        grid = _selected(grid, series)
     if not len(grid.ordinal):
         return np.full(grid.n_series, np.nan)
     block = dense_block(grid, int(grid.ordinal.min()), end_ord, before_start=np.nan)
     out = np.full(grid.n_series, np.nan)
-    for width in np.unique(np.sum(np.isfinite(block), axis=1)):  # a loop over history lengths, not series
-        rows = np.flatnonzero(np.sum(np.isfinite(block), axis=1) == width)
+    widths = np.sum(np.isfinite(block), axis=1)
+    for width in np.unique(widths):  # a loop over history lengths, not series
+        rows = np.flatnonzero(widths == width)
         if width >= 2 * m:
             out[rows] = seasonal_strength(block[rows][:, block.shape[1] - width :], m)
     return out
+
+
+def _selected(grid: SeriesGrid, series: np.ndarray) -> SeriesGrid:
+    """The grid of `series` only, renumbered 0..len(series)-1 in that order (rows of a series stay in order)."""
+    position = np.full(grid.n_series, -1, dtype=np.int64)
+    position[series] = np.arange(len(series))
+    rows = np.flatnonzero(position[grid.series] >= 0)
+    new = position[grid.series[rows]]
+    order = np.argsort(new, kind="stable")
+    return SeriesGrid(new[order], grid.ordinal[rows][order], grid.y[rows][order], len(series))
 
 
 def seasonality_in_effect(
@@ -225,7 +239,7 @@ def strength_columns(
     group = np.full(len(models), np.nan)
     for name, grid in (("parent", p_grid), ("leaf", c_grid)):
         rows = grain == name
-        own[rows] = series_strength(grid, period, end_ord)[series[rows]]
+        own[rows] = series_strength(grid, period, end_ord, series[rows])  # the models' series only
         if season is not None and len(season.strength):
             g = (season.parent_group if name == "parent" else season.child_group)[series[rows]]
             group[rows] = np.where(g >= 0, season.strength[np.maximum(g, 0)], np.nan)

@@ -64,12 +64,13 @@ from pipelines.engines.forecast_frames import (
     active_matrix,
     combine_strategies,
     fitted_frame,
+    horizon_rows,
     leaf_matrix,
     model_keys,
     parent_reasons,
 )
 from pipelines.engines.forecast_intervals import interval_frames
-from pipelines.engines.hierarchy import parent_sums
+from pipelines.engines.hierarchy import NEEDS_LEAF, parent_sums
 from pipelines.engines.models import ModelSettings, series_grid
 from pipelines.engines.proofs import find_negative, find_volume_after_phase_out, find_volume_outside_active_span
 from pipelines.engines.upper_levels import upper_level_checks, upper_levels_run
@@ -187,15 +188,17 @@ def forecast_cycle(
     keys = coded(history)  # the history's leaf and parent ids, looked up by their distinct keys only
     p_code = keys.parent_rows(parents)
     ok = p_code >= 0
-    p_grid = series_grid(p_code[ok], ords[ok], qty[ok], n_parents, cycle_ord)
-    c_code = keys.leaf_rows(children)
-    okc = c_code >= 0
+    p_grid = series_grid(*((p_code, ords, qty) if ok.all() else (p_code[ok], ords[ok], qty[ok])), n_parents, cycle_ord)
+    parent_class, child_class = parents["product_class"].to_numpy(), children["product_class"].to_numpy()
+    leaf_grain = np.isin(child_class, [n for n, s in strategies.items() if s in NEEDS_LEAF])
+    c_code = keys.leaf_rows(children) if leaf_grain.any() else np.zeros(0, dtype=np.int64)
+    okc = np.flatnonzero(c_code >= 0)  # the children's own series laid out only where their class forecasts leaves
+    okc = okc[leaf_grain[c_code[okc]]]
     c_grid = series_grid(c_code[okc], ords[okc], qty[okc], n_children, cycle_ord)
     modes = sb.seasonality_in_effect(settings.seasonality, chosen_seasonality, settings.source)
     season = sb.cycle_season_plan(
         p_grid, parents, products, modes, settings.seasonal_groups, parent_of_child, period, cycle_ord
     )
-    parent_class, child_class = parents["product_class"].to_numpy(), children["product_class"].to_numpy()
     fits = SeriesProgress(series_to_fit(parent_class, child_class, strategies), log)
     base = base_forecasts(
         p_grid, c_grid, parent_class, child_class, strategies, settings.models, horizon, log, progress=fits.advance,
@@ -203,8 +206,7 @@ def forecast_cycle(
     )
 
     # top-down basis: the reinitialized target (the period's share where the targets are all 0)
-    target_m = leaf_matrix(target, children, "target", starts)
-    share_m = leaf_matrix(target, children, "share", starts)
+    target_m, share_m = leaf_matrix(target, children, ["target", "share"], starts)
     target_sum = np.zeros((n_parents, horizon))
     np.add.at(target_sum, parent_of_child, target_m)
     use_target = target_sum[parent_of_child] > 0
@@ -219,9 +221,8 @@ def forecast_cycle(
     active = active_matrix(children, starts, period)
     made = combine_strategies(strategy_of_parent, base, parent_of_child, basis, active)
     strategy_fc, leaf_fc = made.parent, made.leaf
-    basis = np.where(
-        made.source == "basis", np.where(use_target, Basis.REINITIALIZED_TARGET, Basis.PERIOD_SHARE), made.source
-    )
+    labels = np.array([Basis.REINITIALIZED_TARGET.value, Basis.PERIOD_SHARE.value], dtype=object)  # no text copies
+    basis = np.where(made.source == "basis", labels[np.where(use_target, 0, 1)], made.source)
 
     # lifecycle: a parent period that no child can carry is set to 0 with its zero_reason (a share-split
     # parent: no child holds a share; otherwise: no child is active, or none took any of the volume).
@@ -243,10 +244,8 @@ def forecast_cycle(
         ModelGrain.BOTH,
     )
 
-    parent_out = parents[PARENT + parent_ids].iloc[np.repeat(np.arange(n_parents), horizon)].reset_index(drop=True)
-    parent_out.insert(0, "product_class", np.repeat(parents["product_class"].to_numpy(), horizon))
-    parent_out.insert(0, "cycle_date", cycle_date)
-    parent_out["period_start"] = np.tile(starts.values, n_parents)
+    parent_out = horizon_rows(parents[PARENT + parent_ids], starts)
+    parent_out["product_class"], parent_out["cycle_date"] = np.repeat(parent_class, horizon), cycle_date
     parent_out["forecast"] = parent_fc.ravel()
     parent_out["strategy_forecast"] = strategy_fc.ravel()
     parent_out["model"] = np.repeat(parent_model, horizon)
@@ -259,15 +258,16 @@ def forecast_cycle(
         zeroed[parent_of_child] | ~active, tree_sd,
     )
 
-    leaf_out = children[LEAF + ids].iloc[np.repeat(np.arange(n_children), horizon)].reset_index(drop=True)
-    leaf_out["period_start"] = np.tile(starts.values, n_children)
-    leaf_out["cycle_date"] = cycle_date
-    leaf_out["product_class"] = np.repeat(children["product_class"].to_numpy(), horizon)
+    leaf_out = horizon_rows(children[LEAF], starts)  # made in its columns' order: no copy to reorder them
+    leaf_out["cycle_date"], leaf_out["product_class"] = cycle_date, np.repeat(child_class, horizon)
     leaf_out["forecast"] = leaf_fc.ravel()
     leaf_out["parent_forecast"] = parent_fc[parent_of_child].ravel()
     leaf_out["basis"] = basis.ravel()
+    for name in l_bounds.columns:
+        leaf_out[name] = l_bounds[name].to_numpy()
+    for name in ids:
+        leaf_out[name] = np.repeat(children[name].to_numpy(), horizon)
     parent_out = pd.concat([parent_out, p_bounds], axis=1)
-    leaf_out = pd.concat([leaf_out, l_bounds], axis=1)
 
     models = pd.concat(
         [model_keys(base.models, parents, children),
@@ -287,7 +287,7 @@ def forecast_cycle(
     return ForecastResult(
         upper=upper.frame(cycle_date, starts, strategy_fc, parent_fc),
         parent=parent_out[PARENT_COLUMNS + ["strategy"] + list(p_bounds.columns) + parent_ids],
-        leaf=leaf_out[LEAF_COLUMNS + list(l_bounds.columns) + ids],
+        leaf=leaf_out,
         negatives_clipped=base.negatives + made.negatives,
         reconciled_negatives=made.negatives,
         redistributed=redistributed.reset_index(drop=True),
