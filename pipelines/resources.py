@@ -44,6 +44,7 @@ from pipelines.store import (  # noqa: F401  (the store's public functions, wher
     write_partition,
 )
 from pipelines.store.dagster_io import PARTITION_TAG, process_tags
+from pipelines.store.pending import mark_pending, shard_mark
 
 DEFAULT_CONFIG = "config/planning.yaml"
 CONFIG_ENV = "APPORTION_CONFIG"
@@ -114,6 +115,10 @@ class PartitionStore(dg.ConfigurableIOManager):
         record = self.store.class_record(cycle, product_class) or {}
         if record.get("state") != "pending" or record.get("run_id") != run.run_id:
             self.store.begin(cycle, [product_class], command=f"run of {run.job_name}", run_id=run.run_id)
+        mark = shard_mark(self.store, cycle, *split_class_key(class_key)) or {}
+        if mark.get("run_id") != run.run_id:  # a shard's run: its old versions no longer count (store/pending.py)
+            mark_pending(self.store, cycle, [split_class_key(class_key)], command=f"run of {run.job_name}",
+                         run_id=run.run_id)
 
     def teardown_after_execution(self, context: dg.InitResourceContext) -> None:
         if self._lock is not None:

@@ -26,6 +26,7 @@ from pipelines.jobs import CYCLE_JOB
 from pipelines.partitions import partition_key, register_partitions
 from pipelines.shards import split_class_key
 from pipelines.store.dagster_io import process_tags
+from pipelines.store.pending import mark_pending
 
 
 @dataclass
@@ -184,6 +185,7 @@ def run_partitions(
     register_partitions(instance, cycle, list(all_classes or classes))
     store = store_of(defs)
     store.begin(cycle, class_names(classes), command=command)
+    mark_pending(store, cycle, [split_class_key(k) for k in classes], command=command)  # before any shard runs
     job = defs.resolve_job_def(CYCLE_JOB)
     run = CycleRun(cycle=cycle)
     for i, product_class in enumerate(classes, 1):
@@ -285,7 +287,9 @@ def run_partitions_parallel(
     from pipelines.definitions import build_definitions
 
     register_partitions(instance, cycle, list(all_classes))
-    store_of(build_definitions(config_path)).begin(cycle, class_names(classes), command=command)
+    store = store_of(build_definitions(config_path))
+    store.begin(cycle, class_names(classes), command=command)
+    mark_pending(store, cycle, [split_class_key(k) for k in classes], command=command)  # before any shard runs
     context = multiprocessing.get_context("spawn")
     waiting = list(enumerate(classes, 1))
     running: dict[str, tuple] = {}
