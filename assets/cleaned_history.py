@@ -28,11 +28,11 @@ def cleaning_settings(part: Partition) -> stage.CleaningSettings:
 def class_first_period(part: Partition) -> int | None:
     """The first period (ordinal) of the whole class's trusted history: the class's lines rejected as the class's
     run would (the shard's history starts there, so its grid and fill ranges are the class's). From the cycle's
-    cut, which found it once for the class (`pipelines.input_cut`); without the cut, from the class's lines read
-    again."""
-    cut = cut_part(part)
-    if cut is not None:
-        return cut.summary()["first_period"]
+    cut, which found it once for the class (`pipelines.input_cut`); without the cut (or when the cut could not
+    read the customer spans), from the class's lines read again."""
+    found = cut_part(part).summary() if part.cut_inputs else {}
+    if found.get("first_period_known"):
+        return found["first_period"]
     config = part.config
     folder, inputs = config.inputs.folder, config.inputs
     products = load_products(folder, inputs)[0]

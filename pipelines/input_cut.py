@@ -49,6 +49,7 @@ import pyarrow.parquet as pq
 from pipelines.engines.class_rows import class_map, class_rows, history_figures
 from pipelines.engines.cleansing import reject_lines
 from pipelines.engines.history_files import load_raw_history
+from pipelines.errors import PlanningError
 from pipelines.partitions import narrow_config
 from pipelines.shards import class_shards, hash_columns, shard_numbers, successor_ends
 from pipelines.stages.master_data import load_customer_spans, load_products
@@ -166,11 +167,15 @@ def write_cut(folder: Path, config, cycle: str, name: str) -> dict:
                 write_part(part_path(folder, k, f"{i}of{n}"), rows.loc[numbers == i].reset_index(drop=True))
                 counts[f"{i}of{n}"] = int((numbers == i).sum())
         first = None
-        if n > 1:  # a shard takes the class's first trusted period (assets/cleaned_history.py)
-            if spans is None:
+        if n > 1 and spans is None:
+            try:
                 spans = load_customer_spans(inputs.folder, inputs)[0]
+            except PlanningError:  # told by the customer_spans asset, as without the cut; no first period here
+                spans = False
+        if n > 1 and spans is not False:  # a shard takes the class's first trusted period (assets/cleaned_history)
             first = class_first_period(rows, products, classes, spans, narrow_config(config, cycle, k), k)
-        summary["classes"][k] = {"lines": len(rows), "shards": counts, "first_period": first}
+        summary["classes"][k] = {"lines": len(rows), "shards": counts, "first_period": first,
+                                 "first_period_known": n > 1 and spans is not False}
     write_json(folder / SUMMARY, summary)
     return summary
 
