@@ -204,10 +204,16 @@ class CutPart:
     def lines(self, say=None) -> tuple[pd.DataFrame, dict]:
         """The partition's history lines (as `class_rows` keeps them of the whole history) and the history's
         figures (`history_figures`)."""
-        folder = self.folder(say)
-        lines = pq.read_table(part_path(folder, self.product_class, self.shard)).to_pandas()
-        return lines, read_json(folder / SUMMARY)["history"]
+        for attempt in (1, 2):  # a cut deleted between finding it and reading it (an input changed): cut anew
+            folder = self.folder(say)
+            try:
+                lines = pq.read_table(part_path(folder, self.product_class, self.shard)).to_pandas()
+                return lines, read_json(folder / SUMMARY)["history"]
+            except FileNotFoundError:
+                if attempt == 2:
+                    raise
 
     def summary(self, say=None) -> dict:
         """The class's entry of the summary: lines, lines per shard, first trusted period (a class of shards)."""
-        return read_json(self.folder(say) / SUMMARY)["classes"][self.product_class]
+        record = read_json(self.folder(say) / SUMMARY) or read_json(self.folder(say) / SUMMARY)
+        return record["classes"][self.product_class]
