@@ -69,7 +69,25 @@ def timed_run(product_class: str, shards: int, parallel: int, cut: bool = True) 
         seconds = time.monotonic() - started
         if done.returncode not in (0, 1):  # 1: a WARN-level or blocking check failed, the runs still timed
             print(done.stdout[-2000:], done.stderr[-2000:], file=sys.stderr)
-        return seconds, done.returncode, before, load()
+        after = load()
+        print(f"  steps summed over the runs: {input_steps(env)}")
+        return seconds, done.returncode, before, after
+
+
+INPUT_STEPS = ("raw_history", "cleaned_history")  # the steps the history cut changes (pipelines/input_cut.py)
+
+
+def input_steps(env: dict) -> str:
+    """The seconds of the steps the history cut changes, summed over the cycle's runs (read from the instance)."""
+    script = (
+        "import dagster as dg; i = dg.DagsterInstance.get(); t = {}\n"
+        "for r in i.get_runs():\n"
+        "    for s in i.get_run_step_stats(r.run_id):\n"
+        "        if s.step_key in %r and s.end_time: t[s.step_key] = t.get(s.step_key, 0) + s.end_time - s.start_time\n"
+        "print(', '.join(f'{k} {v:.1f} s' for k, v in sorted(t.items())))" % (INPUT_STEPS,)
+    )
+    done = subprocess.run([sys.executable, "-c", script], env=env, capture_output=True, text=True)
+    return done.stdout.strip() or done.stderr.strip()[-300:]
 
 
 def main(argv: list[str] | None = None) -> int:
