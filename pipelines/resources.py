@@ -8,7 +8,9 @@ and loads inputs from the latest versions. For the whole run it holds the
 partition's one-writer lock (taken when the run's resources are set up,
 released when they are torn down; the kernel releases it when the run's
 process dies), and it marks the class pending: a run rewriting it means the
-class's last complete versions no longer count towards a publication. A
+class's last complete versions no longer count towards a publication (a
+shard's run marks its shard too, `pipelines/store/pending.py`, so the class
+waits for it even when the run was started from the UI). A
 shard's partition (`seasonal~2of4`, `pipelines.shards`) is the class's
 `shard=2of4` folder: its run writes and reads that shard alone, under a
 lock of its own, so the shards of a class run at once.
