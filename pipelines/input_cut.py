@@ -143,7 +143,8 @@ def write_cut(folder: Path, config, cycle: str, name: str) -> dict:
     inputs = config.inputs
     lines, files = load_raw_history(inputs.folder, inputs)
     products = load_products(inputs.folder, inputs)[0]
-    classes = class_map(products)
+    # the map as the product_class_map asset holds it (raw_history's `classes` without the cut)
+    classes = class_map(products[products["product"].notna()].drop_duplicates("product"))
     of_class = lines["product"].map(classes)
     no_class = of_class.isna().to_numpy()
     ends = successor_ends(products)
