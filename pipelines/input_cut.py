@@ -71,6 +71,13 @@ def part_path(folder: Path, product_class: str, shard: str) -> Path:
 
 def fingerprint(config, cycle: str) -> str:
     """A hash of what decides the cut of `cycle` under the (whole) planning config `config` (module docstring)."""
+    decided = decided_by(config, cycle)
+    return hashlib.blake2b(json.dumps(decided, sort_keys=True, default=str).encode(), digest_size=12).hexdigest()
+
+
+def decided_by(config, cycle: str) -> dict:
+    """What decides the cut (recorded in its summary): the input folder's files (name, size, modification time in
+    ns), the `inputs` and `calendar` sections, the cycle, each class's shard count and hash columns."""
     inputs = config.inputs
     folder = Path(inputs.folder)
     files = sorted(
@@ -84,7 +91,7 @@ def fingerprint(config, cycle: str) -> str:
         "calendar": config.calendar.model_dump(mode="json"),
         "classes": {k: [class_shards(config, k), list(hash_columns(pc))] for k, pc in config.product_classes.items()},
     }
-    return hashlib.blake2b(json.dumps(decided, sort_keys=True, default=str).encode(), digest_size=12).hexdigest()
+    return json.loads(json.dumps(decided, default=str))
 
 
 def ensure_cut(store: Path | str, config, cycle: str, say=None) -> tuple[Path, bool]:
@@ -151,6 +158,7 @@ def write_cut(folder: Path, config, cycle: str, name: str) -> dict:
     summary = {
         "fingerprint": name,
         "cycle": cycle,
+        "decided_by": decided_by(config, cycle),
         "history": history_figures(inputs, files, len(lines), int(no_class.sum())),
         "classes": {},
     }

@@ -6,6 +6,7 @@ The reference for "the same tables" is the project's own path without the cut (`
 every earlier release ran; the comparison is benchmarks/compare_stores.py's, cell by cell without tolerance.
 """
 
+import json
 import shutil
 import subprocess
 import sys
@@ -70,6 +71,8 @@ def test_a_changed_input_file_remakes_the_cut(tmp_path):
     history.write_text("".join(text[:-1]))  # the last line gone
     second, made = ensure_cut(tmp_path / "store", config, CYCLE)
     assert made and second != first and not first.exists()  # the old cut deleted once the new one is in place
+    recorded = {f[0]: f[1] for f in json.loads((second / SUMMARY).read_text())["decided_by"]["files"]}
+    assert recorded["history.csv"] == history.stat().st_size  # what decided it, in its summary
     lines = sum(CutPart(tmp_path / "store", config, CYCLE, k, "1of3").summary()["lines"] for k in FIXED)
     assert lines == len(text) - 1 + 2 - 1  # one line fewer (+2 for the line of no class kept in 3 classes)
 
