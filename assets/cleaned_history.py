@@ -3,8 +3,9 @@
 import dataclasses
 
 from assets.factory import Partition, StageAsset, Table, stage_asset
+from assets.master_data import cut_part
+from pipelines import input_cut
 from pipelines.engines.class_rows import class_map, class_rows
-from pipelines.engines.cleansing import reject_lines
 from pipelines.engines.history_files import load_raw_history
 from pipelines.resources import report_folder
 from pipelines.stages import cleaned_history as stage
@@ -26,17 +27,19 @@ def cleaning_settings(part: Partition) -> stage.CleaningSettings:
 
 def class_first_period(part: Partition) -> int | None:
     """The first period (ordinal) of the whole class's trusted history: the class's lines rejected as the class's
-    run would (the shard's history starts there, so its grid and fill ranges are the class's). Reads the class's
-    history lines again, as every partition's raw_history does until inputs are cut once per cycle."""
+    run would (the shard's history starts there, so its grid and fill ranges are the class's). From the cycle's
+    cut, which found it once for the class (`pipelines.input_cut`); without the cut (or when the cut could not
+    read the customer spans), from the class's lines read again."""
+    found = cut_part(part).summary() if part.cut_inputs else {}
+    if found.get("first_period_known"):
+        return found["first_period"]
     config = part.config
     folder, inputs = config.inputs.folder, config.inputs
     products = load_products(folder, inputs)[0]
     classes = class_map(products)
-    mine = products[products["product_class"] == part.product_class]
     raw = class_rows(load_raw_history(folder, inputs)[0], classes, part.product_class)
-    spans = class_rows(load_customer_spans(folder, inputs)[0], classes, part.product_class)
-    used = reject_lines(raw, mine, spans, config.calendar, config.source, inputs.plausible)[0]
-    return int(used.ordinal.min()) if len(used.ordinal) else None
+    spans = load_customer_spans(folder, inputs)[0]
+    return input_cut.class_first_period(raw, products, classes, spans, config, part.product_class)
 
 
 cleaned_history = stage_asset(StageAsset(

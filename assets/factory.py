@@ -31,19 +31,22 @@ from pipelines.tables import MODELS
 @dataclass(frozen=True)
 class Partition:
     """One partition's view of the config: narrowed to its cycle and class, and whole; its shard (None: the
-    class is not cut, `pipelines.shards`)."""
+    class is not cut, `pipelines.shards`); whether its history comes from the cycle's cut (a Dagster run with
+    `scale.cut_inputs`; the stages' own runs in tests read the whole history)."""
 
     config: PlanningConfig
     full: PlanningConfig
     cycle: str
     product_class: str
     shard: Shard | None = None
+    cut_inputs: bool = False  # history lines from the cycle's cut in the store (pipelines.input_cut)
 
     @classmethod
     def of(cls, context: dg.AssetExecutionContext) -> "Partition":
         full = context.resources.planning.config
         cycle, key = split_key(context.partition_key)
-        return cls(narrow_config(full, cycle, key), full, cycle, split_class_key(key)[0], shard_of(full, key))
+        return cls(narrow_config(full, cycle, key), full, cycle, split_class_key(key)[0], shard_of(full, key),
+                   full.scale.cut_inputs)
 
     def previous(self, table: str):
         """`table` of the class (of a shard: its own rows) as it last completed in its latest cycle before this

@@ -9,11 +9,14 @@ only products, customers and measures the master data and config hold.
 """
 
 import dataclasses
+from pathlib import Path
 
 from assets.factory import StageAsset, Table, stage_asset
 from pipelines.engines.class_rows import InputSettings
+from pipelines.input_cut import CutPart
 from pipelines.shards import Shard, successor_ends
 from pipelines.stages import master_data as stage
+from pipelines.store.layout import DEFAULT_SHARD
 
 PRODUCTS = "products"
 PRODUCT_CLASS_MAP = "product_class_map"
@@ -28,7 +31,16 @@ def input_settings(part) -> InputSettings:
     return InputSettings(
         config.inputs.folder, part.product_class, tuple(part.full.product_classes), str(part.full.source),
         inputs=config.inputs, measures=tuple(config.measures), shard=with_successors(part.shard, config),
+        cut=cut_part(part),
     )
+
+
+def cut_part(part) -> CutPart | None:
+    """The partition's part of the cycle's history cut (None when the partition reads the whole history)."""
+    if not part.cut_inputs:
+        return None
+    shard = DEFAULT_SHARD if part.shard is None else part.shard.name
+    return CutPart(Path(part.config.store.path), part.full, part.cycle, part.product_class, shard)
 
 
 def with_successors(shard: Shard | None, config) -> Shard | None:

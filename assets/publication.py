@@ -13,6 +13,7 @@ from assets.common import rule_check, schema_check_spec, table_metadata, validat
 from pipelines.checks import TABLES_PASSED_THEIR_CHECKS, check_of
 from pipelines.partitions import cycle_class_partitions, split_key
 from pipelines.publication import (
+    active_runs_of,
     not_complete_message,
     proven_versions,
     publication_figures,
@@ -22,8 +23,9 @@ from pipelines.publication import (
 )
 from pipelines.resources import PlanningConfigResource
 from pipelines.schemas_forecast import ClassPublication
-from pipelines.shards import SHARD_MARK, UNSHARDED, split_class_key, store_shards
+from pipelines.shards import UNSHARDED, split_class_key, store_shards
 from pipelines.store import open_store
+from pipelines.store.pending import settle_shard
 
 PUBLICATION = "publication"
 PROOF_TEXT = check_of(PUBLICATION, TABLES_PASSED_THEIR_CHECKS).description
@@ -39,16 +41,18 @@ def class_and_shard(key) -> tuple[str, tuple[str, str | None]]:
 
 def is_complete(context: dg.AssetExecutionContext, store, versions, unproven, schema_ok: bool, shard, where) -> bool:
     """Whether the class is complete: its versions valid and proven (else an error in the log), and, for a shard,
-    every other shard's too (else the class waits for them, said in the log: the last shard to finish completes
-    it)."""
+    every other shard's too and none pending in this cycle's run, nor queued or under way in the instance (else
+    the class waits for them, said in the log: the last shard to finish completes it; `settle_shard`)."""
     if not unproven.empty or not schema_ok:
         context.log.error(not_complete_message(*where, unproven))
         return False
     waiting = waiting_shards(versions, shard)
-    if shard is not None:  # a shard a run is writing right now: its versions are about to change
+    if shard is not None:
         cycle, product_class = where
-        others = set(versions["shard"]) - {shard}
-        waiting += sorted(s for s in others - set(waiting) if store.writer_of(cycle, f"{product_class}{SHARD_MARK}{s}"))
+        others = sorted(set(versions["shard"]) - {shard})
+        active = active_runs_of(context.instance, cycle, product_class)
+        pending = settle_shard(store, cycle, product_class, shard, context.run.run_id, others, active)
+        waiting = sorted(set(waiting) | set(pending))
     if waiting:
         context.log.info(f"shard {shard} complete; the class waits for shards {', '.join(waiting)}")
     return not waiting

@@ -12,8 +12,15 @@ from pydantic import BaseModel, ConfigDict, Field
 
 
 class ScaleConfig(BaseModel):
-    """`shards`: the parts a class is cut into by a stable hash of its parents, each a partition of its own."""
+    """`shards`: the parts a class is cut into by a stable hash of its parents, each a partition of its own;
+    `cut_inputs`: the history cut once per cycle by class and shard."""
 
     model_config = ConfigDict(extra="forbid", frozen=True)
 
     shards: int = Field(1, ge=1, le=4096, description="shards per product class (1: the class is one partition)")
+    cut_inputs: bool = Field(
+        True,
+        description="read the history once per cycle and cut it into one part per class and shard in the store "
+        "(pipelines.input_cut); false: every partition reads the whole history (read from the config's own "
+        "`scale`, not a class's)",
+    )

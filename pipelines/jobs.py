@@ -17,6 +17,7 @@ from pipelines.resources import PlanningConfigResource
 from pipelines.shards import partition_classes, split_class_key
 from pipelines.store import open_store
 from pipelines.store.dagster_io import mark_dead_runs_failed
+from pipelines.store.pending import mark_pending
 
 CYCLE_JOB = "planning_cycle"
 # the schedule's name says what it starts, not when: its cron is its setting (cron_schedule below)
@@ -41,7 +42,9 @@ def start_cycle(instance: dg.DagsterInstance, config, cycle: str, classes: list[
     """
     register_partitions(instance, cycle, classes)
     names = list(dict.fromkeys(split_class_key(k)[0] for k in classes))  # the classes of the keys, once each
-    open_store(config.store.path).begin(cycle, names, command=by)
+    store = open_store(config.store.path)
+    store.begin(cycle, names, command=by)
+    mark_pending(store, cycle, [split_class_key(k) for k in classes], command=by)  # each shard: its run is new
 
 
 def cycle_run_requests(cycle: str, classes: list[str], run_key_prefix: str) -> list[dg.RunRequest]:

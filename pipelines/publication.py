@@ -106,6 +106,28 @@ def waiting_shards(versions: pd.DataFrame, shard: str | None) -> list[str]:
     return sorted(others["shard"].unique())
 
 
+ACTIVE = ("NOT_STARTED", "QUEUED", "STARTING", "STARTED")  # a run that may still write its shard
+
+
+def active_runs_of(instance, cycle: str, product_class: str):
+    """shard -> the ids of the Dagster instance's runs of that shard's partition not finished (queued from the UI,
+    starting or under way), for `pipelines.store.pending.settle_shard`."""
+    import dagster as dg
+
+    from pipelines.partitions import partition_key
+    from pipelines.shards import SHARD_MARK
+    from pipelines.store.dagster_io import PARTITION_TAG
+
+    statuses = [dg.DagsterRunStatus[s] for s in ACTIVE]
+
+    def runs(shard: str) -> list[str]:
+        key = partition_key(cycle, f"{product_class}{SHARD_MARK}{shard}")
+        found = instance.get_runs(filters=dg.RunsFilter(statuses=statuses, tags={PARTITION_TAG: str(key)}))
+        return [r.run_id for r in found]
+
+    return runs
+
+
 def not_complete_message(cycle: str, product_class: str, unproven: pd.DataFrame) -> str:
     return f"{cycle}|{product_class} is not recorded complete: " + "; ".join(
         f"{r.asset}: {r.proof}" for r in unproven.itertuples(index=False)

@@ -8,7 +8,9 @@ and loads inputs from the latest versions. For the whole run it holds the
 partition's one-writer lock (taken when the run's resources are set up,
 released when they are torn down; the kernel releases it when the run's
 process dies), and it marks the class pending: a run rewriting it means the
-class's last complete versions no longer count towards a publication. A
+class's last complete versions no longer count towards a publication (a
+shard's run marks its shard too, `pipelines/store/pending.py`, so the class
+waits for it even when the run was started from the UI). A
 shard's partition (`seasonal~2of4`, `pipelines.shards`) is the class's
 `shard=2of4` folder: its run writes and reads that shard alone, under a
 lock of its own, so the shards of a class run at once.
@@ -44,6 +46,7 @@ from pipelines.store import (  # noqa: F401  (the store's public functions, wher
     write_partition,
 )
 from pipelines.store.dagster_io import PARTITION_TAG, process_tags
+from pipelines.store.pending import mark_pending, shard_mark
 
 DEFAULT_CONFIG = "config/planning.yaml"
 CONFIG_ENV = "APPORTION_CONFIG"
@@ -114,6 +117,10 @@ class PartitionStore(dg.ConfigurableIOManager):
         record = self.store.class_record(cycle, product_class) or {}
         if record.get("state") != "pending" or record.get("run_id") != run.run_id:
             self.store.begin(cycle, [product_class], command=f"run of {run.job_name}", run_id=run.run_id)
+        mark = shard_mark(self.store, cycle, *split_class_key(class_key)) or {}
+        if mark.get("run_id") != run.run_id:  # a shard's run: its old versions no longer count (store/pending.py)
+            mark_pending(self.store, cycle, [split_class_key(class_key)], command=f"run of {run.job_name}",
+                         run_id=run.run_id)
 
     def teardown_after_execution(self, context: dg.InitResourceContext) -> None:
         if self._lock is not None:

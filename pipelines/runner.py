@@ -29,6 +29,7 @@ from pipelines.partitions import partition_key, register_partitions
 from pipelines.phases import TO_BACKTEST, PlannedRun, phase_selection, run_plan, second_runs
 from pipelines.shards import split_class_key
 from pipelines.store.dagster_io import process_tags
+from pipelines.store.pending import mark_pending
 
 
 @dataclass
@@ -187,6 +188,7 @@ def run_partitions(
     register_partitions(instance, cycle, list(all_classes or classes))
     store = store_of(defs)
     store.begin(cycle, class_names(classes), command=command)
+    mark_pending(store, cycle, [split_class_key(k) for k in classes], command=command)  # before any shard runs
     job = defs.resolve_job_def(CYCLE_JOB)
     run = CycleRun(cycle=cycle)
     # a class cut into shards that decides at class level runs in two phases (pipelines/phases.py)
@@ -305,7 +307,9 @@ def run_partitions_parallel(
 
     register_partitions(instance, cycle, list(all_classes))
     defs = build_definitions(config_path)
-    store_of(defs).begin(cycle, class_names(classes), command=command)
+    store = store_of(defs)
+    store.begin(cycle, class_names(classes), command=command)
+    mark_pending(store, cycle, [split_class_key(k) for k in classes], command=command)  # before any shard runs
     # a class cut into shards that decides at class level runs in two phases (pipelines/phases.py)
     graph, wanted = defs.resolve_asset_graph(), rebuild_selection(defs, first) if first else None
     config, outcomes, count = defs.resources["planning"].config, [], 0
@@ -314,7 +318,7 @@ def run_partitions_parallel(
         if number:
             done = {o.product_class: o.success and o.exit_code == 0 for o in outcomes}
             done = {r.key: done.get(r.label, True) for r in batches[0] if r.phase}
-            batch = second_runs(config, store_of(defs), cycle, batch, done, phase_selection(graph, TO_BACKTEST, wanted))
+            batch = second_runs(config, store, cycle, batch, done, phase_selection(graph, TO_BACKTEST, wanted))
         runs = [r for r in batch if phase_selection(graph, r.phase, wanted) != []]
         waiting = [(count + j, r) for j, r in enumerate(runs, 1)]
         count += len(runs)

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import pandas as pd
 
@@ -15,7 +16,8 @@ from pipelines.shards import Shard
 class InputSettings:
     """Where the input files are and how they are read, the partition's class, every configured class (to refuse
     unknown ones) and the config's measures (that adjustments and pins may name); the partition's shard (None:
-    the class is not cut)."""
+    the class is not cut); `cut`: where its history lines were cut once for the cycle (None: read the
+    whole history and keep its rows)."""
 
     folder: Path
     product_class: str
@@ -24,6 +26,7 @@ class InputSettings:
     inputs: InputsConfig = InputsConfig()
     measures: tuple[str, ...] = ()
     shard: Shard | None = None
+    cut: Any = None  # the partition's part of the cycle's history cut (pipelines.input_cut.CutPart); None: read all
 
 
 def input_files(files) -> pd.DataFrame:
@@ -57,3 +60,20 @@ def class_rows(
     cls = frame["product"].map(classes)
     rows = shard_rows(frame.loc[(cls == product_class) | cls.isna()], shard)
     return rows if keep_index else rows.reset_index(drop=True)
+
+
+def history_figures(inputs: InputsConfig, files, lines: int, no_class: int) -> dict:
+    """What `raw_history` tells of the history read (JSON-able; `files` a list of records): its source, the files
+    with their rows, malformed and blank lines and checksum, the lines in all and those of a product in no class."""
+    return {
+        "input_folder": str(inputs.folder),
+        "history_source": inputs.history.describe() if inputs.history is not None else str(inputs.folder),
+        "files": [
+            {"file": f.path.name, "rows": f.rows, "malformed": f.malformed, "blank_lines": f.blank_lines,
+             "sha256": f.sha256}
+            for f in files
+        ],
+        "lines_in_files": int(lines),
+        "lines_in_no_class": int(no_class),
+        "malformed_lines": int(sum(f.malformed for f in files)),
+    }

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import pandas as pd
 
-from pipelines.engines.class_rows import InputSettings, class_map, class_rows
+from pipelines.engines.class_rows import InputSettings, class_map, class_rows, history_figures
 from pipelines.engines.history_files import load_raw_history
 from pipelines.results import Log, StageResult, quiet
 
@@ -20,29 +20,23 @@ def run(product_class_map: pd.DataFrame, settings: InputSettings, log: Log = qui
     """The history lines of the partition's class; a line of a product in no class is kept in every class.
 
     cleaned_history then rejects such lines with their reason, as it does the
-    lines the reader could not split (their `read_error`).
+    lines the reader could not split (their `read_error`). With `settings.cut`
+    the lines are the partition's part of the cycle's cut (`pipelines.input_cut`: the same rows, read once per
+    cycle for every partition), else the whole history is read here and the class's rows kept.
     """
-    classes = class_map(product_class_map)
-    lines, files = load_raw_history(settings.folder, settings.inputs)
-    mine = class_rows(lines, classes, settings.product_class, shard=settings.shard)
-    source = settings.inputs.history.describe() if settings.inputs.history is not None else str(settings.folder)
+    if settings.cut is not None:
+        mine, figures = settings.cut.lines(say=log)
+    else:
+        classes = class_map(product_class_map)
+        lines, files = load_raw_history(settings.folder, settings.inputs)
+        mine = class_rows(lines, classes, settings.product_class, shard=settings.shard)
+        figures = history_figures(settings.inputs, files, len(lines), int(lines["product"].map(classes).isna().sum()))
+    source = figures["history_source"]
     log(
-        f"{settings.product_class}: {len(mine)} of {len(lines)} history lines from "
-        + (f"the query {source}" if settings.inputs.history is not None else f"{len(files)} file(s) in {source}")
+        f"{settings.product_class}: {len(mine)} of {figures['lines_in_files']} history lines from "
+        + (f"the query {source}" if settings.inputs.history is not None else f"{len(figures['files'])} file(s) in "
+           f"{source}")
+        + (" (the cycle's cut)" if settings.cut is not None else "")
     )
-    files_table = pd.DataFrame(
-        [
-            {"file": f.path.name, "rows": f.rows, "malformed": f.malformed, "blank_lines": f.blank_lines,
-             "sha256": f.sha256}
-            for f in files
-        ]
-    )
-    figures = {
-        "input_folder": str(settings.folder),
-        "history_source": source,  # the folder, or the query's source name and URL without its password
-        "files": files_table,
-        "lines_in_files": len(lines),
-        "lines_in_no_class": int(lines["product"].map(classes).isna().sum()),
-        "malformed_lines": int(sum(f.malformed for f in files)),
-    }
+    figures = {**figures, "files": pd.DataFrame(figures["files"])}
     return StageResult(outputs={"raw_history": mine}, metadata={"raw_history": figures})

@@ -9,8 +9,11 @@ Layout under `store.path` (a folder; on a cluster a shared filesystem):
     catalog/cycle=<c>/class=<k>.json                the class: complete (with its versions) or pending
     catalog/cycle=<c>/published.json                the cycle's publication record (what readers see)
     catalog/cycle=<c>/published.previous.json       the one before (its files stay while readers may hold it)
+    catalog/cycle=<c>/pending/class=<k>/shard=<s>.json   a shard to be rewritten, or proven (pending.py)
+    cut/cycle=<c>/<fingerprint>/...                 the cycle's history cut by class and shard (input_cut.py)
     locks/partition/cycle=<c>/class=<k>.lock        one writer per partition
     locks/publish.lock                              one publisher at a time
+    locks/cut/cycle=<c>.lock                        one cutter of a cycle's history
     published.duckdb                                DuckDB views over the published files, for SQL
 
 Protocol (each step is one atomic rename or single-object write):
