@@ -8,6 +8,7 @@ database checkpoints the WAL and deletes the `-wal` file, while a close that is 
 from __future__ import annotations
 
 import sqlite3
+from contextlib import closing
 from pathlib import Path
 
 import dagster as dg
@@ -20,7 +21,9 @@ from pipelines.instance_sqlite import fewer_flushes
 
 def _wal_file(tmp_path: Path, name: str = "events.db") -> Path:
     path = tmp_path / name
-    with sqlite3.connect(path) as setup:
+    # closed here, not when collected: a `with` on a sqlite3 connection only commits, and a connection still
+    # open elsewhere keeps the WAL the test looks for
+    with closing(sqlite3.connect(path)) as setup, setup:
         setup.execute("PRAGMA journal_mode=WAL")
         setup.execute("CREATE TABLE event (n INTEGER)")
     return path
@@ -50,7 +53,7 @@ def test_inside_connections_commit_without_fsync_and_leave_the_wal_to_the_keeper
     assert keepers == {}  # the keeper closed at the end: the WAL checkpointed into the file
     assert not wal.exists()
     assert _write_once(path) == 2  # the listener is gone
-    with sqlite3.connect(path) as check:
+    with closing(sqlite3.connect(path)) as check:
         assert check.execute("SELECT count(*) FROM event").fetchone()[0] == 4
 
 
