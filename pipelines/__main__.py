@@ -34,6 +34,7 @@ def _instance():
 
 def explain(config_path: str, product: str, site: str, customer: str, period: str | None, cycle: str | None) -> int:
     """Print how one leaf value was made, from the store only."""
+    from pipelines.class_view import class_choice
     from pipelines.explain import OPTIONAL_TABLES, REQUIRED_TABLES, explain_leaf
     from pipelines.resources import PlanningConfigResource, read_table, stored_cycles
 
@@ -53,6 +54,8 @@ def explain(config_path: str, product: str, site: str, customer: str, period: st
         name: read_table(store, name, cycle=cycle, where=None if name == "share_tables" else parent)
         for name in REQUIRED_TABLES + OPTIONAL_TABLES
     }
+    # a class cut into shards: its choice once, with the class's figures (a fixed class's: every shard's combined)
+    tables["strategy_choice"] = class_choice(store, config, cycle, tables["strategy_choice"])
     print(explain_leaf({k: v for k, v in tables.items() if v is not None}, product, site, customer, period=period))
     return 0
 

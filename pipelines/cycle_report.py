@@ -19,6 +19,7 @@ import pandas as pd
 
 from pipelines.check_failures import failure_of
 from pipelines.checks import CHECKS, schema_check
+from pipelines.class_view import class_choice
 from pipelines.config import PlanningConfig
 from pipelines.engines import report_charts, report_html
 from pipelines.partitions import partition_key
@@ -135,7 +136,9 @@ def write_cycle_report(config: PlanningConfig, instance: dg.DagsterInstance, cyc
     shares = table("share_tables")
     classes = list(config.product_classes)
     checks = latest_check_results(instance, cycle, partition_classes(config))
-    choice = table("strategy_choice")  # the decision the cycle stored, not one made again from today's config
+    # the decision the cycle stored, not one made again from today's config; a class cut into shards once, with
+    # the class's figures
+    choice = class_choice(store, config, cycle, table("strategy_choice")) if store.exists() else None
     drift = table("share_drift")
     charts = {
         c: class_charts(config, cycle, c, folder)  # a class cut into shards: the class's charts once published,

@@ -17,7 +17,7 @@ from assets.share_drift import share_drift
 from assets.share_tables import share_tables
 from assets.statistical_forecast import statistical_forecast
 from assets.strategy_choice import strategy_choice
-from pipelines.jobs import cycle_job, cycle_schedule_for, dead_run_reaper, new_history_file_sensor
+from pipelines.jobs import class_step_sensor, cycle_job, cycle_schedule_for, dead_run_reaper, new_history_file_sensor
 from pipelines.resources import PartitionStore, PlanningConfigResource
 
 ASSETS = [
@@ -56,7 +56,7 @@ def build_definitions(config_path: str = "") -> dg.Definitions:
         assets=ASSETS,
         jobs=[cycle_job],
         schedules=[cycle_schedule_for(calendar.schedule, calendar.period)],
-        sensors=[new_history_file_sensor, dead_run_reaper],
+        sensors=[new_history_file_sensor, class_step_sensor, dead_run_reaper],
         resources={"planning": planning, "io_manager": PartitionStore(planning=planning)},
         executor=dg.in_process_executor,
     )

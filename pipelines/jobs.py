@@ -3,9 +3,14 @@
 A run of `planning_cycle` is one partition: one product class in one cycle (a
 week or a month, per `calendar.period`). The
 schedule and the sensor register the cycle date and the configured classes as
-partitions, then request one run per class.
+partitions, then request one run per class. A class cut into shards that
+decides at class level (`pipelines.phases`) is requested in two phases: the
+schedule and the new-history sensor request each shard's run up to the
+backtest (tagged `apportion/phase`), and the sensor `class_step` requests
+every shard's run from `strategy_choice` on once all of them succeeded.
 """
 
+import hashlib
 import json
 
 import dagster as dg
@@ -13,8 +18,9 @@ import dagster as dg
 from pipelines.engines.inputs import find_files, sha256
 from pipelines.errors import PlanningError
 from pipelines.partitions import current_cycle, partition_key, register_partitions
+from pipelines.phases import FROM_CHOICE, TO_BACKTEST, PlannedRun, phase_selection, run_plan
 from pipelines.resources import PlanningConfigResource
-from pipelines.shards import partition_classes, split_class_key
+from pipelines.shards import needs_class_step, partition_classes, split_class_key
 from pipelines.store import open_store
 from pipelines.store.dagster_io import mark_dead_runs_failed
 from pipelines.store.pending import mark_pending
@@ -24,6 +30,9 @@ CYCLE_JOB = "planning_cycle"
 CYCLE_SCHEDULE = "planning_cycle_schedule"
 NEW_HISTORY_SENSOR = "new_history_file"
 DEAD_RUN_REAPER = "dead_run_reaper"
+CLASS_STEP_SENSOR = "class_step"
+PHASE_TAG = "apportion/phase"  # a run of one phase requested by the schedule or a sensor (the command line's: none)
+AFTER_TAG = "apportion/after"  # a second phase's run: which first-phase runs it follows (a digest of their ids)
 
 cycle_job = dg.define_asset_job(
     CYCLE_JOB,
@@ -47,16 +56,29 @@ def start_cycle(instance: dg.DagsterInstance, config, cycle: str, classes: list[
     mark_pending(store, cycle, [split_class_key(k) for k in classes], command=by)  # each shard: its run is new
 
 
-def cycle_run_requests(cycle: str, classes: list[str], run_key_prefix: str) -> list[dg.RunRequest]:
-    """One run request per class of `cycle`; the run key makes a repeated tick a no-op."""
-    return [
-        dg.RunRequest(
-            run_key=f"{run_key_prefix}:{cycle}|{c}",
-            partition_key=partition_key(cycle, c),
-            tags={"cycle": cycle, "product_class": c},
-        )
-        for c in classes
-    ]
+def cycle_run_requests(
+    cycle: str, classes: list[str], run_key_prefix: str, config=None, graph=None
+) -> list[dg.RunRequest]:
+    """One run request per class of `cycle`; the run key makes a repeated tick a no-op. With `config` and the
+    asset `graph`, a shard of a class deciding at class level is requested up to the backtest only (its second
+    phase: `class_step_sensor`)."""
+    plan = run_plan(config, classes)[0] if config is not None else [PlannedRun(c) for c in classes]
+    return [_request(cycle, r, f"{run_key_prefix}:{cycle}|{r.key}", graph) for r in plan]
+
+
+def _graph(context):
+    """The asset graph of the code location a tick runs in (None outside one: no phase can be selected)."""
+    return context.repository_def.asset_graph if context.repository_def is not None else None
+
+
+def _request(cycle: str, planned: PlannedRun, run_key: str, graph, tags: dict | None = None) -> dg.RunRequest:
+    phase = {PHASE_TAG: planned.phase} if planned.phase else {}
+    return dg.RunRequest(
+        run_key=run_key,
+        partition_key=partition_key(cycle, planned.key),
+        tags={"cycle": cycle, "product_class": planned.key, **phase, **(tags or {})},
+        asset_selection=phase_selection(graph, planned.phase, None) if planned.phase else None,
+    )
 
 
 def cycle_schedule_for(cron: str, period: str = "week") -> dg.ScheduleDefinition:
@@ -82,7 +104,8 @@ def cycle_schedule_for(cron: str, period: str = "week") -> dg.ScheduleDefinition
         classes = partition_classes(config)  # a class cut into shards: one key per shard
         start_cycle(context.instance, config, cycle, classes, by=f"schedule {CYCLE_SCHEDULE}")
         return cycle_run_requests(
-            cycle, classes, run_key_prefix=f"schedule:{context.scheduled_execution_time:%Y-%m-%dT%H:%M}"
+            cycle, classes, run_key_prefix=f"schedule:{context.scheduled_execution_time:%Y-%m-%dT%H:%M}",
+            config=config, graph=_graph(context),
         )
 
     return cycle_schedule
@@ -124,14 +147,14 @@ def new_history_file_sensor(context: dg.SensorEvaluationContext, planning: Plann
     start_cycle(context.instance, config, cycle, classes, by=f"sensor {NEW_HISTORY_SENSOR}")
     digest = sha256_of_signature(signature)
     return dg.SensorResult(
-        run_requests=cycle_run_requests(cycle, classes, run_key_prefix=f"history:{digest}"),
+        run_requests=cycle_run_requests(
+            cycle, classes, run_key_prefix=f"history:{digest}", config=config, graph=_graph(context)
+        ),
         cursor=json.dumps(signature, sort_keys=True),
     )
 
 
 def sha256_of_signature(signature: dict[str, str]) -> str:
-    import hashlib
-
     return hashlib.sha256(json.dumps(signature, sort_keys=True).encode()).hexdigest()[:16]
 
 
@@ -148,3 +171,58 @@ def dead_run_reaper(context: dg.SensorEvaluationContext):
     for message in marked:
         context.log.warning(message)
     return dg.SkipReason("; ".join(marked) if marked else "no run with a dead process")
+
+
+@dg.sensor(
+    name=CLASS_STEP_SENSOR,
+    job=cycle_job,
+    minimum_interval_seconds=30,
+    default_status=dg.DefaultSensorStatus.RUNNING,
+    description="For a class cut into shards that decides at class level (strategy or seasonality auto): when the "
+    "schedule's or the new-history sensor's runs of all its shards up to the backtest have succeeded, requests "
+    "every shard's run from strategy_choice on (which reads every shard's backtest). Does nothing for other "
+    "classes or for the command line's runs, which run both phases themselves.",
+)
+def class_step_sensor(context: dg.SensorEvaluationContext, planning: PlanningConfigResource):
+    try:
+        config = planning.config
+    except PlanningError as err:
+        return dg.SkipReason(f"cannot read the config: {err}")
+    phased = [name for name in config.product_classes if needs_class_step(config, name)]
+    if not phased:
+        return dg.SkipReason("no class is cut into shards and decides at class level")
+    firsts = context.instance.get_runs(filters=dg.RunsFilter(tags={PHASE_TAG: TO_BACKTEST}), limit=1000)
+    newest: dict[tuple[str, str], dg.DagsterRun] = {}
+    for run in firsts:  # newest first
+        newest.setdefault((run.tags.get("cycle", ""), run.tags.get("product_class", "")), run)
+    requests, notes = [], []
+    for cycle in sorted({c for c, _ in newest}, reverse=True):
+        for name in phased:
+            ready, note = _second_phase(context.instance, config, cycle, name, newest)
+            notes += [note] if note else []
+            requests += [_request(cycle, PlannedRun(k, FROM_CHOICE), f"{CLASS_STEP_SENSOR}:{cycle}|{k}|{ready}",
+                                  _graph(context), {AFTER_TAG: ready}) for k in
+                         (partition_classes(config, [name]) if ready else [])]
+    return requests or dg.SkipReason("; ".join(notes) or "no shard's run up to the backtest was requested")
+
+
+def _second_phase(instance, config, cycle: str, name: str, newest) -> tuple[str, str]:
+    """(digest of the first-phase runs, '') when class `name`'s second phase of `cycle` is due; else ('', why not:
+    '' when its first phase was not requested in phases, or its second already was)."""
+    keys = partition_classes(config, [name])
+    runs = {k: newest.get((cycle, k)) for k in keys}
+    if all(r is None for r in runs.values()):
+        return "", ""
+    missing = [k for k, r in runs.items() if r is None]
+    failed = [k for k, r in runs.items() if r is not None and r.status in (
+        dg.DagsterRunStatus.FAILURE, dg.DagsterRunStatus.CANCELED)]
+    waiting = [k for k, r in runs.items() if r is not None and r.status != dg.DagsterRunStatus.SUCCESS]
+    if failed:
+        return "", (f"{cycle} {name}: the run up to the backtest of {failed} did not succeed, so no shard goes on "
+                    f"to strategy_choice; fix it and run: python -m pipelines cycle --cycle {cycle} --class {name}")
+    if missing or waiting:
+        return "", f"{cycle} {name}: waiting for the backtest of {missing + waiting}"
+    digest = hashlib.sha256("|".join(sorted(r.run_id for r in runs.values())).encode()).hexdigest()[:16]
+    if instance.get_runs(filters=dg.RunsFilter(tags={AFTER_TAG: digest}), limit=1):
+        return "", ""
+    return digest, ""

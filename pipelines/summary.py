@@ -25,6 +25,7 @@ def print_summary(
     (`failed_checks`), printed ERROR first. Printed even when nothing of the
     cycle reached the store.
     """
+    from pipelines.class_view import class_choice
     from pipelines.resources import PlanningConfigResource, read_table
     from pipelines.store import open_store
 
@@ -107,10 +108,10 @@ def print_summary(
                 f"  {name:<14} {len(p):>4} parents {len(group):>5} children  ({how}; {fallbacks} parents used a "
                 "fallback)"
             )
-    choice = table("strategy_choice")  # as the cycle decided it, not decided again from today's config
+    # as the cycle decided it, not decided again from today's config; a class cut into shards once, with the
+    # class's figures (pipelines.class_view)
+    choice = class_choice(store.root, config, cycle, table("strategy_choice"))
     if choice is not None and len(choice):
-        # a class cut into shards: every shard stores the same class-level row (its choice over every shard)
-        choice = choice.drop_duplicates()
         print("strategy:     (backtest, leaf grain; judged by the class's metric; margin = runner-up minus chosen)")
         for _, row in choice.iterrows():
             print(

@@ -9,8 +9,9 @@ import yaml
 
 from pipelines.definitions import build_definitions
 from pipelines.errors import ConfigError
-from pipelines.jobs import CYCLE_SCHEDULE, new_history_file_sensor
+from pipelines.jobs import CYCLE_JOB, CYCLE_SCHEDULE, PHASE_TAG, class_step_sensor, new_history_file_sensor
 from pipelines.partitions import CYCLE, PRODUCT_CLASS, current_cycle, narrow_config, partition_key, split_key
+from pipelines.phases import FROM_CHOICE, TO_BACKTEST, phase_selection
 from pipelines.resources import PlanningConfigResource
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -163,3 +164,71 @@ def test_sensor_skips_with_the_reason_when_the_folder_is_missing(tmp_path):
             dg.build_sensor_context(instance=instance, resources={"planning": planning})
         )
     assert not tick.run_requests and "does not exist" in tick.skip_message
+
+
+def _sharded_file(tmp_path: Path, folder: Path) -> str:
+    """`fast` cut into two shards that decide their strategy at class level (two phases), `slow` one run."""
+    path = Path(_config_file(tmp_path, folder))
+    data = yaml.safe_load(path.read_text())
+    data["product_classes"] = {
+        "fast": {"window": 4, "strategy": "auto", "scale": {"shards": 2}},
+        "slow": {"window": 8, "strategy": "top_down"},
+    }
+    path.write_text(yaml.safe_dump(data))
+    return str(path)
+
+
+def _first_phase_run(instance, run_key: str, status: dg.DagsterRunStatus) -> dg.DagsterRun:
+    """A finished run record of shard `run_key`'s first phase, as the schedule's request tags it."""
+    cycle, key = run_key.split("|")
+    return instance.add_run(dg.DagsterRun(
+        job_name=CYCLE_JOB, status=status,
+        tags={"cycle": cycle, "product_class": key, PHASE_TAG: TO_BACKTEST},
+    ))
+
+
+def test_a_class_deciding_over_its_shards_is_scheduled_in_two_phases(tmp_path):
+    folder = tmp_path / "in"
+    _history(folder, ["P,S,C,2026-11-23,1"])
+    planning = PlanningConfigResource(path=_sharded_file(tmp_path, folder))
+    defs = build_definitions(planning.path)
+    graph = defs.resolve_asset_graph()
+    first = set(phase_selection(graph, TO_BACKTEST, None))
+    with dg.instance_for_test() as instance, dg.partition_loading_context(dynamic_partitions_store=instance):
+        with dg.build_schedule_context(
+            instance=instance,
+            scheduled_execution_time=dt.datetime(2026, 11, 30, 6, tzinfo=dt.timezone.utc),
+            resources={"planning": planning},
+            repository_def=defs.get_repository_def(),
+        ) as context:
+            requests = defs.resolve_schedule_def(CYCLE_SCHEDULE).evaluate_tick(context).run_requests
+        by_key = {r.partition_key: r for r in requests}
+        assert list(by_key) == ["2026-11-30|fast~1of2", "2026-11-30|fast~2of2", "2026-11-30|slow"]
+        # the shards up to the backtest only, tagged; the class not cut: its whole run, as before
+        for key in ("2026-11-30|fast~1of2", "2026-11-30|fast~2of2"):
+            assert set(by_key[key].asset_selection) == first and by_key[key].tags[PHASE_TAG] == TO_BACKTEST
+        assert by_key["2026-11-30|slow"].asset_selection is None and PHASE_TAG not in by_key["2026-11-30|slow"].tags
+
+        def tick():
+            return class_step_sensor.evaluate_tick(dg.build_sensor_context(
+                instance=instance, resources={"planning": planning}, repository_def=defs.get_repository_def()))
+
+        # one shard's backtest done: the class waits for the other
+        _first_phase_run(instance, "2026-11-30|fast~1of2", dg.DagsterRunStatus.SUCCESS)
+        waiting = tick()
+        assert not waiting.run_requests and "waiting for the backtest of ['fast~2of2']" in waiting.skip_message
+        # the other's failed: no shard goes on, and the message says what to run
+        failed = _first_phase_run(instance, "2026-11-30|fast~2of2", dg.DagsterRunStatus.FAILURE)
+        stopped = tick()
+        assert not stopped.run_requests and "did not succeed" in stopped.skip_message
+        assert "--class fast" in stopped.skip_message and failed.run_id
+        # rerun and succeeded: both shards from strategy_choice on, the rest of the graph
+        _first_phase_run(instance, "2026-11-30|fast~2of2", dg.DagsterRunStatus.SUCCESS)
+        going = tick().run_requests
+        assert [r.partition_key for r in going] == ["2026-11-30|fast~1of2", "2026-11-30|fast~2of2"]
+        rest = set(graph.get_all_asset_keys()) - first
+        assert all(set(r.asset_selection) == rest and r.tags[PHASE_TAG] == FROM_CHOICE for r in going)
+        # once those runs exist, the next tick requests nothing again
+        for r in going:
+            instance.add_run(dg.DagsterRun(job_name=CYCLE_JOB, status=dg.DagsterRunStatus.NOT_STARTED, tags=r.tags))
+        assert not tick().run_requests

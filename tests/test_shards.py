@@ -245,6 +245,35 @@ def test_eight_shards_give_the_whole_class_leaf_forecast_to_the_last_bit():
     assert (leaf.groupby(["product", "site"])["shard"].nunique() == 1).all()
 
 
+def test_readers_show_a_fixed_sharded_class_once_with_the_whole_class_figures(tmp_path):
+    # a fixed strategy decides nothing over the class, so each shard's strategy_choice holds its own backtest's
+    # figures; the summary and the cycle page show the class once, with the whole class's (pipelines.class_view)
+    from pipelines.class_view import class_choice
+    from pipelines.store import open_store
+
+    whole = run_partition(demo_config(FIXED, hierarchy=NO_UPPER_LEVELS), CYCLE, "spares", backtest=True,
+                          upto="strategy_choice")
+    config = demo_config(FIXED, hierarchy=NO_UPPER_LEVELS, scale={"shards": 3})
+    shards = [run_partition(config, CYCLE, key, backtest=True, upto="strategy_choice")
+              for key in partition_classes(config, ["spares"])]
+    folder = tmp_path / "store"
+    store = open_store(folder)
+    for key, s in zip(partition_classes(config, ["spares"]), shards, strict=True):
+        for table in ("strategy_choice", "backtest_accuracy"):
+            store.write(table, CYCLE, "spares", s.tables[table], shard=key.split("~")[1])
+    stored = pd.concat([s.tables["strategy_choice"] for s in shards], ignore_index=True)
+    assert stored["leaf_wmape"].nunique() > 1  # the shards' own figures differ
+    shown = class_choice(folder, config, CYCLE, stored, versions="latest")
+    assert len(class_choice(folder, config, CYCLE, stored.iloc[[0]], versions="latest")) == 1
+    mine = whole.tables["strategy_choice"]
+    assert len(shown) == 1 and shown["decision"].tolist() == ["fixed"]
+    # ratios of float sums the shards add in another order: to 1e-12 relative; the rest exactly
+    figures = ["leaf_wmape", "leaf_rmsse", "score", "seasonal_naive_wmape"]
+    pd.testing.assert_frame_equal(shown[figures], mine[figures], check_exact=False, rtol=1e-12, atol=0)
+    rest = [c for c in mine.columns if c not in figures]
+    pd.testing.assert_frame_equal(shown[rest], mine[rest], check_exact=True)
+
+
 @pytest.mark.graph
 def test_the_last_shard_to_finish_completes_the_class(tmp_path):
     from pipelines.definitions import build_definitions
