@@ -123,6 +123,32 @@ def class_step_runs(config_whole: PlanningConfig, config_cut: PlanningConfig, cy
     return ClassStepRuns(whole, shards, accuracy, losses)
 
 
+# what a shard cannot decide alone, fixed: a strategy, a window and method, no seasonality group (no upper levels:
+# `sharded_demo_file`), so `spares` may be cut into shards
+FIXED = {
+    "consumables": {"seasonality": "none"},
+    "seasonal": {"window": 52, "method": "pooled", "strategy": "top_down", "seasonality": "none"},
+    "spares": {"strategy": "mint_shrink", "seasonality": "none"},
+}
+
+
+def sharded_demo_file(folder: Path, spares: dict | None = None, **sections) -> str:
+    """The demo's config file written in `folder` (its store there): FIXED classes, no upper levels, `spares` in
+    two shards with `spares` keys over them; `sections`: top-level sections updated (backtest, scale...)."""
+    data = yaml.safe_load((ROOT / "config" / "planning.yaml").read_text())
+    data["inputs"]["folder"] = str(DEMO)
+    data["store"]["path"] = str(folder / "store")
+    data["hierarchy"] = {"upper_levels": []}
+    for name, keys in FIXED.items():
+        data["product_classes"][name].update(keys)
+    data["product_classes"]["spares"].update({"scale": {"shards": 2}, **(spares or {})})
+    for name, keys in sections.items():
+        data[name] = {**(data.get(name) or {}), **keys}
+    path = folder / "planning.yaml"
+    path.write_text(yaml.safe_dump(data))
+    return str(path)
+
+
 # the demo with `spares` deciding its strategy by the backtest (auto) and every other class fixed, no upper levels
 SPARES_AUTO = {
     "consumables": {"seasonality": "none"},

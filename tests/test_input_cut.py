@@ -15,8 +15,7 @@ from pathlib import Path
 import dagster as dg
 import pandas as pd
 import pytest
-import yaml
-from stage_runs import DEMO, demo_config
+from stage_runs import DEMO, FIXED, demo_config, sharded_demo_file
 
 from pipelines.engines.class_rows import class_map, class_rows
 from pipelines.engines.history_files import load_raw_history
@@ -26,12 +25,6 @@ from pipelines.stages.master_data import load_products
 
 ROOT = Path(__file__).resolve().parents[1]
 CYCLE = "2026-11-30"
-# what a shard cannot decide alone, fixed (as tests/test_shards.py), so spares may be cut into shards
-FIXED = {
-    "consumables": {"seasonality": "none"},
-    "seasonal": {"window": 52, "method": "pooled", "strategy": "top_down", "seasonality": "none"},
-    "spares": {"strategy": "mint_shrink", "seasonality": "none"},
-}
 
 
 def _config(tmp: Path, folder: Path = DEMO, shards: int = 3):
@@ -140,17 +133,7 @@ def test_a_killed_cutter_leaves_no_part_and_the_next_one_cuts(tmp_path):
 
 
 def _graph_config(tmp: Path, cut: bool) -> str:
-    data = yaml.safe_load((ROOT / "config" / "planning.yaml").read_text())
-    data["inputs"]["folder"] = str(DEMO)
-    data["store"]["path"] = str(tmp / "store")
-    data["hierarchy"] = {"upper_levels": []}
-    for name, keys in FIXED.items():
-        data["product_classes"][name].update(keys)
-    data["product_classes"]["spares"]["scale"] = {"shards": 2}
-    data["scale"] = {"cut_inputs": cut}
-    path = tmp / "planning.yaml"
-    path.write_text(yaml.safe_dump(data))
-    return str(path)
+    return sharded_demo_file(tmp, scale={"cut_inputs": cut})
 
 
 @pytest.mark.graph

@@ -10,7 +10,7 @@ from pathlib import Path
 
 import dagster as dg
 import pytest
-import yaml
+from stage_runs import sharded_demo_file
 
 from pipelines.store import open_store
 from pipelines.store.pending import PENDING, PROVEN, mark_pending, settle_shard, shard_mark
@@ -18,11 +18,6 @@ from pipelines.store.pending import PENDING, PROVEN, mark_pending, settle_shard,
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "data" / "demo"
 CYCLE = "2026-11-30"
-FIXED = {  # as tests/test_shards.py: what a shard cannot decide alone, fixed
-    "consumables": {"seasonality": "none"},
-    "seasonal": {"window": 52, "method": "pooled", "strategy": "top_down", "seasonality": "none"},
-    "spares": {"strategy": "mint_shrink", "seasonality": "none"},
-}
 SHARDS = ["spares~1of2", "spares~2of2"]
 EVERY = ["consumables", "seasonal", *SHARDS]
 
@@ -46,16 +41,7 @@ def test_the_last_shard_to_settle_sees_no_other_pending(tmp_path):
 
 
 def _config(tmp: Path) -> str:
-    data = yaml.safe_load((ROOT / "config" / "planning.yaml").read_text())
-    data["inputs"]["folder"] = str(DEMO)
-    data["store"]["path"] = str(tmp / "store")
-    data["hierarchy"] = {"upper_levels": []}
-    for name, keys in FIXED.items():
-        data["product_classes"][name].update(keys)
-    data["product_classes"]["spares"]["scale"] = {"shards": 2}
-    path = tmp / "planning.yaml"
-    path.write_text(yaml.safe_dump(data))
-    return str(path)
+    return sharded_demo_file(tmp)
 
 
 @pytest.mark.graph

@@ -10,8 +10,7 @@ from pathlib import Path
 import dagster as dg
 import pandas as pd
 import pytest
-import yaml
-from stage_runs import DEMO, class_step_runs, demo_config, run_partition, spares_auto_runs
+from stage_runs import DEMO, FIXED, class_step_runs, demo_config, run_partition, sharded_demo_file, spares_auto_runs
 
 from pipelines.cycle_command import chosen_partitions
 from pipelines.engines.class_rows import class_map, class_rows
@@ -32,12 +31,6 @@ from pipelines.stages.master_data import load_customer_spans, load_products
 
 ROOT = Path(__file__).resolve().parents[1]
 CYCLE = "2026-11-30"
-# what a shard cannot decide alone, fixed: a strategy, a window and method, no seasonality group, no upper levels
-FIXED = {
-    "consumables": {"seasonality": "none"},
-    "seasonal": {"window": 52, "method": "pooled", "strategy": "top_down", "seasonality": "none"},
-    "spares": {"strategy": "mint_shrink", "seasonality": "none"},
-}
 NO_UPPER_LEVELS = {"upper_levels": []}
 
 
@@ -281,15 +274,7 @@ def test_the_last_shard_to_finish_completes_the_class(tmp_path):
     from pipelines.runner import run_partitions
     from pipelines.store import open_store
 
-    data = yaml.safe_load((ROOT / "config" / "planning.yaml").read_text())
-    data["inputs"]["folder"] = str(DEMO)
-    data["store"]["path"] = str(tmp_path / "store")
-    data["hierarchy"] = NO_UPPER_LEVELS
-    for name, keys in FIXED.items():
-        data["product_classes"][name].update(keys)
-    data["product_classes"]["spares"]["scale"] = {"shards": 2}
-    path = tmp_path / "planning.yaml"
-    path.write_text(yaml.safe_dump(data))
+    path = sharded_demo_file(tmp_path)
     defs, instance = build_definitions(str(path)), dg.DagsterInstance.ephemeral()
     every = ["consumables", "seasonal", "spares~1of2", "spares~2of2"]
     store = open_store(tmp_path / "store")
@@ -313,16 +298,9 @@ def test_the_runner_backtests_every_shard_before_any_decides(tmp_path):
     from pipelines.runner import PartitionOutcome, run_partitions
     from pipelines.store import open_store
 
-    data = yaml.safe_load((ROOT / "config" / "planning.yaml").read_text())
-    data["inputs"]["folder"] = str(DEMO)
-    data["store"]["path"] = str(tmp_path / "store")
-    data["hierarchy"] = NO_UPPER_LEVELS
-    data["backtest"].update(origins=2, strategies=["top_down", "bottom_up"])  # a small backtest: two strategies
-    for name, keys in FIXED.items():
-        data["product_classes"][name].update(keys)
-    data["product_classes"]["spares"].update(strategy="auto", scale={"shards": 2})
-    path = tmp_path / "planning.yaml"
-    path.write_text(yaml.safe_dump(data))
+    # a small backtest: two strategies
+    path = sharded_demo_file(tmp_path, {"strategy": "auto"}, backtest={"origins": 2,
+                                                                       "strategies": ["top_down", "bottom_up"]})
     defs, instance = build_definitions(str(path)), dg.DagsterInstance.ephemeral()
     every = ["consumables", "seasonal", "spares~1of2", "spares~2of2"]
     # shard 1 alone: its backtest runs, its strategy_choice stops on shard 2's missing backtest, saying what to run
