@@ -63,7 +63,9 @@ def cycle_run_requests(
     asset `graph`, a shard of a class deciding at class level is requested up to the backtest only (its second
     phase: `class_step_sensor`)."""
     plan = run_plan(config, classes)[0] if config is not None else [PlannedRun(c) for c in classes]
-    return [_request(cycle, r, f"{run_key_prefix}:{cycle}|{r.key}", graph) for r in plan]
+    # each phase's assets resolved once, not once per shard
+    selections = {phase: phase_selection(graph, phase, None) for phase in {r.phase for r in plan} if phase}
+    return [_request(cycle, r, f"{run_key_prefix}:{cycle}|{r.key}", selections.get(r.phase)) for r in plan]
 
 
 def _graph(context):
@@ -71,13 +73,13 @@ def _graph(context):
     return context.repository_def.asset_graph if context.repository_def is not None else None
 
 
-def _request(cycle: str, planned: PlannedRun, run_key: str, graph, tags: dict | None = None) -> dg.RunRequest:
+def _request(cycle: str, planned: PlannedRun, run_key: str, selection, tags: dict | None = None) -> dg.RunRequest:
     phase = {PHASE_TAG: planned.phase} if planned.phase else {}
     return dg.RunRequest(
         run_key=run_key,
         partition_key=partition_key(cycle, planned.key),
         tags={"cycle": cycle, "product_class": planned.key, **phase, **(tags or {})},
-        asset_selection=phase_selection(graph, planned.phase, None) if planned.phase else None,
+        asset_selection=selection,  # a phase's assets (None: the whole graph)
     )
 
 
@@ -195,13 +197,15 @@ def class_step_sensor(context: dg.SensorEvaluationContext, planning: PlanningCon
     newest: dict[tuple[str, str], dg.DagsterRun] = {}
     for run in firsts:  # newest first
         newest.setdefault((run.tags.get("cycle", ""), run.tags.get("product_class", "")), run)
-    requests, notes = [], []
+    requests, notes, second = [], [], None  # the second phase's assets, resolved once when first needed
     for cycle in sorted({c for c, _ in newest}, reverse=True):
         for name in phased:
             ready, note = _second_phase(context.instance, config, cycle, name, newest)
             notes += [note] if note else []
+            if ready and second is None:
+                second = phase_selection(_graph(context), FROM_CHOICE, None)
             requests += [_request(cycle, PlannedRun(k, FROM_CHOICE), f"{CLASS_STEP_SENSOR}:{cycle}|{k}|{ready}",
-                                  _graph(context), {AFTER_TAG: ready}) for k in
+                                  second, {AFTER_TAG: ready}) for k in
                          (partition_classes(config, [name]) if ready else [])]
     return requests or dg.SkipReason("; ".join(notes) or "no shard's run up to the backtest was requested")
 
