@@ -194,12 +194,13 @@ def run_partitions(
     # a class cut into shards that decides at class level runs in two phases (pipelines/phases.py)
     config, graph, i = defs.resources["planning"].config, defs.resolve_asset_graph(), 0
     batches = run_plan(config, classes)
+    chosen_of = {p: phase_selection(graph, p, selection) for p in {r.phase for b in batches for r in b} | {TO_BACKTEST}}
     for number, batch in enumerate(batches):
         if number:
             done = {r.key: r.label not in run.results or run.results[r.label].success for r in batches[0] if r.phase}
-            batch = second_runs(config, store, cycle, batch, done, phase_selection(graph, TO_BACKTEST, selection), say)
+            batch = second_runs(config, store, cycle, batch, done, chosen_of[TO_BACKTEST], say)
         for planned in batch:
-            chosen = phase_selection(graph, planned.phase, selection)
+            chosen = chosen_of[planned.phase]
             if chosen == []:  # a phase the selection holds nothing of (rebuild --from strategy_choice: no backtest)
                 continue
             i, run_id = i + 1, str(uuid.uuid4())
@@ -314,12 +315,13 @@ def run_partitions_parallel(
     graph, wanted = defs.resolve_asset_graph(), rebuild_selection(defs, first) if first else None
     config, outcomes, count = defs.resources["planning"].config, [], 0
     batches = run_plan(config, classes)
+    chosen_of = {p: phase_selection(graph, p, wanted) for p in {r.phase for b in batches for r in b} | {TO_BACKTEST}}
     for number, batch in enumerate(batches):
         if number:
             done = {o.product_class: o.success and o.exit_code == 0 for o in outcomes}
             done = {r.key: done.get(r.label, True) for r in batches[0] if r.phase}
-            batch = second_runs(config, store, cycle, batch, done, phase_selection(graph, TO_BACKTEST, wanted))
-        runs = [r for r in batch if phase_selection(graph, r.phase, wanted) != []]
+            batch = second_runs(config, store, cycle, batch, done, chosen_of[TO_BACKTEST])
+        runs = [r for r in batch if chosen_of[r.phase] != []]
         waiting = [(count + j, r) for j, r in enumerate(runs, 1)]
         count += len(runs)
         outcomes += _run_batch(config_path, instance, cycle, waiting, parallel, first, run_config, on_start, on_done,
