@@ -21,7 +21,20 @@ def find_shares_not_summing_to_one(target: pd.DataFrame, tolerance: float = SHAR
     target: per-period shares (`reinitialized_target`: parent keys, period_start,
     share, zero_reason). A period summing to 1 must have no reason; an
     all-zero period must have its reason on every row.
+
+    The parent periods are first judged on integers (bincount over the rank of the parent key and the period);
+    only those not clearly passing (a sum off 1 by more than half the tolerance, or a reason missing) are
+    judged again below, on their own rows, so the rows named and their sums are those of the whole table.
     """
+    if len(target) and ids_in(target, (PARENT_ID,)):
+        rows, position = _parent_periods_in_doubt(target, tolerance)
+        out = _shares_not_summing_to_one(target.iloc[rows], tolerance)
+        out.index = position[out.index.to_numpy()]  # each parent period's row number among all of the table's
+        return out
+    return _shares_not_summing_to_one(target, tolerance)
+
+
+def _shares_not_summing_to_one(target: pd.DataFrame, tolerance: float) -> pd.DataFrame:
     t = target.assign(
         has_reason=target["zero_reason"].notna(),
         nonzero=target["share"] != 0,
@@ -49,6 +62,31 @@ def find_shares_not_summing_to_one(target: pd.DataFrame, tolerance: float = SHAR
     sums_to_one = ((sums["share_sum"] - 1.0).abs() <= tolerance) & (sums["with_reason"] == 0)
     zero_with_reason = (sums["nonzero"] == 0) & (sums["with_reason"] == sums["children"])
     return sums[~(sums_to_one | zero_with_reason)].drop(columns=["nonzero"])
+
+
+def _parent_periods_in_doubt(target: pd.DataFrame, tolerance: float) -> tuple[np.ndarray, np.ndarray]:
+    """(positions of the rows of the parent periods that do not clearly pass `find_shares_not_summing_to_one`,
+    the row number of each of those parent periods, in key order, among all the table's parent periods).
+
+    With none in doubt the rows of the first parent period are given, so the judgement below keeps its columns.
+    """
+    rank = key_rank(target, PARENT)  # the groups of the text parent key, in its order, as below
+    when, periods = pd.factorize(target["period_start"].to_numpy(), sort=True)
+    key = rank * len(periods) + when  # (parent key, period) in key order
+    present = np.zeros(int(key.max()) + 1, dtype=bool)
+    present[key] = True
+    number = np.cumsum(present) - 1  # each parent period's row number in key order
+    group = number[key]
+    n = int(number[-1]) + 1
+    has_reason = np.bincount(group, weights=target["zero_reason"].notna().to_numpy(), minlength=n)
+    share = target["share"].to_numpy(float)
+    with np.errstate(invalid="ignore"):
+        passes = (np.abs(np.bincount(group, weights=share, minlength=n) - 1.0) <= tolerance / 2) & (has_reason == 0)
+    zero = (np.bincount(group, weights=share != 0, minlength=n) == 0) & (has_reason == np.bincount(group, minlength=n))
+    doubt = ~(passes | zero)
+    if not doubt.any():
+        return np.flatnonzero(group == group[0]), np.zeros(1, np.int64)
+    return np.flatnonzero(doubt[group]), np.flatnonzero(doubt)
 
 
 def find_volume_after_phase_out(leaf: pd.DataFrame, spans: pd.DataFrame, period: str) -> pd.DataFrame:
