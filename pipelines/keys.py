@@ -273,6 +273,16 @@ def rows_in(frame: pd.DataFrame, table: pd.DataFrame, cols: list[str] = LEAF) ->
     return pos[ids]
 
 
+def part_rows(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame) -> np.ndarray:
+    """Row position in `table` of each row's `cols` key, a part of its leaf key (e.g. the product), -1 where
+    absent: like `lookup`, but through the frame's `leaf_id` (else `parent_id`), looking up each id's key once."""
+    id_col = next((c for c in (LEAF_ID, PARENT_ID) if ids_in(frame, (c,))), None)
+    if id_col is None or not len(frame):
+        return lookup(frame, cols, table)
+    ids = frame[id_col].to_numpy(np.int64)
+    return lookup(_keys_of_ids(frame, ids, cols), cols, table)[ids]
+
+
 def key_rank(frame: pd.DataFrame, cols: list[str] = LEAF) -> np.ndarray:
     """Per row, a rank of its `cols` key (LEAF or PARENT) in text order (not dense): sorting or
     grouping by it orders rows as the text keys would, but sorts the distinct keys only (through the rows' ids;

@@ -12,7 +12,7 @@ import pandas as pd
 
 from pipelines.calendar import period_ordinal, span_bounds
 from pipelines.checks import SHARE_TOLERANCE
-from pipelines.keys import LEAF, PARENT, PARENT_ID, ids_in, key_rank, lookup, rows_in
+from pipelines.keys import LEAF, PARENT, PARENT_ID, ids_in, key_rank, lookup, part_rows, rows_in
 
 
 def find_shares_not_summing_to_one(target: pd.DataFrame, tolerance: float = SHARE_TOLERANCE) -> pd.DataFrame:
@@ -89,33 +89,44 @@ def _parent_periods_in_doubt(target: pd.DataFrame, tolerance: float) -> tuple[np
     return np.flatnonzero(doubt[group]), np.flatnonzero(doubt)
 
 
-def find_volume_after_phase_out(leaf: pd.DataFrame, spans: pd.DataFrame, period: str) -> pd.DataFrame:
-    """Leaf forecast rows with volume in a period after the customer's span ended."""
+def find_volume_after_phase_out(
+    leaf: pd.DataFrame, spans: pd.DataFrame, period: str, span_rows: np.ndarray | None = None
+) -> pd.DataFrame:
+    """Leaf forecast rows with volume in a period after the customer's span ended.
+
+    span_rows: each leaf row's row in `spans` (`rows_in`), when the caller has it."""
     _, to_ord = span_bounds(spans, period)
-    pos = rows_in(leaf, spans, LEAF)
+    pos = rows_in(leaf, spans, LEAF) if span_rows is None else span_rows
     end = np.where(pos >= 0, to_ord[np.clip(pos, 0, None)], np.nan)
     with np.errstate(invalid="ignore"):
         after = (period_ordinal(leaf["period_start"], period) > end) & (leaf["forecast"].to_numpy() != 0)
-    out = leaf.loc[after, LEAF + ["period_start", "forecast"]].copy()
+    rows = np.flatnonzero(after)  # the few rows first, then their columns: no copy of the whole table
+    out = leaf.iloc[rows][LEAF + ["period_start", "forecast"]].copy()
     out["active_to"] = spans["active_to"].to_numpy()[pos[after]] if after.any() else pd.Series(dtype="datetime64[ns]")
     return out
 
 
 def find_volume_outside_active_span(
-    parent: pd.DataFrame, leaf: pd.DataFrame, spans: pd.DataFrame, products: pd.DataFrame, period: str
+    parent: pd.DataFrame,
+    leaf: pd.DataFrame,
+    spans: pd.DataFrame,
+    products: pd.DataFrame,
+    period: str,
+    span_rows: np.ndarray | None = None,
 ) -> pd.DataFrame:
     """Forecast rows with volume where the customer span has not started or the product's span does not cover the
     period.
 
     Leaf rows are judged against their customer span's start and their product's
     span; parent rows against the product's span. (Volume after a customer
-    span's end is `find_volume_after_phase_out`.)
+    span's end is `find_volume_after_phase_out`.) span_rows: each leaf row's row in `spans`, when the caller
+    has it.
     """
     p_from, p_to = span_bounds(products, period)
     s_from, _ = span_bounds(spans, period)
 
     def product_bounds(frame: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
-        pos = lookup(frame, ["product"], products)
+        pos = part_rows(frame, ["product"], products)  # each id's product looked up once
         return (
             np.where(pos >= 0, p_from[np.clip(pos, 0, None)], np.nan),
             np.where(pos >= 0, p_to[np.clip(pos, 0, None)], np.nan),
@@ -127,14 +138,18 @@ def find_volume_outside_active_span(
         lo, hi = product_bounds(frame)
         why = np.full(len(frame), None, dtype=object)
         with np.errstate(invalid="ignore"):
-            why[(ords < lo) | (ords > hi)] = "product not active"
+            off = (ords < lo) | (ords > hi)
+            why[off] = "product not active"
             if grain == "leaf":
-                pos = rows_in(frame, spans, LEAF)
+                pos = rows_in(frame, spans, LEAF) if span_rows is None else span_rows
                 start = np.where(pos >= 0, s_from[np.clip(pos, 0, None)], np.nan)
-                why[(ords < start) & pd.isna(why)] = "customer span not started"
-        bad = pd.notna(why) & (frame["forecast"].to_numpy() != 0)
+                not_started = (ords < start) & ~off
+                why[not_started] = "customer span not started"
+                off |= not_started
+        bad = off & (frame["forecast"].to_numpy() != 0)
         keys = LEAF if grain == "leaf" else PARENT
-        out.append(frame.loc[bad, keys + ["period_start", "forecast"]].assign(grain=grain, why=why[bad]))
+        rows = frame.iloc[np.flatnonzero(bad)]
+        out.append(rows[keys + ["period_start", "forecast"]].assign(grain=grain, why=why[bad]))
     rows = [f for f in out if len(f)]
     return pd.concat(rows, ignore_index=True) if rows else out[1].iloc[0:0]
 
