@@ -188,7 +188,7 @@ def find_active_parents_without_children(
     last = np.fmin(np.fmin(s_to, np.where(known, p_to[at], np.nan)), cycle_ord + horizon - 1)
     active = known & (first <= last)
     expected = spans.loc[active].groupby(PARENT, sort=True).size().rename("active_spans")
-    children = leaf.groupby(PARENT, sort=True)["customer"].nunique().rename("children_in_forecast")
+    children = _distinct_leaves(leaf).groupby(PARENT, sort=True)["customer"].nunique().rename("children_in_forecast")
     periods = parent.groupby(PARENT, sort=True).size().rename("parent_periods")
     out = pd.concat([expected, children, periods], axis=1).fillna(0).astype(np.int64)
     why = np.select(
@@ -206,6 +206,16 @@ def find_active_parents_without_children(
     )
     out["why"] = why
     return out[why != ""].reset_index()
+
+
+def _distinct_leaves(leaf: pd.DataFrame) -> pd.DataFrame:
+    """The leaf keys of `leaf` without the rows that repeat the row before (a leaf's horizon periods): every
+    distinct key is kept, so a count of distinct customers per parent is that of the whole table."""
+    keys = [leaf[c].to_numpy(object) for c in LEAF]
+    new = np.ones(len(leaf), dtype=bool)
+    if len(leaf) > 1:
+        new[1:] = (keys[0][1:] != keys[0][:-1]) | (keys[1][1:] != keys[1][:-1]) | (keys[2][1:] != keys[2][:-1])
+    return pd.DataFrame({c: k[new] for c, k in zip(LEAF, keys, strict=True)})
 
 
 def find_unaccounted_lines(raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: pd.DataFrame) -> pd.DataFrame:
