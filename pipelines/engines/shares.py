@@ -280,9 +280,8 @@ def _history_shares(
             if pc.method in ("mean_of_ratios", "smoothed"):
                 rows = (c_age[est], c_qty[est], member_of[c_child[est]], parent_code[members], n_parents, w)
                 s = np.zeros(n)
-                s[members] = (
-                    mean_of_ratios(*rows) if pc.method == "mean_of_ratios" else smoothed_proportions(*rows, pc.smoothing)
-                )
+                by_ratio = pc.method == "mean_of_ratios"
+                s[members] = mean_of_ratios(*rows) if by_ratio else smoothed_proportions(*rows, pc.smoothing)
             else:  # pooled; and the pooled summary (and per-period fallback) of the per-period methods
                 s = np.divide(cv, pv, out=np.zeros(n), where=pv > 0) * established
             out["history_share"][take] = s[take]

@@ -390,15 +390,11 @@ def forecast_checks(
     """The forecast's checks, judged from its two tables and the master data (`pipelines.engines.proofs`)."""
     negatives = [find_negative(parent_forecast).assign(grain="parent"), find_negative(statistical_forecast)]
     negatives = pd.concat([negatives[0], negatives[1].assign(grain="leaf")], ignore_index=True)
-    span_rows = rows_in(statistical_forecast, customer_spans, LEAF)  # each leaf row's span, found once for both
+    leaf, spans, span_rows = statistical_forecast, customer_spans, rows_in(statistical_forecast, customer_spans, LEAF)
     return {
-        NO_VOLUME_AFTER_PHASE_OUT: CheckRows(
-            find_volume_after_phase_out(statistical_forecast, customer_spans, period, span_rows)
-        ),
+        NO_VOLUME_AFTER_PHASE_OUT: CheckRows(find_volume_after_phase_out(leaf, spans, period, span_rows)),
         NO_VOLUME_OUTSIDE_ACTIVE_SPAN: CheckRows(
-            find_volume_outside_active_span(
-                parent_forecast, statistical_forecast, customer_spans, products, period, span_rows
-            )
+            find_volume_outside_active_span(parent_forecast, leaf, spans, products, period, span_rows)
         ),
         NO_NEGATIVE_FORECAST: CheckRows(negatives),
     }
