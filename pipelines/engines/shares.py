@@ -84,14 +84,14 @@ SHARE_COLUMNS = LEAF + [
 
 
 def window_volumes(age: np.ndarray, qty: np.ndarray, child: np.ndarray, n_children: int, window: int) -> np.ndarray:
-    """Volume of each child over the last `window` periods (age 1 = the period before the cycle)."""
-    inside = (age >= 1) & (age <= window)
-    return np.bincount(child[inside], weights=qty[inside], minlength=n_children)
+    """Volume of each child over the last `window` periods (age 1 = the period before the cycle); the rows
+    outside add 0.0 (the same sums as leaving them out: a sum from 0.0 never turns -0.0)."""
+    return np.bincount(child, weights=np.where((age >= 1) & (age <= window), qty, 0.0), minlength=n_children)
 
 
 def parent_sums_by_column(values: np.ndarray, parent_of_child: np.ndarray, n_parents: int) -> np.ndarray:
-    """(n_parents, k): each column of `values` (n_children, k) summed per parent, the children added in their
-    order (the sums `np.add.at` gives, a column at a time by bincount, far faster)."""
+    """(n_parents, k): each column of `values` (n_children, k) summed per parent, children in order (the sums of
+    `np.add.at`, a column at a time by bincount: far faster)."""
     columns = np.ascontiguousarray(values.T)
     out = np.empty((values.shape[1], n_parents))
     for col in range(values.shape[1]):  # the window's periods, not the series
@@ -229,12 +229,9 @@ def _history_shares(
     cycle_ord: int,
     child_of_row: np.ndarray | None = None,
 ) -> dict[str, np.ndarray]:
-    """History share, window and fallback of every child (new children: share 0).
-
-    Each class reads only its own children's rows inside its longest window (the rows are cut once, in
-    their order, so every child's and parent's sums add the same values in the same order as over the
-    whole history). child_of_row: each history row's child (-1: none), when the caller has it.
-    """
+    """History share, window and fallback of every child (new children: share 0). Each class reads only its
+    children's rows inside its longest window, in their order (so every sum adds the same values in the same
+    order as over the whole history). child_of_row: each history row's child (-1: none), when known."""
     period = settings.period
     n = len(children)
     parent_code, parents = factorize(children, PARENT)
@@ -247,7 +244,16 @@ def _history_shares(
     row_ok = (child_of_row >= 0) & (age >= 1) & (age <= longest)
     row_ok &= ~shortage_periods(history, settings.exclude_shortages)
     keep = np.flatnonzero(row_ok)
-    child, age = child_of_row[keep], age[keep]
+    child = child_of_row[keep]
+    # the rows of each class together, each class's in their order (a stable sort on the class): one gather
+    class_of_child = np.full(n, len(settings.rules), dtype=np.int16)
+    for k, name in enumerate(settings.rules):
+        class_of_child[classes == name] = k
+    row_class = class_of_child[child]
+    order = np.argsort(row_class, kind="stable")
+    bounds = np.searchsorted(row_class[order], np.arange(len(settings.rules) + 1))
+    keep = keep[order]
+    child, age = child[order], age[keep]
     qty = history["quantity"].to_numpy(float)[keep]
 
     out = {
@@ -259,14 +265,14 @@ def _history_shares(
         "method": np.empty(n, dtype=object),
         "window": np.zeros(n, dtype=np.int64),
     }
-    for name in settings.rules:  # a few classes, not a loop over series
-        in_class = classes == name
+    for k, name in enumerate(settings.rules):  # a few classes, not a loop over series
+        in_class = class_of_child == k
         if not in_class.any():
             continue
         pc = settings.rule(name)
         out["method"][in_class] = pc.method
         out["window"][in_class] = pc.window
-        mine = in_class[child]  # the class's rows, in their order
+        mine = slice(bounds[k], bounds[k + 1])  # the class's rows, in their order
         c_child, c_age, c_qty = child[mine], age[mine], qty[mine]
         est = established[c_child]
         members = np.flatnonzero(in_class & established)  # the class's established children, in child order
@@ -321,9 +327,8 @@ def child_frame(
     cycle_date: pd.Timestamp,
     keys: Coded | None = None,
 ) -> ChildFrame:
-    """The window- and method-free part of `compute_shares` (it reads the lifecycle settings only).
-
-    keys: `coded(history)`, when the caller has it (the history's ids are coded once)."""
+    """The window- and method-free part of `compute_shares` (it reads the lifecycle settings only); keys:
+    `coded(history)`, when the caller has it (the history's ids are coded once)."""
     settings = ShareSettings.of(settings)
     keys = keys if keys is not None else coded(history)
     children = complete_children(children, settings, cycle_date)
@@ -355,8 +360,7 @@ def compute_shares(
     columns; see `complete_children` for the defaults of absent ones).
     frame: `child_frame` of the same history, children and cycle date, and of
     settings with the same lifecycle keys (made once for many windows and methods).
-    keys: `coded(history)`, when the caller has it.
-    """
+    keys: `coded(history)`, when the caller has it."""
     settings = ShareSettings.of(settings)
     period = settings.period
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
