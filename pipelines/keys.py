@@ -98,13 +98,15 @@ def _ranks(leaves: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
     return rank, np.cumsum(new_parent) - 1
 
 
-def extend_ids(children: pd.DataFrame, history: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+def extend_ids(
+    children: pd.DataFrame, history: pd.DataFrame, keys: Coded | None = None
+) -> tuple[np.ndarray, np.ndarray]:
     """(leaf_id, parent_id) of each row of `children` (leaf keys): the history's ids where its leaf or parent
     has history, else new ids after the history's, in key order (a new customer, a parent with no history).
 
-    The share table carries them; the stages after it read its ids.
+    The share table carries them; the stages after it read its ids. keys: `coded(history)`, when the caller has it.
     """
-    c = coded(history)
+    c = keys if keys is not None else coded(history)
     leaf = lookup(children, LEAF, c.leaves)
     parent = lookup(children, PARENT, c.parents)
     for ids, cols, base in ((leaf, LEAF, len(c.leaves)), (parent, PARENT, len(c.parents))):
@@ -269,6 +271,16 @@ def rows_in(frame: pd.DataFrame, table: pd.DataFrame, cols: list[str] = LEAF) ->
     pos = np.full(max(int(ids.max()), int(held.max())) + 1, -1, dtype=np.int64)
     pos[held] = np.arange(len(held))
     return pos[ids]
+
+
+def part_rows(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame) -> np.ndarray:
+    """Row position in `table` of each row's `cols` key, a part of its leaf key (e.g. the product), -1 where
+    absent: like `lookup`, but through the frame's `leaf_id` (else `parent_id`), looking up each id's key once."""
+    id_col = next((c for c in (LEAF_ID, PARENT_ID) if ids_in(frame, (c,))), None)
+    if id_col is None or not len(frame):
+        return lookup(frame, cols, table)
+    ids = frame[id_col].to_numpy(np.int64)
+    return lookup(_keys_of_ids(frame, ids, cols), cols, table)[ids]
 
 
 def key_rank(frame: pd.DataFrame, cols: list[str] = LEAF) -> np.ndarray:

@@ -7,7 +7,7 @@ import pandas as pd
 
 from pipelines.calendar import ordinal_to_start, period_ordinal, span_bounds
 from pipelines.engines.share_settings import ShareSettings
-from pipelines.keys import LEAF, coded, lookup
+from pipelines.keys import LEAF, Coded, coded, lookup
 
 
 def active_children(
@@ -16,6 +16,7 @@ def active_children(
     history: pd.DataFrame,
     settings: ShareSettings,
     cycle_date: pd.Timestamp,
+    keys: Coded | None = None,
 ) -> pd.DataFrame:
     """The children that can receive a share: customer spans active in any period of the horizon.
 
@@ -27,7 +28,7 @@ def active_children(
     history: lifecycle history, to count each child's own distinct periods
     (a period with an own row and a mapped successor row is one period).
     Columns: leaf keys, product_class, first_active_period, last_active_period,
-    own_periods, reference_customer, scale, initial_share.
+    own_periods, reference_customer, scale, initial_share. keys: `coded(history)`, when the caller has it.
     """
     settings = ShareSettings.of(settings)
     period = settings.period
@@ -46,7 +47,7 @@ def active_children(
     out["product_class"] = out["product"].map(products.set_index("product")["product_class"]).to_numpy()
     out["first_active_period"] = ordinal_to_start(first[ok].astype(np.int64), period)
     out["last_active_period"] = ordinal_to_start(last[ok].astype(np.int64), period)
-    out["own_periods"] = own_periods(history, out, period)
+    out["own_periods"] = own_periods(history, out, period, keys)
     for column in ("reference_customer", "scale", "initial_share"):
         values = spans[column] if column in spans.columns else pd.Series(np.nan, index=spans.index)
         out[column] = values[ok].to_numpy()
@@ -55,17 +56,29 @@ def active_children(
     return out
 
 
-def own_periods(history: pd.DataFrame, children: pd.DataFrame, period: str) -> np.ndarray:
-    """Distinct periods of history of each child (0 without any), counted on integer codes."""
+def own_periods(history: pd.DataFrame, children: pd.DataFrame, period: str, keys: Coded | None = None) -> np.ndarray:
+    """Distinct periods of history of each child (0 without any), counted on integer codes.
+
+    A history sorted by leaf id and period (as the lifecycle stage writes it) is counted by its runs; any
+    other order through a leaf x period grid.
+    """
     if history.empty:
         return np.zeros(len(children), dtype=np.int64)
-    c = coded(history)
+    c = keys if keys is not None else coded(history)
     code, leaves = c.leaf, c.leaves
     ords = period_ordinal(history["period_start"], period)
-    lo = int(ords.min())
-    width = int(ords.max()) - lo + 1
-    seen = np.zeros(len(leaves) * width, dtype=bool)  # one cell per (leaf, period)
-    seen[code * width + (ords - lo)] = True
-    count = seen.reshape(len(leaves), width).sum(axis=1)
+    step_leaf, step_ord = np.diff(code), np.diff(ords)
+    if bool(np.all((step_leaf > 0) | ((step_leaf == 0) & (step_ord >= 0)))):
+        new = np.empty(len(code), dtype=bool)
+        new[0] = True
+        np.not_equal(step_leaf, 0, out=new[1:])
+        new[1:] |= step_ord != 0
+        count = np.bincount(code[new], minlength=len(leaves))
+    else:
+        lo = int(ords.min())
+        width = int(ords.max()) - lo + 1
+        seen = np.zeros(len(leaves) * width, dtype=bool)  # one cell per (leaf, period)
+        seen[code * width + (ords - lo)] = True
+        count = seen.reshape(len(leaves), width).sum(axis=1)
     pos = lookup(children, LEAF, leaves)
     return np.where(pos >= 0, count[np.clip(pos, 0, None)], 0).astype(np.int64)

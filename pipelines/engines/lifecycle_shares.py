@@ -158,14 +158,14 @@ def lifecycle_rules(children: pd.DataFrame, established: np.ndarray, settings: S
         "new customer (" + history_text[awaiting] + "): " + no_ref[awaiting]
         + "no reference customer or initial share, so no share until " + str(n_min) + " periods of history"
     )
-    detail[phase_in] = (
-        "share from history; active from " + pd.Series(first.strftime("%Y-%m-%d"), index=children.index)[phase_in]
-    )
-    detail[phase_out] = (
-        "share from history; active until " + pd.Series(last.strftime("%Y-%m-%d"), index=children.index)[phase_out]
-    )
+
+    def day(dates: pd.DatetimeIndex, rows: np.ndarray) -> pd.Series:  # only the rows' dates written as text
+        return pd.Series(dates[rows].strftime("%Y-%m-%d"), index=children.index[rows])
+
+    detail[phase_in] = "share from history; active from " + day(first, phase_in)
+    detail[phase_out] = "share from history; active until " + day(last, phase_out)
     late = (ref_ok | has_init | awaiting) & (first > starts[0])
-    detail[late] = detail[late] + "; active from " + pd.Series(first.strftime("%Y-%m-%d"), index=children.index)[late]
+    detail[late] = detail[late] + "; active from " + day(first, late)
     return rule, ref_pos, scale, initial, detail.to_numpy(object)
 
 

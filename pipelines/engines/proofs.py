@@ -12,7 +12,7 @@ import pandas as pd
 
 from pipelines.calendar import period_ordinal, span_bounds
 from pipelines.checks import SHARE_TOLERANCE
-from pipelines.keys import LEAF, PARENT, PARENT_ID, ids_in, key_rank, lookup, rows_in
+from pipelines.keys import LEAF, PARENT, PARENT_ID, ids_in, key_rank, lookup, part_rows, rows_in
 
 
 def find_shares_not_summing_to_one(target: pd.DataFrame, tolerance: float = SHARE_TOLERANCE) -> pd.DataFrame:
@@ -21,7 +21,20 @@ def find_shares_not_summing_to_one(target: pd.DataFrame, tolerance: float = SHAR
     target: per-period shares (`reinitialized_target`: parent keys, period_start,
     share, zero_reason). A period summing to 1 must have no reason; an
     all-zero period must have its reason on every row.
+
+    The parent periods are first judged on integers (bincount over the rank of the parent key and the period);
+    only those not clearly passing (a sum off 1 by more than half the tolerance, or a reason missing) are
+    judged again below, on their own rows, so the rows named and their sums are those of the whole table.
     """
+    if len(target) and ids_in(target, (PARENT_ID,)):
+        rows, position = _parent_periods_in_doubt(target, tolerance)
+        out = _shares_not_summing_to_one(target.iloc[rows], tolerance)
+        out.index = position[out.index.to_numpy()]  # each parent period's row number among all of the table's
+        return out
+    return _shares_not_summing_to_one(target, tolerance)
+
+
+def _shares_not_summing_to_one(target: pd.DataFrame, tolerance: float) -> pd.DataFrame:
     t = target.assign(
         has_reason=target["zero_reason"].notna(),
         nonzero=target["share"] != 0,
@@ -51,33 +64,69 @@ def find_shares_not_summing_to_one(target: pd.DataFrame, tolerance: float = SHAR
     return sums[~(sums_to_one | zero_with_reason)].drop(columns=["nonzero"])
 
 
-def find_volume_after_phase_out(leaf: pd.DataFrame, spans: pd.DataFrame, period: str) -> pd.DataFrame:
-    """Leaf forecast rows with volume in a period after the customer's span ended."""
+def _parent_periods_in_doubt(target: pd.DataFrame, tolerance: float) -> tuple[np.ndarray, np.ndarray]:
+    """(positions of the rows of the parent periods that do not clearly pass `find_shares_not_summing_to_one`,
+    the row number of each of those parent periods, in key order, among all the table's parent periods).
+
+    With none in doubt the rows of the first parent period are given, so the judgement below keeps its columns.
+    """
+    rank = key_rank(target, PARENT)  # the groups of the text parent key, in its order, as below
+    when, periods = pd.factorize(target["period_start"].to_numpy(), sort=True)
+    key = rank * len(periods) + when  # (parent key, period) in key order
+    present = np.zeros(int(key.max()) + 1, dtype=bool)
+    present[key] = True
+    number = np.cumsum(present) - 1  # each parent period's row number in key order
+    group = number[key]
+    n = int(number[-1]) + 1
+    has_reason = np.bincount(group, weights=target["zero_reason"].notna().to_numpy(), minlength=n)
+    share = target["share"].to_numpy(float)
+    with np.errstate(invalid="ignore"):
+        passes = (np.abs(np.bincount(group, weights=share, minlength=n) - 1.0) <= tolerance / 2) & (has_reason == 0)
+    zero = (np.bincount(group, weights=share != 0, minlength=n) == 0) & (has_reason == np.bincount(group, minlength=n))
+    doubt = ~(passes | zero)
+    if not doubt.any():
+        return np.flatnonzero(group == group[0]), np.zeros(1, np.int64)
+    return np.flatnonzero(doubt[group]), np.flatnonzero(doubt)
+
+
+def find_volume_after_phase_out(
+    leaf: pd.DataFrame, spans: pd.DataFrame, period: str, span_rows: np.ndarray | None = None
+) -> pd.DataFrame:
+    """Leaf forecast rows with volume in a period after the customer's span ended.
+
+    span_rows: each leaf row's row in `spans` (`rows_in`), when the caller has it."""
     _, to_ord = span_bounds(spans, period)
-    pos = rows_in(leaf, spans, LEAF)
+    pos = rows_in(leaf, spans, LEAF) if span_rows is None else span_rows
     end = np.where(pos >= 0, to_ord[np.clip(pos, 0, None)], np.nan)
     with np.errstate(invalid="ignore"):
         after = (period_ordinal(leaf["period_start"], period) > end) & (leaf["forecast"].to_numpy() != 0)
-    out = leaf.loc[after, LEAF + ["period_start", "forecast"]].copy()
+    rows = np.flatnonzero(after)  # the few rows first, then their columns: no copy of the whole table
+    out = leaf.iloc[rows][LEAF + ["period_start", "forecast"]].copy()
     out["active_to"] = spans["active_to"].to_numpy()[pos[after]] if after.any() else pd.Series(dtype="datetime64[ns]")
     return out
 
 
 def find_volume_outside_active_span(
-    parent: pd.DataFrame, leaf: pd.DataFrame, spans: pd.DataFrame, products: pd.DataFrame, period: str
+    parent: pd.DataFrame,
+    leaf: pd.DataFrame,
+    spans: pd.DataFrame,
+    products: pd.DataFrame,
+    period: str,
+    span_rows: np.ndarray | None = None,
 ) -> pd.DataFrame:
     """Forecast rows with volume where the customer span has not started or the product's span does not cover the
     period.
 
     Leaf rows are judged against their customer span's start and their product's
     span; parent rows against the product's span. (Volume after a customer
-    span's end is `find_volume_after_phase_out`.)
+    span's end is `find_volume_after_phase_out`.) span_rows: each leaf row's row in `spans`, when the caller
+    has it.
     """
     p_from, p_to = span_bounds(products, period)
     s_from, _ = span_bounds(spans, period)
 
     def product_bounds(frame: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
-        pos = lookup(frame, ["product"], products)
+        pos = part_rows(frame, ["product"], products)  # each id's product looked up once
         return (
             np.where(pos >= 0, p_from[np.clip(pos, 0, None)], np.nan),
             np.where(pos >= 0, p_to[np.clip(pos, 0, None)], np.nan),
@@ -89,14 +138,18 @@ def find_volume_outside_active_span(
         lo, hi = product_bounds(frame)
         why = np.full(len(frame), None, dtype=object)
         with np.errstate(invalid="ignore"):
-            why[(ords < lo) | (ords > hi)] = "product not active"
+            off = (ords < lo) | (ords > hi)
+            why[off] = "product not active"
             if grain == "leaf":
-                pos = rows_in(frame, spans, LEAF)
+                pos = rows_in(frame, spans, LEAF) if span_rows is None else span_rows
                 start = np.where(pos >= 0, s_from[np.clip(pos, 0, None)], np.nan)
-                why[(ords < start) & pd.isna(why)] = "customer span not started"
-        bad = pd.notna(why) & (frame["forecast"].to_numpy() != 0)
+                not_started = (ords < start) & ~off
+                why[not_started] = "customer span not started"
+                off |= not_started
+        bad = off & (frame["forecast"].to_numpy() != 0)
         keys = LEAF if grain == "leaf" else PARENT
-        out.append(frame.loc[bad, keys + ["period_start", "forecast"]].assign(grain=grain, why=why[bad]))
+        rows = frame.iloc[np.flatnonzero(bad)]
+        out.append(rows[keys + ["period_start", "forecast"]].assign(grain=grain, why=why[bad]))
     rows = [f for f in out if len(f)]
     return pd.concat(rows, ignore_index=True) if rows else out[1].iloc[0:0]
 
@@ -135,7 +188,7 @@ def find_active_parents_without_children(
     last = np.fmin(np.fmin(s_to, np.where(known, p_to[at], np.nan)), cycle_ord + horizon - 1)
     active = known & (first <= last)
     expected = spans.loc[active].groupby(PARENT, sort=True).size().rename("active_spans")
-    children = leaf.groupby(PARENT, sort=True)["customer"].nunique().rename("children_in_forecast")
+    children = _distinct_leaves(leaf).groupby(PARENT, sort=True)["customer"].nunique().rename("children_in_forecast")
     periods = parent.groupby(PARENT, sort=True).size().rename("parent_periods")
     out = pd.concat([expected, children, periods], axis=1).fillna(0).astype(np.int64)
     why = np.select(
@@ -153,6 +206,16 @@ def find_active_parents_without_children(
     )
     out["why"] = why
     return out[why != ""].reset_index()
+
+
+def _distinct_leaves(leaf: pd.DataFrame) -> pd.DataFrame:
+    """The leaf keys of `leaf` without the rows that repeat the row before (a leaf's horizon periods): every
+    distinct key is kept, so a count of distinct customers per parent is that of the whole table."""
+    keys = [leaf[c].to_numpy(object) for c in LEAF]
+    new = np.ones(len(leaf), dtype=bool)
+    if len(leaf) > 1:
+        new[1:] = (keys[0][1:] != keys[0][:-1]) | (keys[1][1:] != keys[1][:-1]) | (keys[2][1:] != keys[2][:-1])
+    return pd.DataFrame({c: k[new] for c, k in zip(LEAF, keys, strict=True)})
 
 
 def find_unaccounted_lines(raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: pd.DataFrame) -> pd.DataFrame:

@@ -58,7 +58,7 @@ import pandas as pd
 from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal
 from pipelines.engines.lifecycle_shares import lifecycle_rules, split_shares
 from pipelines.engines.share_settings import ShareSettings
-from pipelines.keys import LEAF, LEAF_ID, PARENT, PARENT_ID, coded, extend_ids, factorize, row_ids
+from pipelines.keys import LEAF, LEAF_ID, PARENT, PARENT_ID, Coded, coded, extend_ids, factorize, ids_in, row_ids
 
 SHARE_COLUMNS = LEAF + [
     "cycle_date",
@@ -84,9 +84,19 @@ SHARE_COLUMNS = LEAF + [
 
 
 def window_volumes(age: np.ndarray, qty: np.ndarray, child: np.ndarray, n_children: int, window: int) -> np.ndarray:
-    """Volume of each child over the last `window` periods (age 1 = the period before the cycle)."""
-    inside = (age >= 1) & (age <= window)
-    return np.bincount(child[inside], weights=qty[inside], minlength=n_children)
+    """Volume of each child over the last `window` periods (age 1 = the period before the cycle); the rows
+    outside add 0.0 (the same sums as leaving them out: a sum from 0.0 never turns -0.0)."""
+    return np.bincount(child, weights=np.where((age >= 1) & (age <= window), qty, 0.0), minlength=n_children)
+
+
+def parent_sums_by_column(values: np.ndarray, parent_of_child: np.ndarray, n_parents: int) -> np.ndarray:
+    """(n_parents, k): each column of `values` (n_children, k) summed per parent, children in order (the sums of
+    `np.add.at`, a column at a time by bincount: far faster)."""
+    columns = np.ascontiguousarray(values.T)
+    out = np.empty((values.shape[1], n_parents))
+    for col in range(values.shape[1]):  # the window's periods, not the series
+        out[col] = np.bincount(parent_of_child, weights=columns[col], minlength=n_parents)
+    return out.T
 
 
 def period_proportions(
@@ -104,8 +114,7 @@ def period_proportions(
     # child volume per (child, period) and parent volume per (parent, period)
     child_cell = c * window + (a - 1)
     child_t = np.bincount(child_cell, weights=q, minlength=n_children * window).reshape(n_children, window)
-    parent_t = np.zeros((n_parents, window))
-    np.add.at(parent_t, parent_of_child, child_t)
+    parent_t = parent_sums_by_column(child_t, parent_of_child, n_parents)
     denominator = parent_t[parent_of_child]
     has_volume = denominator > 0
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -167,16 +176,22 @@ def shortage_periods(history: pd.DataFrame, exclude: bool) -> np.ndarray:
     flag = history["shortage"].to_numpy(bool)
     if not flag.any():
         return flag
-    _, parent = row_ids(history)  # parent x period on integers: parent id x the period's slot among the days
-    day = history["period_start"].to_numpy("datetime64[D]").view(np.int64)
+    parent = history[PARENT_ID].to_numpy() if ids_in(history, (PARENT_ID,)) else row_ids(history)[1]
+    flagged_parent = np.zeros(int(parent.max()) + 1, dtype=bool)
+    flagged_parent[parent[flag]] = True
+    rows = np.flatnonzero(flagged_parent[parent])  # only the rows of parents with a shortage can have one
+    # parent x period on integers: parent id x the period's slot among the days
+    day = history["period_start"].to_numpy()[rows].astype("datetime64[D]").view(np.int64)
     day = day - day.min()
     present = np.zeros(int(day.max()) + 1, dtype=bool)
     present[day] = True
     slot = np.cumsum(present) - 1
-    code = parent * int(slot[-1] + 1) + slot[day]
+    code = parent[rows].astype(np.int64) * int(slot[-1] + 1) + slot[day]
     short = np.zeros(int(code.max()) + 1, dtype=bool)
-    short[code[flag]] = True
-    return short[code]
+    short[code[flag[rows]]] = True
+    out = np.zeros(len(history), dtype=bool)
+    out[rows] = short[code]
+    return out
 
 
 def complete_children(children: pd.DataFrame, settings: ShareSettings, cycle_date: pd.Timestamp) -> pd.DataFrame:
@@ -207,19 +222,39 @@ def complete_children(children: pd.DataFrame, settings: ShareSettings, cycle_dat
 
 
 def _history_shares(
-    history: pd.DataFrame, children: pd.DataFrame, established: np.ndarray, settings: ShareSettings, cycle_ord: int
+    history: pd.DataFrame,
+    children: pd.DataFrame,
+    established: np.ndarray,
+    settings: ShareSettings,
+    cycle_ord: int,
+    child_of_row: np.ndarray | None = None,
 ) -> dict[str, np.ndarray]:
-    """History share, window and fallback of every child (new children: share 0)."""
+    """History share, window and fallback of every child (new children: share 0). Each class reads only its
+    children's rows inside its longest window, in their order (so every sum adds the same values in the same
+    order as over the whole history). child_of_row: each history row's child (-1: none), when known."""
     period = settings.period
     n = len(children)
     parent_code, parents = factorize(children, PARENT)
     n_parents = len(parents)
-    child_of_row = coded(history).leaf_rows(children)
-    row_ok = (child_of_row >= 0) & ~shortage_periods(history, settings.exclude_shortages)
-    child = child_of_row[row_ok]
-    qty = history["quantity"].to_numpy(float)[row_ok]
-    age = cycle_ord - period_ordinal(history["period_start"], period)[row_ok]
-    est_row = established[child]  # only established children's history makes the shares
+    if child_of_row is None:
+        child_of_row = coded(history).leaf_rows(children)
+    classes = children["product_class"].to_numpy(object)
+    longest = max((max((r.window, *r.fallback_windows)) for r in settings.rules.values()), default=0)
+    age = cycle_ord - period_ordinal(history["period_start"], period)
+    row_ok = (child_of_row >= 0) & (age >= 1) & (age <= longest)
+    row_ok &= ~shortage_periods(history, settings.exclude_shortages)
+    keep = np.flatnonzero(row_ok)
+    child = child_of_row[keep]
+    # the rows of each class together, each class's in their order (a stable sort on the class): one gather
+    class_of_child = np.full(n, len(settings.rules), dtype=np.int16)
+    for k, name in enumerate(settings.rules):
+        class_of_child[classes == name] = k
+    row_class = class_of_child[child]
+    order = np.argsort(row_class, kind="stable")
+    bounds = np.searchsorted(row_class[order], np.arange(len(settings.rules) + 1))
+    keep = keep[order]
+    child, age = child[order], age[keep]
+    qty = history["quantity"].to_numpy(float)[keep]
 
     out = {
         "history_share": np.zeros(n),
@@ -230,24 +265,29 @@ def _history_shares(
         "method": np.empty(n, dtype=object),
         "window": np.zeros(n, dtype=np.int64),
     }
-    for name in settings.rules:  # a few classes, not a loop over series
-        in_class = (children["product_class"] == name).to_numpy()
+    for k, name in enumerate(settings.rules):  # a few classes, not a loop over series
+        in_class = class_of_child == k
         if not in_class.any():
             continue
         pc = settings.rule(name)
         out["method"][in_class] = pc.method
         out["window"][in_class] = pc.window
+        mine = slice(bounds[k], bounds[k + 1])  # the class's rows, in their order
+        c_child, c_age, c_qty = child[mine], age[mine], qty[mine]
+        est = established[c_child]
+        members = np.flatnonzero(in_class & established)  # the class's established children, in child order
+        member_of = np.full(n, -1, dtype=np.int64)
+        member_of[members] = np.arange(len(members))
         decided = ~in_class  # children of other classes are not ours to decide
         for w in (pc.window, *pc.fallback_windows):
-            cv = window_volumes(age, qty, child, n, w)
+            cv = window_volumes(c_age, c_qty, c_child, n, w)
             pv = np.bincount(parent_code, weights=cv * established, minlength=n_parents)[parent_code]
             take = ~decided & (pv > 0)
-            if pc.method == "mean_of_ratios":
-                s = mean_of_ratios(age[est_row], qty[est_row], child[est_row], parent_code, n_parents, w)
-            elif pc.method == "smoothed":
-                s = smoothed_proportions(
-                    age[est_row], qty[est_row], child[est_row], parent_code, n_parents, w, pc.smoothing
-                )
+            if pc.method in ("mean_of_ratios", "smoothed"):
+                rows = (c_age[est], c_qty[est], member_of[c_child[est]], parent_code[members], n_parents, w)
+                s = np.zeros(n)
+                by_ratio = pc.method == "mean_of_ratios"
+                s[members] = mean_of_ratios(*rows) if by_ratio else smoothed_proportions(*rows, pc.smoothing)
             else:  # pooled; and the pooled summary (and per-period fallback) of the per-period methods
                 s = np.divide(cv, pv, out=np.zeros(n), where=pv > 0) * established
             out["history_share"][take] = s[take]
@@ -262,7 +302,7 @@ def _history_shares(
             with np.errstate(divide="ignore"):
                 out["history_share"][even] = np.where(established[even], 1.0 / counts[parent_code[even]], 0.0)
             # with no volume in any window the child volume is reported over the configured window
-            out["child_volume"][even] = window_volumes(age, qty, child, n, pc.window)[even]
+            out["child_volume"][even] = window_volumes(c_age, c_qty, c_child, n, pc.window)[even]
     return out
 
 
@@ -277,13 +317,20 @@ class ChildFrame:
     parent_code: np.ndarray
     n_parents: int
     ids: tuple[np.ndarray, np.ndarray]  # extend_ids': leaf_id, parent_id
+    child_of_row: np.ndarray | None = None  # each history row's child (-1: none)
 
 
 def child_frame(
-    history: pd.DataFrame, children: pd.DataFrame, settings: ShareSettings, cycle_date: pd.Timestamp
+    history: pd.DataFrame,
+    children: pd.DataFrame,
+    settings: ShareSettings,
+    cycle_date: pd.Timestamp,
+    keys: Coded | None = None,
 ) -> ChildFrame:
-    """The window- and method-free part of `compute_shares` (it reads the lifecycle settings only)."""
+    """The window- and method-free part of `compute_shares` (it reads the lifecycle settings only); keys:
+    `coded(history)`, when the caller has it (the history's ids are coded once)."""
     settings = ShareSettings.of(settings)
+    keys = keys if keys is not None else coded(history)
     children = complete_children(children, settings, cycle_date)
     established = (children["own_periods"] >= settings.min_history_periods).to_numpy()
     parent_code, parents = factorize(children, PARENT)
@@ -293,7 +340,8 @@ def child_frame(
         lifecycle_rules(children, established, settings, cycle_date),
         parent_code,
         len(parents),
-        extend_ids(children, history),
+        extend_ids(children, history, keys),
+        keys.leaf_rows(children),
     )
 
 
@@ -303,6 +351,7 @@ def compute_shares(
     settings: ShareSettings,
     cycle_date: pd.Timestamp,
     frame: ChildFrame | None = None,
+    keys: Coded | None = None,
 ) -> pd.DataFrame:
     """The share table: one row per child, with its base share and lifecycle rule.
 
@@ -311,14 +360,14 @@ def compute_shares(
     columns; see `complete_children` for the defaults of absent ones).
     frame: `child_frame` of the same history, children and cycle date, and of
     settings with the same lifecycle keys (made once for many windows and methods).
-    """
+    keys: `coded(history)`, when the caller has it."""
     settings = ShareSettings.of(settings)
     period = settings.period
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
-    frame = frame or child_frame(history, children, settings, cycle_date)
+    frame = frame or child_frame(history, children, settings, cycle_date, keys)
     children, established = frame.children, frame.established
     n = len(children)
-    base = _history_shares(history, children, established, settings, cycle_ord)
+    base = _history_shares(history, children, established, settings, cycle_ord, frame.child_of_row)
     rule, ref_pos, scale, initial, detail = frame.lifecycle  # the table below is a sorted copy: the frame stays
     share, _ = split_shares(
         frame.parent_code,

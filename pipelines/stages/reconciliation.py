@@ -31,7 +31,7 @@ import pandas as pd
 from pipelines.checks import CHILDREN_SUM_TO_PARENT, EVERY_ACTIVE_PARENT_HAS_CHILDREN, RELATIVE_TOLERANCE
 from pipelines.engines.proofs import find_active_parents_without_children
 from pipelines.errors import PlanningError
-from pipelines.keys import PARENT, PARENT_ID, ids_in
+from pipelines.keys import PARENT, PARENT_ID, first_rows, ids_in
 from pipelines.results import CheckRows, Log, StageResult, quiet
 
 KEY = PARENT + ["period_start"]
@@ -64,12 +64,15 @@ def reconcile(parent: pd.DataFrame, leaf: pd.DataFrame) -> pd.DataFrame:
             "rebuild statistical_forecast and downstream (`python -m pipelines rebuild --from statistical_forecast`)."
         )
     # grouped on the integer parent id where both tables carry it (the same groups, in the same order)
-    key = [PARENT_ID, "period_start"] if ids_in(parent, (PARENT_ID,)) and ids_in(leaf, (PARENT_ID,)) else KEY
-    text = {f"leaf_{c}": (c, "first") for c in PARENT if c not in key}
-    sums = (
+    # (a group's first row is its first non-blank one where the columns have no blank, as the groupby takes it)
+    by_id = ids_in(parent, (PARENT_ID,)) and ids_in(leaf, (PARENT_ID,)) and not any(
+        leaf[c].isna().any() for c in ("period_start", "cycle_date", *PARENT)
+    )
+    key = [PARENT_ID, "period_start"] if by_id else KEY
+    sums = _leaf_sums(leaf) if by_id else (
         leaf.groupby(key, sort=False, observed=True)
-        .agg(leaf_cycle_date=("cycle_date", "first"), **text, children_sum=("forecast", "sum"),
-             children=("forecast", "size"))
+        .agg(leaf_cycle_date=("cycle_date", "first"), **{f"leaf_{c}": (c, "first") for c in PARENT},
+             children_sum=("forecast", "sum"), children=("forecast", "size"))
         .reset_index()
     )
     out = parent[["cycle_date"] + list(dict.fromkeys(KEY + key)) + ["forecast", "strategy_forecast", "zero_reason"]]
@@ -86,6 +89,23 @@ def reconcile(parent: pd.DataFrame, leaf: pd.DataFrame) -> pd.DataFrame:
     out["difference"] = out["children_sum"] - out["expected"]
     out["relative_difference"] = out["difference"].abs() / np.maximum(out["expected"].abs(), 1.0)
     return out[COLUMNS].reset_index(drop=True)
+
+
+def _leaf_sums(leaf: pd.DataFrame) -> pd.DataFrame:
+    """Per parent id and period, in order of first appearance: the first row's cycle date and parent key, the
+    sum of the leaves' forecasts and their count; the groupby of `reconcile` on one integer code (its sums
+    are pandas' own group sums over the same rows in the same order), the other columns from each group's first
+    row."""
+    when, _ = pd.factorize(leaf["period_start"].to_numpy())
+    group, _ = pd.factorize(leaf[PARENT_ID].to_numpy().astype(np.int64) * (int(when.max()) + 1) + when)
+    first = first_rows(group)
+    out = {c: leaf[c].to_numpy()[first] for c in (PARENT_ID, "period_start")}
+    out["leaf_cycle_date"] = leaf["cycle_date"].to_numpy()[first]
+    for c in PARENT:
+        out[f"leaf_{c}"] = leaf[c].to_numpy()[first]
+    out["children_sum"] = leaf["forecast"].groupby(group, sort=False).sum().to_numpy()
+    out["children"] = np.bincount(group, minlength=len(first)).astype(np.int64)
+    return pd.DataFrame(out)
 
 
 def find_incoherent(reconciliation: pd.DataFrame, tolerance: float = RELATIVE_TOLERANCE) -> pd.DataFrame:

@@ -51,7 +51,7 @@ from pipelines.engines.proofs import find_shares_not_summing_to_one
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.share_tuning import chosen_rules
 from pipelines.engines.shares import shortage_periods
-from pipelines.keys import LEAF, PARENT, coded, factorize, ids_in, key_rank
+from pipelines.keys import LEAF, PARENT, PARENT_ID, coded, factorize, first_rows, ids_in, key_rank, rows_in
 from pipelines.results import CheckRows, Log, StageResult, quiet
 
 TARGET_COLUMNS = LEAF + ["period_start", "cycle_date", "target", "share", "parent_baseline", "zero_reason", "basis"]
@@ -65,24 +65,28 @@ def parent_baselines(
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
     parent_code, parents = factorize(shares, PARENT)
     n_parents = len(parents)
-    window_used = np.zeros(n_parents, dtype=np.int64)
+    window_used = np.zeros(n_parents + 1, dtype=np.int64)  # the last: the rows of no share-table parent
     window_used[parent_code] = shares["window_used"].to_numpy()
 
-    row_parent = coded(history).parent_rows(parents)
-    ok = row_parent >= 0
-    short = shortage_periods(history, settings.exclude_shortages)[ok]
-    row_parent = row_parent[ok]
-    age = cycle_ord - period_ordinal(history["period_start"], period)[ok]
-    qty = history["quantity"].to_numpy(float)[ok]
-    oldest = np.zeros(n_parents, dtype=np.int64)
+    if ids_in(shares, (PARENT_ID,)):  # through the parent ids both tables carry
+        parents[PARENT_ID] = shares[PARENT_ID].to_numpy()[first_rows(parent_code)]
+        row_parent = rows_in(history, parents, PARENT)
+    else:
+        row_parent = coded(history).parent_rows(parents)
+    row_parent = np.where(row_parent >= 0, row_parent, n_parents)
+    short = shortage_periods(history, settings.exclude_shortages)
+    age = cycle_ord - period_ordinal(history["period_start"], period)
+    qty = history["quantity"].to_numpy(float)
+    oldest = np.zeros(n_parents + 1, dtype=np.int64)
     np.maximum.at(oldest, row_parent, age)  # history length of each parent, in periods
     span = np.minimum(window_used, oldest)
     inside = (age >= 1) & (age <= span[row_parent])
-    volume = np.bincount(row_parent[inside & ~short], weights=qty[inside & ~short], minlength=n_parents)
+    use = inside & ~short
+    volume = np.bincount(row_parent[use], weights=qty[use], minlength=n_parents + 1)[:n_parents]
     # shortage periods inside the window: distinct (parent, age) pairs
     m = inside & short
     pairs = np.unique(np.stack([row_parent[m], age[m]], axis=1), axis=0)
-    periods = span - np.bincount(pairs[:, 0], minlength=n_parents)
+    periods = span[:n_parents] - np.bincount(pairs[:, 0], minlength=n_parents + 1)[:n_parents]
     baseline = np.divide(volume, periods, out=np.zeros(n_parents), where=periods > 0)
     return baseline[parent_code]
 
@@ -131,11 +135,21 @@ def parents_with_mix_change(target: pd.DataFrame, shares: pd.DataFrame, toleranc
         return pd.DataFrame(
             columns=PARENT + ["first_change", "periods_with_change", "phasing_in", "phasing_out", "zero_periods"]
         )
-    t = target.assign(leaf_rank=key_rank(target, LEAF))  # sorts as the text keys do, on integers
-    t = t.sort_values(["leaf_rank", "period_start"], kind="stable")
-    previous = t.groupby("leaf_rank", sort=False)["share"].shift()
-    changed = (t["share"] - previous).abs() > tolerance
-    change = t.loc[changed.to_numpy(), PARENT + ["period_start"]].drop_duplicates()
+    # each leaf's share against its previous period, on integers: the rows in (leaf key, period) order
+    leaf, when = key_rank(target, LEAF), target["period_start"].to_numpy().view(np.int64)
+    step_leaf, step_when = np.diff(leaf), np.diff(when)
+    if bool(np.all((step_leaf > 0) | ((step_leaf == 0) & (step_when >= 0)))):
+        order = None
+    else:
+        order = np.lexsort((when, leaf))  # stable, as a sort by leaf then period
+        step_leaf = np.diff(leaf[order])
+    share = target["share"].to_numpy(float)
+    share = share if order is None else share[order]
+    with np.errstate(invalid="ignore"):
+        changed = (step_leaf == 0) & (np.abs(share[1:] - share[:-1]) > tolerance)
+    rows = np.flatnonzero(changed) + 1
+    rows = rows if order is None else order[rows]
+    change = target.iloc[np.sort(rows)][PARENT + ["period_start"]].drop_duplicates()
     per_parent = change.groupby(PARENT, sort=True).agg(
         first_change=("period_start", "min"), periods_with_change=("period_start", "size")
     )
@@ -150,11 +164,24 @@ def parents_with_mix_change(target: pd.DataFrame, shares: pd.DataFrame, toleranc
 
     in_ = customers((shares["first_active_period"] > start) & (shares["lifecycle_rule"] != "awaiting_history"))
     out_ = customers(shares["last_active_period"] < end)
-    zero = target[target["zero_reason"].notna()].drop_duplicates(PARENT + ["period_start"]).groupby(PARENT).size()
+    zero = target.iloc[first_parent_periods(target, zero_only=True)][PARENT].groupby(PARENT).size()
     per_parent["phasing_in"] = in_.reindex(per_parent.index).fillna("")
     per_parent["phasing_out"] = out_.reindex(per_parent.index).fillna("")
     per_parent["zero_periods"] = zero.reindex(per_parent.index).fillna(0).astype(np.int64)
     return per_parent.reset_index()
+
+
+def first_parent_periods(target: pd.DataFrame, zero_only: bool = False) -> np.ndarray:
+    """Positions of the first row of each parent (product, site) and period in `target`, ascending (the rows
+    `drop_duplicates` keeps); zero_only: among the rows with a zero_reason only. Coded on integers."""
+    rows = np.flatnonzero(target["zero_reason"].notna().to_numpy()) if zero_only else None
+    frame = target if rows is None else target.iloc[rows]
+    if frame.empty:
+        return np.zeros(0, np.int64)
+    parent, _ = factorize(frame, PARENT)
+    when, periods = pd.factorize(frame["period_start"].to_numpy())
+    first = np.flatnonzero(~pd.Series(parent * len(periods) + when).duplicated().to_numpy())
+    return first if rows is None else rows[first]
 
 
 def run(
@@ -174,18 +201,20 @@ def run(
     settings = chosen_rules(share_tuning, ShareSettings.of(settings))
     cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
     target = reinitialize_target(share_tables, lifecycle_history, settings, cycle_date, products, period_basis)
-    first = target[target["period_start"] == target["period_start"].min()] if len(target) else target
+    when = target["period_start"].to_numpy()
+    first = np.flatnonzero(when == when.min()) if len(target) else np.zeros(0, np.int64)  # the first period's rows
     mix = parents_with_mix_change(target, share_tables)
-    parent_periods = target.drop_duplicates(["product", "site", "period_start"])
-    zero = target[target["zero_reason"].notna()].drop_duplicates(["product", "site", "period_start"])
+    no_baseline = first[target["parent_baseline"].to_numpy()[first] == 0]
+    zero = target[["zero_reason"]].iloc[first_parent_periods(target, zero_only=True)]
     figures = {
         "horizon_periods": settings.horizon,
-        "target_total_per_period": float(first["target"].sum()),
-        "parents_with_zero_baseline": int(first.loc[first["parent_baseline"] == 0, PARENT].drop_duplicates().shape[0]),
+        "target_total_per_period": float(target["target"].iloc[first].sum()),
+        "parents_with_zero_baseline": int(target[PARENT].iloc[no_baseline].drop_duplicates().shape[0]),
         "parents_with_mix_change": mix,
         "parents_with_mix_change_count": len(mix),
         "zero_periods_by_reason": zero.groupby("zero_reason").size().rename("parent_periods").reset_index(),
-        "parent_periods_by_basis": parent_periods["basis"].value_counts().rename_axis("basis").reset_index(),
+        "parent_periods_by_basis": target["basis"].iloc[first_parent_periods(target)].value_counts()
+        .rename_axis("basis").reset_index(),
     }
     return StageResult(
         outputs={"reinitialized_target": target},

@@ -75,7 +75,7 @@ from pipelines.engines.models import ModelSettings, series_grid
 from pipelines.engines.proofs import find_negative, find_volume_after_phase_out, find_volume_outside_active_span
 from pipelines.engines.upper_levels import upper_level_checks, upper_levels_run
 from pipelines.errors import ConfigError
-from pipelines.keys import LEAF, PARENT, PARENT_ID, coded, factorize, first_rows, ids_in
+from pipelines.keys import LEAF, PARENT, PARENT_ID, factorize, first_rows, ids_in, rows_in
 from pipelines.progress import SeriesProgress
 from pipelines.results import CheckRows, Log, StageResult, quiet
 from pipelines.vocabulary import AUTO, Basis, ModelGrain, Strategy, ZeroReason, values
@@ -185,13 +185,13 @@ def forecast_cycle(
     qty = history["quantity"].to_numpy(float)
     strategies = strategy_by_class(settings, chosen)
 
-    keys = coded(history)  # the history's leaf and parent ids, looked up by their distinct keys only
-    p_code = keys.parent_rows(parents)
+    # each history row's parent and child, through the ids both carry (else by their distinct keys only)
+    p_code = rows_in(history, parents, PARENT)
     ok = p_code >= 0
     p_grid = series_grid(*((p_code, ords, qty) if ok.all() else (p_code[ok], ords[ok], qty[ok])), n_parents, cycle_ord)
     parent_class, child_class = parents["product_class"].to_numpy(), children["product_class"].to_numpy()
     leaf_grain = np.isin(child_class, [n for n, s in strategies.items() if s in NEEDS_LEAF])
-    c_code = keys.leaf_rows(children) if leaf_grain.any() else np.zeros(0, dtype=np.int64)
+    c_code = rows_in(history, children, LEAF) if leaf_grain.any() else np.zeros(0, dtype=np.int64)
     okc = np.flatnonzero(c_code >= 0)  # the children's own series laid out only where their class forecasts leaves
     okc = okc[leaf_grain[c_code[okc]]]
     c_grid = series_grid(c_code[okc], ords[okc], qty[okc], n_children, cycle_ord)
@@ -390,10 +390,11 @@ def forecast_checks(
     """The forecast's checks, judged from its two tables and the master data (`pipelines.engines.proofs`)."""
     negatives = [find_negative(parent_forecast).assign(grain="parent"), find_negative(statistical_forecast)]
     negatives = pd.concat([negatives[0], negatives[1].assign(grain="leaf")], ignore_index=True)
+    leaf, spans, span_rows = statistical_forecast, customer_spans, rows_in(statistical_forecast, customer_spans, LEAF)
     return {
-        NO_VOLUME_AFTER_PHASE_OUT: CheckRows(find_volume_after_phase_out(statistical_forecast, customer_spans, period)),
+        NO_VOLUME_AFTER_PHASE_OUT: CheckRows(find_volume_after_phase_out(leaf, spans, period, span_rows)),
         NO_VOLUME_OUTSIDE_ACTIVE_SPAN: CheckRows(
-            find_volume_outside_active_span(parent_forecast, statistical_forecast, customer_spans, products, period)
+            find_volume_outside_active_span(parent_forecast, leaf, spans, products, period, span_rows)
         ),
         NO_NEGATIVE_FORECAST: CheckRows(negatives),
     }
