@@ -40,6 +40,10 @@ OTHER = "other"
 def figure_png(fig: Figure) -> bytes:
     """The figure as PNG bytes (Agg canvas, no software tag, so bytes depend only on the figure)."""
     FigureCanvasAgg(fig)
+    engine = fig.get_layout_engine()
+    if engine is not None:  # the layout savefig would make in a draw without output first, made once, then kept
+        engine.execute(fig)
+        fig.set_layout_engine("none")
     buffer = io.BytesIO()
     fig.savefig(buffer, format="png", dpi=DPI, metadata={"Software": None})
     return buffer.getvalue()
