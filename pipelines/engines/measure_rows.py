@@ -76,4 +76,4 @@ def plan_table(pieces: list[dict], children: pd.DataFrame, starts: pd.DatetimeIn
     out["basis"] = joined("basis")
     out["fallback"] = joined("fallback")
     out["pinned"] = joined("pinned")
-    return out.astype(PLAN_TYPES)
+    return out.astype(PLAN_TYPES, copy=False)  # the columns already of their type are kept, not copied
