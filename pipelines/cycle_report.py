@@ -22,6 +22,7 @@ from pipelines.checks import CHECKS, schema_check
 from pipelines.class_view import class_choice
 from pipelines.config import PlanningConfig
 from pipelines.engines import report_charts, report_html
+from pipelines.keys import LEAF_ID, PARENT_ID
 from pipelines.partitions import partition_key
 from pipelines.resources import read_table, report_folder
 from pipelines.shards import partition_classes, split_class_key
@@ -93,6 +94,8 @@ def class_charts(config: PlanningConfig, cycle: str, name: str, folder: Path) ->
     tables = {t: read_table(config.store.path, t, cycle=cycle, product_class=name) for t in CHART_TABLES}
     if any(frame is None or frame.empty for frame in tables.values()):
         return []
+    # each shard numbered its own ids: read together they are not one key's, so the charts go by the text keys
+    tables = {t: frame.drop(columns=[LEAF_ID, PARENT_ID], errors="ignore") for t, frame in tables.items()}
     where = {"product_class": name, "cycle_date": cycle, "period": config.calendar.period}
     history = tables["lifecycle_history"]
     pictures = [

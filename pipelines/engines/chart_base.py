@@ -40,6 +40,10 @@ OTHER = "other"
 def figure_png(fig: Figure) -> bytes:
     """The figure as PNG bytes (Agg canvas, no software tag, so bytes depend only on the figure)."""
     FigureCanvasAgg(fig)
+    engine = fig.get_layout_engine()
+    if engine is not None:  # the layout savefig would make in a draw without output first, made once, then kept
+        engine.execute(fig)
+        fig.set_layout_engine("none")
     buffer = io.BytesIO()
     fig.savefig(buffer, format="png", dpi=DPI, metadata={"Software": None})
     return buffer.getvalue()
@@ -51,13 +55,11 @@ def chart_file_name(kind: str, product_class: str, cycle_date) -> str:
     return f"{kind}_{safe}_{pd.Timestamp(cycle_date):%Y-%m-%d}.png"
 
 
-def _rank_parents(history: pd.DataFrame, forecast: pd.DataFrame, parents: pd.DataFrame) -> pd.DataFrame:
-    """Parents by history volume, then forecast volume, then key (a stable, deterministic order)."""
-    hist = history.groupby(PARENT, observed=True)["quantity"].sum().rename("history_volume")
-    fc = forecast.groupby(PARENT, observed=True)["forecast"].sum().rename("forecast_volume") if len(forecast) else None
-    ranked = parents.join(hist, on=PARENT)
-    ranked = ranked.join(fc, on=PARENT) if fc is not None else ranked.assign(forecast_volume=0.0)
-    ranked[["history_volume", "forecast_volume"]] = ranked[["history_volume", "forecast_volume"]].fillna(0.0)
+def _rank_parents(parents: pd.DataFrame, history_volume: np.ndarray, forecast_volume: np.ndarray) -> pd.DataFrame:
+    """Parents by history volume, then forecast volume, then key (a stable, deterministic order); `pos` is each
+    one's position in `parents`, the volumes are per position (`chart_data.sums_by_parent`)."""
+    ranked = parents[PARENT].assign(history_volume=history_volume, forecast_volume=forecast_volume)
+    ranked["pos"] = np.arange(len(parents))
     ranked = ranked.sort_values(
         ["history_volume", "forecast_volume", "product", "site"], ascending=[False, False, True, True]
     )
@@ -70,15 +72,13 @@ def _in_class(frame: pd.DataFrame, product_class: str) -> pd.DataFrame:
     return frame
 
 
-def _history_of(
-    history: pd.DataFrame, parents: pd.DataFrame, cycle: pd.Timestamp, period: str, history_periods: int | None
-) -> pd.DataFrame:
-    """History rows of these parents before the cycle date, the last `history_periods` periods only when given."""
-    hist = history.merge(parents[PARENT].drop_duplicates(), on=PARENT, how="inner")
-    keep = hist["period_start"] < cycle
+def _history_mask(history: pd.DataFrame, cycle: pd.Timestamp, period: str, history_periods: int | None) -> np.ndarray:
+    """History rows before the cycle date, of the last `history_periods` periods only when given."""
+    starts = history["period_start"].to_numpy("datetime64[ns]")
+    keep = starts < cycle.to_datetime64()
     if history_periods:
-        keep &= hist["period_start"] >= shift_periods(cycle, -int(history_periods), period)
-    return hist[keep]
+        keep &= starts >= pd.Timestamp(shift_periods(cycle, -int(history_periods), period)).to_datetime64()
+    return keep
 
 
 def _next_starts(starts: pd.DatetimeIndex, period: str) -> pd.DatetimeIndex:

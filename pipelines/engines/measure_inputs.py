@@ -11,13 +11,17 @@ from pipelines.engines.period_shares import period_shares
 from pipelines.engines.share_settings import ShareRule, ShareSettings
 from pipelines.engines.shares import compute_shares
 from pipelines.errors import ConfigError
-from pipelines.keys import LEAF, PARENT, lookup
+from pipelines.keys import LEAF, LEAF_ID, PARENT, ids_in, lookup, rows_in
 from pipelines.vocabulary import Basis
 
 
 def cells_of(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame, first_ord: int, h: int, period: str):
-    """(row in table, horizon column, inside) of each row of `frame` keyed by `cols` and `period_start`."""
-    row = lookup(frame, cols, table) if len(frame) else np.zeros(0, dtype=np.int64)
+    """(row in table, horizon column, inside) of each row of `frame` keyed by `cols` and `period_start`.
+
+    A frame carrying the id of its key (`leaf_id` for the leaf key, `parent_id` for the parent key) is looked
+    up through its own ids: its distinct keys once, not a text key per row (`pipelines.keys.rows_in`; `table`'s
+    keys only, so no id of another table is trusted)."""
+    row = rows_in(frame, table[cols], cols) if len(frame) else np.zeros(0, dtype=np.int64)
     col = period_ordinal(pd.DatetimeIndex(pd.to_datetime(frame["period_start"])), period) - first_ord
     return row, col, (col >= 0) & (col < h)
 
@@ -146,7 +150,7 @@ def share_basis_tables(
         own = settings.with_rule(ShareRule.of(basis))  # its window, method and fallbacks in every class
         table = compute_shares(history, children, own, cycle_date)
         share = period_shares(table, own, cycle_date, products, history)[0]
-        frame = table[LEAF].loc[table.index.repeat(len(starts))].reset_index(drop=True)
+        frame = table[LEAF + ids_in(table, (LEAF_ID,))].loc[table.index.repeat(len(starts))].reset_index(drop=True)
         frame["period_start"] = np.tile(starts.values, len(table))
         frame["share"] = share.ravel()
         frame["fallback"] = np.repeat(table["fallback"].to_numpy(), len(starts))

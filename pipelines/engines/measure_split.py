@@ -275,27 +275,6 @@ PARENT_COLUMNS = [
 OVERFLOW_COLUMNS = ["measure", "product", "site", "period_start", "parent_value", "pins_sum", "overflow", "pins"]
 
 
-def plan_piece(
-    name, m, split, value, has, pinned, label, children, parent_of_child, starts, cycle_date
-) -> pd.DataFrame:
-    child, col = np.nonzero(split.rows)
-    par = parent_of_child[child]
-    code = split.fallback[child, col]
-    is_pin = pinned[child, col]
-    basis = np.where(is_pin, "pin", np.where(code == EVEN, "even", label[par]))
-    out = children[LEAF].iloc[child].reset_index(drop=True)
-    out["period_start"] = starts[col]
-    out["cycle_date"] = cycle_date
-    out["measure"] = name
-    out["value"] = split.value[child, col]
-    out["parent_value"] = np.where(has[par, col], value[par, col], np.nan)
-    out["rule"] = m.rule
-    out["basis"] = basis
-    out["fallback"] = np.asarray(FALLBACKS, dtype=object)[code]
-    out["pinned"] = is_pin
-    return out
-
-
 def parent_piece(name, m, split, value, has, pinned, active, parents, parent_of_child, starts) -> pd.DataFrame:
     n_parents = len(parents)
     par, col = np.nonzero(split.live)

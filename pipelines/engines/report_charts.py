@@ -51,7 +51,7 @@ from pipelines.engines.chart_base import (
     _caption_axes,
     _date_axis,
     _empty_figure,
-    _history_of,
+    _history_mask,
     _in_class,
     _mark_horizon,
     _next_starts,
@@ -61,9 +61,19 @@ from pipelines.engines.chart_base import (
     chart_file_name,
     figure_png,
 )
-from pipelines.keys import LEAF, PARENT
+from pipelines.engines.chart_data import (
+    distinct_parents,
+    history_period_shares,
+    parent_period_sums,
+    parent_positions,
+    stack_for_parent,
+    sums_by_parent,
+)
+from pipelines.keys import PARENT
 
-__all__ = ["DPI", "WIDTH_IN", "CHILD_COLORS", "FORECAST_COLOR", "chart_file_name", "figure_png"]
+__all__ = [
+    "DPI", "WIDTH_IN", "CHILD_COLORS", "FORECAST_COLOR", "chart_file_name", "figure_png", "history_period_shares",
+]
 
 
 # ----------------------------------------------------------------- 1. parent history and forecast
@@ -83,15 +93,22 @@ def parent_chart_figure(
     title = f"Product class {product_class}: parent history and forecast, cycle {cycle:%Y-%m-%d}"
     unit = f"quantity per {period}"
     fc = _in_class(parent_forecast, product_class)
-    parents = fc[PARENT].drop_duplicates()
+    parents = distinct_parents(fc)
     if parents.empty:
         return _empty_figure(title, f"no parent of class {product_class} has a forecast in this cycle")
-    hist = _history_of(history, parents, cycle, period, history_periods)
-    hist = hist.groupby(PARENT + ["period_start"], observed=True, as_index=False)["quantity"].sum()
+    # sums per parent and period over integer codes: the class's totals and its largest parents
+    keep = _history_mask(history, cycle, period, history_periods)
+    hist, hist_at = parent_period_sums(history, keep, parent_positions(history, parents), parents, ["quantity"])
     bands = interval_levels(fc)
     bound_cols = [c for lv in bands for c in (f"lower_{lv}", f"upper_{lv}")]
-    fc = fc.groupby(PARENT + ["period_start"], observed=True, as_index=False)[["forecast"] + bound_cols].sum()
-    ranked = _rank_parents(hist, fc, parents)
+    fc, fc_at = parent_period_sums(
+        fc, np.ones(len(fc), dtype=bool), parent_positions(fc, parents), parents, ["forecast"] + bound_cols
+    )
+    ranked = _rank_parents(
+        parents,
+        sums_by_parent(hist["quantity"].to_numpy(float), hist_at, len(parents)),
+        sums_by_parent(fc["forecast"].to_numpy(float), fc_at, len(parents)),
+    )
     shown = ranked.head(max(int(top_parents), 0))
     hidden = ranked.iloc[len(shown):]
     horizon_end = shift_periods(fc["period_start"].max(), 1, period)
@@ -131,14 +148,11 @@ def parent_chart_figure(
     _date_axis(total)
     total.legend(loc="upper left", fontsize=8, frameon=False, ncols=3)
 
-    hist_by = {k: g for k, g in hist.merge(shown[PARENT], on=PARENT).groupby(PARENT, observed=True)}
-    fc_by = {k: g for k, g in fc.merge(shown[PARENT], on=PARENT).groupby(PARENT, observed=True)}
     for i, row in enumerate(shown.itertuples(index=False)):
         ax = fig.add_subplot(grid[1 + i // columns, i % columns], sharex=total)
-        key = (row.product, row.site)
         _mark_horizon(ax, cycle, horizon_end, label=False)
-        h = hist_by.get(key)
-        f = fc_by.get(key)
+        h = hist[hist_at == row.pos] if (hist_at == row.pos).any() else None
+        f = fc[fc_at == row.pos] if (fc_at == row.pos).any() else None
         if h is not None:
             h = h.sort_values("period_start")
             ax.plot(h["period_start"], h["quantity"].to_numpy(), color=HISTORY_COLOR, lw=0.9, label="history")
@@ -195,47 +209,6 @@ def parent_chart(
 
 
 # ----------------------------------------------------------------- 2. customer shares
-def history_period_shares(history: pd.DataFrame) -> pd.DataFrame:
-    """Each customer's share of its parent per history period: quantity / parent quantity.
-
-    A period whose parent quantity is 0, or that has a recorded supply shortage
-    (`shortage` on any of the parent's rows, when the column is there), has no
-    share (NaN), as the share rule leaves such periods out.
-    """
-    leaf = history.groupby(LEAF + ["period_start"], observed=True, as_index=False)["quantity"].sum()
-    parent = leaf.groupby(PARENT + ["period_start"], observed=True)["quantity"].transform("sum")
-    share = leaf["quantity"] / parent.where(parent > 0)
-    if "shortage" in history.columns:
-        short = history[history["shortage"].astype(bool)][PARENT + ["period_start"]].drop_duplicates()
-        flagged = leaf[PARENT + ["period_start"]].merge(
-            short, how="left", on=PARENT + ["period_start"], indicator=True
-        )["_merge"]
-        share = share.where(~(flagged == "both").to_numpy())
-    return leaf[LEAF + ["period_start"]].assign(share=share.to_numpy())
-
-
-def _stack_for_parent(
-    hist_shares: pd.DataFrame, target: pd.DataFrame, top_children: int
-) -> tuple[pd.DataFrame, list[str], int]:
-    """(periods x bands) shares of one parent, bands = the largest customers then `other`; and the count in other."""
-    both = pd.concat(
-        [hist_shares[["customer", "period_start", "share"]], target[["customer", "period_start", "share"]]]
-    )
-    wide = both.pivot(index="period_start", columns="customer", values="share")
-    # a period where the parent has no share at all (blank history period) stays blank in every band
-    blank = wide.isna().all(axis=1)
-    wide = wide.fillna(0.0)
-    wide[blank] = np.nan
-    mean = wide.mean(axis=0, skipna=True)
-    order = sorted(wide.columns, key=lambda c: (-mean[c], str(c)))
-    top = order[: max(int(top_children), 0)]
-    rest = order[len(top):]
-    bands = wide[top].copy()
-    if rest:
-        bands[OTHER] = wide[rest].sum(axis=1, min_count=1)
-    return bands.sort_index(), top, len(rest)
-
-
 def share_chart_figure(
     history: pd.DataFrame,
     target: pd.DataFrame,
@@ -252,26 +225,29 @@ def share_chart_figure(
     cycle = pd.Timestamp(cycle_date)
     title = f"Product class {product_class}: customer shares of the largest parents, cycle {cycle:%Y-%m-%d}"
     tgt = _in_class(target, product_class)
-    tgt = tgt[tgt["period_start"] >= cycle]
-    parents = tgt[PARENT].drop_duplicates()
+    in_horizon = (tgt["period_start"] >= cycle).to_numpy()
+    parents = distinct_parents(tgt, in_horizon)
     if parents.empty:
         return _empty_figure(title, f"no parent of class {product_class} has a reinitialized target in this cycle")
-    hist = _history_of(history, parents, cycle, period, history_periods)
-    ranked = _rank_parents(hist, tgt.assign(forecast=tgt["target"]), parents)
+    # the class's rows coded once to their parent's position; the largest parents' rows picked by it
+    hist_pos = np.where(_history_mask(history, cycle, period, history_periods), parent_positions(history, parents), -1)
+    tgt_pos = np.where(in_horizon, parent_positions(tgt, parents), -1)
+    ranked = _rank_parents(
+        parents,
+        sums_by_parent(history["quantity"].to_numpy(float), hist_pos, len(parents)),
+        sums_by_parent(tgt["target"].to_numpy(float), tgt_pos, len(parents)),
+    )
     shown = ranked.head(max(int(top_parents), 0))
     hidden = ranked.iloc[len(shown):]
-    hist_shares = history_period_shares(hist.merge(shown[PARENT], on=PARENT))
-    horizon_end = shift_periods(tgt["period_start"].max(), 1, period)
+    hist_shares = history_period_shares(history.iloc[np.flatnonzero(np.isin(hist_pos, shown["pos"]))])
+    horizon_end = shift_periods(tgt["period_start"][in_horizon].max(), 1, period)
     window_start = {}
     if shares is not None and len(shares):
-        first = shares.drop_duplicates(PARENT)
-        window_start = {
-            (p, s): pd.Timestamp(w)
-            for p, s, w, u in zip(
-                first["product"], first["site"], first["window_start"], first["window_used"], strict=False
-            )
-            if u > 0
-        }
+        share_pos = parent_positions(shares, parents)
+        for p in shown["pos"]:
+            first = np.flatnonzero(share_pos == p)[:1]
+            if len(first) and shares["window_used"].iloc[first[0]] > 0:
+                window_start[p] = pd.Timestamp(shares["window_start"].iloc[first[0]])
 
     caption = (
         f"Each panel: one parent's customers, each band a customer's share of the parent in each period; before the "
@@ -290,14 +266,14 @@ def share_chart_figure(
     grid = fig.add_gridspec(rows + 1, 1, height_ratios=[2.3] * rows + [0.2 + 0.14 * len(lines)])
     fig.suptitle(title, fontsize=13, fontweight="bold")
     hist_by = {k: g for k, g in hist_shares.groupby(PARENT, observed=True)}
-    tgt_by = {k: g for k, g in tgt.merge(shown[PARENT], on=PARENT).groupby(PARENT, observed=True)}
     first_ax = None
     for i, row in enumerate(shown.itertuples(index=False)):
         key = (row.product, row.site)
         ax = fig.add_subplot(grid[i, 0], sharex=first_ax)
         first_ax = first_ax or ax
         empty = hist_shares.iloc[:0]
-        bands, top, n_rest = _stack_for_parent(hist_by.get(key, empty), tgt_by[key], top_children)
+        mine = tgt.iloc[np.flatnonzero(tgt_pos == row.pos)]
+        bands, top, n_rest = stack_for_parent(hist_by.get(key, empty), mine, top_children)
         _mark_horizon(ax, cycle, horizon_end, label=i == 0)
         # one full-width bar per period (a stepped stacked area): a period stands for its whole bucket,
         # and a lone period of an intermittent series stays visible
@@ -316,9 +292,9 @@ def share_chart_figure(
                 _bars(left[drawn], width[drawn], bottom[drawn], values[drawn], color=color, label=label), autolim=True
             )
             bottom = bottom + values
-        if key in window_start:
+        if row.pos in window_start:
             ax.axvline(
-                window_start[key],
+                window_start[row.pos],
                 color=CYCLE_COLOR,
                 ls=":",
                 lw=1.0,

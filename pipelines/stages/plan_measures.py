@@ -101,6 +101,7 @@ from pipelines.engines.measure_inputs import (
     share_basis_tables,
     top_down_parents,
 )
+from pipelines.engines.measure_rows import plan_piece, plan_table
 from pipelines.engines.measure_split import (
     OVERFLOW,
     OVERFLOW_COLUMNS,
@@ -113,7 +114,6 @@ from pipelines.engines.measure_split import (
     overflow_message,
     overflow_piece,
     parent_piece,
-    plan_piece,
     plan_totals,
     split_cells,
 )
@@ -122,17 +122,6 @@ from pipelines.errors import PinError
 from pipelines.keys import LEAF, PARENT, factorize, lookup
 from pipelines.results import CheckRows, Log, StageResult, quiet
 
-PLAN_COLUMNS = LEAF + [
-    "period_start",
-    "cycle_date",
-    "measure",
-    "value",
-    "parent_value",
-    "rule",
-    "basis",
-    "fallback",
-    "pinned",
-]
 UNUSED_COLUMNS = ["input", "measure", "product", "site", "customer", "period_start", "value", "reason"]
 
 
@@ -267,9 +256,7 @@ def plan_measures(
             None if m.integer is None else m.integer.pack_size, order,
         )
         mats[f"measure:{name}"] = np.where(split.rows, split.value, 0.0)
-        pieces[name] = plan_piece(
-            name, m, split, value, has, pinned, label, children, parent_of_child, starts, cycle_date
-        )
+        pieces[name] = plan_piece(name, m, split, value, has, pinned, label, parent_of_child)
         parent_pieces.append(parent_piece(name, m, split, value, has, pinned, active, parents, parent_of_child, starts))
         if (split.status == OVERFLOW).any():
             overflow_pieces.append(
@@ -277,15 +264,7 @@ def plan_measures(
             )
 
     # in config order; inside a measure the rows already follow the sorted children, then the period
-    plan = _stack([pieces[name] for name in config.measures], PLAN_COLUMNS).astype(
-        {
-            "period_start": "datetime64[ns]",
-            "cycle_date": "datetime64[ns]",
-            "value": float,
-            "parent_value": float,
-            "pinned": bool,
-        }
-    )
+    plan = plan_table([pieces[name] for name in config.measures], children, starts, cycle_date)
     parents_out = _stack(parent_pieces, PARENT_COLUMNS)
     overflow = _stack(overflow_pieces, OVERFLOW_COLUMNS)
     if len(overflow) and config.pins.on_overflow == "error":

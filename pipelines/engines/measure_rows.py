@@ -1,0 +1,79 @@
+"""The plan's rows: one per leaf, period and measure, made from the measures' splits in one go.
+
+Each measure's split gives arrays over its cells (`plan_piece`); `plan_table`
+joins them and takes the leaf keys of every row with one gather over the
+children, rather than a frame per measure stacked and copied again.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from pipelines.engines.measure_split import EVEN, FALLBACKS, Split
+from pipelines.keys import LEAF
+
+PLAN_COLUMNS = LEAF + [
+    "period_start",
+    "cycle_date",
+    "measure",
+    "value",
+    "parent_value",
+    "rule",
+    "basis",
+    "fallback",
+    "pinned",
+]
+PLAN_TYPES = {
+    "period_start": "datetime64[ns]",
+    "cycle_date": "datetime64[ns]",
+    "value": float,
+    "parent_value": float,
+    "pinned": bool,
+}
+
+
+def plan_piece(name: str, m, split: Split, value, has, pinned, label, parent_of_child) -> dict:
+    """The rows of one measure as arrays: child and horizon column of each cell that gets a row, and its
+    value, parent value, basis, fallback and pin flag."""
+    child, col = np.nonzero(split.rows)
+    par = parent_of_child[child]
+    code = split.fallback[child, col]
+    is_pin = pinned[child, col]
+    return {
+        "child": child,
+        "col": col,
+        "measure": name,
+        "rule": m.rule,
+        "value": split.value[child, col],
+        "parent_value": np.where(has[par, col], value[par, col], np.nan),
+        "basis": np.where(is_pin, "pin", np.where(code == EVEN, "even", label[par])),
+        "fallback": np.asarray(FALLBACKS, dtype=object)[code],
+        "pinned": is_pin,
+    }
+
+
+def plan_table(pieces: list[dict], children: pd.DataFrame, starts: pd.DatetimeIndex, cycle_date) -> pd.DataFrame:
+    """The plan (PLAN_COLUMNS, PLAN_TYPES) of the measures' pieces in the order given."""
+    pieces = [p for p in pieces if len(p["child"])]
+    if not pieces:
+        return pd.DataFrame({c: pd.Series(dtype=object) for c in PLAN_COLUMNS}).astype(PLAN_TYPES)
+    sizes = [len(p["child"]) for p in pieces]
+
+    def joined(column: str) -> np.ndarray:
+        return np.concatenate([p[column] for p in pieces])
+
+    def repeated(column: str) -> np.ndarray:
+        return np.repeat(np.array([p[column] for p in pieces], dtype=object), sizes)
+
+    out = children[LEAF].iloc[joined("child")].reset_index(drop=True)
+    out["period_start"] = pd.DatetimeIndex(starts)[joined("col")]
+    out["cycle_date"] = cycle_date
+    out["measure"] = repeated("measure")
+    out["value"] = joined("value")
+    out["parent_value"] = joined("parent_value")
+    out["rule"] = repeated("rule")
+    out["basis"] = joined("basis")
+    out["fallback"] = joined("fallback")
+    out["pinned"] = joined("pinned")
+    return out.astype(PLAN_TYPES, copy=False)  # the columns already of their type are kept, not copied
