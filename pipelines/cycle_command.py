@@ -106,10 +106,6 @@ def _run_cycle(
     every_key = partition_classes(config)
     if parallel < 1:
         raise ConfigError(f"--parallel {parallel}: give 1 or more partitions to run at once")
-    if parallel == 1:  # the runs fit here: the model pool's server imports statsforecast beside the first steps
-        from pipelines.engines.model_engine import EngineSettings, prestart_pool
-
-        prestart_pool(EngineSettings.of(config))
     defs = build_definitions(config_path)
     selection = rebuild_selection(defs, rebuild_from) if rebuild_from else None
     what = f"{rebuild_from} and downstream" if rebuild_from else "whole cycle"

@@ -126,42 +126,17 @@ _POOLS: dict[int, Any] = {}
 _POOLS_LOCK = threading.Lock()
 
 
-def _pool_context():
-    """The pools' start method: a forkserver that imports statsforecast once, before it forks any worker."""
-    import multiprocessing
-
-    context = multiprocessing.get_context("forkserver")
-    context.set_forkserver_preload(["pipelines.engines.models"])  # workers start with statsforecast imported
-    return context
-
-
-def prestart_pool(engine: EngineSettings) -> bool:
-    """Start the pool's forkserver now, without waiting for it, where a pool may be used (local engine, more
-    than one process); whether it was started.
-
-    The forkserver is a fresh interpreter that spends seconds importing
-    statsforecast; started at the command's start, it does so beside the
-    run's first steps (reading and cleaning the history) on another core,
-    instead of while the first large model group waits for its workers. Its
-    cpu is spent even by a run whose groups all stay below `POOL_MIN_SERIES`.
-    """
-    if engine.on_cluster or local_jobs(engine, POOL_MIN_SERIES, costly=True) < 2:
-        return False
-    from multiprocessing import forkserver
-
-    _pool_context()
-    forkserver.ensure_running()  # spawns the server and returns; the server imports on its own
-    return True
-
-
 def map_on_pool(jobs: int, fit: Callable, frames: list, options: dict, done: Callable[[Any], None]) -> None:
     """Run `fit(frame, **options)` for every frame on a pool of `jobs` processes; `done(result)` as each finishes."""
+    import multiprocessing
     from concurrent.futures import ProcessPoolExecutor, as_completed
 
     with _POOLS_LOCK:  # two threads of a run may fit at once (the backtest's share candidates)
         pool = _POOLS.get(jobs)
         if pool is None:
-            pool = _POOLS[jobs] = ProcessPoolExecutor(jobs, mp_context=_pool_context())
+            context = multiprocessing.get_context("forkserver")
+            context.set_forkserver_preload(["pipelines.engines.models"])  # workers start with statsforecast imported
+            pool = _POOLS[jobs] = ProcessPoolExecutor(jobs, mp_context=context)
             if len(_POOLS) == 1:
                 atexit.register(close_pools)
     for future in as_completed([pool.submit(fit, frame, **options) for frame in frames]):
