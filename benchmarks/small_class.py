@@ -10,7 +10,9 @@ Copies the config with `store.path` (and `inputs.folder`, made absolute) under
 child process each: the first run cold (empty store, new instance), the rest
 warm (the same cycle again into the same store and instance). Each run's wall
 time is taken around the child, its cpu (user + sys) from `getrusage` of the
-children, and the time per step from the run's own events in the instance
+children (the model pool's forkserver and workers too: this process adopts
+the orphans a run leaves and waits for them, `cpu_counts_orphans`), and the
+time per step from the run's own events in the instance
 (STEP_START to STEP_SUCCESS). `imports` is a fresh child importing what the
 command line imports before the first step (the command, the definitions, and
 every module `defs` pulls in), with the heavy libraries it loaded listed.
@@ -71,6 +73,37 @@ IMPORTS = (
 def cpu_children() -> float:
     usage = resource.getrusage(resource.RUSAGE_CHILDREN)
     return usage.ru_utime + usage.ru_stime
+
+
+def adopt_orphans() -> bool:
+    """Make this process the reaper of its descendants' orphans (Linux `PR_SET_CHILD_SUBREAPER`).
+
+    The model pool's forkserver outlives the command by a moment and is never
+    waited for by it, so without this its cpu and its workers' (which it reaps)
+    would be counted by no one here; with it they come back to this process and
+    `reap_orphans` waits for them. False where the call is not available."""
+    try:
+        import ctypes
+
+        return ctypes.CDLL(None, use_errno=True).prctl(36, 1, 0, 0, 0) == 0
+    except (OSError, AttributeError):
+        return False
+
+
+def reap_orphans(timeout: float = 30.0) -> int:
+    """Wait for the orphans a run left (its pool's forkserver), so their cpu is in `cpu_children`; how many."""
+    deadline, count = time.monotonic() + timeout, 0
+    while True:
+        try:
+            pid, _ = os.waitpid(-1, os.WNOHANG)
+        except ChildProcessError:
+            return count
+        if pid:
+            count += 1
+        elif time.monotonic() > deadline:
+            return count
+        else:
+            time.sleep(0.05)
 
 
 def prepare(args: argparse.Namespace) -> tuple[Path, dict]:
@@ -137,6 +170,7 @@ def run_once(args: argparse.Namespace, copy: Path, env: dict, label: str) -> dic
         text=True,
     )
     wall = time.monotonic() - started
+    orphans = reap_orphans()
     cpu = cpu_children() - before
     if out.returncode not in (0,):
         sys.stderr.write(out.stdout[-4000:] + out.stderr[-4000:])
@@ -146,6 +180,7 @@ def run_once(args: argparse.Namespace, copy: Path, env: dict, label: str) -> dic
         "exit_code": out.returncode,
         "wall_s": wall,
         "cpu_s": cpu,
+        "orphans_reaped": orphans,
         "run_id": run_id,
         "steps_s": sum(s["wall_s"] for s in steps),
         "steps": steps,
@@ -233,6 +268,7 @@ def main(argv: list[str] | None = None) -> int:
     args = parse_args(argv)
     copy, env = prepare(args)
     result = {"class": args.product_class, "config": args.config, "tree": args.tree, "runs": []}
+    result["cpu_counts_orphans"] = adopt_orphans()  # the pool's forkserver and workers in each run's cpu
     result["imports"] = time_imports(args, copy, env)
     for i in range(args.runs):
         result["runs"].append(run_once(args, copy, env, "cold" if i == 0 else "warm"))

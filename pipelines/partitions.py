@@ -21,6 +21,8 @@ from __future__ import annotations
 
 import datetime as dt
 import time
+from collections.abc import Iterator
+from contextlib import contextmanager
 
 import dagster as dg
 import pandas as pd
@@ -144,3 +146,34 @@ def current_cycle(config: PlanningConfig, requested: str | None = None) -> str:
             )
         return cycle_key(after)
     return cycle_key(resolve_cycle_date(setting, None, period, str(config.source)))
+
+
+@contextmanager
+def known_partitions(instance: dg.DagsterInstance) -> Iterator[None]:
+    """While a run executes: `instance.has_dynamic_partition` answers a key it found once without asking again.
+
+    Dagster asks the instance whether the run's cycle and class keys exist for
+    every input of every step (752 queries for one class of the demo, two
+    SQLite connections each: about a tenth of a small run's cpu). The keys are
+    registered before the run starts (`register_partitions`) and nothing here
+    deletes one during it, so a key found stays found; a key not found is asked
+    again each time. The instance is as before when the block ends.
+    """
+    if "has_dynamic_partition" in vars(instance):  # already inside such a block
+        yield
+        return
+    ask, found = instance.has_dynamic_partition, set()
+
+    def has_dynamic_partition(partitions_def_name: str, partition_key: str) -> bool:
+        if (partitions_def_name, partition_key) in found:
+            return True
+        if ask(partitions_def_name, partition_key):
+            found.add((partitions_def_name, partition_key))
+            return True
+        return False
+
+    instance.has_dynamic_partition = has_dynamic_partition
+    try:
+        yield
+    finally:
+        del instance.has_dynamic_partition

@@ -25,7 +25,7 @@ import dagster as dg
 
 from pipelines.errors import ConfigError, PlanningError
 from pipelines.jobs import CYCLE_JOB
-from pipelines.partitions import partition_key, register_partitions
+from pipelines.partitions import known_partitions, partition_key, register_partitions
 from pipelines.phases import TO_BACKTEST, PlannedRun, phase_selection, run_plan, second_runs
 from pipelines.shards import split_class_key
 from pipelines.store.dagster_io import process_tags
@@ -209,7 +209,7 @@ def run_partitions(
             started = time.monotonic()
             with store.partition_lock(
                 cycle, planned.key, run_id=run_id, command=command, wait_seconds=wait_seconds, say=say
-            ):
+            ), known_partitions(instance):
                 result = job.execute_in_process(
                     run_config=run_config or {},
                     instance=instance,
@@ -259,12 +259,13 @@ def _run_in_child(
     defs = build_definitions(config_path)
     selection = phase_selection(defs.resolve_asset_graph(), phase, rebuild_selection(defs, first) if first else None)
     try:
+        instance = dagster_instance()
         with store_of(defs).partition_lock(
             cycle, product_class, run_id=run_id, command=command, wait_seconds=wait_seconds, say=print
-        ):
+        ), known_partitions(instance):
             defs.resolve_job_def(CYCLE_JOB).execute_in_process(
                 run_config=run_config,
-                instance=dagster_instance(),
+                instance=instance,
                 partition_key=partition_key(cycle, product_class),
                 asset_selection=selection,
                 raise_on_error=False,

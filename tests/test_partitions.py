@@ -232,3 +232,32 @@ def test_a_class_deciding_over_its_shards_is_scheduled_in_two_phases(tmp_path):
         for r in going:
             instance.add_run(dg.DagsterRun(job_name=CYCLE_JOB, status=dg.DagsterRunStatus.NOT_STARTED, tags=r.tags))
         assert not tick().run_requests
+
+
+def test_known_partitions_asks_a_found_key_once_and_a_missing_key_every_time():
+    """A key found stays found for the run; a missing one is asked again (it may be added meanwhile);
+    the instance's own method is back after the block. Common practice, no source."""
+    from pipelines.partitions import known_partitions
+
+    instance = dg.DagsterInstance.ephemeral()
+    instance.add_dynamic_partitions(CYCLE, ["2026-11-30"])
+    asked = []
+    storage_has = instance._event_storage.has_dynamic_partition
+
+    def counting(name, key):
+        asked.append((name, key))
+        return storage_has(name, key)
+
+    instance._event_storage.has_dynamic_partition = counting
+    with known_partitions(instance):
+        with known_partitions(instance):  # nested: the outer block's answers serve
+            assert instance.has_dynamic_partition(CYCLE, "2026-11-30")
+        assert instance.has_dynamic_partition(CYCLE, "2026-11-30")
+        assert not instance.has_dynamic_partition(CYCLE, "2026-12-07")
+        instance.add_dynamic_partitions(CYCLE, ["2026-12-07"])
+        assert instance.has_dynamic_partition(CYCLE, "2026-12-07")
+        assert instance.has_dynamic_partition(CYCLE, "2026-12-07")
+    assert asked == [(CYCLE, "2026-11-30"), (CYCLE, "2026-12-07"), (CYCLE, "2026-12-07")]
+    assert "has_dynamic_partition" not in vars(instance)
+    assert instance.has_dynamic_partition(CYCLE, "2026-11-30")
+    assert len(asked) == 4  # asked the storage again outside the block

@@ -31,6 +31,7 @@ from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.share_tuning import candidate_name, candidate_settings
 from pipelines.engines.shares import child_frame, compute_shares
 from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
+from pipelines.vocabulary import ShareMethod
 
 
 @dataclass(frozen=True)
@@ -164,10 +165,11 @@ def candidate_bases(
     out: dict[str, np.ndarray] = {}
     share_lookup = None
     frame = child_frame(view.as_seen, children, settings, view.date)  # what no window or method changes, once
-    for w, m in candidates:
+    # children_forecast first: its leaf fits start the model pool, whose start the other candidates then overlap
+    for w, m in sorted(candidates, key=lambda c: c[1] != ShareMethod.CHILDREN_FORECAST):
         candidate = candidate_settings(settings, w, m)
         shares = compute_shares(view.as_seen, children, candidate, view.date, frame)
         share_lookup = lookup(children, LEAF, shares) if share_lookup is None else share_lookup
         basis = period_shares(shares, candidate, view.date, None, view.as_seen, horizon=h)[0]
         out[candidate_name(w, m)] = basis[share_lookup]
-    return out
+    return {candidate_name(w, m): out[candidate_name(w, m)] for w, m in candidates}  # in the candidates' order

@@ -32,6 +32,7 @@ from __future__ import annotations
 
 import atexit
 import os
+import threading
 from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
@@ -122,6 +123,7 @@ def chunks(ids, size: int | None = None) -> list:
 
 
 _POOLS: dict[int, Any] = {}
+_POOLS_LOCK = threading.Lock()
 
 
 def map_on_pool(jobs: int, fit: Callable, frames: list, options: dict, done: Callable[[Any], None]) -> None:
@@ -129,13 +131,14 @@ def map_on_pool(jobs: int, fit: Callable, frames: list, options: dict, done: Cal
     import multiprocessing
     from concurrent.futures import ProcessPoolExecutor, as_completed
 
-    pool = _POOLS.get(jobs)
-    if pool is None:
-        context = multiprocessing.get_context("forkserver")
-        context.set_forkserver_preload(["pipelines.engines.models"])  # workers start with statsforecast imported
-        pool = _POOLS[jobs] = ProcessPoolExecutor(jobs, mp_context=context)
-        if len(_POOLS) == 1:
-            atexit.register(close_pools)
+    with _POOLS_LOCK:  # two threads of a run may fit at once (the backtest's share candidates)
+        pool = _POOLS.get(jobs)
+        if pool is None:
+            context = multiprocessing.get_context("forkserver")
+            context.set_forkserver_preload(["pipelines.engines.models"])  # workers start with statsforecast imported
+            pool = _POOLS[jobs] = ProcessPoolExecutor(jobs, mp_context=context)
+            if len(_POOLS) == 1:
+                atexit.register(close_pools)
     for future in as_completed([pool.submit(fit, frame, **options) for frame in frames]):
         done(future.result())
 

@@ -65,6 +65,7 @@ by their coverage of the raw actuals, bounds included (metric
 from __future__ import annotations
 
 from collections.abc import Callable, Mapping
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -232,19 +233,28 @@ def run_backtest(
     )
     fits = SeriesProgress(len(origins) * per_origin, log)
     kept, demand = [], np.full(data.n_children, "", dtype=object)
-    for k, o in enumerate(origins):
-        if log:
-            log(f"backtest origin {ordinal_to_start(np.array([o]), period)[0].date()}")
-        view = origin_view(data, history, o, h, period, settings.cleaning, settings.seasonal_classes(),
-                           cleaned is not None, log, fits.advance)
-        demand = view.demand
-        for v in variants:
-            for grain in ("parent", "leaf"):
-                books[v].add(k, BENCHMARK, grain, view.bench[grain], view.actual[grain], data_cls(data, grain),
-                             view.scales[grain])
-        base = {v: _base(data, view, settings, products, modes[v], drivers[v], o, log, fits.advance, first_period)
-                for v in variants}
-        bases = candidate_bases(view, data.children, settings.share, union, h)
+    # an origin's share candidates (the children_forecast one waits on the model pool's leaf fits) are made on a
+    # thread of their own while this one makes the origin's base forecasts and the next origin's view; at most one
+    # origin's candidates are pending, so at most two origins' views are held
+    with ThreadPoolExecutor(1, thread_name_prefix="share-candidates") as candidates:
+        for k, o in enumerate(origins):
+            if log:
+                log(f"backtest origin {ordinal_to_start(np.array([o]), period)[0].date()}")
+            view = origin_view(data, history, o, h, period, settings.cleaning, settings.seasonal_classes(),
+                               cleaned is not None, log, fits.advance)
+            demand = view.demand
+            for v in variants:
+                for grain in ("parent", "leaf"):
+                    books[v].add(k, BENCHMARK, grain, view.bench[grain], view.actual[grain], data_cls(data, grain),
+                                 view.scales[grain])
+            if kept:
+                kept[-1][1].result()  # the previous origin's candidates, before this one's are queued
+            bases = candidates.submit(candidate_bases, view, data.children, settings.share, union, h)
+            base = {v: _base(data, view, settings, products, modes[v], drivers[v], o, log, fits.advance,
+                             first_period) for v in variants}
+            kept.append((base, bases, view.actual, view.scales))
+        kept = [(base, bases.result(), actual, scales) for base, bases, actual, scales in kept]
+    for k, (base, bases, actual, scales) in enumerate(kept):  # scored in origin order, as one after the other
         tuned = np.zeros_like(base[variants[0]].parent_fc)  # each class's parents under its first seasonality
         for v in variants:
             rows = np.isin(data.parent_class, [c for c in classes if first[c] == v])
@@ -252,8 +262,7 @@ def run_backtest(
         for name, basis in bases.items():
             _, leaf, _, _ = coherent_forecasts("top_down", tuned, base[variants[0]].leaf_fc, data.parent_of_child,
                                                basis)
-            tune.add(k, name, "leaf", leaf, view.actual["leaf"], data.c_cls, view.scales["leaf"])
-        kept.append((base, bases, view.actual, view.scales))
+            tune.add(k, name, "leaf", leaf, actual["leaf"], data.c_cls, scales["leaf"])
     judged = class_metric(data.c_cls, demand, len(classes), MetricRule(**settings.selection.metric.model_dump()))
     metric, metric_of = judged.metric, dict(zip(classes, judged.metric, strict=True))
     tuning = decide(tune, grid, settings.configured, metric_of, _previous(previous_tuning), settings.stability())
