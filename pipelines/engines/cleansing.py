@@ -333,48 +333,6 @@ def correction_rows(
     )
 
 
-def find_unexplained_changes(cleaned: pd.DataFrame, corrections: pd.DataFrame, tolerance: float = 1e-6) -> pd.DataFrame:
-    """Series periods whose cleaned value differs from the raw net + the audited corrections of that period.
-
-    Per product x site x customer and period: raw_quantity + sum(delta) must
-    equal quantity, so a change cannot hide behind an opposite change in
-    another period of the series. A correction row for a period cleaned_history
-    does not hold is unexplained too.
-    """
-    key = LEAF + ["period_start"]
-    codes = joint_codes(cleaned, corrections, key)
-    if codes is not None and pd.Index(codes[0]).is_unique:
-        return _unexplained_by_code(cleaned, corrections, key, codes, tolerance)
-    cells = cleaned[key + ["raw_quantity", "quantity"]].set_index(key)
-    moved = corrections.groupby(key, sort=True, observed=True)["delta"].sum().rename("corrections")
-    out = cells.join(moved, how="outer")
-    out["corrections"] = out["corrections"].fillna(0.0)
-    out["unexplained"] = out["quantity"] - out["raw_quantity"] - out["corrections"]
-    bad = ~(out["unexplained"].abs() <= tolerance)  # NaN (a correction without its period) is unexplained
-    return out[bad].reset_index()
-
-
-def _unexplained_by_code(
-    cleaned: pd.DataFrame, corrections: pd.DataFrame, key: list[str], codes, tolerance: float
-) -> pd.DataFrame:
-    """find_unexplained_changes on integer codes of the keys (`codes`: joint_codes of the two tables)."""
-    cell_code, corr_code = codes
-    pos = pd.Index(cell_code).get_indexer(corr_code)
-    delta = corrections["delta"].to_numpy(dtype=float)
-    inside = pos >= 0
-    moved = np.bincount(pos[inside], weights=delta[inside], minlength=len(cleaned))
-    unexplained = cleaned["quantity"].to_numpy(dtype=float) - cleaned["raw_quantity"].to_numpy(dtype=float) - moved
-    bad = ~(np.abs(unexplained) <= tolerance)
-    out = cleaned.loc[bad, key + ["raw_quantity", "quantity"]]
-    out = out.assign(corrections=moved[bad], unexplained=unexplained[bad])
-    if not inside.all():  # corrections of a period cleaned_history does not hold: unexplained whatever their sum
-        orphans = corrections.loc[~inside, key + ["delta"]]
-        orphans = orphans.groupby(key, sort=False, observed=True, dropna=False)["delta"].sum().rename("corrections")
-        orphans = orphans.reset_index().assign(raw_quantity=np.nan, quantity=np.nan, unexplained=np.nan)
-        out = pd.concat([out, orphans[out.columns]], ignore_index=True)
-    return out.sort_values(key, kind="stable").reset_index(drop=True)
-
-
 def line_accounting(raw_lines: int, cleaned: pd.DataFrame, rejected: pd.DataFrame) -> dict[str, int]:
     """Raw lines against used (summed into cleaned periods) plus rejected lines."""
     used = int(cleaned["lines"].sum())

@@ -120,7 +120,6 @@ from pipelines.config_inputs import PlausibilityConfig
 from pipelines.config_sections import CleansingConfig, ProductClassConfig
 from pipelines.engines.cleansing import (
     cycle_calendar,
-    find_unexplained_changes,
     line_accounting,
     reject_lines,
     shortage_grid,
@@ -128,6 +127,7 @@ from pipelines.engines.cleansing import (
     sorted_corrections,
 )
 from pipelines.engines.cleansing_blocks import BLOCK_CELLS, Grid, Lines, class_summary, clean_blocks
+from pipelines.engines.history_proofs import find_unexplained_changes
 from pipelines.engines.proofs import find_unaccounted_lines
 from pipelines.engines.report_charts import corrections_chart
 from pipelines.keys import LEAF, lookup
