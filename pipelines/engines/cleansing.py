@@ -125,7 +125,7 @@ def reject_lines(
     at = np.flatnonzero(ok)
     leaf_code, distinct = pd.factorize(line_code[ok])
     leaf_code = leaf_code.astype(np.int64)
-    leaves = raw[LEAF].iloc[at[first_rows(leaf_code)]].reset_index(drop=True) if len(at) else raw[LEAF].iloc[0:0]
+    leaves = raw.iloc[at[first_rows(leaf_code)]][LEAF].reset_index(drop=True) if len(at) else raw[LEAF].iloc[0:0]
     used = UsedLines(leaf_code, leaves.reset_index(drop=True), ordinals[ok], qty[ok])
     rejected = raw.loc[~ok].drop(columns=["read_error"], errors="ignore").copy()
     rejected["reason"] = np.array([None, *reasons], dtype=object)[reason[~ok]]
@@ -320,17 +320,40 @@ def correction_rows(
     b, a = before[i, j], after[i, j]
     if figures or adjusted is not None:
         picked = {k: v[i, j] for k, v in (figures or {}).items()}
-        extra = [{k: round(float(v[r]), 6) for k, v in picked.items() if not np.isnan(v[r])} for r in range(len(i))]
-        if adjusted is not None:
-            for r, e in enumerate(extra):
-                e["seasonal_adjusted"] = bool(adjusted[i[r]])
-        parameters = [json.dumps(params | e) for e in extra]
+        parameters = _parameter_texts(params, picked, None if adjusted is None else adjusted[i])
     else:
         parameters = json.dumps(params)
     leaf = i if leaf_index is None else np.asarray(leaf_index)[i]
     return pd.DataFrame(
         {"leaf": leaf, "col": j, "rule": rule, "before": b, "after": a, "delta": a - b, "parameters": parameters}
     )
+
+
+def _parameter_texts(params: dict, picked: dict[str, np.ndarray], adjusted: np.ndarray | None) -> list[str]:
+    """Per row: `json.dumps(params | figures | {"seasonal_adjusted": ...})`, the figures rounded to 6 places and
+    NaN ones left out. Written a column at a time: json.dumps writes a float as its `repr`, a bool as true/false,
+    and `params` (the rule's) comes first, so the text is the same; a key of `picked` also in `params`, or an
+    infinite figure, is left to json.dumps row by row."""
+    n = len(next(iter(picked.values()))) if picked else 0 if adjusted is None else len(adjusted)
+    if set(picked) & set(params) or "seasonal_adjusted" in params or any(np.isinf(v).any() for v in picked.values()):
+        extra = [{k: round(float(v[r]), 6) for k, v in picked.items() if not np.isnan(v[r])} for r in range(n)]
+        if adjusted is not None:
+            for r, e in enumerate(extra):
+                e["seasonal_adjusted"] = bool(adjusted[r])
+        return [json.dumps(params | e) for e in extra]
+    head = json.dumps(params)[:-1]  # without its closing brace
+    texts = np.full(n, head, dtype=object)
+    first = np.full(n, not params)  # no member written yet
+    for k, v in picked.items():
+        has = ~np.isnan(v)
+        name = json.dumps(k) + ": "
+        written = [name + repr(round(float(x), 6)) for x in v[has]]
+        texts[has] = texts[has] + np.where(first[has], "", ", ").astype(object) + np.array(written, dtype=object)
+        first[has] = False
+    if adjusted is not None:
+        flag = np.where(np.asarray(adjusted, dtype=bool), '"seasonal_adjusted": true', '"seasonal_adjusted": false')
+        texts = texts + np.where(first, "", ", ") + flag.astype(object)
+    return list(texts + "}")
 
 
 def line_accounting(raw_lines: int, cleaned: pd.DataFrame, rejected: pd.DataFrame) -> dict[str, int]:

@@ -31,7 +31,7 @@ def leaf_runs(frame: pd.DataFrame) -> tuple[np.ndarray, pd.DataFrame] | None:
     starts = run_starts([frame[c].to_numpy() for c in LEAF])
     if len(frame) and len(starts) * RUNS_SHARE > len(frame):
         return None
-    heads = frame[LEAF].iloc[starts].reset_index(drop=True)
+    heads = pd.DataFrame({c: frame[c].to_numpy()[starts] for c in LEAF})  # `frame[LEAF]` would copy every row
     if heads.isna().any().any():
         return None
     return starts, heads
@@ -116,7 +116,7 @@ def _unexplained_at(
     moved = np.bincount(pos[inside], weights=delta[inside], minlength=len(cleaned))
     unexplained = cleaned["quantity"].to_numpy(dtype=float) - cleaned["raw_quantity"].to_numpy(dtype=float) - moved
     bad = ~(np.abs(unexplained) <= tolerance)
-    out = cleaned.loc[bad, key + ["raw_quantity", "quantity"]]
+    out = cleaned.iloc[np.flatnonzero(bad)][key + ["raw_quantity", "quantity"]]  # the few rows, then their columns
     out = out.assign(corrections=moved[bad], unexplained=unexplained[bad])
     if not inside.all():  # corrections of a period cleaned_history does not hold: unexplained whatever their sum
         orphans = corrections.loc[~inside, key + ["delta"]]

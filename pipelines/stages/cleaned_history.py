@@ -191,7 +191,9 @@ def clean_history(
 
     # --- long tables
     cells = blocks.cells()
-    cleaned = leaves.iloc[cells.pop("leaf")].reset_index(drop=True)
+    leaf = cells.pop("leaf")
+    cleaned = pd.DataFrame({c: leaves[c].to_numpy()[leaf] for c in LEAF}, copy=False)  # each key column taken once
+    del leaf
     cleaned["period_start"] = ordinal_to_start(cells.pop("col") + first_ord, period)
     for name in ("quantity", "raw_quantity", "lines", "filled", "corrected", "shortage"):
         cleaned[name] = cells.pop(name)

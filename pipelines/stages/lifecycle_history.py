@@ -37,6 +37,7 @@ from pipelines.config import CalendarConfig, PlanningConfig
 from pipelines.errors import LifecycleError
 from pipelines.keys import LEAF, add_ids, factorize, lookup
 from pipelines.results import Log, StageResult, quiet
+from pipelines.text_codes import run_starts
 
 HISTORY_COLUMNS = LEAF + ["period_start", "quantity", "origin", "source_product", "source_customer", "shortage"]
 AUDIT_COLUMNS = LEAF + ["rule", "periods", "quantity", "detail"]
@@ -101,19 +102,16 @@ def leaf_codes(frame: pd.DataFrame) -> tuple[np.ndarray, pd.DataFrame]:
     """`keys.factorize(frame, LEAF)` through the runs of equal keys: codes by first appearance and the leaves.
 
     The cleaned history holds each leaf's periods one after another, so only the
-    first row of each run of equal keys is hashed (one row per leaf), not every
-    row; any order of rows gives the same codes, a shuffled one just more runs.
+    first row of each run of one key object is hashed (`text_codes.run_starts`:
+    about one row per leaf), not every row; any order of rows gives the same
+    codes, a shuffled one just more runs.
     """
     n = len(frame)
     if n == 0:
         return factorize(frame, LEAF)
-    change = np.zeros(n, dtype=bool)
-    change[0] = True
-    for c in LEAF:
-        values = frame[c].to_numpy()
-        change[1:] |= values[1:] != values[:-1]
-    starts = np.flatnonzero(change)
-    run_code, leaves = factorize(frame[LEAF].iloc[starts], LEAF)
+    starts = run_starts([frame[c].to_numpy() for c in LEAF])
+    heads = pd.DataFrame({c: frame[c].to_numpy()[starts] for c in LEAF})  # `frame[LEAF]` would copy every row
+    run_code, leaves = factorize(heads, LEAF)
     return np.repeat(run_code.astype(_index_type(len(leaves))), np.diff(np.append(starts, n))), leaves
 
 
@@ -253,17 +251,19 @@ def apply_lifecycle(
     order = _sort_order(rank[key_code][key], day_rank[rows], is_moved, source_rank[leaf[rows]])
     rows, is_moved, key = rows[order], is_moved[order], key[order]
     del order, day_rank
-    out = all_keys.iloc[key].reset_index(drop=True)
+    source = leaf[rows]
+    out = {c: all_keys[c].to_numpy()[key] for c in LEAF}
     out["period_start"] = starts[rows]
     out["quantity"] = quantity[rows]
     out["origin"] = np.array(["own", "successor"], dtype=object)[is_moved.view(np.int8)]
-    source = leaf[rows]
     out["source_product"] = leaves["product"].to_numpy(dtype=object)[source]
     out["source_customer"] = leaves["customer"].to_numpy(dtype=object)[source]
     out["shortage"] = shortage[rows]
     audit = _stack(audits, AUDIT_COLUMNS)
     audit = audit.astype({"periods": np.int64, "quantity": float})
-    return LifecycleResult(history=out[HISTORY_COLUMNS], audit=audit.reset_index(drop=True))
+    # the new columns become the frame as they are (the default would copy each into consolidated blocks)
+    history = pd.DataFrame({c: out.pop(c) for c in HISTORY_COLUMNS}, copy=False)
+    return LifecycleResult(history=history, audit=audit.reset_index(drop=True))
 
 
 @dataclass(frozen=True)
