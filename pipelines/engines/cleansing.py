@@ -149,6 +149,15 @@ def _repeated_in_earlier_file(
     if len(files) < 2:  # as `nunique`: a missing file name is not a file
         return out
     at = np.flatnonzero(candidate)
+    # a repeat has the date of a line of an earlier file: only the lines of such dates are grouped
+    day, file = same_value[0][at], file_code[at]
+    earliest = np.full(int(day.max()) + 1, np.iinfo(np.int64).max, dtype=np.int64)
+    np.minimum.at(earliest, day, file)
+    shared_day = np.zeros(len(earliest), dtype=bool)
+    shared_day[day[file > earliest[day]]] = True
+    at = at[shared_day[day]]
+    if not len(at):
+        return out
     parts = [line_code[at], same_value[0][at], same_value[1][at]]
     sizes = [int(part.max()) + 1 for part in parts]
     file = file_code[at]
