@@ -21,8 +21,8 @@ from pipelines.calendar import (
     resolve_cycle_date,
 )
 from pipelines.config_inputs import PlausibilityConfig
-from pipelines.engines.plausible import gap_periods, parse_dates, trusted_extent, year_outside
-from pipelines.keys import LEAF, PARENT, factorize, first_rows, joint_codes, lookup
+from pipelines.engines.plausible import distinct_dates, distinct_quantities, gap_periods, trusted_extent
+from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
 from pipelines.text_codes import codes_of
 
 
@@ -72,12 +72,12 @@ def reject_lines(
     # each text column coded once (`text_codes`); its rules judged on its distinct values, reached by the codes
     key_codes = {c: codes_of(raw[c], use_na_sentinel=False) for c in LEAF}
     mark(np.logical_or.reduce([(u == "")[k] for k, u in key_codes.values()]), "missing_key")
-    day = _distinct_dates(raw["period_start"])
+    day = distinct_dates(raw["period_start"])
     # a date pandas cannot hold (year 9999) is still a date, outside the window: looked for among the unparsed only
     outside = day.take(day.outside)
     unparsed = day.take(day.value_nat)
     mark(unparsed & (outside == 0), "bad_date")
-    qty_code, qty_values = _distinct_quantities(raw["quantity"])
+    qty_code, qty_values = distinct_quantities(raw["quantity"])
     qty = qty_values[qty_code]
     mark(~np.isfinite(qty), "bad_quantity")
     size = np.abs(np.nan_to_num(qty, nan=0.0, posinf=0.0, neginf=0.0))
@@ -172,53 +172,6 @@ def _repeated_in_earlier_file(
     np.minimum.at(first, group, file)  # each group's earliest file (files numbered in the order read)
     out[at[file > first[group]]] = True
     return out
-
-
-@dataclass(frozen=True)
-class _Dates:
-    """The date cells of the lines coded by their distinct text (`text_codes.codes_of`); each rule of a date
-    judged once per distinct cell. The last slot stands for a missing cell (no date, not outside the window)."""
-
-    code: np.ndarray  # per line: its distinct cell
-    value: np.ndarray  # per distinct cell: the date (`parse_dates`), datetime64[ns], NaT where none
-    value_nat: np.ndarray  # per distinct cell: no date
-    outside: np.ndarray  # per distinct cell: `year_outside` where no date, else 0
-    value_code: np.ndarray  # per distinct cell: equal exactly where the dates are (NaT one code)
-
-    def take(self, per_cell: np.ndarray) -> np.ndarray:
-        return per_cell[self.code]
-
-    def ordinals(self, period: str) -> np.ndarray:
-        """Period ordinal of each distinct date (0 where none)."""
-        out = np.zeros(len(self.value), dtype=np.int64)
-        if (~self.value_nat).any():
-            days = pd.Series(self.value[~self.value_nat])
-            out[~self.value_nat] = period_ordinal(period_start(days, period), period)
-        return out
-
-
-def _distinct_dates(text: pd.Series) -> _Dates:
-    code, cells = codes_of(text)
-    code = np.where(code < 0, len(cells), code)
-    parsed = parse_dates(pd.Series(cells, dtype=text.dtype)).to_numpy(dtype="datetime64[ns]")
-    value = np.append(parsed, np.datetime64("NaT", "ns"))
-    nat = np.isnat(value)
-    outside = np.zeros(len(value), dtype=np.int64)
-    if nat[:-1].any():
-        outside[:-1][nat[:-1]] = year_outside(pd.Series(cells[nat[:-1]], dtype=text.dtype))
-    return _Dates(code, value, nat, outside, pd.factorize(value.view(np.int64))[0])
-
-
-def _distinct_quantities(text: pd.Series) -> tuple[np.ndarray, np.ndarray]:
-    """(code per line, parsed quantity per code): `pd.to_numeric(errors="coerce")` on the distinct cells only,
-    a missing cell among them when the column has one (so the parse sees the same kinds of cells)."""
-    code, cells = codes_of(text)
-    missing = code < 0
-    if missing.any():
-        cells = np.append(cells, None)
-        code = np.where(missing, len(cells) - 1, code)
-    parsed = pd.to_numeric(pd.Series(cells, dtype=text.dtype if not missing.any() else object), errors="coerce")
-    return code, parsed.to_numpy(dtype=float, na_value=np.nan)
 
 
 def _read_errors(cells: pd.Series):

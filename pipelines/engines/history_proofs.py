@@ -149,9 +149,19 @@ def accounted_lines(raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: pd.DataF
         return None
     raw_id = raw_file * width + (raw_row - low)
     rej_id = rej_file * width + (rej_row - low)
-    unknown = ~pd.Series(rej_id).isin(raw_id).to_numpy()
     twice = pd.Series(rej_id).duplicated(keep="first").to_numpy()
-    in_rejected = pd.Series(raw_id).isin(rej_id).to_numpy()
+    if len(files) * width <= 4 * len(raw) + 1_000_000:  # the lines as a dense file x row table, marked
+        of_raw = rej_file < len(files)  # a rejected row of a file no raw line is of names no raw line
+        held = np.zeros(len(files) * width, dtype=bool)
+        held[raw_id] = True
+        unknown = ~of_raw
+        unknown[of_raw] = ~held[rej_id[of_raw]]
+        named = np.zeros(len(files) * width, dtype=bool)
+        named[rej_id[of_raw]] = True
+        in_rejected = named[raw_id]
+    else:
+        unknown = ~pd.Series(rej_id).isin(raw_id).to_numpy()
+        in_rejected = pd.Series(raw_id).isin(rej_id).to_numpy()
 
     # per leaf: raw lines - rejected lines against the lines cleaned_history summed
     (raw_starts, raw_heads), (cl_starts, cl_heads) = raw_runs, cleaned_runs
