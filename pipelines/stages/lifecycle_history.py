@@ -35,9 +35,9 @@ import pandas as pd
 from pipelines.calendar import active_mask, period_ordinal, span_bounds
 from pipelines.config import CalendarConfig, PlanningConfig
 from pipelines.errors import LifecycleError
-from pipelines.keys import LEAF, add_ids, factorize, lookup
+from pipelines.keys import ID_DTYPE, LEAF, LEAF_ID, PARENT_ID, factorize, lookup
 from pipelines.results import Log, StageResult, quiet
-from pipelines.text_codes import run_starts
+from pipelines.text_codes import codes_of, run_starts
 
 HISTORY_COLUMNS = LEAF + ["period_start", "quantity", "origin", "source_product", "source_customer", "shortage"]
 AUDIT_COLUMNS = LEAF + ["rule", "periods", "quantity", "detail"]
@@ -47,6 +47,8 @@ AUDIT_COLUMNS = LEAF + ["rule", "periods", "quantity", "detail"]
 class LifecycleResult:
     history: pd.DataFrame
     audit: pd.DataFrame
+    # (leaf_id, parent_id) of each history row: `keys.key_ids(history)`, from the ranks the sort already made
+    ids: tuple[np.ndarray, np.ndarray] | None = None
 
 
 def resolve_successors(products: pd.DataFrame) -> pd.Series:
@@ -251,6 +253,7 @@ def apply_lifecycle(
     order = _sort_order(rank[key_code][key], day_rank[rows], is_moved, source_rank[leaf[rows]])
     rows, is_moved, key = rows[order], is_moved[order], key[order]
     del order, day_rank
+    ids = _ids_of_ranks(rank[key_code][key], distinct.iloc[np.argsort(rank)].reset_index(drop=True))
     source = leaf[rows]
     out = {c: all_keys[c].to_numpy()[key] for c in LEAF}
     out["period_start"] = starts[rows]
@@ -263,7 +266,23 @@ def apply_lifecycle(
     audit = audit.astype({"periods": np.int64, "quantity": float})
     # the new columns become the frame as they are (the default would copy each into consolidated blocks)
     history = pd.DataFrame({c: out.pop(c) for c in HISTORY_COLUMNS}, copy=False)
-    return LifecycleResult(history=history, audit=audit.reset_index(drop=True))
+    return LifecycleResult(history=history, audit=audit.reset_index(drop=True), ids=ids)
+
+
+def _ids_of_ranks(ranks: np.ndarray, ranked: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """`keys.key_ids` of rows sorted by their leaf's rank in key order (`ranks`; `ranked`: the keys by rank):
+    a leaf's id is its place among the leaves present, a parent's among the parents present, both in key order."""
+    if not len(ranks):
+        return np.zeros(0, ID_DTYPE), np.zeros(0, ID_DTYPE)
+    new_leaf = np.ones(len(ranks), dtype=bool)
+    new_leaf[1:] = ranks[1:] != ranks[:-1]
+    leaf_id = np.cumsum(new_leaf) - 1
+    present = ranked.iloc[ranks[new_leaf]]
+    product, site = present["product"].to_numpy(object), present["site"].to_numpy(object)
+    new_parent = np.ones(len(present), dtype=bool)
+    new_parent[1:] = (product[1:] != product[:-1]) | (site[1:] != site[:-1])
+    parent_of_leaf = np.cumsum(new_parent) - 1
+    return leaf_id.astype(ID_DTYPE), parent_of_leaf[leaf_id].astype(ID_DTYPE)
 
 
 @dataclass(frozen=True)
@@ -288,18 +307,32 @@ def run(
     """lifecycle_history and lifecycle_audit, with what each rule moved."""
     cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
     result = apply_lifecycle(cleaned_history, products, customer_spans, settings, cycle_date)
-    history, audit = add_ids(result.history), result.audit  # the leaf and parent ids the later stages carry
+    history, audit = result.history, result.audit
+    history[LEAF_ID], history[PARENT_ID] = result.ids  # the leaf and parent ids the later stages carry
     by_rule = audit.groupby("rule").agg(
         leaves=("customer", "size"), periods=("periods", "sum"), quantity=("quantity", "sum")
     )
-    by_origin = history.groupby("origin").agg(rows=("quantity", "size"), quantity=("quantity", "sum"))
+    by_origin = _by_origin(history)
     return StageResult(
         outputs={"lifecycle_history": history, "lifecycle_audit": audit},
         metadata={
             "lifecycle_history": {
-                "by_origin": by_origin.reset_index(),
+                "by_origin": by_origin,
                 "shortage_rows": int(history["shortage"].sum()),
             },
             "lifecycle_audit": {"by_rule": by_rule.reset_index()},
         },
     )
+
+
+def _by_origin(history: pd.DataFrame) -> pd.DataFrame:
+    """Rows and quantity per origin, as `groupby("origin").agg(...).reset_index()`, grouped on the origin's
+    codes (`text_codes.codes_of`: two objects in long runs) instead of hashing every row's text."""
+    code, origins = codes_of(history["origin"])
+    grouped = history["quantity"].groupby(code, sort=False).agg(["size", "sum"])
+    grouped = grouped[grouped.index >= 0]  # a missing origin: left out, as groupby leaves it out
+    out = pd.DataFrame(
+        {"origin": origins[grouped.index.to_numpy()], "rows": grouped["size"].to_numpy(np.int64),
+         "quantity": grouped["sum"].to_numpy(float)}
+    )
+    return out.sort_values("origin", kind="stable").reset_index(drop=True)
