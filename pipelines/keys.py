@@ -5,6 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from pipelines.text_codes import RUNS_SHARE, codes_of, run_starts
+
 LEAF = ["product", "site", "customer"]
 PARENT = ["product", "site"]
 
@@ -15,12 +17,17 @@ def factorize(df: pd.DataFrame, cols: list[str]) -> tuple[np.ndarray, pd.DataFra
     `uniques.iloc[code]` gives back the key of a row; codes follow first appearance.
     """
     if len(cols) == 1:
-        codes, uniques = pd.factorize(df[cols[0]])
-        return codes.astype(np.int64), pd.DataFrame({cols[0]: np.asarray(uniques)})
+        codes, uniques = codes_of(df[cols[0]])
+        return codes, pd.DataFrame({cols[0]: uniques})
+    if len(df) >= 1024 and all(df[c].dtype == object for c in cols):  # rows in runs of one key: the runs coded
+        starts = run_starts([df[c].to_numpy() for c in cols])
+        if len(starts) * RUNS_SHARE <= len(df):
+            codes, uniques = factorize(df.iloc[starts], cols)
+            return np.repeat(codes, np.diff(np.append(starts, len(df)))), uniques
     combined = np.zeros(len(df), dtype=np.int64)
     capacity = 1
     for c in cols:
-        k, u = pd.factorize(df[c])
+        k, u = codes_of(df[c])
         capacity *= max(len(u), 1)
         if capacity >= 2**62:  # cannot pack: fall back to pandas' own grouping
             codes = df.groupby(cols, sort=False, dropna=False).ngroup().to_numpy(np.int64)

@@ -296,3 +296,25 @@ def test_packed_sort_order_is_the_lexsort_order():
     dest, period, moved, source = (rng.integers(0, k, 500) for k in (7, 5, 2, 3))
     got = _sort_order(dest, period + 100, moved.astype(bool), source)
     assert got.tolist() == np.lexsort((source, moved, period, dest)).tolist()
+
+
+def test_ids_from_the_sort_are_the_key_ids_of_the_history(make_cleaned, make_products, make_spans, config):
+    """The ids `apply_lifecycle` derives from its sort are `keys.key_ids` of its history (the reference: the ids
+    coded from the text keys), with a successor's rows joining an own leaf, a leaf dropped and two sites."""
+    from pipelines.keys import key_ids
+    from pipelines.stages.lifecycle_history import _by_origin
+
+    products = make_products([("P0", "a", None, "2026-01-20", "P2"), ("P1", "a"), ("P2", "a")])
+    spans = make_spans(
+        [("P0", "S1", "C1"), ("P2", "S1", "C1"), ("P1", "S2", "C3"), ("P1", "S1", "C2", None, "2026-01-10"),
+         ("P1", "S1", "C1")]
+    )
+    rows = [(p, s, c, w, q) for p, s, c in [("P1", "S2", "C3"), ("P0", "S1", "C1"), ("P2", "S1", "C1"),
+                                           ("P1", "S1", "C2"), ("P1", "S1", "C1")] for w, q in [(W1, 2), (W3, 5)]]
+    res = apply_lifecycle(make_cleaned(rows), products, spans, config, CYCLE)
+    assert "successor" in set(res.history["origin"]) and "C2" not in set(res.history["customer"])
+    leaf_id, parent_id = key_ids(res.history)
+    assert res.ids[0].tolist() == leaf_id.tolist() == [0, 0, 1, 1, 2, 2, 2, 2]
+    assert res.ids[1].tolist() == parent_id.tolist() == [0, 0, 1, 1, 2, 2, 2, 2]
+    grouped = res.history.groupby("origin").agg(rows=("quantity", "size"), quantity=("quantity", "sum"))
+    pd.testing.assert_frame_equal(_by_origin(res.history), grouped.reset_index())

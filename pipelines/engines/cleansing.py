@@ -21,8 +21,9 @@ from pipelines.calendar import (
     resolve_cycle_date,
 )
 from pipelines.config_inputs import PlausibilityConfig
-from pipelines.engines.plausible import gap_periods, parse_dates, trusted_extent, year_outside
-from pipelines.keys import LEAF, PARENT, factorize, first_rows, joint_codes, lookup
+from pipelines.engines.plausible import distinct_dates, distinct_quantities, gap_periods, trusted_extent
+from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
+from pipelines.text_codes import codes_of
 
 
 @dataclass(frozen=True)
@@ -44,9 +45,11 @@ def reject_lines(
     `first_period` (a shard of a class, `pipelines.shards`): the class's first trusted period (ordinal), so the
     shard rejects as `isolated_date` exactly the lines the whole class would; None: from these lines.
 
-    Returns (used, rejected, cycle_date). The keys are coded once, as integers
-    (`keys.joint_codes` over the lines and the spans), so the lines are never
-    copied as text. The reasons, first that applies:
+    Returns (used, rejected, cycle_date). Each text column is coded once
+    (`text_codes.codes_of`) and each rule on a cell (a date, a quantity, a
+    known product) is judged once per distinct cell; the keys are packed into
+    one integer jointly with the spans' (as `keys.joint_codes`), so the lines
+    are never copied as text. The reasons, first that applies:
     the reader's (`read_error`), `missing_key`, `bad_date`, `bad_quantity`,
     `quantity_out_of_bounds`, `unknown_product`, `no_customer_span`,
     `duplicate_of_other_file`, `date_before_window`, `date_after_window`,
@@ -64,36 +67,40 @@ def reject_lines(
             reason[mask] = reasons.index(why) + 1
 
     if "read_error" in raw.columns:
-        read_error = raw["read_error"].astype(str)
-        for why in pd.unique(read_error[read_error != ""]):
-            mark((read_error == why).to_numpy(), why)
-    mark(np.logical_or.reduce([(raw[c] == "").to_numpy(dtype=bool) for c in LEAF]), "missing_key")
-    dates = parse_dates(raw["period_start"])
+        for why, mask in _read_errors(raw["read_error"]):
+            mark(mask, why)
+    # each text column coded once (`text_codes`); its rules judged on its distinct values, reached by the codes
+    key_codes = {c: codes_of(raw[c], use_na_sentinel=False) for c in LEAF}
+    mark(np.logical_or.reduce([(u == "")[k] for k, u in key_codes.values()]), "missing_key")
+    day = distinct_dates(raw["period_start"])
     # a date pandas cannot hold (year 9999) is still a date, outside the window: looked for among the unparsed only
-    outside = np.zeros(len(raw), dtype=np.int64)
-    unparsed = dates.isna().to_numpy()
-    if unparsed.any():
-        outside[unparsed] = year_outside(raw["period_start"][unparsed])
-    mark(dates.isna().to_numpy() & (outside == 0), "bad_date")
-    qty = pd.to_numeric(raw["quantity"], errors="coerce").to_numpy(dtype=float, na_value=np.nan)
+    outside = day.take(day.outside)
+    unparsed = day.take(day.value_nat)
+    mark(unparsed & (outside == 0), "bad_date")
+    qty_code, qty_values = distinct_quantities(raw["quantity"])
+    qty = qty_values[qty_code]
     mark(~np.isfinite(qty), "bad_quantity")
     size = np.abs(np.nan_to_num(qty, nan=0.0, posinf=0.0, neginf=0.0))
     mark(size > plausible.max_abs_quantity, "quantity_out_of_bounds")
-    mark(~raw["product"].isin(products["product"]), "unknown_product")
-    codes = joint_codes(raw, spans, LEAF)
+    product_code, product_text = key_codes["product"]
+    mark(~pd.Series(product_text).isin(products["product"]).to_numpy()[product_code], "unknown_product")
+    codes = _joint_leaf_codes(key_codes, spans)
+    del key_codes
     if codes is None:  # too many distinct keys to pack into one integer: pandas' own grouping
         codes = factorize(pd.concat([raw[LEAF], spans[LEAF]], ignore_index=True), LEAF)[0]
         codes = codes[: len(raw)], codes[len(raw) :]
     line_code = codes[0]
     mark(~pd.Series(line_code).isin(codes[1]).to_numpy(), "no_customer_span")
     del codes
-    mark(_repeated_in_earlier_file(raw, line_code, dates, qty, reason == 0), "duplicate_of_other_file")
+    same_value = (day.take(day.value_code), pd.factorize(qty_values, use_na_sentinel=False)[0][qty_code])
+    mark(_repeated_in_earlier_file(raw, line_code, same_value, reason == 0), "duplicate_of_other_file")
 
     # the cycle date: given, or the period after the trusted end of the usable lines
-    ok = (reason == 0) & dates.notna().to_numpy()
+    has_date = ~unparsed
+    ok = (reason == 0) & has_date
     ordinals = np.full(len(raw), np.iinfo(np.int64).min, dtype=np.int64)
     if ok.any():
-        ordinals[ok] = period_ordinal(period_start(dates[ok], period), period)
+        ordinals[ok] = day.ordinals(period)[day.code[ok]]
     gap = gap_periods(plausible.isolation_gap_years, period)
     last = None
     if ok.any() and calendar.cycle_date == LATEST_COMPLETE_PERIOD:
@@ -105,20 +112,20 @@ def reject_lines(
     # plausible dates: inside the window around the cycle date, not cut off from the rest of the history
     lowest = cycle_date - pd.Timedelta(days=round(plausible.years_before_cycle * 365.2425))
     highest = cycle_date + pd.Timedelta(days=round(plausible.years_after_cycle * 365.2425))
-    with np.errstate(invalid="ignore"):
-        mark((dates < lowest).to_numpy() | (outside < 0), "date_before_window")
-        mark((dates >= highest).to_numpy() | (outside > 0), "date_after_window")
-    history = (reason == 0) & (ordinals < cycle_ord) & dates.notna().to_numpy()
+    values = pd.Series(day.value)
+    mark(day.take((values < lowest).to_numpy()) | (outside < 0), "date_before_window")
+    mark(day.take((values >= highest).to_numpy()) | (outside > 0), "date_after_window")
+    history = (reason == 0) & (ordinals < cycle_ord) & has_date
     if history.any():
         first_ord = trusted_extent(ordinals[history], gap, trim_end=False)[0] if first_period is None else first_period
         mark(history & (ordinals < first_ord), "isolated_date")
-    mark((reason == 0) & dates.notna().to_numpy() & (ordinals >= cycle_ord), "on_or_after_cycle_date")
+    mark((reason == 0) & has_date & (ordinals >= cycle_ord), "on_or_after_cycle_date")
 
     ok = reason == 0
     at = np.flatnonzero(ok)
     leaf_code, distinct = pd.factorize(line_code[ok])
     leaf_code = leaf_code.astype(np.int64)
-    leaves = raw[LEAF].iloc[at[first_rows(leaf_code)]].reset_index(drop=True) if len(at) else raw[LEAF].iloc[0:0]
+    leaves = raw.iloc[at[first_rows(leaf_code)]][LEAF].reset_index(drop=True) if len(at) else raw[LEAF].iloc[0:0]
     used = UsedLines(leaf_code, leaves.reset_index(drop=True), ordinals[ok], qty[ok])
     rejected = raw.loc[~ok].drop(columns=["read_error"], errors="ignore").copy()
     rejected["reason"] = np.array([None, *reasons], dtype=object)[reason[~ok]]
@@ -126,29 +133,77 @@ def reject_lines(
 
 
 def _repeated_in_earlier_file(
-    raw: pd.DataFrame, line_code: np.ndarray, dates: pd.Series, qty: np.ndarray, candidate: np.ndarray
+    raw: pd.DataFrame, line_code: np.ndarray, same_value: tuple[np.ndarray, np.ndarray], candidate: np.ndarray
 ) -> np.ndarray:
     """True for a line whose keys, date and quantity (parsed) are those of a line of an earlier file.
 
     Files come in the order they were read (sorted by name); repeats inside one
     file are separate shipments and stay. Only `candidate` lines are compared;
-    `line_code` is equal exactly where two lines' keys are.
+    `line_code` is equal exactly where two lines' keys are, `same_value` (date
+    code, quantity code) exactly where their parsed date and quantity are.
     """
     out = np.zeros(len(raw), dtype=bool)
-    if "source_file" not in raw.columns or raw["source_file"].nunique() < 2 or not candidate.any():
+    if "source_file" not in raw.columns or not candidate.any():
         return out
-    file_code = pd.factorize(raw["source_file"])[0]
-    lines = pd.DataFrame(
-        {
-            "leaf": line_code[candidate],
-            "date": dates[candidate].to_numpy(dtype="datetime64[ns]").view(np.int64),
-            "qty": qty[candidate],
-            "file": file_code[candidate],
-        }
-    )
-    first = lines.groupby(["leaf", "date", "qty"], sort=False, dropna=False)["file"].transform("min").to_numpy()
-    out[np.flatnonzero(candidate)[lines["file"].to_numpy() > first]] = True
+    file_code, files = codes_of(raw["source_file"])
+    if len(files) < 2:  # as `nunique`: a missing file name is not a file
+        return out
+    at = np.flatnonzero(candidate)
+    # a repeat has the date of a line of an earlier file: only the lines of such dates are grouped
+    day, file = same_value[0][at], file_code[at]
+    earliest = np.full(int(day.max()) + 1, np.iinfo(np.int64).max, dtype=np.int64)
+    np.minimum.at(earliest, day, file)
+    shared_day = np.zeros(len(earliest), dtype=bool)
+    shared_day[day[file > earliest[day]]] = True
+    at = at[shared_day[day]]
+    if not len(at):
+        return out
+    parts = [line_code[at], same_value[0][at], same_value[1][at]]
+    sizes = [int(part.max()) + 1 for part in parts]
+    file = file_code[at]
+    if np.prod([float(k) for k in sizes]) < 2.0**62:
+        group = parts[0].astype(np.int64)
+        for part, size in zip(parts[1:], sizes[1:], strict=True):
+            group = group * size + part
+        group = pd.factorize(group)[0]
+    else:
+        group = pd.DataFrame(dict(enumerate(parts))).groupby([0, 1, 2], sort=False).ngroup().to_numpy()
+    first = np.full(int(group.max()) + 1, np.iinfo(np.int64).max, dtype=np.int64)
+    np.minimum.at(first, group, file)  # each group's earliest file (files numbered in the order read)
+    out[at[file > first[group]]] = True
     return out
+
+
+def _read_errors(cells: pd.Series):
+    """(reason, mask of lines) per distinct reader error (the cell as text, `astype(str)`; blank: none)."""
+    code, distinct = codes_of(cells)
+    text = pd.Series(distinct, dtype=object).astype(str).to_numpy(dtype=object)
+    missing = np.flatnonzero(code < 0)  # a missing cell as text ("None", "nan"), read alone
+    missing_text = cells.iloc[missing].astype(str).to_numpy(dtype=object)
+    for why in pd.unique(np.concatenate([text, missing_text])):
+        if why != "":
+            mask = np.isin(code, np.flatnonzero(text == why))
+            mask[missing[missing_text == why]] = True
+            yield why, mask
+
+
+def _joint_leaf_codes(key_codes: dict, spans: pd.DataFrame) -> tuple[np.ndarray, np.ndarray] | None:
+    """`keys.joint_codes(raw, spans, LEAF)` from the lines' coded key columns (`key_codes`: codes and distinct
+    cells of each column): each column's distinct cells coded together with the spans' cells."""
+    n = len(next(iter(key_codes.values()))[0])
+    combined = np.zeros(n, dtype=np.int64)
+    spans_combined = np.zeros(len(spans), dtype=np.int64)
+    capacity = 1
+    for c in LEAF:
+        k, cells = key_codes[c]
+        both, u = pd.factorize(pd.concat([pd.Series(cells, dtype=object), spans[c]], ignore_index=True),
+                               use_na_sentinel=False)
+        capacity *= max(len(u), 1)
+        if capacity >= 2**62:
+            return None
+        combined = combined * max(len(u), 1) + both[: len(cells)][k]
+        spans_combined = spans_combined * max(len(u), 1) + both[len(cells) :]
+    return combined, spans_combined
 
 
 def shortage_grid(
@@ -227,11 +282,7 @@ def correction_rows(
     b, a = before[i, j], after[i, j]
     if figures or adjusted is not None:
         picked = {k: v[i, j] for k, v in (figures or {}).items()}
-        extra = [{k: round(float(v[r]), 6) for k, v in picked.items() if not np.isnan(v[r])} for r in range(len(i))]
-        if adjusted is not None:
-            for r, e in enumerate(extra):
-                e["seasonal_adjusted"] = bool(adjusted[i[r]])
-        parameters = [json.dumps(params | e) for e in extra]
+        parameters = _parameter_texts(params, picked, None if adjusted is None else adjusted[i])
     else:
         parameters = json.dumps(params)
     leaf = i if leaf_index is None else np.asarray(leaf_index)[i]
@@ -240,46 +291,31 @@ def correction_rows(
     )
 
 
-def find_unexplained_changes(cleaned: pd.DataFrame, corrections: pd.DataFrame, tolerance: float = 1e-6) -> pd.DataFrame:
-    """Series periods whose cleaned value differs from the raw net + the audited corrections of that period.
-
-    Per product x site x customer and period: raw_quantity + sum(delta) must
-    equal quantity, so a change cannot hide behind an opposite change in
-    another period of the series. A correction row for a period cleaned_history
-    does not hold is unexplained too.
-    """
-    key = LEAF + ["period_start"]
-    codes = joint_codes(cleaned, corrections, key)
-    if codes is not None and pd.Index(codes[0]).is_unique:
-        return _unexplained_by_code(cleaned, corrections, key, codes, tolerance)
-    cells = cleaned[key + ["raw_quantity", "quantity"]].set_index(key)
-    moved = corrections.groupby(key, sort=True, observed=True)["delta"].sum().rename("corrections")
-    out = cells.join(moved, how="outer")
-    out["corrections"] = out["corrections"].fillna(0.0)
-    out["unexplained"] = out["quantity"] - out["raw_quantity"] - out["corrections"]
-    bad = ~(out["unexplained"].abs() <= tolerance)  # NaN (a correction without its period) is unexplained
-    return out[bad].reset_index()
-
-
-def _unexplained_by_code(
-    cleaned: pd.DataFrame, corrections: pd.DataFrame, key: list[str], codes, tolerance: float
-) -> pd.DataFrame:
-    """find_unexplained_changes on integer codes of the keys (`codes`: joint_codes of the two tables)."""
-    cell_code, corr_code = codes
-    pos = pd.Index(cell_code).get_indexer(corr_code)
-    delta = corrections["delta"].to_numpy(dtype=float)
-    inside = pos >= 0
-    moved = np.bincount(pos[inside], weights=delta[inside], minlength=len(cleaned))
-    unexplained = cleaned["quantity"].to_numpy(dtype=float) - cleaned["raw_quantity"].to_numpy(dtype=float) - moved
-    bad = ~(np.abs(unexplained) <= tolerance)
-    out = cleaned.loc[bad, key + ["raw_quantity", "quantity"]]
-    out = out.assign(corrections=moved[bad], unexplained=unexplained[bad])
-    if not inside.all():  # corrections of a period cleaned_history does not hold: unexplained whatever their sum
-        orphans = corrections.loc[~inside, key + ["delta"]]
-        orphans = orphans.groupby(key, sort=False, observed=True, dropna=False)["delta"].sum().rename("corrections")
-        orphans = orphans.reset_index().assign(raw_quantity=np.nan, quantity=np.nan, unexplained=np.nan)
-        out = pd.concat([out, orphans[out.columns]], ignore_index=True)
-    return out.sort_values(key, kind="stable").reset_index(drop=True)
+def _parameter_texts(params: dict, picked: dict[str, np.ndarray], adjusted: np.ndarray | None) -> list[str]:
+    """Per row: `json.dumps(params | figures | {"seasonal_adjusted": ...})`, the figures rounded to 6 places and
+    NaN ones left out. Written a column at a time: json.dumps writes a float as its `repr`, a bool as true/false,
+    and `params` (the rule's) comes first, so the text is the same; a key of `picked` also in `params`, or an
+    infinite figure, is left to json.dumps row by row."""
+    n = len(next(iter(picked.values()))) if picked else 0 if adjusted is None else len(adjusted)
+    if set(picked) & set(params) or "seasonal_adjusted" in params or any(np.isinf(v).any() for v in picked.values()):
+        extra = [{k: round(float(v[r]), 6) for k, v in picked.items() if not np.isnan(v[r])} for r in range(n)]
+        if adjusted is not None:
+            for r, e in enumerate(extra):
+                e["seasonal_adjusted"] = bool(adjusted[r])
+        return [json.dumps(params | e) for e in extra]
+    head = json.dumps(params)[:-1]  # without its closing brace
+    texts = np.full(n, head, dtype=object)
+    first = np.full(n, not params)  # no member written yet
+    for k, v in picked.items():
+        has = ~np.isnan(v)
+        name = json.dumps(k) + ": "
+        written = [name + repr(round(float(x), 6)) for x in v[has]]
+        texts[has] = texts[has] + np.where(first[has], "", ", ").astype(object) + np.array(written, dtype=object)
+        first[has] = False
+    if adjusted is not None:
+        flag = np.where(np.asarray(adjusted, dtype=bool), '"seasonal_adjusted": true', '"seasonal_adjusted": false')
+        texts = texts + np.where(first, "", ", ") + flag.astype(object)
+    return list(texts + "}")
 
 
 def line_accounting(raw_lines: int, cleaned: pd.DataFrame, rejected: pd.DataFrame) -> dict[str, int]:

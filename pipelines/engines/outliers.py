@@ -66,11 +66,18 @@ def _sorted_quantile(s: np.ndarray, n: np.ndarray, p: float) -> np.ndarray:
     h = np.maximum(n - 1, 0) * p
     lo = np.floor(h).astype(np.int64)
     hi = np.minimum(lo + 1, np.maximum(n - 1, 0))
-    a = np.take_along_axis(s, lo[..., None], axis=-1)[..., 0]
-    b = np.take_along_axis(s, hi[..., None], axis=-1)[..., 0]
+    a, b = _at_rank(s, lo), _at_rank(s, hi)
     with np.errstate(invalid="ignore"):
         q = a + (h - lo) * (b - a)
     return np.where(n > 0, q, np.nan)
+
+
+def _at_rank(s: np.ndarray, rank: np.ndarray) -> np.ndarray:
+    """`s[..., rank]` per window: `np.take_along_axis(s, rank[..., None], -1)[..., 0]` as one flat gather
+    (`s`: the sorted windows, contiguous as `np.sort` returns them)."""
+    width = s.shape[-1]
+    flat = np.arange(rank.size, dtype=np.int64) * width + rank.reshape(-1)
+    return s.reshape(-1)[flat].reshape(rank.shape)
 
 
 def _rolling_nanmedian(windows: np.ndarray) -> np.ndarray:
@@ -82,8 +89,7 @@ def _rolling_nanmedian(windows: np.ndarray) -> np.ndarray:
     n = np.sum(~np.isnan(windows), axis=-1)
     lo = np.clip((n - 1) // 2, 0, None)
     hi = np.clip(n // 2, 0, None)
-    a = np.take_along_axis(s, lo[..., None], axis=-1)[..., 0]
-    b = np.take_along_axis(s, hi[..., None], axis=-1)[..., 0]
+    a, b = _at_rank(s, lo), _at_rank(s, hi)
     med = (a + b) / 2.0
     med[n == 0] = np.nan
     return med

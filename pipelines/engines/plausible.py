@@ -3,6 +3,8 @@
 Pure rules shared by the history stages and the cycle date (an engine: it knows
 no stage and no Dagster):
 
+- `distinct_dates`, `distinct_quantities`: the cells of a history column parsed
+  once per distinct cell (`text_codes.codes_of`), reached by the lines' codes.
 - `parse_dates`: cells to naive dates; a date-time with a UTC offset keeps the
   date and time as written. `year_outside`: a date-shaped cell whose year
   pandas cannot hold (before 1678, after 2261).
@@ -19,8 +21,13 @@ no stage and no Dagster):
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 import pandas as pd
+
+from pipelines.calendar import period_ordinal, period_start
+from pipelines.text_codes import codes_of
 
 ISOLATED_SHARE = 0.01  # an end group of at most this share of the lines (or a single line) is isolated
 SPARSE_PERIOD_SHARE = 0.10  # a last period with fewer lines than this share of the median period is not complete
@@ -144,3 +151,51 @@ def gap_periods(years: float, period: str) -> int:
     """`years` (inputs.plausible.isolation_gap_years) in periods of the calendar, at least 1."""
     per_year = 52 if period == "week" else 12
     return max(1, int(np.ceil(years * per_year)))
+
+
+@dataclass(frozen=True)
+class DistinctDates:
+    """The date cells of the lines coded by their distinct text (`text_codes.codes_of`); each rule of a date
+    judged once per distinct cell. The last slot stands for a missing cell (no date, not outside the window)."""
+
+    code: np.ndarray  # per line: its distinct cell
+    value: np.ndarray  # per distinct cell: the date (`parse_dates`), datetime64[ns], NaT where none
+    value_nat: np.ndarray  # per distinct cell: no date
+    outside: np.ndarray  # per distinct cell: `year_outside` where no date, else 0
+    value_code: np.ndarray  # per distinct cell: equal exactly where the dates are (NaT one code)
+
+    def take(self, per_cell: np.ndarray) -> np.ndarray:
+        return per_cell[self.code]
+
+    def ordinals(self, period: str) -> np.ndarray:
+        """Period ordinal of each distinct date (0 where none)."""
+        out = np.zeros(len(self.value), dtype=np.int64)
+        if (~self.value_nat).any():
+            days = pd.Series(self.value[~self.value_nat])
+            out[~self.value_nat] = period_ordinal(period_start(days, period), period)
+        return out
+
+
+def distinct_dates(text: pd.Series) -> DistinctDates:
+    """`parse_dates` and `year_outside` of each distinct cell of `text` (a missing cell: no date, not outside)."""
+    code, cells = codes_of(text)
+    code = np.where(code < 0, len(cells), code)
+    parsed = parse_dates(pd.Series(cells, dtype=text.dtype)).to_numpy(dtype="datetime64[ns]")
+    value = np.append(parsed, np.datetime64("NaT", "ns"))
+    nat = np.isnat(value)
+    outside = np.zeros(len(value), dtype=np.int64)
+    if nat[:-1].any():
+        outside[:-1][nat[:-1]] = year_outside(pd.Series(cells[nat[:-1]], dtype=text.dtype))
+    return DistinctDates(code, value, nat, outside, pd.factorize(value.view(np.int64))[0])
+
+
+def distinct_quantities(text: pd.Series) -> tuple[np.ndarray, np.ndarray]:
+    """(code per line, parsed quantity per code): `pd.to_numeric(errors="coerce")` on the distinct cells only,
+    a missing cell among them when the column has one (so the parse sees the same kinds of cells)."""
+    code, cells = codes_of(text)
+    missing = code < 0
+    if missing.any():
+        cells = np.append(cells, None)
+        code = np.where(missing, len(cells) - 1, code)
+    parsed = pd.to_numeric(pd.Series(cells, dtype=text.dtype if not missing.any() else object), errors="coerce")
+    return code, parsed.to_numpy(dtype=float, na_value=np.nan)

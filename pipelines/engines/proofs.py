@@ -12,6 +12,7 @@ import pandas as pd
 
 from pipelines.calendar import period_ordinal, span_bounds
 from pipelines.checks import SHARE_TOLERANCE
+from pipelines.engines.history_proofs import accounted_lines
 from pipelines.keys import LEAF, PARENT, PARENT_ID, ids_in, key_rank, lookup, part_rows, rows_in
 
 
@@ -221,6 +222,8 @@ def _distinct_leaves(leaf: pd.DataFrame) -> pd.DataFrame:
 def find_unaccounted_lines(raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: pd.DataFrame) -> pd.DataFrame:
     """Raw lines that are neither summed into cleaned_history nor rejected, or counted twice, by series.
 
+    The counts are proven on integer codes first (`history_proofs.accounted_lines`); only the rows of the
+    series whose counts differ are then grouped by their text keys, which names them as the whole tables would.
     Every raw line (source_file, source_row) is either rejected (a row of
     `rejected` naming it) or used; the used lines of a product x site x
     customer (keys as written) must be the `lines` cleaned_history summed for
@@ -229,11 +232,17 @@ def find_unaccounted_lines(raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: p
     raw_lines, rejected_lines, used_lines = raw - rejected, cleaned_lines).
     """
     line = ["source_file", "source_row"]
-    raw_ids = pd.MultiIndex.from_frame(raw[line].astype({"source_row": np.int64}))
-    rej_ids = pd.MultiIndex.from_frame(rejected[line].astype({"source_row": np.int64}))
-    unknown = rejected.loc[~rej_ids.isin(raw_ids), line + LEAF].assign(why="rejected row is no raw line")
-    twice = rejected.loc[rej_ids.duplicated(keep="first"), line + LEAF].assign(why="raw line rejected twice")
-    in_rejected = raw_ids.isin(rej_ids)
+    fast = accounted_lines(raw, cleaned, rejected)  # on integer codes; None: every row coded as below
+    if fast is not None:
+        no_line, named_before, in_rejected, raw_off, cleaned_off = fast
+        raw, in_rejected, cleaned = raw.loc[raw_off], in_rejected[raw_off], cleaned.loc[cleaned_off]
+    else:
+        raw_ids = pd.MultiIndex.from_frame(raw[line].astype({"source_row": np.int64}))
+        rej_ids = pd.MultiIndex.from_frame(rejected[line].astype({"source_row": np.int64}))
+        no_line, named_before = ~rej_ids.isin(raw_ids), rej_ids.duplicated(keep="first")
+        in_rejected = raw_ids.isin(rej_ids)
+    unknown = rejected.loc[no_line, line + LEAF].assign(why="rejected row is no raw line")
+    twice = rejected.loc[named_before, line + LEAF].assign(why="raw line rejected twice")
     per_series = pd.concat(
         [
             raw.groupby(LEAF, sort=True).size().rename("raw_lines"),

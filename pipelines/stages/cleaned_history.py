@@ -120,7 +120,6 @@ from pipelines.config_inputs import PlausibilityConfig
 from pipelines.config_sections import CleansingConfig, ProductClassConfig
 from pipelines.engines.cleansing import (
     cycle_calendar,
-    find_unexplained_changes,
     line_accounting,
     reject_lines,
     shortage_grid,
@@ -128,6 +127,7 @@ from pipelines.engines.cleansing import (
     sorted_corrections,
 )
 from pipelines.engines.cleansing_blocks import BLOCK_CELLS, Grid, Lines, class_summary, clean_blocks
+from pipelines.engines.history_proofs import find_unexplained_changes
 from pipelines.engines.proofs import find_unaccounted_lines
 from pipelines.engines.report_charts import corrections_chart
 from pipelines.keys import LEAF, lookup
@@ -191,7 +191,9 @@ def clean_history(
 
     # --- long tables
     cells = blocks.cells()
-    cleaned = leaves.iloc[cells.pop("leaf")].reset_index(drop=True)
+    leaf = cells.pop("leaf")
+    cleaned = pd.DataFrame({c: leaves[c].to_numpy()[leaf] for c in LEAF}, copy=False)  # each key column taken once
+    del leaf
     cleaned["period_start"] = ordinal_to_start(cells.pop("col") + first_ord, period)
     for name in ("quantity", "raw_quantity", "lines", "filled", "corrected", "shortage"):
         cleaned[name] = cells.pop(name)

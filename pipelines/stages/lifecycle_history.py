@@ -35,8 +35,9 @@ import pandas as pd
 from pipelines.calendar import active_mask, period_ordinal, span_bounds
 from pipelines.config import CalendarConfig, PlanningConfig
 from pipelines.errors import LifecycleError
-from pipelines.keys import LEAF, add_ids, factorize, lookup
+from pipelines.keys import ID_DTYPE, LEAF, LEAF_ID, PARENT_ID, factorize, lookup
 from pipelines.results import Log, StageResult, quiet
+from pipelines.text_codes import codes_of, run_starts
 
 HISTORY_COLUMNS = LEAF + ["period_start", "quantity", "origin", "source_product", "source_customer", "shortage"]
 AUDIT_COLUMNS = LEAF + ["rule", "periods", "quantity", "detail"]
@@ -46,6 +47,8 @@ AUDIT_COLUMNS = LEAF + ["rule", "periods", "quantity", "detail"]
 class LifecycleResult:
     history: pd.DataFrame
     audit: pd.DataFrame
+    # (leaf_id, parent_id) of each history row: `keys.key_ids(history)`, from the ranks the sort already made
+    ids: tuple[np.ndarray, np.ndarray] | None = None
 
 
 def resolve_successors(products: pd.DataFrame) -> pd.Series:
@@ -101,19 +104,16 @@ def leaf_codes(frame: pd.DataFrame) -> tuple[np.ndarray, pd.DataFrame]:
     """`keys.factorize(frame, LEAF)` through the runs of equal keys: codes by first appearance and the leaves.
 
     The cleaned history holds each leaf's periods one after another, so only the
-    first row of each run of equal keys is hashed (one row per leaf), not every
-    row; any order of rows gives the same codes, a shuffled one just more runs.
+    first row of each run of one key object is hashed (`text_codes.run_starts`:
+    about one row per leaf), not every row; any order of rows gives the same
+    codes, a shuffled one just more runs.
     """
     n = len(frame)
     if n == 0:
         return factorize(frame, LEAF)
-    change = np.zeros(n, dtype=bool)
-    change[0] = True
-    for c in LEAF:
-        values = frame[c].to_numpy()
-        change[1:] |= values[1:] != values[:-1]
-    starts = np.flatnonzero(change)
-    run_code, leaves = factorize(frame[LEAF].iloc[starts], LEAF)
+    starts = run_starts([frame[c].to_numpy() for c in LEAF])
+    heads = pd.DataFrame({c: frame[c].to_numpy()[starts] for c in LEAF})  # `frame[LEAF]` would copy every row
+    run_code, leaves = factorize(heads, LEAF)
     return np.repeat(run_code.astype(_index_type(len(leaves))), np.diff(np.append(starts, n))), leaves
 
 
@@ -253,17 +253,36 @@ def apply_lifecycle(
     order = _sort_order(rank[key_code][key], day_rank[rows], is_moved, source_rank[leaf[rows]])
     rows, is_moved, key = rows[order], is_moved[order], key[order]
     del order, day_rank
-    out = all_keys.iloc[key].reset_index(drop=True)
+    ids = _ids_of_ranks(rank[key_code][key], distinct.iloc[np.argsort(rank)].reset_index(drop=True))
+    source = leaf[rows]
+    out = {c: all_keys[c].to_numpy()[key] for c in LEAF}
     out["period_start"] = starts[rows]
     out["quantity"] = quantity[rows]
     out["origin"] = np.array(["own", "successor"], dtype=object)[is_moved.view(np.int8)]
-    source = leaf[rows]
     out["source_product"] = leaves["product"].to_numpy(dtype=object)[source]
     out["source_customer"] = leaves["customer"].to_numpy(dtype=object)[source]
     out["shortage"] = shortage[rows]
     audit = _stack(audits, AUDIT_COLUMNS)
     audit = audit.astype({"periods": np.int64, "quantity": float})
-    return LifecycleResult(history=out[HISTORY_COLUMNS], audit=audit.reset_index(drop=True))
+    # the new columns become the frame as they are (the default would copy each into consolidated blocks)
+    history = pd.DataFrame({c: out.pop(c) for c in HISTORY_COLUMNS}, copy=False)
+    return LifecycleResult(history=history, audit=audit.reset_index(drop=True), ids=ids)
+
+
+def _ids_of_ranks(ranks: np.ndarray, ranked: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """`keys.key_ids` of rows sorted by their leaf's rank in key order (`ranks`; `ranked`: the keys by rank):
+    a leaf's id is its place among the leaves present, a parent's among the parents present, both in key order."""
+    if not len(ranks):
+        return np.zeros(0, ID_DTYPE), np.zeros(0, ID_DTYPE)
+    new_leaf = np.ones(len(ranks), dtype=bool)
+    new_leaf[1:] = ranks[1:] != ranks[:-1]
+    leaf_id = np.cumsum(new_leaf) - 1
+    present = ranked.iloc[ranks[new_leaf]]
+    product, site = present["product"].to_numpy(object), present["site"].to_numpy(object)
+    new_parent = np.ones(len(present), dtype=bool)
+    new_parent[1:] = (product[1:] != product[:-1]) | (site[1:] != site[:-1])
+    parent_of_leaf = np.cumsum(new_parent) - 1
+    return leaf_id.astype(ID_DTYPE), parent_of_leaf[leaf_id].astype(ID_DTYPE)
 
 
 @dataclass(frozen=True)
@@ -288,18 +307,32 @@ def run(
     """lifecycle_history and lifecycle_audit, with what each rule moved."""
     cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
     result = apply_lifecycle(cleaned_history, products, customer_spans, settings, cycle_date)
-    history, audit = add_ids(result.history), result.audit  # the leaf and parent ids the later stages carry
+    history, audit = result.history, result.audit
+    history[LEAF_ID], history[PARENT_ID] = result.ids  # the leaf and parent ids the later stages carry
     by_rule = audit.groupby("rule").agg(
         leaves=("customer", "size"), periods=("periods", "sum"), quantity=("quantity", "sum")
     )
-    by_origin = history.groupby("origin").agg(rows=("quantity", "size"), quantity=("quantity", "sum"))
+    by_origin = _by_origin(history)
     return StageResult(
         outputs={"lifecycle_history": history, "lifecycle_audit": audit},
         metadata={
             "lifecycle_history": {
-                "by_origin": by_origin.reset_index(),
+                "by_origin": by_origin,
                 "shortage_rows": int(history["shortage"].sum()),
             },
             "lifecycle_audit": {"by_rule": by_rule.reset_index()},
         },
     )
+
+
+def _by_origin(history: pd.DataFrame) -> pd.DataFrame:
+    """Rows and quantity per origin, as `groupby("origin").agg(...).reset_index()`, grouped on the origin's
+    codes (`text_codes.codes_of`: two objects in long runs) instead of hashing every row's text."""
+    code, origins = codes_of(history["origin"])
+    grouped = history["quantity"].groupby(code, sort=False).agg(["size", "sum"])
+    grouped = grouped[grouped.index >= 0]  # a missing origin: left out, as groupby leaves it out
+    out = pd.DataFrame(
+        {"origin": origins[grouped.index.to_numpy()], "rows": grouped["size"].to_numpy(np.int64),
+         "quantity": grouped["sum"].to_numpy(float)}
+    )
+    return out.sort_values("origin", kind="stable").reset_index(drop=True)

@@ -1,0 +1,65 @@
+"""Integer codes of text columns, hashing as few cells as the column allows.
+
+A text column of a history table holds a few thousand distinct keys over
+millions of rows, and its cells mostly share their objects: the Parquet reader
+(`to_pandas(deduplicate_objects=True)`) and a stage's own `take` of a key table
+(`leaves.iloc[leaf_code]`) give every row of one key the same `str` object.
+`pd.factorize` hashes every cell and compares it with the hashed table; here
+the cells' object addresses (integers, one machine word each) are compared
+first, and only the cells where the address changes (the starts of runs of one
+object) or, when runs are short, one cell per distinct object, are hashed as
+text. Equal addresses are the same object, hence equal text; two distinct
+objects of equal text are still told equal by the text hashing, so the codes
+are exactly `pd.factorize`'s: numbered by first appearance, missing cells -1
+(or their own code with `use_na_sentinel=False`).
+"""
+
+from __future__ import annotations
+
+import ctypes
+
+import numpy as np
+import pandas as pd
+
+RUNS_SHARE = 4  # hash the run starts when there are at most 1/RUNS_SHARE as many runs as rows
+
+
+def addresses(values: np.ndarray) -> np.ndarray:
+    """The address of each cell's object of an object array (int64 per cell; a copy, so it outlives `values`)."""
+    values = np.ascontiguousarray(values, dtype=object)
+    if not len(values):
+        return np.zeros(0, dtype=np.int64)
+    cells = (ctypes.c_ssize_t * len(values)).from_address(values.ctypes.data)
+    return np.ctypeslib.as_array(cells).astype(np.int64, copy=True)
+
+
+def run_starts(columns: list[np.ndarray]) -> np.ndarray:
+    """Positions where a run of equal cell objects starts in any of `columns` (object arrays of one length)."""
+    n = len(columns[0])
+    change = np.zeros(n, dtype=bool)
+    if n:
+        change[0] = True
+    for values in columns:
+        where = addresses(values)
+        change[1:] |= where[1:] != where[:-1]
+    return np.flatnonzero(change)
+
+
+def codes_of(values, use_na_sentinel: bool = True) -> tuple[np.ndarray, np.ndarray]:
+    """`pd.factorize(values)` as (int64 codes, uniques array), for an object column without hashing every cell."""
+    values = values.to_numpy() if isinstance(values, pd.Series | pd.Index) else np.asarray(values)
+    n = len(values)
+    if values.dtype != object or n < 1024:
+        codes, uniques = pd.factorize(values, use_na_sentinel=use_na_sentinel)
+        return codes.astype(np.int64, copy=False), np.asarray(uniques)
+    where = addresses(values)
+    change = np.ones(n, dtype=bool)
+    change[1:] = where[1:] != where[:-1]
+    starts = np.flatnonzero(change)
+    if len(starts) * RUNS_SHARE <= n:
+        codes, uniques = pd.factorize(values[starts], use_na_sentinel=use_na_sentinel)
+        return np.repeat(codes.astype(np.int64), np.diff(np.append(starts, n))), np.asarray(uniques)
+    object_code = pd.factorize(where)[0]
+    first = pd.Series(object_code).drop_duplicates().index.to_numpy()
+    codes, uniques = pd.factorize(values[first], use_na_sentinel=use_na_sentinel)
+    return codes.astype(np.int64)[object_code], np.asarray(uniques)

@@ -1,0 +1,120 @@
+"""Integer coding through object runs (`pipelines.text_codes`) and the cleaned history's proofs on it
+(`pipelines.engines.history_proofs`): each fast path against the general one it stands in for.
+
+The reference here is pandas itself (`pd.factorize`) and the general path of each proof (every row coded and
+grouped by its text keys), which the existing tests of `tests/test_cleaned_history.py` pin to hand-worked rows.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from pipelines import keys
+from pipelines.engines import history_proofs
+from pipelines.engines.proofs import find_unaccounted_lines
+from pipelines.schemas import RawHistory
+from pipelines.stages.cleaned_history import clean_history, find_unexplained_changes
+from pipelines.text_codes import codes_of
+
+POOL = np.array(["a", "b", "", "c", None, np.nan, "d"], dtype=object)
+
+
+@pytest.mark.parametrize("seed", range(40))
+def test_codes_of_is_pd_factorize(seed):
+    rng = np.random.default_rng(seed)
+    values = POOL[rng.integers(0, len(POOL), int(rng.integers(0, 6000)))]
+    if seed % 3 == 0:  # runs of one object
+        values = np.sort(values.astype(str)).astype(object)
+    if seed % 4 == 0:  # equal text in distinct objects
+        values = np.array(["".join(list(v)) if isinstance(v, str) else v for v in values], dtype=object)
+    for sentinel in (True, False):
+        codes, uniques = codes_of(values, use_na_sentinel=sentinel)
+        want, want_uniques = pd.factorize(values, use_na_sentinel=sentinel)
+        assert codes.tolist() == want.tolist()
+        assert [str(u) for u in uniques] == [str(u) for u in want_uniques]
+
+
+def test_keys_factorize_through_runs_is_the_packed_coding():
+    rng = np.random.default_rng(3)
+    leaves = [("P%d" % (i % 7), "S%d" % (i % 3), "C%d" % i) for i in range(60)]
+    rows = [leaves[i] for i in np.repeat(rng.permutation(60), rng.integers(20, 40, 60))]
+    frame = pd.DataFrame(rows, columns=keys.LEAF)
+    codes, uniques = keys.factorize(frame, keys.LEAF)  # runs: a few per leaf
+    shuffled = frame.iloc[rng.permutation(len(frame))].reset_index(drop=True)
+    assert len(frame) > 1024
+    packed, _ = keys.factorize(shuffled, keys.LEAF)  # no runs: every row packed
+    assert codes.tolist() == tuple_codes(frame)
+    assert uniques.values.tolist() == frame.drop_duplicates().values.tolist()
+    assert packed.tolist() == tuple_codes(shuffled)
+
+
+def tuple_codes(frame: pd.DataFrame) -> list[int]:
+    """pd.factorize of each row's key as one tuple."""
+    return pd.factorize(pd.Series(list(frame[keys.LEAF].itertuples(index=False, name=None))))[0].tolist()
+
+
+@pytest.fixture
+def cleaned_case(make_products, make_spans, make_config):
+    """24 leaves x 40 weeks in two files, a line repeated in the later file, one unknown product, one return."""
+    products = make_products([("P1", "a"), ("P2", "a"), ("P3", "a")])
+    leaves = [(p, s, c) for p in ("P1", "P2", "P3") for s in ("S1", "S2") for c in ("C1", "C2", "C3", "C4")]
+    spans = make_spans(leaves)
+    weeks = pd.date_range("2025-04-07", periods=40, freq="7D").strftime("%Y-%m-%d")
+    rows = []
+    for file in ("history_a.csv", "history_b.csv"):
+        mine = weeks[:20] if file == "history_a.csv" else weeks[20:]
+        for p, s, c in leaves:
+            rows += [(file, p, s, c, w, str(3 + (len(rows) % 5))) for w in mine]
+    rows.append(("history_b.csv", *rows[0][1:]))  # the first line again, in the later file
+    rows.append(("history_b.csv", "P9", "S1", "C1", weeks[30], "4"))
+    rows.append(("history_a.csv", "P2", "S1", "C2", weeks[3], "-50"))  # a return beyond the week: a correction
+    raw = pd.DataFrame(rows, columns=["source_file", "product", "site", "customer", "period_start", "quantity"])
+    raw.insert(1, "source_row", np.arange(1, len(raw) + 1))
+    raw = RawHistory.validate(raw)
+    config = make_config(calendar={"cycle_date": "2026-01-12"})
+    return raw, clean_history(raw, products, spans, config)
+
+
+def general(monkeypatch, proof, *args):
+    """The proof with the runs refused, so every row is coded (the general path)."""
+    with monkeypatch.context() as m:
+        m.setattr(history_proofs, "leaf_runs", lambda frame: None)
+        return proof(*args)
+
+
+def test_unexplained_changes_on_runs_are_those_of_every_row(cleaned_case, monkeypatch):
+    raw, res = cleaned_case
+    assert history_proofs.cell_positions(res.cleaned, res.corrections) is not None  # the fast path is taken
+    assert set(res.rejected["reason"]) == {"duplicate_of_other_file", "unknown_product"}
+    assert len(res.corrections) == 1
+    cleaned = res.cleaned.copy()
+    cleaned.loc[[5, 300], "quantity"] += [2.0, -1.5]
+    orphan = res.corrections.head(1).assign(period_start=pd.Timestamp("2024-01-01"), delta=1.0)
+    corrections = pd.concat([res.corrections, orphan], ignore_index=True)
+    for frame, corr in ((res.cleaned, res.corrections), (cleaned, res.corrections), (cleaned, corrections)):
+        fast = find_unexplained_changes(frame, corr)
+        pd.testing.assert_frame_equal(fast, general(monkeypatch, find_unexplained_changes, frame, corr))
+    assert len(find_unexplained_changes(cleaned, corrections)) == 3
+
+
+def test_unaccounted_lines_on_runs_are_those_of_every_row(cleaned_case, monkeypatch):
+    raw, res = cleaned_case
+    assert history_proofs.accounted_lines(raw, res.cleaned, res.rejected) is not None  # the fast path is taken
+    more_lines = res.cleaned.copy()
+    more_lines.loc[[7, 400], "lines"] += 1
+    twice = pd.concat([res.rejected, res.rejected.tail(1)], ignore_index=True)
+    stranger = res.rejected.assign(source_file="elsewhere.csv")
+    cases = [
+        (res.cleaned, res.rejected),
+        (more_lines, res.rejected),
+        (res.cleaned, res.rejected.iloc[0:0]),
+        (res.cleaned, twice),
+        (res.cleaned, stranger),
+    ]
+    for cleaned, rejected in cases:
+        fast = find_unaccounted_lines(raw, cleaned, rejected)
+        pd.testing.assert_frame_equal(fast, general(monkeypatch, find_unaccounted_lines, raw, cleaned, rejected))
+    assert len(find_unaccounted_lines(raw, more_lines, res.rejected)) == 2
+    assert find_unaccounted_lines(raw, res.cleaned, res.rejected).empty
