@@ -2,7 +2,7 @@
 
     .venv/bin/python benchmarks/cycle_dagster.py --leaves 10000 [--seed 7] [--periods 156] [--horizon 26]
         [--classes fast,seasonal,slow] [--backtest light|full] [--n-jobs N] [--folder PATH]
-        [--rss-sample-ms MS] [--json PATH]
+        [--rss-sample-ms MS] [--slices N] [--shard-leaves L] [--parallel K] [--json PATH]
 
 Where `benchmarks/cycle.py` calls the stages' `run(...)` itself, this one runs
 what a platform team runs: the same seeded scenario (`cycle_scenario.generate`,
@@ -35,6 +35,13 @@ reports:
                `--rss-sample-ms` (10 ms); rss end: RSS at the step's end
     rows       the rows of the step's tables (`dagster/row_count` of its materializations)
 
+`--slices N`: N independent slices (seeds seed + i) in one input folder;
+`--shard-leaves L`: each class cut into ceil(its leaves / L) shards, a
+partition each (`benchmarks/dagster_inputs.py`); `--parallel K`: K partitions
+at a time, a process each, as `cycle --parallel K` (per step wall, peak and
+rows only; `benchmarks/dagster_parallel.py`). A table sums each step over
+the partitions.
+
 Each class's run ends with a `steps` line (the sum of its steps; `job` the
 whole run, from the job's start to its end, partition lock included) and the cycle with a `total` line: own time (wall
 minus statsforecast) and validation's share of it. `--json PATH` writes every
@@ -64,6 +71,8 @@ for path in (ROOT, ROOT / "benchmarks"):
 from cycle_inputs import config_data  # noqa: E402
 from cycle_measure import git_commit, load_average, rss_max_mb, rss_now_mb, versions  # noqa: E402
 from cycle_scenario import CLASSES, CYCLE_DATE, generate  # noqa: E402
+from dagster_inputs import shard_counts, write_slices  # noqa: E402
+from dagster_parallel import STEP_HEADER, format_step, per_step, run_parallel  # noqa: E402
 
 CYCLE = str(CYCLE_DATE)
 # the graph always runs backtest_accuracy; no class of the benchmark is `auto`, so by default it runs small
@@ -92,18 +101,26 @@ def _write_inputs(args: argparse.Namespace, folder: Path, queue) -> None:
     try:
         started = time.perf_counter()
         inputs = folder / "inputs"
-        scen = generate(args.leaves, args.seed, args.periods, inputs, args.horizon)
-        frames = {"products": scen.products, "customer_spans": scen.spans, "adjustments": scen.adjustments,
-                  "pins": scen.pins, "shortages": scen.shortages}
-        for name, frame in frames.items():
-            frame.to_csv(inputs / f"{name}.csv", index=False, lineterminator="\n")
+        if args.slices > 1 or args.shard_leaves:
+            facts = write_slices(args.leaves, args.slices, args.seed, args.periods, args.horizon, inputs)
+        else:
+            scen = generate(args.leaves, args.seed, args.periods, inputs, args.horizon)
+            frames = {"products": scen.products, "customer_spans": scen.spans, "adjustments": scen.adjustments,
+                      "pins": scen.pins, "shortages": scen.shortages}
+            for name, frame in frames.items():
+                frame.to_csv(inputs / f"{name}.csv", index=False, lineterminator="\n")
+            facts = scen.facts
         data = config_data(args.periods, args.horizon, False, None, n_jobs=args.n_jobs)
+        if args.shard_leaves:
+            facts["shards"] = shard_counts(facts["leaves_per_class"], args.shard_leaves)
+            for k, n in facts["shards"].items():
+                data["product_classes"][k]["scale"] = {"shards": n}
         if args.backtest == "light":
             data["backtest"] = LIGHT_BACKTEST
         data["inputs"] = {"folder": str(inputs)}
         data["store"] = {"path": str(folder / "var" / "store")}
         (folder / "planning.yaml").write_text(yaml.safe_dump(data, sort_keys=False))
-        queue.put({**scen.facts, "generate_s": round(time.perf_counter() - started, 2)})
+        queue.put({**facts, "generate_s": round(time.perf_counter() - started, 2)})
     except Exception as err:  # reported by the parent
         queue.put({"error": f"{type(err).__name__}: {err}"})
         raise
@@ -194,7 +211,8 @@ def step_rows(instance, run_id: str, timeline: Timeline, product_class: str) -> 
         row = {"class": product_class, "step": key, "success": ok, "wall_s": end - start}
         for kind in KINDS:
             row[f"{kind}_s"] = timeline.seconds(kind, start, end)
-        row["other_s"] = row["wall_s"] - sum(row[f"{k}_s"] for k in ("run", "validate", "read", "write"))
+        parts = [row[f"{k}_s"] for k in ("run", "validate", "read", "write")]
+        row["other_s"] = None if None in parts else row["wall_s"] - sum(parts)  # None: run in another process
         row["rss_peak_mb"] = timeline.peak(start, end)
         row["rss_end_mb"] = timeline.peak(end - 0.05, end + 0.05)
         row["rows"] = rows.get(key)
@@ -206,10 +224,13 @@ def format_row(r: dict) -> str:
     def mb(v):
         return "" if v is None else f"{v:.0f}"
 
+    def s(key, width):
+        return f"{'':>{width}}" if r[key] is None else f"{r[key]:>{width}.2f}"
+
     rows = "" if r.get("rows") is None else f"{r['rows']:,}"
     return (
-        f"{r['class']:<9} {r['step'][:24]:<24} {r['wall_s']:>8.2f} {r['run_s']:>8.2f} {r['validate_s']:>8.2f} "
-        f"{r['read_s']:>7.2f} {r['write_s']:>7.2f} {r['statsforecast_s']:>8.2f} {r['other_s']:>7.2f} "
+        f"{r['class']:<9} {r['step'][:24]:<24} {r['wall_s']:>8.2f} {s('run_s', 8)} {s('validate_s', 8)} "
+        f"{s('read_s', 7)} {s('write_s', 7)} {s('statsforecast_s', 8)} {s('other_s', 7)} "
         f"{mb(r['rss_peak_mb']):>7} {mb(r['rss_end_mb']):>7} {rows:>11}"
         + ("" if r.get("success", True) else "  FAILED")
     )
@@ -218,10 +239,15 @@ def format_row(r: dict) -> str:
 def totals(rows: list[dict], label: str, product_class: str = "") -> dict:
     t = {"class": product_class, "step": label, "rows": None}
     for key in ("wall_s", "run_s", "validate_s", "read_s", "write_s", "statsforecast_s", "other_s"):
-        t[key] = sum(r[key] for r in rows)
+        known = [r[key] for r in rows if r[key] is not None]
+        t[key] = sum(known) if known or not rows else None  # None: measured in no run (--parallel)
     peaks = [r["rss_peak_mb"] for r in rows if r["rss_peak_mb"] is not None]
     t["rss_peak_mb"] = max(peaks) if peaks else None
     t["rss_end_mb"] = rows[-1]["rss_end_mb"] if rows else None
+    if t["statsforecast_s"] is None:  # --parallel: no split of the steps' time
+        t["own_s"] = t["validation_share_of_own"] = t["validation_share_of_stages"] = None
+        t["success"] = all(r.get("success", True) for r in rows)
+        return t
     own = t["wall_s"] - t["statsforecast_s"]
     t["own_s"] = own
     t["validation_share_of_own"] = t["validate_s"] / own if own > 0 else None
@@ -258,44 +284,60 @@ def run_cycle(args: argparse.Namespace) -> dict:
 
     from pipelines.definitions import build_definitions
     from pipelines.runner import run_partitions
+    from pipelines.shards import partition_classes
 
-    timeline = Timeline(args.rss_sample_ms)
+    timeline = Timeline(args.rss_sample_ms if args.parallel == 1 else 0)
     instrument(timeline)
-    defs = build_definitions(str(folder / "planning.yaml"))
+    config_path = str(folder / "planning.yaml")
+    defs = build_definitions(config_path)
+    config = defs.resources["planning"].config
+    keys, every = partition_classes(config, classes), partition_classes(config)  # a class cut: its shards
     steps: list[dict] = []
     runs: list[dict] = []
-    print(HEADER)
-    print("-" * len(HEADER), flush=True)
+    print(f"{HEADER}\n{'-' * len(HEADER)}", flush=True)
+    quiet = {"loggers": {"console": {"config": {"log_level": "CRITICAL"}}}}  # as `cycle` without --verbose
+    started = time.monotonic()
     with dg.DagsterInstance.get() as instance:
 
-        def done(product_class: str, result, seconds: float) -> None:
-            mine = step_rows(instance, result.run_id, timeline, product_class)
+        def done(label: str, run_id: str, seconds: float, measured, success: bool) -> None:
+            mine = step_rows(instance, run_id, measured, label)
             for row in mine:
                 print(format_row(row), flush=True)
-            run = {**totals(mine, "steps", product_class), "job_s": seconds, "run_id": result.run_id}
-            run["success"] = run["success"] and result.success
+            run = {**totals(mine, "steps", label), "job_s": seconds, "run_id": run_id}
+            run["success"] = run["success"] and success
             print(format_row(run) + f"  job {seconds:.2f} s", flush=True)
             steps.extend(mine)
             runs.append(run)
             write_json(args, {"parameters": vars(args), "scenario": facts, "steps": steps, "runs": runs,
                               "load": {"start": load_start, "so_far": load_average()}, "complete": False})
 
-        quiet = {"loggers": {"console": {"config": {"log_level": "CRITICAL"}}}}  # as `cycle` without --verbose
-        run_partitions(defs, instance, CYCLE, classes, all_classes=list(CLASSES), run_config=quiet, on_done=done,
-                       say=print)
+        if args.parallel > 1:
+            together = run_parallel(config_path, instance, CYCLE, keys, every, args.parallel, quiet, done)
+        else:
+            run_partitions(defs, instance, CYCLE, keys, all_classes=every, run_config=quiet, say=print,
+                           on_done=lambda k, r, sec: done(k, r.run_id, sec, timeline, r.success))
+            together = {"elapsed_s": time.monotonic() - started, "parallel": 1, "peak_sum_rss_mb": None}
     timeline.stop()
     total = totals(steps, "total")
-    print("-" * len(HEADER))
-    print(format_row(total))
+    print(f"{'-' * len(HEADER)}\n{format_row(total)}")
     # what benchmarks/cycle.py counts: every step but the backtest (Dagster's own steps included here)
     without = totals([r for r in steps if r["step"] != "backtest_accuracy"], "total w/o backtest")
-    print(format_row(without) + f"  validation {without['validation_share_of_own'] or 0:.1%} of own")
+    share = without["validation_share_of_own"]
+    print(format_row(without) + ("" if share is None else f"  validation {share:.1%} of own"))
     share, stages = total["validation_share_of_own"] or 0.0, total["validation_share_of_stages"] or 0.0
-    print(f"own {total['own_s']:.2f} s (wall {total['wall_s']:.2f} minus statsforecast "
-          f"{total['statsforecast_s']:.2f}); validation {total['validate_s']:.2f} s = {share:.1%} of own, "
-          f"{stages:.1%} of the stages' own (run + validation - statsforecast); store read {total['read_s']:.2f} s, "
-          f"write {total['write_s']:.2f} s; Dagster and the factory (other) {total['other_s']:.2f} s; "
-          f"ru_maxrss {rss_max_mb():.0f} MB")
+    if total["own_s"] is not None:
+        print(f"own {total['own_s']:.2f} s (wall {total['wall_s']:.2f} minus statsforecast "
+              f"{total['statsforecast_s']:.2f}); validation {total['validate_s']:.2f} s = {share:.1%} of own, "
+              f"{stages:.1%} of the stages' own (run + validation - statsforecast); store read "
+              f"{total['read_s']:.2f} s, write {total['write_s']:.2f} s; Dagster and the factory (other) "
+              f"{total['other_s']:.2f} s; ru_maxrss {rss_max_mb():.0f} MB")
+    by_step = per_step(steps)
+    print(f"\n{STEP_HEADER}\n" + "\n".join(format_step(r) for r in by_step))
+    peak = together["peak_sum_rss_mb"] if args.parallel > 1 else total["rss_peak_mb"]
+    print(f"{len(keys)} partitions ({', '.join(keys)}), {args.parallel} at a time: elapsed "
+          f"{together['elapsed_s']:.1f} s (steps summed {total['wall_s']:.1f} s); peak {(peak or 0) / 1024:.2f} GB ("
+          + ("largest sum of the runs' process trees' RSS sampled at once, PSS "
+             f"{(together['peak_sum_pss_mb'] or 0) / 1024:.2f} GB)" if args.parallel > 1 else "this process's RSS)"))
     load = {"start": load_start, "end": load_average()}
     print("load average (1 / 5 / 15 min), start and end: " + "; ".join(
         f"{v['load_1m']:.2f} / {v['load_5m']:.2f} / {v['load_15m']:.2f} at {v['at']}" for v in load.values()))
@@ -306,6 +348,9 @@ def run_cycle(args: argparse.Namespace) -> dict:
         "runs": runs,
         "total": {**total, "rss_max_mb": rss_max_mb()},
         "total_without_backtest": without,
+        "per_step": by_step,
+        "partitions": keys,
+        "whole": {**together, "peak_mb": peak},
         "load": load,
         "versions": {**versions(), "commit": commit},
         "complete": True,
@@ -340,10 +385,14 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
     p.add_argument("--folder", default=None, help="keep inputs, store, reports and DAGSTER_HOME here (default: "
                    "a temporary folder, removed at the end)")
     p.add_argument("--rss-sample-ms", type=float, default=10.0, help="RSS sampling interval; 0 = off (default 10)")
+    p.add_argument("--slices", type=int, default=1, help="independent slices of the scenario (seeds seed + i)")
+    p.add_argument("--shard-leaves", type=int, default=0, metavar="L",
+                   help="cut each class into ceil(its leaves / L) shards (default 0: not cut)")
+    p.add_argument("--parallel", type=int, default=1, metavar="K", help="partitions at once, a process each")
     p.add_argument("--json", default=None, metavar="PATH", help="write the figures as JSON")
     args = p.parse_args(argv)
-    if args.leaves < 1 or args.periods < 8 or args.horizon < 1:
-        p.error("--leaves >= 1, --periods >= 8 and --horizon >= 1")
+    if args.leaves < 1 or args.periods < 8 or args.horizon < 1 or args.slices < 1 or args.parallel < 1:
+        p.error("--leaves, --slices, --parallel >= 1, --periods >= 8 and --horizon >= 1")
     return args
 
 

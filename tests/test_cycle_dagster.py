@@ -46,3 +46,42 @@ def test_the_dagster_benchmark_reports_every_step_of_the_graph(tmp_path):
     assert total["wall_s"] == pytest.approx(sum(r["wall_s"] for r in figures["steps"]))
     assert 0 < total["validation_share_of_own"] < 1
     assert (tmp_path / "run" / "var" / "store" / "tables" / "plan_measures").is_dir()  # the real store was written
+
+
+def test_a_scenario_in_slices_cut_into_shards_runs_two_partitions_at_a_time(tmp_path):
+    """`--slices 2 --shard-leaves L --parallel 2`: one input folder holding both slices (slice 1's products renamed),
+    the class cut into ceil(leaves / L) shards, every shard a run of the whole graph in a process of its own."""
+    out, folder = tmp_path / "figures.json", tmp_path / "run"
+    done = subprocess.run(
+        [sys.executable, str(ROOT / "benchmarks" / "cycle_dagster.py"), "--leaves", "400", "--slices", "2",
+         "--shard-leaves", "40", "--classes", "slow", "--parallel", "2", "--folder", str(folder), "--json", str(out)],
+        cwd=ROOT, capture_output=True, text=True, timeout=1800,
+    )
+    assert done.returncode == 0, done.stderr[-3000:]
+    figures = json.loads(out.read_text())
+    facts = figures["scenario"]
+    assert facts["leaves"] == 400 and facts["slices"] == 2 and sum(facts["leaves_per_class"].values()) == 400
+    n = -(-facts["leaves_per_class"]["slow"] // 40)
+    assert n > 1 and facts["shards"]["slow"] == n
+    assert figures["partitions"] == [f"slow~{i}of{n}" for i in range(1, n + 1)]
+
+    import pandas as pd
+
+    products = pd.read_csv(folder / "inputs" / "products.csv")["product"]
+    first, second = products[~products.str.endswith("-1")], products[products.str.endswith("-1")]
+    # both slices draw the same codes; the suffix keeps their products (and so their parents) apart
+    assert products.is_unique and set(second.str.removesuffix("-1")) & set(first)
+    assert {p.name.split("_")[1] for p in (folder / "inputs").glob("history_*.csv")} == {"0", "1"}
+
+    from pipelines.definitions import ASSETS
+
+    assets = {a.node_def.name for a in ASSETS}
+    assert sorted(r["class"] for r in figures["runs"]) == figures["partitions"] and all(
+        r["success"] for r in figures["runs"])
+    for key in figures["partitions"]:
+        assert {r["step"] for r in figures["steps"] if r["class"] == key} == assets, key
+    assert {r["step"]: r["runs"] for r in figures["per_step"]} == dict.fromkeys(assets, n)
+    whole = figures["whole"]
+    assert whole["parallel"] == 2 and 1 <= whole["most_runs_at_once"] <= 2
+    assert whole["peak_mb"] > 100 and whole["peak_sum_pss_mb"] <= whole["peak_sum_rss_mb"]
+    assert all(r["rss_peak_mb"] > 100 for r in figures["runs"])  # each run's processes sampled

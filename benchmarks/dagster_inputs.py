@@ -1,0 +1,101 @@
+"""The Dagster benchmark's inputs in slices: one input folder of independent slices, classes cut into shards.
+
+`benchmarks/cycle_dagster.py --slices N` writes the scenario as N slices of
+leaves / N leaf series each, generated one after another, each in a forked
+child (so no process holds more than one slice's lines): slice i is
+`cycle_scenario.generate` with seed + i, its products renamed `<code>-<i>`
+(slice 0 keeps its names, so one slice is the plain scenario) wherever a
+product code appears (history, products and successors, customer spans,
+adjustments, pins, shortages; a bad line's product that is no product stays as
+written). Its history goes to `history_<i>_<year>.csv` files beside the other
+slices' in the one input folder; the master data and planner input are
+appended to one CSV file each. Sites and the customer pool are shared by
+the slices, as one company's are; parents never are.
+
+`shard_counts` cuts each class into ceil(its leaves / `shard_leaves`) shards
+(`scale: {shards: n}` on the class): how a team would run more leaves than
+one process holds, each shard a partition of its own, K at a time.
+"""
+
+from __future__ import annotations
+
+import math
+import multiprocessing
+import time
+from pathlib import Path
+
+import pandas as pd
+from cycle_scenario import generate
+
+PRODUCT_COLUMNS = {"raw": ("product",), "products": ("product", "successor"), "spans": ("product",),
+                   "adjustments": ("product",), "pins": ("product",), "shortages": ("product",)}
+MASTER = {"products": "products", "spans": "customer_spans", "adjustments": "adjustments", "pins": "pins",
+          "shortages": "shortages"}
+
+
+def renamed(frame: pd.DataFrame, columns: tuple[str, ...], known: set, suffix: str) -> pd.DataFrame:
+    """`frame` with every known product code in `columns` given `suffix`."""
+    if not suffix:
+        return frame
+    frame = frame.copy()
+    for column in columns:
+        values = frame[column]
+        mine = values.isin(known).to_numpy()
+        frame[column] = values.where(~mine, values.astype(object).astype(str) + suffix)
+    return frame
+
+
+def write_slice(index: int, leaves: int, seed: int, periods: int, horizon: int, inputs: Path) -> dict:
+    """Slice `index` of the scenario into `inputs` (history files of its own, master data appended); its facts
+    and its leaves per class."""
+    scen = generate(leaves, seed, periods, None, horizon)
+    known, suffix = set(scen.products["product"].dropna()), f"-{index}" if index else ""
+    raw = renamed(scen.raw, PRODUCT_COLUMNS["raw"], known, suffix)
+    for name, part in raw.groupby("source_file", sort=True):
+        target = inputs / f"history_{index}_{name.removeprefix('history_')}"
+        part.drop(columns=["source_file", "source_row"]).to_csv(target, index=False, lineterminator="\n")
+    for attr, file in MASTER.items():
+        frame = renamed(getattr(scen, attr), PRODUCT_COLUMNS[attr], known, suffix)
+        frame.to_csv(inputs / f"{file}.csv", index=False, lineterminator="\n", mode="a" if index else "w",
+                     header=not index)
+    of_class = scen.spans["product"].map(scen.products.drop_duplicates("product").set_index("product")["product_class"])
+    return {**scen.facts, "leaves_per_class": {str(k): int(v) for k, v in of_class.value_counts().items()}}
+
+
+def _slice_child(queue, *args) -> None:
+    try:
+        queue.put(write_slice(*args))
+    except Exception as err:  # reported by the parent
+        queue.put({"error": f"{type(err).__name__}: {err}"})
+        raise
+
+
+def write_slices(leaves: int, slices: int, seed: int, periods: int, horizon: int, inputs: Path) -> dict:
+    """Every slice, one forked child after another; the facts summed over the slices."""
+    started, context = time.perf_counter(), multiprocessing.get_context("fork")
+    inputs.mkdir(parents=True, exist_ok=True)
+    size, total = leaves // slices, {}
+    for i in range(slices):
+        queue = context.SimpleQueue()
+        child = context.Process(target=_slice_child, args=(queue, i, size, seed + i, periods, horizon, inputs))
+        child.start()
+        facts = queue.get()
+        child.join()
+        if child.exitcode != 0 or "error" in facts:
+            raise SystemExit(f"generating slice {i} failed: {facts.get('error', child.exitcode)}")
+        print(f"  slice {i + 1}/{slices} (seed {seed + i}, {size:,} leaves) written, "
+              f"{time.perf_counter() - started:.0f} s so far", flush=True)
+        for key, value in facts.items():
+            if key == "leaves_per_class":
+                counts = total.setdefault(key, {})
+                for k, v in value.items():
+                    counts[k] = counts.get(k, 0) + v
+            elif isinstance(value, int | float):
+                total[key] = total.get(key, 0) + value
+    total["slices"], total["generate_s"] = slices, round(time.perf_counter() - started, 2)
+    return total
+
+
+def shard_counts(leaves_per_class: dict[str, int], shard_leaves: int) -> dict[str, int]:
+    """Shards per class: ceil(the class's leaves / shard_leaves), at least 1."""
+    return {k: max(1, math.ceil(v / shard_leaves)) for k, v in leaves_per_class.items()}
