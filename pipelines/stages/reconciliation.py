@@ -97,7 +97,8 @@ def _leaf_sums(leaf: pd.DataFrame) -> pd.DataFrame:
     are pandas' own group sums over the same rows in the same order), the other columns from each group's first
     row."""
     when, _ = pd.factorize(leaf["period_start"].to_numpy())
-    group, _ = pd.factorize(leaf[PARENT_ID].to_numpy().astype(np.int64) * (int(when.max()) + 1) + when)
+    periods = int(when.max()) + 1 if len(when) else 1  # a shard's empty forecast: no rows, no groups
+    group, _ = pd.factorize(leaf[PARENT_ID].to_numpy().astype(np.int64) * periods + when)
     first = first_rows(group)
     out = {c: leaf[c].to_numpy()[first] for c in (PARENT_ID, "period_start")}
     out["leaf_cycle_date"] = leaf["cycle_date"].to_numpy()[first]
