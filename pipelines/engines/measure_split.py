@@ -19,8 +19,8 @@ import pandas as pd
 from pipelines.calendar import period_ordinal
 from pipelines.config_sections import MeasureConfig
 from pipelines.engines.integer_split import largest_remainder, round_to_pack
-from pipelines.engines.plan_codes import codes_in, packed_codes, run_codes
-from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
+from pipelines.engines.plan_codes import key_sums, packed_codes, position, rows_of, run_codes
+from pipelines.keys import LEAF, PARENT, first_rows
 from pipelines.vocabulary import MeasureFallback, values
 
 PIN_KEY = ["measure"] + LEAF + ["period_start"]
@@ -176,10 +176,10 @@ def find_sum_violations(
     if parents.empty:
         return pd.DataFrame({c: pd.Series(dtype=object) for c in columns})
     code, sums = key_sums(plan, key)
-    at = _rows_of(parents, key, sums)  # each parent period's row of sums, -1 where the plan has none
+    at = rows_of(parents, key, sums)  # each parent period's row of sums, -1 where the plan has none
     merged = parents.reset_index(drop=True)
     for column, empty in (("children_sum", 0.0), ("children", 0), ("pins_in_plan", 0.0)):
-        merged[column] = np.where(at >= 0, sums[column].to_numpy()[np.maximum(at, 0)], empty)
+        merged[column] = np.append(sums[column].to_numpy(), empty)[at]  # at -1: the appended empty value
     v = merged["parent_value"].fillna(0.0).to_numpy(float)
     pins_sum = merged["pins_in_plan"].to_numpy(float)
     pack_of = {n: m.integer.pack_size if m.integer else 0 for n, m in measures.items()}
@@ -206,7 +206,7 @@ def find_sum_violations(
     merged["reason"] = reason
     failing = merged[reason != ""]
     rule_code, rules = run_codes(plan["rule"].to_numpy())
-    rep = (rule_code == _position(rules, "replicate")) & ~plan["pinned"].to_numpy(bool)
+    rep = (rule_code == position(rules, "replicate")) & ~plan["pinned"].to_numpy(bool)
     value, parent_value = plan["value"].to_numpy(float), plan["parent_value"].to_numpy(float)
     bad = rep & ~(np.abs(value - parent_value) <= TOLERANCE * np.maximum(np.abs(parent_value), 1.0))
     if bad.any():
@@ -216,44 +216,6 @@ def find_sum_violations(
         extra = extra.assign(expected=extra["parent_value"], reason="a child differs from the parent value")
         failing = pd.concat([failing, extra], ignore_index=True)
     return failing[columns].reset_index(drop=True)
-
-
-def key_sums(plan: pd.DataFrame, key: list[str]) -> tuple[np.ndarray, pd.DataFrame]:
-    """Each plan row's dense code of its `key` (first appearance order) and, per code, the children's sum,
-    their count and the sum of the pinned ones (one bincount each); `_rows_of` finds a key's row."""
-    packed = packed_codes(plan, key)
-    if packed is None:  # too many distinct cells to pack: pandas' own grouping
-        code, keys = factorize(plan, key)
-        found = ("keys", keys)
-    else:
-        code, uniques = pd.factorize(packed[0])
-        found = ("packed", (uniques, packed[1]))
-    code = code.astype(np.int64)
-    n = int(code.max()) + 1 if len(code) else 0
-    value = plan["value"].to_numpy(float)
-    pinned = np.where(plan["pinned"].to_numpy(bool), value, 0.0)
-    sums = pd.DataFrame(
-        {
-            "children_sum": np.bincount(code, weights=value, minlength=n),
-            "children": np.bincount(code, minlength=n),
-            "pins_in_plan": np.bincount(code, weights=pinned, minlength=n),
-        }
-    )
-    sums.attrs["found"] = found
-    return code, sums
-
-
-def _rows_of(parents: pd.DataFrame, key: list[str], sums: pd.DataFrame) -> np.ndarray:
-    """The row of `sums` (from `key_sums`) holding each parent's key, -1 where none."""
-    how, what = sums.attrs["found"]
-    if how == "keys":
-        return lookup(parents, key, what)
-    return pd.Index(what[0]).get_indexer(codes_in(parents, key, what[1]))
-
-
-def _position(uniques: np.ndarray, value) -> int:
-    hit = np.flatnonzero(uniques == value)
-    return int(hit[0]) if len(hit) else -2
 
 
 def find_pins_not_kept(plan: pd.DataFrame, pins_applied: pd.DataFrame, pins_not_applied: pd.DataFrame) -> pd.DataFrame:

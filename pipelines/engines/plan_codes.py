@@ -13,6 +13,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from pipelines.keys import factorize, lookup
+
 
 def run_codes(values) -> tuple[np.ndarray, np.ndarray]:
     """Exactly `pd.factorize(values)`'s codes (int64, -1 for a missing cell) and uniques, hashing one
@@ -82,3 +84,42 @@ def group_sizes(frame: pd.DataFrame, cols: list[str], name: str) -> pd.DataFrame
     out = pd.DataFrame({c: u[p] for c, u, p in zip(cols, sorted_uniques, parts, strict=True)})
     out[name] = counts[present].astype(np.int64)
     return out
+
+
+def key_sums(plan: pd.DataFrame, key: list[str]) -> tuple[np.ndarray, pd.DataFrame]:
+    """Each plan row's dense code of its `key` (first appearance order) and, per code, the children's sum,
+    their count and the sum of the pinned ones (one bincount each); `rows_of` finds a key's row."""
+    packed = packed_codes(plan, key)
+    if packed is None:  # too many distinct cells to pack: pandas' own grouping
+        code, keys = factorize(plan, key)
+        found = ("keys", keys)
+    else:
+        code, uniques = pd.factorize(packed[0])
+        found = ("packed", (uniques, packed[1]))
+    code = code.astype(np.int64)
+    n = int(code.max()) + 1 if len(code) else 0
+    value = plan["value"].to_numpy(float)
+    pinned = np.where(plan["pinned"].to_numpy(bool), value, 0.0)
+    sums = pd.DataFrame(
+        {
+            "children_sum": np.bincount(code, weights=value, minlength=n),
+            "children": np.bincount(code, minlength=n),
+            "pins_in_plan": np.bincount(code, weights=pinned, minlength=n),
+        }
+    )
+    sums.attrs["found"] = found
+    return code, sums
+
+
+def rows_of(parents: pd.DataFrame, key: list[str], sums: pd.DataFrame) -> np.ndarray:
+    """The row of `sums` (from `key_sums`) holding each parent's key, -1 where none."""
+    how, what = sums.attrs["found"]
+    if how == "keys":
+        return lookup(parents, key, what)
+    return pd.Index(what[0]).get_indexer(codes_in(parents, key, what[1]))
+
+
+def position(uniques: np.ndarray, value) -> int:
+    """The code of `value` among `uniques`, or -2 (no code, not even the missing one) when absent."""
+    hit = np.flatnonzero(uniques == value)
+    return int(hit[0]) if len(hit) else -2
