@@ -47,10 +47,18 @@ def plan_piece(name: str, m, split: Split, value, has, pinned, label, parent_of_
         "rule": m.rule,
         "value": split.value[child, col],
         "parent_value": np.where(has[par, col], value[par, col], np.nan),
-        "basis": np.where(is_pin, "pin", np.where(code == EVEN, "even", label[par])),
+        "basis": _basis(label, par, code == EVEN, is_pin),
         "fallback": np.asarray(FALLBACKS, dtype=object)[code],
         "pinned": is_pin,
     }
+
+
+def _basis(label: np.ndarray, par: np.ndarray, even: np.ndarray, is_pin: np.ndarray) -> np.ndarray:
+    """Each row's basis: "pin" where pinned, else "even" where the split fell back to even, else its parent's
+    label; chosen on integer codes and taken once from the few labels (no object array per choice)."""
+    code, labels = pd.factorize(label, use_na_sentinel=False)  # a parent's label, coded (a handful)
+    names = np.concatenate([np.asarray(labels, dtype=object), np.array(["even", "pin"], dtype=object)])
+    return names[np.where(is_pin, len(labels) + 1, np.where(even, len(labels), code[par]))]
 
 
 def plan_table(pieces: list[dict], children: pd.DataFrame, starts: pd.DatetimeIndex, cycle_date) -> pd.DataFrame:

@@ -19,7 +19,8 @@ import pandas as pd
 from pipelines.calendar import period_ordinal
 from pipelines.config_sections import MeasureConfig
 from pipelines.engines.integer_split import largest_remainder, round_to_pack
-from pipelines.keys import LEAF, PARENT, factorize
+from pipelines.engines.plan_codes import key_sums, packed_codes, position, rows_of, run_codes
+from pipelines.keys import LEAF, PARENT, first_rows
 from pipelines.vocabulary import MeasureFallback, values
 
 PIN_KEY = ["measure"] + LEAF + ["period_start"]
@@ -174,16 +175,11 @@ def find_sum_violations(
     columns = key + ["rule", "parent_value", "expected", "children_sum", "children", "reason"]
     if parents.empty:
         return pd.DataFrame({c: pd.Series(dtype=object) for c in columns})
-    code, sums = factorize(plan, key)  # integer codes, so the sums are bincounts
-    value = plan["value"].to_numpy(float)
-    sums["children_sum"] = np.bincount(code, weights=value, minlength=len(sums))
-    sums["children"] = np.bincount(code, minlength=len(sums))
-    sums["pins_in_plan"] = np.bincount(
-        code, weights=np.where(plan["pinned"].to_numpy(bool), value, 0.0), minlength=len(sums)
-    )
-    merged = parents.merge(sums, on=key, how="left")
-    merged[["children_sum", "pins_in_plan"]] = merged[["children_sum", "pins_in_plan"]].astype(float).fillna(0.0)
-    merged["children"] = merged["children"].fillna(0).astype(np.int64)
+    code, sums = key_sums(plan, key)
+    at = rows_of(parents, key, sums)  # each parent period's row of sums, -1 where the plan has none
+    merged = parents.reset_index(drop=True)
+    for column, empty in (("children_sum", 0.0), ("children", 0), ("pins_in_plan", 0.0)):
+        merged[column] = np.append(sums[column].to_numpy(), empty)[at]  # at -1: the appended empty value
     v = merged["parent_value"].fillna(0.0).to_numpy(float)
     pins_sum = merged["pins_in_plan"].to_numpy(float)
     pack_of = {n: m.integer.pack_size if m.integer else 0 for n, m in measures.items()}
@@ -209,10 +205,13 @@ def find_sum_violations(
     merged["expected"] = np.where(additive, expected, v)
     merged["reason"] = reason
     failing = merged[reason != ""]
-    rep = plan[(plan["rule"] == "replicate") & ~plan["pinned"]]
-    bad = rep[~(np.abs(rep["value"] - rep["parent_value"]) <= TOLERANCE * np.maximum(np.abs(rep["parent_value"]), 1.0))]
-    if len(bad):
-        bad_parents = bad.groupby(key, sort=False).size().rename("n").reset_index()
+    rule_code, rules = run_codes(plan["rule"].to_numpy())
+    rep = (rule_code == position(rules, "replicate")) & ~plan["pinned"].to_numpy(bool)
+    value, parent_value = plan["value"].to_numpy(float), plan["parent_value"].to_numpy(float)
+    bad = rep & ~(np.abs(value - parent_value) <= TOLERANCE * np.maximum(np.abs(parent_value), 1.0))
+    if bad.any():
+        bad_parents = plan[bad].groupby(key, sort=False).size().rename("n").reset_index()
+        sums = sums.assign(**{c: plan[c].to_numpy()[first_rows(code)] for c in key})
         extra = parents.merge(bad_parents, on=key).merge(sums, on=key, how="left")
         extra = extra.assign(expected=extra["parent_value"], reason="a child differs from the parent value")
         failing = pd.concat([failing, extra], ignore_index=True)
@@ -249,12 +248,20 @@ def plan_totals(plan: pd.DataFrame, parents: pd.DataFrame) -> pd.DataFrame:
         parent_sum=("parent_value", "sum"),
         parent_mean=("parent_value", "mean"),
     )
-    leaf = plan.groupby(["measure", "rule"], sort=False).agg(
+    packed = packed_codes(plan, ["measure", "rule"])
+    by = ["measure", "rule"] if packed is None or (packed[0] < 0).any() else packed[0]
+    # on one integer key the groups hold the same rows in the same order, so the same sums
+    leaf = plan.groupby(by, sort=False).agg(
         leaf_rows=("value", "size"),
         pinned_rows=("pinned", "sum"),
         leaf_sum=("value", "sum"),
         leaf_mean=("value", "mean"),
     )
+    if not isinstance(by, list):
+        first = first_rows(by)
+        leaf.index = pd.MultiIndex.from_arrays(
+            [plan[c].to_numpy()[first] for c in ("measure", "rule")], names=["measure", "rule"]
+        )
     out = p.join(leaf, how="outer").reset_index()
     mean = (out["rule"] == "replicate").to_numpy()
     out["statistic"] = np.where(mean, "mean", "total")
@@ -267,8 +274,17 @@ def plan_totals(plan: pd.DataFrame, parents: pd.DataFrame) -> pd.DataFrame:
 
 
 PARENT_COLUMNS = [
-    "measure", "rule", "product", "site", "period_start", "parent_value", "pins_sum", "pinned_children",
-    "active_children", "split_total", "status",
+    "measure",
+    "rule",
+    "product",
+    "site",
+    "period_start",
+    "parent_value",
+    "pins_sum",
+    "pinned_children",
+    "active_children",
+    "split_total",
+    "status",
 ]
 
 
@@ -348,4 +364,3 @@ def overflow_message(overflow: pd.DataFrame, source) -> str:
         f"is error):\n  " + "\n  ".join(lines) + more + "\nLower the pins, raise the parent value, or set "
         "pins.on_overflow: warn to keep the pins and give the other customers 0."
     )
-

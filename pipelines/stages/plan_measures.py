@@ -117,6 +117,7 @@ from pipelines.engines.measure_split import (
     plan_totals,
     split_cells,
 )
+from pipelines.engines.plan_codes import group_sizes
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.errors import PinError
 from pipelines.keys import LEAF, PARENT, factorize, lookup
@@ -355,10 +356,7 @@ def run(
     ]
     figures = {
         "measures": ", ".join(settings.measures),
-        "rows_by_measure_and_rule": plan.groupby(["measure", "rule", "basis", "fallback"])
-        .size()
-        .rename("rows")
-        .reset_index(),
+        "rows_by_measure_and_rule": group_sizes(plan, ["measure", "rule", "basis", "fallback"], "rows"),
         "totals_parent_vs_leaf": plan_totals(plan, result.parents),
         "pins_applied": len(result.pins_applied),
         "pins_overflowing_parents": len(result.overflow),
