@@ -19,8 +19,9 @@ import pandas as pd
 from pipelines.calendar import period_ordinal
 from pipelines.config_sections import MeasureConfig
 from pipelines.engines.integer_split import largest_remainder, round_to_pack
-from pipelines.engines.plan_codes import key_sums, packed_codes, position, rows_of, run_codes
+from pipelines.engines.plan_codes import key_sums, packed_codes, position, rows_of
 from pipelines.keys import LEAF, PARENT, first_rows
+from pipelines.text_codes import codes_of
 from pipelines.vocabulary import MeasureFallback, values
 
 PIN_KEY = ["measure"] + LEAF + ["period_start"]
@@ -205,7 +206,7 @@ def find_sum_violations(
     merged["expected"] = np.where(additive, expected, v)
     merged["reason"] = reason
     failing = merged[reason != ""]
-    rule_code, rules = run_codes(plan["rule"].to_numpy())
+    rule_code, rules = codes_of(plan["rule"].to_numpy())
     rep = (rule_code == position(rules, "replicate")) & ~plan["pinned"].to_numpy(bool)
     value, parent_value = plan["value"].to_numpy(float), plan["parent_value"].to_numpy(float)
     bad = rep & ~(np.abs(value - parent_value) <= TOLERANCE * np.maximum(np.abs(parent_value), 1.0))

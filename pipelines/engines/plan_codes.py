@@ -2,7 +2,7 @@
 
 The plan's rows come in long runs of one value (a measure's rows together,
 a leaf's periods together), so a text column is coded by hashing only the
-first cell of each run (`run_codes`): the same codes and uniques as
+first cell of each run (`pipelines.text_codes.codes_of`): the same codes and uniques as
 `pd.factorize`, in a few times less time on millions of rows. The checks and
 figures then count and sum over one packed integer key instead of merging or
 grouping on several text columns.
@@ -14,19 +14,7 @@ import numpy as np
 import pandas as pd
 
 from pipelines.keys import factorize, lookup
-
-
-def run_codes(values) -> tuple[np.ndarray, np.ndarray]:
-    """Exactly `pd.factorize(values)`'s codes (int64, -1 for a missing cell) and uniques, hashing one
-    cell per run of equal cells (a cell that differs from the one before starts a run)."""
-    values = np.asarray(values)
-    n = len(values)
-    if n == 0:
-        codes, uniques = pd.factorize(values)
-        return codes.astype(np.int64), np.asarray(uniques)
-    start = np.flatnonzero(np.r_[True, values[1:] != values[:-1]])
-    head_codes, uniques = pd.factorize(values[start])
-    return np.repeat(head_codes.astype(np.int64), np.diff(np.r_[start, n])), np.asarray(uniques)
+from pipelines.text_codes import codes_of
 
 
 def packed_codes(frame: pd.DataFrame, cols: list[str]) -> tuple[np.ndarray, list[np.ndarray]] | None:
@@ -36,7 +24,7 @@ def packed_codes(frame: pd.DataFrame, cols: list[str]) -> tuple[np.ndarray, list
     missing = np.zeros(len(frame), dtype=bool)
     capacity, uniques = 1, []
     for c in cols:
-        k, u = run_codes(frame[c].to_numpy())
+        k, u = codes_of(frame[c].to_numpy())
         capacity *= max(len(u), 1)
         if capacity >= 2**62:
             return None
@@ -65,7 +53,7 @@ def group_sizes(frame: pd.DataFrame, cols: list[str], name: str) -> pd.DataFrame
     missing key left out) counted with one bincount over ranks of each column's sorted uniques."""
     ranks, sorted_uniques, sizes = [], [], []
     for c in cols:
-        k, u = run_codes(frame[c].to_numpy())
+        k, u = codes_of(frame[c].to_numpy())
         if not len(frame) or not all(isinstance(x, str) for x in u):  # text keys only: sorted as pandas sorts
             return frame.groupby(cols).size().rename(name).reset_index()
         order = np.argsort(u, kind="stable")
