@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pandas as pd
 
@@ -24,16 +26,12 @@ def factorize(df: pd.DataFrame, cols: list[str]) -> tuple[np.ndarray, pd.DataFra
         if len(starts) * RUNS_SHARE <= len(df):
             codes, uniques = factorize(df.iloc[starts], cols)
             return np.repeat(codes, np.diff(np.append(starts, len(df)))), uniques
-    combined = np.zeros(len(df), dtype=np.int64)
-    capacity = 1
-    for c in cols:
-        k, u = codes_of(df[c])
-        capacity *= max(len(u), 1)
-        if capacity >= 2**62:  # cannot pack: fall back to pandas' own grouping
-            codes = df.groupby(cols, sort=False, dropna=False).ngroup().to_numpy(np.int64)
-            first = first_rows(codes)
-            return codes, df[cols].iloc[first].reset_index(drop=True)
-        combined = combined * max(len(u), 1) + k
+    coded_cols = [codes_of(df[c]) for c in cols]
+    combined = pack_codes([k for k, _ in coded_cols], [len(u) for _, u in coded_cols])
+    if combined is None:  # cannot pack: fall back to pandas' own grouping
+        codes = df.groupby(cols, sort=False, dropna=False).ngroup().to_numpy(np.int64)
+        first = first_rows(codes)
+        return codes, df[cols].iloc[first].reset_index(drop=True)
     codes = pd.factorize(combined)[0].astype(np.int64)
     first = first_rows(codes)
     return codes, df[cols].iloc[first].reset_index(drop=True)
@@ -56,15 +54,20 @@ def joint_codes(left: pd.DataFrame, right: pd.DataFrame, cols: list[str]) -> tup
     packed into one integer. None when the packed codes would not fit in 62 bits.
     """
     n = len(left)
-    combined = np.zeros(n + len(right), dtype=np.int64)
-    capacity = 1
-    for c in cols:
-        k, u = pd.factorize(pd.concat([left[c], right[c]], ignore_index=True), use_na_sentinel=False)
-        capacity *= max(len(u), 1)
-        if capacity >= 2**62:
-            return None
-        combined = combined * max(len(u), 1) + k
-    return combined[:n], combined[n:]
+    coded_cols = [pd.factorize(pd.concat([left[c], right[c]], ignore_index=True), use_na_sentinel=False) for c in cols]
+    combined = pack_codes([k for k, _ in coded_cols], [len(u) for _, u in coded_cols])
+    return None if combined is None else (combined[:n], combined[n:])
+
+
+def pack_codes(codes: list[np.ndarray], sizes: list[int]) -> np.ndarray | None:
+    """One int64 per row from each column's integer codes (`codes[i]` below `sizes[i]`): equal exactly where
+    every column's code is. None when the packed codes would not fit in 62 bits (the caller groups otherwise)."""
+    if math.prod(max(int(size), 1) for size in sizes) >= 2**62:
+        return None
+    combined = np.zeros(len(codes[0]) if codes else 0, dtype=np.int64)
+    for k, size in zip(codes, sizes, strict=True):
+        combined = combined * max(size, 1) + k
+    return combined
 
 
 def lookup(df: pd.DataFrame, cols: list[str], table: pd.DataFrame) -> np.ndarray:

@@ -40,7 +40,7 @@ from pandera.backends.pandas.container import DataFrameSchemaBackend
 from pandera.config import ValidationScope
 from pandera.validation_depth import validate_scope
 
-from pipelines.keys import LEAF, LEAF_ID, PARENT, PARENT_ID, ids_match_keys, ids_proven
+from pipelines.keys import LEAF, LEAF_ID, PARENT, PARENT_ID, ids_match_keys, ids_proven, pack_codes
 
 # during one validation: whether a frame's ids were proven to match its keys, by the arrays they were read from
 _PROOFS: contextvars.ContextVar[dict | None] = contextvars.ContextVar("ids_proofs", default=None)
@@ -155,21 +155,19 @@ def _rows_sharing(columns: list[np.ndarray], n: int) -> np.ndarray | None:
         shared[1:] |= same
         shared[:-1] |= same
         return shared
-    packed = np.zeros(n, dtype=np.int64)
-    capacity = 1
+    codes, widths = [], []
     for values in columns:
         low = int(values.min())
         width = int(values.max()) - low + 1
         if width > n:  # sparse values (dates in nanoseconds): dense codes by hashing
-            codes, uniques = pd.factorize(values)
-            width = len(uniques)
+            code, uniques = pd.factorize(values)
+            codes.append(code)
+            widths.append(len(uniques))
         else:
-            codes = values.astype(np.int64) - low
-        capacity *= max(width, 1)
-        if capacity >= 2**62:
-            return None
-        packed = packed * max(width, 1) + codes
-    return pd.Series(packed).duplicated(keep=False).to_numpy()
+            codes.append(values.astype(np.int64) - low)
+            widths.append(width)
+    packed = pack_codes(codes, widths)
+    return None if packed is None else pd.Series(packed).duplicated(keep=False).to_numpy()
 
 
 class KeyedFrameBackend(DataFrameSchemaBackend):

@@ -21,6 +21,7 @@ from pipelines.keys import (
     key_ids,
     key_rank,
     lookup,
+    pack_codes,
     rows_in,
 )
 
@@ -198,3 +199,13 @@ def test_week_ordinals_count_weeks_from_a_monday_as_python_dates_do():
     assert period_ordinal(pd.Series(stamps), "week").tolist() == expected
     with_blank = pd.Series(list(stamps[:5]) + [pd.NaT])
     assert period_ordinal(with_blank, "week")[:5].tolist() == expected[:5]
+
+
+def test_packed_codes_are_equal_exactly_where_every_columns_code_is():
+    rng = np.random.default_rng(3)
+    parts = [rng.integers(0, size, 2_000) for size in (7, 300, 2)]
+    packed = pack_codes(parts, [7, 300, 2])
+    tuples = pd.factorize(pd.MultiIndex.from_arrays(parts))[0]
+    assert (pd.factorize(packed)[0] == tuples).all()  # one code per distinct tuple, in the same order
+    assert pack_codes(parts, [2**31, 2**31, 2]) is None  # past 62 bits: the caller groups another way
+    assert pack_codes([np.zeros(3, np.int64)], [2**61]) is not None

@@ -22,7 +22,7 @@ from pipelines.calendar import (
 )
 from pipelines.config_inputs import PlausibilityConfig
 from pipelines.engines.plausible import distinct_dates, distinct_quantities, gap_periods, trusted_extent
-from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup
+from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup, pack_codes
 from pipelines.text_codes import codes_of
 
 
@@ -159,12 +159,9 @@ def _repeated_in_earlier_file(
     if not len(at):
         return out
     parts = [line_code[at], same_value[0][at], same_value[1][at]]
-    sizes = [int(part.max()) + 1 for part in parts]
     file = file_code[at]
-    if np.prod([float(k) for k in sizes]) < 2.0**62:
-        group = parts[0].astype(np.int64)
-        for part, size in zip(parts[1:], sizes[1:], strict=True):
-            group = group * size + part
+    group = pack_codes(parts, [int(part.max()) + 1 for part in parts])
+    if group is not None:
         group = pd.factorize(group)[0]
     else:
         group = pd.DataFrame(dict(enumerate(parts))).groupby([0, 1, 2], sort=False).ngroup().to_numpy()
@@ -190,20 +187,16 @@ def _read_errors(cells: pd.Series):
 def _joint_leaf_codes(key_codes: dict, spans: pd.DataFrame) -> tuple[np.ndarray, np.ndarray] | None:
     """`keys.joint_codes(raw, spans, LEAF)` from the lines' coded key columns (`key_codes`: codes and distinct
     cells of each column): each column's distinct cells coded together with the spans' cells."""
-    n = len(next(iter(key_codes.values()))[0])
-    combined = np.zeros(n, dtype=np.int64)
-    spans_combined = np.zeros(len(spans), dtype=np.int64)
-    capacity = 1
+    lines, of_spans, sizes = [], [], []
     for c in LEAF:
         k, cells = key_codes[c]
         both, u = pd.factorize(pd.concat([pd.Series(cells, dtype=object), spans[c]], ignore_index=True),
                                use_na_sentinel=False)
-        capacity *= max(len(u), 1)
-        if capacity >= 2**62:
-            return None
-        combined = combined * max(len(u), 1) + both[: len(cells)][k]
-        spans_combined = spans_combined * max(len(u), 1) + both[len(cells) :]
-    return combined, spans_combined
+        lines.append(both[: len(cells)][k])
+        of_spans.append(both[len(cells) :])
+        sizes.append(len(u))
+    combined = pack_codes(lines, sizes)
+    return None if combined is None else (combined, pack_codes(of_spans, sizes))
 
 
 def shortage_grid(

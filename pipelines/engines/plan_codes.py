@@ -13,38 +13,28 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from pipelines.keys import factorize, lookup
+from pipelines.keys import factorize, lookup, pack_codes
 from pipelines.text_codes import codes_of
 
 
 def packed_codes(frame: pd.DataFrame, cols: list[str]) -> tuple[np.ndarray, list[np.ndarray]] | None:
     """One int64 per row, equal exactly where the rows' `cols` are equal (-1 where a cell is missing), and
     each column's uniques; None when the packed codes would not fit in 62 bits."""
-    combined = np.zeros(len(frame), dtype=np.int64)
-    missing = np.zeros(len(frame), dtype=bool)
-    capacity, uniques = 1, []
-    for c in cols:
-        k, u = codes_of(frame[c].to_numpy())
-        capacity *= max(len(u), 1)
-        if capacity >= 2**62:
-            return None
-        missing |= k < 0
-        combined = combined * max(len(u), 1) + np.maximum(k, 0)
-        uniques.append(u)
-    combined[missing] = -1
+    coded_cols = [codes_of(frame[c].to_numpy()) for c in cols]
+    uniques = [u for _, u in coded_cols]
+    combined = pack_codes([np.maximum(k, 0) for k, _ in coded_cols], [len(u) for u in uniques])
+    if combined is None:
+        return None
+    combined[np.logical_or.reduce([k < 0 for k, _ in coded_cols])] = -1
     return combined, uniques
 
 
 def codes_in(frame: pd.DataFrame, cols: list[str], uniques: list[np.ndarray]) -> np.ndarray:
     """The packed code (as `packed_codes` made it with these uniques) of each row of `frame`; -1 where a
     cell is not among its column's uniques."""
-    combined = np.zeros(len(frame), dtype=np.int64)
-    missing = np.zeros(len(frame), dtype=bool)
-    for c, u in zip(cols, uniques, strict=True):
-        k = pd.Index(u).get_indexer(frame[c].to_numpy())
-        missing |= k < 0
-        combined = combined * max(len(u), 1) + np.maximum(k, 0)
-    combined[missing] = -1
+    found = [pd.Index(u).get_indexer(frame[c].to_numpy()) for c, u in zip(cols, uniques, strict=True)]
+    combined = pack_codes([np.maximum(k, 0) for k in found], [len(u) for u in uniques])
+    combined[np.logical_or.reduce([k < 0 for k in found])] = -1
     return combined
 
 

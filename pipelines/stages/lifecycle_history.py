@@ -35,7 +35,7 @@ import pandas as pd
 from pipelines.calendar import active_mask, period_ordinal, span_bounds
 from pipelines.config import CalendarConfig, PlanningConfig
 from pipelines.errors import LifecycleError
-from pipelines.keys import ID_DTYPE, LEAF, LEAF_ID, PARENT_ID, factorize, lookup
+from pipelines.keys import ID_DTYPE, LEAF, LEAF_ID, PARENT_ID, factorize, lookup, pack_codes
 from pipelines.results import Log, StageResult, quiet
 from pipelines.text_codes import codes_of, run_starts
 
@@ -127,11 +127,9 @@ def _sort_order(dest_rank: np.ndarray, ordinal: np.ndarray, moved: np.ndarray, s
         return np.zeros(0, dtype=np.int64)
     ordinal = ordinal - ordinal.min()
     sizes = [int(dest_rank.max()) + 1, int(ordinal.max()) + 1, 2, int(source_rank.max()) + 1]
-    if np.prod([float(k) for k in sizes]) >= 2.0**62:
+    key = pack_codes([dest_rank, ordinal, moved, source_rank], sizes)
+    if key is None:
         return np.lexsort((source_rank, moved, ordinal, dest_rank))
-    key = dest_rank.astype(np.int64)
-    for part, size in zip((ordinal, moved, source_rank), sizes[1:], strict=True):
-        key = key * size + part
     return np.argsort(key, kind="stable")
 
 
