@@ -14,6 +14,7 @@ from pipelines.calendar import period_ordinal, span_bounds
 from pipelines.checks import SHARE_TOLERANCE
 from pipelines.engines.history_proofs import accounted_lines
 from pipelines.keys import LEAF, PARENT, PARENT_ID, ids_in, key_rank, lookup, part_rows, rows_in
+from pipelines.text_codes import run_starts
 
 
 def find_shares_not_summing_to_one(target: pd.DataFrame, tolerance: float = SHARE_TOLERANCE) -> pd.DataFrame:
@@ -210,13 +211,12 @@ def find_active_parents_without_children(
 
 
 def _distinct_leaves(leaf: pd.DataFrame) -> pd.DataFrame:
-    """The leaf keys of `leaf` without the rows that repeat the row before (a leaf's horizon periods): every
-    distinct key is kept, so a count of distinct customers per parent is that of the whole table."""
+    """The leaf keys of `leaf` at the starts of its runs of one key object (`text_codes.run_starts`: a leaf's
+    horizon periods share them): every distinct key is kept, so a count of distinct customers per parent is
+    that of the whole table."""
     keys = [leaf[c].to_numpy(object) for c in LEAF]
-    new = np.ones(len(leaf), dtype=bool)
-    if len(leaf) > 1:
-        new[1:] = (keys[0][1:] != keys[0][:-1]) | (keys[1][1:] != keys[1][:-1]) | (keys[2][1:] != keys[2][:-1])
-    return pd.DataFrame({c: k[new] for c, k in zip(LEAF, keys, strict=True)})
+    starts = run_starts(keys)
+    return pd.DataFrame({c: k[starts] for c, k in zip(LEAF, keys, strict=True)})
 
 
 def find_unaccounted_lines(raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: pd.DataFrame) -> pd.DataFrame:
