@@ -53,7 +53,6 @@ from __future__ import annotations
 import argparse
 import functools
 import json
-import multiprocessing
 import os
 import sys
 import tempfile
@@ -71,7 +70,7 @@ for path in (ROOT, ROOT / "benchmarks"):
 from cycle_inputs import config_data  # noqa: E402
 from cycle_measure import git_commit, load_average, rss_max_mb, rss_now_mb, versions  # noqa: E402
 from cycle_scenario import CLASSES, CYCLE_DATE, generate  # noqa: E402
-from dagster_inputs import shard_counts, write_slices  # noqa: E402
+from dagster_inputs import forked, shard_counts, write_slices  # noqa: E402
 from dagster_parallel import STEP_HEADER, format_step, per_step, run_parallel  # noqa: E402
 
 CYCLE = str(CYCLE_DATE)
@@ -87,43 +86,32 @@ HEADER = (
 # =================================================================== inputs
 def write_inputs(args: argparse.Namespace, folder: Path) -> dict:
     """The scenario as input files and a config (in a forked child, so its memory is not the cycle's)."""
-    queue = multiprocessing.get_context("fork").SimpleQueue()
-    child = multiprocessing.get_context("fork").Process(target=_write_inputs, args=(args, folder, queue))
-    child.start()
-    facts = queue.get()
-    child.join()
-    if child.exitcode != 0 or "error" in facts:
-        raise SystemExit(f"generating the scenario failed: {facts.get('error', child.exitcode)}")
-    return facts
+    return forked("generating the scenario", _write_inputs, args, folder)
 
 
-def _write_inputs(args: argparse.Namespace, folder: Path, queue) -> None:
-    try:
-        started = time.perf_counter()
-        inputs = folder / "inputs"
-        if args.slices > 1 or args.shard_leaves:
-            facts = write_slices(args.leaves, args.slices, args.seed, args.periods, args.horizon, inputs)
-        else:
-            scen = generate(args.leaves, args.seed, args.periods, inputs, args.horizon)
-            frames = {"products": scen.products, "customer_spans": scen.spans, "adjustments": scen.adjustments,
-                      "pins": scen.pins, "shortages": scen.shortages}
-            for name, frame in frames.items():
-                frame.to_csv(inputs / f"{name}.csv", index=False, lineterminator="\n")
-            facts = scen.facts
-        data = config_data(args.periods, args.horizon, False, None, n_jobs=args.n_jobs)
-        if args.shard_leaves:
-            facts["shards"] = shard_counts(facts["leaves_per_class"], args.shard_leaves)
-            for k, n in facts["shards"].items():
-                data["product_classes"][k]["scale"] = {"shards": n}
-        if args.backtest == "light":
-            data["backtest"] = LIGHT_BACKTEST
-        data["inputs"] = {"folder": str(inputs)}
-        data["store"] = {"path": str(folder / "var" / "store")}
-        (folder / "planning.yaml").write_text(yaml.safe_dump(data, sort_keys=False))
-        queue.put({**facts, "generate_s": round(time.perf_counter() - started, 2)})
-    except Exception as err:  # reported by the parent
-        queue.put({"error": f"{type(err).__name__}: {err}"})
-        raise
+def _write_inputs(args: argparse.Namespace, folder: Path) -> dict:
+    started = time.perf_counter()
+    inputs = folder / "inputs"
+    if args.slices > 1 or args.shard_leaves:
+        facts = write_slices(args.leaves, args.slices, args.seed, args.periods, args.horizon, inputs)
+    else:
+        scen = generate(args.leaves, args.seed, args.periods, inputs, args.horizon)
+        frames = {"products": scen.products, "customer_spans": scen.spans, "adjustments": scen.adjustments,
+                  "pins": scen.pins, "shortages": scen.shortages}
+        for name, frame in frames.items():
+            frame.to_csv(inputs / f"{name}.csv", index=False, lineterminator="\n")
+        facts = scen.facts
+    data = config_data(args.periods, args.horizon, False, None, n_jobs=args.n_jobs)
+    if args.shard_leaves:
+        facts["shards"] = shard_counts(facts["leaves_per_class"], args.shard_leaves)
+        for k, n in facts["shards"].items():
+            data["product_classes"][k]["scale"] = {"shards": n}
+    if args.backtest == "light":
+        data["backtest"] = LIGHT_BACKTEST
+    data["inputs"] = {"folder": str(inputs)}
+    data["store"] = {"path": str(folder / "var" / "store")}
+    (folder / "planning.yaml").write_text(yaml.safe_dump(data, sort_keys=False))
+    return {**facts, "generate_s": round(time.perf_counter() - started, 2)}
 
 
 # =================================================================== measuring

@@ -62,9 +62,23 @@ def write_slice(index: int, leaves: int, seed: int, periods: int, horizon: int, 
     return {**scen.facts, "leaves_per_class": {str(k): int(v) for k, v in of_class.value_counts().items()}}
 
 
-def _slice_child(queue, *args) -> None:
+def forked(what: str, make, *args) -> dict:
+    """`make(*args)` (a dict of facts) in a forked child process, so the memory it needs is not this one's;
+    SystemExit naming `what` when it fails."""
+    context = multiprocessing.get_context("fork")
+    queue = context.SimpleQueue()
+    child = context.Process(target=_child, args=(queue, make, *args))
+    child.start()
+    facts = queue.get()
+    child.join()
+    if child.exitcode != 0 or "error" in facts:
+        raise SystemExit(f"{what} failed: {facts.get('error', child.exitcode)}")
+    return facts
+
+
+def _child(queue, make, *args) -> None:
     try:
-        queue.put(write_slice(*args))
+        queue.put(make(*args))
     except Exception as err:  # reported by the parent
         queue.put({"error": f"{type(err).__name__}: {err}"})
         raise
@@ -72,17 +86,11 @@ def _slice_child(queue, *args) -> None:
 
 def write_slices(leaves: int, slices: int, seed: int, periods: int, horizon: int, inputs: Path) -> dict:
     """Every slice, one forked child after another; the facts summed over the slices."""
-    started, context = time.perf_counter(), multiprocessing.get_context("fork")
+    started = time.perf_counter()
     inputs.mkdir(parents=True, exist_ok=True)
     size, total = leaves // slices, {}
     for i in range(slices):
-        queue = context.SimpleQueue()
-        child = context.Process(target=_slice_child, args=(queue, i, size, seed + i, periods, horizon, inputs))
-        child.start()
-        facts = queue.get()
-        child.join()
-        if child.exitcode != 0 or "error" in facts:
-            raise SystemExit(f"generating slice {i} failed: {facts.get('error', child.exitcode)}")
+        facts = forked(f"generating slice {i}", write_slice, i, size, seed + i, periods, horizon, inputs)
         print(f"  slice {i + 1}/{slices} (seed {seed + i}, {size:,} leaves) written, "
               f"{time.perf_counter() - started:.0f} s so far", flush=True)
         for key, value in facts.items():
