@@ -24,7 +24,7 @@ def factorize(df: pd.DataFrame, cols: list[str]) -> tuple[np.ndarray, pd.DataFra
     if len(df) >= 1024 and all(df[c].dtype == object for c in cols):  # rows in runs of one key: the runs coded
         starts = run_starts([df[c].to_numpy() for c in cols])
         if len(starts) * RUNS_SHARE <= len(df):
-            codes, uniques = factorize(df.iloc[starts], cols)
+            codes, uniques = factorize(pd.DataFrame({c: df[c].to_numpy()[starts] for c in cols}), cols)  # no copy
             return np.repeat(codes, np.diff(np.append(starts, len(df)))), uniques
     coded_cols = [codes_of(df[c]) for c in cols]
     combined = pack_codes([k for k, _ in coded_cols], [len(u) for _, u in coded_cols])

@@ -37,7 +37,7 @@ from pipelines.config import CalendarConfig, PlanningConfig
 from pipelines.errors import LifecycleError
 from pipelines.keys import ID_DTYPE, LEAF, LEAF_ID, PARENT_ID, factorize, lookup, pack_codes
 from pipelines.results import Log, StageResult, quiet
-from pipelines.text_codes import codes_of, run_starts
+from pipelines.text_codes import codes_of
 
 HISTORY_COLUMNS = LEAF + ["period_start", "quantity", "origin", "source_product", "source_customer", "shortage"]
 AUDIT_COLUMNS = LEAF + ["rule", "periods", "quantity", "detail"]
@@ -101,20 +101,13 @@ def _index_type(n: int) -> type:
 
 
 def leaf_codes(frame: pd.DataFrame) -> tuple[np.ndarray, pd.DataFrame]:
-    """`keys.factorize(frame, LEAF)` through the runs of equal keys: codes by first appearance and the leaves.
+    """`keys.factorize(frame, LEAF)`: codes by first appearance (in the smallest integer type) and the leaves.
 
-    The cleaned history holds each leaf's periods one after another, so only the
-    first row of each run of one key object is hashed (`text_codes.run_starts`:
-    about one row per leaf), not every row; any order of rows gives the same
-    codes, a shuffled one just more runs.
+    The cleaned history holds each leaf's periods one after another, so factorize hashes only the first row
+    of each run of one key object (`text_codes.run_starts`: about one row per leaf), not every row.
     """
-    n = len(frame)
-    if n == 0:
-        return factorize(frame, LEAF)
-    starts = run_starts([frame[c].to_numpy() for c in LEAF])
-    heads = pd.DataFrame({c: frame[c].to_numpy()[starts] for c in LEAF})  # `frame[LEAF]` would copy every row
-    run_code, leaves = factorize(heads, LEAF)
-    return np.repeat(run_code.astype(_index_type(len(leaves))), np.diff(np.append(starts, n))), leaves
+    codes, leaves = factorize(frame, LEAF)
+    return codes.astype(_index_type(len(leaves))), leaves
 
 
 def _sort_order(dest_rank: np.ndarray, ordinal: np.ndarray, moved: np.ndarray, source_rank: np.ndarray) -> np.ndarray:
