@@ -15,8 +15,10 @@ slice's statsforecast gets `--n-jobs` processes (default: cores // K, at
 least 1). What the figures are:
 
 - `elapsed_s`: the wall time of the whole run, first slice started to last
-  slice ended (the generator's time inside, as each slice generates its own
-  scenario): what "the whole cycle" takes on this machine;
+  slice ended (the scenario's making or reading inside, as each slice makes
+  its own): what "the whole cycle" takes on this machine. The plain versions
+  of the side by side run in the first `--side-by-side N` slices only
+  (default 1), after their cycle: they are a yardstick, not part of the cycle;
 - wall, own code, statsforecast and validation seconds (`total`): the
   slices' sums (each slice's own `total`, the generator not in it, as in
   `cycle.py`): work, not elapsed time, once K > 1; the generator's summed
@@ -29,8 +31,8 @@ least 1). What the figures are:
   slices' own peaks (`rss_peak_mb`), a bound the sampled sum stays under
   unless the workers add more; `total.rss_peak_mb` stays the largest
   slice's own peak;
-- the model stage and the side-by-side ratios: over the slices' summed
-  seconds.
+- the model stage ratio: over the slices' summed seconds; the side-by-side
+  ratios: over the summed seconds of the slices that ran it.
 
 Not the same as one draw of `--leaves` series: the slices do not share
 products or customers, so no parent spans two slices (as no parent spans two
@@ -66,15 +68,19 @@ def start_slice(leaves: int, seed: int, extra: list[str], folder: Path) -> tuple
     return subprocess.Popen(command, stdout=subprocess.DEVNULL), out
 
 
-def run_slices(size: int, seeds: list[int], parallel: int, extra: list[str], sampler: TreeSampler) -> list[dict]:
-    """Every slice, `parallel` at a time; their JSON figures in the order of `seeds`."""
+def run_slices(
+    size: int, seeds: list[int], parallel: int, extra: list[str], sampler: TreeSampler, side_by_side: int
+) -> list[dict]:
+    """Every slice, `parallel` at a time; their JSON figures in the order of `seeds`. The first `side_by_side`
+    slices also run the plain DuckDB and numpy versions after their cycle (outside their total)."""
     found: dict[int, dict] = {}
     waiting, running = list(seeds), {}
     with tempfile.TemporaryDirectory() as folder:
         while waiting or running:
             while waiting and len(running) < parallel:
                 seed = waiting.pop(0)
-                process, out = start_slice(size, seed, extra, Path(folder))
+                plain = [] if seeds.index(seed) < side_by_side else ["--no-side-by-side"]
+                process, out = start_slice(size, seed, [*extra, *plain], Path(folder))
                 sampler.watch(str(seed), process.pid)
                 running[seed] = (process, out)
             time.sleep(0.2)
@@ -138,6 +144,9 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--parallel", type=int, default=1, metavar="K", help="slices running at once (default 1)")
     p.add_argument("--n-jobs", type=int, default=None,
                    help="statsforecast processes per slice (cycle.py --n-jobs; default cores // K, at least 1)")
+    p.add_argument("--side-by-side", type=int, default=1, metavar="N",
+                   help="slices that also run the plain DuckDB and numpy versions (default 1: the ratio is per slice, "
+                        "and the versions' minutes are not part of the cycle's elapsed time)")
     p.add_argument("--json", default=None, metavar="PATH", help="write the figures as JSON")
     args, extra = p.parse_known_args(argv)
     if args.parallel < 1:
@@ -150,12 +159,12 @@ def main(argv: list[str] | None = None) -> int:
     started, at_start, sampler = time.monotonic(), load(), TreeSampler(0.2)
     try:
         found = run_slices(size, [args.seed + i for i in range(slices)], args.parallel,
-                           [*extra, "--n-jobs", str(n_jobs)], sampler)
+                           [*extra, "--n-jobs", str(n_jobs)], sampler, args.side_by_side)
     finally:
         sampler.stop()
     result = combine(found, size * slices)
     result["elapsed_s"] = time.monotonic() - started
-    result["parallel"], result["n_jobs"] = args.parallel, n_jobs
+    result["parallel"], result["n_jobs"], result["side_by_side_slices"] = args.parallel, n_jobs, args.side_by_side
     result["memory"] = memory(found, args.parallel, sampler)
     result["load"] = {"start": at_start, "end": load()}
     result["versions"] = versions()
