@@ -185,3 +185,31 @@ def test_a_class_with_method_auto_still_tries_the_leaf_fit_candidate(monkeypatch
 def test_leaf_fit_candidates_is_validated():
     with pytest.raises(ConfigError, match="leaf_fit_candidates: Input should be 'auto_only' or 'always'"):
         _leaf_fit_config(setting="sometimes")
+
+
+def test_in_a_run_of_two_classes_only_the_class_that_tries_it_fits_its_leaves(monkeypatch):
+    y = _mix_change()
+    history, cleaned, products, spans, calendar = _inputs(y)
+    products["product_class"] = np.where(products["product"] == "P0", "a", "b")  # P0's 3 leaves fixed, P1's auto
+    fits = _counting_leaf_fits(monkeypatch)
+
+    def tuning(setting):
+        classes = {"a": {"window": 26, "method": "pooled", "strategy": "top_down", "models": SES},
+                   "b": {"window": 26, "method": "auto", "strategy": "top_down", "models": SES}}
+        config = parse_config({
+            "product_classes": classes, "calendar": {"horizon": 4},
+            "backtest": {"origins": 3, "horizon": 4, "step": 4, "strategies": ["top_down"]},
+            "selection": {"share_tuning": {"windows": [4, 26], "methods": ["pooled", "children_forecast"],
+                                           "leaf_fit_candidates": setting}},
+        })
+        settings = backtest_accuracy.BacktestSettings.of(config)
+        return backtest_accuracy.run(history, cleaned, products, spans, calendar, settings).outputs["share_tuning"]
+
+    default = tuning("auto_only")
+    assert fits == [3, 3, 3]  # class b's 3 leaves at each origin, not class a's
+    assert "children_forecast/26" not in set(default.loc[default["product_class"] == "a", "candidate"])
+    always = tuning("always")
+    assert fits[3:] == [6, 6, 6]  # both classes try it
+    b = ["product_class", "candidate", "score", "best", "chosen", "gain", "decision", "detail"]
+    pd.testing.assert_frame_equal(default[default["product_class"] == "b"][b].reset_index(drop=True),
+                                  always[always["product_class"] == "b"][b].reset_index(drop=True))
