@@ -21,7 +21,8 @@ by this process's cpu time, the model pool's workers not counted) and prints
 the 25 functions of most cumulative time (the stats file is kept in `--work`
 as profile.prof; it runs this file's tree, whatever `--tree` says). `--tree DIR` runs the
 command line of another source tree (e.g. `git archive BASE | tar -x -C DIR`)
-on the same inputs, for a before / after pair. The machine's load
+on the same inputs, for a before / after pair; `--config` defaults to that
+tree's `config/planning.weekly.yaml` (an older tree refuses a key it does not know). The machine's load
 (`os.getloadavg`, as `uptime` prints it) is recorded before and after each
 figure.
 """
@@ -247,7 +248,9 @@ def report(result: dict) -> None:
 def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--class", dest="product_class", default="consumables")
-    parser.add_argument("--config", default=str(ROOT / "config" / "planning.weekly.yaml"))
+    parser.add_argument(
+        "--config", help="default: the --tree's config/planning.weekly.yaml (an older tree may not know a newer key)"
+    )
     parser.add_argument(
         "--tree", default=str(ROOT), help="the source tree whose command line runs (another commit's, for a pair)"
     )
@@ -261,7 +264,9 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
         help="the profile's clock: wall, or this process's cpu (without its pool workers')",
     )
     parser.add_argument("--json", help="results JSON (default benchmarks/results/small-class-<class>.json)")
-    return parser.parse_args(argv)
+    args = parser.parse_args(argv)
+    args.config = args.config or str(Path(args.tree) / "config" / "planning.weekly.yaml")
+    return args
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -6,7 +6,12 @@
 - `stability`: when this cycle's best strategy, share window or method
   replaces last cycle's (`pipelines.engines.forecast_comparison.stable_choice`).
 - `share_tuning`: the candidates of `window: auto` and `method: auto` and the
-  gain above which a fixed window or method is reported as worse than the best.
+  gain above which a fixed window or method is reported as worse than the best;
+  `leaf_fit_candidates`: whether a class with a fixed window and method still
+  scores the candidates that fit a model per leaf at every origin
+  (`children_forecast`) for that report (`always`), or leaves them out unless
+  it is configured with one (`auto_only`, the default: those fits were most of
+  a fixed class's backtest).
 """
 
 from __future__ import annotations
@@ -14,7 +19,7 @@ from __future__ import annotations
 from pydantic import Field, field_validator
 
 from pipelines.config_sections import Frozen
-from pipelines.vocabulary import SelectionMetric, ShareMethod, SwitchRule, values
+from pipelines.vocabulary import LeafFitCandidates, SelectionMetric, ShareMethod, SwitchRule, values
 
 
 class MetricByDemandClass(Frozen):
@@ -51,6 +56,12 @@ class ShareTuningConfig(Frozen):
         ge=0,
         description="WARN share_choice_near_best when the best candidate's score is more than this relative "
         "gain below a fixed window or method's",
+    )
+    leaf_fit_candidates: LeafFitCandidates = Field(
+        "auto_only",
+        description="auto_only: a class with a fixed window and method leaves out the candidates that fit a model "
+        "per leaf at every origin (children_forecast) unless configured with one, and its share_choice_near_best "
+        "compares with the rest of the grid; always: every class scores them",
     )
 
     @field_validator("windows", "methods")

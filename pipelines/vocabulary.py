@@ -34,6 +34,8 @@ class ShareMethod(StrEnum):
 
 # methods that give the established children a share per horizon period (their period basis)
 PER_PERIOD_METHODS = (ShareMethod.SEASONAL, ShareMethod.CHILDREN_FORECAST)
+# methods whose shares need base forecasts of every leaf (a model fit per leaf series at each backtest origin)
+LEAF_FIT_METHODS = (ShareMethod.CHILDREN_FORECAST,)
 # the methods a named share basis (`share_bases`) may use: history methods without further keys
 BASIS_SHARE_METHODS = (ShareMethod.POOLED, ShareMethod.MEAN_OF_RATIOS)
 
@@ -127,6 +129,13 @@ class SelectionMetric(StrEnum):
     WMAPE = "wmape"
     RMSSE = "rmsse"
     MASE = "mase"
+
+
+class LeafFitCandidates(StrEnum):
+    """Which classes' share tuning tries the methods fitting leaf models (`share_tuning.leaf_fit_candidates`)."""
+
+    AUTO_ONLY = "auto_only"  # classes with window or method auto, and a class whose configured method is one
+    ALWAYS = "always"  # every class (a fixed class's WARN check compares with them too)
 
 
 class SwitchRule(StrEnum):

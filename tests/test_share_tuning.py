@@ -16,8 +16,10 @@ from test_backtest import SES, frames
 
 from pipelines.checks import SHARE_CHOICE_NEAR_BEST
 from pipelines.config import parse_config
+from pipelines.engines import period_shares
 from pipelines.engines.share_settings import ShareRule
 from pipelines.engines.share_tuning import class_candidates
+from pipelines.errors import ConfigError
 from pipelines.schemas_selection import ShareTuning
 from pipelines.stages import backtest_accuracy, share_tables
 
@@ -117,3 +119,97 @@ def test_a_fixed_long_window_worse_than_the_best_fires_the_warning_and_a_higher_
     assert tuning[tuning["best"]].iloc[0]["window"] == 4
     quiet = _backtest(y, _config(104, max_gain=float(rows.iloc[0]["gain"]) + 0.01))
     assert quiet.checks[SHARE_CHOICE_NEAR_BEST].rows.empty
+
+
+def _leaf_fit_config(method="pooled", setting=None, window=26):
+    tuning = {"windows": [4, 26], "methods": ["pooled", "children_forecast"]}
+    if setting is not None:
+        tuning["leaf_fit_candidates"] = setting
+    return parse_config({
+        "product_classes": {"a": {"window": window, "method": method, "strategy": "top_down", "models": SES}},
+        "calendar": {"horizon": 4},
+        "backtest": {"origins": 3, "horizon": 4, "step": 4, "strategies": ["top_down"]},
+        "selection": {"share_tuning": tuning},
+    })
+
+
+def _counting_leaf_fits(monkeypatch) -> list[int]:
+    """Spy on the leaf model fits of the children_forecast shares: one entry (leaves fitted) per call."""
+    calls: list[int] = []
+    real = period_shares.children_forecasts
+
+    def spy(history, children, *args, **kwargs):
+        calls.append(len(children))
+        return real(history, children, *args, **kwargs)
+
+    monkeypatch.setattr(period_shares, "children_forecasts", spy)
+    return calls
+
+
+def test_a_fixed_class_leaves_out_the_leaf_fit_candidate_unless_always_or_configured(monkeypatch):
+    y = _mix_change()
+    fits = _counting_leaf_fits(monkeypatch)
+    default = ShareTuning.validate(_backtest(y, _leaf_fit_config()).outputs["share_tuning"])
+    assert fits == []  # no leaf model fitted for a fixed window and method
+    assert set(default["candidate"]) == {"pooled/4", "pooled/26"}
+    assert default["detail"].str.contains("left out children_forecast").all()
+    assert default["detail"].str.contains("leaf_fit_candidates: always").all()
+
+    always = ShareTuning.validate(_backtest(y, _leaf_fit_config(setting="always")).outputs["share_tuning"])
+    assert len(fits) == 3 and all(n == 6 for n in fits)  # one fit of the 6 leaves at each of the 3 origins
+    assert set(always["candidate"]) == {"pooled/4", "pooled/26", "children_forecast/26"}
+    assert not always["detail"].str.contains("left out").any()
+    # the candidates both score are scored alike; only the comparison with the whole grid may differ
+    same = ["candidate", "score", "wmape", "rmsse", "mase", "configured", "own", "chosen"]
+    kept = always[always["candidate"] != "children_forecast/26"].reset_index(drop=True)
+    pd.testing.assert_frame_equal(kept[same], default[same])
+
+    # a class configured with the method keeps it under the default, and fits its leaves
+    fits.clear()
+    own = _backtest(y, _leaf_fit_config(method="children_forecast")).outputs["share_tuning"]
+    assert "children_forecast/26" in set(own["candidate"]) and len(fits) == 3
+    assert not own["detail"].str.contains("left out").any()
+
+
+def test_a_class_with_method_auto_still_tries_the_leaf_fit_candidate(monkeypatch):
+    y = _mix_change()
+    fits = _counting_leaf_fits(monkeypatch)
+    default = _backtest(y, _leaf_fit_config(method="auto")).outputs["share_tuning"]
+    assert "children_forecast/26" in set(default["candidate"]) and len(fits) == 3
+    fits.clear()
+    always = _backtest(y, _leaf_fit_config(method="auto", setting="always")).outputs["share_tuning"]
+    pd.testing.assert_frame_equal(default, always)
+    assert len(fits) == 3
+
+
+def test_leaf_fit_candidates_is_validated():
+    with pytest.raises(ConfigError, match="leaf_fit_candidates: Input should be 'auto_only' or 'always'"):
+        _leaf_fit_config(setting="sometimes")
+
+
+def test_in_a_run_of_two_classes_only_the_class_that_tries_it_fits_its_leaves(monkeypatch):
+    y = _mix_change()
+    history, cleaned, products, spans, calendar = _inputs(y)
+    products["product_class"] = np.where(products["product"] == "P0", "a", "b")  # P0's 3 leaves fixed, P1's auto
+    fits = _counting_leaf_fits(monkeypatch)
+
+    def tuning(setting):
+        classes = {"a": {"window": 26, "method": "pooled", "strategy": "top_down", "models": SES},
+                   "b": {"window": 26, "method": "auto", "strategy": "top_down", "models": SES}}
+        config = parse_config({
+            "product_classes": classes, "calendar": {"horizon": 4},
+            "backtest": {"origins": 3, "horizon": 4, "step": 4, "strategies": ["top_down"]},
+            "selection": {"share_tuning": {"windows": [4, 26], "methods": ["pooled", "children_forecast"],
+                                           "leaf_fit_candidates": setting}},
+        })
+        settings = backtest_accuracy.BacktestSettings.of(config)
+        return backtest_accuracy.run(history, cleaned, products, spans, calendar, settings).outputs["share_tuning"]
+
+    default = tuning("auto_only")
+    assert fits == [3, 3, 3]  # class b's 3 leaves at each origin, not class a's
+    assert "children_forecast/26" not in set(default.loc[default["product_class"] == "a", "candidate"])
+    always = tuning("always")
+    assert fits[3:] == [6, 6, 6]  # both classes try it
+    b = ["product_class", "candidate", "score", "best", "chosen", "gain", "decision", "detail"]
+    pd.testing.assert_frame_equal(default[default["product_class"] == "b"][b].reset_index(drop=True),
+                                  always[always["product_class"] == "b"][b].reset_index(drop=True))

@@ -158,16 +158,19 @@ def origin_view(
 
 
 def candidate_bases(
-    view: OriginView, children: pd.DataFrame, settings: ShareSettings, candidates: list[tuple[int, str]], h: int
+    view: OriginView, children: pd.DataFrame, settings: ShareSettings, candidates: list[tuple[int, str]], h: int,
+    classes_of: Mapping[str, set[str]] | None = None,
 ) -> dict[str, np.ndarray]:
     """Per candidate name: (n_children, h) the period shares the cycle would split by at this origin (per-period
-    methods differ from the base share), each window x method computed once."""
+    methods differ from the base share), each window x method computed once; `classes_of` (candidate name ->
+    the classes that try it): a candidate fitting leaf models fits those classes' leaves only
+    (`share_tuning.candidate_settings`)."""
     out: dict[str, np.ndarray] = {}
     share_lookup = None
     frame = child_frame(view.as_seen, children, settings, view.date)  # what no window or method changes, once
     # children_forecast first: its leaf fits start the model pool, whose start the other candidates then overlap
     for w, m in sorted(candidates, key=lambda c: c[1] != ShareMethod.CHILDREN_FORECAST):
-        candidate = candidate_settings(settings, w, m)
+        candidate = candidate_settings(settings, w, m, None if classes_of is None else classes_of[candidate_name(w, m)])
         shares = compute_shares(view.as_seen, children, candidate, view.date, frame)
         share_lookup = lookup(children, LEAF, shares) if share_lookup is None else share_lookup
         basis = period_shares(shares, candidate, view.date, None, view.as_seen, horizon=h)[0]

@@ -9,6 +9,10 @@ method; windows longer than the history before the cycle date are left out.
 The per-period methods (`seasonal`, `children_forecast`) split by period
 shares that the window does not change (only their pooled fallback): they are
 tried at one window, the class's configured one, else the longest candidate.
+`children_forecast` fits a model per leaf at every origin (most of a fixed
+class's backtest): a class with a fixed window and method leaves it out unless
+it is the configured method (`selection.share_tuning.leaf_fit_candidates:
+auto_only`, the default; `always` keeps it), and its row says so.
 
 A class's *own* candidates are those that keep what it fixes: `window: auto`
 varies the window only, `method: auto` the method only, both the pair. Its
@@ -32,7 +36,7 @@ import pandas as pd
 from pipelines.engines.backtest_scores import ScoreBook
 from pipelines.engines.forecast_comparison import StabilityRule, dm_test, stable_choice
 from pipelines.engines.share_settings import ShareRule, ShareSettings
-from pipelines.vocabulary import AUTO, PER_PERIOD_METHODS
+from pipelines.vocabulary import AUTO, LEAF_FIT_METHODS, PER_PERIOD_METHODS, LeafFitCandidates, ShareMethod
 
 TUNING_COLUMNS = [
     "product_class", "window", "method", "candidate", "metric", "score", "wmape", "rmsse", "mase", "configured",
@@ -44,12 +48,22 @@ def candidate_name(window: int, method: str) -> str:
     return f"{method}/{window}"
 
 
+def left_out(configured: ShareRule, auto_window: bool, auto_method: bool, methods, setting: str) -> list[str]:
+    """The candidate methods a class leaves out: under `leaf_fit_candidates: auto_only` a class with a fixed window
+    and method leaves out those that fit leaf models (`LEAF_FIT_METHODS`), except its configured one."""
+    if setting == LeafFitCandidates.ALWAYS or auto_window or auto_method:
+        return []
+    return [m for m in methods if m in LEAF_FIT_METHODS and m != configured.method]
+
+
 def class_candidates(
-    configured: ShareRule, auto_window: bool, auto_method: bool, windows, methods, history_periods: int
+    configured: ShareRule, auto_window: bool, auto_method: bool, windows, methods, history_periods: int,
+    leave_out=(),
 ) -> list[tuple[int, str, bool]]:
-    """(window, method, own) of every candidate of one class; `own`: it keeps what the class fixes."""
+    """(window, method, own) of every candidate of one class; `own`: it keeps what the class fixes; the methods
+    of `leave_out` (`left_out`) are not tried."""
     ws = [w for w in dict.fromkeys((*windows, *([] if auto_window else [configured.window]))) if w <= history_periods]
-    ms = list(dict.fromkeys((*methods, *([] if auto_method else [configured.method]))))
+    ms = [m for m in dict.fromkeys((*methods, *([] if auto_method else [configured.method]))) if m not in leave_out]
     out = []
     for m in ms:
         if m == "smoothed" and configured.smoothing is None:
@@ -65,9 +79,14 @@ def class_candidates(
     return out
 
 
-def candidate_settings(settings: ShareSettings, window: int, method: str) -> ShareSettings:
-    """Every class's rule with this window and method (its own fallbacks longer than the window, alpha, years)."""
-    return settings.with_rules({n: r.with_choice(window, method) for n, r in settings.rules.items()})
+def candidate_settings(settings: ShareSettings, window: int, method: str, classes=None) -> ShareSettings:
+    """Every class's rule with this window and method (its own fallbacks longer than the window, alpha, years);
+    with `classes`, a method that fits leaf models is given to those alone and the others are pooled (their
+    rows of this candidate are not scored, and fit no leaf models for it)."""
+    def method_of(name: str) -> str:
+        return method if classes is None or method not in LEAF_FIT_METHODS or name in classes else ShareMethod.POOLED
+
+    return settings.with_rules({n: r.with_choice(window, method_of(n)) for n, r in settings.rules.items()})
 
 
 def _p_value(book: ScoreBook, incumbent: str, challenger: str, i: int, metric: str, h: int) -> float:
@@ -88,8 +107,10 @@ def decide(
     metric: Mapping[str, str],
     previous: Mapping[str, str],
     rule: StabilityRule,
+    omitted: Mapping[str, list[str]] | None = None,
 ) -> pd.DataFrame:
-    """The share_tuning table: one row per class and candidate (TUNING_COLUMNS)."""
+    """The share_tuning table: one row per class and candidate (TUNING_COLUMNS); `omitted`: per class, the
+    methods it left out (`left_out`), named in its rows' detail."""
     rows = []
     for i, name in enumerate(book.classes):
         if name not in grid or not grid[name]:
@@ -116,6 +137,9 @@ def decide(
             decision, reason = "fixed", "configured"
             reference = score.get(chosen, np.nan)
             detail = f"configured {chosen}; best of the grid {best_all} ({score[best_all]:.4g} against {reference:.4g})"
+            if omitted and omitted.get(name):
+                detail += (f"; left out {', '.join(omitted[name])} (a model fit per leaf at every origin; "
+                           "selection.share_tuning.leaf_fit_candidates: always tries it)")
         best = best_own if auto else best_all
         gain = (reference - score[best]) / reference if np.isfinite(reference) and reference > 0 else np.nan
         for w, me, o in cands:

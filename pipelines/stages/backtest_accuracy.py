@@ -54,7 +54,9 @@ Fixed strategy: a class with a configured strategy (not `auto`) is scored
 with that strategy alone (and seasonal naive); the others could never be
 chosen, so the models of a grain only they need are not run (a `top_down`
 class fits no leaf models). Its share tuning, interval coverage and
-seasonality choice are made as for an `auto` class.
+seasonality choice are made as for an `auto` class, but a fixed window and
+method leave out the `children_forecast` candidate and its leaf fits
+(`selection.share_tuning.leaf_fit_candidates`, `pipelines.engines.share_tuning`).
 
 Intervals: with `intervals.levels`, each strategy's intervals at each origin
 (`pipelines.engines.forecast_intervals`, as the cycle makes them) are scored
@@ -88,7 +90,7 @@ from pipelines.engines.origin_cleaning import ClassCleaning
 from pipelines.engines.scaled_errors import MetricRule, class_metric
 from pipelines.engines.seasonal_base import cycle_season_plan, seasonality_candidates
 from pipelines.engines.share_settings import ShareSettings
-from pipelines.engines.share_tuning import class_candidates, decide
+from pipelines.engines.share_tuning import candidate_name, class_candidates, decide, left_out
 from pipelines.progress import SeriesProgress
 from pipelines.results import CheckRows, Log, StageResult, quiet
 from pipelines.vocabulary import AUTO, BENCHMARK, Seasonality
@@ -221,9 +223,11 @@ def run_backtest(
     first = {c: settings.candidates(c)[0] for c in classes}  # the seasonality whose parents tune the shares
     data = backtest_series(history, children, classes, period, cycle_date, cleaned)
     origins = origin_ordinals(settings, data.cycle_ord, data.first_ord if first_period is None else first_period)
-    grid = _candidate_grid(settings, history_periods if history_periods is not None else
-                           data.cycle_ord - data.first_ord, classes)
+    grid, omitted = _candidate_grid(settings, history_periods if history_periods is not None else
+                                    data.cycle_ord - data.first_ord, classes)
     union = list(dict.fromkeys((w, m) for cands in grid.values() for w, m, _ in cands))
+    classes_of = {candidate_name(w, m): {c for c, cands in grid.items() if (w, m) in {x[:2] for x in cands}}
+                  for w, m in union}
     drivers = {v: {c: settings.driver(c) for c in mine} for v, mine in modes.items()}
     books = {v: ScoreBook(classes, len(origins), h) for v in variants}
     coverage = {v: CoverageBook(settings.levels, len(classes)) for v in variants}
@@ -249,7 +253,7 @@ def run_backtest(
                                  view.scales[grain])
             if kept:
                 kept[-1][1].result()  # the previous origin's candidates, before this one's are queued
-            bases = candidates.submit(candidate_bases, view, data.children, settings.share, union, h)
+            bases = candidates.submit(candidate_bases, view, data.children, settings.share, union, h, classes_of)
             base = {v: _base(data, view, settings, products, modes[v], drivers[v], o, log, fits.advance,
                              first_period) for v in variants}
             kept.append((base, bases, view.actual, view.scales))
@@ -265,7 +269,8 @@ def run_backtest(
             tune.add(k, name, "leaf", leaf, actual["leaf"], data.c_cls, scales["leaf"])
     judged = class_metric(data.c_cls, demand, len(classes), MetricRule(**settings.selection.metric.model_dump()))
     metric, metric_of = judged.metric, dict(zip(classes, judged.metric, strict=True))
-    tuning = decide(tune, grid, settings.configured, metric_of, _previous(previous_tuning), settings.stability())
+    tuning = decide(tune, grid, settings.configured, metric_of, _previous(previous_tuning), settings.stability(),
+                    omitted)
     chosen = tuning[tuning["chosen"]].set_index("product_class")["candidate"].to_dict()
     for k, (base, bases, actual, scales) in enumerate(kept):
         basis = np.zeros((data.n_children, h))
@@ -323,16 +328,18 @@ def _previous(previous_tuning: pd.DataFrame | None) -> dict:
     return previous_tuning[previous_tuning["chosen"].astype(bool)].set_index("product_class")["candidate"].to_dict()
 
 
-def _candidate_grid(settings: BacktestSettings, periods: int, classes: list[str]) -> dict:
-    """Per class: the share candidates (window, method, own) of `share_tuning.class_candidates`."""
+def _candidate_grid(settings: BacktestSettings, periods: int, classes: list[str]) -> tuple[dict, dict]:
+    """Per class: the share candidates (window, method, own) of `share_tuning.class_candidates`, and the methods
+    it leaves out (`share_tuning.left_out`: leaf fits of a class with a fixed window and method)."""
     tuning = settings.selection.share_tuning
-    out = {}
+    grid, omitted = {}, {}
     for name in classes:
         window, method = settings.configured.get(name, (AUTO, AUTO))
-        out[name] = class_candidates(
-            settings.share.rules[name], window == AUTO, method == AUTO, tuning.windows, tuning.methods, periods
-        )
-    return out
+        rule, auto_window, auto_method = settings.share.rules[name], window == AUTO, method == AUTO
+        omitted[name] = left_out(rule, auto_window, auto_method, tuning.methods, tuning.leaf_fit_candidates)
+        grid[name] = class_candidates(rule, auto_window, auto_method, tuning.windows, tuning.methods, periods,
+                                      omitted[name])
+    return grid, omitted
 
 
 def run(
