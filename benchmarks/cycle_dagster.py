@@ -3,6 +3,7 @@
     .venv/bin/python benchmarks/cycle_dagster.py --leaves 10000 [--seed 7] [--periods 156] [--horizon 26]
         [--classes fast,seasonal,slow] [--backtest light|full] [--n-jobs N] [--folder PATH]
         [--rss-sample-ms MS] [--slices N] [--shard-leaves L] [--parallel K] [--json PATH]
+        [--scenario-cache DIR] [--partitions KEY,KEY] [--progress-s S]
 
 Where `benchmarks/cycle.py` calls the stages' `run(...)` itself, this one runs
 what a platform team runs: the same seeded scenario (`cycle_scenario.generate`,
@@ -40,12 +41,20 @@ reports:
 partition each (`benchmarks/dagster_inputs.py`); `--parallel K`: K partitions
 at a time, a process each, as `cycle --parallel K` (per step wall, peak and
 rows only; `benchmarks/dagster_parallel.py`). A table sums each step over
-the partitions.
+the partitions. `--scenario-cache DIR`: each slice read from the cache of
+`benchmarks/scenario_cache.py` (leaves / N leaves, seed + i), generated there
+first when missing. `--partitions KEY,...`: only these partitions (class keys,
+or a sharded class's shard keys such as `fast~2of10`, in the given order);
+the cut still covers every class, as in the whole cycle.
 
 Each class's run ends with a `steps` line (the sum of its steps; `job` the
 whole run, from the job's start to its end, partition lock included) and the cycle with a `total` line: own time (wall
 minus statsforecast) and validation's share of it. `--json PATH` writes every
-figure with the load average at start and end, the scenario and the versions.
+figure with the load average at start and end, the scenario and the versions;
+it is written as the cycle goes (`complete` false): after each partition, and
+every `--progress-s` seconds (60) with the steps so far of the runs still
+going (`running`: wall and peak of each step, the one under way up to then),
+so a cycle cut short leaves its figures.
 """
 
 from __future__ import annotations
@@ -92,8 +101,9 @@ def write_inputs(args: argparse.Namespace, folder: Path) -> dict:
 def _write_inputs(args: argparse.Namespace, folder: Path) -> dict:
     started = time.perf_counter()
     inputs = folder / "inputs"
-    if args.slices > 1 or args.shard_leaves:
-        facts = write_slices(args.leaves, args.slices, args.seed, args.periods, args.horizon, inputs)
+    if args.slices > 1 or args.shard_leaves or args.scenario_cache:
+        cache = Path(args.scenario_cache) if args.scenario_cache else None
+        facts = write_slices(args.leaves, args.slices, args.seed, args.periods, args.horizon, inputs, cache)
     else:
         scen = generate(args.leaves, args.seed, args.periods, inputs, args.horizon)
         frames = {"products": scen.products, "customer_spans": scen.spans, "adjustments": scen.adjustments,
@@ -176,8 +186,9 @@ def instrument(timeline: Timeline) -> None:
         timeline.wrap(statsforecast.StatsForecast, method, "statsforecast")
 
 
-def step_rows(instance, run_id: str, timeline: Timeline, product_class: str) -> list[dict]:
-    """One row per step of the run, from its events' timestamps and the timeline."""
+def step_rows(instance, run_id: str, timeline: Timeline, product_class: str, now: float | None = None) -> list[dict]:
+    """One row per step of the run, from its events' timestamps and the timeline; a step not ended yet measured
+    up to `now` (time.time(); None: as ended at its start, failed)."""
     import dagster as dg
 
     starts, ends, rows = {}, {}, {}
@@ -195,8 +206,10 @@ def step_rows(instance, run_id: str, timeline: Timeline, product_class: str) -> 
             rows[key] = rows.get(key, 0) + (count.value if count is not None else 0)
     out = []
     for key, start in sorted(starts.items(), key=lambda kv: kv[1]):
-        end, ok = ends.get(key, (start, False))
+        end, ok = ends.get(key, (start if now is None else now, False))
         row = {"class": product_class, "step": key, "success": ok, "wall_s": end - start}
+        if now is not None:
+            row["finished"] = key in ends
         for kind in KINDS:
             row[f"{kind}_s"] = timeline.seconds(kind, start, end)
         parts = [row[f"{k}_s"] for k in ("run", "validate", "read", "write")]
@@ -246,6 +259,43 @@ def totals(rows: list[dict], label: str, product_class: str = "") -> dict:
     return t
 
 
+class Progress:
+    """Every `--progress-s` seconds (with `--json`), the figures so far written with the finished steps of the
+    runs still going (`running`; the step under way measured so far, `finished` false), read from the instance's
+    event log by a thread of its own (its own instance)."""
+
+    def __init__(self, args: argparse.Namespace, figures, timeline, samplers: list):
+        self.args, self.figures, self.timeline, self.samplers = args, figures, timeline, samplers
+        self._stop = threading.Event()
+        self.thread = None
+        if args.json and args.progress_s > 0:
+            self.thread = threading.Thread(target=self._loop, daemon=True)
+            self.thread.start()
+
+    def _loop(self) -> None:
+        import dagster as dg
+        from dagster_parallel import ChildTimeline
+
+        with dg.DagsterInstance.get() as instance:
+            while not self._stop.wait(self.args.progress_s):
+                running = []
+                try:
+                    for run in instance.get_runs(filters=dg.RunsFilter(statuses=[dg.DagsterRunStatus.STARTED])):
+                        label = run.tags.get("dagster/partition", run.run_id[:8])
+                        measured = self.timeline or ChildTimeline(self.samplers[0] if self.samplers else None,
+                                                                  run.run_id)
+                        running.append({"run_id": run.run_id, "partition": label,
+                                        "steps": step_rows(instance, run.run_id, measured, label, time.time())})
+                    write_json(self.args, self.figures(running))
+                except Exception as err:  # a figure missed is no reason to stop the cycle
+                    print(f"progress: {type(err).__name__}: {err}", flush=True)
+
+    def stop(self) -> None:
+        self._stop.set()
+        if self.thread is not None:
+            self.thread.join(timeout=30)
+
+
 # =================================================================== the cycle
 def run_cycle(args: argparse.Namespace) -> dict:
     load_start = load_average()
@@ -280,12 +330,21 @@ def run_cycle(args: argparse.Namespace) -> dict:
     defs = build_definitions(config_path)
     config = defs.resources["planning"].config
     keys, every = partition_classes(config, classes), partition_classes(config)  # a class cut: its shards
+    if args.partitions:
+        keys = [k.strip() for k in args.partitions.split(",") if k.strip()]
+        if set(keys) - set(every):
+            raise SystemExit(f"--partitions: unknown {sorted(set(keys) - set(every))}; the cycle's are {every}")
     steps: list[dict] = []
     runs: list[dict] = []
     print(f"{HEADER}\n{'-' * len(HEADER)}", flush=True)
     quiet = {"loggers": {"console": {"config": {"log_level": "CRITICAL"}}}}  # as `cycle` without --verbose
     started = time.monotonic()
+    samplers: list = []  # --parallel: the sampler of the runs' process trees (their peaks)
     with dg.DagsterInstance.get() as instance:
+        progress = Progress(args, lambda running: {
+            "parameters": vars(args), "scenario": facts, "steps": steps, "runs": runs, "running": running,
+            "load": {"start": load_start, "so_far": load_average()}, "complete": False},
+            timeline if args.parallel == 1 else None, samplers)
 
         def done(label: str, run_id: str, seconds: float, measured, success: bool) -> None:
             mine = step_rows(instance, run_id, measured, label)
@@ -300,11 +359,13 @@ def run_cycle(args: argparse.Namespace) -> dict:
                               "load": {"start": load_start, "so_far": load_average()}, "complete": False})
 
         if args.parallel > 1:
-            together = run_parallel(config_path, instance, CYCLE, keys, every, args.parallel, quiet, done)
+            together = run_parallel(config_path, instance, CYCLE, keys, every, args.parallel, quiet, done,
+                                    on_sampler=samplers.append)
         else:
             run_partitions(defs, instance, CYCLE, keys, all_classes=every, run_config=quiet, say=print,
                            on_done=lambda k, r, sec: done(k, r.run_id, sec, timeline, r.success))
             together = {"elapsed_s": time.monotonic() - started, "parallel": 1, "peak_sum_rss_mb": None}
+        progress.stop()
     timeline.stop()
     total = totals(steps, "total")
     print(f"{'-' * len(HEADER)}\n{format_row(total)}")
@@ -378,6 +439,12 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
                    help="cut each class into ceil(its leaves / L) shards (default 0: not cut)")
     p.add_argument("--parallel", type=int, default=1, metavar="K", help="partitions at once, a process each")
     p.add_argument("--json", default=None, metavar="PATH", help="write the figures as JSON")
+    p.add_argument("--scenario-cache", default=None, metavar="DIR",
+                   help="read each slice's scenario from this cache (benchmarks/scenario_cache.py)")
+    p.add_argument("--partitions", default=None, metavar="KEYS",
+                   help="only these partitions, comma-separated (e.g. fast~1of10,slow~3of6)")
+    p.add_argument("--progress-s", type=float, default=60.0,
+                   help="with --json: write the figures so far every S seconds (0: after each partition only)")
     args = p.parse_args(argv)
     if args.leaves < 1 or args.periods < 8 or args.horizon < 1 or args.slices < 1 or args.parallel < 1:
         p.error("--leaves, --slices, --parallel >= 1, --periods >= 8 and --horizon >= 1")

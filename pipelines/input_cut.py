@@ -51,7 +51,6 @@ from pipelines.engines.class_rows import class_map, class_rows, history_figures
 from pipelines.engines.cleansing import reject_lines
 from pipelines.engines.history_files import iter_raw_history
 from pipelines.engines.plausible import gap_periods, trusted_extent
-from pipelines.engines.reader import CHUNK_BYTES
 from pipelines.errors import PlanningError
 from pipelines.partitions import narrow_config
 from pipelines.shards import class_shards, hash_columns, shard_numbers, successor_ends
@@ -62,7 +61,8 @@ from pipelines.store.layout import DEFAULT_SHARD, dir_part
 
 CUT_FORMAT = 1  # raise when a part's content changes, so older cuts are remade
 SUMMARY = "summary.json"
-ROW_GROUP_ROWS = 1 << 17  # rows a part's writer buffers before it writes them (one row group)
+ROW_GROUP_ROWS = 1 << 16  # rows a part's writer buffers before it writes them (one row group)
+CHUNK = 8 << 20  # bytes of history read at a time (about 200,000 lines): the cut's working memory is a few times it
 # no first period: `reject_lines` then rejects no line as `isolated_date` (below every period ordinal)
 NO_FIRST_PERIOD = np.iinfo(np.int64).min
 
@@ -199,7 +199,7 @@ def finish_part(path: Path, writer: pq.ParquetWriter) -> None:
         os.fsync(f.fileno())
 
 
-def write_cut(folder: Path, config, cycle: str, name: str, chunk_bytes: int = CHUNK_BYTES) -> dict:
+def write_cut(folder: Path, config, cycle: str, name: str, chunk_bytes: int = CHUNK) -> dict:
     """Read the history once, chunk by chunk (`iter_raw_history`, about `chunk_bytes` at a time), and write every
     class's (shard's) part and the summary into `folder`: a chunk's lines are routed to their parts as the whole
     history's were (`class_rows`, `shard_numbers` are per line), so a part holds the same rows in the same
