@@ -3,6 +3,7 @@
     .venv/bin/python benchmarks/cycle_dagster.py --leaves 10000 [--seed 7] [--periods 156] [--horizon 26]
         [--classes fast,seasonal,slow] [--backtest light|full] [--n-jobs N] [--folder PATH]
         [--rss-sample-ms MS] [--slices N] [--shard-leaves L] [--parallel K] [--json PATH]
+        [--scenario-cache DIR] [--partitions KEY,KEY] [--progress-s S]
 
 Where `benchmarks/cycle.py` calls the stages' `run(...)` itself, this one runs
 what a platform team runs: the same seeded scenario (`cycle_scenario.generate`,
@@ -40,23 +41,28 @@ reports:
 partition each (`benchmarks/dagster_inputs.py`); `--parallel K`: K partitions
 at a time, a process each, as `cycle --parallel K` (per step wall, peak and
 rows only; `benchmarks/dagster_parallel.py`). A table sums each step over
-the partitions.
+the partitions. `--scenario-cache DIR`: each slice read from the cache of
+`benchmarks/scenario_cache.py` (leaves / N leaves, seed + i), generated there
+first when missing. `--partitions KEY,...`: only these partitions (class keys,
+or a sharded class's shard keys such as `fast~2of10`, in the given order);
+the cut still covers every class, as in the whole cycle.
 
 Each class's run ends with a `steps` line (the sum of its steps; `job` the
 whole run, from the job's start to its end, partition lock included) and the cycle with a `total` line: own time (wall
 minus statsforecast) and validation's share of it. `--json PATH` writes every
-figure with the load average at start and end, the scenario and the versions.
+figure with the load average at start and end, the scenario and the versions;
+it is written as the cycle goes (`complete` false): after each partition, and
+every `--progress-s` seconds (60) with the steps so far of the runs still
+going (`running`: wall and peak of each step, the one under way up to then),
+so a cycle cut short leaves its figures.
 """
 
 from __future__ import annotations
 
 import argparse
-import functools
-import json
 import os
 import sys
 import tempfile
-import threading
 import time
 from pathlib import Path
 
@@ -71,18 +77,12 @@ from cycle_inputs import config_data  # noqa: E402
 from cycle_measure import git_commit, load_average, rss_max_mb, rss_now_mb, versions  # noqa: E402
 from cycle_scenario import CLASSES, CYCLE_DATE, generate  # noqa: E402
 from dagster_inputs import forked, shard_counts, write_slices  # noqa: E402
+from dagster_measure import HEADER, Progress, Timeline, format_row, instrument, step_rows, totals, write_json  # noqa: E402
 from dagster_parallel import STEP_HEADER, format_step, per_step, run_parallel  # noqa: E402
 
 CYCLE = str(CYCLE_DATE)
 # the graph always runs backtest_accuracy; no class of the benchmark is `auto`, so by default it runs small
 LIGHT_BACKTEST = {"origins": 1, "strategies": ["top_down"]}
-KINDS = ("run", "validate", "read", "write", "statsforecast")
-HEADER = (
-    f"{'class':<9} {'step':<24} {'wall s':>8} {'run s':>8} {'valid s':>8} {'read s':>7} {'write s':>7} "
-    f"{'sf s':>8} {'other s':>7} {'rss pk':>7} {'rss end':>7} {'rows':>11}"
-)
-
-
 # =================================================================== inputs
 def write_inputs(args: argparse.Namespace, folder: Path) -> dict:
     """The scenario as input files and a config (in a forked child, so its memory is not the cycle's)."""
@@ -92,8 +92,9 @@ def write_inputs(args: argparse.Namespace, folder: Path) -> dict:
 def _write_inputs(args: argparse.Namespace, folder: Path) -> dict:
     started = time.perf_counter()
     inputs = folder / "inputs"
-    if args.slices > 1 or args.shard_leaves:
-        facts = write_slices(args.leaves, args.slices, args.seed, args.periods, args.horizon, inputs)
+    if args.slices > 1 or args.shard_leaves or args.scenario_cache:
+        cache = Path(args.scenario_cache) if args.scenario_cache else None
+        facts = write_slices(args.leaves, args.slices, args.seed, args.periods, args.horizon, inputs, cache)
     else:
         scen = generate(args.leaves, args.seed, args.periods, inputs, args.horizon)
         frames = {"products": scen.products, "customer_spans": scen.spans, "adjustments": scen.adjustments,
@@ -112,138 +113,6 @@ def _write_inputs(args: argparse.Namespace, folder: Path) -> dict:
     data["store"] = {"path": str(folder / "var" / "store")}
     (folder / "planning.yaml").write_text(yaml.safe_dump(data, sort_keys=False))
     return {**facts, "generate_s": round(time.perf_counter() - started, 2)}
-
-
-# =================================================================== measuring
-class Timeline:
-    """Intervals (kind, start, end) of wrapped calls and RSS samples, on the clock of Dagster's events."""
-
-    def __init__(self, sample_ms: float):
-        self.spans: list[tuple[str, float, float]] = []
-        self.samples: list[tuple[float, float]] = []
-        self._stop = threading.Event()
-        if sample_ms > 0:
-            threading.Thread(target=self._sample, args=(sample_ms / 1000,), daemon=True).start()
-
-    def _sample(self, interval: float) -> None:
-        while not self._stop.wait(interval):
-            self.samples.append((time.time(), rss_now_mb()))
-
-    def stop(self) -> None:
-        self._stop.set()
-
-    def wrap(self, owner, name: str, kind: str) -> None:
-        original = getattr(owner, name)
-
-        @functools.wraps(original)
-        def timed(*a, **k):
-            t0 = time.time()
-            try:
-                return original(*a, **k)
-            finally:
-                self.spans.append((kind, t0, time.time()))
-
-        if isinstance(owner, type) or hasattr(owner, "__dict__") and not hasattr(owner, "__dataclass_fields__"):
-            setattr(owner, name, timed)
-        else:  # a frozen dataclass (a StageAsset)
-            object.__setattr__(owner, name, timed)
-
-    def seconds(self, kind: str, start: float, end: float) -> float:
-        return sum(min(e, end) - max(s, start) for k, s, e in self.spans if k == kind and e > start and s < end)
-
-    def peak(self, start: float, end: float) -> float | None:
-        inside = [r for t, r in self.samples if start <= t <= end]
-        return max(inside) if inside else None
-
-
-def instrument(timeline: Timeline) -> None:
-    """Wrap the stages' runs, the validation, the IO manager and statsforecast (this process only)."""
-    import statsforecast
-
-    import assets.factory
-    import assets.publication
-    from assets.factory import SPECS
-    from pipelines import definitions  # noqa: F401  (makes every stage asset, so SPECS holds them all)
-    from pipelines.resources import PartitionStore
-
-    for spec in SPECS.values():
-        timeline.wrap(spec, "run", "run")
-    timeline.wrap(assets.factory, "validate", "validate")
-    timeline.wrap(assets.publication, "validate", "validate")
-    timeline.wrap(PartitionStore, "load_input", "read")
-    timeline.wrap(PartitionStore, "handle_output", "write")
-    for method in ("fit", "predict", "forecast"):
-        timeline.wrap(statsforecast.StatsForecast, method, "statsforecast")
-
-
-def step_rows(instance, run_id: str, timeline: Timeline, product_class: str) -> list[dict]:
-    """One row per step of the run, from its events' timestamps and the timeline."""
-    import dagster as dg
-
-    starts, ends, rows = {}, {}, {}
-    for entry in instance.all_logs(run_id):
-        event = entry.dagster_event
-        if event is None or not event.step_key:
-            continue
-        key = event.step_key
-        if event.event_type == dg.DagsterEventType.STEP_START:
-            starts[key] = entry.timestamp
-        elif event.event_type in (dg.DagsterEventType.STEP_SUCCESS, dg.DagsterEventType.STEP_FAILURE):
-            ends[key] = (entry.timestamp, event.event_type == dg.DagsterEventType.STEP_SUCCESS)
-        elif event.event_type == dg.DagsterEventType.ASSET_MATERIALIZATION:
-            count = event.event_specific_data.materialization.metadata.get("dagster/row_count")
-            rows[key] = rows.get(key, 0) + (count.value if count is not None else 0)
-    out = []
-    for key, start in sorted(starts.items(), key=lambda kv: kv[1]):
-        end, ok = ends.get(key, (start, False))
-        row = {"class": product_class, "step": key, "success": ok, "wall_s": end - start}
-        for kind in KINDS:
-            row[f"{kind}_s"] = timeline.seconds(kind, start, end)
-        parts = [row[f"{k}_s"] for k in ("run", "validate", "read", "write")]
-        row["other_s"] = None if None in parts else row["wall_s"] - sum(parts)  # None: run in another process
-        row["rss_peak_mb"] = timeline.peak(start, end)
-        row["rss_end_mb"] = timeline.peak(end - 0.05, end + 0.05)
-        row["rows"] = rows.get(key)
-        out.append(row)
-    return out
-
-
-def format_row(r: dict) -> str:
-    def mb(v):
-        return "" if v is None else f"{v:.0f}"
-
-    def s(key, width):
-        return f"{'':>{width}}" if r[key] is None else f"{r[key]:>{width}.2f}"
-
-    rows = "" if r.get("rows") is None else f"{r['rows']:,}"
-    return (
-        f"{r['class']:<9} {r['step'][:24]:<24} {r['wall_s']:>8.2f} {s('run_s', 8)} {s('validate_s', 8)} "
-        f"{s('read_s', 7)} {s('write_s', 7)} {s('statsforecast_s', 8)} {s('other_s', 7)} "
-        f"{mb(r['rss_peak_mb']):>7} {mb(r['rss_end_mb']):>7} {rows:>11}"
-        + ("" if r.get("success", True) else "  FAILED")
-    )
-
-
-def totals(rows: list[dict], label: str, product_class: str = "") -> dict:
-    t = {"class": product_class, "step": label, "rows": None}
-    for key in ("wall_s", "run_s", "validate_s", "read_s", "write_s", "statsforecast_s", "other_s"):
-        known = [r[key] for r in rows if r[key] is not None]
-        t[key] = sum(known) if known or not rows else None  # None: measured in no run (--parallel)
-    peaks = [r["rss_peak_mb"] for r in rows if r["rss_peak_mb"] is not None]
-    t["rss_peak_mb"] = max(peaks) if peaks else None
-    t["rss_end_mb"] = rows[-1]["rss_end_mb"] if rows else None
-    if t["statsforecast_s"] is None:  # --parallel: no split of the steps' time
-        t["own_s"] = t["validation_share_of_own"] = t["validation_share_of_stages"] = None
-        t["success"] = all(r.get("success", True) for r in rows)
-        return t
-    own = t["wall_s"] - t["statsforecast_s"]
-    t["own_s"] = own
-    t["validation_share_of_own"] = t["validate_s"] / own if own > 0 else None
-    # as benchmarks/cycle.py counts own time: the stages' runs and their validation, without statsforecast
-    stages = t["run_s"] + t["validate_s"] - t["statsforecast_s"]
-    t["validation_share_of_stages"] = t["validate_s"] / stages if stages > 0 else None
-    t["success"] = all(r.get("success", True) for r in rows)
-    return t
 
 
 # =================================================================== the cycle
@@ -280,12 +149,21 @@ def run_cycle(args: argparse.Namespace) -> dict:
     defs = build_definitions(config_path)
     config = defs.resources["planning"].config
     keys, every = partition_classes(config, classes), partition_classes(config)  # a class cut: its shards
+    if args.partitions:
+        keys = [k.strip() for k in args.partitions.split(",") if k.strip()]
+        if set(keys) - set(every):
+            raise SystemExit(f"--partitions: unknown {sorted(set(keys) - set(every))}; the cycle's are {every}")
     steps: list[dict] = []
     runs: list[dict] = []
     print(f"{HEADER}\n{'-' * len(HEADER)}", flush=True)
     quiet = {"loggers": {"console": {"config": {"log_level": "CRITICAL"}}}}  # as `cycle` without --verbose
     started = time.monotonic()
+    samplers: list = []  # --parallel: the sampler of the runs' process trees (their peaks)
     with dg.DagsterInstance.get() as instance:
+        progress = Progress(args, lambda running: {
+            "parameters": vars(args), "scenario": facts, "steps": steps, "runs": runs, "running": running,
+            "load": {"start": load_start, "so_far": load_average()}, "complete": False},
+            timeline if args.parallel == 1 else None, samplers)
 
         def done(label: str, run_id: str, seconds: float, measured, success: bool) -> None:
             mine = step_rows(instance, run_id, measured, label)
@@ -300,11 +178,13 @@ def run_cycle(args: argparse.Namespace) -> dict:
                               "load": {"start": load_start, "so_far": load_average()}, "complete": False})
 
         if args.parallel > 1:
-            together = run_parallel(config_path, instance, CYCLE, keys, every, args.parallel, quiet, done)
+            together = run_parallel(config_path, instance, CYCLE, keys, every, args.parallel, quiet, done,
+                                    on_sampler=samplers.append)
         else:
             run_partitions(defs, instance, CYCLE, keys, all_classes=every, run_config=quiet, say=print,
                            on_done=lambda k, r, sec: done(k, r.run_id, sec, timeline, r.success))
             together = {"elapsed_s": time.monotonic() - started, "parallel": 1, "peak_sum_rss_mb": None}
+        progress.stop()
     timeline.stop()
     total = totals(steps, "total")
     print(f"{'-' * len(HEADER)}\n{format_row(total)}")
@@ -350,15 +230,6 @@ def run_cycle(args: argparse.Namespace) -> dict:
     return result
 
 
-def write_json(args: argparse.Namespace, result: dict) -> bool:
-    """The figures so far (after each class, `complete` false; at the end, true)."""
-    if not args.json:
-        return False
-    Path(args.json).parent.mkdir(parents=True, exist_ok=True)
-    Path(args.json).write_text(json.dumps(result, indent=2, default=str))
-    return True
-
-
 def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
     p = argparse.ArgumentParser(prog="benchmarks/cycle_dagster.py", description=__doc__.splitlines()[0])
     p.add_argument("--leaves", type=int, required=True, help="number of leaf series (product x site x customer)")
@@ -378,6 +249,12 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
                    help="cut each class into ceil(its leaves / L) shards (default 0: not cut)")
     p.add_argument("--parallel", type=int, default=1, metavar="K", help="partitions at once, a process each")
     p.add_argument("--json", default=None, metavar="PATH", help="write the figures as JSON")
+    p.add_argument("--scenario-cache", default=None, metavar="DIR",
+                   help="read each slice's scenario from this cache (benchmarks/scenario_cache.py)")
+    p.add_argument("--partitions", default=None, metavar="KEYS",
+                   help="only these partitions, comma-separated (e.g. fast~1of10,slow~3of6)")
+    p.add_argument("--progress-s", type=float, default=60.0,
+                   help="with --json: write the figures so far every S seconds (0: after each partition only)")
     args = p.parse_args(argv)
     if args.leaves < 1 or args.periods < 8 or args.horizon < 1 or args.slices < 1 or args.parallel < 1:
         p.error("--leaves, --slices, --parallel >= 1, --periods >= 8 and --horizon >= 1")

@@ -43,12 +43,14 @@ class ChildTimeline:
 
 
 def run_parallel(config_path: str, instance, cycle: str, keys: list[str], every: list[str], parallel: int,
-                 run_config: dict, done) -> dict:
+                 run_config: dict, done, on_sampler=None) -> dict:
     """Run `keys` `parallel` at a time; `done(label, run_id, seconds, timeline)` after each; the peaks and the
-    elapsed seconds."""
+    elapsed seconds. `on_sampler(sampler)`: told the sampler of the runs' memory before they start."""
     from pipelines.runner import run_partitions_parallel
 
     sampler = TreeSampler(0.1)
+    if on_sampler is not None:
+        on_sampler(sampler)
     starting: list[str] = []
     spawn = multiprocessing.context.SpawnProcess
     original = spawn.start

@@ -1,6 +1,7 @@
 """The history read by every partition against the history cut once per cycle, at a size where it shows.
 
     nice .venv/bin/python benchmarks/input_cut.py [--lines 2000000] [--classes 4] [--shards 4] [--folder DIR]
+        [--cut-only]
 
 Writes (once per folder) a seeded history of `--lines` lines
 (`benchmarks/reader.py`'s `write_history`: 2,000 products x 3 sites x 2,000
@@ -19,12 +20,19 @@ partitions of one cycle do to get their history lines:
 
 and checks that both give every partition the same rows. Prints seconds and
 the load average before and after each (the machine is shared).
+
+`--cut-only`: the cut alone (`ensure_cut`), in a forked child process of its
+own, with the child's peak RSS (`ru_maxrss`) beside its seconds: what the
+cutting partition's process needs. The child starts from this process (the
+imports, a few hundred MB), so its peak counts them.
 """
 
 from __future__ import annotations
 
 import argparse
+import multiprocessing
 import os
+import resource
 import shutil
 import sys
 import tempfile
@@ -107,12 +115,31 @@ def cut(config) -> dict[str, pd.DataFrame]:
     return found
 
 
+def cut_alone(config) -> tuple[float, float]:
+    """`ensure_cut` in a forked child: its seconds and its peak RSS in MB."""
+    def child(pipe) -> None:
+        from pipelines.input_cut import ensure_cut
+
+        started = time.monotonic()
+        ensure_cut(config.store.path, config, CYCLE)
+        pipe.send((time.monotonic() - started, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024))
+
+    context = multiprocessing.get_context("fork")
+    here, there = context.Pipe()
+    process = context.Process(target=child, args=(there,))
+    process.start()
+    seconds, peak = here.recv()
+    process.join()
+    return seconds, peak
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--lines", type=int, default=2_000_000)
     parser.add_argument("--classes", type=int, default=4)
     parser.add_argument("--shards", type=int, default=4)
     parser.add_argument("--folder", type=Path, default=None, help="inputs folder (kept; default a temporary one)")
+    parser.add_argument("--cut-only", action="store_true", help="the cut alone, in a child: seconds and peak RSS")
     args = parser.parse_args(argv)
     tmp = Path(tempfile.mkdtemp(prefix="input-cut-"))
     folder = args.folder or tmp / "inputs"
@@ -122,6 +149,13 @@ def main(argv: list[str] | None = None) -> int:
         partitions = args.classes * args.shards
         print(f"{args.lines:,} history lines, {args.classes} classes x {args.shards} shards = {partitions} "
               f"partitions, {os.cpu_count()} cores; load average (1, 5, 15 min) before -> after")
+        if args.cut_only:
+            before = os.getloadavg()
+            seconds, peak = cut_alone(config)
+            size = (folder / "history.csv").stat().st_size
+            print(f"cut    {seconds:8.1f} s  peak RSS {peak:,.0f} MB (history {size / 2**20:,.0f} MB)  load "
+                  f"{np.round(before, 1)} -> {np.round(os.getloadavg(), 1)}")
+            return 0
         results = {}
         for name, how in (("whole", whole), ("cut", cut)):
             before, started = os.getloadavg(), time.monotonic()

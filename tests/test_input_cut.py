@@ -14,14 +14,18 @@ from pathlib import Path
 
 import dagster as dg
 import pandas as pd
+import pyarrow.parquet as pq
 import pytest
 from stage_runs import DEMO, FIXED, demo_config, sharded_demo_file
 
-from pipelines.engines.class_rows import class_map, class_rows
+from pipelines.calendar import period_ordinal
+from pipelines.engines.class_rows import class_map, class_rows, history_figures
+from pipelines.engines.cleansing import reject_lines
 from pipelines.engines.history_files import load_raw_history
-from pipelines.input_cut import SUMMARY, CutPart, cycle_folder, ensure_cut
+from pipelines.input_cut import SUMMARY, CutPart, class_first_period, cycle_folder, ensure_cut, part_path, write_cut
+from pipelines.partitions import narrow_config
 from pipelines.shards import partition_classes, shard_of, split_class_key, successor_ends
-from pipelines.stages.master_data import load_products
+from pipelines.stages.master_data import load_customer_spans, load_products
 
 ROOT = Path(__file__).resolve().parents[1]
 CYCLE = "2026-11-30"
@@ -70,6 +74,62 @@ def test_a_changed_input_file_remakes_the_cut(tmp_path):
     assert lines == len(text) - 1 + 2 - 1  # one line fewer (+2 for the line of no class kept in 3 classes)
 
 
+def _awkward_inputs(tmp: Path) -> Path:
+    """The demo's inputs with its history as three files (one Parquet) and the lines a chunked read could get
+    wrong: every 40th demo line; 15 lines repeated in a later file (`duplicate_of_other_file`, a rule over the
+    leaf's lines of all files); three lines of known leaves dated years before the rest (`isolated_date`, a rule
+    over the class's lines per period); blank, malformed, quoted and over-long lines (longer than a chunk)."""
+    folder = tmp / "inputs"
+    shutil.copytree(DEMO, folder)
+    header, *body = (folder / "history.csv").read_text().splitlines()
+    some = body[::40]
+    half = len(some) // 2
+    early = [",".join(line.split(",")[:3] + ["2020-06-01", "5"]) for line in some[100:103]]
+    odd = ["", "A,B,C,D,E,F", '"DRIP-001",SITE-NORTH,"C0002",2024-01-02,3', "P,S,C,2024-01-01," + "9" * 5000, ""]
+    (folder / "history.csv").write_text("\n".join([header, *some[:half]]) + "\n")
+    (folder / "history_2.csv").write_text("\n".join([header, *some[half:-60], *odd, *early, *some[:15]]) + "\n")
+    rows = [line.split(",") for line in some[-60:]]
+    pd.DataFrame(rows, columns=header.split(",")).to_parquet(folder / "history_3.parquet", row_group_size=7)
+    return folder
+
+
+def test_a_cut_in_tiny_chunks_equals_the_cut_in_one_piece_and_the_whole_history(tmp_path):
+    folder = _awkward_inputs(tmp_path)
+    config = _config(tmp_path, folder)
+    made = {}
+    for size in (4096, 1 << 30):  # about 80 lines (a Parquet batch of 64 rows) a chunk; one chunk per file
+        made[size] = (tmp_path / f"cut-{size}", write_cut(tmp_path / f"cut-{size}", config, CYCLE, "x", size))
+    (small, by_chunks), (whole, in_one) = made.values()
+    assert by_chunks == in_one
+    # the whole history in one frame, as the cut read it before it was chunked (the reference)
+    lines, files = load_raw_history(folder, config.inputs)
+    products, spans = load_products(folder)[0], load_customer_spans(folder)[0]
+    classes, ends = class_map(products), successor_ends(products)
+    no_class = int(lines["product"].map(classes).isna().sum())
+    assert in_one["history"] == history_figures(config.inputs, files, len(lines), no_class)
+    assert {f["file"]: (f["malformed"], f["blank_lines"]) for f in in_one["history"]["files"]}["history_2.csv"] == (
+        1, 2)
+    for key in partition_classes(config):
+        name, shard = split_class_key(key)
+        own = shard_of(config, key)
+        want = class_rows(lines, classes, name, shard=type(own)(own.index, own.count, own.by, ends))
+        for cut in (small, whole):  # every cell, file and row, in order
+            got = pq.read_table(part_path(cut, name, shard)).to_pandas()
+            pd.testing.assert_frame_equal(got, want, check_exact=True)
+    early = int(period_ordinal(pd.DatetimeIndex(["2020-06-01"]), config.calendar.period)[0])
+    reasons = set()
+    for k in FIXED:  # the class's first trusted period as reject_lines finds it on all the class's lines at once
+        narrowed = narrow_config(config, CYCLE, k)
+        raw = class_rows(lines, classes, k)
+        first = class_first_period(raw, products, classes, spans, narrowed, k)
+        assert by_chunks["classes"][k]["first_period"] == first and first > early
+        assert by_chunks["classes"][k]["first_period_known"]
+        reasons |= set(reject_lines(raw, products[products["product_class"] == k], class_rows(spans, classes, k),
+                                    narrowed.calendar, narrowed.source, narrowed.inputs.plausible)[1]["reason"])
+    # the rules over a leaf's lines in every file and over the class's lines per period took part
+    assert {"duplicate_of_other_file", "isolated_date", "too_many_fields"} <= reasons
+
+
 RACE = """
 import sys, time
 from pathlib import Path
@@ -106,14 +166,14 @@ sys.path.insert(0, {tests!r})
 from test_input_cut import _config
 import pipelines.input_cut as cut
 written = []
-real = cut.write_part
-def write_then_die(path, lines):
-    real(path, lines)
+real = cut.finish_part
+def write_then_die(path, writer):
+    real(path, writer)
     written.append(path)
     if len(written) == 2:
         print(path, flush=True)
         os.kill(os.getpid(), signal.SIGKILL)  # killed in the middle of the cut: two parts written, the rest not
-cut.write_part = write_then_die
+cut.finish_part = write_then_die
 config = _config(Path({tmp!r}))
 cut.ensure_cut(config.store.path, config, {cycle!r})
 """
@@ -146,10 +206,10 @@ def test_the_demo_tables_are_identical_with_the_cut_and_without_and_the_history_
     from pipelines.runner import run_partitions
 
     reads = []
-    for module in (pipelines.input_cut, pipelines.stages.raw_history, assets.cleaned_history):
-        real = module.load_raw_history
-        monkeypatch.setattr(module, "load_raw_history",
-                            lambda *a, _m=module.__name__, _r=real, **k: reads.append(_m) or _r(*a, **k))
+    for module, name in ((pipelines.input_cut, "iter_raw_history"), (pipelines.stages.raw_history, "load_raw_history"),
+                         (assets.cleaned_history, "load_raw_history")):
+        real = getattr(module, name)
+        monkeypatch.setattr(module, name, lambda *a, _m=module.__name__, _r=real, **k: reads.append(_m) or _r(*a, **k))
     keys = ["consumables", "seasonal", "spares~1of2", "spares~2of2"]
     tmp = tmp_path / "run"  # both runs in one folder: the report's path, a column of cycle_report, is the same
     stores = {}

@@ -276,6 +276,16 @@ class CsvChunks:
     def skipped_long_line(self, line: int, head: bytes) -> None:
         self._bad(line, LINE_TOO_LONG, printable(head[: PREVIEW_CHARS * self.k]))
 
+    def pending(self) -> bool:
+        """Whether lines (rows, malformed or blank) were read since the last `take`."""
+        return bool(self.tables or self.extra or self.bad or self.blank)
+
+    def take(self, order: list[str]) -> TextRead:
+        """`result` of the lines read since the last `take`, which are then forgotten (a chunk of the file)."""
+        read = self.result(order)
+        self.extra, self.bad, self.blank = [], [], 0
+        return read
+
     def result(self, order: list[str]) -> TextRead:
         """The rows read, columns in `order` (wanted columns the file lacks come out blank)."""
         schema = pa.schema([("source_row", pa.int64())] + [(c, pa.string()) for c in self.wanted])

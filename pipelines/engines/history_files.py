@@ -45,10 +45,12 @@ from pipelines.config_inputs import InputsConfig
 from pipelines.engines.history_database import load_history_query
 from pipelines.engines.inputs import HISTORY_COLUMNS, HistoryFile, find_files, sha256
 from pipelines.engines.plausible import gap_periods, parse_dates, trusted_extent
-from pipelines.engines.reader import read_text
+from pipelines.engines.reader import CHUNK_BYTES, iter_csv_text, iter_parquet_text, read_text
 from pipelines.errors import InputFileError
 
-__all__ = ["HISTORY_COLUMNS", "HistoryFile", "choose_cycle_date", "latest_cycle_date", "load_raw_history"]
+__all__ = [
+    "HISTORY_COLUMNS", "HistoryFile", "choose_cycle_date", "iter_raw_history", "latest_cycle_date", "load_raw_history"
+]
 
 
 def history_files(folder: Path) -> list[Path]:
@@ -99,12 +101,7 @@ def load_raw_history(folder: Path, inputs: InputsConfig | None = None) -> tuple[
             )
         digests[digest] = path.name
         read = read_text(path, HISTORY_COLUMNS, encoding=inputs.encoding, max_line_bytes=inputs.max_line_bytes)
-        lines = read.frame  # columns added in place, no copy of the cells: the frame may hold 100+ million lines
-        lines["read_error"] = ""
-        if len(read.malformed):
-            lines = pd.concat([lines, read.malformed[list(lines.columns)]], ignore_index=True)
-            lines = lines.sort_values("source_row", kind="stable", ignore_index=True)
-        lines.insert(0, "source_file", path.name)
+        lines = _file_lines(read, path.name)
         frames.append(lines)
         files.append(
             HistoryFile(
@@ -113,6 +110,56 @@ def load_raw_history(folder: Path, inputs: InputsConfig | None = None) -> tuple[
         )
     return (frames[0] if len(frames) == 1 else pd.concat(frames, ignore_index=True)), files
 
+
+
+def _file_lines(read, name: str) -> pd.DataFrame:
+    """A file's (or a chunk's) lines as `load_raw_history` gives them: the rows read and the malformed lines in
+    file order, `read_error` beside them, `source_file` first."""
+    lines = read.frame  # columns added in place, no copy of the cells: the frame may hold 100+ million lines
+    lines["read_error"] = ""
+    if len(read.malformed):
+        lines = pd.concat([lines, read.malformed[list(lines.columns)]], ignore_index=True)
+        lines = lines.sort_values("source_row", kind="stable", ignore_index=True)
+    lines.insert(0, "source_file", name)
+    return lines
+
+
+def iter_raw_history(folder: Path, inputs: InputsConfig | None = None, files: list | None = None,
+                     chunk_bytes: int = CHUNK_BYTES):
+    """`load_raw_history` in chunks, for a reader that needs not hold the whole history: the lines of each file
+    chunk by chunk (about `chunk_bytes` of CSV; a Parquet batch of one row per 64 bytes), each chunk as
+    `load_raw_history` gives those lines, in the same order (the chunks stacked are its frame). Each file's
+    `HistoryFile` is appended to `files` once the file is read; the same files are refused, before their lines.
+    A history query (`inputs.history`) comes as one chunk."""
+    inputs = inputs or InputsConfig()
+    files = [] if files is None else files
+    if inputs.history is not None:
+        lines, described = load_raw_history(folder, inputs)
+        yield lines
+        files.extend(described)
+        return
+    digests: dict[str, str] = {}
+    for path in history_files(folder):
+        digest = sha256(path)
+        if digest in digests:
+            raise InputFileError(
+                f"{path} has the same content as {digests[digest]} (sha256 {digest[:12]}...); the history would be "
+                f"counted twice. Remove one of them."
+            )
+        digests[digest] = path.name
+        if path.suffix == ".parquet":
+            chunks = iter_parquet_text(path, HISTORY_COLUMNS, max_line_bytes=inputs.max_line_bytes,
+                                       batch_rows=max(1, chunk_bytes // 64))
+        else:
+            chunks = iter_csv_text(path, HISTORY_COLUMNS, encoding=inputs.encoding,
+                                   max_line_bytes=inputs.max_line_bytes, chunk_bytes=chunk_bytes)
+        rows = malformed = blank = 0
+        for read in chunks:
+            malformed, blank = malformed + len(read.malformed), blank + read.blank_lines
+            lines = _file_lines(read, path.name)
+            rows += len(lines)
+            yield lines
+        files.append(HistoryFile(path=path, rows=rows, sha256=digest, malformed=malformed, blank_lines=blank))
 
 @dataclass(frozen=True)
 class CycleDateChoice:

@@ -163,44 +163,92 @@ def read_csv_text(
             read = read_csv_text(copy, columns, optional, max_line_bytes=max_line_bytes, chunk_bytes=chunk_bytes)
             return read
     with open(path, "rb") as fh:
-        names, offset = _header(path, fh, max_line_bytes, "utf-8")
-        check_columns(path, names, columns, optional)
-        wanted = [c for c in list(columns) + list(optional) if c in names]
-        chunks = CsvChunks(path, names, wanted, max_line_bytes, encoding)
-        line = 2  # the first line after the header
-        carry = b""
-        while True:
-            block = fh.read(chunk_bytes)
-            buf = carry + block if carry else block
-            if not block:
-                if buf:
-                    chunks.add(buf, line, offset)
-                break
-            cut = buf.rfind(b"\n")
-            if cut < 0:
-                if len(buf) > max_line_bytes:  # a line longer than allowed and not ended yet: skip it unread
-                    head = buf[: PREVIEW_CHARS * len(names)]
-                    offset += len(buf)
-                    while True:
-                        more = fh.read(chunk_bytes)
-                        if not more:
-                            carry = b""
-                            break
-                        end = more.find(b"\n")
-                        if end >= 0:
-                            carry = more[end + 1 :]
-                            offset += end + 1
-                            break
-                        offset += len(more)
-                    chunks.skipped_long_line(line, head)
-                    line += 1
-                    continue
-                carry = buf
-                continue
-            body, carry = buf[: cut + 1], buf[cut + 1 :]
-            line += chunks.add(body, line, offset)
-            offset += len(body)
+        chunks, offset = _csv_chunks(path, fh, columns, optional, max_line_bytes, encoding)
+        for _ in _feed(fh, chunks, offset, max_line_bytes, chunk_bytes):
+            pass
     return chunks.result(list(columns) + list(optional))
+
+
+def iter_csv_text(
+    path: Path,
+    columns: tuple[str, ...],
+    optional: tuple[str, ...] = (),
+    *,
+    encoding: str = "utf-8",
+    max_line_bytes: int = DEFAULT_MAX_LINE_BYTES,
+    chunk_bytes: int = CHUNK_BYTES,
+):
+    """`read_csv_text` chunk by chunk: one TextRead per chunk of about `chunk_bytes` (its lines, its malformed
+    lines, its blank lines), in file order; at least one (empty) for a file without lines. The chunks' frames
+    stacked are `read_csv_text`'s frame, their malformed lines its malformed lines, their blank lines its count."""
+    path = Path(path)
+    codec = _normal_encoding(encoding)
+    if codec != "utf-8":
+        with tempfile.TemporaryDirectory(prefix="apportion-") as tmp:
+            copy = Path(tmp) / path.name
+            _transcode(path, encoding, copy)
+            yield from iter_csv_text(copy, columns, optional, max_line_bytes=max_line_bytes, chunk_bytes=chunk_bytes)
+            return
+    order = list(columns) + list(optional)
+    with open(path, "rb") as fh:
+        chunks, offset = _csv_chunks(path, fh, columns, optional, max_line_bytes, encoding)
+        given = False
+        for _ in _feed(fh, chunks, offset, max_line_bytes, chunk_bytes):
+            if chunks.pending():
+                given = True
+                yield chunks.take(order)
+        if chunks.pending() or not given:
+            yield chunks.take(order)
+
+
+def _csv_chunks(path: Path, fh, columns, optional, max_line_bytes: int, encoding: str) -> tuple[CsvChunks, int]:
+    """The reader of the file open at `fh` (its header read and checked) and the header's bytes."""
+    names, offset = _header(path, fh, max_line_bytes, "utf-8")
+    check_columns(path, names, columns, optional)
+    wanted = [c for c in list(columns) + list(optional) if c in names]
+    return CsvChunks(path, names, wanted, max_line_bytes, encoding), offset
+
+
+def _feed(fh, chunks: CsvChunks, offset: int, max_line_bytes: int, chunk_bytes: int):
+    """Give `chunks` the file's lines after the header (`offset` bytes) block by block, each block ending on a
+    line break; yields after each block."""
+    names = chunks.names
+    line = 2  # the first line after the header
+    carry = b""
+    while True:
+        block = fh.read(chunk_bytes)
+        buf = carry + block if carry else block
+        if not block:
+            if buf:
+                chunks.add(buf, line, offset)
+                yield
+            break
+        cut = buf.rfind(b"\n")
+        if cut < 0:
+            if len(buf) > max_line_bytes:  # a line longer than allowed and not ended yet: skip it unread
+                head = buf[: PREVIEW_CHARS * len(names)]
+                offset += len(buf)
+                while True:
+                    more = fh.read(chunk_bytes)
+                    if not more:
+                        carry = b""
+                        break
+                    end = more.find(b"\n")
+                    if end >= 0:
+                        carry = more[end + 1 :]
+                        offset += end + 1
+                        break
+                    offset += len(more)
+                chunks.skipped_long_line(line, head)
+                line += 1
+                yield
+                continue
+            carry = buf
+            continue
+        body, carry = buf[: cut + 1], buf[cut + 1 :]
+        line += chunks.add(body, line, offset)
+        offset += len(body)
+        yield
 
 
 _CONTROL = r"[\x00-\x08\x0a-\x1f\x7f]"
@@ -220,6 +268,37 @@ def read_parquet_text(
     control character in a cell `control_characters`; `source_row` is the
     1-based row of the file.
     """
+    pf, wanted = _parquet_file(path, columns, optional)
+    tables, bad = [], []
+    for table in _parquet_batches(path, pf, wanted, max_line_bytes, batch_rows, bad):
+        tables.append(table)
+    return text_read(tables, bad, wanted, list(columns) + list(optional), list(pf.schema_arrow.names))
+
+
+def iter_parquet_text(
+    path: Path,
+    columns: tuple[str, ...],
+    optional: tuple[str, ...] = (),
+    *,
+    max_line_bytes: int = DEFAULT_MAX_LINE_BYTES,
+    batch_rows: int = 1 << 20,
+):
+    """`read_parquet_text` batch by batch: one TextRead per batch of `batch_rows` rows, in file order; at least
+    one (empty) for a file without rows."""
+    pf, wanted = _parquet_file(path, columns, optional)
+    order, names = list(columns) + list(optional), list(pf.schema_arrow.names)
+    given = False
+    bad: list[tuple] = []
+    for table in _parquet_batches(Path(path), pf, wanted, max_line_bytes, batch_rows, bad):
+        given = True
+        yield text_read([table], bad, wanted, order, names)
+        bad.clear()  # read into the TextRead's frame already
+    if not given:
+        yield text_read([], [], wanted, order, names)
+
+
+def _parquet_file(path: Path, columns, optional):
+    """The Parquet file (refused when unreadable or its columns are not the ones wanted) and its wanted columns."""
     import pyarrow.parquet as pq
 
     path = Path(path)
@@ -229,8 +308,11 @@ def read_parquet_text(
         raise InputFileError(f"{path}: cannot be read as Parquet ({type(err).__name__}: {err})") from None
     names = list(pf.schema_arrow.names)
     check_columns(path, names, columns, optional)
-    wanted = [c for c in list(columns) + list(optional) if c in names]
-    tables, bad = [], []
+    return pf, [c for c in list(columns) + list(optional) if c in names]
+
+
+def _parquet_batches(path: Path, pf, wanted: list[str], max_line_bytes: int, batch_rows: int, bad: list[tuple]):
+    """The file's rows batch by batch (`screen_cells`: cells as text, rows with a bad cell appended to `bad`)."""
     first = 1
     try:
         for batch in pf.iter_batches(batch_size=batch_rows, columns=wanted):
@@ -246,13 +328,13 @@ def read_parquet_text(
                     ) from None
                 cols.append(text)
             source = np.arange(first, first + batch.num_rows, dtype=np.int64)
-            tables.append(screen_cells(cols, wanted, source, max_line_bytes, bad))
+            table = screen_cells(cols, wanted, source, max_line_bytes, bad)
             first += batch.num_rows
+            yield table
     except InputFileError:
         raise
     except Exception as err:
         raise InputFileError(f"{path}: cannot be read as Parquet ({type(err).__name__}: {err})") from None
-    return text_read(tables, bad, wanted, list(columns) + list(optional), names)
 
 
 def screen_cells(
@@ -314,3 +396,4 @@ def read_text(
     if Path(path).suffix == ".parquet":
         return read_parquet_text(path, columns, optional, max_line_bytes=max_line_bytes)
     return read_csv_text(path, columns, optional, encoding=encoding, max_line_bytes=max_line_bytes)
+
