@@ -12,7 +12,7 @@ import pandas as pd
 import pytest
 
 from pipelines import keys
-from pipelines.engines import history_proofs
+from pipelines.engines import cleansing, history_proofs
 from pipelines.engines.proofs import find_unaccounted_lines
 from pipelines.schemas import RawHistory
 from pipelines.stages.cleaned_history import clean_history, find_unexplained_changes
@@ -118,3 +118,34 @@ def test_unaccounted_lines_on_runs_are_those_of_every_row(cleaned_case, monkeypa
         pd.testing.assert_frame_equal(fast, general(monkeypatch, find_unaccounted_lines, raw, cleaned, rejected))
     assert len(find_unaccounted_lines(raw, more_lines, res.rejected)) == 2
     assert find_unaccounted_lines(raw, res.cleaned, res.rejected).empty
+
+
+def test_line_rejection_on_key_runs_is_that_of_every_line(make_products, make_spans, make_config, monkeypatch):
+    """`cleansing.reject_lines` codes and judges the keys once per run of lines (past 1,024 lines in few runs);
+    the reference is its own general path, every line coded (`_key_runs` refused)."""
+    products = make_products([("P1", "a"), ("P2", "a")])
+    leaves = [(p, s, c) for p in ("P1", "P2") for s in ("S1", "S2") for c in ("C1", "C2", "C3", "C4", "C5")]
+    spans = make_spans(leaves[:-1])  # the last leaf has no span
+    weeks = pd.date_range("2025-01-06", periods=60, freq="7D").strftime("%Y-%m-%d")
+    rows = []
+    for file in ("history_a.csv", "history_b.csv"):
+        mine = weeks[:30] if file == "history_a.csv" else weeks  # the later file repeats the earlier one's weeks
+        for p, s, c in leaves + [("P9", "S1", "C1"), ("P1", "", "C1")]:
+            rows += [(file, p, s, c, w, str(3 + i % 7)) for i, w in enumerate(mine)]
+    rows.append(("history_b.csv", "P1", "S1", "C1", "not a date", "2"))
+    rows.append(("history_b.csv", "P1", "S1", "C2", weeks[4], "x"))
+    raw = pd.DataFrame(rows, columns=["source_file", "product", "site", "customer", "period_start", "quantity"])
+    raw.insert(1, "source_row", np.arange(1, len(raw) + 1))
+    raw = RawHistory.validate(raw)
+    for c in keys.LEAF:  # one object per distinct key, so the lines come in runs of one key
+        raw[c] = raw[c].map({v: v for v in raw[c].unique()}).astype(object)
+    assert len(raw) >= 1024 and len(cleansing._key_runs(raw)[0]) < len(raw) / 4  # the runs path is taken
+    config = make_config(calendar={"cycle_date": "2026-03-02"})
+    fast = clean_history(raw, products, spans, config)
+    with monkeypatch.context() as m:
+        m.setattr(cleansing, "_key_runs", lambda frame: (frame, lambda per_line: per_line))
+        slow = clean_history(raw, products, spans, config)
+    assert {"missing_key", "unknown_product", "no_customer_span", "duplicate_of_other_file", "bad_date",
+            "bad_quantity"} <= set(fast.rejected["reason"])
+    for name in ("cleaned", "rejected", "corrections"):
+        pd.testing.assert_frame_equal(getattr(fast, name), getattr(slow, name), check_exact=True)

@@ -318,3 +318,29 @@ def test_ids_from_the_sort_are_the_key_ids_of_the_history(make_cleaned, make_pro
     assert res.ids[1].tolist() == parent_id.tolist() == [0, 0, 1, 1, 2, 2, 2, 2]
     grouped = res.history.groupby("origin").agg(rows=("quantity", "size"), quantity=("quantity", "sum"))
     pd.testing.assert_frame_equal(_by_origin(res.history), grouped.reset_index())
+
+
+def test_span_test_and_period_key_are_those_of_their_general_forms():
+    """`_inside_span` against `calendar.active_mask` on every kind of bound (open, closed, no span), and
+    `_day_rank` ordering the rows as the rank of their distinct starts (pd.factorize, sort=True) does."""
+    import numpy as np
+
+    from pipelines.calendar import active_mask
+    from pipelines.stages.lifecycle_history import _day_rank, _inside_span
+
+    rng = np.random.default_rng(5)
+    s_from = rng.choice([np.nan, 10.0, 20.0, -3.0], 50)
+    s_to = rng.choice([np.nan, 15.0, 30.0, 5.0], 50)
+    leaf_span = rng.integers(-1, 50, 40)
+    leaf, ordinal = rng.integers(0, 40, 5000), rng.integers(-10, 40, 5000)
+    at = np.clip(leaf_span, 0, None)
+    want = (leaf_span >= 0)[leaf] & active_mask(s_from[at][leaf], s_to[at][leaf], ordinal)
+    assert want.any() and not want.all()
+    assert (_inside_span(leaf, leaf_span, s_from, s_to, ordinal) == want).all()
+    for starts in (
+        pd.date_range("2025-01-06", periods=30, freq="7D").to_numpy()[rng.integers(0, 30, 500)],
+        (pd.Timestamp("2025-01-06") + pd.to_timedelta(rng.integers(0, 10**6, 500), unit="s")).to_numpy(),
+    ):
+        rank = pd.factorize(starts, sort=True)[0]
+        assert (np.argsort(_day_rank(starts), kind="stable") == np.argsort(rank, kind="stable")).all()
+        assert (pd.factorize(_day_rank(starts))[0] == pd.factorize(rank)[0]).all()

@@ -23,7 +23,7 @@ from pipelines.calendar import (
 from pipelines.config_inputs import PlausibilityConfig
 from pipelines.engines.plausible import distinct_dates, distinct_quantities, gap_periods, trusted_extent
 from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup, pack_codes
-from pipelines.text_codes import codes_of
+from pipelines.text_codes import RUNS_SHARE, codes_of, run_starts
 
 
 @dataclass(frozen=True)
@@ -69,9 +69,11 @@ def reject_lines(
     if "read_error" in raw.columns:
         for why, mask in _read_errors(raw["read_error"]):
             mark(mask, why)
-    # each text column coded once (`text_codes`); its rules judged on its distinct values, reached by the codes
-    key_codes = {c: codes_of(raw[c], use_na_sentinel=False) for c in LEAF}
-    mark(np.logical_or.reduce([(u == "")[k] for k, u in key_codes.values()]), "missing_key")
+    # each text column coded once (`text_codes`); its rules judged on its distinct values, reached by the codes.
+    # Lines in runs of one key (a leaf's lines read together): the keys coded and judged per run, then repeated
+    keyed, spread = _key_runs(raw)
+    key_codes = {c: codes_of(keyed[c], use_na_sentinel=False) for c in LEAF}
+    mark(spread(np.logical_or.reduce([(u == "")[k] for k, u in key_codes.values()])), "missing_key")
     day = distinct_dates(raw["period_start"])
     # a date pandas cannot hold (year 9999) is still a date, outside the window: looked for among the unparsed only
     outside = day.take(day.outside)
@@ -83,13 +85,13 @@ def reject_lines(
     size = np.abs(np.nan_to_num(qty, nan=0.0, posinf=0.0, neginf=0.0))
     mark(size > plausible.max_abs_quantity, "quantity_out_of_bounds")
     product_code, product_text = key_codes["product"]
-    mark(~pd.Series(product_text).isin(products["product"]).to_numpy()[product_code], "unknown_product")
+    mark(spread(~pd.Series(product_text).isin(products["product"]).to_numpy()[product_code]), "unknown_product")
     codes = _joint_leaf_codes(key_codes, spans)
     del key_codes
     if codes is None:  # too many distinct keys to pack into one integer: pandas' own grouping
-        codes = factorize(pd.concat([raw[LEAF], spans[LEAF]], ignore_index=True), LEAF)[0]
-        codes = codes[: len(raw)], codes[len(raw) :]
-    line_code = codes[0]
+        codes = factorize(pd.concat([keyed[LEAF], spans[LEAF]], ignore_index=True), LEAF)[0]
+        codes = codes[: len(keyed)], codes[len(keyed) :]
+    line_code = spread(codes[0])
     mark(~pd.Series(line_code).isin(codes[1]).to_numpy(), "no_customer_span")
     del codes
     same_value = (day.take(day.value_code), pd.factorize(qty_values, use_na_sentinel=False)[0][qty_code])
@@ -130,6 +132,22 @@ def reject_lines(
     rejected = raw.loc[~ok].drop(columns=["read_error"], errors="ignore").copy()
     rejected["reason"] = np.array([None, *reasons], dtype=object)[reason[~ok]]
     return used, rejected.reset_index(drop=True), cycle_date
+
+
+def _key_runs(raw: pd.DataFrame):
+    """(key cells to code, spread): the leaf key columns of the first line of each run of lines sharing their key
+    objects and `spread`, which repeats a per-run array to the lines, when the runs are few (at most
+    1/RUNS_SHARE of the lines); else the lines themselves and the identity. Cells of one object are one
+    text, so a rule judged per run is the rule judged per line."""
+    columns = [raw[c].to_numpy() for c in LEAF]
+    if len(raw) >= 1024 and all(values.dtype == object for values in columns):
+        starts = run_starts(columns)
+        if len(starts) * RUNS_SHARE <= len(raw):
+            lengths = np.diff(np.append(starts, len(raw)))
+            return pd.DataFrame({c: v[starts] for c, v in zip(LEAF, columns, strict=True)}), lambda per_run: (
+                np.repeat(per_run, lengths)
+            )
+    return raw, lambda per_line: per_line  # the lines' own columns (not copied)
 
 
 def _repeated_in_earlier_file(

@@ -36,8 +36,10 @@ CHUNK_CELLS = 4_000_000  # window cells per block of rows: bounds the memory of 
 def _rolling(matrix: np.ndarray, window: int, stats, chunk_cells: int = CHUNK_CELLS) -> list[np.ndarray]:
     """Centred rolling statistics of each row of `matrix` (n_series, n_periods), NaN = no value.
 
-    `stats(windows)` gets the windows of a block of rows, shape (rows, n_periods,
-    window), NaN-padded at both ends, and returns a tuple of (rows, n_periods)
+    `stats(windows, n)` gets the windows of a block of rows, shape (rows,
+    n_periods, window), NaN-padded at both ends, and the number of values in
+    each window (int64, (rows, n_periods): a running count along the row, not a
+    count over every window cell), and returns a tuple of (rows, n_periods)
     arrays. Rows are processed in blocks of about `chunk_cells` window cells, so
     memory stays bounded; this is a loop over blocks of rows, not over series.
     """
@@ -48,7 +50,9 @@ def _rolling(matrix: np.ndarray, window: int, stats, chunk_cells: int = CHUNK_CE
     for lo in range(0, max(n, 1), step):  # an empty matrix still runs once, to shape the outputs
         block = np.pad(matrix[lo : lo + step], ((0, 0), (half, window - 1 - half)), constant_values=np.nan)
         win = np.lib.stride_tricks.sliding_window_view(block, window, axis=1)
-        result = stats(win)
+        running = np.zeros((len(block), block.shape[1] + 1), dtype=np.int64)
+        np.cumsum(~np.isnan(block), axis=1, out=running[:, 1:])
+        result = stats(win, running[:, window:] - running[:, :-window])
         if out is None:
             out = [np.full((n, t), np.nan) for _ in result]
         for o, r in zip(out, result, strict=False):
@@ -56,43 +60,56 @@ def _rolling(matrix: np.ndarray, window: int, stats, chunk_cells: int = CHUNK_CE
     return out
 
 
-def _sorted_quantile(s: np.ndarray, n: np.ndarray, p: float) -> np.ndarray:
+def _sorted_quantile(s: np.ndarray, n: np.ndarray, p: float, base: np.ndarray | None = None) -> np.ndarray:
     """Quantile p of the first n values of each sorted window (NaN where n = 0).
 
     Linear interpolation between order statistics, Hyndman & Fan (1996) type 7:
     h = (n - 1) p, q = x[floor h] + (h - floor h) (x[floor h + 1] - x[floor h]);
-    numpy.percentile's default method "linear".
+    numpy.percentile's default method "linear". `base`: `_window_base(s)`, when the caller has it.
     """
     h = np.maximum(n - 1, 0) * p
     lo = np.floor(h).astype(np.int64)
     hi = np.minimum(lo + 1, np.maximum(n - 1, 0))
-    a, b = _at_rank(s, lo), _at_rank(s, hi)
+    base = _window_base(s) if base is None else base
+    a, b = _at_rank(s, lo, base), _at_rank(s, hi, base)
     with np.errstate(invalid="ignore"):
         q = a + (h - lo) * (b - a)
     return np.where(n > 0, q, np.nan)
 
 
-def _at_rank(s: np.ndarray, rank: np.ndarray) -> np.ndarray:
-    """`s[..., rank]` per window: `np.take_along_axis(s, rank[..., None], -1)[..., 0]` as one flat gather
-    (`s`: the sorted windows, contiguous as `np.sort` returns them)."""
+def _window_base(s: np.ndarray) -> np.ndarray:
+    """The flat position of each window's first cell in `s` (sorted windows, contiguous), shaped as one rank."""
     width = s.shape[-1]
-    flat = np.arange(rank.size, dtype=np.int64) * width + rank.reshape(-1)
-    return s.reshape(-1)[flat].reshape(rank.shape)
+    return (np.arange(s.size // max(width, 1), dtype=np.int64) * width).reshape(s.shape[:-1])
 
 
-def _rolling_nanmedian(windows: np.ndarray) -> np.ndarray:
-    """Median over the last axis ignoring NaN (NaN where a window is all NaN).
+def _at_rank(s: np.ndarray, rank: np.ndarray, base: np.ndarray | None = None) -> np.ndarray:
+    """`s[..., rank]` per window: `np.take_along_axis(s, rank[..., None], -1)[..., 0]` as one flat gather
+    (`s`: the sorted windows, contiguous as `np.sort` returns them; `base`: `_window_base(s)`)."""
+    base = _window_base(s) if base is None else base
+    return s.reshape(-1)[base + rank]
+
+
+def _sorted_median(s: np.ndarray, n: np.ndarray, base: np.ndarray) -> np.ndarray:
+    """Median of the first n values of each sorted window (NaN where n = 0): the mean of the values at ranks
+    (n - 1) // 2 and n // 2 (one value twice where n is odd)."""
+    lo = np.clip((n - 1) // 2, 0, None)
+    hi = np.clip(n // 2, 0, None)
+    med = _at_rank(s, lo, base)
+    med += _at_rank(s, hi, base)
+    med /= 2.0
+    med[n == 0] = np.nan
+    return med
+
+
+def _rolling_nanmedian(windows: np.ndarray, n: np.ndarray | None = None) -> np.ndarray:
+    """Median over the last axis ignoring NaN (NaN where a window is all NaN); `n`: the values per window.
 
     np.sort puts NaN last, so the valid values of each window are its first n.
     """
     s = np.sort(windows, axis=-1)
-    n = np.sum(~np.isnan(windows), axis=-1)
-    lo = np.clip((n - 1) // 2, 0, None)
-    hi = np.clip(n // 2, 0, None)
-    a, b = _at_rank(s, lo), _at_rank(s, hi)
-    med = (a + b) / 2.0
-    med[n == 0] = np.nan
-    return med
+    n = np.sum(~np.isnan(windows), axis=-1) if n is None else n
+    return _sorted_median(s, n, _window_base(s))
 
 
 def hampel(
@@ -105,9 +122,17 @@ def hampel(
     limits are `hampel_limits`); it stays for callers that pass it.
     """
 
-    def median_mad(win):
-        med = _rolling_nanmedian(win)
-        return med, _rolling_nanmedian(np.abs(win - med[..., None]))
+    def median_mad(win, n):
+        s = np.sort(win, axis=-1)
+        base = _window_base(s)
+        med = _sorted_median(s, n, base)
+        # the absolute deviations in place of the sorted values, then sorted in place; a window has as many
+        # deviations as values (a window without values has a NaN median) unless its median is infinite
+        np.subtract(win, med[..., None], out=s)
+        np.abs(s, out=s)
+        n_dev = np.sum(~np.isnan(s), axis=-1) if np.isinf(med).any() else n
+        s.sort(axis=-1)
+        return med, _sorted_median(s, n_dev, base)
 
     med, mad = _rolling(matrix, window, median_mad, chunk_cells)
     return med, mad
@@ -120,10 +145,10 @@ def tukey(matrix: np.ndarray, window: int, chunk_cells: int = CHUNK_CELLS) -> tu
     that shape; windows truncated at the edges like `hampel`.
     """
 
-    def quartiles(win):
+    def quartiles(win, n):
         s = np.sort(win, axis=-1)
-        n = np.sum(~np.isnan(win), axis=-1)
-        return _sorted_quantile(s, n, 0.25), _sorted_quantile(s, n, 0.5), _sorted_quantile(s, n, 0.75)
+        base = _window_base(s)
+        return tuple(_sorted_quantile(s, n, p, base) for p in (0.25, 0.5, 0.75))
 
     q1, med, q3 = _rolling(matrix, window, quartiles, chunk_cells)
     return q1, med, q3
@@ -132,8 +157,8 @@ def tukey(matrix: np.ndarray, window: int, chunk_cells: int = CHUNK_CELLS) -> tu
 def rolling_median(matrix: np.ndarray, window: int, chunk_cells: int = CHUNK_CELLS) -> tuple[np.ndarray, np.ndarray]:
     """Rolling centred median of each row ignoring NaN, and the number of values it came from."""
 
-    def median_count(win):
-        return _rolling_nanmedian(win), np.sum(~np.isnan(win), axis=-1).astype(float)
+    def median_count(win, n):
+        return _rolling_nanmedian(win, n), n.astype(float)
 
     med, count = _rolling(matrix, window, median_count, chunk_cells)
     return med, count
@@ -210,7 +235,7 @@ def seasonal_component(
     n, t = matrix.shape
     if t == 0 or n == 0:
         return np.zeros((n, t)), np.zeros(n, dtype=bool), np.full((n, t), np.nan)
-    (trend,) = _rolling(matrix, len(weights), lambda win: (win @ weights,), chunk_cells)
+    (trend,) = _rolling(matrix, len(weights), lambda win, _: (win @ weights,), chunk_cells)
     detrended = matrix - trend
     if exclude is not None:
         detrended = np.where(exclude, np.nan, detrended)

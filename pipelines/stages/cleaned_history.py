@@ -194,7 +194,8 @@ def clean_history(
     leaf = cells.pop("leaf")
     cleaned = pd.DataFrame({c: leaves[c].to_numpy()[leaf] for c in LEAF}, copy=False)  # each key column taken once
     del leaf
-    cleaned["period_start"] = ordinal_to_start(cells.pop("col") + first_ord, period)
+    # the grid's t period starts, reached by each cell's column (one gather, not a date conversion per cell)
+    cleaned["period_start"] = ordinal_to_start(np.arange(t) + first_ord, period).to_numpy()[cells.pop("col")]
     for name in ("quantity", "raw_quantity", "lines", "filled", "corrected", "shortage"):
         cleaned[name] = cells.pop(name)
     return CleaningResult(

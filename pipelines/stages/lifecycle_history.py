@@ -32,7 +32,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import active_mask, period_ordinal, span_bounds
+from pipelines.calendar import period_ordinal, span_bounds
 from pipelines.config import CalendarConfig, PlanningConfig
 from pipelines.errors import LifecycleError
 from pipelines.keys import ID_DTYPE, LEAF, LEAF_ID, PARENT_ID, factorize, lookup, pack_codes
@@ -41,6 +41,7 @@ from pipelines.text_codes import codes_of
 
 HISTORY_COLUMNS = LEAF + ["period_start", "quantity", "origin", "source_product", "source_customer", "shortage"]
 AUDIT_COLUMNS = LEAF + ["rule", "periods", "quantity", "detail"]
+DAY_NS = 86_400 * 10**9
 
 
 @dataclass(frozen=True)
@@ -110,6 +111,34 @@ def leaf_codes(frame: pd.DataFrame) -> tuple[np.ndarray, pd.DataFrame]:
     return codes.astype(_index_type(len(leaves))), leaves
 
 
+def _inside_span(
+    leaf: np.ndarray, leaf_span: np.ndarray, s_from: np.ndarray, s_to: np.ndarray, ordinal: np.ndarray
+) -> np.ndarray:
+    """Per row: its leaf has a span (`leaf_span`: row of the spans, -1: none) whose bounds (`s_from`, `s_to`:
+    period ordinals, NaN = open) hold the row's period `ordinal`, as `calendar.active_mask`. The bounds are
+    made integers per leaf (an open bound the extreme integer, a leaf without a span an empty range), so the
+    rows see one comparison per bound."""
+    at = np.clip(leaf_span, 0, None)
+    low, high = np.iinfo(np.int64).min, np.iinfo(np.int64).max
+    lo, hi = np.nan_to_num(s_from[at]).astype(np.int64), np.nan_to_num(s_to[at]).astype(np.int64)
+    lo[np.isnan(s_from[at])], hi[np.isnan(s_to[at])] = low, high  # (an int64 bound never passes through float)
+    lo[leaf_span < 0], hi[leaf_span < 0] = high, low
+    inside = ordinal >= lo[leaf]
+    inside &= ordinal <= hi[leaf]
+    return inside
+
+
+def _day_rank(starts: np.ndarray) -> np.ndarray:
+    """A sort key of each row's period start, equal exactly where the starts are: whole days since the epoch
+    where every start is a midnight (as the stage writes them), else the rank among the distinct starts."""
+    if starts.dtype == "datetime64[ns]" and not np.isnat(starts).any():
+        ns = starts.view(np.int64)
+        days, rest = np.divmod(ns, DAY_NS)
+        if not rest.any():
+            return days
+    return pd.factorize(starts, sort=True)[0].astype(np.int32)
+
+
 def _sort_order(dest_rank: np.ndarray, ordinal: np.ndarray, moved: np.ndarray, source_rank: np.ndarray) -> np.ndarray:
     """Stable order by destination leaf rank, period, origin (own first) and source product rank.
 
@@ -161,8 +190,7 @@ def apply_lifecycle(
         )
 
     leaf_span = lookup(leaves, LEAF, spans)
-    at = np.clip(leaf_span, 0, None)  # each leaf's span bounds, then reached by the rows
-    inside = (leaf_span >= 0)[leaf] & active_mask(s_from[at][leaf], s_to[at][leaf], h_ord)
+    inside = _inside_span(leaf, leaf_span, s_from, s_to, h_ord)
     del h_ord
     audits.append(
         _audit(rows_of(np.flatnonzero(~inside)), "outside_active_span", "history outside the customer's active span")
@@ -240,11 +268,12 @@ def apply_lifecycle(
     rank = np.empty(len(distinct), dtype=np.int64)
     rank[distinct.sort_values(LEAF, kind="stable").index.to_numpy()] = np.arange(len(distinct))
     source_rank = pd.factorize(leaves["product"], sort=True)[0]
-    day_rank = pd.factorize(starts, sort=True)[0].astype(np.int32)  # period_start ranked on its distinct values
-    order = _sort_order(rank[key_code][key], day_rank[rows], is_moved, source_rank[leaf[rows]])
-    rows, is_moved, key = rows[order], is_moved[order], key[order]
-    del order, day_rank
-    ids = _ids_of_ranks(rank[key_code][key], distinct.iloc[np.argsort(rank)].reset_index(drop=True))
+    dest_rank = rank[key_code][key]
+    order = _sort_order(dest_rank, _day_rank(starts)[rows], is_moved, source_rank[leaf[rows]])
+    rows, is_moved, key, dest_rank = rows[order], is_moved[order], key[order], dest_rank[order]
+    del order
+    ids = _ids_of_ranks(dest_rank, distinct.iloc[np.argsort(rank)].reset_index(drop=True))
+    del dest_rank
     source = leaf[rows]
     out = {c: all_keys[c].to_numpy()[key] for c in LEAF}
     out["period_start"] = starts[rows]
