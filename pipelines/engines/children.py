@@ -17,6 +17,7 @@ def active_children(
     settings: ShareSettings,
     cycle_date: pd.Timestamp,
     keys: Coded | None = None,
+    age: np.ndarray | None = None,
 ) -> pd.DataFrame:
     """The children that can receive a share: customer spans active in any period of the horizon.
 
@@ -28,7 +29,8 @@ def active_children(
     history: lifecycle history, to count each child's own distinct periods
     (a period with an own row and a mapped successor row is one period).
     Columns: leaf keys, product_class, first_active_period, last_active_period,
-    own_periods, reference_customer, scale, initial_share. keys: `coded(history)`, when the caller has it.
+    own_periods, reference_customer, scale, initial_share. keys: `coded(history)`, age: each history row's
+    periods before the cycle date (`share_rows`), when the caller has them.
     """
     settings = ShareSettings.of(settings)
     period = settings.period
@@ -47,7 +49,7 @@ def active_children(
     out["product_class"] = out["product"].map(products.set_index("product")["product_class"]).to_numpy()
     out["first_active_period"] = ordinal_to_start(first[ok].astype(np.int64), period)
     out["last_active_period"] = ordinal_to_start(last[ok].astype(np.int64), period)
-    out["own_periods"] = own_periods(history, out, period, keys)
+    out["own_periods"] = own_periods(history, out, period, keys, age)
     for column in ("reference_customer", "scale", "initial_share"):
         values = spans[column] if column in spans.columns else pd.Series(np.nan, index=spans.index)
         out[column] = values[ok].to_numpy()
@@ -56,23 +58,28 @@ def active_children(
     return out
 
 
-def own_periods(history: pd.DataFrame, children: pd.DataFrame, period: str, keys: Coded | None = None) -> np.ndarray:
+def own_periods(
+    history: pd.DataFrame, children: pd.DataFrame, period: str, keys: Coded | None = None, age: np.ndarray | None = None
+) -> np.ndarray:
     """Distinct periods of history of each child (0 without any), counted on integer codes.
 
     A history sorted by leaf id and period (as the lifecycle stage writes it) is counted by its runs; any
-    other order through a leaf x period grid.
+    other order through a leaf x period grid. age: each row's periods before the cycle date (`share_rows`; a
+    period is one age), in place of the periods' ordinals, when the caller has it.
     """
     if history.empty:
         return np.zeros(len(children), dtype=np.int64)
     c = keys if keys is not None else coded(history)
     code, leaves = c.leaf, c.leaves
-    ords = period_ordinal(history["period_start"], period)
-    step_leaf, step_ord = np.diff(code), np.diff(ords)
-    if bool(np.all((step_leaf > 0) | ((step_leaf == 0) & (step_ord >= 0)))):
+    ords = period_ordinal(history["period_start"], period) if age is None else age  # one period, one age
+    same_leaf = code[1:] == code[:-1]
+    later = ords[1:] >= ords[:-1] if age is None else ords[1:] <= ords[:-1]  # the age falls as the period rises
+    in_order = bool(np.all(code[1:] >= code[:-1])) and bool(np.all(later | ~same_leaf))
+    if in_order:
         new = np.empty(len(code), dtype=bool)
         new[0] = True
-        np.not_equal(step_leaf, 0, out=new[1:])
-        new[1:] |= step_ord != 0
+        np.not_equal(ords[1:], ords[:-1], out=new[1:])
+        new[1:] |= ~same_leaf
         count = np.bincount(code[new], minlength=len(leaves))
     else:
         lo = int(ords.min())

@@ -43,8 +43,8 @@ from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal,
 from pipelines.engines.base_forecasts import base_forecasts
 from pipelines.engines.lifecycle_shares import reference_positions, split_shares
 from pipelines.engines.models import SeriesGrid, series_grid
+from pipelines.engines.share_rows import shortage_periods
 from pipelines.engines.share_settings import ShareSettings
-from pipelines.engines.shares import shortage_periods
 from pipelines.keys import LEAF, PARENT, coded, factorize, lookup
 from pipelines.vocabulary import BASIS_OF_METHOD, NEW_CUSTOMER_RULES, PER_PERIOD_METHODS, Basis, ShareMethod
 

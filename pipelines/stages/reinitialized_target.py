@@ -48,9 +48,9 @@ from pipelines.calendar import horizon_starts, period_ordinal
 from pipelines.checks import SHARES_SUM_TO_ONE
 from pipelines.engines.period_shares import period_shares, stored_basis
 from pipelines.engines.proofs import find_shares_not_summing_to_one
+from pipelines.engines.share_rows import shortage_periods
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.share_tuning import chosen_rules
-from pipelines.engines.shares import shortage_periods
 from pipelines.keys import LEAF, PARENT, PARENT_ID, coded, factorize, first_rows, ids_in, key_rank, rows_in
 from pipelines.results import CheckRows, Log, StageResult, quiet
 
