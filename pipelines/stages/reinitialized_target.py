@@ -51,7 +51,7 @@ from pipelines.engines.proofs import find_shares_not_summing_to_one
 from pipelines.engines.share_rows import shortage_periods
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.share_tuning import chosen_rules
-from pipelines.keys import LEAF, PARENT, PARENT_ID, coded, factorize, first_rows, ids_in, key_rank, rows_in
+from pipelines.keys import LEAF, PARENT, PARENT_ID, coded, factorize, first_rows, ids_in, key_rank
 from pipelines.results import CheckRows, Log, StageResult, quiet
 
 TARGET_COLUMNS = LEAF + ["period_start", "cycle_date", "target", "share", "parent_baseline", "zero_reason", "basis"]
@@ -60,7 +60,11 @@ TARGET_COLUMNS = LEAF + ["period_start", "cycle_date", "target", "share", "paren
 def parent_baselines(
     shares: pd.DataFrame, history: pd.DataFrame, settings: ShareSettings, cycle_date: pd.Timestamp
 ) -> np.ndarray:
-    """Baseline of each share-table row's parent (same value on all its children)."""
+    """Baseline of each share-table row's parent (same value on all its children).
+
+    Summed per history parent id where both tables carry the ids (each parent's rows in their order, as per
+    share-table parent), else per share-table parent; each parent's history length from its runs where the
+    history is sorted by parent id (as the lifecycle stage writes it)."""
     period = settings.period
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
     parent_code, parents = factorize(shares, PARENT)
@@ -68,26 +72,36 @@ def parent_baselines(
     window_used = np.zeros(n_parents + 1, dtype=np.int64)  # the last: the rows of no share-table parent
     window_used[parent_code] = shares["window_used"].to_numpy()
 
-    if ids_in(shares, (PARENT_ID,)):  # through the parent ids both tables carry
-        parents[PARENT_ID] = shares[PARENT_ID].to_numpy()[first_rows(parent_code)]
-        row_parent = rows_in(history, parents, PARENT)
-    else:
+    if ids_in(shares, (PARENT_ID,)) and ids_in(history, (PARENT_ID,)):  # bins: the history's parent ids
+        row_bin = history[PARENT_ID].to_numpy()
+        n_bins = int(row_bin.max()) + 1 if len(row_bin) else 0
+        held = shares[PARENT_ID].to_numpy()[first_rows(parent_code)]
+        code_of_bin = np.full(n_bins, n_parents, dtype=np.int64)
+        code_of_bin[held[held < n_bins]] = np.flatnonzero(held < n_bins)
+    else:  # bins: the share-table parents (n_parents: the rows of none)
         row_parent = coded(history).parent_rows(parents)
-    row_parent = np.where(row_parent >= 0, row_parent, n_parents)
+        row_bin = np.where(row_parent >= 0, row_parent, n_parents)
+        n_bins, code_of_bin = n_parents + 1, np.arange(n_parents + 1)
     short = shortage_periods(history, settings.exclude_shortages)
-    age = cycle_ord - period_ordinal(history["period_start"], period)
+    age = period_ordinal(history["period_start"], period)
+    np.subtract(cycle_ord, age, out=age)
     qty = history["quantity"].to_numpy(float)
-    oldest = np.zeros(n_parents + 1, dtype=np.int64)
-    np.maximum.at(oldest, row_parent, age)  # history length of each parent, in periods
-    span = np.minimum(window_used, oldest)
-    inside = (age >= 1) & (age <= span[row_parent])
-    use = inside & ~short
-    volume = np.bincount(row_parent[use], weights=qty[use], minlength=n_parents + 1)[:n_parents]
+    oldest = np.zeros(n_bins, dtype=np.int64)  # history length of each parent, in periods
+    if len(row_bin) and bool(np.all(row_bin[1:] >= row_bin[:-1])):  # each bin's rows one run: its largest age
+        first = np.flatnonzero(np.r_[True, row_bin[1:] != row_bin[:-1]])
+        oldest[row_bin[first]] = np.maximum(np.maximum.reduceat(age, first), 0)
+    else:
+        np.maximum.at(oldest, row_bin, age)
+    span = np.minimum(window_used[code_of_bin], oldest)
+    inside = (age >= 1) & (age <= span[row_bin])
+    volume = np.bincount(row_bin, weights=np.where(inside & ~short, qty, 0.0), minlength=n_bins)
     # shortage periods inside the window: distinct (parent, age) pairs
     m = inside & short
-    pairs = np.unique(np.stack([row_parent[m], age[m]], axis=1), axis=0)
-    periods = span[:n_parents] - np.bincount(pairs[:, 0], minlength=n_parents + 1)[:n_parents]
-    baseline = np.divide(volume, periods, out=np.zeros(n_parents), where=periods > 0)
+    pairs = np.unique(np.stack([row_bin[m], age[m]], axis=1), axis=0)
+    periods = span - np.bincount(pairs[:, 0], minlength=n_bins)
+    by_bin = np.divide(volume, periods, out=np.zeros(n_bins), where=periods > 0)
+    baseline = np.zeros(n_parents + 1)
+    baseline[code_of_bin] = by_bin  # a bin of no share-table parent lands on the last, unused
     return baseline[parent_code]
 
 
@@ -113,15 +127,19 @@ def reinitialize_target(
     stored = None if period_basis is None else stored_basis(shares, period_basis, starts)
     share, reason, basis = period_shares(shares, settings, cycle_date, products, history, basis=stored)
     ids = ids_in(shares)  # carried from the share table
-    out = shares[LEAF + ids].iloc[np.repeat(np.arange(len(shares)), h)].reset_index(drop=True)
+    # each column made once, in its place: a leaf's keys repeated per period, no frame taken and reordered
+    out = {c: np.repeat(shares[c].to_numpy(), h) for c in LEAF}
     out["period_start"] = np.tile(starts.values, len(shares))
-    out["cycle_date"] = cycle_date
+    out["cycle_date"] = np.full(len(shares) * h, cycle_date.to_datetime64().astype("datetime64[ns]"))
     out["share"] = share.ravel()
     out["parent_baseline"] = np.repeat(baseline, h)
-    out["target"] = out["share"].to_numpy() * out["parent_baseline"].to_numpy()
+    out["target"] = out["share"] * out["parent_baseline"]
     out["zero_reason"] = reason.ravel()
     out["basis"] = basis.ravel()
-    return out[TARGET_COLUMNS + ids]
+    out = {c: out[c] for c in TARGET_COLUMNS}
+    for c in ids:
+        out[c] = np.repeat(shares[c].to_numpy(), h)
+    return pd.DataFrame(out, copy=False)
 
 
 def parents_with_mix_change(target: pd.DataFrame, shares: pd.DataFrame, tolerance: float = 1e-9) -> pd.DataFrame:
