@@ -109,15 +109,16 @@ def _ranks(leaves: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
 
 
 def extend_ids(
-    children: pd.DataFrame, history: pd.DataFrame, keys: Coded | None = None
+    children: pd.DataFrame, history: pd.DataFrame, keys: Coded | None = None, leaf: np.ndarray | None = None
 ) -> tuple[np.ndarray, np.ndarray]:
     """(leaf_id, parent_id) of each row of `children` (leaf keys): the history's ids where its leaf or parent
     has history, else new ids after the history's, in key order (a new customer, a parent with no history).
 
-    The share table carries them; the stages after it read its ids. keys: `coded(history)`, when the caller has it.
+    The share table carries them; the stages after it read its ids. keys: `coded(history)`, leaf: each child's
+    row in `keys.leaves` (-1: none), when the caller has them.
     """
     c = keys if keys is not None else coded(history)
-    leaf = lookup(children, LEAF, c.leaves)
+    leaf = lookup(children, LEAF, c.leaves) if leaf is None else np.array(leaf, dtype=np.int64)
     parent = lookup(children, PARENT, c.parents)
     for ids, cols, base in ((leaf, LEAF, len(c.leaves)), (parent, PARENT, len(c.parents))):
         new = np.flatnonzero(ids < 0)

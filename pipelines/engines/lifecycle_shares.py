@@ -116,8 +116,10 @@ def lifecycle_rules(children: pd.DataFrame, established: np.ndarray, settings: S
     new = ~established
     reference = children["reference_customer"]
     has_ref = new & reference.notna().to_numpy()
-    ref_key = children[PARENT].assign(customer=reference.fillna("").to_numpy())
-    ref_pos = lookup(ref_key, LEAF, children)
+    asks = np.flatnonzero(has_ref)  # only a new customer's reference is looked up (-1 elsewhere)
+    ref_pos = np.full(len(children), -1, dtype=np.int64)
+    ref_key = children[PARENT].iloc[asks].assign(customer=reference.to_numpy()[asks])
+    ref_pos[asks] = lookup(ref_key, LEAF, children)
     ref_ok = has_ref & (ref_pos >= 0) & established[np.clip(ref_pos, 0, None)]
     has_init = new & ~ref_ok & children["initial_share"].notna().to_numpy()
     awaiting = new & ~ref_ok & ~has_init
@@ -132,30 +134,32 @@ def lifecycle_rules(children: pd.DataFrame, established: np.ndarray, settings: S
     scale = np.where(ref_ok, children["scale"].fillna(settings.reference_scale).to_numpy(float), np.nan)
     initial = np.where(has_init, children["initial_share"].to_numpy(float), np.nan)
 
-    # the rule in words; built as whole columns (one string per child)
-    ref_text = reference.fillna("").astype(str)
-    own = children["own_periods"].astype(str)
+    # the rule in words; built as whole columns, the new customers' texts on their rows only
+    new_rows = ref_ok | has_init | awaiting
+    ref_text = reference[new_rows].fillna("").astype(str)
+    own = children["own_periods"][new_rows].astype(str)
     history_text = own + " of " + str(n_min) + " periods of own history"
     no_ref = pd.Series(
         np.where(
-            has_ref & ~ref_ok,
+            (has_ref & ~ref_ok)[new_rows],
             "reference " + ref_text + " is not an established customer of this product x site; ",
             "",
         ),
-        index=children.index,
+        index=ref_text.index,
     )
     detail = pd.Series("share from history", index=children.index, dtype=object)
+    on_ref, on_init, on_awaiting = ref_ok[new_rows], has_init[new_rows], awaiting[new_rows]
     detail[ref_ok] = (
-        "new customer (" + history_text[ref_ok] + "): "
+        "new customer (" + history_text[on_ref] + "): "
         + pd.Series(scale, index=children.index)[ref_ok].map("{:g}".format)
-        + " x the share of reference " + ref_text[ref_ok] + ", taken from it"
+        + " x the share of reference " + ref_text[on_ref] + ", taken from it"
     )
     detail[has_init] = (
-        "new customer (" + history_text[has_init] + "): " + no_ref[has_init] + "initial share "
+        "new customer (" + history_text[on_init] + "): " + no_ref[on_init] + "initial share "
         + pd.Series(initial, index=children.index)[has_init].map("{:g}".format) + ", the others scaled by 1 - it"
     )
     detail[awaiting] = (
-        "new customer (" + history_text[awaiting] + "): " + no_ref[awaiting]
+        "new customer (" + history_text[on_awaiting] + "): " + no_ref[on_awaiting]
         + "no reference customer or initial share, so no share until " + str(n_min) + " periods of history"
     )
 

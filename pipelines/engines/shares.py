@@ -300,15 +300,16 @@ def child_frame(
     children = complete_children(children, settings, cycle_date)
     established = (children["own_periods"] >= settings.min_history_periods).to_numpy()
     parent_code, parents = factorize(children, PARENT)
+    leaf_of_child = rows.child_leaves(keys, children)
     return ChildFrame(
         children,
         established,
         lifecycle_rules(children, established, settings, cycle_date),
         parent_code,
         len(parents),
-        extend_ids(children, history, keys),
+        extend_ids(children, history, keys, leaf_of_child),
         rows,
-        rows.child_leaves(keys, children),
+        leaf_of_child,
     )
 
 
