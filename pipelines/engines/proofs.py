@@ -13,7 +13,7 @@ import pandas as pd
 from pipelines.calendar import period_ordinal, span_bounds
 from pipelines.checks import SHARE_TOLERANCE
 from pipelines.engines.history_proofs import accounted_lines
-from pipelines.keys import LEAF, PARENT, PARENT_ID, ids_in, key_rank, lookup, part_rows, rows_in
+from pipelines.keys import LEAF, PARENT, PARENT_ID, factorize, ids_in, key_rank, lookup, part_rows, rows_in
 from pipelines.text_codes import run_starts
 
 
@@ -179,7 +179,19 @@ def find_active_parents_without_children(
     in `statistical_forecast`; a parent with forecast rows but no child row
     fails too. Rows: the parent, its active spans, the children and parent
     periods found in the forecast, and why it fails.
+
+    The parents are first judged on integer codes of their keys; only the rows of those in doubt are judged again
+    below (every count is a count per parent, so theirs are those of the whole tables), and with none in doubt
+    none, which gives the same empty table.
     """
+    doubt = _parents_in_doubt(parent, leaf, spans, products, cycle_date, horizon, period)
+    if doubt is not None:
+        parent, leaf, spans = (frame[_of_parents(frame, doubt)] for frame in (parent, leaf, spans))
+    return _parents_without_children(parent, leaf, spans, products, cycle_date, horizon, period)
+
+
+def _active_spans(spans, products, cycle_date, horizon, period) -> np.ndarray:
+    """True on each span that, intersected with its product's span and the horizon, holds a period."""
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
     s_from, s_to = span_bounds(spans, period)
     p_from, p_to = span_bounds(products, period)
@@ -188,7 +200,37 @@ def find_active_parents_without_children(
     at = np.clip(pos, 0, None)
     first = np.fmax(np.fmax(s_from, np.where(known, p_from[at], np.nan)), cycle_ord)
     last = np.fmin(np.fmin(s_to, np.where(known, p_to[at], np.nan)), cycle_ord + horizon - 1)
-    active = known & (first <= last)
+    return known & (first <= last)
+
+
+def _parents_in_doubt(parent, leaf, spans, products, cycle_date, horizon, period) -> pd.DataFrame | None:
+    """The parent keys that may fail `find_active_parents_without_children`, judged on integer codes of the keys
+    (a parent active in the master data without forecast rows or children, or with rows and no children); None
+    where the keys hold a blank (then every row is judged)."""
+    kids = _distinct_leaves(leaf)
+    frames = [spans.loc[_active_spans(spans, products, cycle_date, horizon, period), PARENT],
+              kids.loc[kids["customer"].notna(), PARENT], parent[PARENT]]
+    keys = pd.concat(frames, ignore_index=True)
+    if keys.isna().to_numpy().any():
+        return None
+    code, uniques = factorize(keys, PARENT)
+    bounds = np.cumsum([0] + [len(f) for f in frames])
+    active, children, periods = (
+        np.bincount(code[bounds[i]:bounds[i + 1]], minlength=len(uniques)) > 0 for i in range(3)
+    )
+    return uniques[(active & ~periods) | (active & ~children) | (periods & ~children)]
+
+
+def _of_parents(frame: pd.DataFrame, parents: pd.DataFrame) -> np.ndarray:
+    """True on the rows of `frame` whose parent key is one of `parents`."""
+    if parents.empty:
+        return np.zeros(len(frame), dtype=bool)
+    return pd.MultiIndex.from_frame(frame[PARENT]).isin(pd.MultiIndex.from_frame(parents))
+
+
+def _parents_without_children(parent, leaf, spans, products, cycle_date, horizon, period) -> pd.DataFrame:
+    """`find_active_parents_without_children` judged on every row given."""
+    active = _active_spans(spans, products, cycle_date, horizon, period)
     expected = spans.loc[active].groupby(PARENT, sort=True).size().rename("active_spans")
     children = _distinct_leaves(leaf).groupby(PARENT, sort=True)["customer"].nunique().rename("children_in_forecast")
     periods = parent.groupby(PARENT, sort=True).size().rename("parent_periods")
