@@ -184,10 +184,13 @@ def find_active_parents_without_children(
     below (every count is a count per parent, so theirs are those of the whole tables), and with none in doubt
     none, which gives the same empty table.
     """
-    doubt = _parents_in_doubt(parent, leaf, spans, products, cycle_date, horizon, period)
+    active = _active_spans(spans, products, cycle_date, horizon, period)
+    doubt = _parents_in_doubt(parent, leaf, spans.loc[active, PARENT])
     if doubt is not None:
-        parent, leaf, spans = (frame[_of_parents(frame, doubt)] for frame in (parent, leaf, spans))
-    return _parents_without_children(parent, leaf, spans, products, cycle_date, horizon, period)
+        in_doubt = _of_parents(spans, doubt)
+        parent, leaf, spans, active = parent[_of_parents(parent, doubt)], leaf[_of_parents(leaf, doubt)], \
+            spans[in_doubt], active[in_doubt]
+    return _parents_without_children(parent, leaf, spans, active)
 
 
 def _active_spans(spans, products, cycle_date, horizon, period) -> np.ndarray:
@@ -203,13 +206,12 @@ def _active_spans(spans, products, cycle_date, horizon, period) -> np.ndarray:
     return known & (first <= last)
 
 
-def _parents_in_doubt(parent, leaf, spans, products, cycle_date, horizon, period) -> pd.DataFrame | None:
+def _parents_in_doubt(parent: pd.DataFrame, leaf: pd.DataFrame, active: pd.DataFrame) -> pd.DataFrame | None:
     """The parent keys that may fail `find_active_parents_without_children`, judged on integer codes of the keys
-    (a parent active in the master data without forecast rows or children, or with rows and no children); None
-    where the keys hold a blank (then every row is judged)."""
+    (a parent of an active span, `active`, without forecast rows or children, or with rows and no children);
+    None where the keys hold a blank (then every row is judged)."""
     kids = _distinct_leaves(leaf)
-    frames = [spans.loc[_active_spans(spans, products, cycle_date, horizon, period), PARENT],
-              kids.loc[kids["customer"].notna(), PARENT], parent[PARENT]]
+    frames = [active, kids.loc[kids["customer"].notna(), PARENT], parent[PARENT]]
     keys = pd.concat(frames, ignore_index=True)
     if keys.isna().to_numpy().any():
         return None
@@ -228,9 +230,8 @@ def _of_parents(frame: pd.DataFrame, parents: pd.DataFrame) -> np.ndarray:
     return pd.MultiIndex.from_frame(frame[PARENT]).isin(pd.MultiIndex.from_frame(parents))
 
 
-def _parents_without_children(parent, leaf, spans, products, cycle_date, horizon, period) -> pd.DataFrame:
-    """`find_active_parents_without_children` judged on every row given."""
-    active = _active_spans(spans, products, cycle_date, horizon, period)
+def _parents_without_children(parent, leaf, spans, active: np.ndarray) -> pd.DataFrame:
+    """`find_active_parents_without_children` judged on every row given (active: `_active_spans` of `spans`)."""
     expected = spans.loc[active].groupby(PARENT, sort=True).size().rename("active_spans")
     children = _distinct_leaves(leaf).groupby(PARENT, sort=True)["customer"].nunique().rename("children_in_forecast")
     periods = parent.groupby(PARENT, sort=True).size().rename("parent_periods")

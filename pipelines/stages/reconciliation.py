@@ -118,6 +118,8 @@ def find_incoherent(reconciliation: pd.DataFrame, tolerance: float = RELATIVE_TO
     no_parent = r["strategy_forecast"].isna().to_numpy()
     leaves_off = ~(r["relative_difference"].to_numpy() <= tolerance)
     parent_off = ~(np.abs(r["parent_forecast"].to_numpy() - r["expected"].to_numpy()) <= tolerance * floor)
+    rows = np.flatnonzero(no_parent | leaves_off | parent_off)  # the reasons written for the failing rows only
+    no_parent, leaves_off, parent_off, zeroed = no_parent[rows], leaves_off[rows], parent_off[rows], zeroed[rows]
     why = np.select(
         [no_parent, leaves_off & zeroed, leaves_off, parent_off],
         [
@@ -128,7 +130,7 @@ def find_incoherent(reconciliation: pd.DataFrame, tolerance: float = RELATIVE_TO
         ],
         "",
     )
-    return r[why != ""].assign(why=why[why != ""]).reset_index(drop=True)
+    return r.iloc[rows].assign(why=why).reset_index(drop=True)
 
 
 def run(
