@@ -29,7 +29,9 @@ def find_shares_not_summing_to_one(target: pd.DataFrame, tolerance: float = SHAR
     judged again below, on their own rows, so the rows named and their sums are those of the whole table.
     """
     if len(target) and ids_in(target, (PARENT_ID,)):
-        rows, position = _parent_periods_in_doubt(target, tolerance)
+        rows, position = _parent_periods_in_doubt(target, tolerance, by_id=True)  # none in doubt: no key order
+        if position is None:
+            rows, position = _parent_periods_in_doubt(target, tolerance)
         out = _shares_not_summing_to_one(target.iloc[rows], tolerance)
         out.index = position[out.index.to_numpy()]  # each parent period's row number among all of the table's
         return out
@@ -66,14 +68,19 @@ def _shares_not_summing_to_one(target: pd.DataFrame, tolerance: float) -> pd.Dat
     return sums[~(sums_to_one | zero_with_reason)].drop(columns=["nonzero"])
 
 
-def _parent_periods_in_doubt(target: pd.DataFrame, tolerance: float) -> tuple[np.ndarray, np.ndarray]:
+def _parent_periods_in_doubt(
+    target: pd.DataFrame, tolerance: float, by_id: bool = False
+) -> tuple[np.ndarray, np.ndarray | None]:
     """(positions of the rows of the parent periods that do not clearly pass `find_shares_not_summing_to_one`,
     the row number of each of those parent periods, in key order, among all the table's parent periods).
 
-    With none in doubt the rows of the first parent period are given, so the judgement below keeps its columns.
+    With none in doubt the rows of the first row's parent period are given, so the judgement below keeps its
+    columns. by_id: the groups numbered by parent id, not in key order (the same groups and sums), and with any
+    in doubt no row numbers (None): those need the key order.
     """
-    rank = key_rank(target, PARENT)  # the groups of the text parent key, in its order, as below
-    when, periods = pd.factorize(target["period_start"].to_numpy(), sort=True)
+    # the groups of the text parent key, in its order, as below (or by id)
+    rank = target[PARENT_ID].to_numpy(np.int64) if by_id else key_rank(target, PARENT)
+    when, periods = pd.factorize(target["period_start"].to_numpy(), sort=not by_id)
     key = rank * len(periods) + when  # (parent key, period) in key order
     present = np.zeros(int(key.max()) + 1, dtype=bool)
     present[key] = True
@@ -88,7 +95,7 @@ def _parent_periods_in_doubt(target: pd.DataFrame, tolerance: float) -> tuple[np
     doubt = ~(passes | zero)
     if not doubt.any():
         return np.flatnonzero(group == group[0]), np.zeros(1, np.int64)
-    return np.flatnonzero(doubt[group]), np.flatnonzero(doubt)
+    return np.flatnonzero(doubt[group]), None if by_id else np.flatnonzero(doubt)
 
 
 def find_volume_after_phase_out(

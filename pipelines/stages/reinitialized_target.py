@@ -51,7 +51,7 @@ from pipelines.engines.proofs import find_shares_not_summing_to_one
 from pipelines.engines.share_rows import shortage_periods
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.share_tuning import chosen_rules
-from pipelines.keys import LEAF, PARENT, PARENT_ID, coded, factorize, first_rows, ids_in, key_rank
+from pipelines.keys import LEAF, LEAF_ID, PARENT, PARENT_ID, coded, factorize, first_rows, ids_in, key_rank
 from pipelines.results import CheckRows, Log, StageResult, quiet
 
 TARGET_COLUMNS = LEAF + ["period_start", "cycle_date", "target", "share", "parent_baseline", "zero_reason", "basis"]
@@ -154,17 +154,19 @@ def parents_with_mix_change(target: pd.DataFrame, shares: pd.DataFrame, toleranc
             columns=PARENT + ["first_change", "periods_with_change", "phasing_in", "phasing_out", "zero_periods"]
         )
     # each leaf's share against its previous period, on integers: the rows in (leaf key, period) order
-    leaf, when = key_rank(target, LEAF), target["period_start"].to_numpy().view(np.int64)
-    step_leaf, step_when = np.diff(leaf), np.diff(when)
-    if bool(np.all((step_leaf > 0) | ((step_leaf == 0) & (step_when >= 0)))):
-        order = None
-    else:
-        order = np.lexsort((when, leaf))  # stable, as a sort by leaf then period
-        step_leaf = np.diff(leaf[order])
+    when = target["period_start"].to_numpy().view(np.int64)
+    same_leaf, order = _leaf_runs(target, when), None
+    if same_leaf is None:
+        leaf = key_rank(target, LEAF)
+        step_leaf, step_when = np.diff(leaf), np.diff(when)
+        if not bool(np.all((step_leaf > 0) | ((step_leaf == 0) & (step_when >= 0)))):
+            order = np.lexsort((when, leaf))  # stable, as a sort by leaf then period
+            step_leaf = np.diff(leaf[order])
+        same_leaf = step_leaf == 0
     share = target["share"].to_numpy(float)
     share = share if order is None else share[order]
     with np.errstate(invalid="ignore"):
-        changed = (step_leaf == 0) & (np.abs(share[1:] - share[:-1]) > tolerance)
+        changed = same_leaf & (np.abs(share[1:] - share[:-1]) > tolerance)
     rows = np.flatnonzero(changed) + 1
     rows = rows if order is None else order[rows]
     change = target.iloc[np.sort(rows)][PARENT + ["period_start"]].drop_duplicates()
@@ -174,11 +176,13 @@ def parents_with_mix_change(target: pd.DataFrame, shares: pd.DataFrame, toleranc
     if per_parent.empty:
         return per_parent.reset_index().assign(phasing_in="", phasing_out="", zero_periods=0)
     start, end = target["period_start"].min(), target["period_start"].max()
-    s = shares.set_index(PARENT)
 
-    def customers(mask: pd.Series) -> pd.Series:
-        rows = s[mask.to_numpy()]
-        return rows.groupby(level=PARENT)["customer"].agg(lambda c: ", ".join(sorted(c)))
+    def customers(mask: pd.Series) -> pd.Series:  # per parent key, its customers sorted and joined
+        rows = np.flatnonzero(mask.to_numpy())
+        named: dict[tuple, list] = {}
+        for key in zip(*(shares[c].to_numpy(object)[rows] for c in (*PARENT, "customer")), strict=True):
+            named.setdefault(key[:2], []).append(key[2])
+        return pd.Series({key: ", ".join(sorted(c)) for key, c in named.items()}, dtype=object)
 
     in_ = customers((shares["first_active_period"] > start) & (shares["lifecycle_rule"] != "awaiting_history"))
     out_ = customers(shares["last_active_period"] < end)
@@ -189,6 +193,19 @@ def parents_with_mix_change(target: pd.DataFrame, shares: pd.DataFrame, toleranc
     return per_parent.reset_index()
 
 
+def _leaf_runs(target: pd.DataFrame, when: np.ndarray) -> np.ndarray | None:
+    """Per step from a row to the next: both rows of one leaf, where the rows of each leaf are one run in period
+    order (as `reinitialize_target` writes them), told by the leaf ids; None otherwise (or without the ids)."""
+    if not ids_in(target, (LEAF_ID,)) or len(target) < 2:
+        return None
+    ids = target[LEAF_ID].to_numpy()
+    new = ids[1:] != ids[:-1]
+    heads = ids[np.r_[0, np.flatnonzero(new) + 1]]
+    if len(np.unique(heads)) < len(heads) or not bool(np.all((when[1:] >= when[:-1]) | new)):
+        return None
+    return ~new
+
+
 def first_parent_periods(target: pd.DataFrame, zero_only: bool = False) -> np.ndarray:
     """Positions of the first row of each parent (product, site) and period in `target`, ascending (the rows
     `drop_duplicates` keeps); zero_only: among the rows with a zero_reason only. Coded on integers."""
@@ -196,7 +213,8 @@ def first_parent_periods(target: pd.DataFrame, zero_only: bool = False) -> np.nd
     frame = target if rows is None else target.iloc[rows]
     if frame.empty:
         return np.zeros(0, np.int64)
-    parent, _ = factorize(frame, PARENT)
+    # one parent: one parent id, where the table carries them (the same groups as the text keys)
+    parent = frame[PARENT_ID].to_numpy(np.int64) if ids_in(frame, (PARENT_ID,)) else factorize(frame, PARENT)[0]
     when, periods = pd.factorize(frame["period_start"].to_numpy())
     first = np.flatnonzero(~pd.Series(parent * len(periods) + when).duplicated().to_numpy())
     return first if rows is None else rows[first]
