@@ -175,9 +175,11 @@ def lifecycle_rules(children: pd.DataFrame, established: np.ndarray, settings: S
 
 def reference_positions(shares: pd.DataFrame) -> np.ndarray:
     """Row of each `reference` row's reference customer in the same table (-1 elsewhere)."""
-    key = shares[PARENT].assign(customer=shares["reference_customer"].fillna("").to_numpy())
-    pos = lookup(key, LEAF, shares)
-    return np.where(shares["lifecycle_rule"].to_numpy() == "reference", pos, -1)
+    rows = np.flatnonzero(shares["lifecycle_rule"].to_numpy() == "reference")  # only theirs looked up
+    key = shares[PARENT].iloc[rows].assign(customer=shares["reference_customer"].fillna("").to_numpy()[rows])
+    pos = np.full(len(shares), -1, dtype=np.int64)
+    pos[rows] = lookup(key, LEAF, shares)
+    return pos
 
 
 def new_customers(shares: pd.DataFrame) -> pd.DataFrame:
