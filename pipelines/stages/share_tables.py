@@ -73,7 +73,7 @@ def run(
     cycle_date = pd.Timestamp(cycle["cycle_date"])
     keys = coded(lifecycle_history)  # the history's ids and keys, coded once for the children and the shares
     rows = history_rows(lifecycle_history, keys, settings.share, cycle_date)  # and its periods, once
-    children = active_children(customer_spans, products, lifecycle_history, settings.share, cycle_date, keys, rows.age)
+    children = active_children(customer_spans, products, lifecycle_history, settings.share, cycle_date, keys, rows)
     shares = compute_shares(lifecycle_history, children, settings.share, cycle_date, keys=keys, rows=rows)
     parents = shares.drop_duplicates(["product", "site"])
     used = parents[parents["fallback"] != "none"]
