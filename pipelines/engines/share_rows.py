@@ -22,9 +22,20 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import period_ordinal
+from pipelines.calendar import _EPOCH_MONDAY_NS, _WEEK_NS, period_ordinal
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.keys import LEAF, PARENT_ID, Coded, ids_in, lookup, row_ids
+
+
+def period_ages(starts: pd.Series, period: str, cycle_ord: int) -> np.ndarray:
+    """cycle_ord minus `period_ordinal` of each start (1 = the period before the cycle), computed in place: one
+    array of the history's length, not three."""
+    values = starts.to_numpy()
+    if period != "week" or values.dtype != "datetime64[ns]" or np.isnat(values).any():
+        return cycle_ord - period_ordinal(starts, period)
+    age = values.view(np.int64) - _EPOCH_MONDAY_NS  # period_ordinal's own floor division, in place
+    np.floor_divide(age, _WEEK_NS, out=age)
+    return np.subtract(cycle_ord, age, out=age)
 
 
 @dataclass(frozen=True)
@@ -62,8 +73,7 @@ def share_rows(
     """The history's `ShareRows` at the cycle ordinal; short: `shortage_periods(history, exclude_shortages)`."""
     leaf = keys.leaf
     n_leaves = len(keys.leaves)
-    age = period_ordinal(history["period_start"], period)
-    np.subtract(cycle_ord, age, out=age)
+    age = period_ages(history["period_start"], period, cycle_ord)
     counts = age >= 1
     if short is not None and short.any():
         counts &= ~short
@@ -117,6 +127,8 @@ def child_sums(rows: ShareRows, at: np.ndarray | None, window, leaf_of_child: np
     age, qty, counts, leaf = rows.age, rows.qty, rows.counts, rows.leaf
     if at is not None:
         age, qty, counts, leaf = age[at], qty[at], counts[at], leaf[at]
-    inside = counts & (age <= window)
-    per_leaf = np.append(np.bincount(leaf, weights=np.where(inside, qty, 0.0), minlength=rows.n_leaves), 0.0)
+    inside = np.less_equal(age, window)
+    inside &= counts
+    inside = np.flatnonzero(inside)  # the rows inside alone, in order: the same sums as adding 0.0 for the others
+    per_leaf = np.append(np.bincount(leaf[inside], weights=qty[inside], minlength=rows.n_leaves), 0.0)
     return per_leaf[leaf_of_child]  # -1, a child without history: the 0.0 appended

@@ -208,8 +208,8 @@ def _history_shares(
     for k, name in enumerate(settings.rules):
         class_of_child[classes == name] = k
     has_rows = leaf_of_child >= 0
-    window_of_class = np.array([settings.rule(name).window for name in settings.rules] + [0], dtype=np.int64)
-    window_of_leaf = np.zeros(rows.n_leaves, dtype=np.int64)  # 0: a leaf of no child, whose rows never count
+    window_of_class = np.array([settings.rule(name).window for name in settings.rules] + [0], dtype=np.int32)
+    window_of_leaf = np.zeros(rows.n_leaves, dtype=np.int32)  # 0: a leaf of no child, whose rows never count
     window_of_leaf[leaf_of_child[has_rows]] = window_of_class[class_of_child[has_rows]]
     configured = child_sums(rows, None, window_of_leaf[rows.leaf], leaf_of_child)
 
