@@ -140,9 +140,19 @@ class Coded:
     """
 
     def __init__(self, frame: pd.DataFrame):
-        self.leaf, self.parent = row_ids(frame)
+        if len(ids_in(frame)) == 2:  # the parent ids as stored: widened to int64 only when `parent` is read
+            self.leaf, self._parent = frame[LEAF_ID].to_numpy(np.int64), frame[PARENT_ID].to_numpy()
+        else:
+            self.leaf, self._parent = row_ids(frame)
         self.leaves = _keys_of_ids(frame, self.leaf, LEAF)
-        self.parents = _keys_of_ids(frame, self.parent, PARENT)
+        self.parents = _keys_of_ids(frame, self._parent, PARENT)
+
+    @property
+    def parent(self) -> np.ndarray:
+        """Each row's parent id, int64 (as `row_ids` gives it)."""
+        if self._parent.dtype != np.int64:
+            self._parent = self._parent.astype(np.int64)
+        return self._parent
 
     def leaf_rows(self, table: pd.DataFrame) -> np.ndarray:
         return lookup(self.leaves, LEAF, table)[self.leaf] if len(self.leaf) else np.zeros(0, np.int64)
