@@ -7,7 +7,7 @@ import math
 import numpy as np
 import pandas as pd
 
-from pipelines.text_codes import RUNS_SHARE, codes_of, run_starts
+from pipelines.text_codes import RUNS_SHARE, addresses, codes_of, run_starts
 
 LEAF = ["product", "site", "customer"]
 PARENT = ["product", "site"]
@@ -35,6 +35,16 @@ def factorize(df: pd.DataFrame, cols: list[str]) -> tuple[np.ndarray, pd.DataFra
     codes = pd.factorize(combined)[0].astype(np.int64)
     first = first_rows(codes)
     return codes, df[cols].iloc[first].reset_index(drop=True)
+
+
+def any_blank(column: pd.Series) -> bool:
+    """`column.isna().any()`, an object column judged at the starts of its runs of one cell object only (a run
+    holds one object: blank on every row or on none), as a leaf's keys repeat over its periods."""
+    values = column.to_numpy()
+    if values.dtype != object or len(values) < 1024:
+        return bool(column.isna().any())
+    where = addresses(values)
+    return bool(pd.isna(values[np.flatnonzero(np.r_[True, where[1:] != where[:-1]])]).any())
 
 
 def first_rows(codes: np.ndarray) -> np.ndarray:

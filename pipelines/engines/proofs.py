@@ -13,7 +13,7 @@ import pandas as pd
 from pipelines.calendar import period_ordinal, span_bounds
 from pipelines.checks import SHARE_TOLERANCE
 from pipelines.engines.history_proofs import accounted_lines
-from pipelines.keys import LEAF, PARENT, PARENT_ID, factorize, ids_in, key_rank, lookup, part_rows, rows_in
+from pipelines.keys import LEAF, PARENT, PARENT_ID, any_blank, factorize, ids_in, key_rank, lookup, part_rows, rows_in
 from pipelines.text_codes import run_starts
 
 
@@ -220,7 +220,7 @@ def _parents_in_doubt(parent: pd.DataFrame, leaf: pd.DataFrame, active: pd.DataF
     kids = _distinct_leaves(leaf)
     frames = [active, kids.loc[kids["customer"].notna(), PARENT], parent[PARENT]]
     keys = pd.concat(frames, ignore_index=True)
-    if keys.isna().to_numpy().any():
+    if any(any_blank(keys[c]) for c in PARENT):
         return None
     code, uniques = factorize(keys, PARENT)
     bounds = np.cumsum([0] + [len(f) for f in frames])
