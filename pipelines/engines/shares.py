@@ -246,7 +246,7 @@ def _history_shares(
                 with_rows = members[has_rows[members]]
                 member_of_leaf[leaf_of_child[with_rows]] = member_of[with_rows]
                 at = rows.rows_of((member_of_leaf >= 0) & open_leaf)
-                at = at[rows.counts[at]]
+                at = at[rows.counts[at] & (rows.age[at] <= w)]  # inside the window: the rows it sums
                 args = (rows.age[at], rows.qty[at], member_of_leaf[rows.leaf[at]], parent_code[members], n_parents, w)
                 s = np.zeros(n)
                 by_ratio = pc.method == "mean_of_ratios"
