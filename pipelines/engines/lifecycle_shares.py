@@ -80,15 +80,17 @@ def split_shares(
     is_init = rule == "initial_share"
     base = np.asarray(history_share, dtype=float)
     p = np.where(new[:, None], 0.0, base if base.ndim == 2 else base[:, None])  # (n, T) or (n, 1)
-    ref = np.where(is_ref, ref_pos, 0)
-    k = np.where(is_ref, scale, 0.0)
+    r = np.flatnonzero(is_ref)  # the few new customers with a reference: their rows only
+    ref, k = ref_pos[r], scale[r]
     # what the active new customers ask of each reference, as a multiple of its share
     asked = np.zeros((n, t))
-    np.add.at(asked, ref[is_ref], k[is_ref, None] * act[is_ref])
-    cut = np.where(asked > 1.0, 1.0 / np.where(asked > 1.0, asked, 1.0), 1.0)
-    take = np.where(is_ref[:, None], k[:, None] * p[ref] * cut[ref] * act, 0.0)
+    np.add.at(asked, ref, k[:, None] * act[r])
+    at_ref = asked[ref]
+    cut = np.where(at_ref > 1.0, 1.0 / np.where(at_ref > 1.0, at_ref, 1.0), 1.0)
+    take = np.zeros((n, t))
+    take[r] = k[:, None] * p[ref] * cut * act[r]
     given = np.zeros((n, t))
-    np.add.at(given, ref[is_ref], take[is_ref])
+    np.add.at(given, ref, take[r])
     weight = np.clip(p - given, 0.0, None) * act * (~new)[:, None] + take
     s_init = np.where(is_init[:, None], np.nan_to_num(initial_share)[:, None] * act, 0.0)
 
