@@ -300,8 +300,9 @@ def coherent(
     """
     n_parents = parent_fc.shape[0]
     if active is not None:
-        leaf_fc = np.where(active, leaf_fc, 0.0)
         basis = np.where(active, basis, 0.0)
+        if strategy != "top_down":  # the one strategy that reads no leaf forecast
+            leaf_fc = np.where(active, leaf_fc, 0.0)
     none_moved = np.zeros(parent_fc.shape)
     if strategy == "top_down":
         leaf, _ = split_by_basis(parent_fc, basis, parent_of_child)
