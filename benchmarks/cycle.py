@@ -93,7 +93,7 @@ from cycle_measure import (  # noqa: E402
 )
 from cycle_scenario import CLASSES, Scenario  # noqa: E402
 from scenario_cache import scenario_maker  # noqa: E402
-from side_by_side import compare  # noqa: E402
+from side_by_side import compare, patch_split  # noqa: E402
 
 from assets.factory import Partition, graph_order  # noqa: E402
 from pipelines import definitions  # noqa: E402, F401  (makes every stage asset, so SPECS holds them all)
@@ -131,6 +131,7 @@ def run_cycle(args: argparse.Namespace) -> dict:
         tracemalloc.start()
     bench = Bench(trace=args.trace, sample_ms=args.rss_sample_ms)
     patch_statsforecast(bench)
+    split = patch_split()  # the forecast stage's split, counted in the side by side
     config = make_config(args.periods, args.horizon, args.seasonal, args.leaf_grain, args.shortage_rule,
                          seasonal_model=args.seasonal_model, class_outliers=not args.default_outliers,
                          share_method=args.share_method, n_jobs=args.n_jobs)
@@ -185,7 +186,7 @@ def run_cycle(args: argparse.Namespace) -> dict:
             tables[table.name] = validate(bench, args, table.name, frame)
             store(bench, con, table.name, tables[table.name])
     scen.facts["raw_lines"] = len(tables["raw_history"])
-    compared = compare(bench.steps, args, tables, config) if "reconcile" in todo else {}
+    compared = compare(bench.steps, args, tables, config, split) if "reconcile" in todo else {}
     out = finish(bench, args, scen, compared)
     tmp.cleanup()
     return out

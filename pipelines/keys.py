@@ -7,7 +7,7 @@ import math
 import numpy as np
 import pandas as pd
 
-from pipelines.text_codes import RUNS_SHARE, codes_of, run_starts
+from pipelines.text_codes import RUNS_SHARE, addresses, codes_of, run_starts
 
 LEAF = ["product", "site", "customer"]
 PARENT = ["product", "site"]
@@ -35,6 +35,16 @@ def factorize(df: pd.DataFrame, cols: list[str]) -> tuple[np.ndarray, pd.DataFra
     codes = pd.factorize(combined)[0].astype(np.int64)
     first = first_rows(codes)
     return codes, df[cols].iloc[first].reset_index(drop=True)
+
+
+def any_blank(column: pd.Series) -> bool:
+    """`column.isna().any()`, an object column judged at the starts of its runs of one cell object only (a run
+    holds one object: blank on every row or on none), as a leaf's keys repeat over its periods."""
+    values = column.to_numpy()
+    if values.dtype != object or len(values) < 1024:
+        return bool(column.isna().any())
+    where = addresses(values)
+    return bool(pd.isna(values[np.flatnonzero(np.r_[True, where[1:] != where[:-1]])]).any())
 
 
 def first_rows(codes: np.ndarray) -> np.ndarray:
@@ -109,15 +119,16 @@ def _ranks(leaves: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
 
 
 def extend_ids(
-    children: pd.DataFrame, history: pd.DataFrame, keys: Coded | None = None
+    children: pd.DataFrame, history: pd.DataFrame, keys: Coded | None = None, leaf: np.ndarray | None = None
 ) -> tuple[np.ndarray, np.ndarray]:
     """(leaf_id, parent_id) of each row of `children` (leaf keys): the history's ids where its leaf or parent
     has history, else new ids after the history's, in key order (a new customer, a parent with no history).
 
-    The share table carries them; the stages after it read its ids. keys: `coded(history)`, when the caller has it.
+    The share table carries them; the stages after it read its ids. keys: `coded(history)`, leaf: each child's
+    row in `keys.leaves` (-1: none), when the caller has them.
     """
     c = keys if keys is not None else coded(history)
-    leaf = lookup(children, LEAF, c.leaves)
+    leaf = lookup(children, LEAF, c.leaves) if leaf is None else np.array(leaf, dtype=np.int64)
     parent = lookup(children, PARENT, c.parents)
     for ids, cols, base in ((leaf, LEAF, len(c.leaves)), (parent, PARENT, len(c.parents))):
         new = np.flatnonzero(ids < 0)
@@ -139,9 +150,19 @@ class Coded:
     """
 
     def __init__(self, frame: pd.DataFrame):
-        self.leaf, self.parent = row_ids(frame)
+        if len(ids_in(frame)) == 2:  # the parent ids as stored: widened to int64 only when `parent` is read
+            self.leaf, self._parent = frame[LEAF_ID].to_numpy(np.int64), frame[PARENT_ID].to_numpy()
+        else:
+            self.leaf, self._parent = row_ids(frame)
         self.leaves = _keys_of_ids(frame, self.leaf, LEAF)
-        self.parents = _keys_of_ids(frame, self.parent, PARENT)
+        self.parents = _keys_of_ids(frame, self._parent, PARENT)
+
+    @property
+    def parent(self) -> np.ndarray:
+        """Each row's parent id, int64 (as `row_ids` gives it)."""
+        if self._parent.dtype != np.int64:
+            self._parent = self._parent.astype(np.int64)
+        return self._parent
 
     def leaf_rows(self, table: pd.DataFrame) -> np.ndarray:
         return lookup(self.leaves, LEAF, table)[self.leaf] if len(self.leaf) else np.zeros(0, np.int64)

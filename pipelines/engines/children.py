@@ -6,6 +6,7 @@ import numpy as np
 import pandas as pd
 
 from pipelines.calendar import ordinal_to_start, period_ordinal, span_bounds
+from pipelines.engines.share_rows import ShareRows
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.keys import LEAF, Coded, coded, lookup
 
@@ -17,6 +18,7 @@ def active_children(
     settings: ShareSettings,
     cycle_date: pd.Timestamp,
     keys: Coded | None = None,
+    rows: ShareRows | None = None,
 ) -> pd.DataFrame:
     """The children that can receive a share: customer spans active in any period of the horizon.
 
@@ -28,7 +30,8 @@ def active_children(
     history: lifecycle history, to count each child's own distinct periods
     (a period with an own row and a mapped successor row is one period).
     Columns: leaf keys, product_class, first_active_period, last_active_period,
-    own_periods, reference_customer, scale, initial_share. keys: `coded(history)`, when the caller has it.
+    own_periods, reference_customer, scale, initial_share. keys: `coded(history)`, rows: its `share_rows`,
+    when the caller has them.
     """
     settings = ShareSettings.of(settings)
     period = settings.period
@@ -47,7 +50,7 @@ def active_children(
     out["product_class"] = out["product"].map(products.set_index("product")["product_class"]).to_numpy()
     out["first_active_period"] = ordinal_to_start(first[ok].astype(np.int64), period)
     out["last_active_period"] = ordinal_to_start(last[ok].astype(np.int64), period)
-    out["own_periods"] = own_periods(history, out, period, keys)
+    out["own_periods"] = own_periods(history, out, period, keys, rows)
     for column in ("reference_customer", "scale", "initial_share"):
         values = spans[column] if column in spans.columns else pd.Series(np.nan, index=spans.index)
         out[column] = values[ok].to_numpy()
@@ -56,16 +59,30 @@ def active_children(
     return out
 
 
-def own_periods(history: pd.DataFrame, children: pd.DataFrame, period: str, keys: Coded | None = None) -> np.ndarray:
+def own_periods(
+    history: pd.DataFrame, children: pd.DataFrame, period: str, keys: Coded | None = None, rows: ShareRows | None = None
+) -> np.ndarray:
     """Distinct periods of history of each child (0 without any), counted on integer codes.
 
     A history sorted by leaf id and period (as the lifecycle stage writes it) is counted by its runs; any
-    other order through a leaf x period grid.
+    other order through a leaf x period grid. rows: the history's `share_rows` (each row's age before the cycle
+    date: a period is one age; each leaf's first row where sorted by leaf id), when the caller has them.
     """
     if history.empty:
         return np.zeros(len(children), dtype=np.int64)
     c = keys if keys is not None else coded(history)
     code, leaves = c.leaf, c.leaves
+    if rows is not None and rows.first is not None:  # sorted by leaf id: each leaf's rows from its first
+        age, first = rows.age, rows.first
+        held = np.flatnonzero(first[:-1] < first[1:])
+        head = np.zeros(len(age), dtype=bool)
+        head[first[held]] = True
+        if bool(np.all((age[1:] <= age[:-1]) | head[1:])):  # in period order within each leaf
+            head[1:] |= age[1:] != age[:-1]
+            count = np.zeros(len(leaves), dtype=np.int64)
+            count[held] = np.add.reduceat(head, first[held], dtype=np.int64)
+            pos = lookup(children, LEAF, leaves)
+            return np.where(pos >= 0, count[np.clip(pos, 0, None)], 0).astype(np.int64)
     ords = period_ordinal(history["period_start"], period)
     step_leaf, step_ord = np.diff(code), np.diff(ords)
     if bool(np.all((step_leaf > 0) | ((step_leaf == 0) & (step_ord >= 0)))):

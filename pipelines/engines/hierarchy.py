@@ -64,6 +64,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from pipelines.vocabulary import label_array
+
 MINT_RIDGE = 2e-8  # added to W's diagonal, as hierarchicalforecast's mint_shr_ridge and wls_var do
 RECONCILE_METHODS = ("mint_shrink", "wls_var", "wls_struct", "ols")
 
@@ -298,25 +300,26 @@ def coherent(
     """
     n_parents = parent_fc.shape[0]
     if active is not None:
-        leaf_fc = np.where(active, leaf_fc, 0.0)
         basis = np.where(active, basis, 0.0)
+        if strategy != "top_down":  # the one strategy that reads no leaf forecast
+            leaf_fc = np.where(active, leaf_fc, 0.0)
     none_moved = np.zeros(parent_fc.shape)
     if strategy == "top_down":
         leaf, _ = split_by_basis(parent_fc, basis, parent_of_child)
-        return Coherent(parent_fc.copy(), leaf, np.full(leaf.shape, "basis", dtype=object), 0, none_moved)
+        return Coherent(parent_fc.copy(), leaf, label_array(leaf.shape, "basis"), 0, none_moved)
     if strategy == "forecast_proportions":
         leaf, fell_back = split_by_basis(parent_fc, leaf_fc, parent_of_child, fallback=basis)
         source = np.where(fell_back, "basis", "children_forecast").astype(object)
         return Coherent(parent_fc.copy(), leaf, source, 0, none_moved)
     if strategy == "bottom_up":
-        source = np.full(leaf_fc.shape, "leaf_forecast", dtype=object)
+        source = label_array(leaf_fc.shape, "leaf_forecast")
         return Coherent(parent_sums(leaf_fc, parent_of_child, n_parents), leaf_fc.copy(), source, 0, none_moved)
     if strategy in NEEDS_RESIDUALS:
         parent, leaf = mint_reconcile(
             parent_fc, leaf_fc, parent_of_child, strategy, parent_residuals, leaf_residuals, active
         )
         leaf, moved, negatives = nonnegative_keeping_parent(parent, leaf, parent_of_child, basis)
-        return Coherent(parent, leaf, np.full(leaf.shape, "reconciled", dtype=object), negatives, moved)
+        return Coherent(parent, leaf, label_array(leaf.shape, "reconciled"), negatives, moved)
     raise ValueError(f"unknown strategy {strategy!r}; choose from {list(dict.fromkeys(NEEDS_PARENT + NEEDS_LEAF))}")
 
 

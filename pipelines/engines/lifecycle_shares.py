@@ -80,15 +80,17 @@ def split_shares(
     is_init = rule == "initial_share"
     base = np.asarray(history_share, dtype=float)
     p = np.where(new[:, None], 0.0, base if base.ndim == 2 else base[:, None])  # (n, T) or (n, 1)
-    ref = np.where(is_ref, ref_pos, 0)
-    k = np.where(is_ref, scale, 0.0)
+    r = np.flatnonzero(is_ref)  # the few new customers with a reference: their rows only
+    ref, k = ref_pos[r], scale[r]
     # what the active new customers ask of each reference, as a multiple of its share
     asked = np.zeros((n, t))
-    np.add.at(asked, ref[is_ref], k[is_ref, None] * act[is_ref])
-    cut = np.where(asked > 1.0, 1.0 / np.where(asked > 1.0, asked, 1.0), 1.0)
-    take = np.where(is_ref[:, None], k[:, None] * p[ref] * cut[ref] * act, 0.0)
+    np.add.at(asked, ref, k[:, None] * act[r])
+    at_ref = asked[ref]
+    cut = np.where(at_ref > 1.0, 1.0 / np.where(at_ref > 1.0, at_ref, 1.0), 1.0)
+    take = np.zeros((n, t))
+    take[r] = k[:, None] * p[ref] * cut * act[r]
     given = np.zeros((n, t))
-    np.add.at(given, ref[is_ref], take[is_ref])
+    np.add.at(given, ref, take[r])
     weight = np.clip(p - given, 0.0, None) * act * (~new)[:, None] + take
     s_init = np.where(is_init[:, None], np.nan_to_num(initial_share)[:, None] * act, 0.0)
 
@@ -116,8 +118,10 @@ def lifecycle_rules(children: pd.DataFrame, established: np.ndarray, settings: S
     new = ~established
     reference = children["reference_customer"]
     has_ref = new & reference.notna().to_numpy()
-    ref_key = children[PARENT].assign(customer=reference.fillna("").to_numpy())
-    ref_pos = lookup(ref_key, LEAF, children)
+    asks = np.flatnonzero(has_ref)  # only a new customer's reference is looked up (-1 elsewhere)
+    ref_pos = np.full(len(children), -1, dtype=np.int64)
+    ref_key = children[PARENT].iloc[asks].assign(customer=reference.to_numpy()[asks])
+    ref_pos[asks] = lookup(ref_key, LEAF, children)
     ref_ok = has_ref & (ref_pos >= 0) & established[np.clip(ref_pos, 0, None)]
     has_init = new & ~ref_ok & children["initial_share"].notna().to_numpy()
     awaiting = new & ~ref_ok & ~has_init
@@ -132,30 +136,32 @@ def lifecycle_rules(children: pd.DataFrame, established: np.ndarray, settings: S
     scale = np.where(ref_ok, children["scale"].fillna(settings.reference_scale).to_numpy(float), np.nan)
     initial = np.where(has_init, children["initial_share"].to_numpy(float), np.nan)
 
-    # the rule in words; built as whole columns (one string per child)
-    ref_text = reference.fillna("").astype(str)
-    own = children["own_periods"].astype(str)
+    # the rule in words; built as whole columns, the new customers' texts on their rows only
+    new_rows = ref_ok | has_init | awaiting
+    ref_text = reference[new_rows].fillna("").astype(str)
+    own = children["own_periods"][new_rows].astype(str)
     history_text = own + " of " + str(n_min) + " periods of own history"
     no_ref = pd.Series(
         np.where(
-            has_ref & ~ref_ok,
+            (has_ref & ~ref_ok)[new_rows],
             "reference " + ref_text + " is not an established customer of this product x site; ",
             "",
         ),
-        index=children.index,
+        index=ref_text.index,
     )
     detail = pd.Series("share from history", index=children.index, dtype=object)
+    on_ref, on_init, on_awaiting = ref_ok[new_rows], has_init[new_rows], awaiting[new_rows]
     detail[ref_ok] = (
-        "new customer (" + history_text[ref_ok] + "): "
+        "new customer (" + history_text[on_ref] + "): "
         + pd.Series(scale, index=children.index)[ref_ok].map("{:g}".format)
-        + " x the share of reference " + ref_text[ref_ok] + ", taken from it"
+        + " x the share of reference " + ref_text[on_ref] + ", taken from it"
     )
     detail[has_init] = (
-        "new customer (" + history_text[has_init] + "): " + no_ref[has_init] + "initial share "
+        "new customer (" + history_text[on_init] + "): " + no_ref[on_init] + "initial share "
         + pd.Series(initial, index=children.index)[has_init].map("{:g}".format) + ", the others scaled by 1 - it"
     )
     detail[awaiting] = (
-        "new customer (" + history_text[awaiting] + "): " + no_ref[awaiting]
+        "new customer (" + history_text[on_awaiting] + "): " + no_ref[on_awaiting]
         + "no reference customer or initial share, so no share until " + str(n_min) + " periods of history"
     )
 
@@ -171,9 +177,11 @@ def lifecycle_rules(children: pd.DataFrame, established: np.ndarray, settings: S
 
 def reference_positions(shares: pd.DataFrame) -> np.ndarray:
     """Row of each `reference` row's reference customer in the same table (-1 elsewhere)."""
-    key = shares[PARENT].assign(customer=shares["reference_customer"].fillna("").to_numpy())
-    pos = lookup(key, LEAF, shares)
-    return np.where(shares["lifecycle_rule"].to_numpy() == "reference", pos, -1)
+    rows = np.flatnonzero(shares["lifecycle_rule"].to_numpy() == "reference")  # only theirs looked up
+    key = shares[PARENT].iloc[rows].assign(customer=shares["reference_customer"].fillna("").to_numpy()[rows])
+    pos = np.full(len(shares), -1, dtype=np.int64)
+    pos[rows] = lookup(key, LEAF, shares)
+    return pos
 
 
 def new_customers(shares: pd.DataFrame) -> pd.DataFrame:

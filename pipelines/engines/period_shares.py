@@ -43,10 +43,17 @@ from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal,
 from pipelines.engines.base_forecasts import base_forecasts
 from pipelines.engines.lifecycle_shares import reference_positions, split_shares
 from pipelines.engines.models import SeriesGrid, series_grid
+from pipelines.engines.share_rows import shortage_periods
 from pipelines.engines.share_settings import ShareSettings
-from pipelines.engines.shares import shortage_periods
 from pipelines.keys import LEAF, PARENT, coded, factorize, lookup
-from pipelines.vocabulary import BASIS_OF_METHOD, NEW_CUSTOMER_RULES, PER_PERIOD_METHODS, Basis, ShareMethod
+from pipelines.vocabulary import (
+    BASIS_OF_METHOD,
+    NEW_CUSTOMER_RULES,
+    PER_PERIOD_METHODS,
+    Basis,
+    ShareMethod,
+    label_array,
+)
 
 # the `share_basis` (pipelines.schemas.SHARE_BASES) of a parent period where a per-period method has a basis
 
@@ -173,7 +180,7 @@ def period_basis(
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
     history_share = shares["history_share"].to_numpy(float)
     parent_code, parents = factorize(shares, PARENT)
-    label = np.full((len(parents), h), "history_share", dtype=object)
+    label = label_array((len(parents), h), "history_share")
     methods = shares["method"].to_numpy(object)
     if not np.isin(methods, PER_PERIOD_METHODS).any():
         return history_share, label[parent_code]
@@ -309,7 +316,7 @@ def stored_basis(shares: pd.DataFrame, table: pd.DataFrame, starts: pd.DatetimeI
     row the weight is that one share per child.
     """
     history_share = shares["history_share"].to_numpy(float)
-    label = np.full((len(shares), len(starts)), str(Basis.HISTORY_SHARE), dtype=object)
+    label = label_array((len(shares), len(starts)), str(Basis.HISTORY_SHARE))
     if table.empty:
         return history_share, label
     weight = np.repeat(history_share[:, None], len(starts), axis=1)

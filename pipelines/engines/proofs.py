@@ -13,7 +13,7 @@ import pandas as pd
 from pipelines.calendar import period_ordinal, span_bounds
 from pipelines.checks import SHARE_TOLERANCE
 from pipelines.engines.history_proofs import accounted_lines
-from pipelines.keys import LEAF, PARENT, PARENT_ID, ids_in, key_rank, lookup, part_rows, rows_in
+from pipelines.keys import LEAF, PARENT, PARENT_ID, any_blank, factorize, ids_in, key_rank, lookup, part_rows, rows_in
 from pipelines.text_codes import run_starts
 
 
@@ -29,7 +29,9 @@ def find_shares_not_summing_to_one(target: pd.DataFrame, tolerance: float = SHAR
     judged again below, on their own rows, so the rows named and their sums are those of the whole table.
     """
     if len(target) and ids_in(target, (PARENT_ID,)):
-        rows, position = _parent_periods_in_doubt(target, tolerance)
+        rows, position = _parent_periods_in_doubt(target, tolerance, by_id=True)  # none in doubt: no key order
+        if position is None:
+            rows, position = _parent_periods_in_doubt(target, tolerance)
         out = _shares_not_summing_to_one(target.iloc[rows], tolerance)
         out.index = position[out.index.to_numpy()]  # each parent period's row number among all of the table's
         return out
@@ -66,14 +68,19 @@ def _shares_not_summing_to_one(target: pd.DataFrame, tolerance: float) -> pd.Dat
     return sums[~(sums_to_one | zero_with_reason)].drop(columns=["nonzero"])
 
 
-def _parent_periods_in_doubt(target: pd.DataFrame, tolerance: float) -> tuple[np.ndarray, np.ndarray]:
+def _parent_periods_in_doubt(
+    target: pd.DataFrame, tolerance: float, by_id: bool = False
+) -> tuple[np.ndarray, np.ndarray | None]:
     """(positions of the rows of the parent periods that do not clearly pass `find_shares_not_summing_to_one`,
     the row number of each of those parent periods, in key order, among all the table's parent periods).
 
-    With none in doubt the rows of the first parent period are given, so the judgement below keeps its columns.
+    With none in doubt the rows of the first row's parent period are given, so the judgement below keeps its
+    columns. by_id: the groups numbered by parent id, not in key order (the same groups and sums), and with any
+    in doubt no row numbers (None): those need the key order.
     """
-    rank = key_rank(target, PARENT)  # the groups of the text parent key, in its order, as below
-    when, periods = pd.factorize(target["period_start"].to_numpy(), sort=True)
+    # the groups of the text parent key, in its order, as below (or by id)
+    rank = target[PARENT_ID].to_numpy(np.int64) if by_id else key_rank(target, PARENT)
+    when, periods = pd.factorize(target["period_start"].to_numpy(), sort=not by_id)
     key = rank * len(periods) + when  # (parent key, period) in key order
     present = np.zeros(int(key.max()) + 1, dtype=bool)
     present[key] = True
@@ -88,7 +95,7 @@ def _parent_periods_in_doubt(target: pd.DataFrame, tolerance: float) -> tuple[np
     doubt = ~(passes | zero)
     if not doubt.any():
         return np.flatnonzero(group == group[0]), np.zeros(1, np.int64)
-    return np.flatnonzero(doubt[group]), np.flatnonzero(doubt)
+    return np.flatnonzero(doubt[group]), None if by_id else np.flatnonzero(doubt)
 
 
 def find_volume_after_phase_out(
@@ -179,7 +186,22 @@ def find_active_parents_without_children(
     in `statistical_forecast`; a parent with forecast rows but no child row
     fails too. Rows: the parent, its active spans, the children and parent
     periods found in the forecast, and why it fails.
+
+    The parents are first judged on integer codes of their keys; only the rows of those in doubt are judged again
+    below (every count is a count per parent, so theirs are those of the whole tables), and with none in doubt
+    none, which gives the same empty table.
     """
+    active = _active_spans(spans, products, cycle_date, horizon, period)
+    doubt = _parents_in_doubt(parent, leaf, spans.loc[active, PARENT])
+    if doubt is not None:
+        in_doubt = _of_parents(spans, doubt)
+        parent, leaf, spans, active = parent[_of_parents(parent, doubt)], leaf[_of_parents(leaf, doubt)], \
+            spans[in_doubt], active[in_doubt]
+    return _parents_without_children(parent, leaf, spans, active)
+
+
+def _active_spans(spans, products, cycle_date, horizon, period) -> np.ndarray:
+    """True on each span that, intersected with its product's span and the horizon, holds a period."""
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
     s_from, s_to = span_bounds(spans, period)
     p_from, p_to = span_bounds(products, period)
@@ -188,7 +210,35 @@ def find_active_parents_without_children(
     at = np.clip(pos, 0, None)
     first = np.fmax(np.fmax(s_from, np.where(known, p_from[at], np.nan)), cycle_ord)
     last = np.fmin(np.fmin(s_to, np.where(known, p_to[at], np.nan)), cycle_ord + horizon - 1)
-    active = known & (first <= last)
+    return known & (first <= last)
+
+
+def _parents_in_doubt(parent: pd.DataFrame, leaf: pd.DataFrame, active: pd.DataFrame) -> pd.DataFrame | None:
+    """The parent keys that may fail `find_active_parents_without_children`, judged on integer codes of the keys
+    (a parent of an active span, `active`, without forecast rows or children, or with rows and no children);
+    None where the keys hold a blank (then every row is judged)."""
+    kids = _distinct_leaves(leaf)
+    frames = [active, kids.loc[kids["customer"].notna(), PARENT], parent[PARENT]]
+    keys = pd.concat(frames, ignore_index=True)
+    if any(any_blank(keys[c]) for c in PARENT):
+        return None
+    code, uniques = factorize(keys, PARENT)
+    bounds = np.cumsum([0] + [len(f) for f in frames])
+    active, children, periods = (
+        np.bincount(code[bounds[i]:bounds[i + 1]], minlength=len(uniques)) > 0 for i in range(3)
+    )
+    return uniques[(active & ~periods) | (active & ~children) | (periods & ~children)]
+
+
+def _of_parents(frame: pd.DataFrame, parents: pd.DataFrame) -> np.ndarray:
+    """True on the rows of `frame` whose parent key is one of `parents`."""
+    if parents.empty:
+        return np.zeros(len(frame), dtype=bool)
+    return pd.MultiIndex.from_frame(frame[PARENT]).isin(pd.MultiIndex.from_frame(parents))
+
+
+def _parents_without_children(parent, leaf, spans, active: np.ndarray) -> pd.DataFrame:
+    """`find_active_parents_without_children` judged on every row given (active: `_active_spans` of `spans`)."""
     expected = spans.loc[active].groupby(PARENT, sort=True).size().rename("active_spans")
     children = _distinct_leaves(leaf).groupby(PARENT, sort=True)["customer"].nunique().rename("children_in_forecast")
     periods = parent.groupby(PARENT, sort=True).size().rename("parent_periods")

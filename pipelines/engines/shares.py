@@ -57,8 +57,9 @@ import pandas as pd
 
 from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal
 from pipelines.engines.lifecycle_shares import lifecycle_rules, split_shares
+from pipelines.engines.share_rows import ShareRows, child_sums, history_rows
 from pipelines.engines.share_settings import ShareSettings
-from pipelines.keys import LEAF, LEAF_ID, PARENT, PARENT_ID, Coded, coded, extend_ids, factorize, ids_in, row_ids
+from pipelines.keys import LEAF, LEAF_ID, PARENT, PARENT_ID, Coded, coded, extend_ids, factorize
 
 SHARE_COLUMNS = LEAF + [
     "cycle_date",
@@ -163,37 +164,6 @@ def smoothed_proportions(
     return p
 
 
-def shortage_periods(history: pd.DataFrame, exclude: bool) -> np.ndarray:
-    """True on every history row whose parent x period has a recorded shortage on any row.
-
-    Only with `exclude` (`cleansing.shortages: exclude`): these rows count neither toward
-    shares nor toward the parent baseline. Under `fill_baseline` the cleansing
-    stage has already replaced their values, so they count like any other row.
-    A history without a `shortage` column has none.
-    """
-    if not exclude or "shortage" not in history.columns or history.empty:
-        return np.zeros(len(history), dtype=bool)
-    flag = history["shortage"].to_numpy(bool)
-    if not flag.any():
-        return flag
-    parent = history[PARENT_ID].to_numpy() if ids_in(history, (PARENT_ID,)) else row_ids(history)[1]
-    flagged_parent = np.zeros(int(parent.max()) + 1, dtype=bool)
-    flagged_parent[parent[flag]] = True
-    rows = np.flatnonzero(flagged_parent[parent])  # only the rows of parents with a shortage can have one
-    # parent x period on integers: parent id x the period's slot among the days
-    day = history["period_start"].to_numpy()[rows].astype("datetime64[D]").view(np.int64)
-    day = day - day.min()
-    present = np.zeros(int(day.max()) + 1, dtype=bool)
-    present[day] = True
-    slot = np.cumsum(present) - 1
-    code = parent[rows].astype(np.int64) * int(slot[-1] + 1) + slot[day]
-    short = np.zeros(int(code.max()) + 1, dtype=bool)
-    short[code[flag[rows]]] = True
-    out = np.zeros(len(history), dtype=bool)
-    out[rows] = short[code]
-    return out
-
-
 def complete_children(children: pd.DataFrame, settings: ShareSettings, cycle_date: pd.Timestamp) -> pd.DataFrame:
     """`children` with every lifecycle column, defaults filled in for the absent ones.
 
@@ -222,39 +192,26 @@ def complete_children(children: pd.DataFrame, settings: ShareSettings, cycle_dat
 
 
 def _history_shares(
-    history: pd.DataFrame,
-    children: pd.DataFrame,
-    established: np.ndarray,
-    settings: ShareSettings,
-    cycle_ord: int,
-    child_of_row: np.ndarray | None = None,
+    rows: ShareRows, children: pd.DataFrame, established: np.ndarray, settings: ShareSettings, leaf_of_child: np.ndarray
 ) -> dict[str, np.ndarray]:
-    """History share, window and fallback of every child (new children: share 0). Each class reads only its
-    children's rows inside its longest window, in their order (so every sum adds the same values in the same
-    order as over the whole history). child_of_row: each history row's child (-1: none), when known."""
-    period = settings.period
+    """History share, window and fallback of every child (new children: share 0).
+
+    Summed per leaf id of the history (`share_rows`), every child's rows in their order, so each sum adds the same
+    values in the same order as over the child's own rows: the configured windows of every class in one pass over
+    the rows that count; a fallback window, and a per-period proportion, over the rows of the children it is for.
+    leaf_of_child: each child's leaf id in the history (-1: none)."""
     n = len(children)
     parent_code, parents = factorize(children, PARENT)
     n_parents = len(parents)
-    if child_of_row is None:
-        child_of_row = coded(history).leaf_rows(children)
     classes = children["product_class"].to_numpy(object)
-    longest = max((max((r.window, *r.fallback_windows)) for r in settings.rules.values()), default=0)
-    age = cycle_ord - period_ordinal(history["period_start"], period)
-    row_ok = (child_of_row >= 0) & (age >= 1) & (age <= longest)
-    row_ok &= ~shortage_periods(history, settings.exclude_shortages)
-    keep = np.flatnonzero(row_ok)
-    child = child_of_row[keep]
-    # the rows of each class together, each class's in their order (a stable sort on the class): one gather
     class_of_child = np.full(n, len(settings.rules), dtype=np.int16)
     for k, name in enumerate(settings.rules):
         class_of_child[classes == name] = k
-    row_class = class_of_child[child]
-    order = np.argsort(row_class, kind="stable")
-    bounds = np.searchsorted(row_class[order], np.arange(len(settings.rules) + 1))
-    keep = keep[order]
-    child, age = child[order], age[keep]
-    qty = history["quantity"].to_numpy(float)[keep]
+    has_rows = leaf_of_child >= 0
+    window_of_class = np.array([settings.rule(name).window for name in settings.rules] + [0], dtype=np.int32)
+    window_of_leaf = np.zeros(rows.n_leaves, dtype=np.int32)  # 0: a leaf of no child, whose rows never count
+    window_of_leaf[leaf_of_child[has_rows]] = window_of_class[class_of_child[has_rows]]
+    configured = child_sums(rows, None, window_of_leaf[rows.leaf], leaf_of_child)
 
     out = {
         "history_share": np.zeros(n),
@@ -272,22 +229,28 @@ def _history_shares(
         pc = settings.rule(name)
         out["method"][in_class] = pc.method
         out["window"][in_class] = pc.window
-        mine = slice(bounds[k], bounds[k + 1])  # the class's rows, in their order
-        c_child, c_age, c_qty = child[mine], age[mine], qty[mine]
-        est = established[c_child]
         members = np.flatnonzero(in_class & established)  # the class's established children, in child order
         member_of = np.full(n, -1, dtype=np.int64)
         member_of[members] = np.arange(len(members))
         decided = ~in_class  # children of other classes are not ours to decide
         for w in (pc.window, *pc.fallback_windows):
-            cv = window_volumes(c_age, c_qty, c_child, n, w)
+            # the rows of the children still undecided (all of the class's at its configured window), in order
+            open_leaf = np.zeros(rows.n_leaves, dtype=bool)
+            open_leaf[leaf_of_child[~decided & has_rows]] = True
+            at = None if w == pc.window else rows.rows_of(open_leaf)
+            cv = configured if at is None else child_sums(rows, at, w, leaf_of_child)
             pv = np.bincount(parent_code, weights=cv * established, minlength=n_parents)[parent_code]
             take = ~decided & (pv > 0)
-            if pc.method in ("mean_of_ratios", "smoothed"):
-                rows = (c_age[est], c_qty[est], member_of[c_child[est]], parent_code[members], n_parents, w)
+            if pc.method in ("mean_of_ratios", "smoothed"):  # the established members' rows that count, in order
+                member_of_leaf = np.full(rows.n_leaves, -1, dtype=np.int64)
+                with_rows = members[has_rows[members]]
+                member_of_leaf[leaf_of_child[with_rows]] = member_of[with_rows]
+                at = rows.rows_of((member_of_leaf >= 0) & open_leaf)
+                at = at[rows.counts[at] & (rows.age[at] <= w)]  # inside the window: the rows it sums
+                args = (rows.age[at], rows.qty[at], member_of_leaf[rows.leaf[at]], parent_code[members], n_parents, w)
                 s = np.zeros(n)
                 by_ratio = pc.method == "mean_of_ratios"
-                s[members] = mean_of_ratios(*rows) if by_ratio else smoothed_proportions(*rows, pc.smoothing)
+                s[members] = mean_of_ratios(*args) if by_ratio else smoothed_proportions(*args, pc.smoothing)
             else:  # pooled; and the pooled summary (and per-period fallback) of the per-period methods
                 s = np.divide(cv, pv, out=np.zeros(n), where=pv > 0) * established
             out["history_share"][take] = s[take]
@@ -302,7 +265,7 @@ def _history_shares(
             with np.errstate(divide="ignore"):
                 out["history_share"][even] = np.where(established[even], 1.0 / counts[parent_code[even]], 0.0)
             # with no volume in any window the child volume is reported over the configured window
-            out["child_volume"][even] = window_volumes(c_age, c_qty, c_child, n, pc.window)[even]
+            out["child_volume"][even] = configured[even]
     return out
 
 
@@ -317,7 +280,8 @@ class ChildFrame:
     parent_code: np.ndarray
     n_parents: int
     ids: tuple[np.ndarray, np.ndarray]  # extend_ids': leaf_id, parent_id
-    child_of_row: np.ndarray | None = None  # each history row's child (-1: none)
+    rows: ShareRows  # the history's rows (`share_rows`)
+    leaf_of_child: np.ndarray  # each child's leaf id in the history (-1: none)
 
 
 def child_frame(
@@ -326,22 +290,26 @@ def child_frame(
     settings: ShareSettings,
     cycle_date: pd.Timestamp,
     keys: Coded | None = None,
+    rows: ShareRows | None = None,
 ) -> ChildFrame:
     """The window- and method-free part of `compute_shares` (it reads the lifecycle settings only); keys:
-    `coded(history)`, when the caller has it (the history's ids are coded once)."""
+    `coded(history)`, rows: `history_rows(...)`, when the caller has them (the history is read once)."""
     settings = ShareSettings.of(settings)
     keys = keys if keys is not None else coded(history)
+    rows = rows if rows is not None else history_rows(history, keys, settings, cycle_date)
     children = complete_children(children, settings, cycle_date)
     established = (children["own_periods"] >= settings.min_history_periods).to_numpy()
     parent_code, parents = factorize(children, PARENT)
+    leaf_of_child = rows.child_leaves(keys, children)
     return ChildFrame(
         children,
         established,
         lifecycle_rules(children, established, settings, cycle_date),
         parent_code,
         len(parents),
-        extend_ids(children, history, keys),
-        keys.leaf_rows(children),
+        extend_ids(children, history, keys, leaf_of_child),
+        rows,
+        leaf_of_child,
     )
 
 
@@ -352,6 +320,7 @@ def compute_shares(
     cycle_date: pd.Timestamp,
     frame: ChildFrame | None = None,
     keys: Coded | None = None,
+    rows: ShareRows | None = None,
 ) -> pd.DataFrame:
     """The share table: one row per child, with its base share and lifecycle rule.
 
@@ -360,14 +329,17 @@ def compute_shares(
     columns; see `complete_children` for the defaults of absent ones).
     frame: `child_frame` of the same history, children and cycle date, and of
     settings with the same lifecycle keys (made once for many windows and methods).
-    keys: `coded(history)`, when the caller has it."""
+    keys: `coded(history)`, rows: `history_rows(history, keys, settings, cycle_date)`, when the caller has them."""
     settings = ShareSettings.of(settings)
     period = settings.period
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
-    frame = frame or child_frame(history, children, settings, cycle_date, keys)
+    frame = frame or child_frame(history, children, settings, cycle_date, keys, rows)
     children, established = frame.children, frame.established
     n = len(children)
-    base = _history_shares(history, children, established, settings, cycle_ord, frame.child_of_row)
+    rows = frame.rows
+    if rows.exclude_shortages != settings.exclude_shortages:  # a frame made under the other shortage rule
+        rows = history_rows(history, keys if keys is not None else coded(history), settings, cycle_date)
+    base = _history_shares(rows, children, established, settings, frame.leaf_of_child)
     rule, ref_pos, scale, initial, detail = frame.lifecycle  # the table below is a sorted copy: the frame stays
     share, _ = split_shares(
         frame.parent_code,

@@ -31,7 +31,7 @@ import pandas as pd
 from pipelines.checks import CHILDREN_SUM_TO_PARENT, EVERY_ACTIVE_PARENT_HAS_CHILDREN, RELATIVE_TOLERANCE
 from pipelines.engines.proofs import find_active_parents_without_children
 from pipelines.errors import PlanningError
-from pipelines.keys import PARENT, PARENT_ID, first_rows, ids_in
+from pipelines.keys import PARENT, PARENT_ID, any_blank, first_rows, ids_in
 from pipelines.results import CheckRows, Log, StageResult, quiet
 
 KEY = PARENT + ["period_start"]
@@ -66,7 +66,7 @@ def reconcile(parent: pd.DataFrame, leaf: pd.DataFrame) -> pd.DataFrame:
     # grouped on the integer parent id where both tables carry it (the same groups, in the same order)
     # (a group's first row is its first non-blank one where the columns have no blank, as the groupby takes it)
     by_id = ids_in(parent, (PARENT_ID,)) and ids_in(leaf, (PARENT_ID,)) and not any(
-        leaf[c].isna().any() for c in ("period_start", "cycle_date", *PARENT)
+        any_blank(leaf[c]) for c in ("period_start", "cycle_date", *PARENT)
     )
     key = [PARENT_ID, "period_start"] if by_id else KEY
     sums = _leaf_sums(leaf) if by_id else (
@@ -118,6 +118,8 @@ def find_incoherent(reconciliation: pd.DataFrame, tolerance: float = RELATIVE_TO
     no_parent = r["strategy_forecast"].isna().to_numpy()
     leaves_off = ~(r["relative_difference"].to_numpy() <= tolerance)
     parent_off = ~(np.abs(r["parent_forecast"].to_numpy() - r["expected"].to_numpy()) <= tolerance * floor)
+    rows = np.flatnonzero(no_parent | leaves_off | parent_off)  # the reasons written for the failing rows only
+    no_parent, leaves_off, parent_off, zeroed = no_parent[rows], leaves_off[rows], parent_off[rows], zeroed[rows]
     why = np.select(
         [no_parent, leaves_off & zeroed, leaves_off, parent_off],
         [
@@ -128,7 +130,7 @@ def find_incoherent(reconciliation: pd.DataFrame, tolerance: float = RELATIVE_TO
         ],
         "",
     )
-    return r[why != ""].assign(why=why[why != ""]).reset_index(drop=True)
+    return r.iloc[rows].assign(why=why).reset_index(drop=True)
 
 
 def run(

@@ -48,10 +48,10 @@ from pipelines.calendar import horizon_starts, period_ordinal
 from pipelines.checks import SHARES_SUM_TO_ONE
 from pipelines.engines.period_shares import period_shares, stored_basis
 from pipelines.engines.proofs import find_shares_not_summing_to_one
+from pipelines.engines.share_rows import period_ages, shortage_periods
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.share_tuning import chosen_rules
-from pipelines.engines.shares import shortage_periods
-from pipelines.keys import LEAF, PARENT, PARENT_ID, coded, factorize, first_rows, ids_in, key_rank, rows_in
+from pipelines.keys import LEAF, LEAF_ID, PARENT, PARENT_ID, coded, factorize, first_rows, ids_in, key_rank
 from pipelines.results import CheckRows, Log, StageResult, quiet
 
 TARGET_COLUMNS = LEAF + ["period_start", "cycle_date", "target", "share", "parent_baseline", "zero_reason", "basis"]
@@ -60,7 +60,11 @@ TARGET_COLUMNS = LEAF + ["period_start", "cycle_date", "target", "share", "paren
 def parent_baselines(
     shares: pd.DataFrame, history: pd.DataFrame, settings: ShareSettings, cycle_date: pd.Timestamp
 ) -> np.ndarray:
-    """Baseline of each share-table row's parent (same value on all its children)."""
+    """Baseline of each share-table row's parent (same value on all its children).
+
+    Summed per history parent id where both tables carry the ids (each parent's rows in their order, as per
+    share-table parent), else per share-table parent; each parent's history length from its runs where the
+    history is sorted by parent id (as the lifecycle stage writes it)."""
     period = settings.period
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
     parent_code, parents = factorize(shares, PARENT)
@@ -68,26 +72,37 @@ def parent_baselines(
     window_used = np.zeros(n_parents + 1, dtype=np.int64)  # the last: the rows of no share-table parent
     window_used[parent_code] = shares["window_used"].to_numpy()
 
-    if ids_in(shares, (PARENT_ID,)):  # through the parent ids both tables carry
-        parents[PARENT_ID] = shares[PARENT_ID].to_numpy()[first_rows(parent_code)]
-        row_parent = rows_in(history, parents, PARENT)
-    else:
+    if ids_in(shares, (PARENT_ID,)) and ids_in(history, (PARENT_ID,)):  # bins: the history's parent ids
+        row_bin = history[PARENT_ID].to_numpy()
+        n_bins = int(row_bin.max()) + 1 if len(row_bin) else 0
+        held = shares[PARENT_ID].to_numpy()[first_rows(parent_code)]
+        code_of_bin = np.full(n_bins, n_parents, dtype=np.int64)
+        code_of_bin[held[held < n_bins]] = np.flatnonzero(held < n_bins)
+    else:  # bins: the share-table parents (n_parents: the rows of none)
         row_parent = coded(history).parent_rows(parents)
-    row_parent = np.where(row_parent >= 0, row_parent, n_parents)
+        row_bin = np.where(row_parent >= 0, row_parent, n_parents)
+        n_bins, code_of_bin = n_parents + 1, np.arange(n_parents + 1)
     short = shortage_periods(history, settings.exclude_shortages)
-    age = cycle_ord - period_ordinal(history["period_start"], period)
+    age = period_ages(history["period_start"], period, cycle_ord)
     qty = history["quantity"].to_numpy(float)
-    oldest = np.zeros(n_parents + 1, dtype=np.int64)
-    np.maximum.at(oldest, row_parent, age)  # history length of each parent, in periods
-    span = np.minimum(window_used, oldest)
-    inside = (age >= 1) & (age <= span[row_parent])
-    use = inside & ~short
-    volume = np.bincount(row_parent[use], weights=qty[use], minlength=n_parents + 1)[:n_parents]
+    oldest = np.zeros(n_bins, dtype=np.int64)  # history length of each parent, in periods
+    if len(row_bin) and bool(np.all(row_bin[1:] >= row_bin[:-1])):  # each bin's rows one run: its largest age
+        first = np.flatnonzero(np.r_[True, row_bin[1:] != row_bin[:-1]])
+        oldest[row_bin[first]] = np.maximum(np.maximum.reduceat(age, first), 0)
+    else:
+        np.maximum.at(oldest, row_bin, age)
+    span = np.minimum(window_used[code_of_bin], oldest).astype(np.int32)  # a window: a few hundred periods
+    inside = np.less_equal(age, span[row_bin])
+    inside &= age >= 1
+    use = np.flatnonzero(inside & ~short) if short.any() else np.flatnonzero(inside)  # in order: the same sums
+    volume = np.bincount(row_bin[use], weights=qty[use], minlength=n_bins)
     # shortage periods inside the window: distinct (parent, age) pairs
     m = inside & short
-    pairs = np.unique(np.stack([row_parent[m], age[m]], axis=1), axis=0)
-    periods = span[:n_parents] - np.bincount(pairs[:, 0], minlength=n_parents + 1)[:n_parents]
-    baseline = np.divide(volume, periods, out=np.zeros(n_parents), where=periods > 0)
+    pairs = np.unique(np.stack([row_bin[m], age[m]], axis=1), axis=0)
+    periods = span - np.bincount(pairs[:, 0], minlength=n_bins)
+    by_bin = np.divide(volume, periods, out=np.zeros(n_bins), where=periods > 0)
+    baseline = np.zeros(n_parents + 1)
+    baseline[code_of_bin] = by_bin  # a bin of no share-table parent lands on the last, unused
     return baseline[parent_code]
 
 
@@ -113,15 +128,19 @@ def reinitialize_target(
     stored = None if period_basis is None else stored_basis(shares, period_basis, starts)
     share, reason, basis = period_shares(shares, settings, cycle_date, products, history, basis=stored)
     ids = ids_in(shares)  # carried from the share table
-    out = shares[LEAF + ids].iloc[np.repeat(np.arange(len(shares)), h)].reset_index(drop=True)
+    # each column made once, in its place: a leaf's keys repeated per period, no frame taken and reordered
+    out = {c: np.repeat(shares[c].to_numpy(), h) for c in LEAF}
     out["period_start"] = np.tile(starts.values, len(shares))
-    out["cycle_date"] = cycle_date
+    out["cycle_date"] = np.full(len(shares) * h, cycle_date.to_datetime64().astype("datetime64[ns]"))
     out["share"] = share.ravel()
     out["parent_baseline"] = np.repeat(baseline, h)
-    out["target"] = out["share"].to_numpy() * out["parent_baseline"].to_numpy()
+    out["target"] = out["share"] * out["parent_baseline"]
     out["zero_reason"] = reason.ravel()
     out["basis"] = basis.ravel()
-    return out[TARGET_COLUMNS + ids]
+    out = {c: out[c] for c in TARGET_COLUMNS}
+    for c in ids:
+        out[c] = np.repeat(shares[c].to_numpy(), h)
+    return pd.DataFrame(out, copy=False)
 
 
 def parents_with_mix_change(target: pd.DataFrame, shares: pd.DataFrame, tolerance: float = 1e-9) -> pd.DataFrame:
@@ -136,17 +155,19 @@ def parents_with_mix_change(target: pd.DataFrame, shares: pd.DataFrame, toleranc
             columns=PARENT + ["first_change", "periods_with_change", "phasing_in", "phasing_out", "zero_periods"]
         )
     # each leaf's share against its previous period, on integers: the rows in (leaf key, period) order
-    leaf, when = key_rank(target, LEAF), target["period_start"].to_numpy().view(np.int64)
-    step_leaf, step_when = np.diff(leaf), np.diff(when)
-    if bool(np.all((step_leaf > 0) | ((step_leaf == 0) & (step_when >= 0)))):
-        order = None
-    else:
-        order = np.lexsort((when, leaf))  # stable, as a sort by leaf then period
-        step_leaf = np.diff(leaf[order])
+    when = target["period_start"].to_numpy().view(np.int64)
+    same_leaf, order = _leaf_runs(target, when), None
+    if same_leaf is None:
+        leaf = key_rank(target, LEAF)
+        step_leaf, step_when = np.diff(leaf), np.diff(when)
+        if not bool(np.all((step_leaf > 0) | ((step_leaf == 0) & (step_when >= 0)))):
+            order = np.lexsort((when, leaf))  # stable, as a sort by leaf then period
+            step_leaf = np.diff(leaf[order])
+        same_leaf = step_leaf == 0
     share = target["share"].to_numpy(float)
     share = share if order is None else share[order]
     with np.errstate(invalid="ignore"):
-        changed = (step_leaf == 0) & (np.abs(share[1:] - share[:-1]) > tolerance)
+        changed = same_leaf & (np.abs(share[1:] - share[:-1]) > tolerance)
     rows = np.flatnonzero(changed) + 1
     rows = rows if order is None else order[rows]
     change = target.iloc[np.sort(rows)][PARENT + ["period_start"]].drop_duplicates()
@@ -156,11 +177,13 @@ def parents_with_mix_change(target: pd.DataFrame, shares: pd.DataFrame, toleranc
     if per_parent.empty:
         return per_parent.reset_index().assign(phasing_in="", phasing_out="", zero_periods=0)
     start, end = target["period_start"].min(), target["period_start"].max()
-    s = shares.set_index(PARENT)
 
-    def customers(mask: pd.Series) -> pd.Series:
-        rows = s[mask.to_numpy()]
-        return rows.groupby(level=PARENT)["customer"].agg(lambda c: ", ".join(sorted(c)))
+    def customers(mask: pd.Series) -> pd.Series:  # per parent key, its customers sorted and joined
+        rows = np.flatnonzero(mask.to_numpy())
+        named: dict[tuple, list] = {}
+        for key in zip(*(shares[c].to_numpy(object)[rows] for c in (*PARENT, "customer")), strict=True):
+            named.setdefault(key[:2], []).append(key[2])
+        return pd.Series({key: ", ".join(sorted(c)) for key, c in named.items()}, dtype=object)
 
     in_ = customers((shares["first_active_period"] > start) & (shares["lifecycle_rule"] != "awaiting_history"))
     out_ = customers(shares["last_active_period"] < end)
@@ -171,6 +194,19 @@ def parents_with_mix_change(target: pd.DataFrame, shares: pd.DataFrame, toleranc
     return per_parent.reset_index()
 
 
+def _leaf_runs(target: pd.DataFrame, when: np.ndarray) -> np.ndarray | None:
+    """Per step from a row to the next: both rows of one leaf, where the rows of each leaf are one run in period
+    order (as `reinitialize_target` writes them), told by the leaf ids; None otherwise (or without the ids)."""
+    if not ids_in(target, (LEAF_ID,)) or len(target) < 2:
+        return None
+    ids = target[LEAF_ID].to_numpy()
+    new = ids[1:] != ids[:-1]
+    heads = ids[np.r_[0, np.flatnonzero(new) + 1]]
+    if len(np.unique(heads)) < len(heads) or not bool(np.all((when[1:] >= when[:-1]) | new)):
+        return None
+    return ~new
+
+
 def first_parent_periods(target: pd.DataFrame, zero_only: bool = False) -> np.ndarray:
     """Positions of the first row of each parent (product, site) and period in `target`, ascending (the rows
     `drop_duplicates` keeps); zero_only: among the rows with a zero_reason only. Coded on integers."""
@@ -178,7 +214,8 @@ def first_parent_periods(target: pd.DataFrame, zero_only: bool = False) -> np.nd
     frame = target if rows is None else target.iloc[rows]
     if frame.empty:
         return np.zeros(0, np.int64)
-    parent, _ = factorize(frame, PARENT)
+    # one parent: one parent id, where the table carries them (the same groups as the text keys)
+    parent = frame[PARENT_ID].to_numpy(np.int64) if ids_in(frame, (PARENT_ID,)) else factorize(frame, PARENT)[0]
     when, periods = pd.factorize(frame["period_start"].to_numpy())
     first = np.flatnonzero(~pd.Series(parent * len(periods) + when).duplicated().to_numpy())
     return first if rows is None else rows[first]

@@ -31,8 +31,8 @@ from pipelines.engines.children import active_children
 from pipelines.engines.lifecycle_shares import find_new_customers_without_share, new_customers
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.share_tuning import chosen_rules
-from pipelines.engines.shares import compute_shares
-from pipelines.keys import coded
+from pipelines.engines.shares import compute_shares, history_rows
+from pipelines.keys import PARENT_ID, coded, first_rows
 from pipelines.results import CheckRows, Log, StageResult, quiet
 from pipelines.schemas import LIFECYCLE_RULES
 
@@ -72,9 +72,10 @@ def run(
     check_windows_fit(settings.windows, int(cycle["history_periods"]), settings.source)
     cycle_date = pd.Timestamp(cycle["cycle_date"])
     keys = coded(lifecycle_history)  # the history's ids and keys, coded once for the children and the shares
-    children = active_children(customer_spans, products, lifecycle_history, settings.share, cycle_date, keys)
-    shares = compute_shares(lifecycle_history, children, settings.share, cycle_date, keys=keys)
-    parents = shares.drop_duplicates(["product", "site"])
+    rows = history_rows(lifecycle_history, keys, settings.share, cycle_date)  # and its periods, once
+    children = active_children(customer_spans, products, lifecycle_history, settings.share, cycle_date, keys, rows)
+    shares = compute_shares(lifecycle_history, children, settings.share, cycle_date, keys=keys, rows=rows)
+    parents = shares.iloc[first_rows(shares[PARENT_ID].to_numpy())]  # drop_duplicates by key: one id per key
     used = parents[parents["fallback"] != "none"]
     fraction = len(used) / len(parents) if len(parents) else 0.0
     limit = settings.max_fallback_share
