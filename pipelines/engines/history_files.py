@@ -93,13 +93,7 @@ def load_raw_history(folder: Path, inputs: InputsConfig | None = None) -> tuple[
         return lines, [described]
     frames, files, digests = [], [], {}
     for path in history_files(folder):
-        digest = sha256(path)
-        if digest in digests:
-            raise InputFileError(
-                f"{path} has the same content as {digests[digest]} (sha256 {digest[:12]}...); the history would be "
-                f"counted twice. Remove one of them."
-            )
-        digests[digest] = path.name
+        digest = _refuse_repeated(path, digests)
         read = read_text(path, HISTORY_COLUMNS, encoding=inputs.encoding, max_line_bytes=inputs.max_line_bytes)
         lines = _file_lines(read, path.name)
         frames.append(lines)
@@ -110,6 +104,18 @@ def load_raw_history(folder: Path, inputs: InputsConfig | None = None) -> tuple[
         )
     return (frames[0] if len(frames) == 1 else pd.concat(frames, ignore_index=True)), files
 
+
+
+def _refuse_repeated(path: Path, digests: dict[str, str]) -> str:
+    """The sha256 of `path`, recorded in `digests`; InputFileError when an earlier file had the same content."""
+    digest = sha256(path)
+    if digest in digests:
+        raise InputFileError(
+            f"{path} has the same content as {digests[digest]} (sha256 {digest[:12]}...); the history would be "
+            f"counted twice. Remove one of them."
+        )
+    digests[digest] = path.name
+    return digest
 
 
 def _file_lines(read, name: str) -> pd.DataFrame:
@@ -140,13 +146,7 @@ def iter_raw_history(folder: Path, inputs: InputsConfig | None = None, files: li
         return
     digests: dict[str, str] = {}
     for path in history_files(folder):
-        digest = sha256(path)
-        if digest in digests:
-            raise InputFileError(
-                f"{path} has the same content as {digests[digest]} (sha256 {digest[:12]}...); the history would be "
-                f"counted twice. Remove one of them."
-            )
-        digests[digest] = path.name
+        digest = _refuse_repeated(path, digests)
         if path.suffix == ".parquet":
             chunks = iter_parquet_text(path, HISTORY_COLUMNS, max_line_bytes=inputs.max_line_bytes,
                                        batch_rows=max(1, chunk_bytes // 64))
