@@ -26,8 +26,8 @@ def period_start(dates: pd.Series, period: PeriodKind) -> pd.Series:
     return d.dt.to_period("M").dt.to_timestamp()
 
 
-_WEEK_NS = 7 * 86_400 * 10**9
-_EPOCH_MONDAY_NS = int(_EPOCH_MONDAY.astype("datetime64[ns]").astype(np.int64))
+WEEK_NS = 7 * 86_400 * 10**9
+EPOCH_MONDAY_NS = int(_EPOCH_MONDAY.astype("datetime64[ns]").astype(np.int64))
 
 
 def period_ordinal(starts: pd.Series | pd.DatetimeIndex, period: PeriodKind) -> np.ndarray:
@@ -35,7 +35,7 @@ def period_ordinal(starts: pd.Series | pd.DatetimeIndex, period: PeriodKind) -> 
     values = pd.DatetimeIndex(starts).values
     if period == "week" and values.dtype == "datetime64[ns]" and not np.isnat(values).any():
         # the same floor divisions on the nanoseconds, without casting to days first (a tenth of the time)
-        return (values.view(np.int64) - _EPOCH_MONDAY_NS) // _WEEK_NS
+        return (values.view(np.int64) - EPOCH_MONDAY_NS) // WEEK_NS
     values = values.astype("datetime64[D]")
     if period == "week":
         return ((values - _EPOCH_MONDAY).astype(np.int64) // 7).astype(np.int64)

@@ -22,7 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import _EPOCH_MONDAY_NS, _WEEK_NS, period_ordinal
+from pipelines.calendar import EPOCH_MONDAY_NS, WEEK_NS, period_ordinal
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.keys import LEAF, PARENT_ID, Coded, ids_in, lookup, row_ids
 
@@ -33,8 +33,8 @@ def period_ages(starts: pd.Series, period: str, cycle_ord: int) -> np.ndarray:
     values = starts.to_numpy()
     if period != "week" or values.dtype != "datetime64[ns]" or np.isnat(values).any():
         return cycle_ord - period_ordinal(starts, period)
-    age = values.view(np.int64) - _EPOCH_MONDAY_NS  # period_ordinal's own floor division, in place
-    np.floor_divide(age, _WEEK_NS, out=age)
+    age = values.view(np.int64) - EPOCH_MONDAY_NS  # period_ordinal's own floor division, in place
+    np.floor_divide(age, WEEK_NS, out=age)
     return np.subtract(cycle_ord, age, out=age)
 
 
