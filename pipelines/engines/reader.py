@@ -30,6 +30,7 @@ the same way.
 from __future__ import annotations
 
 import codecs
+import contextlib
 import csv
 import tempfile
 from pathlib import Path
@@ -139,6 +140,19 @@ def _normal_encoding(encoding: str) -> str:
         ) from None
 
 
+@contextlib.contextmanager
+def _utf8(path: Path, encoding: str):
+    """(path, encoding) to read as UTF-8: the file itself, or for another encoding a UTF-8 copy of it in a temporary
+    folder that is removed on leaving (the encoding stays `utf-8` for the reader then)."""
+    if _normal_encoding(encoding) == "utf-8":
+        yield path, encoding
+        return
+    with tempfile.TemporaryDirectory(prefix="apportion-") as tmp:
+        copy = Path(tmp) / path.name
+        _transcode(path, encoding, copy)
+        yield copy, "utf-8"
+
+
 def read_csv_text(
     path: Path,
     columns: tuple[str, ...],
@@ -154,19 +168,11 @@ def read_csv_text(
     column or with an unknown, blank or repeated one, and for bytes that are not
     text in `encoding`. Malformed lines are returned, not raised.
     """
-    path = Path(path)
-    codec = _normal_encoding(encoding)
-    if codec != "utf-8":
-        with tempfile.TemporaryDirectory(prefix="apportion-") as tmp:
-            copy = Path(tmp) / path.name
-            _transcode(path, encoding, copy)
-            read = read_csv_text(copy, columns, optional, max_line_bytes=max_line_bytes, chunk_bytes=chunk_bytes)
-            return read
-    with open(path, "rb") as fh:
+    with _utf8(Path(path), encoding) as (path, encoding), open(path, "rb") as fh:
         chunks, offset = _csv_chunks(path, fh, columns, optional, max_line_bytes, encoding)
         for _ in _feed(fh, chunks, offset, max_line_bytes, chunk_bytes):
             pass
-    return chunks.result(list(columns) + list(optional))
+        return chunks.result(list(columns) + list(optional))
 
 
 def iter_csv_text(
@@ -181,16 +187,8 @@ def iter_csv_text(
     """`read_csv_text` chunk by chunk: one TextRead per chunk of about `chunk_bytes` (its lines, its malformed
     lines, its blank lines), in file order; at least one (empty) for a file without lines. The chunks' frames
     stacked are `read_csv_text`'s frame, their malformed lines its malformed lines, their blank lines its count."""
-    path = Path(path)
-    codec = _normal_encoding(encoding)
-    if codec != "utf-8":
-        with tempfile.TemporaryDirectory(prefix="apportion-") as tmp:
-            copy = Path(tmp) / path.name
-            _transcode(path, encoding, copy)
-            yield from iter_csv_text(copy, columns, optional, max_line_bytes=max_line_bytes, chunk_bytes=chunk_bytes)
-            return
     order = list(columns) + list(optional)
-    with open(path, "rb") as fh:
+    with _utf8(Path(path), encoding) as (path, encoding), open(path, "rb") as fh:
         chunks, offset = _csv_chunks(path, fh, columns, optional, max_line_bytes, encoding)
         given = False
         for _ in _feed(fh, chunks, offset, max_line_bytes, chunk_bytes):
