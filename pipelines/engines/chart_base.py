@@ -3,6 +3,12 @@
 Rendering is deterministic: matplotlib's Agg canvas on a `Figure` (no pyplot,
 no GUI, no global state), fixed size and dpi, matplotlib's bundled font, and no
 software tag in the PNG, so the same frames give the same bytes.
+
+Layout is fixed, in inches, not found by a layout engine: the margins come from
+the widths of the labels they hold, measured once (`_text_width`), and the axes
+are placed with `_place`. A layout engine measures every artist's bounding box
+before the draw, which cost more than the draw itself. The date ticks of the
+axes sharing x are found once (`_date_ticks`), not on every axis at every draw.
 """
 
 from __future__ import annotations
@@ -15,10 +21,11 @@ from collections.abc import Sequence
 import numpy as np
 import pandas as pd
 from matplotlib import dates as mdates
-from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.backends.backend_agg import FigureCanvasAgg, RendererAgg
 from matplotlib.collections import PolyCollection
 from matplotlib.figure import Figure
-from matplotlib.ticker import FuncFormatter
+from matplotlib.font_manager import FontProperties
+from matplotlib.ticker import FixedLocator, FuncFormatter
 
 from pipelines.calendar import ordinal_to_start, period_ordinal, shift_periods
 from pipelines.keys import PARENT
@@ -35,17 +42,24 @@ CHILD_COLORS = ("#1f77b4", "#ff7f0e", "#2ca02c", "#d62728", "#9467bd", "#8c564b"
 CAPTION_WIDTH = 155  # characters per caption line at 8 pt over the figure's width
 CAPTION_LINES = 9
 OTHER = "other"
+# fixed pieces of a layout, inches
+SUPTITLE_BAND = 0.5  # the figure's title above the first panel's head
+PANEL_HEAD = 0.32  # a panel's title (and the history / horizon words) above its axes
+DATE_BAND = 0.38  # date labels under an axes (and the offset of a short range)
+BARE_FOOT = 0.14  # under an axes without date labels
+YLABEL_BAND = 0.4  # figure edge, the y label at 10 pt and its pad
+TICK_BAND = 0.1  # tick marks and their pad (3.5 + 3.5 pt)
+RIGHT_EDGE = 0.25
+LINE_IN = 0.14  # one caption line at 8 pt
 
 # ----------------------------------------------------------------- shared chart pieces
 def figure_png(fig: Figure) -> bytes:
-    """The figure as PNG bytes (Agg canvas, no software tag, so bytes depend only on the figure)."""
+    """The figure as PNG bytes: one draw on the Agg canvas, no software tag (bytes depend only on the figure),
+    compression level 3 (smaller and faster than the default 6 on these pictures).
+    """
     FigureCanvasAgg(fig)
-    engine = fig.get_layout_engine()
-    if engine is not None:  # the layout savefig would make in a draw without output first, made once, then kept
-        engine.execute(fig)
-        fig.set_layout_engine("none")
     buffer = io.BytesIO()
-    fig.savefig(buffer, format="png", dpi=DPI, metadata={"Software": None})
+    fig.savefig(buffer, format="png", dpi=DPI, metadata={"Software": None}, pil_kwargs={"compress_level": 3})
     return buffer.getvalue()
 
 
@@ -142,10 +156,40 @@ def _mark_horizon(ax, cycle: pd.Timestamp, end: pd.Timestamp | None, label: bool
         ax.text(cycle, 1.01, "  horizon", ha="left", va="bottom", fontsize=8, transform=where)
 
 
-def _date_axis(ax) -> None:
-    locator = mdates.AutoDateLocator(minticks=4, maxticks=9)
-    ax.xaxis.set_major_locator(locator)
-    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
+def _text_width(text: str, points: float) -> float:
+    """Width in inches of one line of `text` at `points` in the default font, as the Agg canvas lays it out."""
+    width, _, _ = _MEASURE.get_text_width_height_descent(text, FontProperties(size=points), ismath=False)
+    return width / DPI
+
+
+_MEASURE = RendererAgg(1, 1, DPI)
+
+
+def _place(fig: Figure, ax, left: float, top: float, width: float, height: float) -> None:
+    """Put `ax` at `left` inches from the figure's left edge and `top` inches from its top, `width` x `height`."""
+    fig_w, fig_h = fig.get_size_inches()
+    ax.set_position([left / fig_w, 1.0 - (top + height) / fig_h, width / fig_w, height / fig_h])
+
+
+def _date_ticks(axes: Sequence, labelled: Sequence[bool]) -> None:
+    """Date ticks of axes sharing x, found once from their common limits (the ticks `AutoDateLocator` gives
+    there, labelled by `ConciseDateFormatter`); date labels only on the axes `labelled` says.
+    """
+    low, high = axes[0].get_xlim()
+    ticks = mdates.AutoDateLocator(minticks=4, maxticks=9).tick_values(mdates.num2date(low), mdates.num2date(high))
+    locator = FixedLocator(ticks)
+    for ax, label in zip(axes, labelled, strict=True):
+        ax.xaxis.set_major_locator(locator)
+        ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
+        ax.tick_params(axis="x", labelbottom=label)
+
+
+def _tick_label_width(ax, points: float = 10.0) -> float:
+    """Width in inches of the widest y tick label `ax` will draw (its locator over its limits, its formatter)."""
+    low, high = ax.get_ylim()
+    ticks = [v for v in ax.yaxis.get_major_locator().tick_values(low, high) if low <= v <= high]
+    labels = ax.yaxis.get_major_formatter().format_ticks(ticks) if ticks else []
+    return max((_text_width(t, points) for t in labels), default=0.0)
 
 
 def _quantity_axis(ax, unit: str) -> None:
@@ -162,8 +206,10 @@ def _empty_figure(title: str, message: str) -> Figure:
     return fig
 
 
-def _caption_axes(fig: Figure, spec, lines: list[str]) -> None:
-    ax = fig.add_subplot(spec)
+def _caption_axes(fig: Figure, rect: tuple[float, float, float, float], lines: list[str]) -> None:
+    """The caption's lines in an axes without frame at `rect` (left, top, width, height in inches)."""
+    ax = fig.add_axes((0, 0, 1, 1))
+    _place(fig, ax, *rect)
     ax.axis("off")
     ax.text(0.0, 1.0, "\n".join(lines), ha="left", va="top", fontsize=8, transform=ax.transAxes, color="#333333")
 

@@ -38,26 +38,37 @@ from matplotlib.ticker import PercentFormatter
 
 from pipelines.calendar import shift_periods
 from pipelines.engines.chart_base import (
+    BARE_FOOT,
     CHILD_COLORS,
     CYCLE_COLOR,
+    DATE_BAND,
     DPI,
     FORECAST_COLOR,
     HISTORY_COLOR,
+    LINE_IN,
     OTHER,
     OTHER_COLOR,
+    PANEL_HEAD,
+    RIGHT_EDGE,
+    SUPTITLE_BAND,
+    TICK_BAND,
     WIDTH_IN,
+    YLABEL_BAND,
     _bars,
     _caption,
     _caption_axes,
-    _date_axis,
+    _date_ticks,
     _empty_figure,
     _history_mask,
     _in_class,
     _mark_horizon,
     _next_starts,
     _parent_label,
+    _place,
     _quantity_axis,
     _rank_parents,
+    _text_width,
+    _tick_label_width,
     chart_file_name,
     figure_png,
 )
@@ -70,6 +81,10 @@ from pipelines.engines.chart_data import (
     sums_by_parent,
 )
 from pipelines.keys import PARENT
+
+TOTAL_HEIGHT = 2.1  # inches: the class total's axes
+ROW_HEIGHT = 1.5  # a small panel's axes
+SHARE_HEIGHT = 1.85  # a share panel's axes
 
 __all__ = [
     "DPI", "WIDTH_IN", "CHILD_COLORS", "FORECAST_COLOR", "chart_file_name", "figure_png", "history_period_shares",
@@ -132,24 +147,31 @@ def parent_chart_figure(
     names = [_parent_label(p, s) for p, s in zip(hidden["product"], hidden["site"], strict=False)]
     lines = _caption(caption, names, f"Not drawn ({len(hidden)}, largest first): ")
 
-    height = 3.0 + 2.1 * rows + 0.3 + 0.14 * len(lines)
-    fig = Figure(figsize=(WIDTH_IN, height), dpi=DPI, layout="constrained")
-    grid = fig.add_gridspec(rows + 2, columns, height_ratios=[2.4] + [2.1] * rows + [0.2 + 0.14 * len(lines)])
-    fig.suptitle(title, fontsize=13, fontweight="bold")
+    # heights in inches, top down: title, class total, the rows of panels (date labels under the lowest panel of
+    # each column only: the panels share x), caption
+    foot = [BARE_FOOT] * max(rows - 1, 0) + [DATE_BAND] * (rows > 0)
+    total_top = SUPTITLE_BAND + PANEL_HEAD
+    first_row = total_top + TOTAL_HEIGHT + DATE_BAND + PANEL_HEAD
+    row_tops = np.cumsum([first_row] + [ROW_HEIGHT + f + PANEL_HEAD for f in foot])
+    caption_top = row_tops[-1] - PANEL_HEAD + 0.1 if rows else total_top + TOTAL_HEIGHT + DATE_BAND
+    height = caption_top + LINE_IN * len(lines) + 0.1
+    fig = Figure(figsize=(WIDTH_IN, height), dpi=DPI)
+    fig.suptitle(title, fontsize=13, fontweight="bold", y=1.0 - 0.12 / height, va="top")
 
-    total = fig.add_subplot(grid[0, :])
+    total = fig.add_axes((0, 0, 1, 1))
     th = hist.groupby("period_start")["quantity"].sum().sort_index()
     tf = fc.groupby("period_start")["forecast"].sum().sort_index()
     _mark_horizon(total, cycle, horizon_end, label=True)
     total.plot(th.index, th.to_numpy(), color=HISTORY_COLOR, lw=1.2, label="history")
     total.plot(tf.index, tf.to_numpy(), color=FORECAST_COLOR, lw=2.0, label="forecast")
-    total.set_title(f"Class total, {len(ranked)} parents", fontsize=11, loc="left")
+    total.set_title(f"Class total, {len(ranked)} parents", fontsize=11, loc="left", y=1.0)
     _quantity_axis(total, unit)
-    _date_axis(total)
     total.legend(loc="upper left", fontsize=8, frameon=False, ncols=3)
 
+    panels = []
     for i, row in enumerate(shown.itertuples(index=False)):
-        ax = fig.add_subplot(grid[1 + i // columns, i % columns], sharex=total)
+        ax = fig.add_axes((0, 0, 1, 1), sharex=total)
+        panels.append(ax)
         _mark_horizon(ax, cycle, horizon_end, label=False)
         h = hist[hist_at == row.pos] if (hist_at == row.pos).any() else None
         f = fc[fc_at == row.pos] if (fc_at == row.pos).any() else None
@@ -166,10 +188,19 @@ def parent_chart_figure(
             ax.plot(f["period_start"], f["forecast"].to_numpy(), color=FORECAST_COLOR, lw=1.8, label="forecast")
         part = row.history_volume / class_volume if class_volume > 0 else float("nan")
         share_text = "" if math.isnan(part) else f"  ({part:.0%} of class history)"
-        ax.set_title(f"{_parent_label(row.product, row.site)}{share_text}", fontsize=9, loc="left")
+        ax.set_title(f"{_parent_label(row.product, row.site)}{share_text}", fontsize=9, loc="left", y=1.0)
         _quantity_axis(ax, unit if i % columns == 0 else "")
-        _date_axis(ax)
-    _caption_axes(fig, grid[rows + 1, :], lines)
+    _date_ticks([total, *panels], [True] + [i + columns >= len(panels) for i in range(len(panels))])
+
+    # widths in inches: the widest y tick label of any panel sets the room left of every panel
+    tick_room = max(_tick_label_width(ax) for ax in [total, *panels]) + TICK_BAND
+    left = YLABEL_BAND + tick_room
+    gap = 0.3 + tick_room
+    panel_width = (WIDTH_IN - left - RIGHT_EDGE - (columns - 1) * gap) / columns
+    _place(fig, total, left, total_top, WIDTH_IN - left - RIGHT_EDGE, TOTAL_HEIGHT)
+    for i, ax in enumerate(panels):
+        _place(fig, ax, left + (i % columns) * (panel_width + gap), row_tops[i // columns], panel_width, ROW_HEIGHT)
+    _caption_axes(fig, (left, caption_top, WIDTH_IN - left - RIGHT_EDGE, LINE_IN * len(lines)), lines)
     return fig
 
 
@@ -262,14 +293,18 @@ def share_chart_figure(
     lines = _caption(caption, names, f"Not drawn ({len(hidden)}, largest first): ")
 
     rows = len(shown)
-    fig = Figure(figsize=(WIDTH_IN, 0.8 + 2.3 * rows + 0.3 + 0.14 * len(lines)), dpi=DPI, layout="constrained")
-    grid = fig.add_gridspec(rows + 1, 1, height_ratios=[2.3] * rows + [0.2 + 0.14 * len(lines)])
-    fig.suptitle(title, fontsize=13, fontweight="bold")
+    # heights in inches, top down: title, the panels (date labels under the lowest only: they share x), caption
+    tops = SUPTITLE_BAND + PANEL_HEAD + np.arange(rows) * (PANEL_HEAD + SHARE_HEIGHT + BARE_FOOT)
+    caption_top = SUPTITLE_BAND + rows * (PANEL_HEAD + SHARE_HEIGHT + BARE_FOOT) - BARE_FOOT + DATE_BAND + 0.1
+    height = caption_top + LINE_IN * len(lines) + 0.1
+    fig = Figure(figsize=(WIDTH_IN, height), dpi=DPI)
+    fig.suptitle(title, fontsize=13, fontweight="bold", y=1.0 - 0.12 / height, va="top")
+    legend_texts = []
     hist_by = {k: g for k, g in hist_shares.groupby(PARENT, observed=True)}
     first_ax = None
     for i, row in enumerate(shown.itertuples(index=False)):
         key = (row.product, row.site)
-        ax = fig.add_subplot(grid[i, 0], sharex=first_ax)
+        ax = fig.add_axes((0, 0, 1, 1), sharex=first_ax)
         first_ax = first_ax or ax
         empty = hist_shares.iloc[:0]
         mine = tgt.iloc[np.flatnonzero(tgt_pos == row.pos)]
@@ -305,8 +340,9 @@ def share_chart_figure(
         ax.set_ylim(0, 1)
         ax.yaxis.set_major_formatter(PercentFormatter(1.0, decimals=0))
         ax.set_ylabel("share of parent")
-        ax.set_title(f"{_parent_label(row.product, row.site)}: {len(top) + n_rest} customers", fontsize=10, loc="left")
-        _date_axis(ax)
+        ax.set_title(
+            f"{_parent_label(row.product, row.site)}: {len(top) + n_rest} customers", fontsize=10, loc="left", y=1.0
+        )
         # legend top to bottom as the bands are stacked: the largest customer at the bottom of both
         handles, labels = ax.get_legend_handles_labels()
         bands_first = [k for k, l in enumerate(labels) if not l.startswith(("cycle date", "share window"))]
@@ -322,7 +358,17 @@ def share_chart_figure(
             title="share at cycle date" if at_cycle is not None else None,
             title_fontsize=8,
         )
-    _caption_axes(fig, grid[rows, 0], lines)
+        legend_texts += [labels[k] for k in order] + (["share at cycle date"] if at_cycle is not None else [])
+    panels = fig.axes
+    _date_ticks(panels, [i == rows - 1 for i in range(rows)])
+    # widths in inches: room for "100%" and the y label on the left, for the widest legend on the right (handle
+    # 2 em, pads 1.6 em at 8 pt, and the 1 % of the axes' width it stands off)
+    left = YLABEL_BAND + _text_width("100%", 10.0) + TICK_BAND
+    legend = max(_text_width(t, 8.0) for t in legend_texts) + 3.6 * 8 / 72
+    width = (WIDTH_IN - left - legend - RIGHT_EDGE) / 1.01
+    for ax, top in zip(panels, tops, strict=True):
+        _place(fig, ax, left, top, width, SHARE_HEIGHT)
+    _caption_axes(fig, (left, caption_top, WIDTH_IN - left - RIGHT_EDGE, LINE_IN * len(lines)), lines)
     return fig
 
 
