@@ -94,7 +94,7 @@ def test_parent_chart_plots_class_total_and_the_largest_parents(parents):
     assert second.get_title(loc="left") == "P1 x S1  (36% of class history)"
     assert line(second, "history") == {num(W1): 10.0, num(W2): 12.0, num(W3): 14.0}
     assert line(first, "forecast") == {num(H1): 21.0, num(H2): 22.0, num(H3): 23.0}
-    caption = " ".join(t.get_text() for t in fig.axes[-1].texts)
+    caption = " ".join(t.get_text() for t in fig.texts)
     assert "Not drawn (1, largest first): P3 x S1." in caption
     assert "Product class a" in fig.get_suptitle() and "2026-02-02" in fig.get_suptitle()
     assert total.get_ylabel() == "quantity per week"
@@ -194,7 +194,7 @@ def test_share_chart_stacks_history_and_horizon_shares_with_other(shares_input):
     legend = [t.get_text() for t in ax.get_legend().get_texts()]
     assert legend[:3] == ["other (2 customers)  20.0%", "C2  30.0%", "C1  50.0%"]
     assert ax.get_title(loc="left") == "P1 x S1: 4 customers"
-    caption = " ".join(t.get_text() for t in fig.axes[-1].texts)
+    caption = " ".join(t.get_text() for t in fig.texts)
     assert "Not drawn (1, largest first): P2 x S1." in caption
     assert set(line(ax, "cycle date 2026-02-02")) == {num(CYCLE)}
 

@@ -56,7 +56,7 @@ from pipelines.engines.chart_base import (
     YLABEL_BAND,
     _bars,
     _caption,
-    _caption_axes,
+    _caption_text,
     _date_ticks,
     _empty_figure,
     _history_mask,
@@ -200,7 +200,7 @@ def parent_chart_figure(
     _place(fig, total, left, total_top, WIDTH_IN - left - RIGHT_EDGE, TOTAL_HEIGHT)
     for i, ax in enumerate(panels):
         _place(fig, ax, left + (i % columns) * (panel_width + gap), row_tops[i // columns], panel_width, ROW_HEIGHT)
-    _caption_axes(fig, (left, caption_top, WIDTH_IN - left - RIGHT_EDGE, LINE_IN * len(lines)), lines)
+    _caption_text(fig, left, caption_top, lines)
     return fig
 
 
@@ -368,7 +368,7 @@ def share_chart_figure(
     width = (WIDTH_IN - left - legend - RIGHT_EDGE) / 1.01
     for ax, top in zip(panels, tops, strict=True):
         _place(fig, ax, left, top, width, SHARE_HEIGHT)
-    _caption_axes(fig, (left, caption_top, WIDTH_IN - left - RIGHT_EDGE, LINE_IN * len(lines)), lines)
+    _caption_text(fig, left, caption_top, lines)
     return fig
 
 
