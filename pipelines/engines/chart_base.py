@@ -165,17 +165,25 @@ def _caption(text: str, names: Sequence[str] = (), lead: str = "") -> list[str]:
 
 def _mark_horizon(ax, cycle: pd.Timestamp, end: pd.Timestamp | None, label: bool) -> None:
     """Shade the horizon, draw the cycle date; with `label`, name it in the legend and write history / horizon on
-    the axes.
+    the axes. Dates are drawn as matplotlib date numbers (`_x`).
     """
     if end is not None and end > cycle:
-        ax.axvspan(cycle, end, color=HORIZON_SHADE, zorder=0, lw=0)
+        ax.axvspan(_x(cycle), _x(end), color=HORIZON_SHADE, zorder=0, lw=0)
     ax.axvline(
-        cycle, color=CYCLE_COLOR, ls="--", lw=1.0, zorder=3, label=f"cycle date {cycle:%Y-%m-%d}" if label else None
+        _x(cycle), color=CYCLE_COLOR, ls="--", lw=1.0, zorder=3,
+        label=f"cycle date {cycle:%Y-%m-%d}" if label else None,
     )
     if label:
         where = ax.get_xaxis_transform()  # x in dates, y in axes fraction
-        ax.text(cycle, 1.01, "history  ", ha="right", va="bottom", fontsize=8, transform=where)
-        ax.text(cycle, 1.01, "  horizon", ha="left", va="bottom", fontsize=8, transform=where)
+        ax.text(_x(cycle), 1.01, "history  ", ha="right", va="bottom", fontsize=8, transform=where)
+        ax.text(_x(cycle), 1.01, "  horizon", ha="left", va="bottom", fontsize=8, transform=where)
+
+
+def _x(dates):
+    """Dates as matplotlib date numbers (days since 1970-01-01), the x the charts draw at. Given as numbers, the axes
+    get no date units, so matplotlib does not convert each rectangle of a stacked bar again at every draw.
+    """
+    return mdates.date2num(dates)
 
 
 def _text_width(text: str, points: float) -> float:

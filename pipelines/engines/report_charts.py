@@ -32,7 +32,6 @@ import math
 
 import numpy as np
 import pandas as pd
-from matplotlib import dates as mdates
 from matplotlib.figure import Figure
 from matplotlib.ticker import PercentFormatter
 
@@ -69,6 +68,7 @@ from pipelines.engines.chart_base import (
     _rank_parents,
     _text_width,
     _tick_label_width,
+    _x,
     chart_file_name,
     figure_png,
 )
@@ -162,8 +162,8 @@ def parent_chart_figure(
     th = hist.groupby("period_start")["quantity"].sum().sort_index()
     tf = fc.groupby("period_start")["forecast"].sum().sort_index()
     _mark_horizon(total, cycle, horizon_end, label=True)
-    total.plot(th.index, th.to_numpy(), color=HISTORY_COLOR, lw=1.2, label="history")
-    total.plot(tf.index, tf.to_numpy(), color=FORECAST_COLOR, lw=2.0, label="forecast")
+    total.plot(_x(th.index), th.to_numpy(), color=HISTORY_COLOR, lw=1.2, label="history")
+    total.plot(_x(tf.index), tf.to_numpy(), color=FORECAST_COLOR, lw=2.0, label="forecast")
     total.set_title(f"Class total, {len(ranked)} parents", fontsize=11, loc="left", y=1.0)
     _quantity_axis(total, unit)
     total.legend(loc="upper left", fontsize=8, frameon=False, ncols=3)
@@ -177,15 +177,15 @@ def parent_chart_figure(
         f = fc[fc_at == row.pos] if (fc_at == row.pos).any() else None
         if h is not None:
             h = h.sort_values("period_start")
-            ax.plot(h["period_start"], h["quantity"].to_numpy(), color=HISTORY_COLOR, lw=0.9, label="history")
+            ax.plot(_x(h["period_start"]), h["quantity"].to_numpy(), color=HISTORY_COLOR, lw=0.9, label="history")
         if f is not None:
             f = f.sort_values("period_start")
             for k, lv in enumerate(sorted(bands, key=float, reverse=True)):  # widest first, lighter
                 ax.fill_between(
-                    f["period_start"], f[f"lower_{lv}"].to_numpy(float), f[f"upper_{lv}"].to_numpy(float),
+                    _x(f["period_start"]), f[f"lower_{lv}"].to_numpy(float), f[f"upper_{lv}"].to_numpy(float),
                     color=FORECAST_COLOR, alpha=0.15 + 0.15 * k, lw=0, label=f"{lv} % interval",
                 )
-            ax.plot(f["period_start"], f["forecast"].to_numpy(), color=FORECAST_COLOR, lw=1.8, label="forecast")
+            ax.plot(_x(f["period_start"]), f["forecast"].to_numpy(), color=FORECAST_COLOR, lw=1.8, label="forecast")
         part = row.history_volume / class_volume if class_volume > 0 else float("nan")
         share_text = "" if math.isnan(part) else f"  ({part:.0%} of class history)"
         ax.set_title(f"{_parent_label(row.product, row.site)}{share_text}", fontsize=9, loc="left", y=1.0)
@@ -312,8 +312,8 @@ def share_chart_figure(
         _mark_horizon(ax, cycle, horizon_end, label=i == 0)
         # one full-width bar per period (a stepped stacked area): a period stands for its whole bucket,
         # and a lone period of an intermittent series stays visible
-        left = mdates.date2num(bands.index)
-        width = mdates.date2num(_next_starts(bands.index, period)) - left
+        left = _x(bands.index)
+        width = _x(_next_starts(bands.index, period)) - left
         at_cycle = bands[bands.index >= cycle].iloc[0] if (bands.index >= cycle).any() else None
         bottom = np.zeros(len(bands))
         drawn = ~bands.isna().all(axis=1).to_numpy()
@@ -329,7 +329,7 @@ def share_chart_figure(
             bottom = bottom + values
         if row.pos in window_start:
             ax.axvline(
-                window_start[row.pos],
+                _x(window_start[row.pos]),
                 color=CYCLE_COLOR,
                 ls=":",
                 lw=1.0,
