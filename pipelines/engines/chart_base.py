@@ -21,12 +21,15 @@ from collections.abc import Sequence
 import numpy as np
 import pandas as pd
 from matplotlib import dates as mdates
+from matplotlib import rcParams
+from matplotlib.axis import Ticker
 from matplotlib.backend_bases import RendererBase
 from matplotlib.backends.backend_agg import FigureCanvasAgg, RendererAgg
 from matplotlib.collections import PolyCollection
 from matplotlib.figure import Figure
 from matplotlib.font_manager import FontProperties
-from matplotlib.ticker import FixedLocator, FuncFormatter
+from matplotlib.markers import TICKDOWN
+from matplotlib.ticker import FixedLocator, FuncFormatter, NullFormatter, NullLocator
 
 from pipelines.calendar import ordinal_to_start, period_ordinal, shift_periods
 from pipelines.keys import PARENT
@@ -203,15 +206,26 @@ def _place(fig: Figure, ax, left: float, top: float, width: float, height: float
 
 def _date_ticks(axes: Sequence, labelled: Sequence[bool]) -> None:
     """Date ticks of axes sharing x, found once from their common limits (the ticks `AutoDateLocator` gives
-    there, labelled by `ConciseDateFormatter`); date labels only on the axes `labelled` says.
+    there, labelled by `ConciseDateFormatter`). Axes `labelled` draws get the dated ticks; the others only the
+    same tick marks, as one line of markers, so matplotlib makes and draws no tick objects for them.
     """
     low, high = axes[0].get_xlim()
     ticks = mdates.AutoDateLocator(minticks=4, maxticks=9).tick_values(mdates.num2date(low), mdates.num2date(high))
     locator = FixedLocator(ticks)
+    shown = ticks[(ticks >= low) & (ticks <= high)]
     for ax, label in zip(axes, labelled, strict=True):
-        ax.xaxis.set_major_locator(locator)
-        ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
-        ax.tick_params(axis="x", labelbottom=label)
+        ax.xaxis.major = Ticker()  # a locator and formatter of its own: the axes share x limits, not ticks
+        if label:
+            ax.xaxis.set_major_locator(locator)
+            ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
+            continue
+        ax.xaxis.set_major_locator(NullLocator())
+        ax.xaxis.set_major_formatter(NullFormatter())
+        ax.plot(
+            shown, np.zeros(len(shown)), ls="none", marker=TICKDOWN, ms=rcParams["xtick.major.size"],
+            mew=rcParams["xtick.major.width"], color=rcParams["xtick.color"], transform=ax.get_xaxis_transform(),
+            clip_on=False, label="_date ticks",
+        )
 
 
 def _tick_label_width(ax, points: float = 10.0) -> float:
