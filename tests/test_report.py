@@ -214,6 +214,55 @@ def test_share_chart_marks_the_window_start_and_renders(shares_input, make_share
     assert pixels_of(image, report_charts.CHILD_COLORS[0]) > 100
 
 
+def drawn_boxes(fig):
+    """Each axes' drawn extent (tick labels, labels, title, legend), the figure title's and the caption's, in pixels,
+    after one draw."""
+    report_charts.figure_png(fig)
+    renderer = fig.canvas.get_renderer()
+    title, caption = fig.texts  # the figure's own texts: its title, then the caption
+    assert title.get_text() == fig.get_suptitle()
+    return [ax.get_tightbbox(renderer) for ax in fig.axes], *(t.get_window_extent(renderer) for t in (title, caption))
+
+
+def assert_laid_out(fig):
+    """The fixed layout holds what it draws: every panel inside the figure, no two overlapping, the title above
+    them and the caption below them (the margins come from the measured label widths, not from a layout engine).
+    """
+    boxes, title, caption = drawn_boxes(fig)
+    width, height = fig.bbox.width, fig.bbox.height
+    for box in boxes + [title, caption]:
+        assert box.x0 >= 0 and box.y0 >= 0 and box.x1 <= width and box.y1 <= height, box
+    for i, a in enumerate(boxes):
+        for b in boxes[i + 1:]:
+            assert not a.overlaps(b), (a, b)
+    assert title.y0 > max(b.y1 for b in boxes) and caption.y1 < min(b.y0 for b in boxes)
+
+
+def test_parent_chart_layout_holds_wide_tick_labels_and_an_odd_panel(parents):
+    hist, forecast = parents
+    hist = hist.assign(quantity=hist["quantity"] * 1_234_567.0)  # y tick labels up to "80,000,000"
+    fig = report_charts.parent_chart_figure(hist, forecast, product_class="a", cycle_date=CYCLE, top_parents=3)
+    assert_laid_out(fig)  # 3 panels in 2 columns: the right one's date labels hang into an empty place
+    # date labels under the lowest panel of each column only; the others carry the same tick marks
+    total, first, second, third = fig.axes
+    assert [ax.xaxis.get_tick_params()["labelbottom"] for ax in (total, third)] == [True, True]
+    assert [len(ax.xaxis.get_ticklocs()) > 0 for ax in (first, second)] == [False, True]
+    (marks,) = [ln for ln in first.get_lines() if ln.get_label() == "_date ticks"]
+    low, high = first.get_xlim()
+    labelled = [t for t in third.xaxis.get_ticklocs() if low <= t <= high]
+    assert list(marks.get_xdata()) == labelled
+
+
+def test_share_chart_layout_holds_long_customer_names(shares_input):
+    hist, target = shares_input
+    long = "CUSTOMER-WITH-A-RATHER-LONG-NAME-0001"
+    hist["customer"] = hist["customer"].replace("C1", long)
+    target["customer"] = target["customer"].replace("C1", long)
+    fig = report_charts.share_chart_figure(hist, target, product_class="a", cycle_date=CYCLE, top_parents=2)
+    assert_laid_out(fig)
+    assert any(t.get_text().startswith(long) for t in fig.axes[0].get_legend().get_texts())
+
+
 def test_history_shares_leave_out_periods_without_volume_or_with_a_shortage():
     hist = history(
         [
