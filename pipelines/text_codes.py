@@ -24,13 +24,16 @@ import pandas as pd
 RUNS_SHARE = 4  # hash the run starts when there are at most 1/RUNS_SHARE as many runs as rows
 
 
-def addresses(values: np.ndarray) -> np.ndarray:
-    """The address of each cell's object of an object array (int64 per cell; a copy, so it outlives `values`)."""
-    values = np.ascontiguousarray(values, dtype=object)
-    if not len(values):
+def addresses(values: np.ndarray, copy: bool = True) -> np.ndarray:
+    """The address of each cell's object of an object array (int64 per cell; a copy, so it outlives `values`).
+
+    `copy=False`: the cells' pointers read in place, without copying them, when `values` is a contiguous
+    object array already - valid only while `values` lives, for a caller that holds it meanwhile."""
+    contiguous = np.ascontiguousarray(values, dtype=object)
+    if not len(contiguous):
         return np.zeros(0, dtype=np.int64)
-    cells = (ctypes.c_ssize_t * len(values)).from_address(values.ctypes.data)
-    return np.ctypeslib.as_array(cells).astype(np.int64, copy=True)
+    cells = np.ctypeslib.as_array((ctypes.c_int64 * len(contiguous)).from_address(contiguous.ctypes.data))
+    return cells.copy() if copy or contiguous is not values else cells
 
 
 def run_starts(columns: list[np.ndarray]) -> np.ndarray:
@@ -40,7 +43,7 @@ def run_starts(columns: list[np.ndarray]) -> np.ndarray:
     if n:
         change[0] = True
     for values in columns:
-        where = addresses(values)
+        where = addresses(values, copy=False)  # `columns` holds the cells while they are compared
         change[1:] |= where[1:] != where[:-1]
     return np.flatnonzero(change)
 
@@ -52,7 +55,7 @@ def codes_of(values, use_na_sentinel: bool = True) -> tuple[np.ndarray, np.ndarr
     if values.dtype != object or n < 1024:
         codes, uniques = pd.factorize(values, use_na_sentinel=use_na_sentinel)
         return codes.astype(np.int64, copy=False), np.asarray(uniques)
-    where = addresses(values)
+    where = addresses(values, copy=False)  # `values` is held till the codes are made
     change = np.ones(n, dtype=bool)
     change[1:] = where[1:] != where[:-1]
     starts = np.flatnonzero(change)
