@@ -166,14 +166,22 @@ def _repeated_in_earlier_file(
     file_code, files = codes_of(raw["source_file"])
     if len(files) < 2:  # as `nunique`: a missing file name is not a file
         return out
-    at = np.flatnonzero(candidate)
-    # a repeat has the date of a line of an earlier file: only the lines of such dates are grouped
-    day, file = same_value[0][at], file_code[at]
-    earliest = np.full(int(day.max()) + 1, np.iinfo(np.int64).max, dtype=np.int64)
-    np.minimum.at(earliest, day, file)
-    shared_day = np.zeros(len(earliest), dtype=bool)
-    shared_day[day[file > earliest[day]]] = True
-    at = at[shared_day[day]]
+    # a repeat has the date of a line of an earlier file: only the candidate lines of such dates are grouped,
+    # the dates two file codes or more hold (a missing file name, code -1, is one: the earliest)
+    day = same_value[0]
+    n_days, slots = int(day.max(initial=0)) + 1, len(files) + 1
+    if slots * n_days <= 4 * len(raw) + 1_000_000:  # a file x date table of counts, a spare cell for the others
+        cell = np.where(candidate, (file_code + 1) * n_days + day, slots * n_days)
+        held = np.bincount(cell, minlength=slots * n_days + 1)[:-1].reshape(slots, n_days) > 0
+        shared_day = held.sum(axis=0) > 1
+        at = np.flatnonzero(candidate & shared_day[day])
+    else:
+        at = np.flatnonzero(candidate)
+        earliest = np.full(n_days, np.iinfo(np.int64).max, dtype=np.int64)
+        np.minimum.at(earliest, day[at], file_code[at])
+        shared_day = np.zeros(n_days, dtype=bool)
+        shared_day[day[at][file_code[at] > earliest[day[at]]]] = True
+        at = at[shared_day[day[at]]]
     if not len(at):
         return out
     parts = [line_code[at], same_value[0][at], same_value[1][at]]

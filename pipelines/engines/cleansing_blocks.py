@@ -153,15 +153,16 @@ def _clean_block(block, a: int, b: int, grid: Grid, settings, out: Blocks, flagg
         x = _class_rules(values[rows], short[rows], name, rows + a, settings, out, corrected, rows)
         values[rows] = x
 
-    li, pj = np.nonzero(keep)
-    out.leaf.append((li + a).astype(np.int64))
+    at = np.flatnonzero(keep)  # the kept cells, row by row: one flat gather per column
+    li, pj = np.divmod(at, t)
+    out.leaf.append(li + a)
     out.col.append(pj.astype(np.int32))
-    out.quantity.append(values[li, pj])
-    out.raw_quantity.append(net[li, pj])
-    out.lines.append(lines[li, pj])
-    out.filled.append(~observed[li, pj])
-    out.corrected.append(corrected[li, pj])
-    out.shortage.append(short[li, pj])
+    out.quantity.append(values.ravel().take(at))
+    out.raw_quantity.append(net.ravel().take(at))
+    out.lines.append(lines.ravel().take(at))
+    out.filled.append(~observed.ravel().take(at))
+    out.corrected.append(corrected.ravel().take(at))
+    out.shortage.append(short.ravel().take(at))
 
 
 def _class_rules(x, skip, name, leaf_index, settings, out: Blocks, corrected, rows) -> np.ndarray:
