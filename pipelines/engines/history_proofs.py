@@ -65,14 +65,17 @@ def cell_positions(cleaned: pd.DataFrame, corrections: pd.DataFrame) -> np.ndarr
         capacity *= max(len(pd.factorize(both, use_na_sentinel=False)[1]), 1)
     if capacity >= 2.0**62:
         return None
-    run = np.repeat(np.arange(len(starts)), np.diff(np.append(starts, len(cleaned))))
-    if len(days) > 1 and not np.all((days[1:] > days[:-1]) | (run[1:] != run[:-1])):
-        return None
+    if len(days) > 1:  # strictly increasing inside each run (a new run may start lower)
+        rising = days[1:] > days[:-1]
+        rising[starts[1:] - 1] = True
+        if not rising.all():
+            return None
     low = int(min(days.min(initial=0), corr_days.min(initial=0)))
     width = int(max(days.max(initial=0), corr_days.max(initial=0))) - low + 1
     if float(len(starts) + 1) * width >= 2.0**62:
         return None
-    cells = run * width + (days - low)  # strictly increasing: one row per leaf and period
+    cells = np.repeat(np.arange(len(starts), dtype=np.int64) * width - low, np.diff(np.append(starts, len(cleaned))))
+    cells += days  # run * width + (days - low), strictly increasing: one row per leaf and period
     corr_run = pd.Index(codes[0]).get_indexer(codes[1])
     wanted = np.where(corr_run >= 0, corr_run, 0) * width + (corr_days - low)
     pos = np.searchsorted(cells, wanted)
@@ -170,10 +173,16 @@ def accounted_lines(raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: pd.DataF
         return None
     leaf_of_head, leaves = pd.factorize(np.concatenate(codes))
     raw_head, cl_head = leaf_of_head[: len(raw_heads)], leaf_of_head[len(raw_heads) :]
-    raw_leaf = np.repeat(raw_head, np.diff(np.append(raw_starts, len(raw))))
-    cl_leaf = np.repeat(cl_head, np.diff(np.append(cl_starts, len(cleaned))))
+    raw_length = np.diff(np.append(raw_starts, len(raw)))
     n = len(leaves)
-    used = np.bincount(raw_leaf, minlength=n) - np.bincount(raw_leaf[in_rejected], minlength=n)
-    summed = np.bincount(cl_leaf, weights=cleaned["lines"].to_numpy(np.float64), minlength=n)
+    # counted per run, then per leaf (a leaf may have several runs); a rejected line's leaf is its run's
+    rejected_leaf = raw_head[np.searchsorted(raw_starts, np.flatnonzero(in_rejected), side="right") - 1]
+    used = np.bincount(raw_head, weights=raw_length, minlength=n).astype(np.int64)
+    used -= np.bincount(rejected_leaf, minlength=n)
+    lines = cleaned["lines"].to_numpy()
+    run_lines = np.add.reduceat(lines, cl_starts) if len(lines) else np.zeros(0, dtype=lines.dtype)
+    summed = np.bincount(cl_head, weights=run_lines.astype(np.float64), minlength=n)
     off = used != summed
-    return unknown, twice, in_rejected, off[raw_leaf], off[cl_leaf]
+    return unknown, twice, in_rejected, np.repeat(off[raw_head], raw_length), np.repeat(
+        off[cl_head], np.diff(np.append(cl_starts, len(cleaned)))
+    )
