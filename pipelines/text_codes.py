@@ -63,6 +63,8 @@ def codes_of(values, use_na_sentinel: bool = True) -> tuple[np.ndarray, np.ndarr
         codes, uniques = pd.factorize(values[starts], use_na_sentinel=use_na_sentinel)
         return np.repeat(codes.astype(np.int64), np.diff(np.append(starts, n))), np.asarray(uniques)
     object_code = pd.factorize(where)[0]
-    first = pd.Series(object_code).drop_duplicates().index.to_numpy()
+    # numbered by first appearance, a code is new exactly where the running maximum of the codes rises
+    seen = np.maximum.accumulate(object_code)
+    first = np.flatnonzero(np.r_[True, seen[1:] > seen[:-1]])
     codes, uniques = pd.factorize(values[first], use_na_sentinel=use_na_sentinel)
     return codes.astype(np.int64)[object_code], np.asarray(uniques)

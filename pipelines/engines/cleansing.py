@@ -328,8 +328,10 @@ def _parameter_texts(params: dict, picked: dict[str, np.ndarray], adjusted: np.n
     for k, v in picked.items():
         has = ~np.isnan(v)
         name = json.dumps(k) + ": "
-        written = [name + repr(round(float(x), 6)) for x in v[has]]
-        texts[has] = texts[has] + np.where(first[has], "", ", ").astype(object) + np.array(written, dtype=object)
+        # each distinct figure written once (distinct by its bits: 0.0 and -0.0 are written apart)
+        bits, at = np.unique(np.ascontiguousarray(v[has], dtype=np.float64).view(np.int64), return_inverse=True)
+        written = np.array([name + repr(round(float(x), 6)) for x in bits.view(np.float64)], dtype=object)[at]
+        texts[has] = texts[has] + np.where(first[has], "", ", ").astype(object) + written
         first[has] = False
     if adjusted is not None:
         flag = np.where(np.asarray(adjusted, dtype=bool), '"seasonal_adjusted": true', '"seasonal_adjusted": false')
