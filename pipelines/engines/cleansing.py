@@ -76,14 +76,14 @@ def reject_lines(
     mark(spread(np.logical_or.reduce([(u == "")[k] for k, u in key_codes.values()])), "missing_key")
     day = distinct_dates(raw["period_start"])
     # a date pandas cannot hold (year 9999) is still a date, outside the window: looked for among the unparsed only
-    outside = day.take(day.outside)
+    # (each rule judged on the distinct cells, then taken to the lines)
     unparsed = day.take(day.value_nat)
-    mark(unparsed & (outside == 0), "bad_date")
+    mark(day.take(day.value_nat & (day.outside == 0)), "bad_date")
     qty_code, qty_values = distinct_quantities(raw["quantity"])
     qty = qty_values[qty_code]
-    mark(~np.isfinite(qty), "bad_quantity")
-    size = np.abs(np.nan_to_num(qty, nan=0.0, posinf=0.0, neginf=0.0))
-    mark(size > plausible.max_abs_quantity, "quantity_out_of_bounds")
+    mark((~np.isfinite(qty_values))[qty_code], "bad_quantity")
+    size = np.abs(np.nan_to_num(qty_values, nan=0.0, posinf=0.0, neginf=0.0))
+    mark((size > plausible.max_abs_quantity)[qty_code], "quantity_out_of_bounds")
     product_code, product_text = key_codes["product"]
     mark(spread(~pd.Series(product_text).isin(products["product"]).to_numpy()[product_code]), "unknown_product")
     codes = _joint_leaf_codes(key_codes, spans)
@@ -94,15 +94,13 @@ def reject_lines(
     line_code = spread(codes[0])
     mark(~pd.Series(line_code).isin(codes[1]).to_numpy(), "no_customer_span")
     del codes
-    same_value = (day.take(day.value_code), pd.factorize(qty_values, use_na_sentinel=False)[0][qty_code])
+    same_value = (day.take(day.value_code), qty_code, pd.factorize(qty_values, use_na_sentinel=False)[0])
     mark(_repeated_in_earlier_file(raw, line_code, same_value, reason == 0), "duplicate_of_other_file")
 
     # the cycle date: given, or the period after the trusted end of the usable lines
     has_date = ~unparsed
     ok = (reason == 0) & has_date
-    ordinals = np.full(len(raw), np.iinfo(np.int64).min, dtype=np.int64)
-    if ok.any():
-        ordinals[ok] = day.ordinals(period)[day.code[ok]]
+    ordinals = day.take(day.ordinals(period))  # 0 for a line without a date: never read (it is rejected)
     gap = gap_periods(plausible.isolation_gap_years, period)
     last = None
     if ok.any() and calendar.cycle_date == LATEST_COMPLETE_PERIOD:
@@ -115,8 +113,8 @@ def reject_lines(
     lowest = cycle_date - pd.Timedelta(days=round(plausible.years_before_cycle * 365.2425))
     highest = cycle_date + pd.Timedelta(days=round(plausible.years_after_cycle * 365.2425))
     values = pd.Series(day.value)
-    mark(day.take((values < lowest).to_numpy()) | (outside < 0), "date_before_window")
-    mark(day.take((values >= highest).to_numpy()) | (outside > 0), "date_after_window")
+    mark(day.take((values < lowest).to_numpy() | (day.outside < 0)), "date_before_window")
+    mark(day.take((values >= highest).to_numpy() | (day.outside > 0)), "date_after_window")
     history = (reason == 0) & (ordinals < cycle_ord) & has_date
     if history.any():
         first_ord = trusted_extent(ordinals[history], gap, trim_end=False)[0] if first_period is None else first_period
@@ -151,14 +149,16 @@ def _key_runs(raw: pd.DataFrame):
 
 
 def _repeated_in_earlier_file(
-    raw: pd.DataFrame, line_code: np.ndarray, same_value: tuple[np.ndarray, np.ndarray], candidate: np.ndarray
+    raw: pd.DataFrame, line_code: np.ndarray, same_value: tuple[np.ndarray, np.ndarray, np.ndarray],
+    candidate: np.ndarray,
 ) -> np.ndarray:
     """True for a line whose keys, date and quantity (parsed) are those of a line of an earlier file.
 
     Files come in the order they were read (sorted by name); repeats inside one
     file are separate shipments and stay. Only `candidate` lines are compared;
     `line_code` is equal exactly where two lines' keys are, `same_value` (date
-    code, quantity code) exactly where their parsed date and quantity are.
+    code per line; quantity cell per line and the code of each cell's parsed
+    quantity) exactly where their parsed date and quantity are.
     """
     out = np.zeros(len(raw), dtype=bool)
     if "source_file" not in raw.columns or not candidate.any():
@@ -184,7 +184,7 @@ def _repeated_in_earlier_file(
         at = at[shared_day[day[at]]]
     if not len(at):
         return out
-    parts = [line_code[at], same_value[0][at], same_value[1][at]]
+    parts = [line_code[at], same_value[0][at], same_value[2][same_value[1][at]]]
     file = file_code[at]
     group = pack_codes(parts, [int(part.max()) + 1 for part in parts])
     if group is not None:
