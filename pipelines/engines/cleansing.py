@@ -71,7 +71,12 @@ def reject_lines(
             mark(mask, why)
     # each text column coded once (`text_codes`); its rules judged on its distinct values, reached by the codes.
     # Lines in runs of one key (a leaf's lines read together): the keys coded and judged per run, then repeated
-    keyed, spread = _key_runs(raw)
+    keyed, starts = _key_runs(raw)
+    lengths = None if starts is None else np.diff(np.append(starts, len(raw)))
+
+    def spread(per_run: np.ndarray) -> np.ndarray:  # a per-run array repeated to the lines
+        return per_run if lengths is None else np.repeat(per_run, lengths)
+
     key_codes = {c: codes_of(keyed[c], use_na_sentinel=False) for c in LEAF}
     mark(spread(np.logical_or.reduce([(u == "")[k] for k, u in key_codes.values()])), "missing_key")
     day = distinct_dates(raw["period_start"])
@@ -91,8 +96,9 @@ def reject_lines(
     if codes is None:  # too many distinct keys to pack into one integer: pandas' own grouping
         codes = factorize(pd.concat([keyed[LEAF], spans[LEAF]], ignore_index=True), LEAF)[0]
         codes = codes[: len(keyed)], codes[len(keyed) :]
-    line_code = spread(codes[0])
-    mark(~pd.Series(line_code).isin(codes[1]).to_numpy(), "no_customer_span")
+    run_code = codes[0]
+    line_code = spread(run_code)
+    mark(spread(~pd.Series(run_code).isin(codes[1]).to_numpy()), "no_customer_span")
     del codes
     same_value = (day.take(day.value_code), qty_code, pd.factorize(qty_values, use_na_sentinel=False)[0])
     mark(_repeated_in_earlier_file(raw, line_code, same_value, reason == 0), "duplicate_of_other_file")
@@ -123,8 +129,13 @@ def reject_lines(
 
     ok = reason == 0
     at = np.flatnonzero(ok)
-    leaf_code, distinct = pd.factorize(line_code[ok])
-    leaf_code = leaf_code.astype(np.int64)
+    if starts is None:
+        leaf_code = pd.factorize(line_code[ok])[0].astype(np.int64)
+    else:  # numbered by first appearance among the used lines = among the runs holding one, coded per run
+        run_used = np.logical_or.reduceat(ok, starts) if len(starts) else np.zeros(0, dtype=bool)
+        run_leaf = np.full(len(starts), -1, dtype=np.int64)
+        run_leaf[run_used] = pd.factorize(run_code[run_used])[0]
+        leaf_code = spread(run_leaf)[ok]
     leaves = raw.iloc[at[first_rows(leaf_code)]][LEAF].reset_index(drop=True) if len(at) else raw[LEAF].iloc[0:0]
     used = UsedLines(leaf_code, leaves.reset_index(drop=True), ordinals[ok], qty[ok])
     rejected = raw.loc[~ok].drop(columns=["read_error"], errors="ignore").copy()
@@ -132,20 +143,17 @@ def reject_lines(
     return used, rejected.reset_index(drop=True), cycle_date
 
 
-def _key_runs(raw: pd.DataFrame):
-    """(key cells to code, spread): the leaf key columns of the first line of each run of lines sharing their key
-    objects and `spread`, which repeats a per-run array to the lines, when the runs are few (at most
-    1/RUNS_SHARE of the lines); else the lines themselves and the identity. Cells of one object are one
-    text, so a rule judged per run is the rule judged per line."""
+def _key_runs(raw: pd.DataFrame) -> tuple[pd.DataFrame, np.ndarray | None]:
+    """(key cells to code, run starts): the leaf key columns of the first line of each run of lines sharing
+    their key objects and the runs' first lines, when the runs are few (at most 1/RUNS_SHARE of the lines);
+    else the lines themselves and None. Cells of one object are one text, so a rule judged per run is the
+    rule judged per line."""
     columns = [raw[c].to_numpy() for c in LEAF]
     if len(raw) >= 1024 and all(values.dtype == object for values in columns):
         starts = run_starts(columns)
         if len(starts) * RUNS_SHARE <= len(raw):
-            lengths = np.diff(np.append(starts, len(raw)))
-            return pd.DataFrame({c: v[starts] for c, v in zip(LEAF, columns, strict=True)}), lambda per_run: (
-                np.repeat(per_run, lengths)
-            )
-    return raw, lambda per_line: per_line  # the lines' own columns (not copied)
+            return pd.DataFrame({c: v[starts] for c, v in zip(LEAF, columns, strict=True)}), starts
+    return raw, None  # the lines' own columns (not copied)
 
 
 def _repeated_in_earlier_file(
