@@ -58,8 +58,11 @@ def cell_positions(cleaned: pd.DataFrame, corrections: pd.DataFrame) -> np.ndarr
     codes = joint_codes(heads, corrections, LEAF)
     if codes is None or not pd.Index(codes[0]).is_unique:  # a leaf in two runs
         return None
-    every_day = np.concatenate([days, corr_days])
-    capacity = float(np.count_nonzero(np.bincount(every_day - every_day.min(initial=0))))
+    first_day = min(days.min(initial=0), corr_days.min(initial=0))
+    span = int(max(days.max(initial=first_day), corr_days.max(initial=first_day)) - first_day) + 1
+    # the distinct days of both tables, counted without joining them
+    held = np.bincount(days - first_day, minlength=span) + np.bincount(corr_days - first_day, minlength=span)
+    capacity = float(np.count_nonzero(held))
     for c in LEAF:  # as `joint_codes` of the whole tables, whose general path takes over past 62 bits
         both = pd.concat([heads[c], corrections[c]], ignore_index=True)
         capacity *= max(len(pd.factorize(both, use_na_sentinel=False)[1]), 1)
