@@ -172,10 +172,11 @@ def _class_rules(x, skip, name, leaf_index, settings, out: Blocks, corrected, ro
     m = season_length(settings.calendar.period)
     if rule.seasonal_adjust == "auto" and pc.models.seasonal:
         s, adjusted, _ = seasonal_component(x, m, exclude=skip)
-    else:
-        s, adjusted = np.zeros_like(x), np.zeros(len(x), dtype=bool)
+    else:  # no seasonal component: x - 0.0 and r + 0.0 are x and r + 0.0 as with a matrix of zeros
+        s, adjusted = 0.0, np.zeros(len(x), dtype=bool)
     out.seasonal_series[name] = out.seasonal_series.get(name, 0) + int(adjusted.sum())
-    seasonal_figures = {"seasonal": np.where(adjusted[:, None], s, np.nan)}
+    # the seasonal figure of each correction (NaN, left out of its parameters, where a series is not adjusted)
+    seasonal_figures = {"seasonal": np.where(adjusted[:, None], s, np.nan)} if adjusted.any() else {}
     params = rule_parameters(rule)
 
     if rule.rule != "none":
