@@ -127,19 +127,15 @@ def _clean_block(block, a: int, b: int, grid: Grid, settings, out: Blocks, flagg
     keep = observed | ((cols >= grid.start[a:b, None]) & (cols <= grid.end[a:b, None]))
 
     # returns: negative net periods to zero
-    raw_net = np.where(keep, net, np.nan)
-    values = raw_net.copy()
+    values = np.where(keep, net, np.nan)
     negative = observed & (net < 0)
-    rows_all = np.arange(a, b)
-    if negative.any():
+    if negative.any():  # the rows read the net values before they are set to zero
+        zero = np.broadcast_to(0.0, values.shape)
         out.corrections.append(
-            correction_rows(
-                negative, raw_net, np.zeros_like(raw_net), "negative_net_to_zero", {"rule": "net_then_zero"}, rows_all
-            )
+            correction_rows(negative, values, zero, "negative_net_to_zero", {"rule": "net_then_zero"}, np.arange(a, b))
         )
         values[negative] = 0.0
     corrected = negative
-    del raw_net
 
     # shortage periods: flagged on every child of the product x site
     short = grid.short_by_parent[grid.parent[a:b]] & keep
