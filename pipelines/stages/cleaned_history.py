@@ -127,7 +127,7 @@ from pipelines.engines.cleansing import (
     sorted_corrections,
 )
 from pipelines.engines.cleansing_blocks import BLOCK_CELLS, Grid, Lines, class_summary, clean_blocks
-from pipelines.engines.history_proofs import find_unexplained_changes
+from pipelines.engines.history_proofs import find_unexplained_changes, leaf_runs
 from pipelines.engines.proofs import find_unaccounted_lines
 from pipelines.engines.report_charts import corrections_chart
 from pipelines.keys import LEAF, lookup
@@ -314,9 +314,12 @@ def history_checks(
     bad = rejected[rejected["reason"] != "on_or_after_cycle_date"]
     limit = settings.max_rejected_share
     fraction = len(bad) / len(raw_history) if len(raw_history) else 0.0
+    runs = leaf_runs(cleaned)  # cleaned_history's runs of one leaf, found once for both proofs
     return {
-        EVERY_RAW_ROW_ACCOUNTED: CheckRows(find_unaccounted_lines(raw_history, cleaned, rejected), counts),
-        CORRECTIONS_EXPLAIN_CHANGES: CheckRows(find_unexplained_changes(cleaned, corrections)),
+        EVERY_RAW_ROW_ACCOUNTED: CheckRows(
+            find_unaccounted_lines(raw_history, cleaned, rejected, cleaned_runs=runs), counts
+        ),
+        CORRECTIONS_EXPLAIN_CHANGES: CheckRows(find_unexplained_changes(cleaned, corrections, cleaned_runs=runs)),
         REJECTED_ROWS_WITHIN_LIMIT: CheckRows(
             bad if fraction > limit else bad.iloc[0:0],
             {
