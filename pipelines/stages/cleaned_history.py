@@ -192,12 +192,14 @@ def clean_history(
     # --- long tables
     cells = blocks.cells()
     leaf = cells.pop("leaf")
-    cleaned = pd.DataFrame({c: leaves[c].to_numpy()[leaf] for c in LEAF}, copy=False)  # each key column taken once
+    columns = {c: leaves[c].to_numpy()[leaf] for c in LEAF}  # each key column taken once
     del leaf
     # the grid's t period starts, reached by each cell's column (one gather, not a date conversion per cell)
-    cleaned["period_start"] = ordinal_to_start(np.arange(t) + first_ord, period).to_numpy()[cells.pop("col")]
+    columns["period_start"] = ordinal_to_start(np.arange(t) + first_ord, period).to_numpy()[cells.pop("col")]
     for name in ("quantity", "raw_quantity", "lines", "filled", "corrected", "shortage"):
-        cleaned[name] = cells.pop(name)
+        columns[name] = cells.pop(name)
+    cleaned = pd.DataFrame(columns, copy=False)  # the arrays themselves, not copied column by column
+    del columns
     return CleaningResult(
         cleaned=cleaned,
         rejected=rejected,
