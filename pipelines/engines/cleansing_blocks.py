@@ -31,6 +31,19 @@ from pipelines.engines.outliers import judge_outliers, rolling_median, rule_para
 BLOCK_CELLS = 2_000_000  # leaf x period cells per block: about 16 MB per float64 matrix, some 20 held at once
 
 
+def stable_order(codes: np.ndarray) -> np.ndarray:
+    """`np.argsort(codes, kind="stable")`, made from the runs of equal codes when they are few (a leaf's lines
+    are read together): the runs sorted stably by code, then each run's positions in place, in order."""
+    n = len(codes)
+    starts = np.flatnonzero(np.r_[True, codes[1:] != codes[:-1]]) if n else np.zeros(0, dtype=np.int64)
+    if len(starts) * 4 > n:
+        return np.argsort(codes, kind="stable")
+    lengths = np.diff(np.append(starts, n))
+    run_order = np.argsort(codes[starts], kind="stable")
+    lengths = lengths[run_order]
+    return np.arange(n) + np.repeat(starts[run_order] - (np.cumsum(lengths) - lengths), lengths)
+
+
 @dataclass
 class Lines:
     """The used lines, grouped by leaf code (stable: lines of a leaf keep the order they were read)."""
@@ -41,7 +54,7 @@ class Lines:
 
     @classmethod
     def of(cls, leaf_code: np.ndarray, col: np.ndarray, quantity: np.ndarray) -> Lines:
-        order = np.argsort(leaf_code, kind="stable")
+        order = stable_order(leaf_code)
         return cls(leaf_code[order], col[order], quantity[order])
 
     def first_col(self, n_leaves: int) -> np.ndarray:
