@@ -48,6 +48,15 @@ def run_starts(columns: list[np.ndarray]) -> np.ndarray:
     return np.flatnonzero(change)
 
 
+def first_appearances(codes: np.ndarray) -> np.ndarray:
+    """The row of each code's first appearance, for codes 0, 1, ... numbered by first appearance (as
+    `pd.factorize` numbers them, no missing code): a code is new exactly where their running maximum rises."""
+    if not len(codes):
+        return np.zeros(0, dtype=np.int64)
+    seen = np.maximum.accumulate(codes)
+    return np.flatnonzero(np.r_[True, seen[1:] > seen[:-1]])
+
+
 def codes_of(values, use_na_sentinel: bool = True) -> tuple[np.ndarray, np.ndarray]:
     """`pd.factorize(values)` as (int64 codes, uniques array), for an object column without hashing every cell."""
     values = values.to_numpy() if isinstance(values, pd.Series | pd.Index) else np.asarray(values)
@@ -63,8 +72,6 @@ def codes_of(values, use_na_sentinel: bool = True) -> tuple[np.ndarray, np.ndarr
         codes, uniques = pd.factorize(values[starts], use_na_sentinel=use_na_sentinel)
         return np.repeat(codes.astype(np.int64), np.diff(np.append(starts, n))), np.asarray(uniques)
     object_code = pd.factorize(where)[0]
-    # numbered by first appearance, a code is new exactly where the running maximum of the codes rises
-    seen = np.maximum.accumulate(object_code)
-    first = np.flatnonzero(np.r_[True, seen[1:] > seen[:-1]])
+    first = first_appearances(object_code)
     codes, uniques = pd.factorize(values[first], use_na_sentinel=use_na_sentinel)
     return codes.astype(np.int64)[object_code], np.asarray(uniques)

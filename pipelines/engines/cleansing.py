@@ -22,8 +22,8 @@ from pipelines.calendar import (
 )
 from pipelines.config_inputs import PlausibilityConfig
 from pipelines.engines.plausible import distinct_dates, distinct_quantities, gap_periods, trusted_extent
-from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup, pack_codes
-from pipelines.text_codes import RUNS_SHARE, codes_of, run_starts
+from pipelines.keys import LEAF, PARENT, factorize, lookup, pack_codes
+from pipelines.text_codes import RUNS_SHARE, codes_of, first_appearances, run_starts
 
 
 @dataclass(frozen=True)
@@ -136,7 +136,7 @@ def reject_lines(
         run_leaf = np.full(len(starts), -1, dtype=np.int64)
         run_leaf[run_used] = pd.factorize(run_code[run_used])[0]
         leaf_code = spread(run_leaf)[ok]
-    leaves = raw.iloc[at[first_rows(leaf_code)]][LEAF].reset_index(drop=True) if len(at) else raw[LEAF].iloc[0:0]
+    leaves = raw.iloc[at[first_appearances(leaf_code)]][LEAF].reset_index(drop=True) if len(at) else raw[LEAF].iloc[0:0]
     used = UsedLines(leaf_code, leaves.reset_index(drop=True), ordinals[ok], qty[ok])
     rejected = raw.loc[~ok].drop(columns=["read_error"], errors="ignore").copy()
     rejected["reason"] = np.array([None, *reasons], dtype=object)[reason[~ok]]
