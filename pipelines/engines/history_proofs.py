@@ -123,11 +123,20 @@ def _unexplained_at(
     """find_unexplained_changes given the row of `cleaned` of each correction (`pos`, -1: none)."""
     delta = corrections["delta"].to_numpy(dtype=float)
     inside = pos >= 0
-    moved = np.bincount(pos[inside], weights=delta[inside], minlength=len(cleaned))
-    unexplained = cleaned["quantity"].to_numpy(dtype=float) - cleaned["raw_quantity"].to_numpy(dtype=float) - moved
-    bad = ~(np.abs(unexplained) <= tolerance)
-    out = cleaned.iloc[np.flatnonzero(bad)][key + ["raw_quantity", "quantity"]]  # the few rows, then their columns
-    out = out.assign(corrections=moved[bad], unexplained=unexplained[bad])
+    # the corrections summed per corrected row only (bincount's order: the same sums); x - 0.0 is x, so the
+    # rows without a correction need no subtraction
+    rows, row_of = np.unique(pos[inside], return_inverse=True)
+    moved = np.bincount(row_of, weights=delta[inside], minlength=len(rows))
+    unexplained = cleaned["quantity"].to_numpy(dtype=float) - cleaned["raw_quantity"].to_numpy(dtype=float)
+    unexplained[rows] -= moved
+    bad = np.flatnonzero(~(np.abs(unexplained) <= tolerance))
+    moved_bad = np.zeros(len(bad))  # the corrections of each unexplained row (none: 0.0)
+    if len(rows) and len(bad):
+        at = np.minimum(np.searchsorted(rows, bad), len(rows) - 1)
+        hit = rows[at] == bad
+        moved_bad[hit] = moved[at[hit]]
+    out = cleaned.iloc[bad][key + ["raw_quantity", "quantity"]]  # the few rows, then their columns
+    out = out.assign(corrections=moved_bad, unexplained=unexplained[bad])
     if not inside.all():  # corrections of a period cleaned_history does not hold: unexplained whatever their sum
         orphans = corrections.loc[~inside, key + ["delta"]]
         orphans = orphans.groupby(key, sort=False, observed=True, dropna=False)["delta"].sum().rename("corrections")
