@@ -24,13 +24,16 @@ import pandas as pd
 RUNS_SHARE = 4  # hash the run starts when there are at most 1/RUNS_SHARE as many runs as rows
 
 
-def addresses(values: np.ndarray) -> np.ndarray:
-    """The address of each cell's object of an object array (int64 per cell; a copy, so it outlives `values`)."""
-    values = np.ascontiguousarray(values, dtype=object)
-    if not len(values):
+def addresses(values: np.ndarray, copy: bool = True) -> np.ndarray:
+    """The address of each cell's object of an object array (int64 per cell; a copy, so it outlives `values`).
+
+    `copy=False`: the cells' pointers read in place, without copying them, when `values` is a contiguous
+    object array already - valid only while `values` lives, for a caller that holds it meanwhile."""
+    contiguous = np.ascontiguousarray(values, dtype=object)
+    if not len(contiguous):
         return np.zeros(0, dtype=np.int64)
-    cells = (ctypes.c_ssize_t * len(values)).from_address(values.ctypes.data)
-    return np.ctypeslib.as_array(cells).astype(np.int64, copy=True)
+    cells = np.ctypeslib.as_array((ctypes.c_int64 * len(contiguous)).from_address(contiguous.ctypes.data))
+    return cells.copy() if copy or contiguous is not values else cells
 
 
 def run_starts(columns: list[np.ndarray]) -> np.ndarray:
@@ -40,9 +43,18 @@ def run_starts(columns: list[np.ndarray]) -> np.ndarray:
     if n:
         change[0] = True
     for values in columns:
-        where = addresses(values)
+        where = addresses(values, copy=False)  # `columns` holds the cells while they are compared
         change[1:] |= where[1:] != where[:-1]
     return np.flatnonzero(change)
+
+
+def first_appearances(codes: np.ndarray) -> np.ndarray:
+    """The row of each code's first appearance, for codes 0, 1, ... numbered by first appearance (as
+    `pd.factorize` numbers them, no missing code): a code is new exactly where their running maximum rises."""
+    if not len(codes):
+        return np.zeros(0, dtype=np.int64)
+    seen = np.maximum.accumulate(codes)
+    return np.flatnonzero(np.r_[True, seen[1:] > seen[:-1]])
 
 
 def codes_of(values, use_na_sentinel: bool = True) -> tuple[np.ndarray, np.ndarray]:
@@ -52,7 +64,7 @@ def codes_of(values, use_na_sentinel: bool = True) -> tuple[np.ndarray, np.ndarr
     if values.dtype != object or n < 1024:
         codes, uniques = pd.factorize(values, use_na_sentinel=use_na_sentinel)
         return codes.astype(np.int64, copy=False), np.asarray(uniques)
-    where = addresses(values)
+    where = addresses(values, copy=False)  # `values` is held till the codes are made
     change = np.ones(n, dtype=bool)
     change[1:] = where[1:] != where[:-1]
     starts = np.flatnonzero(change)
@@ -60,6 +72,6 @@ def codes_of(values, use_na_sentinel: bool = True) -> tuple[np.ndarray, np.ndarr
         codes, uniques = pd.factorize(values[starts], use_na_sentinel=use_na_sentinel)
         return np.repeat(codes.astype(np.int64), np.diff(np.append(starts, n))), np.asarray(uniques)
     object_code = pd.factorize(where)[0]
-    first = pd.Series(object_code).drop_duplicates().index.to_numpy()
+    first = first_appearances(object_code)
     codes, uniques = pd.factorize(values[first], use_na_sentinel=use_na_sentinel)
     return codes.astype(np.int64)[object_code], np.asarray(uniques)

@@ -143,9 +143,25 @@ def test_line_rejection_on_key_runs_is_that_of_every_line(make_products, make_sp
     config = make_config(calendar={"cycle_date": "2026-03-02"})
     fast = clean_history(raw, products, spans, config)
     with monkeypatch.context() as m:
-        m.setattr(cleansing, "_key_runs", lambda frame: (frame, lambda per_line: per_line))
+        m.setattr(cleansing, "_key_runs", lambda frame: (frame, None))
         slow = clean_history(raw, products, spans, config)
     assert {"missing_key", "unknown_product", "no_customer_span", "duplicate_of_other_file", "bad_date",
             "bad_quantity"} <= set(fast.rejected["reason"])
     for name in ("cleaned", "rejected", "corrections"):
         pd.testing.assert_frame_equal(getattr(fast, name), getattr(slow, name), check_exact=True)
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_stable_order_through_runs_is_numpys_stable_argsort(seed):
+    """`cleansing_blocks.stable_order` (the lines grouped by leaf through their runs) against its reference,
+    numpy's stable argsort, on codes in runs (the fast path) and not (its fallback)."""
+    from pipelines.engines.cleansing_blocks import stable_order
+
+    rng = np.random.default_rng(seed)
+    for _ in range(100):
+        n, k = int(rng.integers(0, 400)), int(rng.integers(1, 30))
+        m = max(n // int(rng.integers(1, 20)), 1)
+        runs = np.repeat(rng.integers(0, k, m), rng.integers(1, 12, m))[:n]
+        for codes in (runs, rng.integers(0, k, n)):
+            codes = codes.astype(np.int64)
+            assert np.array_equal(stable_order(codes), np.argsort(codes, kind="stable"))

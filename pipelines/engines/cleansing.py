@@ -22,8 +22,8 @@ from pipelines.calendar import (
 )
 from pipelines.config_inputs import PlausibilityConfig
 from pipelines.engines.plausible import distinct_dates, distinct_quantities, gap_periods, trusted_extent
-from pipelines.keys import LEAF, PARENT, factorize, first_rows, lookup, pack_codes
-from pipelines.text_codes import RUNS_SHARE, codes_of, run_starts
+from pipelines.keys import LEAF, PARENT, factorize, lookup, pack_codes
+from pipelines.text_codes import RUNS_SHARE, codes_of, first_appearances, run_starts
 
 
 @dataclass(frozen=True)
@@ -71,19 +71,24 @@ def reject_lines(
             mark(mask, why)
     # each text column coded once (`text_codes`); its rules judged on its distinct values, reached by the codes.
     # Lines in runs of one key (a leaf's lines read together): the keys coded and judged per run, then repeated
-    keyed, spread = _key_runs(raw)
+    keyed, starts = _key_runs(raw)
+    lengths = None if starts is None else np.diff(np.append(starts, len(raw)))
+
+    def spread(per_run: np.ndarray) -> np.ndarray:  # a per-run array repeated to the lines
+        return per_run if lengths is None else np.repeat(per_run, lengths)
+
     key_codes = {c: codes_of(keyed[c], use_na_sentinel=False) for c in LEAF}
     mark(spread(np.logical_or.reduce([(u == "")[k] for k, u in key_codes.values()])), "missing_key")
     day = distinct_dates(raw["period_start"])
     # a date pandas cannot hold (year 9999) is still a date, outside the window: looked for among the unparsed only
-    outside = day.take(day.outside)
+    # (each rule judged on the distinct cells, then taken to the lines)
     unparsed = day.take(day.value_nat)
-    mark(unparsed & (outside == 0), "bad_date")
+    mark(day.take(day.value_nat & (day.outside == 0)), "bad_date")
     qty_code, qty_values = distinct_quantities(raw["quantity"])
     qty = qty_values[qty_code]
-    mark(~np.isfinite(qty), "bad_quantity")
-    size = np.abs(np.nan_to_num(qty, nan=0.0, posinf=0.0, neginf=0.0))
-    mark(size > plausible.max_abs_quantity, "quantity_out_of_bounds")
+    mark((~np.isfinite(qty_values))[qty_code], "bad_quantity")
+    size = np.abs(np.nan_to_num(qty_values, nan=0.0, posinf=0.0, neginf=0.0))
+    mark((size > plausible.max_abs_quantity)[qty_code], "quantity_out_of_bounds")
     product_code, product_text = key_codes["product"]
     mark(spread(~pd.Series(product_text).isin(products["product"]).to_numpy()[product_code]), "unknown_product")
     codes = _joint_leaf_codes(key_codes, spans)
@@ -91,18 +96,17 @@ def reject_lines(
     if codes is None:  # too many distinct keys to pack into one integer: pandas' own grouping
         codes = factorize(pd.concat([keyed[LEAF], spans[LEAF]], ignore_index=True), LEAF)[0]
         codes = codes[: len(keyed)], codes[len(keyed) :]
-    line_code = spread(codes[0])
-    mark(~pd.Series(line_code).isin(codes[1]).to_numpy(), "no_customer_span")
+    run_code = codes[0]
+    line_code = spread(run_code)
+    mark(spread(~pd.Series(run_code).isin(codes[1]).to_numpy()), "no_customer_span")
     del codes
-    same_value = (day.take(day.value_code), pd.factorize(qty_values, use_na_sentinel=False)[0][qty_code])
+    same_value = (day.take(day.value_code), qty_code, pd.factorize(qty_values, use_na_sentinel=False)[0])
     mark(_repeated_in_earlier_file(raw, line_code, same_value, reason == 0), "duplicate_of_other_file")
 
     # the cycle date: given, or the period after the trusted end of the usable lines
     has_date = ~unparsed
     ok = (reason == 0) & has_date
-    ordinals = np.full(len(raw), np.iinfo(np.int64).min, dtype=np.int64)
-    if ok.any():
-        ordinals[ok] = day.ordinals(period)[day.code[ok]]
+    ordinals = day.take(day.ordinals(period))  # 0 for a line without a date: never read (it is rejected)
     gap = gap_periods(plausible.isolation_gap_years, period)
     last = None
     if ok.any() and calendar.cycle_date == LATEST_COMPLETE_PERIOD:
@@ -115,8 +119,8 @@ def reject_lines(
     lowest = cycle_date - pd.Timedelta(days=round(plausible.years_before_cycle * 365.2425))
     highest = cycle_date + pd.Timedelta(days=round(plausible.years_after_cycle * 365.2425))
     values = pd.Series(day.value)
-    mark(day.take((values < lowest).to_numpy()) | (outside < 0), "date_before_window")
-    mark(day.take((values >= highest).to_numpy()) | (outside > 0), "date_after_window")
+    mark(day.take((values < lowest).to_numpy() | (day.outside < 0)), "date_before_window")
+    mark(day.take((values >= highest).to_numpy() | (day.outside > 0)), "date_after_window")
     history = (reason == 0) & (ordinals < cycle_ord) & has_date
     if history.any():
         first_ord = trusted_extent(ordinals[history], gap, trim_end=False)[0] if first_period is None else first_period
@@ -125,40 +129,44 @@ def reject_lines(
 
     ok = reason == 0
     at = np.flatnonzero(ok)
-    leaf_code, distinct = pd.factorize(line_code[ok])
-    leaf_code = leaf_code.astype(np.int64)
-    leaves = raw.iloc[at[first_rows(leaf_code)]][LEAF].reset_index(drop=True) if len(at) else raw[LEAF].iloc[0:0]
+    if starts is None:
+        leaf_code = pd.factorize(line_code[ok])[0].astype(np.int64)
+    else:  # numbered by first appearance among the used lines = among the runs holding one, coded per run
+        run_used = np.logical_or.reduceat(ok, starts) if len(starts) else np.zeros(0, dtype=bool)
+        run_leaf = np.full(len(starts), -1, dtype=np.int64)
+        run_leaf[run_used] = pd.factorize(run_code[run_used])[0]
+        leaf_code = spread(run_leaf)[ok]
+    leaves = raw.iloc[at[first_appearances(leaf_code)]][LEAF].reset_index(drop=True) if len(at) else raw[LEAF].iloc[0:0]
     used = UsedLines(leaf_code, leaves.reset_index(drop=True), ordinals[ok], qty[ok])
     rejected = raw.loc[~ok].drop(columns=["read_error"], errors="ignore").copy()
     rejected["reason"] = np.array([None, *reasons], dtype=object)[reason[~ok]]
     return used, rejected.reset_index(drop=True), cycle_date
 
 
-def _key_runs(raw: pd.DataFrame):
-    """(key cells to code, spread): the leaf key columns of the first line of each run of lines sharing their key
-    objects and `spread`, which repeats a per-run array to the lines, when the runs are few (at most
-    1/RUNS_SHARE of the lines); else the lines themselves and the identity. Cells of one object are one
-    text, so a rule judged per run is the rule judged per line."""
+def _key_runs(raw: pd.DataFrame) -> tuple[pd.DataFrame, np.ndarray | None]:
+    """(key cells to code, run starts): the leaf key columns of the first line of each run of lines sharing
+    their key objects and the runs' first lines, when the runs are few (at most 1/RUNS_SHARE of the lines);
+    else the lines themselves and None. Cells of one object are one text, so a rule judged per run is the
+    rule judged per line."""
     columns = [raw[c].to_numpy() for c in LEAF]
     if len(raw) >= 1024 and all(values.dtype == object for values in columns):
         starts = run_starts(columns)
         if len(starts) * RUNS_SHARE <= len(raw):
-            lengths = np.diff(np.append(starts, len(raw)))
-            return pd.DataFrame({c: v[starts] for c, v in zip(LEAF, columns, strict=True)}), lambda per_run: (
-                np.repeat(per_run, lengths)
-            )
-    return raw, lambda per_line: per_line  # the lines' own columns (not copied)
+            return pd.DataFrame({c: v[starts] for c, v in zip(LEAF, columns, strict=True)}), starts
+    return raw, None  # the lines' own columns (not copied)
 
 
 def _repeated_in_earlier_file(
-    raw: pd.DataFrame, line_code: np.ndarray, same_value: tuple[np.ndarray, np.ndarray], candidate: np.ndarray
+    raw: pd.DataFrame, line_code: np.ndarray, same_value: tuple[np.ndarray, np.ndarray, np.ndarray],
+    candidate: np.ndarray,
 ) -> np.ndarray:
     """True for a line whose keys, date and quantity (parsed) are those of a line of an earlier file.
 
     Files come in the order they were read (sorted by name); repeats inside one
     file are separate shipments and stay. Only `candidate` lines are compared;
     `line_code` is equal exactly where two lines' keys are, `same_value` (date
-    code, quantity code) exactly where their parsed date and quantity are.
+    code per line; quantity cell per line and the code of each cell's parsed
+    quantity) exactly where their parsed date and quantity are.
     """
     out = np.zeros(len(raw), dtype=bool)
     if "source_file" not in raw.columns or not candidate.any():
@@ -166,17 +174,25 @@ def _repeated_in_earlier_file(
     file_code, files = codes_of(raw["source_file"])
     if len(files) < 2:  # as `nunique`: a missing file name is not a file
         return out
-    at = np.flatnonzero(candidate)
-    # a repeat has the date of a line of an earlier file: only the lines of such dates are grouped
-    day, file = same_value[0][at], file_code[at]
-    earliest = np.full(int(day.max()) + 1, np.iinfo(np.int64).max, dtype=np.int64)
-    np.minimum.at(earliest, day, file)
-    shared_day = np.zeros(len(earliest), dtype=bool)
-    shared_day[day[file > earliest[day]]] = True
-    at = at[shared_day[day]]
+    # a repeat has the date of a line of an earlier file: only the candidate lines of such dates are grouped,
+    # the dates two file codes or more hold (a missing file name, code -1, is one: the earliest)
+    day = same_value[0]
+    n_days, slots = int(day.max(initial=0)) + 1, len(files) + 1
+    if slots * n_days <= 4 * len(raw) + 1_000_000:  # a file x date table of counts, a spare cell for the others
+        cell = np.where(candidate, (file_code + 1) * n_days + day, slots * n_days)
+        held = np.bincount(cell, minlength=slots * n_days + 1)[:-1].reshape(slots, n_days) > 0
+        shared_day = held.sum(axis=0) > 1
+        at = np.flatnonzero(candidate & shared_day[day])
+    else:
+        at = np.flatnonzero(candidate)
+        earliest = np.full(n_days, np.iinfo(np.int64).max, dtype=np.int64)
+        np.minimum.at(earliest, day[at], file_code[at])
+        shared_day = np.zeros(n_days, dtype=bool)
+        shared_day[day[at][file_code[at] > earliest[day[at]]]] = True
+        at = at[shared_day[day[at]]]
     if not len(at):
         return out
-    parts = [line_code[at], same_value[0][at], same_value[1][at]]
+    parts = [line_code[at], same_value[0][at], same_value[2][same_value[1][at]]]
     file = file_code[at]
     group = pack_codes(parts, [int(part.max()) + 1 for part in parts])
     if group is not None:
@@ -320,8 +336,10 @@ def _parameter_texts(params: dict, picked: dict[str, np.ndarray], adjusted: np.n
     for k, v in picked.items():
         has = ~np.isnan(v)
         name = json.dumps(k) + ": "
-        written = [name + repr(round(float(x), 6)) for x in v[has]]
-        texts[has] = texts[has] + np.where(first[has], "", ", ").astype(object) + np.array(written, dtype=object)
+        # each distinct figure written once (distinct by its bits: 0.0 and -0.0 are written apart)
+        bits, at = np.unique(np.ascontiguousarray(v[has], dtype=np.float64).view(np.int64), return_inverse=True)
+        written = np.array([name + repr(round(float(x), 6)) for x in bits.view(np.float64)], dtype=object)[at]
+        texts[has] = texts[has] + np.where(first[has], "", ", ").astype(object) + written
         first[has] = False
     if adjusted is not None:
         flag = np.where(np.asarray(adjusted, dtype=bool), '"seasonal_adjusted": true', '"seasonal_adjusted": false')

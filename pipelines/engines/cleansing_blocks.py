@@ -31,6 +31,19 @@ from pipelines.engines.outliers import judge_outliers, rolling_median, rule_para
 BLOCK_CELLS = 2_000_000  # leaf x period cells per block: about 16 MB per float64 matrix, some 20 held at once
 
 
+def stable_order(codes: np.ndarray) -> np.ndarray:
+    """`np.argsort(codes, kind="stable")`, made from the runs of equal codes when they are few (a leaf's lines
+    are read together): the runs sorted stably by code, then each run's positions in place, in order."""
+    n = len(codes)
+    starts = np.flatnonzero(np.r_[True, codes[1:] != codes[:-1]]) if n else np.zeros(0, dtype=np.int64)
+    if len(starts) * 4 > n:
+        return np.argsort(codes, kind="stable")
+    lengths = np.diff(np.append(starts, n))
+    run_order = np.argsort(codes[starts], kind="stable")
+    lengths = lengths[run_order]
+    return np.arange(n) + np.repeat(starts[run_order] - (np.cumsum(lengths) - lengths), lengths)
+
+
 @dataclass
 class Lines:
     """The used lines, grouped by leaf code (stable: lines of a leaf keep the order they were read)."""
@@ -41,7 +54,7 @@ class Lines:
 
     @classmethod
     def of(cls, leaf_code: np.ndarray, col: np.ndarray, quantity: np.ndarray) -> Lines:
-        order = np.argsort(leaf_code, kind="stable")
+        order = stable_order(leaf_code)
         return cls(leaf_code[order], col[order], quantity[order])
 
     def first_col(self, n_leaves: int) -> np.ndarray:
@@ -127,19 +140,15 @@ def _clean_block(block, a: int, b: int, grid: Grid, settings, out: Blocks, flagg
     keep = observed | ((cols >= grid.start[a:b, None]) & (cols <= grid.end[a:b, None]))
 
     # returns: negative net periods to zero
-    raw_net = np.where(keep, net, np.nan)
-    values = raw_net.copy()
+    values = np.where(keep, net, np.nan)
     negative = observed & (net < 0)
-    rows_all = np.arange(a, b)
-    if negative.any():
+    if negative.any():  # the rows read the net values before they are set to zero
+        zero = np.broadcast_to(0.0, values.shape)
         out.corrections.append(
-            correction_rows(
-                negative, raw_net, np.zeros_like(raw_net), "negative_net_to_zero", {"rule": "net_then_zero"}, rows_all
-            )
+            correction_rows(negative, values, zero, "negative_net_to_zero", {"rule": "net_then_zero"}, np.arange(a, b))
         )
         values[negative] = 0.0
     corrected = negative
-    del raw_net
 
     # shortage periods: flagged on every child of the product x site
     short = grid.short_by_parent[grid.parent[a:b]] & keep
@@ -153,15 +162,16 @@ def _clean_block(block, a: int, b: int, grid: Grid, settings, out: Blocks, flagg
         x = _class_rules(values[rows], short[rows], name, rows + a, settings, out, corrected, rows)
         values[rows] = x
 
-    li, pj = np.nonzero(keep)
-    out.leaf.append((li + a).astype(np.int64))
+    at = np.flatnonzero(keep)  # the kept cells, row by row: one flat gather per column
+    li, pj = np.divmod(at, t)
+    out.leaf.append(li + a)
     out.col.append(pj.astype(np.int32))
-    out.quantity.append(values[li, pj])
-    out.raw_quantity.append(net[li, pj])
-    out.lines.append(lines[li, pj])
-    out.filled.append(~observed[li, pj])
-    out.corrected.append(corrected[li, pj])
-    out.shortage.append(short[li, pj])
+    out.quantity.append(values.ravel().take(at))
+    out.raw_quantity.append(net.ravel().take(at))
+    out.lines.append(lines.ravel().take(at))
+    out.filled.append(~observed.ravel().take(at))
+    out.corrected.append(corrected.ravel().take(at))
+    out.shortage.append(short.ravel().take(at))
 
 
 def _class_rules(x, skip, name, leaf_index, settings, out: Blocks, corrected, rows) -> np.ndarray:
@@ -171,10 +181,11 @@ def _class_rules(x, skip, name, leaf_index, settings, out: Blocks, corrected, ro
     m = season_length(settings.calendar.period)
     if rule.seasonal_adjust == "auto" and pc.models.seasonal:
         s, adjusted, _ = seasonal_component(x, m, exclude=skip)
-    else:
-        s, adjusted = np.zeros_like(x), np.zeros(len(x), dtype=bool)
+    else:  # no seasonal component: x - 0.0 and r + 0.0 are x and r + 0.0 as with a matrix of zeros
+        s, adjusted = 0.0, np.zeros(len(x), dtype=bool)
     out.seasonal_series[name] = out.seasonal_series.get(name, 0) + int(adjusted.sum())
-    seasonal_figures = {"seasonal": np.where(adjusted[:, None], s, np.nan)}
+    # the seasonal figure of each correction (NaN, left out of its parameters, where a series is not adjusted)
+    seasonal_figures = {"seasonal": np.where(adjusted[:, None], s, np.nan)} if adjusted.any() else {}
     params = rule_parameters(rule)
 
     if rule.rule != "none":

@@ -21,6 +21,7 @@ from pipelines.keys import LEAF, joint_codes
 from pipelines.text_codes import RUNS_SHARE, codes_of, run_starts
 
 DAY_NS = 86_400 * 10**9
+RUNS_UNSEEN = object()  # `cleaned_runs` not given: the proof finds `leaf_runs(cleaned)` itself
 
 
 def leaf_runs(frame: pd.DataFrame) -> tuple[np.ndarray, pd.DataFrame] | None:
@@ -42,15 +43,16 @@ def _days(values: pd.Series) -> np.ndarray | None:
     if values.dtype != "datetime64[ns]":
         return None
     ns = values.to_numpy().view(np.int64)
-    if len(ns) and (values.isna().any() or (ns % DAY_NS).any()):
+    days, rest = np.divmod(ns, DAY_NS)  # one pass for both
+    if len(ns) and (values.isna().any() or rest.any()):
         return None
-    return ns // DAY_NS
+    return days
 
 
-def cell_positions(cleaned: pd.DataFrame, corrections: pd.DataFrame) -> np.ndarray | None:
+def cell_positions(cleaned: pd.DataFrame, corrections: pd.DataFrame, cleaned_runs=RUNS_UNSEEN) -> np.ndarray | None:
     """Row of `cleaned` holding each correction's leaf and period (-1 where none), when each leaf of `cleaned` is
     one run of rows with its periods strictly increasing (so each leaf and period is one row); else None."""
-    runs = leaf_runs(cleaned)
+    runs = leaf_runs(cleaned) if cleaned_runs is RUNS_UNSEEN else cleaned_runs
     days, corr_days = _days(cleaned["period_start"]), _days(corrections["period_start"])
     if runs is None or days is None or corr_days is None:
         return None
@@ -58,21 +60,27 @@ def cell_positions(cleaned: pd.DataFrame, corrections: pd.DataFrame) -> np.ndarr
     codes = joint_codes(heads, corrections, LEAF)
     if codes is None or not pd.Index(codes[0]).is_unique:  # a leaf in two runs
         return None
-    every_day = np.concatenate([days, corr_days])
-    capacity = float(np.count_nonzero(np.bincount(every_day - every_day.min(initial=0))))
+    first_day = min(days.min(initial=0), corr_days.min(initial=0))
+    span = int(max(days.max(initial=first_day), corr_days.max(initial=first_day)) - first_day) + 1
+    # the distinct days of both tables, counted without joining them
+    held = np.bincount(days - first_day, minlength=span) + np.bincount(corr_days - first_day, minlength=span)
+    capacity = float(np.count_nonzero(held))
     for c in LEAF:  # as `joint_codes` of the whole tables, whose general path takes over past 62 bits
         both = pd.concat([heads[c], corrections[c]], ignore_index=True)
         capacity *= max(len(pd.factorize(both, use_na_sentinel=False)[1]), 1)
     if capacity >= 2.0**62:
         return None
-    run = np.repeat(np.arange(len(starts)), np.diff(np.append(starts, len(cleaned))))
-    if len(days) > 1 and not np.all((days[1:] > days[:-1]) | (run[1:] != run[:-1])):
-        return None
+    if len(days) > 1:  # strictly increasing inside each run (a new run may start lower)
+        rising = days[1:] > days[:-1]
+        rising[starts[1:] - 1] = True
+        if not rising.all():
+            return None
     low = int(min(days.min(initial=0), corr_days.min(initial=0)))
     width = int(max(days.max(initial=0), corr_days.max(initial=0))) - low + 1
     if float(len(starts) + 1) * width >= 2.0**62:
         return None
-    cells = run * width + (days - low)  # strictly increasing: one row per leaf and period
+    cells = np.repeat(np.arange(len(starts), dtype=np.int64) * width - low, np.diff(np.append(starts, len(cleaned))))
+    cells += days  # run * width + (days - low), strictly increasing: one row per leaf and period
     corr_run = pd.Index(codes[0]).get_indexer(codes[1])
     wanted = np.where(corr_run >= 0, corr_run, 0) * width + (corr_days - low)
     pos = np.searchsorted(cells, wanted)
@@ -83,7 +91,9 @@ def cell_positions(cleaned: pd.DataFrame, corrections: pd.DataFrame) -> np.ndarr
     return np.where(found, pos, -1)
 
 
-def find_unexplained_changes(cleaned: pd.DataFrame, corrections: pd.DataFrame, tolerance: float = 1e-6) -> pd.DataFrame:
+def find_unexplained_changes(
+    cleaned: pd.DataFrame, corrections: pd.DataFrame, tolerance: float = 1e-6, *, cleaned_runs=RUNS_UNSEEN
+) -> pd.DataFrame:
     """Series periods whose cleaned value differs from the raw net + the audited corrections of that period.
 
     Per product x site x customer and period: raw_quantity + sum(delta) must
@@ -92,7 +102,7 @@ def find_unexplained_changes(cleaned: pd.DataFrame, corrections: pd.DataFrame, t
     does not hold is unexplained too.
     """
     key = LEAF + ["period_start"]
-    pos = cell_positions(cleaned, corrections)
+    pos = cell_positions(cleaned, corrections, cleaned_runs)
     if pos is not None:
         return _unexplained_at(cleaned, corrections, key, pos, tolerance)
     codes = joint_codes(cleaned, corrections, key)
@@ -113,11 +123,20 @@ def _unexplained_at(
     """find_unexplained_changes given the row of `cleaned` of each correction (`pos`, -1: none)."""
     delta = corrections["delta"].to_numpy(dtype=float)
     inside = pos >= 0
-    moved = np.bincount(pos[inside], weights=delta[inside], minlength=len(cleaned))
-    unexplained = cleaned["quantity"].to_numpy(dtype=float) - cleaned["raw_quantity"].to_numpy(dtype=float) - moved
-    bad = ~(np.abs(unexplained) <= tolerance)
-    out = cleaned.iloc[np.flatnonzero(bad)][key + ["raw_quantity", "quantity"]]  # the few rows, then their columns
-    out = out.assign(corrections=moved[bad], unexplained=unexplained[bad])
+    # the corrections summed per corrected row only (bincount's order: the same sums); x - 0.0 is x, so the
+    # rows without a correction need no subtraction
+    rows, row_of = np.unique(pos[inside], return_inverse=True)
+    moved = np.bincount(row_of, weights=delta[inside], minlength=len(rows))
+    unexplained = cleaned["quantity"].to_numpy(dtype=float) - cleaned["raw_quantity"].to_numpy(dtype=float)
+    unexplained[rows] -= moved
+    bad = np.flatnonzero(~(np.abs(unexplained) <= tolerance))
+    moved_bad = np.zeros(len(bad))  # the corrections of each unexplained row (none: 0.0)
+    if len(rows) and len(bad):
+        at = np.minimum(np.searchsorted(rows, bad), len(rows) - 1)
+        hit = rows[at] == bad
+        moved_bad[hit] = moved[at[hit]]
+    out = cleaned.iloc[bad][key + ["raw_quantity", "quantity"]]  # the few rows, then their columns
+    out = out.assign(corrections=moved_bad, unexplained=unexplained[bad])
     if not inside.all():  # corrections of a period cleaned_history does not hold: unexplained whatever their sum
         orphans = corrections.loc[~inside, key + ["delta"]]
         orphans = orphans.groupby(key, sort=False, observed=True, dropna=False)["delta"].sum().rename("corrections")
@@ -126,14 +145,15 @@ def _unexplained_at(
     return out.sort_values(key, kind="stable").reset_index(drop=True)
 
 
-def accounted_lines(raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: pd.DataFrame):
+def accounted_lines(raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: pd.DataFrame, cleaned_runs=RUNS_UNSEEN):
     """The integer part of `proofs.find_unaccounted_lines`, or None where it needs the general path.
 
     Returns (rejected row naming no raw line, rejected row naming a line named before, raw line rejected,
     raw row of a leaf whose counts differ, cleaned row of such a leaf): bool per row of each table.
     """
     line = ["source_file", "source_row"]
-    raw_runs, cleaned_runs = leaf_runs(raw), leaf_runs(cleaned)
+    raw_runs = leaf_runs(raw)
+    cleaned_runs = leaf_runs(cleaned) if cleaned_runs is RUNS_UNSEEN else cleaned_runs
     if raw_runs is None or cleaned_runs is None or raw["source_row"].dtype.kind not in "iu":
         return None
     raw_file, files = codes_of(raw["source_file"])
@@ -170,10 +190,16 @@ def accounted_lines(raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: pd.DataF
         return None
     leaf_of_head, leaves = pd.factorize(np.concatenate(codes))
     raw_head, cl_head = leaf_of_head[: len(raw_heads)], leaf_of_head[len(raw_heads) :]
-    raw_leaf = np.repeat(raw_head, np.diff(np.append(raw_starts, len(raw))))
-    cl_leaf = np.repeat(cl_head, np.diff(np.append(cl_starts, len(cleaned))))
+    raw_length = np.diff(np.append(raw_starts, len(raw)))
     n = len(leaves)
-    used = np.bincount(raw_leaf, minlength=n) - np.bincount(raw_leaf[in_rejected], minlength=n)
-    summed = np.bincount(cl_leaf, weights=cleaned["lines"].to_numpy(np.float64), minlength=n)
+    # counted per run, then per leaf (a leaf may have several runs); a rejected line's leaf is its run's
+    rejected_leaf = raw_head[np.searchsorted(raw_starts, np.flatnonzero(in_rejected), side="right") - 1]
+    used = np.bincount(raw_head, weights=raw_length, minlength=n).astype(np.int64)
+    used -= np.bincount(rejected_leaf, minlength=n)
+    lines = cleaned["lines"].to_numpy()
+    run_lines = np.add.reduceat(lines, cl_starts) if len(lines) else np.zeros(0, dtype=lines.dtype)
+    summed = np.bincount(cl_head, weights=run_lines.astype(np.float64), minlength=n)
     off = used != summed
-    return unknown, twice, in_rejected, off[raw_leaf], off[cl_leaf]
+    return unknown, twice, in_rejected, np.repeat(off[raw_head], raw_length), np.repeat(
+        off[cl_head], np.diff(np.append(cl_starts, len(cleaned)))
+    )

@@ -12,6 +12,9 @@ ends of the grid and skipping periods without a value (NaN).
   interpolation between order statistics: Hyndman & Fan (1996) type 7, the
   default of `numpy.percentile` and of pandas' `quantile`. Where IQR_t = 0
   nothing is flagged.
+- the order statistics of a matrix of more windows than one chunk
+  (`CHUNK_CELLS`) come from one compiled sweep per row (`rolling_order`),
+  those of a smaller one from numpy's sort of its windows: the same numbers.
 - `seasonal_component`: the seasonal component of a classical additive
   decomposition (statsmodels' `seasonal_decompose`; Kendall & Stuart,
   Makridakis et al. 1998, ch. 3), so a seasonal series is judged on x - s.
@@ -31,6 +34,7 @@ MAD_SCALE = 1.4826  # 1 / Phi^-1(3/4): makes the MAD consistent for the normal s
 
 
 CHUNK_CELLS = 4_000_000  # window cells per block of rows: bounds the memory of the rolling statistics
+MEDIAN_MAD, QUARTILES, MEDIAN_COUNT = 0, 1, 2  # the statistics `rolling_order.rolling_stats` returns (its `kind`)
 
 
 def _rolling(matrix: np.ndarray, window: int, stats, chunk_cells: int = CHUNK_CELLS) -> list[np.ndarray]:
@@ -112,6 +116,19 @@ def _rolling_nanmedian(windows: np.ndarray, n: np.ndarray | None = None) -> np.n
     return _sorted_median(s, n, _window_base(s))
 
 
+def _compiled(matrix: np.ndarray, window: int, chunk_cells: int) -> bool:
+    """Whether the compiled sweep (`rolling_order`) takes `matrix`: when its windows exceed one numpy chunk.
+    A smaller matrix is sorted by numpy (no compiled code loaded for it: a small class stays quick to start);
+    both give the same numbers bit for bit (`tests/test_rolling_order.py`)."""
+    return matrix.size * window > chunk_cells
+
+
+def _sweep(matrix: np.ndarray, window: int, kind: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    from pipelines.engines.rolling_order import rolling  # numba loaded only for a matrix that needs it
+
+    return rolling(matrix, window, kind)
+
+
 def hampel(
     matrix: np.ndarray, window: int, k: float = 3.0, chunk_cells: int = CHUNK_CELLS
 ) -> tuple[np.ndarray, np.ndarray]:
@@ -121,6 +138,9 @@ def hampel(
     window is truncated at the edges (min one value). `k` is not used here (the
     limits are `hampel_limits`); it stays for callers that pass it.
     """
+    if _compiled(matrix, window, chunk_cells):
+        med, mad, _ = _sweep(matrix, window, MEDIAN_MAD)
+        return med, mad
 
     def median_mad(win, n):
         s = np.sort(win, axis=-1)
@@ -144,6 +164,8 @@ def tukey(matrix: np.ndarray, window: int, chunk_cells: int = CHUNK_CELLS) -> tu
     matrix: (n_series, n_periods), NaN = no value. Returns (q1, median, q3), each
     that shape; windows truncated at the edges like `hampel`.
     """
+    if _compiled(matrix, window, chunk_cells):
+        return _sweep(matrix, window, QUARTILES)
 
     def quartiles(win, n):
         s = np.sort(win, axis=-1)
@@ -156,6 +178,9 @@ def tukey(matrix: np.ndarray, window: int, chunk_cells: int = CHUNK_CELLS) -> tu
 
 def rolling_median(matrix: np.ndarray, window: int, chunk_cells: int = CHUNK_CELLS) -> tuple[np.ndarray, np.ndarray]:
     """Rolling centred median of each row ignoring NaN, and the number of values it came from."""
+    if _compiled(matrix, window, chunk_cells):
+        med, count, _ = _sweep(matrix, window, MEDIAN_COUNT)
+        return med, count
 
     def median_count(win, n):
         return _rolling_nanmedian(win, n), n.astype(float)

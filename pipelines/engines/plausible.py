@@ -116,7 +116,7 @@ def trusted_extent(ordinals: np.ndarray, gap_periods: int, *, trim_end: bool = T
     """
     if len(ordinals) == 0:
         return None, None
-    periods, counts = np.unique(np.asarray(ordinals, dtype=np.int64), return_counts=True)
+    periods, counts = _period_counts(np.asarray(ordinals, dtype=np.int64))
     limit = max(1.0, ISOLATED_SHARE * counts.sum())
     breaks = np.flatnonzero(np.diff(periods) > gap_periods)  # a gap after periods[b]
     lo, hi = 0, len(periods) - 1
@@ -145,6 +145,17 @@ def trusted_extent(ordinals: np.ndarray, gap_periods: int, *, trim_end: bool = T
             dropped_hi += counts[hi]
             hi -= 1
     return int(periods[lo]), int(periods[hi])
+
+
+def _period_counts(ordinals: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """`np.unique(ordinals, return_counts=True)`, counted over the range of the periods (no sort of the
+    lines) when the range is not much longer than the lines."""
+    low, high = int(ordinals.min()), int(ordinals.max())
+    if high - low > 4 * len(ordinals) + 1_000_000:
+        return np.unique(ordinals, return_counts=True)
+    counts = np.bincount(ordinals - low, minlength=high - low + 1)
+    periods = np.flatnonzero(counts)
+    return periods + low, counts[periods]
 
 
 def gap_periods(years: float, period: str) -> int:

@@ -12,7 +12,7 @@ import pandas as pd
 
 from pipelines.calendar import period_ordinal, span_bounds
 from pipelines.checks import SHARE_TOLERANCE
-from pipelines.engines.history_proofs import accounted_lines
+from pipelines.engines.history_proofs import RUNS_UNSEEN, accounted_lines
 from pipelines.keys import LEAF, PARENT, PARENT_ID, any_blank, factorize, ids_in, key_rank, lookup, part_rows, rows_in
 from pipelines.text_codes import run_starts
 
@@ -269,10 +269,13 @@ def _distinct_leaves(leaf: pd.DataFrame) -> pd.DataFrame:
     return pd.DataFrame({c: k[starts] for c, k in zip(LEAF, keys, strict=True)})
 
 
-def find_unaccounted_lines(raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: pd.DataFrame) -> pd.DataFrame:
+def find_unaccounted_lines(
+    raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: pd.DataFrame, *, cleaned_runs=RUNS_UNSEEN
+) -> pd.DataFrame:
     """Raw lines that are neither summed into cleaned_history nor rejected, or counted twice, by series.
 
-    The counts are proven on integer codes first (`history_proofs.accounted_lines`); only the rows of the
+    The counts are proven on integer codes first (`history_proofs.accounted_lines`; `cleaned_runs`: the
+    caller's `history_proofs.leaf_runs(cleaned)`, when it has them); only the rows of the
     series whose counts differ are then grouped by their text keys, which names them as the whole tables would.
     Every raw line (source_file, source_row) is either rejected (a row of
     `rejected` naming it) or used; the used lines of a product x site x
@@ -282,7 +285,7 @@ def find_unaccounted_lines(raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: p
     raw_lines, rejected_lines, used_lines = raw - rejected, cleaned_lines).
     """
     line = ["source_file", "source_row"]
-    fast = accounted_lines(raw, cleaned, rejected)  # on integer codes; None: every row coded as below
+    fast = accounted_lines(raw, cleaned, rejected, cleaned_runs)  # on integer codes; None: every row coded as below
     if fast is not None:
         no_line, named_before, in_rejected, raw_off, cleaned_off = fast
         raw, in_rejected, cleaned = raw.loc[raw_off], in_rejected[raw_off], cleaned.loc[cleaned_off]

@@ -127,7 +127,7 @@ from pipelines.engines.cleansing import (
     sorted_corrections,
 )
 from pipelines.engines.cleansing_blocks import BLOCK_CELLS, Grid, Lines, class_summary, clean_blocks
-from pipelines.engines.history_proofs import find_unexplained_changes
+from pipelines.engines.history_proofs import find_unexplained_changes, leaf_runs
 from pipelines.engines.proofs import find_unaccounted_lines
 from pipelines.engines.report_charts import corrections_chart
 from pipelines.keys import LEAF, lookup
@@ -192,12 +192,14 @@ def clean_history(
     # --- long tables
     cells = blocks.cells()
     leaf = cells.pop("leaf")
-    cleaned = pd.DataFrame({c: leaves[c].to_numpy()[leaf] for c in LEAF}, copy=False)  # each key column taken once
+    columns = {c: leaves[c].to_numpy()[leaf] for c in LEAF}  # each key column taken once
     del leaf
     # the grid's t period starts, reached by each cell's column (one gather, not a date conversion per cell)
-    cleaned["period_start"] = ordinal_to_start(np.arange(t) + first_ord, period).to_numpy()[cells.pop("col")]
+    columns["period_start"] = ordinal_to_start(np.arange(t) + first_ord, period).to_numpy()[cells.pop("col")]
     for name in ("quantity", "raw_quantity", "lines", "filled", "corrected", "shortage"):
-        cleaned[name] = cells.pop(name)
+        columns[name] = cells.pop(name)
+    cleaned = pd.DataFrame(columns, copy=False)  # the arrays themselves, not copied column by column
+    del columns
     return CleaningResult(
         cleaned=cleaned,
         rejected=rejected,
@@ -314,9 +316,12 @@ def history_checks(
     bad = rejected[rejected["reason"] != "on_or_after_cycle_date"]
     limit = settings.max_rejected_share
     fraction = len(bad) / len(raw_history) if len(raw_history) else 0.0
+    runs = leaf_runs(cleaned)  # cleaned_history's runs of one leaf, found once for both proofs
     return {
-        EVERY_RAW_ROW_ACCOUNTED: CheckRows(find_unaccounted_lines(raw_history, cleaned, rejected), counts),
-        CORRECTIONS_EXPLAIN_CHANGES: CheckRows(find_unexplained_changes(cleaned, corrections)),
+        EVERY_RAW_ROW_ACCOUNTED: CheckRows(
+            find_unaccounted_lines(raw_history, cleaned, rejected, cleaned_runs=runs), counts
+        ),
+        CORRECTIONS_EXPLAIN_CHANGES: CheckRows(find_unexplained_changes(cleaned, corrections, cleaned_runs=runs)),
         REJECTED_ROWS_WITHIN_LIMIT: CheckRows(
             bad if fraction > limit else bad.iloc[0:0],
             {

@@ -1,0 +1,188 @@
+"""Exact order statistics over centred rolling windows, one compiled pass per row (numba).
+
+Each row of a (n_series, n_periods) matrix is swept once: the window's values
+(NaN = no value, skipped) are kept sorted in a small buffer, one value inserted
+and one removed per step (insertion by binary search, O(window) moves), so a
+median or quartile is read at its rank, never estimated. The window of period
+j holds the columns j - half .. j - half + window - 1 that exist (truncated at
+the ends), half = window // 2, as `outliers._rolling` pads them.
+
+The arithmetic on the order statistics is that of `outliers` written in numpy:
+the median of n values is (x[(n-1)//2] + x[n//2]) / 2, a quantile p is
+Hyndman & Fan (1996) type 7, x[lo] + (h - lo)(x[lo+1] - x[lo]) with
+h = (n - 1) p, and the MAD is the median of |x - median| over the same values,
+whose sorted order is merged from the sorted window outward from the median
+(x - m is monotone in x, so the deviations left and right of the median are
+each already in order). The same values at the same ranks give the same
+float64 numbers bit for bit.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit
+
+
+@njit(cache=True)
+def _insert(buf, n, v):
+    """Insert v into the sorted first n cells of buf (n + 1 cells afterwards)."""
+    lo, hi = 0, n
+    while lo < hi:  # first cell greater than v: equal values keep their arrival order
+        mid = (lo + hi) // 2
+        if buf[mid] <= v:
+            lo = mid + 1
+        else:
+            hi = mid
+    i = n
+    while i > lo:
+        buf[i] = buf[i - 1]
+        i -= 1
+    buf[lo] = v
+
+
+@njit(cache=True)
+def _remove(buf, n, v):
+    """Remove one cell equal to v from the sorted first n cells of buf (v is among them)."""
+    lo, hi = 0, n
+    while lo < hi:  # first cell not less than v
+        mid = (lo + hi) // 2
+        if buf[mid] < v:
+            lo = mid + 1
+        else:
+            hi = mid
+    for i in range(lo, n - 1):
+        buf[i] = buf[i + 1]
+
+
+@njit(cache=True)
+def _replace(buf, n, out, v):
+    """Put v in place of one cell equal to `out` in the sorted first n cells of buf, keeping them sorted
+    (moves only the cells ranked between the two values)."""
+    lo, hi = 0, n
+    while lo < hi:  # first cell not less than `out`
+        mid = (lo + hi) // 2
+        if buf[mid] < out:
+            lo = mid + 1
+        else:
+            hi = mid
+    i = lo
+    while i + 1 < n and buf[i + 1] < v:
+        buf[i] = buf[i + 1]
+        i += 1
+    while i > 0 and buf[i - 1] > v:
+        buf[i] = buf[i - 1]
+        i -= 1
+    buf[i] = v
+
+
+@njit(cache=True)
+def _median(buf, n):
+    if n == 0:
+        return np.nan
+    m = buf[(n - 1) // 2]
+    m += buf[n // 2]
+    return m / 2.0
+
+
+@njit(cache=True)
+def _quantile(buf, n, p):
+    if n == 0:
+        return np.nan
+    h = (n - 1) * p
+    lo = int(np.floor(h))
+    hi = min(lo + 1, n - 1)
+    a = buf[lo]
+    b = buf[hi]
+    return a + (h - lo) * (b - a)
+
+
+@njit(cache=True)
+def _mad(buf, n, med, dev):
+    """Median of |x - med| over the sorted first n cells of buf; `dev` a scratch buffer as long."""
+    if n == 0:
+        return np.nan
+    if not np.isfinite(med):  # infinite median: deviations may be NaN (inf - inf), which are left out
+        k = 0
+        for i in range(n):
+            d = abs(buf[i] - med)
+            if not np.isnan(d):
+                _insert(dev, k, d)
+                k += 1
+        return _median(dev, k)
+    right, hi = 0, n  # first value with x - med >= 0 (x - med is monotone in x)
+    while right < hi:
+        mid = (right + hi) // 2
+        if buf[mid] - med < 0:
+            right = mid + 1
+        else:
+            hi = mid
+    left = right - 1
+    for k in range(n // 2 + 1):  # the merged deviations up to rank n // 2 are enough
+        dl = abs(buf[left] - med) if left >= 0 else np.inf
+        dr = abs(buf[right] - med) if right < n else np.inf
+        take_left = dl <= dr
+        dev[k] = dl if take_left else dr
+        left -= take_left
+        right += 1 - take_left
+    return _median(dev, n)
+
+
+@njit(cache=True)
+def rolling_stats(matrix, window, kind):
+    """Per row and period of `matrix` (float64, C order), over the centred window:
+
+    kind 0: (median, MAD, count); kind 1: (Q1, median, Q3) type 7; kind 2: (median, count, count) -
+    the count as float64, the number of values in the window. NaN where a window has no value.
+    """
+    n_rows, t = matrix.shape
+    half = window // 2
+    first = np.empty((n_rows, t))
+    second = np.empty((n_rows, t))
+    third = np.empty((n_rows, t))
+    buf = np.empty(window)
+    dev = np.empty(window)
+    for r in range(n_rows):
+        row = matrix[r]
+        n = 0
+        for c in range(min(t, window - 1 - half)):  # the columns of period 0's window but its last
+            v = row[c]
+            if not np.isnan(v):
+                _insert(buf, n, v)
+                n += 1
+        for j in range(t):
+            incoming = j - half + window - 1
+            v = row[incoming] if incoming < t else np.nan
+            outgoing = j - half - 1
+            u = row[outgoing] if outgoing >= 0 else np.nan
+            if np.isnan(u):
+                if not np.isnan(v):
+                    _insert(buf, n, v)
+                    n += 1
+            elif np.isnan(v):
+                _remove(buf, n, u)
+                n -= 1
+            else:
+                _replace(buf, n, u, v)
+            if kind == 0:
+                med = _median(buf, n)
+                first[r, j] = med
+                second[r, j] = _mad(buf, n, med, dev)
+                third[r, j] = n
+            elif kind == 1:
+                first[r, j] = _quantile(buf, n, 0.25)
+                second[r, j] = _quantile(buf, n, 0.5)
+                third[r, j] = _quantile(buf, n, 0.75)
+            else:
+                first[r, j] = _median(buf, n)
+                second[r, j] = n
+                third[r, j] = n
+    return first, second, third
+
+
+def rolling(matrix: np.ndarray, window: int, kind: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """`rolling_stats` on any 2-d float array (made float64, C order)."""
+    matrix = np.ascontiguousarray(matrix, dtype=np.float64)
+    if matrix.shape[1] == 0 or matrix.shape[0] == 0:
+        empty = np.full(matrix.shape, np.nan)
+        return empty, empty.copy(), empty.copy()
+    return rolling_stats(matrix, int(window), int(kind))

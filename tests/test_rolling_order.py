@@ -1,0 +1,84 @@
+"""The compiled rolling order statistics (`pipelines.engines.rolling_order`) against numpy.
+
+Two references: numpy's own sort of the windows (`outliers`' path for a matrix of
+at most one chunk, forced here with `chunk_cells`), which must give the same
+float64 numbers bit for bit, and numpy.median / numpy.percentile (type 7, its
+default "linear" method) over each window's values, computed one window at a time.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from pipelines.engines.outliers import hampel, rolling_median, tukey
+from pipelines.engines.rolling_order import rolling
+
+SMALL, LARGE = 10**12, 0  # chunk_cells: every matrix by numpy's sort / every matrix by the compiled sweep
+
+
+def matrices(seed: int):
+    rng = np.random.default_rng(seed)
+    for trial in range(60):
+        n, t, window = int(rng.integers(1, 12)), int(rng.integers(1, 40)), int(rng.integers(1, 27))
+        if trial % 3 == 0:  # many ties, as intermittent demand has
+            x = rng.choice([0.0, 1.0, 2.0, 5.0, 100.0], size=(n, t))
+        else:
+            x = np.round(rng.gamma(1.0, 10.0, (n, t)), int(rng.integers(0, 3)))
+        x[rng.random((n, t)) < rng.random() * 0.6] = np.nan
+        if trial % 10 == 0:
+            x[rng.random((n, t)) < 0.05] = np.inf
+        if trial % 15 == 0:
+            x[rng.random((n, t)) < 0.05] = -np.inf
+        yield x, window
+
+
+def same_bits(a: np.ndarray, b: np.ndarray) -> bool:
+    return a.shape == b.shape and a.tobytes() == b.tobytes()
+
+
+@pytest.mark.parametrize("statistic", [hampel, tukey, rolling_median])
+def test_the_compiled_sweep_gives_numpys_numbers_bit_for_bit(statistic):
+    for x, window in matrices(11):
+        by_sort = statistic(x, window, chunk_cells=SMALL)
+        by_sweep = statistic(x, window, chunk_cells=LARGE)
+        for a, b in zip(by_sort, by_sweep, strict=True):
+            assert same_bits(a, b), (statistic.__name__, x, window)
+
+
+def test_each_window_against_numpy_median_and_percentile():
+    for x, window in matrices(12):
+        if np.isinf(x).any():
+            continue
+        med, mad, count = rolling(x, window, 0)
+        q1, qmed, q3 = rolling(x, window, 1)
+        half = window // 2
+        for r in range(x.shape[0]):
+            for j in range(x.shape[1]):
+                cells = x[r, max(0, j - half) : j - half + window]
+                values = cells[~np.isnan(cells)]
+                assert count[r, j] == len(values)
+                if not len(values):
+                    assert np.isnan([med[r, j], mad[r, j], q1[r, j], q3[r, j]]).all()
+                    continue
+                m = np.median(values)  # reference: numpy 2.x median and percentile (method "linear")
+                assert med[r, j] == m
+                assert mad[r, j] == np.median(np.abs(values - m))
+                assert q1[r, j] == pytest.approx(np.percentile(values, 25), rel=1e-12, abs=1e-12)
+                assert qmed[r, j] == pytest.approx(np.percentile(values, 50), rel=1e-12, abs=1e-12)
+                assert q3[r, j] == pytest.approx(np.percentile(values, 75), rel=1e-12, abs=1e-12)
+
+
+def test_a_hand_worked_window():
+    x = np.array([[1.0, np.nan, 7.0, 3.0, 100.0]])
+    med, mad, count = rolling(x, 3, 0)
+    # windows (truncated at the ends): {1}, {1, 7}, {7, 3}, {3, 7, 100}, {3, 100}
+    assert count.tolist() == [[1, 2, 2, 3, 2]]
+    assert med.tolist() == [[1.0, 4.0, 5.0, 7.0, 51.5]]
+    assert mad.tolist() == [[0.0, 3.0, 2.0, 4.0, 48.5]]
+
+
+def test_an_empty_matrix():
+    for shape in ((0, 5), (3, 0)):
+        out = rolling(np.zeros(shape), 3, 1)
+        assert all(o.shape == shape for o in out)
