@@ -211,9 +211,7 @@ def _history_shares(
     window_of_class = np.array([settings.rule(name).window for name in settings.rules] + [0], dtype=np.int32)
     window_of_leaf = np.zeros(rows.n_leaves, dtype=np.int32)  # 0: a leaf of no child, whose rows never count
     window_of_leaf[leaf_of_child[has_rows]] = window_of_class[class_of_child[has_rows]]
-    # each row's window: the leaf's repeated over its rows where they are sorted by leaf id (no gather per row)
-    window = window_of_leaf[rows.leaf] if rows.first is None else np.repeat(window_of_leaf, np.diff(rows.first))
-    configured = child_sums(rows, None, window, leaf_of_child)
+    configured = child_sums(rows, None, window_of_leaf[rows.leaf], leaf_of_child)
 
     out = {
         "history_share": np.zeros(n),

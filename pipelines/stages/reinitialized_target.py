@@ -86,18 +86,13 @@ def parent_baselines(
     age = period_ages(history["period_start"], period, cycle_ord)
     qty = history["quantity"].to_numpy(float)
     oldest = np.zeros(n_bins, dtype=np.int64)  # history length of each parent, in periods
-    step = np.diff(row_bin)
-    runs = len(row_bin) and bool(np.all(step >= 0))  # each bin's rows one run
-    if runs:  # its largest age
-        first = np.r_[0, np.flatnonzero(step) + 1]
+    if len(row_bin) and bool(np.all(row_bin[1:] >= row_bin[:-1])):  # each bin's rows one run: its largest age
+        first = np.flatnonzero(np.r_[True, row_bin[1:] != row_bin[:-1]])
         oldest[row_bin[first]] = np.maximum(np.maximum.reduceat(age, first), 0)
     else:
         np.maximum.at(oldest, row_bin, age)
-    del step
     span = np.minimum(window_used[code_of_bin], oldest).astype(np.int32)  # a window: a few hundred periods
-    # each row's window: its run's repeated where the bins are runs (the same values as the gather by bin)
-    inside = np.less_equal(age, np.repeat(span[row_bin[first]], np.diff(np.r_[first, len(row_bin)])) if runs
-                           else span[row_bin])
+    inside = np.less_equal(age, span[row_bin])
     inside &= age >= 1
     use = np.flatnonzero(inside & ~short) if short.any() else np.flatnonzero(inside)  # in order: the same sums
     volume = np.bincount(row_bin[use], weights=qty[use], minlength=n_bins)
