@@ -388,3 +388,31 @@ def test_shortage_periods_flag_every_row_of_the_parent_period_in_any_row_order()
     shuffled = history.iloc[order].reset_index(drop=True)
     assert shortage_periods(shuffled, True).tolist() == [expected[i] for i in order]
     assert not shortage_periods(history, False).any()  # fill_baseline: nothing left out
+
+
+def test_own_periods_count_a_period_held_twice_once_whatever_the_row_order():
+    # hand-worked: C1 has week 1 twice (its own row and a successor's) and week 2: 2 periods; C2 week 2 alone:
+    # 1; C3 has no history: 0. The history sorted by leaf id takes the runs' count, any other order the grid's.
+    from pipelines.calendar import period_ordinal
+    from pipelines.engines.children import own_periods
+    from pipelines.engines.share_rows import share_rows
+    from pipelines.keys import coded
+
+    w1, w2, cycle = pd.Timestamp("2026-01-05"), pd.Timestamp("2026-01-12"), pd.Timestamp("2026-01-19")
+    history = pd.DataFrame(
+        {
+            "product": ["P1"] * 4,
+            "site": ["S1"] * 4,
+            "customer": ["C1", "C1", "C1", "C2"],
+            "period_start": [w1, w1, w2, w2],
+            "quantity": [1.0, 2.0, 3.0, 4.0],
+            "leaf_id": np.array([0, 0, 0, 1], dtype=np.int32),
+            "parent_id": np.array([0, 0, 0, 0], dtype=np.int32),
+        }
+    )
+    children = pd.DataFrame({"product": ["P1"] * 3, "site": ["S1"] * 3, "customer": ["C1", "C2", "C3"]})
+    cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle]), "week")[0])
+    for frame in (history, history.iloc[[3, 1, 2, 0]].reset_index(drop=True)):
+        keys = coded(frame)
+        rows = share_rows(frame, keys, "week", cycle_ord, False)
+        assert own_periods(frame, children, "week", keys, rows).tolist() == [2, 1, 0]
