@@ -140,7 +140,8 @@ def time_imports(args: argparse.Namespace, copy: Path, env: dict) -> dict:
 
 
 def step_times(dagster_home: Path) -> tuple[str, list[dict]]:
-    """The last run's steps, in the order they started: (run id, [{step, wall_s}])."""
+    """The last run's steps, in the order they started: (run id, [{step, wall_s, start, end}]), the times of
+    day (epoch seconds) of each step's start and end event."""
     import dagster as dg
 
     instance = dg.DagsterInstance.from_config(str(dagster_home))
@@ -154,7 +155,10 @@ def step_times(dagster_home: Path) -> tuple[str, list[dict]]:
             starts[event.step_key] = entry.timestamp
         elif event.event_type in (dg.DagsterEventType.STEP_SUCCESS, dg.DagsterEventType.STEP_FAILURE):
             ends[event.step_key] = entry.timestamp
-    steps = [{"step": k, "wall_s": ends.get(k, s) - s} for k, s in sorted(starts.items(), key=lambda kv: kv[1])]
+    steps = [
+        {"step": k, "wall_s": ends.get(k, s) - s, "start": s, "end": ends.get(k, s)}
+        for k, s in sorted(starts.items(), key=lambda kv: kv[1])
+    ]
     instance.dispose()
     return run.run_id, steps
 
@@ -162,7 +166,7 @@ def step_times(dagster_home: Path) -> tuple[str, list[dict]]:
 def run_once(args: argparse.Namespace, copy: Path, env: dict, label: str) -> dict:
     load = load_average()
     before = cpu_children()
-    started = time.monotonic()
+    started, started_at = time.monotonic(), time.time()
     out = subprocess.run(
         [sys.executable, "-m", "pipelines", "cycle", "--config", str(copy), "--class", args.product_class],
         cwd=args.tree,
@@ -170,7 +174,7 @@ def run_once(args: argparse.Namespace, copy: Path, env: dict, label: str) -> dic
         capture_output=True,
         text=True,
     )
-    wall = time.monotonic() - started
+    wall, ended_at = time.monotonic() - started, time.time()
     orphans = reap_orphans()
     cpu = cpu_children() - before
     if out.returncode not in (0,):
@@ -184,6 +188,11 @@ def run_once(args: argparse.Namespace, copy: Path, env: dict, label: str) -> dic
         "orphans_reaped": orphans,
         "run_id": run_id,
         "steps_s": sum(s["wall_s"] for s in steps),
+        # outside the steps, in three parts: before the first step starts (imports, instance, run creation),
+        # between the steps (Dagster's own work from one step's end to the next one's start), after the last
+        "before_first_step_s": steps[0]["start"] - started_at if steps else wall,
+        "between_steps_s": sum(b["start"] - a["end"] for a, b in zip(steps, steps[1:], strict=False)),
+        "after_last_step_s": ended_at - steps[-1]["end"] if steps else 0.0,
         "steps": steps,
         "load_before": load,
         "load_after": load_average(),
@@ -231,8 +240,9 @@ def report(result: dict) -> None:
     for run in result["runs"]:
         print(
             f"\n{run['run']} run (exit {run['exit_code']}): wall {run['wall_s']:.2f} s, cpu {run['cpu_s']:.2f} s, "
-            f"steps {run['steps_s']:.2f} s, outside the steps {run['wall_s'] - run['steps_s']:.2f} s; "
-            f"{_load(run['load_before'])} -> {_load(run['load_after'])}"
+            f"steps {run['steps_s']:.2f} s, outside the steps {run['wall_s'] - run['steps_s']:.2f} s "
+            f"(before the first {run['before_first_step_s']:.2f}, between {run['between_steps_s']:.2f}, "
+            f"after the last {run['after_last_step_s']:.2f}); {_load(run['load_before'])} -> {_load(run['load_after'])}"
         )
         for step in run["steps"]:
             print(f"  {step['step']:<28} {step['wall_s']:7.2f} s")

@@ -7,6 +7,7 @@ age 2 = 01-19, age 3 = 01-12, age 4 = 01-05.
 
 from __future__ import annotations
 
+import numpy as np
 import pandas as pd
 import pytest
 
@@ -362,3 +363,56 @@ def test_new_customers_are_listed_with_how_their_share_was_set(make_history, mak
     waiting = find_new_customers_without_share(shares)
     assert waiting[["customer", "own_periods"]].values.tolist() == [["C4", 1]]
     assert "no share until 3 periods" in waiting.loc[0, "lifecycle_detail"]
+
+
+def test_shortage_periods_flag_every_row_of_the_parent_period_in_any_row_order():
+    # hand-worked: P1/S1 has a shortage recorded on C1's row of week 2, so C2's row of week 2 (same parent
+    # and period) is left out too, week 1 of both is not; P2/S1 has none; P3/S1 has one in week 1.
+    from pipelines.engines.share_rows import shortage_periods
+
+    w1, w2 = pd.Timestamp("2026-01-05"), pd.Timestamp("2026-01-12")
+    history = pd.DataFrame(
+        {
+            "product": ["P1", "P1", "P1", "P1", "P2", "P2", "P3"],
+            "site": ["S1"] * 7,
+            "customer": ["C1", "C1", "C2", "C2", "C1", "C1", "C1"],
+            "period_start": [w1, w2, w1, w2, w1, w2, w1],
+            "quantity": [1.0] * 7,
+            "shortage": [False, True, False, False, False, False, True],
+            "parent_id": np.array([0, 0, 0, 0, 1, 1, 2], dtype=np.int32),
+        }
+    )
+    expected = [False, True, False, True, False, False, True]
+    assert shortage_periods(history, True).tolist() == expected  # sorted by parent id: each parent's run
+    order = [6, 3, 4, 0, 5, 2, 1]  # any other order: the same rows flagged
+    shuffled = history.iloc[order].reset_index(drop=True)
+    assert shortage_periods(shuffled, True).tolist() == [expected[i] for i in order]
+    assert not shortage_periods(history, False).any()  # fill_baseline: nothing left out
+
+
+def test_own_periods_count_a_period_held_twice_once_whatever_the_row_order():
+    # hand-worked: C1 has week 1 twice (its own row and a successor's) and week 2: 2 periods; C2 week 2 alone:
+    # 1; C3 has no history: 0. The history sorted by leaf id takes the runs' count, any other order the grid's.
+    from pipelines.calendar import period_ordinal
+    from pipelines.engines.children import own_periods
+    from pipelines.engines.share_rows import share_rows
+    from pipelines.keys import coded
+
+    w1, w2, cycle = pd.Timestamp("2026-01-05"), pd.Timestamp("2026-01-12"), pd.Timestamp("2026-01-19")
+    history = pd.DataFrame(
+        {
+            "product": ["P1"] * 4,
+            "site": ["S1"] * 4,
+            "customer": ["C1", "C1", "C1", "C2"],
+            "period_start": [w1, w1, w2, w2],
+            "quantity": [1.0, 2.0, 3.0, 4.0],
+            "leaf_id": np.array([0, 0, 0, 1], dtype=np.int32),
+            "parent_id": np.array([0, 0, 0, 0], dtype=np.int32),
+        }
+    )
+    children = pd.DataFrame({"product": ["P1"] * 3, "site": ["S1"] * 3, "customer": ["C1", "C2", "C3"]})
+    cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle]), "week")[0])
+    for frame in (history, history.iloc[[3, 1, 2, 0]].reset_index(drop=True)):
+        keys = coded(frame)
+        rows = share_rows(frame, keys, "week", cycle_ord, False)
+        assert own_periods(frame, children, "week", keys, rows).tolist() == [2, 1, 0]

@@ -73,14 +73,15 @@ def own_periods(
     c = keys if keys is not None else coded(history)
     code, leaves = c.leaf, c.leaves
     if rows is not None and rows.first is not None:  # sorted by leaf id: each leaf's rows from its first
-        age, first = rows.age, rows.first
-        held = np.flatnonzero(first[:-1] < first[1:])
-        head = np.zeros(len(age), dtype=bool)
-        head[first[held]] = True
-        if bool(np.all((age[1:] <= age[:-1]) | head[1:])):  # in period order within each leaf
-            head[1:] |= age[1:] != age[:-1]
-            count = np.zeros(len(leaves), dtype=np.int64)
-            count[held] = np.add.reduceat(head, first[held], dtype=np.int64)
+        age, first, leaf = rows.age, rows.first, rows.leaf
+        # a row whose age is above its predecessor's must start a leaf (rows sorted by leaf id, so: another id)
+        up = np.flatnonzero(age[1:] > age[:-1]) + 1
+        if bool(np.all(leaf[up] != leaf[up - 1])):  # in period order within each leaf
+            # a leaf's periods: its rows less those repeating the period of the row before in the same leaf
+            # (a few rows; the same count as its rows that start the leaf or a period)
+            repeat = np.flatnonzero(age[1:] == age[:-1]) + 1
+            repeat = repeat[leaf[repeat] == leaf[repeat - 1]]
+            count = np.diff(first) - np.bincount(leaf[repeat], minlength=len(leaves))
             pos = lookup(children, LEAF, leaves)
             return np.where(pos >= 0, count[np.clip(pos, 0, None)], 0).astype(np.int64)
     ords = period_ordinal(history["period_start"], period)

@@ -40,7 +40,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import ordinal_to_start, period_ordinal, period_start
+from pipelines.calendar import ordinal_to_start, period_ordinal
 from pipelines.config_inputs import InputsConfig
 from pipelines.engines.history_database import load_history_query
 from pipelines.engines.inputs import HISTORY_COLUMNS, HistoryFile, find_files, sha256
@@ -208,7 +208,7 @@ def choose_cycle_date(inputs: InputsConfig, period: str) -> CycleDateChoice:
     )
     if not ok.any():
         return CycleDateChoice(None, None, 0)
-    ordinals = period_ordinal(period_start(dates[ok], period), period)
+    ordinals = period_ordinal(dates[ok], period)  # a date's period, as of its period's start (naive dates)
     _, last = trusted_extent(ordinals, gap_periods(inputs.plausible.isolation_gap_years, period))
     last_start = ordinal_to_start(np.array([last]), period)[0]
     after = ordinals > last

@@ -104,9 +104,7 @@ def shortage_periods(history: pd.DataFrame, exclude: bool) -> np.ndarray:
     if not flag.any():
         return flag
     parent = history[PARENT_ID].to_numpy() if ids_in(history, (PARENT_ID,)) else row_ids(history)[1]
-    flagged_parent = np.zeros(int(parent.max()) + 1, dtype=bool)
-    flagged_parent[parent[flag]] = True
-    rows = np.flatnonzero(flagged_parent[parent])  # only the rows of parents with a shortage can have one
+    rows = _rows_of_parents(parent, np.unique(parent[flag]))  # only the rows of parents with a shortage can have one
     # parent x period on integers: parent id x the period's slot among the days
     day = history["period_start"].to_numpy()[rows].astype("datetime64[D]").view(np.int64)
     day = day - day.min()
@@ -119,6 +117,18 @@ def shortage_periods(history: pd.DataFrame, exclude: bool) -> np.ndarray:
     out = np.zeros(len(history), dtype=bool)
     out[rows] = short[code]
     return out
+
+
+def _rows_of_parents(parent: np.ndarray, chosen: np.ndarray) -> np.ndarray:
+    """Positions of the rows whose parent id is in `chosen` (sorted, distinct), ascending: from each one's run
+    where the rows are sorted by parent id (as the lifecycle stage writes them), else by a pass over every row."""
+    if len(parent) > 1 and bool(np.all(parent[1:] >= parent[:-1])):
+        lo, hi = np.searchsorted(parent, chosen, "left"), np.searchsorted(parent, chosen, "right")
+        size = hi - lo
+        return np.repeat(lo - np.cumsum(size) + size, size) + np.arange(int(size.sum()))
+    flagged = np.zeros(int(parent.max()) + 1, dtype=bool)
+    flagged[chosen] = True
+    return np.flatnonzero(flagged[parent])
 
 
 def child_sums(rows: ShareRows, at: np.ndarray | None, window, leaf_of_child: np.ndarray) -> np.ndarray:
