@@ -120,7 +120,7 @@ from pipelines.engines.measure_split import (
 from pipelines.engines.plan_codes import group_sizes
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.errors import PinError
-from pipelines.keys import LEAF, PARENT, factorize, lookup
+from pipelines.keys import LEAF, PARENT, coded, factorize, lookup
 from pipelines.results import CheckRows, Log, StageResult, quiet
 
 UNUSED_COLUMNS = ["input", "measure", "product", "site", "customer", "period_start", "value", "reason"]
@@ -300,8 +300,12 @@ def split(
     cycle_date = pd.Timestamp(cycle["cycle_date"])
     bases = {}
     if settings.share_bases:
-        children = active_children(customer_spans, products, lifecycle_history, settings.share, cycle_date)
-        bases = share_basis_tables(lifecycle_history, children, products, settings, cycle_date)
+        # the history's ids and keys coded once; the children's own periods as the share table counted them
+        keys = coded(lifecycle_history)
+        children = active_children(
+            customer_spans, products, lifecycle_history, settings.share, cycle_date, keys, counted=share_tables
+        )
+        bases = share_basis_tables(lifecycle_history, children, products, settings, cycle_date, keys)
     result = plan_measures(
         share_tables,
         parent_forecast,
