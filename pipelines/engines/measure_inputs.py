@@ -22,7 +22,10 @@ def cells_of(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame, first_or
     up through its own ids: its distinct keys once, not a text key per row (`pipelines.keys.rows_in`; `table`'s
     keys only, so no id of another table is trusted)."""
     row = rows_in(frame, table[cols], cols) if len(frame) else np.zeros(0, dtype=np.int64)
-    col = period_ordinal(pd.DatetimeIndex(pd.to_datetime(frame["period_start"])), period) - first_ord
+    starts = frame["period_start"]
+    if not pd.api.types.is_datetime64_dtype(starts.dtype):  # text or dates as given; datetime64 is used as it is
+        starts = pd.to_datetime(starts)
+    col = period_ordinal(pd.DatetimeIndex(starts), period) - first_ord
     return row, col, (col >= 0) & (col < h)
 
 
