@@ -120,7 +120,7 @@ from pipelines.engines.measure_split import (
 from pipelines.engines.plan_codes import group_sizes
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.errors import PinError
-from pipelines.keys import LEAF, PARENT, coded, factorize, lookup
+from pipelines.keys import LEAF, LEAF_ID, PARENT, coded, factorize, lookup
 from pipelines.results import CheckRows, Log, StageResult, quiet
 
 UNUSED_COLUMNS = ["input", "measure", "product", "site", "customer", "period_start", "value", "reason"]
@@ -350,7 +350,8 @@ def run(
     )
     plan = result.plan
     basis_fallbacks = [
-        f.drop_duplicates(["product", "site"])
+        _first_of_leaves(f)
+        .drop_duplicates(["product", "site"])
         .groupby("fallback")
         .size()
         .rename("parents")
@@ -372,3 +373,11 @@ def run(
         metadata={"plan_measures": figures},
         checks=plan_checks(plan, result, settings),
     )
+
+
+def _first_of_leaves(frame: pd.DataFrame) -> pd.DataFrame:
+    """The first row of each leaf (by its `leaf_id`, when the frame has it): a parent's first row is its first
+    leaf's, so the parents' first rows are found among these few, not by hashing text keys on every row."""
+    if LEAF_ID not in frame.columns:
+        return frame
+    return frame[~frame[LEAF_ID].duplicated().to_numpy()]
