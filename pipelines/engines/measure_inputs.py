@@ -8,6 +8,7 @@ import pandas as pd
 from pipelines.calendar import horizon_starts, period_ordinal
 from pipelines.config_sections import MeasureConfig
 from pipelines.engines.period_shares import period_shares
+from pipelines.engines.share_rows import ShareRows
 from pipelines.engines.share_settings import ShareRule, ShareSettings
 from pipelines.engines.shares import child_frame, compute_shares
 from pipelines.errors import ConfigError
@@ -138,25 +139,27 @@ def share_basis_tables(
     config,
     cycle_date: pd.Timestamp,
     keys: Coded | None = None,
+    rows: ShareRows | None = None,
 ) -> dict[str, pd.DataFrame]:
     """Period shares of every named share basis (config `share_bases`): leaf keys, period_start, share, fallback.
 
     Each basis runs the share engine (`engines.shares.compute_shares`, then
     `engines.period_shares.period_shares`) with its window, method and fallback
     windows in place of every product class's own. history: lifecycle history;
-    children: `engines.children.active_children`; keys: `coded(history)`, when the caller has it. The
-    window- and method-free part of the share engine (`child_frame`: the children completed, their lifecycle
-    rules, each history row's child) reads the lifecycle settings only, which no basis changes: made once.
+    children: `engines.children.active_children`; keys: `coded(history)`, rows: its `history_rows`, when the
+    caller has them. The window- and method-free part of the share engine (`child_frame`: the children
+    completed, their lifecycle rules, each child's leaf id) reads the lifecycle settings only, which no basis
+    changes: made once.
     """
     out = {}
     starts = horizon_starts(cycle_date, config.calendar.horizon, config.calendar.period)
     # a PlanSettings carries the share engine's settings; a PlanningConfig makes them
     settings = getattr(config, "share", None) or ShareSettings.of(config)
-    frame = None
+    made = None
     for name, basis in config.share_bases.items():  # a few named bases, not a loop over series
         own = settings.with_rule(ShareRule.of(basis))  # its window, method and fallbacks in every class
-        frame = frame or child_frame(history, children, own, cycle_date, keys)
-        table = compute_shares(history, children, own, cycle_date, frame)
+        made = made or child_frame(history, children, own, cycle_date, keys, rows)
+        table = compute_shares(history, children, own, cycle_date, made, keys)
         share = period_shares(table, own, cycle_date, products, history)[0]
         frame = table[LEAF + ids_in(table, (LEAF_ID,))].loc[table.index.repeat(len(starts))].reset_index(drop=True)
         frame["period_start"] = np.tile(starts.values, len(table))

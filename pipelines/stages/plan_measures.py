@@ -118,6 +118,7 @@ from pipelines.engines.measure_split import (
     split_cells,
 )
 from pipelines.engines.plan_codes import group_sizes
+from pipelines.engines.share_rows import history_rows
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.errors import PinError
 from pipelines.keys import LEAF, LEAF_ID, PARENT, coded, factorize, lookup
@@ -300,12 +301,14 @@ def split(
     cycle_date = pd.Timestamp(cycle["cycle_date"])
     bases = {}
     if settings.share_bases:
-        # the history's ids and keys coded once; the children's own periods as the share table counted them
+        # the history's ids and keys coded and its rows read once; the children's own periods as the share
+        # table counted them
         keys = coded(lifecycle_history)
+        rows = history_rows(lifecycle_history, keys, settings.share, cycle_date)
         children = active_children(
-            customer_spans, products, lifecycle_history, settings.share, cycle_date, keys, counted=share_tables
+            customer_spans, products, lifecycle_history, settings.share, cycle_date, keys, rows, counted=share_tables
         )
-        bases = share_basis_tables(lifecycle_history, children, products, settings, cycle_date, keys)
+        bases = share_basis_tables(lifecycle_history, children, products, settings, cycle_date, keys, rows)
     result = plan_measures(
         share_tables,
         parent_forecast,
