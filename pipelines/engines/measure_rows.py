@@ -74,14 +74,17 @@ def plan_table(pieces: list[dict], children: pd.DataFrame, starts: pd.DatetimeIn
     def repeated(column: str) -> np.ndarray:
         return np.repeat(np.array([p[column] for p in pieces], dtype=object), sizes)
 
-    out = children[LEAF].iloc[joined("child")].reset_index(drop=True)
-    out["period_start"] = pd.DatetimeIndex(starts)[joined("col")]
-    out["cycle_date"] = cycle_date
-    out["measure"] = repeated("measure")
-    out["value"] = joined("value")
-    out["parent_value"] = joined("parent_value")
-    out["rule"] = repeated("rule")
-    out["basis"] = joined("basis")
-    out["fallback"] = joined("fallback")
-    out["pinned"] = joined("pinned")
+    child = joined("child")
+    columns = {key: children[key].to_numpy()[child] for key in LEAF}
+    columns["period_start"] = pd.DatetimeIndex(starts).to_numpy()[joined("col")]
+    columns["cycle_date"] = np.full(len(child), pd.Timestamp(cycle_date).to_datetime64(), dtype="datetime64[ns]")
+    columns["measure"] = repeated("measure")
+    columns["value"] = joined("value")
+    columns["parent_value"] = joined("parent_value")
+    columns["rule"] = repeated("rule")
+    columns["basis"] = joined("basis")
+    columns["fallback"] = joined("fallback")
+    columns["pinned"] = joined("pinned")
+    # every column made once here and handed over as it is: no copy into blocks, no gather of a frame
+    out = pd.DataFrame(columns, copy=False)
     return out.astype(PLAN_TYPES, copy=False)  # the columns already of their type are kept, not copied
