@@ -107,6 +107,7 @@ from pipelines.engines.measure_split import (
     OVERFLOW_COLUMNS,
     PARENT_COLUMNS,
     PIN_KEY,
+    _parent_sum,
     _stack,
     find_pins_not_kept,
     find_sum_violations,
@@ -198,6 +199,7 @@ def plan_measures(
     parent_of_child, parents = factorize(children, PARENT)
     n_parents = len(parents)
     active = active_matrix(children, starts, period)
+    n_active = _parent_sum(active.astype(float), parent_of_child, n_parents)  # the same for every measure
     order = np.arange(n)  # children are in key order
     check_measures_known(adjustments, config, "adjustments")
     check_measures_known(pins, config, "pins")
@@ -255,7 +257,7 @@ def plan_measures(
         basis, fallback_basis, label = basis_of(m, name, mats, top_down, parent_of_child)
         split = split_cells(
             m.rule, value, has, parent_of_child, active, pin, pinned, basis, fallback_basis,
-            None if m.integer is None else m.integer.pack_size, order,
+            None if m.integer is None else m.integer.pack_size, order, n_active,
         )
         mats[f"measure:{name}"] = np.where(split.rows, split.value, 0.0)
         pieces[name] = plan_piece(name, m, split, value, has, pinned, label, parent_of_child)
