@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import horizon_starts, period_ordinal
+from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal
 from pipelines.config_sections import MeasureConfig
 from pipelines.engines.period_shares import period_shares
 from pipelines.engines.share_rows import ShareRows
@@ -42,6 +42,9 @@ def leaf_matrix(
     """(len(table), h) matrix of `column` (one per name of a list) from a long frame keyed by `cols` and
     period_start, 0 where absent; the keys are looked up once for all columns."""
     names = [column] if isinstance(column, str) else column
+    if _aligned(frame, cols, table, first_ord, h, period):  # a row per table row and period, in their order
+        out = [frame[name].to_numpy(float).reshape(len(table), h).copy() for name in names]
+        return out[0] if isinstance(column, str) else out
     out = [np.zeros((len(table), h)) for _ in names]
     if len(frame):
         row, col, inside = cells_of(frame, cols, table, first_ord, h, period)
@@ -49,6 +52,26 @@ def leaf_matrix(
         for m, name in zip(out, names, strict=False):
             m[row[ok], col[ok]] = frame[name].to_numpy(float)[ok]
     return out[0] if isinstance(column, str) else out
+
+
+def _aligned(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame, first_ord: int, h: int, period: str) -> bool:
+    """Whether `frame` holds exactly the table's rows x the horizon's periods, table row by table row, each
+    table row's h periods in order (as the stages write their leaf tables): then its columns are the matrices.
+
+    Proven on the frame's own ids (a leaf table carries `leaf_id`, one per key): each block of h rows has one
+    id, the blocks' keys are the table's keys in order, and every period is the horizon's. Else False."""
+    n = len(table)
+    ids = ids_in(frame, (LEAF_ID,)) if cols == LEAF else []
+    starts = frame["period_start"].to_numpy() if "period_start" in frame.columns else None
+    if not ids or not n or len(frame) != n * h or starts is None or starts.dtype != "datetime64[ns]":
+        return False
+    own = frame[LEAF_ID].to_numpy().reshape(n, h)
+    if not (own == own[:, :1]).all():
+        return False
+    if not all(np.array_equal(frame[c].to_numpy()[::h], table[c].to_numpy()) for c in cols):
+        return False
+    horizon = ordinal_to_start(first_ord + np.arange(h), period).to_numpy()
+    return bool((starts.reshape(n, h) == horizon[None]).all())
 
 
 def combine_cells(row: np.ndarray, col: np.ndarray, value: np.ndarray, shape: tuple[int, int], mean: bool):
