@@ -63,6 +63,8 @@ def plan_table(pieces: list[dict], children: pd.DataFrame, starts: pd.DatetimeIn
 
     Every column is allocated once at the plan's length and each measure's rows are taken into its slice
     (`np.take(..., out=)`): no array per measure joined afterwards, no frame gathered and copied into blocks.
+    The positions come from `np.nonzero` of the measure's own matrices, so always in range: `mode="clip"`,
+    which writes into `out` directly (numpy buffers `out` under its default `mode="raise"`).
     """
     counts = [int(np.count_nonzero(p["rows"])) for p in pieces]
     total = sum(counts)
@@ -92,15 +94,15 @@ def plan_table(pieces: list[dict], children: pd.DataFrame, starts: pd.DatetimeIn
         cell = child * h + col
         par = p["parent_of_child"][child]
         for key in LEAF:
-            np.take(keys[key], child, out=columns[key][at])
-        np.take(starts_ns, col, out=columns["period_start"][at])
-        np.take(p["value"], cell, out=columns["value"][at])
-        np.take(p["parent"], par * h + col, out=columns["parent_value"][at])
+            np.take(keys[key], child, out=columns[key][at], mode="clip")
+        np.take(starts_ns, col, out=columns["period_start"][at], mode="clip")
+        np.take(p["value"], cell, out=columns["value"][at], mode="clip")
+        np.take(p["parent"], par * h + col, out=columns["parent_value"][at], mode="clip")
         code = np.take(p["fallback"], cell)
-        np.take(fallbacks, code, out=columns["fallback"][at])
-        is_pin = np.take(p["pinned"], cell, out=columns["pinned"][at])
+        np.take(fallbacks, code, out=columns["fallback"][at], mode="clip")
+        is_pin = np.take(p["pinned"], cell, out=columns["pinned"][at], mode="clip")
         label_code, names = _basis_names(p["label"])
         choice = np.where(is_pin, len(names) - 1, np.where(code == EVEN, len(names) - 2, label_code[par]))
-        np.take(names, choice, out=columns["basis"][at])
+        np.take(names, choice, out=columns["basis"][at], mode="clip")
     out = pd.DataFrame(columns, copy=False)  # the arrays as they are: no copy into blocks
     return out.astype(PLAN_TYPES, copy=False)  # the columns already of their type are kept, not copied
