@@ -263,6 +263,30 @@ def test_active_children_count_a_period_with_own_and_successor_rows_once(
     assert dict(zip(ch["customer"], ch["own_periods"], strict=False)) == {"C1": 4, "C2": 2}
 
 
+def test_active_children_take_own_periods_from_a_table_that_counted_them(
+    make_products, make_spans, make_history, config
+):
+    """`counted=` (the plan passes the cycle's share table): the children's own periods are looked up there, so
+    the frame equals the one counted over the history; a table lacking a child is not used (counted again)."""
+    products = make_products([("P1", "a"), ("P2", "b")])
+    spans = make_spans([("P1", "S1", "C1"), ("P1", "S1", "C2"), ("P2", "S2", "C3")])
+    history = make_history(
+        [("P1", "S1", "C1", W1, 1), ("P1", "S1", "C1", W2, 0), ("P1", "S1", "C2", W4, 2), ("P2", "S2", "C3", W3, 4)]
+    )
+    counted_here = active_children(spans, products, history, config, CYCLE)
+    assert counted_here["own_periods"].tolist() == [2, 1, 1]  # by hand: C1 weeks W1, W2; C2 W4; C3 W3
+    table = counted_here.iloc[::-1].reset_index(drop=True)  # another order, as the share table's
+    pd.testing.assert_frame_equal(
+        active_children(spans, products, history, config, CYCLE, counted=table), counted_here, check_exact=True
+    )
+    wrong = table.assign(own_periods=[7, 8, 9])  # proves the look-up: these values come from the table
+    assert active_children(spans, products, history, config, CYCLE, counted=wrong)["own_periods"].tolist() == [9, 8, 7]
+    lacking = table.iloc[1:].assign(own_periods=99)  # one child missing: every child counted over the history
+    pd.testing.assert_frame_equal(
+        active_children(spans, products, history, config, CYCLE, counted=lacking), counted_here, check_exact=True
+    )
+
+
 def test_leaf_codes_through_runs_are_those_of_factorize_in_any_row_order():
     """leaf_codes hashes only the first row of each run of equal keys; the codes and leaves must be
     keys.factorize's (first appearance), whatever the order of the rows (checked against factorize itself)."""

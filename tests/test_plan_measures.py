@@ -584,3 +584,31 @@ def test_parts_sum_to_the_parent_pins_are_kept_and_nothing_goes_negative(scenari
     for _, row in ok.iterrows():
         assert got.get(("volume", row["product"], row["period_start"]), 0.0) == pytest.approx(
             0.0 if np.isnan(row["parent_value"]) else row["parent_value"], abs=1e-9)
+
+
+def test_leaf_matrix_reads_a_frame_in_table_order_as_it_reads_any_order():
+    """A leaf table with one row per child and period in the children's order is read by a reshape
+    (`measure_inputs._aligned`); the same rows shuffled, or with one id changed, go through the key look-up:
+    the matrices must be equal. By hand: child C1 holds 1, 2 and C2 holds 3, 4 over the two weeks."""
+    from pipelines.calendar import period_ordinal
+    from pipelines.engines.measure_inputs import _aligned, leaf_matrix
+
+    starts = pd.DatetimeIndex(["2026-01-05", "2026-01-12"])
+    first_ord = int(period_ordinal(starts[:1], "week")[0])
+    table = pd.DataFrame({"product": ["P", "P"], "site": ["S", "S"], "customer": ["C1", "C2"], "leaf_id": [4, 7]})
+    frame = pd.DataFrame({
+        "product": ["P"] * 4, "site": ["S"] * 4, "customer": ["C1", "C1", "C2", "C2"], "leaf_id": [4, 4, 7, 7],
+        "period_start": np.tile(starts.values, 2), "value": [1.0, 2.0, 3.0, 4.0],
+    })
+    keys = ["product", "site", "customer"]
+    expected = np.array([[1.0, 2.0], [3.0, 4.0]])
+    assert _aligned(frame, keys, table, first_ord, 2, "week")
+    np.testing.assert_array_equal(leaf_matrix(frame, keys, table, "value", first_ord, 2, "week"), expected)
+    shuffled = frame.iloc[[3, 0, 2, 1]].reset_index(drop=True)
+    assert not _aligned(shuffled, keys, table, first_ord, 2, "week")
+    np.testing.assert_array_equal(leaf_matrix(shuffled, keys, table, "value", first_ord, 2, "week"), expected)
+    later = frame.assign(period_start=np.tile((starts + pd.Timedelta(weeks=1)).values, 2))  # not the horizon's
+    assert not _aligned(later, keys, table, first_ord, 2, "week")
+    np.testing.assert_array_equal(
+        leaf_matrix(later, keys, table, "value", first_ord, 2, "week"), np.array([[0.0, 1.0], [0.0, 3.0]])
+    )

@@ -19,6 +19,7 @@ def active_children(
     cycle_date: pd.Timestamp,
     keys: Coded | None = None,
     rows: ShareRows | None = None,
+    counted: pd.DataFrame | None = None,
 ) -> pd.DataFrame:
     """The children that can receive a share: customer spans active in any period of the horizon.
 
@@ -31,7 +32,9 @@ def active_children(
     (a period with an own row and a mapped successor row is one period).
     Columns: leaf keys, product_class, first_active_period, last_active_period,
     own_periods, reference_customer, scale, initial_share. keys: `coded(history)`, rows: its `share_rows`,
-    when the caller has them.
+    when the caller has them. counted: a table that already holds these children's `own_periods` over this
+    history (leaf keys, own_periods; the cycle's share table): looked up there instead of counted again, when it
+    holds every child.
     """
     settings = ShareSettings.of(settings)
     period = settings.period
@@ -50,7 +53,11 @@ def active_children(
     out["product_class"] = out["product"].map(products.set_index("product")["product_class"]).to_numpy()
     out["first_active_period"] = ordinal_to_start(first[ok].astype(np.int64), period)
     out["last_active_period"] = ordinal_to_start(last[ok].astype(np.int64), period)
-    out["own_periods"] = own_periods(history, out, period, keys, rows)
+    pos = lookup(out, LEAF, counted) if counted is not None else None
+    if pos is not None and (pos >= 0).all():
+        out["own_periods"] = counted["own_periods"].to_numpy(np.int64)[pos]
+    else:
+        out["own_periods"] = own_periods(history, out, period, keys, rows)
     for column in ("reference_customer", "scale", "initial_share"):
         values = spans[column] if column in spans.columns else pd.Series(np.nan, index=spans.index)
         out[column] = values[ok].to_numpy()

@@ -118,14 +118,12 @@ def coherent_intervals(
         l_lo, l_hi = o_lo, o_hi
     else:
         l_lo, l_hi = np.where(split, s_lo, o_lo), np.where(split, s_hi, o_hi)
-    zero_p = np.zeros(parent_point.shape, bool)[None] if parent_zero is None else parent_zero[None]
-    zero_l = np.zeros(leaf_point.shape, bool)[None] if leaf_zero is None else leaf_zero[None]
-    return (
-        np.where(zero_p, 0.0, np.clip(p_lo, 0, None)),
-        np.where(zero_p, 0.0, np.clip(p_hi, 0, None)),
-        np.where(zero_l, 0.0, np.clip(l_lo, 0, None)),
-        np.where(zero_l, 0.0, np.clip(l_hi, 0, None)),
-    )
+    # every bound is an array made above for this result alone: clipped and zeroed in place, no copies
+    for bound, zero in ((p_lo, parent_zero), (p_hi, parent_zero), (l_lo, leaf_zero), (l_hi, leaf_zero)):
+        np.clip(bound, 0, None, out=bound)
+        if zero is not None:
+            bound[:, zero] = 0.0  # every level's cells of the periods set to 0
+    return p_lo, p_hi, l_lo, l_hi
 
 
 def interval_frame(levels: Sequence[float], lower: np.ndarray, upper: np.ndarray):
@@ -139,7 +137,7 @@ def interval_frame(levels: Sequence[float], lower: np.ndarray, upper: np.ndarray
         lo, hi = interval_columns(level)
         out[lo] = np.asarray(lower[i], dtype=float).ravel()
         out[hi] = np.asarray(upper[i], dtype=float).ravel()
-    return pd.DataFrame(out)
+    return pd.DataFrame(out, copy=False)  # the bounds as they are, not copied into one block
 
 
 def interval_frames(

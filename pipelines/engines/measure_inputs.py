@@ -5,13 +5,14 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import horizon_starts, period_ordinal
+from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal
 from pipelines.config_sections import MeasureConfig
 from pipelines.engines.period_shares import period_shares
+from pipelines.engines.share_rows import ShareRows
 from pipelines.engines.share_settings import ShareRule, ShareSettings
-from pipelines.engines.shares import compute_shares
+from pipelines.engines.shares import child_frame, compute_shares
 from pipelines.errors import ConfigError
-from pipelines.keys import LEAF, LEAF_ID, PARENT, ids_in, lookup, rows_in
+from pipelines.keys import LEAF, LEAF_ID, PARENT, Coded, ids_in, lookup, rows_in
 from pipelines.vocabulary import Basis
 
 
@@ -22,7 +23,10 @@ def cells_of(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame, first_or
     up through its own ids: its distinct keys once, not a text key per row (`pipelines.keys.rows_in`; `table`'s
     keys only, so no id of another table is trusted)."""
     row = rows_in(frame, table[cols], cols) if len(frame) else np.zeros(0, dtype=np.int64)
-    col = period_ordinal(pd.DatetimeIndex(pd.to_datetime(frame["period_start"])), period) - first_ord
+    starts = frame["period_start"]
+    if not pd.api.types.is_datetime64_dtype(starts.dtype):  # text or dates as given; datetime64 is used as it is
+        starts = pd.to_datetime(starts)
+    col = period_ordinal(pd.DatetimeIndex(starts), period) - first_ord
     return row, col, (col >= 0) & (col < h)
 
 
@@ -38,6 +42,9 @@ def leaf_matrix(
     """(len(table), h) matrix of `column` (one per name of a list) from a long frame keyed by `cols` and
     period_start, 0 where absent; the keys are looked up once for all columns."""
     names = [column] if isinstance(column, str) else column
+    if _aligned(frame, cols, table, first_ord, h, period):  # a row per table row and period, in their order
+        out = [frame[name].to_numpy(float).reshape(len(table), h).copy() for name in names]
+        return out[0] if isinstance(column, str) else out
     out = [np.zeros((len(table), h)) for _ in names]
     if len(frame):
         row, col, inside = cells_of(frame, cols, table, first_ord, h, period)
@@ -45,6 +52,26 @@ def leaf_matrix(
         for m, name in zip(out, names, strict=False):
             m[row[ok], col[ok]] = frame[name].to_numpy(float)[ok]
     return out[0] if isinstance(column, str) else out
+
+
+def _aligned(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame, first_ord: int, h: int, period: str) -> bool:
+    """Whether `frame` holds exactly the table's rows x the horizon's periods, table row by table row, each
+    table row's h periods in order (as the stages write their leaf tables): then its columns are the matrices.
+
+    Proven on the frame's own ids (a leaf table carries `leaf_id`, one per key): each block of h rows has one
+    id, the blocks' keys are the table's keys in order, and every period is the horizon's. Else False."""
+    n = len(table)
+    ids = ids_in(frame, (LEAF_ID,)) if cols == LEAF else []
+    starts = frame["period_start"].to_numpy() if "period_start" in frame.columns else None
+    if not ids or not n or len(frame) != n * h or starts is None or starts.dtype != "datetime64[ns]":
+        return False
+    own = frame[LEAF_ID].to_numpy().reshape(n, h)
+    if not (own == own[:, :1]).all():
+        return False
+    if not all(np.array_equal(frame[c].to_numpy()[::h], table[c].to_numpy()) for c in cols):
+        return False
+    horizon = ordinal_to_start(first_ord + np.arange(h), period).to_numpy()
+    return bool((starts.reshape(n, h) == horizon[None]).all())
 
 
 def combine_cells(row: np.ndarray, col: np.ndarray, value: np.ndarray, shape: tuple[int, int], mean: bool):
@@ -134,21 +161,28 @@ def share_basis_tables(
     products: pd.DataFrame,
     config,
     cycle_date: pd.Timestamp,
+    keys: Coded | None = None,
+    rows: ShareRows | None = None,
 ) -> dict[str, pd.DataFrame]:
     """Period shares of every named share basis (config `share_bases`): leaf keys, period_start, share, fallback.
 
     Each basis runs the share engine (`engines.shares.compute_shares`, then
     `engines.period_shares.period_shares`) with its window, method and fallback
     windows in place of every product class's own. history: lifecycle history;
-    children: `engines.children.active_children`.
+    children: `engines.children.active_children`; keys: `coded(history)`, rows: its `history_rows`, when the
+    caller has them. The window- and method-free part of the share engine (`child_frame`: the children
+    completed, their lifecycle rules, each child's leaf id) reads the lifecycle settings only, which no basis
+    changes: made once.
     """
     out = {}
     starts = horizon_starts(cycle_date, config.calendar.horizon, config.calendar.period)
     # a PlanSettings carries the share engine's settings; a PlanningConfig makes them
     settings = getattr(config, "share", None) or ShareSettings.of(config)
+    made = None
     for name, basis in config.share_bases.items():  # a few named bases, not a loop over series
         own = settings.with_rule(ShareRule.of(basis))  # its window, method and fallbacks in every class
-        table = compute_shares(history, children, own, cycle_date)
+        made = made or child_frame(history, children, own, cycle_date, keys, rows)
+        table = compute_shares(history, children, own, cycle_date, made, keys)
         share = period_shares(table, own, cycle_date, products, history)[0]
         frame = table[LEAF + ids_in(table, (LEAF_ID,))].loc[table.index.repeat(len(starts))].reset_index(drop=True)
         frame["period_start"] = np.tile(starts.values, len(table))

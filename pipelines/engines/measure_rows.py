@@ -34,54 +34,75 @@ PLAN_TYPES = {
 
 
 def plan_piece(name: str, m, split: Split, value, has, pinned, label, parent_of_child) -> dict:
-    """The rows of one measure as arrays: child and horizon column of each cell that gets a row, and its
-    value, parent value, basis, fallback and pin flag."""
-    child, col = np.nonzero(split.rows)
-    par = parent_of_child[child]
-    code = split.fallback[child, col]
-    is_pin = pinned[child, col]
+    """What the plan takes from one measure's split: its (children x horizon) cells that get a row, their
+    values, fallback codes and pin flags, and its parents' values and labels; `plan_table` reads the rows
+    straight into the plan's columns."""
     return {
-        "child": child,
-        "col": col,
         "measure": name,
         "rule": m.rule,
-        "value": split.value[child, col],
-        "parent_value": np.where(has[par, col], value[par, col], np.nan),
-        "basis": _basis(label, par, code == EVEN, is_pin),
-        "fallback": np.asarray(FALLBACKS, dtype=object)[code],
-        "pinned": is_pin,
+        "rows": split.rows,
+        "value": split.value,
+        "fallback": split.fallback,
+        "pinned": pinned,
+        "parent": np.where(has, value, np.nan),  # (n_parents, H): NaN where the parent period has no value
+        "label": label,
+        "parent_of_child": parent_of_child,
     }
 
 
-def _basis(label: np.ndarray, par: np.ndarray, even: np.ndarray, is_pin: np.ndarray) -> np.ndarray:
-    """Each row's basis: "pin" where pinned, else "even" where the split fell back to even, else its parent's
-    label; chosen on integer codes and taken once from the few labels (no object array per choice)."""
-    code, labels = pd.factorize(label, use_na_sentinel=False)  # a parent's label, coded (a handful)
-    names = np.concatenate([np.asarray(labels, dtype=object), np.array(["even", "pin"], dtype=object)])
-    return names[np.where(is_pin, len(labels) + 1, np.where(even, len(labels), code[par]))]
+def _basis_names(label: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Each parent's label coded (a handful of labels), and the names of the codes: the labels, then "even"
+    and "pin"; a row's basis is "pin" where pinned, else "even" where the split fell back to even, else its
+    parent's label, chosen on these integer codes (no object array per choice)."""
+    code, labels = pd.factorize(label, use_na_sentinel=False)
+    return code, np.concatenate([np.asarray(labels, dtype=object), np.array(["even", "pin"], dtype=object)])
 
 
 def plan_table(pieces: list[dict], children: pd.DataFrame, starts: pd.DatetimeIndex, cycle_date) -> pd.DataFrame:
-    """The plan (PLAN_COLUMNS, PLAN_TYPES) of the measures' pieces in the order given."""
-    pieces = [p for p in pieces if len(p["child"])]
-    if not pieces:
+    """The plan (PLAN_COLUMNS, PLAN_TYPES) of the measures' pieces in the order given.
+
+    Every column is allocated once at the plan's length and each measure's rows are taken into its slice
+    (`np.take(..., out=)`): no array per measure joined afterwards, no frame gathered and copied into blocks.
+    The positions come from `np.nonzero` of the measure's own matrices, so always in range: `mode="clip"`,
+    which writes into `out` directly (numpy buffers `out` under its default `mode="raise"`).
+    """
+    counts = [int(np.count_nonzero(p["rows"])) for p in pieces]
+    total = sum(counts)
+    if not total:
         return pd.DataFrame({c: pd.Series(dtype=object) for c in PLAN_COLUMNS}).astype(PLAN_TYPES)
-    sizes = [len(p["child"]) for p in pieces]
-
-    def joined(column: str) -> np.ndarray:
-        return np.concatenate([p[column] for p in pieces])
-
-    def repeated(column: str) -> np.ndarray:
-        return np.repeat(np.array([p[column] for p in pieces], dtype=object), sizes)
-
-    out = children[LEAF].iloc[joined("child")].reset_index(drop=True)
-    out["period_start"] = pd.DatetimeIndex(starts)[joined("col")]
-    out["cycle_date"] = cycle_date
-    out["measure"] = repeated("measure")
-    out["value"] = joined("value")
-    out["parent_value"] = joined("parent_value")
-    out["rule"] = repeated("rule")
-    out["basis"] = joined("basis")
-    out["fallback"] = joined("fallback")
-    out["pinned"] = joined("pinned")
+    keys = {key: children[key].to_numpy(object) for key in LEAF}
+    starts_ns = pd.DatetimeIndex(starts).to_numpy().astype("datetime64[ns]")
+    fallbacks = np.asarray(FALLBACKS, dtype=object)
+    columns = {key: np.empty(total, dtype=object) for key in LEAF}
+    columns["period_start"] = np.empty(total, dtype="datetime64[ns]")
+    columns["cycle_date"] = np.full(total, pd.Timestamp(cycle_date).to_datetime64(), dtype="datetime64[ns]")
+    columns["measure"] = np.repeat(np.array([p["measure"] for p in pieces], dtype=object), counts)
+    for name in ("value", "parent_value"):
+        columns[name] = np.empty(total)
+    columns["rule"] = np.repeat(np.array([p["rule"] for p in pieces], dtype=object), counts)
+    columns["basis"] = np.empty(total, dtype=object)
+    columns["fallback"] = np.empty(total, dtype=object)
+    columns["pinned"] = np.empty(total, dtype=bool)
+    end = 0
+    for p, k in zip(pieces, counts, strict=True):  # a handful of measures
+        if not k:
+            continue
+        at = slice(end, end + k)
+        end += k
+        child, col = np.nonzero(p["rows"])  # child-major: the rows follow the sorted children, then the period
+        h = p["rows"].shape[1]
+        cell = child * h + col
+        par = p["parent_of_child"][child]
+        for key in LEAF:
+            np.take(keys[key], child, out=columns[key][at], mode="clip")
+        np.take(starts_ns, col, out=columns["period_start"][at], mode="clip")
+        np.take(p["value"], cell, out=columns["value"][at], mode="clip")
+        np.take(p["parent"], par * h + col, out=columns["parent_value"][at], mode="clip")
+        code = np.take(p["fallback"], cell)
+        np.take(fallbacks, code, out=columns["fallback"][at], mode="clip")
+        is_pin = np.take(p["pinned"], cell, out=columns["pinned"][at], mode="clip")
+        label_code, names = _basis_names(p["label"])
+        choice = np.where(is_pin, len(names) - 1, np.where(code == EVEN, len(names) - 2, label_code[par]))
+        np.take(names, choice, out=columns["basis"][at], mode="clip")
+    out = pd.DataFrame(columns, copy=False)  # the arrays as they are: no copy into blocks
     return out.astype(PLAN_TYPES, copy=False)  # the columns already of their type are kept, not copied

@@ -49,6 +49,7 @@ class Split:
     split_total: np.ndarray
     status: np.ndarray
     live: np.ndarray
+    n_active: np.ndarray | None = None  # (n_parents, H) active children of each parent period
 
 
 def _parent_sum(cells: np.ndarray, parent_of_child: np.ndarray, n_parents: int) -> np.ndarray:
@@ -80,6 +81,7 @@ def split_cells(
     fallback_basis: np.ndarray | None = None,
     pack_size: int | None = None,
     order: np.ndarray | None = None,
+    n_active: np.ndarray | None = None,
 ) -> Split:
     """Split each parent period's value over its active children by `rule`; see the module docstring.
 
@@ -88,13 +90,15 @@ def split_cells(
     pin, pinned (n, H): pinned values, only where active. basis (n, H):
     pro_rata weights; fallback_basis (n, H): weights where the basis is 0 for
     every unpinned active child (then even). pack_size: integer split in
-    multiples of it. order (n,): tie-break key of the integer split.
+    multiples of it. order (n,): tie-break key of the integer split. n_active (n_parents, H): the active
+    children of each parent period, when the caller has counted them (the same for every measure).
     """
     n_parents, h = parent.shape
     n = len(parent_of_child)
     pinned = np.zeros((n, h), dtype=bool) if pinned is None else pinned & active
     pin = np.where(pinned, 0.0 if pin is None else pin, 0.0)
-    n_active = _parent_sum(active.astype(float), parent_of_child, n_parents)
+    if n_active is None:
+        n_active = _parent_sum(active.astype(float), parent_of_child, n_parents)
     any_pin = _parent_sum(pinned.astype(float), parent_of_child, n_parents) > 0
     live = has_value | any_pin
     v = np.where(has_value, parent, 0.0)
@@ -105,7 +109,7 @@ def split_cells(
     if rule == "replicate":
         value = np.where(pinned, pin, v[parent_of_child])
         rows = (active & has_value[parent_of_child]) | pinned
-        return Split(value, rows, fallback, pins_sum, v, status, live)
+        return Split(value, rows, fallback, pins_sum, v, status, live, n_active)
 
     free = active & ~pinned
     n_free = _parent_sum(free.astype(float), parent_of_child, n_parents)
@@ -149,7 +153,7 @@ def split_cells(
     split_total = np.where(overflow, pins_sum, np.where(status == NO_ACTIVE_CHILD, v, pins_sum + rest))
     status = np.where(overflow, OVERFLOW, status).astype(np.int8)
     rows = active & live[parent_of_child]
-    return Split(value, rows, fallback, pins_sum, split_total, status, live)
+    return Split(value, rows, fallback, pins_sum, split_total, status, live, n_active)
 
 
 def _stack(pieces: list[pd.DataFrame], columns: list[str]) -> pd.DataFrame:
@@ -227,7 +231,8 @@ def find_pins_not_kept(plan: pd.DataFrame, pins_applied: pd.DataFrame, pins_not_
     its value differs (tolerance 1e-9 x max(|pin|, 1)).
     """
     columns = PIN_KEY + ["pin", "value", "reason"]
-    rows = plan.loc[plan["pinned"].astype(bool), PIN_KEY + ["value"]]
+    pinned = np.flatnonzero(plan["pinned"].to_numpy(bool))  # a few rows: taken column by column, not a frame mask
+    rows = pd.DataFrame({c: plan[c].to_numpy()[pinned] for c in PIN_KEY + ["value"]})
     applied = pins_applied.rename(columns={"value": "pin"}).astype({"period_start": "datetime64[ns]", "pin": float})
     merged = applied.merge(rows.astype({"period_start": "datetime64[ns]"}), on=PIN_KEY, how="left")
     missing = merged["value"].isna()
@@ -295,7 +300,9 @@ OVERFLOW_COLUMNS = ["measure", "product", "site", "period_start", "parent_value"
 def parent_piece(name, m, split, value, has, pinned, active, parents, parent_of_child, starts) -> pd.DataFrame:
     n_parents = len(parents)
     par, col = np.nonzero(split.live)
-    n_active = _parent_sum(active.astype(float), parent_of_child, n_parents)
+    n_active = split.n_active
+    if n_active is None:
+        n_active = _parent_sum(active.astype(float), parent_of_child, n_parents)
     n_pinned = _parent_sum(pinned.astype(float), parent_of_child, n_parents)
     out = parents[PARENT].iloc[par].reset_index(drop=True)
     out.insert(0, "rule", m.rule)

@@ -107,6 +107,7 @@ from pipelines.engines.measure_split import (
     OVERFLOW_COLUMNS,
     PARENT_COLUMNS,
     PIN_KEY,
+    _parent_sum,
     _stack,
     find_pins_not_kept,
     find_sum_violations,
@@ -118,9 +119,10 @@ from pipelines.engines.measure_split import (
     split_cells,
 )
 from pipelines.engines.plan_codes import group_sizes
+from pipelines.engines.share_rows import history_rows
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.errors import PinError
-from pipelines.keys import LEAF, PARENT, factorize, lookup
+from pipelines.keys import LEAF, LEAF_ID, PARENT, coded, factorize, lookup
 from pipelines.results import CheckRows, Log, StageResult, quiet
 
 UNUSED_COLUMNS = ["input", "measure", "product", "site", "customer", "period_start", "value", "reason"]
@@ -197,6 +199,7 @@ def plan_measures(
     parent_of_child, parents = factorize(children, PARENT)
     n_parents = len(parents)
     active = active_matrix(children, starts, period)
+    n_active = _parent_sum(active.astype(float), parent_of_child, n_parents)  # the same for every measure
     order = np.arange(n)  # children are in key order
     check_measures_known(adjustments, config, "adjustments")
     check_measures_known(pins, config, "pins")
@@ -254,7 +257,7 @@ def plan_measures(
         basis, fallback_basis, label = basis_of(m, name, mats, top_down, parent_of_child)
         split = split_cells(
             m.rule, value, has, parent_of_child, active, pin, pinned, basis, fallback_basis,
-            None if m.integer is None else m.integer.pack_size, order,
+            None if m.integer is None else m.integer.pack_size, order, n_active,
         )
         mats[f"measure:{name}"] = np.where(split.rows, split.value, 0.0)
         pieces[name] = plan_piece(name, m, split, value, has, pinned, label, parent_of_child)
@@ -300,8 +303,14 @@ def split(
     cycle_date = pd.Timestamp(cycle["cycle_date"])
     bases = {}
     if settings.share_bases:
-        children = active_children(customer_spans, products, lifecycle_history, settings.share, cycle_date)
-        bases = share_basis_tables(lifecycle_history, children, products, settings, cycle_date)
+        # the history's ids and keys coded and its rows read once; the children's own periods as the share
+        # table counted them
+        keys = coded(lifecycle_history)
+        rows = history_rows(lifecycle_history, keys, settings.share, cycle_date)
+        children = active_children(
+            customer_spans, products, lifecycle_history, settings.share, cycle_date, keys, rows, counted=share_tables
+        )
+        bases = share_basis_tables(lifecycle_history, children, products, settings, cycle_date, keys, rows)
     result = plan_measures(
         share_tables,
         parent_forecast,
@@ -346,7 +355,8 @@ def run(
     )
     plan = result.plan
     basis_fallbacks = [
-        f.drop_duplicates(["product", "site"])
+        _first_of_leaves(f)
+        .drop_duplicates(["product", "site"])
         .groupby("fallback")
         .size()
         .rename("parents")
@@ -368,3 +378,11 @@ def run(
         metadata={"plan_measures": figures},
         checks=plan_checks(plan, result, settings),
     )
+
+
+def _first_of_leaves(frame: pd.DataFrame) -> pd.DataFrame:
+    """The first row of each leaf (by its `leaf_id`, when the frame has it): a parent's first row is its first
+    leaf's, so the parents' first rows are found among these few, not by hashing text keys on every row."""
+    if LEAF_ID not in frame.columns:
+        return frame
+    return frame[~frame[LEAF_ID].duplicated().to_numpy()]
