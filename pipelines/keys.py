@@ -2,12 +2,12 @@
 
 from __future__ import annotations
 
-import ctypes
 import math
 
 import numpy as np
 import pandas as pd
 
+from pipelines.cell_runs import text_changes
 from pipelines.text_codes import RUNS_SHARE, addresses, codes_of, run_starts
 
 LEAF = ["product", "site", "customer"]
@@ -46,27 +46,6 @@ def any_blank(column: pd.Series) -> bool:
         return bool(column.isna().any())
     where = addresses(values)
     return bool(pd.isna(values[np.flatnonzero(np.r_[True, where[1:] != where[:-1]])]).any())
-
-
-def cell_run_starts(columns: list[np.ndarray], block: int = 1 << 20) -> np.ndarray:
-    """Positions where a run of one cell object starts in any of `columns` (object arrays of one length): the
-    positions of `text_codes.run_starts`, compared a block of rows at a time on the cells' addresses read in
-    place, so no column is copied and no full-length temporary is made."""
-    n = len(columns[0]) if columns else 0
-    if not n:
-        return np.zeros(0, dtype=np.int64)
-    held = [np.ascontiguousarray(v, dtype=object) for v in columns]  # kept alive while their cells are read
-    cells = [np.ctypeslib.as_array((ctypes.c_ssize_t * n).from_address(v.ctypes.data)) for v in held]
-    found, change, differ = [np.zeros(1, dtype=np.int64)], np.empty(block, dtype=bool), np.empty(block, dtype=bool)
-    for low in range(1, n, block):
-        high = min(n, low + block)
-        now, other = change[: high - low], differ[: high - low]
-        now[:] = False
-        for where in cells:
-            np.not_equal(where[low:high], where[low - 1 : high - 1], out=other)
-            now |= other
-        found.append(np.flatnonzero(now) + low)
-    return np.concatenate(found)
 
 
 def first_rows(codes: np.ndarray) -> np.ndarray:
@@ -268,7 +247,10 @@ def _first_rows_if_one_key(ids: np.ndarray, keys: list[np.ndarray], constant: li
     new = np.r_[True, run_ids[1:] != run_ids[:-1]]
     for values in [*keys, *constant]:
         values = values if order is None else values[order]
-        if not bool(np.all((values[1:] == values[:-1]) | new[1:])):
+        if values.dtype == object:  # where the key changes, a new id starts
+            if not bool(new[text_changes(values)].all()):
+                return None
+        elif not bool(np.all((values[1:] == values[:-1]) | new[1:])):
             return None
     first = np.flatnonzero(new) if order is None else order[new]
     if pd.DataFrame({i: values[first] for i, values in enumerate(keys)}).duplicated().any():

@@ -39,6 +39,7 @@ import contextvars
 import copy
 import functools
 
+import numpy as np
 import pandas as pd
 import pandera.pandas as pa
 from pandera import dtypes
@@ -49,9 +50,11 @@ from pandera.backends.pandas.checks import PandasCheckBackend
 from pandera.backends.pandas.components import ColumnBackend
 from pandera.engines import pandas_engine
 
+from pipelines.cell_runs import few_runs, runs_kept
 from pipelines.unique_keys import one_proof_per_table
 
 ALL_TEXT = ("string", "empty")  # infer_dtype's answers when every non-missing cell is a str
+_FEW = 1024  # rows below which a column is asked whole
 
 
 def all_text(data, skipna: bool = True) -> bool:
@@ -69,12 +72,20 @@ _SEEN: contextvars.ContextVar[dict | None] = contextvars.ContextVar("text_column
 def _inferred(data: pd.Series, skipna: bool) -> str:
     seen = _SEEN.get()
     if seen is None:
-        return pd.api.types.infer_dtype(data, skipna=skipna)
+        return _infer_by_runs(data.values, skipna)
     values = data.values
     key = (values.__array_interface__["data"][0], values.shape, values.strides, skipna)
     if key not in seen:
-        seen[key] = pd.api.types.infer_dtype(values, skipna=skipna)
+        seen[key] = _infer_by_runs(values, skipna)
     return seen[key]
+
+
+def _infer_by_runs(values: np.ndarray, skipna: bool) -> str:
+    """`infer_dtype(values, skipna)`, asked of one cell per run of one cell object when the column is in long
+    runs (`cell_runs.few_runs`: a key repeated over a leaf's periods): every cell holds the object of its run's
+    first cell, so the same type, and the cells asked hold every object of the column."""
+    starts = few_runs(values) if len(values) >= _FEW else None
+    return pd.api.types.infer_dtype(values if starts is None else values[starts], skipna=skipna)
 
 
 @pandas_engine.Engine.register_dtype
@@ -126,10 +137,11 @@ def validate_table(model: type[pa.DataFrameModel], frame: pd.DataFrame) -> pd.Da
     schema = model.to_schema()
     token = _SEEN.set({})
     try:
-        with one_proof_per_table():  # the ids' proof made for the unique key is read by ids_match_keys
+        with one_proof_per_table(), runs_kept():  # the ids' proof made for the unique key is read by ids_match_keys
             if not (schema.coerce and holds_its_types(schema, frame)):
                 _SEEN.set(None)  # coercion writes columns: no answer is kept
-                return schema.validate(frame.copy(deep=False), lazy=True, inplace=True)
+                with runs_kept(keep=False):
+                    return schema.validate(frame.copy(deep=False), lazy=True, inplace=True)
             return _without_coercion(model).validate(frame.copy(deep=False), lazy=True, inplace=True)
     finally:
         _SEEN.reset(token)

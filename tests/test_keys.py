@@ -210,19 +210,3 @@ def test_packed_codes_are_equal_exactly_where_every_columns_code_is():
     assert pack_codes(parts, [2**31, 2**31, 2]) is None  # past 62 bits: the caller groups another way
     assert pack_codes([np.zeros(3, np.int64)], [2**61]) is not None
 
-
-def test_cell_run_starts_are_text_codes_run_starts_in_any_block_size():
-    """`cell_run_starts` compares the cells' objects a block at a time in place; its positions must be those of
-    `text_codes.run_starts` (which compares copies of the whole columns): blocks of 1, 2, 7 rows and one block,
-    runs crossing block edges, a strided column (not contiguous) and one row."""
-    from pipelines.keys import cell_run_starts
-    from pipelines.text_codes import run_starts
-
-    rng = np.random.default_rng(11)
-    objects = np.array(["a", "b", "c"], dtype=object)
-    for n in (1, 2, 50, 3001):
-        columns = [objects[rng.integers(0, 6, n) // 4], objects[rng.integers(0, 6, 2 * n)[::2] // 4]]
-        want = run_starts(columns)
-        assert len(want) > 1 or n < 50
-        for block in (1, 2, 7, 1 << 20):
-            assert cell_run_starts(columns, block).tolist() == want.tolist()

@@ -17,7 +17,8 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from pipelines.keys import LEAF, cell_run_starts, factorize
+from pipelines.cell_runs import cell_run_starts
+from pipelines.keys import LEAF, factorize
 
 
 @dataclass(frozen=True)
@@ -49,7 +50,7 @@ class LeafRuns:
 def leaf_runs(frame: pd.DataFrame, starts: np.ndarray) -> LeafRuns:
     """The rows of `frame` as runs of one leaf in period order (`starts`: each row's period start).
 
-    The leaves are coded on the first row of each run of one key object only (`keys.cell_run_starts`), as
+    The leaves are coded on the first row of each run of one key object only (`cell_runs.cell_run_starts`), as
     `keys.factorize` codes them (first appearance). When each leaf is one run whose starts ascend (ties
     keep row order), as the cleaned history is written, the runs are the rows themselves; otherwise one
     stable sort by leaf and period start orders them.
