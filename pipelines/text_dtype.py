@@ -118,12 +118,23 @@ class TextColumnBackend(ColumnBackend):
 
 class TextCheckBackend(PandasCheckBackend):
     """pandera's check backend, which drops the blanks of a column before a check (`ignore_na`) without asking
-    a column of only `str` cells for them (`Series.hasnans` on text: the isin check's largest part)."""
+    a column of only `str` cells for them (`Series.hasnans` on text: the isin check's largest part), and asks an
+    `isin` check of a column in long runs once per run."""
 
     def preprocess_table_with_key(self, check_obj, key):
         if self.check.groupby is None and all_text(check_obj[key], skipna=False):
             return check_obj[key]  # no blank to drop
         return super().preprocess_table_with_key(check_obj, key)
+
+    def apply_field(self, check_obj):
+        """An `isin` check of a column in long runs of one cell object (`cell_runs.few_runs`): asked of each
+        run's first cell and spread over the run (one object, one answer), every row's answer as pandera's."""
+        values = check_obj.to_numpy() if self.check.name == "isin" and not self.check.element_wise else None
+        starts = few_runs(values) if values is not None and values.dtype == object and len(values) >= _FEW else None
+        if starts is None:
+            return super().apply_field(check_obj)
+        first = np.asarray(self.check_fn(pd.Series(values[starts])), dtype=bool)
+        return pd.Series(np.repeat(first, np.diff(np.append(starts, len(values)))), index=check_obj.index)
 
 
 # before pandera registers its own on the first validation (it does not replace a registered backend)

@@ -204,3 +204,24 @@ def test_a_long_column_in_runs_is_judged_as_with_pandera_str(planted):
 
 class StrictStr(pa.DataFrameModel):
     code: Series[str]
+
+
+class Coded(pa.DataFrameModel):
+    code: Series[Text] = pa.Field(isin=["a", "b", "c"], nullable=True)
+
+
+@pytest.mark.parametrize("planted", ["nothing", "z", "None", "3"])
+def test_isin_on_a_long_column_in_runs_names_the_rows_pandas_isin_refuses(planted):
+    """5,000 cells in runs of one object (the isin check asked once per run): the failing rows are exactly those
+    `Series.isin` refuses (reference: pandas, cell by cell), a value planted alone and as a run of three; a blank
+    is let through (nullable), as pandera's ignore_na does."""
+    cell = {"nothing": None, "z": "z", "None": None, "3": "3"}[planted]
+    values = np.repeat(np.array(["a", "b", "c"], dtype=object), [2000, 1500, 1500])
+    if planted != "nothing":
+        values[1234] = cell
+        values[3998:4001] = np.array([cell] * 3, dtype=object)
+    frame = pd.DataFrame({"code": values})
+    refused = frame["code"].notna() & ~frame["code"].isin(["a", "b", "c"])
+    named = sorted(int(index) for check, index in failures(Coded, frame) if check.startswith("isin"))
+    assert named == np.flatnonzero(refused.to_numpy()).tolist()
+    assert bool(named) == (planted in ("z", "3"))
