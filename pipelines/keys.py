@@ -7,6 +7,7 @@ import math
 import numpy as np
 import pandas as pd
 
+from pipelines.cell_runs import text_changes
 from pipelines.text_codes import RUNS_SHARE, addresses, codes_of, run_starts
 
 LEAF = ["product", "site", "customer"]
@@ -246,7 +247,10 @@ def _first_rows_if_one_key(ids: np.ndarray, keys: list[np.ndarray], constant: li
     new = np.r_[True, run_ids[1:] != run_ids[:-1]]
     for values in [*keys, *constant]:
         values = values if order is None else values[order]
-        if not bool(np.all((values[1:] == values[:-1]) | new[1:])):
+        if values.dtype == object:  # where the key changes, a new id starts
+            if not bool(new[text_changes(values)].all()):
+                return None
+        elif not bool(np.all((values[1:] == values[:-1]) | new[1:])):
             return None
     first = np.flatnonzero(new) if order is None else order[new]
     if pd.DataFrame({i: values[first] for i, values in enumerate(keys)}).duplicated().any():

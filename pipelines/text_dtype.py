@@ -39,6 +39,7 @@ import contextvars
 import copy
 import functools
 
+import numpy as np
 import pandas as pd
 import pandera.pandas as pa
 from pandera import dtypes
@@ -49,9 +50,11 @@ from pandera.backends.pandas.checks import PandasCheckBackend
 from pandera.backends.pandas.components import ColumnBackend
 from pandera.engines import pandas_engine
 
+from pipelines.cell_runs import few_runs, runs_kept
 from pipelines.unique_keys import one_proof_per_table
 
 ALL_TEXT = ("string", "empty")  # infer_dtype's answers when every non-missing cell is a str
+_FEW = 1024  # rows below which a column is asked whole
 
 
 def all_text(data, skipna: bool = True) -> bool:
@@ -69,12 +72,20 @@ _SEEN: contextvars.ContextVar[dict | None] = contextvars.ContextVar("text_column
 def _inferred(data: pd.Series, skipna: bool) -> str:
     seen = _SEEN.get()
     if seen is None:
-        return pd.api.types.infer_dtype(data, skipna=skipna)
+        return _infer_by_runs(data.values, skipna)
     values = data.values
     key = (values.__array_interface__["data"][0], values.shape, values.strides, skipna)
     if key not in seen:
-        seen[key] = pd.api.types.infer_dtype(values, skipna=skipna)
+        seen[key] = _infer_by_runs(values, skipna)
     return seen[key]
+
+
+def _infer_by_runs(values: np.ndarray, skipna: bool) -> str:
+    """`infer_dtype(values, skipna)`, asked of one cell per run of one cell object when the column is in long
+    runs (`cell_runs.few_runs`: a key repeated over a leaf's periods): every cell holds the object of its run's
+    first cell, so the same type, and the cells asked hold every object of the column."""
+    starts = few_runs(values) if len(values) >= _FEW else None
+    return pd.api.types.infer_dtype(values if starts is None else values[starts], skipna=skipna)
 
 
 @pandas_engine.Engine.register_dtype
@@ -107,12 +118,23 @@ class TextColumnBackend(ColumnBackend):
 
 class TextCheckBackend(PandasCheckBackend):
     """pandera's check backend, which drops the blanks of a column before a check (`ignore_na`) without asking
-    a column of only `str` cells for them (`Series.hasnans` on text: the isin check's largest part)."""
+    a column of only `str` cells for them (`Series.hasnans` on text: the isin check's largest part), and asks an
+    `isin` check of a column in long runs once per run."""
 
     def preprocess_table_with_key(self, check_obj, key):
         if self.check.groupby is None and all_text(check_obj[key], skipna=False):
             return check_obj[key]  # no blank to drop
         return super().preprocess_table_with_key(check_obj, key)
+
+    def apply_field(self, check_obj):
+        """An `isin` check of a column in long runs of one cell object (`cell_runs.few_runs`): asked of each
+        run's first cell and spread over the run (one object, one answer), every row's answer as pandera's."""
+        values = check_obj.to_numpy() if self.check.name == "isin" and not self.check.element_wise else None
+        starts = few_runs(values) if values is not None and values.dtype == object and len(values) >= _FEW else None
+        if starts is None:
+            return super().apply_field(check_obj)
+        first = np.asarray(self.check_fn(pd.Series(values[starts])), dtype=bool)
+        return pd.Series(np.repeat(first, np.diff(np.append(starts, len(values)))), index=check_obj.index)
 
 
 # before pandera registers its own on the first validation (it does not replace a registered backend)
@@ -126,10 +148,11 @@ def validate_table(model: type[pa.DataFrameModel], frame: pd.DataFrame) -> pd.Da
     schema = model.to_schema()
     token = _SEEN.set({})
     try:
-        with one_proof_per_table():  # the ids' proof made for the unique key is read by ids_match_keys
+        with one_proof_per_table(), runs_kept():  # the ids' proof made for the unique key is read by ids_match_keys
             if not (schema.coerce and holds_its_types(schema, frame)):
                 _SEEN.set(None)  # coercion writes columns: no answer is kept
-                return schema.validate(frame.copy(deep=False), lazy=True, inplace=True)
+                with runs_kept(keep=False):
+                    return schema.validate(frame.copy(deep=False), lazy=True, inplace=True)
             return _without_coercion(model).validate(frame.copy(deep=False), lazy=True, inplace=True)
     finally:
         _SEEN.reset(token)

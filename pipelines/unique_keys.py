@@ -40,6 +40,7 @@ from pandera.backends.pandas.container import DataFrameSchemaBackend
 from pandera.config import ValidationScope
 from pandera.validation_depth import validate_scope
 
+from pipelines.cell_runs import text_changes
 from pipelines.keys import LEAF, LEAF_ID, PARENT, PARENT_ID, ids_match_keys, ids_proven, pack_codes
 
 # during one validation: whether a frame's ids were proven to match its keys, by the arrays they were read from
@@ -129,8 +130,7 @@ def _unique_by_runs(frame: pd.DataFrame, cols: list[str]) -> bool:
         integers.append(frame[c].to_numpy().view(np.int64) if dtype.kind in "Mm" else frame[c].to_numpy())
     same = np.ones(len(frame) - 1, dtype=bool)  # row i + 1 continues the run of row i
     for c in text:  # a NaN differs from itself: it starts a run, and equal runs' keys are then duplicated below
-        values = frame[c].to_numpy(object)
-        same &= values[1:] == values[:-1]
+        same[text_changes(frame[c].to_numpy(object)) - 1] = False
     later, tie = np.zeros(len(same), dtype=bool), np.ones(len(same), dtype=bool)
     for values in integers:
         later |= tie & (values[1:] > values[:-1])

@@ -209,3 +209,4 @@ def test_packed_codes_are_equal_exactly_where_every_columns_code_is():
     assert (pd.factorize(packed)[0] == tuples).all()  # one code per distinct tuple, in the same order
     assert pack_codes(parts, [2**31, 2**31, 2]) is None  # past 62 bits: the caller groups another way
     assert pack_codes([np.zeros(3, np.int64)], [2**61]) is not None
+

@@ -287,39 +287,30 @@ def test_active_children_take_own_periods_from_a_table_that_counted_them(
     )
 
 
-def test_leaf_codes_through_runs_are_those_of_factorize_in_any_row_order():
-    """leaf_codes hashes only the first row of each run of equal keys; the codes and leaves must be
-    keys.factorize's (first appearance), whatever the order of the rows (checked against factorize itself)."""
+def test_leaf_runs_hold_each_leafs_rows_in_period_order_in_any_row_order():
+    """`leaf_runs`: its leaves are `keys.factorize`'s (first appearance), and the run of each leaf is exactly
+    that leaf's rows, by period start, ties in row order (checked against a stable sort by code and start),
+    for rows grouped by leaf (no sort needed), grouped but with a period out of order, and shuffled."""
     import numpy as np
 
+    from pipelines.engines.leaf_runs import leaf_runs
     from pipelines.keys import LEAF, factorize
-    from pipelines.stages.lifecycle_history import leaf_codes
 
     rng = np.random.default_rng(3)
-    frame = pd.DataFrame(
-        {
-            "product": rng.choice(["A", "B"], 400),
-            "site": rng.choice(["S1", "S2"], 400),
-            "customer": rng.choice(["C1", "C2", "C3"], 400),
-        }
-    )
-    for rows in (frame, frame.sort_values(LEAF).reset_index(drop=True)):
-        code, leaves = leaf_codes(rows)
-        want_code, want_leaves = factorize(rows, LEAF)
-        assert code.tolist() == want_code.tolist()
-        pd.testing.assert_frame_equal(leaves, want_leaves)
-
-
-def test_packed_sort_order_is_the_lexsort_order():
-    """The one packed key sorts as np.lexsort on the four keys, stably (ties keep row order)."""
-    import numpy as np
-
-    from pipelines.stages.lifecycle_history import _sort_order
-
-    rng = np.random.default_rng(5)
-    dest, period, moved, source = (rng.integers(0, k, 500) for k in (7, 5, 2, 3))
-    got = _sort_order(dest, period + 100, moved.astype(bool), source)
-    assert got.tolist() == np.lexsort((source, moved, period, dest)).tolist()
+    keys = pd.DataFrame({"product": rng.choice(["A", "B"], 2000), "site": rng.choice(["S1", "S2"], 2000),
+                         "customer": rng.choice(["C1", "C2", "C3"], 2000)})
+    frame = keys.assign(period_start=pd.Timestamp("2025-01-06") + pd.to_timedelta(rng.integers(0, 40, 2000) * 7, "D"))
+    grouped = frame.sort_values(LEAF + ["period_start"], kind="stable").reset_index(drop=True)
+    late = grouped.copy()
+    late.loc[5, "period_start"] = pd.Timestamp("2030-01-07")  # one leaf's periods no longer ascend
+    for rows, sorted_already in ((grouped, True), (late, False), (frame, False)):
+        runs = leaf_runs(rows, rows["period_start"].to_numpy())
+        code, leaves = factorize(rows, LEAF)
+        pd.testing.assert_frame_equal(runs.leaves, leaves)
+        assert (runs.order is None) == sorted_already
+        want = np.lexsort((rows["period_start"].to_numpy(), code))  # stable: ties keep row order
+        got = np.concatenate([runs.rows(np.arange(runs.first[k], runs.end[k])) for k in range(len(leaves))])
+        assert got.tolist() == want.tolist()
 
 
 def test_ids_from_the_sort_are_the_key_ids_of_the_history(make_cleaned, make_products, make_spans, config):
@@ -344,27 +335,28 @@ def test_ids_from_the_sort_are_the_key_ids_of_the_history(make_cleaned, make_pro
     pd.testing.assert_frame_equal(_by_origin(res.history), grouped.reset_index())
 
 
-def test_span_test_and_period_key_are_those_of_their_general_forms():
-    """`_inside_span` against `calendar.active_mask` on every kind of bound (open, closed, no span), and
-    `_day_rank` ordering the rows as the rank of their distinct starts (pd.factorize, sort=True) does."""
+def test_span_rows_are_the_rows_active_mask_keeps():
+    """`span_rows` (a binary search per leaf) against `calendar.active_mask` judging every row, on every kind
+    of bound (open, closed, empty, no span) over leaves whose rows ascend by period, with repeated periods."""
     import numpy as np
 
     from pipelines.calendar import active_mask
-    from pipelines.stages.lifecycle_history import _day_rank, _inside_span
+    from pipelines.engines.leaf_runs import LeafRuns, span_rows
 
     rng = np.random.default_rng(5)
     s_from = rng.choice([np.nan, 10.0, 20.0, -3.0], 50)
     s_to = rng.choice([np.nan, 15.0, 30.0, 5.0], 50)
     leaf_span = rng.integers(-1, 50, 40)
-    leaf, ordinal = rng.integers(0, 40, 5000), rng.integers(-10, 40, 5000)
+    sizes = rng.integers(0, 60, 40)
+    end = np.cumsum(sizes)
+    runs = LeafRuns(pd.DataFrame(index=range(40)), end - sizes, end, None)
+    ordinal = np.concatenate([np.sort(rng.integers(-10, 40, k)) for k in sizes])
+    leaf = np.repeat(np.arange(40), sizes)
     at = np.clip(leaf_span, 0, None)
     want = (leaf_span >= 0)[leaf] & active_mask(s_from[at][leaf], s_to[at][leaf], ordinal)
     assert want.any() and not want.all()
-    assert (_inside_span(leaf, leaf_span, s_from, s_to, ordinal) == want).all()
-    for starts in (
-        pd.date_range("2025-01-06", periods=30, freq="7D").to_numpy()[rng.integers(0, 30, 500)],
-        (pd.Timestamp("2025-01-06") + pd.to_timedelta(rng.integers(0, 10**6, 500), unit="s")).to_numpy(),
-    ):
-        rank = pd.factorize(starts, sort=True)[0]
-        assert (np.argsort(_day_rank(starts), kind="stable") == np.argsort(rank, kind="stable")).all()
-        assert (pd.factorize(_day_rank(starts))[0] == pd.factorize(rank)[0]).all()
+    inside, after = span_rows(runs, leaf_span, s_from, s_to, lambda pos: ordinal[pos])
+    got = np.zeros(len(ordinal), dtype=bool)
+    for k in range(40):
+        got[inside[k]:after[k]] = True
+    assert (got == want).all()

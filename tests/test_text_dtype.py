@@ -183,3 +183,45 @@ def test_holds_its_types_only_when_coercion_would_change_nothing():
     assert not holds_its_types(schema, _broken(CASES["day as text (coerced)"]))
     assert not holds_its_types(schema, _broken(CASES["a number in a text column (coerced)"]))
     assert holds_its_types(schema, _broken(CASES["blank required text"]))  # no coercion; the not-null check fails it
+
+
+@pytest.mark.parametrize("planted", ["nothing", "None", "NaN", "a number", "bytes"])
+def test_a_long_column_in_runs_is_judged_as_with_pandera_str(planted):
+    """5,000 cells in runs of one `str` object (judged on one cell per run, `cell_runs.few_runs`), a cell planted
+    alone inside a run and a run of three planted: the same failures, named by row, as pandera's `str` (or none)."""
+    cell = {"nothing": None, "None": None, "NaN": np.nan, "a number": 7, "bytes": b"x"}[planted]
+    values = np.repeat(np.array(["a", "b", "c"], dtype=object), [2000, 1500, 1500])
+    if planted != "nothing":
+        values[1234] = cell
+        values[3998:4001] = np.array([cell] * 3, dtype=object)
+    frame = pd.DataFrame({"code": values})
+    assert all_text(frame["code"], skipna=False) == (planted == "nothing")
+    assert failures(Required, frame) == failures(RequiredStr, frame)  # coerced: a number or bytes become text
+    assert bool(failures(Required, frame)) == (planted in ("None", "NaN"))
+    assert failures(Strict, frame) == failures(StrictStr, frame)
+    assert bool(failures(Strict, frame)) == (planted != "nothing")
+
+
+class StrictStr(pa.DataFrameModel):
+    code: Series[str]
+
+
+class Coded(pa.DataFrameModel):
+    code: Series[Text] = pa.Field(isin=["a", "b", "c"], nullable=True)
+
+
+@pytest.mark.parametrize("planted", ["nothing", "z", "None", "3"])
+def test_isin_on_a_long_column_in_runs_names_the_rows_pandas_isin_refuses(planted):
+    """5,000 cells in runs of one object (the isin check asked once per run): the failing rows are exactly those
+    `Series.isin` refuses (reference: pandas, cell by cell), a value planted alone and as a run of three; a blank
+    is let through (nullable), as pandera's ignore_na does."""
+    cell = {"nothing": None, "z": "z", "None": None, "3": "3"}[planted]
+    values = np.repeat(np.array(["a", "b", "c"], dtype=object), [2000, 1500, 1500])
+    if planted != "nothing":
+        values[1234] = cell
+        values[3998:4001] = np.array([cell] * 3, dtype=object)
+    frame = pd.DataFrame({"code": values})
+    refused = frame["code"].notna() & ~frame["code"].isin(["a", "b", "c"])
+    named = sorted(int(index) for check, index in failures(Coded, frame) if check.startswith("isin"))
+    assert named == np.flatnonzero(refused.to_numpy()).tolist()
+    assert bool(named) == (planted in ("z", "3"))

@@ -34,22 +34,23 @@ import pandas as pd
 
 from pipelines.calendar import period_ordinal, span_bounds
 from pipelines.config import CalendarConfig, PlanningConfig
+from pipelines.engines.leaf_runs import LeafRuns, expand, leaf_runs, span_rows, time_key
 from pipelines.errors import LifecycleError
-from pipelines.keys import ID_DTYPE, LEAF, LEAF_ID, PARENT_ID, factorize, lookup, pack_codes
+from pipelines.keys import ID_DTYPE, LEAF, LEAF_ID, PARENT_ID, factorize, lookup
 from pipelines.results import Log, StageResult, quiet
 from pipelines.text_codes import codes_of
 
 HISTORY_COLUMNS = LEAF + ["period_start", "quantity", "origin", "source_product", "source_customer", "shortage"]
 AUDIT_COLUMNS = LEAF + ["rule", "periods", "quantity", "detail"]
-DAY_NS = 86_400 * 10**9
 
 
 @dataclass(frozen=True)
 class LifecycleResult:
     history: pd.DataFrame
     audit: pd.DataFrame
-    # (leaf_id, parent_id) of each history row: `keys.key_ids(history)`, from the ranks the sort already made
+    # (leaf_id, parent_id) of each history row: `keys.key_ids(history)`, from the ranks of the keys kept
     ids: tuple[np.ndarray, np.ndarray] | None = None
+    origin_code: np.ndarray | None = None  # per history row: its origin's row of ORIGINS (int8)
 
 
 def resolve_successors(products: pd.DataFrame) -> pd.Series:
@@ -96,63 +97,36 @@ def _audit(rows: pd.DataFrame, rule: str, detail: str | pd.Series) -> pd.DataFra
     return out[AUDIT_COLUMNS]
 
 
-def _index_type(n: int) -> type:
-    """int32 for positions and codes below 2**31 (half the memory of int64), else int64."""
-    return np.int32 if n < 2**31 - 1 else np.int64
+ORIGINS = np.array(["own", "successor"], dtype=object)
 
 
-def leaf_codes(frame: pd.DataFrame) -> tuple[np.ndarray, pd.DataFrame]:
-    """`keys.factorize(frame, LEAF)`: codes by first appearance (in the smallest integer type) and the leaves.
+@dataclass(frozen=True)
+class _Pieces:
+    """The result's rows as ranges of run positions, in its order: start, length, leaf (the source) and the
+    rank of the key they are kept under."""
 
-    The cleaned history holds each leaf's periods one after another, so factorize hashes only the first row
-    of each run of one key object (`text_codes.run_starts`: about one row per leaf), not every row.
-    """
-    codes, leaves = factorize(frame, LEAF)
-    return codes.astype(_index_type(len(leaves))), leaves
-
-
-def _inside_span(
-    leaf: np.ndarray, leaf_span: np.ndarray, s_from: np.ndarray, s_to: np.ndarray, ordinal: np.ndarray
-) -> np.ndarray:
-    """Per row: its leaf has a span (`leaf_span`: row of the spans, -1: none) whose bounds (`s_from`, `s_to`:
-    period ordinals, NaN = open) hold the row's period `ordinal`, as `calendar.active_mask`. The bounds are
-    made integers per leaf (an open bound the extreme integer, a leaf without a span an empty range), so the
-    rows see one comparison per bound."""
-    at = np.clip(leaf_span, 0, None)
-    low, high = np.iinfo(np.int64).min, np.iinfo(np.int64).max
-    lo, hi = np.nan_to_num(s_from[at]).astype(np.int64), np.nan_to_num(s_to[at]).astype(np.int64)
-    lo[np.isnan(s_from[at])], hi[np.isnan(s_to[at])] = low, high  # (an int64 bound never passes through float)
-    lo[leaf_span < 0], hi[leaf_span < 0] = high, low
-    inside = ordinal >= lo[leaf]
-    inside &= ordinal <= hi[leaf]
-    return inside
+    start: np.ndarray
+    length: np.ndarray
+    leaf: np.ndarray
+    rank: np.ndarray
 
 
-def _day_rank(starts: np.ndarray) -> np.ndarray:
-    """A sort key of each row's period start, equal exactly where the starts are: whole days since the epoch
-    where every start is a midnight (as the stage writes them), else the rank among the distinct starts."""
-    if starts.dtype == "datetime64[ns]" and not np.isnat(starts).any():
-        ns = starts.view(np.int64)
-        days, rest = np.divmod(ns, DAY_NS)
-        if not rest.any():
-            return days
-    return pd.factorize(starts, sort=True)[0].astype(np.int32)
-
-
-def _sort_order(dest_rank: np.ndarray, ordinal: np.ndarray, moved: np.ndarray, source_rank: np.ndarray) -> np.ndarray:
-    """Stable order by destination leaf rank, period, origin (own first) and source product rank.
-
-    One packed int64 key and one stable argsort where the four fit in 62 bits
-    (they do far beyond a million leaves), else np.lexsort on the four.
-    """
-    if len(dest_rank) == 0:
-        return np.zeros(0, dtype=np.int64)
-    ordinal = ordinal - ordinal.min()
-    sizes = [int(dest_rank.max()) + 1, int(ordinal.max()) + 1, 2, int(source_rank.max()) + 1]
-    key = pack_codes([dest_rank, ordinal, moved, source_rank], sizes)
-    if key is None:
-        return np.lexsort((source_rank, moved, ordinal, dest_rank))
-    return np.argsort(key, kind="stable")
+def _pieces(runs: LeafRuns, kept: np.ndarray, inside: np.ndarray, length: np.ndarray, rank: np.ndarray,
+            moved: np.ndarray, starts: np.ndarray, source_rank: np.ndarray) -> _Pieces:
+    """The ranges of the leaves `kept` ordered by their key's `rank`; a key several leaves' ranges reach (a
+    leaf and the history moved to it) as its rows one by one, sorted by period, origin (own first), source
+    product (`source_rank` of the leaf) and row, as the stable sort of every row would order them."""
+    shared = np.bincount(rank[kept])[rank[kept]] > 1
+    whole, merged = kept[~shared], kept[shared]
+    at = expand(inside[merged], length[merged])
+    leaf = np.repeat(merged, length[merged])
+    row = runs.rows(at)
+    by = np.lexsort((row, source_rank[leaf], moved[leaf], time_key(starts[row]), rank[leaf]))
+    start = np.concatenate([inside[whole], at[by]])
+    leaf = np.concatenate([whole, leaf[by]])
+    ones = np.ones(len(at), dtype=length.dtype)
+    by = np.argsort(rank[leaf], kind="stable")
+    return _Pieces(start[by], np.concatenate([length[whole], ones])[by], leaf[by], rank[leaf][by])
 
 
 def apply_lifecycle(
@@ -160,59 +134,43 @@ def apply_lifecycle(
 ) -> LifecycleResult:
     """Apply the rules of this module to the cleaned history.
 
-    The rules are decided once per leaf (its span, its product's retirement and
-    successor, the successor's span) and reach the rows through integer leaf
-    codes; the history is never copied whole: its columns are read by row
-    positions into the sorted result, whose order is that of a stable sort by
-    leaf, period, origin and source product (the leaves and products ranked as
-    text, on their distinct values only; one packed integer key).
+    Every rule is decided per leaf, and what it keeps or drops of a leaf is one range of the leaf's rows: the
+    history is read as one run of rows per leaf in period order (`leaf_runs`; as the cleaned history holds
+    it, else through one sort), so the rows inside a span are one range, found by a binary search of every
+    leaf at once. The rows reach the result once, by one index into the history built from the ranges of
+    the leaves in key order (the text keys ranked on their distinct values only); the key, origin, source
+    and ids of a range are repeated along it. The order is that of a stable sort by leaf, period, origin
+    (own first) and source product: a leaf's own range is in it already, and only a leaf that takes a
+    retired product's history has its few rows sorted.
     """
     period = config.calendar.period
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
     quantity = cleaned["quantity"].to_numpy(dtype=float)
     starts = cleaned["period_start"].to_numpy()
-    n_rows = len(cleaned)
-    shortage = cleaned["shortage"].to_numpy(bool) if "shortage" in cleaned.columns else np.zeros(n_rows, dtype=bool)
-    h_ord = period_ordinal(cleaned["period_start"], period)
+    shortage = cleaned["shortage"].to_numpy(bool) if "shortage" in cleaned.columns else np.zeros(len(cleaned), bool)
     s_from, s_to = span_bounds(spans, period)
+    runs = leaf_runs(cleaned, starts)
+    leaves, n_leaves, every = runs.leaves, len(runs.leaves), np.arange(len(runs.leaves))
     audits = []
 
-    # --- per leaf: its span, and where its product is retired, the successor's leaf and span
-    leaf, leaves = leaf_codes(cleaned)
+    def audit(rule: str, at: np.ndarray, detail, keys: pd.DataFrame = leaves, key_of_row=None) -> None:
+        """The audit rows of the history rows at positions `at` (keys of their own leaf unless `key_of_row`
+        gives each row's row of `keys`)."""
+        rows = keys.iloc[key_of_row].reset_index(drop=True).assign(quantity=quantity[at])
+        audits.append(_audit(rows, rule, detail))
 
-    def rows_of(at: np.ndarray, keys: pd.DataFrame = leaves, key_of_row: np.ndarray | None = None) -> pd.DataFrame:
-        """The keys and quantity of the rows at positions `at` (an audit's input); keys of their own leaf unless
-        `key_of_row` gives each row's row of `keys`."""
-        return (
-            keys.iloc[leaf[at] if key_of_row is None else key_of_row]
-            .reset_index(drop=True)
-            .assign(quantity=quantity[at])
-        )
-
+    # --- per leaf: the range of its rows inside its span, [inside, after)
     leaf_span = lookup(leaves, LEAF, spans)
-    inside = _inside_span(leaf, leaf_span, s_from, s_to, h_ord)
-    del h_ord
-    audits.append(
-        _audit(rows_of(np.flatnonzero(~inside)), "outside_active_span", "history outside the customer's active span")
-    )
+    inside, after = span_rows(runs, leaf_span, s_from, s_to, lambda at: period_ordinal(starts[runs.rows(at)], period))
+    at, leaf = runs.rows_of_ranges([runs.first, after], [inside - runs.first, runs.end - after], [every, every])
+    audit("outside_active_span", at, "history outside the customer's active span", key_of_row=leaf)
 
+    # --- retired products: dropped, or moved to the end of the successor chain when the customer has a span there
     p_from, p_to = span_bounds(products, period)
     retired_products = products.loc[~np.isnan(p_to) & (p_to < cycle_ord), "product"]
-    successor = resolve_successors(products)
     leaf_retired = leaves["product"].isin(retired_products).to_numpy()
-    leaf_target = leaves["product"].map(successor).where(leaf_retired)
-    leaf_has_target = leaf_target.notna().to_numpy()
-    retired = inside & leaf_retired[leaf]
-    no_successor = retired & ~leaf_has_target[leaf]
-    audits.append(
-        _audit(
-            rows_of(np.flatnonzero(no_successor)),
-            "retired_product_without_successor",
-            "product retired before the cycle date",
-        )
-    )
-
-    targets = np.flatnonzero(leaf_has_target)  # leaves whose history moves; their new keys
+    leaf_target = leaves["product"].map(resolve_successors(products)).where(leaf_retired)
+    targets = np.flatnonzero(leaf_target.notna().to_numpy())  # leaves whose history moves; their new keys
     target_keys = leaves.iloc[targets].assign(product=leaf_target.iloc[targets].astype(str).to_numpy())
     target_keys = target_keys.reset_index(drop=True)
     tpos = lookup(target_keys, LEAF, spans) if len(targets) else np.zeros(0, dtype=np.int64)
@@ -220,73 +178,70 @@ def apply_lifecycle(
     t_from, t_to = s_from[np.clip(tpos, 0, None)], s_to[np.clip(tpos, 0, None)]
     with np.errstate(invalid="ignore"):
         t_ok = (tpos >= 0) & (np.isnan(t_from) | (t_from <= horizon_end)) & (np.isnan(t_to) | (t_to >= cycle_ord))
-    target_of_leaf = np.full(len(leaves), -1, dtype=_index_type(2 * len(leaves)))
+    target_of_leaf = np.full(n_leaves, -1, dtype=np.int64)
     target_of_leaf[targets] = np.arange(len(targets))
-    moving = retired & ~no_successor
-    moving_rows = np.flatnonzero(moving).astype(_index_type(n_rows))
-    row_target = target_of_leaf[leaf[moving_rows]]  # per moving row: its successor key
-    lost = ~t_ok[row_target] if len(targets) else np.zeros(0, dtype=bool)
-    audits.append(
-        _audit(
-            rows_of(moving_rows[lost]),
-            "successor_without_span",
-            "customer has no span active in the horizon on successor "
-            + target_keys["product"].to_numpy(dtype=object)[row_target[lost]],
-        )
+    lost, moved = np.zeros(n_leaves, dtype=bool), np.zeros(n_leaves, dtype=bool)
+    lost[targets], moved[targets] = ~t_ok, t_ok
+    length = after - inside
+
+    def ranges_of(which: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        return runs.rows_of_ranges([inside[which]], [length[which]], [every[which]])
+
+    at, leaf = ranges_of(leaf_retired & (target_of_leaf < 0))
+    audit("retired_product_without_successor", at, "product retired before the cycle date", key_of_row=leaf)
+    successor_of = target_keys["product"].to_numpy(dtype=object)
+    at, leaf = ranges_of(lost)
+    audit(
+        "successor_without_span",
+        at,
+        "customer has no span active in the horizon on successor " + successor_of[target_of_leaf[leaf]],
+        key_of_row=leaf,
     )
-    moved_rows, moved_target = moving_rows[~lost], row_target[~lost]
-    audits.append(
-        _audit(
-            rows_of(moved_rows, target_keys, moved_target),
-            "successor_history_mapped",
-            "history of retired product " + leaves["product"].to_numpy(dtype=object)[leaf[moved_rows]],
-        )
+    source_product = leaves["product"].to_numpy(dtype=object)
+    at, leaf = ranges_of(moved)
+    audit(
+        "successor_history_mapped", at, "history of retired product " + source_product[leaf], target_keys,
+        target_of_leaf[leaf],
     )
 
-    # --- the rows kept, own then moved (the order the stable sort keeps among equals); phased-out leaves leave
-    own_rows = np.flatnonzero(inside & ~retired).astype(_index_type(n_rows))
-    del inside, retired, no_successor, moving
-    rows = np.concatenate([own_rows, moved_rows])
-    is_moved = np.concatenate([np.zeros(len(own_rows), dtype=bool), np.ones(len(moved_rows), dtype=bool)])
-    key = np.concatenate([leaf[own_rows], len(leaves) + moved_target])  # into own leaves, then target keys
-    del own_rows
-    key_end = s_to[np.concatenate([leaf_span, tpos])]
-    key_phased_out = ~np.isnan(key_end) & (key_end < cycle_ord)  # per key, not per row
-    phased_out = key_phased_out[key]
+    # --- the ranges kept, own or moved, each under its key: a leaf (0..n_leaves-1) or a target key after them
     all_keys = pd.concat([leaves, target_keys], ignore_index=True)
-    audits.append(
-        _audit(
-            rows_of(rows[phased_out], all_keys, key[phased_out]),
-            "phased_out_before_cycle",
-            "customer span ended before the cycle date",
-        )
+    key_of_leaf = np.where(moved, n_leaves + target_of_leaf, every)
+    span_of_key = np.concatenate([leaf_span, tpos])
+    key_end = np.where(span_of_key >= 0, s_to[np.clip(span_of_key, 0, None)] if len(s_to) else np.nan, np.nan)
+    phased_out = (~np.isnan(key_end) & (key_end < cycle_ord))[key_of_leaf]  # per key, not per row
+    kept = (~leaf_retired | moved) & (length > 0)
+    own_out, moved_out = kept & phased_out & ~moved, kept & phased_out & moved
+    at_own, leaf_own = ranges_of(own_out)
+    at_moved, leaf_moved = ranges_of(moved_out)
+    audit(
+        "phased_out_before_cycle", np.concatenate([at_own, at_moved]), "customer span ended before the cycle date",
+        all_keys, key_of_leaf[np.concatenate([leaf_own, leaf_moved])],
     )
-    rows, is_moved, key = rows[~phased_out], is_moved[~phased_out], key[~phased_out]
+    kept &= ~phased_out
 
-    # --- sorted by leaf (as text), period, origin ("own" < "successor") and source product (as text)
+    # --- the result: the kept ranges by key (as text), each key's rows by period, origin and source product
     key_code, distinct = factorize(all_keys, LEAF)
     rank = np.empty(len(distinct), dtype=np.int64)
     rank[distinct.sort_values(LEAF, kind="stable").index.to_numpy()] = np.arange(len(distinct))
-    source_rank = pd.factorize(leaves["product"], sort=True)[0]
-    dest_rank = rank[key_code][key]
-    order = _sort_order(dest_rank, _day_rank(starts)[rows], is_moved, source_rank[leaf[rows]])
-    rows, is_moved, key, dest_rank = rows[order], is_moved[order], key[order], dest_rank[order]
-    del order
-    ids = _ids_of_ranks(dest_rank, distinct.iloc[np.argsort(rank)].reset_index(drop=True))
-    del dest_rank
-    source = leaf[rows]
-    out = {c: all_keys[c].to_numpy()[key] for c in LEAF}
+    pieces = _pieces(runs, np.flatnonzero(kept), inside, length, rank[key_code][key_of_leaf], moved, starts,
+                     pd.factorize(source_product, sort=True)[0])
+    rows = runs.rows(expand(pieces.start, pieces.length))
+    out = {c: np.repeat(all_keys[c].to_numpy()[key_of_leaf[pieces.leaf]], pieces.length) for c in LEAF}
     out["period_start"] = starts[rows]
     out["quantity"] = quantity[rows]
-    out["origin"] = np.array(["own", "successor"], dtype=object)[is_moved.view(np.int8)]
-    out["source_product"] = leaves["product"].to_numpy(dtype=object)[source]
-    out["source_customer"] = leaves["customer"].to_numpy(dtype=object)[source]
+    origin_code = np.repeat(moved[pieces.leaf].view(np.int8), pieces.length)
+    out["origin"] = np.repeat(ORIGINS[moved[pieces.leaf].view(np.int8)], pieces.length)
+    out["source_product"] = np.repeat(source_product[pieces.leaf], pieces.length)
+    out["source_customer"] = np.repeat(leaves["customer"].to_numpy(dtype=object)[pieces.leaf], pieces.length)
     out["shortage"] = shortage[rows]
-    audit = _stack(audits, AUDIT_COLUMNS)
-    audit = audit.astype({"periods": np.int64, "quantity": float})
+    del rows
+    ranked = distinct.iloc[np.argsort(rank)].reset_index(drop=True)
+    ids = tuple(np.repeat(i, pieces.length) for i in _ids_of_ranks(pieces.rank, ranked))
+    audit_frame = _stack(audits, AUDIT_COLUMNS).astype({"periods": np.int64, "quantity": float})
     # the new columns become the frame as they are (the default would copy each into consolidated blocks)
     history = pd.DataFrame({c: out.pop(c) for c in HISTORY_COLUMNS}, copy=False)
-    return LifecycleResult(history=history, audit=audit.reset_index(drop=True), ids=ids)
+    return LifecycleResult(history, audit_frame.reset_index(drop=True), ids, origin_code)
 
 
 def _ids_of_ranks(ranks: np.ndarray, ranked: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
@@ -327,12 +282,14 @@ def run(
     """lifecycle_history and lifecycle_audit, with what each rule moved."""
     cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
     result = apply_lifecycle(cleaned_history, products, customer_spans, settings, cycle_date)
-    history, audit = result.history, result.audit
-    history[LEAF_ID], history[PARENT_ID] = result.ids  # the leaf and parent ids the later stages carry
+    audit = result.audit
+    # with the leaf and parent ids the later stages carry (a frame of the same arrays: setting a column copies it)
+    columns = {c: result.history[c].to_numpy() for c in result.history.columns}
+    history = pd.DataFrame(columns | dict(zip((LEAF_ID, PARENT_ID), result.ids, strict=True)), copy=False)
     by_rule = audit.groupby("rule").agg(
         leaves=("customer", "size"), periods=("periods", "sum"), quantity=("quantity", "sum")
     )
-    by_origin = _by_origin(history)
+    by_origin = _by_origin(history, result.origin_code)
     return StageResult(
         outputs={"lifecycle_history": history, "lifecycle_audit": audit},
         metadata={
@@ -345,14 +302,16 @@ def run(
     )
 
 
-def _by_origin(history: pd.DataFrame) -> pd.DataFrame:
-    """Rows and quantity per origin, as `groupby("origin").agg(...).reset_index()`, grouped on the origin's
-    codes (`text_codes.codes_of`: two objects in long runs) instead of hashing every row's text."""
-    code, origins = codes_of(history["origin"])
-    grouped = history["quantity"].groupby(code, sort=False).agg(["size", "sum"])
-    grouped = grouped[grouped.index >= 0]  # a missing origin: left out, as groupby leaves it out
+def _by_origin(history: pd.DataFrame, origin_code: np.ndarray | None = None) -> pd.DataFrame:
+    """Rows and quantity per origin, as `groupby("origin").agg(...).reset_index()` (the same sums: pandas'
+    grouped sum, in row order), grouped on the origins' codes as categories instead of hashing every row:
+    `origin_code` (rows of ORIGINS, from the stage) or `text_codes.codes_of` of the column."""
+    code, origins = (origin_code, ORIGINS) if origin_code is not None else codes_of(history["origin"])
+    groups = pd.Categorical.from_codes(code, categories=np.arange(len(origins)))  # -1: missing, left out
+    sums = history["quantity"].groupby(groups, observed=True, sort=True).sum()
+    held = sums.index.to_numpy(np.int64)
     out = pd.DataFrame(
-        {"origin": origins[grouped.index.to_numpy()], "rows": grouped["size"].to_numpy(np.int64),
-         "quantity": grouped["sum"].to_numpy(float)}
+        {"origin": origins[held], "rows": np.bincount(code[code >= 0], minlength=len(origins))[held].astype(np.int64),
+         "quantity": sums.to_numpy(float)}
     )
     return out.sort_values("origin", kind="stable").reset_index(drop=True)
