@@ -408,3 +408,17 @@ def test_each_failed_check_shows_its_first_rows_and_what_to_do_escaped(page_inpu
     assert "What to do: correct the customer" in section
     assert "<script" not in page.lower() and "products_matches_schema" not in section  # passed checks have no rows
     assert report_html.markdown_rows(rows)[0] == ["file", "row", "customer", "column", "value"]
+
+
+def test_group_sums_are_pandas_group_sums_to_the_last_bit():
+    # reference: pandas' group sum over the int key (compensated, rows in order, NaN skipped); key 3 has no row
+    rng = np.random.default_rng(5)
+    key = rng.choice([0, 1, 2, 4], 10_000)
+    values = rng.normal(100.0, 30.0, 10_000) * rng.random(10_000)
+    values[::97] = np.nan
+    from pipelines.engines.chart_data import group_sums
+
+    sums, present = group_sums(values, key, 5)
+    expected = pd.Series(values).groupby(key).sum()
+    assert sums[[0, 1, 2, 4]].tolist() == expected.tolist()  # exact, not approximate
+    assert sums[3] == 0.0 and present.tolist() == [True, True, True, False, True]

@@ -254,3 +254,22 @@ def _caption_text(fig: Figure, left: float, top: float, lines: list[str]) -> Non
     """The caption's lines as one figure text, its top left corner `left`, `top` inches from the figure's top left."""
     width, height = fig.get_size_inches()
     fig.text(left / width, 1.0 - top / height, "\n".join(lines), ha="left", va="top", fontsize=8, color="#333333")
+
+
+# ----------------------------------------------------------------- the history corrections
+def corrections_chart(by_class_and_rule: pd.DataFrame, classes: list[str], shortage_periods: int) -> bytes:
+    """PNG of the corrections per product class and rule (`product_class, rule, rows`), as stacked bars."""
+    table = by_class_and_rule.pivot_table(
+        index="product_class", columns="rule", values="rows", aggfunc="sum", fill_value=0
+    )
+    table = table.reindex(sorted(set(classes) | set(table.index)), fill_value=0)
+    fig = Figure(figsize=(7, 1.2 + 0.4 * max(len(table), 1)), dpi=DPI)
+    ax = fig.add_subplot()
+    if len(table) and len(table.columns):
+        table.plot.barh(stacked=True, ax=ax, width=0.7)
+        ax.legend(title="rule", fontsize=8, title_fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0))
+    ax.set_xlabel("corrected periods")
+    ax.set_ylabel("")
+    ax.set_title(f"history corrections by class and rule; {shortage_periods} shortage periods flagged", fontsize=9)
+    fig.tight_layout()
+    return figure_png(fig)

@@ -56,10 +56,10 @@ def group_sums(values: np.ndarray, key: np.ndarray, n: int) -> tuple[np.ndarray,
     count = np.bincount(key, minlength=n)
     if np.isfinite(values).all() and (values == np.round(values)).all() and np.abs(values).sum() < 2.0**53:
         return np.bincount(key, weights=values, minlength=n), count > 0
-    sums = pd.Series(values).groupby(key).sum()
-    out = np.zeros(n)
-    out[sums.index.to_numpy()] = sums.to_numpy(float)
-    return out, count > 0
+    # the key as the codes of a categorical of 0..n-1: pandas groups by the codes as they are, with no hashing of
+    # the keys, and sums each group's rows in their order with the same kernel, so the same numbers (0 where empty)
+    groups = pd.Categorical.from_codes(key, categories=pd.RangeIndex(n))
+    return pd.Series(values).groupby(groups, observed=False).sum().to_numpy(float), count > 0
 
 
 def sums_by_parent(values: np.ndarray, pos: np.ndarray, n_parents: int) -> np.ndarray:

@@ -18,8 +18,8 @@ bytes or an HTML string out. Nothing here reads the store or knows of Dagster.
   "other". A history period without parent volume, or with a recorded supply
   shortage, has no share and is left blank, as the share rule leaves it out.
 - `cycle_report_html`: a self-contained page (inline CSS, no script, images by
-- `corrections_chart`: the corrections of cleaned history per product class
-  and rule, as stacked bars.
+- `corrections_chart` (drawn in `chart_base`): the corrections of cleaned
+  history per product class and rule, as stacked bars.
 
 Rendering is deterministic (`chart_base`). Each chart has a `*_figure`
 function returning the figure, so tests read the plotted data back from the
@@ -70,6 +70,7 @@ from pipelines.engines.chart_base import (
     _tick_label_width,
     _x,
     chart_file_name,
+    corrections_chart,
     figure_png,
 )
 from pipelines.engines.chart_data import (
@@ -87,7 +88,8 @@ ROW_HEIGHT = 1.5  # a small panel's axes
 SHARE_HEIGHT = 1.85  # a share panel's axes
 
 __all__ = [
-    "DPI", "WIDTH_IN", "CHILD_COLORS", "FORECAST_COLOR", "chart_file_name", "figure_png", "history_period_shares",
+    "DPI", "WIDTH_IN", "CHILD_COLORS", "FORECAST_COLOR", "chart_file_name", "corrections_chart", "figure_png",
+    "history_period_shares",
 ]
 
 
@@ -328,14 +330,8 @@ def share_chart_figure(
             )
             bottom = bottom + values
         if row.pos in window_start:
-            ax.axvline(
-                _x(window_start[row.pos]),
-                color=CYCLE_COLOR,
-                ls=":",
-                lw=1.0,
-                zorder=3,
-                label="share window start" if i == 0 else None,
-            )
+            ax.axvline(_x(window_start[row.pos]), color=CYCLE_COLOR, ls=":", lw=1.0, zorder=3,
+                       label="share window start" if i == 0 else None)
         ax.autoscale_view()
         ax.set_ylim(0, 1)
         ax.yaxis.set_major_formatter(PercentFormatter(1.0, decimals=0))
@@ -397,24 +393,4 @@ def share_chart(
         history, target, product_class=product_class, cycle_date=cycle_date, period=period, top_parents=top_parents,
         top_children=top_children, history_periods=history_periods, shares=shares,
     )
-    return figure_png(fig)
-
-
-
-# ----------------------------------------------------------------- 3. history corrections
-def corrections_chart(by_class_and_rule: pd.DataFrame, classes: list[str], shortage_periods: int) -> bytes:
-    """PNG of the corrections per product class and rule (`product_class, rule, rows`), as stacked bars."""
-    table = by_class_and_rule.pivot_table(
-        index="product_class", columns="rule", values="rows", aggfunc="sum", fill_value=0
-    )
-    table = table.reindex(sorted(set(classes) | set(table.index)), fill_value=0)
-    fig = Figure(figsize=(7, 1.2 + 0.4 * max(len(table), 1)), dpi=DPI)
-    ax = fig.add_subplot()
-    if len(table) and len(table.columns):
-        table.plot.barh(stacked=True, ax=ax, width=0.7)
-        ax.legend(title="rule", fontsize=8, title_fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0))
-    ax.set_xlabel("corrected periods")
-    ax.set_ylabel("")
-    ax.set_title(f"history corrections by class and rule; {shortage_periods} shortage periods flagged", fontsize=9)
-    fig.tight_layout()
     return figure_png(fig)
