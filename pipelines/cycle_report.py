@@ -22,7 +22,7 @@ from pipelines.checks import CHECKS, schema_check
 from pipelines.class_view import class_choice
 from pipelines.config import PlanningConfig
 from pipelines.engines import report_charts, report_html
-from pipelines.keys import LEAF_ID, PARENT_ID
+from pipelines.keys import LEAF, LEAF_ID, PARENT_ID
 from pipelines.partitions import partition_key
 from pipelines.resources import read_table, report_folder
 from pipelines.shards import partition_classes, split_class_key
@@ -77,6 +77,7 @@ def latest_check_results(
 
 
 CHART_TABLES = ("lifecycle_history", "parent_forecast", "reinitialized_target", "share_tables")
+CHART_COLUMNS = {"lifecycle_history": [*LEAF, "period_start", "quantity", "shortage"]}
 
 
 def class_charts(config: PlanningConfig, cycle: str, name: str, folder: Path) -> list[str]:
@@ -91,7 +92,11 @@ def class_charts(config: PlanningConfig, cycle: str, name: str, folder: Path) ->
     names = [report_charts.chart_file_name(kind, name, cycle) for kind in CHART_KINDS]
     if all((folder / n).exists() and (folder / n).stat().st_mtime >= published.stat().st_mtime for n in names):
         return names
-    tables = {t: read_table(config.store.path, t, cycle=cycle, product_class=name) for t in CHART_TABLES}
+    # the history (a row per leaf and period of every shard) read for the columns the charts draw from only
+    tables = {
+        t: read_table(config.store.path, t, cycle=cycle, product_class=name, columns=CHART_COLUMNS.get(t))
+        for t in CHART_TABLES
+    }
     if any(frame is None or frame.empty for frame in tables.values()):
         return []
     # each shard numbered its own ids: read together they are not one key's, so the charts go by the text keys

@@ -318,3 +318,22 @@ def test_the_io_manager_holds_the_partition_for_the_run_and_passes_arrow_or_pand
     tags = instance.get_run_by_id(result.run_id).tags
     assert tags["apportion/pid"] == str(os.getpid())
     assert open_store(tmp_path / "s").class_record("2026-11-30", "a")["state"] == "pending"
+
+
+def test_reading_some_columns_gives_the_full_reads_columns_from_every_version_of_the_files(tmp_path):
+    """`columns=`: the same rows and values as the whole read, only the columns asked for in the order asked; a
+    filter on a column not asked for still filters; a column an older file lacks comes as nulls, as in the whole
+    read; a column the table never had is left out."""
+    store = tmp_path / "s"
+    write_partition(store, "t", _frame([1.0, 2.0]), "2026-11-23", "a")
+    write_partition(store, "t", _frame([3.0]).assign(extra=[9]), "2026-11-23", "b")  # a column added later
+    whole = read_table(store, "t", versions="latest")
+    some = read_table(store, "t", versions="latest", columns=["extra", "value", "never"])
+    assert list(some.columns) == ["extra", "value"]
+    pd.testing.assert_frame_equal(some, whole[["extra", "value"]])
+    assert some["extra"].isna().tolist() == [True, True, False]
+    filtered = read_table(store, "t", versions="latest", columns=["value"], where={"label": "r1"})
+    pd.testing.assert_frame_equal(
+        filtered, whole.loc[whole["label"] == "r1", ["value"]].reset_index(drop=True), check_index_type=False
+    )
+    assert filtered["value"].tolist() == [2.0]

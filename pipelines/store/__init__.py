@@ -50,6 +50,7 @@ def read_table(
     versions: str = "published",
     as_arrow: bool = False,
     shard: str | None = None,
+    columns: list[str] | None = None,
 ) -> pd.DataFrame | pa.Table | None:
     """A table of the store (None when it does not exist), for one cycle and/or class or all of them.
 
@@ -60,7 +61,8 @@ def read_table(
     `with_partition` the partition columns are left out (a frame as the asset
     produced it). `where`: column -> value filters, applied where the table has
     the column. `as_arrow`: an Arrow table instead of a pandas frame. `shard`: one shard of the class only
-    (a folder name such as `2of4`; default every shard).
+    (a folder name such as `2of4`; default every shard). `columns`: only these, in this order (a column the
+    table lacks is left out), read from the files alone: a large table read for a few of its columns.
     """
     if cycle is not None:
         cycle = str(cycle)
@@ -73,6 +75,7 @@ def read_table(
         where=where,
         as_arrow=as_arrow,
         shard=shard,
+        columns=columns,
     )
 
 

@@ -6,6 +6,8 @@ module for the layout and the publication protocol.
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
@@ -119,6 +121,7 @@ class StoreReader(StoreLayout):
         where: dict[str, str] | None = None,
         as_arrow: bool = False,
         shard: str | None = None,
+        columns: list[str] | None = None,
     ) -> pd.DataFrame | pa.Table | None:
         """The rows of `asset` (None when the store has no such table); see read_table."""
         if asset == WRITTEN:
@@ -131,13 +134,17 @@ class StoreReader(StoreLayout):
         if not self.check_layout() or not self.has_table(asset):
             return None
         schema = self.schema(asset)
+        if columns is not None:  # only these (and the filters' columns), read from each file as they are
+            wanted = list(dict.fromkeys([*columns, *(where or {})]))
+            schema = None if schema is None else pa.schema([f for f in schema if f.name in wanted])
         parts = []
         for entry in self.entries(asset, cycle=cycle, product_class=product_class, versions=versions):
             if shard is not None and entry["shard"] != shard:
                 continue
             path = self.partition_dir(asset, entry["cycle"], entry["product_class"], entry["shard"]) / entry["file"]
             try:
-                table = arrow.conform(pq.read_table(path), schema)
+                read = _present(path, wanted) if columns is not None else None
+                table = arrow.conform(pq.read_table(path, columns=read), schema)
             except arrow.SchemaConflict as err:
                 raise StoreError(
                     f"table {asset!r}, partition {entry['cycle']}|{entry['product_class']} in the store "
@@ -154,6 +161,8 @@ class StoreReader(StoreLayout):
             return None
         if not with_partition:
             table = table.drop_columns([c for c in arrow.PARTITION_COLUMNS if c in table.column_names])
+        if columns is not None:
+            table = table.select([c for c in columns if c in table.column_names])
         return table if as_arrow else arrow.to_frame(table)
 
     def partitions_written(self, versions: str = "published") -> pd.DataFrame:
@@ -200,3 +209,9 @@ class StoreReader(StoreLayout):
             if self.entries(asset, cycle=c, product_class=product_class, versions="complete"):
                 return c
         return None
+
+
+def _present(path: Path, wanted: list[str]) -> list[str]:
+    """The columns of `wanted` that the Parquet file at `path` holds (an older file may lack a newer one)."""
+    names = set(pq.read_schema(path).names)
+    return [c for c in wanted if c in names]
