@@ -22,6 +22,7 @@ import numpy as np
 import pandas as pd
 
 RUNS_SHARE = 4  # hash the run starts when there are at most 1/RUNS_SHARE as many runs as rows
+RUN_BLOCK = 1 << 20  # rows compared at a time by `run_starts`
 
 
 def addresses(values: np.ndarray, copy: bool = True) -> np.ndarray:
@@ -36,16 +37,29 @@ def addresses(values: np.ndarray, copy: bool = True) -> np.ndarray:
     return cells.copy() if copy or contiguous is not values else cells
 
 
-def run_starts(columns: list[np.ndarray]) -> np.ndarray:
-    """Positions where a run of equal cell objects starts in any of `columns` (object arrays of one length)."""
-    n = len(columns[0])
-    change = np.zeros(n, dtype=bool)
-    if n:
-        change[0] = True
-    for values in columns:
-        where = addresses(values, copy=False)  # `columns` holds the cells while they are compared
-        change[1:] |= where[1:] != where[:-1]
-    return np.flatnonzero(change)
+def run_starts(columns: list[np.ndarray], block: int = RUN_BLOCK, most: float | None = None) -> np.ndarray | None:
+    """Positions where a run of equal cell objects starts in any of `columns` (object arrays of one length),
+    compared `block` rows at a time on the cells' addresses read in place (no copy, no full-length temporary).
+    `most`: None (given up) as soon as the runs found exceed that share of the rows read."""
+    n = len(columns[0]) if columns else 0
+    if not n:
+        return np.zeros(0, dtype=np.int64)
+    held = [np.ascontiguousarray(v, dtype=object) for v in columns]  # kept alive while their cells are read
+    cells = [addresses(v, copy=False) for v in held]
+    found, change, differ = [np.zeros(1, dtype=np.int64)], np.empty(block, dtype=bool), np.empty(block, dtype=bool)
+    count = 1
+    for low in range(1, n, block):
+        high = min(n, low + block)
+        now, other = change[: high - low], differ[: high - low]
+        now[:] = False
+        for where in cells:
+            np.not_equal(where[low:high], where[low - 1 : high - 1], out=other)
+            now |= other
+        found.append(np.flatnonzero(now) + low)
+        count += len(found[-1])
+        if most is not None and count > most * high:
+            return None
+    return np.concatenate(found)
 
 
 def first_appearances(codes: np.ndarray) -> np.ndarray:

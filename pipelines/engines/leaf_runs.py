@@ -17,8 +17,8 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from pipelines.cell_runs import cell_run_starts
 from pipelines.keys import LEAF, factorize
+from pipelines.text_codes import run_starts
 
 
 @dataclass(frozen=True)
@@ -50,14 +50,14 @@ class LeafRuns:
 def leaf_runs(frame: pd.DataFrame, starts: np.ndarray) -> LeafRuns:
     """The rows of `frame` as runs of one leaf in period order (`starts`: each row's period start).
 
-    The leaves are coded on the first row of each run of one key object only (`cell_runs.cell_run_starts`), as
+    The leaves are coded on the first row of each run of one key object only (`text_codes.run_starts`), as
     `keys.factorize` codes them (first appearance). When each leaf is one run whose starts ascend (ties
     keep row order), as the cleaned history is written, the runs are the rows themselves; otherwise one
     stable sort by leaf and period start orders them.
     """
     n = len(frame)
     columns = [frame[c].to_numpy() for c in LEAF]
-    at = cell_run_starts(columns) if n and all(v.dtype == object for v in columns) else np.arange(n)
+    at = run_starts(columns) if n and all(v.dtype == object for v in columns) else np.arange(n)
     code, leaves = factorize(pd.DataFrame({c: v[at] for c, v in zip(LEAF, columns, strict=True)}), LEAF)
     new = np.ones(len(code), dtype=bool)
     new[1:] = code[1:] != code[:-1]
