@@ -62,7 +62,7 @@ def _has_ids(table: pa.Table | pd.DataFrame) -> bool:
 
 def _numbers(table: pa.Table, columns: list[str], ids: bool) -> pd.DataFrame:
     """`columns` of `table` as a frame, with the parent's id (`ids`) or else its text key to find it by."""
-    return table.select([*columns, *([PARENT_ID] if ids else PARENT)]).to_pandas()
+    return _frame(table.select([*columns, *([PARENT_ID] if ids else PARENT)]))
 
 
 def _parents(table: pa.Table, frame: pd.DataFrame, keep: np.ndarray, ids: bool) -> pd.DataFrame:
@@ -71,7 +71,15 @@ def _parents(table: pa.Table, frame: pd.DataFrame, keep: np.ndarray, ids: bool) 
         return distinct_parents(frame, keep)
     rows = np.flatnonzero(keep)
     first = rows[pd.Series(frame[PARENT_ID].to_numpy()[rows]).drop_duplicates().index.to_numpy()]
-    return table.select([*PARENT, PARENT_ID]).take(pa.array(first)).to_pandas()
+    return _frame(table.select([*PARENT, PARENT_ID]).take(pa.array(first)))
+
+
+def _frame(table: pa.Table) -> pd.DataFrame:
+    """`table` as a frame, a dictionary-encoded text column as plain text (as read without the encoding)."""
+    return pa.table(
+        [c.cast(c.type.value_type) if pa.types.is_dictionary(c.type) else c for c in table.columns],
+        names=table.column_names,
+    ).to_pandas()
 
 
 def _stack(rows: pd.DataFrame, more: pd.DataFrame) -> pd.DataFrame:
@@ -117,7 +125,7 @@ def reduce_shard(
 
     def rows(table: pa.Table, pos: np.ndarray, columns: list[str]) -> pd.DataFrame:
         picked = np.flatnonzero(np.isin(pos, largest))
-        return table.select([c for c in columns if c != PARENT_ID or ids]).take(pa.array(picked)).to_pandas()
+        return _frame(table.select([c for c in columns if c != PARENT_ID or ids]).take(pa.array(picked)))
 
     def one_row(at: np.ndarray, **values) -> pd.DataFrame:
         keys = {c: parents[c].to_numpy()[at] for c in PARENT + ([PARENT_ID] if ids else [])}
@@ -158,11 +166,12 @@ def class_frames(shards: list[ChartFrames]) -> ChartFrames:
 
 def read_shard(store: Path | str, cycle: str, product_class: str, shard: str) -> dict[str, object]:
     """One published shard's four tables as `reduce_shard` takes them (a table the store lacks: None)."""
-    from pipelines.store import read_table
+    from pipelines.store import open_store
 
     def read(table: str, columns: list[str] | None = None, as_arrow: bool = True):
-        return read_table(store, table, cycle=cycle, product_class=product_class, shard=shard, columns=columns,
-                          as_arrow=as_arrow)
+        coded = [c for c in LEAF if c in (columns or [])] if as_arrow else None  # texts decoded for rows kept only
+        return open_store(store).read(table, cycle=str(cycle), product_class=product_class, shard=shard,
+                                      columns=columns, as_arrow=as_arrow, dictionary=coded)
 
     return {
         "history": read("lifecycle_history", HISTORY_COLUMNS),
