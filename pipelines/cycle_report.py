@@ -22,9 +22,9 @@ from pipelines.checks import CHECKS, schema_check
 from pipelines.class_view import class_choice
 from pipelines.config import PlanningConfig
 from pipelines.engines import report_charts, report_html
-from pipelines.keys import LEAF, LEAF_ID, PARENT_ID
 from pipelines.partitions import partition_key
 from pipelines.resources import read_table, report_folder
+from pipelines.shard_charts import PARENT_PANELS, SHARE_PANELS, read_class_frames
 from pipelines.shards import partition_classes, split_class_key
 from pipelines.tables import MODELS
 
@@ -76,14 +76,13 @@ def latest_check_results(
     return pd.DataFrame(rows, columns=CHECK_COLUMNS)
 
 
-CHART_TABLES = ("lifecycle_history", "parent_forecast", "reinitialized_target", "share_tables")
-CHART_COLUMNS = {"lifecycle_history": [*LEAF, "period_start", "quantity", "shortage"]}
-
-
 def class_charts(config: PlanningConfig, cycle: str, name: str, folder: Path) -> list[str]:
     """The chart files of a class cut into shards drawn from every shard's published tables (the class total and
     its largest parents over all shards, as the `cycle_report` stage draws one partition's), named by the class;
-    drawn again only when the cycle was published after them. [] for a class not cut or a cycle not published."""
+    drawn again only when the cycle was published after them. [] for a class not cut or a cycle not published.
+
+    The class is never read whole: each shard is read and reduced on its own to what the charts draw
+    (`pipelines.shard_charts`), the same numbers as a draw from the whole class."""
     from pipelines.store import open_store
 
     published = open_store(config.store.path).published_path(cycle)
@@ -92,20 +91,15 @@ def class_charts(config: PlanningConfig, cycle: str, name: str, folder: Path) ->
     names = [report_charts.chart_file_name(kind, name, cycle) for kind in CHART_KINDS]
     if all((folder / n).exists() and (folder / n).stat().st_mtime >= published.stat().st_mtime for n in names):
         return names
-    # the history (a row per leaf and period of every shard) read for the columns the charts draw from only
-    tables = {
-        t: read_table(config.store.path, t, cycle=cycle, product_class=name, columns=CHART_COLUMNS.get(t))
-        for t in CHART_TABLES
-    }
-    if any(frame is None or frame.empty for frame in tables.values()):
+    frames = read_class_frames(config.store.path, cycle, name, config.calendar.period)
+    if frames is None:
         return []
-    # each shard numbered its own ids: read together they are not one key's, so the charts go by the text keys
-    tables = {t: frame.drop(columns=[LEAF_ID, PARENT_ID], errors="ignore") for t, frame in tables.items()}
     where = {"product_class": name, "cycle_date": cycle, "period": config.calendar.period}
-    history = tables["lifecycle_history"]
     pictures = [
-        report_charts.parent_chart(history, tables["parent_forecast"], **where),
-        report_charts.share_chart(history, tables["reinitialized_target"], shares=tables["share_tables"], **where),
+        report_charts.parent_chart(frames.history_sums, frames.forecast, top_parents=PARENT_PANELS, **where),
+        report_charts.share_chart(
+            frames.share_history, frames.target, shares=frames.shares, top_parents=SHARE_PANELS, **where
+        ),
     ]
     for file_name, png in zip(names, pictures, strict=True):
         (folder / file_name).write_bytes(png)

@@ -337,3 +337,19 @@ def test_reading_some_columns_gives_the_full_reads_columns_from_every_version_of
         filtered, whole.loc[whole["label"] == "r1", ["value"]].reset_index(drop=True), check_index_type=False
     )
     assert filtered["value"].tolist() == [2.0]
+
+
+def test_text_columns_read_dictionary_encoded_give_the_plain_reads_texts(tmp_path):
+    """`dictionary=`: the text columns as each file's codes and distinct texts; decoded, the plain read's."""
+    from pipelines.store import open_store
+
+    store = tmp_path / "s"
+    write_partition(store, "t", _frame([1.0, 2.0]), "2026-11-23", "a")
+    write_partition(store, "t", _frame([3.0]).assign(label=["r9"]), "2026-11-23", "b")
+    reader = open_store(store)
+    plain = reader.read("t", versions="latest", columns=["label", "value"], as_arrow=True)
+    coded = reader.read("t", versions="latest", columns=["label", "value"], as_arrow=True, dictionary=["label"])
+    assert pa.types.is_dictionary(coded.schema.field("label").type)
+    assert coded["label"].cast(pa.string()).equals(plain["label"]) and coded["value"].equals(plain["value"])
+    with pytest.raises(ValueError, match="dictionary"):
+        reader.read("t", columns=["label"], as_arrow=True, dictionary=["label"], where={"label": "r1"})

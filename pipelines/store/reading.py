@@ -122,8 +122,14 @@ class StoreReader(StoreLayout):
         as_arrow: bool = False,
         shard: str | None = None,
         columns: list[str] | None = None,
+        dictionary: list[str] | None = None,
     ) -> pd.DataFrame | pa.Table | None:
-        """The rows of `asset` (None when the store has no such table); see read_table."""
+        """The rows of `asset` (None when the store has no such table); see read_table. `dictionary` (with
+        `as_arrow` and `columns`): these text columns kept dictionary-encoded as the files store them (int32 codes
+        and each file's distinct texts), not made one string per row: for a large table of which few rows' texts
+        are wanted (`pa.ChunkedArray.cast(pa.string())` on those rows); no `where` on them."""
+        if dictionary and (not as_arrow or columns is None or set(dictionary) & set(where or {})):
+            raise ValueError("dictionary columns are read as_arrow, with columns, and without a where on them")
         if asset == WRITTEN:
             frame = self.partitions_written(versions)
             if cycle is not None:
@@ -136,7 +142,7 @@ class StoreReader(StoreLayout):
         schema = self.schema(asset)
         if columns is not None:  # only these (and the filters' columns), read from each file as they are
             wanted = list(dict.fromkeys([*columns, *(where or {})]))
-            schema = None if schema is None else pa.schema([f for f in schema if f.name in wanted])
+            schema = None if schema is None else pa.schema([_coded(f, dictionary) for f in schema if f.name in wanted])
         parts = []
         for entry in self.entries(asset, cycle=cycle, product_class=product_class, versions=versions):
             if shard is not None and entry["shard"] != shard:
@@ -144,7 +150,7 @@ class StoreReader(StoreLayout):
             path = self.partition_dir(asset, entry["cycle"], entry["product_class"], entry["shard"]) / entry["file"]
             try:
                 read = _present(path, wanted) if columns is not None else None
-                table = arrow.conform(pq.read_table(path, columns=read), schema)
+                table = arrow.conform(pq.read_table(path, columns=read, read_dictionary=dictionary), schema)
             except arrow.SchemaConflict as err:
                 raise StoreError(
                     f"table {asset!r}, partition {entry['cycle']}|{entry['product_class']} in the store "
@@ -209,6 +215,13 @@ class StoreReader(StoreLayout):
             if self.entries(asset, cycle=c, product_class=product_class, versions="complete"):
                 return c
         return None
+
+
+def _coded(field: pa.Field, dictionary: list[str] | None) -> pa.Field:
+    """`field`, of the type Parquet reads a dictionary column as when it is one of `dictionary`."""
+    if dictionary and field.name in dictionary:
+        return field.with_type(pa.dictionary(pa.int32(), field.type))
+    return field
 
 
 def _present(path: Path, wanted: list[str]) -> list[str]:
