@@ -14,11 +14,12 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from pipelines.config import parse_config
+from pipelines.engines.measure_inputs import share_basis_tables
 from pipelines.engines.measure_split import find_pins_not_kept, find_sum_violations, plan_totals
 from pipelines.engines.shares import compute_shares
 from pipelines.errors import ConfigError, PinError
 from pipelines.schemas_forecast import PlanMeasures
-from pipelines.stages.plan_measures import plan_measures, share_basis_tables
+from pipelines.stages.plan_measures import plan_measures
 from pipelines.stages.reinitialized_target import reinitialize_target
 from pipelines.stages.statistical_forecast import forecast_cycle
 
