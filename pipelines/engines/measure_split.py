@@ -53,20 +53,40 @@ class Split:
 
 
 def _parent_sum(cells: np.ndarray, parent_of_child: np.ndarray, n_parents: int) -> np.ndarray:
-    """(n_parents, H) sums of the (n, H) cells per parent.
+    """(n_parents, H) sums of the (n, H) cells per parent (`Parents.sum`)."""
+    return Parents(parent_of_child, n_parents).sum(cells)
 
-    Children sorted by parent (as `plan_measures` keeps them) are summed block
-    by block with `np.add.reduceat`, several times faster than `np.add.at`.
+
+class Parents:
+    """The children's parents: sums of (n, H) cells per parent, and per-parent (n_parents, H) values spread
+    back to the children (`x[parent_of_child]`).
+
+    Children sorted by parent (as `plan_measures` keeps them) are summed block by block with `np.add.reduceat`,
+    several times faster than `np.add.at`, and spread by repeating each parent's row over its children.
     """
-    cells = np.asarray(cells, dtype=float)
-    if len(parent_of_child) and (np.diff(parent_of_child) >= 0).all():
-        first = np.flatnonzero(np.r_[True, np.diff(parent_of_child) > 0])
-        out = np.zeros((n_parents, cells.shape[1]))
-        out[parent_of_child[first]] = np.add.reduceat(cells, first, axis=0)
+
+    def __init__(self, parent_of_child: np.ndarray, n_parents: int):
+        self.code, self.n = parent_of_child, n_parents
+        step = np.diff(parent_of_child)
+        self.sorted = bool(len(parent_of_child)) and bool((step >= 0).all())
+        if self.sorted:
+            self.first = np.flatnonzero(np.r_[True, step > 0])
+            self.counts = np.bincount(parent_of_child, minlength=n_parents)
+
+    def sum(self, cells: np.ndarray) -> np.ndarray:
+        """(n_parents, H) float sums; a bool matrix is counted as 0/1 floats (cast as it is read, no float copy)."""
+        cells = np.asarray(cells)
+        out = np.zeros((self.n, cells.shape[1]))
+        if self.sorted:
+            kind = None if cells.dtype == np.float64 else float
+            out[self.code[self.first]] = np.add.reduceat(cells, self.first, axis=0, dtype=kind)
+            return out
+        np.add.at(out, self.code, np.asarray(cells, dtype=float))
         return out
-    out = np.zeros((n_parents, cells.shape[1]))
-    np.add.at(out, parent_of_child, cells)
-    return out
+
+    def spread(self, values: np.ndarray) -> np.ndarray:
+        """(n, ...) each child's row of the per-parent `values` (n_parents, ...)."""
+        return np.repeat(values, self.counts, axis=0) if self.sorted else values[self.code]
 
 
 def split_cells(
@@ -92,55 +112,80 @@ def split_cells(
     every unpinned active child (then even). pack_size: integer split in
     multiples of it. order (n,): tie-break key of the integer split. n_active (n_parents, H): the active
     children of each parent period, when the caller has counted them (the same for every measure).
+
+    A measure without a pin on an active child (most of them) skips the pins' arithmetic: its pin sums are 0,
+    every active child is free, and V - 0 is V, so the values are the same. The (n, H) work is done in a
+    few buffers reused step by step, each step the same arithmetic on the same values as written out.
     """
     n_parents, h = parent.shape
     n = len(parent_of_child)
-    pinned = np.zeros((n, h), dtype=bool) if pinned is None else pinned & active
-    pin = np.where(pinned, 0.0 if pin is None else pin, 0.0)
+    groups = Parents(parent_of_child, n_parents)
+    pinned = None if pinned is None else pinned & active
+    if pinned is not None and not pinned.any():
+        pinned = None  # no pin applies: the split without pins
     if n_active is None:
-        n_active = _parent_sum(active.astype(float), parent_of_child, n_parents)
-    any_pin = _parent_sum(pinned.astype(float), parent_of_child, n_parents) > 0
+        n_active = groups.sum(active)
+    if pinned is None:
+        pin, any_pin, pins_sum = None, np.zeros((n_parents, h), dtype=bool), np.zeros((n_parents, h))
+    else:
+        pin = np.where(pinned, 0.0 if pin is None else pin, 0.0)
+        any_pin = groups.sum(pinned) > 0
+        pins_sum = groups.sum(pin)
     live = has_value | any_pin
     v = np.where(has_value, parent, 0.0)
-    pins_sum = _parent_sum(pin, parent_of_child, n_parents)
     tol = TOLERANCE * np.maximum(np.abs(v), 1.0)
     fallback = np.zeros((n, h), dtype=np.int8)
     status = np.where(live & (n_active == 0) & (np.abs(v) > tol), NO_ACTIVE_CHILD, SPLIT).astype(np.int8)
     if rule == "replicate":
-        value = np.where(pinned, pin, v[parent_of_child])
-        rows = (active & has_value[parent_of_child]) | pinned
+        value = groups.spread(v)
+        rows = active & groups.spread(has_value)
+        if pinned is not None:
+            np.copyto(value, pin, where=pinned)
+            rows |= pinned
         return Split(value, rows, fallback, pins_sum, v, status, live, n_active)
 
-    free = active & ~pinned
-    n_free = _parent_sum(free.astype(float), parent_of_child, n_parents)
-    rest = v - pins_sum
+    free = active if pinned is None else active & ~pinned
+    n_free = n_active if pinned is None else groups.sum(free)
+    rest = v if pinned is None else v - pins_sum  # v - 0 is v: no new values without pins
     direction = np.where(v >= 0, 1.0, -1.0)
     overflow = live & any_pin & ((direction * rest < -tol) | ((n_free == 0) & (np.abs(rest) > tol)))
     if pack_size is not None:
         rest = round_to_pack(rest, pack_size)
     carry = live & ~overflow & (n_free > 0)
-    moving = (carry & (np.abs(rest) > tol))[parent_of_child] & free
+    moving = groups.spread(carry & (np.abs(rest) > tol))
+    moving &= free
 
     if rule == "even":
         weight = free.astype(float)
     else:
-        weight = np.where(free, np.clip(basis, 0.0, None), 0.0)
-        use_basis = _parent_sum(weight, parent_of_child, n_parents) > 0
+        weight = _clipped_on(basis, free)
+        use_basis = groups.sum(weight) > 0
         use_fallback = np.zeros_like(use_basis)
         if fallback_basis is not None:
-            fb = np.where(free, np.clip(fallback_basis, 0.0, None), 0.0)
-            use_fallback = ~use_basis & (_parent_sum(fb, parent_of_child, n_parents) > 0)
-            weight = np.where(use_fallback[parent_of_child], fb, weight)
-        even = (~use_basis & ~use_fallback)[parent_of_child]
-        weight = np.where(even, free.astype(float), weight)
-        fallback[moving & use_fallback[parent_of_child]] = PERIOD_SHARE
-        fallback[moving & even] = EVEN
-    total = _parent_sum(weight, parent_of_child, n_parents)[parent_of_child]
+            fb = _clipped_on(fallback_basis, free)
+            use_fallback = ~use_basis & (groups.sum(fb) > 0)
+            take = groups.spread(use_fallback)
+            np.copyto(weight, fb, where=take)
+            del fb
+            take &= moving
+            fallback[take] = PERIOD_SHARE
+        even = groups.spread(~use_basis & ~use_fallback)
+        np.copyto(weight, free, where=even)  # 1.0 on a free child, 0.0 on the others
+        even &= moving
+        fallback[even] = EVEN
+    del moving
+    total = groups.spread(groups.sum(weight))
 
-    split_here = free & carry[parent_of_child]
+    split_here = groups.spread(carry)
+    split_here &= free
     if pack_size is None:
-        share = np.divide(weight, total, out=np.zeros((n, h)), where=total > 0)
-        value = np.where(split_here, rest[parent_of_child] * share, 0.0)
+        # share = weight / total where total > 0, else 0; value = rest x share where split here, else 0
+        divide = total > 0
+        np.divide(weight, total, out=weight, where=divide)
+        weight[~divide] = 0.0
+        value = groups.spread(rest)
+        np.multiply(value, weight, out=value)
+        value[~split_here] = 0.0
     else:
         child, period = np.nonzero(split_here)
         units = np.where(carry, np.rint(np.abs(rest) / pack_size), 0.0).ravel()
@@ -148,12 +193,21 @@ def split_cells(
         parts = largest_remainder(units, weight[child, period], parent_of_child[child] * h + period, key[child])
         value = np.zeros((n, h))
         value[child, period] = np.sign(rest[parent_of_child[child], period]) * parts * pack_size
-    value = np.where(pinned, pin, value)
-    fallback[(overflow[parent_of_child]) & free] = PINS_OVERFLOW
+    if pinned is not None:
+        np.copyto(value, pin, where=pinned)
+        fallback[groups.spread(overflow) & free] = PINS_OVERFLOW
     split_total = np.where(overflow, pins_sum, np.where(status == NO_ACTIVE_CHILD, v, pins_sum + rest))
     status = np.where(overflow, OVERFLOW, status).astype(np.int8)
-    rows = active & live[parent_of_child]
+    rows = active & groups.spread(live)
     return Split(value, rows, fallback, pins_sum, split_total, status, live, n_active)
+
+
+def _clipped_on(weights: np.ndarray, free: np.ndarray) -> np.ndarray:
+    """`np.where(free, np.clip(weights, 0.0, None), 0.0)` in one new array: negative weights count as 0, and
+    only free children weigh."""
+    out = np.clip(weights, 0.0, None)
+    np.copyto(out, 0.0, where=~free)
+    return out
 
 
 def _stack(pieces: list[pd.DataFrame], columns: list[str]) -> pd.DataFrame:
