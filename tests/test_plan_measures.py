@@ -613,3 +613,16 @@ def test_leaf_matrix_reads_a_frame_in_table_order_as_it_reads_any_order():
     np.testing.assert_array_equal(
         leaf_matrix(later, keys, table, "value", first_ord, 2, "week"), np.array([[0.0, 1.0], [0.0, 3.0]])
     )
+
+
+def test_group_sizes_counts_as_pandas_groupby_size_whether_rows_come_in_runs_or_not():
+    from pipelines.engines.plan_codes import group_sizes
+
+    # reference: pandas' own groupby(...).size() (groups sorted, rows with a missing key left out)
+    rng = np.random.default_rng(3)
+    words = np.array(["b", "a", "c", None], dtype=object)
+    shuffled = pd.DataFrame({c: words[rng.integers(0, 4, 3000)] for c in ("x", "y")})
+    runs = pd.DataFrame({c: np.repeat(words[rng.integers(0, 3, 60)], 50) for c in ("x", "y")})  # runs of one object
+    for frame in (shuffled, runs, runs.iloc[:10]):
+        expected = frame.groupby(["x", "y"]).size().rename("rows").reset_index()
+        pd.testing.assert_frame_equal(group_sizes(frame, ["x", "y"], "rows"), expected)

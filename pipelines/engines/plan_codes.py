@@ -14,7 +14,7 @@ import numpy as np
 import pandas as pd
 
 from pipelines.keys import factorize, lookup, pack_codes
-from pipelines.text_codes import codes_of
+from pipelines.text_codes import RUNS_SHARE, codes_of, run_starts
 
 
 def packed_codes(frame: pd.DataFrame, cols: list[str]) -> tuple[np.ndarray, list[np.ndarray]] | None:
@@ -40,12 +40,31 @@ def codes_in(frame: pd.DataFrame, cols: list[str], uniques: list[np.ndarray]) ->
 
 def group_sizes(frame: pd.DataFrame, cols: list[str], name: str) -> pd.DataFrame:
     """`frame.groupby(cols).size().rename(name).reset_index()` (groups sorted by their keys, rows with a
-    missing key left out) counted with one bincount over ranks of each column's sorted uniques."""
+    missing key left out) counted with one bincount over ranks of each column's sorted uniques.
+
+    Text columns whose rows come in runs of one cell object in every column (the plan: a measure's rows
+    together, its basis and fallback in runs) are read once to find the runs, and only each run's first row is
+    coded, its count the run's length."""
+    n = len(frame)
+    if n >= 1024 and all(frame[c].dtype == object for c in cols):
+        starts = run_starts([frame[c].to_numpy() for c in cols], most=1 / RUNS_SHARE)
+        if starts is not None:
+            runs = pd.DataFrame({c: frame[c].to_numpy()[starts] for c in cols})
+            counted = _dense_sizes(runs, cols, name, np.diff(np.append(starts, n)))
+            if counted is not None:
+                return counted
+    counted = _dense_sizes(frame, cols, name)
+    return counted if counted is not None else frame.groupby(cols).size().rename(name).reset_index()
+
+
+def _dense_sizes(frame: pd.DataFrame, cols: list[str], name: str, weight: np.ndarray | None = None):
+    """`group_sizes` of `frame`, each row counted `weight` times (default once); None when a column is not
+    text or the combinations are too many for a dense count (the caller groups with pandas)."""
     ranks, sorted_uniques, sizes = [], [], []
     for c in cols:
         k, u = codes_of(frame[c].to_numpy())
         if not len(frame) or not all(isinstance(x, str) for x in u):  # text keys only: sorted as pandas sorts
-            return frame.groupby(cols).size().rename(name).reset_index()
+            return None
         order = np.argsort(u, kind="stable")
         rank = np.empty(len(u), dtype=np.int64)
         rank[order] = np.arange(len(u))
@@ -53,14 +72,15 @@ def group_sizes(frame: pd.DataFrame, cols: list[str], name: str) -> pd.DataFrame
         sorted_uniques.append(u[order])
         sizes.append(max(len(u), 1))
     if int(np.prod(sizes, dtype=float)) > 1_000_000:  # too many combinations for a dense count
-        return frame.groupby(cols).size().rename(name).reset_index()
+        return None
     keep = np.all([r >= 0 for r in ranks], axis=0)
     combined = np.ravel_multi_index([r[keep] for r in ranks], sizes)
-    counts = np.bincount(combined, minlength=int(np.prod(sizes)))
+    w = None if weight is None else weight[keep]
+    counts = np.bincount(combined, weights=w, minlength=int(np.prod(sizes)))
     present = np.flatnonzero(counts)
     parts = np.unravel_index(present, sizes)
     out = pd.DataFrame({c: u[p] for c, u, p in zip(cols, sorted_uniques, parts, strict=True)})
-    out[name] = counts[present].astype(np.int64)
+    out[name] = counts[present].astype(np.int64)  # whole numbers (run lengths), exact in float64
     return out
 
 
