@@ -61,10 +61,12 @@ def _basis_names(label: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 def plan_table(pieces: list[dict], children: pd.DataFrame, starts: pd.DatetimeIndex, cycle_date) -> pd.DataFrame:
     """The plan (PLAN_COLUMNS, PLAN_TYPES) of the measures' pieces in the order given.
 
-    Every column is allocated once at the plan's length and each measure's rows are taken into its slice
-    (`np.take(..., out=)`): no array per measure joined afterwards, no frame gathered and copied into blocks.
-    The positions come from `np.nonzero` of the measure's own matrices, so always in range: `mode="clip"`,
-    which writes into `out` directly (numpy buffers `out` under its default `mode="raise"`).
+    Every column is allocated once at the plan's length and each measure's rows are written into its slice:
+    the cell matrices compressed by the measure's rows (`np.compress(..., out=)`, child-major: the rows
+    follow the sorted children, then the period), the leaf keys taken by each row's child (`np.take(...,
+    out=)`; the positions are the children's own, so always in range: `mode="clip"`, which writes into `out`
+    directly, where numpy buffers `out` under its default `mode="raise"`). Text is chosen on small integer
+    codes (fallback, basis, period) compressed first, then turned into the column's objects once.
     """
     counts = [int(np.count_nonzero(p["rows"])) for p in pieces]
     total = sum(counts)
@@ -89,20 +91,28 @@ def plan_table(pieces: list[dict], children: pd.DataFrame, starts: pd.DatetimeIn
             continue
         at = slice(end, end + k)
         end += k
-        child, col = np.nonzero(p["rows"])  # child-major: the rows follow the sorted children, then the period
-        h = p["rows"].shape[1]
-        cell = child * h + col
-        par = p["parent_of_child"][child]
+        rows = p["rows"]
+        n, h = rows.shape
+        cells = rows.ravel()
+        child = np.repeat(np.arange(n), np.count_nonzero(rows, axis=1))
         for key in LEAF:
             np.take(keys[key], child, out=columns[key][at], mode="clip")
-        np.take(starts_ns, col, out=columns["period_start"][at], mode="clip")
-        np.take(p["value"], cell, out=columns["value"][at], mode="clip")
-        np.take(p["parent"], par * h + col, out=columns["parent_value"][at], mode="clip")
-        code = np.take(p["fallback"], cell)
+        del child
+        period = np.compress(cells, np.broadcast_to(np.arange(h, dtype=np.intp), (n, h)))
+        np.take(starts_ns, period, out=columns["period_start"][at], mode="clip")
+        del period
+        np.compress(cells, p["value"], out=columns["value"][at])
+        parent_of_child = p["parent_of_child"]
+        np.compress(cells, np.take(p["parent"], parent_of_child, axis=0), out=columns["parent_value"][at])
+        np.compress(cells, p["pinned"], out=columns["pinned"][at])
+        code = np.compress(cells, p["fallback"]).astype(np.intp)
         np.take(fallbacks, code, out=columns["fallback"][at], mode="clip")
-        is_pin = np.take(p["pinned"], cell, out=columns["pinned"][at], mode="clip")
         label_code, names = _basis_names(p["label"])
-        choice = np.where(is_pin, len(names) - 1, np.where(code == EVEN, len(names) - 2, label_code[par]))
-        np.take(names, choice, out=columns["basis"][at], mode="clip")
+        # the basis of a cell: "pin" where pinned, else "even" where the split fell back to even, else its
+        # parent's label; chosen on the cells, then compressed
+        choice = np.repeat(label_code[parent_of_child].astype(np.int16)[:, None], h, axis=1)
+        choice[p["fallback"] == EVEN] = len(names) - 2
+        choice[p["pinned"]] = len(names) - 1
+        np.take(names, np.compress(cells, choice).astype(np.intp), out=columns["basis"][at], mode="clip")
     out = pd.DataFrame(columns, copy=False)  # the arrays as they are: no copy into blocks
     return out.astype(PLAN_TYPES, copy=False)  # the columns already of their type are kept, not copied
