@@ -234,7 +234,7 @@ def find_sum_violations(
     columns = key + ["rule", "parent_value", "expected", "children_sum", "children", "reason"]
     if parents.empty:
         return pd.DataFrame({c: pd.Series(dtype=object) for c in columns})
-    code, sums = key_sums(plan, key)
+    sums = key_sums(plan, key)
     at = rows_of(parents, key, sums)  # each parent period's row of sums, -1 where the plan has none
     merged = parents.reset_index(drop=True)
     for column, empty in (("children_sum", 0.0), ("children", 0), ("pins_in_plan", 0.0)):
@@ -265,13 +265,13 @@ def find_sum_violations(
     merged["reason"] = reason
     failing = merged[reason != ""]
     rule_code, rules = codes_of(plan["rule"].to_numpy())
-    rep = (rule_code == position(rules, "replicate")) & ~plan["pinned"].to_numpy(bool)
-    value, parent_value = plan["value"].to_numpy(float), plan["parent_value"].to_numpy(float)
-    bad = rep & ~(np.abs(value - parent_value) <= TOLERANCE * np.maximum(np.abs(parent_value), 1.0))
-    if bad.any():
-        bad_parents = plan[bad].groupby(key, sort=False).size().rename("n").reset_index()
-        sums = sums.assign(**{c: plan[c].to_numpy()[first_rows(code)] for c in key})
-        extra = parents.merge(bad_parents, on=key).merge(sums, on=key, how="left")
+    rep = np.flatnonzero((rule_code == position(rules, "replicate")) & ~plan["pinned"].to_numpy(bool))
+    value, parent_value = plan["value"].to_numpy(float)[rep], plan["parent_value"].to_numpy(float)[rep]
+    bad = rep[~(np.abs(value - parent_value) <= TOLERANCE * np.maximum(np.abs(parent_value), 1.0))]
+    if len(bad):
+        bad_parents = plan.iloc[bad].groupby(key, sort=False).size().rename("n").reset_index()
+        # the parents in their order with their children's sums (as `merged` holds them)
+        extra = merged.merge(bad_parents, on=key)
         extra = extra.assign(expected=extra["parent_value"], reason="a child differs from the parent value")
         failing = pd.concat([failing, extra], ignore_index=True)
     return failing[columns].reset_index(drop=True)

@@ -84,18 +84,27 @@ def _dense_sizes(frame: pd.DataFrame, cols: list[str], name: str, weight: np.nda
     return out
 
 
-def key_sums(plan: pd.DataFrame, key: list[str]) -> tuple[np.ndarray, pd.DataFrame]:
-    """Each plan row's dense code of its `key` (first appearance order) and, per code, the children's sum,
-    their count and the sum of the pinned ones (one bincount each); `rows_of` finds a key's row."""
-    packed = packed_codes(plan, key)
-    if packed is None:  # too many distinct cells to pack: pandas' own grouping
-        code, keys = factorize(plan, key)
-        found = ("keys", keys)
+def key_sums(plan: pd.DataFrame, key: list[str]) -> pd.DataFrame:
+    """Per distinct `key` of the plan: the children's sum, their count and the sum of the pinned ones (one
+    bincount each, over the rows in their order); `rows_of` finds a key's row.
+
+    A key of text columns then one last column (the period), whose text part comes in runs of one cell object
+    (the plan: a measure's rows of one parent together) is coded on its runs' first rows only, and the last
+    column on its few values: a cell of a dense (text key x period) grid per row, no hashing of every row's
+    packed key."""
+    dense = _dense_codes(plan, key)
+    if dense is not None:
+        code, n, found = dense
     else:
-        code, uniques = pd.factorize(packed[0])
-        found = ("packed", (uniques, packed[1]))
-    code = code.astype(np.int64)
-    n = int(code.max()) + 1 if len(code) else 0
+        packed = packed_codes(plan, key)
+        if packed is None:  # too many distinct cells to pack: pandas' own grouping
+            code, keys = factorize(plan, key)
+            found = ("keys", keys)
+        else:
+            code, uniques = pd.factorize(packed[0])
+            found = ("packed", (uniques, packed[1]))
+        code = code.astype(np.int64)
+        n = int(code.max()) + 1 if len(code) else 0
     value = plan["value"].to_numpy(float)
     pinned = np.where(plan["pinned"].to_numpy(bool), value, 0.0)
     sums = pd.DataFrame(
@@ -106,7 +115,31 @@ def key_sums(plan: pd.DataFrame, key: list[str]) -> tuple[np.ndarray, pd.DataFra
         }
     )
     sums.attrs["found"] = found
-    return code, sums
+    return sums
+
+
+def _dense_codes(plan: pd.DataFrame, key: list[str]):
+    """(each row's cell in a dense grid of the text part's distinct keys x the last column's values, the
+    grid's size, how `rows_of` finds a key), or None when the text part is not in runs of one cell object,
+    a key cell is missing, or the grid would be large."""
+    text, last = key[:-1], key[-1]
+    n = len(plan)
+    if n < 1024 or not text or not all(plan[c].dtype == object for c in text):
+        return None
+    starts = run_starts([plan[c].to_numpy() for c in text], most=1 / RUNS_SHARE)
+    if starts is None:
+        return None
+    runs = pd.DataFrame({c: plan[c].to_numpy()[starts] for c in text})
+    if runs.isna().to_numpy().any():  # a run holds one object: a missing key shows on its first row
+        return None
+    run_code, keys = factorize(runs, text)
+    period, periods = codes_of(plan[last].to_numpy())
+    size = len(keys) * len(periods)
+    if (period < 0).any() or size > 4 * n + 1_000_000:
+        return None
+    code = np.repeat(run_code * len(periods), np.diff(np.append(starts, n)))
+    code += period
+    return code, size, ("dense", (keys, periods))
 
 
 def rows_of(parents: pd.DataFrame, key: list[str], sums: pd.DataFrame) -> np.ndarray:
@@ -114,6 +147,11 @@ def rows_of(parents: pd.DataFrame, key: list[str], sums: pd.DataFrame) -> np.nda
     how, what = sums.attrs["found"]
     if how == "keys":
         return lookup(parents, key, what)
+    if how == "dense":
+        keys, periods = what
+        row = lookup(parents, key[:-1], keys)
+        period = pd.Index(periods).get_indexer(parents[key[-1]].to_numpy())
+        return np.where((row >= 0) & (period >= 0), row * len(periods) + period, -1)
     return pd.Index(what[0]).get_indexer(codes_in(parents, key, what[1]))
 
 
