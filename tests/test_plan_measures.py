@@ -626,3 +626,30 @@ def test_group_sizes_counts_as_pandas_groupby_size_whether_rows_come_in_runs_or_
     for frame in (shuffled, runs, runs.iloc[:10]):
         expected = frame.groupby(["x", "y"]).size().rename("rows").reset_index()
         pd.testing.assert_frame_equal(group_sizes(frame, ["x", "y"], "rows"), expected)
+
+
+def test_key_sums_found_by_rows_of_equal_pandas_groupby_sums_with_runs_or_without():
+    from pipelines.engines.plan_codes import key_sums, rows_of
+
+    # reference: pandas' groupby(key).sum() / size() on the same rows
+    rng = np.random.default_rng(5)
+    weeks = pd.date_range("2026-01-05", periods=4, freq="7D")
+    key = ["measure", "product", "site", "period_start"]
+    n = 4000
+    run = np.repeat(np.arange(n // 8), 8)  # rows in runs of one (measure, product, site) object
+    names = {c: np.array([f"{c}{i % 7}" for i in range(n // 8)], dtype=object) for c in key[:3]}
+    runs = pd.DataFrame({c: names[c][run] for c in key[:3]})
+    runs["period_start"] = weeks[rng.integers(0, 4, n)]
+    runs["value"], runs["pinned"] = rng.normal(size=n), rng.random(n) < 0.1
+    shuffled = runs.sample(frac=1.0, random_state=1).reset_index(drop=True).astype({c: object for c in key[:3]})
+    shuffled[key[:3]] = shuffled[key[:3]].map(lambda x: "".join(x))  # a new object per cell: no runs
+    for plan in (runs, shuffled):
+        sums = key_sums(plan, key)
+        expected = plan.assign(pins=np.where(plan["pinned"], plan["value"], 0.0)).groupby(key)
+        parents = expected.size().reset_index()[key]
+        at = rows_of(parents, key, sums)
+        assert (at >= 0).all()
+        assert sums["children"].to_numpy()[at].tolist() == expected.size().tolist()
+        assert sums["children_sum"].to_numpy()[at] == pytest.approx(expected["value"].sum().to_numpy(), abs=1e-12)
+        assert sums["pins_in_plan"].to_numpy()[at] == pytest.approx(expected["pins"].sum().to_numpy(), abs=1e-12)
+    assert sums.attrs["found"][0] != "dense" and key_sums(runs, key).attrs["found"][0] == "dense"

@@ -19,8 +19,8 @@ import pandas as pd
 from pipelines.calendar import period_ordinal
 from pipelines.config_sections import MeasureConfig
 from pipelines.engines.integer_split import largest_remainder, round_to_pack
-from pipelines.engines.plan_codes import key_sums, packed_codes, position, rows_of
-from pipelines.keys import LEAF, PARENT, first_rows
+from pipelines.engines.plan_codes import key_sums, position, rows_of, run_codes
+from pipelines.keys import LEAF, PARENT
 from pipelines.text_codes import codes_of
 from pipelines.vocabulary import MeasureFallback, values
 
@@ -308,20 +308,18 @@ def plan_totals(plan: pd.DataFrame, parents: pd.DataFrame) -> pd.DataFrame:
         parent_sum=("parent_value", "sum"),
         parent_mean=("parent_value", "mean"),
     )
-    packed = packed_codes(plan, ["measure", "rule"])
-    by = ["measure", "rule"] if packed is None or (packed[0] < 0).any() else packed[0]
-    # on one integer key the groups hold the same rows in the same order, so the same sums
+    coded = run_codes(plan, ["measure", "rule"])  # a measure's rows together: a few runs
+    by = ["measure", "rule"] if coded is None else coded[0]
+    # on one integer key numbered by first appearance the groups hold the same rows in the same order, so the
+    # same sums, in the same order
     leaf = plan.groupby(by, sort=False).agg(
         leaf_rows=("value", "size"),
         pinned_rows=("pinned", "sum"),
         leaf_sum=("value", "sum"),
         leaf_mean=("value", "mean"),
     )
-    if not isinstance(by, list):
-        first = first_rows(by)
-        leaf.index = pd.MultiIndex.from_arrays(
-            [plan[c].to_numpy()[first] for c in ("measure", "rule")], names=["measure", "rule"]
-        )
+    if coded is not None:
+        leaf.index = pd.MultiIndex.from_frame(coded[1])
     out = p.join(leaf, how="outer").reset_index()
     mean = (out["rule"] == "replicate").to_numpy()
     out["statistic"] = np.where(mean, "mean", "total")

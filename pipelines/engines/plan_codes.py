@@ -124,22 +124,36 @@ def _dense_codes(plan: pd.DataFrame, key: list[str]):
     a key cell is missing, or the grid would be large."""
     text, last = key[:-1], key[-1]
     n = len(plan)
-    if n < 1024 or not text or not all(plan[c].dtype == object for c in text):
+    if not text:
         return None
-    starts = run_starts([plan[c].to_numpy() for c in text], most=1 / RUNS_SHARE)
-    if starts is None:
+    coded = run_codes(plan, text)
+    if coded is None:
         return None
-    runs = pd.DataFrame({c: plan[c].to_numpy()[starts] for c in text})
-    if runs.isna().to_numpy().any():  # a run holds one object: a missing key shows on its first row
-        return None
-    run_code, keys = factorize(runs, text)
+    code, keys = coded
     period, periods = codes_of(plan[last].to_numpy())
     size = len(keys) * len(periods)
     if (period < 0).any() or size > 4 * n + 1_000_000:
         return None
-    code = np.repeat(run_code * len(periods), np.diff(np.append(starts, n)))
+    code *= len(periods)
     code += period
     return code, size, ("dense", (keys, periods))
+
+
+def run_codes(frame: pd.DataFrame, cols: list[str]) -> tuple[np.ndarray, pd.DataFrame] | None:
+    """(each row's code of its `cols` key, numbered by first appearance, and the keys in code order) of text
+    columns whose rows come in runs of one cell object, coded on the runs' first rows; None otherwise or where
+    a key cell is missing (the caller groups as pandas does)."""
+    n = len(frame)
+    if n < 1024 or not all(frame[c].dtype == object for c in cols):
+        return None
+    starts = run_starts([frame[c].to_numpy() for c in cols], most=1 / RUNS_SHARE)
+    if starts is None:
+        return None
+    runs = pd.DataFrame({c: frame[c].to_numpy()[starts] for c in cols})
+    if runs.isna().to_numpy().any():  # a run holds one object: a missing key shows on its first row
+        return None
+    run_code, keys = factorize(runs, cols)
+    return np.repeat(run_code, np.diff(np.append(starts, n))), keys
 
 
 def rows_of(parents: pd.DataFrame, key: list[str], sums: pd.DataFrame) -> np.ndarray:
