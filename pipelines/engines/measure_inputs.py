@@ -42,10 +42,11 @@ def leaf_matrix(
     period: str,
 ):
     """(len(table), h) matrix of `column` (one per name of a list) from a long frame keyed by `cols` and
-    period_start, 0 where absent; the keys are looked up once for all columns."""
+    period_start, 0 where absent; the keys are looked up once for all columns. A frame aligned with the table
+    gives its columns' own arrays reshaped (no copy): the matrices are read, never written."""
     names = [column] if isinstance(column, str) else column
     if _aligned(frame, cols, table, first_ord, h, period):  # a row per table row and period, in their order
-        out = [frame[name].to_numpy(float).reshape(len(table), h).copy() for name in names]
+        out = [frame[name].to_numpy(float).reshape(len(table), h) for name in names]
         return out[0] if isinstance(column, str) else out
     out = [np.zeros((len(table), h)) for _ in names]
     if len(frame):

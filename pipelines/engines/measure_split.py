@@ -354,8 +354,8 @@ def parent_piece(name, m, split, value, has, pinned, active, parents, parent_of_
     par, col = np.nonzero(split.live)
     n_active = split.n_active
     if n_active is None:
-        n_active = _parent_sum(active.astype(float), parent_of_child, n_parents)
-    n_pinned = _parent_sum(pinned.astype(float), parent_of_child, n_parents)
+        n_active = _parent_sum(active, parent_of_child, n_parents)
+    n_pinned = _parent_sum(pinned, parent_of_child, n_parents)
     out = parents[PARENT].iloc[par].reset_index(drop=True)
     out.insert(0, "rule", m.rule)
     out.insert(0, "measure", name)

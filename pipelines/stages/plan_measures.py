@@ -201,7 +201,7 @@ def plan_measures(
     parent_of_child, parents = factorize(children, PARENT)
     n_parents = len(parents)
     active = active_matrix(children, starts, period)
-    n_active = _parent_sum(active.astype(float), parent_of_child, n_parents)  # the same for every measure
+    n_active = _parent_sum(active, parent_of_child, n_parents)  # the same for every measure
     order = np.arange(n)  # children are in key order
     check_measures_known(adjustments, config, "adjustments")
     check_measures_known(pins, config, "pins")
@@ -216,12 +216,14 @@ def plan_measures(
     pin_ok, pins_not_applied = pins_to_apply(pins, pin_row, pin_col, pin_inside, active)
     pin_starts = starts[np.clip(pin_col, 0, h - 1)]
 
-    target_m, share_m = leaf_matrix(target, LEAF, children, ["target", "share"], first_ord, h, period)
-    mats = {
-        "target": target_m,
-        "share": share_m,
-        "forecast": leaf_matrix(leaf_forecast, LEAF, children, "forecast", first_ord, h, period),
-    }
+    # the leaf matrices the measures' bases read, and only those
+    bases = {(m.basis.kind, m.parent_values) for m in config.measures.values() if m.rule == "pro_rata"}
+    read = {m.basis.label for m in config.measures.values() if m.rule == "pro_rata"}
+    mats = {}
+    if any(kind == "reinitialized_target" for kind, _ in bases):
+        mats["target"], mats["share"] = leaf_matrix(target, LEAF, children, ["target", "share"], first_ord, h, period)
+    if ("reinitialized_target", "parent_forecast") in bases:
+        mats["forecast"] = leaf_matrix(leaf_forecast, LEAF, children, "forecast", first_ord, h, period)
     for basis_name, given in (share_bases or {}).items():
         mats[f"share_table:{basis_name}"] = (
             given.matrix(children)
@@ -231,6 +233,7 @@ def plan_measures(
     top_down = top_down_parents(parent_forecast, parents)
 
     pieces, parent_pieces, overflow_pieces, applied_pieces = {}, [], [], []
+    no_pins = np.zeros((n, h), dtype=bool)  # the pins of a measure without any: read, never written
     for name in config.measure_order():  # a handful of measures
         m = config.measures[name]
         mean = m.rule == "replicate"
@@ -249,10 +252,11 @@ def plan_measures(
             if len(orphans):
                 parent_pieces.append(orphan_parents(orphans, name, m, period, first_ord, starts))
         mine_pin = (pins["measure"] == name).to_numpy() & pin_ok
-        pin, pinned = combine_cells(
-            pin_row[mine_pin], pin_col[mine_pin], pins["value"].to_numpy(float)[mine_pin], (n, h), mean
-        )
+        pin, pinned = None, no_pins
         if mine_pin.any():
+            pin, pinned = combine_cells(
+                pin_row[mine_pin], pin_col[mine_pin], pins["value"].to_numpy(float)[mine_pin], (n, h), mean
+            )
             combined = pins.loc[mine_pin, PIN_KEY].assign(period_start=pin_starts[mine_pin]).drop_duplicates()
             cell = (
                 lookup(combined, LEAF, children),
@@ -265,7 +269,8 @@ def plan_measures(
             m.rule, value, has, parent_of_child, active, pin, pinned, basis, fallback_basis,
             None if m.integer is None else m.integer.pack_size, order, n_active,
         )
-        mats[f"measure:{name}"] = np.where(split.rows, split.value, 0.0)
+        if f"measure:{name}" in read:  # a later measure's basis
+            mats[f"measure:{name}"] = np.where(split.rows, split.value, 0.0)
         pieces[name] = plan_piece(name, m, split, value, has, pinned, label, parent_of_child)
         parent_pieces.append(parent_piece(name, m, split, value, has, pinned, active, parents, parent_of_child, starts))
         if (split.status == OVERFLOW).any():
