@@ -19,9 +19,8 @@ import pandas as pd
 from pipelines.calendar import period_ordinal
 from pipelines.config_sections import MeasureConfig
 from pipelines.engines.integer_split import largest_remainder, round_to_pack
-from pipelines.engines.plan_codes import key_sums, position, rows_of, run_codes
+from pipelines.engines.plan_codes import key_sums, rows_holding, rows_of, run_codes
 from pipelines.keys import LEAF, PARENT
-from pipelines.text_codes import codes_of
 from pipelines.vocabulary import MeasureFallback, values
 
 PIN_KEY = ["measure"] + LEAF + ["period_start"]
@@ -264,8 +263,8 @@ def find_sum_violations(
     merged["expected"] = np.where(additive, expected, v)
     merged["reason"] = reason
     failing = merged[reason != ""]
-    rule_code, rules = codes_of(plan["rule"].to_numpy())
-    rep = np.flatnonzero((rule_code == position(rules, "replicate")) & ~plan["pinned"].to_numpy(bool))
+    rep = rows_holding(plan, "rule", "replicate")
+    rep = rep[~plan["pinned"].to_numpy(bool)[rep]]
     value, parent_value = plan["value"].to_numpy(float)[rep], plan["parent_value"].to_numpy(float)[rep]
     bad = rep[~(np.abs(value - parent_value) <= TOLERANCE * np.maximum(np.abs(parent_value), 1.0))]
     if len(bad):

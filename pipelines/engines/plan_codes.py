@@ -106,12 +106,12 @@ def key_sums(plan: pd.DataFrame, key: list[str]) -> pd.DataFrame:
         code = code.astype(np.int64)
         n = int(code.max()) + 1 if len(code) else 0
     value = plan["value"].to_numpy(float)
-    pinned = np.where(plan["pinned"].to_numpy(bool), value, 0.0)
+    pinned = np.flatnonzero(plan["pinned"].to_numpy(bool))  # a few rows: the others would add 0.0 to +0.0
     sums = pd.DataFrame(
         {
             "children_sum": np.bincount(code, weights=value, minlength=n),
             "children": np.bincount(code, minlength=n),
-            "pins_in_plan": np.bincount(code, weights=pinned, minlength=n),
+            "pins_in_plan": np.bincount(code[pinned], weights=value[pinned], minlength=n),
         }
     )
     sums.attrs["found"] = found
@@ -154,6 +154,17 @@ def run_codes(frame: pd.DataFrame, cols: list[str]) -> tuple[np.ndarray, pd.Data
         return None
     run_code, keys = factorize(runs, cols)
     return np.repeat(run_code, np.diff(np.append(starts, n))), keys
+
+
+def rows_holding(frame: pd.DataFrame, column: str, value) -> np.ndarray:
+    """The rows whose `column` equals `value`, found on the column's runs of one cell object (each run's first
+    cell compared) when it has few, else cell by cell."""
+    cells = frame[column].to_numpy()
+    n = len(cells)
+    starts = run_starts([cells], most=1 / RUNS_SHARE) if n >= 1024 and cells.dtype == object else None
+    if starts is None:
+        return np.flatnonzero(cells == value)
+    return np.flatnonzero(np.repeat(cells[starts] == value, np.diff(np.append(starts, n))))
 
 
 def rows_of(parents: pd.DataFrame, key: list[str], sums: pd.DataFrame) -> np.ndarray:
