@@ -102,13 +102,13 @@ from pipelines.engines.measure_inputs import (
     share_bases_of,
     top_down_parents,
 )
+from pipelines.engines.measure_parents import parent_sum
 from pipelines.engines.measure_rows import plan_piece, plan_table
 from pipelines.engines.measure_split import (
     OVERFLOW,
     OVERFLOW_COLUMNS,
     PARENT_COLUMNS,
     PIN_KEY,
-    _parent_sum,
     _stack,
     find_pins_not_kept,
     find_sum_violations,
@@ -201,7 +201,7 @@ def plan_measures(
     parent_of_child, parents = factorize(children, PARENT)
     n_parents = len(parents)
     active = active_matrix(children, starts, period)
-    n_active = _parent_sum(active, parent_of_child, n_parents)  # the same for every measure
+    n_active = parent_sum(active, parent_of_child, n_parents)  # the same for every measure
     order = np.arange(n)  # children are in key order
     check_measures_known(adjustments, config, "adjustments")
     check_measures_known(pins, config, "pins")
