@@ -14,11 +14,12 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from pipelines.config import parse_config
+from pipelines.engines.measure_inputs import share_basis_tables
 from pipelines.engines.measure_split import find_pins_not_kept, find_sum_violations, plan_totals
 from pipelines.engines.shares import compute_shares
 from pipelines.errors import ConfigError, PinError
 from pipelines.schemas_forecast import PlanMeasures
-from pipelines.stages.plan_measures import plan_measures, share_basis_tables
+from pipelines.stages.plan_measures import plan_measures
 from pipelines.stages.reinitialized_target import reinitialize_target
 from pipelines.stages.statistical_forecast import forecast_cycle
 
@@ -612,3 +613,43 @@ def test_leaf_matrix_reads_a_frame_in_table_order_as_it_reads_any_order():
     np.testing.assert_array_equal(
         leaf_matrix(later, keys, table, "value", first_ord, 2, "week"), np.array([[0.0, 1.0], [0.0, 3.0]])
     )
+
+
+def test_group_sizes_counts_as_pandas_groupby_size_whether_rows_come_in_runs_or_not():
+    from pipelines.engines.plan_codes import group_sizes
+
+    # reference: pandas' own groupby(...).size() (groups sorted, rows with a missing key left out)
+    rng = np.random.default_rng(3)
+    words = np.array(["b", "a", "c", None], dtype=object)
+    shuffled = pd.DataFrame({c: words[rng.integers(0, 4, 3000)] for c in ("x", "y")})
+    runs = pd.DataFrame({c: np.repeat(words[rng.integers(0, 3, 60)], 50) for c in ("x", "y")})  # runs of one object
+    for frame in (shuffled, runs, runs.iloc[:10]):
+        expected = frame.groupby(["x", "y"]).size().rename("rows").reset_index()
+        pd.testing.assert_frame_equal(group_sizes(frame, ["x", "y"], "rows"), expected)
+
+
+def test_key_sums_found_by_rows_of_equal_pandas_groupby_sums_with_runs_or_without():
+    from pipelines.engines.plan_codes import key_sums, rows_of
+
+    # reference: pandas' groupby(key).sum() / size() on the same rows
+    rng = np.random.default_rng(5)
+    weeks = pd.date_range("2026-01-05", periods=4, freq="7D")
+    key = ["measure", "product", "site", "period_start"]
+    n = 4000
+    run = np.repeat(np.arange(n // 8), 8)  # rows in runs of one (measure, product, site) object
+    names = {c: np.array([f"{c}{i % 7}" for i in range(n // 8)], dtype=object) for c in key[:3]}
+    runs = pd.DataFrame({c: names[c][run] for c in key[:3]})
+    runs["period_start"] = weeks[rng.integers(0, 4, n)]
+    runs["value"], runs["pinned"] = rng.normal(size=n), rng.random(n) < 0.1
+    shuffled = runs.sample(frac=1.0, random_state=1).reset_index(drop=True).astype({c: object for c in key[:3]})
+    shuffled[key[:3]] = shuffled[key[:3]].map(lambda x: "".join(x))  # a new object per cell: no runs
+    for plan in (runs, shuffled):
+        sums = key_sums(plan, key)
+        expected = plan.assign(pins=np.where(plan["pinned"], plan["value"], 0.0)).groupby(key)
+        parents = expected.size().reset_index()[key]
+        at = rows_of(parents, key, sums)
+        assert (at >= 0).all()
+        assert sums["children"].to_numpy()[at].tolist() == expected.size().tolist()
+        assert sums["children_sum"].to_numpy()[at] == pytest.approx(expected["value"].sum().to_numpy(), abs=1e-12)
+        assert sums["pins_in_plan"].to_numpy()[at] == pytest.approx(expected["pins"].sum().to_numpy(), abs=1e-12)
+    assert sums.attrs["found"][0] != "dense" and key_sums(runs, key).attrs["found"][0] == "dense"

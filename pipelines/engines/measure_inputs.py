@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 import pandas as pd
 
@@ -40,10 +42,11 @@ def leaf_matrix(
     period: str,
 ):
     """(len(table), h) matrix of `column` (one per name of a list) from a long frame keyed by `cols` and
-    period_start, 0 where absent; the keys are looked up once for all columns."""
+    period_start, 0 where absent; the keys are looked up once for all columns. A frame aligned with the table
+    gives its columns' own arrays reshaped (no copy): the matrices are read, never written."""
     names = [column] if isinstance(column, str) else column
     if _aligned(frame, cols, table, first_ord, h, period):  # a row per table row and period, in their order
-        out = [frame[name].to_numpy(float).reshape(len(table), h).copy() for name in names]
+        out = [frame[name].to_numpy(float).reshape(len(table), h) for name in names]
         return out[0] if isinstance(column, str) else out
     out = [np.zeros((len(table), h)) for _ in names]
     if len(frame):
@@ -155,7 +158,40 @@ def basis_of(
     return mats[key], None, label
 
 
-def share_basis_tables(
+@dataclass(frozen=True)
+class BasisShares:
+    """One share basis's period shares: `table`, the share engine's table (one row per child, leaf keys and
+    ids, fallback), and `share`, (len(table), H) over the horizon periods `starts`."""
+
+    table: pd.DataFrame
+    share: np.ndarray
+    starts: pd.DatetimeIndex
+
+    def frame(self) -> pd.DataFrame:
+        """The long frame: leaf keys (and leaf_id), period_start, share, fallback; a row per child and period."""
+        h = len(self.starts)
+        table = self.table
+        frame = table[LEAF + ids_in(table, (LEAF_ID,))].loc[table.index.repeat(h)].reset_index(drop=True)
+        frame["period_start"] = np.tile(self.starts.values, len(table))
+        frame["share"] = self.share.ravel()
+        frame["fallback"] = np.repeat(table["fallback"].to_numpy(), h)
+        return frame
+
+    def matrix(self, children: pd.DataFrame) -> np.ndarray:
+        """(len(children), H) shares of `children` (leaf keys), 0 for a child the basis does not hold; the
+        basis's own matrix, uncopied, when its rows are the children in their order (as the plan sorts both)."""
+        table = self.table
+        if len(table) == len(children) and all(
+            np.array_equal(table[c].to_numpy(object), children[c].to_numpy(object)) for c in LEAF
+        ):
+            return np.asarray(self.share, dtype=float)
+        out = np.zeros((len(children), self.share.shape[1]))
+        row = lookup(children, LEAF, table)
+        out[row >= 0] = self.share[row[row >= 0]]
+        return out
+
+
+def share_bases_of(
     history: pd.DataFrame,
     children: pd.DataFrame,
     products: pd.DataFrame,
@@ -163,8 +199,8 @@ def share_basis_tables(
     cycle_date: pd.Timestamp,
     keys: Coded | None = None,
     rows: ShareRows | None = None,
-) -> dict[str, pd.DataFrame]:
-    """Period shares of every named share basis (config `share_bases`): leaf keys, period_start, share, fallback.
+) -> dict[str, BasisShares]:
+    """Period shares of every named share basis (config `share_bases`), per child and horizon period.
 
     Each basis runs the share engine (`engines.shares.compute_shares`, then
     `engines.period_shares.period_shares`) with its window, method and fallback
@@ -184,9 +220,21 @@ def share_basis_tables(
         made = made or child_frame(history, children, own, cycle_date, keys, rows)
         table = compute_shares(history, children, own, cycle_date, made, keys)
         share = period_shares(table, own, cycle_date, products, history)[0]
-        frame = table[LEAF + ids_in(table, (LEAF_ID,))].loc[table.index.repeat(len(starts))].reset_index(drop=True)
-        frame["period_start"] = np.tile(starts.values, len(table))
-        frame["share"] = share.ravel()
-        frame["fallback"] = np.repeat(table["fallback"].to_numpy(), len(starts))
-        out[name] = frame
+        out[name] = BasisShares(table, share, starts)
     return out
+
+
+def share_basis_tables(
+    history: pd.DataFrame,
+    children: pd.DataFrame,
+    products: pd.DataFrame,
+    config,
+    cycle_date: pd.Timestamp,
+    keys: Coded | None = None,
+    rows: ShareRows | None = None,
+) -> dict[str, pd.DataFrame]:
+    """`share_bases_of` as long frames: leaf keys, period_start, share, fallback (`BasisShares.frame`)."""
+    return {
+        name: basis.frame()
+        for name, basis in share_bases_of(history, children, products, config, cycle_date, keys, rows).items()
+    }

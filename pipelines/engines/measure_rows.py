@@ -61,19 +61,23 @@ def _basis_names(label: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 def plan_table(pieces: list[dict], children: pd.DataFrame, starts: pd.DatetimeIndex, cycle_date) -> pd.DataFrame:
     """The plan (PLAN_COLUMNS, PLAN_TYPES) of the measures' pieces in the order given.
 
-    Every column is allocated once at the plan's length and each measure's rows are taken into its slice
-    (`np.take(..., out=)`): no array per measure joined afterwards, no frame gathered and copied into blocks.
-    The positions come from `np.nonzero` of the measure's own matrices, so always in range: `mode="clip"`,
-    which writes into `out` directly (numpy buffers `out` under its default `mode="raise"`).
+    Every column is made once at the plan's length. The leaf keys in one pass each, repeating every
+    measure's children by their rows' count, and the measure and rule by repeating the names (no object
+    column filled with None first, no index per row). The others are allocated once and each measure's
+    cells compressed by its rows straight into its slice (`np.compress(..., out=)`; child-major: the rows
+    follow the sorted children, then the period); basis and fallback are chosen on small integer codes of
+    the measure's cells, compressed, then taken into the slice (`np.take(..., out=)`: the codes are the
+    pieces' own, so always in range, and `mode="clip"` writes into `out` directly, where numpy buffers
+    `out` under its default `mode="raise"`).
     """
     counts = [int(np.count_nonzero(p["rows"])) for p in pieces]
     total = sum(counts)
     if not total:
         return pd.DataFrame({c: pd.Series(dtype=object) for c in PLAN_COLUMNS}).astype(PLAN_TYPES)
-    keys = {key: children[key].to_numpy(object) for key in LEAF}
+    per_child = np.concatenate([np.count_nonzero(p["rows"], axis=1) for p in pieces])  # measure by measure
+    columns = {key: np.repeat(np.tile(children[key].to_numpy(object), len(pieces)), per_child) for key in LEAF}
+    del per_child
     starts_ns = pd.DatetimeIndex(starts).to_numpy().astype("datetime64[ns]")
-    fallbacks = np.asarray(FALLBACKS, dtype=object)
-    columns = {key: np.empty(total, dtype=object) for key in LEAF}
     columns["period_start"] = np.empty(total, dtype="datetime64[ns]")
     columns["cycle_date"] = np.full(total, pd.Timestamp(cycle_date).to_datetime64(), dtype="datetime64[ns]")
     columns["measure"] = np.repeat(np.array([p["measure"] for p in pieces], dtype=object), counts)
@@ -83,26 +87,33 @@ def plan_table(pieces: list[dict], children: pd.DataFrame, starts: pd.DatetimeIn
     columns["basis"] = np.empty(total, dtype=object)
     columns["fallback"] = np.empty(total, dtype=object)
     columns["pinned"] = np.empty(total, dtype=bool)
+    fallbacks = np.asarray(FALLBACKS, dtype=object)
     end = 0
     for p, k in zip(pieces, counts, strict=True):  # a handful of measures
         if not k:
             continue
         at = slice(end, end + k)
         end += k
-        child, col = np.nonzero(p["rows"])  # child-major: the rows follow the sorted children, then the period
-        h = p["rows"].shape[1]
-        cell = child * h + col
-        par = p["parent_of_child"][child]
-        for key in LEAF:
-            np.take(keys[key], child, out=columns[key][at], mode="clip")
-        np.take(starts_ns, col, out=columns["period_start"][at], mode="clip")
-        np.take(p["value"], cell, out=columns["value"][at], mode="clip")
-        np.take(p["parent"], par * h + col, out=columns["parent_value"][at], mode="clip")
-        code = np.take(p["fallback"], cell)
+        rows = p["rows"]
+        n, h = rows.shape
+        cells = rows.ravel()
+        period = np.compress(cells, np.broadcast_to(np.arange(h, dtype=np.int16), (n, h)))
+        np.take(starts_ns, period.astype(np.intp), out=columns["period_start"][at], mode="clip")
+        del period
+        np.compress(cells, p["value"], out=columns["value"][at])
+        parent_of_child = p["parent_of_child"]
+        np.compress(cells, np.take(p["parent"], parent_of_child, axis=0), out=columns["parent_value"][at])
+        np.compress(cells, p["pinned"], out=columns["pinned"][at])
+        code = np.compress(cells, p["fallback"]).astype(np.intp)
         np.take(fallbacks, code, out=columns["fallback"][at], mode="clip")
-        is_pin = np.take(p["pinned"], cell, out=columns["pinned"][at], mode="clip")
+        del code
         label_code, names = _basis_names(p["label"])
-        choice = np.where(is_pin, len(names) - 1, np.where(code == EVEN, len(names) - 2, label_code[par]))
-        np.take(names, choice, out=columns["basis"][at], mode="clip")
+        # the basis of a cell: "pin" where pinned, else "even" where the split fell back to even, else its
+        # parent's label; chosen on the cells, then compressed
+        choice = np.repeat(label_code[parent_of_child].astype(np.int16)[:, None], h, axis=1)
+        choice[p["fallback"] == EVEN] = len(names) - 2
+        choice[p["pinned"]] = len(names) - 1
+        np.take(names, np.compress(cells, choice).astype(np.intp), out=columns["basis"][at], mode="clip")
+    columns = {c: columns[c] for c in PLAN_COLUMNS}
     out = pd.DataFrame(columns, copy=False)  # the arrays as they are: no copy into blocks
     return out.astype(PLAN_TYPES, copy=False)  # the columns already of their type are kept, not copied

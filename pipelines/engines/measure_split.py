@@ -19,9 +19,9 @@ import pandas as pd
 from pipelines.calendar import period_ordinal
 from pipelines.config_sections import MeasureConfig
 from pipelines.engines.integer_split import largest_remainder, round_to_pack
-from pipelines.engines.plan_codes import key_sums, packed_codes, position, rows_of
-from pipelines.keys import LEAF, PARENT, first_rows
-from pipelines.text_codes import codes_of
+from pipelines.engines.measure_parents import Parents, parent_sum
+from pipelines.engines.plan_codes import key_sums, rows_holding, rows_of, run_codes
+from pipelines.keys import LEAF, PARENT
 from pipelines.vocabulary import MeasureFallback, values
 
 PIN_KEY = ["measure"] + LEAF + ["period_start"]
@@ -52,23 +52,6 @@ class Split:
     n_active: np.ndarray | None = None  # (n_parents, H) active children of each parent period
 
 
-def _parent_sum(cells: np.ndarray, parent_of_child: np.ndarray, n_parents: int) -> np.ndarray:
-    """(n_parents, H) sums of the (n, H) cells per parent.
-
-    Children sorted by parent (as `plan_measures` keeps them) are summed block
-    by block with `np.add.reduceat`, several times faster than `np.add.at`.
-    """
-    cells = np.asarray(cells, dtype=float)
-    if len(parent_of_child) and (np.diff(parent_of_child) >= 0).all():
-        first = np.flatnonzero(np.r_[True, np.diff(parent_of_child) > 0])
-        out = np.zeros((n_parents, cells.shape[1]))
-        out[parent_of_child[first]] = np.add.reduceat(cells, first, axis=0)
-        return out
-    out = np.zeros((n_parents, cells.shape[1]))
-    np.add.at(out, parent_of_child, cells)
-    return out
-
-
 def split_cells(
     rule: str,
     parent: np.ndarray,
@@ -92,55 +75,80 @@ def split_cells(
     every unpinned active child (then even). pack_size: integer split in
     multiples of it. order (n,): tie-break key of the integer split. n_active (n_parents, H): the active
     children of each parent period, when the caller has counted them (the same for every measure).
+
+    A measure without a pin on an active child (most of them) skips the pins' arithmetic: its pin sums are 0,
+    every active child is free, and V - 0 is V, so the values are the same. The (n, H) work is done in a
+    few buffers reused step by step, each step the same arithmetic on the same values as written out.
     """
     n_parents, h = parent.shape
     n = len(parent_of_child)
-    pinned = np.zeros((n, h), dtype=bool) if pinned is None else pinned & active
-    pin = np.where(pinned, 0.0 if pin is None else pin, 0.0)
+    groups = Parents(parent_of_child, n_parents)
+    pinned = None if pinned is None else pinned & active
+    if pinned is not None and not pinned.any():
+        pinned = None  # no pin applies: the split without pins
     if n_active is None:
-        n_active = _parent_sum(active.astype(float), parent_of_child, n_parents)
-    any_pin = _parent_sum(pinned.astype(float), parent_of_child, n_parents) > 0
+        n_active = groups.sum(active)
+    if pinned is None:
+        pin, any_pin, pins_sum = None, np.zeros((n_parents, h), dtype=bool), np.zeros((n_parents, h))
+    else:
+        pin = np.where(pinned, 0.0 if pin is None else pin, 0.0)
+        any_pin = groups.sum(pinned) > 0
+        pins_sum = groups.sum(pin)
     live = has_value | any_pin
     v = np.where(has_value, parent, 0.0)
-    pins_sum = _parent_sum(pin, parent_of_child, n_parents)
     tol = TOLERANCE * np.maximum(np.abs(v), 1.0)
     fallback = np.zeros((n, h), dtype=np.int8)
     status = np.where(live & (n_active == 0) & (np.abs(v) > tol), NO_ACTIVE_CHILD, SPLIT).astype(np.int8)
     if rule == "replicate":
-        value = np.where(pinned, pin, v[parent_of_child])
-        rows = (active & has_value[parent_of_child]) | pinned
+        value = groups.spread(v)
+        rows = active & groups.spread(has_value)
+        if pinned is not None:
+            np.copyto(value, pin, where=pinned)
+            rows |= pinned
         return Split(value, rows, fallback, pins_sum, v, status, live, n_active)
 
-    free = active & ~pinned
-    n_free = _parent_sum(free.astype(float), parent_of_child, n_parents)
-    rest = v - pins_sum
+    free = active if pinned is None else active & ~pinned
+    n_free = n_active if pinned is None else groups.sum(free)
+    rest = v if pinned is None else v - pins_sum  # v - 0 is v: no new values without pins
     direction = np.where(v >= 0, 1.0, -1.0)
     overflow = live & any_pin & ((direction * rest < -tol) | ((n_free == 0) & (np.abs(rest) > tol)))
     if pack_size is not None:
         rest = round_to_pack(rest, pack_size)
     carry = live & ~overflow & (n_free > 0)
-    moving = (carry & (np.abs(rest) > tol))[parent_of_child] & free
+    moving = groups.spread(carry & (np.abs(rest) > tol))
+    moving &= free
 
     if rule == "even":
         weight = free.astype(float)
     else:
-        weight = np.where(free, np.clip(basis, 0.0, None), 0.0)
-        use_basis = _parent_sum(weight, parent_of_child, n_parents) > 0
+        weight = _clipped_on(basis, free)
+        use_basis = groups.sum(weight) > 0
         use_fallback = np.zeros_like(use_basis)
         if fallback_basis is not None:
-            fb = np.where(free, np.clip(fallback_basis, 0.0, None), 0.0)
-            use_fallback = ~use_basis & (_parent_sum(fb, parent_of_child, n_parents) > 0)
-            weight = np.where(use_fallback[parent_of_child], fb, weight)
-        even = (~use_basis & ~use_fallback)[parent_of_child]
-        weight = np.where(even, free.astype(float), weight)
-        fallback[moving & use_fallback[parent_of_child]] = PERIOD_SHARE
-        fallback[moving & even] = EVEN
-    total = _parent_sum(weight, parent_of_child, n_parents)[parent_of_child]
+            fb = _clipped_on(fallback_basis, free)
+            use_fallback = ~use_basis & (groups.sum(fb) > 0)
+            take = groups.spread(use_fallback)
+            np.copyto(weight, fb, where=take)
+            del fb
+            take &= moving
+            fallback[take] = PERIOD_SHARE
+        even = groups.spread(~use_basis & ~use_fallback)
+        np.copyto(weight, free, where=even)  # 1.0 on a free child, 0.0 on the others
+        even &= moving
+        fallback[even] = EVEN
+    del moving
+    total = groups.spread(groups.sum(weight))
 
-    split_here = free & carry[parent_of_child]
+    split_here = groups.spread(carry)
+    split_here &= free
     if pack_size is None:
-        share = np.divide(weight, total, out=np.zeros((n, h)), where=total > 0)
-        value = np.where(split_here, rest[parent_of_child] * share, 0.0)
+        # share = weight / total where total > 0, else 0; value = rest x share where split here, else 0
+        divide = total > 0
+        np.divide(weight, total, out=weight, where=divide)
+        weight[~divide] = 0.0
+        value = groups.spread(rest)
+        np.multiply(value, weight, out=value)
+        value[~split_here] = 0.0
     else:
         child, period = np.nonzero(split_here)
         units = np.where(carry, np.rint(np.abs(rest) / pack_size), 0.0).ravel()
@@ -148,12 +156,21 @@ def split_cells(
         parts = largest_remainder(units, weight[child, period], parent_of_child[child] * h + period, key[child])
         value = np.zeros((n, h))
         value[child, period] = np.sign(rest[parent_of_child[child], period]) * parts * pack_size
-    value = np.where(pinned, pin, value)
-    fallback[(overflow[parent_of_child]) & free] = PINS_OVERFLOW
+    if pinned is not None:
+        np.copyto(value, pin, where=pinned)
+        fallback[groups.spread(overflow) & free] = PINS_OVERFLOW
     split_total = np.where(overflow, pins_sum, np.where(status == NO_ACTIVE_CHILD, v, pins_sum + rest))
     status = np.where(overflow, OVERFLOW, status).astype(np.int8)
-    rows = active & live[parent_of_child]
+    rows = active & groups.spread(live)
     return Split(value, rows, fallback, pins_sum, split_total, status, live, n_active)
+
+
+def _clipped_on(weights: np.ndarray, free: np.ndarray) -> np.ndarray:
+    """`np.where(free, np.clip(weights, 0.0, None), 0.0)` in one new array: negative weights count as 0, and
+    only free children weigh."""
+    out = np.clip(weights, 0.0, None)
+    np.copyto(out, 0.0, where=~free)
+    return out
 
 
 def _stack(pieces: list[pd.DataFrame], columns: list[str]) -> pd.DataFrame:
@@ -180,7 +197,7 @@ def find_sum_violations(
     columns = key + ["rule", "parent_value", "expected", "children_sum", "children", "reason"]
     if parents.empty:
         return pd.DataFrame({c: pd.Series(dtype=object) for c in columns})
-    code, sums = key_sums(plan, key)
+    sums = key_sums(plan, key)
     at = rows_of(parents, key, sums)  # each parent period's row of sums, -1 where the plan has none
     merged = parents.reset_index(drop=True)
     for column, empty in (("children_sum", 0.0), ("children", 0), ("pins_in_plan", 0.0)):
@@ -210,14 +227,14 @@ def find_sum_violations(
     merged["expected"] = np.where(additive, expected, v)
     merged["reason"] = reason
     failing = merged[reason != ""]
-    rule_code, rules = codes_of(plan["rule"].to_numpy())
-    rep = (rule_code == position(rules, "replicate")) & ~plan["pinned"].to_numpy(bool)
-    value, parent_value = plan["value"].to_numpy(float), plan["parent_value"].to_numpy(float)
-    bad = rep & ~(np.abs(value - parent_value) <= TOLERANCE * np.maximum(np.abs(parent_value), 1.0))
-    if bad.any():
-        bad_parents = plan[bad].groupby(key, sort=False).size().rename("n").reset_index()
-        sums = sums.assign(**{c: plan[c].to_numpy()[first_rows(code)] for c in key})
-        extra = parents.merge(bad_parents, on=key).merge(sums, on=key, how="left")
+    rep = rows_holding(plan, "rule", "replicate")
+    rep = rep[~plan["pinned"].to_numpy(bool)[rep]]
+    value, parent_value = plan["value"].to_numpy(float)[rep], plan["parent_value"].to_numpy(float)[rep]
+    bad = rep[~(np.abs(value - parent_value) <= TOLERANCE * np.maximum(np.abs(parent_value), 1.0))]
+    if len(bad):
+        bad_parents = plan.iloc[bad].groupby(key, sort=False).size().rename("n").reset_index()
+        # the parents in their order with their children's sums (as `merged` holds them)
+        extra = merged.merge(bad_parents, on=key)
         extra = extra.assign(expected=extra["parent_value"], reason="a child differs from the parent value")
         failing = pd.concat([failing, extra], ignore_index=True)
     return failing[columns].reset_index(drop=True)
@@ -254,20 +271,18 @@ def plan_totals(plan: pd.DataFrame, parents: pd.DataFrame) -> pd.DataFrame:
         parent_sum=("parent_value", "sum"),
         parent_mean=("parent_value", "mean"),
     )
-    packed = packed_codes(plan, ["measure", "rule"])
-    by = ["measure", "rule"] if packed is None or (packed[0] < 0).any() else packed[0]
-    # on one integer key the groups hold the same rows in the same order, so the same sums
+    coded = run_codes(plan, ["measure", "rule"])  # a measure's rows together: a few runs
+    by = ["measure", "rule"] if coded is None else coded[0]
+    # on one integer key numbered by first appearance the groups hold the same rows in the same order, so the
+    # same sums, in the same order
     leaf = plan.groupby(by, sort=False).agg(
         leaf_rows=("value", "size"),
         pinned_rows=("pinned", "sum"),
         leaf_sum=("value", "sum"),
         leaf_mean=("value", "mean"),
     )
-    if not isinstance(by, list):
-        first = first_rows(by)
-        leaf.index = pd.MultiIndex.from_arrays(
-            [plan[c].to_numpy()[first] for c in ("measure", "rule")], names=["measure", "rule"]
-        )
+    if coded is not None:
+        leaf.index = pd.MultiIndex.from_frame(coded[1])
     out = p.join(leaf, how="outer").reset_index()
     mean = (out["rule"] == "replicate").to_numpy()
     out["statistic"] = np.where(mean, "mean", "total")
@@ -302,8 +317,8 @@ def parent_piece(name, m, split, value, has, pinned, active, parents, parent_of_
     par, col = np.nonzero(split.live)
     n_active = split.n_active
     if n_active is None:
-        n_active = _parent_sum(active.astype(float), parent_of_child, n_parents)
-    n_pinned = _parent_sum(pinned.astype(float), parent_of_child, n_parents)
+        n_active = parent_sum(active, parent_of_child, n_parents)
+    n_pinned = parent_sum(pinned, parent_of_child, n_parents)
     out = parents[PARENT].iloc[par].reset_index(drop=True)
     out.insert(0, "rule", m.rule)
     out.insert(0, "measure", name)

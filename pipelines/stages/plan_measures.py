@@ -28,7 +28,7 @@ methods to expedite product line forecasting", J. of Forecasting 9(3)):
   - `share_table:<name>`: the period shares of the share basis <name> (config
     `share_bases`: its own window, method and fallback windows), computed by
     the share engine of `pipelines.stages.share_tables` with the same
-    lifecycle rules (`share_basis_tables`).
+    lifecycle rules (`share_bases_of`).
   - `measure:<name>`: the children's current values of another measure of the
     plan, after its own split and pins (e.g. a planner adjustment in
     proportion to the statistical forecast). Negative basis values count as
@@ -92,22 +92,23 @@ from pipelines.config_sections import MeasureConfig, PinsConfig, ShareBasisConfi
 from pipelines.engines.children import active_children
 from pipelines.engines.forecast_frames import active_matrix
 from pipelines.engines.measure_inputs import (
+    BasisShares,
     basis_of,
     cells_of,
     check_measures_known,
     combine_cells,
     leaf_matrix,
     pins_to_apply,
-    share_basis_tables,
+    share_bases_of,
     top_down_parents,
 )
+from pipelines.engines.measure_parents import parent_sum
 from pipelines.engines.measure_rows import plan_piece, plan_table
 from pipelines.engines.measure_split import (
     OVERFLOW,
     OVERFLOW_COLUMNS,
     PARENT_COLUMNS,
     PIN_KEY,
-    _parent_sum,
     _stack,
     find_pins_not_kept,
     find_sum_violations,
@@ -122,7 +123,7 @@ from pipelines.engines.plan_codes import group_sizes
 from pipelines.engines.share_rows import history_rows
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.errors import PinError
-from pipelines.keys import LEAF, LEAF_ID, PARENT, coded, factorize, lookup
+from pipelines.keys import LEAF, PARENT, coded, factorize, lookup
 from pipelines.results import CheckRows, Log, StageResult, quiet
 
 UNUSED_COLUMNS = ["input", "measure", "product", "site", "customer", "period_start", "value", "reason"]
@@ -178,7 +179,7 @@ def plan_measures(
     pins: pd.DataFrame,
     config: PlanningConfig,
     cycle_date: pd.Timestamp,
-    share_bases: dict[str, pd.DataFrame] | None = None,
+    share_bases: Mapping[str, BasisShares | pd.DataFrame] | None = None,
 ) -> PlanResult:
     """Every configured measure at leaf grain, long format; see the module docstring.
 
@@ -188,7 +189,8 @@ def plan_measures(
     (`statistical_forecast`). target: `reinitialized_target` (leaf keys,
     period_start, target, share). adjustments: measure, product, site,
     period_start, value. pins: product, site, customer, period_start, measure,
-    value. share_bases: `share_basis_tables` (needed by share_table bases).
+    value. share_bases: `share_bases_of` (or its long frames, `share_basis_tables`; needed by share_table
+    bases).
     """
     period = config.calendar.period
     h = config.calendar.horizon
@@ -199,7 +201,7 @@ def plan_measures(
     parent_of_child, parents = factorize(children, PARENT)
     n_parents = len(parents)
     active = active_matrix(children, starts, period)
-    n_active = _parent_sum(active.astype(float), parent_of_child, n_parents)  # the same for every measure
+    n_active = parent_sum(active, parent_of_child, n_parents)  # the same for every measure
     order = np.arange(n)  # children are in key order
     check_measures_known(adjustments, config, "adjustments")
     check_measures_known(pins, config, "pins")
@@ -214,17 +216,24 @@ def plan_measures(
     pin_ok, pins_not_applied = pins_to_apply(pins, pin_row, pin_col, pin_inside, active)
     pin_starts = starts[np.clip(pin_col, 0, h - 1)]
 
-    target_m, share_m = leaf_matrix(target, LEAF, children, ["target", "share"], first_ord, h, period)
-    mats = {
-        "target": target_m,
-        "share": share_m,
-        "forecast": leaf_matrix(leaf_forecast, LEAF, children, "forecast", first_ord, h, period),
-    }
-    for basis_name, frame in (share_bases or {}).items():
-        mats[f"share_table:{basis_name}"] = leaf_matrix(frame, LEAF, children, "share", first_ord, h, period)
+    # the leaf matrices the measures' bases read, and only those
+    bases = {(m.basis.kind, m.parent_values) for m in config.measures.values() if m.rule == "pro_rata"}
+    read = {m.basis.label for m in config.measures.values() if m.rule == "pro_rata"}
+    mats = {}
+    if any(kind == "reinitialized_target" for kind, _ in bases):
+        mats["target"], mats["share"] = leaf_matrix(target, LEAF, children, ["target", "share"], first_ord, h, period)
+    if ("reinitialized_target", "parent_forecast") in bases:
+        mats["forecast"] = leaf_matrix(leaf_forecast, LEAF, children, "forecast", first_ord, h, period)
+    for basis_name, given in (share_bases or {}).items():
+        mats[f"share_table:{basis_name}"] = (
+            given.matrix(children)
+            if isinstance(given, BasisShares)
+            else leaf_matrix(given, LEAF, children, "share", first_ord, h, period)
+        )
     top_down = top_down_parents(parent_forecast, parents)
 
     pieces, parent_pieces, overflow_pieces, applied_pieces = {}, [], [], []
+    no_pins = np.zeros((n, h), dtype=bool)  # the pins of a measure without any: read, never written
     for name in config.measure_order():  # a handful of measures
         m = config.measures[name]
         mean = m.rule == "replicate"
@@ -243,10 +252,11 @@ def plan_measures(
             if len(orphans):
                 parent_pieces.append(orphan_parents(orphans, name, m, period, first_ord, starts))
         mine_pin = (pins["measure"] == name).to_numpy() & pin_ok
-        pin, pinned = combine_cells(
-            pin_row[mine_pin], pin_col[mine_pin], pins["value"].to_numpy(float)[mine_pin], (n, h), mean
-        )
+        pin, pinned = None, no_pins
         if mine_pin.any():
+            pin, pinned = combine_cells(
+                pin_row[mine_pin], pin_col[mine_pin], pins["value"].to_numpy(float)[mine_pin], (n, h), mean
+            )
             combined = pins.loc[mine_pin, PIN_KEY].assign(period_start=pin_starts[mine_pin]).drop_duplicates()
             cell = (
                 lookup(combined, LEAF, children),
@@ -259,7 +269,8 @@ def plan_measures(
             m.rule, value, has, parent_of_child, active, pin, pinned, basis, fallback_basis,
             None if m.integer is None else m.integer.pack_size, order, n_active,
         )
-        mats[f"measure:{name}"] = np.where(split.rows, split.value, 0.0)
+        if f"measure:{name}" in read:  # a later measure's basis
+            mats[f"measure:{name}"] = np.where(split.rows, split.value, 0.0)
         pieces[name] = plan_piece(name, m, split, value, has, pinned, label, parent_of_child)
         parent_pieces.append(parent_piece(name, m, split, value, has, pinned, active, parents, parent_of_child, starts))
         if (split.status == OVERFLOW).any():
@@ -296,7 +307,7 @@ def split(
     pins: pd.DataFrame,
     cycle_calendar: pd.DataFrame,
     settings: PlanSettings,
-) -> tuple[PlanResult, dict[str, pd.DataFrame]]:
+) -> tuple[PlanResult, dict[str, BasisShares]]:
     """The plan's split from the stage's input tables: its result and the share bases it made."""
     cycle = cycle_calendar.iloc[0]
     check_windows_fit(settings.basis_windows(), int(cycle["history_periods"]), settings.source)
@@ -310,7 +321,7 @@ def split(
         children = active_children(
             customer_spans, products, lifecycle_history, settings.share, cycle_date, keys, rows, counted=share_tables
         )
-        bases = share_basis_tables(lifecycle_history, children, products, settings, cycle_date, keys, rows)
+        bases = share_bases_of(lifecycle_history, children, products, settings, cycle_date, keys, rows)
     result = plan_measures(
         share_tables,
         parent_forecast,
@@ -355,14 +366,13 @@ def run(
     )
     plan = result.plan
     basis_fallbacks = [
-        _first_of_leaves(f)
-        .drop_duplicates(["product", "site"])
+        b.table.drop_duplicates(PARENT)
         .groupby("fallback")
         .size()
         .rename("parents")
         .reset_index()
         .assign(share_basis=n)
-        for n, f in bases.items()
+        for n, b in bases.items()
     ]
     figures = {
         "measures": ", ".join(settings.measures),
@@ -378,11 +388,3 @@ def run(
         metadata={"plan_measures": figures},
         checks=plan_checks(plan, result, settings),
     )
-
-
-def _first_of_leaves(frame: pd.DataFrame) -> pd.DataFrame:
-    """The first row of each leaf (by its `leaf_id`, when the frame has it): a parent's first row is its first
-    leaf's, so the parents' first rows are found among these few, not by hashing text keys on every row."""
-    if LEAF_ID not in frame.columns:
-        return frame
-    return frame[~frame[LEAF_ID].duplicated().to_numpy()]
