@@ -34,15 +34,7 @@ import pandas as pd
 
 from pipelines.calendar import period_ordinal, span_bounds
 from pipelines.config import CalendarConfig, PlanningConfig
-from pipelines.engines.leaf_runs import (
-    LeafRuns,
-    expand,
-    grouped_sums,
-    leaf_runs,
-    ranges_taker,
-    span_rows,
-    time_key,
-)
+from pipelines.engines.leaf_runs import LeafRuns, expand, grouped_sums, leaf_runs, ranges_taker, span_rows, time_key
 from pipelines.errors import LifecycleError
 from pipelines.keys import ID_DTYPE, LEAF, LEAF_ID, PARENT_ID, factorize, lookup
 from pipelines.results import Log, StageResult, quiet
