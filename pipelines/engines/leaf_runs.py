@@ -5,9 +5,12 @@ a rule decided per leaf (its span, its product's retirement) keeps or drops one
 range of each leaf's rows once the rows are read leaf by leaf in period order.
 `leaf_runs` reads a frame so, without moving a row when the frame is already
 grouped by leaf with ascending periods (as the cleansing stage writes it), else
-through one stable sort; `expand` turns ranges into positions, so the rows a
-stage keeps are taken by one index at the end; `span_rows` finds each leaf's
-rows inside its span by a binary search of every leaf at once.
+through one stable sort; `expand` turns ranges into positions; `ranges_taker`
+takes a column's rows of the ranges a stage keeps, as slices where the ranges
+continue each other (no index of every row: most of a history is kept in its
+own order); `span_rows` finds each leaf's rows inside its span by a binary
+search of every leaf at once; `grouped_sums` sums a column over runs of one
+group as pandas' grouped sum does, without a group code per row.
 """
 
 from __future__ import annotations
