@@ -236,23 +236,37 @@ def ids_proven(frame: pd.DataFrame) -> bool:
 
 
 def _first_rows_if_one_key(ids: np.ndarray, keys: list[np.ndarray], constant: list[np.ndarray] = ()):
-    """Positions of each id's first row when the rows of each id hold one key (the `keys` arrays, and the
-    `constant` ones too) and no two ids hold the same key; None otherwise (or when an id is negative)."""
+    """Positions of each id's first row (in id order) when the rows of each id hold one key (the `keys` arrays,
+    and the `constant` ones too) and no two ids hold the same key; None otherwise (or when an id is negative).
+
+    Judged on the runs of one id in row order: along each run the key holds (the key changes only where the id
+    does), then on one row per run, sorted by id when the runs are not in ascending id order (a table whose
+    late ids, given to children without history, sit among the others in key order): the runs of one id hold
+    one key. Only the runs' first rows are gathered and sorted, never every row."""
     if not len(ids):
         return np.zeros(0, np.int64)
     if ids.min() < 0:
         return None
-    order = None if bool(np.all(ids[1:] >= ids[:-1])) else np.argsort(ids, kind="stable")
-    run_ids = ids if order is None else ids[order]
-    new = np.r_[True, run_ids[1:] != run_ids[:-1]]
+    new = np.r_[True, ids[1:] != ids[:-1]]
     for values in [*keys, *constant]:
-        values = values if order is None else values[order]
         if values.dtype == object:  # where the key changes, a new id starts
             if not bool(new[text_changes(values)].all()):
                 return None
         elif not bool(np.all((values[1:] == values[:-1]) | new[1:])):
             return None
-    first = np.flatnonzero(new) if order is None else order[new]
+    first = np.flatnonzero(new)
+    run_ids = ids[first]
+    if not bool(np.all(run_ids[1:] > run_ids[:-1])):  # an id in several runs, or the runs out of id order
+        at = first[np.argsort(run_ids, kind="stable")]
+        starts = np.r_[True, ids[at][1:] != ids[at][:-1]]
+        for values in [*keys, *constant]:
+            values = values[at]
+            if values.dtype == object:
+                if not bool(starts[text_changes(values)].all()):
+                    return None
+            elif not bool(np.all((values[1:] == values[:-1]) | starts[1:])):
+                return None
+        first = at[starts]
     if pd.DataFrame({i: values[first] for i, values in enumerate(keys)}).duplicated().any():
         return None
     return first

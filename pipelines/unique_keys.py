@@ -151,10 +151,16 @@ def _rows_sharing(columns: list[np.ndarray], n: int) -> np.ndarray | None:
         later |= same & (values[1:] > values[:-1])
         same &= values[1:] == values[:-1]
     shared = np.zeros(n, dtype=bool)
-    if bool(np.all(later | same)):  # sorted: equal tuples are neighbours
-        shared[1:] |= same
-        shared[:-1] |= same
-        return shared
+    first = columns[0]
+    boundary = first[1:] != first[:-1]  # a new run of the first column (an id) starts at row i + 1
+    if bool(np.all(later | same | boundary)):  # sorted along each run of the first column
+        # equal tuples are neighbours when the table is sorted, or when no value of the first column is in two
+        # runs (its runs out of order: late ids among the others)
+        runs = first[np.r_[True, boundary]]
+        if bool(np.all(later | same)) or not pd.Series(runs).duplicated().any():
+            shared[1:] |= same
+            shared[:-1] |= same
+            return shared
     codes, widths = [], []
     for values in columns:
         low = int(values.min())

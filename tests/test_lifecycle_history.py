@@ -360,3 +360,76 @@ def test_span_rows_are_the_rows_active_mask_keeps():
     for k in range(40):
         got[inside[k]:after[k]] = True
     assert (got == want).all()
+
+
+@pytest.mark.parametrize("sorted_already", [True, False])
+def test_ranges_taker_gives_the_rows_expand_would_index(sorted_already):
+    """`ranges_taker` (long joined ranges copied as slices, short ones gathered) against the plain index of
+    every row (`runs.rows(expand(...))`), on ranges that continue each other, skip rows, repeat, are empty or
+    single rows, over a history in leaf order and one that needs the sort."""
+    import numpy as np
+
+    from pipelines.engines.leaf_runs import expand, leaf_runs, ranges_taker
+
+    rng = np.random.default_rng(7)
+    n_leaves, periods = 40, 90
+    keys = pd.DataFrame({"product": np.repeat([f"P{i % 7}" for i in range(n_leaves)], periods),
+                         "site": "S1", "customer": np.repeat([f"C{i:02d}" for i in range(n_leaves)], periods)})
+    frame = keys.assign(period_start=np.tile(pd.date_range("2024-01-01", periods=periods, freq="W-MON"), n_leaves))
+    if not sorted_already:
+        frame = frame.sample(frac=1.0, random_state=1).reset_index(drop=True)
+    runs = leaf_runs(frame, frame["period_start"].to_numpy())
+    assert (runs.order is None) == sorted_already
+    values = [rng.normal(size=len(frame)), frame["period_start"].to_numpy(), rng.random(len(frame)) < 0.5,
+              frame["customer"].to_numpy(object)]
+    for _ in range(30):
+        leaf = rng.choice(n_leaves, size=rng.integers(1, 3 * n_leaves))
+        if rng.random() < 0.5:
+            leaf = np.sort(leaf)  # mostly neighbouring leaves: ranges that continue each other
+        low = rng.integers(0, periods, len(leaf)) * (rng.random(len(leaf)) < 0.5)
+        high = np.maximum(low, periods - rng.integers(0, periods, len(leaf)) * (rng.random(len(leaf)) < 0.3))
+        start, length = runs.first[leaf] + low, high - low
+        take, rows = ranges_taker(runs, start, length), runs.rows(expand(start, length))
+        for v in values:
+            got = take(v)
+            assert got.dtype == v.dtype and np.array_equal(got, v[rows])
+
+
+def test_grouped_sums_are_pandas_grouped_sums_bit_for_bit():
+    """`grouped_sums` (runs of one group, Kahan's steps) against pandas' `groupby(...).sum()` of the same rows
+    (the reference: pandas' own `group_sum`), with NaN, infinities, -0.0 and values whose plain sum differs."""
+    import numpy as np
+
+    from pipelines.engines.leaf_runs import grouped_sums
+
+    rng = np.random.default_rng(3)
+    pool = np.array([0.1, 0.2, 0.3, 1e16, -1e16, np.nan, np.inf, -np.inf, 1e-300, 3.7, -0.0])
+    for trial in range(300):
+        n = int(rng.integers(1, 200))
+        values = rng.choice(pool, n) if trial % 2 else rng.normal(0, 1e8, n)
+        length = rng.integers(0, 6, n)
+        length = length[np.cumsum(length) <= n]
+        length = np.append(length, n - length.sum())
+        group = rng.integers(0, 3, len(length)).astype(np.int8)
+        want = pd.Series(values).groupby(np.repeat(group, length)).sum()
+        got = grouped_sums(values, length, group, 3)[want.index.to_numpy()]
+        assert np.array_equal(got, want.to_numpy(), equal_nan=True)
+        assert (np.signbit(got) == np.signbit(want.to_numpy())).all()
+
+
+def test_rows_and_quantity_per_origin_from_the_runs_equal_grouping_the_rows(
+    make_cleaned, make_products, make_spans, config
+):
+    """The stage's rows and quantity per origin, read from its runs of one origin, equal pandas' groupby of
+    the history's rows; and the source customer of every row is its customer."""
+    from pipelines.stages.lifecycle_history import _by_origin
+
+    products = make_products([("P0", "a", None, "2026-01-20", "P2"), ("P1", "a"), ("P2", "a")])
+    spans = make_spans([("P0", "S1", "C1"), ("P2", "S1", "C1"), ("P1", "S1", "C2"), ("P0", "S1", "C3")])
+    rows = [(p, s, c, w, q) for p, s, c in [("P0", "S1", "C1"), ("P2", "S1", "C1"), ("P1", "S1", "C2"),
+                                           ("P0", "S1", "C3")] for w, q in [(W1, 0.1), (W2, 0.2), (W3, 0.7)]]
+    res = apply_lifecycle(make_cleaned(rows), products, spans, config, CYCLE)
+    grouped = res.history.groupby("origin").agg(rows=("quantity", "size"), quantity=("quantity", "sum"))
+    pd.testing.assert_frame_equal(_by_origin(res.history, res.origin_runs), grouped.reset_index())
+    assert set(res.history["origin"]) == {"own", "successor"}
+    assert res.history["source_customer"].tolist() == res.history["customer"].tolist()

@@ -31,14 +31,21 @@ def _history(rng: np.random.Generator, rows: int) -> pd.DataFrame:
     return add_ids(frame).sort_values(["leaf_id", "period_start", "origin"], kind="stable").reset_index(drop=True)
 
 
-@pytest.mark.parametrize("order", ["sorted", "shuffled"])
+@pytest.mark.parametrize("order", ["sorted", "shuffled", "runs out of id order"])
 def test_key_unique_answers_as_pandas_duplicated_where_the_ids_match(order):
+    """`runs out of id order`: each leaf's rows together and sorted, the leaves in descending id order (as late
+    ids of children without history sit among the others), with a leaf's run split in two now and then."""
     rng = np.random.default_rng(15)
     unique_seen = duplicated_seen = 0
     for rows in [2, 5, 20, 40, 80] * 40:
         frame = _history(rng, rows).drop_duplicates(KEY) if rng.random() < 0.5 else _history(rng, rows)
         if order == "shuffled":
             frame = frame.sample(frac=1.0, random_state=int(rng.integers(1 << 30)))
+        if order == "runs out of id order":
+            frame = frame.iloc[np.argsort(-frame["leaf_id"].to_numpy(), kind="stable")]
+            if rng.random() < 0.3:  # one row moved to the end: its leaf in two runs
+                at = int(rng.integers(0, len(frame)))
+                frame = pd.concat([frame.drop(frame.index[at]), frame.iloc[[at]]])
         expected = not frame.duplicated(KEY).any()
         assert key_unique(frame, KEY) == expected
         unique_seen += expected

@@ -5,9 +5,12 @@ a rule decided per leaf (its span, its product's retirement) keeps or drops one
 range of each leaf's rows once the rows are read leaf by leaf in period order.
 `leaf_runs` reads a frame so, without moving a row when the frame is already
 grouped by leaf with ascending periods (as the cleansing stage writes it), else
-through one stable sort; `expand` turns ranges into positions, so the rows a
-stage keeps are taken by one index at the end; `span_rows` finds each leaf's
-rows inside its span by a binary search of every leaf at once.
+through one stable sort; `expand` turns ranges into positions; `ranges_taker`
+takes a column's rows of the ranges a stage keeps, as slices where the ranges
+continue each other (no index of every row: most of a history is kept in its
+own order); `span_rows` finds each leaf's rows inside its span by a binary
+search of every leaf at once; `grouped_sums` sums a column over runs of one
+group as pandas' grouped sum does, without a group code per row.
 """
 
 from __future__ import annotations
@@ -16,6 +19,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
+from numba import njit
 
 from pipelines.keys import LEAF, factorize
 from pipelines.text_codes import run_starts
@@ -90,6 +94,43 @@ def expand(start: np.ndarray, length: np.ndarray) -> np.ndarray:
     return out
 
 
+_LONG = 64  # rows from which a range of a history is copied as one slice rather than gathered row by row
+
+
+def ranges_taker(runs: LeafRuns, start: np.ndarray, length: np.ndarray):
+    """A function of a history column giving its values at the run ranges [start, start + length), one range
+    after the other (`expand`'s positions, read through `runs.rows`).
+
+    When the runs are the rows themselves, neighbouring ranges that continue each other are joined, and each
+    joined range of at least `_LONG` rows is copied as one slice into the result; the rows of the shorter ones
+    are gathered by one index of those rows only. No index of every row is built: a history that keeps most of
+    its rows in its own order is copied in a few thousand slices."""
+    if runs.order is not None:
+        rows = runs.rows(expand(start, length))
+        return lambda values: values[rows]
+    start, length = start[length > 0], length[length > 0]
+    joins = np.ones(len(start), dtype=bool)
+    joins[1:] = start[1:] != start[:-1] + length[:-1]  # a range that does not continue the one before starts anew
+    head = np.flatnonzero(joins)
+    seg_start = start[head]
+    seg_length = np.add.reduceat(length, head) if len(head) else length[:0]
+    at = np.cumsum(seg_length) - seg_length  # where each joined range lands in the result
+    long = seg_length >= _LONG
+    slices = list(zip(at[long].tolist(), seg_start[long].tolist(), seg_length[long].tolist(), strict=True))
+    short_to = expand(at[~long], seg_length[~long])
+    short_from = expand(seg_start[~long], seg_length[~long])
+    total = int(seg_length.sum())
+
+    def take(values: np.ndarray) -> np.ndarray:
+        out = np.empty(total, dtype=values.dtype)
+        for to, frm, n in slices:
+            out[to:to + n] = values[frm:frm + n]
+        out[short_to] = values[short_from]
+        return out
+
+    return take
+
+
 def first_at_least(ordinal, first: np.ndarray, end: np.ndarray, bound: np.ndarray) -> np.ndarray:
     """Per range [first, end) of run positions whose period ordinals ascend (`ordinal(positions)`): the first
     position whose ordinal is at least `bound` (`end` when none). A binary search of every range at once."""
@@ -119,3 +160,27 @@ def span_rows(runs: LeafRuns, leaf_span: np.ndarray, s_from: np.ndarray, s_to: n
     closed = has & ~np.isnan(high)
     after[closed] = first_at_least(ordinal, inside[closed], runs.end[closed], high[closed].astype(np.int64) + 1)
     return inside, np.maximum(inside, after)
+
+
+@njit(cache=True)
+def grouped_sums(values: np.ndarray, length: np.ndarray, group: np.ndarray, n_groups: int) -> np.ndarray:
+    """Per group, the sum of `values` over the runs of rows of that group (`length`: the rows of each run, one
+    run after the other; `group`: each run's group), NaN left out: pandas' grouped sum of float64 values
+    (`groupby(...).sum()`, whose `group_sum` adds the rows of a group in row order with Kahan's compensation),
+    step by step, so the same sums bit for bit, read run by run without a group code per row."""
+    total = np.zeros(n_groups)
+    compensation = np.zeros(n_groups)
+    at = 0
+    for r in range(len(length)):
+        g = group[r]
+        for i in range(at, at + length[r]):
+            value = values[i]
+            if value == value:
+                y = value - compensation[g]
+                t = total[g] + y
+                compensation[g] = t - total[g] - y
+                if compensation[g] != compensation[g]:  # an infinite value: pandas resets the compensation
+                    compensation[g] = 0.0
+                total[g] = t
+        at += length[r]
+    return total

@@ -34,7 +34,7 @@ import pandas as pd
 
 from pipelines.calendar import period_ordinal, span_bounds
 from pipelines.config import CalendarConfig, PlanningConfig
-from pipelines.engines.leaf_runs import LeafRuns, expand, leaf_runs, span_rows, time_key
+from pipelines.engines.leaf_runs import LeafRuns, expand, grouped_sums, leaf_runs, ranges_taker, span_rows, time_key
 from pipelines.errors import LifecycleError
 from pipelines.keys import ID_DTYPE, LEAF, LEAF_ID, PARENT_ID, factorize, lookup
 from pipelines.results import Log, StageResult, quiet
@@ -50,7 +50,8 @@ class LifecycleResult:
     audit: pd.DataFrame
     # (leaf_id, parent_id) of each history row: `keys.key_ids(history)`, from the ranks of the keys kept
     ids: tuple[np.ndarray, np.ndarray] | None = None
-    origin_code: np.ndarray | None = None  # per history row: its origin's row of ORIGINS (int8)
+    # the history's origins run by run: the rows of each run (one after the other) and its origin's row of ORIGINS
+    origin_runs: tuple[np.ndarray, np.ndarray] | None = None
 
 
 def resolve_successors(products: pd.DataFrame) -> pd.Series:
@@ -226,22 +227,23 @@ def apply_lifecycle(
     rank[distinct.sort_values(LEAF, kind="stable").index.to_numpy()] = np.arange(len(distinct))
     pieces = _pieces(runs, np.flatnonzero(kept), inside, length, rank[key_code][key_of_leaf], moved, starts,
                      pd.factorize(source_product, sort=True)[0])
-    rows = runs.rows(expand(pieces.start, pieces.length))
+    take = ranges_taker(runs, pieces.start, pieces.length)
     out = {c: np.repeat(all_keys[c].to_numpy()[key_of_leaf[pieces.leaf]], pieces.length) for c in LEAF}
-    out["period_start"] = starts[rows]
-    out["quantity"] = quantity[rows]
-    origin_code = np.repeat(moved[pieces.leaf].view(np.int8), pieces.length)
+    out["period_start"] = take(starts)
+    out["quantity"] = take(quantity)
+    origin_runs = (pieces.length, moved[pieces.leaf].view(np.int8))
     out["origin"] = np.repeat(ORIGINS[moved[pieces.leaf].view(np.int8)], pieces.length)
     out["source_product"] = np.repeat(source_product[pieces.leaf], pieces.length)
-    out["source_customer"] = np.repeat(leaves["customer"].to_numpy(dtype=object)[pieces.leaf], pieces.length)
-    out["shortage"] = shortage[rows]
-    del rows
+    # a moved history keeps its site and customer (only the product changes): the source customer of every row
+    # is its customer, so the column is the customer column's array itself (both only read from here on)
+    out["source_customer"] = out["customer"]
+    out["shortage"] = take(shortage)
     ranked = distinct.iloc[np.argsort(rank)].reset_index(drop=True)
     ids = tuple(np.repeat(i, pieces.length) for i in _ids_of_ranks(pieces.rank, ranked))
     audit_frame = _stack(audits, AUDIT_COLUMNS).astype({"periods": np.int64, "quantity": float})
     # the new columns become the frame as they are (the default would copy each into consolidated blocks)
     history = pd.DataFrame({c: out.pop(c) for c in HISTORY_COLUMNS}, copy=False)
-    return LifecycleResult(history, audit_frame.reset_index(drop=True), ids, origin_code)
+    return LifecycleResult(history, audit_frame.reset_index(drop=True), ids, origin_runs)
 
 
 def _ids_of_ranks(ranks: np.ndarray, ranked: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
@@ -289,7 +291,7 @@ def run(
     by_rule = audit.groupby("rule").agg(
         leaves=("customer", "size"), periods=("periods", "sum"), quantity=("quantity", "sum")
     )
-    by_origin = _by_origin(history, result.origin_code)
+    by_origin = _by_origin(history, result.origin_runs)
     return StageResult(
         outputs={"lifecycle_history": history, "lifecycle_audit": audit},
         metadata={
@@ -302,16 +304,24 @@ def run(
     )
 
 
-def _by_origin(history: pd.DataFrame, origin_code: np.ndarray | None = None) -> pd.DataFrame:
+def _by_origin(history: pd.DataFrame, origin_runs: tuple[np.ndarray, np.ndarray] | None = None) -> pd.DataFrame:
     """Rows and quantity per origin, as `groupby("origin").agg(...).reset_index()` (the same sums: pandas'
-    grouped sum, in row order), grouped on the origins' codes as categories instead of hashing every row:
-    `origin_code` (rows of ORIGINS, from the stage) or `text_codes.codes_of` of the column."""
-    code, origins = (origin_code, ORIGINS) if origin_code is not None else codes_of(history["origin"])
-    groups = pd.Categorical.from_codes(code, categories=np.arange(len(origins)))  # -1: missing, left out
-    sums = history["quantity"].groupby(groups, observed=True, sort=True).sum()
-    held = sums.index.to_numpy(np.int64)
-    out = pd.DataFrame(
-        {"origin": origins[held], "rows": np.bincount(code[code >= 0], minlength=len(origins))[held].astype(np.int64),
-         "quantity": sums.to_numpy(float)}
-    )
+    grouped sum, in row order), grouped on the origins' codes instead of hashing every row: `origin_runs`
+    (the stage's runs of one origin, rows of ORIGINS: no array of every row's code is made) or
+    `text_codes.codes_of` of the column."""
+    quantity = history["quantity"].to_numpy(float)
+    if origin_runs is not None:
+        length, code = origin_runs
+        origins = ORIGINS
+        rows = np.bincount(code, weights=length, minlength=len(origins)).astype(np.int64)
+        held = np.flatnonzero(rows)
+        sums = grouped_sums(quantity, length, code, len(origins))[held]
+    else:
+        code, origins = codes_of(history["origin"])
+        groups = pd.Categorical.from_codes(code, categories=np.arange(len(origins)))  # -1: missing, left out
+        grouped = pd.Series(quantity).groupby(groups, observed=True, sort=True).sum()
+        held = grouped.index.to_numpy(np.int64)
+        rows = np.bincount(code[code >= 0], minlength=len(origins))
+        sums = grouped.to_numpy(float)
+    out = pd.DataFrame({"origin": origins[held], "rows": rows[held].astype(np.int64), "quantity": sums})
     return out.sort_values("origin", kind="stable").reset_index(drop=True)
