@@ -191,9 +191,8 @@ def clean_history(
 
     # --- long tables
     cells = blocks.cells()
-    leaf = cells.pop("leaf")
-    columns = {c: leaves[c].to_numpy()[leaf] for c in LEAF}  # each key column taken once
-    del leaf
+    # the cells come leaf by leaf: each key repeated over its leaf's kept cells (no leaf code per cell)
+    columns = {c: np.repeat(leaves[c].to_numpy(), blocks.kept) for c in LEAF}
     # the grid's t period starts, reached by each cell's column (one gather, not a date conversion per cell)
     columns["period_start"] = ordinal_to_start(np.arange(t) + first_ord, period).to_numpy()[cells.pop("col")]
     for name in ("quantity", "raw_quantity", "lines", "filled", "corrected", "shortage"):
