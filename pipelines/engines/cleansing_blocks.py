@@ -26,7 +26,7 @@ import pandas as pd
 
 from pipelines.calendar import season_length
 from pipelines.engines.cleansing import correction_rows
-from pipelines.engines.outliers import judge_outliers, rolling_median, rule_parameters, seasonal_component
+from pipelines.engines.outliers import judge_values, rolling_median, rule_parameters, seasonal_component
 
 BLOCK_CELLS = 2_000_000  # leaf x period cells per block: about 16 MB per float64 matrix, some 20 held at once
 
@@ -197,9 +197,8 @@ def _class_rules(x, skip, name, leaf_index, settings, out: Blocks, corrected, ro
     params = rule_parameters(rule)
 
     if rule.rule != "none":
-        j = judge_outliers(np.where(skip, np.nan, x - s), rule, s)
+        j, after = judge_values(x, skip, rule, s)
         if j.flagged.any():
-            after = np.where(j.flagged, j.replacement, x)
             out.corrections.append(
                 correction_rows(
                     j.flagged, x, after, f"{rule.rule}_cap", params, leaf_index, j.figures | seasonal_figures, adjusted
