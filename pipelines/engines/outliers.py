@@ -332,15 +332,22 @@ def judge_values(
     hampel_rule = rule.rule == "hampel"
     s = np.ascontiguousarray(seasonal, dtype=np.float64) if np.ndim(seasonal) else np.zeros((0, 0))
     first, second, third, flagged, after = judge_rows(
-        np.ascontiguousarray(x, dtype=np.float64), np.ascontiguousarray(skip, dtype=bool), s, int(rule.window),
-        0 if hampel_rule else 1, rule.k * MAD_SCALE if hampel_rule else float(rule.fence), rule.sides == "both",
+        np.ascontiguousarray(x, dtype=np.float64),
+        np.ascontiguousarray(skip, dtype=bool),
+        s,
+        int(rule.window),
+        0 if hampel_rule else 1,
+        rule.k * MAD_SCALE if hampel_rule else float(rule.fence),
+        rule.sides == "both",
         rule.replace_with == "median",
     )
     if hampel_rule:
         figures = {"median": first, "limit_scale": _AtCells(lambda at: rule.k * MAD_SCALE * second[at])}
     else:
         figures = {
-            "q1": first, "median": second, "q3": third,
+            "q1": first,
+            "median": second,
+            "q3": third,
             "lower": _AtCells(lambda at: tukey_fences(first[at], third[at], rule.fence)[0]),
             "upper": _AtCells(lambda at: tukey_fences(first[at], third[at], rule.fence)[1]),
         }
