@@ -80,9 +80,9 @@ def codes_of(values, use_na_sentinel: bool = True) -> tuple[np.ndarray, np.ndarr
         return codes.astype(np.int64, copy=False), np.asarray(uniques)
     where = addresses(values, copy=False)  # `values` is held till the codes are made
     change = np.ones(n, dtype=bool)
-    change[1:] = where[1:] != where[:-1]
-    starts = np.flatnonzero(change)
-    if len(starts) * RUNS_SHARE <= n:
+    np.not_equal(where[1:], where[:-1], out=change[1:])
+    if np.count_nonzero(change) * RUNS_SHARE <= n:  # counted first: short runs need no list of their starts
+        starts = np.flatnonzero(change)
         codes, uniques = pd.factorize(values[starts], use_na_sentinel=use_na_sentinel)
         return np.repeat(codes.astype(np.int64), np.diff(np.append(starts, n))), np.asarray(uniques)
     object_code = pd.factorize(where)[0]

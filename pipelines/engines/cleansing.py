@@ -85,7 +85,6 @@ def reject_lines(
     unparsed = day.take(day.value_nat)
     mark(day.take(day.value_nat & (day.outside == 0)), "bad_date")
     qty_code, qty_values = distinct_quantities(raw["quantity"])
-    qty = qty_values[qty_code]
     mark((~np.isfinite(qty_values))[qty_code], "bad_quantity")
     size = np.abs(np.nan_to_num(qty_values, nan=0.0, posinf=0.0, neginf=0.0))
     mark((size > plausible.max_abs_quantity)[qty_code], "quantity_out_of_bounds")
@@ -137,7 +136,7 @@ def reject_lines(
         run_leaf[run_used] = pd.factorize(run_code[run_used])[0]
         leaf_code = spread(run_leaf)[ok]
     leaves = raw.iloc[at[first_appearances(leaf_code)]][LEAF].reset_index(drop=True) if len(at) else raw[LEAF].iloc[0:0]
-    used = UsedLines(leaf_code, leaves.reset_index(drop=True), ordinals[ok], qty[ok])
+    used = UsedLines(leaf_code, leaves.reset_index(drop=True), ordinals[at], qty_values[qty_code[at]])
     rejected = raw.loc[~ok].drop(columns=["read_error"], errors="ignore").copy()
     rejected["reason"] = np.array([None, *reasons], dtype=object)[reason[~ok]]
     return used, rejected.reset_index(drop=True), cycle_date
@@ -179,7 +178,10 @@ def _repeated_in_earlier_file(
     day = same_value[0]
     n_days, slots = int(day.max(initial=0)) + 1, len(files) + 1
     if slots * n_days <= 4 * len(raw) + 1_000_000:  # a file x date table of counts, a spare cell for the others
-        cell = np.where(candidate, (file_code + 1) * n_days + day, slots * n_days)
+        cell = file_code + 1  # (file_code + 1) * n_days + day, or the spare cell: one array, made in place
+        cell *= n_days
+        cell += day
+        cell[~candidate] = slots * n_days
         held = np.bincount(cell, minlength=slots * n_days + 1)[:-1].reshape(slots, n_days) > 0
         shared_day = held.sum(axis=0) > 1
         at = np.flatnonzero(candidate & shared_day[day])

@@ -190,7 +190,7 @@ class DistinctDates:
 def distinct_dates(text: pd.Series) -> DistinctDates:
     """`parse_dates` and `year_outside` of each distinct cell of `text` (a missing cell: no date, not outside)."""
     code, cells = codes_of(text)
-    code = np.where(code < 0, len(cells), code)
+    code[code < 0] = len(cells)  # in place: the codes are this function's own
     parsed = parse_dates(pd.Series(cells, dtype=text.dtype)).to_numpy(dtype="datetime64[ns]")
     value = np.append(parsed, np.datetime64("NaT", "ns"))
     nat = np.isnat(value)
