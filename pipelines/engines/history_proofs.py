@@ -167,7 +167,10 @@ def accounted_lines(raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: pd.DataF
     width = int(max(raw_row.max(initial=0), rej_row.max(initial=0))) - low + 1
     if float(len(files) + len(rejected) + 1) * width >= 2.0**62:
         return None
-    raw_id = raw_file * width + (raw_row - low)
+    raw_id = raw_file  # raw_file * width + (raw_row - low), made in place in the codes (this function's own)
+    raw_id *= width
+    raw_id += raw_row
+    raw_id -= low
     rej_id = rej_file * width + (rej_row - low)
     twice = pd.Series(rej_id).duplicated(keep="first").to_numpy()
     if len(files) * width <= 4 * len(raw) + 1_000_000:  # the lines as a dense file x row table, marked
