@@ -58,13 +58,16 @@ def reject_lines(
     period = calendar.period
     reason = np.zeros(len(raw), dtype=np.int16)  # 0: no reason yet, else 1 + its place in `reasons`
     reasons: list[str] = []
+    free = np.ones(len(raw), dtype=bool)  # reason == 0, kept in place as lines are marked
+    hit = np.empty(len(raw), dtype=bool)  # one buffer for every rule's newly marked lines
 
     def mark(mask, why) -> None:
-        mask = np.asarray(mask, dtype=bool) & (reason == 0)
-        if mask.any():
+        np.logical_and(mask, free, out=hit)
+        if hit.any():
             if why not in reasons:
                 reasons.append(why)
-            reason[mask] = reasons.index(why) + 1
+            reason[hit] = reasons.index(why) + 1
+            np.greater(free, hit, out=free)  # free & ~hit
 
     if "read_error" in raw.columns:
         for why, mask in _read_errors(raw["read_error"]):
@@ -100,11 +103,11 @@ def reject_lines(
     mark(spread(~pd.Series(run_code).isin(codes[1]).to_numpy()), "no_customer_span")
     del codes
     same_value = (day.take(day.value_code), qty_code, pd.factorize(qty_values, use_na_sentinel=False)[0])
-    mark(_repeated_in_earlier_file(raw, line_code, same_value, reason == 0), "duplicate_of_other_file")
+    mark(_repeated_in_earlier_file(raw, line_code, same_value, free), "duplicate_of_other_file")
 
     # the cycle date: given, or the period after the trusted end of the usable lines
     has_date = ~unparsed
-    ok = (reason == 0) & has_date
+    ok = free & has_date
     ordinals = day.take(day.ordinals(period))  # 0 for a line without a date: never read (it is rejected)
     gap = gap_periods(plausible.isolation_gap_years, period)
     last = None
@@ -120,13 +123,13 @@ def reject_lines(
     values = pd.Series(day.value)
     mark(day.take((values < lowest).to_numpy() | (day.outside < 0)), "date_before_window")
     mark(day.take((values >= highest).to_numpy() | (day.outside > 0)), "date_after_window")
-    history = (reason == 0) & (ordinals < cycle_ord) & has_date
+    history = free & (ordinals < cycle_ord) & has_date
     if history.any():
         first_ord = trusted_extent(ordinals[history], gap, trim_end=False)[0] if first_period is None else first_period
         mark(history & (ordinals < first_ord), "isolated_date")
-    mark((reason == 0) & has_date & (ordinals >= cycle_ord), "on_or_after_cycle_date")
+    mark(has_date & (ordinals >= cycle_ord), "on_or_after_cycle_date")
 
-    ok = reason == 0
+    ok = free
     at = np.flatnonzero(ok)
     if starts is None:
         leaf_code = pd.factorize(line_code[ok])[0].astype(np.int64)
