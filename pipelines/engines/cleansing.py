@@ -133,12 +133,15 @@ def reject_lines(
     at = np.flatnonzero(ok)
     if starts is None:
         leaf_code = pd.factorize(line_code[ok])[0].astype(np.int64)
+        first_used = first_appearances(leaf_code)  # each leaf's first used line (a place in `at`)
     else:  # numbered by first appearance among the used lines = among the runs holding one, coded per run
-        run_used = np.logical_or.reduceat(ok, starts) if len(starts) else np.zeros(0, dtype=bool)
-        run_leaf = np.full(len(starts), -1, dtype=np.int64)
-        run_leaf[run_used] = pd.factorize(run_code[run_used])[0]
-        leaf_code = spread(run_leaf)[ok]
-    leaves = raw.iloc[at[first_appearances(leaf_code)]][LEAF].reset_index(drop=True) if len(at) else raw[LEAF].iloc[0:0]
+        per_run = np.add.reduceat(ok, starts, dtype=np.int64) if len(starts) else np.zeros(0, dtype=np.int64)
+        used_runs = np.flatnonzero(per_run)
+        leaf_of_run = pd.factorize(run_code[used_runs])[0].astype(np.int64)
+        leaf_code = np.repeat(leaf_of_run, per_run[used_runs])  # the used lines' codes, run by run
+        run_first = np.cumsum(per_run)[used_runs] - per_run[used_runs]  # each used run's first used line
+        first_used = run_first[first_appearances(leaf_of_run)]
+    leaves = raw.iloc[at[first_used]][LEAF].reset_index(drop=True) if len(at) else raw[LEAF].iloc[0:0]
     used = UsedLines(leaf_code, leaves.reset_index(drop=True), ordinals[at], qty_values[qty_code[at]])
     rejected = raw.loc[~ok].drop(columns=["read_error"], errors="ignore").copy()
     rejected["reason"] = np.array([None, *reasons], dtype=object)[reason[~ok]]

@@ -170,7 +170,10 @@ def clean_history(
     leaves = used.leaves
     first_ord = first if first is not None else int(used.ordinal.min()) if len(used.leaf_code) else cycle_ord - 1
     t = cycle_ord - first_ord  # periods in the grid: first history period .. cycle - 1
-    lines = Lines.of(used.leaf_code, (used.ordinal - first_ord).astype(np.int32), used.quantity)
+    col = used.ordinal  # the grid column of each line, made in place (the ordinals are not read again)
+    col -= first_ord
+    lines = Lines.of(used.leaf_code, col.astype(np.int32), used.quantity)
+    del col
     del used  # the lines live on grouped by leaf only
     first_line = lines.first_col(len(leaves))
     from_ord, to_ord = span_bounds(spans, period)
