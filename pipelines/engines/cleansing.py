@@ -99,7 +99,10 @@ def reject_lines(
         codes = factorize(pd.concat([keyed[LEAF], spans[LEAF]], ignore_index=True), LEAF)[0]
         codes = codes[: len(keyed)], codes[len(keyed) :]
     run_code = codes[0]
-    line_code = spread(run_code)
+
+    def line_code(rows: np.ndarray) -> np.ndarray:  # the key code of the lines `rows` (from their runs)
+        return run_code[rows] if starts is None else run_code[np.searchsorted(starts, rows, side="right") - 1]
+
     mark(spread(~pd.Series(run_code).isin(codes[1]).to_numpy()), "no_customer_span")
     del codes
     same_value = (day.take(day.value_code), qty_code, pd.factorize(qty_values, use_na_sentinel=False)[0])
@@ -132,7 +135,7 @@ def reject_lines(
     ok = free
     at = np.flatnonzero(ok)
     if starts is None:
-        leaf_code = pd.factorize(line_code[ok])[0].astype(np.int64)
+        leaf_code = pd.factorize(run_code[ok])[0].astype(np.int64)  # no runs: a code per line
         first_used = first_appearances(leaf_code)  # each leaf's first used line (a place in `at`)
     else:  # numbered by first appearance among the used lines = among the runs holding one, coded per run
         per_run = np.add.reduceat(ok, starts, dtype=np.int64) if len(starts) else np.zeros(0, dtype=np.int64)
@@ -162,16 +165,17 @@ def _key_runs(raw: pd.DataFrame) -> tuple[pd.DataFrame, np.ndarray | None]:
 
 
 def _repeated_in_earlier_file(
-    raw: pd.DataFrame, line_code: np.ndarray, same_value: tuple[np.ndarray, np.ndarray, np.ndarray],
+    raw: pd.DataFrame, line_code, same_value: tuple[np.ndarray, np.ndarray, np.ndarray],
     candidate: np.ndarray,
 ) -> np.ndarray:
     """True for a line whose keys, date and quantity (parsed) are those of a line of an earlier file.
 
     Files come in the order they were read (sorted by name); repeats inside one
     file are separate shipments and stay. Only `candidate` lines are compared;
-    `line_code` is equal exactly where two lines' keys are, `same_value` (date
-    code per line; quantity cell per line and the code of each cell's parsed
-    quantity) exactly where their parsed date and quantity are.
+    `line_code(rows)` (the key code of those lines) is equal exactly where two
+    lines' keys are, `same_value` (date code per line; quantity cell per line
+    and the code of each cell's parsed quantity) exactly where their parsed
+    date and quantity are.
     """
     out = np.zeros(len(raw), dtype=bool)
     if "source_file" not in raw.columns or not candidate.any():
@@ -200,7 +204,7 @@ def _repeated_in_earlier_file(
         at = at[shared_day[day[at]]]
     if not len(at):
         return out
-    parts = [line_code[at], same_value[0][at], same_value[2][same_value[1][at]]]
+    parts = [line_code(at), same_value[0][at], same_value[2][same_value[1][at]]]
     file = file_code[at]
     group = pack_codes(parts, [int(part.max()) + 1 for part in parts])
     if group is not None:
