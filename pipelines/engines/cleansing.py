@@ -32,7 +32,7 @@ class UsedLines:
 
     leaf_code: np.ndarray  # int64 per line, 0..len(leaves) - 1
     leaves: pd.DataFrame  # product, site, customer of each code
-    ordinal: np.ndarray  # int64 period number per line
+    ordinal: np.ndarray  # int32 period number per line
     quantity: np.ndarray  # float64 per line
 
 
@@ -111,7 +111,7 @@ def reject_lines(
     # the cycle date: given, or the period after the trusted end of the usable lines
     has_date = ~unparsed
     ok = free & has_date
-    ordinals = day.take(day.ordinals(period))  # 0 for a line without a date: never read (it is rejected)
+    ordinals = day.take(day.ordinals(period).astype(np.int32))  # int32; 0 for a line without a date (rejected)
     gap = gap_periods(plausible.isolation_gap_years, period)
     last = None
     if ok.any() and calendar.cycle_date == LATEST_COMPLETE_PERIOD:

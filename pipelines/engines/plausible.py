@@ -116,7 +116,8 @@ def trusted_extent(ordinals: np.ndarray, gap_periods: int, *, trim_end: bool = T
     """
     if len(ordinals) == 0:
         return None, None
-    periods, counts = _period_counts(np.asarray(ordinals, dtype=np.int64))
+    ordinals = np.asarray(ordinals)  # any integer type as given (no copy of the lines' ordinals)
+    periods, counts = _period_counts(ordinals if ordinals.dtype.kind in "iu" else ordinals.astype(np.int64))
     limit = max(1.0, ISOLATED_SHARE * counts.sum())
     breaks = np.flatnonzero(np.diff(periods) > gap_periods)  # a gap after periods[b]
     lo, hi = 0, len(periods) - 1

@@ -172,7 +172,7 @@ def clean_history(
     t = cycle_ord - first_ord  # periods in the grid: first history period .. cycle - 1
     col = used.ordinal  # the grid column of each line, made in place (the ordinals are not read again)
     col -= first_ord
-    lines = Lines.of(used.leaf_code, col.astype(np.int32), used.quantity)
+    lines = Lines.of(used.leaf_code, col.astype(np.int32, copy=False), used.quantity)
     del col
     del used  # the lines live on grouped by leaf only
     first_line = lines.first_col(len(leaves))
