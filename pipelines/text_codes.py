@@ -23,6 +23,7 @@ import pandas as pd
 
 RUNS_SHARE = 4  # hash the run starts when there are at most 1/RUNS_SHARE as many runs as rows
 RUN_BLOCK = 1 << 20  # rows compared at a time by `run_starts`
+OBJECTS_SHARE = 64  # read the distinct objects at their addresses when there are at most 1/OBJECTS_SHARE as many
 
 
 def addresses(values: np.ndarray, copy: bool = True) -> np.ndarray:
@@ -80,12 +81,27 @@ def codes_of(values, use_na_sentinel: bool = True) -> tuple[np.ndarray, np.ndarr
         return codes.astype(np.int64, copy=False), np.asarray(uniques)
     where = addresses(values, copy=False)  # `values` is held till the codes are made
     change = np.ones(n, dtype=bool)
-    change[1:] = where[1:] != where[:-1]
-    starts = np.flatnonzero(change)
-    if len(starts) * RUNS_SHARE <= n:
+    np.not_equal(where[1:], where[:-1], out=change[1:])
+    if np.count_nonzero(change) * RUNS_SHARE <= n:  # counted first: short runs need no list of their starts
+        starts = np.flatnonzero(change)
         codes, uniques = pd.factorize(values[starts], use_na_sentinel=use_na_sentinel)
         return np.repeat(codes.astype(np.int64), np.diff(np.append(starts, n))), np.asarray(uniques)
-    object_code = pd.factorize(where)[0]
-    first = first_appearances(object_code)
-    codes, uniques = pd.factorize(values[first], use_na_sentinel=use_na_sentinel)
-    return codes.astype(np.int64)[object_code], np.asarray(uniques)
+    object_code, objects = pd.factorize(where)
+    if len(objects) * OBJECTS_SHARE <= n:  # few objects: each read at its address, no pass for first appearances
+        firsts = objects_at(objects)
+    else:
+        firsts = values[first_appearances(object_code)]
+    codes, uniques = pd.factorize(firsts, use_na_sentinel=use_na_sentinel)
+    codes = codes.astype(np.int64)
+    if np.array_equal(codes, np.arange(len(codes))):  # each object a new text: the text codes are the objects'
+        return object_code.astype(np.int64, copy=False), np.asarray(uniques)
+    return codes[object_code], np.asarray(uniques)
+
+
+def objects_at(where: np.ndarray) -> np.ndarray:
+    """The objects at the addresses `where` (`addresses` of cells of an array the caller still holds), in order:
+    each object itself, as the cell holding it would give it."""
+    out = np.empty(len(where), dtype=object)
+    for i, address in enumerate(where.tolist()):
+        out[i] = ctypes.cast(address, ctypes.py_object).value
+    return out

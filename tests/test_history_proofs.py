@@ -36,6 +36,21 @@ def test_codes_of_is_pd_factorize(seed):
         assert [str(u) for u in uniques] == [str(u) for u in want_uniques]
 
 
+@pytest.mark.parametrize("pool", [["x", "y", "z"], ["x", "y", None, "x2"], ["a", "".join(["a"]), "b", np.nan]])
+def test_codes_of_few_objects_in_short_runs_is_pd_factorize(pool):
+    """Cells in short runs of few objects (each object read at its address): texts only (the objects' own codes),
+    missing cells, and one text in two distinct objects (a code shared by two objects)."""
+    rng = np.random.default_rng(len(pool))
+    cells = np.empty(len(pool), dtype=object)
+    cells[:] = pool
+    values = cells[rng.integers(0, len(pool), 5000)]
+    for sentinel in (True, False):
+        codes, uniques = codes_of(values, use_na_sentinel=sentinel)
+        want, want_uniques = pd.factorize(values, use_na_sentinel=sentinel)
+        assert codes.dtype == np.int64 and codes.tolist() == want.tolist()
+        assert [str(u) for u in uniques] == [str(u) for u in want_uniques]
+
+
 def test_keys_factorize_through_runs_is_the_packed_coding():
     rng = np.random.default_rng(3)
     leaves = [("P%d" % (i % 7), "S%d" % (i % 3), "C%d" % i) for i in range(60)]

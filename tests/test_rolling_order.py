@@ -82,3 +82,39 @@ def test_an_empty_matrix():
     for shape in ((0, 5), (3, 0)):
         out = rolling(np.zeros(shape), 3, 1)
         assert all(o.shape == shape for o in out)
+
+
+@pytest.mark.parametrize(
+    "rule",
+    [
+        {"rule": "hampel", "window": 7, "k": 3.0, "replace_with": "limit", "sides": "upper"},
+        {"rule": "hampel", "window": 5, "k": 2.0, "replace_with": "median", "sides": "both"},
+        {"rule": "tukey", "window": 9, "fence": 1.5, "replace_with": "limit", "sides": "both"},
+        {"rule": "tukey", "window": 7, "fence": 0.5, "replace_with": "median", "sides": "upper"},
+    ],
+)
+def test_the_compiled_judgement_gives_numpys_flags_values_and_figures_bit_for_bit(rule, monkeypatch):
+    """`judge_values` on a matrix the compiled sweep takes (`rolling_order.judge_rows`: statistics, limits and
+    replacement in one pass) against the numpy path of `judge_outliers` on the judged matrix, seasonal or not."""
+    from pipelines.config_sections import OutlierConfig
+    from pipelines.engines import outliers
+
+    config = OutlierConfig(**rule)
+    rng = np.random.default_rng(13)
+    flagged = 0
+    for x, _ in matrices(14):
+        skip = rng.random(x.shape) < 0.1
+        for seasonal in (0.0, np.round(rng.normal(0.0, 5.0, x.shape), 1)):
+            monkeypatch.setattr(outliers, "CHUNK_CELLS", 10**12)  # numpy's sort
+            by_sort, after_sort = outliers.judge_values(x, skip, config, seasonal)
+            monkeypatch.setattr(outliers, "CHUNK_CELLS", 0)  # the compiled judgement
+            by_sweep, after_sweep = outliers.judge_values(x, skip, config, seasonal)
+            assert same_bits(by_sort.flagged, by_sweep.flagged)
+            assert same_bits(after_sort, after_sweep)
+            i, j = np.nonzero(by_sort.flagged)
+            assert set(by_sort.figures) == set(by_sweep.figures)
+            for name, figure in by_sort.figures.items():
+                assert same_bits(figure[i, j], by_sweep.figures[name][i, j]), name
+            assert same_bits(after_sweep[~by_sweep.flagged], x[~by_sweep.flagged])  # the rest untouched
+            flagged += int(by_sweep.flagged.sum())
+    assert flagged > 20  # the rule did flag values to compare

@@ -32,7 +32,7 @@ class UsedLines:
 
     leaf_code: np.ndarray  # int64 per line, 0..len(leaves) - 1
     leaves: pd.DataFrame  # product, site, customer of each code
-    ordinal: np.ndarray  # int64 period number per line
+    ordinal: np.ndarray  # int32 period number per line
     quantity: np.ndarray  # float64 per line
 
 
@@ -58,13 +58,16 @@ def reject_lines(
     period = calendar.period
     reason = np.zeros(len(raw), dtype=np.int16)  # 0: no reason yet, else 1 + its place in `reasons`
     reasons: list[str] = []
+    free = np.ones(len(raw), dtype=bool)  # reason == 0, kept in place as lines are marked
+    hit = np.empty(len(raw), dtype=bool)  # one buffer for every rule's newly marked lines
 
     def mark(mask, why) -> None:
-        mask = np.asarray(mask, dtype=bool) & (reason == 0)
-        if mask.any():
+        np.logical_and(mask, free, out=hit)
+        if hit.any():
             if why not in reasons:
                 reasons.append(why)
-            reason[mask] = reasons.index(why) + 1
+            reason[hit] = reasons.index(why) + 1
+            np.greater(free, hit, out=free)  # free & ~hit
 
     if "read_error" in raw.columns:
         for why, mask in _read_errors(raw["read_error"]):
@@ -85,7 +88,6 @@ def reject_lines(
     unparsed = day.take(day.value_nat)
     mark(day.take(day.value_nat & (day.outside == 0)), "bad_date")
     qty_code, qty_values = distinct_quantities(raw["quantity"])
-    qty = qty_values[qty_code]
     mark((~np.isfinite(qty_values))[qty_code], "bad_quantity")
     size = np.abs(np.nan_to_num(qty_values, nan=0.0, posinf=0.0, neginf=0.0))
     mark((size > plausible.max_abs_quantity)[qty_code], "quantity_out_of_bounds")
@@ -97,16 +99,19 @@ def reject_lines(
         codes = factorize(pd.concat([keyed[LEAF], spans[LEAF]], ignore_index=True), LEAF)[0]
         codes = codes[: len(keyed)], codes[len(keyed) :]
     run_code = codes[0]
-    line_code = spread(run_code)
+
+    def line_code(rows: np.ndarray) -> np.ndarray:  # the key code of the lines `rows` (from their runs)
+        return run_code[rows] if starts is None else run_code[np.searchsorted(starts, rows, side="right") - 1]
+
     mark(spread(~pd.Series(run_code).isin(codes[1]).to_numpy()), "no_customer_span")
     del codes
     same_value = (day.take(day.value_code), qty_code, pd.factorize(qty_values, use_na_sentinel=False)[0])
-    mark(_repeated_in_earlier_file(raw, line_code, same_value, reason == 0), "duplicate_of_other_file")
+    mark(_repeated_in_earlier_file(raw, line_code, same_value, free), "duplicate_of_other_file")
 
     # the cycle date: given, or the period after the trusted end of the usable lines
     has_date = ~unparsed
-    ok = (reason == 0) & has_date
-    ordinals = day.take(day.ordinals(period))  # 0 for a line without a date: never read (it is rejected)
+    ok = free & has_date
+    ordinals = day.take(day.ordinals(period).astype(np.int32))  # int32; 0 for a line without a date (rejected)
     gap = gap_periods(plausible.isolation_gap_years, period)
     last = None
     if ok.any() and calendar.cycle_date == LATEST_COMPLETE_PERIOD:
@@ -121,23 +126,26 @@ def reject_lines(
     values = pd.Series(day.value)
     mark(day.take((values < lowest).to_numpy() | (day.outside < 0)), "date_before_window")
     mark(day.take((values >= highest).to_numpy() | (day.outside > 0)), "date_after_window")
-    history = (reason == 0) & (ordinals < cycle_ord) & has_date
+    history = free & (ordinals < cycle_ord) & has_date
     if history.any():
         first_ord = trusted_extent(ordinals[history], gap, trim_end=False)[0] if first_period is None else first_period
         mark(history & (ordinals < first_ord), "isolated_date")
-    mark((reason == 0) & has_date & (ordinals >= cycle_ord), "on_or_after_cycle_date")
+    mark(has_date & (ordinals >= cycle_ord), "on_or_after_cycle_date")
 
-    ok = reason == 0
+    ok = free
     at = np.flatnonzero(ok)
     if starts is None:
-        leaf_code = pd.factorize(line_code[ok])[0].astype(np.int64)
+        leaf_code = pd.factorize(run_code[ok])[0].astype(np.int64)  # no runs: a code per line
+        first_used = first_appearances(leaf_code)  # each leaf's first used line (a place in `at`)
     else:  # numbered by first appearance among the used lines = among the runs holding one, coded per run
-        run_used = np.logical_or.reduceat(ok, starts) if len(starts) else np.zeros(0, dtype=bool)
-        run_leaf = np.full(len(starts), -1, dtype=np.int64)
-        run_leaf[run_used] = pd.factorize(run_code[run_used])[0]
-        leaf_code = spread(run_leaf)[ok]
-    leaves = raw.iloc[at[first_appearances(leaf_code)]][LEAF].reset_index(drop=True) if len(at) else raw[LEAF].iloc[0:0]
-    used = UsedLines(leaf_code, leaves.reset_index(drop=True), ordinals[ok], qty[ok])
+        per_run = np.add.reduceat(ok, starts, dtype=np.int64) if len(starts) else np.zeros(0, dtype=np.int64)
+        used_runs = np.flatnonzero(per_run)
+        leaf_of_run = pd.factorize(run_code[used_runs])[0].astype(np.int64)
+        leaf_code = np.repeat(leaf_of_run, per_run[used_runs])  # the used lines' codes, run by run
+        run_first = np.cumsum(per_run)[used_runs] - per_run[used_runs]  # each used run's first used line
+        first_used = run_first[first_appearances(leaf_of_run)]
+    leaves = raw.iloc[at[first_used]][LEAF].reset_index(drop=True) if len(at) else raw[LEAF].iloc[0:0]
+    used = UsedLines(leaf_code, leaves.reset_index(drop=True), ordinals[at], qty_values[qty_code[at]])
     rejected = raw.loc[~ok].drop(columns=["read_error"], errors="ignore").copy()
     rejected["reason"] = np.array([None, *reasons], dtype=object)[reason[~ok]]
     return used, rejected.reset_index(drop=True), cycle_date
@@ -157,16 +165,17 @@ def _key_runs(raw: pd.DataFrame) -> tuple[pd.DataFrame, np.ndarray | None]:
 
 
 def _repeated_in_earlier_file(
-    raw: pd.DataFrame, line_code: np.ndarray, same_value: tuple[np.ndarray, np.ndarray, np.ndarray],
+    raw: pd.DataFrame, line_code, same_value: tuple[np.ndarray, np.ndarray, np.ndarray],
     candidate: np.ndarray,
 ) -> np.ndarray:
     """True for a line whose keys, date and quantity (parsed) are those of a line of an earlier file.
 
     Files come in the order they were read (sorted by name); repeats inside one
     file are separate shipments and stay. Only `candidate` lines are compared;
-    `line_code` is equal exactly where two lines' keys are, `same_value` (date
-    code per line; quantity cell per line and the code of each cell's parsed
-    quantity) exactly where their parsed date and quantity are.
+    `line_code(rows)` (the key code of those lines) is equal exactly where two
+    lines' keys are, `same_value` (date code per line; quantity cell per line
+    and the code of each cell's parsed quantity) exactly where their parsed
+    date and quantity are.
     """
     out = np.zeros(len(raw), dtype=bool)
     if "source_file" not in raw.columns or not candidate.any():
@@ -179,7 +188,10 @@ def _repeated_in_earlier_file(
     day = same_value[0]
     n_days, slots = int(day.max(initial=0)) + 1, len(files) + 1
     if slots * n_days <= 4 * len(raw) + 1_000_000:  # a file x date table of counts, a spare cell for the others
-        cell = np.where(candidate, (file_code + 1) * n_days + day, slots * n_days)
+        cell = file_code + 1  # (file_code + 1) * n_days + day, or the spare cell: one array, made in place
+        cell *= n_days
+        cell += day
+        cell[~candidate] = slots * n_days
         held = np.bincount(cell, minlength=slots * n_days + 1)[:-1].reshape(slots, n_days) > 0
         shared_day = held.sum(axis=0) > 1
         at = np.flatnonzero(candidate & shared_day[day])
@@ -192,7 +204,7 @@ def _repeated_in_earlier_file(
         at = at[shared_day[day[at]]]
     if not len(at):
         return out
-    parts = [line_code[at], same_value[0][at], same_value[2][same_value[1][at]]]
+    parts = [line_code(at), same_value[0][at], same_value[2][same_value[1][at]]]
     file = file_code[at]
     group = pack_codes(parts, [int(part.max()) + 1 for part in parts])
     if group is not None:

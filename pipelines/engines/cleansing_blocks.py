@@ -26,7 +26,7 @@ import pandas as pd
 
 from pipelines.calendar import season_length
 from pipelines.engines.cleansing import correction_rows
-from pipelines.engines.outliers import judge_outliers, rolling_median, rule_parameters, seasonal_component
+from pipelines.engines.outliers import judge_values, rolling_median, rule_parameters, seasonal_component
 
 BLOCK_CELLS = 2_000_000  # leaf x period cells per block: about 16 MB per float64 matrix, some 20 held at once
 
@@ -69,39 +69,42 @@ class Lines:
         return self.leaf[lo:hi] - a, self.col[lo:hi], self.quantity[lo:hi]
 
 
+CELL_COLUMNS = (  # the kept cells' columns and their types, in the order of cleaned_history
+    ("col", np.int32),
+    ("quantity", np.float64),
+    ("raw_quantity", np.float64),
+    ("lines", np.int64),
+    ("filled", bool),
+    ("corrected", bool),
+    ("shortage", bool),
+)
+
+
 @dataclass
 class Blocks:
-    """What leaves the blocks: the kept cells (in leaf code, then period order), the corrections, the figures."""
+    """What leaves the blocks: the kept cells (in leaf code, then period order), the corrections, the figures.
 
-    leaf: list = field(default_factory=list)
-    col: list = field(default_factory=list)
-    quantity: list = field(default_factory=list)
-    raw_quantity: list = field(default_factory=list)
-    lines: list = field(default_factory=list)
-    filled: list = field(default_factory=list)
-    corrected: list = field(default_factory=list)
-    shortage: list = field(default_factory=list)
+    Each block writes its kept cells straight into one array per column, allocated once for every leaf x
+    period cell (`kept` <= that, so the arrays are never grown; pages never written cost no memory), and
+    counts them per leaf: no piece per block to join, no leaf code per cell."""
+
+    columns: dict = field(default_factory=dict)  # name -> array of n_leaves x t cells, the first `size` written
+    kept: np.ndarray | None = None  # kept cells per leaf (int64)
+    size: int = 0
     corrections: list = field(default_factory=list)
     seasonal_series: dict = field(default_factory=dict)
     flagged: np.ndarray | None = None  # children flagged per parent and period (shortage records)
 
+    @classmethod
+    def sized(cls, n_leaves: int, t: int) -> Blocks:
+        return cls(
+            columns={name: np.empty(n_leaves * t, dtype=dtype) for name, dtype in CELL_COLUMNS},
+            kept=np.zeros(n_leaves, dtype=np.int64),
+        )
+
     def cells(self) -> dict[str, np.ndarray]:
-        """The kept cells' columns, each one array (the block pieces freed as they are joined)."""
-        out = {}
-        for name, dtype in (
-            ("leaf", np.int64),
-            ("col", np.int32),
-            ("quantity", float),
-            ("raw_quantity", float),
-            ("lines", np.int64),
-            ("filled", bool),
-            ("corrected", bool),
-            ("shortage", bool),
-        ):
-            pieces = getattr(self, name)
-            out[name] = np.concatenate(pieces).astype(dtype, copy=False) if pieces else np.zeros(0, dtype=dtype)
-            pieces.clear()
-        return out
+        """The kept cells' columns (views of the written part of each array)."""
+        return {name: self.columns[name][: self.size] for name, _ in CELL_COLUMNS}
 
 
 @dataclass(frozen=True)
@@ -120,7 +123,7 @@ def clean_blocks(lines: Lines, grid: Grid, settings, block_cells: int = BLOCK_CE
     """Rules 2-7 of the cleansing (bucketing to shortage handling), a block of leaves at a time."""
     n, t = len(grid.start), grid.t
     step = max(1, block_cells // max(t, 1))
-    out = Blocks()
+    out = Blocks.sized(n, t)
     flagged = np.zeros(grid.short_by_parent.shape, dtype=np.int64)
     for a in range(0, n, step):  # a loop over blocks of leaves, not over series
         b = min(n, a + step)
@@ -162,16 +165,21 @@ def _clean_block(block, a: int, b: int, grid: Grid, settings, out: Blocks, flagg
         x = _class_rules(values[rows], short[rows], name, rows + a, settings, out, corrected, rows)
         values[rows] = x
 
-    at = np.flatnonzero(keep)  # the kept cells, row by row: one flat gather per column
-    li, pj = np.divmod(at, t)
-    out.leaf.append(li + a)
-    out.col.append(pj.astype(np.int32))
-    out.quantity.append(values.ravel().take(at))
-    out.raw_quantity.append(net.ravel().take(at))
-    out.lines.append(lines.ravel().take(at))
-    out.filled.append(~observed.ravel().take(at))
-    out.corrected.append(corrected.ravel().take(at))
-    out.shortage.append(short.ravel().take(at))
+    # the kept cells, row by row: one flat gather per column, into the outputs (mode "clip": `at` is in range,
+    # and numpy writes to `out` directly instead of through a buffer)
+    at = np.flatnonzero(keep)
+    lo, hi = out.size, out.size + len(at)
+    cells = out.columns
+    cells["col"][lo:hi] = at % t
+    values.ravel().take(at, out=cells["quantity"][lo:hi], mode="clip")
+    net.ravel().take(at, out=cells["raw_quantity"][lo:hi], mode="clip")
+    lines.ravel().take(at, out=cells["lines"][lo:hi], mode="clip")
+    filled = observed.ravel().take(at, out=cells["filled"][lo:hi], mode="clip")
+    np.logical_not(filled, out=filled)
+    corrected.ravel().take(at, out=cells["corrected"][lo:hi], mode="clip")
+    short.ravel().take(at, out=cells["shortage"][lo:hi], mode="clip")
+    out.kept[a:b] = np.count_nonzero(keep, axis=1)
+    out.size = hi
 
 
 def _class_rules(x, skip, name, leaf_index, settings, out: Blocks, corrected, rows) -> np.ndarray:
@@ -189,9 +197,8 @@ def _class_rules(x, skip, name, leaf_index, settings, out: Blocks, corrected, ro
     params = rule_parameters(rule)
 
     if rule.rule != "none":
-        j = judge_outliers(np.where(skip, np.nan, x - s), rule, s)
+        j, after = judge_values(x, skip, rule, s)
         if j.flagged.any():
-            after = np.where(j.flagged, j.replacement, x)
             out.corrections.append(
                 correction_rows(
                     j.flagged, x, after, f"{rule.rule}_cap", params, leaf_index, j.figures | seasonal_figures, adjusted

@@ -21,6 +21,7 @@ from pipelines.keys import LEAF, joint_codes
 from pipelines.text_codes import RUNS_SHARE, codes_of, run_starts
 
 DAY_NS = 86_400 * 10**9
+DAY_BLOCK = 1 << 20  # cells checked for midnight at a time
 RUNS_UNSEEN = object()  # `cleaned_runs` not given: the proof finds `leaf_runs(cleaned)` itself
 
 
@@ -43,9 +44,13 @@ def _days(values: pd.Series) -> np.ndarray | None:
     if values.dtype != "datetime64[ns]":
         return None
     ns = values.to_numpy().view(np.int64)
-    days, rest = np.divmod(ns, DAY_NS)  # one pass for both
-    if len(ns) and (values.isna().any() or rest.any()):
+    if len(ns) and ns.min() == np.iinfo(np.int64).min:  # NaT
         return None
+    days = ns // DAY_NS
+    for low in range(0, len(ns), DAY_BLOCK):  # midnight: the days back in ns, a block at a time (no full temporary)
+        part = days[low : low + DAY_BLOCK] * DAY_NS
+        if not np.array_equal(part, ns[low : low + DAY_BLOCK]):
+            return None
     return days
 
 
@@ -63,7 +68,9 @@ def cell_positions(cleaned: pd.DataFrame, corrections: pd.DataFrame, cleaned_run
     first_day = min(days.min(initial=0), corr_days.min(initial=0))
     span = int(max(days.max(initial=first_day), corr_days.max(initial=first_day)) - first_day) + 1
     # the distinct days of both tables, counted without joining them
-    held = np.bincount(days - first_day, minlength=span) + np.bincount(corr_days - first_day, minlength=span)
+    days -= first_day  # in place and back (`days` is this function's own): no full-length temporary
+    held = np.bincount(days, minlength=span) + np.bincount(corr_days - first_day, minlength=span)
+    days += first_day
     capacity = float(np.count_nonzero(held))
     for c in LEAF:  # as `joint_codes` of the whole tables, whose general path takes over past 62 bits
         both = pd.concat([heads[c], corrections[c]], ignore_index=True)
@@ -167,7 +174,10 @@ def accounted_lines(raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: pd.DataF
     width = int(max(raw_row.max(initial=0), rej_row.max(initial=0))) - low + 1
     if float(len(files) + len(rejected) + 1) * width >= 2.0**62:
         return None
-    raw_id = raw_file * width + (raw_row - low)
+    raw_id = raw_file  # raw_file * width + (raw_row - low), made in place in the codes (this function's own)
+    raw_id *= width
+    raw_id += raw_row
+    raw_id -= low
     rej_id = rej_file * width + (rej_row - low)
     twice = pd.Series(rej_id).duplicated(keep="first").to_numpy()
     if len(files) * width <= 4 * len(raw) + 1_000_000:  # the lines as a dense file x row table, marked

@@ -305,6 +305,55 @@ def judge_outliers(judged: np.ndarray, rule: OutlierConfig, seasonal: np.ndarray
     return _Judged(flagged & ~np.isnan(judged), replacement, figures)
 
 
+class _AtCells:
+    """A per-cell figure of a correction row computed at the cells asked for only (`figure[i, j]`), with the
+    arithmetic its whole matrix would have had there."""
+
+    def __init__(self, at):
+        self._at = at
+
+    def __getitem__(self, cells):
+        return self._at(cells)
+
+
+def judge_values(
+    x: np.ndarray, skip: np.ndarray, rule: OutlierConfig, seasonal: np.ndarray | float = 0.0
+) -> tuple[_Judged, np.ndarray]:
+    """`judge_outliers(np.where(skip, np.nan, x - seasonal), rule, seasonal)` and the values after it (the
+    replacement where flagged, else x). A matrix the compiled sweep takes (`_compiled`) is judged by
+    `rolling_order.judge_rows` in one pass per row, without the judged matrix or the limits' temporaries;
+    its figures are computed at the flagged cells only. Both give the same numbers bit for bit
+    (`tests/test_rolling_order.py`)."""
+    if rule.rule not in ("hampel", "tukey") or not _compiled(x, rule.window, CHUNK_CELLS):
+        j = judge_outliers(np.where(skip, np.nan, x - seasonal), rule, seasonal)
+        return j, np.where(j.flagged, j.replacement, x) if j.flagged.any() else x
+    from pipelines.engines.rolling_order import judge_rows  # numba loaded only for a matrix that needs it
+
+    hampel_rule = rule.rule == "hampel"
+    s = np.ascontiguousarray(seasonal, dtype=np.float64) if np.ndim(seasonal) else np.zeros((0, 0))
+    first, second, third, flagged, after = judge_rows(
+        np.ascontiguousarray(x, dtype=np.float64),
+        np.ascontiguousarray(skip, dtype=bool),
+        s,
+        int(rule.window),
+        0 if hampel_rule else 1,
+        rule.k * MAD_SCALE if hampel_rule else float(rule.fence),
+        rule.sides == "both",
+        rule.replace_with == "median",
+    )
+    if hampel_rule:
+        figures = {"median": first, "limit_scale": _AtCells(lambda at: rule.k * MAD_SCALE * second[at])}
+    else:
+        figures = {
+            "q1": first,
+            "median": second,
+            "q3": third,
+            "lower": _AtCells(lambda at: tukey_fences(first[at], third[at], rule.fence)[0]),
+            "upper": _AtCells(lambda at: tukey_fences(first[at], third[at], rule.fence)[1]),
+        }
+    return _Judged(flagged, after, figures), after
+
+
 def rule_parameters(rule: OutlierConfig) -> dict:
     params = {"window": rule.window}
     if rule.rule == "hampel":

@@ -116,7 +116,8 @@ def trusted_extent(ordinals: np.ndarray, gap_periods: int, *, trim_end: bool = T
     """
     if len(ordinals) == 0:
         return None, None
-    periods, counts = _period_counts(np.asarray(ordinals, dtype=np.int64))
+    ordinals = np.asarray(ordinals)  # any integer type as given (no copy of the lines' ordinals)
+    periods, counts = _period_counts(ordinals if ordinals.dtype.kind in "iu" else ordinals.astype(np.int64))
     limit = max(1.0, ISOLATED_SHARE * counts.sum())
     breaks = np.flatnonzero(np.diff(periods) > gap_periods)  # a gap after periods[b]
     lo, hi = 0, len(periods) - 1
@@ -190,7 +191,7 @@ class DistinctDates:
 def distinct_dates(text: pd.Series) -> DistinctDates:
     """`parse_dates` and `year_outside` of each distinct cell of `text` (a missing cell: no date, not outside)."""
     code, cells = codes_of(text)
-    code = np.where(code < 0, len(cells), code)
+    code[code < 0] = len(cells)  # in place: the codes are this function's own
     parsed = parse_dates(pd.Series(cells, dtype=text.dtype)).to_numpy(dtype="datetime64[ns]")
     value = np.append(parsed, np.datetime64("NaT", "ns"))
     nat = np.isnat(value)

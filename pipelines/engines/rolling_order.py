@@ -128,6 +128,46 @@ def _mad(buf, n, med, dev):
 
 
 @njit(cache=True)
+def _sweep_row(row, window, kind, buf, dev, first, second, third):
+    """One row of `rolling_stats`: its statistics written into the rows `first`, `second`, `third`."""
+    t = len(row)
+    half = window // 2
+    n = 0
+    for c in range(min(t, window - 1 - half)):  # the columns of period 0's window but its last
+        v = row[c]
+        if not np.isnan(v):
+            _insert(buf, n, v)
+            n += 1
+    for j in range(t):
+        incoming = j - half + window - 1
+        v = row[incoming] if incoming < t else np.nan
+        outgoing = j - half - 1
+        u = row[outgoing] if outgoing >= 0 else np.nan
+        if np.isnan(u):
+            if not np.isnan(v):
+                _insert(buf, n, v)
+                n += 1
+        elif np.isnan(v):
+            _remove(buf, n, u)
+            n -= 1
+        else:
+            _replace(buf, n, u, v)
+        if kind == 0:
+            med = _median(buf, n)
+            first[j] = med
+            second[j] = _mad(buf, n, med, dev)
+            third[j] = n
+        elif kind == 1:
+            first[j] = _quantile(buf, n, 0.25)
+            second[j] = _quantile(buf, n, 0.5)
+            third[j] = _quantile(buf, n, 0.75)
+        else:
+            first[j] = _median(buf, n)
+            second[j] = n
+            third[j] = n
+
+
+@njit(cache=True)
 def rolling_stats(matrix, window, kind):
     """Per row and period of `matrix` (float64, C order), over the centred window:
 
@@ -135,48 +175,81 @@ def rolling_stats(matrix, window, kind):
     the count as float64, the number of values in the window. NaN where a window has no value.
     """
     n_rows, t = matrix.shape
-    half = window // 2
     first = np.empty((n_rows, t))
     second = np.empty((n_rows, t))
     third = np.empty((n_rows, t))
     buf = np.empty(window)
     dev = np.empty(window)
     for r in range(n_rows):
-        row = matrix[r]
-        n = 0
-        for c in range(min(t, window - 1 - half)):  # the columns of period 0's window but its last
-            v = row[c]
-            if not np.isnan(v):
-                _insert(buf, n, v)
-                n += 1
-        for j in range(t):
-            incoming = j - half + window - 1
-            v = row[incoming] if incoming < t else np.nan
-            outgoing = j - half - 1
-            u = row[outgoing] if outgoing >= 0 else np.nan
-            if np.isnan(u):
-                if not np.isnan(v):
-                    _insert(buf, n, v)
-                    n += 1
-            elif np.isnan(v):
-                _remove(buf, n, u)
-                n -= 1
-            else:
-                _replace(buf, n, u, v)
-            if kind == 0:
-                med = _median(buf, n)
-                first[r, j] = med
-                second[r, j] = _mad(buf, n, med, dev)
-                third[r, j] = n
-            elif kind == 1:
-                first[r, j] = _quantile(buf, n, 0.25)
-                second[r, j] = _quantile(buf, n, 0.5)
-                third[r, j] = _quantile(buf, n, 0.75)
-            else:
-                first[r, j] = _median(buf, n)
-                second[r, j] = n
-                third[r, j] = n
+        _sweep_row(matrix[r], window, kind, buf, dev, first[r], second[r], third[r])
     return first, second, third
+
+
+@njit(cache=True)
+def _clipped(v):
+    """`np.clip(v, 0.0, None)` of one float64: NaN stays NaN, -0.0 becomes 0.0."""
+    return v if (v > 0.0 or np.isnan(v)) else 0.0
+
+
+@njit(cache=True)
+def judge_rows(x, skip, seasonal, window, kind, scale, both, to_median):
+    """An outlier rule on every row of `x` in one pass per row, its statistics swept as `rolling_stats` does.
+
+    Each row is judged on x - s (s: the row of `seasonal`, or 0.0 where `seasonal` has no rows), NaN where
+    `skip`. kind 0, Hampel (`scale` = k * 1.4826): flagged where MAD > 0 and x - s - median (its absolute
+    value with `both`) exceeds scale * MAD, replaced by median +- scale * MAD (`to_median`: the median);
+    kind 1, Tukey (`scale` = the fence c): flagged where IQR > 0 and x - s > Q3 + c IQR (or, with `both`,
+    < Q1 - c IQR), replaced by the fence crossed (or the median). The replacement gets s back, never
+    below zero - the arithmetic of `outliers.hampel_limits` and `outliers.tukey_limits` cell by cell.
+
+    Returns (first, second, third, flagged, after): kind 0 median, MAD and no third; kind 1 Q1, median, Q3;
+    flagged (bool) and the values after (the replacement where flagged, else x).
+    """
+    n_rows, t = x.shape
+    adjust = seasonal.shape[0] > 0
+    first = np.empty((n_rows, t))
+    second = np.empty((n_rows, t))
+    third = np.empty((n_rows, t)) if kind == 1 else np.empty((n_rows, 0))
+    spare = np.empty(t)
+    flagged = np.zeros((n_rows, t), dtype=np.bool_)
+    after = np.empty((n_rows, t))
+    judged = np.empty(t)
+    buf = np.empty(window)
+    dev = np.empty(window)
+    for r in range(n_rows):
+        for c in range(t):
+            s = seasonal[r, c] if adjust else 0.0
+            judged[c] = np.nan if skip[r, c] else x[r, c] - s
+        _sweep_row(judged, window, kind, buf, dev, first[r], second[r], third[r] if kind == 1 else spare)
+        for c in range(t):
+            v = judged[c]
+            after[r, c] = x[r, c]
+            if np.isnan(v):
+                continue
+            s = seasonal[r, c] if adjust else 0.0
+            if kind == 0:
+                med, mad = first[r, c], second[r, c]
+                spread = scale * mad
+                deviation = v - med if not both else abs(v - med)
+                if mad > 0 and deviation > spread:
+                    flagged[r, c] = True
+                    if to_median:
+                        after[r, c] = _clipped(med + s)
+                    else:
+                        after[r, c] = _clipped((med + spread if v > med else med - spread) + s)
+            else:
+                q1, q3 = first[r, c], third[r, c]
+                iqr = q3 - q1
+                lower = q1 - scale * iqr
+                upper = q3 + scale * iqr
+                high = v > upper
+                if q3 - q1 > 0 and (high or (both and v < lower)):
+                    flagged[r, c] = True
+                    if to_median:
+                        after[r, c] = _clipped(second[r, c] + s)
+                    else:
+                        after[r, c] = _clipped((upper if high else lower) + s)
+    return first, second, third, flagged, after
 
 
 def rolling(matrix: np.ndarray, window: int, kind: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

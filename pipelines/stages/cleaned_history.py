@@ -170,7 +170,10 @@ def clean_history(
     leaves = used.leaves
     first_ord = first if first is not None else int(used.ordinal.min()) if len(used.leaf_code) else cycle_ord - 1
     t = cycle_ord - first_ord  # periods in the grid: first history period .. cycle - 1
-    lines = Lines.of(used.leaf_code, (used.ordinal - first_ord).astype(np.int32), used.quantity)
+    col = used.ordinal  # the grid column of each line, made in place (the ordinals are not read again)
+    col -= first_ord
+    lines = Lines.of(used.leaf_code, col.astype(np.int32, copy=False), used.quantity)
+    del col
     del used  # the lines live on grouped by leaf only
     first_line = lines.first_col(len(leaves))
     from_ord, to_ord = span_bounds(spans, period)
@@ -191,9 +194,8 @@ def clean_history(
 
     # --- long tables
     cells = blocks.cells()
-    leaf = cells.pop("leaf")
-    columns = {c: leaves[c].to_numpy()[leaf] for c in LEAF}  # each key column taken once
-    del leaf
+    # the cells come leaf by leaf: each key repeated over its leaf's kept cells (no leaf code per cell)
+    columns = {c: np.repeat(leaves[c].to_numpy(), blocks.kept) for c in LEAF}
     # the grid's t period starts, reached by each cell's column (one gather, not a date conversion per cell)
     columns["period_start"] = ordinal_to_start(np.arange(t) + first_ord, period).to_numpy()[cells.pop("col")]
     for name in ("quantity", "raw_quantity", "lines", "filled", "corrected", "shortage"):
