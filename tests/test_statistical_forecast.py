@@ -14,6 +14,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from pipelines.engines import series_grids
 from pipelines.engines.models import demand_classes, series_grid
 from pipelines.errors import ConfigError
 from pipelines.schemas import ReinitializedTarget
@@ -34,7 +35,9 @@ CROSTON = {
 # ------------------------------------------------------------------ series_grid
 
 
-def test_series_grid_starts_at_first_nonzero_fills_zeros_and_sums_duplicates():
+@pytest.mark.parametrize("dense_cells", [-(10**9), 10**9])  # laid out series by series, or through a dense block
+def test_series_grid_starts_at_first_nonzero_fills_zeros_and_sums_duplicates(monkeypatch, dense_cells):
+    monkeypatch.setattr(series_grids, "DENSE_CELLS", dense_cells)
     code = np.array([0, 0, 0, 0, 1, 1])
     ordinal = np.array([9, 10, 12, 12, 11, 14])
     qty = np.array([0.0, 2.0, 3.0, 4.0, 5.0, 9.0])
@@ -47,6 +50,24 @@ def test_series_grid_starts_at_first_nonzero_fills_zeros_and_sums_duplicates():
     assert grid.ordinal.tolist() == [10, 11, 12, 13, 11, 12, 13]
     assert grid.y.tolist() == [2.0, 0.0, 7.0, 0.0, 5.0, 0.0, 0.0]
     assert grid.n_series == 3
+
+
+def test_series_grid_dense_block_gives_the_series_by_series_grid_bit_for_bit(monkeypatch):
+    """Random rows (negative and zero quantities, rows before a series' first demand and after the end, unsorted):
+    both ways of laying the grid out give the same arrays, the sums' bits included."""
+    rng = np.random.default_rng(3)
+    for _ in range(200):
+        n, rows, end = int(rng.integers(1, 20)), int(rng.integers(0, 300)), int(rng.integers(5, 30))
+        code, ordinal = rng.integers(0, n, rows), rng.integers(-4, end + 3, rows)
+        qty = rng.choice([0.0, 1.5, -2.0, 3.25, 0.1, -0.0], rows)
+        grids = []
+        for cells in (-(10**9), 10**9):
+            monkeypatch.setattr(series_grids, "DENSE_CELLS", cells)
+            grids.append(series_grid(code, ordinal, qty, n, end))
+        for name in ("series", "ordinal", "y"):
+            by_series, dense = getattr(grids[0], name), getattr(grids[1], name)
+            assert by_series.dtype == dense.dtype and np.array_equal(by_series, dense)
+        assert np.array_equal(np.signbit(grids[0].y), np.signbit(grids[1].y))
 
 
 # ------------------------------------------------------------------ demand classes

@@ -101,12 +101,33 @@ def parent_reasons(target: pd.DataFrame, parents: pd.DataFrame, starts: pd.Datet
     return out
 
 
-def horizon_rows(keys: pd.DataFrame, starts: pd.DatetimeIndex) -> pd.DataFrame:
-    """`keys` once per horizon period, series-major (the row order of the forecast's long tables), with
-    `period_start`."""
-    out = keys.iloc[np.repeat(np.arange(len(keys)), len(starts))].reset_index(drop=True)
-    out["period_start"] = np.tile(starts.values, len(keys))
+def repeated(keys: pd.DataFrame, times: int) -> dict[str, np.ndarray]:
+    """Each column of `keys` with every row `times` times in a row (series-major, the row order of the
+    forecast's long tables), dtypes kept."""
+    out = {}
+    for name in keys.columns:
+        values = _values(keys[name])
+        if isinstance(values, np.ndarray):
+            out[name] = np.repeat(values, times)
+        else:  # an extension array: taken as itself
+            out[name] = values.take(np.repeat(np.arange(len(values)), times))
     return out
+
+
+def long_frame(*parts) -> pd.DataFrame:
+    """One frame of the columns of `parts` (dicts of arrays or scalars, frames) in their order, the arrays taken
+    as they are: each was made for this frame, so neither copied nor consolidated into blocks."""
+    columns = {}
+    for part in parts:
+        if isinstance(part, pd.DataFrame):
+            part = {name: _values(part[name]) for name in part.columns}
+        columns.update(part)
+    return pd.DataFrame(columns, copy=False)
+
+
+def _values(column: pd.Series):
+    """The column's values as they are held: its numpy array, or its extension array."""
+    return column.to_numpy() if isinstance(column.dtype, np.dtype) else column.array
 
 
 def leaf_matrix(

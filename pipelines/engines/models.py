@@ -52,6 +52,8 @@ from pipelines.calendar import season_length
 from pipelines.config_sections import ModelChoice, TSBConfig
 from pipelines.engines.intermittent import croston_states
 from pipelines.engines.model_engine import EngineSettings, chunks, local_jobs, map_on_cluster, map_on_pool
+from pipelines.engines.series_grids import SeriesGrid as SeriesGrid  # the grids, read from here by the engines
+from pipelines.engines.series_grids import series_grid as series_grid
 
 
 @dataclass(frozen=True)
@@ -106,40 +108,6 @@ class ModelRun:
     parameters: np.ndarray
     label: np.ndarray
     sd: np.ndarray | None = None  # (n, horizon) forecast standard deviations (with `sd=True`)
-
-
-@dataclass(frozen=True)
-class SeriesGrid:
-    """Dense history of n series, each from its first non-zero period to the period before the cycle.
-
-    `series`, `ordinal`, `y` are aligned long arrays; a series without demand has no rows.
-    """
-
-    series: np.ndarray
-    ordinal: np.ndarray
-    y: np.ndarray
-    n_series: int
-
-
-def series_grid(code: np.ndarray, ordinal: np.ndarray, qty: np.ndarray, n_series: int, end_ord: int) -> SeriesGrid:
-    """Sum rows per (series, period) and lay each series out densely with zeros filled."""
-    keep = ordinal < end_ord
-    if not keep.all():  # the history rows are mostly all before the cycle: no copy then
-        code, ordinal, qty = code[keep], ordinal[keep], qty[keep]
-    first = np.full(n_series, end_ord, dtype=np.int64)
-    np.minimum.at(first, code, np.where(qty > 0, ordinal, end_ord))
-    length = end_ord - first
-    offset = np.concatenate([[0], np.cumsum(length)[:-1]])
-    series = np.repeat(np.arange(n_series), length)
-    ords = np.arange(len(series)) + (first - offset)[series]
-    cell = (offset - first)[code]  # few arrays of the history's length: each new one costs more than its arithmetic
-    cell += ordinal  # each row's place in the grid
-    inside = ordinal >= first[code]  # rows before a series' first demand are left out (+0.0 to cell 0)
-    weights = qty if inside.all() else np.where(inside, qty, 0.0)
-    if not inside.all():
-        cell *= inside
-    y = np.bincount(cell, weights=weights, minlength=len(series)) if len(series) else np.zeros(0)
-    return SeriesGrid(series=series, ordinal=ords, y=y, n_series=n_series)
 
 
 def demand_classes(grid: SeriesGrid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

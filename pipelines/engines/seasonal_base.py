@@ -155,6 +155,8 @@ def series_strength(grid: SeriesGrid, period: str, end_ord: int, series: np.ndar
 
 def _selected(grid: SeriesGrid, series: np.ndarray) -> SeriesGrid:
     """The grid of `series` only, renumbered 0..len(series)-1 in that order (rows of a series stay in order)."""
+    if len(series) == grid.n_series and np.array_equal(series, np.arange(grid.n_series)):
+        return grid  # every series in its own order (the forecast's parents): the grid as it is
     position = np.full(grid.n_series, -1, dtype=np.int64)
     position[series] = np.arange(len(series))
     rows = np.flatnonzero(position[grid.series] >= 0)

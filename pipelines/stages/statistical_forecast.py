@@ -64,10 +64,11 @@ from pipelines.engines.forecast_frames import (
     active_matrix,
     combine_strategies,
     fitted_frame,
-    horizon_rows,
     leaf_matrix,
+    long_frame,
     model_keys,
     parent_reasons,
+    repeated,
 )
 from pipelines.engines.forecast_intervals import interval_frames
 from pipelines.engines.hierarchy import NEEDS_LEAF, parent_sums
@@ -244,31 +245,27 @@ def forecast_cycle(
         ModelGrain.BOTH,
     )
 
-    parent_out = horizon_rows(parents[PARENT + parent_ids], starts)
-    parent_out["product_class"], parent_out["cycle_date"] = np.repeat(parent_class, horizon), cycle_date
-    parent_out["forecast"] = parent_fc.ravel()
-    parent_out["strategy_forecast"] = strategy_fc.ravel()
-    parent_out["model"] = np.repeat(parent_model, horizon)
-    parent_out["demand_class"] = np.repeat(base.parent_demand, horizon)
-    parent_out["model_grain"] = np.repeat(grain, horizon)
-    parent_out["strategy"] = np.repeat(strategy_of_parent, horizon)
-    parent_out["zero_reason"] = zero_reason.ravel()
     p_bounds, l_bounds = interval_frames(
         settings.levels, strategy_of_parent, parent_of_child, base, parent_fc, leaf_fc, zeroed,
         zeroed[parent_of_child] | ~active, tree_sd,
     )
 
-    leaf_out = horizon_rows(children[LEAF], starts)  # made in its columns' order: no copy to reorder them
-    leaf_out["cycle_date"], leaf_out["product_class"] = cycle_date, np.repeat(child_class, horizon)
-    leaf_out["forecast"] = leaf_fc.ravel()
-    leaf_out["parent_forecast"] = parent_fc[parent_of_child].ravel()
-    leaf_out["basis"] = basis.ravel()
-    for name in l_bounds.columns:
-        leaf_out[name] = l_bounds[name].to_numpy()
-    for name in ids:
-        leaf_out[name] = np.repeat(children[name].to_numpy(), horizon)
-    parent_out = pd.concat([parent_out, p_bounds], axis=1)
-
+    # the long tables made once, in their columns' order, from arrays made for them (no copy, no reordering)
+    parent_out = long_frame(
+        {"cycle_date": cycle_date, "product_class": np.repeat(parent_class, horizon)},
+        repeated(parents[PARENT], horizon), {"period_start": np.tile(starts.values, n_parents)},
+        {"forecast": parent_fc.ravel(), "strategy_forecast": strategy_fc.ravel(),
+         "model": np.repeat(parent_model, horizon), "demand_class": np.repeat(base.parent_demand, horizon),
+         "model_grain": np.repeat(grain, horizon), "zero_reason": zero_reason.ravel(),
+         "strategy": np.repeat(strategy_of_parent, horizon)},
+        p_bounds, repeated(parents[parent_ids], horizon),
+    )
+    leaf_out = long_frame(
+        repeated(children[LEAF], horizon), {"period_start": np.tile(starts.values, n_children)},
+        {"cycle_date": cycle_date, "product_class": np.repeat(child_class, horizon), "forecast": leaf_fc.ravel(),
+         "parent_forecast": parent_fc[parent_of_child].ravel(), "basis": basis.ravel()},
+        l_bounds, repeated(children[ids], horizon),
+    )
     models = pd.concat(
         [model_keys(base.models, parents, children),
          sb.strength_columns(base.models, p_grid, c_grid, season, modes, parents, children, period, cycle_ord)], axis=1
@@ -286,7 +283,7 @@ def forecast_cycle(
     )
     return ForecastResult(
         upper=upper.frame(cycle_date, starts, strategy_fc, parent_fc),
-        parent=parent_out[PARENT_COLUMNS + ["strategy"] + list(p_bounds.columns) + parent_ids],
+        parent=parent_out,
         leaf=leaf_out,
         negatives_clipped=base.negatives + made.negatives,
         reconciled_negatives=made.negatives,
@@ -348,7 +345,7 @@ def run(
                 "parent_periods_set_to_zero": int(parent["zero_reason"].notna().sum()),
             },
             "statistical_forecast": {
-                "basis": leaf.groupby("basis").size().rename("rows").reset_index(),
+                "basis": leaf["basis"].value_counts().sort_index().rename("rows").reset_index(),  # one hash pass
                 "leaf_total": float(leaf["forecast"].sum()),
                 # MinT / WLS leaves below 0 set to 0, their amount taken in proportion from the other
                 # children of the period (pipelines.engines.hierarchy.nonnegative_keeping_parent)
