@@ -1,10 +1,14 @@
 """Compare every table of two stores row by row: the proof that a change kept the cycle's numbers.
 
-    .venv/bin/python benchmarks/compare_stores.py OLD NEW [--no-renames] [--ignore TABLE.COLUMN ...]
+    .venv/bin/python benchmarks/compare_stores.py OLD NEW [--versions published|latest] [--no-renames]
+        [--ignore TABLE.COLUMN ...]
 
 OLD and NEW are each a store: a folder (`store.path`, Parquet files per
-partition; its published cycles are read) or a DuckDB file of a release before
-the folder store (one table per asset).
+partition; its published cycles are read, or with `--versions latest` the
+latest version of every partition: a store of `benchmarks/cycle.py --store`,
+which publishes nothing) or a DuckDB file of a release before the folder store
+(one table per asset). A comparison of no rows at all proves nothing: when
+OLD holds no row in these versions the exit code is 2 and the message says why.
 
 Each table of OLD is read whole (every cycle and class), its columns and
 values renamed to this release's names (`RENAMES`, the old -> new table of
@@ -15,7 +19,7 @@ nor the byte size of the cycle's HTML page (it lists the checks by their new
 names); the chart PNGs are compared by size. A table only in NEW is listed as
 new (and its rows of `partitions_written` as additions); a table or column
 only in OLD is a difference. Exit code 0 when every
-table of OLD is in NEW with the same rows, 1 otherwise.
+table of OLD is in NEW with the same rows, 1 otherwise, 2 when OLD has no row to compare.
 """
 
 from __future__ import annotations
@@ -56,20 +60,20 @@ RENAMES: dict[str, dict[str, dict]] = {
 }
 
 
-def read_tables(path: Path) -> dict[str, pd.DataFrame]:
-    """Every table of the store at `path` (folder: its published cycles; DuckDB file: as stored), without the
-    columns of one layout only."""
-    tables = _read_folder(path) if path.is_dir() else _read_duckdb(path)
+def read_tables(path: Path, versions: str = "published") -> dict[str, pd.DataFrame]:
+    """Every table of the store at `path` (folder: its `versions`, published cycles or the latest version of
+    every partition; DuckDB file: as stored), without the columns of one layout only."""
+    tables = _read_folder(path, versions) if path.is_dir() else _read_duckdb(path)
     return {name: f.drop(columns=[c for c in LAYOUT_COLUMNS if c in f.columns]) for name, f in tables.items()}
 
 
-def _read_folder(path: Path) -> dict[str, pd.DataFrame]:
+def _read_folder(path: Path, versions: str) -> dict[str, pd.DataFrame]:
     from pipelines.store import open_store
 
     store = open_store(path)
     names = sorted(d.name for d in (path / "tables").glob("*") if d.is_dir())
-    out = {name: store.read(name, versions="published", with_partition=True) for name in names}
-    out[WRITTEN] = store.partitions_written(versions="published")
+    out = {name: store.read(name, versions=versions, with_partition=True) for name in names}
+    out[WRITTEN] = store.partitions_written(versions=versions)
     return {name: frame for name, frame in out.items() if frame is not None}
 
 
@@ -131,8 +135,12 @@ def compare_table(table: str, old: pd.DataFrame, new: pd.DataFrame) -> list[str]
     return problems + notes
 
 
-def compare(old_path: Path, new_path: Path, use_renames: bool = True) -> int:
-    old_tables, new_tables = read_tables(old_path), read_tables(new_path)
+def compare(old_path: Path, new_path: Path, use_renames: bool = True, versions: str = "published") -> int:
+    old_tables, new_tables = read_tables(old_path, versions), read_tables(new_path, versions)
+    if not any(len(frame) for name, frame in old_tables.items() if name != WRITTEN):
+        print(f"NOTHING TO COMPARE: {old_path} holds no row in its {versions} versions"
+              + (" (a benchmark store publishes no cycle: use --versions latest)" if versions == "published" else ""))
+        return 2
     failed = 0
     for table in sorted(old_tables):
         if table not in new_tables:
@@ -171,11 +179,13 @@ def main(argv: list[str] | None = None) -> int:
         "--no-renames", action="store_true", help="compare the tables as stored, without this release's renames"
     )
     p.add_argument("--ignore", action="append", default=[], metavar="TABLE.COLUMN", help="also leave this column out")
+    p.add_argument("--versions", choices=("published", "latest"), default="published",
+                   help="the published cycles (default) or the latest version of every partition")
     args = p.parse_args(argv)
     for item in args.ignore:
         table, _, column = item.partition(".")
         IGNORED.add((table, column))
-    return compare(args.old, args.new, use_renames=not args.no_renames)
+    return compare(args.old, args.new, use_renames=not args.no_renames, versions=args.versions)
 
 
 if __name__ == "__main__":

@@ -80,3 +80,20 @@ def test_a_folder_store_compares_with_the_duckdb_layout(tmp_path, capsys):
     changed = rows.assign(share=[0.25, 0.7500001])
     assert compare_stores.main([str(old), str(folder_store(tmp_path / "changed", changed)), "--no-renames"]) == 1
     assert "column share: 1 rows differ" in capsys.readouterr().out
+
+
+def test_a_store_that_published_nothing_is_no_proof_unless_its_latest_versions_are_read(tmp_path, capsys):
+    # a store of `benchmarks/cycle.py --store`: partitions written, no cycle published
+    from pipelines.store import write_partition
+
+    old, new = tmp_path / "old", tmp_path / "new"
+    write_partition(old, "share_tables", pd.DataFrame({"customer": ["C1", "C2"], "share": [0.25, 0.75]}),
+                    "2026-11-23", "a")
+    write_partition(new, "share_tables", pd.DataFrame({"customer": ["C1", "C2"], "share": [0.25, 0.7500001]}),
+                    "2026-11-23", "a")
+    # read as published: no row on either side, which would compare as "same"; it is refused
+    assert compare_stores.compare(old, new) == 2
+    assert "NOTHING TO COMPARE" in capsys.readouterr().out
+    # the latest versions hold the rows, and the changed number is found
+    assert compare_stores.compare(old, new, versions="latest") == 1
+    assert "column share: 1 rows differ" in capsys.readouterr().out
