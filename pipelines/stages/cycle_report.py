@@ -15,6 +15,7 @@ from pathlib import Path
 
 import pandas as pd
 
+from pipelines.engines.chart_data import history_sums
 from pipelines.engines.report_charts import chart_file_name, parent_chart, share_chart
 from pipelines.results import Log, Markdown, StageResult, quiet
 
@@ -39,9 +40,11 @@ def run(
 ) -> StageResult:
     """The class's two charts as files, one row per file, and the pictures in the metadata."""
     where = {"product_class": settings.product_class, "cycle_date": settings.cycle, "period": settings.period}
+    # the long history is summed per parent and period once, for both charts
+    summed = history_sums(lifecycle_history, settings.cycle, settings.period)
     pictures = {
-        "parents": parent_chart(lifecycle_history, parent_forecast, **where),
-        "shares": share_chart(lifecycle_history, reinitialized_target, shares=share_tables, **where),
+        "parents": parent_chart(lifecycle_history, parent_forecast, summed=summed, **where),
+        "shares": share_chart(lifecycle_history, reinitialized_target, shares=share_tables, summed=summed, **where),
     }
     rows, files, figures = [], {}, {}
     for kind, png in pictures.items():
