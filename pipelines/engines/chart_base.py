@@ -31,7 +31,7 @@ from matplotlib.font_manager import FontProperties
 from matplotlib.markers import TICKDOWN
 from matplotlib.ticker import FixedLocator, FuncFormatter, NullFormatter, NullLocator
 
-from pipelines.calendar import ordinal_to_start, period_ordinal, shift_periods
+from pipelines.calendar import ordinal_to_start, period_ordinal
 from pipelines.keys import PARENT
 
 DPI = 100
@@ -109,15 +109,6 @@ def _in_class(frame: pd.DataFrame, product_class: str) -> pd.DataFrame:
     if "product_class" in frame.columns:
         return frame[frame["product_class"] == product_class]
     return frame
-
-
-def _history_mask(history: pd.DataFrame, cycle: pd.Timestamp, period: str, history_periods: int | None) -> np.ndarray:
-    """History rows before the cycle date, of the last `history_periods` periods only when given."""
-    starts = history["period_start"].to_numpy("datetime64[ns]")
-    keep = starts < cycle.to_datetime64()
-    if history_periods:
-        keep &= starts >= pd.Timestamp(shift_periods(cycle, -int(history_periods), period)).to_datetime64()
-    return keep
 
 
 def _next_starts(starts: pd.DatetimeIndex, period: str) -> pd.DatetimeIndex:

@@ -12,11 +12,16 @@ the same; no text is hashed or merged per row.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+from typing import NamedTuple
+
 import numpy as np
 import pandas as pd
 
-from pipelines.engines.chart_base import OTHER
-from pipelines.keys import LEAF, PARENT, PARENT_ID, ids_in, rows_in
+from pipelines.calendar import shift_periods
+from pipelines.engines import chart_sums
+from pipelines.engines.chart_base import OTHER, _rank_parents
+from pipelines.keys import LEAF, PARENT, PARENT_ID, factorize, ids_in, lookup, rows_in
 
 
 def distinct_parents(frame: pd.DataFrame, keep: np.ndarray | None = None) -> pd.DataFrame:
@@ -94,6 +99,227 @@ def parent_period_sums(
     for c in columns:
         out[c] = sums[c][0][code]
     return out, at
+
+
+# ----------------------------------------------------------------- the long history, summed in one pass
+@dataclass(frozen=True)
+class HistorySums:
+    """A class's history rows of a window of periods (`history_sums`) summed per parent and period, and per
+    parent, with pandas' group sum's arithmetic; what the charts draw of the history but its leaves' shares.
+
+    Row r of the matrices is one parent: the rows' parent code `code_of[r]` (the parent id, or the position in
+    `keys`, see `codes`), its key `keys.iloc[r]`; `periods` the columns' period starts, ascending.
+    """
+
+    cells: np.ndarray  # (parents, periods): sum of the rows of each parent and period
+    rows: np.ndarray  # (parents, periods): count of those rows (a cell with rows is drawn, even if its sum is 0)
+    totals: np.ndarray  # (parents,): sum over each parent's rows, in row order
+    periods: np.ndarray  # (periods,) datetime64[ns]
+    keys: pd.DataFrame  # (parents,) the parent key of each row
+    by_id: bool  # codes are the history's parent ids (else positions in the history's distinct parents)
+    code_of: np.ndarray  # (parents,) each row's parent code
+    codes: np.ndarray  # (history rows,) each history row's parent code (a view of `parent_id` where it is used)
+    starts: np.ndarray  # (history rows,) period starts as int64 nanoseconds (a view)
+    window: tuple[int, int]  # the rows kept: low <= start < high (ns)
+
+    def rows_of(self, parents: pd.DataFrame) -> np.ndarray:
+        """Row of the matrices of each of `parents` (distinct keys), -1 for a parent without history rows."""
+        if self.by_id and ids_in(parents, (PARENT_ID,)):
+            row = np.full(int(self.code_of.max(initial=-1)) + 1, -1, dtype=np.int64)
+            row[self.code_of] = np.arange(len(self.code_of))
+            ids = parents[PARENT_ID].to_numpy(np.int64)
+            return np.where((ids >= 0) & (ids < len(row)), row[np.clip(ids, 0, max(len(row) - 1, 0))], -1)
+        return lookup(parents, PARENT, self.keys) if len(self.keys) else np.full(len(parents), -1, dtype=np.int64)
+
+    def history_rows(self, rows: np.ndarray) -> np.ndarray:
+        """Positions, in order, of the history rows in the window of the parents at `rows` of the matrices."""
+        wanted = np.zeros(int(self.code_of.max(initial=-1)) + 1, dtype=bool)
+        wanted[self.code_of[rows[rows >= 0]]] = True
+        return chart_sums.rows_of(self.codes, wanted, self.starts, *self.window)
+
+
+def history_sums(history: pd.DataFrame, cycle, period: str, history_periods: int | None = None) -> HistorySums:
+    """The history rows before the cycle date (of the last `history_periods` periods only when given) summed per
+    parent and period and per parent in one compiled pass (`chart_sums`): the rows coded by their `parent_id`
+    where the history carries it, else by its distinct (product, site) keys. Per cell the same numbers as
+    `groupby(PARENT + ["period_start"])["quantity"].sum()` over those rows, per parent as `groupby(PARENT)`.
+    """
+    cycle = pd.Timestamp(cycle)
+    starts = history["period_start"].to_numpy("datetime64[ns]").view(np.int64)
+    low, high = _window(shift_periods(cycle, -int(history_periods), period) if history_periods else None, cycle)
+    by_id = bool(ids_in(history, (PARENT_ID,)))
+    if by_id:
+        codes = history[PARENT_ID].to_numpy()
+        if codes.dtype.kind not in "iu":
+            codes = codes.astype(np.int64)
+    else:
+        codes = factorize(history, PARENT)[0] if len(history) else np.zeros(0, dtype=np.int64)
+    first, last, kept = chart_sums.kept_span(starts, low, high)
+    n_codes = max(int(codes.max()) + 1, 0) if len(codes) else 0
+    first_row = np.full(n_codes, -1, dtype=np.int64)
+    if not kept:
+        first = last = 0
+    keys, unit = starts, chart_sums.DAY_NS
+    seen = np.zeros((last - first) // unit + 1, dtype=bool)
+    if not chart_sums.mark(codes, starts, low, high, keys, first, unit, seen, first_row):  # not whole days apart
+        keys, unique = pd.factorize(starts, sort=True)
+        first, unit, seen = 0, 1, np.zeros(len(unique), dtype=bool)
+        unique = np.asarray(unique)
+        chart_sums.mark(codes, starts, low, high, keys, first, unit, seen, first_row)
+    code_of = np.flatnonzero(first_row >= 0)
+    dense = np.full(n_codes, -1, dtype=np.int64)
+    dense[code_of] = np.arange(len(code_of))
+    slot_of = np.cumsum(seen) - 1
+    cells, rows, totals = chart_sums.parent_period_sums(
+        codes, dense, starts, low, high, keys, first, unit, slot_of, history["quantity"].to_numpy(float)
+    )
+    periods = (first + np.flatnonzero(seen) * unit) if unit > 1 else unique[np.flatnonzero(seen)]
+    at = first_row[code_of]
+    return HistorySums(
+        cells=cells, rows=rows, totals=totals, periods=np.asarray(periods).astype("datetime64[ns]"),
+        keys=pd.DataFrame({c: history[c].to_numpy()[at] for c in PARENT}), by_id=by_id, code_of=code_of,
+        codes=codes, starts=starts, window=(low, high),
+    )
+
+
+def parent_history(sums: HistorySums, parents: pd.DataFrame) -> tuple[pd.DataFrame, np.ndarray]:
+    """The history of `parents` per parent and period, as `parent_period_sums` of the history's window gives it
+    (rows sorted by product, site, period_start; a cell with rows only): `product, site, period_start, quantity`
+    and each row's position in `parents`."""
+    rank = key_order(parents)
+    by_rank = np.argsort(rank)
+    at_row = sums.rows_of(parents)[by_rank]
+    has = at_row >= 0
+    present = np.zeros((len(parents), len(sums.periods)), dtype=bool)
+    present[has] = sums.rows[at_row[has]] > 0
+    ranks, period = np.nonzero(present)  # row-major: by rank (the key order), then period
+    at = by_rank[ranks]
+    out = pd.DataFrame({c: parents[c].to_numpy()[at] for c in PARENT})
+    out["period_start"] = sums.periods[period]
+    out["quantity"] = sums.cells[at_row[ranks], period] if len(ranks) else np.zeros(0)
+    return out, at
+
+
+def _parent_codes(frame: pd.DataFrame, parents: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """(code of each row of `frame`, position in `parents` of each code; -1: not there): the rows' parent ids as
+    stored where both carry them (no copy), else each row's position in `parents` (`parent_positions`)."""
+    if ids_in(frame, (PARENT_ID,)) and ids_in(parents, (PARENT_ID,)) and len(frame) and len(parents):
+        codes = frame[PARENT_ID].to_numpy()
+        ids = parents[PARENT_ID].to_numpy(np.int64)
+        dense = np.full(max(int(ids.max()), int(codes.max())) + 1, -1, dtype=np.int64)
+        dense[ids] = np.arange(len(ids))
+        return codes, dense
+    return parent_positions(frame, parents), np.arange(len(parents), dtype=np.int64)
+
+
+def _window(low, high) -> tuple[int, int]:
+    """[low, high) as int64 nanoseconds (None: open)."""
+    return tuple(
+        int(pd.Timestamp(t).value) if t is not None else bound
+        for t, bound in ((low, chart_sums.NAT + 1), (high, np.iinfo(np.int64).max))
+    )
+
+
+def window_sums(frame: pd.DataFrame, parents: pd.DataFrame, column: str, low=None, high=None) -> np.ndarray:
+    """(len(parents),) sum of `column` over the rows of each parent with low <= period_start < high, as
+    `sums_by_parent` over those rows makes it (rows in order, pandas' group sum's arithmetic), 0 where none."""
+    if not len(parents):
+        return np.zeros(0)
+    codes, dense = _parent_codes(frame, parents)
+    starts = frame["period_start"].to_numpy("datetime64[ns]").view(np.int64)
+    totals = chart_sums.code_sums(codes, dense, starts, *_window(low, high), frame[column].to_numpy(float))
+    return np.concatenate([totals, np.zeros(len(parents) - len(totals))])
+
+
+def window_rows(frame: pd.DataFrame, parents: pd.DataFrame, positions, low=None, high=None) -> np.ndarray:
+    """Positions, in order, of the rows of `frame` whose parent is one of `parents` at `positions` and whose
+    period_start is in [low, high)."""
+    codes, dense = _parent_codes(frame, parents)
+    wanted = np.isin(dense, np.asarray(positions, dtype=np.int64))
+    starts = frame["period_start"].to_numpy("datetime64[ns]").view(np.int64)
+    return chart_sums.rows_of(codes, wanted, starts, *_window(low, high))
+
+
+# ----------------------------------------------------------------- what each chart draws, from the sums
+class ParentChartData(NamedTuple):
+    """The numbers of `report_charts.parent_chart`: every parent ranked (`_rank_parents`: product, site,
+    history_volume, forecast_volume, pos), the history and the forecast per parent and period (key order) with
+    each row's parent position, and the forecast's interval levels."""
+
+    ranked: pd.DataFrame
+    hist: pd.DataFrame
+    hist_at: np.ndarray
+    forecast: pd.DataFrame
+    forecast_at: np.ndarray
+    bands: list[str]
+
+
+def parent_chart_data(forecast: pd.DataFrame, summed: HistorySums) -> ParentChartData | None:
+    """The class's parents with a forecast (`forecast`: the class's parent_forecast rows), their history sums and
+    forecast per period, ranked by history volume, then forecast volume, then key; None without parents."""
+    parents = distinct_parents(forecast)
+    if parents.empty:
+        return None
+    hist, hist_at = parent_history(summed, parents)
+    bands = interval_levels(forecast)
+    bound_cols = [c for lv in bands for c in (f"lower_{lv}", f"upper_{lv}")]
+    fc, fc_at = parent_period_sums(
+        forecast, np.ones(len(forecast), dtype=bool), parent_positions(forecast, parents), parents,
+        ["forecast"] + bound_cols,
+    )
+    ranked = _rank_parents(
+        parents,
+        sums_by_parent(hist["quantity"].to_numpy(float), hist_at, len(parents)),
+        sums_by_parent(fc["forecast"].to_numpy(float), fc_at, len(parents)),
+    )
+    return ParentChartData(ranked, hist, hist_at, fc, fc_at, bands)
+
+
+def interval_levels(frame: pd.DataFrame) -> list[str]:
+    """The interval levels whose lower_ and upper_ columns the frame holds (as written, e.g. '80')."""
+    lower = {c[len("lower_"):] for c in frame.columns if c.startswith("lower_")}
+    return sorted((lv for lv in lower if f"upper_{lv}" in frame.columns), key=float)
+
+
+class ShareChartData(NamedTuple):
+    """The numbers of `report_charts.share_chart`: every parent ranked (as `ParentChartData.ranked`), the
+    history shares of the `top_parents` largest (`history_period_shares`), their target rows in the horizon
+    (by position), the last period start of the horizon, and the start of each one's share window (by position,
+    where the share table is given and the window was used)."""
+
+    ranked: pd.DataFrame
+    hist_shares: pd.DataFrame
+    targets: dict
+    last_start: pd.Timestamp
+    window_start: dict
+
+
+def share_chart_data(
+    history: pd.DataFrame, target: pd.DataFrame, shares: pd.DataFrame | None, cycle, summed: HistorySums,
+    top_parents: int,
+) -> ShareChartData | None:
+    """The class's parents with a target in the horizon (`target`: the class's reinitialized_target rows, from
+    `cycle` on), ranked by history volume (`summed.totals`), then target volume, then key; None without any."""
+    cycle = pd.Timestamp(cycle)
+    in_horizon = (target["period_start"] >= cycle).to_numpy()
+    parents = distinct_parents(target, in_horizon)
+    if parents.empty:
+        return None
+    at = summed.rows_of(parents)
+    history_volume = np.where(at >= 0, summed.totals[np.maximum(at, 0)] if len(summed.totals) else 0.0, 0.0)
+    ranked = _rank_parents(parents, history_volume, window_sums(target, parents, "target", low=cycle))
+    shown = ranked["pos"].to_numpy()[: max(int(top_parents), 0)]
+    hist_shares = history_period_shares(history.iloc[summed.history_rows(at[shown])])
+    targets = {p: target.iloc[window_rows(target, parents, [p], low=cycle)] for p in shown}
+    window_start = {}
+    if shares is not None and len(shares):
+        share_pos = parent_positions(shares, parents)
+        for p in shown:
+            first = np.flatnonzero(share_pos == p)[:1]
+            if len(first) and shares["window_used"].iloc[first[0]] > 0:
+                window_start[p] = pd.Timestamp(shares["window_start"].iloc[first[0]])
+    last_start = target["period_start"].to_numpy("datetime64[ns]")[in_horizon].max()
+    return ShareChartData(ranked, hist_shares, targets, pd.Timestamp(last_start), window_start)
 
 
 # ----------------------------------------------------------------- the shares of the largest parents

@@ -17,7 +17,6 @@ bytes or an HTML string out. Nothing here reads the store or knows of Dagster.
   `top_children` largest (by mean share over the drawn periods) are summed as
   "other". A history period without parent volume, or with a recorded supply
   shortage, has no share and is left blank, as the share rule leaves it out.
-- `cycle_report_html`: a self-contained page (inline CSS, no script, images by
 - `corrections_chart` (drawn in `chart_base`): the corrections of cleaned
   history per product class and rule, as stacked bars.
 
@@ -58,14 +57,12 @@ from pipelines.engines.chart_base import (
     _caption_text,
     _date_ticks,
     _empty_figure,
-    _history_mask,
     _in_class,
     _mark_horizon,
     _next_starts,
     _parent_label,
     _place,
     _quantity_axis,
-    _rank_parents,
     _text_width,
     _tick_label_width,
     _x,
@@ -74,12 +71,13 @@ from pipelines.engines.chart_base import (
     figure_png,
 )
 from pipelines.engines.chart_data import (
-    distinct_parents,
+    HistorySums,
     history_period_shares,
-    parent_period_sums,
-    parent_positions,
+    history_sums,
+    interval_levels,
+    parent_chart_data,
+    share_chart_data,
     stack_for_parent,
-    sums_by_parent,
 )
 from pipelines.keys import PARENT
 
@@ -89,7 +87,7 @@ SHARE_HEIGHT = 1.85  # a share panel's axes
 
 __all__ = [
     "DPI", "WIDTH_IN", "CHILD_COLORS", "FORECAST_COLOR", "chart_file_name", "corrections_chart", "figure_png",
-    "history_period_shares",
+    "history_period_shares", "interval_levels",
 ]
 
 
@@ -104,28 +102,17 @@ def parent_chart_figure(
     top_parents: int = 6,
     columns: int = 2,
     history_periods: int | None = None,
+    summed: HistorySums | None = None,
 ) -> Figure:
     """The figure behind `parent_chart` (see there)."""
     cycle = pd.Timestamp(cycle_date)
     title = f"Product class {product_class}: parent history and forecast, cycle {cycle:%Y-%m-%d}"
     unit = f"quantity per {period}"
-    fc = _in_class(parent_forecast, product_class)
-    parents = distinct_parents(fc)
-    if parents.empty:
+    summed = summed if summed is not None else history_sums(history, cycle, period, history_periods)
+    data = parent_chart_data(_in_class(parent_forecast, product_class), summed)
+    if data is None:
         return _empty_figure(title, f"no parent of class {product_class} has a forecast in this cycle")
-    # sums per parent and period over integer codes: the class's totals and its largest parents
-    keep = _history_mask(history, cycle, period, history_periods)
-    hist, hist_at = parent_period_sums(history, keep, parent_positions(history, parents), parents, ["quantity"])
-    bands = interval_levels(fc)
-    bound_cols = [c for lv in bands for c in (f"lower_{lv}", f"upper_{lv}")]
-    fc, fc_at = parent_period_sums(
-        fc, np.ones(len(fc), dtype=bool), parent_positions(fc, parents), parents, ["forecast"] + bound_cols
-    )
-    ranked = _rank_parents(
-        parents,
-        sums_by_parent(hist["quantity"].to_numpy(float), hist_at, len(parents)),
-        sums_by_parent(fc["forecast"].to_numpy(float), fc_at, len(parents)),
-    )
+    ranked, hist, hist_at, fc, fc_at, bands = data
     shown = ranked.head(max(int(top_parents), 0))
     hidden = ranked.iloc[len(shown):]
     horizon_end = shift_periods(fc["period_start"].max(), 1, period)
@@ -206,12 +193,6 @@ def parent_chart_figure(
     return fig
 
 
-def interval_levels(frame: pd.DataFrame) -> list[str]:
-    """The interval levels whose lower_ and upper_ columns the frame holds (as written, e.g. '80')."""
-    lower = {c[len("lower_"):] for c in frame.columns if c.startswith("lower_")}
-    return sorted((lv for lv in lower if f"upper_{lv}" in frame.columns), key=float)
-
-
 def parent_chart(
     history: pd.DataFrame,
     parent_forecast: pd.DataFrame,
@@ -222,6 +203,7 @@ def parent_chart(
     top_parents: int = 6,
     columns: int = 2,
     history_periods: int | None = None,
+    summed: HistorySums | None = None,
 ) -> bytes:
     """PNG of one product class's parents: class total on top, the `top_parents` largest below.
 
@@ -232,11 +214,12 @@ def parent_chart(
     forecast` (and `product_class`, filtered to `product_class` when present).
     `history_periods` limits the history drawn to the last so many periods
     before the cycle date (None = all). The parents not drawn are listed in the
-    caption, largest first.
+    caption, largest first. summed: `chart_data.history_sums` of this history
+    and window when the caller has it (the share chart uses the same).
     """
     fig = parent_chart_figure(
         history, parent_forecast, product_class=product_class, cycle_date=cycle_date, period=period,
-        top_parents=top_parents, columns=columns, history_periods=history_periods,
+        top_parents=top_parents, columns=columns, history_periods=history_periods, summed=summed,
     )
     return figure_png(fig)
 
@@ -253,34 +236,19 @@ def share_chart_figure(
     top_children: int = 5,
     history_periods: int | None = None,
     shares: pd.DataFrame | None = None,
+    summed: HistorySums | None = None,
 ) -> Figure:
     """The figure behind `share_chart` (see there)."""
     cycle = pd.Timestamp(cycle_date)
     title = f"Product class {product_class}: customer shares of the largest parents, cycle {cycle:%Y-%m-%d}"
-    tgt = _in_class(target, product_class)
-    in_horizon = (tgt["period_start"] >= cycle).to_numpy()
-    parents = distinct_parents(tgt, in_horizon)
-    if parents.empty:
+    summed = summed if summed is not None else history_sums(history, cycle, period, history_periods)
+    data = share_chart_data(history, _in_class(target, product_class), shares, cycle, summed, top_parents)
+    if data is None:
         return _empty_figure(title, f"no parent of class {product_class} has a reinitialized target in this cycle")
-    # the class's rows coded once to their parent's position; the largest parents' rows picked by it
-    hist_pos = np.where(_history_mask(history, cycle, period, history_periods), parent_positions(history, parents), -1)
-    tgt_pos = np.where(in_horizon, parent_positions(tgt, parents), -1)
-    ranked = _rank_parents(
-        parents,
-        sums_by_parent(history["quantity"].to_numpy(float), hist_pos, len(parents)),
-        sums_by_parent(tgt["target"].to_numpy(float), tgt_pos, len(parents)),
-    )
+    ranked, hist_shares, targets, last_start, window_start = data
     shown = ranked.head(max(int(top_parents), 0))
     hidden = ranked.iloc[len(shown):]
-    hist_shares = history_period_shares(history.iloc[np.flatnonzero(np.isin(hist_pos, shown["pos"]))])
-    horizon_end = shift_periods(tgt["period_start"][in_horizon].max(), 1, period)
-    window_start = {}
-    if shares is not None and len(shares):
-        share_pos = parent_positions(shares, parents)
-        for p in shown["pos"]:
-            first = np.flatnonzero(share_pos == p)[:1]
-            if len(first) and shares["window_used"].iloc[first[0]] > 0:
-                window_start[p] = pd.Timestamp(shares["window_start"].iloc[first[0]])
+    horizon_end = shift_periods(last_start, 1, period)
 
     caption = (
         f"Each panel: one parent's customers, each band a customer's share of the parent in each period; before the "
@@ -309,8 +277,7 @@ def share_chart_figure(
         ax = fig.add_axes((0, 0, 1, 1), sharex=first_ax)
         first_ax = first_ax or ax
         empty = hist_shares.iloc[:0]
-        mine = tgt.iloc[np.flatnonzero(tgt_pos == row.pos)]
-        bands, top, n_rest = stack_for_parent(hist_by.get(key, empty), mine, top_children)
+        bands, top, n_rest = stack_for_parent(hist_by.get(key, empty), targets[row.pos], top_children)
         _mark_horizon(ax, cycle, horizon_end, label=i == 0)
         # one full-width bar per period (a stepped stacked area): a period stands for its whole bucket,
         # and a lone period of an intermittent series stays visible
@@ -379,6 +346,7 @@ def share_chart(
     top_children: int = 5,
     history_periods: int | None = None,
     shares: pd.DataFrame | None = None,
+    summed: HistorySums | None = None,
 ) -> bytes:
     """PNG of the customers' shares of the `top_parents` largest parents of one class, stacked.
 
@@ -388,9 +356,10 @@ def share_chart(
     `product_class` when it has that column). shares (optional): the class's
     `share_tables` rows; when given, each panel marks the start of its parent's
     share window (`window_start`). Parents are ranked by history volume.
+    summed: `chart_data.history_sums` of this history and window, when given.
     """
     fig = share_chart_figure(
         history, target, product_class=product_class, cycle_date=cycle_date, period=period, top_parents=top_parents,
-        top_children=top_children, history_periods=history_periods, shares=shares,
+        top_children=top_children, history_periods=history_periods, shares=shares, summed=summed,
     )
     return figure_png(fig)

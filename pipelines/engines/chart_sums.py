@@ -1,0 +1,144 @@
+"""Compiled passes over a class's long history for the report's charts (numba): sums per parent and period.
+
+One pass sums every kept row (period start in [low, high)) into its parent's
+cell of a small (parents x periods) matrix and into its parent's total, with
+the compensated (Kahan) summation of pandas' group sum (`group_sum` in
+pandas/_libs/groupby.pyx: y = value - c; t = sum + y; c = (t - sum) - y, c
+reset to 0 where it is NaN, as for an infinite value; NaN values skipped),
+rows in their order. The same float64 operations in the same order give the
+same numbers bit for bit as `Series.groupby(key).sum()` over the kept rows,
+without a key array, a mask or a copy of any column as long as the history.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit
+
+NAT = np.iinfo(np.int64).min  # datetime64's NaT as int64: never kept
+DAY_NS = 86_400_000_000_000
+
+
+@njit(cache=True)
+def kept_span(starts, low, high):
+    """(first, last, count) of the kept period starts (int64 ns, `low <= s < high`, NaT never kept)."""
+    first, last, n = high, low, 0
+    for i in range(len(starts)):
+        s = starts[i]
+        if s == NAT or s < low or s >= high:
+            continue
+        n += 1
+        if s < first:
+            first = s
+        if s > last:
+            last = s
+    return first, last, n
+
+
+@njit(cache=True)
+def mark(codes, starts, low, high, keys, first, unit, seen, first_row):
+    """For each kept row (low <= start < high, NaT never kept): seen[(key - first) // unit] = True, and the row's
+    position in first_row[code] when its parent code has none yet. False, at once, when a kept row's key is not a
+    whole number of units after `first` (the caller then numbers the periods otherwise)."""
+    for i in range(len(codes)):
+        s = starts[i]
+        code = codes[i]
+        if code < 0 or s == NAT or s < low or s >= high:
+            continue
+        d = keys[i] - first
+        if d % unit != 0:
+            return False
+        seen[d // unit] = True
+        if first_row[code] < 0:
+            first_row[code] = i
+    return True
+
+
+@njit(cache=True)
+def parent_period_sums(codes, dense, starts, low, high, keys, first, unit, slot_of, values):
+    """Sums of the kept rows per (parent, period) and per parent, and the row count per (parent, period).
+
+    codes: (rows,) a parent code per row (an id or a position), `dense[code]` its parent's row in the output
+    (-1: row left out); the period's column slot_of[(key - first) // unit], keys: the period starts themselves
+    (unit a day) or their codes (unit 1). Returns (cells (parents, periods) float64, rows (parents, periods)
+    int64, totals (parents,) float64).
+    """
+    n_parents = int(dense.max()) + 1 if len(dense) else 0
+    n_periods = int(slot_of.max()) + 1 if len(slot_of) else 0
+    cells = np.zeros((n_parents, n_periods))
+    cell_c = np.zeros((n_parents, n_periods))
+    rows = np.zeros((n_parents, n_periods), dtype=np.int64)
+    totals = np.zeros(n_parents)
+    total_c = np.zeros(n_parents)
+    for i in range(len(codes)):
+        code = codes[i]
+        s = starts[i]
+        if code < 0 or code >= len(dense) or s == NAT or s < low or s >= high:
+            continue
+        p = dense[code]
+        if p < 0:
+            continue
+        j = slot_of[(keys[i] - first) // unit]
+        rows[p, j] += 1
+        v = values[i]
+        if v != v:  # NaN: a row of the cell, not summed
+            continue
+        y = v - cell_c[p, j]
+        t = cells[p, j] + y
+        cell_c[p, j] = t - cells[p, j] - y
+        if cell_c[p, j] != cell_c[p, j]:
+            cell_c[p, j] = 0.0
+        cells[p, j] = t
+        y = v - total_c[p]
+        t = totals[p] + y
+        total_c[p] = t - totals[p] - y
+        if total_c[p] != total_c[p]:
+            total_c[p] = 0.0
+        totals[p] = t
+    return cells, rows, totals
+
+
+@njit(cache=True)
+def code_sums(codes, dense, starts, low, high, values):
+    """Per parent (`dense[code]`, -1 left out), the compensated sum of the rows with `low <= start < high`."""
+    n_parents = int(dense.max()) + 1 if len(dense) else 0
+    totals = np.zeros(n_parents)
+    comp = np.zeros(n_parents)
+    for i in range(len(codes)):
+        code = codes[i]
+        if code < 0 or code >= len(dense):
+            continue
+        p = dense[code]
+        s = starts[i]
+        if p < 0 or s == NAT or s < low or s >= high:
+            continue
+        v = values[i]
+        if v != v:
+            continue
+        y = v - comp[p]
+        t = totals[p] + y
+        comp[p] = t - totals[p] - y
+        if comp[p] != comp[p]:
+            comp[p] = 0.0
+        totals[p] = t
+    return totals
+
+
+@njit(cache=True)
+def rows_of(codes, wanted, starts, low, high):
+    """Positions of the rows whose code is `wanted` (bool per code) and whose start is in [low, high), in order."""
+    n = 0
+    for i in range(len(codes)):
+        code = codes[i]
+        s = starts[i]
+        if 0 <= code < len(wanted) and wanted[code] and s != NAT and low <= s < high:
+            n += 1
+    out = np.empty(n, dtype=np.int64)
+    k = 0
+    for i in range(len(codes)):
+        code = codes[i]
+        s = starts[i]
+        if 0 <= code < len(wanted) and wanted[code] and s != NAT and low <= s < high:
+            out[k] = i
+            k += 1
+    return out

@@ -1,0 +1,92 @@
+"""The report charts' history sums (`chart_data.history_sums`, compiled in `chart_sums`) against pandas' group sums.
+
+Reference: pandas' own `groupby(...).sum()` over the same rows (compensated summation, rows in order, NaN
+skipped), compared to the last bit, on fractional quantities where the order and the compensation matter.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from pipelines.engines import chart_data
+from pipelines.keys import PARENT, add_ids
+
+CYCLE = pd.Timestamp("2026-02-02")
+
+
+def long_history(seed: int = 3, leaves: int = 60, periods: int = 30) -> pd.DataFrame:
+    """Leaves of 7 parents over `periods` weeks before the cycle and 2 after it; quantities mostly whole, some
+    fractional and large, a few NaN; rows shuffled so no order is assumed."""
+    rng = np.random.default_rng(seed)
+    weeks = pd.date_range(CYCLE - pd.Timedelta(weeks=periods), periods=periods + 2, freq="7D")
+    leaf = np.repeat(np.arange(leaves), len(weeks))
+    frame = pd.DataFrame({
+        "product": [f"P{k % 4}" for k in leaf // 9],
+        "site": [f"S{k % 2}" for k in leaf // 9],
+        "customer": [f"C{k:03d}" for k in leaf],
+        "period_start": np.tile(weeks, leaves),
+    })
+    quantity = rng.integers(0, 50, len(frame)).astype(float)
+    fractional = rng.random(len(frame)) < 0.2
+    quantity[fractional] = rng.normal(0, 1e7, fractional.sum()) + rng.random(fractional.sum())
+    quantity[rng.random(len(frame)) < 0.02] = np.nan
+    frame["quantity"] = quantity
+    return frame.sample(frac=1.0, random_state=seed).reset_index(drop=True)
+
+
+def reference(history: pd.DataFrame, low=None):
+    kept = history[(history["period_start"] < CYCLE) & (history["period_start"] >= (low or pd.Timestamp.min))]
+    cells = kept.groupby(PARENT + ["period_start"])["quantity"].sum()
+    return cells, kept.groupby(PARENT)["quantity"].sum()
+
+
+@pytest.mark.parametrize("with_ids", [False, True])
+@pytest.mark.parametrize("history_periods", [None, 12])
+def test_history_sums_are_pandas_group_sums_to_the_last_bit(with_ids, history_periods):
+    history = long_history()
+    if with_ids:
+        history = add_ids(history)
+    summed = chart_data.history_sums(history, CYCLE, "week", history_periods)
+    low = CYCLE - pd.Timedelta(weeks=history_periods) if history_periods else None
+    cells, totals = reference(history, low)
+    parents = totals.index.to_frame(index=False)
+    if with_ids:  # the charts' parents carry the ids their frames carry
+        parents = parents.merge(history[PARENT + ["parent_id"]].drop_duplicates(), on=PARENT)
+    at = summed.rows_of(parents)
+    assert (at >= 0).all()
+    assert summed.totals[at].tolist() == totals.to_numpy().tolist()  # exact, not approximate
+    drawn, _ = chart_data.parent_history(summed, parents)
+    expected = cells.reset_index()
+    pd.testing.assert_frame_equal(drawn, expected, check_exact=True)
+    # the rows of one parent in the window, in order
+    rows = summed.history_rows(at[[2]])
+    key = tuple(parents.iloc[2][PARENT])
+    in_window = (history["period_start"] < CYCLE) & (history["period_start"] >= (low or pd.Timestamp.min))
+    mine = (history["product"] == key[0]) & (history["site"] == key[1]) & in_window
+    assert rows.tolist() == np.flatnonzero(mine.to_numpy()).tolist()
+
+
+def test_history_sums_of_starts_not_whole_days_apart_and_of_parents_without_rows():
+    history = long_history(leaves=20, periods=6)
+    history.loc[history.index[:5], "period_start"] += pd.Timedelta(hours=6)  # not a period start: its own column
+    summed = chart_data.history_sums(history, CYCLE, "week")
+    cells, totals = reference(history)
+    parents = pd.concat([totals.index.to_frame(index=False), pd.DataFrame({"product": ["P9"], "site": ["S0"]})])
+    parents = parents.reset_index(drop=True)
+    drawn, at = chart_data.parent_history(summed, parents)
+    pd.testing.assert_frame_equal(drawn, cells.reset_index(), check_exact=True)
+    assert summed.rows_of(parents)[-1] == -1 and len(parents) - 1 not in at
+
+
+def test_window_sums_and_rows_are_the_group_sums_and_rows_of_the_window():
+    target = long_history(seed=5).rename(columns={"quantity": "target"})
+    parents = target[PARENT].drop_duplicates().reset_index(drop=True)
+    got = chart_data.window_sums(target, parents, "target", low=CYCLE)
+    horizon = target[target["period_start"] >= CYCLE]
+    expected = horizon.groupby(PARENT, sort=False)["target"].sum()
+    assert got.tolist() == expected.reindex(pd.MultiIndex.from_frame(parents)).to_numpy().tolist()
+    rows = chart_data.window_rows(target, parents, [1], low=CYCLE)
+    one = (target["product"] == parents["product"][1]) & (target["site"] == parents["site"][1])
+    assert rows.tolist() == np.flatnonzero((one & (target["period_start"] >= CYCLE)).to_numpy()).tolist()
