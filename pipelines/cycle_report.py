@@ -91,7 +91,7 @@ def class_charts(config: PlanningConfig, cycle: str, name: str, folder: Path) ->
     names = [report_charts.chart_file_name(kind, name, cycle) for kind in CHART_KINDS]
     if all((folder / n).exists() and (folder / n).stat().st_mtime >= published.stat().st_mtime for n in names):
         return names
-    frames = read_class_frames(config.store.path, cycle, name, config.calendar.period)
+    frames = read_class_frames(config.store.path, cycle, name)
     if frames is None:
         return []
     where = {"product_class": name, "cycle_date": cycle, "period": config.calendar.period}

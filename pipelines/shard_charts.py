@@ -32,7 +32,7 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
-from pipelines.engines.chart_base import _history_mask, _in_class, _rank_parents
+from pipelines.engines.chart_base import _in_class, _rank_parents
 from pipelines.engines.chart_data import distinct_parents, parent_period_sums, parent_positions, sums_by_parent
 from pipelines.keys import LEAF, PARENT, PARENT_ID
 
@@ -91,7 +91,7 @@ def _stack(rows: pd.DataFrame, more: pd.DataFrame) -> pd.DataFrame:
 
 def reduce_shard(
     history: pa.Table, forecast: pd.DataFrame, target: pa.Table, shares: pa.Table, *, product_class: str,
-    cycle_date, period: str,
+    cycle_date,
 ) -> ChartFrames:
     """One shard's `ChartFrames` (see the module) from its lifecycle_history (HISTORY_COLUMNS), parent_forecast,
     reinitialized_target (TARGET_COLUMNS) and share_tables (SHARE_COLUMNS), as the store holds them."""
@@ -103,7 +103,7 @@ def reduce_shard(
     fc = _in_class(forecast, product_class)
     fc_parents = distinct_parents(fc)
     hist = _numbers(history, ["period_start", "quantity"], ids)
-    keep = _history_mask(hist, cycle, period, None)
+    keep = hist["period_start"].to_numpy("datetime64[ns]") < cycle.to_datetime64()  # the rows the charts draw
     sums, at = parent_period_sums(hist, keep, parent_positions(hist, fc_parents), fc_parents, ["quantity"])
     if ids:
         sums[PARENT_ID] = fc_parents[PARENT_ID].to_numpy()[at]
@@ -181,7 +181,7 @@ def read_shard(store: Path | str, cycle: str, product_class: str, shard: str) ->
     }
 
 
-def read_class_frames(store: Path | str, cycle: str, product_class: str, period: str) -> ChartFrames | None:
+def read_class_frames(store: Path | str, cycle: str, product_class: str) -> ChartFrames | None:
     """The class's `ChartFrames` from its published shards, read and reduced one shard at a time; None when one of
     the four tables has no row in the class."""
     from pipelines.store import open_store
@@ -194,5 +194,5 @@ def read_class_frames(store: Path | str, cycle: str, product_class: str, period:
             return None
         for name, table in tables.items():
             rows[name] += len(table)
-        reduced.append(reduce_shard(**tables, product_class=product_class, cycle_date=cycle, period=period))
+        reduced.append(reduce_shard(**tables, product_class=product_class, cycle_date=cycle))
     return class_frames(reduced) if reduced and all(rows.values()) else None

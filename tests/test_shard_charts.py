@@ -144,7 +144,7 @@ def assert_same_figures(found: list[dict], expected: list[dict]) -> None:
 def test_the_class_reduced_shard_by_shard_draws_what_the_whole_class_draws(whole):
     shards = class_shards(whole)
     expected = whole_class_figures(shards)
-    frames = class_frames([reduce_shard(**as_stored(s), product_class=NAME, cycle_date=CYCLE, period="week")
+    frames = class_frames([reduce_shard(**as_stored(s), product_class=NAME, cycle_date=CYCLE)
                            for s in shards])
     assert_same_figures(reduced_figures(frames), expected)
     # what was kept: one history row per parent and period drawn, every parent of the share chart ranked, leaf
@@ -164,7 +164,7 @@ def test_a_shard_without_ids_is_reduced_by_its_text_keys():
     shards = class_shards(False)
     expected = whole_class_figures(shards)
     plain = {k: v.drop(columns=[PARENT_ID]) for k, v in shards[2].items()}  # written before the ids
-    reduced = [reduce_shard(**as_stored(s), product_class=NAME, cycle_date=CYCLE, period="week")
+    reduced = [reduce_shard(**as_stored(s), product_class=NAME, cycle_date=CYCLE)
                for s in [*shards[:2], plain]]
     frames = class_frames(reduced)
     assert PARENT_ID not in frames.history_sums.columns
@@ -185,7 +185,7 @@ def test_the_published_shards_read_one_at_a_time_give_the_whole_class_charts(tmp
                                                                       shard=f"{i + 1}of3", run_id="r")
     # not published yet: nothing is read
     store.complete_class(cycle, NAME, recorded, run_id="r", classes=[NAME, "other"])
-    assert read_class_frames(store.root, cycle, NAME, "week") is None
+    assert read_class_frames(store.root, cycle, NAME) is None
     store.complete_class(cycle, "other", {}, run_id="r", classes=[NAME, "other"])
-    frames = read_class_frames(store.root, cycle, NAME, "week")
+    frames = read_class_frames(store.root, cycle, NAME)
     assert_same_figures(reduced_figures(frames), whole_class_figures(shards))
