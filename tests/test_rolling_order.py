@@ -37,6 +37,7 @@ def same_bits(a: np.ndarray, b: np.ndarray) -> bool:
     return a.shape == b.shape and a.tobytes() == b.tobytes()
 
 
+@pytest.mark.filterwarnings("ignore:invalid value encountered:RuntimeWarning")  # infinities fed on purpose: inf - inf
 @pytest.mark.parametrize("statistic", [hampel, tukey, rolling_median])
 def test_the_compiled_sweep_gives_numpys_numbers_bit_for_bit(statistic):
     for x, window in matrices(11):
@@ -84,6 +85,7 @@ def test_an_empty_matrix():
         assert all(o.shape == shape for o in out)
 
 
+@pytest.mark.filterwarnings("ignore:invalid value encountered:RuntimeWarning")  # infinities fed on purpose: inf - inf
 @pytest.mark.parametrize(
     "rule",
     [
