@@ -19,6 +19,17 @@ NAT = np.iinfo(np.int64).min  # datetime64's NaT as int64: never kept
 DAY_NS = 86_400_000_000_000
 
 
+@njit(cache=True, inline="always")
+def compensated_add(total, comp, value):
+    """One step of pandas' compensated group sum: the new (sum, compensation), the compensation reset where NaN."""
+    y = value - comp
+    t = total + y
+    comp = t - total - y
+    if comp != comp:
+        comp = 0.0
+    return t, comp
+
+
 @njit(cache=True)
 def kept_span(starts, low, high):
     """(first, last, count) of the kept period starts (int64 ns, `low <= s < high`, NaT never kept)."""
@@ -83,18 +94,8 @@ def parent_period_sums(codes, dense, starts, low, high, keys, first, unit, slot_
         v = values[i]
         if v != v:  # NaN: a row of the cell, not summed
             continue
-        y = v - cell_c[p, j]
-        t = cells[p, j] + y
-        cell_c[p, j] = t - cells[p, j] - y
-        if cell_c[p, j] != cell_c[p, j]:
-            cell_c[p, j] = 0.0
-        cells[p, j] = t
-        y = v - total_c[p]
-        t = totals[p] + y
-        total_c[p] = t - totals[p] - y
-        if total_c[p] != total_c[p]:
-            total_c[p] = 0.0
-        totals[p] = t
+        cells[p, j], cell_c[p, j] = compensated_add(cells[p, j], cell_c[p, j], v)
+        totals[p], total_c[p] = compensated_add(totals[p], total_c[p], v)
     return cells, rows, totals
 
 
@@ -115,12 +116,7 @@ def code_sums(codes, dense, starts, low, high, values):
         v = values[i]
         if v != v:
             continue
-        y = v - comp[p]
-        t = totals[p] + y
-        comp[p] = t - totals[p] - y
-        if comp[p] != comp[p]:
-            comp[p] = 0.0
-        totals[p] = t
+        totals[p], comp[p] = compensated_add(totals[p], comp[p], v)
     return totals
 
 
