@@ -14,7 +14,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from pipelines.config import parse_config
-from pipelines.engines.measure_inputs import share_basis_tables
+from pipelines.engines.measure_inputs import share_bases_of, share_basis_tables
 from pipelines.engines.measure_split import find_pins_not_kept, find_sum_violations, plan_totals
 from pipelines.engines.shares import compute_shares
 from pipelines.errors import ConfigError, PinError
@@ -212,7 +212,7 @@ def test_pro_rata_by_a_named_share_table_with_its_own_window(make_history, make_
     products = pd.DataFrame(
         {"product": ["A"], "product_class": ["a"], "active_from": [pd.NaT], "active_to": [pd.NaT], "successor": [None]}
     )
-    bases = share_basis_tables(history, kids, products, cfg, CYCLE)
+    bases = share_basis_tables(share_bases_of(history, kids, products, cfg, CYCLE))
     # window 2, pooled: c1 (1 + 1) / 8 = 0.25, c2 6 / 8 = 0.75 (the class's own window 4 would give 0.5 each)
     recent = bases["recent"].set_index(["customer", "period_start"])["share"]
     assert recent.loc["c1"].tolist() == pytest.approx([0.25] * 3) and recent.loc["c2"].tolist() == pytest.approx(

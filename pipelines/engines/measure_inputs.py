@@ -154,7 +154,7 @@ def basis_of(
         return np.where(td, mats["target"], mats["forecast"]), np.where(td, mats["share"], 0.0), label
     key = f"{b.kind}:{b.name}"
     if key not in mats:
-        raise ConfigError(f"measures.{name}: basis {key} is not available; pass its share_basis_tables(...) frame")
+        raise ConfigError(f"measures.{name}: basis {key} is not available; pass its share_bases_of(...) basis")
     return mats[key], None, label
 
 
@@ -224,17 +224,6 @@ def share_bases_of(
     return out
 
 
-def share_basis_tables(
-    history: pd.DataFrame,
-    children: pd.DataFrame,
-    products: pd.DataFrame,
-    config,
-    cycle_date: pd.Timestamp,
-    keys: Coded | None = None,
-    rows: ShareRows | None = None,
-) -> dict[str, pd.DataFrame]:
-    """`share_bases_of` as long frames: leaf keys, period_start, share, fallback (`BasisShares.frame`)."""
-    return {
-        name: basis.frame()
-        for name, basis in share_bases_of(history, children, products, config, cycle_date, keys, rows).items()
-    }
+def share_basis_tables(bases: dict[str, BasisShares]) -> dict[str, pd.DataFrame]:
+    """The long frames of `share_bases_of`'s bases: leaf keys, period_start, share, fallback (`BasisShares.frame`)."""
+    return {name: basis.frame() for name, basis in bases.items()}

@@ -189,8 +189,8 @@ def plan_measures(
     (`statistical_forecast`). target: `reinitialized_target` (leaf keys,
     period_start, target, share). adjustments: measure, product, site,
     period_start, value. pins: product, site, customer, period_start, measure,
-    value. share_bases: `share_bases_of` (or its long frames, `share_basis_tables`; needed by share_table
-    bases).
+    value. share_bases: `share_bases_of` (or its long frames, `share_basis_tables(share_bases_of(...))`;
+    needed by share_table bases).
     """
     period = config.calendar.period
     h = config.calendar.horizon

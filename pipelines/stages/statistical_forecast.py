@@ -81,10 +81,6 @@ from pipelines.progress import SeriesProgress
 from pipelines.results import CheckRows, Log, StageResult, quiet
 from pipelines.vocabulary import AUTO, Basis, ModelGrain, Strategy, ZeroReason, values
 
-PARENT_COLUMNS = [
-    "cycle_date", "product_class", "product", "site", "period_start", "forecast", "strategy_forecast", "model",
-    "demand_class", "model_grain", "zero_reason",
-]
 LEAF_COLUMNS = LEAF + ["period_start", "cycle_date", "product_class", "forecast", "parent_forecast", "basis"]
 FITTED_COLUMNS = [
     "cycle_date", "grain", "product_class", "product", "site", "customer", "period_start", "actual", "fitted",
