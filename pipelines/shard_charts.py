@@ -6,9 +6,11 @@ rows only for the few largest. No parent spans two shards, so each shard is
 read alone (its history for the columns drawn, as Arrow: text stays in Arrow
 buffers but for the rows kept) and reduced to
 - for the parent chart: the shard's history summed per parent and period by
-  `chart_data.parent_period_sums`, the function the chart itself sums with;
-  the chart sums these again, one row per parent and period, which leaves
-  them as they are;
+  `chart_data.parent_period_sums` (pandas' group sum; the chart itself sums
+  with `chart_data.history_sums`, a compiled pass in the same compensated
+  order, so the numbers agree to the bit: tests/test_shard_charts.py); the
+  chart sums these again, one row per parent and period, which leaves them
+  as they are;
 - for the share chart: the rows of the shard's `SHARE_PANELS` largest parents,
   ranked as the chart ranks (history volume, target volume, key), and for
   every other parent one history row holding its history volume and one
