@@ -6,11 +6,9 @@ rows only for the few largest. No parent spans two shards, so each shard is
 read alone (its history for the columns drawn, as Arrow: text stays in Arrow
 buffers but for the rows kept) and reduced to
 - for the parent chart: the shard's history summed per parent and period by
-  `chart_data.parent_period_sums` (pandas' group sum; the chart itself sums
-  with `chart_data.history_sums`, a compiled pass in the same compensated
-  order, so the numbers agree to the bit: tests/test_shard_charts.py); the
-  chart sums these again, one row per parent and period, which leaves them
-  as they are;
+  `chart_data.history_sums`, the pass the chart itself sums with; the chart
+  sums these again, one row per parent and period, which leaves them as they
+  are;
 - for the share chart: the rows of the shard's `SHARE_PANELS` largest parents,
   ranked as the chart ranks (history volume, target volume, key), and for
   every other parent one history row holding its history volume and one
@@ -34,8 +32,8 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
-from pipelines.engines.chart_base import _in_class, _rank_parents
-from pipelines.engines.chart_data import distinct_parents, parent_period_sums, parent_positions, sums_by_parent
+from pipelines.engines.chart_base import in_class, rank_parents
+from pipelines.engines.chart_data import distinct_parents, history_sums, parent_history, parent_positions, window_sums
 from pipelines.keys import LEAF, PARENT, PARENT_ID
 
 PARENT_PANELS = 6  # parents drawn by parent_chart (its default)
@@ -101,50 +99,51 @@ def reduce_shard(
     ids = all(_has_ids(t) for t in (history, forecast, target, shares))
     if not ids:  # a store written before the ids: the parents found by their text keys
         forecast = forecast.drop(columns=[PARENT_ID], errors="ignore")
-    # the parent chart: history summed per parent (of the forecast) and period
-    fc = _in_class(forecast, product_class)
+    # the parent chart: history summed per parent (of the forecast) and period, the sums the chart draws from
+    fc = in_class(forecast, product_class)
     fc_parents = distinct_parents(fc)
     hist = _numbers(history, ["period_start", "quantity"], ids)
-    keep = hist["period_start"].to_numpy("datetime64[ns]") < cycle.to_datetime64()  # the rows the charts draw
-    sums, at = parent_period_sums(hist, keep, parent_positions(hist, fc_parents), fc_parents, ["quantity"])
+    summed = history_sums(hist, cycle, "week")  # the period names the window of history_periods only: not used
+    sums, at = parent_history(summed, fc_parents)
     if ids:
         sums[PARENT_ID] = fc_parents[PARENT_ID].to_numpy()[at]
 
-    # the share chart: the parents with a target in the horizon, ranked as the chart ranks them
+    # the share chart: the parents with a target in the horizon, ranked as the chart ranks them (history volume:
+    # the parent's total of the same sums)
     tgt = _numbers(target, ["period_start", "target"], ids)
     in_horizon = (tgt["period_start"] >= cycle).to_numpy()
     parents = _parents(target, tgt, in_horizon, ids)
-    hist_pos = np.where(keep, parent_positions(hist, parents), -1)
+    hist_row = summed.rows_of(parents)
+    has_history = hist_row >= 0
+    history_volume = np.where(has_history, summed.totals[np.maximum(hist_row, 0)] if len(summed.totals) else 0, 0.0)
     tgt_pos = np.where(in_horizon, parent_positions(tgt, parents), -1)
-    history_volume = sums_by_parent(hist["quantity"].to_numpy(float), hist_pos, len(parents))
-    target_volume = sums_by_parent(tgt["target"].to_numpy(float), tgt_pos, len(parents))
-    largest = _rank_parents(parents, history_volume, target_volume)["pos"].to_numpy()[:SHARE_PANELS]
+    target_volume = window_sums(tgt, parents, "target", low=cycle)
+    largest = rank_parents(parents, history_volume, target_volume)["pos"].to_numpy()[:SHARE_PANELS]
     others = np.setdiff1d(np.arange(len(parents)), largest)
-    with_history = others[np.bincount(hist_pos[hist_pos >= 0], minlength=len(parents))[others] > 0]
+    with_history = others[has_history[others]]
     last = np.full(len(parents), np.iinfo(np.int64).min)
     starts = tgt["period_start"].to_numpy("datetime64[ns]").view(np.int64)
     np.maximum.at(last, tgt_pos[tgt_pos >= 0], starts[tgt_pos >= 0])
 
-    def rows(table: pa.Table, pos: np.ndarray, columns: list[str]) -> pd.DataFrame:
-        picked = np.flatnonzero(np.isin(pos, largest))
+    def rows(table: pa.Table, picked: np.ndarray, columns: list[str]) -> pd.DataFrame:
         return _frame(table.select([c for c in columns if c != PARENT_ID or ids]).take(pa.array(picked)))
 
     def one_row(at: np.ndarray, **values) -> pd.DataFrame:
         keys = {c: parents[c].to_numpy()[at] for c in PARENT + ([PARENT_ID] if ids else [])}
         return pd.DataFrame({**keys, "customer": "", **values})
 
-    first_kept = hist["period_start"].to_numpy("datetime64[ns]")[keep].min() if keep.any() else cycle
+    first_kept = summed.periods[0] if len(summed.periods) else cycle
     share_history = _stack(
-        rows(history, hist_pos, HISTORY_COLUMNS),
+        rows(history, summed.history_rows(hist_row[largest]), HISTORY_COLUMNS),
         one_row(with_history, period_start=first_kept, quantity=history_volume[with_history], shortage=False),
     )
     target_rows = _stack(
-        rows(target, tgt_pos, TARGET_COLUMNS),
+        rows(target, np.flatnonzero(np.isin(tgt_pos, largest)), TARGET_COLUMNS),
         one_row(others, period_start=last[others].view("datetime64[ns]"), target=target_volume[others],
                 share=np.nan),
     )
     share_frame = _numbers(shares, [], ids)
-    share_rows = rows(shares, parent_positions(share_frame, parents), SHARE_COLUMNS)
+    share_rows = rows(shares, np.flatnonzero(np.isin(parent_positions(share_frame, parents), largest)), SHARE_COLUMNS)
     drawn = [c for c in forecast.columns if c in ("product_class", *PARENT, "period_start", "forecast", PARENT_ID)
              or c.startswith(("lower_", "upper_"))]
     return ChartFrames(forecast[drawn], sums, share_history, target_rows, share_rows)

@@ -90,3 +90,20 @@ def test_window_sums_and_rows_are_the_group_sums_and_rows_of_the_window():
     rows = chart_data.window_rows(target, parents, [1], low=CYCLE)
     one = (target["product"] == parents["product"][1]) & (target["site"] == parents["site"][1])
     assert rows.tolist() == np.flatnonzero((one & (target["period_start"] >= CYCLE)).to_numpy()).tolist()
+
+
+@pytest.mark.parametrize("with_ids", [False, True])
+def test_parent_period_rows_are_the_group_sums_of_several_columns(with_ids):
+    # a forecast-like frame: two value columns, fractional and NaN values, some (parent, period) given twice, and
+    # rows of a parent not asked for (left out)
+    frame = long_history(seed=9, leaves=30, periods=4)
+    frame["lower_80"] = frame["quantity"] * 0.8 - 0.1
+    frame = pd.concat([frame, frame.iloc[:40].assign(quantity=lambda f: f["quantity"] + 0.3)], ignore_index=True)
+    if with_ids:
+        frame = add_ids(frame)
+    asked = frame[frame["product"] != "P3"]
+    parents = asked[PARENT + (["parent_id"] if with_ids else [])].drop_duplicates().reset_index(drop=True)
+    got, at = chart_data.parent_period_rows(frame, parents, ["quantity", "lower_80"])
+    expected = asked.groupby(PARENT + ["period_start"], as_index=False)[["quantity", "lower_80"]].sum()
+    pd.testing.assert_frame_equal(got, expected, check_exact=True)
+    assert parents.iloc[at][PARENT].reset_index(drop=True).equals(got[PARENT])

@@ -94,7 +94,7 @@ def chart_file_name(kind: str, product_class: str, cycle_date) -> str:
     return f"{kind}_{safe}_{pd.Timestamp(cycle_date):%Y-%m-%d}.png"
 
 
-def _rank_parents(parents: pd.DataFrame, history_volume: np.ndarray, forecast_volume: np.ndarray) -> pd.DataFrame:
+def rank_parents(parents: pd.DataFrame, history_volume: np.ndarray, forecast_volume: np.ndarray) -> pd.DataFrame:
     """Parents by history volume, then forecast volume, then key (a stable, deterministic order); `pos` is each
     one's position in `parents`, the volumes are per position (`chart_data.sums_by_parent`)."""
     ranked = parents[PARENT].assign(history_volume=history_volume, forecast_volume=forecast_volume)
@@ -105,7 +105,8 @@ def _rank_parents(parents: pd.DataFrame, history_volume: np.ndarray, forecast_vo
     return ranked.reset_index(drop=True)
 
 
-def _in_class(frame: pd.DataFrame, product_class: str) -> pd.DataFrame:
+def in_class(frame: pd.DataFrame, product_class: str) -> pd.DataFrame:
+    """The rows of `product_class` where the frame has a `product_class` column, else the frame as it is."""
     if "product_class" in frame.columns:
         return frame[frame["product_class"] == product_class]
     return frame

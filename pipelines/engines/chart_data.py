@@ -2,12 +2,12 @@
 
 The charts show a class's totals and its few largest parents, so what they
 need are sums per parent (and period), not the rows. Every row is coded once
-to the position of its parent in the class's small table of parents
-(`pipelines.keys.rows_in`: through `parent_id` where both carry it, else the
-distinct text keys looked up once) and summed by pandas' group sum over one
-int64 key. That sums the same rows in the same order, with the same
-(compensated) summation, as a group sum over the text keys, so the numbers are
-the same; no text is hashed or merged per row.
+by its parent (its `parent_id` where the table carries it, else its distinct
+text keys numbered once) and summed per parent and period by one compiled pass
+(`chart_sums`, `history_sums`) in pandas' group sum's compensated arithmetic,
+rows in their order, so the numbers are those of a group sum over the text
+keys to the last bit; no text is hashed or merged per row. Sums per parent of
+a short column (`sums_by_parent`) go through pandas' group sum itself.
 """
 
 from __future__ import annotations
@@ -20,7 +20,7 @@ import pandas as pd
 
 from pipelines.calendar import shift_periods
 from pipelines.engines import chart_sums
-from pipelines.engines.chart_base import OTHER, _rank_parents
+from pipelines.engines.chart_base import OTHER, rank_parents
 from pipelines.keys import LEAF, PARENT, PARENT_ID, factorize, ids_in, lookup, rows_in
 
 
@@ -74,33 +74,6 @@ def sums_by_parent(values: np.ndarray, pos: np.ndarray, n_parents: int) -> np.nd
     return group_sums(np.asarray(values)[keep], pos[keep], n_parents)[0]
 
 
-def parent_period_sums(
-    frame: pd.DataFrame, keep: np.ndarray, pos: np.ndarray, parents: pd.DataFrame, columns: list[str]
-) -> tuple[pd.DataFrame, np.ndarray]:
-    """`frame[keep].groupby(PARENT + ["period_start"], as_index=False)[columns].sum()`: the same rows, order
-    and numbers (sorted by product, site, period_start), and each output row's position in `parents`.
-
-    pos: `parent_positions(frame, parents)`; rows with pos < 0 are left out.
-    """
-    keep = keep & (pos >= 0)
-    rank = key_order(parents)
-    by_rank = np.argsort(rank)  # parent position of each rank
-    starts = frame["period_start"].to_numpy("datetime64[ns]")[keep]
-    period, unique = pd.factorize(starts, sort=True)
-    n_periods = max(len(unique), 1)
-    key = rank[pos[keep]] * n_periods + period
-    n_keys = len(parents) * n_periods
-    sums = {c: group_sums(frame[c].to_numpy()[keep], key, n_keys) for c in columns}
-    present = np.bincount(key, minlength=n_keys) > 0
-    code = np.flatnonzero(present)
-    at = by_rank[code // n_periods]
-    out = pd.DataFrame({c: parents[c].to_numpy()[at] for c in PARENT})
-    out["period_start"] = np.asarray(unique)[code % n_periods]
-    for c in columns:
-        out[c] = sums[c][0][code]
-    return out, at
-
-
 # ----------------------------------------------------------------- the long history, summed in one pass
 @dataclass(frozen=True)
 class HistorySums:
@@ -143,17 +116,30 @@ def history_sums(history: pd.DataFrame, cycle, period: str, history_periods: int
     parent and period and per parent in one compiled pass (`chart_sums`): the rows coded by their `parent_id`
     where the history carries it, else by its distinct (product, site) keys. Per cell the same numbers as
     `groupby(PARENT + ["period_start"])["quantity"].sum()` over those rows, per parent as `groupby(PARENT)`.
+
+    A history without the key columns (product, site) must carry `parent_id`; its sums are then found by the
+    ids of the parents asked for (`rows_of`).
     """
     cycle = pd.Timestamp(cycle)
-    starts = history["period_start"].to_numpy("datetime64[ns]").view(np.int64)
-    low, high = _window(shift_periods(cycle, -int(history_periods), period) if history_periods else None, cycle)
-    by_id = bool(ids_in(history, (PARENT_ID,)))
-    if by_id:
-        codes = history[PARENT_ID].to_numpy()
-        if codes.dtype.kind not in "iu":
-            codes = codes.astype(np.int64)
-    else:
-        codes = factorize(history, PARENT)[0] if len(history) else np.zeros(0, dtype=np.int64)
+    window = _window(shift_periods(cycle, -int(history_periods), period) if history_periods else None, cycle)
+    return _coded_sums(history, history["quantity"].to_numpy(float), window, *_row_codes(history))
+
+
+def _row_codes(frame: pd.DataFrame) -> tuple[np.ndarray, bool]:
+    """(a parent code per row, whether the codes are the rows' `parent_id`): the ids as stored where the frame
+    carries them (no copy), else the rows' distinct (product, site) keys numbered."""
+    if ids_in(frame, (PARENT_ID,)):
+        codes = frame[PARENT_ID].to_numpy()
+        return (codes if codes.dtype.kind in "iu" else codes.astype(np.int64)), True
+    return (factorize(frame, PARENT)[0] if len(frame) else np.zeros(0, dtype=np.int64)), False
+
+
+def _coded_sums(
+    frame: pd.DataFrame, values: np.ndarray, window: tuple[int, int], codes: np.ndarray, by_id: bool
+) -> HistorySums:
+    """`values` (one per row of `frame`) of the rows in `window` summed per parent code and period (`HistorySums`)."""
+    starts = frame["period_start"].to_numpy("datetime64[ns]").view(np.int64)
+    low, high = window
     first, last, kept = chart_sums.kept_span(starts, low, high)
     n_codes = max(int(codes.max()) + 1, 0) if len(codes) else 0
     first_row = np.full(n_codes, -1, dtype=np.int64)
@@ -170,22 +156,20 @@ def history_sums(history: pd.DataFrame, cycle, period: str, history_periods: int
     dense = np.full(n_codes, -1, dtype=np.int64)
     dense[code_of] = np.arange(len(code_of))
     slot_of = np.cumsum(seen) - 1
-    cells, rows, totals = chart_sums.parent_period_sums(
-        codes, dense, starts, low, high, keys, first, unit, slot_of, history["quantity"].to_numpy(float)
-    )
+    cells, rows, totals = chart_sums.parent_period_sums(codes, dense, starts, low, high, keys, first, unit, slot_of,
+                                                         values)
     periods = (first + np.flatnonzero(seen) * unit) if unit > 1 else unique[np.flatnonzero(seen)]
     at = first_row[code_of]
     return HistorySums(
         cells=cells, rows=rows, totals=totals, periods=np.asarray(periods).astype("datetime64[ns]"),
-        keys=pd.DataFrame({c: history[c].to_numpy()[at] for c in PARENT}), by_id=by_id, code_of=code_of,
-        codes=codes, starts=starts, window=(low, high),
+        keys=pd.DataFrame({c: frame[c].to_numpy()[at] for c in PARENT if c in frame.columns}), by_id=by_id,
+        code_of=code_of, codes=codes, starts=starts, window=window,
     )
 
 
-def parent_history(sums: HistorySums, parents: pd.DataFrame) -> tuple[pd.DataFrame, np.ndarray]:
-    """The history of `parents` per parent and period, as `parent_period_sums` of the history's window gives it
-    (rows sorted by product, site, period_start; a cell with rows only): `product, site, period_start, quantity`
-    and each row's position in `parents`."""
+def _cells_of(sums: HistorySums, parents: pd.DataFrame) -> tuple[pd.DataFrame, np.ndarray, tuple]:
+    """The cells with rows of `parents`, by parent in (product, site) order, then period: their parent keys and
+    period starts, each one's position in `parents`, and its (row, column) in the matrices of `sums`."""
     rank = key_order(parents)
     by_rank = np.argsort(rank)
     at_row = sums.rows_of(parents)[by_rank]
@@ -196,7 +180,30 @@ def parent_history(sums: HistorySums, parents: pd.DataFrame) -> tuple[pd.DataFra
     at = by_rank[ranks]
     out = pd.DataFrame({c: parents[c].to_numpy()[at] for c in PARENT})
     out["period_start"] = sums.periods[period]
-    out["quantity"] = sums.cells[at_row[ranks], period] if len(ranks) else np.zeros(0)
+    return out, at, (at_row[ranks], period)
+
+
+def parent_history(sums: HistorySums, parents: pd.DataFrame) -> tuple[pd.DataFrame, np.ndarray]:
+    """The history of `parents` per parent and period, as `groupby(PARENT + ["period_start"], as_index=False)
+    ["quantity"].sum()` over the history's window gives it (rows sorted by product, site, period_start; a cell
+    with rows only): `product, site, period_start, quantity` and each row's position in `parents`."""
+    out, at, cell = _cells_of(sums, parents)
+    out["quantity"] = sums.cells[cell] if len(at) else np.zeros(0)
+    return out, at
+
+
+def parent_period_rows(frame: pd.DataFrame, parents: pd.DataFrame, columns: list[str]) -> tuple[pd.DataFrame,
+                                                                                                 np.ndarray]:
+    """`frame.groupby(PARENT + ["period_start"], as_index=False)[columns].sum()` over the rows of `parents`
+    (distinct keys): the same rows, order (product, site, period_start) and numbers (pandas' compensated sum,
+    rows in order, NaN skipped), by the compiled pass of `history_sums` once per column; and each output row's
+    position in `parents`."""
+    codes, by_id = _row_codes(frame)
+    window = _window(None, None)
+    sums = [_coded_sums(frame, frame[c].to_numpy(float), window, codes, by_id) for c in columns]
+    out, at, cell = _cells_of(sums[0], parents)
+    for c, summed in zip(columns, sums, strict=True):
+        out[c] = summed.cells[cell] if len(at) else np.zeros(0)
     return out, at
 
 
@@ -242,7 +249,7 @@ def window_rows(frame: pd.DataFrame, parents: pd.DataFrame, positions, low=None,
 
 # ----------------------------------------------------------------- what each chart draws, from the sums
 class ParentChartData(NamedTuple):
-    """The numbers of `report_charts.parent_chart`: every parent ranked (`_rank_parents`: product, site,
+    """The numbers of `report_charts.parent_chart`: every parent ranked (`rank_parents`: product, site,
     history_volume, forecast_volume, pos), the history and the forecast per parent and period (key order) with
     each row's parent position, and the forecast's interval levels."""
 
@@ -263,11 +270,8 @@ def parent_chart_data(forecast: pd.DataFrame, summed: HistorySums) -> ParentChar
     hist, hist_at = parent_history(summed, parents)
     bands = interval_levels(forecast)
     bound_cols = [c for lv in bands for c in (f"lower_{lv}", f"upper_{lv}")]
-    fc, fc_at = parent_period_sums(
-        forecast, np.ones(len(forecast), dtype=bool), parent_positions(forecast, parents), parents,
-        ["forecast"] + bound_cols,
-    )
-    ranked = _rank_parents(
+    fc, fc_at = parent_period_rows(forecast, parents, ["forecast"] + bound_cols)
+    ranked = rank_parents(
         parents,
         sums_by_parent(hist["quantity"].to_numpy(float), hist_at, len(parents)),
         sums_by_parent(fc["forecast"].to_numpy(float), fc_at, len(parents)),
@@ -307,7 +311,7 @@ def share_chart_data(
         return None
     at = summed.rows_of(parents)
     history_volume = np.where(at >= 0, summed.totals[np.maximum(at, 0)] if len(summed.totals) else 0.0, 0.0)
-    ranked = _rank_parents(parents, history_volume, window_sums(target, parents, "target", low=cycle))
+    ranked = rank_parents(parents, history_volume, window_sums(target, parents, "target", low=cycle))
     shown = ranked["pos"].to_numpy()[: max(int(top_parents), 0)]
     hist_shares = history_period_shares(history.iloc[summed.history_rows(at[shown])])
     targets = {p: target.iloc[window_rows(target, parents, [p], low=cycle)] for p in shown}

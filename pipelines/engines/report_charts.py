@@ -57,7 +57,6 @@ from pipelines.engines.chart_base import (
     _caption_text,
     _date_ticks,
     _empty_figure,
-    _in_class,
     _mark_horizon,
     _next_starts,
     _parent_label,
@@ -69,12 +68,12 @@ from pipelines.engines.chart_base import (
     chart_file_name,
     corrections_chart,
     figure_png,
+    in_class,
 )
 from pipelines.engines.chart_data import (
     HistorySums,
     history_period_shares,
     history_sums,
-    interval_levels,
     parent_chart_data,
     share_chart_data,
     stack_for_parent,
@@ -87,7 +86,7 @@ SHARE_HEIGHT = 1.85  # a share panel's axes
 
 __all__ = [
     "DPI", "WIDTH_IN", "CHILD_COLORS", "FORECAST_COLOR", "chart_file_name", "corrections_chart", "figure_png",
-    "history_period_shares", "interval_levels",
+    "history_period_shares",
 ]
 
 
@@ -109,7 +108,7 @@ def parent_chart_figure(
     title = f"Product class {product_class}: parent history and forecast, cycle {cycle:%Y-%m-%d}"
     unit = f"quantity per {period}"
     summed = summed if summed is not None else history_sums(history, cycle, period, history_periods)
-    data = parent_chart_data(_in_class(parent_forecast, product_class), summed)
+    data = parent_chart_data(in_class(parent_forecast, product_class), summed)
     if data is None:
         return _empty_figure(title, f"no parent of class {product_class} has a forecast in this cycle")
     ranked, hist, hist_at, fc, fc_at, bands = data
@@ -242,7 +241,7 @@ def share_chart_figure(
     cycle = pd.Timestamp(cycle_date)
     title = f"Product class {product_class}: customer shares of the largest parents, cycle {cycle:%Y-%m-%d}"
     summed = summed if summed is not None else history_sums(history, cycle, period, history_periods)
-    data = share_chart_data(history, _in_class(target, product_class), shares, cycle, summed, top_parents)
+    data = share_chart_data(history, in_class(target, product_class), shares, cycle, summed, top_parents)
     if data is None:
         return _empty_figure(title, f"no parent of class {product_class} has a reinitialized target in this cycle")
     ranked, hist_shares, targets, last_start, window_start = data
