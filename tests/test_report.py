@@ -118,6 +118,30 @@ def test_parent_chart_png_is_valid_deterministic_and_shows_the_forecast(parents)
     assert png == report_charts.parent_chart(hist, forecast, product_class="a", cycle_date=CYCLE, top_parents=2)
 
 
+def test_text_outlines_and_extents_kept_across_figures_are_the_fonts_own(parents):
+    # reference: matplotlib's own TextToPath and Agg renderer, nothing kept; the same text at two weights and sizes
+    from matplotlib.backends.backend_agg import RendererAgg
+    from matplotlib.font_manager import FontProperties
+    from matplotlib.textpath import TextToPath
+
+    from pipelines.engines import chart_base
+
+    kept, plain = chart_base._OutlineTextRenderer(10, 10, report_charts.DPI), RendererAgg(10, 10, report_charts.DPI)
+    for size, weight in ((8, "normal"), (13, "bold"), (8, "bold"), (8, "normal")):
+        prop = FontProperties(size=size, weight=weight)
+        for text in ("1,000", "history", "1,000"):
+            extent = kept.get_text_width_height_descent(text, prop, False)
+            assert extent == plain.get_text_width_height_descent(text, prop, False)
+            verts, codes = kept._text2path.get_text_path(prop, text)
+            own_verts, own_codes = TextToPath().get_text_path(prop, text)
+            assert np.array_equal(verts, own_verts) and np.array_equal(codes, own_codes)
+    hist, forecast = parents
+    png = report_charts.parent_chart(hist, forecast, product_class="a", cycle_date=CYCLE, top_parents=2)
+    chart_base._TEXT_PATHS._kept.clear()
+    chart_base._TEXT_EXTENTS.clear()
+    assert png == report_charts.parent_chart(hist, forecast, product_class="a", cycle_date=CYCLE, top_parents=2)
+
+
 def test_parent_chart_of_a_class_without_parents_is_still_a_picture(parents):
     hist, forecast = parents
     png = report_charts.parent_chart(hist, forecast, product_class="b", cycle_date=CYCLE)

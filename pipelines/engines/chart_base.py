@@ -29,6 +29,7 @@ from matplotlib.collections import PolyCollection
 from matplotlib.figure import Figure
 from matplotlib.font_manager import FontProperties
 from matplotlib.markers import TICKDOWN
+from matplotlib.textpath import TextToPath
 from matplotlib.ticker import FixedLocator, FuncFormatter, NullFormatter, NullLocator
 
 from pipelines.calendar import ordinal_to_start, period_ordinal
@@ -57,14 +58,56 @@ RIGHT_EDGE = 0.25
 LINE_IN = 0.14  # one caption line at 8 pt
 
 # ----------------------------------------------------------------- shared chart pieces
+class _TextPaths(TextToPath):
+    """`TextToPath` keeping the outline of each short text it made (tick labels, legend entries, titles repeat
+    across the panels and the charts of a run): the same vertices and codes, made once."""
+
+    LONGEST = 80  # characters: longer texts (captions) are drawn once, not kept
+    KEPT = 4096
+
+    def __init__(self):
+        super().__init__()
+        self._kept: dict = {}
+
+    def get_text_path(self, prop, s, ismath=False, **kwargs):
+        if len(s) > self.LONGEST:
+            return super().get_text_path(prop, s, ismath=ismath, **kwargs)
+        key = (s, ismath, tuple(sorted(kwargs.items())), prop.copy())
+        path = self._kept.get(key)
+        if path is None:
+            if len(self._kept) >= self.KEPT:
+                self._kept.clear()
+            path = self._kept[key] = super().get_text_path(prop, s, ismath=ismath, **kwargs)
+        return path
+
+
+_TEXT_PATHS = _TextPaths()
+_TEXT_EXTENTS: dict = {}  # (text, font properties, ismath, dpi) -> (width, height, descent) in pixels, any renderer
+
+
 class _OutlineTextRenderer(RendererAgg):
     """Agg drawing each line of text as one filled path of its glyphs' outlines (`RendererBase.draw_text`, as
     vector backends draw text), each distinct glyph's outline loaded once per line, instead of rendering and
     blending a bitmap per glyph: half the time on these text-heavy charts; same font, size and place, unhinted.
+    A short text's outline (`_TextPaths`) and every text's extent are made once per process, not once per
+    figure: the same numbers, from the same font at the same dpi.
     """
+
+    def __init__(self, width, height, dpi):
+        super().__init__(width, height, dpi)
+        self._text2path = _TEXT_PATHS
 
     def draw_text(self, gc, x, y, s, prop, angle, ismath=False, mtext=None):
         RendererBase.draw_text(self, gc, x, y, s, prop, angle, ismath, mtext)
+
+    def get_text_width_height_descent(self, s, prop, ismath):
+        key = (s, prop.copy(), ismath, self.dpi)
+        extent = _TEXT_EXTENTS.get(key)
+        if extent is None:
+            if len(_TEXT_EXTENTS) >= _TextPaths.KEPT:
+                _TEXT_EXTENTS.clear()
+            extent = _TEXT_EXTENTS[key] = super().get_text_width_height_descent(s, prop, ismath)
+        return extent
 
 
 class _Canvas(FigureCanvasAgg):
@@ -187,7 +230,7 @@ def _text_width(text: str, points: float) -> float:
     return width / DPI
 
 
-_MEASURE = RendererAgg(1, 1, DPI)
+_MEASURE = _OutlineTextRenderer(1, 1, DPI)
 
 
 def _place(fig: Figure, ax, left: float, top: float, width: float, height: float) -> None:
