@@ -10,7 +10,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from pipelines.engines import chart_data
+from pipelines.engines import chart_data, chart_sums
 from pipelines.keys import PARENT, add_ids
 
 CYCLE = pd.Timestamp("2026-02-02")
@@ -87,9 +87,10 @@ def test_window_sums_and_rows_are_the_group_sums_and_rows_of_the_window():
     horizon = target[target["period_start"] >= CYCLE]
     expected = horizon.groupby(PARENT, sort=False)["target"].sum()
     assert got.tolist() == expected.reindex(pd.MultiIndex.from_frame(parents)).to_numpy().tolist()
-    rows = chart_data.window_rows(target, parents, [1], low=CYCLE)
-    one = (target["product"] == parents["product"][1]) & (target["site"] == parents["site"][1])
-    assert rows.tolist() == np.flatnonzero((one & (target["period_start"] >= CYCLE)).to_numpy()).tolist()
+    rows = chart_data.window_rows(target, parents, [1, 3], low=CYCLE)
+    for p in (1, 3):
+        one = (target["product"] == parents["product"][p]) & (target["site"] == parents["site"][p])
+        assert rows[p].tolist() == np.flatnonzero((one & (target["period_start"] >= CYCLE)).to_numpy()).tolist()
 
 
 @pytest.mark.parametrize("with_ids", [False, True])
@@ -107,3 +108,44 @@ def test_parent_period_rows_are_the_group_sums_of_several_columns(with_ids):
     expected = asked.groupby(PARENT + ["period_start"], as_index=False)[["quantity", "lower_80"]].sum()
     pd.testing.assert_frame_equal(got, expected, check_exact=True)
     assert parents.iloc[at][PARENT].reset_index(drop=True).equals(got[PARENT])
+
+
+def test_present_sums_are_pandas_group_sums_by_row_and_by_column():
+    # reference: pandas' group sums over the present cells listed row by row; values where the compensation
+    # matters (a plain running sum differs), NaN cells skipped, absent cells (also those holding a value) left out
+    rng = np.random.default_rng(4)
+    cells = rng.normal(0, 1e7, (40, 9)) + rng.random((40, 9))
+    cells[rng.random(cells.shape) < 0.05] = np.nan
+    present = rng.random(cells.shape) < 0.8
+    rows, columns = np.nonzero(present)
+    listed = pd.DataFrame({"row": rows, "column": columns, "value": cells[rows, columns]})
+    by_row, by_column = chart_sums.present_sums(cells, present)
+    expected_rows = listed.groupby("row")["value"].sum().reindex(range(40), fill_value=0.0)
+    expected_columns = listed.groupby("column")["value"].sum().reindex(range(9), fill_value=0.0)
+    assert by_row.tolist() == expected_rows.tolist() and by_column.tolist() == expected_columns.tolist()
+    plain = [float(np.nansum(cells[i][present[i]])) for i in range(40)]
+    assert plain != expected_rows.tolist()  # the data tells a compensated sum from a plain one
+
+
+@pytest.mark.parametrize("with_ids", [False, True])
+def test_parent_chart_data_is_the_group_sums_of_the_parents_history(with_ids):
+    # reference: the history per parent and period (`parent_history`, itself checked against pandas above) summed
+    # again by pandas per period and per parent, as the chart drew it from those rows before
+    history = long_history(seed=11)
+    if with_ids:
+        history = add_ids(history)
+    summed = chart_data.history_sums(history, CYCLE, "week")
+    keys = PARENT + (["parent_id"] if with_ids else [])
+    parents = history[keys].drop_duplicates().iloc[1:].reset_index(drop=True)  # one parent without a forecast
+    weeks = pd.date_range(CYCLE, periods=3, freq="7D")
+    forecast = parents.loc[parents.index.repeat(3)].assign(period_start=np.tile(weeks, len(parents)),
+                                                             forecast=1.5).reset_index(drop=True)
+    data = chart_data.parent_chart_data(forecast, summed, top_parents=2)
+    hist, at = chart_data.parent_history(summed, parents)
+    expected_total = hist.groupby("period_start")["quantity"].sum()
+    pd.testing.assert_series_equal(data.history_total, expected_total, check_exact=True, check_freq=False)
+    volume = chart_data.sums_by_parent(hist["quantity"].to_numpy(float), at, len(parents))
+    assert data.ranked.sort_values("pos")["history_volume"].tolist() == volume.tolist()
+    shown = data.ranked["pos"].to_numpy()[:2]
+    pd.testing.assert_frame_equal(data.hist, hist[np.isin(at, shown)].reset_index(drop=True), check_exact=True)
+    assert data.hist_at.tolist() == at[np.isin(at, shown)].tolist()

@@ -151,7 +151,8 @@ def rank_parents(parents: pd.DataFrame, history_volume: np.ndarray, forecast_vol
 def in_class(frame: pd.DataFrame, product_class: str) -> pd.DataFrame:
     """The rows of `product_class` where the frame has a `product_class` column, else the frame as it is."""
     if "product_class" in frame.columns:
-        return frame[frame["product_class"] == product_class]
+        mine = (frame["product_class"] == product_class).to_numpy()
+        return frame if mine.all() else frame[mine]
     return frame
 
 

@@ -94,6 +94,8 @@ class HistorySums:
     codes: np.ndarray  # (history rows,) each history row's parent code (a view of `parent_id` where it is used)
     starts: np.ndarray  # (history rows,) period starts as int64 nanoseconds (a view)
     window: tuple[int, int]  # the rows kept: low <= start < high (ns)
+    first: np.ndarray  # (parents,) each parent's first kept history row
+    last: np.ndarray  # (parents,) and its last
 
     def rows_of(self, parents: pd.DataFrame) -> np.ndarray:
         """Row of the matrices of each of `parents` (distinct keys), -1 for a parent without history rows."""
@@ -105,10 +107,15 @@ class HistorySums:
         return lookup(parents, PARENT, self.keys) if len(self.keys) else np.full(len(parents), -1, dtype=np.int64)
 
     def history_rows(self, rows: np.ndarray) -> np.ndarray:
-        """Positions, in order, of the history rows in the window of the parents at `rows` of the matrices."""
+        """Positions, in order, of the history rows in the window of the parents at `rows` of the matrices, looked
+        for between the first and the last kept row of those parents only."""
+        rows = rows[rows >= 0]
+        if not len(rows):
+            return np.zeros(0, dtype=np.int64)
         wanted = np.zeros(int(self.code_of.max(initial=-1)) + 1, dtype=bool)
-        wanted[self.code_of[rows[rows >= 0]]] = True
-        return chart_sums.rows_of(self.codes, wanted, self.starts, *self.window)
+        wanted[self.code_of[rows]] = True
+        lo, hi = int(self.first[rows].min()), int(self.last[rows].max()) + 1
+        return chart_sums.rows_of(self.codes, wanted, self.starts, *self.window, lo, hi)
 
 
 def history_sums(history: pd.DataFrame, cycle, period: str, history_periods: int | None = None) -> HistorySums:
@@ -143,15 +150,17 @@ def _coded_sums(
     first, last, kept = chart_sums.kept_span(starts, low, high)
     n_codes = max(int(codes.max()) + 1, 0) if len(codes) else 0
     first_row = np.full(n_codes, -1, dtype=np.int64)
+    last_row = np.full(n_codes, -1, dtype=np.int64)
     if not kept:
         first = last = 0
     keys, unit = starts, chart_sums.DAY_NS
     seen = np.zeros((last - first) // unit + 1, dtype=bool)
-    if not chart_sums.mark(codes, starts, low, high, keys, first, unit, seen, first_row):  # not whole days apart
+    # the periods numbered by day from the first; else, when starts are not whole days apart, by their distinct values
+    if not chart_sums.mark(codes, starts, low, high, keys, first, unit, seen, first_row, last_row):
         keys, unique = pd.factorize(starts, sort=True)
         first, unit, seen = 0, 1, np.zeros(len(unique), dtype=bool)
         unique = np.asarray(unique)
-        chart_sums.mark(codes, starts, low, high, keys, first, unit, seen, first_row)
+        chart_sums.mark(codes, starts, low, high, keys, first, unit, seen, first_row, last_row)
     code_of = np.flatnonzero(first_row >= 0)
     dense = np.full(n_codes, -1, dtype=np.int64)
     dense[code_of] = np.arange(len(code_of))
@@ -163,7 +172,7 @@ def _coded_sums(
     return HistorySums(
         cells=cells, rows=rows, totals=totals, periods=np.asarray(periods).astype("datetime64[ns]"),
         keys=pd.DataFrame({c: frame[c].to_numpy()[at] for c in PARENT if c in frame.columns}), by_id=by_id,
-        code_of=code_of, codes=codes, starts=starts, window=window,
+        code_of=code_of, codes=codes, starts=starts, window=window, first=at, last=last_row[code_of],
     )
 
 
@@ -238,45 +247,70 @@ def window_sums(frame: pd.DataFrame, parents: pd.DataFrame, column: str, low=Non
     return np.concatenate([totals, np.zeros(len(parents) - len(totals))])
 
 
-def window_rows(frame: pd.DataFrame, parents: pd.DataFrame, positions, low=None, high=None) -> np.ndarray:
-    """Positions, in order, of the rows of `frame` whose parent is one of `parents` at `positions` and whose
-    period_start is in [low, high)."""
+def window_rows(frame: pd.DataFrame, parents: pd.DataFrame, positions, low=None, high=None) -> dict:
+    """For each of `parents` at `positions`: the positions, in order, of its rows of `frame` whose period_start is
+    in [low, high), all found in one pass."""
+    positions = np.asarray(positions, dtype=np.int64)
     codes, dense = _parent_codes(frame, parents)
-    wanted = np.isin(dense, np.asarray(positions, dtype=np.int64))
+    wanted = np.isin(dense, positions)
     starts = frame["period_start"].to_numpy("datetime64[ns]").view(np.int64)
-    return chart_sums.rows_of(codes, wanted, starts, *_window(low, high))
+    rows = chart_sums.rows_of(codes, wanted, starts, *_window(low, high), 0, len(codes))
+    at = dense[codes[rows]]
+    return {p: rows[at == p] for p in positions.tolist()}
 
 
 # ----------------------------------------------------------------- what each chart draws, from the sums
 class ParentChartData(NamedTuple):
     """The numbers of `report_charts.parent_chart`: every parent ranked (`rank_parents`: product, site,
-    history_volume, forecast_volume, pos), the history and the forecast per parent and period (key order) with
-    each row's parent position, and the forecast's interval levels."""
+    history_volume, forecast_volume, pos); the history of the `top_parents` first ranked per parent and period
+    (key order) with each row's parent position; the history of every parent summed per period; the forecast per
+    parent and period (key order) with each row's parent position; the forecast's interval levels."""
 
     ranked: pd.DataFrame
     hist: pd.DataFrame
     hist_at: np.ndarray
+    history_total: pd.Series
     forecast: pd.DataFrame
     forecast_at: np.ndarray
     bands: list[str]
 
 
-def parent_chart_data(forecast: pd.DataFrame, summed: HistorySums) -> ParentChartData | None:
+def parent_chart_data(forecast: pd.DataFrame, summed: HistorySums, top_parents: int) -> ParentChartData | None:
     """The class's parents with a forecast (`forecast`: the class's parent_forecast rows), their history sums and
-    forecast per period, ranked by history volume, then forecast volume, then key; None without parents."""
+    forecast per period, ranked by history volume, then forecast volume, then key; None without parents.
+
+    The history's numbers are those of its rows per parent and period (`parent_history`) summed again with
+    pandas' group sum, per parent and per period (`chart_sums.present_sums`: the same compensated sums in the
+    same order), read off the matrices of `summed` without making those rows but for the parents drawn.
+    """
     parents = distinct_parents(forecast)
     if parents.empty:
         return None
-    hist, hist_at = parent_history(summed, parents)
+    at_row = summed.rows_of(parents)
+    by_rank = np.argsort(key_order(parents))
+    ordered = by_rank[at_row[by_rank] >= 0]  # the parents with history, in key order
+    present = summed.rows[at_row[ordered]] > 0
+    volume, per_period = chart_sums.present_sums(summed.cells[at_row[ordered]], present)
+    history_volume = np.zeros(len(parents))
+    history_volume[ordered] = volume
+    drawn = present.any(axis=0)
+    history_total = pd.Series(per_period[drawn], index=pd.Index(summed.periods[drawn], name="period_start"),
+                              name="quantity")
     bands = interval_levels(forecast)
     bound_cols = [c for lv in bands for c in (f"lower_{lv}", f"upper_{lv}")]
     fc, fc_at = parent_period_rows(forecast, parents, ["forecast"] + bound_cols)
-    ranked = rank_parents(
-        parents,
-        sums_by_parent(hist["quantity"].to_numpy(float), hist_at, len(parents)),
-        sums_by_parent(fc["forecast"].to_numpy(float), fc_at, len(parents)),
-    )
-    return ParentChartData(ranked, hist, hist_at, fc, fc_at, bands)
+    ranked = rank_parents(parents, history_volume, sums_by_parent(fc["forecast"].to_numpy(float), fc_at,
+                                                                  len(parents)))
+    shown = ranked["pos"].to_numpy()[: max(int(top_parents), 0)]
+    shown = shown[np.argsort(key_order(parents)[shown], kind="stable")]
+    shown = shown[at_row[shown] >= 0]
+    cells = [np.flatnonzero(summed.rows[at_row[p]] > 0) for p in shown]
+    hist_at = np.repeat(shown, [len(c) for c in cells]).astype(np.int64)
+    period = np.concatenate(cells) if cells else np.zeros(0, dtype=np.int64)
+    hist = pd.DataFrame({c: parents[c].to_numpy()[hist_at] for c in PARENT})
+    hist["period_start"] = summed.periods[period]
+    hist["quantity"] = summed.cells[at_row[hist_at], period] if len(period) else np.zeros(0)
+    return ParentChartData(ranked, hist, hist_at, history_total, fc, fc_at, bands)
 
 
 def interval_levels(frame: pd.DataFrame) -> list[str]:
@@ -314,7 +348,7 @@ def share_chart_data(
     ranked = rank_parents(parents, history_volume, window_sums(target, parents, "target", low=cycle))
     shown = ranked["pos"].to_numpy()[: max(int(top_parents), 0)]
     hist_shares = history_period_shares(history.iloc[summed.history_rows(at[shown])])
-    targets = {p: target.iloc[window_rows(target, parents, [p], low=cycle)] for p in shown}
+    targets = {p: target.iloc[rows] for p, rows in window_rows(target, parents, shown, low=cycle).items()}
     window_start = {}
     if shares is not None and len(shares):
         share_pos = parent_positions(shares, parents)

@@ -47,10 +47,11 @@ def kept_span(starts, low, high):
 
 
 @njit(cache=True)
-def mark(codes, starts, low, high, keys, first, unit, seen, first_row):
+def mark(codes, starts, low, high, keys, first, unit, seen, first_row, last_row):
     """For each kept row (low <= start < high, NaT never kept): seen[(key - first) // unit] = True, and the row's
-    position in first_row[code] when its parent code has none yet. False, at once, when a kept row's key is not a
-    whole number of units after `first` (the caller then numbers the periods otherwise)."""
+    position in first_row[code] when its parent code has none yet, in last_row[code] always (the code's last kept
+    row). False, at once, when a kept row's key is not a whole number of units after `first` (the caller then
+    numbers the periods otherwise)."""
     for i in range(len(codes)):
         s = starts[i]
         code = codes[i]
@@ -62,6 +63,7 @@ def mark(codes, starts, low, high, keys, first, unit, seen, first_row):
         seen[d // unit] = True
         if first_row[code] < 0:
             first_row[code] = i
+        last_row[code] = i
     return True
 
 
@@ -121,20 +123,44 @@ def code_sums(codes, dense, starts, low, high, values):
 
 
 @njit(cache=True)
-def rows_of(codes, wanted, starts, low, high):
-    """Positions of the rows whose code is `wanted` (bool per code) and whose start is in [low, high), in order."""
+def rows_of(codes, wanted, starts, low, high, lo, hi):
+    """Positions of the rows whose code is `wanted` (bool per code) and whose start is in [low, high), in order,
+    looked for in rows lo <= i < hi only (a span known to hold them all)."""
     n = 0
-    for i in range(len(codes)):
+    for i in range(lo, hi):
         code = codes[i]
         s = starts[i]
         if 0 <= code < len(wanted) and wanted[code] and s != NAT and low <= s < high:
             n += 1
     out = np.empty(n, dtype=np.int64)
     k = 0
-    for i in range(len(codes)):
+    for i in range(lo, hi):
         code = codes[i]
         s = starts[i]
         if 0 <= code < len(wanted) and wanted[code] and s != NAT and low <= s < high:
             out[k] = i
             k += 1
     return out
+
+
+@njit(cache=True)
+def present_sums(cells, present):
+    """(row sums (rows,), column sums (columns,)) of the cells where `present`, each with pandas' compensated group
+    sum: a row's over its columns left to right, a column's over the rows top down; 0 where none is present. As
+    `groupby(row)[...].sum()` and `groupby(column)[...].sum()` over the present cells listed row by row."""
+    n_rows, n_cols = cells.shape
+    row_sums = np.zeros(n_rows)
+    col_sums = np.zeros(n_cols)
+    col_c = np.zeros(n_cols)
+    for i in range(n_rows):
+        total, comp = 0.0, 0.0
+        for j in range(n_cols):
+            if not present[i, j]:
+                continue
+            v = cells[i, j]
+            if v != v:
+                continue
+            total, comp = compensated_add(total, comp, v)
+            col_sums[j], col_c[j] = compensated_add(col_sums[j], col_c[j], v)
+        row_sums[i] = total
+    return row_sums, col_sums

@@ -108,10 +108,10 @@ def parent_chart_figure(
     title = f"Product class {product_class}: parent history and forecast, cycle {cycle:%Y-%m-%d}"
     unit = f"quantity per {period}"
     summed = summed if summed is not None else history_sums(history, cycle, period, history_periods)
-    data = parent_chart_data(in_class(parent_forecast, product_class), summed)
+    data = parent_chart_data(in_class(parent_forecast, product_class), summed, top_parents)
     if data is None:
         return _empty_figure(title, f"no parent of class {product_class} has a forecast in this cycle")
-    ranked, hist, hist_at, fc, fc_at, bands = data
+    ranked, hist, hist_at, th, fc, fc_at, bands = data
     shown = ranked.head(max(int(top_parents), 0))
     hidden = ranked.iloc[len(shown):]
     horizon_end = shift_periods(fc["period_start"].max(), 1, period)
@@ -147,7 +147,6 @@ def parent_chart_figure(
     fig.suptitle(title, fontsize=13, fontweight="bold", y=1.0 - 0.12 / height, va="top")
 
     total = fig.add_axes((0, 0, 1, 1))
-    th = hist.groupby("period_start")["quantity"].sum().sort_index()
     tf = fc.groupby("period_start")["forecast"].sum().sort_index()
     _mark_horizon(total, cycle, horizon_end, label=True)
     total.plot(_x(th.index), th.to_numpy(), color=HISTORY_COLOR, lw=1.2, label="history")
