@@ -155,8 +155,7 @@ def _coded_sums(
         first = last = 0
     keys, unit = starts, chart_sums.DAY_NS
     seen = np.zeros((last - first) // unit + 1, dtype=bool)
-    # the periods numbered by day from the first; else, when starts are not whole days apart, by their distinct values
-    if not chart_sums.mark(codes, starts, low, high, keys, first, unit, seen, first_row, last_row):
+    if not chart_sums.mark(codes, starts, low, high, keys, first, unit, seen, first_row, last_row):  # not days
         keys, unique = pd.factorize(starts, sort=True)
         first, unit, seen = 0, 1, np.zeros(len(unique), dtype=bool)
         unique = np.asarray(unique)
@@ -277,12 +276,9 @@ class ParentChartData(NamedTuple):
 
 def parent_chart_data(forecast: pd.DataFrame, summed: HistorySums, top_parents: int) -> ParentChartData | None:
     """The class's parents with a forecast (`forecast`: the class's parent_forecast rows), their history sums and
-    forecast per period, ranked by history volume, then forecast volume, then key; None without parents.
-
-    The history's numbers are those of its rows per parent and period (`parent_history`) summed again with
-    pandas' group sum, per parent and per period (`chart_sums.present_sums`: the same compensated sums in the
-    same order), read off the matrices of `summed` without making those rows but for the parents drawn.
-    """
+    forecast per period, ranked by history volume, then forecast volume, then key; None without parents. The
+    history's numbers: its rows per parent and period (`parent_history`) summed again per parent and per period
+    with pandas' group sum (`chart_sums.present_sums`), read off `summed`; rows made for the parents drawn only."""
     parents = distinct_parents(forecast)
     if parents.empty:
         return None
