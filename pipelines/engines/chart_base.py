@@ -28,6 +28,7 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg, RendererAgg
 from matplotlib.collections import PolyCollection
 from matplotlib.figure import Figure
 from matplotlib.font_manager import FontProperties
+from matplotlib.ft2font import LoadFlags
 from matplotlib.markers import TICKDOWN
 from matplotlib.textpath import TextToPath
 from matplotlib.ticker import FixedLocator, FuncFormatter, NullFormatter, NullLocator
@@ -60,25 +61,46 @@ LINE_IN = 0.14  # one caption line at 8 pt
 # ----------------------------------------------------------------- shared chart pieces
 class _TextPaths(TextToPath):
     """`TextToPath` keeping the outline of each short text it made (tick labels, legend entries, titles repeat
-    across the panels and the charts of a run): the same vertices and codes, made once."""
+    across the panels and the charts of a run) and of each glyph (`TextToPath.get_text_path`'s own steps, its
+    glyphs' outlines kept over texts, not loaded again for every character): the same vertices and codes."""
 
-    LONGEST = 80  # characters: longer texts (captions) are drawn once, not kept
+    LONGEST = 80  # characters: longer texts (captions) are laid out each time, from the glyphs kept
     KEPT = 4096
 
     def __init__(self):
         super().__init__()
         self._kept: dict = {}
+        self._glyphs: dict = {}  # glyph's name (font, index) -> its outline (vertices, codes) at FONT_SCALE
 
     def get_text_path(self, prop, s, ismath=False, **kwargs):
-        if len(s) > self.LONGEST:
+        if ismath or any(v is not None for v in kwargs.values()):
             return super().get_text_path(prop, s, ismath=ismath, **kwargs)
-        key = (s, ismath, tuple(sorted(kwargs.items())), prop.copy())
+        if len(s) > self.LONGEST:
+            return self._outline(prop, s)
+        key = (s, prop.copy())
         path = self._kept.get(key)
         if path is None:
             if len(self._kept) >= self.KEPT:
                 self._kept.clear()
-            path = self._kept[key] = super().get_text_path(prop, s, ismath=ismath, **kwargs)
+            path = self._kept[key] = self._outline(prop, s)
         return path
+
+    def _outline(self, prop, s):
+        """`TextToPath.get_text_path(prop, s)` for plain text: each glyph's outline placed where the layout puts
+        it (`verts * 1.0 + [x, y]`, as there), a glyph's outline loaded only when not kept."""
+        font = self._get_font(prop)
+        verts, codes = [], []
+        for item in font._layout(s, LoadFlags.NO_HINTING):
+            name = self._get_glyph_repr(item.ft_object, item.glyph_index)
+            glyph = self._glyphs.get(name)
+            if glyph is None:
+                item.ft_object.load_glyph(item.glyph_index, flags=LoadFlags.NO_HINTING)
+                glyph = self._glyphs[name] = item.ft_object.get_path()
+            verts.append(glyph[0] * 1.0 + [item.x, item.y])
+            codes.append(glyph[1])
+        if not verts:
+            return np.empty((0, 2)), []
+        return np.concatenate(verts), np.concatenate(codes)
 
 
 _TEXT_PATHS = _TextPaths()
