@@ -284,6 +284,7 @@ def share_chart_figure(
         at_cycle = bands[bands.index >= cycle].iloc[0] if (bands.index >= cycle).any() else None
         bottom = np.zeros(len(bands))
         drawn = ~bands.isna().all(axis=1).to_numpy()
+        corners = []  # every bar's corners: the data limits `add_collection(autolim=True)` would find, found once
         for j, column in enumerate(bands.columns):
             values = bands[column].fillna(0.0).to_numpy(dtype=float)
             label = f"{OTHER} ({n_rest} customer{'s' if n_rest > 1 else ''})" if column == OTHER else str(column)
@@ -291,9 +292,14 @@ def share_chart_figure(
                 label += f"  {at_cycle[column]:.1%}"
             color = OTHER_COLOR if column == OTHER else CHILD_COLORS[j % len(CHILD_COLORS)]
             ax.add_collection(
-                _bars(left[drawn], width[drawn], bottom[drawn], values[drawn], color=color, label=label), autolim=True
+                _bars(left[drawn], width[drawn], bottom[drawn], values[drawn], color=color, label=label),
+                autolim=False,
             )
+            corners += [left[drawn], left[drawn] + width[drawn], bottom[drawn], bottom[drawn] + values[drawn]]
             bottom = bottom + values
+        if corners and len(corners[0]):
+            xs, ys = np.concatenate(corners[0::4] + corners[1::4]), np.concatenate(corners[2::4] + corners[3::4])
+            ax.update_datalim([[xs.min(), ys.min()], [xs.max(), ys.max()]])
         if row.pos in window_start:
             ax.axvline(_x(window_start[row.pos]), color=CYCLE_COLOR, ls=":", lw=1.0, zorder=3,
                        label="share window start" if i == 0 else None)
