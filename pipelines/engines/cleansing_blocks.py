@@ -26,8 +26,9 @@ import pandas as pd
 
 from pipelines.calendar import season_length
 from pipelines.engines.cleansing import correction_rows
-from pipelines.engines.outliers import judge_values, rolling_median, rule_parameters, seasonal_component
+from pipelines.engines.outliers import CHUNK_CELLS, judge_values, rolling_median, rule_parameters, seasonal_component
 
+ONE_PASS_WINDOW = 13  # the default outlier window: a history of n x t cells takes the one pass from n x t x 13
 BLOCK_CELLS = 2_000_000  # leaf x period cells per block: about 16 MB per float64 matrix, some 20 held at once
 
 
@@ -70,7 +71,7 @@ class Lines:
 
 
 CELL_COLUMNS = (  # the kept cells' columns and their types, in the order of cleaned_history
-    ("col", np.int32),
+    ("period_start", np.dtype("datetime64[ns]")),
     ("quantity", np.float64),
     ("raw_quantity", np.float64),
     ("lines", np.int64),
@@ -117,19 +118,36 @@ class Grid:
     leaf_class: np.ndarray  # product class per leaf (object)
     parent: np.ndarray  # parent code per leaf
     short_by_parent: np.ndarray  # bool (n_parents, t): a shortage recorded on the parent in that period
+    period_ns: np.ndarray  # datetime64[ns] (t,): the start of each grid column
 
 
 def clean_blocks(lines: Lines, grid: Grid, settings, block_cells: int = BLOCK_CELLS) -> Blocks:
     """Rules 2-7 of the cleansing (bucketing to shortage handling), a block of leaves at a time."""
     n, t = len(grid.start), grid.t
-    step = max(1, block_cells // max(t, 1))
     out = Blocks.sized(n, t)
+    if _one_pass(n, t, grid, settings):
+        from pipelines.engines.cleansing_rows import clean_leaf_rows  # numba loaded only for a large history
+
+        clean_leaf_rows(lines, grid, settings, out, block_cells)
+        return out
+    step = max(1, block_cells // max(t, 1))
     flagged = np.zeros(grid.short_by_parent.shape, dtype=np.int64)
     for a in range(0, n, step):  # a loop over blocks of leaves, not over series
         b = min(n, a + step)
         _clean_block(lines.block(a, b), a, b, grid, settings, out, flagged)
     out.flagged = flagged
     return out
+
+
+def _one_pass(n: int, t: int, grid: Grid, settings) -> bool:
+    """Whether the leaf rows are cleaned in one compiled pass each (`cleansing_rows`): a history whose windows
+    exceed one numpy chunk (`outliers.CHUNK_CELLS`, the size the compiled sweep takes a class matrix from) and
+    classes that pass takes (no seasonal adjustment, shortages excluded). Both paths give the same tables."""
+    if n * t * ONE_PASS_WINDOW <= CHUNK_CELLS:
+        return False
+    from pipelines.engines.cleansing_rows import takes
+
+    return takes(grid.leaf_class, settings)
 
 
 def _clean_block(block, a: int, b: int, grid: Grid, settings, out: Blocks, flagged: np.ndarray) -> None:
@@ -170,7 +188,7 @@ def _clean_block(block, a: int, b: int, grid: Grid, settings, out: Blocks, flagg
     at = np.flatnonzero(keep)
     lo, hi = out.size, out.size + len(at)
     cells = out.columns
-    cells["col"][lo:hi] = at % t
+    grid.period_ns.take(at % t, out=cells["period_start"][lo:hi], mode="clip")
     values.ravel().take(at, out=cells["quantity"][lo:hi], mode="clip")
     net.ravel().take(at, out=cells["raw_quantity"][lo:hi], mode="clip")
     lines.ravel().take(at, out=cells["lines"][lo:hi], mode="clip")

@@ -188,6 +188,7 @@ def clean_history(
         leaf_class=leaves["product"].map(product_class).to_numpy(dtype=object),
         parent=parent,
         short_by_parent=by_parent,
+        period_ns=ordinal_to_start(np.arange(t) + first_ord, period).to_numpy(),  # written per kept cell
     )
     blocks = clean_blocks(lines, grid, config, config.block_cells)
     del lines
@@ -196,9 +197,7 @@ def clean_history(
     cells = blocks.cells()
     # the cells come leaf by leaf: each key repeated over its leaf's kept cells (no leaf code per cell)
     columns = {c: np.repeat(leaves[c].to_numpy(), blocks.kept) for c in LEAF}
-    # the grid's t period starts, reached by each cell's column (one gather, not a date conversion per cell)
-    columns["period_start"] = ordinal_to_start(np.arange(t) + first_ord, period).to_numpy()[cells.pop("col")]
-    for name in ("quantity", "raw_quantity", "lines", "filled", "corrected", "shortage"):
+    for name in ("period_start", "quantity", "raw_quantity", "lines", "filled", "corrected", "shortage"):
         columns[name] = cells.pop(name)
     cleaned = pd.DataFrame(columns, copy=False)  # the arrays themselves, not copied column by column
     del columns
