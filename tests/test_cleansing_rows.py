@@ -80,8 +80,10 @@ def _one_row(lines, t, start, end, kind, window=5, scale=3.0 * MAD_SCALE, both=F
     found = [np.empty(2 * t, dtype=d) for d in (np.int64, np.int32, np.int8, np.float64, np.float64)]
     stats = np.empty((2 * t, 3))
     kept, flagged = np.zeros(1, dtype=np.int64), np.zeros((1, t), dtype=np.int64)
+    runs = (np.array([0]), np.array([len(lines)]), np.ones(len(lines), dtype=bool), col, np.int32(0))
     cells, k = clean_rows(
-        np.array([0, len(lines)]), col, qty, t, np.array([start]), np.array([end]), np.zeros(1, dtype=np.int64),
+        np.array([0, 1]), *runs, np.arange(len(lines)), qty, t, np.array([start]), np.array([end]),
+        np.zeros(1, dtype=np.int64),
         by_parent, np.zeros(1, dtype=np.int64), np.array([kind]), np.array([window]), np.array([scale]),
         np.array([both]), np.array([to_median]), np.arange(t, dtype=np.int64) * 10, *out, 0, kept, flagged,
         *found, stats, 7,

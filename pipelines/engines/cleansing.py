@@ -28,12 +28,40 @@ from pipelines.text_codes import RUNS_SHARE, codes_of, first_appearances, run_st
 
 @dataclass(frozen=True)
 class UsedLines:
-    """The usable lines as integers: leaf code (by first appearance), period ordinal and quantity per line."""
+    """The usable lines as integers, read in place from the raw lines' arrays: each raw line's period ordinal
+    and quantity code, whether it is used, and the runs of lines of one key that hold a used line (in line
+    order; each used line a run of its own where the lines are not in runs) with the leaf code of each
+    (0..len(leaves) - 1, numbered by first appearance). No array of the used lines is made unless asked for
+    (`leaf_code`, `ordinal`, `quantity`: the used lines in line order)."""
 
-    leaf_code: np.ndarray  # int64 per line, 0..len(leaves) - 1
     leaves: pd.DataFrame  # product, site, customer of each code
-    ordinal: np.ndarray  # int32 period number per line
-    quantity: np.ndarray  # float64 per line
+    line_ordinal: np.ndarray  # int32 period number per raw line (a rejected line's: the largest int32)
+    qty_code: np.ndarray  # per raw line: its distinct quantity cell
+    qty_values: np.ndarray  # float64 per distinct quantity cell
+    used: np.ndarray  # bool per raw line
+    run_start: np.ndarray  # int64 first raw line of each run holding a used line
+    run_length: np.ndarray  # int64 raw lines of the run
+    run_used: np.ndarray  # int64 used lines of the run
+    leaf_of_run: np.ndarray  # int64 leaf code of the run
+
+    @property
+    def leaf_code(self) -> np.ndarray:
+        return np.repeat(self.leaf_of_run, self.run_used)
+
+    @property
+    def ordinal(self) -> np.ndarray:
+        return self.line_ordinal[self.used]
+
+    @property
+    def quantity(self) -> np.ndarray:
+        return self.qty_values[self.qty_code[self.used]]
+
+    def first_ordinals(self) -> np.ndarray:
+        """Each leaf's first period ordinal with a used line (int64; every leaf has one)."""
+        first = np.full(len(self.leaves), np.iinfo(np.int32).max, dtype=np.int64)
+        if len(self.run_start):  # runs in line order; the lines between two runs are rejected: the largest int32
+            np.minimum.at(first, self.leaf_of_run, np.minimum.reduceat(self.line_ordinal, self.run_start))
+        return first
 
 
 def reject_lines(
@@ -133,19 +161,22 @@ def reject_lines(
     mark(has_date & (ordinals >= cycle_ord), "on_or_after_cycle_date")
 
     ok = free
-    at = np.flatnonzero(ok)
-    if starts is None:
-        leaf_code = pd.factorize(run_code[ok])[0].astype(np.int64)  # no runs: a code per line
-        first_used = first_appearances(leaf_code)  # each leaf's first used line (a place in `at`)
+    ordinals[~ok] = np.iinfo(np.int32).max  # in place (this function's own): a rejected line's period is no period
+    if starts is None:  # no runs: each used line a run of its own, a code per line
+        run_start = np.flatnonzero(ok)
+        run_length = run_used = np.ones(len(run_start), dtype=np.int64)
+        leaf_of_run = pd.factorize(run_code[ok])[0].astype(np.int64)
     else:  # numbered by first appearance among the used lines = among the runs holding one, coded per run
         per_run = np.add.reduceat(ok, starts, dtype=np.int64) if len(starts) else np.zeros(0, dtype=np.int64)
         used_runs = np.flatnonzero(per_run)
         leaf_of_run = pd.factorize(run_code[used_runs])[0].astype(np.int64)
-        leaf_code = np.repeat(leaf_of_run, per_run[used_runs])  # the used lines' codes, run by run
-        run_first = np.cumsum(per_run)[used_runs] - per_run[used_runs]  # each used run's first used line
-        first_used = run_first[first_appearances(leaf_of_run)]
-    leaves = raw.iloc[at[first_used]][LEAF].reset_index(drop=True) if len(at) else raw[LEAF].iloc[0:0]
-    used = UsedLines(leaf_code, leaves.reset_index(drop=True), ordinals[at], qty_values[qty_code[at]])
+        run_start, run_length, run_used = starts[used_runs], lengths[used_runs], per_run[used_runs]
+    first_used = run_start[first_appearances(leaf_of_run)]  # each leaf's first run: its first used line
+    for i in np.flatnonzero(~ok[first_used]).tolist():  # a run whose first lines were rejected (rare)
+        first_used[i] += int(np.argmax(ok[first_used[i] :]))
+    leaves = raw.iloc[first_used][LEAF].reset_index(drop=True) if len(first_used) else raw[LEAF].iloc[0:0]
+    used = UsedLines(leaves.reset_index(drop=True), ordinals, qty_code, qty_values, ok, run_start, run_length,
+                     run_used, leaf_of_run)
     rejected = raw.loc[~ok].drop(columns=["read_error"], errors="ignore").copy()
     rejected["reason"] = np.array([None, *reasons], dtype=object)[reason[~ok]]
     return used, rejected.reset_index(drop=True), cycle_date

@@ -121,15 +121,20 @@ class Grid:
     period_ns: np.ndarray  # datetime64[ns] (t,): the start of each grid column
 
 
-def clean_blocks(lines: Lines, grid: Grid, settings, block_cells: int = BLOCK_CELLS) -> Blocks:
-    """Rules 2-7 of the cleansing (bucketing to shortage handling), a block of leaves at a time."""
+def clean_blocks(used, first_ord: int, grid: Grid, settings, block_cells: int = BLOCK_CELLS) -> Blocks:
+    """Rules 2-7 of the cleansing (bucketing to shortage handling), a block of leaves at a time, on the used
+    lines of `cleansing.reject_lines` (`used`; grid column = period ordinal - `first_ord`)."""
     n, t = len(grid.start), grid.t
     out = Blocks.sized(n, t)
     if _one_pass(n, t, grid, settings):
         from pipelines.engines.cleansing_rows import clean_leaf_rows  # numba loaded only for a large history
 
-        clean_leaf_rows(lines, grid, settings, out, block_cells)
+        clean_leaf_rows(used, first_ord, grid, settings, out, block_cells)
         return out
+    col = used.ordinal  # the used lines gathered in line order, then grouped by leaf
+    col -= first_ord
+    lines = Lines.of(used.leaf_code, col.astype(np.int32, copy=False), used.quantity)
+    del col
     step = max(1, block_cells // max(t, 1))
     flagged = np.zeros(grid.short_by_parent.shape, dtype=np.int64)
     for a in range(0, n, step):  # a loop over blocks of leaves, not over series

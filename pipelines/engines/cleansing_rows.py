@@ -25,6 +25,7 @@ import pandas as pd
 from numba import njit
 
 from pipelines.engines.cleansing import _parameter_texts
+from pipelines.engines.cleansing_blocks import stable_order
 from pipelines.engines.outliers import MAD_SCALE, rule_parameters, tukey_fences
 from pipelines.engines.rolling_order import _clipped, _sweep_row
 
@@ -33,21 +34,24 @@ NEGATIVE, OUTLIER = 0, 1  # the rule of a correction row: negative net to zero, 
 
 @njit(cache=True)
 def clean_rows(
-    line_start, col, qty, t, start, end, parent, short_by_parent, rule_of_leaf, kinds, windows, scales, both,
+    leaf_runs, run_start, run_length, used, line_ordinal, first_ord, qty_code, qty_values, t, start, end,
+    parent, short_by_parent, rule_of_leaf, kinds, windows, scales, both,
     to_median, period_ns, out_period, out_qty, out_raw, out_lines, out_filled, out_corrected, out_short, at,
     kept, flagged, corr_leaf, corr_col, corr_rule, corr_before, corr_after, corr_stats, leaf_offset,
 ):
     """Rules 2-6 on the leaves of one block, each in one pass over its row.
 
-    Leaf r of the block (global code leaf_offset + r) has the lines line_start[r] .. line_start[r + 1] - 1
-    (grid column `col`, `qty`), its fill range start[r] .. end[r], its parent's row of `short_by_parent` and
-    the outlier rule rule_of_leaf[r] (an index into kinds / windows / scales / both / to_median; kind -1: no
-    rule, 0: Hampel with scale k * 1.4826, 1: Tukey with the fence as scale). Its kept cells are written from
-    `at` on into the out_ columns (period_start as int64 ns from `period_ns`); kept[r] counts them, `flagged`
-    counts the children flagged per parent and column. Correction rows go to the corr_ arrays (rule NEGATIVE
-    or OUTLIER, before, after, and for OUTLIER the window statistics: Hampel median and MAD, Tukey Q1, median
-    and Q3). Returns (cells written, correction rows written)."""
-    n_rows = len(line_start) - 1
+    Leaf r of the block (global code leaf_offset + r) has the runs leaf_runs[r] .. leaf_runs[r + 1] - 1 of
+    lines (`run_start`, `run_length`: raw lines, of which the `used` ones count, in the order read; grid
+    column line_ordinal - first_ord, quantity qty_values[qty_code]), its fill range start[r] .. end[r], its
+    parent's row of `short_by_parent` and the outlier rule rule_of_leaf[r] (an index into kinds / windows /
+    scales / both / to_median; kind -1: no rule, 0: Hampel with scale k * 1.4826, 1: Tukey with the fence as
+    scale). Its kept cells are written from `at` on into the out_ columns (period_start as int64 ns from
+    `period_ns`); kept[r] counts them, `flagged` counts the children flagged per parent and column.
+    Correction rows go to the corr_ arrays (rule NEGATIVE or OUTLIER, before, after, and for OUTLIER the
+    window statistics: Hampel median and MAD, Tukey Q1, median and Q3). Returns (cells written, correction
+    rows written)."""
+    n_rows = len(leaf_runs) - 1
     net = np.zeros(t)
     count = np.zeros(t, dtype=np.int64)
     x = np.empty(t)
@@ -66,10 +70,13 @@ def clean_rows(
     for r in range(n_rows):
         net[:] = 0.0
         count[:] = 0
-        for i in range(line_start[r], line_start[r + 1]):  # summed in the order read, as np.bincount does
-            c = col[i]
-            net[c] += qty[i]
-            count[c] += 1
+        for j in range(leaf_runs[r], leaf_runs[r + 1]):  # summed in the order read, as np.bincount does
+            lo = run_start[j]
+            for i in range(lo, lo + run_length[j]):
+                if used[i]:
+                    c = line_ordinal[i] - first_ord
+                    net[c] += qty_values[qty_code[i]]
+                    count[c] += 1
         p = parent[r]
         for c in range(t):
             keep = count[c] > 0 or (c >= start[r] and c <= end[r])
@@ -208,7 +215,7 @@ def correction_frame(leaf, col, rule_code, before, after, stats, rule_of_leaf, n
     return pieces
 
 
-def clean_leaf_rows(lines, grid, settings, out, block_cells: int) -> None:
+def clean_leaf_rows(used, first_ord: int, grid, settings, out, block_cells: int) -> None:
     """`cleansing_blocks.clean_blocks` by `clean_rows`, a block of leaves at a time (the correction rows' buffers
     bounded by the block): the kept cells into `out`'s columns, the correction rows and figures into `out`."""
     n, t = len(grid.start), grid.t
@@ -224,12 +231,14 @@ def clean_leaf_rows(lines, grid, settings, out, block_cells: int) -> None:
     outputs = [cells["period_start"].view(np.int64)] + [
         cells[c] for c in ("quantity", "raw_quantity", "lines", "filled", "corrected", "shortage")
     ]
+    order = stable_order(used.leaf_of_run)  # the runs grouped by leaf, each leaf's in the order read
+    run_start, run_length = used.run_start[order], used.run_length[order]
+    leaf_runs = np.searchsorted(used.leaf_of_run[order], np.arange(n + 1))
+    lines = (run_start, run_length, used.used, used.line_ordinal, np.int32(first_ord), used.qty_code, used.qty_values)
     for a in range(0, n, step):  # a loop over blocks of leaves, not over series
         b = min(n, a + step)
-        leaf, col, qty = lines.block(a, b)
-        line_start = np.searchsorted(leaf, np.arange(b - a + 1))
         out.size, k = clean_rows(
-            line_start, col, qty, t, grid.start[a:b], grid.end[a:b], grid.parent[a:b], grid.short_by_parent,
+            leaf_runs[a : b + 1], *lines, t, grid.start[a:b], grid.end[a:b], grid.parent[a:b], grid.short_by_parent,
             rule_of_leaf[a:b], *rule_arrays, period_ns, *outputs, out.size, out.kept[a:b], flagged, *found, stats, a,
         )
         for part, values in zip(parts, [*found, stats], strict=True):

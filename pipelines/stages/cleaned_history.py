@@ -126,7 +126,7 @@ from pipelines.engines.cleansing import (
     shortage_records,
     sorted_corrections,
 )
-from pipelines.engines.cleansing_blocks import BLOCK_CELLS, Grid, Lines, class_summary, clean_blocks
+from pipelines.engines.cleansing_blocks import BLOCK_CELLS, Grid, class_summary, clean_blocks
 from pipelines.engines.history_proofs import find_unexplained_changes, leaf_runs
 from pipelines.engines.proofs import find_unaccounted_lines
 from pipelines.engines.report_charts import corrections_chart
@@ -168,14 +168,10 @@ def clean_history(
 
     # --- the grid: every leaf's fill range (from its customer span start, or its first line), class and parent
     leaves = used.leaves
-    first_ord = first if first is not None else int(used.ordinal.min()) if len(used.leaf_code) else cycle_ord - 1
+    first_ords = used.first_ordinals()
+    first_ord = first if first is not None else int(first_ords.min()) if len(leaves) else cycle_ord - 1
     t = cycle_ord - first_ord  # periods in the grid: first history period .. cycle - 1
-    col = used.ordinal  # the grid column of each line, made in place (the ordinals are not read again)
-    col -= first_ord
-    lines = Lines.of(used.leaf_code, col.astype(np.int32, copy=False), used.quantity)
-    del col
-    del used  # the lines live on grouped by leaf only
-    first_line = lines.first_col(len(leaves))
+    first_line = first_ords - first_ord  # each leaf's first grid column with a line
     from_ord, to_ord = span_bounds(spans, period)
     pos = lookup(leaves, LEAF, spans)
     span_from, span_to = from_ord[pos] - first_ord, to_ord[pos] - first_ord
@@ -190,8 +186,8 @@ def clean_history(
         short_by_parent=by_parent,
         period_ns=ordinal_to_start(np.arange(t) + first_ord, period).to_numpy(),  # written per kept cell
     )
-    blocks = clean_blocks(lines, grid, config, config.block_cells)
-    del lines
+    blocks = clean_blocks(used, first_ord, grid, config, config.block_cells)
+    del used
 
     # --- long tables
     cells = blocks.cells()
