@@ -131,3 +131,42 @@ def test_a_shortage_is_flagged_not_judged_and_cells_outside_the_range_are_droppe
     assert period.tolist() == [20, 30, 40] and qty.tolist() == [1.0, 50.0, 2.0]
     assert short.tolist() == [False, True, False] and flagged.tolist() == [[0, 0, 0, 1, 0, 0]]
     assert not corrected.any() and len(found[0]) == 0 and kept.tolist() == [3]
+
+
+def test_the_one_pass_reads_lines_in_runs_of_one_key_as_the_block_path(make_products, make_spans, make_config,
+                                                                       monkeypatch):
+    """Past 1,024 lines in runs of one key, `reject_lines` leaves the used lines in place as runs (a leaf's
+    runs in two files, rejected lines inside runs, a run wholly rejected); the one pass reads them through the
+    runs and must give the block path's tables exactly."""
+    from pipelines import keys
+    from pipelines.schemas import RawHistory
+
+    products = make_products([("P1", "a"), ("P2", "a")])
+    leaves = [(p, s, c) for p in ("P1", "P2") for s in ("S1", "S2") for c in ("C1", "C2", "C3", "C4", "C5")]
+    spans = make_spans(leaves[:-1])  # the last leaf has no span: its runs are rejected whole
+    weeks = pd.date_range("2025-01-06", periods=60, freq="7D").strftime("%Y-%m-%d")
+    rows = []
+    for file in ("history_a.csv", "history_b.csv"):
+        mine = weeks[:30] if file == "history_a.csv" else weeks[20:]
+        for p, s, c in leaves:
+            rows += [(file, p, s, c, w, str((3 + i % 7) * (40 if i % 11 == 5 else 1) - (9 if i % 13 == 4 else 0)))
+                     for i, w in enumerate(mine)]
+    rows.insert(0, ("history_a.csv", "P1", "S1", "C1", "not a date", "2"))  # a run whose first line is rejected
+    raw = pd.DataFrame(rows, columns=["source_file", "product", "site", "customer", "period_start", "quantity"])
+    raw.insert(1, "source_row", np.arange(1, len(raw) + 1))
+    raw = RawHistory.validate(raw)
+    for c in keys.LEAF:  # one object per distinct key, so the lines come in runs of one key
+        raw[c] = raw[c].map({v: v for v in raw[c].unique()}).astype(object)
+    from pipelines.engines import cleansing
+
+    assert len(raw) >= 1024 and len(cleansing._key_runs(raw)[0]) < len(raw) / 4  # the runs path is taken
+    config = make_config(calendar={"cycle_date": "2026-03-02"})
+    monkeypatch.setattr(cleansing_blocks, "CHUNK_CELLS", 10**12)
+    blocks = clean_history(raw, products, spans, config)
+    monkeypatch.setattr(cleansing_blocks, "CHUNK_CELLS", 0)
+    one = clean_history(raw, products, spans, config)
+    assert {"negative_net_to_zero", "hampel_cap"} <= set(one.corrections["rule"])
+    assert {"bad_date", "no_customer_span"} <= set(one.rejected["reason"])
+    for name in TABLES:
+        pd.testing.assert_frame_equal(getattr(blocks, name), getattr(one, name), check_exact=True, obj=name)
+        assert _bits(getattr(blocks, name)) == _bits(getattr(one, name)), name
