@@ -24,9 +24,10 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import season_length
+from pipelines.calendar import period_ordinal, period_start, season_length
 from pipelines.engines.cleansing import correction_rows
 from pipelines.engines.outliers import CHUNK_CELLS, judge_values, rolling_median, rule_parameters, seasonal_component
+from pipelines.keys import PARENT, factorize, lookup
 
 ONE_PASS_WINDOW = 13  # the default outlier window: a history of n x t cells takes the one pass from n x t x 13
 BLOCK_CELLS = 2_000_000  # leaf x period cells per block: about 16 MB per float64 matrix, some 20 held at once
@@ -119,6 +120,50 @@ class Grid:
     parent: np.ndarray  # parent code per leaf
     short_by_parent: np.ndarray  # bool (n_parents, t): a shortage recorded on the parent in that period
     period_ns: np.ndarray  # datetime64[ns] (t,): the start of each grid column
+
+
+def shortage_grid(
+    shortages: pd.DataFrame | None, leaves: pd.DataFrame, first_ord: int, t: int, period: str
+) -> tuple[np.ndarray, np.ndarray, pd.DataFrame, tuple[np.ndarray, np.ndarray, np.ndarray]]:
+    """The shortage records on the parent x period grid, for flagging a block of leaves at a time.
+
+    Returns (parent code per leaf, bool (n_parents, t) of recorded shortages,
+    the records bucketed to their period, and per record its parent row, grid
+    column and whether it lies on the grid). A block's flagged cells are
+    `by_parent[parent[leaves of the block]] & keep`; `shortage_records` counts
+    the children each record flagged.
+    """
+    n = len(leaves)
+    if shortages is None or len(shortages) == 0:
+        records = pd.DataFrame(
+            {
+                "product": pd.Series(dtype=object),
+                "site": pd.Series(dtype=object),
+                "period_start": pd.Series(dtype="datetime64[ns]"),
+            }
+        )
+        nothing = np.zeros(0, dtype=np.int64)
+        return np.zeros(n, dtype=np.int64), np.zeros((1, t), dtype=bool), records, (nothing, nothing, nothing > 0)
+    dates = pd.to_datetime(shortages["period_start"], errors="coerce")
+    records = shortages.loc[dates.notna().to_numpy(), PARENT].astype(str).reset_index(drop=True)
+    records["period_start"] = period_start(dates[dates.notna()].reset_index(drop=True), period)
+    records = records.drop_duplicates().reset_index(drop=True)
+    col = period_ordinal(records["period_start"], period) - first_ord
+    parent_code, parents = factorize(leaves, PARENT) if n else (np.zeros(0, np.int64), pd.DataFrame(columns=PARENT))
+    ppos = lookup(records, PARENT, parents) if n else np.full(len(records), -1)
+    ok = (ppos >= 0) & (col >= 0) & (col < t)
+    by_parent = np.zeros((max(len(parents), 1), t), dtype=bool)
+    by_parent[ppos[ok], col[ok]] = True
+    return parent_code, by_parent, records, (ppos, col, ok)
+
+
+def shortage_records(records: pd.DataFrame, where: tuple, flagged: np.ndarray) -> pd.DataFrame:
+    """The records of `shortage_grid` with the children each flagged (`flagged`: count per parent and column)."""
+    ppos, col, ok = where
+    children = np.zeros(len(records), dtype=np.int64)
+    children[ok] = flagged[ppos[ok], col[ok]]
+    records = records.assign(children=children)
+    return records.sort_values(PARENT + ["period_start"], kind="stable").reset_index(drop=True)
 
 
 def clean_blocks(used, first_ord: int, grid: Grid, settings, block_cells: int = BLOCK_CELLS) -> Blocks:

@@ -25,7 +25,6 @@ import pandas as pd
 from numba import njit
 
 from pipelines.engines.cleansing import _parameter_texts
-from pipelines.engines.cleansing_blocks import stable_order
 from pipelines.engines.outliers import MAD_SCALE, rule_parameters, tukey_fences
 from pipelines.engines.rolling_order import _clipped, _sweep_row
 
@@ -231,7 +230,7 @@ def clean_leaf_rows(used, first_ord: int, grid, settings, out, block_cells: int)
     outputs = [cells["period_start"].view(np.int64)] + [
         cells[c] for c in ("quantity", "raw_quantity", "lines", "filled", "corrected", "shortage")
     ]
-    order = stable_order(used.leaf_of_run)  # the runs grouped by leaf, each leaf's in the order read
+    order = np.argsort(used.leaf_of_run, kind="stable")  # the runs grouped by leaf, each leaf's in the order read
     run_start, run_length = used.run_start[order], used.run_length[order]
     leaf_runs = np.searchsorted(used.leaf_of_run[order], np.arange(n + 1))
     lines = (run_start, run_length, used.used, used.line_ordinal, np.int32(first_ord), used.qty_code, used.qty_values)

@@ -118,15 +118,15 @@ from pipelines.checks import CORRECTIONS_EXPLAIN_CHANGES, EVERY_RAW_ROW_ACCOUNTE
 from pipelines.config import CalendarConfig, PlanningConfig, class_section
 from pipelines.config_inputs import PlausibilityConfig
 from pipelines.config_sections import CleansingConfig, ProductClassConfig
-from pipelines.engines.cleansing import (
-    cycle_calendar,
-    line_accounting,
-    reject_lines,
+from pipelines.engines.cleansing import cycle_calendar, line_accounting, reject_lines, sorted_corrections
+from pipelines.engines.cleansing_blocks import (
+    BLOCK_CELLS,
+    Grid,
+    class_summary,
+    clean_blocks,
     shortage_grid,
     shortage_records,
-    sorted_corrections,
 )
-from pipelines.engines.cleansing_blocks import BLOCK_CELLS, Grid, class_summary, clean_blocks
 from pipelines.engines.history_proofs import find_unexplained_changes, leaf_runs
 from pipelines.engines.proofs import find_unaccounted_lines
 from pipelines.engines.report_charts import corrections_chart
