@@ -1,5 +1,5 @@
-"""Building blocks of cleansing: raw lines rejected with a reason, shortage cells, correction rows, the cycle's
-calendar row.
+"""Building blocks of cleansing: raw lines rejected with a reason, correction rows, the cycle's calendar row (the
+shortage grid is in `cleansing_blocks`).
 
 The rules and their order are stated in `pipelines.stages.cleaned_history`.
 """
