@@ -1,5 +1,5 @@
-"""Building blocks of cleansing: raw lines rejected with a reason, shortage cells, correction rows, the cycle's
-calendar row.
+"""Building blocks of cleansing: raw lines rejected with a reason, correction rows, the cycle's calendar row (the
+shortage grid is in `cleansing_blocks`).
 
 The rules and their order are stated in `pipelines.stages.cleaned_history`.
 """
@@ -17,23 +17,50 @@ from pipelines.calendar import (
     horizon_starts,
     ordinal_to_start,
     period_ordinal,
-    period_start,
     resolve_cycle_date,
 )
 from pipelines.config_inputs import PlausibilityConfig
 from pipelines.engines.plausible import distinct_dates, distinct_quantities, gap_periods, trusted_extent
-from pipelines.keys import LEAF, PARENT, factorize, lookup, pack_codes
+from pipelines.keys import LEAF, factorize, pack_codes
 from pipelines.text_codes import RUNS_SHARE, codes_of, first_appearances, run_starts
 
 
 @dataclass(frozen=True)
 class UsedLines:
-    """The usable lines as integers: leaf code (by first appearance), period ordinal and quantity per line."""
+    """The usable lines as integers, read in place from the raw lines' arrays: each raw line's period ordinal
+    and quantity code, whether it is used, and the runs of lines of one key that hold a used line (in line
+    order; each used line a run of its own where the lines are not in runs) with the leaf code of each
+    (0..len(leaves) - 1, numbered by first appearance). No array of the used lines is made unless asked for
+    (`leaf_code`, `ordinal`, `quantity`: the used lines in line order)."""
 
-    leaf_code: np.ndarray  # int64 per line, 0..len(leaves) - 1
     leaves: pd.DataFrame  # product, site, customer of each code
-    ordinal: np.ndarray  # int32 period number per line
-    quantity: np.ndarray  # float64 per line
+    line_ordinal: np.ndarray  # int32 period number per raw line (a rejected line's: the largest int32)
+    qty_code: np.ndarray  # per raw line: its distinct quantity cell
+    qty_values: np.ndarray  # float64 per distinct quantity cell
+    used: np.ndarray  # bool per raw line
+    run_start: np.ndarray  # int64 first raw line of each run holding a used line
+    run_length: np.ndarray  # int64 raw lines of the run
+    run_used: np.ndarray  # int64 used lines of the run
+    leaf_of_run: np.ndarray  # int64 leaf code of the run
+
+    @property
+    def leaf_code(self) -> np.ndarray:
+        return np.repeat(self.leaf_of_run, self.run_used)
+
+    @property
+    def ordinal(self) -> np.ndarray:
+        return self.line_ordinal[self.used]
+
+    @property
+    def quantity(self) -> np.ndarray:
+        return self.qty_values[self.qty_code[self.used]]
+
+    def first_ordinals(self) -> np.ndarray:
+        """Each leaf's first period ordinal with a used line (int64; every leaf has one)."""
+        first = np.full(len(self.leaves), np.iinfo(np.int32).max, dtype=np.int64)
+        if len(self.run_start):  # runs in line order; the lines between two runs are rejected: the largest int32
+            np.minimum.at(first, self.leaf_of_run, np.minimum.reduceat(self.line_ordinal, self.run_start))
+        return first
 
 
 def reject_lines(
@@ -133,19 +160,22 @@ def reject_lines(
     mark(has_date & (ordinals >= cycle_ord), "on_or_after_cycle_date")
 
     ok = free
-    at = np.flatnonzero(ok)
-    if starts is None:
-        leaf_code = pd.factorize(run_code[ok])[0].astype(np.int64)  # no runs: a code per line
-        first_used = first_appearances(leaf_code)  # each leaf's first used line (a place in `at`)
+    ordinals[~ok] = np.iinfo(np.int32).max  # in place (this function's own): a rejected line's period is no period
+    if starts is None:  # no runs: each used line a run of its own, a code per line
+        run_start = np.flatnonzero(ok)
+        run_length = run_used = np.ones(len(run_start), dtype=np.int64)
+        leaf_of_run = pd.factorize(run_code[ok])[0].astype(np.int64)
     else:  # numbered by first appearance among the used lines = among the runs holding one, coded per run
         per_run = np.add.reduceat(ok, starts, dtype=np.int64) if len(starts) else np.zeros(0, dtype=np.int64)
         used_runs = np.flatnonzero(per_run)
         leaf_of_run = pd.factorize(run_code[used_runs])[0].astype(np.int64)
-        leaf_code = np.repeat(leaf_of_run, per_run[used_runs])  # the used lines' codes, run by run
-        run_first = np.cumsum(per_run)[used_runs] - per_run[used_runs]  # each used run's first used line
-        first_used = run_first[first_appearances(leaf_of_run)]
-    leaves = raw.iloc[at[first_used]][LEAF].reset_index(drop=True) if len(at) else raw[LEAF].iloc[0:0]
-    used = UsedLines(leaf_code, leaves.reset_index(drop=True), ordinals[at], qty_values[qty_code[at]])
+        run_start, run_length, run_used = starts[used_runs], lengths[used_runs], per_run[used_runs]
+    first_used = run_start[first_appearances(leaf_of_run)]  # each leaf's first run: its first used line
+    for i in np.flatnonzero(~ok[first_used]).tolist():  # a run whose first lines were rejected (rare)
+        first_used[i] += int(np.argmax(ok[first_used[i] :]))
+    leaves = raw.iloc[first_used][LEAF].reset_index(drop=True) if len(first_used) else raw[LEAF].iloc[0:0]
+    used = UsedLines(leaves.reset_index(drop=True), ordinals, qty_code, qty_values, ok, run_start, run_length,
+                     run_used, leaf_of_run)
     rejected = raw.loc[~ok].drop(columns=["read_error"], errors="ignore").copy()
     rejected["reason"] = np.array([None, *reasons], dtype=object)[reason[~ok]]
     return used, rejected.reset_index(drop=True), cycle_date
@@ -243,50 +273,6 @@ def _joint_leaf_codes(key_codes: dict, spans: pd.DataFrame) -> tuple[np.ndarray,
         sizes.append(len(u))
     combined = pack_codes(lines, sizes)
     return None if combined is None else (combined, pack_codes(of_spans, sizes))
-
-
-def shortage_grid(
-    shortages: pd.DataFrame | None, leaves: pd.DataFrame, first_ord: int, t: int, period: str
-) -> tuple[np.ndarray, np.ndarray, pd.DataFrame, tuple[np.ndarray, np.ndarray, np.ndarray]]:
-    """The shortage records on the parent x period grid, for flagging a block of leaves at a time.
-
-    Returns (parent code per leaf, bool (n_parents, t) of recorded shortages,
-    the records bucketed to their period, and per record its parent row, grid
-    column and whether it lies on the grid). A block's flagged cells are
-    `by_parent[parent[leaves of the block]] & keep`; `shortage_records` counts
-    the children each record flagged.
-    """
-    n = len(leaves)
-    if shortages is None or len(shortages) == 0:
-        records = pd.DataFrame(
-            {
-                "product": pd.Series(dtype=object),
-                "site": pd.Series(dtype=object),
-                "period_start": pd.Series(dtype="datetime64[ns]"),
-            }
-        )
-        nothing = np.zeros(0, dtype=np.int64)
-        return np.zeros(n, dtype=np.int64), np.zeros((1, t), dtype=bool), records, (nothing, nothing, nothing > 0)
-    dates = pd.to_datetime(shortages["period_start"], errors="coerce")
-    records = shortages.loc[dates.notna().to_numpy(), PARENT].astype(str).reset_index(drop=True)
-    records["period_start"] = period_start(dates[dates.notna()].reset_index(drop=True), period)
-    records = records.drop_duplicates().reset_index(drop=True)
-    col = period_ordinal(records["period_start"], period) - first_ord
-    parent_code, parents = factorize(leaves, PARENT) if n else (np.zeros(0, np.int64), pd.DataFrame(columns=PARENT))
-    ppos = lookup(records, PARENT, parents) if n else np.full(len(records), -1)
-    ok = (ppos >= 0) & (col >= 0) & (col < t)
-    by_parent = np.zeros((max(len(parents), 1), t), dtype=bool)
-    by_parent[ppos[ok], col[ok]] = True
-    return parent_code, by_parent, records, (ppos, col, ok)
-
-
-def shortage_records(records: pd.DataFrame, where: tuple, flagged: np.ndarray) -> pd.DataFrame:
-    """The records of `shortage_grid` with the children each flagged (`flagged`: count per parent and column)."""
-    ppos, col, ok = where
-    children = np.zeros(len(records), dtype=np.int64)
-    children[ok] = flagged[ppos[ok], col[ok]]
-    records = records.assign(children=children)
-    return records.sort_values(PARENT + ["period_start"], kind="stable").reset_index(drop=True)
 
 
 def sorted_corrections(pieces: list[pd.DataFrame], leaves: pd.DataFrame, first_ord: int, period: str) -> pd.DataFrame:

@@ -24,10 +24,12 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from pipelines.calendar import season_length
+from pipelines.calendar import period_ordinal, period_start, season_length
 from pipelines.engines.cleansing import correction_rows
-from pipelines.engines.outliers import judge_values, rolling_median, rule_parameters, seasonal_component
+from pipelines.engines.outliers import CHUNK_CELLS, judge_values, rolling_median, rule_parameters, seasonal_component
+from pipelines.keys import PARENT, factorize, lookup
 
+ONE_PASS_WINDOW = 13  # the default outlier window: a history of n x t cells takes the one pass from n x t x 13
 BLOCK_CELLS = 2_000_000  # leaf x period cells per block: about 16 MB per float64 matrix, some 20 held at once
 
 
@@ -70,7 +72,7 @@ class Lines:
 
 
 CELL_COLUMNS = (  # the kept cells' columns and their types, in the order of cleaned_history
-    ("col", np.int32),
+    ("period_start", np.dtype("datetime64[ns]")),
     ("quantity", np.float64),
     ("raw_quantity", np.float64),
     ("lines", np.int64),
@@ -117,19 +119,85 @@ class Grid:
     leaf_class: np.ndarray  # product class per leaf (object)
     parent: np.ndarray  # parent code per leaf
     short_by_parent: np.ndarray  # bool (n_parents, t): a shortage recorded on the parent in that period
+    period_ns: np.ndarray  # datetime64[ns] (t,): the start of each grid column
 
 
-def clean_blocks(lines: Lines, grid: Grid, settings, block_cells: int = BLOCK_CELLS) -> Blocks:
-    """Rules 2-7 of the cleansing (bucketing to shortage handling), a block of leaves at a time."""
+def shortage_grid(
+    shortages: pd.DataFrame | None, leaves: pd.DataFrame, first_ord: int, t: int, period: str
+) -> tuple[np.ndarray, np.ndarray, pd.DataFrame, tuple[np.ndarray, np.ndarray, np.ndarray]]:
+    """The shortage records on the parent x period grid, for flagging a block of leaves at a time.
+
+    Returns (parent code per leaf, bool (n_parents, t) of recorded shortages,
+    the records bucketed to their period, and per record its parent row, grid
+    column and whether it lies on the grid). A block's flagged cells are
+    `by_parent[parent[leaves of the block]] & keep`; `shortage_records` counts
+    the children each record flagged.
+    """
+    n = len(leaves)
+    if shortages is None or len(shortages) == 0:
+        records = pd.DataFrame(
+            {
+                "product": pd.Series(dtype=object),
+                "site": pd.Series(dtype=object),
+                "period_start": pd.Series(dtype="datetime64[ns]"),
+            }
+        )
+        nothing = np.zeros(0, dtype=np.int64)
+        return np.zeros(n, dtype=np.int64), np.zeros((1, t), dtype=bool), records, (nothing, nothing, nothing > 0)
+    dates = pd.to_datetime(shortages["period_start"], errors="coerce")
+    records = shortages.loc[dates.notna().to_numpy(), PARENT].astype(str).reset_index(drop=True)
+    records["period_start"] = period_start(dates[dates.notna()].reset_index(drop=True), period)
+    records = records.drop_duplicates().reset_index(drop=True)
+    col = period_ordinal(records["period_start"], period) - first_ord
+    parent_code, parents = factorize(leaves, PARENT) if n else (np.zeros(0, np.int64), pd.DataFrame(columns=PARENT))
+    ppos = lookup(records, PARENT, parents) if n else np.full(len(records), -1)
+    ok = (ppos >= 0) & (col >= 0) & (col < t)
+    by_parent = np.zeros((max(len(parents), 1), t), dtype=bool)
+    by_parent[ppos[ok], col[ok]] = True
+    return parent_code, by_parent, records, (ppos, col, ok)
+
+
+def shortage_records(records: pd.DataFrame, where: tuple, flagged: np.ndarray) -> pd.DataFrame:
+    """The records of `shortage_grid` with the children each flagged (`flagged`: count per parent and column)."""
+    ppos, col, ok = where
+    children = np.zeros(len(records), dtype=np.int64)
+    children[ok] = flagged[ppos[ok], col[ok]]
+    records = records.assign(children=children)
+    return records.sort_values(PARENT + ["period_start"], kind="stable").reset_index(drop=True)
+
+
+def clean_blocks(used, first_ord: int, grid: Grid, settings, block_cells: int = BLOCK_CELLS) -> Blocks:
+    """Rules 2-7 of the cleansing (bucketing to shortage handling), a block of leaves at a time, on the used
+    lines of `cleansing.reject_lines` (`used`; grid column = period ordinal - `first_ord`)."""
     n, t = len(grid.start), grid.t
-    step = max(1, block_cells // max(t, 1))
     out = Blocks.sized(n, t)
+    if _one_pass(n, t, grid, settings):
+        from pipelines.engines.cleansing_rows import clean_leaf_rows  # numba loaded only for a large history
+
+        clean_leaf_rows(used, first_ord, grid, settings, out, block_cells)
+        return out
+    col = used.ordinal  # the used lines gathered in line order, then grouped by leaf
+    col -= first_ord
+    lines = Lines.of(used.leaf_code, col.astype(np.int32, copy=False), used.quantity)
+    del col
+    step = max(1, block_cells // max(t, 1))
     flagged = np.zeros(grid.short_by_parent.shape, dtype=np.int64)
     for a in range(0, n, step):  # a loop over blocks of leaves, not over series
         b = min(n, a + step)
         _clean_block(lines.block(a, b), a, b, grid, settings, out, flagged)
     out.flagged = flagged
     return out
+
+
+def _one_pass(n: int, t: int, grid: Grid, settings) -> bool:
+    """Whether the leaf rows are cleaned in one compiled pass each (`cleansing_rows`): a history whose windows
+    exceed one numpy chunk (`outliers.CHUNK_CELLS`, the size the compiled sweep takes a class matrix from) and
+    classes that pass takes (no seasonal adjustment, shortages excluded). Both paths give the same tables."""
+    if n * t * ONE_PASS_WINDOW <= CHUNK_CELLS:
+        return False
+    from pipelines.engines.cleansing_rows import takes
+
+    return takes(grid.leaf_class, settings)
 
 
 def _clean_block(block, a: int, b: int, grid: Grid, settings, out: Blocks, flagged: np.ndarray) -> None:
@@ -170,7 +238,7 @@ def _clean_block(block, a: int, b: int, grid: Grid, settings, out: Blocks, flagg
     at = np.flatnonzero(keep)
     lo, hi = out.size, out.size + len(at)
     cells = out.columns
-    cells["col"][lo:hi] = at % t
+    grid.period_ns.take(at % t, out=cells["period_start"][lo:hi], mode="clip")
     values.ravel().take(at, out=cells["quantity"][lo:hi], mode="clip")
     net.ravel().take(at, out=cells["raw_quantity"][lo:hi], mode="clip")
     lines.ravel().take(at, out=cells["lines"][lo:hi], mode="clip")

@@ -134,16 +134,26 @@ def _unexplained_at(
     # rows without a correction need no subtraction
     rows, row_of = np.unique(pos[inside], return_inverse=True)
     moved = np.bincount(row_of, weights=delta[inside], minlength=len(rows))
-    unexplained = cleaned["quantity"].to_numpy(dtype=float) - cleaned["raw_quantity"].to_numpy(dtype=float)
-    unexplained[rows] -= moved
-    bad = np.flatnonzero(~(np.abs(unexplained) <= tolerance))
+    quantity = cleaned["quantity"].to_numpy(dtype=float)
+    raw_quantity = cleaned["raw_quantity"].to_numpy(dtype=float)
+    bad_parts, values = [], []
+    for low in range(0, max(len(quantity), 1), DAY_BLOCK):  # a block of rows at a time: no full-length temporary
+        high = min(low + DAY_BLOCK, len(quantity))
+        part = quantity[low:high] - raw_quantity[low:high]
+        a, b = np.searchsorted(rows, [low, high])
+        part[rows[a:b] - low] -= moved[a:b]
+        at = np.flatnonzero(~(np.abs(part) <= tolerance))
+        bad_parts.append(at + low)
+        values.append(part[at])
+    bad = np.concatenate(bad_parts)
+    unexplained = np.concatenate(values)
     moved_bad = np.zeros(len(bad))  # the corrections of each unexplained row (none: 0.0)
     if len(rows) and len(bad):
         at = np.minimum(np.searchsorted(rows, bad), len(rows) - 1)
         hit = rows[at] == bad
         moved_bad[hit] = moved[at[hit]]
     out = cleaned.iloc[bad][key + ["raw_quantity", "quantity"]]  # the few rows, then their columns
-    out = out.assign(corrections=moved_bad, unexplained=unexplained[bad])
+    out = out.assign(corrections=moved_bad, unexplained=unexplained)
     if not inside.all():  # corrections of a period cleaned_history does not hold: unexplained whatever their sum
         orphans = corrections.loc[~inside, key + ["delta"]]
         orphans = orphans.groupby(key, sort=False, observed=True, dropna=False)["delta"].sum().rename("corrections")

@@ -118,15 +118,15 @@ from pipelines.checks import CORRECTIONS_EXPLAIN_CHANGES, EVERY_RAW_ROW_ACCOUNTE
 from pipelines.config import CalendarConfig, PlanningConfig, class_section
 from pipelines.config_inputs import PlausibilityConfig
 from pipelines.config_sections import CleansingConfig, ProductClassConfig
-from pipelines.engines.cleansing import (
-    cycle_calendar,
-    line_accounting,
-    reject_lines,
+from pipelines.engines.cleansing import cycle_calendar, line_accounting, reject_lines, sorted_corrections
+from pipelines.engines.cleansing_blocks import (
+    BLOCK_CELLS,
+    Grid,
+    class_summary,
+    clean_blocks,
     shortage_grid,
     shortage_records,
-    sorted_corrections,
 )
-from pipelines.engines.cleansing_blocks import BLOCK_CELLS, Grid, Lines, class_summary, clean_blocks
 from pipelines.engines.history_proofs import find_unexplained_changes, leaf_runs
 from pipelines.engines.proofs import find_unaccounted_lines
 from pipelines.engines.report_charts import corrections_chart
@@ -168,14 +168,10 @@ def clean_history(
 
     # --- the grid: every leaf's fill range (from its customer span start, or its first line), class and parent
     leaves = used.leaves
-    first_ord = first if first is not None else int(used.ordinal.min()) if len(used.leaf_code) else cycle_ord - 1
+    first_ords = used.first_ordinals()
+    first_ord = first if first is not None else int(first_ords.min()) if len(leaves) else cycle_ord - 1
     t = cycle_ord - first_ord  # periods in the grid: first history period .. cycle - 1
-    col = used.ordinal  # the grid column of each line, made in place (the ordinals are not read again)
-    col -= first_ord
-    lines = Lines.of(used.leaf_code, col.astype(np.int32, copy=False), used.quantity)
-    del col
-    del used  # the lines live on grouped by leaf only
-    first_line = lines.first_col(len(leaves))
+    first_line = first_ords - first_ord  # each leaf's first grid column with a line
     from_ord, to_ord = span_bounds(spans, period)
     pos = lookup(leaves, LEAF, spans)
     span_from, span_to = from_ord[pos] - first_ord, to_ord[pos] - first_ord
@@ -188,17 +184,16 @@ def clean_history(
         leaf_class=leaves["product"].map(product_class).to_numpy(dtype=object),
         parent=parent,
         short_by_parent=by_parent,
+        period_ns=ordinal_to_start(np.arange(t) + first_ord, period).to_numpy(),  # written per kept cell
     )
-    blocks = clean_blocks(lines, grid, config, config.block_cells)
-    del lines
+    blocks = clean_blocks(used, first_ord, grid, config, config.block_cells)
+    del used
 
     # --- long tables
     cells = blocks.cells()
     # the cells come leaf by leaf: each key repeated over its leaf's kept cells (no leaf code per cell)
     columns = {c: np.repeat(leaves[c].to_numpy(), blocks.kept) for c in LEAF}
-    # the grid's t period starts, reached by each cell's column (one gather, not a date conversion per cell)
-    columns["period_start"] = ordinal_to_start(np.arange(t) + first_ord, period).to_numpy()[cells.pop("col")]
-    for name in ("quantity", "raw_quantity", "lines", "filled", "corrected", "shortage"):
+    for name in ("period_start", "quantity", "raw_quantity", "lines", "filled", "corrected", "shortage"):
         columns[name] = cells.pop(name)
     cleaned = pd.DataFrame(columns, copy=False)  # the arrays themselves, not copied column by column
     del columns
