@@ -12,6 +12,7 @@ goes on (`pipelines.phases`).
 
 from __future__ import annotations
 
+import gc
 import multiprocessing
 import os
 import sys
@@ -285,6 +286,7 @@ def _child_main(*args) -> None:
 
     with fewer_flushes():  # as the command itself (pipelines/cycle_command.py)
         code = _run_in_child(*args)
+    gc.freeze()  # as the command's own exit: its last collections skip what the run left (pipelines/__main__.py)
     raise SystemExit(code)
 
 

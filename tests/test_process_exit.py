@@ -1,0 +1,39 @@
+"""The command line's exit (`pipelines/__main__.py`, `end_process`): the exit code, the output and the `atexit`
+handlers as before, with the objects still alive frozen (`gc.freeze`) so the interpreter's last collections skip
+them. Each case is a process of its own, as the command is."""
+
+from __future__ import annotations
+
+import os
+import re
+import subprocess
+import sys
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def _python(args: list[str], tmp_path: Path) -> subprocess.CompletedProcess:
+    env = dict(os.environ, PYTHONPATH=str(ROOT), DAGSTER_HOME=str(tmp_path / "dagster_home"))
+    return subprocess.run([sys.executable, *args], cwd=ROOT, env=env, capture_output=True, text=True, timeout=600)
+
+
+def test_end_process_keeps_the_code_the_output_and_the_atexit_handlers_and_freezes_what_is_alive(tmp_path):
+    code = (
+        "import atexit, gc, sys\n"
+        "atexit.register(lambda: sys.stderr.write(f'frozen {gc.get_freeze_count()}\\n'))\n"
+        "from pipelines.__main__ import end_process\n"
+        "sys.stdout.write('a line not flushed yet')\n"
+        "end_process(3)\n"
+    )
+    out = _python(["-c", code], tmp_path)
+    assert out.returncode == 3
+    assert out.stdout == "a line not flushed yet"
+    frozen = int(re.search(r"frozen (\d+)", out.stderr).group(1))
+    assert frozen > 10_000, "the objects of the imported modules were not frozen"
+
+
+def test_the_command_line_exits_through_it_with_its_own_code(tmp_path):
+    out = _python(["-m", "pipelines", "cycle", "--config", str(tmp_path / "missing.yaml")], tmp_path)
+    assert out.returncode == 2  # EXIT_BAD_INPUT, as before
+    assert "planning config not found" in out.stderr
