@@ -1,10 +1,12 @@
-"""`measure_parents.Parents.sum`: the compiled block sums against numpy's `np.add.reduceat` (the sums it
-replaced) to the bit, and against hand-worked sums."""
+"""The plan's compiled sums: `measure_parents.Parents.sum` against numpy's `np.add.reduceat` (the sums it
+replaced) to the bit, `plan_codes.group_totals` against pandas' groupby, and both against hand-worked sums."""
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from pipelines.engines.measure_parents import Parents, block_sums
+from pipelines.engines.plan_codes import group_totals
 
 
 def test_block_sums_by_hand():
@@ -51,3 +53,33 @@ def test_block_sums_order_matters():
 def test_unsorted_children_still_summed():
     cells = np.array([[1.0], [2.0], [4.0]])
     assert Parents(np.array([1, 0, 1]), 2).sum(cells).tolist() == [[2.0], [5.0]]
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_group_totals_equal_pandas_groupby(seed):
+    # pandas' own groupby (compensated sums, NaN left out of sum and mean, inf) is the reference
+    rng = np.random.default_rng(seed)
+    n = 20_000
+    code = np.sort(rng.integers(0, 7, n))
+    value = rng.normal(size=n) * 10.0 ** rng.integers(-3, 17, n)
+    value[rng.random(n) < 0.01] = np.nan
+    if seed % 2:
+        value[rng.integers(0, n, 3)] = np.inf
+    pinned = rng.random(n) < 0.01
+    frame = pd.DataFrame({"c": code, "value": value, "pinned": pinned})
+    expected = frame.groupby("c", sort=False).agg(
+        leaf_rows=("value", "size"), pinned_rows=("pinned", "sum"),
+        leaf_sum=("value", "sum"), leaf_mean=("value", "mean"),
+    )
+    got = group_totals(code, 7, value, pinned).set_axis(expected.index)
+    pd.testing.assert_frame_equal(got, expected, check_exact=True)
+
+
+def test_group_totals_compensated_by_hand():
+    # 1e16, then 1.0 sixteen times: a plain running sum loses every 1.0 (1e16 + 1 rounds back to 1e16); the
+    # compensated sum keeps them: 1e16 + 16. Group 1: [2.0, NaN] -> sum 2, mean 2 (NaN left out), 2 rows.
+    value = np.array([1e16] + [1.0] * 16 + [2.0, np.nan])
+    code = np.array([0] * 17 + [1, 1])
+    got = group_totals(code, 2, value, np.zeros(19, dtype=bool))
+    assert got["leaf_sum"].tolist() == [1e16 + 16, 2.0]
+    assert got["leaf_rows"].tolist() == [17, 2] and got["leaf_mean"].tolist() == [(1e16 + 16) / 17, 2.0]
