@@ -20,7 +20,7 @@ from pipelines.calendar import period_ordinal
 from pipelines.config_sections import MeasureConfig
 from pipelines.engines.integer_split import largest_remainder, round_to_pack
 from pipelines.engines.measure_parents import Parents, parent_sum
-from pipelines.engines.plan_codes import key_sums, rows_holding, rows_of, run_codes
+from pipelines.engines.plan_codes import group_totals, key_sums, rows_holding, rows_of, run_codes
 from pipelines.keys import LEAF, PARENT
 from pipelines.vocabulary import MeasureFallback, values
 
@@ -272,16 +272,15 @@ def plan_totals(plan: pd.DataFrame, parents: pd.DataFrame) -> pd.DataFrame:
         parent_mean=("parent_value", "mean"),
     )
     coded = run_codes(plan, ["measure", "rule"])  # a measure's rows together: a few runs
-    by = ["measure", "rule"] if coded is None else coded[0]
-    # on one integer key numbered by first appearance the groups hold the same rows in the same order, so the
-    # same sums, in the same order
-    leaf = plan.groupby(by, sort=False).agg(
-        leaf_rows=("value", "size"),
-        pinned_rows=("pinned", "sum"),
-        leaf_sum=("value", "sum"),
-        leaf_mean=("value", "mean"),
-    )
-    if coded is not None:
+    if coded is None:
+        leaf = plan.groupby(["measure", "rule"], sort=False).agg(
+            leaf_rows=("value", "size"),
+            pinned_rows=("pinned", "sum"),
+            leaf_sum=("value", "sum"),
+            leaf_mean=("value", "mean"),
+        )
+    else:  # the groups of one integer key numbered by first appearance: the same rows, sums in the same order
+        leaf = group_totals(coded[0], len(coded[1]), plan["value"].to_numpy(float), plan["pinned"].to_numpy(bool))
         leaf.index = pd.MultiIndex.from_frame(coded[1])
     out = p.join(leaf, how="outer").reset_index()
     mean = (out["rule"] == "replicate").to_numpy()

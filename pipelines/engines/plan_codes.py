@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
+from numba import njit
 
 from pipelines.keys import factorize, lookup, pack_codes
 from pipelines.text_codes import RUNS_SHARE, codes_of, run_starts
@@ -184,3 +185,42 @@ def position(uniques: np.ndarray, value) -> int:
     """The code of `value` among `uniques`, or -2 (no code, not even the missing one) when absent."""
     hit = np.flatnonzero(uniques == value)
     return int(hit[0]) if len(hit) else -2
+
+
+def group_totals(code: np.ndarray, n_groups: int, value: np.ndarray, pinned: np.ndarray) -> pd.DataFrame:
+    """Per group code 0..n_groups-1 (each row's `code`): leaf_rows, pinned_rows, leaf_sum and leaf_mean of the
+    rows, as `groupby(code, sort=False).agg(size, sum of pinned, sum and mean of value)` gives them (pandas'
+    compensated sums, NaN values left out), in one compiled pass over the rows in their order."""
+    rows, pins, total, mean = _group_totals(code, n_groups, np.asarray(value, dtype=float), np.asarray(pinned, bool))
+    return pd.DataFrame({"leaf_rows": rows, "pinned_rows": pins, "leaf_sum": total, "leaf_mean": mean})
+
+
+@njit(cache=True)
+def _group_totals(code, n_groups, value, pinned):
+    """Row counts, pinned counts, and pandas' group sum and mean (Kahan summation as its `group_sum` and
+    `group_mean` add: the compensation reset where it turns NaN; a mean of no value is NaN) per group."""
+    rows = np.zeros(n_groups, dtype=np.int64)
+    pins = np.zeros(n_groups, dtype=np.int64)
+    seen = np.zeros(n_groups, dtype=np.int64)
+    total = np.zeros(n_groups)
+    comp = np.zeros(n_groups)
+    for i in range(len(code)):
+        g = code[i]
+        rows[g] += 1
+        if pinned[i]:
+            pins[g] += 1
+        v = value[i]
+        if v != v:
+            continue
+        seen[g] += 1
+        y = v - comp[g]
+        t = total[g] + y
+        comp[g] = t - total[g] - y
+        if comp[g] != comp[g]:
+            comp[g] = 0.0
+        total[g] = t
+    mean = np.full(n_groups, np.nan)
+    for g in range(n_groups):
+        if seen[g]:
+            mean[g] = total[g] / seen[g]
+    return rows, pins, total, mean

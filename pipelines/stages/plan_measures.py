@@ -322,6 +322,9 @@ def split(
             customer_spans, products, lifecycle_history, settings.share, cycle_date, keys, rows, counted=share_tables
         )
         bases = share_bases_of(lifecycle_history, children, products, settings, cycle_date, keys, rows)
+        # the history's per-row arrays (ids, ages, counted rows) freed before the split: its matrices and the
+        # plan's columns reuse their memory instead of first touches of more
+        del keys, rows, children
     result = plan_measures(
         share_tables,
         parent_forecast,
