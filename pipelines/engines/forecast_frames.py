@@ -15,7 +15,7 @@ import pandas as pd
 from pipelines.calendar import ordinal_to_start, period_ordinal
 from pipelines.engines.base_forecasts import BaseForecasts
 from pipelines.engines.hierarchy import Coherent, coherent
-from pipelines.engines.models import SeriesGrid
+from pipelines.engines.series_grids import SeriesGrid
 from pipelines.keys import LEAF, PARENT, rows_in
 
 

@@ -72,8 +72,9 @@ from pipelines.engines.forecast_frames import (
 )
 from pipelines.engines.forecast_intervals import interval_frames
 from pipelines.engines.hierarchy import NEEDS_LEAF, parent_sums
-from pipelines.engines.models import ModelSettings, series_grid
+from pipelines.engines.models import ModelSettings
 from pipelines.engines.proofs import find_negative, find_volume_after_phase_out, find_volume_outside_active_span
+from pipelines.engines.series_grids import series_grid
 from pipelines.engines.upper_levels import upper_level_checks, upper_levels_run
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF, PARENT, PARENT_ID, factorize, first_rows, ids_in, rows_in
