@@ -74,7 +74,7 @@ from pipelines.engines.forecast_intervals import interval_frames
 from pipelines.engines.hierarchy import NEEDS_LEAF, parent_sums
 from pipelines.engines.models import ModelSettings
 from pipelines.engines.proofs import find_negative, find_volume_after_phase_out, find_volume_outside_active_span
-from pipelines.engines.series_grids import series_grid
+from pipelines.engines.series_grids import history_grid, series_grid
 from pipelines.engines.upper_levels import upper_level_checks, upper_levels_run
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF, PARENT, PARENT_ID, factorize, first_rows, ids_in, rows_in
@@ -179,20 +179,16 @@ def forecast_cycle(
     ids, parent_ids = ids_in(children), ids_in(children, (PARENT_ID,))  # carried from the share table
     parents[parent_ids] = children[parent_ids].to_numpy()[first_rows(parent_of_child)]
     n_parents, n_children = len(parents), len(children)
-    ords = period_ordinal(history["period_start"], period)
-    qty = history["quantity"].to_numpy(float)
     strategies = strategy_by_class(settings, chosen)
 
     # each history row's parent and child, through the ids both carry (else by their distinct keys only)
-    p_code = rows_in(history, parents, PARENT)
-    ok = p_code >= 0
-    p_grid = series_grid(*((p_code, ords, qty) if ok.all() else (p_code[ok], ords[ok], qty[ok])), n_parents, cycle_ord)
+    p_grid = history_grid(history, parents, PARENT, cycle_ord, period)
     parent_class, child_class = parents["product_class"].to_numpy(), children["product_class"].to_numpy()
     leaf_grain = np.isin(child_class, [n for n, s in strategies.items() if s in NEEDS_LEAF])
-    c_code = rows_in(history, children, LEAF) if leaf_grain.any() else np.zeros(0, dtype=np.int64)
-    okc = np.flatnonzero(c_code >= 0)  # the children's own series laid out only where their class forecasts leaves
-    okc = okc[leaf_grain[c_code[okc]]]
-    c_grid = series_grid(c_code[okc], ords[okc], qty[okc], n_children, cycle_ord)
+    if leaf_grain.any():  # the children's own series laid out only where their class forecasts leaves
+        c_grid = history_grid(history, children, LEAF, cycle_ord, period, keep=leaf_grain)
+    else:
+        c_grid = series_grid(np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0), n_children, cycle_ord)
     modes = sb.seasonality_in_effect(settings.seasonality, chosen_seasonality, settings.source)
     season = sb.cycle_season_plan(
         p_grid, parents, products, modes, settings.seasonal_groups, parent_of_child, period, cycle_ord
