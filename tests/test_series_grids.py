@@ -86,14 +86,20 @@ def test_leaves_kept_by_the_mask_only():
 
 
 def test_the_compiled_pass_codes_no_row(monkeypatch):
-    """With the ids on both frames and weekly periods, no row is looked up or given an ordinal."""
+    """With the ids on both frames and weekly periods, no row is looked up or given an ordinal (the history's
+    first period only)."""
     history, leaves, parents = frames()
+    ordinal = series_grids.period_ordinal
 
     def refused(*args, **kwargs):
-        raise AssertionError("the history's rows were coded one by one")
+        raise AssertionError("the history's rows were looked up one by one")
+
+    def one_only(starts, period):
+        assert len(starts) == 1, "the history's rows were given ordinals one by one"
+        return ordinal(starts, period)
 
     monkeypatch.setattr(series_grids, "rows_in", refused)
-    monkeypatch.setattr(series_grids, "period_ordinal", refused)
+    monkeypatch.setattr(series_grids, "period_ordinal", one_only)
     assert history_grid(history, parents, PARENT, END, "week").y.tolist() == [2.0, 0.0, 7.0, 5.0, 0.0, 0.0]
 
 

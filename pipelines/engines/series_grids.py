@@ -99,11 +99,11 @@ def history_grid(
     parent key), a series per row of `table` (`keep`: a mask over them, the others left without rows).
 
     The history's rows are placed as `keys.rows_in` and `calendar.period_ordinal` place them. Where both frames
-    carry the integer id of the key and the history's periods are weeks as nanoseconds, one compiled pass finds
-    the block's first period and a second sums the rows into a dense series x period block (each cell's rows
-    in row order, as `series_grid` sums them: the same grid bit for bit), with no array of the history's length
-    made; elsewhere, or when that block would be large (`DENSE_CELLS`), the rows are coded and `series_grid`
-    lays them out.
+    carry the integer id of the key and the history's periods are weeks as nanoseconds, one compiled pass sums
+    the rows into a dense series x period block from the history's first period (each cell's rows in row order,
+    as `series_grid` sums them: the same grid bit for bit), with no array of the history's length made;
+    elsewhere, or when that block would be large (`DENSE_CELLS`), the rows are coded and `series_grid` lays them
+    out.
     """
     n_series = len(table)
     qty = history["quantity"].to_numpy(float)
@@ -117,10 +117,14 @@ def history_grid(
         series_of_id[held] = np.arange(n_series)
         if keep is not None:
             series_of_id[held[~keep]] = -1
-        ids, ns = history[id_col].to_numpy(), starts.view(np.int64)
-        start, kept, nat = _extent(series_of_id, ids, ns, end_ord)
-        if not nat and kept and n_series * (end_ord - start) <= 2 * kept + DENSE_CELLS:
-            return _block_grid(*_block_sums(series_of_id, ids, ns, qty, start, end_ord, n_series), start)
+        first = starts.min() if len(starts) else np.datetime64("NaT")  # NaT when any start is NaT
+        # the block starts at the history's first period (a series' grid starts at its first demand, so an earlier
+        # start than the laid-out rows' own changes no value); without NaT, the ordinals are floor divisions
+        start = end_ord if np.isnat(first) else int(period_ordinal(pd.DatetimeIndex([first]), period)[0])
+        if start < end_ord and n_series * (end_ord - start) <= 2 * len(starts) + DENSE_CELLS:
+            sums = _block_sums(series_of_id, history[id_col].to_numpy(), starts.view(np.int64), qty, start, end_ord,
+                               n_series)
+            return _block_grid(*sums, start)
     code = rows_in(history, table, cols)
     ok = code >= 0
     if keep is not None and len(keep):
@@ -129,27 +133,6 @@ def history_grid(
     if ok.all():
         return series_grid(code, ords, qty, n_series, end_ord)
     return series_grid(code[ok], ords[ok], qty[ok], n_series, end_ord)
-
-
-_NAT = np.iinfo(np.int64).min  # NaT as nanoseconds
-
-
-@njit(cache=True)
-def _extent(series_of_id, ids, ns, end_ord):
-    """(first period, rows, a NaT seen) of the rows with a series (`series_of_id[id]` >= 0) before `end_ord`."""
-    start, kept, n_map = end_ord, 0, len(series_of_id)
-    for i in range(len(ids)):
-        k = ids[i]
-        if k < 0 or k >= n_map or series_of_id[k] < 0:
-            continue
-        if ns[i] == _NAT:
-            return start, kept, True
-        o = (ns[i] - EPOCH_MONDAY_NS) // WEEK_NS  # calendar.period_ordinal's weeks (floor division)
-        if o < end_ord:
-            kept += 1
-            if o < start:
-                start = o
-    return start, kept, False
 
 
 @njit(cache=True)
@@ -165,7 +148,7 @@ def _block_sums(series_of_id, ids, ns, qty, start, end_ord, n_series):
         if k < 0 or k >= n_map or series_of_id[k] < 0:
             continue
         o = (ns[i] - EPOCH_MONDAY_NS) // WEEK_NS
-        if o >= end_ord:
+        if o >= end_ord or o < start:  # (none before `start`, the history's first period: a guard)
             continue
         cell = series_of_id[k] * width + (o - start)
         total[cell] += qty[i]
