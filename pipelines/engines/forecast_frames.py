@@ -51,6 +51,25 @@ def combine_strategies(
     return Coherent(parent, leaf, source, negatives, moved)
 
 
+def basis_column(
+    source: np.ndarray, use_target: np.ndarray, labels: np.ndarray
+) -> tuple[np.ndarray, pd.DataFrame]:
+    """(the leaves' basis, (n_children, h) text, and its rows per basis, the table `value_counts` of the column
+    would give: `basis`, `rows`, in text order). `source`: what each leaf came from (`hierarchy.coherent`, "basis"
+    where the parent was split by the basis); there `labels[0]` where `use_target`, else `labels[1]`.
+
+    The rows are counted on the masks, and on the other sources' cells only, not by hashing every cell's text."""
+    by_basis = source == "basis"
+    basis = np.where(by_basis, labels[np.where(use_target, 0, 1)], source)
+    on_target = int(np.count_nonzero(by_basis & use_target))
+    counts = pd.Series(source[~by_basis]).value_counts()
+    for label, rows in ((labels[0], on_target), (labels[1], int(np.count_nonzero(by_basis)) - on_target)):
+        if rows:
+            counts[label] = counts.get(label, 0) + rows
+    counts = pd.Series(counts.to_numpy(np.int64), index=pd.Index(counts.index, dtype=object, name="basis"))
+    return basis, counts.sort_index().rename("rows").reset_index()
+
+
 def fitted_frame(
     grid: SeriesGrid, fitted: np.ndarray | None, keys: pd.DataFrame, grain: str, period: str
 ) -> pd.DataFrame:

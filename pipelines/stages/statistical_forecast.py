@@ -62,6 +62,7 @@ from pipelines.engines import seasonal_base as sb
 from pipelines.engines.base_forecasts import base_forecasts, series_to_fit
 from pipelines.engines.forecast_frames import (
     active_matrix,
+    basis_column,
     combine_strategies,
     fitted_frame,
     leaf_matrix,
@@ -102,6 +103,7 @@ class ForecastResult:
     models: pd.DataFrame | None = None  # one row per forecast series: grain, key, model, parameters
     fitted: pd.DataFrame | None = None  # in-sample one-step fitted values behind MinT / WLS residuals
     upper: pd.DataFrame | None = None  # upper_level_forecast: the levels above the parent (hierarchy.upper_levels)
+    basis_rows: pd.DataFrame | None = None  # statistical_forecast's rows per basis (`basis`, `rows`)
 
 
 @dataclass(frozen=True)
@@ -216,7 +218,7 @@ def forecast_cycle(
     made = combine_strategies(strategy_of_parent, base, parent_of_child, basis, active)
     strategy_fc, leaf_fc = made.parent, made.leaf
     labels = np.array([Basis.REINITIALIZED_TARGET.value, Basis.PERIOD_SHARE.value], dtype=object)  # no text copies
-    basis = np.where(made.source == "basis", labels[np.where(use_target, 0, 1)], made.source)
+    basis, basis_rows = basis_column(made.source, use_target, labels)
 
     # lifecycle: a parent period that no child can carry is set to 0 with its zero_reason (a share-split
     # parent: no child holds a share; otherwise: no child is active, or none took any of the volume).
@@ -283,6 +285,7 @@ def forecast_cycle(
         redistributed=redistributed.reset_index(drop=True),
         models=models[MODEL_COLUMNS],
         fitted=fitted[FITTED_COLUMNS],
+        basis_rows=basis_rows,
     )
 
 
@@ -338,7 +341,7 @@ def run(
                 "parent_periods_set_to_zero": int(parent["zero_reason"].notna().sum()),
             },
             "statistical_forecast": {
-                "basis": leaf["basis"].value_counts().sort_index().rename("rows").reset_index(),  # one hash pass
+                "basis": result.basis_rows,  # the leaf rows per basis, counted as the column was made
                 "leaf_total": float(leaf["forecast"].sum()),
                 # MinT / WLS leaves below 0 set to 0, their amount taken in proportion from the other
                 # children of the period (pipelines.engines.hierarchy.nonnegative_keeping_parent)
