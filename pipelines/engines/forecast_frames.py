@@ -153,13 +153,35 @@ def leaf_matrix(
     frame: pd.DataFrame, children: pd.DataFrame, column: str | list[str], starts: pd.DatetimeIndex
 ) -> np.ndarray | list[np.ndarray]:
     """(n_children, horizon) matrix of `column` from a long leaf x period frame (0 where absent); a list of
-    columns: one matrix each, the rows found once."""
+    columns: one matrix each, the rows found once. A frame holding every child's periods in order, one row each
+    (as `reinitialized_target` is written), is each column reshaped."""
     columns = [column] if isinstance(column, str) else column
-    out = [np.zeros((len(children), len(starts))) for _ in columns]
+    n, h = len(children), len(starts)
     if not frame.empty:
         row = rows_in(frame, children, LEAF)
-        col = pd.DatetimeIndex(starts).get_indexer(pd.DatetimeIndex(frame["period_start"]))
+        col = period_columns(frame["period_start"].to_numpy(), pd.DatetimeIndex(starts))
+        if len(frame) == n * h and (row.reshape(n, h) == np.arange(n)[:, None]).all() and (
+            col.reshape(n, h) == np.arange(h)
+        ).all():
+            out = [frame[name].to_numpy(float).reshape(n, h).copy() for name in columns]
+            return out[0] if isinstance(column, str) else out
+    out = [np.zeros((n, h)) for _ in columns]
+    if not frame.empty:
         ok = (row >= 0) & (col >= 0)
         for matrix, name in zip(out, columns, strict=True):
             matrix[row[ok], col[ok]] = frame[name].to_numpy(float)[ok]
     return out[0] if isinstance(column, str) else out
+
+
+def period_columns(values: np.ndarray, starts: pd.DatetimeIndex) -> np.ndarray:
+    """Position of each period start of `values` in `starts` (-1 where absent), as `starts.get_indexer` gives
+    it; by integer arithmetic where the starts are evenly spaced nanoseconds (weeks), else by the index."""
+    ns = starts.values.view(np.int64) if starts.dtype == "datetime64[ns]" else None
+    step = int(ns[1] - ns[0]) if ns is not None and len(ns) > 1 else 0
+    if step <= 0 or values.dtype != "datetime64[ns]" or not (np.diff(ns) == step).all() or (
+        len(values) and np.isnat(values.min())
+    ):
+        return starts.get_indexer(pd.DatetimeIndex(values))
+    col, off = np.divmod(values.view(np.int64) - ns[0], step)
+    col[(off != 0) | (col < 0) | (col >= len(ns))] = -1
+    return col
