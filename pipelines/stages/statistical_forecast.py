@@ -311,7 +311,7 @@ def run(
         products, chosen_seasonality,
     )
     parent, leaf, models, fitted = result.parent, result.leaf, result.models, result.fitted
-    first = parent.drop_duplicates(["product", "site"])
+    first = parent.iloc[:: max(settings.horizon, 1)]  # each parent's first row (its `horizon` rows are together)
     used = first.groupby(["product_class", "strategy", "demand_class", "model"]).size().rename("parents").reset_index()
     zeroed = (
         parent[parent["zero_reason"].notna()]
