@@ -18,7 +18,8 @@ def test_basis_by_hand():
     basis, rows = basis_column(source, use_target, LABELS)
     # split leaves: the target where use_target, else the period's share; the others keep their source
     assert basis.tolist() == [["reinitialized_target", "period_share"], ["leaf_forecast", "reinitialized_target"]]
-    assert rows.to_dict("list") == {"basis": ["leaf_forecast", "period_share", "reinitialized_target"], "rows": [1, 1, 2]}
+    assert rows["basis"].tolist() == ["leaf_forecast", "period_share", "reinitialized_target"]
+    assert rows["rows"].tolist() == [1, 1, 2]
 
 
 @pytest.mark.parametrize("n_children", [0, 1, 7, 300])

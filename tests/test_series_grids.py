@@ -140,7 +140,8 @@ def test_random_histories_give_the_numpy_grid_bit_for_bit(monkeypatch, dense_cel
         end = int(rng.integers(-30, 30)) if trial % 3 == 0 else int(rng.integers(2905, 2955))
         keep = rng.random(len(table)) < 0.7 if trial % 4 == 0 else None
         for cols in (PARENT, LEAF):
-            assert same(history_grid(history, table, cols, end, "week", keep), numpy_grid(history, table, cols, end, keep))
+            grid = history_grid(history, table, cols, end, "week", keep)
+            assert same(grid, numpy_grid(history, table, cols, end, keep))
 
 
 def test_without_ids_or_in_months_the_rows_are_coded():
