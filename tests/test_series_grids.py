@@ -148,6 +148,8 @@ def test_without_ids_or_in_months_the_rows_are_coded():
     history, _, parents = frames()
     no_ids = history.drop(columns=["leaf_id", "parent_id"])
     assert same(history_grid(no_ids, parents, PARENT, END, "week"), numpy_grid(history, parents, PARENT, END))
+    float_ids = history.astype({"parent_id": float})
+    assert same(history_grid(float_ids, parents, PARENT, END, "week"), numpy_grid(history, parents, PARENT, END))
     month = int(period_ordinal(pd.DatetimeIndex(["2026-02-01"]), "month")[0])
     grid = history_grid(history, parents, PARENT, month, "month")
     # January 2026: A 0 + 2 + 3 + 4 = 9, B 5 + 0 = 5 (the February row is at the cycle)

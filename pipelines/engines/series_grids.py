@@ -111,7 +111,7 @@ def history_grid(
     starts = history["period_start"].to_numpy()
     if period == "week" and starts.dtype == "datetime64[ns]" and ids_in(history, (id_col,)) and ids_in(
         table, (id_col,)
-    ):
+    ) and history[id_col].dtype.kind in "iu":  # (ids stored as floats are coded as `rows_in` codes them)
         held = table[id_col].to_numpy(np.int64)
         series_of_id = np.full(int(held.max()) + 1 if len(held) else 0, -1, dtype=np.int64)
         series_of_id[held] = np.arange(n_series)
