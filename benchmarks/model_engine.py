@@ -51,7 +51,8 @@ from statsforecast import models as sfm  # noqa: E402
 
 from pipelines.engines import model_engine  # noqa: E402
 from pipelines.engines.model_engine import EngineSettings, close_clusters  # noqa: E402
-from pipelines.engines.models import SeriesGrid, run_model_groups  # noqa: E402
+from pipelines.engines.models import run_model_groups  # noqa: E402
+from pipelines.engines.series_grids import SeriesGrid  # noqa: E402
 
 RUNS = ("dask2", "dask1", "local1", "local2", "direct1", "direct2")
 

@@ -25,7 +25,8 @@ from statsforecast import models as sfm
 
 from pipelines.engines import model_engine
 from pipelines.engines.model_engine import EngineSettings, close_clusters
-from pipelines.engines.models import fit_group, run_model_groups, series_grid
+from pipelines.engines.models import fit_group, run_model_groups
+from pipelines.engines.series_grids import series_grid
 
 pytest.importorskip("distributed")
 

@@ -6,7 +6,8 @@ import numpy as np
 import pytest
 from rich.console import Console
 
-from pipelines.engines.models import run_model_groups, series_grid
+from pipelines.engines.models import run_model_groups
+from pipelines.engines.series_grids import series_grid
 from pipelines.progress import MIN_SECONDS_BETWEEN_LINES, Done, SeriesProgress, parse_progress, seconds_left
 from pipelines.progress_display import UNREAD_BEFORE_SAYING, ClassRun, CycleDisplay, Stage
 

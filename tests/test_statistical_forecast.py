@@ -15,7 +15,8 @@ import pandas as pd
 import pytest
 
 from pipelines.engines import series_grids
-from pipelines.engines.models import demand_classes, series_grid
+from pipelines.engines.models import demand_classes
+from pipelines.engines.series_grids import series_grid
 from pipelines.errors import ConfigError
 from pipelines.schemas import ReinitializedTarget
 from pipelines.schemas_forecast import ForecastModels, ParentForecast, StatisticalForecast

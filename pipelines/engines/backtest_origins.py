@@ -24,9 +24,10 @@ import pandas as pd
 from pipelines.calendar import ordinal_to_start, period_ordinal, season_length
 from pipelines.engines.backtest_scores import CLEANED, RAW, Scales, dense_window, error_scales
 from pipelines.engines.hierarchy import parent_sums
-from pipelines.engines.models import SeriesGrid, demand_classes, run_model_groups, series_grid
+from pipelines.engines.models import demand_classes, run_model_groups
 from pipelines.engines.origin_cleaning import ClassCleaning, clean_before, raw_quantities
 from pipelines.engines.period_shares import period_shares
+from pipelines.engines.series_grids import SeriesGrid, series_grid
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.share_tuning import candidate_name, candidate_settings
 from pipelines.engines.shares import child_frame, compute_shares

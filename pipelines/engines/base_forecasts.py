@@ -14,8 +14,9 @@ import numpy as np
 import pandas as pd
 
 from pipelines.engines.hierarchy import NEEDS_LEAF, NEEDS_PARENT, NEEDS_RESIDUALS
-from pipelines.engines.models import ModelSettings, SeriesGrid, assign_models, demand_classes, run_model_groups
+from pipelines.engines.models import ModelSettings, assign_models, demand_classes, run_model_groups
 from pipelines.engines.seasonal_base import SeasonPlan
+from pipelines.engines.series_grids import SeriesGrid
 from pipelines.vocabulary import Seasonality
 
 

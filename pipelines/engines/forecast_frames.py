@@ -15,7 +15,7 @@ import pandas as pd
 from pipelines.calendar import ordinal_to_start, period_ordinal
 from pipelines.engines.base_forecasts import BaseForecasts
 from pipelines.engines.hierarchy import Coherent, coherent
-from pipelines.engines.models import SeriesGrid
+from pipelines.engines.series_grids import SeriesGrid
 from pipelines.keys import LEAF, PARENT, rows_in
 
 
@@ -49,6 +49,25 @@ def combine_strategies(
         parent[ps], leaf[cs], source[cs], moved[ps] = out.parent, out.leaf, out.source, out.moved
         negatives += out.negatives
     return Coherent(parent, leaf, source, negatives, moved)
+
+
+def basis_column(
+    source: np.ndarray, use_target: np.ndarray, labels: np.ndarray
+) -> tuple[np.ndarray, pd.DataFrame]:
+    """(the leaves' basis, (n_children, h) text, and its rows per basis, the table `value_counts` of the column
+    would give: `basis`, `rows`, in text order). `source`: what each leaf came from (`hierarchy.coherent`, "basis"
+    where the parent was split by the basis); there `labels[0]` where `use_target`, else `labels[1]`.
+
+    The rows are counted on the masks, and on the other sources' cells only, not by hashing every cell's text."""
+    by_basis = source == "basis"
+    basis = np.where(by_basis, labels[np.where(use_target, 0, 1)], source)
+    on_target = int(np.count_nonzero(by_basis & use_target))
+    counts = pd.Series(source[~by_basis]).value_counts()
+    for label, rows in ((labels[0], on_target), (labels[1], int(np.count_nonzero(by_basis)) - on_target)):
+        if rows:
+            counts[label] = counts.get(label, 0) + rows
+    counts = pd.Series(counts.to_numpy(np.int64), index=pd.Index(counts.index, dtype=object, name="basis"))
+    return basis, counts.sort_index().rename("rows").reset_index()
 
 
 def fitted_frame(
@@ -134,13 +153,35 @@ def leaf_matrix(
     frame: pd.DataFrame, children: pd.DataFrame, column: str | list[str], starts: pd.DatetimeIndex
 ) -> np.ndarray | list[np.ndarray]:
     """(n_children, horizon) matrix of `column` from a long leaf x period frame (0 where absent); a list of
-    columns: one matrix each, the rows found once."""
+    columns: one matrix each, the rows found once. A frame holding every child's periods in order, one row each
+    (as `reinitialized_target` is written), is each column reshaped."""
     columns = [column] if isinstance(column, str) else column
-    out = [np.zeros((len(children), len(starts))) for _ in columns]
+    n, h = len(children), len(starts)
     if not frame.empty:
         row = rows_in(frame, children, LEAF)
-        col = pd.DatetimeIndex(starts).get_indexer(pd.DatetimeIndex(frame["period_start"]))
+        col = period_columns(frame["period_start"].to_numpy(), pd.DatetimeIndex(starts))
+        if len(frame) == n * h and (row.reshape(n, h) == np.arange(n)[:, None]).all() and (
+            col.reshape(n, h) == np.arange(h)
+        ).all():
+            out = [frame[name].to_numpy(float).reshape(n, h).copy() for name in columns]
+            return out[0] if isinstance(column, str) else out
+    out = [np.zeros((n, h)) for _ in columns]
+    if not frame.empty:
         ok = (row >= 0) & (col >= 0)
         for matrix, name in zip(out, columns, strict=True):
             matrix[row[ok], col[ok]] = frame[name].to_numpy(float)[ok]
     return out[0] if isinstance(column, str) else out
+
+
+def period_columns(values: np.ndarray, starts: pd.DatetimeIndex) -> np.ndarray:
+    """Position of each period start of `values` in `starts` (-1 where absent), as `starts.get_indexer` gives
+    it; by integer arithmetic where the starts are evenly spaced nanoseconds (weeks), else by the index."""
+    ns = starts.values.view(np.int64) if starts.dtype == "datetime64[ns]" else None
+    step = int(ns[1] - ns[0]) if ns is not None and len(ns) > 1 else 0
+    if step <= 0 or values.dtype != "datetime64[ns]" or not (np.diff(ns) == step).all() or (
+        len(values) and np.isnat(values.min())
+    ):
+        return starts.get_indexer(pd.DatetimeIndex(values))
+    col, off = np.divmod(values.view(np.int64) - ns[0], step)
+    col[(off != 0) | (col < 0) | (col >= len(ns))] = -1
+    return col

@@ -50,8 +50,7 @@ from pipelines.calendar import season_length
 from pipelines.config_sections import ModelChoice, TSBConfig
 from pipelines.engines.intermittent import croston_states
 from pipelines.engines.model_engine import EngineSettings, chunks, local_jobs, map_on_cluster, map_on_pool
-from pipelines.engines.series_grids import SeriesGrid as SeriesGrid  # the grids, read from here by the engines
-from pipelines.engines.series_grids import series_grid as series_grid
+from pipelines.engines.series_grids import SeriesGrid
 from pipelines.engines.statsforecast_lib import StatsForecast, sfm  # statsforecast without dask.dataframe
 
 

@@ -42,7 +42,7 @@ import pandas as pd
 from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal, season_length, span_bounds
 from pipelines.engines.base_forecasts import base_forecasts
 from pipelines.engines.lifecycle_shares import reference_positions, split_shares
-from pipelines.engines.models import SeriesGrid, series_grid
+from pipelines.engines.series_grids import SeriesGrid, series_grid
 from pipelines.engines.share_rows import shortage_periods
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.keys import LEAF, PARENT, coded, factorize, lookup

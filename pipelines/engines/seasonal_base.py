@@ -29,7 +29,7 @@ import pandas as pd
 
 from pipelines.calendar import season_length
 from pipelines.engines.group_seasonality import group_totals, seasonal_indices, seasonal_strength
-from pipelines.engines.models import SeriesGrid
+from pipelines.engines.series_grids import SeriesGrid
 from pipelines.errors import ConfigError
 from pipelines.vocabulary import AUTO, GROUP_CLASS, GROUP_PRODUCT, Seasonality
 

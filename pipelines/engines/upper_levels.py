@@ -35,14 +35,8 @@ import pandas as pd
 
 from pipelines.checks import RELATIVE_TOLERANCE, UPPER_LEVELS_COHERENT
 from pipelines.engines.base_forecasts import _subgrid, residual_matrix
-from pipelines.engines.models import (
-    ModelSettings,
-    SeriesGrid,
-    assign_models,
-    demand_classes,
-    run_model_groups,
-    series_grid,
-)
+from pipelines.engines.models import ModelSettings, assign_models, demand_classes, run_model_groups
+from pipelines.engines.series_grids import SeriesGrid, series_grid
 from pipelines.engines.tree_reconciliation import Tree, reconcile_tree, tree_from_parent_codes
 from pipelines.errors import ConfigError
 from pipelines.vocabulary import GROUP_PRODUCT, LEVEL_TOTAL

@@ -62,6 +62,7 @@ from pipelines.engines import seasonal_base as sb
 from pipelines.engines.base_forecasts import base_forecasts, series_to_fit
 from pipelines.engines.forecast_frames import (
     active_matrix,
+    basis_column,
     combine_strategies,
     fitted_frame,
     leaf_matrix,
@@ -72,8 +73,9 @@ from pipelines.engines.forecast_frames import (
 )
 from pipelines.engines.forecast_intervals import interval_frames
 from pipelines.engines.hierarchy import NEEDS_LEAF, parent_sums
-from pipelines.engines.models import ModelSettings, series_grid
+from pipelines.engines.models import ModelSettings
 from pipelines.engines.proofs import find_negative, find_volume_after_phase_out, find_volume_outside_active_span
+from pipelines.engines.series_grids import history_grid, series_grid
 from pipelines.engines.upper_levels import upper_level_checks, upper_levels_run
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF, PARENT, PARENT_ID, factorize, first_rows, ids_in, rows_in
@@ -101,6 +103,7 @@ class ForecastResult:
     models: pd.DataFrame | None = None  # one row per forecast series: grain, key, model, parameters
     fitted: pd.DataFrame | None = None  # in-sample one-step fitted values behind MinT / WLS residuals
     upper: pd.DataFrame | None = None  # upper_level_forecast: the levels above the parent (hierarchy.upper_levels)
+    basis_rows: pd.DataFrame | None = None  # statistical_forecast's rows per basis (`basis`, `rows`)
 
 
 @dataclass(frozen=True)
@@ -178,20 +181,16 @@ def forecast_cycle(
     ids, parent_ids = ids_in(children), ids_in(children, (PARENT_ID,))  # carried from the share table
     parents[parent_ids] = children[parent_ids].to_numpy()[first_rows(parent_of_child)]
     n_parents, n_children = len(parents), len(children)
-    ords = period_ordinal(history["period_start"], period)
-    qty = history["quantity"].to_numpy(float)
     strategies = strategy_by_class(settings, chosen)
 
     # each history row's parent and child, through the ids both carry (else by their distinct keys only)
-    p_code = rows_in(history, parents, PARENT)
-    ok = p_code >= 0
-    p_grid = series_grid(*((p_code, ords, qty) if ok.all() else (p_code[ok], ords[ok], qty[ok])), n_parents, cycle_ord)
+    p_grid = history_grid(history, parents, PARENT, cycle_ord, period)
     parent_class, child_class = parents["product_class"].to_numpy(), children["product_class"].to_numpy()
     leaf_grain = np.isin(child_class, [n for n, s in strategies.items() if s in NEEDS_LEAF])
-    c_code = rows_in(history, children, LEAF) if leaf_grain.any() else np.zeros(0, dtype=np.int64)
-    okc = np.flatnonzero(c_code >= 0)  # the children's own series laid out only where their class forecasts leaves
-    okc = okc[leaf_grain[c_code[okc]]]
-    c_grid = series_grid(c_code[okc], ords[okc], qty[okc], n_children, cycle_ord)
+    if leaf_grain.any():  # the children's own series laid out only where their class forecasts leaves
+        c_grid = history_grid(history, children, LEAF, cycle_ord, period, keep=leaf_grain)
+    else:
+        c_grid = series_grid(np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0), n_children, cycle_ord)
     modes = sb.seasonality_in_effect(settings.seasonality, chosen_seasonality, settings.source)
     season = sb.cycle_season_plan(
         p_grid, parents, products, modes, settings.seasonal_groups, parent_of_child, period, cycle_ord
@@ -219,7 +218,7 @@ def forecast_cycle(
     made = combine_strategies(strategy_of_parent, base, parent_of_child, basis, active)
     strategy_fc, leaf_fc = made.parent, made.leaf
     labels = np.array([Basis.REINITIALIZED_TARGET.value, Basis.PERIOD_SHARE.value], dtype=object)  # no text copies
-    basis = np.where(made.source == "basis", labels[np.where(use_target, 0, 1)], made.source)
+    basis, basis_rows = basis_column(made.source, use_target, labels)
 
     # lifecycle: a parent period that no child can carry is set to 0 with its zero_reason (a share-split
     # parent: no child holds a share; otherwise: no child is active, or none took any of the volume).
@@ -286,6 +285,7 @@ def forecast_cycle(
         redistributed=redistributed.reset_index(drop=True),
         models=models[MODEL_COLUMNS],
         fitted=fitted[FITTED_COLUMNS],
+        basis_rows=basis_rows,
     )
 
 
@@ -311,7 +311,7 @@ def run(
         products, chosen_seasonality,
     )
     parent, leaf, models, fitted = result.parent, result.leaf, result.models, result.fitted
-    first = parent.drop_duplicates(["product", "site"])
+    first = parent.iloc[:: max(settings.horizon, 1)]  # each parent's first row (its `horizon` rows are together)
     used = first.groupby(["product_class", "strategy", "demand_class", "model"]).size().rename("parents").reset_index()
     zeroed = (
         parent[parent["zero_reason"].notna()]
@@ -341,7 +341,7 @@ def run(
                 "parent_periods_set_to_zero": int(parent["zero_reason"].notna().sum()),
             },
             "statistical_forecast": {
-                "basis": leaf["basis"].value_counts().sort_index().rename("rows").reset_index(),  # one hash pass
+                "basis": result.basis_rows,  # the leaf rows per basis, counted as the column was made
                 "leaf_total": float(leaf["forecast"].sum()),
                 # MinT / WLS leaves below 0 set to 0, their amount taken in proportion from the other
                 # children of the period (pipelines.engines.hierarchy.nonnegative_keeping_parent)
