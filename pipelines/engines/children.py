@@ -78,7 +78,7 @@ def own_periods(
     if history.empty:
         return np.zeros(len(children), dtype=np.int64)
     c = keys if keys is not None else coded(history)
-    code, leaves = c.leaf, c.leaves
+    leaves = c.leaves
     if rows is not None and rows.first is not None:  # sorted by leaf id: each leaf's rows from its first
         age, first, leaf = rows.age, rows.first, rows.leaf
         # a row whose age is above its predecessor's must start a leaf (rows sorted by leaf id, so: another id)
@@ -91,6 +91,7 @@ def own_periods(
             count = np.diff(first) - np.bincount(leaf[repeat], minlength=len(leaves))
             pos = lookup(children, LEAF, leaves)
             return np.where(pos >= 0, count[np.clip(pos, 0, None)], 0).astype(np.int64)
+    code = c.leaf
     ords = period_ordinal(history["period_start"], period)
     step_leaf, step_ord = np.diff(code), np.diff(ords)
     if bool(np.all((step_leaf > 0) | ((step_leaf == 0) & (step_ord >= 0)))):

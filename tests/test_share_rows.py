@@ -1,0 +1,149 @@
+"""The share engine's compiled passes over the history (`pipelines.engines.share_rows`) against plain numpy.
+
+References: a week's ordinal by numpy's floor division of the nanoseconds since the epoch Monday (what
+`calendar.period_ordinal` computes); a sum per leaf by `np.bincount` with weights over the rows kept, which
+adds each bin's values in row order from 0.0 (numpy's documented `bincount`: out[x[i]] += w[i]). Every
+comparison is to the bit (float64 viewed as int64), on data where another order of addition or a window one
+period off gives other bits (asserted too, so the comparisons can fail).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from pipelines.calendar import EPOCH_MONDAY_NS, WEEK_NS, period_ordinal
+from pipelines.engines.share_rows import ShareRows, _run_window_sums, _week_ages, child_sums, period_ages, period_sums
+
+CYCLE_ORD = 2970
+
+
+def bits(values: np.ndarray) -> np.ndarray:
+    return np.asarray(values, dtype=np.float64).view(np.int64)
+
+
+def history(seed: int, n_leaves: int = 60, sort: bool = True):
+    """Random rows: leaf runs of consecutive weeks with gaps and a repeated week, quantities of mixed scale with
+    a NaN, a -0.0 and cents, a few shortage rows; rows sorted by leaf id (and period) or shuffled."""
+    rng = np.random.default_rng(seed)
+    leaf, week = [], []
+    for leaf_id in range(n_leaves):
+        n = int(rng.integers(0, 40))
+        start = CYCLE_ORD - int(rng.integers(1, 80))
+        weeks = start + np.cumsum(rng.choice([1, 1, 1, 2, 5, 0], size=n))  # gaps and a repeated week
+        leaf += [leaf_id] * n
+        week += weeks.tolist()
+    leaf, week = np.array(leaf, dtype=np.int32), np.array(week, dtype=np.int64)
+    qty = np.round(rng.lognormal(2, 2, len(leaf)), 2) * rng.choice([1.0, 1e-3, 1e6], len(leaf))
+    qty[rng.integers(0, len(qty), 3)] = [np.nan, -0.0, 0.1]
+    ns = EPOCH_MONDAY_NS + (week - 0) * WEEK_NS + rng.choice([0, 86_400 * 10**9 * 3], len(week))  # some mid-week
+    if not sort:
+        order = rng.permutation(len(leaf))
+        leaf, ns, qty = leaf[order], ns[order], qty[order]
+    return leaf, ns, qty
+
+
+def reference_ages(ns: np.ndarray) -> np.ndarray:
+    return CYCLE_ORD - (ns - EPOCH_MONDAY_NS) // WEEK_NS
+
+
+def share_rows(leaf, ns, qty, n_leaves, short=None, sort=True) -> ShareRows:
+    age = period_ages(pd.Series(ns.astype("datetime64[ns]")), "week", CYCLE_ORD)
+    counts = age >= 1
+    if short is not None:
+        counts &= ~short
+    first = np.searchsorted(leaf, np.arange(n_leaves + 1, dtype=leaf.dtype)) if sort else None
+    return ShareRows(leaf, age, qty, counts, n_leaves, True, first)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_week_ages_are_the_week_ordinals_floor_division(seed):
+    _, ns, _ = history(seed)
+    ns = np.concatenate([ns, [EPOCH_MONDAY_NS - 1, EPOCH_MONDAY_NS - WEEK_NS, EPOCH_MONDAY_NS - 1 + WEEK_NS]])
+    age = period_ages(pd.Series(ns.astype("datetime64[ns]")), "week", CYCLE_ORD)
+    assert age.dtype == np.int32
+    assert np.array_equal(age, reference_ages(ns))
+    assert np.array_equal(age, CYCLE_ORD - period_ordinal(pd.Series(ns.astype("datetime64[ns]")), "week"))
+
+
+def test_week_ages_take_the_row_before_only_one_week_apart():
+    # a step of one week is one period; a step of 6 days from a Sunday crosses one week boundary, so the
+    # kernel's shortcut must not fire for it (a kernel reading "less than a week: same age - 1" would fail)
+    sunday = EPOCH_MONDAY_NS + 6 * 86_400 * 10**9
+    ns = np.array([EPOCH_MONDAY_NS, EPOCH_MONDAY_NS + WEEK_NS, sunday + WEEK_NS, sunday + WEEK_NS + 6 * 86_400 * 10**9])
+    out = np.empty(len(ns), np.int32)
+    assert _week_ages(ns, CYCLE_ORD, out)
+    assert out.tolist() == reference_ages(ns).tolist() == [CYCLE_ORD, CYCLE_ORD - 1, CYCLE_ORD - 1, CYCLE_ORD - 2]
+
+
+def test_week_ages_with_a_missing_date_take_the_general_path():
+    ns = pd.Series(pd.to_datetime(["2026-11-23", None, "2026-11-09"]))
+    out = np.empty(3, np.int32)
+    assert not _week_ages(ns.to_numpy().view(np.int64), CYCLE_ORD, out)
+    age = period_ages(ns, "week", CYCLE_ORD)
+    expected = CYCLE_ORD - period_ordinal(ns, "week")
+    assert np.array_equal(age, expected, equal_nan=True)
+
+
+def reference_child_sums(rows: ShareRows, leaves, window, leaf_of_child):
+    window = np.broadcast_to(np.asarray(window), (rows.n_leaves,)) if np.ndim(window) == 0 else window
+    keep = rows.counts & (rows.age <= window[rows.leaf])
+    if leaves is not None:
+        keep &= leaves[rows.leaf]
+    per_leaf = np.append(np.bincount(rows.leaf[keep], weights=rows.qty[keep], minlength=rows.n_leaves), 0.0)
+    return per_leaf[leaf_of_child]
+
+
+@pytest.mark.parametrize("seed", range(6))
+@pytest.mark.parametrize("sort", [True, False])
+def test_child_sums_are_bincounts_sums_to_the_bit(seed, sort):
+    n_leaves = 60
+    leaf, ns, qty = history(seed, n_leaves, sort)
+    rng = np.random.default_rng(100 + seed)
+    rows = share_rows(leaf, ns, qty, n_leaves, short=rng.random(len(leaf)) < 0.05, sort=sort)
+    leaf_of_child = np.append(rng.permutation(n_leaves)[:50], [-1, -1])  # two children without history
+    per_leaf_window = rng.choice([0, 4, 13, 26, 52], n_leaves).astype(np.int32)
+    open_leaves = rng.random(n_leaves) < 0.4
+    for leaves, window in ((None, per_leaf_window), (open_leaves, 26), (None, 13), (open_leaves, per_leaf_window)):
+        got = child_sums(rows, leaves, window, leaf_of_child)
+        assert np.array_equal(bits(got), bits(reference_child_sums(rows, leaves, window, leaf_of_child)))
+
+
+def test_the_sums_comparison_can_fail():
+    # the data tell a row-order sum from a reversed one and a window one period longer, so a kernel that
+    # summed in another order or compared age < window + 1 wrongly would not pass the test above
+    leaf, ns, qty = history(3, 60)
+    rows = share_rows(leaf, ns, qty, 60)
+    window = np.full(60, 52, np.int32)
+    forward = _run_window_sums(rows.first, np.arange(60), rows.age, rows.qty, rows.counts, window, 60)
+    backward = np.zeros(61)
+    for i in range(len(leaf) - 1, -1, -1):  # the same rows, last to first
+        if rows.counts[i] and rows.age[i] <= 52:
+            backward[leaf[i]] += qty[i]
+    assert np.allclose(forward, backward, rtol=1e-12, equal_nan=True)  # the same sums but for rounding...
+    assert not np.array_equal(bits(forward), bits(backward))  # ...but not the same bits
+    longer = _run_window_sums(rows.first, np.arange(60), rows.age, rows.qty, rows.counts, window + 1, 60)
+    assert not np.array_equal(bits(forward), bits(longer))
+
+
+@pytest.mark.parametrize("seed", range(6))
+@pytest.mark.parametrize("sort", [True, False])
+def test_period_sums_are_bincounts_cells_to_the_bit(seed, sort):
+    n_leaves, window = 60, 26
+    leaf, ns, qty = history(seed, n_leaves, sort)
+    rng = np.random.default_rng(200 + seed)
+    rows = share_rows(leaf, ns, qty, n_leaves, short=rng.random(len(leaf)) < 0.05, sort=sort)
+    member_leaves = rng.permutation(n_leaves)[:25]
+    member_of_leaf = np.full(n_leaves, -1, np.int64)
+    member_of_leaf[member_leaves] = rng.permutation(25)
+    got = period_sums(rows, member_of_leaf, window, 25)
+    # reference: the rows that count inside the window, member x age cells summed by bincount in row order
+    m = member_of_leaf[rows.leaf]
+    keep = (m >= 0) & rows.counts & (rows.age >= 1) & (rows.age <= window)
+    cell = m[keep] * window + (rows.age[keep].astype(np.int64) - 1)
+    expected = np.bincount(cell, weights=rows.qty[keep], minlength=25 * window).reshape(25, window)
+    assert got.shape == (25, window)
+    assert np.array_equal(bits(got), bits(expected))
+    off = np.bincount(cell + 1, weights=rows.qty[keep], minlength=25 * window + 1)[:-1].reshape(25, window)
+    assert not np.array_equal(bits(got), bits(off))  # an age one column off is told apart
