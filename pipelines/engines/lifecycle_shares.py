@@ -50,6 +50,23 @@ from pipelines.keys import LEAF, PARENT, lookup
 from pipelines.vocabulary import NEW_CUSTOMER_RULES
 
 
+def sums_by(values: np.ndarray, code: np.ndarray, n: int) -> np.ndarray:
+    """(n, T): the rows of `values` (m, T) summed per `code` (m,) in 0..n-1, rows in order: the sums of
+    `np.add.at(out, code, values)` on zeros, a column at a time by bincount (far faster)."""
+    out = np.empty((values.shape[1], n))
+    for col in range(values.shape[1]):  # the horizon's periods, not the series
+        out[col] = np.bincount(code, weights=values[:, col], minlength=n)
+    return out.T
+
+
+def counts_by(flags: np.ndarray, code: np.ndarray, n: int) -> np.ndarray:
+    """(n, T) bool: any row of each `code` True in the column (`np.logical_or.at` on False, by bincount)."""
+    out = np.empty((flags.shape[1], n), dtype=bool)
+    for col in range(flags.shape[1]):
+        out[col] = np.bincount(code[flags[:, col]], minlength=n) > 0
+    return out.T
+
+
 def split_shares(
     parent_code: np.ndarray,
     n_parents: int,
@@ -94,10 +111,8 @@ def split_shares(
     weight = np.clip(p - given, 0.0, None) * act * (~new)[:, None] + take
     s_init = np.where(is_init[:, None], np.nan_to_num(initial_share)[:, None] * act, 0.0)
 
-    weight_sum = np.zeros((n_parents, t))
-    np.add.at(weight_sum, parent_code, weight)
-    init_sum = np.zeros((n_parents, t))
-    np.add.at(init_sum, parent_code, s_init)
+    weight_sum = sums_by(weight, parent_code, n_parents)
+    init_sum = sums_by(s_init, parent_code, n_parents)
     w_sum, i_sum = weight_sum[parent_code], init_sum[parent_code]
     kept = 1.0 - np.minimum(i_sum, 1.0)  # what the initial shares leave to the others
     with np.errstate(invalid="ignore", divide="ignore"):

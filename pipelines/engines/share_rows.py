@@ -241,3 +241,22 @@ def _run_period_sums(first, ids, member_of_leaf, age, qty, counts, window, n_mem
             if counts[i] and 1 <= age[i] <= window:
                 out[m, age[i] - 1] += qty[i]
     return out
+
+
+@njit(cache=True)
+def bin_window_volumes(row_bin, age, qty, short, window_of_bin, n_bins):
+    """(span, volume) per bin (`row_bin`: each row's bin in 0..n_bins-1): span = the bin's window, cut to its
+    history's length (its largest age, at least 0); volume = the sum of its rows' quantities with
+    1 <= age <= span and not `short`, in row order from 0.0 (a bincount's sums over those rows). Two passes over
+    the rows, nothing of their length written."""
+    oldest = np.zeros(n_bins, dtype=np.int64)
+    for i in range(len(row_bin)):
+        if age[i] > oldest[row_bin[i]]:
+            oldest[row_bin[i]] = age[i]
+    span = np.minimum(window_of_bin, oldest)
+    volume = np.zeros(n_bins)
+    for i in range(len(row_bin)):
+        b = row_bin[i]
+        if 1 <= age[i] <= span[b] and not short[i]:
+            volume[b] += qty[i]
+    return span, volume
