@@ -14,7 +14,16 @@ import pandas as pd
 import pytest
 
 from pipelines.calendar import EPOCH_MONDAY_NS, WEEK_NS, period_ordinal
-from pipelines.engines.share_rows import ShareRows, _run_window_sums, _week_ages, child_sums, period_ages, period_sums
+from pipelines.engines.lifecycle_shares import counts_by, sums_by
+from pipelines.engines.share_rows import (
+    ShareRows,
+    _run_window_sums,
+    _week_ages,
+    bin_window_volumes,
+    child_sums,
+    period_ages,
+    period_sums,
+)
 
 CYCLE_ORD = 2970
 
@@ -147,3 +156,42 @@ def test_period_sums_are_bincounts_cells_to_the_bit(seed, sort):
     assert np.array_equal(bits(got), bits(expected))
     off = np.bincount(cell + 1, weights=rows.qty[keep], minlength=25 * window + 1)[:-1].reshape(25, window)
     assert not np.array_equal(bits(got), bits(off))  # an age one column off is told apart
+
+
+@pytest.mark.parametrize("seed", range(6))
+@pytest.mark.parametrize("sort", [True, False])
+def test_bin_window_volumes_are_the_reinitialized_targets_bincount(seed, sort):
+    # reference: the stage's former numpy steps - each bin's largest age (at least 0), its window cut to it,
+    # and a bincount of the rows inside that window outside a shortage
+    leaf, ns, qty = history(seed, 60, sort)
+    rng = np.random.default_rng(300 + seed)
+    row_bin = (leaf // 4).astype(np.int32)  # a parent of four leaves
+    n_bins = 16
+    age = period_ages(pd.Series(ns.astype("datetime64[ns]")), "week", CYCLE_ORD)
+    short = rng.random(len(leaf)) < 0.05
+    window = rng.choice([4, 26, 52, 104], n_bins).astype(np.int64)
+    span, volume = bin_window_volumes(row_bin, age, qty, short, window, n_bins)
+    oldest = np.zeros(n_bins, np.int64)
+    np.maximum.at(oldest, row_bin, age)
+    expected_span = np.minimum(window, oldest)
+    inside = (age >= 1) & (age <= expected_span[row_bin]) & ~short
+    expected = np.bincount(row_bin[inside], weights=qty[inside], minlength=n_bins)
+    assert np.array_equal(span, expected_span)
+    assert np.array_equal(bits(volume), bits(expected))
+    wider = bin_window_volumes(row_bin, age, qty, np.zeros_like(short), window, n_bins)[1]
+    assert not np.array_equal(bits(volume), bits(wider))  # the shortage rows are told apart
+
+
+def test_sums_by_and_counts_by_are_the_ufuncs_at():
+    # reference: np.add.at / np.logical_or.at on zeros, which visit the rows in order
+    rng = np.random.default_rng(5)
+    values = np.round(rng.lognormal(0, 3, (500, 7)), 3)
+    values[rng.random(values.shape) < 0.1] = 0.0
+    code = rng.integers(0, 40, 500)
+    expected = np.zeros((40, 7))
+    np.add.at(expected, code, values)
+    assert np.array_equal(bits(sums_by(values, code, 40)), bits(expected))
+    flags = rng.random((500, 7)) < 0.02
+    any_flag = np.zeros((40, 7), dtype=bool)
+    np.logical_or.at(any_flag, code, flags)
+    assert np.array_equal(counts_by(flags, code, 40), any_flag) and not any_flag.all() and any_flag.any()
