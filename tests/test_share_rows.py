@@ -1,4 +1,5 @@
-"""The share engine's compiled passes over the history (`pipelines.engines.share_rows`) against plain numpy.
+"""The share engine's compiled passes over the history (`pipelines.engines.share_rows`) and its per-period
+split against plain numpy.
 
 References: a week's ordinal by numpy's floor division of the nanoseconds since the epoch Monday (what
 `calendar.period_ordinal` computes); a sum per leaf by `np.bincount` with weights over the rows kept, which
@@ -14,7 +15,8 @@ import pandas as pd
 import pytest
 
 from pipelines.calendar import EPOCH_MONDAY_NS, WEEK_NS, period_ordinal
-from pipelines.engines.lifecycle_shares import counts_by, sums_by
+from pipelines.engines import lifecycle_shares
+from pipelines.engines.lifecycle_shares import counts_by, split_shares, sums_by
 from pipelines.engines.share_rows import (
     ShareRows,
     _run_window_sums,
@@ -195,3 +197,26 @@ def test_sums_by_and_counts_by_are_the_ufuncs_at():
     any_flag = np.zeros((40, 7), dtype=bool)
     np.logical_or.at(any_flag, code, flags)
     assert np.array_equal(counts_by(flags, code, 40), any_flag) and not any_flag.all() and any_flag.any()
+
+
+def test_split_shares_by_blocks_of_periods_is_the_whole_horizons_split(monkeypatch):
+    # the split's steps are per period, so a block of periods at a time must give the same bits as the whole
+    # horizon at once (SPLIT_BLOCK above the horizon); references, initial shares, inactive periods, a per-period
+    # basis with zeros, all-zero parents
+    rng = np.random.default_rng(11)
+    n, t, n_parents = 400, 26, 60
+    parent_code = np.sort(rng.integers(0, n_parents, n))
+    rules = ["none", "reference", "initial_share", "awaiting_history", "phase_in"]
+    rule = rng.choice(rules, n, p=[0.7, 0.1, 0.1, 0.05, 0.05]).astype(object)
+    ref_pos = np.where(rule == "reference", rng.integers(0, n, n), -1)
+    scale = np.where(rule == "reference", rng.choice([0.5, 1.0, 1.5], n), np.nan)
+    initial = np.where(rule == "initial_share", rng.choice([0.1, 0.6, np.nan], n), np.nan)
+    active = rng.random((n, t)) < 0.85
+    for base in (rng.random(n) * (rng.random(n) < 0.8), rng.random((n, t)) * (rng.random((n, t)) < 0.7)):
+        blocked = split_shares(parent_code, n_parents, base, rule, ref_pos, scale, initial, active)
+        monkeypatch.setattr(lifecycle_shares, "SPLIT_BLOCK", t)
+        whole = split_shares(parent_code, n_parents, base, rule, ref_pos, scale, initial, active)
+        monkeypatch.undo()
+        assert np.array_equal(bits(blocked[0]), bits(whole[0])) and np.array_equal(blocked[1], whole[1])
+        assert blocked[1].any() and not blocked[1].all()
+        assert np.allclose(sums_by(blocked[0], parent_code, n_parents)[~blocked[1]], 1.0)

@@ -67,6 +67,9 @@ def counts_by(flags: np.ndarray, code: np.ndarray, n: int) -> np.ndarray:
     return out.T
 
 
+SPLIT_BLOCK = 4  # horizon periods split at a time
+
+
 def split_shares(
     parent_code: np.ndarray,
     n_parents: int,
@@ -91,11 +94,28 @@ def split_shares(
     and period, except where all_zero (no active child holds any weight).
     """
     n, t = active.shape
-    act = active.astype(float)
-    new = np.isin(rule, NEW_CUSTOMER_RULES)
-    is_ref = rule == "reference"
-    is_init = rule == "initial_share"
     base = np.asarray(history_share, dtype=float)
+    masks = np.isin(rule, NEW_CUSTOMER_RULES), rule == "reference", rule == "initial_share"
+    if t <= SPLIT_BLOCK:
+        return _split_block(parent_code, n_parents, base, masks, ref_pos, scale, initial_share, active)
+    # every step is per period, so a block of periods at a time gives the same numbers with temporaries of
+    # the block's width (the reinitialized target's split: a dozen (children x horizon) arrays otherwise)
+    shares, all_zero = np.empty((n, t)), np.empty((n_parents, t), dtype=bool)
+    for lo in range(0, t, SPLIT_BLOCK):
+        cols = slice(lo, lo + SPLIT_BLOCK)
+        shares[:, cols], all_zero[:, cols] = _split_block(
+            parent_code, n_parents, base[:, cols] if base.ndim == 2 else base, masks, ref_pos, scale,
+            initial_share, active[:, cols]
+        )
+    return shares, all_zero
+
+
+def _split_block(parent_code, n_parents, base, masks, ref_pos, scale, initial_share, active):
+    """`split_shares` over the periods of `active` (n, T): base (n,) or (n, T), masks: new, reference and
+    initial-share rows."""
+    n, t = active.shape
+    act = active.astype(float)
+    new, is_ref, is_init = masks
     p = np.where(new[:, None], 0.0, base if base.ndim == 2 else base[:, None])  # (n, T) or (n, 1)
     r = np.flatnonzero(is_ref)  # the few new customers with a reference: their rows only
     ref, k = ref_pos[r], scale[r]
