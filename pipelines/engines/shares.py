@@ -255,7 +255,8 @@ def _history_shares(
             take = ~decided & (pv > 0)
             if pc.method in ("mean_of_ratios", "smoothed"):  # the established members' rows that count, in order
                 member_of_leaf = np.full(rows.n_leaves, -1, dtype=np.int64)
-                with_rows = members[has_rows[members] & open_leaf[leaf_of_child[members]]]
+                with_rows = members[has_rows[members]]
+                with_rows = with_rows[open_leaf[leaf_of_child[with_rows]]]  # the undecided ones
                 member_of_leaf[leaf_of_child[with_rows]] = member_of[with_rows]
                 ratio = cell_proportions(period_sums(rows, member_of_leaf, w, len(members)), parent_code[members],
                                          n_parents)
