@@ -16,6 +16,7 @@ import pytest
 
 from pipelines.calendar import EPOCH_MONDAY_NS, WEEK_NS, period_ordinal
 from pipelines.engines import lifecycle_shares
+from pipelines.engines.children import _run_periods
 from pipelines.engines.lifecycle_shares import counts_by, split_shares, sums_by
 from pipelines.engines.share_rows import (
     ShareRows,
@@ -220,3 +221,21 @@ def test_split_shares_by_blocks_of_periods_is_the_whole_horizons_split(monkeypat
         assert np.array_equal(bits(blocked[0]), bits(whole[0])) and np.array_equal(blocked[1], whole[1])
         assert blocked[1].any() and not blocked[1].all()
         assert np.allclose(sums_by(blocked[0], parent_code, n_parents)[~blocked[1]], 1.0)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_run_periods_count_each_leafs_distinct_periods(seed):
+    # reference: the distinct (leaf, age) pairs per leaf, by numpy's unique
+    leaf, ns, qty = history(seed, 60)
+    rows = share_rows(leaf, ns, qty, 60)
+    count = np.zeros(60, np.int64)
+    assert _run_periods(rows.first, rows.age, count)
+    pairs = np.unique(np.stack([leaf.astype(np.int64), rows.age.astype(np.int64)], axis=1), axis=0)
+    assert np.array_equal(count, np.bincount(pairs[:, 0], minlength=60))
+    assert (np.diff(rows.first) > count).any()  # some leaf repeats a period: rows alone would miscount
+    # a leaf whose rows are not in period order is refused (the caller counts on the general path)
+    swapped = rows.age.copy()
+    at = int(np.flatnonzero(np.diff(rows.first) > 2)[0])
+    i = rows.first[at]
+    swapped[i], swapped[i + 2] = swapped[i + 2], swapped[i]
+    assert not _run_periods(rows.first, swapped, np.zeros(60, np.int64))
