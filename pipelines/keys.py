@@ -151,12 +151,26 @@ class Coded:
     """
 
     def __init__(self, frame: pd.DataFrame):
-        if len(ids_in(frame)) == 2:  # the parent ids as stored: widened to int64 only when `parent` is read
-            self.leaf, self._parent = frame[LEAF_ID].to_numpy(np.int64), frame[PARENT_ID].to_numpy()
+        if len(ids_in(frame)) == 2:  # the ids as stored: widened to int64 only when `leaf` / `parent` is read
+            self._leaf, self._parent = frame[LEAF_ID].to_numpy(), frame[PARENT_ID].to_numpy()
+            if self._leaf.dtype.kind not in "iu":
+                self._leaf = self._leaf.astype(np.int64)
         else:
-            self.leaf, self._parent = row_ids(frame)
-        self.leaves = _keys_of_ids(frame, self.leaf, LEAF)
+            self._leaf, self._parent = row_ids(frame)
+        self.leaves = _keys_of_ids(frame, self._leaf, LEAF)
         self.parents = _keys_of_ids(frame, self._parent, PARENT)
+
+    @property
+    def leaf(self) -> np.ndarray:
+        """Each row's leaf id, int64 (as `row_ids` gives it)."""
+        if self._leaf.dtype != np.int64:
+            self._leaf = self._leaf.astype(np.int64)
+        return self._leaf
+
+    @property
+    def leaf_ids(self) -> np.ndarray:
+        """Each row's leaf id as the frame holds it (int32 from the lifecycle stage: no copy of every row)."""
+        return self._leaf
 
     @property
     def parent(self) -> np.ndarray:
@@ -166,7 +180,7 @@ class Coded:
         return self._parent
 
     def leaf_rows(self, table: pd.DataFrame) -> np.ndarray:
-        return lookup(self.leaves, LEAF, table)[self.leaf] if len(self.leaf) else np.zeros(0, np.int64)
+        return lookup(self.leaves, LEAF, table)[self._leaf] if len(self._leaf) else np.zeros(0, np.int64)
 
     def parent_rows(self, table: pd.DataFrame) -> np.ndarray:
         return lookup(self.parents, PARENT, table)[self.parent] if len(self.parent) else np.zeros(0, np.int64)

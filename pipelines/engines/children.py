@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
+from numba import njit
 
 from pipelines.calendar import ordinal_to_start, period_ordinal, span_bounds
 from pipelines.engines.share_rows import ShareRows
@@ -78,19 +79,13 @@ def own_periods(
     if history.empty:
         return np.zeros(len(children), dtype=np.int64)
     c = keys if keys is not None else coded(history)
-    code, leaves = c.leaf, c.leaves
+    leaves = c.leaves
     if rows is not None and rows.first is not None:  # sorted by leaf id: each leaf's rows from its first
-        age, first, leaf = rows.age, rows.first, rows.leaf
-        # a row whose age is above its predecessor's must start a leaf (rows sorted by leaf id, so: another id)
-        up = np.flatnonzero(age[1:] > age[:-1]) + 1
-        if bool(np.all(leaf[up] != leaf[up - 1])):  # in period order within each leaf
-            # a leaf's periods: its rows less those repeating the period of the row before in the same leaf
-            # (a few rows; the same count as its rows that start the leaf or a period)
-            repeat = np.flatnonzero(age[1:] == age[:-1]) + 1
-            repeat = repeat[leaf[repeat] == leaf[repeat - 1]]
-            count = np.diff(first) - np.bincount(leaf[repeat], minlength=len(leaves))
+        count = np.zeros(len(leaves), dtype=np.int64)
+        if _run_periods(rows.first, rows.age, count):  # in period order within each leaf
             pos = lookup(children, LEAF, leaves)
             return np.where(pos >= 0, count[np.clip(pos, 0, None)], 0).astype(np.int64)
+    code = c.leaf
     ords = period_ordinal(history["period_start"], period)
     step_leaf, step_ord = np.diff(code), np.diff(ords)
     if bool(np.all((step_leaf > 0) | ((step_leaf == 0) & (step_ord >= 0)))):
@@ -107,3 +102,20 @@ def own_periods(
         count = seen.reshape(len(leaves), width).sum(axis=1)
     pos = lookup(children, LEAF, leaves)
     return np.where(pos >= 0, count[np.clip(pos, 0, None)], 0).astype(np.int64)
+
+
+@njit(cache=True)
+def _run_periods(first: np.ndarray, age: np.ndarray, count: np.ndarray) -> bool:
+    """count[l] = the distinct ages of the rows first[l] .. first[l + 1] - 1 (leaf l's run, rows sorted by leaf
+    id): its rows less those repeating the age of the row before (a moved history's row beside its own in the
+    same period). False, counts incomplete, when an age rises inside a run (the leaf's rows not in period order:
+    the caller counts another way). One pass, nothing of the history's length written."""
+    for at in range(len(first) - 1):
+        n = 0
+        for i in range(first[at], first[at + 1]):
+            if i == first[at] or age[i] < age[i - 1]:
+                n += 1
+            elif age[i] > age[i - 1]:
+                return False
+        count[at] = n
+    return True

@@ -50,6 +50,26 @@ from pipelines.keys import LEAF, PARENT, lookup
 from pipelines.vocabulary import NEW_CUSTOMER_RULES
 
 
+def sums_by(values: np.ndarray, code: np.ndarray, n: int) -> np.ndarray:
+    """(n, T): the rows of `values` (m, T) summed per `code` (m,) in 0..n-1, rows in order: the sums of
+    `np.add.at(out, code, values)` on zeros, a column at a time by bincount (far faster)."""
+    out = np.empty((values.shape[1], n))
+    for col in range(values.shape[1]):  # the horizon's periods, not the series
+        out[col] = np.bincount(code, weights=values[:, col], minlength=n)
+    return out.T
+
+
+def counts_by(flags: np.ndarray, code: np.ndarray, n: int) -> np.ndarray:
+    """(n, T) bool: any row of each `code` True in the column (`np.logical_or.at` on False, by bincount)."""
+    out = np.empty((flags.shape[1], n), dtype=bool)
+    for col in range(flags.shape[1]):
+        out[col] = np.bincount(code[flags[:, col]], minlength=n) > 0
+    return out.T
+
+
+SPLIT_BLOCK = 4  # horizon periods split at a time
+
+
 def split_shares(
     parent_code: np.ndarray,
     n_parents: int,
@@ -74,11 +94,28 @@ def split_shares(
     and period, except where all_zero (no active child holds any weight).
     """
     n, t = active.shape
-    act = active.astype(float)
-    new = np.isin(rule, NEW_CUSTOMER_RULES)
-    is_ref = rule == "reference"
-    is_init = rule == "initial_share"
     base = np.asarray(history_share, dtype=float)
+    masks = np.isin(rule, NEW_CUSTOMER_RULES), rule == "reference", rule == "initial_share"
+    if t <= SPLIT_BLOCK:
+        return _split_block(parent_code, n_parents, base, masks, ref_pos, scale, initial_share, active)
+    # every step is per period, so a block of periods at a time gives the same numbers with temporaries of
+    # the block's width (the reinitialized target's split: a dozen (children x horizon) arrays otherwise)
+    shares, all_zero = np.empty((n, t)), np.empty((n_parents, t), dtype=bool)
+    for lo in range(0, t, SPLIT_BLOCK):
+        cols = slice(lo, lo + SPLIT_BLOCK)
+        shares[:, cols], all_zero[:, cols] = _split_block(
+            parent_code, n_parents, base[:, cols] if base.ndim == 2 else base, masks, ref_pos, scale,
+            initial_share, active[:, cols]
+        )
+    return shares, all_zero
+
+
+def _split_block(parent_code, n_parents, base, masks, ref_pos, scale, initial_share, active):
+    """`split_shares` over the periods of `active` (n, T): base (n,) or (n, T), masks: new, reference and
+    initial-share rows."""
+    n, t = active.shape
+    act = active.astype(float)
+    new, is_ref, is_init = masks
     p = np.where(new[:, None], 0.0, base if base.ndim == 2 else base[:, None])  # (n, T) or (n, 1)
     r = np.flatnonzero(is_ref)  # the few new customers with a reference: their rows only
     ref, k = ref_pos[r], scale[r]
@@ -94,10 +131,8 @@ def split_shares(
     weight = np.clip(p - given, 0.0, None) * act * (~new)[:, None] + take
     s_init = np.where(is_init[:, None], np.nan_to_num(initial_share)[:, None] * act, 0.0)
 
-    weight_sum = np.zeros((n_parents, t))
-    np.add.at(weight_sum, parent_code, weight)
-    init_sum = np.zeros((n_parents, t))
-    np.add.at(init_sum, parent_code, s_init)
+    weight_sum = sums_by(weight, parent_code, n_parents)
+    init_sum = sums_by(s_init, parent_code, n_parents)
     w_sum, i_sum = weight_sum[parent_code], init_sum[parent_code]
     kept = 1.0 - np.minimum(i_sum, 1.0)  # what the initial shares leave to the others
     with np.errstate(invalid="ignore", divide="ignore"):

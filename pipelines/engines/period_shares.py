@@ -41,7 +41,7 @@ import pandas as pd
 
 from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal, season_length, span_bounds
 from pipelines.engines.base_forecasts import base_forecasts
-from pipelines.engines.lifecycle_shares import reference_positions, split_shares
+from pipelines.engines.lifecycle_shares import counts_by, reference_positions, split_shares
 from pipelines.engines.series_grids import SeriesGrid, series_grid
 from pipelines.engines.share_rows import shortage_periods
 from pipelines.engines.share_settings import ShareSettings
@@ -275,10 +275,8 @@ def period_shares(
         active,
     )
 
-    any_active = np.zeros((n_parents, len(starts)), dtype=bool)
-    np.logical_or.at(any_active, parent_code, active)
-    non_waiting = np.zeros_like(any_active)
-    np.logical_or.at(non_waiting, parent_code, active & (rule != "awaiting_history")[:, None])
+    any_active = counts_by(active, parent_code, n_parents)
+    non_waiting = counts_by(active & (rule != "awaiting_history")[:, None], parent_code, n_parents)
     product_active = np.ones_like(any_active)
     if products is not None:
         p_from, p_to = span_bounds(products, period)

@@ -13,6 +13,16 @@ rows, in the same order, so every sum adds the same values in the same order.
 With the rows sorted by leaf id (as the lifecycle stage writes them) the rows
 of a few leaves are found from the first row of each leaf (`rows_of`), not by
 a pass over the whole history.
+
+The passes over every row are compiled kernels (numba) that read the history's
+own arrays and write only the per-leaf results: a week's age from the row
+before where the leaf's periods follow each other (one division per run, not
+per row), the window sums without a gathered window, mask or compressed copy
+per row. Each sum adds a leaf's rows in row order from 0.0, as `np.bincount`
+with weights does, so the sums are the same to the bit. The history's length
+in fresh memory is what a stage run in one process pays in page faults once
+the heap has no freed room left (the kernel's time, often more than the
+stage's own): the ages are int32, the leaf ids are read as stored.
 """
 
 from __future__ import annotations
@@ -21,29 +31,52 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
+from numba import njit
 
 from pipelines.calendar import EPOCH_MONDAY_NS, WEEK_NS, period_ordinal
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.keys import LEAF, PARENT_ID, Coded, ids_in, lookup, row_ids
 
+NAT = np.iinfo(np.int64).min  # NaT's int64 view
+
 
 def period_ages(starts: pd.Series, period: str, cycle_ord: int) -> np.ndarray:
-    """cycle_ord minus `period_ordinal` of each start (1 = the period before the cycle), computed in place: one
-    array of the history's length, not three."""
+    """cycle_ord minus `period_ordinal` of each start (1 = the period before the cycle): weekly starts without
+    NaT as int32 in one compiled pass (`_week_ages`), any other as `period_ordinal` gives them (int64)."""
     values = starts.to_numpy()
-    if period != "week" or values.dtype != "datetime64[ns]" or np.isnat(values).any():
-        return cycle_ord - period_ordinal(starts, period)
-    age = values.view(np.int64) - EPOCH_MONDAY_NS  # period_ordinal's own floor division, in place
-    np.floor_divide(age, WEEK_NS, out=age)
-    return np.subtract(cycle_ord, age, out=age)
+    if period == "week" and values.dtype == "datetime64[ns]":
+        age = np.empty(len(values), dtype=np.int32)
+        if _week_ages(values.view(np.int64), cycle_ord, age):
+            return age
+    return cycle_ord - period_ordinal(starts, period)
+
+
+@njit(cache=True)
+def _week_ages(ns: np.ndarray, cycle_ord: int, out: np.ndarray) -> bool:
+    """out[i] = cycle_ord - floor((ns[i] - EPOCH_MONDAY_NS) / WEEK_NS), `period_ordinal`'s week ordinal; a row one
+    week after the row before is one younger (the same ordinal plus one, exactly), so the division is made only
+    where a run of consecutive weeks starts. False at the first NaT (out then incomplete)."""
+    before = NAT
+    age = 0
+    for i in range(len(ns)):
+        value = ns[i]
+        if value == NAT:
+            return False
+        if before != NAT and value - before == WEEK_NS:
+            age -= 1
+        else:
+            age = cycle_ord - (value - EPOCH_MONDAY_NS) // WEEK_NS
+        out[i] = age
+        before = value
+    return True
 
 
 @dataclass(frozen=True)
 class ShareRows:
     """The history's rows for the share engine (see the module docstring)."""
 
-    leaf: np.ndarray  # each row's leaf id (`Coded.leaf`)
-    age: np.ndarray  # cycle ordinal minus the row's period ordinal: 1 = the period before the cycle
+    leaf: np.ndarray  # each row's leaf id (`Coded.leaf_ids`: as the history holds them)
+    age: np.ndarray  # cycle ordinal minus the row's period ordinal: 1 = the period before the cycle (int32 weekly)
     qty: np.ndarray
     counts: np.ndarray  # bool: age >= 1 and not in a shortage period left out (`shortage_periods`)
     n_leaves: int
@@ -71,7 +104,7 @@ def share_rows(
     history: pd.DataFrame, keys: Coded, period: str, cycle_ord: int, exclude_shortages: bool, short=None
 ) -> ShareRows:
     """The history's `ShareRows` at the cycle ordinal; short: `shortage_periods(history, exclude_shortages)`."""
-    leaf = keys.leaf
+    leaf = keys.leaf_ids
     n_leaves = len(keys.leaves)
     age = period_ages(history["period_start"], period, cycle_ord)
     counts = age >= 1
@@ -79,7 +112,8 @@ def share_rows(
         counts &= ~short
     first = None
     if len(leaf) and bool(np.all(leaf[1:] >= leaf[:-1])):
-        first = np.searchsorted(leaf, np.arange(n_leaves + 1))
+        # the ids searched in the leaf ids' own type: a wider one would convert the history's ids first
+        first = np.searchsorted(leaf, np.arange(n_leaves + 1, dtype=leaf.dtype))
     return ShareRows(leaf, age, history["quantity"].to_numpy(float), counts, n_leaves, exclude_shortages, first)
 
 
@@ -131,14 +165,98 @@ def _rows_of_parents(parent: np.ndarray, chosen: np.ndarray) -> np.ndarray:
     return np.flatnonzero(flagged[parent])
 
 
-def child_sums(rows: ShareRows, at: np.ndarray | None, window, leaf_of_child: np.ndarray) -> np.ndarray:
-    """Each child's volume over the rows `at` (positions, in order; None: every row) that count and lie inside
-    `window` (a number, or one per row); the rows outside add 0.0 (`window_volumes`)."""
-    age, qty, counts, leaf = rows.age, rows.qty, rows.counts, rows.leaf
-    if at is not None:
-        age, qty, counts, leaf = age[at], qty[at], counts[at], leaf[at]
-    inside = np.less_equal(age, window)
-    inside &= counts
-    inside = np.flatnonzero(inside)  # the rows inside alone, in order: the same sums as adding 0.0 for the others
-    per_leaf = np.append(np.bincount(leaf[inside], weights=qty[inside], minlength=rows.n_leaves), 0.0)
+def child_sums(rows: ShareRows, leaves: np.ndarray | None, window, leaf_of_child: np.ndarray) -> np.ndarray:
+    """Each child's volume over its leaf's rows that count and lie inside `window` (a number, or one per leaf id,
+    0 for a leaf whose rows never count), among the leaves marked True in `leaves` (bool, n_leaves; None:
+    every leaf): the rows outside add 0.0 (`window_volumes`). A child without history (-1) gets 0.0.
+
+    Summed per leaf in row order by a compiled pass: over the marked leaves' runs where the rows are sorted by
+    leaf id (`first`), else over every row."""
+    n = rows.n_leaves
+    if np.ndim(window) == 0:
+        window = np.full(n, window, dtype=np.int32) if leaves is None else np.where(leaves, window, 0).astype(np.int32)
+    elif leaves is not None:
+        window = np.where(leaves, window, 0).astype(np.int32)
+    if leaves is not None and rows.first is not None:
+        ids = np.flatnonzero(leaves)
+        per_leaf = _run_window_sums(rows.first, ids, rows.age, rows.qty, rows.counts, window, n)
+    else:
+        per_leaf = _row_window_sums(rows.leaf, rows.age, rows.qty, rows.counts, window, n)
     return per_leaf[leaf_of_child]  # -1, a child without history: the 0.0 appended
+
+
+@njit(cache=True)
+def _row_window_sums(leaf, age, qty, counts, window, n_leaves):
+    """Per leaf id (and a last 0.0): the sum of qty over its rows with counts and age <= window[leaf], in row
+    order from 0.0 (`np.bincount`'s sums of those rows)."""
+    out = np.zeros(n_leaves + 1)
+    for i in range(len(leaf)):
+        at = leaf[i]
+        if counts[i] and age[i] <= window[at]:
+            out[at] += qty[i]
+    return out
+
+
+@njit(cache=True)
+def _run_window_sums(first, ids, age, qty, counts, window, n_leaves):
+    """`_row_window_sums` over the runs first[l] .. first[l + 1] of the leaf ids `ids` only (the rows sorted by
+    leaf id); every other leaf 0.0."""
+    out = np.zeros(n_leaves + 1)
+    for at in ids:
+        w = window[at]
+        total = 0.0
+        for i in range(first[at], first[at + 1]):
+            if counts[i] and age[i] <= w:
+                total += qty[i]
+        out[at] = total
+    return out
+
+
+def period_sums(rows: ShareRows, member_of_leaf: np.ndarray, window: int, n_members: int) -> np.ndarray:
+    """(n_members, window): each member's volume per age 1..window (column a - 1 holds age a) over the rows that
+    count of the leaves with a member (`member_of_leaf` >= 0, one leaf per member), in row order from 0.0: the
+    cells `np.bincount` of member x age with weights gives."""
+    if rows.first is not None:
+        ids = np.flatnonzero(member_of_leaf >= 0)
+        return _run_period_sums(rows.first, ids, member_of_leaf, rows.age, rows.qty, rows.counts, window, n_members)
+    return _row_period_sums(rows.leaf, member_of_leaf, rows.age, rows.qty, rows.counts, window, n_members)
+
+
+@njit(cache=True)
+def _row_period_sums(leaf, member_of_leaf, age, qty, counts, window, n_members):
+    out = np.zeros((n_members, window))
+    for i in range(len(leaf)):
+        m = member_of_leaf[leaf[i]]
+        if m >= 0 and counts[i] and 1 <= age[i] <= window:
+            out[m, age[i] - 1] += qty[i]
+    return out
+
+
+@njit(cache=True)
+def _run_period_sums(first, ids, member_of_leaf, age, qty, counts, window, n_members):
+    out = np.zeros((n_members, window))
+    for at in ids:
+        m = member_of_leaf[at]
+        for i in range(first[at], first[at + 1]):
+            if counts[i] and 1 <= age[i] <= window:
+                out[m, age[i] - 1] += qty[i]
+    return out
+
+
+@njit(cache=True)
+def bin_window_volumes(row_bin, age, qty, short, window_of_bin, n_bins):
+    """(span, volume) per bin (`row_bin`: each row's bin in 0..n_bins-1): span = the bin's window, cut to its
+    history's length (its largest age, at least 0); volume = the sum of its rows' quantities with
+    1 <= age <= span and not `short`, in row order from 0.0 (a bincount's sums over those rows). Two passes over
+    the rows, nothing of their length written."""
+    oldest = np.zeros(n_bins, dtype=np.int64)
+    for i in range(len(row_bin)):
+        if age[i] > oldest[row_bin[i]]:
+            oldest[row_bin[i]] = age[i]
+    span = np.minimum(window_of_bin, oldest)
+    volume = np.zeros(n_bins)
+    for i in range(len(row_bin)):
+        b = row_bin[i]
+        if 1 <= age[i] <= span[b] and not short[i]:
+            volume[b] += qty[i]
+    return span, volume

@@ -57,7 +57,7 @@ import pandas as pd
 
 from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal
 from pipelines.engines.lifecycle_shares import lifecycle_rules, split_shares
-from pipelines.engines.share_rows import ShareRows, child_sums, history_rows
+from pipelines.engines.share_rows import ShareRows, child_sums, history_rows, period_sums
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.keys import LEAF, LEAF_ID, PARENT, PARENT_ID, Coded, coded, extend_ids, factorize
 
@@ -115,6 +115,11 @@ def period_proportions(
     # child volume per (child, period) and parent volume per (parent, period)
     child_cell = c * window + (a - 1)
     child_t = np.bincount(child_cell, weights=q, minlength=n_children * window).reshape(n_children, window)
+    return cell_proportions(child_t, parent_of_child, n_parents)
+
+
+def cell_proportions(child_t: np.ndarray, parent_of_child: np.ndarray, n_parents: int) -> tuple[np.ndarray, np.ndarray]:
+    """`period_proportions` from the child volumes per window period already summed (n, window)."""
     parent_t = parent_sums_by_column(child_t, parent_of_child, n_parents)
     denominator = parent_t[parent_of_child]
     has_volume = denominator > 0
@@ -130,7 +135,11 @@ def mean_of_ratios(
 
     Returns one value per child (0 for a child of a parent with no volume).
     """
-    ratio, has_volume = period_proportions(age, qty, child, parent_of_child, n_parents, window)
+    return ratio_mean(*period_proportions(age, qty, child, parent_of_child, n_parents, window))
+
+
+def ratio_mean(ratio: np.ndarray, has_volume: np.ndarray) -> np.ndarray:
+    """`mean_of_ratios` from `period_proportions`' ratios."""
     periods_with_volume = has_volume.sum(axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(periods_with_volume > 0, ratio.sum(axis=1) / periods_with_volume, 0.0)
@@ -154,10 +163,14 @@ def smoothed_proportions(
     of a parent with no volume). One pass over the window's periods, each
     vectorised over all children.
     """
-    ratio, has_volume = period_proportions(age, qty, child, parent_of_child, n_parents, window)
-    p = np.zeros(len(parent_of_child))
-    started = np.zeros(len(parent_of_child), dtype=bool)
-    for col in range(window - 1, -1, -1):  # age window .. 1: oldest to newest
+    return ratio_smoothed(*period_proportions(age, qty, child, parent_of_child, n_parents, window), alpha)
+
+
+def ratio_smoothed(ratio: np.ndarray, has_volume: np.ndarray, alpha: float) -> np.ndarray:
+    """`smoothed_proportions` from `period_proportions`' ratios."""
+    p = np.zeros(len(ratio))
+    started = np.zeros(len(ratio), dtype=bool)
+    for col in range(ratio.shape[1] - 1, -1, -1):  # age window .. 1: oldest to newest
         r, has = ratio[:, col], has_volume[:, col]
         p = np.where(has, np.where(started, alpha * r + (1.0 - alpha) * p, r), p)
         started |= has
@@ -211,7 +224,7 @@ def _history_shares(
     window_of_class = np.array([settings.rule(name).window for name in settings.rules] + [0], dtype=np.int32)
     window_of_leaf = np.zeros(rows.n_leaves, dtype=np.int32)  # 0: a leaf of no child, whose rows never count
     window_of_leaf[leaf_of_child[has_rows]] = window_of_class[class_of_child[has_rows]]
-    configured = child_sums(rows, None, window_of_leaf[rows.leaf], leaf_of_child)
+    configured = child_sums(rows, None, window_of_leaf, leaf_of_child)
 
     out = {
         "history_share": np.zeros(n),
@@ -237,20 +250,19 @@ def _history_shares(
             # the rows of the children still undecided (all of the class's at its configured window), in order
             open_leaf = np.zeros(rows.n_leaves, dtype=bool)
             open_leaf[leaf_of_child[~decided & has_rows]] = True
-            at = None if w == pc.window else rows.rows_of(open_leaf)
-            cv = configured if at is None else child_sums(rows, at, w, leaf_of_child)
+            cv = configured if w == pc.window else child_sums(rows, open_leaf, w, leaf_of_child)
             pv = np.bincount(parent_code, weights=cv * established, minlength=n_parents)[parent_code]
             take = ~decided & (pv > 0)
             if pc.method in ("mean_of_ratios", "smoothed"):  # the established members' rows that count, in order
                 member_of_leaf = np.full(rows.n_leaves, -1, dtype=np.int64)
                 with_rows = members[has_rows[members]]
+                with_rows = with_rows[open_leaf[leaf_of_child[with_rows]]]  # the undecided ones
                 member_of_leaf[leaf_of_child[with_rows]] = member_of[with_rows]
-                at = rows.rows_of((member_of_leaf >= 0) & open_leaf)
-                at = at[rows.counts[at] & (rows.age[at] <= w)]  # inside the window: the rows it sums
-                args = (rows.age[at], rows.qty[at], member_of_leaf[rows.leaf[at]], parent_code[members], n_parents, w)
+                ratio = cell_proportions(period_sums(rows, member_of_leaf, w, len(members)), parent_code[members],
+                                         n_parents)
                 s = np.zeros(n)
                 by_ratio = pc.method == "mean_of_ratios"
-                s[members] = mean_of_ratios(*args) if by_ratio else smoothed_proportions(*args, pc.smoothing)
+                s[members] = ratio_mean(*ratio) if by_ratio else ratio_smoothed(*ratio, pc.smoothing)
             else:  # pooled; and the pooled summary (and per-period fallback) of the per-period methods
                 s = np.divide(cv, pv, out=np.zeros(n), where=pv > 0) * established
             out["history_share"][take] = s[take]

@@ -48,7 +48,7 @@ from pipelines.calendar import horizon_starts, period_ordinal
 from pipelines.checks import SHARES_SUM_TO_ONE
 from pipelines.engines.period_shares import period_shares, stored_basis
 from pipelines.engines.proofs import find_shares_not_summing_to_one
-from pipelines.engines.share_rows import period_ages, shortage_periods
+from pipelines.engines.share_rows import bin_window_volumes, period_ages, shortage_periods
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.share_tuning import chosen_rules
 from pipelines.keys import LEAF, LEAF_ID, PARENT, PARENT_ID, coded, factorize, first_rows, ids_in, key_rank
@@ -85,20 +85,14 @@ def parent_baselines(
     short = shortage_periods(history, settings.exclude_shortages)
     age = period_ages(history["period_start"], period, cycle_ord)
     qty = history["quantity"].to_numpy(float)
-    oldest = np.zeros(n_bins, dtype=np.int64)  # history length of each parent, in periods
-    if len(row_bin) and bool(np.all(row_bin[1:] >= row_bin[:-1])):  # each bin's rows one run: its largest age
-        first = np.flatnonzero(np.r_[True, row_bin[1:] != row_bin[:-1]])
-        oldest[row_bin[first]] = np.maximum(np.maximum.reduceat(age, first), 0)
-    else:
-        np.maximum.at(oldest, row_bin, age)
-    span = np.minimum(window_used[code_of_bin], oldest).astype(np.int32)  # a window: a few hundred periods
-    inside = np.less_equal(age, span[row_bin])
-    inside &= age >= 1
-    use = np.flatnonzero(inside & ~short) if short.any() else np.flatnonzero(inside)  # in order: the same sums
-    volume = np.bincount(row_bin[use], weights=qty[use], minlength=n_bins)
-    # shortage periods inside the window: distinct (parent, age) pairs
-    m = inside & short
-    pairs = np.unique(np.stack([row_bin[m], age[m]], axis=1), axis=0)
+    # each parent's window cut to its history's length, and its volume inside (rows in order: the same sums as a
+    # bincount over the rows inside), in compiled passes writing nothing of the history's length
+    span, volume = bin_window_volumes(row_bin, age, qty, short, window_used[code_of_bin], n_bins)
+    # shortage periods inside the window: distinct (parent, age) pairs, from the shortage rows alone
+    at = np.flatnonzero(short)
+    bins, ages = row_bin[at].astype(np.int64), age[at].astype(np.int64)
+    m = (ages >= 1) & (ages <= span[bins])
+    pairs = np.unique(np.stack([bins[m], ages[m]], axis=1), axis=0)
     periods = span - np.bincount(pairs[:, 0], minlength=n_bins)
     by_bin = np.divide(volume, periods, out=np.zeros(n_bins), where=periods > 0)
     baseline = np.zeros(n_parents + 1)

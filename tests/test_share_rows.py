@@ -1,0 +1,241 @@
+"""The share engine's compiled passes over the history (`pipelines.engines.share_rows`) and its per-period
+split against plain numpy.
+
+References: a week's ordinal by numpy's floor division of the nanoseconds since the epoch Monday (what
+`calendar.period_ordinal` computes); a sum per leaf by `np.bincount` with weights over the rows kept, which
+adds each bin's values in row order from 0.0 (numpy's documented `bincount`: out[x[i]] += w[i]). Every
+comparison is to the bit (float64 viewed as int64), on data where another order of addition or a window one
+period off gives other bits (asserted too, so the comparisons can fail).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from pipelines.calendar import EPOCH_MONDAY_NS, WEEK_NS, period_ordinal
+from pipelines.engines import lifecycle_shares
+from pipelines.engines.children import _run_periods
+from pipelines.engines.lifecycle_shares import counts_by, split_shares, sums_by
+from pipelines.engines.share_rows import (
+    ShareRows,
+    _run_window_sums,
+    _week_ages,
+    bin_window_volumes,
+    child_sums,
+    period_ages,
+    period_sums,
+)
+
+CYCLE_ORD = 2970
+
+
+def bits(values: np.ndarray) -> np.ndarray:
+    return np.asarray(values, dtype=np.float64).view(np.int64)
+
+
+def history(seed: int, n_leaves: int = 60, sort: bool = True):
+    """Random rows: leaf runs of consecutive weeks with gaps and a repeated week, quantities of mixed scale with
+    a NaN, a -0.0 and cents, a few shortage rows; rows sorted by leaf id (and period) or shuffled."""
+    rng = np.random.default_rng(seed)
+    leaf, week = [], []
+    for leaf_id in range(n_leaves):
+        n = int(rng.integers(0, 40))
+        start = CYCLE_ORD - int(rng.integers(1, 80))
+        weeks = start + np.cumsum(rng.choice([1, 1, 1, 2, 5, 0], size=n))  # gaps and a repeated week
+        leaf += [leaf_id] * n
+        week += weeks.tolist()
+    leaf, week = np.array(leaf, dtype=np.int32), np.array(week, dtype=np.int64)
+    qty = np.round(rng.lognormal(2, 2, len(leaf)), 2) * rng.choice([1.0, 1e-3, 1e6], len(leaf))
+    qty[rng.integers(0, len(qty), 3)] = [np.nan, -0.0, 0.1]
+    ns = EPOCH_MONDAY_NS + (week - 0) * WEEK_NS + rng.choice([0, 86_400 * 10**9 * 3], len(week))  # some mid-week
+    if not sort:
+        order = rng.permutation(len(leaf))
+        leaf, ns, qty = leaf[order], ns[order], qty[order]
+    return leaf, ns, qty
+
+
+def reference_ages(ns: np.ndarray) -> np.ndarray:
+    return CYCLE_ORD - (ns - EPOCH_MONDAY_NS) // WEEK_NS
+
+
+def share_rows(leaf, ns, qty, n_leaves, short=None, sort=True) -> ShareRows:
+    age = period_ages(pd.Series(ns.astype("datetime64[ns]")), "week", CYCLE_ORD)
+    counts = age >= 1
+    if short is not None:
+        counts &= ~short
+    first = np.searchsorted(leaf, np.arange(n_leaves + 1, dtype=leaf.dtype)) if sort else None
+    return ShareRows(leaf, age, qty, counts, n_leaves, True, first)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_week_ages_are_the_week_ordinals_floor_division(seed):
+    _, ns, _ = history(seed)
+    ns = np.concatenate([ns, [EPOCH_MONDAY_NS - 1, EPOCH_MONDAY_NS - WEEK_NS, EPOCH_MONDAY_NS - 1 + WEEK_NS]])
+    age = period_ages(pd.Series(ns.astype("datetime64[ns]")), "week", CYCLE_ORD)
+    assert age.dtype == np.int32
+    assert np.array_equal(age, reference_ages(ns))
+    assert np.array_equal(age, CYCLE_ORD - period_ordinal(pd.Series(ns.astype("datetime64[ns]")), "week"))
+
+
+def test_week_ages_take_the_row_before_only_one_week_apart():
+    # a step of one week is one period; a step of 6 days from a Sunday crosses one week boundary, so the
+    # kernel's shortcut must not fire for it (a kernel reading "less than a week: same age - 1" would fail)
+    sunday = EPOCH_MONDAY_NS + 6 * 86_400 * 10**9
+    ns = np.array([EPOCH_MONDAY_NS, EPOCH_MONDAY_NS + WEEK_NS, sunday + WEEK_NS, sunday + WEEK_NS + 6 * 86_400 * 10**9])
+    out = np.empty(len(ns), np.int32)
+    assert _week_ages(ns, CYCLE_ORD, out)
+    assert out.tolist() == reference_ages(ns).tolist() == [CYCLE_ORD, CYCLE_ORD - 1, CYCLE_ORD - 1, CYCLE_ORD - 2]
+
+
+def test_week_ages_with_a_missing_date_take_the_general_path():
+    ns = pd.Series(pd.to_datetime(["2026-11-23", None, "2026-11-09"]))
+    out = np.empty(3, np.int32)
+    assert not _week_ages(ns.to_numpy().view(np.int64), CYCLE_ORD, out)
+    age = period_ages(ns, "week", CYCLE_ORD)
+    expected = CYCLE_ORD - period_ordinal(ns, "week")
+    assert np.array_equal(age, expected, equal_nan=True)
+
+
+def reference_child_sums(rows: ShareRows, leaves, window, leaf_of_child):
+    window = np.broadcast_to(np.asarray(window), (rows.n_leaves,)) if np.ndim(window) == 0 else window
+    keep = rows.counts & (rows.age <= window[rows.leaf])
+    if leaves is not None:
+        keep &= leaves[rows.leaf]
+    per_leaf = np.append(np.bincount(rows.leaf[keep], weights=rows.qty[keep], minlength=rows.n_leaves), 0.0)
+    return per_leaf[leaf_of_child]
+
+
+@pytest.mark.parametrize("seed", range(6))
+@pytest.mark.parametrize("sort", [True, False])
+def test_child_sums_are_bincounts_sums_to_the_bit(seed, sort):
+    n_leaves = 60
+    leaf, ns, qty = history(seed, n_leaves, sort)
+    rng = np.random.default_rng(100 + seed)
+    rows = share_rows(leaf, ns, qty, n_leaves, short=rng.random(len(leaf)) < 0.05, sort=sort)
+    leaf_of_child = np.append(rng.permutation(n_leaves)[:50], [-1, -1])  # two children without history
+    per_leaf_window = rng.choice([0, 4, 13, 26, 52], n_leaves).astype(np.int32)
+    open_leaves = rng.random(n_leaves) < 0.4
+    for leaves, window in ((None, per_leaf_window), (open_leaves, 26), (None, 13), (open_leaves, per_leaf_window)):
+        got = child_sums(rows, leaves, window, leaf_of_child)
+        assert np.array_equal(bits(got), bits(reference_child_sums(rows, leaves, window, leaf_of_child)))
+
+
+def test_the_sums_comparison_can_fail():
+    # the data tell a row-order sum from a reversed one and a window one period longer, so a kernel that
+    # summed in another order or compared age < window + 1 wrongly would not pass the test above
+    leaf, ns, qty = history(3, 60)
+    rows = share_rows(leaf, ns, qty, 60)
+    window = np.full(60, 52, np.int32)
+    forward = _run_window_sums(rows.first, np.arange(60), rows.age, rows.qty, rows.counts, window, 60)
+    backward = np.zeros(61)
+    for i in range(len(leaf) - 1, -1, -1):  # the same rows, last to first
+        if rows.counts[i] and rows.age[i] <= 52:
+            backward[leaf[i]] += qty[i]
+    assert np.allclose(forward, backward, rtol=1e-12, equal_nan=True)  # the same sums but for rounding...
+    assert not np.array_equal(bits(forward), bits(backward))  # ...but not the same bits
+    longer = _run_window_sums(rows.first, np.arange(60), rows.age, rows.qty, rows.counts, window + 1, 60)
+    assert not np.array_equal(bits(forward), bits(longer))
+
+
+@pytest.mark.parametrize("seed", range(6))
+@pytest.mark.parametrize("sort", [True, False])
+def test_period_sums_are_bincounts_cells_to_the_bit(seed, sort):
+    n_leaves, window = 60, 26
+    leaf, ns, qty = history(seed, n_leaves, sort)
+    rng = np.random.default_rng(200 + seed)
+    rows = share_rows(leaf, ns, qty, n_leaves, short=rng.random(len(leaf)) < 0.05, sort=sort)
+    member_leaves = rng.permutation(n_leaves)[:25]
+    member_of_leaf = np.full(n_leaves, -1, np.int64)
+    member_of_leaf[member_leaves] = rng.permutation(25)
+    got = period_sums(rows, member_of_leaf, window, 25)
+    # reference: the rows that count inside the window, member x age cells summed by bincount in row order
+    m = member_of_leaf[rows.leaf]
+    keep = (m >= 0) & rows.counts & (rows.age >= 1) & (rows.age <= window)
+    cell = m[keep] * window + (rows.age[keep].astype(np.int64) - 1)
+    expected = np.bincount(cell, weights=rows.qty[keep], minlength=25 * window).reshape(25, window)
+    assert got.shape == (25, window)
+    assert np.array_equal(bits(got), bits(expected))
+    off = np.bincount(cell + 1, weights=rows.qty[keep], minlength=25 * window + 1)[:-1].reshape(25, window)
+    assert not np.array_equal(bits(got), bits(off))  # an age one column off is told apart
+
+
+@pytest.mark.parametrize("seed", range(6))
+@pytest.mark.parametrize("sort", [True, False])
+def test_bin_window_volumes_are_the_reinitialized_targets_bincount(seed, sort):
+    # reference: the stage's former numpy steps - each bin's largest age (at least 0), its window cut to it,
+    # and a bincount of the rows inside that window outside a shortage
+    leaf, ns, qty = history(seed, 60, sort)
+    rng = np.random.default_rng(300 + seed)
+    row_bin = (leaf // 4).astype(np.int32)  # a parent of four leaves
+    n_bins = 16
+    age = period_ages(pd.Series(ns.astype("datetime64[ns]")), "week", CYCLE_ORD)
+    short = rng.random(len(leaf)) < 0.05
+    window = rng.choice([4, 26, 52, 104], n_bins).astype(np.int64)
+    span, volume = bin_window_volumes(row_bin, age, qty, short, window, n_bins)
+    oldest = np.zeros(n_bins, np.int64)
+    np.maximum.at(oldest, row_bin, age)
+    expected_span = np.minimum(window, oldest)
+    inside = (age >= 1) & (age <= expected_span[row_bin]) & ~short
+    expected = np.bincount(row_bin[inside], weights=qty[inside], minlength=n_bins)
+    assert np.array_equal(span, expected_span)
+    assert np.array_equal(bits(volume), bits(expected))
+    wider = bin_window_volumes(row_bin, age, qty, np.zeros_like(short), window, n_bins)[1]
+    assert not np.array_equal(bits(volume), bits(wider))  # the shortage rows are told apart
+
+
+def test_sums_by_and_counts_by_are_the_ufuncs_at():
+    # reference: np.add.at / np.logical_or.at on zeros, which visit the rows in order
+    rng = np.random.default_rng(5)
+    values = np.round(rng.lognormal(0, 3, (500, 7)), 3)
+    values[rng.random(values.shape) < 0.1] = 0.0
+    code = rng.integers(0, 40, 500)
+    expected = np.zeros((40, 7))
+    np.add.at(expected, code, values)
+    assert np.array_equal(bits(sums_by(values, code, 40)), bits(expected))
+    flags = rng.random((500, 7)) < 0.02
+    any_flag = np.zeros((40, 7), dtype=bool)
+    np.logical_or.at(any_flag, code, flags)
+    assert np.array_equal(counts_by(flags, code, 40), any_flag) and not any_flag.all() and any_flag.any()
+
+
+def test_split_shares_by_blocks_of_periods_is_the_whole_horizons_split(monkeypatch):
+    # the split's steps are per period, so a block of periods at a time must give the same bits as the whole
+    # horizon at once (SPLIT_BLOCK above the horizon); references, initial shares, inactive periods, a per-period
+    # basis with zeros, all-zero parents
+    rng = np.random.default_rng(11)
+    n, t, n_parents = 400, 26, 60
+    parent_code = np.sort(rng.integers(0, n_parents, n))
+    rules = ["none", "reference", "initial_share", "awaiting_history", "phase_in"]
+    rule = rng.choice(rules, n, p=[0.7, 0.1, 0.1, 0.05, 0.05]).astype(object)
+    ref_pos = np.where(rule == "reference", rng.integers(0, n, n), -1)
+    scale = np.where(rule == "reference", rng.choice([0.5, 1.0, 1.5], n), np.nan)
+    initial = np.where(rule == "initial_share", rng.choice([0.1, 0.6, np.nan], n), np.nan)
+    active = rng.random((n, t)) < 0.85
+    for base in (rng.random(n) * (rng.random(n) < 0.8), rng.random((n, t)) * (rng.random((n, t)) < 0.7)):
+        blocked = split_shares(parent_code, n_parents, base, rule, ref_pos, scale, initial, active)
+        monkeypatch.setattr(lifecycle_shares, "SPLIT_BLOCK", t)
+        whole = split_shares(parent_code, n_parents, base, rule, ref_pos, scale, initial, active)
+        monkeypatch.undo()
+        assert np.array_equal(bits(blocked[0]), bits(whole[0])) and np.array_equal(blocked[1], whole[1])
+        assert blocked[1].any() and not blocked[1].all()
+        assert np.allclose(sums_by(blocked[0], parent_code, n_parents)[~blocked[1]], 1.0)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_run_periods_count_each_leafs_distinct_periods(seed):
+    # reference: the distinct (leaf, age) pairs per leaf, by numpy's unique
+    leaf, ns, qty = history(seed, 60)
+    rows = share_rows(leaf, ns, qty, 60)
+    count = np.zeros(60, np.int64)
+    assert _run_periods(rows.first, rows.age, count)
+    pairs = np.unique(np.stack([leaf.astype(np.int64), rows.age.astype(np.int64)], axis=1), axis=0)
+    assert np.array_equal(count, np.bincount(pairs[:, 0], minlength=60))
+    assert (np.diff(rows.first) > count).any()  # some leaf repeats a period: rows alone would miscount
+    # a leaf whose rows are not in period order is refused (the caller counts on the general path)
+    swapped = rows.age.copy()
+    at = int(np.flatnonzero(np.diff(rows.first) > 2)[0])
+    i = rows.first[at]
+    swapped[i], swapped[i + 2] = swapped[i + 2], swapped[i]
+    assert not _run_periods(rows.first, swapped, np.zeros(60, np.int64))
