@@ -6,12 +6,10 @@ key table). Two neighbouring cells holding one object hold one text, of one
 type, equal to itself; so a column's cells are judged where its object changes
 only: `text_codes.run_starts` finds those places a block of rows at a time on
 the addresses read in place (no copy, no full-length temporary); `few_runs` gives
-them for a column in long runs, kept for the whole validation of a table
+them for a column in long runs (kept for the whole validation of a table
 inside `runs_kept`, so the type check, the unique key and the ids' proof find
-them once (`object_run_starts`: one compiled pass over the addresses, numba,
-with `run_starts`' blocks and its giving up on too many runs); `text_changes`
-gives where neighbouring cells differ as text, comparing text only where the
-object changes.
+them once); `text_changes` gives where neighbouring cells differ as text,
+comparing text only where the object changes.
 """
 
 from __future__ import annotations
@@ -21,9 +19,8 @@ import contextvars
 
 import numpy as np
 import pandas as pd
-from numba import njit
 
-from pipelines.text_codes import RUN_BLOCK, RUNS_SHARE, addresses
+from pipelines.text_codes import RUNS_SHARE, run_starts
 
 # during one validation: the runs of each column asked for, with the column (held, so its address stays its own)
 _KEPT: contextvars.ContextVar[dict | None] = contextvars.ContextVar("cell_runs_kept", default=None)
@@ -38,40 +35,10 @@ def few_runs(values: np.ndarray) -> np.ndarray | None:
     key = (values.__array_interface__["data"][0], values.shape, values.strides)
     if kept is not None and key in kept:
         return kept[key][1]
-    starts = object_run_starts(values, 1 / RUNS_SHARE) if len(values) >= RUNS_SHARE else None
+    starts = run_starts([values], most=1 / RUNS_SHARE) if len(values) >= RUNS_SHARE else None
     if kept is not None:
         kept[key] = (values, starts)  # the column held: no other array takes its address meanwhile
     return starts
-
-
-def object_run_starts(values: np.ndarray, most: float, block: int = RUN_BLOCK) -> np.ndarray | None:
-    """`text_codes.run_starts([values], block, most)` of one object column: where a run of one cell object
-    starts, None when the runs exceed `most` of the rows read at the end of a block; one compiled pass over the
-    cells' addresses (read in place while `held` lives) instead of numpy's passes per block."""
-    held = np.ascontiguousarray(values, dtype=object)
-    if not len(held):
-        return np.zeros(0, dtype=np.int64)
-    starts, complete = _object_changes(addresses(held, copy=False), block, most)
-    return starts if complete else None
-
-
-@njit(cache=True)
-def _object_changes(cells, block, most):
-    """Positions (from 0) where `cells[p] != cells[p - 1]`, block by block; (nothing, False) as soon as their
-    count exceeds `most` times the rows read at the end of a block."""
-    n = len(cells)
-    out = np.empty(min(n, int(most * n) + block + 1), np.int64)  # a block adds at most `block` to a count kept
-    out[0] = 0
-    count = 1
-    for low in range(1, n, block):
-        high = min(n, low + block)
-        for i in range(low, high):
-            if cells[i] != cells[i - 1]:
-                out[count] = i
-                count += 1
-        if count > most * high:
-            return out[:0].copy(), False
-    return out[:count].copy(), True
 
 
 @contextlib.contextmanager

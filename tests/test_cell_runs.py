@@ -12,7 +12,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from pipelines.cell_runs import few_runs, object_run_starts, runs_kept, text_changes
+from pipelines.cell_runs import few_runs, runs_kept, text_changes
 from pipelines.text_codes import run_starts
 
 TEXTS = np.array(["AA", "BB", "CC", "DD"], dtype=object)
@@ -46,25 +46,6 @@ def test_most_gives_up_only_on_runs_too_many():
     long_runs, single = in_runs(rng, 5000), TEXTS[rng.integers(0, 4, 5000)]  # mean run 20 cells; 1.3 cells
     assert run_starts([long_runs], 64, most=0.25).tolist() == identity_starts([long_runs])
     assert run_starts([single], 64, most=0.25) is None
-
-
-def test_object_run_starts_are_run_starts_of_one_column():
-    """The compiled pass against `text_codes.run_starts` (numpy, block by block) and Python's `is` cell by cell:
-    the same starts, and None exactly where `run_starts` gives up (`most` judged at the same block ends), on
-    long runs, single cells, a run-heavy tail after long runs, a strided column, one and two cells."""
-    rng = np.random.default_rng(13)
-    tail = np.concatenate([in_runs(rng, 3000), TEXTS[rng.integers(0, 4, 3000)]])
-    columns = [in_runs(rng, 5000), TEXTS[rng.integers(0, 4, 5000)], tail, in_runs(rng, 6000)[::3],
-               TEXTS[:1], TEXTS[:2]]
-    for values in columns:
-        for block in (1, 7, 64, 1000, 1 << 20):
-            for most in (0.01, 0.25, 0.6, 1.0):
-                want = run_starts([values], block, most=most)
-                got = object_run_starts(values, most, block)
-                assert (got is None) == (want is None), (len(values), block, most)
-                if want is not None:
-                    assert got.tolist() == want.tolist() == identity_starts([values])
-    assert object_run_starts(tail, 0.25, 1000) is None and object_run_starts(tail[:3000], 0.25, 1000) is not None
 
 
 PLANTED = {
