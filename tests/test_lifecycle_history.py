@@ -363,13 +363,14 @@ def test_span_rows_are_the_rows_active_mask_keeps():
 
 
 @pytest.mark.parametrize("sorted_already", [True, False])
-def test_ranges_taker_gives_the_rows_expand_would_index(sorted_already):
-    """`ranges_taker` (long joined ranges copied as slices, short ones gathered) against the plain index of
-    every row (`runs.rows(expand(...))`), on ranges that continue each other, skip rows, repeat, are empty or
-    single rows, over a history in leaf order and one that needs the sort."""
+def test_take_history_gives_the_rows_expand_would_index(sorted_already):
+    """`take_history` (one compiled pass) against plain numpy and pandas: each column at the index of every row
+    (`runs.rows(expand(...))`), the ids `np.repeat`ed along the ranges, and rows and quantity per group as
+    pandas' `groupby(...).sum()` of the taken rows, bit for bit; on ranges that continue each other, skip rows,
+    repeat, are empty or single rows, over a history in leaf order and one that needs the sort."""
     import numpy as np
 
-    from pipelines.engines.leaf_runs import expand, leaf_runs, ranges_taker
+    from pipelines.engines.leaf_runs import expand, leaf_runs, take_history
 
     rng = np.random.default_rng(7)
     n_leaves, periods = 40, 90
@@ -380,47 +381,60 @@ def test_ranges_taker_gives_the_rows_expand_would_index(sorted_already):
         frame = frame.sample(frac=1.0, random_state=1).reset_index(drop=True)
     runs = leaf_runs(frame, frame["period_start"].to_numpy())
     assert (runs.order is None) == sorted_already
-    values = [rng.normal(size=len(frame)), frame["period_start"].to_numpy(), rng.random(len(frame)) < 0.5,
-              frame["customer"].to_numpy(object)]
-    for _ in range(30):
+    starts = frame["period_start"].to_numpy()
+    pool = np.array([0.1, 0.2, 0.3, 1e16, -1e16, np.nan, np.inf, -np.inf, 1e-300, 3.7, -0.0])
+    for trial in range(40):
+        quantity = rng.choice(pool, len(frame)) if trial % 2 else rng.normal(0, 1e8, len(frame))
+        shortage = rng.random(len(frame)) < 0.3
         leaf = rng.choice(n_leaves, size=rng.integers(1, 3 * n_leaves))
         if rng.random() < 0.5:
             leaf = np.sort(leaf)  # mostly neighbouring leaves: ranges that continue each other
         low = rng.integers(0, periods, len(leaf)) * (rng.random(len(leaf)) < 0.5)
         high = np.maximum(low, periods - rng.integers(0, periods, len(leaf)) * (rng.random(len(leaf)) < 0.3))
         start, length = runs.first[leaf] + low, high - low
-        take, rows = ranges_taker(runs, start, length), runs.rows(expand(start, length))
-        for v in values:
-            got = take(v)
-            assert got.dtype == v.dtype and np.array_equal(got, v[rows])
+        leaf_id = rng.integers(0, 1000, len(leaf)).astype(np.int32)
+        parent_id = rng.integers(0, 100, len(leaf)).astype(np.int32)
+        group = rng.integers(0, 3, len(leaf)).astype(np.int8)
+        got = take_history(runs, start, length, starts, quantity, shortage, leaf_id, parent_id, group, 3)
+        rows = runs.rows(expand(start, length))
+        assert got.starts.dtype == starts.dtype and np.array_equal(got.starts, starts[rows])
+        assert np.array_equal(got.quantity, quantity[rows], equal_nan=True)
+        assert got.shortage.dtype == bool and np.array_equal(got.shortage, shortage[rows])
+        assert got.leaf_id.dtype == np.int32 and np.array_equal(got.leaf_id, np.repeat(leaf_id, length))
+        assert np.array_equal(got.parent_id, np.repeat(parent_id, length))
+        assert got.shortage_rows == int(shortage[rows].sum())
+        want = pd.Series(quantity[rows]).groupby(np.repeat(group, length)).agg(["size", "sum"])
+        held = want.index.to_numpy()
+        assert np.array_equal(got.group_rows[held], want["size"].to_numpy())
+        assert not np.delete(got.group_rows, held).any()
+        assert np.array_equal(got.group_sums[held], want["sum"].to_numpy(), equal_nan=True)
+        assert (np.signbit(got.group_sums[held]) == np.signbit(want["sum"].to_numpy())).all()
 
 
-def test_grouped_sums_are_pandas_grouped_sums_bit_for_bit():
-    """`grouped_sums` (runs of one group, Kahan's steps) against pandas' `groupby(...).sum()` of the same rows
-    (the reference: pandas' own `group_sum`), with NaN, infinities, -0.0 and values whose plain sum differs."""
+def test_take_history_sums_fail_without_the_compensation():
+    """The sums `take_history` gives are pandas' compensated ones, not the plain sum: on values where the two
+    differ (a test that would pass a kernel adding plainly would prove nothing)."""
     import numpy as np
 
-    from pipelines.engines.leaf_runs import grouped_sums
+    from pipelines.engines.leaf_runs import LeafRuns, take_history
 
-    rng = np.random.default_rng(3)
-    pool = np.array([0.1, 0.2, 0.3, 1e16, -1e16, np.nan, np.inf, -np.inf, 1e-300, 3.7, -0.0])
-    for trial in range(300):
-        n = int(rng.integers(1, 200))
-        values = rng.choice(pool, n) if trial % 2 else rng.normal(0, 1e8, n)
-        length = rng.integers(0, 6, n)
-        length = length[np.cumsum(length) <= n]
-        length = np.append(length, n - length.sum())
-        group = rng.integers(0, 3, len(length)).astype(np.int8)
-        want = pd.Series(values).groupby(np.repeat(group, length)).sum()
-        got = grouped_sums(values, length, group, 3)[want.index.to_numpy()]
-        assert np.array_equal(got, want.to_numpy(), equal_nan=True)
-        assert (np.signbit(got) == np.signbit(want.to_numpy())).all()
+    quantity = np.array([1e16, 1.0, 1.0, -1e16, 0.5, 0.25])
+    n = len(quantity)
+    runs = LeafRuns(pd.DataFrame(index=[0]), np.array([0]), np.array([n]), None)
+    ids = np.zeros(1, np.int32)
+    got = take_history(runs, np.array([0]), np.array([n]), np.zeros(n, "M8[ns]"), quantity, np.zeros(n, bool),
+                       ids, ids, np.zeros(1, np.int8), 1)
+    plain = 0.0
+    for v in quantity:
+        plain += v
+    want = pd.Series(quantity).groupby(np.zeros(n, int)).sum().iloc[0]
+    assert plain != want and got.group_sums[0] == want
 
 
-def test_rows_and_quantity_per_origin_from_the_runs_equal_grouping_the_rows(
+def test_rows_and_quantity_per_origin_added_up_while_taken_equal_grouping_the_rows(
     make_cleaned, make_products, make_spans, config
 ):
-    """The stage's rows and quantity per origin, read from its runs of one origin, equal pandas' groupby of
+    """The stage's rows and quantity per origin, added up while it took the rows, equal pandas' groupby of
     the history's rows; and the source customer of every row is its customer."""
     from pipelines.stages.lifecycle_history import _by_origin
 
@@ -430,6 +444,7 @@ def test_rows_and_quantity_per_origin_from_the_runs_equal_grouping_the_rows(
                                            ("P0", "S1", "C3")] for w, q in [(W1, 0.1), (W2, 0.2), (W3, 0.7)]]
     res = apply_lifecycle(make_cleaned(rows), products, spans, config, CYCLE)
     grouped = res.history.groupby("origin").agg(rows=("quantity", "size"), quantity=("quantity", "sum"))
-    pd.testing.assert_frame_equal(_by_origin(res.history, res.origin_runs), grouped.reset_index())
+    pd.testing.assert_frame_equal(_by_origin(res.history, res.origin_totals), grouped.reset_index())
+    assert res.shortage_rows == int(res.history["shortage"].sum())
     assert set(res.history["origin"]) == {"own", "successor"}
     assert res.history["source_customer"].tolist() == res.history["customer"].tolist()

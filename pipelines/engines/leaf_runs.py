@@ -5,12 +5,12 @@ a rule decided per leaf (its span, its product's retirement) keeps or drops one
 range of each leaf's rows once the rows are read leaf by leaf in period order.
 `leaf_runs` reads a frame so, without moving a row when the frame is already
 grouped by leaf with ascending periods (as the cleansing stage writes it), else
-through one stable sort; `expand` turns ranges into positions; `ranges_taker`
-takes a column's rows of the ranges a stage keeps, as slices where the ranges
-continue each other (no index of every row: most of a history is kept in its
-own order); `span_rows` finds each leaf's rows inside its span by a binary
-search of every leaf at once; `grouped_sums` sums a column over runs of one
-group as pandas' grouped sum does, without a group code per row.
+through one stable sort; `expand` turns ranges into positions; `span_rows`
+finds each leaf's rows inside its span by a binary search of every leaf at
+once; `take_history` builds the numeric columns of the ranges a stage keeps in
+one compiled pass (numba): the rows copied, the ids written along each range,
+and the rows and pandas' grouped sum of the quantity per group of ranges added
+up on the way (no index of every row, no group code per row, no second read).
 """
 
 from __future__ import annotations
@@ -94,43 +94,6 @@ def expand(start: np.ndarray, length: np.ndarray) -> np.ndarray:
     return out
 
 
-_LONG = 64  # rows from which a range of a history is copied as one slice rather than gathered row by row
-
-
-def ranges_taker(runs: LeafRuns, start: np.ndarray, length: np.ndarray):
-    """A function of a history column giving its values at the run ranges [start, start + length), one range
-    after the other (`expand`'s positions, read through `runs.rows`).
-
-    When the runs are the rows themselves, neighbouring ranges that continue each other are joined, and each
-    joined range of at least `_LONG` rows is copied as one slice into the result; the rows of the shorter ones
-    are gathered by one index of those rows only. No index of every row is built: a history that keeps most of
-    its rows in its own order is copied in a few thousand slices."""
-    if runs.order is not None:
-        rows = runs.rows(expand(start, length))
-        return lambda values: values[rows]
-    start, length = start[length > 0], length[length > 0]
-    joins = np.ones(len(start), dtype=bool)
-    joins[1:] = start[1:] != start[:-1] + length[:-1]  # a range that does not continue the one before starts anew
-    head = np.flatnonzero(joins)
-    seg_start = start[head]
-    seg_length = np.add.reduceat(length, head) if len(head) else length[:0]
-    at = np.cumsum(seg_length) - seg_length  # where each joined range lands in the result
-    long = seg_length >= _LONG
-    slices = list(zip(at[long].tolist(), seg_start[long].tolist(), seg_length[long].tolist(), strict=True))
-    short_to = expand(at[~long], seg_length[~long])
-    short_from = expand(seg_start[~long], seg_length[~long])
-    total = int(seg_length.sum())
-
-    def take(values: np.ndarray) -> np.ndarray:
-        out = np.empty(total, dtype=values.dtype)
-        for to, frm, n in slices:
-            out[to:to + n] = values[frm:frm + n]
-        out[short_to] = values[short_from]
-        return out
-
-    return take
-
-
 def first_at_least(ordinal, first: np.ndarray, end: np.ndarray, bound: np.ndarray) -> np.ndarray:
     """Per range [first, end) of run positions whose period ordinals ascend (`ordinal(positions)`): the first
     position whose ordinal is at least `bound` (`end` when none). A binary search of every range at once."""
@@ -162,25 +125,87 @@ def span_rows(runs: LeafRuns, leaf_span: np.ndarray, s_from: np.ndarray, s_to: n
     return inside, np.maximum(inside, after)
 
 
+@dataclass(frozen=True)
+class HistoryRows:
+    """The columns `take_history` gives and what it summed on the way: rows and quantity per group (pandas'
+    grouped sum, `grouped_sum`) and the rows flagged as a shortage."""
+
+    starts: np.ndarray
+    quantity: np.ndarray
+    shortage: np.ndarray
+    leaf_id: np.ndarray
+    parent_id: np.ndarray
+    group_rows: np.ndarray
+    group_sums: np.ndarray
+    shortage_rows: int
+
+
+def take_history(runs: LeafRuns, start: np.ndarray, length: np.ndarray, starts: np.ndarray, quantity: np.ndarray,
+                 shortage: np.ndarray, leaf_id: np.ndarray, parent_id: np.ndarray, group: np.ndarray,
+                 n_groups: int) -> HistoryRows:
+    """The history's rows of the run ranges [start, start + length), one range after the other (`expand`'s
+    positions read through `runs.rows`): their period starts (datetime64), quantities and shortage flags, each
+    range's `leaf_id` and `parent_id` along it, and, on the same pass, the rows and the pandas grouped sum of the
+    quantity per `group` of the ranges (0 .. n_groups - 1) and the shortage rows. One compiled pass
+    (`_take_ranges`): no index of every row, no second read of the result."""
+    order = np.zeros(0, np.int64) if runs.order is None else runs.order.astype(np.int64, copy=False)
+    out = _take_ranges(start.astype(np.int64), length.astype(np.int64), order, runs.order is not None,
+                       starts.view(np.int64), np.ascontiguousarray(quantity, dtype=np.float64),
+                       np.ascontiguousarray(shortage, dtype=np.bool_), leaf_id, parent_id,
+                       group.astype(np.int64), n_groups)
+    stamps, values, flags, leaves, parents, rows, sums, flagged = out
+    return HistoryRows(stamps.view(starts.dtype), values, flags, leaves, parents, rows, sums, int(flagged))
+
+
 @njit(cache=True)
-def grouped_sums(values: np.ndarray, length: np.ndarray, group: np.ndarray, n_groups: int) -> np.ndarray:
-    """Per group, the sum of `values` over the runs of rows of that group (`length`: the rows of each run, one
-    run after the other; `group`: each run's group), NaN left out: pandas' grouped sum of float64 values
-    (`groupby(...).sum()`, whose `group_sum` adds the rows of a group in row order with Kahan's compensation),
-    step by step, so the same sums bit for bit, read run by run without a group code per row."""
+def _take_ranges(start, length, order, through, stamps, quantity, shortage, leaf_id, parent_id, group, n_groups):
+    """`take_history`'s pass: range r's rows copied (through `order` when `through`), its ids written along
+    it, and its quantities added to its group's sum with pandas' steps (`grouped_sum`), its shortage rows
+    counted."""
+    n = 0
+    for r in range(len(length)):
+        n += length[r]
+    out_stamps = np.empty(n, np.int64)
+    out_quantity = np.empty(n, np.float64)
+    out_shortage = np.empty(n, np.bool_)
+    out_leaf = np.empty(n, leaf_id.dtype)
+    out_parent = np.empty(n, parent_id.dtype)
+    rows = np.zeros(n_groups, np.int64)
     total = np.zeros(n_groups)
     compensation = np.zeros(n_groups)
+    flagged = 0
     at = 0
     for r in range(len(length)):
         g = group[r]
-        for i in range(at, at + length[r]):
-            value = values[i]
-            if value == value:
-                y = value - compensation[g]
-                t = total[g] + y
-                compensation[g] = t - total[g] - y
-                if compensation[g] != compensation[g]:  # an infinite value: pandas resets the compensation
-                    compensation[g] = 0.0
-                total[g] = t
-        at += length[r]
-    return total
+        size = length[r]
+        for k in range(size):
+            i = start[r] + k
+            if through:
+                i = order[i]
+            out_stamps[at + k] = stamps[i]
+            out_quantity[at + k] = quantity[i]
+            out_shortage[at + k] = shortage[i]
+            flagged += shortage[i]
+        out_leaf[at:at + size] = leaf_id[r]
+        out_parent[at:at + size] = parent_id[r]
+        rows[g] += size
+        t_g, c_g = total[g], compensation[g]
+        for k in range(at, at + size):
+            t_g, c_g = _kahan_step(t_g, c_g, out_quantity[k])
+        total[g], compensation[g] = t_g, c_g
+        at += size
+    return out_stamps, out_quantity, out_shortage, out_leaf, out_parent, rows, total, flagged
+
+
+@njit(cache=True)
+def _kahan_step(total, compensation, value):
+    """One row of pandas' `group_sum` for float64 (Kahan's compensation, NaN left out, the compensation reset
+    after an infinite value): the new (total, compensation)."""
+    if value == value:
+        y = value - compensation
+        t = total + y
+        compensation = t - total - y
+        if compensation != compensation:
+            compensation = 0.0
+        total = t
+    return total, compensation

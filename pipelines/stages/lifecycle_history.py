@@ -34,7 +34,7 @@ import pandas as pd
 
 from pipelines.calendar import period_ordinal, span_bounds
 from pipelines.config import CalendarConfig, PlanningConfig
-from pipelines.engines.leaf_runs import LeafRuns, expand, grouped_sums, leaf_runs, ranges_taker, span_rows, time_key
+from pipelines.engines.leaf_runs import LeafRuns, expand, leaf_runs, span_rows, take_history, time_key
 from pipelines.errors import LifecycleError
 from pipelines.keys import ID_DTYPE, LEAF, LEAF_ID, PARENT_ID, factorize, lookup
 from pipelines.results import Log, StageResult, quiet
@@ -50,8 +50,10 @@ class LifecycleResult:
     audit: pd.DataFrame
     # (leaf_id, parent_id) of each history row: `keys.key_ids(history)`, from the ranks of the keys kept
     ids: tuple[np.ndarray, np.ndarray] | None = None
-    # the history's origins run by run: the rows of each run (one after the other) and its origin's row of ORIGINS
-    origin_runs: tuple[np.ndarray, np.ndarray] | None = None
+    # rows and quantity per origin (rows of ORIGINS; pandas' grouped sum in row order), and the shortage rows,
+    # added up while the rows were taken
+    origin_totals: tuple[np.ndarray, np.ndarray] | None = None
+    shortage_rows: int | None = None
 
 
 def resolve_successors(products: pd.DataFrame) -> pd.Series:
@@ -227,23 +229,23 @@ def apply_lifecycle(
     rank[distinct.sort_values(LEAF, kind="stable").index.to_numpy()] = np.arange(len(distinct))
     pieces = _pieces(runs, np.flatnonzero(kept), inside, length, rank[key_code][key_of_leaf], moved, starts,
                      pd.factorize(source_product, sort=True)[0])
-    take = ranges_taker(runs, pieces.start, pieces.length)
+    moved_code = moved[pieces.leaf].view(np.int8)
     out = {c: np.repeat(all_keys[c].to_numpy()[key_of_leaf[pieces.leaf]], pieces.length) for c in LEAF}
-    out["period_start"] = take(starts)
-    out["quantity"] = take(quantity)
-    origin_runs = (pieces.length, moved[pieces.leaf].view(np.int8))
-    out["origin"] = np.repeat(ORIGINS[moved[pieces.leaf].view(np.int8)], pieces.length)
+    out["origin"] = np.repeat(ORIGINS[moved_code], pieces.length)
     out["source_product"] = np.repeat(source_product[pieces.leaf], pieces.length)
     # a moved history keeps its site and customer (only the product changes): the source customer of every row
     # is its customer, so the column is the customer column's array itself (both only read from here on)
     out["source_customer"] = out["customer"]
-    out["shortage"] = take(shortage)
     ranked = distinct.iloc[np.argsort(rank)].reset_index(drop=True)
-    ids = tuple(np.repeat(i, pieces.length) for i in _ids_of_ranks(pieces.rank, ranked))
+    leaf_id, parent_id = _ids_of_ranks(pieces.rank, ranked)
+    rows = take_history(runs, pieces.start, pieces.length, starts, quantity, shortage, leaf_id, parent_id,
+                        moved_code, len(ORIGINS))
+    out["period_start"], out["quantity"], out["shortage"] = rows.starts, rows.quantity, rows.shortage
     audit_frame = _stack(audits, AUDIT_COLUMNS).astype({"periods": np.int64, "quantity": float})
     # the new columns become the frame as they are (the default would copy each into consolidated blocks)
     history = pd.DataFrame({c: out.pop(c) for c in HISTORY_COLUMNS}, copy=False)
-    return LifecycleResult(history, audit_frame.reset_index(drop=True), ids, origin_runs)
+    return LifecycleResult(history, audit_frame.reset_index(drop=True), (rows.leaf_id, rows.parent_id),
+                           (rows.group_rows, rows.group_sums), rows.shortage_rows)
 
 
 def _ids_of_ranks(ranks: np.ndarray, ranked: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
@@ -291,32 +293,31 @@ def run(
     by_rule = audit.groupby("rule").agg(
         leaves=("customer", "size"), periods=("periods", "sum"), quantity=("quantity", "sum")
     )
-    by_origin = _by_origin(history, result.origin_runs)
+    by_origin = _by_origin(history, result.origin_totals)
+    shortage_rows = int(history["shortage"].sum()) if result.shortage_rows is None else result.shortage_rows
     return StageResult(
         outputs={"lifecycle_history": history, "lifecycle_audit": audit},
         metadata={
             "lifecycle_history": {
                 "by_origin": by_origin,
-                "shortage_rows": int(history["shortage"].sum()),
+                "shortage_rows": shortage_rows,
             },
             "lifecycle_audit": {"by_rule": by_rule.reset_index()},
         },
     )
 
 
-def _by_origin(history: pd.DataFrame, origin_runs: tuple[np.ndarray, np.ndarray] | None = None) -> pd.DataFrame:
+def _by_origin(history: pd.DataFrame, origin_totals: tuple[np.ndarray, np.ndarray] | None = None) -> pd.DataFrame:
     """Rows and quantity per origin, as `groupby("origin").agg(...).reset_index()` (the same sums: pandas'
-    grouped sum, in row order), grouped on the origins' codes instead of hashing every row: `origin_runs`
-    (the stage's runs of one origin, rows of ORIGINS: no array of every row's code is made) or
-    `text_codes.codes_of` of the column."""
-    quantity = history["quantity"].to_numpy(float)
-    if origin_runs is not None:
-        length, code = origin_runs
+    grouped sum, in row order): `origin_totals` (rows and sums per row of ORIGINS, added up by the stage while
+    it took the rows: no pass over the history here), else grouped on `text_codes.codes_of` of the column."""
+    if origin_totals is not None:
+        rows, sums = origin_totals
         origins = ORIGINS
-        rows = np.bincount(code, weights=length, minlength=len(origins)).astype(np.int64)
         held = np.flatnonzero(rows)
-        sums = grouped_sums(quantity, length, code, len(origins))[held]
+        sums = sums[held]
     else:
+        quantity = history["quantity"].to_numpy(float)
         code, origins = codes_of(history["origin"])
         groups = pd.Categorical.from_codes(code, categories=np.arange(len(origins)))  # -1: missing, left out
         grouped = pd.Series(quantity).groupby(groups, observed=True, sort=True).sum()
