@@ -160,9 +160,28 @@ def _children(rows):
     return pd.DataFrame(full, columns=["product", "site", "customer", "product_class"])
 
 
+def _lines_in_key_runs(rows):
+    """Raw lines from rows (source_file, product, site, customer, period_start, quantity), numbered in order and
+    validated, each key column holding one object per distinct key: the lines come in runs of one key, as a
+    reader gives them, so cleansing takes its runs path."""
+    from pipelines import keys
+
+    raw = pd.DataFrame(rows, columns=["source_file", "product", "site", "customer", "period_start", "quantity"])
+    raw.insert(1, "source_row", np.arange(1, len(raw) + 1))
+    raw = RawHistory.validate(raw)
+    for c in keys.LEAF:
+        raw[c] = raw[c].map({v: v for v in raw[c].unique()}).astype(object)
+    return raw
+
+
 @pytest.fixture
 def make_raw():
     return _raw_history
+
+
+@pytest.fixture
+def make_key_runs():
+    return _lines_in_key_runs
 
 
 @pytest.fixture

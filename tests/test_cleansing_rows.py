@@ -134,13 +134,10 @@ def test_a_shortage_is_flagged_not_judged_and_cells_outside_the_range_are_droppe
 
 
 def test_the_one_pass_reads_lines_in_runs_of_one_key_as_the_block_path(make_products, make_spans, make_config,
-                                                                       monkeypatch):
+                                                                       make_key_runs, monkeypatch):
     """Past 1,024 lines in runs of one key, `reject_lines` leaves the used lines in place as runs (a leaf's
     runs in two files, rejected lines inside runs, a run wholly rejected); the one pass reads them through the
     runs and must give the block path's tables exactly."""
-    from pipelines import keys
-    from pipelines.schemas import RawHistory
-
     products = make_products([("P1", "a"), ("P2", "a")])
     leaves = [(p, s, c) for p in ("P1", "P2") for s in ("S1", "S2") for c in ("C1", "C2", "C3", "C4", "C5")]
     spans = make_spans(leaves[:-1])  # the last leaf has no span: its runs are rejected whole
@@ -152,11 +149,7 @@ def test_the_one_pass_reads_lines_in_runs_of_one_key_as_the_block_path(make_prod
             rows += [(file, p, s, c, w, str((3 + i % 7) * (40 if i % 11 == 5 else 1) - (9 if i % 13 == 4 else 0)))
                      for i, w in enumerate(mine)]
     rows.insert(0, ("history_a.csv", "P1", "S1", "C1", "not a date", "2"))  # a run whose first line is rejected
-    raw = pd.DataFrame(rows, columns=["source_file", "product", "site", "customer", "period_start", "quantity"])
-    raw.insert(1, "source_row", np.arange(1, len(raw) + 1))
-    raw = RawHistory.validate(raw)
-    for c in keys.LEAF:  # one object per distinct key, so the lines come in runs of one key
-        raw[c] = raw[c].map({v: v for v in raw[c].unique()}).astype(object)
+    raw = make_key_runs(rows)  # the lines in runs of one key
     from pipelines.engines import cleansing
 
     assert len(raw) >= 1024 and len(cleansing._key_runs(raw)[0]) < len(raw) / 4  # the runs path is taken

@@ -135,7 +135,8 @@ def test_unaccounted_lines_on_runs_are_those_of_every_row(cleaned_case, monkeypa
     assert find_unaccounted_lines(raw, res.cleaned, res.rejected).empty
 
 
-def test_line_rejection_on_key_runs_is_that_of_every_line(make_products, make_spans, make_config, monkeypatch):
+def test_line_rejection_on_key_runs_is_that_of_every_line(make_products, make_spans, make_config, make_key_runs,
+                                                         monkeypatch):
     """`cleansing.reject_lines` codes and judges the keys once per run of lines (past 1,024 lines in few runs);
     the reference is its own general path, every line coded (`_key_runs` refused)."""
     products = make_products([("P1", "a"), ("P2", "a")])
@@ -149,11 +150,7 @@ def test_line_rejection_on_key_runs_is_that_of_every_line(make_products, make_sp
             rows += [(file, p, s, c, w, str(3 + i % 7)) for i, w in enumerate(mine)]
     rows.append(("history_b.csv", "P1", "S1", "C1", "not a date", "2"))
     rows.append(("history_b.csv", "P1", "S1", "C2", weeks[4], "x"))
-    raw = pd.DataFrame(rows, columns=["source_file", "product", "site", "customer", "period_start", "quantity"])
-    raw.insert(1, "source_row", np.arange(1, len(raw) + 1))
-    raw = RawHistory.validate(raw)
-    for c in keys.LEAF:  # one object per distinct key, so the lines come in runs of one key
-        raw[c] = raw[c].map({v: v for v in raw[c].unique()}).astype(object)
+    raw = make_key_runs(rows)  # the lines in runs of one key
     assert len(raw) >= 1024 and len(cleansing._key_runs(raw)[0]) < len(raw) / 4  # the runs path is taken
     config = make_config(calendar={"cycle_date": "2026-03-02"})
     fast = clean_history(raw, products, spans, config)
