@@ -59,13 +59,6 @@ class Lines:
         order = stable_order(leaf_code)
         return cls(leaf_code[order], col[order], quantity[order])
 
-    def first_col(self, n_leaves: int) -> np.ndarray:
-        """Each leaf's first grid column with a line (every leaf has one)."""
-        if n_leaves == 0:
-            return np.zeros(0, dtype=np.int64)
-        starts = np.searchsorted(self.leaf, np.arange(n_leaves))
-        return np.minimum.reduceat(self.col, starts).astype(np.int64)
-
     def block(self, a: int, b: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         lo, hi = np.searchsorted(self.leaf, [a, b])
         return self.leaf[lo:hi] - a, self.col[lo:hi], self.quantity[lo:hi]

@@ -7,7 +7,7 @@ compiled pass per row (`rolling_order.judge_rows`). Here the whole row is: a
 leaf's lines are summed into its periods (in the order they were read, as
 `np.bincount` sums them), its fill range kept, a negative net set to zero, its
 shortage periods flagged from its parent's, the class's Hampel or Tukey rule
-judged (`rolling_order._sweep_row`, the arithmetic of `judge_rows`) and its kept
+judged (`rolling_order._sweep_row` and `judge_cell`, as `judge_rows` does) and its kept
 cells written straight into the output columns, the period start included. No
 dense matrix, no mask and no index of the kept cells is made; the correction
 rows leave as a few short arrays, their figures and texts made by
@@ -26,7 +26,7 @@ from numba import njit
 
 from pipelines.engines.cleansing import _parameter_texts
 from pipelines.engines.outliers import MAD_SCALE, rule_parameters, tukey_fences
-from pipelines.engines.rolling_order import _clipped, _sweep_row
+from pipelines.engines.rolling_order import _sweep_row, judge_cell
 
 NEGATIVE, OUTLIER = 0, 1  # the rule of a correction row: negative net to zero, the class's outlier cap
 
@@ -107,28 +107,8 @@ def clean_rows(
                 v = judged[c]
                 if np.isnan(v):
                     continue
-                if kind == 0:
-                    med, mad = first[c], second[c]
-                    spread = scale * mad
-                    deviation = v - med if not both[rule] else abs(v - med)
-                    hit = mad > 0 and deviation > spread
-                    if hit:
-                        if to_median[rule]:
-                            after = _clipped(med + 0.0)
-                        else:
-                            after = _clipped((med + spread if v > med else med - spread) + 0.0)
-                else:
-                    q1, q3 = first[c], third[c]
-                    iqr = q3 - q1
-                    lower = q1 - scale * iqr
-                    upper = q3 + scale * iqr
-                    high = v > upper
-                    hit = q3 - q1 > 0 and (high or (both[rule] and v < lower))
-                    if hit:
-                        if to_median[rule]:
-                            after = _clipped(second[c] + 0.0)
-                        else:
-                            after = _clipped((upper if high else lower) + 0.0)
+                hit, after = judge_cell(v, 0.0, kind, scale, both[rule], to_median[rule], first[c], second[c],
+                                        third[c])
                 if hit:
                     corr_leaf[k] = leaf_offset + r
                     corr_col[k] = c

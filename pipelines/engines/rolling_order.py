@@ -227,29 +227,36 @@ def judge_rows(x, skip, seasonal, window, kind, scale, both, to_median):
             if np.isnan(v):
                 continue
             s = seasonal[r, c] if adjust else 0.0
-            if kind == 0:
-                med, mad = first[r, c], second[r, c]
-                spread = scale * mad
-                deviation = v - med if not both else abs(v - med)
-                if mad > 0 and deviation > spread:
-                    flagged[r, c] = True
-                    if to_median:
-                        after[r, c] = _clipped(med + s)
-                    else:
-                        after[r, c] = _clipped((med + spread if v > med else med - spread) + s)
-            else:
-                q1, q3 = first[r, c], third[r, c]
-                iqr = q3 - q1
-                lower = q1 - scale * iqr
-                upper = q3 + scale * iqr
-                high = v > upper
-                if q3 - q1 > 0 and (high or (both and v < lower)):
-                    flagged[r, c] = True
-                    if to_median:
-                        after[r, c] = _clipped(second[r, c] + s)
-                    else:
-                        after[r, c] = _clipped((upper if high else lower) + s)
+            hit, value = judge_cell(v, s, kind, scale, both, to_median, first[r, c], second[r, c],
+                                    third[r, c] if kind == 1 else 0.0)
+            if hit:
+                flagged[r, c] = True
+                after[r, c] = value
     return first, second, third, flagged, after
+
+
+@njit(cache=True)
+def judge_cell(v, s, kind, scale, both, to_median, first, second, third):
+    """One cell of `judge_rows`: the value v = x - s judged against its window's statistics (kind 0, Hampel:
+    first = median, second = MAD; kind 1, Tukey: Q1, median, Q3). Returns (flagged, the replacement with s
+    added back, never below zero; 0.0 where not flagged)."""
+    if kind == 0:
+        spread = scale * second
+        deviation = v - first if not both else abs(v - first)
+        if second > 0 and deviation > spread:
+            if to_median:
+                return True, _clipped(first + s)
+            return True, _clipped((first + spread if v > first else first - spread) + s)
+        return False, 0.0
+    iqr = third - first
+    lower = first - scale * iqr
+    upper = third + scale * iqr
+    high = v > upper
+    if third - first > 0 and (high or (both and v < lower)):
+        if to_median:
+            return True, _clipped(second + s)
+        return True, _clipped((upper if high else lower) + s)
+    return False, 0.0
 
 
 def rolling(matrix: np.ndarray, window: int, kind: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
