@@ -15,19 +15,10 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
+from pipelines.engines.compensated import compensated_add
+
 NAT = np.iinfo(np.int64).min  # datetime64's NaT as int64: never kept
 DAY_NS = 86_400_000_000_000
-
-
-@njit(cache=True, inline="always")
-def compensated_add(total, comp, value):
-    """One step of pandas' compensated group sum: the new (sum, compensation), the compensation reset where NaN."""
-    y = value - comp
-    t = total + y
-    comp = t - total - y
-    if comp != comp:
-        comp = 0.0
-    return t, comp
 
 
 @njit(cache=True)

@@ -21,6 +21,7 @@ import numpy as np
 import pandas as pd
 from numba import njit
 
+from pipelines.engines.compensated import compensated_add
 from pipelines.keys import LEAF, factorize
 from pipelines.text_codes import run_starts
 
@@ -128,7 +129,7 @@ def span_rows(runs: LeafRuns, leaf_span: np.ndarray, s_from: np.ndarray, s_to: n
 @dataclass(frozen=True)
 class HistoryRows:
     """The columns `take_history` gives and what it summed on the way: rows and quantity per group (pandas'
-    grouped sum, `grouped_sum`) and the rows flagged as a shortage."""
+    grouped sum) and the rows flagged as a shortage."""
 
     starts: np.ndarray
     quantity: np.ndarray
@@ -160,7 +161,7 @@ def take_history(runs: LeafRuns, start: np.ndarray, length: np.ndarray, starts: 
 @njit(cache=True)
 def _take_ranges(start, length, order, through, stamps, quantity, shortage, leaf_id, parent_id, group, n_groups):
     """`take_history`'s pass: range r's rows copied (through `order` when `through`), its ids written along
-    it, and its quantities added to its group's sum with pandas' steps (`grouped_sum`), its shortage rows
+    it, and its quantities added to its group's sum with pandas' steps (`compensated_add`), its shortage rows
     counted."""
     n = 0
     for r in range(len(length)):
@@ -191,21 +192,8 @@ def _take_ranges(start, length, order, through, stamps, quantity, shortage, leaf
         rows[g] += size
         t_g, c_g = total[g], compensation[g]
         for k in range(at, at + size):
-            t_g, c_g = _kahan_step(t_g, c_g, out_quantity[k])
+            if out_quantity[k] == out_quantity[k]:  # NaN left out, as pandas does
+                t_g, c_g = compensated_add(t_g, c_g, out_quantity[k])
         total[g], compensation[g] = t_g, c_g
         at += size
     return out_stamps, out_quantity, out_shortage, out_leaf, out_parent, rows, total, flagged
-
-
-@njit(cache=True)
-def _kahan_step(total, compensation, value):
-    """One row of pandas' `group_sum` for float64 (Kahan's compensation, NaN left out, the compensation reset
-    after an infinite value): the new (total, compensation)."""
-    if value == value:
-        y = value - compensation
-        t = total + y
-        compensation = t - total - y
-        if compensation != compensation:
-            compensation = 0.0
-        total = t
-    return total, compensation

@@ -14,6 +14,7 @@ import numpy as np
 import pandas as pd
 from numba import njit
 
+from pipelines.engines.compensated import compensated_add
 from pipelines.keys import factorize, lookup, pack_codes
 from pipelines.text_codes import RUNS_SHARE, codes_of, run_starts
 
@@ -213,12 +214,7 @@ def _group_totals(code, n_groups, value, pinned):
         if v != v:
             continue
         seen[g] += 1
-        y = v - comp[g]
-        t = total[g] + y
-        comp[g] = t - total[g] - y
-        if comp[g] != comp[g]:
-            comp[g] = 0.0
-        total[g] = t
+        total[g], comp[g] = compensated_add(total[g], comp[g], v)
     mean = np.full(n_groups, np.nan)
     for g in range(n_groups):
         if seen[g]:
