@@ -74,3 +74,4 @@ browser-deps:
 
 clean:
 	rm -rf var .dagster
+	find pipelines -name '*.nbi' -delete -o -name '*.nbc' -delete  # numba's compiled kernels (see DEVELOPERS.md, Test)
