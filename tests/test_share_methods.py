@@ -18,7 +18,7 @@ from pipelines.engines.period_shares import period_of_year
 from pipelines.engines.proofs import find_shares_not_summing_to_one
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.share_tuning import candidate_settings
-from pipelines.engines.shares import child_frame, compute_shares, smoothed_proportions
+from pipelines.engines.shares import cell_proportions, child_frame, compute_shares, ratio_smoothed
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF
 from pipelines.schemas import PERIOD_BASES, ReinitializedTarget, ShareTable
@@ -112,8 +112,7 @@ def test_property_smoothed_proportions_stay_a_probability_vector(volumes, alpha)
     # one parent, children x ages 1..6; each update is a convex combination of two probability vectors
     n = len(volumes)
     q = np.asarray(volumes, dtype=float)
-    child, age = np.nonzero(q >= 0)
-    p = smoothed_proportions(age + 1, q[child, age], child, np.zeros(n, dtype=np.int64), 1, 6, alpha)
+    p = ratio_smoothed(*cell_proportions(q, np.zeros(n, dtype=np.int64), 1), alpha)  # column a - 1: age a
     assert (p >= 0).all() and (p <= 1 + 1e-12).all()
     if q.sum() > 0:
         assert p.sum() == pytest.approx(1.0, abs=1e-12)

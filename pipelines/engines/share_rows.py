@@ -83,18 +83,6 @@ class ShareRows:
     exclude_shortages: bool
     first: np.ndarray | None  # rows sorted by leaf id: first row of each leaf id 0..n_leaves (the last: len)
 
-    def rows_of(self, leaves: np.ndarray) -> np.ndarray:
-        """Positions of the rows of the leaf ids marked True in `leaves` (bool, n_leaves), in row order."""
-        if self.first is None:
-            return np.flatnonzero(leaves[self.leaf])
-        ids = np.flatnonzero(leaves)
-        lo, hi = self.first[ids], self.first[ids + 1]
-        size = hi - lo
-        if not size.sum():
-            return np.zeros(0, np.int64)
-        # each leaf's run lo..hi-1, the runs one after the other: ascending, as the rows are sorted by leaf id
-        return np.repeat(lo - np.cumsum(size) + size, size) + np.arange(int(size.sum()))
-
     def child_leaves(self, keys: Coded, children: pd.DataFrame) -> np.ndarray:
         """Each child's leaf id in the history (-1: a child without history)."""
         return lookup(children, LEAF, keys.leaves) if self.n_leaves else np.full(len(children), -1, np.int64)
@@ -168,7 +156,7 @@ def _rows_of_parents(parent: np.ndarray, chosen: np.ndarray) -> np.ndarray:
 def child_sums(rows: ShareRows, leaves: np.ndarray | None, window, leaf_of_child: np.ndarray) -> np.ndarray:
     """Each child's volume over its leaf's rows that count and lie inside `window` (a number, or one per leaf id,
     0 for a leaf whose rows never count), among the leaves marked True in `leaves` (bool, n_leaves; None:
-    every leaf): the rows outside add 0.0 (`window_volumes`). A child without history (-1) gets 0.0.
+    every leaf): the rows outside add 0.0. A child without history (-1) gets 0.0.
 
     Summed per leaf in row order by a compiled pass: over the marked leaves' runs where the rows are sorted by
     leaf id (`first`), else over every row."""

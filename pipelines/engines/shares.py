@@ -56,7 +56,7 @@ import numpy as np
 import pandas as pd
 
 from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal
-from pipelines.engines.lifecycle_shares import lifecycle_rules, split_shares
+from pipelines.engines.lifecycle_shares import lifecycle_rules, split_shares, sums_by
 from pipelines.engines.share_rows import ShareRows, child_sums, history_rows, period_sums
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.keys import LEAF, LEAF_ID, PARENT, PARENT_ID, Coded, coded, extend_ids, factorize
@@ -84,43 +84,12 @@ SHARE_COLUMNS = LEAF + [
 ]
 
 
-def window_volumes(age: np.ndarray, qty: np.ndarray, child: np.ndarray, n_children: int, window: int) -> np.ndarray:
-    """Volume of each child over the last `window` periods (age 1 = the period before the cycle); the rows
-    outside add 0.0 (the same sums as leaving them out: a sum from 0.0 never turns -0.0)."""
-    return np.bincount(child, weights=np.where((age >= 1) & (age <= window), qty, 0.0), minlength=n_children)
-
-
-def parent_sums_by_column(values: np.ndarray, parent_of_child: np.ndarray, n_parents: int) -> np.ndarray:
-    """(n_parents, k): each column of `values` (n_children, k) summed per parent, children in order (the sums of
-    `np.add.at`, a column at a time by bincount: far faster)."""
-    columns = np.ascontiguousarray(values.T)
-    out = np.empty((values.shape[1], n_parents))
-    for col in range(values.shape[1]):  # the window's periods, not the series
-        out[col] = np.bincount(parent_of_child, weights=columns[col], minlength=n_parents)
-    return out.T
-
-
-def period_proportions(
-    age: np.ndarray, qty: np.ndarray, child: np.ndarray, parent_of_child: np.ndarray, n_parents: int, window: int
-) -> tuple[np.ndarray, np.ndarray]:
-    """(ratio (n, window), has_volume (n, window)): y_{j,t} / Y_t of every child and window period.
-
-    Column a - 1 holds age a (column 0 = the period before the cycle). Y_t is the
-    volume of the child's parent over the rows given; where Y_t = 0 the ratio is 0
-    and has_volume is False.
-    """
-    n_children = len(parent_of_child)
-    inside = (age >= 1) & (age <= window)
-    c, a, q = child[inside], age[inside], qty[inside]
-    # child volume per (child, period) and parent volume per (parent, period)
-    child_cell = c * window + (a - 1)
-    child_t = np.bincount(child_cell, weights=q, minlength=n_children * window).reshape(n_children, window)
-    return cell_proportions(child_t, parent_of_child, n_parents)
-
-
 def cell_proportions(child_t: np.ndarray, parent_of_child: np.ndarray, n_parents: int) -> tuple[np.ndarray, np.ndarray]:
-    """`period_proportions` from the child volumes per window period already summed (n, window)."""
-    parent_t = parent_sums_by_column(child_t, parent_of_child, n_parents)
+    """(ratio (n, window), has_volume (n, window)): y_{j,t} / Y_t of every child and window period, from the child
+    volumes per window period (`child_t`, n x window; column a - 1 holds age a, column 0 = the period before the
+    cycle). Y_t is the volume of the child's parent (its children's, summed in order); where Y_t = 0 the ratio is 0
+    and has_volume is False."""
+    parent_t = sums_by(child_t, parent_of_child, n_parents)
     denominator = parent_t[parent_of_child]
     has_volume = denominator > 0
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -128,33 +97,17 @@ def cell_proportions(child_t: np.ndarray, parent_of_child: np.ndarray, n_parents
     return ratio, has_volume
 
 
-def mean_of_ratios(
-    age: np.ndarray, qty: np.ndarray, child: np.ndarray, parent_of_child: np.ndarray, n_parents: int, window: int
-) -> np.ndarray:
-    """Average over the window's periods with parent volume of child / parent volume.
-
-    Returns one value per child (0 for a child of a parent with no volume).
-    """
-    return ratio_mean(*period_proportions(age, qty, child, parent_of_child, n_parents, window))
-
-
 def ratio_mean(ratio: np.ndarray, has_volume: np.ndarray) -> np.ndarray:
-    """`mean_of_ratios` from `period_proportions`' ratios."""
+    """`mean_of_ratios`: the average over the window's periods with parent volume of child / parent volume
+    (`cell_proportions`' ratios); one value per child (0 for a child of a parent with no volume)."""
     periods_with_volume = has_volume.sum(axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(periods_with_volume > 0, ratio.sum(axis=1) / periods_with_volume, 0.0)
 
 
-def smoothed_proportions(
-    age: np.ndarray,
-    qty: np.ndarray,
-    child: np.ndarray,
-    parent_of_child: np.ndarray,
-    n_parents: int,
-    window: int,
-    alpha: float,
-) -> np.ndarray:
-    """Brown's (1962) exponential smoothing of each child's proportion over the window, oldest period first.
+def ratio_smoothed(ratio: np.ndarray, has_volume: np.ndarray, alpha: float) -> np.ndarray:
+    """`smoothed`: Brown's (1962) exponential smoothing of each child's proportion over the window (`cell_proportions`'
+    ratios), oldest period first.
 
     p starts at the proportion of the window's first period with parent volume
     and is then updated by p_t = alpha x y_{j,t} / Y_t + (1 - alpha) x p_(t-1)
@@ -163,11 +116,6 @@ def smoothed_proportions(
     of a parent with no volume). One pass over the window's periods, each
     vectorised over all children.
     """
-    return ratio_smoothed(*period_proportions(age, qty, child, parent_of_child, n_parents, window), alpha)
-
-
-def ratio_smoothed(ratio: np.ndarray, has_volume: np.ndarray, alpha: float) -> np.ndarray:
-    """`smoothed_proportions` from `period_proportions`' ratios."""
     p = np.zeros(len(ratio))
     started = np.zeros(len(ratio), dtype=bool)
     for col in range(ratio.shape[1] - 1, -1, -1):  # age window .. 1: oldest to newest
