@@ -34,6 +34,15 @@ def test_end_process_keeps_the_code_the_output_and_the_atexit_handlers_and_freez
 
 
 def test_the_command_line_exits_through_it_with_its_own_code(tmp_path):
-    out = _python(["-m", "pipelines", "cycle", "--config", str(tmp_path / "missing.yaml")], tmp_path)
+    # `python -m pipelines` run as the interpreter runs it (runpy, as __main__), an atexit handler reporting the
+    # frozen objects: the command's own exit path, not end_process called by hand
+    code = (
+        "import atexit, gc, runpy, sys\n"
+        "atexit.register(lambda: sys.stderr.write(f'frozen {gc.get_freeze_count()}\\n'))\n"
+        f"sys.argv = ['pipelines', 'cycle', '--config', {str(tmp_path / 'missing.yaml')!r}]\n"
+        "runpy.run_module('pipelines', run_name='__main__', alter_sys=True)\n"
+    )
+    out = _python(["-c", code], tmp_path)
     assert out.returncode == 2  # EXIT_BAD_INPUT, as before
     assert "planning config not found" in out.stderr
+    assert int(re.search(r"frozen (\d+)", out.stderr).group(1)) > 10_000, "the command did not exit through it"
