@@ -31,6 +31,10 @@ least 1). What the figures are:
   slices' own peaks (`rss_peak_mb`), a bound the sampled sum stays under
   unless the workers add more; `total.rss_peak_mb` stays the largest
   slice's own peak;
+- `process_s` per slice: its process's start to exit, and `outside_total_s`
+  what of that is not in its `total` (interpreter start and imports, the
+  scenario's read, the warm-up, the previous shares, the side by side, the
+  exit); `steps_summed`: every step's seconds summed over the slices;
 - the model stage ratio: over the slices' summed seconds; the side-by-side
   ratios: over the summed seconds of the slices that ran it.
 
@@ -74,7 +78,7 @@ def run_slices(
     """Every slice, `parallel` at a time; their JSON figures in the order of `seeds`. The first `side_by_side`
     slices also run the plain DuckDB and numpy versions after their cycle (outside their total)."""
     found: dict[int, dict] = {}
-    waiting, running = list(seeds), {}
+    waiting, running, started = list(seeds), {}, {}
     with tempfile.TemporaryDirectory() as folder:
         while waiting or running:
             while waiting and len(running) < parallel:
@@ -82,7 +86,7 @@ def run_slices(
                 plain = [] if seeds.index(seed) < side_by_side else ["--no-side-by-side"]
                 process, out = start_slice(size, seed, [*extra, *plain], Path(folder))
                 sampler.watch(str(seed), process.pid)
-                running[seed] = (process, out)
+                running[seed], started[seed] = (process, out), time.monotonic()
             time.sleep(0.2)
             for seed, (process, out) in list(running.items()):
                 if process.poll() is None:
@@ -94,10 +98,12 @@ def run_slices(
                         other.terminate()
                     raise SystemExit(f"slice of seed {seed} failed (exit {process.returncode})")
                 found[seed] = json.loads(out.read_text())
+                found[seed]["process_s"] = time.monotonic() - started[seed]
                 t = found[seed]["total"]
                 print(f"slice {len(found)}/{len(seeds)} done (seed {seed}, {size:,} leaves): wall {t['wall_s']:.1f} s, "
                       f"own {t['own_code_s']:.1f} s, statsforecast {t['statsforecast_s']:.1f} s, validation "
-                      f"{t['validation_s']:.1f} s, peak {t['rss_peak_mb'] / 1024:.2f} GB", flush=True)
+                      f"{t['validation_s']:.1f} s, peak {t['rss_peak_mb'] / 1024:.2f} GB; process "
+                      f"{found[seed]['process_s']:.1f} s start to exit", flush=True)
     return [found[s] for s in seeds]
 
 
@@ -107,6 +113,18 @@ def memory(slices: list[dict], parallel: int, sampler: TreeSampler) -> dict:
     return {"peak_sum_rss_mb": sampler.peak_sum_mb("rss"), "peak_sum_pss_mb": sampler.peak_sum_mb("pss"),
             "peak_bound_mb": sum(peaks[:parallel]), "most_slices_at_once": sampler.most_at_once(),
             "sample_s": 0.2}
+
+
+def steps_summed(slices: list[dict]) -> dict:
+    """Each step's wall and statsforecast seconds summed over the slices (the steps outside a slice's total too:
+    the scenario's read, the warm-up, the previous shares), so where a slice's process time goes is in one table."""
+    out: dict[str, dict] = {}
+    for s in slices:
+        for st in s["steps"]:
+            row = out.setdefault(st["stage"].strip(), {"wall_s": 0.0, "sf_s": 0.0})
+            row["wall_s"] += st["wall_s"]
+            row["sf_s"] += st.get("sf_s") or 0.0
+    return out
 
 
 def combine(slices: list[dict], leaves: int) -> dict:
@@ -126,9 +144,12 @@ def combine(slices: list[dict], leaves: int) -> dict:
         "total": total,
         "generate_s_not_in_total": generate,
         "model_stage": {"model_stage_s": stage, "statsforecast_s": sf, "model_stage_over_statsforecast": stage / sf},
-        "per_slice": [{"seed": s["parameters"]["seed"], **{k: s["total"][k] for k in (*SUMMED, "rss_peak_mb")}}
+        "per_slice": [{"seed": s["parameters"]["seed"], **{k: s["total"][k] for k in (*SUMMED, "rss_peak_mb")},
+                       "process_s": s["process_s"], "outside_total_s": s["process_s"] - s["total"]["wall_s"]}
                       for s in slices],
+        "steps_summed": steps_summed(slices),
     }
+    total["process_s"] = sum(s["process_s"] for s in slices)
     if side:
         stages, duck, numpy = (sum(s[k] for s in side) for k in ("stages_s", "duckdb_s", "numpy_s"))
         out["side_by_side"] = {"stages_s": stages, "duckdb_s": duck, "numpy_s": numpy,

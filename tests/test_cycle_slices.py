@@ -18,6 +18,7 @@ def _slice(seed: int, wall: float, own: float, sf: float, valid: float, peak: fl
                   "rss_peak_mb": peak},
         "model_stage": {"model_stage_s": stage, "statsforecast_s": sf},
         "side_by_side": {"stages_s": 3.0, "duckdb_s": 1.0, "numpy_s": 2.0},
+        "process_s": wall + 5.0,
     }
 
 
@@ -30,6 +31,8 @@ def test_slices_add_their_seconds_and_keep_the_largest_peak():
     assert found["model_stage"]["model_stage_over_statsforecast"] == 7.0 / 5.0
     assert found["side_by_side"]["stages_over_duckdb"] == 3.0 and found["side_by_side"]["stages_over_numpy"] == 1.5
     assert [s["seed"] for s in found["per_slice"]] == [7, 8]
+    assert t["process_s"] == 32.0 and [s["outside_total_s"] for s in found["per_slice"]] == [5.0, 5.0]
+    assert found["steps_summed"]["clean"] == {"wall_s": 17.0, "sf_s": 0.0}
 
 
 def test_the_bound_adds_the_k_largest_slice_peaks_and_the_sampler_sums_what_runs_at_once():
