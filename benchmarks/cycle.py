@@ -178,9 +178,9 @@ def run_cycle(args: argparse.Namespace) -> dict:
         if step == "drift":
             frames.update(previous_shares(bench, tables, config))
         if step == "report":
-            mine = class_rows(frames, frames["share_tables"], config.product_classes)  # not timed
-            results = [
-                run_report(bench, spec, mine[c], c, part, Path(tmp.name) / "reports") for c in config.product_classes
+            results = [  # a class's rows picked outside the step's time, one class at a time
+                run_report(bench, spec, mine, c, part, Path(tmp.name) / "reports")
+                for c, mine in class_rows(frames, frames["share_tables"], config.product_classes)
             ]
         else:
             results = [run_stage(bench, step, spec, frames, spec.settings(part))]
@@ -386,14 +386,11 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
 
 
 def main(argv: list[str] | None = None) -> None:
-    args = parse_args(argv)
-    # The measuring collects garbage before every step (`Bench.run`, about 40 a cycle): with the imports' objects
-    # (dagster, pandas, statsforecast...) frozen, each collection walks the cycle's objects only, not ~0.1 s of
-    # modules each time; at the end the same for the interpreter's exit (as `python -m pipelines` ends). Neither
-    # is in a step's time; both were in a slice's elapsed time (benchmarks/README.md, *The slices' time outside
-    # their totals*).
-    gc.freeze()
-    run_cycle(args)
+    run_cycle(parse_args(argv))
+    # the interpreter's exit without its last collections over what the cycle left, as `python -m pipelines` ends
+    # (pipelines/__main__.py, end_process): about 1 s of a 100k slice's elapsed time, outside its total. Freezing
+    # after the imports too (so the ~40 collections before steps skip them) was measured and dropped: RSS 0.4-2 GB
+    # higher through the cycle and slower stages (benchmarks/README.md, *The slices' time outside their totals*)
     gc.freeze()
 
 

@@ -107,14 +107,13 @@ def test_class_rows_picks_what_isin_picks_in_row_order():
     none."""
     import numpy as np
     import pandas as pd
-
     from cycle_measure import class_rows
 
     shares = pd.DataFrame({"product": ["p1", "p2", "p3", "p1"], "product_class": ["a", "b", "a", "a"]})
     rows = pd.DataFrame({"product": ["p3", "p2", None, "p1", "p9", "p2", np.nan], "v": range(7)},
                         index=[10, 11, 12, 13, 14, 15, 16])
     calendar = pd.DataFrame({"cycle": ["c"]})
-    got = class_rows({"rows": rows, "calendar": calendar}, shares, ["a", "b"])
+    got = dict(class_rows({"rows": rows, "calendar": calendar}, shares, ["a", "b"]))
     for c in ("a", "b"):
         products = set(shares.loc[shares["product_class"] == c, "product"])
         pd.testing.assert_frame_equal(got[c]["rows"], rows[rows["product"].isin(products)])
