@@ -19,7 +19,7 @@ import sys
 import time
 from pathlib import Path
 
-from cycle_measure import git_commit, load_average
+from cycle_measure import class_rows, git_commit, load_average
 
 import pipelines
 from pipelines.stages import cycle_report
@@ -41,10 +41,7 @@ def main(argv: list[str] | None = None) -> dict:
     period = str(calendar["period"].iloc[0])
     shares = tables["share_tables"]
     classes = sorted(shares["product_class"].unique())
-    mine = {}
-    for c in classes:  # as benchmarks/cycle.py's run_report picks a class's rows
-        products = set(shares.loc[shares["product_class"] == c, "product"])
-        mine[c] = {n: f[f["product"].isin(products)] if "product" in f.columns else f for n, f in tables.items()}
+    mine = dict(class_rows(tables, shares, classes))  # as benchmarks/cycle.py's run_report gets a class's rows
     out = Path(args.out) if args.out else Path(".")
     load = {"start": load_average()}
     runs, sizes = [], {}

@@ -73,3 +73,49 @@ def test_the_sampler_counts_a_child_process_it_watches():
     assert len(sampler.samples) == 1
     assert 200 <= sampler.peak_mb("child") < 400 and sampler.peak_sum_mb("rss") == sampler.peak_mb("child")
     assert 0 < sampler.peak_sum_mb("pss") <= sampler.peak_sum_mb("rss")
+
+
+def test_the_sampler_reads_pss_only_at_a_new_rss_high_or_after_pss_every(monkeypatch):
+    """PSS (a walk of every page by the kernel) is read at a new high of the RSS sum or when `pss_every` has passed;
+    the other samples hold None, and the PSS peak is taken over the samples that read it."""
+    import os
+
+    import process_memory
+
+    rss = iter([100.0, 300.0, 300.0, 200.0, 250.0])
+    walks = []
+    monkeypatch.setattr(process_memory, "rss_mb", lambda pid: next(rss))
+    monkeypatch.setattr(process_memory, "memory_mb", lambda pid: walks.append(pid) or (0.0, 50.0 * len(walks)))
+    sampler = process_memory.TreeSampler(3600, pss_every=3600)
+    sampler.watch("me", os.getpid())
+    monkeypatch.setattr(process_memory, "children_of", lambda: {})
+    for _ in range(4):
+        sampler.sample()
+    assert [taken["me"] for _, taken in sampler.samples] == [(100.0, 50.0), (300.0, 100.0), (300.0, None),
+                                                             (200.0, None)]
+    sampler.pss_every = 0.0  # every sample reads it again
+    sampler.sample()
+    sampler.stop()
+    assert sampler.samples[-1][1]["me"] == (250.0, 150.0) and len(walks) == 3
+    assert sampler.peak_sum_mb("pss") == 150.0 and sampler.peak_sum_mb("rss") == 300.0
+    assert sampler.peak_mb("me", kind="pss") == 150.0
+
+
+def test_class_rows_picks_what_isin_picks_in_row_order():
+    """The benchmark's class rows (one factorize per frame) are the rows a per-class `isin` picks, in their order and
+    with their index; a frame without products goes to every class whole; a product without a class (NaN too) to
+    none."""
+    import numpy as np
+    import pandas as pd
+    from cycle_measure import class_rows
+
+    shares = pd.DataFrame({"product": ["p1", "p2", "p3", "p1"], "product_class": ["a", "b", "a", "a"]})
+    rows = pd.DataFrame({"product": ["p3", "p2", None, "p1", "p9", "p2", np.nan], "v": range(7)},
+                        index=[10, 11, 12, 13, 14, 15, 16])
+    calendar = pd.DataFrame({"cycle": ["c"]})
+    got = dict(class_rows({"rows": rows, "calendar": calendar}, shares, ["a", "b"]))
+    for c in ("a", "b"):
+        products = set(shares.loc[shares["product_class"] == c, "product"])
+        pd.testing.assert_frame_equal(got[c]["rows"], rows[rows["product"].isin(products)])
+        assert got[c]["calendar"] is calendar
+    assert list(got["a"]["rows"]["v"]) == [0, 3] and list(got["b"]["rows"]["v"]) == [1, 5]

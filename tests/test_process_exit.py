@@ -46,3 +46,20 @@ def test_the_command_line_exits_through_it_with_its_own_code(tmp_path):
     assert out.returncode == 2  # EXIT_BAD_INPUT, as before
     assert "planning config not found" in out.stderr
     assert int(re.search(r"frozen (\d+)", out.stderr).group(1)) > 10_000, "the command did not exit through it"
+
+
+def test_a_parallel_child_exits_with_its_runs_code_and_what_is_alive_frozen(tmp_path):
+    # `cycle --parallel K` runs each class in a spawned child (pipelines/runner.py, `_child_main`): its exit code is
+    # its run's, what it says goes to stderr, and it leaves as the command does, the objects still alive frozen.
+    # The run itself is replaced by one that prints and returns 4 (the parallel runs themselves: tests/test_graph.py).
+    code = (
+        "import atexit, gc, sys\n"
+        "atexit.register(lambda: sys.stderr.write(f'frozen {gc.get_freeze_count()}\\n'))\n"
+        "import pipelines.runner as runner\n"
+        "runner._run_in_child = lambda *args: print('said by the run', args) or 4\n"
+        "runner._child_main('config.yaml', '2026-11-30', 'consumables')\n"
+    )
+    out = _python(["-c", code], tmp_path)
+    assert out.returncode == 4
+    assert out.stdout == "" and "said by the run ('config.yaml', '2026-11-30', 'consumables')" in out.stderr
+    assert int(re.search(r"frozen (\d+)", out.stderr).group(1)) > 10_000, "the child did not freeze before its exit"
