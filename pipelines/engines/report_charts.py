@@ -64,6 +64,7 @@ from pipelines.engines.chart_base import (
     _quantity_axis,
     _text_width,
     _tick_label_width,
+    _value_ticks,
     _x,
     chart_file_name,
     corrections_chart,
@@ -187,6 +188,8 @@ def parent_chart_figure(
     _place(fig, total, left, total_top, WIDTH_IN - left - RIGHT_EDGE, TOTAL_HEIGHT)
     for i, ax in enumerate(panels):
         _place(fig, ax, left + (i % columns) * (panel_width + gap), row_tops[i // columns], panel_width, ROW_HEIGHT)
+    for ax in [total, *panels]:
+        _value_ticks(ax, grid=True)
     _caption_text(fig, left, caption_top, lines)
     return fig
 
@@ -335,6 +338,7 @@ def share_chart_figure(
     width = (WIDTH_IN - left - legend - RIGHT_EDGE) / 1.01
     for ax, top in zip(panels, tops, strict=True):
         _place(fig, ax, left, top, width, SHARE_HEIGHT)
+        _value_ticks(ax, grid=False)
     _caption_text(fig, left, caption_top, lines)
     return fig
 
