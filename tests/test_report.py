@@ -289,6 +289,59 @@ def test_share_chart_layout_holds_long_customer_names(shares_input):
     assert any(t.get_text().startswith(long) for t in fig.axes[0].get_legend().get_texts())
 
 
+@pytest.fixture
+def two_years():
+    """Two years of weekly history before the cycle and a 26-week horizon: date labels without an offset, so the
+    charts draw every axis's ticks with their own artists (a short range keeps matplotlib's tick objects)."""
+    weeks = pd.date_range(CYCLE - pd.Timedelta(weeks=104), periods=104, freq="7D")
+    horizon = pd.date_range(CYCLE, periods=26, freq="7D")
+    rng = np.random.default_rng(3)
+    hist = history(
+        [(p, "S1", c, w, float(q)) for p, scale in (("P1", 900), ("P2", 40), ("P3", 7)) for c in ("C1", "C2", "C3")
+         for w, q in zip(weeks, rng.integers(0, scale, len(weeks)), strict=True)]
+    )
+    forecast = frame([("a", p, "S1", h, v * 1.5) for p, v in (("P1", 1200.0), ("P2", 55.0), ("P3", 9.0))
+                      for h in horizon], ["product_class", "product", "site", "period_start", "forecast"])
+    target = frame([(p, "S1", c, h, s, s * 10) for p in ("P1", "P2", "P3") for c, s in (("C1", 0.5), ("C2", 0.3),
+                                                                                        ("C3", 0.2)) for h in horizon],
+                   ["product", "site", "customer", "period_start", "share", "target"])
+    return hist, forecast, target
+
+
+def test_ticks_drawn_as_a_few_artists_are_matplotlibs_own_pixels(two_years, monkeypatch):
+    # reference: the axes' own tick objects, as matplotlib makes and draws them (the y ticks and grid from the
+    # axis's locator and formatter at draw, the date labels from a locator and formatter set on the axis)
+    from matplotlib.ticker import FixedFormatter, FixedLocator
+
+    from pipelines.engines import chart_base
+
+    hist, forecast, target = two_years
+    where = {"product_class": "a", "cycle_date": CYCLE, "top_parents": 3}
+
+    def pictures():
+        return [report_charts.parent_chart(hist, forecast, **where),
+                report_charts.share_chart(hist, target, **where)]
+
+    own = pictures()
+    drawn = report_charts.parent_chart_figure(hist, forecast, **where)
+    assert not any(len(ax.yaxis.get_ticklocs()) or len(ax.xaxis.get_ticklocs()) for ax in drawn.axes)  # no tick objects
+
+    def axis_grid(ax, grid):
+        if grid:
+            ax.grid(axis="y", color=chart_base.GRID_COLOR, lw=chart_base.GRID_WIDTH)
+
+    def axis_dates(ax, which, locs, labels, limits, grid=False):
+        ax.xaxis.set_major_locator(FixedLocator(locs))
+        ax.xaxis.set_major_formatter(FixedFormatter(labels))
+        return []
+
+    monkeypatch.setattr(report_charts, "_value_ticks", axis_grid)
+    monkeypatch.setattr(chart_base, "_tick_texts", axis_dates)
+    for mine, reference in zip(own, pictures(), strict=True):
+        assert np.array_equal(decode(mine), decode(reference))
+        assert mine == reference
+
+
 def test_history_shares_leave_out_periods_without_volume_or_with_a_shortage():
     hist = history(
         [
