@@ -144,6 +144,25 @@ def test_text_outlines_and_extents_kept_across_figures_are_the_fonts_own(parents
     assert png == report_charts.parent_chart(hist, forecast, product_class="a", cycle_date=CYCLE, top_parents=2)
 
 
+def test_png_holds_the_pixels_savefig_writes(parents):
+    from pipelines.engines import chart_base
+
+    # any pixels, alpha included, read back as given; the resolution as savefig writes it (100 dpi)
+    pixels = np.random.default_rng(5).integers(0, 256, (7, 5, 4), dtype=np.uint8)
+    with Image.open(io.BytesIO(chart_base.png_bytes(pixels, 100))) as img:
+        assert img.mode == "RGBA" and np.array_equal(np.asarray(img), pixels)
+        assert [round(v) for v in img.info["dpi"]] == [100, 100]
+    # a chart: the pixels of matplotlib's own savefig (Pillow's encoder) of the same figure
+    hist, forecast = parents
+    png = report_charts.parent_chart(hist, forecast, product_class="a", cycle_date=CYCLE, top_parents=2)
+    fig = report_charts.parent_chart_figure(hist, forecast, product_class="a", cycle_date=CYCLE, top_parents=2)
+    chart_base._Canvas(fig)
+    saved = io.BytesIO()
+    fig.savefig(saved, format="png", dpi=report_charts.DPI)
+    with Image.open(io.BytesIO(png)) as mine, Image.open(saved) as theirs:
+        assert mine.size == theirs.size and np.array_equal(np.asarray(mine), np.asarray(theirs))
+
+
 def test_parent_chart_of_a_class_without_parents_is_still_a_picture(parents):
     hist, forecast = parents
     png = report_charts.parent_chart(hist, forecast, product_class="b", cycle_date=CYCLE)
