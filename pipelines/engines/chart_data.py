@@ -114,8 +114,17 @@ class HistorySums:
             return np.zeros(0, dtype=np.int64)
         wanted = np.zeros(int(self.code_of.max(initial=-1)) + 1, dtype=bool)
         wanted[self.code_of[rows]] = True
-        lo, hi = int(self.first[rows].min()), int(self.last[rows].max()) + 1
-        return chart_sums.rows_of(self.codes, wanted, self.starts, *self.window, lo, hi)
+        # each parent's rows lie between its first and last kept row: the spans of the parents asked for, merged
+        # where they overlap, looked through in order (one span per parent where the history is by parent)
+        order = np.argsort(self.first[rows], kind="stable")
+        spans: list[list[int]] = []
+        for lo, hi in zip(self.first[rows][order].tolist(), (self.last[rows][order] + 1).tolist(), strict=True):
+            if spans and lo <= spans[-1][1]:
+                spans[-1][1] = max(spans[-1][1], hi)
+            else:
+                spans.append([lo, hi])
+        return np.concatenate([chart_sums.rows_of(self.codes, wanted, self.starts, *self.window, lo, hi)
+                               for lo, hi in spans])
 
 
 def history_sums(history: pd.DataFrame, cycle, period: str, history_periods: int | None = None) -> HistorySums:
