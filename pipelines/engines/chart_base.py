@@ -74,7 +74,7 @@ class _TextPaths(TextToPath):
     def __init__(self):
         super().__init__()
         self._kept: dict = {}
-        self._glyphs: dict = {}  # glyph's name (font, index) -> its outline (vertices, codes) at FONT_SCALE
+        self._glyphs: dict = {}  # (font file, glyph index) -> the glyph's outline (vertices, codes) at FONT_SCALE
 
     def get_text_path(self, prop, s, ismath=False, **kwargs):
         if ismath or any(v is not None for v in kwargs.values()):
@@ -91,20 +91,23 @@ class _TextPaths(TextToPath):
 
     def _outline(self, prop, s):
         """`TextToPath.get_text_path(prop, s)` for plain text: each glyph's outline placed where the layout puts
-        it (`verts * 1.0 + [x, y]`, as there), a glyph's outline loaded only when not kept."""
+        it (`verts * 1.0 + [x, y]`, as there, here over all glyphs at once), a glyph's outline loaded only when not
+        kept (kept by font file and glyph index)."""
         font = self._get_font(prop)
-        verts, codes = [], []
+        glyphs, places = [], []
         for item in font._layout(s, LoadFlags.NO_HINTING):
-            name = self._get_glyph_repr(item.ft_object, item.glyph_index)
-            glyph = self._glyphs.get(name)
+            key = (item.ft_object.fname, item.glyph_index)
+            glyph = self._glyphs.get(key)
             if glyph is None:
                 item.ft_object.load_glyph(item.glyph_index, flags=LoadFlags.NO_HINTING)
-                glyph = self._glyphs[name] = item.ft_object.get_path()
-            verts.append(glyph[0] * 1.0 + [item.x, item.y])
-            codes.append(glyph[1])
-        if not verts:
+                glyph = self._glyphs[key] = item.ft_object.get_path()
+            glyphs.append(glyph)
+            places.append((item.x, item.y))
+        if not glyphs:
             return np.empty((0, 2)), []
-        return np.concatenate(verts), np.concatenate(codes)
+        verts = np.concatenate([g[0] for g in glyphs])
+        at = np.repeat(np.array(places, dtype=float), [len(g[0]) for g in glyphs], axis=0)
+        return verts * 1.0 + at, np.concatenate([g[1] for g in glyphs])
 
 
 _TEXT_PATHS = _TextPaths()
