@@ -32,6 +32,7 @@ from matplotlib.font_manager import FontProperties
 from matplotlib.ft2font import LoadFlags
 from matplotlib.lines import Line2D
 from matplotlib.markers import TICKDOWN, TICKLEFT
+from matplotlib.patches import Rectangle
 from matplotlib.text import Text
 from matplotlib.textpath import TextToPath
 from matplotlib.ticker import FixedLocator, FuncFormatter, NullFormatter, NullLocator
@@ -273,15 +274,25 @@ def _mark_horizon(ax, cycle: pd.Timestamp, end: pd.Timestamp | None, label: bool
     the axes. Dates are drawn as matplotlib date numbers (`_x`).
     """
     if end is not None and end > cycle:
-        ax.axvspan(_x(cycle), _x(end), color=HORIZON_SHADE, zorder=0, lw=0)
-    ax.axvline(
-        _x(cycle), color=CYCLE_COLOR, ls="--", lw=1.0, zorder=3,
-        label=f"cycle date {cycle:%Y-%m-%d}" if label else None,
-    )
+        start, stop = _x(cycle), _x(end)
+        # what `axvspan` adds (x in data, y the axes' height), without its asking for the x limits again
+        ax.add_patch(Rectangle((start, 0), stop - start, 1, transform=ax.get_xaxis_transform(which="grid"),
+                               color=HORIZON_SHADE, zorder=0, lw=0))
+    _vline(ax, _x(cycle), color=CYCLE_COLOR, ls="--", lw=1.0, zorder=3,
+           label=f"cycle date {cycle:%Y-%m-%d}" if label else None)
     if label:
         where = ax.get_xaxis_transform()  # x in dates, y in axes fraction
         ax.text(_x(cycle), 1.01, "history  ", ha="right", va="bottom", fontsize=8, transform=where)
         ax.text(_x(cycle), 1.01, "  horizon", ha="left", va="bottom", fontsize=8, transform=where)
+
+
+def _vline(ax, x: float, **style) -> Line2D:
+    """A vertical line at `x` over the axes' height, the line `axvline` adds (its x in the data limits), without
+    `axvline`'s reading of the x limits, which makes matplotlib find them again for every line. The x limits are
+    found once all is drawn: the charts' plots and `autoscale_view` ask for them."""
+    line = Line2D([x, x], [0, 1], transform=ax.get_xaxis_transform(which="grid"), **style)
+    ax.add_line(line)
+    return line
 
 
 def _x(dates):

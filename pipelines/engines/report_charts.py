@@ -65,6 +65,7 @@ from pipelines.engines.chart_base import (
     _text_width,
     _tick_label_width,
     _value_ticks,
+    _vline,
     _x,
     chart_file_name,
     corrections_chart,
@@ -304,8 +305,8 @@ def share_chart_figure(
             xs, ys = np.concatenate(corners[0::4] + corners[1::4]), np.concatenate(corners[2::4] + corners[3::4])
             ax.update_datalim([[xs.min(), ys.min()], [xs.max(), ys.max()]])
         if row.pos in window_start:
-            ax.axvline(_x(window_start[row.pos]), color=CYCLE_COLOR, ls=":", lw=1.0, zorder=3,
-                       label="share window start" if i == 0 else None)
+            _vline(ax, _x(window_start[row.pos]), color=CYCLE_COLOR, ls=":", lw=1.0, zorder=3,
+                   label="share window start" if i == 0 else None)
         ax.autoscale_view()
         ax.set_ylim(0, 1)
         ax.yaxis.set_major_formatter(PercentFormatter(1.0, decimals=0))
