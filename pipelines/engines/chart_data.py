@@ -344,7 +344,8 @@ def share_chart_data(
     """The class's parents with a target in the horizon (`target`: the class's reinitialized_target rows, from
     `cycle` on), ranked by history volume (`summed.totals`), then target volume, then key; None without any."""
     cycle = pd.Timestamp(cycle)
-    in_horizon = (target["period_start"] >= cycle).to_numpy()
+    starts = target["period_start"].to_numpy("datetime64[ns]").view(np.int64)  # NaT: the least int64, never kept
+    in_horizon = starts >= cycle.value
     parents = distinct_parents(target, in_horizon)
     if parents.empty:
         return None
@@ -361,8 +362,8 @@ def share_chart_data(
             first = np.flatnonzero(share_pos == p)[:1]
             if len(first) and shares["window_used"].iloc[first[0]] > 0:
                 window_start[p] = pd.Timestamp(shares["window_start"].iloc[first[0]])
-    last_start = target["period_start"].to_numpy("datetime64[ns]")[in_horizon].max()
-    return ShareChartData(ranked, hist_shares, targets, pd.Timestamp(last_start), window_start)
+    last_start = starts.max()  # the last start of the horizon: some start is in it (the parents have one)
+    return ShareChartData(ranked, hist_shares, targets, pd.Timestamp(int(last_start)), window_start)
 
 
 # ----------------------------------------------------------------- the shares of the largest parents
