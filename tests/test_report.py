@@ -332,7 +332,7 @@ def test_ticks_drawn_as_a_few_artists_are_matplotlibs_own_pixels(two_years, monk
     # axis's locator and formatter at draw, the date labels from a locator and formatter set on the axis)
     from matplotlib.ticker import FixedFormatter, FixedLocator
 
-    from pipelines.engines import chart_base
+    from pipelines.engines import chart_axes
 
     hist, forecast, target = two_years
     where = {"product_class": "a", "cycle_date": CYCLE, "top_parents": 3}
@@ -347,15 +347,15 @@ def test_ticks_drawn_as_a_few_artists_are_matplotlibs_own_pixels(two_years, monk
 
     def axis_grid(ax, grid):
         if grid:
-            ax.grid(axis="y", color=chart_base.GRID_COLOR, lw=chart_base.GRID_WIDTH)
+            ax.grid(axis="y", color=chart_axes.GRID_COLOR, lw=chart_axes.GRID_WIDTH)
 
     def axis_dates(ax, which, locs, labels, limits, grid=False):
         ax.xaxis.set_major_locator(FixedLocator(locs))
         ax.xaxis.set_major_formatter(FixedFormatter(labels))
         return []
 
-    monkeypatch.setattr(report_charts, "_value_ticks", axis_grid)
-    monkeypatch.setattr(chart_base, "_tick_texts", axis_dates)
+    monkeypatch.setattr(report_charts, "value_ticks", axis_grid)
+    monkeypatch.setattr(chart_axes, "tick_artists", axis_dates)
     for mine, reference in zip(own, pictures(), strict=True):
         assert np.array_equal(decode(mine), decode(reference))
         assert mine == reference

@@ -108,23 +108,13 @@ class HistorySums:
 
     def history_rows(self, rows: np.ndarray) -> np.ndarray:
         """Positions, in order, of the history rows in the window of the parents at `rows` of the matrices, looked
-        for between the first and the last kept row of those parents only."""
+        for between each one's first and last kept row only."""
         rows = rows[rows >= 0]
         if not len(rows):
             return np.zeros(0, dtype=np.int64)
         wanted = np.zeros(int(self.code_of.max(initial=-1)) + 1, dtype=bool)
         wanted[self.code_of[rows]] = True
-        # each parent's rows lie between its first and last kept row: the spans of the parents asked for, merged
-        # where they overlap, looked through in order (one span per parent where the history is by parent)
-        order = np.argsort(self.first[rows], kind="stable")
-        spans: list[list[int]] = []
-        for lo, hi in zip(self.first[rows][order].tolist(), (self.last[rows][order] + 1).tolist(), strict=True):
-            if spans and lo <= spans[-1][1]:
-                spans[-1][1] = max(spans[-1][1], hi)
-            else:
-                spans.append([lo, hi])
-        return np.concatenate([chart_sums.rows_of(self.codes, wanted, self.starts, *self.window, lo, hi)
-                               for lo, hi in spans])
+        return chart_sums.rows_in_spans(self.codes, wanted, self.starts, self.window, self.first[rows], self.last[rows])
 
 
 def history_sums(history: pd.DataFrame, cycle, period: str, history_periods: int | None = None) -> HistorySums:

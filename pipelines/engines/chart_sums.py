@@ -145,6 +145,21 @@ def rows_of(codes, wanted, starts, low, high, lo, hi):
     return out
 
 
+def rows_in_spans(codes, wanted, starts, window, first, last) -> np.ndarray:
+    """`rows_of` over the spans [first[k], last[k]] of rows known to hold all the wanted rows (each parent's first
+    and last kept row), merged where they overlap and looked through in order: the same positions, in order,
+    as one look through every row (one short span per parent where the history is by parent)."""
+    order = np.argsort(first, kind="stable")
+    spans: list[list[int]] = []
+    for lo, hi in zip(np.asarray(first)[order].tolist(), (np.asarray(last)[order] + 1).tolist(), strict=True):
+        if spans and lo <= spans[-1][1]:
+            spans[-1][1] = max(spans[-1][1], hi)
+        else:
+            spans.append([lo, hi])
+    found = [rows_of(codes, wanted, starts, window[0], window[1], lo, hi) for lo, hi in spans]
+    return np.concatenate(found) if found else np.zeros(0, dtype=np.int64)
+
+
 @njit(cache=True)
 def present_sums(cells, present):
     """(row sums (rows,), column sums (columns,)) of the cells where `present`, each with pandas' compensated group
