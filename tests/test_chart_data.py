@@ -68,6 +68,23 @@ def test_history_sums_are_pandas_group_sums_to_the_last_bit(with_ids, history_pe
     assert rows.tolist() == np.flatnonzero(mine.to_numpy()).tolist()
 
 
+@pytest.mark.parametrize("by_parent", [False, True], ids=["shuffled", "by_parent"])
+def test_history_rows_of_several_parents_are_their_rows_in_the_window_in_order(by_parent):
+    # shuffled: every parent's rows spread over the whole table (spans overlap); by parent: each in one run
+    history = long_history()
+    if by_parent:
+        history = history.sort_values(PARENT, kind="stable").reset_index(drop=True)
+    summed = chart_data.history_sums(history, CYCLE, "week", 12)
+    parents = history[PARENT].drop_duplicates().reset_index(drop=True)
+    at = summed.rows_of(parents)
+    in_window = ((history["period_start"] < CYCLE) & (history["period_start"] >= CYCLE - pd.Timedelta(weeks=12)))
+    assert len(parents) == 4
+    for asked in ([2], [3, 0], [1, 3, 2], [0, 1, 2, 3]):
+        keys = set(map(tuple, parents.iloc[asked][PARENT].to_numpy().tolist()))
+        mine = [k in keys for k in zip(history["product"], history["site"], strict=True)] & in_window.to_numpy()
+        assert summed.history_rows(at[asked]).tolist() == np.flatnonzero(mine).tolist()
+
+
 def test_history_sums_of_starts_not_whole_days_apart_and_of_parents_without_rows():
     history = long_history(leaves=20, periods=6)
     history.loc[history.index[:5], "period_start"] += pd.Timedelta(hours=6)  # not a period start: its own column

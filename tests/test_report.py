@@ -144,6 +144,25 @@ def test_text_outlines_and_extents_kept_across_figures_are_the_fonts_own(parents
     assert png == report_charts.parent_chart(hist, forecast, product_class="a", cycle_date=CYCLE, top_parents=2)
 
 
+def test_png_holds_the_pixels_savefig_writes(parents):
+    from pipelines.engines import chart_base
+
+    # any pixels, alpha included, read back as given; the resolution as savefig writes it (100 dpi)
+    pixels = np.random.default_rng(5).integers(0, 256, (7, 5, 4), dtype=np.uint8)
+    with Image.open(io.BytesIO(chart_base.png_bytes(pixels, 100))) as img:
+        assert img.mode == "RGBA" and np.array_equal(np.asarray(img), pixels)
+        assert [round(v) for v in img.info["dpi"]] == [100, 100]
+    # a chart: the pixels of matplotlib's own savefig (Pillow's encoder) of the same figure
+    hist, forecast = parents
+    png = report_charts.parent_chart(hist, forecast, product_class="a", cycle_date=CYCLE, top_parents=2)
+    fig = report_charts.parent_chart_figure(hist, forecast, product_class="a", cycle_date=CYCLE, top_parents=2)
+    chart_base._Canvas(fig)
+    saved = io.BytesIO()
+    fig.savefig(saved, format="png", dpi=report_charts.DPI)
+    with Image.open(io.BytesIO(png)) as mine, Image.open(saved) as theirs:
+        assert mine.size == theirs.size and np.array_equal(np.asarray(mine), np.asarray(theirs))
+
+
 def test_parent_chart_of_a_class_without_parents_is_still_a_picture(parents):
     hist, forecast = parents
     png = report_charts.parent_chart(hist, forecast, product_class="b", cycle_date=CYCLE)
@@ -287,6 +306,59 @@ def test_share_chart_layout_holds_long_customer_names(shares_input):
     fig = report_charts.share_chart_figure(hist, target, product_class="a", cycle_date=CYCLE, top_parents=2)
     assert_laid_out(fig)
     assert any(t.get_text().startswith(long) for t in fig.axes[0].get_legend().get_texts())
+
+
+@pytest.fixture
+def two_years():
+    """Two years of weekly history before the cycle and a 26-week horizon: date labels without an offset, so the
+    charts draw every axis's ticks with their own artists (a short range keeps matplotlib's tick objects)."""
+    weeks = pd.date_range(CYCLE - pd.Timedelta(weeks=104), periods=104, freq="7D")
+    horizon = pd.date_range(CYCLE, periods=26, freq="7D")
+    rng = np.random.default_rng(3)
+    hist = history(
+        [(p, "S1", c, w, float(q)) for p, scale in (("P1", 900), ("P2", 40), ("P3", 7)) for c in ("C1", "C2", "C3")
+         for w, q in zip(weeks, rng.integers(0, scale, len(weeks)), strict=True)]
+    )
+    forecast = frame([("a", p, "S1", h, v * 1.5) for p, v in (("P1", 1200.0), ("P2", 55.0), ("P3", 9.0))
+                      for h in horizon], ["product_class", "product", "site", "period_start", "forecast"])
+    target = frame([(p, "S1", c, h, s, s * 10) for p in ("P1", "P2", "P3") for c, s in (("C1", 0.5), ("C2", 0.3),
+                                                                                        ("C3", 0.2)) for h in horizon],
+                   ["product", "site", "customer", "period_start", "share", "target"])
+    return hist, forecast, target
+
+
+def test_ticks_drawn_as_a_few_artists_are_matplotlibs_own_pixels(two_years, monkeypatch):
+    # reference: the axes' own tick objects, as matplotlib makes and draws them (the y ticks and grid from the
+    # axis's locator and formatter at draw, the date labels from a locator and formatter set on the axis)
+    from matplotlib.ticker import FixedFormatter, FixedLocator
+
+    from pipelines.engines import chart_axes
+
+    hist, forecast, target = two_years
+    where = {"product_class": "a", "cycle_date": CYCLE, "top_parents": 3}
+
+    def pictures():
+        return [report_charts.parent_chart(hist, forecast, **where),
+                report_charts.share_chart(hist, target, **where)]
+
+    own = pictures()
+    drawn = report_charts.parent_chart_figure(hist, forecast, **where)
+    assert not any(len(ax.yaxis.get_ticklocs()) or len(ax.xaxis.get_ticklocs()) for ax in drawn.axes)  # no tick objects
+
+    def axis_grid(ax, grid):
+        if grid:
+            ax.grid(axis="y", color=chart_axes.GRID_COLOR, lw=chart_axes.GRID_WIDTH)
+
+    def axis_dates(ax, which, locs, labels, limits, grid=False):
+        ax.xaxis.set_major_locator(FixedLocator(locs))
+        ax.xaxis.set_major_formatter(FixedFormatter(labels))
+        return []
+
+    monkeypatch.setattr(report_charts, "value_ticks", axis_grid)
+    monkeypatch.setattr(chart_axes, "tick_artists", axis_dates)
+    for mine, reference in zip(own, pictures(), strict=True):
+        assert np.array_equal(decode(mine), decode(reference))
+        assert mine == reference
 
 
 def test_history_shares_leave_out_periods_without_volume_or_with_a_shortage():

@@ -108,14 +108,13 @@ class HistorySums:
 
     def history_rows(self, rows: np.ndarray) -> np.ndarray:
         """Positions, in order, of the history rows in the window of the parents at `rows` of the matrices, looked
-        for between the first and the last kept row of those parents only."""
+        for between each one's first and last kept row only."""
         rows = rows[rows >= 0]
         if not len(rows):
             return np.zeros(0, dtype=np.int64)
         wanted = np.zeros(int(self.code_of.max(initial=-1)) + 1, dtype=bool)
         wanted[self.code_of[rows]] = True
-        lo, hi = int(self.first[rows].min()), int(self.last[rows].max()) + 1
-        return chart_sums.rows_of(self.codes, wanted, self.starts, *self.window, lo, hi)
+        return chart_sums.rows_in_spans(self.codes, wanted, self.starts, self.window, self.first[rows], self.last[rows])
 
 
 def history_sums(history: pd.DataFrame, cycle, period: str, history_periods: int | None = None) -> HistorySums:
@@ -335,7 +334,8 @@ def share_chart_data(
     """The class's parents with a target in the horizon (`target`: the class's reinitialized_target rows, from
     `cycle` on), ranked by history volume (`summed.totals`), then target volume, then key; None without any."""
     cycle = pd.Timestamp(cycle)
-    in_horizon = (target["period_start"] >= cycle).to_numpy()
+    starts = target["period_start"].to_numpy("datetime64[ns]").view(np.int64)  # NaT: the least int64, never kept
+    in_horizon = starts >= cycle.value
     parents = distinct_parents(target, in_horizon)
     if parents.empty:
         return None
@@ -352,8 +352,8 @@ def share_chart_data(
             first = np.flatnonzero(share_pos == p)[:1]
             if len(first) and shares["window_used"].iloc[first[0]] > 0:
                 window_start[p] = pd.Timestamp(shares["window_start"].iloc[first[0]])
-    last_start = target["period_start"].to_numpy("datetime64[ns]")[in_horizon].max()
-    return ShareChartData(ranked, hist_shares, targets, pd.Timestamp(last_start), window_start)
+    last_start = starts.max()  # the last start of the horizon: some start is in it (the parents have one)
+    return ShareChartData(ranked, hist_shares, targets, pd.Timestamp(int(last_start)), window_start)
 
 
 # ----------------------------------------------------------------- the shares of the largest parents

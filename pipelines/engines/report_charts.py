@@ -35,6 +35,7 @@ from matplotlib.figure import Figure
 from matplotlib.ticker import PercentFormatter
 
 from pipelines.calendar import shift_periods
+from pipelines.engines.chart_axes import date_ticks, quantity_axis, tick_label_width, value_ticks
 from pipelines.engines.chart_base import (
     BARE_FOOT,
     CHILD_COLORS,
@@ -55,15 +56,13 @@ from pipelines.engines.chart_base import (
     _bars,
     _caption,
     _caption_text,
-    _date_ticks,
     _empty_figure,
     _mark_horizon,
     _next_starts,
     _parent_label,
     _place,
-    _quantity_axis,
     _text_width,
-    _tick_label_width,
+    _vline,
     _x,
     chart_file_name,
     corrections_chart,
@@ -152,7 +151,7 @@ def parent_chart_figure(
     total.plot(_x(th.index), th.to_numpy(), color=HISTORY_COLOR, lw=1.2, label="history")
     total.plot(_x(tf.index), tf.to_numpy(), color=FORECAST_COLOR, lw=2.0, label="forecast")
     total.set_title(f"Class total, {len(ranked)} parents", fontsize=11, loc="left", y=1.0)
-    _quantity_axis(total, unit)
+    quantity_axis(total, unit)
     total.legend(loc="upper left", fontsize=8, frameon=False, ncols=3)
 
     panels = []
@@ -176,17 +175,19 @@ def parent_chart_figure(
         part = row.history_volume / class_volume if class_volume > 0 else float("nan")
         share_text = "" if math.isnan(part) else f"  ({part:.0%} of class history)"
         ax.set_title(f"{_parent_label(row.product, row.site)}{share_text}", fontsize=9, loc="left", y=1.0)
-        _quantity_axis(ax, unit if i % columns == 0 else "")
-    _date_ticks([total, *panels], [True] + [i + columns >= len(panels) for i in range(len(panels))])
+        quantity_axis(ax, unit if i % columns == 0 else "")
+    date_ticks([total, *panels], [True] + [i + columns >= len(panels) for i in range(len(panels))])
 
     # widths in inches: the widest y tick label of any panel sets the room left of every panel
-    tick_room = max(_tick_label_width(ax) for ax in [total, *panels]) + TICK_BAND
+    tick_room = max(tick_label_width(ax) for ax in [total, *panels]) + TICK_BAND
     left = YLABEL_BAND + tick_room
     gap = 0.3 + tick_room
     panel_width = (WIDTH_IN - left - RIGHT_EDGE - (columns - 1) * gap) / columns
     _place(fig, total, left, total_top, WIDTH_IN - left - RIGHT_EDGE, TOTAL_HEIGHT)
     for i, ax in enumerate(panels):
         _place(fig, ax, left + (i % columns) * (panel_width + gap), row_tops[i // columns], panel_width, ROW_HEIGHT)
+    for ax in [total, *panels]:
+        value_ticks(ax, grid=True)
     _caption_text(fig, left, caption_top, lines)
     return fig
 
@@ -301,8 +302,8 @@ def share_chart_figure(
             xs, ys = np.concatenate(corners[0::4] + corners[1::4]), np.concatenate(corners[2::4] + corners[3::4])
             ax.update_datalim([[xs.min(), ys.min()], [xs.max(), ys.max()]])
         if row.pos in window_start:
-            ax.axvline(_x(window_start[row.pos]), color=CYCLE_COLOR, ls=":", lw=1.0, zorder=3,
-                       label="share window start" if i == 0 else None)
+            _vline(ax, _x(window_start[row.pos]), color=CYCLE_COLOR, ls=":", lw=1.0, zorder=3,
+                   label="share window start" if i == 0 else None)
         ax.autoscale_view()
         ax.set_ylim(0, 1)
         ax.yaxis.set_major_formatter(PercentFormatter(1.0, decimals=0))
@@ -327,7 +328,7 @@ def share_chart_figure(
         )
         legend_texts += [labels[k] for k in order] + (["share at cycle date"] if at_cycle is not None else [])
     panels = fig.axes
-    _date_ticks(panels, [i == rows - 1 for i in range(rows)])
+    date_ticks(panels, [i == rows - 1 for i in range(rows)])
     # widths in inches: room for "100%" and the y label on the left, for the widest legend on the right (handle
     # 2 em, pads 1.6 em at 8 pt, and the 1 % of the axes' width it stands off)
     left = YLABEL_BAND + _text_width("100%", 10.0) + TICK_BAND
@@ -335,6 +336,7 @@ def share_chart_figure(
     width = (WIDTH_IN - left - legend - RIGHT_EDGE) / 1.01
     for ax, top in zip(panels, tops, strict=True):
         _place(fig, ax, left, top, width, SHARE_HEIGHT)
+        value_ticks(ax, grid=False)
     _caption_text(fig, left, caption_top, lines)
     return fig
 
