@@ -566,3 +566,34 @@ def test_a_period_no_active_child_can_take_is_set_to_zero_with_its_reason(make_h
     assert res.parent["forecast"].tolist() == pytest.approx([4.0, 0.0])
     assert [None if pd.isna(r) else r for r in res.parent["zero_reason"]] == [None, "awaiting_history"]
     assert leaf_values(res) == pytest.approx({("C1", H1): 4.0, ("C2", H1): 0.0, ("C1", H2): 0.0, ("C2", H2): 0.0})
+
+
+def test_models_used_counts_each_parent_once_by_class_strategy_demand_class_and_model():
+    # the demo's consumables (top-down, AutoETS) and spares given a strategy (MinT) and a model per demand
+    # class, made by the stages' own runs; the metadata's parents per model (made from the per-parent arrays,
+    # not from the table's rows) against the parent table's distinct parents
+    import sys
+    from pathlib import Path
+
+    sys.path.insert(0, str(Path(__file__).parent))
+    from stage_runs import demo_config, run_partition
+
+    from assets.factory import graph_order
+    from pipelines import definitions  # noqa: F401  (makes every stage asset, so the graph holds them all)
+    from pipelines.keys import PARENT
+
+    spec = next(s for s in graph_order() if s.tables[0].name == "statistical_forecast")
+    models = {"smooth": "ses", "erratic": "ses", "intermittent": "croston_classic", "lumpy": "croston_sba"}
+    config = demo_config(
+        {"consumables": {"seasonality": "none"}, "spares": {"strategy": "mint_shrink", "models": models}}
+    )
+    columns = ["product_class", "strategy", "demand_class", "model"]
+    for product_class in ("consumables", "spares"):
+        run = run_partition(config, "2026-11-30", product_class, upto="statistical_forecast")
+        settings = run.settings["statistical_forecast"]
+        result = spec.run(**{name: run.tables[name] for name in spec.ins}, settings=settings)
+        parent = result.outputs["parent_forecast"]
+        expected = parent.drop_duplicates(PARENT).groupby(columns).size().rename("parents").reset_index()
+        used = result.metadata["parent_forecast"]["models_used"]
+        assert used["parents"].sum() == len(parent.drop_duplicates(PARENT)) > 1
+        pd.testing.assert_frame_equal(used, expected, check_exact=True)
