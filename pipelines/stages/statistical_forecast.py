@@ -206,8 +206,7 @@ def forecast_cycle(
 
     # top-down basis: the reinitialized target (the period's share where the targets are all 0)
     target_m, share_m = leaf_matrix(target, children, ["target", "share"], starts)
-    target_sum = np.zeros((n_parents, horizon))
-    np.add.at(target_sum, parent_of_child, target_m)
+    target_sum = parent_sums(target_m, parent_of_child, n_parents)
     use_target = target_sum[parent_of_child] > 0
     basis = np.where(use_target, target_m, share_m)
 
