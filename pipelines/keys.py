@@ -196,9 +196,11 @@ def _keys_of_ids(frame: pd.DataFrame, ids: np.ndarray, cols: list[str]) -> pd.Da
     if len(ids) > 1 and bool(np.all(ids[1:] >= ids[:-1])):  # sorted by id: each id's first row is where it changes
         first = np.flatnonzero(np.r_[True, ids[1:] != ids[:-1]])
         held = ids[first]
-    else:
-        unique = pd.Series(ids).drop_duplicates()
-        first, held = unique.index.to_numpy(), unique.to_numpy()
+    else:  # each id's first row starts a run of one id: only the runs' first rows are looked at (a forecast
+        # table's ids come in runs of its horizon), in row order, so the same rows as over every row
+        starts = np.flatnonzero(np.r_[True, ids[1:] != ids[:-1]]) if len(ids) else np.zeros(0, np.int64)
+        unique = pd.Series(ids[starts]).drop_duplicates()
+        first, held = starts[unique.index.to_numpy()], unique.to_numpy()
     out = {}
     for c in cols:  # column by column: `frame[cols]` would copy every row first
         values = np.full(n, "", dtype=object)

@@ -1,4 +1,5 @@
-"""`forecast_frames`: the leaves' basis column and its rows per basis, against pandas' `value_counts` of the column."""
+"""`forecast_frames`: the leaves' basis column and its rows per basis, against pandas' `value_counts` of the column;
+`hierarchy.parent_sums` against `np.add.at`."""
 
 from __future__ import annotations
 
@@ -7,13 +8,19 @@ import pandas as pd
 import pytest
 
 from pipelines.engines.forecast_frames import basis_column
+from pipelines.engines.hierarchy import SOURCES
 
 LABELS = np.array(["reinitialized_target", "period_share"], dtype=object)
-SOURCES = np.array(["basis", "children_forecast", "leaf_forecast", "reconciled"], dtype=object)
+
+
+def codes(words):
+    """The sources' words as `hierarchy.coherent` gives them: codes of SOURCES."""
+    return np.vectorize(SOURCES.index, otypes=[np.uint8])(np.asarray(words, dtype=object))
 
 
 def test_basis_by_hand():
-    source = np.array([["basis", "basis"], ["leaf_forecast", "basis"]], dtype=object)
+    assert SOURCES == ("basis", "children_forecast", "leaf_forecast", "reconciled")
+    source = codes([["basis", "basis"], ["leaf_forecast", "basis"]])
     use_target = np.array([[True, False], [True, True]])
     basis, rows = basis_column(source, use_target, LABELS)
     # split leaves: the target where use_target, else the period's share; the others keep their source
@@ -26,10 +33,10 @@ def test_basis_by_hand():
 def test_rows_per_basis_are_value_counts_of_the_column(n_children):
     rng = np.random.default_rng(n_children)
     for _ in range(20):
-        kinds = SOURCES[: int(rng.integers(1, len(SOURCES) + 1))]
+        kinds = np.array(SOURCES[: int(rng.integers(1, len(SOURCES) + 1))], dtype=object)
         source = rng.choice(kinds, (n_children, 5)).astype(object)
         use_target = rng.random((n_children, 5)) < rng.random()
-        basis, rows = basis_column(source, use_target, LABELS)
+        basis, rows = basis_column(codes(source), use_target, LABELS)
         expected = np.where(source == "basis", LABELS[np.where(use_target, 0, 1)], source)
         assert np.array_equal(basis, expected)
         counted = pd.Series(basis.ravel(), name="basis").value_counts().sort_index().rename("rows").reset_index()
@@ -86,3 +93,33 @@ def test_period_columns_by_arithmetic_are_get_indexer():
     # 2026-02-09 is column 1; a Tuesday, a day before the horizon and one after it are in none
     picked = pd.to_datetime(["2026-02-09", "2026-02-10", "2026-01-26", "2026-03-02"]).values
     assert period_columns(picked, starts).tolist() == [1, -1, -1, -1]
+
+
+def test_parent_sums_are_add_at_bit_for_bit():
+    """Sums per parent in child order from 0.0, as `np.add.at` adds them: values of very different sizes (another
+    order of addition gives other bits), -0.0 (a parent of only -0.0 children sums to 0.0), NaN, bool, 1-d."""
+    from pipelines.engines.hierarchy import parent_sums
+
+    rng = np.random.default_rng(11)
+    other_order = 0
+    for trial in range(300):
+        n_parents, n_children, h = int(rng.integers(1, 40)), int(rng.integers(0, 300)), int(rng.integers(1, 5))
+        code = rng.integers(0, n_parents, n_children)
+        leaf = rng.normal(size=(n_children, h)) * 10.0 ** rng.integers(-8, 12, size=(n_children, h))
+        leaf[rng.random((n_children, h)) < 0.05] = -0.0
+        leaf[rng.random((n_children, h)) < 0.01] = np.nan
+        expected = np.zeros((n_parents, h))
+        np.add.at(expected, code, leaf)
+        got = parent_sums(leaf, code, n_parents)
+        assert got.shape == expected.shape and got.tobytes() == expected.tobytes(), trial
+        backwards = np.zeros((n_parents, h))
+        np.add.at(backwards, code[::-1], leaf[::-1])
+        other_order += backwards.tobytes() != expected.tobytes()
+        for values in (leaf[:, 0], leaf > 0):
+            expected = np.zeros((n_parents,) + values.shape[1:])
+            np.add.at(expected, code, values)
+            assert parent_sums(values, code, n_parents).tobytes() == expected.tobytes()
+    assert other_order > 100  # the data tell the order of addition apart
+    assert parent_sums(-np.zeros((2, 1)), np.zeros(2, np.int64), 2).tobytes() == np.zeros((2, 1)).tobytes()
+    with pytest.raises(IndexError):
+        parent_sums(np.ones((2, 1)), np.array([0, 2]), 2)

@@ -88,6 +88,26 @@ def test_rows_in_and_key_rank_agree_with_the_text_keys():
     assert rank[0] < rank[1]  # (A,S1,c0) before (C,S1,c9), though its id 5 is after 4
 
 
+def test_rows_of_ids_in_runs_out_of_order_agree_with_the_text_keys():
+    """A forecast table's layout: each leaf's rows in a run, the runs not in id order (a child without history
+    numbered after the others sits among them in key order), an id coming back in a later run; random tables."""
+    from pipelines.keys import part_rows
+
+    rng = np.random.default_rng(4)
+    products = np.array(["A", "B", "C", "D"], dtype=object)
+    for _ in range(200):
+        n = int(rng.integers(1, 12))
+        leaves = pd.DataFrame({"product": rng.choice(products, n), "site": rng.choice(["S1", "S2"], n),
+                               "customer": [f"c{i}" for i in range(n)]})
+        leaves["leaf_id"], leaves["parent_id"] = key_ids(leaves)
+        runs = rng.integers(0, n, int(rng.integers(1, 3 * n)))  # which leaf each run is
+        table = leaves.iloc[np.repeat(runs, rng.integers(1, 5, len(runs)))].reset_index(drop=True)
+        spans = leaves[LEAF].sample(frac=0.7, random_state=int(rng.integers(1000))).reset_index(drop=True)
+        assert rows_in(table, spans, LEAF).tolist() == lookup(table, LEAF, spans).tolist()
+        master = pd.DataFrame({"product": products[::-1]})
+        assert part_rows(table, ["product"], master).tolist() == lookup(table, ["product"], master).tolist()
+
+
 def test_ids_that_do_not_match_the_keys_are_named_by_row():
     h = add_ids(_history())
     assert ids_match_keys(h).all()

@@ -448,3 +448,37 @@ def test_rows_and_quantity_per_origin_added_up_while_taken_equal_grouping_the_ro
     assert res.shortage_rows == int(res.history["shortage"].sum())
     assert set(res.history["origin"]) == {"own", "successor"}
     assert res.history["source_customer"].tolist() == res.history["customer"].tolist()
+
+
+def test_audit_rows_equal_grouping_every_line_by_text_key_and_detail():
+    """`_audit` (lines numbered by group on integers, sizes and sums in one pass, the groups sorted as text)
+    against pandas' groupby of every line: keys of several rows with one text (a moved history kept under a
+    leaf's own key), details per line, values whose plain sum differs from pandas' compensated one, NaN and
+    infinities."""
+    import numpy as np
+
+    from pipelines.keys import LEAF, factorize
+    from pipelines.stages.lifecycle_history import AUDIT_COLUMNS, _audit
+
+    rng = np.random.default_rng(8)
+    products = np.array(["P0", "P1", "P10", "P2"], dtype=object)
+    compensated = 0
+    for trial in range(150):
+        n_keys, n_lines = int(rng.integers(1, 12)), int(rng.integers(1, 200))
+        keys = pd.DataFrame({"product": rng.choice(products, n_keys), "site": rng.choice(["S1", "S2"], n_keys),
+                             "customer": rng.choice(["C1", "C2"], n_keys)})
+        key_of_row = rng.integers(0, n_keys, n_lines)
+        words = np.array(["detail b", "detail a", "detail a2"], dtype=object)[: int(rng.integers(1, 4))]
+        word_of_row = rng.integers(0, len(words), n_lines)
+        quantity = rng.normal(size=n_lines) * 10.0 ** rng.integers(-8, 10, n_lines)
+        quantity[rng.random(n_lines) < 0.05] = np.nan
+        if trial % 10 == 0:
+            quantity[0] = np.inf
+        got = _audit(keys, key_of_row, factorize(keys, LEAF)[0], quantity, "some_rule", words, word_of_row)
+        lines = keys.iloc[key_of_row].reset_index(drop=True).assign(quantity=quantity, detail=words[word_of_row])
+        grouped = lines.groupby(LEAF + ["detail"], sort=True)["quantity"].agg(periods="size", quantity="sum")
+        want = grouped.reset_index().assign(rule="some_rule")[AUDIT_COLUMNS]
+        pd.testing.assert_frame_equal(got, want, check_exact=True)
+        plain = lines.groupby(LEAF + ["detail"], sort=True)["quantity"].agg(lambda v: float(np.nansum(v.to_numpy())))
+        compensated += not np.array_equal(plain.to_numpy(), want["quantity"].to_numpy(), equal_nan=True)
+    assert compensated > 20  # the data tell pandas' compensated sum from the plain one

@@ -16,7 +16,7 @@ import pytest
 
 from pipelines.engines import series_grids
 from pipelines.engines.models import demand_classes
-from pipelines.engines.series_grids import series_grid
+from pipelines.engines.series_grids import SeriesGrid, series_grid
 from pipelines.errors import ConfigError
 from pipelines.schemas import ReinitializedTarget
 from pipelines.schemas_forecast import ForecastModels, ParentForecast, StatisticalForecast
@@ -100,6 +100,42 @@ def test_demand_classes_one_series_per_class_and_no_demand():
     assert adi[:4].tolist() == pytest.approx([1.0, 1.0, 2.0, 2.0])
     assert cv2[:4].tolist() == pytest.approx([0.02, 0.5625, 0.0, 0.5625])
     assert np.isnan(adi[4]) and np.isnan(cv2[4])
+
+
+def test_demand_classes_are_those_of_the_bincount_sums_bit_for_bit():
+    """The compiled pass (rows, rows above 0, their sum and sum of squares per series, in row order) against
+    `np.bincount` of the masked rows, on grids in and out of series order, values of very different sizes (the
+    order of addition shows), zeros, negatives and NaN, and series without rows."""
+    from pipelines.engines.models import ADI_CUTOFF, CV2_CUTOFF
+
+    def by_bincount(grid):
+        n, nz = grid.n_series, grid.y > 0
+        length = np.bincount(grid.series, minlength=n)
+        count = np.bincount(grid.series[nz], minlength=n)
+        total = np.bincount(grid.series[nz], weights=grid.y[nz], minlength=n)
+        squares = np.bincount(grid.series[nz], weights=grid.y[nz] ** 2, minlength=n)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            adi = np.where(count > 0, length / count, np.nan)
+            mean = total / count
+            cv2 = np.where(count > 0, np.clip(squares / count - mean**2, 0, None) / mean**2, np.nan)
+        cls = np.where(adi < ADI_CUTOFF, np.where(cv2 < CV2_CUTOFF, "smooth", "erratic"),
+                       np.where(cv2 < CV2_CUTOFF, "intermittent", "lumpy")).astype(object)
+        cls[count == 0] = "no_demand"
+        return cls, adi, cv2
+
+    rng = np.random.default_rng(3)
+    for trial in range(300):
+        n, rows = int(rng.integers(1, 30)), int(rng.integers(0, 400))
+        series = rng.integers(0, n, rows)
+        series = np.sort(series) if trial % 2 else series
+        y = rng.normal(size=rows) * 10.0 ** rng.integers(-6, 10, rows)
+        y[rng.random(rows) < 0.3] = 0.0
+        y[rng.random(rows) < 0.02] = np.nan
+        grid = SeriesGrid(series, np.arange(rows), y, n)
+        cls, adi, cv2 = demand_classes(grid)
+        expected = by_bincount(grid)
+        assert cls.tolist() == expected[0].tolist(), trial
+        assert adi.tobytes() == expected[1].tobytes() and cv2.tobytes() == expected[2].tobytes(), trial
 
 
 def test_adi_counts_from_the_first_nonzero_period_to_the_end():
@@ -566,3 +602,34 @@ def test_a_period_no_active_child_can_take_is_set_to_zero_with_its_reason(make_h
     assert res.parent["forecast"].tolist() == pytest.approx([4.0, 0.0])
     assert [None if pd.isna(r) else r for r in res.parent["zero_reason"]] == [None, "awaiting_history"]
     assert leaf_values(res) == pytest.approx({("C1", H1): 4.0, ("C2", H1): 0.0, ("C1", H2): 0.0, ("C2", H2): 0.0})
+
+
+def test_models_used_counts_each_parent_once_by_class_strategy_demand_class_and_model():
+    # the demo's consumables (top-down, AutoETS) and spares given a strategy (MinT) and a model per demand
+    # class, made by the stages' own runs; the metadata's parents per model (made from the per-parent arrays,
+    # not from the table's rows) against the parent table's distinct parents
+    import sys
+    from pathlib import Path
+
+    sys.path.insert(0, str(Path(__file__).parent))
+    from stage_runs import demo_config, run_partition
+
+    from assets.factory import graph_order
+    from pipelines import definitions  # noqa: F401  (makes every stage asset, so the graph holds them all)
+    from pipelines.keys import PARENT
+
+    spec = next(s for s in graph_order() if s.tables[0].name == "statistical_forecast")
+    models = {"smooth": "ses", "erratic": "ses", "intermittent": "croston_classic", "lumpy": "croston_sba"}
+    config = demo_config(
+        {"consumables": {"seasonality": "none"}, "spares": {"strategy": "mint_shrink", "models": models}}
+    )
+    columns = ["product_class", "strategy", "demand_class", "model"]
+    for product_class in ("consumables", "spares"):
+        run = run_partition(config, "2026-11-30", product_class, upto="statistical_forecast")
+        settings = run.settings["statistical_forecast"]
+        result = spec.run(**{name: run.tables[name] for name in spec.ins}, settings=settings)
+        parent = result.outputs["parent_forecast"]
+        expected = parent.drop_duplicates(PARENT).groupby(columns).size().rename("parents").reset_index()
+        used = result.metadata["parent_forecast"]["models_used"]
+        assert used["parents"].sum() == len(parent.drop_duplicates(PARENT)) > 1
+        pd.testing.assert_frame_equal(used, expected, check_exact=True)

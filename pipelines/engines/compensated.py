@@ -5,12 +5,13 @@ pandas sums a group's float64 values in row order with Kahan's compensation
 t = sum + y; c = (t - sum) - y; c reset to 0 where it is NaN, as after an
 infinite value; NaN values skipped by the caller). The compiled passes over
 rows that replace a `groupby(...).sum()` (the report's chart sums, the
-lifecycle's sums per origin, the plan's totals per measure) call this step,
+lifecycle's sums per origin and audit rows, the plan's totals per measure) call this step,
 so the one piece of arithmetic they must share is written once.
 """
 
 from __future__ import annotations
 
+import numpy as np
 from numba import njit
 
 
@@ -23,3 +24,21 @@ def compensated_add(total, comp, value):
     if comp != comp:
         comp = 0.0
     return t, comp
+
+
+@njit(cache=True)
+def group_sizes_and_sums(group, values, n_groups):
+    """(rows, pandas' grouped sum of `values` (NaN left out), first row) of each group 0..n_groups - 1 of the
+    rows (`group`: each row's group), the rows taken in order: `groupby(...).agg(size, sum)` in one pass."""
+    rows = np.zeros(n_groups, np.int64)
+    total = np.zeros(n_groups)
+    comp = np.zeros(n_groups)
+    first = np.full(n_groups, -1, np.int64)
+    for i in range(len(group)):
+        g = group[i]
+        if first[g] < 0:
+            first[g] = i
+        rows[g] += 1
+        if values[i] == values[i]:
+            total[g], comp[g] = compensated_add(total[g], comp[g], values[i])
+    return rows, total, first

@@ -14,7 +14,7 @@ import pandas as pd
 
 from pipelines.calendar import ordinal_to_start, period_ordinal
 from pipelines.engines.base_forecasts import BaseForecasts
-from pipelines.engines.hierarchy import Coherent, coherent
+from pipelines.engines.hierarchy import BASIS, SOURCES, Coherent, coherent
 from pipelines.engines.series_grids import SeriesGrid
 from pipelines.keys import LEAF, PARENT, rows_in
 
@@ -30,7 +30,7 @@ def combine_strategies(
     parent = np.zeros_like(base.parent_fc)
     leaf = np.zeros_like(base.leaf_fc)
     moved = np.zeros_like(base.parent_fc)
-    source = np.empty(leaf.shape, dtype=object)
+    source = np.zeros(leaf.shape, dtype=np.uint8)
     negatives = 0
     for strategy in pd.unique(strategy_of_parent):  # a handful of strategies, not a loop over series
         ps = strategy_of_parent == strategy
@@ -55,19 +55,24 @@ def basis_column(
     source: np.ndarray, use_target: np.ndarray, labels: np.ndarray
 ) -> tuple[np.ndarray, pd.DataFrame]:
     """(the leaves' basis, (n_children, h) text, and its rows per basis, the table `value_counts` of the column
-    would give: `basis`, `rows`, in text order). `source`: what each leaf came from (`hierarchy.coherent`, "basis"
-    where the parent was split by the basis); there `labels[0]` where `use_target`, else `labels[1]`.
+    would give: `basis`, `rows`, in text order). `source`: what each leaf came from, codes of
+    `hierarchy.SOURCES` (`hierarchy.coherent`; code 0, "basis", where the parent was split by the basis); there
+    `labels[0]` where `use_target`, else `labels[1]`.
 
-    The rows are counted on the masks, and on the other sources' cells only, not by hashing every cell's text."""
-    by_basis = source == "basis"
-    basis = np.where(by_basis, labels[np.where(use_target, 0, 1)], source)
-    on_target = int(np.count_nonzero(by_basis & use_target))
-    counts = pd.Series(source[~by_basis]).value_counts()
-    for label, rows in ((labels[0], on_target), (labels[1], int(np.count_nonzero(by_basis)) - on_target)):
+    Each cell's word is taken from a table of the words by its code, and the rows are counted on the codes (a
+    bincount), not by comparing or hashing every cell's text."""
+    words = np.array([labels[0], labels[1], *SOURCES[1:]], dtype=object)
+    code = source.astype(np.intp) + 1  # a source's code + 1; the basis (0) -> 1, labels[1], or below
+    code[(source == BASIS) & use_target] = 0
+    basis = words.take(code)
+    counts: dict[str, int] = {}
+    for word, rows in zip(words, np.bincount(code.ravel(), minlength=len(words)).tolist(), strict=True):
         if rows:
-            counts[label] = counts.get(label, 0) + rows
-    counts = pd.Series(counts.to_numpy(np.int64), index=pd.Index(counts.index, dtype=object, name="basis"))
-    return basis, counts.sort_index().rename("rows").reset_index()
+            counts[word] = counts.get(word, 0) + rows
+    held = sorted(counts)
+    return basis, pd.DataFrame(
+        {"basis": np.array(held, dtype=object), "rows": np.array([counts[w] for w in held], dtype=np.int64)}
+    )
 
 
 def fitted_frame(

@@ -44,6 +44,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
+from numba import njit
 from scipy.stats import norm
 
 from pipelines.calendar import season_length
@@ -111,11 +112,10 @@ class ModelRun:
 def demand_classes(grid: SeriesGrid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(demand_class, adi, cv2) per series; see the module docstring for the conventions."""
     n = grid.n_series
-    length = np.bincount(grid.series, minlength=n)
-    nz = grid.y > 0
-    count = np.bincount(grid.series[nz], minlength=n)
-    total = np.bincount(grid.series[nz], weights=grid.y[nz], minlength=n)
-    squares = np.bincount(grid.series[nz], weights=grid.y[nz] ** 2, minlength=n)
+    series = np.asarray(grid.series)
+    if len(series) and (int(series.min()) < 0 or int(series.max()) >= n):
+        raise IndexError(f"grid series codes must lie in 0..{n - 1}")
+    length, count, total, squares = _series_moments(series, np.asarray(grid.y, dtype=np.float64), n)
     with np.errstate(invalid="ignore", divide="ignore"):
         adi = np.where(count > 0, length / count, np.nan)
         mean = total / count
@@ -128,6 +128,24 @@ def demand_classes(grid: SeriesGrid) -> tuple[np.ndarray, np.ndarray, np.ndarray
     ).astype(object)
     cls[count == 0] = "no_demand"
     return cls, adi, cv2
+
+
+@njit(cache=True)
+def _series_moments(series, y, n):
+    """Per series: its rows, its rows with y > 0, and their sum and sum of squares, added in row order from 0
+    as `np.bincount` adds them (the same bits), in one pass."""
+    length = np.zeros(n, dtype=np.int64)
+    count = np.zeros(n, dtype=np.int64)
+    total = np.zeros(n)
+    squares = np.zeros(n)
+    for i in range(len(series)):
+        s = series[i]
+        length[s] += 1
+        if y[i] > 0:
+            count[s] += 1
+            total[s] += y[i]
+            squares[s] += y[i] ** 2
+    return length, count, total, squares
 
 
 def make_model(name: str, season: int, tsb: TSBConfig | None = None):

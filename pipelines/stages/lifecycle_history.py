@@ -34,6 +34,7 @@ import pandas as pd
 
 from pipelines.calendar import period_ordinal, span_bounds
 from pipelines.config import CalendarConfig, PlanningConfig
+from pipelines.engines.compensated import group_sizes_and_sums
 from pipelines.engines.leaf_runs import LeafRuns, expand, leaf_runs, span_rows, take_history, time_key
 from pipelines.errors import LifecycleError
 from pipelines.keys import ID_DTYPE, LEAF, LEAF_ID, PARENT_ID, factorize, lookup
@@ -90,14 +91,33 @@ def _stack(frames: list[pd.DataFrame], columns: list[str] | None = None) -> pd.D
     return pd.concat(full, ignore_index=True)
 
 
-def _audit(rows: pd.DataFrame, rule: str, detail: str | pd.Series) -> pd.DataFrame:
-    """Audit rows for `rows` (history lines) grouped by leaf."""
-    if rows.empty:
+def _audit(keys: pd.DataFrame, key_of_row: np.ndarray, key_code: np.ndarray, quantity: np.ndarray, rule: str,
+           words: np.ndarray, word_of_row: np.ndarray | None = None) -> pd.DataFrame:
+    """Audit rows of history lines grouped by their text key and detail, in the order of both, as
+    `groupby(LEAF + ["detail"], sort=True).agg(periods="size", quantity="sum")` of every line gives them: the
+    lines' groups numbered on integers (`key_code`: each row of `keys` numbered by its text key; `words`: the
+    details, `word_of_row` each line's, or the one detail of every line), the sizes and pandas' grouped sums
+    made in one compiled pass in line order, and only the groups' keys sorted as text.
+
+    keys: the keys a line may be kept under; key_of_row: each line's row of `keys`; quantity: each line's."""
+    if not len(key_of_row):
         return pd.DataFrame(columns=AUDIT_COLUMNS)
-    g = rows.assign(detail=detail).groupby(LEAF + ["detail"], sort=True, observed=True)["quantity"]
-    out = g.agg(periods="size", quantity="sum").reset_index()
+    word = np.zeros(len(key_of_row), np.int64) if word_of_row is None else word_of_row.astype(np.int64)
+    group, _ = pd.factorize(key_code[key_of_row].astype(np.int64) * len(words) + word)
+    periods, total, first = group_sizes_and_sums(group, np.ascontiguousarray(quantity, dtype=np.float64),
+                                                 int(group.max()) + 1)
+    out = keys.iloc[key_of_row[first]][LEAF].reset_index(drop=True)
+    out["detail"] = words[word[first]]
+    out = out.assign(periods=periods, quantity=total).sort_values(LEAF + ["detail"], kind="stable")
     out["rule"] = rule
-    return out[AUDIT_COLUMNS]
+    return out[AUDIT_COLUMNS].reset_index(drop=True)
+
+
+def _words(prefix: str, names: np.ndarray, of_row: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(the details `prefix + name` of the names the lines hold, each line's detail among them): one text per
+    name held, not per line."""
+    held, word_of_row = np.unique(of_row, return_inverse=True)
+    return (prefix + names[held]).astype(object), word_of_row.reshape(-1)
 
 
 ORIGINS = np.array(["own", "successor"], dtype=object)
@@ -156,17 +176,20 @@ def apply_lifecycle(
     leaves, n_leaves, every = runs.leaves, len(runs.leaves), np.arange(len(runs.leaves))
     audits = []
 
-    def audit(rule: str, at: np.ndarray, detail, keys: pd.DataFrame = leaves, key_of_row=None) -> None:
-        """The audit rows of the history rows at positions `at` (keys of their own leaf unless `key_of_row`
-        gives each row's row of `keys`)."""
-        rows = keys.iloc[key_of_row].reset_index(drop=True).assign(quantity=quantity[at])
-        audits.append(_audit(rows, rule, detail))
+    def audit(rule: str, at: np.ndarray, detail: str | tuple[np.ndarray, np.ndarray], key_of_row: np.ndarray,
+              keys: pd.DataFrame = leaves, key_code: np.ndarray | None = None) -> None:
+        """The audit rows of the history rows at positions `at`, each kept under its row of `keys` (`key_of_row`;
+        `key_code`: those rows numbered by their text key, default: each its own, as the leaves are); detail: one
+        text, or (the texts, each row's text among them)."""
+        words, word_of_row = (np.array([detail], dtype=object), None) if isinstance(detail, str) else detail
+        code = np.arange(len(keys)) if key_code is None else key_code
+        audits.append(_audit(keys, key_of_row, code, quantity[at], rule, words, word_of_row))
 
     # --- per leaf: the range of its rows inside its span, [inside, after)
     leaf_span = lookup(leaves, LEAF, spans)
     inside, after = span_rows(runs, leaf_span, s_from, s_to, lambda at: period_ordinal(starts[runs.rows(at)], period))
     at, leaf = runs.rows_of_ranges([runs.first, after], [inside - runs.first, runs.end - after], [every, every])
-    audit("outside_active_span", at, "history outside the customer's active span", key_of_row=leaf)
+    audit("outside_active_span", at, "history outside the customer's active span", leaf)
 
     # --- retired products: dropped, or moved to the end of the successor chain when the customer has a span there
     p_from, p_to = span_bounds(products, period)
@@ -191,20 +214,21 @@ def apply_lifecycle(
         return runs.rows_of_ranges([inside[which]], [length[which]], [every[which]])
 
     at, leaf = ranges_of(leaf_retired & (target_of_leaf < 0))
-    audit("retired_product_without_successor", at, "product retired before the cycle date", key_of_row=leaf)
+    audit("retired_product_without_successor", at, "product retired before the cycle date", leaf)
     successor_of = target_keys["product"].to_numpy(dtype=object)
     at, leaf = ranges_of(lost)
     audit(
         "successor_without_span",
         at,
-        "customer has no span active in the horizon on successor " + successor_of[target_of_leaf[leaf]],
-        key_of_row=leaf,
+        _words("customer has no span active in the horizon on successor ", successor_of, target_of_leaf[leaf]),
+        leaf,
     )
     source_product = leaves["product"].to_numpy(dtype=object)
     at, leaf = ranges_of(moved)
+    target_code = factorize(target_keys, LEAF)[0] if len(target_keys) else np.zeros(0, np.int64)
     audit(
-        "successor_history_mapped", at, "history of retired product " + source_product[leaf], target_keys,
-        target_of_leaf[leaf],
+        "successor_history_mapped", at, _words("history of retired product ", source_product, leaf),
+        target_of_leaf[leaf], target_keys, target_code,
     )
 
     # --- the ranges kept, own or moved, each under its key: a leaf (0..n_leaves-1) or a target key after them
@@ -217,14 +241,14 @@ def apply_lifecycle(
     own_out, moved_out = kept & phased_out & ~moved, kept & phased_out & moved
     at_own, leaf_own = ranges_of(own_out)
     at_moved, leaf_moved = ranges_of(moved_out)
+    key_code, distinct = factorize(all_keys, LEAF)  # a moved history's key may be a leaf's own
     audit(
         "phased_out_before_cycle", np.concatenate([at_own, at_moved]), "customer span ended before the cycle date",
-        all_keys, key_of_leaf[np.concatenate([leaf_own, leaf_moved])],
+        key_of_leaf[np.concatenate([leaf_own, leaf_moved])], all_keys, key_code,
     )
     kept &= ~phased_out
 
     # --- the result: the kept ranges by key (as text), each key's rows by period, origin and source product
-    key_code, distinct = factorize(all_keys, LEAF)
     rank = np.empty(len(distinct), dtype=np.int64)
     rank[distinct.sort_values(LEAF, kind="stable").index.to_numpy()] = np.arange(len(distinct))
     pieces = _pieces(runs, np.flatnonzero(kept), inside, length, rank[key_code][key_of_leaf], moved, starts,

@@ -104,6 +104,9 @@ class ForecastResult:
     fitted: pd.DataFrame | None = None  # in-sample one-step fitted values behind MinT / WLS residuals
     upper: pd.DataFrame | None = None  # upper_level_forecast: the levels above the parent (hierarchy.upper_levels)
     basis_rows: pd.DataFrame | None = None  # statistical_forecast's rows per basis (`basis`, `rows`)
+    # one row per parent, in the parent table's order: product_class, strategy, demand_class, model (the values
+    # every one of the parent's rows carries), for the metadata's count of parents per model
+    parent_models: pd.DataFrame | None = None
 
 
 @dataclass(frozen=True)
@@ -203,8 +206,7 @@ def forecast_cycle(
 
     # top-down basis: the reinitialized target (the period's share where the targets are all 0)
     target_m, share_m = leaf_matrix(target, children, ["target", "share"], starts)
-    target_sum = np.zeros((n_parents, horizon))
-    np.add.at(target_sum, parent_of_child, target_m)
+    target_sum = parent_sums(target_m, parent_of_child, n_parents)
     use_target = target_sum[parent_of_child] > 0
     basis = np.where(use_target, target_m, share_m)
 
@@ -272,6 +274,10 @@ def forecast_cycle(
         ignore_index=True,
     )
     fitted.insert(0, "cycle_date", cycle_date)
+    parent_models = pd.DataFrame(
+        {"product_class": parent_class, "strategy": strategy_of_parent, "demand_class": base.parent_demand,
+         "model": parent_model}, copy=False,
+    )
     moved = made.moved.ravel()
     redistributed = parent_out.loc[moved > 0, PARENT + ["period_start", "strategy_forecast"]].assign(
         volume_moved=moved[moved > 0]
@@ -286,6 +292,7 @@ def forecast_cycle(
         models=models[MODEL_COLUMNS],
         fitted=fitted[FITTED_COLUMNS],
         basis_rows=basis_rows,
+        parent_models=parent_models,
     )
 
 
@@ -311,8 +318,8 @@ def run(
         products, chosen_seasonality,
     )
     parent, leaf, models, fitted = result.parent, result.leaf, result.models, result.fitted
-    first = parent.iloc[:: max(settings.horizon, 1)]  # each parent's first row (its `horizon` rows are together)
-    used = first.groupby(["product_class", "strategy", "demand_class", "model"]).size().rename("parents").reset_index()
+    by_model = result.parent_models.groupby(["product_class", "strategy", "demand_class", "model"])
+    used = by_model.size().rename("parents").reset_index()
     zeroed = (
         parent[parent["zero_reason"].notna()]
         .groupby("zero_reason")
