@@ -43,6 +43,7 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
+from numba import njit
 
 from pipelines.calendar import horizon_starts
 from pipelines.engines.share_settings import ShareSettings
@@ -67,9 +68,6 @@ def counts_by(flags: np.ndarray, code: np.ndarray, n: int) -> np.ndarray:
     return out.T
 
 
-SPLIT_BLOCK = 4  # horizon periods split at a time
-
-
 def split_shares(
     parent_code: np.ndarray,
     n_parents: int,
@@ -92,57 +90,94 @@ def split_shares(
 
     Returns (shares (n, T), all_zero (n_parents, T)): shares sum to 1 per parent
     and period, except where all_zero (no active child holds any weight).
+
+    One compiled pass per period (`_split_periods`) doing numpy's arithmetic step by step: the same bits as the
+    whole-array form (the parent sums in row order from 0.0, as bincount; numpy's maximum, minimum, clip and
+    nan_to_num on signed zeros and NaN), without a dozen (children x periods) temporaries.
     """
-    n, t = active.shape
+    n = active.shape[0]
     base = np.asarray(history_share, dtype=float)
-    masks = np.isin(rule, NEW_CUSTOMER_RULES), rule == "reference", rule == "initial_share"
-    if t <= SPLIT_BLOCK:
-        return _split_block(parent_code, n_parents, base, masks, ref_pos, scale, initial_share, active)
-    # every step is per period, so a block of periods at a time gives the same numbers with temporaries of
-    # the block's width (the reinitialized target's split: a dozen (children x horizon) arrays otherwise)
-    shares, all_zero = np.empty((n, t)), np.empty((n_parents, t), dtype=bool)
-    for lo in range(0, t, SPLIT_BLOCK):
-        cols = slice(lo, lo + SPLIT_BLOCK)
-        shares[:, cols], all_zero[:, cols] = _split_block(
-            parent_code, n_parents, base[:, cols] if base.ndim == 2 else base, masks, ref_pos, scale,
-            initial_share, active[:, cols]
-        )
-    return shares, all_zero
+    base = base.reshape(n, -1) if base.ndim == 2 else base.reshape(n, 1)
+    return _split_periods(
+        np.asarray(parent_code, dtype=np.int64),
+        int(n_parents),
+        base,
+        np.isin(rule, NEW_CUSTOMER_RULES),
+        np.flatnonzero(rule == "reference"),
+        rule == "initial_share",
+        np.asarray(ref_pos, dtype=np.int64),
+        np.asarray(scale, dtype=float),
+        np.asarray(initial_share, dtype=float),
+        np.asarray(active, dtype=bool),
+    )
 
 
-def _split_block(parent_code, n_parents, base, masks, ref_pos, scale, initial_share, active):
-    """`split_shares` over the periods of `active` (n, T): base (n,) or (n, T), masks: new, reference and
-    initial-share rows."""
+@njit(cache=True)
+def _split_periods(parent_code, n_parents, base, new, refs, is_init, ref_pos, scale, initial_share, active):
+    """`split_shares`, period by period. base (n, 1) or (n, T); refs: the rows of rule `reference`, ascending.
+
+    In numpy's terms, per period (act = active as 0.0 / 1.0; every sum over rows in order from 0.0):
+    p = where(new, 0, base); asked[ref] += scale * act over the references' rows; cut = 1 / asked where above
+    1, else 1; take = scale * p[ref] * cut * act; given[ref] += take; weight = maximum(p - given, 0) * act *
+    (not new) + take; init = nan_to_num(initial_share) * act on the initial-share rows, else 0; W, I: their
+    sums per parent; share = clip(where(W > 0, weight / W * (1 - minimum(I, 1)), 0) + where(I > 0, init / I,
+    0) * where(W > 0, minimum(I, 1), 1), 0, 1); all_zero = (W <= 0) & (I <= 0)."""
     n, t = active.shape
-    act = active.astype(float)
-    new, is_ref, is_init = masks
-    p = np.where(new[:, None], 0.0, base if base.ndim == 2 else base[:, None])  # (n, T) or (n, 1)
-    r = np.flatnonzero(is_ref)  # the few new customers with a reference: their rows only
-    ref, k = ref_pos[r], scale[r]
-    # what the active new customers ask of each reference, as a multiple of its share
-    asked = np.zeros((n, t))
-    np.add.at(asked, ref, k[:, None] * act[r])
-    at_ref = asked[ref]
-    cut = np.where(at_ref > 1.0, 1.0 / np.where(at_ref > 1.0, at_ref, 1.0), 1.0)
-    take = np.zeros((n, t))
-    take[r] = k[:, None] * p[ref] * cut * act[r]
-    given = np.zeros((n, t))
-    np.add.at(given, ref, take[r])
-    weight = np.clip(p - given, 0.0, None) * act * (~new)[:, None] + take
-    s_init = np.where(is_init[:, None], np.nan_to_num(initial_share)[:, None] * act, 0.0)
-
-    weight_sum = sums_by(weight, parent_code, n_parents)
-    init_sum = sums_by(s_init, parent_code, n_parents)
-    w_sum, i_sum = weight_sum[parent_code], init_sum[parent_code]
-    kept = 1.0 - np.minimum(i_sum, 1.0)  # what the initial shares leave to the others
-    with np.errstate(invalid="ignore", divide="ignore"):
-        from_weight = np.where(w_sum > 0, weight / w_sum * kept, 0.0)
-        # each initial share's part of the initial total (<= 1), times what the total may take:
-        # min(S, 1) beside weighted children, all of it when there are none
-        part = np.where(i_sum > 0, s_init / i_sum, 0.0)
-        from_init = part * np.where(w_sum > 0, np.minimum(i_sum, 1.0), 1.0)
-    shares = np.clip(from_weight + from_init, 0.0, 1.0)
-    all_zero = (weight_sum <= 0) & (init_sum <= 0)
+    per_period = base.shape[1] > 1
+    big = 1.7976931348623157e308  # nan_to_num's stand-in for an infinity
+    shares = np.empty((n, t))
+    all_zero = np.empty((n_parents, t), dtype=np.bool_)
+    init = np.zeros(n)
+    for j in range(n):  # nan_to_num(initial_share)
+        v = initial_share[j]
+        init[j] = 0.0 if np.isnan(v) else (big if v == np.inf else (-big if v == -np.inf else v))
+    p = np.zeros(n)
+    asked = np.zeros(n)
+    take = np.zeros(n)
+    given = np.zeros(n)
+    weight = np.zeros(n)
+    s_init = np.zeros(n)
+    w_sum = np.zeros(n_parents)
+    i_sum = np.zeros(n_parents)
+    for col in range(t):
+        b = col if per_period else 0
+        for j in range(n):
+            p[j] = 0.0 if new[j] else base[j, b]
+        for r in refs:
+            asked[ref_pos[r]] = 0.0
+            given[ref_pos[r]] = 0.0
+        for r in refs:
+            asked[ref_pos[r]] += scale[r] * (1.0 if active[r, col] else 0.0)
+        for r in refs:
+            at = asked[ref_pos[r]]
+            cut = 1.0 / at if at > 1.0 else 1.0
+            take[r] = scale[r] * p[ref_pos[r]] * cut * (1.0 if active[r, col] else 0.0)
+        for r in refs:
+            given[ref_pos[r]] += take[r]
+        w_sum[:] = 0.0
+        i_sum[:] = 0.0
+        for j in range(n):
+            act = 1.0 if active[j, col] else 0.0
+            free = p[j] - given[j]
+            if not np.isnan(free) and not free > 0.0:  # numpy's maximum(free, 0.0): 0.0 also for -0.0
+                free = 0.0
+            weight[j] = free * act * (0.0 if new[j] else 1.0) + take[j]
+            s_init[j] = init[j] * act if is_init[j] else 0.0
+            w_sum[parent_code[j]] += weight[j]
+            i_sum[parent_code[j]] += s_init[j]
+        for j in range(n):
+            w, i = w_sum[parent_code[j]], i_sum[parent_code[j]]
+            capped = i if (np.isnan(i) or i < 1.0) else 1.0  # numpy's minimum(i, 1.0)
+            from_weight = weight[j] / w * (1.0 - capped) if w > 0 else 0.0
+            part = s_init[j] / i if i > 0 else 0.0
+            share = from_weight + part * (capped if w > 0 else 1.0)
+            if share < 0.0:  # numpy's clip(share, 0, 1): NaN and -0.0 kept
+                share = 0.0
+            elif share > 1.0:
+                share = 1.0
+            shares[j, col] = share
+        for k in range(n_parents):
+            all_zero[k, col] = w_sum[k] <= 0 and i_sum[k] <= 0
     return shares, all_zero
 
 
