@@ -17,7 +17,9 @@ from pipelines.keys import LEAF, PARENT, PARENT_ID, any_blank, factorize, ids_in
 from pipelines.text_codes import run_starts
 
 
-def find_shares_not_summing_to_one(target: pd.DataFrame, tolerance: float = SHARE_TOLERANCE) -> pd.DataFrame:
+def find_shares_not_summing_to_one(
+    target: pd.DataFrame, tolerance: float = SHARE_TOLERANCE, codes: tuple[np.ndarray, np.ndarray] | None = None
+) -> pd.DataFrame:
     """Parent periods whose shares neither sum to 1 nor are all 0 with a recorded reason.
 
     target: per-period shares (`reinitialized_target`: parent keys, period_start,
@@ -27,9 +29,11 @@ def find_shares_not_summing_to_one(target: pd.DataFrame, tolerance: float = SHAR
     The parent periods are first judged on integers (bincount over the rank of the parent key and the period);
     only those not clearly passing (a sum off 1 by more than half the tolerance, or a reason missing) are
     judged again below, on their own rows, so the rows named and their sums are those of the whole table.
+    codes: (each row's parent id x the periods + its period's code in order of first appearance, each row has a
+    reason) of this table, when the caller has them (`reinitialized_target.parent_period_codes`).
     """
     if len(target) and ids_in(target, (PARENT_ID,)):
-        rows, position = _parent_periods_in_doubt(target, tolerance, by_id=True)  # none in doubt: no key order
+        rows, position = _parent_periods_in_doubt(target, tolerance, by_id=True, codes=codes)  # none: no key order
         if position is None:
             rows, position = _parent_periods_in_doubt(target, tolerance)
         out = _shares_not_summing_to_one(target.iloc[rows], tolerance)
@@ -69,25 +73,29 @@ def _shares_not_summing_to_one(target: pd.DataFrame, tolerance: float) -> pd.Dat
 
 
 def _parent_periods_in_doubt(
-    target: pd.DataFrame, tolerance: float, by_id: bool = False
+    target: pd.DataFrame, tolerance: float, by_id: bool = False, codes: tuple[np.ndarray, np.ndarray] | None = None
 ) -> tuple[np.ndarray, np.ndarray | None]:
     """(positions of the rows of the parent periods that do not clearly pass `find_shares_not_summing_to_one`,
     the row number of each of those parent periods, in key order, among all the table's parent periods).
 
     With none in doubt the rows of the first row's parent period are given, so the judgement below keeps its
     columns. by_id: the groups numbered by parent id, not in key order (the same groups and sums), and with any
-    in doubt no row numbers (None): those need the key order.
+    in doubt no row numbers (None): those need the key order. codes: by_id's (key, has_reason) when the caller
+    has them.
     """
-    # the groups of the text parent key, in its order, as below (or by id)
-    rank = target[PARENT_ID].to_numpy(np.int64) if by_id else key_rank(target, PARENT)
-    when, periods = pd.factorize(target["period_start"].to_numpy(), sort=not by_id)
-    key = rank * len(periods) + when  # (parent key, period) in key order
+    if by_id and codes is not None:
+        key, reason = codes
+    else:  # the groups of the text parent key, in its order, as below (or by id)
+        rank = target[PARENT_ID].to_numpy(np.int64) if by_id else key_rank(target, PARENT)
+        when, periods = pd.factorize(target["period_start"].to_numpy(), sort=not by_id)
+        key = rank * len(periods) + when  # (parent key, period) in key order
+        reason = target["zero_reason"].notna().to_numpy()
     present = np.zeros(int(key.max()) + 1, dtype=bool)
     present[key] = True
     number = np.cumsum(present) - 1  # each parent period's row number in key order
     group = number[key]
     n = int(number[-1]) + 1
-    has_reason = np.bincount(group, weights=target["zero_reason"].notna().to_numpy(), minlength=n)
+    has_reason = np.bincount(group, weights=reason, minlength=n)
     share = target["share"].to_numpy(float)
     with np.errstate(invalid="ignore"):
         passes = (np.abs(np.bincount(group, weights=share, minlength=n) - 1.0) <= tolerance / 2) & (has_reason == 0)
