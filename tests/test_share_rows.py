@@ -17,6 +17,8 @@ import pytest
 from pipelines.calendar import EPOCH_MONDAY_NS, WEEK_NS, period_ordinal
 from pipelines.engines.children import _run_periods
 from pipelines.engines.lifecycle_shares import counts_by, split_shares, sums_by
+from pipelines.engines.period_shares import share_steps
+from pipelines.engines.proofs import key_sums
 from pipelines.engines.share_rows import (
     ShareRows,
     _run_window_sums,
@@ -309,3 +311,40 @@ def test_run_periods_count_each_leafs_distinct_periods(seed):
     i = rows.first[at]
     swapped[i], swapped[i + 2] = swapped[i + 2], swapped[i]
     assert not _run_periods(rows.first, swapped, np.zeros(60, np.int64))
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_share_steps_are_the_changes_between_a_leafs_periods(seed):
+    # reference: numpy's steps from row to row within a leaf's run, |share - share before| > tolerance
+    rng = np.random.default_rng(500 + seed)
+    sizes = rng.integers(1, 9, 300)
+    ids = np.repeat(rng.permutation(400)[:300], sizes).astype(np.int32)
+    when = np.concatenate([np.sort(rng.choice(40, k, replace=False)) for k in sizes]).astype(np.int64)
+    share = rng.choice([0.25, 0.25 + 1e-10, 0.25 + 1e-8, 0.5, 0.0, -0.0, np.nan], len(ids))
+    in_runs, rows = share_steps(ids, when, share, 1e-9, 400)
+    with np.errstate(invalid="ignore"):
+        expected = np.flatnonzero((ids[1:] == ids[:-1]) & (np.abs(np.diff(share)) > 1e-9)) + 1
+    assert in_runs and np.array_equal(rows, expected) and len(rows)
+    assert not np.array_equal(share_steps(ids, when, share, 1e-11, 400)[1], expected)  # the tolerance is read
+    later = ids.copy()
+    later[-1] = ids[0] if ids[-2] != ids[0] else ids[sizes[0]]  # an id's second run
+    assert not share_steps(later, when, share, 1e-9, 400)[0]
+    back = when.copy()
+    at = int(np.flatnonzero(ids[1:] == ids[:-1])[0]) + 1
+    back[at] = back[at - 1] - 1  # a period before the row before, inside a run
+    assert not share_steps(ids, back, share, 1e-9, 400)[0]
+
+
+def test_key_sums_are_bincounts_to_the_bit():
+    rng = np.random.default_rng(9)
+    key = rng.integers(0, 50, 3000) * 2  # odd keys held by no row
+    share = rng.random(3000) * rng.choice([1.0, 1e-9, 1e9, 0.0, -0.0], 3000)
+    share[[3, 70]] = np.nan
+    reason = rng.random(3000) < 0.3
+    share_sum, rows, reasons, nonzero = key_sums(key, share, reason, 100)
+    assert np.array_equal(bits(share_sum), bits(np.bincount(key, weights=share, minlength=100)))
+    assert np.array_equal(rows, np.bincount(key, minlength=100))
+    assert np.array_equal(reasons, np.bincount(key, weights=reason, minlength=100))
+    assert np.array_equal(nonzero, np.bincount(key, weights=share != 0, minlength=100))
+    order = np.argsort(key, kind="stable")[::-1]  # each key's rows added the other way round: other bits
+    assert not np.array_equal(bits(share_sum), bits(key_sums(key[order], share[order], reason, 100)[0]))

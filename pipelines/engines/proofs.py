@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
+from numba import njit
 
 from pipelines.calendar import period_ordinal, span_bounds
 from pipelines.checks import SHARE_TOLERANCE
@@ -90,20 +91,32 @@ def _parent_periods_in_doubt(
         when, periods = pd.factorize(target["period_start"].to_numpy(), sort=not by_id)
         key = rank * len(periods) + when  # (parent key, period) in key order
         reason = target["zero_reason"].notna().to_numpy()
-    present = np.zeros(int(key.max()) + 1, dtype=bool)
-    present[key] = True
-    number = np.cumsum(present) - 1  # each parent period's row number in key order
-    group = number[key]
-    n = int(number[-1]) + 1
-    has_reason = np.bincount(group, weights=reason, minlength=n)
-    share = target["share"].to_numpy(float)
+    # per key (parent period): its share sum (rows in order from 0.0, as bincount), rows, reasons, non-zero shares
+    share_sum, rows, reasons, nonzero = key_sums(key, target["share"].to_numpy(float), reason, int(key.max()) + 1)
     with np.errstate(invalid="ignore"):
-        passes = (np.abs(np.bincount(group, weights=share, minlength=n) - 1.0) <= tolerance / 2) & (has_reason == 0)
-    zero = (np.bincount(group, weights=share != 0, minlength=n) == 0) & (has_reason == np.bincount(group, minlength=n))
-    doubt = ~(passes | zero)
+        passes = (np.abs(share_sum - 1.0) <= tolerance / 2) & (reasons == 0)
+    doubt = ~(passes | ((nonzero == 0) & (reasons == rows))) & (rows > 0)  # keys no row holds: not in doubt
     if not doubt.any():
-        return np.flatnonzero(group == group[0]), np.zeros(1, np.int64)
-    return np.flatnonzero(doubt[group]), None if by_id else np.flatnonzero(doubt)
+        return np.flatnonzero(key == key[0]), np.zeros(1, np.int64)
+    # each parent period's row number in key order: its place among the keys some row holds
+    return np.flatnonzero(doubt[key]), None if by_id else np.flatnonzero(doubt[rows > 0])
+
+
+@njit(cache=True)
+def key_sums(key, share, reason, n_keys):
+    """(share sum, rows, rows with a reason, rows with a share other than 0 (NaN counts)) per key 0..n_keys-1,
+    in one pass; each sum adds its rows' shares in row order from 0.0 (`np.bincount` with weights)."""
+    share_sum = np.zeros(n_keys)
+    rows = np.zeros(n_keys, dtype=np.int64)
+    reasons = np.zeros(n_keys, dtype=np.int64)
+    nonzero = np.zeros(n_keys, dtype=np.int64)
+    for i in range(len(key)):
+        k = key[i]
+        share_sum[k] += share[i]
+        rows[k] += 1
+        reasons[k] += reason[i]
+        nonzero[k] += share[i] != 0.0
+    return share_sum, rows, reasons, nonzero
 
 
 def find_volume_after_phase_out(

@@ -46,7 +46,7 @@ import pandas as pd
 
 from pipelines.calendar import horizon_starts, period_ordinal
 from pipelines.checks import SHARES_SUM_TO_ONE
-from pipelines.engines.period_shares import period_shares, stored_basis
+from pipelines.engines.period_shares import period_shares, share_steps, stored_basis
 from pipelines.engines.proofs import find_shares_not_summing_to_one
 from pipelines.engines.share_rows import bin_window_volumes, period_ages, shortage_periods
 from pipelines.engines.share_settings import ShareSettings
@@ -156,20 +156,19 @@ def parents_with_mix_change(
         )
     # each leaf's share against its previous period, on integers: the rows in (leaf key, period) order
     when = target["period_start"].to_numpy().view(np.int64)
-    same_leaf, order = _leaf_runs(target, when), None
-    if same_leaf is None:
-        leaf = key_rank(target, LEAF)
+    share = target["share"].to_numpy(float)
+    rows = _changes_in_leaf_runs(target, when, share, tolerance)
+    if rows is None:
+        leaf, order = key_rank(target, LEAF), None
         step_leaf, step_when = np.diff(leaf), np.diff(when)
         if not bool(np.all((step_leaf > 0) | ((step_leaf == 0) & (step_when >= 0)))):
             order = np.lexsort((when, leaf))  # stable, as a sort by leaf then period
             step_leaf = np.diff(leaf[order])
-        same_leaf = step_leaf == 0
-    share = target["share"].to_numpy(float)
-    share = share if order is None else share[order]
-    with np.errstate(invalid="ignore"):
-        changed = same_leaf & (np.abs(share[1:] - share[:-1]) > tolerance)
-    rows = np.flatnonzero(changed) + 1
-    rows = rows if order is None else order[rows]
+        share = share if order is None else share[order]
+        with np.errstate(invalid="ignore"):
+            changed = (step_leaf == 0) & (np.abs(share[1:] - share[:-1]) > tolerance)
+        rows = np.flatnonzero(changed) + 1
+        rows = rows if order is None else order[rows]
     change = target.iloc[np.sort(rows)][PARENT + ["period_start"]].drop_duplicates()
     per_parent = change.groupby(PARENT, sort=True).agg(
         first_change=("period_start", "min"), periods_with_change=("period_start", "size")
@@ -194,17 +193,19 @@ def parents_with_mix_change(
     return per_parent.reset_index()
 
 
-def _leaf_runs(target: pd.DataFrame, when: np.ndarray) -> np.ndarray | None:
-    """Per step from a row to the next: both rows of one leaf, where the rows of each leaf are one run in period
-    order (as `reinitialize_target` writes them), told by the leaf ids; None otherwise (or without the ids)."""
+def _changes_in_leaf_runs(
+    target: pd.DataFrame, when: np.ndarray, share: np.ndarray, tolerance: float
+) -> np.ndarray | None:
+    """The rows whose share differs by more than `tolerance` from the row before of the same leaf, where the rows
+    of each leaf are one run in period order (as `reinitialize_target` writes them), told by the leaf ids in one
+    compiled pass (`share_steps`); None otherwise (or without the ids)."""
     if not ids_in(target, (LEAF_ID,)) or len(target) < 2:
         return None
     ids = target[LEAF_ID].to_numpy()
-    new = ids[1:] != ids[:-1]
-    heads = ids[np.r_[0, np.flatnonzero(new) + 1]]
-    if len(np.unique(heads)) < len(heads) or not bool(np.all((when[1:] >= when[:-1]) | new)):
+    if ids.min() < 0:
         return None
-    return ~new
+    in_runs, rows = share_steps(ids, when, share, tolerance, int(ids.max()) + 1)
+    return rows if in_runs else None
 
 
 def parent_period_codes(target: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
