@@ -200,6 +200,10 @@ def test_sums_by_and_counts_by_are_the_ufuncs_at():
     any_flag = np.zeros((40, 7), dtype=bool)
     np.logical_or.at(any_flag, code, flags)
     assert np.array_equal(counts_by(flags, code, 40), any_flag) and not any_flag.all() and any_flag.any()
+    keep = rng.random(500) < 0.5
+    kept = np.zeros((40, 7), dtype=bool)
+    np.logical_or.at(kept, code, flags & keep[:, None])
+    assert np.array_equal(counts_by(flags, code, 40, keep=keep), kept) and not np.array_equal(kept, any_flag)
 
 
 def numpy_split(parent_code, n_parents, base, rule, ref_pos, scale, initial_share, active):

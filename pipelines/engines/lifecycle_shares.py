@@ -60,12 +60,22 @@ def sums_by(values: np.ndarray, code: np.ndarray, n: int) -> np.ndarray:
     return out.T
 
 
-def counts_by(flags: np.ndarray, code: np.ndarray, n: int) -> np.ndarray:
-    """(n, T) bool: any row of each `code` True in the column (`np.logical_or.at` on False, by bincount)."""
-    out = np.empty((flags.shape[1], n), dtype=bool)
-    for col in range(flags.shape[1]):
-        out[col] = np.bincount(code[flags[:, col]], minlength=n) > 0
-    return out.T
+def counts_by(flags: np.ndarray, code: np.ndarray, n: int, keep: np.ndarray | None = None) -> np.ndarray:
+    """(n, T) bool: any row of each `code` True in the column (`np.logical_or.at` on False), over the rows with
+    `keep` (m,) True only (None: every row); one compiled pass (`_any_by`), no masked copy of `flags`."""
+    keep = np.ones(len(code), dtype=bool) if keep is None else np.asarray(keep, dtype=bool)
+    return _any_by(np.asarray(flags, dtype=bool), np.asarray(code, dtype=np.int64), int(n), keep)
+
+
+@njit(cache=True)
+def _any_by(flags, code, n, keep):
+    out = np.zeros((n, flags.shape[1]), dtype=np.bool_)
+    for j in range(flags.shape[0]):
+        if keep[j]:
+            row = out[code[j]]
+            for col in range(flags.shape[1]):
+                row[col] |= flags[j, col]
+    return out
 
 
 def split_shares(
@@ -245,12 +255,19 @@ def lifecycle_rules(children: pd.DataFrame, established: np.ndarray, settings: S
     return rule, ref_pos, scale, initial, detail.to_numpy(object)
 
 
-def reference_positions(shares: pd.DataFrame) -> np.ndarray:
-    """Row of each `reference` row's reference customer in the same table (-1 elsewhere)."""
+def reference_positions(shares: pd.DataFrame, parent_code: np.ndarray | None = None) -> np.ndarray:
+    """Row of each `reference` row's reference customer in the same table (-1 elsewhere). parent_code: each
+    row's parent (`factorize(shares, PARENT)`), when the caller has it: a reference is then looked for among the
+    children of its own parent only (its key holds that parent's), not among every row's keys."""
     rows = np.flatnonzero(shares["lifecycle_rule"].to_numpy() == "reference")  # only theirs looked up
     key = shares[PARENT].iloc[rows].assign(customer=shares["reference_customer"].fillna("").to_numpy()[rows])
     pos = np.full(len(shares), -1, dtype=np.int64)
-    pos[rows] = lookup(key, LEAF, shares)
+    if parent_code is None:
+        pos[rows] = lookup(key, LEAF, shares)
+    else:
+        among = np.flatnonzero(np.isin(parent_code, parent_code[rows]))
+        found = lookup(key, LEAF, shares.iloc[among])
+        pos[rows] = np.where(found >= 0, among[found], -1)
     return pos
 
 

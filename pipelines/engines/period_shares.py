@@ -270,14 +270,14 @@ def period_shares(
         n_parents,
         weight,
         rule,
-        reference_positions(shares),
+        reference_positions(shares, parent_code),
         shares["scale"].to_numpy(float),
         shares["initial_share"].to_numpy(float),
         active,
     )
 
     any_active = counts_by(active, parent_code, n_parents)
-    non_waiting = counts_by(active & (rule != "awaiting_history")[:, None], parent_code, n_parents)
+    non_waiting = counts_by(active, parent_code, n_parents, keep=rule != "awaiting_history")
     product_active = np.ones_like(any_active)
     if products is not None:
         p_from, p_to = span_bounds(products, period)
