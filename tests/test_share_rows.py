@@ -23,6 +23,7 @@ from pipelines.engines.share_rows import (
     ShareRows,
     _run_window_sums,
     _week_ages,
+    _week_runs,
     bin_window_volumes,
     child_sums,
     period_ages,
@@ -352,3 +353,28 @@ def test_key_sums_are_bincounts_to_the_bit():
     assert np.array_equal(nonzero, np.bincount(key, weights=share != 0, minlength=100))
     order = np.argsort(key, kind="stable")[::-1]  # each key's rows added the other way round: other bits
     assert not np.array_equal(bits(share_sum), bits(key_sums(key[order], share[order], reason, 100)[0]))
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_week_runs_are_the_ages_counts_and_run_periods(seed):
+    # reference: `_week_ages` (tested above against numpy), age >= 1 outside the shortage rows, `_run_periods`
+    leaf, ns, qty = history(seed, 60)
+    short = np.random.default_rng(600 + seed).random(len(leaf)) < 0.1
+    first = np.searchsorted(leaf, np.arange(61, dtype=leaf.dtype))
+    age, counts, periods = np.empty(len(leaf), np.int32), np.empty(len(leaf), bool), np.zeros(60, np.int64)
+    assert _week_runs(ns, CYCLE_ORD, first, short, age, counts, periods) == (True, True)
+    expected_age = np.empty(len(leaf), np.int32)
+    assert _week_ages(ns, CYCLE_ORD, expected_age)
+    expected_periods = np.zeros(60, np.int64)
+    assert _run_periods(first, expected_age, expected_periods)
+    assert np.array_equal(age, expected_age) and np.array_equal(periods, expected_periods)
+    assert np.array_equal(counts, (expected_age >= 1) & ~short) and not counts.all() and counts.any()
+    _week_runs(ns, CYCLE_ORD, first, np.zeros(0, bool), age, counts, periods)  # no shortage rows
+    assert np.array_equal(counts, expected_age >= 1)
+    back = ns.copy()
+    two = first[:-1][(np.diff(first) > 2)] + 1  # a run's second row, with a third after it
+    at = int(two[reference_ages(ns[two]) != reference_ages(ns[two + 1])][0])
+    back[at], back[at + 1] = ns[at + 1], ns[at]  # two of a run's weeks swapped: an age rises inside the run
+    assert _week_runs(back, CYCLE_ORD, first, short, age, counts, periods) == (True, False)
+    back[3] = np.iinfo(np.int64).min
+    assert not _week_runs(back, CYCLE_ORD, first, short, age, counts, periods)[0]
