@@ -191,8 +191,16 @@ def _split_periods(parent_code, n_parents, base, new, refs, is_init, ref_pos, sc
     return shares, all_zero
 
 
-def lifecycle_rules(children: pd.DataFrame, established: np.ndarray, settings: ShareSettings, cycle_date: pd.Timestamp):
-    """(rule, ref_pos, scale, initial_share, detail) per child; see the module docstring."""
+def lifecycle_rules(
+    children: pd.DataFrame,
+    established: np.ndarray,
+    settings: ShareSettings,
+    cycle_date: pd.Timestamp,
+    parent_code: np.ndarray | None = None,
+):
+    """(rule, ref_pos, scale, initial_share, detail) per child; see the module docstring. parent_code: each
+    child's parent (`factorize(children, PARENT)`), when the caller has it: a reference customer is then looked
+    for among its own parent's children only."""
     n_min = settings.min_history_periods
     starts = horizon_starts(cycle_date, settings.horizon, settings.period)
     new = ~established
@@ -201,7 +209,7 @@ def lifecycle_rules(children: pd.DataFrame, established: np.ndarray, settings: S
     asks = np.flatnonzero(has_ref)  # only a new customer's reference is looked up (-1 elsewhere)
     ref_pos = np.full(len(children), -1, dtype=np.int64)
     ref_key = children[PARENT].iloc[asks].assign(customer=reference.to_numpy()[asks])
-    ref_pos[asks] = lookup(ref_key, LEAF, children)
+    ref_pos[asks] = _positions_among_parent(ref_key, children, parent_code, asks)
     ref_ok = has_ref & (ref_pos >= 0) & established[np.clip(ref_pos, 0, None)]
     has_init = new & ~ref_ok & children["initial_share"].notna().to_numpy()
     awaiting = new & ~ref_ok & ~has_init
@@ -262,13 +270,18 @@ def reference_positions(shares: pd.DataFrame, parent_code: np.ndarray | None = N
     rows = np.flatnonzero(shares["lifecycle_rule"].to_numpy() == "reference")  # only theirs looked up
     key = shares[PARENT].iloc[rows].assign(customer=shares["reference_customer"].fillna("").to_numpy()[rows])
     pos = np.full(len(shares), -1, dtype=np.int64)
-    if parent_code is None:
-        pos[rows] = lookup(key, LEAF, shares)
-    else:
-        among = np.flatnonzero(np.isin(parent_code, parent_code[rows]))
-        found = lookup(key, LEAF, shares.iloc[among])
-        pos[rows] = np.where(found >= 0, among[found], -1)
+    pos[rows] = _positions_among_parent(key, shares, parent_code, rows)
     return pos
+
+
+def _positions_among_parent(key: pd.DataFrame, table: pd.DataFrame, parent_code, rows: np.ndarray) -> np.ndarray:
+    """`lookup(key, LEAF, table)` for keys that name a customer of the parent of table's `rows` (one per key):
+    looked for among the rows of those parents only where `parent_code` (each table row's parent) is given."""
+    if parent_code is None:
+        return lookup(key, LEAF, table)
+    among = np.flatnonzero(np.isin(parent_code, parent_code[rows]))
+    found = lookup(key, LEAF, table.iloc[among])
+    return np.where(found >= 0, among[found], -1)
 
 
 def new_customers(shares: pd.DataFrame) -> pd.DataFrame:
