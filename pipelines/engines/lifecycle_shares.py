@@ -52,12 +52,19 @@ from pipelines.vocabulary import NEW_CUSTOMER_RULES
 
 
 def sums_by(values: np.ndarray, code: np.ndarray, n: int) -> np.ndarray:
-    """(n, T): the rows of `values` (m, T) summed per `code` (m,) in 0..n-1, rows in order: the sums of
-    `np.add.at(out, code, values)` on zeros, a column at a time by bincount (far faster)."""
-    out = np.empty((values.shape[1], n))
-    for col in range(values.shape[1]):  # the horizon's periods, not the series
-        out[col] = np.bincount(code, weights=values[:, col], minlength=n)
-    return out.T
+    """(n, T): the rows of `values` (m, T) summed per `code` (m,) in 0..n-1, rows in order from 0.0: the sums of
+    `np.add.at(out, code, values)` on zeros (and of a bincount per column), in one compiled pass (`_sums_by`)."""
+    return _sums_by(np.asarray(values, dtype=float), np.asarray(code, dtype=np.int64), int(n))
+
+
+@njit(cache=True)
+def _sums_by(values, code, n):
+    out = np.zeros((n, values.shape[1]))
+    for j in range(values.shape[0]):
+        row = out[code[j]]
+        for col in range(values.shape[1]):
+            row[col] += values[j, col]
+    return out
 
 
 def counts_by(flags: np.ndarray, code: np.ndarray, n: int, keep: np.ndarray | None = None) -> np.ndarray:
