@@ -5,7 +5,8 @@ pandas sums a group's float64 values in row order with Kahan's compensation
 t = sum + y; c = (t - sum) - y; c reset to 0 where it is NaN, as after an
 infinite value; NaN values skipped by the caller). The compiled passes over
 rows that replace a `groupby(...).sum()` (the report's chart sums, the
-lifecycle's sums per origin, the plan's totals per measure) call this step,
+lifecycle's sums per origin, the plan's totals per measure, the
+reconciliation's leaf sums per parent period) call this step,
 so the one piece of arithmetic they must share is written once.
 """
 
