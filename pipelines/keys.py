@@ -193,9 +193,10 @@ def coded(frame: pd.DataFrame) -> Coded:
 def _keys_of_ids(frame: pd.DataFrame, ids: np.ndarray, cols: list[str]) -> pd.DataFrame:
     """The `cols` key of ids 0..max (rows of `frame`; an id no row holds gets the keys of none: empty text)."""
     n = int(ids.max()) + 1 if len(ids) else 0
-    if len(ids) > 1 and bool(np.all(ids[1:] >= ids[:-1])):  # sorted by id: each id's first row is where it changes
-        first = np.flatnonzero(np.r_[True, ids[1:] != ids[:-1]])
-        held = ids[first]
+    if len(ids) > 1 and bool(np.all(ids[1:] >= ids[:-1])):  # sorted by id: each id's first row, by bisection
+        first = np.searchsorted(ids, np.arange(n, dtype=ids.dtype))  # in the ids' own type: no widened copy
+        held = np.flatnonzero(ids[np.minimum(first, len(ids) - 1)] == np.arange(n))
+        first = first[held]
     else:  # each id's first row starts a run of one id: only the runs' first rows are looked at (a forecast
         # table's ids come in runs of its horizon), in row order, so the same rows as over every row
         starts = np.flatnonzero(np.r_[True, ids[1:] != ids[:-1]]) if len(ids) else np.zeros(0, np.int64)

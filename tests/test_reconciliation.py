@@ -7,9 +7,11 @@ and period (or are all 0 with a recorded reason).
 
 from __future__ import annotations
 
+import numpy as np
 import pandas as pd
 import pytest
 
+from pipelines.engines.compensated import first_appearance_sums
 from pipelines.engines.proofs import (
     find_active_parents_without_children,
     find_negative,
@@ -338,3 +340,31 @@ def test_active_parents_come_from_the_master_data_and_spans(make_spans, make_pro
     assert keyed(bad, "product", "active_spans", "why") == [
         ("P9", 0, "forecast parent without a child in statistical_forecast")
     ]
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_first_appearance_sums_are_pandas_groupby_sums_to_the_bit(seed):
+    # reference: the groups pd.factorize numbers, their first rows, pandas' own (compensated) group sums with
+    # NaN left out, and the rows per group counted with the NaN ones
+    rng = np.random.default_rng(seed)
+    key = rng.integers(0, 300, 5000) * 3  # keys held by no row between
+    values = rng.random(5000) * rng.choice([1.0, 1e-8, 1e8, 1e16], 5000)
+    values[rng.integers(0, 5000, 20)] = np.nan
+    values[7], values[9] = np.inf, -0.0
+    first, sums, rows = first_appearance_sums(key, 900, values)
+    group, _ = pd.factorize(key)
+    expected = pd.Series(values).groupby(group, sort=False).sum().to_numpy()
+    assert np.array_equal(first, pd.Series(group).drop_duplicates().index.to_numpy())
+    assert np.array_equal(sums.view(np.int64), expected.view(np.int64))
+    assert np.array_equal(rows, np.bincount(group))
+    plain = np.bincount(group, weights=np.nan_to_num(values, nan=0.0, posinf=np.inf))  # uncompensated
+    assert not np.array_equal(sums.view(np.int64), plain.view(np.int64))
+
+
+def test_first_appearance_sums_compensated_by_hand():
+    # 1e16 then sixteen 1.0: added one after the other each 1.0 is lost (1e16 + 1 rounds to 1e16); the
+    # compensated sum keeps them: 1e16 + 16. A group of NaN only sums to 0.0 over its one row.
+    key = np.array([4] * 17 + [1])
+    values = np.array([1e16] + [1.0] * 16 + [np.nan])
+    first, sums, rows = first_appearance_sums(key, 5, values)
+    assert first.tolist() == [0, 17] and sums.tolist() == [1e16 + 16, 0.0] and rows.tolist() == [17, 1]

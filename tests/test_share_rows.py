@@ -15,18 +15,21 @@ import pandas as pd
 import pytest
 
 from pipelines.calendar import EPOCH_MONDAY_NS, WEEK_NS, period_ordinal
-from pipelines.engines import lifecycle_shares
 from pipelines.engines.children import _run_periods
 from pipelines.engines.lifecycle_shares import counts_by, split_shares, sums_by
+from pipelines.engines.period_shares import share_steps
+from pipelines.engines.proofs import key_sums
 from pipelines.engines.share_rows import (
     ShareRows,
     _run_window_sums,
     _week_ages,
+    _week_runs,
     bin_window_volumes,
     child_sums,
     period_ages,
     period_sums,
 )
+from pipelines.vocabulary import NEW_CUSTOMER_RULES
 
 CYCLE_ORD = 2970
 
@@ -198,29 +201,103 @@ def test_sums_by_and_counts_by_are_the_ufuncs_at():
     any_flag = np.zeros((40, 7), dtype=bool)
     np.logical_or.at(any_flag, code, flags)
     assert np.array_equal(counts_by(flags, code, 40), any_flag) and not any_flag.all() and any_flag.any()
+    keep = rng.random(500) < 0.5
+    kept = np.zeros((40, 7), dtype=bool)
+    np.logical_or.at(kept, code, flags & keep[:, None])
+    assert np.array_equal(counts_by(flags, code, 40, keep=keep), kept) and not np.array_equal(kept, any_flag)
 
 
-def test_split_shares_by_blocks_of_periods_is_the_whole_horizons_split(monkeypatch):
-    # the split's steps are per period, so a block of periods at a time must give the same bits as the whole
-    # horizon at once (SPLIT_BLOCK above the horizon); references, initial shares, inactive periods, a per-period
-    # basis with zeros, all-zero parents
-    rng = np.random.default_rng(11)
-    n, t, n_parents = 400, 26, 60
+def numpy_split(parent_code, n_parents, base, rule, ref_pos, scale, initial_share, active):
+    """The split in whole-array numpy, as `split_shares` was written before its compiled pass: the reference."""
+    n, t = active.shape
+    base = np.asarray(base, dtype=float)
+    act = active.astype(float)
+    new, is_ref, is_init = np.isin(rule, NEW_CUSTOMER_RULES), rule == "reference", rule == "initial_share"
+    p = np.where(new[:, None], 0.0, base if base.ndim == 2 else base[:, None])
+    r = np.flatnonzero(is_ref)
+    ref, k = ref_pos[r], scale[r]
+    asked = np.zeros((n, t))
+    np.add.at(asked, ref, k[:, None] * act[r])
+    at_ref = asked[ref]
+    cut = np.where(at_ref > 1.0, 1.0 / np.where(at_ref > 1.0, at_ref, 1.0), 1.0)
+    take = np.zeros((n, t))
+    take[r] = k[:, None] * p[ref] * cut * act[r]
+    given = np.zeros((n, t))
+    np.add.at(given, ref, take[r])
+    weight = np.clip(p - given, 0.0, None) * act * (~new)[:, None] + take
+    s_init = np.where(is_init[:, None], np.nan_to_num(initial_share)[:, None] * act, 0.0)
+    weight_sum, init_sum = np.zeros((n_parents, t)), np.zeros((n_parents, t))
+    np.add.at(weight_sum, parent_code, weight)
+    np.add.at(init_sum, parent_code, s_init)
+    w_sum, i_sum = weight_sum[parent_code], init_sum[parent_code]
+    kept = 1.0 - np.minimum(i_sum, 1.0)
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        from_weight = np.where(w_sum > 0, weight / w_sum * kept, 0.0)
+        part = np.where(i_sum > 0, s_init / i_sum, 0.0)
+        from_init = part * np.where(w_sum > 0, np.minimum(i_sum, 1.0), 1.0)
+    return np.clip(from_weight + from_init, 0.0, 1.0), (weight_sum <= 0) & (init_sum <= 0)
+
+
+def split_case(seed: int, n: int = 400, t: int = 26, n_parents: int = 60):
+    """References (scales summing above 1 on some), initial shares (NaN, an infinity, a negative, above 1 in
+    sum), inactive periods, bases with zeros, -0.0 and a NaN, all-zero parents."""
+    rng = np.random.default_rng(seed)
     parent_code = np.sort(rng.integers(0, n_parents, n))
     rules = ["none", "reference", "initial_share", "awaiting_history", "phase_in"]
     rule = rng.choice(rules, n, p=[0.7, 0.1, 0.1, 0.05, 0.05]).astype(object)
-    ref_pos = np.where(rule == "reference", rng.integers(0, n, n), -1)
-    scale = np.where(rule == "reference", rng.choice([0.5, 1.0, 1.5], n), np.nan)
-    initial = np.where(rule == "initial_share", rng.choice([0.1, 0.6, np.nan], n), np.nan)
+    established = ~np.isin(rule, NEW_CUSTOMER_RULES)
+    # a reference is an established child of the same parent (as `lifecycle_rules` makes them), else none
+    ref_pos = np.full(n, -1)
+    for j in np.flatnonzero(rule == "reference"):
+        mates = np.flatnonzero((parent_code == parent_code[j]) & established)
+        if len(mates):
+            ref_pos[j] = rng.choice(mates)
+        else:
+            rule[j] = "awaiting_history"
+    scale = np.where(rule == "reference", rng.choice([0.5, 1.0, 1.5, 0.3], n), np.nan)
+    initial = np.where(rule == "initial_share", rng.choice([0.1, 0.6, 0.45, np.nan, 1.2], n), np.nan)
+    initial[np.flatnonzero(rule == "initial_share")[:3]] = [np.inf, -0.2, 0.0]
     active = rng.random((n, t)) < 0.85
-    for base in (rng.random(n) * (rng.random(n) < 0.8), rng.random((n, t)) * (rng.random((n, t)) < 0.7)):
-        blocked = split_shares(parent_code, n_parents, base, rule, ref_pos, scale, initial, active)
-        monkeypatch.setattr(lifecycle_shares, "SPLIT_BLOCK", t)
-        whole = split_shares(parent_code, n_parents, base, rule, ref_pos, scale, initial, active)
-        monkeypatch.undo()
-        assert np.array_equal(bits(blocked[0]), bits(whole[0])) and np.array_equal(blocked[1], whole[1])
-        assert blocked[1].any() and not blocked[1].all()
-        assert np.allclose(sums_by(blocked[0], parent_code, n_parents)[~blocked[1]], 1.0)
+    one = rng.random(n) * (rng.random(n) < 0.8) / 3.0
+    per_period = rng.random((n, t)) * (rng.random((n, t)) < 0.7) / 7.0
+    one[:5], per_period[:5, 0] = -0.0, -0.0
+    per_period[7, 3] = np.nan
+    return parent_code, n_parents, rule, ref_pos, scale, initial, active, (one, per_period)
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_split_shares_is_the_whole_array_numpy_split_to_the_bit(seed):
+    parent_code, n_parents, rule, ref_pos, scale, initial, active, bases = split_case(seed)
+    for base in bases:
+        share, all_zero = split_shares(parent_code, n_parents, base, rule, ref_pos, scale, initial, active)
+        expected, expected_zero = numpy_split(parent_code, n_parents, base, rule, ref_pos, scale, initial, active)
+        assert np.array_equal(bits(share), bits(expected)) and np.array_equal(all_zero, expected_zero)
+        assert all_zero.any() and not all_zero.all()
+    # one period with every child active, as the share table asks for its base shares
+    one_period = np.ones((len(rule), 1), dtype=bool)
+    share, _ = split_shares(parent_code, n_parents, bases[0], rule, ref_pos, scale, initial, one_period)
+    expected, _ = numpy_split(parent_code, n_parents, bases[0], rule, ref_pos, scale, initial, one_period)
+    assert np.array_equal(bits(share), bits(expected))
+
+
+def test_the_split_comparison_can_fail():
+    # the same case with the parent sums added in another order, or the initial shares not capped at 1, gives
+    # other bits: so the comparison above can see a kernel that does either
+    parent_code, n_parents, rule, ref_pos, scale, initial, active, (base, _) = split_case(3)
+    expected, _ = numpy_split(parent_code, n_parents, base, rule, ref_pos, scale, initial, active)
+    order = np.arange(len(rule))[::-1]
+    back = np.empty_like(order)
+    back[order] = np.arange(len(order))
+    reversed_sums, _ = numpy_split(
+        parent_code[order], n_parents, base[order], rule[order], back[ref_pos[order]] * (ref_pos[order] >= 0)
+        - (ref_pos[order] < 0), scale[order], initial[order], active[order]
+    )
+    assert not np.array_equal(bits(reversed_sums[back]), bits(expected))
+    uncapped = initial.copy()
+    uncapped[rule == "initial_share"] = 0.9
+    assert not np.array_equal(
+        bits(split_shares(parent_code, n_parents, base, rule, ref_pos, scale, uncapped, active)[0]), bits(expected)
+    )
 
 
 @pytest.mark.parametrize("seed", range(4))
@@ -239,3 +316,65 @@ def test_run_periods_count_each_leafs_distinct_periods(seed):
     i = rows.first[at]
     swapped[i], swapped[i + 2] = swapped[i + 2], swapped[i]
     assert not _run_periods(rows.first, swapped, np.zeros(60, np.int64))
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_share_steps_are_the_changes_between_a_leafs_periods(seed):
+    # reference: numpy's steps from row to row within a leaf's run, |share - share before| > tolerance
+    rng = np.random.default_rng(500 + seed)
+    sizes = rng.integers(1, 9, 300)
+    ids = np.repeat(rng.permutation(400)[:300], sizes).astype(np.int32)
+    when = np.concatenate([np.sort(rng.choice(40, k, replace=False)) for k in sizes]).astype(np.int64)
+    share = rng.choice([0.25, 0.25 + 1e-10, 0.25 + 1e-8, 0.5, 0.0, -0.0, np.nan], len(ids))
+    in_runs, rows = share_steps(ids, when, share, 1e-9, 400)
+    with np.errstate(invalid="ignore"):
+        expected = np.flatnonzero((ids[1:] == ids[:-1]) & (np.abs(np.diff(share)) > 1e-9)) + 1
+    assert in_runs and np.array_equal(rows, expected) and len(rows)
+    assert not np.array_equal(share_steps(ids, when, share, 1e-11, 400)[1], expected)  # the tolerance is read
+    later = ids.copy()
+    later[-1] = ids[0] if ids[-2] != ids[0] else ids[sizes[0]]  # an id's second run
+    assert not share_steps(later, when, share, 1e-9, 400)[0]
+    back = when.copy()
+    at = int(np.flatnonzero(ids[1:] == ids[:-1])[0]) + 1
+    back[at] = back[at - 1] - 1  # a period before the row before, inside a run
+    assert not share_steps(ids, back, share, 1e-9, 400)[0]
+
+
+def test_key_sums_are_bincounts_to_the_bit():
+    rng = np.random.default_rng(9)
+    key = rng.integers(0, 50, 3000) * 2  # odd keys held by no row
+    share = rng.random(3000) * rng.choice([1.0, 1e-9, 1e9, 0.0, -0.0], 3000)
+    share[[3, 70]] = np.nan
+    reason = rng.random(3000) < 0.3
+    share_sum, rows, reasons, nonzero = key_sums(key, share, reason, 100)
+    assert np.array_equal(bits(share_sum), bits(np.bincount(key, weights=share, minlength=100)))
+    assert np.array_equal(rows, np.bincount(key, minlength=100))
+    assert np.array_equal(reasons, np.bincount(key, weights=reason, minlength=100))
+    assert np.array_equal(nonzero, np.bincount(key, weights=share != 0, minlength=100))
+    order = np.argsort(key, kind="stable")[::-1]  # each key's rows added the other way round: other bits
+    assert not np.array_equal(bits(share_sum), bits(key_sums(key[order], share[order], reason, 100)[0]))
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_week_runs_are_the_ages_counts_and_run_periods(seed):
+    # reference: `_week_ages` (tested above against numpy), age >= 1 outside the shortage rows, `_run_periods`
+    leaf, ns, qty = history(seed, 60)
+    short = np.random.default_rng(600 + seed).random(len(leaf)) < 0.1
+    first = np.searchsorted(leaf, np.arange(61, dtype=leaf.dtype))
+    age, counts, periods = np.empty(len(leaf), np.int32), np.empty(len(leaf), bool), np.zeros(60, np.int64)
+    assert _week_runs(ns, CYCLE_ORD, first, short, age, counts, periods) == (True, True)
+    expected_age = np.empty(len(leaf), np.int32)
+    assert _week_ages(ns, CYCLE_ORD, expected_age)
+    expected_periods = np.zeros(60, np.int64)
+    assert _run_periods(first, expected_age, expected_periods)
+    assert np.array_equal(age, expected_age) and np.array_equal(periods, expected_periods)
+    assert np.array_equal(counts, (expected_age >= 1) & ~short) and not counts.all() and counts.any()
+    _week_runs(ns, CYCLE_ORD, first, np.zeros(0, bool), age, counts, periods)  # no shortage rows
+    assert np.array_equal(counts, expected_age >= 1)
+    back = ns.copy()
+    two = first[:-1][(np.diff(first) > 2)] + 1  # a run's second row, with a third after it
+    at = int(two[reference_ages(ns[two]) != reference_ages(ns[two + 1])][0])
+    back[at], back[at + 1] = ns[at + 1], ns[at]  # two of a run's weeks swapped: an age rises inside the run
+    assert _week_runs(back, CYCLE_ORD, first, short, age, counts, periods) == (True, False)
+    back[3] = np.iinfo(np.int64).min
+    assert not _week_runs(back, CYCLE_ORD, first, short, age, counts, periods)[0]

@@ -81,8 +81,8 @@ def own_periods(
     c = keys if keys is not None else coded(history)
     leaves = c.leaves
     if rows is not None and rows.first is not None:  # sorted by leaf id: each leaf's rows from its first
-        count = np.zeros(len(leaves), dtype=np.int64)
-        if _run_periods(rows.first, rows.age, count):  # in period order within each leaf
+        count = rows.periods if rows.periods is not None else np.zeros(len(leaves), dtype=np.int64)
+        if rows.periods is not None or _run_periods(rows.first, rows.age, count):  # in period order in each leaf
             pos = lookup(children, LEAF, leaves)
             return np.where(pos >= 0, count[np.clip(pos, 0, None)], 0).astype(np.int64)
     code = c.leaf

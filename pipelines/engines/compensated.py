@@ -5,7 +5,8 @@ pandas sums a group's float64 values in row order with Kahan's compensation
 t = sum + y; c = (t - sum) - y; c reset to 0 where it is NaN, as after an
 infinite value; NaN values skipped by the caller). The compiled passes over
 rows that replace a `groupby(...).sum()` (the report's chart sums, the
-lifecycle's sums per origin and audit rows, the plan's totals per measure) call this step,
+lifecycle's sums per origin and audit rows, the plan's totals per measure, the
+reconciliation's leaf sums per parent period) call this step,
 so the one piece of arithmetic they must share is written once.
 """
 
@@ -42,3 +43,14 @@ def group_sizes_and_sums(group, values, n_groups):
         if values[i] == values[i]:
             total[g], comp[g] = compensated_add(total[g], comp[g], values[i])
     return rows, total, first
+
+
+def first_appearance_sums(key, n_keys, values):
+    """(first, sums, rows): the groups of `key` (0..n_keys-1) numbered by first appearance, as `pd.factorize`
+    numbers them; each group's first row, its `values` summed as pandas' `groupby(..., sort=False).sum()` sums
+    float64 (in row order, `compensated_add`, NaN left out, 0.0 for none), and its rows (NaN ones too): the one
+    pass of `group_sizes_and_sums`, its groups put in the order of their first rows."""
+    rows, total, first = group_sizes_and_sums(key, values, n_keys)
+    held = np.flatnonzero(first >= 0)
+    order = held[np.argsort(first[held], kind="stable")]
+    return first[order], total[order], rows[order]

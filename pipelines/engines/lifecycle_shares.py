@@ -43,6 +43,7 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
+from numba import njit
 
 from pipelines.calendar import horizon_starts
 from pipelines.engines.share_settings import ShareSettings
@@ -51,23 +52,37 @@ from pipelines.vocabulary import NEW_CUSTOMER_RULES
 
 
 def sums_by(values: np.ndarray, code: np.ndarray, n: int) -> np.ndarray:
-    """(n, T): the rows of `values` (m, T) summed per `code` (m,) in 0..n-1, rows in order: the sums of
-    `np.add.at(out, code, values)` on zeros, a column at a time by bincount (far faster)."""
-    out = np.empty((values.shape[1], n))
-    for col in range(values.shape[1]):  # the horizon's periods, not the series
-        out[col] = np.bincount(code, weights=values[:, col], minlength=n)
-    return out.T
+    """(n, T): the rows of `values` (m, T) summed per `code` (m,) in 0..n-1, rows in order from 0.0: the sums of
+    `np.add.at(out, code, values)` on zeros (and of a bincount per column), in one compiled pass (`_sums_by`)."""
+    return _sums_by(np.asarray(values, dtype=float), np.asarray(code, dtype=np.int64), int(n))
 
 
-def counts_by(flags: np.ndarray, code: np.ndarray, n: int) -> np.ndarray:
-    """(n, T) bool: any row of each `code` True in the column (`np.logical_or.at` on False, by bincount)."""
-    out = np.empty((flags.shape[1], n), dtype=bool)
-    for col in range(flags.shape[1]):
-        out[col] = np.bincount(code[flags[:, col]], minlength=n) > 0
-    return out.T
+@njit(cache=True)
+def _sums_by(values, code, n):
+    out = np.zeros((n, values.shape[1]))
+    for j in range(values.shape[0]):
+        row = out[code[j]]
+        for col in range(values.shape[1]):
+            row[col] += values[j, col]
+    return out
 
 
-SPLIT_BLOCK = 4  # horizon periods split at a time
+def counts_by(flags: np.ndarray, code: np.ndarray, n: int, keep: np.ndarray | None = None) -> np.ndarray:
+    """(n, T) bool: any row of each `code` True in the column (`np.logical_or.at` on False), over the rows with
+    `keep` (m,) True only (None: every row); one compiled pass (`_any_by`), no masked copy of `flags`."""
+    keep = np.ones(len(code), dtype=bool) if keep is None else np.asarray(keep, dtype=bool)
+    return _any_by(np.asarray(flags, dtype=bool), np.asarray(code, dtype=np.int64), int(n), keep)
+
+
+@njit(cache=True)
+def _any_by(flags, code, n, keep):
+    out = np.zeros((n, flags.shape[1]), dtype=np.bool_)
+    for j in range(flags.shape[0]):
+        if keep[j]:
+            row = out[code[j]]
+            for col in range(flags.shape[1]):
+                row[col] |= flags[j, col]
+    return out
 
 
 def split_shares(
@@ -92,62 +107,107 @@ def split_shares(
 
     Returns (shares (n, T), all_zero (n_parents, T)): shares sum to 1 per parent
     and period, except where all_zero (no active child holds any weight).
+
+    One compiled pass per period (`_split_periods`) doing numpy's arithmetic step by step: the same bits as the
+    whole-array form (the parent sums in row order from 0.0, as bincount; numpy's maximum, minimum, clip and
+    nan_to_num on signed zeros and NaN), without a dozen (children x periods) temporaries.
     """
-    n, t = active.shape
+    n = active.shape[0]
     base = np.asarray(history_share, dtype=float)
-    masks = np.isin(rule, NEW_CUSTOMER_RULES), rule == "reference", rule == "initial_share"
-    if t <= SPLIT_BLOCK:
-        return _split_block(parent_code, n_parents, base, masks, ref_pos, scale, initial_share, active)
-    # every step is per period, so a block of periods at a time gives the same numbers with temporaries of
-    # the block's width (the reinitialized target's split: a dozen (children x horizon) arrays otherwise)
-    shares, all_zero = np.empty((n, t)), np.empty((n_parents, t), dtype=bool)
-    for lo in range(0, t, SPLIT_BLOCK):
-        cols = slice(lo, lo + SPLIT_BLOCK)
-        shares[:, cols], all_zero[:, cols] = _split_block(
-            parent_code, n_parents, base[:, cols] if base.ndim == 2 else base, masks, ref_pos, scale,
-            initial_share, active[:, cols]
-        )
-    return shares, all_zero
+    base = base.reshape(n, -1) if base.ndim == 2 else base.reshape(n, 1)
+    return _split_periods(
+        np.asarray(parent_code, dtype=np.int64),
+        int(n_parents),
+        base,
+        np.isin(rule, NEW_CUSTOMER_RULES),
+        np.flatnonzero(rule == "reference"),
+        rule == "initial_share",
+        np.asarray(ref_pos, dtype=np.int64),
+        np.asarray(scale, dtype=float),
+        np.asarray(initial_share, dtype=float),
+        np.asarray(active, dtype=bool),
+    )
 
 
-def _split_block(parent_code, n_parents, base, masks, ref_pos, scale, initial_share, active):
-    """`split_shares` over the periods of `active` (n, T): base (n,) or (n, T), masks: new, reference and
-    initial-share rows."""
+@njit(cache=True)
+def _split_periods(parent_code, n_parents, base, new, refs, is_init, ref_pos, scale, initial_share, active):
+    """`split_shares`, period by period. base (n, 1) or (n, T); refs: the rows of rule `reference`, ascending.
+
+    In numpy's terms, per period (act = active as 0.0 / 1.0; every sum over rows in order from 0.0):
+    p = where(new, 0, base); asked[ref] += scale * act over the references' rows; cut = 1 / asked where above
+    1, else 1; take = scale * p[ref] * cut * act; given[ref] += take; weight = maximum(p - given, 0) * act *
+    (not new) + take; init = nan_to_num(initial_share) * act on the initial-share rows, else 0; W, I: their
+    sums per parent; share = clip(where(W > 0, weight / W * (1 - minimum(I, 1)), 0) + where(I > 0, init / I,
+    0) * where(W > 0, minimum(I, 1), 1), 0, 1); all_zero = (W <= 0) & (I <= 0)."""
     n, t = active.shape
-    act = active.astype(float)
-    new, is_ref, is_init = masks
-    p = np.where(new[:, None], 0.0, base if base.ndim == 2 else base[:, None])  # (n, T) or (n, 1)
-    r = np.flatnonzero(is_ref)  # the few new customers with a reference: their rows only
-    ref, k = ref_pos[r], scale[r]
-    # what the active new customers ask of each reference, as a multiple of its share
-    asked = np.zeros((n, t))
-    np.add.at(asked, ref, k[:, None] * act[r])
-    at_ref = asked[ref]
-    cut = np.where(at_ref > 1.0, 1.0 / np.where(at_ref > 1.0, at_ref, 1.0), 1.0)
-    take = np.zeros((n, t))
-    take[r] = k[:, None] * p[ref] * cut * act[r]
-    given = np.zeros((n, t))
-    np.add.at(given, ref, take[r])
-    weight = np.clip(p - given, 0.0, None) * act * (~new)[:, None] + take
-    s_init = np.where(is_init[:, None], np.nan_to_num(initial_share)[:, None] * act, 0.0)
-
-    weight_sum = sums_by(weight, parent_code, n_parents)
-    init_sum = sums_by(s_init, parent_code, n_parents)
-    w_sum, i_sum = weight_sum[parent_code], init_sum[parent_code]
-    kept = 1.0 - np.minimum(i_sum, 1.0)  # what the initial shares leave to the others
-    with np.errstate(invalid="ignore", divide="ignore"):
-        from_weight = np.where(w_sum > 0, weight / w_sum * kept, 0.0)
-        # each initial share's part of the initial total (<= 1), times what the total may take:
-        # min(S, 1) beside weighted children, all of it when there are none
-        part = np.where(i_sum > 0, s_init / i_sum, 0.0)
-        from_init = part * np.where(w_sum > 0, np.minimum(i_sum, 1.0), 1.0)
-    shares = np.clip(from_weight + from_init, 0.0, 1.0)
-    all_zero = (weight_sum <= 0) & (init_sum <= 0)
+    per_period = base.shape[1] > 1
+    big = 1.7976931348623157e308  # nan_to_num's stand-in for an infinity
+    shares = np.empty((n, t))
+    all_zero = np.empty((n_parents, t), dtype=np.bool_)
+    init = np.zeros(n)
+    for j in range(n):  # nan_to_num(initial_share)
+        v = initial_share[j]
+        init[j] = 0.0 if np.isnan(v) else (big if v == np.inf else (-big if v == -np.inf else v))
+    p = np.zeros(n)
+    asked = np.zeros(n)
+    take = np.zeros(n)
+    given = np.zeros(n)
+    weight = np.zeros(n)
+    s_init = np.zeros(n)
+    w_sum = np.zeros(n_parents)
+    i_sum = np.zeros(n_parents)
+    for col in range(t):
+        b = col if per_period else 0
+        for j in range(n):
+            p[j] = 0.0 if new[j] else base[j, b]
+        for r in refs:
+            asked[ref_pos[r]] = 0.0
+            given[ref_pos[r]] = 0.0
+        for r in refs:
+            asked[ref_pos[r]] += scale[r] * (1.0 if active[r, col] else 0.0)
+        for r in refs:
+            at = asked[ref_pos[r]]
+            cut = 1.0 / at if at > 1.0 else 1.0
+            take[r] = scale[r] * p[ref_pos[r]] * cut * (1.0 if active[r, col] else 0.0)
+        for r in refs:
+            given[ref_pos[r]] += take[r]
+        w_sum[:] = 0.0
+        i_sum[:] = 0.0
+        for j in range(n):
+            act = 1.0 if active[j, col] else 0.0
+            free = p[j] - given[j]
+            if not np.isnan(free) and not free > 0.0:  # numpy's maximum(free, 0.0): 0.0 also for -0.0
+                free = 0.0
+            weight[j] = free * act * (0.0 if new[j] else 1.0) + take[j]
+            s_init[j] = init[j] * act if is_init[j] else 0.0
+            w_sum[parent_code[j]] += weight[j]
+            i_sum[parent_code[j]] += s_init[j]
+        for j in range(n):
+            w, i = w_sum[parent_code[j]], i_sum[parent_code[j]]
+            capped = i if (np.isnan(i) or i < 1.0) else 1.0  # numpy's minimum(i, 1.0)
+            from_weight = weight[j] / w * (1.0 - capped) if w > 0 else 0.0
+            part = s_init[j] / i if i > 0 else 0.0
+            share = from_weight + part * (capped if w > 0 else 1.0)
+            if share < 0.0:  # numpy's clip(share, 0, 1): NaN and -0.0 kept
+                share = 0.0
+            elif share > 1.0:
+                share = 1.0
+            shares[j, col] = share
+        for k in range(n_parents):
+            all_zero[k, col] = w_sum[k] <= 0 and i_sum[k] <= 0
     return shares, all_zero
 
 
-def lifecycle_rules(children: pd.DataFrame, established: np.ndarray, settings: ShareSettings, cycle_date: pd.Timestamp):
-    """(rule, ref_pos, scale, initial_share, detail) per child; see the module docstring."""
+def lifecycle_rules(
+    children: pd.DataFrame,
+    established: np.ndarray,
+    settings: ShareSettings,
+    cycle_date: pd.Timestamp,
+    parent_code: np.ndarray | None = None,
+):
+    """(rule, ref_pos, scale, initial_share, detail) per child; see the module docstring. parent_code: each
+    child's parent (`factorize(children, PARENT)`), when the caller has it: a reference customer is then looked
+    for among its own parent's children only."""
     n_min = settings.min_history_periods
     starts = horizon_starts(cycle_date, settings.horizon, settings.period)
     new = ~established
@@ -156,7 +216,7 @@ def lifecycle_rules(children: pd.DataFrame, established: np.ndarray, settings: S
     asks = np.flatnonzero(has_ref)  # only a new customer's reference is looked up (-1 elsewhere)
     ref_pos = np.full(len(children), -1, dtype=np.int64)
     ref_key = children[PARENT].iloc[asks].assign(customer=reference.to_numpy()[asks])
-    ref_pos[asks] = lookup(ref_key, LEAF, children)
+    ref_pos[asks] = _positions_among_parent(ref_key, children, parent_code, asks)
     ref_ok = has_ref & (ref_pos >= 0) & established[np.clip(ref_pos, 0, None)]
     has_init = new & ~ref_ok & children["initial_share"].notna().to_numpy()
     awaiting = new & ~ref_ok & ~has_init
@@ -210,13 +270,25 @@ def lifecycle_rules(children: pd.DataFrame, established: np.ndarray, settings: S
     return rule, ref_pos, scale, initial, detail.to_numpy(object)
 
 
-def reference_positions(shares: pd.DataFrame) -> np.ndarray:
-    """Row of each `reference` row's reference customer in the same table (-1 elsewhere)."""
+def reference_positions(shares: pd.DataFrame, parent_code: np.ndarray | None = None) -> np.ndarray:
+    """Row of each `reference` row's reference customer in the same table (-1 elsewhere). parent_code: each
+    row's parent (`factorize(shares, PARENT)`), when the caller has it: a reference is then looked for among the
+    children of its own parent only (its key holds that parent's), not among every row's keys."""
     rows = np.flatnonzero(shares["lifecycle_rule"].to_numpy() == "reference")  # only theirs looked up
     key = shares[PARENT].iloc[rows].assign(customer=shares["reference_customer"].fillna("").to_numpy()[rows])
     pos = np.full(len(shares), -1, dtype=np.int64)
-    pos[rows] = lookup(key, LEAF, shares)
+    pos[rows] = _positions_among_parent(key, shares, parent_code, rows)
     return pos
+
+
+def _positions_among_parent(key: pd.DataFrame, table: pd.DataFrame, parent_code, rows: np.ndarray) -> np.ndarray:
+    """`lookup(key, LEAF, table)` for keys that name a customer of the parent of table's `rows` (one per key):
+    looked for among the rows of those parents only where `parent_code` (each table row's parent) is given."""
+    if parent_code is None:
+        return lookup(key, LEAF, table)
+    among = np.flatnonzero(np.isin(parent_code, parent_code[rows]))
+    found = lookup(key, LEAF, table.iloc[among])
+    return np.where(found >= 0, among[found], -1)
 
 
 def new_customers(shares: pd.DataFrame) -> pd.DataFrame:

@@ -38,6 +38,7 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
+from numba import njit
 
 from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal, season_length, span_bounds
 from pipelines.engines.base_forecasts import base_forecasts
@@ -269,14 +270,14 @@ def period_shares(
         n_parents,
         weight,
         rule,
-        reference_positions(shares),
+        reference_positions(shares, parent_code),
         shares["scale"].to_numpy(float),
         shares["initial_share"].to_numpy(float),
         active,
     )
 
     any_active = counts_by(active, parent_code, n_parents)
-    non_waiting = counts_by(active & (rule != "awaiting_history")[:, None], parent_code, n_parents)
+    non_waiting = counts_by(active, parent_code, n_parents, keep=rule != "awaiting_history")
     product_active = np.ones_like(any_active)
     if products is not None:
         p_from, p_to = span_bounds(products, period)
@@ -324,3 +325,27 @@ def stored_basis(shares: pd.DataFrame, table: pd.DataFrame, starts: pd.DatetimeI
     weight[row[ok], col[ok]] = table["weight"].to_numpy(float)[ok]
     label[row[ok], col[ok]] = table["basis"].to_numpy(object)[ok]
     return weight, label
+
+
+@njit(cache=True)
+def share_steps(ids, when, share, tolerance, n_ids):
+    """(in_runs, rows): where each id's rows are one run with `when` not decreasing inside it, the rows whose
+    share differs from the row before of the same id by more than `tolerance` (|a - b| > tolerance; NaN never
+    does), ascending; else (False, -). ids: 0..n_ids-1. One pass over the rows."""
+    n = len(ids)
+    rows = np.empty(n, dtype=np.int64)
+    seen = np.zeros(n_ids, dtype=np.bool_)
+    k = 0
+    if n:
+        seen[ids[0]] = True
+    for i in range(1, n):
+        if ids[i] != ids[i - 1]:
+            if seen[ids[i]]:  # a second run of the same id
+                return False, rows[:0]
+            seen[ids[i]] = True
+        elif when[i] < when[i - 1]:
+            return False, rows[:0]
+        elif abs(share[i] - share[i - 1]) > tolerance:
+            rows[k] = i
+            k += 1
+    return True, rows[:k].copy()

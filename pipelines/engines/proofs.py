@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
+from numba import njit
 
 from pipelines.calendar import period_ordinal, span_bounds
 from pipelines.checks import SHARE_TOLERANCE
@@ -17,7 +18,9 @@ from pipelines.keys import LEAF, PARENT, PARENT_ID, any_blank, factorize, ids_in
 from pipelines.text_codes import run_starts
 
 
-def find_shares_not_summing_to_one(target: pd.DataFrame, tolerance: float = SHARE_TOLERANCE) -> pd.DataFrame:
+def find_shares_not_summing_to_one(
+    target: pd.DataFrame, tolerance: float = SHARE_TOLERANCE, codes: tuple[np.ndarray, np.ndarray] | None = None
+) -> pd.DataFrame:
     """Parent periods whose shares neither sum to 1 nor are all 0 with a recorded reason.
 
     target: per-period shares (`reinitialized_target`: parent keys, period_start,
@@ -27,9 +30,11 @@ def find_shares_not_summing_to_one(target: pd.DataFrame, tolerance: float = SHAR
     The parent periods are first judged on integers (bincount over the rank of the parent key and the period);
     only those not clearly passing (a sum off 1 by more than half the tolerance, or a reason missing) are
     judged again below, on their own rows, so the rows named and their sums are those of the whole table.
+    codes: (each row's parent id x the periods + its period's code in order of first appearance, each row has a
+    reason) of this table, when the caller has them (`reinitialized_target.parent_period_codes`).
     """
     if len(target) and ids_in(target, (PARENT_ID,)):
-        rows, position = _parent_periods_in_doubt(target, tolerance, by_id=True)  # none in doubt: no key order
+        rows, position = _parent_periods_in_doubt(target, tolerance, by_id=True, codes=codes)  # none: no key order
         if position is None:
             rows, position = _parent_periods_in_doubt(target, tolerance)
         out = _shares_not_summing_to_one(target.iloc[rows], tolerance)
@@ -69,33 +74,49 @@ def _shares_not_summing_to_one(target: pd.DataFrame, tolerance: float) -> pd.Dat
 
 
 def _parent_periods_in_doubt(
-    target: pd.DataFrame, tolerance: float, by_id: bool = False
+    target: pd.DataFrame, tolerance: float, by_id: bool = False, codes: tuple[np.ndarray, np.ndarray] | None = None
 ) -> tuple[np.ndarray, np.ndarray | None]:
     """(positions of the rows of the parent periods that do not clearly pass `find_shares_not_summing_to_one`,
     the row number of each of those parent periods, in key order, among all the table's parent periods).
 
     With none in doubt the rows of the first row's parent period are given, so the judgement below keeps its
     columns. by_id: the groups numbered by parent id, not in key order (the same groups and sums), and with any
-    in doubt no row numbers (None): those need the key order.
+    in doubt no row numbers (None): those need the key order. codes: by_id's (key, has_reason) when the caller
+    has them.
     """
-    # the groups of the text parent key, in its order, as below (or by id)
-    rank = target[PARENT_ID].to_numpy(np.int64) if by_id else key_rank(target, PARENT)
-    when, periods = pd.factorize(target["period_start"].to_numpy(), sort=not by_id)
-    key = rank * len(periods) + when  # (parent key, period) in key order
-    present = np.zeros(int(key.max()) + 1, dtype=bool)
-    present[key] = True
-    number = np.cumsum(present) - 1  # each parent period's row number in key order
-    group = number[key]
-    n = int(number[-1]) + 1
-    has_reason = np.bincount(group, weights=target["zero_reason"].notna().to_numpy(), minlength=n)
-    share = target["share"].to_numpy(float)
+    if by_id and codes is not None:
+        key, reason = codes
+    else:  # the groups of the text parent key, in its order, as below (or by id)
+        rank = target[PARENT_ID].to_numpy(np.int64) if by_id else key_rank(target, PARENT)
+        when, periods = pd.factorize(target["period_start"].to_numpy(), sort=not by_id)
+        key = rank * len(periods) + when  # (parent key, period) in key order
+        reason = target["zero_reason"].notna().to_numpy()
+    # per key (parent period): its share sum (rows in order from 0.0, as bincount), rows, reasons, non-zero shares
+    share_sum, rows, reasons, nonzero = key_sums(key, target["share"].to_numpy(float), reason, int(key.max()) + 1)
     with np.errstate(invalid="ignore"):
-        passes = (np.abs(np.bincount(group, weights=share, minlength=n) - 1.0) <= tolerance / 2) & (has_reason == 0)
-    zero = (np.bincount(group, weights=share != 0, minlength=n) == 0) & (has_reason == np.bincount(group, minlength=n))
-    doubt = ~(passes | zero)
+        passes = (np.abs(share_sum - 1.0) <= tolerance / 2) & (reasons == 0)
+    doubt = ~(passes | ((nonzero == 0) & (reasons == rows))) & (rows > 0)  # keys no row holds: not in doubt
     if not doubt.any():
-        return np.flatnonzero(group == group[0]), np.zeros(1, np.int64)
-    return np.flatnonzero(doubt[group]), None if by_id else np.flatnonzero(doubt)
+        return np.flatnonzero(key == key[0]), np.zeros(1, np.int64)
+    # each parent period's row number in key order: its place among the keys some row holds
+    return np.flatnonzero(doubt[key]), None if by_id else np.flatnonzero(doubt[rows > 0])
+
+
+@njit(cache=True)
+def key_sums(key, share, reason, n_keys):
+    """(share sum, rows, rows with a reason, rows with a share other than 0 (NaN counts)) per key 0..n_keys-1,
+    in one pass; each sum adds its rows' shares in row order from 0.0 (`np.bincount` with weights)."""
+    share_sum = np.zeros(n_keys)
+    rows = np.zeros(n_keys, dtype=np.int64)
+    reasons = np.zeros(n_keys, dtype=np.int64)
+    nonzero = np.zeros(n_keys, dtype=np.int64)
+    for i in range(len(key)):
+        k = key[i]
+        share_sum[k] += share[i]
+        rows[k] += 1
+        reasons[k] += reason[i]
+        nonzero[k] += share[i] != 0.0
+    return share_sum, rows, reasons, nonzero
 
 
 def find_volume_after_phase_out(

@@ -82,6 +82,7 @@ class ShareRows:
     n_leaves: int
     exclude_shortages: bool
     first: np.ndarray | None  # rows sorted by leaf id: first row of each leaf id 0..n_leaves (the last: len)
+    periods: np.ndarray | None = None  # each leaf id's distinct ages (`_run_periods`), where made with the ages
 
     def child_leaves(self, keys: Coded, children: pd.DataFrame) -> np.ndarray:
         """Each child's leaf id in the history (-1: a child without history)."""
@@ -94,15 +95,61 @@ def share_rows(
     """The history's `ShareRows` at the cycle ordinal; short: `shortage_periods(history, exclude_shortages)`."""
     leaf = keys.leaf_ids
     n_leaves = len(keys.leaves)
-    age = period_ages(history["period_start"], period, cycle_ord)
-    counts = age >= 1
-    if short is not None and short.any():
-        counts &= ~short
     first = None
     if len(leaf) and bool(np.all(leaf[1:] >= leaf[:-1])):
         # the ids searched in the leaf ids' own type: a wider one would convert the history's ids first
         first = np.searchsorted(leaf, np.arange(n_leaves + 1, dtype=leaf.dtype))
-    return ShareRows(leaf, age, history["quantity"].to_numpy(float), counts, n_leaves, exclude_shortages, first)
+    short = short if short is not None and short.any() else None
+    qty = history["quantity"].to_numpy(float)
+    starts = history["period_start"].to_numpy()
+    if first is not None and period == "week" and starts.dtype == "datetime64[ns]":
+        # weekly rows sorted by leaf id: the ages, the rows that count and each leaf's periods in one pass
+        age, counts = np.empty(len(leaf), dtype=np.int32), np.empty(len(leaf), dtype=bool)
+        periods = np.zeros(n_leaves, dtype=np.int64)
+        no_short = np.zeros(0, dtype=bool)
+        done, in_order = _week_runs(
+            starts.view(np.int64), cycle_ord, first, no_short if short is None else short, age, counts, periods
+        )
+        if done:
+            return ShareRows(
+                leaf, age, qty, counts, n_leaves, exclude_shortages, first, periods if in_order else None
+            )
+    age = period_ages(history["period_start"], period, cycle_ord)
+    counts = age >= 1
+    if short is not None:
+        counts &= ~short
+    return ShareRows(leaf, age, qty, counts, n_leaves, exclude_shortages, first)
+
+
+@njit(cache=True)
+def _week_runs(ns, cycle_ord, first, short, age, counts, periods):
+    """Over the leaf runs first[l] .. first[l + 1] (rows sorted by leaf id, every row in one): age[i] as
+    `_week_ages` makes it, counts[i] = age >= 1 and not short[i] (short empty: none), periods[l] as
+    `_run_periods` counts them. (False, -) at the first NaT; (True, False) where an age rises inside a run
+    (periods incomplete: the caller counts them another way)."""
+    before = NAT
+    a = 0
+    in_order = True
+    with_short = len(short) > 0
+    for at in range(len(first) - 1):
+        n = 0
+        for i in range(first[at], first[at + 1]):
+            value = ns[i]
+            if value == NAT:
+                return False, False
+            if before != NAT and value - before == WEEK_NS:
+                a -= 1
+            else:
+                a = cycle_ord - (value - EPOCH_MONDAY_NS) // WEEK_NS
+            age[i] = a
+            before = value
+            counts[i] = a >= 1 and not (with_short and short[i])
+            if i == first[at] or age[i] < age[i - 1]:
+                n += 1
+            elif age[i] > age[i - 1]:
+                in_order = False
+        periods[at] = n
+    return True, in_order
 
 
 def history_rows(history: pd.DataFrame, keys: Coded, settings: ShareSettings, cycle_date: pd.Timestamp) -> ShareRows:
@@ -158,15 +205,15 @@ def child_sums(rows: ShareRows, leaves: np.ndarray | None, window, leaf_of_child
     0 for a leaf whose rows never count), among the leaves marked True in `leaves` (bool, n_leaves; None:
     every leaf): the rows outside add 0.0. A child without history (-1) gets 0.0.
 
-    Summed per leaf in row order by a compiled pass: over the marked leaves' runs where the rows are sorted by
-    leaf id (`first`), else over every row."""
+    Summed per leaf in row order by a compiled pass: over the marked leaves' runs (every leaf with a window
+    above 0 when none are marked) where the rows are sorted by leaf id (`first`), else over every row."""
     n = rows.n_leaves
     if np.ndim(window) == 0:
         window = np.full(n, window, dtype=np.int32) if leaves is None else np.where(leaves, window, 0).astype(np.int32)
     elif leaves is not None:
         window = np.where(leaves, window, 0).astype(np.int32)
-    if leaves is not None and rows.first is not None:
-        ids = np.flatnonzero(leaves)
+    if rows.first is not None:  # a window of 0 counts no row (they count from age 1)
+        ids = np.flatnonzero(leaves if leaves is not None else window > 0)
         per_leaf = _run_window_sums(rows.first, ids, rows.age, rows.qty, rows.counts, window, n)
     else:
         per_leaf = _row_window_sums(rows.leaf, rows.age, rows.qty, rows.counts, window, n)

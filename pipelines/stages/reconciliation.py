@@ -29,6 +29,7 @@ import numpy as np
 import pandas as pd
 
 from pipelines.checks import CHILDREN_SUM_TO_PARENT, EVERY_ACTIVE_PARENT_HAS_CHILDREN, RELATIVE_TOLERANCE
+from pipelines.engines.compensated import first_appearance_sums
 from pipelines.engines.proofs import find_active_parents_without_children
 from pipelines.errors import PlanningError
 from pipelines.keys import PARENT, PARENT_ID, any_blank, first_rows, ids_in
@@ -98,14 +99,22 @@ def _leaf_sums(leaf: pd.DataFrame) -> pd.DataFrame:
     row."""
     when, _ = pd.factorize(leaf["period_start"].to_numpy())
     periods = int(when.max()) + 1 if len(when) else 1  # a shard's empty forecast: no rows, no groups
-    group, _ = pd.factorize(leaf[PARENT_ID].to_numpy().astype(np.int64) * periods + when)
-    first = first_rows(group)
+    key = leaf[PARENT_ID].to_numpy().astype(np.int64) * periods + when
+    forecast = leaf["forecast"]
+    if forecast.dtype == np.float64:  # groups, first rows, pandas' sums and the counts in one compiled pass
+        first, children_sum, children = first_appearance_sums(key, int(key.max()) + 1 if len(key) else 0,
+                                                              forecast.to_numpy())
+    else:
+        group, _ = pd.factorize(key)
+        first = first_rows(group)
+        children_sum = forecast.groupby(group, sort=False).sum().to_numpy()
+        children = np.bincount(group, minlength=len(first)).astype(np.int64)
     out = {c: leaf[c].to_numpy()[first] for c in (PARENT_ID, "period_start")}
     out["leaf_cycle_date"] = leaf["cycle_date"].to_numpy()[first]
     for c in PARENT:
         out[f"leaf_{c}"] = leaf[c].to_numpy()[first]
-    out["children_sum"] = leaf["forecast"].groupby(group, sort=False).sum().to_numpy()
-    out["children"] = np.bincount(group, minlength=len(first)).astype(np.int64)
+    out["children_sum"] = children_sum
+    out["children"] = children
     return pd.DataFrame(out)
 
 

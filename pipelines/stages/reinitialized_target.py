@@ -46,7 +46,7 @@ import pandas as pd
 
 from pipelines.calendar import horizon_starts, period_ordinal
 from pipelines.checks import SHARES_SUM_TO_ONE
-from pipelines.engines.period_shares import period_shares, stored_basis
+from pipelines.engines.period_shares import period_shares, share_steps, stored_basis
 from pipelines.engines.proofs import find_shares_not_summing_to_one
 from pipelines.engines.share_rows import bin_window_volumes, period_ages, shortage_periods
 from pipelines.engines.share_settings import ShareSettings
@@ -137,12 +137,18 @@ def reinitialize_target(
     return pd.DataFrame(out, copy=False)
 
 
-def parents_with_mix_change(target: pd.DataFrame, shares: pd.DataFrame, tolerance: float = 1e-9) -> pd.DataFrame:
+def parents_with_mix_change(
+    target: pd.DataFrame,
+    shares: pd.DataFrame,
+    tolerance: float = 1e-9,
+    codes: tuple[np.ndarray, np.ndarray] | None = None,
+) -> pd.DataFrame:
     """Parents whose children's shares change inside the horizon, with when and who.
 
     Columns: product, site, first_change (first period whose shares differ from
     the period before), periods_with_change, phasing_in, phasing_out (customers
-    whose share starts or stops inside the horizon), zero_periods.
+    whose share starts or stops inside the horizon), zero_periods. codes: `parent_period_codes(target)`, when
+    the caller has them.
     """
     if target.empty:
         return pd.DataFrame(
@@ -150,20 +156,19 @@ def parents_with_mix_change(target: pd.DataFrame, shares: pd.DataFrame, toleranc
         )
     # each leaf's share against its previous period, on integers: the rows in (leaf key, period) order
     when = target["period_start"].to_numpy().view(np.int64)
-    same_leaf, order = _leaf_runs(target, when), None
-    if same_leaf is None:
-        leaf = key_rank(target, LEAF)
+    share = target["share"].to_numpy(float)
+    rows = _changes_in_leaf_runs(target, when, share, tolerance)
+    if rows is None:
+        leaf, order = key_rank(target, LEAF), None
         step_leaf, step_when = np.diff(leaf), np.diff(when)
         if not bool(np.all((step_leaf > 0) | ((step_leaf == 0) & (step_when >= 0)))):
             order = np.lexsort((when, leaf))  # stable, as a sort by leaf then period
             step_leaf = np.diff(leaf[order])
-        same_leaf = step_leaf == 0
-    share = target["share"].to_numpy(float)
-    share = share if order is None else share[order]
-    with np.errstate(invalid="ignore"):
-        changed = same_leaf & (np.abs(share[1:] - share[:-1]) > tolerance)
-    rows = np.flatnonzero(changed) + 1
-    rows = rows if order is None else order[rows]
+        share = share if order is None else share[order]
+        with np.errstate(invalid="ignore"):
+            changed = (step_leaf == 0) & (np.abs(share[1:] - share[:-1]) > tolerance)
+        rows = np.flatnonzero(changed) + 1
+        rows = rows if order is None else order[rows]
     change = target.iloc[np.sort(rows)][PARENT + ["period_start"]].drop_duplicates()
     per_parent = change.groupby(PARENT, sort=True).agg(
         first_change=("period_start", "min"), periods_with_change=("period_start", "size")
@@ -181,37 +186,49 @@ def parents_with_mix_change(target: pd.DataFrame, shares: pd.DataFrame, toleranc
 
     in_ = customers((shares["first_active_period"] > start) & (shares["lifecycle_rule"] != "awaiting_history"))
     out_ = customers(shares["last_active_period"] < end)
-    zero = target.iloc[first_parent_periods(target, zero_only=True)][PARENT].groupby(PARENT).size()
+    zero = target.iloc[first_parent_periods(target, zero_only=True, codes=codes)][PARENT].groupby(PARENT).size()
     per_parent["phasing_in"] = in_.reindex(per_parent.index).fillna("")
     per_parent["phasing_out"] = out_.reindex(per_parent.index).fillna("")
     per_parent["zero_periods"] = zero.reindex(per_parent.index).fillna(0).astype(np.int64)
     return per_parent.reset_index()
 
 
-def _leaf_runs(target: pd.DataFrame, when: np.ndarray) -> np.ndarray | None:
-    """Per step from a row to the next: both rows of one leaf, where the rows of each leaf are one run in period
-    order (as `reinitialize_target` writes them), told by the leaf ids; None otherwise (or without the ids)."""
+def _changes_in_leaf_runs(
+    target: pd.DataFrame, when: np.ndarray, share: np.ndarray, tolerance: float
+) -> np.ndarray | None:
+    """The rows whose share differs by more than `tolerance` from the row before of the same leaf, where the rows
+    of each leaf are one run in period order (as `reinitialize_target` writes them), told by the leaf ids in one
+    compiled pass (`share_steps`); None otherwise (or without the ids)."""
     if not ids_in(target, (LEAF_ID,)) or len(target) < 2:
         return None
     ids = target[LEAF_ID].to_numpy()
-    new = ids[1:] != ids[:-1]
-    heads = ids[np.r_[0, np.flatnonzero(new) + 1]]
-    if len(np.unique(heads)) < len(heads) or not bool(np.all((when[1:] >= when[:-1]) | new)):
+    if ids.min() < 0:
         return None
-    return ~new
+    in_runs, rows = share_steps(ids, when, share, tolerance, int(ids.max()) + 1)
+    return rows if in_runs else None
 
 
-def first_parent_periods(target: pd.DataFrame, zero_only: bool = False) -> np.ndarray:
+def parent_period_codes(target: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """(one integer per row naming its parent (product, site) and period, each row has a zero_reason): the
+    parent id (or the parent key's code where the table carries no ids) times the periods plus the period's code
+    (the same pairs as the text keys), and the reason mask: made once for the figures and the check."""
+    parent = target[PARENT_ID].to_numpy(np.int64) if ids_in(target, (PARENT_ID,)) else factorize(target, PARENT)[0]
+    when, periods = pd.factorize(target["period_start"].to_numpy())
+    return parent * len(periods) + when, target["zero_reason"].notna().to_numpy()
+
+
+def first_parent_periods(
+    target: pd.DataFrame, zero_only: bool = False, codes: tuple[np.ndarray, np.ndarray] | None = None
+) -> np.ndarray:
     """Positions of the first row of each parent (product, site) and period in `target`, ascending (the rows
-    `drop_duplicates` keeps); zero_only: among the rows with a zero_reason only. Coded on integers."""
-    rows = np.flatnonzero(target["zero_reason"].notna().to_numpy()) if zero_only else None
-    frame = target if rows is None else target.iloc[rows]
-    if frame.empty:
+    `drop_duplicates` keeps); zero_only: among the rows with a zero_reason only. Coded on integers; codes:
+    `parent_period_codes(target)`, when the caller has them."""
+    code, has_reason = codes if codes is not None else parent_period_codes(target)
+    rows = np.flatnonzero(has_reason) if zero_only else None
+    code = code if rows is None else code[rows]
+    if not len(code):
         return np.zeros(0, np.int64)
-    # one parent: one parent id, where the table carries them (the same groups as the text keys)
-    parent = frame[PARENT_ID].to_numpy(np.int64) if ids_in(frame, (PARENT_ID,)) else factorize(frame, PARENT)[0]
-    when, periods = pd.factorize(frame["period_start"].to_numpy())
-    first = np.flatnonzero(~pd.Series(parent * len(periods) + when).duplicated().to_numpy())
+    first = np.flatnonzero(~pd.Series(code).duplicated().to_numpy())
     return first if rows is None else rows[first]
 
 
@@ -232,23 +249,28 @@ def run(
     settings = chosen_rules(share_tuning, ShareSettings.of(settings))
     cycle_date = pd.Timestamp(cycle_calendar["cycle_date"].iloc[0])
     target = reinitialize_target(share_tables, lifecycle_history, settings, cycle_date, products, period_basis)
+    codes = parent_period_codes(target)  # once for the figures and the check
     when = target["period_start"].to_numpy()
     first = np.flatnonzero(when == when.min()) if len(target) else np.zeros(0, np.int64)  # the first period's rows
-    mix = parents_with_mix_change(target, share_tables)
+    mix = parents_with_mix_change(target, share_tables, codes=codes)
     no_baseline = first[target["parent_baseline"].to_numpy()[first] == 0]
-    zero = target[["zero_reason"]].iloc[first_parent_periods(target, zero_only=True)]
+    zero = target[["zero_reason"]].iloc[first_parent_periods(target, zero_only=True, codes=codes)]
+    if ids_in(target, (PARENT_ID,)):  # one parent id per parent key
+        parents_without_baseline = len(pd.unique(target[PARENT_ID].to_numpy()[no_baseline]))
+    else:
+        parents_without_baseline = int(target[PARENT].iloc[no_baseline].drop_duplicates().shape[0])
     figures = {
         "horizon_periods": settings.horizon,
         "target_total_per_period": float(target["target"].iloc[first].sum()),
-        "parents_with_zero_baseline": int(target[PARENT].iloc[no_baseline].drop_duplicates().shape[0]),
+        "parents_with_zero_baseline": parents_without_baseline,
         "parents_with_mix_change": mix,
         "parents_with_mix_change_count": len(mix),
         "zero_periods_by_reason": zero.groupby("zero_reason").size().rename("parent_periods").reset_index(),
-        "parent_periods_by_basis": target["basis"].iloc[first_parent_periods(target)].value_counts()
+        "parent_periods_by_basis": target["basis"].iloc[first_parent_periods(target, codes=codes)].value_counts()
         .rename_axis("basis").reset_index(),
     }
     return StageResult(
         outputs={"reinitialized_target": target},
         metadata={"reinitialized_target": figures},
-        checks={SHARES_SUM_TO_ONE: CheckRows(find_shares_not_summing_to_one(target))},
+        checks={SHARES_SUM_TO_ONE: CheckRows(find_shares_not_summing_to_one(target, codes=codes))},
     )
