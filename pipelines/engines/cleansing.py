@@ -329,20 +329,26 @@ def _parameter_texts(params: dict, picked: dict[str, np.ndarray], adjusted: np.n
                 e["seasonal_adjusted"] = bool(adjusted[r])
         return [json.dumps(params | e) for e in extra]
     head = json.dumps(params)[:-1]  # without its closing brace
-    texts = np.full(n, head, dtype=object)
-    first = np.full(n, not params)  # no member written yet
+    members = []  # per member: its text per row, ", " first ("" where the figure is NaN)
     for k, v in picked.items():
         has = ~np.isnan(v)
-        name = json.dumps(k) + ": "
+        name = ", " + json.dumps(k) + ": "
         # each distinct figure written once (distinct by its bits: 0.0 and -0.0 are written apart)
         bits, at = np.unique(np.ascontiguousarray(v[has], dtype=np.float64).view(np.int64), return_inverse=True)
-        written = np.array([name + repr(round(float(x), 6)) for x in bits.view(np.float64)], dtype=object)[at]
-        texts[has] = texts[has] + np.where(first[has], "", ", ").astype(object) + written
-        first[has] = False
+        written = np.array([name + repr(round(float(x), 6)) for x in bits.view(np.float64)], dtype=object)
+        if has.all():
+            members.append(written[at])
+        else:
+            column = np.full(n, "", dtype=object)
+            column[has] = written[at]
+            members.append(column)
     if adjusted is not None:
-        flag = np.where(np.asarray(adjusted, dtype=bool), '"seasonal_adjusted": true', '"seasonal_adjusted": false')
-        texts = texts + np.where(first, "", ", ") + flag.astype(object)
-    return list(texts + "}")
+        flags = np.array([', "seasonal_adjusted": false', ', "seasonal_adjusted": true'], dtype=object)
+        members.append(flags[np.asarray(adjusted, dtype=bool).astype(np.intp)])
+    if not members:
+        return [head + "}"] * n
+    skip = 0 if params else 2  # no parameters: the first member written goes without its ", "
+    return [head + "".join(row)[skip:] + "}" for row in zip(*members, strict=True)]  # one text per row, made once
 
 
 def line_accounting(raw_lines: int, cleaned: pd.DataFrame, rejected: pd.DataFrame) -> dict[str, int]:
