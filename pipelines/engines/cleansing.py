@@ -138,11 +138,13 @@ def reject_lines(
     # the cycle date: given, or the period after the trusted end of the usable lines
     has_date = ~unparsed
     ok = free & has_date
-    ordinals = day.take(day.ordinals(period).astype(np.int32))  # int32; 0 for a line without a date (rejected)
+    cell_ordinals = day.ordinals(period)  # per distinct date cell (0 where none)
+    ordinals = day.take(cell_ordinals.astype(np.int32))  # int32; 0 for a line without a date (rejected)
     gap = gap_periods(plausible.isolation_gap_years, period)
     last = None
     if ok.any() and calendar.cycle_date == LATEST_COMPLETE_PERIOD:
-        _, last_ord = trusted_extent(ordinals[ok], gap)
+        periods, counts = day.period_counts(cell_ordinals, ok)
+        _, last_ord = trusted_extent(periods, gap, counts=counts)
         last = ordinal_to_start(np.array([last_ord]), period)[0]
     cycle_date = resolve_cycle_date(calendar.cycle_date, last, period, str(source))
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
@@ -155,7 +157,10 @@ def reject_lines(
     mark(day.take((values >= highest).to_numpy() | (day.outside > 0)), "date_after_window")
     history = free & (ordinals < cycle_ord) & has_date
     if history.any():
-        first_ord = trusted_extent(ordinals[history], gap, trim_end=False)[0] if first_period is None else first_period
+        first_ord = first_period
+        if first_period is None:
+            periods, counts = day.period_counts(cell_ordinals, history)
+            first_ord = trusted_extent(periods, gap, trim_end=False, counts=counts)[0]
         mark(history & (ordinals < first_ord), "isolated_date")
     mark(has_date & (ordinals >= cycle_ord), "on_or_after_cycle_date")
 
