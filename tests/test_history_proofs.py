@@ -177,3 +177,19 @@ def test_stable_order_through_runs_is_numpys_stable_argsort(seed):
         for codes in (runs, rng.integers(0, k, n)):
             codes = codes.astype(np.int64)
             assert np.array_equal(stable_order(codes), np.argsort(codes, kind="stable"))
+
+
+def test_unexplained_changes_before_the_epoch_are_those_of_every_row(cleaned_case, monkeypatch):
+    """The same proof on periods dated before 1970 (whole days below zero: the distinct days counted on a
+    shifted copy), a change planted and an orphan correction."""
+    _, res = cleaned_case
+    back = pd.Timedelta(days=7 * 52 * 60)
+    cleaned = res.cleaned.assign(period_start=res.cleaned["period_start"] - back)
+    cleaned.loc[[7], "quantity"] += 3.0
+    corr = res.corrections.assign(period_start=res.corrections["period_start"] - back)
+    corr = pd.concat([corr, corr.head(1).assign(period_start=pd.Timestamp("1950-01-02"), delta=1.0)], ignore_index=True)
+    assert cleaned["period_start"].max() < pd.Timestamp("1970-01-01")
+    assert history_proofs.cell_positions(cleaned, corr) is not None  # the fast path is taken
+    fast = find_unexplained_changes(cleaned, corr)
+    pd.testing.assert_frame_equal(fast, general(monkeypatch, find_unexplained_changes, cleaned, corr))
+    assert len(fast) == 2
