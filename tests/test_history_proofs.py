@@ -154,6 +154,12 @@ def test_line_rejection_on_key_runs_is_that_of_every_line(make_products, make_sp
     assert len(raw) >= 1024 and len(cleansing._key_runs(raw)[0]) < len(raw) / 4  # the runs path is taken
     config = make_config(calendar={"cycle_date": "2026-03-02"})
     fast = clean_history(raw, products, spans, config)
+    starts, heads = history_proofs.leaf_runs(raw)  # the raw lines' runs the stage hands to its proofs
+    assert np.array_equal(fast.raw_runs[0], starts)
+    pd.testing.assert_frame_equal(fast.raw_runs[1], heads, check_exact=True)
+    missing = raw.assign(customer=raw["customer"].where(np.arange(len(raw)) >= 3, None))  # a key missing
+    assert history_proofs.leaf_runs(missing) is None
+    assert clean_history(missing, products, spans, config).raw_runs is None
     with monkeypatch.context() as m:
         m.setattr(cleansing, "_key_runs", lambda frame: (frame, None))
         slow = clean_history(raw, products, spans, config)

@@ -167,14 +167,17 @@ def _unexplained_at(
     return out.sort_values(key, kind="stable").reset_index(drop=True)
 
 
-def accounted_lines(raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: pd.DataFrame, cleaned_runs=RUNS_UNSEEN):
-    """The integer part of `proofs.find_unaccounted_lines`, or None where it needs the general path.
+def accounted_lines(
+    raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: pd.DataFrame, cleaned_runs=RUNS_UNSEEN, raw_runs=RUNS_UNSEEN
+):
+    """The integer part of `proofs.find_unaccounted_lines`, or None where it needs the general path
+    (`cleaned_runs`, `raw_runs`: `leaf_runs` of the two tables, where the caller found them).
 
     Returns (rejected row naming no raw line, rejected row naming a line named before, raw line rejected,
     raw row of a leaf whose counts differ, cleaned row of such a leaf): bool per row of each table.
     """
     line = ["source_file", "source_row"]
-    raw_runs = leaf_runs(raw)
+    raw_runs = leaf_runs(raw) if raw_runs is RUNS_UNSEEN else raw_runs
     cleaned_runs = leaf_runs(cleaned) if cleaned_runs is RUNS_UNSEEN else cleaned_runs
     if raw_runs is None or cleaned_runs is None or raw["source_row"].dtype.kind not in "iu":
         return None
