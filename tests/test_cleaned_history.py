@@ -13,6 +13,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from pipelines.engines.cleansing import _parameter_texts
 from pipelines.stages.cleaned_history import clean_history, find_unexplained_changes, line_accounting
 
 NO_OUTLIERS = {"outliers": {"rule": "none"}}
@@ -1076,3 +1077,26 @@ def test_property_blocks_of_any_size_give_the_same_tables(case, block_cells):
     for name in ("cleaned", "rejected", "corrections", "outlier_rules", "shortage_periods"):
         pd.testing.assert_frame_equal(getattr(one, name), getattr(cut, name), check_exact=True, obj=name)
     assert one.series == cut.series == one.cleaned.groupby(["product", "site", "customer"]).ngroups
+
+
+@pytest.mark.parametrize("params", [{"rule": "hampel", "window": 13, "k": 3.0}, {}])
+@pytest.mark.parametrize("with_flag", [True, False])
+def test_parameter_texts_are_json_dumps_of_each_row(params, with_flag):
+    """The correction rows' parameter texts, written a member at a time, are `json.dumps` of each row's
+    members: the rule's parameters, the figures rounded to 6 places (NaN ones left out, -0.0 kept apart)
+    and the seasonal flag."""
+    rng = np.random.default_rng(3)
+    n = 200
+    median = np.round(rng.gamma(2.0, 5.0, n), 8)
+    median[::9] = -0.0
+    scale = rng.choice([0.0, 1.5, 4.4478, 1e-7, 123456.7891234], n)
+    scale[rng.random(n) < 0.3] = np.nan
+    median[rng.random(n) < 0.1] = np.nan
+    adjusted = rng.random(n) < 0.4
+    picked = {"median": median, "limit_scale": scale}
+    texts = _parameter_texts(params, picked, adjusted if with_flag else None)
+    for r in range(n):
+        members = {k: round(float(v[r]), 6) for k, v in picked.items() if not np.isnan(v[r])}
+        if with_flag:
+            members["seasonal_adjusted"] = bool(adjusted[r])
+        assert texts[r] == json.dumps(params | members)

@@ -154,6 +154,12 @@ def test_line_rejection_on_key_runs_is_that_of_every_line(make_products, make_sp
     assert len(raw) >= 1024 and len(cleansing._key_runs(raw)[0]) < len(raw) / 4  # the runs path is taken
     config = make_config(calendar={"cycle_date": "2026-03-02"})
     fast = clean_history(raw, products, spans, config)
+    starts, heads = history_proofs.leaf_runs(raw)  # the raw lines' runs the stage hands to its proofs
+    assert np.array_equal(fast.raw_runs[0], starts)
+    pd.testing.assert_frame_equal(fast.raw_runs[1], heads, check_exact=True)
+    missing = raw.assign(customer=raw["customer"].where(np.arange(len(raw)) >= 3, None))  # a key missing
+    assert history_proofs.leaf_runs(missing) is None
+    assert clean_history(missing, products, spans, config).raw_runs is None
     with monkeypatch.context() as m:
         m.setattr(cleansing, "_key_runs", lambda frame: (frame, None))
         slow = clean_history(raw, products, spans, config)
@@ -177,3 +183,19 @@ def test_stable_order_through_runs_is_numpys_stable_argsort(seed):
         for codes in (runs, rng.integers(0, k, n)):
             codes = codes.astype(np.int64)
             assert np.array_equal(stable_order(codes), np.argsort(codes, kind="stable"))
+
+
+def test_unexplained_changes_before_the_epoch_are_those_of_every_row(cleaned_case, monkeypatch):
+    """The same proof on periods dated before 1970 (whole days below zero: the distinct days counted on a
+    shifted copy), a change planted and an orphan correction."""
+    _, res = cleaned_case
+    back = pd.Timedelta(days=7 * 52 * 60)
+    cleaned = res.cleaned.assign(period_start=res.cleaned["period_start"] - back)
+    cleaned.loc[[7], "quantity"] += 3.0
+    corr = res.corrections.assign(period_start=res.corrections["period_start"] - back)
+    corr = pd.concat([corr, corr.head(1).assign(period_start=pd.Timestamp("1950-01-02"), delta=1.0)], ignore_index=True)
+    assert cleaned["period_start"].max() < pd.Timestamp("1970-01-01")
+    assert history_proofs.cell_positions(cleaned, corr) is not None  # the fast path is taken
+    fast = find_unexplained_changes(cleaned, corr)
+    pd.testing.assert_frame_equal(fast, general(monkeypatch, find_unexplained_changes, cleaned, corr))
+    assert len(fast) == 2

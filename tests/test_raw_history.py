@@ -11,7 +11,7 @@ import pytest
 
 from pipelines.config import load_config
 from pipelines.engines.history_files import HISTORY_COLUMNS, choose_cycle_date, load_raw_history
-from pipelines.engines.plausible import parse_dates, trusted_extent, year_outside
+from pipelines.engines.plausible import distinct_dates, parse_dates, trusted_extent, year_outside
 from pipelines.engines.reader import read_csv_text, read_parquet_text
 from pipelines.errors import InputFileError
 
@@ -169,3 +169,24 @@ def test_history_lines_carry_their_read_error(tmp_path):
     lines, files = load_raw_history(tmp_path)
     assert lines[["source_row", "read_error"]].values.tolist() == [[1, ""], [2, "too_few_fields"]]
     assert (files[0].rows, files[0].malformed) == (2, 1)
+
+
+def test_lines_per_period_counted_from_the_distinct_dates():
+    """`DistinctDates.period_counts`: the periods and lines of the chosen lines as `np.unique` of their ordinals
+    gives them, and `trusted_extent` on those counts as on the lines' ordinals (the cycle date's and the first
+    period's rule in `reject_lines`)."""
+    rng = np.random.default_rng(5)
+    days = pd.date_range("2020-01-01", periods=900, freq="D").strftime("%Y-%m-%d").to_numpy(dtype=object)
+    cells = rng.choice(np.append(days, ["not a date", "1890-02-03"]), size=5000)
+    cells[:40] = "2011-05-05"  # an isolated group at the start
+    day = distinct_dates(pd.Series(cells, dtype=object))
+    cell_ordinals = day.ordinals("week")
+    per_line = day.take(cell_ordinals)
+    for chosen in (~day.take(day.value_nat), (rng.random(5000) < 0.3) & ~day.take(day.value_nat)):
+        periods, counts = day.period_counts(cell_ordinals, chosen)
+        wanted_periods, wanted_counts = np.unique(per_line[chosen], return_counts=True)
+        assert periods.tolist() == wanted_periods.tolist() and counts.tolist() == wanted_counts.tolist()
+        for trim_end in (True, False):
+            assert trusted_extent(periods, 52, trim_end=trim_end, counts=counts) == trusted_extent(
+                per_line[chosen], 52, trim_end=trim_end
+            )

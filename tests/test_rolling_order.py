@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 
 from pipelines.engines.outliers import hampel, rolling_median, tukey
-from pipelines.engines.rolling_order import rolling
+from pipelines.engines.rolling_order import _sweep_hampel, _sweep_row, rolling
 
 SMALL, LARGE = 10**12, 0  # chunk_cells: every matrix by numpy's sort / every matrix by the compiled sweep
 
@@ -120,3 +120,23 @@ def test_the_compiled_judgement_gives_numpys_flags_values_and_figures_bit_for_bi
             assert same_bits(after_sweep[~by_sweep.flagged], x[~by_sweep.flagged])  # the rest untouched
             flagged += int(by_sweep.flagged.sum())
     assert flagged > 20  # the rule did flag values to compare
+
+
+@pytest.mark.filterwarnings("ignore:invalid value encountered:RuntimeWarning")
+@pytest.mark.parametrize("both", [False, True])
+def test_the_hampel_sweep_gives_the_mad_exactly_where_a_value_can_be_flagged(both):
+    """`_sweep_hampel` (the one pass's Hampel sweep): every median as `_sweep_row` gives it, the MAD bit for bit
+    where the row's value minus the median (its size with `both`) is above 0, NaN elsewhere."""
+    for x, window in matrices(7):
+        buf, dev = np.empty(window), np.empty(window)
+        for row in x:
+            t = len(row)
+            median, mad, count = np.empty(t), np.empty(t), np.empty(t)
+            _sweep_row(row, window, 0, buf, dev, median, mad, count)
+            first, second = np.full(t, -1.0), np.full(t, -1.0)
+            _sweep_hampel(row, window, both, buf, dev, first, second)
+            with np.errstate(invalid="ignore"):
+                deviation = np.abs(row - median) if both else row - median
+                wanted = np.where(deviation > 0, mad, np.nan)
+            assert same_bits(first, median)
+            assert same_bits(second, wanted)

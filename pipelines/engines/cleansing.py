@@ -20,6 +20,7 @@ from pipelines.calendar import (
     resolve_cycle_date,
 )
 from pipelines.config_inputs import PlausibilityConfig
+from pipelines.engines.history_proofs import RUNS_UNSEEN
 from pipelines.engines.plausible import distinct_dates, distinct_quantities, gap_periods, trusted_extent
 from pipelines.keys import LEAF, factorize, pack_codes
 from pipelines.text_codes import RUNS_SHARE, codes_of, first_appearances, run_starts
@@ -31,7 +32,7 @@ class UsedLines:
     and quantity code, whether it is used, and the runs of lines of one key that hold a used line (in line
     order; each used line a run of its own where the lines are not in runs) with the leaf code of each
     (0..len(leaves) - 1, numbered by first appearance). No array of the used lines is made unless asked for
-    (`leaf_code`, `ordinal`, `quantity`: the used lines in line order)."""
+    (`leaf_code`, `ordinal`, `quantity`: the used lines in line order). `raw_runs`: for the proofs."""
 
     leaves: pd.DataFrame  # product, site, customer of each code
     line_ordinal: np.ndarray  # int32 period number per raw line (a rejected line's: the largest int32)
@@ -42,6 +43,7 @@ class UsedLines:
     run_length: np.ndarray  # int64 raw lines of the run
     run_used: np.ndarray  # int64 used lines of the run
     leaf_of_run: np.ndarray  # int64 leaf code of the run
+    raw_runs: object = RUNS_UNSEEN  # `history_proofs.leaf_runs(raw)`, where the coding found it on the way
 
     @property
     def leaf_code(self) -> np.ndarray:
@@ -138,11 +140,13 @@ def reject_lines(
     # the cycle date: given, or the period after the trusted end of the usable lines
     has_date = ~unparsed
     ok = free & has_date
-    ordinals = day.take(day.ordinals(period).astype(np.int32))  # int32; 0 for a line without a date (rejected)
+    cell_ordinals = day.ordinals(period)  # per distinct date cell (0 where none)
+    ordinals = day.take(cell_ordinals.astype(np.int32))  # int32; 0 for a line without a date (rejected)
     gap = gap_periods(plausible.isolation_gap_years, period)
     last = None
     if ok.any() and calendar.cycle_date == LATEST_COMPLETE_PERIOD:
-        _, last_ord = trusted_extent(ordinals[ok], gap)
+        periods, counts = day.period_counts(cell_ordinals, ok)
+        _, last_ord = trusted_extent(periods, gap, counts=counts)
         last = ordinal_to_start(np.array([last_ord]), period)[0]
     cycle_date = resolve_cycle_date(calendar.cycle_date, last, period, str(source))
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
@@ -155,10 +159,12 @@ def reject_lines(
     mark(day.take((values >= highest).to_numpy() | (day.outside > 0)), "date_after_window")
     history = free & (ordinals < cycle_ord) & has_date
     if history.any():
-        first_ord = trusted_extent(ordinals[history], gap, trim_end=False)[0] if first_period is None else first_period
+        first_ord = first_period
+        if first_period is None:  # the history's lines per period, counted per distinct date cell
+            periods, counts = day.period_counts(cell_ordinals, history)
+            first_ord = trusted_extent(periods, gap, trim_end=False, counts=counts)[0]
         mark(history & (ordinals < first_ord), "isolated_date")
     mark(has_date & (ordinals >= cycle_ord), "on_or_after_cycle_date")
-
     ok = free
     ordinals[~ok] = np.iinfo(np.int32).max  # in place (this function's own): a rejected line's period is no period
     if starts is None:  # no runs: each used line a run of its own, a code per line
@@ -174,8 +180,10 @@ def reject_lines(
     for i in np.flatnonzero(~ok[first_used]).tolist():  # a run whose first lines were rejected (rare)
         first_used[i] += int(np.argmax(ok[first_used[i] :]))
     leaves = raw.iloc[first_used][LEAF].reset_index(drop=True) if len(first_used) else raw[LEAF].iloc[0:0]
+    whole = len(raw) >= 1024 and all(raw[c].dtype == object for c in LEAF)  # `_key_runs` = `leaf_runs(raw)`'s runs
+    raw_runs = (None if starts is None or keyed.isna().any().any() else (starts, keyed)) if whole else RUNS_UNSEEN
     used = UsedLines(leaves.reset_index(drop=True), ordinals, qty_code, qty_values, ok, run_start, run_length,
-                     run_used, leaf_of_run)
+                     run_used, leaf_of_run, raw_runs)
     rejected = raw.loc[~ok].drop(columns=["read_error"], errors="ignore").copy()
     rejected["reason"] = np.array([None, *reasons], dtype=object)[reason[~ok]]
     return used, rejected.reset_index(drop=True), cycle_date
@@ -187,7 +195,7 @@ def _key_runs(raw: pd.DataFrame) -> tuple[pd.DataFrame, np.ndarray | None]:
     else the lines themselves and None. Cells of one object are one text, so a rule judged per run is the
     rule judged per line."""
     columns = [raw[c].to_numpy() for c in LEAF]
-    if len(raw) >= 1024 and all(values.dtype == object for values in columns):
+    if len(raw) >= 1024 and all(values.dtype == object for values in columns):  # 1024: as `raw_runs` above
         starts = run_starts(columns)
         if len(starts) * RUNS_SHARE <= len(raw):
             return pd.DataFrame({c: v[starts] for c, v in zip(LEAF, columns, strict=True)}), starts
@@ -329,20 +337,26 @@ def _parameter_texts(params: dict, picked: dict[str, np.ndarray], adjusted: np.n
                 e["seasonal_adjusted"] = bool(adjusted[r])
         return [json.dumps(params | e) for e in extra]
     head = json.dumps(params)[:-1]  # without its closing brace
-    texts = np.full(n, head, dtype=object)
-    first = np.full(n, not params)  # no member written yet
+    members = []  # per member: its text per row, ", " first ("" where the figure is NaN)
     for k, v in picked.items():
         has = ~np.isnan(v)
-        name = json.dumps(k) + ": "
+        name = ", " + json.dumps(k) + ": "
         # each distinct figure written once (distinct by its bits: 0.0 and -0.0 are written apart)
         bits, at = np.unique(np.ascontiguousarray(v[has], dtype=np.float64).view(np.int64), return_inverse=True)
-        written = np.array([name + repr(round(float(x), 6)) for x in bits.view(np.float64)], dtype=object)[at]
-        texts[has] = texts[has] + np.where(first[has], "", ", ").astype(object) + written
-        first[has] = False
+        written = np.array([name + repr(round(float(x), 6)) for x in bits.view(np.float64)], dtype=object)
+        if has.all():
+            members.append(written[at])
+        else:
+            column = np.full(n, "", dtype=object)
+            column[has] = written[at]
+            members.append(column)
     if adjusted is not None:
-        flag = np.where(np.asarray(adjusted, dtype=bool), '"seasonal_adjusted": true', '"seasonal_adjusted": false')
-        texts = texts + np.where(first, "", ", ") + flag.astype(object)
-    return list(texts + "}")
+        flags = np.array([', "seasonal_adjusted": false', ', "seasonal_adjusted": true'], dtype=object)
+        members.append(flags[np.asarray(adjusted, dtype=bool).astype(np.intp)])
+    if not members:
+        return [head + "}"] * n
+    skip = 0 if params else 2  # no parameters: the first member written goes without its ", "
+    return [head + "".join(row)[skip:] + "}" for row in zip(*members, strict=True)]  # one text per row, made once
 
 
 def line_accounting(raw_lines: int, cleaned: pd.DataFrame, rejected: pd.DataFrame) -> dict[str, int]:

@@ -26,7 +26,7 @@ from numba import njit
 
 from pipelines.engines.cleansing import _parameter_texts
 from pipelines.engines.outliers import MAD_SCALE, rule_parameters, tukey_fences
-from pipelines.engines.rolling_order import _sweep_row, judge_cell
+from pipelines.engines.rolling_order import _sweep_hampel, _sweep_row, judge_cell
 
 NEGATIVE, OUTLIER = 0, 1  # the rule of a correction row: negative net to zero, the class's outlier cap
 
@@ -101,8 +101,11 @@ def clean_rows(
         if kind >= 0:  # judged on x - 0.0, NaN where skipped (a shortage) or not kept: `judge_rows`' arithmetic
             for c in range(t):
                 judged[c] = np.nan if short[c] else x[c] - 0.0
-            _sweep_row(judged, windows[rule], kind, buf, dev, first, second, third)
             scale = scales[rule]
+            if kind == 0 and scale >= 0:  # the MAD only where a value can be flagged
+                _sweep_hampel(judged, windows[rule], both[rule], buf, dev, first, second)
+            else:
+                _sweep_row(judged, windows[rule], kind, buf, dev, first, second, third)
             for c in range(t):
                 v = judged[c]
                 if np.isnan(v):

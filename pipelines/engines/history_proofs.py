@@ -65,12 +65,17 @@ def cell_positions(cleaned: pd.DataFrame, corrections: pd.DataFrame, cleaned_run
     codes = joint_codes(heads, corrections, LEAF)
     if codes is None or not pd.Index(codes[0]).is_unique:  # a leaf in two runs
         return None
-    first_day = min(days.min(initial=0), corr_days.min(initial=0))
-    span = int(max(days.max(initial=first_day), corr_days.max(initial=first_day)) - first_day) + 1
-    # the distinct days of both tables, counted without joining them
-    days -= first_day  # in place and back (`days` is this function's own): no full-length temporary
-    held = np.bincount(days, minlength=span) + np.bincount(corr_days - first_day, minlength=span)
-    days += first_day
+    # each table's lowest and highest day read once (`initial=0`, as every bound below is taken)
+    bounds = [int(days.min(initial=0)), int(days.max(initial=0)), int(corr_days.min(initial=0)),
+              int(corr_days.max(initial=0))]
+    first_day = min(bounds[0], bounds[2])
+    last_day = max(bounds[1], bounds[3], first_day)
+    # the distinct days of both tables, counted without joining them (on the days as they are when none is
+    # before the epoch: no shifted copy)
+    shift = 0 if first_day >= 0 and last_day <= 4 * len(days) + 1_000_000 else first_day
+    top = last_day - shift + 1
+    held = np.bincount(days if shift == 0 else days - shift, minlength=top)
+    held += np.bincount(corr_days - shift, minlength=top)
     capacity = float(np.count_nonzero(held))
     for c in LEAF:  # as `joint_codes` of the whole tables, whose general path takes over past 62 bits
         both = pd.concat([heads[c], corrections[c]], ignore_index=True)
@@ -82,8 +87,8 @@ def cell_positions(cleaned: pd.DataFrame, corrections: pd.DataFrame, cleaned_run
         rising[starts[1:] - 1] = True
         if not rising.all():
             return None
-    low = int(min(days.min(initial=0), corr_days.min(initial=0)))
-    width = int(max(days.max(initial=0), corr_days.max(initial=0))) - low + 1
+    low = first_day
+    width = max(bounds[1], bounds[3]) - low + 1
     if float(len(starts) + 1) * width >= 2.0**62:
         return None
     cells = np.repeat(np.arange(len(starts), dtype=np.int64) * width - low, np.diff(np.append(starts, len(cleaned))))
@@ -162,14 +167,17 @@ def _unexplained_at(
     return out.sort_values(key, kind="stable").reset_index(drop=True)
 
 
-def accounted_lines(raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: pd.DataFrame, cleaned_runs=RUNS_UNSEEN):
-    """The integer part of `proofs.find_unaccounted_lines`, or None where it needs the general path.
+def accounted_lines(
+    raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: pd.DataFrame, cleaned_runs=RUNS_UNSEEN, raw_runs=RUNS_UNSEEN
+):
+    """The integer part of `proofs.find_unaccounted_lines`, or None where it needs the general path
+    (`cleaned_runs`, `raw_runs`: `leaf_runs` of the two tables, where the caller found them).
 
     Returns (rejected row naming no raw line, rejected row naming a line named before, raw line rejected,
     raw row of a leaf whose counts differ, cleaned row of such a leaf): bool per row of each table.
     """
     line = ["source_file", "source_row"]
-    raw_runs = leaf_runs(raw)
+    raw_runs = leaf_runs(raw) if raw_runs is RUNS_UNSEEN else raw_runs
     cleaned_runs = leaf_runs(cleaned) if cleaned_runs is RUNS_UNSEEN else cleaned_runs
     if raw_runs is None or cleaned_runs is None or raw["source_row"].dtype.kind not in "iu":
         return None

@@ -107,8 +107,11 @@ def normalize_dates(frame: pd.DataFrame, columns: tuple[str, ...]) -> pd.DataFra
     return out
 
 
-def trusted_extent(ordinals: np.ndarray, gap_periods: int, *, trim_end: bool = True) -> tuple[int | None, int | None]:
-    """First and last period ordinal of the trusted history of lines at `ordinals` (None, None when empty).
+def trusted_extent(
+    ordinals: np.ndarray, gap_periods: int, *, trim_end: bool = True, counts: np.ndarray | None = None
+) -> tuple[int | None, int | None]:
+    """First and last period ordinal of the trusted history of lines at `ordinals` (None, None when empty);
+    with `counts`, `ordinals` are the distinct periods, ascending, and `counts` the lines of each.
 
     The rules of the module docstring: isolated end groups (split at gaps longer
     than `gap_periods`) go at both ends; with `trim_end`, sparse last periods
@@ -117,7 +120,10 @@ def trusted_extent(ordinals: np.ndarray, gap_periods: int, *, trim_end: bool = T
     if len(ordinals) == 0:
         return None, None
     ordinals = np.asarray(ordinals)  # any integer type as given (no copy of the lines' ordinals)
-    periods, counts = _period_counts(ordinals if ordinals.dtype.kind in "iu" else ordinals.astype(np.int64))
+    if counts is not None:
+        periods = ordinals
+    else:
+        periods, counts = _period_counts(ordinals if ordinals.dtype.kind in "iu" else ordinals.astype(np.int64))
     limit = max(1.0, ISOLATED_SHARE * counts.sum())
     breaks = np.flatnonzero(np.diff(periods) > gap_periods)  # a gap after periods[b]
     lo, hi = 0, len(periods) - 1
@@ -178,6 +184,17 @@ class DistinctDates:
 
     def take(self, per_cell: np.ndarray) -> np.ndarray:
         return per_cell[self.code]
+
+    def period_counts(self, ordinals: np.ndarray, lines: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """(the distinct periods, ascending, and the lines of each) of the lines `lines` (bool per line), given
+        the period ordinal of each distinct cell: `np.unique(per-line ordinals[lines], return_counts=True)`,
+        counted per distinct cell first (no array of the lines' ordinals)."""
+        per_cell = np.bincount(self.code[lines], minlength=len(ordinals))
+        held = np.flatnonzero(per_cell)
+        periods, at = np.unique(ordinals[held], return_inverse=True)
+        counts = np.zeros(len(periods), dtype=np.int64)
+        np.add.at(counts, at, per_cell[held])
+        return periods, counts
 
     def ordinals(self, period: str) -> np.ndarray:
         """Period ordinal of each distinct date (0 where none)."""

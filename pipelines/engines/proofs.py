@@ -291,12 +291,13 @@ def _distinct_leaves(leaf: pd.DataFrame) -> pd.DataFrame:
 
 
 def find_unaccounted_lines(
-    raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: pd.DataFrame, *, cleaned_runs=RUNS_UNSEEN
+    raw: pd.DataFrame, cleaned: pd.DataFrame, rejected: pd.DataFrame, *, cleaned_runs=RUNS_UNSEEN,
+    raw_runs=RUNS_UNSEEN,
 ) -> pd.DataFrame:
     """Raw lines that are neither summed into cleaned_history nor rejected, or counted twice, by series.
 
     The counts are proven on integer codes first (`history_proofs.accounted_lines`; `cleaned_runs`: the
-    caller's `history_proofs.leaf_runs(cleaned)`, when it has them); only the rows of the
+    caller's `history_proofs.leaf_runs(cleaned)`, when it has them, and `raw_runs` the raw lines'); only the rows of the
     series whose counts differ are then grouped by their text keys, which names them as the whole tables would.
     Every raw line (source_file, source_row) is either rejected (a row of
     `rejected` naming it) or used; the used lines of a product x site x
@@ -306,7 +307,7 @@ def find_unaccounted_lines(
     raw_lines, rejected_lines, used_lines = raw - rejected, cleaned_lines).
     """
     line = ["source_file", "source_row"]
-    fast = accounted_lines(raw, cleaned, rejected, cleaned_runs)  # on integer codes; None: every row coded as below
+    fast = accounted_lines(raw, cleaned, rejected, cleaned_runs, raw_runs)  # on integer codes; None: every row coded
     if fast is not None:
         no_line, named_before, in_rejected, raw_off, cleaned_off = fast
         raw, in_rejected, cleaned = raw.loc[raw_off], in_rejected[raw_off], cleaned.loc[cleaned_off]

@@ -128,30 +128,44 @@ def _mad(buf, n, med, dev):
 
 
 @njit(cache=True)
-def _sweep_row(row, window, kind, buf, dev, first, second, third):
-    """One row of `rolling_stats`: its statistics written into the rows `first`, `second`, `third`."""
-    t = len(row)
-    half = window // 2
+def _open(row, window, buf):
+    """The sorted buffer before period 0's step: the values of period 0's window but its last; returns n."""
     n = 0
-    for c in range(min(t, window - 1 - half)):  # the columns of period 0's window but its last
+    for c in range(min(len(row), window - 1 - window // 2)):
         v = row[c]
         if not np.isnan(v):
             _insert(buf, n, v)
             n += 1
-    for j in range(t):
-        incoming = j - half + window - 1
-        v = row[incoming] if incoming < t else np.nan
-        outgoing = j - half - 1
-        u = row[outgoing] if outgoing >= 0 else np.nan
-        if np.isnan(u):
-            if not np.isnan(v):
-                _insert(buf, n, v)
-                n += 1
-        elif np.isnan(v):
-            _remove(buf, n, u)
-            n -= 1
-        else:
-            _replace(buf, n, u, v)
+    return n
+
+
+@njit(cache=True)
+def _step(row, window, buf, n, j):
+    """The sorted buffer moved to period j's window (one value in, one out); returns its new n."""
+    t = len(row)
+    half = window // 2
+    incoming = j - half + window - 1
+    v = row[incoming] if incoming < t else np.nan
+    outgoing = j - half - 1
+    u = row[outgoing] if outgoing >= 0 else np.nan
+    if np.isnan(u):
+        if not np.isnan(v):
+            _insert(buf, n, v)
+            n += 1
+    elif np.isnan(v):
+        _remove(buf, n, u)
+        n -= 1
+    else:
+        _replace(buf, n, u, v)
+    return n
+
+
+@njit(cache=True)
+def _sweep_row(row, window, kind, buf, dev, first, second, third):
+    """One row of `rolling_stats`: its statistics written into the rows `first`, `second`, `third`."""
+    n = _open(row, window, buf)
+    for j in range(len(row)):
+        n = _step(row, window, buf, n, j)
         if kind == 0:
             med = _median(buf, n)
             first[j] = med
@@ -165,6 +179,24 @@ def _sweep_row(row, window, kind, buf, dev, first, second, third):
             first[j] = _median(buf, n)
             second[j] = n
             third[j] = n
+
+
+@njit(cache=True)
+def _sweep_hampel(row, window, both, buf, dev, first, second):
+    """`_sweep_row` of kind 0 for judging a Hampel rule with a scale >= 0: the median of every window into
+    `first`, the MAD into `second` only where the row's own value can be flagged - a value v with v - median
+    (|v - median| with `both`) above 0; elsewhere `second` is NaN. With scale * MAD >= 0 (or NaN), a
+    deviation of 0 or less (or NaN) never exceeds it, so `judge_cell` flags the same cells with the same
+    figures: the MAD of a flagged cell is the one `_sweep_row` gives."""
+    n = _open(row, window, buf)
+    for j in range(len(row)):
+        n = _step(row, window, buf, n, j)
+        med = _median(buf, n)
+        first[j] = med
+        deviation = row[j] - med
+        if both:
+            deviation = abs(deviation)
+        second[j] = _mad(buf, n, med, dev) if deviation > 0 else np.nan
 
 
 @njit(cache=True)

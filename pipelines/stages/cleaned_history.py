@@ -127,7 +127,7 @@ from pipelines.engines.cleansing_blocks import (
     shortage_grid,
     shortage_records,
 )
-from pipelines.engines.history_proofs import find_unexplained_changes, leaf_runs
+from pipelines.engines.history_proofs import RUNS_UNSEEN, find_unexplained_changes, leaf_runs
 from pipelines.engines.proofs import find_unaccounted_lines
 from pipelines.engines.report_charts import corrections_chart
 from pipelines.keys import LEAF, lookup
@@ -145,6 +145,7 @@ class CleaningResult:
     # per shortage record (bucketed to its period): the children it flagged
     shortage_periods: pd.DataFrame = field(default_factory=pd.DataFrame)
     series: int = 0  # leaf series in `cleaned` (each has at least one used line)
+    raw_runs: object = RUNS_UNSEEN  # `history_proofs.leaf_runs(raw)`, where the rejection found them on the way
 
 
 def clean_history(
@@ -187,6 +188,7 @@ def clean_history(
         period_ns=ordinal_to_start(np.arange(t) + first_ord, period).to_numpy(),  # written per kept cell
     )
     blocks = clean_blocks(used, first_ord, grid, config, config.block_cells)
+    raw_runs = used.raw_runs
     del used
 
     # --- long tables
@@ -205,6 +207,7 @@ def clean_history(
         outlier_rules=class_summary(grid.leaf_class, config, blocks.seasonal_series),
         shortage_periods=shortage_records(records, where, blocks.flagged),
         series=len(leaves),
+        raw_runs=raw_runs,
     )
 
 
@@ -296,7 +299,7 @@ def run(
             "rejected_rows": {"by_reason": by_reason},
             "history_corrections": {"by_rule": by_rule},
         },
-        checks=history_checks(raw_history, cleaned, rejected, corrections, settings),
+        checks=history_checks(raw_history, cleaned, rejected, corrections, settings, result.raw_runs),
         files={settings.picture: png},
     )
 
@@ -307,8 +310,10 @@ def history_checks(
     rejected: pd.DataFrame,
     corrections: pd.DataFrame,
     settings: CleaningSettings,
+    raw_runs=RUNS_UNSEEN,
 ) -> dict[str, CheckRows]:
-    """The checks of cleaned_history and rejected_rows, judged from the stage's tables and the raw lines."""
+    """The checks of cleaned_history and rejected_rows, judged from the stage's tables and the raw lines
+    (`raw_runs`: `history_proofs.leaf_runs(raw_history)` where the stage found them)."""
     counts = line_accounting(len(raw_history), cleaned, rejected)
     bad = rejected[rejected["reason"] != "on_or_after_cycle_date"]
     limit = settings.max_rejected_share
@@ -316,7 +321,7 @@ def history_checks(
     runs = leaf_runs(cleaned)  # cleaned_history's runs of one leaf, found once for both proofs
     return {
         EVERY_RAW_ROW_ACCOUNTED: CheckRows(
-            find_unaccounted_lines(raw_history, cleaned, rejected, cleaned_runs=runs), counts
+            find_unaccounted_lines(raw_history, cleaned, rejected, cleaned_runs=runs, raw_runs=raw_runs), counts
         ),
         CORRECTIONS_EXPLAIN_CHANGES: CheckRows(find_unexplained_changes(cleaned, corrections, cleaned_runs=runs)),
         REJECTED_ROWS_WITHIN_LIMIT: CheckRows(
