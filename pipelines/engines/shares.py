@@ -266,7 +266,7 @@ def child_frame(
     return ChildFrame(
         children,
         established,
-        lifecycle_rules(children, established, settings, cycle_date),
+        lifecycle_rules(children, established, settings, cycle_date, detail),
         parent_code,
         len(parents),
         extend_ids(children, history, keys, leaf_of_child),
