@@ -653,3 +653,36 @@ def test_key_sums_found_by_rows_of_equal_pandas_groupby_sums_with_runs_or_withou
         assert sums["children_sum"].to_numpy()[at] == pytest.approx(expected["value"].sum().to_numpy(), abs=1e-12)
         assert sums["pins_in_plan"].to_numpy()[at] == pytest.approx(expected["pins"].sum().to_numpy(), abs=1e-12)
     assert sums.attrs["found"][0] != "dense" and key_sums(runs, key).attrs["found"][0] == "dense"
+
+
+def test_rows_of_many_parent_periods_in_runs_equal_a_lookup_of_every_row():
+    from pipelines.engines.plan_codes import key_sums, rows_of
+    from pipelines.keys import lookup
+
+    # 2,000 parent periods (500 parents x 4 weeks) in runs of one parent, as the plan's parents table holds them:
+    # rows_of looks the parents up on their runs' first rows only; each row must get its own key's row of the
+    # sums, as a lookup of every row's key gives it, and -1 for a parent the plan has none of
+    rng = np.random.default_rng(8)
+    weeks = pd.date_range("2026-01-05", periods=4, freq="7D")
+    key = ["measure", "product", "site", "period_start"]
+    names = np.array([f"p{i}" for i in range(500)], dtype=object)
+    plan = pd.DataFrame({"measure": "m", "product": np.repeat(names, 12), "site": "s"})
+    plan[key[:3]] = plan[key[:3]].to_numpy(object)
+    plan["period_start"] = weeks[rng.integers(0, 4, len(plan))]
+    plan["value"], plan["pinned"] = rng.normal(size=len(plan)), False
+    sums = key_sums(plan, key)
+    assert sums.attrs["found"][0] == "dense"
+    parents = pd.DataFrame({"measure": "m", "product": np.repeat(names, 4), "site": "s"})
+    parents["product"] = parents["product"].to_numpy(object)
+    parents.loc[40:43, "product"] = "none"  # one run of a parent without rows
+    parents["period_start"] = np.tile(weeks.values, 500)
+    keys, periods = sums.attrs["found"][1]
+    expected = [
+        -1 if (k < 0 or p < 0) else k * len(periods) + p
+        for k, p in zip(
+            lookup(parents, key[:3], keys), pd.Index(periods).get_indexer(parents["period_start"]), strict=True
+        )
+    ]
+    found = rows_of(parents, key, sums)
+    assert found.tolist() == expected
+    assert (found[40:44] == -1).all() and (np.delete(found, range(40, 44)) >= 0).sum() > 1500

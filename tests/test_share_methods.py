@@ -14,11 +14,11 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from pipelines.engines.period_shares import period_of_year
+from pipelines.engines.period_shares import period_of_year, period_shares
 from pipelines.engines.proofs import find_shares_not_summing_to_one
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.engines.share_tuning import candidate_settings
-from pipelines.engines.shares import cell_proportions, child_frame, compute_shares, ratio_smoothed
+from pipelines.engines.shares import cell_proportions, child_frame, compute_shares, horizon_basis, ratio_smoothed
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF
 from pipelines.schemas import PERIOD_BASES, ReinitializedTarget, ShareTable
@@ -323,6 +323,43 @@ def test_one_child_frame_for_every_window_and_method_gives_the_tables_made_alone
         alone = compute_shares(history, kids, candidate, CYCLE)
         pd.testing.assert_frame_equal(shared, alone)
     assert set(alone["lifecycle_rule"]) == {"reference", "none", "phase_in", "phase_out"}
+
+
+def test_a_share_basis_keeps_the_share_tables_rows_and_period_shares(make_history, make_config):
+    # a named share basis of the plan takes only what period_shares reads of compute_shares' table
+    # (horizon_basis, from a child_frame without the lifecycle texts) and the shares only of period_shares
+    # (reasons=False): both must equal the full path's, to the bit, with a new customer on a reference, one on
+    # an initial share, a late starter and a phase-out among the children, and the children out of key order
+    config = make_config(
+        {"a": {"window": 4, "method": "pooled", "models": LAST_VALUE}},
+        calendar={"horizon": 3},
+        lifecycle={"min_history_periods": 3},
+    )
+    rows = history_rows({"C1": {4: 1, 3: 2, 2: 3, 1: 6}, "C2": {4: 3, 3: 3, 2: 1, 1: 2}, "C3": {2: 2, 1: 0}})
+    history = make_history(rows)
+    kids = lifecycle_children(
+        [
+            ("P1", "C4", 0, H2, H3, "C1", 0.5),
+            ("P1", "C2", 4, H1, H2, None, np.nan),
+            ("P1", "C1", 4, H1, H3, None, np.nan),
+            ("P1", "C3", 4, H2, H3, None, np.nan),
+            ("P1", "C5", 0, H1, H3, None, np.nan),
+        ]
+    )
+    kids.loc[kids["customer"] == "C5", "initial_share"] = 0.2
+    config = ShareSettings.of(config)
+    lean = child_frame(history, kids, config, CYCLE, detail=False)
+    assert lean.lifecycle[4] is None  # no texts written
+    for window, method in [(2, "pooled"), (4, "mean_of_ratios"), (3, "smoothed")]:
+        candidate = candidate_settings(config, window, method)
+        table = compute_shares(history, kids, candidate, CYCLE)
+        basis = horizon_basis(history, kids, candidate, CYCLE, lean)
+        pd.testing.assert_frame_equal(basis, table[list(basis.columns)], check_exact=True)
+        share, reason, _ = period_shares(table, candidate, CYCLE, history=history)
+        alone, no_reason, _ = period_shares(basis, candidate, CYCLE, history=history, reasons=False)
+        np.testing.assert_array_equal(alone, share)
+        assert no_reason is None and reason is not None
+    assert set(table["lifecycle_rule"]) == {"reference", "initial_share", "none", "phase_in", "phase_out"}
 
 
 def test_pooled_and_mean_of_ratios_record_history_share_as_their_basis(make_history, make_config):

@@ -204,10 +204,12 @@ def lifecycle_rules(
     settings: ShareSettings,
     cycle_date: pd.Timestamp,
     parent_code: np.ndarray | None = None,
+    detail: bool = True,
 ):
     """(rule, ref_pos, scale, initial_share, detail) per child; see the module docstring. parent_code: each
     child's parent (`factorize(children, PARENT)`), when the caller has it: a reference customer is then looked
-    for among its own parent's children only."""
+    for among its own parent's children only. detail False: the rule in words is not written (None), for a
+    caller that reads the shares only (a named share basis)."""
     n_min = settings.min_history_periods
     starts = horizon_starts(cycle_date, settings.horizon, settings.period)
     new = ~established
@@ -230,6 +232,8 @@ def lifecycle_rules(
 
     scale = np.where(ref_ok, children["scale"].fillna(settings.reference_scale).to_numpy(float), np.nan)
     initial = np.where(has_init, children["initial_share"].to_numpy(float), np.nan)
+    if not detail:
+        return rule, ref_pos, scale, initial, None
 
     # the rule in words; built as whole columns, the new customers' texts on their rows only
     new_rows = ref_ok | has_init | awaiting
@@ -244,18 +248,18 @@ def lifecycle_rules(
         ),
         index=ref_text.index,
     )
-    detail = pd.Series("share from history", index=children.index, dtype=object)
+    text = pd.Series("share from history", index=children.index, dtype=object)
     on_ref, on_init, on_awaiting = ref_ok[new_rows], has_init[new_rows], awaiting[new_rows]
-    detail[ref_ok] = (
+    text[ref_ok] = (
         "new customer (" + history_text[on_ref] + "): "
         + pd.Series(scale, index=children.index)[ref_ok].map("{:g}".format)
         + " x the share of reference " + ref_text[on_ref] + ", taken from it"
     )
-    detail[has_init] = (
+    text[has_init] = (
         "new customer (" + history_text[on_init] + "): " + no_ref[on_init] + "initial share "
         + pd.Series(initial, index=children.index)[has_init].map("{:g}".format) + ", the others scaled by 1 - it"
     )
-    detail[awaiting] = (
+    text[awaiting] = (
         "new customer (" + history_text[on_awaiting] + "): " + no_ref[on_awaiting]
         + "no reference customer or initial share, so no share until " + str(n_min) + " periods of history"
     )
@@ -263,11 +267,11 @@ def lifecycle_rules(
     def day(dates: pd.DatetimeIndex, rows: np.ndarray) -> pd.Series:  # only the rows' dates written as text
         return pd.Series(dates[rows].strftime("%Y-%m-%d"), index=children.index[rows])
 
-    detail[phase_in] = "share from history; active from " + day(first, phase_in)
-    detail[phase_out] = "share from history; active until " + day(last, phase_out)
+    text[phase_in] = "share from history; active from " + day(first, phase_in)
+    text[phase_out] = "share from history; active until " + day(last, phase_out)
     late = (ref_ok | has_init | awaiting) & (first > starts[0])
-    detail[late] = detail[late] + "; active from " + day(first, late)
-    return rule, ref_pos, scale, initial, detail.to_numpy(object)
+    text[late] = text[late] + "; active from " + day(first, late)
+    return rule, ref_pos, scale, initial, text.to_numpy(object)
 
 
 def reference_positions(shares: pd.DataFrame, parent_code: np.ndarray | None = None) -> np.ndarray:

@@ -12,7 +12,7 @@ from pipelines.config_sections import MeasureConfig
 from pipelines.engines.period_shares import period_shares
 from pipelines.engines.share_rows import ShareRows
 from pipelines.engines.share_settings import ShareRule, ShareSettings
-from pipelines.engines.shares import child_frame, compute_shares
+from pipelines.engines.shares import child_frame, horizon_basis
 from pipelines.errors import ConfigError
 from pipelines.keys import LEAF, LEAF_ID, PARENT, Coded, ids_in, lookup, rows_in
 from pipelines.vocabulary import Basis
@@ -160,8 +160,9 @@ def basis_of(
 
 @dataclass(frozen=True)
 class BasisShares:
-    """One share basis's period shares: `table`, the share engine's table (one row per child, leaf keys and
-    ids, fallback), and `share`, (len(table), H) over the horizon periods `starts`."""
+    """One share basis's period shares: `table`, the share engine's rows (`shares.horizon_basis`: one row per
+    child, leaf keys and ids, history share, fallback, lifecycle rule), and `share`, (len(table), H) over
+    the horizon periods `starts`."""
 
     table: pd.DataFrame
     share: np.ndarray
@@ -202,13 +203,13 @@ def share_bases_of(
 ) -> dict[str, BasisShares]:
     """Period shares of every named share basis (config `share_bases`), per child and horizon period.
 
-    Each basis runs the share engine (`engines.shares.compute_shares`, then
-    `engines.period_shares.period_shares`) with its window, method and fallback
-    windows in place of every product class's own. history: lifecycle history;
+    Each basis runs the share engine (`engines.shares.compute_shares`' history shares and rows, as
+    `horizon_basis` keeps them, then `engines.period_shares.period_shares`, its shares only) with its window,
+    method and fallback windows in place of every product class's own. history: lifecycle history;
     children: `engines.children.active_children`; keys: `coded(history)`, rows: its `history_rows`, when the
     caller has them. The window- and method-free part of the share engine (`child_frame`: the children
     completed, their lifecycle rules, each child's leaf id) reads the lifecycle settings only, which no basis
-    changes: made once.
+    changes: made once, without the lifecycle rules in words, which only the share table shows.
     """
     out = {}
     starts = horizon_starts(cycle_date, config.calendar.horizon, config.calendar.period)
@@ -217,9 +218,9 @@ def share_bases_of(
     made = None
     for name, basis in config.share_bases.items():  # a few named bases, not a loop over series
         own = settings.with_rule(ShareRule.of(basis))  # its window, method and fallbacks in every class
-        made = made or child_frame(history, children, own, cycle_date, keys, rows)
-        table = compute_shares(history, children, own, cycle_date, made, keys)
-        share = period_shares(table, own, cycle_date, products, history)[0]
+        made = made or child_frame(history, children, own, cycle_date, keys, rows, detail=False)
+        table = horizon_basis(history, children, own, cycle_date, made)
+        share = period_shares(table, own, cycle_date, products, history, reasons=False)[0]
         out[name] = BasisShares(table, share, starts)
     return out
 

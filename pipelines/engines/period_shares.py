@@ -160,7 +160,8 @@ def period_basis(
     settings: ShareSettings,
     cycle_date: pd.Timestamp,
     horizon: int | None = None,
-) -> tuple[np.ndarray, np.ndarray]:
+    labels: bool = True,
+) -> tuple[np.ndarray, np.ndarray | None]:
     """(weight, share_basis (n, H)): each share-table row's history share in every horizon period.
 
     weight is (n, H), or the (n,) history shares when no row has a per-period
@@ -173,17 +174,21 @@ def period_basis(
     the pooled `history_share` (`pooled_fallback`). share_basis is the same on
     every child of a parent in a period. New customers' weights are left to
     `split_shares`, which ignores them. H is `horizon` (default: the calendar's).
-    history (lifecycle history) may be None only when no row has a per-period method.
+    history (lifecycle history) may be None only when no row has a per-period method. labels False: a
+    caller that reads the weights only; share_basis is None where no row has a per-period method.
     """
     settings = ShareSettings.of(settings)
     period = settings.period
     h = horizon or settings.horizon
     cycle_ord = int(period_ordinal(pd.DatetimeIndex([cycle_date]), period)[0])
     history_share = shares["history_share"].to_numpy(float)
+    methods = shares["method"].to_numpy(object)
+    per_period = np.isin(methods, PER_PERIOD_METHODS).any()
+    if not per_period and not labels:
+        return history_share, None
     parent_code, parents = factorize(shares, PARENT)
     label = label_array((len(parents), h), "history_share")
-    methods = shares["method"].to_numpy(object)
-    if not np.isin(methods, PER_PERIOD_METHODS).any():
+    if not per_period:
         return history_share, label[parent_code]
     weight = np.repeat(history_share[:, None], h, axis=1)
     if history is None:
@@ -245,14 +250,17 @@ def period_shares(
     history: pd.DataFrame | None = None,
     horizon: int | None = None,
     basis: tuple[np.ndarray, np.ndarray] | None = None,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    reasons: bool = True,
+) -> tuple[np.ndarray, np.ndarray | None, np.ndarray | None]:
     """(share, zero_reason (None where shares sum to 1), basis), each (n, H), per share-table row.
 
     products: the product master, to tell `product_not_active` from
     `no_active_child` (without it, every product counts as active).
     history: the lifecycle history, needed by the per-period share methods
     (`period_basis`) unless `basis` gives their (weight, basis) as decided
-    once for the cycle (`stored_basis`). horizon: H, default the calendar's.
+    once for the cycle (`stored_basis`). horizon: H, default the calendar's. reasons False: the shares
+    only (zero_reason None, and basis None unless a per-period method made one), for a caller that reads
+    nothing else (a named share basis of the plan).
     """
     settings = ShareSettings.of(settings)
     period = settings.period
@@ -264,7 +272,9 @@ def period_shares(
     parent_code, parents = factorize(shares, PARENT)
     n_parents = len(parents)
     rule = shares["lifecycle_rule"].to_numpy(object)
-    weight, basis = basis if basis is not None else period_basis(shares, history, settings, cycle_date, len(starts))
+    if basis is None:
+        basis = period_basis(shares, history, settings, cycle_date, len(starts), labels=reasons)
+    weight, basis = basis
     share, all_zero = split_shares(
         parent_code,
         n_parents,
@@ -275,6 +285,8 @@ def period_shares(
         shares["initial_share"].to_numpy(float),
         active,
     )
+    if not reasons:
+        return share, None, basis
 
     any_active = counts_by(active, parent_code, n_parents)
     non_waiting = counts_by(active, parent_code, n_parents, keep=rule != "awaiting_history")

@@ -176,10 +176,24 @@ def rows_of(parents: pd.DataFrame, key: list[str], sums: pd.DataFrame) -> np.nda
         return lookup(parents, key, what)
     if how == "dense":
         keys, periods = what
-        row = lookup(parents, key[:-1], keys)
+        row = _lookup_on_runs(parents, key[:-1], keys)
         period = pd.Index(periods).get_indexer(parents[key[-1]].to_numpy())
         return np.where((row >= 0) & (period >= 0), row * len(periods) + period, -1)
     return pd.Index(what[0]).get_indexer(codes_in(parents, key, what[1]))
+
+
+def _lookup_on_runs(frame: pd.DataFrame, cols: list[str], table: pd.DataFrame) -> np.ndarray:
+    """`lookup(frame, cols, table)`, the text key looked up on its runs' first rows only where `frame`'s rows
+    come in runs of one cell object (the plan's parent periods: a measure's periods of one parent together), then
+    repeated over each run: a run holds one key, so every row gets its own key's position."""
+    n = len(frame)
+    if n < 1024 or not all(frame[c].dtype == object for c in cols):
+        return lookup(frame, cols, table)
+    starts = run_starts([frame[c].to_numpy() for c in cols], most=1 / RUNS_SHARE)
+    if starts is None:
+        return lookup(frame, cols, table)
+    runs = pd.DataFrame({c: frame[c].to_numpy()[starts] for c in cols})
+    return np.repeat(lookup(runs, cols, table), np.diff(np.append(starts, n)))
 
 
 def position(uniques: np.ndarray, value) -> int:

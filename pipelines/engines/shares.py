@@ -251,9 +251,11 @@ def child_frame(
     cycle_date: pd.Timestamp,
     keys: Coded | None = None,
     rows: ShareRows | None = None,
+    detail: bool = True,
 ) -> ChildFrame:
     """The window- and method-free part of `compute_shares` (it reads the lifecycle settings only); keys:
-    `coded(history)`, rows: `history_rows(...)`, when the caller has them (the history is read once)."""
+    `coded(history)`, rows: `history_rows(...)`, when the caller has them (the history is read once). detail
+    False: without the lifecycle rules in words (`lifecycle_rules`), for `horizon_basis` only."""
     settings = ShareSettings.of(settings)
     keys = keys if keys is not None else coded(history)
     rows = rows if rows is not None else history_rows(history, keys, settings, cycle_date)
@@ -264,7 +266,7 @@ def child_frame(
     return ChildFrame(
         children,
         established,
-        lifecycle_rules(children, established, settings, cycle_date, parent_code),
+        lifecycle_rules(children, established, settings, cycle_date, parent_code, detail=detail),
         parent_code,
         len(parents),
         extend_ids(children, history, keys, leaf_of_child),
@@ -330,3 +332,49 @@ def compute_shares(
     out["initial_share"] = initial
     out["lifecycle_detail"] = detail
     return out[SHARE_COLUMNS + [LEAF_ID, PARENT_ID]].sort_values(LEAF, kind="stable").reset_index(drop=True)
+
+
+BASIS_COLUMNS = LEAF + [
+    "product_class",
+    "history_share",
+    "method",
+    "fallback",
+    "lifecycle_rule",
+    "first_active_period",
+    "last_active_period",
+    "reference_customer",
+    "scale",
+    "initial_share",
+]
+
+
+def horizon_basis(
+    history: pd.DataFrame,
+    children: pd.DataFrame,
+    settings: ShareSettings,
+    cycle_date: pd.Timestamp,
+    frame: ChildFrame,
+) -> pd.DataFrame:
+    """What `period_shares` reads of `compute_shares`' table, with the fallback and the ids: the same rows in
+    the same order (sorted by leaf key) holding the same values, without the columns only the share table
+    shows (the base share, whose split `period_shares` does again per period, the window start, the volumes,
+    the lifecycle rule in words). For a named share basis (`measure_inputs.share_bases_of`), which keeps its
+    per-period shares and fallbacks only. BASIS_COLUMNS + leaf_id, parent_id."""
+    settings = ShareSettings.of(settings)
+    children, rows = frame.children, frame.rows
+    if rows.exclude_shortages != settings.exclude_shortages:  # as compute_shares: a frame of the other rule
+        rows = history_rows(history, coded(history), settings, cycle_date)
+    base = _history_shares(rows, children, frame.established, settings, frame.leaf_of_child)
+    rule = frame.lifecycle[0]
+    out = children[LEAF].copy()
+    out[LEAF_ID], out[PARENT_ID] = frame.ids
+    out["product_class"] = children["product_class"].to_numpy()
+    for column in ("history_share", "method", "fallback"):
+        out[column] = base[column]
+    out["lifecycle_rule"] = rule
+    out["first_active_period"] = pd.DatetimeIndex(children["first_active_period"])
+    out["last_active_period"] = pd.DatetimeIndex(children["last_active_period"])
+    out["reference_customer"] = np.where(rule == "reference", children["reference_customer"].to_numpy(object), None)
+    out["scale"] = frame.lifecycle[2]
+    out["initial_share"] = frame.lifecycle[3]
+    return out[BASIS_COLUMNS + [LEAF_ID, PARENT_ID]].sort_values(LEAF, kind="stable").reset_index(drop=True)
