@@ -80,12 +80,12 @@ for path in (ROOT, ROOT / "benchmarks"):
     if str(path) not in sys.path:
         sys.path.insert(0, str(path))
 
+from class_slices import class_slices  # noqa: E402
 from cycle_inputs import SHARE_METHODS, SMOOTHING, make_config  # noqa: E402
 from cycle_measure import (  # noqa: E402
     HEADER,
     UNITS,
     Bench,
-    class_rows,
     git_commit,
     load_average,
     patch_statsforecast,
@@ -180,7 +180,7 @@ def run_cycle(args: argparse.Namespace) -> dict:
         if step == "report":
             results = [  # a class's rows picked outside the step's time, one class at a time
                 run_report(bench, spec, mine, c, part, Path(tmp.name) / "reports")
-                for c, mine in class_rows(frames, frames["share_tables"], config.product_classes)
+                for c, mine in class_slices(frames, frames["share_tables"], config.product_classes)
             ]
         else:
             results = [run_stage(bench, step, spec, frames, spec.settings(part))]
@@ -229,7 +229,7 @@ def run_stage(bench: Bench, step: str, spec, frames: dict, settings):
 
 
 def run_report(bench: Bench, spec, mine: dict, product_class: str, part: Partition, folder: Path):
-    """One class's charts on that class's rows (`cycle_measure.class_rows`, as the partitioned asset gets them)."""
+    """One class's charts on that class's rows (`class_slices.class_slices`, as the partitioned asset gets them)."""
     settings = ReportSettings(part.config.calendar.period, product_class, part.cycle, folder)
     result = run_stage(bench, f"report {product_class}", spec, mine, settings)
     folder.mkdir(parents=True, exist_ok=True)

@@ -19,7 +19,8 @@ import sys
 import time
 from pathlib import Path
 
-from cycle_measure import class_rows, git_commit, load_average
+from class_slices import class_slices
+from cycle_measure import git_commit, load_average
 
 import pipelines
 from pipelines.stages import cycle_report
@@ -41,7 +42,7 @@ def main(argv: list[str] | None = None) -> dict:
     period = str(calendar["period"].iloc[0])
     shares = tables["share_tables"]
     classes = sorted(shares["product_class"].unique())
-    mine = dict(class_rows(tables, shares, classes))  # as benchmarks/cycle.py's run_report gets a class's rows
+    mine = dict(class_slices(tables, shares, classes))  # as benchmarks/cycle.py's run_report gets a class's rows
     out = Path(args.out) if args.out else Path(".")
     load = {"start": load_average()}
     runs, sizes = [], {}

@@ -101,19 +101,19 @@ def test_the_sampler_reads_pss_only_at_a_new_rss_high_or_after_pss_every(monkeyp
     assert sampler.peak_mb("me", kind="pss") == 150.0
 
 
-def test_class_rows_picks_what_isin_picks_in_row_order():
+def test_class_slices_picks_what_isin_picks_in_row_order():
     """The benchmark's class rows (one factorize per frame) are the rows a per-class `isin` picks, in their order and
     with their index; a frame without products goes to every class whole; a product without a class (NaN too) to
     none."""
     import numpy as np
     import pandas as pd
-    from cycle_measure import class_rows
+    from class_slices import class_slices
 
     shares = pd.DataFrame({"product": ["p1", "p2", "p3", "p1"], "product_class": ["a", "b", "a", "a"]})
     rows = pd.DataFrame({"product": ["p3", "p2", None, "p1", "p9", "p2", np.nan], "v": range(7)},
                         index=[10, 11, 12, 13, 14, 15, 16])
     calendar = pd.DataFrame({"cycle": ["c"]})
-    got = dict(class_rows({"rows": rows, "calendar": calendar}, shares, ["a", "b"]))
+    got = dict(class_slices({"rows": rows, "calendar": calendar}, shares, ["a", "b"]))
     for c in ("a", "b"):
         products = set(shares.loc[shares["product_class"] == c, "product"])
         pd.testing.assert_frame_equal(got[c]["rows"], rows[rows["product"].isin(products)])
