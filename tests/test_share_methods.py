@@ -296,17 +296,23 @@ def test_children_forecast_split_by_the_childrens_forecasts_under_the_lifecycle_
     assert find_shares_not_summing_to_one(target).empty
 
 
-def test_one_child_frame_for_every_window_and_method_gives_the_tables_made_alone(make_history, make_config):
-    # the share tuning's candidates of an origin share one child_frame (backtest_origins.candidate_bases): each
-    # table must equal compute_shares without it (a new customer with a reference, a late starter and a phase-out
-    # among the children, so the lifecycle columns it carries are not trivial)
+def _lifecycle_case(make_history, make_config):
+    """The config and history of the lifecycle cases below: three children with four, four and two periods of
+    history, three needed to be established, a horizon of three."""
     config = make_config(
         {"a": {"window": 4, "method": "pooled", "models": LAST_VALUE}},
         calendar={"horizon": 3},
         lifecycle={"min_history_periods": 3},
     )
     rows = history_rows({"C1": {4: 1, 3: 2, 2: 3, 1: 6}, "C2": {4: 3, 3: 3, 2: 1, 1: 2}, "C3": {2: 2, 1: 0}})
-    history = make_history(rows)
+    return config, make_history(rows)
+
+
+def test_one_child_frame_for_every_window_and_method_gives_the_tables_made_alone(make_history, make_config):
+    # the share tuning's candidates of an origin share one child_frame (backtest_origins.candidate_bases): each
+    # table must equal compute_shares without it (a new customer with a reference, a late starter and a phase-out
+    # among the children, so the lifecycle columns it carries are not trivial)
+    config, history = _lifecycle_case(make_history, make_config)
     kids = lifecycle_children(
         [
             ("P1", "C1", 4, H1, H3, None, np.nan),
@@ -330,13 +336,7 @@ def test_a_share_basis_keeps_the_share_tables_rows_and_period_shares(make_histor
     # (horizon_basis, from a child_frame without the lifecycle texts) and the shares only of period_shares
     # (reasons=False): both must equal the full path's, to the bit, with a new customer on a reference, one on
     # an initial share, a late starter and a phase-out among the children, and the children out of key order
-    config = make_config(
-        {"a": {"window": 4, "method": "pooled", "models": LAST_VALUE}},
-        calendar={"horizon": 3},
-        lifecycle={"min_history_periods": 3},
-    )
-    rows = history_rows({"C1": {4: 1, 3: 2, 2: 3, 1: 6}, "C2": {4: 3, 3: 3, 2: 1, 1: 2}, "C3": {2: 2, 1: 0}})
-    history = make_history(rows)
+    config, history = _lifecycle_case(make_history, make_config)
     kids = lifecycle_children(
         [
             ("P1", "C4", 0, H2, H3, "C1", 0.5),

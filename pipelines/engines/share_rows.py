@@ -52,6 +52,15 @@ def period_ages(starts: pd.Series, period: str, cycle_ord: int) -> np.ndarray:
 
 
 @njit(cache=True)
+def _next_week_age(value, before, age, cycle_ord):
+    """The age of a weekly start `value` (int64 ns) after the row `before` of age `age`: one younger where it is
+    the next week (the same ordinal plus one, exactly), else cycle_ord minus `period_ordinal`'s week ordinal."""
+    if before != NAT and value - before == WEEK_NS:
+        return age - 1
+    return cycle_ord - (value - EPOCH_MONDAY_NS) // WEEK_NS
+
+
+@njit(cache=True)
 def _week_ages(ns: np.ndarray, cycle_ord: int, out: np.ndarray) -> bool:
     """out[i] = cycle_ord - floor((ns[i] - EPOCH_MONDAY_NS) / WEEK_NS), `period_ordinal`'s week ordinal; a row one
     week after the row before is one younger (the same ordinal plus one, exactly), so the division is made only
@@ -62,10 +71,7 @@ def _week_ages(ns: np.ndarray, cycle_ord: int, out: np.ndarray) -> bool:
         value = ns[i]
         if value == NAT:
             return False
-        if before != NAT and value - before == WEEK_NS:
-            age -= 1
-        else:
-            age = cycle_ord - (value - EPOCH_MONDAY_NS) // WEEK_NS
+        age = _next_week_age(value, before, age, cycle_ord)
         out[i] = age
         before = value
     return True
@@ -137,10 +143,7 @@ def _week_runs(ns, cycle_ord, first, short, age, counts, periods):
             value = ns[i]
             if value == NAT:
                 return False, False
-            if before != NAT and value - before == WEEK_NS:
-                a -= 1
-            else:
-                a = cycle_ord - (value - EPOCH_MONDAY_NS) // WEEK_NS
+            a = _next_week_age(value, before, a, cycle_ord)
             age[i] = a
             before = value
             counts[i] = a >= 1 and not (with_short and short[i])
