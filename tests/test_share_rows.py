@@ -16,7 +16,8 @@ import pytest
 
 from pipelines.calendar import EPOCH_MONDAY_NS, WEEK_NS, period_ordinal
 from pipelines.engines.children import _run_periods
-from pipelines.engines.lifecycle_shares import counts_by, split_shares, sums_by
+from pipelines.engines.hierarchy import parent_sums
+from pipelines.engines.lifecycle_shares import counts_by, split_shares
 from pipelines.engines.period_shares import share_steps
 from pipelines.engines.proofs import key_sums
 from pipelines.engines.share_rows import (
@@ -188,7 +189,7 @@ def test_bin_window_volumes_are_the_reinitialized_targets_bincount(seed, sort):
     assert not np.array_equal(bits(volume), bits(wider))  # the shortage rows are told apart
 
 
-def test_sums_by_and_counts_by_are_the_ufuncs_at():
+def test_parent_sums_and_counts_by_are_the_ufuncs_at():
     # reference: np.add.at / np.logical_or.at on zeros, which visit the rows in order
     rng = np.random.default_rng(5)
     values = np.round(rng.lognormal(0, 3, (500, 7)), 3)
@@ -196,7 +197,7 @@ def test_sums_by_and_counts_by_are_the_ufuncs_at():
     code = rng.integers(0, 40, 500)
     expected = np.zeros((40, 7))
     np.add.at(expected, code, values)
-    assert np.array_equal(bits(sums_by(values, code, 40)), bits(expected))
+    assert np.array_equal(bits(parent_sums(values, code, 40)), bits(expected))
     flags = rng.random((500, 7)) < 0.02
     any_flag = np.zeros((40, 7), dtype=bool)
     np.logical_or.at(any_flag, code, flags)

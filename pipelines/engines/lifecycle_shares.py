@@ -51,22 +51,6 @@ from pipelines.keys import LEAF, PARENT, lookup
 from pipelines.vocabulary import NEW_CUSTOMER_RULES
 
 
-def sums_by(values: np.ndarray, code: np.ndarray, n: int) -> np.ndarray:
-    """(n, T): the rows of `values` (m, T) summed per `code` (m,) in 0..n-1, rows in order from 0.0: the sums of
-    `np.add.at(out, code, values)` on zeros (and of a bincount per column), in one compiled pass (`_sums_by`)."""
-    return _sums_by(np.asarray(values, dtype=float), np.asarray(code, dtype=np.int64), int(n))
-
-
-@njit(cache=True)
-def _sums_by(values, code, n):
-    out = np.zeros((n, values.shape[1]))
-    for j in range(values.shape[0]):
-        row = out[code[j]]
-        for col in range(values.shape[1]):
-            row[col] += values[j, col]
-    return out
-
-
 def counts_by(flags: np.ndarray, code: np.ndarray, n: int, keep: np.ndarray | None = None) -> np.ndarray:
     """(n, T) bool: any row of each `code` True in the column (`np.logical_or.at` on False), over the rows with
     `keep` (m,) True only (None: every row); one compiled pass (`_any_by`), no masked copy of `flags`."""

@@ -56,7 +56,8 @@ import numpy as np
 import pandas as pd
 
 from pipelines.calendar import horizon_starts, ordinal_to_start, period_ordinal
-from pipelines.engines.lifecycle_shares import lifecycle_rules, split_shares, sums_by
+from pipelines.engines.hierarchy import parent_sums
+from pipelines.engines.lifecycle_shares import lifecycle_rules, split_shares
 from pipelines.engines.share_rows import ShareRows, child_sums, history_rows, period_sums
 from pipelines.engines.share_settings import ShareSettings
 from pipelines.keys import LEAF, LEAF_ID, PARENT, PARENT_ID, Coded, coded, extend_ids, factorize
@@ -89,7 +90,7 @@ def cell_proportions(child_t: np.ndarray, parent_of_child: np.ndarray, n_parents
     volumes per window period (`child_t`, n x window; column a - 1 holds age a, column 0 = the period before the
     cycle). Y_t is the volume of the child's parent (its children's, summed in order); where Y_t = 0 the ratio is 0
     and has_volume is False."""
-    parent_t = sums_by(child_t, parent_of_child, n_parents)
+    parent_t = parent_sums(child_t, parent_of_child, n_parents)
     denominator = parent_t[parent_of_child]
     has_volume = denominator > 0
     with np.errstate(invalid="ignore", divide="ignore"):
